@@ -1,0 +1,15 @@
+"""The ``adaptive-engine`` command line: thin click commands over the library.
+
+Each command parses its options, calls one library function, prints the result, and turns
+the library's :class:`~adaptive_engine.errors.AdaptiveEngineError` into a message on
+stderr (one ``LOCATION: problem`` line per problem) and exit code 2.
+
+Commands live in one module per concern and register themselves on :data:`main`.
+"""
+
+from __future__ import annotations
+
+from ._common import main  # noqa: F401  (the group every command module registers on)
+
+# Each import registers that module's commands on ``main``.
+from . import bank_commands  # noqa: F401,E402

@@ -1,0 +1,64 @@
+"""Shared pieces of the command line: the root group and error handling."""
+
+from __future__ import annotations
+
+import functools
+import json
+import sys
+
+import click
+
+from .. import __version__
+from ..errors import AdaptiveEngineError
+
+#: Exit code for any error caused by the user's input.
+EXIT_INPUT_ERROR = 2
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="adaptive-engine")
+def main():
+    """Computerized adaptive testing: check banks, score, design, simulate, run and calibrate."""
+
+
+def report_errors(func):
+    """Turn library errors into ``LOCATION: problem`` lines on stderr and exit code 2."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        try:
+            return func(*args, **kwargs)
+        except AdaptiveEngineError as exc:
+            click.echo("error:", err=True)
+            for problem in exc.problems:
+                click.echo(f"  {problem}", err=True)
+            sys.exit(EXIT_INPUT_ERROR)
+        except OSError as exc:
+            where = getattr(exc, "filename", None) or ""
+            click.echo(f"error: {where + ': ' if where else ''}{exc.strerror or exc}", err=True)
+            sys.exit(EXIT_INPUT_ERROR)
+
+    return wrapper
+
+
+def echo_json(obj) -> None:
+    """Print ``obj`` as JSON on stdout (NaN/inf become null)."""
+    click.echo(json.dumps(_clean(obj), indent=None, allow_nan=False))
+
+
+def _clean(obj):
+    import math
+
+    import numpy as np
+
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_clean(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _clean(obj.tolist())
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
