@@ -130,7 +130,10 @@ def _flat(params: ItemParameters, theta):
         c=flat(params.c),
         d=flat(params.d),
         ncat=flat(params.n_categories),
-        thresholds=np.broadcast_to(params.thresholds, shape + (k_max,)).reshape(-1, k_max),
+        # an explicit row count: reshape(-1, 0) is ambiguous for an all-dichotomous set
+        thresholds=np.broadcast_to(params.thresholds, shape + (k_max,)).reshape(
+            int(np.prod(shape, dtype=np.int64)), k_max
+        ),
     )
     return shape, flat(theta), flat_params
 
