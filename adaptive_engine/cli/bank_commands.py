@@ -1,12 +1,72 @@
-"""``adaptive-engine bank ...``: check a bank and print its information curves."""
+"""``adaptive-engine bank ...``: check a bank, print its information curves, convert it."""
 
 from __future__ import annotations
 
 import click
 
-from ._common import main
+from .. import bank_io, bank_report
+from ..bank import load_bank
+from ._common import echo_json, main, report_errors
+
+_BANK_PATH = click.Path(dir_okay=False, path_type=str)
 
 
 @main.group()
 def bank():
-    """Check an item bank and inspect its information."""
+    """Check an item bank, inspect its information, convert between file formats."""
+
+
+@bank.command("check")
+@click.argument("bank_file", metavar="BANK", type=_BANK_PATH)
+@click.option("--scaling", type=float, default=None,
+              help="Scaling constant D for a CSV bank (default 1.0; JSON/SQLite banks state their own).")
+@click.option("--target-se", type=float, default=bank_report.DEFAULT_TARGET_SE, show_default=True,
+              help="Report the ability range where the operational items give a standard error below this.")
+@report_errors
+def check_command(bank_file, scaling, target_se):
+    """Validate BANK (.csv, .json or .db) and print a short summary.
+
+    Every problem is listed as LOCATION: problem, with exit code 2.
+    """
+    summary = bank_report.summarize_bank(load_bank(bank_file, scaling=scaling), target_se=target_se)
+    click.echo(summary.to_text())
+
+
+@bank.command("curves")
+@click.argument("bank_file", metavar="BANK", type=_BANK_PATH)
+@click.option("--from", "start", type=float, default=-4.0, show_default=True, help="First ability point.")
+@click.option("--to", "stop", type=float, default=4.0, show_default=True, help="Last ability point.")
+@click.option("--step", type=float, default=0.25, show_default=True, help="Distance between ability points.")
+@click.option("--format", "fmt", type=click.Choice(["csv", "json"]), default="csv", show_default=True,
+              help="csv: columns theta,information,se; json: an object of arrays.")
+@click.option("--by-area", is_flag=True,
+              help="Add each content area's information (CSV columns information_<area>; "
+                   "JSON key by_area with information and se per area).")
+@click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
+              help="Also draw the curves to this PNG file (needs matplotlib).")
+@click.option("--scaling", type=float, default=None, help="Scaling constant D for a CSV bank.")
+@report_errors
+def curves_command(bank_file, start, stop, step, fmt, by_area, plot_file, scaling):
+    """Print the test information and standard error of BANK over an ability grid."""
+    grid = bank_report.curve_grid(start, stop, step)
+    the_bank = load_bank(bank_file, scaling=scaling)
+    curves = bank_report.information_curves(the_bank, grid, by_area=by_area)
+    if plot_file:
+        bank_report.plot_information_curves(curves, plot_file, title=f"Test information: {the_bank.name}")
+    if fmt == "json":
+        echo_json(curves.to_dict())
+    else:
+        click.echo(curves.to_csv_text(), nl=False)
+
+
+@bank.command("convert")
+@click.argument("bank_file", metavar="BANK", type=_BANK_PATH)
+@click.argument("out_file", metavar="OUT", type=_BANK_PATH)
+@click.option("--scaling", type=float, default=None,
+              help="Scaling constant D to store (needed when BANK is CSV and OUT keeps D).")
+@report_errors
+def convert_command(bank_file, out_file, scaling):
+    """Validate BANK and write it to OUT; the format follows OUT's suffix (.csv, .json, .db)."""
+    the_bank = load_bank(bank_file, scaling=scaling)
+    written = bank_io.write_bank(the_bank, out_file)
+    click.echo(f"wrote {len(the_bank)} items to {written}")
