@@ -4,8 +4,11 @@ Sections: ``opening``, ``scoring``, ``selection``, ``exposure``, ``blueprint``, 
 ``reporting``.  The classes below are the contract between the design file and the decision
 kernel: every field the kernel reads is here, with its default.
 
-(The reader, validation with located errors, and the check against a bank are added by
-the design-file work; see ``read_design`` / ``check_design_against_bank``.)
+The reader, writer and validation with located errors live in
+:mod:`adaptive_engine.design_file` (``read_design``, ``parse_design``, ``design_to_toml``,
+``design_as_dict``, ``validate_design``), the check against a bank in
+:mod:`adaptive_engine.design_check` (``check_design_against_bank``); both are importable
+from here too.
 """
 
 from __future__ import annotations
@@ -215,3 +218,26 @@ class Design:
     @property
     def final_method(self) -> str:
         return self.reporting.final_method or self.scoring.method
+
+
+_LAZY = {
+    "read_design": "design_file",
+    "parse_design": "design_file",
+    "design_from_dict": "design_file",
+    "design_to_toml": "design_file",
+    "design_as_dict": "design_file",
+    "validate_design": "design_file",
+    "read_exposure_parameters": "design_file",
+    "check_design_against_bank": "design_check",
+    "require_design_fits_bank": "design_check",
+    "describe_design": "design_check",
+}
+
+
+def __getattr__(name):
+    # imported lazily because those modules import the classes above
+    if name in _LAZY:
+        import importlib
+
+        return getattr(importlib.import_module(f".{_LAZY[name]}", __package__), name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

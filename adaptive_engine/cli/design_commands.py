@@ -1,0 +1,38 @@
+"""``adaptive-engine design ...``: check a design file (against a bank) and show it in full."""
+
+from __future__ import annotations
+
+import click
+
+from ._common import main, report_errors
+
+
+@main.group()
+def design():
+    """Check and show test design files (TOML)."""
+
+
+@design.command("check")
+@click.argument("design_file", type=click.Path(dir_okay=False))
+@click.option("--bank", "bank_file", type=click.Path(dir_okay=False), default=None,
+              help="Item bank file (.csv, .json or .db) the design must fit.")
+@report_errors
+def check(design_file, bank_file):
+    """Validate DESIGN_FILE (and its fit to --bank); print what it means, one line per section.
+
+    Exit code 2 lists every problem as LOCATION: problem.
+    """
+    from ..design_check import check_bank_file
+
+    for line in check_bank_file(design_file, bank_file):
+        click.echo(line)
+
+
+@design.command("show")
+@click.argument("design_file", type=click.Path(dir_okay=False))
+@report_errors
+def show(design_file):
+    """Print DESIGN_FILE with every default filled in, as TOML."""
+    from ..design_file import read_design, design_to_toml
+
+    click.echo(design_to_toml(read_design(design_file)), nl=False)
