@@ -141,11 +141,19 @@ def _atomic_write(path: Path, fill: Callable[[Path], None]) -> None:
     temp = Path(temp_name)
     try:
         fill(temp)
+        # mkstemp makes the file private (0600); give it the mode a plain open() would
+        os.chmod(temp, _default_file_mode())
         os.replace(temp, path)
     except BaseException:
         with contextlib.suppress(OSError):
             temp.unlink()
         raise
+
+
+def _default_file_mode() -> int:
+    umask = os.umask(0)
+    os.umask(umask)
+    return 0o666 & ~umask
 
 
 def _write_text(path: Path, text: str) -> None:

@@ -1,0 +1,264 @@
+"""Generate the demo item banks of two invented scenarios (bit-for-bit reproducible).
+
+Run ``python item_banks/make_demo_banks.py [OUT_DIR]`` (default: this folder).  It writes
+
+* ``meridian_valley_operator.csv`` / ``.json`` -- 500 dichotomous items of the fictional
+  Meridian Valley water-operator licensing exam;
+* ``staff_climate_survey.csv`` / ``.json`` -- 40 rated items (answers 0-4) of a fictional
+  staff-climate survey.
+
+Both banks are invented for demonstration only: they are not calibrated from any data and
+must never serve as a reference in tests.  Every draw comes from one
+``numpy.random.Generator`` per bank with a fixed seed, and every parameter is rounded to 3
+decimals (the precision calibration reports usually give), so the same numpy release
+regenerates identical files.
+
+Parameter distributions (plausible for operational banks, chosen by us):
+
+Meridian Valley operator exam (scaling D = 1.0, logistic metric)
+    * five content areas of 100 items each: source_water, treatment_processes,
+      distribution_systems, lab_and_monitoring, safety_and_regulations;
+    * models: 3PL for 80 % of the items (four-option multiple choice), 2PL for 10 %
+      (numeric-entry items, no guessing), 4PL for 10 % (items where able examinees slip);
+    * discrimination: log a ~ N(0.1, 0.3^2), so a has median about 1.1;
+    * difficulty: b ~ N(mu_area, 1) with area means -0.3 (safety), -0.1 (source water),
+      0 (distribution), 0.1 (treatment), 0.2 (lab): b ~ N(0, 1) overall;
+    * lower asymptote (3PL, 4PL): c ~ Beta(5, 17), mean 0.23, near 1/4 for four options;
+    * upper asymptote (4PL): d ~ Beta(38, 2), mean 0.95;
+    * 15 enemy groups (10 pairs, 5 triples) of near-duplicate items inside one area, drawn
+      with difficulties close to the group's first item (b + N(0, 0.15^2));
+    * 10 item sets of 3-5 items sharing a scenario (a plant schematic, a lab report, a
+      distribution map), in the treatment, distribution and lab areas;
+    * 20 pretest items (status ``pretest``) drawn from items in no set and no enemy group.
+
+Staff-climate survey (scaling D = 1.0; categories 0 = strongly disagree .. 4 = strongly agree)
+    * four areas of 10 items: workload, team_support, leadership, wellbeing;
+    * GRM for the even-numbered items, GPCM for the odd-numbered ones;
+    * GRM: log a ~ N(log 1.6, 0.25^2); thresholds = location + sorted(base + N(0, 0.15^2))
+      with location ~ N(-0.3, 0.5^2) and base = (-2.0, -0.8, 0.3, 1.5);
+    * GPCM: log a ~ N(log 1.0, 0.25^2); steps = location + base + N(0, 0.3^2), unsorted
+      (step reversals are legal in the GPCM).
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+if str(HERE.parent) not in sys.path:  # run as a script from a checkout
+    sys.path.insert(0, str(HERE.parent))
+
+from adaptive_engine.bank import ItemBank, bank_from_records  # noqa: E402
+from adaptive_engine.bank_io import write_bank  # noqa: E402
+
+OPERATOR_SEED = 20_240_611
+SURVEY_SEED = 20_240_612
+DECIMALS = 3
+
+OPERATOR_AREAS = {
+    # area: (id code, mean difficulty, topics)
+    "source_water": ("SRC", -0.1, [
+        "Aquifer recharge", "Well drawdown", "Reservoir turnover", "Intake screen fouling",
+        "Raw water turbidity", "Algal bloom response", "Watershed protection zone",
+        "Spring box maintenance", "Surface water intake siting", "Groundwater under influence",
+        "Well casing inspection", "Source water nitrate", "Iron and manganese in wells",
+        "Drought storage planning", "Stream flow measurement", "Wellhead sanitary seal",
+        "Raw water pump selection", "Seasonal temperature change", "Sediment in intakes",
+        "Source water sampling plan",
+    ]),
+    "treatment_processes": ("TRT", 0.1, [
+        "Chlorine contact time", "Coagulant dose", "Jar testing", "Flocculation mixing energy",
+        "Sedimentation basin loading", "Filter backwash", "Filter head loss",
+        "Breakpoint chlorination", "Chloramine ratio", "Ozone residual",
+        "UV dose", "pH adjustment with lime", "Corrosion control inhibitor",
+        "Fluoride feed", "Softening by lime", "Activated carbon for taste and odor",
+        "Membrane fouling", "Sludge handling", "Clearwell baffling", "Chemical feed pump calibration",
+    ]),
+    "distribution_systems": ("DST", 0.0, [
+        "Main flushing", "Cross-connection control", "Backflow preventer testing",
+        "Storage tank turnover", "Pressure zone boundaries", "Water hammer",
+        "Hydrant maintenance", "Valve exercising", "Main break repair",
+        "New main disinfection", "Service line materials", "Meter accuracy",
+        "Pipe roughness and head loss", "Booster pump station", "Chlorine residual decay",
+        "Dead-end mains", "Leak detection", "Tank coating inspection",
+        "Pressure transient monitoring", "Fire flow demand",
+    ]),
+    "lab_and_monitoring": ("LAB", 0.2, [
+        "Coliform sampling", "Chlorine residual test", "Turbidity meter calibration",
+        "pH meter calibration", "Sample holding times", "Chain of custody",
+        "Alkalinity titration", "Hardness titration", "Jar test records",
+        "Disinfection byproduct sampling", "Lead and copper sampling", "Quality control blanks",
+        "Online analyzer drift", "Heterotrophic plate count", "Sample bottle preservation",
+        "Monitoring schedule", "Reporting significant figures", "Conductivity measurement",
+        "Temperature compensation", "Laboratory safety glassware",
+    ]),
+    "safety_and_regulations": ("SAF", -0.3, [
+        "Chlorine gas leak response", "Confined space entry", "Lockout and tagout",
+        "Trench shoring", "Personal protective equipment", "Public notification",
+        "Boil water notice", "Operator certification renewal", "Safety data sheets",
+        "Chemical storage compatibility", "Emergency response plan", "Fall protection",
+        "Hearing protection", "Traffic control at work zones", "Electrical safety near pumps",
+        "Record retention", "Consumer confidence report", "Maximum contaminant levels",
+        "Treatment technique violations", "Ventilation of chemical rooms",
+    ]),
+}
+OPERATOR_ASPECTS = ("principle", "calculation", "troubleshooting", "operating limits",
+                    "field procedure")
+OPERATOR_SCENARIOS = {
+    "treatment_processes": ["Plant schematic: rapid mix to clearwell",
+                            "Plant schematic: filter gallery",
+                            "Plant schematic: chemical feed room",
+                            "Daily operating log: winter week"],
+    "distribution_systems": ["Distribution map: north pressure zone",
+                             "Distribution map: tank and booster station",
+                             "Main break work order"],
+    "lab_and_monitoring": ["Lab report: monthly bacteriological results",
+                           "Lab report: turbidity trend",
+                           "Sampling plan: new subdivision"],
+}
+ITEMS_PER_AREA = 100
+N_PRETEST = 20
+
+SURVEY_AREAS = {
+    "workload": [
+        "I can finish my work in normal hours", "My workload is spread fairly in the team",
+        "I rarely take work home", "Deadlines I am given are realistic",
+        "I have time to do my work carefully", "Interruptions seldom keep me from my tasks",
+        "I can take my breaks as planned", "The amount of overtime is reasonable",
+        "I have the tools I need to do my job", "Urgent requests are the exception, not the rule",
+    ],
+    "team_support": [
+        "Colleagues help when I am overloaded", "I can ask my team for advice at any time",
+        "New staff are made welcome", "We share information openly in the team",
+        "Disagreements in the team are settled fairly", "I trust the people I work with",
+        "My team celebrates good work", "I feel part of the team",
+        "Work is handed over well between shifts", "Team meetings are useful",
+    ],
+    "leadership": [
+        "My manager explains the reasons for decisions", "I get useful feedback on my work",
+        "My manager treats staff fairly", "I know what is expected of me",
+        "Leaders act on the results of staff surveys", "I can raise concerns without fear",
+        "My manager supports my development", "Changes are announced in good time",
+        "Leaders are visible in daily work", "My manager keeps promises",
+    ],
+    "wellbeing": [
+        "I feel rested at the start of the working week", "My job leaves energy for my private life",
+        "I seldom feel tense at work", "I would recommend this workplace to a friend",
+        "I feel safe at my workplace", "My work gives me a sense of achievement",
+        "I can take leave when I need it", "Stress at work is taken seriously here",
+        "I look forward to coming to work", "I see myself working here in two years",
+    ],
+}
+GRM_BASE = np.array([-2.0, -0.8, 0.3, 1.5])
+GPCM_BASE = np.array([-1.5, -0.5, 0.5, 1.5])
+
+
+def _round(x):
+    return float(np.round(float(x), DECIMALS))
+
+
+def _operator_item(rng: np.random.Generator, model: str, mean_b: float) -> dict:
+    rec = {"model": model, "a": _round(np.exp(rng.normal(0.1, 0.3))),
+           "b": _round(rng.normal(mean_b, 1.0)), "c": 0.0, "d": 1.0}
+    if model in ("3PL", "4PL"):
+        rec["c"] = _round(rng.beta(5, 17))
+    if model == "4PL":
+        rec["d"] = _round(rng.beta(38, 2))
+    return rec
+
+
+def make_operator_bank(seed: int = OPERATOR_SEED) -> ItemBank:
+    """The Meridian Valley water-operator exam bank (500 dichotomous items)."""
+    rng = np.random.default_rng(seed)
+    records = []
+    for area, (code, mean_b, topics) in OPERATOR_AREAS.items():
+        labels = [f"{t}: {aspect}" for t in topics for aspect in OPERATOR_ASPECTS]
+        order = rng.permutation(len(labels))
+        models = rng.choice(["3PL", "2PL", "4PL"], size=ITEMS_PER_AREA, p=[0.8, 0.1, 0.1])
+        for j in range(ITEMS_PER_AREA):
+            rec = _operator_item(rng, str(models[j]), mean_b)
+            rec.update(item_id=f"MV-{code}-{j + 1:03d}", area=area, item_set="",
+                       enemy_group=[], status="operational", label=labels[order[j]])
+            records.append(rec)
+    by_area = {area: [i for i, r in enumerate(records) if r["area"] == area]
+               for area in OPERATOR_AREAS}
+    taken: set[int] = set()
+
+    def free_items(area, k):
+        pool = [i for i in by_area[area] if i not in taken]
+        chosen = [int(i) for i in rng.choice(pool, size=k, replace=False)]
+        taken.update(chosen)
+        return chosen
+
+    # item sets: items that share a scenario, in the areas that have scenarios
+    set_number = 0
+    for area, scenarios in OPERATOR_SCENARIOS.items():
+        for scenario in scenarios:
+            set_number += 1
+            set_id = f"set_{OPERATOR_AREAS[area][0].lower()}_{set_number:02d}"
+            for i in free_items(area, int(rng.integers(3, 6))):
+                records[i]["item_set"] = set_id
+                records[i]["label"] = f"{scenario} - {records[i]['label']}"
+    # enemy groups: near-duplicates of a group's first item (same topic, close difficulty)
+    areas = list(OPERATOR_AREAS)
+    for g in range(15):
+        area = areas[g % len(areas)]
+        members = free_items(area, 2 if g < 10 else 3)
+        first = records[members[0]]
+        for n, i in enumerate(members):
+            records[i]["enemy_group"] = [f"enemy_{g + 1:02d}"]
+            if n:
+                records[i]["b"] = _round(first["b"] + rng.normal(0.0, 0.15))
+                records[i]["label"] = f"{first['label']} (variant {n})"
+    for i in free_items_any(rng, records, taken, N_PRETEST):
+        records[i]["status"] = "pretest"
+    return bank_from_records(records, scaling=1.0, name="meridian_valley_operator")
+
+
+def free_items_any(rng: np.random.Generator, records: list, taken: set, k: int) -> list[int]:
+    """``k`` items from the whole bank that are in no set and no enemy group, in bank order."""
+    pool = [i for i in range(len(records)) if i not in taken]
+    return sorted(int(i) for i in rng.choice(pool, size=k, replace=False))
+
+
+def make_survey_bank(seed: int = SURVEY_SEED) -> ItemBank:
+    """The staff-climate survey bank (40 items, GRM and GPCM, categories 0-4)."""
+    rng = np.random.default_rng(seed)
+    records = []
+    number = 0
+    for area, statements in SURVEY_AREAS.items():
+        for statement in statements:
+            number += 1
+            location = rng.normal(-0.3, 0.5)
+            if number % 2 == 0:
+                model = "GRM"
+                a = np.exp(rng.normal(np.log(1.6), 0.25))
+                thresholds = location + np.sort(GRM_BASE + rng.normal(0.0, 0.15, size=4))
+            else:
+                model = "GPCM"
+                a = np.exp(rng.normal(np.log(1.0), 0.25))
+                thresholds = location + GPCM_BASE + rng.normal(0.0, 0.3, size=4)
+            records.append({
+                "item_id": f"SC-{number:02d}", "model": model, "a": _round(a),
+                "thresholds": [_round(t) for t in thresholds], "area": area,
+                "status": "operational", "label": statement,
+            })
+    return bank_from_records(records, scaling=1.0, name="staff_climate_survey")
+
+
+def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
+    """Write the four demo bank files into ``out_dir``; returns their paths."""
+    out_dir = Path(out_dir)
+    written = []
+    for bank in (make_operator_bank(), make_survey_bank()):
+        for suffix in (".csv", ".json"):
+            written.append(write_bank(bank, out_dir / f"{bank.name}{suffix}"))
+    return written
+
+
+if __name__ == "__main__":
+    for path in make_demo_banks(sys.argv[1] if len(sys.argv) > 1 else HERE):
+        print(f"wrote {path}")
