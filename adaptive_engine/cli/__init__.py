@@ -14,3 +14,4 @@ from ._common import main  # noqa: F401  (the group every command module registe
 # Each import registers that module's commands on ``main``.
 from . import bank_commands  # noqa: F401,E402
 from . import design_commands  # noqa: F401,E402
+from . import score_commands  # noqa: F401,E402

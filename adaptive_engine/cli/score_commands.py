@@ -1,0 +1,55 @@
+"""``adaptive-engine score``: ability estimates for every person in a long response file."""
+
+from __future__ import annotations
+
+import csv
+import io
+
+import click
+
+from ..bank import load_bank
+from ..estimation import METHODS, score_responses
+from ..responses import read_responses
+from ._common import echo_json, main, report_errors
+
+SCORE_COLUMNS = ("person_id", "theta", "se", "n_items", "status")
+
+
+def _csv_text(records) -> str:
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(SCORE_COLUMNS)
+    for rec in records:
+        writer.writerow([
+            rec["person_id"], f"{rec['theta']:.6f}", f"{rec['se']:.6f}", rec["n_items"], rec["status"],
+        ])
+    return out.getvalue()
+
+
+@main.command("score")
+@click.argument("bank_file", metavar="BANK", type=click.Path(dir_okay=False))
+@click.argument("responses_file", metavar="RESPONSES", type=click.Path(dir_okay=False))
+@click.option("--method", type=click.Choice(METHODS), default="eap", show_default=True,
+              help="mle: maximum likelihood; map: posterior mode; eap: posterior mean; "
+                   "wle: Warm's weighted likelihood.")
+@click.option("--prior-mean", type=float, default=0.0, show_default=True,
+              help="Mean of the normal ability prior (map, eap; start values otherwise).")
+@click.option("--prior-sd", type=float, default=1.0, show_default=True,
+              help="Standard deviation of the normal ability prior.")
+@click.option("--format", "output_format", type=click.Choice(["csv", "json"]), default="csv",
+              show_default=True, help="Output format on stdout.")
+@report_errors
+def score(bank_file, responses_file, method, prior_mean, prior_sd, output_format):
+    """Estimate the ability of every person in RESPONSES on the item bank BANK.
+
+    RESPONSES is a long CSV with columns person_id,item_id,response.  Prints one row per
+    person: person_id, theta, se, n_items, status (see the estimation module for the
+    status values, e.g. all_lowest when the MLE sits at the lower bound).
+    """
+    bank = load_bank(bank_file)
+    table = read_responses(responses_file)
+    records = score_responses(bank, table, method, prior_mean=prior_mean, prior_sd=prior_sd)
+    if output_format == "json":
+        echo_json(records)
+    else:
+        click.echo(_csv_text(records), nl=False)
