@@ -15,6 +15,7 @@ import attrs
 import numpy as np
 
 from .bank import ItemBank
+from .estimation import test_information
 from .errors import AdaptiveEngineError
 
 #: Standard error below which an ability is taken as precisely measured (common practice).
@@ -23,15 +24,6 @@ DEFAULT_TARGET_SE = 0.3
 SCAN_RANGE = (-6.0, 6.0)
 SCAN_STEP = 0.01
 MAX_CURVE_POINTS = 100_001
-
-
-def _bank_information(bank: ItemBank, theta: np.ndarray, items: np.ndarray | None = None) -> np.ndarray:
-    """Summed Fisher information of ``items`` (all when None) at ``theta``, shape (G,).
-
-    Kept private and small until :mod:`adaptive_engine.estimation` offers the shared one.
-    """
-    table = bank.information_table(theta)
-    return table.sum(axis=0) if items is None else table[items].sum(axis=0)
 
 
 @attrs.frozen
@@ -135,7 +127,7 @@ def summarize_bank(bank: ItemBank, *, target_se: float = DEFAULT_TARGET_SE) -> B
     set_sizes = Counter(s for s in bank.item_set if s)
     grid = np.round(np.arange(SCAN_RANGE[0], SCAN_RANGE[1] + SCAN_STEP / 2, SCAN_STEP), 10)
     operational = np.flatnonzero(bank.status == "operational")
-    info = _bank_information(bank, grid, operational) if operational.size else np.zeros_like(grid)
+    info = test_information(bank, grid, operational) if operational.size else np.zeros_like(grid)
     return BankSummary(
         name=str(bank.name), n_items=len(bank), n_pretest=int(np.sum(bank.status == "pretest")),
         scaling=float(bank.scaling),
@@ -222,11 +214,8 @@ def curve_grid(start: float, stop: float, step: float) -> np.ndarray:
 def information_curves(bank: ItemBank, theta, *, by_area: bool = False) -> InformationCurves:
     """Test information of ``bank`` at ``theta`` (G,), optionally split by content area."""
     theta = np.asarray(theta, dtype=float)
-    total = _bank_information(bank, theta)
-    areas = {}
-    if by_area:
-        for code, area in enumerate(bank.areas):
-            areas[area] = _bank_information(bank, theta, np.flatnonzero(bank.area_index == code))
+    total = test_information(bank, theta)
+    areas = test_information(bank, theta, by_area=True) if by_area else {}
     return InformationCurves(theta=theta, information=total, by_area=areas)
 
 
