@@ -30,7 +30,7 @@ import numpy as np
 from scipy.stats import norm
 
 from . import models
-from .ability import posterior_mean_sd, posterior_weights
+from .ability import posterior_weights
 from .design import Stopping
 from .errors import AdaptiveEngineError
 
@@ -202,7 +202,12 @@ def predicted_se_reduction(log_post, grid, next_item_log_prob) -> np.ndarray:
     expected posterior variance cannot exceed the current one, and E[SD] <= sqrt(E[var])).
     This is the quantity :func:`stop_reasons` compares with ``stopping.se_reduction``.
     """
-    _, sd_now = posterior_mean_sd(log_post, grid)
+    # Row-wise sums rather than ability.posterior_mean_sd, whose matrix product may round
+    # differently with the batch size.
+    grid = np.asarray(grid, dtype=float)
+    w = posterior_weights(log_post)
+    mean = np.sum(w * grid, axis=-1)
+    sd_now = np.sqrt(np.maximum(np.sum(w * (grid - mean[..., None]) ** 2, axis=-1), 0.0))
     return sd_now - predicted_se_after(log_post, grid, next_item_log_prob)
 
 
