@@ -60,7 +60,7 @@ class Scoring:
     fixed_step: float = 0.7
     grid_min: float = -6.0
     grid_max: float = 6.0
-    grid_points: int = 241
+    grid_points: int = 121
 
 
 @attrs.frozen(kw_only=True)

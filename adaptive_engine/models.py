@@ -289,8 +289,27 @@ def _safe_ratio(num, den):
 
 def information(params: ItemParameters, theta) -> np.ndarray:
     """Fisher information ``sum_k P_k'^2 / P_k``, shape ``broadcast(params, theta)``."""
+    if params.family.size and not np.any(params.family):
+        return _dichotomous_information(params, theta)
     shape, _, p, dp, _ = _family_terms(params, theta, False)
     return _safe_ratio(dp**2, p).sum(axis=1).reshape(shape)
+
+
+def _dichotomous_information(params: ItemParameters, theta) -> np.ndarray:
+    """Information of 1PL-4PL items without the category axis (the kernel's hot path).
+
+    ``I = (D a (d - c) s t)^2 / (P1 P0)`` with ``s = 1 / (1 + exp(-z))``, ``t = 1 - s``,
+    ``P1 = c t + d s`` and ``P0 = (1 - c) t + (1 - d) s`` (no cancellation in 1 - P1).
+    """
+    theta = np.asarray(theta, dtype=float)
+    z = params.scaling * params.a * (theta - params.b)
+    s = expit(z)
+    t = expit(-z)
+    c, d = params.c, params.d
+    num = params.scaling * params.a * (d - c) * s * t
+    den = (c * t + d * s) * ((1.0 - c) * t + (1.0 - d) * s)
+    num = num * num
+    return np.divide(num, den, out=np.zeros(np.broadcast_shapes(num.shape, den.shape)), where=den > 1e-300)
 
 
 def expected_score(params: ItemParameters, theta) -> np.ndarray:
