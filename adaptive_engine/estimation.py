@@ -373,6 +373,9 @@ class _Sums(NamedTuple):
 
 def _derivative_sums(params, items, responses, theta) -> _Sums:
     """Row sums over answered items at ``theta`` (B,); ``items``, ``responses`` (B, L)."""
+    if items.shape[-1] == 0:
+        zero = np.zeros(items.shape[0])
+        return _Sums(zero, zero, zero, zero)
     p, dp, d2p = models.derivatives(params.take(items), theta[:, None], second=True)
     answered = responses >= 0
     idx = np.where(answered, responses, 0)[..., None]
