@@ -57,7 +57,9 @@ def posterior_mean_sd(log_post, grid) -> tuple[np.ndarray, np.ndarray]:
     """
     w = posterior_weights(log_post)
     grid = np.asarray(grid, dtype=float)
-    mean = w @ grid
+    # a row-wise sum, not w @ grid: the matrix product rounds differently with the batch
+    # size, and a batch of one must match the same row of a large batch bit for bit
+    mean = np.sum(w * grid, axis=-1)
     # centred second moment: E[t^2] - E[t]^2 loses digits for tight posteriors
     var = np.sum(w * (grid - mean[..., None]) ** 2, axis=-1)
     return mean, np.sqrt(np.maximum(var, 0.0))
