@@ -33,6 +33,8 @@ PROGRESSIVE = 4
 RANDOM_CRITERION = 5
 PRETEST = 6
 FIRST_ITEM = 7
+#: answers of simulated examinees (the simulation harness only; never a test decision)
+SIMULATED_ANSWER = 11
 
 
 def mix(x) -> np.ndarray:

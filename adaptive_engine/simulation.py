@@ -1,0 +1,385 @@
+"""The simulation driver: the decision kernel run for many synthetic examinees at once.
+
+The run is cut into chunks of examinees (10,000 by default).  Each chunk is one kernel
+batch: :func:`adaptive_engine.kernel.start` on the chunk, then rounds of simulated answers
+and :func:`adaptive_engine.kernel.answer` for the examinees still testing, then
+:func:`adaptive_engine.kernel.finish`.  Memory is bounded by the chunk size (the kernel
+holds a chunk x bank-size "used" mask), never by the number of examinees.
+
+Everything random is a function of the run seed and the examinee's index, so results do not
+depend on the chunk size or on how chunks are spread over workers:
+
+* examinee ``i`` gets the seed ``randomness.examinee_seeds(seed, n)[i]`` (recorded in
+  ``examinees.csv``); a live session started with that seed makes the same decisions;
+* true abilities are drawn once for the run (:mod:`adaptive_engine.examinees`);
+* the answer at position ``k`` is drawn with the uniform
+  ``randomness.uniforms(key_i, k, SIMULATED_ANSWER)`` against the category probabilities of
+  the *true* bank at the true ability.
+
+The true bank may differ from the operational bank the kernel selects and scores with
+(``true_bank``; or :func:`perturbed_bank`), which shows the effect of calibration error.
+"""
+
+from __future__ import annotations
+
+import itertools
+import uuid
+from collections import deque
+from concurrent.futures import Executor, ProcessPoolExecutor
+from typing import Callable, Iterator
+
+import attrs
+import numpy as np
+
+from . import kernel, models, randomness
+from .bank import ItemBank
+from .context import TestContext, build_context
+from .design import Design
+from .errors import AdaptiveEngineError, Problem
+
+#: Examinees per kernel batch.
+DEFAULT_CHUNK = 10_000
+
+
+class SimulationError(AdaptiveEngineError):
+    """A simulation request cannot be carried out (bad sizes, banks that do not match)."""
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class ChunkResult:
+    """Outcome of one chunk of examinees (``n`` examinees, ``L`` = longest possible test).
+
+    Attributes
+    ----------
+    start : int
+        Index of the chunk's first examinee in the run.
+    seeds : int64 (n,)
+        Examinee seeds (replay a live session with them).
+    true_theta : float (n,)
+    theta, se : float (n,)
+        Final estimate and its standard error (the design's final method).
+    n_scored, n_pretest : int (n,)
+    stop_reason : object (n,)
+    scaled_score : float (n,)
+        NaN where there is no estimate.
+    at_or_above : int8 (n, K)
+        Per cut score of the design: 1 at or above, 0 below, -1 no label.
+    items : int (n, L)
+        Bank rows in order of administration (pretest included), -1 padded.
+    responses : int (n, L)
+    scored : bool (n, L)
+    interim_theta, interim_se : float (n, L)
+        The interim estimate after each answer (NaN padded).
+    area_counts : int (n, A)
+        Scored items per content area (areas in ``bank.areas`` order).
+    administered : int (n_items,)
+        Times each item was given in the chunk.
+    offered : int (n_items,)
+        Times each item was chosen by the criterion: given, or withheld by the
+        Sympson-Hetter lottery (the "selected" count of Sympson & Hetter 1985).
+    """
+
+    start: int
+    seeds: np.ndarray
+    true_theta: np.ndarray
+    theta: np.ndarray
+    se: np.ndarray
+    n_scored: np.ndarray
+    n_pretest: np.ndarray
+    stop_reason: np.ndarray
+    scaled_score: np.ndarray
+    at_or_above: np.ndarray
+    items: np.ndarray
+    responses: np.ndarray
+    scored: np.ndarray
+    interim_theta: np.ndarray
+    interim_se: np.ndarray
+    area_counts: np.ndarray
+    administered: np.ndarray
+    offered: np.ndarray
+
+    @property
+    def size(self) -> int:
+        return int(self.seeds.shape[0])
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class SimulationResult:
+    """Per-examinee outcomes of a whole run (administrations are streamed, not kept).
+
+    Arrays have one entry per examinee (N,) or per item (n_items,); ``at_or_above`` is
+    (N, K) and ``area_counts`` (N, A), as in :class:`ChunkResult`.
+    """
+
+    design: Design
+    bank: ItemBank
+    seed: int
+    seeds: np.ndarray
+    true_theta: np.ndarray
+    theta: np.ndarray
+    se: np.ndarray
+    n_scored: np.ndarray
+    n_pretest: np.ndarray
+    stop_reason: np.ndarray
+    scaled_score: np.ndarray
+    at_or_above: np.ndarray
+    area_counts: np.ndarray
+    administered: np.ndarray
+    offered: np.ndarray
+
+    @property
+    def size(self) -> int:
+        return int(self.seeds.shape[0])
+
+
+def true_item_rows(bank: ItemBank, true_bank: ItemBank | None) -> np.ndarray:
+    """Row of each operational-bank item in the true bank, (n_items,).
+
+    Raises
+    ------
+    SimulationError
+        When the true bank lacks an item or gives it another number of categories.
+    """
+    if true_bank is None or true_bank is bank:
+        return np.arange(bank.n_items)
+    problems = []
+    rows = np.empty(bank.n_items, dtype=np.int64)
+    for i, iid in enumerate(bank.item_ids):
+        j = true_bank.index_of.get(iid)
+        if j is None:
+            problems.append(Problem(f"true bank, item {iid}", "the item is missing from the true bank"))
+            continue
+        if true_bank.n_categories[j] != bank.n_categories[i]:
+            problems.append(Problem(f"true bank, item {iid}",
+                                    f"has {true_bank.n_categories[j]} categories, the operational bank "
+                                    f"{bank.n_categories[i]}"))
+        rows[i] = j
+    if problems:
+        raise SimulationError(problems[:20])
+    return rows
+
+
+def perturbed_bank(bank: ItemBank, *, sd_a: float = 0.0, sd_b: float = 0.0, sd_c: float = 0.0,
+                   sd_thresholds: float = 0.0, seed: int = 0) -> ItemBank:
+    """A "true" bank: the bank's parameters plus normal errors of the given SDs.
+
+    Use the parameters' standard errors from calibration as SDs to see how calibration
+    error carries into the results.  Slopes stay positive (absolute value, at least 0.05),
+    lower asymptotes stay in [0, d), and category thresholds of graded items are re-sorted
+    so that they stay ordered.
+    """
+    for name, sd in (("sd_a", sd_a), ("sd_b", sd_b), ("sd_c", sd_c), ("sd_thresholds", sd_thresholds)):
+        if not np.isfinite(sd) or sd < 0:
+            raise SimulationError(f"{name} must be a finite number >= 0, got {sd}", "perturbation")
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed) % (1 << 63), 0xBA4C]))
+    n = bank.n_items
+    model = np.asarray(bank.model)
+    # only free parameters move: a 1PL keeps its common slope, a 2PL its zero asymptote
+    a = np.where(model == "1PL", bank.a, np.maximum(np.abs(bank.a + sd_a * rng.standard_normal(n)), 0.05))
+    b = bank.b + sd_b * rng.standard_normal(n)
+    guessing = np.isin(model, ("3PL", "4PL"))
+    c_new = np.clip(bank.c + sd_c * rng.standard_normal(n), 0.0, bank.d - 1e-3)
+    c = np.where(guessing, c_new, bank.c)
+    th = bank.thresholds + sd_thresholds * rng.standard_normal(bank.thresholds.shape)
+    graded = np.asarray(bank.model) == "GRM"
+    th[graded] = np.sort(th[graded], axis=1)  # NaN padding sorts to the end, where it was
+    return bank.evolve(a=a, b=b, c=c, thresholds=th)
+
+
+# -- one chunk ---------------------------------------------------------------------------
+
+def _draw_answers(true_params: models.ItemParameters, rows_true, theta, u) -> np.ndarray:
+    """Categories drawn by inverting the cumulative category probabilities, (R,)."""
+    p = models.probabilities(true_params.take(rows_true), theta)  # (R, C)
+    cum = np.cumsum(p, axis=1)
+    top = true_params.n_categories[rows_true] - 1
+    return np.minimum((cum < u[:, None]).sum(axis=1), top)
+
+
+def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank: ItemBank | None = None,
+              true_rows=None) -> ChunkResult:
+    """Simulate examinees ``start .. start + n - 1`` of a run (n = ``true_theta.size``).
+
+    Parameters
+    ----------
+    ctx : TestContext
+        The design on the operational bank.
+    seed : int
+        The run seed.
+    true_theta : float array, shape (n,)
+    true_bank : ItemBank, optional
+        Bank the answers are drawn from (default: the operational bank).
+    true_rows : int array, shape (n_items,), optional
+        :func:`true_item_rows` (computed when omitted).
+    """
+    bank = ctx.bank
+    true_theta = np.asarray(true_theta, dtype=float)
+    n = true_theta.shape[0]
+    truth = bank if true_bank is None else true_bank
+    if true_rows is None:
+        true_rows = true_item_rows(bank, true_bank)
+    true_params = truth.params
+    seeds = randomness.examinee_seeds(seed, n, start=start)
+    keys = randomness.stream_key(seeds)
+    state, picked = kernel.start(ctx, keys)
+    length = ctx.max_length
+    interim_theta = np.full((n, length), np.nan)
+    interim_se = np.full((n, length), np.nan)
+    offered = np.zeros(bank.n_items, dtype=np.int64)
+    _count_withheld(offered, picked)
+    while True:
+        rows = np.flatnonzero(~state.done)
+        if rows.size == 0:
+            break
+        pos = state.n_given[rows]
+        u = randomness.uniforms(state.keys[rows], pos, randomness.SIMULATED_ANSWER)
+        answers = _draw_answers(true_params, true_rows[state.pending[rows]], true_theta[rows], u)
+        picked = kernel.answer(ctx, state, rows, answers)
+        _count_withheld(offered, picked)
+        interim_theta[rows, pos] = state.theta[rows]
+        interim_se[rows, pos] = state.se[rows]
+    reports = kernel.finish(ctx, state, np.arange(n))
+    administered = np.bincount(state.items[state.items >= 0], minlength=bank.n_items)
+    cuts = ctx.design.reporting.cut_scores
+    at_or_above = np.full((n, len(cuts)), -1, dtype=np.int8)
+    for i, rep in enumerate(reports):
+        for k, cl in enumerate(rep["classifications"]):
+            if cl.get("label") is not None:
+                at_or_above[i, k] = 1 if cl["at_or_above"] else 0
+    return ChunkResult(
+        start=start, seeds=seeds, true_theta=true_theta,
+        theta=np.array([np.nan if r["theta"] is None else r["theta"] for r in reports]),
+        se=np.array([np.nan if r["se"] is None else r["se"] for r in reports]),
+        n_scored=state.n_scored.copy(), n_pretest=state.n_pretest.copy(),
+        stop_reason=state.stop_reason.copy(),
+        scaled_score=np.array([np.nan if r["scaled_score"] is None else r["scaled_score"] for r in reports],
+                              dtype=float),
+        at_or_above=at_or_above, items=state.items, responses=state.responses, scored=state.scored,
+        interim_theta=interim_theta, interim_se=interim_se, area_counts=state.area_counts,
+        administered=administered, offered=offered + administered,
+    )
+
+
+def _count_withheld(offered, picked) -> None:
+    if picked.withheld:
+        np.add.at(offered, np.array([i for _, i in picked.withheld], dtype=np.int64), 1)
+
+
+# -- the whole run -----------------------------------------------------------------------
+
+_CONTEXTS: dict = {}
+
+
+def _worker_chunk(token, design, bank, true_bank, seed, start, true_theta) -> ChunkResult:
+    """Run one chunk in a worker; the context is built once per worker process and run."""
+    ctx = _CONTEXTS.get(token)
+    if ctx is None:
+        _CONTEXTS.clear()  # one run at a time per worker: drop contexts of earlier runs
+        ctx = _CONTEXTS[token] = build_context(design, bank)
+    return run_chunk(ctx, seed=seed, start=start, true_theta=true_theta, true_bank=true_bank)
+
+
+def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank: ItemBank | None = None,
+                chunk_size: int = DEFAULT_CHUNK, executor: Executor | None = None,
+                workers: int = 1, ctx: TestContext | None = None) -> Iterator[ChunkResult]:
+    """Yield the chunks of a run in examinee order.
+
+    Parameters
+    ----------
+    true_theta : float array, shape (N,)
+        True abilities of all examinees.
+    executor : concurrent.futures.Executor, optional
+        Runs chunks in parallel (any object with ``submit`` returning futures, e.g. a
+        ``ProcessPoolExecutor`` or ``dask.distributed.Client.get_executor()``).
+    workers : int
+        With no executor, ``workers > 1`` starts a process pool of that size.
+    ctx : TestContext, optional
+        A context already built for (design, bank) (in-process runs only).
+    """
+    true_theta = np.asarray(true_theta, dtype=float)
+    total = true_theta.shape[0]
+    if chunk_size < 1:
+        raise SimulationError(f"chunk size must be >= 1, got {chunk_size}", "chunk_size")
+    if workers < 1:
+        raise SimulationError(f"workers must be >= 1, got {workers}", "--workers")
+    true_rows = true_item_rows(bank, true_bank)  # validate before any work starts
+    starts = range(0, total, chunk_size)
+    if executor is None and workers == 1:
+        ctx = ctx if ctx is not None else build_context(design, bank)
+        for s in starts:
+            yield run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size],
+                            true_bank=true_bank, true_rows=true_rows)
+        return
+    own = executor is None
+    pool = ProcessPoolExecutor(max_workers=workers) if own else executor
+    token = uuid.uuid4().hex
+    window = max(2, 2 * workers)  # chunks in flight: bounds memory at a few chunks
+    try:
+        pending: deque = deque()
+        it = iter(starts)
+        for s in itertools.islice(it, window):
+            pending.append(pool.submit(_worker_chunk, token, design, bank, true_bank, seed, s,
+                                       true_theta[s : s + chunk_size]))
+        while pending:
+            result = pending.popleft().result()
+            nxt = next(it, None)
+            if nxt is not None:
+                pending.append(pool.submit(_worker_chunk, token, design, bank, true_bank, seed, nxt,
+                                           true_theta[nxt : nxt + chunk_size]))
+            yield result
+    finally:
+        if own:
+            pool.shutdown(cancel_futures=True)
+
+
+def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank: ItemBank | None = None,
+             chunk_size: int = DEFAULT_CHUNK, executor: Executor | None = None, workers: int = 1,
+             on_chunk: Callable[[ChunkResult], None] | None = None,
+             progress: Callable[[int, int], None] | None = None,
+             ctx: TestContext | None = None) -> SimulationResult:
+    """Run the design for every examinee and collect their outcomes.
+
+    Parameters
+    ----------
+    design, bank : the operational design and bank (selection and scoring).
+    true_theta : float array, shape (N,)
+        True abilities (see :meth:`adaptive_engine.examinees.AbilitySpec.draw`).
+    seed : int
+        Run seed: examinee seeds, test decisions and simulated answers derive from it.
+    true_bank : ItemBank, optional
+        Bank the answers are drawn from (same item ids), default ``bank``.
+    on_chunk : callable, optional
+        Called with each :class:`ChunkResult` in examinee order (e.g. to stream the
+        administrations to a file); the chunk is dropped afterwards.
+    progress : callable, optional
+        Called as ``progress(done, total)`` after each chunk.
+
+    Returns
+    -------
+    SimulationResult
+    """
+    true_theta = np.asarray(true_theta, dtype=float)
+    if true_theta.ndim != 1 or true_theta.size == 0:
+        raise SimulationError("at least one examinee is needed", "--examinees")
+    if not np.all(np.isfinite(true_theta)):
+        raise SimulationError("true abilities must be finite numbers", "--theta")
+    parts: list[dict] = []
+    administered = np.zeros(bank.n_items, dtype=np.int64)
+    offered = np.zeros(bank.n_items, dtype=np.int64)
+    done = 0
+    keep = ("seeds", "true_theta", "theta", "se", "n_scored", "n_pretest", "stop_reason",
+            "scaled_score", "at_or_above", "area_counts")
+    for chunk in iter_chunks(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
+                             chunk_size=chunk_size, executor=executor, workers=workers, ctx=ctx):
+        if on_chunk is not None:
+            on_chunk(chunk)
+        parts.append({k: getattr(chunk, k) for k in keep})
+        administered += chunk.administered
+        offered += chunk.offered
+        done += chunk.size
+        if progress is not None:
+            progress(done, true_theta.size)
+    joined = {k: np.concatenate([p[k] for p in parts], axis=0) for k in keep}
+    return SimulationResult(design=design, bank=bank, seed=int(seed), administered=administered,
+                            offered=offered, **joined)
+
