@@ -687,7 +687,13 @@ def design_as_dict(design: Design) -> dict:
     a session can be rebuilt by :func:`design_from_dict` without its files.
     """
     out = {name: _plain(getattr(design, name)) for name in SECTIONS}
+    # keys that the file forbids together are left out (None), as in the TOML writer
+    if design.opening.random_theta is not None:
+        out["opening"]["theta"] = None
     areas = out["blueprint"].pop("areas")
+    for area in areas:
+        if area["share"] is not None:
+            area["min"] = area["max"] = None
     out["blueprint"]["areas"] = {a.pop("name"): a for a in areas}
     out["source"] = design.source
     out["exposure_parameters"] = None if design.exposure_parameters is None else dict(design.exposure_parameters)
