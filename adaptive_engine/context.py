@@ -105,6 +105,7 @@ class TestContext:
     item_set: np.ndarray  # (n,) int set code, -1 for none
     set_members: tuple  # set code -> array of items in bank order
     set_area_counts: np.ndarray  # (S, A)
+    set_groups: np.ndarray  # (S, W) enemy-group codes of each set's members, padded with n_groups
     exposure_k: np.ndarray | None  # (n,) Sympson-Hetter parameters
     stratum: np.ndarray | None  # (n,) a-stratum of each item
     difficulty: np.ndarray  # (n,) b, or mean threshold for polytomous items
@@ -163,11 +164,19 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
     # item sets
     set_names = [s for s in dict.fromkeys(bank.item_set) if s]
     set_code = {s: i for i, s in enumerate(set_names)}
-    item_set = np.array([set_code.get(s, -1) if design.blueprint.item_sets else -1 for s in bank.item_set], dtype=np.int64)
+    # sets bind operational items; pretest items are seeded one at a time
+    item_set = np.array([
+        set_code.get(s, -1) if design.blueprint.item_sets and status == "operational" else -1
+        for s, status in zip(bank.item_set, bank.status)
+    ], dtype=np.int64)
     members = tuple(np.flatnonzero(item_set == s) for s in range(len(set_names)))
     set_area_counts = np.zeros((len(set_names), a_count), dtype=np.int64)
     for s, mem in enumerate(members):
         np.add.at(set_area_counts[s], bank.area_index[mem], 1)
+    set_group_lists = [sorted({int(g) for g in item_groups[mem].ravel() if g < len(names)}) for mem in members]
+    set_groups = np.full((len(members), max((len(x) for x in set_group_lists), default=0) or 1), len(names), dtype=np.int64)
+    for s_i, codes in enumerate(set_group_lists):
+        set_groups[s_i, : len(codes)] = codes
     # Sympson-Hetter parameters
     exposure_k = None
     if design.exposure.method == "sympson_hetter":
@@ -178,11 +187,10 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
             raise DesignError([Problem("[exposure] parameters", f"item {iid!r} is not in the bank") for iid in unknown[:20]])
         for iid, value in params.items():
             exposure_k[bank.index_of[iid]] = value
-    difficulty = np.where(
-        np.isnan(bank.b),
-        np.nanmean(np.where(np.isnan(bank.thresholds), np.nan, bank.thresholds), axis=1) if bank.thresholds.shape[1] else 0.0,
-        bank.b,
-    )
+    difficulty = bank.b.copy()
+    poly = np.isnan(difficulty)
+    if poly.any():  # polytomous items: the mean of their thresholds
+        difficulty[poly] = np.nanmean(bank.thresholds[poly], axis=1)
     stratum = None
     if design.selection.criterion == "a_stratified":
         stratum = _a_strata(bank.a, difficulty, operational, design.selection.strata, design.selection.b_blocking)
@@ -194,7 +202,7 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
         pretest_items=np.flatnonzero(~operational), area=bank.area_index, n_areas=a_count,
         area_min=area_min, area_max=area_max, area_share=share, balanced=balanced,
         item_groups=item_groups, n_groups=len(names), item_set=item_set, set_members=members,
-        set_area_counts=set_area_counts, exposure_k=exposure_k, stratum=stratum,
+        set_area_counts=set_area_counts, set_groups=set_groups, exposure_k=exposure_k, stratum=stratum,
         difficulty=difficulty,
         max_length=design.stopping.max_items + len(design.blueprint.pretest_positions),
     )

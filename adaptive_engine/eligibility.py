@@ -43,6 +43,10 @@ def set_fits(ctx: TestContext, state: KernelState, rows: np.ndarray, open_area: 
     fits = sizes[None, :] <= slots[:, None]
     room = ctx.area_max[None, None, :] - state.area_counts[rows][:, None, :]  # (R, 1, A)
     fits &= np.all(ctx.set_area_counts[None, :, :] <= room, axis=2)
+    # no member of the set may be an enemy of an item already given
+    if ctx.n_groups:
+        hit = np.take_along_axis(state.blocked_groups[rows], ctx.set_groups.reshape(1, -1).repeat(rows.size, 0), axis=1)
+        fits &= ~hit.reshape(rows.size, *ctx.set_groups.shape).any(axis=2)
     # a set may be entered only through an open area
     touches_open = (ctx.set_area_counts[None, :, :] > 0) & open_area[:, None, :]
     fits &= touches_open.any(axis=2)

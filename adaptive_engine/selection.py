@@ -317,9 +317,10 @@ def _kl_values(ctx, state, rows) -> np.ndarray:
     log_p0 = models.log_probabilities(params, theta[:, None])  # (R, n, C)
     p0 = np.exp(log_p0)
     total = np.zeros((rows.size, ctx.n_items))
+    finite = np.isfinite(log_p0)  # categories an item does not have contribute nothing
     for x, w in zip(nodes, weights):
         log_p1 = models.log_probabilities(params, (theta + x * delta)[:, None])
-        terms = np.where(p0 > 0, p0 * (log_p0 - log_p1), 0.0)
+        terms = np.where(finite, p0 * (np.where(finite, log_p0, 0.0) - np.where(finite, log_p1, 0.0)), 0.0)
         total += w * delta[:, None] * terms.sum(axis=2)
     return total
 
