@@ -179,33 +179,43 @@ def final_reports(design: Design, *, theta, se, status, n_scored, n_pretest, sto
                 else _column("sprt_decision", sprt_decision, b, np.int64))
 
     z = norm.ppf(0.5 + 0.5 * rep.confidence)
+    scale = rep.scale
     with np.errstate(invalid="ignore"):
         lo = theta - z * se
         hi = theta + z * se
-    scale = rep.scale
+        raw = scale.intercept + scale.slope * theta
+        end_a = scale.intercept + scale.slope * lo
+        end_b = scale.intercept + scale.slope * hi
+        # a negative slope swaps the ends of the scaled interval
+        first = np.where(scale.slope > 0, end_a, end_b)
+        last = np.where(scale.slope > 0, end_b, end_a)
+    # plain Python values from here on: per-element work on numpy scalars is far slower
+    cols = [x.tolist() for x in (theta, se, lo, hi, raw, first, last, lz_star, n_scored,
+                                 n_pretest, sprt_dec)]
     threshold = float(rep.person_fit_threshold)
+    method = design.final_method
+    confidence = float(rep.confidence)
     reports = []
-    for i in range(b):
-        ends = sorted(scale.intercept + scale.slope * np.array([lo[i], hi[i]]))
-        fit = _float_or_none(lz_star[i])
+    for i, (th, s, lo_i, hi_i, raw_i, first_i, last_i, fit, n_sc, n_pre, dec) in enumerate(
+            zip(*cols)):
+        fit = _float_or_none(fit)
         reports.append({
-            "theta": _float_or_none(theta[i]),
-            "se": _float_or_none(se[i]),
+            "theta": _float_or_none(th),
+            "se": _float_or_none(s),
             "estimate_status": str(status[i]),
-            "method": design.final_method,
-            "confidence": float(rep.confidence),
-            "interval": [_float_or_none(lo[i]), _float_or_none(hi[i])],
-            "scaled_score": _clip_scaled(scale, scale.intercept + scale.slope * theta[i]),
-            "scaled_se": _float_or_none(abs(scale.slope) * se[i]),
-            "scaled_interval": [_clip_scaled(scale, e) for e in ends],
-            "classifications": _classifications(design, float(theta[i]), float(lo[i]),
-                                                float(hi[i]), int(sprt_dec[i])),
-            "items": {"scored": int(n_scored[i]), "pretest": int(n_pretest[i])},
+            "method": method,
+            "confidence": confidence,
+            "interval": [_float_or_none(lo_i), _float_or_none(hi_i)],
+            "scaled_score": _clip_scaled(scale, raw_i),
+            "scaled_se": _float_or_none(abs(scale.slope) * s),
+            "scaled_interval": [_clip_scaled(scale, first_i), _clip_scaled(scale, last_i)],
+            "classifications": _classifications(design, th, lo_i, hi_i, dec),
+            "items": {"scored": n_sc, "pretest": n_pre},
             "stop_reason": str(stop_reason[i]),
             "person_fit": {
                 "lz_star": fit,
                 "threshold": threshold,
-                "flagged": None if fit is None else bool(fit < threshold),
+                "flagged": None if fit is None else fit < threshold,
             },
         })
     return reports

@@ -26,6 +26,8 @@ out of time before the minimum (usually: end the session without a score).
 
 from __future__ import annotations
 
+import weakref
+
 import numpy as np
 from scipy.stats import norm
 
@@ -74,7 +76,14 @@ def _padded_entries(params: models.ItemParameters, items, responses):
         raise AdaptiveEngineError(f"item row index out of range for a bank of {n_bank} items",
                                   "stopping")
     given = (items >= 0) & (responses >= 0)
-    return np.where(given, items, 0), np.where(given, responses, -1), given
+    rows = np.where(given, items, 0)
+    bad = given & (responses >= params.n_categories[rows])
+    if np.any(bad):
+        r, j = np.argwhere(bad)[0]
+        raise AdaptiveEngineError(
+            f"response {responses[r, j]} is outside the categories of bank row {items[r, j]}",
+            f"examinee row {r}, position {j + 1}")
+    return rows, np.where(given, responses, -1), given
 
 
 def sprt_log_likelihood_ratio(params: models.ItemParameters, items, responses, *, cut,
@@ -101,14 +110,42 @@ def sprt_log_likelihood_ratio(params: models.ItemParameters, items, responses, *
         Positive values favour "above the cut".
     """
     rows, resp, given = _padded_entries(params, items, responses)
-    cut = np.asarray(cut, dtype=float)[..., None]
-    delta = np.asarray(indifference, dtype=float)[..., None]
-    if np.any(delta <= 0):
+    cut = np.asarray(cut, dtype=float)
+    delta = np.asarray(indifference, dtype=float)
+    if np.any(~(delta > 0)):
         raise AdaptiveEngineError("indifference must be positive", "[stopping.sprt] indifference")
-    p = params.take(rows)
-    upper = models.log_likelihood(p, cut + delta, resp)
-    lower = models.log_likelihood(p, cut - delta, resp)
-    return np.sum(np.where(given, upper - lower, 0.0), axis=-1)
+    if cut.ndim == 0 and delta.ndim == 0:
+        # One (cut, delta) for the batch -- the kernel's case: look the per-item, per-category
+        # ratios up in a table built once per bank, so each step costs one gather per answer.
+        table = _llr_table(params, float(cut), float(delta))
+        terms = table[rows, np.clip(resp, 0, None)]
+    else:
+        p = params.take(rows)
+        terms = (models.log_likelihood(p, cut[..., None] + delta[..., None], resp)
+                 - models.log_likelihood(p, cut[..., None] - delta[..., None], resp))
+    return np.sum(np.where(given, terms, 0.0), axis=-1)
+
+
+# Tables of log P(k | cut + delta) - log P(k | cut - delta), shape (n, C), per parameter set.
+# Keyed weakly on the (frozen) ItemParameters object so that a bank's tables go with it.
+_LLR_TABLES: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()
+
+
+def _llr_table(params: models.ItemParameters, cut: float, delta: float) -> np.ndarray:
+    per_params = _LLR_TABLES.setdefault(params, {})
+    key = (cut, delta)
+    table = per_params.get(key)
+    if table is None:
+        with np.errstate(invalid="ignore"):
+            table = (models.log_probabilities(params, np.full(params.a.shape, cut + delta))
+                     - models.log_probabilities(params, np.full(params.a.shape, cut - delta)))
+        # absent categories give -inf - -inf; they are never observed (validated upstream)
+        table = np.where(np.isfinite(table), table, 0.0)
+        table.setflags(write=False)
+        if len(per_params) >= 16:  # designs rarely use more than one or two cuts
+            per_params.clear()
+        per_params[key] = table
+    return table
 
 
 def sprt_bounds(*, alpha: float, beta: float) -> tuple[float, float]:
@@ -184,15 +221,25 @@ def predicted_se_after(log_post, grid, next_item_log_prob) -> np.ndarray:
     grid = np.asarray(grid, dtype=float)
     w = posterior_weights(log_post)  # (B, G)
     lp = np.asarray(next_item_log_prob, dtype=float)
-    # Categories on a contiguous last-but-one axis so that every sum runs over the last axis.
-    joint = np.ascontiguousarray(np.moveaxis(w[..., :, None] * np.exp(lp), -1, -2))  # (B,C,G)
-    m = np.sum(joint, axis=-1)  # (B, C) predictive probabilities
-    safe_m = np.where(m > 0, m, 1.0)
-    post = joint / safe_m[..., None]
-    mean = np.sum(post * grid, axis=-1)
-    var = np.sum(post * (grid - mean[..., None]) ** 2, axis=-1)
-    sd = np.sqrt(np.maximum(var, 0.0))
-    return np.sum(np.where(m > 0, m * sd, 0.0), axis=-1) / np.sum(m, axis=-1)
+    total = np.zeros(w.shape[:-1])
+    weighted_sd = np.zeros(w.shape[:-1])
+    # One (B, G) pass per category (C is small) keeps memory flat and every sum row-wise.
+    for k in range(lp.shape[-1]):
+        joint = w * np.exp(lp[..., k])
+        m, sd = _weighted_mean_sd(joint, grid)
+        total += m
+        weighted_sd += np.where(m > 0, m * sd, 0.0)
+    return weighted_sd / total
+
+
+def _weighted_mean_sd(weights, grid):
+    """Total, and SD of ``grid`` under unnormalised ``weights`` (B, G); row-wise sums only."""
+    m = np.sum(weights, axis=-1)
+    safe = np.where(m > 0, m, 1.0)
+    mean = np.sum(weights * grid, axis=-1) / safe
+    # centred second moment: E[t^2] - E[t]^2 loses digits for tight posteriors
+    var = np.sum(weights * (grid - mean[..., None]) ** 2, axis=-1) / safe
+    return m, np.sqrt(np.maximum(var, 0.0))
 
 
 def predicted_se_reduction(log_post, grid, next_item_log_prob) -> np.ndarray:
@@ -202,12 +249,7 @@ def predicted_se_reduction(log_post, grid, next_item_log_prob) -> np.ndarray:
     expected posterior variance cannot exceed the current one, and E[SD] <= sqrt(E[var])).
     This is the quantity :func:`stop_reasons` compares with ``stopping.se_reduction``.
     """
-    # Row-wise sums rather than ability.posterior_mean_sd, whose matrix product may round
-    # differently with the batch size.
-    grid = np.asarray(grid, dtype=float)
-    w = posterior_weights(log_post)
-    mean = np.sum(w * grid, axis=-1)
-    sd_now = np.sqrt(np.maximum(np.sum(w * (grid - mean[..., None]) ** 2, axis=-1), 0.0))
+    _, sd_now = _weighted_mean_sd(posterior_weights(log_post), np.asarray(grid, dtype=float))
     return sd_now - predicted_se_after(log_post, grid, next_item_log_prob)
 
 
