@@ -216,3 +216,21 @@ def test_stream_keys_are_reproducible_and_distinct():
     from scipy import stats
 
     assert stats.kstest(u, "uniform").pvalue > 1e-3
+
+
+def test_shadow_tests_meet_the_blueprint_exactly():
+    # van der Linden & Reese (1998): every shadow test meets all constraints, so a test that
+    # runs to its full length meets the area minimums and maximums, whatever the answers.
+    # Oracle for the assembly: scipy.optimize.milp (HiGHS).
+    bank = structured_bank(6, 60, pretest=0)
+    rules = (AreaRule(name="alpha", min=4, max=4), AreaRule(name="beta", min=2, max=3),
+             AreaRule(name="gamma", min=3, max=4))
+    d = Design(blueprint=Blueprint(areas=rules, shadow_test=True), stopping=Stopping(min_items=10, max_items=10))
+    ctx = build_context(d, bank)
+    state, _ = run_batch(ctx, np.array([-1.5, 0.0, 2.0]), seed=9)
+    _check_invariants(ctx, state, d)
+    for r in range(3):
+        items = state.items[r, : state.n_given[r]]
+        counts = {a: int(np.sum(bank.area[items] == a)) for a in AREAS}
+        for rule in rules:
+            assert rule.min <= counts[rule.name] <= rule.max
