@@ -341,3 +341,23 @@ def test_batch_rows_are_bit_identical_to_single_examinee_calls():
                                        **{k: v[s] for k, v in kw.items()})
         assert single.tolist() == reasons[s].tolist()
     assert set(reasons) - {""} <= set(stopping.STOP_REASONS)
+
+
+def test_table_lookup_and_direct_likelihoods_agree_and_bad_answers_are_named():
+    # The batch-wide (cut, delta) path reads a per-item table; per-examinee cuts take the
+    # direct likelihood path.  Both are the same sum of Reckase's (1983) log ratios.
+    rng = np.random.default_rng(8)
+    params = _mixed_params(rng)
+    items, responses, _ = _padded_batch(rng, params, 50, 8)
+    table_path = stopping.sprt_log_likelihood_ratio(params, items, responses, cut=-0.3,
+                                                    indifference=0.25)
+    direct = stopping.sprt_log_likelihood_ratio(params, items, responses,
+                                                cut=np.full(50, -0.3), indifference=0.25)
+    np.testing.assert_allclose(table_path, direct, rtol=1e-12, atol=1e-12)
+    bad = responses.copy()
+    bad[3, 0] = 7
+    items[3, 0] = 0
+    with pytest.raises(AdaptiveEngineError, match="examinee row 3, position 1"):
+        stopping.sprt_log_likelihood_ratio(params, items, bad, cut=0.0, indifference=0.2)
+    with pytest.raises(AdaptiveEngineError, match="indifference"):
+        stopping.sprt_log_likelihood_ratio(params, items, responses, cut=0.0, indifference=0.0)
