@@ -409,12 +409,13 @@ def _estimating_function(method, sums: _Sums, theta, mean, sd):
 def _solve(evaluate, start, lo, hi):
     """Per-row root of a function g that is positive below and negative above its root.
 
-    Starting at ``start`` the solver moves uphill (towards the sign of g): the bracket is
-    [start, hi] when g(start) > 0 and [lo, start] when g(start) < 0; if g keeps its sign at
-    the far end, the answer is that bound.  Inside the bracket it takes Newton steps; a step
-    that would leave the bracket, or that does not at least halve the step before last, is
-    replaced by halving the bracket (so every row converges), and the bracket shrinks with
-    each evaluation.  Rows freeze once converged.
+    From ``start`` the solver walks uphill (towards the sign of g) in doubling steps
+    (0.25, 0.5, 1, 2, ... away from the start) until g changes sign, which brackets the
+    nearest root in that direction; if g keeps its sign all the way to the bound, the
+    answer is that bound.  Inside the bracket it takes Newton steps; a step that would
+    leave the bracket, or that does not at least halve the step before last, is replaced by
+    halving the bracket (so every row converges), and the bracket shrinks with each
+    evaluation.  Rows freeze once converged.
 
     Parameters
     ----------
@@ -428,19 +429,40 @@ def _solve(evaluate, start, lo, hi):
     """
     n = start.shape[0]
     x = np.clip(start, lo, hi).astype(float)
-    everyone = np.arange(n)
-    g, s = evaluate(everyone, x)
-    uphill = g > 0
-    far = np.where(uphill, hi, lo)
-    g_far, _ = evaluate(everyone, far)
+    g, s = evaluate(np.arange(n), x)
+    direction = np.sign(g)
     code = np.zeros(n, dtype=np.int64)
-    at_upper = uphill & (g_far >= 0)
-    at_lower = (g < 0) & (g_far <= 0)
-    code[at_upper], code[at_lower] = 2, 1
-    x = np.where(at_upper, hi, np.where(at_lower, lo, x))
-    a = np.where(uphill, x, lo)  # g(a) > 0
-    b = np.where(uphill, hi, x)  # g(b) < 0
-    active = ~(at_upper | at_lower) & (g != 0)
+    # near: last point where g still has the starting sign; far: first point past the root
+    near, g_near, s_near = x.copy(), g.copy(), s.copy()
+    far, g_far, s_far = x.copy(), g.copy(), s.copy()
+    searching = direction != 0
+    offset = 0.25
+    while searching.any():
+        rows = np.flatnonzero(searching)
+        dr = direction[rows]
+        trial = np.clip(x[rows] + dr * offset, lo, hi)
+        g_t, s_t = evaluate(rows, trial)
+        flipped = dr * g_t <= 0
+        keep = ~flipped
+        near[rows[keep]], g_near[rows[keep]], s_near[rows[keep]] = trial[keep], g_t[keep], s_t[keep]
+        far[rows[flipped]], g_far[rows[flipped]], s_far[rows[flipped]] = trial[flipped], g_t[flipped], s_t[flipped]
+        bound = np.where(dr > 0, hi, lo)
+        at_bound = keep & (trial == bound)
+        code[rows[at_bound]] = np.where(dr[at_bound] > 0, 2, 1)
+        searching[rows[flipped | at_bound]] = False
+        offset *= 2.0
+    bracketed = (code == 0) & (direction != 0)
+    exact = bracketed & (g_far == 0)
+    # Newton starts from the end of the bracket where |g| is smaller
+    use_far = np.abs(g_far) < np.abs(g_near)
+    x = np.where(code == 1, lo, np.where(code == 2, hi, np.where(bracketed & use_far, far, near)))
+    x = np.where(exact, far, x)
+    g = np.where(use_far, g_far, g_near)
+    s = np.where(use_far, s_far, s_near)
+    up = direction > 0
+    a = np.where(up, near, far)  # g(a) > 0
+    b = np.where(up, far, near)  # g(b) < 0
+    active = bracketed & ~exact
     step = b - a
     step_before = step.copy()
     with np.errstate(divide="ignore", invalid="ignore"):
