@@ -15,3 +15,5 @@ from ._common import main  # noqa: F401  (the group every command module registe
 from . import bank_commands  # noqa: F401,E402
 from . import design_commands  # noqa: F401,E402
 from . import score_commands  # noqa: F401,E402
+from . import simulate_commands  # noqa: F401,E402
+from . import session_commands  # noqa: F401,E402

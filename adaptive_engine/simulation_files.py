@@ -1,0 +1,214 @@
+"""A simulation study written to a folder: summary, tables, administrations, report.
+
+:func:`run_study` is what ``adaptive-engine simulate`` calls.  Files are written into a
+hidden staging folder inside the output folder and moved into place only when the whole
+run succeeded, so a failed run leaves nothing half-written.
+
+Files
+-----
+``summary.json``
+    :func:`adaptive_engine.metrics.summarize` plus the run's settings.
+``examinees.csv``
+    ``examinee,seed,true_theta,theta,se,n_items,n_pretest,stop_reason,scaled_score`` and
+    one ``class_<cut>`` column per cut score (``seed`` replays the examinee as a live
+    session).
+``administrations.csv``
+    ``examinee,position,item_id,response,theta,se,scored`` in order of administration
+    (theta, se: the interim estimate after that answer); streamed chunk by chunk.
+``items.csv``
+    ``item_id,exposure_rate,administered,selection_rate,area,status``.
+``conditional.csv``
+    metrics by ability bin.
+``report.html``
+    self-contained report (:mod:`adaptive_engine.report_html`).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import os
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Callable
+
+import attrs
+import numpy as np
+
+from . import metrics
+from .bank import ItemBank
+from .design import Design
+from .design_check import require_design_fits_bank
+from .examinees import AbilitySpec
+from .simulation import DEFAULT_CHUNK, ChunkResult, SimulationResult, simulate, true_item_rows
+
+FILES = ("summary.json", "examinees.csv", "administrations.csv", "items.csv", "conditional.csv", "report.html")
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class Study:
+    """A finished study: the result, its summary and where the files went."""
+
+    result: SimulationResult
+    summary: dict
+    conditional: list
+    out_dir: Path | None
+
+
+def _num(x, digits: int = 6) -> str:
+    x = float(x)
+    return "" if not math.isfinite(x) else repr(round(x, digits))
+
+
+class _AdministrationWriter:
+    """Streams each chunk's administrations to ``administrations.csv``."""
+
+    def __init__(self, path: Path, bank: ItemBank):
+        self.handle = open(path, "w", encoding="utf-8", newline="")
+        self.handle.write("examinee,position,item_id,response,theta,se,scored\n")
+        self.ids = np.asarray(bank.item_ids, dtype=object)
+
+    def __call__(self, chunk: ChunkResult) -> None:
+        given = chunk.items >= 0
+        ex, pos = np.nonzero(given)
+        items = chunk.items[given]
+        resp = chunk.responses[given]
+        th = [repr(t) if t == t else "" for t in np.round(chunk.interim_theta[given], 6).tolist()]
+        se = [repr(t) if t == t else "" for t in np.round(chunk.interim_se[given], 6).tolist()]
+        scored = np.where(chunk.scored[given], "1", "0")
+        ids = self.ids[items]
+        lines = [f"{e},{p},{i},{r},{t},{s},{sc}" for e, p, i, r, t, s, sc in
+                 zip((ex + chunk.start).tolist(), (pos + 1).tolist(), ids, resp.tolist(), th, se, scored)]
+        if lines:
+            self.handle.write("\n".join(lines))
+            self.handle.write("\n")
+
+    def close(self) -> None:
+        self.handle.close()
+
+
+def examinees_csv(result: SimulationResult) -> str:
+    """Text of ``examinees.csv``."""
+    cuts = result.design.reporting.cut_scores
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["examinee", "seed", "true_theta", "theta", "se", "n_items", "n_pretest", "stop_reason",
+                "scaled_score"] + [f"class_{c.name}" for c in cuts])
+    for i in range(result.size):
+        labels = []
+        for k, c in enumerate(cuts):
+            v = result.at_or_above[i, k]
+            labels.append(c.above if v == 1 else c.below if v == 0 else "")
+        w.writerow([i, int(result.seeds[i]), _num(result.true_theta[i]), _num(result.theta[i]),
+                    _num(result.se[i]), int(result.n_scored[i]), int(result.n_pretest[i]),
+                    result.stop_reason[i], _num(result.scaled_score[i])] + labels)
+    return buf.getvalue()
+
+
+def items_csv(result: SimulationResult) -> str:
+    """Text of ``items.csv``."""
+    bank = result.bank
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["item_id", "exposure_rate", "administered", "selection_rate", "area", "status"])
+    n = max(result.size, 1)
+    for i, iid in enumerate(bank.item_ids):
+        w.writerow([iid, _num(result.administered[i] / n), int(result.administered[i]),
+                    _num(result.offered[i] / n), bank.area[i], bank.status[i]])
+    return buf.getvalue()
+
+
+def rows_csv(rows: list[dict]) -> str:
+    """CSV text of a list of flat dicts (columns of the first row, then new ones in order)."""
+    cols: list = []
+    for r in rows:
+        for k in r:
+            if k not in cols:
+                cols.append(k)
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(cols)
+    for r in rows:
+        w.writerow(["" if r.get(k) is None else (_num(r[k]) if isinstance(r[k], float) else r[k]) for k in cols])
+    return buf.getvalue()
+
+
+def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_examinees: int | None, seed: int,
+              out_dir: str | Path | None, true_bank: ItemBank | None = None, workers: int = 1,
+              executor=None, chunk_size: int = DEFAULT_CHUNK, exposure_target: float | None = None,
+              write_administrations: bool = True, progress: Callable[[int, int], None] | None = None,
+              title: str = "") -> Study:
+    """Check, simulate, summarise and (when ``out_dir`` is given) write the study's files.
+
+    Parameters
+    ----------
+    abilities : AbilitySpec
+        Where true abilities come from; a ``grid:``/``file:`` spec fixes the number of
+        examinees when ``n_examinees`` is None.
+    n_examinees : int or None
+    out_dir : path or None
+        Folder for the files (created if needed); None: compute only.
+    """
+    require_design_fits_bank(design, bank)
+    true_item_rows(bank, true_bank)
+    n = n_examinees if n_examinees is not None else (abilities.fixed_count or 1000)
+    true_theta = abilities.draw(n, seed)
+    staging = None
+    writer = None
+    if out_dir is not None:
+        out_dir = Path(out_dir)
+        out_dir.mkdir(parents=True, exist_ok=True)
+        staging = Path(tempfile.mkdtemp(prefix=".simulation-", dir=out_dir))
+    try:
+        if staging is not None and write_administrations:
+            writer = _AdministrationWriter(staging / "administrations.csv", bank)
+        result = simulate(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
+                          chunk_size=chunk_size, executor=executor, workers=workers,
+                          on_chunk=writer, progress=progress)
+        if writer is not None:
+            writer.close()
+        summary = metrics.summarize(result, exposure_target=exposure_target)
+        summary["settings"] = {
+            "design": design.source, "bank": bank.name, "abilities": abilities.text,
+            "true_bank": None if true_bank is None else true_bank.name, "seed": int(seed),
+            "examinees": int(n), "chunk_size": int(chunk_size), "workers": int(workers),
+        }
+        conditional = summary["conditional"]
+        if staging is not None:
+            (staging / "summary.json").write_text(json.dumps(summary, indent=2, allow_nan=False) + "\n",
+                                                  encoding="utf-8")
+            (staging / "examinees.csv").write_text(examinees_csv(result), encoding="utf-8")
+            (staging / "items.csv").write_text(items_csv(result), encoding="utf-8")
+            (staging / "conditional.csv").write_text(rows_csv(conditional), encoding="utf-8")
+            from .report_html import simulation_report_html
+
+            (staging / "report.html").write_text(simulation_report_html(result, summary, title=title),
+                                                 encoding="utf-8")
+            for name in FILES:
+                if (staging / name).exists():
+                    os.replace(staging / name, out_dir / name)
+        return Study(result=result, summary=summary, conditional=conditional, out_dir=out_dir)
+    finally:
+        if writer is not None:
+            writer.close()
+        if staging is not None:
+            shutil.rmtree(staging, ignore_errors=True)
+
+
+def summary_table(summary: dict) -> str:
+    """The headline figures as an aligned two-column text table."""
+    keys = ["examinees", "rmse", "bias", "mae", "mean_se", "se_calibration", "correlation",
+            "marginal_reliability", "mean_length", "max_exposure", "overlap_rate", "chi_square_index"]
+    keys += [k for k in summary if k.startswith("accuracy_")]
+    lines = []
+    for k in keys:
+        v = summary.get(k)
+        text = "-" if v is None else (f"{v:.4f}" if isinstance(v, float) else str(v))
+        lines.append(f"{k:<22} {text:>10}")
+    reasons = summary.get("length", {}).get("stop_reasons", {})
+    if reasons:
+        lines.append("stop reasons           " + ", ".join(f"{r} {c}" for r, c in reasons.items()))
+    return "\n".join(lines)
