@@ -1,0 +1,50 @@
+"""The embedding API for delivery apps: a handful of functions over a session store.
+
+Everything an app needs to run adaptive tests::
+
+    from adaptive_engine.api import open_store, start_session, submit_answer
+
+    store = open_store("sessions.db")
+    reply = start_session(store, design, bank, examinee="candidate-0042")
+    while not reply["done"]:
+        category = show_and_collect(reply["item"])         # the app's own screen
+        reply = submit_answer(store, reply["session_id"], reply["item_id"], category)
+    report = reply["result"]
+
+Replies are plain dicts (JSON-ready) and never carry item parameters.  Errors an app can
+cause raise :class:`~adaptive_engine.errors.SessionError` (a ``ValueError``) and change
+nothing in the store.  See ``docs/embedding.md``.
+"""
+
+from __future__ import annotations
+
+from .bank import load_bank
+from .design_file import read_design
+from .errors import SessionError
+from .session import (
+    clear_process_cache,
+    exposure_rates,
+    list_sessions,
+    pending_item,
+    session_result,
+    show_session,
+    start_session,
+    submit_answer,
+)
+from .store import SessionStore, open_store
+
+__all__ = [
+    "SessionError",
+    "SessionStore",
+    "clear_process_cache",
+    "exposure_rates",
+    "list_sessions",
+    "load_bank",
+    "open_store",
+    "pending_item",
+    "read_design",
+    "session_result",
+    "show_session",
+    "start_session",
+    "submit_answer",
+]
