@@ -42,9 +42,18 @@ def normal_log_prior(grid, mean=0.0, sd=1.0) -> np.ndarray:
 
 def posterior_weights(log_post) -> np.ndarray:
     """Normalised posterior weights on the grid, shape like ``log_post`` (.., G)."""
-    log_post = np.asarray(log_post, dtype=float)
-    w = np.exp(log_post - log_post.max(axis=-1, keepdims=True))
+    w = _relative_density(log_post)
     return w / w.sum(axis=-1, keepdims=True)
+
+
+def _relative_density(log_post) -> np.ndarray:
+    """exp(log_post - row max), with log ratios below -300 floored at -300.
+
+    Weights below e^-300 cannot change a sum whose largest term is 1, and numpy's exp is
+    several times slower on arguments that underflow, so the floor changes no result.
+    """
+    log_post = np.asarray(log_post, dtype=float)
+    return np.exp(np.maximum(log_post - log_post.max(axis=-1, keepdims=True), -300.0))
 
 
 def posterior_mean_sd(log_post, grid) -> tuple[np.ndarray, np.ndarray]:
@@ -55,11 +64,15 @@ def posterior_mean_sd(log_post, grid) -> tuple[np.ndarray, np.ndarray]:
     log_post : array, shape (..., G)
     grid : array, shape (G,)
     """
-    w = posterior_weights(log_post)
+    log_post = np.asarray(log_post, dtype=float)
     grid = np.asarray(grid, dtype=float)
+    # unnormalised weights; dividing the moments once saves a pass over (B, G)
+    w = _relative_density(log_post)
+    total = np.sum(w, axis=-1)
     # a row-wise sum, not w @ grid: the matrix product rounds differently with the batch
     # size, and a batch of one must match the same row of a large batch bit for bit
-    mean = np.sum(w * grid, axis=-1)
+    mean = np.sum(w * grid, axis=-1) / total
     # centred second moment: E[t^2] - E[t]^2 loses digits for tight posteriors
-    var = np.sum(w * (grid - mean[..., None]) ** 2, axis=-1)
+    dev = grid - mean[..., None]
+    var = np.sum(w * (dev * dev), axis=-1) / total
     return mean, np.sqrt(np.maximum(var, 0.0))

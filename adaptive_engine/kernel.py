@@ -129,7 +129,11 @@ def _record(ctx, state, rows, responses) -> None:
         members = ctx.set_members[s[k]]
         state.current_set[r] = s[k] if (~state.used[r, members]).any() else -1
     # the posterior takes scored answers only
-    state.log_post[sr] += ctx.log_table_by_category[si, responses[scored]]
+    update = ctx.log_table_by_category[si, responses[scored]]
+    if sr.size == state.size and sr.size and sr[0] == 0 and sr[-1] == sr.size - 1:
+        state.log_post += update  # the whole batch in order: no gather/scatter round trip
+    else:
+        state.log_post[sr] += update
 
 
 def _update_estimate(ctx, state, rows) -> None:
