@@ -18,6 +18,8 @@ import numpy as np
 from .errors import Problem, ResponseDataError
 
 REQUIRED_COLUMNS = ("person_id", "item_id", "response")
+#: Responses are stored as int64; anything larger cannot be any item's category.
+_LARGEST_RESPONSE = np.iinfo(np.int64).max
 
 
 @attrs.frozen(eq=False)
@@ -134,6 +136,9 @@ def _build(rows, lines, source) -> ResponseTable:
         if value < 0:
             problems.append(Problem(loc, f"response {value} is negative (categories start at 0)"))
             continue
+        if value > _LARGEST_RESPONSE:
+            problems.append(Problem(loc, f"response {value} is too large to be a category"))
+            continue
         p = persons.setdefault(pid, len(persons))
         i = items.setdefault(iid, len(items))
         if (p, i) in seen:
@@ -163,11 +168,14 @@ def _build(rows, lines, source) -> ResponseTable:
 
 def read_responses_text(text: str, *, source: str = "responses") -> ResponseTable:
     """Parse long-format response CSV text."""
-    reader = csv.reader(io.StringIO(text))
+    # newline="" lets the csv module see bare "\r" line ends instead of failing on them
+    reader = csv.reader(io.StringIO(text, newline=""))
     try:
         header = [h.strip() for h in next(reader)]
     except StopIteration:
         raise ResponseDataError([Problem(f"{source} line 1", "the file is empty (no header row)")])
+    except csv.Error as exc:
+        raise ResponseDataError([Problem(f"{source} line 1", f"unreadable CSV header: {exc}")])
     missing = [c for c in REQUIRED_COLUMNS if c not in header]
     if missing:
         raise ResponseDataError([Problem(f"{source} line 1", f"missing required column {c!r}") for c in missing])
