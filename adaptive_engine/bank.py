@@ -545,7 +545,9 @@ def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
 
         return read_bank_sqlite(path)
     try:
-        text = path.read_text(encoding="utf-8-sig")
+        # newline="" leaves a carriage return inside a quoted CSV field as it is
+        with open(path, encoding="utf-8-sig", newline="") as fh:
+            text = fh.read()
     except UnicodeDecodeError as exc:
         raise BankError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", location=str(path))
     if suffix == ".json":

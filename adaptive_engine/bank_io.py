@@ -19,8 +19,6 @@ moves it into place with :func:`os.replace`, so a failure never leaves a half-wr
 from __future__ import annotations
 
 import contextlib
-import csv
-import io
 import json
 import os
 import sqlite3
@@ -85,15 +83,22 @@ def flat_rows(bank: ItemBank) -> list[dict]:
 def bank_to_csv_text(bank: ItemBank) -> str:
     """The bank as CSV text (``\\n`` line ends, floats at full precision)."""
     columns = csv_columns(bank)
-    out = io.StringIO()
-    writer = csv.writer(out, lineterminator="\n")
-    writer.writerow(columns)
+    lines = [",".join(columns)]
     for row in flat_rows(bank):
-        writer.writerow(
-            "" if row[c] is None else _number_text(row[c]) if isinstance(row[c], float) else row[c]
+        lines.append(",".join(
+            "" if row[c] is None else _number_text(row[c]) if isinstance(row[c], float)
+            else _csv_text(row[c])
             for c in columns
-        )
-    return out.getvalue()
+        ))
+    return "\n".join(lines) + "\n"
+
+
+def _csv_text(value: str) -> str:
+    # The csv module leaves a lone "\r" unquoted when rows end in "\n", which a reader then
+    # takes for a line break; quoting by hand keeps every label intact.
+    if any(ch in value for ch in ',"\r\n') or value != value.strip():
+        return '"' + value.replace('"', '""') + '"'
+    return value
 
 
 def bank_to_document(bank: ItemBank) -> dict:
@@ -189,14 +194,24 @@ def write_bank_sqlite(bank: ItemBank, path: str | Path) -> None:
 
     def fill(temp: Path) -> None:
         temp.unlink()  # mkstemp made an empty file; SQLite wants to create its own
-        db = sqlite_utils.Database(temp)
+        conn = sqlite3.connect(temp)
+        # the file is private until os.replace, so no journal and one fsync at the end suffice
+        conn.execute("pragma journal_mode = off")
+        conn.execute("pragma synchronous = off")
+        db = sqlite_utils.Database(conn)
         try:
-            db["items"].create(types, pk="item_id", column_order=columns)
-            db["items"].insert_all(rows)
-            db["bank_metadata"].create({"scaling": float, "name": str})
-            db["bank_metadata"].insert({"scaling": float(bank.scaling), "name": str(bank.name)})
+            with conn:
+                db["items"].create(types, pk="item_id", column_order=columns)
+                db["items"].insert_all(rows)
+                db["bank_metadata"].create({"scaling": float, "name": str})
+                db["bank_metadata"].insert({"scaling": float(bank.scaling), "name": str(bank.name)})
         finally:
             db.close()
+        fd = os.open(temp, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
 
     _atomic_write(Path(path), fill)
 
