@@ -170,7 +170,9 @@ def person_fit(params: models.ItemParameters, items, responses, theta, *, method
                                   "person fit")
     finite = np.isfinite(theta)
     th = np.where(finite, theta, 0.0)
-    p, dp, d2p = models.derivatives(params.take(rows), th[:, None], second=True)  # (B, L, C)
+    # second derivatives only feed Warm's J, which only the WLE weight uses
+    want_j = method == "wle"
+    p, dp, *d2p = models.derivatives(params.take(rows), th[:, None], second=want_j)  # (B,L,C)
     ncat = params.n_categories[rows]
     valid = (np.arange(p.shape[-1]) < ncat[..., None]) & given[..., None] & (p > 0)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -185,7 +187,7 @@ def person_fit(params: models.ItemParameters, items, responses, theta, *, method
     e_i = np.sum(p * log_p, axis=-1)
     var_i = np.sum(p * (log_p - e_i[..., None]) ** 2, axis=-1)
     info_i = np.sum(dp * r, axis=-1)
-    j_i = np.sum(np.where(valid, d2p, 0.0) * r, axis=-1)
+    j_i = np.sum(np.where(valid, d2p[0], 0.0) * r, axis=-1) if want_j else np.zeros(l0_i.shape)
     pw_i = np.sum(dp * log_p, axis=-1)
 
     # test-level sums, over items (now the last axis)
