@@ -106,3 +106,77 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
         click.echo(summary_table(study.summary))
         click.echo(f"wrote {out_dir}/ (summary.json, examinees.csv, items.csv, conditional.csv, report.html"
                    f"{'' if no_administrations else ', administrations.csv'})")
+
+
+@main.command("tune")
+@click.argument("design_file", metavar="DESIGN", type=_FILE)
+@click.option("--bank", "bank_file", required=True, type=_FILE, help="Operational item bank.")
+@click.option("--vary", "variations", multiple=True, required=True,
+              help="SECTION.KEY=V1,V2,... a design setting and its values (repeat for a grid of combinations), "
+                   "e.g. stopping.se=0.25,0.3,0.35.")
+@click.option("--examinees", "n_examinees", type=int, default=1000, show_default=True,
+              help="Simulated examinees per combination (the same ones for every combination).")
+@click.option("--seed", type=int, default=1, show_default=True, help="Run seed shared by all combinations.")
+@click.option("--theta", "theta_spec", default="normal:0,1", show_default=True, help="True abilities (see simulate).")
+@click.option("--true-bank", "true_bank_file", type=_FILE, default=None, help="Bank the answers are drawn from.")
+@click.option("--workers", type=int, default=1, show_default=True, help="Processes running chunks in parallel.")
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=str),
+              help="Folder for tuning.csv, tuning.json and tuning.html (with the trade-off plot).")
+@report_errors
+def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_spec, true_bank_file, workers, out_dir):
+    """Compare variants of DESIGN's settings (stopping rules, ...) on common random numbers.
+
+    Prints mean length, RMSE and classification accuracy per combination and marks the
+    combinations on the efficient frontier.
+    """
+    from ..examinees import parse_ability_spec
+    from ..tuning import parse_variation, run_tuning_study
+
+    design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
+    parsed = [parse_variation(v) for v in variations]
+    abilities = parse_ability_spec(theta_spec)
+    rows = run_tuning_study(design, bank, parsed, true_theta=abilities.draw(n_examinees, seed), seed=seed,
+                            true_bank=true_bank, workers=workers, out_dir=out_dir,
+                            progress=_Progress("combinations"))
+    from ..simulation_files import rows_csv
+
+    click.echo(rows_csv(rows), nl=False)
+    click.echo(f"wrote {out_dir}/ (tuning.csv, tuning.json, tuning.html)")
+
+
+@main.group("exposure")
+def exposure_group():
+    """Exposure control: calibrate Sympson-Hetter parameters by simulation."""
+
+
+@exposure_group.command("calibrate")
+@click.argument("design_file", metavar="DESIGN", type=_FILE)
+@click.option("--bank", "bank_file", required=True, type=_FILE, help="Operational item bank.")
+@click.option("--target", type=float, required=True, help="Largest exposure rate allowed (e.g. 0.2).")
+@click.option("--out", "out_file", required=True, type=_FILE,
+              help="Parameters CSV to write (item_id,exposure_parameter) for [exposure] parameters = \"PATH\".")
+@click.option("--seed", type=int, default=1, show_default=True, help="Run seed.")
+@click.option("--examinees", "n_examinees", type=int, default=2000, show_default=True,
+              help="Simulated examinees per iteration.")
+@click.option("--theta", "theta_spec", default="normal:0,1", show_default=True, help="Abilities of the population.")
+@click.option("--iterations", type=int, default=15, show_default=True, help="Most iterations to run.")
+@click.option("--tolerance", type=float, default=0.02, show_default=True,
+              help="Converged when the largest exposure rate is at most target + tolerance.")
+@click.option("--workers", type=int, default=1, show_default=True, help="Processes running chunks in parallel.")
+@report_errors
+def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n_examinees, theta_spec,
+                               iterations, tolerance, workers):
+    """Iterate Sympson-Hetter exposure parameters for DESIGN until no item exceeds --target."""
+    from ..examinees import parse_ability_spec
+    from ..exposure_calibration import run_calibration
+
+    design, bank, _ = _load(design_file, bank_file)
+    cal = run_calibration(design, bank, target=target, out_file=out_file,
+                          true_theta=parse_ability_spec(theta_spec).draw(n_examinees, seed), seed=seed,
+                          max_iterations=iterations, tolerance=tolerance, workers=workers)
+    click.echo("iteration  max_exposure  share_above_target  mean_length  items_restricted")
+    for h in cal.history:
+        click.echo(f"{h['iteration']:>9}  {h['max_exposure']:>12.4f}  {h['share_above_target']:>18.4f}  "
+                   f"{h['mean_length']:>11.2f}  {h['items_restricted']:>16}")
+    state = "converged" if cal.converged else "did not converge"
+    click.echo(f"{state} (target {target:g}, tolerance {tolerance:g}); wrote {out_file}")
