@@ -18,7 +18,7 @@ import numpy as np
 from . import models
 from .bank import ItemBank
 from .design import Design
-from .design_file import _toml_key, validate_design
+from .design_file import toml_key, validate_design
 from .errors import DesignError, Problem
 
 
@@ -124,7 +124,7 @@ def _area_problems(design, bank, operational, count, rules_note) -> list[Problem
     problems = []
     max_items = design.stopping.max_items
     for rule in design.blueprint.areas:
-        where = f"[blueprint.areas.{_toml_key(rule.name)}]"
+        where = f"[blueprint.areas.{toml_key(rule.name)}]"
         if rule.name not in bank.areas:
             problems.append(Problem(where, f"area {rule.name!r} is not in the bank; bank areas: {', '.join(bank.areas)}"))
             continue

@@ -13,7 +13,8 @@ Public functions
     A design back to TOML text (``parse_design(design_to_toml(d)) == d``) or to plain
     dicts and lists.
 :func:`read_exposure_parameters`
-    The Sympson-Hetter parameter CSV (``item_id,exposure_parameter``).
+    The Sympson-Hetter parameter CSV (``item_id,exposure_parameter``), from
+    :mod:`adaptive_engine.exposure_file`.
 
 Every problem is collected with its location -- ``"[stopping] se"``,
 ``"[blueprint.areas.source_water] min"``, ``"[[reporting.cut_scores]] #2 theta"``,
@@ -23,8 +24,6 @@ Every problem is collected with its location -- ``"[stopping] se"``,
 
 from __future__ import annotations
 
-import csv
-import io
 import math
 import re
 import tomllib
@@ -54,6 +53,7 @@ from .design import (
     Stopping,
 )
 from .errors import DesignError, Problem
+from .exposure_file import parse_exposure_parameters, read_exposure_parameters  # noqa: F401
 
 SECTIONS = ("opening", "scoring", "selection", "exposure", "blueprint", "stopping", "reporting")
 
@@ -333,7 +333,7 @@ def _blueprint(table, problems) -> Blueprint:
     areas_table = _sub(table, "areas", "blueprint", problems) or {}
     rules = []
     for name, rule in areas_table.items():
-        path = f"blueprint.areas.{_toml_key(name)}"
+        path = f"blueprint.areas.{toml_key(name)}"
         if not isinstance(rule, dict):
             problems.append(Problem(f"[blueprint.areas] {name}",
                                     f"expected a table [{path}] with min/max or share, got {_toml_kind(rule)}"))
@@ -463,7 +463,7 @@ def validate_design(design: Design) -> list[Problem]:
 def _blueprint_problems(bp: Blueprint, st: Stopping) -> list[Problem]:
     problems = []
     for rule in bp.areas:
-        where = f"[blueprint.areas.{_toml_key(rule.name)}]"
+        where = f"[blueprint.areas.{toml_key(rule.name)}]"
         if rule.share is not None and (rule.min != 0 or rule.max is not None):
             problems.append(Problem(f"{where} share", "give either a share or min/max counts, not both"))
         if rule.max is not None and rule.max < rule.min:
@@ -608,75 +608,6 @@ def _drop_none(value):
 
 
 # ----------------------------------------------------------------------------------------
-# the Sympson-Hetter parameter file
-
-
-def read_exposure_parameters(path: str | Path, *, location: str = "") -> dict[str, float]:
-    """Read ``item_id,exposure_parameter`` rows into a dict (values in [0, 1]).
-
-    Problems are located as ``<file name> line N``; a missing file is reported at
-    ``location`` (the design key that named it).
-    """
-    path = Path(path)
-    try:
-        text = path.read_bytes().decode("utf-8-sig")
-    except (FileNotFoundError, IsADirectoryError):
-        raise DesignError(f"exposure parameter file not found: {path}", location=location or str(path)) from None
-    except UnicodeDecodeError as exc:
-        raise DesignError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", location=path.name) from None
-    return parse_exposure_parameters(text, source=path.name)
-
-
-def parse_exposure_parameters(text: str, *, source: str = "exposure parameters") -> dict[str, float]:
-    """Parse the text of an exposure-parameter CSV; see :func:`read_exposure_parameters`."""
-    reader = csv.reader(io.StringIO(text))
-    problems: list[Problem] = []
-    out: dict[str, float] = {}
-    try:
-        header = [h.strip() for h in next(reader)]
-    except StopIteration:
-        raise DesignError([Problem(f"{source} line 1", "the file is empty (expected header item_id,exposure_parameter)")])
-    except csv.Error as exc:
-        raise DesignError([Problem(f"{source} line 1", f"unreadable CSV: {exc}")])
-    if header != ["item_id", "exposure_parameter"]:
-        raise DesignError([Problem(f"{source} line 1",
-                                   f"expected the header item_id,exposure_parameter, got {','.join(header)}")])
-    first_seen: dict[str, int] = {}
-    try:
-        for row in reader:
-            where = f"{source} line {reader.line_num}"
-            if not any(cell.strip() for cell in row):
-                continue
-            if len(row) != 2:
-                problems.append(Problem(where, f"expected 2 fields, found {len(row)}"))
-                continue
-            iid, raw = row[0].strip(), row[1].strip()
-            if not iid:
-                problems.append(Problem(where, "item_id is empty"))
-                continue
-            if iid in first_seen:
-                problems.append(Problem(where, f"item {iid} repeats (first on line {first_seen[iid]})"))
-                continue
-            first_seen[iid] = reader.line_num
-            try:
-                value = float(raw)
-            except ValueError:
-                problems.append(Problem(where, f"exposure_parameter is not a number ({raw!r})"))
-                continue
-            if not 0 <= value <= 1:
-                problems.append(Problem(where, f"exposure_parameter must lie in [0, 1], got {raw}"))
-                continue
-            out[iid] = value
-    except csv.Error as exc:
-        problems.append(Problem(f"{source} line {reader.line_num}", f"unreadable CSV: {exc}"))
-    if problems:
-        raise DesignError(problems)
-    if not out:
-        raise DesignError([Problem(source, "the file lists no items")])
-    return out
-
-
-# ----------------------------------------------------------------------------------------
 # writing
 
 
@@ -711,7 +642,8 @@ def _plain(value):
 _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
 
 
-def _toml_key(name: str) -> str:
+def toml_key(name: str) -> str:
+    """``name`` as a TOML key: bare when it can be, else a quoted string."""
     return name if _BARE_KEY.match(name) else _toml_string(name)
 
 
@@ -765,7 +697,7 @@ def design_to_toml(design: Design) -> str:
     _emit(lines, "[blueprint]", design.blueprint, _BLUEPRINT)
     for rule in design.blueprint.areas:
         skip = ("min", "max") if rule.share is not None else ()
-        _emit(lines, f"[blueprint.areas.{_toml_key(rule.name)}]", rule, _AREA, skip=skip)
+        _emit(lines, f"[blueprint.areas.{toml_key(rule.name)}]", rule, _AREA, skip=skip)
     _emit(lines, "[stopping]", design.stopping, _STOPPING)
     if design.stopping.sprt is not None:
         _emit(lines, "[stopping.sprt]", design.stopping.sprt, _SPRT)
