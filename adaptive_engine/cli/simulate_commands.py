@@ -180,3 +180,16 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
                    f"{h['mean_length']:>11.2f}  {h['items_restricted']:>16}")
     state = "converged" if cal.converged else "did not converge"
     click.echo(f"{state} (target {target:g}, tolerance {tolerance:g}); wrote {out_file}")
+
+
+@main.command("demo")
+@click.option("--out", "out_dir", default="demo_output", show_default=True,
+              type=click.Path(file_okay=False, path_type=str), help="Folder for the simulation report.")
+@click.option("--examinees", type=int, default=1000, show_default=True, help="Simulated examinees.")
+@click.option("--seed", type=int, default=2026, show_default=True, help="Run seed.")
+@report_errors
+def demo_command(out_dir, examinees, seed):
+    """Simulate the shipped licensing exam, write its report, then run a short survey session."""
+    from ..demo import run_demo
+
+    run_demo(out_dir=out_dir, examinees=examinees, seed=seed, say=click.echo)
