@@ -556,6 +556,7 @@ def test_example_parses_round_trips_and_fits_its_bank(name):
     assert path.read_text().startswith("#"), "each example opens with a comment header"
     design = read_design(path)
     assert parse_design(design_to_toml(design), source=name, base_dir=SIMULATIONS) == design
+    assert len(describe_design(design)) == 7
     bank_path = _bank_for(name)
     if not bank_path.exists():
         pytest.skip(f"demo bank {bank_path.name} not generated (run item_banks/make_demo_banks.py)")
