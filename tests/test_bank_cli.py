@@ -1,0 +1,194 @@
+"""The ``adaptive-engine bank`` commands, through click's CliRunner."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from pathlib import Path
+
+import click
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from adaptive_engine import models
+from adaptive_engine.bank import load_bank
+from adaptive_engine.cli import main
+
+REPO = Path(__file__).resolve().parents[1]
+OPERATOR = REPO / "item_banks" / "meridian_valley_operator.json"
+OPERATOR_CSV = REPO / "item_banks" / "meridian_valley_operator.csv"
+SURVEY = REPO / "item_banks" / "staff_climate_survey.csv"
+
+BAD_CSV = (
+    "item_id,model,a,b,c,d,area\n"
+    "Q1,3PL,1.0,0.0,0.2,1,pumps\n"
+    "Q2,3PL,-1.0,0.0,0.2,1,pumps\n"       # line 3: a <= 0
+    "Q3,4PL,1.0,0.0,0.5,0.4,pumps\n"      # line 4: d < c
+    "Q1,2PL,1.0,0.0,,,pumps\n"            # line 5: duplicate id
+    "Q5,6PL,1.0,0.0,,,pumps\n"            # line 6: unknown model
+    "Q6,2PL,1.0,hard,,,pumps\n"           # line 7: non-numeric b
+)
+
+
+def run(*args):
+    return CliRunner().invoke(main, [str(a) for a in args], catch_exceptions=False)
+
+
+def test_check_summarises_the_demo_exam():
+    result = run("bank", "check", OPERATOR)
+    assert result.exit_code == 0, result.output
+    out = result.output
+    assert "500 items" in out
+    bank = load_bank(OPERATOR)
+    for m in ("2PL", "3PL", "4PL"):
+        assert f"{m} {int(np.sum(bank.model == m))}" in out
+    assert "source_water 100" in out and "safety_and_regulations 100" in out
+    assert f"pretest items: {int(np.sum(bank.status == 'pretest'))}" in out
+    assert "enemy groups: 15" in out and "item sets: 10" in out
+    assert "SE < 0.3" in out and "theta in [" in out
+
+
+def test_check_precision_range_agrees_with_a_direct_sum():
+    # oracle: 1 / sqrt(summed item information) computed here from models.information
+    result = run("bank", "check", SURVEY)
+    assert result.exit_code == 0, result.output
+    line = [x for x in result.output.splitlines() if x.startswith("SE < 0.3")][0]
+    lo, hi = (float(v) for v in line.split("theta in [")[1].rstrip("]").split(","))
+    bank = load_bank(SURVEY)
+    se = lambda t: 1 / np.sqrt(models.information(*models.outer(bank.params, np.array([t]))).sum())  # noqa: E731
+    assert se(lo + 0.02) < 0.3 < se(lo - 0.02)
+    assert se(hi - 0.02) < 0.3 < se(hi + 0.02)
+
+
+def test_check_lists_every_problem_with_its_location(tmp_path):
+    path = tmp_path / "bad.csv"
+    path.write_text(BAD_CSV)
+    result = CliRunner().invoke(main, ["bank", "check", str(path)])
+    assert result.exit_code == 2
+    err = result.stderr if hasattr(result, "stderr") else result.output
+    for line_no, fragment in ((3, "a must be > 0"), (4, "upper asymptote d"), (5, "duplicate item id"),
+                              (6, "unknown model '6PL'"), (7, "b is not a number")):
+        assert any(f"bad.csv line {line_no}" in x and fragment in x for x in err.splitlines()), err
+    problem_lines = [x.strip() for x in err.splitlines() if x.strip().startswith("bad.csv line")]
+    assert len(problem_lines) == 5
+    assert not any(x.startswith("bad.csv line 2") for x in problem_lines)  # the good row
+
+
+def test_check_reports_a_missing_file():
+    result = CliRunner().invoke(main, ["bank", "check", "no_such_bank.csv"])
+    assert result.exit_code == 2
+    assert "no such file" in result.output
+
+
+def parse_csv(text):
+    rows = list(csv.reader(io.StringIO(text)))
+    return rows[0], np.array(rows[1:], dtype=float)
+
+
+def test_curves_csv_matches_summed_item_information():
+    result = run("bank", "curves", SURVEY, "--from", -2, "--to", 2, "--step", 0.5)
+    assert result.exit_code == 0, result.output
+    header, values = parse_csv(result.output)
+    assert header == ["theta", "information", "se"]
+    np.testing.assert_allclose(values[:, 0], np.arange(-2, 2.01, 0.5))
+    bank = load_bank(SURVEY)
+    direct = models.information(*models.outer(bank.params, values[:, 0])).sum(axis=0)
+    np.testing.assert_allclose(values[:, 1], direct, rtol=1e-12)
+    np.testing.assert_allclose(values[:, 2], 1 / np.sqrt(direct), rtol=1e-12)
+
+
+def test_curves_by_area_add_up():
+    result = run("bank", "curves", OPERATOR_CSV, "--step", 1, "--by-area")
+    assert result.exit_code == 0, result.output
+    header, values = parse_csv(result.output)
+    areas = load_bank(OPERATOR_CSV).areas
+    assert header == ["theta", "information", "se"] + [f"information_{a}" for a in areas]
+    np.testing.assert_allclose(values[:, 3:].sum(axis=1), values[:, 1], rtol=1e-10)
+    assert values.shape[0] == 9  # -4 .. 4 by 1
+
+
+def test_curves_json_by_area():
+    result = run("bank", "curves", SURVEY, "--format", "json", "--by-area", "--from", 0, "--to", 1)
+    assert result.exit_code == 0, result.output
+    doc = json.loads(result.output)
+    assert doc["theta"] == [0.0, 0.25, 0.5, 0.75, 1.0]
+    assert set(doc["by_area"]) == {"workload", "team_support", "leadership", "wellbeing"}
+    summed = np.sum([v["information"] for v in doc["by_area"].values()], axis=0)
+    np.testing.assert_allclose(summed, doc["information"], rtol=1e-10)
+    np.testing.assert_allclose(doc["se"], 1 / np.sqrt(doc["information"]), rtol=1e-12)
+
+
+@pytest.mark.parametrize("args, where", [
+    (["--step", "0"], "--step"),
+    (["--from", "2", "--to", "1"], "--to"),
+    (["--step", "1e-9"], "--step"),
+])
+def test_curves_refuses_bad_grids(args, where):
+    result = CliRunner().invoke(main, ["bank", "curves", str(SURVEY), *args])
+    assert result.exit_code == 2
+    assert where in result.output
+
+
+def test_curves_plot(tmp_path):
+    pytest.importorskip("matplotlib", reason="the plots extra (matplotlib) is not installed")
+    png = tmp_path / "info.png"
+    result = run("bank", "curves", OPERATOR, "--by-area", "--plot", png)
+    assert result.exit_code == 0, result.output
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert [p.name for p in tmp_path.iterdir()] == ["info.png"]
+
+
+def test_curves_plot_needs_png_suffix(tmp_path):
+    pytest.importorskip("matplotlib", reason="the plots extra (matplotlib) is not installed")
+    result = CliRunner().invoke(main, ["bank", "curves", str(SURVEY), "--plot", str(tmp_path / "x.pdf")])
+    assert result.exit_code == 2 and "--plot" in result.output
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("suffix", [".csv", ".json", ".db"])
+def test_convert_round_trips(tmp_path, suffix):
+    out = tmp_path / f"copy{suffix}"
+    result = run("bank", "convert", OPERATOR, out)
+    assert result.exit_code == 0, result.output
+    assert "wrote 500 items" in result.output
+    a, b = load_bank(OPERATOR), load_bank(out)
+    assert list(a.item_ids) == list(b.item_ids)
+    np.testing.assert_array_equal(a.c, b.c)
+    assert a.enemy_groups == b.enemy_groups
+
+
+def test_convert_bad_input_writes_nothing(tmp_path):
+    src = tmp_path / "bad.csv"
+    src.write_text(BAD_CSV)
+    out = tmp_path / "out.json"
+    result = CliRunner().invoke(main, ["bank", "convert", str(src), str(out)])
+    assert result.exit_code == 2 and "bad.csv line 3" in result.output
+    assert not out.exists()
+    result = CliRunner().invoke(main, ["bank", "convert", str(SURVEY), str(tmp_path / "out.xlsx")])
+    assert result.exit_code == 2 and "unknown bank file type" in result.output
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["bad.csv"]
+
+
+def _walk(command, path=()):
+    yield path, command
+    if isinstance(command, click.Group):
+        for name, sub in command.commands.items():
+            yield from _walk(sub, path + (name,))
+
+
+def test_every_command_has_help():
+    missing = [" ".join(path) or "(root)" for path, cmd in _walk(main)
+               if not (cmd.help or "").strip() and not (cmd.short_help or "").strip()]
+    assert not missing, f"commands without help: {missing}"
+    # and --help works for each of them
+    for path, _ in _walk(main):
+        result = CliRunner().invoke(main, [*path, "--help"])
+        assert result.exit_code == 0 and "Usage" in result.output, path
+
+
+def test_bank_group_lists_its_commands():
+    result = run("bank", "--help")
+    for name in ("check", "curves", "convert"):
+        assert name in result.output
