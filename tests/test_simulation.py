@@ -1,0 +1,242 @@
+"""The simulation driver, ability specifications, study files and the CLI commands."""
+
+from __future__ import annotations
+
+import csv
+import json
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import attrs
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from scipy import stats
+
+from adaptive_engine import examinees, metrics, simulation
+from adaptive_engine.bank import bank_from_records
+from adaptive_engine.cli import main
+from adaptive_engine.design import Design, Exposure, Stopping
+from adaptive_engine.errors import AdaptiveEngineError
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def small_bank(n=80, seed=0):
+    """Test input only: random 2PL/3PL items in plausible ranges."""
+    rng = np.random.default_rng(seed)
+    recs = []
+    for i in range(n):
+        rec = dict(item_id=f"t{i:03d}", model="3PL" if i % 2 else "2PL", a=float(rng.uniform(0.7, 2.0)),
+                   b=float(rng.normal(0, 1.2)), area=("one", "two")[i % 2])
+        if i % 2:
+            rec["c"] = float(rng.uniform(0.05, 0.2))
+        recs.append(rec)
+    return bank_from_records(recs, name="small")
+
+
+DESIGN = Design(exposure=Exposure(method="randomesque", candidates=4),
+                stopping=Stopping(min_items=5, max_items=12, se=0.4))
+
+
+def _same(a, b):
+    for name in ("seeds", "true_theta", "theta", "se", "n_scored", "stop_reason", "administered", "offered"):
+        x, y = getattr(a, name), getattr(b, name)
+        assert np.array_equal(x, y, equal_nan=x.dtype.kind == "f"), name
+
+
+def test_results_do_not_depend_on_chunking_or_executor():
+    bank = small_bank()
+    theta = examinees.parse_ability_spec("normal:0,1").draw(90, 3)
+    one = simulation.simulate(DESIGN, bank, true_theta=theta, seed=3, chunk_size=90)
+    _same(one, simulation.simulate(DESIGN, bank, true_theta=theta, seed=3, chunk_size=17))
+    with ThreadPoolExecutor(2) as pool:  # any executor with submit() serves
+        _same(one, simulation.simulate(DESIGN, bank, true_theta=theta, seed=3, chunk_size=25, executor=pool))
+    _same(one, simulation.simulate(DESIGN, bank, true_theta=theta, seed=3, chunk_size=30, workers=2))
+    other = simulation.simulate(DESIGN, bank, true_theta=theta, seed=4, chunk_size=90)
+    assert not np.array_equal(one.theta, other.theta)
+
+
+def test_examinee_i_is_the_same_in_a_longer_run():
+    bank = small_bank()
+    theta = np.linspace(-2, 2, 40)
+    short = simulation.simulate(DESIGN, bank, true_theta=theta[:15], seed=8)
+    long = simulation.simulate(DESIGN, bank, true_theta=theta, seed=8, chunk_size=7)
+    assert np.array_equal(short.theta, long.theta[:15])
+
+
+def test_dask_executor_path():
+    distributed = pytest.importorskip("dask.distributed", reason="dask.distributed is not installed")
+    bank = small_bank()
+    theta = np.linspace(-2, 2, 30)
+    local = simulation.simulate(DESIGN, bank, true_theta=theta, seed=2, chunk_size=10)
+    with distributed.Client(processes=False, n_workers=1, threads_per_worker=2) as client:
+        _same(local, simulation.simulate(DESIGN, bank, true_theta=theta, seed=2, chunk_size=10,
+                                         executor=client.get_executor()))
+
+
+def test_answers_follow_the_true_model():
+    """Fixed one-item tests at a known theta: the share correct matches P(theta).
+
+    Oracle: scipy.stats.binomtest on the count of correct answers.
+    """
+    bank = bank_from_records([dict(item_id="only", model="3PL", a=1.3, b=0.4, c=0.2)])
+    design = Design(stopping=Stopping(min_items=1, max_items=1))
+    theta = np.full(4000, 0.9)
+    chunk = simulation.run_chunk(simulation.build_context(design, bank), seed=1, start=0, true_theta=theta)
+    p = 0.2 + 0.8 / (1 + np.exp(-1.3 * (0.9 - 0.4)))
+    assert stats.binomtest(int(chunk.responses[:, 0].sum()), 4000, p).pvalue > 0.001
+
+
+def test_true_bank_differs_from_operational():
+    bank = small_bank()
+    theta = np.linspace(-2, 2, 60)
+    shifted = bank.evolve(b=bank.b + 1.0)  # items are truly harder than the bank says
+    res = simulation.simulate(DESIGN, bank, true_theta=theta, seed=5, true_bank=shifted)
+    base = simulation.simulate(DESIGN, bank, true_theta=theta, seed=5)
+    assert metrics.precision(res.true_theta, res.theta, res.se)["bias"] < \
+        metrics.precision(base.true_theta, base.theta, base.se)["bias"] - 0.5
+    missing = bank.subset(np.arange(10))
+    with pytest.raises(simulation.SimulationError, match="missing from the true bank"):
+        simulation.simulate(DESIGN, bank, true_theta=theta, seed=5, true_bank=missing)
+
+
+def test_perturbed_bank_keeps_parameters_valid():
+    bank = small_bank()
+    p = simulation.perturbed_bank(bank, sd_a=0.5, sd_b=0.3, sd_c=0.2, seed=2)
+    assert np.all(p.a > 0) and np.all((p.c >= 0) & (p.c < p.d))
+    assert np.all(p.c[np.asarray(bank.model) == "2PL"] == bank.c[np.asarray(bank.model) == "2PL"])
+    assert np.std(p.b - bank.b) == pytest.approx(0.3, rel=0.3)
+    with pytest.raises(AdaptiveEngineError):
+        simulation.perturbed_bank(bank, sd_a=-1)
+
+
+@pytest.mark.parametrize("text, n", [("normal:0,1", None), ("uniform:-2,2", None), ("grid:-2,2,5:3", 15)])
+def test_ability_specs(text, n):
+    spec = examinees.parse_ability_spec(text)
+    assert spec.fixed_count == n
+    draw = spec.draw(15, 1)
+    assert draw.shape == (15,) and np.all(np.isfinite(draw))
+    assert np.array_equal(draw, spec.draw(15, 1))
+    if text.startswith("grid"):
+        assert np.array_equal(draw, np.repeat([-2, -1, 0, 1, 2], 3))
+
+
+def test_normal_spec_moments():
+    # oracle: scipy.stats.kstest against the normal(0.5, 2) distribution
+    draw = examinees.parse_ability_spec("normal:0.5,2").draw(3000, 9)
+    assert stats.kstest(draw, "norm", args=(0.5, 2)).pvalue > 0.001
+
+
+def test_ability_file(tmp_path):
+    f = tmp_path / "abilities.csv"
+    f.write_text("person,theta\na,0.5\nb,-1\n\nc,2\n")
+    spec = examinees.parse_ability_spec(f"file:{f}")
+    assert spec.fixed_count == 3
+    assert list(spec.draw(3, 0)) == [0.5, -1.0, 2.0]
+    f.write_text("theta\n0.5\nabc\n")
+    with pytest.raises(examinees.AbilitySpecError, match="line 3"):
+        examinees.parse_ability_spec(f"file:{f}")
+
+
+@pytest.mark.parametrize("bad", ["normal:0", "gauss:0,1", "uniform:2,1", "grid:-2,2,5", "normal:0,-1",
+                                 "normal:x,1", "file:/nonexistent/abilities.csv"])
+def test_bad_ability_specs(bad):
+    with pytest.raises(examinees.AbilitySpecError):
+        examinees.parse_ability_spec(bad)
+
+
+# -- files and CLI -----------------------------------------------------------------------
+
+def _shipped():
+    design = ROOT / "simulations" / "minimal.toml"
+    bank = ROOT / "item_banks" / "meridian_valley_operator.csv"
+    if not design.exists() or not bank.exists():
+        pytest.skip("shipped demo files missing")
+    return str(design), str(bank)
+
+
+def test_simulate_cli_writes_every_file(tmp_path):
+    design, bank = _shipped()
+    out = tmp_path / "study"
+    result = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "150", "--seed", "4",
+                                       "--out", str(out), "--theta", "uniform:-2,2", "--exposure-target", "0.3"])
+    assert result.exit_code == 0, result.output
+    for name in ("summary.json", "examinees.csv", "administrations.csv", "items.csv", "conditional.csv",
+                 "report.html"):
+        assert (out / name).exists(), name
+    summary = json.loads((out / "summary.json").read_text())
+    for key in ("rmse", "bias", "mean_se", "mean_length", "max_exposure", "overlap_rate", "chi_square_index"):
+        assert summary[key] is not None, key
+    people = list(csv.DictReader((out / "examinees.csv").open()))
+    admin = list(csv.DictReader((out / "administrations.csv").open()))
+    assert len(people) == 150
+    assert sum(int(p["n_items"]) + int(p["n_pretest"]) for p in people) == len(admin)
+    # figures in summary.json agree with examinees.csv
+    err = np.array([float(p["theta"]) - float(p["true_theta"]) for p in people])
+    assert summary["rmse"] == pytest.approx(np.sqrt(np.mean(err**2)), abs=1e-5)
+    assert summary["mean_length"] == pytest.approx(np.mean([int(p["n_items"]) for p in people]))
+    # administrations are in order per examinee and the last interim estimate is present
+    first = [a for a in admin if a["examinee"] == "0"]
+    assert [int(a["position"]) for a in first] == list(range(1, len(first) + 1))
+    html = (out / "report.html").read_text()
+    assert "<img" in html and "http" not in html.split("<body>")[1]  # self-contained
+    items = list(csv.DictReader((out / "items.csv").open()))
+    assert max(float(i["exposure_rate"]) for i in items) == pytest.approx(summary["max_exposure"], abs=1e-6)
+    assert not [p for p in out.iterdir() if p.name.startswith(".")]  # no staging left
+
+
+def test_simulate_cli_errors_exit_2_and_write_nothing(tmp_path):
+    design, bank = _shipped()
+    out = tmp_path / "study"
+    runner = CliRunner()
+    r = runner.invoke(main, ["simulate", design, "--bank", bank, "--out", str(out), "--theta", "normal:0"])
+    assert r.exit_code == 2 and "--theta" in r.output
+    assert not out.exists() or not any(out.iterdir())
+    r = runner.invoke(main, ["simulate", design, "--bank", bank, "--out", str(out), "--perturb", "q=1"])
+    assert r.exit_code == 2 and "--perturb" in r.output
+    bad_design = tmp_path / "bad.toml"
+    bad_design.write_text("[stopping]\nmax_items = 0\n")
+    r = runner.invoke(main, ["simulate", str(bad_design), "--bank", bank, "--out", str(out)])
+    assert r.exit_code == 2 and "max_items" in r.output
+    assert not out.exists() or not any(out.iterdir())
+
+
+def test_tune_cli(tmp_path):
+    design, bank = _shipped()
+    out = tmp_path / "tune"
+    r = CliRunner().invoke(main, ["tune", design, "--bank", bank, "--vary", "stopping.se=0.3,0.5",
+                                  "--vary", "stopping.max_items=10,15", "--examinees", "120", "--out", str(out)])
+    assert r.exit_code == 0, r.output
+    rows = json.loads((out / "tuning.json").read_text())["rows"]
+    assert len(rows) == 4
+    by = {(x["stopping.se"], x["stopping.max_items"]): x for x in rows}
+    # common random numbers: a looser SE target never lengthens the test of the same examinees
+    assert by[(0.5, 15)]["mean_length"] <= by[(0.3, 15)]["mean_length"]
+    assert any(x["frontier"] for x in rows)
+    r = CliRunner().invoke(main, ["tune", design, "--bank", bank, "--vary", "stopping.nonsense=1,2",
+                                  "--out", str(tmp_path / "t2")])
+    assert r.exit_code == 2 and "nonsense" in r.output
+
+
+def test_efficient_frontier():
+    from adaptive_engine.tuning import efficient_frontier
+
+    front = efficient_frontier([10, 20, 20, 30], [0.5, 0.3, 0.4, 0.3], [0.9, 0.9, 0.9, 0.95])
+    assert front.tolist() == [True, True, False, True]
+
+
+def test_every_simulation_command_has_help():
+    runner = CliRunner()
+    for path in (["simulate"], ["tune"], ["exposure"], ["exposure", "calibrate"], ["demo"]):
+        r = runner.invoke(main, [*path, "--help"])
+        assert r.exit_code == 0 and len(r.output.strip().splitlines()) > 3, path
+
+
+def test_demo_runs(tmp_path, monkeypatch):
+    _shipped()
+    monkeypatch.chdir(tmp_path)
+    r = CliRunner().invoke(main, ["demo", "--examinees", "200"])
+    assert r.exit_code == 0, r.output
+    assert (tmp_path / "demo_output" / "report.html").exists()
+    assert "staff-climate" in r.output and "stopped:" in r.output
