@@ -36,13 +36,14 @@ from typing import NamedTuple
 
 import attrs
 import numpy as np
+from scipy import sparse
 
 from . import ability, models
 from .errors import AdaptiveEngineError, Problem, ResponseDataError
 
 METHODS = ("mle", "map", "eap", "wle")
-#: Rows per block.  Small enough that an EAP block of log posteriors (rows x grid points)
-#: stays in the processor cache; results do not depend on it.
+#: Rows per block: bounds memory at a few (rows x grid points) arrays; results do not
+#: depend on it.
 DEFAULT_CHUNK_SIZE = 2_000
 #: Grid step of the default EAP grid (see ability.DEFAULT_GRID for why 0.05 is enough).
 GRID_STEP = 0.05
@@ -274,19 +275,15 @@ def _grid_groups(mean, sd, grid):
 
 
 def _flat_log_table(source, grid) -> np.ndarray:
-    """Log probabilities as rows ``item * C + category`` of length G, plus a zero row last.
-
-    The zero row is what padding looks up: adding 0.0 leaves a log posterior bit-identical.
-    """
+    """Log probabilities as rows ``item * C + category`` of length G, shape (n * C, G)."""
     def make():
         if isinstance(source, models.ItemParameters):
             table = models.log_probabilities(*models.outer(source, grid))
         else:
             table = source.log_probability_table(grid)
         n, g, c = table.shape
-        flat = np.empty((n * c + 1, g))
-        flat[:-1] = table.transpose(0, 2, 1).reshape(n * c, g)
-        flat[-1] = 0.0
+        # categories an item lacks are never looked up; 0 keeps the table finite
+        flat = np.ascontiguousarray(np.where(np.isfinite(table), table, 0.0).transpose(0, 2, 1)).reshape(n * c, g)
         flat.setflags(write=False)
         return flat
 
@@ -294,6 +291,21 @@ def _flat_log_table(source, grid) -> np.ndarray:
     if cached is None:
         return make()
     return cached(("estimation.flat_log_table", np.asarray(grid).tobytes()), make)
+
+
+def _grid_log_likelihood(table, lookup, answered) -> np.ndarray:
+    """Log-likelihood of each row's answers on the grid, shape (B, G).
+
+    A sparse (rows x table rows) selection matrix times the table: for every row, scipy
+    adds that row's table rows in the order of its answers, so a row's sum does not
+    depend on the other rows or on padding (padding is simply not stored).
+    """
+    counts = answered.sum(axis=1)
+    indptr = np.concatenate([[0], np.cumsum(counts)])
+    indices = lookup[answered]  # row-major: each row's answers in their column order
+    select = sparse.csr_array((np.ones(indices.size), indices, indptr),
+                              shape=(lookup.shape[0], table.shape[0]))
+    return np.asarray(select @ table)
 
 
 def _posterior_moments(log_post, grid):
@@ -307,21 +319,18 @@ def _posterior_moments(log_post, grid):
 
 
 def _eap_arrays(data: _Data, mean, sd, grid, chunk_size):
-    n_persons, width = data.items.shape
+    n_persons = data.items.shape[0]
     theta = np.empty(n_persons)
     se = np.empty(n_persons)
     n_cat = data.params.max_categories
     for grid_g, rows in _grid_groups(mean, sd, grid):
         table = _flat_log_table(data.source, grid_g)
-        zero_row = table.shape[0] - 1
         for part in _chunks(rows.size, chunk_size):
             r = rows[part]
-            lookup = np.where(data.answered[r], data.items[r] * n_cat + data.responses[r], zero_row)
-            log_post = np.ascontiguousarray(ability.normal_log_prior(grid_g, mean[r], sd[r]))
-            buffer = np.empty_like(log_post)
-            for j in range(width):
-                np.take(table, lookup[:, j], axis=0, out=buffer)
-                log_post += buffer
+            answered = data.answered[r]
+            lookup = np.where(answered, data.items[r] * n_cat + data.responses[r], 0)
+            log_post = _grid_log_likelihood(table, lookup, answered)
+            log_post += ability.normal_log_prior(grid_g, mean[r], sd[r])
             theta[r], se[r] = _posterior_moments(log_post, grid_g)
     return theta, se
 
@@ -333,8 +342,8 @@ def eap(bank_or_params, items, responses, *, prior_mean=0.0, prior_sd=1.0, grid=
     The posterior under a normal prior is evaluated on ``grid`` (default: :func:`default_grid`
     of each row's prior, -7..7 in steps of 0.05 for N(0, 1)); the estimate is the posterior
     mean and the standard error the posterior SD.  Log probabilities come from the bank's
-    cached (items x grid x categories) table, gathered one answer column at a time, in
-    blocks of ``chunk_size`` rows, so memory stays at O(chunk_size x G).
+    cached (items x grid x categories) table and are summed per row by a sparse selection
+    product, in blocks of ``chunk_size`` rows, so memory stays at O(chunk_size x G).
 
     Parameters
     ----------
