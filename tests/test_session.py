@@ -1,0 +1,342 @@
+"""Tests of the live session controller (adaptive_engine.session) on the demo banks.
+
+The demo banks and designs are test input only.  What is checked against outside sources:
+the content rules (never an item twice, enemy items, blueprint maximums, minimum length)
+as stated by Kingsbury & Zara (1989) for constrained CAT; the live driver reproducing the
+simulation driver item by item (the decision kernel run on a batch of many examinees) --
+an oracle outside the controller.  The maximum-information / EAP checks against published
+formulas are in test_session_cli.py.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from adaptive_engine import kernel, models, randomness
+from adaptive_engine.bank import load_bank
+from adaptive_engine.context import build_context
+from adaptive_engine.design_file import parse_design, read_design
+from adaptive_engine.errors import AdaptiveEngineError, DesignError, SessionError
+from adaptive_engine.session import (
+    ProcessCache, exposure_rates, list_sessions, pending_item, session_result, show_session,
+    start_session, submit_answer,
+)
+from adaptive_engine.store import open_store
+
+ROOT = Path(__file__).resolve().parents[1]
+LICENSING = read_design(ROOT / "simulations" / "licensing_exam.toml")
+SURVEY = read_design(ROOT / "simulations" / "staff_climate_survey.toml")
+SYMPSON = read_design(ROOT / "simulations" / "sympson_hetter.toml")
+OPERATOR_BANK = load_bank(ROOT / "item_banks" / "meridian_valley_operator.csv")
+SURVEY_BANK = load_bank(ROOT / "item_banks" / "staff_climate_survey.csv")
+CASES = {"licensing": (LICENSING, OPERATOR_BANK), "survey": (SURVEY, SURVEY_BANK),
+         "sympson_hetter": (SYMPSON, OPERATOR_BANK)}
+PARAMETER_KEYS = {"a", "b", "c", "d", "thresholds", "b1", "b2", "model", "params"}
+
+
+def simulated_answer(bank, item_id, theta, rng):
+    """A category drawn from the item's model at ``theta`` (test input, not a reference)."""
+    row = bank.index_of[item_id]
+    p = models.probabilities(bank.params.take(np.array([row])), np.array([theta]))[0]
+    return int(np.searchsorted(np.cumsum(p), rng.random(), side="right").clip(0, p.size - 1))
+
+
+def run_session(store, design, bank, *, seed, theta, answer_seed, cache=None, reopen=None):
+    """Start a session and answer until done; returns every reply in order."""
+    rng = np.random.default_rng(answer_seed)
+    reply = start_session(store, design, bank, seed=seed, cache=cache)
+    replies = [reply]
+    while not reply["done"]:
+        if reopen is not None:
+            store, cache = reopen()
+        reply = submit_answer(store, reply["session_id"], reply["item_id"],
+                              simulated_answer(bank, reply["item_id"], theta, rng), cache=cache)
+        replies.append(reply)
+    return replies
+
+
+@pytest.fixture(scope="module")
+def store(tmp_path_factory):
+    s = open_store(tmp_path_factory.mktemp("session") / "store.db")
+    yield s
+    s.close()
+
+
+def _walk(obj):
+    if isinstance(obj, dict):
+        for k, v in obj.items():
+            yield k
+            yield from _walk(v)
+    elif isinstance(obj, list):
+        for v in obj:
+            yield from _walk(v)
+
+
+# --------------------------------------------------------------------------------------
+# properties of whole sessions
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(case=st.sampled_from(sorted(CASES)), seed=st.integers(0, 2**63 - 1),
+       theta=st.floats(-3, 3), answer_seed=st.integers(0, 2**32 - 1))
+def test_sessions_keep_the_content_rules(store, case, seed, theta, answer_seed):
+    """Common practice / Kingsbury & Zara (1989): no repeats, enemies apart, area maximums kept,
+    no stop before the minimum length unless no item is eligible."""
+    design, bank = CASES[case]
+    replies = run_session(store, design, bank, seed=seed, theta=theta, answer_seed=answer_seed)
+    sid = replies[0]["session_id"]
+    given_ids = [r["item_id"] for r in replies[:-1]]
+    assert len(given_ids) == len(set(given_ids))
+    rows = bank.indices(given_ids)
+    if design.blueprint.enemies:
+        groups = [g for r in rows for g in bank.enemy_groups[r]]
+        assert len(groups) == len(set(groups)), "two items of one enemy group were given"
+    operational = rows[bank.status[rows] == "operational"]
+    for rule in design.blueprint.areas:
+        count = int(np.sum(bank.area[operational] == rule.name))
+        if rule.max is not None:
+            assert count <= rule.max, rule.name
+    last = replies[-1]
+    assert last["done"] and last["item_id"] is None
+    result = session_result(store, sid)
+    assert result == last["result"]
+    assert result["items"]["scored"] == operational.size
+    if last["stop_reason"] != "no_eligible_item":
+        assert operational.size >= design.stopping.min_items
+    assert operational.size <= design.stopping.max_items
+    # the app never sees item parameters
+    for reply in replies:
+        assert not PARAMETER_KEYS & set(_walk(reply))
+
+
+@settings(max_examples=6, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(case=st.sampled_from(["licensing", "survey"]), seed=st.integers(0, 2**63 - 1),
+       theta=st.floats(-2.5, 2.5), answer_seed=st.integers(0, 2**32 - 1),
+       resume_at=st.sets(st.integers(1, 30), min_size=1, max_size=3))
+def test_resumed_session_equals_uninterrupted(tmp_path_factory, case, seed, theta, answer_seed, resume_at):
+    """A session picked up by a new store object and a fresh process cache (as after a
+    crash, or by another process) at the answers in ``resume_at`` gives the same items,
+    estimates and result as one served straight through."""
+    design, bank = CASES[case]
+    folder = tmp_path_factory.mktemp("resume")
+    with open_store(folder / "a.db") as plain_store:
+        straight = run_session(plain_store, design, bank, seed=seed, theta=theta,
+                               answer_seed=answer_seed, cache=ProcessCache())
+    opened = [open_store(folder / "b.db")]
+    current = [opened[0], ProcessCache()]
+    count = [0]
+
+    def reopen():
+        count[0] += 1
+        if count[0] in resume_at:
+            # older store objects stay open until the end: closing the last connection of a
+            # WAL database checkpoints it (fsync), which is slow and beside the point here
+            opened.append(open_store(folder / "b.db"))
+            current[:] = [opened[-1], ProcessCache()]
+        return current[0], current[1]
+
+    resumed = run_session(current[0], design, bank, seed=seed, theta=theta,
+                          answer_seed=answer_seed, cache=current[1], reopen=reopen)
+    for s in opened:
+        s.close()
+    strip = [{k: v for k, v in r.items() if k != "session_id"} for r in straight]
+    assert strip == [{k: v for k, v in r.items() if k != "session_id"} for r in resumed]
+
+
+def test_stale_cache_is_rebuilt_when_another_process_moved_on(tmp_path):
+    """Two caches (two processes) take turns on one session: each must notice the other's
+    answers through the stored sequence number and rebuild, never reuse a stale state."""
+    design, bank = CASES["licensing"]
+    with open_store(tmp_path / "ref.db") as ref:
+        straight = run_session(ref, design, bank, seed=11, theta=0.4, answer_seed=5, cache=ProcessCache())
+    caches = [ProcessCache(), ProcessCache()]
+    stores = [open_store(tmp_path / "shared.db"), open_store(tmp_path / "shared.db")]
+    turn = [0]
+
+    def reopen():
+        turn[0] += 1
+        return stores[turn[0] % 2], caches[turn[0] % 2]
+
+    shared = run_session(stores[0], design, bank, seed=11, theta=0.4, answer_seed=5,
+                         cache=caches[0], reopen=reopen)
+    for s in stores:
+        s.close()
+    assert [r["item_id"] for r in shared] == [r["item_id"] for r in straight]
+    assert [r["theta"] for r in shared] == [r["theta"] for r in straight]
+    assert shared[-1]["result"] == straight[-1]["result"]
+
+
+def test_live_session_replays_simulated_examinee(store):
+    """One kernel, two drivers: a live session seeded with ``examinee_seeds(S, N)[i]`` and
+    given examinee i's answers makes the same picks as row i of a simulated batch
+    (the batch run of the kernel is the oracle)."""
+    design, bank = CASES["licensing"]
+    ctx = build_context(design, bank)
+    n = 6
+    seeds = randomness.examinee_seeds(2024, n)
+    state, _ = kernel.start(ctx, randomness.stream_key(seeds))
+    rng = np.random.default_rng(7)
+    true_theta = rng.normal(size=n)
+    rows = np.arange(n)
+    answers = [[] for _ in range(n)]
+    while not state.done.all():
+        live = rows[~state.done]
+        items = state.pending[live]
+        p = models.probabilities(bank.params.take(items), true_theta[live])
+        resp = (rng.random(live.size)[:, None] > np.cumsum(p, axis=1)).sum(axis=1)
+        for r, x in zip(live, resp):
+            answers[r].append(int(x))
+        kernel.answer(ctx, state, live, resp)
+    batch_reports = kernel.finish(ctx, state, rows)
+    for i in range(n):
+        reply = start_session(store, design, bank, seed=int(seeds[i]))
+        given_ids = []
+        for x in answers[i]:
+            given_ids.append(reply["item_id"])
+            reply = submit_answer(store, reply["session_id"], reply["item_id"], x)
+        assert reply["done"]
+        expected = [str(bank.item_ids[j]) for j in state.items[i, : state.n_given[i]]]
+        assert given_ids == expected
+        assert reply["result"]["theta"] == pytest.approx(batch_reports[i]["theta"], abs=1e-12)
+
+
+# --------------------------------------------------------------------------------------
+# requests: replies, idempotency, refusals
+
+
+def _started(store, *, seed=3, design=LICENSING, bank=OPERATOR_BANK):
+    return start_session(store, design, bank, seed=seed, examinee="candidate-7")
+
+
+def test_reply_shapes_and_pending_item(store):
+    reply = _started(store)
+    assert set(reply) == {"session_id", "item_id", "item", "theta", "se", "items_given", "done"}
+    sid, iid = reply["session_id"], reply["item_id"]
+    row = OPERATOR_BANK.index_of[iid]
+    assert reply["item"] == {"item_id": iid, "area": OPERATOR_BANK.area[row],
+                             "label": OPERATOR_BANK.label[row], "n_categories": 2}
+    assert pending_item(store, sid)["item_id"] == iid
+    assert any(s["session_id"] == sid and s["status"] == "active" for s in list_sessions(store, status="active"))
+    shown = show_session(store, sid)
+    assert shown["status"] == "active" and shown["administered"] == [] and shown["pending_item"] == iid
+    with pytest.raises(SessionError, match="still active"):
+        session_result(store, sid)
+
+
+def test_same_answer_twice_is_recorded_once(store):
+    reply = _started(store, seed=99)
+    sid, iid = reply["session_id"], reply["item_id"]
+    first = submit_answer(store, sid, iid, 1, elapsed=12.5)
+    before = store.dump()
+    again = submit_answer(store, sid, iid, "1")  # the CLI sends text
+    assert again == first
+    assert store.dump() == before
+    with pytest.raises(SessionError, match="already answered with 1"):
+        submit_answer(store, sid, iid, 0)
+    assert store.dump() == before
+    events = store.events(sid)
+    assert [e["kind"] for e in events] == ["item_given", "answer", "item_given"]
+    assert [e["seq"] for e in events] == [1, 2, 3]
+    assert events[1]["elapsed"] == 12.5 and events[1]["response"] == 1
+
+
+def test_resend_after_finish_returns_the_final_reply(store):
+    design = parse_design("[blueprint]\nitem_sets = false\n[stopping]\nmin_items = 2\nmax_items = 2\n")
+    reply = start_session(store, design, OPERATOR_BANK, seed=1)
+    sid = reply["session_id"]
+    reply = submit_answer(store, sid, reply["item_id"], 1)
+    last_item = reply["item_id"]
+    final = submit_answer(store, sid, last_item, 0)
+    assert final["done"] and final["result"]["items"]["scored"] == 2
+    assert submit_answer(store, sid, last_item, 0) == final
+    with pytest.raises(SessionError, match="finished"):
+        submit_answer(store, sid, "MV-SRC-001", 1)
+    kinds = [e["kind"] for e in store.events(sid)]
+    assert kinds == ["item_given", "answer", "item_given", "answer", "finished"]
+
+
+BAD_ANSWERS = [
+    ("unknown session", lambda sid, iid: ("no-such-session", iid, 1, None), "unknown session"),
+    ("not the pending item", lambda sid, iid: (sid, "MV-SRC-001" if iid != "MV-SRC-001" else "MV-SRC-002", 1, None),
+     "not the pending item"),
+    ("unknown item", lambda sid, iid: (sid, "NOT-AN-ITEM", 1, None), "not the pending item"),
+    ("category too high", lambda sid, iid: (sid, iid, 2, None), r"outside the categories 0\.\.1"),
+    ("negative category", lambda sid, iid: (sid, iid, -1, None), "outside the categories"),
+    ("fraction", lambda sid, iid: (sid, iid, 0.5, None), "integer"),
+    ("float one", lambda sid, iid: (sid, iid, 1.0, None), "integer"),
+    ("text", lambda sid, iid: (sid, iid, "yes", None), "integer"),
+    ("boolean", lambda sid, iid: (sid, iid, True, None), "integer"),
+    ("missing", lambda sid, iid: (sid, iid, None, None), "integer"),
+    ("negative elapsed", lambda sid, iid: (sid, iid, 1, -3.0), "elapsed"),
+    ("item id not text", lambda sid, iid: (sid, 17, 1, None), "item id must be text"),
+]
+
+
+@pytest.mark.parametrize("name,make,message", BAD_ANSWERS, ids=[b[0] for b in BAD_ANSWERS])
+def test_bad_answers_are_refused_and_change_nothing(store, name, make, message):
+    reply = _started(store, seed=hash(name) % 1000)
+    submit_answer(store, reply["session_id"], reply["item_id"], 0)
+    reply = pending_item(store, reply["session_id"])
+    before = store.dump()
+    sid, iid, response, elapsed = make(reply["session_id"], reply["item_id"])
+    with pytest.raises(SessionError, match=message) as info:
+        submit_answer(store, sid, iid, response, elapsed=elapsed)
+    assert isinstance(info.value, AdaptiveEngineError) and isinstance(info.value, ValueError)
+    assert info.value.location  # names where: the session / item
+    assert store.dump() == before
+    # the session still goes on normally afterwards
+    nxt = submit_answer(store, reply["session_id"], reply["item_id"], 1)
+    assert nxt["items_given"] == 2
+
+
+def test_response_range_of_rated_items(store):
+    reply = start_session(store, SURVEY, SURVEY_BANK, seed=4)
+    before = store.dump()
+    with pytest.raises(SessionError, match=r"0\.\.4"):
+        submit_answer(store, reply["session_id"], reply["item_id"], 5)
+    assert store.dump() == before
+    assert submit_answer(store, reply["session_id"], reply["item_id"], 4)["items_given"] == 1
+
+
+@pytest.mark.parametrize("kwargs,message", [
+    ({"seed": -1}, "seed"), ({"seed": 2**63}, "seed"), ({"seed": 1.5}, "seed"),
+    ({"prior_sd": 0.0}, "prior_sd"), ({"prior_mean": float("nan")}, "prior_mean"),
+    ({"examinee": 12}, "examinee"),
+])
+def test_bad_start_requests_write_nothing(store, kwargs, message):
+    before = store.dump()
+    with pytest.raises(SessionError, match=message):
+        start_session(store, LICENSING, OPERATOR_BANK, **kwargs)
+    assert store.dump() == before
+
+
+def test_design_that_does_not_fit_the_bank_is_refused(store):
+    before = store.dump()
+    with pytest.raises(DesignError):
+        start_session(store, LICENSING, SURVEY_BANK, seed=1)  # the survey has no such areas
+    assert store.dump() == before
+
+
+def test_duplicate_session_id_is_refused(store):
+    start_session(store, SURVEY, SURVEY_BANK, seed=1, session_id="fixed-id-1")
+    before = store.dump()
+    with pytest.raises(SessionError, match="already exists"):
+        start_session(store, SURVEY, SURVEY_BANK, seed=2, session_id="fixed-id-1")
+    assert store.dump() == before
+
+
+def test_prior_and_exposure_counts(tmp_path):
+    with open_store(tmp_path / "e.db") as s:
+        replies = [run_session(s, SURVEY, SURVEY_BANK, seed=k, theta=0.0, answer_seed=k) for k in range(3)]
+        given = sum(len(r) - 1 for r in replies)
+        rates = exposure_rates(s, SURVEY_BANK)
+        assert rates["sessions_started"] == 3
+        assert sum(rates["rates"].values()) * 3 == pytest.approx(given)
+        high = start_session(s, SURVEY, SURVEY_BANK, seed=1, prior_mean=1.5, prior_sd=0.5)
+        row = s.session_row(high["session_id"])
+        assert (row["prior_mean"], row["prior_sd"]) == (1.5, 0.5)
