@@ -1,0 +1,261 @@
+"""The ``adaptive-engine session`` commands, end to end, checked against published formulas.
+
+The minimal design (simulations/minimal.toml) is run from start to result on the demo bank
+item_banks/meridian_valley_operator.csv through the CLI.  Every item is checked against an
+independent computation written here from the sources, reading the bank CSV with the
+standard library:
+
+* item information of the 3PL -- Lord (1980), *Applications of IRT to Practical Testing
+  Problems*, eq. 10-4 -- and its 4PL generalisation -- Magis (2013), *Applied Psychological
+  Measurement* 37(4), eq. 5:  I(theta) = D^2 a^2 (P - c)^2 (d - P)^2 / ((d - c)^2 P (1 - P));
+  with c = 0, d = 1 it is the 2PL's D^2 a^2 P (1 - P);
+* the EAP estimate and posterior SD by quadrature -- Bock & Mislevy (1982), *Applied
+  Psychological Measurement* 6, 431-444 -- with a N(0, 1) prior; oracle for the final values:
+  scipy.integrate.quad.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+from scipy import integrate, stats
+
+from adaptive_engine.cli import main
+from adaptive_engine.store import open_store
+
+ROOT = Path(__file__).resolve().parents[1]
+MINIMAL = ROOT / "simulations" / "minimal.toml"
+LICENSING = ROOT / "simulations" / "licensing_exam.toml"
+BANK_CSV = ROOT / "item_banks" / "meridian_valley_operator.csv"
+SESSION_COMMANDS = ["start", "answer", "show", "list", "try"]
+
+
+# --------------------------------------------------------------------------------------
+# independent formulas
+
+
+def read_bank_rows():
+    with open(BANK_CSV, newline="", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    for r in rows:
+        r["a"], r["b"] = float(r["a"]), float(r["b"])
+        r["c"] = float(r["c"] or 0.0)
+        r["d"] = float(r["d"] or 1.0)
+        r["enemies"] = {g for g in r["enemy_group"].split(";") if g}
+    return rows
+
+
+def p_correct(item, theta, scaling=1.0):
+    """4PL response function (Barton & Lord 1981; Magis 2013 eq. 1); D = 1 for a CSV bank."""
+    return item["c"] + (item["d"] - item["c"]) / (1.0 + np.exp(-scaling * item["a"] * (theta - item["b"])))
+
+
+def information(item, theta, scaling=1.0):
+    """Lord (1980) eq. 10-4 / Magis (2013) eq. 5, written out here."""
+    p = p_correct(item, theta, scaling)
+    c, d = item["c"], item["d"]
+    return (scaling * item["a"]) ** 2 * (p - c) ** 2 * (d - p) ** 2 / ((d - c) ** 2 * p * (1.0 - p))
+
+
+def posterior_density(theta, answered):
+    dens = stats.norm.pdf(theta)
+    for item, x in answered:
+        p = p_correct(item, theta)
+        dens = dens * (p if x == 1 else 1.0 - p)
+    return dens
+
+
+def eap_fine_grid(answered):
+    """EAP and posterior SD by quadrature on a fine grid (Bock & Mislevy 1982)."""
+    grid = np.linspace(-8.0, 8.0, 4001)
+    w = posterior_density(grid, answered)
+    w = w / w.sum()
+    mean = float(np.sum(w * grid))
+    return mean, float(math.sqrt(np.sum(w * (grid - mean) ** 2)))
+
+
+def eap_quad(answered):
+    """The same integrals with scipy.integrate.quad as the oracle."""
+    f = lambda t, k: t**k * posterior_density(t, answered)  # noqa: E731
+    norm = integrate.quad(f, -12, 12, args=(0,), points=[0.0], limit=200)[0]
+    mean = integrate.quad(f, -12, 12, args=(1,), points=[0.0], limit=200)[0] / norm
+    second = integrate.quad(f, -12, 12, args=(2,), points=[0.0], limit=200)[0] / norm
+    return mean, math.sqrt(second - mean**2)
+
+
+def independent_next_item(rows, answered_ids, theta, max_items):
+    """Maximum-information operational item at theta among those the rules allow.
+
+    The rules of the design (enemies and item sets on by default): no item twice, no second
+    item of an enemy group, an item set once entered is finished first, and a set is only
+    entered if it fits in the remaining test length.  Returns (item id or set-continuation
+    members, information table of the eligible items).
+    """
+    given = set(answered_ids)
+    blocked = set().union(*(r["enemies"] for r in rows if r["item_id"] in given)) if given else set()
+    if answered_ids:
+        last = next(r for r in rows if r["item_id"] == answered_ids[-1])
+        if last["item_set"]:
+            left = [r["item_id"] for r in rows if r["item_set"] == last["item_set"] and r["item_id"] not in given]
+            if left:
+                return "set", left
+    slots = max_items - len(answered_ids)
+    set_size = {}
+    for r in rows:
+        if r["item_set"]:
+            set_size[r["item_set"]] = set_size.get(r["item_set"], 0) + 1
+    info = {}
+    for r in rows:
+        if r["status"] != "operational" or r["item_id"] in given or r["enemies"] & blocked:
+            continue
+        if r["item_set"] and set_size[r["item_set"]] > slots:
+            continue
+        info[r["item_id"]] = float(information(r, theta))
+    return "information", info
+
+
+# --------------------------------------------------------------------------------------
+
+
+def invoke(args, **kwargs):
+    result = CliRunner().invoke(main, args, catch_exceptions=False, **kwargs)
+    return result
+
+
+@pytest.mark.parametrize("command", SESSION_COMMANDS)
+def test_every_session_command_has_help(command):
+    result = invoke(["session", command, "--help"])
+    assert result.exit_code == 0
+    assert "Usage:" in result.output
+    text = result.output.split("Options:")[0].replace("Usage:", "")
+    assert len(text.split()) > 8, f"session {command} has no help text"
+
+
+@pytest.mark.parametrize("true_theta,answer_seed", [(-1.2, 1), (0.3, 2), (1.8, 3)])
+def test_minimal_design_through_the_cli_matches_independent_eap_and_information(tmp_path, true_theta, answer_seed):
+    rows = read_bank_rows()
+    by_id = {r["item_id"]: r for r in rows}
+    db = str(tmp_path / "s.db")
+    out = invoke(["session", "start", "--db", db, "--design", str(MINIMAL), "--bank", str(BANK_CSV),
+                  "--examinee", "candidate-1", "--seed", "5"])
+    assert out.exit_code == 0, out.output
+    reply = json.loads(out.output)
+    assert set(reply) >= {"session_id", "item_id", "done"} and reply["done"] is False
+    sid = reply["session_id"]
+    rng = np.random.default_rng(answer_seed)
+    answered = []  # (bank row dict, response)
+    max_items, min_items, se_target = 15, 5, 0.3  # minimal.toml
+    theta = 0.0  # [opening] theta
+    while True:
+        iid = reply["item_id"]
+        ids = [r["item_id"] for r, _ in answered]
+        kind, found = independent_next_item(rows, ids, theta, max_items)
+        if kind == "set":
+            assert iid in found, f"item set in progress, got {iid}"
+        else:
+            best = max(found.values())
+            # the picked item is the maximum-information item at the independent EAP
+            # (ties within 1e-9 allowed: the two EAPs differ by quadrature error only)
+            assert iid in found, f"{iid} is not eligible"
+            assert found[iid] >= best - 1e-9, (iid, found[iid], best)
+        x = int(rng.random() < p_correct(by_id[iid], true_theta))
+        answered.append((by_id[iid], x))
+        out = invoke(["session", "answer", sid, iid, str(x), "--db", db])
+        assert out.exit_code == 0, out.output
+        reply = json.loads(out.output)
+        theta, sd = eap_fine_grid(answered)
+        assert reply["theta"] == pytest.approx(theta, abs=1e-3)
+        assert reply["se"] == pytest.approx(sd, abs=1e-3)
+        n = len(answered)
+        should_stop = n >= max_items or (n >= min_items and sd <= se_target)
+        if abs(sd - se_target) > 1e-4:
+            assert reply["done"] == should_stop, (n, sd)
+        if reply["done"]:
+            break
+    assert reply["item_id"] is None
+    quad_theta, quad_se = eap_quad(answered)
+    result = reply["result"]
+    assert result["theta"] == pytest.approx(quad_theta, abs=1e-3)
+    assert result["se"] == pytest.approx(quad_se, abs=1e-3)
+    assert result["items"]["scored"] == len(answered)
+    shown = json.loads(invoke(["session", "show", sid, "--db", db]).output)
+    assert shown["status"] == "finished"
+    assert [a["item_id"] for a in shown["administered"]] == [r["item_id"] for r, _ in answered]
+    assert [a["response"] for a in shown["administered"]] == [x for _, x in answered]
+    assert shown["result"]["theta"] == result["theta"]
+    listed = json.loads(invoke(["session", "list", "--db", db, "--status", "finished"]).output)
+    assert [s["session_id"] for s in listed] == [sid]
+    assert json.loads(invoke(["session", "list", "--db", db, "--status", "active"]).output) == []
+
+
+def _start(db, seed=1):
+    out = invoke(["session", "start", "--db", db, "--design", str(LICENSING), "--bank", str(BANK_CSV),
+                  "--seed", str(seed)])
+    assert out.exit_code == 0, out.output
+    return json.loads(out.output)
+
+
+@pytest.mark.parametrize("args,message", [
+    (lambda sid, iid: [sid, iid, "x"], "integer"),
+    (lambda sid, iid: [sid, iid, "2"], "outside the categories"),
+    (lambda sid, iid: [sid, iid, "1.0"], "integer"),
+    (lambda sid, iid: ["no-such", iid, "1"], "unknown session"),
+    (lambda sid, iid: [sid, "MV-SRC-001" if iid != "MV-SRC-001" else "MV-SRC-002", "1"], "not the pending item"),
+])
+def test_cli_refusals_exit_2_and_change_nothing(tmp_path, args, message):
+    db = str(tmp_path / "s.db")
+    reply = _start(db)
+    with open_store(db) as store:
+        before = store.dump()
+    out = CliRunner().invoke(main, ["session", "answer", *args(reply["session_id"], reply["item_id"]), "--db", db])
+    assert out.exit_code == 2
+    assert message in out.output
+    assert "Traceback" not in out.output
+    with open_store(db) as store:
+        assert store.dump() == before
+
+
+def test_cli_errors_for_missing_files_and_store(tmp_path):
+    out = CliRunner().invoke(main, ["session", "show", "abc", "--db", str(tmp_path / "none.db")])
+    assert out.exit_code == 2 and "no session store" in out.output
+    assert not (tmp_path / "none.db").exists()
+    out = CliRunner().invoke(main, ["session", "start", "--db", str(tmp_path / "s.db"),
+                                    "--design", str(tmp_path / "missing.toml"), "--bank", str(BANK_CSV)])
+    assert out.exit_code == 2 and "missing.toml" in out.output
+    not_a_db = tmp_path / "text.db"
+    not_a_db.write_text("this is not a database\n" * 50)
+    out = CliRunner().invoke(main, ["session", "list", "--db", str(not_a_db)])
+    assert out.exit_code == 2 and "session store" in out.output
+
+
+def test_cli_idempotent_resend(tmp_path):
+    db = str(tmp_path / "s.db")
+    reply = _start(db, seed=8)
+    args = ["session", "answer", reply["session_id"], reply["item_id"], "1", "--db", db, "--elapsed", "20"]
+    first = invoke(args)
+    with open_store(db) as store:
+        before = store.dump()
+    second = invoke(args)
+    assert first.exit_code == second.exit_code == 0
+    assert first.output == second.output
+    with open_store(db) as store:
+        assert store.dump() == before
+
+
+def test_try_takes_the_test_in_the_terminal():
+    # 40 answers are more than any test of the minimal design needs; a bad answer first
+    typed = "7\nmaybe\n" + "1\n0\n" * 20
+    out = CliRunner().invoke(main, ["session", "try", "--design", str(MINIMAL), "--bank", str(BANK_CSV),
+                                    "--seed", "3"], input=typed)
+    assert out.exit_code == 0, out.output
+    assert "refused" in out.output and "outside the categories 0..1" in out.output
+    assert "must be an integer" in out.output
+    report = json.loads(out.output.split("result:")[-1])
+    assert report["items"]["scored"] >= 5 and report["se"] is not None
+    assert "MV-" in out.output and "[" in out.output  # item id and area shown
