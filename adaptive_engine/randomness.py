@@ -11,9 +11,10 @@ function.  That makes the draws
 * resumable: the whole generator state of a session is its key and its position, so a
   session restored from the store continues the same stream.
 
-The synthetic examinees of a simulation (true abilities, simulated answers) are drawn
-with an ordinary :class:`numpy.random.Generator`; only the test's own decisions use these
-streams.
+The true abilities of a simulation's synthetic examinees are drawn with an ordinary
+:class:`numpy.random.Generator`; their simulated answers use these streams with their own
+purpose (``SIMULATED_ANSWER``), so that an examinee's answers do not depend on how the
+run is cut into chunks.
 """
 
 from __future__ import annotations
