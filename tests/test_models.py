@@ -201,8 +201,10 @@ def test_two_parameter_curve_with_normal_ogive_scaling(a, b, theta):
     p1 = models.probabilities(params, theta)[0, 1]
     np.testing.assert_allclose(p1, expit(1.702 * a * (theta - b)), rtol=1e-12, atol=1e-15)
     # 2PL information D^2 a^2 P Q (Birnbaum, in Lord & Novick 1968, ch. 20)
+    # (Q from expit(-z), not 1 - P, which cancels when P is near 1)
+    q1 = expit(-1.702 * a * (theta - b))
     np.testing.assert_allclose(models.information(params, theta)[0],
-                               1.702**2 * a**2 * p1 * (1 - p1), rtol=1e-9, atol=1e-15)
+                               1.702**2 * a**2 * p1 * q1, rtol=1e-9, atol=1e-15)
 
 
 def test_take_and_outer_shapes():
