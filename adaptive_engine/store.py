@@ -43,6 +43,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Callable, Iterator
 
+import attrs
 import numpy as np
 import sqlite_utils
 
@@ -110,11 +111,13 @@ def design_content(design: Design) -> tuple[str, str, str | None]:
     from .design_file import design_to_toml
 
     toml_text = design_to_toml(design)
+    # the id ignores where the design was read from (the header comment names the file)
+    neutral = design_to_toml(attrs.evolve(design, source=""))
     params = None
     if design.exposure_parameters is not None:
         params = json.dumps({str(k): float(v) for k, v in sorted(design.exposure_parameters.items())},
                             separators=(",", ":"))
-    return _sha256(toml_text + "\n" + (params or "")), toml_text, params
+    return _sha256(neutral + "\n" + (params or "")), toml_text, params
 
 
 def design_from_content(toml_text: str, params_json: str | None, *, design_id: str = "") -> Design:

@@ -1,0 +1,139 @@
+"""The SQLite session store: schema contract, content-addressed banks and designs, atomic writes.
+
+The schema names are a contract with the calibration helper (which reads ``events`` for
+pretest calibration), so they are checked column by column.  Round trips are checked
+against the original objects; rollback behaviour is SQLite's documented transaction
+semantics (BEGIN IMMEDIATE ... ROLLBACK leaves nothing).
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from adaptive_engine.bank import load_bank
+from adaptive_engine.design_file import design_to_toml, read_design
+from adaptive_engine.errors import SessionError
+from adaptive_engine.store import bank_content, design_content, open_store
+
+ROOT = Path(__file__).resolve().parents[1]
+BANK = load_bank(ROOT / "item_banks" / "meridian_valley_operator.csv")
+SURVEY_BANK = load_bank(ROOT / "item_banks" / "staff_climate_survey.csv")
+SH_DESIGN = read_design(ROOT / "simulations" / "sympson_hetter.toml")
+
+REQUIRED = {
+    "sessions": ["session_id", "examinee", "bank_id", "design_id", "status", "seed", "created_at",
+                 "updated_at", "state", "result"],
+    "banks": ["bank_id", "name", "content"],
+    "designs": ["design_id", "content"],
+    "events": ["event_id", "session_id", "seq", "kind", "item_id", "response", "scored", "theta", "se",
+               "criterion", "eligible", "rng_state", "elapsed", "created_at"],
+    "exposure_counts": ["bank_id", "item_id", "count"],
+}
+
+
+@pytest.fixture
+def store(tmp_path):
+    s = open_store(tmp_path / "store.db")
+    yield s
+    s.close()
+
+
+def test_schema_has_the_agreed_names(store):
+    for table, columns in REQUIRED.items():
+        have = [c.name for c in store.db[table].columns]
+        assert have[: len(columns)] == columns or set(columns) <= set(have), table
+    assert store.db["sessions"].pks == ["session_id"]
+    assert store.db["exposure_counts"].pks == ["bank_id", "item_id"]
+    assert store.db["events"].pks == ["event_id"]
+    unique = [ix for ix in store.db["events"].indexes if ix.unique and ix.columns == ["session_id", "seq"]]
+    assert unique
+    assert store.db.journal_mode == "wal"
+    assert store.conn.execute("PRAGMA busy_timeout").fetchone()[0] >= 1000
+
+
+def test_event_sequence_is_unique(store):
+    with store.writing():
+        store.append_events([{"session_id": "s", "seq": 1, "kind": "item_given"}])
+    with pytest.raises(sqlite3.IntegrityError):
+        with store.writing():
+            store.append_events([{"session_id": "s", "seq": 1, "kind": "answer"}])
+
+
+def test_bank_round_trip_and_content_address(store):
+    with store.writing():
+        bank_id = store.put_bank(BANK)
+        assert store.put_bank(BANK) == bank_id  # stored once per content
+        other = store.put_bank(SURVEY_BANK)
+    assert bank_id != other
+    assert store.conn.execute("SELECT COUNT(*) FROM banks").fetchone()[0] == 2
+    back = store.load_bank(bank_id)
+    assert list(back.item_ids) == list(BANK.item_ids)
+    for name in ("a", "b", "c", "d"):
+        np.testing.assert_array_equal(getattr(back, name), getattr(BANK, name))
+    assert list(back.area) == list(BANK.area) and back.enemy_groups == BANK.enemy_groups
+    assert bank_content(back)[0] == bank_id
+    survey = store.load_bank(other)
+    np.testing.assert_array_equal(survey.thresholds, SURVEY_BANK.thresholds)
+    assert list(survey.model) == list(SURVEY_BANK.model)
+
+
+def test_design_round_trip_keeps_exposure_parameters_without_files(store, tmp_path):
+    with store.writing():
+        design_id = store.put_design(SH_DESIGN)
+    back = store.load_design(design_id)
+    assert design_to_toml(back).splitlines()[1:] == design_to_toml(SH_DESIGN).splitlines()[1:]
+    assert back.exposure_parameters == SH_DESIGN.exposure_parameters
+    assert design_content(back)[0] == design_id
+    # a different parameter set is a different design
+    changed = SH_DESIGN.__class__(**{**{f: getattr(SH_DESIGN, f) for f in (
+        "opening", "scoring", "selection", "exposure", "blueprint", "stopping", "reporting")},
+        "exposure_parameters": {k: v / 2 for k, v in SH_DESIGN.exposure_parameters.items()}})
+    assert design_content(changed)[0] != design_id
+
+
+def test_failed_transaction_writes_nothing(store):
+    before = store.dump()
+    with pytest.raises(RuntimeError):
+        with store.writing():
+            store.put_bank(BANK)
+            store.count_exposure("bank", "MV-SRC-001")
+            raise RuntimeError("boom")
+    assert store.dump() == before
+    assert not store.conn.in_transaction
+
+
+def test_unknown_things_are_session_errors(store, tmp_path):
+    with pytest.raises(SessionError, match="unknown session"):
+        store.session_row("nope")
+    with pytest.raises(SessionError, match="missing"):
+        store.load_bank("0" * 64)
+    with pytest.raises(SessionError, match="missing"):
+        store.load_design("0" * 64)
+    with pytest.raises(SessionError, match="no session store"):
+        open_store(tmp_path / "absent.db", create=False)
+    assert not (tmp_path / "absent.db").exists()
+    with pytest.raises(SessionError, match="status"):
+        store.sessions(status="paused")
+    junk = tmp_path / "junk.db"
+    junk.write_bytes(b"\x00garbage" * 100)
+    with pytest.raises(SessionError, match="not a usable session store"):
+        open_store(junk)
+
+
+def test_exposure_counter_increments(store):
+    with store.writing():
+        for _ in range(3):
+            store.count_exposure("b1", "MV-SRC-001")
+        store.count_exposure("b1", "MV-SRC-002")
+    assert store.exposure("b1") == (0, {"MV-SRC-001": 3, "MV-SRC-002": 1})
+
+
+def test_memory_store_works(tmp_path):
+    with open_store(":memory:") as s:
+        with s.writing():
+            s.put_bank(SURVEY_BANK)
+        assert s.conn.execute("SELECT COUNT(*) FROM banks").fetchone()[0] == 1
