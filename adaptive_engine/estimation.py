@@ -318,20 +318,41 @@ def _posterior_moments(log_post, grid):
     return mean, np.sqrt(np.maximum(var, 0.0))
 
 
-def _eap_arrays(data: _Data, mean, sd, grid, chunk_size):
+def _grid_pass(data: _Data, mean, sd, grid, chunk_size, bounds=None):
+    """EAP, posterior SD and grid maximisers of the likelihood and the posterior.
+
+    Returns
+    -------
+    eap, posterior_sd, likelihood_argmax, posterior_argmax : arrays, shape (P,)
+        The argmax values only consider grid points within ``bounds`` (when given).
+    """
     n_persons = data.items.shape[0]
-    theta = np.empty(n_persons)
-    se = np.empty(n_persons)
+    out = np.empty((4, n_persons))
     n_cat = data.params.max_categories
     for grid_g, rows in _grid_groups(mean, sd, grid):
         table = _flat_log_table(data.source, grid_g)
+        outside = np.zeros(grid_g.size, dtype=bool)
+        if bounds is not None:
+            outside = (grid_g < bounds[0]) | (grid_g > bounds[1])
+            if outside.all():  # bounds narrower than the grid spacing
+                outside[:] = False
         for part in _chunks(rows.size, chunk_size):
             r = rows[part]
             answered = data.answered[r]
             lookup = np.where(answered, data.items[r] * n_cat + data.responses[r], 0)
-            log_post = _grid_log_likelihood(table, lookup, answered)
-            log_post += ability.normal_log_prior(grid_g, mean[r], sd[r])
-            theta[r], se[r] = _posterior_moments(log_post, grid_g)
+            log_lik = _grid_log_likelihood(table, lookup, answered)
+            log_post = log_lik + ability.normal_log_prior(grid_g, mean[r], sd[r])
+            out[0, r], out[1, r] = _posterior_moments(log_post, grid_g)
+            if bounds is not None:
+                log_lik[:, outside] = -np.inf
+                log_post[:, outside] = -np.inf
+                out[2, r] = grid_g[np.argmax(log_lik, axis=1)]
+                out[3, r] = grid_g[np.argmax(log_post, axis=1)]
+    return out[0], out[1], out[2], out[3]
+
+
+def _eap_arrays(data: _Data, mean, sd, grid, chunk_size):
+    theta, se, _, _ = _grid_pass(data, mean, sd, grid, chunk_size)
     return theta, se
 
 
@@ -418,10 +439,11 @@ def _estimating_function(method, sums: _Sums, theta, mean, sd):
 def _solve(evaluate, start, lo, hi):
     """Per-row root of a function g that is positive below and negative above its root.
 
-    From ``start`` the solver walks uphill (towards the sign of g) in doubling steps
-    (0.25, 0.5, 1, 2, ... away from the start) until g changes sign, which brackets the
-    nearest root in that direction; if g keeps its sign all the way to the bound, the
-    answer is that bound.  Inside the bracket it takes Newton steps; a step that would
+    From ``start`` the solver walks uphill (towards the sign of g) in steps of 0.25 up to
+    1 away from the start, then 0.5, until g changes sign, which brackets the nearest root
+    in that direction; if g keeps its sign all the way to the bound, the answer is that
+    bound.  Short steps matter: with asymptotes c > 0 a likelihood can rise again towards
+    a bound after an interior peak, and a long step could jump over that peak.  Inside the bracket it takes Newton steps; a step that would
     leave the bracket, or that does not at least halve the step before last, is replaced by
     halving the bracket (so every row converges), and the bracket shrinks with each
     evaluation.  Rows freeze once converged.
@@ -459,7 +481,7 @@ def _solve(evaluate, start, lo, hi):
         at_bound = keep & (trial == bound)
         code[rows[at_bound]] = np.where(dr[at_bound] > 0, 2, 1)
         searching[rows[flipped | at_bound]] = False
-        offset *= 2.0
+        offset += 0.25 if offset < 1.0 else 0.5
     bracketed = (code == 0) & (direction != 0)
     exact = bracketed & (g_far == 0)
     # Newton starts from the end of the bracket where |g| is smaller
@@ -500,7 +522,10 @@ def _newton_estimates(method, data: _Data, mean, sd, bounds, start, grid, chunk_
     lo, hi = _check_bounds(bounds)
     n_persons = data.items.shape[0]
     if start is None:
-        start, _ = _eap_arrays(data, mean, sd, grid, chunk_size)
+        # MLE and MAP start at the best grid point of their own objective (a global search:
+        # 3PL likelihoods can have several peaks); WLE starts at the EAP.
+        eap_theta, _, lik_max, post_max = _grid_pass(data, mean, sd, grid, chunk_size, (lo, hi))
+        start = {"mle": lik_max, "map": post_max, "wle": eap_theta}[method]
     else:
         start = _per_person(start, n_persons, "start")
     theta = np.empty(n_persons)
@@ -541,9 +566,9 @@ _NEWTON_DOC = """
     bounds : (float, float)
         The estimate is kept within [lo, hi].
     grid : array, shape (G,), optional
-        Grid of the EAP start values.
+        Grid searched for start values (default: :func:`default_grid` of the prior).
     start : float or array, shape (P,), optional
-        Start values instead of the EAP.
+        Start values instead of the grid search.
     chunk_size : int
         Rows solved together (memory only; results do not depend on it).
 
@@ -559,7 +584,9 @@ def mle(bank_or_params, items, responses, *, prior_mean=0.0, prior_sd=1.0, bound
 
     Solves ``d log L / d theta = 0`` by Newton-Raphson (Fisher scoring where the observed
     curvature is not negative, as with a lower asymptote c > 0), safeguarded by a sign
-    bracket with step halving (see :func:`_solve`), started from the EAP.  The standard
+    bracket with step halving (see :func:`_solve`), started from the grid point of highest
+    likelihood within ``bounds`` (the likelihood on the grid comes from the same cached table
+    as the EAP; a start at the EAP could climb a minor peak of a 3PL likelihood).  The standard
     error is ``1 / sqrt(I(theta_hat))`` with I the test information (Lord 1980).
 
     An all-lowest (all-highest) pattern has no finite MLE: the likelihood keeps rising
@@ -579,7 +606,8 @@ def map_estimate(bank_or_params, items, responses, *, prior_mean=0.0, prior_sd=1
     """Maximum a posteriori (posterior mode) ability under a normal prior.
 
     Newton steps on the log posterior ``log L(theta) - (theta - mean)^2 / (2 sd^2)``, with
-    the same safeguards as :func:`mle`.  The standard error comes from the posterior
+    the same safeguards as :func:`mle`, started from the grid point of highest posterior
+    density within ``bounds``.  The standard error comes from the posterior
     curvature at the mode, ``1 / sqrt(-(l''(theta) - 1/sd^2))``, using the *observed*
     second derivative ``l''`` of the log-likelihood (not the expected information).
     """
@@ -595,7 +623,8 @@ def wle(bank_or_params, items, responses, *, prior_mean=0.0, prior_sd=1.0, bound
     Solves ``l'(theta) + J(theta) / (2 I(theta)) = 0`` with I the test information and
     ``J = sum_i sum_k P'_ik P''_ik / P_ik``; works for dichotomous and polytomous items.
     Newton slope: the observed curvature of the log-likelihood (Fisher scoring where it is
-    not negative), within the same bracket safeguard as :func:`mle`.  Standard error
+    not negative), within the same bracket safeguard as :func:`mle`, started from the EAP
+    (Warm's equation has no objective to search a grid with).  Standard error
     ``1 / sqrt(I(theta_hat))``.  The WLE of an all-lowest / all-highest pattern is finite
     for 2PL, GRM and GPCM items; the result always stays within ``bounds``.
     """
@@ -604,9 +633,9 @@ def wle(bank_or_params, items, responses, *, prior_mean=0.0, prior_sd=1.0, bound
     return _newton_estimates("wle", data, mean, sd, bounds, start, grid, chunk_size)
 
 
-mle.__doc__ += _NEWTON_DOC.format(prior="Used only for the EAP start values.")
-map_estimate.__doc__ += _NEWTON_DOC.format(prior="The normal prior (also used for the EAP start values).")
-wle.__doc__ += _NEWTON_DOC.format(prior="Used only for the EAP start values.")
+mle.__doc__ += _NEWTON_DOC.format(prior="Only choose the default grid of the start search.")
+map_estimate.__doc__ += _NEWTON_DOC.format(prior="The normal prior.")
+wle.__doc__ += _NEWTON_DOC.format(prior="Only used for the EAP start values.")
 
 
 def estimate(bank_or_params, items, responses, method: str, *, prior_mean=0.0, prior_sd=1.0,

@@ -274,3 +274,23 @@ def test_estimates_object_validates_and_is_frozen():
         est.theta[0] = 1.0
     assert est.to_records(["p"]) == [{"person_id": "p", "theta": 0.1, "se": 0.5, "n_items": 3,
                                       "status": "converged"}]
+
+
+def test_mle_reaches_the_highest_likelihood_on_a_dense_grid_3pl():
+    """With c > 0 a likelihood may rise again towards the lower bound after an interior
+    peak; the solver must not step over the peak.  Every MLE must be at least as likely as
+    the best point of a 0.01-spaced grid (up to 1e-9)."""
+    rng = np.random.default_rng(106)
+    bank = mixed_bank(rng, n_items=120, models_used=("3PL",))
+    items, resp = simulate(bank, rng, n_persons=300, max_len=30, min_len=30)
+    # low abilities make the c-driven rise towards the lower bound common
+    theta = rng.normal(-1.5, 1.0, 300)
+    probs = models.probabilities(bank.params.take(items), theta[:, None])[..., 1]
+    resp = (rng.random(probs.shape) < probs).astype(np.int64)
+    res = estimation.mle(bank, items, resp)
+    grid = np.linspace(-6, 6, 1201)
+    for p in range(300):
+        sub = bank.params.take(items[p])
+        best = models.log_likelihood(sub, grid[:, None], resp[p]).sum(-1).max()
+        at_estimate = models.log_likelihood(sub, res.theta[p], resp[p]).sum()
+        assert at_estimate >= best - 1e-9, (p, res.theta[p], res.status[p])
