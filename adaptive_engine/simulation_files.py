@@ -158,8 +158,11 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
     true_theta = abilities.draw(n, seed)
     staging = None
     writer = None
+    created = False
+    finished = False
     if out_dir is not None:
         out_dir = Path(out_dir)
+        created = not out_dir.exists()
         out_dir.mkdir(parents=True, exist_ok=True)
         staging = Path(tempfile.mkdtemp(prefix=".simulation-", dir=out_dir))
     try:
@@ -190,12 +193,15 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
             for name in FILES:
                 if (staging / name).exists():
                     os.replace(staging / name, out_dir / name)
+        finished = True
         return Study(result=result, summary=summary, conditional=conditional, out_dir=out_dir)
     finally:
         if writer is not None:
             writer.close()
         if staging is not None:
             shutil.rmtree(staging, ignore_errors=True)
+            if created and not finished:
+                shutil.rmtree(out_dir, ignore_errors=True)  # a folder made for a failed run
 
 
 def summary_table(summary: dict) -> str:
