@@ -112,7 +112,7 @@ def main(argv=None):
         kinds, counts = np.unique(res.status.astype(str), return_counts=True)
         summary = ", ".join(f"{k} {c}" for k, c in zip(kinds, counts))
         print(f"    {method.upper()}, {n_newton} persons x 30 items: {sec:.3f} s "
-              f"(EAP start included; status: {summary})")
+              f"(start search included; status: {summary})")
     one = slice(0, 1)
     sec, _ = timed(lambda: estimation.eap(bank, items[one], responses[one]), repeats=20)
     print(f"    EAP of one person (30 items), cached table: {1e3 * sec:.3f} ms")
