@@ -170,6 +170,8 @@ def _check_invariants(ctx, state, design):
             count = sum(1 for i in items[scored] if bank.area[i] == rule.name)
             if rule.max is not None:
                 assert count <= rule.max, f"area {rule.name} above its maximum"
+            if state.stop_reason[r] not in ("max_items", "no_eligible_item"):
+                assert count >= rule.min, f"stopped ({state.stop_reason[r]}) with area {rule.name} below its minimum"
         # pretest items: never scored, only at the seeded positions (or later, after a set)
         pre = np.flatnonzero(~scored)
         assert all(bank.status[items[p]] == "pretest" for p in pre)
@@ -190,14 +192,16 @@ def _check_invariants(ctx, state, design):
     method=st.sampled_from(["none", "randomesque", "sympson_hetter", "progressive"]),
     blueprint_method=st.sampled_from(["constrained", "max_priority_index"]),
     area_max=st.integers(2, 6),
+    area_min=st.integers(0, 2),
     pretest=st.lists(st.integers(1, 12), max_size=2, unique=True),
 )
-def test_the_controller_never_breaks_the_rules(seed, min_items, extra, method, blueprint_method, area_max, pretest):
+def test_the_controller_never_breaks_the_rules(seed, min_items, extra, method, blueprint_method, area_max,
+                                               area_min, pretest):
     bank = structured_bank(seed % 7, 90, polytomous=seed % 5)
     d = Design(
         exposure=Exposure(method=method, candidates=3),
         blueprint=Blueprint(method=blueprint_method, pretest_positions=tuple(sorted(pretest)),
-                            areas=tuple(AreaRule(name=a, min=1, max=area_max) for a in AREAS)),
+                            areas=tuple(AreaRule(name=a, min=area_min, max=area_max) for a in AREAS)),
         stopping=Stopping(min_items=min_items, max_items=min_items + extra, se=0.4),
         exposure_parameters={bank.item_ids[i]: 0.5 for i in range(0, 90, 3)} if method == "sympson_hetter" else None,
     )
