@@ -76,10 +76,13 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
         groups = ctx.item_groups[c]  # (R, K, W)
         hit = np.take_along_axis(state.blocked_groups[rows], groups.reshape(rows.size, -1), axis=1)
         ok &= ~hit.reshape(groups.shape).any(axis=2)
-    if open_area is None:
-        open_area = area_limits(ctx, state, rows)
-    ok &= np.take_along_axis(open_area, ctx.area[c], axis=1)
+    if ctx.balanced:  # without rules every area stays open
+        if open_area is None:
+            open_area = area_limits(ctx, state, rows)
+        ok &= np.take_along_axis(open_area, ctx.area[c], axis=1)
     if len(ctx.set_members):
+        if open_area is None:
+            open_area = area_limits(ctx, state, rows)
         if fits is None:
             fits = set_fits(ctx, state, rows, open_area)
         s = ctx.item_set[c]

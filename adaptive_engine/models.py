@@ -264,6 +264,13 @@ def log_probabilities(params: ItemParameters, theta) -> np.ndarray:
 
 def probabilities(params: ItemParameters, theta) -> np.ndarray:
     """Category probabilities, shape ``broadcast(params, theta) + (C,)``; rows sum to 1."""
+    if params.family.size and not np.any(params.family) and params.max_categories == 2:
+        # all dichotomous (the simulation's hot path): P1 = c t + d s, P0 = (1-c) t + (1-d) s
+        z = np.clip(params.scaling * params.a * (np.asarray(theta, dtype=float) - params.b), -700.0, 700.0)
+        e = np.exp(-z)
+        s = 1.0 / (1.0 + e)
+        t = e * s
+        return np.stack([(1.0 - params.c) * t + (1.0 - params.d) * s, params.c * t + params.d * s], axis=-1)
     shape, _, p, *_ = _family_terms(params, theta, False)
     return p.reshape(shape + (p.shape[1],))
 
