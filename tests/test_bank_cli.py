@@ -192,3 +192,15 @@ def test_bank_group_lists_its_commands():
     result = run("bank", "--help")
     for name in ("check", "curves", "convert"):
         assert name in result.output
+
+
+def test_curves_plot_without_matplotlib_is_a_clear_error(tmp_path, monkeypatch):
+    import sys
+
+    # a None entry in sys.modules makes "import matplotlib" raise ImportError
+    monkeypatch.setitem(sys.modules, "matplotlib", None)
+    monkeypatch.setitem(sys.modules, "matplotlib.pyplot", None)
+    result = CliRunner().invoke(main, ["bank", "curves", str(SURVEY), "--plot", str(tmp_path / "x.png")])
+    assert result.exit_code == 2
+    assert "--plot" in result.output and "matplotlib" in result.output and "plots" in result.output
+    assert list(tmp_path.iterdir()) == []
