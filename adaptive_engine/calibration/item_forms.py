@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import attrs
 import numpy as np
-from scipy.special import expit, logit
+from scipy.special import expit, log_expit, logit
 
 from .. import models
 
@@ -181,3 +181,25 @@ def category_jacobian(group: ItemGroup, eta: np.ndarray, grid: np.ndarray, scali
     dlog_b = -D * a[..., None, None] * (indicator[None, None] - at_least[:, :, None, :])
     dlog = np.concatenate([dlog_u[..., None], dlog_b], axis=-1)
     return pk, pk[..., None] * dlog
+
+
+def log_category_probabilities(group: ItemGroup, eta: np.ndarray, grid: np.ndarray, scaling: float):
+    """Log category probabilities, shape (r, G, C), for the M-step objective.
+
+    Dichotomous items take a direct path (the objective is evaluated many times per cycle
+    in the line search); polytomous items use :func:`adaptive_engine.models.log_probabilities`.
+    """
+    if group.family != models.DICHOTOMOUS:
+        params = group.parameters(eta, scaling)
+        return models.log_probabilities(*models.outer(params, grid))[..., : group.n_categories]
+    a = np.exp(eta[:, 0])[:, None]
+    z = scaling * a * (np.asarray(grid, float)[None, :] - eta[:, 1][:, None])
+    ls, lt = log_expit(z), log_expit(-z)
+    if np.all(np.isneginf(eta[:, 2])) and np.all(np.isposinf(eta[:, 3])):
+        return np.stack([lt, ls], axis=-1)
+    # P1 = c t + d s, P0 = (1 - c) t + (1 - d) s with s = expit(z), t = 1 - s
+    log_c, log_1c = log_expit(eta[:, 2])[:, None], log_expit(-eta[:, 2])[:, None]
+    log_d, log_1d = log_expit(eta[:, 3])[:, None], log_expit(-eta[:, 3])[:, None]
+    log_p1 = np.logaddexp(log_c + lt, log_d + ls)
+    log_p0 = np.logaddexp(log_1c + lt, log_1d + ls)
+    return np.stack([log_p0, log_p1], axis=-1)

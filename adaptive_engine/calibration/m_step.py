@@ -13,18 +13,15 @@ from __future__ import annotations
 
 import numpy as np
 
-from .. import models
-from .item_forms import ItemGroup, category_jacobian
+from .item_forms import ItemGroup, category_jacobian, log_category_probabilities
 
 _TINY = 1e-300
 
 
 def group_objective(group: ItemGroup, eta, r, grid, scaling, column_priors) -> np.ndarray:
     """``Q_j`` for every row of ``eta`` (shape (r,)); priors as {column: ParameterPrior}."""
-    params = group.parameters(eta, scaling)
-    c = r.shape[-1]
-    with np.errstate(invalid="ignore", over="ignore"):
-        logp = models.log_probabilities(*models.outer(params, grid))[..., :c]
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        logp = log_category_probabilities(group, eta, grid, scaling)
         value = np.where(r > 0, r * logp, 0.0).sum(axis=(1, 2))
     for col, prior in column_priors.items():
         value = value + prior.terms(eta[:, col])[0]
@@ -91,21 +88,25 @@ def fisher_steps(group: ItemGroup, eta, r, grid, scaling, cols, column_priors, *
 def _line_search(group, eta, step, r, grid, scaling, cols, column_priors):
     old = group_objective(group, eta, r, grid, scaling, column_priors)
     new = eta.copy()
-    accepted = np.zeros(eta.shape[0], dtype=bool)
+    # a step too small to matter is taken as it is: rounding in Q would make it "fail"
+    size = np.abs(step).max(axis=1)
+    accepted = size < 1e-10
     factor = np.ones(eta.shape[0])
-    for _ in range(20):
-        trial = eta.copy()
-        trial[:, cols] += factor[:, None] * step
-        valid = group.is_valid(trial)
-        value = np.full(eta.shape[0], -np.inf)
-        if valid.any():
-            value[valid] = group_objective(group, trial[valid], r[valid], grid, scaling, column_priors)
-        good = valid & (value >= old - 1e-12 * np.abs(old)) & ~accepted
-        new[good] = trial[good]
-        accepted |= good
-        if accepted.all():
+    for _ in range(30):
+        todo = np.flatnonzero(~accepted)
+        if todo.size == 0:
             break
-        factor[~accepted] *= 0.5
+        trial = eta[todo].copy()
+        trial[:, cols] += factor[todo, None] * step[todo]
+        valid = group.is_valid(trial)
+        value = np.full(todo.size, -np.inf)
+        if valid.any():
+            value[valid] = group_objective(group, trial[valid], r[todo[valid]], grid, scaling, column_priors)
+        good = valid & (value >= old[todo] - 1e-10 * np.maximum(np.abs(old[todo]), 1.0))
+        new[todo[good]] = trial[good]
+        accepted[todo[good]] = True
+        factor[todo[~good]] *= 0.5
+        accepted |= factor * size < 1e-10
     moved = float(np.abs(new[:, cols] - eta[:, cols]).max()) if cols.size else 0.0
     return new, moved
 
