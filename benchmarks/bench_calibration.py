@@ -56,7 +56,9 @@ def sparse_2pl(n_persons, n_items, per_person, rng):
     stage1 = np.array([np.unique(row)[:first] if np.unique(row).size >= first else row[:first] for row in stage1])
     x1 = rng.random(stage1.shape) < expit(a[stage1] * (theta[:, None] - b[stage1]))
     # route on the first-stage score: the centre of the second-stage window
-    centre = np.round((x1.sum(axis=1) + 0.5) / (first + 1) * (n_items - 1)).astype(int)
+    # (a uniform jitter, drawn independently of ability, spreads the windows over the bank)
+    jitter = rng.random(n_persons)
+    centre = np.round((x1.sum(axis=1) + jitter) / (first + 1) * (n_items - 1)).astype(int)
     rest = per_person - first
     window = np.arange(-2 * rest, 2 * rest)
     pick = np.argsort(rng.random((n_persons, window.size)), axis=1)[:, :rest]

@@ -146,8 +146,9 @@ def prepare_data(
         loc = f"item {item_ids[j]}"
         used_cats = np.flatnonzero(counts[j] > 0)
         if answered[j] < min_answers:
-            problems.append(Problem(loc, f"answered by {int(answered[j])} people; at least {min_answers} "
-                                         f"are needed (see min_answers)"))
+            count = int(answered[j])
+            problems.append(Problem(loc, f"answered by {count} {'person' if count == 1 else 'people'}; "
+                                         f"at least {min_answers} are needed (see min_answers)"))
         elif used_cats.size == 1:
             problems.append(Problem(loc, f"every answer is {int(used_cats[0])}: a constant item cannot be "
                                          f"calibrated"))
