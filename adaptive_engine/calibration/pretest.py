@@ -1,0 +1,319 @@
+"""Pretest calibration from live sessions: fixed-parameter calibration on the bank's scale.
+
+Pretest items are seeded unscored into live tests.  The session store's event log holds
+every answer (``events.kind = 'answer'``, ``scored`` 1 for operational, 0 for pretest items)
+of the sessions of a bank (``sessions.bank_id``).  Here:
+
+1. each session's posterior on an ability grid is computed from its *operational* answers
+   only, with the bank's values held fixed (N(0, 1) prior, the bank's own population);
+2. the pretest items' parameters are estimated by marginal maximum likelihood with those
+   posteriors as each examinee's prior (EM as in :mod:`.em`), so they land on the bank's
+   scale without any linking step;
+3. each item is judged against user thresholds -- answers, largest parameter SE and the
+   grouped posterior chi-square p-value -- and marked ``ready`` (to promote) or not, with
+   the reasons.  The items are written back with status ``pretest``, ready to merge.
+
+The store is opened read-only; only the tables and columns of the session-store contract
+are read (``sessions``: session_id, bank_id; ``banks``: bank_id, content; ``events``:
+event_id, session_id, seq, kind, item_id, response, scored).
+"""
+
+from __future__ import annotations
+
+import math
+import sqlite3
+from pathlib import Path
+
+import attrs
+import numpy as np
+import scipy.sparse as sp
+from scipy.special import logsumexp
+
+from .. import models
+from ..bank import ItemBank, read_bank_json_text
+from ..errors import CalibrationError, Problem
+from .data import CalibrationData
+from .em import CalibrationSettings, calibrate_data
+from .item_fit import grouped_posterior_fit, parameters_per_item
+
+
+@attrs.frozen(kw_only=True)
+class PromotionRules:
+    """Thresholds an item must meet to be ready for promotion.
+
+    Attributes
+    ----------
+    min_answers : int
+        Fewest answers.
+    max_se : float
+        Largest standard error allowed on any estimated parameter.
+    min_fit_p : float
+        Smallest grouped posterior chi-square p-value allowed.
+    """
+
+    min_answers: int = attrs.field(default=200, validator=attrs.validators.ge(1))
+    max_se: float = attrs.field(default=0.3, validator=attrs.validators.gt(0))
+    min_fit_p: float = attrs.field(default=0.01, validator=[attrs.validators.ge(0), attrs.validators.le(1)])
+
+
+@attrs.frozen(eq=False, kw_only=True)
+class PretestResult:
+    """Outcome of a pretest calibration.
+
+    Attributes
+    ----------
+    bank : ItemBank
+        The pretest items with their new parameters (status kept as ``pretest``).
+    rows : list of dict
+        One report row per pretest item (parameters, SEs, answers, fit, ``ready``, reasons).
+    sessions : int
+        Sessions of the bank read from the store.
+    summary : dict
+    """
+
+    bank: ItemBank
+    rows: list
+    sessions: int
+    summary: dict
+
+
+@attrs.frozen(eq=False, kw_only=True)
+class StoreAnswers:
+    """Answers of one bank's sessions, from the event log.
+
+    Attributes
+    ----------
+    session_ids : object array, shape (P,)
+    session, item_id, response, scored, event_id : arrays, shape (N,)
+    """
+
+    session_ids: np.ndarray
+    session: np.ndarray
+    item_id: np.ndarray
+    response: np.ndarray
+    scored: np.ndarray
+    event_id: np.ndarray
+
+
+def _connect(path) -> sqlite3.Connection:
+    path = Path(path)
+    if not path.exists():
+        raise CalibrationError(f"no such session store: {path}", location=str(path))
+    try:
+        conn = sqlite3.connect(f"file:{path.as_posix()}?mode=ro", uri=True)
+        tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+    except sqlite3.DatabaseError as exc:
+        raise CalibrationError(f"not a session store ({exc})", location=str(path)) from None
+    missing = [t for t in ("sessions", "banks", "events") if t not in tables]
+    if missing:
+        conn.close()
+        raise CalibrationError(f"not a session store: table {missing[0]!r} is missing", location=str(path))
+    return conn
+
+
+def load_store_bank(path, bank_id: str) -> ItemBank:
+    """The bank stored under ``bank_id`` in the session store."""
+    conn = _connect(path)
+    try:
+        row = conn.execute("SELECT content FROM banks WHERE bank_id = ?", (bank_id,)).fetchone()
+    finally:
+        conn.close()
+    if row is None:
+        raise CalibrationError(f"no bank with id {bank_id!r} in the store", location="--bank-id")
+    return read_bank_json_text(row[0], source=f"store bank {bank_id}")
+
+
+def find_bank_id(path, bank: ItemBank) -> str:
+    """The store's id of ``bank`` (the stored content must be the same bank)."""
+    from ..store import bank_content
+
+    bank_id, _ = bank_content(bank)
+    conn = _connect(path)
+    try:
+        found = conn.execute("SELECT 1 FROM banks WHERE bank_id = ?", (bank_id,)).fetchone()
+    finally:
+        conn.close()
+    if found is None:
+        raise CalibrationError("this bank is not in the store (its content differs from every stored bank); "
+                               "give --bank-id", location="--bank")
+    return bank_id
+
+
+def read_store_answers(path, bank_id: str) -> StoreAnswers:
+    """Every answer event of the sessions of ``bank_id``, first answer per session and item."""
+    conn = _connect(path)
+    try:
+        rows = conn.execute(
+            "SELECT e.event_id, e.session_id, e.item_id, e.response, e.scored FROM events e "
+            "JOIN sessions s ON s.session_id = e.session_id "
+            "WHERE s.bank_id = ? AND e.kind = 'answer' ORDER BY e.session_id, e.seq",
+            (bank_id,),
+        ).fetchall()
+    finally:
+        conn.close()
+    if not rows:
+        raise CalibrationError(f"no answers recorded for bank {bank_id!r}", location="session store")
+    problems = []
+    seen = set()
+    keep = []
+    for event_id, session_id, item_id, response, scored in rows:
+        loc = f"event {event_id}"
+        if response is None or scored not in (0, 1) or item_id is None:
+            problems.append(Problem(loc, "answer event lacks item_id, response or scored (0/1)"))
+            continue
+        if (session_id, item_id) in seen:
+            continue
+        seen.add((session_id, item_id))
+        keep.append((event_id, session_id, item_id, int(response), int(scored)))
+    if problems:
+        raise CalibrationError(problems[:50])
+    event_id, session_id, item_id, response, scored = (np.array(c, dtype=object) for c in zip(*keep))
+    session_ids, session = np.unique(session_id.astype(str), return_inverse=True)
+    return StoreAnswers(session_ids=session_ids.astype(object), session=session.astype(np.int64),
+                        item_id=item_id, response=response.astype(np.int64), scored=scored.astype(np.int64),
+                        event_id=event_id.astype(np.int64))
+
+
+def operational_log_posterior(bank: ItemBank, answers: StoreAnswers, rows: np.ndarray, grid) -> np.ndarray:
+    """Each session's log posterior from its operational answers, shape (P, G)."""
+    sel = np.flatnonzero(answers.scored == 1)
+    table = bank.log_probability_table(grid)  # (n, G, C)
+    n, g, c = table.shape
+    flat = np.maximum(table, -1e4).transpose(0, 2, 1).reshape(n * c, g)
+    indicator = sp.csr_matrix((np.ones(sel.size), (answers.session[sel], rows[sel] * c + answers.response[sel])),
+                              shape=(answers.session_ids.size, n * c))
+    log_post = indicator @ flat - 0.5 * grid**2
+    return log_post - logsumexp(log_post, axis=1, keepdims=True)
+
+
+def calibrate_pretest(
+    store_path,
+    *,
+    bank_id: str | None = None,
+    bank: ItemBank | None = None,
+    rules: PromotionRules | None = None,
+    settings: CalibrationSettings | None = None,
+) -> PretestResult:
+    """Estimate the pretest items of a bank's sessions on the bank's scale.
+
+    Parameters
+    ----------
+    store_path : path of the SQLite session store
+    bank_id : str, optional
+        Which bank's sessions; found from ``bank`` when not given.
+    bank : ItemBank, optional
+        The bank (default: the store's copy under ``bank_id``).
+    rules : PromotionRules
+    settings : CalibrationSettings
+        Priors, tolerance and grid size (``min_answers`` is not used here: items below
+        ``rules.min_answers`` are estimated when possible and reported as not ready).
+    """
+    rules = rules or PromotionRules()
+    settings = settings or CalibrationSettings()
+    if bank_id is None and bank is None:
+        raise CalibrationError("give a bank id or a bank", location="pretest")
+    if bank_id is None:
+        bank_id = find_bank_id(store_path, bank)
+    if bank is None:
+        bank = load_store_bank(store_path, bank_id)
+    answers = read_store_answers(store_path, bank_id)
+    lookup = bank.index_of
+    rows = np.array([lookup.get(i, -1) for i in answers.item_id], dtype=np.int64)
+    problems = [Problem(f"event {answers.event_id[k]}", f"item {answers.item_id[k]!r} is not in the bank")
+                for k in np.flatnonzero(rows < 0)[:50]]
+    if not problems:
+        bad = np.flatnonzero(answers.response >= bank.n_categories[rows])
+        problems = [Problem(f"event {answers.event_id[k]}",
+                            f"response {answers.response[k]} is outside item {answers.item_id[k]!r}'s "
+                            f"categories 0..{bank.n_categories[rows[k]] - 1}") for k in bad[:50]]
+    if problems:
+        raise CalibrationError(problems)
+    grid, _ = settings.grid()
+    log_post = operational_log_posterior(bank, answers, rows, grid)
+    pre = np.flatnonzero(answers.scored == 0)
+    if pre.size == 0:
+        raise CalibrationError(f"the sessions of bank {bank_id!r} hold no pretest (unscored) answers",
+                               location="session store")
+    pre_rows_all = np.unique(rows[pre])
+    counts = np.zeros((pre_rows_all.size, bank.max_categories))
+    local_all = np.searchsorted(pre_rows_all, rows[pre])
+    np.add.at(counts, (local_all, answers.response[pre]), 1)
+    # items that cannot be estimated at all keep their bank values and are reported
+    estimable = np.array([
+        counts[i].sum() >= 2 and np.count_nonzero(counts[i]) >= 2
+        and (bank.family[r] == models.DICHOTOMOUS or np.all(counts[i, : bank.n_categories[r]] > 0))
+        for i, r in enumerate(pre_rows_all)
+    ])
+    est_rows = pre_rows_all[estimable]
+    sub = bank.subset(est_rows) if est_rows.size else None
+    result = None
+    if est_rows.size:
+        keep = pre[np.isin(rows[pre], est_rows)]
+        persons, person_index = np.unique(answers.session[keep], return_inverse=True)
+        data = CalibrationData(
+            item_ids=sub.item_ids, item_models=sub.model, n_categories=sub.n_categories,
+            person_ids=answers.session_ids[persons], person=person_index.astype(np.int64),
+            item=np.searchsorted(est_rows, rows[keep]), response=answers.response[keep], template=sub,
+        )
+        start = dict(a=sub.a, b=sub.b, c=sub.c, d=sub.d, thresholds=sub.thresholds)
+        result = calibrate_data(data, settings=settings, person_log_prior=log_post[persons], grid=grid,
+                                start=start, name=bank.name)
+        weights = np.exp(log_post[persons])
+        stat, df, p = grouped_posterior_fit(result.bank, data.item, data.person, data.response, weights, grid,
+                                            posterior_includes_item=False)
+    out_bank, report = _report(bank, pre_rows_all, estimable, counts, result, (stat, df, p) if result else None, rules)
+    summary = dict(bank_id=bank_id, sessions=int(answers.session_ids.size),
+                   operational_answers=int(np.sum(answers.scored == 1)), pretest_answers=int(pre.size),
+                   pretest_items=int(pre_rows_all.size), ready=int(sum(r["ready"] for r in report)),
+                   rules=attrs.asdict(rules),
+                   calibration=None if result is None else dict(
+                       iterations=result.iterations, converged=result.converged,
+                       log_likelihood=result.log_likelihood, seconds=result.seconds))
+    return PretestResult(bank=out_bank, rows=report, sessions=int(answers.session_ids.size), summary=summary)
+
+
+def _report(bank, pre_rows, estimable, counts, result, fit, rules):
+    est_pos = {int(r): i for i, r in enumerate(pre_rows[estimable])}
+    a, b, c, d = bank.a.copy(), bank.b.copy(), bank.c.copy(), bank.d.copy()
+    thr = bank.thresholds.copy()
+    n_params = parameters_per_item(bank)
+    rows = []
+    for i, r in enumerate(pre_rows):
+        r = int(r)
+        row = dict(item_id=str(bank.item_ids[r]), model=str(bank.model[r]), answers=int(counts[i].sum()))
+        reasons = []
+        if r in est_pos:
+            k = est_pos[r]
+            rb = result.bank
+            a[r], b[r], c[r], d[r] = rb.a[k], rb.b[k], rb.c[k], rb.d[k]
+            if rb.thresholds.shape[1]:
+                thr[r, : rb.thresholds.shape[1]] = rb.thresholds[k]
+            ses = [result.standard_errors[name][k] for name in ("a", "b", "c", "d")]
+            if result.standard_errors["thresholds"].shape[1]:
+                ses += list(result.standard_errors["thresholds"][k])
+            ses = np.array([s for s in ses if np.isfinite(s)])
+            largest = float(ses.max()) if ses.size else math.nan
+            p_value = float(fit[2][k])
+            row.update(a=float(rb.a[k]), b=float(rb.b[k]), c=float(rb.c[k]), d=float(rb.d[k]),
+                       thresholds=";".join(f"{t:.6g}" for t in rb.thresholds[k] if np.isfinite(t)),
+                       largest_se=largest, fit_chi_square=float(fit[0][k]), fit_df=float(fit[1][k]),
+                       fit_p=p_value)
+            if not (np.isfinite(largest) and largest <= rules.max_se):
+                reasons.append(f"largest SE {largest:.3g} > {rules.max_se:g}")
+            if not np.isfinite(p_value):
+                reasons.append("fit could not be computed (too few groups)")
+            elif p_value < rules.min_fit_p:
+                reasons.append(f"fit p {p_value:.3g} < {rules.min_fit_p:g}")
+        else:
+            row.update(a=float(a[r]), b=float(b[r]), c=float(c[r]), d=float(d[r]), thresholds="",
+                       largest_se=math.nan, fit_chi_square=math.nan, fit_df=math.nan, fit_p=math.nan)
+            reasons.append("not estimated: too few answers or unused categories")
+        if row["answers"] < rules.min_answers:
+            reasons.append(f"{row['answers']} answers < {rules.min_answers}")
+        row["ready"] = not reasons
+        row["reasons"] = "; ".join(reasons)
+        row["parameters"] = int(n_params[r])
+        rows.append(row)
+    updated = bank.evolve(a=a, b=b, c=c, d=d, thresholds=thr)
+    out = updated.subset(pre_rows)
+    return out.evolve(status=["pretest"] * len(out)), rows
