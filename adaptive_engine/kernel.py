@@ -15,6 +15,7 @@ The cycle for each examinee::
 
 from __future__ import annotations
 
+import attrs
 import numpy as np
 
 from . import randomness, stopping
@@ -235,11 +236,21 @@ def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:
     return reasons
 
 
-def finish(ctx: TestContext, state: KernelState, rows) -> list[dict]:
-    """Final estimate and report for ``rows`` (normally examinees whose test stopped)."""
+@attrs.frozen(eq=False)
+class FinalEstimates:
+    """Final scores of a batch, as arrays (R,): what :func:`finish` turns into reports."""
+
+    theta: np.ndarray
+    se: np.ndarray
+    status: np.ndarray
+    lz_star: np.ndarray
+    sprt_decision: np.ndarray | None  # +1 above / -1 below / 0 undecided; None without SPRT
+
+
+def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimates:
+    """Final estimate (the design's final method), person fit and SPRT decision for ``rows``."""
     from .estimation import estimate
     from .person_fit import person_fit
-    from .reporting import final_reports
 
     rows = np.asarray(rows, dtype=np.int64)
     design = ctx.design
@@ -261,12 +272,20 @@ def finish(ctx: TestContext, state: KernelState, rows) -> list[dict]:
         llr = stopping.sprt_log_likelihood_ratio(ctx.bank.params, items, resp, cut=s.cut,
                                                  indifference=s.indifference)
         sprt_dec = stopping.sprt_decision(llr, alpha=s.alpha, beta=s.beta)
-    reports = final_reports(
-        design, theta=theta, se=se, status=status, n_scored=state.n_scored[rows],
+    return FinalEstimates(theta=theta, se=se, status=status, lz_star=fit.lz_star, sprt_decision=sprt_dec)
+
+
+def finish(ctx: TestContext, state: KernelState, rows, estimates: FinalEstimates | None = None) -> list[dict]:
+    """Final report (a JSON-ready dict) per examinee of ``rows``."""
+    from .reporting import final_reports
+
+    rows = np.asarray(rows, dtype=np.int64)
+    est = final_estimates(ctx, state, rows) if estimates is None else estimates
+    return final_reports(
+        ctx.design, theta=est.theta, se=est.se, status=est.status, n_scored=state.n_scored[rows],
         n_pretest=state.n_pretest[rows], stop_reason=state.stop_reason[rows],
-        lz_star=fit.lz_star, sprt_decision=sprt_dec,
+        lz_star=est.lz_star, sprt_decision=est.sprt_decision,
     )
-    return reports
 
 
 def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, items, responses,

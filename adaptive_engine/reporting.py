@@ -241,3 +241,36 @@ def final_report(design: Design, *, theta: float, se: float, status: str, n_scor
         n_pretest=[n_pretest], stop_reason=[stop_reason], lz_star=[lz_star],
         sprt_decision=None if sprt_decision is None else [sprt_decision],
     )[0]
+
+
+def scaled_scores(scale: ScaleRule, theta) -> np.ndarray:
+    """Reported scores of many thetas as floats (NaN where theta is not finite).
+
+    The same rounding and clipping as the report (:func:`scaled_score`), for simulation
+    summaries that need arrays rather than one dict per examinee.
+    """
+    _check_scale(scale)
+    raw = scale.intercept + scale.slope * np.asarray(theta, dtype=float)
+    return np.array([np.nan if v is None else float(v) for v in (_clip_scaled(scale, x) for x in raw)])
+
+
+def classification_matrix(design: Design, theta, sprt_decision=None) -> np.ndarray:
+    """At-or-above decisions against every cut score, int8 (B, n_cuts).
+
+    1 at or above, 0 below, -1 without a finite estimate -- the ``at_or_above`` of the
+    report's classifications: an SPRT decision on a cut it tested wins over the point
+    estimate, as in :func:`final_reports`.
+    """
+    theta = np.asarray(theta, dtype=float)
+    b = theta.shape[0]
+    sprt = design.stopping.sprt
+    dec = np.zeros(b, dtype=np.int64) if sprt_decision is None else np.asarray(sprt_decision, dtype=np.int64)
+    cuts = design.reporting.cut_scores
+    out = np.full((b, len(cuts)), -1, dtype=np.int8)
+    finite = np.isfinite(theta)
+    for k, cut in enumerate(cuts):
+        above = np.where(finite, (theta >= cut.theta).astype(np.int8), -1)
+        if sprt is not None and math.isclose(sprt.cut, cut.theta, rel_tol=0, abs_tol=1e-12):
+            above = np.where(dec != 0, (dec > 0).astype(np.int8), above)
+        out[:, k] = above
+    return out

@@ -31,7 +31,7 @@ from typing import Callable, Iterator
 import attrs
 import numpy as np
 
-from . import kernel, models, randomness
+from . import kernel, models, randomness, reporting
 from .bank import ItemBank
 from .context import TestContext, build_context
 from .design import Design
@@ -238,22 +238,17 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
         _count_withheld(offered, picked)
         interim_theta[rows, pos] = state.theta[rows]
         interim_se[rows, pos] = state.se[rows]
-    reports = kernel.finish(ctx, state, np.arange(n))
+    final = kernel.final_estimates(ctx, state, np.arange(n))
     administered = np.bincount(state.items[state.items >= 0], minlength=bank.n_items)
-    cuts = ctx.design.reporting.cut_scores
-    at_or_above = np.full((n, len(cuts)), -1, dtype=np.int8)
-    for i, rep in enumerate(reports):
-        for k, cl in enumerate(rep["classifications"]):
-            if cl.get("label") is not None:
-                at_or_above[i, k] = 1 if cl["at_or_above"] else 0
+    design = ctx.design
+    at_or_above = reporting.classification_matrix(design, final.theta, final.sprt_decision)
     return ChunkResult(
         start=start, seeds=seeds, true_theta=true_theta,
-        theta=np.array([np.nan if r["theta"] is None else r["theta"] for r in reports]),
-        se=np.array([np.nan if r["se"] is None else r["se"] for r in reports]),
+        theta=np.asarray(final.theta, dtype=float),
+        se=np.asarray(final.se, dtype=float),
         n_scored=state.n_scored.copy(), n_pretest=state.n_pretest.copy(),
         stop_reason=state.stop_reason.copy(),
-        scaled_score=np.array([np.nan if r["scaled_score"] is None else r["scaled_score"] for r in reports],
-                              dtype=float),
+        scaled_score=reporting.scaled_scores(design.reporting.scale, final.theta),
         at_or_above=at_or_above, items=state.items, responses=state.responses, scored=state.scored,
         interim_theta=interim_theta, interim_se=interim_se, area_counts=state.area_counts,
         administered=administered, offered=offered + administered,

@@ -238,3 +238,26 @@ def test_shadow_tests_meet_the_blueprint_exactly():
         counts = {a: int(np.sum(bank.area[items] == a)) for a in AREAS}
         for rule in rules:
             assert rule.min <= counts[rule.name] <= rule.max
+
+
+def test_array_summaries_match_the_reports():
+    # The simulation summarises with arrays; they must say what the per-examinee reports say.
+    from adaptive_engine import reporting
+    from adaptive_engine.design import CutScore, ScaleRule
+
+    bank = structured_bank(8, 100)
+    d = Design(stopping=Stopping(min_items=5, max_items=20, sprt=SprtRule(cut=0.2, indifference=0.3)),
+               reporting=Reporting(final_method="wle", scale=ScaleRule(slope=37.5, intercept=500, decimals=1,
+                                                                       min=400, max=600),
+                                   cut_scores=(CutScore(name="pass", theta=0.2), CutScore(name="merit", theta=1.0))))
+    ctx = build_context(d, bank)
+    state, _ = run_batch(ctx, np.linspace(-2.5, 2.5, 30), seed=10)
+    rows = np.arange(30)
+    est = kernel.final_estimates(ctx, state, rows)
+    reports = kernel.finish(ctx, state, rows, est)
+    matrix = reporting.classification_matrix(d, est.theta, est.sprt_decision)
+    scaled = reporting.scaled_scores(d.reporting.scale, est.theta)
+    for i, rep in enumerate(reports):
+        assert rep["scaled_score"] == scaled[i]
+        for k, cl in enumerate(rep["classifications"]):
+            assert matrix[i, k] == (-1 if cl["at_or_above"] is None else int(cl["at_or_above"]))
