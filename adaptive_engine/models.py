@@ -307,18 +307,30 @@ def _dichotomous_information(params: ItemParameters, theta) -> np.ndarray:
 
     ``I = (D a (d - c) s t)^2 / (P1 P0)`` with ``s = 1 / (1 + exp(-z))``, ``t = 1 - s``,
     ``P1 = c t + d s`` and ``P0 = (1 - c) t + (1 - d) s`` (no cancellation in 1 - P1).
+    Written with in-place operations: this runs for every candidate at every step.
     """
     theta = np.asarray(theta, dtype=float)
+    a, b, c, d = params.a, params.b, params.c, params.d
+    slope = a * params.scaling if params.scaling != 1.0 else a
+    z = theta - b
+    z *= slope
     # clipping keeps exp finite; beyond |z| = 700 both s and t are exact to double precision
-    z = np.clip(params.scaling * params.a * (theta - params.b), -700.0, 700.0)
-    e = np.exp(-z)
-    s = 1.0 / (1.0 + e)  # scipy's expit is an order of magnitude slower than exp
-    t = e * s
-    c, d = params.c, params.d
-    num = params.scaling * params.a * (d - c) * s * t
-    den = (c * t + d * s) * ((1.0 - c) * t + (1.0 - d) * s)
-    num = num * num
-    return np.divide(num, den, out=np.zeros(np.broadcast_shapes(num.shape, den.shape)), where=den > 1e-300)
+    np.maximum(z, -700.0, out=z)
+    np.minimum(z, 700.0, out=z)
+    np.negative(z, out=z)
+    e = np.exp(z, out=z)
+    s = e + 1.0
+    np.reciprocal(s, out=s)  # s = 1 / (1 + e); scipy's expit is far slower than exp
+    t = np.multiply(e, s, out=e)
+    p1 = c * t
+    p1 += d * s
+    p0 = (1.0 - c) * t
+    p0 += (1.0 - d) * s
+    p0 *= p1  # denominator P1 P0
+    num = slope * (d - c) * s
+    num *= t
+    num *= num
+    return np.divide(num, p0, out=np.zeros_like(num), where=p0 > 1e-300)
 
 
 def expected_score(params: ItemParameters, theta) -> np.ndarray:
