@@ -118,3 +118,30 @@ def test_bank_lookup_and_errors(tmp_path):
         calibrate_pretest(path, bank_id=bank_id)
     with pytest.raises(CalibrationError, match="no such session store"):
         calibrate_pretest(tmp_path / "missing.db", bank_id=bank_id)
+
+
+def test_pretest_cli(tmp_path):
+    from click.testing import CliRunner
+
+    from adaptive_engine.bank import load_bank
+    from adaptive_engine.cli import main
+
+    rng = np.random.default_rng(43)
+    bank = _bank(rng)
+    path = _store(tmp_path / "store.db", bank, rng, n_sessions=400)
+    out, report = tmp_path / "pretest.json", tmp_path / "pretest.csv"
+    runner = CliRunner()
+    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", "bank-main",
+                               "--out", str(out), "--report", str(report), "--min-answers", "150",
+                               "--max-se", "0.6", "--min-fit-p", "0.001"])
+    assert res.exit_code == 0, res.output
+    summary = json.loads(res.output)
+    assert summary["pretest_items"] == 4 and summary["sessions"] == 400
+    written = load_bank(out)
+    assert sorted(written.item_ids) == sorted(PRETEST) and set(written.status) == {"pretest"}
+    header = report.read_text().splitlines()[0].split(",")
+    assert "ready" in header and "reasons" in header
+    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", "x", "--out", str(out)])
+    assert res.exit_code == 2 and "--bank-id: no bank with id 'x'" in res.output
+    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--out", str(tmp_path / "y.json")])
+    assert res.exit_code == 2 and not (tmp_path / "y.json").exists()

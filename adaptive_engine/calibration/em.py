@@ -38,6 +38,22 @@ _FULL_CROSS_PRODUCT_LIMIT = 2e7
 _CHUNK = 20000
 
 
+def bounded(low, *, strict=False, high=None):
+    """attrs validator raising :class:`CalibrationError` that names the setting."""
+
+    def check(instance, attribute, value):
+        ok = value > low if strict else value >= low
+        if high is not None:
+            ok = ok and value <= high
+        if not (ok and math.isfinite(value)):
+            bound = f"> {low}" if strict else f">= {low}"
+            if high is not None:
+                bound += f" and <= {high}"
+            raise CalibrationError(f"must be {bound}, got {value}", location=f"setting {attribute.name}")
+
+    return check
+
+
 @attrs.frozen(kw_only=True)
 class CalibrationSettings:
     """Options of an MML-EM calibration.
@@ -60,14 +76,14 @@ class CalibrationSettings:
         Fewest answers an item needs.
     """
 
-    quadrature_points: int = attrs.field(default=61, validator=attrs.validators.ge(5))
-    theta_range: float = attrs.field(default=6.0, validator=attrs.validators.gt(0))
-    max_iterations: int = attrs.field(default=500, validator=attrs.validators.ge(1))
-    tolerance: float = attrs.field(default=1e-4, validator=attrs.validators.gt(0))
+    quadrature_points: int = attrs.field(default=61, validator=bounded(5))
+    theta_range: float = attrs.field(default=6.0, validator=bounded(0, strict=True))
+    max_iterations: int = attrs.field(default=500, validator=bounded(1))
+    tolerance: float = attrs.field(default=1e-4, validator=bounded(0, strict=True))
     common_slope: bool = False
     priors: PriorChoice = attrs.field(factory=PriorChoice)
-    scaling: float = attrs.field(default=1.0, validator=attrs.validators.gt(0))
-    min_answers: int = attrs.field(default=20, validator=attrs.validators.ge(1))
+    scaling: float = attrs.field(default=1.0, validator=bounded(0, strict=True))
+    min_answers: int = attrs.field(default=20, validator=bounded(1))
 
     def grid(self) -> tuple[np.ndarray, np.ndarray]:
         """Points (G,) and normalised log weights (G,) of the N(0, 1) population."""

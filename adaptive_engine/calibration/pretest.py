@@ -33,7 +33,7 @@ from .. import models
 from ..bank import ItemBank, read_bank_json_text
 from ..errors import CalibrationError, Problem
 from .data import CalibrationData
-from .em import CalibrationSettings, calibrate_data
+from .em import CalibrationSettings, bounded, calibrate_data
 from .item_fit import grouped_posterior_fit, parameters_per_item
 
 
@@ -51,9 +51,9 @@ class PromotionRules:
         Smallest grouped posterior chi-square p-value allowed.
     """
 
-    min_answers: int = attrs.field(default=200, validator=attrs.validators.ge(1))
-    max_se: float = attrs.field(default=0.3, validator=attrs.validators.gt(0))
-    min_fit_p: float = attrs.field(default=0.01, validator=[attrs.validators.ge(0), attrs.validators.le(1)])
+    min_answers: int = attrs.field(default=200, validator=bounded(1))
+    max_se: float = attrs.field(default=0.3, validator=bounded(0, strict=True))
+    min_fit_p: float = attrs.field(default=0.01, validator=bounded(0, high=1))
 
 
 @attrs.frozen(eq=False, kw_only=True)

@@ -1,0 +1,116 @@
+"""File-to-file jobs behind the command line: read, compute, then write every output.
+
+Each job computes everything before it writes anything, writes each file under a temporary
+name and moves it into place, so bad input never leaves a half-written output.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+from ..bank import load_bank
+from ..bank_io import write_bank
+from ..errors import CalibrationError
+from ..responses import read_responses
+from .em import CalibrationSettings, calibrate_responses
+from .item_fit import fit_for_result, item_report_rows, rows_to_csv
+from .linking import link_banks
+from .pretest import PromotionRules, calibrate_pretest
+
+_BANK_SUFFIXES = (".csv", ".json", ".db", ".sqlite", ".sqlite3")
+
+
+def _check_bank_target(path, option: str) -> Path:
+    path = Path(path)
+    if path.suffix.lower() not in _BANK_SUFFIXES:
+        raise CalibrationError(f"unknown bank file type {path.suffix!r} (use .csv, .json or .db)",
+                               location=f"{option} {path}")
+    return path
+
+
+def _write_text_atomic(path: Path, text: str) -> None:
+    folder = path.resolve().parent
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=folder)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def _write_outputs(bank, bank_path: Path, reports: dict[Path, str]) -> None:
+    for path in reports:
+        if not path.resolve().parent.is_dir():
+            raise CalibrationError("the folder does not exist", location=str(path))
+    write_bank(bank, bank_path)
+    for path, text in reports.items():
+        _write_text_atomic(path, text)
+
+
+def calibrate_file(
+    responses_path,
+    *,
+    out,
+    model: str | None = None,
+    template_path=None,
+    settings: CalibrationSettings | None = None,
+    fit_report=None,
+) -> dict:
+    """Calibrate a long response CSV and write the bank (and the item report).
+
+    Returns
+    -------
+    dict
+        The calibration summary, with fit counts and the files written.
+    """
+    out = _check_bank_target(out, "--out")
+    settings = settings or CalibrationSettings()
+    table = read_responses(responses_path)
+    template = load_bank(template_path, scaling=settings.scaling) if template_path else None
+    result = calibrate_responses(table, model=model, template=template, settings=settings,
+                                 name=Path(out).stem)
+    fit = fit_for_result(result)
+    reports = {}
+    if fit_report:
+        reports[Path(fit_report)] = rows_to_csv(item_report_rows(result, fit))
+    _write_outputs(result.bank, out, reports)
+    summary = result.summary()
+    summary.update(fit_statistic=fit.statistic_name,
+                   items_with_fit_p_below_0_01=int((fit.p_value < 0.01).sum()),
+                   out=str(out), fit_report=str(fit_report) if fit_report else None)
+    return summary
+
+
+def link_files(new_path, *, to, out, method: str, anchors=None, max_difficulty_shift: float = 0.5,
+               max_slope_ratio: float = 1.5, scaling: float | None = None) -> dict:
+    """Link the bank in ``new_path`` to the bank in ``to`` and write the linked bank."""
+    out = _check_bank_target(out, "--out")
+    new = load_bank(new_path, scaling=scaling)
+    base = load_bank(to, scaling=scaling)
+    result = link_banks(new, base, method=method, anchors=anchors,
+                        max_difficulty_shift=max_difficulty_shift, max_slope_ratio=max_slope_ratio)
+    _write_outputs(result.linked, out, {})
+    summary = result.summary()
+    summary["out"] = str(out)
+    return summary
+
+
+def pretest_files(db_path, *, out, bank_id=None, bank_path=None, rules: PromotionRules | None = None,
+                  settings: CalibrationSettings | None = None, report=None) -> dict:
+    """Calibrate the pretest items of a session store; write them as a bank (and a report)."""
+    out = _check_bank_target(out, "--out")
+    bank = load_bank(bank_path) if bank_path else None
+    result = calibrate_pretest(db_path, bank_id=bank_id, bank=bank, rules=rules, settings=settings)
+    reports = {}
+    if report:
+        reports[Path(report)] = rows_to_csv([{k: ("" if isinstance(v, float) and v != v else v)
+                                              for k, v in row.items()} for row in result.rows])
+    _write_outputs(result.bank, out, reports)
+    summary = dict(result.summary)
+    summary.update(items=result.rows, out=str(out), report=str(report) if report else None)
+    return summary

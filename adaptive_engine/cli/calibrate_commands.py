@@ -1,0 +1,108 @@
+"""``adaptive-engine calibrate``, ``link`` and ``pretest calibrate``: bank maintenance."""
+
+from __future__ import annotations
+
+import click
+
+from ..calibration import CalibrationSettings, prior_choice_from_texts
+from ..calibration.jobs import calibrate_file, link_files, pretest_files
+from ..calibration.linking import METHODS
+from ..calibration.pretest import PromotionRules
+from ._common import echo_json, main, report_errors
+
+_FILE = click.Path(dir_okay=False, path_type=str)
+_MODELS = ["1PL", "2PL", "3PL", "4PL", "GRM", "GPCM", "Rasch", "PCM"]
+
+
+def _settings(**kw) -> CalibrationSettings:
+    priors = prior_choice_from_texts(kw.pop("prior"), use_defaults=not kw.pop("no_priors"))
+    return CalibrationSettings(priors=priors, **kw)
+
+
+@main.command("calibrate")
+@click.argument("responses", metavar="RESPONSES", type=_FILE)
+@click.option("--model", type=click.Choice(_MODELS, case_sensitive=False), default=None,
+              help="Model of every item (1PL items share one slope). Needed unless --template is given.")
+@click.option("--template", "template", type=_FILE, default=None,
+              help="Bank giving each item its own model, categories and metadata (mixed banks).")
+@click.option("--common-slope", is_flag=True, help="Estimate one slope shared by all items (written to column a).")
+@click.option("--prior", multiple=True, metavar="PARAM=KIND:X,Y",
+              help="Prior on a parameter, e.g. a=lognormal:0,0.5  b=normal:0,2  c=beta:5,17  d=beta:20,2  "
+                   "or c=none. Repeatable. 3PL/4PL items have priors on by default.")
+@click.option("--no-priors", is_flag=True, help="No default priors (priors given with --prior still apply).")
+@click.option("--out", required=True, type=_FILE, help="Bank file to write (.csv, .json or .db).")
+@click.option("--fit-report", type=_FILE, default=None,
+              help="CSV with every item's parameters, standard errors, answers and fit (S-X2 or grouped chi-square, "
+                   "infit/outfit for 1PL).")
+@click.option("--scaling", type=float, default=1.0, show_default=True, help="Scaling constant D of the output bank.")
+@click.option("--quadrature-points", type=int, default=61, show_default=True,
+              help="Ability points of the N(0, 1) population grid.")
+@click.option("--max-iterations", type=int, default=500, show_default=True, help="Most EM cycles.")
+@click.option("--tolerance", type=float, default=1e-4, show_default=True,
+              help="Stop when no parameter moves more than this in a cycle.")
+@click.option("--min-answers", type=int, default=20, show_default=True, help="Fewest answers an item needs.")
+@report_errors
+def calibrate_command(responses, model, template, common_slope, prior, no_priors, out, fit_report, scaling,
+                      quadrature_points, max_iterations, tolerance, min_answers):
+    """Calibrate items from RESPONSES (long CSV person_id,item_id,response) by marginal maximum likelihood.
+
+    Prints a JSON summary: iterations, convergence, log-likelihood, AIC, BIC.
+    """
+    settings = _settings(prior=prior, no_priors=no_priors, common_slope=common_slope, scaling=scaling,
+                         quadrature_points=quadrature_points, max_iterations=max_iterations,
+                         tolerance=tolerance, min_answers=min_answers)
+    echo_json(calibrate_file(responses, out=out, model=model, template_path=template, settings=settings,
+                             fit_report=fit_report))
+
+
+@main.command("link")
+@click.argument("new_bank", metavar="NEW_BANK", type=_FILE)
+@click.option("--to", "base_bank", required=True, type=_FILE, help="Bank whose scale NEW_BANK is put on.")
+@click.option("--method", type=click.Choice(METHODS), default="stocking_lord", show_default=True,
+              help="How the slope and intercept of the transformation are found.")
+@click.option("--out", required=True, type=_FILE, help="Linked bank to write (.csv, .json or .db).")
+@click.option("--anchors", default=None, help="Comma-separated common item ids (default: all shared ids).")
+@click.option("--max-difficulty-shift", type=float, default=0.5, show_default=True,
+              help="Flag an anchor whose difficulty moved more than this after linking.")
+@click.option("--max-slope-ratio", type=float, default=1.5, show_default=True,
+              help="Flag an anchor whose slope changed by more than this factor after linking.")
+@click.option("--scaling", type=float, default=None, help="Scaling constant D for CSV banks.")
+@report_errors
+def link_command(new_bank, base_bank, method, out, anchors, max_difficulty_shift, max_slope_ratio, scaling):
+    """Put NEW_BANK on the scale of the --to bank through their common items.
+
+    Prints the slope and intercept (theta_base = slope * theta_new + intercept) and the anchors that drifted.
+    """
+    anchor_list = [a.strip() for a in anchors.split(",") if a.strip()] if anchors else None
+    echo_json(link_files(new_bank, to=base_bank, out=out, method=method, anchors=anchor_list,
+                         max_difficulty_shift=max_difficulty_shift, max_slope_ratio=max_slope_ratio,
+                         scaling=scaling))
+
+
+@main.group("pretest")
+def pretest():
+    """Calibrate pretest items seeded in live sessions."""
+
+
+@pretest.command("calibrate")
+@click.option("--db", "db_path", required=True, type=_FILE, help="Session store (SQLite).")
+@click.option("--bank-id", default=None, help="Id of the bank whose sessions are read.")
+@click.option("--bank", "bank_path", type=_FILE, default=None,
+              help="Bank file (instead of the store's copy; its id is looked up when --bank-id is not given).")
+@click.option("--out", required=True, type=_FILE, help="Bank file for the pretest items (.csv, .json or .db).")
+@click.option("--report", type=_FILE, default=None, help="CSV report with a ready column and the reasons.")
+@click.option("--min-answers", type=int, default=200, show_default=True, help="Answers an item needs to be ready.")
+@click.option("--max-se", type=float, default=0.3, show_default=True,
+              help="Largest standard error of any parameter of a ready item.")
+@click.option("--min-fit-p", type=float, default=0.01, show_default=True,
+              help="Smallest item-fit p-value of a ready item.")
+@click.option("--no-priors", is_flag=True, help="No default priors on 3PL/4PL items.")
+@report_errors
+def pretest_calibrate_command(db_path, bank_id, bank_path, out, report, min_answers, max_se, min_fit_p, no_priors):
+    """Estimate the pretest items of a bank's sessions on the bank's scale and judge them ready or not."""
+    if not bank_id and not bank_path:
+        raise click.UsageError("give --bank-id or --bank")
+    rules = PromotionRules(min_answers=min_answers, max_se=max_se, min_fit_p=min_fit_p)
+    settings = _settings(prior=(), no_priors=no_priors)
+    echo_json(pretest_files(db_path, out=out, bank_id=bank_id, bank_path=bank_path, rules=rules,
+                            settings=settings, report=report))

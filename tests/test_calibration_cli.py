@@ -1,0 +1,119 @@
+"""Command line: calibrate, link and pretest calibrate on the demo banks (invented scenarios,
+used as demo data only -- the reference checks live in test_calibration_reference.py).
+
+Responses are simulated from the demo banks; the calibrated bank must pass ``bank check``,
+and every bad input must give exit code 2 with a located message and no output file.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from adaptive_engine import models
+from adaptive_engine.bank import load_bank
+from adaptive_engine.bank_io import write_bank
+from adaptive_engine.cli import main
+
+BANKS = Path(__file__).resolve().parents[1] / "item_banks"
+
+
+def _simulate(bank, n_persons, rng, path, missing=0.0):
+    theta = rng.normal(size=n_persons)
+    probs = models.probabilities(bank.params.reshape_for_outer(), theta[None, :])  # (n, P, C)
+    cum = np.cumsum(probs, axis=-1)
+    x = (rng.random(probs.shape[:2] + (1,)) > cum).sum(axis=-1)  # (n, P)
+    with open(path, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["person_id", "item_id", "response"])
+        for p in range(n_persons):
+            for j in range(len(bank)):
+                if rng.random() >= missing:
+                    w.writerow([f"staff{p:05d}", bank.item_ids[j], int(x[j, p])])
+    return path
+
+
+@pytest.fixture(scope="module")
+def survey():
+    bank_file = BANKS / "staff_climate_survey.csv"
+    if not bank_file.exists():
+        pytest.skip("demo bank item_banks/staff_climate_survey.csv not present")
+    return load_bank(bank_file).subset(np.arange(12))
+
+
+def test_calibrate_survey_with_template(tmp_path, survey):
+    rng = np.random.default_rng(51)
+    template = tmp_path / "template.csv"
+    write_bank(survey, template)
+    responses = _simulate(survey, 1500, rng, tmp_path / "survey_answers.csv", missing=0.2)
+    runner = CliRunner()
+    out = tmp_path / "calibrated.json"
+    report = tmp_path / "items.csv"
+    res = runner.invoke(main, ["calibrate", str(responses), "--template", str(template), "--out", str(out),
+                               "--fit-report", str(report)])
+    assert res.exit_code == 0, res.output
+    summary = json.loads(res.output)
+    assert summary["converged"] and summary["items"] == 12
+    assert summary["fit_statistic"] == "grouped_posterior_chi_square"
+    assert summary["aic"] > 0 and summary["bic"] > summary["aic"]
+    calibrated = load_bank(out)
+    assert list(calibrated.model) == list(survey.model)
+    check = runner.invoke(main, ["bank", "check", str(out)])
+    assert check.exit_code == 0, check.output
+    rows = list(csv.DictReader(report.open()))
+    assert len(rows) == 12 and rows[0]["se_a"] and rows[0]["fit_p"]
+
+
+def test_calibrate_errors_exit_2_and_write_nothing(tmp_path):
+    runner = CliRunner()
+    bad = tmp_path / "answers.csv"
+    bad.write_text("person_id,item_id,response\n" + "".join(f"p{i},MV-1,{i % 2}\np{i},MV-2,{2 if i == 7 else 1}\n"
+                                                           for i in range(30)))
+    out = tmp_path / "out.csv"
+    res = runner.invoke(main, ["calibrate", str(bad), "--model", "2PL", "--out", str(out)])
+    assert res.exit_code == 2
+    assert "answers.csv line 17: response 2 to item 'MV-2'" in res.output
+    assert not out.exists()
+    res = runner.invoke(main, ["calibrate", str(bad), "--model", "2PL", "--out", str(out),
+                               "--prior", "c=normal:0,1"])
+    assert res.exit_code == 2 and "--prior c=normal:0,1: parameter c takes a beta prior" in res.output
+    res = runner.invoke(main, ["calibrate", str(bad), "--model", "2PL", "--out", str(tmp_path / "x.txt")])
+    assert res.exit_code == 2 and "unknown bank file type '.txt'" in res.output
+    res = runner.invoke(main, ["calibrate", str(bad), "--model", "2PL", "--out", str(out), "--tolerance", "0"])
+    assert res.exit_code == 2 and "setting tolerance: must be > 0" in res.output
+    assert not out.exists()
+
+
+def test_link_cli_on_meridian_valley_items(tmp_path):
+    bank_file = BANKS / "meridian_valley_operator.csv"
+    if not bank_file.exists():
+        pytest.skip("demo bank not present")
+    base = load_bank(bank_file).subset(np.arange(30))
+    # a new form on a shifted scale: theta_new = (theta_base - 0.3) / 1.1
+    new = base.evolve(a=base.a * 1.1, b=(base.b - 0.3) / 1.1)
+    base_path, new_path, out = tmp_path / "base.json", tmp_path / "new.json", tmp_path / "linked.csv"
+    write_bank(base, base_path)
+    write_bank(new, new_path)
+    res = CliRunner().invoke(main, ["link", str(new_path), "--to", str(base_path), "--method", "haebara",
+                                    "--out", str(out)])
+    assert res.exit_code == 0, res.output
+    summary = json.loads(res.output)
+    assert summary["slope"] == pytest.approx(1.1, abs=1e-4)
+    assert summary["intercept"] == pytest.approx(0.3, abs=1e-4)
+    assert summary["drifted"] == []
+    np.testing.assert_allclose(load_bank(out).b, base.b, atol=1e-4)
+
+
+def test_every_command_has_help():
+    runner = CliRunner()
+    for args in (["calibrate"], ["link"], ["pretest"], ["pretest", "calibrate"]):
+        res = runner.invoke(main, args + ["--help"])
+        assert res.exit_code == 0
+        lines = [ln for ln in res.output.splitlines() if ln.strip()]
+        assert len(lines) > 2 and not lines[1].startswith("Options")
+
