@@ -17,3 +17,4 @@ from . import design_commands  # noqa: F401,E402
 from . import score_commands  # noqa: F401,E402
 from . import simulate_commands  # noqa: F401,E402
 from . import session_commands  # noqa: F401,E402
+from . import calibrate_commands  # noqa: F401,E402
