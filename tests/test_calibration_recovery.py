@@ -172,3 +172,22 @@ def test_errors_name_the_item_or_line():
     g[g == 2] = 3  # category 2 never used
     with pytest.raises(CalibrationError, match=r"item q00: category 2 of 0..3 has no answers"):
         calibrate_responses(_table(g), model="GRM")
+
+
+def test_4pl_with_default_priors_runs_and_keeps_asymptotes_ordered():
+    # Barton & Lord (1981) 4PL; loose check only (the upper asymptote is weakly identified)
+    rng = np.random.default_rng(17)
+    n_items = 12
+    a = rng.uniform(1.0, 2.0, n_items)
+    b = rng.uniform(-1.0, 1.0, n_items)
+    theta = rng.normal(size=3000)
+    p = 0.15 + (0.95 - 0.15) * expit(1.702 * a * (theta[:, None] - b))
+    x = (rng.random(p.shape) < p).astype(int)
+    result = calibrate_responses(_table(x), model="4PL", settings=CalibrationSettings(scaling=1.702))
+    o = _ordered(result, n_items)
+    print()
+    _report("4PL b", result.bank.b[o], b)
+    _report("4PL d", result.bank.d[o], np.full(n_items, 0.95))
+    assert np.all(result.bank.c < result.bank.d)
+    assert np.sqrt(np.mean((result.bank.b[o] - b) ** 2)) < 0.3
+    assert abs(np.mean(result.bank.d) - 0.95) < 0.05

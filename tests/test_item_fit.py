@@ -162,3 +162,17 @@ def test_rasch_mean_squares_by_hand():
     assert outfit[0] == pytest.approx(np.mean((x - p) ** 2 / var))
     assert infit[0] == pytest.approx(np.sum((x - p) ** 2) / np.sum(var))
     assert np.isnan(infit[1]) and np.isnan(outfit[1])
+
+
+def test_rasch_bank_gets_infit_outfit_near_one():
+    # Common practice: mean squares near 1 for items that fit (Wright & Masters 1982)
+    rng = np.random.default_rng(23)
+    b = np.linspace(-1.5, 1.5, 12)
+    x = _simulate_2pl(rng, 1500, np.ones(12), b)
+    result = calibrate_responses(_table(x), model="1PL")
+    fit = fit_for_result(result)
+    assert np.all(np.isfinite(fit.infit)) and np.all(np.isfinite(fit.outfit))
+    assert np.all(np.abs(fit.infit - 1) < 0.15)
+    assert np.all(np.abs(fit.outfit - 1) < 0.35)
+    # df of S-X2 for a 1PL item counts one parameter (the slope is shared)
+    assert np.nanmax(fit.df) >= 5
