@@ -93,6 +93,9 @@ DEFAULT_PRIORS = {
     "d": ParameterPrior(kind="beta", first=20.0, second=2.0),
 }
 MODELS_WITH_DEFAULT_PRIORS = ("3PL", "4PL")
+#: parameters each model estimates (b stands for the thresholds of GRM/GPCM items)
+ESTIMATED = {"1PL": ("a", "b"), "2PL": ("a", "b"), "3PL": ("a", "b", "c"), "4PL": ("a", "b", "c", "d"),
+             "GRM": ("a", "b"), "GPCM": ("a", "b")}
 
 
 @attrs.frozen(kw_only=True)
@@ -125,8 +128,9 @@ class PriorChoice:
         return out
 
     def describe(self) -> dict:
-        return {m: {k: p.describe() for k, p in self.for_model(m).items()}
-                for m in ("1PL", "2PL", "3PL", "4PL", "GRM", "GPCM")}
+        """Priors in force per model, only on parameters the model estimates."""
+        return {m: {k: p.describe() for k, p in self.for_model(m).items() if k in ESTIMATED[m]}
+                for m in ESTIMATED}
 
 
 def parse_prior(text: str) -> tuple[str, ParameterPrior | None]:
