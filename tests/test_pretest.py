@@ -96,6 +96,9 @@ def test_pretest_items_land_on_the_bank_scale(tmp_path):
     assert not rows["new4"]["ready"] and "answers <" in rows["new4"]["reasons"]
     assert list(result.bank.status) == ["pretest"] * 4
     assert result.summary["sessions"] == 2500
+    # the population is estimated on the bank's scale (true N(0.4, 1.1^2))
+    assert result.summary["population_mean"] == pytest.approx(0.4, abs=0.1)
+    assert result.summary["population_sd"] == pytest.approx(1.1, abs=0.1)
 
 
 def test_bank_lookup_and_errors(tmp_path):

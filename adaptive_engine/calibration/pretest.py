@@ -5,7 +5,9 @@ every answer (``events.kind = 'answer'``, ``scored`` 1 for operational, 0 for pr
 of the sessions of a bank (``sessions.bank_id``).  Here:
 
 1. each session's posterior on an ability grid is computed from its *operational* answers
-   only, with the bank's values held fixed (N(0, 1) prior, the bank's own population);
+   only, with the bank's values held fixed, under a normal population whose mean and SD
+   are estimated from those answers (so a population unlike the bank's reference group
+   does not pull the scale);
 2. the pretest items' parameters are estimated by marginal maximum likelihood with those
    posteriors as each examinee's prior (EM as in :mod:`.em`), so they land on the bank's
    scale without any linking step;
@@ -174,16 +176,43 @@ def read_store_answers(path, bank_id: str) -> StoreAnswers:
                         event_id=event_id.astype(np.int64))
 
 
-def operational_log_posterior(bank: ItemBank, answers: StoreAnswers, rows: np.ndarray, grid) -> np.ndarray:
-    """Each session's log posterior from its operational answers, shape (P, G)."""
+def operational_log_posterior(bank: ItemBank, answers: StoreAnswers, rows: np.ndarray, grid):
+    """Each session's log posterior from its operational answers, and the population.
+
+    The examinees of live sessions need not match the bank's reference population, so the
+    population's mean and SD are estimated first by marginal ML with the operational items
+    held at their bank values (EM on a normal population; after Kim 2006, who updates the
+    ability distribution in fixed-parameter calibration).  Using N(0, 1) instead would
+    shrink the posteriors towards the wrong centre and bias the pretest items' slopes and
+    locations.
+
+    Returns
+    -------
+    log_post : array, shape (P, G)
+        Normalised log posterior of every session.
+    mean, sd : float
+        Estimated population mean and SD on the bank's scale.
+    """
     sel = np.flatnonzero(answers.scored == 1)
     table = bank.log_probability_table(grid)  # (n, G, C)
     n, g, c = table.shape
     flat = np.maximum(table, -1e4).transpose(0, 2, 1).reshape(n * c, g)
     indicator = sp.csr_matrix((np.ones(sel.size), (answers.session[sel], rows[sel] * c + answers.response[sel])),
                               shape=(answers.session_ids.size, n * c))
-    log_post = indicator @ flat - 0.5 * grid**2
-    return log_post - logsumexp(log_post, axis=1, keepdims=True)
+    loglik = indicator @ flat
+    mean, sd = 0.0, 1.0
+    for _ in range(200):
+        log_post = loglik - 0.5 * ((grid - mean) / sd) ** 2
+        w = np.exp(log_post - logsumexp(log_post, axis=1, keepdims=True))
+        eap = w @ grid
+        new_mean = float(eap.mean())
+        new_sd = float(np.sqrt(np.mean(w @ grid**2) - new_mean**2))
+        moved = max(abs(new_mean - mean), abs(new_sd - sd))
+        mean, sd = new_mean, max(new_sd, 1e-3)
+        if moved < 1e-6:
+            break
+    log_post = loglik - 0.5 * ((grid - mean) / sd) ** 2
+    return log_post - logsumexp(log_post, axis=1, keepdims=True), mean, sd
 
 
 def calibrate_pretest(
@@ -229,7 +258,7 @@ def calibrate_pretest(
     if problems:
         raise CalibrationError(problems)
     grid, _ = settings.grid()
-    log_post = operational_log_posterior(bank, answers, rows, grid)
+    log_post, pop_mean, pop_sd = operational_log_posterior(bank, answers, rows, grid)
     pre = np.flatnonzero(answers.scored == 0)
     if pre.size == 0:
         raise CalibrationError(f"the sessions of bank {bank_id!r} hold no pretest (unscored) answers",
@@ -265,6 +294,7 @@ def calibrate_pretest(
     summary = dict(bank_id=bank_id, sessions=int(answers.session_ids.size),
                    operational_answers=int(np.sum(answers.scored == 1)), pretest_answers=int(pre.size),
                    pretest_items=int(pre_rows_all.size), ready=int(sum(r["ready"] for r in report)),
+                   population_mean=pop_mean, population_sd=pop_sd,
                    rules=attrs.asdict(rules),
                    calibration=None if result is None else dict(
                        iterations=result.iterations, converged=result.converged,
