@@ -120,6 +120,9 @@ def test_gpcm_recovery_and_common_slope():
     # a common slope sits near the average of the true slopes
     assert shared.bank.a[0] == pytest.approx(a.mean(), abs=0.2)
     assert shared.log_likelihood < result.log_likelihood
+    pcm = calibrate_responses(_table(x), model="PCM")
+    assert pcm.settings.common_slope and np.ptp(pcm.bank.a) == 0.0
+    assert pcm.log_likelihood == pytest.approx(shared.log_likelihood, abs=1e-3)
 
 
 def test_sparse_data_and_mixed_template():

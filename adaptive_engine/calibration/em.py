@@ -178,8 +178,15 @@ def calibrate_responses(
     settings: CalibrationSettings | None = None,
     name: str = "calibrated",
 ) -> CalibrationResult:
-    """Calibrate items from long-format responses (see :func:`calibrate_data`)."""
+    """Calibrate items from long-format responses (see :func:`calibrate_data`).
+
+    ``model="PCM"`` (the partial credit model) is a GPCM whose items share one slope, as
+    ``Rasch`` is a 1PL: with the population fixed at N(0, 1) the shared slope takes the
+    place of the population SD.
+    """
     settings = settings or CalibrationSettings()
+    if model is not None and str(model).strip().upper() == "PCM" and not settings.common_slope:
+        settings = attrs.evolve(settings, common_slope=True)
     data = prepare_data(table, model=model, template=template, min_answers=settings.min_answers)
     return calibrate_data(data, settings=settings, name=name)
 
