@@ -119,29 +119,33 @@ def test_em_matches_direct_marginal_maximisation(model, common_slope):
 
 
 @needs_reference
-def test_standard_errors_near_inverse_hessian():
+@pytest.mark.parametrize("common_slope", [False, True])
+def test_standard_errors_near_inverse_hessian(common_slope):
     # Oracle: inverse of a finite-difference Hessian of the directly computed marginal
-    # log-likelihood (in a, b), numpy only.  The cross-product estimate the project uses is
-    # asymptotically equal; with 1,000 persons agreement within 25% is expected.
+    # log-likelihood (in a, b; one shared a for the Rasch form), numpy only.  The
+    # cross-product estimate the project uses is asymptotically equal; with 1,000 persons
+    # agreement within 25% is expected.
     items, patterns, counts = _patterns()
-    result = calibrate_responses(_table(items, patterns, counts), model="2PL",
+    result = calibrate_responses(_table(items, patterns, counts), model="1PL" if common_slope else "2PL",
                                  settings=CalibrationSettings(tolerance=1e-7, max_iterations=5000))
     order = result.bank.indices(items)
-    x0 = np.concatenate([result.bank.a[order], result.bank.b[order]])
+    n_a = 1 if common_slope else 5
+    x0 = np.concatenate([result.bank.a[order][:n_a], result.bank.b[order]])
+    m = x0.size
 
     def loglik(x):
-        a, b = x[:5], x[5:]
+        a, b = np.broadcast_to(x[:n_a], (5,)), x[n_a:]
         return _marginal_loglik(a, -a * b, patterns, counts, 61)
 
     h = 1e-4
-    hess = np.zeros((10, 10))
-    for i in range(10):
-        for j in range(10):
-            e_i, e_j = np.eye(10)[i] * h, np.eye(10)[j] * h
+    hess = np.zeros((m, m))
+    for i in range(m):
+        for j in range(m):
+            e_i, e_j = np.eye(m)[i] * h, np.eye(m)[j] * h
             hess[i, j] = (loglik(x0 + e_i + e_j) - loglik(x0 + e_i - e_j)
                           - loglik(x0 - e_i + e_j) + loglik(x0 - e_i - e_j)) / (4 * h * h)
     se_direct = np.sqrt(np.diag(np.linalg.inv(-hess)))
-    se_em = np.concatenate([result.standard_errors["a"][order], result.standard_errors["b"][order]])
+    se_em = np.concatenate([result.standard_errors["a"][order][:n_a], result.standard_errors["b"][order]])
     print("\nSE cross-product", np.round(se_em, 3), "\nSE inverse Hessian", np.round(se_direct, 3))
     np.testing.assert_allclose(se_em, se_direct, rtol=0.25)
 
