@@ -2,7 +2,7 @@
 
 A :class:`TestContext` holds the quadrature grid and the bank's log-probability table on
 it, integer codes for areas, enemy groups and item sets, blueprint bounds as arrays, the
-Sympson-Hetter parameters as an array, a-strata, and the ranked-candidate tables that make
+Sympson-Hetter parameters as an array (per ability stratum when conditional), a-strata, and the ranked-candidate tables that make
 maximum-information selection fast (see :mod:`adaptive_engine.selection`).
 """
 
@@ -106,7 +106,8 @@ class TestContext:
     set_members: tuple  # set code -> array of items in bank order
     set_area_counts: np.ndarray  # (S, A)
     set_groups: np.ndarray  # (S, W) enemy-group codes of each set's members, padded with n_groups
-    exposure_k: np.ndarray | None  # (n,) Sympson-Hetter parameters
+    exposure_k: np.ndarray | None  # (S, n) Sympson-Hetter parameters per ability stratum (S = 1: unconditional)
+    exposure_cuts: np.ndarray  # (S - 1,) interior cut points of the ability strata, ascending
     stratum: np.ndarray | None  # (n,) a-stratum of each item
     difficulty: np.ndarray  # (n,) b, or mean threshold for polytomous items
     max_length: int  # scored items + pretest slots
@@ -178,15 +179,7 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
     for s_i, codes in enumerate(set_group_lists):
         set_groups[s_i, : len(codes)] = codes
     # Sympson-Hetter parameters
-    exposure_k = None
-    if design.exposure.method == "sympson_hetter":
-        params = design.exposure_parameters or {}
-        exposure_k = np.ones(n)
-        unknown = [iid for iid in params if iid not in bank.index_of]
-        if unknown:
-            raise DesignError([Problem("[exposure] parameters", f"item {iid!r} is not in the bank") for iid in unknown[:20]])
-        for iid, value in params.items():
-            exposure_k[bank.index_of[iid]] = value
+    exposure_k, exposure_cuts = _exposure_parameters(design, bank)
     difficulty = bank.b.copy()
     poly = np.isnan(difficulty)
     if poly.any():  # polytomous items: the mean of their thresholds
@@ -202,10 +195,35 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
         pretest_items=np.flatnonzero(~operational), area=bank.area_index, n_areas=a_count,
         area_min=area_min, area_max=area_max, area_share=share, balanced=balanced,
         item_groups=item_groups, n_groups=len(names), item_set=item_set, set_members=members,
-        set_area_counts=set_area_counts, set_groups=set_groups, exposure_k=exposure_k, stratum=stratum,
+        set_area_counts=set_area_counts, set_groups=set_groups, exposure_k=exposure_k, exposure_cuts=exposure_cuts,
+        stratum=stratum,
         difficulty=difficulty,
         max_length=design.stopping.max_items + len(design.blueprint.pretest_positions),
     )
+
+
+def _exposure_parameters(design: Design, bank: ItemBank) -> tuple[np.ndarray | None, np.ndarray]:
+    """Sympson-Hetter parameters as an (S, n) array and the strata's cut points (S - 1,).
+
+    Unconditional parameters make one row (S = 1, no cut points); parameters conditional on
+    ability (Stocking & Lewis 1998) one row per ability stratum.  Items not listed keep 1.
+    """
+    cuts = np.asarray(design.exposure_strata, dtype=float)
+    if design.exposure.method != "sympson_hetter":
+        return None, cuts
+    from .exposure_file import parameter_problems
+
+    params = design.exposure_parameters or {}
+    unknown = [iid for iid in params if iid not in bank.index_of]
+    if unknown:
+        raise DesignError([Problem("[exposure] parameters", f"item {iid!r} is not in the bank") for iid in unknown[:20]])
+    problems = parameter_problems(params, design.exposure_strata, where="[exposure] parameters, item")
+    if problems:
+        raise DesignError(problems[:20])
+    exposure_k = np.ones((cuts.size + 1, bank.n_items))
+    for iid, value in params.items():
+        exposure_k[:, bank.index_of[iid]] = value
+    return exposure_k, cuts
 
 
 def _a_strata(a, difficulty, operational, k, b_blocking) -> np.ndarray:

@@ -85,7 +85,10 @@ class Exposure:
 
     ``randomesque``: at random among the ``candidates`` best items (Kingsbury & Zara 1989).
     ``sympson_hetter``: per-item exposure parameters read from the CSV file ``parameters``
-    (columns ``item_id,exposure_parameter``; path relative to the design file).
+    (columns ``item_id,exposure_parameter``; path relative to the design file), or per item
+    and ability stratum for the conditional method of Stocking & Lewis (1998) (columns
+    ``item_id,theta_from,theta_to,exposure_parameter``; see
+    :mod:`adaptive_engine.exposure_file`).
     ``progressive``: weight of the random part falls as the test goes on (Revuelta &
     Ponsoda 1998); ``acceleration`` is the power of the position/length ratio.
     """
@@ -212,12 +215,25 @@ class Design:
     reporting: Reporting = Reporting()
     source: str = ""
     #: Sympson-Hetter exposure parameters keyed by item id, loaded from
-    #: ``exposure.parameters`` when the design is read (None otherwise).
+    #: ``exposure.parameters`` when the design is read (None otherwise): a float per item,
+    #: or, conditional on ability, a tuple with one float per stratum (low to high).
     exposure_parameters: dict | None = attrs.field(default=None, eq=False)
+    #: Interior cut points of the ability strata of conditional exposure parameters,
+    #: ascending; empty for unconditional ones.  Loaded from the parameter file with them.
+    exposure_strata: tuple = attrs.field(default=(), eq=False, converter=lambda v: tuple(float(x) for x in v),
+                                         validator=lambda _self, _attr, value: _check_cuts(value))
 
     @property
     def final_method(self) -> str:
         return self.reporting.final_method or self.scoring.method
+
+
+def _check_cuts(cuts: tuple) -> None:
+    import math
+
+    values = [float(c) for c in cuts]
+    if not all(math.isfinite(v) for v in values) or any(b <= a for a, b in zip(values, values[1:])):
+        raise ValueError(f"exposure_strata must be finite and strictly ascending, got {cuts!r}")
 
 
 _LAZY = {

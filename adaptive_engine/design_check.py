@@ -103,6 +103,10 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
         if unknown:
             shown = ", ".join(unknown[:10]) + (f" and {len(unknown) - 10} more" if len(unknown) > 10 else "")
             problems.append(Problem("[exposure] parameters", f"items not in the bank: {shown}"))
+        from .exposure_file import parameter_problems
+
+        problems += parameter_problems(design.exposure_parameters, design.exposure_strata,
+                                       where="[exposure] parameters, item")[:20]
     if ex.method == "randomesque" and ex.candidates > n_operational:
         problems.append(Problem("[exposure] candidates",
                                 f"{ex.candidates} candidates but the bank has {n_operational} operational items"))
@@ -223,7 +227,10 @@ def describe_design(design: Design) -> list[str]:
         "none": "no exposure control",
         "randomesque": f"randomesque: at random among the {ex.candidates} best items",
         "sympson_hetter": f"Sympson-Hetter with per-item parameters from {ex.parameters}"
-                          + (f" ({len(design.exposure_parameters)} items)" if design.exposure_parameters else ""),
+                          + (f" ({len(design.exposure_parameters)} items)" if design.exposure_parameters else "")
+                          + (f", conditional on the interim ability estimate in {len(design.exposure_strata) + 1} "
+                             f"strata cut at {', '.join(f'{c:g}' for c in design.exposure_strata)}"
+                             if design.exposure_strata else ""),
         "progressive": f"progressive: a random part that fades as the test goes on (acceleration {ex.acceleration:g})",
     }[ex.method]
     lines.append(f"exposure: {exposure}")

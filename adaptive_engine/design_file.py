@@ -12,8 +12,9 @@ Public functions
 :func:`design_to_toml` / :func:`design_as_dict`
     A design back to TOML text (``parse_design(design_to_toml(d)) == d``) or to plain
     dicts and lists.
-:func:`read_exposure_parameters`
-    The Sympson-Hetter parameter CSV (``item_id,exposure_parameter``), from
+:func:`read_exposure_parameters` / :func:`read_exposure_file`
+    The Sympson-Hetter parameter CSV (``item_id,exposure_parameter``, or conditional on
+    ability ``item_id,theta_from,theta_to,exposure_parameter``), from
     :mod:`adaptive_engine.exposure_file`.
 
 Every problem is collected with its location -- ``"[stopping] se"``,
@@ -53,7 +54,13 @@ from .design import (
     Stopping,
 )
 from .errors import DesignError, Problem
-from .exposure_file import parse_exposure_parameters, read_exposure_parameters  # noqa: F401
+from .exposure_file import (  # noqa: F401
+    parameter_problems,
+    parse_exposure_file,
+    parse_exposure_parameters,
+    read_exposure_file,
+    read_exposure_parameters,
+)
 
 SECTIONS = ("opening", "scoring", "selection", "exposure", "blueprint", "stopping", "reporting")
 
@@ -492,7 +499,7 @@ def _blueprint_problems(bp: Blueprint, st: Stopping) -> list[Problem]:
 
 
 def _design_from_mapping(doc: Mapping, *, source: str, base_dir: Path | None,
-                         exposure_parameters: dict | None = None) -> Design:
+                         exposure_parameters: dict | None = None, exposure_strata: tuple = ()) -> Design:
     problems: list[Problem] = []
     sections = {}
     for name, table in doc.items():
@@ -517,8 +524,9 @@ def _design_from_mapping(doc: Mapping, *, source: str, base_dir: Path | None,
         path = Path(design.exposure.parameters)
         if not path.is_absolute() and base_dir is not None:
             path = Path(base_dir) / path
-        exposure_parameters = read_exposure_parameters(path, location="[exposure] parameters")
-    return attrs.evolve(design, exposure_parameters=exposure_parameters)
+        loaded = read_exposure_file(path, location="[exposure] parameters")
+        exposure_parameters, exposure_strata = loaded.parameters, loaded.strata
+    return attrs.evolve(design, exposure_parameters=exposure_parameters, exposure_strata=exposure_strata)
 
 
 _TOML_POSITION = re.compile(r"\s*\(at line (\d+), column (\d+)\)\s*$")
@@ -574,29 +582,47 @@ def design_from_dict(data: Mapping, *, base_dir: str | Path | None = None) -> De
     """Validate a plain mapping (as made by :func:`design_as_dict`) into a Design.
 
     ``None`` values count as absent keys.  A mapping that carries ``exposure_parameters``
-    keeps them instead of reading the CSV again (a stored session must not depend on a
-    file that may have changed since).
+    (and, for parameters conditional on ability, ``exposure_strata``: the interior cut
+    points) keeps them instead of reading the CSV again (a stored session must not depend
+    on a file that may have changed since).
     """
     if not isinstance(data, Mapping):
         raise DesignError("a design must be a mapping of sections", location="design")
     data = dict(data)
     source = data.pop("source", "") or ""
     stored = data.pop("exposure_parameters", None)
+    strata = _stored_strata(data.pop("exposure_strata", None))
     params = None
     if stored is not None:
-        params = {}
-        problems = []
-        for iid, value in dict(stored).items():
-            number, problem = _number(value)
-            if problem or not 0 <= number <= 1:
-                problems.append(Problem(f"exposure_parameters {iid}", problem or f"must lie in [0, 1], got {value!r}"))
-            else:
-                params[str(iid)] = number
+        if not isinstance(stored, Mapping):
+            raise DesignError("expected a mapping of item id to parameter(s)", location="exposure_parameters")
+        problems = parameter_problems(dict(stored), strata)
         if problems:
             raise DesignError(problems)
+        params = {str(iid): (tuple(float(v) for v in value) if strata else float(value))
+                  for iid, value in stored.items()}
+    elif strata:
+        raise DesignError("exposure strata were given without exposure parameters", location="exposure_strata")
     return _design_from_mapping(_drop_none(data), source=str(source),
                                 base_dir=None if base_dir is None else Path(base_dir),
-                                exposure_parameters=params)
+                                exposure_parameters=params, exposure_strata=strata)
+
+
+def _stored_strata(value) -> tuple:
+    """Validated interior cut points of stored conditional exposure parameters."""
+    if value is None:
+        return ()
+    if isinstance(value, (str, bytes, Mapping)) or not isinstance(value, (list, tuple)):
+        raise DesignError(f"expected a list of cut points, got {_toml_kind(value)}", location="exposure_strata")
+    cuts = []
+    for v in value:
+        number, problem = _number(v)
+        if problem:
+            raise DesignError(problem, location="exposure_strata")
+        cuts.append(number)
+    if any(b <= a for a, b in zip(cuts, cuts[1:])):
+        raise DesignError(f"cut points must be strictly ascending, got {cuts}", location="exposure_strata")
+    return tuple(cuts)
 
 
 def _drop_none(value):
@@ -614,8 +640,8 @@ def _drop_none(value):
 def design_as_dict(design: Design) -> dict:
     """The design as plain dicts, lists, numbers, strings and None (JSON-ready).
 
-    Includes ``source`` and the loaded ``exposure_parameters`` so that a design stored with
-    a session can be rebuilt by :func:`design_from_dict` without its files.
+    Includes ``source``, the loaded ``exposure_parameters`` and their ``exposure_strata``
+    (None when unconditional) so that a design stored with a session can be rebuilt by :func:`design_from_dict` without its files.
     """
     out = {name: _plain(getattr(design, name)) for name in SECTIONS}
     # keys that the file forbids together are left out (None), as in the TOML writer
@@ -627,7 +653,11 @@ def design_as_dict(design: Design) -> dict:
             area["min"] = area["max"] = None
     out["blueprint"]["areas"] = {a.pop("name"): a for a in areas}
     out["source"] = design.source
-    out["exposure_parameters"] = None if design.exposure_parameters is None else dict(design.exposure_parameters)
+    params = design.exposure_parameters
+    if params is not None and design.exposure_strata:
+        params = {iid: list(value) if isinstance(value, tuple) else value for iid, value in params.items()}
+    out["exposure_parameters"] = None if params is None else dict(params)
+    out["exposure_strata"] = list(design.exposure_strata) if design.exposure_strata else None
     return out
 
 

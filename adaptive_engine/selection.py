@@ -200,7 +200,11 @@ def _choose_ranked(ctx, state, rows, cand, values, ok):
         # with fewer than `need` eligible items listed, unlisted ones could belong in the draw
         depth = np.where(n_ok < need, need, depth)
     elif method == "sympson_hetter":
-        k = ctx.exposure_k[np.where(s_cand >= 0, s_cand, 0)]
+        # Conditional parameters (Stocking & Lewis 1998) are indexed by the stratum of the
+        # interim estimate: the true ability is unknown in operational use.  Unconditional
+        # parameters have no cut points, so every examinee is in stratum 0.
+        stratum = np.searchsorted(ctx.exposure_cuts, state.theta[rows], side="right")
+        k = ctx.exposure_k[stratum[:, None], np.where(s_cand >= 0, s_cand, 0)]
         u = randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.SYMPSON_HETTER, s_cand)
         passes = (u < k) & np.isfinite(s_val)
         any_pass = passes.any(axis=1)

@@ -77,6 +77,12 @@ class ChunkResult:
     offered : int (n_items,)
         Times each item was chosen by the criterion: given, or withheld by the
         Sympson-Hetter lottery (the "selected" count of Sympson & Hetter 1985).
+    administered_by_stratum_pair, offered_by_stratum_pair : int (S, S, n_items) or None
+        The same counts split by ``[stratum of the examinee's true ability, stratum of
+        the interim estimate the item was picked at]`` when the run was asked for them
+        (``count_by_stratum``: S - 1 cut points; stratum s is ``[cut[s-1], cut[s])``);
+        None otherwise.  ``administered_by_stratum`` and ``offered_by_stratum`` (S,
+        n_items) sum them over the estimate's stratum.
     """
 
     start: int
@@ -97,10 +103,24 @@ class ChunkResult:
     area_counts: np.ndarray
     administered: np.ndarray
     offered: np.ndarray
+    administered_by_stratum_pair: np.ndarray | None = None
+    offered_by_stratum_pair: np.ndarray | None = None
 
     @property
     def size(self) -> int:
         return int(self.seeds.shape[0])
+
+    @property
+    def administered_by_stratum(self) -> np.ndarray | None:
+        """Administrations per true-ability stratum, (S, n_items) (None if not counted)."""
+        pair = self.administered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
+
+    @property
+    def offered_by_stratum(self) -> np.ndarray | None:
+        """Offers (given or withheld) per true-ability stratum, (S, n_items)."""
+        pair = self.offered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
 
 
 @attrs.frozen(kw_only=True, eq=False)
@@ -108,7 +128,9 @@ class SimulationResult:
     """Per-examinee outcomes of a whole run (administrations are streamed, not kept).
 
     Arrays have one entry per examinee (N,) or per item (n_items,); ``at_or_above`` is
-    (N, K) and ``area_counts`` (N, A), as in :class:`ChunkResult`.
+    (N, K) and ``area_counts`` (N, A), as in :class:`ChunkResult`;
+    ``administered_by_stratum_pair``/``offered_by_stratum_pair`` (S, S, n_items) are
+    summed over the chunks when the run counted by ability stratum (None otherwise).
     """
 
     design: Design
@@ -126,10 +148,24 @@ class SimulationResult:
     area_counts: np.ndarray
     administered: np.ndarray
     offered: np.ndarray
+    administered_by_stratum_pair: np.ndarray | None = None
+    offered_by_stratum_pair: np.ndarray | None = None
 
     @property
     def size(self) -> int:
         return int(self.seeds.shape[0])
+
+    @property
+    def administered_by_stratum(self) -> np.ndarray | None:
+        """Administrations per true-ability stratum, (S, n_items) (None if not counted)."""
+        pair = self.administered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
+
+    @property
+    def offered_by_stratum(self) -> np.ndarray | None:
+        """Offers (given or withheld) per true-ability stratum, (S, n_items)."""
+        pair = self.offered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
 
 
 def true_item_rows(bank: ItemBank, true_bank: ItemBank | None) -> np.ndarray:
@@ -197,7 +233,7 @@ def _draw_answers(true_params: models.ItemParameters, rows_true, theta, u) -> np
 
 
 def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank: ItemBank | None = None,
-              true_rows=None) -> ChunkResult:
+              true_rows=None, count_by_stratum=None) -> ChunkResult:
     """Simulate examinees ``start .. start + n - 1`` of a run (n = ``true_theta.size``).
 
     Parameters
@@ -211,6 +247,10 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
         Bank the answers are drawn from (default: the operational bank).
     true_rows : int array, shape (n_items,), optional
         :func:`true_item_rows` (computed when omitted).
+    count_by_stratum : float sequence, shape (S - 1,), optional
+        Ascending cut points of ability strata: also count administrations and offers
+        per (true-ability stratum, stratum of the interim estimate at the pick) (the
+        calibration of exposure parameters conditional on ability needs them).
     """
     bank = ctx.bank
     true_theta = np.asarray(true_theta, dtype=float)
@@ -226,6 +266,14 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
     interim_theta = np.full((n, length), np.nan)
     interim_se = np.full((n, length), np.nan)
     offered = np.zeros(bank.n_items, dtype=np.int64)
+    by_stratum = count_by_stratum is not None
+    if by_stratum:
+        cuts = np.asarray(count_by_stratum, dtype=float)
+        # stratum of the interim estimate each item (or withheld item) was picked at
+        pick_stratum = np.zeros((n, length), dtype=np.int64)
+        pick_stratum[:, 0] = stratum_of(state.theta, cuts)
+        withheld: list = []  # (row, item, estimate stratum)
+        _keep_withheld(withheld, picked, state.theta, cuts)
     _count_withheld(offered, picked)
     while True:
         rows = np.flatnonzero(~state.done)
@@ -236,10 +284,18 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
         answers = _draw_answers(true_params, true_rows[state.pending[rows]], true_theta[rows], u)
         picked = kernel.answer(ctx, state, rows, answers)
         _count_withheld(offered, picked)
+        if by_stratum:
+            going = rows[state.pending[rows] >= 0]
+            pick_stratum[going, state.n_given[going]] = stratum_of(state.theta[going], cuts)
+            _keep_withheld(withheld, picked, state.theta, cuts)
         interim_theta[rows, pos] = state.theta[rows]
         interim_se[rows, pos] = state.se[rows]
     final = kernel.final_estimates(ctx, state, np.arange(n))
     administered = np.bincount(state.items[state.items >= 0], minlength=bank.n_items)
+    given_s = offered_s = None
+    if by_stratum:
+        given_s, offered_s = _stratum_counts(state.items, pick_stratum, withheld, stratum_of(true_theta, cuts),
+                                             cuts.size + 1, bank.n_items)
     design = ctx.design
     at_or_above = reporting.classification_matrix(design, final.theta, final.sprt_decision)
     return ChunkResult(
@@ -252,6 +308,7 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
         at_or_above=at_or_above, items=state.items, responses=state.responses, scored=state.scored,
         interim_theta=interim_theta, interim_se=interim_se, area_counts=state.area_counts,
         administered=administered, offered=offered + administered,
+        administered_by_stratum_pair=given_s, offered_by_stratum_pair=offered_s,
     )
 
 
@@ -260,23 +317,52 @@ def _count_withheld(offered, picked) -> None:
         np.add.at(offered, np.array([i for _, i in picked.withheld], dtype=np.int64), 1)
 
 
+def _keep_withheld(keep: list, picked, theta, cuts) -> None:
+    if picked.withheld:
+        pairs = np.asarray(picked.withheld, dtype=np.int64)
+        est = stratum_of(theta[pairs[:, 0]], cuts)
+        keep.extend(zip(pairs[:, 0].tolist(), pairs[:, 1].tolist(), est.tolist()))
+
+
+def stratum_of(theta, cuts) -> np.ndarray:
+    """Ability stratum of each theta, (N,) int: stratum s is ``[cuts[s-1], cuts[s])``."""
+    return np.searchsorted(np.asarray(cuts, dtype=float), np.asarray(theta, dtype=float), side="right")
+
+
+def _stratum_counts(items, pick_stratum, withheld, true_stratum, n_strata, n_items):
+    """Administrations and offers (given + withheld), (S, S, n) each.
+
+    Indexed ``[true-ability stratum, stratum of the estimate at the pick, item]``.
+    """
+    given = np.zeros((n_strata, n_strata, n_items), dtype=np.int64)
+    rows, cols = np.nonzero(items >= 0)
+    np.add.at(given, (true_stratum[rows], pick_stratum[rows, cols], items[rows, cols]), 1)
+    offered = given.copy()
+    if withheld:
+        triples = np.asarray(withheld, dtype=np.int64)
+        np.add.at(offered, (true_stratum[triples[:, 0]], triples[:, 2], triples[:, 1]), 1)
+    return given, offered
+
+
 # -- the whole run -----------------------------------------------------------------------
 
 _CONTEXTS: dict = {}
 
 
-def _worker_chunk(token, design, bank, true_bank, seed, start, true_theta) -> ChunkResult:
+def _worker_chunk(token, design, bank, true_bank, seed, start, true_theta, count_by_stratum=None) -> ChunkResult:
     """Run one chunk in a worker; the context is built once per worker process and run."""
     ctx = _CONTEXTS.get(token)
     if ctx is None:
         _CONTEXTS.clear()  # one run at a time per worker: drop contexts of earlier runs
         ctx = _CONTEXTS[token] = build_context(design, bank)
-    return run_chunk(ctx, seed=seed, start=start, true_theta=true_theta, true_bank=true_bank)
+    return run_chunk(ctx, seed=seed, start=start, true_theta=true_theta, true_bank=true_bank,
+                     count_by_stratum=count_by_stratum)
 
 
 def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank: ItemBank | None = None,
                 chunk_size: int = DEFAULT_CHUNK, executor: Executor | None = None,
-                workers: int = 1, ctx: TestContext | None = None) -> Iterator[ChunkResult]:
+                workers: int = 1, ctx: TestContext | None = None,
+                count_by_stratum=None) -> Iterator[ChunkResult]:
     """Yield the chunks of a run in examinee order.
 
     Parameters
@@ -290,6 +376,8 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
         With no executor, ``workers > 1`` starts a process pool of that size.
     ctx : TestContext, optional
         A context already built for (design, bank) (in-process runs only).
+    count_by_stratum : float sequence, optional
+        Cut points of true-ability strata for per-stratum counts (see :func:`run_chunk`).
     """
     true_theta = np.asarray(true_theta, dtype=float)
     total = true_theta.shape[0]
@@ -303,7 +391,7 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
         ctx = ctx if ctx is not None else build_context(design, bank)
         for s in starts:
             yield run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size],
-                            true_bank=true_bank, true_rows=true_rows)
+                            true_bank=true_bank, true_rows=true_rows, count_by_stratum=count_by_stratum)
         return
     own = executor is None
     pool = ProcessPoolExecutor(max_workers=workers) if own else executor
@@ -314,13 +402,13 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
         it = iter(starts)
         for s in itertools.islice(it, window):
             pending.append(pool.submit(_worker_chunk, token, design, bank, true_bank, seed, s,
-                                       true_theta[s : s + chunk_size]))
+                                       true_theta[s : s + chunk_size], count_by_stratum))
         while pending:
             result = pending.popleft().result()
             nxt = next(it, None)
             if nxt is not None:
                 pending.append(pool.submit(_worker_chunk, token, design, bank, true_bank, seed, nxt,
-                                           true_theta[nxt : nxt + chunk_size]))
+                                           true_theta[nxt : nxt + chunk_size], count_by_stratum))
             yield result
     finally:
         if own:
@@ -331,7 +419,7 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
              chunk_size: int = DEFAULT_CHUNK, executor: Executor | None = None, workers: int = 1,
              on_chunk: Callable[[ChunkResult], None] | None = None,
              progress: Callable[[int, int], None] | None = None,
-             ctx: TestContext | None = None) -> SimulationResult:
+             ctx: TestContext | None = None, count_by_stratum=None) -> SimulationResult:
     """Run the design for every examinee and collect their outcomes.
 
     Parameters
@@ -348,6 +436,11 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
         administrations to a file); the chunk is dropped afterwards.
     progress : callable, optional
         Called as ``progress(done, total)`` after each chunk.
+    count_by_stratum : float sequence, shape (S - 1,), optional
+        Ascending cut points of ability strata: the result then also holds
+        ``administered_by_stratum_pair`` and ``offered_by_stratum_pair`` (S, S, n_items),
+        and their sums over the estimate's stratum ``administered_by_stratum`` and
+        ``offered_by_stratum`` (S, n_items).
 
     Returns
     -------
@@ -361,20 +454,37 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
     parts: list[dict] = []
     administered = np.zeros(bank.n_items, dtype=np.int64)
     offered = np.zeros(bank.n_items, dtype=np.int64)
+    if count_by_stratum is not None:
+        count_by_stratum = tuple(float(c) for c in count_by_stratum)
+        if any(not np.isfinite(c) for c in count_by_stratum) or any(
+                b <= a for a, b in zip(count_by_stratum, count_by_stratum[1:])):
+            raise SimulationError(f"stratum cut points must be finite and ascending, got {list(count_by_stratum)}",
+                                  "count_by_stratum")
+        n_strata = len(count_by_stratum) + 1
+        given_s = np.zeros((n_strata, n_strata, bank.n_items), dtype=np.int64)
+        offered_s = given_s.copy()
+    else:
+        given_s = offered_s = None
     done = 0
     keep = ("seeds", "true_theta", "theta", "se", "n_scored", "n_pretest", "stop_reason",
             "scaled_score", "at_or_above", "area_counts")
     for chunk in iter_chunks(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
-                             chunk_size=chunk_size, executor=executor, workers=workers, ctx=ctx):
+                             chunk_size=chunk_size, executor=executor, workers=workers, ctx=ctx,
+                             count_by_stratum=count_by_stratum):
         if on_chunk is not None:
             on_chunk(chunk)
         parts.append({k: getattr(chunk, k) for k in keep})
         administered += chunk.administered
         offered += chunk.offered
+        if given_s is not None:
+            given_s += chunk.administered_by_stratum_pair
+            offered_s += chunk.offered_by_stratum_pair
         done += chunk.size
         if progress is not None:
             progress(done, true_theta.size)
     joined = {k: np.concatenate([p[k] for p in parts], axis=0) for k in keep}
     return SimulationResult(design=design, bank=bank, seed=int(seed), administered=administered,
-                            offered=offered, **joined)
+                            offered=offered, administered_by_stratum_pair=given_s,
+                            offered_by_stratum_pair=offered_s,
+                            **joined)
 

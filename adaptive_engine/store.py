@@ -18,7 +18,8 @@ One file holds everything a live session needs, so a session resumes from the st
     the app, so that a resent answer gets exactly the same reply.
 ``banks`` / ``designs``
     Content-addressed (SHA-256 of the content): the bank in the JSON bank format, the design
-    as TOML plus its Sympson-Hetter parameters (``exposure_parameters``, JSON).
+    as TOML plus its Sympson-Hetter parameters (``exposure_parameters``, JSON; parameters
+    conditional on ability are stored as ``{"exposure_strata": [...], "exposure_parameters": {...}}``).
 ``exposure_counts`` / ``bank_sessions``
     How often each item of a bank was given, and how many sessions a bank started: the
     exposure rate of an item is ``count / sessions_started``.
@@ -115,8 +116,15 @@ def design_content(design: Design) -> tuple[str, str, str | None]:
     neutral = design_to_toml(attrs.evolve(design, source=""))
     params = None
     if design.exposure_parameters is not None:
-        params = json.dumps({str(k): float(v) for k, v in sorted(design.exposure_parameters.items())},
-                            separators=(",", ":"))
+        if design.exposure_strata:
+            # parameters conditional on ability: stored with their cut points; an object
+            # of lists cannot be mistaken for the unconditional item -> number layout
+            doc = {"exposure_strata": [float(c) for c in design.exposure_strata],
+                   "exposure_parameters": {str(k): [float(x) for x in v]
+                                           for k, v in sorted(design.exposure_parameters.items())}}
+        else:
+            doc = {str(k): float(v) for k, v in sorted(design.exposure_parameters.items())}
+        params = json.dumps(doc, separators=(",", ":"))
     return _sha256(neutral + "\n" + (params or "")), toml_text, params
 
 
@@ -127,7 +135,11 @@ def design_from_content(toml_text: str, params_json: str | None, *, design_id: s
     doc = tomllib.loads(toml_text)
     doc["source"] = f"store design {design_id[:12]}" if design_id else "store"
     if params_json is not None:
-        doc["exposure_parameters"] = json.loads(params_json)
+        stored = json.loads(params_json)
+        if isinstance(stored.get("exposure_parameters"), dict):
+            doc["exposure_strata"] = stored.get("exposure_strata")
+            stored = stored["exposure_parameters"]
+        doc["exposure_parameters"] = stored
     return design_from_dict(doc)
 
 
