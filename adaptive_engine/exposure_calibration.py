@@ -159,6 +159,18 @@ def with_parameters(design: Design, parameters: dict, *, path: str = "calibrated
                         exposure_strata=tuple(strata))
 
 
+def parse_strata(text: str) -> tuple:
+    """``"-1,0,1"`` -> ``(-1.0, 0.0, 1.0)``: interior cut points of ability strata, validated."""
+    parts = [p.strip() for p in str(text).split(",")]
+    cuts = []
+    for part in parts:
+        try:
+            cuts.append(float(part))
+        except ValueError:
+            raise AdaptiveEngineError(f"cut point {part!r} is not a number", "--conditional-strata") from None
+    return _check_strata(cuts)
+
+
 def _check_strata(strata) -> tuple:
     """Validated interior cut points (ascending, finite) for a conditional calibration."""
     try:

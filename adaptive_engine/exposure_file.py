@@ -188,15 +188,20 @@ def _parse_conditional(reader, source: str) -> ExposureParameterFile:
                                     f"(line {reference[2]}) has {_show(reference[0])}: every item needs "
                                     "the same strata"))
             continue
-        out[iid] = tuple(e[2] for e in sorted(entries))
+        out[iid] = tuple(e[2] for e in sorted(entries, key=_stratum_order))
     if problems:
         raise DesignError(problems)
     return ExposureParameterFile(parameters=out, strata=reference[0])
 
 
+def _stratum_order(entry) -> tuple:
+    """Rows by stratum, then by line: of two rows for one stratum the later is reported."""
+    return entry[0], entry[1], entry[3]
+
+
 def _item_strata(iid: str, entries, source: str):
     """Interior cut points of one item's strata, or the problem that breaks them."""
-    ordered = sorted(entries)
+    ordered = sorted(entries, key=_stratum_order)
     first, last = ordered[0], ordered[-1]
     if first[0] != -math.inf:
         return None, Problem(f"{source} line {first[3]}",

@@ -163,21 +163,37 @@ def exposure_group():
 @click.option("--tolerance", type=float, default=0.02, show_default=True,
               help="Converged when the largest exposure rate is at most target + tolerance.")
 @click.option("--workers", type=int, default=1, show_default=True, help="Processes running chunks in parallel.")
+@click.option("--conditional-strata", "strata_text", default=None, metavar="CUTS",
+              help="Comma-separated ability cut points (e.g. \"-1,0,1\"): calibrate parameters conditional on "
+                   "ability (Stocking & Lewis 1998), one per item and stratum, holding every stratum's exposure "
+                   "rates at --target; writes item_id,theta_from,theta_to,exposure_parameter.")
 @report_errors
 def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n_examinees, theta_spec,
-                               iterations, tolerance, workers):
+                               iterations, tolerance, workers, strata_text):
     """Iterate Sympson-Hetter exposure parameters for DESIGN until no item exceeds --target."""
     from ..examinees import parse_ability_spec
-    from ..exposure_calibration import run_calibration
+    from ..exposure_calibration import parse_strata, run_calibration
 
+    strata = None if strata_text is None else parse_strata(strata_text)
     design, bank, _ = _load(design_file, bank_file)
     cal = run_calibration(design, bank, target=target, out_file=out_file,
                           true_theta=parse_ability_spec(theta_spec).draw(n_examinees, seed), seed=seed,
-                          max_iterations=iterations, tolerance=tolerance, workers=workers)
-    click.echo("iteration  max_exposure  share_above_target  mean_length  items_restricted")
-    for h in cal.history:
-        click.echo(f"{h['iteration']:>9}  {h['max_exposure']:>12.4f}  {h['share_above_target']:>18.4f}  "
-                   f"{h['mean_length']:>11.2f}  {h['items_restricted']:>16}")
+                          max_iterations=iterations, tolerance=tolerance, workers=workers, strata=strata)
+    if cal.strata:
+        bounds = ["-inf", *(f"{c:g}" for c in cal.strata), "inf"]
+        names = [f"[{lo},{hi})" for lo, hi in zip(bounds, bounds[1:])]
+        sizes = cal.history[0]["examinees_by_stratum"]
+        click.echo("examinees per stratum: " + ", ".join(f"{n} {m}" for n, m in zip(names, sizes)))
+        click.echo("max exposure rate among the examinees of each true-ability stratum:")
+        click.echo("iteration  max_exposure  " + "  ".join(f"{n:>12}" for n in names))
+        for h in cal.history:
+            click.echo(f"{h['iteration']:>9}  {h['max_exposure']:>12.4f}  "
+                       + "  ".join(f"{x:>12.4f}" for x in h["max_exposure_by_stratum"]))
+    else:
+        click.echo("iteration  max_exposure  share_above_target  mean_length  items_restricted")
+        for h in cal.history:
+            click.echo(f"{h['iteration']:>9}  {h['max_exposure']:>12.4f}  {h['share_above_target']:>18.4f}  "
+                       f"{h['mean_length']:>11.2f}  {h['items_restricted']:>16}")
     state = "converged" if cal.converged else "did not converge"
     click.echo(f"{state} (target {target:g}, tolerance {tolerance:g}); wrote {out_file}")
 
