@@ -340,3 +340,20 @@ def test_prior_and_exposure_counts(tmp_path):
         high = start_session(s, SURVEY, SURVEY_BANK, seed=1, prior_mean=1.5, prior_sd=0.5)
         row = s.session_row(high["session_id"])
         assert (row["prior_mean"], row["prior_sd"]) == (1.5, 0.5)
+
+
+def test_elapsed_time_is_logged_and_replayed(tmp_path):
+    """The app's elapsed time drives a time-limit stop; a fresh process replays it from the log."""
+    design = parse_design("[blueprint]\nitem_sets = false\n[stopping]\nmin_items = 1\nmax_items = 30\n"
+                          "se = 0.05\ntime_limit = 100.0\n")
+    with open_store(tmp_path / "t.db") as s:
+        reply = start_session(s, design, OPERATOR_BANK, seed=2, cache=ProcessCache())
+        sid = reply["session_id"]
+        reply = submit_answer(s, sid, reply["item_id"], 1, elapsed=30.0, cache=ProcessCache())
+        assert not reply["done"]
+        # a fresh cache must rebuild with the logged elapsed time and take the same path
+        reply = submit_answer(s, sid, reply["item_id"], 0, cache=ProcessCache())
+        assert not reply["done"]
+        reply = submit_answer(s, sid, reply["item_id"], 1, elapsed=100.0, cache=ProcessCache())
+        assert reply["done"] and reply["stop_reason"] == "time_limit"
+        assert [e["elapsed"] for e in s.events(sid) if e["kind"] == "answer"] == [30.0, None, 100.0]
