@@ -424,3 +424,33 @@ def test_shipped_conditional_example_fits_its_bank():
     values = np.array(list(design.exposure_parameters.values()))
     assert values.shape == (len(operational), 4) and np.all((values >= 0) & (values <= 1))
     assert np.any(values < 1)  # calibrated: some items are restricted
+
+
+def test_live_sessions_replay_simulated_examinees_of_the_conditional_example():
+    # "One kernel, two drivers": a live session (stored in SQLite, its design and conditional
+    # parameters rebuilt from the store) started with a simulated examinee's
+    # seed gets the same items, interim estimates and stop as in the simulation.
+    if not DEMO_BANK.exists():
+        pytest.skip("demo bank not generated (run item_banks/make_demo_banks.py)")
+    from adaptive_engine.session import ProcessCache, session_result, start_session, submit_answer
+    from adaptive_engine.store import open_store
+
+    bank = load_bank(DEMO_BANK)
+    design = read_design(REPO / "simulations" / "conditional_sympson_hetter.toml")
+    ctx = build_context(design, bank)
+    theta = np.random.default_rng(5).normal(0, 1.5, 6)
+    chunk = simulation.run_chunk(ctx, seed=77, start=10, true_theta=theta)
+    with open_store(":memory:") as store:
+        for i in range(chunk.size):
+            # answers are served by another "process" than the start, whose context is built
+            # from the design stored in SQLite (conditional parameters and strata included)
+            cache = ProcessCache()
+            n = int((chunk.items[i] >= 0).sum())
+            reply = start_session(store, design, bank, seed=int(chunk.seeds[i]), cache=ProcessCache())
+            for pos in range(n):
+                item = bank.item_ids[chunk.items[i, pos]]
+                assert reply["item_id"] == item, f"examinee {i} diverged at item {pos + 1}"
+                reply = submit_answer(store, reply["session_id"], item, int(chunk.responses[i, pos]), cache=cache)
+                assert reply["theta"] == chunk.interim_theta[i, pos]
+            assert reply["done"]
+            assert session_result(store, reply["session_id"])["stop_reason"] == chunk.stop_reason[i]
