@@ -18,11 +18,12 @@ from __future__ import annotations
 import attrs
 import numpy as np
 
-from . import randomness, stopping
+from . import models, randomness, stopping
 from .ability import normal_log_prior, posterior_mean_sd
 from .context import TestContext
 from .kernel_state import KernelState
-from .selection import Picked, select
+from .eligibility import eligible
+from .selection import Picked, all_item_params, select
 
 
 def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligible=False) -> tuple[KernelState, Picked]:
@@ -183,24 +184,14 @@ def _best_information_item(ctx, state, rows, picked) -> tuple[np.ndarray, np.nda
     design = ctx.design
     if design.selection.criterion == "max_fisher_information" and design.exposure.method == "none":
         return picked.item, picked.value
-    from .selection import criterion_values  # noqa: F401  (same module, kept local for clarity)
-    from .eligibility import eligible
-    from . import models
-
     n = ctx.n_items
     cand = np.broadcast_to(np.arange(n), (rows.size, n))
     ok = eligible(ctx, state, rows, cand)
-    info = models.information(_all_params(ctx), state.theta[rows][:, None])
+    info = models.information(all_item_params(ctx), state.theta[rows][:, None])
     info = np.where(ok, info, -np.inf)
     best = np.argmax(info, axis=1)
     value = info[np.arange(rows.size), best]
     return np.where(np.isfinite(value), best, -1), value
-
-
-def _all_params(ctx):
-    from .selection import _row_params
-
-    return _row_params(ctx)
 
 
 def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:

@@ -236,9 +236,11 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits):
     cand = items_tab[which, g]  # (R, D)
     reach = reach_tab[which, g]
     ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
-    # the first SHORTLIST_EXACT eligible candidates (in grid order) get exact information
+    # the first few eligible candidates (in grid order) get exact information; the
+    # Sympson-Hetter lottery rejects many top items, so it gets a longer list
+    n_exact = min(cand.shape[1], SHORTLIST_EXACT * (3 if ctx.design.exposure.method == "sympson_hetter" else 1))
     order = np.argsort(~ok, axis=1, kind="stable")
-    first = order[:, :SHORTLIST_EXACT]
+    first = order[:, :n_exact]
     ex_cand = np.take_along_axis(cand, first, axis=1)
     ex_ok = np.take_along_axis(ok, first, axis=1)
     params = ctx.bank.params.take(np.where(ex_cand >= 0, ex_cand, 0))
@@ -248,8 +250,8 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits):
     np.put_along_axis(rest_ok, first, False, axis=1)
     ceiling = np.maximum(ceil_tab[which, g], np.where(rest_ok, reach, -np.inf).max(axis=1))
     chosen, chosen_val, s_val, depth, withheld = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
-    depth_ok = depth <= SHORTLIST_EXACT
-    kth = np.take_along_axis(s_val, np.clip(depth - 1, 0, SHORTLIST_EXACT - 1)[:, None], axis=1)[:, 0]
+    depth_ok = depth <= n_exact
+    kth = np.take_along_axis(s_val, np.clip(depth - 1, 0, n_exact - 1)[:, None], axis=1)[:, 0]
     proven = inside & depth_ok & (kth >= ceiling) & (chosen >= 0)
     keep = np.flatnonzero(proven)
     keep_rows = set(rows[keep].tolist())
@@ -281,7 +283,7 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
         return randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.RANDOM_CRITERION,
                                    np.broadcast_to(np.arange(n), (rows.size, n)))
     if crit == "max_fisher_information":
-        values = models.information(_row_params(ctx), theta[:, None])
+        values = models.information(all_item_params(ctx), theta[:, None])
     elif crit == "posterior_weighted_information":
         # van der Linden (1998): information averaged over the current posterior
         w = posterior_weights(state.log_post[rows])
@@ -299,7 +301,7 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
     return values
 
 
-def _row_params(ctx):
+def all_item_params(ctx):
     """All items' parameters shaped (1, n) to broadcast against theta (R, 1)."""
     p = ctx.bank.params
     return models.ItemParameters(
@@ -317,7 +319,7 @@ def _kl_values(ctx, state, rows) -> np.ndarray:
     theta = state.theta[rows]
     delta = ctx.design.selection.kl_interval / np.sqrt(np.maximum(state.n_scored[rows], 1))
     nodes, weights = np.polynomial.legendre.leggauss(11)
-    params = _row_params(ctx)
+    params = all_item_params(ctx)
     log_p0 = models.log_probabilities(params, theta[:, None])  # (R, n, C)
     p0 = np.exp(log_p0)
     total = np.zeros((rows.size, ctx.n_items))
