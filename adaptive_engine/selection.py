@@ -33,6 +33,8 @@ from .kernel_state import KernelState
 SHORTLIST_EXACT = 8
 #: Rows evaluated together on the general path (bounds memory at rows x items).
 ROW_CHUNK = 1024
+#: Items ranked per row on the general path before falling back to a full sort.
+GENERAL_TOP = 64
 
 
 @attrs.frozen(eq=False)
@@ -269,7 +271,23 @@ def _general_pick(ctx, state, rows, restrict, open_area, fits):
         # an area with no eligible item left does not block the test: use all open areas
         ok = np.where((restricted & has)[:, None], ok & in_area, ok)
     values = criterion_values(ctx, state, rows, ok)
-    chosen, chosen_val, _, _, withheld = _choose_ranked(ctx, state, rows, cand, values, ok)
+    if n <= 2 * GENERAL_TOP:
+        chosen, chosen_val, _, _, withheld = _choose_ranked(ctx, state, rows, cand, values, ok)
+        return chosen, chosen_val, withheld
+    # Rank only the best GENERAL_TOP items of each row (sorted by item first, so ties order
+    # as in a full stable sort); rows whose choice reaches past them are ranked in full.
+    masked = np.where(ok, values, -np.inf)
+    top = np.sort(np.argpartition(-masked, GENERAL_TOP - 1, axis=1)[:, :GENERAL_TOP], axis=1)
+    top_ok = np.take_along_axis(ok, top, axis=1)
+    chosen, chosen_val, _, depth, withheld = _choose_ranked(
+        ctx, state, rows, top, np.take_along_axis(values, top, axis=1), top_ok)
+    redo = np.flatnonzero((depth > GENERAL_TOP) | ((depth == GENERAL_TOP) & (ok.sum(axis=1) > GENERAL_TOP)))
+    if redo.size:
+        redo_rows = set(rows[redo].tolist())
+        withheld = [w for w in withheld if w[0] not in redo_rows]
+        c2, v2, _, _, w2 = _choose_ranked(ctx, state, rows[redo], cand[redo], values[redo], ok[redo])
+        chosen[redo], chosen_val[redo] = c2, v2
+        withheld.extend(w2)
     return chosen, chosen_val, withheld
 
 
