@@ -45,8 +45,30 @@ class SimulationError(AdaptiveEngineError):
     """A simulation request cannot be carried out (bad sizes, banks that do not match)."""
 
 
+class _CountsByStratum:
+    """Shared views of :class:`ChunkResult` and :class:`SimulationResult`."""
+
+    __slots__ = ()
+
+    @property
+    def size(self) -> int:
+        return int(self.seeds.shape[0])
+
+    @property
+    def administered_by_stratum(self) -> np.ndarray | None:
+        """Administrations per true-ability stratum, (S, n_items) (None if not counted)."""
+        pair = self.administered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
+
+    @property
+    def offered_by_stratum(self) -> np.ndarray | None:
+        """Offers (given or withheld) per true-ability stratum, (S, n_items)."""
+        pair = self.offered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
+
+
 @attrs.frozen(kw_only=True, eq=False)
-class ChunkResult:
+class ChunkResult(_CountsByStratum):
     """Outcome of one chunk of examinees (``n`` examinees, ``L`` = longest possible test).
 
     Attributes
@@ -106,25 +128,10 @@ class ChunkResult:
     administered_by_stratum_pair: np.ndarray | None = None
     offered_by_stratum_pair: np.ndarray | None = None
 
-    @property
-    def size(self) -> int:
-        return int(self.seeds.shape[0])
-
-    @property
-    def administered_by_stratum(self) -> np.ndarray | None:
-        """Administrations per true-ability stratum, (S, n_items) (None if not counted)."""
-        pair = self.administered_by_stratum_pair
-        return None if pair is None else pair.sum(axis=1)
-
-    @property
-    def offered_by_stratum(self) -> np.ndarray | None:
-        """Offers (given or withheld) per true-ability stratum, (S, n_items)."""
-        pair = self.offered_by_stratum_pair
-        return None if pair is None else pair.sum(axis=1)
 
 
 @attrs.frozen(kw_only=True, eq=False)
-class SimulationResult:
+class SimulationResult(_CountsByStratum):
     """Per-examinee outcomes of a whole run (administrations are streamed, not kept).
 
     Arrays have one entry per examinee (N,) or per item (n_items,); ``at_or_above`` is
@@ -151,21 +158,6 @@ class SimulationResult:
     administered_by_stratum_pair: np.ndarray | None = None
     offered_by_stratum_pair: np.ndarray | None = None
 
-    @property
-    def size(self) -> int:
-        return int(self.seeds.shape[0])
-
-    @property
-    def administered_by_stratum(self) -> np.ndarray | None:
-        """Administrations per true-ability stratum, (S, n_items) (None if not counted)."""
-        pair = self.administered_by_stratum_pair
-        return None if pair is None else pair.sum(axis=1)
-
-    @property
-    def offered_by_stratum(self) -> np.ndarray | None:
-        """Offers (given or withheld) per true-ability stratum, (S, n_items)."""
-        pair = self.offered_by_stratum_pair
-        return None if pair is None else pair.sum(axis=1)
 
 
 def true_item_rows(bank: ItemBank, true_bank: ItemBank | None) -> np.ndarray:
