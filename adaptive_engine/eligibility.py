@@ -70,8 +70,11 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
     """
     valid = cand >= 0
     c = np.where(valid, cand, 0)
-    r = rows[:, None]
-    ok = valid & ctx.operational[c] & ~state.used[r, c]
+    # a flat take is several times faster than 2-D fancy indexing of used[rows, c]
+    flat = c + (rows * ctx.n_items)[:, None]
+    ok = valid & ~np.take(state.used.reshape(-1), flat)
+    if not ctx.operational.all():
+        ok &= ctx.operational[c]
     if ctx.n_groups:
         groups = ctx.item_groups[c]  # (R, K, W)
         hit = np.take_along_axis(state.blocked_groups[rows], groups.reshape(rows.size, -1), axis=1)

@@ -182,15 +182,21 @@ def _needed(ctx, state, rows) -> tuple[np.ndarray, str]:
 def _choose_ranked(ctx, state, rows, cand, values, ok):
     """Apply the exposure method to candidates ranked by value.
 
-    Returns chosen position in the sorted order, the sorted arrays and the number of top
-    sorted entries the choice depended on (``depth``), plus withheld items.
+    Returns the chosen item and its value, the value of the last ranked entry the choice
+    depended on (``kth``: the ``depth``-th best), ``depth``, and withheld items.
     """
     masked = np.where(ok, values, -np.inf)
+    n_ok = ok.sum(axis=1)
+    need, method = _needed(ctx, state, rows)
+    if method in ("none", "progressive") or (method == "randomesque_first" and np.all(need == 1)):
+        # the best item: no ranking needed (ties go to the first, as in a stable sort)
+        pos = np.argmax(masked, axis=1)
+        best = masked[np.arange(rows.size), pos]
+        chosen = np.where(n_ok > 0, cand[np.arange(rows.size), pos], -1)
+        return chosen, np.where(n_ok > 0, best, np.nan), best, np.ones(rows.size, dtype=np.int64), []
     order = np.argsort(-masked, axis=1, kind="stable")
     s_cand = np.take_along_axis(cand, order, axis=1)
     s_val = np.take_along_axis(masked, order, axis=1)
-    n_ok = ok.sum(axis=1)
-    need, method = _needed(ctx, state, rows)
     pos = np.zeros(rows.size, dtype=np.int64)
     withheld = []
     if method.startswith("randomesque"):
@@ -223,7 +229,8 @@ def _choose_ranked(ctx, state, rows, cand, values, ok):
     none_left = n_ok == 0
     chosen = np.where(none_left, -1, chosen)
     chosen_val = np.where(none_left, np.nan, chosen_val)
-    return chosen, chosen_val, s_val, depth, withheld
+    kth = np.take_along_axis(s_val, np.clip(depth - 1, 0, s_val.shape[1] - 1)[:, None], axis=1)[:, 0]
+    return chosen, chosen_val, kth, depth, withheld
 
 
 def _shortlist_pick(ctx, state, rows, restrict, open_area, fits):
@@ -241,20 +248,20 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits):
     # the first few eligible candidates (in grid order) get exact information; the
     # Sympson-Hetter lottery rejects many top items, so it gets a longer list
     n_exact = min(cand.shape[1], SHORTLIST_EXACT * (3 if ctx.design.exposure.method == "sympson_hetter" else 1))
-    order = np.argsort(~ok, axis=1, kind="stable")
-    first = order[:, :n_exact]
-    ex_cand = np.take_along_axis(cand, first, axis=1)
-    ex_ok = np.take_along_axis(ok, first, axis=1)
-    params = ctx.bank.params.take(np.where(ex_cand >= 0, ex_cand, 0))
+    # compact the first n_exact eligible columns of each row, in grid order (-1: none)
+    rank = np.cumsum(ok, axis=1, dtype=np.int16)
+    r_idx, c_idx = np.nonzero(ok & (rank <= n_exact))
+    first = np.full((rows.size, n_exact), -1, dtype=np.int64)
+    first[r_idx, rank[r_idx, c_idx] - 1] = c_idx
+    ex_ok = first >= 0
+    ex_cand = np.where(ex_ok, np.take_along_axis(cand, np.maximum(first, 0), axis=1), -1)
+    params = ctx.bank.params.take(np.maximum(ex_cand, 0))
     exact = models.information(params, theta[:, None])
     # ceiling of everything not evaluated: unlisted items, and listed eligible ones beyond
-    rest_ok = ok.copy()
-    np.put_along_axis(rest_ok, first, False, axis=1)
-    ceiling = np.maximum(ceil_tab[which, g], np.where(rest_ok, reach, -np.inf).max(axis=1))
-    chosen, chosen_val, s_val, depth, withheld = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
-    depth_ok = depth <= n_exact
-    kth = np.take_along_axis(s_val, np.clip(depth - 1, 0, n_exact - 1)[:, None], axis=1)[:, 0]
-    proven = inside & depth_ok & (kth >= ceiling) & (chosen >= 0)
+    rest = np.where(ok & (rank > n_exact), reach, -np.inf).max(axis=1)
+    ceiling = np.maximum(ceil_tab[which, g], rest)
+    chosen, chosen_val, kth, depth, withheld = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
+    proven = inside & (depth <= n_exact) & (kth >= ceiling) & (chosen >= 0)
     keep = np.flatnonzero(proven)
     keep_rows = set(rows[keep].tolist())
     return keep, chosen[keep], chosen_val[keep], [w for w in withheld if w[0] in keep_rows]
