@@ -19,7 +19,7 @@ from .errors import DesignError, Problem
 #: Spacing of the fine grid on which items are ranked by information.
 RANK_STEP = 0.01
 #: Number of top-ranked items kept per fine-grid point (global list and per area).
-RANK_DEPTH = 48
+RANK_DEPTH = 32
 
 
 @attrs.frozen(eq=False)
