@@ -534,16 +534,22 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
 def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
     """Load a bank file (``.csv``, ``.json`` or a SQLite ``.db``) and validate it.
 
-    A CSV file has no place for the scaling constant: pass ``scaling`` (default 1.0).
+    ``scaling`` means the same for every file type: it is the scaling constant D the
+    caller expects.  A CSV file has no place for D, so a CSV bank takes ``scaling``
+    (1.0 when None).  A JSON or SQLite bank carries its own D (1.0 when the file does not
+    state one); a ``scaling`` that disagrees with it is an error naming both values, never
+    a silent override.
     """
     path = Path(path)
     if not path.exists():
         raise BankError(f"no such file: {path}", location=str(path))
+    if scaling is not None:
+        scaling = _check_scaling_value(scaling)
     suffix = path.suffix.lower()
     if suffix in (".db", ".sqlite", ".sqlite3"):
         from .bank_io import read_bank_sqlite
 
-        return read_bank_sqlite(path)
+        return _agree_on_scaling(read_bank_sqlite(path), scaling, path)
     try:
         # newline="" leaves a carriage return inside a quoted CSV field as it is
         with open(path, encoding="utf-8-sig", newline="") as fh:
@@ -551,8 +557,30 @@ def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
     except UnicodeDecodeError as exc:
         raise BankError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", location=str(path))
     if suffix == ".json":
-        bank = read_bank_json_text(text, source=path.name)
-        return bank if scaling is None else bank.evolve(scaling=scaling)
+        return _agree_on_scaling(read_bank_json_text(text, source=path.name), scaling, path)
     if suffix == ".csv":
         return read_bank_csv_text(text, source=path.name, scaling=1.0 if scaling is None else scaling)
     raise BankError(f"unknown bank file type {suffix!r} (use .csv, .json or .db)", location=str(path))
+
+
+def _check_scaling_value(scaling) -> float:
+    try:
+        value = float(scaling)
+    except (TypeError, ValueError):
+        value = float("nan")
+    if isinstance(scaling, bool) or not (math.isfinite(value) and value > 0):
+        raise BankError(f"the scaling constant D must be a positive number, got {scaling!r}",
+                        location="scaling")
+    return value
+
+
+def _agree_on_scaling(bank: ItemBank, scaling: float | None, path: Path) -> ItemBank:
+    """``bank`` itself when ``scaling`` is None or equals the file's own D; else an error."""
+    if scaling is None or scaling == bank.scaling:
+        return bank
+    raise BankError(
+        f"scaling constant D = {scaling:g} was asked for, but {path.name} states D = "
+        f"{bank.scaling:g} (JSON and SQLite banks carry their own D, 1.0 when not stated); "
+        "leave out the scaling option (--scaling) or change the D stored in the file",
+        location=f"{path.name} scaling",
+    )

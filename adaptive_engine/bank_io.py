@@ -238,6 +238,33 @@ def write_bank(bank: ItemBank, path: str | Path) -> Path:
     return path
 
 
+def convert_bank(bank_path: str | Path, out_path: str | Path, *,
+                 scaling: float | None = None) -> tuple[ItemBank, Path]:
+    """Load and validate the bank in ``bank_path`` and write it to ``out_path``.
+
+    The output format follows the suffix of ``out_path``.  ``scaling`` is passed to
+    :func:`~adaptive_engine.bank.load_bank` (D of a CSV bank; must agree with the D of a JSON
+    or SQLite bank).  A bank whose D is not 1 is never written to CSV: the CSV format has no
+    place for D, and reading the file back would silently give D = 1.
+
+    Returns
+    -------
+    (ItemBank, Path)
+        The bank and the file written.
+    """
+    from .bank import load_bank
+
+    bank = load_bank(bank_path, scaling=scaling)
+    out_path = Path(out_path)
+    if out_path.suffix.lower() == ".csv" and bank.scaling != 1.0:
+        raise BankError(
+            f"the bank has scaling constant D = {bank.scaling:g}, and a CSV bank has no place "
+            "for D (reading it back would give D = 1); write .json or .db instead",
+            location=str(out_path),
+        )
+    return bank, write_bank(bank, out_path)
+
+
 # ----------------------------------------------------------------------------------------
 # reading SQLite
 

@@ -9,6 +9,8 @@ from ..bank import load_bank
 from ._common import echo_json, main, report_errors
 
 _BANK_PATH = click.Path(dir_okay=False, path_type=str)
+SCALING_HELP = ("Scaling constant D of a CSV bank (default 1.0).  JSON and SQLite banks carry "
+                "their own D; a value that disagrees with it is an error.")
 
 
 @main.group()
@@ -18,8 +20,7 @@ def bank():
 
 @bank.command("check")
 @click.argument("bank_file", metavar="BANK", type=_BANK_PATH)
-@click.option("--scaling", type=float, default=None,
-              help="Scaling constant D for a CSV bank (default 1.0; JSON/SQLite banks state their own).")
+@click.option("--scaling", type=float, default=None, help=SCALING_HELP)
 @click.option("--target-se", type=float, default=bank_report.DEFAULT_TARGET_SE, show_default=True,
               help="Report the ability range where the operational items give a standard error below this.")
 @report_errors
@@ -44,7 +45,7 @@ def check_command(bank_file, scaling, target_se):
                    "JSON key by_area with information and se per area).")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
               help="Also draw the curves to this PNG file (needs matplotlib).")
-@click.option("--scaling", type=float, default=None, help="Scaling constant D for a CSV bank.")
+@click.option("--scaling", type=float, default=None, help=SCALING_HELP)
 @report_errors
 def curves_command(bank_file, start, stop, step, fmt, by_area, plot_file, scaling):
     """Print the test information and standard error of BANK over an ability grid."""
@@ -63,10 +64,13 @@ def curves_command(bank_file, start, stop, step, fmt, by_area, plot_file, scalin
 @click.argument("bank_file", metavar="BANK", type=_BANK_PATH)
 @click.argument("out_file", metavar="OUT", type=_BANK_PATH)
 @click.option("--scaling", type=float, default=None,
-              help="Scaling constant D to store (needed when BANK is CSV and OUT keeps D).")
+              help=SCALING_HELP + "  Give it to store D in a JSON or SQLite copy of a CSV bank.")
 @report_errors
 def convert_command(bank_file, out_file, scaling):
-    """Validate BANK and write it to OUT; the format follows OUT's suffix (.csv, .json, .db)."""
-    the_bank = load_bank(bank_file, scaling=scaling)
-    written = bank_io.write_bank(the_bank, out_file)
+    """Validate BANK and write it to OUT; the format follows OUT's suffix (.csv, .json, .db).
+
+    A CSV file has no place for the scaling constant D: a bank whose D is not 1 is not
+    written to CSV (use .json or .db).
+    """
+    the_bank, written = bank_io.convert_bank(bank_file, out_file, scaling=scaling)
     click.echo(f"wrote {len(the_bank)} items to {written}")

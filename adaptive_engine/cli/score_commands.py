@@ -36,17 +36,20 @@ def _csv_text(records) -> str:
               help="Mean of the normal ability prior (map, eap; start values otherwise).")
 @click.option("--prior-sd", type=float, default=1.0, show_default=True,
               help="Standard deviation of the normal ability prior.")
+@click.option("--scaling", type=float, default=None,
+              help="Scaling constant D of a CSV bank (default 1.0).  JSON and SQLite banks carry "
+                   "their own D; a value that disagrees with it is an error.")
 @click.option("--format", "output_format", type=click.Choice(["csv", "json"]), default="csv",
               show_default=True, help="Output format on stdout.")
 @report_errors
-def score(bank_file, responses_file, method, prior_mean, prior_sd, output_format):
+def score(bank_file, responses_file, method, prior_mean, prior_sd, scaling, output_format):
     """Estimate the ability of every person in RESPONSES on the item bank BANK.
 
     RESPONSES is a long CSV with columns person_id,item_id,response.  Prints one row per
     person: person_id, theta, se, n_items, status (see the estimation module for the
     status values, e.g. all_lowest when the MLE sits at the lower bound).
     """
-    bank = load_bank(bank_file)
+    bank = load_bank(bank_file, scaling=scaling)
     table = read_responses(responses_file)
     records = score_responses(bank, table, method, prior_mean=prior_mean, prior_sd=prior_sd)
     if output_format == "json":
