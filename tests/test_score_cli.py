@@ -50,7 +50,7 @@ def test_csv_output_mle(files):
     result = run("score", bank, responses, "--method", "mle")
     assert result.exit_code == 0, result.output
     rows = list(csv.DictReader(io.StringIO(result.output)))
-    assert list(rows[0]) == ["person_id", "theta", "se", "n_items", "status"]
+    assert list(rows[0]) == ["person_id", "theta", "se", "n_items"]  # the columns the job names
     assert [r["person_id"] for r in rows] == ["op-17", "op-22"]
     # Baker (2001), ch. 5 worked example (same three items and answers): MLE near 0.32
     # (value from memory); oracle: scipy.optimize.brentq on the 2PL likelihood equation.
@@ -59,8 +59,20 @@ def test_csv_output_mle(files):
                    for a, b, x in [(1.0, -1.0, 1), (1.2, 0.0, 0), (0.8, 1.0, 1)])
     root = optimize.brentq(score, -3, 3, xtol=1e-12)
     assert float(rows[0]["theta"]) == pytest.approx(root, abs=1e-6)
-    assert rows[0]["n_items"] == "3" and rows[0]["status"] == "converged"
+    assert rows[0]["n_items"] == "3"
     assert rows[1]["n_items"] == "3"
+
+
+def test_with_status_appends_the_status_column(files):
+    _, bank, responses = files
+    plain = run("score", bank, responses, "--method", "mle")
+    result = run("score", bank, responses, "--method", "mle", "--with-status")
+    assert result.exit_code == 0, result.output
+    rows = list(csv.DictReader(io.StringIO(result.output)))
+    assert list(rows[0]) == ["person_id", "theta", "se", "n_items", "status"]
+    assert [r["status"] for r in rows] == ["converged", "converged"]
+    # the first four columns are the plain output, unchanged
+    assert [line.rsplit(",", 1)[0] for line in result.output.splitlines()] == plain.output.splitlines()
 
 
 def test_json_output_and_prior(files):

@@ -12,17 +12,17 @@ from ..estimation import METHODS, score_responses
 from ..responses import read_responses
 from ._common import echo_json, main, report_errors
 
-SCORE_COLUMNS = ("person_id", "theta", "se", "n_items", "status")
+#: The CSV columns of ``score``; ``--with-status`` appends ``status``.
+SCORE_COLUMNS = ("person_id", "theta", "se", "n_items")
 
 
-def _csv_text(records) -> str:
+def _csv_text(records, *, with_status: bool = False) -> str:
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\n")
-    writer.writerow(SCORE_COLUMNS)
+    writer.writerow(SCORE_COLUMNS + (("status",) if with_status else ()))
     for rec in records:
-        writer.writerow([
-            rec["person_id"], f"{rec['theta']:.6f}", f"{rec['se']:.6f}", rec["n_items"], rec["status"],
-        ])
+        row = [rec["person_id"], f"{rec['theta']:.6f}", f"{rec['se']:.6f}", rec["n_items"]]
+        writer.writerow(row + ([rec["status"]] if with_status else []))
     return out.getvalue()
 
 
@@ -41,13 +41,16 @@ def _csv_text(records) -> str:
                    "their own D; a value that disagrees with it is an error.")
 @click.option("--format", "output_format", type=click.Choice(["csv", "json"]), default="csv",
               show_default=True, help="Output format on stdout.")
+@click.option("--with-status", is_flag=True,
+              help="Append a status column to the CSV output (JSON always has it).")
 @report_errors
-def score(bank_file, responses_file, method, prior_mean, prior_sd, scaling, output_format):
+def score(bank_file, responses_file, method, prior_mean, prior_sd, scaling, output_format, with_status):
     """Estimate the ability of every person in RESPONSES on the item bank BANK.
 
     RESPONSES is a long CSV with columns person_id,item_id,response.  Prints one row per
-    person: person_id, theta, se, n_items, status (see the estimation module for the
-    status values, e.g. all_lowest when the MLE sits at the lower bound).
+    person, in order of first appearance: person_id, theta, se, n_items.  --with-status
+    adds a status column (converged, no_responses, all_lowest, all_highest,
+    at_lower_bound, at_upper_bound, not_converged), which JSON output always carries.
     """
     bank = load_bank(bank_file, scaling=scaling)
     table = read_responses(responses_file)
@@ -55,4 +58,4 @@ def score(bank_file, responses_file, method, prior_mean, prior_sd, scaling, outp
     if output_format == "json":
         echo_json(records)
     else:
-        click.echo(_csv_text(records), nl=False)
+        click.echo(_csv_text(records, with_status=with_status), nl=False)
