@@ -508,6 +508,8 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
     unknown = sorted(set(doc) - {"items", "scaling", "name", "description", "metadata", "$schema"})
     if unknown:
         raise BankError([Problem(source, f"unknown top-level key {k!r}") for k in unknown])
+    if not doc["items"]:
+        raise BankError([Problem(f"{source} items", "the bank holds no items (the 'items' list is empty)")])
     scaling, problem = _number(doc.get("scaling"), "scaling", 1.0)
     if problem or not scaling > 0:
         raise BankError([Problem(f"{source} scaling", problem or f"scaling constant D must be > 0, got {scaling}")])

@@ -30,7 +30,7 @@ import numpy as np
 
 from . import models
 from .bank import ItemBank, bank_from_records
-from .errors import BankError, Problem
+from .errors import AdaptiveEngineError, BankError, Problem
 
 #: Columns before and after the threshold columns b1..bK, in file order.
 LEADING_COLUMNS = ("item_id", "model", "a", "b", "c", "d")
@@ -141,7 +141,13 @@ def _atomic_write(path: Path, fill: Callable[[Path], None]) -> None:
     """Call ``fill(temp_path)`` then move the temp file onto ``path``; clean up on failure."""
     path = Path(path)
     folder = path.parent if str(path.parent) else Path(".")
-    fd, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=folder)
+    check_target(path)
+    try:
+        fd, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=folder)
+    except OSError as exc:
+        # the temporary name means nothing to the user: name the folder instead
+        raise AdaptiveEngineError(f"cannot write into the folder {folder}: {exc.strerror or exc}",
+                                  location=str(path)) from None
     os.close(fd)
     temp = Path(temp_name)
     try:
@@ -153,6 +159,22 @@ def _atomic_write(path: Path, fill: Callable[[Path], None]) -> None:
         with contextlib.suppress(OSError):
             temp.unlink()
         raise
+
+
+def check_target(path: str | Path) -> None:
+    """Refuse an output ``path`` whose folder does not exist or that is itself a folder.
+
+    Raises
+    ------
+    AdaptiveEngineError
+        Located at ``path``, before anything is written.
+    """
+    path = Path(path)
+    folder = path.parent if str(path.parent) else Path(".")
+    if not folder.is_dir():
+        raise AdaptiveEngineError(f"the folder {folder} does not exist", location=str(path))
+    if path.is_dir():
+        raise AdaptiveEngineError("this is a folder, not a file name", location=str(path))
 
 
 def _default_file_mode() -> int:

@@ -53,6 +53,7 @@ if str(HERE.parent) not in sys.path:  # run as a script from a checkout
 
 from adaptive_engine.bank import ItemBank, bank_from_records  # noqa: E402
 from adaptive_engine.bank_io import write_bank  # noqa: E402
+from adaptive_engine.errors import AdaptiveEngineError  # noqa: E402
 
 OPERATOR_SEED = 20_240_611
 SURVEY_SEED = 20_240_612
@@ -250,8 +251,16 @@ def make_survey_bank(seed: int = SURVEY_SEED) -> ItemBank:
 
 
 def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
-    """Write the four demo bank files into ``out_dir``; returns their paths."""
+    """Write the four demo bank files into ``out_dir``; returns their paths.
+
+    Raises
+    ------
+    AdaptiveEngineError
+        When ``out_dir`` is not an existing folder (nothing is written).
+    """
     out_dir = Path(out_dir)
+    if not out_dir.is_dir():
+        raise AdaptiveEngineError(f"the output folder {out_dir} does not exist", location=str(out_dir))
     written = []
     for bank in (make_operator_bank(), make_survey_bank()):
         for suffix in (".csv", ".json"):
@@ -259,6 +268,19 @@ def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
     return written
 
 
-if __name__ == "__main__":
-    for path in make_demo_banks(sys.argv[1] if len(sys.argv) > 1 else HERE):
+def main(argv: list[str] | None = None) -> int:
+    """Command-line entry: write the demo files, print their names; exit code 2 on bad input."""
+    argv = sys.argv[1:] if argv is None else argv
+    try:
+        written = make_demo_banks(argv[0] if argv else HERE)
+    except AdaptiveEngineError as exc:
+        for problem in exc.problems:
+            print(f"error: {problem}", file=sys.stderr)
+        return 2
+    for path in written:
         print(f"wrote {path}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

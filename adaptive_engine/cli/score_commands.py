@@ -4,10 +4,12 @@ from __future__ import annotations
 
 import csv
 import io
+import math
 
 import click
 
 from ..bank import load_bank
+from ..errors import AdaptiveEngineError
 from ..estimation import METHODS, score_responses
 from ..responses import read_responses
 from ._common import echo_json, main, report_errors
@@ -24,6 +26,14 @@ def _csv_text(records, *, with_status: bool = False) -> str:
         row = [rec["person_id"], f"{rec['theta']:.6f}", f"{rec['se']:.6f}", rec["n_items"]]
         writer.writerow(row + ([rec["status"]] if with_status else []))
     return out.getvalue()
+
+
+def _check_prior(mean: float, sd: float) -> None:
+    # the library names its keyword (prior_sd); the user typed the option
+    if not math.isfinite(mean):
+        raise AdaptiveEngineError(f"must be a finite number, got {mean}", location="--prior-mean")
+    if not (math.isfinite(sd) and sd > 0):
+        raise AdaptiveEngineError(f"must be a positive number, got {sd}", location="--prior-sd")
 
 
 @main.command("score")
@@ -52,6 +62,7 @@ def score(bank_file, responses_file, method, prior_mean, prior_sd, scaling, outp
     adds a status column (converged, no_responses, all_lowest, all_highest,
     at_lower_bound, at_upper_bound, not_converged), which JSON output always carries.
     """
+    _check_prior(prior_mean, prior_sd)
     bank = load_bank(bank_file, scaling=scaling)
     table = read_responses(responses_file)
     records = score_responses(bank, table, method, prior_mean=prior_mean, prior_sd=prior_sd)
