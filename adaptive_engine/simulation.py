@@ -23,6 +23,7 @@ The true bank may differ from the operational bank the kernel selects and scores
 from __future__ import annotations
 
 import itertools
+import math
 import uuid
 from collections import deque
 from concurrent.futures import Executor, ProcessPoolExecutor
@@ -341,6 +342,24 @@ def _stratum_counts(items, pick_stratum, withheld, true_stratum, n_strata, n_ite
 _CONTEXTS: dict = {}
 
 
+def effective_chunk_size(total: int, chunk_size: int, workers: int) -> int:
+    """Examinees per chunk actually used for a run of ``total`` examinees.
+
+    With ``workers > 1`` a run is cut into at least about two chunks per worker
+    (``min(chunk_size, ceil(total / (2 workers)))``): at the default chunk size a run of
+    10,000 or fewer examinees would otherwise be a single chunk, leaving all but one worker
+    idle.  Two chunks per worker rather than one let a fast worker take up the slack of a
+    slow one.  Results do not depend on the chunking (see the module notes).
+    """
+    if chunk_size < 1:
+        raise SimulationError(f"chunk size must be >= 1, got {chunk_size}", "--chunk-size")
+    if workers < 1:
+        raise SimulationError(f"workers must be >= 1, got {workers}", "--workers")
+    if workers > 1 and total > 0:
+        return max(1, min(chunk_size, math.ceil(total / (2 * workers))))
+    return chunk_size
+
+
 def _worker_chunk(token, design, bank, true_bank, seed, start, true_theta, count_by_stratum=None) -> ChunkResult:
     """Run one chunk in a worker; the context is built once per worker process and run."""
     ctx = _CONTEXTS.get(token)
@@ -364,8 +383,12 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
     executor : concurrent.futures.Executor, optional
         Runs chunks in parallel (any object with ``submit`` returning futures, e.g. a
         ``ProcessPoolExecutor`` or ``dask.distributed.Client.get_executor()``).
+    chunk_size : int
+        Most examinees per chunk; with ``workers > 1`` smaller chunks are used
+        (:func:`effective_chunk_size`) so that every worker gets work.
     workers : int
-        With no executor, ``workers > 1`` starts a process pool of that size.
+        With no executor, ``workers > 1`` starts a process pool of that size; with an
+        executor, give its number of workers so that the run is cut finely enough.
     ctx : TestContext, optional
         A context already built for (design, bank) (in-process runs only).
     count_by_stratum : float sequence, optional
@@ -373,10 +396,7 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
     """
     true_theta = np.asarray(true_theta, dtype=float)
     total = true_theta.shape[0]
-    if chunk_size < 1:
-        raise SimulationError(f"chunk size must be >= 1, got {chunk_size}", "chunk_size")
-    if workers < 1:
-        raise SimulationError(f"workers must be >= 1, got {workers}", "--workers")
+    chunk_size = effective_chunk_size(total, chunk_size, workers)
     true_rows = true_item_rows(bank, true_bank)  # validate before any work starts
     starts = range(0, total, chunk_size)
     if executor is None and workers == 1:

@@ -43,7 +43,9 @@ from .bank import ItemBank
 from .design import Design
 from .design_check import require_design_fits_bank
 from .examinees import AbilitySpec
-from .simulation import DEFAULT_CHUNK, ChunkResult, SimulationResult, simulate, true_item_rows
+from .simulation import (
+    DEFAULT_CHUNK, ChunkResult, SimulationResult, effective_chunk_size, simulate, true_item_rows,
+)
 
 FILES = ("summary.json", "examinees.csv", "administrations.csv", "items.csv", "conditional.csv", "report.html")
 
@@ -177,7 +179,8 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
         summary["settings"] = {
             "design": design.source, "bank": bank.name, "abilities": abilities.text,
             "true_bank": None if true_bank is None else true_bank.name, "seed": int(seed),
-            "examinees": int(n), "chunk_size": int(chunk_size), "workers": int(workers),
+            "examinees": int(n), "chunk_size": int(effective_chunk_size(n, chunk_size, workers)),
+            "workers": int(workers),
         }
         conditional = summary["conditional"]
         if staging is not None:

@@ -57,6 +57,24 @@ def test_results_do_not_depend_on_chunking_or_executor():
     assert not np.array_equal(one.theta, other.theta)
 
 
+def test_workers_split_a_run_at_the_default_chunk_size():
+    # ceil(N / (2 workers)) examinees per chunk: 90 examinees, 2 workers -> chunks of 23
+    assert simulation.effective_chunk_size(90, simulation.DEFAULT_CHUNK, 2) == 23
+    assert simulation.effective_chunk_size(90, 10, 2) == 10  # a smaller chunk size is kept
+    assert simulation.effective_chunk_size(90, simulation.DEFAULT_CHUNK, 1) == simulation.DEFAULT_CHUNK
+    bank = small_bank()
+    theta = examinees.parse_ability_spec("normal:0,1").draw(90, 3)
+    one = simulation.simulate(DESIGN, bank, true_theta=theta, seed=3)
+    sizes = []
+    with ThreadPoolExecutor(2) as pool:
+        split = simulation.simulate(DESIGN, bank, true_theta=theta, seed=3, executor=pool, workers=2,
+                                    on_chunk=lambda c: sizes.append(c.size))
+    assert sizes == [23, 23, 23, 21]
+    _same(one, split)
+    with pytest.raises(simulation.SimulationError, match="--chunk-size"):
+        simulation.simulate(DESIGN, bank, true_theta=theta, seed=3, chunk_size=0)
+
+
 def test_examinee_i_is_the_same_in_a_longer_run():
     bank = small_bank()
     theta = np.linspace(-2, 2, 40)
