@@ -508,6 +508,9 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
     unknown = sorted(set(doc) - {"items", "scaling", "name", "description", "metadata", "$schema"})
     if unknown:
         raise BankError([Problem(source, f"unknown top-level key {k!r}") for k in unknown])
+    problems = _json_top_level_problems(doc, source)
+    if problems:
+        raise BankError(problems)
     if not doc["items"]:
         raise BankError([Problem(f"{source} items", "the bank holds no items (the 'items' list is empty)")])
     scaling, problem = _number(doc.get("scaling"), "scaling", 1.0)
@@ -526,11 +529,79 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
         if "item_id" not in rec or "model" not in rec:
             problems.append(Problem(loc, "missing required field " + ("'item_id'" if "item_id" not in rec else "'model'")))
             continue
+        kinds = _json_type_problems(rec)
+        if kinds:
+            iid = rec["item_id"]
+            where = f"{loc} (item {iid})" if isinstance(iid, str) and iid.strip() else loc
+            problems.extend(Problem(where, m) for m in kinds)
+            continue
         records.append(rec)
         locations.append(loc)
     if problems:
         raise BankError(problems)
     return bank_from_records(records, locations, scaling=scaling, name=str(doc.get("name") or Path(source).stem))
+
+
+_JSON_TEXT_FIELDS = ("item_id", "model", "area", "item_set", "status", "label")
+_JSON_NUMBER_FIELDS = ("a", "b", "c", "d")
+
+
+def _json_kind(value) -> str:
+    """How a JSON value reads to a user: 'the string "1.5"', 'true', 'null', 'a list'."""
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return f"the string {json.dumps(value)}"
+    if isinstance(value, (int, float)):
+        return f"the number {value!r}"
+    return "a list" if isinstance(value, list) else "an object"
+
+
+def _is_json_number(value) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _json_type_problems(rec: Mapping[str, Any]) -> list[str]:
+    """JSON type problems of one item object (the CSV loader, reading text, has none).
+
+    Text fields must be JSON strings and parameters JSON numbers, as the published schema
+    says: a quoted number or a boolean is refused rather than guessed at.
+    """
+    out = []
+    for key, value in rec.items():
+        if key in _JSON_TEXT_FIELDS:
+            if not isinstance(value, str):
+                out.append(f"{key} must be a JSON string, got {_json_kind(value)}")
+        elif key in _JSON_NUMBER_FIELDS or _THRESHOLD_COLUMN.match(str(key)):
+            if not _is_json_number(value):
+                out.append(f"{key} must be a JSON number, got {_json_kind(value)}")
+        elif key == "thresholds":
+            if not isinstance(value, list) or not value:
+                out.append(f"thresholds must be a non-empty list of JSON numbers, got {_json_kind(value)}")
+            else:
+                out.extend(f"thresholds[{j}] must be a JSON number, got {_json_kind(v)}"
+                           for j, v in enumerate(value) if not _is_json_number(v))
+        elif key == "enemy_group":
+            if isinstance(value, list):
+                out.extend(f"enemy_group[{j}] must be a non-empty JSON string, got {_json_kind(v)}"
+                           for j, v in enumerate(value) if not (isinstance(v, str) and v))
+            elif not isinstance(value, str):
+                out.append(f"enemy_group must be a JSON string or a list of strings, got {_json_kind(value)}")
+    return out
+
+
+def _json_top_level_problems(doc: Mapping[str, Any], source: str) -> list[Problem]:
+    out = []
+    if "scaling" in doc and not _is_json_number(doc["scaling"]):
+        out.append(Problem(f"{source} scaling", f"must be a JSON number, got {_json_kind(doc['scaling'])}"))
+    for key in ("name", "description", "$schema"):
+        if key in doc and not isinstance(doc[key], str):
+            out.append(Problem(f"{source} {key}", f"must be a JSON string, got {_json_kind(doc[key])}"))
+    if "metadata" in doc and not isinstance(doc["metadata"], dict):
+        out.append(Problem(f"{source} metadata", f"must be a JSON object, got {_json_kind(doc['metadata'])}"))
+    return out
 
 
 def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:

@@ -262,6 +262,28 @@ def test_written_json_always_validates(bank):
     {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "weight": 1},
     {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "status": "retired"},
     {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "c": 0.2},
+    # JSON types: text fields are strings, parameters are numbers (never quoted, never booleans)
+    {"item_id": "Q", "model": "2PL", "a": "1.2", "b": 0.0},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": "0"},
+    {"item_id": "Q", "model": "2PL", "a": True, "b": 0.0},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": False},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": None},
+    {"item_id": "Q", "model": "3PL", "a": 1.0, "b": 0.0, "c": "0.2"},
+    {"item_id": "Q", "model": "4PL", "a": 1.0, "b": 0.0, "c": 0.1, "d": "0.9"},
+    {"item_id": "Q", "model": "GRM", "a": 1.0, "thresholds": [-1.0, "0.5"]},
+    {"item_id": "Q", "model": "GRM", "a": 1.0, "thresholds": [-1.0, True]},
+    {"item_id": "Q", "model": "GRM", "a": 1.0, "thresholds": "-1,0.5"},
+    {"item_id": "Q", "model": "GRM", "a": 1.0, "thresholds": []},
+    {"item_id": "Q", "model": "GPCM", "a": 1.0, "b1": "0.5"},
+    {"item_id": 7, "model": "2PL", "a": 1.0, "b": 0.0},
+    {"item_id": "Q", "model": 2, "a": 1.0, "b": 0.0},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "area": 3},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "item_set": None},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "status": True},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "label": ["x"]},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "enemy_group": 4},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "enemy_group": ["e1", 2]},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "enemy_group": ["e1", ""]},
 ])
 def test_schema_and_loader_both_refuse(item):
     doc = {"scaling": 1.0, "items": [item]}
@@ -269,6 +291,50 @@ def test_schema_and_loader_both_refuse(item):
     with pytest.raises(BankError):
         from adaptive_engine.bank import read_bank_json_text
         read_bank_json_text(json.dumps(doc))
+
+
+@pytest.mark.parametrize("top", [{"scaling": "1.702"}, {"scaling": True}, {"name": 5},
+                                 {"description": None}, {"metadata": []}, {"items": []}])
+def test_schema_and_loader_both_refuse_top_level(top):
+    doc = {"items": [{"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0}], **top}
+    assert list(_validator().iter_errors(doc))
+    from adaptive_engine.bank import read_bank_json_text
+    with pytest.raises(BankError) as info:
+        read_bank_json_text(json.dumps(doc), source="b.json")
+    assert info.value.location.startswith("b.json")
+
+
+@pytest.mark.parametrize("item", [
+    {"item_id": "Q", "model": "2PL", "a": 1, "b": 0},  # JSON integers are numbers
+    {"item_id": "Q", "model": "Rasch", "b": -0.5},
+    {"item_id": "Q", "model": "GPCM", "a": 1.0, "b1": 0.5, "b2": -0.2},
+    {"item_id": "Q", "model": "GRM", "a": 1.0, "thresholds": [-1, 0.5], "enemy_group": "e1;e2"},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "enemy_group": ["e1", "e2"], "item_set": "",
+     "label": "", "area": "pumps", "status": "pretest"},
+])
+def test_schema_and_loader_both_accept(item):
+    doc = {"scaling": 1.702, "name": "n", "metadata": {"k": 1}, "items": [item]}
+    assert not list(_validator().iter_errors(doc))
+    from adaptive_engine.bank import read_bank_json_text
+    assert len(read_bank_json_text(json.dumps(doc))) == 1
+
+
+def test_json_type_errors_are_located():
+    from adaptive_engine.bank import read_bank_json_text
+    doc = {"items": [{"item_id": "MV-1", "model": "2PL", "a": 1.0, "b": 0.0},
+                     {"item_id": "MV-2", "model": "3PL", "a": "1.1", "b": 0.0, "c": True}]}
+    with pytest.raises(BankError) as info:
+        read_bank_json_text(json.dumps(doc), source="exam.json")
+    assert [str(p) for p in info.value.problems] == [
+        'exam.json items[1] (item MV-2): a must be a JSON number, got the string "1.1"',
+        "exam.json items[1] (item MV-2): c must be a JSON number, got true",
+    ]
+
+
+def test_csv_loader_still_reads_numbers_from_text():
+    from adaptive_engine.bank import read_bank_csv_text
+    bank = read_bank_csv_text("item_id,model,a,b\nQ,2PL,1.5,-0.25\n")
+    assert bank.a[0] == 1.5 and bank.b[0] == -0.25
 
 
 # ---------------------------------------------------------------------------------------
