@@ -94,6 +94,18 @@ def _iteration_seed(seed: int, iteration: int) -> int:
                >> np.uint64(1))
 
 
+def _iteration_progress(progress, iteration: int, n: int, max_iterations: int):
+    """The run's ``progress`` seen from one iteration's simulation (None passes through)."""
+    if progress is None:
+        return None
+    total = max_iterations * n
+
+    def report(done, _n):
+        progress(min(iteration * n + done, total - 1), total)  # the bar ends with the calibration
+
+    return report
+
+
 def _set_members(bank: ItemBank, design: Design) -> list[np.ndarray]:
     """Rows of each item set (when the design keeps sets together)."""
     if not design.blueprint.item_sets:
@@ -208,6 +220,10 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
         on ability (Stocking & Lewis 1998), one per item and stratum, so that within every
         true-ability stratum no item's exposure rate exceeds the target.  Every stratum
         must hold some of the ``true_theta``.
+    progress : callable, optional
+        Called as ``progress(done, total)`` with the simulated examinees so far, over at
+        most ``max_iterations`` iterations (``total`` = max_iterations x N); it reaches
+        ``total`` when the calibration ends, early or not.
     """
     if not 0 < target <= 1:
         raise AdaptiveEngineError(f"the target exposure rate must lie in (0, 1], got {target}", "--target")
@@ -230,7 +246,8 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
         params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
         current = with_parameters(design, params)
         result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
-                          chunk_size=chunk_size, workers=workers, executor=executor)
+                          chunk_size=chunk_size, workers=workers, executor=executor,
+                          progress=_iteration_progress(progress, it, n, max_iterations))
         given = result.administered / n
         selected = result.offered / n
         max_rate = float(given[operational].max())
@@ -238,12 +255,12 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
                         "share_above_target": float(np.mean(given[operational] > target)),
                         "mean_length": float(result.n_scored.mean()),
                         "items_restricted": int(np.sum(k[operational] < 1))})
-        if progress is not None:
-            progress(it + 1, max_iterations)
         if max_rate <= target + tolerance:
             converged = True
             break
         k = _updated(k, given, selected, target, sets)
+    if progress is not None:
+        progress(max_iterations * n, max_iterations * n)
     params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
     return ExposureCalibration(parameters=params, history=history, converged=converged,
                                target=float(target), tolerance=float(tolerance))
@@ -274,7 +291,8 @@ def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, ma
     for it in range(max_iterations):
         current = with_parameters(design, as_params(), strata=strata)
         result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
-                          chunk_size=chunk_size, workers=workers, executor=executor, count_by_stratum=strata)
+                          chunk_size=chunk_size, workers=workers, executor=executor, count_by_stratum=strata,
+                          progress=_iteration_progress(progress, it, true_theta.size, max_iterations))
         given = result.administered_by_stratum / size[:, None]  # P(A_i | true stratum s)
         by_stratum = given[:, operational].max(axis=1)
         max_rate = float(by_stratum.max())
@@ -284,13 +302,13 @@ def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, ma
                         "share_above_target": float(np.mean(given[:, operational] > target)),
                         "mean_length": float(result.n_scored.mean()),
                         "items_restricted": int(np.sum(k[:, operational] < 1))})
-        if progress is not None:
-            progress(it + 1, max_iterations)
         if max_rate <= target + tolerance:
             converged = True
             break
         k = _updated_conditional(k, result.administered_by_stratum_pair, result.offered_by_stratum_pair,
                                  size, target, sets)
+    if progress is not None:
+        progress(max_iterations * true_theta.size, max_iterations * true_theta.size)
     return ExposureCalibration(parameters=as_params(), history=history, converged=converged,
                                target=float(target), tolerance=float(tolerance), strata=strata)
 
@@ -333,10 +351,10 @@ def write_parameters(parameters: dict, path: str | Path, *, strata=()) -> Path:
 
 def run_calibration(design: Design, bank: ItemBank, *, target: float, out_file, true_theta, seed: int,
                     max_iterations: int = 15, tolerance: float = 0.02, workers: int = 1,
-                    strata=None) -> ExposureCalibration:
+                    strata=None, progress=None) -> ExposureCalibration:
     """:func:`calibrate_sympson_hetter`, then write the parameters file (conditional with ``strata``)."""
     cal = calibrate_sympson_hetter(design, bank, target=target, true_theta=true_theta, seed=seed,
                                    max_iterations=max_iterations, tolerance=tolerance, workers=workers,
-                                   strata=strata)
+                                   strata=strata, progress=progress)
     write_parameters(cal.parameters, out_file, strata=cal.strata)
     return cal

@@ -22,6 +22,7 @@ The true bank may differ from the operational bank the kernel selects and scores
 
 from __future__ import annotations
 
+import functools
 import itertools
 import math
 import uuid
@@ -226,7 +227,8 @@ def _draw_answers(true_params: models.ItemParameters, rows_true, theta, u) -> np
 
 
 def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank: ItemBank | None = None,
-              true_rows=None, count_by_stratum=None) -> ChunkResult:
+              true_rows=None, count_by_stratum=None,
+              on_round: Callable[[int], None] | None = None) -> ChunkResult:
     """Simulate examinees ``start .. start + n - 1`` of a run (n = ``true_theta.size``).
 
     Parameters
@@ -244,6 +246,10 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
         Ascending cut points of ability strata: also count administrations and offers
         per (true-ability stratum, stratum of the interim estimate at the pick) (the
         calibration of exposure parameters conditional on ability needs them).
+    on_round : callable, optional
+        Called as ``on_round(finished)`` after each round of answers with the number of
+        the chunk's examinees whose test has ended (for a progress display: one chunk can
+        take many seconds).
     """
     bank = ctx.bank
     true_theta = np.asarray(true_theta, dtype=float)
@@ -270,6 +276,8 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
     _count_withheld(offered, picked)
     while True:
         rows = np.flatnonzero(~state.done)
+        if on_round is not None:
+            on_round(n - rows.size)
         if rows.size == 0:
             break
         pos = state.n_given[rows]
@@ -373,7 +381,8 @@ def _worker_chunk(token, design, bank, true_bank, seed, start, true_theta, count
 def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank: ItemBank | None = None,
                 chunk_size: int = DEFAULT_CHUNK, executor: Executor | None = None,
                 workers: int = 1, ctx: TestContext | None = None,
-                count_by_stratum=None) -> Iterator[ChunkResult]:
+                count_by_stratum=None,
+                on_round: Callable[[int, int], None] | None = None) -> Iterator[ChunkResult]:
     """Yield the chunks of a run in examinee order.
 
     Parameters
@@ -393,6 +402,9 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
         A context already built for (design, bank) (in-process runs only).
     count_by_stratum : float sequence, optional
         Cut points of true-ability strata for per-stratum counts (see :func:`run_chunk`).
+    on_round : callable, optional
+        In-process runs only: called as ``on_round(start, finished)`` after each round of
+        answers of the chunk starting at examinee ``start`` (see :func:`run_chunk`).
     """
     true_theta = np.asarray(true_theta, dtype=float)
     total = true_theta.shape[0]
@@ -402,8 +414,10 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
     if executor is None and workers == 1:
         ctx = ctx if ctx is not None else build_context(design, bank)
         for s in starts:
+            report = None if on_round is None else functools.partial(on_round, s)
             yield run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size],
-                            true_bank=true_bank, true_rows=true_rows, count_by_stratum=count_by_stratum)
+                            true_bank=true_bank, true_rows=true_rows, count_by_stratum=count_by_stratum,
+                            on_round=report)
         return
     own = executor is None
     pool = ProcessPoolExecutor(max_workers=workers) if own else executor
@@ -447,7 +461,10 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
         Called with each :class:`ChunkResult` in examinee order (e.g. to stream the
         administrations to a file); the chunk is dropped afterwards.
     progress : callable, optional
-        Called as ``progress(done, total)`` after each chunk.
+        Called as ``progress(done, total)`` with the number of examinees whose test has
+        ended: after each round of answers when the run is in process (a single chunk
+        can take many seconds), after each chunk when it runs on workers.  ``done`` reaches
+        ``total`` once, when the run is complete (final reports included).
     count_by_stratum : float sequence, shape (S - 1,), optional
         Ascending cut points of ability strata: the result then also holds
         ``administered_by_stratum_pair`` and ``offered_by_stratum_pair`` (S, S, n_items),
@@ -478,11 +495,17 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
     else:
         given_s = offered_s = None
     done = 0
+    total = int(true_theta.size)
+    on_round = None
+    if progress is not None:
+        def on_round(start, finished):
+            # the last examinees' final reports are still to come: hold back the last step
+            progress(min(start + finished, total - 1), total)
     keep = ("seeds", "true_theta", "theta", "se", "n_scored", "n_pretest", "stop_reason",
             "scaled_score", "at_or_above", "area_counts")
     for chunk in iter_chunks(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
                              chunk_size=chunk_size, executor=executor, workers=workers, ctx=ctx,
-                             count_by_stratum=count_by_stratum):
+                             count_by_stratum=count_by_stratum, on_round=on_round):
         if on_chunk is not None:
             on_chunk(chunk)
         parts.append({k: getattr(chunk, k) for k in keep})
@@ -493,7 +516,7 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
             offered_s += chunk.offered_by_stratum_pair
         done += chunk.size
         if progress is not None:
-            progress(done, true_theta.size)
+            progress(done, total)
     joined = {k: np.concatenate([p[k] for p in parts], axis=0) for k in keep}
     return SimulationResult(design=design, bank=bank, seed=int(seed), administered=administered,
                             offered=offered, administered_by_stratum_pair=given_s,

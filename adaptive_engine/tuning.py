@@ -98,6 +98,9 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_th
          executor=None, progress=None) -> list[dict]:
     """Run every combination of ``variations`` on the same examinees; one row per combination.
 
+    ``progress(done, total)``, when given, counts simulated examinees over all
+    combinations (``total`` = combinations x examinees).
+
     Returns
     -------
     list of dict
@@ -115,9 +118,15 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_th
     for d in designs:  # every variant must fit before any work starts
         require_design_fits_bank(d, bank)
     rows = []
+    n = int(np.size(true_theta))
+    total = len(combos) * n
     for k, (combo, d) in enumerate(zip(combos, designs)):
+        inner = None
+        if progress is not None:
+            def inner(done, _n, base=k * n):
+                progress(base + done, total)
         result = simulate(d, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
-                          chunk_size=chunk_size, workers=workers, executor=executor)
+                          chunk_size=chunk_size, workers=workers, executor=executor, progress=inner)
         s = metrics.summarize(result)
         row = dict(zip(keys, combo))
         row.update(mean_length=s["mean_length"], sd_length=s["length"]["sd_length"],
@@ -126,8 +135,6 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_th
         for c in s["classification"]:
             row[f"accuracy_{c['cut']}"] = c["accuracy"]
         rows.append(row)
-        if progress is not None:
-            progress(k + 1, len(combos))
     acc_keys = [k for k in rows[0] if k.startswith("accuracy_")]
     accuracy = None
     if acc_keys:

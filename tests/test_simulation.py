@@ -258,3 +258,69 @@ def test_demo_runs(tmp_path, monkeypatch):
     assert r.exit_code == 0, r.output
     assert (tmp_path / "demo_output" / "report.html").exists()
     assert "staff-climate" in r.output and "stopped:" in r.output
+
+
+# -- progress ------------------------------------------------------------------------------
+
+def test_progress_inside_a_single_chunk():
+    bank = small_bank()
+    theta = np.linspace(-2, 2, 60)
+    calls = []
+    simulation.simulate(DESIGN, bank, true_theta=theta, seed=6, progress=lambda d, t: calls.append((d, t)))
+    done = [d for d, _ in calls]
+    assert all(t == 60 for _, t in calls)
+    assert done[-1] == 60 and done.count(60) == 1  # the total is reached once, at the very end
+    assert len(calls) >= DESIGN.stopping.min_items  # one call per round of answers, not per chunk
+    assert done == sorted(done) and 0 < done[-2] < 60
+
+
+def test_progress_of_an_exposure_calibration():
+    from adaptive_engine.exposure_calibration import calibrate_sympson_hetter
+
+    bank = small_bank()
+    calls = []
+    design = Design(stopping=Stopping(min_items=5, max_items=5))
+    cal = calibrate_sympson_hetter(design, bank, target=0.3, true_theta=np.linspace(-2, 2, 40), seed=1,
+                                   max_iterations=3, progress=lambda d, t: calls.append((d, t)))
+    done = [d for d, _ in calls]
+    assert {t for _, t in calls} == {3 * 40}
+    assert done == sorted(done) and done[-1] == 120 and done.count(120) == 1
+    # each iteration's examinees advance the bar
+    assert max(d for d in done[:-1]) >= 40 * (len(cal.history) - 1)
+
+
+def test_progress_bar_quiet_unless_asked():
+    import io
+
+    from adaptive_engine.cli.simulate_commands import _Progress
+
+    quiet = io.StringIO()  # not a terminal: no bar by default
+    bar = _Progress("run", stream=quiet, delay=0)
+    bar(5, 10)
+    bar(10, 10)
+    assert quiet.getvalue() == ""
+    short = io.StringIO()  # a run shorter than the delay stays quiet even when enabled
+    bar = _Progress("run", stream=short, enabled=True, delay=60)
+    bar(10, 10)
+    assert short.getvalue() == ""
+    shown = io.StringIO()
+    bar = _Progress("run", stream=shown, enabled=True, delay=0)
+    bar(5, 10)
+    bar(10, 10)
+    bar(10, 10)
+    assert shown.getvalue().count("\n") == 1 and "10/10" in shown.getvalue() and "run [" in shown.getvalue()
+
+
+def test_simulate_cli_progress_on_request(tmp_path, monkeypatch):
+    from adaptive_engine.cli import simulate_commands
+
+    design, bank = _shipped()
+    monkeypatch.setattr(simulate_commands, "PROGRESS_DELAY", 0.0)
+    r = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "40", "--out",
+                                  str(tmp_path / "s"), "--progress", "--json"])
+    assert r.exit_code == 0, r.output
+    assert "simulating [" in r.stderr and "40/40" in r.stderr
+    json.loads(r.stdout)  # stdout stays clean JSON
+    r = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "40", "--out",
+                                  str(tmp_path / "s2"), "--json"])
+    assert r.exit_code == 0 and r.stderr == ""

@@ -12,27 +12,59 @@ from ._common import echo_json, main, report_errors
 _FILE = click.Path(dir_okay=False, path_type=str)
 
 
-class _Progress:
-    """A progress line on stderr, shown only once a run has taken a few seconds."""
+#: Seconds a run goes before its progress bar appears (short runs stay quiet).
+PROGRESS_DELAY = 3.0
 
-    def __init__(self, label: str, delay: float = 3.0):
+
+class _Progress:
+    """A progress bar on stderr, shown only once a run has taken a few seconds.
+
+    ``enabled`` None shows it only when stderr is a terminal (so piped output and tests
+    stay quiet); True or False (``--progress``/``--no-progress``) decide outright.
+    """
+
+    def __init__(self, label: str, *, enabled: bool | None = None, delay: float | None = None, stream=None):
         self.label = label
-        self.delay = delay
+        self.stream = sys.stderr if stream is None else stream
+        if enabled is None:
+            enabled = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.enabled = enabled
+        self.delay = PROGRESS_DELAY if delay is None else delay
         self.started = time.monotonic()
+        self.last = -1.0
         self.shown = False
+        self.closed = False
 
     def __call__(self, done: int, total: int) -> None:
-        if time.monotonic() - self.started < self.delay and done < total:
+        if not self.enabled or self.closed:
             return
-        if not self.shown and done >= total:
-            return  # finished before the delay: stay quiet
+        now = time.monotonic()
+        if not self.shown and now - self.started < self.delay:
+            return  # a run that ends before the delay never shows a bar
+        if done < total and now - self.last < 0.2:
+            return  # redraw at most five times a second
         self.shown = True
+        self.last = now
         width = 30
         filled = int(width * done / max(total, 1))
-        sys.stderr.write(f"\r{self.label} [{'#' * filled}{'.' * (width - filled)}] {done}/{total}")
+        self.stream.write(f"\r{self.label} [{'#' * filled}{'.' * (width - filled)}] {done}/{total}")
         if done >= total:
-            sys.stderr.write("\n")
-        sys.stderr.flush()
+            self.stream.write("\n")
+            self.closed = True
+        self.stream.flush()
+
+    def close(self) -> None:
+        """End the bar's line (when it was shown and did not reach its total)."""
+        if self.shown and not self.closed:
+            self.stream.write("\n")
+            self.stream.flush()
+        self.closed = True
+
+
+_progress_option = click.option(
+    "--progress/--no-progress", "show_progress", default=None,
+    help="Show a progress bar on stderr for runs longer than a few seconds "
+         "[default: only when stderr is a terminal].")
 
 
 def _load(design_file, bank_file, true_bank_file=None):
@@ -85,9 +117,10 @@ def _perturbation(text):
 @click.option("--exposure-target", type=float, default=None, help="Report the share of items above this exposure rate.")
 @click.option("--no-administrations", is_flag=True, help="Skip administrations.csv (large runs).")
 @click.option("--json", "as_json", is_flag=True, help="Print summary.json instead of the table.")
+@_progress_option
 @report_errors
 def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_spec, true_bank_file, perturb,
-                     workers, chunk_size, exposure_target, no_administrations, as_json):
+                     workers, chunk_size, exposure_target, no_administrations, as_json, show_progress):
     """Simulate DESIGN for many examinees and write the study's files into --out."""
     from ..examinees import parse_ability_spec
     from ..simulation import perturbed_bank
@@ -96,10 +129,14 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
     design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
     if perturb:
         true_bank = perturbed_bank(true_bank or bank, seed=seed, **_perturbation(perturb))
-    study = run_study(design, bank, abilities=parse_ability_spec(theta_spec), n_examinees=n_examinees,
-                      seed=seed, out_dir=out_dir, true_bank=true_bank, workers=workers, chunk_size=chunk_size,
-                      exposure_target=exposure_target, write_administrations=not no_administrations,
-                      progress=_Progress("simulating"))
+    progress = _Progress("simulating", enabled=show_progress)
+    try:
+        study = run_study(design, bank, abilities=parse_ability_spec(theta_spec), n_examinees=n_examinees,
+                          seed=seed, out_dir=out_dir, true_bank=true_bank, workers=workers, chunk_size=chunk_size,
+                          exposure_target=exposure_target, write_administrations=not no_administrations,
+                          progress=progress)
+    finally:
+        progress.close()
     if as_json:
         echo_json({k: v for k, v in study.summary.items()})
     else:
@@ -122,8 +159,10 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 @click.option("--workers", type=int, default=1, show_default=True, help="Processes running chunks in parallel.")
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=str),
               help="Folder for tuning.csv, tuning.json and tuning.html (with the trade-off plot).")
+@_progress_option
 @report_errors
-def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_spec, true_bank_file, workers, out_dir):
+def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_spec, true_bank_file, workers, out_dir,
+                 show_progress):
     """Compare variants of DESIGN's settings (stopping rules, ...) on common random numbers.
 
     Prints mean length, RMSE and classification accuracy per combination and marks the
@@ -135,9 +174,12 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
     design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
     parsed = [parse_variation(v) for v in variations]
     abilities = parse_ability_spec(theta_spec)
-    rows = run_tuning_study(design, bank, parsed, true_theta=abilities.draw(n_examinees, seed), seed=seed,
-                            true_bank=true_bank, workers=workers, out_dir=out_dir,
-                            progress=_Progress("combinations"))
+    progress = _Progress("tuning", enabled=show_progress)
+    try:
+        rows = run_tuning_study(design, bank, parsed, true_theta=abilities.draw(n_examinees, seed), seed=seed,
+                                true_bank=true_bank, workers=workers, out_dir=out_dir, progress=progress)
+    finally:
+        progress.close()
     from ..simulation_files import rows_csv
 
     click.echo(rows_csv(rows), nl=False)
@@ -167,18 +209,24 @@ def exposure_group():
               help="Comma-separated ability cut points (e.g. \"-1,0,1\"): calibrate parameters conditional on "
                    "ability (Stocking & Lewis 1998), one per item and stratum, holding every stratum's exposure "
                    "rates at --target; writes item_id,theta_from,theta_to,exposure_parameter.")
+@_progress_option
 @report_errors
 def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n_examinees, theta_spec,
-                               iterations, tolerance, workers, strata_text):
+                               iterations, tolerance, workers, strata_text, show_progress):
     """Iterate Sympson-Hetter exposure parameters for DESIGN until no item exceeds --target."""
     from ..examinees import parse_ability_spec
     from ..exposure_calibration import parse_strata, run_calibration
 
     strata = None if strata_text is None else parse_strata(strata_text)
     design, bank, _ = _load(design_file, bank_file)
-    cal = run_calibration(design, bank, target=target, out_file=out_file,
-                          true_theta=parse_ability_spec(theta_spec).draw(n_examinees, seed), seed=seed,
-                          max_iterations=iterations, tolerance=tolerance, workers=workers, strata=strata)
+    progress = _Progress("calibrating", enabled=show_progress)
+    try:
+        cal = run_calibration(design, bank, target=target, out_file=out_file,
+                              true_theta=parse_ability_spec(theta_spec).draw(n_examinees, seed), seed=seed,
+                              max_iterations=iterations, tolerance=tolerance, workers=workers, strata=strata,
+                              progress=progress)
+    finally:
+        progress.close()
     if cal.strata:
         bounds = ["-inf", *(f"{c:g}" for c in cal.strata), "inf"]
         names = [f"[{lo},{hi})" for lo, hi in zip(bounds, bounds[1:])]
