@@ -24,6 +24,9 @@ DEFAULT_TARGET_SE = 0.3
 SCAN_RANGE = (-6.0, 6.0)
 SCAN_STEP = 0.01
 MAX_CURVE_POINTS = 100_001
+#: Values of :attr:`InformationCurves.items_counted`.
+OPERATIONAL_ITEMS = "operational"
+OPERATIONAL_AND_PRETEST = "operational and pretest"
 
 
 @attrs.frozen
@@ -152,14 +155,21 @@ class InformationCurves:
     ----------
     theta : array, shape (G,)
     information : array, shape (G,)
-        Summed Fisher information of all items in the bank.
+        Summed Fisher information of the items counted.
     by_area : dict of str -> array, shape (G,)
         Summed information of each content area's items (empty unless asked for).
+    items_counted : str
+        Which items are summed: ``"operational"`` (the default, as in
+        :func:`summarize_bank`) or ``"operational and pretest"``.
+    n_items : int
+        Number of items summed.
     """
 
     theta: np.ndarray
     information: np.ndarray
     by_area: dict = attrs.field(factory=dict)
+    items_counted: str = OPERATIONAL_ITEMS
+    n_items: int = 0
 
     @property
     def se(self) -> np.ndarray:
@@ -183,8 +193,10 @@ class InformationCurves:
         return out.getvalue()
 
     def to_dict(self) -> dict:
-        """JSON form: ``{"theta", "information", "se", "by_area": {area: {"information", "se"}}}``."""
-        out = {"theta": self.theta.tolist(), "information": self.information.tolist(),
+        """JSON form: ``{"items_counted", "n_items", "theta", "information", "se",
+        "by_area": {area: {"information", "se"}}}``."""
+        out = {"items_counted": self.items_counted, "n_items": int(self.n_items),
+               "theta": self.theta.tolist(), "information": self.information.tolist(),
                "se": self.se.tolist()}
         if self.by_area:
             with np.errstate(divide="ignore"):
@@ -211,12 +223,27 @@ def curve_grid(start: float, stop: float, step: float) -> np.ndarray:
     return np.round(start + step * np.arange(n), 12)
 
 
-def information_curves(bank: ItemBank, theta, *, by_area: bool = False) -> InformationCurves:
-    """Test information of ``bank`` at ``theta`` (G,), optionally split by content area."""
+def information_curves(bank: ItemBank, theta, *, by_area: bool = False,
+                       include_pretest: bool = False) -> InformationCurves:
+    """Test information of ``bank`` at ``theta`` (G,), optionally split by content area.
+
+    Only operational items are summed unless ``include_pretest``: pretest items are not
+    scored, so they add nothing to a test's precision (and :func:`summarize_bank` counts
+    the same items).
+    """
     theta = np.asarray(theta, dtype=float)
-    total = test_information(bank, theta)
-    areas = test_information(bank, theta, by_area=True) if by_area else {}
-    return InformationCurves(theta=theta, information=total, by_area=areas)
+    if include_pretest:
+        items, counted = np.arange(len(bank)), OPERATIONAL_AND_PRETEST
+    else:
+        items, counted = np.flatnonzero(bank.status == "operational"), OPERATIONAL_ITEMS
+    if items.size:
+        total = test_information(bank, theta, items)
+        areas = test_information(bank, theta, items, by_area=True) if by_area else {}
+    else:  # a bank of pretest items only: nothing is counted
+        total = np.zeros_like(theta)
+        areas = {area: np.zeros_like(theta) for area in bank.areas} if by_area else {}
+    return InformationCurves(theta=theta, information=total, by_area=areas,
+                             items_counted=counted, n_items=int(items.size))
 
 
 def plot_information_curves(curves: InformationCurves, path: str | Path, *, title: str = "") -> Path:
@@ -250,7 +277,8 @@ def plot_information_curves(curves: InformationCurves, path: str | Path, *, titl
         if finite.size:
             se_axis.set_ylim(0, min(2.0, float(finite.max()) * 1.05))
         ax.legend(loc="upper left", fontsize="small")
-        ax.set_title(title or "Test information")
+        ax.set_title(f"{title or 'Test information'} ({curves.n_items} {curves.items_counted} items)",
+                     fontsize="medium")
         fig.tight_layout()
         _atomic_write(path, lambda temp: fig.savefig(temp, format="png", dpi=100))
     finally:

@@ -27,6 +27,9 @@ def bank():
 def check_command(bank_file, scaling, target_se):
     """Validate BANK (.csv, .json or .db) and print a short summary.
 
+    The precision line sums the operational items only (pretest items are not scored),
+    as bank curves does by default.
+
     Every problem is listed as LOCATION: problem, with exit code 2.
     """
     summary = bank_report.summarize_bank(load_bank(bank_file, scaling=scaling), target_se=target_se)
@@ -43,15 +46,23 @@ def check_command(bank_file, scaling, target_se):
 @click.option("--by-area", is_flag=True,
               help="Add each content area's information (CSV columns information_<area>; "
                    "JSON key by_area with information and se per area).")
+@click.option("--include-pretest", is_flag=True,
+              help="Sum pretest items too (by default only operational items, as in bank check).")
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
               help="Also draw the curves to this PNG file (needs matplotlib).")
 @click.option("--scaling", type=float, default=None, help=SCALING_HELP)
 @report_errors
-def curves_command(bank_file, start, stop, step, fmt, by_area, plot_file, scaling):
-    """Print the test information and standard error of BANK over an ability grid."""
+def curves_command(bank_file, start, stop, step, fmt, by_area, include_pretest, plot_file, scaling):
+    """Print the test information and standard error of BANK over an ability grid.
+
+    The information is summed over the operational items (the items bank check counts);
+    --include-pretest adds the pretest items.  JSON output states which items were summed
+    (items_counted, n_items).
+    """
     grid = bank_report.curve_grid(start, stop, step)
     the_bank = load_bank(bank_file, scaling=scaling)
-    curves = bank_report.information_curves(the_bank, grid, by_area=by_area)
+    curves = bank_report.information_curves(the_bank, grid, by_area=by_area,
+                                            include_pretest=include_pretest)
     if plot_file:
         bank_report.plot_information_curves(curves, plot_file, title=f"Test information: {the_bank.name}")
     if fmt == "json":
