@@ -48,7 +48,7 @@ def run_demo(*, out_dir: str | Path = "demo_output", examinees: int = 1000, seed
     say(f"1. Simulating {examinees} examinees on the Meridian Valley water-operator licensing exam")
     say(f"   design {EXAM_DESIGN}, bank {EXAM_BANK} ({bank.n_items} items), seed {seed}")
     study = run_study(design, bank, abilities=parse_ability_spec("normal:0,1"), n_examinees=examinees,
-                      seed=seed, out_dir=out_dir, exposure_target=0.25,
+                      seed=seed, out_dir=out_dir,
                       title="Demo: Meridian Valley water-operator licensing exam")
     say("")
     say(summary_table(study.summary))

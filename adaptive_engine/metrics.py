@@ -15,6 +15,11 @@ marginal reliability
 chi-square index of exposure (Chang & Ying 1999)
     sum_i (r_i - L/n)^2 / (L/n), with r_i the exposure rate of item i, L the mean test
     length and n the number of items: 0 when every item is used equally.
+share above the target
+    the share of operational items whose exposure rate exceeds a target r_max: the one
+    given with ``--exposure-target``, else :data:`DEFAULT_EXPOSURE_TARGET` (0.25; a
+    design file states no target, not even a Sympson-Hetter one, whose parameters were
+    calibrated for some r_max outside the file).
 test overlap rate (Way 1998; Chen, Ankenmann & Spray 2003)
     the mean, over all pairs of examinees, of the number of items they share divided by
     the mean test length; from the exposure counts m_i it is
@@ -30,6 +35,12 @@ from __future__ import annotations
 import math
 
 import numpy as np
+
+from .errors import AdaptiveEngineError
+
+#: Exposure rate the share of items above it is reported for when no target is given
+#: (a cap often used for operational banks: an item seen by at most one examinee in four).
+DEFAULT_EXPOSURE_TARGET = 0.25
 
 #: Default edges of the ability bins of the conditional table (outer bins are open).
 DEFAULT_BIN_EDGES = tuple(np.round(np.arange(-3.0, 3.01, 0.5), 10))
@@ -107,13 +118,36 @@ def chi_square_index(rates, mean_length: float) -> float:
     return float(np.sum((r - expected) ** 2) / expected) if expected > 0 else math.nan
 
 
+def exposure_target(value: float | None) -> float:
+    """The exposure target to report against: ``value`` checked to lie in (0, 1], or the default.
+
+    Raises
+    ------
+    AdaptiveEngineError
+        Located at ``--exposure-target`` when the value is not a rate in (0, 1].
+    """
+    if value is None:
+        return DEFAULT_EXPOSURE_TARGET
+    try:
+        target = float(value)
+    except (TypeError, ValueError):
+        raise AdaptiveEngineError(f"the exposure target must be a number in (0, 1], got {value!r}",
+                                  "--exposure-target") from None
+    if not (0.0 < target <= 1.0):
+        raise AdaptiveEngineError(f"the exposure target must be a rate in (0, 1], got {value!r}",
+                                  "--exposure-target")
+    return target
+
+
 def exposure(administered, n_examinees: int, *, mean_length: float, target: float | None = None,
              operational=None) -> dict:
     """Exposure summary of the items (rates = times given / examinees).
 
     ``operational`` (bool (n_items,)) restricts the summary to operational items (pretest
-    items are given by design at random and would blur the picture).
+    items are given by design at random and would blur the picture).  ``target`` (None:
+    :data:`DEFAULT_EXPOSURE_TARGET`) is the rate ``share_above_target`` counts against.
     """
+    target = exposure_target(target)
     m = np.asarray(administered, dtype=float)
     if operational is not None:
         m = m[np.asarray(operational, dtype=bool)]
@@ -125,9 +159,8 @@ def exposure(administered, n_examinees: int, *, mean_length: float, target: floa
         "chi_square_index": _f(chi_square_index(rates, mean_length)) if rates.size else None,
         "overlap_rate": _f(overlap_rate(m, n_examinees, mean_length)),
     }
-    if target is not None:
-        out["exposure_target"] = float(target)
-        out["share_above_target"] = _f(np.mean(rates > target)) if rates.size else None
+    out["exposure_target"] = target
+    out["share_above_target"] = _f(np.mean(rates > target)) if rates.size else None
     return out
 
 
@@ -257,6 +290,9 @@ def item_table(item_ids, administered, offered, n_examinees: int) -> list[dict]:
 def summarize(result, *, exposure_target: float | None = None, edges=None) -> dict:
     """All metrics of a :class:`~adaptive_engine.simulation.SimulationResult`.
 
+    ``exposure_target``: the rate ``share_above_target`` counts against (None: the
+    default, :data:`DEFAULT_EXPOSURE_TARGET`).
+
     Returns a JSON-ready dict with the headline figures at the top level (``rmse``,
     ``bias``, ``mean_se``, ``mean_length``, ``max_exposure``, ...) and the detailed
     sections ``length``, ``exposure``, ``classification``, ``content``, ``conditional``.
@@ -279,6 +315,7 @@ def summarize(result, *, exposure_target: float | None = None, edges=None) -> di
         "marginal_reliability": prec["marginal_reliability"],
         "mean_length": length["mean_length"], "max_exposure": expo["max_exposure"],
         "overlap_rate": expo["overlap_rate"], "chi_square_index": expo["chi_square_index"],
+        "exposure_target": expo["exposure_target"], "share_above_target": expo["share_above_target"],
     }
     for c in classes:
         headline[f"accuracy_{c['cut']}"] = c["accuracy"]

@@ -120,7 +120,8 @@ def simulation_report_html(result, summary: dict, *, title: str = "") -> str:
     title = title or f"Simulation of {result.design.source or 'a design'} on {result.bank.name or 'a bank'}"
     headline = [{"figure": k, "value": summary.get(k)} for k in
                 ("examinees", "rmse", "bias", "mae", "mean_se", "se_calibration", "correlation",
-                 "marginal_reliability", "mean_length", "max_exposure", "overlap_rate", "chi_square_index")]
+                 "marginal_reliability", "mean_length", "max_exposure", "overlap_rate", "chi_square_index",
+                  "exposure_target", "share_above_target")]
     length = summary["length"]
     length_rows = [{"figure": k, "value": v} for k, v in length.items() if not isinstance(v, dict)]
     length_rows += [{"figure": k, "value": v} for k, v in length["length_percentiles"].items()]

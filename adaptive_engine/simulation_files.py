@@ -156,6 +156,7 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
     """
     require_design_fits_bank(design, bank)
     true_item_rows(bank, true_bank)
+    exposure_target = metrics.exposure_target(exposure_target)  # checked before any work
     n = n_examinees if n_examinees is not None else (abilities.fixed_count or 1000)
     true_theta = abilities.draw(n, seed)
     staging = None
@@ -210,7 +211,8 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
 def summary_table(summary: dict) -> str:
     """The headline figures as an aligned two-column text table."""
     keys = ["examinees", "rmse", "bias", "mae", "mean_se", "se_calibration", "correlation",
-            "marginal_reliability", "mean_length", "max_exposure", "overlap_rate", "chi_square_index"]
+            "marginal_reliability", "mean_length", "max_exposure", "overlap_rate", "chi_square_index",
+            "exposure_target", "share_above_target"]
     keys += [k for k in summary if k.startswith("accuracy_")]
     lines = []
     for k in keys:

@@ -12,6 +12,7 @@ from scipy import stats
 
 from adaptive_engine import metrics
 from adaptive_engine.design import AreaRule, CutScore
+from adaptive_engine.errors import AdaptiveEngineError
 
 
 def test_precision_against_numpy_and_scipy():
@@ -86,6 +87,18 @@ def test_exposure_summary():
     assert out["max_exposure"] == pytest.approx(0.25)
     assert out["share_never_used"] == pytest.approx(1 / 3)
     assert out["share_above_target"] == pytest.approx(1 / 3)
+    # without a target the documented default 0.25 applies: rates 0.25, 0, 0.125 -> none above
+    out = metrics.exposure(np.array([10, 0, 5, 40]), 40, mean_length=1.375,
+                           operational=np.array([True, True, True, False]))
+    assert out["exposure_target"] == metrics.DEFAULT_EXPOSURE_TARGET == 0.25
+    assert out["share_above_target"] == 0.0
+    assert metrics.exposure(np.array([11, 0, 5]), 40, mean_length=1.0)["share_above_target"] == pytest.approx(1 / 3)
+
+
+@pytest.mark.parametrize("bad", [-1, 0, 1.5, float("nan"), "x"])
+def test_exposure_target_must_be_a_rate(bad):
+    with pytest.raises(AdaptiveEngineError, match="--exposure-target"):
+        metrics.exposure(np.array([1, 2]), 10, mean_length=1.0, target=bad)
 
 
 def test_classification_rates_by_hand():

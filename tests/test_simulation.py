@@ -202,6 +202,23 @@ def test_simulate_cli_writes_every_file(tmp_path):
     items = list(csv.DictReader((out / "items.csv").open()))
     assert max(float(i["exposure_rate"]) for i in items) == pytest.approx(summary["max_exposure"], abs=1e-6)
     assert not [p for p in out.iterdir() if p.name.startswith(".")]  # no staging left
+    assert summary["exposure_target"] == 0.3
+    rates = np.array([float(i["exposure_rate"]) for i in items if i["status"] == "operational"])
+    assert summary["share_above_target"] == pytest.approx(np.mean(rates > 0.3), abs=1e-9)
+
+
+def test_simulate_cli_share_above_default_target(tmp_path):
+    design, bank = _shipped()
+    out = tmp_path / "study"
+    r = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "60", "--out", str(out)])
+    assert r.exit_code == 0, r.output
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["exposure_target"] == 0.25 and summary["share_above_target"] is not None
+    assert "share_above_target" in r.output
+    r = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "60",
+                                  "--out", str(tmp_path / "bad"), "--exposure-target", "-1"])
+    assert r.exit_code == 2 and "--exposure-target" in r.output
+    assert not (tmp_path / "bad").exists()
 
 
 def test_simulate_cli_errors_exit_2_and_write_nothing(tmp_path):

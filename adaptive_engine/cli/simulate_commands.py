@@ -114,7 +114,7 @@ def _perturbation(text):
                    "(SDs, e.g. the parameters' standard errors).")
 @click.option("--workers", type=int, default=1, show_default=True, help="Processes running chunks in parallel.")
 @click.option("--chunk-size", type=int, default=10_000, show_default=True, help="Examinees per kernel batch.")
-@click.option("--exposure-target", type=float, default=None, help="Report the share of items above this exposure rate.")
+@click.option("--exposure-target", type=float, default=None, help="Exposure rate in (0, 1] that share_above_target counts against [default: 0.25].")
 @click.option("--no-administrations", is_flag=True, help="Skip administrations.csv (large runs).")
 @click.option("--json", "as_json", is_flag=True, help="Print summary.json instead of the table.")
 @_progress_option
