@@ -189,31 +189,58 @@ def true_item_rows(bank: ItemBank, true_bank: ItemBank | None) -> np.ndarray:
     return rows
 
 
-def perturbed_bank(bank: ItemBank, *, sd_a: float = 0.0, sd_b: float = 0.0, sd_c: float = 0.0,
-                   sd_thresholds: float = 0.0, seed: int = 0) -> ItemBank:
+def perturbed_bank(bank: ItemBank, *, sd_a=0.0, sd_b=0.0, sd_c=0.0, sd_thresholds=0.0, sd_d=0.0,
+                   seed: int = 0) -> ItemBank:
     """A "true" bank: the bank's parameters plus normal errors of the given SDs.
 
     Use the parameters' standard errors from calibration as SDs to see how calibration
     error carries into the results.  Slopes stay positive (absolute value, at least 0.05),
-    lower asymptotes stay in [0, d), and category thresholds of graded items are re-sorted
-    so that they stay ordered.
+    asymptotes stay ordered (0 <= c < d <= 1), and category thresholds of graded items are
+    re-sorted so that they stay ordered.
+
+    Parameters
+    ----------
+    bank : ItemBank
+    sd_a, sd_b, sd_c, sd_d : float or float array, shape (n_items,)
+        One SD for every item, or each item's own (e.g. its standard errors from
+        :func:`adaptive_engine.simulation_files.read_standard_errors`; 0 leaves the
+        parameter as it is).
+    sd_thresholds : float or float array, shape (n_items, K) with K <= the bank's
+        thresholds width (missing columns: 0)
+    seed : int
     """
-    for name, sd in (("sd_a", sd_a), ("sd_b", sd_b), ("sd_c", sd_c), ("sd_thresholds", sd_thresholds)):
-        if not np.isfinite(sd) or sd < 0:
-            raise SimulationError(f"{name} must be a finite number >= 0, got {sd}", "perturbation")
-    rng = np.random.default_rng(np.random.SeedSequence([int(seed) % (1 << 63), 0xBA4C]))
     n = bank.n_items
+    sds = {}
+    for key, sd in (("a", sd_a), ("b", sd_b), ("c", sd_c), ("thresholds", sd_thresholds), ("d", sd_d)):
+        try:
+            value = np.asarray(sd, dtype=float)
+        except (TypeError, ValueError):
+            raise SimulationError(f"the SD must be a number, got {sd!r}", f"--perturb {key}") from None
+        shape = bank.thresholds.shape if key == "thresholds" else (n,)
+        if key == "thresholds" and value.ndim == 2 and value.shape[0] == n and value.shape[1] <= shape[1]:
+            value = np.pad(value, ((0, 0), (0, shape[1] - value.shape[1])))
+        if value.ndim and value.shape != shape:
+            raise SimulationError(f"expected one SD or an array of shape {shape}, got shape {value.shape}",
+                                  f"--perturb {key}")
+        if not np.all(np.isfinite(value)) or np.any(value < 0):
+            raise SimulationError(f"SDs must be finite numbers >= 0, got {sd!r}" if not value.ndim
+                                  else "SDs must be finite numbers >= 0", f"--perturb {key}")
+        sds[key] = value
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed) % (1 << 63), 0xBA4C]))
     model = np.asarray(bank.model)
     # only free parameters move: a 1PL keeps its common slope, a 2PL its zero asymptote
-    a = np.where(model == "1PL", bank.a, np.maximum(np.abs(bank.a + sd_a * rng.standard_normal(n)), 0.05))
-    b = bank.b + sd_b * rng.standard_normal(n)
-    guessing = np.isin(model, ("3PL", "4PL"))
-    c_new = np.clip(bank.c + sd_c * rng.standard_normal(n), 0.0, bank.d - 1e-3)
-    c = np.where(guessing, c_new, bank.c)
-    th = bank.thresholds + sd_thresholds * rng.standard_normal(bank.thresholds.shape)
-    graded = np.asarray(bank.model) == "GRM"
+    a = np.where(model == "1PL", bank.a, np.maximum(np.abs(bank.a + sds["a"] * rng.standard_normal(n)), 0.05))
+    b = bank.b + sds["b"] * rng.standard_normal(n)
+    z_c = rng.standard_normal(n)
+    th = bank.thresholds + sds["thresholds"] * rng.standard_normal(bank.thresholds.shape)
+    graded = model == "GRM"
     th[graded] = np.sort(th[graded], axis=1)  # NaN padding sorts to the end, where it was
-    return bank.evolve(a=a, b=b, c=c, thresholds=th)
+    # d is drawn last so that the draws of a, b, c and thresholds do not depend on sd_d
+    four = model == "4PL"
+    d = np.where(four, np.clip(bank.d + sds["d"] * rng.standard_normal(n), bank.c + 2e-3, 1.0), bank.d)
+    guessing = np.isin(model, ("3PL", "4PL"))
+    c = np.where(guessing, np.clip(bank.c + sds["c"] * z_c, 0.0, d - 1e-3), bank.c)
+    return bank.evolve(a=a, b=b, c=c, d=d, thresholds=th)
 
 
 # -- one chunk ---------------------------------------------------------------------------

@@ -208,6 +208,101 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
                 shutil.rmtree(out_dir, ignore_errors=True)  # a folder made for a failed run
 
 
+_SE_COLUMNS = {"se_a": "sd_a", "se_b": "sd_b", "se_c": "sd_c", "se_d": "sd_d"}
+
+
+def read_standard_errors(path: str | Path, bank: ItemBank) -> dict:
+    """Per-item standard errors from a calibration fit report, as SDs for perturbation.
+
+    The report is the CSV ``adaptive-engine calibrate --fit-report`` writes (see
+    :func:`adaptive_engine.calibration.item_fit.item_report_rows`): a column ``item_id``
+    and the standard errors ``se_a``, ``se_b``, ``se_c``, ``se_d`` and ``se_b1`` ...
+    ``se_bK`` (category thresholds); other columns are ignored.  An empty cell (a
+    parameter the model does not estimate) and an item of the bank the report does not
+    list leave that parameter unperturbed.
+
+    Returns
+    -------
+    dict
+        Keyword SDs for :func:`adaptive_engine.simulation.perturbed_bank`: ``sd_a``,
+        ``sd_b``, ``sd_c``, ``sd_d`` float (n_items,) and ``sd_thresholds`` float
+        (n_items, K) in bank order.
+
+    Raises
+    ------
+    SimulationError
+        Located at ``FILE line N, item ID, COLUMN`` for items not in the bank, repeated
+        items and standard errors that are not finite numbers >= 0.
+    """
+    from .simulation import SimulationError
+    from .errors import Problem
+
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except FileNotFoundError:
+        raise SimulationError(f"fit report not found: {path}", "--perturb-from") from None
+    except (IsADirectoryError, UnicodeDecodeError) as exc:
+        raise SimulationError(f"cannot read the fit report: {exc}", "--perturb-from") from None
+    reader = csv.reader(text.splitlines())
+    header = [c.strip() for c in next(reader, [])]
+    where = path.name
+    if "item_id" not in header:
+        raise SimulationError("the fit report has no item_id column", f"{where} line 1")
+    thresholds = sorted((int(c[4:]), c) for c in header if c.startswith("se_b") and c[4:].isdigit())
+    if not any(c in header for c in _SE_COLUMNS) and not thresholds:
+        raise SimulationError("the fit report has no standard-error columns (se_a, se_b, se_c, se_d, se_b1, ...)",
+                              f"{where} line 1")
+    k_max = bank.thresholds.shape[1]
+    if thresholds and thresholds[-1][0] > k_max:
+        raise SimulationError(f"column {thresholds[-1][1]} is beyond the bank's {k_max} thresholds",
+                              f"{where} line 1")
+    n = bank.n_items
+    out = {key: np.zeros(n) for key in _SE_COLUMNS.values()}
+    out["sd_thresholds"] = np.zeros((n, k_max))
+    columns = [(header.index(c), c, key, None) for c, key in _SE_COLUMNS.items() if c in header]
+    columns += [(header.index(c), c, "sd_thresholds", k - 1) for k, c in thresholds]
+    id_col = header.index("item_id")
+    problems: list = []
+    seen: dict = {}
+    for line_no, row in enumerate(reader, start=2):
+        if not any(cell.strip() for cell in row):
+            continue
+        iid = row[id_col].strip() if id_col < len(row) else ""
+        row_index = bank.index_of.get(iid)
+        if row_index is None:
+            problems.append(Problem(f"{where} line {line_no}, item {iid or '(empty)'}",
+                                    "the item is not in the operational bank"))
+            continue
+        if iid in seen:
+            problems.append(Problem(f"{where} line {line_no}, item {iid}", f"the item is listed again (first on line {seen[iid]})"))
+            continue
+        seen[iid] = line_no
+        for col, name, key, k in columns:
+            raw = row[col].strip() if col < len(row) else ""
+            if not raw:
+                continue  # not estimated for this item's model
+            try:
+                value = float(raw)
+            except ValueError:
+                value = math.nan
+            if not math.isfinite(value) or value < 0:
+                problems.append(Problem(f"{where} line {line_no}, item {iid}, {name}",
+                                        f"{raw!r} is not a standard error (a finite number >= 0)"))
+                continue
+            if k is None:
+                out[key][row_index] = value
+            else:
+                out[key][row_index, k] = value
+        if len(problems) >= 20:
+            break
+    if problems:
+        raise SimulationError(problems[:20])
+    if not seen:
+        raise SimulationError("the fit report lists no items", f"{where}")
+    return out
+
+
 def summary_table(summary: dict) -> str:
     """The headline figures as an aligned two-column text table."""
     keys = ["examinees", "rmse", "bias", "mae", "mean_se", "se_calibration", "correlation",

@@ -129,6 +129,92 @@ def test_perturbed_bank_keeps_parameters_valid():
         simulation.perturbed_bank(bank, sd_a=-1)
 
 
+def test_perturbed_bank_by_each_items_own_standard_error():
+    # oracle: scipy.stats.kstest -- the b shifts divided by each item's own SD are standard
+    # normal, and items with SD 0 do not move
+    bank = small_bank(n=400, seed=3)
+    sd_b = np.where(np.arange(400) % 4 == 0, 0.0, np.linspace(0.05, 0.6, 400))
+    p = simulation.perturbed_bank(bank, sd_b=sd_b, seed=4)
+    moved = sd_b > 0
+    assert np.array_equal(p.b[~moved], bank.b[~moved]) and np.array_equal(p.a, bank.a)
+    assert stats.kstest((p.b[moved] - bank.b[moved]) / sd_b[moved], "norm").pvalue > 0.001
+    # a scalar SD draws exactly what an array of that SD draws
+    same = simulation.perturbed_bank(bank, sd_b=np.full(400, 0.2), seed=4)
+    assert np.array_equal(same.b, simulation.perturbed_bank(bank, sd_b=0.2, seed=4).b)
+    with pytest.raises(simulation.SimulationError, match="--perturb b"):
+        simulation.perturbed_bank(bank, sd_b=np.full(3, 0.1))
+
+
+def _fit_report(tmp_path, bank, ses, extra_rows=""):
+    """A fit report written by the calibration's own writer (item_fit.item_report_rows)."""
+    from types import SimpleNamespace
+
+    from adaptive_engine.calibration.item_fit import item_report_rows, rows_to_csv
+
+    result = SimpleNamespace(bank=bank, standard_errors=ses,
+                             data=SimpleNamespace(item=np.arange(bank.n_items)))
+    path = tmp_path / "fit_report.csv"
+    path.write_text(rows_to_csv(item_report_rows(result)) + extra_rows)
+    return path
+
+
+def test_read_standard_errors_from_a_fit_report(tmp_path):
+    from adaptive_engine.simulation_files import read_standard_errors
+
+    bank = small_bank(n=6)
+    nan = np.full(6, np.nan)
+    is3 = np.asarray(bank.model) == "3PL"
+    ses = {"a": np.linspace(0.1, 0.2, 6), "b": np.linspace(0.3, 0.5, 6), "c": np.where(is3, 0.04, np.nan),
+           "d": nan, "thresholds": np.zeros((6, 0))}
+    got = read_standard_errors(_fit_report(tmp_path, bank, ses), bank)
+    assert got["sd_a"] == pytest.approx(ses["a"]) and got["sd_b"] == pytest.approx(ses["b"])
+    assert np.array_equal(got["sd_c"], np.where(is3, 0.04, 0.0))  # not estimated: unperturbed
+    assert not got["sd_d"].any()
+    p = simulation.perturbed_bank(bank, seed=1, **got)
+    assert np.array_equal(p.c[~is3], bank.c[~is3]) and not np.array_equal(p.c[is3], bank.c[is3])
+
+
+@pytest.mark.parametrize("extra, where", [
+    ("zz9,2PL,10,1,0.1,0,0.1,,,,", "fit_report.csv line 7, item zz9"),
+    ("t005,3PL,10,1,-0.1,0,0.1,,,,", "fit_report.csv line 7, item t005, se_a"),
+    ("t005,3PL,10,1,abc,0,0.1,,,,", "fit_report.csv line 7, item t005, se_a"),
+    ("t005,3PL,10,1,0.1,0,inf,,,,", "fit_report.csv line 7, item t005, se_b"),
+    ("t001,3PL,10,1,0.1,0,0.1,,,,", "fit_report.csv line 7, item t001"),  # listed twice
+])
+def test_perturb_from_errors_are_located(tmp_path, extra, where):
+    from adaptive_engine.simulation_files import read_standard_errors
+
+    bank = small_bank(n=6)
+    ses = {k: np.full(5, 0.1) for k in "abcd"} | {"thresholds": np.zeros((5, 0))}
+    report = _fit_report(tmp_path, bank.subset(np.arange(5)), ses, extra + "\n")  # lines 2-6: t000-t004
+    with pytest.raises(simulation.SimulationError) as err:
+        read_standard_errors(report, bank)
+    assert where in str(err.value)
+
+
+def test_simulate_cli_perturb_from(tmp_path):
+    from adaptive_engine.bank import load_bank
+
+    design, bank_path = _shipped()
+    bank = load_bank(bank_path)
+    n = bank.n_items
+    ses = {"a": np.full(n, 0.3), "b": np.full(n, 0.4), "c": np.full(n, np.nan), "d": np.full(n, np.nan),
+           "thresholds": np.zeros((n, 0))}
+    report = _fit_report(tmp_path, bank, ses)
+    args = ["simulate", design, "--bank", bank_path, "--examinees", "80", "--seed", "2", "--json"]
+    plain = CliRunner().invoke(main, [*args, "--out", str(tmp_path / "a")])
+    moved = CliRunner().invoke(main, [*args, "--out", str(tmp_path / "b"), "--perturb-from", str(report)])
+    assert plain.exit_code == 0 and moved.exit_code == 0, moved.output
+    assert json.loads(plain.stdout)["rmse"] != json.loads(moved.stdout)["rmse"]
+    bad = tmp_path / "bad.csv"
+    bad.write_text("item_id,se_a\nMV-NOPE,0.1\n")
+    r = CliRunner().invoke(main, [*args, "--out", str(tmp_path / "c"), "--perturb-from", str(bad)])
+    assert r.exit_code == 2 and "bad.csv line 2, item MV-NOPE" in r.output
+    r = CliRunner().invoke(main, [*args, "--out", str(tmp_path / "c"), "--perturb-from", str(report),
+                                  "--perturb", "a=0.1"])
+    assert r.exit_code == 2 and "--perturb-from" in r.output
+
+
 @pytest.mark.parametrize("text, n", [("normal:0,1", None), ("uniform:-2,2", None), ("grid:-2,2,5:3", 15)])
 def test_ability_specs(text, n):
     spec = examinees.parse_ability_spec(text)

@@ -82,12 +82,12 @@ def _perturbation(text):
     from ..simulation import SimulationError
 
     out = {}
-    names = {"a": "sd_a", "b": "sd_b", "c": "sd_c", "thresholds": "sd_thresholds"}
+    names = {"a": "sd_a", "b": "sd_b", "c": "sd_c", "d": "sd_d", "thresholds": "sd_thresholds"}
     for part in text.split(","):
         key, sep, value = part.partition("=")
         key = key.strip()
         if not sep or key not in names:
-            raise SimulationError(f"expected NAME=SD with NAME one of a, b, c, thresholds; got {part!r}",
+            raise SimulationError(f"expected NAME=SD with NAME one of a, b, c, d, thresholds; got {part!r}",
                                   "--perturb")
         try:
             out[names[key]] = float(value)
@@ -111,7 +111,10 @@ def _perturbation(text):
               help="Bank the answers are drawn from (same item ids), to show the effect of calibration error.")
 @click.option("--perturb", default=None,
               help="Draw answers from the bank with normal errors added, e.g. a=0.1,b=0.15,c=0.03 "
-                   "(SDs, e.g. the parameters' standard errors).")
+                   "(SDs of a, b, c, d, thresholds; e.g. typical standard errors of the calibration).")
+@click.option("--perturb-from", "perturb_from", type=_FILE, default=None, metavar="FIT_REPORT",
+              help="Draw answers from the bank with each item's parameters perturbed by its own standard errors, "
+                   "read from the CSV that calibrate --fit-report writes (se_a, se_b, se_c, se_d, se_b1, ...).")
 @click.option("--workers", type=int, default=1, show_default=True, help="Processes running chunks in parallel.")
 @click.option("--chunk-size", type=int, default=10_000, show_default=True, help="Examinees per kernel batch.")
 @click.option("--exposure-target", type=float, default=None, help="Exposure rate in (0, 1] that share_above_target counts against [default: 0.25].")
@@ -120,15 +123,20 @@ def _perturbation(text):
 @_progress_option
 @report_errors
 def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_spec, true_bank_file, perturb,
-                     workers, chunk_size, exposure_target, no_administrations, as_json, show_progress):
+                     perturb_from, workers, chunk_size, exposure_target, no_administrations, as_json, show_progress):
     """Simulate DESIGN for many examinees and write the study's files into --out."""
     from ..examinees import parse_ability_spec
-    from ..simulation import perturbed_bank
-    from ..simulation_files import run_study, summary_table
+    from ..simulation import SimulationError, perturbed_bank
+    from ..simulation_files import read_standard_errors, run_study, summary_table
 
+    if perturb and perturb_from:
+        raise SimulationError("give --perturb or --perturb-from, not both", "--perturb-from")
     design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
     if perturb:
         true_bank = perturbed_bank(true_bank or bank, seed=seed, **_perturbation(perturb))
+    elif perturb_from:
+        base = true_bank or bank
+        true_bank = perturbed_bank(base, seed=seed, **read_standard_errors(perturb_from, base))
     progress = _Progress("simulating", enabled=show_progress)
     try:
         study = run_study(design, bank, abilities=parse_ability_spec(theta_spec), n_examinees=n_examinees,
