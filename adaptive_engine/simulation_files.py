@@ -2,7 +2,9 @@
 
 :func:`run_study` is what ``adaptive-engine simulate`` calls.  Files are written into a
 hidden staging folder inside the output folder and moved into place only when the whole
-run succeeded, so a failed run leaves nothing half-written.
+run succeeded, so a failed run leaves nothing half-written; a file of :data:`FILES` that
+an earlier run left in the folder and this run did not write is removed then, so the
+folder never mixes two runs.
 
 Files
 -----
@@ -197,6 +199,10 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
             for name in FILES:
                 if (staging / name).exists():
                     os.replace(staging / name, out_dir / name)
+                else:
+                    # a file of an earlier run that this run did not write (e.g. its
+                    # administrations.csv after --no-administrations) would not match the others
+                    (out_dir / name).unlink(missing_ok=True)
         finished = True
         return Study(result=result, summary=summary, conditional=conditional, out_dir=out_dir)
     finally:

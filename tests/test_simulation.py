@@ -293,6 +293,24 @@ def test_simulate_cli_writes_every_file(tmp_path):
     assert summary["share_above_target"] == pytest.approx(np.mean(rates > 0.3), abs=1e-9)
 
 
+def test_rerun_into_the_same_folder_leaves_no_stale_files(tmp_path):
+    design, bank = _shipped()
+    out = tmp_path / "study"
+    args = ["simulate", design, "--bank", bank, "--out", str(out)]
+    assert CliRunner().invoke(main, [*args, "--examinees", "30"]).exit_code == 0
+    assert (out / "administrations.csv").exists()
+    (out / "notes.txt").write_text("kept")  # not a file of the study: left alone
+    r = CliRunner().invoke(main, [*args, "--examinees", "20", "--no-administrations"])
+    assert r.exit_code == 0, r.output
+    assert not (out / "administrations.csv").exists()
+    assert len(list(csv.DictReader((out / "examinees.csv").open()))) == 20
+    assert (out / "notes.txt").read_text() == "kept"
+    # a failed rerun leaves the earlier study as it was
+    before = (out / "summary.json").read_text()
+    r = CliRunner().invoke(main, [*args, "--examinees", "20", "--perturb", "a=-1"])
+    assert r.exit_code == 2 and (out / "summary.json").read_text() == before
+
+
 def test_simulate_cli_share_above_default_target(tmp_path):
     design, bank = _shipped()
     out = tmp_path / "study"
