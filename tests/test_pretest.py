@@ -15,8 +15,8 @@ import json
 import numpy as np
 import pytest
 import sqlite_utils
-from scipy.special import expit
 
+from adaptive_engine import models
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.bank_io import bank_to_json_text
 from adaptive_engine.calibration.pretest import PromotionRules, calibrate_pretest
@@ -35,7 +35,20 @@ def _bank(rng):
     return bank_from_records(records)
 
 
-def _store(path, bank, rng, *, n_sessions=2500, bank_id="bank-main", rare=None):
+def _truth(bank, values):
+    """The generating bank: ``bank`` with the pretest items' true (a, b) put in."""
+    a, b = bank.a.copy(), bank.b.copy()
+    for iid, (ta, tb) in values.items():
+        a[bank.index_of[iid]], b[bank.index_of[iid]] = ta, tb
+    return bank.evolve(a=a, b=b)
+
+
+def _store(path, bank, rng, *, n_sessions=2500, bank_id="bank-main", rare=None, truth=None, n_given=15):
+    """A session store of ``bank`` with simulated answers drawn from ``truth`` (default: the
+    2PL PRETEST values); each session takes ``n_given`` operational and 2 pretest items."""
+    truth = _truth(bank, PRETEST) if truth is None else truth
+    operational = [str(i) for i, s in zip(bank.item_ids, bank.status) if s == "operational"]
+    pretest_ids = [str(i) for i, s in zip(bank.item_ids, bank.status) if s == "pretest"]
     db = sqlite_utils.Database(path)
     db["banks"].create({"bank_id": str, "name": str, "content": str}, pk="bank_id")
     db["sessions"].create({"session_id": str, "examinee": str, "bank_id": str, "design_id": str,
@@ -54,21 +67,22 @@ def _store(path, bank, rng, *, n_sessions=2500, bank_id="bank-main", rare=None):
         sessions.append(dict(session_id=sid, examinee=f"e{s}", bank_id=bank_id, design_id="d",
                              status="finished", seed=s, created_at="", updated_at="", state="{}",
                              result="{}"))
-        ops = rng.choice(N_OPERATIONAL, 15, replace=False)
-        pre = list(rng.choice(list(PRETEST), 2, replace=False))
+        ops = list(rng.choice(operational, n_given, replace=False))
+        pre = list(rng.choice(pretest_ids, 2, replace=False))
         if rare and s >= 40:
             pre = [p for p in pre if p != rare]
+        given = ops + pre
+        rows = truth.indices(given)
+        probs = models.probabilities(truth.params.take(rows), np.full(len(given), theta[s]))
+        answers = (rng.random((len(given), 1)) > np.cumsum(probs, axis=1)).sum(axis=1)
         seq = 0
-        for item in [f"op{j:02d}" for j in ops] + pre:
-            j = bank.index_of[item]
-            a, b = (bank.a[j], bank.b[j]) if item.startswith("op") else PRETEST[item]
-            x = int(rng.random() < expit(a * (theta[s] - b)))
+        for item, x in zip(given, answers):
             for kind in ("item_given", "answer"):
                 event_id += 1
                 seq += 1
                 events.append(dict(event_id=event_id, session_id=sid, seq=seq, kind=kind, item_id=item,
-                                   response=x if kind == "answer" else None,
-                                   scored=int(item.startswith("op")), theta=None, se=None, criterion=None,
+                                   response=int(x) if kind == "answer" else None,
+                                   scored=int(item in operational), theta=None, se=None, criterion=None,
                                    eligible=None, rng_state=json.dumps({"key": 1, "position": seq}),
                                    elapsed=1.0, created_at=""))
     db["sessions"].insert_all(sessions)
@@ -148,3 +162,51 @@ def test_pretest_cli(tmp_path):
     assert res.exit_code == 2 and "--bank-id: no bank with id 'x'" in res.output
     res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--out", str(tmp_path / "y.json")])
     assert res.exit_code == 2 and not (tmp_path / "y.json").exists()
+
+
+def test_rasch_pretest_items_keep_the_operational_slope(tmp_path):
+    # Fixed-parameter calibration (Kim 2006): in a Rasch bank the one common slope is part of
+    # the scale, so pretest 1PL items must be held at the operational value (0.8 here), not
+    # given a new slope estimated from the pretest answers alone.  The bank's placeholder
+    # slope of the pretest items (1.0) must not be used either.
+    rng = np.random.default_rng(44)
+    records = [dict(item_id=f"op{j:02d}", model="1PL", a=0.8, b=float(b))
+               for j, b in enumerate(np.linspace(-2, 2, 24))]
+    true_b = {"r1": -0.6, "r2": 0.2, "r3": 0.9}
+    records += [dict(item_id=iid, model="1PL", a=1.0, b=0.0, status="pretest") for iid in true_b]
+    bank = bank_from_records(records)
+    truth = _truth(bank, {iid: (0.8, b) for iid, b in true_b.items()})
+    path = _store(tmp_path / "store.db", bank, rng, n_sessions=900, truth=truth, n_given=12)
+    result = calibrate_pretest(path, bank_id="bank-main", rules=PromotionRules(min_answers=100, max_se=0.3))
+    rows = {r["item_id"]: r for r in result.rows}
+    assert result.summary["held_slopes"] == {"1PL": 0.8}
+    np.testing.assert_array_equal(result.bank.a, 0.8)
+    for iid, b in true_b.items():
+        assert rows[iid]["a"] == 0.8
+        assert rows[iid]["b"] == pytest.approx(b, abs=0.2), rows[iid]
+        assert rows[iid]["parameters"] == 1
+
+
+def test_partial_credit_pretest_items_keep_the_operational_slope(tmp_path):
+    # PCM bank: GPCM items that all share one slope (0.9).  Pretest GPCM items keep it; only
+    # their step parameters are estimated (Muraki 1992 GPCM with a fixed common slope).
+    rng = np.random.default_rng(45)
+    records = [dict(item_id=f"op{j:02d}", model="GPCM", a=0.9,
+                    thresholds=[float(c - 0.8), float(c), float(c + 0.8)])
+               for j, c in enumerate(np.linspace(-1.5, 1.5, 16))]
+    true_steps = {"p1": [-1.0, 0.0, 0.7], "p2": [-0.4, 0.5, 1.2]}
+    records += [dict(item_id=iid, model="GPCM", a=1.3, thresholds=[-1.0, 0.0, 1.0], status="pretest")
+                for iid in true_steps]
+    bank = bank_from_records(records)
+    thresholds = bank.thresholds.copy()
+    for iid, steps in true_steps.items():
+        thresholds[bank.index_of[iid]] = steps
+    truth = bank.evolve(a=np.full(len(bank), 0.9), thresholds=thresholds)
+    path = _store(tmp_path / "store.db", bank, rng, n_sessions=700, truth=truth, n_given=8)
+    result = calibrate_pretest(path, bank_id="bank-main", rules=PromotionRules(min_answers=100, max_se=0.5))
+    assert result.summary["held_slopes"] == {"GPCM": 0.9}
+    np.testing.assert_array_equal(result.bank.a, 0.9)
+    for iid, steps in true_steps.items():
+        row = result.bank.index_of[iid]
+        np.testing.assert_allclose(result.bank.thresholds[row], steps, atol=0.3)
+        assert {r["item_id"]: r for r in result.rows}[iid]["parameters"] == 3

@@ -198,6 +198,7 @@ def calibrate_data(
     person_log_prior: np.ndarray | None = None,
     grid: np.ndarray | None = None,
     start: dict | None = None,
+    fixed_slopes: dict | None = None,
     name: str = "calibrated",
 ) -> CalibrationResult:
     """Run the EM cycles on prepared data.
@@ -213,6 +214,10 @@ def calibrate_data(
         Required with ``person_log_prior``.
     start : dict, optional
         Starting values ``a, b, c, d`` (n,) and ``thresholds`` (n, K).
+    fixed_slopes : dict model name -> float, optional
+        Items of these models keep this slope instead of estimating one (fixed-parameter
+        calibration of Rasch-like pretest items: their slope is the operational items'
+        common value, not a new one estimated from the pretest answers alone).
     """
     settings = settings or CalibrationSettings()
     began = time.perf_counter()
@@ -223,8 +228,17 @@ def calibrate_data(
             raise CalibrationError("a grid is needed with person priors", location="calibrate")
         log_prior = person_log_prior - logsumexp(person_log_prior, axis=1, keepdims=True)
     groups = _make_groups(data)
-    shared = [settings.common_slope or g.model == "1PL" for g in groups]
+    fixed_slopes = dict(fixed_slopes or {})
+    held = [g.model in fixed_slopes for g in groups]
+    shared = [(settings.common_slope or g.model == "1PL") and not h for g, h in zip(groups, held)]
     etas = _starting_values(data, groups, settings.scaling, start, settings)
+    for g, e, h in zip(groups, etas, held):
+        if h:
+            value = float(fixed_slopes[g.model])
+            if not (math.isfinite(value) and value > 0):
+                raise CalibrationError(f"a fixed slope must be positive, got {value}",
+                                       location=f"{g.model} items")
+            e[:, 0] = math.log(value)
     if any(shared):
         u = float(np.mean(np.concatenate([e[:, 0] for e, s in zip(etas, shared) if s])))
         for e, s in zip(etas, shared):
@@ -239,15 +253,16 @@ def calibrate_data(
         r_all, ll, _ = _e_step(answers, _log_table(data, groups, current, grid, settings.scaling),
                                log_prior, data.n_items, c_max)
         history.append(ll)
-        objective = ll + _log_prior_total(groups, current, shared, settings)
-        return _m_step(groups, current, shared, r_all, grid, settings), objective
+        objective = ll + _log_prior_total(groups, current, shared, held, settings)
+        return _m_step(groups, current, shared, held, r_all, grid, settings), objective
 
     etas, iteration, converged, change = _accelerated_cycles(
         cycle, etas, groups, lambda e: _natural(data, groups, e), settings)
     log_table = _log_table(data, groups, etas, grid, settings.scaling)
     _, loglik, posterior = _e_step(answers, log_table, log_prior, data.n_items, c_max)
     history.append(loglik)
-    ses, n_params, log_prior_total = _standard_errors(data, groups, etas, shared, posterior, grid, settings)
+    ses, n_params, log_prior_total = _standard_errors(data, groups, etas, shared, held, posterior, grid,
+                                                      settings)
     eap = posterior @ grid
     sd = np.sqrt(np.maximum(posterior @ (grid**2) - eap**2, 0.0))
     bank = _make_bank(data, _natural(data, groups, etas), settings.scaling, name)
@@ -363,10 +378,10 @@ def _accelerated_cycles(cycle, etas, groups, natural_of, settings):
     return x0, cycles, False, change
 
 
-def _log_prior_total(groups, etas, shared, settings) -> float:
+def _log_prior_total(groups, etas, shared, held, settings) -> float:
     total = 0.0
-    for g, eta, s in zip(groups, etas, shared):
-        for col, prior in _column_priors(g, settings.priors, g.free_columns(s)).items():
+    for g, eta, s, h in zip(groups, etas, shared, held):
+        for col, prior in _column_priors(g, settings.priors, g.free_columns(s or h)).items():
             total += float(prior.terms(eta[:, col])[0].sum())
     if any(shared):
         prior = _shared_slope_prior(groups, shared, settings)
@@ -460,10 +475,10 @@ def _e_step(answers, log_table, log_prior, n_items, c_max):
     return counts, loglik, w
 
 
-def _m_step(groups, etas, shared, r_all, grid, settings):
+def _m_step(groups, etas, shared, held, r_all, grid, settings):
     new = []
-    for g, eta, s in zip(groups, etas, shared):
-        cols = g.free_columns(s)
+    for g, eta, s, h in zip(groups, etas, shared, held):
+        cols = g.free_columns(s or h)
         r = r_all[g.rows, :, : (2 if g.family == models.DICHOTOMOUS else g.n_categories)]
         new.append(fisher_steps(g, eta, r, grid, settings.scaling, cols,
                                 _column_priors(g, settings.priors, cols)))
@@ -545,7 +560,7 @@ def _answer_scores(data, group, eta, posterior, grid, scaling, cols):
     return which, out
 
 
-def _standard_errors(data, groups, etas, shared, posterior, grid, settings):
+def _standard_errors(data, groups, etas, shared, held, posterior, grid, settings):
     """SEs in the natural parameters, number of free parameters, total log prior."""
     n = data.n_items
     k = max((g.n_categories - 1 for g in groups if g.family != models.DICHOTOMOUS), default=0)
@@ -557,8 +572,8 @@ def _standard_errors(data, groups, etas, shared, posterior, grid, settings):
     scores = []
     neg_prior_hess = {}
     log_prior_total = 0.0
-    for g, eta, s in zip(groups, etas, shared):
-        own = g.free_columns(s)
+    for g, eta, s, h in zip(groups, etas, shared, held):
+        own = g.free_columns(s or h)
         cols = np.concatenate([[0], own]) if s else own
         which, sc = _answer_scores(data, g, eta, posterior, grid, settings.scaling, cols)
         numbers = np.zeros((g.rows.size, cols.size), dtype=np.int64)

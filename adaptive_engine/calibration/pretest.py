@@ -274,6 +274,7 @@ def calibrate_pretest(
         for i, r in enumerate(pre_rows_all)
     ])
     est_rows = pre_rows_all[estimable]
+    held_slopes = operational_common_slopes(bank, set(map(str, bank.model[pre_rows_all])))
     sub = bank.subset(est_rows) if est_rows.size else None
     result = None
     if est_rows.size:
@@ -285,16 +286,20 @@ def calibrate_pretest(
             item=np.searchsorted(est_rows, rows[keep]), response=answers.response[keep], template=sub,
         )
         start = dict(a=sub.a, b=sub.b, c=sub.c, d=sub.d, thresholds=sub.thresholds)
+        held = {m: v for m, v in held_slopes.items() if m in set(map(str, sub.model))}
         result = calibrate_data(data, settings=settings, person_log_prior=log_post[persons], grid=grid,
-                                start=start, name=bank.name)
+                                start=start, fixed_slopes=held, name=bank.name)
         weights = np.exp(log_post[persons])
         stat, df, p = grouped_posterior_fit(result.bank, data.item, data.person, data.response, weights, grid,
+                                            n_parameters=_estimated_parameters(sub, held_slopes),
                                             posterior_includes_item=False)
-    out_bank, report = _report(bank, pre_rows_all, estimable, counts, result, (stat, df, p) if result else None, rules)
+    out_bank, report = _report(bank, pre_rows_all, estimable, counts, result, (stat, df, p) if result else None,
+                               rules, held_slopes)
     summary = dict(bank_id=bank_id, sessions=int(answers.session_ids.size),
                    operational_answers=int(np.sum(answers.scored == 1)), pretest_answers=int(pre.size),
                    pretest_items=int(pre_rows_all.size), ready=int(sum(r["ready"] for r in report)),
-                   population_mean=pop_mean, population_sd=pop_sd,
+                   population_mean=pop_mean, population_sd=pop_sd, scaling=float(bank.scaling),
+                   held_slopes={m: float(v) for m, v in held_slopes.items()},
                    rules=attrs.asdict(rules),
                    calibration=None if result is None else dict(
                        iterations=result.iterations, converged=result.converged,
@@ -302,11 +307,43 @@ def calibrate_pretest(
     return PretestResult(bank=out_bank, rows=report, sessions=int(answers.session_ids.size), summary=summary)
 
 
-def _report(bank, pre_rows, estimable, counts, result, fit, rules):
+def operational_common_slopes(bank: ItemBank, pretest_models) -> dict:
+    """Slope each pretest model is held at: the operational items' common value.
+
+    A Rasch-like bank (1PL items, or items of any model that all share one slope, as a
+    common-slope or PCM calibration writes them) defines its unit through that one slope.
+    A pretest item must keep it -- estimating a new shared slope from the pretest answers
+    alone would put the new items on a different unit.  1PL items are always held (at the
+    median of the operational 1PL slopes); other models only when every operational item of
+    the model has the same slope (at least two of them).
+
+    Returns
+    -------
+    dict model name -> slope
+    """
+    operational = np.asarray(bank.status) != "pretest"
+    held = {}
+    for model in sorted(pretest_models):
+        slopes = bank.a[operational & (bank.model == model)]
+        if model == "1PL" and slopes.size:
+            held[model] = float(np.median(slopes))
+        elif slopes.size >= 2 and np.ptp(slopes) <= 1e-9 * float(np.max(slopes)):
+            held[model] = float(slopes[0])
+    return held
+
+
+def _estimated_parameters(bank: ItemBank, held_slopes: dict) -> np.ndarray:
+    """Parameters estimated per item, shape (n,): one fewer where the slope is held."""
+    n_params = parameters_per_item(bank)
+    held = np.array([m in held_slopes and m != "1PL" for m in bank.model], dtype=bool)
+    return n_params - held.astype(np.int64)
+
+
+def _report(bank, pre_rows, estimable, counts, result, fit, rules, held_slopes):
     est_pos = {int(r): i for i, r in enumerate(pre_rows[estimable])}
     a, b, c, d = bank.a.copy(), bank.b.copy(), bank.c.copy(), bank.d.copy()
     thr = bank.thresholds.copy()
-    n_params = parameters_per_item(bank)
+    n_params = _estimated_parameters(bank, held_slopes)
     rows = []
     for i, r in enumerate(pre_rows):
         r = int(r)
