@@ -210,3 +210,22 @@ def test_partial_credit_pretest_items_keep_the_operational_slope(tmp_path):
         row = result.bank.index_of[iid]
         np.testing.assert_allclose(result.bank.thresholds[row], steps, atol=0.3)
         assert {r["item_id"]: r for r in result.rows}[iid]["parameters"] == 3
+
+
+def test_pretest_slopes_in_the_units_of_a_normal_metric_bank(tmp_path):
+    # A bank on the normal-ogive metric (D = 1.702; Haley 1952 / Camilli 1994): answers are
+    # generated with P = expit(1.702 a (theta - b)), so the pretest slopes must come back in
+    # the bank's units (true a), not 1.702 times larger, and the bank written keeps D.
+    rng = np.random.default_rng(46)
+    records = [dict(item_id=f"op{j:02d}", model="2PL", a=float(rng.uniform(0.5, 1.2)),
+                    b=float(rng.uniform(-2, 2))) for j in range(N_OPERATIONAL)]
+    true = {"n1": (0.7, -0.5), "n2": (0.55, 0.4), "n3": (0.95, 0.9)}
+    records += [dict(item_id=iid, model="2PL", a=1.0, b=0.0, status="pretest") for iid in true]
+    bank = bank_from_records(records, scaling=1.702)
+    path = _store(tmp_path / "store.db", bank, rng, n_sessions=1500, truth=_truth(bank, true))
+    result = calibrate_pretest(path, bank_id="bank-main")
+    assert result.bank.scaling == 1.702 and result.summary["scaling"] == 1.702
+    rows = {r["item_id"]: r for r in result.rows}
+    for iid, (a, b) in true.items():
+        assert rows[iid]["a"] == pytest.approx(a, rel=0.25), rows[iid]
+        assert rows[iid]["b"] == pytest.approx(b, abs=0.25), rows[iid]

@@ -245,6 +245,9 @@ def calibrate_pretest(
         bank_id = find_bank_id(store_path, bank)
     if bank is None:
         bank = load_store_bank(store_path, bank_id)
+    # the new items must be in the bank's own units: the operational posteriors use its D,
+    # so the pretest M-step must too (else the slopes come out D times too large)
+    settings = attrs.evolve(settings, scaling=bank.scaling)
     answers = read_store_answers(store_path, bank_id)
     lookup = bank.index_of
     rows = np.array([lookup.get(i, -1) for i in answers.item_id], dtype=np.int64)
