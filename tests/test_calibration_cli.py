@@ -117,3 +117,27 @@ def test_every_command_has_help():
         lines = [ln for ln in res.output.splitlines() if ln.strip()]
         assert len(lines) > 2 and not lines[1].startswith("Options")
 
+
+
+def test_output_in_a_missing_folder_is_refused_before_any_work(tmp_path):
+    # The message names the option and the folder, never a temporary file name, and comes
+    # before the (possibly long) calibration: the response file here is not even read.
+    runner = CliRunner()
+    missing = tmp_path / "no_such_file.csv"
+    res = runner.invoke(main, ["calibrate", str(missing), "--model", "2PL", "--out", str(tmp_path / "nodir" / "x.csv")])
+    assert res.exit_code == 2
+    assert f"--out {tmp_path / 'nodir' / 'x.csv'}: the folder '{tmp_path / 'nodir'}' does not exist" in res.output
+    assert ".partial" not in res.output and "no such file" not in res.output
+    answers = tmp_path / "answers.csv"
+    answers.write_text("person_id,item_id,response\n" + "".join(f"p{i},MV-1,{i % 2}\np{i},MV-2,{i // 2 % 2}\n"
+                                                                 for i in range(30)))
+    res = runner.invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(tmp_path / "b.csv"),
+                               "--fit-report", str(tmp_path / "gone" / "fit.csv")])
+    assert res.exit_code == 2 and f"--fit-report {tmp_path / 'gone' / 'fit.csv'}: " in res.output
+    assert f"the folder '{tmp_path / 'gone'}' does not exist" in res.output
+    assert not (tmp_path / "b.csv").exists()
+    res = runner.invoke(main, ["link", str(answers), "--to", str(answers), "--out", str(tmp_path / "nodir" / "l.json")])
+    assert res.exit_code == 2 and "does not exist" in res.output
+    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(tmp_path / "x.db"), "--bank-id", "b",
+                               "--out", str(tmp_path / "p.json"), "--report", str(tmp_path / "nodir" / "r.csv")])
+    assert res.exit_code == 2 and "--report" in res.output and "does not exist" in res.output

@@ -22,12 +22,25 @@ from .pretest import PromotionRules, calibrate_pretest
 _BANK_SUFFIXES = (".csv", ".json", ".db", ".sqlite", ".sqlite3")
 
 
+def _check_folder(path, option: str) -> Path:
+    """Refuse an output whose folder is missing -- before any work is done, and naming the
+    folder (a late failure would name the temporary file the writer uses instead)."""
+    path = Path(path)
+    folder = path.parent
+    if not folder.is_dir():
+        what = "is not a folder" if folder.exists() else "does not exist"
+        raise CalibrationError(f"the folder {str(folder)!r} {what}; create it first", location=f"{option} {path}")
+    if path.is_dir():
+        raise CalibrationError("is a folder, not a file name", location=f"{option} {path}")
+    return path
+
+
 def _check_bank_target(path, option: str) -> Path:
     path = Path(path)
     if path.suffix.lower() not in _BANK_SUFFIXES:
         raise CalibrationError(f"unknown bank file type {path.suffix!r} (use .csv, .json or .db)",
                                location=f"{option} {path}")
-    return path
+    return _check_folder(path, option)
 
 
 def _write_text_atomic(path: Path, text: str) -> None:
@@ -43,11 +56,9 @@ def _write_text_atomic(path: Path, text: str) -> None:
         raise
 
 
-def _write_outputs(bank, bank_path: Path, reports: dict[Path, str]) -> None:
-    for path in reports:
-        if not path.resolve().parent.is_dir():
-            raise CalibrationError("the folder does not exist", location=str(path))
-    write_bank(bank, bank_path)
+def _write_outputs(bank, bank_path: Path | None, reports: dict[Path, str]) -> None:
+    if bank_path is not None:
+        write_bank(bank, bank_path)
     for path, text in reports.items():
         _write_text_atomic(path, text)
 
@@ -69,6 +80,8 @@ def calibrate_file(
         The calibration summary, with fit counts and the files written.
     """
     out = _check_bank_target(out, "--out")
+    if fit_report:
+        fit_report = _check_folder(fit_report, "--fit-report")
     settings = settings or CalibrationSettings()
     table = read_responses(responses_path)
     template = load_bank(template_path, scaling=settings.scaling) if template_path else None
@@ -104,6 +117,8 @@ def pretest_files(db_path, *, out, bank_id=None, bank_path=None, rules: Promotio
                   settings: CalibrationSettings | None = None, report=None) -> dict:
     """Calibrate the pretest items of a session store; write them as a bank (and a report)."""
     out = _check_bank_target(out, "--out")
+    if report:
+        report = _check_folder(report, "--report")
     bank = load_bank(bank_path) if bank_path else None
     result = calibrate_pretest(db_path, bank_id=bank_id, bank=bank, rules=rules, settings=settings)
     reports = {}
