@@ -10,8 +10,20 @@ bias, RMSE, MAE
 SE calibration
     RMSE / mean SE: near 1 when the reported standard errors are honest.
 marginal reliability
-    var(est) / (var(est) + mean(SE^2)), the share of the estimates' variance that is
-    not error variance (for EAP, Bock & Mislevy 1982).
+    by the final scoring method, because the two kinds of estimate relate differently to
+    the truth:
+
+    * EAP/MAP (shrunken estimates): var(est) / (var(est) + mean(SE^2)).  The posterior
+      variance is what the estimate leaves unexplained, var(theta) = var(EAP) + E[PSD^2]
+      (law of total variance; Bock & Mislevy 1982 for the posterior SD as the EAP's
+      standard error), so this is var(EAP) / var(theta).
+    * MLE/WLE (estimate = truth + error): 1 - mean(SE^2) / var(est), the classical
+      1 - error variance / observed variance (Lord & Novick 1968); the marginal form for
+      adaptive tests as in Green, Bock, Humphreys, Linn & Reckase (1984) (attribution from
+      memory).
+
+    Both estimate the squared correlation of estimate and true ability when the SEs are
+    honest (the reference tests check that against simulated truths).
 chi-square index of exposure (Chang & Ying 1999)
     sum_i (r_i - L/n)^2 / (L/n), with r_i the exposure rate of item i, L the mean test
     length and n the number of items: 0 when every item is used equally.
@@ -51,10 +63,39 @@ def _f(x) -> float | None:
     return x if math.isfinite(x) else None
 
 
-def precision(true_theta, theta, se) -> dict:
+#: Final scoring methods whose estimates are truth + error (the others shrink to the prior).
+_ERROR_MODEL_METHODS = ("mle", "wle")
+
+
+def marginal_reliability(theta, se, *, method: str | None = "eap") -> float:
+    """Marginal reliability of final estimates (see the module notes), NaN when undefined.
+
+    Parameters
+    ----------
+    theta, se : float (N,)
+        Finite estimates and their standard errors (non-finite SEs are left out).
+    method : str
+        The final scoring method: ``mle``/``wle`` use 1 - mean(SE^2) / var(est), the
+        others (``eap``, ``map``; None) var(est) / (var(est) + mean(SE^2)).
+    """
+    e = np.asarray(theta, dtype=float)
+    s = np.asarray(se, dtype=float)
+    s = s[np.isfinite(s)]
+    if e.size < 2 or s.size == 0:
+        return math.nan
+    var_e = float(e.var())
+    err_var = float(np.mean(s**2))
+    if (method or "").lower() in _ERROR_MODEL_METHODS:
+        return 1.0 - err_var / var_e if var_e > 0 else math.nan
+    return var_e / (var_e + err_var) if var_e + err_var > 0 else math.nan
+
+
+def precision(true_theta, theta, se, *, method: str | None = "eap") -> dict:
     """Bias, RMSE, MAE, mean SE, SE calibration, correlation and marginal reliability.
 
     Examinees without a finite estimate are left out (their count is ``n_no_estimate``).
+    ``method`` is the final scoring method (it picks the form of the marginal reliability,
+    :func:`marginal_reliability`).
     """
     true_theta = np.asarray(true_theta, dtype=float)
     theta = np.asarray(theta, dtype=float)
@@ -70,13 +111,11 @@ def precision(true_theta, theta, se) -> dict:
     s_ok = s[np.isfinite(s)]
     mean_se = float(s_ok.mean()) if s_ok.size else math.nan
     corr = float(np.corrcoef(t, e)[0, 1]) if t.size > 1 and t.std() > 0 and e.std() > 0 else math.nan
-    var_e = float(e.var()) if e.size > 1 else math.nan
-    err_var = float(np.mean(s_ok**2)) if s_ok.size else math.nan
     out.update(
         bias=_f(err.mean()), rmse=_f(rmse), mae=_f(np.abs(err).mean()), mean_se=_f(mean_se),
         se_calibration=_f(rmse / mean_se) if mean_se > 0 else None,
         correlation=_f(corr),
-        marginal_reliability=_f(var_e / (var_e + err_var)) if var_e + err_var > 0 else None,
+        marginal_reliability=_f(marginal_reliability(e, s, method=method)),
     )
     return out
 
@@ -300,7 +339,7 @@ def summarize(result, *, exposure_target: float | None = None, edges=None) -> di
     design = result.design
     bank = result.bank
     n = result.size
-    prec = precision(result.true_theta, result.theta, result.se)
+    prec = precision(result.true_theta, result.theta, result.se, method=design.final_method)
     length = length_summary(result.n_scored, result.stop_reason, max_items=design.stopping.max_items)
     expo = exposure(result.administered, n, mean_length=length["mean_length"] or 0.0,
                     target=exposure_target, operational=np.asarray(bank.status) == "operational")

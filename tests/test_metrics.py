@@ -28,7 +28,44 @@ def test_precision_against_numpy_and_scipy():
     # oracle: scipy.stats.pearsonr
     assert p["correlation"] == pytest.approx(stats.pearsonr(true, est)[0])
     assert p["se_calibration"] == pytest.approx(p["rmse"] / 0.3)
-    assert p["marginal_reliability"] == pytest.approx(est.var() / (est.var() + 0.09))
+
+
+def test_marginal_reliability_of_posterior_means_is_the_squared_correlation():
+    # Reference: the normal-normal model with known error variance (e.g. Gelman et al.,
+    # Bayesian Data Analysis, sec. 2.5): theta ~ N(0, 1), x = theta + N(0, s2) gives the
+    # posterior mean x / (1 + s2) and posterior variance s2 / (1 + s2).  By the law of total
+    # variance var(EAP) / (var(EAP) + E[posterior variance]) = var(EAP) / var(theta), which is
+    # the squared correlation of EAP and theta (Bock & Mislevy 1982 for the posterior SD as
+    # the EAP's standard error).  Oracle: scipy.stats.pearsonr on 20,000 draws (r^2 noise
+    # about 0.004).
+    rng = np.random.default_rng(11)
+    s2 = 0.5
+    true = rng.normal(size=20_000)
+    eap = (true + rng.normal(0, np.sqrt(s2), true.size)) / (1 + s2)
+    psd = np.full(true.size, np.sqrt(s2 / (1 + s2)))
+    r2 = stats.pearsonr(true, eap)[0] ** 2
+    got = metrics.precision(true, eap, psd, method="eap")["marginal_reliability"]
+    assert got == pytest.approx(r2, abs=0.012)
+    assert got == pytest.approx(1 / (1 + s2), abs=0.012)
+    # the error-model form would be wrong here: 1 - E[PSD^2] / var(EAP) = 0.5, not 2/3
+    assert abs(metrics.marginal_reliability(eap, psd, method="mle") - r2) > 0.1
+
+
+def test_marginal_reliability_of_truth_plus_error_estimates():
+    # Reference: classical test theory (Lord & Novick 1968): for est = theta + e with e
+    # independent of theta, reliability = 1 - var(e) / var(est) = corr(est, theta)^2.
+    # Errors of unequal size per examinee (as the SEs of MLE/WLE scores are).  Oracle:
+    # scipy.stats.pearsonr on 20,000 draws.
+    rng = np.random.default_rng(12)
+    true = rng.normal(size=20_000)
+    se = rng.uniform(0.3, 1.0, true.size)
+    est = true + se * rng.standard_normal(true.size)
+    r2 = stats.pearsonr(true, est)[0] ** 2
+    for method in ("mle", "wle"):
+        got = metrics.precision(true, est, se, method=method)["marginal_reliability"]
+        assert got == pytest.approx(r2, abs=0.012)
+    # the posterior form overstates it here (var(est) / (var(est) + E[SE^2]))
+    assert metrics.marginal_reliability(est, se, method="eap") - r2 > 0.03
 
 
 def test_precision_leaves_out_missing_estimates():
