@@ -13,6 +13,9 @@ An ability specification is a short text, as typed on the command line:
     the abilities listed in a CSV file (a column named ``theta`` or ``true_theta``, or a
     single column without header); the number of examinees is the number of rows.
 
+A ``grid:`` or ``file:`` specification fixes the number of examinees: a run takes it as
+its default, and a different explicit number is an error (:func:`examinee_count`).
+
 Abilities are drawn once for the whole run from the run's seed, so they do not depend on
 how the run is cut into chunks or spread over workers.
 """
@@ -87,6 +90,28 @@ class AbilitySpec:
         else:
             base = np.asarray(self.thetas, dtype=float)
         return np.resize(base, n)
+
+
+def examinee_count(spec: AbilitySpec, n: int | None, *, default: int) -> int:
+    """Number of examinees of a run: ``n`` as given, else the count the spec fixes, else ``default``.
+
+    Raises
+    ------
+    AbilitySpecError
+        Located at ``--examinees`` when ``n`` is below 1 or differs from the count a
+        ``grid:``/``file:`` specification fixes (cycling its list would give the grid
+        points, or the file's rows, unequal numbers of examinees).
+    """
+    fixed = spec.fixed_count
+    if n is None:
+        return int(fixed if fixed is not None else default)
+    if n < 1:
+        raise AbilitySpecError(f"the number of examinees must be >= 1, got {n}", "--examinees")
+    if fixed is not None and n != fixed:
+        what = ("POINTS x PER_POINT" if spec.kind == "grid" else "one per row of the file")
+        raise AbilitySpecError(f"--theta {spec.text} fixes {fixed} examinees ({what}), not {n}; "
+                               f"leave --examinees out or give {fixed}", "--examinees")
+    return int(n)
 
 
 def _generator(seed: int) -> np.random.Generator:

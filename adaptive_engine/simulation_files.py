@@ -44,10 +44,13 @@ from . import metrics
 from .bank import ItemBank
 from .design import Design
 from .design_check import require_design_fits_bank
-from .examinees import AbilitySpec
+from .examinees import AbilitySpec, examinee_count
 from .simulation import (
     DEFAULT_CHUNK, ChunkResult, SimulationResult, effective_chunk_size, simulate, true_item_rows,
 )
+
+#: Examinees of a study when neither ``--examinees`` nor the ability spec says.
+DEFAULT_EXAMINEES = 1000
 
 FILES = ("summary.json", "examinees.csv", "administrations.csv", "items.csv", "conditional.csv", "report.html")
 
@@ -151,15 +154,16 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
     ----------
     abilities : AbilitySpec
         Where true abilities come from; a ``grid:``/``file:`` spec fixes the number of
-        examinees when ``n_examinees`` is None.
+        examinees (``n_examinees`` None or equal to it).
     n_examinees : int or None
+        None: the count the spec fixes, else :data:`DEFAULT_EXAMINEES`.
     out_dir : path or None
         Folder for the files (created if needed); None: compute only.
     """
     require_design_fits_bank(design, bank)
     true_item_rows(bank, true_bank)
     exposure_target = metrics.exposure_target(exposure_target)  # checked before any work
-    n = n_examinees if n_examinees is not None else (abilities.fixed_count or 1000)
+    n = examinee_count(abilities, n_examinees, default=DEFAULT_EXAMINEES)
     true_theta = abilities.draw(n, seed)
     staging = None
     writer = None

@@ -445,3 +445,31 @@ def test_simulate_cli_progress_on_request(tmp_path, monkeypatch):
     r = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "40", "--out",
                                   str(tmp_path / "s2"), "--json"])
     assert r.exit_code == 0 and r.stderr == ""
+
+
+def test_examinee_count_follows_a_grid_or_file_spec(tmp_path):
+    spec = examinees.parse_ability_spec("grid:-2,2,5:4")
+    assert examinees.examinee_count(spec, None, default=1000) == 20
+    assert examinees.examinee_count(spec, 20, default=1000) == 20
+    assert examinees.examinee_count(examinees.parse_ability_spec("normal:0,1"), None, default=7) == 7
+    with pytest.raises(examinees.AbilitySpecError, match="--examinees"):
+        examinees.examinee_count(spec, 300, default=1000)
+    design, bank = _shipped()
+    runner = CliRunner()
+    r = runner.invoke(main, ["simulate", design, "--bank", bank, "--examinees", "300", "--theta",
+                             "grid:-2,2,5:40", "--out", str(tmp_path / "s")])
+    assert r.exit_code == 2 and "--examinees" in r.output and "200" in r.output
+    assert not (tmp_path / "s").exists()
+    r = runner.invoke(main, ["simulate", design, "--bank", bank, "--theta", "grid:-2,2,5:4",
+                             "--out", str(tmp_path / "g")])
+    assert r.exit_code == 0, r.output
+    people = list(csv.DictReader((tmp_path / "g" / "examinees.csv").open()))
+    assert len(people) == 20
+    assert sorted(float(p["true_theta"]) for p in people) == sorted(np.repeat([-2.0, -1, 0, 1, 2], 4))
+    r = runner.invoke(main, ["tune", design, "--bank", bank, "--vary", "stopping.se=0.3,0.5", "--theta",
+                             "grid:-1,1,3:10", "--out", str(tmp_path / "t")])
+    assert r.exit_code == 0, r.output
+    assert json.loads((tmp_path / "t" / "tuning.json").read_text())["examinees"] == 30
+    r = runner.invoke(main, ["exposure", "calibrate", design, "--bank", bank, "--target", "0.3", "--theta",
+                             "grid:-1,1,3:10", "--examinees", "100", "--out", str(tmp_path / "x.csv")])
+    assert r.exit_code == 2 and "--examinees" in r.output and not (tmp_path / "x.csv").exists()

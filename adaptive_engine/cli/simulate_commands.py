@@ -159,8 +159,9 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 @click.option("--vary", "variations", multiple=True, required=True,
               help="SECTION.KEY=V1,V2,... a design setting and its values (repeat for a grid of combinations), "
                    "e.g. stopping.se=0.25,0.3,0.35.")
-@click.option("--examinees", "n_examinees", type=int, default=1000, show_default=True,
-              help="Simulated examinees per combination (the same ones for every combination).")
+@click.option("--examinees", "n_examinees", type=int, default=None,
+              help="Simulated examinees per combination, the same ones for every combination "
+                   "[default: 1000, or the count a grid:/file: spec fixes].")
 @click.option("--seed", type=int, default=1, show_default=True, help="Run seed shared by all combinations.")
 @click.option("--theta", "theta_spec", default="normal:0,1", show_default=True, help="True abilities (see simulate).")
 @click.option("--true-bank", "true_bank_file", type=_FILE, default=None, help="Bank the answers are drawn from.")
@@ -176,12 +177,13 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
     Prints mean length, RMSE and classification accuracy per combination and marks the
     combinations on the efficient frontier.
     """
-    from ..examinees import parse_ability_spec
+    from ..examinees import examinee_count, parse_ability_spec
     from ..tuning import parse_variation, run_tuning_study
 
     design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
     parsed = [parse_variation(v) for v in variations]
     abilities = parse_ability_spec(theta_spec)
+    n_examinees = examinee_count(abilities, n_examinees, default=1000)
     progress = _Progress("tuning", enabled=show_progress)
     try:
         rows = run_tuning_study(design, bank, parsed, true_theta=abilities.draw(n_examinees, seed), seed=seed,
@@ -206,8 +208,8 @@ def exposure_group():
 @click.option("--out", "out_file", required=True, type=_FILE,
               help="Parameters CSV to write (item_id,exposure_parameter) for [exposure] parameters = \"PATH\".")
 @click.option("--seed", type=int, default=1, show_default=True, help="Run seed.")
-@click.option("--examinees", "n_examinees", type=int, default=2000, show_default=True,
-              help="Simulated examinees per iteration.")
+@click.option("--examinees", "n_examinees", type=int, default=None,
+              help="Simulated examinees per iteration [default: 2000, or the count a grid:/file: spec fixes].")
 @click.option("--theta", "theta_spec", default="normal:0,1", show_default=True, help="Abilities of the population.")
 @click.option("--iterations", type=int, default=15, show_default=True, help="Most iterations to run.")
 @click.option("--tolerance", type=float, default=0.02, show_default=True,
@@ -222,15 +224,17 @@ def exposure_group():
 def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n_examinees, theta_spec,
                                iterations, tolerance, workers, strata_text, show_progress):
     """Iterate Sympson-Hetter exposure parameters for DESIGN until no item exceeds --target."""
-    from ..examinees import parse_ability_spec
+    from ..examinees import examinee_count, parse_ability_spec
     from ..exposure_calibration import parse_strata, run_calibration
 
     strata = None if strata_text is None else parse_strata(strata_text)
+    abilities = parse_ability_spec(theta_spec)
+    n_examinees = examinee_count(abilities, n_examinees, default=2000)
     design, bank, _ = _load(design_file, bank_file)
     progress = _Progress("calibrating", enabled=show_progress)
     try:
         cal = run_calibration(design, bank, target=target, out_file=out_file,
-                              true_theta=parse_ability_spec(theta_spec).draw(n_examinees, seed), seed=seed,
+                              true_theta=abilities.draw(n_examinees, seed), seed=seed,
                               max_iterations=iterations, tolerance=tolerance, workers=workers, strata=strata,
                               progress=progress)
     finally:
