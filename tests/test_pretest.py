@@ -10,6 +10,7 @@ Measurement 43, 355-381, on fixed-parameter calibration; value of the shift our 
 
 from __future__ import annotations
 
+import csv
 import json
 
 import numpy as np
@@ -145,19 +146,39 @@ def test_pretest_cli(tmp_path):
 
     rng = np.random.default_rng(43)
     bank = _bank(rng)
-    path = _store(tmp_path / "store.db", bank, rng, n_sessions=400)
+    path = _store(tmp_path / "store.db", bank, rng, n_sessions=400, rare="new4")
     out, report = tmp_path / "pretest.json", tmp_path / "pretest.csv"
     runner = CliRunner()
     res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", "bank-main",
                                "--out", str(out), "--report", str(report), "--min-answers", "150",
                                "--max-se", "0.6", "--min-fit-p", "0.001"])
     assert res.exit_code == 0, res.output
-    summary = json.loads(res.output)
+    summary = json.loads(res.stdout)
     assert summary["pretest_items"] == 4 and summary["sessions"] == 400
+    ready = sorted(r["item_id"] for r in summary["items"] if r["ready"])
+    assert 0 < len(ready) < 4, summary["items"]  # the thresholds above split the items
+    # by default the bank file holds only the ready items ...
     written = load_bank(out)
-    assert sorted(written.item_ids) == sorted(PRETEST) and set(written.status) == {"pretest"}
-    header = report.read_text().splitlines()[0].split(",")
-    assert "ready" in header and "reasons" in header
+    assert sorted(written.item_ids) == ready and set(written.status) == {"pretest"}
+    assert summary["items_written"] == len(ready)
+    # ... and the report every item, with the flag and the reasons
+    report_rows = list(csv.DictReader(report.open()))
+    assert sorted(r["item_id"] for r in report_rows) == sorted(PRETEST)
+    assert sorted(r["item_id"] for r in report_rows if r["ready"] == "True") == ready
+    assert all(r["reasons"] for r in report_rows if r["ready"] != "True")
+    everything = tmp_path / "all.json"
+    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", "bank-main",
+                               "--out", str(everything), "--min-answers", "150", "--max-se", "0.6",
+                               "--min-fit-p", "0.001", "--include-not-ready"])
+    assert res.exit_code == 0, res.output
+    assert sorted(load_bank(everything).item_ids) == sorted(PRETEST)
+    # nothing ready: no bank file, a warning on stderr, the report still written
+    none_out, none_report = tmp_path / "none.json", tmp_path / "none.csv"
+    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", "bank-main",
+                               "--out", str(none_out), "--report", str(none_report), "--min-answers", "100000"])
+    assert res.exit_code == 0, res.output
+    assert not none_out.exists() and none_report.exists()
+    assert "warning: no pretest item is ready" in res.stderr and json.loads(res.stdout)["out"] is None
     res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", "x", "--out", str(out)])
     assert res.exit_code == 2 and "--bank-id: no bank with id 'x'" in res.output
     res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--out", str(tmp_path / "y.json")])

@@ -114,8 +114,16 @@ def link_files(new_path, *, to, out, method: str, anchors=None, max_difficulty_s
 
 
 def pretest_files(db_path, *, out, bank_id=None, bank_path=None, rules: PromotionRules | None = None,
-                  settings: CalibrationSettings | None = None, report=None) -> dict:
-    """Calibrate the pretest items of a session store; write them as a bank (and a report)."""
+                  settings: CalibrationSettings | None = None, report=None,
+                  include_not_ready: bool = False) -> dict:
+    """Calibrate the pretest items of a session store; write them as a bank (and a report).
+
+    The bank file holds only the items ready for promotion unless ``include_not_ready``
+    (a bank file has no place for readiness, so an unready item in it would look ready);
+    the report lists every item with its ``ready`` flag and reasons.  When no item is ready
+    and ``include_not_ready`` is not set, no bank file is written and the summary's
+    ``warnings`` say so.
+    """
     out = _check_bank_target(out, "--out")
     if report:
         report = _check_folder(report, "--report")
@@ -125,7 +133,13 @@ def pretest_files(db_path, *, out, bank_id=None, bank_path=None, rules: Promotio
     if report:
         reports[Path(report)] = rows_to_csv([{k: ("" if isinstance(v, float) and v != v else v)
                                               for k, v in row.items()} for row in result.rows])
-    _write_outputs(result.bank, out, reports)
+    bank = result.bank if include_not_ready else result.ready_bank()
+    _write_outputs(bank, out if bank is not None else None, reports)
     summary = dict(result.summary)
-    summary.update(items=result.rows, out=str(out), report=str(report) if report else None)
+    summary.update(items=result.rows, out=str(out) if bank is not None else None,
+                   items_written=0 if bank is None else len(bank), include_not_ready=bool(include_not_ready),
+                   report=str(report) if report else None, warnings=[])
+    if bank is None:
+        summary["warnings"].append(f"no pretest item is ready; {out} was not written "
+                                   f"(--include-not-ready writes every item)")
     return summary

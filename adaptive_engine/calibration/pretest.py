@@ -65,7 +65,7 @@ class PretestResult:
     Attributes
     ----------
     bank : ItemBank
-        The pretest items with their new parameters (status kept as ``pretest``).
+        Every pretest item with its new parameters (status kept as ``pretest``), ready or not.
     rows : list of dict
         One report row per pretest item (parameters, SEs, answers, fit, ``ready``, reasons).
     sessions : int
@@ -77,6 +77,17 @@ class PretestResult:
     rows: list
     sessions: int
     summary: dict
+
+    @property
+    def ready(self) -> np.ndarray:
+        """Whether each item of :attr:`bank` is ready for promotion, bool shape (n,)."""
+        flags = {r["item_id"]: bool(r["ready"]) for r in self.rows}
+        return np.array([flags[str(i)] for i in self.bank.item_ids], dtype=bool)
+
+    def ready_bank(self) -> ItemBank | None:
+        """The ready items only (what is merged by default); None when no item is ready."""
+        keep = np.flatnonzero(self.ready)
+        return self.bank.subset(keep) if keep.size else None
 
 
 @attrs.frozen(eq=False, kw_only=True)

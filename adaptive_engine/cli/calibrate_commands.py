@@ -89,8 +89,13 @@ def pretest():
 @click.option("--bank-id", default=None, help="Id of the bank whose sessions are read.")
 @click.option("--bank", "bank_path", type=_FILE, default=None,
               help="Bank file (instead of the store's copy; its id is looked up when --bank-id is not given).")
-@click.option("--out", required=True, type=_FILE, help="Bank file for the pretest items (.csv, .json or .db).")
-@click.option("--report", type=_FILE, default=None, help="CSV report with a ready column and the reasons.")
+@click.option("--out", required=True, type=_FILE,
+              help="Bank file (.csv, .json or .db) for the pretest items ready for promotion "
+                   "(not written when none is ready).")
+@click.option("--include-not-ready", is_flag=True,
+              help="Write every pretest item to --out, ready or not (the report tells them apart).")
+@click.option("--report", type=_FILE, default=None,
+              help="CSV report of every pretest item with a ready column and the reasons.")
 @click.option("--min-answers", type=int, default=200, show_default=True, help="Answers an item needs to be ready.")
 @click.option("--max-se", type=float, default=0.3, show_default=True,
               help="Largest standard error of any parameter of a ready item.")
@@ -98,11 +103,18 @@ def pretest():
               help="Smallest item-fit p-value of a ready item.")
 @click.option("--no-priors", is_flag=True, help="No default priors on 3PL/4PL items.")
 @report_errors
-def pretest_calibrate_command(db_path, bank_id, bank_path, out, report, min_answers, max_se, min_fit_p, no_priors):
-    """Estimate the pretest items of a bank's sessions on the bank's scale and judge them ready or not."""
+def pretest_calibrate_command(db_path, bank_id, bank_path, out, include_not_ready, report, min_answers, max_se,
+                              min_fit_p, no_priors):
+    """Estimate the pretest items of a bank's sessions on the bank's scale and judge them ready or not.
+
+    Prints a JSON summary with every item, its ready flag and the reasons; warnings go to stderr.
+    """
     if not bank_id and not bank_path:
         raise click.UsageError("give --bank-id or --bank")
     rules = PromotionRules(min_answers=min_answers, max_se=max_se, min_fit_p=min_fit_p)
     settings = _settings(prior=(), no_priors=no_priors)
-    echo_json(pretest_files(db_path, out=out, bank_id=bank_id, bank_path=bank_path, rules=rules,
-                            settings=settings, report=report))
+    summary = pretest_files(db_path, out=out, bank_id=bank_id, bank_path=bank_path, rules=rules,
+                            settings=settings, report=report, include_not_ready=include_not_ready)
+    for warning in summary["warnings"]:
+        click.echo(f"warning: {warning}", err=True)
+    echo_json(summary)
