@@ -117,7 +117,9 @@ class Blueprint:
     ``method``: ``constrained`` (Kingsbury & Zara 1989) or ``max_priority_index``
     (Cheng & Chang 2009).
     ``enemies``: never give two items of one enemy group; ``item_sets``: once a set is
-    entered its items are given together.
+    entered its items are given together.  Both are off unless the design turns them on,
+    so that a design without a blueprint means plain selection among the items not yet
+    given.
     ``pretest_positions``: 1-based positions at which a pretest item is seeded (given, not
     scored).  ``shadow_test``: assemble a shadow test (van der Linden & Reese 1998) at each
     step with scipy.optimize.milp and give its best free item.
@@ -125,8 +127,8 @@ class Blueprint:
 
     areas: tuple[AreaRule, ...] = ()
     method: str = "constrained"
-    enemies: bool = True
-    item_sets: bool = True
+    enemies: bool = False
+    item_sets: bool = False
     pretest_positions: tuple[int, ...] = ()
     shadow_test: bool = False
 

@@ -312,7 +312,8 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
     elif crit == "posterior_weighted_information":
         # van der Linden (1998): information averaged over the current posterior
         w = posterior_weights(state.log_post[rows])
-        values = w @ ctx.info_grid.T
+        # per-row sums without BLAS: a matrix product rounds differently with the batch size
+        values = np.einsum("rg,ng->rn", w, ctx.info_grid)
     elif crit == "kullback_leibler":
         values = _kl_values(ctx, state, rows)
     elif crit == "a_stratified":

@@ -488,6 +488,8 @@ method = "randomesque"
 candidates = 20
 [blueprint]
 pretest_positions = [2, 3]
+enemies = true
+item_sets = true
 [blueprint.areas.source_water]
 min = 4
 [blueprint.areas.treatment_processes]

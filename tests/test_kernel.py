@@ -22,7 +22,8 @@ from kernel_support import AREAS, run_batch, structured_bank
 def lord_information(a, b, c, d, theta, D=1.0):
     """Item information of the 4PL written out independently.
 
-    Reference: Lord (1980), Applications of IRT, eq. 5-? for the 3PL,
+    Reference: Lord (1980), Applications of Item Response Theory to Practical Testing
+    Problems, ch. 5 (3PL item information; equation number not checked),
     I = D^2 a^2 (Q/P) ((P - c)/(1 - c))^2, extended to an upper asymptote d < 1 by
     Magis (2013): I = D^2 a^2 (P - c)^2 (d - P)^2 / ((d - c)^2 P (1 - P)).
     """
@@ -73,7 +74,8 @@ DESIGNS = {
     "randomesque_blueprint": Design(
         exposure=Exposure(method="randomesque", candidates=4),
         blueprint=Blueprint(areas=(AreaRule(name="alpha", min=3, max=6), AreaRule(name="beta", min=3, max=6),
-                                   AreaRule(name="gamma", min=2, max=6)), pretest_positions=(3, 7)),
+                                   AreaRule(name="gamma", min=2, max=6)), pretest_positions=(3, 7),
+                            enemies=True, item_sets=True),
         stopping=Stopping(min_items=10, max_items=14),
         opening=Opening(first_items_from_top=5),
     ),
@@ -81,7 +83,8 @@ DESIGNS = {
                              exposure_parameters={f"q{i:03d}": 0.3 for i in range(0, 100, 2)}),
     "progressive_mpi": Design(
         exposure=Exposure(method="progressive"),
-        blueprint=Blueprint(method="max_priority_index", areas=(AreaRule(name="alpha", min=2, max=4),)),
+        blueprint=Blueprint(method="max_priority_index", areas=(AreaRule(name="alpha", min=2, max=4),),
+                            enemies=True, item_sets=True),
         stopping=Stopping(min_items=9, max_items=9),
     ),
     "pwi_map": Design(selection=Selection(criterion="posterior_weighted_information"),
@@ -201,6 +204,7 @@ def test_the_controller_never_breaks_the_rules(seed, min_items, extra, method, b
     d = Design(
         exposure=Exposure(method=method, candidates=3),
         blueprint=Blueprint(method=blueprint_method, pretest_positions=tuple(sorted(pretest)),
+                            enemies=True, item_sets=True,
                             areas=tuple(AreaRule(name=a, min=area_min, max=area_max) for a in AREAS)),
         stopping=Stopping(min_items=min_items, max_items=min_items + extra, se=0.4),
         exposure_parameters={bank.item_ids[i]: 0.5 for i in range(0, 90, 3)} if method == "sympson_hetter" else None,
@@ -229,7 +233,8 @@ def test_shadow_tests_meet_the_blueprint_exactly():
     bank = structured_bank(6, 60, pretest=0)
     rules = (AreaRule(name="alpha", min=4, max=4), AreaRule(name="beta", min=2, max=3),
              AreaRule(name="gamma", min=3, max=4))
-    d = Design(blueprint=Blueprint(areas=rules, shadow_test=True), stopping=Stopping(min_items=10, max_items=10))
+    d = Design(blueprint=Blueprint(areas=rules, shadow_test=True, enemies=True, item_sets=True),
+               stopping=Stopping(min_items=10, max_items=10))
     ctx = build_context(d, bank)
     state, _ = run_batch(ctx, np.array([-1.5, 0.0, 2.0]), seed=9)
     _check_invariants(ctx, state, d)

@@ -89,35 +89,15 @@ def eap_quad(answered):
     return mean, math.sqrt(second - mean**2)
 
 
-def independent_next_item(rows, answered_ids, theta, max_items):
-    """Maximum-information operational item at theta among those the rules allow.
+def independent_next_item(rows, answered_ids, theta):
+    """Information at theta of every operational item not yet given.
 
-    The rules of the design (enemies and item sets on by default): no item twice, no second
-    item of an enemy group, an item set once entered is finished first, and a set is only
-    entered if it fits in the remaining test length.  Returns (item id or set-continuation
-    members, information table of the eligible items).
+    The minimal design means plain maximum-information selection among the items not yet
+    given (its blueprint keeps enemy groups and item sets off).
     """
     given = set(answered_ids)
-    blocked = set().union(*(r["enemies"] for r in rows if r["item_id"] in given)) if given else set()
-    if answered_ids:
-        last = next(r for r in rows if r["item_id"] == answered_ids[-1])
-        if last["item_set"]:
-            left = [r["item_id"] for r in rows if r["item_set"] == last["item_set"] and r["item_id"] not in given]
-            if left:
-                return "set", left
-    slots = max_items - len(answered_ids)
-    set_size = {}
-    for r in rows:
-        if r["item_set"]:
-            set_size[r["item_set"]] = set_size.get(r["item_set"], 0) + 1
-    info = {}
-    for r in rows:
-        if r["status"] != "operational" or r["item_id"] in given or r["enemies"] & blocked:
-            continue
-        if r["item_set"] and set_size[r["item_set"]] > slots:
-            continue
-        info[r["item_id"]] = float(information(r, theta))
-    return "information", info
+    return {r["item_id"]: float(information(r, theta))
+            for r in rows if r["status"] == "operational" and r["item_id"] not in given}
 
 
 # --------------------------------------------------------------------------------------
@@ -155,15 +135,12 @@ def test_minimal_design_through_the_cli_matches_independent_eap_and_information(
     while True:
         iid = reply["item_id"]
         ids = [r["item_id"] for r, _ in answered]
-        kind, found = independent_next_item(rows, ids, theta, max_items)
-        if kind == "set":
-            assert iid in found, f"item set in progress, got {iid}"
-        else:
-            best = max(found.values())
-            # the picked item is the maximum-information item at the independent EAP
-            # (ties within 1e-9 allowed: the two EAPs differ by quadrature error only)
-            assert iid in found, f"{iid} is not eligible"
-            assert found[iid] >= best - 1e-9, (iid, found[iid], best)
+        found = independent_next_item(rows, ids, theta)
+        best = max(found.values())
+        # the picked item is the maximum-information item at the independent EAP
+        # (ties within 1e-9 allowed: the two EAPs differ by quadrature error only)
+        assert iid in found, f"{iid} was given before or is not operational"
+        assert found[iid] >= best - 1e-9, (iid, found[iid], best)
         x = int(rng.random() < p_correct(by_id[iid], true_theta))
         answered.append((by_id[iid], x))
         out = invoke(["session", "answer", sid, iid, str(x), "--db", db])
