@@ -166,3 +166,51 @@ def test_known_abilities_equal_logistic_regression():
         intercept, slope = fit.params
         assert est["a"][j] * D == pytest.approx(slope, abs=1e-5)
         assert -D * est["a"][j] * est["b"][j] == pytest.approx(intercept, abs=1e-5)
+
+
+@needs_reference
+def test_rasch_infit_outfit_same_for_1pl_and_common_slope_2pl(tmp_path):
+    # Bock & Lieberman (1970) data.  --model 1PL and --model 2PL --common-slope fit the same
+    # Rasch model, so their estimates and their infit/outfit mean squares must agree; the
+    # mean squares are checked against Wright & Masters (1982) formulas written out here
+    # (outfit = mean z^2, infit = sum (x - E)^2 / sum Var) at each person's EAP.
+    from click.testing import CliRunner
+
+    from adaptive_engine.cli import main
+
+    items, patterns, counts = _patterns()
+    answers = tmp_path / "bock_lieberman_long.csv"
+    with answers.open("w", newline="") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(["person_id", "item_id", "response"])
+        person = 0
+        for pattern, count in zip(patterns, counts):
+            for _ in range(count):
+                person += 1
+                writer.writerows([f"p{person}", item, int(x)] for item, x in zip(items, pattern))
+    reports = {}
+    for label, extra in (("1pl", ["--model", "1PL"]), ("2pl", ["--model", "2PL", "--common-slope"])):
+        report = tmp_path / f"{label}.csv"
+        res = CliRunner().invoke(main, ["calibrate", str(answers), *extra, "--tolerance", "1e-7",
+                                        "--out", str(tmp_path / f"{label}.json"), "--fit-report", str(report)])
+        assert res.exit_code == 0, res.output
+        reports[label] = {r["item_id"]: r for r in csv.DictReader(report.open())}
+    for item in items:
+        one, two = reports["1pl"][item], reports["2pl"][item]
+        assert one["infit"] and one["outfit"] and two["infit"] and two["outfit"], (one, two)
+        for key in ("a", "b", "infit", "outfit"):
+            assert float(two[key]) == pytest.approx(float(one[key]), abs=2e-4), key
+    result = calibrate_responses(_table(items, patterns, counts), model="2PL",
+                                 settings=CalibrationSettings(tolerance=1e-7, common_slope=True))
+    eap = result.eap[result.data.person]
+    j = result.data.item
+    bank = result.bank
+    p = expit(bank.a[j] * (eap - bank.b[j]))
+    x = result.data.response
+    for k, item in enumerate(bank.item_ids):
+        sel = j == k
+        var = p[sel] * (1 - p[sel])
+        outfit = np.mean((x[sel] - p[sel]) ** 2 / var)
+        infit = np.sum((x[sel] - p[sel]) ** 2) / np.sum(var)
+        assert float(reports["2pl"][item]["outfit"]) == pytest.approx(outfit, abs=2e-4)
+        assert float(reports["2pl"][item]["infit"]) == pytest.approx(infit, abs=2e-4)

@@ -15,8 +15,9 @@ infit/outfit mean squares for Rasch (1PL) items.
   counts are sums of each person's posterior-weighted category probabilities (after Yen's
   1981 Q1 with posterior expectations in place of point estimates).
   df = groups x (categories - 1) - parameters; the chi-square reference is approximate.
-* Infit / outfit (Wright & Masters 1982) for 1PL items with each person's EAP in place of
-  theta: outfit = mean squared standardised residual, infit = information-weighted.
+* Infit / outfit (Wright & Masters 1982) for Rasch-like items (1PL, or 2PL / GPCM items
+  calibrated with one common slope, i.e. Rasch and partial credit) with each person's EAP in
+  place of theta: outfit = mean squared standardised residual, infit = information-weighted.
 """
 
 from __future__ import annotations
@@ -60,7 +61,7 @@ class ItemFit:
     statistic, df, p_value : arrays
         NaN where the statistic could not be formed (df < 1).
     infit, outfit : arrays
-        NaN for items that are not 1PL.
+        NaN for items that are not Rasch-like.
     """
 
     item_ids: np.ndarray
@@ -264,8 +265,18 @@ def grouped_posterior_fit(bank: ItemBank, item_index, person_index, response, po
     return out[0], out[1], out[2]
 
 
-def rasch_mean_squares(bank: ItemBank, item_index, theta, response):
-    """Infit and outfit mean squares; NaN for items that are not 1PL.
+def rasch_like_items(bank: ItemBank, *, common_slope: bool = False) -> np.ndarray:
+    """Items of the Rasch family, bool shape (n,): 1PL items, and -- when every item shares
+    one slope -- 2PL items (the Rasch model) and GPCM items (the partial credit model)."""
+    model = np.asarray(bank.model)
+    rasch = model == "1PL"
+    if common_slope:
+        rasch |= (model == "2PL") | (model == "GPCM")
+    return rasch
+
+
+def rasch_mean_squares(bank: ItemBank, item_index, theta, response, *, rasch=None):
+    """Infit and outfit mean squares; NaN for items that are not Rasch-like.
 
     Parameters
     ----------
@@ -273,6 +284,8 @@ def rasch_mean_squares(bank: ItemBank, item_index, theta, response):
     theta : array, shape (N,)
         Ability of the person who gave each answer (e.g. the EAP).
     response : int array, shape (N,)
+    rasch : bool array, shape (n,), optional
+        Which items get the mean squares (default: the 1PL items).
     """
     params = bank.params.take(item_index)
     p = models.probabilities(params, theta)
@@ -285,7 +298,7 @@ def rasch_mean_squares(bank: ItemBank, item_index, theta, response):
     with np.errstate(invalid="ignore", divide="ignore"):
         outfit = np.bincount(item_index, sq / np.maximum(var, 1e-12), minlength=n) / count
         infit = np.bincount(item_index, sq, minlength=n) / np.bincount(item_index, var, minlength=n)
-    rasch = bank.model == "1PL"
+    rasch = bank.model == "1PL" if rasch is None else np.asarray(rasch, dtype=bool)
     return np.where(rasch, infit, np.nan), np.where(rasch, outfit, np.nan)
 
 
@@ -293,7 +306,7 @@ def fit_for_result(result) -> ItemFit:
     """Item fit of a :class:`~adaptive_engine.calibration.CalibrationResult`.
 
     S-X2 when the data are complete, else the grouped posterior chi-square; infit/outfit
-    for 1PL items.
+    for Rasch-like items (1PL, or 2PL/GPCM calibrated with one common slope, e.g. PCM).
     """
     data, bank = result.data, result.bank
     n_params = parameters_per_item(bank, common_slope=result.settings.common_slope)
@@ -307,7 +320,8 @@ def fit_for_result(result) -> ItemFit:
         stat, df, p = grouped_posterior_fit(bank, data.item, data.person, data.response,
                                             result.posterior, result.grid, n_parameters=n_params)
         name = "grouped_posterior_chi_square"
-    infit, outfit = rasch_mean_squares(bank, data.item, result.eap[data.person], data.response)
+    infit, outfit = rasch_mean_squares(bank, data.item, result.eap[data.person], data.response,
+                                       rasch=rasch_like_items(bank, common_slope=result.settings.common_slope))
     return ItemFit(item_ids=bank.item_ids, statistic_name=name, statistic=stat, df=df, p_value=p,
                    infit=infit, outfit=outfit)
 

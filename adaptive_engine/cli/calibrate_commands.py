@@ -33,7 +33,7 @@ def _settings(**kw) -> CalibrationSettings:
 @click.option("--out", required=True, type=_FILE, help="Bank file to write (.csv, .json or .db).")
 @click.option("--fit-report", type=_FILE, default=None,
               help="CSV with every item's parameters, standard errors, answers and fit (S-X2 or grouped chi-square, "
-                   "infit/outfit for 1PL).")
+                   "infit/outfit for Rasch-like items: 1PL, or 2PL/GPCM with --common-slope, PCM).")
 @click.option("--scaling", type=float, default=1.0, show_default=True, help="Scaling constant D of the output bank.")
 @click.option("--quadrature-points", type=int, default=61, show_default=True,
               help="Ability points of the N(0, 1) population grid.")
