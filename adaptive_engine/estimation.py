@@ -45,7 +45,8 @@ METHODS = ("mle", "map", "eap", "wle")
 #: Rows per block: bounds memory at a few (rows x grid points) arrays; results do not
 #: depend on it.
 DEFAULT_CHUNK_SIZE = 2_000
-#: Grid step of the default EAP grid (see ability.DEFAULT_GRID for why 0.05 is enough).
+#: Coarsest step of the default EAP grid; each row refines it for its own test (see
+#: :func:`grid_refinement`): 0.05 is enough for posterior SDs down to about 0.125.
 GRID_STEP = 0.05
 _TOLERANCE = 1e-10
 _MAX_ITERATIONS = 200
@@ -246,7 +247,9 @@ def default_grid(mean: float = 0.0, sd: float = 1.0, step: float = GRID_STEP) ->
     """Default EAP grid for one prior: covers [-6, 6] and mean +- 7 SD, ends on whole numbers.
 
     Whole-number ends mean that examinees with similar priors share one grid, and the grid
-    of a row never depends on the other rows of a batch.
+    of a row never depends on the other rows of a batch.  This is the coarsest default
+    grid (``step = GRID_STEP``); :func:`eap` refines the step per row for long tests of
+    steep items (:func:`grid_refinement`).
     """
     lo = min(-6.0, float(np.floor(mean - 7.0 * sd)))
     hi = max(6.0, float(np.ceil(mean + 7.0 * sd)))
@@ -254,8 +257,77 @@ def default_grid(mean: float = 0.0, sd: float = 1.0, step: float = GRID_STEP) ->
     return np.linspace(lo, hi, n)
 
 
-def _grid_groups(mean, sd, grid):
-    """(grid, rows) pairs: one grid for all rows when given, else one per distinct default."""
+def max_information_bound(params: models.ItemParameters) -> np.ndarray:
+    """An upper bound on each item's maximum Fisher information over theta, shape (n,).
+
+    Closed forms, so that no grid can miss the peak of a steep item:
+
+    * dichotomous: ``(D a)^2 / 4``, the 2PL maximum (reached at theta = b); asymptotes
+      c > 0 or d < 1 only lower the peak (Lord 1980 for the 3PL; Magis 2013 for the 4PL);
+    * GRM: ``(D a)^2``: the score ``d log P_k / d theta = D a (1 - P*_k - P*_{k+1})`` lies
+      in [-D a, D a] (Samejima 1969), and the information is its mean square;
+    * GPCM: ``(D a)^2 K^2 / 4``: the information is ``(D a)^2 Var(X)`` (Muraki 1992), and a
+      score on 0..K has variance at most ``K^2 / 4``.
+    """
+    slope2 = (params.scaling * params.a) ** 2
+    k = params.n_categories - 1
+    return np.where(params.family == models.DICHOTOMOUS, slope2 / 4.0,
+                    np.where(params.family == models.GRADED, slope2, slope2 * k * k / 4.0))
+
+
+#: Finest default grid step is GRID_STEP / MAX_REFINEMENT (bounds the grid and table size).
+MAX_REFINEMENT = 50
+#: The default step is at most this fraction of the lower bound on a row's posterior SD.
+STEPS_PER_SD = 2.5
+
+
+def _cached_bound(source, params) -> np.ndarray:
+    cached = getattr(source, "_cached", None)
+    if cached is None:
+        return max_information_bound(params)
+    return cached("estimation.max_information_bound", lambda: max_information_bound(params))
+
+
+def grid_refinement(params: models.ItemParameters, items, answered, prior_sd, *,
+                    bound=None) -> np.ndarray:
+    """Per row, the integer k such that the default EAP grid step is ``GRID_STEP / k``.
+
+    The rectangle rule on a grid of step h integrates a smooth posterior of SD s with a
+    relative error of order ``exp(-2 pi^2 s^2 / h^2)``, so h must shrink with s.  A lower
+    bound on s comes from the row's own items: the log posterior is never more curved than
+    ``sum_i max I_i + 1 / prior_sd^2`` (for the 2PL exactly so; :func:`max_information_bound`
+    gives the per-item bound), so ``s >= 1 / sqrt(that sum)`` (the Cramer-Rao bound applied
+    to the posterior, in the spirit of Bock & Mislevy 1982's quadrature).  k is the smallest
+    integer with ``GRID_STEP / k <= s / STEPS_PER_SD``; 1 (step 0.05) for ordinary tests,
+    larger for long tests of steep items, at most :data:`MAX_REFINEMENT`.
+
+    Parameters
+    ----------
+    params : ItemParameters
+    items, answered : arrays, shape (P, L)
+    prior_sd : array, shape (P,)
+    bound : array, shape (n,), optional
+        :func:`max_information_bound` of ``params``, when the caller has it at hand.
+
+    Returns
+    -------
+    int array, shape (P,)
+        Depends on each row alone (its answered items and its prior).
+    """
+    bound = max_information_bound(params) if bound is None else bound
+    precision = _row_sum(np.where(answered, bound[items], 0.0)) + 1.0 / prior_sd**2
+    sd_floor = 1.0 / np.sqrt(precision)
+    k = np.ceil(GRID_STEP * STEPS_PER_SD / sd_floor - 1e-9)
+    return np.clip(k, 1, MAX_REFINEMENT).astype(np.int64)
+
+
+def _grid_groups(mean, sd, grid, data: _Data | None = None):
+    """(grid, rows) pairs: one grid for all rows when given, else one per distinct default.
+
+    A default grid covers [-6, 6] and the row's prior mean +- 7 SD, ends on whole numbers,
+    and has step ``GRID_STEP / k`` with k from :func:`grid_refinement`; rows that share
+    all three share one grid, and no row's grid depends on the other rows.
+    """
     if grid is not None:
         grid = np.asarray(grid, dtype=float)
         if grid.ndim != 1 or grid.size < 2 or not np.all(np.diff(grid) > 0):
@@ -264,12 +336,21 @@ def _grid_groups(mean, sd, grid):
         return [(grid, np.arange(mean.size))]
     lo = np.minimum(-6.0, np.floor(mean - 7.0 * sd))
     hi = np.maximum(6.0, np.ceil(mean + 7.0 * sd))
-    keys = np.stack([lo, hi], axis=1)
-    unique, inverse = np.unique(keys, axis=0, return_inverse=True)
+    if data is None:
+        refine = np.ones(mean.size)
+    else:
+        refine = grid_refinement(data.params, data.items, data.answered, sd,
+                                 bound=_cached_bound(data.source, data.params))
+    keys = np.stack([lo, hi, refine.astype(float)], axis=1)
+    if mean.size and np.all(keys == keys[0]):  # the common case: skip the row sort
+        unique, inverse = keys[:1], np.zeros(mean.size, dtype=np.int64)
+    else:
+        unique, inverse = np.unique(keys, axis=0, return_inverse=True)
     inverse = inverse.reshape(-1)
     groups = []
-    for g, (glo, ghi) in enumerate(unique):
-        n = int(round((ghi - glo) / GRID_STEP)) + 1
+    for g, (glo, ghi, k) in enumerate(unique):
+        # for k = 1 exactly the points of default_grid(), as before
+        n = int(round((ghi - glo) * k / GRID_STEP)) + 1
         groups.append((np.linspace(glo, ghi, n), np.flatnonzero(inverse == g)))
     return groups
 
@@ -329,7 +410,7 @@ def _grid_pass(data: _Data, mean, sd, grid, chunk_size, bounds=None):
     n_persons = data.items.shape[0]
     out = np.empty((4, n_persons))
     n_cat = data.params.max_categories
-    for grid_g, rows in _grid_groups(mean, sd, grid):
+    for grid_g, rows in _grid_groups(mean, sd, grid, data):
         table = _flat_log_table(data.source, grid_g)
         outside = np.zeros(grid_g.size, dtype=bool)
         if bounds is not None:
@@ -360,9 +441,12 @@ def eap(bank_or_params, items, responses, *, prior_mean=0.0, prior_sd=1.0, grid=
         chunk_size: int = DEFAULT_CHUNK_SIZE) -> AbilityEstimates:
     """Expected a posteriori ability (Bock & Mislevy 1982) by quadrature on a grid.
 
-    The posterior under a normal prior is evaluated on ``grid`` (default: :func:`default_grid`
-    of each row's prior, -7..7 in steps of 0.05 for N(0, 1)); the estimate is the posterior
-    mean and the standard error the posterior SD.  Log probabilities come from the bank's
+    The posterior under a normal prior is evaluated on ``grid``; the estimate is the
+    posterior mean and the standard error the posterior SD.  The default grid is made per
+    row: :func:`default_grid` of the row's prior (-7..7 for N(0, 1)) with step
+    ``0.05 / k``, k from :func:`grid_refinement`, so that the step stays below about 1/2.5
+    of a lower bound on the row's posterior SD (k = 1, step 0.05, for ordinary tests; finer
+    for long tests of steep items, whose posterior SD can fall to 0.02).  Log probabilities come from the bank's
     cached (items x grid x categories) table and are summed per row by a sparse selection
     product, in blocks of ``chunk_size`` rows, so memory stays at O(chunk_size x G).
 
@@ -373,6 +457,8 @@ def eap(bank_or_params, items, responses, *, prior_mean=0.0, prior_sd=1.0, grid=
         Bank rows and observed categories, -1 as padding.
     prior_mean, prior_sd : float or array, shape (P,)
     grid : array, shape (G,), optional
+        One grid for every row instead of the per-row default (the caller then answers
+        for its step).
     chunk_size : int
 
     Returns
@@ -566,7 +652,7 @@ _NEWTON_DOC = """
     bounds : (float, float)
         The estimate is kept within [lo, hi].
     grid : array, shape (G,), optional
-        Grid searched for start values (default: :func:`default_grid` of the prior).
+        Grid searched for start values (default: the per-row EAP grid, see :func:`eap`).
     start : float or array, shape (P,), optional
         Start values instead of the grid search.
     chunk_size : int
