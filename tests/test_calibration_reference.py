@@ -12,6 +12,7 @@ Sources:
 from __future__ import annotations
 
 import csv
+import os
 from pathlib import Path
 
 import numpy as np
@@ -25,8 +26,26 @@ from adaptive_engine.responses import ResponseTable
 
 REFERENCE = Path(__file__).resolve().parents[2] / "shared" / "reference"
 DATA_FILE = REFERENCE / "bock_lieberman_1970_five_items.csv"
-needs_reference = pytest.mark.skipif(not DATA_FILE.exists(),
-                                     reason=f"reference data not found ({DATA_FILE.name} in ../shared/reference)")
+
+
+def require_reference(path: Path, environ) -> None:
+    """Skip when the reference data are absent -- but fail under CI (``CI`` set), where a
+    silently skipped reference check would pass a build that checked nothing."""
+    if path.exists():
+        return
+    reason = f"reference data not found ({path.name} in ../shared/reference, next to the repository)"
+    if environ.get("CI"):
+        pytest.fail(f"{reason}; CI is set, so the reference checks must run")
+    pytest.skip(reason)
+
+
+@pytest.fixture
+def reference_data():
+    require_reference(DATA_FILE, os.environ)
+    return DATA_FILE
+
+
+needs_reference = pytest.mark.usefixtures("reference_data")
 
 
 def _patterns():
@@ -214,3 +233,15 @@ def test_rasch_infit_outfit_same_for_1pl_and_common_slope_2pl(tmp_path):
         infit = np.sum((x[sel] - p[sel]) ** 2) / np.sum(var)
         assert float(reports["2pl"][item]["outfit"]) == pytest.approx(outfit, abs=2e-4)
         assert float(reports["2pl"][item]["infit"]) == pytest.approx(infit, abs=2e-4)
+
+
+def test_missing_reference_fails_under_ci_and_skips_otherwise(tmp_path):
+    missing = tmp_path / "bock_lieberman_1970_five_items.csv"
+    with pytest.raises(pytest.fail.Exception, match="CI is set"):
+        require_reference(missing, {"CI": "true"})
+    with pytest.raises(pytest.skip.Exception, match="reference data not found"):
+        require_reference(missing, {})
+    with pytest.raises(pytest.skip.Exception):
+        require_reference(missing, {"CI": ""})
+    missing.write_text("present")
+    require_reference(missing, {"CI": "true"})  # present: neither skip nor fail
