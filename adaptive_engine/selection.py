@@ -376,19 +376,24 @@ def _stratified_values(ctx, state, rows, ok) -> np.ndarray:
 
 
 def _priority_index(ctx, state, rows) -> np.ndarray:
-    """Maximum priority index weights (Cheng & Chang 2009), (R, n).
+    """Priority weights of the maximum priority index, (R, n).
 
-    An area below its minimum gets weight ``1 + (min - count) / min`` (its items are
-    preferred); otherwise the remaining room under its maximum, ``(max - count) / max``.
-    Areas without bounds weigh 1.
+    The index multiplies an item's information by one factor per content constraint it
+    touches (Cheng & Chang 2009).  For an upper bound ``u`` with ``x`` items given the
+    factor is the remaining room ``(u - x) / u`` (published form, recalled from memory).
+    For a lower bound ``l`` not yet met this project multiplies by ``1 + (l - x) / l``, so
+    that areas short of their minimum are preferred early -- our own treatment, not the
+    published one; the minimums themselves are guaranteed by eligibility (the remaining
+    slots go to areas below their minimum once they are needed there).  Areas without
+    bounds weigh 1.
     """
     counts = state.area_counts[rows].astype(float)
     lo = ctx.area_min[None, :].astype(float)
+    bounded = ctx.area_max < (1 << 30)
     hi = np.minimum(ctx.area_max, ctx.design.stopping.max_items)[None, :].astype(float)
-    below = counts < lo
-    weight = np.where(below, 1.0 + (lo - counts) / np.maximum(lo, 1.0), (hi - counts) / np.maximum(hi, 1.0))
-    unbounded = (ctx.area_min == 0) & (ctx.area_max >= (1 << 30))
-    weight = np.where(unbounded[None, :], 1.0, weight)
+    upper = np.where(bounded[None, :], (hi - counts) / np.maximum(hi, 1.0), 1.0)
+    lower = np.where(counts < lo, 1.0 + (lo - counts) / np.maximum(lo, 1.0), 1.0)
+    weight = upper * lower
     return np.take_along_axis(weight, np.broadcast_to(ctx.area[None, :], (rows.size, ctx.n_items)), axis=1)
 
 
