@@ -84,13 +84,21 @@ def test_examinee_i_is_the_same_in_a_longer_run():
 
 
 def test_dask_executor_path():
-    distributed = pytest.importorskip("dask.distributed", reason="dask.distributed is not installed")
+    # a real cluster of 2 worker processes: the design, banks and chunk results cross
+    # process boundaries by pickling, as on a multi-machine cluster
+    distributed = pytest.importorskip("dask.distributed",
+                                      reason="dask.distributed is not installed (the 'cluster' extra)")
     bank = small_bank()
     theta = np.linspace(-2, 2, 30)
     local = simulation.simulate(DESIGN, bank, true_theta=theta, seed=2, chunk_size=10)
-    with distributed.Client(processes=False, n_workers=1, threads_per_worker=2) as client:
-        _same(local, simulation.simulate(DESIGN, bank, true_theta=theta, seed=2, chunk_size=10,
-                                         executor=client.get_executor()))
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+        sizes = []
+        remote = simulation.simulate(DESIGN, bank, true_theta=theta, seed=2, workers=2,
+                                     executor=client.get_executor(), on_chunk=lambda c: sizes.append(c.size))
+        assert len(client.scheduler_info()["workers"]) == 2
+    _same(local, remote)
+    assert sizes == [8, 8, 8, 6]  # workers=2 cuts 30 examinees into chunks of ceil(30 / 4)
 
 
 def test_answers_follow_the_true_model():
@@ -473,3 +481,4 @@ def test_examinee_count_follows_a_grid_or_file_spec(tmp_path):
     r = runner.invoke(main, ["exposure", "calibrate", design, "--bank", bank, "--target", "0.3", "--theta",
                              "grid:-1,1,3:10", "--examinees", "100", "--out", str(tmp_path / "x.csv")])
     assert r.exit_code == 2 and "--examinees" in r.output and not (tmp_path / "x.csv").exists()
+
