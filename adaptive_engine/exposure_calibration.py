@@ -161,6 +161,26 @@ def _updated_conditional(k, given_pair, selected_pair, size, target, sets) -> np
     return new
 
 
+def unreachable_target_warning(design: Design, bank: ItemBank, target: float) -> str | None:
+    """Why ``target`` may be out of reach for the design on the bank (None when it is not).
+
+    The exposure rates of the operational items add up to the mean number of scored items
+    per test, so no item can stay at or below ``target`` unless the mean length is at
+    most ``target`` x (operational items).  Tests that may run to ``max_items`` beyond
+    that bound make the target unreachable unless most of them stop early.
+    """
+    n_operational = int(np.sum(np.asarray(bank.status) == "operational"))
+    room = target * n_operational
+    max_items = design.stopping.max_items
+    if room >= max_items:
+        return None
+    certain = room < design.stopping.min_items
+    return (f"target {target:g} x {n_operational} operational items = {room:g} items per test on average, "
+            f"but tests run to {max_items} items (at least {design.stopping.min_items}); the target "
+            + ("cannot be reached" if certain else "can be reached only if most tests stop before "
+               f"{room:g} items") + "; raise --target or use a larger bank")
+
+
 def with_parameters(design: Design, parameters: dict, *, path: str = "calibrated", strata=()) -> Design:
     """``design`` switched to Sympson-Hetter with the given parameters (in memory).
 

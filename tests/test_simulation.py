@@ -482,3 +482,19 @@ def test_examinee_count_follows_a_grid_or_file_spec(tmp_path):
                              "grid:-1,1,3:10", "--examinees", "100", "--out", str(tmp_path / "x.csv")])
     assert r.exit_code == 2 and "--examinees" in r.output and not (tmp_path / "x.csv").exists()
 
+
+def test_exposure_calibrate_exit_codes_and_unreachable_target(tmp_path):
+    design, bank = _shipped()
+    runner = CliRunner()
+    out = tmp_path / "k.csv"
+    # 0.01 x 480 operational items = 4.8 items per test, but tests run to 15: out of reach
+    r = runner.invoke(main, ["exposure", "calibrate", design, "--bank", bank, "--target", "0.01", "--examinees",
+                             "40", "--iterations", "2", "--out", str(out)])
+    assert r.exit_code == 3, r.output
+    assert "warning:" in r.stderr and "cannot be reached" in r.stderr and "did not converge" in r.stdout
+    assert out.exists()  # the parameters reached so far are written
+    r = runner.invoke(main, ["exposure", "calibrate", design, "--bank", bank, "--target", "0.8", "--examinees",
+                             "200", "--iterations", "6", "--tolerance", "0.05", "--out", str(out)])
+    assert r.exit_code == 0 and r.stderr == "" and "converged" in r.stdout
+    r = runner.invoke(main, ["exposure", "calibrate", design, "--bank", bank, "--target", "1.5", "--out", str(out)])
+    assert r.exit_code == 2 and "--target" in r.output

@@ -196,6 +196,11 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
     click.echo(f"wrote {out_dir}/ (tuning.csv, tuning.json, tuning.html)")
 
 
+#: Exit code of ``exposure calibrate`` when the iterations ended before the target was met
+#: (the parameters reached so far are written all the same).
+EXIT_NOT_CONVERGED = 3
+
+
 @main.group("exposure")
 def exposure_group():
     """Exposure control: calibrate Sympson-Hetter parameters by simulation."""
@@ -223,14 +228,22 @@ def exposure_group():
 @report_errors
 def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n_examinees, theta_spec,
                                iterations, tolerance, workers, strata_text, show_progress):
-    """Iterate Sympson-Hetter exposure parameters for DESIGN until no item exceeds --target."""
+    """Iterate Sympson-Hetter exposure parameters for DESIGN until no item exceeds --target.
+
+    Writes the parameters in any case; exits with code 3 when the last iteration still
+    left an item above --target + --tolerance (not converged), 2 on bad input.
+    """
     from ..examinees import examinee_count, parse_ability_spec
-    from ..exposure_calibration import parse_strata, run_calibration
+    from ..exposure_calibration import parse_strata, run_calibration, unreachable_target_warning
 
     strata = None if strata_text is None else parse_strata(strata_text)
     abilities = parse_ability_spec(theta_spec)
     n_examinees = examinee_count(abilities, n_examinees, default=2000)
     design, bank, _ = _load(design_file, bank_file)
+    if 0 < target <= 1:  # an out-of-range target is refused by the calibration itself
+        warning = unreachable_target_warning(design, bank, target)
+        if warning:
+            click.echo(f"warning: {warning}", err=True)
     progress = _Progress("calibrating", enabled=show_progress)
     try:
         cal = run_calibration(design, bank, target=target, out_file=out_file,
@@ -254,8 +267,10 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
         for h in cal.history:
             click.echo(f"{h['iteration']:>9}  {h['max_exposure']:>12.4f}  {h['share_above_target']:>18.4f}  "
                        f"{h['mean_length']:>11.2f}  {h['items_restricted']:>16}")
-    state = "converged" if cal.converged else "did not converge"
+    state = "converged" if cal.converged else f"did not converge in {iterations} iterations"
     click.echo(f"{state} (target {target:g}, tolerance {tolerance:g}); wrote {out_file}")
+    if not cal.converged:
+        sys.exit(EXIT_NOT_CONVERGED)
 
 
 @main.command("demo")
