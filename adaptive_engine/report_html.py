@@ -162,5 +162,8 @@ def tuning_report_html(rows: list[dict], figure_png: str | None, *, title: str) 
     if figure_png:
         parts.append(f"<figure><img alt='trade-off' src='data:image/png;base64,{figure_png}'>"
                      "<figcaption>Mean length against RMSE (frontier marked)</figcaption></figure>")
+    else:
+        parts.append("<p class='note'>Plot of mean length against RMSE left out: matplotlib is not "
+                     "installed (install the 'plots' extra).</p>")
     parts.append("</body></html>\n")
     return "".join(parts)

@@ -515,7 +515,7 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
         if any(not np.isfinite(c) for c in count_by_stratum) or any(
                 b <= a for a, b in zip(count_by_stratum, count_by_stratum[1:])):
             raise SimulationError(f"stratum cut points must be finite and ascending, got {list(count_by_stratum)}",
-                                  "count_by_stratum")
+                                  "--conditional-strata")
         n_strata = len(count_by_stratum) + 1
         given_s = np.zeros((n_strata, n_strata, bank.n_items), dtype=np.int64)
         offered_s = given_s.copy()

@@ -342,6 +342,11 @@ def test_simulate_cli_errors_exit_2_and_write_nothing(tmp_path):
     assert not out.exists() or not any(out.iterdir())
     r = runner.invoke(main, ["simulate", design, "--bank", bank, "--out", str(out), "--perturb", "q=1"])
     assert r.exit_code == 2 and "--perturb" in r.output
+    # locations name the options, not internal names
+    r = runner.invoke(main, ["simulate", design, "--bank", bank, "--out", str(out), "--perturb", "a=-0.1"])
+    assert r.exit_code == 2 and "--perturb a:" in r.output
+    r = runner.invoke(main, ["simulate", design, "--bank", bank, "--out", str(out), "--chunk-size", "0"])
+    assert r.exit_code == 2 and "--chunk-size:" in r.output
     bad_design = tmp_path / "bad.toml"
     bad_design.write_text("[stopping]\nmax_items = 0\n")
     r = runner.invoke(main, ["simulate", str(bad_design), "--bank", bank, "--out", str(out)])
@@ -364,6 +369,15 @@ def test_tune_cli(tmp_path):
     r = CliRunner().invoke(main, ["tune", design, "--bank", bank, "--vary", "stopping.nonsense=1,2",
                                   "--out", str(tmp_path / "t2")])
     assert r.exit_code == 2 and "nonsense" in r.output
+
+
+def test_tuning_report_says_when_the_plot_is_left_out():
+    from adaptive_engine.report_html import tuning_report_html
+
+    rows = [{"stopping.se": 0.3, "mean_length": 10.0, "rmse": 0.3, "frontier": True}]
+    assert "left out" in tuning_report_html(rows, None, title="t")
+    page = tuning_report_html(rows, "AAAA", title="t")
+    assert "left out" not in page and "base64,AAAA" in page
 
 
 def test_efficient_frontier():
