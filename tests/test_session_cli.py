@@ -236,3 +236,18 @@ def test_try_takes_the_test_in_the_terminal():
     report = json.loads(out.output.split("result:")[-1])
     assert report["items"]["scored"] >= 5 and report["se"] is not None
     assert "MV-" in out.output and "[" in out.output  # item id and area shown
+
+
+def test_try_ends_with_exit_2_when_input_runs_out():
+    result = CliRunner().invoke(main, ["session", "try", "--design", str(MINIMAL), "--bank", str(BANK_CSV)],
+                                input="1\n0\n")
+    assert result.exit_code == 2
+    assert "input ended before the test finished" in result.output
+
+
+def test_a_refused_start_leaves_no_store_behind(tmp_path):
+    db = tmp_path / "new.db"
+    result = invoke(["session", "start", "--db", str(db), "--design", str(MINIMAL), "--bank", str(BANK_CSV),
+                     "--prior-sd", "0"])
+    assert result.exit_code == 2
+    assert not db.exists()

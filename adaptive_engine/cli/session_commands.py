@@ -6,9 +6,12 @@ Every command prints JSON on stdout (``try`` is interactive) and exits with code
 
 from __future__ import annotations
 
+import sys
+from pathlib import Path
+
 import click
 
-from ._common import echo_json, main, report_errors
+from ._common import EXIT_INPUT_ERROR, echo_json, main, report_errors
 
 _DB = click.option("--db", "db_path", required=True, type=click.Path(dir_okay=False),
                    help="Session store (SQLite file).")
@@ -43,9 +46,17 @@ def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd)
 
     design = read_design(design_file)
     bank = load_bank(bank_file)
-    with open_store(db_path) as store:
-        echo_json(start_session(store, design, bank, examinee=examinee, seed=seed,
-                                prior_mean=prior_mean, prior_sd=prior_sd))
+    created = not Path(db_path).exists()
+    try:
+        with open_store(db_path) as store:
+            reply = start_session(store, design, bank, examinee=examinee, seed=seed,
+                                  prior_mean=prior_mean, prior_sd=prior_sd)
+    except Exception:
+        if created:  # a refused start leaves no empty store behind
+            for suffix in ("", "-wal", "-shm"):
+                Path(str(db_path) + suffix).unlink(missing_ok=True)
+        raise
+    echo_json(reply)
 
 
 @session.command("answer")
@@ -121,6 +132,10 @@ def try_(design_file, bank_file, seed):
     def tell(message):
         click.echo(f"    refused: {message}")
 
-    result = try_session(read_design(design_file), load_bank(bank_file), ask=ask, tell=tell, seed=seed)
+    try:
+        result = try_session(read_design(design_file), load_bank(bank_file), ask=ask, tell=tell, seed=seed)
+    except click.Abort:  # end of input (or Ctrl-C) before the test finished
+        click.echo("\nerror: input ended before the test finished; nothing was stored", err=True)
+        sys.exit(EXIT_INPUT_ERROR)
     click.echo("\nresult:")
     echo_json(result)
