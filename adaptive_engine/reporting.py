@@ -45,7 +45,7 @@ import math
 from decimal import ROUND_HALF_UP, Decimal
 
 import numpy as np
-from scipy.stats import norm
+from scipy.special import ndtri  # the standard normal quantile (scipy.stats is slow to import)
 
 from .design import Design, ScaleRule
 from .errors import AdaptiveEngineError, DesignError
@@ -178,7 +178,7 @@ def final_reports(design: Design, *, theta, se, status, n_scored, n_pretest, sto
     sprt_dec = (np.zeros(b, dtype=np.int64) if sprt_decision is None
                 else _column("sprt_decision", sprt_decision, b, np.int64))
 
-    z = norm.ppf(0.5 + 0.5 * rep.confidence)
+    z = ndtri(0.5 + 0.5 * rep.confidence)
     scale = rep.scale
     with np.errstate(invalid="ignore"):
         lo = theta - z * se

@@ -29,7 +29,7 @@ from __future__ import annotations
 import weakref
 
 import numpy as np
-from scipy.stats import norm
+from scipy.special import ndtri  # the standard normal quantile (scipy.stats is slow to import)
 
 from . import models
 from .ability import posterior_weights
@@ -188,7 +188,7 @@ def confidence_interval_decision(theta, se, *, cut, confidence: float) -> np.nda
                                   "[stopping.confidence_interval] confidence")
     theta = np.asarray(theta, dtype=float)
     se = np.asarray(se, dtype=float)
-    z = norm.ppf(0.5 + 0.5 * confidence)
+    z = ndtri(0.5 + 0.5 * confidence)
     with np.errstate(invalid="ignore"):
         lo = theta - z * se
         hi = theta + z * se
