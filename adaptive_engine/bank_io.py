@@ -193,6 +193,15 @@ def _write_text(path: Path, text: str) -> None:
     _atomic_write(path, fill)
 
 
+def write_text_file(path: str | Path, text: str) -> None:
+    """Write ``text`` (UTF-8, line ends as given) to ``path`` atomically.
+
+    The folder must exist (else :class:`~adaptive_engine.errors.AdaptiveEngineError`
+    naming it); the file appears whole or not at all.
+    """
+    _write_text(Path(path), text)
+
+
 def write_bank_csv(bank: ItemBank, path: str | Path) -> None:
     """Write ``bank`` as CSV (scaling and name are not stored: CSV has no place for them)."""
     _write_text(Path(path), bank_to_csv_text(bank))

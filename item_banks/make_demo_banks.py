@@ -7,8 +7,14 @@ Run ``python item_banks/make_demo_banks.py [OUT_DIR]`` (default: this folder).  
 * ``staff_climate_survey.csv`` / ``.json`` -- 40 rated items (answers 0-4) of a fictional
   staff-climate survey.
 
-Both banks are invented for demonstration only: they are not calibrated from any data and
-must never serve as a reference in tests.  Every draw comes from one
+and two long response files (``person_id,item_id,response``) of invented people answering
+them, for the README tour (``adaptive-engine score``, calibration):
+
+* ``meridian_valley_responses.csv`` -- 300 invented candidates, 30 operational items each;
+* ``staff_climate_responses.csv`` -- 200 invented respondents, 20 survey items each.
+
+Banks and answers are invented for demonstration only: they are not calibrated from any
+data and must never serve as a reference in tests.  Every draw comes from one
 ``numpy.random.Generator`` per bank with a fixed seed, and every parameter is rounded to 3
 decimals (the precision calibration reports usually give), so the same numpy release
 regenerates identical files.
@@ -31,6 +37,11 @@ Meridian Valley operator exam (scaling D = 1.0, logistic metric)
       distribution map), in the treatment, distribution and lab areas;
     * 20 pretest items (status ``pretest``) drawn from items in no set and no enemy group.
 
+Response files: each person's ability is drawn from N(0, 1), their items are drawn at
+random without replacement from the operational items (in the order listed, as if
+administered), and each answer is drawn from the bank's own model at that ability (one
+uniform number per answer, compared with the cumulative category probabilities).
+
 Staff-climate survey (scaling D = 1.0; categories 0 = strongly disagree .. 4 = strongly agree)
     * four areas of 10 items: workload, team_support, leadership, wellbeing;
     * GRM for the even-numbered items, GPCM for the odd-numbered ones;
@@ -51,12 +62,18 @@ HERE = Path(__file__).resolve().parent
 if str(HERE.parent) not in sys.path:  # run as a script from a checkout
     sys.path.insert(0, str(HERE.parent))
 
+from adaptive_engine.models import probabilities as category_probabilities  # noqa: E402
 from adaptive_engine.bank import ItemBank, bank_from_records  # noqa: E402
-from adaptive_engine.bank_io import write_bank  # noqa: E402
+from adaptive_engine.bank_io import write_bank, write_text_file  # noqa: E402
 from adaptive_engine.errors import AdaptiveEngineError  # noqa: E402
 
 OPERATOR_SEED = 20_240_611
 SURVEY_SEED = 20_240_612
+OPERATOR_RESPONSES_SEED = 20_240_613
+SURVEY_RESPONSES_SEED = 20_240_614
+#: (file name, persons, items per person, person id prefix) of each response file
+OPERATOR_RESPONSES = ("meridian_valley_responses.csv", 300, 30, "MV-CAND")
+SURVEY_RESPONSES = ("staff_climate_responses.csv", 200, 20, "SC-RESP")
 DECIMALS = 3
 
 OPERATOR_AREAS = {
@@ -250,8 +267,42 @@ def make_survey_bank(seed: int = SURVEY_SEED) -> ItemBank:
     return bank_from_records(records, scaling=1.0, name="staff_climate_survey")
 
 
+def simulate_responses(bank: ItemBank, n_persons: int, n_items: int, prefix: str,
+                       seed: int) -> str:
+    """A long response CSV of invented people answering ``bank`` under its own model.
+
+    Parameters
+    ----------
+    bank : ItemBank
+    n_persons, n_items : int
+        Persons, and operational items each person answers.
+    prefix : str
+        Person ids are ``PREFIX-0001``, ...
+    seed : int
+
+    Returns
+    -------
+    str
+        ``person_id,item_id,response`` rows, person by person, items in the order drawn.
+    """
+    rng = np.random.default_rng(seed)
+    operational = np.flatnonzero(bank.status == "operational")
+    theta = rng.normal(0.0, 1.0, n_persons)
+    items = np.stack([rng.choice(operational, size=n_items, replace=False) for _ in range(n_persons)])
+    probs = category_probabilities(bank.params.take(items), theta[:, None])  # (P, L, C)
+    u = rng.random(items.shape)
+    answers = np.sum(np.cumsum(probs, axis=-1)[..., :-1] < u[..., None], axis=-1)
+    answers = np.minimum(answers, bank.n_categories[items] - 1)
+    lines = ["person_id,item_id,response"]
+    for p in range(n_persons):
+        lines += [f"{prefix}-{p + 1:04d},{bank.item_ids[i]},{x}" for i, x in zip(items[p], answers[p])]
+    return "\n".join(lines) + "\n"
+
+
 def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
-    """Write the four demo bank files into ``out_dir``; returns their paths.
+    """Write the four demo bank files and the two response files into ``out_dir``.
+
+    Returns the paths written.
 
     Raises
     ------
@@ -262,9 +313,16 @@ def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
     if not out_dir.is_dir():
         raise AdaptiveEngineError(f"the output folder {out_dir} does not exist", location=str(out_dir))
     written = []
-    for bank in (make_operator_bank(), make_survey_bank()):
+    operator, survey = make_operator_bank(), make_survey_bank()
+    for bank in (operator, survey):
         for suffix in (".csv", ".json"):
             written.append(write_bank(bank, out_dir / f"{bank.name}{suffix}"))
+    for bank, (name, n_persons, n_items, prefix), seed in (
+            (operator, OPERATOR_RESPONSES, OPERATOR_RESPONSES_SEED),
+            (survey, SURVEY_RESPONSES, SURVEY_RESPONSES_SEED)):
+        text = simulate_responses(bank, n_persons, n_items, prefix, seed)
+        write_text_file(out_dir / name, text)
+        written.append(out_dir / name)
     return written
 
 

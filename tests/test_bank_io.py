@@ -23,7 +23,8 @@ REPO = Path(__file__).resolve().parents[1]
 ITEM_BANKS = REPO / "item_banks"
 SCHEMA = REPO / "adaptive_engine" / "schemas" / "item_bank.schema.json"
 DEMO_FILES = ["meridian_valley_operator.csv", "meridian_valley_operator.json",
-              "staff_climate_survey.csv", "staff_climate_survey.json"]
+              "staff_climate_survey.csv", "staff_climate_survey.json",
+              "meridian_valley_responses.csv", "staff_climate_responses.csv"]
 
 
 def assert_same_bank(x, y, *, metadata=True):
