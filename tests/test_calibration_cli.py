@@ -141,3 +141,81 @@ def test_output_in_a_missing_folder_is_refused_before_any_work(tmp_path):
     res = runner.invoke(main, ["pretest", "calibrate", "--db", str(tmp_path / "x.db"), "--bank-id", "b",
                                "--out", str(tmp_path / "p.json"), "--report", str(tmp_path / "nodir" / "r.csv")])
     assert res.exit_code == 2 and "--report" in res.output and "does not exist" in res.output
+
+
+def _few_item_answers(path, n=400, seed=7):
+    rng = np.random.default_rng(seed)
+    theta = rng.normal(size=n)
+    rows = ["person_id,item_id,response"]
+    for p in range(n):
+        for j, b in enumerate((-1.0, -0.5, 0.0, 0.6, 1.2)):
+            rows.append(f"p{p},MV-{j},{int(rng.random() < 1 / (1 + np.exp(-(theta[p] - b))))}")
+    path.write_text("\n".join(rows) + "\n")
+    return path
+
+
+@pytest.mark.parametrize("cap", [1, 2, 3])
+def test_max_iterations_is_a_hard_cap_and_not_converged_exits_3(tmp_path, cap):
+    answers = _few_item_answers(tmp_path / "answers.csv")
+    out = tmp_path / "b.csv"
+    res = CliRunner().invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(out),
+                                    "--max-iterations", str(cap), "--tolerance", "1e-12"])
+    assert res.exit_code == 3, res.output
+    summary = json.loads(res.stdout)
+    assert summary["iterations"] <= cap and summary["converged"] is False
+    assert f"warning: not converged after {summary['iterations']} EM cycles" in res.stderr
+    assert out.exists()  # the estimate is written; the exit code tells the caller it is not final
+    res = CliRunner().invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(out)])
+    assert res.exit_code == 0 and json.loads(res.stdout)["converged"] and not res.stderr
+
+
+def test_summary_prints_standard_errors_per_parameter(tmp_path):
+    answers = _few_item_answers(tmp_path / "answers.csv", n=400)
+    report = tmp_path / "fit.csv"
+    res = CliRunner().invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(tmp_path / "b.csv"),
+                                    "--fit-report", str(report)])
+    assert res.exit_code == 0, res.output
+    ses = json.loads(res.stdout)["standard_errors"]
+    assert set(ses) == {"a", "b"}
+    rows = list(csv.DictReader(report.open()))
+    for name in ("a", "b"):
+        values = [float(r[f"se_{name}"]) for r in rows]
+        assert ses[name]["mean"] == pytest.approx(np.mean(values), rel=1e-5)
+        assert ses[name]["max"] == pytest.approx(max(values), rel=1e-5)
+        assert ses[name]["count"] == 5
+
+
+def test_link_thresholds_must_make_sense(tmp_path):
+    bank = tmp_path / "bank.csv"
+    bank.write_text("item_id,model,a,b\nMV-1,2PL,1.0,0.0\nMV-2,2PL,1.2,0.5\n")
+    runner = CliRunner()
+    res = runner.invoke(main, ["link", str(bank), "--to", str(bank), "--out", str(tmp_path / "l.csv"),
+                               "--max-slope-ratio", "0.5"])
+    assert res.exit_code == 2 and "--max-slope-ratio: must be >= 1" in res.output
+    res = runner.invoke(main, ["link", str(bank), "--to", str(bank), "--out", str(tmp_path / "l.csv"),
+                               "--max-difficulty-shift", "-1"])
+    assert res.exit_code == 2 and "--max-difficulty-shift: must be >= 0" in res.output
+    assert not (tmp_path / "l.csv").exists()
+
+
+def test_scaling_follows_the_template_and_never_overrides_a_json_bank(tmp_path):
+    # A JSON bank declares D = 1.702: the calibrated bank keeps it when --scaling is not
+    # given, and a disagreeing --scaling is refused (exit 2, nothing written), never obeyed.
+    template = tmp_path / "template.json"
+    template.write_text(json.dumps({"scaling": 1.702, "items": [
+        {"item_id": f"MV-{j}", "model": "2PL", "a": 1.0, "b": 0.0} for j in range(5)]}))
+    answers = _few_item_answers(tmp_path / "answers.csv", n=400)
+    runner = CliRunner()
+    out = tmp_path / "b.json"
+    res = runner.invoke(main, ["calibrate", str(answers), "--template", str(template), "--out", str(out)])
+    assert res.exit_code == 0, res.output
+    assert load_bank(out).scaling == 1.702
+    other = tmp_path / "c.json"
+    res = runner.invoke(main, ["calibrate", str(answers), "--template", str(template), "--out", str(other),
+                               "--scaling", "1.0"])
+    assert res.exit_code == 2 and "1.702" in res.output and not other.exists()
+    res = runner.invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(other), "--scaling", "1.702"])
+    assert res.exit_code == 0 and load_bank(other).scaling == 1.702
+    res = runner.invoke(main, ["link", str(out), "--to", str(out), "--out", str(tmp_path / "l.json"),
+                               "--scaling", "1.0"])
+    assert res.exit_code == 2 and "1.702" in res.output

@@ -163,7 +163,18 @@ class CalibrationResult:
             quadrature_points=self.settings.quadrature_points, seconds=self.seconds,
             priors={m: v for m, v in self.settings.priors.describe().items()
                     if m in set(map(str, self.bank.model))},
+            standard_errors=self.standard_error_summary(),
         )
+
+    def standard_error_summary(self) -> dict:
+        """Mean and largest standard error of each estimated parameter (a, b, c, d, thresholds)."""
+        out = {}
+        for name in ("a", "b", "c", "d", "thresholds"):
+            values = np.asarray(self.standard_errors[name], dtype=float).ravel()
+            values = values[np.isfinite(values)]
+            if values.size:
+                out[name] = dict(mean=float(values.mean()), max=float(values.max()), count=int(values.size))
+        return out
 
 
 # ----------------------------------------------------------------------------------------
@@ -338,17 +349,26 @@ def _accelerated_cycles(cycle, etas, groups, natural_of, settings):
     Plain EM creeps along flat ridges (slopes of items seen by few persons); this cuts the
     number of cycles several-fold without changing the fixed point.
 
+    ``settings.max_iterations`` caps every cycle run, the extrapolation's included.
+
     Returns
     -------
     etas, cycles used, converged flag, last plain-cycle change
     """
+    budget = settings.max_iterations  # a hard cap: every cycle, plain or after a jump, counts
     cycles = 0
     change = math.inf
     x0 = etas
-    while cycles < settings.max_iterations:
+    while cycles < budget:
         x1, f0 = cycle(x0)
+        cycles += 1
+        change = _max_change(natural_of(x0), natural_of(x1))
+        if change < settings.tolerance:
+            return x1, cycles, True, change
+        if cycles >= budget:
+            return x1, cycles, False, change
         x2, f1 = cycle(x1)
-        cycles += 2
+        cycles += 1
         change = _max_change(natural_of(x1), natural_of(x2))
         if change < settings.tolerance:
             return x2, cycles, True, change
@@ -361,6 +381,8 @@ def _accelerated_cycles(cycle, etas, groups, natural_of, settings):
         step = min(step, -1.0)
         nxt = x2
         for _ in range(3):
+            if cycles >= budget:
+                break
             with np.errstate(invalid="ignore"):
                 jump = [np.where(np.isfinite(a) & np.isfinite(b) & np.isfinite(c),
                                  a - 2 * step * b + step**2 * c, a)

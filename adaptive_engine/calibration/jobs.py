@@ -10,6 +10,8 @@ import os
 import tempfile
 from pathlib import Path
 
+import attrs
+
 from ..bank import load_bank
 from ..bank_io import write_bank
 from ..errors import CalibrationError
@@ -71,8 +73,14 @@ def calibrate_file(
     template_path=None,
     settings: CalibrationSettings | None = None,
     fit_report=None,
+    scaling: float | None = None,
 ) -> dict:
     """Calibrate a long response CSV and write the bank (and the item report).
+
+    ``scaling`` is the D the caller asked for (None: not given).  With a template bank the
+    output takes the template's D: a CSV template takes ``scaling``, a JSON/SQLite template
+    keeps its own and a disagreeing ``scaling`` is an error (:func:`load_bank`).  Without a
+    template the output gets ``scaling`` (default ``settings.scaling``).
 
     Returns
     -------
@@ -83,8 +91,12 @@ def calibrate_file(
     if fit_report:
         fit_report = _check_folder(fit_report, "--fit-report")
     settings = settings or CalibrationSettings()
+    template = load_bank(template_path, scaling=scaling) if template_path else None
+    if template is not None:
+        settings = attrs.evolve(settings, scaling=template.scaling)
+    elif scaling is not None:
+        settings = attrs.evolve(settings, scaling=scaling)
     table = read_responses(responses_path)
-    template = load_bank(template_path, scaling=settings.scaling) if template_path else None
     result = calibrate_responses(table, model=model, template=template, settings=settings,
                                  name=Path(out).stem)
     fit = fit_for_result(result)

@@ -317,6 +317,7 @@ def calibrate_pretest(
                    rules=attrs.asdict(rules),
                    calibration=None if result is None else dict(
                        iterations=result.iterations, converged=result.converged,
+                       last_change=result.last_change, tolerance=settings.tolerance,
                        log_likelihood=result.log_likelihood, seconds=result.seconds))
     return PretestResult(bank=out_bank, rows=report, sessions=int(answers.session_ids.size), summary=summary)
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import sys
+
 import click
 
 from ..calibration import CalibrationSettings, prior_choice_from_texts
@@ -12,6 +14,16 @@ from ._common import echo_json, main, report_errors
 
 _FILE = click.Path(dir_okay=False, path_type=str)
 _MODELS = ["1PL", "2PL", "3PL", "4PL", "GRM", "GPCM", "Rasch", "PCM"]
+
+
+#: exit code of a calibration that stopped at --max-iterations without converging
+EXIT_NOT_CONVERGED = 3
+
+
+def _not_converged(iterations, last_change, tolerance) -> None:
+    click.echo(f"warning: not converged after {iterations} EM cycles (last change {last_change:.3g} > tolerance "
+               f"{tolerance:g}); the estimates may be off -- raise --max-iterations", err=True)
+    sys.exit(EXIT_NOT_CONVERGED)
 
 
 def _settings(**kw) -> CalibrationSettings:
@@ -34,10 +46,13 @@ def _settings(**kw) -> CalibrationSettings:
 @click.option("--fit-report", type=_FILE, default=None,
               help="CSV with every item's parameters, standard errors, answers and fit (S-X2 or grouped chi-square, "
                    "infit/outfit for Rasch-like items: 1PL, or 2PL/GPCM with --common-slope, PCM).")
-@click.option("--scaling", type=float, default=1.0, show_default=True, help="Scaling constant D of the output bank.")
+@click.option("--scaling", type=float, default=None,
+              help="Scaling constant D of the output bank (default: the template's D, else 1.0).  A CSV template "
+                   "takes it; a JSON/SQLite template keeps the D it declares, and a different value is an error.")
 @click.option("--quadrature-points", type=int, default=61, show_default=True,
               help="Ability points of the N(0, 1) population grid.")
-@click.option("--max-iterations", type=int, default=500, show_default=True, help="Most EM cycles.")
+@click.option("--max-iterations", type=int, default=500, show_default=True,
+              help="Most EM cycles, a hard cap (extrapolation cycles count); not converged by then: exit code 3.")
 @click.option("--tolerance", type=float, default=1e-4, show_default=True,
               help="Stop when no parameter moves more than this in a cycle.")
 @click.option("--min-answers", type=int, default=20, show_default=True, help="Fewest answers an item needs.")
@@ -46,13 +61,18 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
                       quadrature_points, max_iterations, tolerance, min_answers):
     """Calibrate items from RESPONSES (long CSV person_id,item_id,response) by marginal maximum likelihood.
 
-    Prints a JSON summary: iterations, convergence, log-likelihood, AIC, BIC.
+    Prints a JSON summary: iterations, convergence, log-likelihood, AIC, BIC, mean and largest
+    standard error of each parameter.  Exit codes: 0 converged; 2 bad input (nothing written);
+    3 not converged within --max-iterations (the bank is written, a warning goes to stderr).
     """
-    settings = _settings(prior=prior, no_priors=no_priors, common_slope=common_slope, scaling=scaling,
+    settings = _settings(prior=prior, no_priors=no_priors, common_slope=common_slope,
                          quadrature_points=quadrature_points, max_iterations=max_iterations,
                          tolerance=tolerance, min_answers=min_answers)
-    echo_json(calibrate_file(responses, out=out, model=model, template_path=template, settings=settings,
-                             fit_report=fit_report))
+    summary = calibrate_file(responses, out=out, model=model, template_path=template, settings=settings,
+                             fit_report=fit_report, scaling=scaling)
+    echo_json(summary)
+    if not summary["converged"]:
+        _not_converged(summary["iterations"], summary["last_change"], summary["tolerance"])
 
 
 @main.command("link")
@@ -63,10 +83,12 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
 @click.option("--out", required=True, type=_FILE, help="Linked bank to write (.csv, .json or .db).")
 @click.option("--anchors", default=None, help="Comma-separated common item ids (default: all shared ids).")
 @click.option("--max-difficulty-shift", type=float, default=0.5, show_default=True,
-              help="Flag an anchor whose difficulty moved more than this after linking.")
+              help="Flag an anchor whose difficulty moved more than this after linking (>= 0).")
 @click.option("--max-slope-ratio", type=float, default=1.5, show_default=True,
-              help="Flag an anchor whose slope changed by more than this factor after linking.")
-@click.option("--scaling", type=float, default=None, help="Scaling constant D for CSV banks.")
+              help="Flag an anchor whose slope changed by more than this factor, up or down, after linking (>= 1).")
+@click.option("--scaling", type=float, default=None,
+              help="Scaling constant D of CSV banks (default 1.0).  JSON/SQLite banks keep the D they declare; "
+                   "a different value is an error.")
 @report_errors
 def link_command(new_bank, base_bank, method, out, anchors, max_difficulty_shift, max_slope_ratio, scaling):
     """Put NEW_BANK on the scale of the --to bank through their common items.
@@ -102,19 +124,26 @@ def pretest():
 @click.option("--min-fit-p", type=float, default=0.01, show_default=True,
               help="Smallest item-fit p-value of a ready item.")
 @click.option("--no-priors", is_flag=True, help="No default priors on 3PL/4PL items.")
+@click.option("--max-iterations", type=int, default=500, show_default=True,
+              help="Most EM cycles of the pretest calibration, a hard cap; not converged by then: exit code 3.")
 @report_errors
 def pretest_calibrate_command(db_path, bank_id, bank_path, out, include_not_ready, report, min_answers, max_se,
-                              min_fit_p, no_priors):
+                              min_fit_p, no_priors, max_iterations):
     """Estimate the pretest items of a bank's sessions on the bank's scale and judge them ready or not.
 
     Prints a JSON summary with every item, its ready flag and the reasons; warnings go to stderr.
+    Exit codes: 0 done; 2 bad input (nothing written); 3 the pretest EM did not converge
+    (files are written, a warning goes to stderr).
     """
     if not bank_id and not bank_path:
         raise click.UsageError("give --bank-id or --bank")
     rules = PromotionRules(min_answers=min_answers, max_se=max_se, min_fit_p=min_fit_p)
-    settings = _settings(prior=(), no_priors=no_priors)
+    settings = _settings(prior=(), no_priors=no_priors, max_iterations=max_iterations)
     summary = pretest_files(db_path, out=out, bank_id=bank_id, bank_path=bank_path, rules=rules,
                             settings=settings, report=report, include_not_ready=include_not_ready)
     for warning in summary["warnings"]:
         click.echo(f"warning: {warning}", err=True)
     echo_json(summary)
+    run = summary.get("calibration")
+    if run is not None and not run["converged"]:
+        _not_converged(run["iterations"], run["last_change"], run["tolerance"])
