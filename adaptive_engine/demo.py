@@ -1,8 +1,10 @@
 """The guided demo: a simulation study of the licensing exam and a short survey session.
 
-It uses the files shipped in the repository (``simulations/`` and ``item_banks/``), found
-from the package's location (the package is installed in editable mode from the
-repository).
+It uses the example files of the repository (``simulations/`` and ``item_banks/``), which
+the installed package does not carry: they are looked for in the folder given as
+``files`` (``adaptive-engine demo --files CHECKOUT``), else in the current folder, else
+next to the package (a checkout installed with ``pip install -e .``).  When none holds
+them the demo stops with an error naming the missing files and where it looked.
 """
 
 from __future__ import annotations
@@ -18,23 +20,40 @@ EXAM_DESIGN = "simulations/licensing_exam.toml"
 EXAM_BANK = "item_banks/meridian_valley_operator.csv"
 SURVEY_DESIGN = "simulations/staff_climate_survey.toml"
 SURVEY_BANK = "item_banks/staff_climate_survey.csv"
+DEMO_FILES = (EXAM_DESIGN, EXAM_BANK, SURVEY_DESIGN, SURVEY_BANK)
 
 
-def repository_root() -> Path:
-    """The repository folder holding the shipped demo files (raises when they are missing)."""
-    root = Path(__file__).resolve().parents[1]
-    missing = [p for p in (EXAM_DESIGN, EXAM_BANK, SURVEY_DESIGN, SURVEY_BANK) if not (root / p).is_file()]
-    if missing:
-        raise AdaptiveEngineError(
-            f"the demo files are not next to the package ({', '.join(missing)} missing under {root}); "
-            "the demo runs from a checkout of the repository installed with pip install -e .",
-            "demo")
-    return root
+def repository_root(files: str | Path | None = None) -> Path:
+    """The folder holding the demo's example files (see the module notes).
+
+    Raises
+    ------
+    AdaptiveEngineError
+        Located at ``--files`` when no candidate folder holds all of :data:`DEMO_FILES`.
+    """
+    if files is not None:
+        candidates = [Path(files)]
+    else:
+        candidates = [Path.cwd(), Path(__file__).resolve().parents[1]]
+    for root in candidates:
+        if all((root / name).is_file() for name in DEMO_FILES):
+            return root
+    first = candidates[0]
+    missing = [name for name in DEMO_FILES if not (first / name).is_file()]
+    looked = " and ".join(str(c) for c in candidates)
+    raise AdaptiveEngineError(
+        f"the demo needs the example files {', '.join(missing)} of the adaptive_engine repository, "
+        f"not found under {looked}; an installed package does not carry them: run the demo in a "
+        "checkout of the repository or give --files PATH_TO_CHECKOUT", "--files")
 
 
 def run_demo(*, out_dir: str | Path = "demo_output", examinees: int = 1000, seed: int = 2026,
-             say: Callable[[str], None] = print) -> dict:
-    """Run the demo; ``say`` receives the lines to show.  Returns the two results."""
+             say: Callable[[str], None] = print, files: str | Path | None = None) -> dict:
+    """Run the demo; ``say`` receives the lines to show.  Returns the two results.
+
+    ``files``: a folder holding the example files (a repository checkout); default: the
+    current folder or the package's checkout (:func:`repository_root`).
+    """
     from .bank import load_bank
     from .design_file import read_design
     from .examinees import parse_ability_spec
@@ -42,7 +61,7 @@ def run_demo(*, out_dir: str | Path = "demo_output", examinees: int = 1000, seed
     from .session import try_session
     from .simulation_files import run_study, summary_table
 
-    root = repository_root()
+    root = repository_root(files)
     design = read_design(root / EXAM_DESIGN)
     bank = load_bank(root / EXAM_BANK)
     say(f"1. Simulating {examinees} examinees on the Meridian Valley water-operator licensing exam")

@@ -403,6 +403,25 @@ def test_demo_runs(tmp_path, monkeypatch):
     assert "staff-climate" in r.output and "stopped:" in r.output
 
 
+def test_demo_without_the_example_files_names_what_is_missing(tmp_path, monkeypatch):
+    # as from an installed (non-editable) package: no checkout next to the package or in
+    # the current folder
+    from adaptive_engine import demo
+
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setattr(demo, "__file__", str(tmp_path / "site" / "adaptive_engine" / "demo.py"))
+    r = CliRunner().invoke(main, ["demo", "--examinees", "20"])
+    assert r.exit_code == 2
+    assert "--files" in r.output and "simulations/licensing_exam.toml" in r.output
+    assert "item_banks/staff_climate_survey.csv" in r.output
+    assert not (tmp_path / "demo_output").exists()
+    # pointing --files at a checkout runs it from anywhere
+    _shipped()
+    r = CliRunner().invoke(main, ["demo", "--examinees", "30", "--files", str(ROOT), "--out", "d"])
+    assert r.exit_code == 0, r.output
+    assert (tmp_path / "d" / "report.html").exists()
+
+
 # -- progress ------------------------------------------------------------------------------
 
 def test_progress_inside_a_single_chunk():

@@ -278,9 +278,16 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
               type=click.Path(file_okay=False, path_type=str), help="Folder for the simulation report.")
 @click.option("--examinees", type=int, default=1000, show_default=True, help="Simulated examinees.")
 @click.option("--seed", type=int, default=2026, show_default=True, help="Run seed.")
+@click.option("--files", "files_dir", default=None, type=click.Path(file_okay=False, path_type=str),
+              help="Repository checkout holding simulations/ and item_banks/ "
+                   "[default: the current folder, or the package's own checkout].")
 @report_errors
-def demo_command(out_dir, examinees, seed):
-    """Simulate the shipped licensing exam, write its report, then run a short survey session."""
+def demo_command(out_dir, examinees, seed, files_dir):
+    """Simulate the shipped licensing exam, write its report, then run a short survey session.
+
+    Needs the example designs and banks of the repository: run it in a checkout, or point
+    --files at one (an installed package does not carry them).
+    """
     from ..demo import run_demo
 
-    run_demo(out_dir=out_dir, examinees=examinees, seed=seed, say=click.echo)
+    run_demo(out_dir=out_dir, examinees=examinees, seed=seed, say=click.echo, files=files_dir)
