@@ -18,7 +18,7 @@ import pytest
 import sqlite_utils
 
 from adaptive_engine import models
-from adaptive_engine.bank import bank_from_records
+from adaptive_engine.bank import bank_from_records, load_bank
 from adaptive_engine.bank_io import bank_to_json_text
 from adaptive_engine.calibration.pretest import PromotionRules, calibrate_pretest
 from adaptive_engine.errors import CalibrationError
@@ -141,7 +141,6 @@ def test_bank_lookup_and_errors(tmp_path):
 def test_pretest_cli(tmp_path):
     from click.testing import CliRunner
 
-    from adaptive_engine.bank import load_bank
     from adaptive_engine.cli import main
 
     rng = np.random.default_rng(43)
@@ -250,3 +249,78 @@ def test_pretest_slopes_in_the_units_of_a_normal_metric_bank(tmp_path):
     for iid, (a, b) in true.items():
         assert rows[iid]["a"] == pytest.approx(a, rel=0.25), rows[iid]
         assert rows[iid]["b"] == pytest.approx(b, abs=0.25), rows[iid]
+
+
+LIVE_DESIGN = """
+[opening]
+theta = 0.0
+
+[scoring]
+method = "eap"
+
+[selection]
+criterion = "max_fisher_information"
+
+[exposure]
+method = "none"
+
+[blueprint]
+pretest_positions = [3, 7]
+
+[stopping]
+min_items = 12
+max_items = 12
+"""
+
+
+def test_pretest_calibration_of_real_live_sessions(tmp_path):
+    # End to end through the embedding API: sessions run by start_session/submit_answer on a
+    # design that seeds pretest items, written by the real session store; then pretest
+    # calibration (library and CLI) reads that store.  A change of the store's tables or
+    # event log that the calibration does not follow breaks this test.
+    from click.testing import CliRunner
+
+    from adaptive_engine import api
+    from adaptive_engine.cli import main
+
+    rng = np.random.default_rng(47)
+    records = [dict(item_id=f"MV-{j:03d}", model="2PL", a=float(rng.uniform(0.9, 1.8)), b=float(b))
+               for j, b in enumerate(np.linspace(-2.5, 2.5, 40))]
+    true = {"MV-P1": (1.1, -0.4), "MV-P2": (1.4, 0.5)}
+    records += [dict(item_id=iid, model="2PL", a=1.0, b=0.0, status="pretest") for iid in true]
+    bank = bank_from_records(records, name="meridian valley live")
+    truth = _truth(bank, true)
+    design_file = tmp_path / "live.toml"
+    design_file.write_text(LIVE_DESIGN)
+    design = api.read_design(design_file)
+    store_path = tmp_path / "sessions.db"
+    store = api.open_store(store_path)
+    n_sessions = 320
+    for s in range(n_sessions):
+        theta = rng.normal(0.3, 1.0)
+        reply = api.start_session(store, design, bank, examinee=f"MV-cand-{s:04d}", seed=s)
+        while not reply["done"]:
+            row = truth.index_of[reply["item_id"]]
+            p = models.probabilities(truth.params.take(np.array([row])), np.array([theta]))[0]
+            reply = api.submit_answer(store, reply["session_id"], reply["item_id"], int(rng.random() < p[1]))
+    store.close()
+    result = calibrate_pretest(store_path, bank=bank, rules=PromotionRules(min_answers=150, max_se=0.5))
+    assert result.summary["sessions"] == n_sessions
+    assert result.summary["pretest_answers"] == 2 * n_sessions
+    assert result.summary["operational_answers"] == 12 * n_sessions
+    rows = {r["item_id"]: r for r in result.rows}
+    assert set(rows) == set(true)
+    for iid, (a, b) in true.items():
+        # Reference: the generating values; ~320 answers give SE(b) ~ 0.1, SE(a) ~ 0.15
+        assert rows[iid]["b"] == pytest.approx(b, abs=0.35), rows[iid]
+        assert rows[iid]["a"] == pytest.approx(a, abs=0.5), rows[iid]
+    out, report = tmp_path / "pretest.json", tmp_path / "pretest.csv"
+    res = CliRunner().invoke(main, ["pretest", "calibrate", "--db", str(store_path), "--bank-id",
+                                    result.summary["bank_id"], "--out", str(out), "--report", str(report),
+                                    "--min-answers", "150", "--max-se", "0.5", "--include-not-ready"])
+    assert res.exit_code == 0, res.output
+    summary = json.loads(res.stdout)
+    assert summary["sessions"] == n_sessions and summary["pretest_items"] == 2
+    written = load_bank(out)
+    for iid in true:
+        assert written.a[written.index_of[iid]] == pytest.approx(rows[iid]["a"], rel=1e-6)
