@@ -11,7 +11,8 @@ taken one column at a time in a fixed order, and iterative methods freeze a row 
 it converges.  So scoring one examinee alone gives bit-for-bit the result of scoring them
 inside a batch of any size, with any padding width and any chunking -- the live session and
 the simulation rely on this to replay each other exactly.  EAP grids depend only on a
-row's own prior (or on the ``grid`` passed in), never on the other rows.
+row's own prior and own answered items (or on the ``grid`` passed in), never on the other
+rows.
 
 Status strings
 --------------
