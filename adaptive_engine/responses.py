@@ -168,8 +168,12 @@ def _build(rows, lines, source) -> ResponseTable:
 
 def read_responses_text(text: str, *, source: str = "responses") -> ResponseTable:
     """Parse long-format response CSV text."""
-    # newline="" lets the csv module see bare "\r" line ends instead of failing on them
-    reader = csv.reader(io.StringIO(text, newline=""))
+    plain = _is_plain(text)
+    # newline="" lets the csv module see bare "\r" line ends instead of failing on them;
+    # a plain file's header is its first line, and a StringIO of a large text would copy
+    # it at four bytes a character just to read that line
+    head = text[: text.find("\n") + 1] if plain and "\n" in text else text
+    reader = csv.reader(io.StringIO(head, newline=""))
     try:
         header = [h.strip() for h in next(reader)]
     except StopIteration:
@@ -180,6 +184,13 @@ def read_responses_text(text: str, *, source: str = "responses") -> ResponseTabl
     if missing:
         raise ResponseDataError([Problem(f"{source} line 1", f"missing required column {c!r}") for c in missing])
     cols = [header.index(c) for c in REQUIRED_COLUMNS]
+    if plain:
+        fast = _read_plain_body(text, len(header), cols, source)
+        if fast is not None:
+            return fast
+        if head is not text:
+            reader = csv.reader(io.StringIO(text, newline=""))
+            next(reader)
     rows, lines, problems = [], [], []
     try:
         for row in reader:
@@ -196,6 +207,115 @@ def read_responses_text(text: str, *, source: str = "responses") -> ResponseTabl
     if problems:
         raise ResponseDataError(problems[:50])
     return _build(rows, lines, source)
+
+
+#: rows converted per block by the plain-file reader (bounds its temporary arrays)
+_BLOCK = 262144
+#: cells longer than this go to the csv module, which knows its own field-size limit
+_LONGEST_PLAIN_CELL = 1000
+
+
+def _is_plain(text: str) -> bool:
+    """ASCII without quotes, carriage returns or NUL bytes: lines and fields are where the
+    newlines and commas are, exactly as the csv module would find them."""
+    return text.isascii() and '"' not in text and "\r" not in text and "\x00" not in text
+
+
+def _read_plain_body(text: str, n_fields: int, cols, source: str) -> ResponseTable | None:
+    """Vectorised reading of a plain file; None when the file needs the general path.
+
+    ``text`` must pass :func:`_is_plain`.  It is read here when, besides, every non-empty
+    line has ``n_fields`` fields, no id is empty or has surrounding blanks, every response
+    is 1-18 ASCII digits and no person-item pair repeats.  Such a file reads the same under
+    the csv module, so the result is identical; anything else (including every file with an
+    error) returns None and takes the row-by-row path, which gives the located messages.  Millions of answers
+    through the row-by-row path cost seconds and a gigabyte of Python objects; here they
+    cost byte arrays.
+    """
+    buf = np.frombuffer(text.encode("ascii"), dtype=np.uint8)
+    newline = np.flatnonzero(buf == 10)
+    starts = np.concatenate([[0], newline + 1])
+    ends = np.concatenate([newline, [buf.size]])
+    del newline
+    body = ends > starts
+    body[0] = False  # the header
+    line_no = np.flatnonzero(body) + 1
+    starts, ends = starts[body], ends[body]
+    del body
+    if starts.size == 0:
+        return None
+    commas = np.flatnonzero(buf == 44)
+    commas = commas[commas >= starts[0]]
+    per_line = np.searchsorted(commas, ends) - np.searchsorted(commas, starts)
+    if np.any(per_line != n_fields - 1):
+        return None
+    commas = commas.reshape(starts.size, n_fields - 1)
+
+    def bounds(c):
+        return (starts if c == 0 else commas[:, c - 1] + 1), (ends if c == n_fields - 1 else commas[:, c])
+
+    persons = _plain_cells(buf, *bounds(cols[0]))
+    items = None if persons is None else _plain_cells(buf, *bounds(cols[1]))
+    response = None if items is None else _plain_digits(buf, *bounds(cols[2]))
+    if response is None:
+        return None
+    del commas, starts, ends
+    person_ids, person = _first_appearance_codes(persons)
+    item_ids, item = _first_appearance_codes(items)
+    pairs = np.sort(person * item_ids.size + item)
+    if np.any(pairs[1:] == pairs[:-1]):
+        return None  # a repeated pair: the row-by-row path names both lines
+    return ResponseTable(person_ids=person_ids, item_ids=item_ids, person=person, item=item,
+                         response=response, lines=line_no.astype(np.int64), source=source)
+
+
+def _cell_bytes(buf, start, end):
+    """Cells as a fixed-width byte matrix (rows, width) and their lengths, block by block."""
+    length = end - start
+    width = int(length.max())
+    out = np.zeros((start.size, max(width, 1)), dtype=np.uint8)
+    offsets = np.arange(width)
+    for lo in range(0, start.size, _BLOCK):
+        hi = min(lo + _BLOCK, start.size)
+        index = np.minimum(start[lo:hi, None] + offsets, buf.size - 1)
+        out[lo:hi, :width] = np.where(offsets < length[lo:hi, None], buf[index], 0)
+    return out, length
+
+
+def _plain_cells(buf, start, end):
+    """Id cells as an ``S`` array, or None if any is empty, too long or has edge blanks."""
+    length = end - start
+    if length.min() < 1 or length.max() > _LONGEST_PLAIN_CELL:
+        return None
+    if np.any(buf[start] <= 32) or np.any(buf[end - 1] <= 32):
+        return None  # blanks around an id: the general path strips them
+    matrix, _ = _cell_bytes(buf, start, end)
+    return np.ascontiguousarray(matrix).view(f"S{matrix.shape[1]}").ravel()
+
+
+def _plain_digits(buf, start, end):
+    """Responses of 1-18 ASCII digits as int64, or None if any cell is anything else."""
+    length = end - start
+    if length.min() < 1 or length.max() > 18:
+        return None
+    matrix, _ = _cell_bytes(buf, start, end)
+    inside = np.arange(matrix.shape[1]) < length[:, None]
+    digits = matrix.astype(np.int64) - 48
+    if np.any(inside & ((digits < 0) | (digits > 9))):
+        return None
+    power = np.where(inside, length[:, None] - 1 - np.arange(matrix.shape[1]), 0)
+    return np.sum(np.where(inside, digits * 10 ** power, 0), axis=1)
+
+
+def _first_appearance_codes(cells):
+    """Distinct values in order of first appearance (object array of str) and codes."""
+    values, first, inverse = np.unique(cells, return_index=True, return_inverse=True)
+    order = np.argsort(first, kind="stable")
+    rank = np.empty(order.size, dtype=np.int64)
+    rank[order] = np.arange(order.size)
+    ids = np.empty(order.size, dtype=object)
+    ids[:] = [v.decode("ascii") for v in values[order]]
+    return ids, rank[inverse.ravel()]
 
 
 def read_responses(path: str | Path) -> ResponseTable:

@@ -117,3 +117,68 @@ def test_bare_carriage_return_line_ends_and_huge_numbers():
     table = read_responses_text("person_id,item_id,response\rp1,MV-01,1\rp1,MV-02,0\r")
     assert table.n_answers == 2 and table.lines.tolist() == [2, 3]
     located(HEADER + "p1,MV-01," + "9" * 30 + "\n", r"line 2: response 9+ is too large")
+
+
+def _oracle(text):
+    """Independent parse with the standard library's csv module and dicts (the definition of
+    the file format: blank rows skipped, ids stripped, first appearance order, file lines)."""
+    import csv
+    import io
+
+    reader = csv.reader(io.StringIO(text, newline=""))
+    header = [h.strip() for h in next(reader)]
+    cols = [header.index(c) for c in ("person_id", "item_id", "response")]
+    persons, items, out = {}, {}, []
+    for row in reader:
+        if not any(cell.strip() for cell in row):
+            continue
+        pid, iid, raw = (row[c] for c in cols)
+        p = persons.setdefault(pid.strip(), len(persons))
+        i = items.setdefault(iid.strip(), len(items))
+        out.append((p, i, int(raw), reader.line_num))
+    return list(persons), list(items), out
+
+
+_IDS = st.sampled_from(["p1", "p2", "p10", "P1", "x", "staff-00042", "p 3", " p4", "é5", "MV-01", "MV-2", "SC-9"])
+
+
+@settings(max_examples=60, deadline=None)
+@given(pairs=st.lists(st.tuples(_IDS, _IDS), min_size=1, max_size=25, unique=True),
+       responses=st.lists(st.sampled_from(["0", "1", "4", "12", " 2", "007", "3 "]), min_size=25, max_size=25),
+       layout=st.sampled_from(["person_id,item_id,response", "response,item_id,person_id,extra",
+                               "item_id , person_id,response"]),
+       blank_every=st.integers(0, 5), final_newline=st.booleans(), quoted=st.booleans())
+def test_vectorised_reader_equals_the_csv_module(pairs, responses, layout, blank_every, final_newline, quoted):
+    # Oracle: the standard library csv module (see _oracle).  Plain files take the
+    # vectorised path, others (quotes, blanks around ids, non-ASCII) the row-by-row path;
+    # both must give exactly the oracle's table.
+    names = [h.strip() for h in layout.split(",")]
+    lines = [layout]
+    for k, ((pid, iid), raw) in enumerate(zip(pairs, responses)):
+        cell = dict(person_id=pid, item_id=iid, response=raw, extra="z")
+        if quoted and k == 0:
+            cell["item_id"] = f'"{iid}"'
+        lines.append(",".join(cell[n] for n in names))
+        if blank_every and k % blank_every == 0:
+            lines.append("" if k % 2 else " , ,")  # blank rows are skipped, even with commas
+    text = "\n".join(lines) + ("\n" if final_newline else "")
+    if any(p.strip() == "" for pair in pairs for p in pair) or len({(p.strip(), i.strip()) for p, i in pairs}) < len(pairs):
+        return
+    table = read_responses_text(text)
+    persons, items, rows = _oracle(text)
+    assert table.person_ids.tolist() == persons and table.item_ids.tolist() == items
+    assert table.person.tolist() == [r[0] for r in rows] and table.item.tolist() == [r[1] for r in rows]
+    assert table.response.tolist() == [r[2] for r in rows] and table.lines.tolist() == [r[3] for r in rows]
+    assert table.person.dtype == table.item.dtype == table.response.dtype == table.lines.dtype == np.int64
+
+
+def test_errors_deep_in_a_large_plain_file_are_located():
+    body = "".join(f"p{k // 20},i{k % 20},{k % 2}\n" for k in range(6000))
+    lines = body.splitlines()
+    lines[3997] = "p9999,i3,x"
+    lines[4500] = lines[10]  # a repeated pair (first at line 12)
+    with pytest.raises(ResponseDataError) as info:
+        read_responses_text(HEADER + "\n".join(lines) + "\n", source="answers.csv")
+    found = [str(p) for p in info.value.problems]
+    assert found[0] == "answers.csv line 3999: response 'x' is not a whole number"
+    assert found[1].startswith("answers.csv line 4502: person 'p0' answered item 'i10' twice (first at line 12)")
