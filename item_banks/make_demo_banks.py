@@ -11,7 +11,8 @@ and two long response files (``person_id,item_id,response``) of invented people 
 them, for the README tour (``adaptive-engine score``, calibration):
 
 * ``meridian_valley_responses.csv`` -- 300 invented candidates, 30 operational items each;
-* ``staff_climate_responses.csv`` -- 200 invented respondents, 20 survey items each.
+* ``staff_climate_responses.csv`` -- 600 invented respondents answering all 40 survey items
+  (complete data, enough to calibrate the survey bank again).
 
 Banks and answers are invented for demonstration only: they are not calibrated from any
 data and must never serve as a reference in tests.  Every draw comes from one
@@ -73,7 +74,7 @@ OPERATOR_RESPONSES_SEED = 20_240_613
 SURVEY_RESPONSES_SEED = 20_240_614
 #: (file name, persons, items per person, person id prefix) of each response file
 OPERATOR_RESPONSES = ("meridian_valley_responses.csv", 300, 30, "MV-CAND")
-SURVEY_RESPONSES = ("staff_climate_responses.csv", 200, 20, "SC-RESP")
+SURVEY_RESPONSES = ("staff_climate_responses.csv", 600, 40, "SC-RESP")
 DECIMALS = 3
 
 OPERATOR_AREAS = {
