@@ -18,7 +18,7 @@ from adaptive_engine.responses import read_responses
 
 ITEM_BANKS = Path(__file__).resolve().parents[1] / "item_banks"
 CASES = [("meridian_valley_responses.csv", "meridian_valley_operator.json", 300, 30),
-         ("staff_climate_responses.csv", "staff_climate_survey.json", 200, 20)]
+         ("staff_climate_responses.csv", "staff_climate_survey.json", 600, 40)]
 
 
 @pytest.mark.parametrize("responses, bank_name, n_persons, n_items", CASES)
