@@ -13,7 +13,11 @@ of the sessions of a bank (``sessions.bank_id``).  Here:
    scale without any linking step;
 3. each item is judged against user thresholds -- answers, largest parameter SE and the
    grouped posterior chi-square p-value -- and marked ``ready`` (to promote) or not, with
-   the reasons.  The items are written back with status ``pretest``, ready to merge.
+   the reasons.  The items keep status ``pretest``; the command line writes the ready ones
+   (all with ``--include-not-ready``), ready to merge.
+
+The pretest M-step runs with the bank's scaling constant D, and in a Rasch-like bank the
+pretest items keep the operational items' common slope (:func:`operational_common_slopes`).
 
 The store is opened read-only; only the tables and columns of the session-store contract
 are read (``sessions``: session_id, bank_id; ``banks``: bank_id, content; ``events``:
