@@ -219,3 +219,10 @@ def test_scaling_follows_the_template_and_never_overrides_a_json_bank(tmp_path):
     res = runner.invoke(main, ["link", str(out), "--to", str(out), "--out", str(tmp_path / "l.json"),
                                "--scaling", "1.0"])
     assert res.exit_code == 2 and "1.702" in res.output
+
+
+def test_link_method_names_on_the_command_line_match_the_library():
+    from adaptive_engine.calibration.linking import METHODS
+    from adaptive_engine.cli.calibrate_commands import LINK_METHODS
+
+    assert tuple(LINK_METHODS) == tuple(METHODS)

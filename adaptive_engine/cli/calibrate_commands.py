@@ -6,11 +6,13 @@ import sys
 
 import click
 
-from ..calibration import CalibrationSettings, prior_choice_from_texts
-from ..calibration.jobs import calibrate_file, link_files, pretest_files
-from ..calibration.linking import METHODS
-from ..calibration.pretest import PromotionRules
 from ._common import echo_json, main, report_errors
+
+# The calibration modules load scipy.stats and scipy.sparse; they are imported inside the
+# commands so that every other command (the session commands an app calls per answer)
+# starts without them.  The linking method names are repeated here for the same reason
+# (tests/test_calibration_cli.py checks they equal calibration.linking.METHODS).
+LINK_METHODS = ("mean_mean", "mean_sigma", "haebara", "stocking_lord")
 
 _FILE = click.Path(dir_okay=False, path_type=str)
 _MODELS = ["1PL", "2PL", "3PL", "4PL", "GRM", "GPCM", "Rasch", "PCM"]
@@ -26,7 +28,9 @@ def _not_converged(iterations, last_change, tolerance) -> None:
     sys.exit(EXIT_NOT_CONVERGED)
 
 
-def _settings(**kw) -> CalibrationSettings:
+def _settings(**kw):
+    from ..calibration import CalibrationSettings, prior_choice_from_texts
+
     priors = prior_choice_from_texts(kw.pop("prior"), use_defaults=not kw.pop("no_priors"))
     return CalibrationSettings(priors=priors, **kw)
 
@@ -68,6 +72,8 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
     settings = _settings(prior=prior, no_priors=no_priors, common_slope=common_slope,
                          quadrature_points=quadrature_points, max_iterations=max_iterations,
                          tolerance=tolerance, min_answers=min_answers)
+    from ..calibration.jobs import calibrate_file
+
     summary = calibrate_file(responses, out=out, model=model, template_path=template, settings=settings,
                              fit_report=fit_report, scaling=scaling)
     echo_json(summary)
@@ -78,7 +84,7 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
 @main.command("link")
 @click.argument("new_bank", metavar="NEW_BANK", type=_FILE)
 @click.option("--to", "base_bank", required=True, type=_FILE, help="Bank whose scale NEW_BANK is put on.")
-@click.option("--method", type=click.Choice(METHODS), default="stocking_lord", show_default=True,
+@click.option("--method", type=click.Choice(LINK_METHODS), default="stocking_lord", show_default=True,
               help="How the slope and intercept of the transformation are found.")
 @click.option("--out", required=True, type=_FILE, help="Linked bank to write (.csv, .json or .db).")
 @click.option("--anchors", default=None, help="Comma-separated common item ids (default: all shared ids).")
@@ -96,6 +102,8 @@ def link_command(new_bank, base_bank, method, out, anchors, max_difficulty_shift
     Prints the slope and intercept (theta_base = slope * theta_new + intercept) and the anchors that drifted.
     """
     anchor_list = [a.strip() for a in anchors.split(",") if a.strip()] if anchors else None
+    from ..calibration.jobs import link_files
+
     echo_json(link_files(new_bank, to=base_bank, out=out, method=method, anchors=anchor_list,
                          max_difficulty_shift=max_difficulty_shift, max_slope_ratio=max_slope_ratio,
                          scaling=scaling))
@@ -137,6 +145,9 @@ def pretest_calibrate_command(db_path, bank_id, bank_path, out, include_not_read
     """
     if not bank_id and not bank_path:
         raise click.UsageError("give --bank-id or --bank")
+    from ..calibration.jobs import pretest_files
+    from ..calibration.pretest import PromotionRules
+
     rules = PromotionRules(min_answers=min_answers, max_se=max_se, min_fit_p=min_fit_p)
     settings = _settings(prior=(), no_priors=no_priors, max_iterations=max_iterations)
     summary = pretest_files(db_path, out=out, bank_id=bank_id, bank_path=bank_path, rules=rules,
