@@ -14,6 +14,10 @@ from ..errors import AdaptiveEngineError
 #: Exit code for any error caused by the user's input.
 EXIT_INPUT_ERROR = 2
 
+#: Help of every ``--scaling`` option that reads a bank.
+SCALING_HELP = ("Scaling constant D of a CSV bank (default 1.0).  JSON and SQLite banks carry "
+                "their own D; a value that disagrees with it is an error.")
+
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="adaptive-engine")

@@ -6,11 +6,9 @@ import click
 
 from .. import bank_io, bank_report
 from ..bank import load_bank
-from ._common import echo_json, main, report_errors
+from ._common import SCALING_HELP, echo_json, main, report_errors
 
 _BANK_PATH = click.Path(dir_okay=False, path_type=str)
-SCALING_HELP = ("Scaling constant D of a CSV bank (default 1.0).  JSON and SQLite banks carry "
-                "their own D; a value that disagrees with it is an error.")
 
 
 @main.group()

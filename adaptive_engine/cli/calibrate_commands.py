@@ -6,7 +6,7 @@ import sys
 
 import click
 
-from ._common import echo_json, main, report_errors
+from ._common import SCALING_HELP, echo_json, main, report_errors
 
 # The calibration modules load scipy.stats and scipy.sparse; they are imported inside the
 # commands so that every other command (the session commands an app calls per answer)
@@ -92,9 +92,7 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
               help="Flag an anchor whose difficulty moved more than this after linking (>= 0).")
 @click.option("--max-slope-ratio", type=float, default=1.5, show_default=True,
               help="Flag an anchor whose slope changed by more than this factor, up or down, after linking (>= 1).")
-@click.option("--scaling", type=float, default=None,
-              help="Scaling constant D of CSV banks (default 1.0).  JSON/SQLite banks keep the D they declare; "
-                   "a different value is an error.")
+@click.option("--scaling", type=float, default=None, help=SCALING_HELP)
 @report_errors
 def link_command(new_bank, base_bank, method, out, anchors, max_difficulty_shift, max_slope_ratio, scaling):
     """Put NEW_BANK on the scale of the --to bank through their common items.

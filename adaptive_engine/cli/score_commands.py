@@ -12,7 +12,7 @@ from ..bank import load_bank
 from ..errors import AdaptiveEngineError
 from ..estimation import METHODS, score_responses
 from ..responses import read_responses
-from ._common import echo_json, main, report_errors
+from ._common import SCALING_HELP, echo_json, main, report_errors
 
 #: The CSV columns of ``score``; ``--with-status`` appends ``status``.
 SCORE_COLUMNS = ("person_id", "theta", "se", "n_items")
@@ -46,9 +46,7 @@ def _check_prior(mean: float, sd: float) -> None:
               help="Mean of the normal ability prior (map, eap; start values otherwise).")
 @click.option("--prior-sd", type=float, default=1.0, show_default=True,
               help="Standard deviation of the normal ability prior.")
-@click.option("--scaling", type=float, default=None,
-              help="Scaling constant D of a CSV bank (default 1.0).  JSON and SQLite banks carry "
-                   "their own D; a value that disagrees with it is an error.")
+@click.option("--scaling", type=float, default=None, help=SCALING_HELP)
 @click.option("--format", "output_format", type=click.Choice(["csv", "json"]), default="csv",
               show_default=True, help="Output format on stdout.")
 @click.option("--with-status", is_flag=True,
