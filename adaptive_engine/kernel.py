@@ -182,16 +182,23 @@ def _mixed(ctx, items, resp) -> np.ndarray:
 def _best_information_item(ctx, state, rows, picked) -> tuple[np.ndarray, np.ndarray]:
     """The most informative eligible item at theta and its information, (R,) each."""
     design = ctx.design
-    if design.selection.criterion == "max_fisher_information" and design.exposure.method == "none":
-        return picked.item, picked.value
-    n = ctx.n_items
-    cand = np.broadcast_to(np.arange(n), (rows.size, n))
-    ok = eligible(ctx, state, rows, cand)
-    info = models.information(all_item_params(ctx), state.theta[rows][:, None])
-    info = np.where(ok, info, -np.inf)
-    best = np.argmax(info, axis=1)
-    value = info[np.arange(rows.size), best]
-    return np.where(np.isfinite(value), best, -1), value
+    item = picked.item.copy()
+    value = picked.value.copy()
+    # the pick itself is the answer when it was made by maximum information alone; pretest
+    # items and items that continue a set (value NaN) are not, nor are exposure-controlled picks
+    known = np.isfinite(value) & (design.selection.criterion == "max_fisher_information") \
+        & (design.exposure.method == "none")
+    todo = np.flatnonzero(~known)
+    if todo.size:
+        sub = rows[todo]
+        cand = np.broadcast_to(np.arange(ctx.n_items), (sub.size, ctx.n_items))
+        info = models.information(all_item_params(ctx), state.theta[sub][:, None])
+        info = np.where(eligible(ctx, state, sub, cand), info, -np.inf)
+        best = np.argmax(info, axis=1)
+        best_value = info[np.arange(sub.size), best]
+        item[todo] = np.where(np.isfinite(best_value), best, -1)
+        value[todo] = best_value
+    return item, value
 
 
 def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:
