@@ -52,31 +52,32 @@ def ranked_tables(bank: ItemBank) -> RankedTables:
         # steepest slope of each item's information curve, from differences on the fine
         # grid, inflated by 1.5 plus a margin so that it bounds the true derivative
         slope = np.abs(np.diff(info, axis=1)).max(axis=1) / RANK_STEP * 1.5 + 1e-9
-        reach_all = info + 0.5 * RANK_STEP * slope[:, None]
+        # grid points as rows: every ranking below runs along contiguous rows
+        info_t = np.ascontiguousarray(info.T)  # (Gf, n)
+        reach_t = info_t + 0.5 * RANK_STEP * slope[None, :]
         operational = np.flatnonzero(bank.status == "operational")
         groups = [operational[bank.area_index[operational] == k] for k in range(len(bank.areas))]
         groups.append(operational)
         items = np.full((len(groups), grid.size, RANK_DEPTH), -1, dtype=np.int64)
         reach = np.full(items.shape, -np.inf)
         ceiling = np.full((len(groups), grid.size), -np.inf)
-        cols = np.arange(grid.size)
         for k, members in enumerate(groups):
             if members.size == 0:
                 continue
-            sub = info[members]
+            sub = info_t[:, members]  # (Gf, m)
             depth = min(RANK_DEPTH, members.size)
             if members.size > depth:
-                top = np.argpartition(-sub, depth - 1, axis=0)[:depth]  # (depth, Gf), unordered
-                vals = np.take_along_axis(sub, top, axis=0)
-                order = np.take_along_axis(top, np.argsort(-vals, axis=0, kind="stable"), axis=0).T
+                top = np.argpartition(-sub, depth - 1, axis=1)[:, :depth]  # unordered best
+                vals = np.take_along_axis(sub, top, axis=1)
+                order = np.take_along_axis(top, np.argsort(-vals, axis=1, kind="stable"), axis=1)
             else:
-                order = np.argsort(-sub, axis=0, kind="stable").T  # (Gf, depth)
+                order = np.argsort(-sub, axis=1, kind="stable")  # (Gf, depth)
+            sub_reach = reach_t[:, members]
             items[k, :, :depth] = members[order]
-            reach[k, :, :depth] = reach_all[members[order], cols[:, None]]
+            reach[k, :, :depth] = np.take_along_axis(sub_reach, order, axis=1)
             if members.size > depth:
-                listed = np.zeros(sub.shape, dtype=bool)
-                np.put_along_axis(listed, order.T, True, axis=0)
-                ceiling[k] = np.where(listed, -np.inf, reach_all[members]).max(axis=0)
+                np.put_along_axis(sub_reach, order, -np.inf, axis=1)  # listed items drop out
+                ceiling[k] = sub_reach.max(axis=1)
         return RankedTables(grid=grid, items=items, reach=reach, ceiling=ceiling)
 
     return bank._cached(("ranked_tables", RANK_STEP, RANK_DEPTH), make)
