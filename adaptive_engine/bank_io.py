@@ -203,7 +203,17 @@ def write_text_file(path: str | Path, text: str) -> None:
 
 
 def write_bank_csv(bank: ItemBank, path: str | Path) -> None:
-    """Write ``bank`` as CSV (scaling and name are not stored: CSV has no place for them)."""
+    """Write ``bank`` as CSV (the name is not stored: CSV has no place for it).
+
+    A bank whose D is not 1 is refused: CSV has no place for D either, and reading the
+    file back would silently give D = 1.
+    """
+    if bank.scaling != 1.0:
+        raise BankError(
+            f"the bank has scaling constant D = {bank.scaling:g}, and a CSV bank has no place "
+            "for D (reading it back would give D = 1); write .json or .db instead",
+            location=str(path),
+        )
     _write_text(Path(path), bank_to_csv_text(bank))
 
 
@@ -286,14 +296,7 @@ def convert_bank(bank_path: str | Path, out_path: str | Path, *,
     from .bank import load_bank
 
     bank = load_bank(bank_path, scaling=scaling)
-    out_path = Path(out_path)
-    if out_path.suffix.lower() == ".csv" and bank.scaling != 1.0:
-        raise BankError(
-            f"the bank has scaling constant D = {bank.scaling:g}, and a CSV bank has no place "
-            "for D (reading it back would give D = 1); write .json or .db instead",
-            location=str(out_path),
-        )
-    return bank, write_bank(bank, out_path)
+    return bank, write_bank(bank, Path(out_path))
 
 
 # ----------------------------------------------------------------------------------------
