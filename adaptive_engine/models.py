@@ -264,7 +264,7 @@ def log_probabilities(params: ItemParameters, theta) -> np.ndarray:
 
 def probabilities(params: ItemParameters, theta) -> np.ndarray:
     """Category probabilities, shape ``broadcast(params, theta) + (C,)``; rows sum to 1."""
-    if params.family.size and not np.any(params.family) and params.max_categories == 2:
+    if _all_dichotomous(params):
         # all dichotomous (the simulation's hot path): P1 = c t + d s, P0 = (1-c) t + (1-d) s
         z = np.clip(params.scaling * params.a * (np.asarray(theta, dtype=float) - params.b), -700.0, 700.0)
         e = np.exp(-z)
@@ -283,10 +283,36 @@ def derivatives(params: ItemParameters, theta, second: bool = False):
     p, dp : arrays, shape ``S + (C,)``
     d2p : array, shape ``S + (C,)`` (only when ``second`` is true)
     """
+    if _all_dichotomous(params):
+        return _dichotomous_derivatives(params, theta, second)
     shape, _, p, dp, d2p = _family_terms(params, theta, second)
     out = (p.reshape(shape + (-1,)), dp.reshape(shape + (-1,)))
     if second:
         out = out + (d2p.reshape(shape + (-1,)),)
+    return out
+
+
+def _all_dichotomous(params: ItemParameters) -> bool:
+    return bool(params.family.size) and not np.any(params.family) and params.max_categories == 2
+
+
+def _dichotomous_derivatives(params: ItemParameters, theta, second: bool):
+    """:func:`derivatives` for 1PL-4PL items only, without the log-space machinery.
+
+    ``P1 = c t + d s``, ``P0 = (1 - c) t + (1 - d) s``, ``P1' = D a (d - c) s t`` and
+    ``P1'' = D a P1' (t - s)`` with ``s = 1 / (1 + exp(-z))`` and ``t = 1 - s``.
+    """
+    z = np.clip(params.scaling * params.a * (np.asarray(theta, dtype=float) - params.b), -700.0, 700.0)
+    e = np.exp(-z)
+    s = 1.0 / (1.0 + e)
+    t = e * s
+    c, d = params.c, params.d
+    slope = params.scaling * params.a
+    d1 = slope * (d - c) * s * t
+    out = (np.stack([(1.0 - c) * t + (1.0 - d) * s, c * t + d * s], axis=-1), np.stack([-d1, d1], axis=-1))
+    if second:
+        d2 = slope * d1 * (t - s)
+        out = out + (np.stack([-d2, d2], axis=-1),)
     return out
 
 
