@@ -11,7 +11,7 @@ Files
 ``summary.json``
     :func:`adaptive_engine.metrics.summarize` plus the run's settings.
 ``examinees.csv``
-    ``examinee,seed,true_theta,theta,se,n_items,n_pretest,stop_reason,scaled_score`` and
+    ``examinee,true_theta,theta,se,n_items,stop_reason,n_pretest,scaled_score,seed`` and
     one ``class_<cut>`` column per cut score (``seed`` replays the examinee as a live
     session).
 ``administrations.csv``
@@ -102,16 +102,17 @@ def examinees_csv(result: SimulationResult) -> str:
     cuts = result.design.reporting.cut_scores
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["examinee", "seed", "true_theta", "theta", "se", "n_items", "n_pretest", "stop_reason",
-                "scaled_score"] + [f"class_{c.name}" for c in cuts])
+    # the columns first, in its order; then what this project adds
+    w.writerow(["examinee", "true_theta", "theta", "se", "n_items", "stop_reason", "n_pretest",
+                "scaled_score", "seed"] + [f"class_{c.name}" for c in cuts])
     for i in range(result.size):
         labels = []
         for k, c in enumerate(cuts):
             v = result.at_or_above[i, k]
             labels.append(c.above if v == 1 else c.below if v == 0 else "")
-        w.writerow([i, int(result.seeds[i]), _num(result.true_theta[i]), _num(result.theta[i]),
-                    _num(result.se[i]), int(result.n_scored[i]), int(result.n_pretest[i]),
-                    result.stop_reason[i], _num(result.scaled_score[i])] + labels)
+        w.writerow([i, _num(result.true_theta[i]), _num(result.theta[i]), _num(result.se[i]),
+                    int(result.n_scored[i]), result.stop_reason[i], int(result.n_pretest[i]),
+                    _num(result.scaled_score[i]), int(result.seeds[i])] + labels)
     return buf.getvalue()
 
 
