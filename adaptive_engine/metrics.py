@@ -326,6 +326,37 @@ def item_table(item_ids, administered, offered, n_examinees: int) -> list[dict]:
             for i, m, o in zip(item_ids, administered, offered)]
 
 
+def exposure_by_stratum(true_theta, administered_by_stratum, cuts, target) -> list[dict]:
+    """Exposure rates within true-ability strata (Stocking & Lewis 1998: the conditional
+    exposure rate P(item given | theta in stratum)).
+
+    Parameters
+    ----------
+    true_theta : float (N,)
+    administered_by_stratum : int (S, n_items)
+        Administrations per stratum of true ability.
+    cuts : float sequence (S - 1,)
+        Inner stratum boundaries; stratum s is ``[cuts[s-1], cuts[s])``.
+    target : float
+        The rate ``share_above_target`` counts against.
+    """
+    cuts = np.asarray(cuts, dtype=float)
+    stratum = np.searchsorted(cuts, np.asarray(true_theta, dtype=float), side="right")
+    edges = np.concatenate([[-np.inf], cuts, [np.inf]])
+    out = []
+    for s in range(cuts.size + 1):
+        n_s = int(np.sum(stratum == s))
+        rates = administered_by_stratum[s] / n_s if n_s else np.zeros(administered_by_stratum.shape[1])
+        out.append({
+            "theta_from": None if s == 0 else float(edges[s]),
+            "theta_to": None if s == cuts.size else float(edges[s + 1]),
+            "examinees": n_s,
+            "max_exposure": float(rates.max()) if n_s else None,
+            "share_above_target": float(np.mean(rates > target)) if n_s else None,
+        })
+    return out
+
+
 def summarize(result, *, exposure_target: float | None = None, edges=None) -> dict:
     """All metrics of a :class:`~adaptive_engine.simulation.SimulationResult`.
 
@@ -347,6 +378,9 @@ def summarize(result, *, exposure_target: float | None = None, edges=None) -> di
     cont = content(result.area_counts, bank.areas, design.blueprint.areas)
     cond = conditional(result.true_theta, result.theta, result.se, result.n_scored,
                        result.at_or_above, design.reporting.cut_scores, edges)
+    if result.administered_by_stratum is not None and design.exposure_strata:
+        expo["by_stratum"] = exposure_by_stratum(result.true_theta, result.administered_by_stratum,
+                                                 design.exposure_strata, expo["exposure_target"])
     headline = {
         "examinees": n, "seed": result.seed, "bank_items": bank.n_items,
         "rmse": prec["rmse"], "bias": prec["bias"], "mae": prec["mae"], "mean_se": prec["mean_se"],

@@ -178,9 +178,11 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
     try:
         if staging is not None and write_administrations:
             writer = _AdministrationWriter(staging / "administrations.csv", bank)
+        # a design with ability-conditional exposure parameters is judged stratum by stratum
+        strata = design.exposure_strata or None
         result = simulate(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
                           chunk_size=chunk_size, executor=executor, workers=workers,
-                          on_chunk=writer, progress=progress)
+                          on_chunk=writer, progress=progress, count_by_stratum=strata)
         if writer is not None:
             writer.close()
         summary = metrics.summarize(result, exposure_target=exposure_target)

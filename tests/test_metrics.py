@@ -179,3 +179,37 @@ def test_ability_bins_grid_and_edges():
     rows = metrics.conditional(many, many + 0.1, np.full(200, 0.2), np.full(200, 12))
     assert sum(r["n"] for r in rows) == 200
     assert all(r["bias"] == pytest.approx(0.1) for r in rows)
+
+
+def test_conditional_exposure_rates_are_recounted_from_the_administrations(tmp_path):
+    # Stocking & Lewis (1998): the conditional exposure rate of an item is the share of the
+    # examinees in an ability stratum who were given it.  Oracle: a recount from the study's
+    # own administrations.csv and examinees.csv with the csv module.
+    import csv
+    import json
+    from pathlib import Path
+
+    from adaptive_engine.bank import load_bank
+    from adaptive_engine.design_file import read_design
+    from adaptive_engine.examinees import parse_ability_spec
+    from adaptive_engine.simulation_files import run_study
+
+    root = Path(__file__).resolve().parents[1]
+    design = read_design(root / "simulations" / "conditional_sympson_hetter.toml")
+    bank = load_bank(root / "item_banks" / "meridian_valley_operator.csv")
+    run_study(design, bank, abilities=parse_ability_spec("normal:0,1"), n_examinees=300, seed=8, out_dir=tmp_path)
+    summary = json.loads((tmp_path / "summary.json").read_text())
+    by_stratum = summary["exposure"]["by_stratum"]
+    cuts = list(design.exposure_strata)
+    with open(tmp_path / "examinees.csv", newline="") as fh:
+        theta = {int(r["examinee"]): float(r["true_theta"]) for r in csv.DictReader(fh)}
+    stratum = {e: sum(t >= c for c in cuts) for e, t in theta.items()}
+    counts = [{} for _ in range(len(cuts) + 1)]
+    with open(tmp_path / "administrations.csv", newline="") as fh:
+        for r in csv.DictReader(fh):
+            s = stratum[int(r["examinee"])]
+            counts[s][r["item_id"]] = counts[s].get(r["item_id"], 0) + 1
+    for s, entry in enumerate(by_stratum):
+        n_s = sum(1 for v in stratum.values() if v == s)
+        assert entry["examinees"] == n_s
+        assert entry["max_exposure"] == pytest.approx(max(counts[s].values()) / n_s)
