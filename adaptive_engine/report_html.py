@@ -126,13 +126,16 @@ def simulation_report_html(result, summary: dict, *, title: str = "") -> str:
     length_rows = [{"figure": k, "value": v} for k, v in length.items() if not isinstance(v, dict)]
     length_rows += [{"figure": k, "value": v} for k, v in length["length_percentiles"].items()]
     reasons = [{"stop reason": k, "examinees": v} for k, v in length["stop_reasons"].items()]
-    expo = [{"figure": k, "value": v} for k, v in summary["exposure"].items()]
+    expo = [{"figure": k, "value": v} for k, v in summary["exposure"].items() if k != "by_stratum"]
     parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>",
              f"<style>{_STYLE}</style></head><body><h1>{html.escape(title)}</h1>",
              f"<p class='note'>{_fmt(summary.get('examinees'))} simulated examinees, seed {_fmt(summary.get('seed'))}.</p>",
              "<h2>Precision</h2>", table_html(headline),
              "<h2>Test length</h2>", table_html(length_rows), table_html(reasons),
              "<h2>Exposure</h2>", table_html(expo)]
+    if summary["exposure"].get("by_stratum"):
+        parts += ["<p class='note'>Exposure within strata of true ability (the design's "
+                  "conditional exposure parameters):</p>", table_html(summary["exposure"]["by_stratum"])]
     if summary["classification"]:
         parts += ["<h2>Classification</h2>", table_html(summary["classification"])]
     if summary["content"]:

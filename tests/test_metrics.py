@@ -209,6 +209,8 @@ def test_conditional_exposure_rates_are_recounted_from_the_administrations(tmp_p
         for r in csv.DictReader(fh):
             s = stratum[int(r["examinee"])]
             counts[s][r["item_id"]] = counts[s].get(r["item_id"], 0) + 1
+    page = (tmp_path / "report.html").read_text()
+    assert "Exposure within strata of true ability" in page and "[{" not in page
     for s, entry in enumerate(by_stratum):
         n_s = sum(1 for v in stratum.values() if v == s)
         assert entry["examinees"] == n_s
