@@ -58,7 +58,9 @@ def assemble_shadow_test(ctx, state, row: int) -> np.ndarray | None:
         constraints=LinearConstraint(a_mat.tocsr(), np.array(lo), np.array(hi)),
         integrality=np.ones(n),
         bounds=Bounds(lower, upper),
-        options={"time_limit": 10.0},
+        # presolve costs more than it saves on these small, well-formed problems (measured:
+        # about 14 ms per solve without it, 44 ms with it, same optimum on the demo bank)
+        options={"time_limit": 10.0, "presolve": False},
     )
     if res.x is None or not res.success:
         return None
