@@ -39,7 +39,8 @@ from .design import Design
 from .errors import SessionError
 from .kernel_state import KernelState
 from .randomness import stream_key
-from .store import SessionStore, bank_content, design_content, now_text, plain, to_json
+from .jsonable import plain
+from .store import SessionStore, bank_content, design_content, now_text, to_json
 
 _ROW0 = np.zeros(1, dtype=np.int64)
 _MAX_SEED = 1 << 63

@@ -36,7 +36,6 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import json
-import math
 import sqlite3
 import time
 import tomllib
@@ -45,13 +44,13 @@ from pathlib import Path
 from typing import Callable, Iterator
 
 import attrs
-import numpy as np
 import sqlite_utils
 
 from .bank import ItemBank, read_bank_json_text
 from .bank_io import bank_to_json_text
 from .design import Design
 from .errors import SessionError
+from .jsonable import plain
 
 #: Seconds a writer waits for another process's write lock before giving up.
 BUSY_TIMEOUT_SECONDS = 60.0
@@ -76,21 +75,6 @@ def now_text() -> str:
 def to_json(obj) -> str:
     """Compact JSON of plain data and numpy scalars/arrays; NaN and inf become null."""
     return json.dumps(plain(obj), separators=(",", ":"), allow_nan=False)
-
-
-def plain(obj):
-    """``obj`` with numpy values turned into Python ones and non-finite floats into None."""
-    if isinstance(obj, dict):
-        return {str(k): plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [plain(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return plain(obj.tolist())
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj
 
 
 def _sha256(text: str) -> str:

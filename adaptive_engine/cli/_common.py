@@ -10,6 +10,7 @@ import click
 
 from .. import __version__
 from ..errors import AdaptiveEngineError
+from ..jsonable import plain
 
 #: Exit code for any error caused by the user's input.
 EXIT_INPUT_ERROR = 2
@@ -47,22 +48,4 @@ def report_errors(func):
 
 def echo_json(obj) -> None:
     """Print ``obj`` as JSON on stdout (NaN/inf become null)."""
-    click.echo(json.dumps(_clean(obj), indent=None, allow_nan=False))
-
-
-def _clean(obj):
-    import math
-
-    import numpy as np
-
-    if isinstance(obj, dict):
-        return {str(k): _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _clean(obj.tolist())
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj
+    click.echo(json.dumps(plain(obj), indent=None, allow_nan=False))

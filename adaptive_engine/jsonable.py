@@ -1,0 +1,22 @@
+"""Plain, JSON-ready values from results that hold numpy scalars and arrays."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+
+def plain(obj):
+    """``obj`` with numpy values turned into Python ones and non-finite floats into None."""
+    if isinstance(obj, dict):
+        return {str(k): plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [plain(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return plain(obj.tolist())
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
