@@ -201,8 +201,8 @@ def describe_design(design: Design) -> list[str]:
     -------
     list of str
     """
-    op, sc, sel, ex, bp, st, rp = (design.opening, design.scoring, design.selection, design.exposure,
-                                   design.blueprint, design.stopping, design.reporting)
+    op, sc, sel, ex, bp, st = (design.opening, design.scoring, design.selection, design.exposure,
+                               design.blueprint, design.stopping)
     if op.random_theta is None:
         start = f"start at theta {op.theta:g}"
     else:

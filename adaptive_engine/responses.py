@@ -259,7 +259,6 @@ def _read_plain_body(text: str, n_fields: int, cols, source: str) -> ResponseTab
     response = None if items is None else _plain_digits(buf, *bounds(cols[2]))
     if response is None:
         return None
-    del commas, starts, ends
     person_ids, person = _first_appearance_codes(persons)
     item_ids, item = _first_appearance_codes(items)
     pairs = np.sort(person * item_ids.size + item)

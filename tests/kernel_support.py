@@ -2,15 +2,10 @@
 
 from __future__ import annotations
 
-import attrs
 import numpy as np
 
 from adaptive_engine import kernel, models, randomness
 from adaptive_engine.bank import bank_from_records
-from adaptive_engine.context import build_context
-from adaptive_engine.design import (
-    AreaRule, Blueprint, Design, Exposure, Opening, Scoring, Selection, Stopping,
-)
 
 AREAS = ("alpha", "beta", "gamma")
 
@@ -48,11 +43,6 @@ def structured_bank(seed: int = 0, n: int = 120, *, polytomous: int = 0, pretest
             rec["status"] = "pretest"
         recs.append(rec)
     return bank_from_records(recs)
-
-
-def design(**sections) -> Design:
-    """A Design with the given sections (attrs objects) and the rest at defaults."""
-    return Design(**sections)
 
 
 def run_batch(ctx, true_theta, seed: int, *, start_index: int = 0, record_thetas=False):

@@ -17,7 +17,7 @@ from adaptive_engine import bank_io
 from adaptive_engine.bank import bank_from_records, load_bank
 from adaptive_engine.errors import BankError
 
-from strategies import any_items, item_banks
+from strategies import item_banks
 
 REPO = Path(__file__).resolve().parents[1]
 ITEM_BANKS = REPO / "item_banks"

@@ -18,10 +18,10 @@ import pytest
 from scipy.special import expit
 
 from adaptive_engine.bank import bank_from_records
-from adaptive_engine.calibration import CalibrationSettings, calibrate_responses
+from adaptive_engine.calibration import calibrate_responses
 from adaptive_engine.calibration.item_fit import (
-    fit_for_result, grouped_posterior_fit, item_report_rows, normal_grid, rasch_mean_squares,
-    rows_to_csv, s_x2, summed_score_expectations, summed_score_likelihood,
+    fit_for_result, item_report_rows, normal_grid, rasch_mean_squares,
+    rows_to_csv, summed_score_expectations, summed_score_likelihood,
 )
 from adaptive_engine.responses import ResponseTable
 

@@ -8,14 +8,13 @@ those sizes (stated at each check).
 
 from __future__ import annotations
 
-import attrs
 import numpy as np
 import pytest
 
 from adaptive_engine import metrics, models, simulation
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design import (
-    CutScore, Design, Exposure, Reporting, Scoring, SprtRule, Stopping,
+    CutScore, Design, Reporting, SprtRule, Stopping,
 )
 from adaptive_engine.exposure_calibration import calibrate_sympson_hetter, with_parameters
 

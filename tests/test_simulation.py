@@ -7,7 +7,6 @@ import json
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
-import attrs
 import numpy as np
 import pytest
 from click.testing import CliRunner

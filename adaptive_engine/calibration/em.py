@@ -30,7 +30,7 @@ from ..errors import CalibrationError
 from ..responses import ResponseTable
 from .data import CalibrationData, prepare_data
 from .item_forms import ItemGroup, category_jacobian
-from .m_step import fisher_steps, group_objective, shared_slope_step
+from .m_step import fisher_steps, shared_slope_step
 from .priors import PriorChoice
 
 #: above this many persons x parameters the cross-product matrix is built item by item
