@@ -24,6 +24,10 @@ One file holds everything a live session needs, so a session resumes from the st
     How often each item of a bank was given, and how many sessions a bank started: the
     exposure rate of an item is ``count / sessions_started``.
 
+Item security: the file holds the whole item bank and every examinee's answers, so a new
+store is created owner-only (mode 0600, whatever the umask); SQLite gives the ``-wal`` and
+``-shm`` files it creates the database file's mode.  An existing file keeps its mode.
+
 Concurrency: the database runs in WAL mode with a busy timeout, and every write is one
 ``BEGIN IMMEDIATE`` transaction (the write lock is taken up front, so two writers never
 deadlock on a lock upgrade and nobody sees "database is locked" while waiting is possible).
@@ -36,6 +40,7 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import json
+import os
 import sqlite3
 import time
 import tomllib
@@ -65,6 +70,76 @@ _COUNT_EXPOSURE = ("INSERT INTO exposure_counts (bank_id, item_id, count) VALUES
                    "ON CONFLICT (bank_id, item_id) DO UPDATE SET count = count + 1")
 _COUNT_SESSION = ("INSERT INTO bank_sessions (bank_id, sessions_started) VALUES (?, 1) "
                   "ON CONFLICT (bank_id) DO UPDATE SET sessions_started = sessions_started + 1")
+
+
+#: Characters of an id or a value quoted in a message; longer ones are cut.
+SHOWN_CHARACTERS = 60
+
+
+def shown(value, *, limit: int = SHOWN_CHARACTERS) -> str:
+    """A short, printable, one-line form of ``value`` for messages and locations.
+
+    Text that is printable is kept as it is (cut to ``limit`` characters); text with
+    control characters, line breaks or lone surrogates (what invalid UTF-8 bytes on a POSIX
+    command line decode to) is shown escaped, so a message never fails to print and is
+    always one line.  Integers too long to print whole are described by their length.
+    """
+    if isinstance(value, str):
+        cut = value[:limit]
+        text = cut if cut.isprintable() else repr(cut)[1:-1]
+        return text if len(value) <= limit else f"{text}... ({len(value)} characters)"
+    if isinstance(value, int) and not isinstance(value, bool) and value.bit_length() > 64:
+        # str() of an integer above 4300 digits raises; its length is enough here
+        digits = int(value.bit_length() * 0.30103) + 1
+        return f"{'-' if value < 0 else ''}an integer of about {digits} digits"
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
+def check_text(value, what: str, *, location: str) -> str:
+    """``value`` if it is text SQLite can store, else a :class:`SessionError` at ``location``.
+
+    Parameters
+    ----------
+    value : object
+        An id from the app or the command line.
+    what : str
+        How the message names it (``"the session id"``).
+    location : str
+        The error's location (the parameter's name).
+    """
+    if not isinstance(value, str):
+        raise SessionError(f"{what} must be text, got {type(value).__name__}", location=location)
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        raise SessionError(
+            f"{what} '{shown(value)}' is not valid text: character {exc.start + 1} is a lone surrogate "
+            f"(invalid UTF-8 bytes on a command line decode to these)", location=location) from None
+    return value
+
+
+def _create_owner_only(path: Path) -> None:
+    """Create an empty file at ``path`` with mode 0600 unless something is there already.
+
+    An empty file is an empty SQLite database.  ``O_EXCL`` makes the creation atomic: when
+    two processes race to create a store, one creates it and the other opens that file.
+    """
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0), 0o600)
+    except FileExistsError:
+        return
+    except (OSError, ValueError) as exc:  # ValueError: a NUL byte in the path
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        raise SessionError(f"cannot create the session store: {reason}",
+                           location=shown(str(path), limit=400)) from None
+    try:
+        if hasattr(os, "fchmod"):
+            # the umask only removes bits; one that removed the owner's write bit would
+            # leave a store SQLite cannot write
+            os.fchmod(fd, 0o600)
+    finally:
+        os.close(fd)
 
 
 def now_text() -> str:
@@ -147,10 +222,13 @@ class SessionStore:
         memory = str(path) == ":memory:"
         if not memory:
             p = Path(path)
+            where = shown(str(p), limit=400)
             if not create and not p.exists():
-                raise SessionError(f"no session store at {p}", location=str(p))
+                raise SessionError(f"no session store at {where}", location=where)
             if p.is_dir():
-                raise SessionError(f"is a directory, not a session store: {p}", location=str(p))
+                raise SessionError(f"is a directory, not a session store: {where}", location=where)
+            if create:
+                _create_owner_only(p)
         self.path = str(path)
         self.before_commit: Callable[[], None] | None = None
         self.key = ":memory:%d" % id(self) if memory else str(Path(path).resolve())
@@ -164,7 +242,7 @@ class SessionStore:
             conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
             self._ensure_schema()
         except sqlite3.DatabaseError as exc:
-            raise SessionError(f"not a usable session store: {exc}", location=self.path) from None
+            raise SessionError(f"not a usable session store: {exc}", location=shown(self.path, limit=400)) from None
 
     # -- schema ------------------------------------------------------------------------
     _TABLES = ("sessions", "events", "banks", "designs", "exposure_counts", "bank_sessions")
@@ -270,12 +348,11 @@ class SessionStore:
 
     def session_row(self, session_id: str) -> dict:
         """The session's row as a dict; SessionError if there is no such session."""
-        if not isinstance(session_id, str):
-            raise SessionError(f"a session id must be text, got {type(session_id).__name__}", location="session_id")
+        check_text(session_id, "the session id", location="session_id")
         row = self.conn.execute(f"SELECT {', '.join(self._SESSION_FIELDS)} FROM sessions WHERE session_id = ?",
                                 (session_id,)).fetchone()
         if row is None:
-            raise SessionError(f"unknown session {session_id!r}", location=f"session {session_id}")
+            raise SessionError(f"unknown session '{shown(session_id)}'", location=f"session {shown(session_id)}")
         return dict(zip(self._SESSION_FIELDS, row))
 
     def insert_session(self, row: dict) -> None:
@@ -284,8 +361,8 @@ class SessionStore:
             self.conn.execute(f"INSERT INTO sessions ({', '.join(cols)}) VALUES ({', '.join('?' for _ in cols)})",
                               [row[c] for c in cols])
         except sqlite3.IntegrityError:
-            raise SessionError(f"session {row['session_id']!r} already exists",
-                               location=f"session {row['session_id']}") from None
+            raise SessionError(f"session '{shown(row['session_id'])}' already exists",
+                               location=f"session {shown(row['session_id'])}") from None
         self.conn.execute(_COUNT_SESSION, (row["bank_id"],))
 
     def update_session(self, session_id: str, changes: dict) -> None:
@@ -315,7 +392,7 @@ class SessionStore:
 
     def sessions(self, *, status: str | None = None) -> list[dict]:
         if status is not None and status not in STATUSES:
-            raise SessionError(f"status must be one of {', '.join(STATUSES)}, got {status!r}", location="status")
+            raise SessionError(f"status must be one of {', '.join(STATUSES)}, got '{shown(status)}'", location="status")
         where, args = ("status = ?", [status]) if status else (None, None)
         return list(self.db["sessions"].rows_where(where, args, order_by="created_at, session_id"))
 

@@ -8,7 +8,9 @@ semantics (BEGIN IMMEDIATE ... ROLLBACK leaves nothing).
 
 from __future__ import annotations
 
+import os
 import sqlite3
+import stat
 from pathlib import Path
 
 import numpy as np
@@ -137,3 +139,47 @@ def test_memory_store_works(tmp_path):
         with s.writing():
             s.put_bank(SURVEY_BANK)
         assert s.conn.execute("SELECT COUNT(*) FROM banks").fetchone()[0] == 1
+
+
+@pytest.mark.skipif(os.name != "posix", reason="POSIX file modes")
+def test_a_new_store_is_owner_only_whatever_the_umask(tmp_path):
+    """The store holds the whole item bank and every answer: a new file is created 0600,
+    and SQLite gives the -wal and -shm files it creates the database file's mode (SQLite's
+    unix VFS, robust_open / findCreateFileMode: "the same permissions as the database")."""
+    old = os.umask(0o002)  # a permissive umask must not widen the store's mode
+    try:
+        path = tmp_path / "owner_only.db"
+        with open_store(path) as s:
+            with s.writing():
+                s.put_bank(SURVEY_BANK)
+            for suffix in ("", "-wal", "-shm"):
+                f = Path(str(path) + suffix)
+                assert f.exists(), suffix
+                assert stat.S_IMODE(f.stat().st_mode) == 0o600, (suffix, oct(f.stat().st_mode))
+    finally:
+        os.umask(old)
+
+
+def test_an_existing_store_keeps_its_mode(tmp_path):
+    # the owner may have widened it on purpose (a group of app servers): not ours to change
+    path = tmp_path / "shared.db"
+    open_store(path).close()
+    path.chmod(0o640)
+    open_store(path).close()
+    assert stat.S_IMODE(path.stat().st_mode) == 0o640
+
+
+def test_store_paths_that_cannot_be_created_are_session_errors(tmp_path):
+    with pytest.raises(SessionError, match="cannot create"):
+        open_store(tmp_path / "no-such-folder" / "s.db")
+
+
+@pytest.mark.parametrize("bad", ["\ud800", "abc\udcff", "x\udfff"])
+def test_ids_that_are_not_valid_text_are_session_errors(store, bad):
+    """Lone surrogates (what invalid UTF-8 bytes on a POSIX command line decode to) cannot be
+    stored in SQLite; they must be refused as the project's error, printable on one line."""
+    with pytest.raises(SessionError, match="not valid text") as info:
+        store.session_row(bad)
+    message = str(info.value)
+    message.encode("utf-8")  # printable: no surrogate is copied into the message
+    assert "\n" not in message and "\\ud" in message
