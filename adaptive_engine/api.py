@@ -22,10 +22,13 @@ from .bank import load_bank
 from .design_file import read_design
 from .errors import SessionError
 from .session import (
+    PreparedStart,
     clear_process_cache,
+    commit_start,
     exposure_rates,
     list_sessions,
     pending_item,
+    prepare_start,
     session_result,
     show_session,
     start_session,
@@ -34,14 +37,17 @@ from .session import (
 from .store import SessionStore, open_store
 
 __all__ = [
+    "PreparedStart",
     "SessionError",
     "SessionStore",
     "clear_process_cache",
+    "commit_start",
     "exposure_rates",
     "list_sessions",
     "load_bank",
     "open_store",
     "pending_item",
+    "prepare_start",
     "read_design",
     "session_result",
     "show_session",

@@ -30,6 +30,7 @@ import uuid
 from collections import OrderedDict
 from typing import Callable
 
+import attrs
 import numpy as np
 
 from . import kernel
@@ -40,11 +41,17 @@ from .errors import SessionError
 from .kernel_state import KernelState
 from .randomness import stream_key
 from .jsonable import plain
-from .store import SessionStore, bank_content, design_content, now_text, to_json
+from .store import SessionStore, bank_content, check_text, design_content, now_text, shown, to_json
 
 _ROW0 = np.zeros(1, dtype=np.int64)
 _MAX_SEED = 1 << 63
-_INTEGER_TEXT = re.compile(r"^[+-]?\d+$")
+#: An integer written in ASCII digits ('\d' would also take '١' or '１' as digits).
+_INTEGER_TEXT = re.compile(r"[+-]?[0-9]+", re.ASCII)
+#: Blanks allowed around a response sent as text.
+_BLANKS = " \t\r\n"
+#: Responses beyond this size are outside the categories of every item; they are compared
+#: at this size (an integer of 5,000 digits cannot even be printed by Python).
+_RESPONSE_CLIP = 10**18
 
 
 class ProcessCache:
@@ -118,24 +125,50 @@ def clear_process_cache() -> None:
 # checking what the app sends
 
 
-def _response_value(response, where: str) -> int:
-    if isinstance(response, (bool, np.bool_)):
-        raise SessionError(f"the response must be an integer category, got {response!r}", location=where)
-    if isinstance(response, (int, np.integer)):
-        return int(response)
-    if isinstance(response, str) and _INTEGER_TEXT.match(response.strip()):
-        return int(response.strip())
-    raise SessionError(f"the response must be an integer category, got {response!r}", location=where)
+def _response_value(response, where: str) -> tuple[int, str]:
+    """The category the app sent, and how messages show it.
+
+    Accepted: a Python ``int`` or a numpy integer, or text of ASCII digits with an optional
+    sign and blanks around it.  Refused: booleans, floats (even ``1.0``), digits of other
+    scripts (``'١'``, ``'１'``) and anything else.  A value too large for any item is
+    compared as +-10**18, so the refusal can still name the item's range.
+    """
+    if isinstance(response, (int, np.integer)) and not isinstance(response, (bool, np.bool_)):
+        value = int(response)
+        text = shown(value)
+    elif isinstance(response, str) and _INTEGER_TEXT.fullmatch(response.strip(_BLANKS)):
+        text = response.strip(_BLANKS)
+        digits = text.lstrip("+-").lstrip("0")
+        # int() refuses text above 4300 digits; a category never has more than a few
+        value = int(text) if len(digits) <= 18 else (-1 if text[0] == "-" else 1) * _RESPONSE_CLIP
+        text = shown(text, limit=24)
+    else:
+        what = f"'{shown(response)}'" if isinstance(response, str) else shown(response)
+        raise SessionError(f"the response must be an integer category (an int, or text of ASCII digits), "
+                           f"got {what}", location=where)
+    return max(-_RESPONSE_CLIP, min(_RESPONSE_CLIP, value)), text
+
+
+def _finite_number(value, what: str, *, location: str) -> float:
+    """``value`` as a float if it is a finite real number (not a bool, not text)."""
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, float, np.integer, np.floating)):
+        what_it_is = f"'{shown(value)}'" if isinstance(value, str) else shown(value)
+        raise SessionError(f"{what} must be a number, got {what_it_is}", location=location)
+    try:
+        number = float(value)
+    except OverflowError:  # a Python int beyond the float range
+        number = math.inf
+    if not math.isfinite(number):
+        raise SessionError(f"{what} must be a finite number, got {shown(value)}", location=location)
+    return number
 
 
 def _elapsed_value(elapsed, where: str) -> float | None:
     if elapsed is None:
         return None
-    if isinstance(elapsed, (bool, np.bool_)) or not isinstance(elapsed, (int, float, np.integer, np.floating)):
-        raise SessionError(f"elapsed must be a number of seconds, got {elapsed!r}", location=where)
-    value = float(elapsed)
-    if not math.isfinite(value) or value < 0:
-        raise SessionError(f"elapsed must be a finite number of seconds >= 0, got {elapsed!r}", location=where)
+    value = _finite_number(elapsed, "elapsed (seconds)", location=where)
+    if value < 0:
+        raise SessionError(f"elapsed must be a number of seconds >= 0, got {shown(elapsed)}", location=where)
     return value
 
 
@@ -144,22 +177,40 @@ def _seed_value(seed) -> int:
         # an unseeded session still gets one explicit, stored seed
         return int.from_bytes(os.urandom(8), "little") % _MAX_SEED
     if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)):
-        raise SessionError(f"the seed must be an integer, got {seed!r}", location="seed")
+        raise SessionError(f"the seed must be an integer, got {shown(seed)}", location="seed")
     if not 0 <= int(seed) < _MAX_SEED:
-        raise SessionError(f"the seed must lie in [0, 2**63), got {seed}", location="seed")
+        raise SessionError(f"the seed must lie in [0, 2**63), got {shown(int(seed))}", location="seed")
     return int(seed)
 
 
-def _prior_value(value, default: float, name: str, *, positive: bool) -> float:
-    if value is None:
-        return float(default)
-    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, float, np.integer, np.floating)):
-        raise SessionError(f"{name} must be a number, got {value!r}", location=name)
-    value = float(value)
-    if not math.isfinite(value) or (positive and value <= 0):
-        raise SessionError(f"{name} must be a finite number{' > 0' if positive else ''}, got {value!r}",
-                           location=name)
-    return value
+def _prior_values(design: Design, prior_mean, prior_sd) -> tuple[float, float]:
+    """The examinee-specific prior, checked against the design's ability grid.
+
+    The mean must lie on the grid [grid_min, grid_max]: the posterior lives on the grid,
+    and a prior centred far off it has no mass there (every estimate would be NaN).  The
+    SD must lie between one grid step and the grid's width: below one step the prior puts
+    all its mass on the nearest grid point (and underflows to zero everywhere for tiny
+    values); above the width it is flat on the grid already, so a larger value only
+    signals a mistake (a variance for an SD, another scale's units).
+    """
+    sc = design.scoring
+    lo, hi = float(sc.grid_min), float(sc.grid_max)
+    width = hi - lo
+    step = width / (sc.grid_points - 1)
+    mean, sd = float(sc.prior_mean), float(sc.prior_sd)
+    if prior_mean is not None:
+        mean = _finite_number(prior_mean, "the prior mean", location="prior_mean")
+        if not lo <= mean <= hi:
+            raise SessionError(f"the prior mean must lie on the design's ability grid [{lo:g}, {hi:g}], "
+                               f"got {shown(prior_mean)}", location="prior_mean")
+    if prior_sd is not None:
+        sd = _finite_number(prior_sd, "the prior SD", location="prior_sd")
+        # a relative margin so that an SD of exactly one step or the width passes
+        if not step * (1 - 1e-9) <= sd <= width * (1 + 1e-9):
+            raise SessionError(f"the prior SD must lie between one step of the design's ability grid "
+                               f"({step:g}) and the grid's width ({width:g}), got {shown(prior_sd)}",
+                               location="prior_sd")
+    return mean, sd
 
 
 # ----------------------------------------------------------------------------------------
@@ -231,6 +282,90 @@ def _session_changes(ctx: TestContext, state: KernelState, seq: int, now: str, r
 # the requests
 
 
+@attrs.frozen(eq=False)
+class PreparedStart:
+    """A start request that passed every check, with its first step computed.
+
+    Build with :func:`prepare_start` (needs no store), then write it with
+    :func:`commit_start`.  Nothing about it can be refused any more except by the store
+    itself (a session id already taken, a file that is not a store).
+    """
+
+    design: Design
+    bank: ItemBank
+    ctx: TestContext
+    state: KernelState
+    row: dict
+    events: list
+    result: dict | None
+
+
+def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None, seed: int | None = None,
+                  prior_mean: float | None = None, prior_sd: float | None = None,
+                  session_id: str | None = None, cache: ProcessCache | None = None) -> PreparedStart:
+    """Check a start request and compute the session's first step, touching no store.
+
+    Takes the options of :func:`start_session`.  A caller that may have to create the
+    store (the command line) calls this first, so that a refused request creates nothing.
+
+    Raises
+    ------
+    SessionError
+        A bad examinee id, session id, seed, prior mean or SD (``location`` names the
+        parameter).
+    DesignError
+        The design does not fit the bank.
+    """
+    cache = PROCESS_CACHE if cache is None else cache
+    if examinee is not None:
+        check_text(examinee, "the examinee id", location="examinee")
+    if session_id is not None:
+        check_text(session_id, "the session id", location="session_id")
+        if not session_id.strip():
+            raise SessionError("a session id must be non-empty text", location="session_id")
+    seed = _seed_value(seed)
+    mean, sd = _prior_values(design, prior_mean, prior_sd)
+    bank_id = bank_content(bank)[0]
+    design_id = design_content(design)[0]
+    if not cache.has_context(design_id, bank_id):
+        from .design_check import require_design_fits_bank
+
+        require_design_fits_bank(design, bank)
+    # the context is built from the objects given: no store is read
+    ctx = cache.context(None, design_id, bank_id, design=design, bank=bank)
+    key = np.array([stream_key(seed)], dtype=np.uint64)
+    state, picked = kernel.start(ctx, key, prior_mean=mean, prior_sd=sd, count_eligible=True)
+    session_id = session_id or uuid.uuid4().hex
+    now = now_text()
+    events, result = _next_events(ctx, state, picked, 1, now)
+    row = {"session_id": session_id, "examinee": examinee, "bank_id": bank_id, "design_id": design_id,
+           "seed": seed, "created_at": now, "prior_mean": mean, "prior_sd": sd,
+           **_session_changes(ctx, state, 1, now, result)}
+    return PreparedStart(design=design, bank=bank, ctx=ctx, state=state, row=row,
+                         events=[dict(e, session_id=session_id) for e in events], result=result)
+
+
+def commit_start(store: SessionStore, prepared: PreparedStart, *, cache: ProcessCache | None = None) -> dict:
+    """Write a prepared start to ``store`` (one transaction) and return its reply.
+
+    Returns
+    -------
+    dict
+        As :func:`start_session`.
+    """
+    cache = PROCESS_CACHE if cache is None else cache
+    row, state = prepared.row, prepared.state
+    with store.writing():
+        store.put_bank(prepared.bank)
+        store.put_design(prepared.design)
+        store.insert_session(row)
+        store.append_events(prepared.events)
+        if state.pending[0] >= 0:
+            store.count_exposure(row["bank_id"], row["pending_item"])
+    cache.keep(store, row["session_id"], 1, state)
+    return _reply(row["session_id"], prepared.ctx, state, prepared.result)
+
+
 def start_session(store: SessionStore, design: Design, bank: ItemBank, *, examinee: str | None = None,
                   seed: int | None = None, prior_mean: float | None = None, prior_sd: float | None = None,
                   session_id: str | None = None, cache: ProcessCache | None = None) -> dict:
@@ -242,13 +377,15 @@ def start_session(store: SessionStore, design: Design, bank: ItemBank, *, examin
     design, bank : Design, ItemBank
         Stored in the store (once per content) so the session never needs the files again.
     examinee : str, optional
-        The app's id of the examinee (not interpreted).
+        The app's id of the examinee (not interpreted; valid Unicode text).
     seed : int in [0, 2**63), optional
         Fixes every random decision of the test; a fresh one is drawn and stored if absent.
         ``randomness.examinee_seeds(S, N)[i]`` reproduces simulated examinee i of a run
         with seed S.
     prior_mean, prior_sd : float, optional
-        An examinee-specific prior (returning examinees); default: the design's.
+        An examinee-specific prior (returning examinees); default: the design's.  The mean
+        must lie on the design's ability grid [grid_min, grid_max], the SD between one grid
+        step and the grid's width (defaults: [-6, 6], 0.1 .. 12).
     session_id : str, optional
         Default: a random UUID (hex).
 
@@ -258,39 +395,15 @@ def start_session(store: SessionStore, design: Design, bank: ItemBank, *, examin
         ``session_id``, ``item_id`` (None if no item is eligible), ``item`` (id, area,
         label, n_categories), ``theta``, ``se``, ``items_given``, ``done`` (and ``result``
         when done).
-    """
-    cache = PROCESS_CACHE if cache is None else cache
-    if examinee is not None and not isinstance(examinee, str):
-        raise SessionError(f"the examinee id must be text, got {examinee!r}", location="examinee")
-    if session_id is not None and (not isinstance(session_id, str) or not session_id.strip()):
-        raise SessionError(f"a session id must be non-empty text, got {session_id!r}", location="session_id")
-    seed = _seed_value(seed)
-    mean = _prior_value(prior_mean, design.scoring.prior_mean, "prior_mean", positive=False)
-    sd = _prior_value(prior_sd, design.scoring.prior_sd, "prior_sd", positive=True)
-    bank_id = bank_content(bank)[0]
-    design_id = design_content(design)[0]
-    if not cache.has_context(design_id, bank_id):
-        from .design_check import require_design_fits_bank
 
-        require_design_fits_bank(design, bank)
-    ctx = cache.context(store, design_id, bank_id, design=design, bank=bank)
-    key = np.array([stream_key(seed)], dtype=np.uint64)
-    state, picked = kernel.start(ctx, key, prior_mean=mean, prior_sd=sd, count_eligible=True)
-    session_id = session_id or uuid.uuid4().hex
-    now = now_text()
-    events, result = _next_events(ctx, state, picked, 1, now)
-    row = {"session_id": session_id, "examinee": examinee, "bank_id": bank_id, "design_id": design_id,
-           "seed": seed, "created_at": now, "prior_mean": mean, "prior_sd": sd,
-           **_session_changes(ctx, state, 1, now, result)}
-    with store.writing():
-        store.put_bank(bank)
-        store.put_design(design)
-        store.insert_session(row)
-        store.append_events([dict(e, session_id=session_id) for e in events])
-        if state.pending[0] >= 0:
-            store.count_exposure(bank_id, row["pending_item"])
-    cache.keep(store, session_id, 1, state)
-    return _reply(session_id, ctx, state, result)
+    Raises
+    ------
+    SessionError, DesignError
+        As :func:`prepare_start`, or the session id is taken.  Nothing is written then.
+    """
+    prepared = prepare_start(design, bank, examinee=examinee, seed=seed, prior_mean=prior_mean,
+                             prior_sd=prior_sd, session_id=session_id, cache=cache)
+    return commit_start(store, prepared, cache=cache)
 
 
 def submit_answer(store: SessionStore, session_id: str, item_id: str, response, *,
@@ -299,10 +412,15 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
 
     Parameters
     ----------
-    response : int (or text of an integer)
-        The category observed, 0 .. n_categories - 1.
+    session_id, item_id : str
+        Valid Unicode text (no lone surrogates).
+    response : int, numpy integer, or str
+        The category observed, 0 .. n_categories - 1: an ``int`` or numpy integer (not a
+        bool, not a float such as ``1.0``), or text of ASCII digits (``"1"``, ``" 2 "``;
+        not ``"١"`` or ``"１"``).
     elapsed : float, optional
-        Seconds the examinee has spent so far (used by a time-limit stopping rule).
+        Seconds the examinee has spent so far (used by a time-limit stopping rule): a
+        finite number >= 0.
 
     Returns
     -------
@@ -318,11 +436,11 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
         session has finished.  Nothing is written then.
     """
     cache = PROCESS_CACHE if cache is None else cache
-    where = f"session {session_id}"
-    if not isinstance(item_id, str):
-        raise SessionError(f"the item id must be text, got {item_id!r}", location=f"{where} item_id")
-    value = _response_value(response, f"{where} item {item_id} response")
-    elapsed = _elapsed_value(elapsed, f"{where} item {item_id} elapsed")
+    check_text(session_id, "the session id", location="session_id")
+    where = f"session {shown(session_id)}"
+    check_text(item_id, "the item id", location="item_id")
+    value = _response_value(response, f"{where} item {shown(item_id)} response")
+    elapsed = _elapsed_value(elapsed, f"{where} item {shown(item_id)} elapsed")
     row = store.session_row(session_id)
     # the context may take a while to build: do it before taking the write lock
     ctx = cache.context(store, row["design_id"], row["bank_id"])
@@ -337,26 +455,28 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
         raise
 
 
-def _answer_locked(store, ctx, row, item_id, value, elapsed, cache, mutated) -> dict:
+def _answer_locked(store, ctx, row, item_id, response, elapsed, cache, mutated) -> dict:
+    value, value_text = response
     session_id = row["session_id"]
-    where = f"session {session_id}"
+    where = f"session {shown(session_id)}"
+    item = shown(item_id)
     if row["status"] != "active" or row["pending_item"] != item_id:
         earlier = store.answer_event(session_id, item_id)
         if earlier is not None:
             if earlier["response"] == value:
                 return json.loads(earlier["reply"])
-            raise SessionError(f"item {item_id} was already answered with {earlier['response']}; "
-                               f"a different answer ({value}) is refused", location=f"{where} item {item_id}")
+            raise SessionError(f"item {item} was already answered with {earlier['response']}; "
+                               f"a different answer ({value_text}) is refused", location=f"{where} item {item}")
         if row["status"] != "active":
             raise SessionError("the session has finished; it takes no more answers", location=where)
-        raise SessionError(f"item {item_id} is not the pending item (pending: {row['pending_item']})",
-                           location=f"{where} item {item_id}")
+        raise SessionError(f"item {item} is not the pending item (pending: {row['pending_item']})",
+                           location=f"{where} item {item}")
     bank = ctx.bank
     index = bank.index_of[item_id]
     n_cat = int(bank.n_categories[index])
     if not 0 <= value < n_cat:
-        raise SessionError(f"response {value} is outside the categories 0..{n_cat - 1} of item {item_id}",
-                           location=f"{where} item {item_id} response")
+        raise SessionError(f"response {value_text} is outside the categories 0..{n_cat - 1} of item {item}",
+                           location=f"{where} item {item} response")
     state = session_state(store, ctx, row, cache=cache)
     mutated[0] = True
     picked = kernel.answer(ctx, state, _ROW0, np.array([value]),
@@ -391,17 +511,17 @@ def session_state(store: SessionStore, ctx: TestContext, row: dict, *, cache: Pr
     unknown = [iid for iid, _, _ in answers if iid not in bank.index_of]
     if unknown:
         raise SessionError(f"the log names item {unknown[0]} that the session's bank lacks",
-                           location=f"session {session_id}")
+                           location=f"session {shown(session_id)}")
     try:
         state, _ = kernel.rebuild(ctx, int(stream_key(int(row["seed"]))), float(row["prior_mean"]),
                                   float(row["prior_sd"]), [bank.index_of[i] for i, _, _ in answers],
                                   [int(r) for _, r, _ in answers], elapsed=[e for _, _, e in answers])
     except ValueError as exc:
-        raise SessionError(f"the stored answers do not replay: {exc}", location=f"session {session_id}") from None
+        raise SessionError(f"the stored answers do not replay: {exc}", location=f"session {shown(session_id)}") from None
     pending = None if state.pending[0] < 0 else str(bank.item_ids[state.pending[0]])
     if pending != row["pending_item"]:
         raise SessionError(f"the stored answers replay to pending item {pending}, the session row says "
-                           f"{row['pending_item']}", location=f"session {session_id}")
+                           f"{row['pending_item']}", location=f"session {shown(session_id)}")
     cache.keep(store, session_id, int(row["last_seq"]), state)
     return state
 
@@ -422,12 +542,20 @@ def session_result(store: SessionStore, session_id: str) -> dict:
     """The final report of a finished session (SessionError while it is still active)."""
     row = store.session_row(session_id)
     if row["status"] != "finished":
-        raise SessionError("the session is still active: no result yet", location=f"session {session_id}")
+        raise SessionError("the session is still active: no result yet", location=f"session {shown(session_id)}")
     return json.loads(row["result"])
 
 
-def show_session(store: SessionStore, session_id: str) -> dict:
-    """The session as the log tells it: answers with the estimate after each, and the result."""
+def show_session(store: SessionStore, session_id: str, *, include_seed: bool = False) -> dict:
+    """The session as the log tells it: answers with the estimate after each, and the result.
+
+    Parameters
+    ----------
+    include_seed : bool
+        Add the session's ``seed``.  Off by default: seed and bank together predict every
+        random choice of the test (randomesque draws, pretest picks), so the seed is for
+        whoever replays a session, not for everyone who may look at it.
+    """
     row = store.session_row(session_id)
     snapshot = json.loads(row["state"])
     administered = [
@@ -436,9 +564,11 @@ def show_session(store: SessionStore, session_id: str) -> dict:
         for e in store.events(session_id) if e["kind"] == "answer"
     ]
     out = {"session_id": session_id, "examinee": row["examinee"], "status": row["status"],
-           "seed": row["seed"], "created_at": row["created_at"], "updated_at": row["updated_at"],
+           "created_at": row["created_at"], "updated_at": row["updated_at"],
            "administered": administered, "pending_item": row["pending_item"],
            "theta": snapshot["theta"][0], "se": snapshot["se"]}
+    if include_seed:
+        out["seed"] = row["seed"]
     if row["status"] == "finished":
         out["stop_reason"] = snapshot["stop_reason"]
         out["result"] = json.loads(row["result"])

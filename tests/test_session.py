@@ -357,3 +357,135 @@ def test_elapsed_time_is_logged_and_replayed(tmp_path):
         reply = submit_answer(s, sid, reply["item_id"], 1, elapsed=100.0, cache=ProcessCache())
         assert reply["done"] and reply["stop_reason"] == "time_limit"
         assert [e["elapsed"] for e in s.events(sid) if e["kind"] == "answer"] == [30.0, None, 100.0]
+
+
+# --------------------------------------------------------------------------------------
+# hostile input: only the project's error, a printable one-line message, nothing written
+
+
+def _one_line_printable(exc):
+    message = str(exc)
+    message.encode("utf-8")  # no lone surrogate copied into it
+    assert "\n" not in message and len(message) < 400, message
+    return message
+
+
+@pytest.mark.parametrize("field", ["session_id", "item_id"])
+@pytest.mark.parametrize("bad", ["\ud800", "MV-\udcff"])
+def test_surrogates_in_answer_ids_are_refused(store, field, bad):
+    reply = _started(store, seed=21)
+    args = {"session_id": reply["session_id"], "item_id": reply["item_id"], field: bad}
+    before = store.dump()
+    with pytest.raises(SessionError, match="not valid text") as info:
+        submit_answer(store, args["session_id"], args["item_id"], 1)
+    assert _one_line_printable(info.value)
+    assert info.value.location == field
+    assert store.dump() == before
+
+
+@pytest.mark.parametrize("call", [show_session, pending_item, session_result])
+def test_surrogates_in_session_ids_of_lookups_are_refused(store, call):
+    with pytest.raises(SessionError, match="not valid text") as info:
+        call(store, "abc\ud800")
+    _one_line_printable(info.value)
+
+
+@pytest.mark.parametrize("field", ["examinee", "session_id"])
+def test_surrogates_in_start_ids_are_refused(store, field):
+    before = store.dump()
+    with pytest.raises(SessionError, match="not valid text") as info:
+        start_session(store, LICENSING, OPERATOR_BANK, seed=1, **{field: "cand\udcffidate"})
+    assert info.value.location == field
+    _one_line_printable(info.value)
+    assert store.dump() == before
+
+
+HOSTILE_RESPONSES = [
+    ("5000 digits", "9" * 5000, "outside the categories"),
+    ("5000 digits negative", "-" + "7" * 5000, "outside the categories"),
+    ("huge int", 10**5000, "outside the categories"),
+    ("minus one text", "-1", "outside the categories"),
+    ("arabic-indic one", "\u0661", "ASCII digits"),
+    ("fullwidth one", "\uff11", "ASCII digits"),
+    ("mathematical bold one", "\U0001d7cf", "ASCII digits"),
+    ("arabic-indic with sign", "+\u0661", "ASCII digits"),
+    ("surrogate", "1\udcff", "ASCII digits"),
+    ("numpy float one", np.float64(1.0), "integer"),
+    ("numpy bool", np.bool_(True), "integer"),
+    ("trailing newline digits", "1\n\u0662", "ASCII digits"),
+]
+
+
+@pytest.mark.parametrize("name,response,message", HOSTILE_RESPONSES, ids=[h[0] for h in HOSTILE_RESPONSES])
+def test_hostile_responses_are_refused(store, name, response, message):
+    reply = _started(store, seed=31)
+    before = store.dump()
+    with pytest.raises(SessionError, match=message) as info:
+        submit_answer(store, reply["session_id"], reply["item_id"], response)
+    _one_line_printable(info.value)
+    assert store.dump() == before
+
+
+@pytest.mark.parametrize("response", [1, np.int64(1), np.int8(1), "1", " 1 ", "+1", "001"])
+def test_accepted_response_forms(tmp_path, response):
+    """The documented rule: an int (not bool) or numpy integer, or text of ASCII digits."""
+    with open_store(tmp_path / "r.db") as s:
+        reply = _started(s, seed=5)
+        out = submit_answer(s, reply["session_id"], reply["item_id"], response)
+        assert s.answers(reply["session_id"])[0][1] == 1 and out["items_given"] == 1
+
+
+@pytest.mark.parametrize("kwargs", [{"elapsed": 10**400}, {"elapsed": -(10**400)}])
+def test_huge_elapsed_is_a_session_error(store, kwargs):
+    reply = _started(store, seed=41)
+    before = store.dump()
+    with pytest.raises(SessionError, match="elapsed") as info:
+        submit_answer(store, reply["session_id"], reply["item_id"], 1, **kwargs)
+    _one_line_printable(info.value)
+    assert store.dump() == before
+
+
+PRIOR_REFUSALS = [
+    ({"prior_mean": 10**400}, "prior_mean"), ({"prior_sd": 10**400}, "prior_sd"),
+    ({"prior_mean": 10**5000}, "prior_mean"),
+    ({"prior_mean": 1e300}, "prior_mean"), ({"prior_mean": -1e300}, "prior_mean"),
+    ({"prior_mean": 6.5}, "prior_mean"),  # the licensing grid is [-6, 6]
+    ({"prior_mean": float("inf")}, "prior_mean"),
+    ({"prior_sd": 1e300}, "prior_sd"), ({"prior_sd": 12.5}, "prior_sd"),  # wider than the grid
+    ({"prior_sd": 1e-300}, "prior_sd"), ({"prior_sd": 0.09}, "prior_sd"),  # below one grid step (0.1)
+    ({"prior_sd": -1.0}, "prior_sd"), ({"prior_sd": float("nan")}, "prior_sd"),
+    ({"prior_mean": "0.5"}, "prior_mean"),
+]
+
+
+@pytest.mark.parametrize("kwargs,name", PRIOR_REFUSALS, ids=[f"{name}-{i}" for i, (_, name) in enumerate(PRIOR_REFUSALS)])
+def test_examinee_priors_outside_sane_ranges_are_refused(store, kwargs, name):
+    before = store.dump()
+    with pytest.raises(SessionError) as info:
+        start_session(store, LICENSING, OPERATOR_BANK, seed=1, **kwargs)
+    assert info.value.location == name
+    _one_line_printable(info.value)
+    assert store.dump() == before
+
+
+@pytest.mark.parametrize("mean,sd", [(-6.0, 1.0), (6.0, 0.1), (0.0, 12.0), (2.5, 0.3)])
+def test_examinee_priors_at_the_limits_give_finite_estimates(tmp_path, mean, sd):
+    with open_store(tmp_path / "p.db") as s:
+        replies = run_session(s, LICENSING, OPERATOR_BANK, seed=2, theta=mean / 2, answer_seed=3)
+        reply = start_session(s, LICENSING, OPERATOR_BANK, seed=2, prior_mean=mean, prior_sd=sd)
+        assert np.isfinite(reply["theta"]) and np.isfinite(reply["se"])
+        for _ in range(3):
+            reply = submit_answer(s, reply["session_id"], reply["item_id"], 1)
+            assert reply["theta"] is not None and reply["se"] is not None
+        assert replies[-1]["done"]
+
+
+def test_show_session_keeps_the_seed_out_unless_asked(store):
+    """Seed plus bank predict every random choice of the test: not shown by default."""
+    reply = _started(store, seed=123457)
+    shown = show_session(store, reply["session_id"])
+    assert "seed" not in shown and "123457" not in repr(shown)
+    assert show_session(store, reply["session_id"], include_seed=True)["seed"] == 123457
+    for view in (shown, list_sessions(store), pending_item(store, reply["session_id"])):
+        assert not PARAMETER_KEYS & set(_walk(view))
+        assert "seed" not in set(_walk(view))
