@@ -251,3 +251,133 @@ def test_a_refused_start_leaves_no_store_behind(tmp_path):
                      "--prior-sd", "0"])
     assert result.exit_code == 2
     assert not db.exists()
+
+
+# --------------------------------------------------------------------------------------
+# hostile command lines: exit 2 and one `LOCATION: problem` line, never a traceback
+
+
+def _refused(args, *, where, message):
+    """Run with exceptions caught (a raw error would give exit 1) and check the refusal."""
+    out = CliRunner().invoke(main, args)
+    assert out.exit_code == 2, (out.exit_code, out.output, out.exception)
+    assert "Traceback" not in out.output
+    lines = [line.strip() for line in out.output.splitlines() if line.strip() and line.strip() != "error:"]
+    assert len(lines) == 1, out.output
+    assert lines[0].startswith(f"{where}: ") and message in lines[0], lines[0]
+    return lines[0]
+
+
+# what click hands a command for invalid UTF-8 bytes in argv on POSIX (surrogate escapes)
+NOT_UTF8 = "MV-\udcff\udcfe"
+
+
+def test_invalid_utf8_in_session_ids_item_ids_and_examinee(tmp_path):
+    db = str(tmp_path / "s.db")
+    reply = _start(db)
+    sid, iid = reply["session_id"], reply["item_id"]
+    with open_store(db) as store:
+        before = store.dump()
+    _refused(["session", "answer", NOT_UTF8, iid, "1", "--db", db], where="SESSION_ID", message="not valid text")
+    _refused(["session", "answer", sid, NOT_UTF8, "1", "--db", db], where="ITEM_ID", message="not valid text")
+    _refused(["session", "show", NOT_UTF8, "--db", db], where="SESSION_ID", message="not valid text")
+    _refused(["session", "start", "--db", db, "--design", str(LICENSING), "--bank", str(BANK_CSV),
+              "--examinee", NOT_UTF8], where="--examinee", message="not valid text")
+    with open_store(db) as store:
+        assert store.dump() == before
+
+
+def test_invalid_utf8_bytes_in_a_real_command_line(tmp_path):
+    """The same through a real process: bytes in argv, decoded by Python itself."""
+    import os
+    import subprocess
+    import sys
+
+    db = str(tmp_path / "s.db")
+    reply = _start(db)
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    base = [sys.executable, "-m", "adaptive_engine", "session"]
+    for args, where in [
+        ([b"answer", reply["session_id"].encode(), b"MV-\xff\xfe", b"1", b"--db", db.encode()], "ITEM_ID"),
+        ([b"start", b"--db", db.encode(), b"--design", bytes(LICENSING), b"--bank", bytes(BANK_CSV),
+          b"--examinee", b"cand\xc3\x28idate"], "--examinee"),
+    ]:
+        run = subprocess.run(base + args, env=env, capture_output=True, timeout=120)
+        err = run.stderr.decode("utf-8")
+        assert run.returncode == 2, err
+        assert "Traceback" not in err
+        assert f"  {where}: " in err and "not valid text" in err, err
+
+
+@pytest.mark.parametrize("response,message", [
+    ("9" * 5000, "outside the categories 0..1"),
+    ("-1", "outside the categories 0..1"),
+    ("-" + "9" * 5000, "outside the categories 0..1"),
+    ("\u0661", "ASCII digits"),
+    ("\uff11", "ASCII digits"),
+], ids=["5000 digits", "minus one", "minus 5000 digits", "arabic-indic one", "fullwidth one"])
+def test_hostile_responses_on_the_command_line(tmp_path, response, message):
+    db = str(tmp_path / "s.db")
+    reply = _start(db)
+    with open_store(db) as store:
+        before = store.dump()
+    sid, iid = reply["session_id"], reply["item_id"]
+    line = _refused(["session", "answer", sid, iid, response, "--db", db],
+                    where=f"session {sid} item {iid} response", message=message)
+    assert len(line) < 300
+    with open_store(db) as store:
+        assert store.dump() == before
+
+
+def test_negative_response_before_the_options_is_a_value_not_an_option(tmp_path):
+    db = str(tmp_path / "s.db")
+    reply = _start(db)
+    out = CliRunner().invoke(main, ["session", "answer", reply["session_id"], reply["item_id"], "-1", "--db", db])
+    assert out.exit_code == 2 and "outside the categories 0..1" in out.output, out.output
+    assert "No such option" not in out.output
+
+
+@pytest.mark.parametrize("flag,value", [
+    ("--prior-mean", "1e300"), ("--prior-mean", "-1e400"), ("--prior-mean", "nan"), ("--prior-mean", "7"),
+    ("--prior-sd", "1e300"), ("--prior-sd", "0.001"), ("--prior-sd", "0"),
+])
+def test_absurd_priors_on_the_command_line_name_the_flag_and_create_no_store(tmp_path, flag, value):
+    db = tmp_path / "new.db"
+    _refused(["session", "start", "--db", str(db), "--design", str(LICENSING), "--bank", str(BANK_CSV),
+              flag, value], where=flag, message="")
+    assert not db.exists() and not Path(str(db) + "-wal").exists()
+
+
+def test_session_show_prints_the_seed_only_when_asked(tmp_path):
+    db = str(tmp_path / "s.db")
+    sid = _start(db, seed=987654)["session_id"]
+    plain = invoke(["session", "show", sid, "--db", db])
+    assert plain.exit_code == 0 and "seed" not in json.loads(plain.output) and "987654" not in plain.output
+    with_seed = invoke(["session", "show", sid, "--db", db, "--with-seed"])
+    assert json.loads(with_seed.output)["seed"] == 987654
+
+
+def test_a_store_made_by_session_start_is_owner_only(tmp_path):
+    import os
+    import stat
+
+    old = os.umask(0o022)
+    try:
+        db = tmp_path / "fresh.db"
+        _start(str(db))
+        assert stat.S_IMODE(db.stat().st_mode) == 0o600
+    finally:
+        os.umask(old)
+
+
+def test_number_options_take_ascii_digits_only(tmp_path):
+    # float() reads '١' (Arabic-Indic one) and '１２' (fullwidth twelve) as numbers
+    db = tmp_path / "new.db"
+    out = CliRunner().invoke(main, ["session", "start", "--db", str(db), "--design", str(LICENSING),
+                                    "--bank", str(BANK_CSV), "--prior-mean", "\u0661"])
+    assert out.exit_code == 2 and "ASCII digits" in out.output and "--prior-mean" in out.output, out.output
+    assert not db.exists()
+    reply = _start(str(db))
+    out = CliRunner().invoke(main, ["session", "answer", reply["session_id"], reply["item_id"], "1",
+                                    "--db", str(db), "--elapsed", "\uff11\uff12"])
+    assert out.exit_code == 2 and "ASCII digits" in out.output, out.output

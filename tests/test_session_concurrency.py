@@ -77,3 +77,79 @@ def test_eight_processes_share_one_store_without_losing_counts(tmp_path):
         for s in sessions:
             seqs = [e["seq"] for e in store.events(s["session_id"])]
             assert seqs == list(range(1, s["last_seq"] + 1))
+
+
+# --------------------------------------------------------------------------------------
+# a refused `session start` racing a good one on a new path
+
+
+def _cli(args):
+    from click.testing import CliRunner
+
+    from adaptive_engine.cli import main
+
+    result = CliRunner().invoke(main, args)
+    return result.exit_code, result.output
+
+
+def _refused_start(db, opened, go, mode, out):
+    """`session start` that will be refused, in a process of its own.
+
+    If the command opens the store it stops right after opening it until the good start
+    has committed -- the interleaving in which a refused start used to delete the store
+    it believed it had created.  ``mode`` says how the start is refused: by the request
+    (a prior SD of 0, known before any store is needed) or by the store itself.
+    """
+    from adaptive_engine import store as store_module
+    from adaptive_engine.errors import SessionError
+
+    real_init = store_module.SessionStore.__init__
+
+    def init(self, *args, **kwargs):
+        real_init(self, *args, **kwargs)
+        opened.set()
+        go.wait(60)
+
+    store_module.SessionStore.__init__ = init
+    args = ["session", "start", "--db", db, "--design", str(DESIGN_PATH), "--bank", str(BANK_PATH)]
+    if mode == "request":
+        args += ["--prior-sd", "0"]
+    else:
+        def refuse(self, row):
+            raise SessionError("refused by the store (test)", location="store")
+        store_module.SessionStore.insert_session = refuse
+    out.put(("refused", *_cli(args)))
+
+
+def _good_start(db, out):
+    out.put(("good", *_cli(["session", "start", "--db", db, "--design", str(DESIGN_PATH),
+                            "--bank", str(BANK_PATH), "--seed", "3"])))
+
+
+@pytest.mark.skipif("fork" not in multiprocessing.get_all_start_methods(), reason="needs the fork start method")
+@pytest.mark.parametrize("mode", ["request", "store"])
+def test_a_refused_start_never_deletes_a_store_another_process_created(tmp_path, mode):
+    import json
+
+    db = str(tmp_path / "new.db")
+    mp = multiprocessing.get_context("fork")
+    opened, go, out = mp.Event(), mp.Event(), mp.Queue()
+    refused = mp.Process(target=_refused_start, args=(db, opened, go, mode, out))
+    refused.start()
+    # wait until the refused start either holds the store open or has given up without it
+    while not opened.wait(0.02) and refused.is_alive():
+        pass
+    good = mp.Process(target=_good_start, args=(db, out))
+    good.start()
+    good.join(120)
+    go.set()
+    refused.join(120)
+    reports = {role: (code, output) for role, code, output in (out.get(timeout=60), out.get(timeout=60))}
+    good_code, good_output = reports["good"]
+    refused_code, refused_output = reports["refused"]
+    assert good_code == 0, good_output
+    assert refused_code == 2, refused_output
+    session_id = json.loads(good_output)["session_id"]
+    with open_store(db, create=False) as store:
+        assert store.session_row(session_id)["status"] == "active"
+        assert store.conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"

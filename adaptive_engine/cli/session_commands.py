@@ -6,15 +6,55 @@ Every command prints JSON on stdout (``try`` is interactive) and exits with code
 
 from __future__ import annotations
 
+import contextlib
 import sys
-from pathlib import Path
 
 import click
 
+from ..errors import AdaptiveEngineError, Problem
 from ._common import EXIT_INPUT_ERROR, echo_json, main, report_errors
 
 _DB = click.option("--db", "db_path", required=True, type=click.Path(dir_okay=False),
-                   help="Session store (SQLite file).")
+                   help="Session store (SQLite file; created owner-only, mode 0600).")
+
+#: The library names a bad value by its parameter; the command line by its flag or argument.
+_ON_THE_COMMAND_LINE = {"examinee": "--examinee", "seed": "--seed", "prior_mean": "--prior-mean",
+                        "prior_sd": "--prior-sd", "session_id": "SESSION_ID", "item_id": "ITEM_ID",
+                        "status": "--status"}
+
+#: A negative RESPONSE (-1) is a value to refuse for its range, not an unknown option.
+_NEGATIVE_VALUES_ARE_ARGUMENTS = {"ignore_unknown_options": True}
+
+
+class AsciiFloat(click.ParamType):
+    """A number written with ASCII characters (float() alone also reads '١' or '１')."""
+
+    name = "float"
+
+    def convert(self, value, param, ctx):
+        if isinstance(value, float):
+            return value
+        text = str(value).strip()
+        shown = text[:40].encode("ascii", "backslashreplace").decode("ascii")
+        if not text.isascii():
+            self.fail(f"'{shown}' is not a number written in ASCII digits", param, ctx)
+        try:
+            return float(text)
+        except ValueError:
+            self.fail(f"'{shown}' is not a number", param, ctx)
+
+
+ASCII_FLOAT = AsciiFloat()
+
+
+@contextlib.contextmanager
+def _named_as_on_the_command_line():
+    """Re-raise the library's errors with flags and arguments as their locations."""
+    try:
+        yield
+    except AdaptiveEngineError as exc:
+        raise type(exc)([Problem(_ON_THE_COMMAND_LINE.get(p.location, p.location), p.message)
+                         for p in exc.problems]) from None
 
 
 @main.group()
@@ -31,8 +71,10 @@ def session():
 @click.option("--examinee", default=None, help="The examinee's id in your app (stored, not interpreted).")
 @click.option("--seed", type=click.IntRange(0, (1 << 63) - 1), default=None,
               help="Seed of the test's random decisions (default: a fresh one, stored).")
-@click.option("--prior-mean", type=float, default=None, help="Examinee-specific prior mean of theta.")
-@click.option("--prior-sd", type=float, default=None, help="Examinee-specific prior SD of theta.")
+@click.option("--prior-mean", type=ASCII_FLOAT, default=None,
+              help="Examinee-specific prior mean of theta (on the design's ability grid).")
+@click.option("--prior-sd", type=ASCII_FLOAT, default=None,
+              help="Examinee-specific prior SD of theta (one grid step .. the grid's width).")
 @report_errors
 def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd):
     """Start a session (the store is created if missing); print its id and first item.
@@ -41,33 +83,31 @@ def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd)
     """
     from ..bank import load_bank
     from ..design_file import read_design
-    from ..session import start_session
+    from ..session import commit_start, prepare_start
     from ..store import open_store
 
     design = read_design(design_file)
     bank = load_bank(bank_file)
-    created = not Path(db_path).exists()
-    try:
+    with _named_as_on_the_command_line():
+        # every check of the request runs before the store is opened, so a refused start
+        # creates no file -- and never deletes one: another process may be using a store
+        # that did not exist a moment ago
+        prepared = prepare_start(design, bank, examinee=examinee, seed=seed,
+                                 prior_mean=prior_mean, prior_sd=prior_sd)
         with open_store(db_path) as store:
-            reply = start_session(store, design, bank, examinee=examinee, seed=seed,
-                                  prior_mean=prior_mean, prior_sd=prior_sd)
-    except Exception:
-        if created:  # a refused start leaves no empty store behind
-            for suffix in ("", "-wal", "-shm"):
-                Path(str(db_path) + suffix).unlink(missing_ok=True)
-        raise
+            reply = commit_start(store, prepared)
     echo_json(reply)
 
 
-@session.command("answer")
+@session.command("answer", context_settings=_NEGATIVE_VALUES_ARE_ARGUMENTS)
 @click.argument("session_id")
 @click.argument("item_id")
 @click.argument("response")
 @_DB
-@click.option("--elapsed", type=float, default=None, help="Seconds the examinee has spent so far.")
+@click.option("--elapsed", type=ASCII_FLOAT, default=None, help="Seconds the examinee has spent so far.")
 @report_errors
 def answer(session_id, item_id, response, db_path, elapsed):
-    """Record RESPONSE (a category 0..K-1) to ITEM_ID, the pending item of SESSION_ID.
+    """Record RESPONSE (a category 0..K-1, ASCII digits) to ITEM_ID, the pending item of SESSION_ID.
 
     Output: {"item_id": next item or null, "theta": ..., "se": ..., "done": ...,
     "result": {...} once done}.  Sending the same answer again prints the same reply.
@@ -75,21 +115,23 @@ def answer(session_id, item_id, response, db_path, elapsed):
     from ..session import submit_answer
     from ..store import open_store
 
-    with open_store(db_path, create=False) as store:
+    with _named_as_on_the_command_line(), open_store(db_path, create=False) as store:
         echo_json(submit_answer(store, session_id, item_id, response, elapsed=elapsed))
 
 
-@session.command("show")
+@session.command("show", context_settings=_NEGATIVE_VALUES_ARE_ARGUMENTS)
 @click.argument("session_id")
 @_DB
+@click.option("--with-seed", is_flag=True, default=False,
+              help="Also print the session's seed (seed and bank predict the test's random choices).")
 @report_errors
-def show(session_id, db_path):
+def show(session_id, db_path, with_seed):
     """Print SESSION_ID: status, the answers with the estimate after each, the result."""
     from ..session import show_session
     from ..store import open_store
 
-    with open_store(db_path, create=False) as store:
-        echo_json(show_session(store, session_id))
+    with _named_as_on_the_command_line(), open_store(db_path, create=False) as store:
+        echo_json(show_session(store, session_id, include_seed=with_seed))
 
 
 @session.command("list")
@@ -102,7 +144,7 @@ def list_(db_path, status):
     from ..session import list_sessions
     from ..store import open_store
 
-    with open_store(db_path, create=False) as store:
+    with _named_as_on_the_command_line(), open_store(db_path, create=False) as store:
         echo_json(list_sessions(store, status=status))
 
 
