@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from adaptive_engine import bank_io, bank_report
+from adaptive_engine.bank import files as bank_io, summary as bank_report
 from adaptive_engine.bank import bank_from_records, load_bank
 
 REPO = Path(__file__).resolve().parents[1]

@@ -20,7 +20,7 @@ import tracemalloc
 
 import numpy as np
 
-from adaptive_engine import estimation, models
+from adaptive_engine.irt import estimation, models
 from adaptive_engine.bank import ItemBank
 
 

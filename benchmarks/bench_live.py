@@ -22,12 +22,12 @@ from pathlib import Path
 
 import numpy as np
 
-from adaptive_engine import kernel, randomness
+from adaptive_engine.kernel import cycle as kernel, random_streams as randomness
 from adaptive_engine.bank import bank_from_records
-from adaptive_engine.context import build_context
-from adaptive_engine.design_file import parse_design
-from adaptive_engine.session import ProcessCache, start_session, submit_answer
-from adaptive_engine.store import bank_content, open_store
+from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.design.toml_file import parse_design
+from adaptive_engine.live.session import ProcessCache, start_session, submit_answer
+from adaptive_engine.live.store import bank_content, open_store
 
 AREAS = ("source_water", "treatment_processes", "distribution_systems", "lab_and_monitoring",
          "safety_and_regulations")

@@ -27,7 +27,8 @@ import tracemalloc
 
 import numpy as np
 
-from adaptive_engine import models, simulation
+from adaptive_engine.irt import models
+from adaptive_engine.simulation import engine as simulation
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design import AreaRule, Blueprint, Design, Exposure, Stopping
 

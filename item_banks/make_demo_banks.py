@@ -63,9 +63,9 @@ HERE = Path(__file__).resolve().parent
 if str(HERE.parent) not in sys.path:  # run as a script from a checkout
     sys.path.insert(0, str(HERE.parent))
 
-from adaptive_engine.models import probabilities as category_probabilities  # noqa: E402
+from adaptive_engine.irt.models import probabilities as category_probabilities  # noqa: E402
 from adaptive_engine.bank import ItemBank, bank_from_records  # noqa: E402
-from adaptive_engine.bank_io import write_bank, write_text_file  # noqa: E402
+from adaptive_engine.bank.files import write_bank, write_text_file  # noqa: E402
 from adaptive_engine.errors import AdaptiveEngineError  # noqa: E402
 
 OPERATOR_SEED = 20_240_611

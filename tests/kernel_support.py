@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from adaptive_engine import kernel, models, randomness
+from adaptive_engine.kernel import cycle as kernel, random_streams as randomness
+from adaptive_engine.irt import models
 from adaptive_engine.bank import bank_from_records
 
 AREAS = ("alpha", "beta", "gamma")

@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 from hypothesis import strategies as st
 
-from adaptive_engine import models
+from adaptive_engine.irt import models
 from adaptive_engine.bank import ItemBank, bank_from_records
 
 A_RANGE = (0.2, 3.0)

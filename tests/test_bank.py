@@ -11,7 +11,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from adaptive_engine.bank import ItemBank, load_bank, read_bank_csv_text, read_bank_json_text
-from adaptive_engine.bank_io import bank_to_csv_text, bank_to_json_text
+from adaptive_engine.bank.files import bank_to_csv_text, bank_to_json_text
 from adaptive_engine.errors import AdaptiveEngineError, BankError
 
 from strategies import item_banks

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from adaptive_engine import models
+from adaptive_engine.irt import models
 from adaptive_engine.bank import load_bank
 from adaptive_engine.cli import main
 

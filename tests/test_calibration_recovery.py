@@ -16,7 +16,7 @@ from scipy.special import expit, softmax
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.calibration import CalibrationSettings, calibrate_responses, prior_choice_from_texts
 from adaptive_engine.errors import AdaptiveEngineError, CalibrationError
-from adaptive_engine.responses import ResponseTable
+from adaptive_engine.bank.responses import ResponseTable
 
 
 def _table(x, prefix="q"):

@@ -22,7 +22,7 @@ from scipy.optimize import minimize
 from scipy.special import expit, log_expit, logsumexp
 
 from adaptive_engine.calibration import CalibrationSettings, calibrate_responses, estimate_at_known_abilities
-from adaptive_engine.responses import ResponseTable
+from adaptive_engine.bank.responses import ResponseTable
 
 REFERENCE = Path(__file__).resolve().parents[2] / "shared" / "reference"
 DATA_FILE = REFERENCE / "bock_lieberman_1970_five_items.csv"

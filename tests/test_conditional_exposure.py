@@ -30,24 +30,24 @@ from click.testing import CliRunner
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from adaptive_engine import simulation
+from adaptive_engine.simulation import engine as simulation
 from adaptive_engine.bank import bank_from_records, load_bank
-from adaptive_engine.bank_io import write_bank_csv
+from adaptive_engine.bank.files import write_bank_csv
 from adaptive_engine.cli import main
-from adaptive_engine.context import build_context
+from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.design import Design, Exposure, Stopping
-from adaptive_engine.design_check import check_design_against_bank
-from adaptive_engine.design_file import design_as_dict, design_from_dict, read_design
+from adaptive_engine.design.bank_fit import check_design_against_bank
+from adaptive_engine.design.toml_file import design_as_dict, design_from_dict, read_design
 from adaptive_engine.errors import AdaptiveEngineError, DesignError
-from adaptive_engine.exposure_calibration import (
+from adaptive_engine.simulation.exposure_tuning import (
     _updated_conditional,
     calibrate_sympson_hetter,
     parameters_csv,
     parse_strata,
     with_parameters,
 )
-from adaptive_engine.exposure_file import parse_exposure_file
-from adaptive_engine.store import design_content, design_from_content
+from adaptive_engine.design.exposure_parameters import parse_exposure_file
+from adaptive_engine.live.store import design_content, design_from_content
 
 from kernel_support import run_batch, structured_bank
 
@@ -433,8 +433,8 @@ def test_live_sessions_replay_simulated_examinees_of_the_conditional_example():
     # seed gets the same items, interim estimates and stop as in the simulation.
     if not DEMO_BANK.exists():
         pytest.skip("demo bank not generated (run item_banks/make_demo_banks.py)")
-    from adaptive_engine.session import ProcessCache, session_result, start_session, submit_answer
-    from adaptive_engine.store import open_store
+    from adaptive_engine.live.session import ProcessCache, session_result, start_session, submit_answer
+    from adaptive_engine.live.store import open_store
 
     bank = load_bank(DEMO_BANK)
     design = read_design(REPO / "simulations" / "conditional_sympson_hetter.toml")

@@ -39,13 +39,13 @@ from adaptive_engine.design import (
     SprtRule,
     Stopping,
 )
-from adaptive_engine.design_check import (
+from adaptive_engine.design.bank_fit import (
     check_design_against_bank,
     describe_design,
     require_design_fits_bank,
     usable_item_count,
 )
-from adaptive_engine.design_file import (
+from adaptive_engine.design.toml_file import (
     design_as_dict,
     design_from_dict,
     design_to_toml,

@@ -14,7 +14,7 @@ from click.testing import CliRunner
 
 from adaptive_engine.cli import main
 from adaptive_engine.design import Scoring
-from adaptive_engine.design_file import parse_design, read_design
+from adaptive_engine.design.toml_file import parse_design, read_design
 
 REPO = Path(__file__).resolve().parents[1]
 SIMULATIONS = REPO / "simulations"

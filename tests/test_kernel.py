@@ -8,8 +8,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import integrate
 
-from adaptive_engine import kernel, randomness, selection
-from adaptive_engine.context import build_context
+from adaptive_engine.kernel import cycle as kernel, random_streams as randomness, selection
+from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.design import (
     AreaRule, Blueprint, ConfidenceRule, Design, Exposure, Opening, Reporting, Scoring,
     Selection, SprtRule, Stopping,
@@ -246,7 +246,7 @@ def test_shadow_tests_meet_the_blueprint_exactly():
 
 def test_array_summaries_match_the_reports():
     # The simulation summarises with arrays; they must say what the per-examinee reports say.
-    from adaptive_engine import reporting
+    from adaptive_engine.kernel import final_report as reporting
     from adaptive_engine.design import CutScore, ScaleRule
 
     bank = structured_bank(8, 100)

@@ -16,7 +16,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.special import expit
 
-from adaptive_engine import models
+from adaptive_engine.irt import models
 from adaptive_engine.bank import bank_from_records
 
 from strategies import (

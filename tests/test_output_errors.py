@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from adaptive_engine import bank_io
+from adaptive_engine.bank import files as bank_io
 from adaptive_engine.bank import bank_from_records, load_bank
 from adaptive_engine.cli import main
 from adaptive_engine.errors import AdaptiveEngineError, BankError

@@ -11,7 +11,7 @@ from scipy.optimize import brentq, minimize_scalar
 from scipy.special import expit
 
 from adaptive_engine.errors import AdaptiveEngineError, ResponseDataError
-from adaptive_engine.person_fit import person_fit
+from adaptive_engine.irt.person_fit import person_fit
 
 from strategies import records_to_parameters
 

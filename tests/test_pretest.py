@@ -17,9 +17,9 @@ import numpy as np
 import pytest
 import sqlite_utils
 
-from adaptive_engine import models
+from adaptive_engine.irt import models
 from adaptive_engine.bank import bank_from_records, load_bank
-from adaptive_engine.bank_io import bank_to_json_text
+from adaptive_engine.bank.files import bank_to_json_text
 from adaptive_engine.calibration.pretest import PromotionRules, calibrate_pretest
 from adaptive_engine.errors import CalibrationError
 
@@ -117,7 +117,7 @@ def test_pretest_items_land_on_the_bank_scale(tmp_path):
 
 
 def test_bank_lookup_and_errors(tmp_path):
-    from adaptive_engine.store import bank_content
+    from adaptive_engine.live.store import bank_content
 
     rng = np.random.default_rng(42)
     bank = _bank(rng)

@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize, stats
 
-from adaptive_engine import estimation
+from adaptive_engine.irt import estimation
 from adaptive_engine.bank import bank_from_records
 
 # ----------------------------------------------------------------------------------------

@@ -14,7 +14,7 @@ from hypothesis import strategies as st
 from scipy.special import expit
 from scipy.stats import norm
 
-from adaptive_engine import models
+from adaptive_engine.irt import models
 
 from strategies import graded_items, ordered_thresholds, partial_credit_items, records_to_parameters, thetas
 

@@ -9,7 +9,7 @@ from hypothesis import strategies as st
 
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.errors import AdaptiveEngineError, ResponseDataError
-from adaptive_engine.responses import ResponseTable, read_responses, read_responses_text
+from adaptive_engine.bank.responses import ResponseTable, read_responses, read_responses_text
 
 HEADER = "person_id,item_id,response\n"
 

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from adaptive_engine import kernel, randomness, selection
-from adaptive_engine.context import build_context
+from adaptive_engine.kernel import cycle as kernel, random_streams as randomness, selection
+from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.design import (
     AreaRule, Blueprint, Design, Exposure, Opening, Selection, Stopping,
 )

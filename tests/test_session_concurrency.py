@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 
 from adaptive_engine.bank import load_bank
-from adaptive_engine.design_file import read_design
-from adaptive_engine.session import start_session, submit_answer
-from adaptive_engine.store import bank_content, open_store
+from adaptive_engine.design.toml_file import read_design
+from adaptive_engine.live.session import start_session, submit_answer
+from adaptive_engine.live.store import bank_content, open_store
 
 ROOT = Path(__file__).resolve().parents[1]
 DESIGN_PATH = ROOT / "simulations" / "licensing_exam.toml"

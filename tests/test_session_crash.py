@@ -18,9 +18,9 @@ import numpy as np
 import pytest
 
 from adaptive_engine.bank import load_bank
-from adaptive_engine.design_file import read_design
-from adaptive_engine.session import ProcessCache, start_session, submit_answer
-from adaptive_engine.store import open_store
+from adaptive_engine.design.toml_file import read_design
+from adaptive_engine.live.session import ProcessCache, start_session, submit_answer
+from adaptive_engine.live.store import open_store
 
 ROOT = Path(__file__).resolve().parents[1]
 DESIGN = read_design(ROOT / "simulations" / "licensing_exam.toml")

@@ -12,7 +12,7 @@ import pytest
 from click.testing import CliRunner
 from scipy import stats
 
-from adaptive_engine import examinees, metrics, simulation
+from adaptive_engine.simulation import population as examinees, metrics, engine as simulation
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.cli import main
 from adaptive_engine.design import Design, Exposure, Stopping
@@ -166,7 +166,7 @@ def _fit_report(tmp_path, bank, ses, extra_rows=""):
 
 
 def test_read_standard_errors_from_a_fit_report(tmp_path):
-    from adaptive_engine.simulation_files import read_standard_errors
+    from adaptive_engine.simulation.study import read_standard_errors
 
     bank = small_bank(n=6)
     nan = np.full(6, np.nan)
@@ -189,7 +189,7 @@ def test_read_standard_errors_from_a_fit_report(tmp_path):
     ("t001,3PL,10,1,0.1,0,0.1,,,,", "fit_report.csv line 7, item t001"),  # listed twice
 ])
 def test_perturb_from_errors_are_located(tmp_path, extra, where):
-    from adaptive_engine.simulation_files import read_standard_errors
+    from adaptive_engine.simulation.study import read_standard_errors
 
     bank = small_bank(n=6)
     ses = {k: np.full(5, 0.1) for k in "abcd"} | {"thresholds": np.zeros((5, 0))}
@@ -371,7 +371,7 @@ def test_tune_cli(tmp_path):
 
 
 def test_tuning_report_says_when_the_plot_is_left_out():
-    from adaptive_engine.report_html import tuning_report_html
+    from adaptive_engine.simulation.html_report import tuning_report_html
 
     rows = [{"stopping.se": 0.3, "mean_length": 10.0, "rmse": 0.3, "frontier": True}]
     assert "left out" in tuning_report_html(rows, None, title="t")
@@ -380,7 +380,7 @@ def test_tuning_report_says_when_the_plot_is_left_out():
 
 
 def test_efficient_frontier():
-    from adaptive_engine.tuning import efficient_frontier
+    from adaptive_engine.simulation.tuning import efficient_frontier
 
     front = efficient_frontier([10, 20, 20, 30], [0.5, 0.3, 0.4, 0.3], [0.9, 0.9, 0.9, 0.95])
     assert front.tolist() == [True, True, False, True]
@@ -436,7 +436,7 @@ def test_progress_inside_a_single_chunk():
 
 
 def test_progress_of_an_exposure_calibration():
-    from adaptive_engine.exposure_calibration import calibrate_sympson_hetter
+    from adaptive_engine.simulation.exposure_tuning import calibrate_sympson_hetter
 
     bank = small_bank()
     calls = []

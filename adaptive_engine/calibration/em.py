@@ -24,10 +24,10 @@ import attrs
 import numpy as np
 from scipy.special import logsumexp
 
-from .. import models
-from ..bank import DEFAULT_AREA, ItemBank
+from ..irt import models
+from ..bank.item_bank import DEFAULT_AREA, ItemBank
 from ..errors import CalibrationError
-from ..responses import ResponseTable
+from ..bank.responses import ResponseTable
 from .data import CalibrationData, prepare_data
 from .item_forms import ItemGroup, category_jacobian
 from .m_step import fisher_steps, shared_slope_step

@@ -18,7 +18,7 @@ import attrs
 import numpy as np
 from scipy.special import expit, log_expit, logit
 
-from .. import models
+from ..irt import models
 
 DICHOTOMOUS_MODELS = ("1PL", "2PL", "3PL", "4PL")
 #: free columns of a dichotomous item, by model (slope column 0 excluded for 1PL: its

@@ -12,10 +12,10 @@ from pathlib import Path
 
 import attrs
 
-from ..bank import load_bank
-from ..bank_io import write_bank
+from ..bank.item_bank import load_bank
+from ..bank.files import write_bank
 from ..errors import CalibrationError
-from ..responses import read_responses
+from ..bank.responses import read_responses
 from .em import CalibrationSettings, calibrate_responses
 from .item_fit import fit_for_result, item_report_rows, rows_to_csv
 from .linking import link_banks

@@ -25,8 +25,8 @@ import attrs
 import numpy as np
 from scipy.optimize import minimize
 
-from .. import models
-from ..bank import ItemBank
+from ..irt import models
+from ..bank.item_bank import ItemBank
 from ..errors import CalibrationError, Problem
 
 METHODS = ("mean_mean", "mean_sigma", "haebara", "stocking_lord")

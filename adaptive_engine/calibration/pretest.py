@@ -35,8 +35,8 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.special import logsumexp
 
-from .. import models
-from ..bank import ItemBank, read_bank_json_text
+from ..irt import models
+from ..bank.item_bank import ItemBank, read_bank_json_text
 from ..errors import CalibrationError, Problem
 from .data import CalibrationData
 from .em import CalibrationSettings, bounded, calibrate_data
@@ -142,7 +142,7 @@ def load_store_bank(path, bank_id: str) -> ItemBank:
 
 def find_bank_id(path, bank: ItemBank) -> str:
     """The store's id of ``bank`` (the stored content must be the same bank)."""
-    from ..store import bank_content
+    from ..live.store import bank_content
 
     bank_id, _ = bank_content(bank)
     conn = _connect(path)

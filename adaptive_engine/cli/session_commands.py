@@ -39,10 +39,10 @@ def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd)
 
     Output: {"session_id": ..., "item_id": ..., "item": {...}, "done": false, ...}.
     """
-    from ..bank import load_bank
-    from ..design_file import read_design
-    from ..session import start_session
-    from ..store import open_store
+    from ..bank.item_bank import load_bank
+    from ..design.toml_file import read_design
+    from ..live.session import start_session
+    from ..live.store import open_store
 
     design = read_design(design_file)
     bank = load_bank(bank_file)
@@ -72,8 +72,8 @@ def answer(session_id, item_id, response, db_path, elapsed):
     Output: {"item_id": next item or null, "theta": ..., "se": ..., "done": ...,
     "result": {...} once done}.  Sending the same answer again prints the same reply.
     """
-    from ..session import submit_answer
-    from ..store import open_store
+    from ..live.session import submit_answer
+    from ..live.store import open_store
 
     with open_store(db_path, create=False) as store:
         echo_json(submit_answer(store, session_id, item_id, response, elapsed=elapsed))
@@ -85,8 +85,8 @@ def answer(session_id, item_id, response, db_path, elapsed):
 @report_errors
 def show(session_id, db_path):
     """Print SESSION_ID: status, the answers with the estimate after each, the result."""
-    from ..session import show_session
-    from ..store import open_store
+    from ..live.session import show_session
+    from ..live.store import open_store
 
     with open_store(db_path, create=False) as store:
         echo_json(show_session(store, session_id))
@@ -99,8 +99,8 @@ def show(session_id, db_path):
 @report_errors
 def list_(db_path, status):
     """List the sessions of the store (oldest first) as a JSON array."""
-    from ..session import list_sessions
-    from ..store import open_store
+    from ..live.session import list_sessions
+    from ..live.store import open_store
 
     with open_store(db_path, create=False) as store:
         echo_json(list_sessions(store, status=status))
@@ -119,9 +119,9 @@ def try_(design_file, bank_file, seed):
 
     Each item shows its id, content area and label; type the category (0..K-1).
     """
-    from ..bank import load_bank
-    from ..design_file import read_design
-    from ..session import try_session
+    from ..bank.item_bank import load_bank
+    from ..design.toml_file import read_design
+    from ..live.session import try_session
 
     def ask(item, position):
         click.echo(f"\n#{position}  {item['item_id']}  [{item['area']}]")

@@ -1,0 +1,345 @@
+"""The SQLite session store: sessions, their append-only event log, banks, designs, exposure.
+
+One file holds everything a live session needs, so a session resumes from the store alone
+(after a crash, on another machine, in another process):
+
+``sessions``
+    One row per session: ``session_id``, ``examinee``, ``bank_id``, ``design_id``,
+    ``status`` (``active`` | ``finished``), ``seed``, ``created_at``, ``updated_at``,
+    ``state`` (JSON snapshot), ``result`` (JSON final report), plus ``prior_mean``,
+    ``prior_sd``, ``last_seq`` (sequence number of the session's latest event),
+    ``n_given`` and ``pending_item``.
+``events``
+    Append-only log, unique on ``(session_id, seq)``: ``kind`` is ``item_given``,
+    ``answer`` or ``finished``; each row carries the item, the response (answers), whether
+    it is scored (1 operational / 0 pretest), the estimate and SE, the criterion value and
+    size of the eligible set (items given), the random-generator state ``{"key",
+    "position"}``, the elapsed time the app reported, and (answers) the reply returned to
+    the app, so that a resent answer gets exactly the same reply.
+``banks`` / ``designs``
+    Content-addressed (SHA-256 of the content): the bank in the JSON bank format, the design
+    as TOML plus its Sympson-Hetter parameters (``exposure_parameters``, JSON; parameters
+    conditional on ability are stored as ``{"exposure_strata": [...], "exposure_parameters": {...}}``).
+``exposure_counts`` / ``bank_sessions``
+    How often each item of a bank was given, and how many sessions a bank started: the
+    exposure rate of an item is ``count / sessions_started``.
+
+Concurrency: the database runs in WAL mode with a busy timeout, and every write is one
+``BEGIN IMMEDIATE`` transaction (the write lock is taken up front, so two writers never
+deadlock on a lock upgrade and nobody sees "database is locked" while waiting is possible).
+``synchronous = NORMAL`` is used: in WAL mode a crashed *process* never loses a committed
+transaction (only a power cut may drop the last ones); pass ``durable=True`` for FULL.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import sqlite3
+import time
+import tomllib
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Callable, Iterator
+
+import attrs
+import sqlite_utils
+
+from ..bank.item_bank import ItemBank, read_bank_json_text
+from ..bank.files import bank_to_json_text
+from ..design.types import Design
+from ..errors import SessionError
+from ..jsonable import plain
+
+#: Seconds a writer waits for another process's write lock before giving up.
+BUSY_TIMEOUT_SECONDS = 60.0
+STATUSES = ("active", "finished")
+EVENT_KINDS = ("item_given", "answer", "finished")
+
+_EVENT_COLUMNS = ("session_id", "seq", "kind", "item_id", "response", "scored", "theta", "se",
+                  "criterion", "eligible", "rng_state", "elapsed", "created_at", "reply")
+_INSERT_EVENT = (f"INSERT INTO events ({', '.join(_EVENT_COLUMNS)}) "
+                 f"VALUES ({', '.join('?' for _ in _EVENT_COLUMNS)})")
+_COUNT_EXPOSURE = ("INSERT INTO exposure_counts (bank_id, item_id, count) VALUES (?, ?, 1) "
+                   "ON CONFLICT (bank_id, item_id) DO UPDATE SET count = count + 1")
+_COUNT_SESSION = ("INSERT INTO bank_sessions (bank_id, sessions_started) VALUES (?, 1) "
+                  "ON CONFLICT (bank_id) DO UPDATE SET sessions_started = sessions_started + 1")
+
+
+def now_text() -> str:
+    """UTC time stamp, ISO 8601 with microseconds."""
+    return datetime.now(timezone.utc).isoformat(timespec="microseconds")
+
+
+def to_json(obj) -> str:
+    """Compact JSON of plain data and numpy scalars/arrays; NaN and inf become null."""
+    return json.dumps(plain(obj), separators=(",", ":"), allow_nan=False)
+
+
+def _sha256(text: str) -> str:
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+
+def bank_content(bank: ItemBank) -> tuple[str, str]:
+    """``(bank_id, content)``: the bank as JSON text and its SHA-256 (cached on the bank)."""
+
+    def make():
+        text = bank_to_json_text(bank)
+        return _sha256(text), text
+
+    return bank._cached(("store_content",), make)
+
+
+def design_content(design: Design) -> tuple[str, str, str | None]:
+    """``(design_id, toml, exposure_parameters_json)`` of a design."""
+    from ..design.toml_file import design_to_toml
+
+    toml_text = design_to_toml(design)
+    # the id ignores where the design was read from (the header comment names the file)
+    neutral = design_to_toml(attrs.evolve(design, source=""))
+    params = None
+    if design.exposure_parameters is not None:
+        if design.exposure_strata:
+            # parameters conditional on ability: stored with their cut points; an object
+            # of lists cannot be mistaken for the unconditional item -> number layout
+            doc = {"exposure_strata": [float(c) for c in design.exposure_strata],
+                   "exposure_parameters": {str(k): [float(x) for x in v]
+                                           for k, v in sorted(design.exposure_parameters.items())}}
+        else:
+            doc = {str(k): float(v) for k, v in sorted(design.exposure_parameters.items())}
+        params = json.dumps(doc, separators=(",", ":"))
+    return _sha256(neutral + "\n" + (params or "")), toml_text, params
+
+
+def design_from_content(toml_text: str, params_json: str | None, *, design_id: str = "") -> Design:
+    """Rebuild a stored design without touching any file (its parameters are stored too)."""
+    from ..design.toml_file import design_from_dict
+
+    doc = tomllib.loads(toml_text)
+    doc["source"] = f"store design {design_id[:12]}" if design_id else "store"
+    if params_json is not None:
+        stored = json.loads(params_json)
+        if isinstance(stored.get("exposure_parameters"), dict):
+            doc["exposure_strata"] = stored.get("exposure_strata")
+            stored = stored["exposure_parameters"]
+        doc["exposure_parameters"] = stored
+    return design_from_dict(doc)
+
+
+class SessionStore:
+    """An open session store (one SQLite connection; use one object per thread).
+
+    Build with :func:`open_store`.  Attributes
+    ----------
+    db : sqlite_utils.Database
+        The database (reads, schema, listing).
+    conn : sqlite3.Connection
+        Its connection in autocommit mode; writes go through :meth:`writing`.
+    key : str
+        Identity of the file (resolved path) for per-process caches.
+    before_commit : callable or None
+        Called inside every write transaction just before COMMIT.  A hook for crash tests
+        (a process killed here must leave the store unchanged); None in normal use.
+    """
+
+    def __init__(self, path: str | Path, *, create: bool = True, durable: bool = False):
+        memory = str(path) == ":memory:"
+        if not memory:
+            p = Path(path)
+            if not create and not p.exists():
+                raise SessionError(f"no session store at {p}", location=str(p))
+            if p.is_dir():
+                raise SessionError(f"is a directory, not a session store: {p}", location=str(p))
+        self.path = str(path)
+        self.before_commit: Callable[[], None] | None = None
+        self.key = ":memory:%d" % id(self) if memory else str(Path(path).resolve())
+        try:
+            conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_SECONDS, isolation_level=None)
+            conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
+            self.conn = conn
+            self.db = sqlite_utils.Database(conn)
+            if not memory and self.db.journal_mode != "wal":
+                self.db.enable_wal()
+            conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
+            self._ensure_schema()
+        except sqlite3.DatabaseError as exc:
+            raise SessionError(f"not a usable session store: {exc}", location=self.path) from None
+
+    # -- schema ------------------------------------------------------------------------
+    _TABLES = ("sessions", "events", "banks", "designs", "exposure_counts", "bank_sessions")
+
+    def _ensure_schema(self) -> None:
+        if all(self.db[name].exists() for name in self._TABLES):
+            return
+        with self.writing():
+            db = self.db
+            db["banks"].create({"bank_id": str, "name": str, "content": str}, pk="bank_id", if_not_exists=True)
+            db["designs"].create({"design_id": str, "content": str, "exposure_parameters": str},
+                                 pk="design_id", if_not_exists=True)
+            db["sessions"].create(
+                {"session_id": str, "examinee": str, "bank_id": str, "design_id": str, "status": str,
+                 "seed": int, "created_at": str, "updated_at": str, "state": str, "result": str,
+                 "prior_mean": float, "prior_sd": float, "last_seq": int, "n_given": int,
+                 "pending_item": str},
+                pk="session_id", if_not_exists=True,
+                foreign_keys=[("bank_id", "banks"), ("design_id", "designs")],
+            )
+            db["sessions"].create_index(["status"], if_not_exists=True)
+            db["events"].create(
+                {"event_id": int, "session_id": str, "seq": int, "kind": str, "item_id": str,
+                 "response": int, "scored": int, "theta": float, "se": float, "criterion": float,
+                 "eligible": int, "rng_state": str, "elapsed": float, "created_at": str, "reply": str},
+                pk="event_id", if_not_exists=True,
+            )
+            db["events"].create_index(["session_id", "seq"], unique=True, if_not_exists=True)
+            db["exposure_counts"].create({"bank_id": str, "item_id": str, "count": int},
+                                         pk=("bank_id", "item_id"), if_not_exists=True)
+            db["bank_sessions"].create({"bank_id": str, "sessions_started": int}, pk="bank_id",
+                                       if_not_exists=True)
+
+    # -- transactions --------------------------------------------------------------------
+    @contextlib.contextmanager
+    def writing(self) -> Iterator["SessionStore"]:
+        """One write transaction (BEGIN IMMEDIATE ... COMMIT), rolled back on any error."""
+        self._begin_immediate()
+        try:
+            yield self
+            if self.before_commit is not None:
+                self.before_commit()
+            self.conn.execute("COMMIT")
+        except BaseException:
+            if self.conn.in_transaction:
+                self.conn.execute("ROLLBACK")
+            raise
+
+    def _begin_immediate(self) -> None:
+        # the busy timeout already waits; this loop only covers the rare SQLITE_BUSY that
+        # SQLite returns without waiting (e.g. while another connection recovers the WAL)
+        deadline = time.monotonic() + BUSY_TIMEOUT_SECONDS
+        while True:
+            try:
+                self.conn.execute("BEGIN IMMEDIATE")
+                return
+            except sqlite3.OperationalError as exc:
+                if "locked" not in str(exc) and "busy" not in str(exc) or time.monotonic() > deadline:
+                    raise
+                time.sleep(0.005)
+
+    def close(self) -> None:
+        self.conn.close()
+
+    def __enter__(self) -> "SessionStore":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    # -- banks and designs ---------------------------------------------------------------
+    def put_bank(self, bank: ItemBank) -> str:
+        """Store ``bank`` (once per content) in the open transaction; returns its id."""
+        bank_id, text = bank_content(bank)
+        self.conn.execute("INSERT OR IGNORE INTO banks (bank_id, name, content) VALUES (?, ?, ?)",
+                          (bank_id, str(bank.name), text))
+        return bank_id
+
+    def put_design(self, design: Design) -> str:
+        """Store ``design`` (once per content) in the open transaction; returns its id."""
+        design_id, toml_text, params = design_content(design)
+        self.conn.execute("INSERT OR IGNORE INTO designs (design_id, content, exposure_parameters) "
+                          "VALUES (?, ?, ?)", (design_id, toml_text, params))
+        return design_id
+
+    def load_bank(self, bank_id: str) -> ItemBank:
+        row = self.conn.execute("SELECT content FROM banks WHERE bank_id = ?", (bank_id,)).fetchone()
+        if row is None:
+            raise SessionError(f"bank {bank_id} is missing from the store", location=f"bank {bank_id}")
+        return read_bank_json_text(row[0], source=f"store bank {bank_id[:12]}")
+
+    def load_design(self, design_id: str) -> Design:
+        row = self.conn.execute("SELECT content, exposure_parameters FROM designs WHERE design_id = ?",
+                                (design_id,)).fetchone()
+        if row is None:
+            raise SessionError(f"design {design_id} is missing from the store", location=f"design {design_id}")
+        return design_from_content(row[0], row[1], design_id=design_id)
+
+    # -- sessions and events -------------------------------------------------------------
+    _SESSION_FIELDS = ("session_id", "examinee", "bank_id", "design_id", "status", "seed",
+                       "created_at", "updated_at", "state", "result", "prior_mean", "prior_sd",
+                       "last_seq", "n_given", "pending_item")
+
+    def session_row(self, session_id: str) -> dict:
+        """The session's row as a dict; SessionError if there is no such session."""
+        if not isinstance(session_id, str):
+            raise SessionError(f"a session id must be text, got {type(session_id).__name__}", location="session_id")
+        row = self.conn.execute(f"SELECT {', '.join(self._SESSION_FIELDS)} FROM sessions WHERE session_id = ?",
+                                (session_id,)).fetchone()
+        if row is None:
+            raise SessionError(f"unknown session {session_id!r}", location=f"session {session_id}")
+        return dict(zip(self._SESSION_FIELDS, row))
+
+    def insert_session(self, row: dict) -> None:
+        cols = [c for c in self._SESSION_FIELDS if c in row]
+        try:
+            self.conn.execute(f"INSERT INTO sessions ({', '.join(cols)}) VALUES ({', '.join('?' for _ in cols)})",
+                              [row[c] for c in cols])
+        except sqlite3.IntegrityError:
+            raise SessionError(f"session {row['session_id']!r} already exists",
+                               location=f"session {row['session_id']}") from None
+        self.conn.execute(_COUNT_SESSION, (row["bank_id"],))
+
+    def update_session(self, session_id: str, changes: dict) -> None:
+        cols = list(changes)
+        self.conn.execute(f"UPDATE sessions SET {', '.join(f'{c} = ?' for c in cols)} WHERE session_id = ?",
+                          [changes[c] for c in cols] + [session_id])
+
+    def append_events(self, events: list[dict]) -> None:
+        self.conn.executemany(_INSERT_EVENT, [[e.get(c) for c in _EVENT_COLUMNS] for e in events])
+
+    def count_exposure(self, bank_id: str, item_id: str) -> None:
+        self.conn.execute(_COUNT_EXPOSURE, (bank_id, item_id))
+
+    def answers(self, session_id: str) -> list[tuple[str, int, float | None]]:
+        """``(item_id, response, elapsed)`` of the session's answers in order."""
+        return self.conn.execute("SELECT item_id, response, elapsed FROM events WHERE session_id = ? "
+                                 "AND kind = 'answer' ORDER BY seq", (session_id,)).fetchall()
+
+    def answer_event(self, session_id: str, item_id: str) -> dict | None:
+        row = self.conn.execute("SELECT response, reply FROM events WHERE session_id = ? AND kind = 'answer' "
+                                "AND item_id = ?", (session_id, item_id)).fetchone()
+        return None if row is None else {"response": row[0], "reply": row[1]}
+
+    def events(self, session_id: str) -> list[dict]:
+        """Every event of a session in order, as dicts."""
+        return list(self.db.query("SELECT * FROM events WHERE session_id = ? ORDER BY seq", [session_id]))
+
+    def sessions(self, *, status: str | None = None) -> list[dict]:
+        if status is not None and status not in STATUSES:
+            raise SessionError(f"status must be one of {', '.join(STATUSES)}, got {status!r}", location="status")
+        where, args = ("status = ?", [status]) if status else (None, None)
+        return list(self.db["sessions"].rows_where(where, args, order_by="created_at, session_id"))
+
+    def exposure(self, bank_id: str) -> tuple[int, dict[str, int]]:
+        """``(sessions_started, {item_id: count})`` for a bank."""
+        row = self.conn.execute("SELECT sessions_started FROM bank_sessions WHERE bank_id = ?", (bank_id,)).fetchone()
+        counts = dict(self.conn.execute("SELECT item_id, count FROM exposure_counts WHERE bank_id = ?", (bank_id,)))
+        return (0 if row is None else int(row[0])), counts
+
+    def dump(self) -> dict[str, list[tuple]]:
+        """Every row of every table, sorted (to compare the whole store before and after)."""
+        return {name: sorted(tuple(r) for r in self.conn.execute(f"SELECT * FROM {name}"))
+                for name in self._TABLES}
+
+
+def open_store(path: str | Path, *, create: bool = True, durable: bool = False) -> SessionStore:
+    """Open (and if needed create) the session store at ``path`` (``":memory:"`` for a scratch one).
+
+    Parameters
+    ----------
+    create : bool
+        False: a missing file is a :class:`SessionError` instead of a new empty store.
+    durable : bool
+        ``synchronous = FULL`` (survives power loss) instead of NORMAL (survives crashes).
+    """
+    return SessionStore(path, create=create, durable=durable)
+
