@@ -12,25 +12,24 @@ The formats are those read by :mod:`adaptive_engine.bank` (see ``item_banks/READ
   holding one row ``(scaling, name)``.
 
 Every float is written with ``repr`` precision, so a round trip gives back the same bank
-bit for bit.  Every writer builds the file under a temporary name in the target folder and
-moves it into place with :func:`os.replace`, so a failure never leaves a half-written file.
+bit for bit.  Every writer goes through :mod:`adaptive_engine.files`: the folder must exist,
+the file is built under a temporary name beside the target and renamed into place (a failure
+never leaves a half-written file), and it gets the normal mode under the user's umask.
 """
 
 from __future__ import annotations
 
-import contextlib
 import json
 import os
 import sqlite3
-import tempfile
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
 from ..irt import models
 from .item_bank import ItemBank, bank_from_records
-from ..errors import AdaptiveEngineError, BankError, Problem
+from ..errors import BankError, Problem
+from ..files import atomic_write, write_text
 
 #: Columns before and after the threshold columns b1..bK, in file order.
 LEADING_COLUMNS = ("item_id", "model", "a", "b", "c", "d")
@@ -133,75 +132,6 @@ def bank_to_json_text(bank: ItemBank) -> str:
     )
 
 
-# ----------------------------------------------------------------------------------------
-# atomic writing
-
-
-def _atomic_write(path: Path, fill: Callable[[Path], None]) -> None:
-    """Call ``fill(temp_path)`` then move the temp file onto ``path``; clean up on failure."""
-    path = Path(path)
-    folder = path.parent if str(path.parent) else Path(".")
-    check_target(path)
-    try:
-        fd, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=folder)
-    except OSError as exc:
-        # the temporary name means nothing to the user: name the folder instead
-        raise AdaptiveEngineError(f"cannot write into the folder {folder}: {exc.strerror or exc}",
-                                  location=str(path)) from None
-    os.close(fd)
-    temp = Path(temp_name)
-    try:
-        fill(temp)
-        # mkstemp makes the file private (0600); give it the mode a plain open() would
-        os.chmod(temp, _default_file_mode())
-        os.replace(temp, path)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            temp.unlink()
-        raise
-
-
-def check_target(path: str | Path) -> None:
-    """Refuse an output ``path`` whose folder does not exist or that is itself a folder.
-
-    Raises
-    ------
-    AdaptiveEngineError
-        Located at ``path``, before anything is written.
-    """
-    path = Path(path)
-    folder = path.parent if str(path.parent) else Path(".")
-    if not folder.is_dir():
-        raise AdaptiveEngineError(f"the folder {folder} does not exist", location=str(path))
-    if path.is_dir():
-        raise AdaptiveEngineError("this is a folder, not a file name", location=str(path))
-
-
-def _default_file_mode() -> int:
-    umask = os.umask(0)
-    os.umask(umask)
-    return 0o666 & ~umask
-
-
-def _write_text(path: Path, text: str) -> None:
-    def fill(temp: Path) -> None:
-        with open(temp, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-
-    _atomic_write(path, fill)
-
-
-def write_text_file(path: str | Path, text: str) -> None:
-    """Write ``text`` (UTF-8, line ends as given) to ``path`` atomically.
-
-    The folder must exist (else :class:`~adaptive_engine.errors.AdaptiveEngineError`
-    naming it); the file appears whole or not at all.
-    """
-    _write_text(Path(path), text)
-
-
 def write_bank_csv(bank: ItemBank, path: str | Path) -> None:
     """Write ``bank`` as CSV (the name is not stored: CSV has no place for it).
 
@@ -214,12 +144,12 @@ def write_bank_csv(bank: ItemBank, path: str | Path) -> None:
             "for D (reading it back would give D = 1); write .json or .db instead",
             location=str(path),
         )
-    _write_text(Path(path), bank_to_csv_text(bank))
+    write_text(path, bank_to_csv_text(bank))
 
 
 def write_bank_json(bank: ItemBank, path: str | Path) -> None:
     """Write ``bank`` as JSON (with its scaling constant and name)."""
-    _write_text(Path(path), bank_to_json_text(bank))
+    write_text(path, bank_to_json_text(bank))
 
 
 def write_bank_sqlite(bank: ItemBank, path: str | Path) -> None:
@@ -254,7 +184,7 @@ def write_bank_sqlite(bank: ItemBank, path: str | Path) -> None:
         finally:
             os.close(fd)
 
-    _atomic_write(Path(path), fill)
+    atomic_write(path, fill)
 
 
 def write_bank(bank: ItemBank, path: str | Path) -> Path:

@@ -258,7 +258,7 @@ def plot_information_curves(curves: InformationCurves, path: str | Path, *, titl
             "plotting needs matplotlib: install the 'plots' extra (pip install 'adaptive_engine[plots]')",
             location="--plot",
         ) from None
-    from .files import _atomic_write
+    from ..files import atomic_write
 
     path = Path(path)
     if path.suffix.lower() != ".png":
@@ -280,7 +280,7 @@ def plot_information_curves(curves: InformationCurves, path: str | Path, *, titl
         ax.set_title(f"{title or 'Test information'} ({curves.n_items} {curves.items_counted} items)",
                      fontsize="medium")
         fig.tight_layout()
-        _atomic_write(path, lambda temp: fig.savefig(temp, format="png", dpi=100))
+        atomic_write(path, lambda temp: fig.savefig(temp, format="png", dpi=100))
     finally:
         plt.close(fig)
     return path

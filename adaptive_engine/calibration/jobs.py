@@ -6,8 +6,6 @@ name and moves it into place, so bad input never leaves a half-written output.
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
 import attrs
@@ -15,6 +13,7 @@ import attrs
 from ..bank.item_bank import load_bank
 from ..bank.files import write_bank
 from ..errors import CalibrationError
+from ..files import check_target, write_text
 from ..bank.responses import read_responses
 from .em import CalibrationSettings, calibrate_responses
 from .item_fit import fit_for_result, item_report_rows, rows_to_csv
@@ -27,14 +26,7 @@ _BANK_SUFFIXES = (".csv", ".json", ".db", ".sqlite", ".sqlite3")
 def _check_folder(path, option: str) -> Path:
     """Refuse an output whose folder is missing -- before any work is done, and naming the
     folder (a late failure would name the temporary file the writer uses instead)."""
-    path = Path(path)
-    folder = path.parent
-    if not folder.is_dir():
-        what = "is not a folder" if folder.exists() else "does not exist"
-        raise CalibrationError(f"the folder {str(folder)!r} {what}; create it first", location=f"{option} {path}")
-    if path.is_dir():
-        raise CalibrationError("is a folder, not a file name", location=f"{option} {path}")
-    return path
+    return check_target(path, location=f"{option} {path}")
 
 
 def _check_bank_target(path, option: str) -> Path:
@@ -45,24 +37,11 @@ def _check_bank_target(path, option: str) -> Path:
     return _check_folder(path, option)
 
 
-def _write_text_atomic(path: Path, text: str) -> None:
-    folder = path.resolve().parent
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=folder)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def _write_outputs(bank, bank_path: Path | None, reports: dict[Path, str]) -> None:
     if bank_path is not None:
         write_bank(bank, bank_path)
     for path, text in reports.items():
-        _write_text_atomic(path, text)
+        write_text(path, text)
 
 
 def calibrate_file(

@@ -43,8 +43,6 @@ row per item and stratum.
 from __future__ import annotations
 
 import io
-import os
-import tempfile
 from pathlib import Path
 
 import attrs
@@ -54,6 +52,7 @@ from ..bank.item_bank import ItemBank
 from ..design.types import Design
 from ..design.bank_fit import require_design_fits_bank
 from ..errors import AdaptiveEngineError
+from ..files import check_target, write_text
 from .engine import DEFAULT_CHUNK, simulate, stratum_of
 
 
@@ -355,24 +354,15 @@ def parameters_csv(parameters: dict, strata=()) -> str:
 
 
 def write_parameters(parameters: dict, path: str | Path, *, strata=()) -> Path:
-    """Write the parameters CSV atomically (a temporary file renamed into place)."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(parameters_csv(parameters, strata))
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
+    """Write the parameters CSV (atomically, with the normal file mode: :mod:`adaptive_engine.files`)."""
+    return write_text(path, parameters_csv(parameters, strata))
 
 
 def run_calibration(design: Design, bank: ItemBank, *, target: float, out_file, true_theta, seed: int,
                     max_iterations: int = 15, tolerance: float = 0.02, workers: int = 1,
                     strata=None, progress=None) -> ExposureCalibration:
     """:func:`calibrate_sympson_hetter`, then write the parameters file (conditional with ``strata``)."""
+    check_target(out_file)  # before the long run: a bad folder fails at once
     cal = calibrate_sympson_hetter(design, bank, target=target, true_theta=true_theta, seed=seed,
                                    max_iterations=max_iterations, tolerance=tolerance, workers=workers,
                                    strata=strata, progress=progress)

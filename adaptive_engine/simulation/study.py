@@ -1,10 +1,11 @@
 """A simulation study written to a folder: summary, tables, administrations, report.
 
-:func:`run_study` is what ``adaptive-engine simulate`` calls.  Files are written into a
-hidden staging folder inside the output folder and moved into place only when the whole
-run succeeded, so a failed run leaves nothing half-written; a file of :data:`FILES` that
-an earlier run left in the folder and this run did not write is removed then, so the
-folder never mixes two runs.
+:func:`run_study` is what ``adaptive-engine simulate`` calls.  The output folder is created
+when missing (the folder it sits in must exist: :mod:`adaptive_engine.files`).  Files are
+written under temporary names inside the output folder and renamed into place only when
+the whole run succeeded, so a failed run leaves nothing half-written; a file of
+:data:`FILES` that an earlier run left in the folder and this run did not write is removed
+then, so the folder never mixes two runs.
 
 Files
 -----
@@ -31,9 +32,7 @@ import csv
 import io
 import json
 import math
-import os
 import shutil
-import tempfile
 from pathlib import Path
 from typing import Callable
 
@@ -44,6 +43,7 @@ from . import metrics
 from ..bank.item_bank import ItemBank
 from ..design.types import Design
 from ..design.bank_fit import require_design_fits_bank
+from ..files import StagedFiles, prepare_folder
 from .population import AbilitySpec, examinee_count
 from .engine import (
     DEFAULT_CHUNK, ChunkResult, SimulationResult, effective_chunk_size, simulate, true_item_rows,
@@ -171,13 +171,11 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
     created = False
     finished = False
     if out_dir is not None:
-        out_dir = Path(out_dir)
-        created = not out_dir.exists()
-        out_dir.mkdir(parents=True, exist_ok=True)
-        staging = Path(tempfile.mkdtemp(prefix=".simulation-", dir=out_dir))
+        out_dir, created = prepare_folder(out_dir)
+        staging = StagedFiles(out_dir)
     try:
         if staging is not None and write_administrations:
-            writer = _AdministrationWriter(staging / "administrations.csv", bank)
+            writer = _AdministrationWriter(staging.path("administrations.csv"), bank)
         # a design with ability-conditional exposure parameters is judged stratum by stratum
         strata = design.exposure_strata or None
         result = simulate(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
@@ -194,19 +192,16 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
         }
         conditional = summary["conditional"]
         if staging is not None:
-            (staging / "summary.json").write_text(json.dumps(summary, indent=2, allow_nan=False) + "\n",
-                                                  encoding="utf-8")
-            (staging / "examinees.csv").write_text(examinees_csv(result), encoding="utf-8")
-            (staging / "items.csv").write_text(items_csv(result), encoding="utf-8")
-            (staging / "conditional.csv").write_text(rows_csv(conditional), encoding="utf-8")
+            staging.write_text("summary.json", json.dumps(summary, indent=2, allow_nan=False) + "\n")
+            staging.write_text("examinees.csv", examinees_csv(result))
+            staging.write_text("items.csv", items_csv(result))
+            staging.write_text("conditional.csv", rows_csv(conditional))
             from .html_report import simulation_report_html
 
-            (staging / "report.html").write_text(simulation_report_html(result, summary, title=title),
-                                                 encoding="utf-8")
+            staging.write_text("report.html", simulation_report_html(result, summary, title=title))
+            written = {p.name for p in staging.commit()}
             for name in FILES:
-                if (staging / name).exists():
-                    os.replace(staging / name, out_dir / name)
-                else:
+                if name not in written:
                     # a file of an earlier run that this run did not write (e.g. its
                     # administrations.csv after --no-administrations) would not match the others
                     (out_dir / name).unlink(missing_ok=True)
@@ -216,7 +211,7 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
         if writer is not None:
             writer.close()
         if staging is not None:
-            shutil.rmtree(staging, ignore_errors=True)
+            staging.discard()
             if created and not finished:
                 shutil.rmtree(out_dir, ignore_errors=True)  # a folder made for a failed run
 

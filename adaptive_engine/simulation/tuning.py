@@ -23,6 +23,7 @@ from ..design.types import Design
 from ..design.bank_fit import require_design_fits_bank
 from ..design.toml_file import design_as_dict, design_from_dict
 from ..errors import DesignError, Problem
+from ..files import StagedFiles, prepare_folder
 from .engine import DEFAULT_CHUNK, simulate
 
 
@@ -175,16 +176,14 @@ def run_tuning_study(design: Design, bank: ItemBank, variations: list[Variation]
                      out_dir, true_bank: ItemBank | None = None, workers: int = 1, progress=None) -> list[dict]:
     """:func:`tune`, then write ``tuning.csv``, ``tuning.json`` and ``tuning.html`` into ``out_dir``."""
     import json
-    from pathlib import Path
 
     from .html_report import tuning_report_html
     from .study import rows_csv
 
+    out, _ = prepare_folder(out_dir)  # before the long run: a bad folder fails at once
     rows = tune(design, bank, variations, true_theta=true_theta, seed=seed, true_bank=true_bank,
                 workers=workers, progress=progress)
     keys = [v.key for v in variations]
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
     # every file is complete before any is renamed into place
     texts = {
         "tuning.csv": rows_csv(rows),
@@ -193,19 +192,8 @@ def run_tuning_study(design: Design, bank: ItemBank, variations: list[Variation]
         "tuning.html": tuning_report_html(rows, tradeoff_png(rows, keys),
                                           title=f"Tuning {design.source or 'a design'}: " + ", ".join(keys)),
     }
-    import os
-    import tempfile
-
-    staged = []
-    try:
+    with StagedFiles(out) as staged:
         for name, text in texts.items():
-            fd, tmp = tempfile.mkstemp(prefix=f".{name}.", dir=out)
-            with os.fdopen(fd, "w", encoding="utf-8") as fh:
-                fh.write(text)
-            staged.append((tmp, out / name))
-        for tmp, final in staged:
-            os.replace(tmp, final)
-    finally:
-        for tmp, _ in staged:
-            Path(tmp).unlink(missing_ok=True)
+            staged.write_text(name, text)
+        staged.commit()
     return rows
