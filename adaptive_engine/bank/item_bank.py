@@ -90,7 +90,10 @@ class ItemBank:
             raise BankError(problems)
 
     # -- derived, cached -------------------------------------------------------------
-    def _cached(self, key, make):
+    def cached(self, key, make):
+        """``make()``, computed once per bank and ``key`` (a bank never changes, so neither
+        does anything derived from it).  Other layers memoise their per-bank tables here
+        under keys of their own: the kernel's ranked tables, the store's JSON content."""
         if key not in self._cache:
             self._cache[key] = make()
         return self._cache[key]
@@ -104,7 +107,7 @@ class ItemBank:
 
     @property
     def family(self) -> np.ndarray:
-        return self._cached(
+        return self.cached(
             "family", lambda: np.array([models.MODEL_FAMILY[m] for m in self.model], dtype=np.int8)
         )
 
@@ -114,7 +117,7 @@ class ItemBank:
             k = np.sum(~np.isnan(self.thresholds), axis=1) if self.thresholds.size else 0
             return np.where(self.family == models.DICHOTOMOUS, 2, np.asarray(k) + 1).astype(np.int64)
 
-        return self._cached("n_categories", make)
+        return self.cached("n_categories", make)
 
     @property
     def max_categories(self) -> int:
@@ -123,7 +126,7 @@ class ItemBank:
     @property
     def params(self) -> models.ItemParameters:
         """All items' parameters for the functions of :mod:`adaptive_engine.models`."""
-        return self._cached(
+        return self.cached(
             "params",
             lambda: models.ItemParameters(
                 family=self.family, a=self.a, b=self.b, c=self.c, d=self.d,
@@ -135,7 +138,7 @@ class ItemBank:
     @property
     def index_of(self) -> dict:
         """Mapping item id -> row index."""
-        return self._cached("index_of", lambda: {iid: i for i, iid in enumerate(self.item_ids)})
+        return self.cached("index_of", lambda: {iid: i for i, iid in enumerate(self.item_ids)})
 
     def indices(self, item_ids: Iterable[str]) -> np.ndarray:
         """Row indices of ``item_ids``; unknown ids raise :class:`BankError`."""
@@ -150,12 +153,12 @@ class ItemBank:
     @property
     def areas(self) -> tuple:
         """Content areas in order of first appearance."""
-        return self._cached("areas", lambda: tuple(dict.fromkeys(self.area)))
+        return self.cached("areas", lambda: tuple(dict.fromkeys(self.area)))
 
     @property
     def area_index(self) -> np.ndarray:
         """Integer code of each item's area (index into :attr:`areas`)."""
-        return self._cached(
+        return self.cached(
             "area_index",
             lambda: np.array([self.areas.index(x) for x in self.area], dtype=np.int64),
         )
@@ -164,13 +167,13 @@ class ItemBank:
         """Log category probabilities on an ability grid, shape (n, G, C); cached per grid."""
         grid = np.asarray(grid, dtype=float)
         key = ("logp", grid.tobytes())
-        return self._cached(key, lambda: _readonly(models.log_probabilities(*models.outer(self.params, grid))))
+        return self.cached(key, lambda: _readonly(models.log_probabilities(*models.outer(self.params, grid))))
 
     def information_table(self, grid) -> np.ndarray:
         """Fisher information of every item on an ability grid, shape (n, G); cached."""
         grid = np.asarray(grid, dtype=float)
         key = ("info", grid.tobytes())
-        return self._cached(key, lambda: _readonly(models.information(*models.outer(self.params, grid))))
+        return self.cached(key, lambda: _readonly(models.information(*models.outer(self.params, grid))))
 
     def evolve(self, **changes) -> "ItemBank":
         """A new bank with some fields changed (validated again)."""

@@ -283,7 +283,7 @@ STEPS_PER_SD = 2.5
 
 
 def _cached_bound(source, params) -> np.ndarray:
-    cached = getattr(source, "_cached", None)
+    cached = getattr(source, "cached", None)
     if cached is None:
         return max_information_bound(params)
     return cached("estimation.max_information_bound", lambda: max_information_bound(params))
@@ -369,7 +369,7 @@ def _flat_log_table(source, grid) -> np.ndarray:
         flat.setflags(write=False)
         return flat
 
-    cached = getattr(source, "_cached", None)
+    cached = getattr(source, "cached", None)
     if cached is None:
         return make()
     return cached(("estimation.flat_log_table", np.asarray(grid).tobytes()), make)

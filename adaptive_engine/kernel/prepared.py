@@ -80,7 +80,7 @@ def ranked_tables(bank: ItemBank) -> RankedTables:
                 ceiling[k] = sub_reach.max(axis=1)
         return RankedTables(grid=grid, items=items, reach=reach, ceiling=ceiling)
 
-    return bank._cached(("ranked_tables", RANK_STEP, RANK_DEPTH), make)
+    return bank.cached(("ranked_tables", RANK_STEP, RANK_DEPTH), make)
 
 
 @attrs.frozen(eq=False)

@@ -88,7 +88,7 @@ def bank_content(bank: ItemBank) -> tuple[str, str]:
         text = bank_to_json_text(bank)
         return _sha256(text), text
 
-    return bank._cached(("store_content",), make)
+    return bank.cached(("store_content",), make)
 
 
 def design_content(design: Design) -> tuple[str, str, str | None]:

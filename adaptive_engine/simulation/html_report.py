@@ -23,7 +23,8 @@ figure{display:inline-block;margin:0.5em}
 """
 
 
-def _pyplot():
+def pyplot_or_none():
+    """matplotlib.pyplot on the Agg backend, or None when the plots extra is not installed."""
     try:
         import matplotlib
 
@@ -34,7 +35,8 @@ def _pyplot():
     return plt
 
 
-def _png(fig) -> str:
+def png_base64(fig) -> str:
+    """The figure as a base64 PNG for a data: URL."""
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
     return base64.b64encode(buf.getvalue()).decode("ascii")
@@ -62,7 +64,7 @@ def table_html(rows: list[dict], columns: list[str] | None = None) -> str:
 
 def _figures(result, summary) -> list[tuple[str, str]]:
     """(caption, base64 PNG) pairs; empty without matplotlib."""
-    plt = _pyplot()
+    plt = pyplot_or_none()
     if plt is None:
         return []
     out = []
@@ -79,14 +81,14 @@ def _figures(result, summary) -> list[tuple[str, str]]:
     ax.axhline(0, color="grey", lw=0.5)
     ax.set_xlabel("true theta")
     ax.legend()
-    out.append(("Conditional RMSE, bias and SE", _png(fig)))
+    out.append(("Conditional RMSE, bias and SE", png_base64(fig)))
     plt.close(fig)
 
     fig, ax = plt.subplots(figsize=(6, 3.6))
     ax.plot(th, col("mean_length"), "o-")
     ax.set_xlabel("true theta")
     ax.set_ylabel("mean scored items")
-    out.append(("Test length against ability", _png(fig)))
+    out.append(("Test length against ability", png_base64(fig)))
     plt.close(fig)
 
     operational = np.asarray(result.bank.status) == "operational"
@@ -99,7 +101,7 @@ def _figures(result, summary) -> list[tuple[str, str]]:
         ax.legend()
     ax.set_xlabel("exposure rate")
     ax.set_ylabel("items")
-    out.append(("Exposure rates of the operational items", _png(fig)))
+    out.append(("Exposure rates of the operational items", png_base64(fig)))
     plt.close(fig)
 
     from ..irt import models
@@ -110,7 +112,7 @@ def _figures(result, summary) -> list[tuple[str, str]]:
     ax.plot(grid, info, color="black")
     ax.set_xlabel("theta")
     ax.set_ylabel("bank information")
-    out.append(("Information of the operational bank", _png(fig)))
+    out.append(("Information of the operational bank", png_base64(fig)))
     plt.close(fig)
     return out
 

@@ -148,9 +148,9 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_th
 
 def tradeoff_png(rows: list[dict], keys: list[str]) -> str | None:
     """Base64 PNG of mean length against RMSE (frontier highlighted); None without matplotlib."""
-    from .html_report import _png, _pyplot
+    from .html_report import png_base64, pyplot_or_none
 
-    plt = _pyplot()
+    plt = pyplot_or_none()
     if plt is None:
         return None
     fig, ax = plt.subplots(figsize=(6.5, 4.2))
@@ -167,7 +167,7 @@ def tradeoff_png(rows: list[dict], keys: list[str]) -> str | None:
     ax.set_xlabel("mean test length (scored items)")
     ax.set_ylabel("RMSE")
     ax.set_title("Length against precision (" + ", ".join(keys) + ")", fontsize=9)
-    data = _png(fig)
+    data = png_base64(fig)
     plt.close(fig)
     return data
 
