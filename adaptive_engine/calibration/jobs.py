@@ -104,22 +104,29 @@ def link_files(new_path, *, to, out, method: str, anchors=None, max_difficulty_s
     return summary
 
 
-def pretest_files(db_path, *, out, bank_id=None, bank_path=None, rules: PromotionRules | None = None,
-                  settings: CalibrationSettings | None = None, report=None,
-                  include_not_ready: bool = False) -> dict:
-    """Calibrate the pretest items of a session store; write them as a bank (and a report).
-
-    The bank file holds only the items ready for promotion unless ``include_not_ready``
-    (a bank file has no place for readiness, so an unready item in it would look ready);
-    the report lists every item with its ``ready`` flag and reasons.  When no item is ready
-    and ``include_not_ready`` is not set, no bank file is written and the summary's
-    ``warnings`` say so.
-    """
+def check_pretest_outputs(*, out, report=None) -> tuple[Path, Path | None]:
+    """Check the outputs of :func:`pretest_files` before anything is read or computed."""
     out = _check_bank_target(out, "--out")
     if report:
         report = _check_folder(report, "--report")
-    bank = load_bank(bank_path) if bank_path else None
-    result = calibrate_pretest(db_path, bank_id=bank_id, bank=bank, rules=rules, settings=settings)
+    return out, report or None
+
+
+def pretest_files(events, *, bank, bank_id: str, out, rules: PromotionRules | None = None,
+                  settings: CalibrationSettings | None = None, report=None,
+                  include_not_ready: bool = False) -> dict:
+    """Calibrate the pretest items of a bank's sessions; write them as a bank (and a report).
+
+    ``events``, ``bank`` and ``bank_id`` are what
+    :meth:`adaptive_engine.live.store.SessionStore.bank_answers` reads from a session store
+    (see :func:`.pretest.calibrate_pretest`).  The bank file holds only the items ready for
+    promotion unless ``include_not_ready`` (a bank file has no place for readiness, so an
+    unready item in it would look ready); the report lists every item with its ``ready``
+    flag and reasons.  When no item is ready and ``include_not_ready`` is not set, no bank
+    file is written and the summary's ``warnings`` say so.
+    """
+    out, report = check_pretest_outputs(out=out, report=report)
+    result = calibrate_pretest(events, bank=bank, bank_id=bank_id, rules=rules, settings=settings)
     reports = {}
     if report:
         reports[Path(report)] = rows_to_csv([{k: ("" if isinstance(v, float) and v != v else v)

@@ -24,6 +24,10 @@ One file holds everything a live session needs, so a session resumes from the st
     How often each item of a bank was given, and how many sessions a bank started: the
     exposure rate of an item is ``count / sessions_started``.
 
+Readers outside the live driver go through this module too: pretest calibration gets
+every answer of a bank's sessions from :meth:`SessionStore.bank_answers` (or
+:func:`read_bank_answers`), as plain data; no other module holds SQL over the store.
+
 Concurrency: the database runs in WAL mode with a busy timeout, and every write is one
 ``BEGIN IMMEDIATE`` transaction (the write lock is taken up front, so two writers never
 deadlock on a lock upgrade and nobody sees "database is locked" while waiting is possible).
@@ -143,22 +147,34 @@ class SessionStore:
         (a process killed here must leave the store unchanged); None in normal use.
     """
 
-    def __init__(self, path: str | Path, *, create: bool = True, durable: bool = False):
+    def __init__(self, path: str | Path, *, create: bool = True, durable: bool = False,
+                 read_only: bool = False):
         memory = str(path) == ":memory:"
+        if read_only and memory:
+            raise SessionError("a scratch store in memory cannot be opened read-only", location=":memory:")
         if not memory:
             p = Path(path)
-            if not create and not p.exists():
+            if (read_only or not create) and not p.exists():
                 raise SessionError(f"no session store at {p}", location=str(p))
             if p.is_dir():
                 raise SessionError(f"is a directory, not a session store: {p}", location=str(p))
         self.path = str(path)
+        self.read_only = read_only
         self.before_commit: Callable[[], None] | None = None
         self.key = ":memory:%d" % id(self) if memory else str(Path(path).resolve())
         try:
-            conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_SECONDS, isolation_level=None)
+            if read_only:
+                # a reader changes nothing: no journal mode switch, no schema, no write lock
+                uri = f"file:{Path(path).resolve().as_posix()}?mode=ro"
+                conn = sqlite3.connect(uri, uri=True, timeout=BUSY_TIMEOUT_SECONDS, isolation_level=None)
+            else:
+                conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_SECONDS, isolation_level=None)
             conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
             self.conn = conn
             self.db = sqlite_utils.Database(conn)
+            if read_only:
+                self._require_schema()
+                return
             if not memory and self.db.journal_mode != "wal":
                 self.db.enable_wal()
             conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
@@ -168,6 +184,13 @@ class SessionStore:
 
     # -- schema ------------------------------------------------------------------------
     _TABLES = ("sessions", "events", "banks", "designs", "exposure_counts", "bank_sessions")
+
+    def _require_schema(self) -> None:
+        tables = set(self.db.table_names())
+        missing = [name for name in self._TABLES if name not in tables]
+        if missing:
+            self.conn.close()
+            raise SessionError(f"not a session store: table {missing[0]!r} is missing", location=self.path)
 
     def _ensure_schema(self) -> None:
         if all(self.db[name].exists() for name in self._TABLES):
@@ -256,6 +279,10 @@ class SessionStore:
             raise SessionError(f"bank {bank_id} is missing from the store", location=f"bank {bank_id}")
         return read_bank_json_text(row[0], source=f"store bank {bank_id[:12]}")
 
+    def has_bank(self, bank_id: str) -> bool:
+        """Whether a bank with this id is stored."""
+        return self.conn.execute("SELECT 1 FROM banks WHERE bank_id = ?", (bank_id,)).fetchone() is not None
+
     def load_design(self, design_id: str) -> Design:
         row = self.conn.execute("SELECT content, exposure_parameters FROM designs WHERE design_id = ?",
                                 (design_id,)).fetchone()
@@ -325,13 +352,53 @@ class SessionStore:
         counts = dict(self.conn.execute("SELECT item_id, count FROM exposure_counts WHERE bank_id = ?", (bank_id,)))
         return (0 if row is None else int(row[0])), counts
 
+    def bank_answers(self, *, bank_id: str | None = None, bank: ItemBank | None = None) -> "BankAnswers":
+        """Every answer given in the sessions of one bank: what pretest calibration reads.
+
+        Parameters
+        ----------
+        bank_id : str, optional
+            Which bank's sessions; found from ``bank``'s content when not given.
+        bank : ItemBank, optional
+            The bank (default: the store's copy under ``bank_id``).
+
+        Returns
+        -------
+        BankAnswers
+            The bank, its id and the answer events in session and sequence order.
+
+        Raises
+        ------
+        SessionError
+            Neither given; no bank with ``bank_id``; ``bank`` is not in the store.
+        """
+        if bank_id is None and bank is None:
+            raise SessionError("give a bank id or a bank", location="pretest")
+        if bank_id is None:
+            bank_id, _ = bank_content(bank)
+            if not self.has_bank(bank_id):
+                raise SessionError("this bank is not in the store (its content differs from every stored bank); "
+                                   "give --bank-id", location="--bank")
+        elif not self.has_bank(bank_id):
+            raise SessionError(f"no bank with id {bank_id!r} in the store", location="--bank-id")
+        if bank is None:
+            bank = self.load_bank(bank_id)
+        events = self.conn.execute(
+            "SELECT e.event_id, e.session_id, e.item_id, e.response, e.scored FROM events e "
+            "JOIN sessions s ON s.session_id = e.session_id "
+            "WHERE s.bank_id = ? AND e.kind = 'answer' ORDER BY e.session_id, e.seq",
+            (bank_id,),
+        ).fetchall()
+        return BankAnswers(bank=bank, bank_id=bank_id, events=events)
+
     def dump(self) -> dict[str, list[tuple]]:
         """Every row of every table, sorted (to compare the whole store before and after)."""
         return {name: sorted(tuple(r) for r in self.conn.execute(f"SELECT * FROM {name}"))
                 for name in self._TABLES}
 
 
-def open_store(path: str | Path, *, create: bool = True, durable: bool = False) -> SessionStore:
+def open_store(path: str | Path, *, create: bool = True, durable: bool = False,
+               read_only: bool = False) -> SessionStore:
     """Open (and if needed create) the session store at ``path`` (``":memory:"`` for a scratch one).
 
     Parameters
@@ -340,6 +407,36 @@ def open_store(path: str | Path, *, create: bool = True, durable: bool = False) 
         False: a missing file is a :class:`SessionError` instead of a new empty store.
     durable : bool
         ``synchronous = FULL`` (survives power loss) instead of NORMAL (survives crashes).
+    read_only : bool
+        Open an existing store for reading only: nothing in the file is changed (not even
+        its journal mode), and a file that lacks a table of the store is refused.
     """
-    return SessionStore(path, create=create, durable=durable)
+    return SessionStore(path, create=create, durable=durable, read_only=read_only)
+
+
+@attrs.frozen(eq=False, kw_only=True)
+class BankAnswers:
+    """Every answer given in the sessions of one bank, as plain data.
+
+    Attributes
+    ----------
+    bank : ItemBank
+    bank_id : str
+        The bank's id in the store.
+    events : list of tuple
+        One ``(event_id, session_id, item_id, response, scored)`` per answer event, in
+        session and sequence order; ``scored`` is 1 for an operational item, 0 for a pretest
+        item.  Rows are as stored (not checked here).
+    """
+
+    bank: ItemBank
+    bank_id: str
+    events: list
+
+
+def read_bank_answers(path: str | Path, *, bank_id: str | None = None,
+                      bank: ItemBank | None = None) -> BankAnswers:
+    """Open the store at ``path`` read-only and return :meth:`SessionStore.bank_answers`."""
+    with open_store(path, read_only=True) as store:
+        return store.bank_answers(bank_id=bank_id, bank=bank)
 
