@@ -50,10 +50,10 @@ from adaptive_engine.design.toml_file import (
     design_from_dict,
     design_to_toml,
     parse_design,
-    parse_exposure_parameters,
     read_design,
     validate_design,
 )
+from adaptive_engine.design.exposure_parameters import parse_exposure_parameters
 from adaptive_engine.errors import AdaptiveEngineError, DesignError
 
 REPO = Path(__file__).resolve().parents[1]

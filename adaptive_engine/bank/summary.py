@@ -15,7 +15,7 @@ import attrs
 import numpy as np
 
 from .item_bank import ItemBank
-from ..irt.estimation import test_information
+from ..irt.curves import test_information
 from ..errors import AdaptiveEngineError
 
 #: Standard error below which an ability is taken as precisely measured (common practice).

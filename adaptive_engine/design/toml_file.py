@@ -12,10 +12,6 @@ Public functions
 :func:`design_to_toml` / :func:`design_as_dict`
     A design back to TOML text (``parse_design(design_to_toml(d)) == d``) or to plain
     dicts and lists.
-:func:`read_exposure_parameters` / :func:`read_exposure_file`
-    The Sympson-Hetter parameter CSV (``item_id,exposure_parameter``, or conditional on
-    ability ``item_id,theta_from,theta_to,exposure_parameter``), from
-    :mod:`adaptive_engine.exposure_file`.
 
 Every problem is collected with its location -- ``"[stopping] se"``,
 ``"[blueprint.areas.source_water] min"``, ``"[[reporting.cut_scores]] #2 theta"``,
@@ -54,13 +50,7 @@ from .types import (
     Stopping,
 )
 from ..errors import DesignError, Problem
-from .exposure_parameters import (  # noqa: F401
-    parameter_problems,
-    parse_exposure_file,
-    parse_exposure_parameters,
-    read_exposure_file,
-    read_exposure_parameters,
-)
+from .exposure_parameters import parameter_problems, read_exposure_file
 
 SECTIONS = ("opening", "scoring", "selection", "exposure", "blueprint", "stopping", "reporting")
 

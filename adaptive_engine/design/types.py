@@ -5,10 +5,10 @@ Sections: ``opening``, ``scoring``, ``selection``, ``exposure``, ``blueprint``, 
 kernel: every field the kernel reads is here, with its default.
 
 The reader, writer and validation with located errors live in
-:mod:`adaptive_engine.design_file` (``read_design``, ``parse_design``, ``design_to_toml``,
+:mod:`adaptive_engine.design.toml_file` (``read_design``, ``parse_design``, ``design_to_toml``,
 ``design_as_dict``, ``validate_design``), the check against a bank in
-:mod:`adaptive_engine.design_check` (``check_design_against_bank``); both are importable
-from here too.
+:mod:`adaptive_engine.design.bank_fit` (``check_design_against_bank``); the package
+:mod:`adaptive_engine.design` exports them all.
 """
 
 from __future__ import annotations
@@ -237,25 +237,3 @@ def _check_cuts(cuts: tuple) -> None:
     if not all(math.isfinite(v) for v in values) or any(b <= a for a, b in zip(values, values[1:])):
         raise ValueError(f"exposure_strata must be finite and strictly ascending, got {cuts!r}")
 
-
-_LAZY = {
-    "read_design": "toml_file",
-    "parse_design": "toml_file",
-    "design_from_dict": "toml_file",
-    "design_to_toml": "toml_file",
-    "design_as_dict": "toml_file",
-    "validate_design": "toml_file",
-    "read_exposure_parameters": "toml_file",
-    "check_design_against_bank": "bank_fit",
-    "require_design_fits_bank": "bank_fit",
-    "describe_design": "bank_fit",
-}
-
-
-def __getattr__(name):
-    # imported lazily because those modules import the classes above
-    if name in _LAZY:
-        import importlib
-
-        return getattr(importlib.import_module(f".{_LAZY[name]}", __package__), name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

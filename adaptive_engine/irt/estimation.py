@@ -755,6 +755,3 @@ def score_responses(bank, table, method: str, *, prior_mean=0.0, prior_sd=1.0) -
     result = estimate(bank, items, responses, method, prior_mean=prior_mean, prior_sd=prior_sd)
     return result.to_records(table.person_ids)
 
-
-# the curves live in their own module; they are re-exported here for convenience
-from .curves import expected_score_curve, standard_error_curve, test_information  # noqa: E402,F401
