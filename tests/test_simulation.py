@@ -17,6 +17,7 @@ from adaptive_engine.bank import bank_from_records
 from adaptive_engine.cli import main
 from adaptive_engine.design import Design, Exposure, Stopping
 from adaptive_engine.errors import AdaptiveEngineError
+from optional_extras import requires_matplotlib
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -267,6 +268,17 @@ def _shipped():
     return str(design), str(bank)
 
 
+@requires_matplotlib
+def test_the_report_embeds_its_figures(tmp_path):
+    design, bank = _shipped()
+    out = tmp_path / "study"
+    result = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "30", "--seed", "4",
+                                       "--out", str(out), "--no-administrations"])
+    assert result.exit_code == 0, result.output
+    body = (out / "report.html").read_text().split("<body>")[1]
+    assert body.count("<img") >= 3 and "data:image/png;base64," in body and "left out" not in body
+
+
 def test_simulate_cli_writes_every_file(tmp_path):
     design, bank = _shipped()
     out = tmp_path / "study"
@@ -291,7 +303,7 @@ def test_simulate_cli_writes_every_file(tmp_path):
     first = [a for a in admin if a["examinee"] == "0"]
     assert [int(a["position"]) for a in first] == list(range(1, len(first) + 1))
     html = (out / "report.html").read_text()
-    assert "<img" in html and "http" not in html.split("<body>")[1]  # self-contained
+    assert "http" not in html.split("<body>")[1]  # self-contained
     items = list(csv.DictReader((out / "items.csv").open()))
     assert max(float(i["exposure_rate"]) for i in items) == pytest.approx(summary["max_exposure"], abs=1e-6)
     assert not [p for p in out.iterdir() if p.name.startswith(".")]  # no staging left
