@@ -56,9 +56,9 @@ def run_demo(*, out_dir: str | Path = "demo_output", examinees: int = 1000, seed
     """
     from .bank.item_bank import load_bank
     from .design.toml_file import read_design
-    from .simulation.population import parse_ability_spec
     from .irt.models import probabilities
     from .live.session import try_session
+    from .simulation.population import parse_ability_spec
     from .simulation.study import run_study, summary_table
 
     root = repository_root(files)

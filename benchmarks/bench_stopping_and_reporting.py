@@ -14,9 +14,9 @@ import numpy as np
 
 from adaptive_engine.design import types as design
 from adaptive_engine.irt import models
-from adaptive_engine.kernel import stopping
-from adaptive_engine.irt.posterior import DEFAULT_GRID, normal_log_prior
 from adaptive_engine.irt.person_fit import person_fit
+from adaptive_engine.irt.posterior import DEFAULT_GRID, normal_log_prior
+from adaptive_engine.kernel import stopping
 from adaptive_engine.kernel.final_report import final_reports
 
 

@@ -63,11 +63,11 @@ HERE = Path(__file__).resolve().parent
 if str(HERE.parent) not in sys.path:  # run as a script from a checkout
     sys.path.insert(0, str(HERE.parent))
 
-from adaptive_engine.irt.models import probabilities as category_probabilities  # noqa: E402
 from adaptive_engine.bank import ItemBank, bank_from_records  # noqa: E402
 from adaptive_engine.bank.files import write_bank  # noqa: E402
-from adaptive_engine.files import write_text  # noqa: E402
 from adaptive_engine.errors import AdaptiveEngineError  # noqa: E402
+from adaptive_engine.files import write_text  # noqa: E402
+from adaptive_engine.irt.models import probabilities as category_probabilities  # noqa: E402
 
 OPERATOR_SEED = 20_240_611
 SURVEY_SEED = 20_240_612

@@ -18,8 +18,8 @@ from __future__ import annotations
 import numpy as np
 from hypothesis import strategies as st
 
-from adaptive_engine.irt import models
 from adaptive_engine.bank import ItemBank, bank_from_records
+from adaptive_engine.irt import models
 
 A_RANGE = (0.2, 3.0)
 B_RANGE = (-3.0, 3.0)

@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from adaptive_engine.irt import models
 from adaptive_engine.bank import load_bank
 from adaptive_engine.cli import main
+from adaptive_engine.irt import models
 from optional_extras import requires_matplotlib
 
 REPO = Path(__file__).resolve().parents[1]

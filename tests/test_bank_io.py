@@ -13,10 +13,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from adaptive_engine.bank import files as bank_io
 from adaptive_engine.bank import bank_from_records, load_bank
+from adaptive_engine.bank import files as bank_io
 from adaptive_engine.errors import BankError
-
 from strategies import item_banks
 
 REPO = Path(__file__).resolve().parents[1]

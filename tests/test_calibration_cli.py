@@ -15,10 +15,10 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from adaptive_engine.irt import models
 from adaptive_engine.bank import load_bank
 from adaptive_engine.bank.files import write_bank
 from adaptive_engine.cli import main
+from adaptive_engine.irt import models
 
 BANKS = Path(__file__).resolve().parents[1] / "item_banks"
 

@@ -21,8 +21,8 @@ from numpy.polynomial.hermite_e import hermegauss
 from scipy.optimize import minimize
 from scipy.special import expit, log_expit, logsumexp
 
-from adaptive_engine.calibration import CalibrationSettings, calibrate_responses, estimate_at_known_abilities
 from adaptive_engine.bank.responses import ResponseTable
+from adaptive_engine.calibration import CalibrationSettings, calibrate_responses, estimate_at_known_abilities
 
 DATA_FILE = Path(__file__).resolve().parent / "data" / "bock_lieberman_1970_five_items.csv"
 

@@ -19,7 +19,7 @@ from click.testing import CliRunner
 
 from adaptive_engine import files
 from adaptive_engine.cli import main
-from adaptive_engine.errors import AdaptiveEngineError, OutputError
+from adaptive_engine.errors import OutputError
 
 ROOT = Path(__file__).resolve().parents[1]
 BANK = ROOT / "item_banks" / "meridian_valley_operator.csv"

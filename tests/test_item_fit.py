@@ -18,12 +18,17 @@ import pytest
 from scipy.special import expit
 
 from adaptive_engine.bank import bank_from_records
+from adaptive_engine.bank.responses import ResponseTable
 from adaptive_engine.calibration import calibrate_responses
 from adaptive_engine.calibration.item_fit import (
-    fit_for_result, item_report_rows, normal_grid, rasch_mean_squares,
-    rows_to_csv, summed_score_expectations, summed_score_likelihood,
+    fit_for_result,
+    item_report_rows,
+    normal_grid,
+    rasch_mean_squares,
+    rows_to_csv,
+    summed_score_expectations,
+    summed_score_likelihood,
 )
-from adaptive_engine.bank.responses import ResponseTable
 
 
 def _small_bank():

@@ -18,7 +18,7 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def _tool(name: str) -> list[str]:
+def console_script(name: str) -> list[str]:
     # the console script beside this interpreter, else the one on PATH
     here = Path(sys.executable).with_name(name)
     found = str(here) if here.exists() else shutil.which(name)
@@ -30,7 +30,7 @@ def _tool(name: str) -> list[str]:
 def test_the_import_contracts_hold():
     env = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])))
     # --no-cache: a stale cache of another checkout must not decide
-    proc = subprocess.run(_tool("lint-imports") + ["--no-cache"], cwd=ROOT, env=env,
+    proc = subprocess.run(console_script("lint-imports") + ["--no-cache"], cwd=ROOT, env=env,
                           capture_output=True, text=True, timeout=300)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert "0 broken" in proc.stdout

@@ -10,9 +10,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from adaptive_engine.simulation import metrics
 from adaptive_engine.design import AreaRule, CutScore
 from adaptive_engine.errors import AdaptiveEngineError
+from adaptive_engine.simulation import metrics
 
 
 def test_precision_against_numpy_and_scipy():

@@ -16,9 +16,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.special import expit
 
-from adaptive_engine.irt import models
 from adaptive_engine.bank import bank_from_records
-
+from adaptive_engine.irt import models
 from strategies import (
     any_items,
     dichotomous_items,

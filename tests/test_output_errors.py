@@ -15,8 +15,8 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from adaptive_engine.bank import files as bank_io
 from adaptive_engine.bank import bank_from_records, load_bank
+from adaptive_engine.bank import files as bank_io
 from adaptive_engine.cli import main
 from adaptive_engine.errors import AdaptiveEngineError, BankError
 from optional_extras import requires_matplotlib

@@ -12,7 +12,6 @@ from scipy.special import expit
 
 from adaptive_engine.errors import AdaptiveEngineError, ResponseDataError
 from adaptive_engine.irt.person_fit import person_fit
-
 from strategies import records_to_parameters
 
 

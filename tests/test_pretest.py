@@ -18,11 +18,11 @@ import json
 import numpy as np
 import pytest
 
-from adaptive_engine.irt import models
 from adaptive_engine.bank import bank_from_records, load_bank
 from adaptive_engine.calibration.pretest import PromotionRules, calibrate_pretest
 from adaptive_engine.design import Design
 from adaptive_engine.errors import CalibrationError, SessionError
+from adaptive_engine.irt import models
 from adaptive_engine.live.store import bank_content, open_store, read_bank_answers
 
 N_OPERATIONAL = 30

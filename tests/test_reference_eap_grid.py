@@ -16,8 +16,8 @@ import pytest
 from scipy import integrate, stats
 from scipy.special import log_expit
 
-from adaptive_engine.irt import estimation
 from adaptive_engine.bank import bank_from_records
+from adaptive_engine.irt import estimation
 
 D = 1.702
 

@@ -24,8 +24,8 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize, stats
 
-from adaptive_engine.irt import estimation
 from adaptive_engine.bank import bank_from_records
+from adaptive_engine.irt import estimation
 
 # ----------------------------------------------------------------------------------------
 # independent reference model (scalar theta, plain Python / numpy)

@@ -15,7 +15,6 @@ from scipy.special import expit
 from scipy.stats import norm
 
 from adaptive_engine.irt import models
-
 from strategies import graded_items, ordered_thresholds, partial_credit_items, records_to_parameters, thetas
 
 SETTINGS = settings(max_examples=40, deadline=None)

@@ -10,12 +10,19 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from adaptive_engine.kernel import cycle as kernel, random_streams as randomness, selection
-from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.design import (
-    AreaRule, Blueprint, Design, Exposure, Opening, Selection, Stopping,
+    AreaRule,
+    Blueprint,
+    Design,
+    Exposure,
+    Opening,
+    Selection,
+    Stopping,
 )
-
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
+from adaptive_engine.kernel import selection
+from adaptive_engine.kernel.prepared import build_context
 from kernel_support import structured_bank
 
 

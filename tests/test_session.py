@@ -17,15 +17,22 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from adaptive_engine.kernel import cycle as kernel, random_streams as randomness
-from adaptive_engine.irt import models
 from adaptive_engine.bank import load_bank
-from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.design.toml_file import parse_design, read_design
 from adaptive_engine.errors import AdaptiveEngineError, DesignError, SessionError
+from adaptive_engine.irt import models
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
+from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.live.session import (
-    ProcessCache, exposure_rates, list_sessions, pending_item, session_result, show_session,
-    start_session, submit_answer,
+    ProcessCache,
+    exposure_rates,
+    list_sessions,
+    pending_item,
+    session_result,
+    show_session,
+    start_session,
+    submit_answer,
 )
 from adaptive_engine.live.store import open_store
 

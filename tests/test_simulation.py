@@ -12,11 +12,13 @@ import pytest
 from click.testing import CliRunner
 from scipy import stats
 
-from adaptive_engine.simulation import population as examinees, metrics, engine as simulation
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.cli import main
 from adaptive_engine.design import Design, Exposure, Stopping
 from adaptive_engine.errors import AdaptiveEngineError
+from adaptive_engine.simulation import engine as simulation
+from adaptive_engine.simulation import metrics
+from adaptive_engine.simulation import population as examinees
 from optional_extras import requires_matplotlib
 
 ROOT = Path(__file__).resolve().parents[1]

@@ -13,11 +13,10 @@ from scipy import integrate, stats
 from scipy.special import expit, softmax
 
 from adaptive_engine.design import types as design
-from adaptive_engine.kernel import stopping
-from adaptive_engine.irt.posterior import DEFAULT_GRID, normal_log_prior, posterior_mean_sd
 from adaptive_engine.errors import AdaptiveEngineError
 from adaptive_engine.irt.models import log_probabilities, outer
-
+from adaptive_engine.irt.posterior import DEFAULT_GRID, normal_log_prior, posterior_mean_sd
+from adaptive_engine.kernel import stopping
 from strategies import any_items, records_to_parameters
 
 

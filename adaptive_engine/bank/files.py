@@ -26,10 +26,10 @@ from pathlib import Path
 
 import numpy as np
 
-from ..irt import models
-from .item_bank import ItemBank, bank_from_records
 from ..errors import BankError, Problem
 from ..files import atomic_write, write_text
+from ..irt import models
+from .item_bank import ItemBank, bank_from_records
 
 #: Columns before and after the threshold columns b1..bK, in file order.
 LEADING_COLUMNS = ("item_id", "model", "a", "b", "c", "d")

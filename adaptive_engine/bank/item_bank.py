@@ -26,8 +26,8 @@ from typing import Any, Iterable, Mapping
 import attrs
 import numpy as np
 
-from ..irt import models
 from ..errors import BankError, Problem
+from ..irt import models
 
 STATUSES = ("operational", "pretest")
 DEFAULT_AREA = "general"
@@ -465,9 +465,9 @@ def read_bank_csv_text(text: str, *, source: str = "bank", scaling: float = 1.0)
     try:
         header = next(reader)
     except StopIteration:
-        raise BankError([Problem(f"{source} line 1", "the file is empty (no header row)")])
+        raise BankError([Problem(f"{source} line 1", "the file is empty (no header row)")]) from None
     except csv.Error as exc:
-        raise BankError([Problem(f"{source} line 1", f"unreadable CSV: {exc}")])
+        raise BankError([Problem(f"{source} line 1", f"unreadable CSV: {exc}")]) from None
     header = [h.strip() for h in header]
     missing = [c for c in ("item_id", "model") if c not in header]
     problems = [Problem(f"{source} line 1", f"missing required column {c!r}") for c in missing]
@@ -503,7 +503,7 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
     try:
         doc = json.loads(text)
     except json.JSONDecodeError as exc:
-        raise BankError([Problem(f"{source} line {exc.lineno}", f"invalid JSON: {exc.msg}")])
+        raise BankError([Problem(f"{source} line {exc.lineno}", f"invalid JSON: {exc.msg}")]) from None
     if isinstance(doc, list):
         doc = {"items": doc}
     if not isinstance(doc, dict) or not isinstance(doc.get("items"), list):
@@ -530,7 +530,8 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
             problems.extend(Problem(loc, f"unknown field {k!r}") for k in unknown)
             continue
         if "item_id" not in rec or "model" not in rec:
-            problems.append(Problem(loc, "missing required field " + ("'item_id'" if "item_id" not in rec else "'model'")))
+            missing = "'item_id'" if "item_id" not in rec else "'model'"
+            problems.append(Problem(loc, "missing required field " + missing))
             continue
         kinds = _json_type_problems(rec)
         if kinds:
@@ -631,7 +632,7 @@ def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
         with open(path, encoding="utf-8-sig", newline="") as fh:
             text = fh.read()
     except UnicodeDecodeError as exc:
-        raise BankError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", location=str(path))
+        raise BankError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", location=str(path)) from None
     if suffix == ".json":
         return _agree_on_scaling(read_bank_json_text(text, source=path.name), scaling, path)
     if suffix == ".csv":

@@ -177,9 +177,9 @@ def read_responses_text(text: str, *, source: str = "responses") -> ResponseTabl
     try:
         header = [h.strip() for h in next(reader)]
     except StopIteration:
-        raise ResponseDataError([Problem(f"{source} line 1", "the file is empty (no header row)")])
+        raise ResponseDataError([Problem(f"{source} line 1", "the file is empty (no header row)")]) from None
     except csv.Error as exc:
-        raise ResponseDataError([Problem(f"{source} line 1", f"unreadable CSV header: {exc}")])
+        raise ResponseDataError([Problem(f"{source} line 1", f"unreadable CSV header: {exc}")]) from None
     missing = [c for c in REQUIRED_COLUMNS if c not in header]
     if missing:
         raise ResponseDataError([Problem(f"{source} line 1", f"missing required column {c!r}") for c in missing])
@@ -325,5 +325,5 @@ def read_responses(path: str | Path) -> ResponseTable:
     try:
         text = path.read_text(encoding="utf-8-sig")
     except UnicodeDecodeError as exc:
-        raise ResponseDataError(f"not UTF-8 text ({exc.reason})", location=str(path))
+        raise ResponseDataError(f"not UTF-8 text ({exc.reason})", location=str(path)) from None
     return read_responses_text(text, source=path.name)

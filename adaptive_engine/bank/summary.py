@@ -14,9 +14,9 @@ from pathlib import Path
 import attrs
 import numpy as np
 
-from .item_bank import ItemBank
-from ..irt.curves import test_information
 from ..errors import AdaptiveEngineError
+from ..irt.curves import test_information
+from .item_bank import ItemBank
 
 #: Standard error below which an ability is taken as precisely measured (common practice).
 DEFAULT_TARGET_SE = 0.3

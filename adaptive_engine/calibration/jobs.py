@@ -10,11 +10,11 @@ from pathlib import Path
 
 import attrs
 
-from ..bank.item_bank import load_bank
 from ..bank.files import write_bank
+from ..bank.item_bank import load_bank
+from ..bank.responses import read_responses
 from ..errors import CalibrationError
 from ..files import check_target, write_text
-from ..bank.responses import read_responses
 from .em import CalibrationSettings, calibrate_responses
 from .item_fit import fit_for_result, item_report_rows, rows_to_csv
 from .linking import link_banks

@@ -34,9 +34,9 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.special import logsumexp
 
-from ..irt import models
 from ..bank.item_bank import ItemBank
 from ..errors import CalibrationError, Problem
+from ..irt import models
 from .data import CalibrationData
 from .em import CalibrationSettings, bounded, calibrate_data
 from .item_fit import grouped_posterior_fit, parameters_per_item

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import click
 
-from ..bank import files as bank_io, summary as bank_report
+from ..bank import files as bank_io
+from ..bank import summary as bank_report
 from ..bank.item_bank import load_bank
 from ._common import SCALING_HELP, echo_json, main, report_errors
 

@@ -33,6 +33,6 @@ def check(design_file, bank_file):
 @report_errors
 def show(design_file):
     """Print DESIGN_FILE with every default filled in, as TOML."""
-    from ..design.toml_file import read_design, design_to_toml
+    from ..design.toml_file import design_to_toml, read_design
 
     click.echo(design_to_toml(read_design(design_file)), nl=False)

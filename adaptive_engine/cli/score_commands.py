@@ -9,9 +9,9 @@ import math
 import click
 
 from ..bank.item_bank import load_bank
+from ..bank.responses import read_responses
 from ..errors import AdaptiveEngineError
 from ..irt.estimation import METHODS, score_responses
-from ..bank.responses import read_responses
 from ._common import SCALING_HELP, echo_json, main, report_errors
 
 #: The CSV columns of ``score``; ``--with-status`` appends ``status``.

@@ -117,7 +117,8 @@ def _perturbation(text):
                    "read from the CSV that calibrate --fit-report writes (se_a, se_b, se_c, se_d, se_b1, ...).")
 @click.option("--workers", type=int, default=1, show_default=True, help="Processes running chunks in parallel.")
 @click.option("--chunk-size", type=int, default=10_000, show_default=True, help="Examinees per kernel batch.")
-@click.option("--exposure-target", type=float, default=None, help="Exposure rate in (0, 1] that share_above_target counts against [default: 0.25].")
+@click.option("--exposure-target", type=float, default=None,
+              help="Exposure rate in (0, 1] that share_above_target counts against [default: 0.25].")
 @click.option("--no-administrations", is_flag=True, help="Skip administrations.csv (large runs).")
 @click.option("--json", "as_json", is_flag=True, help="Print summary.json instead of the table.")
 @_progress_option
@@ -125,8 +126,8 @@ def _perturbation(text):
 def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_spec, true_bank_file, perturb,
                      perturb_from, workers, chunk_size, exposure_target, no_administrations, as_json, show_progress):
     """Simulate DESIGN for many examinees and write the study's files into --out."""
-    from ..simulation.population import parse_ability_spec
     from ..simulation.engine import SimulationError, perturbed_bank
+    from ..simulation.population import parse_ability_spec
     from ..simulation.study import read_standard_errors, run_study, summary_table
 
     if perturb and perturb_from:
@@ -233,8 +234,8 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
     Writes the parameters in any case; exits with code 3 when the last iteration still
     left an item above --target + --tolerance (not converged), 2 on bad input.
     """
-    from ..simulation.population import examinee_count, parse_ability_spec
     from ..simulation.exposure_tuning import parse_strata, run_calibration, unreachable_target_warning
+    from ..simulation.population import examinee_count, parse_ability_spec
 
     strata = None if strata_text is None else parse_strata(strata_text)
     abilities = parse_ability_spec(theta_spec)

@@ -15,11 +15,11 @@ from collections import Counter
 
 import numpy as np
 
-from ..irt import models
 from ..bank.item_bank import ItemBank
-from .types import Design
-from .toml_file import toml_key, validate_design
 from ..errors import DesignError, Problem
+from ..irt import models
+from .toml_file import toml_key, validate_design
+from .types import Design
 
 
 def usable_item_count(bank: ItemBank, mask: np.ndarray, *, enemies: bool, item_sets: bool,
@@ -130,7 +130,8 @@ def _area_problems(design, bank, operational, count, rules_note) -> list[Problem
     for rule in design.blueprint.areas:
         where = f"[blueprint.areas.{toml_key(rule.name)}]"
         if rule.name not in bank.areas:
-            problems.append(Problem(where, f"area {rule.name!r} is not in the bank; bank areas: {', '.join(bank.areas)}"))
+            problems.append(Problem(where, f"area {rule.name!r} is not in the bank; "
+                                           f"bank areas: {', '.join(bank.areas)}"))
             continue
         in_area = operational & np.asarray(bank.area == rule.name)
         usable = usable_item_count(bank, in_area, **count)
@@ -189,7 +190,8 @@ _CRITERION_WORDS = {
     "max_fisher_information": "the item with the most Fisher information at the current estimate",
     "posterior_weighted_information": "the item with the most Fisher information averaged over the posterior",
     "kullback_leibler": "the item with the most Kullback-Leibler information over theta +- {kl_interval:g}/sqrt(n)",
-    "a_stratified": "within {strata} a-strata taken from low to high a ({blocking}), the item whose b is closest to the estimate",
+    "a_stratified": "within {strata} a-strata taken from low to high a ({blocking}), "
+                    "the item whose b is closest to the estimate",
     "random": "an eligible item at random",
 }
 
@@ -270,7 +272,8 @@ def _stopping_words(st) -> str:
         rules.append(f"once SE <= {st.se:g}")
     if st.sprt is not None:
         s = st.sprt
-        rules.append(f"once the SPRT at cut {s.cut:g} +- {s.indifference:g} decides (alpha {s.alpha:g}, beta {s.beta:g})")
+        rules.append(f"once the SPRT at cut {s.cut:g} +- {s.indifference:g} decides "
+                     f"(alpha {s.alpha:g}, beta {s.beta:g})")
     if st.confidence_interval is not None:
         ci = st.confidence_interval
         rules.append(f"once the {ci.confidence:.0%} interval excludes the cut {ci.cut:g}")

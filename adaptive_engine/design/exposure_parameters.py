@@ -15,9 +15,8 @@ from __future__ import annotations
 
 import csv
 import io
-from pathlib import Path
-
 import math
+from pathlib import Path
 
 import attrs
 
@@ -79,9 +78,10 @@ def parse_exposure_file(text: str, *, source: str = "exposure parameters") -> Ex
     try:
         header = [h.strip() for h in next(reader)]
     except StopIteration:
-        raise DesignError([Problem(f"{source} line 1", "the file is empty (expected header item_id,exposure_parameter)")])
+        raise DesignError([Problem(f"{source} line 1",
+                                   "the file is empty (expected header item_id,exposure_parameter)")]) from None
     except csv.Error as exc:
-        raise DesignError([Problem(f"{source} line 1", f"unreadable CSV: {exc}")])
+        raise DesignError([Problem(f"{source} line 1", f"unreadable CSV: {exc}")]) from None
     if header == CONDITIONAL_HEADER:
         return _parse_conditional(reader, source)
     if header != UNCONDITIONAL_HEADER:

@@ -29,6 +29,8 @@ from typing import Any, Callable, Mapping
 
 import attrs
 
+from ..errors import DesignError, Problem
+from .exposure_parameters import parameter_problems, read_exposure_file
 from .types import (
     BLUEPRINT_METHODS,
     CRITERIA,
@@ -49,8 +51,6 @@ from .types import (
     SprtRule,
     Stopping,
 )
-from ..errors import DesignError, Problem
-from .exposure_parameters import parameter_problems, read_exposure_file
 
 SECTIONS = ("opening", "scoring", "selection", "exposure", "blueprint", "stopping", "reporting")
 
@@ -466,7 +466,8 @@ def _blueprint_problems(bp: Blueprint, st: Stopping) -> list[Problem]:
         if rule.max is not None and rule.max < rule.min:
             problems.append(Problem(f"{where} max", f"max ({rule.max}) is below min ({rule.min})"))
         if rule.min > st.max_items:
-            problems.append(Problem(f"{where} min", f"min ({rule.min}) exceeds the test length max_items ({st.max_items})"))
+            problems.append(Problem(f"{where} min",
+                                    f"min ({rule.min}) exceeds the test length max_items ({st.max_items})"))
     total_min = sum(rule.min for rule in bp.areas)
     if total_min > st.max_items:
         problems.append(Problem("[blueprint.areas]",
@@ -631,7 +632,8 @@ def design_as_dict(design: Design) -> dict:
     """The design as plain dicts, lists, numbers, strings and None (JSON-ready).
 
     Includes ``source``, the loaded ``exposure_parameters`` and their ``exposure_strata``
-    (None when unconditional) so that a design stored with a session can be rebuilt by :func:`design_from_dict` without its files.
+    (None when unconditional) so that a design stored with a session can be rebuilt by
+    :func:`design_from_dict` without its files.
     """
     out = {name: _plain(getattr(design, name)) for name in SECTIONS}
     # keys that the file forbids together are left out (None), as in the TOML writer

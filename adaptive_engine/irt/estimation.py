@@ -39,8 +39,9 @@ import attrs
 import numpy as np
 from scipy import sparse
 
-from . import posterior as ability, models
 from ..errors import AdaptiveEngineError, Problem, ResponseDataError
+from . import models
+from . import posterior as ability
 
 METHODS = ("mle", "map", "eap", "wle")
 #: Rows per block: bounds memory at a few (rows x grid points) arrays; results do not
@@ -530,10 +531,10 @@ def _solve(evaluate, start, lo, hi):
     1 away from the start, then 0.5, until g changes sign, which brackets the nearest root
     in that direction; if g keeps its sign all the way to the bound, the answer is that
     bound.  Short steps matter: with asymptotes c > 0 a likelihood can rise again towards
-    a bound after an interior peak, and a long step could jump over that peak.  Inside the bracket it takes Newton steps; a step that would
-    leave the bracket, or that does not at least halve the step before last, is replaced by
-    halving the bracket (so every row converges), and the bracket shrinks with each
-    evaluation.  Rows freeze once converged.
+    a bound after an interior peak, and a long step could jump over that peak.  Inside the
+    bracket it takes Newton steps; a step that would leave the bracket, or that does not at
+    least halve the step before last, is replaced by halving the bracket (so every row
+    converges), and the bracket shrinks with each evaluation.  Rows freeze once converged.
 
     Parameters
     ----------

@@ -53,9 +53,9 @@ from __future__ import annotations
 import attrs
 import numpy as np
 
+from ..errors import AdaptiveEngineError, ResponseDataError
 from . import models
 from .estimation import METHODS as SCORING_METHODS
-from ..errors import AdaptiveEngineError, ResponseDataError
 
 
 @attrs.frozen(eq=False)

@@ -19,15 +19,17 @@ import attrs
 import numpy as np
 
 from ..irt import models
-from . import random_streams as randomness, stopping
 from ..irt.posterior import normal_log_prior, posterior_mean_sd
-from .prepared import TestContext
-from .state import KernelState
+from . import random_streams as randomness
+from . import stopping
 from .eligibility import eligible
+from .prepared import TestContext
 from .selection import Picked, all_item_params, select
+from .state import KernelState
 
 
-def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligible=False) -> tuple[KernelState, Picked]:
+def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None,
+          count_eligible=False) -> tuple[KernelState, Picked]:
     """Begin tests for a batch; returns the state with each examinee's first item pending.
 
     Parameters

@@ -2,8 +2,8 @@
 
 A :class:`TestContext` holds the quadrature grid and the bank's log-probability table on
 it, integer codes for areas, enemy groups and item sets, blueprint bounds as arrays, the
-Sympson-Hetter parameters as an array (per ability stratum when conditional), a-strata, and the ranked-candidate tables that make
-maximum-information selection fast (see :mod:`adaptive_engine.selection`).
+Sympson-Hetter parameters as an array (per ability stratum when conditional), a-strata,
+and the ranked-candidate tables that make maximum-information selection fast (see :mod:`adaptive_engine.selection`).
 """
 
 from __future__ import annotations
@@ -11,10 +11,10 @@ from __future__ import annotations
 import attrs
 import numpy as np
 
-from ..irt import models
 from ..bank.item_bank import ItemBank
 from ..design.types import Design
 from ..errors import DesignError, Problem
+from ..irt import models
 
 #: Spacing of the fine grid on which items are ranked by information.
 RANK_STEP = 0.01
@@ -176,7 +176,8 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
     for s, mem in enumerate(members):
         np.add.at(set_area_counts[s], bank.area_index[mem], 1)
     set_group_lists = [sorted({int(g) for g in item_groups[mem].ravel() if g < len(names)}) for mem in members]
-    set_groups = np.full((len(members), max((len(x) for x in set_group_lists), default=0) or 1), len(names), dtype=np.int64)
+    widest = max((len(x) for x in set_group_lists), default=0) or 1
+    set_groups = np.full((len(members), widest), len(names), dtype=np.int64)
     for s_i, codes in enumerate(set_group_lists):
         set_groups[s_i, : len(codes)] = codes
     # Sympson-Hetter parameters
@@ -217,7 +218,8 @@ def _exposure_parameters(design: Design, bank: ItemBank) -> tuple[np.ndarray | N
     params = design.exposure_parameters or {}
     unknown = [iid for iid in params if iid not in bank.index_of]
     if unknown:
-        raise DesignError([Problem("[exposure] parameters", f"item {iid!r} is not in the bank") for iid in unknown[:20]])
+        raise DesignError([Problem("[exposure] parameters", f"item {iid!r} is not in the bank")
+                           for iid in unknown[:20]])
     problems = parameter_problems(params, design.exposure_strata, where="[exposure] parameters, item")
     if problems:
         raise DesignError(problems[:20])
@@ -241,7 +243,8 @@ def _a_strata(a, difficulty, operational, k, b_blocking) -> np.ndarray:
         for start in range(0, by_b.size, k):
             block = by_b[start : start + k]
             ranked = block[np.argsort(a[block], kind="stable")]
-            stratum[ranked] = np.arange(ranked.size) * k // max(ranked.size, 1) if ranked.size < k else np.arange(ranked.size)
+            stratum[ranked] = (np.arange(ranked.size) * k // max(ranked.size, 1) if ranked.size < k
+                               else np.arange(ranked.size))
     else:
         by_a = idx[np.argsort(a[idx], kind="stable")]
         stratum[by_a] = np.arange(by_a.size) * k // by_a.size

@@ -24,10 +24,10 @@ import attrs
 import numpy as np
 
 from ..irt import models
-from . import random_streams as randomness
 from ..irt.posterior import posterior_weights
-from .prepared import RANK_STEP, TestContext, ranked_tables
+from . import random_streams as randomness
 from .eligibility import area_limits, eligible, set_fits
+from .prepared import RANK_STEP, TestContext, ranked_tables
 from .state import KernelState
 
 #: Exactly evaluated candidates per examinee on the short-list path.
@@ -103,7 +103,8 @@ def _pick_pretest(ctx, state, rows) -> np.ndarray:
     free = ~state.used[rows][:, pool]
     if ctx.n_groups:
         groups = ctx.item_groups[pool]
-        hit = np.take_along_axis(state.blocked_groups[rows], np.broadcast_to(groups.reshape(1, -1), (rows.size, groups.size)), axis=1)
+        hit = np.take_along_axis(state.blocked_groups[rows],
+                                 np.broadcast_to(groups.reshape(1, -1), (rows.size, groups.size)), axis=1)
         free &= ~hit.reshape(rows.size, *groups.shape).any(axis=2)
     count = free.sum(axis=1)
     u = randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.PRETEST)

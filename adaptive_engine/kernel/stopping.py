@@ -31,10 +31,10 @@ import weakref
 import numpy as np
 from scipy.special import ndtri  # the standard normal quantile (scipy.stats is slow to import)
 
-from ..irt import models
-from ..irt.posterior import posterior_weights
 from ..design.types import Stopping
 from ..errors import AdaptiveEngineError
+from ..irt import models
+from ..irt.posterior import posterior_weights
 
 #: Reason code -> meaning, in order of precedence (first wins when several fire).
 STOP_REASONS: dict[str, str] = {

@@ -32,14 +32,14 @@ from typing import Callable
 
 import numpy as np
 
-from ..kernel import cycle as kernel
 from ..bank.item_bank import ItemBank
-from ..kernel.prepared import TestContext, build_context
 from ..design.types import Design
 from ..errors import SessionError
-from ..kernel.state import KernelState
-from ..kernel.random_streams import stream_key
 from ..jsonable import plain
+from ..kernel import cycle as kernel
+from ..kernel.prepared import TestContext, build_context
+from ..kernel.random_streams import stream_key
+from ..kernel.state import KernelState
 from .store import SessionStore, bank_content, design_content, now_text, to_json
 
 _ROW0 = np.zeros(1, dtype=np.int64)
@@ -379,7 +379,8 @@ def _answer_locked(store, ctx, row, item_id, value, elapsed, cache, mutated) -> 
     return reply
 
 
-def session_state(store: SessionStore, ctx: TestContext, row: dict, *, cache: ProcessCache | None = None) -> KernelState:
+def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
+                  cache: ProcessCache | None = None) -> KernelState:
     """The kernel state of a stored session: cached if up to date, else replayed from the log."""
     cache = PROCESS_CACHE if cache is None else cache
     session_id = row["session_id"]

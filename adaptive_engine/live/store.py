@@ -50,8 +50,8 @@ from typing import Callable, Iterator
 import attrs
 import sqlite_utils
 
-from ..bank.item_bank import ItemBank, read_bank_json_text
 from ..bank.files import bank_to_json_text
+from ..bank.item_bank import ItemBank, read_bank_json_text
 from ..design.types import Design
 from ..errors import SessionError
 from ..jsonable import plain

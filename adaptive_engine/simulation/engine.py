@@ -33,12 +33,14 @@ from typing import Callable, Iterator
 import attrs
 import numpy as np
 
-from ..kernel import cycle as kernel, random_streams as randomness, final_report as reporting
-from ..irt import models
 from ..bank.item_bank import ItemBank
-from ..kernel.prepared import TestContext, build_context
 from ..design.types import Design
 from ..errors import AdaptiveEngineError, Problem
+from ..irt import models
+from ..kernel import cycle as kernel
+from ..kernel import final_report as reporting
+from ..kernel import random_streams as randomness
+from ..kernel.prepared import TestContext, build_context
 
 #: Examinees per kernel batch.
 DEFAULT_CHUNK = 10_000

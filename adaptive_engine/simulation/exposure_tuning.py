@@ -49,8 +49,8 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
-from ..design.types import Design
 from ..design.bank_fit import require_design_fits_bank
+from ..design.types import Design
 from ..errors import AdaptiveEngineError
 from ..files import check_target, write_text
 from .engine import DEFAULT_CHUNK, simulate, stratum_of
@@ -207,7 +207,8 @@ def _check_strata(strata) -> tuple:
     try:
         cuts = tuple(float(c) for c in strata)
     except (TypeError, ValueError):
-        raise AdaptiveEngineError(f"stratum cut points must be numbers, got {strata!r}", "--conditional-strata") from None
+        raise AdaptiveEngineError(f"stratum cut points must be numbers, got {strata!r}",
+                                  "--conditional-strata") from None
     if not cuts:
         raise AdaptiveEngineError("give at least one cut point for conditional strata", "--conditional-strata")
     if not all(np.isfinite(cuts)) or any(b <= a for a, b in zip(cuts, cuts[1:])):

@@ -131,7 +131,8 @@ def simulation_report_html(result, summary: dict, *, title: str = "") -> str:
     expo = [{"figure": k, "value": v} for k, v in summary["exposure"].items() if k != "by_stratum"]
     parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>",
              f"<style>{_STYLE}</style></head><body><h1>{html.escape(title)}</h1>",
-             f"<p class='note'>{_fmt(summary.get('examinees'))} simulated examinees, seed {_fmt(summary.get('seed'))}.</p>",
+             f"<p class='note'>{_fmt(summary.get('examinees'))} simulated examinees, "
+             f"seed {_fmt(summary.get('seed'))}.</p>",
              "<h2>Precision</h2>", table_html(headline),
              "<h2>Test length</h2>", table_html(length_rows), table_html(reasons),
              "<h2>Exposure</h2>", table_html(expo)]

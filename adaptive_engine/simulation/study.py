@@ -39,15 +39,20 @@ from typing import Callable
 import attrs
 import numpy as np
 
-from . import metrics
 from ..bank.item_bank import ItemBank
-from ..design.types import Design
 from ..design.bank_fit import require_design_fits_bank
+from ..design.types import Design
 from ..files import StagedFiles, prepare_folder
-from .population import AbilitySpec, examinee_count
+from . import metrics
 from .engine import (
-    DEFAULT_CHUNK, ChunkResult, SimulationResult, effective_chunk_size, simulate, true_item_rows,
+    DEFAULT_CHUNK,
+    ChunkResult,
+    SimulationResult,
+    effective_chunk_size,
+    simulate,
+    true_item_rows,
 )
+from .population import AbilitySpec, examinee_count
 
 #: Examinees of a study when neither ``--examinees`` nor the ability spec says.
 DEFAULT_EXAMINEES = 1000
@@ -242,8 +247,8 @@ def read_standard_errors(path: str | Path, bank: ItemBank) -> dict:
         Located at ``FILE line N, item ID, COLUMN`` for items not in the bank, repeated
         items and standard errors that are not finite numbers >= 0.
     """
-    from .engine import SimulationError
     from ..errors import Problem
+    from .engine import SimulationError
 
     path = Path(path)
     try:
@@ -283,7 +288,8 @@ def read_standard_errors(path: str | Path, bank: ItemBank) -> dict:
                                     "the item is not in the operational bank"))
             continue
         if iid in seen:
-            problems.append(Problem(f"{where} line {line_no}, item {iid}", f"the item is listed again (first on line {seen[iid]})"))
+            problems.append(Problem(f"{where} line {line_no}, item {iid}",
+                                    f"the item is listed again (first on line {seen[iid]})"))
             continue
         seen[iid] = line_no
         for col, name, key, k in columns:

@@ -17,13 +17,13 @@ import tomllib
 import attrs
 import numpy as np
 
-from . import metrics
 from ..bank.item_bank import ItemBank
-from ..design.types import Design
 from ..design.bank_fit import require_design_fits_bank
 from ..design.toml_file import design_as_dict, design_from_dict
+from ..design.types import Design
 from ..errors import DesignError, Problem
 from ..files import StagedFiles, prepare_folder
+from . import metrics
 from .engine import DEFAULT_CHUNK, simulate
 
 
