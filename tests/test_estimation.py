@@ -1,4 +1,4 @@
-"""Unit and property tests of adaptive_engine.estimation (batch behaviour, statuses, priors).
+"""Unit and property tests of adaptive_engine.irt.estimation (batch behaviour, statuses, priors).
 
 Checks against outside sources (scipy oracles, published examples) are in
 tests/test_reference_estimation.py.

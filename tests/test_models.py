@@ -1,4 +1,4 @@
-"""Property tests of the item response models in :mod:`adaptive_engine.models`.
+"""Property tests of the item response models in :mod:`adaptive_engine.irt.models`.
 
 The oracles are independent of the project's code: numerical central differences of the
 probabilities for derivatives and information (Fisher information of a categorical

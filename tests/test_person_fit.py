@@ -1,4 +1,4 @@
-"""Tests of adaptive_engine.person_fit: lz (Drasgow, Levine & Williams 1985) and lz*
+"""Tests of adaptive_engine.irt.person_fit: lz (Drasgow, Levine & Williams 1985) and lz*
 (Snijders 2001) at an estimated ability."""
 
 from __future__ import annotations

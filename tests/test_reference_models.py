@@ -1,7 +1,7 @@
 """The item response models checked against published formulas, written out independently.
 
 Each check names its source.  The formulas are coded here from the publications, not from
-:mod:`adaptive_engine.models`; numerical differentiation and ``scipy`` serve as further
+:mod:`adaptive_engine.irt.models`; numerical differentiation and ``scipy`` serve as further
 oracles.
 """
 

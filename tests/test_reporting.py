@@ -1,4 +1,4 @@
-"""Tests of adaptive_engine.reporting: the final report of each examinee."""
+"""Tests of adaptive_engine.kernel.final_report: the final report of each examinee."""
 
 from __future__ import annotations
 

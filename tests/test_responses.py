@@ -1,4 +1,4 @@
-"""The long response file reader (adaptive_engine.responses): located errors, padding."""
+"""The long response file reader (adaptive_engine.bank.responses): located errors, padding."""
 
 from __future__ import annotations
 

@@ -179,7 +179,7 @@ def test_b_blocking_spreads_every_stratum_over_the_difficulty_range():
 
 def test_priority_index_weights_by_hand():
     # Cheng & Chang (2009) upper-bound factor (u - x) / u; the lower-bound boost
-    # 1 + (l - x) / l is this project's own (see adaptive_engine.selection).
+    # 1 + (l - x) / l is this project's own (see adaptive_engine.kernel.selection).
     bank = dichotomous_bank()
     rules = (AreaRule(name="alpha", min=2, max=4), AreaRule(name="beta", max=5), AreaRule(name="gamma", min=1))
     design = Design(blueprint=Blueprint(method="max_priority_index", areas=rules),

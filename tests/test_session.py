@@ -1,4 +1,4 @@
-"""Tests of the live session controller (adaptive_engine.session) on the demo banks.
+"""Tests of the live session controller (adaptive_engine.live.session) on the demo banks.
 
 The demo banks and designs are test input only.  What is checked against outside sources:
 the content rules (never an item twice, enemy items, blueprint maximums, minimum length)

@@ -1,4 +1,4 @@
-"""Tests of adaptive_engine.stopping: SPRT, confidence-interval classification, predicted
+"""Tests of adaptive_engine.kernel.stopping: SPRT, confidence-interval classification, predicted
 SE reduction, and how the stop reasons combine."""
 
 from __future__ import annotations

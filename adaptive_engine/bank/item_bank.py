@@ -1,6 +1,6 @@
 """The item bank: an immutable struct of numpy arrays, loaded and validated on entry.
 
-File formats (see ``item_banks/README.md`` and ``adaptive_engine/schemas/item_bank.schema.json``):
+File formats (see ``item_banks/README.md`` and ``adaptive_engine/bank/schema/item_bank.schema.json``):
 
 * CSV, one row per item, columns ``item_id, model, a, b, c, d, b1..bK, area, item_set,
   enemy_group, status`` (``label`` optional).  Required: ``item_id`` and ``model``; ``a``
@@ -125,7 +125,7 @@ class ItemBank:
 
     @property
     def params(self) -> models.ItemParameters:
-        """All items' parameters for the functions of :mod:`adaptive_engine.models`."""
+        """All items' parameters for the functions of :mod:`adaptive_engine.irt.models`."""
         return self.cached(
             "params",
             lambda: models.ItemParameters(

@@ -415,7 +415,7 @@ def validate_design(design: Design) -> list[Problem]:
     -------
     list of Problem
         Empty when the design is consistent in itself (a bank may still not fit it:
-        see :func:`adaptive_engine.design_check.check_design_against_bank`).
+        see :func:`adaptive_engine.design.bank_fit.check_design_against_bank`).
     """
     problems: list[Problem] = []
     sc, st, bp, rp = design.scoring, design.stopping, design.blueprint, design.reporting

@@ -88,7 +88,7 @@ class Exposure:
     (columns ``item_id,exposure_parameter``; path relative to the design file), or per item
     and ability stratum for the conditional method of Stocking & Lewis (1998) (columns
     ``item_id,theta_from,theta_to,exposure_parameter``; see
-    :mod:`adaptive_engine.exposure_file`).
+    :mod:`adaptive_engine.design.exposure_parameters`).
     ``progressive``: weight of the random part falls as the test goes on (Revuelta &
     Ponsoda 1998); ``acceleration`` is the power of the position/length ratio.
     """

@@ -1,6 +1,6 @@
 """Test-level curves over an ability grid: test information, standard error, expected score.
 
-These sum item-level quantities from :mod:`adaptive_engine.models` over the whole bank or
+These sum item-level quantities from :mod:`adaptive_engine.irt.models` over the whole bank or
 over a chosen set of items (a test form, the items one examinee answered, a content area).
 """
 

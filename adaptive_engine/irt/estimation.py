@@ -746,7 +746,7 @@ def estimate(bank_or_params, items, responses, method: str, *, prior_mean=0.0, p
 
 
 def score_responses(bank, table, method: str, *, prior_mean=0.0, prior_sd=1.0) -> list[dict]:
-    """Score every person of a :class:`~adaptive_engine.responses.ResponseTable` on ``bank``.
+    """Score every person of a :class:`~adaptive_engine.bank.responses.ResponseTable` on ``bank``.
 
     Returns one record per person (in order of first appearance): ``person_id``, ``theta``,
     ``se``, ``n_items``, ``status``.  Unknown item ids and out-of-range responses raise

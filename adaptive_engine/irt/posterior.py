@@ -3,7 +3,7 @@
 The decision kernel keeps one row of log posterior density per examinee, shape (B, G), and
 adds the log probability of each observed response (looked up in the bank's cached
 (n_items, G, C) table).  EAP and its posterior SD are read off the grid; MLE, MAP and WLE
-are refined from it by Newton steps in :mod:`adaptive_engine.estimation`.
+are refined from it by Newton steps in :mod:`adaptive_engine.irt.estimation`.
 
 Ability is one-dimensional today; it is persisted as a list (``[theta]``) so that a
 multidimensional model can be added without changing stored sessions.

@@ -150,11 +150,11 @@ def final_reports(design: Design, *, theta, se, status, n_scored, n_pretest, sto
         Status of the final estimate as returned by the estimator (e.g. ``"ok"``).
     n_scored, n_pretest : int arrays, shape (B,)
     stop_reason : str or str array, shape (B,)
-        Codes from :data:`adaptive_engine.stopping.STOP_REASONS`.
+        Codes from :data:`adaptive_engine.kernel.stopping.STOP_REASONS`.
     lz_star : float array, shape (B,)
         Snijders' lz* (NaN when not computed).
     sprt_decision : int array, shape (B,), optional
-        +1 / -1 / 0 from :func:`adaptive_engine.stopping.sprt_decision` at the end.
+        +1 / -1 / 0 from :func:`adaptive_engine.kernel.stopping.sprt_decision` at the end.
 
     Returns
     -------

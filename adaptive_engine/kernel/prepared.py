@@ -3,7 +3,8 @@
 A :class:`TestContext` holds the quadrature grid and the bank's log-probability table on
 it, integer codes for areas, enemy groups and item sets, blueprint bounds as arrays, the
 Sympson-Hetter parameters as an array (per ability stratum when conditional), a-strata,
-and the ranked-candidate tables that make maximum-information selection fast (see :mod:`adaptive_engine.selection`).
+and the ranked-candidate tables that make maximum-information selection fast (see
+:mod:`adaptive_engine.kernel.selection`).
 """
 
 from __future__ import annotations

@@ -11,7 +11,7 @@ Order of business for each examinee who needs an item:
 
 Maximum Fisher information -- the common case, and the one that must be fast for
 simulation -- first tries a short list: the items ranked best on a fine grid near the
-examinee's theta (:mod:`adaptive_engine.context`).  Exact information is computed for the
+examinee's theta (:mod:`adaptive_engine.kernel.prepared`).  Exact information is computed for the
 first few eligible ones, and the pick is accepted only when it provably beats every item
 not evaluated (their information cannot exceed a precomputed ceiling).  Rows where that
 proof fails go through the general path, which evaluates every item; both paths give the

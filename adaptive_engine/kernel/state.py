@@ -20,7 +20,7 @@ class KernelState:
     Attributes
     ----------
     keys : uint64 (B,)
-        Random stream keys (:mod:`adaptive_engine.randomness`).
+        Random stream keys (:mod:`adaptive_engine.kernel.random_streams`).
     prior_mean, prior_sd : float (B,)
     log_post : float (B, G)
         Log posterior of theta on the context's grid (scored answers only).

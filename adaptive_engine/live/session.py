@@ -1,12 +1,12 @@
 """The live session controller: the decision kernel on a batch of one, persisted every step.
 
-Every request is answered from the store (:mod:`adaptive_engine.store`), so any process
+Every request is answered from the store (:mod:`adaptive_engine.live.store`), so any process
 can serve any session: the session row says which design and bank it runs, the event log
 holds its answers, and :func:`adaptive_engine.kernel.rebuild` replays them into the exact
 kernel state (the kernel is a pure function of design, bank, seed and answers).  Replaying
 on every request would be slow, so a process keeps
 
-* one :class:`~adaptive_engine.context.TestContext` per ``(design_id, bank_id)`` and
+* one :class:`~adaptive_engine.kernel.prepared.TestContext` per ``(design_id, bank_id)`` and
 * the in-memory kernel state of the sessions it served, tagged with the sequence number of
   the last event it reflects; before use the tag is compared with the session row read
   under the write lock, and a state another process has moved on is rebuilt.

@@ -11,7 +11,7 @@ depend on the chunk size or on how chunks are spread over workers:
 
 * examinee ``i`` gets the seed ``randomness.examinee_seeds(seed, n)[i]`` (recorded in
   ``examinees.csv``); a live session started with that seed makes the same decisions;
-* true abilities are drawn once for the run (:mod:`adaptive_engine.examinees`);
+* true abilities are drawn once for the run (:mod:`adaptive_engine.simulation.population`);
 * the answer at position ``k`` is drawn with the uniform
   ``randomness.uniforms(key_i, k, SIMULATED_ANSWER)`` against the category probabilities of
   the *true* bank at the true ability.
@@ -206,7 +206,7 @@ def perturbed_bank(bank: ItemBank, *, sd_a=0.0, sd_b=0.0, sd_c=0.0, sd_threshold
     bank : ItemBank
     sd_a, sd_b, sd_c, sd_d : float or float array, shape (n_items,)
         One SD for every item, or each item's own (e.g. its standard errors from
-        :func:`adaptive_engine.simulation_files.read_standard_errors`; 0 leaves the
+        :func:`adaptive_engine.simulation.study.read_standard_errors`; 0 leaves the
         parameter as it is).
     sd_thresholds : float or float array, shape (n_items, K) with K <= the bank's
         thresholds width (missing columns: 0)
@@ -482,7 +482,7 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
     ----------
     design, bank : the operational design and bank (selection and scoring).
     true_theta : float array, shape (N,)
-        True abilities (see :meth:`adaptive_engine.examinees.AbilitySpec.draw`).
+        True abilities (see :meth:`adaptive_engine.simulation.population.AbilitySpec.draw`).
     seed : int
         Run seed: examinee seeds, test decisions and simulated answers derive from it.
     true_bank : ItemBank, optional

@@ -10,7 +10,7 @@ then, so the folder never mixes two runs.
 Files
 -----
 ``summary.json``
-    :func:`adaptive_engine.metrics.summarize` plus the run's settings.
+    :func:`adaptive_engine.simulation.metrics.summarize` plus the run's settings.
 ``examinees.csv``
     ``examinee,true_theta,theta,se,n_items,stop_reason,n_pretest,scaled_score,seed`` and
     one ``class_<cut>`` column per cut score (``seed`` replays the examinee as a live
@@ -23,7 +23,7 @@ Files
 ``conditional.csv``
     metrics by ability bin.
 ``report.html``
-    self-contained report (:mod:`adaptive_engine.report_html`).
+    self-contained report (:mod:`adaptive_engine.simulation.html_report`).
 """
 
 from __future__ import annotations
