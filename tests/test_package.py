@@ -60,3 +60,24 @@ def test_read_design_lives_in_one_module():
 def test_few_modules_at_the_top_level():
     top = sorted(p.name for p in (ROOT / "adaptive_engine").glob("*.py"))
     assert len(top) <= 8, top
+
+
+def test_no_module_reaches_into_another_modules_private_names():
+    # a name with a leading underscore is its module's own; a shared helper is made public
+    import ast
+
+    offences = []
+    for path in sorted((ROOT / "adaptive_engine").rglob("*.py")):
+        tree = ast.parse(path.read_text())
+        imported = set()
+        for node in ast.walk(tree):
+            if isinstance(node, ast.ImportFrom) and (node.level or (node.module or "").startswith("adaptive_engine")):
+                for alias in node.names:
+                    imported.add(alias.asname or alias.name)
+                    if alias.name.startswith("_") and not alias.name.startswith("__"):
+                        offences.append(f"{path.relative_to(ROOT)}:{node.lineno} imports {alias.name}")
+        for node in ast.walk(tree):
+            if (isinstance(node, ast.Attribute) and node.attr.startswith("_") and not node.attr.startswith("__")
+                    and isinstance(node.value, ast.Name) and node.value.id not in ("self", "cls")):
+                offences.append(f"{path.relative_to(ROOT)}:{node.lineno} uses {node.value.id}.{node.attr}")
+    assert offences == []
