@@ -18,10 +18,10 @@ nothing in the store.  See ``docs/embedding.md``.
 
 from __future__ import annotations
 
-from .bank import load_bank
-from .design_file import read_design
+from .bank.item_bank import load_bank
+from .design.toml_file import read_design
 from .errors import SessionError
-from .session import (
+from .live.session import (
     PreparedStart,
     clear_process_cache,
     commit_start,
@@ -34,7 +34,7 @@ from .session import (
     start_session,
     submit_answer,
 )
-from .store import SessionStore, open_store
+from .live.store import SessionStore, open_store
 
 __all__ = [
     "PreparedStart",

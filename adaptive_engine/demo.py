@@ -54,12 +54,12 @@ def run_demo(*, out_dir: str | Path = "demo_output", examinees: int = 1000, seed
     ``files``: a folder holding the example files (a repository checkout); default: the
     current folder or the package's checkout (:func:`repository_root`).
     """
-    from .bank import load_bank
-    from .design_file import read_design
-    from .examinees import parse_ability_spec
-    from .models import probabilities
-    from .session import try_session
-    from .simulation_files import run_study, summary_table
+    from .bank.item_bank import load_bank
+    from .design.toml_file import read_design
+    from .irt.models import probabilities
+    from .live.session import try_session
+    from .simulation.population import parse_ability_spec
+    from .simulation.study import run_study, summary_table
 
     root = repository_root(files)
     design = read_design(root / EXAM_DESIGN)

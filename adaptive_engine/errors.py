@@ -60,3 +60,8 @@ class SessionError(AdaptiveEngineError):
 
 class CalibrationError(AdaptiveEngineError):
     """Response data cannot be calibrated as asked."""
+
+
+class OutputError(AdaptiveEngineError):
+    """An output file or folder cannot be written where asked (missing folder, a folder
+    where a file should go, no permission)."""

@@ -18,8 +18,9 @@ from pathlib import Path
 
 import numpy as np
 
-from adaptive_engine import bank_io, bank_report
 from adaptive_engine.bank import bank_from_records, load_bank
+from adaptive_engine.bank import files as bank_io
+from adaptive_engine.bank import summary as bank_report
 
 REPO = Path(__file__).resolve().parents[1]
 DEMO = REPO / "item_banks" / "meridian_valley_operator.json"

@@ -30,8 +30,8 @@ from pathlib import Path
 import numpy as np
 from scipy.special import expit
 
+from adaptive_engine.bank.responses import ResponseTable, read_responses
 from adaptive_engine.calibration import CalibrationSettings, calibrate_responses
-from adaptive_engine.responses import ResponseTable, read_responses
 
 
 def _table(person, item, response, n_items):

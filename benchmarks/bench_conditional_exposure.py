@@ -21,10 +21,10 @@ import time
 
 import numpy as np
 
-from adaptive_engine import simulation
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design import Design, Stopping
-from adaptive_engine.exposure_calibration import calibrate_sympson_hetter, with_parameters
+from adaptive_engine.simulation import engine as simulation
+from adaptive_engine.simulation.exposure_tuning import calibrate_sympson_hetter, with_parameters
 
 CUTS = (-1.0, 0.0, 1.0)
 

@@ -20,8 +20,8 @@ import tracemalloc
 
 import numpy as np
 
-from adaptive_engine import estimation, models
 from adaptive_engine.bank import ItemBank
+from adaptive_engine.irt import estimation, models
 
 
 def random_bank(n_items, rng, *, grm_every=0):

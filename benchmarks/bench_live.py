@@ -22,12 +22,13 @@ from pathlib import Path
 
 import numpy as np
 
-from adaptive_engine import kernel, randomness
 from adaptive_engine.bank import bank_from_records
-from adaptive_engine.context import build_context
-from adaptive_engine.design_file import parse_design
-from adaptive_engine.session import ProcessCache, start_session, submit_answer
-from adaptive_engine.store import bank_content, open_store
+from adaptive_engine.design.toml_file import parse_design
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
+from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.live.session import ProcessCache, start_session, submit_answer
+from adaptive_engine.live.store import bank_content, open_store
 
 AREAS = ("source_water", "treatment_processes", "distribution_systems", "lab_and_monitoring",
          "safety_and_regulations")
@@ -148,10 +149,12 @@ def main():
     t = time.perf_counter()
     ctx = build_context(DESIGN, bank)
     print(f"context for a 5,000-item bank built in {time.perf_counter() - t:.2f} s (once per process)")
-    describe("kernel step, 5,000 items, randomesque + blueprint", kernel_steps(ctx, bank, n_sessions, count_eligible=False))
+    describe("kernel step, 5,000 items, randomesque + blueprint",
+             kernel_steps(ctx, bank, n_sessions, count_eligible=False))
     describe("kernel step, also counting the eligible set", kernel_steps(ctx, bank, n_sessions, count_eligible=True))
     with tempfile.TemporaryDirectory() as tmp:
-        describe("submit_answer incl. SQLite commit (WAL, one process)", store_steps(str(Path(tmp) / "one.db"), bank, n_sessions))
+        describe("submit_answer incl. SQLite commit (WAL, one process)",
+                 store_steps(str(Path(tmp) / "one.db"), bank, n_sessions))
         rate, lost = many_processes(str(Path(tmp) / "many.db"), bank, 8, seconds)
     print(f"8 processes on one store: {rate:,.0f} steps per second in total; lost exposure counts: {lost}")
 

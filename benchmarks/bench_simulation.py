@@ -27,9 +27,10 @@ import tracemalloc
 
 import numpy as np
 
-from adaptive_engine import models, simulation
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design import AreaRule, Blueprint, Design, Exposure, Stopping
+from adaptive_engine.irt import models
+from adaptive_engine.simulation import engine as simulation
 
 AREAS = ("one", "two", "three", "four")
 

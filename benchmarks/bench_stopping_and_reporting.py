@@ -12,10 +12,12 @@ import time
 
 import numpy as np
 
-from adaptive_engine import design, models, stopping
-from adaptive_engine.ability import DEFAULT_GRID, normal_log_prior
-from adaptive_engine.person_fit import person_fit
-from adaptive_engine.reporting import final_reports
+from adaptive_engine.design import types as design
+from adaptive_engine.irt import models
+from adaptive_engine.irt.person_fit import person_fit
+from adaptive_engine.irt.posterior import DEFAULT_GRID, normal_log_prior
+from adaptive_engine.kernel import stopping
+from adaptive_engine.kernel.final_report import final_reports
 
 
 def _median_seconds(func, repeats=5):

@@ -63,10 +63,11 @@ HERE = Path(__file__).resolve().parent
 if str(HERE.parent) not in sys.path:  # run as a script from a checkout
     sys.path.insert(0, str(HERE.parent))
 
-from adaptive_engine.models import probabilities as category_probabilities  # noqa: E402
 from adaptive_engine.bank import ItemBank, bank_from_records  # noqa: E402
-from adaptive_engine.bank_io import write_bank, write_text_file  # noqa: E402
+from adaptive_engine.bank.files import write_bank  # noqa: E402
 from adaptive_engine.errors import AdaptiveEngineError  # noqa: E402
+from adaptive_engine.files import write_text  # noqa: E402
+from adaptive_engine.irt.models import probabilities as category_probabilities  # noqa: E402
 
 OPERATOR_SEED = 20_240_611
 SURVEY_SEED = 20_240_612
@@ -322,7 +323,7 @@ def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
             (operator, OPERATOR_RESPONSES, OPERATOR_RESPONSES_SEED),
             (survey, SURVEY_RESPONSES, SURVEY_RESPONSES_SEED)):
         text = simulate_responses(bank, n_persons, n_items, prefix, seed)
-        write_text_file(out_dir / name, text)
+        write_text(out_dir / name, text)
         written.append(out_dir / name)
     return written
 

@@ -4,8 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from adaptive_engine import kernel, models, randomness
 from adaptive_engine.bank import bank_from_records
+from adaptive_engine.irt import models
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
 
 AREAS = ("alpha", "beta", "gamma")
 

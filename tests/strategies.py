@@ -6,7 +6,7 @@ shared vocabulary:
 * :func:`thetas` -- ability values in [-10, 10] (or a chosen range).
 * :func:`dichotomous_items`, :func:`graded_items`, :func:`partial_credit_items`,
   :func:`any_items` -- one item's parameters as a plain record (the JSON item format).
-* :func:`item_parameters` -- :class:`adaptive_engine.models.ItemParameters` for n items.
+* :func:`item_parameters` -- :class:`adaptive_engine.irt.models.ItemParameters` for n items.
 * :func:`item_banks` -- small valid :class:`adaptive_engine.bank.ItemBank` objects.
 
 Parameter ranges are those of calibrated operational banks (common practice):
@@ -18,8 +18,8 @@ from __future__ import annotations
 import numpy as np
 from hypothesis import strategies as st
 
-from adaptive_engine import models
 from adaptive_engine.bank import ItemBank, bank_from_records
+from adaptive_engine.irt import models
 
 A_RANGE = (0.2, 3.0)
 B_RANGE = (-3.0, 3.0)
@@ -90,7 +90,7 @@ def any_items(*, max_k: int = 4):
 
 
 def records_to_parameters(records, *, scaling: float = 1.0) -> models.ItemParameters:
-    """Turn item records into :class:`~adaptive_engine.models.ItemParameters` (n items)."""
+    """Turn item records into :class:`~adaptive_engine.irt.models.ItemParameters` (n items)."""
     k_max = max((len(r.get("thresholds", ())) for r in records), default=0)
     thr = np.full((len(records), k_max), np.nan)
     family, ncat = [], []
@@ -109,7 +109,7 @@ def records_to_parameters(records, *, scaling: float = 1.0) -> models.ItemParame
 
 def item_parameters(*, min_items: int = 1, max_items: int = 6, items=None,
                     scalings=st.sampled_from((1.0, 1.702))):
-    """:class:`~adaptive_engine.models.ItemParameters` for 1..``max_items`` items."""
+    """:class:`~adaptive_engine.irt.models.ItemParameters` for 1..``max_items`` items."""
     items = items if items is not None else any_items()
     return st.builds(
         lambda recs, D: records_to_parameters(recs, scaling=D),

@@ -11,9 +11,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from adaptive_engine.bank import ItemBank, load_bank, read_bank_csv_text, read_bank_json_text
-from adaptive_engine.bank_io import bank_to_csv_text, bank_to_json_text
+from adaptive_engine.bank.files import bank_to_csv_text, bank_to_json_text
 from adaptive_engine.errors import AdaptiveEngineError, BankError
-
 from strategies import item_banks
 
 HEADER = "item_id,model,a,b,c,d,b1,b2,b3,area,item_set,enemy_group,status,label\n"
@@ -132,7 +131,8 @@ GOOD_ITEM = {"item_id": "Q1", "model": "3PL", "a": 1.0, "b": 0.0, "c": 0.2, "d":
     [
         (json_doc([{"item_id": "Q1", "a": 1.0, "b": 0.0}]), "bank.json items[0]", "missing required field 'model'"),
         (json_doc([dict(GOOD_ITEM, model="ABC")]), "bank.json items[0]", "unknown model 'ABC'"),
-        (json_doc([dict(GOOD_ITEM, a="steep")]), "bank.json items[0]", 'a must be a JSON number, got the string "steep"'),
+        (json_doc([dict(GOOD_ITEM, a="steep")]), "bank.json items[0]",
+         'a must be a JSON number, got the string "steep"'),
         (json_doc([dict(GOOD_ITEM, a=True)]), "bank.json items[0]", "a must be a JSON number, got true"),
         ('{"items": [{"item_id": "Q1", "model": "2PL", "a": NaN, "b": 0}]}', "bank.json items[0]",
          "a is not a finite number"),
@@ -174,7 +174,8 @@ def test_load_bank_refuses_unknown_suffix_missing_file_and_non_utf8(tmp_path):
         load_bank(tmp_path / "bank.txt")
     with pytest.raises(BankError, match="no such file"):
         load_bank(tmp_path / "absent.csv")
-    (tmp_path / "latin.csv").write_bytes(GOOD_CSV.encode() + "Q9,2PL,1,0,,,,,,caf\xe9,,,operational,x\n".encode("latin-1"))
+    latin = "Q9,2PL,1,0,,,,,,caf\xe9,,,operational,x\n".encode("latin-1")
+    (tmp_path / "latin.csv").write_bytes(GOOD_CSV.encode() + latin)
     with pytest.raises(BankError, match="not UTF-8") as info:
         load_bank(tmp_path / "latin.csv")
     assert info.value.location

@@ -12,9 +12,10 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from adaptive_engine import models
 from adaptive_engine.bank import load_bank
 from adaptive_engine.cli import main
+from adaptive_engine.irt import models
+from optional_extras import requires_matplotlib
 
 REPO = Path(__file__).resolve().parents[1]
 OPERATOR = REPO / "item_banks" / "meridian_valley_operator.json"
@@ -131,8 +132,8 @@ def test_curves_refuses_bad_grids(args, where):
     assert where in result.output
 
 
+@requires_matplotlib
 def test_curves_plot(tmp_path):
-    pytest.importorskip("matplotlib", reason="the plots extra (matplotlib) is not installed")
     png = tmp_path / "info.png"
     result = run("bank", "curves", OPERATOR, "--by-area", "--plot", png)
     assert result.exit_code == 0, result.output
@@ -140,8 +141,8 @@ def test_curves_plot(tmp_path):
     assert [p.name for p in tmp_path.iterdir()] == ["info.png"]
 
 
+@requires_matplotlib
 def test_curves_plot_needs_png_suffix(tmp_path):
-    pytest.importorskip("matplotlib", reason="the plots extra (matplotlib) is not installed")
     result = CliRunner().invoke(main, ["bank", "curves", str(SURVEY), "--plot", str(tmp_path / "x.pdf")])
     assert result.exit_code == 2 and "--plot" in result.output
     assert list(tmp_path.iterdir()) == []

@@ -2,7 +2,7 @@
 
 Reference: the dichotomous item information of Magis (2013), Applied Psychological
 Measurement 37(4), 304-315 (4PL; with d = 1 it is Lord's 1980 3PL formula, with c = 0
-too the 2PL's D^2 a^2 P (1 - P)), written here without adaptive_engine.models:
+too the 2PL's D^2 a^2 P (1 - P)), written here without adaptive_engine.irt.models:
 I(theta) = D^2 a^2 (P - c)^2 (d - P)^2 / ((d - c)^2 P (1 - P)).
 """
 

@@ -13,15 +13,14 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from adaptive_engine import bank_io
 from adaptive_engine.bank import bank_from_records, load_bank
+from adaptive_engine.bank import files as bank_io
 from adaptive_engine.errors import BankError
-
 from strategies import item_banks
 
 REPO = Path(__file__).resolve().parents[1]
 ITEM_BANKS = REPO / "item_banks"
-SCHEMA = REPO / "adaptive_engine" / "schemas" / "item_bank.schema.json"
+SCHEMA = REPO / "adaptive_engine" / "bank" / "schema" / "item_bank.schema.json"
 DEMO_FILES = ["meridian_valley_operator.csv", "meridian_valley_operator.json",
               "staff_climate_survey.csv", "staff_climate_survey.json",
               "meridian_valley_responses.csv", "staff_climate_responses.csv"]

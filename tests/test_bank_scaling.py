@@ -16,8 +16,8 @@ import pytest
 from click.testing import CliRunner
 from scipy import optimize
 
-from adaptive_engine import bank_io
 from adaptive_engine.bank import bank_from_records, load_bank
+from adaptive_engine.bank import files as bank_io
 from adaptive_engine.cli import main
 from adaptive_engine.errors import BankError
 

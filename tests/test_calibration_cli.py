@@ -15,10 +15,10 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from adaptive_engine import models
 from adaptive_engine.bank import load_bank
-from adaptive_engine.bank_io import write_bank
+from adaptive_engine.bank.files import write_bank
 from adaptive_engine.cli import main
+from adaptive_engine.irt import models
 
 BANKS = Path(__file__).resolve().parents[1] / "item_banks"
 
@@ -126,7 +126,7 @@ def test_output_in_a_missing_folder_is_refused_before_any_work(tmp_path):
     missing = tmp_path / "no_such_file.csv"
     res = runner.invoke(main, ["calibrate", str(missing), "--model", "2PL", "--out", str(tmp_path / "nodir" / "x.csv")])
     assert res.exit_code == 2
-    assert f"--out {tmp_path / 'nodir' / 'x.csv'}: the folder '{tmp_path / 'nodir'}' does not exist" in res.output
+    assert f"--out {tmp_path / 'nodir' / 'x.csv'}: the folder {tmp_path / 'nodir'} does not exist" in res.output
     assert ".partial" not in res.output and "no such file" not in res.output
     answers = tmp_path / "answers.csv"
     answers.write_text("person_id,item_id,response\n" + "".join(f"p{i},MV-1,{i % 2}\np{i},MV-2,{i // 2 % 2}\n"
@@ -134,7 +134,7 @@ def test_output_in_a_missing_folder_is_refused_before_any_work(tmp_path):
     res = runner.invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(tmp_path / "b.csv"),
                                "--fit-report", str(tmp_path / "gone" / "fit.csv")])
     assert res.exit_code == 2 and f"--fit-report {tmp_path / 'gone' / 'fit.csv'}: " in res.output
-    assert f"the folder '{tmp_path / 'gone'}' does not exist" in res.output
+    assert f"the folder {tmp_path / 'gone'} does not exist" in res.output
     assert not (tmp_path / "b.csv").exists()
     res = runner.invoke(main, ["link", str(answers), "--to", str(answers), "--out", str(tmp_path / "nodir" / "l.json")])
     assert res.exit_code == 2 and "does not exist" in res.output

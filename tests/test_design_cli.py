@@ -14,7 +14,7 @@ from click.testing import CliRunner
 
 from adaptive_engine.cli import main
 from adaptive_engine.design import Scoring
-from adaptive_engine.design_file import parse_design, read_design
+from adaptive_engine.design.toml_file import parse_design, read_design
 
 REPO = Path(__file__).resolve().parents[1]
 SIMULATIONS = REPO / "simulations"
@@ -44,7 +44,8 @@ def test_check_without_bank_prints_one_line_per_section(tmp_path):
 
 def test_check_against_a_fitting_bank_exits_0(tmp_path):
     design = tmp_path / "d.toml"
-    design.write_text("[blueprint]\npretest_positions = [3]\n[blueprint.areas.x]\nmin = 2\n[stopping]\nmax_items = 5\nse = 0.3\n")
+    design.write_text("[blueprint]\npretest_positions = [3]\n[blueprint.areas.x]\nmin = 2\n"
+                      "[stopping]\nmax_items = 5\nse = 0.3\n")
     result = run("design", "check", str(design), "--bank", str(small_bank(tmp_path / "bank.csv")))
     assert result.exit_code == 0, result.output
     assert "fits bank" in result.output and "11 items, 1 pretest" in result.output

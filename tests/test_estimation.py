@@ -1,4 +1,4 @@
-"""Unit and property tests of adaptive_engine.estimation (batch behaviour, statuses, priors).
+"""Unit and property tests of adaptive_engine.irt.estimation (batch behaviour, statuses, priors).
 
 Checks against outside sources (scipy oracles, published examples) are in
 tests/test_reference_estimation.py.
@@ -11,10 +11,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from adaptive_engine import estimation, models
 from adaptive_engine.bank import bank_from_records
-from adaptive_engine.curves import expected_score_curve, standard_error_curve, test_information
 from adaptive_engine.errors import AdaptiveEngineError, ResponseDataError
+from adaptive_engine.irt import estimation, models
+from adaptive_engine.irt.curves import expected_score_curve, standard_error_curve, test_information
 
 MODELS = ("1PL", "2PL", "3PL", "4PL", "GRM", "GPCM")
 

@@ -18,12 +18,17 @@ import pytest
 from scipy.special import expit
 
 from adaptive_engine.bank import bank_from_records
+from adaptive_engine.bank.responses import ResponseTable
 from adaptive_engine.calibration import calibrate_responses
 from adaptive_engine.calibration.item_fit import (
-    fit_for_result, item_report_rows, normal_grid, rasch_mean_squares,
-    rows_to_csv, summed_score_expectations, summed_score_likelihood,
+    fit_for_result,
+    item_report_rows,
+    normal_grid,
+    rasch_mean_squares,
+    rows_to_csv,
+    summed_score_expectations,
+    summed_score_likelihood,
 )
-from adaptive_engine.responses import ResponseTable
 
 
 def _small_bank():
@@ -59,7 +64,7 @@ def test_summed_score_recursion_matches_enumeration():
     grid, log_w = normal_grid(41)
     patterns, probs = _pattern_probabilities(bank, grid)
     scores = patterns.sum(axis=1)
-    from adaptive_engine import models
+    from adaptive_engine.irt import models
     table = models.probabilities(*models.outer(bank.params, grid))
     f = summed_score_likelihood(table, bank.n_categories)
     brute = np.stack([probs[scores == s].sum(axis=0) for s in range(scores.max() + 1)], axis=1)

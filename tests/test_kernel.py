@@ -8,13 +8,23 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import integrate
 
-from adaptive_engine import kernel, randomness, selection
-from adaptive_engine.context import build_context
 from adaptive_engine.design import (
-    AreaRule, Blueprint, ConfidenceRule, Design, Exposure, Opening, Reporting, Scoring,
-    Selection, SprtRule, Stopping,
+    AreaRule,
+    Blueprint,
+    ConfidenceRule,
+    Design,
+    Exposure,
+    Opening,
+    Reporting,
+    Scoring,
+    Selection,
+    SprtRule,
+    Stopping,
 )
-
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
+from adaptive_engine.kernel import selection
+from adaptive_engine.kernel.prepared import build_context
 from kernel_support import AREAS, run_batch, structured_bank
 
 
@@ -246,8 +256,8 @@ def test_shadow_tests_meet_the_blueprint_exactly():
 
 def test_array_summaries_match_the_reports():
     # The simulation summarises with arrays; they must say what the per-examinee reports say.
-    from adaptive_engine import reporting
     from adaptive_engine.design import CutScore, ScaleRule
+    from adaptive_engine.kernel import final_report as reporting
 
     bank = structured_bank(8, 100)
     d = Design(stopping=Stopping(min_items=5, max_items=20, sprt=SprtRule(cut=0.2, indifference=0.3)),

@@ -10,9 +10,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from adaptive_engine import metrics
 from adaptive_engine.design import AreaRule, CutScore
 from adaptive_engine.errors import AdaptiveEngineError
+from adaptive_engine.simulation import metrics
 
 
 def test_precision_against_numpy_and_scipy():
@@ -190,9 +190,9 @@ def test_conditional_exposure_rates_are_recounted_from_the_administrations(tmp_p
     from pathlib import Path
 
     from adaptive_engine.bank import load_bank
-    from adaptive_engine.design_file import read_design
-    from adaptive_engine.examinees import parse_ability_spec
-    from adaptive_engine.simulation_files import run_study
+    from adaptive_engine.design.toml_file import read_design
+    from adaptive_engine.simulation.population import parse_ability_spec
+    from adaptive_engine.simulation.study import run_study
 
     root = Path(__file__).resolve().parents[1]
     design = read_design(root / "simulations" / "conditional_sympson_hetter.toml")

@@ -1,4 +1,4 @@
-"""Property tests of the item response models in :mod:`adaptive_engine.models`.
+"""Property tests of the item response models in :mod:`adaptive_engine.irt.models`.
 
 The oracles are independent of the project's code: numerical central differences of the
 probabilities for derivatives and information (Fisher information of a categorical
@@ -16,9 +16,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.special import expit
 
-from adaptive_engine import models
 from adaptive_engine.bank import bank_from_records
-
+from adaptive_engine.irt import models
 from strategies import (
     any_items,
     dichotomous_items,

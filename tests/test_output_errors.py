@@ -15,10 +15,11 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from adaptive_engine import bank_io
 from adaptive_engine.bank import bank_from_records, load_bank
+from adaptive_engine.bank import files as bank_io
 from adaptive_engine.cli import main
 from adaptive_engine.errors import AdaptiveEngineError, BankError
+from optional_extras import requires_matplotlib
 
 REPO = Path(__file__).resolve().parents[1]
 GENERATOR = REPO / "item_banks" / "make_demo_banks.py"
@@ -63,8 +64,8 @@ def test_convert_into_a_missing_folder(bank_file, tmp_path):
     assert ".partial" not in result.output and "wrote" not in result.output
 
 
+@requires_matplotlib
 def test_curves_plot_into_a_missing_folder(bank_file, tmp_path):
-    pytest.importorskip("matplotlib", reason="plots need the 'plots' extra")
     target = tmp_path / "nowhere" / "curves.png"
     result = run("bank", "curves", bank_file, "--plot", target)
     assert result.exit_code == 2

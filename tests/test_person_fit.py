@@ -1,4 +1,4 @@
-"""Tests of adaptive_engine.person_fit: lz (Drasgow, Levine & Williams 1985) and lz*
+"""Tests of adaptive_engine.irt.person_fit: lz (Drasgow, Levine & Williams 1985) and lz*
 (Snijders 2001) at an estimated ability."""
 
 from __future__ import annotations
@@ -11,8 +11,7 @@ from scipy.optimize import brentq, minimize_scalar
 from scipy.special import expit
 
 from adaptive_engine.errors import AdaptiveEngineError, ResponseDataError
-from adaptive_engine.person_fit import person_fit
-
+from adaptive_engine.irt.person_fit import person_fit
 from strategies import records_to_parameters
 
 

@@ -1,7 +1,9 @@
 """Pretest calibration from a session store (fixed-parameter calibration).
 
-The store is built here with sqlite-utils using the session-store contract's tables
-(sessions, banks, events) and simulated answers.  Examinees are drawn from N(0.4, 1.1^2),
+The stores are built through the session store's own API (``open_store``, ``put_bank``,
+``insert_session``, ``append_events``) with simulated answers: each session gets a random
+set of operational and pretest items, so every item is answered by a cross-section of the
+population.  One test runs real adaptive sessions end to end.  Examinees are drawn from N(0.4, 1.1^2),
 not the N(0, 1) the calibration assumes: pretest items estimated through the operational
 items' posteriors must still come out on the bank's (generating) scale, which a free MML
 calibration with a N(0, 1) population would not give (Kim 2006, Journal of Educational
@@ -15,13 +17,13 @@ import json
 
 import numpy as np
 import pytest
-import sqlite_utils
 
-from adaptive_engine import models
 from adaptive_engine.bank import bank_from_records, load_bank
-from adaptive_engine.bank_io import bank_to_json_text
 from adaptive_engine.calibration.pretest import PromotionRules, calibrate_pretest
-from adaptive_engine.errors import CalibrationError
+from adaptive_engine.design import Design
+from adaptive_engine.errors import CalibrationError, SessionError
+from adaptive_engine.irt import models
+from adaptive_engine.live.store import bank_content, open_store, read_bank_answers
 
 N_OPERATIONAL = 30
 PRETEST = {  # item id -> (a, b) of the generating 2PL
@@ -44,58 +46,55 @@ def _truth(bank, values):
     return bank.evolve(a=a, b=b)
 
 
-def _store(path, bank, rng, *, n_sessions=2500, bank_id="bank-main", rare=None, truth=None, n_given=15):
+def _store(path, bank, rng, *, n_sessions=2500, rare=None, truth=None, n_given=15):
     """A session store of ``bank`` with simulated answers drawn from ``truth`` (default: the
     2PL PRETEST values); each session takes ``n_given`` operational and 2 pretest items."""
     truth = _truth(bank, PRETEST) if truth is None else truth
     operational = [str(i) for i, s in zip(bank.item_ids, bank.status) if s == "operational"]
     pretest_ids = [str(i) for i, s in zip(bank.item_ids, bank.status) if s == "pretest"]
-    db = sqlite_utils.Database(path)
-    db["banks"].create({"bank_id": str, "name": str, "content": str}, pk="bank_id")
-    db["sessions"].create({"session_id": str, "examinee": str, "bank_id": str, "design_id": str,
-                           "status": str, "seed": int, "created_at": str, "updated_at": str,
-                           "state": str, "result": str}, pk="session_id")
-    db["events"].create({"event_id": int, "session_id": str, "seq": int, "kind": str, "item_id": str,
-                         "response": int, "scored": int, "theta": float, "se": float, "criterion": float,
-                         "eligible": int, "rng_state": str, "elapsed": float, "created_at": str},
-                        pk="event_id")
-    db["banks"].insert(dict(bank_id=bank_id, name="demo", content=bank_to_json_text(bank)))
     theta = rng.normal(0.4, 1.1, n_sessions)
     sessions, events = [], []
-    event_id = 0
-    for s in range(n_sessions):
-        sid = f"s{s:05d}"
-        sessions.append(dict(session_id=sid, examinee=f"e{s}", bank_id=bank_id, design_id="d",
-                             status="finished", seed=s, created_at="", updated_at="", state="{}",
-                             result="{}"))
-        ops = list(rng.choice(operational, n_given, replace=False))
-        pre = list(rng.choice(pretest_ids, 2, replace=False))
-        if rare and s >= 40:
-            pre = [p for p in pre if p != rare]
-        given = ops + pre
-        rows = truth.indices(given)
-        probs = models.probabilities(truth.params.take(rows), np.full(len(given), theta[s]))
-        answers = (rng.random((len(given), 1)) > np.cumsum(probs, axis=1)).sum(axis=1)
-        seq = 0
-        for item, x in zip(given, answers):
-            for kind in ("item_given", "answer"):
-                event_id += 1
-                seq += 1
-                events.append(dict(event_id=event_id, session_id=sid, seq=seq, kind=kind, item_id=item,
-                                   response=int(x) if kind == "answer" else None,
-                                   scored=int(item in operational), theta=None, se=None, criterion=None,
-                                   eligible=None, rng_state=json.dumps({"key": 1, "position": seq}),
-                                   elapsed=1.0, created_at=""))
-    db["sessions"].insert_all(sessions)
-    db["events"].insert_all(events, batch_size=5000)
+    with open_store(path) as store, store.writing():
+        bank_id = store.put_bank(bank)
+        design_id = store.put_design(Design())
+        for s in range(n_sessions):
+            sid = f"s{s:05d}"
+            sessions.append(dict(session_id=sid, examinee=f"e{s}", bank_id=bank_id, design_id=design_id,
+                                 status="finished", seed=s, created_at="", updated_at="", state="{}",
+                                 result="{}"))
+            ops = list(rng.choice(operational, n_given, replace=False))
+            pre = list(rng.choice(pretest_ids, 2, replace=False))
+            if rare and s >= 40:
+                pre = [p for p in pre if p != rare]
+            given = ops + pre
+            rows = truth.indices(given)
+            probs = models.probabilities(truth.params.take(rows), np.full(len(given), theta[s]))
+            answers = (rng.random((len(given), 1)) > np.cumsum(probs, axis=1)).sum(axis=1)
+            seq = 0
+            for item, x in zip(given, answers):
+                for kind in ("item_given", "answer"):
+                    seq += 1
+                    events.append(dict(session_id=sid, seq=seq, kind=kind, item_id=item,
+                                       response=int(x) if kind == "answer" else None,
+                                       scored=int(item in operational), elapsed=1.0, created_at="",
+                                       rng_state=json.dumps({"key": 1, "position": seq})))
+        for row in sessions:
+            store.insert_session(row)
+        store.append_events(events)
     return path
+
+
+def _calibrate(path, *, bank_id=None, bank=None, **options):
+    """Read the store as the command line does, then calibrate."""
+    stored = read_bank_answers(path, bank_id=bank_id, bank=bank)
+    return calibrate_pretest(stored.events, bank=stored.bank, bank_id=stored.bank_id, **options)
 
 
 def test_pretest_items_land_on_the_bank_scale(tmp_path):
     rng = np.random.default_rng(41)
     bank = _bank(rng)
     path = _store(tmp_path / "store.db", bank, rng, rare="new4")
-    result = calibrate_pretest(path, bank_id="bank-main", rules=PromotionRules(min_answers=300, max_se=0.25))
+    result = _calibrate(path, bank_id=bank_content(bank)[0], rules=PromotionRules(min_answers=300, max_se=0.25))
     rows = {r["item_id"]: r for r in result.rows}
     assert set(rows) == set(PRETEST)
     print()
@@ -117,25 +116,50 @@ def test_pretest_items_land_on_the_bank_scale(tmp_path):
 
 
 def test_bank_lookup_and_errors(tmp_path):
-    from adaptive_engine.store import bank_content
-
     rng = np.random.default_rng(42)
     bank = _bank(rng)
     bank_id, _ = bank_content(bank)
-    path = _store(tmp_path / "store.db", bank, rng, n_sessions=300, bank_id=bank_id)
-    result = calibrate_pretest(path, bank=bank, rules=PromotionRules(min_answers=10, max_se=5.0, min_fit_p=0.0))
+    path = _store(tmp_path / "store.db", bank, rng, n_sessions=300)
+    result = _calibrate(path, bank=bank, rules=PromotionRules(min_answers=10, max_se=5.0, min_fit_p=0.0))
     assert result.summary["bank_id"] == bank_id
-    with pytest.raises(CalibrationError, match="no bank with id 'nope'"):
-        calibrate_pretest(path, bank_id="nope")
+    # the store's copy of the bank is the same bank
+    stored = read_bank_answers(path, bank_id=bank_id)
+    assert stored.bank.item_ids.tolist() == bank.item_ids.tolist()
+    np.testing.assert_array_equal(stored.bank.a, bank.a)
+    with pytest.raises(SessionError, match="no bank with id 'nope'"):
+        read_bank_answers(path, bank_id="nope")
     other = bank.evolve(a=bank.a * 1.01)
-    with pytest.raises(CalibrationError, match="--bank: this bank is not in the store"):
-        calibrate_pretest(path, bank=other)
-    db = sqlite_utils.Database(path)
-    db["events"].update(2, {"item_id": "ghost"})
-    with pytest.raises(CalibrationError, match=r"event 2: item 'ghost' is not in the bank"):
-        calibrate_pretest(path, bank_id=bank_id)
-    with pytest.raises(CalibrationError, match="no such session store"):
-        calibrate_pretest(tmp_path / "missing.db", bank_id=bank_id)
+    with pytest.raises(SessionError, match="--bank: this bank is not in the store"):
+        read_bank_answers(path, bank=other)
+    with pytest.raises(SessionError, match="no session store at"):
+        read_bank_answers(tmp_path / "missing.db", bank_id=bank_id)
+    # reading changes nothing in the file
+    before = path.read_bytes()
+    read_bank_answers(path, bank_id=bank_id)
+    assert path.read_bytes() == before
+    # an answer to an item the bank does not hold is located at its event
+    with open_store(path) as store, store.writing():
+        store.append_events([dict(session_id="s00000", seq=1000, kind="answer", item_id="ghost", response=1,
+                                  scored=0, created_at="")])
+    stored = read_bank_answers(path, bank_id=bank_id)
+    ghost = [e for e in stored.events if e[2] == "ghost"][0][0]
+    with pytest.raises(CalibrationError, match=rf"event {ghost}: item 'ghost' is not in the bank"):
+        calibrate_pretest(stored.events, bank=stored.bank, bank_id=bank_id)
+    with pytest.raises(CalibrationError, match="no answers recorded for bank 'b'"):
+        calibrate_pretest([], bank=bank, bank_id="b")
+
+
+def test_a_file_that_is_not_a_store_is_refused_and_left_alone(tmp_path):
+    import sqlite3
+
+    path = tmp_path / "other.db"
+    with sqlite3.connect(path) as conn:
+        conn.execute("CREATE TABLE sessions (x)")
+    conn.close()
+    before = path.read_bytes()
+    with pytest.raises(SessionError, match="not a session store: table 'events' is missing"):
+        read_bank_answers(path, bank_id="b")
+    assert path.read_bytes() == before
 
 
 def test_pretest_cli(tmp_path):
@@ -146,9 +170,10 @@ def test_pretest_cli(tmp_path):
     rng = np.random.default_rng(43)
     bank = _bank(rng)
     path = _store(tmp_path / "store.db", bank, rng, n_sessions=400, rare="new4")
+    bank_id, _ = bank_content(bank)
     out, report = tmp_path / "pretest.json", tmp_path / "pretest.csv"
     runner = CliRunner()
-    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", "bank-main",
+    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", bank_id,
                                "--out", str(out), "--report", str(report), "--min-answers", "150",
                                "--max-se", "0.6", "--min-fit-p", "0.001"])
     assert res.exit_code == 0, res.output
@@ -166,14 +191,14 @@ def test_pretest_cli(tmp_path):
     assert sorted(r["item_id"] for r in report_rows if r["ready"] == "True") == ready
     assert all(r["reasons"] for r in report_rows if r["ready"] != "True")
     everything = tmp_path / "all.json"
-    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", "bank-main",
+    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", bank_id,
                                "--out", str(everything), "--min-answers", "150", "--max-se", "0.6",
                                "--min-fit-p", "0.001", "--include-not-ready"])
     assert res.exit_code == 0, res.output
     assert sorted(load_bank(everything).item_ids) == sorted(PRETEST)
     # nothing ready: no bank file, a warning on stderr, the report still written
     none_out, none_report = tmp_path / "none.json", tmp_path / "none.csv"
-    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", "bank-main",
+    res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", bank_id,
                                "--out", str(none_out), "--report", str(none_report), "--min-answers", "100000"])
     assert res.exit_code == 0, res.output
     assert not none_out.exists() and none_report.exists()
@@ -197,7 +222,7 @@ def test_rasch_pretest_items_keep_the_operational_slope(tmp_path):
     bank = bank_from_records(records)
     truth = _truth(bank, {iid: (0.8, b) for iid, b in true_b.items()})
     path = _store(tmp_path / "store.db", bank, rng, n_sessions=900, truth=truth, n_given=12)
-    result = calibrate_pretest(path, bank_id="bank-main", rules=PromotionRules(min_answers=100, max_se=0.3))
+    result = _calibrate(path, bank_id=bank_content(bank)[0], rules=PromotionRules(min_answers=100, max_se=0.3))
     rows = {r["item_id"]: r for r in result.rows}
     assert result.summary["held_slopes"] == {"1PL": 0.8}
     np.testing.assert_array_equal(result.bank.a, 0.8)
@@ -223,7 +248,7 @@ def test_partial_credit_pretest_items_keep_the_operational_slope(tmp_path):
         thresholds[bank.index_of[iid]] = steps
     truth = bank.evolve(a=np.full(len(bank), 0.9), thresholds=thresholds)
     path = _store(tmp_path / "store.db", bank, rng, n_sessions=700, truth=truth, n_given=8)
-    result = calibrate_pretest(path, bank_id="bank-main", rules=PromotionRules(min_answers=100, max_se=0.5))
+    result = _calibrate(path, bank_id=bank_content(bank)[0], rules=PromotionRules(min_answers=100, max_se=0.5))
     assert result.summary["held_slopes"] == {"GPCM": 0.9}
     np.testing.assert_array_equal(result.bank.a, 0.9)
     for iid, steps in true_steps.items():
@@ -243,7 +268,7 @@ def test_pretest_slopes_in_the_units_of_a_normal_metric_bank(tmp_path):
     records += [dict(item_id=iid, model="2PL", a=1.0, b=0.0, status="pretest") for iid in true]
     bank = bank_from_records(records, scaling=1.702)
     path = _store(tmp_path / "store.db", bank, rng, n_sessions=1500, truth=_truth(bank, true))
-    result = calibrate_pretest(path, bank_id="bank-main")
+    result = _calibrate(path, bank_id=bank_content(bank)[0])
     assert result.bank.scaling == 1.702 and result.summary["scaling"] == 1.702
     rows = {r["item_id"]: r for r in result.rows}
     for iid, (a, b) in true.items():
@@ -304,7 +329,7 @@ def test_pretest_calibration_of_real_live_sessions(tmp_path):
             p = models.probabilities(truth.params.take(np.array([row])), np.array([theta]))[0]
             reply = api.submit_answer(store, reply["session_id"], reply["item_id"], int(rng.random() < p[1]))
     store.close()
-    result = calibrate_pretest(store_path, bank=bank, rules=PromotionRules(min_answers=150, max_se=0.5))
+    result = _calibrate(store_path, bank=bank, rules=PromotionRules(min_answers=150, max_se=0.5))
     assert result.summary["sessions"] == n_sessions
     assert result.summary["pretest_answers"] == 2 * n_sessions
     assert result.summary["operational_answers"] == 12 * n_sessions

@@ -16,8 +16,8 @@ import pytest
 from scipy import integrate, stats
 from scipy.special import log_expit
 
-from adaptive_engine import estimation
 from adaptive_engine.bank import bank_from_records
+from adaptive_engine.irt import estimation
 
 D = 1.702
 
@@ -88,7 +88,7 @@ def test_refinement_follows_the_posterior_sd_bound():
 def test_information_bound_is_an_upper_bound():
     """Oracle: the project's own information on a fine grid never exceeds the closed-form
     bound (2PL: (Da)^2/4, reached at b: Lord 1980; GRM: (Da)^2; GPCM: (Da)^2 K^2/4)."""
-    from adaptive_engine import models
+    from adaptive_engine.irt import models
     items = [{"item_id": "d2", "model": "2PL", "a": 1.3, "b": 0.2},
              {"item_id": "d3", "model": "3PL", "a": 2.0, "b": -0.5, "c": 0.2},
              {"item_id": "d4", "model": "4PL", "a": 1.5, "b": 0.5, "c": 0.1, "d": 0.9},

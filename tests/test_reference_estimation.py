@@ -2,7 +2,7 @@
 scipy as an oracle.
 
 The reference likelihood below is written here from the published model formulas, without
-adaptive_engine.models:
+adaptive_engine.irt.models:
 
 * 1PL-4PL: P(1) = c + (d - c) / (1 + exp(-D a (theta - b)))  (Barton & Lord 1981; Magis 2013,
   Applied Psychological Measurement 37(4), eq. 1), derivative P' = D a (P - c)(d - P)/(d - c).
@@ -24,8 +24,8 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize, stats
 
-from adaptive_engine import estimation
 from adaptive_engine.bank import bank_from_records
+from adaptive_engine.irt import estimation
 
 # ----------------------------------------------------------------------------------------
 # independent reference model (scalar theta, plain Python / numpy)

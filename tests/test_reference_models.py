@@ -1,7 +1,7 @@
 """The item response models checked against published formulas, written out independently.
 
 Each check names its source.  The formulas are coded here from the publications, not from
-:mod:`adaptive_engine.models`; numerical differentiation and ``scipy`` serve as further
+:mod:`adaptive_engine.irt.models`; numerical differentiation and ``scipy`` serve as further
 oracles.
 """
 
@@ -14,8 +14,7 @@ from hypothesis import strategies as st
 from scipy.special import expit
 from scipy.stats import norm
 
-from adaptive_engine import models
-
+from adaptive_engine.irt import models
 from strategies import graded_items, ordered_thresholds, partial_credit_items, records_to_parameters, thetas
 
 SETTINGS = settings(max_examples=40, deadline=None)

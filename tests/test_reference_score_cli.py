@@ -25,9 +25,15 @@ from click.testing import CliRunner
 from scipy import integrate, optimize, stats
 
 from adaptive_engine.cli import main
-
-from test_reference_estimation import (draw_pattern, global_max, random_items, ref_gradient,
-                                       ref_information, ref_loglik, ref_warm_j)
+from test_reference_estimation import (
+    draw_pattern,
+    global_max,
+    random_items,
+    ref_gradient,
+    ref_information,
+    ref_loglik,
+    ref_warm_j,
+)
 
 PRIOR_MEAN, PRIOR_SD = 0.3, 1.2
 TOL = 1e-4

@@ -11,12 +11,18 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from adaptive_engine import metrics, models, simulation
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design import (
-    CutScore, Design, Reporting, SprtRule, Stopping,
+    CutScore,
+    Design,
+    Reporting,
+    SprtRule,
+    Stopping,
 )
-from adaptive_engine.exposure_calibration import calibrate_sympson_hetter, with_parameters
+from adaptive_engine.irt import models
+from adaptive_engine.simulation import engine as simulation
+from adaptive_engine.simulation import metrics
+from adaptive_engine.simulation.exposure_tuning import calibrate_sympson_hetter, with_parameters
 
 
 def bank_2pl(n, *, seed, a=(0.8, 2.0), b_sd=1.0, b_mean=0.0):

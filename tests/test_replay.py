@@ -15,14 +15,15 @@ import attrs
 import numpy as np
 import pytest
 
-from adaptive_engine import kernel, randomness
 from adaptive_engine.bank import load_bank
-from adaptive_engine.context import build_context
-from adaptive_engine.design_file import read_design
-from adaptive_engine.exposure_calibration import with_parameters
-from adaptive_engine.session import ProcessCache, session_result, show_session, start_session, submit_answer
-from adaptive_engine.simulation import run_chunk
-from adaptive_engine.store import open_store
+from adaptive_engine.design.toml_file import read_design
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
+from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.live.session import ProcessCache, session_result, show_session, start_session, submit_answer
+from adaptive_engine.live.store import open_store
+from adaptive_engine.simulation.engine import run_chunk
+from adaptive_engine.simulation.exposure_tuning import with_parameters
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -1,4 +1,4 @@
-"""Tests of adaptive_engine.reporting: the final report of each examinee."""
+"""Tests of adaptive_engine.kernel.final_report: the final report of each examinee."""
 
 from __future__ import annotations
 
@@ -12,9 +12,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from adaptive_engine import design
+from adaptive_engine.design import types as design
 from adaptive_engine.errors import AdaptiveEngineError, DesignError
-from adaptive_engine.reporting import final_report, final_reports, round_half_away, scaled_score
+from adaptive_engine.kernel.final_report import final_report, final_reports, round_half_away, scaled_score
 
 CUT = design.CutScore(name="licence", theta=0.0, above="pass", below="fail")
 

@@ -1,4 +1,4 @@
-"""The long response file reader (adaptive_engine.responses): located errors, padding."""
+"""The long response file reader (adaptive_engine.bank.responses): located errors, padding."""
 
 from __future__ import annotations
 
@@ -8,8 +8,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from adaptive_engine.bank import bank_from_records
+from adaptive_engine.bank.responses import ResponseTable, read_responses, read_responses_text
 from adaptive_engine.errors import AdaptiveEngineError, ResponseDataError
-from adaptive_engine.responses import ResponseTable, read_responses, read_responses_text
 
 HEADER = "person_id,item_id,response\n"
 
@@ -162,7 +162,8 @@ def test_vectorised_reader_equals_the_csv_module(pairs, responses, layout, blank
         if blank_every and k % blank_every == 0:
             lines.append("" if k % 2 else " , ,")  # blank rows are skipped, even with commas
     text = "\n".join(lines) + ("\n" if final_newline else "")
-    if any(p.strip() == "" for pair in pairs for p in pair) or len({(p.strip(), i.strip()) for p, i in pairs}) < len(pairs):
+    distinct = {(p.strip(), i.strip()) for p, i in pairs}
+    if any(p.strip() == "" for pair in pairs for p in pair) or len(distinct) < len(pairs):
         return
     table = read_responses_text(text)
     persons, items, rows = _oracle(text)

@@ -10,12 +10,19 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from adaptive_engine import kernel, randomness, selection
-from adaptive_engine.context import build_context
 from adaptive_engine.design import (
-    AreaRule, Blueprint, Design, Exposure, Opening, Selection, Stopping,
+    AreaRule,
+    Blueprint,
+    Design,
+    Exposure,
+    Opening,
+    Selection,
+    Stopping,
 )
-
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
+from adaptive_engine.kernel import selection
+from adaptive_engine.kernel.prepared import build_context
 from kernel_support import structured_bank
 
 
@@ -172,7 +179,7 @@ def test_b_blocking_spreads_every_stratum_over_the_difficulty_range():
 
 def test_priority_index_weights_by_hand():
     # Cheng & Chang (2009) upper-bound factor (u - x) / u; the lower-bound boost
-    # 1 + (l - x) / l is this project's own (see adaptive_engine.selection).
+    # 1 + (l - x) / l is this project's own (see adaptive_engine.kernel.selection).
     bank = dichotomous_bank()
     rules = (AreaRule(name="alpha", min=2, max=4), AreaRule(name="beta", max=5), AreaRule(name="gamma", min=1))
     design = Design(blueprint=Blueprint(method="max_priority_index", areas=rules),

@@ -1,4 +1,4 @@
-"""Tests of the live session controller (adaptive_engine.session) on the demo banks.
+"""Tests of the live session controller (adaptive_engine.live.session) on the demo banks.
 
 The demo banks and designs are test input only.  What is checked against outside sources:
 the content rules (never an item twice, enemy items, blueprint maximums, minimum length)
@@ -17,16 +17,24 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from adaptive_engine import kernel, models, randomness
 from adaptive_engine.bank import load_bank
-from adaptive_engine.context import build_context
-from adaptive_engine.design_file import parse_design, read_design
+from adaptive_engine.design.toml_file import parse_design, read_design
 from adaptive_engine.errors import AdaptiveEngineError, DesignError, SessionError
-from adaptive_engine.session import (
-    ProcessCache, exposure_rates, list_sessions, pending_item, session_result, show_session,
-    start_session, submit_answer,
+from adaptive_engine.irt import models
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
+from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.live.session import (
+    ProcessCache,
+    exposure_rates,
+    list_sessions,
+    pending_item,
+    session_result,
+    show_session,
+    start_session,
+    submit_answer,
 )
-from adaptive_engine.store import open_store
+from adaptive_engine.live.store import open_store
 
 ROOT = Path(__file__).resolve().parents[1]
 LICENSING = read_design(ROOT / "simulations" / "licensing_exam.toml")
@@ -458,7 +466,8 @@ PRIOR_REFUSALS = [
 ]
 
 
-@pytest.mark.parametrize("kwargs,name", PRIOR_REFUSALS, ids=[f"{name}-{i}" for i, (_, name) in enumerate(PRIOR_REFUSALS)])
+@pytest.mark.parametrize("kwargs,name", PRIOR_REFUSALS,
+                         ids=[f"{name}-{i}" for i, (_, name) in enumerate(PRIOR_REFUSALS)])
 def test_examinee_priors_outside_sane_ranges_are_refused(store, kwargs, name):
     before = store.dump()
     with pytest.raises(SessionError) as info:

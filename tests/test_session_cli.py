@@ -27,7 +27,7 @@ from click.testing import CliRunner
 from scipy import integrate, stats
 
 from adaptive_engine.cli import main
-from adaptive_engine.store import open_store
+from adaptive_engine.live.store import open_store
 
 ROOT = Path(__file__).resolve().parents[1]
 MINIMAL = ROOT / "simulations" / "minimal.toml"

@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 
 from adaptive_engine.bank import load_bank
-from adaptive_engine.design_file import read_design
-from adaptive_engine.session import start_session, submit_answer
-from adaptive_engine.store import bank_content, open_store
+from adaptive_engine.design.toml_file import read_design
+from adaptive_engine.live.session import start_session, submit_answer
+from adaptive_engine.live.store import bank_content, open_store
 
 ROOT = Path(__file__).resolve().parents[1]
 DESIGN_PATH = ROOT / "simulations" / "licensing_exam.toml"
@@ -100,7 +100,7 @@ def _refused_start(db, opened, go, mode, out):
     it believed it had created.  ``mode`` says how the start is refused: by the request
     (a prior SD of 0, known before any store is needed) or by the store itself.
     """
-    from adaptive_engine import store as store_module
+    from adaptive_engine.live import store as store_module
     from adaptive_engine.errors import SessionError
 
     real_init = store_module.SessionStore.__init__

@@ -9,6 +9,7 @@ new store object) and finish exactly like an uninterrupted one.
 
 from __future__ import annotations
 
+import os
 import signal
 import subprocess
 import sys
@@ -18,18 +19,20 @@ import numpy as np
 import pytest
 
 from adaptive_engine.bank import load_bank
-from adaptive_engine.design_file import read_design
-from adaptive_engine.session import ProcessCache, start_session, submit_answer
-from adaptive_engine.store import open_store
+from adaptive_engine.design.toml_file import read_design
+from adaptive_engine.live.session import ProcessCache, start_session, submit_answer
+from adaptive_engine.live.store import open_store
 
 ROOT = Path(__file__).resolve().parents[1]
+# the child runs this checkout's package, whatever copy is installed
+CHILD_ENV = dict(os.environ, PYTHONPATH=os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])))
 DESIGN = read_design(ROOT / "simulations" / "licensing_exam.toml")
 BANK = load_bank(ROOT / "item_banks" / "meridian_valley_operator.csv")
 
 KILL_IN_ANSWER = """
 import os, signal, sys
-from adaptive_engine.store import open_store
-from adaptive_engine.session import submit_answer
+from adaptive_engine.live.store import open_store
+from adaptive_engine.live.session import submit_answer
 store = open_store(sys.argv[1])
 store.before_commit = lambda: os.kill(os.getpid(), signal.SIGKILL)
 submit_answer(store, sys.argv[2], sys.argv[3], int(sys.argv[4]))
@@ -40,9 +43,9 @@ KILL_IN_START = """
 import os, signal, sys
 from pathlib import Path
 from adaptive_engine.bank import load_bank
-from adaptive_engine.design_file import read_design
-from adaptive_engine.store import open_store
-from adaptive_engine.session import start_session
+from adaptive_engine.design import read_design
+from adaptive_engine.live.store import open_store
+from adaptive_engine.live.session import start_session
 store = open_store(sys.argv[1])
 store.before_commit = lambda: os.kill(os.getpid(), signal.SIGKILL)
 start_session(store, read_design(sys.argv[2]), load_bank(sys.argv[3]), seed=77, session_id="killed-at-start")
@@ -83,7 +86,7 @@ def test_kill_inside_answer_transaction_leaves_store_unchanged_and_session_resum
         reply = submit_answer(store, "s-1", reply["item_id"], answers[k], cache=cache)
     before = store.dump()
     child = subprocess.run([sys.executable, "-c", KILL_IN_ANSWER, str(db), "s-1", reply["item_id"],
-                            str(answers[kill_after])], capture_output=True, text=True, timeout=120)
+                            str(answers[kill_after])], env=CHILD_ENV, capture_output=True, text=True, timeout=120)
     assert child.returncode == -signal.SIGKILL, child.stderr
     assert "committed" not in child.stdout
     store.close()
@@ -109,7 +112,7 @@ def test_kill_inside_start_transaction_leaves_no_trace(tmp_path):
     child = subprocess.run([sys.executable, "-c", KILL_IN_START, str(db),
                             str(ROOT / "simulations" / "licensing_exam.toml"),
                             str(ROOT / "item_banks" / "meridian_valley_operator.csv")],
-                           capture_output=True, text=True, timeout=120)
+                           env=CHILD_ENV, capture_output=True, text=True, timeout=120)
     assert child.returncode == -signal.SIGKILL, child.stderr
     with open_store(db) as store:
         assert _integrity(store) == "ok"

@@ -12,11 +12,14 @@ import pytest
 from click.testing import CliRunner
 from scipy import stats
 
-from adaptive_engine import examinees, metrics, simulation
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.cli import main
 from adaptive_engine.design import Design, Exposure, Stopping
 from adaptive_engine.errors import AdaptiveEngineError
+from adaptive_engine.simulation import engine as simulation
+from adaptive_engine.simulation import metrics
+from adaptive_engine.simulation import population as examinees
+from optional_extras import requires_matplotlib
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -166,7 +169,7 @@ def _fit_report(tmp_path, bank, ses, extra_rows=""):
 
 
 def test_read_standard_errors_from_a_fit_report(tmp_path):
-    from adaptive_engine.simulation_files import read_standard_errors
+    from adaptive_engine.simulation.study import read_standard_errors
 
     bank = small_bank(n=6)
     nan = np.full(6, np.nan)
@@ -189,7 +192,7 @@ def test_read_standard_errors_from_a_fit_report(tmp_path):
     ("t001,3PL,10,1,0.1,0,0.1,,,,", "fit_report.csv line 7, item t001"),  # listed twice
 ])
 def test_perturb_from_errors_are_located(tmp_path, extra, where):
-    from adaptive_engine.simulation_files import read_standard_errors
+    from adaptive_engine.simulation.study import read_standard_errors
 
     bank = small_bank(n=6)
     ses = {k: np.full(5, 0.1) for k in "abcd"} | {"thresholds": np.zeros((5, 0))}
@@ -267,6 +270,17 @@ def _shipped():
     return str(design), str(bank)
 
 
+@requires_matplotlib
+def test_the_report_embeds_its_figures(tmp_path):
+    design, bank = _shipped()
+    out = tmp_path / "study"
+    result = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "30", "--seed", "4",
+                                       "--out", str(out), "--no-administrations"])
+    assert result.exit_code == 0, result.output
+    body = (out / "report.html").read_text().split("<body>")[1]
+    assert body.count("<img") >= 3 and "data:image/png;base64," in body and "left out" not in body
+
+
 def test_simulate_cli_writes_every_file(tmp_path):
     design, bank = _shipped()
     out = tmp_path / "study"
@@ -291,7 +305,7 @@ def test_simulate_cli_writes_every_file(tmp_path):
     first = [a for a in admin if a["examinee"] == "0"]
     assert [int(a["position"]) for a in first] == list(range(1, len(first) + 1))
     html = (out / "report.html").read_text()
-    assert "<img" in html and "http" not in html.split("<body>")[1]  # self-contained
+    assert "http" not in html.split("<body>")[1]  # self-contained
     items = list(csv.DictReader((out / "items.csv").open()))
     assert max(float(i["exposure_rate"]) for i in items) == pytest.approx(summary["max_exposure"], abs=1e-6)
     assert not [p for p in out.iterdir() if p.name.startswith(".")]  # no staging left
@@ -371,7 +385,7 @@ def test_tune_cli(tmp_path):
 
 
 def test_tuning_report_says_when_the_plot_is_left_out():
-    from adaptive_engine.report_html import tuning_report_html
+    from adaptive_engine.simulation.html_report import tuning_report_html
 
     rows = [{"stopping.se": 0.3, "mean_length": 10.0, "rmse": 0.3, "frontier": True}]
     assert "left out" in tuning_report_html(rows, None, title="t")
@@ -380,7 +394,7 @@ def test_tuning_report_says_when_the_plot_is_left_out():
 
 
 def test_efficient_frontier():
-    from adaptive_engine.tuning import efficient_frontier
+    from adaptive_engine.simulation.tuning import efficient_frontier
 
     front = efficient_frontier([10, 20, 20, 30], [0.5, 0.3, 0.4, 0.3], [0.9, 0.9, 0.9, 0.95])
     assert front.tolist() == [True, True, False, True]
@@ -436,7 +450,7 @@ def test_progress_inside_a_single_chunk():
 
 
 def test_progress_of_an_exposure_calibration():
-    from adaptive_engine.exposure_calibration import calibrate_sympson_hetter
+    from adaptive_engine.simulation.exposure_tuning import calibrate_sympson_hetter
 
     bank = small_bank()
     calls = []

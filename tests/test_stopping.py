@@ -1,4 +1,4 @@
-"""Tests of adaptive_engine.stopping: SPRT, confidence-interval classification, predicted
+"""Tests of adaptive_engine.kernel.stopping: SPRT, confidence-interval classification, predicted
 SE reduction, and how the stop reasons combine."""
 
 from __future__ import annotations
@@ -12,11 +12,11 @@ from hypothesis import strategies as st
 from scipy import integrate, stats
 from scipy.special import expit, softmax
 
-from adaptive_engine import design, stopping
-from adaptive_engine.ability import DEFAULT_GRID, normal_log_prior, posterior_mean_sd
+from adaptive_engine.design import types as design
 from adaptive_engine.errors import AdaptiveEngineError
-from adaptive_engine.models import log_probabilities, outer
-
+from adaptive_engine.irt.models import log_probabilities, outer
+from adaptive_engine.irt.posterior import DEFAULT_GRID, normal_log_prior, posterior_mean_sd
+from adaptive_engine.kernel import stopping
 from strategies import any_items, records_to_parameters
 
 

@@ -17,9 +17,9 @@ import numpy as np
 import pytest
 
 from adaptive_engine.bank import load_bank
-from adaptive_engine.design_file import design_to_toml, read_design
+from adaptive_engine.design.toml_file import design_to_toml, read_design
 from adaptive_engine.errors import SessionError
-from adaptive_engine.store import bank_content, design_content, open_store
+from adaptive_engine.live.store import bank_content, design_content, open_store
 
 ROOT = Path(__file__).resolve().parents[1]
 BANK = load_bank(ROOT / "item_banks" / "meridian_valley_operator.csv")

@@ -11,10 +11,10 @@ import attrs
 import numpy as np
 import scipy.sparse as sp
 
-from .. import models
-from ..bank import ItemBank, canonical_model
+from ..bank.item_bank import ItemBank, canonical_model
+from ..bank.responses import ResponseTable
 from ..errors import CalibrationError, Problem
-from ..responses import ResponseTable
+from ..irt import models
 
 
 @attrs.frozen(eq=False, kw_only=True)

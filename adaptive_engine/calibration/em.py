@@ -24,10 +24,10 @@ import attrs
 import numpy as np
 from scipy.special import logsumexp
 
-from .. import models
-from ..bank import DEFAULT_AREA, ItemBank
+from ..bank.item_bank import DEFAULT_AREA, ItemBank
+from ..bank.responses import ResponseTable
 from ..errors import CalibrationError
-from ..responses import ResponseTable
+from ..irt import models
 from .data import CalibrationData, prepare_data
 from .item_forms import ItemGroup, category_jacobian
 from .m_step import fisher_steps, shared_slope_step
@@ -643,7 +643,7 @@ def _covariances(data, layout, scores, neg_prior_hess, n_params):
     """A function: parameter numbers -> their variances (diagonal of the inverse XPD)."""
     if data.n_persons * n_params <= _FULL_CROSS_PRODUCT_LIMIT:
         person_scores = np.zeros((data.n_persons, n_params))
-        for (g, eta, cols, numbers), (which, sc) in zip(layout, scores):
+        for (g, _eta, _cols, numbers), (which, sc) in zip(layout, scores):
             local = np.full(data.n_items, -1)
             local[g.rows] = np.arange(g.rows.size)
             target = numbers[local[data.item[which]]]  # (N_g, m)
@@ -654,7 +654,7 @@ def _covariances(data, layout, scores, neg_prior_hess, n_params):
         variances = np.diag(np.linalg.pinv(info))
         return lambda numbers: variances[numbers]
     blocks = {}
-    for (g, eta, cols, numbers), (which, sc) in zip(layout, scores):
+    for (g, _eta, cols, numbers), (which, sc) in zip(layout, scores):
         local = np.full(data.n_items, -1)
         local[g.rows] = np.arange(g.rows.size)
         m = cols.size

@@ -31,8 +31,8 @@ import numpy as np
 from scipy.special import logsumexp
 from scipy.stats import chi2
 
-from .. import models
-from ..bank import ItemBank
+from ..bank.item_bank import ItemBank
+from ..irt import models
 
 #: estimated parameters per item, by model (the shared slope of 1PL items is not counted)
 MODEL_PARAMETERS = {"1PL": 1, "2PL": 2, "3PL": 3, "4PL": 4}

@@ -18,7 +18,7 @@ import attrs
 import numpy as np
 from scipy.special import expit, log_expit, logit
 
-from .. import models
+from ..irt import models
 
 DICHOTOMOUS_MODELS = ("1PL", "2PL", "3PL", "4PL")
 #: free columns of a dichotomous item, by model (slope column 0 excluded for 1PL: its
@@ -187,7 +187,7 @@ def log_category_probabilities(group: ItemGroup, eta: np.ndarray, grid: np.ndarr
     """Log category probabilities, shape (r, G, C), for the M-step objective.
 
     Dichotomous items take a direct path (the objective is evaluated many times per cycle
-    in the line search); polytomous items use :func:`adaptive_engine.models.log_probabilities`.
+    in the line search); polytomous items use :func:`adaptive_engine.irt.models.log_probabilities`.
     """
     if group.family != models.DICHOTOMOUS:
         params = group.parameters(eta, scaling)

@@ -6,16 +6,15 @@ name and moves it into place, so bad input never leaves a half-written output.
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
 import attrs
 
-from ..bank import load_bank
-from ..bank_io import write_bank
+from ..bank.files import write_bank
+from ..bank.item_bank import load_bank
+from ..bank.responses import read_responses
 from ..errors import CalibrationError
-from ..responses import read_responses
+from ..files import check_target, write_text
 from .em import CalibrationSettings, calibrate_responses
 from .item_fit import fit_for_result, item_report_rows, rows_to_csv
 from .linking import link_banks
@@ -27,14 +26,7 @@ _BANK_SUFFIXES = (".csv", ".json", ".db", ".sqlite", ".sqlite3")
 def _check_folder(path, option: str) -> Path:
     """Refuse an output whose folder is missing -- before any work is done, and naming the
     folder (a late failure would name the temporary file the writer uses instead)."""
-    path = Path(path)
-    folder = path.parent
-    if not folder.is_dir():
-        what = "is not a folder" if folder.exists() else "does not exist"
-        raise CalibrationError(f"the folder {str(folder)!r} {what}; create it first", location=f"{option} {path}")
-    if path.is_dir():
-        raise CalibrationError("is a folder, not a file name", location=f"{option} {path}")
-    return path
+    return check_target(path, location=f"{option} {path}")
 
 
 def _check_bank_target(path, option: str) -> Path:
@@ -45,24 +37,11 @@ def _check_bank_target(path, option: str) -> Path:
     return _check_folder(path, option)
 
 
-def _write_text_atomic(path: Path, text: str) -> None:
-    folder = path.resolve().parent
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=folder)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def _write_outputs(bank, bank_path: Path | None, reports: dict[Path, str]) -> None:
     if bank_path is not None:
         write_bank(bank, bank_path)
     for path, text in reports.items():
-        _write_text_atomic(path, text)
+        write_text(path, text)
 
 
 def calibrate_file(
@@ -125,22 +104,29 @@ def link_files(new_path, *, to, out, method: str, anchors=None, max_difficulty_s
     return summary
 
 
-def pretest_files(db_path, *, out, bank_id=None, bank_path=None, rules: PromotionRules | None = None,
-                  settings: CalibrationSettings | None = None, report=None,
-                  include_not_ready: bool = False) -> dict:
-    """Calibrate the pretest items of a session store; write them as a bank (and a report).
-
-    The bank file holds only the items ready for promotion unless ``include_not_ready``
-    (a bank file has no place for readiness, so an unready item in it would look ready);
-    the report lists every item with its ``ready`` flag and reasons.  When no item is ready
-    and ``include_not_ready`` is not set, no bank file is written and the summary's
-    ``warnings`` say so.
-    """
+def check_pretest_outputs(*, out, report=None) -> tuple[Path, Path | None]:
+    """Check the outputs of :func:`pretest_files` before anything is read or computed."""
     out = _check_bank_target(out, "--out")
     if report:
         report = _check_folder(report, "--report")
-    bank = load_bank(bank_path) if bank_path else None
-    result = calibrate_pretest(db_path, bank_id=bank_id, bank=bank, rules=rules, settings=settings)
+    return out, report or None
+
+
+def pretest_files(events, *, bank, bank_id: str, out, rules: PromotionRules | None = None,
+                  settings: CalibrationSettings | None = None, report=None,
+                  include_not_ready: bool = False) -> dict:
+    """Calibrate the pretest items of a bank's sessions; write them as a bank (and a report).
+
+    ``events``, ``bank`` and ``bank_id`` are what
+    :meth:`adaptive_engine.live.store.SessionStore.bank_answers` reads from a session store
+    (see :func:`.pretest.calibrate_pretest`).  The bank file holds only the items ready for
+    promotion unless ``include_not_ready`` (a bank file has no place for readiness, so an
+    unready item in it would look ready); the report lists every item with its ``ready``
+    flag and reasons.  When no item is ready and ``include_not_ready`` is not set, no bank
+    file is written and the summary's ``warnings`` say so.
+    """
+    out, report = check_pretest_outputs(out=out, report=report)
+    result = calibrate_pretest(events, bank=bank, bank_id=bank_id, rules=rules, settings=settings)
     reports = {}
     if report:
         reports[Path(report)] = rows_to_csv([{k: ("" if isinstance(v, float) and v != v else v)

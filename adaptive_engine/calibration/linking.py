@@ -25,9 +25,9 @@ import attrs
 import numpy as np
 from scipy.optimize import minimize
 
-from .. import models
-from ..bank import ItemBank
+from ..bank.item_bank import ItemBank
 from ..errors import CalibrationError, Problem
+from ..irt import models
 
 METHODS = ("mean_mean", "mean_sigma", "haebara", "stocking_lord")
 
@@ -81,7 +81,8 @@ class LinkResult:
 
     def summary(self) -> dict:
         return dict(method=self.method, slope=self.slope, intercept=self.intercept,
-                    anchors=int(self.drift.item_ids.size), drifted=[str(i) for i in self.drift.item_ids[self.drift.drifted]],
+                    anchors=int(self.drift.item_ids.size),
+                    drifted=[str(i) for i in self.drift.item_ids[self.drift.drifted]],
                     items=len(self.linked), criterion=self.criterion, anchor_drift=self.drift.rows())
 
 

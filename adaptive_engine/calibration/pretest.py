@@ -1,8 +1,8 @@
 """Pretest calibration from live sessions: fixed-parameter calibration on the bank's scale.
 
 Pretest items are seeded unscored into live tests.  The session store's event log holds
-every answer (``events.kind = 'answer'``, ``scored`` 1 for operational, 0 for pretest items)
-of the sessions of a bank (``sessions.bank_id``).  Here:
+every answer of the sessions of a bank, each marked scored (operational item) or not
+(pretest item).  Here:
 
 1. each session's posterior on an ability grid is computed from its *operational* answers
    only, with the bank's values held fixed, under a normal population whose mean and SD
@@ -19,25 +19,24 @@ of the sessions of a bank (``sessions.bank_id``).  Here:
 The pretest M-step runs with the bank's scaling constant D, and in a Rasch-like bank the
 pretest items keep the operational items' common slope (:func:`operational_common_slopes`).
 
-The store is opened read-only; only the tables and columns of the session-store contract
-are read (``sessions``: session_id, bank_id; ``banks``: bank_id, content; ``events``:
-event_id, session_id, seq, kind, item_id, response, scored).
+Calibration reads no store: it takes the answers as plain data, one
+``(event_id, session_id, item_id, response, scored)`` per answer in session order, as
+:meth:`adaptive_engine.live.store.SessionStore.bank_answers` gives them (the command line
+does the reading).
 """
 
 from __future__ import annotations
 
 import math
-import sqlite3
-from pathlib import Path
 
 import attrs
 import numpy as np
 import scipy.sparse as sp
 from scipy.special import logsumexp
 
-from .. import models
-from ..bank import ItemBank, read_bank_json_text
+from ..bank.item_bank import ItemBank
 from ..errors import CalibrationError, Problem
+from ..irt import models
 from .data import CalibrationData
 from .em import CalibrationSettings, bounded, calibrate_data
 from .item_fit import grouped_posterior_fit, parameters_per_item
@@ -95,8 +94,8 @@ class PretestResult:
 
 
 @attrs.frozen(eq=False, kw_only=True)
-class StoreAnswers:
-    """Answers of one bank's sessions, from the event log.
+class SessionAnswers:
+    """Answers of one bank's sessions, first answer per session and item, as arrays.
 
     Attributes
     ----------
@@ -112,62 +111,17 @@ class StoreAnswers:
     event_id: np.ndarray
 
 
-def _connect(path) -> sqlite3.Connection:
-    path = Path(path)
-    if not path.exists():
-        raise CalibrationError(f"no such session store: {path}", location=str(path))
-    try:
-        conn = sqlite3.connect(f"file:{path.as_posix()}?mode=ro", uri=True)
-        tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
-    except sqlite3.DatabaseError as exc:
-        raise CalibrationError(f"not a session store ({exc})", location=str(path)) from None
-    missing = [t for t in ("sessions", "banks", "events") if t not in tables]
-    if missing:
-        conn.close()
-        raise CalibrationError(f"not a session store: table {missing[0]!r} is missing", location=str(path))
-    return conn
+def answers_from_events(events, bank_id: str) -> SessionAnswers:
+    """Check the answer events of a bank's sessions and keep the first answer per session and item.
 
-
-def load_store_bank(path, bank_id: str) -> ItemBank:
-    """The bank stored under ``bank_id`` in the session store."""
-    conn = _connect(path)
-    try:
-        row = conn.execute("SELECT content FROM banks WHERE bank_id = ?", (bank_id,)).fetchone()
-    finally:
-        conn.close()
-    if row is None:
-        raise CalibrationError(f"no bank with id {bank_id!r} in the store", location="--bank-id")
-    return read_bank_json_text(row[0], source=f"store bank {bank_id}")
-
-
-def find_bank_id(path, bank: ItemBank) -> str:
-    """The store's id of ``bank`` (the stored content must be the same bank)."""
-    from ..store import bank_content
-
-    bank_id, _ = bank_content(bank)
-    conn = _connect(path)
-    try:
-        found = conn.execute("SELECT 1 FROM banks WHERE bank_id = ?", (bank_id,)).fetchone()
-    finally:
-        conn.close()
-    if found is None:
-        raise CalibrationError("this bank is not in the store (its content differs from every stored bank); "
-                               "give --bank-id", location="--bank")
-    return bank_id
-
-
-def read_store_answers(path, bank_id: str) -> StoreAnswers:
-    """Every answer event of the sessions of ``bank_id``, first answer per session and item."""
-    conn = _connect(path)
-    try:
-        rows = conn.execute(
-            "SELECT e.event_id, e.session_id, e.item_id, e.response, e.scored FROM events e "
-            "JOIN sessions s ON s.session_id = e.session_id "
-            "WHERE s.bank_id = ? AND e.kind = 'answer' ORDER BY e.session_id, e.seq",
-            (bank_id,),
-        ).fetchall()
-    finally:
-        conn.close()
+    Parameters
+    ----------
+    events : sequence of (event_id, session_id, item_id, response, scored)
+        In session and sequence order (:meth:`SessionStore.bank_answers`).
+    bank_id : str
+        For the messages.
+    """
+    rows = list(events)
     if not rows:
         raise CalibrationError(f"no answers recorded for bank {bank_id!r}", location="session store")
     problems = []
@@ -186,12 +140,12 @@ def read_store_answers(path, bank_id: str) -> StoreAnswers:
         raise CalibrationError(problems[:50])
     event_id, session_id, item_id, response, scored = (np.array(c, dtype=object) for c in zip(*keep))
     session_ids, session = np.unique(session_id.astype(str), return_inverse=True)
-    return StoreAnswers(session_ids=session_ids.astype(object), session=session.astype(np.int64),
-                        item_id=item_id, response=response.astype(np.int64), scored=scored.astype(np.int64),
-                        event_id=event_id.astype(np.int64))
+    return SessionAnswers(session_ids=session_ids.astype(object), session=session.astype(np.int64),
+                          item_id=item_id, response=response.astype(np.int64), scored=scored.astype(np.int64),
+                          event_id=event_id.astype(np.int64))
 
 
-def operational_log_posterior(bank: ItemBank, answers: StoreAnswers, rows: np.ndarray, grid):
+def operational_log_posterior(bank: ItemBank, answers: SessionAnswers, rows: np.ndarray, grid):
     """Each session's log posterior from its operational answers, and the population.
 
     The examinees of live sessions need not match the bank's reference population, so the
@@ -231,10 +185,10 @@ def operational_log_posterior(bank: ItemBank, answers: StoreAnswers, rows: np.nd
 
 
 def calibrate_pretest(
-    store_path,
+    events,
     *,
-    bank_id: str | None = None,
-    bank: ItemBank | None = None,
+    bank: ItemBank,
+    bank_id: str,
     rules: PromotionRules | None = None,
     settings: CalibrationSettings | None = None,
 ) -> PretestResult:
@@ -242,11 +196,14 @@ def calibrate_pretest(
 
     Parameters
     ----------
-    store_path : path of the SQLite session store
-    bank_id : str, optional
-        Which bank's sessions; found from ``bank`` when not given.
-    bank : ItemBank, optional
-        The bank (default: the store's copy under ``bank_id``).
+    events : sequence of (event_id, session_id, item_id, response, scored)
+        Every answer of the bank's sessions in session and sequence order, ``scored`` 1 for
+        operational and 0 for pretest items (:meth:`SessionStore.bank_answers` reads them
+        from a session store).
+    bank : ItemBank
+        The bank the sessions ran on.
+    bank_id : str
+        Its id in the store (reported in the summary and the messages).
     rules : PromotionRules
     settings : CalibrationSettings
         Priors, tolerance and grid size (``min_answers`` is not used here: items below
@@ -254,16 +211,10 @@ def calibrate_pretest(
     """
     rules = rules or PromotionRules()
     settings = settings or CalibrationSettings()
-    if bank_id is None and bank is None:
-        raise CalibrationError("give a bank id or a bank", location="pretest")
-    if bank_id is None:
-        bank_id = find_bank_id(store_path, bank)
-    if bank is None:
-        bank = load_store_bank(store_path, bank_id)
     # the new items must be in the bank's own units: the operational posteriors use its D,
     # so the pretest M-step must too (else the slopes come out D times too large)
     settings = attrs.evolve(settings, scaling=bank.scaling)
-    answers = read_store_answers(store_path, bank_id)
+    answers = answers_from_events(events, bank_id)
     lookup = bank.index_of
     rows = np.array([lookup.get(i, -1) for i in answers.item_id], dtype=np.int64)
     problems = [Problem(f"event {answers.event_id[k]}", f"item {answers.item_id[k]!r} is not in the bank")

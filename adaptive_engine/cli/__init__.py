@@ -9,12 +9,13 @@ Commands live in one module per concern and register themselves on :data:`main`.
 
 from __future__ import annotations
 
-from ._common import main  # noqa: F401  (the group every command module registers on)
-
 # Each import registers that module's commands on ``main``.
-from . import bank_commands  # noqa: F401,E402
-from . import design_commands  # noqa: F401,E402
-from . import score_commands  # noqa: F401,E402
-from . import simulate_commands  # noqa: F401,E402
-from . import session_commands  # noqa: F401,E402
-from . import calibrate_commands  # noqa: F401,E402
+from . import (
+    bank_commands,  # noqa: F401,E402
+    calibrate_commands,  # noqa: F401,E402
+    design_commands,  # noqa: F401,E402
+    score_commands,  # noqa: F401,E402
+    session_commands,  # noqa: F401,E402
+    simulate_commands,  # noqa: F401,E402
+)
+from ._common import main  # noqa: F401  (the group every command module registers on)

@@ -4,8 +4,9 @@ from __future__ import annotations
 
 import click
 
-from .. import bank_io, bank_report
-from ..bank import load_bank
+from ..bank import files as bank_io
+from ..bank import summary as bank_report
+from ..bank.item_bank import load_bank
 from ._common import SCALING_HELP, echo_json, main, report_errors
 
 _BANK_PATH = click.Path(dir_okay=False, path_type=str)

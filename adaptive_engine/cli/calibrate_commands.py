@@ -143,12 +143,16 @@ def pretest_calibrate_command(db_path, bank_id, bank_path, out, include_not_read
     """
     if not bank_id and not bank_path:
         raise click.UsageError("give --bank-id or --bank")
-    from ..calibration.jobs import pretest_files
+    from ..bank.item_bank import load_bank
+    from ..calibration.jobs import check_pretest_outputs, pretest_files
     from ..calibration.pretest import PromotionRules
+    from ..live.store import read_bank_answers
 
     rules = PromotionRules(min_answers=min_answers, max_se=max_se, min_fit_p=min_fit_p)
     settings = _settings(prior=(), no_priors=no_priors, max_iterations=max_iterations)
-    summary = pretest_files(db_path, out=out, bank_id=bank_id, bank_path=bank_path, rules=rules,
+    check_pretest_outputs(out=out, report=report)  # before the store is read
+    stored = read_bank_answers(db_path, bank_id=bank_id, bank=load_bank(bank_path) if bank_path else None)
+    summary = pretest_files(stored.events, bank=stored.bank, bank_id=stored.bank_id, out=out, rules=rules,
                             settings=settings, report=report, include_not_ready=include_not_ready)
     for warning in summary["warnings"]:
         click.echo(f"warning: {warning}", err=True)

@@ -22,7 +22,7 @@ def check(design_file, bank_file):
 
     Exit code 2 lists every problem as LOCATION: problem.
     """
-    from ..design_check import check_bank_file
+    from ..design.bank_fit import check_bank_file
 
     for line in check_bank_file(design_file, bank_file):
         click.echo(line)
@@ -33,6 +33,6 @@ def check(design_file, bank_file):
 @report_errors
 def show(design_file):
     """Print DESIGN_FILE with every default filled in, as TOML."""
-    from ..design_file import read_design, design_to_toml
+    from ..design.toml_file import design_to_toml, read_design
 
     click.echo(design_to_toml(read_design(design_file)), nl=False)

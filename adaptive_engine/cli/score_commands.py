@@ -8,10 +8,10 @@ import math
 
 import click
 
-from ..bank import load_bank
+from ..bank.item_bank import load_bank
+from ..bank.responses import read_responses
 from ..errors import AdaptiveEngineError
-from ..estimation import METHODS, score_responses
-from ..responses import read_responses
+from ..irt.estimation import METHODS, score_responses
 from ._common import SCALING_HELP, echo_json, main, report_errors
 
 #: The CSV columns of ``score``; ``--with-status`` appends ``status``.

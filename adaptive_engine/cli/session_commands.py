@@ -81,10 +81,10 @@ def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd)
 
     Output: {"session_id": ..., "item_id": ..., "item": {...}, "done": false, ...}.
     """
-    from ..bank import load_bank
-    from ..design_file import read_design
-    from ..session import commit_start, prepare_start
-    from ..store import open_store
+    from ..bank.item_bank import load_bank
+    from ..design.toml_file import read_design
+    from ..live.session import commit_start, prepare_start
+    from ..live.store import open_store
 
     design = read_design(design_file)
     bank = load_bank(bank_file)
@@ -112,8 +112,8 @@ def answer(session_id, item_id, response, db_path, elapsed):
     Output: {"item_id": next item or null, "theta": ..., "se": ..., "done": ...,
     "result": {...} once done}.  Sending the same answer again prints the same reply.
     """
-    from ..session import submit_answer
-    from ..store import open_store
+    from ..live.session import submit_answer
+    from ..live.store import open_store
 
     with _named_as_on_the_command_line(), open_store(db_path, create=False) as store:
         echo_json(submit_answer(store, session_id, item_id, response, elapsed=elapsed))
@@ -127,8 +127,8 @@ def answer(session_id, item_id, response, db_path, elapsed):
 @report_errors
 def show(session_id, db_path, with_seed):
     """Print SESSION_ID: status, the answers with the estimate after each, the result."""
-    from ..session import show_session
-    from ..store import open_store
+    from ..live.session import show_session
+    from ..live.store import open_store
 
     with _named_as_on_the_command_line(), open_store(db_path, create=False) as store:
         echo_json(show_session(store, session_id, include_seed=with_seed))
@@ -141,8 +141,8 @@ def show(session_id, db_path, with_seed):
 @report_errors
 def list_(db_path, status):
     """List the sessions of the store (oldest first) as a JSON array."""
-    from ..session import list_sessions
-    from ..store import open_store
+    from ..live.session import list_sessions
+    from ..live.store import open_store
 
     with _named_as_on_the_command_line(), open_store(db_path, create=False) as store:
         echo_json(list_sessions(store, status=status))
@@ -161,9 +161,9 @@ def try_(design_file, bank_file, seed):
 
     Each item shows its id, content area and label; type the category (0..K-1).
     """
-    from ..bank import load_bank
-    from ..design_file import read_design
-    from ..session import try_session
+    from ..bank.item_bank import load_bank
+    from ..design.toml_file import read_design
+    from ..live.session import try_session
 
     def ask(item, position):
         click.echo(f"\n#{position}  {item['item_id']}  [{item['area']}]")

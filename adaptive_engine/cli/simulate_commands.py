@@ -68,8 +68,8 @@ _progress_option = click.option(
 
 
 def _load(design_file, bank_file, true_bank_file=None):
-    from ..bank import load_bank
-    from ..design_file import read_design
+    from ..bank.item_bank import load_bank
+    from ..design.toml_file import read_design
 
     design = read_design(design_file)
     bank = load_bank(bank_file)
@@ -79,7 +79,7 @@ def _load(design_file, bank_file, true_bank_file=None):
 
 def _perturbation(text):
     """``a=0.1,b=0.15`` -> keyword SDs for :func:`adaptive_engine.simulation.perturbed_bank`."""
-    from ..simulation import SimulationError
+    from ..simulation.engine import SimulationError
 
     out = {}
     names = {"a": "sd_a", "b": "sd_b", "c": "sd_c", "d": "sd_d", "thresholds": "sd_thresholds"}
@@ -117,7 +117,8 @@ def _perturbation(text):
                    "read from the CSV that calibrate --fit-report writes (se_a, se_b, se_c, se_d, se_b1, ...).")
 @click.option("--workers", type=int, default=1, show_default=True, help="Processes running chunks in parallel.")
 @click.option("--chunk-size", type=int, default=10_000, show_default=True, help="Examinees per kernel batch.")
-@click.option("--exposure-target", type=float, default=None, help="Exposure rate in (0, 1] that share_above_target counts against [default: 0.25].")
+@click.option("--exposure-target", type=float, default=None,
+              help="Exposure rate in (0, 1] that share_above_target counts against [default: 0.25].")
 @click.option("--no-administrations", is_flag=True, help="Skip administrations.csv (large runs).")
 @click.option("--json", "as_json", is_flag=True, help="Print summary.json instead of the table.")
 @_progress_option
@@ -125,9 +126,9 @@ def _perturbation(text):
 def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_spec, true_bank_file, perturb,
                      perturb_from, workers, chunk_size, exposure_target, no_administrations, as_json, show_progress):
     """Simulate DESIGN for many examinees and write the study's files into --out."""
-    from ..examinees import parse_ability_spec
-    from ..simulation import SimulationError, perturbed_bank
-    from ..simulation_files import read_standard_errors, run_study, summary_table
+    from ..simulation.engine import SimulationError, perturbed_bank
+    from ..simulation.population import parse_ability_spec
+    from ..simulation.study import read_standard_errors, run_study, summary_table
 
     if perturb and perturb_from:
         raise SimulationError("give --perturb or --perturb-from, not both", "--perturb-from")
@@ -177,8 +178,8 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
     Prints mean length, RMSE and classification accuracy per combination and marks the
     combinations on the efficient frontier.
     """
-    from ..examinees import examinee_count, parse_ability_spec
-    from ..tuning import parse_variation, run_tuning_study
+    from ..simulation.population import examinee_count, parse_ability_spec
+    from ..simulation.tuning import parse_variation, run_tuning_study
 
     design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
     parsed = [parse_variation(v) for v in variations]
@@ -190,7 +191,7 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
                                 true_bank=true_bank, workers=workers, out_dir=out_dir, progress=progress)
     finally:
         progress.close()
-    from ..simulation_files import rows_csv
+    from ..simulation.study import rows_csv
 
     click.echo(rows_csv(rows), nl=False)
     click.echo(f"wrote {out_dir}/ (tuning.csv, tuning.json, tuning.html)")
@@ -233,8 +234,8 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
     Writes the parameters in any case; exits with code 3 when the last iteration still
     left an item above --target + --tolerance (not converged), 2 on bad input.
     """
-    from ..examinees import examinee_count, parse_ability_spec
-    from ..exposure_calibration import parse_strata, run_calibration, unreachable_target_warning
+    from ..simulation.exposure_tuning import parse_strata, run_calibration, unreachable_target_warning
+    from ..simulation.population import examinee_count, parse_ability_spec
 
     strata = None if strata_text is None else parse_strata(strata_text)
     abilities = parse_ability_spec(theta_spec)

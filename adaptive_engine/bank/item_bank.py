@@ -1,0 +1,663 @@
+"""The item bank: an immutable struct of numpy arrays, loaded and validated on entry.
+
+File formats (see ``item_banks/README.md`` and ``adaptive_engine/bank/schema/item_bank.schema.json``):
+
+* CSV, one row per item, columns ``item_id, model, a, b, c, d, b1..bK, area, item_set,
+  enemy_group, status`` (``label`` optional).  Required: ``item_id`` and ``model``; ``a``
+  defaults to 1 for 1PL/Rasch/PCM, ``c`` to 0, ``d`` to 1, ``area`` to ``general``,
+  ``status`` to ``operational``.  ``enemy_group`` may list several groups separated by ``;``.
+* JSON: ``{"scaling": 1.0, "name": ..., "items": [{"item_id": ..., "model": ..., ...}]}``
+  with the same fields; thresholds either as ``b1..bK`` keys or a ``thresholds`` list.
+
+Validation collects every problem, each with its location (``line N`` for CSV rows,
+``item ID`` otherwise), and raises one :class:`~adaptive_engine.errors.BankError`.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import re
+from pathlib import Path
+from typing import Any, Iterable, Mapping
+
+import attrs
+import numpy as np
+
+from ..errors import BankError, Problem
+from ..irt import models
+
+STATUSES = ("operational", "pretest")
+DEFAULT_AREA = "general"
+_THRESHOLD_COLUMN = re.compile(r"^b(\d+)$")
+_KNOWN_COLUMNS = {
+    "item_id", "model", "a", "b", "c", "d", "area", "item_set", "enemy_group",
+    "status", "label",
+}
+
+
+def _frozen_array(dtype=None):
+    def convert(x):
+        arr = np.array(x, dtype=dtype)
+        arr.setflags(write=False)
+        return arr
+
+    return convert
+
+
+@attrs.frozen(eq=False)
+class ItemBank:
+    """A calibrated item bank.
+
+    Attributes
+    ----------
+    item_ids : str array, shape (n,)
+    model : str array, shape (n,)
+        Canonical model name per item (``1PL``, ``2PL``, ``3PL``, ``4PL``, ``GRM``, ``GPCM``).
+    a, b, c, d : float arrays, shape (n,)
+        ``b`` is NaN for polytomous items; ``c = 0`` and ``d = 1`` for them.
+    thresholds : float array, shape (n, K_max)
+        GRM thresholds / GPCM steps, NaN-padded (K_max = 0 for an all-dichotomous bank).
+    area, item_set, label, status : str arrays, shape (n,)
+        ``item_set`` is ``""`` for items that belong to no set.
+    enemy_groups : tuple of tuple of str, length n
+    scaling : float
+        The scaling constant D.
+    name : str
+    """
+
+    item_ids: np.ndarray = attrs.field(converter=_frozen_array(object))
+    model: np.ndarray = attrs.field(converter=_frozen_array(object))
+    a: np.ndarray = attrs.field(converter=_frozen_array(float))
+    b: np.ndarray = attrs.field(converter=_frozen_array(float))
+    c: np.ndarray = attrs.field(converter=_frozen_array(float))
+    d: np.ndarray = attrs.field(converter=_frozen_array(float))
+    thresholds: np.ndarray = attrs.field(converter=_frozen_array(float))
+    area: np.ndarray = attrs.field(converter=_frozen_array(object))
+    item_set: np.ndarray = attrs.field(converter=_frozen_array(object))
+    enemy_groups: tuple = attrs.field(converter=lambda x: tuple(tuple(g) for g in x))
+    status: np.ndarray = attrs.field(converter=_frozen_array(object))
+    label: np.ndarray = attrs.field(converter=_frozen_array(object))
+    scaling: float = attrs.field(default=1.0, converter=float)
+    name: str = ""
+    _cache: dict = attrs.field(factory=dict, repr=False, alias="_cache")
+
+    def __attrs_post_init__(self):
+        problems = validate_arrays(self)
+        if problems:
+            raise BankError(problems)
+
+    # -- derived, cached -------------------------------------------------------------
+    def cached(self, key, make):
+        """``make()``, computed once per bank and ``key`` (a bank never changes, so neither
+        does anything derived from it).  Other layers memoise their per-bank tables here
+        under keys of their own: the kernel's ranked tables, the store's JSON content."""
+        if key not in self._cache:
+            self._cache[key] = make()
+        return self._cache[key]
+
+    def __len__(self) -> int:
+        return int(self.item_ids.shape[0])
+
+    @property
+    def n_items(self) -> int:
+        return len(self)
+
+    @property
+    def family(self) -> np.ndarray:
+        return self.cached(
+            "family", lambda: np.array([models.MODEL_FAMILY[m] for m in self.model], dtype=np.int8)
+        )
+
+    @property
+    def n_categories(self) -> np.ndarray:
+        def make():
+            k = np.sum(~np.isnan(self.thresholds), axis=1) if self.thresholds.size else 0
+            return np.where(self.family == models.DICHOTOMOUS, 2, np.asarray(k) + 1).astype(np.int64)
+
+        return self.cached("n_categories", make)
+
+    @property
+    def max_categories(self) -> int:
+        return self.params.max_categories
+
+    @property
+    def params(self) -> models.ItemParameters:
+        """All items' parameters for the functions of :mod:`adaptive_engine.irt.models`."""
+        return self.cached(
+            "params",
+            lambda: models.ItemParameters(
+                family=self.family, a=self.a, b=self.b, c=self.c, d=self.d,
+                thresholds=self.thresholds, n_categories=self.n_categories,
+                scaling=self.scaling,
+            ),
+        )
+
+    @property
+    def index_of(self) -> dict:
+        """Mapping item id -> row index."""
+        return self.cached("index_of", lambda: {iid: i for i, iid in enumerate(self.item_ids)})
+
+    def indices(self, item_ids: Iterable[str]) -> np.ndarray:
+        """Row indices of ``item_ids``; unknown ids raise :class:`BankError`."""
+        lookup = self.index_of
+        out = []
+        for iid in item_ids:
+            if iid not in lookup:
+                raise BankError(f"unknown item id {iid!r}", location=f"item {iid}")
+            out.append(lookup[iid])
+        return np.asarray(out, dtype=np.int64)
+
+    @property
+    def areas(self) -> tuple:
+        """Content areas in order of first appearance."""
+        return self.cached("areas", lambda: tuple(dict.fromkeys(self.area)))
+
+    @property
+    def area_index(self) -> np.ndarray:
+        """Integer code of each item's area (index into :attr:`areas`)."""
+        return self.cached(
+            "area_index",
+            lambda: np.array([self.areas.index(x) for x in self.area], dtype=np.int64),
+        )
+
+    def log_probability_table(self, grid) -> np.ndarray:
+        """Log category probabilities on an ability grid, shape (n, G, C); cached per grid."""
+        grid = np.asarray(grid, dtype=float)
+        key = ("logp", grid.tobytes())
+        return self.cached(key, lambda: _readonly(models.log_probabilities(*models.outer(self.params, grid))))
+
+    def information_table(self, grid) -> np.ndarray:
+        """Fisher information of every item on an ability grid, shape (n, G); cached."""
+        grid = np.asarray(grid, dtype=float)
+        key = ("info", grid.tobytes())
+        return self.cached(key, lambda: _readonly(models.information(*models.outer(self.params, grid))))
+
+    def evolve(self, **changes) -> "ItemBank":
+        """A new bank with some fields changed (validated again)."""
+        changes.setdefault("_cache", {})
+        return attrs.evolve(self, **changes)
+
+    def subset(self, index) -> "ItemBank":
+        """A bank of the items at ``index`` (ints or a boolean mask)."""
+        index = np.asarray(index)
+        if index.dtype == bool:
+            index = np.flatnonzero(index)
+        return ItemBank(
+            item_ids=self.item_ids[index], model=self.model[index], a=self.a[index],
+            b=self.b[index], c=self.c[index], d=self.d[index],
+            thresholds=self.thresholds[index], area=self.area[index],
+            item_set=self.item_set[index],
+            enemy_groups=[self.enemy_groups[i] for i in index],
+            status=self.status[index], label=self.label[index], scaling=self.scaling,
+            name=self.name,
+        )
+
+    def to_records(self) -> list[dict]:
+        """One plain dict per item (the JSON item format)."""
+        out = []
+        for i in range(len(self)):
+            k = int(self.n_categories[i]) - 1 if self.family[i] != models.DICHOTOMOUS else 0
+            rec = {
+                "item_id": str(self.item_ids[i]),
+                "model": str(self.model[i]),
+                "a": float(self.a[i]),
+            }
+            if k == 0:
+                rec.update(b=float(self.b[i]), c=float(self.c[i]), d=float(self.d[i]))
+            else:
+                rec["thresholds"] = [float(x) for x in self.thresholds[i, :k]]
+            rec.update(
+                area=str(self.area[i]), item_set=str(self.item_set[i]),
+                enemy_group=";".join(self.enemy_groups[i]), status=str(self.status[i]),
+                label=str(self.label[i]),
+            )
+            out.append(rec)
+        return out
+
+
+def _readonly(arr):
+    arr.setflags(write=False)
+    return arr
+
+
+# ----------------------------------------------------------------------------------------
+# validation of a constructed bank (arrays); file loaders report with line numbers first
+
+
+def validate_arrays(bank: ItemBank) -> list[Problem]:
+    """Every problem with a bank's arrays, located by item id."""
+    problems: list[Problem] = []
+    n = bank.item_ids.shape[0]
+    if n == 0:
+        return [Problem("bank", "the bank holds no items")]
+    for name in ("model", "a", "b", "c", "d", "area", "item_set", "status", "label"):
+        if getattr(bank, name).shape[0] != n:
+            problems.append(Problem("bank", f"field {name!r} has {getattr(bank, name).shape[0]} entries for {n} items"))
+    if len(bank.enemy_groups) != n or bank.thresholds.ndim != 2 or bank.thresholds.shape[0] != n:
+        problems.append(Problem("bank", "thresholds / enemy_groups do not match the number of items"))
+    if problems:
+        return problems
+    if not (math.isfinite(bank.scaling) and bank.scaling > 0):
+        problems.append(Problem("bank", f"scaling constant D must be a positive number, got {bank.scaling}"))
+    seen = {}
+    for i, iid in enumerate(bank.item_ids):
+        loc = f"item {iid}"
+        if not isinstance(iid, str) or not iid.strip():
+            problems.append(Problem(f"item #{i + 1}", "item_id is empty"))
+            continue
+        if iid in seen:
+            problems.append(Problem(loc, f"duplicate item id (also item #{seen[iid] + 1})"))
+        seen.setdefault(iid, i)
+        k = int(np.sum(~np.isnan(bank.thresholds[i]))) if bank.thresholds.shape[1] else 0
+        problems.extend(
+            Problem(loc, msg)
+            for msg in item_problems(
+                str(bank.model[i]), bank.a[i], bank.b[i], bank.c[i], bank.d[i],
+                list(bank.thresholds[i, :k]) if k else [],
+                str(bank.status[i]),
+            )
+        )
+        if k and np.any(~np.isnan(bank.thresholds[i, k:])):
+            problems.append(Problem(loc, "thresholds have a gap: b1..bK must be consecutive"))
+    return problems
+
+
+def item_problems(model: str, a, b, c, d, thresholds: list, status: str) -> list[str]:
+    """Problems with one item's parameters (messages without location)."""
+    out = []
+    if model not in models.MODEL_FAMILY:
+        return [f"unknown model {model!r} (use one of {', '.join(models.MODEL_FAMILY)}, Rasch or PCM)"]
+    family = models.MODEL_FAMILY[model]
+    for name, value in (("a", a), ("c", c), ("d", d)) + ((("b", b),) if family == models.DICHOTOMOUS else ()):
+        if not math.isfinite(value):
+            out.append(f"{name} is not a finite number ({value})")
+    if out:
+        return out
+    if not a > 0:
+        out.append(f"discrimination a must be > 0, got {a:g}")
+    if family == models.DICHOTOMOUS:
+        if thresholds:
+            out.append(f"model {model} takes no thresholds b1..bK")
+        if not 0 <= c < 1:
+            out.append(f"lower asymptote c must lie in [0, 1), got {c:g}")
+        if not (c < d <= 1):
+            out.append(f"upper asymptote d must lie in (c, 1] = ({c:g}, 1], got {d:g}")
+        if model in ("1PL", "2PL") and (c != 0 or d != 1):
+            out.append(f"model {model} has c = 0 and d = 1; use 3PL/4PL for asymptotes")
+        if model == "3PL" and d != 1:
+            out.append("model 3PL has d = 1; use 4PL for an upper asymptote below 1")
+    else:
+        if not thresholds:
+            out.append(f"model {model} needs thresholds b1..bK (at least b1)")
+        elif not all(math.isfinite(t) for t in thresholds):
+            out.append("thresholds must be finite numbers")
+        elif model == "GRM" and any(t2 <= t1 for t1, t2 in zip(thresholds, thresholds[1:])):
+            out.append("GRM thresholds must be strictly increasing (b1 < b2 < ... < bK), got "
+                       + ", ".join(f"{t:g}" for t in thresholds))
+        if c != 0 or d != 1:
+            out.append(f"model {model} takes no asymptotes c, d")
+    if status not in STATUSES:
+        out.append(f"status must be one of {', '.join(STATUSES)}, got {status!r}")
+    return out
+
+
+# ----------------------------------------------------------------------------------------
+# building a bank from records (dicts of strings or values), shared by CSV / JSON / SQLite
+
+
+def canonical_model(raw: Any) -> str | None:
+    name = str(raw).strip()
+    upper = name.upper()
+    if upper in models.MODEL_FAMILY:
+        return upper
+    return models.MODEL_ALIASES.get(upper)
+
+
+def _number(raw: Any, name: str, default: float | None) -> tuple[float | None, str | None]:
+    """Parse a numeric field; returns (value, problem)."""
+    if raw is None or (isinstance(raw, str) and raw.strip() == ""):
+        if default is None:
+            return None, f"{name} is missing"
+        return default, None
+    if isinstance(raw, bool):
+        return None, f"{name} is not a number ({raw!r})"
+    try:
+        value = float(raw)
+    except (TypeError, ValueError):
+        return None, f"{name} is not a number ({raw!r})"
+    if not math.isfinite(value):
+        return None, f"{name} is not a finite number ({raw!r})"
+    return value, None
+
+
+def bank_from_records(
+    records: list[Mapping[str, Any]],
+    locations: list[str] | None = None,
+    *,
+    scaling: float = 1.0,
+    name: str = "",
+) -> ItemBank:
+    """Validate records (one mapping per item) into an :class:`ItemBank`.
+
+    Parameters
+    ----------
+    records : list of mappings
+        Field name -> raw value (strings from CSV, or JSON values).
+    locations : list of str, optional
+        Where each record came from (``"line 7"``); defaults to ``"item ID"``.
+    """
+    problems: list[Problem] = []
+    if not records:
+        raise BankError([Problem("bank", "the bank holds no items")])
+    rows = []
+    seen: dict[str, str] = {}
+    for pos, rec in enumerate(records):
+        raw_id = rec.get("item_id")
+        iid = "" if raw_id is None else str(raw_id).strip()
+        loc = locations[pos] if locations else f"item {iid or '#' + str(pos + 1)}"
+        where = f"{loc} (item {iid})" if locations and iid else loc
+        mine: list[str] = []
+        if not iid:
+            mine.append("item_id is empty")
+        elif iid in seen:
+            mine.append(f"duplicate item id {iid!r} (first at {seen[iid]})")
+        else:
+            seen[iid] = loc
+        model = canonical_model(rec.get("model", ""))
+        if model is None:
+            mine.append(f"unknown model {str(rec.get('model', '')).strip()!r} "
+                        f"(use one of {', '.join(models.MODEL_FAMILY)}, Rasch or PCM)")
+            problems.extend(Problem(where, m) for m in mine)
+            continue
+        raw_model = str(rec.get("model", "")).strip().upper()
+        family = models.MODEL_FAMILY[model]
+        fixed_slope = raw_model in ("RASCH", "PCM")
+        a, pa = _number(rec.get("a"), "a", 1.0 if (model == "1PL" or fixed_slope) else None)
+        if fixed_slope and a is not None and a != 1.0:
+            pa = f"model {raw_model.title() if raw_model == 'RASCH' else raw_model} has a = 1, got {a:g}"
+        c, pc = _number(rec.get("c"), "c", 0.0)
+        d, pd = _number(rec.get("d"), "d", 1.0)
+        thresholds, pt = _thresholds(rec)
+        if family == models.DICHOTOMOUS:
+            b, pb = _number(rec.get("b"), "b", None)
+        else:
+            b, pb = float("nan"), None
+            if rec.get("b") not in (None, "") and not thresholds:
+                pb = f"model {model} takes thresholds b1..bK, not b"
+        mine += [p for p in (pa, pb, pc, pd, pt) if p]
+        if not mine:
+            mine += item_problems(model, a, b, c, d, thresholds,
+                                  str(rec.get("status") or "operational").strip())
+        if mine:
+            problems.extend(Problem(where, m) for m in mine)
+            continue
+        enemies = rec.get("enemy_group") or ""
+        if isinstance(enemies, (list, tuple)):
+            groups = tuple(str(g).strip() for g in enemies if str(g).strip())
+        else:
+            groups = tuple(g.strip() for g in str(enemies).split(";") if g.strip())
+        rows.append(dict(
+            item_id=iid, model=model, a=a, b=b, c=c, d=d, thresholds=thresholds,
+            area=str(rec.get("area") or DEFAULT_AREA).strip() or DEFAULT_AREA,
+            item_set=str(rec.get("item_set") or "").strip(),
+            enemy_groups=groups,
+            status=str(rec.get("status") or "operational").strip(),
+            label=str(rec.get("label") or "").strip(),
+        ))
+    if problems:
+        raise BankError(problems)
+    k_max = max((len(r["thresholds"]) for r in rows), default=0)
+    thr = np.full((len(rows), k_max), np.nan)
+    for i, r in enumerate(rows):
+        thr[i, : len(r["thresholds"])] = r["thresholds"]
+    return ItemBank(
+        item_ids=[r["item_id"] for r in rows], model=[r["model"] for r in rows],
+        a=[r["a"] for r in rows], b=[r["b"] for r in rows], c=[r["c"] for r in rows],
+        d=[r["d"] for r in rows], thresholds=thr, area=[r["area"] for r in rows],
+        item_set=[r["item_set"] for r in rows], enemy_groups=[r["enemy_groups"] for r in rows],
+        status=[r["status"] for r in rows], label=[r["label"] for r in rows],
+        scaling=scaling, name=name,
+    )
+
+
+def _thresholds(rec: Mapping[str, Any]) -> tuple[list[float], str | None]:
+    if rec.get("thresholds") not in (None, ""):
+        raw = rec["thresholds"]
+        if not isinstance(raw, (list, tuple)):
+            return [], "thresholds must be a list of numbers"
+        values = []
+        for j, x in enumerate(raw, start=1):
+            v, p = _number(x, f"b{j}", None)
+            if p:
+                return [], p
+            values.append(v)
+        return values, None
+    numbered = sorted(
+        (int(m.group(1)), key) for key in rec if (m := _THRESHOLD_COLUMN.match(str(key)))
+    )
+    values = []
+    for pos, (j, key) in enumerate(numbered, start=1):
+        raw = rec[key]
+        if raw is None or (isinstance(raw, str) and raw.strip() == ""):
+            # a blank threshold ends the item's list; later ones must be blank too
+            if any(str(rec[k2] or "").strip() for _, k2 in numbered[pos:]):
+                return [], f"b{j} is blank but a later threshold is given"
+            break
+        if j != pos:
+            return [], f"threshold columns must be b1, b2, ... without gaps (found b{j})"
+        v, p = _number(raw, f"b{j}", None)
+        if p:
+            return [], p
+        values.append(v)
+    return values, None
+
+
+# ----------------------------------------------------------------------------------------
+# file loaders
+
+
+def read_bank_csv_text(text: str, *, source: str = "bank", scaling: float = 1.0) -> ItemBank:
+    """Load a bank from CSV text (see module docstring)."""
+    reader = csv.reader(io.StringIO(text))
+    try:
+        header = next(reader)
+    except StopIteration:
+        raise BankError([Problem(f"{source} line 1", "the file is empty (no header row)")]) from None
+    except csv.Error as exc:
+        raise BankError([Problem(f"{source} line 1", f"unreadable CSV: {exc}")]) from None
+    header = [h.strip() for h in header]
+    missing = [c for c in ("item_id", "model") if c not in header]
+    problems = [Problem(f"{source} line 1", f"missing required column {c!r}") for c in missing]
+    dupes = {h for h in header if header.count(h) > 1}
+    problems += [Problem(f"{source} line 1", f"column {h!r} appears more than once") for h in sorted(dupes)]
+    unknown = [h for h in header if h not in _KNOWN_COLUMNS and not _THRESHOLD_COLUMN.match(h)]
+    problems += [Problem(f"{source} line 1", f"unknown column {h!r}") for h in unknown]
+    if problems:
+        raise BankError(problems)
+    records, locations = [], []
+    try:
+        for row in reader:
+            line = reader.line_num
+            if not any(cell.strip() for cell in row):
+                continue
+            if len(row) != len(header):
+                problems.append(Problem(f"{source} line {line}",
+                                        f"expected {len(header)} fields, found {len(row)}"))
+                continue
+            records.append(dict(zip(header, row)))
+            locations.append(f"{source} line {line}")
+    except csv.Error as exc:
+        problems.append(Problem(f"{source} line {reader.line_num}", f"unreadable CSV: {exc}"))
+    if problems:
+        raise BankError(problems)
+    if not records:
+        raise BankError([Problem(f"{source}", "the bank holds no items (header only)")])
+    return bank_from_records(records, locations, scaling=scaling, name=Path(source).stem)
+
+
+def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
+    """Load a bank from JSON text: an object with ``items`` (and optional ``scaling``, ``name``)."""
+    try:
+        doc = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise BankError([Problem(f"{source} line {exc.lineno}", f"invalid JSON: {exc.msg}")]) from None
+    if isinstance(doc, list):
+        doc = {"items": doc}
+    if not isinstance(doc, dict) or not isinstance(doc.get("items"), list):
+        raise BankError([Problem(source, "expected an object with an 'items' list")])
+    unknown = sorted(set(doc) - {"items", "scaling", "name", "description", "metadata", "$schema"})
+    if unknown:
+        raise BankError([Problem(source, f"unknown top-level key {k!r}") for k in unknown])
+    problems = _json_top_level_problems(doc, source)
+    if problems:
+        raise BankError(problems)
+    if not doc["items"]:
+        raise BankError([Problem(f"{source} items", "the bank holds no items (the 'items' list is empty)")])
+    scaling, problem = _number(doc.get("scaling"), "scaling", 1.0)
+    if problem or not scaling > 0:
+        raise BankError([Problem(f"{source} scaling", problem or f"scaling constant D must be > 0, got {scaling}")])
+    records, locations, problems = [], [], []
+    for i, rec in enumerate(doc["items"]):
+        loc = f"{source} items[{i}]"
+        if not isinstance(rec, dict):
+            problems.append(Problem(loc, "each item must be an object"))
+            continue
+        unknown = [k for k in rec if k not in _KNOWN_COLUMNS | {"thresholds"} and not _THRESHOLD_COLUMN.match(str(k))]
+        if unknown:
+            problems.extend(Problem(loc, f"unknown field {k!r}") for k in unknown)
+            continue
+        if "item_id" not in rec or "model" not in rec:
+            missing = "'item_id'" if "item_id" not in rec else "'model'"
+            problems.append(Problem(loc, "missing required field " + missing))
+            continue
+        kinds = _json_type_problems(rec)
+        if kinds:
+            iid = rec["item_id"]
+            where = f"{loc} (item {iid})" if isinstance(iid, str) and iid.strip() else loc
+            problems.extend(Problem(where, m) for m in kinds)
+            continue
+        records.append(rec)
+        locations.append(loc)
+    if problems:
+        raise BankError(problems)
+    return bank_from_records(records, locations, scaling=scaling, name=str(doc.get("name") or Path(source).stem))
+
+
+_JSON_TEXT_FIELDS = ("item_id", "model", "area", "item_set", "status", "label")
+_JSON_NUMBER_FIELDS = ("a", "b", "c", "d")
+
+
+def _json_kind(value) -> str:
+    """How a JSON value reads to a user: 'the string "1.5"', 'true', 'null', 'a list'."""
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return f"the string {json.dumps(value)}"
+    if isinstance(value, (int, float)):
+        return f"the number {value!r}"
+    return "a list" if isinstance(value, list) else "an object"
+
+
+def _is_json_number(value) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _json_type_problems(rec: Mapping[str, Any]) -> list[str]:
+    """JSON type problems of one item object (the CSV loader, reading text, has none).
+
+    Text fields must be JSON strings and parameters JSON numbers, as the published schema
+    says: a quoted number or a boolean is refused rather than guessed at.
+    """
+    out = []
+    for key, value in rec.items():
+        if key in _JSON_TEXT_FIELDS:
+            if not isinstance(value, str):
+                out.append(f"{key} must be a JSON string, got {_json_kind(value)}")
+        elif key in _JSON_NUMBER_FIELDS or _THRESHOLD_COLUMN.match(str(key)):
+            if not _is_json_number(value):
+                out.append(f"{key} must be a JSON number, got {_json_kind(value)}")
+        elif key == "thresholds":
+            if not isinstance(value, list) or not value:
+                out.append(f"thresholds must be a non-empty list of JSON numbers, got {_json_kind(value)}")
+            else:
+                out.extend(f"thresholds[{j}] must be a JSON number, got {_json_kind(v)}"
+                           for j, v in enumerate(value) if not _is_json_number(v))
+        elif key == "enemy_group":
+            if isinstance(value, list):
+                out.extend(f"enemy_group[{j}] must be a non-empty JSON string, got {_json_kind(v)}"
+                           for j, v in enumerate(value) if not (isinstance(v, str) and v))
+            elif not isinstance(value, str):
+                out.append(f"enemy_group must be a JSON string or a list of strings, got {_json_kind(value)}")
+    return out
+
+
+def _json_top_level_problems(doc: Mapping[str, Any], source: str) -> list[Problem]:
+    out = []
+    if "scaling" in doc and not _is_json_number(doc["scaling"]):
+        out.append(Problem(f"{source} scaling", f"must be a JSON number, got {_json_kind(doc['scaling'])}"))
+    for key in ("name", "description", "$schema"):
+        if key in doc and not isinstance(doc[key], str):
+            out.append(Problem(f"{source} {key}", f"must be a JSON string, got {_json_kind(doc[key])}"))
+    if "metadata" in doc and not isinstance(doc["metadata"], dict):
+        out.append(Problem(f"{source} metadata", f"must be a JSON object, got {_json_kind(doc['metadata'])}"))
+    return out
+
+
+def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
+    """Load a bank file (``.csv``, ``.json`` or a SQLite ``.db``) and validate it.
+
+    ``scaling`` means the same for every file type: it is the scaling constant D the
+    caller expects.  A CSV file has no place for D, so a CSV bank takes ``scaling``
+    (1.0 when None).  A JSON or SQLite bank carries its own D (1.0 when the file does not
+    state one); a ``scaling`` that disagrees with it is an error naming both values, never
+    a silent override.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise BankError(f"no such file: {path}", location=str(path))
+    if scaling is not None:
+        scaling = _check_scaling_value(scaling)
+    suffix = path.suffix.lower()
+    if suffix in (".db", ".sqlite", ".sqlite3"):
+        from .files import read_bank_sqlite
+
+        return _agree_on_scaling(read_bank_sqlite(path), scaling, path)
+    try:
+        # newline="" leaves a carriage return inside a quoted CSV field as it is
+        with open(path, encoding="utf-8-sig", newline="") as fh:
+            text = fh.read()
+    except UnicodeDecodeError as exc:
+        raise BankError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", location=str(path)) from None
+    if suffix == ".json":
+        return _agree_on_scaling(read_bank_json_text(text, source=path.name), scaling, path)
+    if suffix == ".csv":
+        return read_bank_csv_text(text, source=path.name, scaling=1.0 if scaling is None else scaling)
+    raise BankError(f"unknown bank file type {suffix!r} (use .csv, .json or .db)", location=str(path))
+
+
+def _check_scaling_value(scaling) -> float:
+    try:
+        value = float(scaling)
+    except (TypeError, ValueError):
+        value = float("nan")
+    if isinstance(scaling, bool) or not (math.isfinite(value) and value > 0):
+        raise BankError(f"the scaling constant D must be a positive number, got {scaling!r}",
+                        location="scaling")
+    return value
+
+
+def _agree_on_scaling(bank: ItemBank, scaling: float | None, path: Path) -> ItemBank:
+    """``bank`` itself when ``scaling`` is None or equals the file's own D; else an error."""
+    if scaling is None or scaling == bank.scaling:
+        return bank
+    raise BankError(
+        f"scaling constant D = {scaling:g} was asked for, but {path.name} states D = "
+        f"{bank.scaling:g} (JSON and SQLite banks carry their own D, 1.0 when not stated); "
+        "leave out the scaling option (--scaling) or change the D stored in the file",
+        location=f"{path.name} scaling",
+    )

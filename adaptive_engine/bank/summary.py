@@ -1,0 +1,286 @@
+"""What a bank offers: a summary of its contents and its test information curves.
+
+These are the library functions behind ``adaptive-engine bank check`` and ``bank curves``.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+from collections import Counter
+from pathlib import Path
+
+import attrs
+import numpy as np
+
+from ..errors import AdaptiveEngineError
+from ..irt.curves import test_information
+from .item_bank import ItemBank
+
+#: Standard error below which an ability is taken as precisely measured (common practice).
+DEFAULT_TARGET_SE = 0.3
+#: Ability range scanned for the precisely measured region, and its step.
+SCAN_RANGE = (-6.0, 6.0)
+SCAN_STEP = 0.01
+MAX_CURVE_POINTS = 100_001
+#: Values of :attr:`InformationCurves.items_counted`.
+OPERATIONAL_ITEMS = "operational"
+OPERATIONAL_AND_PRETEST = "operational and pretest"
+
+
+@attrs.frozen
+class BankSummary:
+    """Counts that describe a bank, and where it measures precisely.
+
+    Attributes
+    ----------
+    name : str
+    n_items, n_pretest : int
+    scaling : float
+    by_model, by_area : dict of str -> int
+        Item counts (models in canonical order, areas in order of first appearance).
+    enemy_group_sizes, item_set_sizes : dict of str -> int
+        Number of items in each enemy group / item set.
+    target_se : float
+    precise_ranges : tuple of (float, float)
+        Ability intervals where the operational items' total information exceeds
+        ``1 / target_se**2``, i.e. where a test of the whole bank would have SE < target.
+    """
+
+    name: str
+    n_items: int
+    n_pretest: int
+    scaling: float
+    by_model: dict
+    by_area: dict
+    enemy_group_sizes: dict
+    item_set_sizes: dict
+    target_se: float
+    precise_ranges: tuple
+
+    def to_text(self) -> str:
+        """A short human-readable report, one fact per line."""
+        def counts(d):
+            return ", ".join(f"{k} {v}" for k, v in d.items()) or "none"
+
+        sets = self.item_set_sizes
+        enemies = self.enemy_group_sizes
+        if self.precise_ranges:
+            ranges = "theta in " + ", ".join(f"[{lo:.2f}, {hi:.2f}]" for lo, hi in self.precise_ranges)
+        else:
+            ranges = f"nowhere in theta [{SCAN_RANGE[0]:g}, {SCAN_RANGE[1]:g}]"
+        lines = [
+            f"bank {self.name or '(unnamed)'}: {self.n_items} items, scaling D = {self.scaling:g}",
+            f"models: {counts(self.by_model)}",
+            f"areas: {counts(self.by_area)}",
+            f"pretest items: {self.n_pretest}",
+            f"enemy groups: {len(enemies)}"
+            + (f" ({sum(enemies.values())} items, largest {max(enemies.values())})" if enemies else ""),
+            f"item sets: {len(sets)}"
+            + (f" ({sum(sets.values())} items, sizes {min(sets.values())}-{max(sets.values())})" if sets else ""),
+            f"SE < {self.target_se:g} (information > {1 / self.target_se ** 2:.2f}) "
+            f"with all operational items: {ranges}",
+        ]
+        return "\n".join(lines)
+
+    def to_dict(self) -> dict:
+        return attrs.asdict(self)
+
+
+def precise_ranges(theta: np.ndarray, information: np.ndarray, threshold: float) -> tuple:
+    """Intervals of ``theta`` (sorted, shape (G,)) where ``information`` (G,) > ``threshold``.
+
+    Ends are placed by linear interpolation between neighbouring grid points.
+    """
+    above = information > threshold
+    out = []
+    i, n = 0, len(theta)
+    while i < n:
+        if not above[i]:
+            i += 1
+            continue
+        j = i
+        while j + 1 < n and above[j + 1]:
+            j += 1
+        out.append((_crossing(theta, information, threshold, i - 1, i),
+                    _crossing(theta, information, threshold, j, j + 1)))
+        i = j + 1
+    return tuple(out)
+
+
+def _crossing(theta, info, threshold, lo: int, hi: int) -> float:
+    if lo < 0:
+        return float(theta[0])
+    if hi >= len(theta):
+        return float(theta[-1])
+    f = (threshold - info[lo]) / (info[hi] - info[lo])
+    return float(theta[lo] + f * (theta[hi] - theta[lo]))
+
+
+def summarize_bank(bank: ItemBank, *, target_se: float = DEFAULT_TARGET_SE) -> BankSummary:
+    """Summarise ``bank``: counts by model and area, pretest items, enemies, sets, precision."""
+    if not (math.isfinite(target_se) and target_se > 0):
+        raise AdaptiveEngineError(f"target SE must be a positive number, got {target_se}",
+                                  location="target_se")
+    model_order = ("1PL", "2PL", "3PL", "4PL", "GRM", "GPCM")
+    model_counts = Counter(bank.model)
+    area_counts = Counter(bank.area)
+    enemy_sizes = Counter(g for groups in bank.enemy_groups for g in groups)
+    set_sizes = Counter(s for s in bank.item_set if s)
+    grid = np.round(np.arange(SCAN_RANGE[0], SCAN_RANGE[1] + SCAN_STEP / 2, SCAN_STEP), 10)
+    operational = np.flatnonzero(bank.status == "operational")
+    info = test_information(bank, grid, operational) if operational.size else np.zeros_like(grid)
+    return BankSummary(
+        name=str(bank.name), n_items=len(bank), n_pretest=int(np.sum(bank.status == "pretest")),
+        scaling=float(bank.scaling),
+        by_model={m: model_counts[m] for m in model_order if model_counts[m]},
+        by_area={a: area_counts[a] for a in bank.areas},
+        enemy_group_sizes=dict(sorted(enemy_sizes.items())),
+        item_set_sizes=dict(sorted(set_sizes.items())),
+        target_se=float(target_se),
+        precise_ranges=precise_ranges(grid, info, 1.0 / target_se**2),
+    )
+
+
+# ----------------------------------------------------------------------------------------
+# information curves
+
+
+@attrs.frozen(eq=False)
+class InformationCurves:
+    """Test information and standard error on an ability grid.
+
+    Attributes
+    ----------
+    theta : array, shape (G,)
+    information : array, shape (G,)
+        Summed Fisher information of the items counted.
+    by_area : dict of str -> array, shape (G,)
+        Summed information of each content area's items (empty unless asked for).
+    items_counted : str
+        Which items are summed: ``"operational"`` (the default, as in
+        :func:`summarize_bank`) or ``"operational and pretest"``.
+    n_items : int
+        Number of items summed.
+    """
+
+    theta: np.ndarray
+    information: np.ndarray
+    by_area: dict = attrs.field(factory=dict)
+    items_counted: str = OPERATIONAL_ITEMS
+    n_items: int = 0
+
+    @property
+    def se(self) -> np.ndarray:
+        """Standard error 1 / sqrt(information), shape (G,); inf where information is 0."""
+        with np.errstate(divide="ignore"):
+            return 1.0 / np.sqrt(self.information)
+
+    def columns(self) -> dict:
+        """Column name -> array: ``theta, information, se, information_<area>...``."""
+        cols = {"theta": self.theta, "information": self.information, "se": self.se}
+        cols.update({f"information_{area}": v for area, v in self.by_area.items()})
+        return cols
+
+    def to_csv_text(self) -> str:
+        cols = self.columns()
+        out = io.StringIO()
+        writer = csv.writer(out, lineterminator="\n")
+        writer.writerow(cols)
+        for row in zip(*cols.values()):
+            writer.writerow(repr(float(x)) for x in row)
+        return out.getvalue()
+
+    def to_dict(self) -> dict:
+        """JSON form: ``{"items_counted", "n_items", "theta", "information", "se",
+        "by_area": {area: {"information", "se"}}}``."""
+        out = {"items_counted": self.items_counted, "n_items": int(self.n_items),
+               "theta": self.theta.tolist(), "information": self.information.tolist(),
+               "se": self.se.tolist()}
+        if self.by_area:
+            with np.errstate(divide="ignore"):
+                out["by_area"] = {area: {"information": v.tolist(), "se": (1.0 / np.sqrt(v)).tolist()}
+                                  for area, v in self.by_area.items()}
+        return out
+
+
+def curve_grid(start: float, stop: float, step: float) -> np.ndarray:
+    """Ability points ``start, start + step, ...`` up to ``stop`` (inclusive), shape (G,)."""
+    for name, value in (("from", start), ("to", stop), ("step", step)):
+        if not math.isfinite(value):
+            raise AdaptiveEngineError(f"must be a finite number, got {value}", location=f"--{name}")
+    if not step > 0:
+        raise AdaptiveEngineError(f"must be > 0, got {step:g}", location="--step")
+    if not stop > start:
+        raise AdaptiveEngineError(f"must be greater than --from ({start:g}), got {stop:g}",
+                                  location="--to")
+    n = int(math.floor((stop - start) / step + 1e-9)) + 1
+    if n > MAX_CURVE_POINTS:
+        raise AdaptiveEngineError(f"{n} points asked for; at most {MAX_CURVE_POINTS}",
+                                  location="--step")
+    # rounding keeps printed grid points tidy (0.25, not 0.25000000000000006)
+    return np.round(start + step * np.arange(n), 12)
+
+
+def information_curves(bank: ItemBank, theta, *, by_area: bool = False,
+                       include_pretest: bool = False) -> InformationCurves:
+    """Test information of ``bank`` at ``theta`` (G,), optionally split by content area.
+
+    Only operational items are summed unless ``include_pretest``: pretest items are not
+    scored, so they add nothing to a test's precision (and :func:`summarize_bank` counts
+    the same items).
+    """
+    theta = np.asarray(theta, dtype=float)
+    if include_pretest:
+        items, counted = np.arange(len(bank)), OPERATIONAL_AND_PRETEST
+    else:
+        items, counted = np.flatnonzero(bank.status == "operational"), OPERATIONAL_ITEMS
+    if items.size:
+        total = test_information(bank, theta, items)
+        areas = test_information(bank, theta, items, by_area=True) if by_area else {}
+    else:  # a bank of pretest items only: nothing is counted
+        total = np.zeros_like(theta)
+        areas = {area: np.zeros_like(theta) for area in bank.areas} if by_area else {}
+    return InformationCurves(theta=theta, information=total, by_area=areas,
+                             items_counted=counted, n_items=int(items.size))
+
+
+def plot_information_curves(curves: InformationCurves, path: str | Path, *, title: str = "") -> Path:
+    """Draw information (and SE on a second axis) to a PNG file, written atomically."""
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        raise AdaptiveEngineError(
+            "plotting needs matplotlib: install the 'plots' extra (pip install 'adaptive_engine[plots]')",
+            location="--plot",
+        ) from None
+    from ..files import atomic_write
+
+    path = Path(path)
+    if path.suffix.lower() != ".png":
+        raise AdaptiveEngineError(f"plot file must end in .png, got {path.name!r}", location="--plot")
+    fig, ax = plt.subplots(figsize=(7, 4.2))
+    try:
+        ax.plot(curves.theta, curves.information, color="black", lw=2, label="total")
+        for area, values in curves.by_area.items():
+            ax.plot(curves.theta, values, lw=1, label=area)
+        ax.set_xlabel("ability (theta)")
+        ax.set_ylabel("test information")
+        se_axis = ax.twinx()
+        se_axis.plot(curves.theta, curves.se, color="grey", ls="--", lw=1)
+        se_axis.set_ylabel("standard error (dashed)")
+        finite = curves.se[np.isfinite(curves.se)]
+        if finite.size:
+            se_axis.set_ylim(0, min(2.0, float(finite.max()) * 1.05))
+        ax.legend(loc="upper left", fontsize="small")
+        ax.set_title(f"{title or 'Test information'} ({curves.n_items} {curves.items_counted} items)",
+                     fontsize="medium")
+        fig.tight_layout()
+        atomic_write(path, lambda temp: fig.savefig(temp, format="png", dpi=100))
+    finally:
+        plt.close(fig)
+    return path

@@ -1,0 +1,320 @@
+"""Does a design fit a bank?  And what does a design mean, in plain words?
+
+:func:`check_design_against_bank` lists every reason a bank cannot deliver a design
+(blueprint areas missing or too small, too few usable items for the test length once enemy
+groups and item sets are taken into account, pretest slots without pretest items, exposure
+parameters for unknown items, ...); :func:`require_design_fits_bank` raises them as one
+:class:`~adaptive_engine.errors.DesignError`.  :func:`describe_design` gives one line per
+section for people.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+
+import numpy as np
+
+from ..bank.item_bank import ItemBank
+from ..errors import DesignError, Problem
+from ..irt import models
+from .toml_file import toml_key, validate_design
+from .types import Design
+
+
+def usable_item_count(bank: ItemBank, mask: np.ndarray, *, enemies: bool, item_sets: bool,
+                      max_items: int) -> int:
+    """How many items of ``mask`` one examinee can be given at most.
+
+    Parameters
+    ----------
+    bank : ItemBank
+    mask : bool array, shape (n,)
+        The items considered (e.g. the operational items of one area).
+    enemies : bool
+        At most one item per enemy group.  Items are taken greedily, those in fewest groups
+        first; with one group per item (the usual case) this count is exact, otherwise it
+        is a count that can certainly be reached.
+    item_sets : bool
+        Sets are given whole, so items of a set larger than ``max_items`` are unusable.
+    max_items : int
+        The test length.
+
+    Returns
+    -------
+    int
+    """
+    index = np.flatnonzero(mask)
+    if item_sets:
+        sizes = Counter(str(s) for s in bank.item_set if s)
+        index = [i for i in index if not bank.item_set[i] or sizes[str(bank.item_set[i])] <= max_items]
+    if not enemies:
+        return len(index)
+    used: set[str] = set()
+    count = 0
+    for i in sorted(index, key=lambda i: len(bank.enemy_groups[i])):
+        groups = bank.enemy_groups[i]
+        if used.isdisjoint(groups):
+            used.update(groups)
+            count += 1
+    return count
+
+
+def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
+    """Every reason ``bank`` cannot deliver ``design`` (empty list: it fits).
+
+    Parameters
+    ----------
+    design : Design
+    bank : ItemBank
+
+    Returns
+    -------
+    list of Problem
+        Located at the design key concerned (``"[blueprint.areas.x] min"``).
+    """
+    problems = list(validate_design(design))
+    st, bp, sel, ex = design.stopping, design.blueprint, design.selection, design.exposure
+    operational = np.asarray(bank.status == "operational")
+    n_operational = int(operational.sum())
+    count = dict(enemies=bp.enemies, item_sets=bp.item_sets, max_items=st.max_items)
+    usable = usable_item_count(bank, operational, **count)
+    rules_note = _rules_note(bp)
+    if usable < st.max_items:
+        problems.append(Problem("[stopping] max_items",
+                                f"the bank can give one examinee at most {usable} operational items"
+                                f"{rules_note}, fewer than max_items ({st.max_items})"))
+    if bp.item_sets:
+        sizes = Counter(str(s) for s, ok in zip(bank.item_set, operational) if s and ok)
+        for name, size in sorted(sizes.items()):
+            if size > st.max_items:
+                problems.append(Problem("[blueprint] item_sets",
+                                        f"item set {name!r} has {size} items, more than max_items "
+                                        f"({st.max_items}): it can never be given whole"))
+    problems += _area_problems(design, bank, operational, count, rules_note)
+    if bp.pretest_positions:
+        n_pretest = int(np.sum(bank.status == "pretest"))
+        if n_pretest < len(bp.pretest_positions):
+            problems.append(Problem("[blueprint] pretest_positions",
+                                    f"{len(bp.pretest_positions)} pretest position(s) but the bank holds "
+                                    f"{n_pretest} pretest item(s)"))
+    if ex.method == "sympson_hetter" and design.exposure_parameters is not None:
+        unknown = sorted(set(design.exposure_parameters) - set(bank.index_of))
+        if unknown:
+            shown = ", ".join(unknown[:10]) + (f" and {len(unknown) - 10} more" if len(unknown) > 10 else "")
+            problems.append(Problem("[exposure] parameters", f"items not in the bank: {shown}"))
+        from .exposure_parameters import parameter_problems
+
+        problems += parameter_problems(design.exposure_parameters, design.exposure_strata,
+                                       where="[exposure] parameters, item")[:20]
+    if ex.method == "randomesque" and ex.candidates > n_operational:
+        problems.append(Problem("[exposure] candidates",
+                                f"{ex.candidates} candidates but the bank has {n_operational} operational items"))
+    if design.opening.first_items_from_top > n_operational:
+        problems.append(Problem("[opening] first_items_from_top",
+                                f"{design.opening.first_items_from_top} but the bank has "
+                                f"{n_operational} operational items"))
+    if sel.criterion == "a_stratified":
+        problems += _stratification_problems(design, bank, operational)
+    return problems
+
+
+def _rules_note(bp) -> str:
+    rules = [r for r, on in (("one item per enemy group", bp.enemies), ("item sets given whole", bp.item_sets)) if on]
+    return f" ({', '.join(rules)})" if rules else ""
+
+
+def _area_problems(design, bank, operational, count, rules_note) -> list[Problem]:
+    problems = []
+    max_items = design.stopping.max_items
+    for rule in design.blueprint.areas:
+        where = f"[blueprint.areas.{toml_key(rule.name)}]"
+        if rule.name not in bank.areas:
+            problems.append(Problem(where, f"area {rule.name!r} is not in the bank; "
+                                           f"bank areas: {', '.join(bank.areas)}"))
+            continue
+        in_area = operational & np.asarray(bank.area == rule.name)
+        usable = usable_item_count(bank, in_area, **count)
+        if rule.min > usable:
+            problems.append(Problem(f"{where} min", f"min {rule.min} but the area has only {usable} usable "
+                                                    f"operational item(s){rules_note}"))
+        if rule.share is not None:
+            needed = math.ceil(rule.share * max_items - 1e-9)
+            if needed > usable:
+                problems.append(Problem(f"{where} share",
+                                        f"share {rule.share:g} of {max_items} items needs {needed} items but the "
+                                        f"area has only {usable} usable operational item(s){rules_note}"))
+    return problems
+
+
+def _stratification_problems(design, bank, operational) -> list[Problem]:
+    problems = []
+    strata = design.selection.strata
+    n_operational = int(operational.sum())
+    if strata > n_operational:
+        problems.append(Problem("[selection] strata",
+                                f"{strata} strata but the bank has {n_operational} operational items"))
+    a = np.asarray(bank.a)[operational]
+    if strata > 1 and a.size and np.ptp(a) == 0:
+        problems.append(Problem("[selection] strata",
+                                "every operational item has the same discrimination a: there is nothing to stratify"))
+    if design.selection.b_blocking:
+        # polytomous items are blocked on the mean of their thresholds
+        difficulty = _difficulty(bank)[operational]
+        if not np.all(np.isfinite(difficulty)):
+            problems.append(Problem("[selection] b_blocking", "some operational items have no finite difficulty"))
+    return problems
+
+
+def _difficulty(bank: ItemBank) -> np.ndarray:
+    """b for dichotomous items, the mean threshold for polytomous ones, shape (n,)."""
+    out = np.array(bank.b, dtype=float)
+    poly = bank.family != models.DICHOTOMOUS
+    if np.any(poly):
+        with np.errstate(invalid="ignore"):
+            out[poly] = np.nanmean(bank.thresholds[poly], axis=1)
+    return out
+
+
+def require_design_fits_bank(design: Design, bank: ItemBank) -> None:
+    """Raise :class:`DesignError` listing every problem of :func:`check_design_against_bank`."""
+    problems = check_design_against_bank(design, bank)
+    if problems:
+        raise DesignError(problems)
+
+
+# ----------------------------------------------------------------------------------------
+# plain words
+
+_CRITERION_WORDS = {
+    "max_fisher_information": "the item with the most Fisher information at the current estimate",
+    "posterior_weighted_information": "the item with the most Fisher information averaged over the posterior",
+    "kullback_leibler": "the item with the most Kullback-Leibler information over theta +- {kl_interval:g}/sqrt(n)",
+    "a_stratified": "within {strata} a-strata taken from low to high a ({blocking}), "
+                    "the item whose b is closest to the estimate",
+    "random": "an eligible item at random",
+}
+
+
+def describe_design(design: Design) -> list[str]:
+    """One plain-words line per section.
+
+    Returns
+    -------
+    list of str
+    """
+    op, sc, sel, ex, bp, st = (design.opening, design.scoring, design.selection, design.exposure,
+                               design.blueprint, design.stopping)
+    if op.random_theta is None:
+        start = f"start at theta {op.theta:g}"
+    else:
+        start = f"start at a theta drawn uniformly from [{op.random_theta[0]:g}, {op.random_theta[1]:g}]"
+    first = ("the most informative item there" if op.first_items_from_top == 1
+             else f"a random one of the {op.first_items_from_top} most informative items there")
+    lines = [f"opening: {start}; first item: {first}"]
+    prior = f"N({sc.prior_mean:g}, {sc.prior_sd:g}^2) prior"
+    scoring = f"scoring: {sc.method.upper()}"
+    if sc.method in ("map", "eap"):
+        scoring += f" with a {prior}"
+    else:
+        fallback = (f"previous estimate +- {sc.fixed_step:g}" if sc.until_mixed == "fixed_step"
+                    else f"{sc.until_mixed.upper()} with a {prior}")
+        scoring += f"; {fallback} until the answers are mixed"
+    lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")
+    words = _CRITERION_WORDS[sel.criterion].format(
+        kl_interval=sel.kl_interval, strata=sel.strata,
+        blocking="b-blocked" if sel.b_blocking else "no b-blocking")
+    lines.append(f"selection: {words}")
+    exposure = {
+        "none": "no exposure control",
+        "randomesque": f"randomesque: at random among the {ex.candidates} best items",
+        "sympson_hetter": f"Sympson-Hetter with per-item parameters from {ex.parameters}"
+                          + (f" ({len(design.exposure_parameters)} items)" if design.exposure_parameters else "")
+                          + (f", conditional on the interim ability estimate in {len(design.exposure_strata) + 1} "
+                             f"strata cut at {', '.join(f'{c:g}' for c in design.exposure_strata)}"
+                             if design.exposure_strata else ""),
+        "progressive": f"progressive: a random part that fades as the test goes on (acceleration {ex.acceleration:g})",
+    }[ex.method]
+    lines.append(f"exposure: {exposure}")
+    lines.append("blueprint: " + _blueprint_words(bp))
+    lines.append("stopping: " + _stopping_words(st))
+    lines.append("reporting: " + _reporting_words(design))
+    return lines
+
+
+def _blueprint_words(bp) -> str:
+    parts = []
+    if bp.areas:
+        rules = []
+        for r in bp.areas:
+            if r.share is not None:
+                rules.append(f"{r.name} {r.share:.0%}")
+            elif r.max is not None:
+                rules.append(f"{r.name} {r.min}-{r.max}")
+            else:
+                rules.append(f"{r.name} >= {r.min}")
+        how = "constrained (most-behind area first)" if bp.method == "constrained" else "maximum priority index"
+        parts.append(f"{how}: " + ", ".join(rules))
+    else:
+        parts.append("no content balancing")
+    parts.append("one item per enemy group" if bp.enemies else "enemy groups ignored")
+    parts.append("item sets given together" if bp.item_sets else "item sets ignored")
+    if bp.pretest_positions:
+        parts.append("pretest items at positions " + ", ".join(str(p) for p in bp.pretest_positions))
+    if bp.shadow_test:
+        parts.append("shadow test assembled at each step")
+    return "; ".join(parts)
+
+
+def _stopping_words(st) -> str:
+    rules = [f"after {st.max_items} scored items"]
+    if st.se is not None:
+        rules.append(f"once SE <= {st.se:g}")
+    if st.sprt is not None:
+        s = st.sprt
+        rules.append(f"once the SPRT at cut {s.cut:g} +- {s.indifference:g} decides "
+                     f"(alpha {s.alpha:g}, beta {s.beta:g})")
+    if st.confidence_interval is not None:
+        ci = st.confidence_interval
+        rules.append(f"once the {ci.confidence:.0%} interval excludes the cut {ci.cut:g}")
+    if st.se_reduction is not None:
+        rules.append(f"once the next item would reduce the SE by less than {st.se_reduction:g}")
+    if st.min_information is not None:
+        rules.append(f"once no eligible item has information above {st.min_information:g}")
+    if st.time_limit is not None:
+        rules.append(f"after {st.time_limit:g} seconds")
+    return f"stop {' or '.join(rules)}; never before {st.min_items} items"
+
+
+def _reporting_words(design) -> str:
+    rp = design.reporting
+    s = rp.scale
+    score = f"final {design.final_method.upper()} with a {rp.confidence:.0%} interval"
+    if (s.slope, s.intercept) != (1.0, 0.0):
+        score += f"; scaled score {s.intercept:g} + {s.slope:g} x theta"
+        if s.min is not None or s.max is not None:
+            score += f" within [{'' if s.min is None else f'{s.min:g}'}, {'' if s.max is None else f'{s.max:g}'}]"
+    for cut in rp.cut_scores:
+        score += f"; cut {cut.name!r} at theta {cut.theta:g} ({cut.above} at or above, {cut.below} below)"
+    return score + f"; person fit flagged below {rp.person_fit_threshold:g}"
+
+
+def check_bank_file(design_path, bank_path=None) -> list[str]:
+    """Read a design file (and a bank file), check them, return the plain-words summary.
+
+    Raises
+    ------
+    DesignError, BankError
+        Listing every problem.
+    """
+    from ..bank.item_bank import load_bank
+    from .toml_file import read_design
+
+    design = read_design(design_path)
+    header = f"design {design.source}: valid"
+    if bank_path is not None:
+        bank = load_bank(bank_path)
+        require_design_fits_bank(design, bank)
+        n_pretest = int(np.sum(bank.status == "pretest"))
+        header += f"; fits bank {bank.name or bank_path} ({len(bank)} items, {n_pretest} pretest)"
+    return [header] + describe_design(design)

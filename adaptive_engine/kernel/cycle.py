@@ -1,0 +1,309 @@
+"""The decision kernel: pure functions that carry out a design for a batch of examinees.
+
+One kernel, two drivers.  The live session runs it on a batch of one, the simulation on
+thousands; every row is computed on its own (elementwise numpy and reductions along the
+last axis), so the same seed and the same answers give the same items, estimates and stop,
+item by item, in both.
+
+The cycle for each examinee::
+
+    start(...)              -> first pending item
+    answer(..., responses)  -> record, update the estimate, pick the next item, check the
+                               stopping rules (which may use that next item), stop or go on
+    finish(...)             -> final estimate and report for examinees who stopped
+"""
+
+from __future__ import annotations
+
+import attrs
+import numpy as np
+
+from ..irt import models
+from ..irt.posterior import normal_log_prior, posterior_mean_sd
+from . import random_streams as randomness
+from . import stopping
+from .eligibility import eligible
+from .prepared import TestContext
+from .selection import Picked, all_item_params, select
+from .state import KernelState
+
+
+def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None,
+          count_eligible=False) -> tuple[KernelState, Picked]:
+    """Begin tests for a batch; returns the state with each examinee's first item pending.
+
+    Parameters
+    ----------
+    keys : uint64 array, shape (B,)
+        Random stream keys (``randomness.stream_key(seed)``).
+    prior_mean, prior_sd : float or array (B,), optional
+        Examinee-specific prior (returning examinees); default: the design's.
+    """
+    sc = ctx.design.scoring
+    mean = sc.prior_mean if prior_mean is None else prior_mean
+    sd = sc.prior_sd if prior_sd is None else prior_sd
+    state = KernelState.empty(ctx, keys, mean, sd)
+    state.log_post[:] = normal_log_prior(ctx.grid, state.prior_mean, state.prior_sd).reshape(state.size, -1)
+    opening = ctx.design.opening
+    if opening.random_theta is not None:
+        lo, hi = opening.random_theta
+        u = randomness.uniforms(state.keys, 0, randomness.START_THETA)
+        state.theta[:] = lo + (hi - lo) * u
+    else:
+        state.theta[:] = opening.theta
+    state.se[:] = state.prior_sd
+    rows = np.arange(state.size)
+    picked = select(ctx, state, rows, count_eligible=count_eligible)
+    _apply_pick(ctx, state, rows, picked)
+    no_item = picked.item < 0
+    if no_item.any():
+        state.done[no_item] = True
+        state.stop_reason[no_item] = "no_eligible_item"
+    return state, picked
+
+
+def answer(ctx: TestContext, state: KernelState, rows, responses, *, elapsed=None,
+           count_eligible=False) -> Picked:
+    """Record answers to the pending items of ``rows`` and move their tests on.
+
+    Parameters
+    ----------
+    rows : int array, shape (R,)
+        Examinees answering (each must have a pending item).
+    responses : int array, shape (R,)
+        Observed categories (validated by the caller).
+    elapsed : float array, shape (R,), optional
+        Seconds the app reports the examinee has spent so far.
+
+    Returns
+    -------
+    Picked
+        The next items (``item`` -1 where the test stopped).
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    responses = np.asarray(responses, dtype=np.int64)
+    if elapsed is not None:
+        state.elapsed[rows] = np.asarray(elapsed, dtype=float)
+    _record(ctx, state, rows, responses)
+    _update_estimate(ctx, state, rows)
+    picked = select(ctx, state, rows, count_eligible=count_eligible)
+    reasons = _stop_reasons(ctx, state, rows, picked)
+    stop = reasons != ""
+    state.done[rows[stop]] = True
+    state.stop_reason[rows[stop]] = reasons[stop]
+    go = ~stop
+    picked_go = Picked(item=np.where(go, picked.item, -1), value=np.where(go, picked.value, np.nan),
+                       eligible=picked.eligible,
+                       withheld=[w for w in picked.withheld if not state.done[w[0]]])
+    _apply_pick(ctx, state, rows, picked_go)
+    return picked_go
+
+
+def _apply_pick(ctx, state, rows, picked: Picked) -> None:
+    state.pending[rows] = picked.item
+    state.pending_value[rows] = picked.value
+    state.pending_eligible[rows] = picked.eligible
+    for r, i in picked.withheld:
+        state.used[r, i] = True  # Sympson-Hetter: withheld for the rest of the test
+
+
+def _record(ctx, state, rows, responses) -> None:
+    item = state.pending[rows]
+    if np.any(item < 0):
+        raise ValueError("an examinee without a pending item was given an answer")
+    pos = state.n_given[rows]
+    scored = ctx.operational[item]
+    state.items[rows, pos] = item
+    state.responses[rows, pos] = responses
+    state.scored[rows, pos] = scored
+    state.n_given[rows] += 1
+    state.n_scored[rows] += scored
+    state.n_pretest[rows] += ~scored
+    state.used[rows, item] = True
+    state.pending[rows] = -1
+    sr = rows[scored]
+    si = item[scored]
+    state.area_counts[sr, ctx.area[si]] += 1
+    groups = ctx.item_groups[item]  # (R, W)
+    state.blocked_groups[rows[:, None], groups] = True
+    state.blocked_groups[:, ctx.n_groups] = False  # the "no group" column never blocks
+    # item sets: entering a set makes it current; its last item closes it
+    s = ctx.item_set[item]
+    for k in np.flatnonzero(s >= 0):
+        r = rows[k]
+        members = ctx.set_members[s[k]]
+        state.current_set[r] = s[k] if (~state.used[r, members]).any() else -1
+    # the posterior takes scored answers only
+    update = ctx.log_table_by_category[si, responses[scored]]
+    if sr.size == state.size and sr.size and sr[0] == 0 and sr[-1] == sr.size - 1:
+        state.log_post += update  # the whole batch in order: no gather/scatter round trip
+    else:
+        state.log_post[sr] += update
+
+
+def _update_estimate(ctx, state, rows) -> None:
+    """Interim estimate after an answer (the design's scoring method)."""
+    sc = ctx.design.scoring
+    eap, sd = posterior_mean_sd(state.log_post[rows], ctx.grid)
+    if sc.method == "eap":
+        state.theta[rows], state.se[rows] = eap, sd
+        return
+    from ..irt.estimation import estimate
+
+    items, resp = state.scored_items(rows)
+    fallback_theta, fallback_se = eap, sd
+    if sc.method == "map" or sc.until_mixed == "map":
+        m = estimate(ctx.bank, items, resp, "map", prior_mean=state.prior_mean[rows],
+                     prior_sd=state.prior_sd[rows], bounds=(sc.grid_min, sc.grid_max), grid=ctx.grid)
+        if sc.method == "map":
+            state.theta[rows], state.se[rows] = m.theta, m.se
+            return
+        fallback_theta, fallback_se = m.theta, m.se
+    est = estimate(ctx.bank, items, resp, sc.method, prior_mean=state.prior_mean[rows],
+                   prior_sd=state.prior_sd[rows], bounds=(sc.grid_min, sc.grid_max), grid=ctx.grid)
+    mixed = _mixed(ctx, items, resp)
+    if sc.until_mixed == "fixed_step":
+        last = resp[np.arange(rows.size), np.maximum(state.n_given[rows] - 1, 0)]
+        last_item = items[np.arange(rows.size), np.maximum(state.n_given[rows] - 1, 0)]
+        top = ctx.bank.n_categories[np.maximum(last_item, 0)] - 1
+        direction = np.where(last >= top, 1.0, np.where(last <= 0, -1.0, 0.0))
+        fallback_theta = np.clip(state.theta[rows] + direction * sc.fixed_step, sc.grid_min, sc.grid_max)
+        fallback_se = sd
+    state.theta[rows] = np.where(mixed, est.theta, fallback_theta)
+    state.se[rows] = np.where(mixed, est.se, fallback_se)
+
+
+def _mixed(ctx, items, resp) -> np.ndarray:
+    """True where the scored pattern is neither all-lowest nor all-highest, (R,)."""
+    given = items >= 0
+    top = ctx.bank.n_categories[np.where(given, items, 0)] - 1
+    all_low = np.all(~given | (resp == 0), axis=1)
+    all_high = np.all(~given | (resp == top), axis=1)
+    return given.any(axis=1) & ~all_low & ~all_high
+
+
+def _best_information_item(ctx, state, rows, picked) -> tuple[np.ndarray, np.ndarray]:
+    """The most informative eligible item at theta and its information, (R,) each."""
+    design = ctx.design
+    item = picked.item.copy()
+    value = picked.value.copy()
+    # the pick itself is the answer when it was made by maximum information alone; pretest
+    # items and items that continue a set (value NaN) are not, nor are exposure-controlled picks
+    known = np.isfinite(value) & (design.selection.criterion == "max_fisher_information") \
+        & (design.exposure.method == "none")
+    todo = np.flatnonzero(~known)
+    if todo.size:
+        sub = rows[todo]
+        cand = np.broadcast_to(np.arange(ctx.n_items), (sub.size, ctx.n_items))
+        info = models.information(all_item_params(ctx), state.theta[sub][:, None])
+        info = np.where(eligible(ctx, state, sub, cand), info, -np.inf)
+        best = np.argmax(info, axis=1)
+        best_value = info[np.arange(sub.size), best]
+        item[todo] = np.where(np.isfinite(best_value), best, -1)
+        value[todo] = best_value
+    return item, value
+
+
+def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:
+    st = ctx.design.stopping
+    kwargs = {}
+    if st.sprt is not None or st.confidence_interval is not None:
+        items, resp = state.scored_items(rows)
+    if st.sprt is not None:
+        kwargs["sprt_llr"] = stopping.sprt_log_likelihood_ratio(
+            ctx.bank.params, items, resp, cut=st.sprt.cut, indifference=st.sprt.indifference)
+    if st.confidence_interval is not None:
+        kwargs["ci_decision"] = stopping.confidence_interval_decision(
+            state.theta[rows], state.se[rows], cut=st.confidence_interval.cut,
+            confidence=st.confidence_interval.confidence)
+    if st.se_reduction is not None or st.min_information is not None:
+        best, info = _best_information_item(ctx, state, rows, picked)
+        if st.min_information is not None:
+            kwargs["best_information"] = np.where(best >= 0, info, 0.0)
+        if st.se_reduction is not None:
+            table = ctx.log_table[np.maximum(best, 0)]
+            red = stopping.predicted_se_reduction(state.log_post[rows], ctx.grid, table)
+            kwargs["se_reduction"] = np.where(best >= 0, red, 0.0)
+    if st.time_limit is not None:
+        kwargs["elapsed"] = state.elapsed[rows]
+    reasons = stopping.stop_reasons(st, n_scored=state.n_scored[rows], se=state.se[rows],
+                                    no_eligible=picked.item < 0, **kwargs)
+    if ctx.balanced:
+        # a test whose blueprint minimums are not yet met goes on, like one below
+        # min_items: only the hard ends (max_items, no_eligible_item) stop it
+        short = np.any(state.area_counts[rows] < ctx.area_min[None, :], axis=1)
+        hard = np.isin(reasons, ("max_items", "no_eligible_item"))
+        reasons = np.where(short & ~hard, "", reasons).astype(object)
+    return reasons
+
+
+@attrs.frozen(eq=False)
+class FinalEstimates:
+    """Final scores of a batch, as arrays (R,): what :func:`finish` turns into reports."""
+
+    theta: np.ndarray
+    se: np.ndarray
+    status: np.ndarray
+    lz_star: np.ndarray
+    sprt_decision: np.ndarray | None  # +1 above / -1 below / 0 undecided; None without SPRT
+
+
+def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimates:
+    """Final estimate (the design's final method), person fit and SPRT decision for ``rows``."""
+    from ..irt.estimation import estimate
+    from ..irt.person_fit import person_fit
+
+    rows = np.asarray(rows, dtype=np.int64)
+    design = ctx.design
+    sc = design.scoring
+    items, resp = state.scored_items(rows)
+    method = design.final_method
+    if method == "eap":
+        theta, se = posterior_mean_sd(state.log_post[rows], ctx.grid)
+        status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
+    else:
+        est = estimate(ctx.bank, items, resp, method, prior_mean=state.prior_mean[rows],
+                       prior_sd=state.prior_sd[rows], bounds=(sc.grid_min, sc.grid_max), grid=ctx.grid)
+        theta, se, status = est.theta, est.se, est.status
+    fit = person_fit(ctx.bank.params, items, resp, theta, method=method,
+                     prior_mean=state.prior_mean[rows], prior_sd=state.prior_sd[rows])
+    sprt_dec = None
+    if design.stopping.sprt is not None:
+        s = design.stopping.sprt
+        llr = stopping.sprt_log_likelihood_ratio(ctx.bank.params, items, resp, cut=s.cut,
+                                                 indifference=s.indifference)
+        sprt_dec = stopping.sprt_decision(llr, alpha=s.alpha, beta=s.beta)
+    return FinalEstimates(theta=theta, se=se, status=status, lz_star=fit.lz_star, sprt_decision=sprt_dec)
+
+
+def finish(ctx: TestContext, state: KernelState, rows, estimates: FinalEstimates | None = None) -> list[dict]:
+    """Final report (a JSON-ready dict) per examinee of ``rows``."""
+    from .final_report import final_reports
+
+    rows = np.asarray(rows, dtype=np.int64)
+    est = final_estimates(ctx, state, rows) if estimates is None else estimates
+    return final_reports(
+        ctx.design, theta=est.theta, se=est.se, status=est.status, n_scored=state.n_scored[rows],
+        n_pretest=state.n_pretest[rows], stop_reason=state.stop_reason[rows],
+        lz_star=est.lz_star, sprt_decision=est.sprt_decision,
+    )
+
+
+def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, items, responses,
+            *, elapsed=None) -> tuple[KernelState, Picked | None]:
+    """Restore one examinee's state by replaying their answers through the kernel.
+
+    Because every decision is a pure function of the design, the bank, the stream key and
+    the answers, replaying gives exactly the state the examinee had (including the pending
+    item) -- this is how a session resumes after a crash.
+
+    Returns the state and the last pick (None when no answer was given).
+    """
+    state, picked = start(ctx, np.array([key], dtype=np.uint64), prior_mean=prior_mean, prior_sd=prior_sd)
+    rows = np.zeros(1, dtype=np.int64)
+    for k, (item, resp) in enumerate(zip(items, responses)):
+        if state.pending[0] != item:
+            raise ValueError(f"replay diverged at answer {k + 1}: expected item row {state.pending[0]}, log has {item}")
+        t = None if elapsed is None or elapsed[k] is None else np.array([elapsed[k]], dtype=float)
+        picked = answer(ctx, state, rows, np.array([resp]), elapsed=t)
+    return state, picked

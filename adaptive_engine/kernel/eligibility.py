@@ -1,0 +1,95 @@
+"""Which items an examinee may get next: items given, enemy groups, item sets, blueprint.
+
+One mechanism serves both selection paths: :func:`eligible` takes a matrix of candidate
+items per examinee (a short ranked list, or every item of the bank) and returns the mask.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .prepared import TestContext
+from .state import KernelState
+
+
+def area_limits(ctx: TestContext, state: KernelState, rows: np.ndarray):
+    """Per-examinee area facts for the blueprint.
+
+    Returns
+    -------
+    open_area : bool (R, A)
+        Areas that may still receive an item: below their maximum and, when the remaining
+        slots are needed to reach unmet minimums, only areas below their minimum
+        (Kingsbury & Zara 1989, constrained CAT).
+    """
+    counts = state.area_counts[rows]
+    below_max = counts < ctx.area_max[None, :]
+    if not ctx.balanced:
+        return below_max
+    unmet = np.maximum(ctx.area_min[None, :] - counts, 0)
+    slots = ctx.design.stopping.max_items - state.n_scored[rows]
+    must_fill = unmet.sum(axis=1) >= slots
+    needy = unmet > 0
+    return below_max & np.where(must_fill[:, None], needy, True)
+
+
+def set_fits(ctx: TestContext, state: KernelState, rows: np.ndarray, open_area: np.ndarray) -> np.ndarray:
+    """bool (R, S): item sets that may be entered (fit in the remaining length and areas)."""
+    n_sets = len(ctx.set_members)
+    if n_sets == 0:
+        return np.zeros((rows.size, 0), dtype=bool)
+    sizes = ctx.set_area_counts.sum(axis=1)
+    slots = ctx.design.stopping.max_items - state.n_scored[rows]
+    fits = sizes[None, :] <= slots[:, None]
+    room = ctx.area_max[None, None, :] - state.area_counts[rows][:, None, :]  # (R, 1, A)
+    fits &= np.all(ctx.set_area_counts[None, :, :] <= room, axis=2)
+    # no member of the set may be an enemy of an item already given
+    if ctx.n_groups:
+        hit = np.take_along_axis(state.blocked_groups[rows], ctx.set_groups.reshape(1, -1).repeat(rows.size, 0), axis=1)
+        fits &= ~hit.reshape(rows.size, *ctx.set_groups.shape).any(axis=2)
+    # a set may be entered only through an open area
+    touches_open = (ctx.set_area_counts[None, :, :] > 0) & open_area[:, None, :]
+    fits &= touches_open.any(axis=2)
+    return fits
+
+
+def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.ndarray,
+             *, open_area=None, fits=None) -> np.ndarray:
+    """Mask of eligible operational candidates.
+
+    Parameters
+    ----------
+    rows : int (R,)
+        Examinees (rows of ``state``).
+    cand : int (R, K)
+        Candidate items per examinee; -1 entries are never eligible.
+
+    Returns
+    -------
+    bool (R, K)
+    """
+    valid = cand >= 0
+    c = np.where(valid, cand, 0)
+    # a flat take is several times faster than 2-D fancy indexing of used[rows, c]
+    flat = c + (rows * ctx.n_items)[:, None]
+    ok = valid & ~np.take(state.used.reshape(-1), flat)
+    if not ctx.operational.all():
+        ok &= ctx.operational[c]
+    if ctx.n_groups:
+        groups = ctx.item_groups[c]  # (R, K, W)
+        hit = np.take_along_axis(state.blocked_groups[rows], groups.reshape(rows.size, -1), axis=1)
+        ok &= ~hit.reshape(groups.shape).any(axis=2)
+    if ctx.balanced:  # without rules every area stays open
+        if open_area is None:
+            open_area = area_limits(ctx, state, rows)
+        ok &= np.take_along_axis(open_area, ctx.area[c], axis=1)
+    if len(ctx.set_members):
+        if open_area is None:
+            open_area = area_limits(ctx, state, rows)
+        if fits is None:
+            fits = set_fits(ctx, state, rows, open_area)
+        s = ctx.item_set[c]
+        in_set = s >= 0
+        set_ok = np.take_along_axis(fits, np.where(in_set, s, 0), axis=1) if fits.shape[1] else np.zeros_like(in_set)
+        ok &= ~in_set | set_ok
+    return ok

@@ -1,0 +1,413 @@
+"""Next-item selection for a batch of examinees: criteria, exposure control, blueprint.
+
+Order of business for each examinee who needs an item:
+
+1. a pretest item is due (its seeded position has come and no item set is in progress):
+   a random unused pretest item;
+2. an item set is in progress: its next item, in bank order;
+3. otherwise the design's criterion ranks the eligible operational items (restricted to one
+   content area by constrained selection, or weighted by the maximum priority index), and
+   the exposure method picks among the ranked items.
+
+Maximum Fisher information -- the common case, and the one that must be fast for
+simulation -- first tries a short list: the items ranked best on a fine grid near the
+examinee's theta (:mod:`adaptive_engine.kernel.prepared`).  Exact information is computed for the
+first few eligible ones, and the pick is accepted only when it provably beats every item
+not evaluated (their information cannot exceed a precomputed ceiling).  Rows where that
+proof fails go through the general path, which evaluates every item; both paths give the
+same item.
+"""
+
+from __future__ import annotations
+
+import attrs
+import numpy as np
+
+from ..irt import models
+from ..irt.posterior import posterior_weights
+from . import random_streams as randomness
+from .eligibility import area_limits, eligible, set_fits
+from .prepared import RANK_STEP, TestContext, ranked_tables
+from .state import KernelState
+
+#: Exactly evaluated candidates per examinee on the short-list path.
+SHORTLIST_EXACT = 8
+#: Rows evaluated together on the general path (bounds memory at rows x items).
+ROW_CHUNK = 1024
+#: Items ranked per row on the general path before falling back to a full sort.
+GENERAL_TOP = 64
+
+
+@attrs.frozen(eq=False)
+class Picked:
+    """Items picked for rows of a batch (all arrays (R,)).
+
+    ``item`` is -1 where no eligible item was left; ``value`` is the criterion value of the
+    picked item; ``eligible`` the size of the eligible set (-1 when not counted).
+    """
+
+    item: np.ndarray
+    value: np.ndarray
+    eligible: np.ndarray
+    withheld: list = attrs.field(factory=list)  # (row, item) pairs Sympson-Hetter withheld
+
+
+def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_eligible: bool = False) -> Picked:
+    """Pick the next item for ``rows`` of ``state`` (state is not changed)."""
+    rows = np.asarray(rows, dtype=np.int64)
+    r_n = rows.size
+    item = np.full(r_n, -1, dtype=np.int64)
+    value = np.full(r_n, np.nan)
+    n_elig = np.full(r_n, -1, dtype=np.int64)
+    todo = np.ones(r_n, dtype=bool)
+    withheld: list = []
+
+    # 1. pretest items at their seeded positions
+    positions = ctx.design.blueprint.pretest_positions
+    if positions and ctx.pretest_items.size:
+        due_count = np.searchsorted(np.sort(positions), state.n_given[rows] + 1, side="right")
+        due = (state.n_pretest[rows] < due_count) & (state.current_set[rows] < 0)
+        if due.any():
+            got = _pick_pretest(ctx, state, rows[due])
+            sel = np.flatnonzero(due)[got >= 0]
+            item[sel] = got[got >= 0]
+            todo[sel] = False
+
+    # 2. item sets in progress
+    in_set = todo & (state.current_set[rows] >= 0)
+    for pos in np.flatnonzero(in_set):
+        r = rows[pos]
+        members = ctx.set_members[state.current_set[r]]
+        left = members[~state.used[r, members]]
+        if left.size:
+            item[pos] = left[0]
+            value[pos] = np.nan
+            todo[pos] = False
+
+    # 3. the criterion
+    pending = np.flatnonzero(todo)
+    if pending.size:
+        sub = rows[pending]
+        got_item, got_value, got_withheld = _criterion_pick(ctx, state, sub)
+        item[pending] = got_item
+        value[pending] = got_value
+        withheld.extend(got_withheld)
+    if count_eligible:
+        all_items = np.broadcast_to(np.arange(ctx.n_items), (r_n, ctx.n_items))
+        n_elig = eligible(ctx, state, rows, all_items).sum(axis=1)
+    return Picked(item=item, value=value, eligible=n_elig, withheld=withheld)
+
+
+def _pick_pretest(ctx, state, rows) -> np.ndarray:
+    pool = ctx.pretest_items
+    free = ~state.used[rows][:, pool]
+    if ctx.n_groups:
+        groups = ctx.item_groups[pool]
+        hit = np.take_along_axis(state.blocked_groups[rows],
+                                 np.broadcast_to(groups.reshape(1, -1), (rows.size, groups.size)), axis=1)
+        free &= ~hit.reshape(rows.size, *groups.shape).any(axis=2)
+    count = free.sum(axis=1)
+    u = randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.PRETEST)
+    k = np.minimum((u * count).astype(np.int64), np.maximum(count - 1, 0))
+    # the k-th free pretest item
+    order = np.argsort(~free, axis=1, kind="stable")
+    chosen = pool[np.take_along_axis(order, k[:, None], axis=1)[:, 0]]
+    return np.where(count > 0, chosen, -1)
+
+
+# ----------------------------------------------------------------------------------------
+# criterion-based choice
+
+
+def _target_area(ctx, state, rows, open_area) -> np.ndarray:
+    """Constrained CAT (Kingsbury & Zara 1989): the open area furthest below its share."""
+    n = np.maximum(state.n_scored[rows], 1)
+    gap = ctx.area_share[None, :] - state.area_counts[rows] / n[:, None]
+    gap = np.where(open_area, gap, -np.inf)
+    target = np.argmax(gap, axis=1)
+    return np.where(np.isfinite(gap.max(axis=1)), target, -1)
+
+
+def _criterion_pick(ctx, state, rows):
+    design = ctx.design
+    open_area = area_limits(ctx, state, rows)
+    fits = set_fits(ctx, state, rows, open_area)
+    restrict = np.full(rows.size, -1, dtype=np.int64)
+    if ctx.balanced and design.blueprint.method == "constrained":
+        restrict = _target_area(ctx, state, rows, open_area)
+    item = np.full(rows.size, -1, dtype=np.int64)
+    value = np.full(rows.size, np.nan)
+    withheld: list = []
+    left = np.ones(rows.size, dtype=bool)
+    fast = (
+        design.selection.criterion == "max_fisher_information"
+        and design.exposure.method in ("none", "randomesque", "sympson_hetter")
+        and not design.blueprint.shadow_test
+        and not (ctx.balanced and design.blueprint.method == "max_priority_index")
+    )
+    if fast:
+        ok_rows, it, val, wh = _shortlist_pick(ctx, state, rows, restrict, open_area, fits)
+        item[ok_rows] = it
+        value[ok_rows] = val
+        withheld.extend(wh)
+        left[ok_rows] = False
+    rest = np.flatnonzero(left)
+    for start in range(0, rest.size, ROW_CHUNK):
+        part = rest[start : start + ROW_CHUNK]
+        it, val, wh = _general_pick(ctx, state, rows[part], restrict[part], open_area[part], fits[part])
+        if design.blueprint.shadow_test:
+            from .shadow import shadow_test_pick
+
+            it, val = shadow_test_pick(ctx, state, rows[part], it, val)
+        item[part] = it
+        value[part] = val
+        withheld.extend(wh)
+    return item, value, withheld
+
+
+def _needed(ctx, state, rows) -> tuple[np.ndarray, str]:
+    """How many top items the exposure method draws among, and the method."""
+    design = ctx.design
+    method = design.exposure.method
+    first = state.n_given[rows] == 0
+    k_first = design.opening.first_items_from_top
+    if method == "randomesque":
+        n = np.full(rows.size, design.exposure.candidates)
+        if k_first > 1:
+            n = np.where(first, k_first, n)
+        return n, "randomesque"
+    if k_first > 1 and first.any():
+        return np.where(first, k_first, 1), "randomesque_first"
+    return np.ones(rows.size, dtype=np.int64), method
+
+
+def _choose_ranked(ctx, state, rows, cand, values, ok):
+    """Apply the exposure method to candidates ranked by value.
+
+    Returns the chosen item and its value, the value of the last ranked entry the choice
+    depended on (``kth``: the ``depth``-th best), ``depth``, and withheld items.
+    """
+    masked = np.where(ok, values, -np.inf)
+    n_ok = ok.sum(axis=1)
+    need, method = _needed(ctx, state, rows)
+    if method in ("none", "progressive") or (method == "randomesque_first" and np.all(need == 1)):
+        # the best item: no ranking needed (ties go to the first, as in a stable sort)
+        pos = np.argmax(masked, axis=1)
+        best = masked[np.arange(rows.size), pos]
+        chosen = np.where(n_ok > 0, cand[np.arange(rows.size), pos], -1)
+        return chosen, np.where(n_ok > 0, best, np.nan), best, np.ones(rows.size, dtype=np.int64), []
+    order = np.argsort(-masked, axis=1, kind="stable")
+    s_cand = np.take_along_axis(cand, order, axis=1)
+    s_val = np.take_along_axis(masked, order, axis=1)
+    pos = np.zeros(rows.size, dtype=np.int64)
+    withheld = []
+    if method.startswith("randomesque"):
+        width = np.minimum(need, n_ok)
+        purpose = randomness.RANDOMESQUE if method == "randomesque" else randomness.FIRST_ITEM
+        u = randomness.uniforms(state.keys[rows], state.n_given[rows], purpose)
+        pos = np.minimum((u * width).astype(np.int64), np.maximum(width - 1, 0))
+        depth = np.maximum(width, 1)
+        # with fewer than `need` eligible items listed, unlisted ones could belong in the draw
+        depth = np.where(n_ok < need, need, depth)
+    elif method == "sympson_hetter":
+        # Conditional parameters (Stocking & Lewis 1998) are indexed by the stratum of the
+        # interim estimate: the true ability is unknown in operational use.  Unconditional
+        # parameters have no cut points, so every examinee is in stratum 0.
+        stratum = np.searchsorted(ctx.exposure_cuts, state.theta[rows], side="right")
+        k = ctx.exposure_k[stratum[:, None], np.where(s_cand >= 0, s_cand, 0)]
+        u = randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.SYMPSON_HETTER, s_cand)
+        passes = (u < k) & np.isfinite(s_val)
+        any_pass = passes.any(axis=1)
+        pos = np.where(any_pass, np.argmax(passes, axis=1), 0)
+        depth = np.where(any_pass, pos + 1, n_ok + 1)  # none passed: depends on the whole list
+        for r_pos in np.flatnonzero(any_pass & (pos > 0)):
+            for j in range(pos[r_pos]):
+                if np.isfinite(s_val[r_pos, j]):
+                    withheld.append((int(rows[r_pos]), int(s_cand[r_pos, j])))
+    else:
+        depth = np.ones(rows.size, dtype=np.int64)
+    chosen = np.take_along_axis(s_cand, pos[:, None], axis=1)[:, 0]
+    chosen_val = np.take_along_axis(s_val, pos[:, None], axis=1)[:, 0]
+    none_left = n_ok == 0
+    chosen = np.where(none_left, -1, chosen)
+    chosen_val = np.where(none_left, np.nan, chosen_val)
+    kth = np.take_along_axis(s_val, np.clip(depth - 1, 0, s_val.shape[1] - 1)[:, None], axis=1)[:, 0]
+    return chosen, chosen_val, kth, depth, withheld
+
+
+def _shortlist_pick(ctx, state, rows, restrict, open_area, fits):
+    """Maximum-information pick from the ranked short lists; returns the rows it proved."""
+    tables = ranked_tables(ctx.bank)
+    items_tab, reach_tab, ceil_tab, grid = tables.items, tables.reach, tables.ceiling, tables.grid
+    theta = state.theta[rows]
+    g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
+    inside = (g >= 0) & (g < grid.size)
+    g = np.clip(g, 0, grid.size - 1)
+    which = np.where(restrict >= 0, restrict, len(ctx.bank.areas))
+    cand = items_tab[which, g]  # (R, D)
+    reach = reach_tab[which, g]
+    ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
+    # the first few eligible candidates (in grid order) get exact information; the
+    # Sympson-Hetter lottery rejects many top items, so it gets a longer list
+    n_exact = min(cand.shape[1], SHORTLIST_EXACT * (3 if ctx.design.exposure.method == "sympson_hetter" else 1))
+    # compact the first n_exact eligible columns of each row, in grid order (-1: none)
+    rank = np.cumsum(ok, axis=1, dtype=np.int16)
+    r_idx, c_idx = np.nonzero(ok & (rank <= n_exact))
+    first = np.full((rows.size, n_exact), -1, dtype=np.int64)
+    first[r_idx, rank[r_idx, c_idx] - 1] = c_idx
+    ex_ok = first >= 0
+    ex_cand = np.where(ex_ok, np.take_along_axis(cand, np.maximum(first, 0), axis=1), -1)
+    params = ctx.bank.params.take(np.maximum(ex_cand, 0))
+    exact = models.information(params, theta[:, None])
+    # ceiling of everything not evaluated: unlisted items, and listed eligible ones beyond
+    rest = np.where(ok & (rank > n_exact), reach, -np.inf).max(axis=1)
+    ceiling = np.maximum(ceil_tab[which, g], rest)
+    chosen, chosen_val, kth, depth, withheld = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
+    proven = inside & (depth <= n_exact) & (kth >= ceiling) & (chosen >= 0)
+    keep = np.flatnonzero(proven)
+    keep_rows = set(rows[keep].tolist())
+    return keep, chosen[keep], chosen_val[keep], [w for w in withheld if w[0] in keep_rows]
+
+
+def _general_pick(ctx, state, rows, restrict, open_area, fits):
+    n = ctx.n_items
+    cand = np.broadcast_to(np.arange(n), (rows.size, n))
+    ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
+    restricted = restrict >= 0
+    if restricted.any():
+        in_area = ctx.area[None, :] == restrict[:, None]
+        has = (ok & in_area).any(axis=1)
+        # an area with no eligible item left does not block the test: use all open areas
+        ok = np.where((restricted & has)[:, None], ok & in_area, ok)
+    values = criterion_values(ctx, state, rows, ok)
+    if n <= 2 * GENERAL_TOP:
+        chosen, chosen_val, _, _, withheld = _choose_ranked(ctx, state, rows, cand, values, ok)
+        return chosen, chosen_val, withheld
+    # Rank only the best GENERAL_TOP items of each row (sorted by item first, so ties order
+    # as in a full stable sort); rows whose choice reaches past them are ranked in full.
+    masked = np.where(ok, values, -np.inf)
+    top = np.sort(np.argpartition(-masked, GENERAL_TOP - 1, axis=1)[:, :GENERAL_TOP], axis=1)
+    top_ok = np.take_along_axis(ok, top, axis=1)
+    chosen, chosen_val, _, depth, withheld = _choose_ranked(
+        ctx, state, rows, top, np.take_along_axis(values, top, axis=1), top_ok)
+    redo = np.flatnonzero((depth > GENERAL_TOP) | ((depth == GENERAL_TOP) & (ok.sum(axis=1) > GENERAL_TOP)))
+    if redo.size:
+        redo_rows = set(rows[redo].tolist())
+        withheld = [w for w in withheld if w[0] not in redo_rows]
+        c2, v2, _, _, w2 = _choose_ranked(ctx, state, rows[redo], cand[redo], values[redo], ok[redo])
+        chosen[redo], chosen_val[redo] = c2, v2
+        withheld.extend(w2)
+    return chosen, chosen_val, withheld
+
+
+def criterion_values(ctx, state, rows, ok) -> np.ndarray:
+    """Criterion value of every item for ``rows``, (R, n); higher is better."""
+    design = ctx.design
+    crit = design.selection.criterion
+    theta = state.theta[rows]
+    n = ctx.n_items
+    if crit == "random":
+        return randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.RANDOM_CRITERION,
+                                   np.broadcast_to(np.arange(n), (rows.size, n)))
+    if crit == "max_fisher_information":
+        values = models.information(all_item_params(ctx), theta[:, None])
+    elif crit == "posterior_weighted_information":
+        # van der Linden (1998): information averaged over the current posterior
+        w = posterior_weights(state.log_post[rows])
+        # per-row sums without BLAS: a matrix product rounds differently with the batch size
+        values = np.einsum("rg,ng->rn", w, ctx.info_grid)
+    elif crit == "kullback_leibler":
+        values = _kl_values(ctx, state, rows)
+    elif crit == "a_stratified":
+        values = _stratified_values(ctx, state, rows, ok)
+    else:  # pragma: no cover - the design reader refuses other names
+        raise ValueError(f"unknown criterion {crit!r}")
+    if ctx.balanced and design.blueprint.method == "max_priority_index":
+        values = values * _priority_index(ctx, state, rows)
+    if design.exposure.method == "progressive":
+        values = _progressive(ctx, state, rows, values, ok)
+    return values
+
+
+def all_item_params(ctx):
+    """All items' parameters shaped (1, n) to broadcast against theta (R, 1)."""
+    p = ctx.bank.params
+    return models.ItemParameters(
+        family=p.family[None, :], a=p.a[None, :], b=p.b[None, :], c=p.c[None, :], d=p.d[None, :],
+        thresholds=p.thresholds[None, :, :], n_categories=p.n_categories[None, :], scaling=p.scaling,
+    )
+
+
+def _kl_values(ctx, state, rows) -> np.ndarray:
+    """Kullback-Leibler information integrated over theta +- delta (Chang & Ying 1996).
+
+    ``delta = kl_interval / sqrt(max(n scored, 1))``; the integral uses 11 Gauss-Legendre
+    nodes on the interval.
+    """
+    theta = state.theta[rows]
+    delta = ctx.design.selection.kl_interval / np.sqrt(np.maximum(state.n_scored[rows], 1))
+    nodes, weights = np.polynomial.legendre.leggauss(11)
+    params = all_item_params(ctx)
+    log_p0 = models.log_probabilities(params, theta[:, None])  # (R, n, C)
+    p0 = np.exp(log_p0)
+    total = np.zeros((rows.size, ctx.n_items))
+    finite = np.isfinite(log_p0)  # categories an item does not have contribute nothing
+    for x, w in zip(nodes, weights):
+        log_p1 = models.log_probabilities(params, (theta + x * delta)[:, None])
+        terms = np.where(finite, p0 * (np.where(finite, log_p0, 0.0) - np.where(finite, log_p1, 0.0)), 0.0)
+        total += w * delta[:, None] * terms.sum(axis=2)
+    return total
+
+
+def _stratified_values(ctx, state, rows, ok) -> np.ndarray:
+    """a-stratified selection: closest difficulty within the current stratum.
+
+    The test moves through strata from low to high discrimination in equal stages of
+    ``max_items / strata`` items (Chang & Ying 1999); an exhausted stratum hands over to the
+    next one.
+    """
+    k = ctx.design.selection.strata
+    stage = np.minimum(state.n_scored[rows] * k // ctx.design.stopping.max_items, k - 1)
+    stratum = ctx.stratum[None, :]
+    # the lowest stratum >= stage that still has an eligible item
+    has = np.stack([(ok & (stratum == s)).any(axis=1) for s in range(k)], axis=1)  # (R, k)
+    allowed = has & (np.arange(k)[None, :] >= stage[:, None])
+    current = np.where(allowed.any(axis=1), np.argmax(allowed, axis=1), np.argmax(has, axis=1))
+    closeness = -np.abs(ctx.difficulty[None, :] - state.theta[rows][:, None])
+    return np.where(stratum == current[:, None], closeness, -np.inf)
+
+
+def _priority_index(ctx, state, rows) -> np.ndarray:
+    """Priority weights of the maximum priority index, (R, n).
+
+    The index multiplies an item's information by one factor per content constraint it
+    touches (Cheng & Chang 2009).  For an upper bound ``u`` with ``x`` items given the
+    factor is the remaining room ``(u - x) / u`` (published form, recalled from memory).
+    For a lower bound ``l`` not yet met this project multiplies by ``1 + (l - x) / l``, so
+    that areas short of their minimum are preferred early -- our own treatment, not the
+    published one; the minimums themselves are guaranteed by eligibility (the remaining
+    slots go to areas below their minimum once they are needed there).  Areas without
+    bounds weigh 1.
+    """
+    counts = state.area_counts[rows].astype(float)
+    lo = ctx.area_min[None, :].astype(float)
+    bounded = ctx.area_max < (1 << 30)
+    hi = np.minimum(ctx.area_max, ctx.design.stopping.max_items)[None, :].astype(float)
+    upper = np.where(bounded[None, :], (hi - counts) / np.maximum(hi, 1.0), 1.0)
+    lower = np.where(counts < lo, 1.0 + (lo - counts) / np.maximum(lo, 1.0), 1.0)
+    weight = upper * lower
+    return np.take_along_axis(weight, np.broadcast_to(ctx.area[None, :], (rows.size, ctx.n_items)), axis=1)
+
+
+def _progressive(ctx, state, rows, values, ok) -> np.ndarray:
+    """Progressive method (Revuelta & Ponsoda 1998): random part fades as the test goes on.
+
+    ``(1 - s) * U * max_value + s * value`` with ``s = (n given / max items) ** acceleration``
+    and U uniform per item.
+    """
+    s = (state.n_scored[rows] / ctx.design.stopping.max_items) ** ctx.design.exposure.acceleration
+    u = randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.PROGRESSIVE,
+                            np.broadcast_to(np.arange(ctx.n_items), (rows.size, ctx.n_items)))
+    top = np.where(ok, values, -np.inf).max(axis=1)
+    top = np.where(np.isfinite(top), top, 0.0)
+    return (1.0 - s)[:, None] * u * top[:, None] + s[:, None] * values

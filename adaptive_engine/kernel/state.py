@@ -1,0 +1,133 @@
+"""The per-examinee state of adaptive tests in progress, for a batch of examinees.
+
+All arrays have the examinee on the first axis.  The live driver keeps a batch of one and
+persists it (:meth:`KernelState.to_dict` / :meth:`KernelState.from_dict`); the simulation
+driver keeps thousands.
+"""
+
+from __future__ import annotations
+
+import attrs
+import numpy as np
+
+from .prepared import TestContext
+
+
+@attrs.define(eq=False)
+class KernelState:
+    """Where each examinee of a batch stands.
+
+    Attributes
+    ----------
+    keys : uint64 (B,)
+        Random stream keys (:mod:`adaptive_engine.kernel.random_streams`).
+    prior_mean, prior_sd : float (B,)
+    log_post : float (B, G)
+        Log posterior of theta on the context's grid (scored answers only).
+    items, responses : int (B, L)
+        Every item given, in order, and its answer; -1 padding (L = scored + pretest slots).
+    scored : bool (B, L)
+        False for pretest items.
+    n_given, n_scored, n_pretest : int (B,)
+    used : bool (B, n_items)
+        Items given (or withheld by Sympson-Hetter for the rest of the test).
+    area_counts : int (B, A)
+        Scored items given per content area.
+    blocked_groups : bool (B, E + 1)
+        Enemy groups already represented (last column: "no group", never blocked).
+    current_set : int (B,)
+        Item set in progress, -1 if none.
+    theta, se : float (B,)
+        Interim estimate.
+    pending : int (B,)
+        Item awaiting an answer, -1 if none.
+    pending_value, pending_eligible : (B,)
+        Criterion value of the pending item and size of the eligible set it came from.
+    done : bool (B,)
+    stop_reason : object (B,)
+        ``""`` while the test goes on.
+    elapsed : float (B,)
+        Seconds reported by the app (NaN when never reported).
+    """
+
+    keys: np.ndarray
+    prior_mean: np.ndarray
+    prior_sd: np.ndarray
+    log_post: np.ndarray
+    items: np.ndarray
+    responses: np.ndarray
+    scored: np.ndarray
+    n_given: np.ndarray
+    n_scored: np.ndarray
+    n_pretest: np.ndarray
+    used: np.ndarray
+    area_counts: np.ndarray
+    blocked_groups: np.ndarray
+    current_set: np.ndarray
+    theta: np.ndarray
+    se: np.ndarray
+    pending: np.ndarray
+    pending_value: np.ndarray
+    pending_eligible: np.ndarray
+    done: np.ndarray
+    stop_reason: np.ndarray
+    elapsed: np.ndarray
+
+    @property
+    def size(self) -> int:
+        return int(self.keys.shape[0])
+
+    @classmethod
+    def empty(cls, ctx: TestContext, keys, prior_mean, prior_sd) -> "KernelState":
+        keys = np.asarray(keys, dtype=np.uint64).reshape(-1)
+        b = keys.shape[0]
+        length = ctx.max_length
+        return cls(
+            keys=keys,
+            prior_mean=np.broadcast_to(np.asarray(prior_mean, dtype=float), (b,)).copy(),
+            prior_sd=np.broadcast_to(np.asarray(prior_sd, dtype=float), (b,)).copy(),
+            log_post=np.zeros((b, ctx.grid.size)),
+            items=np.full((b, length), -1, dtype=np.int64),
+            responses=np.full((b, length), -1, dtype=np.int64),
+            scored=np.zeros((b, length), dtype=bool),
+            n_given=np.zeros(b, dtype=np.int64),
+            n_scored=np.zeros(b, dtype=np.int64),
+            n_pretest=np.zeros(b, dtype=np.int64),
+            used=np.zeros((b, ctx.n_items), dtype=bool),
+            area_counts=np.zeros((b, ctx.n_areas), dtype=np.int64),
+            blocked_groups=np.zeros((b, ctx.n_groups + 1), dtype=bool),
+            current_set=np.full(b, -1, dtype=np.int64),
+            theta=np.zeros(b),
+            se=np.zeros(b),
+            pending=np.full(b, -1, dtype=np.int64),
+            pending_value=np.full(b, np.nan),
+            pending_eligible=np.zeros(b, dtype=np.int64),
+            done=np.zeros(b, dtype=bool),
+            stop_reason=np.full(b, "", dtype=object),
+            elapsed=np.full(b, np.nan),
+        )
+
+    def scored_items(self, rows=None) -> tuple[np.ndarray, np.ndarray]:
+        """Scored items and responses, (R, L) with -1 where pretest or not given."""
+        rows = slice(None) if rows is None else rows
+        items = np.where(self.scored[rows], self.items[rows], -1)
+        resp = np.where(self.scored[rows], self.responses[rows], -1)
+        return items, resp
+
+    # -- persistence of a single examinee --------------------------------------------
+    def to_dict(self, row: int = 0) -> dict:
+        """JSON-ready snapshot of one examinee (ability persisted as a list)."""
+        n = int(self.n_given[row])
+        return {
+            "key": int(self.keys[row]),
+            "prior": [float(self.prior_mean[row]), float(self.prior_sd[row])],
+            "items": [int(x) for x in self.items[row, :n]],
+            "responses": [int(x) for x in self.responses[row, :n]],
+            "scored": [bool(x) for x in self.scored[row, :n]],
+            "theta": [float(self.theta[row])],
+            "se": float(self.se[row]),
+            "pending": int(self.pending[row]),
+            "done": bool(self.done[row]),
+            "stop_reason": str(self.stop_reason[row]),
+            "elapsed": None if np.isnan(self.elapsed[row]) else float(self.elapsed[row]),
+        }

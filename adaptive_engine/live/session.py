@@ -1,0 +1,629 @@
+"""The live session controller: the decision kernel on a batch of one, persisted every step.
+
+Every request is answered from the store (:mod:`adaptive_engine.live.store`), so any process
+can serve any session: the session row says which design and bank it runs, the event log
+holds its answers, and :func:`adaptive_engine.kernel.rebuild` replays them into the exact
+kernel state (the kernel is a pure function of design, bank, seed and answers).  Replaying
+on every request would be slow, so a process keeps
+
+* one :class:`~adaptive_engine.kernel.prepared.TestContext` per ``(design_id, bank_id)`` and
+* the in-memory kernel state of the sessions it served, tagged with the sequence number of
+  the last event it reflects; before use the tag is compared with the session row read
+  under the write lock, and a state another process has moved on is rebuilt.
+
+Each answer is one transaction: the answer and next-item (or finished) events, the session
+row and the exposure count of the new item are written together or not at all.  Bad
+requests raise :class:`~adaptive_engine.errors.SessionError` and write nothing.
+
+Replies to the app are plain dicts that never carry item parameters: item id, content area,
+label, number of categories, the interim estimate, whether the test is done and, once it
+is, the final report.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import re
+import uuid
+from collections import OrderedDict
+from typing import Callable
+
+import attrs
+import numpy as np
+
+from ..bank.item_bank import ItemBank
+from ..design.types import Design
+from ..errors import SessionError
+from ..jsonable import plain
+from ..kernel import cycle as kernel
+from ..kernel.prepared import TestContext, build_context
+from ..kernel.random_streams import stream_key
+from ..kernel.state import KernelState
+from .store import SessionStore, bank_content, check_text, design_content, now_text, shown, to_json
+
+_ROW0 = np.zeros(1, dtype=np.int64)
+_MAX_SEED = 1 << 63
+#: An integer written in ASCII digits ('\d' would also take '١' or '１' as digits).
+_INTEGER_TEXT = re.compile(r"[+-]?[0-9]+", re.ASCII)
+#: Blanks allowed around a response sent as text.
+_BLANKS = " \t\r\n"
+#: Responses beyond this size are outside the categories of every item; they are compared
+#: at this size (an integer of 5,000 digits cannot even be printed by Python).
+_RESPONSE_CLIP = 10**18
+
+
+class ProcessCache:
+    """Per-process caches of test contexts and of the kernel states of sessions served.
+
+    Parameters
+    ----------
+    max_contexts, max_states : int
+        Least recently used entries beyond these are dropped.
+    """
+
+    def __init__(self, *, max_contexts: int = 8, max_states: int = 4096):
+        self.max_contexts = max_contexts
+        self.max_states = max_states
+        self._contexts: OrderedDict = OrderedDict()
+        self._states: OrderedDict = OrderedDict()
+
+    def context(self, store: SessionStore, design_id: str, bank_id: str, *,
+                design: Design | None = None, bank: ItemBank | None = None) -> TestContext:
+        """The context of a stored (design, bank) pair, built on first use."""
+        key = (design_id, bank_id)
+        ctx = self._contexts.get(key)
+        if ctx is None:
+            if design is None:
+                design = store.load_design(design_id)
+            if bank is None:
+                bank = store.load_bank(bank_id)
+            ctx = build_context(design, bank)
+            self._contexts[key] = ctx
+            while len(self._contexts) > self.max_contexts:
+                self._contexts.popitem(last=False)
+        else:
+            self._contexts.move_to_end(key)
+        return ctx
+
+    def has_context(self, design_id: str, bank_id: str) -> bool:
+        return (design_id, bank_id) in self._contexts
+
+    def state(self, store: SessionStore, session_id: str, seq: int) -> KernelState | None:
+        """The cached state if it reflects exactly the events up to ``seq``, else None."""
+        hit = self._states.get((store.key, session_id))
+        if hit is None or hit[0] != seq:
+            return None
+        self._states.move_to_end((store.key, session_id))
+        return hit[1]
+
+    def keep(self, store: SessionStore, session_id: str, seq: int, state: KernelState) -> None:
+        self._states[(store.key, session_id)] = (seq, state)
+        self._states.move_to_end((store.key, session_id))
+        while len(self._states) > self.max_states:
+            self._states.popitem(last=False)
+
+    def drop(self, store: SessionStore, session_id: str) -> None:
+        self._states.pop((store.key, session_id), None)
+
+    def clear(self) -> None:
+        self._contexts.clear()
+        self._states.clear()
+
+
+#: The cache used when a function is not given one.
+PROCESS_CACHE = ProcessCache()
+
+
+def clear_process_cache() -> None:
+    """Forget every cached context and session state of this process."""
+    PROCESS_CACHE.clear()
+
+
+# ----------------------------------------------------------------------------------------
+# checking what the app sends
+
+
+def _response_value(response, where: str) -> tuple[int, str]:
+    """The category the app sent, and how messages show it.
+
+    Accepted: a Python ``int`` or a numpy integer, or text of ASCII digits with an optional
+    sign and blanks around it.  Refused: booleans, floats (even ``1.0``), digits of other
+    scripts (``'١'``, ``'１'``) and anything else.  A value too large for any item is
+    compared as +-10**18, so the refusal can still name the item's range.
+    """
+    if isinstance(response, (int, np.integer)) and not isinstance(response, (bool, np.bool_)):
+        value = int(response)
+        text = shown(value)
+    elif isinstance(response, str) and _INTEGER_TEXT.fullmatch(response.strip(_BLANKS)):
+        text = response.strip(_BLANKS)
+        digits = text.lstrip("+-").lstrip("0")
+        # int() refuses text above 4300 digits; a category never has more than a few
+        value = int(text) if len(digits) <= 18 else (-1 if text[0] == "-" else 1) * _RESPONSE_CLIP
+        text = shown(text, limit=24)
+    else:
+        what = f"'{shown(response)}'" if isinstance(response, str) else shown(response)
+        raise SessionError(f"the response must be an integer category (an int, or text of ASCII digits), "
+                           f"got {what}", location=where)
+    return max(-_RESPONSE_CLIP, min(_RESPONSE_CLIP, value)), text
+
+
+def _finite_number(value, what: str, *, location: str) -> float:
+    """``value`` as a float if it is a finite real number (not a bool, not text)."""
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, float, np.integer, np.floating)):
+        what_it_is = f"'{shown(value)}'" if isinstance(value, str) else shown(value)
+        raise SessionError(f"{what} must be a number, got {what_it_is}", location=location)
+    try:
+        number = float(value)
+    except OverflowError:  # a Python int beyond the float range
+        number = math.inf
+    if not math.isfinite(number):
+        raise SessionError(f"{what} must be a finite number, got {shown(value)}", location=location)
+    return number
+
+
+def _elapsed_value(elapsed, where: str) -> float | None:
+    if elapsed is None:
+        return None
+    value = _finite_number(elapsed, "elapsed (seconds)", location=where)
+    if value < 0:
+        raise SessionError(f"elapsed must be a number of seconds >= 0, got {shown(elapsed)}", location=where)
+    return value
+
+
+def _seed_value(seed) -> int:
+    if seed is None:
+        # an unseeded session still gets one explicit, stored seed
+        return int.from_bytes(os.urandom(8), "little") % _MAX_SEED
+    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)):
+        raise SessionError(f"the seed must be an integer, got {shown(seed)}", location="seed")
+    if not 0 <= int(seed) < _MAX_SEED:
+        raise SessionError(f"the seed must lie in [0, 2**63), got {shown(int(seed))}", location="seed")
+    return int(seed)
+
+
+def _prior_values(design: Design, prior_mean, prior_sd) -> tuple[float, float]:
+    """The examinee-specific prior, checked against the design's ability grid.
+
+    The mean must lie on the grid [grid_min, grid_max]: the posterior lives on the grid,
+    and a prior centred far off it has no mass there (every estimate would be NaN).  The
+    SD must lie between one grid step and the grid's width: below one step the prior puts
+    all its mass on the nearest grid point (and underflows to zero everywhere for tiny
+    values); above the width it is flat on the grid already, so a larger value only
+    signals a mistake (a variance for an SD, another scale's units).
+    """
+    sc = design.scoring
+    lo, hi = float(sc.grid_min), float(sc.grid_max)
+    width = hi - lo
+    step = width / (sc.grid_points - 1)
+    mean, sd = float(sc.prior_mean), float(sc.prior_sd)
+    if prior_mean is not None:
+        mean = _finite_number(prior_mean, "the prior mean", location="prior_mean")
+        if not lo <= mean <= hi:
+            raise SessionError(f"the prior mean must lie on the design's ability grid [{lo:g}, {hi:g}], "
+                               f"got {shown(prior_mean)}", location="prior_mean")
+    if prior_sd is not None:
+        sd = _finite_number(prior_sd, "the prior SD", location="prior_sd")
+        # a relative margin so that an SD of exactly one step or the width passes
+        if not step * (1 - 1e-9) <= sd <= width * (1 + 1e-9):
+            raise SessionError(f"the prior SD must lie between one step of the design's ability grid "
+                               f"({step:g}) and the grid's width ({width:g}), got {shown(prior_sd)}",
+                               location="prior_sd")
+    return mean, sd
+
+
+# ----------------------------------------------------------------------------------------
+# replies and events
+
+
+def item_view(ctx: TestContext, row: int) -> dict | None:
+    """What the app may know of an item: id, area, label and number of categories."""
+    if row < 0:
+        return None
+    bank = ctx.bank
+    return {"item_id": str(bank.item_ids[row]), "area": str(bank.area[row]),
+            "label": str(bank.label[row]), "n_categories": int(bank.n_categories[row])}
+
+
+def _reply(session_id: str, ctx: TestContext, state: KernelState, result: dict | None) -> dict:
+    view = item_view(ctx, int(state.pending[0]))
+    reply = {
+        "session_id": session_id,
+        "item_id": None if view is None else view["item_id"],
+        "item": view,
+        "theta": float(state.theta[0]),
+        "se": float(state.se[0]),
+        "items_given": int(state.n_given[0]),
+        "done": bool(state.done[0]),
+    }
+    if state.done[0]:
+        reply["stop_reason"] = str(state.stop_reason[0])
+        reply["result"] = result
+    return plain(reply)
+
+
+def _rng_state(state: KernelState) -> str:
+    return to_json({"key": int(state.keys[0]), "position": int(state.n_given[0])})
+
+
+def _next_events(ctx: TestContext, state: KernelState, picked, seq: int, now: str) -> tuple[list[dict], dict | None]:
+    """The item_given or finished event that follows a start or an answer."""
+    item = int(state.pending[0])
+    if item >= 0:
+        value = float(picked.value[0])
+        return [{
+            "kind": "item_given", "seq": seq, "item_id": str(ctx.bank.item_ids[item]),
+            "scored": int(ctx.operational[item]), "theta": float(state.theta[0]), "se": float(state.se[0]),
+            "criterion": value if math.isfinite(value) else None,
+            "eligible": int(picked.eligible[0]) if picked.eligible[0] >= 0 else None,
+            "rng_state": _rng_state(state), "created_at": now,
+        }], None
+    result = plain(kernel.finish(ctx, state, _ROW0)[0])
+    return [{
+        "kind": "finished", "seq": seq, "theta": result.get("theta"), "se": result.get("se"),
+        "rng_state": _rng_state(state), "created_at": now,
+    }], result
+
+
+def _session_changes(ctx: TestContext, state: KernelState, seq: int, now: str, result: dict | None) -> dict:
+    snapshot = state.to_dict(0)
+    snapshot["pending_item_id"] = None if state.pending[0] < 0 else str(ctx.bank.item_ids[state.pending[0]])
+    return {
+        "status": "finished" if state.done[0] else "active",
+        "updated_at": now, "state": to_json(snapshot),
+        "result": None if result is None else to_json(result),
+        "last_seq": seq, "n_given": int(state.n_given[0]),
+        "pending_item": snapshot["pending_item_id"],
+    }
+
+
+# ----------------------------------------------------------------------------------------
+# the requests
+
+
+@attrs.frozen(eq=False)
+class PreparedStart:
+    """A start request that passed every check, with its first step computed.
+
+    Build with :func:`prepare_start` (needs no store), then write it with
+    :func:`commit_start`.  Nothing about it can be refused any more except by the store
+    itself (a session id already taken, a file that is not a store).
+    """
+
+    design: Design
+    bank: ItemBank
+    ctx: TestContext
+    state: KernelState
+    row: dict
+    events: list
+    result: dict | None
+
+
+def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None, seed: int | None = None,
+                  prior_mean: float | None = None, prior_sd: float | None = None,
+                  session_id: str | None = None, cache: ProcessCache | None = None) -> PreparedStart:
+    """Check a start request and compute the session's first step, touching no store.
+
+    Takes the options of :func:`start_session`.  A caller that may have to create the
+    store (the command line) calls this first, so that a refused request creates nothing.
+
+    Raises
+    ------
+    SessionError
+        A bad examinee id, session id, seed, prior mean or SD (``location`` names the
+        parameter).
+    DesignError
+        The design does not fit the bank.
+    """
+    cache = PROCESS_CACHE if cache is None else cache
+    if examinee is not None:
+        check_text(examinee, "the examinee id", location="examinee")
+    if session_id is not None:
+        check_text(session_id, "the session id", location="session_id")
+        if not session_id.strip():
+            raise SessionError("a session id must be non-empty text", location="session_id")
+    seed = _seed_value(seed)
+    mean, sd = _prior_values(design, prior_mean, prior_sd)
+    bank_id = bank_content(bank)[0]
+    design_id = design_content(design)[0]
+    if not cache.has_context(design_id, bank_id):
+        from ..design.bank_fit import require_design_fits_bank
+
+        require_design_fits_bank(design, bank)
+    # the context is built from the objects given: no store is read
+    ctx = cache.context(None, design_id, bank_id, design=design, bank=bank)
+    key = np.array([stream_key(seed)], dtype=np.uint64)
+    state, picked = kernel.start(ctx, key, prior_mean=mean, prior_sd=sd, count_eligible=True)
+    session_id = session_id or uuid.uuid4().hex
+    now = now_text()
+    events, result = _next_events(ctx, state, picked, 1, now)
+    row = {"session_id": session_id, "examinee": examinee, "bank_id": bank_id, "design_id": design_id,
+           "seed": seed, "created_at": now, "prior_mean": mean, "prior_sd": sd,
+           **_session_changes(ctx, state, 1, now, result)}
+    return PreparedStart(design=design, bank=bank, ctx=ctx, state=state, row=row,
+                         events=[dict(e, session_id=session_id) for e in events], result=result)
+
+
+def commit_start(store: SessionStore, prepared: PreparedStart, *, cache: ProcessCache | None = None) -> dict:
+    """Write a prepared start to ``store`` (one transaction) and return its reply.
+
+    Returns
+    -------
+    dict
+        As :func:`start_session`.
+    """
+    cache = PROCESS_CACHE if cache is None else cache
+    row, state = prepared.row, prepared.state
+    with store.writing():
+        store.put_bank(prepared.bank)
+        store.put_design(prepared.design)
+        store.insert_session(row)
+        store.append_events(prepared.events)
+        if state.pending[0] >= 0:
+            store.count_exposure(row["bank_id"], row["pending_item"])
+    cache.keep(store, row["session_id"], 1, state)
+    return _reply(row["session_id"], prepared.ctx, state, prepared.result)
+
+
+def start_session(store: SessionStore, design: Design, bank: ItemBank, *, examinee: str | None = None,
+                  seed: int | None = None, prior_mean: float | None = None, prior_sd: float | None = None,
+                  session_id: str | None = None, cache: ProcessCache | None = None) -> dict:
+    """Start a session of ``design`` on ``bank`` and return the first item.
+
+    Parameters
+    ----------
+    store : SessionStore
+    design, bank : Design, ItemBank
+        Stored in the store (once per content) so the session never needs the files again.
+    examinee : str, optional
+        The app's id of the examinee (not interpreted; valid Unicode text).
+    seed : int in [0, 2**63), optional
+        Fixes every random decision of the test; a fresh one is drawn and stored if absent.
+        ``randomness.examinee_seeds(S, N)[i]`` reproduces simulated examinee i of a run
+        with seed S.
+    prior_mean, prior_sd : float, optional
+        An examinee-specific prior (returning examinees); default: the design's.  The mean
+        must lie on the design's ability grid [grid_min, grid_max], the SD between one grid
+        step and the grid's width (defaults: [-6, 6], 0.1 .. 12).
+    session_id : str, optional
+        Default: a random UUID (hex).
+
+    Returns
+    -------
+    dict
+        ``session_id``, ``item_id`` (None if no item is eligible), ``item`` (id, area,
+        label, n_categories), ``theta``, ``se``, ``items_given``, ``done`` (and ``result``
+        when done).
+
+    Raises
+    ------
+    SessionError, DesignError
+        As :func:`prepare_start`, or the session id is taken.  Nothing is written then.
+    """
+    prepared = prepare_start(design, bank, examinee=examinee, seed=seed, prior_mean=prior_mean,
+                             prior_sd=prior_sd, session_id=session_id, cache=cache)
+    return commit_start(store, prepared, cache=cache)
+
+
+def submit_answer(store: SessionStore, session_id: str, item_id: str, response, *,
+                  elapsed: float | None = None, cache: ProcessCache | None = None) -> dict:
+    """Record the answer to the pending item and return the next item (or the result).
+
+    Parameters
+    ----------
+    session_id, item_id : str
+        Valid Unicode text (no lone surrogates).
+    response : int, numpy integer, or str
+        The category observed, 0 .. n_categories - 1: an ``int`` or numpy integer (not a
+        bool, not a float such as ``1.0``), or text of ASCII digits (``"1"``, ``" 2 "``;
+        not ``"١"`` or ``"１"``).
+    elapsed : float, optional
+        Seconds the examinee has spent so far (used by a time-limit stopping rule): a
+        finite number >= 0.
+
+    Returns
+    -------
+    dict
+        As :func:`start_session`.  Sending the same answer to the same item again returns
+        the reply of the first time and records nothing.
+
+    Raises
+    ------
+    SessionError
+        Unknown session; the item is not the pending one; the response is not an integer
+        category of the item; the item was answered before with another response; the
+        session has finished.  Nothing is written then.
+    """
+    cache = PROCESS_CACHE if cache is None else cache
+    check_text(session_id, "the session id", location="session_id")
+    where = f"session {shown(session_id)}"
+    check_text(item_id, "the item id", location="item_id")
+    value = _response_value(response, f"{where} item {shown(item_id)} response")
+    elapsed = _elapsed_value(elapsed, f"{where} item {shown(item_id)} elapsed")
+    row = store.session_row(session_id)
+    # the context may take a while to build: do it before taking the write lock
+    ctx = cache.context(store, row["design_id"], row["bank_id"])
+    mutated = [False]
+    try:
+        with store.writing():
+            row = store.session_row(session_id)
+            return _answer_locked(store, ctx, row, item_id, value, elapsed, cache, mutated)
+    except BaseException:
+        if mutated[0]:
+            cache.drop(store, session_id)
+        raise
+
+
+def _answer_locked(store, ctx, row, item_id, response, elapsed, cache, mutated) -> dict:
+    value, value_text = response
+    session_id = row["session_id"]
+    where = f"session {shown(session_id)}"
+    item = shown(item_id)
+    if row["status"] != "active" or row["pending_item"] != item_id:
+        earlier = store.answer_event(session_id, item_id)
+        if earlier is not None:
+            if earlier["response"] == value:
+                return json.loads(earlier["reply"])
+            raise SessionError(f"item {item} was already answered with {earlier['response']}; "
+                               f"a different answer ({value_text}) is refused", location=f"{where} item {item}")
+        if row["status"] != "active":
+            raise SessionError("the session has finished; it takes no more answers", location=where)
+        raise SessionError(f"item {item} is not the pending item (pending: {row['pending_item']})",
+                           location=f"{where} item {item}")
+    bank = ctx.bank
+    index = bank.index_of[item_id]
+    n_cat = int(bank.n_categories[index])
+    if not 0 <= value < n_cat:
+        raise SessionError(f"response {value_text} is outside the categories 0..{n_cat - 1} of item {item}",
+                           location=f"{where} item {item} response")
+    state = session_state(store, ctx, row, cache=cache)
+    mutated[0] = True
+    picked = kernel.answer(ctx, state, _ROW0, np.array([value]),
+                           elapsed=None if elapsed is None else np.array([elapsed]), count_eligible=True)
+    seq = int(row["last_seq"])
+    now = now_text()
+    events, result = _next_events(ctx, state, picked, seq + 2, now)
+    reply = _reply(session_id, ctx, state, result)
+    given = state.n_given[0] - 1
+    answer_event = {
+        "kind": "answer", "seq": seq + 1, "item_id": item_id, "response": value,
+        "scored": int(state.scored[0, given]), "theta": float(state.theta[0]), "se": float(state.se[0]),
+        "rng_state": _rng_state(state), "elapsed": elapsed, "created_at": now, "reply": to_json(reply),
+    }
+    store.append_events([dict(e, session_id=session_id) for e in [answer_event, *events]])
+    store.update_session(session_id, _session_changes(ctx, state, seq + 2, now, result))
+    if state.pending[0] >= 0:
+        store.count_exposure(row["bank_id"], reply["item_id"])
+    cache.keep(store, session_id, seq + 2, state)
+    return reply
+
+
+def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
+                  cache: ProcessCache | None = None) -> KernelState:
+    """The kernel state of a stored session: cached if up to date, else replayed from the log."""
+    cache = PROCESS_CACHE if cache is None else cache
+    session_id = row["session_id"]
+    state = cache.state(store, session_id, int(row["last_seq"]))
+    if state is not None:
+        return state
+    bank = ctx.bank
+    answers = store.answers(session_id)
+    unknown = [iid for iid, _, _ in answers if iid not in bank.index_of]
+    if unknown:
+        raise SessionError(f"the log names item {unknown[0]} that the session's bank lacks",
+                           location=f"session {shown(session_id)}")
+    try:
+        state, _ = kernel.rebuild(ctx, int(stream_key(int(row["seed"]))), float(row["prior_mean"]),
+                                  float(row["prior_sd"]), [bank.index_of[i] for i, _, _ in answers],
+                                  [int(r) for _, r, _ in answers], elapsed=[e for _, _, e in answers])
+    except ValueError as exc:
+        raise SessionError(f"the stored answers do not replay: {exc}",
+                           location=f"session {shown(session_id)}") from None
+    pending = None if state.pending[0] < 0 else str(bank.item_ids[state.pending[0]])
+    if pending != row["pending_item"]:
+        raise SessionError(f"the stored answers replay to pending item {pending}, the session row says "
+                           f"{row['pending_item']}", location=f"session {shown(session_id)}")
+    cache.keep(store, session_id, int(row["last_seq"]), state)
+    return state
+
+
+def pending_item(store: SessionStore, session_id: str, *, cache: ProcessCache | None = None) -> dict:
+    """The item the session waits for: ``session_id``, ``item_id``, ``item``, ``items_given``, ``done``."""
+    cache = PROCESS_CACHE if cache is None else cache
+    row = store.session_row(session_id)
+    view = None
+    if row["pending_item"] is not None:
+        ctx = cache.context(store, row["design_id"], row["bank_id"])
+        view = item_view(ctx, ctx.bank.index_of[row["pending_item"]])
+    return {"session_id": session_id, "item_id": row["pending_item"], "item": view,
+            "items_given": int(row["n_given"]), "done": row["status"] == "finished"}
+
+
+def session_result(store: SessionStore, session_id: str) -> dict:
+    """The final report of a finished session (SessionError while it is still active)."""
+    row = store.session_row(session_id)
+    if row["status"] != "finished":
+        raise SessionError("the session is still active: no result yet", location=f"session {shown(session_id)}")
+    return json.loads(row["result"])
+
+
+def show_session(store: SessionStore, session_id: str, *, include_seed: bool = False) -> dict:
+    """The session as the log tells it: answers with the estimate after each, and the result.
+
+    Parameters
+    ----------
+    include_seed : bool
+        Add the session's ``seed``.  Off by default: seed and bank together predict every
+        random choice of the test (randomesque draws, pretest picks), so the seed is for
+        whoever replays a session, not for everyone who may look at it.
+    """
+    row = store.session_row(session_id)
+    snapshot = json.loads(row["state"])
+    administered = [
+        {"item_id": e["item_id"], "response": e["response"], "scored": bool(e["scored"]),
+         "theta": e["theta"], "se": e["se"], "elapsed": e["elapsed"]}
+        for e in store.events(session_id) if e["kind"] == "answer"
+    ]
+    out = {"session_id": session_id, "examinee": row["examinee"], "status": row["status"],
+           "created_at": row["created_at"], "updated_at": row["updated_at"],
+           "administered": administered, "pending_item": row["pending_item"],
+           "theta": snapshot["theta"][0], "se": snapshot["se"]}
+    if include_seed:
+        out["seed"] = row["seed"]
+    if row["status"] == "finished":
+        out["stop_reason"] = snapshot["stop_reason"]
+        out["result"] = json.loads(row["result"])
+    return out
+
+
+def list_sessions(store: SessionStore, *, status: str | None = None) -> list[dict]:
+    """One summary per session (oldest first), optionally only ``active`` or ``finished`` ones."""
+    out = []
+    for row in store.sessions(status=status):
+        snapshot = json.loads(row["state"])
+        out.append({"session_id": row["session_id"], "examinee": row["examinee"], "status": row["status"],
+                    "items_given": row["n_given"], "pending_item": row["pending_item"],
+                    "theta": snapshot["theta"][0], "se": snapshot["se"],
+                    "created_at": row["created_at"], "updated_at": row["updated_at"]})
+    return out
+
+
+def exposure_rates(store: SessionStore, bank: ItemBank) -> dict:
+    """Items' exposure rates over all sessions of ``bank`` in the store.
+
+    Returns
+    -------
+    dict
+        ``sessions_started`` and ``rates`` (item id -> count / sessions_started, given
+        items only).
+    """
+    started, counts = store.exposure(bank_content(bank)[0])
+    return {"sessions_started": started,
+            "rates": {iid: (n / started if started else 0.0) for iid, n in sorted(counts.items())}}
+
+
+def try_session(design: Design, bank: ItemBank, *, ask: Callable[[dict, int], str],
+                tell: Callable[[str], None], seed: int | None = None) -> dict:
+    """Take a test interactively on a scratch in-memory store; returns the final report.
+
+    Parameters
+    ----------
+    ask : callable (item view, position) -> str
+        Shows the item and returns what the person typed.
+    tell : callable (message) -> None
+        Shows why an answer was refused (the item is then asked again).
+    """
+    from .store import open_store
+
+    with open_store(":memory:") as store:
+        cache = ProcessCache()
+        reply = start_session(store, design, bank, seed=seed, cache=cache)
+        while not reply["done"]:
+            item = reply["item"]
+            typed = ask(item, reply["items_given"] + 1)
+            try:
+                reply = submit_answer(store, reply["session_id"], item["item_id"], typed, cache=cache)
+            except SessionError as exc:
+                tell(str(exc))
+        return reply["result"]

@@ -1,0 +1,555 @@
+"""The simulation driver: the decision kernel run for many synthetic examinees at once.
+
+The run is cut into chunks of examinees (10,000 by default).  Each chunk is one kernel
+batch: :func:`adaptive_engine.kernel.start` on the chunk, then rounds of simulated answers
+and :func:`adaptive_engine.kernel.answer` for the examinees still testing, then
+:func:`adaptive_engine.kernel.finish`.  Memory is bounded by the chunk size (the kernel
+holds a chunk x bank-size "used" mask), never by the number of examinees.
+
+Everything random is a function of the run seed and the examinee's index, so results do not
+depend on the chunk size or on how chunks are spread over workers:
+
+* examinee ``i`` gets the seed ``randomness.examinee_seeds(seed, n)[i]`` (recorded in
+  ``examinees.csv``); a live session started with that seed makes the same decisions;
+* true abilities are drawn once for the run (:mod:`adaptive_engine.simulation.population`);
+* the answer at position ``k`` is drawn with the uniform
+  ``randomness.uniforms(key_i, k, SIMULATED_ANSWER)`` against the category probabilities of
+  the *true* bank at the true ability.
+
+The true bank may differ from the operational bank the kernel selects and scores with
+(``true_bank``; or :func:`perturbed_bank`), which shows the effect of calibration error.
+"""
+
+from __future__ import annotations
+
+import functools
+import itertools
+import math
+import uuid
+from collections import deque
+from concurrent.futures import Executor, ProcessPoolExecutor
+from typing import Callable, Iterator
+
+import attrs
+import numpy as np
+
+from ..bank.item_bank import ItemBank
+from ..design.types import Design
+from ..errors import AdaptiveEngineError, Problem
+from ..irt import models
+from ..kernel import cycle as kernel
+from ..kernel import final_report as reporting
+from ..kernel import random_streams as randomness
+from ..kernel.prepared import TestContext, build_context
+
+#: Examinees per kernel batch.
+DEFAULT_CHUNK = 10_000
+
+
+class SimulationError(AdaptiveEngineError):
+    """A simulation request cannot be carried out (bad sizes, banks that do not match)."""
+
+
+class _CountsByStratum:
+    """Shared views of :class:`ChunkResult` and :class:`SimulationResult`."""
+
+    __slots__ = ()
+
+    @property
+    def size(self) -> int:
+        return int(self.seeds.shape[0])
+
+    @property
+    def administered_by_stratum(self) -> np.ndarray | None:
+        """Administrations per true-ability stratum, (S, n_items) (None if not counted)."""
+        pair = self.administered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
+
+    @property
+    def offered_by_stratum(self) -> np.ndarray | None:
+        """Offers (given or withheld) per true-ability stratum, (S, n_items)."""
+        pair = self.offered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class ChunkResult(_CountsByStratum):
+    """Outcome of one chunk of examinees (``n`` examinees, ``L`` = longest possible test).
+
+    Attributes
+    ----------
+    start : int
+        Index of the chunk's first examinee in the run.
+    seeds : int64 (n,)
+        Examinee seeds (replay a live session with them).
+    true_theta : float (n,)
+    theta, se : float (n,)
+        Final estimate and its standard error (the design's final method).
+    n_scored, n_pretest : int (n,)
+    stop_reason : object (n,)
+    scaled_score : float (n,)
+        NaN where there is no estimate.
+    at_or_above : int8 (n, K)
+        Per cut score of the design: 1 at or above, 0 below, -1 no label.
+    items : int (n, L)
+        Bank rows in order of administration (pretest included), -1 padded.
+    responses : int (n, L)
+    scored : bool (n, L)
+    interim_theta, interim_se : float (n, L)
+        The interim estimate after each answer (NaN padded).
+    area_counts : int (n, A)
+        Scored items per content area (areas in ``bank.areas`` order).
+    administered : int (n_items,)
+        Times each item was given in the chunk.
+    offered : int (n_items,)
+        Times each item was chosen by the criterion: given, or withheld by the
+        Sympson-Hetter lottery (the "selected" count of Sympson & Hetter 1985).
+    administered_by_stratum_pair, offered_by_stratum_pair : int (S, S, n_items) or None
+        The same counts split by ``[stratum of the examinee's true ability, stratum of
+        the interim estimate the item was picked at]`` when the run was asked for them
+        (``count_by_stratum``: S - 1 cut points; stratum s is ``[cut[s-1], cut[s])``);
+        None otherwise.  ``administered_by_stratum`` and ``offered_by_stratum`` (S,
+        n_items) sum them over the estimate's stratum.
+    """
+
+    start: int
+    seeds: np.ndarray
+    true_theta: np.ndarray
+    theta: np.ndarray
+    se: np.ndarray
+    n_scored: np.ndarray
+    n_pretest: np.ndarray
+    stop_reason: np.ndarray
+    scaled_score: np.ndarray
+    at_or_above: np.ndarray
+    items: np.ndarray
+    responses: np.ndarray
+    scored: np.ndarray
+    interim_theta: np.ndarray
+    interim_se: np.ndarray
+    area_counts: np.ndarray
+    administered: np.ndarray
+    offered: np.ndarray
+    administered_by_stratum_pair: np.ndarray | None = None
+    offered_by_stratum_pair: np.ndarray | None = None
+
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class SimulationResult(_CountsByStratum):
+    """Per-examinee outcomes of a whole run (administrations are streamed, not kept).
+
+    Arrays have one entry per examinee (N,) or per item (n_items,); ``at_or_above`` is
+    (N, K) and ``area_counts`` (N, A), as in :class:`ChunkResult`;
+    ``administered_by_stratum_pair``/``offered_by_stratum_pair`` (S, S, n_items) are
+    summed over the chunks when the run counted by ability stratum (None otherwise).
+    """
+
+    design: Design
+    bank: ItemBank
+    seed: int
+    seeds: np.ndarray
+    true_theta: np.ndarray
+    theta: np.ndarray
+    se: np.ndarray
+    n_scored: np.ndarray
+    n_pretest: np.ndarray
+    stop_reason: np.ndarray
+    scaled_score: np.ndarray
+    at_or_above: np.ndarray
+    area_counts: np.ndarray
+    administered: np.ndarray
+    offered: np.ndarray
+    administered_by_stratum_pair: np.ndarray | None = None
+    offered_by_stratum_pair: np.ndarray | None = None
+
+
+
+def true_item_rows(bank: ItemBank, true_bank: ItemBank | None) -> np.ndarray:
+    """Row of each operational-bank item in the true bank, (n_items,).
+
+    Raises
+    ------
+    SimulationError
+        When the true bank lacks an item or gives it another number of categories.
+    """
+    if true_bank is None or true_bank is bank:
+        return np.arange(bank.n_items)
+    problems = []
+    rows = np.empty(bank.n_items, dtype=np.int64)
+    for i, iid in enumerate(bank.item_ids):
+        j = true_bank.index_of.get(iid)
+        if j is None:
+            problems.append(Problem(f"true bank, item {iid}", "the item is missing from the true bank"))
+            continue
+        if true_bank.n_categories[j] != bank.n_categories[i]:
+            problems.append(Problem(f"true bank, item {iid}",
+                                    f"has {true_bank.n_categories[j]} categories, the operational bank "
+                                    f"{bank.n_categories[i]}"))
+        rows[i] = j
+    if problems:
+        raise SimulationError(problems[:20])
+    return rows
+
+
+def perturbed_bank(bank: ItemBank, *, sd_a=0.0, sd_b=0.0, sd_c=0.0, sd_thresholds=0.0, sd_d=0.0,
+                   seed: int = 0) -> ItemBank:
+    """A "true" bank: the bank's parameters plus normal errors of the given SDs.
+
+    Use the parameters' standard errors from calibration as SDs to see how calibration
+    error carries into the results.  Slopes stay positive (absolute value, at least 0.05),
+    asymptotes stay ordered (0 <= c < d <= 1), and category thresholds of graded items are
+    re-sorted so that they stay ordered.
+
+    Parameters
+    ----------
+    bank : ItemBank
+    sd_a, sd_b, sd_c, sd_d : float or float array, shape (n_items,)
+        One SD for every item, or each item's own (e.g. its standard errors from
+        :func:`adaptive_engine.simulation.study.read_standard_errors`; 0 leaves the
+        parameter as it is).
+    sd_thresholds : float or float array, shape (n_items, K) with K <= the bank's
+        thresholds width (missing columns: 0)
+    seed : int
+    """
+    n = bank.n_items
+    sds = {}
+    for key, sd in (("a", sd_a), ("b", sd_b), ("c", sd_c), ("thresholds", sd_thresholds), ("d", sd_d)):
+        try:
+            value = np.asarray(sd, dtype=float)
+        except (TypeError, ValueError):
+            raise SimulationError(f"the SD must be a number, got {sd!r}", f"--perturb {key}") from None
+        shape = bank.thresholds.shape if key == "thresholds" else (n,)
+        if key == "thresholds" and value.ndim == 2 and value.shape[0] == n and value.shape[1] <= shape[1]:
+            value = np.pad(value, ((0, 0), (0, shape[1] - value.shape[1])))
+        if value.ndim and value.shape != shape:
+            raise SimulationError(f"expected one SD or an array of shape {shape}, got shape {value.shape}",
+                                  f"--perturb {key}")
+        if not np.all(np.isfinite(value)) or np.any(value < 0):
+            raise SimulationError(f"SDs must be finite numbers >= 0, got {sd!r}" if not value.ndim
+                                  else "SDs must be finite numbers >= 0", f"--perturb {key}")
+        sds[key] = value
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed) % (1 << 63), 0xBA4C]))
+    model = np.asarray(bank.model)
+    # only free parameters move: a 1PL keeps its common slope, a 2PL its zero asymptote
+    a = np.where(model == "1PL", bank.a, np.maximum(np.abs(bank.a + sds["a"] * rng.standard_normal(n)), 0.05))
+    b = bank.b + sds["b"] * rng.standard_normal(n)
+    z_c = rng.standard_normal(n)
+    th = bank.thresholds + sds["thresholds"] * rng.standard_normal(bank.thresholds.shape)
+    graded = model == "GRM"
+    th[graded] = np.sort(th[graded], axis=1)  # NaN padding sorts to the end, where it was
+    # d is drawn last so that the draws of a, b, c and thresholds do not depend on sd_d
+    four = model == "4PL"
+    d = np.where(four, np.clip(bank.d + sds["d"] * rng.standard_normal(n), bank.c + 2e-3, 1.0), bank.d)
+    guessing = np.isin(model, ("3PL", "4PL"))
+    c = np.where(guessing, np.clip(bank.c + sds["c"] * z_c, 0.0, d - 1e-3), bank.c)
+    return bank.evolve(a=a, b=b, c=c, d=d, thresholds=th)
+
+
+# -- one chunk ---------------------------------------------------------------------------
+
+def _draw_answers(true_params: models.ItemParameters, rows_true, theta, u) -> np.ndarray:
+    """Categories drawn by inverting the cumulative category probabilities, (R,)."""
+    p = models.probabilities(true_params.take(rows_true), theta)  # (R, C)
+    cum = np.cumsum(p, axis=1)
+    top = true_params.n_categories[rows_true] - 1
+    return np.minimum((cum < u[:, None]).sum(axis=1), top)
+
+
+def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank: ItemBank | None = None,
+              true_rows=None, count_by_stratum=None,
+              on_round: Callable[[int], None] | None = None) -> ChunkResult:
+    """Simulate examinees ``start .. start + n - 1`` of a run (n = ``true_theta.size``).
+
+    Parameters
+    ----------
+    ctx : TestContext
+        The design on the operational bank.
+    seed : int
+        The run seed.
+    true_theta : float array, shape (n,)
+    true_bank : ItemBank, optional
+        Bank the answers are drawn from (default: the operational bank).
+    true_rows : int array, shape (n_items,), optional
+        :func:`true_item_rows` (computed when omitted).
+    count_by_stratum : float sequence, shape (S - 1,), optional
+        Ascending cut points of ability strata: also count administrations and offers
+        per (true-ability stratum, stratum of the interim estimate at the pick) (the
+        calibration of exposure parameters conditional on ability needs them).
+    on_round : callable, optional
+        Called as ``on_round(finished)`` after each round of answers with the number of
+        the chunk's examinees whose test has ended (for a progress display: one chunk can
+        take many seconds).
+    """
+    bank = ctx.bank
+    true_theta = np.asarray(true_theta, dtype=float)
+    n = true_theta.shape[0]
+    truth = bank if true_bank is None else true_bank
+    if true_rows is None:
+        true_rows = true_item_rows(bank, true_bank)
+    true_params = truth.params
+    seeds = randomness.examinee_seeds(seed, n, start=start)
+    keys = randomness.stream_key(seeds)
+    state, picked = kernel.start(ctx, keys)
+    length = ctx.max_length
+    interim_theta = np.full((n, length), np.nan)
+    interim_se = np.full((n, length), np.nan)
+    offered = np.zeros(bank.n_items, dtype=np.int64)
+    by_stratum = count_by_stratum is not None
+    if by_stratum:
+        cuts = np.asarray(count_by_stratum, dtype=float)
+        # stratum of the interim estimate each item (or withheld item) was picked at
+        pick_stratum = np.zeros((n, length), dtype=np.int64)
+        pick_stratum[:, 0] = stratum_of(state.theta, cuts)
+        withheld: list = []  # (row, item, estimate stratum)
+        _keep_withheld(withheld, picked, state.theta, cuts)
+    _count_withheld(offered, picked)
+    while True:
+        rows = np.flatnonzero(~state.done)
+        if on_round is not None:
+            on_round(n - rows.size)
+        if rows.size == 0:
+            break
+        pos = state.n_given[rows]
+        u = randomness.uniforms(state.keys[rows], pos, randomness.SIMULATED_ANSWER)
+        answers = _draw_answers(true_params, true_rows[state.pending[rows]], true_theta[rows], u)
+        picked = kernel.answer(ctx, state, rows, answers)
+        _count_withheld(offered, picked)
+        if by_stratum:
+            going = rows[state.pending[rows] >= 0]
+            pick_stratum[going, state.n_given[going]] = stratum_of(state.theta[going], cuts)
+            _keep_withheld(withheld, picked, state.theta, cuts)
+        interim_theta[rows, pos] = state.theta[rows]
+        interim_se[rows, pos] = state.se[rows]
+    final = kernel.final_estimates(ctx, state, np.arange(n))
+    administered = np.bincount(state.items[state.items >= 0], minlength=bank.n_items)
+    given_s = offered_s = None
+    if by_stratum:
+        given_s, offered_s = _stratum_counts(state.items, pick_stratum, withheld, stratum_of(true_theta, cuts),
+                                             cuts.size + 1, bank.n_items)
+    design = ctx.design
+    at_or_above = reporting.classification_matrix(design, final.theta, final.sprt_decision)
+    return ChunkResult(
+        start=start, seeds=seeds, true_theta=true_theta,
+        theta=np.asarray(final.theta, dtype=float),
+        se=np.asarray(final.se, dtype=float),
+        n_scored=state.n_scored.copy(), n_pretest=state.n_pretest.copy(),
+        stop_reason=state.stop_reason.copy(),
+        scaled_score=reporting.scaled_scores(design.reporting.scale, final.theta),
+        at_or_above=at_or_above, items=state.items, responses=state.responses, scored=state.scored,
+        interim_theta=interim_theta, interim_se=interim_se, area_counts=state.area_counts,
+        administered=administered, offered=offered + administered,
+        administered_by_stratum_pair=given_s, offered_by_stratum_pair=offered_s,
+    )
+
+
+def _count_withheld(offered, picked) -> None:
+    if picked.withheld:
+        np.add.at(offered, np.array([i for _, i in picked.withheld], dtype=np.int64), 1)
+
+
+def _keep_withheld(keep: list, picked, theta, cuts) -> None:
+    if picked.withheld:
+        pairs = np.asarray(picked.withheld, dtype=np.int64)
+        est = stratum_of(theta[pairs[:, 0]], cuts)
+        keep.extend(zip(pairs[:, 0].tolist(), pairs[:, 1].tolist(), est.tolist()))
+
+
+def stratum_of(theta, cuts) -> np.ndarray:
+    """Ability stratum of each theta, (N,) int: stratum s is ``[cuts[s-1], cuts[s])``."""
+    return np.searchsorted(np.asarray(cuts, dtype=float), np.asarray(theta, dtype=float), side="right")
+
+
+def _stratum_counts(items, pick_stratum, withheld, true_stratum, n_strata, n_items):
+    """Administrations and offers (given + withheld), (S, S, n) each.
+
+    Indexed ``[true-ability stratum, stratum of the estimate at the pick, item]``.
+    """
+    given = np.zeros((n_strata, n_strata, n_items), dtype=np.int64)
+    rows, cols = np.nonzero(items >= 0)
+    np.add.at(given, (true_stratum[rows], pick_stratum[rows, cols], items[rows, cols]), 1)
+    offered = given.copy()
+    if withheld:
+        triples = np.asarray(withheld, dtype=np.int64)
+        np.add.at(offered, (true_stratum[triples[:, 0]], triples[:, 2], triples[:, 1]), 1)
+    return given, offered
+
+
+# -- the whole run -----------------------------------------------------------------------
+
+_CONTEXTS: dict = {}
+
+
+def effective_chunk_size(total: int, chunk_size: int, workers: int) -> int:
+    """Examinees per chunk actually used for a run of ``total`` examinees.
+
+    With ``workers > 1`` a run is cut into at least about two chunks per worker
+    (``min(chunk_size, ceil(total / (2 workers)))``): at the default chunk size a run of
+    10,000 or fewer examinees would otherwise be a single chunk, leaving all but one worker
+    idle.  Two chunks per worker rather than one let a fast worker take up the slack of a
+    slow one.  Results do not depend on the chunking (see the module notes).
+    """
+    if chunk_size < 1:
+        raise SimulationError(f"chunk size must be >= 1, got {chunk_size}", "--chunk-size")
+    if workers < 1:
+        raise SimulationError(f"workers must be >= 1, got {workers}", "--workers")
+    if workers > 1 and total > 0:
+        return max(1, min(chunk_size, math.ceil(total / (2 * workers))))
+    return chunk_size
+
+
+def _worker_chunk(token, design, bank, true_bank, seed, start, true_theta, count_by_stratum=None) -> ChunkResult:
+    """Run one chunk in a worker; the context is built once per worker process and run."""
+    ctx = _CONTEXTS.get(token)
+    if ctx is None:
+        _CONTEXTS.clear()  # one run at a time per worker: drop contexts of earlier runs
+        ctx = _CONTEXTS[token] = build_context(design, bank)
+    return run_chunk(ctx, seed=seed, start=start, true_theta=true_theta, true_bank=true_bank,
+                     count_by_stratum=count_by_stratum)
+
+
+def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank: ItemBank | None = None,
+                chunk_size: int = DEFAULT_CHUNK, executor: Executor | None = None,
+                workers: int = 1, ctx: TestContext | None = None,
+                count_by_stratum=None,
+                on_round: Callable[[int, int], None] | None = None) -> Iterator[ChunkResult]:
+    """Yield the chunks of a run in examinee order.
+
+    Parameters
+    ----------
+    true_theta : float array, shape (N,)
+        True abilities of all examinees.
+    executor : concurrent.futures.Executor, optional
+        Runs chunks in parallel (any object with ``submit`` returning futures, e.g. a
+        ``ProcessPoolExecutor`` or ``dask.distributed.Client.get_executor()``).
+    chunk_size : int
+        Most examinees per chunk; with ``workers > 1`` smaller chunks are used
+        (:func:`effective_chunk_size`) so that every worker gets work.
+    workers : int
+        With no executor, ``workers > 1`` starts a process pool of that size; with an
+        executor, give its number of workers so that the run is cut finely enough.
+    ctx : TestContext, optional
+        A context already built for (design, bank) (in-process runs only).
+    count_by_stratum : float sequence, optional
+        Cut points of true-ability strata for per-stratum counts (see :func:`run_chunk`).
+    on_round : callable, optional
+        In-process runs only: called as ``on_round(start, finished)`` after each round of
+        answers of the chunk starting at examinee ``start`` (see :func:`run_chunk`).
+    """
+    true_theta = np.asarray(true_theta, dtype=float)
+    total = true_theta.shape[0]
+    chunk_size = effective_chunk_size(total, chunk_size, workers)
+    true_rows = true_item_rows(bank, true_bank)  # validate before any work starts
+    starts = range(0, total, chunk_size)
+    if executor is None and workers == 1:
+        ctx = ctx if ctx is not None else build_context(design, bank)
+        for s in starts:
+            report = None if on_round is None else functools.partial(on_round, s)
+            yield run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size],
+                            true_bank=true_bank, true_rows=true_rows, count_by_stratum=count_by_stratum,
+                            on_round=report)
+        return
+    own = executor is None
+    pool = ProcessPoolExecutor(max_workers=workers) if own else executor
+    token = uuid.uuid4().hex
+    window = max(2, 2 * workers)  # chunks in flight: bounds memory at a few chunks
+    try:
+        pending: deque = deque()
+        it = iter(starts)
+        for s in itertools.islice(it, window):
+            pending.append(pool.submit(_worker_chunk, token, design, bank, true_bank, seed, s,
+                                       true_theta[s : s + chunk_size], count_by_stratum))
+        while pending:
+            result = pending.popleft().result()
+            nxt = next(it, None)
+            if nxt is not None:
+                pending.append(pool.submit(_worker_chunk, token, design, bank, true_bank, seed, nxt,
+                                           true_theta[nxt : nxt + chunk_size], count_by_stratum))
+            yield result
+    finally:
+        if own:
+            pool.shutdown(cancel_futures=True)
+
+
+def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank: ItemBank | None = None,
+             chunk_size: int = DEFAULT_CHUNK, executor: Executor | None = None, workers: int = 1,
+             on_chunk: Callable[[ChunkResult], None] | None = None,
+             progress: Callable[[int, int], None] | None = None,
+             ctx: TestContext | None = None, count_by_stratum=None) -> SimulationResult:
+    """Run the design for every examinee and collect their outcomes.
+
+    Parameters
+    ----------
+    design, bank : the operational design and bank (selection and scoring).
+    true_theta : float array, shape (N,)
+        True abilities (see :meth:`adaptive_engine.simulation.population.AbilitySpec.draw`).
+    seed : int
+        Run seed: examinee seeds, test decisions and simulated answers derive from it.
+    true_bank : ItemBank, optional
+        Bank the answers are drawn from (same item ids), default ``bank``.
+    on_chunk : callable, optional
+        Called with each :class:`ChunkResult` in examinee order (e.g. to stream the
+        administrations to a file); the chunk is dropped afterwards.
+    progress : callable, optional
+        Called as ``progress(done, total)`` with the number of examinees whose test has
+        ended: after each round of answers when the run is in process (a single chunk
+        can take many seconds), after each chunk when it runs on workers.  ``done`` reaches
+        ``total`` once, when the run is complete (final reports included).
+    count_by_stratum : float sequence, shape (S - 1,), optional
+        Ascending cut points of ability strata: the result then also holds
+        ``administered_by_stratum_pair`` and ``offered_by_stratum_pair`` (S, S, n_items),
+        and their sums over the estimate's stratum ``administered_by_stratum`` and
+        ``offered_by_stratum`` (S, n_items).
+
+    Returns
+    -------
+    SimulationResult
+    """
+    true_theta = np.asarray(true_theta, dtype=float)
+    if true_theta.ndim != 1 or true_theta.size == 0:
+        raise SimulationError("at least one examinee is needed", "--examinees")
+    if not np.all(np.isfinite(true_theta)):
+        raise SimulationError("true abilities must be finite numbers", "--theta")
+    parts: list[dict] = []
+    administered = np.zeros(bank.n_items, dtype=np.int64)
+    offered = np.zeros(bank.n_items, dtype=np.int64)
+    if count_by_stratum is not None:
+        count_by_stratum = tuple(float(c) for c in count_by_stratum)
+        if any(not np.isfinite(c) for c in count_by_stratum) or any(
+                b <= a for a, b in zip(count_by_stratum, count_by_stratum[1:])):
+            raise SimulationError(f"stratum cut points must be finite and ascending, got {list(count_by_stratum)}",
+                                  "--conditional-strata")
+        n_strata = len(count_by_stratum) + 1
+        given_s = np.zeros((n_strata, n_strata, bank.n_items), dtype=np.int64)
+        offered_s = given_s.copy()
+    else:
+        given_s = offered_s = None
+    done = 0
+    total = int(true_theta.size)
+    on_round = None
+    if progress is not None:
+        def on_round(start, finished):
+            # the last examinees' final reports are still to come: hold back the last step
+            progress(min(start + finished, total - 1), total)
+    keep = ("seeds", "true_theta", "theta", "se", "n_scored", "n_pretest", "stop_reason",
+            "scaled_score", "at_or_above", "area_counts")
+    for chunk in iter_chunks(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
+                             chunk_size=chunk_size, executor=executor, workers=workers, ctx=ctx,
+                             count_by_stratum=count_by_stratum, on_round=on_round):
+        if on_chunk is not None:
+            on_chunk(chunk)
+        parts.append({k: getattr(chunk, k) for k in keep})
+        administered += chunk.administered
+        offered += chunk.offered
+        if given_s is not None:
+            given_s += chunk.administered_by_stratum_pair
+            offered_s += chunk.offered_by_stratum_pair
+        done += chunk.size
+        if progress is not None:
+            progress(done, total)
+    joined = {k: np.concatenate([p[k] for p in parts], axis=0) for k in keep}
+    return SimulationResult(design=design, bank=bank, seed=int(seed), administered=administered,
+                            offered=offered, administered_by_stratum_pair=given_s,
+                            offered_by_stratum_pair=offered_s,
+                            **joined)
+

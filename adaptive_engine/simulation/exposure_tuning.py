@@ -1,0 +1,371 @@
+"""Sympson-Hetter exposure parameters calibrated by simulation.
+
+Sympson & Hetter (1985): the item the criterion picks is given with probability ``k_i``
+(its exposure parameter), otherwise it is withheld and the next best one is tried.  Over a
+population, P(given_i) = P(selected_i) k_i, so the parameters that hold every item at the
+target rate ``r`` satisfy ``k_i = min(1, r / P(selected_i))``.  P(selected_i) itself
+depends on all parameters, so they are found by iterating: simulate with the current
+parameters, count how often each item was selected (given, or withheld by its lottery),
+update, repeat -- until the largest exposure rate is within ``tolerance`` of the target.
+
+Each iteration draws fresh examinees (its own seed derived from the run seed), so the
+parameters do not fit the noise of one sample.  The file written is the
+``item_id,exposure_parameter`` CSV that a design reads with::
+
+    [exposure]
+    method = "sympson_hetter"
+    parameters = "PATH"
+
+The conditional variant (Stocking & Lewis 1998) holds the exposure rate at the target
+*within each ability stratum*: P(given_i | theta in stratum s) <= r.  Each simulated
+examinee is counted in the stratum of their true ability (the simulation knows it), with
+``N_s`` examinees in stratum s; were the lottery drawn with the true stratum's parameters,
+the step would be ``k[s, i] = min(1, r N_s / selected[s, i])``.  In the test itself the
+lottery uses the parameters of the stratum of the *interim estimate* (the true ability is
+unknown there), and the calibration simulates exactly that use.  The two strata differ
+often -- every test starts at the same estimate, so its first lotteries all use one
+stratum's parameters -- and the plain step then does not converge: the parameters of the
+estimate's stratum decide exposures that are counted in another true stratum.  So the
+step bounds each parameter by every true stratum its lotteries serve:
+
+    k[e, i] = min(1, min over s served by e of r / P(selected_i | s))
+
+where ``e`` is the stratum of the estimate at the lottery, ``s`` runs over the true strata
+of the examinees who had item i selected while their estimate was in ``e``, and
+P(selected_i | s) counts selections at any estimate.  Given the selection counts, every
+true stratum then receives at most ``r``: sum_e k[e, i] P(selected_i, e | s) <= r.  When
+the estimate's stratum always equals the true one the step is exactly the plain one.
+
+The file written is the long ``item_id,theta_from,theta_to,exposure_parameter`` CSV, one
+row per item and stratum.
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import attrs
+import numpy as np
+
+from ..bank.item_bank import ItemBank
+from ..design.bank_fit import require_design_fits_bank
+from ..design.types import Design
+from ..errors import AdaptiveEngineError
+from ..files import check_target, write_text
+from .engine import DEFAULT_CHUNK, simulate, stratum_of
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class ExposureCalibration:
+    """Outcome of :func:`calibrate_sympson_hetter`.
+
+    Attributes
+    ----------
+    parameters : dict
+        Item id -> exposure parameter (operational items).
+    history : list of dict
+        Per iteration: ``iteration``, ``max_exposure`` (with the parameters it started
+        with), ``share_above_target``, ``mean_length``, ``items_restricted`` (k < 1).
+        Conditional calibrations add ``max_exposure_by_stratum`` (list, one value per
+        stratum: the largest exposure rate among the examinees of that true-ability
+        stratum) and ``examinees_by_stratum``; their ``max_exposure`` is the largest of
+        those conditional rates.
+    converged : bool
+        The last iteration's largest exposure rate was within ``tolerance`` of the target
+        (in every stratum, when conditional).
+    target, tolerance : float
+    strata : tuple of float
+        Interior cut points of the ability strata (empty: unconditional); then
+        ``parameters`` maps item id -> tuple with one parameter per stratum.
+    """
+
+    parameters: dict
+    history: list
+    converged: bool
+    target: float
+    tolerance: float
+    strata: tuple = ()
+
+
+def _iteration_seed(seed: int, iteration: int) -> int:
+    return int(np.random.SeedSequence([int(seed) % (1 << 63), 0x5E7, iteration]).generate_state(1, np.uint64)[0]
+               >> np.uint64(1))
+
+
+def _iteration_progress(progress, iteration: int, n: int, max_iterations: int):
+    """The run's ``progress`` seen from one iteration's simulation (None passes through)."""
+    if progress is None:
+        return None
+    total = max_iterations * n
+
+    def report(done, _n):
+        progress(min(iteration * n + done, total - 1), total)  # the bar ends with the calibration
+
+    return report
+
+
+def _set_members(bank: ItemBank, design: Design) -> list[np.ndarray]:
+    """Rows of each item set (when the design keeps sets together)."""
+    if not design.blueprint.item_sets:
+        return []
+    names = [x for x in dict.fromkeys(bank.item_set) if x]
+    labels = np.asarray(bank.item_set)
+    return [np.flatnonzero(labels == name) for name in names]
+
+
+def _updated(k, given, selected, target, sets) -> np.ndarray:
+    """One Sympson-Hetter step: ``k = min(1, r / P(selected))`` per item.
+
+    Items of a set are given together once the set is entered, and only the entry goes
+    through the lottery, so a set gets one parameter for all its members, scaled by how
+    far the set's entry rate (its members' largest exposure rate) is from the target.
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        new = np.where(selected > target, target / selected, 1.0)
+        for members in sets:
+            entry = given[members].max()
+            old = k[members].max()
+            new[members] = min(1.0, old * target / entry) if entry > 0 else 1.0
+    return new
+
+
+def _updated_conditional(k, given_pair, selected_pair, size, target, sets) -> np.ndarray:
+    """One conditional step (see the module notes), (S, n) -> (S, n).
+
+    Parameters
+    ----------
+    k : float (S, n)
+        Parameters per estimate stratum.
+    given_pair, selected_pair : int (S, S, n)
+        Counts per [true stratum, estimate stratum at the pick, item].
+    size : int (S,)
+        Examinees per true stratum.
+    """
+    selected = selected_pair.sum(axis=1) / size[:, None]  # P(selected_i | true s), (S, n)
+    served = selected_pair > 0  # (S true, S estimate, n)
+    with np.errstate(divide="ignore"):
+        allowed = np.where(selected > target, target / selected, np.inf)  # (S true, n)
+    new = np.minimum(1.0, np.where(served, allowed[:, None, :], np.inf).min(axis=0))
+    if sets:
+        given = given_pair.sum(axis=1) / size[:, None]
+        for members in sets:
+            entry = given[:, members].max(axis=1)  # set entry rate per true stratum
+            with np.errstate(divide="ignore"):
+                factor = np.where(entry > 0, target / entry, np.inf)
+            for e in range(k.shape[0]):
+                fed = served[:, e, members].any(axis=1)
+                worst = factor[fed].min() if fed.any() else np.inf
+                new[e, members] = min(1.0, k[e, members].max() * worst)
+    return new
+
+
+def unreachable_target_warning(design: Design, bank: ItemBank, target: float) -> str | None:
+    """Why ``target`` may be out of reach for the design on the bank (None when it is not).
+
+    The exposure rates of the operational items add up to the mean number of scored items
+    per test, so no item can stay at or below ``target`` unless the mean length is at
+    most ``target`` x (operational items).  Tests that may run to ``max_items`` beyond
+    that bound make the target unreachable unless most of them stop early.
+    """
+    n_operational = int(np.sum(np.asarray(bank.status) == "operational"))
+    room = target * n_operational
+    max_items = design.stopping.max_items
+    if room >= max_items:
+        return None
+    certain = room < design.stopping.min_items
+    return (f"target {target:g} x {n_operational} operational items = {room:g} items per test on average, "
+            f"but tests run to {max_items} items (at least {design.stopping.min_items}); the target "
+            + ("cannot be reached" if certain else "can be reached only if most tests stop before "
+               f"{room:g} items") + "; raise --target or use a larger bank")
+
+
+def with_parameters(design: Design, parameters: dict, *, path: str = "calibrated", strata=()) -> Design:
+    """``design`` switched to Sympson-Hetter with the given parameters (in memory).
+
+    ``strata``: interior cut points when ``parameters`` are conditional on ability.
+    """
+    exposure = attrs.evolve(design.exposure, method="sympson_hetter", parameters=path)
+    return attrs.evolve(design, exposure=exposure, exposure_parameters=dict(parameters),
+                        exposure_strata=tuple(strata))
+
+
+def parse_strata(text: str) -> tuple:
+    """``"-1,0,1"`` -> ``(-1.0, 0.0, 1.0)``: interior cut points of ability strata, validated."""
+    parts = [p.strip() for p in str(text).split(",")]
+    cuts = []
+    for part in parts:
+        try:
+            cuts.append(float(part))
+        except ValueError:
+            raise AdaptiveEngineError(f"cut point {part!r} is not a number", "--conditional-strata") from None
+    return _check_strata(cuts)
+
+
+def _check_strata(strata) -> tuple:
+    """Validated interior cut points (ascending, finite) for a conditional calibration."""
+    try:
+        cuts = tuple(float(c) for c in strata)
+    except (TypeError, ValueError):
+        raise AdaptiveEngineError(f"stratum cut points must be numbers, got {strata!r}",
+                                  "--conditional-strata") from None
+    if not cuts:
+        raise AdaptiveEngineError("give at least one cut point for conditional strata", "--conditional-strata")
+    if not all(np.isfinite(cuts)) or any(b <= a for a, b in zip(cuts, cuts[1:])):
+        raise AdaptiveEngineError(f"stratum cut points must be finite and strictly ascending, got {list(cuts)}",
+                                  "--conditional-strata")
+    return cuts
+
+
+def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, true_theta, seed: int,
+                             max_iterations: int = 15, tolerance: float = 0.02,
+                             chunk_size: int = DEFAULT_CHUNK, workers: int = 1, executor=None,
+                             progress=None, strata=None) -> ExposureCalibration:
+    """Iterate Sympson-Hetter exposure parameters by simulation.
+
+    Parameters
+    ----------
+    design : Design
+        The design to protect (its exposure section is replaced by Sympson-Hetter).
+    target : float in (0, 1]
+        The largest exposure rate allowed (r_max).
+    true_theta : float array, shape (N,)
+        Abilities of the simulated population (one draw of N per iteration would be
+        equivalent; the same abilities with fresh random streams are used).
+    max_iterations : int
+    tolerance : float
+        Converged when the largest exposure rate is at most ``target + tolerance``.
+    strata : float sequence, optional
+        Interior cut points of ability strata, ascending: calibrate parameters conditional
+        on ability (Stocking & Lewis 1998), one per item and stratum, so that within every
+        true-ability stratum no item's exposure rate exceeds the target.  Every stratum
+        must hold some of the ``true_theta``.
+    progress : callable, optional
+        Called as ``progress(done, total)`` with the simulated examinees so far, over at
+        most ``max_iterations`` iterations (``total`` = max_iterations x N); it reaches
+        ``total`` when the calibration ends, early or not.
+    """
+    if not 0 < target <= 1:
+        raise AdaptiveEngineError(f"the target exposure rate must lie in (0, 1], got {target}", "--target")
+    if max_iterations < 1:
+        raise AdaptiveEngineError(f"max_iterations must be >= 1, got {max_iterations}", "--iterations")
+    true_theta = np.asarray(true_theta, dtype=float)
+    if strata is not None:
+        return _calibrate_conditional(design, bank, target=target, true_theta=true_theta, seed=seed,
+                                      strata=_check_strata(strata), max_iterations=max_iterations,
+                                      tolerance=tolerance, chunk_size=chunk_size, workers=workers,
+                                      executor=executor, progress=progress)
+    n = true_theta.size
+    operational = np.asarray(bank.status) == "operational"
+    k = np.ones(bank.n_items)
+    history = []
+    converged = False
+    require_design_fits_bank(with_parameters(design, {}), bank)
+    sets = _set_members(bank, design)
+    for it in range(max_iterations):
+        params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
+        current = with_parameters(design, params)
+        result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
+                          chunk_size=chunk_size, workers=workers, executor=executor,
+                          progress=_iteration_progress(progress, it, n, max_iterations))
+        given = result.administered / n
+        selected = result.offered / n
+        max_rate = float(given[operational].max())
+        history.append({"iteration": it + 1, "max_exposure": max_rate,
+                        "share_above_target": float(np.mean(given[operational] > target)),
+                        "mean_length": float(result.n_scored.mean()),
+                        "items_restricted": int(np.sum(k[operational] < 1))})
+        if max_rate <= target + tolerance:
+            converged = True
+            break
+        k = _updated(k, given, selected, target, sets)
+    if progress is not None:
+        progress(max_iterations * n, max_iterations * n)
+    params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
+    return ExposureCalibration(parameters=params, history=history, converged=converged,
+                               target=float(target), tolerance=float(tolerance))
+
+
+def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, max_iterations, tolerance,
+                           chunk_size, workers, executor, progress) -> ExposureCalibration:
+    """Sympson-Hetter iterations per true-ability stratum (Stocking & Lewis 1998)."""
+    n_strata = len(strata) + 1
+    size = np.bincount(stratum_of(true_theta, strata), minlength=n_strata)  # N_s
+    empty = np.flatnonzero(size == 0)
+    if empty.size:
+        bounds = (-np.inf,) + strata + (np.inf,)
+        shown = ", ".join(f"[{bounds[s]:g}, {bounds[s + 1]:g})" for s in empty)
+        raise AdaptiveEngineError(f"no simulated examinee has a true ability in the stratum {shown}; "
+                                  "move the cut points or widen the population", "--conditional-strata")
+    operational = np.asarray(bank.status) == "operational"
+    op_rows = np.flatnonzero(operational)
+    k = np.ones((n_strata, bank.n_items))
+    history = []
+    converged = False
+    require_design_fits_bank(with_parameters(design, {}), bank)
+    sets = _set_members(bank, design)
+
+    def as_params():
+        return {bank.item_ids[i]: tuple(float(x) for x in k[:, i]) for i in op_rows}
+
+    for it in range(max_iterations):
+        current = with_parameters(design, as_params(), strata=strata)
+        result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
+                          chunk_size=chunk_size, workers=workers, executor=executor, count_by_stratum=strata,
+                          progress=_iteration_progress(progress, it, true_theta.size, max_iterations))
+        given = result.administered_by_stratum / size[:, None]  # P(A_i | true stratum s)
+        by_stratum = given[:, operational].max(axis=1)
+        max_rate = float(by_stratum.max())
+        history.append({"iteration": it + 1, "max_exposure": max_rate,
+                        "max_exposure_by_stratum": [float(x) for x in by_stratum],
+                        "examinees_by_stratum": [int(x) for x in size],
+                        "share_above_target": float(np.mean(given[:, operational] > target)),
+                        "mean_length": float(result.n_scored.mean()),
+                        "items_restricted": int(np.sum(k[:, operational] < 1))})
+        if max_rate <= target + tolerance:
+            converged = True
+            break
+        k = _updated_conditional(k, result.administered_by_stratum_pair, result.offered_by_stratum_pair,
+                                 size, target, sets)
+    if progress is not None:
+        progress(max_iterations * true_theta.size, max_iterations * true_theta.size)
+    return ExposureCalibration(parameters=as_params(), history=history, converged=converged,
+                               target=float(target), tolerance=float(tolerance), strata=strata)
+
+
+def parameters_csv(parameters: dict, strata=()) -> str:
+    """Text of the parameter file.
+
+    Unconditional: ``item_id,exposure_parameter``.  With ``strata`` (interior cut points)
+    the long conditional layout ``item_id,theta_from,theta_to,exposure_parameter``, one row
+    per item and stratum, the lowest from ``-inf`` and the highest to ``inf``.
+    """
+    out = io.StringIO()
+    if not strata:
+        out.write("item_id,exposure_parameter\n")
+        for iid, value in parameters.items():
+            out.write(f"{iid},{round(float(value), 6)!r}\n")
+        return out.getvalue()
+    bounds = ["-inf"] + [repr(float(c)) for c in strata] + ["inf"]
+    out.write("item_id,theta_from,theta_to,exposure_parameter\n")
+    for iid, values in parameters.items():
+        for s, value in enumerate(values):
+            out.write(f"{iid},{bounds[s]},{bounds[s + 1]},{round(float(value), 6)!r}\n")
+    return out.getvalue()
+
+
+def write_parameters(parameters: dict, path: str | Path, *, strata=()) -> Path:
+    """Write the parameters CSV (atomically, with the normal file mode: :mod:`adaptive_engine.files`)."""
+    return write_text(path, parameters_csv(parameters, strata))
+
+
+def run_calibration(design: Design, bank: ItemBank, *, target: float, out_file, true_theta, seed: int,
+                    max_iterations: int = 15, tolerance: float = 0.02, workers: int = 1,
+                    strata=None, progress=None) -> ExposureCalibration:
+    """:func:`calibrate_sympson_hetter`, then write the parameters file (conditional with ``strata``)."""
+    check_target(out_file)  # before the long run: a bad folder fails at once
+    cal = calibrate_sympson_hetter(design, bank, target=target, true_theta=true_theta, seed=seed,
+                                   max_iterations=max_iterations, tolerance=tolerance, workers=workers,
+                                   strata=strata, progress=progress)
+    write_parameters(cal.parameters, out_file, strata=cal.strata)
+    return cal

@@ -1,0 +1,223 @@
+"""Synthetic examinees for simulation: where their true abilities come from.
+
+An ability specification is a short text, as typed on the command line:
+
+``normal:MEAN,SD``
+    true theta drawn from a normal distribution;
+``uniform:LO,HI``
+    drawn uniformly on [LO, HI];
+``grid:LO,HI,POINTS:PER_POINT``
+    POINTS equally spaced abilities from LO to HI, each given to PER_POINT examinees
+    (for conditional studies: the number of examinees is POINTS x PER_POINT);
+``file:PATH``
+    the abilities listed in a CSV file (a column named ``theta`` or ``true_theta``, or a
+    single column without header); the number of examinees is the number of rows.
+
+A ``grid:`` or ``file:`` specification fixes the number of examinees: a run takes it as
+its default, and a different explicit number is an error (:func:`examinee_count`).
+
+Abilities are drawn once for the whole run from the run's seed, so they do not depend on
+how the run is cut into chunks or spread over workers.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from pathlib import Path
+
+import attrs
+import numpy as np
+
+from ..errors import AdaptiveEngineError
+
+KINDS = ("normal", "uniform", "grid", "file")
+#: Sub-stream of the run seed that true abilities are drawn from.
+_ABILITY_STREAM = 0x7E7A
+
+
+class AbilitySpecError(AdaptiveEngineError):
+    """An ability specification (``--theta``) cannot be read."""
+
+
+@attrs.frozen(kw_only=True)
+class AbilitySpec:
+    """Where the true abilities of synthetic examinees come from.
+
+    Attributes
+    ----------
+    kind : str
+        ``normal``, ``uniform``, ``grid`` or ``file``.
+    values : tuple of float
+        (mean, sd), (lo, hi), (lo, hi, points, per_point); empty for ``file``.
+    thetas : tuple of float
+        The listed abilities of a ``file`` specification.
+    text : str
+        The specification as written.
+    """
+
+    kind: str = attrs.field(validator=attrs.validators.in_(KINDS))
+    values: tuple = ()
+    thetas: tuple = ()
+    text: str = ""
+
+    @property
+    def fixed_count(self) -> int | None:
+        """Number of examinees the specification itself fixes (grid, file), else None."""
+        if self.kind == "grid":
+            return int(self.values[2]) * int(self.values[3])
+        if self.kind == "file":
+            return len(self.thetas)
+        return None
+
+    def draw(self, n: int, seed: int) -> np.ndarray:
+        """True abilities of examinees 0..n-1, shape (n,).
+
+        ``grid`` and ``file`` specifications repeat their list cyclically when ``n`` is
+        larger than the count they fix (and take its first ``n`` entries when smaller).
+        """
+        if n < 0:
+            raise AbilitySpecError(f"the number of examinees must be >= 0, got {n}", "--examinees")
+        if self.kind == "normal":
+            mean, sd = self.values
+            return mean + sd * _generator(seed).standard_normal(n)
+        if self.kind == "uniform":
+            lo, hi = self.values
+            return lo + (hi - lo) * _generator(seed).random(n)
+        if self.kind == "grid":
+            lo, hi, points, per_point = self.values
+            base = np.repeat(np.linspace(lo, hi, int(points)), int(per_point))
+        else:
+            base = np.asarray(self.thetas, dtype=float)
+        return np.resize(base, n)
+
+
+def examinee_count(spec: AbilitySpec, n: int | None, *, default: int) -> int:
+    """Number of examinees of a run: ``n`` as given, else the count the spec fixes, else ``default``.
+
+    Raises
+    ------
+    AbilitySpecError
+        Located at ``--examinees`` when ``n`` is below 1 or differs from the count a
+        ``grid:``/``file:`` specification fixes (cycling its list would give the grid
+        points, or the file's rows, unequal numbers of examinees).
+    """
+    fixed = spec.fixed_count
+    if n is None:
+        return int(fixed if fixed is not None else default)
+    if n < 1:
+        raise AbilitySpecError(f"the number of examinees must be >= 1, got {n}", "--examinees")
+    if fixed is not None and n != fixed:
+        what = ("POINTS x PER_POINT" if spec.kind == "grid" else "one per row of the file")
+        raise AbilitySpecError(f"--theta {spec.text} fixes {fixed} examinees ({what}), not {n}; "
+                               f"leave --examinees out or give {fixed}", "--examinees")
+    return int(n)
+
+
+def _generator(seed: int) -> np.random.Generator:
+    return np.random.default_rng(np.random.SeedSequence([int(seed) % (1 << 63), _ABILITY_STREAM]))
+
+
+def _numbers(body: str, count: int, text: str) -> list[float]:
+    parts = [p.strip() for p in body.split(",")]
+    if len(parts) != count or not all(parts):
+        raise AbilitySpecError(f"expected {count} comma-separated numbers after the colon in {text!r}", "--theta")
+    out = []
+    for p in parts:
+        try:
+            x = float(p)
+        except ValueError:
+            raise AbilitySpecError(f"{p!r} is not a number in {text!r}", "--theta") from None
+        if not math.isfinite(x):
+            raise AbilitySpecError(f"{p!r} is not a finite number in {text!r}", "--theta")
+        out.append(x)
+    return out
+
+
+def parse_ability_spec(text: str, *, base_dir: str | Path | None = None) -> AbilitySpec:
+    """Read an ability specification (see the module docstring).
+
+    Parameters
+    ----------
+    text : str
+        ``normal:0,1``, ``uniform:-3,3``, ``grid:-3,3,13:200`` or ``file:abilities.csv``.
+    base_dir : path, optional
+        Directory a relative ``file:`` path is resolved against (default: current).
+    """
+    text = str(text).strip()
+    kind, sep, body = text.partition(":")
+    kind = kind.strip().lower()
+    if not sep or kind not in KINDS:
+        raise AbilitySpecError(
+            f"unknown ability specification {text!r}; use normal:MEAN,SD, uniform:LO,HI, "
+            "grid:LO,HI,POINTS:PER_POINT or file:PATH", "--theta")
+    if kind == "normal":
+        mean, sd = _numbers(body, 2, text)
+        if sd < 0:
+            raise AbilitySpecError(f"the SD must be >= 0 in {text!r}", "--theta")
+        return AbilitySpec(kind=kind, values=(mean, sd), text=text)
+    if kind == "uniform":
+        lo, hi = _numbers(body, 2, text)
+        if hi < lo:
+            raise AbilitySpecError(f"LO must not exceed HI in {text!r}", "--theta")
+        return AbilitySpec(kind=kind, values=(lo, hi), text=text)
+    if kind == "grid":
+        range_part, sep2, per = body.partition(":")
+        if not sep2:
+            raise AbilitySpecError(f"a grid needs LO,HI,POINTS:PER_POINT, got {text!r}", "--theta")
+        lo, hi, points = _numbers(range_part, 3, text)
+        (per_point,) = _numbers(per, 1, text)
+        if hi < lo or points < 1 or per_point < 1 or points != int(points) or per_point != int(per_point):
+            raise AbilitySpecError(
+                f"a grid needs LO <= HI and whole POINTS, PER_POINT >= 1, got {text!r}", "--theta")
+        return AbilitySpec(kind=kind, values=(lo, hi, int(points), int(per_point)), text=text)
+    path = Path(body.strip())
+    if base_dir is not None and not path.is_absolute():
+        path = Path(base_dir) / path
+    return AbilitySpec(kind="file", thetas=tuple(read_ability_file(path)), text=text)
+
+
+def read_ability_file(path: str | Path) -> list[float]:
+    """Abilities listed in a CSV file (column ``theta``/``true_theta``, or one bare column)."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise AbilitySpecError(f"ability file not found: {path}", str(path)) from None
+    except (IsADirectoryError, UnicodeDecodeError) as exc:
+        raise AbilitySpecError(f"cannot read ability file: {exc}", str(path)) from None
+    rows = [(i + 1, r) for i, r in enumerate(csv.reader(text.splitlines())) if any(c.strip() for c in r)]
+    if not rows:
+        raise AbilitySpecError("the ability file is empty", f"{path.name} line 1")
+    header = [c.strip().lower() for c in rows[0][1]]
+    column, start = 0, 0
+    for name in ("theta", "true_theta"):
+        if name in header:
+            column, start = header.index(name), 1
+            break
+    else:
+        if len(header) != 1:
+            raise AbilitySpecError("expected a column named theta or true_theta",
+                                   f"{path.name} line {rows[0][0]}")
+        try:
+            float(header[0])
+        except ValueError:
+            start = 1  # a one-column header with another name
+    out = []
+    problems = []
+    for line_no, row in rows[start:]:
+        raw = row[column].strip() if column < len(row) else ""
+        try:
+            x = float(raw)
+        except ValueError:
+            x = math.nan
+        if not math.isfinite(x):
+            problems.append((f"{path.name} line {line_no}", f"theta {raw!r} is not a finite number"))
+        out.append(x)
+    if problems:
+        from ..errors import Problem
+
+        raise AbilitySpecError([Problem(loc, msg) for loc, msg in problems[:20]])
+    if not out:
+        raise AbilitySpecError("the ability file lists no abilities", f"{path.name}")
+    return out

@@ -1,0 +1,334 @@
+"""A simulation study written to a folder: summary, tables, administrations, report.
+
+:func:`run_study` is what ``adaptive-engine simulate`` calls.  The output folder is created
+when missing (the folder it sits in must exist: :mod:`adaptive_engine.files`).  Files are
+written under temporary names inside the output folder and renamed into place only when
+the whole run succeeded, so a failed run leaves nothing half-written; a file of
+:data:`FILES` that an earlier run left in the folder and this run did not write is removed
+then, so the folder never mixes two runs.
+
+Files
+-----
+``summary.json``
+    :func:`adaptive_engine.simulation.metrics.summarize` plus the run's settings.
+``examinees.csv``
+    ``examinee,true_theta,theta,se,n_items,stop_reason,n_pretest,scaled_score,seed`` and
+    one ``class_<cut>`` column per cut score (``seed`` replays the examinee as a live
+    session).
+``administrations.csv``
+    ``examinee,position,item_id,response,theta,se,scored`` in order of administration
+    (theta, se: the interim estimate after that answer); streamed chunk by chunk.
+``items.csv``
+    ``item_id,exposure_rate,administered,selection_rate,area,status``.
+``conditional.csv``
+    metrics by ability bin.
+``report.html``
+    self-contained report (:mod:`adaptive_engine.simulation.html_report`).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import shutil
+from pathlib import Path
+from typing import Callable
+
+import attrs
+import numpy as np
+
+from ..bank.item_bank import ItemBank
+from ..design.bank_fit import require_design_fits_bank
+from ..design.types import Design
+from ..files import StagedFiles, prepare_folder
+from . import metrics
+from .engine import (
+    DEFAULT_CHUNK,
+    ChunkResult,
+    SimulationResult,
+    effective_chunk_size,
+    simulate,
+    true_item_rows,
+)
+from .population import AbilitySpec, examinee_count
+
+#: Examinees of a study when neither ``--examinees`` nor the ability spec says.
+DEFAULT_EXAMINEES = 1000
+
+FILES = ("summary.json", "examinees.csv", "administrations.csv", "items.csv", "conditional.csv", "report.html")
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class Study:
+    """A finished study: the result, its summary and where the files went."""
+
+    result: SimulationResult
+    summary: dict
+    conditional: list
+    out_dir: Path | None
+
+
+def _num(x, digits: int = 6) -> str:
+    x = float(x)
+    return "" if not math.isfinite(x) else repr(round(x, digits))
+
+
+class _AdministrationWriter:
+    """Streams each chunk's administrations to ``administrations.csv``."""
+
+    def __init__(self, path: Path, bank: ItemBank):
+        self.handle = open(path, "w", encoding="utf-8", newline="")
+        self.handle.write("examinee,position,item_id,response,theta,se,scored\n")
+        self.ids = np.asarray(bank.item_ids, dtype=object)
+
+    def __call__(self, chunk: ChunkResult) -> None:
+        given = chunk.items >= 0
+        ex, pos = np.nonzero(given)
+        items = chunk.items[given]
+        resp = chunk.responses[given]
+        th = [repr(t) if t == t else "" for t in np.round(chunk.interim_theta[given], 6).tolist()]
+        se = [repr(t) if t == t else "" for t in np.round(chunk.interim_se[given], 6).tolist()]
+        scored = np.where(chunk.scored[given], "1", "0")
+        ids = self.ids[items]
+        lines = [f"{e},{p},{i},{r},{t},{s},{sc}" for e, p, i, r, t, s, sc in
+                 zip((ex + chunk.start).tolist(), (pos + 1).tolist(), ids, resp.tolist(), th, se, scored)]
+        if lines:
+            self.handle.write("\n".join(lines))
+            self.handle.write("\n")
+
+    def close(self) -> None:
+        self.handle.close()
+
+
+def examinees_csv(result: SimulationResult) -> str:
+    """Text of ``examinees.csv``."""
+    cuts = result.design.reporting.cut_scores
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    # the issue's columns first, in its order; then what this project adds
+    w.writerow(["examinee", "true_theta", "theta", "se", "n_items", "stop_reason", "n_pretest",
+                "scaled_score", "seed"] + [f"class_{c.name}" for c in cuts])
+    for i in range(result.size):
+        labels = []
+        for k, c in enumerate(cuts):
+            v = result.at_or_above[i, k]
+            labels.append(c.above if v == 1 else c.below if v == 0 else "")
+        w.writerow([i, _num(result.true_theta[i]), _num(result.theta[i]), _num(result.se[i]),
+                    int(result.n_scored[i]), result.stop_reason[i], int(result.n_pretest[i]),
+                    _num(result.scaled_score[i]), int(result.seeds[i])] + labels)
+    return buf.getvalue()
+
+
+def items_csv(result: SimulationResult) -> str:
+    """Text of ``items.csv``."""
+    bank = result.bank
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["item_id", "exposure_rate", "administered", "selection_rate", "area", "status"])
+    n = max(result.size, 1)
+    for i, iid in enumerate(bank.item_ids):
+        w.writerow([iid, _num(result.administered[i] / n), int(result.administered[i]),
+                    _num(result.offered[i] / n), bank.area[i], bank.status[i]])
+    return buf.getvalue()
+
+
+def rows_csv(rows: list[dict]) -> str:
+    """CSV text of a list of flat dicts (columns of the first row, then new ones in order)."""
+    cols: list = []
+    for r in rows:
+        for k in r:
+            if k not in cols:
+                cols.append(k)
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(cols)
+    for r in rows:
+        w.writerow(["" if r.get(k) is None else (_num(r[k]) if isinstance(r[k], float) else r[k]) for k in cols])
+    return buf.getvalue()
+
+
+def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_examinees: int | None, seed: int,
+              out_dir: str | Path | None, true_bank: ItemBank | None = None, workers: int = 1,
+              executor=None, chunk_size: int = DEFAULT_CHUNK, exposure_target: float | None = None,
+              write_administrations: bool = True, progress: Callable[[int, int], None] | None = None,
+              title: str = "") -> Study:
+    """Check, simulate, summarise and (when ``out_dir`` is given) write the study's files.
+
+    Parameters
+    ----------
+    abilities : AbilitySpec
+        Where true abilities come from; a ``grid:``/``file:`` spec fixes the number of
+        examinees (``n_examinees`` None or equal to it).
+    n_examinees : int or None
+        None: the count the spec fixes, else :data:`DEFAULT_EXAMINEES`.
+    out_dir : path or None
+        Folder for the files (created if needed); None: compute only.
+    """
+    require_design_fits_bank(design, bank)
+    true_item_rows(bank, true_bank)
+    exposure_target = metrics.exposure_target(exposure_target)  # checked before any work
+    n = examinee_count(abilities, n_examinees, default=DEFAULT_EXAMINEES)
+    true_theta = abilities.draw(n, seed)
+    staging = None
+    writer = None
+    created = False
+    finished = False
+    if out_dir is not None:
+        out_dir, created = prepare_folder(out_dir)
+        staging = StagedFiles(out_dir)
+    try:
+        if staging is not None and write_administrations:
+            writer = _AdministrationWriter(staging.path("administrations.csv"), bank)
+        # a design with ability-conditional exposure parameters is judged stratum by stratum
+        strata = design.exposure_strata or None
+        result = simulate(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
+                          chunk_size=chunk_size, executor=executor, workers=workers,
+                          on_chunk=writer, progress=progress, count_by_stratum=strata)
+        if writer is not None:
+            writer.close()
+        summary = metrics.summarize(result, exposure_target=exposure_target)
+        summary["settings"] = {
+            "design": design.source, "bank": bank.name, "abilities": abilities.text,
+            "true_bank": None if true_bank is None else true_bank.name, "seed": int(seed),
+            "examinees": int(n), "chunk_size": int(effective_chunk_size(n, chunk_size, workers)),
+            "workers": int(workers),
+        }
+        conditional = summary["conditional"]
+        if staging is not None:
+            staging.write_text("summary.json", json.dumps(summary, indent=2, allow_nan=False) + "\n")
+            staging.write_text("examinees.csv", examinees_csv(result))
+            staging.write_text("items.csv", items_csv(result))
+            staging.write_text("conditional.csv", rows_csv(conditional))
+            from .html_report import simulation_report_html
+
+            staging.write_text("report.html", simulation_report_html(result, summary, title=title))
+            written = {p.name for p in staging.commit()}
+            for name in FILES:
+                if name not in written:
+                    # a file of an earlier run that this run did not write (e.g. its
+                    # administrations.csv after --no-administrations) would not match the others
+                    (out_dir / name).unlink(missing_ok=True)
+        finished = True
+        return Study(result=result, summary=summary, conditional=conditional, out_dir=out_dir)
+    finally:
+        if writer is not None:
+            writer.close()
+        if staging is not None:
+            staging.discard()
+            if created and not finished:
+                shutil.rmtree(out_dir, ignore_errors=True)  # a folder made for a failed run
+
+
+_SE_COLUMNS = {"se_a": "sd_a", "se_b": "sd_b", "se_c": "sd_c", "se_d": "sd_d"}
+
+
+def read_standard_errors(path: str | Path, bank: ItemBank) -> dict:
+    """Per-item standard errors from a calibration fit report, as SDs for perturbation.
+
+    The report is the CSV ``adaptive-engine calibrate --fit-report`` writes (see
+    :func:`adaptive_engine.calibration.item_fit.item_report_rows`): a column ``item_id``
+    and the standard errors ``se_a``, ``se_b``, ``se_c``, ``se_d`` and ``se_b1`` ...
+    ``se_bK`` (category thresholds); other columns are ignored.  An empty cell (a
+    parameter the model does not estimate) and an item of the bank the report does not
+    list leave that parameter unperturbed.
+
+    Returns
+    -------
+    dict
+        Keyword SDs for :func:`adaptive_engine.simulation.perturbed_bank`: ``sd_a``,
+        ``sd_b``, ``sd_c``, ``sd_d`` float (n_items,) and ``sd_thresholds`` float
+        (n_items, K) in bank order.
+
+    Raises
+    ------
+    SimulationError
+        Located at ``FILE line N, item ID, COLUMN`` for items not in the bank, repeated
+        items and standard errors that are not finite numbers >= 0.
+    """
+    from ..errors import Problem
+    from .engine import SimulationError
+
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except FileNotFoundError:
+        raise SimulationError(f"fit report not found: {path}", "--perturb-from") from None
+    except (IsADirectoryError, UnicodeDecodeError) as exc:
+        raise SimulationError(f"cannot read the fit report: {exc}", "--perturb-from") from None
+    reader = csv.reader(text.splitlines())
+    header = [c.strip() for c in next(reader, [])]
+    where = path.name
+    if "item_id" not in header:
+        raise SimulationError("the fit report has no item_id column", f"{where} line 1")
+    thresholds = sorted((int(c[4:]), c) for c in header if c.startswith("se_b") and c[4:].isdigit())
+    if not any(c in header for c in _SE_COLUMNS) and not thresholds:
+        raise SimulationError("the fit report has no standard-error columns (se_a, se_b, se_c, se_d, se_b1, ...)",
+                              f"{where} line 1")
+    k_max = bank.thresholds.shape[1]
+    if thresholds and thresholds[-1][0] > k_max:
+        raise SimulationError(f"column {thresholds[-1][1]} is beyond the bank's {k_max} thresholds",
+                              f"{where} line 1")
+    n = bank.n_items
+    out = {key: np.zeros(n) for key in _SE_COLUMNS.values()}
+    out["sd_thresholds"] = np.zeros((n, k_max))
+    columns = [(header.index(c), c, key, None) for c, key in _SE_COLUMNS.items() if c in header]
+    columns += [(header.index(c), c, "sd_thresholds", k - 1) for k, c in thresholds]
+    id_col = header.index("item_id")
+    problems: list = []
+    seen: dict = {}
+    for line_no, row in enumerate(reader, start=2):
+        if not any(cell.strip() for cell in row):
+            continue
+        iid = row[id_col].strip() if id_col < len(row) else ""
+        row_index = bank.index_of.get(iid)
+        if row_index is None:
+            problems.append(Problem(f"{where} line {line_no}, item {iid or '(empty)'}",
+                                    "the item is not in the operational bank"))
+            continue
+        if iid in seen:
+            problems.append(Problem(f"{where} line {line_no}, item {iid}",
+                                    f"the item is listed again (first on line {seen[iid]})"))
+            continue
+        seen[iid] = line_no
+        for col, name, key, k in columns:
+            raw = row[col].strip() if col < len(row) else ""
+            if not raw:
+                continue  # not estimated for this item's model
+            try:
+                value = float(raw)
+            except ValueError:
+                value = math.nan
+            if not math.isfinite(value) or value < 0:
+                problems.append(Problem(f"{where} line {line_no}, item {iid}, {name}",
+                                        f"{raw!r} is not a standard error (a finite number >= 0)"))
+                continue
+            if k is None:
+                out[key][row_index] = value
+            else:
+                out[key][row_index, k] = value
+        if len(problems) >= 20:
+            break
+    if problems:
+        raise SimulationError(problems[:20])
+    if not seen:
+        raise SimulationError("the fit report lists no items", f"{where}")
+    return out
+
+
+def summary_table(summary: dict) -> str:
+    """The headline figures as an aligned two-column text table."""
+    keys = ["examinees", "rmse", "bias", "mae", "mean_se", "se_calibration", "correlation",
+            "marginal_reliability", "mean_length", "max_exposure", "overlap_rate", "chi_square_index",
+            "exposure_target", "share_above_target"]
+    keys += [k for k in summary if k.startswith("accuracy_")]
+    lines = []
+    for k in keys:
+        v = summary.get(k)
+        text = "-" if v is None else (f"{v:.4f}" if isinstance(v, float) else str(v))
+        lines.append(f"{k:<22} {text:>10}")
+    reasons = summary.get("length", {}).get("stop_reasons", {})
+    if reasons:
+        lines.append("stop reasons           " + ", ".join(f"{r} {c}" for r, c in reasons.items()))
+    return "\n".join(lines)

@@ -1,0 +1,199 @@
+"""Stopping-rule tuning: run variants of a design on the same examinees and compare.
+
+Every combination of the varied settings runs on the same true abilities with the same
+seed, so examinee i gets the same random streams (decisions and answers) in every
+variant -- common random numbers: differences between variants are the settings' doing,
+not sampling noise.  A combination is on the *efficient frontier* when no other is at least
+as good on mean length (lower), RMSE (lower) and classification accuracy (higher, when the
+design has cut scores) and strictly better on one.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+import tomllib
+
+import attrs
+import numpy as np
+
+from ..bank.item_bank import ItemBank
+from ..design.bank_fit import require_design_fits_bank
+from ..design.toml_file import design_as_dict, design_from_dict
+from ..design.types import Design
+from ..errors import DesignError, Problem
+from ..files import StagedFiles, prepare_folder
+from . import metrics
+from .engine import DEFAULT_CHUNK, simulate
+
+
+@attrs.frozen(kw_only=True)
+class Variation:
+    """One varied setting: a dotted design key and the values it takes."""
+
+    key: str
+    values: tuple
+
+
+def _value(text: str):
+    """A TOML scalar from its text (numbers, true/false, quoted or bare strings)."""
+    text = text.strip()
+    try:
+        return tomllib.loads(f"v = {text}")["v"]
+    except tomllib.TOMLDecodeError:
+        return text
+
+
+def parse_variation(text: str) -> Variation:
+    """``SECTION.KEY=V1,V2,...`` (e.g. ``stopping.se=0.25,0.3`` or ``stopping.sprt.alpha=0.05,0.1``)."""
+    key, sep, values = str(text).partition("=")
+    key = key.strip()
+    parts = [v for v in values.split(",") if v.strip()]
+    if not sep or "." not in key or not parts:
+        raise DesignError(f"expected SECTION.KEY=V1,V2,..., got {text!r}", "--vary")
+    return Variation(key=key, values=tuple(_value(v) for v in parts))
+
+
+def apply_settings(design: Design, settings: dict) -> Design:
+    """``design`` with dotted keys set to new values (validated like a design file)."""
+    data = design_as_dict(design)
+    for key, value in settings.items():
+        *path, last = key.split(".")
+        node = data
+        for part in path:
+            nxt = node.get(part) if isinstance(node, dict) else None
+            if nxt is None:
+                if isinstance(node, dict) and part in node:
+                    nxt = node[part] = {}  # an optional sub-table the design leaves out
+                else:
+                    raise DesignError(f"the design has no section {part!r}", f"--vary {key}")
+            node = nxt
+        if not isinstance(node, dict) or (last not in node and node):
+            raise DesignError(f"the design has no key {last!r} in [{'.'.join(path)}]", f"--vary {key}")
+        node[last] = value
+    try:
+        return design_from_dict(data)
+    except DesignError as exc:
+        where = ", ".join(settings)
+        raise DesignError([Problem(f"--vary ({where}) {p.location}", p.message) for p in exc.problems]) from None
+
+
+def efficient_frontier(length, rmse, accuracy=None) -> np.ndarray:
+    """bool (M,): combinations no other one dominates (lower length and RMSE, higher accuracy)."""
+    cols = [np.asarray(length, dtype=float), np.asarray(rmse, dtype=float)]
+    if accuracy is not None:
+        cols.append(-np.asarray(accuracy, dtype=float))
+    x = np.stack(cols, axis=1)
+    x = np.where(np.isfinite(x), x, np.inf)
+    m = x.shape[0]
+    keep = np.ones(m, dtype=bool)
+    for i in range(m):
+        others = np.delete(x, i, axis=0)
+        dominated = np.all(others <= x[i], axis=1) & np.any(others < x[i], axis=1)
+        keep[i] = not dominated.any()
+    return keep
+
+
+def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_theta, seed: int,
+         true_bank: ItemBank | None = None, chunk_size: int = DEFAULT_CHUNK, workers: int = 1,
+         executor=None, progress=None) -> list[dict]:
+    """Run every combination of ``variations`` on the same examinees; one row per combination.
+
+    ``progress(done, total)``, when given, counts simulated examinees over all
+    combinations (``total`` = combinations x examinees).
+
+    Returns
+    -------
+    list of dict
+        The varied settings, then ``mean_length``, ``sd_length``, ``rmse``, ``bias``,
+        ``mean_se``, ``se_calibration``, ``max_exposure``, ``accuracy_<cut>`` per cut score,
+        and ``frontier`` (bool).
+    """
+    if not variations:
+        raise DesignError("give at least one --vary SECTION.KEY=V1,V2,...", "--vary")
+    keys = [v.key for v in variations]
+    if len(set(keys)) != len(keys):
+        raise DesignError("a key is varied twice", "--vary")
+    combos = list(itertools.product(*[v.values for v in variations]))
+    designs = [apply_settings(design, dict(zip(keys, combo))) for combo in combos]
+    for d in designs:  # every variant must fit before any work starts
+        require_design_fits_bank(d, bank)
+    rows = []
+    n = int(np.size(true_theta))
+    total = len(combos) * n
+    for k, (combo, d) in enumerate(zip(combos, designs)):
+        inner = None
+        if progress is not None:
+            def inner(done, _n, base=k * n):
+                progress(base + done, total)
+        result = simulate(d, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
+                          chunk_size=chunk_size, workers=workers, executor=executor, progress=inner)
+        s = metrics.summarize(result)
+        row = dict(zip(keys, combo))
+        row.update(mean_length=s["mean_length"], sd_length=s["length"]["sd_length"],
+                   share_at_max_items=s["length"]["share_at_max_items"], rmse=s["rmse"], bias=s["bias"],
+                   mean_se=s["mean_se"], se_calibration=s["se_calibration"], max_exposure=s["max_exposure"])
+        for c in s["classification"]:
+            row[f"accuracy_{c['cut']}"] = c["accuracy"]
+        rows.append(row)
+    acc_keys = [k for k in rows[0] if k.startswith("accuracy_")]
+    accuracy = None
+    if acc_keys:
+        accuracy = [np.mean([r[k] if r[k] is not None else math.nan for k in acc_keys]) for r in rows]
+    front = efficient_frontier([r["mean_length"] for r in rows], [r["rmse"] for r in rows], accuracy)
+    for r, f in zip(rows, front):
+        r["frontier"] = bool(f)
+    return rows
+
+
+def tradeoff_png(rows: list[dict], keys: list[str]) -> str | None:
+    """Base64 PNG of mean length against RMSE (frontier highlighted); None without matplotlib."""
+    from .html_report import png_base64, pyplot_or_none
+
+    plt = pyplot_or_none()
+    if plt is None:
+        return None
+    fig, ax = plt.subplots(figsize=(6.5, 4.2))
+    x = [r["mean_length"] for r in rows]
+    y = [r["rmse"] for r in rows]
+    front = [r["frontier"] for r in rows]
+    ax.scatter(x, y, c=["crimson" if f else "grey" for f in front], zorder=3)
+    fx = sorted((a, b) for a, b, f in zip(x, y, front) if f)
+    if len(fx) > 1:
+        ax.plot(*zip(*fx), color="crimson", lw=1)
+    for r, a, b in zip(rows, x, y):
+        ax.annotate(", ".join(f"{r[k]}" for k in keys), (a, b), fontsize=7, xytext=(3, 3),
+                    textcoords="offset points")
+    ax.set_xlabel("mean test length (scored items)")
+    ax.set_ylabel("RMSE")
+    ax.set_title("Length against precision (" + ", ".join(keys) + ")", fontsize=9)
+    data = png_base64(fig)
+    plt.close(fig)
+    return data
+
+
+def run_tuning_study(design: Design, bank: ItemBank, variations: list[Variation], *, true_theta, seed: int,
+                     out_dir, true_bank: ItemBank | None = None, workers: int = 1, progress=None) -> list[dict]:
+    """:func:`tune`, then write ``tuning.csv``, ``tuning.json`` and ``tuning.html`` into ``out_dir``."""
+    import json
+
+    from .html_report import tuning_report_html
+    from .study import rows_csv
+
+    out, _ = prepare_folder(out_dir)  # before the long run: a bad folder fails at once
+    rows = tune(design, bank, variations, true_theta=true_theta, seed=seed, true_bank=true_bank,
+                workers=workers, progress=progress)
+    keys = [v.key for v in variations]
+    # every file is complete before any is renamed into place
+    texts = {
+        "tuning.csv": rows_csv(rows),
+        "tuning.json": json.dumps({"seed": int(seed), "examinees": int(np.size(true_theta)), "varied": keys,
+                                   "rows": rows}, indent=2, allow_nan=False, default=float) + "\n",
+        "tuning.html": tuning_report_html(rows, tradeoff_png(rows, keys),
+                                          title=f"Tuning {design.source or 'a design'}: " + ", ".join(keys)),
+    }
+    with StagedFiles(out) as staged:
+        for name, text in texts.items():
+            staged.write_text(name, text)
+        staged.commit()
+    return rows
