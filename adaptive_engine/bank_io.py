@@ -29,8 +29,8 @@ from typing import Callable
 import numpy as np
 
 from . import models
-from .bank import ItemBank, bank_from_records
-from .errors import AdaptiveEngineError, BankError, Problem
+from .bank import MAX_BANK_FILE_BYTES, ItemBank, bank_from_records
+from .errors import AdaptiveEngineError, BankError, Problem, check_input_file
 
 #: Columns before and after the threshold columns b1..bK, in file order.
 LEADING_COLUMNS = ("item_id", "model", "a", "b", "c", "d")
@@ -310,8 +310,7 @@ def read_bank_sqlite(path: str | Path) -> ItemBank:
     """
     path = Path(path)
     source = path.name
-    if not path.is_file():
-        raise BankError(f"no such file: {path}", location=str(path))
+    check_input_file(path, max_bytes=MAX_BANK_FILE_BYTES, error=BankError)
     try:
         # read-only URI: opening must never create or change the file
         conn = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)
