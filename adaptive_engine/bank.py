@@ -362,7 +362,11 @@ def bank_from_records(
         iid = "" if raw_id is None else str(raw_id).strip()
         loc = locations[pos] if locations else f"item {iid or '#' + str(pos + 1)}"
         where = f"{loc} (item {iid})" if locations and iid else loc
-        mine: list[str] = []
+        mine: list[str] = _surrogate_problems(rec)
+        if mine:
+            # the id itself may be what cannot be printed
+            problems.extend(Problem(_shown(f"{loc} (item {iid})" if locations and iid else loc), m) for m in mine)
+            continue
         if not iid:
             mine.append("item_id is empty")
         elif iid in seen:
@@ -552,6 +556,23 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
     if problems:
         raise BankError(problems)
     return bank_from_records(records, locations, scaling=scaling, name=str(doc.get("name") or Path(source).stem))
+
+
+def _surrogate_problems(rec: Mapping[str, Any]) -> list[str]:
+    """Text fields of one record holding a lone surrogate (from CSV text or SQLite made in
+    code; the JSON reader names the JSON path before this)."""
+    out = []
+    for key, value in rec.items():
+        texts = value if isinstance(value, (list, tuple)) else [value]
+        for text in texts:
+            if isinstance(text, str) and not text.isascii():
+                try:
+                    text.encode("utf-8")
+                except UnicodeEncodeError as exc:
+                    out.append(f"{_shown(str(key))} holds {_shown(text[exc.start:exc.end])}, a lone "
+                               "surrogate, which is not a Unicode character")
+                    break
+    return out
 
 
 def _json_integer(digits: str):

@@ -407,3 +407,11 @@ def test_special_and_oversized_bank_files_are_refused(tmp_path, monkeypatch):
     with pytest.raises(BankError, match="more than the 100 bytes") as info:
         load_bank(path)
     assert info.value.location == str(path)
+
+
+def test_lone_surrogates_in_text_given_in_code_are_refused_by_item():
+    # a str built in code (not read from a UTF-8 file) can hold one too
+    err = refused(HEADER + "Q\ud800,2PL,1,0,,,,,,pumps,,,operational,x\n" + GOOD_ROWS[1].replace("Second", "S\udfff"))
+    assert [p.location for p in err.problems] == ["bank.csv line 2 (item Q\\ud800)", "bank.csv line 3 (item Q2)"]
+    assert "item_id holds \\ud800" in messages(err) and "label holds \\udfff" in messages(err)
+    str(err).encode("utf-8")
