@@ -14,6 +14,8 @@ be written, as a lone surrogate once did).
 
 from __future__ import annotations
 
+import csv
+import io
 import json
 import re
 import tempfile
@@ -49,22 +51,35 @@ DESIGNS = {p.name: p.read_text(encoding="utf-8") for p in sorted((REPO / "simula
 RESPONSES = [_first_lines(REPO / "item_banks" / "meridian_valley_responses.csv", 120),
              _first_lines(REPO / "item_banks" / "staff_climate_responses.csv", 120)]
 
-NASTIES = [
+#: What hostile files hold: nesting thousands deep, integers of hundreds and thousands of
+#: digits, lone surrogates (as JSON escapes and as raw bytes), other scripts' digits.
+STRUCTURAL = [
     "[" * 3000 + "]" * 3000, '{"k": ' * 1500 + "1" + "}" * 1500, "[" * 60 + "]" * 60,
-    "9" * 401, "-" + "9" * 401, "9" * 5001, "-" + "9" * 5001, "1" + "0" * 19, "1e400", "-1e400", "1e-400",
-    "NaN", "Infinity", "-Infinity", "nan", "inf",
-    '"\\ud800"', '"x\\udfff"', '"\\ud83d\\ude00"', "\\ud800", "\ud800",
-    "\x00", "\ufeff", "\u0661", "\uff11", "\u00b2", "1_0", "0_1", "+1", "-0",
-    '"', '""', ",", ",,", "\r", "\r\n", "\n", "\t", " ", "=", "[[x]]", "{", "}", "]", ":",
-    "true", "null", "é", "item_id", "response", "response,response",
+    "9" * 401, "-" + "9" * 401, "9" * 5001, "-" + "9" * 5001, "1" + "0" * 19,
+    '"\\ud800"', '"x\\udfff"', "\\ud800", "\ud800", "\x00", "\ufeff",
+    "\u0661", "\uff11", "1_0", "0_1",
+]
+#: Everyday breakage: odd numbers, quotes, separators, line ends, keywords.
+NASTIES = STRUCTURAL + [
+    "1e400", "-1e400", "1e-400", "NaN", "Infinity", "-Infinity", "nan", "inf", '"\\ud83d\\ude00"',
+    "\u00b2", "+1", "-0", '"', '""', ",", ",,", "\r", "\r\n", "\n", "\t", " ", "=", "[[x]]", "{", "}",
+    "]", ":", "true", "null", "é", "item_id", "response", "response,response",
 ]
 _VALUE = re.compile(r'-?\d[\d.eE+-]*|"(?:[^"\\\n]|\\.)*"|\btrue\b|\bfalse\b')
 
 
-def _mutations(text: str):
+def _replace_cell(text: str, line: int, cell: int, new: str) -> str:
+    lines = text.split("\n")
+    cells = lines[line].split(",")
+    cells[cell % len(cells)] = new
+    lines[line] = ",".join(cells)
+    return "\n".join(lines)
+
+
+def _mutations(text: str, *, csv_cells: bool = False):
     n = len(text)
     spot = st.integers(min_value=0, max_value=max(n, 1) - 1)
-    nasty = st.sampled_from(NASTIES)
+    nasty = st.sampled_from(STRUCTURAL) | st.sampled_from(NASTIES)
     values = [m.span() for m in _VALUE.finditer(text)]
     lines = text.splitlines(keepends=True)
     options = [
@@ -74,18 +89,24 @@ def _mutations(text: str):
         st.tuples(spot, st.integers(1, 40)).map(lambda t: text[: t[0]] + text[t[0] + t[1]:]),  # delete
         spot.map(lambda i: text[:i]),                                                        # truncate
     ]
-    if values:  # a value replaced by a nasty one (the file stays well formed around it)
-        options.append(st.tuples(st.sampled_from(values), nasty).map(lambda t: text[: t[0][0]] + t[1] + text[t[0][1]:]))
     if len(lines) > 1:
         options.append(st.integers(0, len(lines) - 1).map(lambda i: "".join(lines[: i + 1] + lines[i:])))
-    return st.one_of(options)
+    if not values:
+        return st.one_of(options)
+    # half of the time a value replaced by a nasty one: the file stays well formed around it,
+    # so the nasty reaches the reader's checks instead of a syntax error
+    replaced = st.tuples(st.sampled_from(values), nasty).map(lambda t: text[: t[0][0]] + t[1] + text[t[0][1]:])
+    if csv_cells and len(lines) > 1:  # or one CSV cell (of any column) replaced
+        replaced = replaced | st.tuples(st.integers(1, len(lines) - 1), st.integers(0, 2), nasty).map(
+            lambda t: _replace_cell(text, *t))
+    return st.one_of(replaced, st.one_of(options))
 
 
 @st.composite
-def mutated(draw, texts):
+def mutated(draw, texts, *, csv_cells: bool = False):
     text = draw(st.sampled_from(texts))
     for _ in range(draw(st.integers(1, 3))):
-        text = draw(_mutations(text))
+        text = draw(_mutations(text, csv_cells=csv_cells))
     return text
 
 
@@ -126,11 +147,19 @@ def test_mutated_design_toml_loads_or_raises_the_project_error(text):
 
 
 @FUZZ
-@given(text=mutated(RESPONSES))
+@given(text=mutated(RESPONSES, csv_cells=True))
 def test_mutated_responses_csv_loads_or_raises_the_project_error(text):
     table = _read(text, "responses.csv", read_responses)
     if table is not None:
         assert isinstance(table, ResponseTable) and table.n_answers >= 1
-        assert table.response.min() >= 0
         for ids in (table.person_ids, table.item_ids):
             "".join(ids).encode("utf-8")
+        # oracle: the csv module, and a category is an ASCII decimal integer >= 0 in a column
+        # that appears once (int() would take '\u0661' and '1_0')
+        rows = list(csv.reader(io.StringIO(text.removeprefix("\ufeff"), newline="")))
+        header = [h.strip() for h in rows[0]]
+        assert all(header.count(c) == 1 for c in ("person_id", "item_id", "response"))
+        column = header.index("response")
+        cells = [row[column].strip() for row in rows[1:] if any(cell.strip() for cell in row)]
+        assert all(re.fullmatch(r"[+-]?[0-9]+", cell) for cell in cells), cells
+        assert table.response.tolist() == [int(cell) for cell in cells]
