@@ -8,6 +8,7 @@ Every error names the file line.
 
 from __future__ import annotations
 
+import codecs
 import csv
 import io
 import re
@@ -242,10 +243,11 @@ def _build(rows, lines, source) -> ResponseTable:
 
 def read_responses_text(text: str, *, source: str = "responses") -> ResponseTable:
     """Parse long-format response CSV text."""
-    if _is_plain(text):
-        # a plain text is ASCII: its bytes are its characters, and the byte reader is exact
-        return _read_bytes(text.encode("ascii"), 0, source)
-    return _read_general(text, source)
+    try:
+        data = text.encode("utf-8")
+    except UnicodeEncodeError:  # a lone surrogate, which no file holds: the csv module reads it
+        return _read_general(text, source)
+    return _read_bytes(data, 0, source)
 
 
 def _first_row(text: str, source: str) -> list[str] | None:
@@ -308,22 +310,27 @@ _BLOCK_BYTES = 1 << 24
 _LONGEST_PLAIN_CELL = 1000
 
 
-def _is_plain(text: str) -> bool:
-    """ASCII without quotes or NUL bytes, and every carriage return part of a CRLF line end:
-    lines and fields are where the newlines and commas are, exactly as the csv module would
-    find them."""
-    return (text.isascii() and '"' not in text and "\x00" not in text
-            and text.count("\r") == text.count("\r\n"))
-
-
 def _is_plain_bytes(buf: np.ndarray) -> bool:
-    """:func:`_is_plain` for the bytes of a file, uint8 array of shape (size,)."""
+    """Whether the file's bytes (uint8, shape (size,)) split into lines and fields exactly
+    where the newline and comma bytes are, as the csv module would split the text: valid
+    UTF-8 (whose multi-byte characters never contain an ASCII byte) without quotes or NUL
+    bytes, and every carriage return part of a CRLF line end."""
     if buf.size == 0:
         return True
-    if int(buf.max()) >= 128 or _find(buf, 34) >= 0 or _find(buf, 0) >= 0:
+    if _find(buf, 34) >= 0 or _find(buf, 0) >= 0:
         return False
     returns = _positions(buf, 13)
-    return bool(np.all(returns + 1 < buf.size) and np.all(buf[np.minimum(returns + 1, buf.size - 1)] == 10))
+    if not (np.all(returns + 1 < buf.size) and np.all(buf[np.minimum(returns + 1, buf.size - 1)] == 10)):
+        return False
+    if int(buf.max()) < 128:
+        return True
+    decoder = codecs.getincrementaldecoder("utf-8")()
+    try:  # validated block by block: no text copy of the whole file
+        for lo in range(0, buf.size, _BLOCK_BYTES):
+            decoder.decode(buf[lo:lo + _BLOCK_BYTES].tobytes(), final=lo + _BLOCK_BYTES >= buf.size)
+    except UnicodeDecodeError:
+        return False
+    return True
 
 
 def _read_bytes(data, offset: int, source: str, *, location: str = "") -> ResponseTable:
@@ -334,12 +341,12 @@ def _read_bytes(data, offset: int, source: str, *, location: str = "") -> Respon
     buf = np.frombuffer(data, dtype=np.uint8, offset=offset) if len(data) > offset else np.zeros(0, np.uint8)
     if _is_plain_bytes(buf):
         first_end = _find(buf, 10)
-        header_line = bytes(buf[: buf.size if first_end < 0 else first_end]).decode("ascii")
+        header_line = bytes(buf[: buf.size if first_end < 0 else first_end]).decode("utf-8")
         header, cols = _columns(_first_row(header_line, source), source)
         fast = _read_plain_body(buf, len(header), cols, source)
         if fast is not None:
             return fast
-        text = bytes(buf).decode("ascii")
+        text = bytes(buf).decode("utf-8")
     else:
         try:
             text = bytes(buf).decode("utf-8")
@@ -368,7 +375,7 @@ def _positions(buf, byte: int) -> np.ndarray:
 def _read_plain_body(buf, n_fields: int, cols, source: str) -> ResponseTable | None:
     """Vectorised reading of a plain file; None when the file needs the general path.
 
-    ``buf`` (uint8) must pass :func:`_is_plain`.  It is read here when, besides, every
+    ``buf`` (uint8) must pass :func:`_is_plain_bytes`.  It is read here when, besides, every
     non-empty line has ``n_fields`` fields, no id is empty or has surrounding blanks, every
     response is 1-18 ASCII digits and no person-item pair repeats.  Such a file reads the
     same under the csv module, so the result is identical; anything else (including every
@@ -438,8 +445,6 @@ def _id_codes(buf, start, end):
     length = end - start
     if length.min() < 1 or length.max() > _LONGEST_PLAIN_CELL:
         return None
-    if np.any(buf[start] <= 32) or np.any(buf[end - 1] <= 32):
-        return None  # blanks around an id: the general path strips them
     width = np.left_shift(1, np.ceil(np.log2(np.maximum(length, 8))).astype(np.int64))
     codes = np.empty(start.size, dtype=np.int64)
     firsts, names = [], []
@@ -449,8 +454,10 @@ def _id_codes(buf, start, end):
         first, inverse = _distinct(cells)
         codes[rows] = len(names) + inverse
         firsts.append(rows[first])
-        names.extend(v.decode("ascii") for v in cells[first])
+        names.extend(v.decode("utf-8") for v in cells[first])
         del cells
+    if any(name != name.strip() for name in names):
+        return None  # blanks around an id (any Unicode space): the general path strips them
     order = np.argsort(np.concatenate(firsts), kind="stable")
     rank = np.empty(order.size, dtype=np.int64)
     rank[order] = np.arange(order.size)
@@ -495,10 +502,11 @@ def _plain_digits(buf, start, end):
     return out
 
 
-#: Largest responses file read, in bytes (4 GiB).  A plain file (ASCII, no quotes) costs
-#: about three times its size at the peak, whatever its ids; any other file is read row by
-#: row with the csv module, at about 200 bytes of memory per answer.
-MAX_RESPONSES_FILE_BYTES = 4 * 2**30
+#: Largest responses file read, in bytes (1 GiB: some 50 million short rows).  A plain
+#: file (UTF-8 without quotes) peaks at about 2.5 times its size or 170 bytes per answer,
+#: whichever is more, whatever its ids; any other file (quoted fields) is read row by row
+#: with the csv module, at about 500 bytes per answer (benchmarks/bench_input_bounds.py).
+MAX_RESPONSES_FILE_BYTES = 2**30
 
 
 def read_responses(path: str | Path) -> ResponseTable:
