@@ -31,7 +31,7 @@ from .errors import BankError, Problem, check_input_file, decode_input_text, rea
 
 STATUSES = ("operational", "pretest")
 #: Largest bank file read (CSV, JSON or SQLite), in bytes: 64 MiB, about 650,000 items in
-#: JSON.  Loading costs about 35 bytes of memory per byte of a JSON file (the parsed items
+#: JSON.  Loading costs about 30 bytes of memory per byte of a JSON file (the parsed items
 #: as Python objects): a 100,000-item bank (9 MB) peaks near 330 MB.
 MAX_BANK_FILE_BYTES = 64 * 2**20
 DEFAULT_AREA = "general"
