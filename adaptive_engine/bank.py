@@ -319,6 +319,12 @@ def canonical_model(raw: Any) -> str | None:
     return models.MODEL_ALIASES.get(upper)
 
 
+#: A number as a text file writes it: ASCII digits, point, exponent (inf and nan are read,
+#: then refused as not finite).
+_DECIMAL_TEXT = re.compile(r"[+-]?(?:(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?|inf|infinity|nan)",
+                           re.IGNORECASE)
+
+
 def _number(raw: Any, name: str, default: float | None) -> tuple[float | None, str | None]:
     """Parse a numeric field; returns (value, problem)."""
     if raw is None or (isinstance(raw, str) and raw.strip() == ""):
@@ -326,6 +332,9 @@ def _number(raw: Any, name: str, default: float | None) -> tuple[float | None, s
             return None, f"{name} is missing"
         return default, None
     if isinstance(raw, bool):
+        return None, f"{name} is not a number ({raw!r})"
+    if isinstance(raw, str) and not _DECIMAL_TEXT.fullmatch(raw.strip()):
+        # float() would also take other scripts' digits ('\u0661') and underscores ('1_0')
         return None, f"{name} is not a number ({raw!r})"
     try:
         value = float(raw)

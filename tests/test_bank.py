@@ -415,3 +415,17 @@ def test_lone_surrogates_in_text_given_in_code_are_refused_by_item():
     assert [p.location for p in err.problems] == ["bank.csv line 2 (item Q\\ud800)", "bank.csv line 3 (item Q2)"]
     assert "item_id holds \\ud800" in messages(err) and "label holds \\udfff" in messages(err)
     str(err).encode("utf-8")
+
+
+@pytest.mark.parametrize("cell", ["1_0", "\u0661", "\uff11.5", "0x1", "1e", "--1", "\u00b2"])
+def test_csv_numbers_are_ascii_decimals(cell):
+    # float() took '1_0' as 10 and other scripts' digits ('\u0661') as digits
+    err = refused(csv_with(1, f"Q2,2PL,{cell},-0.5,,,,,,pumps,set1,e1,operational,Second\n"))
+    assert [p.location for p in err.problems] == ["bank.csv line 3 (item Q2)"]
+    assert f"a is not a number ({cell!r})" in messages(err)
+
+
+def test_csv_numbers_in_every_ascii_form_are_read():
+    bank = read_bank_csv_text(csv_with(1, "Q2,2PL, 1.5 ,-.5e0,,,,,,pumps,set1,e1,operational,Second\n"),
+                              source="bank.csv")
+    assert bank.a[1] == 1.5 and bank.b[1] == -0.5
