@@ -334,3 +334,99 @@ def test_indices_and_unknown_ids(bank):
     with pytest.raises(BankError) as info:
         bank.indices(["Q1", "nope"])
     assert info.value.location == "item nope"
+
+
+# ---------------------------------------------------------------------------------------
+# hostile JSON and files: the bank's own error, never a raw Python one
+
+
+GOOD_ITEM_JSON = '{"item_id": "Q1", "model": "2PL", "a": @A@, "b": 0.5, "label": @LABEL@}'
+
+
+def json_bank(a="1.0", label='"fine"', extra=""):
+    item = GOOD_ITEM_JSON.replace("@A@", a).replace("@LABEL@", label)
+    return '{"scaling": 1.0, ' + extra + '"items": [' + item + "]}"
+
+
+@pytest.mark.parametrize("text", ["[" * 2000 + "]" * 2000, '{"items": ' + "[" * 5000 + "]" * 5000 + "}",
+                                  json_bank(extra='"metadata": ' + '{"x": ' * 3000 + "1" + "}" * 3000 + ", ")])
+def test_deeply_nested_json_is_refused(text):
+    # json.loads raised RecursionError
+    err = refused(text, kind="json")
+    assert "nested too deeply" in messages(err)
+
+
+@pytest.mark.parametrize("digits", [401, 5001])
+def test_integers_of_hundreds_and_thousands_of_digits_are_refused(digits):
+    # 401 digits: float() raised OverflowError; 5,001: json.loads raised "Exceeds the limit
+    # (4300 digits) for integer string conversion"
+    err = refused(json_bank(a="7" * digits), kind="json")
+    assert [p.location for p in err.problems] == ["bank.json items[0] (item Q1)"]
+    assert "a is not a finite number" in messages(err)
+    err = refused(json_bank(extra='"metadata": {"n": ' + "-" + "9" * digits + "}, ", a="1.5x"), kind="json")
+    assert "invalid JSON" in messages(err)  # the syntax error, not the integer, is reported
+
+
+def test_a_lone_surrogate_escape_is_refused_where_it_is():
+    # "\ud800" decoded to a str that no UTF-8 file or terminal can hold: bank check passed,
+    # then session start and bank convert failed with UnicodeEncodeError
+    err = refused(json_bank(label='"pump \\ud800 seal"'), kind="json")
+    assert [p.location for p in err.problems] == ["bank.json items[0].label"]
+    assert "\\ud800" in messages(err) and "surrogate" in messages(err)
+    err = refused(json_bank(extra='"metadata": {"k\\udfff": [1, "\\ud83d"]}, '), kind="json")
+    assert sorted(p.location for p in err.problems) == ["bank.json metadata key 'k\\udfff'",
+                                                        "bank.json metadata.k\\udfff[1]"]
+    str(err).encode("utf-8")  # the message itself is printable
+
+
+def test_a_valid_surrogate_pair_is_a_character():
+    bank = read_bank_json_text(json_bank(label='"drop \\ud83d\\udca7"'), source="bank.json")
+    assert bank.label[0] == "drop \U0001f4a7"
+    assert read_bank_json_text(bank_to_json_text(bank), source="again.json").label[0] == bank.label[0]
+
+
+def test_special_and_oversized_bank_files_are_refused(tmp_path, monkeypatch):
+    import os
+
+    import adaptive_engine.bank.item_bank as bank_module
+
+    fifo = tmp_path / "pipe.json"
+    os.mkfifo(fifo)
+    db_fifo = tmp_path / "pipe.db"
+    os.mkfifo(db_fifo)
+    for path, fragment in [(fifo, "not a regular file"), (db_fifo, "not a regular file"),
+                           ("/dev/zero", "not a regular file"), (tmp_path / "x\x00.json", "NUL byte"),
+                           (tmp_path / "dir.csv", "folder")]:
+        if str(path).endswith("dir.csv"):
+            path.mkdir()
+        with pytest.raises(BankError, match=fragment) as info:
+            load_bank(path)
+        assert info.value.location
+    path = tmp_path / "bank.csv"
+    path.write_text(GOOD_CSV)
+    monkeypatch.setattr(bank_module, "MAX_BANK_FILE_BYTES", 100)
+    with pytest.raises(BankError, match="more than the 100 bytes") as info:
+        load_bank(path)
+    assert info.value.location == str(path)
+
+
+def test_lone_surrogates_in_text_given_in_code_are_refused_by_item():
+    # a str built in code (not read from a UTF-8 file) can hold one too
+    err = refused(HEADER + "Q\ud800,2PL,1,0,,,,,,pumps,,,operational,x\n" + GOOD_ROWS[1].replace("Second", "S\udfff"))
+    assert [p.location for p in err.problems] == ["bank.csv line 2 (item Q\\ud800)", "bank.csv line 3 (item Q2)"]
+    assert "item_id holds \\ud800" in messages(err) and "label holds \\udfff" in messages(err)
+    str(err).encode("utf-8")
+
+
+@pytest.mark.parametrize("cell", ["1_0", "\u0661", "\uff11.5", "0x1", "1e", "--1", "\u00b2"])
+def test_csv_numbers_are_ascii_decimals(cell):
+    # float() took '1_0' as 10 and other scripts' digits ('\u0661') as digits
+    err = refused(csv_with(1, f"Q2,2PL,{cell},-0.5,,,,,,pumps,set1,e1,operational,Second\n"))
+    assert [p.location for p in err.problems] == ["bank.csv line 3 (item Q2)"]
+    assert f"a is not a number ({cell!r})" in messages(err)
+
+
+def test_csv_numbers_in_every_ascii_form_are_read():
+    bank = read_bank_csv_text(csv_with(1, "Q2,2PL, 1.5 ,-.5e0,,,,,,pumps,set1,e1,operational,Second\n"),
+                              source="bank.csv")
+    assert bank.a[1] == 1.5 and bank.b[1] == -0.5

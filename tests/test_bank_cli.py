@@ -205,3 +205,86 @@ def test_curves_plot_without_matplotlib_is_a_clear_error(tmp_path, monkeypatch):
     assert result.exit_code == 2
     assert "--plot" in result.output and "matplotlib" in result.output and "plots" in result.output
     assert list(tmp_path.iterdir()) == []
+
+
+# ---------------------------------------------------------------------------------------
+# hostile files: exit 2 with LOCATION: problem, nothing written
+
+
+def test_check_and_convert_refuse_a_lone_surrogate_with_its_location(tmp_path):
+    doc = json.loads(OPERATOR.read_text())
+    text = json.dumps(doc).replace('"label": "Drought storage planning', '"label": "Drought \\ud800 planning', 1)
+    path = tmp_path / "surrogate.json"
+    path.write_text(text)
+    for args in (("bank", "check", path), ("bank", "convert", path, tmp_path / "out.csv")):
+        result = CliRunner().invoke(main, [str(a) for a in args])
+        assert result.exit_code == 2, result.output
+        assert "surrogate.json items[0].label: the text holds \\ud800" in result.output
+    assert not (tmp_path / "out.csv").exists()
+
+
+@pytest.mark.parametrize("text", ["[" * 2000 + "]" * 2000,
+                                  '{"items": [{"item_id": "Q1", "model": "2PL", "a": ' + "9" * 5001 + ', "b": 0}]}'])
+def test_check_refuses_deep_nesting_and_huge_integers(tmp_path, text):
+    path = tmp_path / "hostile.json"
+    path.write_text(text)
+    result = CliRunner().invoke(main, ["bank", "check", str(path)])
+    assert result.exit_code == 2, result.output  # a raw RecursionError / ValueError gave 1
+    assert "hostile.json" in result.output
+
+
+def test_check_refuses_a_pipe_instead_of_waiting_on_it(tmp_path):
+    # A FIFO path made bank check wait for a writer for ever; run in a child with a timeout
+    import os
+    import subprocess
+    import sys
+
+    fifo = tmp_path / "bank.json"
+    os.mkfifo(fifo)
+    env = dict(os.environ, PYTHONPATH=str(REPO))
+    done = subprocess.run([sys.executable, "-m", "adaptive_engine", "bank", "check", str(fifo)],
+                          capture_output=True, text=True, timeout=60, env=env)
+    assert done.returncode == 2
+    assert f"{fifo}: not a regular file" in done.stderr
+
+
+def test_summary_works_in_blocks_of_items(monkeypatch):
+    # bank check once held every item on the 1,201-point grid at once (60 KB per item:
+    # 100,000 items took gigabytes); information is now summed a block of items at a time
+    from adaptive_engine.bank import summary as bank_report
+    from adaptive_engine.irt.curves import test_information
+
+    bank = load_bank(OPERATOR)
+    calls = []
+    real = bank_report.item_information
+
+    def recording(source, theta, items):
+        out = real(source, theta, items)
+        calls.append(out.size * bank.max_categories)
+        return out
+
+    monkeypatch.setattr(bank_report, "INFORMATION_BLOCK_CELLS", 20_000)
+    monkeypatch.setattr(bank_report, "item_information", recording)
+    summary = bank_report.summarize_bank(bank)
+    assert len(calls) > 10 and max(calls) <= 20_000
+    grid = np.round(np.arange(-6.0, 6.0 + 0.005, 0.01), 10)
+    whole = test_information(bank, grid, np.flatnonzero(bank.status == "operational"))
+    expected = bank_report.precise_ranges(grid, whole, 1 / 0.3**2)
+    np.testing.assert_allclose(summary.precise_ranges, expected, rtol=1e-12)
+    curves = bank_report.information_curves(bank, grid[::50], by_area=True, include_pretest=True)
+    np.testing.assert_allclose(curves.information, test_information(bank, grid[::50]), rtol=1e-12)
+    by_area = test_information(bank, grid[::50], by_area=True)
+    for area in bank.areas:
+        np.testing.assert_allclose(curves.by_area[area], by_area[area], rtol=1e-12)
+
+
+def test_curves_by_area_are_bounded_by_their_size(tmp_path):
+    # one curve per area and point: a bank with an area per item would ask for items x points
+    path = tmp_path / "areas.csv"
+    path.write_text("item_id,model,a,b,area\n" + "".join(f"Q{k},2PL,1,0,area{k}\n" for k in range(25)))
+    result = CliRunner().invoke(main, ["bank", "curves", str(path), "--by-area", "--from", "-5", "--to", "5",
+                                       "--step", "0.0001"])
+    assert result.exit_code == 2
+    assert "--by-area: 25 content areas x 100,001 ability points is more than 2,000,000 values" in result.output
+    result = CliRunner().invoke(main, ["bank", "curves", str(path), "--by-area", "--format", "json"])
+    assert result.exit_code == 0 and len(json.loads(result.output)["by_area"]) == 25

@@ -45,7 +45,7 @@ from adaptive_engine.design.bank_fit import (
     require_design_fits_bank,
     usable_item_count,
 )
-from adaptive_engine.design.exposure_parameters import parse_exposure_parameters
+from adaptive_engine.design.exposure_parameters import parse_exposure_file, parse_exposure_parameters
 from adaptive_engine.design.toml_file import (
     design_as_dict,
     design_from_dict,
@@ -267,6 +267,68 @@ def test_exposure_parameter_header_and_missing_file(tmp_path):
     with pytest.raises(DesignError) as info:
         parse_design('[exposure]\nmethod = "sympson_hetter"\nparameters = "nope.csv"\n', base_dir=tmp_path)
     assert info.value.location == "[exposure] parameters"
+
+
+def test_design_file_with_a_byte_order_mark_is_read(tmp_path):
+    # bank files accepted a UTF-8 byte order mark while designs were refused with a syntax error
+    path = tmp_path / "bom.toml"
+    path.write_bytes(b"\xef\xbb\xbf" + (SIMULATIONS / "licensing_exam.toml").read_bytes())
+    assert read_design(path).stopping == read_design(SIMULATIONS / "licensing_exam.toml").stopping
+    assert parse_design("\ufeff[stopping]\nmax_items = 12\n").stopping.max_items == 12
+
+
+@pytest.mark.parametrize("text, location, fragment", [
+    # tomllib raised RecursionError / ValueError ("Exceeds the limit (4300 digits)")
+    ("[scoring]\nx = " + "[" * 3000 + "]" * 3000 + "\n", "d.toml", "nested too deeply"),
+    ("[stopping]\nmax_items = " + "9" * 5001 + "\n", "d.toml", "thousands of digits"),
+    ("[stopping]\nmax_items = " + "9" * 30 + "\n", "[stopping] max_items", "30 digits is too large"),
+    ("[blueprint]\npretest_positions = [3, -" + "9" * 400 + "]\n", "[blueprint] pretest_positions",
+     "400 digits"),
+], ids=["deep-array", "5001-digits", "30-digits", "400-digits-in-array"])
+def test_hostile_toml_values_are_refused_with_a_location(text, location, fragment):
+    found = problems_of(text, source="d.toml")
+    assert location in found and fragment in found[location], found
+
+
+def test_special_and_oversized_design_files_are_refused(tmp_path, monkeypatch):
+    import os
+
+    import adaptive_engine.design.toml_file as design_file
+
+    fifo = tmp_path / "pipe.toml"
+    os.mkfifo(fifo)
+    for path, fragment in [(fifo, "not a regular file"), ("/dev/zero", "not a regular file"),
+                           (tmp_path, "folder"), (str(tmp_path / "d\x00.toml"), "NUL byte")]:
+        with pytest.raises(DesignError, match=fragment) as info:
+            read_design(path)
+        assert info.value.location
+    path = tmp_path / "big.toml"
+    path.write_text("# " + "x" * 300 + "\n[stopping]\nmax_items = 5\n")
+    monkeypatch.setattr(design_file, "MAX_DESIGN_FILE_BYTES", 200)
+    with pytest.raises(DesignError, match="more than the 200 bytes"):
+        read_design(path)
+
+
+@pytest.mark.parametrize("target, fragment", [("/dev/zero", "not a regular file"), ("pipe", "not a regular file"),
+                                              ("a\x00b.csv", "NUL byte"), (".", "folder")])
+def test_exposure_parameters_must_name_a_regular_file(tmp_path, target, fragment):
+    # parameters = "/dev/zero" grew design check to 21 GB, and a FIFO path hung
+    import os
+
+    os.mkfifo(tmp_path / "pipe")
+    text = '[exposure]\nmethod = "sympson_hetter"\nparameters = "' + target.replace("\x00", "\\u0000") + '"\n'
+    with pytest.raises(DesignError, match=fragment) as info:
+        parse_design(text, base_dir=tmp_path)
+    assert info.value.location == "[exposure] parameters"
+
+
+def test_conditional_exposure_strata_are_bounded():
+    cuts = list(range(-15, 15))
+    lines = ["item_id,theta_from,theta_to,exposure_parameter"]
+    for lo, hi in zip(["-inf"] + cuts, cuts + ["inf"]):
+        lines.append(f"A,{lo},{hi},0.5")
+    with pytest.raises(DesignError, match="31 ability strata; at most 20"):
+        parse_exposure_file("\n".join(lines) + "\n", source="sh.csv")
 
 
 # ----------------------------------------------------------------------------------------

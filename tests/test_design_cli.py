@@ -117,3 +117,16 @@ def test_every_design_command_has_help(command):
         group = group.commands[name] if hasattr(group, "commands") else group
     assert group.help and group.help.strip()
     assert "Usage:" in result.output
+
+
+@pytest.mark.parametrize("target, fragment", [("/dev/zero", "not a regular file"),
+                                              ("a\\u0000b.csv", "NUL byte")])
+def test_check_refuses_exposure_parameters_that_are_no_file(tmp_path, target, fragment):
+    # parameters = "/dev/zero" grew design check to 21 GB; a NUL byte raised a raw ValueError
+    text = (SIMULATIONS / "sympson_hetter.toml").read_text()
+    design = tmp_path / "hostile.toml"
+    design.write_text("\n".join(f'parameters = "{target}"' if line.startswith("parameters") else line
+                                for line in text.splitlines()) + "\n")
+    result = run("design", "check", str(design), "--bank", str(OPERATOR_BANK))
+    assert result.exit_code == 2, result.output
+    assert "[exposure] parameters: " in result.output and fragment in result.output

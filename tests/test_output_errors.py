@@ -92,10 +92,16 @@ def test_demo_generator_function_refuses_before_writing(tmp_path):
 
 
 @pytest.mark.parametrize("option, value, fragment", [
-    ("--prior-sd", "0", "--prior-sd: must be a positive number, got 0.0"),
-    ("--prior-sd", "-1", "--prior-sd: must be a positive number"),
-    ("--prior-sd", "nan", "--prior-sd: must be a positive number"),
-    ("--prior-mean", "inf", "--prior-mean: must be a finite number"),
+    ("--prior-sd", "0", "--prior-sd: the prior SD must lie in [0.05, 4], got 0"),
+    ("--prior-sd", "-1", "--prior-sd: the prior SD must lie in [0.05, 4], got -1"),
+    ("--prior-sd", "nan", "--prior-sd: the prior SD must be a finite number"),
+    ("--prior-mean", "inf", "--prior-mean: the prior mean must be a finite number"),
+    # absurd but finite priors once sized the quadrature grid (a mean of 1e300 failed with
+    # "Maximum allowed size exceeded", a mean of 1,000 took 3 GB for one answer)
+    ("--prior-mean", "1e300", "--prior-mean: the prior mean must lie in [-6, 6], got 1e+300"),
+    ("--prior-mean", "1000", "--prior-mean: the prior mean must lie in [-6, 6], got 1000"),
+    ("--prior-sd", "1e-300", "--prior-sd: the prior SD must lie in [0.05, 4], got 1e-300"),
+    ("--prior-sd", "50", "--prior-sd: the prior SD must lie in [0.05, 4], got 50"),
 ])
 def test_score_prior_errors_name_the_option(bank_file, tmp_path, option, value, fragment):
     answers = tmp_path / "answers.csv"

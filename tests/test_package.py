@@ -20,7 +20,7 @@ def test_the_public_api_is_exported_at_the_top():
     from adaptive_engine.calibration import calibrate_responses
     from adaptive_engine.design import read_design
     from adaptive_engine.live import open_store, start_session, submit_answer
-    from adaptive_engine.simulation import simulate
+    from adaptive_engine.simulation.engine import simulate
 
     expected = dict(load_bank=load_bank, read_responses=read_responses, read_design=read_design,
                     open_store=open_store, start_session=start_session, submit_answer=submit_answer,

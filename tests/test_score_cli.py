@@ -127,3 +127,35 @@ def test_help():
     assert result.exit_code == 0
     assert "--method" in result.output and "person_id" in result.output
     assert "score" in run("--help").output
+
+
+@pytest.mark.parametrize("method", ["eap", "mle", "map", "wle"])
+def test_scoring_in_blocks_on_the_answered_items_equals_one_padded_batch(monkeypatch, method):
+    # score once padded every person to the longest test (one person with 100,000 answers
+    # cost 100,000 slots for everyone) and tabulated the whole bank on the grid; it now
+    # scores persons in blocks of similar length on the answered items only.  Rows are
+    # computed on their own, so the result must equal one batch, bit for bit.
+    from pathlib import Path
+
+    import numpy as np
+
+    from adaptive_engine.bank import load_bank
+    from adaptive_engine.bank.responses import ResponseTable, read_responses
+    from adaptive_engine.irt import estimation
+
+    repo = Path(__file__).resolve().parents[1]
+    bank = load_bank(repo / "item_banks" / "meridian_valley_operator.json")
+    full = read_responses(repo / "item_banks" / "meridian_valley_responses.csv")
+    keep = np.random.default_rng(5).random(full.n_answers) < np.linspace(0.05, 1.0, full.n_answers)
+    table = ResponseTable.from_arrays(full.person_ids[full.person[keep]], full.item_ids[full.item[keep]],
+                                      full.response[keep])  # tests of 0..30 items, some items unused
+    assert len(set(np.bincount(table.person))) > 10
+    monkeypatch.setattr(estimation, "SCORE_BLOCK_CELLS", 97)
+    records = estimation.score_responses(bank, table, method, prior_mean=0.25, prior_sd=1.5)
+    items, responses = table.to_padded(bank)
+    whole = estimation.estimate(bank, items, responses, method, prior_mean=0.25, prior_sd=1.5)
+    assert [r["person_id"] for r in records] == table.person_ids.tolist()
+    assert np.array_equal([r["theta"] for r in records], whole.theta)
+    assert np.array_equal([r["se"] for r in records], whole.se)
+    assert [r["status"] for r in records] == whole.status.tolist()
+    assert [r["n_items"] for r in records] == whole.n_items.tolist()

@@ -367,6 +367,52 @@ def test_simulate_cli_errors_exit_2_and_write_nothing(tmp_path):
     assert not out.exists() or not any(out.iterdir())
 
 
+def test_sizes_given_by_the_user_are_bounded_before_anything_is_allocated(tmp_path):
+    # --examinees 100000000000 ended in a raw MemoryError
+    design, bank = _shipped()
+    out = tmp_path / "study"
+    runner = CliRunner()
+    for args, where in [(["--examinees", "100000000000"], "--examinees: at most 1,000,000 examinees"),
+                        (["--theta", "grid:-3,3,1e12:1"], "--theta: the grid 'grid:-3,3,1e12:1' asks for 1e+12"),
+                        (["--theta", "grid:-3,3,2000:1000"], "(POINTS x PER_POINT); at most 1,000,000")]:
+        r = runner.invoke(main, ["simulate", design, "--bank", bank, "--out", str(out), *args])
+        assert r.exit_code == 2 and where in r.output, r.output
+        assert not out.exists()
+    spec = examinees.parse_ability_spec("normal:0,1")
+    with pytest.raises(examinees.AbilitySpecError, match="at most 1,000,000"):
+        examinees.examinee_count(spec, examinees.MAX_EXAMINEES + 1, default=10)
+    with pytest.raises(examinees.AbilitySpecError, match="at most 1,000,000"):
+        spec.draw(10**11, seed=1)
+    assert examinees.examinee_count(spec, examinees.MAX_EXAMINEES, default=10) == examinees.MAX_EXAMINEES
+
+
+def test_worker_counts_and_strata_are_bounded(tmp_path):
+    design, bank = _shipped()
+    runner = CliRunner()
+    r = runner.invoke(main, ["simulate", design, "--bank", bank, "--out", str(tmp_path / "s"), "--workers", "100000"])
+    assert r.exit_code == 2 and "--workers: at most 64 worker processes" in r.output
+    r = runner.invoke(main, ["tune", design, "--bank", bank, "--vary", "stopping.se=0.3,0.5", "--out",
+                             str(tmp_path / "t"), "--workers", "65"])
+    assert r.exit_code == 2 and "--workers:" in r.output
+    cuts = ",".join(str(c) for c in range(-10, 20))
+    r = runner.invoke(main, ["exposure", "calibrate", design, "--bank", bank, "--target", "0.3", "--out",
+                             str(tmp_path / "p.csv"), f"--conditional-strata={cuts}"])
+    assert r.exit_code == 2 and "--conditional-strata: 30 cut points make 31 ability strata; at most 20" in r.output
+    assert not (tmp_path / "p.csv").exists()
+
+
+def test_ability_files_must_be_regular_files(tmp_path):
+    import os
+
+    os.mkfifo(tmp_path / "pipe.csv")
+    for target, fragment in [(tmp_path / "pipe.csv", "not a regular file"), ("/dev/zero", "not a regular file")]:
+        with pytest.raises(examinees.AbilitySpecError, match=fragment):
+            examinees.parse_ability_spec(f"file:{target}")
+    with_bom = tmp_path / "bom.csv"
+    with_bom.write_bytes(b"\xef\xbb\xbftheta\n0.5\n-1\n")
+    assert examinees.parse_ability_spec(f"file:{with_bom}").thetas == (0.5, -1.0)
+
+
 def test_tune_cli(tmp_path):
     design, bank = _shipped()
     out = tmp_path / "tune"

@@ -27,9 +27,9 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import BankError, Problem
-from ..files import atomic_write, write_text
+from ..files import atomic_write, check_input_file, write_text
 from ..irt import models
-from .item_bank import ItemBank, bank_from_records
+from .item_bank import MAX_BANK_FILE_BYTES, ItemBank, bank_from_records
 
 #: Columns before and after the threshold columns b1..bK, in file order.
 LEADING_COLUMNS = ("item_id", "model", "a", "b", "c", "d")
@@ -240,8 +240,7 @@ def read_bank_sqlite(path: str | Path) -> ItemBank:
     """
     path = Path(path)
     source = path.name
-    if not path.is_file():
-        raise BankError(f"no such file: {path}", location=str(path))
+    check_input_file(path, max_bytes=MAX_BANK_FILE_BYTES, error=BankError)
     try:
         # read-only URI: opening must never create or change the file
         conn = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True)

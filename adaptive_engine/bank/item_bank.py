@@ -27,9 +27,14 @@ import attrs
 import numpy as np
 
 from ..errors import BankError, Problem
+from ..files import check_input_file, decode_input_text, read_input_bytes
 from ..irt import models
 
 STATUSES = ("operational", "pretest")
+#: Largest bank file read (CSV, JSON or SQLite), in bytes: 64 MiB, about 650,000 items in
+#: JSON.  Loading costs about 30 bytes of memory per byte of a JSON file (the parsed items
+#: as Python objects): a 100,000-item bank (9 MB) peaks near 330 MB.
+MAX_BANK_FILE_BYTES = 64 * 2**20
 DEFAULT_AREA = "general"
 _THRESHOLD_COLUMN = re.compile(r"^b(\d+)$")
 _KNOWN_COLUMNS = {
@@ -158,10 +163,12 @@ class ItemBank:
     @property
     def area_index(self) -> np.ndarray:
         """Integer code of each item's area (index into :attr:`areas`)."""
-        return self.cached(
-            "area_index",
-            lambda: np.array([self.areas.index(x) for x in self.area], dtype=np.int64),
-        )
+        def make():
+            # a dict, not tuple.index: a bank with thousands of areas stays linear
+            code = {area: k for k, area in enumerate(self.areas)}
+            return np.array([code[x] for x in self.area], dtype=np.int64)
+
+        return self.cached("area_index", make)
 
     def log_probability_table(self, grid) -> np.ndarray:
         """Log category probabilities on an ability grid, shape (n, G, C); cached per grid."""
@@ -316,6 +323,12 @@ def canonical_model(raw: Any) -> str | None:
     return models.MODEL_ALIASES.get(upper)
 
 
+#: A number as a text file writes it: ASCII digits, point, exponent (inf and nan are read,
+#: then refused as not finite).
+_DECIMAL_TEXT = re.compile(r"[+-]?(?:(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?|inf|infinity|nan)",
+                           re.IGNORECASE)
+
+
 def _number(raw: Any, name: str, default: float | None) -> tuple[float | None, str | None]:
     """Parse a numeric field; returns (value, problem)."""
     if raw is None or (isinstance(raw, str) and raw.strip() == ""):
@@ -323,6 +336,9 @@ def _number(raw: Any, name: str, default: float | None) -> tuple[float | None, s
             return None, f"{name} is missing"
         return default, None
     if isinstance(raw, bool):
+        return None, f"{name} is not a number ({raw!r})"
+    if isinstance(raw, str) and not _DECIMAL_TEXT.fullmatch(raw.strip()):
+        # float() would also take other scripts' digits ('\u0661') and underscores ('1_0')
         return None, f"{name} is not a number ({raw!r})"
     try:
         value = float(raw)
@@ -359,7 +375,11 @@ def bank_from_records(
         iid = "" if raw_id is None else str(raw_id).strip()
         loc = locations[pos] if locations else f"item {iid or '#' + str(pos + 1)}"
         where = f"{loc} (item {iid})" if locations and iid else loc
-        mine: list[str] = []
+        mine: list[str] = _surrogate_problems(rec)
+        if mine:
+            # the id itself may be what cannot be printed
+            problems.extend(Problem(_shown(f"{loc} (item {iid})" if locations and iid else loc), m) for m in mine)
+            continue
         if not iid:
             mine.append("item_id is empty")
         elif iid in seen:
@@ -501,9 +521,15 @@ def read_bank_csv_text(text: str, *, source: str = "bank", scaling: float = 1.0)
 def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
     """Load a bank from JSON text: an object with ``items`` (and optional ``scaling``, ``name``)."""
     try:
-        doc = json.loads(text)
+        doc = json.loads(text, parse_int=_json_integer)
     except json.JSONDecodeError as exc:
         raise BankError([Problem(f"{source} line {exc.lineno}", f"invalid JSON: {exc.msg}")]) from None
+    except RecursionError:
+        raise BankError([Problem(source, "invalid JSON: arrays and objects are nested too deeply "
+                                         "to read")]) from None
+    problems = _json_text_problems(doc, source)
+    if problems:
+        raise BankError(problems)
     if isinstance(doc, list):
         doc = {"items": doc}
     if not isinstance(doc, dict) or not isinstance(doc.get("items"), list):
@@ -544,6 +570,72 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
     if problems:
         raise BankError(problems)
     return bank_from_records(records, locations, scaling=scaling, name=str(doc.get("name") or Path(source).stem))
+
+
+def _surrogate_problems(rec: Mapping[str, Any]) -> list[str]:
+    """Text fields of one record holding a lone surrogate (from CSV text or SQLite made in
+    code; the JSON reader names the JSON path before this)."""
+    out = []
+    for key, value in rec.items():
+        texts = value if isinstance(value, (list, tuple)) else [value]
+        for text in texts:
+            if isinstance(text, str) and not text.isascii():
+                try:
+                    text.encode("utf-8")
+                except UnicodeEncodeError as exc:
+                    out.append(f"{_shown(str(key))} holds {_shown(text[exc.start:exc.end])}, a lone "
+                               "surrogate, which is not a Unicode character")
+                    break
+    return out
+
+
+def _json_integer(digits: str):
+    """A JSON integer: an int when it fits 64 bits, else the nearest float (inf beyond 1e308).
+
+    Python would make an int of any length (and refuse more than 4,300 digits with a
+    ValueError); no bank value is a huge integer, and a float keeps the checks of numbers
+    ("not a finite number") in charge of the message.
+    """
+    return int(digits) if len(digits) <= 18 else float(digits)
+
+
+def _shown(text: str) -> str:
+    """``text`` printable whatever it holds (a lone surrogate shows as ``\\ud800``)."""
+    return text.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
+def _json_text_problems(doc, source: str, limit: int = 50) -> list[Problem]:
+    """Texts (keys and strings, at any depth) that are not valid Unicode.
+
+    A JSON escape such as ``"\\ud800"`` decodes to a lone surrogate, which no UTF-8 file,
+    terminal or database can hold: refused here, where the JSON path can be named, rather
+    than when the bank is first written or printed.
+    """
+    out: list[Problem] = []
+    stack = [(doc, "")]
+    while stack and len(out) < limit:
+        value, path = stack.pop()
+        if isinstance(value, str):
+            texts = [(value, path)]
+        elif isinstance(value, dict):
+            texts = [(key, f"{path} key '{_shown(key)}'".strip()) for key in value if isinstance(key, str)]
+            stack.extend((v, f"{path}.{_shown(k)}" if path else _shown(k)) for k, v in reversed(value.items()))
+        elif isinstance(value, list):
+            texts = []
+            stack.extend((v, f"{path}[{j}]") for j, v in reversed(list(enumerate(value))))
+        else:
+            continue
+        for text, where in texts:
+            if not text.isascii():
+                try:
+                    text.encode("utf-8")
+                except UnicodeEncodeError as exc:
+                    bad = _shown(text[exc.start:exc.end])
+                    out.append(Problem(f"{source} {where}".strip(),
+                                       f"the text holds {bad}, a lone surrogate escape, which is not a "
+                                       "Unicode character (write the character itself, or a valid "
+                                       "surrogate pair)"))
+    return out
 
 
 _JSON_TEXT_FIELDS = ("item_id", "model", "area", "item_set", "status", "label")
@@ -618,26 +710,26 @@ def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
     a silent override.
     """
     path = Path(path)
-    if not path.exists():
-        raise BankError(f"no such file: {path}", location=str(path))
-    if scaling is not None:
-        scaling = _check_scaling_value(scaling)
     suffix = path.suffix.lower()
     if suffix in (".db", ".sqlite", ".sqlite3"):
         from .files import read_bank_sqlite
 
+        if scaling is not None:
+            scaling = _check_scaling_value(scaling)
         return _agree_on_scaling(read_bank_sqlite(path), scaling, path)
-    try:
-        # newline="" leaves a carriage return inside a quoted CSV field as it is
-        with open(path, encoding="utf-8-sig", newline="") as fh:
-            text = fh.read()
-    except UnicodeDecodeError as exc:
-        raise BankError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", location=str(path)) from None
+    if suffix not in (".json", ".csv"):
+        check_input_file(path, max_bytes=MAX_BANK_FILE_BYTES, error=BankError)
+        raise BankError(f"unknown bank file type {suffix!r} (use .csv, .json or .db)", location=str(path))
+    # byte for byte, without newline translation: a carriage return inside a quoted CSV
+    # field stays as it is
+    data = read_input_bytes(path, max_bytes=MAX_BANK_FILE_BYTES, error=BankError)
+    if scaling is not None:
+        scaling = _check_scaling_value(scaling)
+    text = decode_input_text(data, error=BankError, location=str(path))
+    del data
     if suffix == ".json":
         return _agree_on_scaling(read_bank_json_text(text, source=path.name), scaling, path)
-    if suffix == ".csv":
-        return read_bank_csv_text(text, source=path.name, scaling=1.0 if scaling is None else scaling)
-    raise BankError(f"unknown bank file type {suffix!r} (use .csv, .json or .db)", location=str(path))
+    return read_bank_csv_text(text, source=path.name, scaling=1.0 if scaling is None else scaling)
 
 
 def _check_scaling_value(scaling) -> float:

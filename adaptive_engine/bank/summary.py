@@ -15,7 +15,7 @@ import attrs
 import numpy as np
 
 from ..errors import AdaptiveEngineError
-from ..irt.curves import test_information
+from ..irt.curves import item_information
 from .item_bank import ItemBank
 
 #: Standard error below which an ability is taken as precisely measured (common practice).
@@ -24,6 +24,11 @@ DEFAULT_TARGET_SE = 0.3
 SCAN_RANGE = (-6.0, 6.0)
 SCAN_STEP = 0.01
 MAX_CURVE_POINTS = 100_001
+#: Most values (content areas x ability points) of curves by area.
+MAX_AREA_CURVE_VALUES = 2_000_000
+#: Items x ability points x categories evaluated at once when information is summed: the
+#: model functions hold a few arrays of this many floats (8 MB each), whatever the bank's size.
+INFORMATION_BLOCK_CELLS = 1_000_000
 #: Values of :attr:`InformationCurves.items_counted`.
 OPERATIONAL_ITEMS = "operational"
 OPERATIONAL_AND_PRETEST = "operational and pretest"
@@ -130,7 +135,7 @@ def summarize_bank(bank: ItemBank, *, target_se: float = DEFAULT_TARGET_SE) -> B
     set_sizes = Counter(s for s in bank.item_set if s)
     grid = np.round(np.arange(SCAN_RANGE[0], SCAN_RANGE[1] + SCAN_STEP / 2, SCAN_STEP), 10)
     operational = np.flatnonzero(bank.status == "operational")
-    info = test_information(bank, grid, operational) if operational.size else np.zeros_like(grid)
+    info = summed_information(bank, grid, operational)
     return BankSummary(
         name=str(bank.name), n_items=len(bank), n_pretest=int(np.sum(bank.status == "pretest")),
         scaling=float(bank.scaling),
@@ -205,6 +210,36 @@ class InformationCurves:
         return out
 
 
+def summed_information(bank: ItemBank, theta, items, *, by_area: bool = False):
+    """Test information of the bank rows ``items`` at ``theta`` (G,), summed block by block.
+
+    Items are taken in blocks of about :data:`INFORMATION_BLOCK_CELLS` / (G x categories),
+    so the memory needed does not grow with the number of items (a table of every item at
+    every point would: 1,201 points cost about 60 KB per 5-category item).  The sums are
+    those of :func:`~adaptive_engine.curves.test_information` up to rounding (the order of
+    the terms differs).
+
+    Returns
+    -------
+    array, shape (G,), or dict of area -> array (G,) (every area of the bank) when ``by_area``
+    """
+    theta = np.asarray(theta, dtype=float)
+    items = np.asarray(items, dtype=np.int64).reshape(-1)
+    # blocks of one model family: a block of 1PL-4PL items takes the models' fast path
+    items = items[np.argsort(bank.family[items], kind="stable")]
+    per_block = max(1, INFORMATION_BLOCK_CELLS // max(1, theta.size * bank.max_categories))
+    total = np.zeros((len(bank.areas) if by_area else 1, theta.size))
+    codes = bank.area_index[items] if by_area else np.zeros(items.size, dtype=np.int64)
+    for lo in range(0, items.size, per_block):
+        info = item_information(bank, theta, items[lo:lo + per_block])
+        block_codes = codes[lo:lo + per_block]
+        for code in np.unique(block_codes):
+            total[code] += info[block_codes == code].sum(axis=0)
+    if by_area:
+        return dict(zip(bank.areas, total))
+    return total[0]
+
+
 def curve_grid(start: float, stop: float, step: float) -> np.ndarray:
     """Ability points ``start, start + step, ...`` up to ``stop`` (inclusive), shape (G,)."""
     for name, value in (("from", start), ("to", stop), ("step", step)):
@@ -232,16 +267,16 @@ def information_curves(bank: ItemBank, theta, *, by_area: bool = False,
     the same items).
     """
     theta = np.asarray(theta, dtype=float)
+    if by_area and len(bank.areas) * theta.size > MAX_AREA_CURVE_VALUES:
+        raise AdaptiveEngineError(
+            f"{len(bank.areas):,} content areas x {theta.size:,} ability points is more than "
+            f"{MAX_AREA_CURVE_VALUES:,} values; use fewer points (a larger --step)", location="--by-area")
     if include_pretest:
         items, counted = np.arange(len(bank)), OPERATIONAL_AND_PRETEST
     else:
         items, counted = np.flatnonzero(bank.status == "operational"), OPERATIONAL_ITEMS
-    if items.size:
-        total = test_information(bank, theta, items)
-        areas = test_information(bank, theta, items, by_area=True) if by_area else {}
-    else:  # a bank of pretest items only: nothing is counted
-        total = np.zeros_like(theta)
-        areas = {area: np.zeros_like(theta) for area in bank.areas} if by_area else {}
+    total = summed_information(bank, theta, items)
+    areas = summed_information(bank, theta, items, by_area=True) if by_area else {}
     return InformationCurves(theta=theta, information=total, by_area=areas,
                              items_counted=counted, n_items=int(items.size))
 

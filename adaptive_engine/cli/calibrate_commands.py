@@ -28,6 +28,11 @@ def _not_converged(iterations, last_change, tolerance) -> None:
     sys.exit(EXIT_NOT_CONVERGED)
 
 
+#: Most points of the population grid: EM holds persons x points posteriors (21 to 61 points
+#: are common practice).
+MAX_QUADRATURE_POINTS = 401
+
+
 def _settings(**kw):
     from ..calibration import CalibrationSettings, prior_choice_from_texts
 
@@ -54,7 +59,7 @@ def _settings(**kw):
               help="Scaling constant D of the output bank (default: the template's D, else 1.0).  A CSV template "
                    "takes it; a JSON/SQLite template keeps the D it declares, and a different value is an error.")
 @click.option("--quadrature-points", type=int, default=61, show_default=True,
-              help="Ability points of the N(0, 1) population grid.")
+              help=f"Ability points of the N(0, 1) population grid (5 to {MAX_QUADRATURE_POINTS}).")
 @click.option("--max-iterations", type=int, default=500, show_default=True,
               help="Most EM cycles, a hard cap (extrapolation cycles count); not converged by then: exit code 3.")
 @click.option("--tolerance", type=float, default=1e-4, show_default=True,
@@ -69,6 +74,11 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
     standard error of each parameter.  Exit codes: 0 converged; 2 bad input (nothing written);
     3 not converged within --max-iterations (the bank is written, a warning goes to stderr).
     """
+    if quadrature_points > MAX_QUADRATURE_POINTS:
+        from ..errors import CalibrationError
+
+        raise CalibrationError(f"at most {MAX_QUADRATURE_POINTS} points, got {quadrature_points:,}",
+                               location="--quadrature-points")
     settings = _settings(prior=prior, no_priors=no_priors, common_slope=common_slope,
                          quadrature_points=quadrature_points, max_iterations=max_iterations,
                          tolerance=tolerance, min_answers=min_answers)

@@ -4,14 +4,12 @@ from __future__ import annotations
 
 import csv
 import io
-import math
 
 import click
 
 from ..bank.item_bank import load_bank
 from ..bank.responses import read_responses
-from ..errors import AdaptiveEngineError
-from ..irt.estimation import METHODS, score_responses
+from ..irt.estimation import METHODS, SCORE_BOUNDS, SCORE_PRIOR_SD_RANGE, check_score_prior, score_responses
 from ._common import SCALING_HELP, echo_json, main, report_errors
 
 #: The CSV columns of ``score``; ``--with-status`` appends ``status``.
@@ -30,10 +28,7 @@ def _csv_text(records, *, with_status: bool = False) -> str:
 
 def _check_prior(mean: float, sd: float) -> None:
     # the library names its keyword (prior_sd); the user typed the option
-    if not math.isfinite(mean):
-        raise AdaptiveEngineError(f"must be a finite number, got {mean}", location="--prior-mean")
-    if not (math.isfinite(sd) and sd > 0):
-        raise AdaptiveEngineError(f"must be a positive number, got {sd}", location="--prior-sd")
+    check_score_prior(mean, sd, mean_location="--prior-mean", sd_location="--prior-sd")
 
 
 @main.command("score")
@@ -43,9 +38,11 @@ def _check_prior(mean: float, sd: float) -> None:
               help="mle: maximum likelihood; map: posterior mode; eap: posterior mean; "
                    "wle: Warm's weighted likelihood.")
 @click.option("--prior-mean", type=float, default=0.0, show_default=True,
-              help="Mean of the normal ability prior (map, eap; start values otherwise).")
+              help=f"Mean of the normal ability prior (map, eap; start values otherwise), "
+                   f"within [{SCORE_BOUNDS[0]:g}, {SCORE_BOUNDS[1]:g}].")
 @click.option("--prior-sd", type=float, default=1.0, show_default=True,
-              help="Standard deviation of the normal ability prior.")
+              help=f"Standard deviation of the normal ability prior, within "
+                   f"[{SCORE_PRIOR_SD_RANGE[0]:g}, {SCORE_PRIOR_SD_RANGE[1]:g}].")
 @click.option("--scaling", type=float, default=None, help=SCALING_HELP)
 @click.option("--format", "output_format", type=click.Choice(["csv", "json"]), default="csv",
               show_default=True, help="Output format on stdout.")

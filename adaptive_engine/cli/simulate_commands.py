@@ -67,6 +67,17 @@ _progress_option = click.option(
          "[default: only when stderr is a terminal].")
 
 
+#: Most worker processes (each holds the bank and a chunk of examinees).
+MAX_WORKERS = 64
+
+
+def _check_workers(workers: int) -> None:
+    from ..errors import AdaptiveEngineError
+
+    if workers > MAX_WORKERS:
+        raise AdaptiveEngineError(f"at most {MAX_WORKERS} worker processes, got {workers:,}", location="--workers")
+
+
 def _load(design_file, bank_file, true_bank_file=None):
     from ..bank.item_bank import load_bank
     from ..design.toml_file import read_design
@@ -132,6 +143,7 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 
     if perturb and perturb_from:
         raise SimulationError("give --perturb or --perturb-from, not both", "--perturb-from")
+    _check_workers(workers)
     design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
     if perturb:
         true_bank = perturbed_bank(true_bank or bank, seed=seed, **_perturbation(perturb))
@@ -181,6 +193,7 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
     from ..simulation.population import examinee_count, parse_ability_spec
     from ..simulation.tuning import parse_variation, run_tuning_study
 
+    _check_workers(workers)
     design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
     parsed = [parse_variation(v) for v in variations]
     abilities = parse_ability_spec(theta_spec)
@@ -234,10 +247,16 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
     Writes the parameters in any case; exits with code 3 when the last iteration still
     left an item above --target + --tolerance (not converged), 2 on bad input.
     """
+    from ..design.exposure_parameters import MAX_EXPOSURE_STRATA
+    from ..errors import AdaptiveEngineError
     from ..simulation.exposure_tuning import parse_strata, run_calibration, unreachable_target_warning
     from ..simulation.population import examinee_count, parse_ability_spec
 
+    _check_workers(workers)
     strata = None if strata_text is None else parse_strata(strata_text)
+    if strata is not None and len(strata) + 1 > MAX_EXPOSURE_STRATA:
+        raise AdaptiveEngineError(f"{len(strata)} cut points make {len(strata) + 1} ability strata; "
+                                  f"at most {MAX_EXPOSURE_STRATA}", location="--conditional-strata")
     abilities = parse_ability_spec(theta_spec)
     n_examinees = examinee_count(abilities, n_examinees, default=2000)
     design, bank, _ = _load(design_file, bank_file)

@@ -21,9 +21,15 @@ from pathlib import Path
 import attrs
 
 from ..errors import DesignError, Problem
+from ..files import decode_input_text, read_input_bytes
 
 UNCONDITIONAL_HEADER = ["item_id", "exposure_parameter"]
 CONDITIONAL_HEADER = ["item_id", "theta_from", "theta_to", "exposure_parameter"]
+#: Largest exposure parameter file read, in bytes (64 MiB: a million rows of item and strata).
+MAX_EXPOSURE_FILE_BYTES = 64 * 2**20
+#: Most ability strata of conditional parameters.  A simulation counts exposure per
+#: (stratum, stratum, item), so strata cost their square in memory; 3 to 10 are usual.
+MAX_EXPOSURE_STRATA = 20
 
 
 @attrs.frozen(kw_only=True, eq=False)
@@ -52,16 +58,21 @@ def read_exposure_parameters(path: str | Path, *, location: str = "") -> dict:
 def read_exposure_file(path: str | Path, *, location: str = "") -> ExposureParameterFile:
     """Read an exposure parameter file of either layout (values in [0, 1]).
 
-    Problems are located as ``<file name> line N``; a missing file is reported at
-    ``location`` (the design key that named it).
+    Problems are located as ``<file name> line N``; a missing file, a folder, a pipe or
+    device (``/dev/zero``), a file over :data:`MAX_EXPOSURE_FILE_BYTES` and a name with a
+    NUL byte are reported at ``location`` (the design key that named it) and the path.
     """
-    path = Path(path)
+    missing = f"exposure parameter file not found: {path}"
     try:
-        text = path.read_bytes().decode("utf-8-sig")
-    except (FileNotFoundError, IsADirectoryError):
-        raise DesignError(f"exposure parameter file not found: {path}", location=location or str(path)) from None
-    except UnicodeDecodeError as exc:
-        raise DesignError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", location=path.name) from None
+        data = read_input_bytes(path, max_bytes=MAX_EXPOSURE_FILE_BYTES, error=DesignError,
+                                location=location or None, missing=missing)
+    except DesignError as exc:
+        if not location or exc.problems[0].message == missing:
+            raise
+        # located at the design key: say which file it named
+        raise DesignError(f"{exc.problems[0].message} (the file {str(path)!r})", location=location) from None
+    path = Path(path)
+    text = decode_input_text(data, error=DesignError, location=path.name)
     return parse_exposure_file(text, source=path.name)
 
 
@@ -189,6 +200,10 @@ def _parse_conditional(reader, source: str) -> ExposureParameterFile:
                                     "the same strata"))
             continue
         out[iid] = tuple(e[2] for e in sorted(entries, key=_stratum_order))
+        if len(bounds) + 1 > MAX_EXPOSURE_STRATA:
+            raise DesignError([Problem(f"{source} line {min(e[3] for e in entries)}",
+                                       f"item {iid} has {len(bounds) + 1} ability strata; at most "
+                                       f"{MAX_EXPOSURE_STRATA}")])
     if problems:
         raise DesignError(problems)
     return ExposureParameterFile(parameters=out, strata=reference[0])

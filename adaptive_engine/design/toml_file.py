@@ -30,6 +30,7 @@ from typing import Any, Callable, Mapping
 import attrs
 
 from ..errors import DesignError, Problem
+from ..files import decode_input_text, read_input_bytes
 from .exposure_parameters import parameter_problems, read_exposure_file
 from .types import (
     BLUEPRINT_METHODS,
@@ -59,6 +60,8 @@ SECTIONS = ("opening", "scoring", "selection", "exposure", "blueprint", "stoppin
 MIN_GRID_POINTS = 21
 MAX_GRID_POINTS = 20001
 MAX_DECIMALS = 10
+#: Largest design file read, in bytes (1 MiB; the shipped designs have 1-3 KB).
+MAX_DESIGN_FILE_BYTES = 2**20
 
 
 # ----------------------------------------------------------------------------------------
@@ -520,6 +523,37 @@ def _design_from_mapping(doc: Mapping, *, source: str, base_dir: Path | None,
     return attrs.evolve(design, exposure_parameters=exposure_parameters, exposure_strata=exposure_strata)
 
 
+#: Whole numbers in a design must fit in 64 bits (every count, position and size does).
+_LARGEST_INTEGER = 2**63 - 1
+
+
+def _huge_integers(doc: Mapping) -> list[Problem]:
+    """Integers beyond 64 bits anywhere in the parsed TOML, located by table and key.
+
+    No design setting needs one, and numpy (which every count ends up in) refuses them with
+    an OverflowError far from the file.  The walk is iterative: nesting is no limit here.
+    """
+    out = []
+    stack = [(doc, "", "")]
+    while stack:
+        value, table, key = stack.pop()
+        if isinstance(value, dict):
+            for name, item in value.items():
+                if isinstance(item, dict):
+                    stack.append((item, f"{table}.{name}" if table else name, ""))
+                else:
+                    stack.append((item, table, name))
+        elif isinstance(value, list):
+            inner = ".".join(part for part in (table, key) if part)
+            stack.extend((item, inner, "") if isinstance(item, dict) else (item, table, key) for item in value)
+        elif isinstance(value, int) and not isinstance(value, bool) and abs(value) > _LARGEST_INTEGER:
+            where = f"[{table}] {key}" if table else f"[top level] {key}"
+            digits = len(str(abs(value)))
+            out.append(Problem(where, f"a whole number of {digits} digits is too large "
+                                      f"(at most {_LARGEST_INTEGER:,})"))
+    return sorted(set(out))
+
+
 _TOML_POSITION = re.compile(r"\s*\(at line (\d+), column (\d+)\)\s*$")
 
 
@@ -541,6 +575,8 @@ def parse_design(text: str, *, source: str = "design", base_dir: str | Path | No
     DesignError
         Listing every problem with its location.
     """
+    # a byte order mark is no part of the TOML (bank files may start with one too)
+    text = text[1:] if text.startswith("\ufeff") else text
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -552,20 +588,28 @@ def parse_design(text: str, *, source: str = "design", base_dir: str | Path | No
         else:
             where = source
         raise DesignError([Problem(where, f"TOML syntax error: {message}")]) from None
+    except RecursionError:
+        raise DesignError([Problem(source, "TOML syntax error: arrays or tables are nested too deeply "
+                                           "to read")]) from None
+    except ValueError:  # tomllib converts integers with int(), which stops at 4,300 digits
+        raise DesignError([Problem(source, "TOML value cannot be read: a whole number with "
+                                           "thousands of digits")]) from None
+    problems = _huge_integers(doc)
+    if problems:
+        raise DesignError(problems)
     return _design_from_mapping(doc, source=source, base_dir=None if base_dir is None else Path(base_dir))
 
 
 def read_design(path: str | Path) -> Design:
-    """Read and validate a TOML design file; relative paths inside resolve against its folder."""
+    """Read and validate a TOML design file; relative paths inside resolve against its folder.
+
+    The file must be UTF-8 (a byte order mark is skipped) and a regular file of at most
+    :data:`MAX_DESIGN_FILE_BYTES`.
+    """
     path = Path(path)
-    try:
-        text = path.read_bytes().decode("utf-8")
-    except FileNotFoundError:
-        raise DesignError(f"no such design file: {path}", location=str(path)) from None
-    except IsADirectoryError:
-        raise DesignError(f"is a directory, not a design file: {path}", location=str(path)) from None
-    except UnicodeDecodeError as exc:
-        raise DesignError(f"not UTF-8 text ({exc.reason} at byte {exc.start})", location=str(path)) from None
+    data = read_input_bytes(path, max_bytes=MAX_DESIGN_FILE_BYTES, error=DesignError,
+                            missing=f"no such design file: {path}")
+    text = decode_input_text(data, error=DesignError, location=str(path))
     return parse_design(text, source=path.name, base_dir=path.parent)
 
 

@@ -745,14 +745,82 @@ def estimate(bank_or_params, items, responses, method: str, *, prior_mean=0.0, p
                 bounds=bounds, grid=grid, start=start, chunk_size=chunk_size)
 
 
+#: Ability bounds of :func:`score_responses` (MLE, MAP and WLE stay within them).
+SCORE_BOUNDS = (-6.0, 6.0)
+#: Prior SDs :func:`score_responses` accepts: from the coarsest default grid step to 4.
+#: The default grid spans the prior mean +- 7 SD, so the bounds keep it within 57 logits
+#: (a few times the usual 14) and a posterior of SD above the step resolvable.
+SCORE_PRIOR_SD_RANGE = (GRID_STEP, 4.0)
+#: Persons x answer slots scored at once by :func:`score_responses` (memory only).
+SCORE_BLOCK_CELLS = 2_000_000
+
+
+def check_score_prior(prior_mean, prior_sd, *, mean_location: str = "prior_mean",
+                      sd_location: str = "prior_sd") -> None:
+    """Refuse a normal prior outside what :func:`score_responses` accepts.
+
+    The mean (one number, or one per person) must be finite and lie within
+    :data:`SCORE_BOUNDS`; the SD within :data:`SCORE_PRIOR_SD_RANGE`.  A prior far off the
+    bounds has no mass where the estimates may lie, and an extreme one would size the
+    quadrature grid by itself (a mean of 1,000 asks for a 20,000-point grid per row).
+
+    Raises
+    ------
+    AdaptiveEngineError
+        Located at ``mean_location`` / ``sd_location``.
+    """
+    checks = ((prior_mean, mean_location, "the prior mean", SCORE_BOUNDS),
+              (prior_sd, sd_location, "the prior SD", SCORE_PRIOR_SD_RANGE))
+    for value, where, what, (lo, hi) in checks:
+        try:
+            arr = np.asarray(value, dtype=float)
+        except (TypeError, ValueError, OverflowError):
+            raise AdaptiveEngineError(f"{what} must be a number, got {value!r}", location=where) from None
+        if arr.size == 0 or not np.all(np.isfinite(arr)):
+            raise AdaptiveEngineError(f"{what} must be a finite number, got {_shown_number(value)}",
+                                      location=where)
+        if np.any(arr < lo) or np.any(arr > hi):
+            bad = arr[(arr < lo) | (arr > hi)].flat[0]
+            raise AdaptiveEngineError(f"{what} must lie in [{lo:g}, {hi:g}], got {bad:g}", location=where)
+
+
+def _shown_number(value) -> str:
+    text = repr(value) if np.ndim(value) == 0 else "a value that is not"
+    return text if len(text) <= 40 else text[:40] + "..."
+
+
 def score_responses(bank, table, method: str, *, prior_mean=0.0, prior_sd=1.0) -> list[dict]:
     """Score every person of a :class:`~adaptive_engine.bank.responses.ResponseTable` on ``bank``.
 
     Returns one record per person (in order of first appearance): ``person_id``, ``theta``,
     ``se``, ``n_items``, ``status``.  Unknown item ids and out-of-range responses raise
-    :class:`~adaptive_engine.errors.ResponseDataError` naming the file line.
+    :class:`~adaptive_engine.errors.ResponseDataError` naming the file line; a prior
+    outside the accepted ranges raises (see :func:`check_score_prior`).
+
+    Memory follows the input, not the bank or the longest test: only the items answered
+    are tabulated on the grid, and persons are scored in blocks of similar test length
+    (:meth:`~adaptive_engine.responses.ResponseTable.padded_blocks`).  Every row is
+    computed on its own, so the results equal one call of :func:`estimate` on
+    :meth:`~adaptive_engine.responses.ResponseTable.to_padded`, bit for bit.
     """
-    items, responses = table.to_padded(bank)
-    result = estimate(bank, items, responses, method, prior_mean=prior_mean, prior_sd=prior_sd)
-    return result.to_records(table.person_ids)
+    if method not in METHODS:
+        raise AdaptiveEngineError(f"unknown method {method!r} (use one of {', '.join(METHODS)})",
+                                  location="method")
+    check_score_prior(prior_mean, prior_sd)
+    n = table.n_persons
+    mean = np.broadcast_to(np.asarray(prior_mean, dtype=float), (n,))
+    sd = np.broadcast_to(np.asarray(prior_sd, dtype=float), (n,))
+    used = np.unique(table.bank_item_index(bank))
+    answered_bank = bank.subset(used) if used.size < len(bank) else bank
+    theta, se = np.empty(n), np.empty(n)
+    n_items, status = np.empty(n, dtype=np.int64), np.empty(n, dtype=object)
+    for persons, items, responses in table.padded_blocks(bank, max_cells=SCORE_BLOCK_CELLS):
+        # bank rows -> rows of the bank of answered items (padding -1 stays -1)
+        rows = np.where(items >= 0, np.searchsorted(used, items), -1)
+        result = estimate(answered_bank, rows, responses, method, prior_mean=mean[persons],
+                          prior_sd=sd[persons], bounds=SCORE_BOUNDS)
+        theta[persons], se[persons] = result.theta, result.se
+        n_items[persons], status[persons] = result.n_items, result.status
+    estimates = AbilityEstimates(theta=theta, se=se, n_items=n_items, method=method, status=status)
+    return estimates.to_records(table.person_ids)
 

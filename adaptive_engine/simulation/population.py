@@ -30,8 +30,15 @@ import attrs
 import numpy as np
 
 from ..errors import AdaptiveEngineError
+from ..files import decode_input_text, read_input_bytes
 
 KINDS = ("normal", "uniform", "grid", "file")
+#: Most simulated examinees in one run.  Results are held in memory (about 300 bytes per
+#: examinee, plus the examinees.csv text): a million examinees need about 0.5 GB and a few
+#: minutes on two cores; larger studies are several runs with different seeds.
+MAX_EXAMINEES = 1_000_000
+#: Largest ability file read, in bytes (16 MiB: a million abilities and more).
+MAX_ABILITY_FILE_BYTES = 16 * 2**20
 #: Sub-stream of the run seed that true abilities are drawn from.
 _ABILITY_STREAM = 0x7E7A
 
@@ -78,6 +85,7 @@ class AbilitySpec:
         """
         if n < 0:
             raise AbilitySpecError(f"the number of examinees must be >= 0, got {n}", "--examinees")
+        _check_count(n)
         if self.kind == "normal":
             mean, sd = self.values
             return mean + sd * _generator(seed).standard_normal(n)
@@ -104,14 +112,23 @@ def examinee_count(spec: AbilitySpec, n: int | None, *, default: int) -> int:
     """
     fixed = spec.fixed_count
     if n is None:
-        return int(fixed if fixed is not None else default)
+        return _check_count(int(fixed if fixed is not None else default))
     if n < 1:
         raise AbilitySpecError(f"the number of examinees must be >= 1, got {n}", "--examinees")
+    _check_count(n)
     if fixed is not None and n != fixed:
         what = ("POINTS x PER_POINT" if spec.kind == "grid" else "one per row of the file")
         raise AbilitySpecError(f"--theta {spec.text} fixes {fixed} examinees ({what}), not {n}; "
                                f"leave --examinees out or give {fixed}", "--examinees")
     return int(n)
+
+
+def _check_count(n: int) -> int:
+    """``n`` itself, refused beyond :data:`MAX_EXAMINEES` before anything is allocated."""
+    if n > MAX_EXAMINEES:
+        raise AbilitySpecError(f"at most {MAX_EXAMINEES:,} examinees per run, got {n:,}; "
+                               "run a larger study as several runs with different seeds", "--examinees")
+    return n
 
 
 def _generator(seed: int) -> np.random.Generator:
@@ -170,6 +187,9 @@ def parse_ability_spec(text: str, *, base_dir: str | Path | None = None) -> Abil
         if hi < lo or points < 1 or per_point < 1 or points != int(points) or per_point != int(per_point):
             raise AbilitySpecError(
                 f"a grid needs LO <= HI and whole POINTS, PER_POINT >= 1, got {text!r}", "--theta")
+        if points * per_point > MAX_EXAMINEES:
+            raise AbilitySpecError(f"the grid {text!r} asks for {points * per_point:.4g} examinees "
+                                   f"(POINTS x PER_POINT); at most {MAX_EXAMINEES:,}", "--theta")
         return AbilitySpec(kind=kind, values=(lo, hi, int(points), int(per_point)), text=text)
     path = Path(body.strip())
     if base_dir is not None and not path.is_absolute():
@@ -180,12 +200,9 @@ def parse_ability_spec(text: str, *, base_dir: str | Path | None = None) -> Abil
 def read_ability_file(path: str | Path) -> list[float]:
     """Abilities listed in a CSV file (column ``theta``/``true_theta``, or one bare column)."""
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise AbilitySpecError(f"ability file not found: {path}", str(path)) from None
-    except (IsADirectoryError, UnicodeDecodeError) as exc:
-        raise AbilitySpecError(f"cannot read ability file: {exc}", str(path)) from None
+    data = read_input_bytes(path, max_bytes=MAX_ABILITY_FILE_BYTES, error=AbilitySpecError,
+                            missing=f"ability file not found: {path}")
+    text = decode_input_text(data, error=AbilitySpecError, location=str(path))
     rows = [(i + 1, r) for i, r in enumerate(csv.reader(text.splitlines())) if any(c.strip() for c in r)]
     if not rows:
         raise AbilitySpecError("the ability file is empty", f"{path.name} line 1")
@@ -220,4 +237,7 @@ def read_ability_file(path: str | Path) -> list[float]:
         raise AbilitySpecError([Problem(loc, msg) for loc, msg in problems[:20]])
     if not out:
         raise AbilitySpecError("the ability file lists no abilities", f"{path.name}")
+    if len(out) > MAX_EXAMINEES:
+        raise AbilitySpecError(f"the ability file lists {len(out):,} abilities, one per examinee; "
+                               f"at most {MAX_EXAMINEES:,}", f"{path.name}")
     return out
