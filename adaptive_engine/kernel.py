@@ -255,8 +255,11 @@ def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimate
     items, resp = state.scored_items(rows)
     method = design.final_method
     if method == "eap":
+        from .estimation import eap_status
+
         theta, se = posterior_mean_sd(state.log_post[rows], ctx.grid)
-        status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
+        status = eap_status(ctx.bank, items, resp, theta, se, prior_mean=state.prior_mean[rows],
+                            prior_sd=state.prior_sd[rows])
     else:
         est = estimate(ctx.bank, items, resp, method, prior_mean=state.prior_mean[rows],
                        prior_sd=state.prior_sd[rows], bounds=(sc.grid_min, sc.grid_max), grid=ctx.grid)

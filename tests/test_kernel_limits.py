@@ -18,6 +18,7 @@ from adaptive_engine import models, simulation
 from adaptive_engine.bank import load_bank
 from adaptive_engine.design_check import check_design_against_bank
 from adaptive_engine.design_file import read_design
+from adaptive_engine.estimation import STATUSES
 from adaptive_engine.session import ProcessCache, session_result, start_session, submit_answer
 from adaptive_engine.store import open_store
 
@@ -95,3 +96,89 @@ def test_max_items_is_absolute_with_blueprint_minimums_and_sprt(max_items):
     assert np.all(counts >= np.array(mins)[None, :])
     reports = run_live_sessions(design, bank, n=12, seed=max_items)
     assert all(r["items"]["scored"] <= max_items for r in reports)
+
+
+# ----------------------------------------------------------------------------------------
+# finite estimates in every reply, on items that push the numbers to their limits
+
+
+_EXTREME_ITEMS = {
+    "wild_steps": {"model": "GPCM", "a": 50.0, "thresholds": [-20.0, 20.0, -20.0, 20.0]},
+    "steep_hard": {"model": "2PL", "a": 50.0, "b": 20.0},
+    "steep_easy": {"model": "2PL", "a": 50.0, "b": -20.0},
+    "plain": {"model": "2PL", "a": 1.0, "b": 0.0},
+}
+
+
+def _extreme_bank(names=tuple(_EXTREME_ITEMS), scaling=1.0):
+    from adaptive_engine.bank import bank_from_records
+
+    return bank_from_records([dict(_EXTREME_ITEMS[n], item_id=n) for n in names], name="extreme",
+                             scaling=scaling)
+
+
+def _answer_all(design, bank, answers: dict) -> list[dict]:
+    replies = []
+    with open_store(":memory:") as store:
+        reply = start_session(store, design, bank, seed=5, cache=ProcessCache())
+        while not reply["done"]:
+            reply = submit_answer(store, reply["session_id"], reply["item_id"], answers[reply["item_id"]],
+                                  cache=ProcessCache())
+            replies.append(reply)
+    return replies
+
+
+@pytest.mark.parametrize("method", ["mle", "wle", "map", "eap"])
+@pytest.mark.parametrize("answers, scaling", [
+    ({"wild_steps": 1, "steep_hard": 1, "steep_easy": 0, "plain": 1}, 1.0),  # unexpected answers
+    ({"wild_steps": 2, "steep_hard": 0, "steep_easy": 1, "plain": 0}, 1.0),  # expected ones
+    ({"wild_steps": 4, "steep_hard": 1, "steep_easy": 1, "plain": 1}, 1.0),  # all highest
+    ({"wild_steps": 0, "steep_hard": 0, "steep_easy": 0, "plain": 0}, 1.702),  # all lowest
+    ({"wild_steps": 1}, 1.0),  # one middle answer to the GPCM item
+    ({"steep_hard": 1, "steep_easy": 1}, 1.702),  # all right on steep items only
+    ({"steep_hard": 0, "steep_easy": 0}, 1.702),  # all wrong on steep items only
+    ({"plain": 1}, 1.0),  # a one-item bank
+])
+def test_replies_and_reports_stay_finite_on_extreme_items(method, answers, scaling):
+    # Regression: an interim MLE reply gave theta -6 with se null after one answer to the
+    # a = 50 GPCM item; MLE/WLE reported se = inf (null in JSON) for all-right/all-wrong
+    # answers on the steep items; MAP stuck at the prior.
+    from adaptive_engine.design import Design, Scoring, Stopping
+
+    bank = _extreme_bank(tuple(answers), scaling)
+    n = len(answers)
+    design = Design(scoring=Scoring(method=method), stopping=Stopping(min_items=n, max_items=n))
+    replies = _answer_all(design, bank, answers)
+    assert len(replies) == n
+    for reply in replies:
+        assert_finite_reply(reply)
+    report = replies[-1]["result"]
+    assert report["estimate_status"] in STATUSES
+    assert all(v is not None for v in report["interval"])
+    assert report["scaled_score"] is not None
+
+
+def test_map_moves_off_the_prior_after_answers_far_above_it():
+    # Regression: MAP returned exactly the prior (0, 1) after a right answer to an item with
+    # a = 50 at b = 20 while EAP moved to the upper end.  The posterior rises all the way to
+    # the grid's upper bound (6), so that is where its mode is.  Oracle:
+    # scipy.optimize.minimize_scalar (bounded) on the log posterior in log space.
+    from scipy import optimize
+    from scipy.special import log_expit
+
+    from adaptive_engine.bank import bank_from_records
+    from adaptive_engine.design import Design, Scoring, Stopping
+
+    def log_post(t):
+        return log_expit(50 * (t - 20)) + log_expit(50 * (t + 20)) - t * t / 2
+
+    ref = optimize.minimize_scalar(lambda t: -log_post(t), bounds=(-6, 6), method="bounded",
+                                   options={"xatol": 1e-9}).x
+    bank = bank_from_records([{"item_id": "steep_hard", "model": "2PL", "a": 50.0, "b": 20.0},
+                              {"item_id": "steep_easy", "model": "2PL", "a": 50.0, "b": -20.0}])
+    design = Design(scoring=Scoring(method="map"), stopping=Stopping(min_items=2, max_items=2))
+    replies = _answer_all(design, bank, {"steep_hard": 1, "steep_easy": 1})
+    final = replies[-1]["result"]
+    assert final["theta"] == pytest.approx(ref, abs=1e-3) and ref > 5.99
+    assert final["estimate_status"] == "all_highest"
+    assert_finite_report(final)
