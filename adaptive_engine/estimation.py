@@ -429,7 +429,7 @@ def _posterior_moments(log_post, grid):
     w /= np.sum(w, axis=-1, keepdims=True)
     mean = np.sum(w * grid, axis=-1)
     var = np.sum(w * (grid - mean[:, None]) ** 2, axis=-1)
-    return mean, np.sqrt(np.maximum(var, 0.0))
+    return mean, np.maximum(np.sqrt(np.maximum(var, 0.0)), ability.resolution_floor(grid))
 
 
 def _grid_pass(data: _Data, mean, sd, grid, chunk_size, bounds=None):
