@@ -295,7 +295,7 @@ def test_shipped_designs_at_the_edges_of_their_ranges_run_to_the_end(design_name
 # property: any design within the validated ranges runs to the end with finite estimates
 
 
-@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.filter_too_much])
+@settings(max_examples=10, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.filter_too_much])
 @given(data=st.data())
 def test_any_accepted_design_finishes_within_max_items_with_finite_estimates(data):
     from adaptive_engine.design_check import check_design_against_bank
