@@ -135,3 +135,123 @@ def item_banks(draw, *, min_items: int = 1, max_items: int = 8, items=None) -> I
         out.append(rec)
     scaling = draw(st.sampled_from((1.0, 1.702)))
     return bank_from_records(out, scaling=scaling, name="generated")
+
+
+# ----------------------------------------------------------------------------------------
+# runnable banks and designs: everything within the ranges design check accepts
+# (adaptive_engine.design.toml_file: GRID_LIMIT, PRIOR_SD_RANGE, ... ; docs/designs.md)
+
+
+@st.composite
+def steep_items(draw):
+    """A steep item far from the middle of the scale: probabilities that underflow."""
+    a = draw(_floats(5.0, 50.0))
+    if draw(st.booleans()):
+        return {"model": "2PL", "a": a, "b": draw(_floats(-20.0, 20.0))}
+    k = draw(st.integers(1, 4))
+    return {"model": "GPCM", "a": a, "thresholds": draw(st.lists(_floats(-20.0, 20.0), min_size=k, max_size=k))}
+
+
+@st.composite
+def runnable_banks(draw, *, min_items: int = 10, max_items: int = 24) -> ItemBank:
+    """A bank a test can run on: every area holds operational items, a few pretest items,
+    optional enemy pairs and one item set, and now and then a steep far item."""
+    n = draw(st.integers(min_items, max_items))
+    items = st.one_of(any_items(), any_items(), any_items(), steep_items())
+    recs = draw(st.lists(items, min_size=n, max_size=n))
+    n_pretest = draw(st.integers(0, 2))
+    set_start = draw(st.none() | st.integers(0, n - n_pretest - 3))
+    out = []
+    for i, rec in enumerate(recs):
+        rec = dict(rec, item_id=f"item-{i:03d}", area=AREAS[i % len(AREAS)])
+        if rec["model"] == "1PL":
+            rec.pop("a")
+        if i >= n - n_pretest:
+            rec["status"] = "pretest"
+        elif set_start is not None and set_start <= i < set_start + 3:
+            rec["item_set"] = "case-study"
+            rec["area"] = AREAS[0]
+        elif i % 7 in (3, 4):
+            rec["enemy_group"] = f"enemies-{i // 7}"
+        out.append(rec)
+    return bank_from_records(out, scaling=draw(st.sampled_from((1.0, 1.702))), name="runnable")
+
+
+def _edge_or(draw, lo: float, hi: float):
+    """A value in [lo, hi], the ends themselves often (they are where arithmetic breaks)."""
+    return draw(st.sampled_from((lo, hi)) | _floats(lo, hi))
+
+
+@st.composite
+def runnable_designs(draw, bank: ItemBank):
+    """A :class:`~adaptive_engine.design.Design` within the validated ranges, made to fit
+    ``bank`` by its counts (callers still run ``check_design_against_bank``)."""
+    from adaptive_engine import design as d
+    from adaptive_engine.design import toml_file as df
+
+    limit = df.GRID_LIMIT
+    lo = draw(_floats(-limit, limit - 1.0))
+    hi = draw(_floats(lo + 1.0, limit)) if draw(st.booleans()) else min(limit, lo + 12.0)
+    on_grid = _floats(lo, hi)
+    operational = [i for i, s in enumerate(bank.status) if s == "operational"]
+    n_op = len(operational)
+    n_pretest = bank.n_items - n_op
+    max_items = draw(st.integers(1, max(1, n_op // 2)))
+    min_items = draw(st.integers(1, max_items))
+    method = draw(st.sampled_from(d.SCORING_METHODS))
+    scoring = d.Scoring(method=method, prior_mean=draw(on_grid), prior_sd=_edge_or(draw, *df.PRIOR_SD_RANGE),
+                        until_mixed=draw(st.sampled_from(d.UNTIL_MIXED)), fixed_step=_edge_or(draw, 0.01, 5.0),
+                        grid_min=lo, grid_max=hi,
+                        grid_points=draw(st.sampled_from((df.MIN_GRID_POINTS, df.MAX_GRID_POINTS))
+                                         | st.integers(df.MIN_GRID_POINTS, df.MAX_GRID_POINTS)))
+    random_start = draw(st.booleans())
+    start_lo = draw(_floats(lo, hi - 0.5))
+    opening = d.Opening(theta=0.0 if random_start else draw(on_grid),
+                        random_theta=(start_lo, draw(_floats(start_lo + 0.1, hi))) if random_start else None,
+                        first_items_from_top=draw(st.integers(1, min(n_op, 5))))
+    exposure_method = draw(st.sampled_from(d.EXPOSURE_METHODS))
+    params = None
+    if exposure_method == "sympson_hetter":
+        params = {bank.item_ids[i]: draw(_floats(0.2, 1.0)) for i in operational}
+    exposure = d.Exposure(method=exposure_method, candidates=draw(st.integers(1, n_op)),
+                          parameters="generated.csv" if params else None,
+                          acceleration=_edge_or(draw, 0.01, 100.0))
+    criterion = draw(st.sampled_from(d.CRITERIA))
+    selection = d.Selection(criterion=criterion, kl_interval=_edge_or(draw, 0.01, 10.0),
+                            strata=draw(st.integers(1, min(4, n_op))), b_blocking=draw(st.booleans()))
+    areas = ()
+    if draw(st.booleans()):
+        areas = tuple(d.AreaRule(name=a, min=draw(st.integers(0, 1)), max=draw(st.none() | st.integers(1, max_items)))
+                      for a in sorted(set(bank.areas)))
+    positions = tuple(sorted(draw(st.lists(st.integers(1, max_items), unique=True, max_size=min(2, n_pretest)))))
+    blueprint = d.Blueprint(areas=areas, method=draw(st.sampled_from(d.BLUEPRINT_METHODS)),
+                            enemies=draw(st.booleans()), item_sets=draw(st.booleans()),
+                            pretest_positions=positions, shadow_test=draw(st.booleans()) and not params)
+    sprt = ci = None
+    if draw(st.booleans()):
+        ind = draw(_floats(0.01, min(5.0, (hi - lo) / 2 - 1e-6)))
+        sprt = d.SprtRule(cut=draw(_floats(lo + ind, hi - ind)), indifference=ind,
+                          alpha=_edge_or(draw, 1e-6, 0.49), beta=_edge_or(draw, 1e-6, 0.49))
+    if draw(st.booleans()):
+        ci = d.ConfidenceRule(cut=draw(on_grid), confidence=_edge_or(draw, 1e-6, df.MAX_CONFIDENCE))
+    stopping = d.Stopping(
+        min_items=min_items, max_items=max_items,
+        se=draw(st.none() | st.sampled_from((0.001, 10.0)) | _floats(0.001, 10.0)),
+        sprt=sprt, confidence_interval=ci,
+        se_reduction=draw(st.none() | st.sampled_from((1e-6, 10.0))),
+        min_information=draw(st.none() | st.sampled_from((1e-6, 1e4)) | _floats(1e-6, 2.0)),
+        time_limit=draw(st.none() | st.sampled_from((1e-9, df.MAX_TIME_LIMIT))))
+    low, high = df.SCALE_SLOPE_RANGE
+    scale_min = draw(st.none() | _floats(-df.MAX_SCALE_BOUND, df.MAX_SCALE_BOUND - 1))
+    scale = d.ScaleRule(slope=_edge_or(draw, low, high) * draw(st.sampled_from((1, -1))),
+                        intercept=_edge_or(draw, -df.MAX_SCALE_INTERCEPT, df.MAX_SCALE_INTERCEPT),
+                        decimals=draw(st.integers(0, df.MAX_DECIMALS)), min=scale_min,
+                        max=draw(st.none() | _floats((scale_min if scale_min is not None else -df.MAX_SCALE_BOUND) + 1,
+                                                     df.MAX_SCALE_BOUND)))
+    cuts = tuple(d.CutScore(name=f"cut-{i}", theta=draw(on_grid)) for i in range(draw(st.integers(0, 2))))
+    reporting = d.Reporting(final_method=draw(st.none() | st.sampled_from(d.SCORING_METHODS)),
+                            confidence=_edge_or(draw, 1e-6, df.MAX_CONFIDENCE), scale=scale, cut_scores=cuts,
+                            person_fit_threshold=_edge_or(draw, -10.0, 10.0))
+    return d.Design(opening=opening, scoring=scoring, selection=selection, exposure=exposure,
+                    blueprint=blueprint, stopping=stopping, reporting=reporting, source="generated",
+                    exposure_parameters=params)

@@ -129,20 +129,20 @@ BAD_INPUTS = [
     ("opening = 3\n", "[top level] opening", "expected a table"),
     ("[stopping]\nse = \"small\"\n", "[stopping] se", "expected a number, got a string"),
     ("[stopping]\nse = true\n", "[stopping] se", "expected a number, got true/false"),
-    ("[stopping]\nse = 0.0\n", "[stopping] se", "must be > 0"),
-    ("[stopping]\nse = -0.1\n", "[stopping] se", "must be > 0"),
+    ("[stopping]\nse = 0.0\n", "[stopping] se", "must lie in [0.001, 10.0], got 0.0"),
+    ("[stopping]\nse = -0.1\n", "[stopping] se", "must lie in [0.001, 10.0]"),
     ("[stopping]\nse = nan\n", "[stopping] se", "finite"),
     ("[stopping]\nmax_items = 2.5\n", "[stopping] max_items", "whole number"),
-    ("[stopping]\nmin_items = 0\n", "[stopping] min_items", "must be >= 1"),
+    ("[stopping]\nmin_items = 0\n", "[stopping] min_items", "must lie in [1, 1000]"),
     ("[stopping]\nmin_items = 20\nmax_items = 10\n", "[stopping] min_items", "exceeds max_items"),
     ("[stopping.sprt]\ncut = 0.0\nalpha = 0.5\n", "[stopping.sprt] alpha", "strictly between 0 and 0.5"),
     ("[stopping.sprt]\ncut = 0.0\nbeta = 0\n", "[stopping.sprt] beta", "strictly between 0 and 0.5"),
     ("[stopping.sprt]\nalpha = 0.05\n", "[stopping.sprt] cut", "missing key"),
     ("[stopping.sprt]\ncut = 5.9\nindifference = 0.2\n", "[stopping.sprt] cut", "outside the ability grid"),
     ("[stopping.confidence_interval]\ncut = 0.0\nconfidence = 1.0\n",
-     "[stopping.confidence_interval] confidence", "strictly between 0 and 1"),
+     "[stopping.confidence_interval] confidence", "must lie in (0, 0.9999]"),
     ("[stopping]\nsprt = 1\n", "[stopping] sprt", "expected a table"),
-    ("[scoring]\nprior_sd = 0\n", "[scoring] prior_sd", "must be > 0"),
+    ("[scoring]\nprior_sd = 0\n", "[scoring] prior_sd", "must lie in [0.01, 100.0]"),
     ("[scoring]\ngrid_points = 11\n", "[scoring] grid_points", "must lie in [21,"),
     ("[scoring]\ngrid_min = 3.0\ngrid_max = -3.0\n", "[scoring] grid_max", "above grid_min"),
     ("[scoring]\nprior_mean = 9.0\n", "[scoring] prior_mean", "outside the ability grid"),
@@ -150,16 +150,16 @@ BAD_INPUTS = [
     ("[scoring]\nuntil_mixed = \"wle\"\n", "[scoring] until_mixed", "allowed values: eap, map, fixed_step"),
     ("[selection]\ncriterion = \"maxinfo\"\n", "[selection] criterion",
      "unknown value 'maxinfo'; allowed values: max_fisher_information, posterior_weighted_information"),
-    ("[selection]\nstrata = 0\n", "[selection] strata", "must be >= 1"),
+    ("[selection]\nstrata = 0\n", "[selection] strata", "must lie in [1, 1000]"),
     ("[selection]\nb_blocking = \"yes\"\n", "[selection] b_blocking", "expected true or false"),
-    ("[exposure]\ncandidates = 0\n", "[exposure] candidates", "must be >= 1"),
+    ("[exposure]\ncandidates = 0\n", "[exposure] candidates", "must lie in [1, 1000]"),
     ("[exposure]\nmethod = \"sympson_hetter\"\n", "[exposure] parameters", "needs a parameters CSV"),
     ("[exposure]\nmethod = \"shuffle\"\n", "[exposure] method", "allowed values: none, randomesque"),
     ("[exposure]\nparameters = \"\"\n", "[exposure] parameters", "must not be empty"),
     ("[opening]\ntheta = 0.5\nrandom_theta = [-0.5, 0.5]\n", "[opening] random_theta", "not both"),
     ("[opening]\nrandom_theta = [0.5, -0.5]\n", "[opening] random_theta", "low end must be below"),
     ("[opening]\nrandom_theta = [0.5]\n", "[opening] random_theta", "two numbers"),
-    ("[opening]\nfirst_items_from_top = 0\n", "[opening] first_items_from_top", "must be >= 1"),
+    ("[opening]\nfirst_items_from_top = 0\n", "[opening] first_items_from_top", "must lie in [1, 1000]"),
     ("[opening]\ntheta = 7.5\n", "[opening] theta", "outside the ability grid"),
     ("[blueprint]\nmethod = \"weighted\"\n", "[blueprint] method", "allowed values: constrained, max_priority_index"),
     ("[blueprint]\npretest_positions = [0, 3]\n", "[blueprint] pretest_positions", "1-based"),
@@ -175,8 +175,8 @@ BAD_INPUTS = [
     ("[blueprint.areas.a]\nmin = 20\n[blueprint.areas.b]\nmin = 20\n", "[blueprint.areas]", "minimums add up to 40"),
     ("[blueprint.areas]\nsource_water = 3\n", "[blueprint.areas] source_water", "expected a table"),
     ("[reporting]\nfinal_method = \"bayes\"\n", "[reporting] final_method", "allowed values"),
-    ("[reporting]\nconfidence = 95\n", "[reporting] confidence", "strictly between 0 and 1"),
-    ("[reporting.scale]\nslope = 0\n", "[reporting.scale] slope", "must not be 0"),
+    ("[reporting]\nconfidence = 95\n", "[reporting] confidence", "must lie in (0, 0.9999]"),
+    ("[reporting.scale]\nslope = 0\n", "[reporting.scale] slope", "must be 0.0001 to 10000 in size"),
     ("[reporting.scale]\ndecimals = -1\n", "[reporting.scale] decimals", "must lie in [0,"),
     ("[reporting.scale]\nmin = 800\nmax = 200\n", "[reporting.scale] max", "above min"),
     ("[[reporting.cut_scores]]\nname = \"licence\"\n", "[[reporting.cut_scores]] #1 theta", "missing key"),
@@ -185,6 +185,32 @@ BAD_INPUTS = [
     ("[[reporting.cut_scores]]\nname = \"x\"\ntheta = 0.0\n[[reporting.cut_scores]]\nname = \"x\"\ntheta = 1.0\n",
      "[[reporting.cut_scores]] #2 name", "repeats"),
     ("[reporting]\ncut_scores = 3\n", "[reporting] cut_scores", "array of tables"),
+    # values outside the ranges a design may use (docs/designs.md), each named where it is
+    ("[scoring]\ngrid_min = -1e300\ngrid_max = 1e300\ngrid_points = 20001\n", "[scoring] grid_min",
+     "must lie in [-20, 20], got -1e+300"),
+    ("[scoring]\ngrid_max = 1e300\n", "[scoring] grid_max", "must lie in [-20, 20]"),
+    ("[scoring]\ngrid_points = 20001\n", "[scoring] grid_points", "must lie in [21, 2001]"),
+    ("[scoring]\nprior_mean = 1e300\n", "[scoring] prior_mean", "must lie in [-20, 20]"),
+    ("[scoring]\nprior_sd = 1e300\n", "[scoring] prior_sd", "must lie in [0.01, 100.0]"),
+    ("[scoring]\nfixed_step = 50\n", "[scoring] fixed_step", "must lie in [0.01, 5.0]"),
+    ("[opening]\ntheta = -1e300\n", "[opening] theta", "must lie in [-20, 20]"),
+    ("[selection]\nkl_interval = 1e300\n", "[selection] kl_interval", "must lie in [0.01, 10.0]"),
+    ("[exposure]\ncandidates = 9223372036854775807\n", "[exposure] candidates", "must lie in [1, 1000]"),
+    ("[exposure]\nacceleration = 1e-300\n", "[exposure] acceleration", "must lie in [0.01, 100.0]"),
+    ("[stopping]\nmax_items = 100000000\n", "[stopping] max_items", "must lie in [1, 1000]"),
+    ("[stopping]\ntime_limit = 1e300\n", "[stopping] time_limit", "must lie in (0, 1e+07]"),
+    ("[stopping]\nmin_information = 1e300\n", "[stopping] min_information", "must lie in [1e-06, 10000.0]"),
+    ("[stopping.sprt]\ncut = 1e300\n", "[stopping.sprt] cut", "must lie in [-20, 20]"),
+    ("[stopping.sprt]\ncut = 0.0\nindifference = 1e300\n", "[stopping.sprt] indifference", "must lie in [0.01, 5.0]"),
+    ("[stopping.confidence_interval]\ncut = 0.0\nconfidence = 0.99999999\n",
+     "[stopping.confidence_interval] confidence", "must lie in (0, 0.9999]"),
+    ("[reporting.scale]\nslope = 1e308\nintercept = 1e308\n", "[reporting.scale] slope", "10000 in size"),
+    ("[reporting.scale]\nslope = 1e308\nintercept = 1e308\n", "[reporting.scale] intercept",
+     "must lie in [-1e+06, 1e+06]"),
+    ("[reporting.scale]\nmin = -1e300\n", "[reporting.scale] min", "must lie in [-1e+07, 1e+07]"),
+    ("[reporting]\nperson_fit_threshold = -1e300\n", "[reporting] person_fit_threshold", "must lie in [-10, 10]"),
+    ("[[reporting.cut_scores]]\nname = \"x\"\ntheta = 1e300\n", "[[reporting.cut_scores]] #1 theta",
+     "must lie in [-20, 20]"),
 ]
 
 
@@ -597,6 +623,56 @@ def test_a_fitting_design_has_no_problems():
     design = parse_design("[blueprint.areas.x]\nmin = 2\nmax = 5\n[blueprint.areas.y]\nshare = 0.5\n"
                           "[stopping]\nmax_items = 8\n")
     assert check_design_against_bank(design, bank) == []
+
+
+def test_designs_built_in_code_are_checked_key_by_key_like_files():
+    # A design made with attrs.evolve never passed the reader: validate_design (and with it
+    # design check, simulate and session start) checks each key's type and range itself.
+    d = attrs.evolve(Design(), scoring=Scoring(grid_min=-1e300, grid_max=1e300, grid_points=20001),
+                     reporting=Reporting(scale=ScaleRule(slope=1e308, intercept=1e308)))
+    found = {p.location: p.message for p in validate_design(d)}
+    assert set(found) == {"[scoring] grid_min", "[scoring] grid_max", "[scoring] grid_points",
+                          "[reporting.scale] slope", "[reporting.scale] intercept"}
+    assert "must lie in [-20, 20]" in found["[scoring] grid_min"]
+    bank = _bank([{"item_id": f"I{i}", "b": 0.1 * i} for i in range(40)])
+    from adaptive_engine.live.session import start_session
+    from adaptive_engine.live.store import open_store
+    from adaptive_engine.simulation import engine as simulation
+
+    with pytest.raises(DesignError, match=r"\[scoring\] grid_min"):
+        simulation.simulate(d, bank, true_theta=np.zeros(3), seed=1)
+    with open_store(":memory:") as store, pytest.raises(DesignError, match=r"\[reporting.scale\] slope"):
+        start_session(store, d, bank, seed=1)
+
+
+def test_blueprints_that_cannot_be_met_are_refused_with_the_reason():
+    records = ([{"item_id": f"S{i}", "area": "source_water"} for i in range(12)]
+               + [{"item_id": f"T{i}", "area": "treatment_processes", "item_set": "long_case" if i < 5 else ""}
+                  for i in range(8)])
+    bank = _bank(records)
+    # minimums adding up to more than the test length: refused on reading already
+    found = problems_of("[blueprint.areas.source_water]\nmin = 8\n[blueprint.areas.treatment_processes]\n"
+                        "min = 6\n[stopping]\nmin_items = 10\nmax_items = 12\n")
+    assert "minimums add up to 14, more than max_items (12)" in found["[blueprint.areas]"]
+    # a set larger than its area's maximum can never be given: its items do not count
+    found = {p.location: p.message for p in check_design_against_bank(parse_design(
+        "[blueprint]\nitem_sets = true\n[blueprint.areas.treatment_processes]\nmin = 4\nmax = 4\n"
+        "[stopping]\nmin_items = 5\nmax_items = 10\n"), bank)}
+    assert "'long_case' has 5 items of area 'treatment_processes', more than its max (4)" in found[
+        "[blueprint] item_sets"]
+    assert "only 3 usable" in found["[blueprint.areas.treatment_processes] min"]
+    # area maximums that keep every test below min_items
+    found = {p.location: p.message for p in check_design_against_bank(parse_design(
+        "[blueprint.areas.source_water]\nmax = 3\n[blueprint.areas.treatment_processes]\nmax = 4\n"
+        "[stopping]\nmin_items = 10\nmax_items = 12\n"), bank)}
+    assert "at most 7 scored items, fewer than min_items (10)" in found["[stopping] min_items"]
+    from adaptive_engine.simulation import engine as simulation
+
+    with pytest.raises(DesignError, match="min_items"):
+        simulation.simulate(parse_design("[blueprint.areas.source_water]\nmax = 3\n"
+                                         "[blueprint.areas.treatment_processes]\nmax = 4\n"
+                                         "[stopping]\nmin_items = 10\nmax_items = 12\n"), bank,
+                            true_theta=np.zeros(2), seed=1)
 
 
 # ----------------------------------------------------------------------------------------

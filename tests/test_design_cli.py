@@ -57,7 +57,7 @@ def test_check_lists_every_problem_with_exit_2(tmp_path):
     design.write_text('[stopping]\nse = 0\nmax_items = "ten"\n[selection]\ncriterion = "maxinfo"\n')
     result = run("design", "check", str(design))
     assert result.exit_code == 2
-    assert "[stopping] se: must be > 0" in result.stderr
+    assert "[stopping] se: must lie in [0.001, 10.0], got 0.0" in result.stderr
     assert "[stopping] max_items: expected a whole number" in result.stderr
     assert "[selection] criterion: unknown value 'maxinfo'; allowed values:" in result.stderr
     assert result.stdout == ""

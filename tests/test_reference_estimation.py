@@ -331,3 +331,130 @@ def test_three_pl_information_formula_lord_1980():
         p = it["c"] + (1 - it["c"]) / (1 + math.exp(-D * it["a"] * (t - it["b"])))
         info += D**2 * it["a"] ** 2 * ((1 - p) / p) * ((p - it["c"]) / (1 - it["c"])) ** 2
     assert est.se[0] == pytest.approx(1 / math.sqrt(info), rel=1e-9)
+
+
+# ----------------------------------------------------------------------------------------
+# steep items far from theta: probabilities that underflow, estimates that must not stall
+#
+# The reference log-likelihood here is taken in log space (scipy.special.log_expit and
+# logsumexp) from the published formulas, so that it stays exact where P itself underflows.
+
+
+def ref_log_prob(item, theta, x, D=1.0):
+    from scipy.special import log_expit, logsumexp
+
+    a = item["a"]
+    if item["model"] == "2PL":
+        z = D * a * (theta - item["b"])
+        return float(log_expit(z) if x == 1 else log_expit(-z))
+    # GPCM, Muraki (1992) eq. 1
+    numer = np.concatenate([[0.0], np.cumsum(D * a * (theta - np.asarray(item["thresholds"], float)))])
+    return float(numer[x] - logsumexp(numer))
+
+
+def ref_log_lik(items, resp, theta):
+    return sum(ref_log_prob(it, theta, x) for it, x in zip(items, resp))
+
+
+def ref_information_closed(items, theta, D=1.0):
+    """Test information from closed forms that never divide by a probability: 2PL
+    (D a)^2 P Q and 3PL (D a)^2 (Q / P) ((P - c) / (1 - c))^2 (Lord 1980, ch. 5), GPCM
+    (D a)^2 Var(X) (Muraki 1992)."""
+    from scipy.special import expit, softmax
+
+    total = 0.0
+    for it in items:
+        a = it["a"]
+        if it["model"] == "GPCM":
+            p = softmax(np.concatenate([[0.0], np.cumsum(D * a * (theta - np.asarray(it["thresholds"], float)))]))
+            k = np.arange(p.size)
+            total += (D * a) ** 2 * float(np.sum(p * (k - np.sum(p * k)) ** 2))
+            continue
+        z = D * a * (theta - it["b"])
+        c = it.get("c", 0.0)
+        if c == 0.0:
+            total += (D * a) ** 2 * float(expit(z) * expit(-z))
+        else:
+            p = c + (1 - c) * float(expit(z))
+            total += (D * a) ** 2 * ((1 - p) / p) * ((p - c) / (1 - c)) ** 2
+    return total
+
+
+STEEP_RIGHT = {"item_id": "steep_hard", "model": "2PL", "a": 50.0, "b": 20.0}
+STEEP_WRONG = {"item_id": "steep_easy", "model": "2PL", "a": 50.0, "b": -20.0}
+WILD_STEPS = {"item_id": "wild", "model": "GPCM", "a": 50.0, "thresholds": [-20.0, 20.0, -20.0, 20.0]}
+PLAIN = {"item_id": "plain", "model": "2PL", "a": 1.0, "b": 0.0}
+
+
+@pytest.mark.parametrize("items, resp, bounds", [
+    ([STEEP_RIGHT], [1], (-25.0, 25.0)),  # interior mode near b = 20
+    ([STEEP_WRONG], [0], (-25.0, 25.0)),  # interior mode near b = -20
+    ([STEEP_RIGHT, PLAIN], [1, 0], (-25.0, 25.0)),
+    ([STEEP_RIGHT], [1], (-6.0, 6.0)),  # the posterior still rises at the upper bound
+])
+def test_map_of_steep_far_items_matches_scipy(items, resp, bounds):
+    """Regression: with a = 50 items at b = +-20 MAP returned exactly the prior (0, 1)
+    because P'/P of an underflowed probability came out 0.  Oracle:
+    scipy.optimize.minimize_scalar (bounded) on the log-space log posterior with a N(0, 1)
+    prior (scipy.stats.norm.logpdf)."""
+    lo, hi = bounds
+
+    def log_post(t):
+        return ref_log_lik(items, resp, t) + stats.norm.logpdf(t)
+
+    ref = global_max(log_post, lo, hi)
+    theta, se, status = project_estimate(items, resp, "map", bounds=bounds)
+    assert theta == pytest.approx(ref, abs=1e-4)
+    assert np.isfinite(se) and 0 < se <= 1.0  # never wider than the prior
+
+
+@pytest.mark.parametrize("items, resp", [
+    ([WILD_STEPS, PLAIN], [2, 1]),
+    ([WILD_STEPS, PLAIN, dict(PLAIN, item_id="plain_too", b=0.5)], [2, 1, 0]),
+])
+def test_mle_with_an_underflowing_observed_category_matches_scipy(items, resp):
+    """Regression: after a middle-category answer to a GPCM item with a = 50 and steps
+    (-20, 20, -20, 20) the observed category's probability underflows away from theta = 0
+    and the MLE ran to the bound.  Oracle: scipy.optimize.minimize_scalar (bounded) on the
+    log-space likelihood; Lord (1980) for the SE."""
+    ref = global_max(lambda t: ref_log_lik(items, resp, t))
+    theta, se, status = project_estimate(items, resp, "mle")
+    assert status == "converged"
+    assert theta == pytest.approx(ref, abs=1e-4)
+    assert se == pytest.approx(1 / math.sqrt(ref_information_closed(items, ref)), rel=1e-6)
+
+
+@pytest.mark.parametrize("items, resp", [
+    ([STEEP_RIGHT], [1]), ([STEEP_WRONG], [0]),  # all right / all wrong on extreme items
+    ([PLAIN], [1]), ([PLAIN], [0]),  # a one-item bank
+    ([STEEP_RIGHT, STEEP_WRONG], [1, 0]),  # a flat likelihood on the whole range
+    ([{"item_id": "far3pl", "model": "3PL", "a": 3.0, "b": -20.0, "c": 0.2}], [1]),
+])
+@pytest.mark.parametrize("method", estimation.METHODS)
+def test_every_estimate_and_se_is_finite_with_a_status(items, resp, method):
+    """The SE at a bound is a number: 1 / sqrt(I(theta_hat)) (Lord 1980), capped at the
+    width of the ability range where that runs past it (our rule, see the module docs)."""
+    lo, hi = -6.0, 6.0
+    theta, se, status = project_estimate(items, resp, method, bounds=(lo, hi))
+    assert np.isfinite(theta) and np.isfinite(se) and 0 < se <= hi - lo
+    assert status in estimation.STATUSES
+    if method in ("mle", "wle"):
+        info = ref_information_closed(items, theta)
+        assert se == pytest.approx(min(1 / math.sqrt(info) if info > 0 else math.inf, hi - lo), rel=1e-6)
+    if len(items) == 1 and method == "mle":
+        assert theta == (hi if resp[0] else lo)
+        assert status == ("all_highest" if resp[0] else "all_lowest")
+
+
+def test_statuses_say_when_the_answers_carry_no_information():
+    # right on an item 20 logits above theta and wrong on one 20 below: the likelihood is
+    # flat to double precision on [-6, 6]
+    items, resp = [STEEP_RIGHT, STEEP_WRONG], [1, 0]
+    assert abs(ref_log_lik(items, resp, -6.0) - ref_log_lik(items, resp, 6.0)) < 1e-9
+    assert project_estimate(items, resp, "mle")[2] == "no_information"
+    for method in ("map", "eap"):
+        theta, se, status = project_estimate(items, resp, method, prior_mean=0.3, prior_sd=0.9)
+        assert status == "prior_dominated"
+        assert theta == pytest.approx(0.3, abs=1e-3) and se == pytest.approx(0.9, abs=1e-3)
+    # an ordinary answer moves the estimate off the prior
+    assert project_estimate([PLAIN], [1], "eap")[2] == "all_highest"

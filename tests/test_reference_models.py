@@ -200,3 +200,61 @@ def test_graded_information_samejima_closed_form(thr, a, theta):
     ref = np.sum((dstar[:-1] - dstar[1:]) ** 2 / p)
     params = records_to_parameters([{"model": "GRM", "a": a, "thresholds": thr}])
     np.testing.assert_allclose(models.information(params, theta)[0], ref, rtol=1e-8, atol=1e-12)
+
+
+# ----------------------------------------------------------------------------------------
+# derivatives of log P: against finite differences of the published formulas, and finite
+# where the probabilities themselves underflow
+
+
+def _reference_log_probs(rec, theta, D):
+    """log P_k at scalar theta from the published formulas, in log space (scipy.special)."""
+    from scipy.special import log_expit, logsumexp
+
+    if rec["model"] == "GPCM":  # Muraki (1992)
+        numer = np.concatenate([[0.0], np.cumsum(D * rec["a"] * (theta - np.asarray(rec["thresholds"])))])
+        return numer - logsumexp(numer)
+    if rec["model"] == "GRM":  # Samejima (1969), P*_k - P*_{k+1} = P*_k Q*_{k+1} (1 - e^{z_{k+1} - z_k})
+        z = np.concatenate([[np.inf], D * rec["a"] * (theta - np.asarray(rec["thresholds"])), [-np.inf]])
+        with np.errstate(invalid="ignore"):
+            return log_expit(z[:-1]) + log_expit(-z[1:]) + np.log(-np.expm1(z[1:] - z[:-1]))
+    p1 = logistic_4pl(theta, rec["a"], rec["b"], rec.get("c", 0.0), rec.get("d", 1.0), D)  # Barton & Lord
+    return np.log([1 - p1, p1])
+
+
+@SETTINGS
+@given(st.one_of(graded_items(), partial_credit_items(),
+                 st.builds(lambda a, b, c, d: {"model": "4PL", "a": a, "b": b, "c": c, "d": d},
+                           st.floats(0.3, 2.5), st.floats(-3, 3), st.floats(0, 0.3), st.floats(0.8, 1.0))),
+       thetas(-4, 4), st.sampled_from([1.0, 1.702]))
+def test_log_derivatives_match_finite_differences_of_the_published_formulas(rec, theta, D):
+    params = records_to_parameters([rec], scaling=D)
+    score, curvature = models.log_derivatives(params, np.array([theta]))
+    k = len(rec.get("thresholds", [0])) + 1
+    h = 1e-4
+    lp = [_reference_log_probs(rec, theta + s * h, D) for s in (-1, 0, 1)]
+    np.testing.assert_allclose(score[0, :k], (lp[2] - lp[0]) / (2 * h), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(curvature[0, :k], (lp[2] - 2 * lp[1] + lp[0]) / h**2, rtol=1e-3, atol=1e-4)
+    assert np.all(score[0, k:] == 0) and np.all(curvature[0, k:] == 0)
+
+
+def test_log_derivatives_stay_exact_where_probabilities_underflow():
+    # a = 50 items 20 logits away: P of the unexpected category is about exp(-1000), 0 in
+    # double precision, yet d log P / d theta is plain arithmetic in the published formulas:
+    # 2PL: d log P_1 / d theta = D a (1 - P_1) (Birnbaum's logistic); GPCM: D a (k - E[X])
+    # (Muraki 1992); GRM: D a (1 - P*_k - P*_{k+1}) (Samejima 1969).
+    recs = [{"model": "2PL", "a": 50.0, "b": 20.0},
+            {"model": "GPCM", "a": 50.0, "thresholds": [-20.0, 20.0, -20.0, 20.0]},
+            {"model": "GRM", "a": 50.0, "thresholds": [-20.0, 20.0]}]
+    params = records_to_parameters(recs)
+    p = models.probabilities(params, np.zeros(3))
+    assert p[0, 1] == 0 and p[1, 2] == 0 and p[2, 2] == 0  # underflowed
+    score, curvature = models.log_derivatives(params, np.zeros(3))
+    assert score[0, 1] == pytest.approx(50.0)
+    # GPCM at 0: categories 1 and 3 share the mass, E[X] = 2, Var = 1
+    np.testing.assert_allclose(score[1, :5], 50.0 * (np.arange(5) - 2.0), rtol=1e-12, atol=1e-9)
+    np.testing.assert_allclose(curvature[1, :5], -2500.0, rtol=1e-12)
+    # GRM at 0: P*_1 = 1 and P*_2 = 0, so the underflowed categories 0 and 2 have scores
+    # D a (1 - P*_0 - P*_1) = -50 and D a (1 - P*_2 - P*_3) = 50
+    assert score[2, 0] == pytest.approx(-50.0) and score[2, 2] == pytest.approx(50.0)
+    assert np.all(np.isfinite(score)) and np.all(np.isfinite(curvature))

@@ -166,6 +166,27 @@ def test_a_stratified_moves_from_low_to_high_discrimination():
         assert stratum_of[given].tolist() == [0, 0, 0, 1, 1, 1, 2, 2, 2]
 
 
+@pytest.mark.parametrize("exposure, blueprint", [
+    (Exposure(method="progressive"), Blueprint()),
+    (Exposure(), Blueprint(method="max_priority_index",
+                           areas=tuple(AreaRule(name=a, min=0, max=4) for a in ("alpha", "beta", "gamma")))),
+])
+def test_a_stratified_keeps_its_strata_under_weights_and_progressive_exposure(exposure, blueprint):
+    # Regression: items outside the current stratum have value -inf; the progressive
+    # method's weight 0 (and a priority of 0) turned that into NaN, and argmax picked the
+    # first NaN item -- the same item of the top stratum opened every test.  The stage
+    # schedule of Chang & Ying (1999) must hold whatever the exposure method.
+    bank = dichotomous_bank()
+    design = Design(selection=Selection(criterion="a_stratified", strata=3, b_blocking=False), exposure=exposure,
+                    blueprint=blueprint, stopping=Stopping(min_items=9, max_items=9))
+    ctx, state, rows = started(design, bank, n=8, answers=(1, 0, 1, 0, 1, 1, 0, 1, 0))
+    order = np.argsort(bank.a, kind="stable")
+    stratum_of = np.empty(bank.n_items, dtype=int)
+    stratum_of[order] = np.arange(bank.n_items) * 3 // bank.n_items
+    for r in rows:
+        assert stratum_of[state.items[r, :9]].tolist() == [0, 0, 0, 1, 1, 1, 2, 2, 2]
+
+
 def test_b_blocking_spreads_every_stratum_over_the_difficulty_range():
     # Chang, Qian & Ying (2001): blocks of k items adjacent in b, one per stratum by a.
     bank = dichotomous_bank()

@@ -273,6 +273,16 @@ def test_nothing_but_no_eligible_item_stops_before_minimum(fire, n):
     assert got == ("no_eligible_item" if "no_eligible_item" in fire else "")
 
 
+@settings(max_examples=60, deadline=None)
+@given(fire=st.sets(st.sampled_from(stopping.STOP_PRECEDENCE)), n=st.integers(0, 20))
+def test_held_back_tests_stop_only_at_the_hard_ends(fire, n):
+    # A test held back (a blueprint minimum unmet) stops at max_items and when no item is
+    # eligible, whatever else fires at the same step -- even a rule that outranks them.
+    got = stopping.stop_reasons(FULL_RULES, **_inputs(fire, n_scored=n), held=np.array([True]))[0]
+    expected = next((r for r in ("max_items", "no_eligible_item") if r in fire), "")
+    assert got == expected
+
+
 def test_max_items_stops_even_below_an_inconsistent_minimum():
     rules = design.Stopping(min_items=10, max_items=4, se=0.3)
     got = stopping.stop_reasons(rules, n_scored=np.array([4, 3]), se=np.array([0.1, 0.1]))

@@ -55,7 +55,8 @@ def score(bank_file, responses_file, method, prior_mean, prior_sd, scaling, outp
     RESPONSES is a long CSV with columns person_id,item_id,response.  Prints one row per
     person, in order of first appearance: person_id, theta, se, n_items.  --with-status
     adds a status column (converged, no_responses, all_lowest, all_highest,
-    at_lower_bound, at_upper_bound, not_converged), which JSON output always carries.
+    at_lower_bound, at_upper_bound, not_converged, no_information, prior_dominated),
+    which JSON output always carries.  theta and se are always finite numbers.
     """
     _check_prior(prior_mean, prior_sd)
     bank = load_bank(bank_file, scaling=scaling)

@@ -18,7 +18,7 @@ import numpy as np
 from ..bank.item_bank import ItemBank
 from ..errors import DesignError, Problem
 from ..irt import models
-from .toml_file import toml_key, validate_design
+from .toml_file import key_problems, toml_key, validate_design
 from .types import Design
 
 
@@ -74,9 +74,15 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
         Located at the design key concerned (``"[blueprint.areas.x] min"``).
     """
     problems = list(validate_design(design))
+    if problems and key_problems(design):
+        # the checks below read the design's values: they must be valid on their own first
+        return problems
     st, bp, sel, ex = design.stopping, design.blueprint, design.selection, design.exposure
     operational = np.asarray(bank.status == "operational")
     n_operational = int(operational.sum())
+    if bp.item_sets:
+        # items of a set that no area maximum lets in can never be given
+        operational = operational & ~_sets_beyond_area_maximums(design, bank, problems)
     count = dict(enemies=bp.enemies, item_sets=bp.item_sets, max_items=st.max_items)
     usable = usable_item_count(bank, operational, **count)
     rules_note = _rules_note(bp)
@@ -92,6 +98,8 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
                                         f"item set {name!r} has {size} items, more than max_items "
                                         f"({st.max_items}): it can never be given whole"))
     problems += _area_problems(design, bank, operational, count, rules_note)
+    if bp.areas:
+        problems += _length_problems(design, bank, operational)
     if bp.pretest_positions:
         n_pretest = int(np.sum(bank.status == "pretest"))
         if n_pretest < len(bp.pretest_positions):
@@ -117,6 +125,44 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
     if sel.criterion == "a_stratified":
         problems += _stratification_problems(design, bank, operational)
     return problems
+
+
+def _sets_beyond_area_maximums(design, bank, problems) -> np.ndarray:
+    """bool (n,): items of sets holding more items of an area than its ``max``; each such set
+    is added to ``problems``."""
+    caps = {r.name: r.max for r in design.blueprint.areas if r.max is not None}
+    lost = np.zeros(bank.n_items, dtype=bool)
+    if not caps:
+        return lost
+    members: dict[str, list[int]] = {}
+    for i, (s, status) in enumerate(zip(bank.item_set, bank.status)):
+        if s and status == "operational":
+            members.setdefault(str(s), []).append(i)
+    for name, rows in sorted(members.items()):
+        counts = Counter(str(bank.area[i]) for i in rows)
+        over = [(a, k) for a, k in sorted(counts.items()) if a in caps and k > caps[a]]
+        if over:
+            lost[rows] = True
+            area, k = over[0]
+            problems.append(Problem("[blueprint] item_sets",
+                                    f"item set {name!r} has {k} items of area {area!r}, more than its max "
+                                    f"({caps[area]}): it can never be given whole"))
+    return lost
+
+
+def _length_problems(design, bank, operational) -> list[Problem]:
+    """min_items out of reach when every area the bank uses is capped by a ``max``."""
+    st = design.stopping
+    caps = {r.name: r.max for r in design.blueprint.areas}
+    used = {str(a) for a, ok in zip(bank.area, operational) if ok}
+    if not used or any(caps.get(a) is None for a in used):
+        return []
+    reachable = sum(min(caps[a], int(np.sum(operational & (np.asarray(bank.area) == a)))) for a in used)
+    if reachable < st.min_items:
+        return [Problem("[stopping] min_items",
+                        f"the area maximums let a test reach at most {reachable} scored items, fewer than "
+                        f"min_items ({st.min_items})")]
+    return []
 
 
 def _rules_note(bp) -> str:

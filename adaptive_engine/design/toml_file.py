@@ -7,8 +7,9 @@ Public functions
 :func:`design_from_dict`
     The same validation for a plain mapping (e.g. a design stored with a session).
 :func:`validate_design`
-    Cross-field problems of a constructed design (``min_items > max_items``, a cut outside
-    the grid, ...); the reader runs it, and so may code that builds designs by hand.
+    Problems of a constructed design: every key on its own (type, range: :func:`key_problems`),
+    then the rules between keys (``min_items > max_items``, a cut outside the grid, ...);
+    the reader runs it, and so does every entry point that takes a design built in code.
 :func:`design_to_toml` / :func:`design_as_dict`
     A design back to TOML text (``parse_design(design_to_toml(d)) == d``) or to plain
     dicts and lists.
@@ -56,12 +57,32 @@ from .types import (
 SECTIONS = ("opening", "scoring", "selection", "exposure", "blueprint", "stopping", "reporting")
 
 #: Bounds that keep the quadrature grid usable: fewer than 21 points cannot resolve a
-#: posterior of SD 0.3 on a 12-logit range; more than 20,001 only costs memory.
+#: posterior of SD 0.3 on a 12-logit range; more than 2,001 only cost memory (the kernel
+#: holds a bank x grid table and a batch x grid posterior).
 MIN_GRID_POINTS = 21
-MAX_GRID_POINTS = 20001
+MAX_GRID_POINTS = 2001
+#: The ability scale the design may use: the grid (and with it every theta the design
+#: names, the prior mean and the estimates) lies within +-GRID_LIMIT logits.  Abilities
+#: beyond +-6 are rare, beyond +-20 meaningless, and the arithmetic stays far from overflow.
+GRID_LIMIT = 20.0
+#: Prior SD: from a very informative prior to one that is flat on any grid.
+PRIOR_SD_RANGE = (0.01, 100.0)
+#: Longest test (scored items) and most items a count option may name.
+MAX_TEST_LENGTH = 1000
+MAX_COUNT = 1000
 MAX_DECIMALS = 10
 #: Largest design file read, in bytes (1 MiB; the shipped designs have 1-3 KB).
 MAX_DESIGN_FILE_BYTES = 2**20
+#: Reported scale: |slope| in this range, |intercept| and |min|, |max| at most these, so
+#: that every scaled score and interval end is an ordinary decimal number.
+SCALE_SLOPE_RANGE = (1e-4, 1e4)
+MAX_SCALE_INTERCEPT = 1e6
+MAX_SCALE_BOUND = 1e7
+#: Interval levels: above 0.9999 the normal quantile runs towards infinity in double
+#: precision (0.5 + 0.5 * level rounds to 1).
+MAX_CONFIDENCE = 0.9999
+#: Seconds: 116 days is longer than any sitting.
+MAX_TIME_LIMIT = 1e7
 
 
 # ----------------------------------------------------------------------------------------
@@ -97,6 +118,27 @@ def _nonzero(x):
     return None if x != 0 else "must not be 0"
 
 
+def _above_at_most(lo, hi):
+    def check(x):
+        return None if lo < x <= hi else f"must lie in ({lo:g}, {hi:g}], got {x!r}"
+
+    return check
+
+
+def _magnitude_between(lo, hi):
+    def check(x):
+        return None if lo <= abs(x) <= hi else f"must be {lo:g} to {hi:g} in size (either sign), got {x!r}"
+
+    return check
+
+
+def _within(limit):
+    def check(x):
+        return None if abs(x) <= limit else f"must lie in [{-limit:g}, {limit:g}], got {x!r}"
+
+    return check
+
+
 @attrs.frozen
 class _Key:
     """How one key is read: its TOML kind, an optional range check, allowed values."""
@@ -107,31 +149,31 @@ class _Key:
 
 
 _OPENING = {
-    "theta": _Key("float"),
+    "theta": _Key("float", _within(GRID_LIMIT)),
     "random_theta": _Key("interval"),
-    "first_items_from_top": _Key("int", _at_least(1)),
+    "first_items_from_top": _Key("int", _between(1, MAX_COUNT)),
 }
 _SCORING = {
     "method": _Key("choice", choices=SCORING_METHODS),
-    "prior_mean": _Key("float"),
-    "prior_sd": _Key("float", _positive),
+    "prior_mean": _Key("float", _within(GRID_LIMIT)),
+    "prior_sd": _Key("float", _between(*PRIOR_SD_RANGE)),
     "until_mixed": _Key("choice", choices=UNTIL_MIXED),
-    "fixed_step": _Key("float", _positive),
-    "grid_min": _Key("float"),
-    "grid_max": _Key("float"),
+    "fixed_step": _Key("float", _between(0.01, 5.0)),
+    "grid_min": _Key("float", _within(GRID_LIMIT)),
+    "grid_max": _Key("float", _within(GRID_LIMIT)),
     "grid_points": _Key("int", _between(MIN_GRID_POINTS, MAX_GRID_POINTS)),
 }
 _SELECTION = {
     "criterion": _Key("choice", choices=CRITERIA),
-    "kl_interval": _Key("float", _positive),
-    "strata": _Key("int", _at_least(1)),
+    "kl_interval": _Key("float", _between(0.01, 10.0)),
+    "strata": _Key("int", _between(1, MAX_COUNT)),
     "b_blocking": _Key("bool"),
 }
 _EXPOSURE = {
     "method": _Key("choice", choices=EXPOSURE_METHODS),
-    "candidates": _Key("int", _at_least(1)),
+    "candidates": _Key("int", _between(1, MAX_COUNT)),
     "parameters": _Key("str"),
-    "acceleration": _Key("float", _positive),
+    "acceleration": _Key("float", _between(0.01, 100.0)),
 }
 _BLUEPRINT = {
     "method": _Key("choice", choices=BLUEPRINT_METHODS),
@@ -141,43 +183,43 @@ _BLUEPRINT = {
     "shadow_test": _Key("bool"),
 }
 _AREA = {
-    "min": _Key("int", _at_least(0)),
-    "max": _Key("int", _at_least(0)),
+    "min": _Key("int", _between(0, MAX_TEST_LENGTH)),
+    "max": _Key("int", _between(0, MAX_TEST_LENGTH)),
     "share": _Key("float", lambda x: None if 0 < x <= 1 else f"must lie in (0, 1], got {x!r}"),
 }
 _STOPPING = {
-    "min_items": _Key("int", _at_least(1)),
-    "max_items": _Key("int", _at_least(1)),
-    "se": _Key("float", _positive),
-    "se_reduction": _Key("float", _positive),
-    "min_information": _Key("float", _positive),
-    "time_limit": _Key("float", _positive),
+    "min_items": _Key("int", _between(1, MAX_TEST_LENGTH)),
+    "max_items": _Key("int", _between(1, MAX_TEST_LENGTH)),
+    "se": _Key("float", _between(0.001, 10.0)),
+    "se_reduction": _Key("float", _between(1e-6, 10.0)),
+    "min_information": _Key("float", _between(1e-6, 1e4)),
+    "time_limit": _Key("float", _above_at_most(0, MAX_TIME_LIMIT)),
 }
 _SPRT = {
-    "cut": _Key("float"),
-    "indifference": _Key("float", _positive),
+    "cut": _Key("float", _within(GRID_LIMIT)),
+    "indifference": _Key("float", _between(0.01, 5.0)),
     "alpha": _Key("float", _open_interval(0, 0.5)),
     "beta": _Key("float", _open_interval(0, 0.5)),
 }
 _CONFIDENCE = {
-    "cut": _Key("float"),
-    "confidence": _Key("float", _open_interval(0, 1)),
+    "cut": _Key("float", _within(GRID_LIMIT)),
+    "confidence": _Key("float", _above_at_most(0, MAX_CONFIDENCE)),
 }
 _REPORTING = {
     "final_method": _Key("choice", choices=SCORING_METHODS),
-    "confidence": _Key("float", _open_interval(0, 1)),
-    "person_fit_threshold": _Key("float"),
+    "confidence": _Key("float", _above_at_most(0, MAX_CONFIDENCE)),
+    "person_fit_threshold": _Key("float", _within(10.0)),
 }
 _SCALE = {
-    "slope": _Key("float", _nonzero),
-    "intercept": _Key("float"),
+    "slope": _Key("float", _magnitude_between(*SCALE_SLOPE_RANGE)),
+    "intercept": _Key("float", _within(MAX_SCALE_INTERCEPT)),
     "decimals": _Key("int", _between(0, MAX_DECIMALS)),
-    "min": _Key("float"),
-    "max": _Key("float"),
+    "min": _Key("float", _within(MAX_SCALE_BOUND)),
+    "max": _Key("float", _within(MAX_SCALE_BOUND)),
 }
 _CUT_SCORE = {
     "name": _Key("str"),
-    "theta": _Key("float"),
+    "theta": _Key("float", _within(GRID_LIMIT)),
     "above": _Key("str"),
     "below": _Key("str"),
 }
@@ -420,7 +462,11 @@ def validate_design(design: Design) -> list[Problem]:
         Empty when the design is consistent in itself (a bank may still not fit it:
         see :func:`adaptive_engine.design.bank_fit.check_design_against_bank`).
     """
-    problems: list[Problem] = []
+    problems = key_problems(design)
+    if problems:
+        # a design built in code, not read from a file: the rules between keys assume
+        # every key is valid on its own
+        return problems
     sc, st, bp, rp = design.scoring, design.stopping, design.blueprint, design.reporting
     lo, hi = sc.grid_min, sc.grid_max
     grid_ok = lo < hi
@@ -457,6 +503,43 @@ def validate_design(design: Design) -> list[Problem]:
         on_grid(cut.theta, f"[[reporting.cut_scores]] #{i} theta", f"cut score {cut.name!r}")
         if names.index(cut.name) != i - 1:
             problems.append(Problem(f"[[reporting.cut_scores]] #{i} name", f"cut score name {cut.name!r} repeats"))
+    return problems
+
+
+def key_problems(design: Design) -> list[Problem]:
+    """Every key of a constructed design checked on its own, as the reader checks it (type
+    and range; :func:`validate_design` runs it first).
+
+    A design read from a file passed these checks already; one built in code (or changed
+    with ``attrs.evolve``) has not, and must not reach the kernel with, say, a grid bound
+    of 1e300.
+    """
+    problems: list[Problem] = []
+
+    def check(obj, keys, where):
+        for name, key in keys.items():
+            value = getattr(obj, name)
+            if value is None:
+                continue
+            if isinstance(value, tuple):
+                value = list(value)
+            _, problem = _convert(value, key)
+            if problem:
+                problems.append(Problem(f"{where} {name}", problem))
+
+    for name, keys in (("opening", _OPENING), ("scoring", _SCORING), ("selection", _SELECTION),
+                       ("exposure", _EXPOSURE), ("blueprint", _BLUEPRINT), ("stopping", _STOPPING),
+                       ("reporting", _REPORTING)):
+        check(getattr(design, name), keys, f"[{name}]")
+    for rule in design.blueprint.areas:
+        check(rule, _AREA, f"[blueprint.areas.{toml_key(rule.name)}]")
+    if design.stopping.sprt is not None:
+        check(design.stopping.sprt, _SPRT, "[stopping.sprt]")
+    if design.stopping.confidence_interval is not None:
+        check(design.stopping.confidence_interval, _CONFIDENCE, "[stopping.confidence_interval]")
+    check(design.reporting.scale, _SCALE, "[reporting.scale]")
+    for i, cut in enumerate(design.reporting.cut_scores, start=1):
+        check(cut, _CUT_SCORE, f"[[reporting.cut_scores]] #{i}")
     return problems
 
 

@@ -16,19 +16,40 @@ rows.
 
 Status strings
 --------------
+Every estimate is a finite number with a finite standard error; the status says what
+happened (:data:`STATUSES`):
+
 ``"no_responses"``
-    Nothing answered: EAP and MAP return the prior mean and prior SD; MLE and WLE have no
-    estimate and return ``theta = nan``, ``se = inf``.
+    Nothing answered: every method reports the prior mean and prior SD (MLE and WLE have
+    no likelihood to maximise; the prior is what is known).
 ``"all_lowest"`` / ``"all_highest"``
     Every answer is in its item's lowest / highest category.  The value follows the method:
     the likelihood of such a pattern keeps rising towards -inf / +inf, so the MLE returns the
     lower / upper bound of ``bounds`` with the standard error at that bound; MAP, EAP and WLE
     are finite (WLE for 2PL/GRM/GPCM items; with a lower asymptote c > 0 it may still reach
-    the bound).
+    a bound).
 ``"converged"``, ``"at_lower_bound"``, ``"at_upper_bound"``, ``"not_converged"``
-    Outcome for any other pattern (EAP is always ``"converged"``).  An MLE of a mixed
+    Outcome for any other pattern (EAP: ``"converged"``).  An MLE of a mixed
     pattern can legitimately sit at a bound when asymptotes c > 0 or d < 1 flatten the
     likelihood: it is found from the likelihood, never from the model names.
+``"no_information"`` (MLE, WLE)
+    A mixed pattern whose solution is interior but where the answered items carry no usable
+    information (``1 / sqrt(I)`` beyond the width of ``bounds``): the likelihood is flat,
+    e.g. right on an item far above and wrong on one far below, so the value is arbitrary.
+``"prior_dominated"`` (MAP, EAP)
+    The answers moved neither the estimate nor its standard error by more than
+    :data:`PRIOR_DOMINATED_SHARE` of the prior SD: the result is the prior's.
+
+Standard errors are capped at the width of ``bounds`` (``hi - lo``; for EAP the posterior SD
+never comes near it): where the items carry (next to) no information at the estimate,
+``1 / sqrt(I)`` runs to astronomical values or infinity, which beyond the width of the
+ability range only says "anywhere in the range" -- the cap says the same with a number
+(:func:`capped_standard_error`).  So "the standard error at the bound" is
+``min(1 / sqrt(I(bound)), hi - lo)``.
+
+Steep items far from theta make category probabilities underflow; the Newton steps then
+take ``d log P / d theta`` from closed forms (:func:`adaptive_engine.models.log_derivatives`)
+instead of ``P' / P``, so the estimates keep moving where the likelihood still rises.
 """
 
 from __future__ import annotations
@@ -51,6 +72,9 @@ DEFAULT_CHUNK_SIZE = 2_000
 #: :func:`grid_refinement`): 0.05 is enough for posterior SDs down to about 0.125.
 GRID_STEP = 0.05
 _TOLERANCE = 1e-10
+#: Below this probability of the observed category, P'/P is taken from the closed-form log
+#: derivatives (:func:`adaptive_engine.models.log_derivatives`) rather than by division.
+_TINY_PROBABILITY = 1e-280
 _MAX_ITERATIONS = 200
 
 CONVERGED = "converged"
@@ -60,7 +84,15 @@ ALL_HIGHEST = "all_highest"
 AT_LOWER_BOUND = "at_lower_bound"
 AT_UPPER_BOUND = "at_upper_bound"
 NOT_CONVERGED = "not_converged"
-_SOLVER_STATUS = np.array([CONVERGED, AT_LOWER_BOUND, AT_UPPER_BOUND, NOT_CONVERGED], dtype=object)
+NO_INFORMATION = "no_information"
+PRIOR_DOMINATED = "prior_dominated"
+#: Every status an estimate can have (see the module docstring).
+STATUSES = (CONVERGED, NO_RESPONSES, ALL_LOWEST, ALL_HIGHEST, AT_LOWER_BOUND, AT_UPPER_BOUND,
+            NOT_CONVERGED, NO_INFORMATION, PRIOR_DOMINATED)
+_SOLVER_STATUS = np.array([CONVERGED, AT_LOWER_BOUND, AT_UPPER_BOUND, NOT_CONVERGED, NO_INFORMATION], dtype=object)
+#: MAP and EAP estimates within this share of the prior SD of the prior mean, with an SE
+#: within the same share of the prior SD, are ``prior_dominated``.
+PRIOR_DOMINATED_SHARE = 0.01
 
 
 def _readonly(dtype):
@@ -398,7 +430,7 @@ def _posterior_moments(log_post, grid):
     w /= np.sum(w, axis=-1, keepdims=True)
     mean = np.sum(w * grid, axis=-1)
     var = np.sum(w * (grid - mean[:, None]) ** 2, axis=-1)
-    return mean, np.sqrt(np.maximum(var, 0.0))
+    return mean, np.maximum(np.sqrt(np.maximum(var, 0.0)), ability.resolution_floor(grid))
 
 
 def _grid_pass(data: _Data, mean, sd, grid, chunk_size, bounds=None):
@@ -432,6 +464,19 @@ def _grid_pass(data: _Data, mean, sd, grid, chunk_size, bounds=None):
                 out[2, r] = grid_g[np.argmax(log_lik, axis=1)]
                 out[3, r] = grid_g[np.argmax(log_post, axis=1)]
     return out[0], out[1], out[2], out[3]
+
+
+def eap_status(bank_or_params, items, responses, theta, se, *, prior_mean=0.0, prior_sd=1.0) -> np.ndarray:
+    """Status of EAP estimates computed elsewhere (the kernel's running posterior), (P,).
+
+    The statuses :func:`eap` gives: ``no_responses``, ``prior_dominated``, ``all_lowest``,
+    ``all_highest`` or ``converged``.
+    """
+    data = _prepare(bank_or_params, items, responses)
+    mean, sd = _priors(prior_mean, prior_sd, data.items.shape[0])
+    status = np.where(data.pattern_status == "", CONVERGED, data.pattern_status)
+    return _mark_prior_dominated(status, np.asarray(theta, dtype=float), np.asarray(se, dtype=float),
+                                 mean, sd, data.n_items)
 
 
 def _eap_arrays(data: _Data, mean, sd, grid, chunk_size):
@@ -471,6 +516,7 @@ def eap(bank_or_params, items, responses, *, prior_mean=0.0, prior_sd=1.0, grid=
     mean, sd = _priors(prior_mean, prior_sd, data.items.shape[0])
     theta, se = _eap_arrays(data, mean, sd, grid, chunk_size)
     status = np.where(data.pattern_status == "", CONVERGED, data.pattern_status)
+    status = _mark_prior_dominated(status, theta, se, mean, sd, data.n_items)
     return AbilityEstimates(theta=theta, se=se, n_items=data.n_items, method="eap", status=status)
 
 
@@ -502,6 +548,15 @@ def _derivative_sums(params, items, responses, theta) -> _Sums:
     d2p_x = np.take_along_axis(d2p, idx, axis=-1)[..., 0]
     ratio = _safe_ratio(dp_x, p_x)
     observed = _safe_ratio(d2p_x, p_x) - ratio**2
+    tiny = answered & ~(p_x > _TINY_PROBABILITY)
+    if tiny.any():
+        # a steep item far from theta: its observed category's probability has (nearly)
+        # underflowed and P'/P is 0/0 -- take the log derivatives from their closed forms
+        # instead, or the estimate stalls where the likelihood is still rising
+        r, r2 = models.log_derivatives(params.take(items[tiny]), theta[np.nonzero(tiny)[0]])
+        k = idx[tiny]
+        ratio[tiny] = np.take_along_axis(r, k, axis=-1)[:, 0]
+        observed[tiny] = np.take_along_axis(r2, k, axis=-1)[:, 0]
     info = _safe_ratio(dp**2, p).sum(axis=-1)
     warm_j = _safe_ratio(dp * d2p, p).sum(axis=-1)
     return _Sums(*(_row_sum(np.where(answered, x, 0.0)) for x in (ratio, observed, info, warm_j)))
@@ -629,18 +684,43 @@ def _newton_estimates(method, data: _Data, mean, sd, bounds, start, grid, chunk_
 
         theta[part], code[part] = _solve(evaluate, start[part], lo, hi)
         final = _derivative_sums(data.params, items, resp, theta[part])
-        with np.errstate(divide="ignore"):
-            if method == "map":
-                # posterior curvature: observed second derivative of the log-likelihood
-                curvature = -(final.observed - 1.0 / v**2)
-                se[part] = np.where(curvature > 0, 1.0 / np.sqrt(np.maximum(curvature, 1e-300)), np.inf)
-            else:
-                se[part] = 1.0 / np.sqrt(final.information)
+        # posterior curvature (MAP: observed second derivative of the log-likelihood minus
+        # the prior's), or the test information (MLE, WLE)
+        precision = -(final.observed - 1.0 / v**2) if method == "map" else final.information
+        se[part] = capped_standard_error(precision, hi - lo)
+        if method != "map":
+            # an interior "optimum" of a likelihood with no information there is arbitrary
+            no_information = (code[part] == 0) & ~(final.information * (hi - lo) ** 2 > 1.0)
+            code[part] = np.where(no_information, 4, code[part])
     status = np.where(data.pattern_status == "", _SOLVER_STATUS[code], data.pattern_status)
+    empty = data.n_items == 0
     if method in ("mle", "wle"):
-        empty = data.n_items == 0
-        theta[empty], se[empty] = np.nan, np.inf
+        # no answer, no likelihood: report the prior, as MAP and EAP do, and say so
+        theta[empty], se[empty] = np.clip(mean[empty], lo, hi), np.minimum(sd[empty], hi - lo)
+    else:
+        status = _mark_prior_dominated(status, theta, se, mean, sd, data.n_items)
     return AbilityEstimates(theta=theta, se=se, n_items=data.n_items, method=method, status=status)
+
+
+def capped_standard_error(precision, width: float) -> np.ndarray:
+    """``1 / sqrt(precision)``, never above ``width`` (the ability range), shape of ``precision``.
+
+    Where the answered items carry (next to) no information at the estimate -- all answers
+    right on easy items at the upper bound, steep items far away -- ``1 / sqrt(I)`` runs to
+    astronomical values or infinity.  Beyond the width of the ability range such a value
+    only says "anywhere in the range"; the cap says the same with a finite number, so that
+    intervals, scaled scores and stopping rules stay arithmetic.
+    """
+    precision = np.asarray(precision, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        raw = 1.0 / np.sqrt(precision)
+    return np.where((precision > 0) & (raw < width), raw, float(width))
+
+
+def _mark_prior_dominated(status, theta, se, mean, sd, n_items) -> np.ndarray:
+    """``prior_dominated`` where answers moved neither the estimate nor its SE off the prior."""
+    near = (np.abs(theta - mean) <= PRIOR_DOMINATED_SHARE * sd) & (np.abs(se - sd) <= PRIOR_DOMINATED_SHARE * sd)
+    return np.where(near & (n_items > 0), PRIOR_DOMINATED, status)
 
 
 _NEWTON_DOC = """

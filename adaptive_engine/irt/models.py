@@ -292,6 +292,82 @@ def derivatives(params: ItemParameters, theta, second: bool = False):
     return out
 
 
+def log_derivatives(params: ItemParameters, theta):
+    """First and second theta derivatives of each category's log probability.
+
+    ``d log P_k / d theta`` and ``d^2 log P_k / d theta^2`` in closed forms that never
+    divide by a probability, so they stay exact where ``P_k`` underflows to 0 (steep
+    items far from theta, where ``P'_k / P_k`` computed from :func:`derivatives` is 0/0):
+
+    * dichotomous: ``P'_1 / P_1 = D a (d - c) s t / P_1`` with the ratio taken in logs
+      (``s = 1 / (1 + exp(-z))``, ``t = 1 - s``), likewise for ``P_0``; and
+      ``P'' / P = D a (t - s) P' / P`` for both categories;
+    * graded (Samejima 1969): ``D a (1 - P*_k - P*_{k+1})`` and
+      ``-(D a)^2 (P*_k Q*_k + P*_{k+1} Q*_{k+1})``;
+    * partial credit (Muraki 1992): ``D a (k - E[X])`` and ``-(D a)^2 Var(X)``.
+
+    Returns
+    -------
+    score, curvature : arrays, shape ``broadcast(params, theta) + (C,)``
+        0 for categories an item lacks.
+    """
+    shape, th, fp = _flat(params, theta)
+    n = th.shape[0]
+    n_cat = params.max_categories
+    score = np.zeros((n, n_cat))
+    curvature = np.zeros((n, n_cat))
+    D = params.scaling
+    for family, func in ((DICHOTOMOUS, _dichotomous_log_derivatives), (GRADED, _graded_log_derivatives),
+                         (PARTIAL_CREDIT, _partial_credit_log_derivatives)):
+        rows = np.flatnonzero(fp["family"] == family)
+        if rows.size == 0:
+            continue
+        sub = {k: v[rows] for k, v in fp.items()}
+        r, r2 = func(th[rows], sub, D)
+        score[rows, : r.shape[1]] = r
+        curvature[rows, : r.shape[1]] = r2
+    return score.reshape(shape + (n_cat,)), curvature.reshape(shape + (n_cat,))
+
+
+def _dichotomous_log_derivatives(theta, fp, D):
+    log_p, _, _, _ = _dichotomous(theta, fp, D, False)
+    a, b, c, d = fp["a"], fp["b"], fp["c"], fp["d"]
+    z = D * a * (theta - b)
+    ls, lt = log_expit(z), log_expit(-z)
+    slope = (D * a * (d - c))[:, None]
+    r = slope * np.exp((ls + lt)[:, None] - log_p) * np.array([-1.0, 1.0])
+    r2 = (D * a * (np.exp(lt) - np.exp(ls)))[:, None] * r - r**2
+    return r, r2
+
+
+def _graded_log_derivatives(theta, fp, D):
+    thr = fp["thresholds"]
+    k = thr.shape[1]
+    ncat = fp["ncat"]
+    slope = D * fp["a"][:, None]
+    z = slope * (theta[:, None] - thr)
+    z = np.where(np.arange(k)[None, :] >= (ncat[:, None] - 1), -np.inf, z)
+    n = z.shape[0]
+    zz = np.concatenate([np.full((n, 1), np.inf), z, np.full((n, 1), -np.inf)], axis=1)
+    star, star_c = expit(zz), expit(-zz)
+    r = slope * (star_c[:, :-1] - star[:, 1:])
+    spread = star * star_c
+    r2 = -slope**2 * (spread[:, :-1] + spread[:, 1:])
+    valid = np.arange(k + 1)[None, :] < ncat[:, None]
+    return np.where(valid, r, 0.0), np.where(valid, r2, 0.0)
+
+
+def _partial_credit_log_derivatives(theta, fp, D):
+    log_p, p, _, _ = _partial_credit(theta, fp, D, False)
+    k = p.shape[1]
+    slope = D * fp["a"][:, None]
+    valid = np.arange(k)[None, :] < fp["ncat"][:, None]
+    cats = np.arange(k)[None, :]
+    mean = np.sum(p * cats, axis=1, keepdims=True)
+    var = np.sum(p * (cats - mean) ** 2, axis=1, keepdims=True)
+    return np.where(valid, slope * (cats - mean), 0.0), np.where(valid, -slope**2 * var, 0.0)
+
+
 def _all_dichotomous(params: ItemParameters) -> bool:
     return bool(params.family.size) and not np.any(params.family) and params.max_categories == 2
 

@@ -75,8 +75,12 @@ def posterior_mean_sd(log_post, grid) -> tuple[np.ndarray, np.ndarray]:
     The moments are sums over each row alone (``einsum`` without BLAS), never a matrix
     product across rows: BLAS rounds differently with the batch size, and a batch of one
     must match the same row of a large batch bit for bit.  The variance is
-    ``E[t^2] - E[t]^2``; on a grid within +-10 that loses at most three of sixteen digits,
+    ``E[t^2] - E[t]^2``; on a grid within +-20 that loses at most four of sixteen digits,
     far below anything a standard error is compared with.
+
+    The SD is never below :func:`resolution_floor` of the grid: a posterior narrower than
+    the grid's spacing (a tiny prior SD, or steep items) piles onto one point, where the
+    computed SD would be 0 -- a certainty the grid cannot give.
     """
     grid = np.asarray(grid, dtype=float)
     # unnormalised weights; dividing the moments once saves a pass over (B, G)
@@ -84,4 +88,17 @@ def posterior_mean_sd(log_post, grid) -> tuple[np.ndarray, np.ndarray]:
     total = np.sum(w, axis=-1)
     mean = np.einsum("...g,g->...", w, grid) / total
     second = np.einsum("...g,g->...", w, grid * grid) / total
-    return mean, np.sqrt(np.maximum(second - mean * mean, 0.0))
+    return mean, np.maximum(np.sqrt(np.maximum(second - mean * mean, 0.0)), resolution_floor(grid))
+
+
+def resolution_floor(grid) -> float:
+    """The least posterior SD a grid can tell apart: ``step / sqrt(12)``.
+
+    The SD of an ability spread evenly over one grid cell (the variance of a uniform
+    distribution of width h is h^2 / 12, as in Sheppard's correction for grouped data).
+    Any posterior that concentrates on one point is reported with this SD, not with 0.
+    """
+    grid = np.asarray(grid, dtype=float)
+    if grid.size < 2:
+        return 0.0
+    return float((grid[-1] - grid[0]) / (grid.size - 1)) / np.sqrt(12.0)

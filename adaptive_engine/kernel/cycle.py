@@ -226,15 +226,14 @@ def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:
             kwargs["se_reduction"] = np.where(best >= 0, red, 0.0)
     if st.time_limit is not None:
         kwargs["elapsed"] = state.elapsed[rows]
-    reasons = stopping.stop_reasons(st, n_scored=state.n_scored[rows], se=state.se[rows],
-                                    no_eligible=picked.item < 0, **kwargs)
     if ctx.balanced:
         # a test whose blueprint minimums are not yet met goes on, like one below
-        # min_items: only the hard ends (max_items, no_eligible_item) stop it
-        short = np.any(state.area_counts[rows] < ctx.area_min[None, :], axis=1)
-        hard = np.isin(reasons, ("max_items", "no_eligible_item"))
-        reasons = np.where(short & ~hard, "", reasons).astype(object)
-    return reasons
+        # min_items: only the hard ends (max_items, no_eligible_item) stop it.  The rules
+        # are held back before precedence is applied, so that a rule outranking max_items
+        # at the same step cannot take the maximum down with it.
+        kwargs["held"] = np.any(state.area_counts[rows] < ctx.area_min[None, :], axis=1)
+    return stopping.stop_reasons(st, n_scored=state.n_scored[rows], se=state.se[rows],
+                                 no_eligible=picked.item < 0, **kwargs)
 
 
 @attrs.frozen(eq=False)
@@ -259,8 +258,11 @@ def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimate
     items, resp = state.scored_items(rows)
     method = design.final_method
     if method == "eap":
+        from ..irt.estimation import eap_status
+
         theta, se = posterior_mean_sd(state.log_post[rows], ctx.grid)
-        status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
+        status = eap_status(ctx.bank, items, resp, theta, se, prior_mean=state.prior_mean[rows],
+                            prior_sd=state.prior_sd[rows])
     else:
         est = estimate(ctx.bank, items, resp, method, prior_mean=state.prior_mean[rows],
                        prior_sd=state.prior_sd[rows], bounds=(sc.grid_min, sc.grid_max), grid=ctx.grid)

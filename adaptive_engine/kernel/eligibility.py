@@ -41,8 +41,14 @@ def set_fits(ctx: TestContext, state: KernelState, rows: np.ndarray, open_area: 
     sizes = ctx.set_area_counts.sum(axis=1)
     slots = ctx.design.stopping.max_items - state.n_scored[rows]
     fits = sizes[None, :] <= slots[:, None]
-    room = ctx.area_max[None, None, :] - state.area_counts[rows][:, None, :]  # (R, 1, A)
+    counts = state.area_counts[rows][:, None, :]  # (R, 1, A)
+    room = ctx.area_max[None, None, :] - counts
     fits &= np.all(ctx.set_area_counts[None, :, :] <= room, axis=2)
+    if ctx.balanced:
+        # the slots left after the set must still cover the minimums it does not meet,
+        # or a set entered late would push the test to max_items with an area short
+        unmet_after = np.maximum(ctx.area_min[None, None, :] - counts - ctx.set_area_counts[None, :, :], 0)
+        fits &= sizes[None, :] + unmet_after.sum(axis=2) <= slots[:, None]
     # no member of the set may be an enemy of an item already given
     if ctx.n_groups:
         hit = np.take_along_axis(state.blocked_groups[rows], ctx.set_groups.reshape(1, -1).repeat(rows.size, 0), axis=1)

@@ -7,7 +7,7 @@ does not exist -- a NaN estimate, a fit statistic not computed -- is ``None``).
 One report looks like::
 
     {
-      "theta": 0.4321, "se": 0.2876, "estimate_status": "ok", "method": "eap",
+      "theta": 0.4321, "se": 0.2876, "estimate_status": "converged", "method": "eap",
       "confidence": 0.95, "interval": [-0.1316, 0.9958],
       "scaled_score": 543.2, "scaled_se": 28.76, "scaled_interval": [486.8, 599.6],
       "classifications": [
@@ -147,7 +147,8 @@ def final_reports(design: Design, *, theta, se, status, n_scored, n_pretest, sto
     theta, se : float arrays, shape (B,)
         The final estimate and its standard error.
     status : str or str array, shape (B,)
-        Status of the final estimate as returned by the estimator (e.g. ``"ok"``).
+        Status of the final estimate as returned by the estimator (e.g. ``"converged"``;
+        see :mod:`adaptive_engine.estimation`).
     n_scored, n_pretest : int arrays, shape (B,)
     stop_reason : str or str array, shape (B,)
         Codes from :data:`adaptive_engine.kernel.stopping.STOP_REASONS`.

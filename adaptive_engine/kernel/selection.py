@@ -322,11 +322,14 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
         values = _stratified_values(ctx, state, rows, ok)
     else:  # pragma: no cover - the design reader refuses other names
         raise ValueError(f"unknown criterion {crit!r}")
-    if ctx.balanced and design.blueprint.method == "max_priority_index":
-        values = values * _priority_index(ctx, state, rows)
-    if design.exposure.method == "progressive":
-        values = _progressive(ctx, state, rows, values, ok)
-    return values
+    with np.errstate(invalid="ignore"):
+        if ctx.balanced and design.blueprint.method == "max_priority_index":
+            values = values * _priority_index(ctx, state, rows)
+        if design.exposure.method == "progressive":
+            values = _progressive(ctx, state, rows, values, ok)
+    # an item a criterion rules out (-inf: outside the current a-stratum) stays out whatever
+    # the weights: 0 x -inf is NaN, and argmax would pick the first NaN
+    return np.where(np.isnan(values), -np.inf, values)
 
 
 def all_item_params(ctx):

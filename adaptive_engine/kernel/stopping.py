@@ -17,9 +17,11 @@ puts the reason that says most about the result first:
 3. resources (``time_limit``, ``max_items``) -- the test ran out of time or items allowed;
 4. ``no_eligible_item`` -- nothing could be given (bank, exposure or blueprint exhausted).
 
-No rule stops a test before ``min_items`` scored items, with two exceptions: ``max_items``
-always stops (the design's hard ceiling), and ``no_eligible_item`` always stops, because the
-kernel has no item to give -- carrying on is impossible, whatever the minimum says.  The
+No rule stops a test before ``min_items`` scored items, nor while a blueprint minimum is
+unmet (``held``), with two exceptions: ``max_items`` always stops (the design's hard
+ceiling), and ``no_eligible_item`` always stops, because the kernel has no item to give --
+carrying on is impossible, whatever the minimum says.  These two are absolute: holding a
+test back never holds them back, whichever other rule fires at the same step.  The
 time limit respects ``min_items`` too: the app decides what to do with an examinee who is
 out of time before the minimum (usually: end the session without a score).
 """
@@ -267,7 +269,7 @@ def _needs(value, what: str, key: str, b: int):
 
 def stop_reasons(stopping: Stopping, *, n_scored, se, sprt_llr=None, ci_decision=None,
                  se_reduction=None, best_information=None, elapsed=None,
-                 no_eligible=None) -> np.ndarray:
+                 no_eligible=None, held=None) -> np.ndarray:
     """Why each examinee's test stops now, or ``""`` to go on.
 
     Parameters
@@ -293,6 +295,10 @@ def stop_reasons(stopping: Stopping, *, n_scored, se, sprt_llr=None, ci_decision
         ``stopping.time_limit`` is set.
     no_eligible : bool array, shape (B,), optional
         True where the kernel found no eligible item.
+    held : bool array, shape (B,), optional
+        True where the test must go on for another reason than ``min_items`` (a blueprint
+        minimum not yet met): every rule is held back there, as below ``min_items``,
+        except ``max_items`` and ``no_eligible_item``.
 
     Returns
     -------
@@ -309,6 +315,8 @@ def stop_reasons(stopping: Stopping, *, n_scored, se, sprt_llr=None, ci_decision
     if se.shape != (b,):
         raise AdaptiveEngineError(f"se has shape {se.shape}, expected ({b},)", "stopping")
     allowed = n_scored >= stopping.min_items
+    if held is not None:
+        allowed = allowed & ~_needs(held, "held-back flag", "held", b).astype(bool)
     never = np.zeros(b, dtype=bool)
     fired: dict[str, np.ndarray] = dict.fromkeys(STOP_PRECEDENCE, never)
 

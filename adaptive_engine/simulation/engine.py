@@ -440,6 +440,11 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
     total = true_theta.shape[0]
     chunk_size = effective_chunk_size(total, chunk_size, workers)
     true_rows = true_item_rows(bank, true_bank)  # validate before any work starts
+    if ctx is None:
+        # the design check is the gate of every run: nothing it refuses reaches the kernel
+        from ..design.bank_fit import require_design_fits_bank
+
+        require_design_fits_bank(design, bank)
     starts = range(0, total, chunk_size)
     if executor is None and workers == 1:
         ctx = ctx if ctx is not None else build_context(design, bank)
