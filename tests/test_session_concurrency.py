@@ -100,8 +100,8 @@ def _refused_start(db, opened, go, mode, out):
     it believed it had created.  ``mode`` says how the start is refused: by the request
     (a prior SD of 0, known before any store is needed) or by the store itself.
     """
-    from adaptive_engine.live import store as store_module
     from adaptive_engine.errors import SessionError
+    from adaptive_engine.live import store as store_module
 
     real_init = store_module.SessionStore.__init__
 
