@@ -382,7 +382,7 @@ def _priority_index(ctx, state, rows) -> np.ndarray:
 
     The index multiplies an item's information by one factor per content constraint it
     touches (Cheng & Chang 2009).  For an upper bound ``u`` with ``x`` items given the
-    factor is the remaining room ``(u - x) / u`` (published form, recalled from memory).
+    factor is the remaining room ``(u - x) / u``, the upper-bound factor of Cheng & Chang (2009).
     For a lower bound ``l`` not yet met this project multiplies by ``1 + (l - x) / l``, so
     that areas short of their minimum are preferred early -- our own treatment, not the
     published one; the minimums themselves are guaranteed by eligibility (the remaining
