@@ -8,6 +8,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import integrate
 
+from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design import (
     AreaRule,
     Blueprint,
@@ -275,3 +276,40 @@ def test_array_summaries_match_the_reports():
         assert rep["scaled_score"] == scaled[i]
         for k, cl in enumerate(rep["classifications"]):
             assert matrix[i, k] == (-1 if cl["at_or_above"] is None else int(cl["at_or_above"]))
+
+
+def _set_and_pretest_bank():
+    """30 plain 2PL items, a four-item set far more informative at theta 0, 3 pretest items.
+
+    Test input only: the set is built to be entered at position 1.
+    """
+    recs = [dict(item_id=f"q{i:02d}", model="2PL", a=1.0, b=float(b)) for i, b in enumerate(np.linspace(-2, 2, 30))]
+    recs += [dict(item_id=f"s{k}", model="2PL", a=2.5, b=0.05 * k, item_set="plant_schematic") for k in range(4)]
+    recs += [dict(item_id=f"p{k}", model="2PL", a=1.0, b=0.0, status="pretest") for k in range(3)]
+    return bank_from_records(recs)
+
+
+@pytest.mark.parametrize("positions, max_items, expected", [
+    # positions 2 and 3 fall inside the set: both pretest items wait and follow the set
+    ((2, 3), 8, "SSSSPPQQQQ"),
+    # a position after the set keeps its place; the waiting one comes right after the set
+    ((2, 7), 8, "SSSSPQPQQQ"),
+    # a pretest item at position 1 comes before the set; position 3 waits for the set
+    ((1, 3), 8, "PSSSSPQQQQ"),
+    # the set runs to the end of the test: the waiting pretest item is never given
+    ((2,), 4, "SSSS"),
+])
+def test_a_pretest_position_inside_an_item_set_waits_for_the_set_to_end(positions, max_items, expected):
+    # the rule documented in docs/designs.md ("Pretest positions and item sets")
+    bank = _set_and_pretest_bank()
+    d = Design(blueprint=Blueprint(item_sets=True, pretest_positions=positions),
+               stopping=Stopping(min_items=max_items, max_items=max_items))
+    ctx = build_context(d, bank)
+    for seed in (3, 4):
+        state, _ = kernel.start(ctx, randomness.stream_key(randomness.examinee_seeds(seed, 1)))
+        while not state.done[0]:
+            kernel.answer(ctx, state, np.array([0]), np.array([1]))
+        given = [str(bank.item_ids[i]) for i in state.items[0, : state.n_given[0]]]
+        kinds = "".join({"s": "S", "p": "P", "q": "Q"}[i[0]] for i in given)
+        assert kinds == expected, given
+        assert state.n_pretest[0] == expected.count("P")

@@ -3,7 +3,8 @@
 Order of business for each examinee who needs an item:
 
 1. a pretest item is due (its seeded position has come and no item set is in progress):
-   a random unused pretest item;
+   a random unused pretest item; a position that comes during a set waits for the set's
+   last item, and is lost if the test ends first (docs/designs.md);
 2. an item set is in progress: its next item, in bank order;
 3. otherwise the design's criterion ranks the eligible operational items (restricted to one
    content area by constrained selection, or weighted by the maximum priority index), and
