@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
+import attrs
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from scipy import integrate
+from scipy import integrate, stats
 
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design import (
@@ -313,3 +314,77 @@ def test_a_pretest_position_inside_an_item_set_waits_for_the_set_to_end(position
         kinds = "".join({"s": "S", "p": "P", "q": "Q"}[i[0]] for i in given)
         assert kinds == expected, given
         assert state.n_pretest[0] == expected.count("P")
+
+
+# ----------------------------------------------------------------------------------------
+# the plain-words first item of `design check` against what the kernel does
+
+
+def _first_scored_items(design, bank, n):
+    ctx = build_context(design, bank)
+    state, picked = kernel.start(ctx, randomness.stream_key(randomness.examinee_seeds(5, n)))
+    item = picked.item
+    if 1 in design.blueprint.pretest_positions:
+        assert set(bank.status[item]) == {"pretest"}
+        item = kernel.answer(ctx, state, np.arange(n), np.ones(n, dtype=np.int64)).item
+    return item
+
+
+def _top_by_information(bank, theta, k, area=None):
+    info = lord_information(bank.a, bank.b, bank.c, bank.d, theta)
+    info = np.where((bank.status == "operational") & ((bank.area == area) if area else True), info, -np.inf)
+    return set(np.argsort(-info, kind="stable")[:k].tolist())
+
+
+_FIRST_ITEM_CASES = {
+    # name: (design, words the description must hold, what the kernel must do)
+    "random": (Design(selection=Selection(criterion="random"), opening=Opening(first_items_from_top=5)),
+               "drawn at random", "many"),
+    "progressive": (Design(exposure=Exposure(method="progressive")), "drawn at random", "many"),
+    "max_information": (Design(), "the best item by Fisher information there", ("top", 1)),
+    "five_from_top": (Design(opening=Opening(first_items_from_top=5)), "a random one of the 5 best items", ("top", 5)),
+    "randomesque": (Design(exposure=Exposure(method="randomesque", candidates=3)),
+                    "a random one of the 3 best items", ("top", 3)),
+    "posterior_weighted": (Design(selection=Selection(criterion="posterior_weighted_information"),
+                                  opening=Opening(theta=1.5)), "averaged over the N(0, 1^2) prior", "prior"),
+    "area_share": (Design(blueprint=Blueprint(areas=(AreaRule(name="alpha", min=1, max=2),
+                                                     AreaRule(name="beta", min=4, max=8)))),
+                   "from the content area with the largest target share", ("area", "beta")),
+    "pretest_first": (Design(blueprint=Blueprint(pretest_positions=(1,)), opening=Opening(first_items_from_top=5)),
+                      "first scored item: the best item by Fisher information there (the 5 top candidates apply "
+                      "to position 1 only)", ("top", 1)),
+    "shadow_test": (Design(blueprint=Blueprint(shadow_test=True), opening=Opening(first_items_from_top=5)),
+                    "shadow test decides", ("top", 1)),
+}
+
+
+@pytest.mark.parametrize("name", sorted(_FIRST_ITEM_CASES))
+def test_design_check_describes_the_first_item_the_kernel_gives(name):
+    # `design check` once said a random-selection design starts with "the most informative
+    # item there" while simulation drew the first item at random
+    from adaptive_engine.design.bank_fit import describe_design
+
+    design, words, behaviour = _FIRST_ITEM_CASES[name]
+    design = attrs.evolve(design, stopping=Stopping(min_items=5, max_items=10))
+    opening_line = describe_design(design)[0]
+    assert words in opening_line, opening_line
+    assert ("most informative item there" in opening_line) is False
+    bank = structured_bank(3, 100, pretest=4)
+    first = _first_scored_items(design, bank, 20 if name == "shadow_test" else 300)
+    if behaviour == "many":
+        # 300 uniform draws among the 96 operational items: about 90 distinct expected
+        assert np.unique(first).size > 60
+        assert "best" not in opening_line
+    elif behaviour == "prior":
+        # van der Linden (1998): information averaged over the posterior, here the N(0, 1)
+        # prior; oracle: the integral by scipy.integrate.quad for every item
+        def averaged(i):
+            return integrate.quad(lambda t: lord_information(bank.a[i], bank.b[i], bank.c[i], bank.d[i], t)
+                                  * stats.norm.pdf(t), -8, 8)[0]
+        values = [averaged(i) if bank.status[i] == "operational" else -np.inf for i in range(len(bank))]
+        assert set(first.tolist()) == {int(np.argmax(values))}
+    elif behaviour[0] == "top":
+        # Lord (1980): the most informative items at the starting theta (0)
+        assert set(first.tolist()) == _top_by_information(bank, 0.0, behaviour[1])
+    else:
+        assert set(first.tolist()) == _top_by_information(bank, 0.0, 1, area=behaviour[1])
