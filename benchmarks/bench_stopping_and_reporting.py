@@ -48,7 +48,7 @@ def main():
                             confidence_interval=design.ConfidenceRule(cut=0.0),
                             se_reduction=0.01, min_information=0.2, time_limit=3600)
     des = design.Design(stopping=rules, reporting=design.Reporting(
-        scale=design.ScaleRule(slope=100, intercept=500, decimals=0, min=200, max=800),
+        scale=design.ScaleRule(slope=50, intercept=260, decimals=0, min=100, max=400),
         cut_scores=(design.CutScore(name="licence", theta=0.0),)))
 
     def run(rows):

@@ -4,8 +4,9 @@ Run ``python item_banks/make_demo_banks.py [OUT_DIR]`` (default: this folder).  
 
 * ``meridian_valley_operator.csv`` / ``.json`` -- 500 dichotomous items of the fictional
   Meridian Valley water-operator licensing exam;
-* ``staff_climate_survey.csv`` / ``.json`` -- 40 rated items (answers 0-4) of a fictional
-  staff-climate survey.
+* ``staff_climate_survey.csv`` / ``.json`` -- 40 rated items (answers 0-4) of the
+  staff-climate survey the (equally fictional) Meridian Valley water utility gives its
+  plant operators, field crews, control-room and lab staff.
 
 and two long response files (``person_id,item_id,response``) of invented people answering
 them, for the README tour (``adaptive-engine score``, calibration):
@@ -44,7 +45,9 @@ administered), and each answer is drawn from the bank's own model at that abilit
 uniform number per answer, compared with the cumulative category probabilities).
 
 Staff-climate survey (scaling D = 1.0; categories 0 = strongly disagree .. 4 = strongly agree)
-    * four areas of 10 items: workload, team_support, leadership, wellbeing;
+    * four areas of 10 items: workload, team_support, leadership, wellbeing; every statement
+      is written for this utility (shifts, plant, crews, control room, briefings) and
+      worded so that agreeing means a better climate;
     * GRM for the even-numbered items, GPCM for the odd-numbered ones;
     * GRM: log a ~ N(log 1.6, 0.25^2); thresholds = location + sorted(base + N(0, 0.15^2))
       with location ~ N(-0.3, 0.5^2) and base = (-2.0, -0.8, 0.3, 1.5);
@@ -143,33 +146,56 @@ ITEMS_PER_AREA = 100
 N_PRETEST = 20
 
 SURVEY_AREAS = {
+    # Statements written for the utility's own survey: every one names something of its
+    # daily work (shifts, the plant, field crews, the control room, briefings), and all are
+    # worded so that agreeing means a better climate.
     "workload": [
-        "I can finish my work in normal hours", "My workload is spread fairly in the team",
-        "I rarely take work home", "Deadlines I am given are realistic",
-        "I have time to do my work carefully", "Interruptions seldom keep me from my tasks",
-        "I can take my breaks as planned", "The amount of overtime is reasonable",
-        "I have the tools I need to do my job", "Urgent requests are the exception, not the rule",
+        "The work on my shift fits in my rostered hours",
+        "On-call weekends are shared fairly in my crew",
+        "I rarely carry work orders over to the next shift",
+        "Work-order due dates allow for travel between sites",
+        "I have time to double-check readings before logging",
+        "Unplanned call-outs rarely upset my day's plan",
+        "I can take my meal break even on a busy shift",
+        "Overtime after main breaks is kept within limits",
+        "Our vans are stocked with the parts a repair needs",
+        "Most of my week goes to planned, not emergency, work",
     ],
     "team_support": [
-        "Colleagues help when I am overloaded", "I can ask my team for advice at any time",
-        "New staff are made welcome", "We share information openly in the team",
-        "Disagreements in the team are settled fairly", "I trust the people I work with",
-        "My team celebrates good work", "I feel part of the team",
-        "Work is handed over well between shifts", "Team meetings are useful",
+        "If my job list overruns, a crew mate takes a job",
+        "I can radio a colleague for advice in the field",
+        "New starters get a proper walk-round of the plant",
+        "The control room keeps field crews informed",
+        "Disputes over rota swaps are settled fairly",
+        "I trust my crew to follow the lockout procedure",
+        "A job well done gets mentioned at the morning briefing",
+        "Night-shift staff are treated as part of the team",
+        "The shift hand-over log tells me what I need",
+        "Our toolbox talks are worth the time they take",
     ],
     "leadership": [
-        "My manager explains the reasons for decisions", "I get useful feedback on my work",
-        "My manager treats staff fairly", "I know what is expected of me",
-        "Leaders act on the results of staff surveys", "I can raise concerns without fear",
-        "My manager supports my development", "Changes are announced in good time",
-        "Leaders are visible in daily work", "My manager keeps promises",
+        "My supervisor explains why work plans change",
+        "After a big job my supervisor reviews it with us",
+        "Supervisors apply site rules equally to all crews",
+        "I know which plant checks are mine on each shift",
+        "Faults we report at depot meetings get fixed",
+        "I can stop a job I think is unsafe without blame",
+        "I get support to train for a higher operator grade",
+        "Roster changes are announced well ahead",
+        "Senior managers visit the plant and the depots",
+        "When my supervisor says a fix is coming, it comes",
     ],
     "wellbeing": [
-        "I feel rested at the start of the working week", "My job leaves energy for my private life",
-        "I seldom feel tense at work", "I would recommend this workplace to a friend",
-        "I feel safe at my workplace", "My work gives me a sense of achievement",
-        "I can take leave when I need it", "Stress at work is taken seriously here",
-        "I look forward to coming to work", "I see myself working here in two years",
+        "I recover well between my night shifts",
+        "On-call duty leaves room for my family life",
+        "Storm nights and main breaks rarely leave me drained",
+        "I feel looked after when working alone at remote sites",
+        "Chlorine and chemical handling here feels safe",
+        "Keeping the valley's water safe feels worthwhile",
+        "I can take my holidays when my family needs them",
+        "After a hard incident, someone checks how we are",
+        "Heat, noise and fumes at my post are kept bearable",
+        "I plan to build my career at Meridian Valley Water",
     ],
 }
 GRM_BASE = np.array([-2.0, -0.8, 0.3, 1.5])

@@ -45,3 +45,18 @@ def test_the_tour_scores_the_demo_candidates():
     theta = np.array([float(x.split(",")[1]) for x in lines[1:]])
     # abilities were drawn from N(0, 1): EAP estimates (shrunk) spread around 0
     assert abs(theta.mean()) < 0.25 and 0.5 < theta.std() < 1.1
+
+
+@pytest.mark.parametrize("responses, bank_name, n_persons, n_items", CASES)
+def test_item_banks_readme_states_the_files_true_size(responses, bank_name, n_persons, n_items):
+    # item_banks/README.md once described the survey file as 200 x 20 (it is 600 x 40):
+    # its row for each response file must give the persons, items per person and rows the
+    # file really has
+    table = read_responses(ITEM_BANKS / responses)
+    readme = (ITEM_BANKS / "README.md").read_text()
+    row = next(line for line in readme.splitlines() if line.startswith(f"| `{responses}`"))
+    per_person = {int(n) for n in np.bincount(table.person)}
+    assert per_person == {n_items}
+    assert f"{table.n_persons} invented" in row
+    assert f" {n_items} " in row
+    assert f"{table.n_answers:,} rows" in row

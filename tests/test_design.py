@@ -55,6 +55,7 @@ from adaptive_engine.design.toml_file import (
     validate_design,
 )
 from adaptive_engine.errors import AdaptiveEngineError, DesignError
+from adaptive_engine.kernel.final_report import scaled_score
 
 REPO = Path(__file__).resolve().parents[1]
 SIMULATIONS = REPO / "simulations"
@@ -717,8 +718,25 @@ def test_shipped_demo_design_is_what_the_brief_describes():
     assert len(d.blueprint.pretest_positions) == 2
     assert (d.stopping.se, d.stopping.max_items, d.stopping.min_items) == (0.3, 40, 15)
     assert d.stopping.sprt.cut == -0.2
-    assert (d.reporting.scale.min, d.reporting.scale.max) == (200.0, 800.0)
+    # the exam's own reported scale (simulations/README.md): 260 + 50 x theta in whole
+    # points, clipped to 100-400, with the licence cut at exactly 250
+    s = d.reporting.scale
+    assert (s.slope, s.intercept, s.decimals, s.min, s.max) == (50.0, 260.0, 0, 100.0, 400.0)
     assert [c.name for c in d.reporting.cut_scores] == ["licence"]
+    assert scaled_score(s, d.reporting.cut_scores[0].theta) == 250
+    assert scaled_score(s, d.stopping.sprt.cut) == 250
+
+
+def test_shipped_survey_design_has_its_own_limits_and_scale():
+    # simulations/README.md: at least 2 statements per area (so 8), at most 14, SE 0.4;
+    # climate points 20 x theta, whole points, clipped to -60..60
+    d = read_design(SIMULATIONS / "staff_climate_survey.toml")
+    assert (d.stopping.min_items, d.stopping.max_items, d.stopping.se) == (8, 14, 0.4)
+    assert {(a.name, a.min, a.max) for a in d.blueprint.areas} == {
+        (area, 2, 5) for area in ("workload", "team_support", "leadership", "wellbeing")}
+    assert sum(a.min for a in d.blueprint.areas) == d.stopping.min_items
+    s = d.reporting.scale
+    assert (s.slope, s.intercept, s.decimals, s.min, s.max) == (20.0, 0.0, 0, -60.0, 60.0)
 
 
 def test_demo_sympson_hetter_parameters_cover_the_operational_items():

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import attrs
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import integrate
 
+from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design import (
     AreaRule,
     Blueprint,
@@ -275,3 +277,116 @@ def test_array_summaries_match_the_reports():
         assert rep["scaled_score"] == scaled[i]
         for k, cl in enumerate(rep["classifications"]):
             assert matrix[i, k] == (-1 if cl["at_or_above"] is None else int(cl["at_or_above"]))
+
+
+def _set_and_pretest_bank():
+    """30 plain 2PL items, a four-item set far more informative at theta 0, 3 pretest items.
+
+    Test input only: the set is built to be entered at position 1.
+    """
+    recs = [dict(item_id=f"q{i:02d}", model="2PL", a=1.0, b=float(b)) for i, b in enumerate(np.linspace(-2, 2, 30))]
+    recs += [dict(item_id=f"s{k}", model="2PL", a=2.5, b=0.05 * k, item_set="plant_schematic") for k in range(4)]
+    recs += [dict(item_id=f"p{k}", model="2PL", a=1.0, b=0.0, status="pretest") for k in range(3)]
+    return bank_from_records(recs)
+
+
+@pytest.mark.parametrize("positions, max_items, expected", [
+    # positions 2 and 3 fall inside the set: both pretest items wait and follow the set
+    ((2, 3), 8, "SSSSPPQQQQ"),
+    # a position after the set keeps its place; the waiting one comes right after the set
+    ((2, 7), 8, "SSSSPQPQQQ"),
+    # a pretest item at position 1 comes before the set; position 3 waits for the set
+    ((1, 3), 8, "PSSSSPQQQQ"),
+    # the set runs to the end of the test: the waiting pretest item is never given
+    ((2,), 4, "SSSS"),
+])
+def test_a_pretest_position_inside_an_item_set_waits_for_the_set_to_end(positions, max_items, expected):
+    # the rule documented in docs/designs.md ("Pretest positions and item sets")
+    bank = _set_and_pretest_bank()
+    d = Design(blueprint=Blueprint(item_sets=True, pretest_positions=positions),
+               stopping=Stopping(min_items=max_items, max_items=max_items))
+    ctx = build_context(d, bank)
+    for seed in (3, 4):
+        state, _ = kernel.start(ctx, randomness.stream_key(randomness.examinee_seeds(seed, 1)))
+        while not state.done[0]:
+            kernel.answer(ctx, state, np.array([0]), np.array([1]))
+        given = [str(bank.item_ids[i]) for i in state.items[0, : state.n_given[0]]]
+        kinds = "".join({"s": "S", "p": "P", "q": "Q"}[i[0]] for i in given)
+        assert kinds == expected, given
+        assert state.n_pretest[0] == expected.count("P")
+
+
+# ----------------------------------------------------------------------------------------
+# the plain-words first item of `design check` against what the kernel does
+
+
+def _first_scored_items(design, bank, n):
+    ctx = build_context(design, bank)
+    state, picked = kernel.start(ctx, randomness.stream_key(randomness.examinee_seeds(5, n)))
+    item = picked.item
+    if 1 in design.blueprint.pretest_positions:
+        assert set(bank.status[item]) == {"pretest"}
+        item = kernel.answer(ctx, state, np.arange(n), np.ones(n, dtype=np.int64)).item
+    return item
+
+
+def _top_by_information(bank, theta, k, area=None):
+    info = lord_information(bank.a, bank.b, bank.c, bank.d, theta)
+    info = np.where((bank.status == "operational") & ((bank.area == area) if area else True), info, -np.inf)
+    return set(np.argsort(-info, kind="stable")[:k].tolist())
+
+
+_FIRST_ITEM_CASES = {
+    # name: (design, words the description must hold, what the kernel must do)
+    "random": (Design(selection=Selection(criterion="random"), opening=Opening(first_items_from_top=5)),
+               "drawn at random", "many"),
+    "progressive": (Design(exposure=Exposure(method="progressive")), "drawn at random", "many"),
+    "max_information": (Design(), "the best item by Fisher information there", ("top", 1)),
+    "five_from_top": (Design(opening=Opening(first_items_from_top=5)), "a random one of the 5 best items", ("top", 5)),
+    "randomesque": (Design(exposure=Exposure(method="randomesque", candidates=3)),
+                    "a random one of the 3 best items", ("top", 3)),
+    "posterior_weighted": (Design(selection=Selection(criterion="posterior_weighted_information"),
+                                  opening=Opening(theta=1.5)), "averaged over the N(0, 1^2) prior", "prior"),
+    "area_share": (Design(blueprint=Blueprint(areas=(AreaRule(name="alpha", min=1, max=2),
+                                                     AreaRule(name="beta", min=4, max=8)))),
+                   "from the content area with the largest target share", ("area", "beta")),
+    "pretest_first": (Design(blueprint=Blueprint(pretest_positions=(1,)), opening=Opening(first_items_from_top=5)),
+                      "first scored item: the best item by Fisher information there (the 5 top candidates apply "
+                      "to position 1 only)", ("top", 1)),
+    "shadow_test": (Design(blueprint=Blueprint(shadow_test=True), opening=Opening(first_items_from_top=5)),
+                    "shadow test decides", ("top", 1)),
+}
+
+
+@pytest.mark.parametrize("name", sorted(_FIRST_ITEM_CASES))
+def test_design_check_describes_the_first_item_the_kernel_gives(name):
+    # `design check` once said a random-selection design starts with "the most informative
+    # item there" while simulation drew the first item at random
+    from adaptive_engine.design.bank_fit import describe_design
+
+    design, words, behaviour = _FIRST_ITEM_CASES[name]
+    design = attrs.evolve(design, stopping=Stopping(min_items=5, max_items=10))
+    opening_line = describe_design(design)[0]
+    assert words in opening_line, opening_line
+    assert ("most informative item there" in opening_line) is False
+    bank = structured_bank(3, 100, pretest=4)
+    first = _first_scored_items(design, bank, 20 if name == "shadow_test" else 300)
+    if behaviour == "many":
+        # 300 uniform draws among the 96 operational items: about 90 distinct expected
+        assert np.unique(first).size > 60
+        assert "best" not in opening_line
+    elif behaviour == "prior":
+        # van der Linden (1998): information averaged over the posterior, here the N(0, 1)
+        # prior; oracle: Gauss-Hermite quadrature (numpy.polynomial.hermite_e, 60 nodes)
+        nodes, weights = np.polynomial.hermite_e.hermegauss(60)
+        with np.errstate(invalid="ignore"):  # P rounds to 1 at the outer nodes: 0/0 there
+            info = lord_information(bank.a[:, None], bank.b[:, None], bank.c[:, None], bank.d[:, None],
+                                    nodes[None, :])
+        info = np.nan_to_num(info)  # the information's limit at those nodes is 0
+        values = np.where(bank.status == "operational", info @ weights / np.sqrt(2 * np.pi), -np.inf)
+        assert set(first.tolist()) == {int(np.argmax(values))}
+    elif behaviour[0] == "top":
+        # Lord (1980): the most informative items at the starting theta (0)
+        assert set(first.tolist()) == _top_by_information(bank, 0.0, behaviour[1])
+    else:
+        assert set(first.tolist()) == _top_by_information(bank, 0.0, 1, area=behaviour[1])

@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from fractions import Fraction
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -14,7 +16,12 @@ from scipy import stats
 
 from adaptive_engine.design import types as design
 from adaptive_engine.errors import AdaptiveEngineError, DesignError
+from adaptive_engine.irt import estimation
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
 from adaptive_engine.kernel.final_report import final_report, final_reports, round_half_away, scaled_score
+from adaptive_engine.kernel.prepared import build_context
+from kernel_support import structured_bank
 
 CUT = design.CutScore(name="licence", theta=0.0, above="pass", below="fail")
 
@@ -29,7 +36,7 @@ def _design(*, scale=design.ScaleRule(), cuts=(CUT,), sprt=None, confidence=0.95
 
 
 def _one(des, theta, se=0.3, **kw):
-    args = dict(status="ok", n_scored=20, n_pretest=2, stop_reason="se_reached", lz_star=0.0)
+    args = dict(status="converged", n_scored=20, n_pretest=2, stop_reason="se_reached", lz_star=0.0)
     args.update(kw)
     return final_report(des, theta=theta, se=se, **args)
 
@@ -143,7 +150,7 @@ def test_exactly_at_the_cut_is_above_and_several_cuts_are_reported():
 def test_report_is_json_ready_and_complete():
     des = _design(threshold=-1.645)
     reps = final_reports(des, theta=np.array([0.3, np.nan, -1.0]), se=[0.2, np.nan, 0.4],
-                         status=["ok", "no_finite_estimate", "ok"], n_scored=[20, 3, 30],
+                         status=["converged", "no_responses", "converged"], n_scored=[20, 3, 30],
                          n_pretest=[2, 0, 1], stop_reason=["se_reached", "no_eligible_item",
                                                             "max_items"],
                          lz_star=[-2.1, np.nan, -1.0])
@@ -159,7 +166,7 @@ def test_report_is_json_ready_and_complete():
 
 def test_lengths_must_agree():
     with pytest.raises(AdaptiveEngineError, match="se has shape"):
-        final_reports(_design(), theta=[0.1, 0.2], se=[0.3], status="ok", n_scored=[1, 2],
+        final_reports(_design(), theta=[0.1, 0.2], se=[0.3], status="converged", n_scored=[1, 2],
                       n_pretest=0, stop_reason="max_items", lz_star=[0.0, 0.0])
 
 
@@ -168,14 +175,49 @@ def test_batch_rows_equal_single_reports():
     b = 50
     des = _design(scale=design.ScaleRule(slope=15.0, intercept=100.0, decimals=1, min=55.0,
                                          max=145.0), sprt=design.SprtRule(cut=0.0))
-    kw = dict(theta=rng.normal(size=b), se=rng.uniform(0.1, 0.6, b), status="ok",
+    kw = dict(theta=rng.normal(size=b), se=rng.uniform(0.1, 0.6, b), status="converged",
               n_scored=rng.integers(5, 30, b), n_pretest=rng.integers(0, 3, b),
               stop_reason="max_items", lz_star=rng.normal(size=b),
               sprt_decision=rng.integers(-1, 2, b))
     batch = final_reports(des, **kw)
     for i in range(b):
-        one = final_report(des, theta=kw["theta"][i], se=kw["se"][i], status="ok",
+        one = final_report(des, theta=kw["theta"][i], se=kw["se"][i], status="converged",
                            n_scored=kw["n_scored"][i], n_pretest=kw["n_pretest"][i],
                            stop_reason="max_items", lz_star=kw["lz_star"][i],
                            sprt_decision=kw["sprt_decision"][i])
         assert one == batch[i]
+
+
+# --------------------------------------------------------------------------------------
+# the documented estimate statuses
+
+
+def _documented_statuses() -> set[str]:
+    """The values listed in the estimate-status table of docs/stopping_and_reporting.md."""
+    text = (Path(__file__).resolve().parents[1] / "docs" / "stopping_and_reporting.md").read_text()
+    section = text.split("**Estimate and status.**", 1)[1].split("\n\n**", 1)[0]
+    rows = [line for line in section.splitlines()[3:] if line.startswith("| `")]
+    names = set()
+    for row in rows:
+        names.update(re.findall(r"`([a-z_]+)`", row.split("|")[1]))
+    return names
+
+
+def test_documented_estimate_statuses_are_exactly_those_produced():
+    documented = _documented_statuses()
+    assert documented == set(estimation.STATUSES)
+    # and the kernel's reports carry them: an all-wrong and an all-right test scored by WLE
+    # report all_lowest / all_highest, and so do the same tests scored by EAP (finite there)
+    bank = structured_bank(2, 60, pretest=0, enemies=False, sets=False)
+    seen = {}
+    for method in ("wle", "eap"):
+        des = design.Design(stopping=design.Stopping(min_items=6, max_items=6),
+                            reporting=design.Reporting(final_method=method))
+        ctx = build_context(des, bank)
+        state, _ = kernel.start(ctx, randomness.stream_key(randomness.examinee_seeds(1, 2)))
+        rows = np.arange(2)
+        while not state.done.all():
+            kernel.answer(ctx, state, rows, np.array([0, 1]))
+        seen[method] = [r["estimate_status"] for r in kernel.finish(ctx, state, rows)]
+    assert seen == {"wle": ["all_lowest", "all_highest"], "eap": ["all_lowest", "all_highest"]}
+    assert set(seen["wle"] + seen["eap"]) <= documented

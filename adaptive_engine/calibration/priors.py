@@ -82,10 +82,12 @@ class ParameterPrior:
         return value, grad, hess
 
 
-#: Defaults for 3PL/4PL items.  Common practice in the trade: a log-normal slope prior
-#: centred at a = 1, a wide normal on b, and a beta on c with mean near 0.2 (values from
-#: memory); the d prior is our own choice, with its mode at 0.95 because upper asymptotes
-#: sit close to 1 in practice.
+#: Defaults for 3PL/4PL items.  The prior forms are those of Bayes modal estimation
+#: (Mislevy 1986, Psychometrika 51, 177-195; Swaminathan & Gifford 1986, Psychometrika 51,
+#: 589-601, for the beta prior on c); the values are common practice: a log-normal slope
+#: prior centred at a = 1, a wide normal on b, and beta(5, 17) on c (mode 0.2, the weight
+#: of about 20 prior observations, for four-option items).  The d prior is our own
+#: choice, with its mode at 0.95 because upper asymptotes sit close to 1 in practice.
 DEFAULT_PRIORS = {
     "a": ParameterPrior(kind="lognormal", first=0.0, second=0.5),
     "b": ParameterPrior(kind="normal", first=0.0, second=2.0),

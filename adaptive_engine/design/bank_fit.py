@@ -255,9 +255,7 @@ def describe_design(design: Design) -> list[str]:
         start = f"start at theta {op.theta:g}"
     else:
         start = f"start at a theta drawn uniformly from [{op.random_theta[0]:g}, {op.random_theta[1]:g}]"
-    first = ("the most informative item there" if op.first_items_from_top == 1
-             else f"a random one of the {op.first_items_from_top} most informative items there")
-    lines = [f"opening: {start}; first item: {first}"]
+    lines = [f"opening: {start}; {_first_item_words(design)}"]
     prior = f"N({sc.prior_mean:g}, {sc.prior_sd:g}^2) prior"
     scoring = f"scoring: {sc.method.upper()}"
     if sc.method in ("map", "eap"):
@@ -286,6 +284,58 @@ def describe_design(design: Design) -> list[str]:
     lines.append("stopping: " + _stopping_words(st))
     lines.append("reporting: " + _reporting_words(design))
     return lines
+
+
+def _first_item_words(design: Design) -> str:
+    """What the kernel does for the first item (``kernel/selection.py``), in plain words.
+
+    The first pick runs through the same steps as every later one, with nothing answered
+    yet: a pretest slot at position 1 comes first; a shadow test overrides criterion and
+    exposure; ``random`` and the progressive method (whose random part is everything
+    before the first scored answer) draw at random; otherwise the criterion ranks the items
+    at the start -- posterior-weighted information over the prior, whatever the starting
+    theta -- and the opening's candidate count (position 1 only), else the exposure
+    method, chooses among the best.
+    """
+    k_first = design.opening.first_items_from_top
+    if 1 in design.blueprint.pretest_positions:
+        # the candidate count belongs to position 1, which the pretest item takes
+        note = f" (the {k_first} top candidates apply to position 1 only)" if k_first > 1 else ""
+        return ("first item: a random pretest item (position 1 is a pretest slot); "
+                f"first scored item: {_first_choice(design, 1)}{note}")
+    return f"first item: {_first_choice(design, k_first)}"
+
+
+def _first_choice(design: Design, k_first: int) -> str:
+    op, sc, sel, ex, bp = design.opening, design.scoring, design.selection, design.exposure, design.blueprint
+    where = "there" if op.random_theta is None else "at the drawn start"
+    if bp.shadow_test:
+        return ("the most informative free item of a shadow test assembled at the start"
+                + (f" ({k_first} top candidates do not apply: the shadow test decides)" if k_first > 1 else ""))
+    if sel.criterion == "random" or ex.method == "progressive":
+        why = "the criterion is random" if sel.criterion == "random" else "the progressive method starts fully random"
+        first = f"an eligible item drawn at random ({why})"
+    else:
+        ranked_by = {
+            "max_fisher_information": f"Fisher information {where}",
+            "posterior_weighted_information": (f"Fisher information averaged over the N({sc.prior_mean:g}, "
+                                               f"{sc.prior_sd:g}^2) prior (the starting theta does not enter)"),
+            "kullback_leibler": f"Kullback-Leibler information over +- {sel.kl_interval:g} around the start",
+            "a_stratified": "closeness of b to the start, within the lowest-a stratum",
+        }[sel.criterion]
+        if bp.areas and bp.method == "max_priority_index":
+            ranked_by += " weighted by the area priorities"
+        if k_first > 1:
+            first = f"a random one of the {k_first} best items by {ranked_by}"
+        elif ex.method == "randomesque":
+            first = f"a random one of the {ex.candidates} best items by {ranked_by}"
+        elif ex.method == "sympson_hetter":
+            first = f"the best item by {ranked_by} that passes its exposure lottery"
+        else:
+            first = f"the best item by {ranked_by}"
+    if bp.areas and bp.method == "constrained":
+        first += ", from the content area with the largest target share"
+    return first
 
 
 def _blueprint_words(bp) -> str:

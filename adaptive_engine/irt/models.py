@@ -61,7 +61,8 @@ class ItemParameters:
     n_categories : int array, shape S
         2 for dichotomous items, K + 1 for polytomous items.
     scaling : float
-        The scaling constant D (1.0, or 1.702 for the normal-ogive metric).
+        The scaling constant D (1.0, or 1.702 for the normal-ogive metric: Haley 1952;
+        Camilli 1994).
     """
 
     family: np.ndarray = attrs.field(converter=lambda x: np.asarray(x, dtype=np.int8))

@@ -28,8 +28,9 @@ lz* (Snijders 2001)
 
     all evaluated at theta_hat.  For dichotomous items this is exactly Snijders' (2001)
     statistic; for polytomous items it is the same expansion carried out over categories,
-    the generalisation Sinharay (2016, Psychometrika 81) describes (reference recalled
-    from memory; the derivation above is ours and is what the code does).
+    the generalisation Sinharay (2016, "Asymptotically correct standardization of
+    person-fit statistics beyond dichotomous items", Psychometrika 81) describes; the
+    derivation above is ours and is what the code does.
 
 The weight function r0 of each estimator
     * ``mle``: the likelihood equation has no extra term, ``r0 = 0``.
@@ -41,8 +42,9 @@ The weight function r0 of each estimator
     * ``eap``: the posterior mean solves no estimating equation of this form.  We use the
       MAP weight ``(mu - theta) / sigma^2`` at the EAP value: for a test long enough for
       person fit to mean anything the posterior is close to normal and EAP ~ MAP, and this
-      is the common practice for Bayes estimates (Magis, Raiche & Beland 2012 use the
-      prior's log-density derivative as r0; reference recalled from memory).
+      is the common practice for Bayes estimates (Magis, Raiche & Beland 2012, Journal of
+      Educational and Behavioral Statistics 37, use the prior's log-density derivative as
+      r0).
 
 Missing values: an examinee with no answered items, a non-finite theta, or zero variance
 gets NaN for both statistics.

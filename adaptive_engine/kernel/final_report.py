@@ -7,18 +7,24 @@ does not exist -- a NaN estimate, a fit statistic not computed -- is ``None``).
 One report looks like::
 
     {
-      "theta": 0.4321, "se": 0.2876, "estimate_status": "converged", "method": "eap",
-      "confidence": 0.95, "interval": [-0.1316, 0.9958],
-      "scaled_score": 543.2, "scaled_se": 28.76, "scaled_interval": [486.8, 599.6],
+      "theta": -0.0718, "se": 0.3067, "estimate_status": "converged", "method": "wle",
+      "confidence": 0.95, "interval": [-0.673, 0.5294],
+      "scaled_score": 256, "scaled_se": 15.34, "scaled_interval": [226, 286],
       "classifications": [
-        {"cut": "licence", "cut_theta": 0.0, "at_or_above": true, "label": "pass",
+        {"cut": "licence", "cut_theta": -0.2, "at_or_above": true, "label": "pass",
          "basis": "point_estimate", "interval_contains_cut": true,
          "note": "the 95% interval contains the cut; the label rests on the point estimate"}
       ],
-      "items": {"scored": 24, "pretest": 3},
+      "items": {"scored": 23, "pretest": 2},
       "stop_reason": "se_reached",
-      "person_fit": {"lz_star": -0.41, "threshold": -1.645, "flagged": false}
+      "person_fit": {"lz_star": 0.7, "threshold": -1.645, "flagged": false}
     }
+
+(the demo licensing exam: scale 260 + 50 x theta, whole points, clipped to 100-400).
+``estimate_status`` is the estimator's status (:mod:`adaptive_engine.irt.estimation`):
+``converged``, ``no_responses``, ``all_lowest``, ``all_highest``, ``at_lower_bound``,
+``at_upper_bound`` or ``not_converged``; a final EAP read off the kernel's posterior is
+``converged`` once one answer is scored, else ``no_responses``.
 
 Basis of a classification, per cut score (``design.reporting.cut_scores``):
 

@@ -3,7 +3,8 @@
 Order of business for each examinee who needs an item:
 
 1. a pretest item is due (its seeded position has come and no item set is in progress):
-   a random unused pretest item;
+   a random unused pretest item; a position that comes during a set waits for the set's
+   last item, and is lost if the test ends first (docs/designs.md);
 2. an item set is in progress: its next item, in bank order;
 3. otherwise the design's criterion ranks the eligible operational items (restricted to one
    content area by constrained selection, or weighted by the maximum priority index), and
@@ -385,7 +386,7 @@ def _priority_index(ctx, state, rows) -> np.ndarray:
 
     The index multiplies an item's information by one factor per content constraint it
     touches (Cheng & Chang 2009).  For an upper bound ``u`` with ``x`` items given the
-    factor is the remaining room ``(u - x) / u`` (published form, recalled from memory).
+    factor is the remaining room ``(u - x) / u``, the upper-bound factor of Cheng & Chang (2009).
     For a lower bound ``l`` not yet met this project multiplies by ``1 + (l - x) / l``, so
     that areas short of their minimum are preferred early -- our own treatment, not the
     published one; the minimums themselves are guaranteed by eligibility (the remaining

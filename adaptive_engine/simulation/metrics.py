@@ -19,8 +19,9 @@ marginal reliability
       standard error), so this is var(EAP) / var(theta).
     * MLE/WLE (estimate = truth + error): 1 - mean(SE^2) / var(est), the classical
       1 - error variance / observed variance (Lord & Novick 1968); the marginal form for
-      adaptive tests as in Green, Bock, Humphreys, Linn & Reckase (1984) (attribution from
-      memory).
+      adaptive tests as in Green, Bock, Humphreys, Linn & Reckase (1984), Technical
+      guidelines for assessing computerized adaptive tests, Journal of Educational
+      Measurement 21.
 
     Both estimate the squared correlation of estimate and true ability when the SEs are
     honest (the reference tests check that against simulated truths).
