@@ -14,7 +14,9 @@ run and machine however loaded it is.  When the limit is reached, the best shado
 found so far is used (it meets every constraint; it may hold somewhat less information
 than the optimum); when none was found by then, or the constraints admit no test, the
 design's ordinary pick stands for that step.  The shadow tests of the shipped designs are
-solved at the first node, far inside the limit.
+solved at the first node, far inside the limit.  The count bounds the search, not the time
+spent at one node: a bank whose enemy groups overlap heavily (a hard packing problem) can
+still make one step take seconds.
 """
 
 from __future__ import annotations

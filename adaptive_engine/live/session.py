@@ -522,7 +522,7 @@ def rules_not_installed(row: dict) -> SessionError:
     version = row["decision_rules_version"]
     installed = ", ".join(str(v) for v in installed_versions())
     return SessionError(
-        f"session {session_id} started under decision rules version {shown(version)}, which this engine "
+        f"the session started under decision rules version {shown(version)}, which this engine "
         f"cannot run (it runs version {decision_rules.DECISION_RULES_VERSION}; installed: {installed}); "
         f"the session can still be read (show, result) but not continued here", location=f"session {session_id}")
 
