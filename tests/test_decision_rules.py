@@ -68,6 +68,10 @@ def test_the_current_rules_are_installed():
     assert decision_rules.current_rule_set().version == version
     for bad in (None, "1", 1.0, True, version + 1, -1):
         assert decision_rules.rule_set(bad) is None
+    from adaptive_engine import api
+
+    assert api.DECISION_RULES_VERSION == version
+    assert api.bank_fingerprint is bank_fingerprint and api.design_fingerprint is design_fingerprint
 
 
 def test_fingerprints_follow_their_documented_definition():
