@@ -14,7 +14,6 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-import pytest
 from scipy.optimize import OptimizeResult
 
 from adaptive_engine.bank import bank_from_records, load_bank
@@ -120,11 +119,11 @@ def test_at_the_limit_the_best_test_found_so_far_is_used(monkeypatch):
     assert shadow.assemble_shadow_test(ctx, state, 0) is None
 
 
-@pytest.mark.parametrize("node_limit", [1, shadow.SHADOW_TEST_NODE_LIMIT])
-def test_shadow_tests_repeat_exactly_also_when_the_limit_is_reached(monkeypatch, node_limit):
+def test_shadow_tests_repeat_exactly_also_when_the_limit_is_reached(monkeypatch):
     # with one node, HiGHS (scipy 1.17) stops this problem at the limit: the search is cut
-    # short the same way on every run
-    monkeypatch.setattr(shadow, "SHADOW_TEST_NODE_LIMIT", node_limit)
+    # short the same way on every run (the golden sequences repeat the shipped shadow-test
+    # design, far inside the limit)
+    monkeypatch.setattr(shadow, "SHADOW_TEST_NODE_LIMIT", 1)
     ctx, bank = _packing_context()
     runs = []
     for _ in range(2):
