@@ -21,6 +21,8 @@ from __future__ import annotations
 from .bank.item_bank import load_bank
 from .design.toml_file import read_design
 from .errors import SessionError
+from .kernel.decision_rules import DECISION_RULES_VERSION
+from .kernel.fingerprints import bank_fingerprint, design_fingerprint
 from .live.session import (
     PreparedStart,
     clear_process_cache,
@@ -37,11 +39,14 @@ from .live.session import (
 from .live.store import SessionStore, open_store
 
 __all__ = [
+    "DECISION_RULES_VERSION",
     "PreparedStart",
     "SessionError",
     "SessionStore",
+    "bank_fingerprint",
     "clear_process_cache",
     "commit_start",
+    "design_fingerprint",
     "exposure_rates",
     "list_sessions",
     "load_bank",

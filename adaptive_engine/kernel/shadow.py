@@ -7,6 +7,16 @@ estimate.  The examinee gets the most informative item of that shadow test not y
 Because the shadow test always satisfies every constraint, the real test does too, however
 it ends.  Solved with :func:`scipy.optimize.milp` (HiGHS), one examinee at a time: meant for
 live sessions and modest simulations.
+
+The solver's search is bounded by a number of branch-and-bound nodes
+(:data:`SHADOW_TEST_NODE_LIMIT`), never by a clock, so the shadow test is the same on every
+run and machine however loaded it is.  When the limit is reached, the best shadow test
+found so far is used (it meets every constraint; it may hold somewhat less information
+than the optimum); when none was found by then, or the constraints admit no test, the
+design's ordinary pick stands for that step.  The shadow tests of the shipped designs are
+solved at the first node, far inside the limit.  The count bounds the search, not the time
+spent at one node: a bank whose enemy groups overlap heavily (a hard packing problem) can
+still make one step take seconds.
 """
 
 from __future__ import annotations
@@ -16,6 +26,14 @@ from scipy.optimize import Bounds, LinearConstraint, milp
 from scipy.sparse import lil_matrix
 
 from ..irt import models
+
+#: Branch-and-bound nodes the solver may explore per shadow test: a bound on the work that
+#: does not depend on the machine's speed or load (a wall-clock limit would let a loaded
+#: machine decide differently).  The shipped designs need one node per shadow test.
+SHADOW_TEST_NODE_LIMIT = 1000
+#: Statuses of :func:`scipy.optimize.milp` a search limit can end with (1: iteration or time
+#: limit; 4: others, which is how the HiGHS "solution limit" of a node limit comes back).
+_LIMIT_REACHED = (1, 4)
 
 
 def assemble_shadow_test(ctx, state, row: int) -> np.ndarray | None:
@@ -53,18 +71,36 @@ def assemble_shadow_test(ctx, state, row: int) -> np.ndarray | None:
     a_mat = lil_matrix((len(rows_a), n))
     for r, (cols, vals) in enumerate(rows_a):
         a_mat[r, cols] = vals
+    a_mat = a_mat.tocsr()
+    lo, hi = np.array(lo), np.array(hi)
     res = milp(
         c=-info,
-        constraints=LinearConstraint(a_mat.tocsr(), np.array(lo), np.array(hi)),
+        constraints=LinearConstraint(a_mat, lo, hi),
         integrality=np.ones(n),
         bounds=Bounds(lower, upper),
         # presolve costs more than it saves on these small, well-formed problems (measured:
         # about 14 ms per solve without it, 44 ms with it, same optimum on the demo bank)
-        options={"time_limit": 10.0, "presolve": False},
+        options={"node_limit": SHADOW_TEST_NODE_LIMIT, "presolve": False},
     )
-    if res.x is None or not res.success:
+    if res.x is None:
         return None
-    return np.flatnonzero(res.x > 0.5)
+    chosen = res.x > 0.5
+    if not res.success:
+        # a search limit reached: the best test found so far, if it is one (the same check
+        # also keeps out whatever another "other" status might carry)
+        if res.status not in _LIMIT_REACHED or not _meets_constraints(chosen, a_mat, lo, hi, lower, upper):
+            return None
+    return np.flatnonzero(chosen)
+
+
+def _meets_constraints(chosen, a_mat, lo, hi, lower, upper) -> bool:
+    """Whether the 0-1 selection ``chosen`` (n,) meets every row and bound of the program.
+
+    Coefficients and bounds are whole numbers, so the sums are exact and so is the check.
+    """
+    x = chosen.astype(float)
+    totals = a_mat @ x
+    return bool(np.all(totals >= lo) and np.all(totals <= hi) and np.all(x >= lower) and np.all(x <= upper))
 
 
 def shadow_test_pick(ctx, state, rows, fallback_item, fallback_value):

@@ -1,15 +1,24 @@
 """The live session controller: the decision kernel on a batch of one, persisted every step.
 
 Every request is answered from the store (:mod:`adaptive_engine.live.store`), so any process
-can serve any session: the session row says which design and bank it runs, the event log
-holds its answers, and :func:`adaptive_engine.kernel.rebuild` replays them into the exact
-kernel state (the kernel is a pure function of design, bank, seed and answers).  Replaying
-on every request would be slow, so a process keeps
+can serve any session: the session row says which design and bank it runs and under which
+version of the decision rules, the event log holds its answers, and the rule set's
+``rebuild`` replays them into the exact kernel state (the kernel is a pure function of the
+rules, design, bank, seed and answers).  Replaying on every request would be slow, so a
+process keeps
 
-* one :class:`~adaptive_engine.kernel.prepared.TestContext` per ``(design_id, bank_id)`` and
+* one :class:`~adaptive_engine.kernel.prepared.TestContext` per ``(rules version,
+  design_id, bank_id)`` and
 * the in-memory kernel state of the sessions it served, tagged with the sequence number of
   the last event it reflects; before use the tag is compared with the session row read
   under the write lock, and a state another process has moved on is rebuilt.
+
+A session keeps the decision rules it started under for life
+(:mod:`adaptive_engine.kernel.decision_rules`).  It is served by that rule set while this
+engine has it installed; otherwise an answer is refused with a
+:class:`~adaptive_engine.errors.SessionError` naming both versions, and the session stays
+readable (:func:`show_session`, :func:`session_result`, :func:`pending_item`,
+:func:`list_sessions`).
 
 Each answer is one transaction: the answer and next-item (or finished) events, the session
 row and the exposure count of the new item are written together or not at all.  Bad
@@ -37,8 +46,9 @@ from ..bank.item_bank import ItemBank
 from ..design.types import Design
 from ..errors import SessionError
 from ..jsonable import plain
-from ..kernel import cycle as kernel
-from ..kernel.prepared import TestContext, build_context
+from ..kernel import decision_rules
+from ..kernel.decision_rules import RuleSet, current_rule_set, installed_versions, rule_set
+from ..kernel.prepared import TestContext
 from ..kernel.random_streams import stream_key
 from ..kernel.state import KernelState
 from .store import SessionStore, bank_content, check_text, design_content, now_text, shown, to_json
@@ -69,17 +79,17 @@ class ProcessCache:
         self._contexts: OrderedDict = OrderedDict()
         self._states: OrderedDict = OrderedDict()
 
-    def context(self, store: SessionStore, design_id: str, bank_id: str, *,
+    def context(self, store: SessionStore, design_id: str, bank_id: str, *, rules: RuleSet,
                 design: Design | None = None, bank: ItemBank | None = None) -> TestContext:
-        """The context of a stored (design, bank) pair, built on first use."""
-        key = (design_id, bank_id)
+        """The context of a stored (design, bank) pair under ``rules``, built on first use."""
+        key = (rules.version, design_id, bank_id)
         ctx = self._contexts.get(key)
         if ctx is None:
             if design is None:
                 design = store.load_design(design_id)
             if bank is None:
                 bank = store.load_bank(bank_id)
-            ctx = build_context(design, bank)
+            ctx = rules.build_context(design, bank)
             self._contexts[key] = ctx
             while len(self._contexts) > self.max_contexts:
                 self._contexts.popitem(last=False)
@@ -87,8 +97,8 @@ class ProcessCache:
             self._contexts.move_to_end(key)
         return ctx
 
-    def has_context(self, design_id: str, bank_id: str) -> bool:
-        return (design_id, bank_id) in self._contexts
+    def has_context(self, design_id: str, bank_id: str, *, rules: RuleSet) -> bool:
+        return (rules.version, design_id, bank_id) in self._contexts
 
     def state(self, store: SessionStore, session_id: str, seq: int) -> KernelState | None:
         """The cached state if it reflects exactly the events up to ``seq``, else None."""
@@ -217,17 +227,16 @@ def _prior_values(design: Design, prior_mean, prior_sd) -> tuple[float, float]:
 # replies and events
 
 
-def item_view(ctx: TestContext, row: int) -> dict | None:
+def item_view(bank: ItemBank, row: int) -> dict | None:
     """What the app may know of an item: id, area, label and number of categories."""
     if row < 0:
         return None
-    bank = ctx.bank
     return {"item_id": str(bank.item_ids[row]), "area": str(bank.area[row]),
             "label": str(bank.label[row]), "n_categories": int(bank.n_categories[row])}
 
 
 def _reply(session_id: str, ctx: TestContext, state: KernelState, result: dict | None) -> dict:
-    view = item_view(ctx, int(state.pending[0]))
+    view = item_view(ctx.bank, int(state.pending[0]))
     reply = {
         "session_id": session_id,
         "item_id": None if view is None else view["item_id"],
@@ -247,7 +256,8 @@ def _rng_state(state: KernelState) -> str:
     return to_json({"key": int(state.keys[0]), "position": int(state.n_given[0])})
 
 
-def _next_events(ctx: TestContext, state: KernelState, picked, seq: int, now: str) -> tuple[list[dict], dict | None]:
+def _next_events(rules: RuleSet, ctx: TestContext, state: KernelState, picked, seq: int,
+                 now: str) -> tuple[list[dict], dict | None]:
     """The item_given or finished event that follows a start or an answer."""
     item = int(state.pending[0])
     if item >= 0:
@@ -259,7 +269,7 @@ def _next_events(ctx: TestContext, state: KernelState, picked, seq: int, now: st
             "eligible": int(picked.eligible[0]) if picked.eligible[0] >= 0 else None,
             "rng_state": _rng_state(state), "created_at": now,
         }], None
-    result = plain(kernel.finish(ctx, state, _ROW0)[0])
+    result = plain(rules.finish(ctx, state, _ROW0)[0])
     return [{
         "kind": "finished", "seq": seq, "theta": result.get("theta"), "se": result.get("se"),
         "rng_state": _rng_state(state), "created_at": now,
@@ -298,6 +308,7 @@ class PreparedStart:
     row: dict
     events: list
     result: dict | None
+    rules: RuleSet
 
 
 def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None, seed: int | None = None,
@@ -327,22 +338,24 @@ def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None
     mean, sd = _prior_values(design, prior_mean, prior_sd)
     bank_id = bank_content(bank)[0]
     design_id = design_content(design)[0]
-    if not cache.has_context(design_id, bank_id):
+    # a new session starts under the current rules and keeps them for life
+    rules = current_rule_set()
+    if not cache.has_context(design_id, bank_id, rules=rules):
         from ..design.bank_fit import require_design_fits_bank
 
         require_design_fits_bank(design, bank)
     # the context is built from the objects given: no store is read
-    ctx = cache.context(None, design_id, bank_id, design=design, bank=bank)
+    ctx = cache.context(None, design_id, bank_id, rules=rules, design=design, bank=bank)
     key = np.array([stream_key(seed)], dtype=np.uint64)
-    state, picked = kernel.start(ctx, key, prior_mean=mean, prior_sd=sd, count_eligible=True)
+    state, picked = rules.start(ctx, key, prior_mean=mean, prior_sd=sd, count_eligible=True)
     session_id = session_id or uuid.uuid4().hex
     now = now_text()
-    events, result = _next_events(ctx, state, picked, 1, now)
+    events, result = _next_events(rules, ctx, state, picked, 1, now)
     row = {"session_id": session_id, "examinee": examinee, "bank_id": bank_id, "design_id": design_id,
            "seed": seed, "created_at": now, "prior_mean": mean, "prior_sd": sd,
-           **_session_changes(ctx, state, 1, now, result)}
+           "decision_rules_version": rules.version, **_session_changes(ctx, state, 1, now, result)}
     return PreparedStart(design=design, bank=bank, ctx=ctx, state=state, row=row,
-                         events=[dict(e, session_id=session_id) for e in events], result=result)
+                         events=[dict(e, session_id=session_id) for e in events], result=result, rules=rules)
 
 
 def commit_start(store: SessionStore, prepared: PreparedStart, *, cache: ProcessCache | None = None) -> dict:
@@ -442,20 +455,22 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
     value = _response_value(response, f"{where} item {shown(item_id)} response")
     elapsed = _elapsed_value(elapsed, f"{where} item {shown(item_id)} elapsed")
     row = store.session_row(session_id)
+    # None when this engine lacks the session's rules: only a resent answer gets a reply then
+    rules = rule_set(row["decision_rules_version"])
     # the context may take a while to build: do it before taking the write lock
-    ctx = cache.context(store, row["design_id"], row["bank_id"])
+    ctx = None if rules is None else cache.context(store, row["design_id"], row["bank_id"], rules=rules)
     mutated = [False]
     try:
         with store.writing():
             row = store.session_row(session_id)
-            return _answer_locked(store, ctx, row, item_id, value, elapsed, cache, mutated)
+            return _answer_locked(store, rules, ctx, row, item_id, value, elapsed, cache, mutated)
     except BaseException:
         if mutated[0]:
             cache.drop(store, session_id)
         raise
 
 
-def _answer_locked(store, ctx, row, item_id, response, elapsed, cache, mutated) -> dict:
+def _answer_locked(store, rules, ctx, row, item_id, response, elapsed, cache, mutated) -> dict:
     value, value_text = response
     session_id = row["session_id"]
     where = f"session {shown(session_id)}"
@@ -471,19 +486,21 @@ def _answer_locked(store, ctx, row, item_id, response, elapsed, cache, mutated) 
             raise SessionError("the session has finished; it takes no more answers", location=where)
         raise SessionError(f"item {item} is not the pending item (pending: {row['pending_item']})",
                            location=f"{where} item {item}")
+    if rules is None:
+        raise rules_not_installed(row)
     bank = ctx.bank
     index = bank.index_of[item_id]
     n_cat = int(bank.n_categories[index])
     if not 0 <= value < n_cat:
         raise SessionError(f"response {value_text} is outside the categories 0..{n_cat - 1} of item {item}",
                            location=f"{where} item {item} response")
-    state = session_state(store, ctx, row, cache=cache)
+    state = session_state(store, ctx, row, cache=cache, rules=rules)
     mutated[0] = True
-    picked = kernel.answer(ctx, state, _ROW0, np.array([value]),
-                           elapsed=None if elapsed is None else np.array([elapsed]), count_eligible=True)
+    picked = rules.answer(ctx, state, _ROW0, np.array([value]),
+                          elapsed=None if elapsed is None else np.array([elapsed]), count_eligible=True)
     seq = int(row["last_seq"])
     now = now_text()
-    events, result = _next_events(ctx, state, picked, seq + 2, now)
+    events, result = _next_events(rules, ctx, state, picked, seq + 2, now)
     reply = _reply(session_id, ctx, state, result)
     given = state.n_given[0] - 1
     answer_event = {
@@ -499,10 +516,34 @@ def _answer_locked(store, ctx, row, item_id, response, elapsed, cache, mutated) 
     return reply
 
 
+def rules_not_installed(row: dict) -> SessionError:
+    """The refusal of a session whose decision rules this engine cannot run."""
+    session_id = shown(row["session_id"])
+    version = row["decision_rules_version"]
+    installed = ", ".join(str(v) for v in installed_versions())
+    return SessionError(
+        f"the session started under decision rules version {shown(version)}, which this engine "
+        f"cannot run (it runs version {decision_rules.DECISION_RULES_VERSION}; installed: {installed}); "
+        f"the session can still be read (show, result) but not continued here", location=f"session {session_id}")
+
+
+def session_rules(row: dict) -> RuleSet:
+    """The installed rule set of a stored session; SessionError when this engine lacks it."""
+    rules = rule_set(row["decision_rules_version"])
+    if rules is None:
+        raise rules_not_installed(row)
+    return rules
+
+
 def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
-                  cache: ProcessCache | None = None) -> KernelState:
-    """The kernel state of a stored session: cached if up to date, else replayed from the log."""
+                  cache: ProcessCache | None = None, rules: RuleSet | None = None) -> KernelState:
+    """The kernel state of a stored session: cached if up to date, else replayed from the log.
+
+    ``rules`` (default: the session's own, :func:`session_rules`) must be the rule set
+    ``ctx`` was built under.
+    """
     cache = PROCESS_CACHE if cache is None else cache
+    rules = session_rules(row) if rules is None else rules
     session_id = row["session_id"]
     state = cache.state(store, session_id, int(row["last_seq"]))
     if state is not None:
@@ -514,7 +555,7 @@ def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
         raise SessionError(f"the log names item {unknown[0]} that the session's bank lacks",
                            location=f"session {shown(session_id)}")
     try:
-        state, _ = kernel.rebuild(ctx, int(stream_key(int(row["seed"]))), float(row["prior_mean"]),
+        state, _ = rules.rebuild(ctx, int(stream_key(int(row["seed"]))), float(row["prior_mean"]),
                                   float(row["prior_sd"]), [bank.index_of[i] for i, _, _ in answers],
                                   [int(r) for _, r, _ in answers], elapsed=[e for _, _, e in answers])
     except ValueError as exc:
@@ -534,8 +575,13 @@ def pending_item(store: SessionStore, session_id: str, *, cache: ProcessCache | 
     row = store.session_row(session_id)
     view = None
     if row["pending_item"] is not None:
-        ctx = cache.context(store, row["design_id"], row["bank_id"])
-        view = item_view(ctx, ctx.bank.index_of[row["pending_item"]])
+        rules = rule_set(row["decision_rules_version"])
+        if rules is not None:
+            ctx = cache.context(store, row["design_id"], row["bank_id"], rules=rules)
+            bank = ctx.bank
+        else:  # readable all the same: the view needs the bank only
+            bank = store.load_bank(row["bank_id"])
+        view = item_view(bank, bank.index_of[row["pending_item"]])
     return {"session_id": session_id, "item_id": row["pending_item"], "item": view,
             "items_given": int(row["n_given"]), "done": row["status"] == "finished"}
 
@@ -567,6 +613,8 @@ def show_session(store: SessionStore, session_id: str, *, include_seed: bool = F
     ]
     out = {"session_id": session_id, "examinee": row["examinee"], "status": row["status"],
            "created_at": row["created_at"], "updated_at": row["updated_at"],
+           "decision_rules_version": row["decision_rules_version"],
+           "design_fingerprint": row["design_id"], "bank_fingerprint": row["bank_id"],
            "administered": administered, "pending_item": row["pending_item"],
            "theta": snapshot["theta"][0], "se": snapshot["se"]}
     if include_seed:
@@ -583,6 +631,7 @@ def list_sessions(store: SessionStore, *, status: str | None = None) -> list[dic
     for row in store.sessions(status=status):
         snapshot = json.loads(row["state"])
         out.append({"session_id": row["session_id"], "examinee": row["examinee"], "status": row["status"],
+                    "decision_rules_version": row["decision_rules_version"],
                     "items_given": row["n_given"], "pending_item": row["pending_item"],
                     "theta": snapshot["theta"][0], "se": snapshot["se"],
                     "created_at": row["created_at"], "updated_at": row["updated_at"]})

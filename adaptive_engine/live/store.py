@@ -8,7 +8,9 @@ One file holds everything a live session needs, so a session resumes from the st
     ``status`` (``active`` | ``finished``), ``seed``, ``created_at``, ``updated_at``,
     ``state`` (JSON snapshot), ``result`` (JSON final report), plus ``prior_mean``,
     ``prior_sd``, ``last_seq`` (sequence number of the session's latest event),
-    ``n_given`` and ``pending_item``.
+    ``n_given``, ``pending_item`` and ``decision_rules_version`` (the version of the
+    decision rules the session started under and keeps for life; ``bank_id`` and
+    ``design_id`` are the fingerprints of its bank and design).
 ``events``
     Append-only log, unique on ``(session_id, seq)``: ``kind`` is ``item_given``,
     ``answer`` or ``finished``; each row carries the item, the response (answers), whether
@@ -17,12 +19,20 @@ One file holds everything a live session needs, so a session resumes from the st
     "position"}``, the elapsed time the app reported, and (answers) the reply returned to
     the app, so that a resent answer gets exactly the same reply.
 ``banks`` / ``designs``
-    Content-addressed (SHA-256 of the content): the bank in the JSON bank format, the design
+    Content-addressed by their fingerprints (:mod:`adaptive_engine.kernel.fingerprints`:
+    SHA-256 of the canonical text, which is what is stored): the bank in the JSON bank format, the design
     as TOML plus its Sympson-Hetter parameters (``exposure_parameters``, JSON; parameters
     conditional on ability are stored as ``{"exposure_strata": [...], "exposure_parameters": {...}}``).
 ``exposure_counts`` / ``bank_sessions``
     How often each item of a bank was given, and how many sessions a bank started: the
     exposure rate of an item is ``count / sessions_started``.
+``store_schema``
+    One row per schema version the file was brought to (``version``, ``applied_at``,
+    ``note``); the highest is the file's schema version, :data:`SCHEMA_VERSION` for a store
+    this engine created.  A store written before schema versions were recorded (schema 1:
+    no such table, no ``decision_rules_version``) is upgraded in place when it is opened
+    for writing; its sessions are marked with :data:`UNRECORDED_RULES_VERSION`.  A store
+    opened read-only is read as it is; a store of a newer schema is refused.
 
 Item security: the file holds the whole item bank and every examinee's answers, so a new
 store is created owner-only (mode 0600, whatever the umask); SQLite gives the ``-wal`` and
@@ -41,7 +51,6 @@ transaction (only a power cut may drop the last ones); pass ``durable=True`` for
 from __future__ import annotations
 
 import contextlib
-import hashlib
 import json
 import os
 import sqlite3
@@ -54,15 +63,22 @@ from typing import Callable, Iterator
 import attrs
 import sqlite_utils
 
-from ..bank.files import bank_to_json_text
 from ..bank.item_bank import ItemBank, read_bank_json_text
 from ..design.types import Design
 from ..errors import SessionError
 from ..jsonable import plain
+from ..kernel.fingerprints import bank_content, design_content
 
 #: Seconds a writer waits for another process's write lock before giving up.
 BUSY_TIMEOUT_SECONDS = 60.0
 STATUSES = ("active", "finished")
+#: The schema this engine writes.  1: the tables as first released, no version recorded;
+#: 2: ``sessions.decision_rules_version`` and the ``store_schema`` table.
+SCHEMA_VERSION = 2
+#: The decision rules version given, on upgrade, to sessions stored before versions were
+#: recorded.  Version 1 is the rule set of the engine when versions were introduced, whose
+#: decisions are those of the engine before it (DEVELOPERS.md).
+UNRECORDED_RULES_VERSION = 1
 EVENT_KINDS = ("item_given", "answer", "finished")
 
 _EVENT_COLUMNS = ("session_id", "seq", "kind", "item_id", "response", "scored", "theta", "se",
@@ -155,41 +171,6 @@ def to_json(obj) -> str:
     return json.dumps(plain(obj), separators=(",", ":"), allow_nan=False)
 
 
-def _sha256(text: str) -> str:
-    return hashlib.sha256(text.encode("utf-8")).hexdigest()
-
-
-def bank_content(bank: ItemBank) -> tuple[str, str]:
-    """``(bank_id, content)``: the bank as JSON text and its SHA-256 (cached on the bank)."""
-
-    def make():
-        text = bank_to_json_text(bank)
-        return _sha256(text), text
-
-    return bank.cached(("store_content",), make)
-
-
-def design_content(design: Design) -> tuple[str, str, str | None]:
-    """``(design_id, toml, exposure_parameters_json)`` of a design."""
-    from ..design.toml_file import design_to_toml
-
-    toml_text = design_to_toml(design)
-    # the id ignores where the design was read from (the header comment names the file)
-    neutral = design_to_toml(attrs.evolve(design, source=""))
-    params = None
-    if design.exposure_parameters is not None:
-        if design.exposure_strata:
-            # parameters conditional on ability: stored with their cut points; an object
-            # of lists cannot be mistaken for the unconditional item -> number layout
-            doc = {"exposure_strata": [float(c) for c in design.exposure_strata],
-                   "exposure_parameters": {str(k): [float(x) for x in v]
-                                           for k, v in sorted(design.exposure_parameters.items())}}
-        else:
-            doc = {str(k): float(v) for k, v in sorted(design.exposure_parameters.items())}
-        params = json.dumps(doc, separators=(",", ":"))
-    return _sha256(neutral + "\n" + (params or "")), toml_text, params
-
-
 def design_from_content(toml_text: str, params_json: str | None, *, design_id: str = "") -> Design:
     """Rebuild a stored design without touching any file (its parameters are stored too)."""
     from ..design.toml_file import design_from_dict
@@ -219,6 +200,9 @@ class SessionStore:
     before_commit : callable or None
         Called inside every write transaction just before COMMIT.  A hook for crash tests
         (a process killed here must leave the store unchanged); None in normal use.
+    schema_version : int
+        The file's schema version: :data:`SCHEMA_VERSION` once opened for writing (an older
+        store is upgraded on opening), the file's own when opened read-only.
     """
 
     def __init__(self, path: str | Path, *, create: bool = True, durable: bool = False,
@@ -257,46 +241,107 @@ class SessionStore:
             conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
             self._ensure_schema()
         except sqlite3.DatabaseError as exc:
+            self._close_quietly()
             raise SessionError(f"not a usable session store: {exc}", location=shown(self.path, limit=400)) from None
+        except SessionError:
+            self._close_quietly()
+            raise
+
+    def _close_quietly(self) -> None:
+        conn = getattr(self, "conn", None)
+        if conn is not None:
+            with contextlib.suppress(sqlite3.Error):
+                conn.close()
 
     # -- schema ------------------------------------------------------------------------
     _TABLES = ("sessions", "events", "banks", "designs", "exposure_counts", "bank_sessions")
+
+    def _found_schema_version(self) -> int | None:
+        """The file's schema version; None when it holds no store yet (no ``sessions`` table)."""
+        tables = set(self.db.table_names())
+        if "store_schema" in tables:
+            found = self.conn.execute("SELECT MAX(version) FROM store_schema").fetchone()[0]
+            if not isinstance(found, int):
+                raise SessionError("not a usable session store: its schema version is not recorded "
+                                   "(table 'store_schema' is empty)", location=shown(self.path, limit=400))
+            return found
+        return 1 if "sessions" in tables else None
+
+    def _refuse_newer(self, found: int | None) -> None:
+        if found is not None and found > SCHEMA_VERSION:
+            raise SessionError(f"the session store has schema version {found}, newer than this engine "
+                               f"reads (up to {SCHEMA_VERSION}); use the engine that wrote it, or a newer one",
+                               location=shown(self.path, limit=400))
 
     def _require_schema(self) -> None:
         tables = set(self.db.table_names())
         missing = [name for name in self._TABLES if name not in tables]
         if missing:
-            self.conn.close()
             raise SessionError(f"not a session store: table {missing[0]!r} is missing", location=self.path)
+        found = self._found_schema_version()
+        self._refuse_newer(found)
+        # an older schema is read as it is: nothing is changed through a read-only store
+        self.schema_version = found
 
     def _ensure_schema(self) -> None:
-        if all(self.db[name].exists() for name in self._TABLES):
-            return
-        with self.writing():
-            db = self.db
-            db["banks"].create({"bank_id": str, "name": str, "content": str}, pk="bank_id", if_not_exists=True)
-            db["designs"].create({"design_id": str, "content": str, "exposure_parameters": str},
-                                 pk="design_id", if_not_exists=True)
-            db["sessions"].create(
-                {"session_id": str, "examinee": str, "bank_id": str, "design_id": str, "status": str,
-                 "seed": int, "created_at": str, "updated_at": str, "state": str, "result": str,
-                 "prior_mean": float, "prior_sd": float, "last_seq": int, "n_given": int,
-                 "pending_item": str},
-                pk="session_id", if_not_exists=True,
-                foreign_keys=[("bank_id", "banks"), ("design_id", "designs")],
-            )
-            db["sessions"].create_index(["status"], if_not_exists=True)
-            db["events"].create(
-                {"event_id": int, "session_id": str, "seq": int, "kind": str, "item_id": str,
-                 "response": int, "scored": int, "theta": float, "se": float, "criterion": float,
-                 "eligible": int, "rng_state": str, "elapsed": float, "created_at": str, "reply": str},
-                pk="event_id", if_not_exists=True,
-            )
-            db["events"].create_index(["session_id", "seq"], unique=True, if_not_exists=True)
-            db["exposure_counts"].create({"bank_id": str, "item_id": str, "count": int},
-                                         pk=("bank_id", "item_id"), if_not_exists=True)
-            db["bank_sessions"].create({"bank_id": str, "sessions_started": int}, pk="bank_id",
-                                       if_not_exists=True)
+        found = self._found_schema_version()
+        if found != SCHEMA_VERSION:
+            self._refuse_newer(found)
+            with self.writing():
+                # again under the write lock: another process may have created or upgraded it
+                found = self._found_schema_version()
+                self._refuse_newer(found)
+                if found is None:
+                    self._create_tables()
+                    self._record_schema("created")
+                elif found < SCHEMA_VERSION:
+                    self._upgrade(found)
+        self.schema_version = SCHEMA_VERSION
+
+    def _create_tables(self) -> None:
+        """Every table of the current schema that is missing (inside a write transaction)."""
+        db = self.db
+        db["banks"].create({"bank_id": str, "name": str, "content": str}, pk="bank_id", if_not_exists=True)
+        db["designs"].create({"design_id": str, "content": str, "exposure_parameters": str},
+                             pk="design_id", if_not_exists=True)
+        db["sessions"].create(
+            {"session_id": str, "examinee": str, "bank_id": str, "design_id": str, "status": str,
+             "seed": int, "created_at": str, "updated_at": str, "state": str, "result": str,
+             "prior_mean": float, "prior_sd": float, "last_seq": int, "n_given": int,
+             "pending_item": str, "decision_rules_version": int},
+            pk="session_id", if_not_exists=True,
+            foreign_keys=[("bank_id", "banks"), ("design_id", "designs")],
+        )
+        db["sessions"].create_index(["status"], if_not_exists=True)
+        db["events"].create(
+            {"event_id": int, "session_id": str, "seq": int, "kind": str, "item_id": str,
+             "response": int, "scored": int, "theta": float, "se": float, "criterion": float,
+             "eligible": int, "rng_state": str, "elapsed": float, "created_at": str, "reply": str},
+            pk="event_id", if_not_exists=True,
+        )
+        db["events"].create_index(["session_id", "seq"], unique=True, if_not_exists=True)
+        db["exposure_counts"].create({"bank_id": str, "item_id": str, "count": int},
+                                     pk=("bank_id", "item_id"), if_not_exists=True)
+        db["bank_sessions"].create({"bank_id": str, "sessions_started": int}, pk="bank_id",
+                                   if_not_exists=True)
+        db["store_schema"].create({"version": int, "applied_at": str, "note": str}, pk="version",
+                                  if_not_exists=True)
+
+    def _record_schema(self, note: str) -> None:
+        self.conn.execute("INSERT INTO store_schema (version, applied_at, note) VALUES (?, ?, ?)",
+                          (SCHEMA_VERSION, now_text(), note))
+
+    def _upgrade(self, found: int) -> None:
+        """Bring a store of schema ``found`` to :data:`SCHEMA_VERSION` in place (one transaction)."""
+        # found == 1, the only older schema: sessions gain the decision rules version
+        columns = {c.name for c in self.db["sessions"].columns}
+        self._create_tables()
+        if "decision_rules_version" not in columns:
+            self.conn.execute("ALTER TABLE sessions ADD COLUMN decision_rules_version INTEGER")
+        self.conn.execute("UPDATE sessions SET decision_rules_version = ? WHERE decision_rules_version IS NULL",
+                          (UNRECORDED_RULES_VERSION,))
+        self._record_schema(f"upgraded in place from schema {found}; the sessions stored until then "
+                            f"started under decision rules version {UNRECORDED_RULES_VERSION}")
 
     # -- transactions --------------------------------------------------------------------
     @contextlib.contextmanager
@@ -370,12 +415,20 @@ class SessionStore:
     # -- sessions and events -------------------------------------------------------------
     _SESSION_FIELDS = ("session_id", "examinee", "bank_id", "design_id", "status", "seed",
                        "created_at", "updated_at", "state", "result", "prior_mean", "prior_sd",
-                       "last_seq", "n_given", "pending_item")
+                       "last_seq", "n_given", "pending_item", "decision_rules_version")
+
+    def _session_columns(self) -> str:
+        # a session without a recorded version was written by an engine from before versions
+        # (a schema 1 store read-only, or a row an older engine added after the upgrade)
+        unrecorded = ("COALESCE(decision_rules_version, {0})" if self.schema_version >= 2 else "{0}").format(
+            UNRECORDED_RULES_VERSION)
+        return ", ".join(f"{unrecorded} AS decision_rules_version" if c == "decision_rules_version" else c
+                         for c in self._SESSION_FIELDS)
 
     def session_row(self, session_id: str) -> dict:
         """The session's row as a dict; SessionError if there is no such session."""
         check_text(session_id, "the session id", location="session_id")
-        row = self.conn.execute(f"SELECT {', '.join(self._SESSION_FIELDS)} FROM sessions WHERE session_id = ?",
+        row = self.conn.execute(f"SELECT {self._session_columns()} FROM sessions WHERE session_id = ?",
                                 (session_id,)).fetchone()
         if row is None:
             raise SessionError(f"unknown session '{shown(session_id)}'", location=f"session {shown(session_id)}")
@@ -420,7 +473,12 @@ class SessionStore:
         if status is not None and status not in STATUSES:
             raise SessionError(f"status must be one of {', '.join(STATUSES)}, got '{shown(status)}'", location="status")
         where, args = ("status = ?", [status]) if status else (None, None)
-        return list(self.db["sessions"].rows_where(where, args, order_by="created_at, session_id"))
+        rows = list(self.db["sessions"].rows_where(where, args, order_by="created_at, session_id"))
+        for row in rows:
+            if row.get("decision_rules_version") is None:
+                # written by an engine from before versions (see session_row)
+                row["decision_rules_version"] = UNRECORDED_RULES_VERSION
+        return rows
 
     def exposure(self, bank_id: str) -> tuple[int, dict[str, int]]:
         """``(sessions_started, {item_id: count})`` for a bank."""
@@ -469,8 +527,9 @@ class SessionStore:
 
     def dump(self) -> dict[str, list[tuple]]:
         """Every row of every table, sorted (to compare the whole store before and after)."""
+        names = self._TABLES + (("store_schema",) if self.schema_version >= 2 else ())
         return {name: sorted(tuple(r) for r in self.conn.execute(f"SELECT * FROM {name}"))
-                for name in self._TABLES}
+                for name in names}
 
 
 def open_store(path: str | Path, *, create: bool = True, durable: bool = False,

@@ -1,0 +1,85 @@
+"""The version of the decision rules, and the rule sets this engine can run.
+
+A *decision* is anything the kernel settles for an examinee: which item comes next (and
+which is withheld), the interim and final estimates, when the test stops and why, and the
+final report.  :data:`DECISION_RULES_VERSION` names the rules this kernel applies.  It is
+bumped whenever a change to the code could change any decision for some design, bank, seed
+and answers (DEVELOPERS.md, "Decision rules and golden sequences", says when and how); the
+golden sequences of ``tests/data/golden_sequences.json`` make such a change show.
+
+A live session is pinned to the version it started under: it resumes by replaying its
+answers, which gives back its state only under the same rules.  :data:`RULE_SETS` lists
+every version this engine can run.  Today that is the current version alone; a future
+kernel that changes a decision may keep the previous rules installed by registering them
+here under their version (for example entry points that take the old behaviour), so that
+sessions started before the change finish under the rules they began with.
+"""
+
+from __future__ import annotations
+
+from types import MappingProxyType
+from typing import Callable, Mapping
+
+import attrs
+
+from . import cycle
+from .prepared import build_context
+
+#: The version of the decision rules of this kernel (a positive integer).
+DECISION_RULES_VERSION = 1
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class RuleSet:
+    """The kernel entry points of one version of the decision rules.
+
+    A driver that must honour a session's version (the live driver) calls these instead
+    of the module functions of :mod:`.cycle` and :mod:`.prepared`.
+
+    Attributes
+    ----------
+    version : int
+        The :data:`DECISION_RULES_VERSION` these entry points implement.
+    build_context : callable (design, bank) -> TestContext
+    start, answer, finish, rebuild : callable
+        As :func:`.cycle.start`, :func:`.cycle.answer`, :func:`.cycle.finish` and
+        :func:`.cycle.rebuild`.
+    """
+
+    version: int
+    build_context: Callable
+    start: Callable
+    answer: Callable
+    finish: Callable
+    rebuild: Callable
+
+
+#: Every rule set this engine can run, by version.
+RULE_SETS: Mapping[int, RuleSet] = MappingProxyType({
+    DECISION_RULES_VERSION: RuleSet(version=DECISION_RULES_VERSION, build_context=build_context,
+                                    start=cycle.start, answer=cycle.answer, finish=cycle.finish,
+                                    rebuild=cycle.rebuild),
+})
+
+
+def installed_versions() -> tuple[int, ...]:
+    """The versions of the decision rules this engine can run, ascending."""
+    return tuple(sorted(RULE_SETS))
+
+
+def rule_set(version) -> RuleSet | None:
+    """The installed rule set of ``version``, or None when this engine cannot run it.
+
+    Parameters
+    ----------
+    version : int or None
+        A stored version (None or anything not an installed version gives None).
+    """
+    if isinstance(version, bool) or not isinstance(version, int):
+        return None
+    return RULE_SETS.get(version)
+
+
+def current_rule_set() -> RuleSet:
+    """The rule set of :data:`DECISION_RULES_VERSION` (what new sessions start under)."""
+    return RULE_SETS[DECISION_RULES_VERSION]
