@@ -2,6 +2,9 @@
 
 * :mod:`.models` -- response functions of the 1PL-4PL, graded and generalized partial
   credit models, their derivatives and Fisher information;
+* :mod:`.multidimensional` -- the compensatory M2PL, M3PL and multidimensional graded
+  models in slope-intercept form: probabilities, derivatives, the information matrix,
+  information in a direction, MDISC and MDIFF;
 * :mod:`.posterior` -- the ability posterior on a grid (normal prior, weights, mean and SD);
 * :mod:`.estimation` -- MLE, MAP, EAP and WLE scoring of response patterns;
 * :mod:`.person_fit` -- the lz and lz* person-fit statistics;
