@@ -78,10 +78,10 @@ def test_the_arrays_are_read_only_and_params_follow_the_dimensions():
     assert params.n_dimensions == 2 and params.max_categories == 4
     np.testing.assert_array_equal(params.n_categories, bank.n_categories)
     with pytest.raises(BankError, match="2 ability dimensions"):
-        bank.params
+        _ = bank.params
     one_dimensional = read_bank_csv_text("item_id,model,a,b\nQ,2PL,1.2,0.3\n")
     with pytest.raises(BankError, match="one-dimensional models"):
-        one_dimensional.multidimensional_params
+        _ = one_dimensional.multidimensional_params
     assert one_dimensional.n_dimensions == 1 and one_dimensional.dimension_names == ("theta",)
     np.testing.assert_array_equal(one_dimensional.slopes, [[1.2]])
     np.testing.assert_allclose(one_dimensional.intercepts, [[-1.2 * 0.3]])
@@ -101,8 +101,9 @@ def test_with_one_dimension_a_bank_of_m2pl_m3pl_and_mgrm_items_is_the_2pl_3pl_an
     theta = np.linspace(-6, 6, 25)
     np.testing.assert_allclose(models.information(*models.outer(multi.params, theta)),
                                models.information(*models.outer(single.params, theta)), rtol=1e-12)
-    np.testing.assert_allclose(md.information_matrix(*md.outer(multi.multidimensional_params, theta[:, None]))[..., 0, 0],
-                               models.information(*models.outer(single.params, theta)), rtol=1e-8, atol=1e-12)
+    matrices = md.information_matrix(*md.outer(multi.multidimensional_params, theta[:, None]))
+    np.testing.assert_allclose(matrices[..., 0, 0], models.information(*models.outer(single.params, theta)),
+                               rtol=1e-8, atol=1e-12)
 
 
 ROW = "item_id,model,a1,a2,intercept,intercept1,intercept2,c,status\n"
