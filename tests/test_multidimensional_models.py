@@ -106,6 +106,9 @@ def test_category_probabilities_sum_to_one_and_logs_stay_finite(case):
     assert np.all(np.isfinite(log_p[has])) and np.all(log_p[~has] == -np.inf)
     info = md.slope_information(*outer)
     assert np.all(np.isfinite(info)) and np.all(info >= 0)
+    # the closed forms agree with the definition E[(d log P_X / d eta)^2] over the categories
+    score, _ = md.log_derivatives(*outer)
+    np.testing.assert_allclose(info, np.sum(p * score**2, axis=-1), rtol=1e-9, atol=1e-300)
 
 
 # ---------------------------------------------------------------------------------------

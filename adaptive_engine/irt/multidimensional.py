@@ -251,12 +251,60 @@ def _log_derivatives_from(D, log_p, zz, c, top):
 def slope_information(params: MultidimensionalParameters, theta) -> np.ndarray:
     """Fisher information about ``eta = a . theta``: ``J = sum_k P_k (d log P_k / d eta)^2``.
 
-    Shape ``R``.  The information matrix is ``J a a'`` (:func:`information_matrix`); ``J``
-    never divides by a probability, so it stays exact where a category's P underflows.
+    Shape ``R``.  The information matrix is ``J a a'`` (:func:`information_matrix`).
+    Dichotomous items (M2PL, M3PL) take the closed form ``J = D^2 (1 - c) s^2 t / P_1``
+    with ``s = 1 / (1 + exp(-z))``, ``t = 1 - s``, ``P_1 = c + (1 - c) s`` (Lord's 3PL
+    information in slope-intercept form); graded items without asymptote (MGRM) the
+    Samejima (1969) sum ``D^2 sum_k P_k (Q*_k - P*_k+1)^2`` in linear space; anything else
+    the same sum ``sum_k P_k r_k^2`` over the log-space probabilities and scores.  The formula is chosen item by item,
+    never by batch, so a batch gives what one row at a time gives.
     """
+    two = params.n_categories == 2
+    if np.all(two):
+        return _dichotomous_slope_information(params, theta)
+    graded = ~two & (params.c == 0)
+    if np.all(graded):
+        return _graded_slope_information(params, theta)
     log_p, zz, c, top = _log_terms(params, theta)
     score, _ = _log_derivatives_from(params.scaling, log_p, zz, c, top)
-    return np.sum(np.exp(log_p) * score * score, axis=-1)
+    out = np.sum(np.exp(log_p) * score * score, axis=-1)
+    if np.any(graded):
+        out = np.where(graded, _graded_slope_information(params, theta), out)
+    if np.any(two):
+        out = np.where(two, _dichotomous_slope_information(params, theta), out)
+    return out
+
+
+def _graded_slope_information(params: MultidimensionalParameters, theta) -> np.ndarray:
+    """``J`` of graded items without a lower asymptote, without logs.
+
+    ``J = D^2 sum_k P_k (Q*_k - P*_k+1)^2`` with ``P_k = P*_k Q*_k+1 (1 - exp(z_k+1 - z_k))``,
+    a product rather than the difference ``P*_k - P*_k+1``, which loses digits in the tails.
+    """
+    z, _, _ = _logits(params, theta)
+    zz = _padded(z)
+    star, star_c = expit(zz), expit(-zz)
+    upper, lower = zz[..., :-1], zz[..., 1:]
+    with np.errstate(invalid="ignore"):
+        # NaN where both ends are -inf: categories the item lacks
+        p = star[..., :-1] * star_c[..., 1:] * -np.expm1(lower - upper)
+    p = np.where(np.isnan(p), 0.0, p)
+    r = star_c[..., :-1] - star[..., 1:]
+    return (params.scaling * params.scaling) * np.sum(p * r * r, axis=-1)
+
+
+def _dichotomous_slope_information(params: MultidimensionalParameters, theta) -> np.ndarray:
+    """``J`` of the M2PL/M3PL (column 0 of the intercepts), without the category axis."""
+    D = params.scaling
+    z = D * (projection(params, theta) + params.intercepts[..., 0])
+    # beyond |z| = 700 both s and t are exact to double precision; clipping keeps exp finite
+    e = np.exp(-np.clip(z, -700.0, 700.0))
+    s = 1.0 / (1.0 + e)
+    t = e * s
+    c = params.c
+    p1 = c + (1.0 - c) * s
+    num = (D * D) * (1.0 - c) * s * s * t
+    return np.divide(num, p1, out=np.zeros(np.broadcast_shapes(num.shape, p1.shape)), where=p1 > 1e-300)
 
 
 def _broadcast_slopes(params: MultidimensionalParameters, shape) -> np.ndarray:
