@@ -266,14 +266,16 @@ def write_bank(bank: ItemBank, path: str | Path) -> Path:
     return path
 
 
-def convert_bank(bank_path: str | Path, out_path: str | Path, *,
-                 scaling: float | None = None) -> tuple[ItemBank, Path]:
+def convert_bank(bank_path: str | Path, out_path: str | Path, *, scaling: float | None = None,
+                 dimensions: list[str] | None = None) -> tuple[ItemBank, Path]:
     """Load and validate the bank in ``bank_path`` and write it to ``out_path``.
 
     The output format follows the suffix of ``out_path``.  ``scaling`` is passed to
     :func:`~adaptive_engine.bank.load_bank` (D of a CSV bank; must agree with the D of a JSON
-    or SQLite bank).  A bank whose D is not 1 is never written to CSV: the CSV format has no
-    place for D, and reading the file back would silently give D = 1.
+    or SQLite bank), and so is ``dimensions`` (dimension names).  A bank whose D is not 1 is
+    never written to CSV: the CSV format has no place for D, and reading the file back would
+    silently give D = 1.  (Dimension names, which CSV cannot hold either, are given again
+    when the CSV copy is read: ``--dimensions``.)
 
     Returns
     -------
@@ -282,7 +284,7 @@ def convert_bank(bank_path: str | Path, out_path: str | Path, *,
     """
     from .item_bank import load_bank
 
-    bank = load_bank(bank_path, scaling=scaling)
+    bank = load_bank(bank_path, scaling=scaling, dimensions=dimensions)
     return bank, write_bank(bank, Path(out_path))
 
 
