@@ -23,6 +23,7 @@ ITEM_BANKS = REPO / "item_banks"
 SCHEMA = REPO / "adaptive_engine" / "bank" / "schema" / "item_bank.schema.json"
 DEMO_FILES = ["meridian_valley_operator.csv", "meridian_valley_operator.json",
               "staff_climate_survey.csv", "staff_climate_survey.json",
+              "meridian_valley_operator_2d.csv", "meridian_valley_operator_2d.json",
               "meridian_valley_responses.csv", "staff_climate_responses.csv"]
 
 
@@ -244,7 +245,8 @@ def _validator():
     return _cached_validator()
 
 
-@pytest.mark.parametrize("name", ["meridian_valley_operator.json", "staff_climate_survey.json"])
+@pytest.mark.parametrize("name", ["meridian_valley_operator.json", "staff_climate_survey.json",
+                                  "meridian_valley_operator_2d.json"])
 def test_demo_json_banks_validate_against_the_schema(name):
     # oracle: the jsonschema package's draft 2020-12 validator
     errors = list(_validator().iter_errors(json.loads((ITEM_BANKS / name).read_text())))
