@@ -266,3 +266,45 @@ def test_summed_information_works_in_blocks_of_items(monkeypatch, exam):
     np.testing.assert_allclose(mds.summed_information_matrix(exam, points, np.arange(len(exam))), whole,
                                rtol=1e-12)
     np.testing.assert_allclose(whole, direct_matrices(exam, points, range(len(exam))), rtol=1e-10)
+
+
+# ---------------------------------------------------------------------------------------
+# the one-dimensional engine: K = 1 banks run in it, K > 1 banks are refused by name
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["score", EXAM_2D, "RESPONSES"], "bank meridian_valley_operator_2d: the bank has 2 ability dimensions"),
+    (["design", "check", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D],
+     "bank meridian_valley_operator_2d: the bank has 2 ability dimensions"),
+    (["simulate", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D, "--examinees", "5",
+      "--out", "OUT"], "the bank has 2 ability dimensions"),
+    (["calibrate", "RESPONSES", "--template", EXAM_2D, "--out", "OUT.json"],
+     "--template: bank meridian_valley_operator_2d holds multidimensional models"),
+    (["link", EXAM_2D, "--to", REPO / "item_banks" / "meridian_valley_operator.json", "--out", "OUT.json"],
+     "BANK: bank meridian_valley_operator_2d holds multidimensional models"),
+])
+def test_commands_of_the_one_dimensional_engine_refuse_a_two_dimensional_bank(tmp_path, args, fragment):
+    responses = tmp_path / "answers.csv"
+    responses.write_text("person_id,item_id,response\np1,MV2-TRT-002,1\np1,MV2-SAF-029,2\n")
+    args = [str(responses) if a == "RESPONSES" else str(tmp_path / a) if str(a).startswith("OUT") else str(a)
+            for a in args]
+    result = CliRunner().invoke(main, args)
+    assert result.exit_code == 2, result.output
+    assert fragment in result.output
+    assert not (tmp_path / "OUT").exists() and not (tmp_path / "OUT.json").exists()
+
+
+def test_a_one_dimensional_bank_of_m2pl_items_scores_like_the_2pl_bank(tmp_path):
+    # reference: the 2PL bank with b = -intercept / a, scored by the one-dimensional engine
+    multi, single = tmp_path / "m2pl.csv", tmp_path / "2pl.csv"
+    multi.write_text("item_id,model,a1,intercept\nQ1,M2PL,1.1,0.3\nQ2,M2PL,0.8,-0.2\nQ3,M2PL,1.6,-1.0\n")
+    single.write_text(f"item_id,model,a,b\nQ1,2PL,1.1,{-0.3 / 1.1!r}\nQ2,2PL,0.8,{0.2 / 0.8!r}\n"
+                      f"Q3,2PL,1.6,{1.0 / 1.6!r}\n")
+    answers = tmp_path / "answers.csv"
+    answers.write_text("person_id,item_id,response\np1,Q1,1\np1,Q2,0\np1,Q3,1\np2,Q1,0\np2,Q3,0\n")
+    outputs = []
+    for bank in (multi, single):
+        rows = list(csv.reader(io.StringIO(run("score", bank, answers).output)))
+        assert rows[0] == ["person_id", "theta", "se", "n_items"] and [r[0] for r in rows[1:]] == ["p1", "p2"]
+        outputs.append(np.array([r[1:] for r in rows[1:]], dtype=float))
+    np.testing.assert_allclose(outputs[0], outputs[1], rtol=0, atol=1e-6)
