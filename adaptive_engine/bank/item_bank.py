@@ -270,18 +270,19 @@ class ItemBank:
         BankError
             For a bank of more than one dimension: one-dimensional models cannot score it.
         """
-        if self.n_dimensions > 1:
-            raise BankError(
-                f"the bank has {self.n_dimensions} ability dimensions ({', '.join(self.dimension_names)}); "
-                "this step works with one-dimensional banks only", location=f"bank {self.name}".strip())
-        return self.cached(
-            "params",
-            lambda: models.ItemParameters(
+        def make():
+            # inside the cached maker: a hot path reading bank.params pays for no check
+            if self.n_dimensions > 1:
+                raise BankError(
+                    f"the bank has {self.n_dimensions} ability dimensions ({', '.join(self.dimension_names)}); "
+                    "this step works with one-dimensional banks only", location=f"bank {self.name}".strip())
+            return models.ItemParameters(
                 family=self.family, a=self.a, b=self.b, c=self.c, d=self.d,
                 thresholds=self.thresholds, n_categories=self.n_categories,
                 scaling=self.scaling,
-            ),
-        )
+            )
+
+        return self.cached("params", make)
 
     @property
     def index_of(self) -> dict:
