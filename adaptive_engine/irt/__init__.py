@@ -14,11 +14,13 @@
 from .curves import expected_score_curve, item_information, standard_error_curve, test_information
 from .estimation import METHODS, AbilityEstimates, estimate, score_responses
 from .models import ItemParameters
+from .multidimensional import MultidimensionalParameters
 from .person_fit import PersonFit
 from .posterior import DEFAULT_GRID, normal_log_prior, posterior_mean_sd, posterior_weights
 
 __all__ = [
-    "DEFAULT_GRID", "METHODS", "AbilityEstimates", "ItemParameters", "PersonFit", "estimate",
+    "DEFAULT_GRID", "METHODS", "AbilityEstimates", "ItemParameters", "MultidimensionalParameters", "PersonFit",
+    "estimate",
     "expected_score_curve", "item_information", "normal_log_prior",
     "posterior_mean_sd", "posterior_weights", "score_responses", "standard_error_curve",
     "test_information",
