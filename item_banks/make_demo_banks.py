@@ -6,7 +6,10 @@ Run ``python item_banks/make_demo_banks.py [OUT_DIR]`` (default: this folder).  
   Meridian Valley water-operator licensing exam;
 * ``staff_climate_survey.csv`` / ``.json`` -- 40 rated items (answers 0-4) of the
   staff-climate survey the (equally fictional) Meridian Valley water utility gives its
-  plant operators, field crews, control-room and lab staff.
+  plant operators, field crews, control-room and lab staff;
+* ``meridian_valley_operator_2d.csv`` / ``.json`` -- 360 items of a two-dimensional variant
+  of the operator exam (M2PL, M3PL and MGRM items; dimensions ``treatment_operations`` and
+  ``regulation_and_safety``).
 
 and two long response files (``person_id,item_id,response``) of invented people answering
 them, for the README tour (``adaptive-engine score``, calibration):
@@ -44,6 +47,27 @@ random without replacement from the operational items (in the order listed, as i
 administered), and each answer is drawn from the bank's own model at that ability (one
 uniform number per answer, compared with the cumulative category probabilities).
 
+Two-dimensional operator exam (scaling D = 1.0, logistic metric, slope-intercept form)
+    * dimensions ``treatment_operations`` (running the plant and the network) and
+      ``regulation_and_safety`` (rules, monitoring duties, safe work), meant for a population
+      in which the two correlate about 0.6;
+    * five areas: source_water 60, treatment_processes 90 and distribution_systems 60 items
+      measure treatment_operations first; safety_and_regulations 90 and lab_and_monitoring 60
+      measure regulation_and_safety first;
+    * mostly simple structure: an item measures its area's dimension only, except 10 % of the
+      items (15 % in source water and distribution, 40 % in the lab area, where monitoring
+      duties draw on plant knowledge) which also measure the other one;
+    * models: M3PL 78 % (four-option multiple choice), M2PL 12 % (numeric entry), MGRM 10 %
+      (work orders scored 0-2);
+    * slope on the item's own dimension: log a ~ N(0.1, 0.3^2); on the other dimension (items
+      measuring both): log a ~ N(-0.4, 0.3^2); 0 otherwise;
+    * MDIFF ~ N(mu_area, 1) with the area means of the one-dimensional exam, turned into the
+      intercept ``-MDISC * MDIFF`` (Reckase 1985); MGRM boundaries at MDIFF + sorted((-0.8,
+      0.8) + N(0, 0.15^2)); c ~ Beta(5, 17) for M3PL items;
+    * 10 enemy groups (6 pairs, 4 triples) of near-duplicates in one area (the same slopes,
+      MDIFF within N(0, 0.15^2) of the group's first item), 6 item sets of 3-5 items sharing a
+      scenario, and 15 pretest items outside sets and enemy groups.
+
 Staff-climate survey (scaling D = 1.0; categories 0 = strongly disagree .. 4 = strongly agree)
     * four areas of 10 items: workload, team_support, leadership, wellbeing; every statement
       is written for this utility (shifts, plant, crews, control room, briefings) and
@@ -75,6 +99,7 @@ from adaptive_engine.irt.models import probabilities as category_probabilities  
 OPERATOR_SEED = 20_240_611
 SURVEY_SEED = 20_240_612
 OPERATOR_RESPONSES_SEED = 20_240_613
+OPERATOR_2D_SEED = 20_240_615
 SURVEY_RESPONSES_SEED = 20_240_614
 #: (file name, persons, items per person, person id prefix) of each response file
 OPERATOR_RESPONSES = ("meridian_valley_responses.csv", 300, 30, "MV-CAND")
@@ -198,6 +223,21 @@ SURVEY_AREAS = {
         "I plan to build my career at Meridian Valley Water",
     ],
 }
+#: The two-dimensional exam: its dimensions, and per area (id code, items, own dimension,
+#: share of items measuring both dimensions).
+OPERATOR_2D_DIMENSIONS = ("treatment_operations", "regulation_and_safety")
+OPERATOR_2D_AREAS = {
+    "source_water": ("SRC", 60, 0, 0.15),
+    "treatment_processes": ("TRT", 90, 0, 0.10),
+    "distribution_systems": ("DST", 60, 0, 0.15),
+    "lab_and_monitoring": ("LAB", 60, 1, 0.40),
+    "safety_and_regulations": ("SAF", 90, 1, 0.10),
+}
+OPERATOR_2D_MODELS = (("M3PL", 0.78), ("M2PL", 0.12), ("MGRM", 0.10))
+OPERATOR_2D_SETS = 6
+OPERATOR_2D_ENEMY_GROUPS = (6, 4)  # pairs, triples
+OPERATOR_2D_PRETEST = 15
+MGRM_BASE = np.array([-0.8, 0.8])
 GRM_BASE = np.array([-2.0, -0.8, 0.3, 1.5])
 GPCM_BASE = np.array([-1.5, -0.5, 0.5, 1.5])
 
@@ -270,6 +310,83 @@ def free_items_any(rng: np.random.Generator, records: list, taken: set, k: int) 
     return sorted(int(i) for i in rng.choice(pool, size=k, replace=False))
 
 
+def _operator_2d_item(rng: np.random.Generator, model: str, own: int, both: bool, mean_b: float) -> dict:
+    slopes = [0.0, 0.0]
+    slopes[own] = _round(np.exp(rng.normal(0.1, 0.3)))
+    if both:
+        slopes[1 - own] = _round(np.exp(rng.normal(-0.4, 0.3)))
+    mdisc = float(np.hypot(*slopes))
+    mdiff = rng.normal(mean_b, 1.0)
+    rec = {"model": model, "slopes": slopes}
+    if model == "MGRM":
+        boundaries = mdiff + np.sort(MGRM_BASE + rng.normal(0.0, 0.15, size=MGRM_BASE.size))
+        rec["intercepts"] = [_round(-mdisc * x) for x in boundaries]
+    else:
+        rec["intercept"] = _round(-mdisc * mdiff)
+    if model == "M3PL":
+        rec["c"] = _round(rng.beta(5, 17))
+    return rec
+
+
+def _shift_difficulty(rec: dict, shift: float) -> None:
+    """Move an item's MDIFF by ``shift`` (every boundary), keeping its slopes."""
+    mdisc = float(np.hypot(*rec["slopes"]))
+    if "intercepts" in rec:
+        rec["intercepts"] = [_round(x - mdisc * shift) for x in rec["intercepts"]]
+    else:
+        rec["intercept"] = _round(rec["intercept"] - mdisc * shift)
+
+
+def make_operator_2d_bank(seed: int = OPERATOR_2D_SEED) -> ItemBank:
+    """The two-dimensional Meridian Valley operator exam (360 M2PL, M3PL and MGRM items)."""
+    rng = np.random.default_rng(seed)
+    names, shares = zip(*OPERATOR_2D_MODELS)
+    records = []
+    for area, (code, n_items, own, share_both) in OPERATOR_2D_AREAS.items():
+        _, mean_b, topics = OPERATOR_AREAS[area]
+        labels = [f"{t}: {aspect}" for t in topics for aspect in OPERATOR_ASPECTS]
+        order = rng.permutation(len(labels))
+        models = rng.choice(names, size=n_items, p=shares)
+        both = rng.random(n_items) < share_both
+        for j in range(n_items):
+            rec = _operator_2d_item(rng, str(models[j]), own, bool(both[j]), mean_b)
+            rec.update(item_id=f"MV2-{code}-{j + 1:03d}", area=area, item_set="", enemy_group=[],
+                       status="operational", label=labels[order[j]])
+            records.append(rec)
+    by_area = {area: [i for i, r in enumerate(records) if r["area"] == area] for area in OPERATOR_2D_AREAS}
+    taken: set[int] = set()
+
+    def free_items(area, k):
+        pool = [i for i in by_area[area] if i not in taken]
+        chosen = [int(i) for i in rng.choice(pool, size=k, replace=False)]
+        taken.update(chosen)
+        return chosen
+
+    scenarios = [(area, scenario) for area, names_ in OPERATOR_SCENARIOS.items() for scenario in names_[:2]]
+    for number, (area, scenario) in enumerate(scenarios[:OPERATOR_2D_SETS], start=1):
+        set_id = f"set_{OPERATOR_AREAS[area][0].lower()}_{number:02d}"
+        for i in free_items(area, int(rng.integers(3, 6))):
+            records[i]["item_set"] = set_id
+            records[i]["label"] = f"{scenario} - {records[i]['label']}"
+    areas = list(OPERATOR_2D_AREAS)
+    pairs, triples = OPERATOR_2D_ENEMY_GROUPS
+    for g in range(pairs + triples):
+        members = free_items(areas[g % len(areas)], 2 if g < pairs else 3)
+        first = records[members[0]]
+        for n, i in enumerate(members):
+            records[i]["enemy_group"] = [f"enemy_{g + 1:02d}"]
+            if n:
+                variant = {k: v for k, v in first.items() if k not in ("item_id", "status")}
+                variant.update(item_id=records[i]["item_id"], status=records[i]["status"],
+                               label=f"{first['label']} (variant {n})", enemy_group=[f"enemy_{g + 1:02d}"])
+                _shift_difficulty(variant, rng.normal(0.0, 0.15))
+                records[i] = variant
+    for i in free_items_any(rng, records, taken, OPERATOR_2D_PRETEST):
+        records[i]["status"] = "pretest"
+    return bank_from_records(records, scaling=1.0, name="meridian_valley_operator_2d",
+                             dimensions=list(OPERATOR_2D_DIMENSIONS))
+
+
 def make_survey_bank(seed: int = SURVEY_SEED) -> ItemBank:
     """The staff-climate survey bank (40 items, GRM and GPCM, categories 0-4)."""
     rng = np.random.default_rng(seed)
@@ -328,7 +445,7 @@ def simulate_responses(bank: ItemBank, n_persons: int, n_items: int, prefix: str
 
 
 def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
-    """Write the four demo bank files and the two response files into ``out_dir``.
+    """Write the six demo bank files and the two response files into ``out_dir``.
 
     Returns the paths written.
 
@@ -342,7 +459,7 @@ def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
         raise AdaptiveEngineError(f"the output folder {out_dir} does not exist", location=str(out_dir))
     written = []
     operator, survey = make_operator_bank(), make_survey_bank()
-    for bank in (operator, survey):
+    for bank in (operator, survey, make_operator_2d_bank()):
         for suffix in (".csv", ".json"):
             written.append(write_bank(bank, out_dir / f"{bank.name}{suffix}"))
     for bank, (name, n_persons, n_items, prefix), seed in (

@@ -8,6 +8,8 @@ shared vocabulary:
   :func:`any_items` -- one item's parameters as a plain record (the JSON item format).
 * :func:`item_parameters` -- :class:`adaptive_engine.irt.models.ItemParameters` for n items.
 * :func:`item_banks` -- small valid :class:`adaptive_engine.bank.ItemBank` objects.
+* :func:`slope_vectors`, :func:`multidimensional_items`, :func:`multidimensional_parameters`,
+  :func:`multidimensional_banks` -- the same for the M2PL, M3PL and MGRM (K dimensions).
 
 Parameter ranges are those of calibrated operational banks (common practice):
 a in [0.2, 3], b in [-3, 3], c in [0, 0.35], d in [0.8, 1], ordered thresholds.
@@ -135,6 +137,77 @@ def item_banks(draw, *, min_items: int = 1, max_items: int = 8, items=None) -> I
         out.append(rec)
     scaling = draw(st.sampled_from((1.0, 1.702)))
     return bank_from_records(out, scaling=scaling, name="generated")
+
+
+# ----------------------------------------------------------------------------------------
+# multidimensional items (M2PL, M3PL, MGRM) and banks of them
+
+#: Slopes of multidimensional items: 0 (the item does not measure a dimension) or in this range.
+SLOPE_RANGE = (0.2, 2.5)
+INTERCEPT_RANGE = (-4.0, 4.0)
+
+
+@st.composite
+def slope_vectors(draw, k: int):
+    """A slope vector of length ``k``: entries 0 or in ``SLOPE_RANGE``, at least one positive."""
+    slopes = draw(st.lists(st.just(0.0) | _floats(*SLOPE_RANGE), min_size=k, max_size=k))
+    if not any(slopes):
+        slopes[draw(st.integers(0, k - 1))] = draw(_floats(*SLOPE_RANGE))
+    return slopes
+
+
+@st.composite
+def multidimensional_items(draw, *, k: int, model: str | None = None, max_m: int = 4):
+    """One M2PL, M3PL or MGRM item record (the JSON item format) with ``k`` slopes."""
+    model = model or draw(st.sampled_from(("M2PL", "M3PL", "MGRM")))
+    rec = {"model": model, "slopes": draw(slope_vectors(k))}
+    if model == "MGRM":
+        m = draw(st.integers(1, max_m))
+        start = draw(_floats(-1.0, INTERCEPT_RANGE[1]))
+        gaps = draw(st.lists(_floats(0.05, 1.5), min_size=m - 1, max_size=m - 1))
+        rec["intercepts"] = list(start - np.concatenate([[0.0], np.cumsum(gaps)]))
+    else:
+        rec["intercept"] = draw(_floats(*INTERCEPT_RANGE))
+    if model == "M3PL":
+        rec["c"] = draw(_floats(*C_RANGE))
+    return rec
+
+
+def records_to_multidimensional_parameters(records, *, scaling: float = 1.0):
+    """Turn multidimensional item records into
+    :class:`~adaptive_engine.irt.multidimensional.MultidimensionalParameters`."""
+    from adaptive_engine.irt.multidimensional import MultidimensionalParameters
+
+    lists = [r["intercepts"] if "intercepts" in r else [r["intercept"]] for r in records]
+    intercepts = np.full((len(records), max(len(x) for x in lists)), np.nan)
+    for i, x in enumerate(lists):
+        intercepts[i, : len(x)] = x
+    return MultidimensionalParameters(slopes=[r["slopes"] for r in records], intercepts=intercepts,
+                                      c=[r.get("c", 0.0) for r in records], scaling=scaling)
+
+
+def multidimensional_parameters(*, k: int, min_items: int = 1, max_items: int = 6, model: str | None = None,
+                                scalings=st.sampled_from((1.0, 1.702))):
+    """``MultidimensionalParameters`` of 1..``max_items`` items with ``k`` dimensions."""
+    return st.builds(lambda recs, D: records_to_multidimensional_parameters(recs, scaling=D),
+                     st.lists(multidimensional_items(k=k, model=model), min_size=min_items, max_size=max_items),
+                     scalings)
+
+
+@st.composite
+def multidimensional_banks(draw, *, k: int | None = None, min_items: int = 1, max_items: int = 8) -> ItemBank:
+    """A small valid bank of M2PL/M3PL/MGRM items (K = 1..3), dimension names now and then."""
+    k = k if k is not None else draw(st.integers(1, 3))
+    recs = draw(st.lists(multidimensional_items(k=k), min_size=min_items, max_size=max_items))
+    out = [dict(rec, item_id=f"item-{i:03d}", area=draw(st.sampled_from(AREAS)),
+                item_set=draw(st.sampled_from(("", "", "set-a"))),
+                enemy_group=draw(st.sampled_from(("", "", "e1", "e1;e2"))),
+                status=draw(st.sampled_from(("operational", "operational", "pretest"))),
+                label=draw(st.sampled_from(("", "A plain label", "Comma, quote \" and é"))))
+           for i, rec in enumerate(recs)]
+    names = draw(st.none() | st.just([f"skill_{j}" for j in range(1, k + 1)]))
+    return bank_from_records(out, scaling=draw(st.sampled_from((1.0, 1.702))), name="generated_mirt",
+                             dimensions=names)
 
 
 # ----------------------------------------------------------------------------------------

@@ -23,6 +23,7 @@ ITEM_BANKS = REPO / "item_banks"
 SCHEMA = REPO / "adaptive_engine" / "bank" / "schema" / "item_bank.schema.json"
 DEMO_FILES = ["meridian_valley_operator.csv", "meridian_valley_operator.json",
               "staff_climate_survey.csv", "staff_climate_survey.json",
+              "meridian_valley_operator_2d.csv", "meridian_valley_operator_2d.json",
               "meridian_valley_responses.csv", "staff_climate_responses.csv"]
 
 
@@ -244,7 +245,8 @@ def _validator():
     return _cached_validator()
 
 
-@pytest.mark.parametrize("name", ["meridian_valley_operator.json", "staff_climate_survey.json"])
+@pytest.mark.parametrize("name", ["meridian_valley_operator.json", "staff_climate_survey.json",
+                                  "meridian_valley_operator_2d.json"])
 def test_demo_json_banks_validate_against_the_schema(name):
     # oracle: the jsonschema package's draft 2020-12 validator
     errors = list(_validator().iter_errors(json.loads((ITEM_BANKS / name).read_text())))
@@ -290,6 +292,35 @@ def test_written_json_always_validates(bank):
     {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "enemy_group": 4},
     {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "enemy_group": ["e1", 2]},
     {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "enemy_group": ["e1", ""]},
+    # multidimensional items: slopes none negative and one positive, the right intercepts, c for M3PL only,
+    # none of the one-dimensional fields (and one-dimensional items none of theirs)
+    {"item_id": "Q", "model": "M2PL", "slopes": [1.0, -0.2], "intercept": 0.0},
+    {"item_id": "Q", "model": "M2PL", "slopes": [0.0, 0.0], "intercept": 0.0},
+    {"item_id": "Q", "model": "M2PL", "slopes": [], "intercept": 0.0},
+    {"item_id": "Q", "model": "M2PL", "slopes": [1.0, "0.5"], "intercept": 0.0},
+    {"item_id": "Q", "model": "M2PL", "a1": 1.0, "a2": -0.5, "intercept": 0.0},
+    {"item_id": "Q", "model": "M2PL", "a1": 1.0, "a2": "0.5", "intercept": 0.0},
+    {"item_id": "Q", "model": "M2PL", "intercept": 0.0},
+    {"item_id": "Q", "model": "M2PL", "slopes": [1.0]},
+    {"item_id": "Q", "model": "M2PL", "slopes": [1.0], "intercept": "0.2"},
+    {"item_id": "Q", "model": "M2PL", "slopes": [1.0], "intercepts": [0.2]},
+    {"item_id": "Q", "model": "M2PL", "slopes": [1.0], "intercept": 0.2, "c": 0.2},
+    {"item_id": "Q", "model": "M3PL", "slopes": [1.0], "intercept": 0.2, "c": 1.0},
+    {"item_id": "Q", "model": "M3PL", "slopes": [1.0], "intercept": 0.2, "c": True},
+    {"item_id": "Q", "model": "MGRM", "slopes": [1.0], "intercept": 0.2},
+    {"item_id": "Q", "model": "MGRM", "slopes": [1.0], "intercepts": [0.2], "intercept": 0.2},
+    {"item_id": "Q", "model": "MGRM", "slopes": [1.0], "intercepts": []},
+    {"item_id": "Q", "model": "MGRM", "slopes": [1.0], "intercepts": [0.2, None]},
+    {"item_id": "Q", "model": "MGRM", "slopes": [1.0], "intercepts": [0.2], "c": 0.1},
+    {"item_id": "Q", "model": "M2PL", "slopes": [1.0], "intercept": 0.2, "a": 1.0},
+    {"item_id": "Q", "model": "M2PL", "slopes": [1.0], "intercept": 0.2, "b": 0.0},
+    {"item_id": "Q", "model": "M3PL", "slopes": [1.0], "intercept": 0.2, "d": 0.9},
+    {"item_id": "Q", "model": "MGRM", "slopes": [1.0], "intercepts": [0.2], "thresholds": [0.1]},
+    {"item_id": "Q", "model": "M2PL", "slopes": [1.0], "intercept": 0.2, "a0": 1.0},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "slopes": [1.0]},
+    {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "intercept": 0.3},
+    {"item_id": "Q", "model": "GRM", "a": 1.0, "thresholds": [0.1], "intercept1": 0.3},
+    {"item_id": "Q", "model": "3PL", "a": 1.0, "b": 0.0, "a1": 1.0},
 ])
 def test_schema_and_loader_both_refuse(item):
     doc = {"scaling": 1.0, "items": [item]}
@@ -300,7 +331,10 @@ def test_schema_and_loader_both_refuse(item):
 
 
 @pytest.mark.parametrize("top", [{"scaling": "1.702"}, {"scaling": True}, {"name": 5},
-                                 {"description": None}, {"metadata": []}, {"items": []}])
+                                 {"description": None}, {"metadata": []}, {"items": []},
+                                 {"dimensions": "theta"}, {"dimensions": []}, {"dimensions": ["x", "x"]},
+                                 {"dimensions": ["two words"]}, {"dimensions": [3]}, {"dimensions": ["9lives"]},
+                                 {"dimensions": [f"d{j}" for j in range(21)]}])
 def test_schema_and_loader_both_refuse_top_level(top):
     doc = {"items": [{"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0}], **top}
     assert list(_validator().iter_errors(doc))
@@ -317,12 +351,44 @@ def test_schema_and_loader_both_refuse_top_level(top):
     {"item_id": "Q", "model": "GRM", "a": 1.0, "thresholds": [-1, 0.5], "enemy_group": "e1;e2"},
     {"item_id": "Q", "model": "2PL", "a": 1.0, "b": 0.0, "enemy_group": ["e1", "e2"], "item_set": "",
      "label": "", "area": "pumps", "status": "pretest"},
+    {"item_id": "Q", "model": "M2PL", "slopes": [0.0, 1.3], "intercept": -0.4, "c": 0},
+    {"item_id": "Q", "model": "M3PL", "a1": 1, "a2": 0, "intercept": 0.5, "c": 0.2, "area": "pumps"},
+    {"item_id": "Q", "model": "MGRM", "slopes": [0.4, 0.9], "intercept1": 1.2, "intercept2": -0.3},
 ])
 def test_schema_and_loader_both_accept(item):
     doc = {"scaling": 1.702, "name": "n", "metadata": {"k": 1}, "items": [item]}
     assert not list(_validator().iter_errors(doc))
     from adaptive_engine.bank import read_bank_json_text
     assert len(read_bank_json_text(json.dumps(doc))) == 1
+
+
+@pytest.mark.parametrize("items", [
+    [{"item_id": "Q1", "model": "M2PL", "slopes": [1.0], "intercept": 0.0},
+     {"item_id": "Q2", "model": "2PL", "a": 1.0, "b": 0.0}],
+    [{"item_id": "Q1", "model": "GRM", "a": 1.0, "thresholds": [0.0]},
+     {"item_id": "Q2", "model": "MGRM", "slopes": [1.0], "intercepts": [0.0]}],
+])
+def test_schema_and_loader_both_refuse_a_mix_of_one_and_multidimensional_items(items):
+    doc = {"items": items}
+    assert list(_validator().iter_errors(doc))
+    from adaptive_engine.bank import read_bank_json_text
+    with pytest.raises(BankError, match="not both"):
+        read_bank_json_text(json.dumps(doc))
+
+
+@pytest.mark.parametrize("doc, fragment", [
+    # what the schema cannot say, the loader still refuses
+    ({"items": [{"item_id": "Q", "model": "MGRM", "slopes": [1.0], "intercepts": [0.2, 0.5]}]}, "strictly decreasing"),
+    ({"items": [{"item_id": "Q1", "model": "M2PL", "slopes": [1.0], "intercept": 0.0},
+                {"item_id": "Q2", "model": "M2PL", "slopes": [1.0, 0.4], "intercept": 0.0}]}, "K = 1 dimension"),
+    ({"dimensions": ["x", "y"], "items": [{"item_id": "Q", "model": "M2PL", "slopes": [1.0], "intercept": 0.0}]},
+     "2 dimension names for a bank of 1 dimension"),
+])
+def test_the_loader_checks_what_the_schema_cannot_express(doc, fragment):
+    assert not list(_validator().iter_errors(doc))
+    from adaptive_engine.bank import read_bank_json_text
+    with pytest.raises(BankError, match=fragment):
+        read_bank_json_text(json.dumps(doc))
 
 
 def test_json_type_errors_are_located():

@@ -39,14 +39,17 @@ def _bank_json(name: str, n_items: int) -> str:
     doc["items"] = doc["items"][:n_items]
     # one item per line, as the shipped files are written
     lines = ",\n".join("  " + json.dumps(item, ensure_ascii=False) for item in doc["items"])
-    return '{"scaling": %s, "name": %s, "items": [\n%s\n]}\n' % (doc["scaling"], json.dumps(doc["name"]), lines)
+    dimensions = f'"dimensions": {json.dumps(doc["dimensions"])}, ' if "dimensions" in doc else ""
+    return '{"scaling": %s, "name": %s, %s"items": [\n%s\n]}\n' % (doc["scaling"], json.dumps(doc["name"]),
+                                                                  dimensions, lines)
 
 
 def _first_lines(path: Path, n: int) -> str:
     return "".join(path.read_text(encoding="utf-8").splitlines(keepends=True)[:n])
 
 
-BANKS = [_bank_json("meridian_valley_operator.json", 25), _bank_json("staff_climate_survey.json", 12)]
+BANKS = [_bank_json("meridian_valley_operator.json", 25), _bank_json("staff_climate_survey.json", 12),
+         _bank_json("meridian_valley_operator_2d.json", 12)]
 DESIGNS = {p.name: p.read_text(encoding="utf-8") for p in sorted((REPO / "simulations").glob("*.toml"))}
 RESPONSES = [_first_lines(REPO / "item_banks" / "meridian_valley_responses.csv", 120),
              _first_lines(REPO / "item_banks" / "staff_climate_responses.csv", 120)]

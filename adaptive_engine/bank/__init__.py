@@ -1,6 +1,9 @@
 """Item banks: the immutable :class:`ItemBank`, its files, summaries and response data.
 
 * :mod:`.item_bank` -- the bank, its validation and the CSV/JSON readers (:func:`load_bank`);
+* :mod:`.multidimensional` -- the fields and rules of banks of the M2PL, M3PL and MGRM;
+* :mod:`.fields` -- reading numbers and numbered columns of one bank record;
+* :mod:`.json_checks` -- the JSON format's own checks (Unicode, JSON types, top-level keys);
 * :mod:`.files` -- writing banks as CSV, JSON or SQLite, and converting between them;
 * :mod:`.summary` -- bank summaries and test information curves;
 * :mod:`.responses` -- the long response CSV (``person_id,item_id,response``);

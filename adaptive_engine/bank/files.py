@@ -5,11 +5,17 @@ The formats are those read by :mod:`adaptive_engine.bank` (see ``item_banks/READ
 * CSV: columns ``item_id, model, a, b, c, d, b1..bK, area, item_set, enemy_group, status,
   label``; ``b``, ``c`` and ``d`` are blank for polytomous items, ``b1..bK`` blank for
   dichotomous ones and beyond an item's own K; several enemy groups are joined by ``;``.
-  A CSV file has no place for the scaling constant D or the bank's name.
-* JSON: ``{"scaling": D, "name": ..., "items": [...]}``, one object per item with the
-  fields above (thresholds as a ``thresholds`` list, enemy groups as a list).
+  A bank of multidimensional models has ``item_id, model, a1..aK, intercept,
+  intercept1..interceptM, c, area, ...`` instead (``intercept`` when it has M2PL/M3PL items,
+  ``intercept1..`` when it has MGRM items, ``c`` when it has M3PL items; blank where an item
+  has no such parameter).  A CSV file has no place for the scaling constant D, the bank's
+  name or its dimension names.
+* JSON: ``{"scaling": D, "name": ..., "dimensions": [...], "items": [...]}``, one object per
+  item with the fields above (thresholds as a ``thresholds`` list, slopes as a ``slopes``
+  list, MGRM intercepts as an ``intercepts`` list, enemy groups as a list); ``dimensions``
+  for a bank of multidimensional models, or when a one-dimensional bank names its dimension.
 * SQLite: table ``items`` with the CSV columns (blank = NULL) and table ``bank_metadata``
-  holding one row ``(scaling, name)``.
+  holding one row ``(scaling, name)``, plus ``dimensions`` (a JSON list) where JSON has it.
 
 Every float is written with ``repr`` precision, so a round trip gives back the same bank
 bit for bit.  Every writer goes through :mod:`adaptive_engine.files`: the folder must exist,
@@ -29,11 +35,15 @@ import numpy as np
 from ..errors import BankError, Problem
 from ..files import atomic_write, check_input_file, write_text
 from ..irt import models
+from . import multidimensional as md
+from .fields import known_column, slope_column_problems
 from .item_bank import MAX_BANK_FILE_BYTES, ItemBank, bank_from_records
+from .multidimensional import ONE_DIMENSION_NAME
 
 #: Columns before and after the threshold columns b1..bK, in file order.
 LEADING_COLUMNS = ("item_id", "model", "a", "b", "c", "d")
 TRAILING_COLUMNS = ("area", "item_set", "enemy_group", "status", "label")
+_TEXT_COLUMNS = ("item_id", "model", *TRAILING_COLUMNS)
 _SQLITE_SUFFIXES = (".db", ".sqlite", ".sqlite3")
 ENEMY_SEPARATOR = ";"
 
@@ -44,9 +54,25 @@ def _number_text(x: float) -> str:
 
 
 def csv_columns(bank: ItemBank) -> list[str]:
-    """The CSV / SQLite column names for ``bank`` (``b1..bK`` for its widest item)."""
+    """The CSV / SQLite column names for ``bank`` (``b1..bK`` for its widest item; for a bank
+    of multidimensional models ``a1..aK`` and the intercept columns its items use)."""
+    if bank.uses_multidimensional_models:
+        graded = bank.model == "MGRM"
+        m_max = int(np.max(bank.n_categories[graded])) - 1 if graded.any() else 0
+        return ["item_id", "model", *(f"a{j}" for j in range(1, bank.n_dimensions + 1)),
+                *(["intercept"] if not graded.all() else []),
+                *(f"intercept{j}" for j in range(1, m_max + 1)),
+                *(["c"] if np.any(bank.model == "M3PL") else []), *TRAILING_COLUMNS]
     k_max = bank.thresholds.shape[1]
     return [*LEADING_COLUMNS, *(f"b{j}" for j in range(1, k_max + 1)), *TRAILING_COLUMNS]
+
+
+def stated_dimension_names(bank: ItemBank) -> list[str] | None:
+    """The dimension names a JSON or SQLite file states: always for a bank of
+    multidimensional models, for a one-dimensional bank only names other than the default."""
+    if bank.uses_multidimensional_models or bank.dimension_names != (ONE_DIMENSION_NAME,):
+        return list(bank.dimension_names)
+    return None
 
 
 def _enemy_text(bank: ItemBank, i: int) -> str:
@@ -61,6 +87,8 @@ def _enemy_text(bank: ItemBank, i: int) -> str:
 
 def flat_rows(bank: ItemBank) -> list[dict]:
     """One dict per item keyed by :func:`csv_columns`; blanks are ``None``, numbers floats."""
+    if bank.uses_multidimensional_models:
+        return _multidimensional_flat_rows(bank)
     k_max = bank.thresholds.shape[1]
     rows = []
     for i in range(len(bank)):
@@ -72,6 +100,28 @@ def flat_rows(bank: ItemBank) -> list[dict]:
         for j in range(k_max):
             t = bank.thresholds[i, j]
             row[f"b{j + 1}"] = None if np.isnan(t) else float(t)
+        row.update(area=str(bank.area[i]), item_set=str(bank.item_set[i]),
+                   enemy_group=_enemy_text(bank, i), status=str(bank.status[i]),
+                   label=str(bank.label[i]))
+        rows.append(row)
+    return rows
+
+
+def _multidimensional_flat_rows(bank: ItemBank) -> list[dict]:
+    columns = csv_columns(bank)
+    rows = []
+    for i in range(len(bank)):
+        model = str(bank.model[i])
+        row = dict.fromkeys(columns)
+        row.update({"item_id": str(bank.item_ids[i]), "model": model})
+        row.update({f"a{j + 1}": float(x) for j, x in enumerate(bank.slopes[i])})
+        intercepts = bank.intercepts[i]
+        if model == "MGRM":
+            row.update({f"intercept{j + 1}": float(x) for j, x in enumerate(intercepts[~np.isnan(intercepts)])})
+        else:
+            row["intercept"] = float(intercepts[0])
+        if model == "M3PL":
+            row["c"] = float(bank.c[i])
         row.update(area=str(bank.area[i]), item_set=str(bank.item_set[i]),
                    enemy_group=_enemy_text(bank, i), status=str(bank.status[i]),
                    label=str(bank.label[i]))
@@ -113,7 +163,9 @@ def bank_to_document(bank: ItemBank) -> dict:
             if not rec[optional]:
                 del rec[optional]
         items.append(rec)
-    return {"scaling": float(bank.scaling), "name": str(bank.name), "items": items}
+    names = stated_dimension_names(bank)
+    return {"scaling": float(bank.scaling), "name": str(bank.name),
+            **({"dimensions": names} if names is not None else {}), "items": items}
 
 
 def bank_to_json_text(bank: ItemBank) -> str:
@@ -125,7 +177,8 @@ def bank_to_json_text(bank: ItemBank) -> str:
         "{\n"
         f'  "scaling": {json.dumps(doc["scaling"])},\n'
         f'  "name": {json.dumps(doc["name"], ensure_ascii=False)},\n'
-        '  "items": [\n'
+        + (f'  "dimensions": {json.dumps(doc["dimensions"])},\n' if "dimensions" in doc else "")
+        + '  "items": [\n'
         f"{item_lines}\n"
         "  ]\n"
         "}\n"
@@ -161,7 +214,11 @@ def write_bank_sqlite(bank: ItemBank, path: str | Path) -> None:
 
     columns = csv_columns(bank)
     rows = flat_rows(bank)
-    types = {c: (float if c in ("a", "b", "c", "d") or c[1:].isdigit() else str) for c in columns}
+    types = {c: (str if c in _TEXT_COLUMNS else float) for c in columns}
+    names = stated_dimension_names(bank)
+    metadata = {"scaling": float(bank.scaling), "name": str(bank.name)}
+    if names is not None:
+        metadata["dimensions"] = json.dumps(names)
 
     def fill(temp: Path) -> None:
         temp.unlink()  # mkstemp made an empty file; SQLite wants to create its own
@@ -174,8 +231,8 @@ def write_bank_sqlite(bank: ItemBank, path: str | Path) -> None:
             with conn:
                 db["items"].create(types, pk="item_id", column_order=columns)
                 db["items"].insert_all(rows)
-                db["bank_metadata"].create({"scaling": float, "name": str})
-                db["bank_metadata"].insert({"scaling": float(bank.scaling), "name": str(bank.name)})
+                db["bank_metadata"].create({k: (float if k == "scaling" else str) for k in metadata})
+                db["bank_metadata"].insert(metadata)
         finally:
             db.close()
         fd = os.open(temp, os.O_RDONLY)
@@ -209,14 +266,16 @@ def write_bank(bank: ItemBank, path: str | Path) -> Path:
     return path
 
 
-def convert_bank(bank_path: str | Path, out_path: str | Path, *,
-                 scaling: float | None = None) -> tuple[ItemBank, Path]:
+def convert_bank(bank_path: str | Path, out_path: str | Path, *, scaling: float | None = None,
+                 dimensions: list[str] | None = None) -> tuple[ItemBank, Path]:
     """Load and validate the bank in ``bank_path`` and write it to ``out_path``.
 
     The output format follows the suffix of ``out_path``.  ``scaling`` is passed to
     :func:`~adaptive_engine.bank.load_bank` (D of a CSV bank; must agree with the D of a JSON
-    or SQLite bank).  A bank whose D is not 1 is never written to CSV: the CSV format has no
-    place for D, and reading the file back would silently give D = 1.
+    or SQLite bank), and so is ``dimensions`` (dimension names).  A bank whose D is not 1 is
+    never written to CSV: the CSV format has no place for D, and reading the file back would
+    silently give D = 1.  (Dimension names, which CSV cannot hold either, are given again
+    when the CSV copy is read: ``--dimensions``.)
 
     Returns
     -------
@@ -225,7 +284,7 @@ def convert_bank(bank_path: str | Path, out_path: str | Path, *,
     """
     from .item_bank import load_bank
 
-    bank = load_bank(bank_path, scaling=scaling)
+    bank = load_bank(bank_path, scaling=scaling, dimensions=dimensions)
     return bank, write_bank(bank, Path(out_path))
 
 
@@ -233,10 +292,11 @@ def convert_bank(bank_path: str | Path, out_path: str | Path, *,
 # reading SQLite
 
 
-def read_bank_sqlite(path: str | Path) -> ItemBank:
+def read_bank_sqlite(path: str | Path, *, dimensions: list[str] | tuple[str, ...] | None = None) -> ItemBank:
     """Load a bank written by :func:`write_bank_sqlite` (or by hand in the same layout).
 
-    Problems are located as ``NAME.db items row N (item ID)``.
+    Problems are located as ``NAME.db items row N (item ID)``.  ``dimensions`` must agree
+    with the dimension names the file states (or names them when it states none).
     """
     path = Path(path)
     source = path.name
@@ -247,24 +307,24 @@ def read_bank_sqlite(path: str | Path) -> ItemBank:
     except sqlite3.Error as exc:
         raise BankError(f"cannot open as SQLite: {exc}", location=source) from None
     try:
-        return _read_open_sqlite(conn, source)
+        return _read_open_sqlite(conn, source, dimensions)
     except sqlite3.DatabaseError as exc:
         raise BankError(f"not a readable SQLite bank: {exc}", location=source) from None
     finally:
         conn.close()
 
 
-def _read_open_sqlite(conn: sqlite3.Connection, source: str) -> ItemBank:
+def _read_open_sqlite(conn: sqlite3.Connection, source: str, dimensions) -> ItemBank:
     tables = {r[0] for r in conn.execute("select name from sqlite_master where type = 'table'")}
     if "items" not in tables:
         raise BankError("missing table 'items'", location=source)
-    scaling, name = 1.0, Path(source).stem
+    scaling, name, stated = 1.0, Path(source).stem, None
     if "bank_metadata" in tables:
         meta_cols = [r[1] for r in conn.execute("pragma table_info(bank_metadata)")]
         meta = conn.execute("select * from bank_metadata").fetchall()
-        if len(meta) != 1 or set(meta_cols) - {"scaling", "name"}:
-            raise BankError("table bank_metadata must hold one row with columns scaling, name",
-                            location=f"{source} bank_metadata")
+        if len(meta) != 1 or set(meta_cols) - {"scaling", "name", "dimensions"}:
+            raise BankError("table bank_metadata must hold one row with columns scaling, name (and "
+                            "dimensions)", location=f"{source} bank_metadata")
         row = dict(zip(meta_cols, meta[0]))
         raw = row.get("scaling")
         if raw is not None:
@@ -275,20 +335,36 @@ def _read_open_sqlite(conn: sqlite3.Connection, source: str) -> ItemBank:
             scaling = float(raw)
         if row.get("name") is not None:
             name = str(row["name"])
+        if row.get("dimensions") is not None:
+            stated = _sqlite_dimension_names(row["dimensions"], f"{source} bank_metadata.dimensions")
     columns = [r[1] for r in conn.execute("pragma table_info(items)")]
-    allowed = set(LEADING_COLUMNS) | set(TRAILING_COLUMNS)
     problems = [Problem(f"{source} items", f"missing required column {c!r}")
                 for c in ("item_id", "model") if c not in columns]
-    problems += [Problem(f"{source} items", f"unknown column {c!r}") for c in columns
-                 if c not in allowed and not (c.startswith("b") and c[1:].isdigit())]
+    problems += [Problem(f"{source} items", f"unknown column {c!r}") for c in columns if not known_column(c)]
+    problems += slope_column_problems(columns, f"{source} items")
     if problems:
         raise BankError(problems)
     records, locations = [], []
     for n, values in enumerate(conn.execute("select * from items order by rowid"), start=1):
         rec = dict(zip(columns, values))
-        records.append({k: ("" if v is None else v) if k in allowed - {"a", "b", "c", "d"} else v
-                        for k, v in rec.items()})
+        records.append({k: ("" if v is None else v) if k in _TEXT_COLUMNS else v for k, v in rec.items()})
         locations.append(f"{source} items row {n}")
     if not records:
         raise BankError("the bank holds no items (table 'items' is empty)", location=source)
-    return bank_from_records(records, locations, scaling=scaling, name=name)
+    names, where = md.agree_on_dimensions(stated, dimensions, source)
+    return bank_from_records(records, locations, scaling=scaling, name=name, dimensions=names,
+                             dimensions_location=where)
+
+
+def _sqlite_dimension_names(raw, where: str) -> list:
+    """The dimension names stored in bank_metadata: a JSON list of names as text."""
+    try:
+        names = json.loads(raw) if isinstance(raw, str) else None
+    except json.JSONDecodeError:
+        names = None
+    if not isinstance(names, list):
+        raise BankError(f"must be a JSON list of names as text, got {raw!r}", location=where)
+    problems = md.dimension_name_problems(names, None)
+    if problems:
+        raise BankError([Problem(where, m) for m in problems])
+    return names

@@ -19,7 +19,6 @@ import csv
 import io
 import json
 import math
-import re
 from pathlib import Path
 from typing import Any, Iterable, Mapping
 
@@ -29,6 +28,12 @@ import numpy as np
 from ..errors import BankError, Problem
 from ..files import check_input_file, decode_input_text, read_input_bytes
 from ..irt import models
+from ..irt import multidimensional as md_models
+from . import fields, json_checks
+from . import multidimensional as md
+from .fields import numbered_values
+from .fields import parse_number as _number
+from .json_checks import shown as _shown
 
 STATUSES = ("operational", "pretest")
 #: Largest bank file read (CSV, JSON or SQLite), in bytes: 64 MiB, about 650,000 items in
@@ -36,13 +41,6 @@ STATUSES = ("operational", "pretest")
 #: as Python objects): a 100,000-item bank (9 MB) peaks near 330 MB.
 MAX_BANK_FILE_BYTES = 64 * 2**20
 DEFAULT_AREA = "general"
-_THRESHOLD_COLUMN = re.compile(r"^b(\d+)$")
-_KNOWN_COLUMNS = {
-    "item_id", "model", "a", "b", "c", "d", "area", "item_set", "enemy_group",
-    "status", "label",
-}
-
-
 def _frozen_array(dtype=None):
     def convert(x):
         arr = np.array(x, dtype=dtype)
@@ -52,19 +50,48 @@ def _frozen_array(dtype=None):
     return convert
 
 
-@attrs.frozen(eq=False)
+def _optional_frozen_array(dtype=None):
+    convert = _frozen_array(dtype)
+    return lambda x: None if x is None else convert(x)
+
+
+#: model name -> category family, for both kinds of model.
+_FAMILY = {**models.MODEL_FAMILY, **md.MULTIDIMENSIONAL_MODEL_FAMILY}
+#: Fields of a bank of multidimensional models that are derived from slopes and intercepts.
+_DERIVED_FIELDS = ("a", "b", "d", "thresholds")
+
+
+@attrs.frozen(eq=False, kw_only=True)
 class ItemBank:
-    """A calibrated item bank.
+    """A calibrated item bank of one-dimensional or of multidimensional models.
+
+    A bank of one-dimensional models (1PL-4PL, GRM, GPCM) is built from ``a, b, c, d,
+    thresholds``.  A bank of multidimensional models (M2PL, M3PL, MGRM, see
+    :mod:`adaptive_engine.bank.multidimensional`) is built from ``slopes, intercepts`` and
+    ``c`` (0 when left out), and optionally ``dimension_names``; its ``a, b, d, thresholds``
+    are then derived (Reckase 1985): ``a`` = MDISC, ``b`` and ``thresholds`` = MDIFF, ``d`` = 1,
+    so that with K = 1 they are the 2PL/3PL/GRM parameters of the same items.
 
     Attributes
     ----------
     item_ids : str array, shape (n,)
     model : str array, shape (n,)
-        Canonical model name per item (``1PL``, ``2PL``, ``3PL``, ``4PL``, ``GRM``, ``GPCM``).
+        Canonical model name per item (``1PL``, ``2PL``, ``3PL``, ``4PL``, ``GRM``, ``GPCM``;
+        or ``M2PL``, ``M3PL``, ``MGRM``).
     a, b, c, d : float arrays, shape (n,)
-        ``b`` is NaN for polytomous items; ``c = 0`` and ``d = 1`` for them.
+        ``b`` is NaN for polytomous items; ``c = 0`` and ``d = 1`` for them.  For a bank of
+        multidimensional models ``a`` is MDISC ``|a|`` and ``b`` is MDIFF ``-intercept / |a|``.
     thresholds : float array, shape (n, K_max)
-        GRM thresholds / GPCM steps, NaN-padded (K_max = 0 for an all-dichotomous bank).
+        GRM thresholds / GPCM steps, NaN-padded (K_max = 0 for an all-dichotomous bank); MDIFF
+        per boundary of MGRM items.
+    slopes : float array, shape (n, K)
+        Slope vectors (property; stored for multidimensional models, ``a[:, None]`` otherwise).
+    intercepts : float array, shape (n, M_max)
+        Intercepts, NaN-padded (property; stored for multidimensional models; otherwise the
+        logit intercepts ``-a b`` of dichotomous items and ``-a b_k`` of polytomous ones).
+    dimension_names : tuple of str, length K
+        Property: the names given, else ``theta_1 .. theta_K`` (``theta`` for a bank of
+        one-dimensional models).
     area, item_set, label, status : str arrays, shape (n,)
         ``item_set`` is ``""`` for items that belong to no set.
     enemy_groups : tuple of tuple of str, length n
@@ -75,24 +102,127 @@ class ItemBank:
 
     item_ids: np.ndarray = attrs.field(converter=_frozen_array(object))
     model: np.ndarray = attrs.field(converter=_frozen_array(object))
-    a: np.ndarray = attrs.field(converter=_frozen_array(float))
-    b: np.ndarray = attrs.field(converter=_frozen_array(float))
-    c: np.ndarray = attrs.field(converter=_frozen_array(float))
-    d: np.ndarray = attrs.field(converter=_frozen_array(float))
-    thresholds: np.ndarray = attrs.field(converter=_frozen_array(float))
+    a: np.ndarray | None = attrs.field(default=None, converter=_optional_frozen_array(float))
+    b: np.ndarray | None = attrs.field(default=None, converter=_optional_frozen_array(float))
+    c: np.ndarray | None = attrs.field(default=None, converter=_optional_frozen_array(float))
+    d: np.ndarray | None = attrs.field(default=None, converter=_optional_frozen_array(float))
+    thresholds: np.ndarray | None = attrs.field(default=None, converter=_optional_frozen_array(float))
     area: np.ndarray = attrs.field(converter=_frozen_array(object))
     item_set: np.ndarray = attrs.field(converter=_frozen_array(object))
     enemy_groups: tuple = attrs.field(converter=lambda x: tuple(tuple(g) for g in x))
     status: np.ndarray = attrs.field(converter=_frozen_array(object))
     label: np.ndarray = attrs.field(converter=_frozen_array(object))
+    _slopes: np.ndarray | None = attrs.field(default=None, converter=_optional_frozen_array(float),
+                                             alias="slopes")
+    _intercepts: np.ndarray | None = attrs.field(default=None, converter=_optional_frozen_array(float),
+                                                 alias="intercepts")
+    _dimension_names: tuple = attrs.field(default=(), converter=lambda x: (x,) if isinstance(x, str) else tuple(x),
+                                          alias="dimension_names")
     scaling: float = attrs.field(default=1.0, converter=float)
     name: str = ""
     _cache: dict = attrs.field(factory=dict, repr=False, alias="_cache")
 
     def __attrs_post_init__(self):
-        problems = validate_arrays(self)
+        if self._slopes is not None or self._intercepts is not None:
+            problems = self._complete_multidimensional()
+        else:
+            problems = validate_arrays(self)
         if problems:
             raise BankError(problems)
+
+    def _complete_multidimensional(self) -> list[Problem]:
+        """Check a bank built with slopes and intercepts and fill in its derived fields.
+
+        Runs once, inside the constructor (hence ``object.__setattr__`` on the frozen bank).
+        """
+        n = len(self.item_ids)
+        if self._slopes is None or self._intercepts is None:
+            return [Problem("bank", "a bank of multidimensional models needs both slopes and intercepts")]
+        problems = [Problem("bank", f"field {name!r} has {getattr(self, name).shape[0]} entries for {n} items")
+                    for name in ("model", "area", "item_set", "status", "label") if getattr(self, name).shape[0] != n]
+        if len(self.enemy_groups) != n:
+            problems.append(Problem("bank", "enemy_groups do not match the number of items"))
+        if n == 0:
+            problems.append(Problem("bank", "the bank holds no items"))
+        if self.c is None:
+            object.__setattr__(self, "c", _frozen_array(float)(np.zeros(n)))
+        problems = problems or md.array_problems(self)
+        if problems:
+            return problems
+        derived = md.derived_fields(self.model, self._slopes, self._intercepts)
+        for name in _DERIVED_FIELDS:
+            value = getattr(self, name)
+            if value is not None and not np.array_equal(value, derived[name], equal_nan=True):
+                problems.append(Problem("bank", f"field {name!r} of a bank of multidimensional models is derived "
+                                                "from its slopes and intercepts; leave it out"))
+            object.__setattr__(self, name, _frozen_array(float)(derived[name]))
+        return problems or validate_arrays(self)
+
+    # -- the dimensions ----------------------------------------------------------------
+    @property
+    def uses_multidimensional_models(self) -> bool:
+        """True for a bank of M2PL/M3PL/MGRM items (any K, 1 included)."""
+        return self._slopes is not None
+
+    @property
+    def n_dimensions(self) -> int:
+        """K: the length of the slope vectors; 1 for a bank of one-dimensional models."""
+        return int(self._slopes.shape[1]) if self._slopes is not None else 1
+
+    @property
+    def dimension_names(self) -> tuple:
+        """One name per dimension: those given, else ``theta_1 .. theta_K`` (``theta`` for a
+        bank of one-dimensional models)."""
+        if self._dimension_names:
+            return self._dimension_names
+        if self._slopes is None:
+            return (md.ONE_DIMENSION_NAME,)
+        return md.default_dimension_names(self.n_dimensions)
+
+    @property
+    def slopes(self) -> np.ndarray:
+        """Slope vectors, shape (n, K), read-only (``a[:, None]`` for one-dimensional models)."""
+        if self._slopes is not None:
+            return self._slopes
+        return self.cached("slopes", lambda: _readonly(self.a[:, None].copy()))
+
+    @property
+    def intercepts(self) -> np.ndarray:
+        """Intercepts, shape (n, M_max), NaN-padded, read-only.
+
+        For one-dimensional models the logit intercepts ``-a b`` (dichotomous items, column
+        0) and ``-a b_k`` (GRM thresholds, GPCM steps): ``z = D (a theta + intercept)``.
+        """
+        if self._intercepts is not None:
+            return self._intercepts
+
+        def make():
+            width = max(1, self.thresholds.shape[1])
+            out = np.full((len(self), width), np.nan)
+            dichotomous = self.family == models.DICHOTOMOUS
+            out[dichotomous, 0] = -self.a[dichotomous] * self.b[dichotomous]
+            poly = ~dichotomous
+            out[poly, : self.thresholds.shape[1]] = -self.a[poly, None] * self.thresholds[poly]
+            return _readonly(out)
+
+        return self.cached("intercepts", make)
+
+    @property
+    def multidimensional_params(self) -> md_models.MultidimensionalParameters:
+        """All items' parameters for :mod:`adaptive_engine.irt.multidimensional`.
+
+        Raises
+        ------
+        BankError
+            For a bank of one-dimensional models.
+        """
+        if self._slopes is None:
+            raise BankError("the bank holds one-dimensional models (1PL-4PL, GRM, GPCM); the "
+                            "multidimensional functions need M2PL, M3PL or MGRM items",
+                            location=f"bank {self.name}".strip())
+        return self.cached("multidimensional_params", lambda: md_models.MultidimensionalParameters(
+            slopes=self._slopes, intercepts=self._intercepts, c=self.c, n_categories=self.n_categories,
+            scaling=self.scaling))
 
     # -- derived, cached -------------------------------------------------------------
     def cached(self, key, make):
@@ -113,7 +243,7 @@ class ItemBank:
     @property
     def family(self) -> np.ndarray:
         return self.cached(
-            "family", lambda: np.array([models.MODEL_FAMILY[m] for m in self.model], dtype=np.int8)
+            "family", lambda: np.array([_FAMILY[m] for m in self.model], dtype=np.int8)
         )
 
     @property
@@ -130,15 +260,29 @@ class ItemBank:
 
     @property
     def params(self) -> models.ItemParameters:
-        """All items' parameters for the functions of :mod:`adaptive_engine.irt.models`."""
-        return self.cached(
-            "params",
-            lambda: models.ItemParameters(
+        """All items' parameters for the functions of :mod:`adaptive_engine.irt.models`.
+
+        A bank of multidimensional models with K = 1 gives its 2PL/3PL/GRM equivalent
+        (``a = a1``, ``b = -intercept / a1``).
+
+        Raises
+        ------
+        BankError
+            For a bank of more than one dimension: one-dimensional models cannot score it.
+        """
+        def make():
+            # inside the cached maker: a hot path reading bank.params pays for no check
+            if self.n_dimensions > 1:
+                raise BankError(
+                    f"the bank has {self.n_dimensions} ability dimensions ({', '.join(self.dimension_names)}); "
+                    "this step works with one-dimensional banks only", location=f"bank {self.name}".strip())
+            return models.ItemParameters(
                 family=self.family, a=self.a, b=self.b, c=self.c, d=self.d,
                 thresholds=self.thresholds, n_categories=self.n_categories,
                 scaling=self.scaling,
-            ),
-        )
+            )
+
+        return self.cached("params", make)
 
     @property
     def index_of(self) -> dict:
@@ -183,8 +327,15 @@ class ItemBank:
         return self.cached(key, lambda: _readonly(models.information(*models.outer(self.params, grid))))
 
     def evolve(self, **changes) -> "ItemBank":
-        """A new bank with some fields changed (validated again)."""
+        """A new bank with some fields changed (validated again).
+
+        The derived fields of a bank of multidimensional models (``a, b, d, thresholds``)
+        are derived again from its slopes and intercepts.
+        """
         changes.setdefault("_cache", {})
+        if self._slopes is not None:
+            for name in _DERIVED_FIELDS:
+                changes.setdefault(name, None)
         return attrs.evolve(self, **changes)
 
     def subset(self, index) -> "ItemBank":
@@ -192,11 +343,18 @@ class ItemBank:
         index = np.asarray(index)
         if index.dtype == bool:
             index = np.flatnonzero(index)
+        if self._slopes is not None:
+            intercepts = self._intercepts[index]
+            # the widest remaining item sets the width, as a bank built from these items would
+            width = max(1, int(np.max(np.sum(~np.isnan(intercepts), axis=1), initial=1)))
+            parameters = dict(slopes=self._slopes[index], intercepts=intercepts[:, :width], c=self.c[index])
+        else:
+            parameters = dict(a=self.a[index], b=self.b[index], c=self.c[index], d=self.d[index],
+                              thresholds=self.thresholds[index])
         return ItemBank(
-            item_ids=self.item_ids[index], model=self.model[index], a=self.a[index],
-            b=self.b[index], c=self.c[index], d=self.d[index],
-            thresholds=self.thresholds[index], area=self.area[index],
-            item_set=self.item_set[index],
+            item_ids=self.item_ids[index], model=self.model[index], **parameters,
+            dimension_names=self._dimension_names,
+            area=self.area[index], item_set=self.item_set[index],
             enemy_groups=[self.enemy_groups[i] for i in index],
             status=self.status[index], label=self.label[index], scaling=self.scaling,
             name=self.name,
@@ -204,6 +362,8 @@ class ItemBank:
 
     def to_records(self) -> list[dict]:
         """One plain dict per item (the JSON item format)."""
+        if self._slopes is not None:
+            return md.item_records(self)
         out = []
         for i in range(len(self)):
             k = int(self.n_categories[i]) - 1 if self.family[i] != models.DICHOTOMOUS else 0
@@ -240,6 +400,11 @@ def validate_arrays(bank: ItemBank) -> list[Problem]:
     n = bank.item_ids.shape[0]
     if n == 0:
         return [Problem("bank", "the bank holds no items")]
+    missing = [name for name in ("a", "b", "c", "d", "thresholds") if getattr(bank, name) is None]
+    if missing:
+        return [Problem("bank", f"field {name!r} is missing (a bank of one-dimensional models needs a, b, c, d "
+                                "and thresholds; one of multidimensional models, slopes and intercepts)")
+                for name in missing]
     for name in ("model", "a", "b", "c", "d", "area", "item_set", "status", "label"):
         if getattr(bank, name).shape[0] != n:
             problems.append(Problem("bank", f"field {name!r} has {getattr(bank, name).shape[0]} entries for {n} items"))
@@ -249,6 +414,8 @@ def validate_arrays(bank: ItemBank) -> list[Problem]:
         return problems
     if not (math.isfinite(bank.scaling) and bank.scaling > 0):
         problems.append(Problem("bank", f"scaling constant D must be a positive number, got {bank.scaling}"))
+    if not bank.uses_multidimensional_models:
+        problems += [Problem("bank", m) for m in md.dimension_name_problems(list(bank.dimension_names), 1)]
     seen = {}
     for i, iid in enumerate(bank.item_ids):
         loc = f"item {iid}"
@@ -258,6 +425,15 @@ def validate_arrays(bank: ItemBank) -> list[Problem]:
         if iid in seen:
             problems.append(Problem(loc, f"duplicate item id (also item #{seen[iid] + 1})"))
         seen.setdefault(iid, i)
+        if bank.uses_multidimensional_models:
+            # the parameters were checked by bank.multidimensional.array_problems
+            if str(bank.status[i]) not in STATUSES:
+                problems.append(Problem(loc, f"status must be one of {', '.join(STATUSES)}, got {bank.status[i]!r}"))
+            continue
+        if str(bank.model[i]) in md.MULTIDIMENSIONAL_MODELS:
+            problems.append(Problem(loc, f"model {bank.model[i]} is multidimensional, but the bank is built with "
+                                         "a, b (one-dimensional models): build it with slopes and intercepts"))
+            continue
         k = int(np.sum(~np.isnan(bank.thresholds[i]))) if bank.thresholds.shape[1] else 0
         problems.extend(
             Problem(loc, msg)
@@ -315,38 +491,19 @@ def item_problems(model: str, a, b, c, d, thresholds: list, status: str) -> list
 # building a bank from records (dicts of strings or values), shared by CSV / JSON / SQLite
 
 
-def canonical_model(raw: Any) -> str | None:
+def canonical_model(raw: Any, *, multidimensional: bool = False) -> str | None:
+    """The canonical spelling of a model name (``Rasch`` -> ``1PL``), or None when unknown.
+
+    The multidimensional models (M2PL, M3PL, MGRM) are known only when ``multidimensional``.
+    """
     name = str(raw).strip()
     upper = name.upper()
-    if upper in models.MODEL_FAMILY:
+    if upper in models.MODEL_FAMILY or (multidimensional and upper in md.MULTIDIMENSIONAL_MODELS):
         return upper
     return models.MODEL_ALIASES.get(upper)
 
 
-#: A number as a text file writes it: ASCII digits, point, exponent (inf and nan are read,
-#: then refused as not finite).
-_DECIMAL_TEXT = re.compile(r"[+-]?(?:(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?|inf|infinity|nan)",
-                           re.IGNORECASE)
-
-
-def _number(raw: Any, name: str, default: float | None) -> tuple[float | None, str | None]:
-    """Parse a numeric field; returns (value, problem)."""
-    if raw is None or (isinstance(raw, str) and raw.strip() == ""):
-        if default is None:
-            return None, f"{name} is missing"
-        return default, None
-    if isinstance(raw, bool):
-        return None, f"{name} is not a number ({raw!r})"
-    if isinstance(raw, str) and not _DECIMAL_TEXT.fullmatch(raw.strip()):
-        # float() would also take other scripts' digits ('\u0661') and underscores ('1_0')
-        return None, f"{name} is not a number ({raw!r})"
-    try:
-        value = float(raw)
-    except (TypeError, ValueError):
-        return None, f"{name} is not a number ({raw!r})"
-    if not math.isfinite(value):
-        return None, f"{name} is not a finite number ({raw!r})"
-    return value, None
+_MODEL_NAMES = ", ".join([*models.MODEL_FAMILY, *md.MULTIDIMENSIONAL_MODELS])
 
 
 def bank_from_records(
@@ -355,6 +512,8 @@ def bank_from_records(
     *,
     scaling: float = 1.0,
     name: str = "",
+    dimensions: list[str] | tuple[str, ...] | None = None,
+    dimensions_location: str = "dimensions",
 ) -> ItemBank:
     """Validate records (one mapping per item) into an :class:`ItemBank`.
 
@@ -364,6 +523,11 @@ def bank_from_records(
         Field name -> raw value (strings from CSV, or JSON values).
     locations : list of str, optional
         Where each record came from (``"line 7"``); defaults to ``"item ID"``.
+    dimensions : list of str, optional
+        Dimension names (one per slope of a bank of multidimensional models; one name for a
+        bank of one-dimensional models).
+    dimensions_location : str
+        Where the names came from, for messages about them.
     """
     problems: list[Problem] = []
     if not records:
@@ -386,12 +550,24 @@ def bank_from_records(
             mine.append(f"duplicate item id {iid!r} (first at {seen[iid]})")
         else:
             seen[iid] = loc
-        model = canonical_model(rec.get("model", ""))
+        model = canonical_model(rec.get("model", ""), multidimensional=True)
         if model is None:
             mine.append(f"unknown model {str(rec.get('model', '')).strip()!r} "
-                        f"(use one of {', '.join(models.MODEL_FAMILY)}, Rasch or PCM)")
+                        f"(use one of {_MODEL_NAMES}, Rasch or PCM)")
             problems.extend(Problem(where, m) for m in mine)
             continue
+        status = str(rec.get("status") or "operational").strip()
+        if model in md.MULTIDIMENSIONAL_MODELS:
+            values, found = md.parse_record(rec, model)
+            mine += found
+            if status not in STATUSES:
+                mine.append(f"status must be one of {', '.join(STATUSES)}, got {status!r}")
+            if mine:
+                problems.extend(Problem(where, m) for m in mine)
+            else:
+                rows.append(dict(values, item_id=iid, model=model, where=where, **_common_fields(rec)))
+            continue
+        mine += md.other_kind_fields(rec, model, False)
         raw_model = str(rec.get("model", "")).strip().upper()
         family = models.MODEL_FAMILY[model]
         fixed_slope = raw_model in ("RASCH", "PCM")
@@ -409,26 +585,17 @@ def bank_from_records(
                 pb = f"model {model} takes thresholds b1..bK, not b"
         mine += [p for p in (pa, pb, pc, pd, pt) if p]
         if not mine:
-            mine += item_problems(model, a, b, c, d, thresholds,
-                                  str(rec.get("status") or "operational").strip())
+            mine += item_problems(model, a, b, c, d, thresholds, status)
         if mine:
             problems.extend(Problem(where, m) for m in mine)
             continue
-        enemies = rec.get("enemy_group") or ""
-        if isinstance(enemies, (list, tuple)):
-            groups = tuple(str(g).strip() for g in enemies if str(g).strip())
-        else:
-            groups = tuple(g.strip() for g in str(enemies).split(";") if g.strip())
-        rows.append(dict(
-            item_id=iid, model=model, a=a, b=b, c=c, d=d, thresholds=thresholds,
-            area=str(rec.get("area") or DEFAULT_AREA).strip() or DEFAULT_AREA,
-            item_set=str(rec.get("item_set") or "").strip(),
-            enemy_groups=groups,
-            status=str(rec.get("status") or "operational").strip(),
-            label=str(rec.get("label") or "").strip(),
-        ))
+        rows.append(dict(item_id=iid, model=model, a=a, b=b, c=c, d=d, thresholds=thresholds, where=where,
+                         **_common_fields(rec)))
+    problems += md.kind_and_dimension_problems(rows, dimensions, dimensions_location)
     if problems:
         raise BankError(problems)
+    if "slopes" in rows[0]:
+        return _multidimensional_bank(rows, scaling=scaling, name=name, dimensions=dimensions)
     k_max = max((len(r["thresholds"]) for r in rows), default=0)
     thr = np.full((len(rows), k_max), np.nan)
     for i, r in enumerate(rows):
@@ -439,48 +606,56 @@ def bank_from_records(
         d=[r["d"] for r in rows], thresholds=thr, area=[r["area"] for r in rows],
         item_set=[r["item_set"] for r in rows], enemy_groups=[r["enemy_groups"] for r in rows],
         status=[r["status"] for r in rows], label=[r["label"] for r in rows],
-        scaling=scaling, name=name,
+        scaling=scaling, name=name, dimension_names=tuple(dimensions or ()),
+    )
+
+
+def _common_fields(rec: Mapping[str, Any]) -> dict:
+    """The fields every item has, whatever its model, cleaned."""
+    enemies = rec.get("enemy_group") or ""
+    if isinstance(enemies, (list, tuple)):
+        groups = tuple(str(g).strip() for g in enemies if str(g).strip())
+    else:
+        groups = tuple(g.strip() for g in str(enemies).split(";") if g.strip())
+    return dict(
+        area=str(rec.get("area") or DEFAULT_AREA).strip() or DEFAULT_AREA,
+        item_set=str(rec.get("item_set") or "").strip(),
+        enemy_groups=groups,
+        status=str(rec.get("status") or "operational").strip(),
+        label=str(rec.get("label") or "").strip(),
+    )
+
+
+def _multidimensional_bank(rows: list[dict], *, scaling: float, name: str, dimensions) -> ItemBank:
+    m_max = max(len(r["intercepts"]) for r in rows)
+    intercepts = np.full((len(rows), m_max), np.nan)
+    for i, r in enumerate(rows):
+        intercepts[i, : len(r["intercepts"])] = r["intercepts"]
+    return ItemBank(
+        item_ids=[r["item_id"] for r in rows], model=[r["model"] for r in rows],
+        slopes=np.array([r["slopes"] for r in rows], dtype=float), intercepts=intercepts,
+        c=[r["c"] for r in rows], area=[r["area"] for r in rows],
+        item_set=[r["item_set"] for r in rows], enemy_groups=[r["enemy_groups"] for r in rows],
+        status=[r["status"] for r in rows], label=[r["label"] for r in rows],
+        scaling=scaling, name=name, dimension_names=tuple(dimensions or ()),
     )
 
 
 def _thresholds(rec: Mapping[str, Any]) -> tuple[list[float], str | None]:
-    if rec.get("thresholds") not in (None, ""):
-        raw = rec["thresholds"]
-        if not isinstance(raw, (list, tuple)):
-            return [], "thresholds must be a list of numbers"
-        values = []
-        for j, x in enumerate(raw, start=1):
-            v, p = _number(x, f"b{j}", None)
-            if p:
-                return [], p
-            values.append(v)
-        return values, None
-    numbered = sorted(
-        (int(m.group(1)), key) for key in rec if (m := _THRESHOLD_COLUMN.match(str(key)))
-    )
-    values = []
-    for pos, (j, key) in enumerate(numbered, start=1):
-        raw = rec[key]
-        if raw is None or (isinstance(raw, str) and raw.strip() == ""):
-            # a blank threshold ends the item's list; later ones must be blank too
-            if any(str(rec[k2] or "").strip() for _, k2 in numbered[pos:]):
-                return [], f"b{j} is blank but a later threshold is given"
-            break
-        if j != pos:
-            return [], f"threshold columns must be b1, b2, ... without gaps (found b{j})"
-        v, p = _number(raw, f"b{j}", None)
-        if p:
-            return [], p
-        values.append(v)
-    return values, None
+    return numbered_values(rec, list_key="thresholds", prefix="b", noun="threshold", pattern=fields.THRESHOLD_COLUMN,
+                           blank_ends_list=True)
 
 
 # ----------------------------------------------------------------------------------------
 # file loaders
 
 
-def read_bank_csv_text(text: str, *, source: str = "bank", scaling: float = 1.0) -> ItemBank:
-    """Load a bank from CSV text (see module docstring)."""
+def read_bank_csv_text(text: str, *, source: str = "bank", scaling: float = 1.0,
+                       dimensions: list[str] | tuple[str, ...] | None = None) -> ItemBank:
+    """Load a bank from CSV text (see module docstring).
+
+    ``dimensions`` names the dimensions (a CSV file has no place for their names).
+    """
     reader = csv.reader(io.StringIO(text))
     try:
         header = next(reader)
@@ -493,8 +668,9 @@ def read_bank_csv_text(text: str, *, source: str = "bank", scaling: float = 1.0)
     problems = [Problem(f"{source} line 1", f"missing required column {c!r}") for c in missing]
     dupes = {h for h in header if header.count(h) > 1}
     problems += [Problem(f"{source} line 1", f"column {h!r} appears more than once") for h in sorted(dupes)]
-    unknown = [h for h in header if h not in _KNOWN_COLUMNS and not _THRESHOLD_COLUMN.match(h)]
+    unknown = [h for h in header if not fields.known_column(h)]
     problems += [Problem(f"{source} line 1", f"unknown column {h!r}") for h in unknown]
+    problems += fields.slope_column_problems(header, f"{source} line 1")
     if problems:
         raise BankError(problems)
     records, locations = [], []
@@ -515,29 +691,36 @@ def read_bank_csv_text(text: str, *, source: str = "bank", scaling: float = 1.0)
         raise BankError(problems)
     if not records:
         raise BankError([Problem(f"{source}", "the bank holds no items (header only)")])
-    return bank_from_records(records, locations, scaling=scaling, name=Path(source).stem)
+    return bank_from_records(records, locations, scaling=scaling, name=Path(source).stem, dimensions=dimensions,
+                             dimensions_location=f"{source} dimension names")
 
 
-def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
-    """Load a bank from JSON text: an object with ``items`` (and optional ``scaling``, ``name``)."""
+def read_bank_json_text(text: str, *, source: str = "bank",
+                        dimensions: list[str] | tuple[str, ...] | None = None) -> ItemBank:
+    """Load a bank from JSON text: an object with ``items`` (and optional ``scaling``, ``name``,
+    ``dimensions``).
+
+    ``dimensions``, when given, must agree with the file's own ``"dimensions"`` list, or
+    names the dimensions of a file without one.
+    """
     try:
-        doc = json.loads(text, parse_int=_json_integer)
+        doc = json.loads(text, parse_int=json_checks.json_integer)
     except json.JSONDecodeError as exc:
         raise BankError([Problem(f"{source} line {exc.lineno}", f"invalid JSON: {exc.msg}")]) from None
     except RecursionError:
         raise BankError([Problem(source, "invalid JSON: arrays and objects are nested too deeply "
                                          "to read")]) from None
-    problems = _json_text_problems(doc, source)
+    problems = json_checks.text_problems(doc, source)
     if problems:
         raise BankError(problems)
     if isinstance(doc, list):
         doc = {"items": doc}
     if not isinstance(doc, dict) or not isinstance(doc.get("items"), list):
         raise BankError([Problem(source, "expected an object with an 'items' list")])
-    unknown = sorted(set(doc) - {"items", "scaling", "name", "description", "metadata", "$schema"})
+    unknown = sorted(set(doc) - {"items", "scaling", "name", "description", "metadata", "$schema", "dimensions"})
     if unknown:
         raise BankError([Problem(source, f"unknown top-level key {k!r}") for k in unknown])
-    problems = _json_top_level_problems(doc, source)
+    problems = json_checks.top_level_problems(doc, source)
     if problems:
         raise BankError(problems)
     if not doc["items"]:
@@ -551,7 +734,7 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
         if not isinstance(rec, dict):
             problems.append(Problem(loc, "each item must be an object"))
             continue
-        unknown = [k for k in rec if k not in _KNOWN_COLUMNS | {"thresholds"} and not _THRESHOLD_COLUMN.match(str(k))]
+        unknown = [k for k in rec if k not in json_checks.LIST_FIELDS and not fields.known_column(str(k))]
         if unknown:
             problems.extend(Problem(loc, f"unknown field {k!r}") for k in unknown)
             continue
@@ -559,7 +742,7 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
             missing = "'item_id'" if "item_id" not in rec else "'model'"
             problems.append(Problem(loc, "missing required field " + missing))
             continue
-        kinds = _json_type_problems(rec)
+        kinds = json_checks.item_type_problems(rec)
         if kinds:
             iid = rec["item_id"]
             where = f"{loc} (item {iid})" if isinstance(iid, str) and iid.strip() else loc
@@ -569,7 +752,9 @@ def read_bank_json_text(text: str, *, source: str = "bank") -> ItemBank:
         locations.append(loc)
     if problems:
         raise BankError(problems)
-    return bank_from_records(records, locations, scaling=scaling, name=str(doc.get("name") or Path(source).stem))
+    names, where = md.agree_on_dimensions(doc.get("dimensions"), dimensions, source)
+    return bank_from_records(records, locations, scaling=scaling, name=str(doc.get("name") or Path(source).stem),
+                             dimensions=names, dimensions_location=where)
 
 
 def _surrogate_problems(rec: Mapping[str, Any]) -> list[str]:
@@ -589,118 +774,8 @@ def _surrogate_problems(rec: Mapping[str, Any]) -> list[str]:
     return out
 
 
-def _json_integer(digits: str):
-    """A JSON integer: an int when it fits 64 bits, else the nearest float (inf beyond 1e308).
-
-    Python would make an int of any length (and refuse more than 4,300 digits with a
-    ValueError); no bank value is a huge integer, and a float keeps the checks of numbers
-    ("not a finite number") in charge of the message.
-    """
-    return int(digits) if len(digits) <= 18 else float(digits)
-
-
-def _shown(text: str) -> str:
-    """``text`` printable whatever it holds (a lone surrogate shows as ``\\ud800``)."""
-    return text.encode("utf-8", "backslashreplace").decode("utf-8")
-
-
-def _json_text_problems(doc, source: str, limit: int = 50) -> list[Problem]:
-    """Texts (keys and strings, at any depth) that are not valid Unicode.
-
-    A JSON escape such as ``"\\ud800"`` decodes to a lone surrogate, which no UTF-8 file,
-    terminal or database can hold: refused here, where the JSON path can be named, rather
-    than when the bank is first written or printed.
-    """
-    out: list[Problem] = []
-    stack = [(doc, "")]
-    while stack and len(out) < limit:
-        value, path = stack.pop()
-        if isinstance(value, str):
-            texts = [(value, path)]
-        elif isinstance(value, dict):
-            texts = [(key, f"{path} key '{_shown(key)}'".strip()) for key in value if isinstance(key, str)]
-            stack.extend((v, f"{path}.{_shown(k)}" if path else _shown(k)) for k, v in reversed(value.items()))
-        elif isinstance(value, list):
-            texts = []
-            stack.extend((v, f"{path}[{j}]") for j, v in reversed(list(enumerate(value))))
-        else:
-            continue
-        for text, where in texts:
-            if not text.isascii():
-                try:
-                    text.encode("utf-8")
-                except UnicodeEncodeError as exc:
-                    bad = _shown(text[exc.start:exc.end])
-                    out.append(Problem(f"{source} {where}".strip(),
-                                       f"the text holds {bad}, a lone surrogate escape, which is not a "
-                                       "Unicode character (write the character itself, or a valid "
-                                       "surrogate pair)"))
-    return out
-
-
-_JSON_TEXT_FIELDS = ("item_id", "model", "area", "item_set", "status", "label")
-_JSON_NUMBER_FIELDS = ("a", "b", "c", "d")
-
-
-def _json_kind(value) -> str:
-    """How a JSON value reads to a user: 'the string "1.5"', 'true', 'null', 'a list'."""
-    if value is None:
-        return "null"
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, str):
-        return f"the string {json.dumps(value)}"
-    if isinstance(value, (int, float)):
-        return f"the number {value!r}"
-    return "a list" if isinstance(value, list) else "an object"
-
-
-def _is_json_number(value) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool)
-
-
-def _json_type_problems(rec: Mapping[str, Any]) -> list[str]:
-    """JSON type problems of one item object (the CSV loader, reading text, has none).
-
-    Text fields must be JSON strings and parameters JSON numbers, as the published schema
-    says: a quoted number or a boolean is refused rather than guessed at.
-    """
-    out = []
-    for key, value in rec.items():
-        if key in _JSON_TEXT_FIELDS:
-            if not isinstance(value, str):
-                out.append(f"{key} must be a JSON string, got {_json_kind(value)}")
-        elif key in _JSON_NUMBER_FIELDS or _THRESHOLD_COLUMN.match(str(key)):
-            if not _is_json_number(value):
-                out.append(f"{key} must be a JSON number, got {_json_kind(value)}")
-        elif key == "thresholds":
-            if not isinstance(value, list) or not value:
-                out.append(f"thresholds must be a non-empty list of JSON numbers, got {_json_kind(value)}")
-            else:
-                out.extend(f"thresholds[{j}] must be a JSON number, got {_json_kind(v)}"
-                           for j, v in enumerate(value) if not _is_json_number(v))
-        elif key == "enemy_group":
-            if isinstance(value, list):
-                out.extend(f"enemy_group[{j}] must be a non-empty JSON string, got {_json_kind(v)}"
-                           for j, v in enumerate(value) if not (isinstance(v, str) and v))
-            elif not isinstance(value, str):
-                out.append(f"enemy_group must be a JSON string or a list of strings, got {_json_kind(value)}")
-    return out
-
-
-def _json_top_level_problems(doc: Mapping[str, Any], source: str) -> list[Problem]:
-    out = []
-    if "scaling" in doc and not _is_json_number(doc["scaling"]):
-        out.append(Problem(f"{source} scaling", f"must be a JSON number, got {_json_kind(doc['scaling'])}"))
-    for key in ("name", "description", "$schema"):
-        if key in doc and not isinstance(doc[key], str):
-            out.append(Problem(f"{source} {key}", f"must be a JSON string, got {_json_kind(doc[key])}"))
-    if "metadata" in doc and not isinstance(doc["metadata"], dict):
-        out.append(Problem(f"{source} metadata", f"must be a JSON object, got {_json_kind(doc['metadata'])}"))
-    return out
-
-
-def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
+def load_bank(path: str | Path, *, scaling: float | None = None,
+              dimensions: list[str] | tuple[str, ...] | None = None) -> ItemBank:
     """Load a bank file (``.csv``, ``.json`` or a SQLite ``.db``) and validate it.
 
     ``scaling`` means the same for every file type: it is the scaling constant D the
@@ -708,6 +783,10 @@ def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
     (1.0 when None).  A JSON or SQLite bank carries its own D (1.0 when the file does not
     state one); a ``scaling`` that disagrees with it is an error naming both values, never
     a silent override.
+
+    ``dimensions`` (a list of names, one per dimension) works the same way: it names the
+    dimensions of a CSV bank, and must agree with the names a JSON or SQLite bank states
+    (it names them when the file does not).
     """
     path = Path(path)
     suffix = path.suffix.lower()
@@ -716,7 +795,7 @@ def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
 
         if scaling is not None:
             scaling = _check_scaling_value(scaling)
-        return _agree_on_scaling(read_bank_sqlite(path), scaling, path)
+        return _agree_on_scaling(read_bank_sqlite(path, dimensions=dimensions), scaling, path)
     if suffix not in (".json", ".csv"):
         check_input_file(path, max_bytes=MAX_BANK_FILE_BYTES, error=BankError)
         raise BankError(f"unknown bank file type {suffix!r} (use .csv, .json or .db)", location=str(path))
@@ -728,8 +807,9 @@ def load_bank(path: str | Path, *, scaling: float | None = None) -> ItemBank:
     text = decode_input_text(data, error=BankError, location=str(path))
     del data
     if suffix == ".json":
-        return _agree_on_scaling(read_bank_json_text(text, source=path.name), scaling, path)
-    return read_bank_csv_text(text, source=path.name, scaling=1.0 if scaling is None else scaling)
+        return _agree_on_scaling(read_bank_json_text(text, source=path.name, dimensions=dimensions), scaling, path)
+    return read_bank_csv_text(text, source=path.name, scaling=1.0 if scaling is None else scaling,
+                              dimensions=dimensions)
 
 
 def _check_scaling_value(scaling) -> float:

@@ -123,8 +123,18 @@ def _crossing(theta, info, threshold, lo: int, hi: int) -> float:
     return float(theta[lo] + f * (theta[hi] - theta[lo]))
 
 
-def summarize_bank(bank: ItemBank, *, target_se: float = DEFAULT_TARGET_SE) -> BankSummary:
-    """Summarise ``bank``: counts by model and area, pretest items, enemies, sets, precision."""
+def summarize_bank(bank: ItemBank, *, target_se: float = DEFAULT_TARGET_SE):
+    """Summarise ``bank``: counts by model and area, pretest items, enemies, sets, precision.
+
+    Returns
+    -------
+    BankSummary, or MultidimensionalBankSummary for a bank of multidimensional models (see
+    :mod:`adaptive_engine.bank.multidimensional_summary`)
+    """
+    if bank.uses_multidimensional_models:
+        from .multidimensional_summary import summarize_multidimensional_bank
+
+        return summarize_multidimensional_bank(bank, target_se=target_se)
     if not (math.isfinite(target_se) and target_se > 0):
         raise AdaptiveEngineError(f"target SE must be a positive number, got {target_se}",
                                   location="target_se")
@@ -197,6 +207,10 @@ class InformationCurves:
             writer.writerow(repr(float(x)) for x in row)
         return out.getvalue()
 
+    def plot_lines(self) -> tuple[dict, dict, str]:
+        """``(information lines, SE lines, x-axis label)`` for a plot."""
+        return {"total": self.information, **self.by_area}, {"total": self.se}, "ability (theta)"
+
     def to_dict(self) -> dict:
         """JSON form: ``{"items_counted", "n_items", "theta", "information", "se",
         "by_area": {area: {"information", "se"}}}``."""
@@ -258,15 +272,35 @@ def curve_grid(start: float, stop: float, step: float) -> np.ndarray:
     return np.round(start + step * np.arange(n), 12)
 
 
-def information_curves(bank: ItemBank, theta, *, by_area: bool = False,
-                       include_pretest: bool = False) -> InformationCurves:
+def information_curves(bank: ItemBank, theta, *, by_area: bool = False, include_pretest: bool = False,
+                       direction=None):
     """Test information of ``bank`` at ``theta`` (G,), optionally split by content area.
 
     Only operational items are summed unless ``include_pretest``: pretest items are not
     scored, so they add nothing to a test's precision (and :func:`summarize_bank` counts
     the same items).
+
+    A bank of multidimensional models gives
+    :class:`~adaptive_engine.bank.multidimensional_summary.MultidimensionalCurves`: one curve
+    per dimension (the others at 0), or one in ``direction`` (K numbers, or their text
+    ``"1,1"``) along the line ``theta = t u``, ``u`` the direction normalised.
     """
     theta = np.asarray(theta, dtype=float)
+    if bank.uses_multidimensional_models:
+        from .multidimensional_summary import multidimensional_curves, parse_direction
+
+        if isinstance(direction, str):
+            direction = parse_direction(direction, bank.n_dimensions)
+
+        if by_area and direction is not None and len(bank.areas) * theta.size > MAX_AREA_CURVE_VALUES:
+            raise AdaptiveEngineError(
+                f"{len(bank.areas):,} content areas x {theta.size:,} ability points is more than "
+                f"{MAX_AREA_CURVE_VALUES:,} values; use fewer points (a larger --step)", location="--by-area")
+        return multidimensional_curves(bank, theta, direction=direction, by_area=by_area,
+                                       include_pretest=include_pretest)
+    if direction is not None:
+        raise AdaptiveEngineError("a direction applies to banks of multidimensional models (M2PL, M3PL, MGRM); "
+                                  "this bank has one dimension", location="--direction")
     if by_area and len(bank.areas) * theta.size > MAX_AREA_CURVE_VALUES:
         raise AdaptiveEngineError(
             f"{len(bank.areas):,} content areas x {theta.size:,} ability points is more than "
@@ -281,8 +315,12 @@ def information_curves(bank: ItemBank, theta, *, by_area: bool = False,
                              items_counted=counted, n_items=int(items.size))
 
 
-def plot_information_curves(curves: InformationCurves, path: str | Path, *, title: str = "") -> Path:
-    """Draw information (and SE on a second axis) to a PNG file, written atomically."""
+def plot_information_curves(curves, path: str | Path, *, title: str = "") -> Path:
+    """Draw information (and SE on a second axis) to a PNG file, written atomically.
+
+    ``curves`` is an :class:`InformationCurves` or a ``MultidimensionalCurves`` (anything
+    with ``plot_lines()``, ``theta``, ``n_items`` and ``items_counted``).
+    """
     try:
         import matplotlib
 
@@ -298,17 +336,20 @@ def plot_information_curves(curves: InformationCurves, path: str | Path, *, titl
     path = Path(path)
     if path.suffix.lower() != ".png":
         raise AdaptiveEngineError(f"plot file must end in .png, got {path.name!r}", location="--plot")
+    information, se, x_label = curves.plot_lines()
     fig, ax = plt.subplots(figsize=(7, 4.2))
     try:
-        ax.plot(curves.theta, curves.information, color="black", lw=2, label="total")
-        for area, values in curves.by_area.items():
-            ax.plot(curves.theta, values, lw=1, label=area)
-        ax.set_xlabel("ability (theta)")
+        for label, values in information.items():
+            ax.plot(curves.theta, values, lw=2 if label == "total" else 1, label=label,
+                    **({"color": "black"} if label == "total" else {}))
+        ax.set_xlabel(x_label)
         ax.set_ylabel("test information")
         se_axis = ax.twinx()
-        se_axis.plot(curves.theta, curves.se, color="grey", ls="--", lw=1)
+        for label, values in se.items():
+            se_axis.plot(curves.theta, values, ls="--", lw=1, **({"color": "grey"} if label == "total" else {}))
         se_axis.set_ylabel("standard error (dashed)")
-        finite = curves.se[np.isfinite(curves.se)]
+        every_se = np.concatenate(list(se.values()))
+        finite = every_se[np.isfinite(every_se)]
         if finite.size:
             se_axis.set_ylim(0, min(2.0, float(finite.max()) * 1.05))
         ax.legend(loc="upper left", fontsize="small")

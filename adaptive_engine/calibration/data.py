@@ -17,6 +17,16 @@ from ..errors import CalibrationError, Problem
 from ..irt import models
 
 
+def require_one_dimensional(bank: ItemBank, location: str) -> None:
+    """Refuse a bank of multidimensional models (M2PL, M3PL, MGRM): the calibration, linking
+    and pretest methods here estimate one-dimensional models."""
+    if bank.uses_multidimensional_models:
+        raise CalibrationError(
+            f"bank {bank.name or ''} holds multidimensional models (M2PL, M3PL, MGRM) with "
+            f"{bank.n_dimensions} dimension{'s' if bank.n_dimensions != 1 else ''}; calibration, linking and "
+            "pretest calibration work with banks of one-dimensional models", location=location)
+
+
 @attrs.frozen(eq=False, kw_only=True)
 class CalibrationData:
     """Answers ready for the EM cycles.
@@ -110,6 +120,7 @@ def prepare_data(
             raise CalibrationError(f"unknown model {model!r} (use one of {', '.join(models.MODEL_FAMILY)})",
                                    location="--model")
     if template is not None:
+        require_one_dimensional(template, "--template")
         bank_rows = table.bank_item_index(template)  # unknown ids / categories: located errors
         used = np.unique(bank_rows)
         item_ids = template.item_ids[used]

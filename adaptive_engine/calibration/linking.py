@@ -28,6 +28,7 @@ from scipy.optimize import minimize
 from ..bank.item_bank import ItemBank
 from ..errors import CalibrationError, Problem
 from ..irt import models
+from .data import require_one_dimensional
 
 METHODS = ("mean_mean", "mean_sigma", "haebara", "stocking_lord")
 
@@ -167,6 +168,8 @@ def link_banks(
     if method not in METHODS:
         raise CalibrationError(f"unknown linking method {method!r} (use one of {', '.join(METHODS)})",
                                location="--method")
+    require_one_dimensional(new, "BANK")
+    require_one_dimensional(base, "--to")
     if not (math.isfinite(max_slope_ratio) and max_slope_ratio >= 1.0):
         raise CalibrationError(f"must be >= 1 (a factor: a slope ratio r and 1/r are the same change), "
                                f"got {max_slope_ratio}", location="--max-slope-ratio")

@@ -37,7 +37,7 @@ from scipy.special import logsumexp
 from ..bank.item_bank import ItemBank
 from ..errors import CalibrationError, Problem
 from ..irt import models
-from .data import CalibrationData
+from .data import CalibrationData, require_one_dimensional
 from .em import CalibrationSettings, bounded, calibrate_data
 from .item_fit import grouped_posterior_fit, parameters_per_item
 
@@ -209,6 +209,7 @@ def calibrate_pretest(
         Priors, tolerance and grid size (``min_answers`` is not used here: items below
         ``rules.min_answers`` are estimated when possible and reported as not ready).
     """
+    require_one_dimensional(bank, "bank")
     rules = rules or PromotionRules()
     settings = settings or CalibrationSettings()
     # the new items must be in the bank's own units: the operational posteriors use its D,

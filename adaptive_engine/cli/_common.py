@@ -18,6 +18,15 @@ EXIT_INPUT_ERROR = 2
 #: Help of every ``--scaling`` option that reads a bank.
 SCALING_HELP = ("Scaling constant D of a CSV bank (default 1.0).  JSON and SQLite banks carry "
                 "their own D; a value that disagrees with it is an error.")
+#: Help of every ``--dimensions`` option that reads a bank.
+DIMENSIONS_HELP = ("Names of the dimensions of a multidimensional CSV bank, comma-separated "
+                   "(e.g. treatment_operations,regulation_and_safety; theta_1, theta_2, ... when not given).  "
+                   "JSON and SQLite banks may state their own; names that disagree with them are an error.")
+
+
+def dimension_names(text: str | None) -> list[str] | None:
+    """The names of a ``--dimensions`` option (``"a,b"``), or None when it was not given."""
+    return None if text is None else [name.strip() for name in text.split(",")]
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})

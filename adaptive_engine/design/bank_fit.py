@@ -77,6 +77,11 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
     if problems and key_problems(design):
         # the checks below read the design's values: they must be valid on their own first
         return problems
+    if bank.n_dimensions > 1:
+        # the kernel scores and selects with one ability: it could not start a test
+        return problems + [Problem(f"bank {bank.name}".strip(), (
+            f"the bank has {bank.n_dimensions} ability dimensions ({', '.join(bank.dimension_names)}); "
+            "designs run on one-dimensional banks"))]
     st, bp, sel, ex = design.stopping, design.blueprint, design.selection, design.exposure
     operational = np.asarray(bank.status == "operational")
     n_operational = int(operational.sum())
