@@ -505,6 +505,11 @@ def _exposure_story(result, summary, first_counts, follow_counts) -> list[str]:
                    f"{over.size} of the {n_op} operational items ({_pct(over.size / max(n_op, 1))}) are given to "
                    f"more than {_pct(target, 0)} of the examinees; the most exposed, "
                    f"<code>{_esc(bank.item_ids[top])}</code>, to {_pct(rates[top])}.</div>")
+        se = math.sqrt(target * (1 - target) / n)
+        if rates[top] <= target + 3 * se:
+            out.append(f"<p>Every excess is within simulation noise: a rate estimated from {n:,} examinees has a "
+                       f"standard error of about {se:.3f} ({_pct(se)}), and the largest of many rates lies a few "
+                       "of them above the true largest one. Simulate more examinees to tell.</p>")
         why = []
         method = design.exposure.method
         if first_counts is not None:
@@ -515,10 +520,13 @@ def _exposure_story(result, summary, first_counts, follow_counts) -> list[str]:
                 names = ", ".join(f"<code>{_esc(bank.item_ids[i])}</code> ({_pct(first_rate[i])})" for i in openers[:6])
                 start = ("a random starting ability" if design.opening.random_theta is not None
                          else f"theta {design.opening.theta:g}")
-                how = ("gives the most informative item there first, so the tests open alike"
-                       if k_first == 1 else
-                       f"draws its first item among the {k_first} most informative items there, so each of them "
-                       f"opens about 1/{k_first} of the tests")
+                if k_first > 1:
+                    how = (f"draws its first item among the {k_first} most informative items there, so each of "
+                           f"them opens about 1/{k_first} of the tests")
+                elif design.exposure.method == "none":
+                    how = "gives the most informative item there first, so the tests open alike"
+                else:
+                    how = "picks its first item among the few items most informative there"
                 why.append(f"<li><b>The first item.</b> Every test opens at {start} and {how}: {names} "
                            "(share of examinees who got it first). More first-item candidates "
                            "([opening] first_items_from_top) spread the opening.</li>")
