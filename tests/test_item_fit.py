@@ -115,7 +115,7 @@ def test_s_x2_null_rejection_rate_and_power():
         x = _simulate_2pl(rng, 1000, a, b)
         result = calibrate_responses(_table(x), model="2PL")
         fit = fit_for_result(result)
-        assert fit.statistic_name == "s_x2"
+        assert fit.statistic_name == "summed_score_chi_square"
         p_values.extend(fit.p_value)
         rejections += int(np.sum(fit.p_value < 0.05))
         total += n_items

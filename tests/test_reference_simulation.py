@@ -101,7 +101,7 @@ def test_se_stop_gives_rmse_near_the_target():
     assert mse == pytest.approx(np.mean(res.se**2), rel=0.10)
     p = metrics.precision(res.true_theta, res.theta, res.se)
     assert p["rmse"] == pytest.approx(0.3, abs=0.03)
-    assert 0.9 <= p["se_calibration"] <= 1.1
+    assert 0.9 <= p["rmse_to_mean_se"] <= 1.1
     assert np.mean(res.stop_reason == "se_reached") > 0.95
 
 

@@ -57,7 +57,7 @@ class ItemFit:
     Attributes
     ----------
     statistic_name : str
-        ``s_x2`` or ``grouped_posterior_chi_square``.
+        ``summed_score_chi_square`` (S-X2) or ``grouped_posterior_chi_square``.
     statistic, df, p_value : arrays
         NaN where the statistic could not be formed (df < 1).
     infit, outfit : arrays
@@ -315,7 +315,7 @@ def fit_for_result(result) -> ItemFit:
         x[data.person, data.item] = data.response
         grid, log_w = normal_grid(result.settings.quadrature_points, result.settings.theta_range)
         stat, df, p = s_x2(bank, x, n_parameters=n_params, grid=grid, log_weights=log_w)
-        name = "s_x2"
+        name = "summed_score_chi_square"
     else:
         stat, df, p = grouped_posterior_fit(bank, data.item, data.person, data.response,
                                             result.posterior, result.grid, n_parameters=n_params)

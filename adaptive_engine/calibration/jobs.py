@@ -22,6 +22,10 @@ from .pretest import PromotionRules, calibrate_pretest
 
 _BANK_SUFFIXES = (".csv", ".json", ".db", ".sqlite", ".sqlite3")
 
+#: Items whose fit p-value falls below this are counted in the calibration summary
+#: (``items_below_misfit_p_threshold``; the threshold itself is ``misfit_p_threshold``).
+MISFIT_P_THRESHOLD = 0.01
+
 
 def _check_folder(path, option: str) -> Path:
     """Refuse an output whose folder is missing -- before any work is done, and naming the
@@ -84,8 +88,8 @@ def calibrate_file(
         reports[Path(fit_report)] = rows_to_csv(item_report_rows(result, fit))
     _write_outputs(result.bank, out, reports)
     summary = result.summary()
-    summary.update(fit_statistic=fit.statistic_name,
-                   items_with_fit_p_below_0_01=int((fit.p_value < 0.01).sum()),
+    summary.update(fit_statistic=fit.statistic_name, misfit_p_threshold=MISFIT_P_THRESHOLD,
+                   items_below_misfit_p_threshold=int((fit.p_value < MISFIT_P_THRESHOLD).sum()),
                    out=str(out), fit_report=str(fit_report) if fit_report else None)
     return summary
 

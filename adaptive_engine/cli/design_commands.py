@@ -20,12 +20,17 @@ def design():
 def check(design_file, bank_file):
     """Validate DESIGN_FILE (and its fit to --bank); print what it means, one line per section.
 
-    Exit code 2 lists every problem as LOCATION: problem.
+    Exit code 2 lists every problem as LOCATION: problem.  What runs but deserves a look (a
+    bank area the blueprint does not mention, a small area) is printed on stderr as
+    warning: LOCATION: message lines.
     """
     from ..design.bank_fit import check_bank_file
 
-    for line in check_bank_file(design_file, bank_file):
+    warnings: list = []
+    for line in check_bank_file(design_file, bank_file, warnings=warnings):
         click.echo(line)
+    for w in warnings:
+        click.echo(f"warning: {w.location}: {w.message}", err=True)
 
 
 @design.command("show")

@@ -82,12 +82,15 @@ def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd)
     Output: {"session_id": ..., "item_id": ..., "item": {...}, "done": false, ...}.
     """
     from ..bank.item_bank import load_bank
+    from ..design.bank_fit import design_warnings
     from ..design.toml_file import read_design
     from ..live.session import commit_start, prepare_start
     from ..live.store import open_store
 
     design = read_design(design_file)
     bank = load_bank(bank_file)
+    for w in design_warnings(design, bank):
+        click.echo(f"warning: {w.location}: {w.message}", err=True)
     with _named_as_on_the_command_line():
         # every check of the request runs before the store is opened, so a refused start
         # creates no file -- and never deletes one: another process may be using a store

@@ -158,6 +158,8 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
                           progress=progress)
     finally:
         progress.close()
+    for w in study.warnings:
+        click.echo(f"warning: {w.location}: {w.message}", err=True)
     if as_json:
         echo_json({k: v for k, v in study.summary.items()})
     else:
@@ -245,10 +247,12 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
     """Iterate Sympson-Hetter exposure parameters for DESIGN until no item exceeds --target.
 
     Writes the parameters in any case; exits with code 3 when the last iteration still
-    left an item above --target + --tolerance (not converged), 2 on bad input.
+    left an item above --target + --tolerance (not converged), naming those items, why
+    they stay above it where that is known, and what would let it converge; 2 on bad input.
     """
     from ..design.exposure_parameters import MAX_EXPOSURE_STRATA
     from ..errors import AdaptiveEngineError
+    from ..simulation.exposure_diagnosis import opening_and_area_limits
     from ..simulation.exposure_tuning import parse_strata, run_calibration, unreachable_target_warning
     from ..simulation.population import examinee_count, parse_ability_spec
 
@@ -264,6 +268,8 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
         warning = unreachable_target_warning(design, bank, target)
         if warning:
             click.echo(f"warning: {warning}", err=True)
+        for note in opening_and_area_limits(design, bank, target):
+            click.echo(f"warning: {note}", err=True)
     progress = _Progress("calibrating", enabled=show_progress)
     try:
         cal = run_calibration(design, bank, target=target, out_file=out_file,
@@ -290,6 +296,9 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
     state = "converged" if cal.converged else f"did not converge in {iterations} iterations"
     click.echo(f"{state} (target {target:g}, tolerance {tolerance:g}); wrote {out_file}")
     if not cal.converged:
+        if cal.diagnosis is not None:
+            for line in cal.diagnosis.lines():
+                click.echo(line)
         sys.exit(EXIT_NOT_CONVERGED)
 
 

@@ -6,10 +6,19 @@ groups and item sets are taken into account, pretest slots without pretest items
 parameters for unknown items, ...); :func:`require_design_fits_bank` raises them as one
 :class:`~adaptive_engine.errors.DesignError`.  :func:`describe_design` gives one line per
 section for people.
+
+:func:`design_warnings` lists what runs but deserves a look -- a bank area the blueprint
+does not mention (often a typo in the bank, such as ``source_waters``), a blueprint area
+with few items for its minimum.  Warnings are returned as a list of
+:class:`~adaptive_engine.errors.Problem` (never through Python's ``warnings`` module), so
+a caller decides where they go: the command line prints each as one
+``warning: LOCATION: message`` line on stderr (``design check``, ``simulate``,
+``session start``), the simulation report shows them.
 """
 
 from __future__ import annotations
 
+import difflib
 import math
 from collections import Counter
 
@@ -227,6 +236,59 @@ def _difficulty(bank: ItemBank) -> np.ndarray:
     return out
 
 
+#: A blueprint area is flagged as small when its minimum alone gives its items a mean
+#: exposure rate above this (min / items): an item seen by more than one examinee in four
+#: (the cap often used for operational banks; the simulation's default exposure target).
+SMALL_AREA_EXPOSURE = 0.25
+
+
+def design_warnings(design: Design, bank: ItemBank) -> list[Problem]:
+    """What lets ``design`` run on ``bank`` but deserves a look (empty list: nothing).
+
+    * a bank area with operational items that the blueprint does not mention, when the
+      blueprint has area rules (the closest blueprint area is suggested: often a typo);
+    * a blueprint area whose operational items are few for its minimum: each examinee
+      takes ``min`` of its ``n`` items, so they are given to ``min / n`` of the examinees
+      on average, more than :data:`SMALL_AREA_EXPOSURE`; or an area without operational
+      items.
+
+    Returns
+    -------
+    list of Problem
+        Located at ``bank area 'NAME'`` or ``[blueprint.areas.NAME]``.
+    """
+    rules = design.blueprint.areas
+    if not rules:
+        return []
+    out = []
+    operational = np.asarray(bank.status) == "operational"
+    areas = np.asarray(bank.area)
+    named = [r.name for r in rules]
+    for area in bank.areas:
+        if area in named:
+            continue
+        rows = np.flatnonzero(operational & (areas == area))
+        if not rows.size:
+            continue
+        shown = ", ".join(str(bank.item_ids[i]) for i in rows[:3]) + (" ..." if rows.size > 3 else "")
+        close = difflib.get_close_matches(str(area), named, n=1, cutoff=0.75)
+        hint = f"; did you mean {close[0]!r}?" if close else ""
+        out.append(Problem(f"bank area {area!r}",
+                           f"{rows.size} operational item(s) ({shown}) in an area the blueprint does not "
+                           f"mention, so no area rule applies to them{hint}"))
+    for rule in rules:
+        where = f"[blueprint.areas.{toml_key(rule.name)}]"
+        n = int(np.sum(operational & (areas == rule.name)))
+        if rule.name in bank.areas and n == 0:
+            out.append(Problem(where, "the area has no operational items (only pretest ones)"))
+        elif n and rule.min / n > SMALL_AREA_EXPOSURE:
+            out.append(Problem(f"{where} min",
+                               f"min {rule.min} of only {n} operational item(s): each examinee takes {rule.min} of "
+                               f"them, so they are given to {rule.min / n:.0%} of the examinees on average "
+                               f"(more than {SMALL_AREA_EXPOSURE:.0%}); add items to the area or lower its minimum"))
+    return out
+
+
 def require_design_fits_bank(design: Design, bank: ItemBank) -> None:
     """Raise :class:`DesignError` listing every problem of :func:`check_design_against_bank`."""
     problems = check_design_against_bank(design, bank)
@@ -400,8 +462,11 @@ def _reporting_words(design) -> str:
     return score + f"; person fit flagged below {rp.person_fit_threshold:g}"
 
 
-def check_bank_file(design_path, bank_path=None) -> list[str]:
+def check_bank_file(design_path, bank_path=None, *, warnings: list | None = None) -> list[str]:
     """Read a design file (and a bank file), check them, return the plain-words summary.
+
+    ``warnings``: a list that receives the :func:`design_warnings` of the pair (when a bank
+    is given).
 
     Raises
     ------
@@ -416,6 +481,8 @@ def check_bank_file(design_path, bank_path=None) -> list[str]:
     if bank_path is not None:
         bank = load_bank(bank_path)
         require_design_fits_bank(design, bank)
+        if warnings is not None:
+            warnings.extend(design_warnings(design, bank))
         n_pretest = int(np.sum(bank.status == "pretest"))
         header += f"; fits bank {bank.name or bank_path} ({len(bank)} items, {n_pretest} pretest)"
     return [header] + describe_design(design)

@@ -38,6 +38,21 @@ the estimate's stratum always equals the true one the step is exactly the plain 
 
 The file written is the long ``item_id,theta_from,theta_to,exposure_parameter`` CSV, one
 row per item and stratum.
+
+Administrations without a lottery
+---------------------------------
+A design that draws its first item at random among several candidates
+(``first_items_from_top`` > 1) gives that item without a lottery: the random draw is the
+opening's own exposure control.  Those administrations count as selections all the same,
+so the plain step, ``k = r / P(selected)``, settles where P(given) = P(first) +
+k (P(selected) - P(first)) > r: on the licensing exam the five first-item candidates
+stalled at about 0.38 against a target of 0.25 (0.20 of it from the opening).  The step
+therefore leaves them out of the lottery's share and solves for what is left:
+
+    k_i = min(1, max(0, r - P(first_i)) / (P(selected_i) - P(first_i)))
+
+(per true stratum in the conditional step).  When the calibration ends above the target,
+:mod:`adaptive_engine.simulation.exposure_diagnosis` says which items stay above it and why.
 """
 
 from __future__ import annotations
@@ -54,6 +69,7 @@ from ..design.types import Design
 from ..errors import AdaptiveEngineError
 from ..files import check_target, write_text
 from .engine import DEFAULT_CHUNK, simulate, stratum_of
+from .exposure_diagnosis import ExposureDiagnosis, LotteryFreeCounts, diagnose
 
 
 @attrs.frozen(kw_only=True, eq=False)
@@ -78,6 +94,10 @@ class ExposureCalibration:
     strata : tuple of float
         Interior cut points of the ability strata (empty: unconditional); then
         ``parameters`` maps item id -> tuple with one parameter per stratum.
+    diagnosis : ExposureDiagnosis or None
+        When not converged: the items of the last iteration above ``target + tolerance``,
+        why they stayed there where it can be known, and what would let the calibration
+        converge (:mod:`adaptive_engine.simulation.exposure_diagnosis`).
     """
 
     parameters: dict
@@ -86,6 +106,7 @@ class ExposureCalibration:
     target: float
     tolerance: float
     strata: tuple = ()
+    diagnosis: ExposureDiagnosis | None = None
 
 
 def _iteration_seed(seed: int, iteration: int) -> int:
@@ -114,23 +135,42 @@ def _set_members(bank: ItemBank, design: Design) -> list[np.ndarray]:
     return [np.flatnonzero(labels == name) for name in names]
 
 
-def _updated(k, given, selected, target, sets) -> np.ndarray:
+def _lottery_step(selected, free, target):
+    """``min(1, max(0, r - free) / (selected - free))`` where selected > r, else inf (no bound).
+
+    ``free``: the part of the selections given without a lottery (first items drawn among
+    several, see the module notes); with none this is Sympson & Hetter's ``r / P(selected)``.
+    """
+    lottery = selected - free
+    with np.errstate(divide="ignore", invalid="ignore"):
+        step = np.where(lottery > 0, np.maximum(target - free, 0.0) / lottery, 0.0)
+    return np.where(selected > target, np.minimum(step, 1.0), np.inf)
+
+
+def _updated(k, given, selected, target, sets, free=None) -> np.ndarray:
     """One Sympson-Hetter step: ``k = min(1, r / P(selected))`` per item.
 
-    Items of a set are given together once the set is entered, and only the entry goes
-    through the lottery, so a set gets one parameter for all its members, scaled by how
-    far the set's entry rate (its members' largest exposure rate) is from the target.
+    ``free`` (n,): rates given without a lottery (first items), left out of the lottery's
+    share (module notes).  Items of a set are given together once the set is entered, and
+    only the entry goes through the lottery, so a set gets one parameter for all its
+    members, scaled by how far the set's entry rate (its members' largest exposure rate)
+    is from the target.
     """
+    free = np.zeros_like(selected, dtype=float) if free is None else free
     with np.errstate(divide="ignore", invalid="ignore"):
-        new = np.where(selected > target, target / selected, 1.0)
+        new = np.minimum(1.0, _lottery_step(selected, free, target))
         for members in sets:
             entry = given[members].max()
+            opened = free[members].sum()  # entered as the first item, without a lottery
             old = k[members].max()
-            new[members] = min(1.0, old * target / entry) if entry > 0 else 1.0
+            if entry > opened:
+                new[members] = min(1.0, old * max(target - opened, 0.0) / (entry - opened))
+            else:  # never entered (released), or only by the opening (kept)
+                new[members] = old if opened > 0 else 1.0
     return new
 
 
-def _updated_conditional(k, given_pair, selected_pair, size, target, sets) -> np.ndarray:
+def _updated_conditional(k, given_pair, selected_pair, size, target, sets, free=None) -> np.ndarray:
     """One conditional step (see the module notes), (S, n) -> (S, n).
 
     Parameters
@@ -141,18 +181,22 @@ def _updated_conditional(k, given_pair, selected_pair, size, target, sets) -> np
         Counts per [true stratum, estimate stratum at the pick, item].
     size : int (S,)
         Examinees per true stratum.
+    free : int (S, n), optional
+        Administrations without a lottery (first items) per true stratum.
     """
     selected = selected_pair.sum(axis=1) / size[:, None]  # P(selected_i | true s), (S, n)
     served = selected_pair > 0  # (S true, S estimate, n)
-    with np.errstate(divide="ignore"):
-        allowed = np.where(selected > target, target / selected, np.inf)  # (S true, n)
+    free_rate = np.zeros_like(selected) if free is None else free / size[:, None]
+    allowed = _lottery_step(selected, free_rate, target)  # (S true, n)
     new = np.minimum(1.0, np.where(served, allowed[:, None, :], np.inf).min(axis=0))
     if sets:
         given = given_pair.sum(axis=1) / size[:, None]
         for members in sets:
             entry = given[:, members].max(axis=1)  # set entry rate per true stratum
-            with np.errstate(divide="ignore"):
-                factor = np.where(entry > 0, target / entry, np.inf)
+            opened = free_rate[:, members].sum(axis=1)  # entered as the first item
+            with np.errstate(divide="ignore", invalid="ignore"):
+                factor = np.where(entry > opened, np.maximum(target - opened, 0.0) / (entry - opened),
+                                  np.where(opened > 0, 1.0, np.inf))
             for e in range(k.shape[0]):
                 fed = served[:, e, members].any(axis=1)
                 worst = factor[fed].min() if fed.any() else np.inf
@@ -265,8 +309,9 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
     for it in range(max_iterations):
         params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
         current = with_parameters(design, params)
+        counts = LotteryFreeCounts(design, bank)
         result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
-                          chunk_size=chunk_size, workers=workers, executor=executor,
+                          chunk_size=chunk_size, workers=workers, executor=executor, on_chunk=counts,
                           progress=_iteration_progress(progress, it, n, max_iterations))
         given = result.administered / n
         selected = result.offered / n
@@ -278,12 +323,18 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
         if max_rate <= target + tolerance:
             converged = True
             break
-        k = _updated(k, given, selected, target, sets)
+        used = k
+        k = _updated(k, given, selected, target, sets, free=counts.first[0] / n)
     if progress is not None:
         progress(max_iterations * n, max_iterations * n)
     params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
+    diagnosis = None
+    if not converged:
+        diagnosis = diagnose(design, bank, target=target, tolerance=tolerance, history=history,
+                             given=given[None, :], selected=selected[None, :], parameters=used[None, :],
+                             next_parameters=k[None, :], counts=counts, size=np.array([n]))
     return ExposureCalibration(parameters=params, history=history, converged=converged,
-                               target=float(target), tolerance=float(tolerance))
+                               target=float(target), tolerance=float(tolerance), diagnosis=diagnosis)
 
 
 def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, max_iterations, tolerance,
@@ -310,8 +361,10 @@ def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, ma
 
     for it in range(max_iterations):
         current = with_parameters(design, as_params(), strata=strata)
+        counts = LotteryFreeCounts(design, bank, strata)
         result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
                           chunk_size=chunk_size, workers=workers, executor=executor, count_by_stratum=strata,
+                          on_chunk=counts,
                           progress=_iteration_progress(progress, it, true_theta.size, max_iterations))
         given = result.administered_by_stratum / size[:, None]  # P(A_i | true stratum s)
         by_stratum = given[:, operational].max(axis=1)
@@ -325,12 +378,19 @@ def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, ma
         if max_rate <= target + tolerance:
             converged = True
             break
+        used = k
         k = _updated_conditional(k, result.administered_by_stratum_pair, result.offered_by_stratum_pair,
-                                 size, target, sets)
+                                 size, target, sets, free=counts.first)
     if progress is not None:
         progress(max_iterations * true_theta.size, max_iterations * true_theta.size)
+    diagnosis = None
+    if not converged:
+        diagnosis = diagnose(design, bank, target=target, tolerance=tolerance, history=history, given=given,
+                             selected=result.offered_by_stratum / size[:, None], parameters=used,
+                             next_parameters=k, counts=counts, size=size)
     return ExposureCalibration(parameters=as_params(), history=history, converged=converged,
-                               target=float(target), tolerance=float(tolerance), strata=strata)
+                               target=float(target), tolerance=float(tolerance), strata=strata,
+                               diagnosis=diagnosis)
 
 
 def parameters_csv(parameters: dict, strata=()) -> str:

@@ -1,7 +1,20 @@
-"""Self-contained HTML reports of simulation studies (tables, and plots as embedded PNG).
+"""Self-contained HTML reports of simulation studies and tuning runs.
 
-Plots need matplotlib (the ``plots`` extra); without it the report still has every table
-and says that the plots were left out.  The page loads nothing from the network.
+The study page explains itself: which design was simulated (its file name and the
+plain-words description ``design check`` prints), the headline figures with readable
+labels and units, then one section each for test length, precision, exposure and
+classification, a section on the content areas and the bank, and a short glossary.
+Conditional plots show how many examinees each ability bin holds, and mark bins too thin
+to trust (fewer than :data:`THIN_BIN` examinees).  Exposure is shown so that the
+over-exposed items stand out (sorted rates against the target, and a table of the items
+above it), with a sentence saying whether the target is met and, when it is not, where the
+exposure comes from where that can be known (the opening's first-item rule, item sets,
+small content areas, the exposure method).
+
+Plots need matplotlib (the ``plots`` extra); without it the pages keep every table and
+say that the plots were left out.  Pages load nothing from the network (inline CSS,
+plots as inline PNG), and every table and figure fits a window 1024 px wide (checked in
+headless Chromium by ``tests/test_report_pages.py``).
 """
 
 from __future__ import annotations
@@ -13,14 +26,38 @@ import math
 
 import numpy as np
 
+#: Bins with fewer examinees are marked as thin on conditional plots and tables (common
+#: practice: below about 30 cases a bin's RMSE or share moves by several points from one
+#: sample to the next).
+THIN_BIN = 30
+
+#: Items above the exposure target listed in the report's table (all are in items.csv).
+MAX_LISTED_ITEMS = 25
+
 _STYLE = """
-body{font-family:system-ui,-apple-system,Segoe UI,sans-serif;margin:2em auto;max-width:70em;color:#222}
-table{border-collapse:collapse;margin:0.5em 0 1.5em}
-td,th{border:1px solid #ccc;padding:0.2em 0.6em;text-align:right}
-th{background:#f0f0f0} td.l,th.l{text-align:left}
-figure{display:inline-block;margin:0.5em}
-.note{color:#666}
+*,*::before,*::after{box-sizing:border-box}
+body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;margin:0 auto;padding:1em 1.5em 3em;
+max-width:62em;color:#222;line-height:1.45}
+h1{font-size:1.55em;margin-bottom:.2em} h2{font-size:1.25em;border-bottom:1px solid #ddd;
+padding-bottom:.15em;margin-top:1.8em} h3{font-size:1.05em;margin-bottom:.3em}
+table{border-collapse:collapse;margin:.4em 0 1.2em;font-size:.9em;max-width:100%}
+td,th{border:1px solid #ccc;padding:.2em .5em;text-align:right;vertical-align:top}
+td{white-space:nowrap} th{background:#f0f0f0;font-weight:600}
+td.l,th.l{text-align:left} td.l{white-space:normal}
+tr.thin td{color:#777;font-style:italic}
+figure{margin:.6em 0 1.6em;max-width:100%} figure img{display:block;max-width:100%;height:auto}
+figcaption{color:#444;font-size:.9em;max-width:44em}
+p,li,dd{max-width:48em} code{overflow-wrap:anywhere}
+.note{color:#555}
+.box{padding:.5em .8em;margin:.6em 0 1em;border-left:4px solid}
+.warn{background:#fff6e6;border-color:#e69500} .miss{background:#fdeceb;border-color:#c62828}
+.ok{background:#eaf5ea;border-color:#2e7d32}
+dl.design{margin:.4em 0 1em} dl.design dt{font-weight:600;margin-top:.3em} dl.design dd{margin:0 0 0 1.2em}
+dl.glossary dt{font-weight:600;margin-top:.5em} dl.glossary dd{margin:0 0 0 1.2em}
 """
+
+_TARGET_COLOUR = "#c62828"
+_BLUE = "#3a6ea5"
 
 
 def pyplot_or_none():
@@ -42,134 +79,803 @@ def png_base64(fig) -> str:
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
 
-def _fmt(v) -> str:
+# ----------------------------------------------------------------------------------------
+# formatting
+
+
+def _esc(x) -> str:
+    return html.escape(str(x))
+
+
+def _fmt(v, digits: int = 3) -> str:
+    """A cell: dashes for missing values, ``digits`` decimals for floats."""
     if v is None:
         return "&ndash;"
-    if isinstance(v, float):
-        return "&ndash;" if not math.isfinite(v) else f"{v:.4g}"
-    return html.escape(str(v))
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, (float, np.floating)):
+        return "&ndash;" if not math.isfinite(v) else f"{v:.{digits}f}"
+    return _esc(v)
 
 
-def table_html(rows: list[dict], columns: list[str] | None = None) -> str:
-    """An HTML table of flat dicts (first column left-aligned)."""
+def _pct(v, digits: int = 1) -> str:
+    if v is None or not math.isfinite(v):
+        return "&ndash;"
+    return f"{100 * v:.{digits}f}%"
+
+
+def table_html(rows: list[dict], columns: list[str] | None = None, *, labels: dict | None = None,
+               text=(), row_class=None) -> str:
+    """An HTML table of flat dicts.
+
+    The first column and the ``text`` columns are left-aligned and wrap; the others hold
+    figures (right-aligned, kept on one line).  ``labels`` maps a key to its column
+    heading; ``row_class(row)`` may give a CSS class per row (e.g. ``thin``).  Cells
+    already formatted as HTML are passed as :class:`Html` values.
+    """
     if not rows:
         return "<p class='note'>(none)</p>"
     cols = columns or list(dict.fromkeys(k for r in rows for k in r))
-    head = "".join(f"<th{' class=l' if j == 0 else ''}>{html.escape(c)}</th>" for j, c in enumerate(cols))
-    body = "".join(
-        "<tr>" + "".join(f"<td{' class=l' if j == 0 else ''}>{_fmt(r.get(c))}</td>" for j, c in enumerate(cols))
-        + "</tr>" for r in rows)
-    return f"<table><tr>{head}</tr>{body}</table>"
+    labels = labels or {}
+    left = [j == 0 or c in text for j, c in enumerate(cols)]
+    head = "".join(f"<th{' class=l' if left[j] else ''}>{_breakable(labels.get(c, c))}</th>"
+                   for j, c in enumerate(cols))
+    body = []
+    for r in rows:
+        cls = row_class(r) if row_class else None
+        cells = "".join(f"<td{' class=l' if left[j] else ''}>{_cell(r.get(c))}</td>" for j, c in enumerate(cols))
+        body.append(f"<tr{f' class={cls}' if cls else ''}>{cells}</tr>")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
-def _figures(result, summary) -> list[tuple[str, str]]:
-    """(caption, base64 PNG) pairs; empty without matplotlib."""
-    plt = pyplot_or_none()
-    if plt is None:
-        return []
-    out = []
-    cond = [r for r in summary["conditional"] if r["theta"] is not None]
-    th = np.array([r["theta"] for r in cond])
+def _breakable(label) -> str:
+    """A heading that may wrap after dots and underscores (long design keys such as
+    ``stopping.sprt.indifference`` would otherwise widen their column)."""
+    return _esc(label).replace(".", ".<wbr>").replace("_", "_<wbr>")
 
-    def col(name):
-        return np.array([np.nan if r.get(name) is None else r[name] for r in cond], dtype=float)
 
-    fig, ax = plt.subplots(figsize=(6, 3.6))
-    ax.plot(th, col("rmse"), "o-", label="RMSE")
-    ax.plot(th, col("bias"), "s-", label="bias")
-    ax.plot(th, col("mean_se"), "^-", label="mean SE")
-    ax.axhline(0, color="grey", lw=0.5)
-    ax.set_xlabel("true theta")
-    ax.legend()
-    out.append(("Conditional RMSE, bias and SE", png_base64(fig)))
+class Html(str):
+    """A table cell that is already HTML (not escaped again)."""
+
+
+def _cell(v) -> str:
+    return str(v) if isinstance(v, Html) else _fmt(v)
+
+
+def _figure(caption: str, data: str) -> str:
+    return (f"<figure><img alt='{_esc(caption)}' src='data:image/png;base64,{data}'>"
+            f"<figcaption>{_esc(caption)}</figcaption></figure>")
+
+
+# ----------------------------------------------------------------------------------------
+# labels and glossary
+
+#: Headline keys of summary.json -> (label, how the value is shown).
+HEADLINE_LABELS = {
+    "examinees": "Simulated examinees",
+    "mean_length": "Mean test length",
+    "rmse": "RMSE of the final estimate",
+    "bias": "Bias of the final estimate",
+    "mae": "Mean absolute error",
+    "mean_se": "Mean reported standard error",
+    "rmse_to_mean_se": "RMSE / mean SE",
+    "correlation": "Correlation of estimate and true ability",
+    "marginal_reliability": "Marginal reliability",
+    "max_exposure": "Largest exposure rate",
+    "share_above_target": "Items above the exposure target",
+    "share_never_used": "Items never given",
+    "overlap_rate": "Test overlap rate",
+    "chi_square_index": "Chi-square index of exposure",
+}
+
+GLOSSARY = (
+    ("theta units", "the ability scale of the item bank; with a standard normal population one unit is one "
+                    "standard deviation of ability"),
+    ("RMSE", "root mean squared error: the typical distance between the final estimate and the simulated "
+             "true ability, in theta units (smaller is better)"),
+    ("bias", "the mean of estimate minus true ability: positive when estimates run high"),
+    ("standard error (SE)", "the uncertainty the engine reports with each estimate"),
+    ("RMSE / mean SE", "near 1 when the reported standard errors are honest; above 1 they understate the "
+                       "real error, below 1 they overstate it (summary.json: rmse_to_mean_se)"),
+    ("marginal reliability", "the share of the variance of the estimates that is true-ability variance "
+                             "(0 to 1, higher is better)"),
+    ("exposure rate", "the share of examinees who were given an item; the exposure target is the rate no "
+                      "operational item should exceed (--exposure-target, default 0.25)"),
+    ("test overlap rate", "the share of a test that two examinees have in common on average"),
+    ("chi-square index", "how unevenly the items are used: 0 when every item is given equally often "
+                         "(Chang & Ying 1999)"),
+    ("classification accuracy", "the share of examinees classified on the same side of a cut score as their "
+                                "true ability"),
+    ("false pass / false fail", "examinees classified at or above the cut although truly below it, and the "
+                                "reverse"),
+    ("thin bin", f"an ability bin with fewer than {THIN_BIN} simulated examinees: its figures are rough and are "
+                 "shown hollow or in grey"),
+)
+
+
+def _stop_reason_meanings() -> dict:
+    from ..kernel.stopping import STOP_REASONS
+
+    return STOP_REASONS
+
+
+# ----------------------------------------------------------------------------------------
+# figures
+
+
+def _bars_width(x) -> float:
+    x = np.unique(np.asarray(x, dtype=float))
+    return 0.8 * float(np.min(np.diff(x))) if x.size > 1 else 0.4
+
+
+def _conditional_figure(plt, x, n, series, *, ylabel: str, title: str, cut=None, hline=None, ylim=None):
+    """Lines over true ability with a panel of examinees per bin beneath; thin bins hollow.
+
+    ``series``: (label, values, marker, colour) tuples; ``cut``: (theta, label) marked by
+    a vertical line.
+    """
+    x = np.asarray(x, dtype=float)
+    n = np.asarray(n, dtype=float)
+    thin = n < THIN_BIN
+    fig, (ax, axn) = plt.subplots(2, 1, figsize=(7.2, 4.8), sharex=True,
+                                  gridspec_kw={"height_ratios": [3, 1], "hspace": 0.08})
+    for label, values, marker, colour in series:
+        v = np.asarray(values, dtype=float)
+        ax.plot(x, v, "-", color=colour, lw=1.2, label=label)
+        if marker:
+            ax.plot(x[~thin], v[~thin], ls="none", marker=marker, color=colour)
+            ax.plot(x[thin], v[thin], ls="none", marker=marker, color=colour, mfc="white")
+    if hline is not None:
+        ax.axhline(hline, color="grey", lw=0.6)
+    if cut is not None:
+        for a in (ax, axn):
+            a.axvline(cut[0], color=_TARGET_COLOUR, ls="--", lw=1)
+        ax.plot([], [], color=_TARGET_COLOUR, ls="--", lw=1, label=cut[1])
+    if thin.any():
+        ax.plot([], [], "o", color="grey", mfc="white", ls="none", label=f"hollow: fewer than {THIN_BIN} examinees")
+    if ylim is not None:
+        ax.set_ylim(*ylim)
+    ax.set_ylabel(ylabel)
+    ax.set_title(title, fontsize=10)
+    ax.legend(fontsize=8, loc="best")
+    ax.grid(alpha=0.25)
+    axn.bar(x, n, width=_bars_width(x), color=np.where(thin, "#e69500", "#999999"))
+    axn.set_ylabel("examinees")
+    axn.set_xlabel("true ability (theta)")
+    data = png_base64(fig)
     plt.close(fig)
+    return data
 
-    fig, ax = plt.subplots(figsize=(6, 3.6))
-    ax.plot(th, col("mean_length"), "o-")
-    ax.set_xlabel("true theta")
-    ax.set_ylabel("mean scored items")
-    out.append(("Test length against ability", png_base64(fig)))
+
+def _length_histogram(plt, n_scored, *, min_items: int, max_items: int) -> str:
+    n_scored = np.asarray(n_scored, dtype=int)
+    fig, ax = plt.subplots(figsize=(7.2, 3.4))
+    lo, hi = (int(n_scored.min()), int(n_scored.max())) if n_scored.size else (0, 1)
+    edges = np.arange(lo, hi + 2) - 0.5
+    ax.hist(n_scored, bins=edges, color=_BLUE)
+    for value, label in ((min_items, f"minimum ({min_items})"), (max_items, f"maximum ({max_items})")):
+        ax.axvline(value, color="grey", ls=":", lw=1)
+        ax.annotate(label, (value, 1), xycoords=("data", "axes fraction"), fontsize=8, ha="center", va="bottom")
+    ax.set_xlabel("scored items per test")
+    ax.set_ylabel("examinees")
+    data = png_base64(fig)
     plt.close(fig)
+    return data
 
-    operational = np.asarray(result.bank.status) == "operational"
-    rates = result.administered[operational] / max(result.size, 1)
-    fig, ax = plt.subplots(figsize=(6, 3.6))
-    ax.hist(rates, bins=40, color="#4477aa")
-    target = summary["exposure"].get("exposure_target")
-    if target is not None:
-        ax.axvline(target, color="crimson", ls="--", label=f"target {target:g}")
-        ax.legend()
-    ax.set_xlabel("exposure rate")
-    ax.set_ylabel("items")
-    out.append(("Exposure rates of the operational items", png_base64(fig)))
+
+def _exposure_figure(plt, rates, target: float) -> str:
+    """Operational items' exposure rates, most exposed first, against the target."""
+    r = np.sort(np.asarray(rates, dtype=float))[::-1]
+    rank = np.arange(1, r.size + 1)
+    above = r > target
+    fig, ax = plt.subplots(figsize=(7.2, 3.8))
+    ax.bar(rank[above], r[above], width=1.0, color=_TARGET_COLOUR, label=f"above the target ({int(above.sum())} items)")
+    ax.bar(rank[~above], r[~above], width=1.0, color=_BLUE, label=f"at or below ({int((~above).sum())} items)")
+    ax.axhline(target, color="black", ls="--", lw=1, label=f"exposure target {target:g}")
+    unused = int(np.sum(r == 0))
+    if unused:
+        ax.axvspan(r.size - unused + 0.5, r.size + 0.5, color="#eeeeee", zorder=0,
+                   label=f"never given ({unused} items)")
+    ax.set_xlim(0, r.size + 1)
+    ax.set_ylim(0, max(1e-3, float(r.max()) if r.size else 1.0, target) * 1.08)
+    ax.set_xlabel("operational items, most exposed first")
+    ax.set_ylabel("exposure rate (share of examinees)")
+    ax.legend(fontsize=8, loc="upper right")
+    data = png_base64(fig)
     plt.close(fig)
+    return data
 
+
+def _information_figure(plt, bank) -> str:
     from ..irt import models
 
+    operational = np.asarray(bank.status) == "operational"
     grid = np.linspace(-4, 4, 161)
-    info = models.information(*models.outer(result.bank.params.take(np.flatnonzero(operational)), grid)).sum(axis=0)
-    fig, ax = plt.subplots(figsize=(6, 3.6))
+    info = models.information(*models.outer(bank.params.take(np.flatnonzero(operational)), grid)).sum(axis=0)
+    fig, ax = plt.subplots(figsize=(7.2, 3.4))
     ax.plot(grid, info, color="black")
-    ax.set_xlabel("theta")
-    ax.set_ylabel("bank information")
-    out.append(("Information of the operational bank", png_base64(fig)))
+    ax.set_xlabel("ability (theta)")
+    ax.set_ylabel("information of all operational items")
+    ax.grid(alpha=0.25)
+    data = png_base64(fig)
     plt.close(fig)
+    return data
+
+
+# ----------------------------------------------------------------------------------------
+# the study page
+
+
+def _ability_bins_for(true_theta, width: float = 0.25):
+    from .metrics import ability_bins
+
+    edges = np.round(np.arange(-3.0, 3.0 + width / 2, width), 10)
+    return ability_bins(true_theta, edges)
+
+
+def classification_curve(true_theta, at_or_above) -> list[dict]:
+    """Share classified at or above a cut by true ability.
+
+    Bins are 0.25 wide from -3 to 3 with open outer bins, or one per grid point when at
+    most 41 distinct abilities occur (a ``grid:`` study; :func:`metrics.ability_bins`).
+
+    Parameters
+    ----------
+    true_theta : float (N,)
+    at_or_above : int (N,)
+        1 at or above the cut, 0 below, -1 no label (counted as not at or above).
+
+    Returns
+    -------
+    list of dict
+        ``theta`` (bin centre), ``n``, ``share_at_or_above`` per non-empty bin.
+    """
+    true_theta = np.asarray(true_theta, dtype=float)
+    label = np.asarray(at_or_above)
+    bin_of, _, centres = _ability_bins_for(true_theta)
+    rows = []
+    for b in range(centres.size):
+        sel = bin_of == b
+        if sel.any():
+            rows.append({"theta": float(centres[b]), "n": int(sel.sum()),
+                         "share_at_or_above": float(np.mean(label[sel] == 1))})
+    return rows
+
+
+def _design_section(result, summary, warnings) -> list[str]:
+    from ..design.bank_fit import describe_design
+
+    design, bank = result.design, result.bank
+    settings = summary.get("settings", {})
+    n_op = int(np.sum(np.asarray(bank.status) == "operational"))
+    parts = ["<h2 id='design'>The design</h2>",
+             f"<p>Design file <code>{_esc(design.source or '(built in code)')}</code> on the bank "
+             f"<code>{_esc(bank.name or '(unnamed)')}</code> ({bank.n_items} items: {n_op} operational, "
+             f"{bank.n_items - n_op} pretest). In plain words (as <code>adaptive-engine design check</code> "
+             "prints it):</p><dl class='design'>"]
+    for line in describe_design(design):
+        head, _, rest = line.partition(": ")
+        parts.append(f"<dt>{_esc(head)}</dt><dd>{_esc(rest)}</dd>")
+    parts.append("</dl>")
+    if warnings:
+        parts.append("<div class='box warn'><b>Worth a look</b> (the design runs, but):<ul>"
+                     + "".join(f"<li>{_esc(w.location)}: {_esc(w.message)}</li>" for w in warnings)
+                     + "</ul></div>")
+    who = settings.get("abilities")
+    parts.append(f"<p class='note'>{summary.get('examinees')} simulated examinees"
+                 + (f", true abilities {_esc(who)}" if who else "")
+                 + f", seed {summary.get('seed')}"
+                 + (f"; answers drawn from the bank <code>{_esc(settings['true_bank'])}</code>"
+                    if settings.get("true_bank") else "") + ".</p>")
+    return parts
+
+
+def _headline_section(summary) -> list[str]:
+    expo = summary["exposure"]
+    target = expo.get("exposure_target")
+    rows = [
+        ("examinees", f"{summary['examinees']:,}"),
+        ("mean_length", f"{_fmt(summary.get('mean_length'), 1)} scored items"),
+        ("rmse", f"{_fmt(summary.get('rmse'))} theta units"),
+        ("bias", f"{_fmt(summary.get('bias'))} theta units"),
+        ("mean_se", f"{_fmt(summary.get('mean_se'))} theta units"),
+        ("rmse_to_mean_se", _fmt(summary.get("rmse_to_mean_se"), 2)),
+        ("correlation", _fmt(summary.get("correlation"))),
+        ("marginal_reliability", _fmt(summary.get("marginal_reliability"))),
+        ("max_exposure", f"{_pct(summary.get('max_exposure'))} of examinees (target {_pct(target, 0)})"),
+        ("share_above_target", f"{_pct(summary.get('share_above_target'))} of the operational items"),
+        ("share_never_used", f"{_pct(expo.get('share_never_used'))} of the operational items"),
+        ("overlap_rate", f"{_pct(summary.get('overlap_rate'))} of a test shared by two examinees"),
+    ]
+    out = [{"figure": HEADLINE_LABELS[k], "value": Html(v)} for k, v in rows]
+    for c in summary.get("classification", []):
+        out.append({"figure": f"Classification accuracy at the cut {c['cut']!r}",
+                    "value": Html(f"{_pct(c['accuracy'])} of examinees")})
+    return ["<h2 id='glance'>At a glance</h2>",
+            table_html(out, ["figure", "value"], labels={"figure": "Figure", "value": "Value"}),
+            "<p class='note'>Terms are explained in the <a href='#glossary'>glossary</a> at the end.</p>"]
+
+
+def _length_section(plt, result, summary) -> list[str]:
+    length = summary["length"]
+    design = result.design
+    rows = [
+        {"figure": "Mean (SD)", "value": Html(f"{_fmt(length['mean_length'], 1)} ({_fmt(length['sd_length'], 1)})")},
+        {"figure": "Shortest / longest", "value": Html(f"{length['min_length']} / {length['max_length']}")},
+        {"figure": "Percentiles 5, 25, 50, 75, 95",
+         "value": Html(", ".join(_fmt(v, 0) for v in length["length_percentiles"].values()))},
+        {"figure": f"Tests that ran to the maximum ({design.stopping.max_items})",
+         "value": Html(_pct(length["share_at_max_items"]))},
+    ]
+    meanings = _stop_reason_meanings()
+    n = max(summary["examinees"], 1)
+    reasons = [{"reason": k, "meaning": meanings.get(k, ""), "examinees": v, "share": Html(_pct(v / n))}
+               for k, v in sorted(length["stop_reasons"].items(), key=lambda kv: -kv[1])]
+    parts = ["<h2 id='length'>Test length</h2>",
+             "<p>Scored items per test (pretest items are given besides and not counted).</p>",
+             table_html(rows, ["figure", "value"], labels={"figure": "Figure", "value": "Scored items"}),
+             "<h3>Why tests stopped</h3>",
+             table_html(reasons, ["reason", "meaning", "examinees", "share"], text=("meaning",),
+                        labels={"reason": "Stop reason", "meaning": "Meaning", "examinees": "Examinees",
+                                "share": "Share"})]
+    if plt is not None:
+        parts.append(_figure("Distribution of the test length (scored items)",
+                             _length_histogram(plt, result.n_scored, min_items=design.stopping.min_items,
+                                               max_items=design.stopping.max_items)))
+        cond = [r for r in summary["conditional"] if r["theta"] is not None]
+        if cond:
+            parts.append(_figure(
+                "Mean test length against true ability; the panel beneath counts the examinees per bin",
+                _conditional_figure(plt, [r["theta"] for r in cond], [r["n"] for r in cond],
+                                    [("mean scored items", [r["mean_length"] for r in cond], "o", _BLUE)],
+                                    ylabel="mean scored items", title="Test length by ability")))
+    return parts
+
+
+def _conditional_rows(summary) -> tuple[list[dict], list[str], dict]:
+    rows = []
+    acc = [k for k in (summary["conditional"][0] if summary["conditional"] else {}) if k.startswith("accuracy_")]
+    for r in summary["conditional"]:
+        row = {"bin": r["bin"], "n": r["n"], "bias": r["bias"], "rmse": r["rmse"], "mean_se": r["mean_se"],
+               "rmse_to_mean_se": r["rmse_to_mean_se"], "mean_length": Html(_fmt(r["mean_length"], 1))}
+        for k in acc:
+            row[k] = Html(_pct(r[k])) if r.get(k) is not None else None
+        rows.append(row)
+    labels = {"bin": "True ability", "n": "Examinees", "bias": "Bias", "rmse": "RMSE", "mean_se": "Mean SE",
+              "rmse_to_mean_se": "RMSE / mean SE", "mean_length": "Mean length"}
+    labels.update({k: f"Accuracy ({k[len('accuracy_'):]})" for k in acc})
+    return rows, ["bin", "n", "bias", "rmse", "mean_se", "rmse_to_mean_se", "mean_length", *acc], labels
+
+
+def _precision_section(plt, summary) -> list[str]:
+    p = summary["precision"]
+    rows = [
+        {"figure": "RMSE", "value": p["rmse"]}, {"figure": "Bias", "value": p["bias"]},
+        {"figure": "Mean absolute error", "value": p["mae"]}, {"figure": "Mean reported SE", "value": p["mean_se"]},
+        {"figure": "RMSE / mean SE", "value": p["rmse_to_mean_se"]},
+        {"figure": "Correlation of estimate and true ability", "value": p["correlation"]},
+        {"figure": "Marginal reliability", "value": p["marginal_reliability"]},
+    ]
+    parts = ["<h2 id='precision'>Precision</h2>",
+             "<p>How close the final estimates come to the simulated true abilities (theta units).</p>",
+             table_html(rows, ["figure", "value"], labels={"figure": "Figure", "value": "Value"})]
+    if p.get("n_no_estimate"):
+        parts.append(f"<p class='note'>{p['n_no_estimate']} examinee(s) ended without a finite estimate and are "
+                     "left out of these figures.</p>")
+    cond = [r for r in summary["conditional"] if r["theta"] is not None]
+    if plt is not None and cond:
+        parts.append(_figure(
+            "RMSE, bias and mean reported SE against true ability; hollow points rest on fewer than "
+            f"{THIN_BIN} examinees (the panel beneath counts them)",
+            _conditional_figure(plt, [r["theta"] for r in cond], [r["n"] for r in cond],
+                                [("RMSE", [r["rmse"] for r in cond], "o", _BLUE),
+                                 ("bias", [r["bias"] for r in cond], "s", "#2e7d32"),
+                                 ("mean SE", [r["mean_se"] for r in cond], "^", "#e69500")],
+                                ylabel="theta units", title="Precision by ability", hline=0.0)))
+    rows, cols, labels = _conditional_rows(summary)
+    thin = sum(1 for r in rows if r["n"] < THIN_BIN)
+    parts += ["<h3>By true ability</h3>",
+              table_html(rows, cols, labels=labels, row_class=lambda r: "thin" if r["n"] < THIN_BIN else None)]
+    if thin:
+        parts.append(f"<p class='note'>Rows in grey italics are thin bins: fewer than {THIN_BIN} examinees.</p>")
+    return parts
+
+
+def _exposure_story(result, summary, first_counts, follow_counts) -> list[str]:
+    """Sentences on whether the exposure target is met, and where the exposure comes from."""
+    from .exposure_diagnosis import area_floors, first_item_candidates
+
+    design, bank = result.design, result.bank
+    expo = summary["exposure"]
+    target = expo["exposure_target"]
+    n = max(result.size, 1)
+    operational = np.asarray(bank.status) == "operational"
+    rates = result.administered / n
+    over = np.flatnonzero(operational & (rates > target))
+    over = over[np.argsort(-rates[over], kind="stable")]
+    n_op = int(operational.sum())
+    never = expo.get("share_never_used")
+    out = []
+    if not over.size:
+        out.append(f"<div class='box ok'>The exposure target is met: no operational item is given to more than "
+                   f"{_pct(target, 0)} of the examinees (the largest rate is {_pct(expo['max_exposure'])}).</div>")
+    else:
+        top = over[0]
+        out.append(f"<div class='box miss'><b>The exposure target of {_pct(target, 0)} is missed.</b> "
+                   f"{over.size} of the {n_op} operational items ({_pct(over.size / max(n_op, 1))}) are given to "
+                   f"more than {_pct(target, 0)} of the examinees; the most exposed, "
+                   f"<code>{_esc(bank.item_ids[top])}</code>, to {_pct(rates[top])}.</div>")
+        se = math.sqrt(target * (1 - target) / n)
+        if rates[top] <= target + 3 * se:
+            out.append(f"<p>Every excess is within simulation noise: a rate estimated from {n:,} examinees has a "
+                       f"standard error of about {se:.3f} ({_pct(se)}), and the largest of many rates lies a few "
+                       "of them above the true largest one. Simulate more examinees to tell.</p>")
+        why = []
+        method = design.exposure.method
+        if first_counts is not None:
+            first_rate = first_counts / n
+            openers = [i for i in over if first_rate[i] >= 0.25 * rates[i]]
+            if openers:
+                k_first = first_item_candidates(design)
+                names = ", ".join(f"<code>{_esc(bank.item_ids[i])}</code> ({_pct(first_rate[i])})" for i in openers[:6])
+                start = ("a random starting ability" if design.opening.random_theta is not None
+                         else f"theta {design.opening.theta:g}")
+                if k_first > 1:
+                    how = (f"draws its first item among the {k_first} most informative items there, so each of "
+                           f"them opens about 1/{k_first} of the tests")
+                elif design.exposure.method == "none":
+                    how = "gives the most informative item there first, so the tests open alike"
+                else:
+                    how = "picks its first item among the few items most informative there"
+                why.append(f"<li><b>The first item.</b> Every test opens at {start} and {how}: {names} "
+                           "(share of examinees who got it first). More first-item candidates "
+                           "([opening] first_items_from_top) spread the opening.</li>")
+        if follow_counts is not None and design.blueprint.item_sets:
+            sets = []
+            for name in dict.fromkeys(str(bank.item_set[i]) for i in over if bank.item_set[i]):
+                members = np.flatnonzero(np.asarray(bank.item_set) == name)
+                entered = float(rates[members].max())
+                listed = ", ".join(f"<code>{_esc(bank.item_ids[m])}</code>" for m in members)
+                sets.append(f"{_esc(name)} ({listed}): entered by {_pct(entered)}")
+            if sets:
+                why.append("<li><b>Item sets.</b> Once a test enters an item set, all its items are given, so every "
+                           "member is given as often as the set is entered: " + "; ".join(sets) + ".</li>")
+        floors = {a: f for a, f in area_floors(design, bank).items() if f[0] > target}
+        for area, (floor, size, minimum) in floors.items():
+            why.append(f"<li><b>A small content area.</b> Area <code>{_esc(area)}</code> has {size} operational "
+                       f"items and a minimum of {minimum} per test, so its items are given to at least "
+                       f"{_pct(floor)} of the examinees on average.</li>")
+        method_words = {
+            "none": "The design has no exposure control: the selection criterion gives the same most informative "
+                    "items to most examinees.",
+            "randomesque": f"Randomesque exposure control draws among the {design.exposure.candidates} best items "
+                           "at each step, which spreads exposure only among items of similar information.",
+            "progressive": "Progressive selection adds a random part that fades as the test goes on, so the late "
+                           "items concentrate on the most informative ones.",
+            "sympson_hetter": "The Sympson-Hetter parameters hold only for the design, bank, population and target "
+                              "they were calibrated for; calibrate them again for this study's target.",
+        }
+        text = method_words.get(method)
+        if text:
+            if method != "sympson_hetter":
+                text += (" Sympson-Hetter parameters calibrated for this target hold every item near it: "
+                         f"<code>adaptive-engine exposure calibrate {_esc(design.source or 'DESIGN')} --bank BANK "
+                         f"--target {target:g} --out PARAMETERS.csv</code>.")
+            why.append(f"<li><b>Exposure control.</b> {text}</li>")
+        if why:
+            out.append("<p>Where the exposure comes from:</p><ul>" + "".join(why) + "</ul>")
+    if never:
+        out.append(f"<p>{_pct(never, 0)} of the operational items were never given to any examinee.</p>")
     return out
 
 
-def simulation_report_html(result, summary: dict, *, title: str = "") -> str:
-    """The report page of a simulation study (a :class:`SimulationResult` and its summary)."""
-    title = title or f"Simulation of {result.design.source or 'a design'} on {result.bank.name or 'a bank'}"
-    headline = [{"figure": k, "value": summary.get(k)} for k in
-                ("examinees", "rmse", "bias", "mae", "mean_se", "se_calibration", "correlation",
-                 "marginal_reliability", "mean_length", "max_exposure", "overlap_rate", "chi_square_index",
-                  "exposure_target", "share_above_target")]
-    length = summary["length"]
-    length_rows = [{"figure": k, "value": v} for k, v in length.items() if not isinstance(v, dict)]
-    length_rows += [{"figure": k, "value": v} for k, v in length["length_percentiles"].items()]
-    reasons = [{"stop reason": k, "examinees": v} for k, v in length["stop_reasons"].items()]
-    expo = [{"figure": k, "value": v} for k, v in summary["exposure"].items() if k != "by_stratum"]
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>",
-             f"<style>{_STYLE}</style></head><body><h1>{html.escape(title)}</h1>",
-             f"<p class='note'>{_fmt(summary.get('examinees'))} simulated examinees, "
-             f"seed {_fmt(summary.get('seed'))}.</p>",
-             "<h2>Precision</h2>", table_html(headline),
-             "<h2>Test length</h2>", table_html(length_rows), table_html(reasons),
-             "<h2>Exposure</h2>", table_html(expo)]
-    if summary["exposure"].get("by_stratum"):
-        parts += ["<p class='note'>Exposure within strata of true ability (the design's "
-                  "conditional exposure parameters):</p>", table_html(summary["exposure"]["by_stratum"])]
-    if summary["classification"]:
-        parts += ["<h2>Classification</h2>", table_html(summary["classification"])]
-    if summary["content"]:
-        parts += ["<h2>Content areas (scored items per examinee)</h2>", table_html(summary["content"])]
-    parts += ["<h2>By ability</h2>", table_html(summary["conditional"])]
-    figures = _figures(result, summary)
-    parts.append("<h2>Plots</h2>")
-    if figures:
-        for caption, data in figures:
-            parts.append(f"<figure><img alt='{html.escape(caption)}' src='data:image/png;base64,{data}'>"
-                         f"<figcaption>{html.escape(caption)}</figcaption></figure>")
+def _exposure_section(plt, result, summary, first_counts, follow_counts) -> list[str]:
+    expo = summary["exposure"]
+    target = expo["exposure_target"]
+    bank = result.bank
+    n = max(result.size, 1)
+    operational = np.asarray(bank.status) == "operational"
+    rates = result.administered / n
+    rows = [
+        {"figure": "Largest exposure rate", "value": Html(_pct(expo["max_exposure"]))},
+        {"figure": "Mean exposure rate", "value": Html(_pct(expo["mean_exposure"]))},
+        {"figure": "Exposure target", "value": Html(_pct(target, 0))},
+        {"figure": "Operational items above the target", "value": Html(_pct(expo["share_above_target"]))},
+        {"figure": "Operational items never given", "value": Html(_pct(expo["share_never_used"]))},
+        {"figure": "Test overlap rate", "value": Html(_pct(expo["overlap_rate"]))},
+        {"figure": "Chi-square index of exposure", "value": Html(_fmt(expo["chi_square_index"], 1))},
+    ]
+    parts = ["<h2 id='exposure'>Exposure</h2>",
+             "<p>The exposure rate of an item is the share of examinees who were given it (operational items only: "
+             "pretest items are seeded at random).</p>",
+             *_exposure_story(result, summary, first_counts, follow_counts),
+             table_html(rows, ["figure", "value"], labels={"figure": "Figure", "value": "Value"})]
+    if plt is not None:
+        parts.append(_figure("Exposure rates of the operational items, most exposed first, against the target",
+                             _exposure_figure(plt, rates[operational], target)))
+    over = np.flatnonzero(operational & (rates > target))
+    over = over[np.argsort(-rates[over], kind="stable")]
+    if over.size:
+        table = []
+        for i in over[:MAX_LISTED_ITEMS]:
+            row = {"item": str(bank.item_ids[i]), "area": str(bank.area[i]), "set": str(bank.item_set[i]) or None,
+                   "rate": Html(_pct(rates[i]))}
+            if first_counts is not None:
+                row["first"] = Html(_pct(first_counts[i] / n))
+            if follow_counts is not None and bank.item_set[i]:
+                row["follow"] = Html(_pct(follow_counts[i] / n))
+            table.append(row)
+        cols = ["item", "area", "set", "rate"] + (["first"] if first_counts is not None else [])
+        if follow_counts is not None and any(bank.item_set[i] for i in over):
+            cols.append("follow")
+        parts += [f"<h3>Items above the target ({over.size})</h3>",
+                  table_html(table, cols, text=("area", "set"),
+                             labels={"item": "Item", "area": "Area", "set": "Item set", "rate": "Exposure rate",
+                                     "first": "Given as first item", "follow": "Given as a set follow-on"})]
+        if over.size > MAX_LISTED_ITEMS:
+            parts.append(f"<p class='note'>The {MAX_LISTED_ITEMS} most exposed are listed; items.csv has every "
+                         "item's rate.</p>")
+    if expo.get("by_stratum"):
+        strata = [{"from": s["theta_from"], "to": s["theta_to"], "n": s["examinees"],
+                   "max": Html(_pct(s["max_exposure"])), "above": Html(_pct(s["share_above_target"]))}
+                  for s in expo["by_stratum"]]
+        parts += ["<h3>Within strata of true ability</h3>",
+                  "<p class='note'>The design's exposure parameters are conditional on ability: the rates within "
+                  "each stratum of true ability.</p>",
+                  table_html(strata, ["from", "to", "n", "max", "above"],
+                             labels={"from": "Ability from", "to": "to", "n": "Examinees",
+                                     "max": "Largest exposure rate", "above": "Items above the target"})]
+    return parts
+
+
+def _classification_section(plt, result, summary) -> list[str]:
+    classes = summary.get("classification") or []
+    if not classes:
+        return []
+    cuts = result.design.reporting.cut_scores
+    rows = []
+    for c in classes:
+        rows.append({"cut": c["cut"], "theta": c["cut_theta"], "accuracy": Html(_pct(c["accuracy"])),
+                     "false_pass": Html(f"{_pct(c['false_pass_rate'])} ({_pct(c['false_pass_among_truly_below'])})"),
+                     "false_fail": Html(f"{_pct(c['false_fail_rate'])} ({_pct(c['false_fail_among_truly_above'])})"),
+                     "none": Html(_pct(c["share_without_label"]))})
+    parts = ["<h2 id='classification'>Classification</h2>",
+             "<p>Each examinee is classified at or above a cut score, or below it, by the final estimate (or the "
+             "SPRT's decision); the simulation knows on which side the true ability lies.</p>",
+             table_html(rows, ["cut", "theta", "accuracy", "false_pass", "false_fail", "none"],
+                        labels={"cut": "Cut score", "theta": "Cut (theta)", "accuracy": "Accuracy",
+                                "false_pass": "False pass: of all (of truly below)",
+                                "false_fail": "False fail: of all (of truly above)", "none": "Without a class"})]
+    if plt is not None:
+        for k, cut in enumerate(cuts):
+            curve = classification_curve(result.true_theta, result.at_or_above[:, k])
+            if not curve:
+                continue
+            x = [r["theta"] for r in curve]
+            share = [r["share_at_or_above"] for r in curve]
+            truth = [float(t >= cut.theta) for t in x]
+            acc = [s if t >= cut.theta else 1 - s for s, t in zip(share, x)]
+            parts.append(_figure(
+                f"Probability of being classified '{cut.above}' against true ability, with the accuracy in each "
+                f"bin; the dashed line marks the cut '{cut.name}' at theta {cut.theta:g}",
+                _conditional_figure(plt, x, [r["n"] for r in curve],
+                                    [(f"P(classified {cut.above})", share, "o", _BLUE),
+                                     ("accuracy", acc, "s", "#2e7d32"),
+                                     ("truly at or above the cut", truth, "", "#bbbbbb")],
+                                    ylabel="share of examinees", title=f"Classification at the cut '{cut.name}'",
+                                    cut=(cut.theta, f"cut {cut.name} (theta {cut.theta:g})"), ylim=(-0.03, 1.03))))
+    return parts
+
+
+def _content_section(summary) -> list[str]:
+    content = summary.get("content") or []
+    if not content:
+        return []
+    rows = []
+    for c in content:
+        rule = ""
+        if "rule_min" in c:
+            rule = f"{c['rule_min']}" + (f" to {c['rule_max']}" if c.get("rule_max") is not None else " or more")
+        rows.append({"area": c["area"], "rule": rule or None, "mean": Html(_fmt(c["mean"], 1)),
+                     "range": Html(f"{c['min']} to {c['max']}" if c["min"] is not None else "&ndash;"),
+                     "within": Html(_pct(c["share_within_rule"])) if "share_within_rule" in c else None})
+    return ["<h2 id='content'>Content areas</h2>",
+            "<p>Scored items per test in each content area, against the blueprint's bounds.</p>",
+            table_html(rows, ["area", "rule", "mean", "range", "within"],
+                       labels={"area": "Area", "rule": "Blueprint", "mean": "Mean per test",
+                               "range": "Fewest to most", "within": "Tests within the bounds"})]
+
+
+def simulation_report_html(result, summary: dict, *, title: str = "", first_counts=None, follow_counts=None,
+                           warnings=()) -> str:
+    """The report page of a simulation study (a :class:`SimulationResult` and its summary).
+
+    Parameters
+    ----------
+    first_counts, follow_counts : int (n_items,), optional
+        How often each item was given as the first item of a test, and as a follow-on
+        member of its item set (after the set's first item): they explain the exposure
+        section (:class:`~adaptive_engine.simulation.exposure_diagnosis.LotteryFreeCounts`).
+    warnings : sequence of Problem
+        :func:`~adaptive_engine.design.bank_fit.design_warnings` of the pair, shown with
+        the design.
+    """
+    design = result.design
+    title = title or f"Simulation of {design.source or 'a design'} on {result.bank.name or 'a bank'}"
+    plt = pyplot_or_none()
+    nav = [("design", "Design"), ("glance", "At a glance"), ("length", "Length"), ("precision", "Precision"),
+           ("exposure", "Exposure")]
+    if summary.get("classification"):
+        nav.append(("classification", "Classification"))
+    if summary.get("content"):
+        nav.append(("content", "Content"))
+    nav += [("bank", "Bank"), ("glossary", "Glossary")]
+    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+             f"<meta name='viewport' content='width=device-width, initial-scale=1'><title>{_esc(title)}</title>",
+             f"<style>{_STYLE}</style></head><body><h1>{_esc(title)}</h1>",
+             f"<p class='note'>Simulation study of the design <code>{_esc(design.source or '(built in code)')}</code>. "
+             "Sections: " + " &middot; ".join(f"<a href='#{a}'>{b}</a>" for a, b in nav) + "</p>"]
+    if plt is None:
+        parts.append("<p class='box warn'>Plots left out: matplotlib is not installed (install the 'plots' "
+                     "extra). Every table is here.</p>")
+    parts += _design_section(result, summary, warnings)
+    parts += _headline_section(summary)
+    parts += _length_section(plt, result, summary)
+    parts += _precision_section(plt, summary)
+    parts += _exposure_section(plt, result, summary, first_counts, follow_counts)
+    parts += _classification_section(plt, result, summary)
+    parts += _content_section(summary)
+    parts.append("<h2 id='bank'>The bank</h2>")
+    if plt is not None:
+        parts.append(_figure("Test information of all operational items of the bank (the most any test could "
+                             "draw on at each ability)", _information_figure(plt, result.bank)))
     else:
-        parts.append("<p class='note'>Plots left out: matplotlib is not installed "
-                     "(install the 'plots' extra).</p>")
+        parts.append("<p class='note'>The information plot is left out without matplotlib.</p>")
+    parts.append("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
+                 + "".join(f"<dt>{_esc(a)}</dt><dd>{_esc(b)}</dd>" for a, b in GLOSSARY) + "</dl>")
     parts.append("</body></html>\n")
     return "".join(parts)
 
 
-def tuning_report_html(rows: list[dict], figure_png: str | None, *, title: str) -> str:
-    """The report page of a stopping-rule tuning run (its table and trade-off plot)."""
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>",
-             f"<style>{_STYLE}</style></head><body><h1>{html.escape(title)}</h1>",
-             "<p class='note'>All combinations ran on the same examinees with the same random streams "
-             "(common random numbers). <b>frontier</b>: no other combination is at least as good in "
-             "mean length, RMSE and classification accuracy and better in one.</p>",
-             table_html(rows)]
-    if figure_png:
-        parts.append(f"<figure><img alt='trade-off' src='data:image/png;base64,{figure_png}'>"
-                     "<figcaption>Mean length against RMSE (frontier marked)</figcaption></figure>")
+# ----------------------------------------------------------------------------------------
+# the tuning page
+
+#: Offsets (points) tried for a point label, nearest first: right-up, right-down, left-up,
+#: left-down, above, below, right, left; then the same twice and three times as far.
+_LABEL_OFFSETS = tuple((dx * s, dy * s) for s in (1, 2, 3)
+                       for dx, dy in ((5, 4), (5, -4), (-5, 4), (-5, -4), (0, 7), (0, -7), (7, 0), (-7, 0)))
+
+
+def _overlap(a, b) -> float:
+    """Area shared by two display-space boxes (x0, y0, x1, y1)."""
+    w = min(a[2], b[2]) - max(a[0], b[0])
+    h = min(a[3], b[3]) - max(a[1], b[1])
+    return w * h if w > 0 and h > 0 else 0.0
+
+
+def place_labels(ax, x, y, texts, *, fontsize: float = 8, marker_radius: float = 5.0) -> list:
+    """Annotate points so that no label covers another label or a point.
+
+    Each label tries the offsets of :data:`_LABEL_OFFSETS` in turn and takes the first
+    whose box (in display space) overlaps no label placed before, no point's marker and
+    stays inside the axes; when none is free it takes the offset with the least overlap.
+
+    Parameters
+    ----------
+    x, y : float sequences (M,)
+        Data coordinates of the points.
+    texts : sequence of str (M,)
+    marker_radius : float
+        Radius of a point's marker in pixels (kept free of labels).
+
+    Returns
+    -------
+    list of matplotlib Text
+        The annotations, in the order of ``texts``.
+    """
+    fig = ax.figure
+    fig.canvas.draw()
+    renderer = fig.canvas.get_renderer()
+    points = ax.transData.transform(np.column_stack([np.asarray(x, float), np.asarray(y, float)]))
+    frame = ax.get_window_extent(renderer)
+    r = marker_radius
+    taken = [(px - r, py - r, px + r, py + r) for px, py in points]
+    placed = []
+    for xi, yi, text in zip(x, y, texts):
+        best = None
+        for dx, dy in _LABEL_OFFSETS:
+            ann = ax.annotate(text, (xi, yi), xytext=(dx, dy), textcoords="offset points", fontsize=fontsize,
+                              ha="left" if dx > 0 else "right" if dx < 0 else "center",
+                              va="bottom" if dy > 0 else "top" if dy < 0 else "center")
+            box = ann.get_window_extent(renderer)
+            ext = (box.x0, box.y0, box.x1, box.y1)
+            cost = sum(_overlap(ext, t) for t in taken)
+            outside = (ext[0] < frame.x0) or (ext[2] > frame.x1) or (ext[1] < frame.y0) or (ext[3] > frame.y1)
+            cost += 1e6 if outside else 0.0
+            if best is None or cost < best[0]:
+                if best is not None:
+                    best[1].remove()
+                best = (cost, ann, ext)
+            else:
+                ann.remove()
+            if cost == 0:
+                break
+        taken.append(best[2])
+        placed.append(best[1])
+    return placed
+
+
+
+#: Column headings of the tuning table.
+TUNING_LABELS = {
+    "mean_length": "Mean length", "sd_length": "SD of length", "share_at_max_items": "Share at max length",
+    "rmse": "RMSE", "bias": "Bias", "mean_se": "Mean SE", "rmse_to_mean_se": "RMSE / mean SE",
+    "max_exposure": "Largest exposure", "frontier": "On the frontier",
+}
+
+
+def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[str] | None = None) -> str:
+    """The report page of a tuning run: its table and the trade-off plots.
+
+    Parameters
+    ----------
+    rows : list of dict
+        :func:`adaptive_engine.simulation.tuning.tune` rows.
+    figures : list of (caption, base64 PNG), a single base64 PNG, or None
+        The trade-off plots (None: matplotlib is not installed).
+    varied : list of str, optional
+        The varied design keys (default: the keys before ``mean_length``).
+    """
+    if isinstance(figures, str):
+        figures = [("Mean length against RMSE (frontier marked)", figures)]
+    keys = varied
+    if keys is None and rows:
+        keys = []
+        for k in rows[0]:
+            if k == "mean_length":
+                break
+            keys.append(k)
+    keys = keys or []
+    acc = [k for k in (rows[0] if rows else {}) if k.startswith("accuracy_")]
+    cols = ["combination", *keys, "mean_length", "rmse", *acc, "bias", "mean_se", "rmse_to_mean_se",
+            "max_exposure", "frontier"]
+    table = []
+    dominated = set()
+    for j, r in enumerate(rows, start=1):
+        if not r.get("frontier"):
+            dominated.add(j)
+        row = {"combination": j, **{k: r.get(k) for k in keys}}
+        row.update(mean_length=Html(_fmt(r.get("mean_length"), 1)), rmse=r.get("rmse"), bias=r.get("bias"),
+                   mean_se=r.get("mean_se"), rmse_to_mean_se=Html(_fmt(r.get("rmse_to_mean_se"), 2)),
+                   max_exposure=Html(_pct(r.get("max_exposure"))), frontier=Html("yes" if r.get("frontier") else ""))
+        for k in acc:
+            row[k] = Html(_pct(r.get(k)))
+        table.append(row)
+    labels = dict(TUNING_LABELS, combination="#")
+    labels.update({k: f"Accuracy ({k[len('accuracy_'):]})" for k in acc})
+    criteria = "mean length (lower), RMSE (lower)" + (" and classification accuracy (higher)" if acc else "")
+    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+             f"<meta name='viewport' content='width=device-width, initial-scale=1'><title>{_esc(title)}</title>",
+             f"<style>{_STYLE}</style></head><body><h1>{_esc(title)}</h1>",
+             f"<p>Every combination of {', '.join(f'<code>{_esc(k)}</code>' for k in keys) or 'the settings'} ran "
+             "on the same simulated examinees with the same random streams (common random numbers), so the "
+             "differences between rows are the settings' doing. A combination is <b>on the frontier</b> when no "
+             f"other is at least as good on {criteria} and better on one of them.</p>",
+             table_html(table, cols, labels=labels,
+                        row_class=lambda r: "thin" if r["combination"] in dominated else None),
+             "<p class='note'>Rows in grey italics are dominated: another combination is at least as good on every "
+             "criterion. The numbers in the # column label the points of the plots.</p>"]
+    if figures:
+        for caption, data in figures:
+            parts.append(_figure(caption, data))
     else:
-        parts.append("<p class='note'>Plot of mean length against RMSE left out: matplotlib is not "
-                     "installed (install the 'plots' extra).</p>")
+        parts.append("<p class='box warn'>Plots of the trade-offs (mean length against RMSE"
+                     + (" and against accuracy" if acc else "")
+                     + ") left out: matplotlib is not installed (install the 'plots' extra).</p>")
+    parts.append("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
+                 + "".join(f"<dt>{_esc(a)}</dt><dd>{_esc(b)}</dd>" for a, b in GLOSSARY
+                           if a in ("theta units", "RMSE", "bias", "RMSE / mean SE", "exposure rate",
+                                    "classification accuracy"))
+                 + "<dt>mean length</dt><dd>scored items per test, averaged over the examinees</dd></dl>")
     parts.append("</body></html>\n")
     return "".join(parts)

@@ -7,8 +7,9 @@ Definitions
 -----------
 bias, RMSE, MAE
     mean(est - true), sqrt(mean((est - true)^2)), mean(|est - true|).
-SE calibration
-    RMSE / mean SE: near 1 when the reported standard errors are honest.
+RMSE to mean SE (``rmse_to_mean_se``)
+    RMSE / mean SE: near 1 when the reported standard errors are honest (above 1: the
+    SEs understate the error).
 marginal reliability
     by the final scoring method, because the two kinds of estimate relate differently to
     the truth:
@@ -92,7 +93,7 @@ def marginal_reliability(theta, se, *, method: str | None = "eap") -> float:
 
 
 def precision(true_theta, theta, se, *, method: str | None = "eap") -> dict:
-    """Bias, RMSE, MAE, mean SE, SE calibration, correlation and marginal reliability.
+    """Bias, RMSE, MAE, mean SE, RMSE / mean SE, correlation and marginal reliability.
 
     Examinees without a finite estimate are left out (their count is ``n_no_estimate``).
     ``method`` is the final scoring method (it picks the form of the marginal reliability,
@@ -105,7 +106,7 @@ def precision(true_theta, theta, se, *, method: str | None = "eap") -> dict:
     t, e, s = true_theta[ok], theta[ok], se[ok]
     out = {"n": int(ok.sum()), "n_no_estimate": int((~ok).sum())}
     if t.size == 0:
-        return out | {k: None for k in ("bias", "rmse", "mae", "mean_se", "se_calibration",
+        return out | {k: None for k in ("bias", "rmse", "mae", "mean_se", "rmse_to_mean_se",
                                          "correlation", "marginal_reliability")}
     err = e - t
     rmse = float(np.sqrt(np.mean(err**2)))
@@ -114,7 +115,7 @@ def precision(true_theta, theta, se, *, method: str | None = "eap") -> dict:
     corr = float(np.corrcoef(t, e)[0, 1]) if t.size > 1 and t.std() > 0 and e.std() > 0 else math.nan
     out.update(
         bias=_f(err.mean()), rmse=_f(rmse), mae=_f(np.abs(err).mean()), mean_se=_f(mean_se),
-        se_calibration=_f(rmse / mean_se) if mean_se > 0 else None,
+        rmse_to_mean_se=_f(rmse / mean_se) if mean_se > 0 else None,
         correlation=_f(corr),
         marginal_reliability=_f(marginal_reliability(e, s, method=method)),
     )
@@ -311,7 +312,7 @@ def conditional(true_theta, theta, se, n_scored, at_or_above=None, cut_scores=()
         p = precision(true_theta[sel], theta[sel], se[sel])
         row = {"bin": label, "theta": _f(centres[b]), "n": int(sel.sum()),
                "bias": p["bias"], "rmse": p["rmse"], "mae": p["mae"], "mean_se": p["mean_se"],
-               "se_calibration": p["se_calibration"], "mean_length": _f(n_scored[sel].mean())}
+               "rmse_to_mean_se": p["rmse_to_mean_se"], "mean_length": _f(n_scored[sel].mean())}
         if at_or_above is not None:
             for c in classification(true_theta[sel], np.asarray(at_or_above)[sel], cut_scores):
                 row[f"accuracy_{c['cut']}"] = c["accuracy"]
@@ -322,7 +323,7 @@ def conditional(true_theta, theta, se, n_scored, at_or_above=None, cut_scores=()
 def item_table(item_ids, administered, offered, n_examinees: int) -> list[dict]:
     """One row per item: times given, exposure rate, times chosen by the criterion."""
     n = max(n_examinees, 1)
-    return [{"item_id": str(i), "administered": int(m), "exposure_rate": float(m) / n,
+    return [{"item_id": str(i), "times_given": int(m), "exposure_rate": float(m) / n,
              "selection_rate": float(o) / n}
             for i, m, o in zip(item_ids, administered, offered)]
 
@@ -385,7 +386,7 @@ def summarize(result, *, exposure_target: float | None = None, edges=None) -> di
     headline = {
         "examinees": n, "seed": result.seed, "bank_items": bank.n_items,
         "rmse": prec["rmse"], "bias": prec["bias"], "mae": prec["mae"], "mean_se": prec["mean_se"],
-        "se_calibration": prec["se_calibration"], "correlation": prec["correlation"],
+        "rmse_to_mean_se": prec["rmse_to_mean_se"], "correlation": prec["correlation"],
         "marginal_reliability": prec["marginal_reliability"],
         "mean_length": length["mean_length"], "max_exposure": expo["max_exposure"],
         "overlap_rate": expo["overlap_rate"], "chi_square_index": expo["chi_square_index"],

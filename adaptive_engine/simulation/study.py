@@ -12,14 +12,14 @@ Files
 ``summary.json``
     :func:`adaptive_engine.simulation.metrics.summarize` plus the run's settings.
 ``examinees.csv``
-    ``examinee,true_theta,theta,se,n_items,stop_reason,n_pretest,scaled_score,seed`` and
-    one ``class_<cut>`` column per cut score (``seed`` replays the examinee as a live
-    session).
+    ``examinee,true_theta,theta,se,n_scored,stop_reason,n_pretest,scaled_score,seed`` and
+    one ``class_<cut>`` column per cut score (``n_scored``: scored items, ``n_pretest``:
+    pretest items given besides; ``seed`` replays the examinee as a live session).
 ``administrations.csv``
     ``examinee,position,item_id,response,theta,se,scored`` in order of administration
     (theta, se: the interim estimate after that answer); streamed chunk by chunk.
 ``items.csv``
-    ``item_id,exposure_rate,administered,selection_rate,area,status``.
+    ``item_id,exposure_rate,times_given,selection_rate,area,status``.
 ``conditional.csv``
     metrics by ability bin.
 ``report.html``
@@ -40,7 +40,7 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
-from ..design.bank_fit import require_design_fits_bank
+from ..design.bank_fit import design_warnings, require_design_fits_bank
 from ..design.types import Design
 from ..files import StagedFiles, prepare_folder
 from . import metrics
@@ -52,6 +52,7 @@ from .engine import (
     simulate,
     true_item_rows,
 )
+from .exposure_diagnosis import LotteryFreeCounts
 from .population import AbilitySpec, examinee_count
 
 #: Examinees of a study when neither ``--examinees`` nor the ability spec says.
@@ -62,12 +63,17 @@ FILES = ("summary.json", "examinees.csv", "administrations.csv", "items.csv", "c
 
 @attrs.frozen(kw_only=True, eq=False)
 class Study:
-    """A finished study: the result, its summary and where the files went."""
+    """A finished study: the result, its summary and where the files went.
+
+    ``warnings``: :func:`~adaptive_engine.design.bank_fit.design_warnings` of the design
+    on the bank (list of Problem; the run went ahead, the report shows them).
+    """
 
     result: SimulationResult
     summary: dict
     conditional: list
     out_dir: Path | None
+    warnings: list = attrs.field(factory=list)
 
 
 def _num(x, digits: int = 6) -> str:
@@ -107,8 +113,9 @@ def examinees_csv(result: SimulationResult) -> str:
     cuts = result.design.reporting.cut_scores
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    # the issue's columns first, in its order; then what this project adds
-    w.writerow(["examinee", "true_theta", "theta", "se", "n_items", "stop_reason", "n_pretest",
+    # ``n_scored`` (formerly n_items) sits where the first format of this file put
+    # the test length; then what this project adds
+    w.writerow(["examinee", "true_theta", "theta", "se", "n_scored", "stop_reason", "n_pretest",
                 "scaled_score", "seed"] + [f"class_{c.name}" for c in cuts])
     for i in range(result.size):
         labels = []
@@ -126,7 +133,7 @@ def items_csv(result: SimulationResult) -> str:
     bank = result.bank
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["item_id", "exposure_rate", "administered", "selection_rate", "area", "status"])
+    w.writerow(["item_id", "exposure_rate", "times_given", "selection_rate", "area", "status"])
     n = max(result.size, 1)
     for i, iid in enumerate(bank.item_ids):
         w.writerow([iid, _num(result.administered[i] / n), int(result.administered[i]),
@@ -167,6 +174,7 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
         Folder for the files (created if needed); None: compute only.
     """
     require_design_fits_bank(design, bank)
+    warnings = design_warnings(design, bank)
     true_item_rows(bank, true_bank)
     exposure_target = metrics.exposure_target(exposure_target)  # checked before any work
     n = examinee_count(abilities, n_examinees, default=DEFAULT_EXAMINEES)
@@ -181,11 +189,19 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
     try:
         if staging is not None and write_administrations:
             writer = _AdministrationWriter(staging.path("administrations.csv"), bank)
+        # first items and set follow-ons explain the report's exposure section
+        counts = LotteryFreeCounts(design, bank, count_first=True)
+
+        def on_chunk(chunk):
+            counts(chunk)
+            if writer is not None:
+                writer(chunk)
+
         # a design with ability-conditional exposure parameters is judged stratum by stratum
         strata = design.exposure_strata or None
         result = simulate(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
                           chunk_size=chunk_size, executor=executor, workers=workers,
-                          on_chunk=writer, progress=progress, count_by_stratum=strata)
+                          on_chunk=on_chunk, progress=progress, count_by_stratum=strata)
         if writer is not None:
             writer.close()
         summary = metrics.summarize(result, exposure_target=exposure_target)
@@ -203,7 +219,9 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
             staging.write_text("conditional.csv", rows_csv(conditional))
             from .html_report import simulation_report_html
 
-            staging.write_text("report.html", simulation_report_html(result, summary, title=title))
+            staging.write_text("report.html", simulation_report_html(
+                result, summary, title=title, first_counts=counts.first[0], follow_counts=counts.follow[0],
+                warnings=warnings))
             written = {p.name for p in staging.commit()}
             for name in FILES:
                 if name not in written:
@@ -211,7 +229,7 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
                     # administrations.csv after --no-administrations) would not match the others
                     (out_dir / name).unlink(missing_ok=True)
         finished = True
-        return Study(result=result, summary=summary, conditional=conditional, out_dir=out_dir)
+        return Study(result=result, summary=summary, conditional=conditional, out_dir=out_dir, warnings=warnings)
     finally:
         if writer is not None:
             writer.close()
@@ -319,7 +337,7 @@ def read_standard_errors(path: str | Path, bank: ItemBank) -> dict:
 
 def summary_table(summary: dict) -> str:
     """The headline figures as an aligned two-column text table."""
-    keys = ["examinees", "rmse", "bias", "mae", "mean_se", "se_calibration", "correlation",
+    keys = ["examinees", "rmse", "bias", "mae", "mean_se", "rmse_to_mean_se", "correlation",
             "marginal_reliability", "mean_length", "max_exposure", "overlap_rate", "chi_square_index",
             "exposure_target", "share_above_target"]
     keys += [k for k in summary if k.startswith("accuracy_")]

@@ -106,7 +106,7 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_th
     -------
     list of dict
         The varied settings, then ``mean_length``, ``sd_length``, ``rmse``, ``bias``,
-        ``mean_se``, ``se_calibration``, ``max_exposure``, ``accuracy_<cut>`` per cut score,
+        ``mean_se``, ``rmse_to_mean_se``, ``max_exposure``, ``accuracy_<cut>`` per cut score,
         and ``frontier`` (bool).
     """
     if not variations:
@@ -132,7 +132,7 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_th
         row = dict(zip(keys, combo))
         row.update(mean_length=s["mean_length"], sd_length=s["length"]["sd_length"],
                    share_at_max_items=s["length"]["share_at_max_items"], rmse=s["rmse"], bias=s["bias"],
-                   mean_se=s["mean_se"], se_calibration=s["se_calibration"], max_exposure=s["max_exposure"])
+                   mean_se=s["mean_se"], rmse_to_mean_se=s["rmse_to_mean_se"], max_exposure=s["max_exposure"])
         for c in s["classification"]:
             row[f"accuracy_{c['cut']}"] = c["accuracy"]
         rows.append(row)
@@ -146,30 +146,59 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_th
     return rows
 
 
-def tradeoff_png(rows: list[dict], keys: list[str]) -> str | None:
-    """Base64 PNG of mean length against RMSE (frontier highlighted); None without matplotlib."""
-    from .html_report import png_base64, pyplot_or_none
+def _tradeoff_plot(plt, rows, key: str, ylabel: str, title: str) -> str:
+    """Mean length against one criterion; frontier points filled, numbered as in the table."""
+    from .html_report import place_labels, png_base64
 
-    plt = pyplot_or_none()
-    if plt is None:
-        return None
-    fig, ax = plt.subplots(figsize=(6.5, 4.2))
-    x = [r["mean_length"] for r in rows]
-    y = [r["rmse"] for r in rows]
-    front = [r["frontier"] for r in rows]
-    ax.scatter(x, y, c=["crimson" if f else "grey" for f in front], zorder=3)
-    fx = sorted((a, b) for a, b, f in zip(x, y, front) if f)
-    if len(fx) > 1:
-        ax.plot(*zip(*fx), color="crimson", lw=1)
-    for r, a, b in zip(rows, x, y):
-        ax.annotate(", ".join(f"{r[k]}" for k in keys), (a, b), fontsize=7, xytext=(3, 3),
-                    textcoords="offset points")
+    x = np.array([np.nan if r["mean_length"] is None else r["mean_length"] for r in rows], dtype=float)
+    y = np.array([np.nan if r.get(key) is None else r[key] for r in rows], dtype=float)
+    front = np.array([bool(r["frontier"]) for r in rows])
+    fig, ax = plt.subplots(figsize=(7.2, 4.4))
+    ax.scatter(x[front], y[front], s=40, color="crimson", zorder=3, label="on the frontier")
+    ax.scatter(x[~front], y[~front], s=40, facecolors="white", edgecolors="grey", zorder=3,
+               label="dominated by another combination")
+    ax.margins(0.12)
     ax.set_xlabel("mean test length (scored items)")
-    ax.set_ylabel("RMSE")
-    ax.set_title("Length against precision (" + ", ".join(keys) + ")", fontsize=9)
+    ax.set_ylabel(ylabel)
+    ax.grid(alpha=0.25)
+    # the legend sits above the axes, where no point or label can be
+    ax.legend(fontsize=8, loc="lower left", bbox_to_anchor=(0.0, 1.01), ncol=2, frameon=False, title=title,
+              title_fontsize=9, alignment="left")
+    # combinations at the same spot share one label ("2, 5")
+    groups: dict = {}
+    for j, (a, b) in enumerate(zip(x, y), start=1):
+        if np.isfinite(a) and np.isfinite(b):
+            groups.setdefault((round(a, 6), round(b, 6)), []).append(j)
+    if groups:
+        place_labels(ax, [k[0] for k in groups], [k[1] for k in groups],
+                     [", ".join(str(j) for j in v) for v in groups.values()], fontsize=9)
     data = png_base64(fig)
     plt.close(fig)
     return data
+
+
+def tradeoff_figures(rows: list[dict], keys: list[str]) -> list | None:
+    """(caption, base64 PNG) per frontier criterion plotted against mean length; None without matplotlib.
+
+    One plot of RMSE, and one of classification accuracy per cut score when the design
+    has cut scores: every criterion of the efficient frontier is shown.
+    """
+    from .html_report import pyplot_or_none
+
+    plt = pyplot_or_none()
+    if plt is None or not rows:
+        return None
+    varied = ", ".join(keys)
+    out = [("Mean test length against RMSE, one point per combination (numbered as in the table); filled: on "
+            "the efficient frontier",
+            _tradeoff_plot(plt, rows, "rmse", "RMSE (theta units)", f"Length against precision ({varied})"))]
+    for key in [k for k in rows[0] if k.startswith("accuracy_")]:
+        cut = key[len("accuracy_"):]
+        out.append((f"Mean test length against classification accuracy at the cut '{cut}'; filled: on the "
+                    "efficient frontier",
+                    _tradeoff_plot(plt, rows, key, f"classification accuracy ({cut})",
+                                   f"Length against accuracy ({varied})")))
+    return out
 
 
 def run_tuning_study(design: Design, bank: ItemBank, variations: list[Variation], *, true_theta, seed: int,
@@ -189,7 +218,7 @@ def run_tuning_study(design: Design, bank: ItemBank, variations: list[Variation]
         "tuning.csv": rows_csv(rows),
         "tuning.json": json.dumps({"seed": int(seed), "examinees": int(np.size(true_theta)), "varied": keys,
                                    "rows": rows}, indent=2, allow_nan=False, default=float) + "\n",
-        "tuning.html": tuning_report_html(rows, tradeoff_png(rows, keys),
+        "tuning.html": tuning_report_html(rows, tradeoff_figures(rows, keys), varied=keys,
                                           title=f"Tuning {design.source or 'a design'}: " + ", ".join(keys)),
     }
     with StagedFiles(out) as staged:
