@@ -242,18 +242,18 @@ def summed_information(bank: ItemBank, theta, items, *, by_area: bool = False):
 
 def curve_grid(start: float, stop: float, step: float) -> np.ndarray:
     """Ability points ``start, start + step, ...`` up to ``stop`` (inclusive), shape (G,)."""
-    for name, value in (("from", start), ("to", stop), ("step", step)):
+    for name, value in (("start", start), ("stop", stop), ("step", step)):
         if not math.isfinite(value):
-            raise AdaptiveEngineError(f"must be a finite number, got {value}", location=f"--{name}")
+            raise AdaptiveEngineError(f"must be a finite number, got {value}", location=name)
     if not step > 0:
-        raise AdaptiveEngineError(f"must be > 0, got {step:g}", location="--step")
+        raise AdaptiveEngineError(f"must be > 0, got {step:g}", location="step")
     if not stop > start:
-        raise AdaptiveEngineError(f"must be greater than --from ({start:g}), got {stop:g}",
-                                  location="--to")
+        raise AdaptiveEngineError(f"must be greater than the start ({start:g}), got {stop:g}",
+                                  location="stop")
     n = int(math.floor((stop - start) / step + 1e-9)) + 1
     if n > MAX_CURVE_POINTS:
         raise AdaptiveEngineError(f"{n} points asked for; at most {MAX_CURVE_POINTS}",
-                                  location="--step")
+                                  location="step")
     # rounding keeps printed grid points tidy (0.25, not 0.25000000000000006)
     return np.round(start + step * np.arange(n), 12)
 
@@ -270,7 +270,7 @@ def information_curves(bank: ItemBank, theta, *, by_area: bool = False,
     if by_area and len(bank.areas) * theta.size > MAX_AREA_CURVE_VALUES:
         raise AdaptiveEngineError(
             f"{len(bank.areas):,} content areas x {theta.size:,} ability points is more than "
-            f"{MAX_AREA_CURVE_VALUES:,} values; use fewer points (a larger --step)", location="--by-area")
+            f"{MAX_AREA_CURVE_VALUES:,} values; use fewer points (a larger step)", location="by_area")
     if include_pretest:
         items, counted = np.arange(len(bank)), OPERATIONAL_AND_PRETEST
     else:
@@ -291,13 +291,13 @@ def plot_information_curves(curves: InformationCurves, path: str | Path, *, titl
     except ImportError:
         raise AdaptiveEngineError(
             "plotting needs matplotlib: install the 'plots' extra (pip install 'adaptive_engine[plots]')",
-            location="--plot",
+            location="path",
         ) from None
     from ..files import atomic_write
 
     path = Path(path)
     if path.suffix.lower() != ".png":
-        raise AdaptiveEngineError(f"plot file must end in .png, got {path.name!r}", location="--plot")
+        raise AdaptiveEngineError(f"plot file must end in .png, got {path.name!r}", location="path")
     fig, ax = plt.subplots(figsize=(7, 4.2))
     try:
         ax.plot(curves.theta, curves.information, color="black", lw=2, label="total")

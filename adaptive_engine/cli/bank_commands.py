@@ -9,6 +9,10 @@ from ..bank import summary as bank_report
 from ..bank.item_bank import load_bank
 from ._common import SCALING_HELP, echo_json, main, report_errors
 
+#: The parameters of the curve functions -> the flags of bank curves.
+CURVES_FLAGS = {"start": "--from", "stop": "--to", "step": "--step", "by_area": "--by-area", "path": "--plot",
+                "scaling": "--scaling"}
+
 _BANK_PATH = click.Path(dir_okay=False, path_type=str)
 
 
@@ -22,7 +26,7 @@ def bank():
 @click.option("--scaling", type=float, default=None, help=SCALING_HELP)
 @click.option("--target-se", type=float, default=bank_report.DEFAULT_TARGET_SE, show_default=True,
               help="Report the ability range where the operational items give a standard error below this.")
-@report_errors
+@report_errors(flags={"scaling": "--scaling", "target_se": "--target-se"})
 def check_command(bank_file, scaling, target_se):
     """Validate BANK (.csv, .json or .db) and print a short summary.
 
@@ -50,7 +54,7 @@ def check_command(bank_file, scaling, target_se):
 @click.option("--plot", "plot_file", type=click.Path(dir_okay=False), default=None,
               help="Also draw the curves to this PNG file (needs matplotlib).")
 @click.option("--scaling", type=float, default=None, help=SCALING_HELP)
-@report_errors
+@report_errors(flags=CURVES_FLAGS)
 def curves_command(bank_file, start, stop, step, fmt, by_area, include_pretest, plot_file, scaling):
     """Print the test information and standard error of BANK over an ability grid.
 
@@ -75,7 +79,7 @@ def curves_command(bank_file, start, stop, step, fmt, by_area, include_pretest, 
 @click.argument("out_file", metavar="OUT", type=_BANK_PATH)
 @click.option("--scaling", type=float, default=None,
               help=SCALING_HELP + "  Give it to store D in a JSON or SQLite copy of a CSV bank.")
-@report_errors
+@report_errors(flags={"scaling": "--scaling"})
 def convert_command(bank_file, out_file, scaling):
     """Validate BANK and write it to OUT; the format follows OUT's suffix (.csv, .json, .db).
 

@@ -50,10 +50,11 @@ import numpy as np
 
 from ..bank.item_bank import ItemBank
 from ..design.bank_fit import require_design_fits_bank
-from ..design.types import Design
+from ..design.types import Design, ExposureMethod
 from ..errors import AdaptiveEngineError
 from ..files import check_target, write_text
-from .engine import DEFAULT_CHUNK, simulate, stratum_of
+from .engine import Execution, simulate, stratum_of
+from .population import Population
 
 
 @attrs.frozen(kw_only=True, eq=False)
@@ -93,16 +94,21 @@ def _iteration_seed(seed: int, iteration: int) -> int:
                >> np.uint64(1))
 
 
-def _iteration_progress(progress, iteration: int, n: int, max_iterations: int):
-    """The run's ``progress`` seen from one iteration's simulation (None passes through)."""
+def _iteration(population: Population, execution: Execution, iteration: int,
+               max_iterations: int) -> tuple[Population, Execution]:
+    """One iteration's examinees (fresh random streams: their own seed) and execution (its
+    progress seen as part of the whole calibration)."""
+    population = attrs.evolve(population, seed=_iteration_seed(population.seed, iteration))
+    progress = execution.progress
     if progress is None:
-        return None
+        return population, execution
+    n = population.size
     total = max_iterations * n
 
     def report(done, _n):
         progress(min(iteration * n + done, total - 1), total)  # the bar ends with the calibration
 
-    return report
+    return population, attrs.evolve(execution, progress=report)
 
 
 def _set_members(bank: ItemBank, design: Design) -> list[np.ndarray]:
@@ -177,7 +183,7 @@ def unreachable_target_warning(design: Design, bank: ItemBank, target: float) ->
     return (f"target {target:g} x {n_operational} operational items = {room:g} items per test on average, "
             f"but tests run to {max_items} items (at least {design.stopping.min_items}); the target "
             + ("cannot be reached" if certain else "can be reached only if most tests stop before "
-               f"{room:g} items") + "; raise --target or use a larger bank")
+               f"{room:g} items") + "; raise the target or use a larger bank")
 
 
 def with_parameters(design: Design, parameters: dict, *, path: str = "calibrated", strata=()) -> Design:
@@ -185,7 +191,7 @@ def with_parameters(design: Design, parameters: dict, *, path: str = "calibrated
 
     ``strata``: interior cut points when ``parameters`` are conditional on ability.
     """
-    exposure = attrs.evolve(design.exposure, method="sympson_hetter", parameters=path)
+    exposure = attrs.evolve(design.exposure, method=ExposureMethod.SYMPSON_HETTER, parameters_file=path)
     return attrs.evolve(design, exposure=exposure, exposure_parameters=dict(parameters),
                         exposure_strata=tuple(strata))
 
@@ -198,7 +204,7 @@ def parse_strata(text: str) -> tuple:
         try:
             cuts.append(float(part))
         except ValueError:
-            raise AdaptiveEngineError(f"cut point {part!r} is not a number", "--conditional-strata") from None
+            raise AdaptiveEngineError(f"cut point {part!r} is not a number", "strata") from None
     return _check_strata(cuts)
 
 
@@ -207,20 +213,18 @@ def _check_strata(strata) -> tuple:
     try:
         cuts = tuple(float(c) for c in strata)
     except (TypeError, ValueError):
-        raise AdaptiveEngineError(f"stratum cut points must be numbers, got {strata!r}",
-                                  "--conditional-strata") from None
+        raise AdaptiveEngineError(f"stratum cut points must be numbers, got {strata!r}", "strata") from None
     if not cuts:
-        raise AdaptiveEngineError("give at least one cut point for conditional strata", "--conditional-strata")
+        raise AdaptiveEngineError("give at least one cut point for conditional strata", "strata")
     if not all(np.isfinite(cuts)) or any(b <= a for a, b in zip(cuts, cuts[1:])):
         raise AdaptiveEngineError(f"stratum cut points must be finite and strictly ascending, got {list(cuts)}",
-                                  "--conditional-strata")
+                                  "strata")
     return cuts
 
 
-def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, true_theta, seed: int,
-                             max_iterations: int = 15, tolerance: float = 0.02,
-                             chunk_size: int = DEFAULT_CHUNK, workers: int = 1, executor=None,
-                             progress=None, strata=None) -> ExposureCalibration:
+def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, population: Population,
+                             execution: Execution = Execution(), max_iterations: int = 15, tolerance: float = 0.02,
+                             strata=None) -> ExposureCalibration:
     """Iterate Sympson-Hetter exposure parameters by simulation.
 
     Parameters
@@ -229,9 +233,15 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
         The design to protect (its exposure section is replaced by Sympson-Hetter).
     target : float in (0, 1]
         The largest exposure rate allowed (r_max).
-    true_theta : float array, shape (N,)
-        Abilities of the simulated population (one draw of N per iteration would be
-        equivalent; the same abilities with fresh random streams are used).
+    population : Population
+        The simulated population: its abilities are used in every iteration, each with
+        fresh random streams (a seed derived from the population's); their answers come
+        from its true bank.
+    execution : Execution
+        Chunks, workers, executor; its ``progress`` is called as ``progress(done, total)``
+        with the simulated examinees so far, over at most ``max_iterations`` iterations
+        (``total`` = max_iterations x N), and reaches ``total`` when the calibration ends,
+        early or not.
     max_iterations : int
     tolerance : float
         Converged when the largest exposure rate is at most ``target + tolerance``.
@@ -239,23 +249,17 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
         Interior cut points of ability strata, ascending: calibrate parameters conditional
         on ability (Stocking & Lewis 1998), one per item and stratum, so that within every
         true-ability stratum no item's exposure rate exceeds the target.  Every stratum
-        must hold some of the ``true_theta``.
-    progress : callable, optional
-        Called as ``progress(done, total)`` with the simulated examinees so far, over at
-        most ``max_iterations`` iterations (``total`` = max_iterations x N); it reaches
-        ``total`` when the calibration ends, early or not.
+        must hold some of the population's abilities.
     """
     if not 0 < target <= 1:
-        raise AdaptiveEngineError(f"the target exposure rate must lie in (0, 1], got {target}", "--target")
+        raise AdaptiveEngineError(f"the target exposure rate must lie in (0, 1], got {target}", "target")
     if max_iterations < 1:
-        raise AdaptiveEngineError(f"max_iterations must be >= 1, got {max_iterations}", "--iterations")
-    true_theta = np.asarray(true_theta, dtype=float)
+        raise AdaptiveEngineError(f"max_iterations must be >= 1, got {max_iterations}", "max_iterations")
     if strata is not None:
-        return _calibrate_conditional(design, bank, target=target, true_theta=true_theta, seed=seed,
+        return _calibrate_conditional(design, bank, target=target, population=population, execution=execution,
                                       strata=_check_strata(strata), max_iterations=max_iterations,
-                                      tolerance=tolerance, chunk_size=chunk_size, workers=workers,
-                                      executor=executor, progress=progress)
-    n = true_theta.size
+                                      tolerance=tolerance)
+    n = population.size
     operational = np.asarray(bank.status) == "operational"
     k = np.ones(bank.n_items)
     history = []
@@ -265,9 +269,8 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
     for it in range(max_iterations):
         params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
         current = with_parameters(design, params)
-        result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
-                          chunk_size=chunk_size, workers=workers, executor=executor,
-                          progress=_iteration_progress(progress, it, n, max_iterations))
+        examinees, run = _iteration(population, execution, it, max_iterations)
+        result = simulate(current, bank, population=examinees, execution=run)
         given = result.administered / n
         selected = result.offered / n
         max_rate = float(given[operational].max())
@@ -279,24 +282,25 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
             converged = True
             break
         k = _updated(k, given, selected, target, sets)
-    if progress is not None:
-        progress(max_iterations * n, max_iterations * n)
+    if execution.progress is not None:
+        execution.progress(max_iterations * n, max_iterations * n)
     params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
     return ExposureCalibration(parameters=params, history=history, converged=converged,
                                target=float(target), tolerance=float(tolerance))
 
 
-def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, max_iterations, tolerance,
-                           chunk_size, workers, executor, progress) -> ExposureCalibration:
+def _calibrate_conditional(design, bank, *, target, population, execution, strata, max_iterations,
+                           tolerance) -> ExposureCalibration:
     """Sympson-Hetter iterations per true-ability stratum (Stocking & Lewis 1998)."""
     n_strata = len(strata) + 1
+    true_theta = population.true_theta
     size = np.bincount(stratum_of(true_theta, strata), minlength=n_strata)  # N_s
     empty = np.flatnonzero(size == 0)
     if empty.size:
         bounds = (-np.inf,) + strata + (np.inf,)
         shown = ", ".join(f"[{bounds[s]:g}, {bounds[s + 1]:g})" for s in empty)
         raise AdaptiveEngineError(f"no simulated examinee has a true ability in the stratum {shown}; "
-                                  "move the cut points or widen the population", "--conditional-strata")
+                                  "move the cut points or widen the population", "strata")
     operational = np.asarray(bank.status) == "operational"
     op_rows = np.flatnonzero(operational)
     k = np.ones((n_strata, bank.n_items))
@@ -310,9 +314,8 @@ def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, ma
 
     for it in range(max_iterations):
         current = with_parameters(design, as_params(), strata=strata)
-        result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
-                          chunk_size=chunk_size, workers=workers, executor=executor, count_by_stratum=strata,
-                          progress=_iteration_progress(progress, it, true_theta.size, max_iterations))
+        examinees, run = _iteration(population, execution, it, max_iterations)
+        result = simulate(current, bank, population=examinees, execution=run, count_by_stratum=strata)
         given = result.administered_by_stratum / size[:, None]  # P(A_i | true stratum s)
         by_stratum = given[:, operational].max(axis=1)
         max_rate = float(by_stratum.max())
@@ -327,8 +330,9 @@ def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, ma
             break
         k = _updated_conditional(k, result.administered_by_stratum_pair, result.offered_by_stratum_pair,
                                  size, target, sets)
-    if progress is not None:
-        progress(max_iterations * true_theta.size, max_iterations * true_theta.size)
+    if execution.progress is not None:
+        total = max_iterations * population.size
+        execution.progress(total, total)
     return ExposureCalibration(parameters=as_params(), history=history, converged=converged,
                                target=float(target), tolerance=float(tolerance), strata=strata)
 
@@ -359,13 +363,12 @@ def write_parameters(parameters: dict, path: str | Path, *, strata=()) -> Path:
     return write_text(path, parameters_csv(parameters, strata))
 
 
-def run_calibration(design: Design, bank: ItemBank, *, target: float, out_file, true_theta, seed: int,
-                    max_iterations: int = 15, tolerance: float = 0.02, workers: int = 1,
-                    strata=None, progress=None) -> ExposureCalibration:
+def run_calibration(design: Design, bank: ItemBank, *, target: float, out_file, population: Population,
+                    execution: Execution = Execution(), max_iterations: int = 15, tolerance: float = 0.02,
+                    strata=None) -> ExposureCalibration:
     """:func:`calibrate_sympson_hetter`, then write the parameters file (conditional with ``strata``)."""
     check_target(out_file)  # before the long run: a bad folder fails at once
-    cal = calibrate_sympson_hetter(design, bank, target=target, true_theta=true_theta, seed=seed,
-                                   max_iterations=max_iterations, tolerance=tolerance, workers=workers,
-                                   strata=strata, progress=progress)
+    cal = calibrate_sympson_hetter(design, bank, target=target, population=population, execution=execution,
+                                   max_iterations=max_iterations, tolerance=tolerance, strata=strata)
     write_parameters(cal.parameters, out_file, strata=cal.strata)
     return cal
