@@ -27,6 +27,7 @@ from .errors import (
     OutputError,
     ResponseDataError,
     SessionError,
+    SimulationError,
 )
 
 __version__ = "0.1.0"
@@ -45,7 +46,7 @@ _LAZY = {
 
 __all__ = [
     "AdaptiveEngineError", "BankError", "CalibrationError", "DesignError", "OutputError",
-    "ResponseDataError", "SessionError", *_LAZY,
+    "ResponseDataError", "SessionError", "SimulationError", *_LAZY,
 ]
 
 

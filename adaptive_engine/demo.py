@@ -29,7 +29,7 @@ def repository_root(files: str | Path | None = None) -> Path:
     Raises
     ------
     AdaptiveEngineError
-        Located at ``--files`` when no candidate folder holds all of :data:`DEMO_FILES`.
+        Located at ``files`` when no candidate folder holds all of :data:`DEMO_FILES`.
     """
     if files is not None:
         candidates = [Path(files)]
@@ -44,7 +44,7 @@ def repository_root(files: str | Path | None = None) -> Path:
     raise AdaptiveEngineError(
         f"the demo needs the example files {', '.join(missing)} of the adaptive_engine repository, "
         f"not found under {looked}; an installed package does not carry them: run the demo in a "
-        "checkout of the repository or give --files PATH_TO_CHECKOUT", "--files")
+        "checkout of the repository or name one that holds them", "files")
 
 
 def run_demo(*, out_dir: str | Path = "demo_output", examinees: int = 1000, seed: int = 2026,
@@ -58,7 +58,7 @@ def run_demo(*, out_dir: str | Path = "demo_output", examinees: int = 1000, seed
     from .design.toml_file import read_design
     from .irt.models import probabilities
     from .live.session import try_session
-    from .simulation.population import parse_ability_spec
+    from .simulation.population import Population, parse_ability_spec
     from .simulation.study import run_study, summary_table
 
     root = repository_root(files)
@@ -66,8 +66,8 @@ def run_demo(*, out_dir: str | Path = "demo_output", examinees: int = 1000, seed
     bank = load_bank(root / EXAM_BANK)
     say(f"1. Simulating {examinees} examinees on the Meridian Valley water-operator licensing exam")
     say(f"   design {EXAM_DESIGN}, bank {EXAM_BANK} ({bank.n_items} items), seed {seed}")
-    study = run_study(design, bank, abilities=parse_ability_spec("normal:0,1"), n_examinees=examinees,
-                      seed=seed, out_dir=out_dir,
+    population = Population.drawn(parse_ability_spec("normal:0,1"), seed=seed, n_examinees=examinees)
+    study = run_study(design, bank, population=population, out_dir=out_dir,
                       title="Demo: Meridian Valley water-operator licensing exam")
     say("")
     say(summary_table(study.summary))

@@ -62,6 +62,19 @@ class CalibrationError(AdaptiveEngineError):
     """Response data cannot be calibrated as asked."""
 
 
+class SimulationError(AdaptiveEngineError):
+    """A simulation request cannot be carried out (bad sizes, settings, banks that do not match)."""
+
+
 class OutputError(AdaptiveEngineError):
     """An output file or folder cannot be written where asked (missing folder, a folder
     where a file should go, no permission)."""
+
+
+class DeprecatedDesignKey(DeprecationWarning):
+    """A design uses the old spelling of a renamed key or option value.
+
+    The old spellings are read for one release; the message names the key as the design
+    file spells it and its new spelling.  The command line prints these as ``warning:``
+    lines.
+    """

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import enum
 import math
 
 import numpy as np
@@ -17,6 +18,8 @@ def plain(obj):
         return plain(obj.tolist())
     if isinstance(obj, np.generic):
         obj = obj.item()
+    if isinstance(obj, enum.Enum):
+        return obj.value
     if isinstance(obj, float) and not math.isfinite(obj):
         return None
     return obj

@@ -25,6 +25,7 @@ from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design import Design, Stopping
 from adaptive_engine.simulation import engine as simulation
 from adaptive_engine.simulation.exposure_tuning import calibrate_sympson_hetter, with_parameters
+from adaptive_engine.simulation.population import Population
 
 CUTS = (-1.0, 0.0, 1.0)
 
@@ -66,7 +67,7 @@ def main() -> None:
           lambda: simulation.simulate(cond, bank, true_theta=true, seed=3, count_by_stratum=CUTS))
     for label, strata in (("unconditional", None), ("conditional", CUTS)):
         start = time.perf_counter()
-        cal = calibrate_sympson_hetter(design, bank, target=0.25, true_theta=true, seed=4,
+        cal = calibrate_sympson_hetter(design, bank, target=0.25, population=Population(true_theta=true, seed=4),
                                        max_iterations=args.iterations, strata=strata)
         elapsed = time.perf_counter() - start
         print(f"{label + ' calibration, per iteration':<58} {elapsed / len(cal.history):8.2f} s "

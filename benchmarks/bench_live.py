@@ -38,7 +38,7 @@ method = "randomesque"
 candidates = 5
 
 [blueprint]
-method = "constrained"
+method = "most_behind_area"
 """ + "".join(f"\n[blueprint.areas.{a}]\nmin = 4\nmax = 10\n" for a in AREAS) + """
 [stopping]
 min_items = 20

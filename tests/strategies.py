@@ -273,7 +273,8 @@ def runnable_designs(draw, bank: ItemBank):
     min_items = draw(st.integers(1, max_items))
     method = draw(st.sampled_from(d.SCORING_METHODS))
     scoring = d.Scoring(method=method, prior_mean=draw(on_grid), prior_sd=_edge_or(draw, *df.PRIOR_SD_RANGE),
-                        until_mixed=draw(st.sampled_from(d.UNTIL_MIXED)), fixed_step=_edge_or(draw, 0.01, 5.0),
+                        extreme_pattern_method=draw(st.sampled_from(d.EXTREME_PATTERN_METHODS)),
+                        fixed_step=_edge_or(draw, 0.01, 5.0),
                         grid_min=lo, grid_max=hi,
                         grid_points=draw(st.sampled_from((df.MIN_GRID_POINTS, df.MAX_GRID_POINTS))
                                          | st.integers(df.MIN_GRID_POINTS, df.MAX_GRID_POINTS)))
@@ -281,21 +282,24 @@ def runnable_designs(draw, bank: ItemBank):
     start_lo = draw(_floats(lo, hi - 0.5))
     opening = d.Opening(theta=0.0 if random_start else draw(on_grid),
                         random_theta=(start_lo, draw(_floats(start_lo + 0.1, hi))) if random_start else None,
-                        first_items_from_top=draw(st.integers(1, min(n_op, 5))))
+                        first_item_candidates=draw(st.integers(1, min(n_op, 5))))
     exposure_method = draw(st.sampled_from(d.EXPOSURE_METHODS))
     params = None
     if exposure_method == "sympson_hetter":
         params = {bank.item_ids[i]: draw(_floats(0.2, 1.0)) for i in operational}
     exposure = d.Exposure(method=exposure_method, candidates=draw(st.integers(1, n_op)),
-                          parameters="generated.csv" if params else None,
+                          parameters_file="generated.csv" if params else None,
                           acceleration=_edge_or(draw, 0.01, 100.0))
     criterion = draw(st.sampled_from(d.CRITERIA))
     selection = d.Selection(criterion=criterion, kl_interval=_edge_or(draw, 0.01, 10.0),
                             strata=draw(st.integers(1, min(4, n_op))), b_blocking=draw(st.booleans()))
     areas = ()
     if draw(st.booleans()):
-        areas = tuple(d.AreaRule(name=a, min=draw(st.integers(0, 1)), max=draw(st.none() | st.integers(1, max_items)))
-                      for a in sorted(set(bank.areas)))
+        names = sorted(set(bank.areas))
+        # a design whose area minimums add up to more than max_items cannot be made
+        most = 1 if len(names) <= max_items else 0
+        areas = tuple(d.AreaRule(name=a, min=draw(st.integers(0, most)),
+                                 max=draw(st.none() | st.integers(1, max_items))) for a in names)
     positions = tuple(sorted(draw(st.lists(st.integers(1, max_items), unique=True, max_size=min(2, n_pretest)))))
     blueprint = d.Blueprint(areas=areas, method=draw(st.sampled_from(d.BLUEPRINT_METHODS)),
                             enemies=draw(st.booleans()), item_sets=draw(st.booleans()),

@@ -85,7 +85,7 @@ def test_calibrate_errors_exit_2_and_write_nothing(tmp_path):
     res = runner.invoke(main, ["calibrate", str(bad), "--model", "2PL", "--out", str(tmp_path / "x.txt")])
     assert res.exit_code == 2 and "unknown bank file type '.txt'" in res.output
     res = runner.invoke(main, ["calibrate", str(bad), "--model", "2PL", "--out", str(out), "--tolerance", "0"])
-    assert res.exit_code == 2 and "setting tolerance: must be > 0" in res.output
+    assert res.exit_code == 2 and "--tolerance: must be > 0" in res.output
     # a grid of 1e11 points ended in a raw MemoryError
     res = runner.invoke(main, ["calibrate", str(bad), "--model", "2PL", "--out", str(out),
                                "--quadrature-points", "100000000000"])

@@ -105,4 +105,4 @@ def test_prior_option_parsing():
                          ("c=beta:0,5", "first prior parameter must be positive")):
         with pytest.raises(CalibrationError, match=message) as info:
             parse_prior(bad)
-        assert info.value.location == f"--prior {bad}"
+        assert info.value.location == f"prior {bad}"

@@ -48,6 +48,7 @@ from adaptive_engine.simulation.exposure_tuning import (
     parse_strata,
     with_parameters,
 )
+from adaptive_engine.simulation.population import Population
 from kernel_support import run_batch, structured_bank
 
 REPO = Path(__file__).resolve().parents[1]
@@ -145,7 +146,7 @@ def test_written_file_reads_back(cuts, values, n_items):
 def test_design_reads_the_conditional_file_and_checks_it_against_the_bank(tmp_path):
     (tmp_path / "c.csv").write_text(HEADER + "q000,-inf,0,0.5\nq000,0,inf,0.25\nq001,-inf,0,1\nq001,0,inf,0.1\n")
     path = tmp_path / "d.toml"
-    path.write_text('[exposure]\nmethod = "sympson_hetter"\nparameters = "c.csv"\n'
+    path.write_text('[exposure]\nmethod = "sympson_hetter"\nparameters_file = "c.csv"\n'
                     "[stopping]\nmin_items = 5\nmax_items = 5\n")
     design = read_design(path)
     assert design.exposure_strata == (0.0,)
@@ -155,20 +156,18 @@ def test_design_reads_the_conditional_file_and_checks_it_against_the_bank(tmp_pa
     ctx = build_context(design, bank)
     assert ctx.exposure_k.shape == (2, bank.n_items)
     assert ctx.exposure_k[:, bank.index_of["q001"]].tolist() == [1.0, 0.1]
-    # parameters that do not match the strata (a design built in code) are located
-    bad = Design(exposure=Exposure(method="sympson_hetter", parameters="x"), exposure_strata=(0.0,),
-                 exposure_parameters={"q000": (0.5,)})
-    found = {p.location for p in check_design_against_bank(bad, bank)}
-    assert "[exposure] parameters, item q000" in found
-    with pytest.raises(DesignError):
-        build_context(bad, bank)
+    # parameters that do not match the strata (a design built in code) are refused, located
+    with pytest.raises(DesignError) as info:
+        Design(exposure=Exposure(method="sympson_hetter", parameters_file="x"), exposure_strata=(0.0,),
+               exposure_parameters={"q000": (0.5,)})
+    assert "exposure_parameters, item q000" in {p.location for p in info.value.problems}
 
 
 # ----------------------------------------------------------------------------------------
 # stored designs
 
 
-CONDITIONAL = Design(exposure=Exposure(method="sympson_hetter", parameters="c.csv"),
+CONDITIONAL = Design(exposure=Exposure(method="sympson_hetter", parameters_file="c.csv"),
                      stopping=Stopping(min_items=10, max_items=10), exposure_strata=(-0.5, 0.5),
                      exposure_parameters={"q000": (0.5, 0.25, 1.0), "q002": (1.0, 0.0, 0.75)})
 
@@ -227,7 +226,7 @@ def test_the_lottery_uses_the_stratum_of_the_interim_estimate():
     # from 0 up (the others k = 1), so every criterion pick must be odd while the interim
     # estimate is below 0 and even from 0 up.
     bank = structured_bank(2, 120, pretest=0, enemies=False, sets=False)
-    d = Design(exposure=Exposure(method="sympson_hetter", parameters="x"),
+    d = Design(exposure=Exposure(method="sympson_hetter", parameters_file="x"),
                stopping=Stopping(min_items=12, max_items=12), exposure_strata=(0.0,),
                exposure_parameters=_parity_parameters(bank, 1))
     ctx = build_context(d, bank)
@@ -247,7 +246,7 @@ def test_identical_strata_give_the_unconditional_test():
     # (Sympson & Hetter 1985): same items, same estimates, bit for bit.
     bank = structured_bank(3, 100, polytomous=6)
     k = {bank.item_ids[i]: 0.3 + 0.6 * (i % 3) / 2 for i in range(0, 94)}
-    plain = Design(exposure=Exposure(method="sympson_hetter", parameters="x"),
+    plain = Design(exposure=Exposure(method="sympson_hetter", parameters_file="x"),
                    stopping=Stopping(min_items=10, max_items=10), exposure_parameters=k)
     cond = with_parameters(plain, {iid: (v, v, v) for iid, v in k.items()}, path="x", strata=(-1.0, 1.0))
     theta = np.random.default_rng(4).normal(size=20)
@@ -263,7 +262,7 @@ def test_conditional_design_batch_equals_one_at_a_time():
     bank = structured_bank(5, 100, polytomous=6)
     rng = np.random.default_rng(2)
     params = {iid: tuple(float(x) for x in rng.uniform(0.1, 1.0, 3)) for iid in bank.item_ids[:94]}
-    d = Design(exposure=Exposure(method="sympson_hetter", parameters="x"),
+    d = Design(exposure=Exposure(method="sympson_hetter", parameters_file="x"),
                stopping=Stopping(min_items=10, max_items=10), exposure_strata=(-0.5, 0.5), exposure_parameters=params)
     ctx = build_context(d, bank)
     theta = np.random.default_rng(11).normal(size=12)
@@ -341,9 +340,10 @@ def test_conditional_calibration_holds_every_stratum_near_the_target():
     design = Design(stopping=Stopping(min_items=10, max_items=10))
     target, cuts = 0.25, (-0.5, 0.5)
     true = np.random.default_rng(9).normal(size=2000)
-    cond = calibrate_sympson_hetter(design, bank, target=target, true_theta=true, seed=2, max_iterations=10,
+    population = Population(true_theta=true, seed=2)
+    cond = calibrate_sympson_hetter(design, bank, target=target, population=population, max_iterations=10,
                                     strata=cuts, tolerance=0.05)
-    plain = calibrate_sympson_hetter(design, bank, target=target, true_theta=true, seed=2, max_iterations=8)
+    plain = calibrate_sympson_hetter(design, bank, target=target, population=population, max_iterations=8)
     assert cond.strata == cuts and all(len(v) == 3 for v in cond.parameters.values())
     assert len(cond.history[-1]["max_exposure_by_stratum"]) == 3
     fresh = np.random.default_rng(10).normal(size=2000)
@@ -370,12 +370,13 @@ def test_strata_without_examinees_and_bad_cut_points_are_refused():
     bank = bank_2pl(30, seed=2)
     design = Design(stopping=Stopping(min_items=5, max_items=5))
     with pytest.raises(AdaptiveEngineError) as info:
-        calibrate_sympson_hetter(design, bank, target=0.3, true_theta=np.zeros(50), seed=1, strata=(1.0,))
-    assert info.value.location == "--conditional-strata" and "[1, inf)" in str(info.value)
+        calibrate_sympson_hetter(design, bank, target=0.3, population=Population(true_theta=np.zeros(50), seed=1),
+                                 strata=(1.0,))
+    assert info.value.location == "strata" and "[1, inf)" in str(info.value)
     for text in ("1,x", "1,1", "2,1", "", "inf"):
         with pytest.raises(AdaptiveEngineError) as info:
             parse_strata(text)
-        assert info.value.location == "--conditional-strata"
+        assert info.value.location == "strata"
     assert parse_strata(" -1, 0 ,1") == (-1.0, 0.0, 1.0)
 
 
@@ -400,7 +401,7 @@ def test_cli_writes_the_conditional_file_and_refuses_bad_cut_points(tmp_path):
     got = parse_exposure_file(out.read_text())
     assert got.strata == (-0.5, 0.5) and set(got.parameters) == set(bank.item_ids)
     # the file plugs into a design
-    (tmp_path / "use.toml").write_text('[exposure]\nmethod = "sympson_hetter"\nparameters = "cond.csv"\n'
+    (tmp_path / "use.toml").write_text('[exposure]\nmethod = "sympson_hetter"\nparameters_file = "cond.csv"\n'
                                        "[stopping]\nmin_items = 8\nmax_items = 8\n")
     assert read_design(tmp_path / "use.toml").exposure_strata == (-0.5, 0.5)
     bad = tmp_path / "bad.csv"

@@ -125,8 +125,8 @@ def test_check_refuses_exposure_parameters_that_are_no_file(tmp_path, target, fr
     # parameters = "/dev/zero" grew design check to 21 GB; a NUL byte raised a raw ValueError
     text = (SIMULATIONS / "sympson_hetter.toml").read_text()
     design = tmp_path / "hostile.toml"
-    design.write_text("\n".join(f'parameters = "{target}"' if line.startswith("parameters") else line
+    design.write_text("\n".join(f'parameters_file = "{target}"' if line.startswith("parameters_file") else line
                                 for line in text.splitlines()) + "\n")
     result = run("design", "check", str(design), "--bank", str(OPERATOR_BANK))
     assert result.exit_code == 2, result.output
-    assert "[exposure] parameters: " in result.output and fragment in result.output
+    assert "[exposure] parameters_file: " in result.output and fragment in result.output

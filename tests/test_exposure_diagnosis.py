@@ -28,6 +28,7 @@ from adaptive_engine.simulation.exposure_diagnosis import (
     opening_and_area_limits,
 )
 from adaptive_engine.simulation.exposure_tuning import calibrate_sympson_hetter, with_parameters
+from adaptive_engine.simulation.population import Population
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -44,8 +45,8 @@ def _design(text: str):
     return parse_design(text + "\n[exposure]\nmethod = \"none\"\n", source="test.toml")
 
 
-FIRST_AMONG_THREE = "[opening]\nfirst_items_from_top = 3\n[stopping]\nmin_items = 6\nmax_items = 6\n"
-FIRST_AMONG_TWO = "[opening]\nfirst_items_from_top = 2\n[stopping]\nmin_items = 6\nmax_items = 6\n"
+FIRST_AMONG_THREE = "[opening]\nfirst_item_candidates = 3\n[stopping]\nmin_items = 6\nmax_items = 6\n"
+FIRST_AMONG_TWO = "[opening]\nfirst_item_candidates = 2\n[stopping]\nmin_items = 6\nmax_items = 6\n"
 
 
 def test_area_floor_worked_by_hand():
@@ -71,12 +72,12 @@ def test_the_first_item_rule_no_longer_stalls_the_calibration():
     bank = small_bank()
     design = _design(FIRST_AMONG_THREE)
     theta = np.random.default_rng(0).standard_normal(400)
-    cal = calibrate_sympson_hetter(design, bank, target=0.4, true_theta=theta, seed=2, max_iterations=10,
-                                   tolerance=0.05)
+    cal = calibrate_sympson_hetter(design, bank, target=0.4, population=Population(true_theta=theta, seed=2),
+                                   max_iterations=10, tolerance=0.05)
     assert cal.converged, [h["max_exposure"] for h in cal.history]
     assert cal.diagnosis is None
     # the converged parameters hold on fresh examinees (binomial noise: 3 SE of 0.4 at N = 400)
-    fresh = simulate(with_parameters(design, cal.parameters), bank, true_theta=theta, seed=99)
+    fresh = simulate(with_parameters(design, cal.parameters), bank, population=Population(true_theta=theta, seed=99))
     assert fresh.administered.max() / theta.size <= 0.4 + 3 * math.sqrt(0.4 * 0.6 / 400)
 
 
@@ -86,13 +87,13 @@ def test_an_opening_among_too_few_items_is_named():
     theta = np.random.default_rng(1).standard_normal(300)
     limits = opening_and_area_limits(design, bank, 0.3)
     assert len(limits) == 1 and "among the 2 most informative" in limits[0] and "at least 4" in limits[0]
-    cal = calibrate_sympson_hetter(design, bank, target=0.3, true_theta=theta, seed=3, max_iterations=4,
-                                   tolerance=0.03)
+    cal = calibrate_sympson_hetter(design, bank, target=0.3, population=Population(true_theta=theta, seed=3),
+                                   max_iterations=4, tolerance=0.03)
     assert not cal.converged
     diagnosis = cal.diagnosis
     # the two first-item candidates, found by counting the first items of a plain run
     counts = LotteryFreeCounts(design, bank)
-    simulate(with_parameters(design, {}), bank, true_theta=theta, seed=3, on_chunk=counts)
+    simulate(with_parameters(design, {}), bank, population=Population(true_theta=theta, seed=3), on_chunk=counts)
     openers = {bank.item_ids[i] for i in np.flatnonzero(counts.first[0])}
     assert len(openers) == 2
     named = {d.item_id: d for d in diagnosis.items}
@@ -100,7 +101,7 @@ def test_an_opening_among_too_few_items_is_named():
     for iid in openers:
         assert named[iid].first_item == pytest.approx(0.5, abs=0.1)
         assert any("first item" in c for c in named[iid].causes)
-    assert any("first_items_from_top" in r for r in diagnosis.remedies)
+    assert any("first_item_candidates" in r for r in diagnosis.remedies)
     text = "\n".join(diagnosis.lines())
     assert all(iid in text for iid in openers) and "limit:" in text
 
@@ -114,8 +115,9 @@ def test_a_small_area_minimum_is_named_in_the_diagnosis_and_the_warnings():
     warnings = design_warnings(design, bank)
     assert [w.location for w in warnings] == ["[blueprint.areas.tiny] min"]
     assert "50%" in warnings[0].message
-    cal = calibrate_sympson_hetter(design, bank, target=0.3, true_theta=np.random.default_rng(2).standard_normal(200),
-                                   seed=4, max_iterations=3, tolerance=0.03)
+    theta = np.random.default_rng(2).standard_normal(200)
+    cal = calibrate_sympson_hetter(design, bank, target=0.3, population=Population(true_theta=theta, seed=4),
+                                   max_iterations=3, tolerance=0.03)
     assert not cal.converged
     tiny = [d for d in cal.diagnosis.items if d.area == "tiny"]
     assert tiny and all(any("blueprint minimum of area 'tiny'" in c for c in d.causes) for d in tiny)

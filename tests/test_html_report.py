@@ -17,7 +17,7 @@ from adaptive_engine.bank.item_bank import load_bank
 from adaptive_engine.design.bank_fit import describe_design
 from adaptive_engine.design.toml_file import read_design
 from adaptive_engine.simulation import html_report
-from adaptive_engine.simulation.population import parse_ability_spec
+from adaptive_engine.simulation.population import Population, parse_ability_spec
 from adaptive_engine.simulation.study import run_study
 from optional_extras import requires_matplotlib
 
@@ -35,8 +35,8 @@ def _shipped(name="licensing_exam.toml", bank="meridian_valley_operator.csv"):
 def licensing(tmp_path_factory):
     design, bank = _shipped()
     out = tmp_path_factory.mktemp("licensing")
-    study = run_study(design, bank, abilities=parse_ability_spec("normal:0,1"), n_examinees=300, seed=2026,
-                      out_dir=out, write_administrations=False)
+    population = Population.drawn(parse_ability_spec("normal:0,1"), n_examinees=300, seed=2026)
+    study = run_study(design, bank, population=population, out_dir=out, write_administrations=False)
     return study, (out / "report.html").read_text(), list(csv.DictReader((out / "items.csv").open()))
 
 
@@ -100,7 +100,8 @@ def test_missed_exposure_target_is_said_and_the_items_are_listed(licensing):
 
 def test_met_exposure_target_is_said(tmp_path):
     design, bank = _shipped()
-    run_study(design, bank, abilities=parse_ability_spec("normal:0,1"), n_examinees=60, seed=5, out_dir=tmp_path,
+    population = Population.drawn(parse_ability_spec("normal:0,1"), n_examinees=60, seed=5)
+    run_study(design, bank, population=population, out_dir=tmp_path,
               exposure_target=1.0, write_administrations=False)
     text = _visible((tmp_path / "report.html").read_text())
     assert "The exposure target is met" in text and "is missed" not in text

@@ -88,7 +88,7 @@ DESIGNS = {
                                    AreaRule(name="gamma", min=2, max=6)), pretest_positions=(3, 7),
                             enemies=True, item_sets=True),
         stopping=Stopping(min_items=10, max_items=14),
-        opening=Opening(first_items_from_top=5),
+        opening=Opening(first_item_candidates=5),
     ),
     "sympson_hetter": Design(exposure=Exposure(method="sympson_hetter"), stopping=Stopping(min_items=10, max_items=10),
                              exposure_parameters={f"q{i:03d}": 0.3 for i in range(0, 100, 2)}),
@@ -101,7 +101,7 @@ DESIGNS = {
     "pwi_map": Design(selection=Selection(criterion="posterior_weighted_information"),
                       scoring=Scoring(method="map"), stopping=Stopping(min_items=8, max_items=8)),
     "kl_mle": Design(selection=Selection(criterion="kullback_leibler"),
-                     scoring=Scoring(method="mle", until_mixed="fixed_step"),
+                     scoring=Scoring(method="mle", extreme_pattern_method="fixed_step"),
                      stopping=Stopping(min_items=8, max_items=8)),
     "stratified_wle": Design(selection=Selection(criterion="a_stratified", strata=3),
                              scoring=Scoring(method="wle"), reporting=Reporting(final_method="wle"),
@@ -144,7 +144,8 @@ def test_shortlist_path_agrees_with_full_evaluation(monkeypatch):
     fast, _ = run_batch(ctx, theta, seed=6)
 
     def no_shortlist(ctx, state, rows, restrict, open_area, fits):
-        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64), np.zeros(0), []
+        return selection.ProvenChoice(rows=np.zeros(0, dtype=np.int64), item=np.zeros(0, dtype=np.int64),
+                                      value=np.zeros(0), withheld=[])
 
     monkeypatch.setattr(selection, "_shortlist_pick", no_shortlist)
     slow, _ = run_batch(ctx, theta, seed=6)
@@ -204,7 +205,7 @@ def _check_invariants(ctx, state, design):
     min_items=st.integers(1, 8),
     extra=st.integers(0, 8),
     method=st.sampled_from(["none", "randomesque", "sympson_hetter", "progressive"]),
-    blueprint_method=st.sampled_from(["constrained", "max_priority_index"]),
+    blueprint_method=st.sampled_from(["most_behind_area", "max_priority_index"]),
     area_max=st.integers(2, 6),
     area_min=st.integers(0, 2),
     pretest=st.lists(st.integers(1, 12), max_size=2, unique=True),
@@ -212,12 +213,17 @@ def _check_invariants(ctx, state, design):
 def test_the_controller_never_breaks_the_rules(seed, min_items, extra, method, blueprint_method, area_max,
                                                area_min, pretest):
     bank = structured_bank(seed % 7, 90, polytomous=seed % 5)
+    max_items = min_items + extra
+    # a design is valid or cannot be made: area minimums within the test length, pretest
+    # positions the test can reach
+    area_min = min(area_min, max_items // len(AREAS))
+    pretest = [p for rank, p in enumerate(sorted(pretest), start=1) if p - rank < max_items]
     d = Design(
         exposure=Exposure(method=method, candidates=3),
-        blueprint=Blueprint(method=blueprint_method, pretest_positions=tuple(sorted(pretest)),
+        blueprint=Blueprint(method=blueprint_method, pretest_positions=tuple(pretest),
                             enemies=True, item_sets=True,
                             areas=tuple(AreaRule(name=a, min=area_min, max=area_max) for a in AREAS)),
-        stopping=Stopping(min_items=min_items, max_items=min_items + extra, se=0.4),
+        stopping=Stopping(min_items=min_items, max_items=max_items, se=0.4),
         exposure_parameters={bank.item_ids[i]: 0.5 for i in range(0, 90, 3)} if method == "sympson_hetter" else None,
     )
     ctx = build_context(d, bank)
@@ -338,11 +344,11 @@ def _top_by_information(bank, theta, k, area=None):
 
 _FIRST_ITEM_CASES = {
     # name: (design, words the description must hold, what the kernel must do)
-    "random": (Design(selection=Selection(criterion="random"), opening=Opening(first_items_from_top=5)),
+    "random": (Design(selection=Selection(criterion="random"), opening=Opening(first_item_candidates=5)),
                "drawn at random", "many"),
     "progressive": (Design(exposure=Exposure(method="progressive")), "drawn at random", "many"),
     "max_information": (Design(), "the best item by Fisher information there", ("top", 1)),
-    "five_from_top": (Design(opening=Opening(first_items_from_top=5)), "a random one of the 5 best items", ("top", 5)),
+    "five_from_top": (Design(opening=Opening(first_item_candidates=5)), "a random one of the 5 best items", ("top", 5)),
     "randomesque": (Design(exposure=Exposure(method="randomesque", candidates=3)),
                     "a random one of the 3 best items", ("top", 3)),
     "posterior_weighted": (Design(selection=Selection(criterion="posterior_weighted_information"),
@@ -350,10 +356,10 @@ _FIRST_ITEM_CASES = {
     "area_share": (Design(blueprint=Blueprint(areas=(AreaRule(name="alpha", min=1, max=2),
                                                      AreaRule(name="beta", min=4, max=8)))),
                    "from the content area with the largest target share", ("area", "beta")),
-    "pretest_first": (Design(blueprint=Blueprint(pretest_positions=(1,)), opening=Opening(first_items_from_top=5)),
+    "pretest_first": (Design(blueprint=Blueprint(pretest_positions=(1,)), opening=Opening(first_item_candidates=5)),
                       "first scored item: the best item by Fisher information there (the 5 top candidates apply "
                       "to position 1 only)", ("top", 1)),
-    "shadow_test": (Design(blueprint=Blueprint(shadow_test=True), opening=Opening(first_items_from_top=5)),
+    "shadow_test": (Design(blueprint=Blueprint(shadow_test=True), opening=Opening(first_item_candidates=5)),
                     "shadow test decides", ("top", 1)),
 }
 

@@ -218,8 +218,9 @@ def edge_variants(design):
 
     def vary(*, grid, method, final, until, prior, theta, fixed_step, kl, accel, stop, sprt, ci, confidence,
              scale, cuts, fit):
-        sc = attrs.evolve(design.scoring, method=method, until_mixed=until, prior_mean=prior[0], prior_sd=prior[1],
-                          fixed_step=fixed_step, grid_min=grid[0], grid_max=grid[1], grid_points=grid[2])
+        sc = attrs.evolve(design.scoring, method=method, extreme_pattern_method=until, prior_mean=prior[0],
+                          prior_sd=prior[1], fixed_step=fixed_step, grid_min=grid[0], grid_max=grid[1],
+                          grid_points=grid[2])
         opening = attrs.evolve(design.opening, theta=theta, random_theta=None)
         st = attrs.evolve(design.stopping, se=stop[0], se_reduction=stop[1], min_information=stop[2],
                           time_limit=stop[3], sprt=SprtRule(**sprt), confidence_interval=ConfidenceRule(**ci))

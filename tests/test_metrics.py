@@ -134,7 +134,7 @@ def test_exposure_summary():
 
 @pytest.mark.parametrize("bad", [-1, 0, 1.5, float("nan"), "x"])
 def test_exposure_target_must_be_a_rate(bad):
-    with pytest.raises(AdaptiveEngineError, match="--exposure-target"):
+    with pytest.raises(AdaptiveEngineError, match="exposure_target"):
         metrics.exposure(np.array([1, 2]), 10, mean_length=1.0, target=bad)
 
 
@@ -191,13 +191,14 @@ def test_conditional_exposure_rates_are_recounted_from_the_administrations(tmp_p
 
     from adaptive_engine.bank import load_bank
     from adaptive_engine.design.toml_file import read_design
-    from adaptive_engine.simulation.population import parse_ability_spec
+    from adaptive_engine.simulation.population import Population, parse_ability_spec
     from adaptive_engine.simulation.study import run_study
 
     root = Path(__file__).resolve().parents[1]
     design = read_design(root / "simulations" / "conditional_sympson_hetter.toml")
     bank = load_bank(root / "item_banks" / "meridian_valley_operator.csv")
-    run_study(design, bank, abilities=parse_ability_spec("normal:0,1"), n_examinees=300, seed=8, out_dir=tmp_path)
+    run_study(design, bank, population=Population.drawn(parse_ability_spec("normal:0,1"), n_examinees=300, seed=8),
+              out_dir=tmp_path)
     summary = json.loads((tmp_path / "summary.json").read_text())
     by_stratum = summary["exposure"]["by_stratum"]
     cuts = list(design.exposure_strata)

@@ -129,7 +129,7 @@ def test_bank_lookup_and_errors(tmp_path):
     with pytest.raises(SessionError, match="no bank with id 'nope'"):
         read_bank_answers(path, bank_id="nope")
     other = bank.evolve(a=bank.a * 1.01)
-    with pytest.raises(SessionError, match="--bank: this bank is not in the store"):
+    with pytest.raises(SessionError, match="bank: this bank is not in the store"):
         read_bank_answers(path, bank=other)
     with pytest.raises(SessionError, match="no session store at"):
         read_bank_answers(tmp_path / "missing.db", bank_id=bank_id)

@@ -23,6 +23,7 @@ from adaptive_engine.irt import models
 from adaptive_engine.simulation import engine as simulation
 from adaptive_engine.simulation import metrics
 from adaptive_engine.simulation.exposure_tuning import calibrate_sympson_hetter, with_parameters
+from adaptive_engine.simulation.population import Population
 
 
 def bank_2pl(n, *, seed, a=(0.8, 2.0), b_sd=1.0, b_mean=0.0):
@@ -162,7 +163,8 @@ def test_sympson_hetter_calibration_holds_exposure_near_the_target():
     true = np.random.default_rng(9).normal(size=1000)
     before = simulation.simulate(design, bank, true_theta=true, seed=1)
     assert before.administered.max() / 1000 > 0.6  # unprotected: some items seen by most
-    cal = calibrate_sympson_hetter(design, bank, target=target, true_theta=true, seed=2, max_iterations=10)
+    cal = calibrate_sympson_hetter(design, bank, target=target, population=Population(true_theta=true, seed=2),
+                                   max_iterations=10)
     fresh = np.random.default_rng(10).normal(size=1000)
     after = simulation.simulate(with_parameters(design, cal.parameters), bank, true_theta=fresh, seed=99)
     rates = after.administered / 1000

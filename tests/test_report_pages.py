@@ -108,7 +108,7 @@ def pages(tmp_path_factory):
     """The demo's study report and a tuning report of the shipped licensing design."""
     from adaptive_engine.bank.item_bank import load_bank
     from adaptive_engine.design.toml_file import read_design
-    from adaptive_engine.simulation.population import parse_ability_spec
+    from adaptive_engine.simulation.population import Population, parse_ability_spec
     from adaptive_engine.simulation.study import run_study
     from adaptive_engine.simulation.tuning import parse_variation, run_tuning_study
 
@@ -118,14 +118,15 @@ def pages(tmp_path_factory):
         pytest.skip("shipped demo files missing")
     design, bank = read_design(design_file), load_bank(bank_file)
     out = tmp_path_factory.mktemp("pages")
-    run_study(design, bank, abilities=parse_ability_spec("normal:0,1"), n_examinees=300, seed=2026,
+    run_study(design, bank, population=Population.drawn(parse_ability_spec("normal:0,1"), n_examinees=300, seed=2026),
               out_dir=out / "study", write_administrations=False,
               title="Demo: Meridian Valley water-operator licensing exam")
     # three varied keys: the widest table the tuning page usually gets
     run_tuning_study(design, bank, [parse_variation("stopping.se=0.25,0.3"),
                                     parse_variation("stopping.sprt.indifference=0.1,0.2"),
                                     parse_variation("stopping.max_items=30,40")],
-                     true_theta=np.random.default_rng(3).standard_normal(40), seed=3, out_dir=out / "tuning")
+                     population=Population(true_theta=np.random.default_rng(3).standard_normal(40), seed=3),
+                     out_dir=out / "tuning")
     return {"study report": out / "study" / "report.html", "tuning report": out / "tuning" / "tuning.html"}
 
 

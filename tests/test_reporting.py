@@ -98,7 +98,7 @@ def test_scaled_se_and_interval():
 def test_bad_scale_is_a_design_error():
     with pytest.raises(DesignError, match=r"\[reporting.scale\] slope"):
         _one(_design(scale=design.ScaleRule(slope=0.0)), theta=0.0)
-    with pytest.raises(DesignError, match=r"\[reporting.scale\] min"):
+    with pytest.raises(DesignError, match=r"\[reporting.scale\] max: must be above min"):
         _one(_design(scale=design.ScaleRule(min=5.0, max=1.0)), theta=0.0)
     with pytest.raises(DesignError, match=r"\[reporting\] confidence"):
         _one(_design(confidence=1.5), theta=0.0)

@@ -120,7 +120,7 @@ def test_randomesque_draws_uniformly_among_the_best():
 
 def test_first_item_among_the_k_most_informative():
     bank = dichotomous_bank()
-    design = Design(opening=Opening(theta=0.5, first_items_from_top=6), stopping=Stopping(max_items=5))
+    design = Design(opening=Opening(theta=0.5, first_item_candidates=6), stopping=Stopping(max_items=5))
     _, first = first_picks(design, bank, 3000)
     top6 = np.argsort(-info_4pl(bank.a, bank.b, bank.c, bank.d, 0.5))[:6]
     assert set(first.tolist()) == set(top6.tolist())

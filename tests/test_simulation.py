@@ -73,8 +73,9 @@ def test_workers_split_a_run_at_the_default_chunk_size():
                                     on_chunk=lambda c: sizes.append(c.size))
     assert sizes == [23, 23, 23, 21]
     _same(one, split)
-    with pytest.raises(simulation.SimulationError, match="--chunk-size"):
+    with pytest.raises(simulation.SimulationError, match="chunk_size") as info:
         simulation.simulate(DESIGN, bank, true_theta=theta, seed=3, chunk_size=0)
+    assert info.value.location == "chunk_size"
 
 
 def test_examinee_i_is_the_same_in_a_longer_run():
@@ -151,7 +152,7 @@ def test_perturbed_bank_by_each_items_own_standard_error():
     # a scalar SD draws exactly what an array of that SD draws
     same = simulation.perturbed_bank(bank, sd_b=np.full(400, 0.2), seed=4)
     assert np.array_equal(same.b, simulation.perturbed_bank(bank, sd_b=0.2, seed=4).b)
-    with pytest.raises(simulation.SimulationError, match="--perturb b"):
+    with pytest.raises(simulation.SimulationError, match="sd_b"):
         simulation.perturbed_bank(bank, sd_b=np.full(3, 0.1))
 
 
@@ -497,13 +498,15 @@ def test_progress_inside_a_single_chunk():
 
 
 def test_progress_of_an_exposure_calibration():
+    from adaptive_engine.simulation import Execution, Population
     from adaptive_engine.simulation.exposure_tuning import calibrate_sympson_hetter
 
     bank = small_bank()
     calls = []
     design = Design(stopping=Stopping(min_items=5, max_items=5))
-    cal = calibrate_sympson_hetter(design, bank, target=0.3, true_theta=np.linspace(-2, 2, 40), seed=1,
-                                   max_iterations=3, progress=lambda d, t: calls.append((d, t)))
+    cal = calibrate_sympson_hetter(design, bank, target=0.3,
+                                   population=Population(true_theta=np.linspace(-2, 2, 40), seed=1),
+                                   execution=Execution(progress=lambda d, t: calls.append((d, t))), max_iterations=3)
     done = [d for d, _ in calls]
     assert {t for _, t in calls} == {3 * 40}
     assert done == sorted(done) and done[-1] == 120 and done.count(120) == 1
@@ -553,7 +556,7 @@ def test_examinee_count_follows_a_grid_or_file_spec(tmp_path):
     assert examinees.examinee_count(spec, None, default=1000) == 20
     assert examinees.examinee_count(spec, 20, default=1000) == 20
     assert examinees.examinee_count(examinees.parse_ability_spec("normal:0,1"), None, default=7) == 7
-    with pytest.raises(examinees.AbilitySpecError, match="--examinees"):
+    with pytest.raises(examinees.AbilitySpecError, match="n_examinees"):
         examinees.examinee_count(spec, 300, default=1000)
     design, bank = _shipped()
     runner = CliRunner()

@@ -13,7 +13,7 @@ from scipy import integrate, stats
 from scipy.special import expit, softmax
 
 from adaptive_engine.design import types as design
-from adaptive_engine.errors import AdaptiveEngineError
+from adaptive_engine.errors import AdaptiveEngineError, DesignError
 from adaptive_engine.irt.models import log_probabilities, outer
 from adaptive_engine.irt.posterior import DEFAULT_GRID, normal_log_prior, posterior_mean_sd
 from adaptive_engine.kernel import stopping
@@ -284,7 +284,11 @@ def test_held_back_tests_stop_only_at_the_hard_ends(fire, n):
 
 
 def test_max_items_stops_even_below_an_inconsistent_minimum():
-    rules = design.Stopping(min_items=10, max_items=4, se=0.3)
+    # such rules cannot be made any more; forced past the constructor, max_items still ends the test
+    with pytest.raises(DesignError, match=r"\[stopping\] min_items"):
+        design.Stopping(min_items=10, max_items=4, se=0.3)
+    rules = design.Stopping(min_items=4, max_items=4, se=0.3)
+    object.__setattr__(rules, "min_items", 10)
     got = stopping.stop_reasons(rules, n_scored=np.array([4, 3]), se=np.array([0.1, 0.1]))
     assert got.tolist() == ["max_items", ""]
 

@@ -196,12 +196,12 @@ def parse_direction(text: str, n_dimensions: int) -> np.ndarray:
         values = np.array([float(p) for p in parts])
     except ValueError:
         raise AdaptiveEngineError(f"must be {n_dimensions} numbers separated by commas, got {text!r}",
-                                  location="--direction") from None
+                                  location="direction") from None
     if values.size != n_dimensions:
         raise AdaptiveEngineError(f"the bank has {n_dimensions} dimensions; {values.size} numbers given",
-                                  location="--direction")
+                                  location="direction")
     if not np.all(np.isfinite(values)) or not np.any(values != 0):
-        raise AdaptiveEngineError(f"must be finite numbers, not all 0, got {text!r}", location="--direction")
+        raise AdaptiveEngineError(f"must be finite numbers, not all 0, got {text!r}", location="direction")
     return md.unit_direction(values, n_dimensions)
 
 
@@ -222,7 +222,7 @@ def multidimensional_curves(bank: ItemBank, theta, *, direction=None, by_area: b
     k = bank.n_dimensions
     if by_area and direction is None:
         raise AdaptiveEngineError("information by area of a multidimensional bank is given in one direction: "
-                                  "add --direction", location="--by-area")
+                                  "give a direction", location="by_area")
     if include_pretest:
         items, counted = np.arange(len(bank)), "operational and pretest"
     else:

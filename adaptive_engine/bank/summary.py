@@ -256,18 +256,18 @@ def summed_information(bank: ItemBank, theta, items, *, by_area: bool = False):
 
 def curve_grid(start: float, stop: float, step: float) -> np.ndarray:
     """Ability points ``start, start + step, ...`` up to ``stop`` (inclusive), shape (G,)."""
-    for name, value in (("from", start), ("to", stop), ("step", step)):
+    for name, value in (("start", start), ("stop", stop), ("step", step)):
         if not math.isfinite(value):
-            raise AdaptiveEngineError(f"must be a finite number, got {value}", location=f"--{name}")
+            raise AdaptiveEngineError(f"must be a finite number, got {value}", location=name)
     if not step > 0:
-        raise AdaptiveEngineError(f"must be > 0, got {step:g}", location="--step")
+        raise AdaptiveEngineError(f"must be > 0, got {step:g}", location="step")
     if not stop > start:
-        raise AdaptiveEngineError(f"must be greater than --from ({start:g}), got {stop:g}",
-                                  location="--to")
+        raise AdaptiveEngineError(f"must be greater than the start ({start:g}), got {stop:g}",
+                                  location="stop")
     n = int(math.floor((stop - start) / step + 1e-9)) + 1
     if n > MAX_CURVE_POINTS:
         raise AdaptiveEngineError(f"{n} points asked for; at most {MAX_CURVE_POINTS}",
-                                  location="--step")
+                                  location="step")
     # rounding keeps printed grid points tidy (0.25, not 0.25000000000000006)
     return np.round(start + step * np.arange(n), 12)
 
@@ -295,16 +295,16 @@ def information_curves(bank: ItemBank, theta, *, by_area: bool = False, include_
         if by_area and direction is not None and len(bank.areas) * theta.size > MAX_AREA_CURVE_VALUES:
             raise AdaptiveEngineError(
                 f"{len(bank.areas):,} content areas x {theta.size:,} ability points is more than "
-                f"{MAX_AREA_CURVE_VALUES:,} values; use fewer points (a larger --step)", location="--by-area")
+                f"{MAX_AREA_CURVE_VALUES:,} values; use fewer points (a larger step)", location="by_area")
         return multidimensional_curves(bank, theta, direction=direction, by_area=by_area,
                                        include_pretest=include_pretest)
     if direction is not None:
         raise AdaptiveEngineError("a direction applies to banks of multidimensional models (M2PL, M3PL, MGRM); "
-                                  "this bank has one dimension", location="--direction")
+                                  "this bank has one dimension", location="direction")
     if by_area and len(bank.areas) * theta.size > MAX_AREA_CURVE_VALUES:
         raise AdaptiveEngineError(
             f"{len(bank.areas):,} content areas x {theta.size:,} ability points is more than "
-            f"{MAX_AREA_CURVE_VALUES:,} values; use fewer points (a larger --step)", location="--by-area")
+            f"{MAX_AREA_CURVE_VALUES:,} values; use fewer points (a larger step)", location="by_area")
     if include_pretest:
         items, counted = np.arange(len(bank)), OPERATIONAL_AND_PRETEST
     else:
@@ -329,13 +329,13 @@ def plot_information_curves(curves, path: str | Path, *, title: str = "") -> Pat
     except ImportError:
         raise AdaptiveEngineError(
             "plotting needs matplotlib: install the 'plots' extra (pip install 'adaptive_engine[plots]')",
-            location="--plot",
+            location="path",
         ) from None
     from ..files import atomic_write
 
     path = Path(path)
     if path.suffix.lower() != ".png":
-        raise AdaptiveEngineError(f"plot file must end in .png, got {path.name!r}", location="--plot")
+        raise AdaptiveEngineError(f"plot file must end in .png, got {path.name!r}", location="path")
     information, se, x_label = curves.plot_lines()
     fig, ax = plt.subplots(figsize=(7, 4.2))
     try:

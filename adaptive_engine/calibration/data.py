@@ -118,7 +118,7 @@ def prepare_data(
         canonical = canonical_model(model)
         if canonical is None:
             raise CalibrationError(f"unknown model {model!r} (use one of {', '.join(models.MODEL_FAMILY)})",
-                                   location="--model")
+                                   location="model")
     if template is not None:
         require_one_dimensional(template, "--template")
         bank_rows = table.bank_item_index(template)  # unknown ids / categories: located errors

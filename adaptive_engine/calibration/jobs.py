@@ -70,9 +70,9 @@ def calibrate_file(
     dict
         The calibration summary, with fit counts and the files written.
     """
-    out = _check_bank_target(out, "--out")
+    out = _check_bank_target(out, "out")
     if fit_report:
-        fit_report = _check_folder(fit_report, "--fit-report")
+        fit_report = _check_folder(fit_report, "fit_report")
     settings = settings or CalibrationSettings()
     template = load_bank(template_path, scaling=scaling) if template_path else None
     if template is not None:
@@ -97,7 +97,7 @@ def calibrate_file(
 def link_files(new_path, *, to, out, method: str, anchors=None, max_difficulty_shift: float = 0.5,
                max_slope_ratio: float = 1.5, scaling: float | None = None) -> dict:
     """Link the bank in ``new_path`` to the bank in ``to`` and write the linked bank."""
-    out = _check_bank_target(out, "--out")
+    out = _check_bank_target(out, "out")
     new = load_bank(new_path, scaling=scaling)
     base = load_bank(to, scaling=scaling)
     result = link_banks(new, base, method=method, anchors=anchors,
@@ -110,9 +110,9 @@ def link_files(new_path, *, to, out, method: str, anchors=None, max_difficulty_s
 
 def check_pretest_outputs(*, out, report=None) -> tuple[Path, Path | None]:
     """Check the outputs of :func:`pretest_files` before anything is read or computed."""
-    out = _check_bank_target(out, "--out")
+    out = _check_bank_target(out, "out")
     if report:
-        report = _check_folder(report, "--report")
+        report = _check_folder(report, "report")
     return out, report or None
 
 
@@ -143,5 +143,5 @@ def pretest_files(events, *, bank, bank_id: str, out, rules: PromotionRules | No
                    report=str(report) if report else None, warnings=[])
     if bank is None:
         summary["warnings"].append(f"no pretest item is ready; {out} was not written "
-                                   f"(--include-not-ready writes every item)")
+                                   f"(asked to include the items not ready, it writes every item)")
     return summary

@@ -167,15 +167,15 @@ def link_banks(
     """
     if method not in METHODS:
         raise CalibrationError(f"unknown linking method {method!r} (use one of {', '.join(METHODS)})",
-                               location="--method")
-    require_one_dimensional(new, "BANK")
-    require_one_dimensional(base, "--to")
+                               location="method")
+    require_one_dimensional(new, "new")
+    require_one_dimensional(base, "base")
     if not (math.isfinite(max_slope_ratio) and max_slope_ratio >= 1.0):
         raise CalibrationError(f"must be >= 1 (a factor: a slope ratio r and 1/r are the same change), "
-                               f"got {max_slope_ratio}", location="--max-slope-ratio")
+                               f"got {max_slope_ratio}", location="max_slope_ratio")
     if not (math.isfinite(max_difficulty_shift) and max_difficulty_shift >= 0.0):
         raise CalibrationError(f"must be >= 0 (a distance), got {max_difficulty_shift}",
-                               location="--max-difficulty-shift")
+                               location="max_difficulty_shift")
     if new.scaling != base.scaling:
         raise CalibrationError(f"the banks use different scaling constants D ({new.scaling:g} and "
                                f"{base.scaling:g}); convert one first", location="link")

@@ -143,7 +143,7 @@ def parse_prior(text: str) -> tuple[str, ParameterPrior | None]:
     CalibrationError
         Naming the offending text.
     """
-    where = f"--prior {text}"
+    where = f"prior {text}"
     name, sep, spec = text.partition("=")
     name = name.strip()
     if not sep or name not in PARAMETERS:

@@ -9,6 +9,10 @@ from ..bank import summary as bank_report
 from ..bank.item_bank import load_bank
 from ._common import DIMENSIONS_HELP, SCALING_HELP, dimension_names, echo_json, main, report_errors
 
+#: The parameters of the curve functions -> the flags of bank curves.
+CURVES_FLAGS = {"start": "--from", "stop": "--to", "step": "--step", "by_area": "--by-area", "path": "--plot",
+                "scaling": "--scaling", "direction": "--direction", "dimensions": "--dimensions"}
+
 _BANK_PATH = click.Path(dir_okay=False, path_type=str)
 
 
@@ -23,7 +27,7 @@ def bank():
 @click.option("--dimensions", "dimensions", default=None, metavar="NAMES", help=DIMENSIONS_HELP)
 @click.option("--target-se", type=float, default=bank_report.DEFAULT_TARGET_SE, show_default=True,
               help="Report the ability range where the operational items give a standard error below this.")
-@report_errors
+@report_errors(flags={"scaling": "--scaling", "dimensions": "--dimensions", "target_se": "--target-se"})
 def check_command(bank_file, scaling, dimensions, target_se):
     """Validate BANK (.csv, .json or .db) and print a short summary.
 
@@ -60,7 +64,7 @@ def check_command(bank_file, scaling, dimensions, target_se):
               help="Also draw the curves to this PNG file (needs matplotlib).")
 @click.option("--scaling", type=float, default=None, help=SCALING_HELP)
 @click.option("--dimensions", "dimensions", default=None, metavar="NAMES", help=DIMENSIONS_HELP)
-@report_errors
+@report_errors(flags=CURVES_FLAGS)
 def curves_command(bank_file, start, stop, step, fmt, direction, by_area, include_pretest, plot_file, scaling,
                    dimensions):
     """Print the test information and standard error of BANK over an ability grid.
@@ -95,7 +99,7 @@ def curves_command(bank_file, start, stop, step, fmt, direction, by_area, includ
               help=SCALING_HELP + "  Give it to store D in a JSON or SQLite copy of a CSV bank.")
 @click.option("--dimensions", "dimensions", default=None, metavar="NAMES",
               help=DIMENSIONS_HELP + "  Give them to store the names in a JSON or SQLite copy of a CSV bank.")
-@report_errors
+@report_errors(flags={"scaling": "--scaling", "dimensions": "--dimensions"})
 def convert_command(bank_file, out_file, scaling, dimensions):
     """Validate BANK and write it to OUT; the format follows OUT's suffix (.csv, .json, .db).
 

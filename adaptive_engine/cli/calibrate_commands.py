@@ -33,6 +33,18 @@ def _not_converged(iterations, last_change, tolerance) -> None:
 MAX_QUADRATURE_POINTS = 401
 
 
+#: Library parameters and calibration settings -> the flags that fill them.
+_SETTING_FLAGS = {"setting quadrature_points": "--quadrature-points", "setting max_iterations": "--max-iterations",
+                  "setting tolerance": "--tolerance", "setting min_answers": "--min-answers", "prior": "--prior",
+                  "out": "--out", "scaling": "--scaling"}
+CALIBRATE_FLAGS = {**_SETTING_FLAGS, "model": "--model", "fit_report": "--fit-report", "template_path": "--template"}
+LINK_FLAGS = {"out": "--out", "scaling": "--scaling", "method": "--method",
+              "max_difficulty_shift": "--max-difficulty-shift", "max_slope_ratio": "--max-slope-ratio",
+              "anchors": "--anchors", "new": "BANK", "base": "--to"}
+PRETEST_FLAGS = {**_SETTING_FLAGS, "report": "--report", "bank": "--bank", "bank_id": "--bank-id",
+                 "setting max_se": "--max-se", "setting min_fit_p": "--min-fit-p"}
+
+
 def _settings(**kw):
     from ..calibration import CalibrationSettings, prior_choice_from_texts
 
@@ -65,7 +77,7 @@ def _settings(**kw):
 @click.option("--tolerance", type=float, default=1e-4, show_default=True,
               help="Stop when no parameter moves more than this in a cycle.")
 @click.option("--min-answers", type=int, default=20, show_default=True, help="Fewest answers an item needs.")
-@report_errors
+@report_errors(flags=CALIBRATE_FLAGS)
 def calibrate_command(responses, model, template, common_slope, prior, no_priors, out, fit_report, scaling,
                       quadrature_points, max_iterations, tolerance, min_answers):
     """Calibrate items from RESPONSES (long CSV person_id,item_id,response) by marginal maximum likelihood.
@@ -103,7 +115,7 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
 @click.option("--max-slope-ratio", type=float, default=1.5, show_default=True,
               help="Flag an anchor whose slope changed by more than this factor, up or down, after linking (>= 1).")
 @click.option("--scaling", type=float, default=None, help=SCALING_HELP)
-@report_errors
+@report_errors(flags=LINK_FLAGS)
 def link_command(new_bank, base_bank, method, out, anchors, max_difficulty_shift, max_slope_ratio, scaling):
     """Put NEW_BANK on the scale of the --to bank through their common items.
 
@@ -142,7 +154,7 @@ def pretest():
 @click.option("--no-priors", is_flag=True, help="No default priors on 3PL/4PL items.")
 @click.option("--max-iterations", type=int, default=500, show_default=True,
               help="Most EM cycles of the pretest calibration, a hard cap; not converged by then: exit code 3.")
-@report_errors
+@report_errors(flags=PRETEST_FLAGS)
 def pretest_calibrate_command(db_path, bank_id, bank_path, out, include_not_ready, report, min_answers, max_se,
                               min_fit_p, no_priors, max_iterations):
     """Estimate the pretest items of a bank's sessions on the bank's scale and judge them ready or not.

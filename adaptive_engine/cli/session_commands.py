@@ -6,21 +6,19 @@ Every command prints JSON on stdout (``try`` is interactive) and exits with code
 
 from __future__ import annotations
 
-import contextlib
 import sys
 
 import click
 
-from ..errors import AdaptiveEngineError, Problem
 from ._common import EXIT_INPUT_ERROR, echo_json, main, report_errors
 
 _DB = click.option("--db", "db_path", required=True, type=click.Path(dir_okay=False),
                    help="Session store (SQLite file; created owner-only, mode 0600).")
 
 #: The library names a bad value by its parameter; the command line by its flag or argument.
-_ON_THE_COMMAND_LINE = {"examinee": "--examinee", "seed": "--seed", "prior_mean": "--prior-mean",
-                        "prior_sd": "--prior-sd", "session_id": "SESSION_ID", "item_id": "ITEM_ID",
-                        "status": "--status"}
+SESSION_FLAGS = {"examinee": "--examinee", "seed": "--seed", "prior_mean": "--prior-mean",
+                 "prior_sd": "--prior-sd", "session_id": "SESSION_ID", "item_id": "ITEM_ID",
+                 "status": "--status"}
 
 #: A negative RESPONSE (-1) is a value to refuse for its range, not an unknown option.
 _NEGATIVE_VALUES_ARE_ARGUMENTS = {"ignore_unknown_options": True}
@@ -47,16 +45,6 @@ class AsciiFloat(click.ParamType):
 ASCII_FLOAT = AsciiFloat()
 
 
-@contextlib.contextmanager
-def _named_as_on_the_command_line():
-    """Re-raise the library's errors with flags and arguments as their locations."""
-    try:
-        yield
-    except AdaptiveEngineError as exc:
-        raise type(exc)([Problem(_ON_THE_COMMAND_LINE.get(p.location, p.location), p.message)
-                         for p in exc.problems]) from None
-
-
 @main.group()
 def session():
     """Run live adaptive test sessions stored in a SQLite session store."""
@@ -75,7 +63,7 @@ def session():
               help="Examinee-specific prior mean of theta (on the design's ability grid).")
 @click.option("--prior-sd", type=ASCII_FLOAT, default=None,
               help="Examinee-specific prior SD of theta (one grid step .. the grid's width).")
-@report_errors
+@report_errors(flags=SESSION_FLAGS)
 def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd):
     """Start a session (the store is created if missing); print its id and first item.
 
@@ -91,14 +79,13 @@ def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd)
     bank = load_bank(bank_file)
     for w in design_warnings(design, bank):
         click.echo(f"warning: {w.location}: {w.message}", err=True)
-    with _named_as_on_the_command_line():
-        # every check of the request runs before the store is opened, so a refused start
-        # creates no file -- and never deletes one: another process may be using a store
-        # that did not exist a moment ago
-        prepared = prepare_start(design, bank, examinee=examinee, seed=seed,
-                                 prior_mean=prior_mean, prior_sd=prior_sd)
-        with open_store(db_path) as store:
-            reply = commit_start(store, prepared)
+    # every check of the request runs before the store is opened, so a refused start
+    # creates no file -- and never deletes one: another process may be using a store
+    # that did not exist a moment ago
+    prepared = prepare_start(design, bank, examinee=examinee, seed=seed,
+                             prior_mean=prior_mean, prior_sd=prior_sd)
+    with open_store(db_path) as store:
+        reply = commit_start(store, prepared)
     echo_json(reply)
 
 
@@ -108,7 +95,7 @@ def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd)
 @click.argument("response")
 @_DB
 @click.option("--elapsed", type=ASCII_FLOAT, default=None, help="Seconds the examinee has spent so far.")
-@report_errors
+@report_errors(flags=SESSION_FLAGS)
 def answer(session_id, item_id, response, db_path, elapsed):
     """Record RESPONSE (a category 0..K-1, ASCII digits) to ITEM_ID, the pending item of SESSION_ID.
 
@@ -118,7 +105,7 @@ def answer(session_id, item_id, response, db_path, elapsed):
     from ..live.session import submit_answer
     from ..live.store import open_store
 
-    with _named_as_on_the_command_line(), open_store(db_path, create=False) as store:
+    with open_store(db_path, create=False) as store:
         echo_json(submit_answer(store, session_id, item_id, response, elapsed=elapsed))
 
 
@@ -127,13 +114,13 @@ def answer(session_id, item_id, response, db_path, elapsed):
 @_DB
 @click.option("--with-seed", is_flag=True, default=False,
               help="Also print the session's seed (seed and bank predict the test's random choices).")
-@report_errors
+@report_errors(flags=SESSION_FLAGS)
 def show(session_id, db_path, with_seed):
     """Print SESSION_ID: status, the answers with the estimate after each, the result."""
     from ..live.session import show_session
     from ..live.store import open_store
 
-    with _named_as_on_the_command_line(), open_store(db_path, create=False) as store:
+    with open_store(db_path, create=False) as store:
         echo_json(show_session(store, session_id, include_seed=with_seed))
 
 
@@ -141,13 +128,13 @@ def show(session_id, db_path, with_seed):
 @_DB
 @click.option("--status", type=click.Choice(["active", "finished"]), default=None,
               help="Only sessions with this status.")
-@report_errors
+@report_errors(flags=SESSION_FLAGS)
 def list_(db_path, status):
     """List the sessions of the store (oldest first) as a JSON array."""
     from ..live.session import list_sessions
     from ..live.store import open_store
 
-    with _named_as_on_the_command_line(), open_store(db_path, create=False) as store:
+    with open_store(db_path, create=False) as store:
         echo_json(list_sessions(store, status=status))
 
 
@@ -158,7 +145,7 @@ def list_(db_path, status):
               help="Item bank file (.csv, .json or .db).")
 @click.option("--seed", type=click.IntRange(0, (1 << 63) - 1), default=None,
               help="Seed of the test's random decisions.")
-@report_errors
+@report_errors(flags=SESSION_FLAGS)
 def try_(design_file, bank_file, seed):
     """Take the test yourself in the terminal (nothing is stored); ends with the result.
 

@@ -70,6 +70,16 @@ _progress_option = click.option(
 #: Most worker processes (each holds the bank and a chunk of examinees).
 MAX_WORKERS = 64
 
+#: The library parameters these commands fill -> their flags.
+_RUN_FLAGS = {"n_examinees": "--examinees", "abilities": "--theta", "true_theta": "--theta", "seed": "--seed",
+              "workers": "--workers", "chunk_size": "--chunk-size"}
+SIMULATE_FLAGS = {**_RUN_FLAGS, "exposure_target": "--exposure-target", "fit_report": "--perturb-from",
+                  "sd_a": "--perturb a", "sd_b": "--perturb b", "sd_c": "--perturb c", "sd_d": "--perturb d",
+                  "sd_thresholds": "--perturb thresholds", "out_dir": "--out"}
+TUNE_FLAGS = {**_RUN_FLAGS, "variations": "--vary", "out_dir": "--out"}
+EXPOSURE_FLAGS = {**_RUN_FLAGS, "target": "--target", "max_iterations": "--iterations", "tolerance": "--tolerance",
+                  "strata": "--conditional-strata", "out_file": "--out"}
+
 
 def _check_workers(workers: int) -> None:
     from ..errors import AdaptiveEngineError
@@ -90,7 +100,7 @@ def _load(design_file, bank_file, true_bank_file=None):
 
 def _perturbation(text):
     """``a=0.1,b=0.15`` -> keyword SDs for :func:`adaptive_engine.simulation.perturbed_bank`."""
-    from ..simulation.engine import SimulationError
+    from ..errors import SimulationError
 
     out = {}
     names = {"a": "sd_a", "b": "sd_b", "c": "sd_c", "d": "sd_d", "thresholds": "sd_thresholds"}
@@ -133,12 +143,13 @@ def _perturbation(text):
 @click.option("--no-administrations", is_flag=True, help="Skip administrations.csv (large runs).")
 @click.option("--json", "as_json", is_flag=True, help="Print summary.json instead of the table.")
 @_progress_option
-@report_errors
+@report_errors(flags=SIMULATE_FLAGS)
 def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_spec, true_bank_file, perturb,
                      perturb_from, workers, chunk_size, exposure_target, no_administrations, as_json, show_progress):
     """Simulate DESIGN for many examinees and write the study's files into --out."""
-    from ..simulation.engine import SimulationError, perturbed_bank
-    from ..simulation.population import parse_ability_spec
+    from ..errors import SimulationError
+    from ..simulation.engine import Execution, perturbed_bank
+    from ..simulation.population import Population, parse_ability_spec
     from ..simulation.study import read_standard_errors, run_study, summary_table
 
     if perturb and perturb_from:
@@ -152,10 +163,11 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
         true_bank = perturbed_bank(base, seed=seed, **read_standard_errors(perturb_from, base))
     progress = _Progress("simulating", enabled=show_progress)
     try:
-        study = run_study(design, bank, abilities=parse_ability_spec(theta_spec), n_examinees=n_examinees,
-                          seed=seed, out_dir=out_dir, true_bank=true_bank, workers=workers, chunk_size=chunk_size,
-                          exposure_target=exposure_target, write_administrations=not no_administrations,
-                          progress=progress)
+        population = Population.drawn(parse_ability_spec(theta_spec), seed=seed, n_examinees=n_examinees,
+                                      true_bank=true_bank)
+        study = run_study(design, bank, population=population, out_dir=out_dir,
+                          execution=Execution(workers=workers, chunk_size=chunk_size, progress=progress),
+                          exposure_target=exposure_target, write_administrations=not no_administrations)
     finally:
         progress.close()
     for w in study.warnings:
@@ -184,7 +196,7 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=str),
               help="Folder for tuning.csv, tuning.json and tuning.html (with the trade-off plot).")
 @_progress_option
-@report_errors
+@report_errors(flags=TUNE_FLAGS)
 def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_spec, true_bank_file, workers, out_dir,
                  show_progress):
     """Compare variants of DESIGN's settings (stopping rules, ...) on common random numbers.
@@ -192,18 +204,19 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
     Prints mean length, RMSE and classification accuracy per combination and marks the
     combinations on the efficient frontier.
     """
-    from ..simulation.population import examinee_count, parse_ability_spec
+    from ..simulation.engine import Execution
+    from ..simulation.population import Population, parse_ability_spec
     from ..simulation.tuning import parse_variation, run_tuning_study
 
     _check_workers(workers)
     design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
     parsed = [parse_variation(v) for v in variations]
-    abilities = parse_ability_spec(theta_spec)
-    n_examinees = examinee_count(abilities, n_examinees, default=1000)
+    population = Population.drawn(parse_ability_spec(theta_spec), seed=seed, n_examinees=n_examinees,
+                                  default=1000, true_bank=true_bank)
     progress = _Progress("tuning", enabled=show_progress)
     try:
-        rows = run_tuning_study(design, bank, parsed, true_theta=abilities.draw(n_examinees, seed), seed=seed,
-                                true_bank=true_bank, workers=workers, out_dir=out_dir, progress=progress)
+        rows = run_tuning_study(design, bank, parsed, population=population, out_dir=out_dir,
+                                execution=Execution(workers=workers, progress=progress))
     finally:
         progress.close()
     from ..simulation.study import rows_csv
@@ -241,7 +254,7 @@ def exposure_group():
                    "ability (Stocking & Lewis 1998), one per item and stratum, holding every stratum's exposure "
                    "rates at --target; writes item_id,theta_from,theta_to,exposure_parameter.")
 @_progress_option
-@report_errors
+@report_errors(flags=EXPOSURE_FLAGS)
 def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n_examinees, theta_spec,
                                iterations, tolerance, workers, strata_text, show_progress):
     """Iterate Sympson-Hetter exposure parameters for DESIGN until no item exceeds --target.
@@ -252,17 +265,17 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
     """
     from ..design.exposure_parameters import MAX_EXPOSURE_STRATA
     from ..errors import AdaptiveEngineError
+    from ..simulation.engine import Execution
     from ..simulation.exposure_diagnosis import opening_and_area_limits
     from ..simulation.exposure_tuning import parse_strata, run_calibration, unreachable_target_warning
-    from ..simulation.population import examinee_count, parse_ability_spec
+    from ..simulation.population import Population, parse_ability_spec
 
     _check_workers(workers)
     strata = None if strata_text is None else parse_strata(strata_text)
     if strata is not None and len(strata) + 1 > MAX_EXPOSURE_STRATA:
         raise AdaptiveEngineError(f"{len(strata)} cut points make {len(strata) + 1} ability strata; "
                                   f"at most {MAX_EXPOSURE_STRATA}", location="--conditional-strata")
-    abilities = parse_ability_spec(theta_spec)
-    n_examinees = examinee_count(abilities, n_examinees, default=2000)
+    population = Population.drawn(parse_ability_spec(theta_spec), seed=seed, n_examinees=n_examinees, default=2000)
     design, bank, _ = _load(design_file, bank_file)
     if 0 < target <= 1:  # an out-of-range target is refused by the calibration itself
         warning = unreachable_target_warning(design, bank, target)
@@ -272,10 +285,9 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
             click.echo(f"warning: {note}", err=True)
     progress = _Progress("calibrating", enabled=show_progress)
     try:
-        cal = run_calibration(design, bank, target=target, out_file=out_file,
-                              true_theta=abilities.draw(n_examinees, seed), seed=seed,
-                              max_iterations=iterations, tolerance=tolerance, workers=workers, strata=strata,
-                              progress=progress)
+        cal = run_calibration(design, bank, target=target, out_file=out_file, population=population,
+                              execution=Execution(workers=workers, progress=progress),
+                              max_iterations=iterations, tolerance=tolerance, strata=strata)
     finally:
         progress.close()
     if cal.strata:
@@ -310,7 +322,7 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
 @click.option("--files", "files_dir", default=None, type=click.Path(file_okay=False, path_type=str),
               help="Repository checkout holding simulations/ and item_banks/ "
                    "[default: the current folder, or the package's own checkout].")
-@report_errors
+@report_errors(flags={"files": "--files", "n_examinees": "--examinees", "seed": "--seed"})
 def demo_command(out_dir, examinees, seed, files_dir):
     """Simulate the shipped licensing exam, write its report, then run a short survey session.
 

@@ -27,8 +27,16 @@ import numpy as np
 from ..bank.item_bank import ItemBank
 from ..errors import DesignError, Problem
 from ..irt import models
-from .toml_file import key_problems, toml_key, validate_design
-from .types import Design
+from .keys import toml_key
+from .types import (
+    BlueprintMethod,
+    Design,
+    ExposureMethod,
+    ExtremePatternMethod,
+    ScoringMethod,
+    SelectionCriterion,
+    design_problems,
+)
 
 
 def usable_item_count(bank: ItemBank, mask: np.ndarray, *, enemies: bool, item_sets: bool,
@@ -82,9 +90,10 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
     list of Problem
         Located at the design key concerned (``"[blueprint.areas.x] min"``).
     """
-    problems = list(validate_design(design))
-    if problems and key_problems(design):
-        # the checks below read the design's values: they must be valid on their own first
+    # the design checked itself when it was made; checking again costs little and keeps
+    # anything slipped past the constructors from the checks below and from the kernel
+    problems = design_problems(design)
+    if problems:
         return problems
     if bank.n_dimensions > 1:
         # the kernel scores and selects with one ability: it could not start a test
@@ -120,23 +129,20 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
             problems.append(Problem("[blueprint] pretest_positions",
                                     f"{len(bp.pretest_positions)} pretest position(s) but the bank holds "
                                     f"{n_pretest} pretest item(s)"))
-    if ex.method == "sympson_hetter" and design.exposure_parameters is not None:
+    if ex.method is ExposureMethod.SYMPSON_HETTER:
+        # the values and their number per item were checked with the design
         unknown = sorted(set(design.exposure_parameters) - set(bank.index_of))
         if unknown:
             shown = ", ".join(unknown[:10]) + (f" and {len(unknown) - 10} more" if len(unknown) > 10 else "")
-            problems.append(Problem("[exposure] parameters", f"items not in the bank: {shown}"))
-        from .exposure_parameters import parameter_problems
-
-        problems += parameter_problems(design.exposure_parameters, design.exposure_strata,
-                                       where="[exposure] parameters, item")[:20]
-    if ex.method == "randomesque" and ex.candidates > n_operational:
+            problems.append(Problem("[exposure] parameters_file", f"items not in the bank: {shown}"))
+    if ex.method is ExposureMethod.RANDOMESQUE and ex.candidates > n_operational:
         problems.append(Problem("[exposure] candidates",
                                 f"{ex.candidates} candidates but the bank has {n_operational} operational items"))
-    if design.opening.first_items_from_top > n_operational:
-        problems.append(Problem("[opening] first_items_from_top",
-                                f"{design.opening.first_items_from_top} but the bank has "
+    if design.opening.first_item_candidates > n_operational:
+        problems.append(Problem("[opening] first_item_candidates",
+                                f"{design.opening.first_item_candidates} but the bank has "
                                 f"{n_operational} operational items"))
-    if sel.criterion == "a_stratified":
+    if sel.criterion is SelectionCriterion.A_STRATIFIED:
         problems += _stratification_problems(design, bank, operational)
     return problems
 
@@ -180,7 +186,8 @@ def _length_problems(design, bank, operational) -> list[Problem]:
 
 
 def _rules_note(bp) -> str:
-    rules = [r for r, on in (("one item per enemy group", bp.enemies), ("item sets given whole", bp.item_sets)) if on]
+    rules = [r for r, on in (("one item per enemy group", bp.enemies), ("item sets given whole", bp.item_sets))
+             if on]
     return f" ({', '.join(rules)})" if rules else ""
 
 
@@ -188,7 +195,7 @@ def _area_problems(design, bank, operational, count, rules_note) -> list[Problem
     problems = []
     max_items = design.stopping.max_items
     for rule in design.blueprint.areas:
-        where = f"[blueprint.areas.{toml_key(rule.name)}]"
+        where = rule.where()
         if rule.name not in bank.areas:
             problems.append(Problem(where, f"area {rule.name!r} is not in the bank; "
                                            f"bank areas: {', '.join(bank.areas)}"))
@@ -300,12 +307,14 @@ def require_design_fits_bank(design: Design, bank: ItemBank) -> None:
 # plain words
 
 _CRITERION_WORDS = {
-    "max_fisher_information": "the item with the most Fisher information at the current estimate",
-    "posterior_weighted_information": "the item with the most Fisher information averaged over the posterior",
-    "kullback_leibler": "the item with the most Kullback-Leibler information over theta +- {kl_interval:g}/sqrt(n)",
-    "a_stratified": "within {strata} a-strata taken from low to high a ({blocking}), "
-                    "the item whose b is closest to the estimate",
-    "random": "an eligible item at random",
+    SelectionCriterion.MAX_FISHER_INFORMATION: "the item with the most Fisher information at the current estimate",
+    SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION:
+        "the item with the most Fisher information averaged over the posterior",
+    SelectionCriterion.KULLBACK_LEIBLER:
+        "the item with the most Kullback-Leibler information over theta +- {kl_interval:g}/sqrt(n)",
+    SelectionCriterion.A_STRATIFIED: "within {strata} a-strata taken from low to high a ({blocking}), "
+                                     "the item whose b is closest to the estimate",
+    SelectionCriterion.RANDOM: "an eligible item at random",
 }
 
 
@@ -325,26 +334,28 @@ def describe_design(design: Design) -> list[str]:
     lines = [f"opening: {start}; {_first_item_words(design)}"]
     prior = f"N({sc.prior_mean:g}, {sc.prior_sd:g}^2) prior"
     scoring = f"scoring: {sc.method.upper()}"
-    if sc.method in ("map", "eap"):
+    if sc.method in (ScoringMethod.MAP, ScoringMethod.EAP):
         scoring += f" with a {prior}"
     else:
-        fallback = (f"previous estimate +- {sc.fixed_step:g}" if sc.until_mixed == "fixed_step"
-                    else f"{sc.until_mixed.upper()} with a {prior}")
-        scoring += f"; {fallback} until the answers are mixed"
+        fallback = (f"previous estimate +- {sc.fixed_step:g}"
+                    if sc.extreme_pattern_method is ExtremePatternMethod.FIXED_STEP
+                    else f"{sc.extreme_pattern_method.upper()} with a {prior}")
+        scoring += f"; {fallback} while every answer is in the lowest or every one in the highest category"
     lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")
     words = _CRITERION_WORDS[sel.criterion].format(
         kl_interval=sel.kl_interval, strata=sel.strata,
         blocking="b-blocked" if sel.b_blocking else "no b-blocking")
     lines.append(f"selection: {words}")
     exposure = {
-        "none": "no exposure control",
-        "randomesque": f"randomesque: at random among the {ex.candidates} best items",
-        "sympson_hetter": f"Sympson-Hetter with per-item parameters from {ex.parameters}"
+        ExposureMethod.NONE: "no exposure control",
+        ExposureMethod.RANDOMESQUE: f"randomesque: at random among the {ex.candidates} best items",
+        ExposureMethod.SYMPSON_HETTER: f"Sympson-Hetter with per-item parameters from {ex.parameters_file or 'code'}"
                           + (f" ({len(design.exposure_parameters)} items)" if design.exposure_parameters else "")
                           + (f", conditional on the interim ability estimate in {len(design.exposure_strata) + 1} "
                              f"strata cut at {', '.join(f'{c:g}' for c in design.exposure_strata)}"
                              if design.exposure_strata else ""),
-        "progressive": f"progressive: a random part that fades as the test goes on (acceleration {ex.acceleration:g})",
+        ExposureMethod.PROGRESSIVE: "progressive: a random part that fades as the test goes on "
+                                    f"(acceleration {ex.acceleration:g})",
     }[ex.method]
     lines.append(f"exposure: {exposure}")
     lines.append("blueprint: " + _blueprint_words(bp))
@@ -364,7 +375,7 @@ def _first_item_words(design: Design) -> str:
     theta -- and the opening's candidate count (position 1 only), else the exposure
     method, chooses among the best.
     """
-    k_first = design.opening.first_items_from_top
+    k_first = design.opening.first_item_candidates
     if 1 in design.blueprint.pretest_positions:
         # the candidate count belongs to position 1, which the pretest item takes
         note = f" (the {k_first} top candidates apply to position 1 only)" if k_first > 1 else ""
@@ -400,7 +411,7 @@ def _first_choice(design: Design, k_first: int) -> str:
             first = f"the best item by {ranked_by} that passes its exposure lottery"
         else:
             first = f"the best item by {ranked_by}"
-    if bp.areas and bp.method == "constrained":
+    if bp.areas and bp.method == BlueprintMethod.MOST_BEHIND_AREA:
         first += ", from the content area with the largest target share"
     return first
 
@@ -416,7 +427,8 @@ def _blueprint_words(bp) -> str:
                 rules.append(f"{r.name} {r.min}-{r.max}")
             else:
                 rules.append(f"{r.name} >= {r.min}")
-        how = "constrained (most-behind area first)" if bp.method == "constrained" else "maximum priority index"
+        how = {BlueprintMethod.MOST_BEHIND_AREA: "the area most behind its target share first",
+               BlueprintMethod.MAX_PRIORITY_INDEX: "maximum priority index"}[bp.method]
         parts.append(f"{how}: " + ", ".join(rules))
     else:
         parts.append("no content balancing")

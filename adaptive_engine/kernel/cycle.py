@@ -15,9 +15,12 @@ The cycle for each examinee::
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import attrs
 import numpy as np
 
+from ..design.types import ExposureMethod, ExtremePatternMethod, ScoringMethod, SelectionCriterion
 from ..irt import models
 from ..irt.posterior import normal_log_prior, posterior_mean_sd
 from . import random_streams as randomness
@@ -28,8 +31,14 @@ from .selection import Picked, all_item_params, select
 from .state import KernelState
 
 
-def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None,
-          count_eligible=False) -> tuple[KernelState, Picked]:
+class Step(NamedTuple):
+    """The kernel state of a batch and the last pick made for it (None: no pick yet)."""
+
+    state: KernelState
+    picked: Picked | None
+
+
+def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligible=False) -> Step:
     """Begin tests for a batch; returns the state with each examinee's first item pending.
 
     Parameters
@@ -59,7 +68,7 @@ def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None,
     if no_item.any():
         state.done[no_item] = True
         state.stop_reason[no_item] = "no_eligible_item"
-    return state, picked
+    return Step(state, picked)
 
 
 def answer(ctx: TestContext, state: KernelState, rows, responses, *, elapsed=None,
@@ -145,24 +154,24 @@ def _update_estimate(ctx, state, rows) -> None:
     """Interim estimate after an answer (the design's scoring method)."""
     sc = ctx.design.scoring
     eap, sd = posterior_mean_sd(state.log_post[rows], ctx.grid)
-    if sc.method == "eap":
+    if sc.method is ScoringMethod.EAP:
         state.theta[rows], state.se[rows] = eap, sd
         return
     from ..irt.estimation import estimate
 
     items, resp = state.scored_items(rows)
     fallback_theta, fallback_se = eap, sd
-    if sc.method == "map" or sc.until_mixed == "map":
+    if sc.method is ScoringMethod.MAP or sc.extreme_pattern_method is ExtremePatternMethod.MAP:
         m = estimate(ctx.bank, items, resp, "map", prior_mean=state.prior_mean[rows],
                      prior_sd=state.prior_sd[rows], bounds=(sc.grid_min, sc.grid_max), grid=ctx.grid)
-        if sc.method == "map":
+        if sc.method is ScoringMethod.MAP:
             state.theta[rows], state.se[rows] = m.theta, m.se
             return
         fallback_theta, fallback_se = m.theta, m.se
     est = estimate(ctx.bank, items, resp, sc.method, prior_mean=state.prior_mean[rows],
                    prior_sd=state.prior_sd[rows], bounds=(sc.grid_min, sc.grid_max), grid=ctx.grid)
     mixed = _mixed(ctx, items, resp)
-    if sc.until_mixed == "fixed_step":
+    if sc.extreme_pattern_method is ExtremePatternMethod.FIXED_STEP:
         last = resp[np.arange(rows.size), np.maximum(state.n_given[rows] - 1, 0)]
         last_item = items[np.arange(rows.size), np.maximum(state.n_given[rows] - 1, 0)]
         top = ctx.bank.n_categories[np.maximum(last_item, 0)] - 1
@@ -189,8 +198,8 @@ def _best_information_item(ctx, state, rows, picked) -> tuple[np.ndarray, np.nda
     value = picked.value.copy()
     # the pick itself is the answer when it was made by maximum information alone; pretest
     # items and items that continue a set (value NaN) are not, nor are exposure-controlled picks
-    known = np.isfinite(value) & (design.selection.criterion == "max_fisher_information") \
-        & (design.exposure.method == "none")
+    known = np.isfinite(value) & (design.selection.criterion is SelectionCriterion.MAX_FISHER_INFORMATION) \
+        & (design.exposure.method is ExposureMethod.NONE)
     todo = np.flatnonzero(~known)
     if todo.size:
         sub = rows[todo]
@@ -257,7 +266,7 @@ def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimate
     sc = design.scoring
     items, resp = state.scored_items(rows)
     method = design.final_method
-    if method == "eap":
+    if method is ScoringMethod.EAP:
         from ..irt.estimation import eap_status
 
         theta, se = posterior_mean_sd(state.log_post[rows], ctx.grid)
@@ -292,14 +301,14 @@ def finish(ctx: TestContext, state: KernelState, rows, estimates: FinalEstimates
 
 
 def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, items, responses,
-            *, elapsed=None) -> tuple[KernelState, Picked | None]:
+            *, elapsed=None) -> Step:
     """Restore one examinee's state by replaying their answers through the kernel.
 
     Because every decision is a pure function of the design, the bank, the stream key and
     the answers, replaying gives exactly the state the examinee had (including the pending
     item) -- this is how a session resumes after a crash.
 
-    Returns the state and the last pick (None when no answer was given).
+    Returns the state and the last pick (the first item's pick when no answer was given).
     """
     state, picked = start(ctx, np.array([key], dtype=np.uint64), prior_mean=prior_mean, prior_sd=prior_sd)
     rows = np.zeros(1, dtype=np.int64)
@@ -308,4 +317,4 @@ def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, item
             raise ValueError(f"replay diverged at answer {k + 1}: expected item row {state.pending[0]}, log has {item}")
         t = None if elapsed is None or elapsed[k] is None else np.array([elapsed[k]], dtype=float)
         picked = answer(ctx, state, rows, np.array([resp]), elapsed=t)
-    return state, picked
+    return Step(state, picked)

@@ -13,10 +13,13 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
-from ..design.types import Design
-from ..errors import DesignError, Problem
+from ..design.types import Design, ExposureMethod, SelectionCriterion
 from ..irt import models
 
+#: An area maximum that stands for "no maximum": far above any test length (at most
+#: ``design.types.MAX_TEST_LENGTH`` scored items), and small enough that count arithmetic
+#: on it stays exact in int64.
+NO_MAXIMUM = 1 << 30
 #: Spacing of the fine grid on which items are ranked by information.
 RANK_STEP = 0.01
 #: Number of top-ranked items kept per fine-grid point (global list and per area).
@@ -99,7 +102,7 @@ class TestContext:
     area: np.ndarray  # (n,) int
     n_areas: int
     area_min: np.ndarray  # (A,) int
-    area_max: np.ndarray  # (A,) int (large when unbounded)
+    area_max: np.ndarray  # (A,) int (NO_MAXIMUM when unbounded)
     area_share: np.ndarray  # (A,) float target share (constrained selection)
     balanced: bool  # content balancing active
     item_groups: np.ndarray  # (n, E) int enemy-group codes, padded with n_groups (never blocked)
@@ -120,36 +123,36 @@ class TestContext:
 
 
 def build_context(design: Design, bank: ItemBank) -> TestContext:
-    """Precompute the fixed facts of ``design`` on ``bank``."""
+    """Precompute the fixed facts of ``design`` on ``bank``.
+
+    The pair must have passed the gate every driver runs first,
+    :func:`adaptive_engine.design.bank_fit.require_design_fits_bank` (the design is valid
+    in itself, every blueprint area and Sympson-Hetter item is in the bank, ...); nothing
+    is checked again here.
+    """
     sc = design.scoring
     grid = np.round(np.linspace(sc.grid_min, sc.grid_max, sc.grid_points), 12)
     n = bank.n_items
     operational = np.asarray(bank.status == "operational")
     areas = bank.areas
     a_count = len(areas)
-    problems = []
     area_min = np.zeros(a_count, dtype=np.int64)
-    area_max = np.full(a_count, 1 << 30, dtype=np.int64)
+    area_max = np.full(a_count, NO_MAXIMUM, dtype=np.int64)
     share = np.full(a_count, np.nan)
     max_items = design.stopping.max_items
     for rule in design.blueprint.areas:
-        if rule.name not in areas:
-            problems.append(Problem(f"[blueprint.areas.{rule.name}]", "no item of the bank is in this area"))
-            continue
         k = areas.index(rule.name)
         area_min[k] = rule.min
         if rule.max is not None:
             area_max[k] = rule.max
         if rule.share is not None:
             share[k] = rule.share
-    if problems:
-        raise DesignError(problems)
     balanced = bool(design.blueprint.areas)
     if balanced:
         # an area's target share: its share if given, else the middle of its min/max
         # bounds as a share of the test; areas without rules split what is left
         for k in range(a_count):
-            if np.isnan(share[k]) and (area_min[k] > 0 or area_max[k] < (1 << 30)):
+            if np.isnan(share[k]) and (area_min[k] > 0 or area_max[k] < NO_MAXIMUM):
                 hi = min(area_max[k], max_items)
                 share[k] = 0.5 * (area_min[k] + hi) / max_items
         left = max(0.0, 1.0 - np.nansum(share))
@@ -188,7 +191,7 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
     if poly.any():  # polytomous items: the mean of their thresholds
         difficulty[poly] = np.nanmean(bank.thresholds[poly], axis=1)
     stratum = None
-    if design.selection.criterion == "a_stratified":
+    if design.selection.criterion is SelectionCriterion.A_STRATIFIED:
         stratum = _a_strata(bank.a, difficulty, operational, design.selection.strata, design.selection.b_blocking)
     log_table = bank.log_probability_table(grid)
     return TestContext(
@@ -212,20 +215,10 @@ def _exposure_parameters(design: Design, bank: ItemBank) -> tuple[np.ndarray | N
     ability (Stocking & Lewis 1998) one row per ability stratum.  Items not listed keep 1.
     """
     cuts = np.asarray(design.exposure_strata, dtype=float)
-    if design.exposure.method != "sympson_hetter":
+    if design.exposure.method is not ExposureMethod.SYMPSON_HETTER:
         return None, cuts
-    from ..design.exposure_parameters import parameter_problems
-
-    params = design.exposure_parameters or {}
-    unknown = [iid for iid in params if iid not in bank.index_of]
-    if unknown:
-        raise DesignError([Problem("[exposure] parameters", f"item {iid!r} is not in the bank")
-                           for iid in unknown[:20]])
-    problems = parameter_problems(params, design.exposure_strata, where="[exposure] parameters, item")
-    if problems:
-        raise DesignError(problems[:20])
     exposure_k = np.ones((cuts.size + 1, bank.n_items))
-    for iid, value in params.items():
+    for iid, value in design.exposure_parameters.items():
         exposure_k[:, bank.index_of[iid]] = value
     return exposure_k, cuts
 

@@ -21,14 +21,17 @@ same item.
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import attrs
 import numpy as np
 
+from ..design.types import BlueprintMethod, ExposureMethod, SelectionCriterion
 from ..irt import models
 from ..irt.posterior import posterior_weights
 from . import random_streams as randomness
 from .eligibility import area_limits, eligible, set_fits
-from .prepared import RANK_STEP, TestContext, ranked_tables
+from .prepared import NO_MAXIMUM, RANK_STEP, TestContext, ranked_tables
 from .state import KernelState
 
 #: Exactly evaluated candidates per examinee on the short-list path.
@@ -51,6 +54,39 @@ class Picked:
     value: np.ndarray
     eligible: np.ndarray
     withheld: list = attrs.field(factory=list)  # (row, item) pairs Sympson-Hetter withheld
+
+
+class Choice(NamedTuple):
+    """Items chosen for rows (arrays (R,)): -1 and NaN where no item is eligible, and the
+    (row, item) pairs the Sympson-Hetter lottery withheld on the way."""
+
+    item: np.ndarray
+    value: np.ndarray
+    withheld: list
+
+
+class RankedChoice(NamedTuple):
+    """A :class:`Choice` among ranked candidates, with what it depended on (arrays (R,)).
+
+    ``depth``: how many of the best candidates the choice looked at; ``kth``: the value of
+    the ``depth``-th best.  A choice made from a short list is proven when ``kth`` is at
+    least the ceiling of every candidate left off the list.
+    """
+
+    item: np.ndarray
+    value: np.ndarray
+    kth: np.ndarray
+    depth: np.ndarray
+    withheld: list
+
+
+class ProvenChoice(NamedTuple):
+    """The rows (positions in the batch) whose short-list choice is proven, and their choice."""
+
+    rows: np.ndarray
+    item: np.ndarray
+    value: np.ndarray
+    withheld: list
 
 
 def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_eligible: bool = False) -> Picked:
@@ -89,10 +125,10 @@ def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_elig
     pending = np.flatnonzero(todo)
     if pending.size:
         sub = rows[pending]
-        got_item, got_value, got_withheld = _criterion_pick(ctx, state, sub)
-        item[pending] = got_item
-        value[pending] = got_value
-        withheld.extend(got_withheld)
+        got = _criterion_pick(ctx, state, sub)
+        item[pending] = got.item
+        value[pending] = got.value
+        withheld.extend(got.withheld)
     if count_eligible:
         all_items = np.broadcast_to(np.arange(ctx.n_items), (r_n, ctx.n_items))
         n_elig = eligible(ctx, state, rows, all_items).sum(axis=1)
@@ -129,88 +165,118 @@ def _target_area(ctx, state, rows, open_area) -> np.ndarray:
     return np.where(np.isfinite(gap.max(axis=1)), target, -1)
 
 
-def _criterion_pick(ctx, state, rows):
+def _criterion_pick(ctx, state, rows) -> Choice:
     design = ctx.design
     open_area = area_limits(ctx, state, rows)
     fits = set_fits(ctx, state, rows, open_area)
     restrict = np.full(rows.size, -1, dtype=np.int64)
-    if ctx.balanced and design.blueprint.method == "constrained":
+    if ctx.balanced and design.blueprint.method is BlueprintMethod.MOST_BEHIND_AREA:
         restrict = _target_area(ctx, state, rows, open_area)
     item = np.full(rows.size, -1, dtype=np.int64)
     value = np.full(rows.size, np.nan)
     withheld: list = []
     left = np.ones(rows.size, dtype=bool)
     fast = (
-        design.selection.criterion == "max_fisher_information"
-        and design.exposure.method in ("none", "randomesque", "sympson_hetter")
+        design.selection.criterion is SelectionCriterion.MAX_FISHER_INFORMATION
+        and design.exposure.method in (ExposureMethod.NONE, ExposureMethod.RANDOMESQUE, ExposureMethod.SYMPSON_HETTER)
         and not design.blueprint.shadow_test
-        and not (ctx.balanced and design.blueprint.method == "max_priority_index")
+        and not (ctx.balanced and design.blueprint.method is BlueprintMethod.MAX_PRIORITY_INDEX)
     )
     if fast:
-        ok_rows, it, val, wh = _shortlist_pick(ctx, state, rows, restrict, open_area, fits)
-        item[ok_rows] = it
-        value[ok_rows] = val
-        withheld.extend(wh)
-        left[ok_rows] = False
+        proven = _shortlist_pick(ctx, state, rows, restrict, open_area, fits)
+        item[proven.rows] = proven.item
+        value[proven.rows] = proven.value
+        withheld.extend(proven.withheld)
+        left[proven.rows] = False
     rest = np.flatnonzero(left)
     for start in range(0, rest.size, ROW_CHUNK):
         part = rest[start : start + ROW_CHUNK]
-        it, val, wh = _general_pick(ctx, state, rows[part], restrict[part], open_area[part], fits[part])
+        got = _general_pick(ctx, state, rows[part], restrict[part], open_area[part], fits[part])
+        it, val = got.item, got.value
         if design.blueprint.shadow_test:
             from .shadow import shadow_test_pick
 
             it, val = shadow_test_pick(ctx, state, rows[part], it, val)
         item[part] = it
         value[part] = val
-        withheld.extend(wh)
-    return item, value, withheld
+        withheld.extend(got.withheld)
+    return Choice(item=item, value=value, withheld=withheld)
 
 
-def _needed(ctx, state, rows) -> tuple[np.ndarray, str]:
-    """How many top items the exposure method draws among, and the method."""
+class RankedPickRule(NamedTuple):
+    """How each row picks its item from candidates ranked by value (arrays (R,)).
+
+    ``draw`` rows take one at random among their best ``width`` candidates, the uniform
+    drawn from the random stream ``purpose`` (``randomness.RANDOMESQUE`` or
+    ``randomness.FIRST_ITEM``); ``lottery`` rows go down the ranking through the
+    Sympson-Hetter lottery; every other row takes the best candidate.
+    """
+
+    draw: np.ndarray  # bool
+    width: np.ndarray  # int, 1 where not drawing
+    purpose: np.ndarray  # int
+    lottery: np.ndarray  # bool
+
+
+def pick_rule(ctx, state, rows) -> RankedPickRule:
+    """The :class:`RankedPickRule` of ``rows``: the exposure method, and the opening draw.
+
+    The first item of a test (no item given yet) is drawn among the
+    ``[opening] first_item_candidates`` best items when that is above 1; under
+    ``randomesque`` every item is drawn (the first among that many, the others among
+    ``[exposure] candidates``), from the randomesque stream.
+    """
     design = ctx.design
     method = design.exposure.method
+    size = rows.size
     first = state.n_given[rows] == 0
-    k_first = design.opening.first_items_from_top
-    if method == "randomesque":
-        n = np.full(rows.size, design.exposure.candidates)
-        if k_first > 1:
-            n = np.where(first, k_first, n)
-        return n, "randomesque"
-    if k_first > 1 and first.any():
-        return np.where(first, k_first, 1), "randomesque_first"
-    return np.ones(rows.size, dtype=np.int64), method
+    k_first = design.opening.first_item_candidates
+    opening = first & (k_first > 1)
+    if method is ExposureMethod.RANDOMESQUE:
+        width = np.where(opening, k_first, design.exposure.candidates)
+        return RankedPickRule(draw=np.ones(size, dtype=bool), width=width,
+                              purpose=np.full(size, randomness.RANDOMESQUE), lottery=np.zeros(size, dtype=bool))
+    if method is ExposureMethod.SYMPSON_HETTER:
+        lottery = ~opening
+    elif method in (ExposureMethod.NONE, ExposureMethod.PROGRESSIVE):
+        # progressive control acts on the criterion values (see criterion_values)
+        lottery = np.zeros(size, dtype=bool)
+    else:  # pragma: no cover - the design types admit no other method
+        raise AssertionError(f"exposure method {method!r}")
+    return RankedPickRule(draw=opening, width=np.where(opening, k_first, 1),
+                          purpose=np.full(size, randomness.FIRST_ITEM), lottery=lottery)
 
 
-def _choose_ranked(ctx, state, rows, cand, values, ok):
-    """Apply the exposure method to candidates ranked by value.
-
-    Returns the chosen item and its value, the value of the last ranked entry the choice
-    depended on (``kth``: the ``depth``-th best), ``depth``, and withheld items.
-    """
+def _choose_ranked(ctx, state, rows, cand, values, ok) -> RankedChoice:
+    """Pick among candidates ranked by value, by each row's :class:`RankedPickRule`."""
     masked = np.where(ok, values, -np.inf)
     n_ok = ok.sum(axis=1)
-    need, method = _needed(ctx, state, rows)
-    if method in ("none", "progressive") or (method == "randomesque_first" and np.all(need == 1)):
+    rule = pick_rule(ctx, state, rows)
+    draw = rule.draw & (rule.width > 1)  # a draw among one candidate takes the best
+    if not draw.any() and not rule.lottery.any():
         # the best item: no ranking needed (ties go to the first, as in a stable sort)
         pos = np.argmax(masked, axis=1)
         best = masked[np.arange(rows.size), pos]
         chosen = np.where(n_ok > 0, cand[np.arange(rows.size), pos], -1)
-        return chosen, np.where(n_ok > 0, best, np.nan), best, np.ones(rows.size, dtype=np.int64), []
+        return RankedChoice(item=chosen, value=np.where(n_ok > 0, best, np.nan), kth=best,
+                            depth=np.ones(rows.size, dtype=np.int64), withheld=[])
     order = np.argsort(-masked, axis=1, kind="stable")
     s_cand = np.take_along_axis(cand, order, axis=1)
     s_val = np.take_along_axis(masked, order, axis=1)
     pos = np.zeros(rows.size, dtype=np.int64)
+    depth = np.ones(rows.size, dtype=np.int64)
     withheld = []
-    if method.startswith("randomesque"):
-        width = np.minimum(need, n_ok)
-        purpose = randomness.RANDOMESQUE if method == "randomesque" else randomness.FIRST_ITEM
-        u = randomness.uniforms(state.keys[rows], state.n_given[rows], purpose)
-        pos = np.minimum((u * width).astype(np.int64), np.maximum(width - 1, 0))
-        depth = np.maximum(width, 1)
-        # with fewer than `need` eligible items listed, unlisted ones could belong in the draw
-        depth = np.where(n_ok < need, need, depth)
-    elif method == "sympson_hetter":
+    if rule.draw.any():
+        width = np.minimum(rule.width, n_ok)
+        u = np.where(rule.purpose == randomness.FIRST_ITEM,
+                     randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.FIRST_ITEM),
+                     randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.RANDOMESQUE))
+        drawn = np.minimum((u * width).astype(np.int64), np.maximum(width - 1, 0))
+        # with fewer than `width` eligible items listed, unlisted ones could belong in the draw
+        reach = np.where(n_ok < rule.width, rule.width, np.maximum(width, 1))
+        pos = np.where(rule.draw, drawn, pos)
+        depth = np.where(rule.draw, reach, depth)
+    if rule.lottery.any():
         # Conditional parameters (Stocking & Lewis 1998) are indexed by the stratum of the
         # interim estimate: the true ability is unknown in operational use.  Unconditional
         # parameters have no cut points, so every examinee is in stratum 0.
@@ -219,24 +285,24 @@ def _choose_ranked(ctx, state, rows, cand, values, ok):
         u = randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.SYMPSON_HETTER, s_cand)
         passes = (u < k) & np.isfinite(s_val)
         any_pass = passes.any(axis=1)
-        pos = np.where(any_pass, np.argmax(passes, axis=1), 0)
-        depth = np.where(any_pass, pos + 1, n_ok + 1)  # none passed: depends on the whole list
-        for r_pos in np.flatnonzero(any_pass & (pos > 0)):
-            for j in range(pos[r_pos]):
+        lottery_pos = np.where(any_pass, np.argmax(passes, axis=1), 0)
+        pos = np.where(rule.lottery, lottery_pos, pos)
+        # none passed: the choice depends on the whole list
+        depth = np.where(rule.lottery, np.where(any_pass, lottery_pos + 1, n_ok + 1), depth)
+        for r_pos in np.flatnonzero(rule.lottery & any_pass & (lottery_pos > 0)):
+            for j in range(lottery_pos[r_pos]):
                 if np.isfinite(s_val[r_pos, j]):
                     withheld.append((int(rows[r_pos]), int(s_cand[r_pos, j])))
-    else:
-        depth = np.ones(rows.size, dtype=np.int64)
     chosen = np.take_along_axis(s_cand, pos[:, None], axis=1)[:, 0]
     chosen_val = np.take_along_axis(s_val, pos[:, None], axis=1)[:, 0]
     none_left = n_ok == 0
     chosen = np.where(none_left, -1, chosen)
     chosen_val = np.where(none_left, np.nan, chosen_val)
     kth = np.take_along_axis(s_val, np.clip(depth - 1, 0, s_val.shape[1] - 1)[:, None], axis=1)[:, 0]
-    return chosen, chosen_val, kth, depth, withheld
+    return RankedChoice(item=chosen, value=chosen_val, kth=kth, depth=depth, withheld=withheld)
 
 
-def _shortlist_pick(ctx, state, rows, restrict, open_area, fits):
+def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice:
     """Maximum-information pick from the ranked short lists; returns the rows it proved."""
     tables = ranked_tables(ctx.bank)
     items_tab, reach_tab, ceil_tab, grid = tables.items, tables.reach, tables.ceiling, tables.grid
@@ -250,7 +316,8 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits):
     ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
     # the first few eligible candidates (in grid order) get exact information; the
     # Sympson-Hetter lottery rejects many top items, so it gets a longer list
-    n_exact = min(cand.shape[1], SHORTLIST_EXACT * (3 if ctx.design.exposure.method == "sympson_hetter" else 1))
+    lottery = ctx.design.exposure.method is ExposureMethod.SYMPSON_HETTER
+    n_exact = min(cand.shape[1], SHORTLIST_EXACT * (3 if lottery else 1))
     # compact the first n_exact eligible columns of each row, in grid order (-1: none)
     rank = np.cumsum(ok, axis=1, dtype=np.int16)
     r_idx, c_idx = np.nonzero(ok & (rank <= n_exact))
@@ -263,14 +330,15 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits):
     # ceiling of everything not evaluated: unlisted items, and listed eligible ones beyond
     rest = np.where(ok & (rank > n_exact), reach, -np.inf).max(axis=1)
     ceiling = np.maximum(ceil_tab[which, g], rest)
-    chosen, chosen_val, kth, depth, withheld = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
-    proven = inside & (depth <= n_exact) & (kth >= ceiling) & (chosen >= 0)
+    ranked = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
+    proven = inside & (ranked.depth <= n_exact) & (ranked.kth >= ceiling) & (ranked.item >= 0)
     keep = np.flatnonzero(proven)
     keep_rows = set(rows[keep].tolist())
-    return keep, chosen[keep], chosen_val[keep], [w for w in withheld if w[0] in keep_rows]
+    return ProvenChoice(rows=keep, item=ranked.item[keep], value=ranked.value[keep],
+                        withheld=[w for w in ranked.withheld if w[0] in keep_rows])
 
 
-def _general_pick(ctx, state, rows, restrict, open_area, fits):
+def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:
     n = ctx.n_items
     cand = np.broadcast_to(np.arange(n), (rows.size, n))
     ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
@@ -282,23 +350,23 @@ def _general_pick(ctx, state, rows, restrict, open_area, fits):
         ok = np.where((restricted & has)[:, None], ok & in_area, ok)
     values = criterion_values(ctx, state, rows, ok)
     if n <= 2 * GENERAL_TOP:
-        chosen, chosen_val, _, _, withheld = _choose_ranked(ctx, state, rows, cand, values, ok)
-        return chosen, chosen_val, withheld
+        ranked = _choose_ranked(ctx, state, rows, cand, values, ok)
+        return Choice(item=ranked.item, value=ranked.value, withheld=ranked.withheld)
     # Rank only the best GENERAL_TOP items of each row (sorted by item first, so ties order
     # as in a full stable sort); rows whose choice reaches past them are ranked in full.
     masked = np.where(ok, values, -np.inf)
     top = np.sort(np.argpartition(-masked, GENERAL_TOP - 1, axis=1)[:, :GENERAL_TOP], axis=1)
     top_ok = np.take_along_axis(ok, top, axis=1)
-    chosen, chosen_val, _, depth, withheld = _choose_ranked(
-        ctx, state, rows, top, np.take_along_axis(values, top, axis=1), top_ok)
+    ranked = _choose_ranked(ctx, state, rows, top, np.take_along_axis(values, top, axis=1), top_ok)
+    chosen, chosen_val, depth, withheld = ranked.item, ranked.value, ranked.depth, ranked.withheld
     redo = np.flatnonzero((depth > GENERAL_TOP) | ((depth == GENERAL_TOP) & (ok.sum(axis=1) > GENERAL_TOP)))
     if redo.size:
         redo_rows = set(rows[redo].tolist())
         withheld = [w for w in withheld if w[0] not in redo_rows]
-        c2, v2, _, _, w2 = _choose_ranked(ctx, state, rows[redo], cand[redo], values[redo], ok[redo])
-        chosen[redo], chosen_val[redo] = c2, v2
-        withheld.extend(w2)
-    return chosen, chosen_val, withheld
+        full = _choose_ranked(ctx, state, rows[redo], cand[redo], values[redo], ok[redo])
+        chosen[redo], chosen_val[redo] = full.item, full.value
+        withheld.extend(full.withheld)
+    return Choice(item=chosen, value=chosen_val, withheld=withheld)
 
 
 def criterion_values(ctx, state, rows, ok) -> np.ndarray:
@@ -307,26 +375,26 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
     crit = design.selection.criterion
     theta = state.theta[rows]
     n = ctx.n_items
-    if crit == "random":
+    if crit is SelectionCriterion.RANDOM:
         return randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.RANDOM_CRITERION,
                                    np.broadcast_to(np.arange(n), (rows.size, n)))
-    if crit == "max_fisher_information":
+    if crit is SelectionCriterion.MAX_FISHER_INFORMATION:
         values = models.information(all_item_params(ctx), theta[:, None])
-    elif crit == "posterior_weighted_information":
+    elif crit is SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION:
         # van der Linden (1998): information averaged over the current posterior
         w = posterior_weights(state.log_post[rows])
         # per-row sums without BLAS: a matrix product rounds differently with the batch size
         values = np.einsum("rg,ng->rn", w, ctx.info_grid)
-    elif crit == "kullback_leibler":
+    elif crit is SelectionCriterion.KULLBACK_LEIBLER:
         values = _kl_values(ctx, state, rows)
-    elif crit == "a_stratified":
+    elif crit is SelectionCriterion.A_STRATIFIED:
         values = _stratified_values(ctx, state, rows, ok)
-    else:  # pragma: no cover - the design reader refuses other names
-        raise ValueError(f"unknown criterion {crit!r}")
+    else:  # pragma: no cover - the design types admit no other criterion
+        raise AssertionError(f"criterion {crit!r}")
     with np.errstate(invalid="ignore"):
-        if ctx.balanced and design.blueprint.method == "max_priority_index":
+        if ctx.balanced and design.blueprint.method is BlueprintMethod.MAX_PRIORITY_INDEX:
             values = values * _priority_index(ctx, state, rows)
-        if design.exposure.method == "progressive":
+        if design.exposure.method is ExposureMethod.PROGRESSIVE:
             values = _progressive(ctx, state, rows, values, ok)
     # an item a criterion rules out (-inf: outside the current a-stratum) stays out whatever
     # the weights: 0 x -inf is NaN, and argmax would pick the first NaN
@@ -395,7 +463,7 @@ def _priority_index(ctx, state, rows) -> np.ndarray:
     """
     counts = state.area_counts[rows].astype(float)
     lo = ctx.area_min[None, :].astype(float)
-    bounded = ctx.area_max < (1 << 30)
+    bounded = ctx.area_max < NO_MAXIMUM
     hi = np.minimum(ctx.area_max, ctx.design.stopping.max_items)[None, :].astype(float)
     upper = np.where(bounded[None, :], (hi - counts) / np.maximum(hi, 1.0), 1.0)
     lower = np.where(counts < lo, 1.0 + (lo - counts) / np.maximum(lo, 1.0), 1.0)

@@ -183,7 +183,8 @@ def design_from_content(toml_text: str, params_json: str | None, *, design_id: s
             doc["exposure_strata"] = stored.get("exposure_strata")
             stored = stored["exposure_parameters"]
         doc["exposure_parameters"] = stored
-    return design_from_dict(doc)
+    # a design stored before a key was renamed reads as it is: nothing to warn the user of
+    return design_from_dict(doc, warn_renamed=False)
 
 
 class SessionStore:
@@ -512,9 +513,9 @@ class SessionStore:
             bank_id, _ = bank_content(bank)
             if not self.has_bank(bank_id):
                 raise SessionError("this bank is not in the store (its content differs from every stored bank); "
-                                   "give --bank-id", location="--bank")
+                                   "give its bank_id", location="bank")
         elif not self.has_bank(bank_id):
-            raise SessionError(f"no bank with id {bank_id!r} in the store", location="--bank-id")
+            raise SessionError(f"no bank with id {bank_id!r} in the store", location="bank_id")
         if bank is None:
             bank = self.load_bank(bank_id)
         events = self.conn.execute(

@@ -18,6 +18,11 @@ depend on the chunk size or on how chunks are spread over workers:
 
 The true bank may differ from the operational bank the kernel selects and scores with
 (``true_bank``; or :func:`perturbed_bank`), which shows the effect of calibration error.
+
+Two value objects carry a run's settings through every layer: the simulated examinees
+(:class:`~adaptive_engine.simulation.population.Population`: true abilities, seed, true
+bank) and how the run is carried out (:class:`Execution`: chunk size, workers, executor,
+progress).  :func:`simulate` also takes their fields as keywords.
 """
 
 from __future__ import annotations
@@ -34,20 +39,66 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
+from ..design.bank_fit import require_design_fits_bank
 from ..design.types import Design
-from ..errors import AdaptiveEngineError, Problem
+from ..errors import Problem, SimulationError
 from ..irt import models
 from ..kernel import cycle as kernel
 from ..kernel import final_report as reporting
 from ..kernel import random_streams as randomness
 from ..kernel.prepared import TestContext, build_context
+from .population import Population
+
+__all__ = ["DEFAULT_CHUNK", "ChunkResult", "Execution", "Population", "SimulationError", "SimulationResult",
+           "effective_chunk_size", "iter_chunks", "perturbed_bank", "run_chunk", "simulate", "stratum_of",
+           "true_item_rows"]
 
 #: Examinees per kernel batch.
 DEFAULT_CHUNK = 10_000
 
 
-class SimulationError(AdaptiveEngineError):
-    """A simulation request cannot be carried out (bad sizes, banks that do not match)."""
+def _count_problem(value, name: str) -> None:
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < 1:
+        raise SimulationError(f"{name.replace('_', ' ')} must be a whole number >= 1, got {value!r}", name)
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class Execution:
+    """How a simulation run is carried out; its results never depend on these.
+
+    Attributes
+    ----------
+    chunk_size : int
+        Most examinees per kernel batch (memory is bounded by it); with ``workers > 1``
+        smaller chunks are used (:meth:`chunk_for`) so that every worker gets work.
+    workers : int
+        With no executor, ``workers > 1`` starts a process pool of that size; with an
+        executor, give its number of workers so that the run is cut finely enough.
+    executor : concurrent.futures.Executor, optional
+        Runs chunks in parallel (any object with ``submit`` returning futures, e.g. a
+        ``ProcessPoolExecutor`` or ``dask.distributed.Client.get_executor()``).
+    progress : callable, optional
+        Called as ``progress(done, total)`` with the number of examinees whose test has
+        ended (see :func:`simulate`).
+
+    Raises
+    ------
+    SimulationError
+        Located at ``chunk_size`` or ``workers``.
+    """
+
+    chunk_size: int = DEFAULT_CHUNK
+    workers: int = 1
+    executor: Executor | None = None
+    progress: Callable[[int, int], None] | None = None
+
+    def __attrs_post_init__(self) -> None:
+        _count_problem(self.chunk_size, "chunk_size")
+        _count_problem(self.workers, "workers")
+
+    def chunk_for(self, total: int) -> int:
+        """Examinees per chunk actually used for a run of ``total`` (:func:`effective_chunk_size`)."""
+        return effective_chunk_size(total, self.chunk_size, self.workers)
 
 
 class _CountsByStratum:
@@ -218,16 +269,16 @@ def perturbed_bank(bank: ItemBank, *, sd_a=0.0, sd_b=0.0, sd_c=0.0, sd_threshold
         try:
             value = np.asarray(sd, dtype=float)
         except (TypeError, ValueError):
-            raise SimulationError(f"the SD must be a number, got {sd!r}", f"--perturb {key}") from None
+            raise SimulationError(f"the SD must be a number, got {sd!r}", f"sd_{key}") from None
         shape = bank.thresholds.shape if key == "thresholds" else (n,)
         if key == "thresholds" and value.ndim == 2 and value.shape[0] == n and value.shape[1] <= shape[1]:
             value = np.pad(value, ((0, 0), (0, shape[1] - value.shape[1])))
         if value.ndim and value.shape != shape:
             raise SimulationError(f"expected one SD or an array of shape {shape}, got shape {value.shape}",
-                                  f"--perturb {key}")
+                                  f"sd_{key}")
         if not np.all(np.isfinite(value)) or np.any(value < 0):
             raise SimulationError(f"SDs must be finite numbers >= 0, got {sd!r}" if not value.ndim
-                                  else "SDs must be finite numbers >= 0", f"--perturb {key}")
+                                  else "SDs must be finite numbers >= 0", f"sd_{key}")
         sds[key] = value
     rng = np.random.default_rng(np.random.SeedSequence([int(seed) % (1 << 63), 0xBA4C]))
     model = np.asarray(bank.model)
@@ -389,10 +440,8 @@ def effective_chunk_size(total: int, chunk_size: int, workers: int) -> int:
     idle.  Two chunks per worker rather than one let a fast worker take up the slack of a
     slow one.  Results do not depend on the chunking (see the module notes).
     """
-    if chunk_size < 1:
-        raise SimulationError(f"chunk size must be >= 1, got {chunk_size}", "--chunk-size")
-    if workers < 1:
-        raise SimulationError(f"workers must be >= 1, got {workers}", "--workers")
+    _count_problem(chunk_size, "chunk_size")
+    _count_problem(workers, "workers")
     if workers > 1 and total > 0:
         return max(1, min(chunk_size, math.ceil(total / (2 * workers))))
     return chunk_size
@@ -408,45 +457,35 @@ def _worker_chunk(token, design, bank, true_bank, seed, start, true_theta, count
                      count_by_stratum=count_by_stratum)
 
 
-def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank: ItemBank | None = None,
-                chunk_size: int = DEFAULT_CHUNK, executor: Executor | None = None,
-                workers: int = 1, ctx: TestContext | None = None,
-                count_by_stratum=None,
+def iter_chunks(design: Design, bank: ItemBank, population: Population, execution: Execution, *,
+                ctx: TestContext | None = None, count_by_stratum=None,
                 on_round: Callable[[int, int], None] | None = None) -> Iterator[ChunkResult]:
     """Yield the chunks of a run in examinee order.
 
     Parameters
     ----------
-    true_theta : float array, shape (N,)
-        True abilities of all examinees.
-    executor : concurrent.futures.Executor, optional
-        Runs chunks in parallel (any object with ``submit`` returning futures, e.g. a
-        ``ProcessPoolExecutor`` or ``dask.distributed.Client.get_executor()``).
-    chunk_size : int
-        Most examinees per chunk; with ``workers > 1`` smaller chunks are used
-        (:func:`effective_chunk_size`) so that every worker gets work.
-    workers : int
-        With no executor, ``workers > 1`` starts a process pool of that size; with an
-        executor, give its number of workers so that the run is cut finely enough.
+    population : Population
+        The simulated examinees (true abilities, seed, true bank).
+    execution : Execution
+        Chunk size, workers, executor (its ``progress`` is :func:`simulate`'s business).
     ctx : TestContext, optional
-        A context already built for (design, bank) (in-process runs only).
+        A context already built for (design, bank) (in-process runs only); the caller
+        answers for the pair having passed the gate.
     count_by_stratum : float sequence, optional
         Cut points of true-ability strata for per-stratum counts (see :func:`run_chunk`).
     on_round : callable, optional
         In-process runs only: called as ``on_round(start, finished)`` after each round of
         answers of the chunk starting at examinee ``start`` (see :func:`run_chunk`).
     """
-    true_theta = np.asarray(true_theta, dtype=float)
-    total = true_theta.shape[0]
-    chunk_size = effective_chunk_size(total, chunk_size, workers)
+    true_theta = population.true_theta
+    seed, true_bank = population.seed, population.true_bank
+    chunk_size = execution.chunk_for(population.size)
     true_rows = true_item_rows(bank, true_bank)  # validate before any work starts
     if ctx is None:
-        # the design check is the gate of every run: nothing it refuses reaches the kernel
-        from ..design.bank_fit import require_design_fits_bank
-
+        # the gate of every run: nothing it refuses reaches the kernel
         require_design_fits_bank(design, bank)
-    starts = range(0, total, chunk_size)
-    if executor is None and workers == 1:
+    starts = range(0, population.size, chunk_size)
+    if execution.executor is None and execution.workers == 1:
         ctx = ctx if ctx is not None else build_context(design, bank)
         for s in starts:
             report = None if on_round is None else functools.partial(on_round, s)
@@ -454,10 +493,10 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
                             true_bank=true_bank, true_rows=true_rows, count_by_stratum=count_by_stratum,
                             on_round=report)
         return
-    own = executor is None
-    pool = ProcessPoolExecutor(max_workers=workers) if own else executor
+    own = execution.executor is None
+    pool = ProcessPoolExecutor(max_workers=execution.workers) if own else execution.executor
     token = uuid.uuid4().hex
-    window = max(2, 2 * workers)  # chunks in flight: bounds memory at a few chunks
+    window = max(2, 2 * execution.workers)  # chunks in flight: bounds memory at a few chunks
     try:
         pending: deque = deque()
         it = iter(starts)
@@ -476,12 +515,25 @@ def iter_chunks(design: Design, bank: ItemBank, *, true_theta, seed: int, true_b
             pool.shutdown(cancel_futures=True)
 
 
-def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank: ItemBank | None = None,
-             chunk_size: int = DEFAULT_CHUNK, executor: Executor | None = None, workers: int = 1,
+def _given_once(obj, name: str, given: dict):
+    """``obj``, or the object made from the keywords ``given`` (never both)."""
+    given = {k: v for k, v in given.items() if v is not None}
+    if obj is not None and given:
+        raise TypeError(f"give {name}= or its fields ({', '.join(given)}), not both")
+    return obj, given
+
+
+def simulate(design: Design, bank: ItemBank, *, true_theta=None, seed: int | None = None,
+             true_bank: ItemBank | None = None, chunk_size: int | None = None, executor: Executor | None = None,
+             workers: int | None = None, progress: Callable[[int, int], None] | None = None,
+             population: Population | None = None, execution: Execution | None = None,
              on_chunk: Callable[[ChunkResult], None] | None = None,
-             progress: Callable[[int, int], None] | None = None,
              ctx: TestContext | None = None, count_by_stratum=None) -> SimulationResult:
     """Run the design for every examinee and collect their outcomes.
+
+    The simulated examinees are given as ``population`` or by its fields (``true_theta``,
+    ``seed``, ``true_bank``); how the run is carried out as ``execution`` or by its fields
+    (``chunk_size``, ``workers``, ``executor``, ``progress``).
 
     Parameters
     ----------
@@ -492,14 +544,20 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
         Run seed: examinee seeds, test decisions and simulated answers derive from it.
     true_bank : ItemBank, optional
         Bank the answers are drawn from (same item ids), default ``bank``.
-    on_chunk : callable, optional
-        Called with each :class:`ChunkResult` in examinee order (e.g. to stream the
-        administrations to a file); the chunk is dropped afterwards.
+    chunk_size, workers, executor : see :class:`Execution`
+        Default: chunks of :data:`DEFAULT_CHUNK` examinees, in this process.
     progress : callable, optional
         Called as ``progress(done, total)`` with the number of examinees whose test has
         ended: after each round of answers when the run is in process (a single chunk
         can take many seconds), after each chunk when it runs on workers.  ``done`` reaches
         ``total`` once, when the run is complete (final reports included).
+    population : Population, optional
+        Instead of ``true_theta``, ``seed`` and ``true_bank``.
+    execution : Execution, optional
+        Instead of ``chunk_size``, ``workers``, ``executor`` and ``progress``.
+    on_chunk : callable, optional
+        Called with each :class:`ChunkResult` in examinee order (e.g. to stream the
+        administrations to a file); the chunk is dropped afterwards.
     count_by_stratum : float sequence, shape (S - 1,), optional
         Ascending cut points of ability strata: the result then also holds
         ``administered_by_stratum_pair`` and ``offered_by_stratum_pair`` (S, S, n_items),
@@ -509,12 +567,23 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
     Returns
     -------
     SimulationResult
+
+    Raises
+    ------
+    DesignError
+        The design does not fit the bank (the gate of every run).
+    SimulationError
+        Bad settings, located at the parameter (``chunk_size``, ``true_theta``, ...).
     """
-    true_theta = np.asarray(true_theta, dtype=float)
-    if true_theta.ndim != 1 or true_theta.size == 0:
-        raise SimulationError("at least one examinee is needed", "--examinees")
-    if not np.all(np.isfinite(true_theta)):
-        raise SimulationError("true abilities must be finite numbers", "--theta")
+    population, loose = _given_once(population, "population",
+                                    dict(true_theta=true_theta, seed=seed, true_bank=true_bank))
+    if population is None:
+        if true_theta is None or seed is None:
+            raise TypeError("simulate needs the examinees: true_theta and seed, or population=")
+        population = Population(**loose)
+    execution, loose = _given_once(execution, "execution", dict(chunk_size=chunk_size, workers=workers,
+                                                                executor=executor, progress=progress))
+    execution = execution if execution is not None else Execution(**loose)
     parts: list[dict] = []
     administered = np.zeros(bank.n_items, dtype=np.int64)
     offered = np.zeros(bank.n_items, dtype=np.int64)
@@ -523,14 +592,15 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
         if any(not np.isfinite(c) for c in count_by_stratum) or any(
                 b <= a for a, b in zip(count_by_stratum, count_by_stratum[1:])):
             raise SimulationError(f"stratum cut points must be finite and ascending, got {list(count_by_stratum)}",
-                                  "--conditional-strata")
+                                  "count_by_stratum")
         n_strata = len(count_by_stratum) + 1
         given_s = np.zeros((n_strata, n_strata, bank.n_items), dtype=np.int64)
         offered_s = given_s.copy()
     else:
         given_s = offered_s = None
     done = 0
-    total = int(true_theta.size)
+    total = population.size
+    progress = execution.progress
     on_round = None
     if progress is not None:
         def on_round(start, finished):
@@ -538,9 +608,8 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
             progress(min(start + finished, total - 1), total)
     keep = ("seeds", "true_theta", "theta", "se", "n_scored", "n_pretest", "stop_reason",
             "scaled_score", "at_or_above", "area_counts")
-    for chunk in iter_chunks(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
-                             chunk_size=chunk_size, executor=executor, workers=workers, ctx=ctx,
-                             count_by_stratum=count_by_stratum, on_round=on_round):
+    for chunk in iter_chunks(design, bank, population, execution, ctx=ctx, count_by_stratum=count_by_stratum,
+                             on_round=on_round):
         if on_chunk is not None:
             on_chunk(chunk)
         parts.append({k: getattr(chunk, k) for k in keep})
@@ -553,7 +622,7 @@ def simulate(design: Design, bank: ItemBank, *, true_theta, seed: int, true_bank
         if progress is not None:
             progress(done, total)
     joined = {k: np.concatenate([p[k] for p in parts], axis=0) for k in keep}
-    return SimulationResult(design=design, bank=bank, seed=int(seed), administered=administered,
+    return SimulationResult(design=design, bank=bank, seed=int(population.seed), administered=administered,
                             offered=offered, administered_by_stratum_pair=given_s,
                             offered_by_stratum_pair=offered_s,
                             **joined)

@@ -4,7 +4,7 @@ Sympson-Hetter exposure control (Sympson & Hetter 1985) can only hold back an it
 item goes through its lottery.  Some administrations never do:
 
 * **the first item**: a design that draws the first item at random among the top
-  ``first_items_from_top`` items at the starting ability gives it without a lottery (the
+  ``first_item_candidates`` items at the starting ability gives it without a lottery (the
   random draw is the exposure control of the opening), so each of those candidates goes
   to about 1 / candidates of the examinees before any parameter can act;
 * **item sets**: once a set is entered its other members follow without a lottery, so
@@ -42,7 +42,7 @@ _NOTABLE_SHARE = 0.25
 
 def first_item_candidates(design: Design) -> int:
     """How many items the opening draws the first item from (1: the best one, by its lottery)."""
-    return int(design.opening.first_items_from_top)
+    return int(design.opening.first_item_candidates)
 
 
 def first_item_skips_lottery(design: Design) -> bool:
@@ -127,7 +127,7 @@ def opening_and_area_limits(design: Design, bank: ItemBank, target: float) -> li
             f"the first item is drawn without a lottery among the {k_first} most informative items at the "
             f"starting ability, so each of them goes to about 1/{k_first} = {1 / k_first:.2f} of the examinees, "
             f"above the target {target:g}; draw the first item among at least {math.ceil(1 / target)} items "
-            "([opening] first_items_from_top)")
+            "([opening] first_item_candidates)")
     for name, (floor, n, minimum) in area_floors(design, bank).items():
         if floor > target:
             need = math.ceil(minimum / target)
@@ -304,7 +304,7 @@ def diagnose(design: Design, bank: ItemBank, *, target: float, tolerance: float,
                           f"(the first item is drawn among {k_first})")
             if f >= target:
                 _add(remedies, f"draw the first item among at least {math.ceil(1 / target)} items "
-                               "([opening] first_items_from_top), or among 1 so that its lottery applies")
+                               "([opening] first_item_candidates), or among 1 so that its lottery applies")
         if fo > 0 and fo >= _NOTABLE_SHARE * r:
             name = str(bank.item_set[i])
             members = np.flatnonzero(np.asarray(bank.item_set) == name)

@@ -14,7 +14,7 @@ parameters do not fit the noise of one sample.  The file written is the
 
     [exposure]
     method = "sympson_hetter"
-    parameters = "PATH"
+    parameters_file = "PATH"
 
 The conditional variant (Stocking & Lewis 1998) holds the exposure rate at the target
 *within each ability stratum*: P(given_i | theta in stratum s) <= r.  Each simulated
@@ -42,7 +42,7 @@ row per item and stratum.
 Administrations without a lottery
 ---------------------------------
 A design that draws its first item at random among several candidates
-(``first_items_from_top`` > 1) gives that item without a lottery: the random draw is the
+(``first_item_candidates`` > 1) gives that item without a lottery: the random draw is the
 opening's own exposure control.  Those administrations count as selections all the same,
 so the plain step, ``k = r / P(selected)``, settles where P(given) = P(first) +
 k (P(selected) - P(first)) > r: on the licensing exam the five first-item candidates
@@ -65,11 +65,12 @@ import numpy as np
 
 from ..bank.item_bank import ItemBank
 from ..design.bank_fit import require_design_fits_bank
-from ..design.types import Design
+from ..design.types import Design, ExposureMethod
 from ..errors import AdaptiveEngineError
 from ..files import check_target, write_text
-from .engine import DEFAULT_CHUNK, simulate, stratum_of
+from .engine import Execution, simulate, stratum_of
 from .exposure_diagnosis import ExposureDiagnosis, LotteryFreeCounts, diagnose
+from .population import Population
 
 
 @attrs.frozen(kw_only=True, eq=False)
@@ -114,16 +115,21 @@ def _iteration_seed(seed: int, iteration: int) -> int:
                >> np.uint64(1))
 
 
-def _iteration_progress(progress, iteration: int, n: int, max_iterations: int):
-    """The run's ``progress`` seen from one iteration's simulation (None passes through)."""
+def _iteration(population: Population, execution: Execution, iteration: int,
+               max_iterations: int) -> tuple[Population, Execution]:
+    """One iteration's examinees (fresh random streams: their own seed) and execution (its
+    progress seen as part of the whole calibration)."""
+    population = attrs.evolve(population, seed=_iteration_seed(population.seed, iteration))
+    progress = execution.progress
     if progress is None:
-        return None
+        return population, execution
+    n = population.size
     total = max_iterations * n
 
     def report(done, _n):
         progress(min(iteration * n + done, total - 1), total)  # the bar ends with the calibration
 
-    return report
+    return population, attrs.evolve(execution, progress=report)
 
 
 def _set_members(bank: ItemBank, design: Design) -> list[np.ndarray]:
@@ -221,7 +227,7 @@ def unreachable_target_warning(design: Design, bank: ItemBank, target: float) ->
     return (f"target {target:g} x {n_operational} operational items = {room:g} items per test on average, "
             f"but tests run to {max_items} items (at least {design.stopping.min_items}); the target "
             + ("cannot be reached" if certain else "can be reached only if most tests stop before "
-               f"{room:g} items") + "; raise --target or use a larger bank")
+               f"{room:g} items") + "; raise the target or use a larger bank")
 
 
 def with_parameters(design: Design, parameters: dict, *, path: str = "calibrated", strata=()) -> Design:
@@ -229,7 +235,7 @@ def with_parameters(design: Design, parameters: dict, *, path: str = "calibrated
 
     ``strata``: interior cut points when ``parameters`` are conditional on ability.
     """
-    exposure = attrs.evolve(design.exposure, method="sympson_hetter", parameters=path)
+    exposure = attrs.evolve(design.exposure, method=ExposureMethod.SYMPSON_HETTER, parameters_file=path)
     return attrs.evolve(design, exposure=exposure, exposure_parameters=dict(parameters),
                         exposure_strata=tuple(strata))
 
@@ -242,7 +248,7 @@ def parse_strata(text: str) -> tuple:
         try:
             cuts.append(float(part))
         except ValueError:
-            raise AdaptiveEngineError(f"cut point {part!r} is not a number", "--conditional-strata") from None
+            raise AdaptiveEngineError(f"cut point {part!r} is not a number", "strata") from None
     return _check_strata(cuts)
 
 
@@ -251,20 +257,18 @@ def _check_strata(strata) -> tuple:
     try:
         cuts = tuple(float(c) for c in strata)
     except (TypeError, ValueError):
-        raise AdaptiveEngineError(f"stratum cut points must be numbers, got {strata!r}",
-                                  "--conditional-strata") from None
+        raise AdaptiveEngineError(f"stratum cut points must be numbers, got {strata!r}", "strata") from None
     if not cuts:
-        raise AdaptiveEngineError("give at least one cut point for conditional strata", "--conditional-strata")
+        raise AdaptiveEngineError("give at least one cut point for conditional strata", "strata")
     if not all(np.isfinite(cuts)) or any(b <= a for a, b in zip(cuts, cuts[1:])):
         raise AdaptiveEngineError(f"stratum cut points must be finite and strictly ascending, got {list(cuts)}",
-                                  "--conditional-strata")
+                                  "strata")
     return cuts
 
 
-def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, true_theta, seed: int,
-                             max_iterations: int = 15, tolerance: float = 0.02,
-                             chunk_size: int = DEFAULT_CHUNK, workers: int = 1, executor=None,
-                             progress=None, strata=None) -> ExposureCalibration:
+def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, population: Population,
+                             execution: Execution = Execution(), max_iterations: int = 15, tolerance: float = 0.02,
+                             strata=None) -> ExposureCalibration:
     """Iterate Sympson-Hetter exposure parameters by simulation.
 
     Parameters
@@ -273,9 +277,15 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
         The design to protect (its exposure section is replaced by Sympson-Hetter).
     target : float in (0, 1]
         The largest exposure rate allowed (r_max).
-    true_theta : float array, shape (N,)
-        Abilities of the simulated population (one draw of N per iteration would be
-        equivalent; the same abilities with fresh random streams are used).
+    population : Population
+        The simulated population: its abilities are used in every iteration, each with
+        fresh random streams (a seed derived from the population's); their answers come
+        from its true bank.
+    execution : Execution
+        Chunks, workers, executor; its ``progress`` is called as ``progress(done, total)``
+        with the simulated examinees so far, over at most ``max_iterations`` iterations
+        (``total`` = max_iterations x N), and reaches ``total`` when the calibration ends,
+        early or not.
     max_iterations : int
     tolerance : float
         Converged when the largest exposure rate is at most ``target + tolerance``.
@@ -283,23 +293,17 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
         Interior cut points of ability strata, ascending: calibrate parameters conditional
         on ability (Stocking & Lewis 1998), one per item and stratum, so that within every
         true-ability stratum no item's exposure rate exceeds the target.  Every stratum
-        must hold some of the ``true_theta``.
-    progress : callable, optional
-        Called as ``progress(done, total)`` with the simulated examinees so far, over at
-        most ``max_iterations`` iterations (``total`` = max_iterations x N); it reaches
-        ``total`` when the calibration ends, early or not.
+        must hold some of the population's abilities.
     """
     if not 0 < target <= 1:
-        raise AdaptiveEngineError(f"the target exposure rate must lie in (0, 1], got {target}", "--target")
+        raise AdaptiveEngineError(f"the target exposure rate must lie in (0, 1], got {target}", "target")
     if max_iterations < 1:
-        raise AdaptiveEngineError(f"max_iterations must be >= 1, got {max_iterations}", "--iterations")
-    true_theta = np.asarray(true_theta, dtype=float)
+        raise AdaptiveEngineError(f"max_iterations must be >= 1, got {max_iterations}", "max_iterations")
     if strata is not None:
-        return _calibrate_conditional(design, bank, target=target, true_theta=true_theta, seed=seed,
+        return _calibrate_conditional(design, bank, target=target, population=population, execution=execution,
                                       strata=_check_strata(strata), max_iterations=max_iterations,
-                                      tolerance=tolerance, chunk_size=chunk_size, workers=workers,
-                                      executor=executor, progress=progress)
-    n = true_theta.size
+                                      tolerance=tolerance)
+    n = population.size
     operational = np.asarray(bank.status) == "operational"
     k = np.ones(bank.n_items)
     history = []
@@ -310,9 +314,8 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
         params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
         current = with_parameters(design, params)
         counts = LotteryFreeCounts(design, bank)
-        result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
-                          chunk_size=chunk_size, workers=workers, executor=executor, on_chunk=counts,
-                          progress=_iteration_progress(progress, it, n, max_iterations))
+        examinees, run = _iteration(population, execution, it, max_iterations)
+        result = simulate(current, bank, population=examinees, execution=run, on_chunk=counts)
         given = result.administered / n
         selected = result.offered / n
         max_rate = float(given[operational].max())
@@ -325,8 +328,8 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
             break
         used = k
         k = _updated(k, given, selected, target, sets, free=counts.first[0] / n)
-    if progress is not None:
-        progress(max_iterations * n, max_iterations * n)
+    if execution.progress is not None:
+        execution.progress(max_iterations * n, max_iterations * n)
     params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
     diagnosis = None
     if not converged:
@@ -337,17 +340,18 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, t
                                target=float(target), tolerance=float(tolerance), diagnosis=diagnosis)
 
 
-def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, max_iterations, tolerance,
-                           chunk_size, workers, executor, progress) -> ExposureCalibration:
+def _calibrate_conditional(design, bank, *, target, population, execution, strata, max_iterations,
+                           tolerance) -> ExposureCalibration:
     """Sympson-Hetter iterations per true-ability stratum (Stocking & Lewis 1998)."""
     n_strata = len(strata) + 1
+    true_theta = population.true_theta
     size = np.bincount(stratum_of(true_theta, strata), minlength=n_strata)  # N_s
     empty = np.flatnonzero(size == 0)
     if empty.size:
         bounds = (-np.inf,) + strata + (np.inf,)
         shown = ", ".join(f"[{bounds[s]:g}, {bounds[s + 1]:g})" for s in empty)
         raise AdaptiveEngineError(f"no simulated examinee has a true ability in the stratum {shown}; "
-                                  "move the cut points or widen the population", "--conditional-strata")
+                                  "move the cut points or widen the population", "strata")
     operational = np.asarray(bank.status) == "operational"
     op_rows = np.flatnonzero(operational)
     k = np.ones((n_strata, bank.n_items))
@@ -362,10 +366,9 @@ def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, ma
     for it in range(max_iterations):
         current = with_parameters(design, as_params(), strata=strata)
         counts = LotteryFreeCounts(design, bank, strata)
-        result = simulate(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
-                          chunk_size=chunk_size, workers=workers, executor=executor, count_by_stratum=strata,
-                          on_chunk=counts,
-                          progress=_iteration_progress(progress, it, true_theta.size, max_iterations))
+        examinees, run = _iteration(population, execution, it, max_iterations)
+        result = simulate(current, bank, population=examinees, execution=run, count_by_stratum=strata,
+                          on_chunk=counts)
         given = result.administered_by_stratum / size[:, None]  # P(A_i | true stratum s)
         by_stratum = given[:, operational].max(axis=1)
         max_rate = float(by_stratum.max())
@@ -381,8 +384,9 @@ def _calibrate_conditional(design, bank, *, target, true_theta, seed, strata, ma
         used = k
         k = _updated_conditional(k, result.administered_by_stratum_pair, result.offered_by_stratum_pair,
                                  size, target, sets, free=counts.first)
-    if progress is not None:
-        progress(max_iterations * true_theta.size, max_iterations * true_theta.size)
+    if execution.progress is not None:
+        total = max_iterations * population.size
+        execution.progress(total, total)
     diagnosis = None
     if not converged:
         diagnosis = diagnose(design, bank, target=target, tolerance=tolerance, history=history, given=given,
@@ -419,13 +423,12 @@ def write_parameters(parameters: dict, path: str | Path, *, strata=()) -> Path:
     return write_text(path, parameters_csv(parameters, strata))
 
 
-def run_calibration(design: Design, bank: ItemBank, *, target: float, out_file, true_theta, seed: int,
-                    max_iterations: int = 15, tolerance: float = 0.02, workers: int = 1,
-                    strata=None, progress=None) -> ExposureCalibration:
+def run_calibration(design: Design, bank: ItemBank, *, target: float, out_file, population: Population,
+                    execution: Execution = Execution(), max_iterations: int = 15, tolerance: float = 0.02,
+                    strata=None) -> ExposureCalibration:
     """:func:`calibrate_sympson_hetter`, then write the parameters file (conditional with ``strata``)."""
     check_target(out_file)  # before the long run: a bad folder fails at once
-    cal = calibrate_sympson_hetter(design, bank, target=target, true_theta=true_theta, seed=seed,
-                                   max_iterations=max_iterations, tolerance=tolerance, workers=workers,
-                                   strata=strata, progress=progress)
+    cal = calibrate_sympson_hetter(design, bank, target=target, population=population, execution=execution,
+                                   max_iterations=max_iterations, tolerance=tolerance, strata=strata)
     write_parameters(cal.parameters, out_file, strata=cal.strata)
     return cal

@@ -529,7 +529,7 @@ def _exposure_story(result, summary, first_counts, follow_counts) -> list[str]:
                     how = "picks its first item among the few items most informative there"
                 why.append(f"<li><b>The first item.</b> Every test opens at {start} and {how}: {names} "
                            "(share of examinees who got it first). More first-item candidates "
-                           "([opening] first_items_from_top) spread the opening.</li>")
+                           "([opening] first_item_candidates) spread the opening.</li>")
         if follow_counts is not None and design.blueprint.item_sets:
             sets = []
             for name in dict.fromkeys(str(bank.item_set[i]) for i in over if bank.item_set[i]):

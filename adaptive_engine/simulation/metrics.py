@@ -165,7 +165,7 @@ def exposure_target(value: float | None) -> float:
     Raises
     ------
     AdaptiveEngineError
-        Located at ``--exposure-target`` when the value is not a rate in (0, 1].
+        Located at ``exposure_target`` when the value is not a rate in (0, 1].
     """
     if value is None:
         return DEFAULT_EXPOSURE_TARGET
@@ -173,10 +173,10 @@ def exposure_target(value: float | None) -> float:
         target = float(value)
     except (TypeError, ValueError):
         raise AdaptiveEngineError(f"the exposure target must be a number in (0, 1], got {value!r}",
-                                  "--exposure-target") from None
+                                  "exposure_target") from None
     if not (0.0 < target <= 1.0):
         raise AdaptiveEngineError(f"the exposure target must be a rate in (0, 1], got {value!r}",
-                                  "--exposure-target")
+                                  "exposure_target")
     return target
 
 

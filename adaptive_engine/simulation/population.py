@@ -1,5 +1,9 @@
 """Synthetic examinees for simulation: where their true abilities come from.
 
+A run's simulated examinees are one value object, :class:`Population`: their true
+abilities, the run seed, and the bank their answers are drawn from.  Its abilities are
+given directly or drawn from an ability specification (:meth:`Population.drawn`).
+
 An ability specification is a short text, as typed on the command line:
 
 ``normal:MEAN,SD``
@@ -24,13 +28,18 @@ from __future__ import annotations
 
 import csv
 import math
+import numbers
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import attrs
 import numpy as np
 
-from ..errors import AdaptiveEngineError
+from ..errors import AdaptiveEngineError, SimulationError
 from ..files import decode_input_text, read_input_bytes
+
+if TYPE_CHECKING:
+    from ..bank.item_bank import ItemBank
 
 KINDS = ("normal", "uniform", "grid", "file")
 #: Most simulated examinees in one run.  Results are held in memory (about 300 bytes per
@@ -39,12 +48,14 @@ KINDS = ("normal", "uniform", "grid", "file")
 MAX_EXAMINEES = 1_000_000
 #: Largest ability file read, in bytes (16 MiB: a million abilities and more).
 MAX_ABILITY_FILE_BYTES = 16 * 2**20
+#: Examinees of a run when neither the caller nor the ability specification says.
+DEFAULT_EXAMINEES = 1000
 #: Sub-stream of the run seed that true abilities are drawn from.
 _ABILITY_STREAM = 0x7E7A
 
 
 class AbilitySpecError(AdaptiveEngineError):
-    """An ability specification (``--theta``) cannot be read."""
+    """An ability specification cannot be read (located at ``abilities``)."""
 
 
 @attrs.frozen(kw_only=True)
@@ -84,7 +95,7 @@ class AbilitySpec:
         larger than the count they fix (and take its first ``n`` entries when smaller).
         """
         if n < 0:
-            raise AbilitySpecError(f"the number of examinees must be >= 0, got {n}", "--examinees")
+            raise AbilitySpecError(f"the number of examinees must be >= 0, got {n}", "n_examinees")
         _check_count(n)
         if self.kind == "normal":
             mean, sd = self.values
@@ -106,7 +117,7 @@ def examinee_count(spec: AbilitySpec, n: int | None, *, default: int) -> int:
     Raises
     ------
     AbilitySpecError
-        Located at ``--examinees`` when ``n`` is below 1 or differs from the count a
+        Located at ``n_examinees`` when ``n`` is below 1 or differs from the count a
         ``grid:``/``file:`` specification fixes (cycling its list would give the grid
         points, or the file's rows, unequal numbers of examinees).
     """
@@ -114,12 +125,12 @@ def examinee_count(spec: AbilitySpec, n: int | None, *, default: int) -> int:
     if n is None:
         return _check_count(int(fixed if fixed is not None else default))
     if n < 1:
-        raise AbilitySpecError(f"the number of examinees must be >= 1, got {n}", "--examinees")
+        raise AbilitySpecError(f"the number of examinees must be >= 1, got {n}", "n_examinees")
     _check_count(n)
     if fixed is not None and n != fixed:
         what = ("POINTS x PER_POINT" if spec.kind == "grid" else "one per row of the file")
-        raise AbilitySpecError(f"--theta {spec.text} fixes {fixed} examinees ({what}), not {n}; "
-                               f"leave --examinees out or give {fixed}", "--examinees")
+        raise AbilitySpecError(f"the abilities {spec.text} fix {fixed} examinees ({what}), not {n}; "
+                               f"leave the number of examinees out or give {fixed}", "n_examinees")
     return int(n)
 
 
@@ -127,7 +138,7 @@ def _check_count(n: int) -> int:
     """``n`` itself, refused beyond :data:`MAX_EXAMINEES` before anything is allocated."""
     if n > MAX_EXAMINEES:
         raise AbilitySpecError(f"at most {MAX_EXAMINEES:,} examinees per run, got {n:,}; "
-                               "run a larger study as several runs with different seeds", "--examinees")
+                               "run a larger study as several runs with different seeds", "n_examinees")
     return n
 
 
@@ -138,15 +149,15 @@ def _generator(seed: int) -> np.random.Generator:
 def _numbers(body: str, count: int, text: str) -> list[float]:
     parts = [p.strip() for p in body.split(",")]
     if len(parts) != count or not all(parts):
-        raise AbilitySpecError(f"expected {count} comma-separated numbers after the colon in {text!r}", "--theta")
+        raise AbilitySpecError(f"expected {count} comma-separated numbers after the colon in {text!r}", "abilities")
     out = []
     for p in parts:
         try:
             x = float(p)
         except ValueError:
-            raise AbilitySpecError(f"{p!r} is not a number in {text!r}", "--theta") from None
+            raise AbilitySpecError(f"{p!r} is not a number in {text!r}", "abilities") from None
         if not math.isfinite(x):
-            raise AbilitySpecError(f"{p!r} is not a finite number in {text!r}", "--theta")
+            raise AbilitySpecError(f"{p!r} is not a finite number in {text!r}", "abilities")
         out.append(x)
     return out
 
@@ -167,29 +178,29 @@ def parse_ability_spec(text: str, *, base_dir: str | Path | None = None) -> Abil
     if not sep or kind not in KINDS:
         raise AbilitySpecError(
             f"unknown ability specification {text!r}; use normal:MEAN,SD, uniform:LO,HI, "
-            "grid:LO,HI,POINTS:PER_POINT or file:PATH", "--theta")
+            "grid:LO,HI,POINTS:PER_POINT or file:PATH", "abilities")
     if kind == "normal":
         mean, sd = _numbers(body, 2, text)
         if sd < 0:
-            raise AbilitySpecError(f"the SD must be >= 0 in {text!r}", "--theta")
+            raise AbilitySpecError(f"the SD must be >= 0 in {text!r}", "abilities")
         return AbilitySpec(kind=kind, values=(mean, sd), text=text)
     if kind == "uniform":
         lo, hi = _numbers(body, 2, text)
         if hi < lo:
-            raise AbilitySpecError(f"LO must not exceed HI in {text!r}", "--theta")
+            raise AbilitySpecError(f"LO must not exceed HI in {text!r}", "abilities")
         return AbilitySpec(kind=kind, values=(lo, hi), text=text)
     if kind == "grid":
         range_part, sep2, per = body.partition(":")
         if not sep2:
-            raise AbilitySpecError(f"a grid needs LO,HI,POINTS:PER_POINT, got {text!r}", "--theta")
+            raise AbilitySpecError(f"a grid needs LO,HI,POINTS:PER_POINT, got {text!r}", "abilities")
         lo, hi, points = _numbers(range_part, 3, text)
         (per_point,) = _numbers(per, 1, text)
         if hi < lo or points < 1 or per_point < 1 or points != int(points) or per_point != int(per_point):
             raise AbilitySpecError(
-                f"a grid needs LO <= HI and whole POINTS, PER_POINT >= 1, got {text!r}", "--theta")
+                f"a grid needs LO <= HI and whole POINTS, PER_POINT >= 1, got {text!r}", "abilities")
         if points * per_point > MAX_EXAMINEES:
             raise AbilitySpecError(f"the grid {text!r} asks for {points * per_point:.4g} examinees "
-                                   f"(POINTS x PER_POINT); at most {MAX_EXAMINEES:,}", "--theta")
+                                   f"(POINTS x PER_POINT); at most {MAX_EXAMINEES:,}", "abilities")
         return AbilitySpec(kind=kind, values=(lo, hi, int(points), int(per_point)), text=text)
     path = Path(body.strip())
     if base_dir is not None and not path.is_absolute():
@@ -241,3 +252,65 @@ def read_ability_file(path: str | Path) -> list[float]:
         raise AbilitySpecError(f"the ability file lists {len(out):,} abilities, one per examinee; "
                                f"at most {MAX_EXAMINEES:,}", f"{path.name}")
     return out
+
+
+def _theta_array(value) -> np.ndarray:
+    try:
+        return np.asarray(value, dtype=float)
+    except (TypeError, ValueError):
+        raise SimulationError(f"true abilities must be numbers, got {value!r}", "true_theta") from None
+
+
+@attrs.frozen(kw_only=True, eq=False)
+class Population:
+    """The simulated examinees of a run.
+
+    Attributes
+    ----------
+    true_theta : float array, shape (N,)
+        True abilities: finite, at least one.
+    seed : int
+        Run seed: examinee seeds, test decisions and simulated answers derive from it.
+    true_bank : ItemBank, optional
+        Bank the answers are drawn from (the operational bank's item ids; e.g.
+        :func:`adaptive_engine.simulation.perturbed_bank`); None: the operational bank.
+    abilities : AbilitySpec, optional
+        The specification the abilities were drawn from (for the record of a study).
+
+    Raises
+    ------
+    SimulationError
+        Located at ``true_theta`` or ``seed``.
+    """
+
+    true_theta: np.ndarray = attrs.field(converter=_theta_array)
+    seed: int
+    true_bank: "ItemBank | None" = None
+    abilities: AbilitySpec | None = None
+
+    def __attrs_post_init__(self) -> None:
+        theta = self.true_theta
+        if theta.ndim != 1 or theta.size == 0:
+            raise SimulationError("at least one examinee is needed: true_theta has shape (N,), N >= 1, "
+                                  f"got shape {theta.shape}", "true_theta")
+        if not np.all(np.isfinite(theta)):
+            raise SimulationError("true abilities must be finite numbers", "true_theta")
+        _check_count(theta.size)
+        if isinstance(self.seed, (bool, np.bool_)) or not isinstance(self.seed, numbers.Integral):
+            raise SimulationError(f"the seed must be a whole number, got {self.seed!r}", "seed")
+
+    @classmethod
+    def drawn(cls, abilities: AbilitySpec, *, seed: int, n_examinees: int | None = None,
+              default: int = DEFAULT_EXAMINEES, true_bank: "ItemBank | None" = None) -> "Population":
+        """Examinees whose abilities are drawn from ``abilities`` with the run seed.
+
+        ``n_examinees``: None takes the count a ``grid:``/``file:`` specification fixes,
+        else ``default`` (:func:`examinee_count`).
+        """
+        n = examinee_count(abilities, n_examinees, default=default)
+        return cls(true_theta=abilities.draw(n, seed), seed=seed, true_bank=true_bank, abilities=abilities)
+
+    @property
+    def size(self) -> int:
+        """Number of examinees, N."""
+        return int(self.true_theta.size)

@@ -34,7 +34,6 @@ import json
 import math
 import shutil
 from pathlib import Path
-from typing import Callable
 
 import attrs
 import numpy as np
@@ -42,21 +41,15 @@ import numpy as np
 from ..bank.item_bank import ItemBank
 from ..design.bank_fit import design_warnings, require_design_fits_bank
 from ..design.types import Design
+from ..errors import Problem, SimulationError
 from ..files import StagedFiles, prepare_folder
 from . import metrics
-from .engine import (
-    DEFAULT_CHUNK,
-    ChunkResult,
-    SimulationResult,
-    effective_chunk_size,
-    simulate,
-    true_item_rows,
-)
+from .engine import ChunkResult, Execution, SimulationResult, simulate, true_item_rows
 from .exposure_diagnosis import LotteryFreeCounts
-from .population import AbilitySpec, examinee_count
+from .population import DEFAULT_EXAMINEES, Population
 
-#: Examinees of a study when neither ``--examinees`` nor the ability spec says.
-DEFAULT_EXAMINEES = 1000
+__all__ = ["DEFAULT_EXAMINEES", "FILES", "Study", "examinees_csv", "items_csv", "read_standard_errors", "rows_csv",
+           "run_study", "summary_table"]
 
 FILES = ("summary.json", "examinees.csv", "administrations.csv", "items.csv", "conditional.csv", "report.html")
 
@@ -156,29 +149,27 @@ def rows_csv(rows: list[dict]) -> str:
     return buf.getvalue()
 
 
-def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_examinees: int | None, seed: int,
-              out_dir: str | Path | None, true_bank: ItemBank | None = None, workers: int = 1,
-              executor=None, chunk_size: int = DEFAULT_CHUNK, exposure_target: float | None = None,
-              write_administrations: bool = True, progress: Callable[[int, int], None] | None = None,
-              title: str = "") -> Study:
+def run_study(design: Design, bank: ItemBank, *, population: Population, out_dir: str | Path | None,
+              execution: Execution = Execution(), exposure_target: float | None = None,
+              write_administrations: bool = True, title: str = "") -> Study:
     """Check, simulate, summarise and (when ``out_dir`` is given) write the study's files.
 
     Parameters
     ----------
-    abilities : AbilitySpec
-        Where true abilities come from; a ``grid:``/``file:`` spec fixes the number of
-        examinees (``n_examinees`` None or equal to it).
-    n_examinees : int or None
-        None: the count the spec fixes, else :data:`DEFAULT_EXAMINEES`.
+    population : Population
+        The simulated examinees (e.g. ``Population.drawn(parse_ability_spec("normal:0,1"),
+        seed=1)``: :data:`DEFAULT_EXAMINEES` of them).
     out_dir : path or None
         Folder for the files (created if needed); None: compute only.
+    execution : Execution
+        Chunks, workers, executor, progress.
     """
     require_design_fits_bank(design, bank)
     warnings = design_warnings(design, bank)
+    true_bank = population.true_bank
     true_item_rows(bank, true_bank)
     exposure_target = metrics.exposure_target(exposure_target)  # checked before any work
-    n = examinee_count(abilities, n_examinees, default=DEFAULT_EXAMINEES)
-    true_theta = abilities.draw(n, seed)
+    n = population.size
     staging = None
     writer = None
     created = False
@@ -199,17 +190,16 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
 
         # a design with ability-conditional exposure parameters is judged stratum by stratum
         strata = design.exposure_strata or None
-        result = simulate(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
-                          chunk_size=chunk_size, executor=executor, workers=workers,
-                          on_chunk=on_chunk, progress=progress, count_by_stratum=strata)
+        result = simulate(design, bank, population=population, execution=execution, on_chunk=on_chunk,
+                          count_by_stratum=strata)
         if writer is not None:
             writer.close()
         summary = metrics.summarize(result, exposure_target=exposure_target)
         summary["settings"] = {
-            "design": design.source, "bank": bank.name, "abilities": abilities.text,
-            "true_bank": None if true_bank is None else true_bank.name, "seed": int(seed),
-            "examinees": int(n), "chunk_size": int(effective_chunk_size(n, chunk_size, workers)),
-            "workers": int(workers),
+            "design": design.source, "bank": bank.name,
+            "abilities": None if population.abilities is None else population.abilities.text,
+            "true_bank": None if true_bank is None else true_bank.name, "seed": int(population.seed),
+            "examinees": int(n), "chunk_size": int(execution.chunk_for(n)), "workers": int(execution.workers),
         }
         conditional = summary["conditional"]
         if staging is not None:
@@ -242,7 +232,7 @@ def run_study(design: Design, bank: ItemBank, *, abilities: AbilitySpec, n_exami
 _SE_COLUMNS = {"se_a": "sd_a", "se_b": "sd_b", "se_c": "sd_c", "se_d": "sd_d"}
 
 
-def read_standard_errors(path: str | Path, bank: ItemBank) -> dict:
+def read_standard_errors(fit_report: str | Path, bank: ItemBank) -> dict:
     """Per-item standard errors from a calibration fit report, as SDs for perturbation.
 
     The report is the CSV ``adaptive-engine calibrate --fit-report`` writes (see
@@ -263,18 +253,16 @@ def read_standard_errors(path: str | Path, bank: ItemBank) -> dict:
     ------
     SimulationError
         Located at ``FILE line N, item ID, COLUMN`` for items not in the bank, repeated
-        items and standard errors that are not finite numbers >= 0.
+        items and standard errors that are not finite numbers >= 0; at ``fit_report`` when
+        the file cannot be read.
     """
-    from ..errors import Problem
-    from .engine import SimulationError
-
-    path = Path(path)
+    path = Path(fit_report)
     try:
         text = path.read_text(encoding="utf-8-sig")
     except FileNotFoundError:
-        raise SimulationError(f"fit report not found: {path}", "--perturb-from") from None
+        raise SimulationError(f"fit report not found: {path}", "fit_report") from None
     except (IsADirectoryError, UnicodeDecodeError) as exc:
-        raise SimulationError(f"cannot read the fit report: {exc}", "--perturb-from") from None
+        raise SimulationError(f"cannot read the fit report: {exc}", "fit_report") from None
     reader = csv.reader(text.splitlines())
     header = [c.strip() for c in next(reader, [])]
     where = path.name

@@ -13,6 +13,7 @@ from __future__ import annotations
 import itertools
 import math
 import tomllib
+import warnings
 
 import attrs
 import numpy as np
@@ -20,11 +21,12 @@ import numpy as np
 from ..bank.item_bank import ItemBank
 from ..design.bank_fit import require_design_fits_bank
 from ..design.toml_file import design_as_dict, design_from_dict
-from ..design.types import Design
-from ..errors import DesignError, Problem
+from ..design.types import RENAMED_KEYS, Design
+from ..errors import DeprecatedDesignKey, DesignError, Problem
 from ..files import StagedFiles, prepare_folder
 from . import metrics
-from .engine import DEFAULT_CHUNK, simulate
+from .engine import Execution, simulate
+from .population import Population
 
 
 @attrs.frozen(kw_only=True)
@@ -45,20 +47,35 @@ def _value(text: str):
 
 
 def parse_variation(text: str) -> Variation:
-    """``SECTION.KEY=V1,V2,...`` (e.g. ``stopping.se=0.25,0.3`` or ``stopping.sprt.alpha=0.05,0.1``)."""
+    """``SECTION.KEY=V1,V2,...`` (e.g. ``stopping.se=0.25,0.3`` or ``stopping.sprt.alpha=0.05,0.1``).
+
+    A renamed key in its old spelling is read under its new name, with a
+    :class:`~adaptive_engine.errors.DeprecatedDesignKey` warning.
+    """
     key, sep, values = str(text).partition("=")
     key = key.strip()
     parts = [v for v in values.split(",") if v.strip()]
     if not sep or "." not in key or not parts:
-        raise DesignError(f"expected SECTION.KEY=V1,V2,..., got {text!r}", "--vary")
-    return Variation(key=key, values=tuple(_value(v) for v in parts))
+        raise DesignError(f"expected SECTION.KEY=V1,V2,..., got {text!r}", "variations")
+    return Variation(key=_current_key(key, stacklevel=3), values=tuple(_value(v) for v in parts))
+
+
+def _current_key(key: str, *, stacklevel: int) -> str:
+    """A dotted design key in its current spelling (an old one read with a warning)."""
+    section, _, name = key.rpartition(".")
+    new = RENAMED_KEYS.get((section, name))
+    if new is None:
+        return key
+    warnings.warn(f"[{section}] {name}: renamed to {new}; the old name is read until the next release",
+                  DeprecatedDesignKey, stacklevel=stacklevel)
+    return f"{section}.{new}"
 
 
 def apply_settings(design: Design, settings: dict) -> Design:
-    """``design`` with dotted keys set to new values (validated like a design file)."""
+    """``design`` with dotted keys set to new values (read like a design file)."""
     data = design_as_dict(design)
     for key, value in settings.items():
-        *path, last = key.split(".")
+        *path, last = _current_key(key, stacklevel=3).split(".")
         node = data
         for part in path:
             nxt = node.get(part) if isinstance(node, dict) else None
@@ -66,16 +83,16 @@ def apply_settings(design: Design, settings: dict) -> Design:
                 if isinstance(node, dict) and part in node:
                     nxt = node[part] = {}  # an optional sub-table the design leaves out
                 else:
-                    raise DesignError(f"the design has no section {part!r}", f"--vary {key}")
+                    raise DesignError(f"the design has no section {part!r}", f"variations {key}")
             node = nxt
         if not isinstance(node, dict) or (last not in node and node):
-            raise DesignError(f"the design has no key {last!r} in [{'.'.join(path)}]", f"--vary {key}")
+            raise DesignError(f"the design has no key {last!r} in [{'.'.join(path)}]", f"variations {key}")
         node[last] = value
     try:
         return design_from_dict(data)
     except DesignError as exc:
         where = ", ".join(settings)
-        raise DesignError([Problem(f"--vary ({where}) {p.location}", p.message) for p in exc.problems]) from None
+        raise DesignError([Problem(f"variations ({where}) {p.location}", p.message) for p in exc.problems]) from None
 
 
 def efficient_frontier(length, rmse, accuracy=None) -> np.ndarray:
@@ -94,12 +111,12 @@ def efficient_frontier(length, rmse, accuracy=None) -> np.ndarray:
     return keep
 
 
-def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_theta, seed: int,
-         true_bank: ItemBank | None = None, chunk_size: int = DEFAULT_CHUNK, workers: int = 1,
-         executor=None, progress=None) -> list[dict]:
+def tune(design: Design, bank: ItemBank, variations: list[Variation], *, population: Population,
+         execution: Execution = Execution()) -> list[dict]:
     """Run every combination of ``variations`` on the same examinees; one row per combination.
 
-    ``progress(done, total)``, when given, counts simulated examinees over all
+    ``population``: the simulated examinees, the same for every combination.
+    ``execution.progress(done, total)``, when given, counts simulated examinees over all
     combinations (``total`` = combinations x examinees).
 
     Returns
@@ -110,24 +127,24 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, true_th
         and ``frontier`` (bool).
     """
     if not variations:
-        raise DesignError("give at least one --vary SECTION.KEY=V1,V2,...", "--vary")
+        raise DesignError("give at least one variation SECTION.KEY=V1,V2,...", "variations")
     keys = [v.key for v in variations]
     if len(set(keys)) != len(keys):
-        raise DesignError("a key is varied twice", "--vary")
+        raise DesignError("a key is varied twice", "variations")
     combos = list(itertools.product(*[v.values for v in variations]))
     designs = [apply_settings(design, dict(zip(keys, combo))) for combo in combos]
     for d in designs:  # every variant must fit before any work starts
         require_design_fits_bank(d, bank)
     rows = []
-    n = int(np.size(true_theta))
+    n = population.size
     total = len(combos) * n
+    progress = execution.progress
     for k, (combo, d) in enumerate(zip(combos, designs)):
         inner = None
         if progress is not None:
             def inner(done, _n, base=k * n):
                 progress(base + done, total)
-        result = simulate(d, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
-                          chunk_size=chunk_size, workers=workers, executor=executor, progress=inner)
+        result = simulate(d, bank, population=population, execution=attrs.evolve(execution, progress=inner))
         s = metrics.summarize(result)
         row = dict(zip(keys, combo))
         row.update(mean_length=s["mean_length"], sd_length=s["length"]["sd_length"],
@@ -201,8 +218,8 @@ def tradeoff_figures(rows: list[dict], keys: list[str]) -> list | None:
     return out
 
 
-def run_tuning_study(design: Design, bank: ItemBank, variations: list[Variation], *, true_theta, seed: int,
-                     out_dir, true_bank: ItemBank | None = None, workers: int = 1, progress=None) -> list[dict]:
+def run_tuning_study(design: Design, bank: ItemBank, variations: list[Variation], *, population: Population,
+                     out_dir, execution: Execution = Execution()) -> list[dict]:
     """:func:`tune`, then write ``tuning.csv``, ``tuning.json`` and ``tuning.html`` into ``out_dir``."""
     import json
 
@@ -210,13 +227,12 @@ def run_tuning_study(design: Design, bank: ItemBank, variations: list[Variation]
     from .study import rows_csv
 
     out, _ = prepare_folder(out_dir)  # before the long run: a bad folder fails at once
-    rows = tune(design, bank, variations, true_theta=true_theta, seed=seed, true_bank=true_bank,
-                workers=workers, progress=progress)
+    rows = tune(design, bank, variations, population=population, execution=execution)
     keys = [v.key for v in variations]
     # every file is complete before any is renamed into place
     texts = {
         "tuning.csv": rows_csv(rows),
-        "tuning.json": json.dumps({"seed": int(seed), "examinees": int(np.size(true_theta)), "varied": keys,
+        "tuning.json": json.dumps({"seed": int(population.seed), "examinees": population.size, "varied": keys,
                                    "rows": rows}, indent=2, allow_nan=False, default=float) + "\n",
         "tuning.html": tuning_report_html(rows, tradeoff_figures(rows, keys), varied=keys,
                                           title=f"Tuning {design.source or 'a design'}: " + ", ".join(keys)),
