@@ -1,6 +1,7 @@
 """Tests of the live session controller (adaptive_engine.live.session) on the demo banks.
 
-The demo banks and designs are test input only.  What is checked against outside sources:
+The tests that take the ``store`` fixture run on both backends, SQLite and PostgreSQL
+(``store_backends.py``).  The demo banks and designs are test input only.  What is checked against outside sources:
 the content rules (never an item twice, enemy items, blueprint maximums, minimum length)
 as stated by Kingsbury & Zara (1989) for constrained CAT; the live driver reproducing the
 simulation driver item by item (the decision kernel run on a batch of many examinees) --
@@ -35,6 +36,7 @@ from adaptive_engine.live.session import (
     submit_answer,
 )
 from adaptive_engine.live.store import open_store
+from store_backends import BACKENDS, store_location
 
 ROOT = Path(__file__).resolve().parents[1]
 LICENSING = read_design(ROOT / "simulations" / "licensing_exam.toml")
@@ -68,11 +70,13 @@ def run_session(store, design, bank, *, seed, theta, answer_seed, cache=None, re
     return replies
 
 
-@pytest.fixture(scope="module")
-def store(tmp_path_factory):
-    s = open_store(tmp_path_factory.mktemp("session") / "store.db")
-    yield s
-    s.close()
+@pytest.fixture(scope="module", params=BACKENDS)
+def store(request, tmp_path_factory):
+    """One store per backend for the module (SQLite file; PostgreSQL schema of its own)."""
+    with store_location(request.param, tmp_path_factory.mktemp("session")) as location:
+        s = open_store(location)
+        yield s
+        s.close()
 
 
 def _walk(obj):
