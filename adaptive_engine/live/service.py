@@ -182,14 +182,15 @@ class StoreUnavailable(Exception):
 
 
 class TokenSource:
-    """The token file, read again when it changes (checked at most once a second).
+    """The token file, read again when it changes (checked at most every ``check_every`` seconds).
 
     A file that becomes unreadable or malformed is logged and the tokens read last stay
     in force, so a typo made while rotating tokens does not lock everyone out.
     """
 
-    def __init__(self, path: str):
+    def __init__(self, path: str, *, check_every: float = 1.0):
         self.path = path
+        self.check_every = check_every
         self.table: TokenTable = read_tokens(path)
         self._stamp = self._stat()
         self._checked = time.monotonic()
@@ -203,7 +204,7 @@ class TokenSource:
 
     def current(self) -> TokenTable:
         now = time.monotonic()
-        if now - self._checked < 1.0:
+        if now - self._checked < self.check_every:
             return self.table
         with self._lock:
             self._checked = now
