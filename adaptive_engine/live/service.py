@@ -433,6 +433,9 @@ class Service:
         return JSONResponse(reply, status_code=201, headers={
             **_NO_STORE, "Location": f"/v1/sessions/{reply['session_id']}"})
 
+    async def sessions_path(self, request: Request) -> Response:
+        return await (self.start(request) if request.method == "POST" else self.sessions(request))
+
     async def answer(self, request: Request) -> Response:
         self.authorize(request, "delivery")
         session_id = request.path_params["session_id"]
@@ -545,8 +548,8 @@ def create_app(settings: ServiceSettings, *, configure_store: Callable[[SessionS
                        ).response(request)
 
     routes = [
-        Route("/v1/sessions", service.start, methods=["POST"]),
-        Route("/v1/sessions", service.sessions, methods=["GET"]),
+        # one route per path, so that a 405 lists every method of the path in Allow
+        Route("/v1/sessions", service.sessions_path, methods=["GET", "POST"]),
         Route("/v1/sessions/{session_id}/answers", service.answer, methods=["POST"]),
         Route("/v1/sessions/{session_id}/result", service.result, methods=["GET"]),
         Route("/v1/sessions/{session_id}", service.status, methods=["GET"]),
