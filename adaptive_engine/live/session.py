@@ -127,6 +127,11 @@ class ProcessCache:
             self._states.move_to_end((store.key, session_id))
             return hit[1]
 
+    def latest(self, store: SessionStore, session_id: str) -> tuple[int, KernelState] | None:
+        """``(seq, state)`` cached for the session, however old (None when none is)."""
+        with self._lock:
+            return self._states.get((store.key, session_id))
+
     def keep(self, store: SessionStore, session_id: str, seq: int, state: KernelState) -> None:
         with self._lock:
             self._states[(store.key, session_id)] = (seq, state)
@@ -566,6 +571,12 @@ def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
                   cache: ProcessCache | None = None, rules: RuleSet | None = None) -> KernelState:
     """The kernel state of a stored session: cached if up to date, else replayed from the log.
 
+    A cached state that other processes have moved on since (a session answered on several
+    servers in turn) is brought up to date by answering it the answers it lacks, in order,
+    as :func:`~adaptive_engine.kernel.cycle.rebuild` would from the start: the same steps
+    from the same state give the same state.  Without a cached state, or when the log does
+    not continue it, the whole log is replayed.
+
     ``rules`` (default: the session's own, :func:`session_rules`) must be the rule set
     ``ctx`` was built under.
     """
@@ -581,18 +592,40 @@ def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
     if unknown:
         raise SessionError(f"the log names item {unknown[0]} that the session's bank lacks",
                            location=f"session {shown(session_id)}")
-    try:
-        state, _ = rules.rebuild(ctx, int(stream_key(int(row["seed"]))), float(row["prior_mean"]),
-                                  float(row["prior_sd"]), [bank.index_of[i] for i, _, _ in answers],
-                                  [int(r) for _, r, _ in answers], elapsed=[e for _, _, e in answers])
-    except ValueError as exc:
-        raise SessionError(f"the stored answers do not replay: {exc}",
-                           location=f"session {shown(session_id)}") from None
+    hit = cache.latest(store, session_id)
+    state = None
+    if hit is not None and hit[0] < int(row["last_seq"]):
+        cache.drop(store, session_id)  # changed in place below: never reused half-way
+        state = _caught_up(rules, ctx, hit[1], answers)
+    if state is None:
+        try:
+            state, _ = rules.rebuild(ctx, int(stream_key(int(row["seed"]))), float(row["prior_mean"]),
+                                      float(row["prior_sd"]), [bank.index_of[i] for i, _, _ in answers],
+                                      [int(r) for _, r, _ in answers], elapsed=[e for _, _, e in answers])
+        except ValueError as exc:
+            raise SessionError(f"the stored answers do not replay: {exc}",
+                               location=f"session {shown(session_id)}") from None
     pending = None if state.pending[0] < 0 else str(bank.item_ids[state.pending[0]])
     if pending != row["pending_item"]:
         raise SessionError(f"the stored answers replay to pending item {pending}, the session row says "
                            f"{row['pending_item']}", location=f"session {shown(session_id)}")
     cache.keep(store, session_id, int(row["last_seq"]), state)
+    return state
+
+
+def _caught_up(rules: RuleSet, ctx: TestContext, state: KernelState, answers: list) -> KernelState | None:
+    """``state`` answered the logged answers it lacks; None when the log does not continue it."""
+    done = int(state.n_given[0])
+    if done > len(answers) or state.done[0]:
+        return None
+    try:
+        for item_id, response, elapsed in answers[done:]:
+            if state.done[0] or int(state.pending[0]) != ctx.bank.index_of[item_id]:
+                return None
+            rules.answer(ctx, state, _ROW0, np.array([int(response)]),
+                         elapsed=None if elapsed is None else np.array([elapsed], dtype=float))
+    except ValueError:
+        return None
     return state
 
 
