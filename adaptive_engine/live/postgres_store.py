@@ -125,6 +125,7 @@ class PostgresSessionStore(SessionStore):
         self.location = redacted(url)
         self.read_only = read_only
         self._sql: dict[str, str] = {}
+        self._pipe = None
         try:
             self.conn = psycopg.connect(url, autocommit=True, connect_timeout=10)
         except psycopg.Error as exc:
@@ -218,7 +219,7 @@ class PostgresSessionStore(SessionStore):
         if found is None and not create:
             raise SessionError(f"no session store at {self.location} (its schema holds no store tables)",
                                location=self.location)
-        with self.writing():
+        with self._transaction():
             self.conn.execute("SELECT pg_advisory_xact_lock(%s)", (_SCHEMA_LOCK,))
             # again under the lock: another process may have created or upgraded it
             found = self._found_schema_version()
@@ -236,20 +237,49 @@ class PostgresSessionStore(SessionStore):
     # -- transactions --------------------------------------------------------------------
     @contextlib.contextmanager
     def writing(self) -> Iterator["PostgresSessionStore"]:
-        """One write transaction (BEGIN ... COMMIT), rolled back on any error."""
-        self.conn.execute("BEGIN")
+        """One write transaction (BEGIN ... COMMIT), rolled back on any error.
+
+        The transaction runs in pipeline mode: statements whose results nobody reads (the
+        inserts and updates of an answer, COMMIT) go to the server together, so an answer
+        costs about three round trips instead of eight; a read waits for everything before
+        it.  Errors of queued statements surface at the next read or at COMMIT, and roll
+        the whole transaction back all the same.
+        """
         try:
-            yield self
-            if self.before_commit is not None:
-                self.before_commit()
-            self.conn.execute("COMMIT")
+            with self.conn.pipeline() as pipe:
+                self._pipe = pipe
+                self.conn.execute("BEGIN")
+                yield self
+                if self.before_commit is not None:
+                    pipe.sync()  # the rows are on the server before the hook runs
+                    self.before_commit()
+                self.conn.execute("COMMIT")
         except BaseException:
+            self._pipe = None
             if not self.broken:
                 with contextlib.suppress(psycopg.Error):
                     self.conn.execute("ROLLBACK")
             self._rolled_back()
             raise
+        self._pipe = None
         self._committed()
+
+    @contextlib.contextmanager
+    def _transaction(self) -> Iterator["PostgresSessionStore"]:
+        """A transaction without pipeline mode (schema creation runs several statements at once)."""
+        self.conn.execute("BEGIN")
+        try:
+            yield self
+            self.conn.execute("COMMIT")
+        except BaseException:
+            if not self.broken:
+                with contextlib.suppress(psycopg.Error):
+                    self.conn.execute("ROLLBACK")
+            raise
+
+    def _flush(self) -> None:
+        if self._pipe is not None:
+            self._pipe.sync()
 
     def close(self) -> None:
         conn = getattr(self, "conn", None)

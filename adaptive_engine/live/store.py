@@ -77,6 +77,7 @@ import json
 import os
 import re
 import sqlite3
+import threading
 import time
 import tomllib
 from datetime import datetime, timezone
@@ -334,6 +335,9 @@ class SessionStore:
     def _serialize_publishing(self) -> None:
         """Keep two publishing transactions from numbering one version twice."""
 
+    def _flush(self) -> None:
+        """Carry out every statement sent so far in the transaction (errors surface here)."""
+
     def close(self) -> None:
         raise NotImplementedError
 
@@ -449,6 +453,7 @@ class SessionStore:
         try:
             self._execute(f"INSERT INTO sessions ({', '.join(cols)}) VALUES ({', '.join('?' for _ in cols)})",
                           [row[c] for c in cols])
+            self._flush()
         except self._unique_violation:
             raise ConflictError(f"session '{shown(row['session_id'])}' already exists",
                                 location=f"session {shown(row['session_id'])}", field="session_id") from None
@@ -649,6 +654,7 @@ class SessionStore:
         self._require_releases()
         cursor = self._execute("UPDATE releases SET status = 'retired', retired_at = ? "
                                "WHERE name = ? AND version = ? AND status = 'active'", (now, name, version))
+        self._flush()
         return cursor.rowcount > 0
 
     def release_counts(self, name: str, version: int | None) -> tuple[dict[str, int], dict[str, int]]:
@@ -866,35 +872,63 @@ class SQLiteSessionStore(SessionStore):
     # -- transactions --------------------------------------------------------------------
     @contextlib.contextmanager
     def writing(self) -> Iterator["SQLiteSessionStore"]:
-        """One write transaction (BEGIN IMMEDIATE ... COMMIT), rolled back on any error."""
-        self._begin_immediate()
-        try:
-            yield self
-            if self.before_commit is not None:
-                self.before_commit()
-            self.conn.execute("COMMIT")
-        except BaseException:
-            if self.conn.in_transaction:
-                self.conn.execute("ROLLBACK")
-            self._rolled_back()
-            raise
+        """One write transaction (BEGIN IMMEDIATE ... COMMIT), rolled back on any error.
+
+        Threads of one process that write to one file take turns on a lock of the process
+        first (a server's request threads): waiting there wakes at once when the write is
+        done, where SQLite's own busy handler sleeps in steps of up to 100 ms.
+        """
+        with _writer_lock(self.key):
+            self._begin_immediate()
+            try:
+                yield self
+                if self.before_commit is not None:
+                    self.before_commit()
+                self.conn.execute("COMMIT")
+            except BaseException:
+                if self.conn.in_transaction:
+                    self.conn.execute("ROLLBACK")
+                self._rolled_back()
+                raise
         self._committed()
 
     def _begin_immediate(self) -> None:
-        # the busy timeout already waits; this loop only covers the rare SQLITE_BUSY that
-        # SQLite returns without waiting (e.g. while another connection recovers the WAL)
+        # another process holds the write lock: poll for it every fraction of a millisecond
+        # (a write takes a few) rather than leave it to SQLite's busy handler, whose sleeps
+        # grow to 100 ms; the busy timeout still covers every other statement
         deadline = time.monotonic() + BUSY_TIMEOUT_SECONDS
-        while True:
-            try:
-                self.conn.execute("BEGIN IMMEDIATE")
-                return
-            except sqlite3.OperationalError as exc:
-                if "locked" not in str(exc) and "busy" not in str(exc) or time.monotonic() > deadline:
-                    raise
-                time.sleep(0.005)
+        pause = 0.0002
+        self.conn.execute("PRAGMA busy_timeout = 0")
+        try:
+            while True:
+                try:
+                    self.conn.execute("BEGIN IMMEDIATE")
+                    return
+                except sqlite3.OperationalError as exc:
+                    if "locked" not in str(exc) and "busy" not in str(exc) or time.monotonic() > deadline:
+                        raise
+                    time.sleep(pause)
+                    pause = min(pause * 1.5, 0.002)
+        finally:
+            self.conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
 
     def close(self) -> None:
         self.conn.close()
+
+
+_WRITER_LOCKS: dict[str, threading.Lock] = {}
+_WRITER_LOCKS_GUARD = threading.Lock()
+
+
+def _writer_lock(key: str):
+    """The lock this process's writers to the store ``key`` take turns on (none in memory)."""
+    if key.startswith(":memory:"):
+        return contextlib.nullcontext()  # one connection per scratch store: nobody to wait for
+    with _WRITER_LOCKS_GUARD:
+        lock = _WRITER_LOCKS.get(key)
+        if lock is None:
+            lock = _WRITER_LOCKS[key] = threading.Lock()
+        return lock
 
 
 #: Location prefixes that choose PostgreSQL.
