@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import logging
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -19,7 +20,9 @@ import pytest
 
 pytest.importorskip("starlette", reason="the service tests need the 'service' extra (starlette)")
 
-from starlette.testclient import TestClient  # noqa: E402
+with warnings.catch_warnings():  # starlette's test client asks for another httpx; this one works
+    warnings.simplefilter("ignore")
+    from starlette.testclient import TestClient  # noqa: E402
 
 from adaptive_engine.bank import load_bank  # noqa: E402
 from adaptive_engine.design.toml_file import read_design  # noqa: E402
@@ -422,3 +425,11 @@ def test_token_file_digests_are_sha256_of_the_secret(tmp_path):
     assert secret not in (tmp_path / "t.toml").read_text()
     assert len(secret) >= 43  # 256 bits in URL-safe base64
     assert json.dumps(doc["token"][0]["name"]) == '"exam-app"'
+
+
+def test_a_path_cannot_forge_log_lines(service, caplog):
+    caplog.set_level(logging.WARNING)
+    service.client.get("/v1/sessions/x%0AINFO%20forged%20line", headers={"Authorization": "Bearer nope"})
+    refused = [r.getMessage() for r in caplog.records if "refused" in r.getMessage()]
+    assert refused and all("\n" not in m for m in refused)
+    assert any("\\n" in m for m in refused)

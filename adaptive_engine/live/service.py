@@ -51,7 +51,7 @@ from ..kernel.decision_rules import DECISION_RULES_VERSION
 from .openapi import DEFAULT_PAGE, MAX_PAGE, MAX_TEXT, openapi_document
 from .releases import list_releases, release_exposure, start_release_session
 from .session import ProcessCache, list_sessions, session_result, session_status, submit_answer
-from .store import ConflictError, InvalidValueError, NotFoundError, SessionStore, open_store
+from .store import ConflictError, InvalidValueError, NotFoundError, SessionStore, open_store, shown
 from .tokens import Token, TokenFileError, TokenTable, read_tokens
 
 log = logging.getLogger("adaptive_engine.service")
@@ -390,10 +390,10 @@ class Service:
             raise Problem(401, "missing_token", "send a token: Authorization: Bearer SECRET", headers=challenge)
         token = self.tokens.current().identify(secret.strip())
         if token is None:
-            log.warning("refused %s %s: unknown token", request.method, request.url.path)
+            log.warning("refused %s %s: unknown token", request.method, _path(request))
             raise Problem(401, "unknown_token", "the token is not known to this service", headers=challenge)
         if not token.may(role):
-            log.warning("refused %s %s: token %s has the role %s", request.method, request.url.path,
+            log.warning("refused %s %s: token %s has the role %s", request.method, _path(request),
                         token.name, token.role)
             raise Problem(403, "forbidden", f"this needs the {role} role; the token has the {token.role} role")
         return token
@@ -492,6 +492,11 @@ class Service:
         return JSONResponse(openapi_document(version=__version__))
 
 
+def _path(request: Request) -> str:
+    """The request's path for a log line: one printable line, cut (the path is the client's text)."""
+    return shown(request.scope.get("path", ""), limit=200)
+
+
 def _is_connection_error(exc: BaseException) -> bool:
     if isinstance(exc, sqlite3.OperationalError):
         return True
@@ -542,7 +547,7 @@ def create_app(settings: ServiceSettings, *, configure_store: Callable[[SessionS
                        headers=dict(exc.headers or {})).response(request)
 
     async def on_error(request: Request, exc: Exception) -> Response:
-        log.error("internal error in %s %s: %s at %s", request.method, request.url.path, type(exc).__name__,
+        log.error("internal error in %s %s: %s at %s", request.method, _path(request), type(exc).__name__,
                   _frames(exc))
         return Problem(500, "internal_error", "the service could not carry out the request; it is logged"
                        ).response(request)
