@@ -220,7 +220,7 @@ class TokenSource:
         return self.table
 
 
-class Problem(Exception):
+class ProblemReply(Exception):
     """A problem details reply (RFC 9457) to send instead of the normal one."""
 
     def __init__(self, status: int, code: str, detail: str, *, field: str | None = None,
@@ -238,17 +238,17 @@ class Problem(Exception):
                             headers={**_NO_STORE, **self.headers})
 
 
-def problem_for(exc: AdaptiveEngineError) -> Problem:
+def problem_for(exc: AdaptiveEngineError) -> ProblemReply:
     """The problem reply of a library error, chosen by the error's type."""
     field = getattr(exc, "field", None)
     detail = "; ".join(p.message if not p.location else f"{p.location}: {p.message}" for p in exc.problems)
     if isinstance(exc, NotFoundError):
-        return Problem(404, "not_found", detail, field=field)
+        return ProblemReply(404, "not_found", detail, field=field)
     if isinstance(exc, ConflictError):
-        return Problem(409, "conflict", detail, field=field)
+        return ProblemReply(409, "conflict", detail, field=field)
     if isinstance(exc, (InvalidValueError, DesignError)):
-        return Problem(422, "invalid_value", detail, field=field)
-    return Problem(500, "internal_error", "the service could not carry out the request; it is logged")
+        return ProblemReply(422, "invalid_value", detail, field=field)
+    return ProblemReply(500, "internal_error", "the service could not carry out the request; it is logged")
 
 
 # ----------------------------------------------------------------------------------------
@@ -259,39 +259,39 @@ def _no_duplicates(pairs):
     keys = [k for k, _ in pairs]
     if len(set(keys)) != len(keys):
         dup = next(k for k in keys if keys.count(k) > 1)
-        raise Problem(400, "malformed_request", f"the key {json.dumps(dup)[:80]} appears twice in one object")
+        raise ProblemReply(400, "malformed_request", f"the key {json.dumps(dup)[:80]} appears twice in one object")
     return dict(pairs)
 
 
 def _no_constants(name):
-    raise Problem(400, "malformed_request", f"{name} is not a JSON number")
+    raise ProblemReply(400, "malformed_request", f"{name} is not a JSON number")
 
 
 async def read_json_object(request: Request, max_bytes: int) -> dict:
-    """The request body as a JSON object, within ``max_bytes``; Problem 400/413/415 else."""
+    """The request body as a JSON object, within ``max_bytes``; a 400, 413 or 415 problem reply else."""
     kind = request.headers.get("content-type", "").split(";")[0].strip().lower()
     if kind != "application/json":
-        raise Problem(415, "unsupported_media_type", "send the body as JSON with Content-Type: application/json")
+        raise ProblemReply(415, "unsupported_media_type", "send the body as JSON with Content-Type: application/json")
     declared = request.headers.get("content-length")
     if declared is not None and declared.isdigit() and int(declared) > max_bytes:
-        raise Problem(413, "request_too_large", f"the body may have {max_bytes} bytes at most")
+        raise ProblemReply(413, "request_too_large", f"the body may have {max_bytes} bytes at most")
     body = bytearray()
     async for chunk in request.stream():
         body += chunk
         if len(body) > max_bytes:
-            raise Problem(413, "request_too_large", f"the body may have {max_bytes} bytes at most")
+            raise ProblemReply(413, "request_too_large", f"the body may have {max_bytes} bytes at most")
     try:
         text = bytes(body).decode("utf-8")
         doc = json.loads(text, object_pairs_hook=_no_duplicates, parse_constant=_no_constants)
     except UnicodeDecodeError as exc:
-        raise Problem(400, "malformed_request", f"the body is not UTF-8 (byte {exc.start})") from None
+        raise ProblemReply(400, "malformed_request", f"the body is not UTF-8 (byte {exc.start})") from None
     except json.JSONDecodeError as exc:
-        raise Problem(400, "malformed_request", f"the body is not JSON: {exc.msg} at line {exc.lineno} "
+        raise ProblemReply(400, "malformed_request", f"the body is not JSON: {exc.msg} at line {exc.lineno} "
                                                 f"column {exc.colno}") from None
     except RecursionError:
-        raise Problem(400, "malformed_request", "the body nests too deeply") from None
+        raise ProblemReply(400, "malformed_request", "the body nests too deeply") from None
     if not isinstance(doc, dict):
-        raise Problem(400, "malformed_request", f"the body must be a JSON object, not {_json_kind(doc)}")
+        raise ProblemReply(400, "malformed_request", f"the body must be a JSON object, not {_json_kind(doc)}")
     return doc
 
 
@@ -309,8 +309,8 @@ def _json_kind(value) -> str:
     return "an object"
 
 
-def _invalid(field: str, message: str) -> Problem:
-    return Problem(422, "invalid_value", f"{field}: {message}", field=field)
+def _invalid(field: str, message: str) -> ProblemReply:
+    return ProblemReply(422, "invalid_value", f"{field}: {message}", field=field)
 
 
 def _fields(doc: dict, *, required: tuple, optional: tuple) -> None:
@@ -387,15 +387,15 @@ class Service:
         scheme, _, secret = header.partition(" ")
         challenge = {"WWW-Authenticate": 'Bearer realm="adaptive_engine"'}
         if scheme.lower() != "bearer" or not secret.strip():
-            raise Problem(401, "missing_token", "send a token: Authorization: Bearer SECRET", headers=challenge)
+            raise ProblemReply(401, "missing_token", "send a token: Authorization: Bearer SECRET", headers=challenge)
         token = self.tokens.current().identify(secret.strip())
         if token is None:
             log.warning("refused %s %s: unknown token", request.method, _path(request))
-            raise Problem(401, "unknown_token", "the token is not known to this service", headers=challenge)
+            raise ProblemReply(401, "unknown_token", "the token is not known to this service", headers=challenge)
         if not token.may(role):
             log.warning("refused %s %s: token %s has the role %s", request.method, _path(request),
                         token.name, token.role)
-            raise Problem(403, "forbidden", f"this needs the {role} role; the token has the {token.role} role")
+            raise ProblemReply(403, "forbidden", f"this needs the {role} role; the token has the {token.role} role")
         return token
 
     async def call(self, work: Callable[[SessionStore], object]):
@@ -412,11 +412,11 @@ class Service:
             raise problem from None
         except StoreUnavailable as exc:
             log.error("store unavailable: %s", exc)
-            raise Problem(503, "store_unavailable", "the store is busy or cannot be reached; retry") from None
+            raise ProblemReply(503, "store_unavailable", "the store is busy or cannot be reached; retry") from None
         except Exception as exc:
             if _is_connection_error(exc):
                 log.error("store connection lost: %s", type(exc).__name__)
-                raise Problem(503, "store_unavailable", "the store cannot be reached; retry") from None
+                raise ProblemReply(503, "store_unavailable", "the store cannot be reached; retry") from None
             raise
 
     # -- endpoints -----------------------------------------------------------------------
@@ -536,20 +536,20 @@ def create_app(settings: ServiceSettings, *, configure_store: Callable[[SessionS
     """
     service = Service(settings, configure_store=configure_store)
 
-    async def on_problem(request: Request, exc: Problem) -> Response:
+    async def on_problem(request: Request, exc: ProblemReply) -> Response:
         return exc.response(request)
 
     async def on_http(request: Request, exc: HTTPException) -> Response:
         codes = {404: "not_found", 405: "method_not_allowed"}
         detail = {404: f"no such resource: {request.url.path[:200]}",
                   405: f"{request.method} is not allowed here"}.get(exc.status_code, str(exc.detail))
-        return Problem(exc.status_code, codes.get(exc.status_code, "malformed_request"), detail,
+        return ProblemReply(exc.status_code, codes.get(exc.status_code, "malformed_request"), detail,
                        headers=dict(exc.headers or {})).response(request)
 
     async def on_error(request: Request, exc: Exception) -> Response:
         log.error("internal error in %s %s: %s at %s", request.method, _path(request), type(exc).__name__,
                   _frames(exc))
-        return Problem(500, "internal_error", "the service could not carry out the request; it is logged"
+        return ProblemReply(500, "internal_error", "the service could not carry out the request; it is logged"
                        ).response(request)
 
     routes = [
@@ -568,7 +568,7 @@ def create_app(settings: ServiceSettings, *, configure_store: Callable[[SessionS
         yield
         service.pool.close()
 
-    app = Starlette(routes=routes, exception_handlers={Problem: on_problem, HTTPException: on_http,
+    app = Starlette(routes=routes, exception_handlers={ProblemReply: on_problem, HTTPException: on_http,
                                                        Exception: on_error}, lifespan=lifespan)
     app.state.service = service
     return app
