@@ -333,6 +333,9 @@ def test_admin_listings_and_exposure_equal_a_recount_of_the_log(service):
     assert_problem(service.client.get("/v1/sessions?status=paused", headers=service.admin), 422, field="status")
     assert_problem(service.client.get("/v1/sessions?limit=0", headers=service.admin), 422, field="limit")
     assert_problem(service.client.get("/v1/sessions?limit=x", headers=service.admin), 422, field="limit")
+    assert_problem(service.client.get("/v1/sessions?stat=active", headers=service.admin), 422, field="stat")
+    assert_problem(service.client.get("/v1/sessions?limit=1&limit=2", headers=service.admin), 422, field="limit")
+    assert_problem(service.client.get("/v1/releases?all=1", headers=service.admin), 422, field="all")
     releases = service.client.get("/v1/releases", headers=service.admin).json()["releases"]
     assert {"meridian-licensing@1", "meridian-short@1", "meridian-counted@1"} <= {r["release"] for r in releases}
     exposure = service.client.get("/v1/releases/meridian-counted/exposure", headers=service.admin).json()

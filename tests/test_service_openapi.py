@@ -63,7 +63,7 @@ DATA_DEPENDENT = [schemathesis.checks.positive_data_acceptance]
 
 
 @schema.parametrize()
-@settings(max_examples=15, deadline=None, suppress_health_check=list(HealthCheck))
+@settings(max_examples=10, deadline=None, suppress_health_check=list(HealthCheck))
 def test_every_operation_keeps_to_the_document(case):
     case.call_and_validate(headers={"Authorization": f"Bearer {TOKENS['admin']}"}, excluded_checks=DATA_DEPENDENT)
 

@@ -305,7 +305,7 @@ _PATHS = {
             "Session status and pending item", "For a page reload.",
             {"200": _json("The session's status.", _ref("SessionStatus")),
              "404": _problem("No such session."),
-             "422": _problem("The session id is not valid text.")},
+             "422": _problem("The session id is not valid text, or a query parameter was given.")},
             role="delivery", parameters=[_SESSION_ID], operationId="getSession"),
     },
     "/v1/sessions/{session_id}/result": {
@@ -314,13 +314,14 @@ _PATHS = {
             {"200": _json("The final report.", _ref("Result")),
              "404": _problem("No such session."),
              "409": _problem("The session is still active."),
-             "422": _problem("The session id is not valid text.")},
+             "422": _problem("The session id is not valid text, or a query parameter was given.")},
             role="delivery", parameters=[_SESSION_ID], operationId="getResult"),
     },
     "/v1/releases": {
         "get": _operation(
             "List releases (admin)", "Every version of every release, by name and version.",
-            {"200": _json("The releases.", _ref("ReleaseList"))},
+            {"200": _json("The releases.", _ref("ReleaseList")),
+             "422": _problem("A query parameter was given (this endpoint takes none).")},
             role="admin", operationId="listReleases"),
     },
     "/v1/releases/{name}/exposure": {
@@ -339,11 +340,13 @@ _PATHS = {
     },
     "/healthz": {
         "get": _operation("Liveness and store check", "Unauthenticated, for load balancers.",
-                          {"200": _json("The service and its store answer.", _ref("Health"))}, role=None,
-                          operationId="health"),
+                          {"200": _json("The service and its store answer.", _ref("Health")),
+                           "422": _problem("A query parameter was given (this endpoint takes none).")},
+                          role=None, operationId="health"),
     },
     "/openapi.json": {
-        "get": _operation("This document", "", {"200": _json("OpenAPI 3.1 document.", {"type": "object"})},
+        "get": _operation("This document", "", {"200": _json("OpenAPI 3.1 document.", {"type": "object"}),
+                                                "422": _problem("A query parameter was given.")},
                           role=None, operationId="openapi"),
     },
 }

@@ -352,6 +352,18 @@ def _number(doc: dict, name: str):
     return value
 
 
+def _only_query(request: Request, *allowed: str) -> None:
+    """Refuse query parameters the endpoint does not have, or one given twice (422)."""
+    seen = set()
+    for name, _ in request.query_params.multi_items():
+        if name not in allowed:
+            known = f" (known: {', '.join(allowed)})" if allowed else " (this endpoint takes none)"
+            raise _invalid(name[:80], f"unknown query parameter{known}")
+        if name in seen:
+            raise _invalid(name[:80], "given twice")
+        seen.add(name)
+
+
 def _query_integer(request: Request, name: str, default: int, lo: int, hi: int | None) -> int:
     text = request.query_params.get(name)
     if text is None:
@@ -422,6 +434,7 @@ class Service:
     # -- endpoints -----------------------------------------------------------------------
     async def start(self, request: Request) -> Response:
         self.authorize(request, "delivery")
+        _only_query(request)
         doc = await read_json_object(request, self.settings.max_body_bytes)
         _fields(doc, required=("release", "examinee"), optional=("seed", "prior_mean", "prior_sd"))
         release, examinee = _text(doc, "release"), _text(doc, "examinee")
@@ -438,6 +451,7 @@ class Service:
 
     async def answer(self, request: Request) -> Response:
         self.authorize(request, "delivery")
+        _only_query(request)
         session_id = request.path_params["session_id"]
         doc = await read_json_object(request, self.settings.max_body_bytes)
         _fields(doc, required=("item_id", "response"), optional=("elapsed",))
@@ -450,18 +464,21 @@ class Service:
 
     async def status(self, request: Request) -> Response:
         self.authorize(request, "delivery")
+        _only_query(request)
         session_id = request.path_params["session_id"]
         reply = await self.call(lambda store: session_status(store, session_id, cache=self.cache))
         return JSONResponse(reply, headers=_NO_STORE)
 
     async def result(self, request: Request) -> Response:
         self.authorize(request, "delivery")
+        _only_query(request)
         session_id = request.path_params["session_id"]
         reply = await self.call(lambda store: session_result(store, session_id))
         return JSONResponse(reply, headers=_NO_STORE)
 
     async def sessions(self, request: Request) -> Response:
         self.authorize(request, "admin")
+        _only_query(request, "status", "release", "limit", "offset")
         status = request.query_params.get("status")
         release = request.query_params.get("release")
         limit = _query_integer(request, "limit", DEFAULT_PAGE, 1, MAX_PAGE)
@@ -472,11 +489,13 @@ class Service:
 
     async def releases(self, request: Request) -> Response:
         self.authorize(request, "admin")
+        _only_query(request)
         rows = await self.call(lambda store: list_releases(store))
         return JSONResponse({"releases": rows}, headers=_NO_STORE)
 
     async def exposure(self, request: Request) -> Response:
         self.authorize(request, "admin")
+        _only_query(request, "version")
         name = request.path_params["name"]
         version = None
         if "version" in request.query_params:
@@ -485,10 +504,12 @@ class Service:
         return JSONResponse(reply, headers=_NO_STORE)
 
     async def health(self, request: Request) -> Response:
+        _only_query(request)
         await self.call(lambda store: store.ping())
         return JSONResponse({"status": "ok", "decision_rules_version": DECISION_RULES_VERSION}, headers=_NO_STORE)
 
     async def openapi(self, request: Request) -> Response:
+        _only_query(request)
         return JSONResponse(openapi_document(version=__version__))
 
 
