@@ -270,3 +270,58 @@ def test_ids_with_a_nul_character_are_refused_on_both_backends(store):
     with pytest.raises(InvalidValueError, match="NUL") as info:
         store.session_row("abc\x00def")
     assert "\\x00" in str(info.value) and "\x00" not in str(info.value)
+
+
+# --------------------------------------------------------------------------------------
+# schema creation by the engine, on both backends
+
+
+@pytest.fixture(params=BACKENDS)
+def empty_location(request, tmp_path):
+    with store_location(request.param, tmp_path) as location:
+        yield location
+
+
+def test_an_empty_location_is_no_store_unless_created(empty_location):
+    with pytest.raises(SessionError, match="no session store"):
+        open_store(empty_location, create=False)
+    with pytest.raises(SessionError, match="no session store"):
+        open_store(empty_location, read_only=True)
+    with open_store(empty_location) as store:  # nothing was created by the refusals above
+        assert store.query("SELECT COUNT(*) FROM store_schema") == [(1,)]
+
+
+def test_stores_opened_at_once_create_the_schema_once(empty_location):
+    import threading
+
+    barrier = threading.Barrier(4)
+    errors = []
+
+    def open_it():
+        try:
+            barrier.wait(10)
+            with open_store(empty_location) as store:
+                assert store.schema_version == SCHEMA_VERSION
+        except Exception as exc:  # reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=open_it) for _ in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(60)
+    assert errors == []
+    with open_store(empty_location) as store:
+        assert store.query("SELECT version, note FROM store_schema") == [(SCHEMA_VERSION, "created")]
+
+
+def test_a_store_of_a_newer_schema_is_refused_on_both_backends(empty_location):
+    with open_store(empty_location) as store:
+        with store.writing():
+            store.query("INSERT INTO store_schema (version, applied_at, note) VALUES (?, ?, ?)",
+                        (SCHEMA_VERSION + 1, "2099-01-01T00:00:00+00:00", "a later engine"))
+        before = store.dump()
+    for read_only in (False, True):
+        with pytest.raises(SessionError, match=f"schema version {SCHEMA_VERSION + 1}"):
+            open_store(empty_location, read_only=read_only)
+    assert max(row[0] for row in before["store_schema"]) == SCHEMA_VERSION + 1

@@ -18,8 +18,8 @@ Guarantees, as on SQLite:
   count + 1``, which PostgreSQL runs under a row lock: no increment is lost.
 * **Append-only event log.**  Triggers refuse UPDATE, DELETE and TRUNCATE of ``events``.
 * **Schema by the engine.**  The first process to open an empty schema creates the tables;
-  schema creation and upgrades run under a transaction-scoped advisory lock, so servers
-  starting together do it once.  The version is recorded in ``store_schema`` as on SQLite.
+  schema creation and upgrades run under an advisory lock, so servers starting together
+  do it once.  The version is recorded in ``store_schema`` as on SQLite.
 
 Where the tables live: in the first schema of the connection's ``search_path`` (by default
 ``public``).  To keep a store in a schema of its own, create the schema and name it in the
@@ -36,17 +36,11 @@ import psycopg
 import psycopg.errors
 
 from ..errors import SessionError
-from .store import (
-    APPEND_ONLY,
-    SCHEMA_VERSION,
-    UNRECORDED_RULES_VERSION,
-    SessionStore,
-    now_text,
-)
+from .store import APPEND_ONLY, SCHEMA_VERSION, SessionStore, now_text
 
-#: Keys of the transaction-scoped advisory locks (any two distinct 64-bit numbers).
-_SCHEMA_LOCK = 0x6165_5F73_6368_656D  # schema creation and upgrades
-_PUBLISH_LOCK = 0x6165_5F72_656C_6561  # numbering release versions
+#: Keys of the advisory locks (any two distinct 64-bit numbers).
+_SCHEMA_LOCK = 0x6165_5F73_6368_656D  # schema creation and upgrades (session lock)
+_PUBLISH_LOCK = 0x6165_5F72_656C_6561  # numbering release versions (transaction lock)
 
 _CREATE = """
 CREATE TABLE banks (bank_id TEXT PRIMARY KEY, name TEXT, content TEXT);
@@ -219,19 +213,22 @@ class PostgresSessionStore(SessionStore):
         if found is None and not create:
             raise SessionError(f"no session store at {self.location} (its schema holds no store tables)",
                                location=self.location)
-        with self._transaction():
-            self.conn.execute("SELECT pg_advisory_xact_lock(%s)", (_SCHEMA_LOCK,))
-            # again under the lock: another process may have created or upgraded it
-            found = self._found_schema_version()
-            self._refuse_newer(found)
-            if found is None:
-                self.conn.execute(_CREATE)
-                self.conn.execute("INSERT INTO store_schema (version, applied_at, note) VALUES (%s, %s, %s)",
-                                  (SCHEMA_VERSION, now_text(), "created"))
-            elif found < SCHEMA_VERSION:  # pragma: no cover - no older PostgreSQL schema exists yet
-                raise SessionError(f"no upgrade of a PostgreSQL store from schema {found} is known "
-                                   f"(the first PostgreSQL schema is 3; rules version {UNRECORDED_RULES_VERSION})",
-                                   location=self.location)
+        # a lock of the session, taken before the transaction: the transaction that checks
+        # again under it then sees the catalog as another process's creation left it
+        self.conn.execute("SELECT pg_advisory_lock(%s)", (_SCHEMA_LOCK,))
+        try:
+            with self._transaction():
+                found = self._found_schema_version()
+                self._refuse_newer(found)
+                if found is None:
+                    self.conn.execute(_CREATE)
+                    self.conn.execute("INSERT INTO store_schema (version, applied_at, note) VALUES (%s, %s, %s)",
+                                      (SCHEMA_VERSION, now_text(), "created"))
+                elif found < SCHEMA_VERSION:  # pragma: no cover - no older PostgreSQL schema exists yet
+                    raise SessionError(f"no upgrade of a PostgreSQL store from schema {found} is known "
+                                       f"(the first PostgreSQL schema is {SCHEMA_VERSION})", location=self.location)
+        finally:
+            self.conn.execute("SELECT pg_advisory_unlock(%s)", (_SCHEMA_LOCK,))
         self.schema_version = SCHEMA_VERSION
 
     # -- transactions --------------------------------------------------------------------

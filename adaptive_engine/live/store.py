@@ -364,8 +364,11 @@ class SessionStore:
         self._execute("SELECT 1").fetchone()
 
     def query(self, sql: str, params=()) -> list[tuple]:
-        """Rows of a read-only query (``?`` placeholders): for tests and diagnostics."""
-        return [tuple(r) for r in self._execute(sql, params).fetchall()]
+        """Rows of a statement (``?`` placeholders; none for one that returns none): for tests and diagnostics."""
+        cursor = self._execute(sql, params)
+        if cursor.description is None:
+            return []
+        return [tuple(r) for r in cursor.fetchall()]
 
     # -- banks and designs ---------------------------------------------------------------
     def put_bank(self, bank: ItemBank) -> str:
