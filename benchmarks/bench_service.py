@@ -12,6 +12,10 @@ keep-alive connections, spreading its requests over the servers in turn.  Printe
 
 Targets on two cores: p95 under 25 ms at 32 clients, 400 answers/s or more on SQLite,
 nothing lost.  Clients run in this process (threads), on the same two cores as the servers.
+The clients send their next answer as soon as they have a reply (a stress test: with C
+clients and a throughput of X answers/s the mean latency is C / X, Little's law); the last
+rows give each client a think time (exponential, mean ``--think-ms``, default 100 ms)
+between answers, a load nearer to examinees reading items.
 
 Then the population run: 32 clients start 200 sessions at once through two servers on one
 PostgreSQL store and run them to the end; every session must finish with no error, and the
@@ -94,7 +98,8 @@ class Servers:
 class Client:
     """One examinee-simulating client: keep-alive connections to every server."""
 
-    def __init__(self, ports, secret, seed):
+    def __init__(self, ports, secret, seed, think=0.0):
+        self.think = think
         self.conns = [http.client.HTTPConnection("127.0.0.1", port, timeout=60) for port in ports]
         self.headers = {"Authorization": f"Bearer {secret}", "Content-Type": "application/json"}
         self.rng = np.random.default_rng(seed)
@@ -123,6 +128,8 @@ class Client:
                 return False
             # a plausible examinee: right with probability rising with ability
             right = int(self.rng.random() < 1 / (1 + np.exp(-(theta - self.rng.normal(0, 1)))))
+            if self.think:
+                time.sleep(self.rng.exponential(self.think))
             t0 = time.perf_counter()
             reply = self.call(f"/v1/sessions/{session_id}/answers",
                               {"item_id": reply["item_id"], "response": right})
@@ -147,8 +154,8 @@ def check_store(store_location, clients) -> tuple[int, bool]:
     return lost, exact
 
 
-def timed_run(ports, secret, n_clients, seconds, first_seed):
-    clients = [Client(ports, secret, first_seed + c) for c in range(n_clients)]
+def timed_run(ports, secret, n_clients, seconds, first_seed, think=0.0):
+    clients = [Client(ports, secret, first_seed + c, think) for c in range(n_clients)]
     stop_at = time.perf_counter() + seconds
     counter = iter(range(first_seed * 1000, first_seed * 1000 + 10**6))
     lock = threading.Lock()
@@ -235,10 +242,15 @@ def main() -> None:
     parser.add_argument("--backends", default="sqlite,postgresql")
     parser.add_argument("--servers", default="1,2")
     parser.add_argument("--clients", default="1,8,32")
+    parser.add_argument("--think-ms", type=float, default=100.0,
+                        help="mean think time of the paced rows (32 clients; 0: no paced rows)")
     args = parser.parse_args()
     seconds = 2.0 if args.quick else args.seconds
-    print(f"{'store':<11} {'servers':>7} {'clients':>7} {'answers/s':>10} {'p50 ms':>8} {'p95 ms':>8} "
-          f"{'errors':>6} {'lost':>5} {'counts':>7}")
+    print(f"{'store':<11} {'servers':>7} {'clients':>7} {'think ms':>8} {'answers/s':>10} {'p50 ms':>8} "
+          f"{'p95 ms':>8} {'errors':>6} {'lost':>5} {'counts':>7}")
+    levels = [(int(x), 0.0) for x in args.clients.split(",")]
+    if args.think_ms > 0:
+        levels.append((32, args.think_ms / 1000))
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         for backend in args.backends.split(","):
@@ -248,13 +260,15 @@ def main() -> None:
                     servers = Servers(location, tokens, n_servers, folder)
                     try:
                         timed_run(servers.ports, secret, 4, 1.0, 1)  # warm-up: contexts, connections
-                        for n_clients in (int(x) for x in args.clients.split(",")):
-                            clients, elapsed = timed_run(servers.ports, secret, n_clients, seconds, 10 + n_clients)
+                        for n_clients, think in levels:
+                            clients, elapsed = timed_run(servers.ports, secret, n_clients, seconds,
+                                                         10 + n_clients + int(think > 0), think)
                             lat = np.array([x for c in clients for x in c.latencies]) * 1e3
                             errors = sum(len(c.errors) for c in clients)
                             lost, exact = check_store(location, clients)
                             p50, p95 = (np.percentile(lat, 50), np.percentile(lat, 95)) if lat.size else (np.nan,) * 2
-                            print(f"{backend:<11} {n_servers:>7} {n_clients:>7} {lat.size / elapsed:>10.0f} "
+                            print(f"{backend:<11} {n_servers:>7} {n_clients:>7} {think * 1000:>8.0f} "
+                                  f"{lat.size / elapsed:>10.0f} "
                                   f"{p50:>8.1f} {p95:>8.1f} {errors:>6} {lost:>5} {'exact' if exact else 'WRONG':>7}",
                                   flush=True)
                             for c in clients:
