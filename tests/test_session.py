@@ -1,6 +1,7 @@
 """Tests of the live session controller (adaptive_engine.live.session) on the demo banks.
 
-The demo banks and designs are test input only.  What is checked against outside sources:
+The tests that take the ``store`` fixture run on both backends, SQLite and PostgreSQL
+(``store_backends.py``).  The demo banks and designs are test input only.  What is checked against outside sources:
 the content rules (never an item twice, enemy items, blueprint maximums, minimum length)
 as stated by Kingsbury & Zara (1989) for constrained CAT; the live driver reproducing the
 simulation driver item by item (the decision kernel run on a batch of many examinees) --
@@ -35,6 +36,7 @@ from adaptive_engine.live.session import (
     submit_answer,
 )
 from adaptive_engine.live.store import open_store
+from store_backends import BACKENDS, store_location
 
 ROOT = Path(__file__).resolve().parents[1]
 LICENSING = read_design(ROOT / "simulations" / "licensing_exam.toml")
@@ -68,11 +70,13 @@ def run_session(store, design, bank, *, seed, theta, answer_seed, cache=None, re
     return replies
 
 
-@pytest.fixture(scope="module")
-def store(tmp_path_factory):
-    s = open_store(tmp_path_factory.mktemp("session") / "store.db")
-    yield s
-    s.close()
+@pytest.fixture(scope="module", params=BACKENDS)
+def store(request, tmp_path_factory):
+    """One store per backend for the module (SQLite file; PostgreSQL schema of its own)."""
+    with store_location(request.param, tmp_path_factory.mktemp("session")) as location:
+        s = open_store(location)
+        yield s
+        s.close()
 
 
 def _walk(obj):
@@ -158,7 +162,8 @@ def test_resumed_session_equals_uninterrupted(tmp_path_factory, case, seed, thet
 
 def test_stale_cache_is_rebuilt_when_another_process_moved_on(tmp_path):
     """Two caches (two processes) take turns on one session: each must notice the other's
-    answers through the stored sequence number and rebuild, never reuse a stale state."""
+    answers through the stored sequence number and catch up (or rebuild), never reuse a
+    stale state as it is."""
     design, bank = CASES["licensing"]
     with open_store(tmp_path / "ref.db") as ref:
         straight = run_session(ref, design, bank, seed=11, theta=0.4, answer_seed=5, cache=ProcessCache())
@@ -498,3 +503,43 @@ def test_show_session_keeps_the_seed_out_unless_asked(store):
     for view in (shown, list_sessions(store), pending_item(store, reply["session_id"])):
         assert not PARAMETER_KEYS & set(_walk(view))
         assert "seed" not in set(_walk(view))
+
+
+def test_a_stale_cached_state_catches_up_by_the_answers_it_lacks(tmp_path, monkeypatch):
+    """A process whose cached state is behind the store answers it the missing answers
+    instead of replaying the whole log; the replies stay those of an uninterrupted run."""
+    import attrs
+
+    from adaptive_engine.kernel import decision_rules
+
+    design, bank = CASES["licensing"]
+    answers = [1, 0, 1, 1, 0, 1, 0, 1]
+    with open_store(tmp_path / "ref.db") as ref:
+        cache = ProcessCache()
+        straight = [start_session(ref, design, bank, seed=17, cache=cache)]
+        for a in answers[:6]:
+            straight.append(submit_answer(ref, straight[-1]["session_id"], straight[-1]["item_id"], a, cache=cache))
+    real = decision_rules.current_rule_set()
+    calls = {"answer": 0, "rebuild": 0}
+
+    def answer(*args, **kwargs):
+        calls["answer"] += 1
+        return real.answer(*args, **kwargs)
+
+    def rebuild(*args, **kwargs):
+        calls["rebuild"] += 1
+        return real.rebuild(*args, **kwargs)
+
+    monkeypatch.setattr(decision_rules, "RULE_SETS",
+                        {real.version: attrs.evolve(real, answer=answer, rebuild=rebuild)})
+    caches = [ProcessCache(), ProcessCache()]
+    stores = [open_store(tmp_path / "shared.db"), open_store(tmp_path / "shared.db")]
+    replies = [start_session(stores[0], design, bank, seed=17, session_id="s", cache=caches[0])]
+    for k, who in enumerate([0, 0, 0, 0, 1, 0]):  # the fifth answer on the other process
+        replies.append(submit_answer(stores[who], "s", replies[-1]["item_id"], answers[k], cache=caches[who]))
+    for s_ in stores:
+        s_.close()
+    # process 1 had nothing cached: one replay; process 0 was one answer behind: one catch-up step
+    assert calls == {"answer": 4 + 1 + (1 + 1), "rebuild": 1}
+    strip = [{k: v for k, v in r.items() if k != "session_id"} for r in replies]
+    assert strip == [{k: v for k, v in r.items() if k != "session_id"} for r in straight]

@@ -1,7 +1,8 @@
 """Several processes running sessions against one store at once.
 
 Eight worker processes (multiprocessing, released together by a barrier) each run whole
-sessions of the Meridian Valley exam against the same SQLite file.  Nothing may fail with
+sessions of the Meridian Valley exam against the same store (a SQLite file; a PostgreSQL
+schema).  Nothing may fail with
 "database is locked", every session must finish, and the exposure counters must equal the
 number of items given (no lost increments), as must the per-bank count of sessions started.
 """
@@ -18,6 +19,7 @@ from adaptive_engine.bank import load_bank
 from adaptive_engine.design.toml_file import read_design
 from adaptive_engine.live.session import start_session, submit_answer
 from adaptive_engine.live.store import bank_content, open_store
+from store_backends import BACKENDS, store_location
 
 ROOT = Path(__file__).resolve().parents[1]
 DESIGN_PATH = ROOT / "simulations" / "licensing_exam.toml"
@@ -46,9 +48,15 @@ def worker(db, worker_id, barrier, out):
         out.put(("error", worker_id, repr(exc), []))
 
 
+@pytest.fixture(params=BACKENDS)
+def location(request, tmp_path):
+    with store_location(request.param, tmp_path) as where:
+        yield where
+
+
 @pytest.mark.skipif("fork" not in multiprocessing.get_all_start_methods(), reason="needs the fork start method")
-def test_eight_processes_share_one_store_without_losing_counts(tmp_path):
-    db = str(tmp_path / "shared.db")
+def test_eight_processes_share_one_store_without_losing_counts(location):
+    db = location
     open_store(db).close()  # create the schema once, as a deployment would
     mp = multiprocessing.get_context("fork")
     barrier = mp.Barrier(WORKERS)
@@ -65,14 +73,16 @@ def test_eight_processes_share_one_store_without_losing_counts(tmp_path):
     session_ids = [sid for r in reports for sid in r[3]]
     assert len(set(session_ids)) == WORKERS * SESSIONS_PER_WORKER
     with open_store(db) as store:
-        assert store.conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+        if store.backend == "sqlite":
+            assert store.conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
         sessions = store.sessions()
         assert len(sessions) == WORKERS * SESSIONS_PER_WORKER
         assert all(s["status"] == "finished" for s in sessions)
         started, counts = store.exposure(bank_content(load_bank(BANK_PATH))[0])
         assert started == WORKERS * SESSIONS_PER_WORKER
-        n_events = store.conn.execute("SELECT COUNT(*) FROM events WHERE kind = 'item_given'").fetchone()[0]
+        n_events = store.query("SELECT COUNT(*) FROM events WHERE kind = 'item_given'")[0][0]
         assert sum(counts.values()) == total_given == n_events
+        assert (started, counts) == store.recount_exposure(bank_content(load_bank(BANK_PATH))[0])
         # every session's log is gap-free: seq 1..last_seq
         for s in sessions:
             seqs = [e["seq"] for e in store.events(s["session_id"])]
@@ -153,3 +163,53 @@ def test_a_refused_start_never_deletes_a_store_another_process_created(tmp_path,
     with open_store(db, create=False) as store:
         assert store.session_row(session_id)["status"] == "active"
         assert store.conn.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+
+
+# --------------------------------------------------------------------------------------
+# one answer sent twice at once (a retry racing the original, on two servers)
+
+
+@pytest.mark.parametrize("same", [True, False])
+def test_two_racing_answers_to_one_item_are_recorded_once(location, same):
+    """Two store objects (two servers) answer the pending item at the same moment.
+
+    The same answer: both get the identical reply, one answer is stored.  Different
+    answers: one is taken, the other refused as a conflict; the log holds the first.
+    """
+    import threading
+
+    from adaptive_engine.live.session import ProcessCache
+    from adaptive_engine.live.store import ConflictError
+
+    design, bank = read_design(DESIGN_PATH), load_bank(BANK_PATH)
+    with open_store(location) as store:
+        first = start_session(store, design, bank, seed=5, session_id="race", cache=ProcessCache())
+    stores = [open_store(location), open_store(location)]
+    barrier = threading.Barrier(2)
+    out = [None, None]
+
+    def send(k):
+        barrier.wait(10)
+        try:
+            out[k] = submit_answer(stores[k], "race", first["item_id"], 1 if same else k, cache=ProcessCache())
+        except ConflictError as exc:
+            out[k] = exc
+
+    threads = [threading.Thread(target=send, args=(k,)) for k in range(2)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(60)
+    with open_store(location) as store:
+        answers = store.answers("race")
+        row = store.session_row("race")
+    for s in stores:
+        s.close()
+    assert len(answers) == 1 and row["last_seq"] == 3
+    if same:
+        assert out[0] == out[1] and isinstance(out[0], dict)
+    else:
+        kinds = sorted(type(o).__name__ for o in out)
+        assert kinds == ["ConflictError", "dict"]
+        winner = next(k for k in range(2) if isinstance(out[k], dict))
+        assert answers[0][1] == winner

@@ -1,15 +1,18 @@
-"""The SQLite session store: schema contract, content-addressed banks and designs, atomic writes.
+"""The session store on both backends: schema contract, content-addressed banks and designs,
+atomic writes, the append-only log.
 
-The schema names are a contract with the calibration helper (which reads ``events`` for
+One suite, run on SQLite and on PostgreSQL (the ``store`` fixture is parametrized; see
+``store_backends.py`` for how PostgreSQL is found, and skipped or failed without it); the
+tests of SQLite's own file handling (WAL, file modes, paths) take ``sqlite_store``.  The
+schema names are a contract with the calibration helper (which reads ``events`` for
 pretest calibration), so they are checked column by column.  Round trips are checked
-against the original objects; rollback behaviour is SQLite's documented transaction
-semantics (BEGIN IMMEDIATE ... ROLLBACK leaves nothing).
+against the original objects; rollback behaviour is the databases' documented
+transaction semantics (a transaction rolled back leaves nothing).
 """
 
 from __future__ import annotations
 
 import os
-import sqlite3
 import stat
 from pathlib import Path
 
@@ -19,7 +22,15 @@ import pytest
 from adaptive_engine.bank import load_bank
 from adaptive_engine.design.toml_file import design_to_toml, read_design
 from adaptive_engine.errors import SessionError
-from adaptive_engine.live.store import bank_content, design_content, open_store
+from adaptive_engine.live.store import (
+    SCHEMA_VERSION,
+    InvalidValueError,
+    NotFoundError,
+    bank_content,
+    design_content,
+    open_store,
+)
+from store_backends import BACKENDS, store_location
 
 ROOT = Path(__file__).resolve().parents[1]
 BANK = load_bank(ROOT / "item_banks" / "meridian_valley_operator.csv")
@@ -37,32 +48,74 @@ REQUIRED = {
 }
 
 
+@pytest.fixture(params=BACKENDS)
+def store(request, tmp_path):
+    with store_location(request.param, tmp_path) as location:
+        s = open_store(location)
+        s.test_location = location
+        yield s
+        s.close()
+
+
 @pytest.fixture
-def store(tmp_path):
+def sqlite_store(tmp_path):
     s = open_store(tmp_path / "store.db")
     yield s
     s.close()
 
 
+def _columns(store, table):
+    if store.backend == "sqlite":
+        return [row[1] for row in store.query(f"PRAGMA table_info({table})")]
+    return [row[0] for row in store.query(
+        "SELECT column_name FROM information_schema.columns WHERE table_schema = current_schema() "
+        "AND table_name = ? ORDER BY ordinal_position", (table,))]
+
+
 def test_schema_has_the_agreed_names(store):
     for table, columns in REQUIRED.items():
-        have = [c.name for c in store.db[table].columns]
-        assert have[: len(columns)] == columns or set(columns) <= set(have), table
+        have = _columns(store, table)
+        assert have[: len(columns)] == columns, table
+    assert _columns(store, "sessions")[-3:] == ["decision_rules_version", "release_name", "release_version"]
+    assert store.query("SELECT version, note FROM store_schema") == [(SCHEMA_VERSION, "created")]
+
+
+def test_sqlite_keys_indexes_and_pragmas(sqlite_store):
+    store = sqlite_store
     assert store.db["sessions"].pks == ["session_id"]
     assert store.db["exposure_counts"].pks == ["bank_id", "item_id"]
     assert store.db["events"].pks == ["event_id"]
+    assert store.db["releases"].pks == ["name", "version"]
     unique = [ix for ix in store.db["events"].indexes if ix.unique and ix.columns == ["session_id", "seq"]]
     assert unique
     assert store.db.journal_mode == "wal"
     assert store.conn.execute("PRAGMA busy_timeout").fetchone()[0] >= 1000
 
 
+def test_reopening_records_the_schema_once(store):
+    open_store(store.test_location).close()
+    assert store.query("SELECT COUNT(*) FROM store_schema") == [(1,)]
+
+
 def test_event_sequence_is_unique(store):
     with store.writing():
         store.append_events([{"session_id": "s", "seq": 1, "kind": "item_given"}])
-    with pytest.raises(sqlite3.IntegrityError):
+    before = store.dump()
+    with pytest.raises(store._unique_violation):
         with store.writing():
             store.append_events([{"session_id": "s", "seq": 1, "kind": "answer"}])
+    assert store.dump() == before
+
+
+@pytest.mark.parametrize("statement", ["UPDATE events SET response = 0", "DELETE FROM events"])
+def test_the_event_log_is_append_only(store, statement):
+    with store.writing():
+        store.append_events([{"session_id": "s", "seq": 1, "kind": "answer", "response": 1}])
+    before = store.dump()
+    with pytest.raises(Exception, match="append-only"):
+        with store.writing():
+            store.query(statement)
+    assert store.dump() == before
 
 
 def test_bank_round_trip_and_content_address(store):
@@ -71,7 +124,7 @@ def test_bank_round_trip_and_content_address(store):
         assert store.put_bank(BANK) == bank_id  # stored once per content
         other = store.put_bank(SURVEY_BANK)
     assert bank_id != other
-    assert store.conn.execute("SELECT COUNT(*) FROM banks").fetchone()[0] == 2
+    assert store.query("SELECT COUNT(*) FROM banks") == [(2,)]
     back = store.load_bank(bank_id)
     assert list(back.item_ids) == list(BANK.item_ids)
     for name in ("a", "b", "c", "d"):
@@ -105,21 +158,37 @@ def test_failed_transaction_writes_nothing(store):
             store.count_exposure("bank", "MV-SRC-001")
             raise RuntimeError("boom")
     assert store.dump() == before
-    assert not store.conn.in_transaction
+    with store.writing():  # the store is usable after a rollback
+        store.count_exposure("bank", "MV-SRC-001")
+    assert store.exposure("bank") == (0, {"MV-SRC-001": 1})
+
+
+def test_a_rolled_back_bank_is_stored_by_the_next_transaction(store):
+    # the store remembers stored banks to skip sending them again: not one rolled back
+    with pytest.raises(RuntimeError):
+        with store.writing():
+            store.put_bank(SURVEY_BANK)
+            raise RuntimeError("boom")
+    with store.writing():
+        bank_id = store.put_bank(SURVEY_BANK)
+    assert store.has_bank(bank_id)
 
 
 def test_unknown_things_are_session_errors(store, tmp_path):
-    with pytest.raises(SessionError, match="unknown session"):
+    with pytest.raises(NotFoundError, match="unknown session"):
         store.session_row("nope")
     with pytest.raises(SessionError, match="missing"):
         store.load_bank("0" * 64)
     with pytest.raises(SessionError, match="missing"):
         store.load_design("0" * 64)
+    with pytest.raises(InvalidValueError, match="status"):
+        store.sessions(status="paused")
+
+
+def test_sqlite_files_that_are_no_store(tmp_path):
     with pytest.raises(SessionError, match="no session store"):
         open_store(tmp_path / "absent.db", create=False)
     assert not (tmp_path / "absent.db").exists()
-    with pytest.raises(SessionError, match="status"):
-        store.sessions(status="paused")
     junk = tmp_path / "junk.db"
     junk.write_bytes(b"\x00garbage" * 100)
     with pytest.raises(SessionError, match="not a usable session store"):
@@ -139,6 +208,15 @@ def test_memory_store_works(tmp_path):
         with s.writing():
             s.put_bank(SURVEY_BANK)
         assert s.conn.execute("SELECT COUNT(*) FROM banks").fetchone()[0] == 1
+
+
+def test_sqlite_urls_name_files(tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    with open_store("sqlite:///relative.db") as s:
+        assert s.backend == "sqlite" and s.key == str(tmp_path / "relative.db")
+    with open_store(f"sqlite:///{tmp_path / 'absolute.db'}") as s:
+        assert s.key == str(tmp_path / "absolute.db")
+    assert (tmp_path / "relative.db").exists() and (tmp_path / "absolute.db").exists()
 
 
 @pytest.mark.skipif(os.name != "posix", reason="POSIX file modes")
@@ -178,8 +256,72 @@ def test_store_paths_that_cannot_be_created_are_session_errors(tmp_path):
 def test_ids_that_are_not_valid_text_are_session_errors(store, bad):
     """Lone surrogates (what invalid UTF-8 bytes on a POSIX command line decode to) cannot be
     stored in SQLite; they must be refused as the project's error, printable on one line."""
-    with pytest.raises(SessionError, match="not valid text") as info:
+    with pytest.raises(InvalidValueError, match="not valid text") as info:
         store.session_row(bad)
     message = str(info.value)
     message.encode("utf-8")  # printable: no surrogate is copied into the message
     assert "\n" not in message and "\\ud" in message
+    assert info.value.field == "session_id"
+
+
+def test_ids_with_a_nul_character_are_refused_on_both_backends(store):
+    # PostgreSQL's text cannot hold NUL (its documentation, "Character Types"); SQLite could,
+    # but both stores must refuse the same ids
+    with pytest.raises(InvalidValueError, match="NUL") as info:
+        store.session_row("abc\x00def")
+    assert "\\x00" in str(info.value) and "\x00" not in str(info.value)
+
+
+# --------------------------------------------------------------------------------------
+# schema creation by the engine, on both backends
+
+
+@pytest.fixture(params=BACKENDS)
+def empty_location(request, tmp_path):
+    with store_location(request.param, tmp_path) as location:
+        yield location
+
+
+def test_an_empty_location_is_no_store_unless_created(empty_location):
+    with pytest.raises(SessionError, match="no session store"):
+        open_store(empty_location, create=False)
+    with pytest.raises(SessionError, match="no session store"):
+        open_store(empty_location, read_only=True)
+    with open_store(empty_location) as store:  # nothing was created by the refusals above
+        assert store.query("SELECT COUNT(*) FROM store_schema") == [(1,)]
+
+
+def test_stores_opened_at_once_create_the_schema_once(empty_location):
+    import threading
+
+    barrier = threading.Barrier(4)
+    errors = []
+
+    def open_it():
+        try:
+            barrier.wait(10)
+            with open_store(empty_location) as store:
+                assert store.schema_version == SCHEMA_VERSION
+        except Exception as exc:  # reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=open_it) for _ in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(60)
+    assert errors == []
+    with open_store(empty_location) as store:
+        assert store.query("SELECT version, note FROM store_schema") == [(SCHEMA_VERSION, "created")]
+
+
+def test_a_store_of_a_newer_schema_is_refused_on_both_backends(empty_location):
+    with open_store(empty_location) as store:
+        with store.writing():
+            store.query("INSERT INTO store_schema (version, applied_at, note) VALUES (?, ?, ?)",
+                        (SCHEMA_VERSION + 1, "2099-01-01T00:00:00+00:00", "a later engine"))
+        before = store.dump()
+    for read_only in (False, True):
+        with pytest.raises(SessionError, match=f"schema version {SCHEMA_VERSION + 1}"):
+            open_store(empty_location, read_only=read_only)
+    assert max(row[0] for row in before["store_schema"]) == SCHEMA_VERSION + 1

@@ -106,8 +106,10 @@ def test_an_old_store_is_upgraded_in_place_and_its_sessions_go_on(old_store):
         # every row kept; sessions gained the version column, marked 1
         for table in ("events", "banks", "designs", "exposure_counts", "bank_sessions"):
             assert after[table] == before[table], table
-        assert [row[:-1] for row in after["sessions"]] == before["sessions"]
-        assert {row[-1] for row in after["sessions"]} == {UNRECORDED_RULES_VERSION}
+        # sessions gained the version (marked 1) and, in schema 3, their release (none)
+        assert [row[:-3] for row in after["sessions"]] == before["sessions"]
+        assert {row[-3:] for row in after["sessions"]} == {(UNRECORDED_RULES_VERSION, None, None)}
+        assert after["releases"] == []
         for session_id in (FINISHED, ACTIVE):
             shown = show_session(store, session_id)
             assert shown["decision_rules_version"] == UNRECORDED_RULES_VERSION
@@ -186,3 +188,57 @@ def test_a_store_of_a_newer_schema_is_refused(tmp_path):
         message = str(info.value)
         assert f"schema version {SCHEMA_VERSION + 1}" in message and f"up to {SCHEMA_VERSION}" in message
     assert _digest(path) == digest
+
+
+# --------------------------------------------------------------------------------------
+# schema 2 (decision rules versions, no releases) -> schema 3 (releases)
+
+SCHEMA_2_STORE = ROOT / "tests" / "data" / "session_store_schema_2.sqlite"
+FINISHED_2, ACTIVE_2 = "finished-under-schema-2", "active-under-schema-2"
+
+
+@pytest.fixture
+def schema_2_store(tmp_path):
+    path = tmp_path / "schema2.sqlite"
+    shutil.copyfile(SCHEMA_2_STORE, path)
+    return path
+
+
+def test_the_schema_2_fixture_has_no_releases(schema_2_store):
+    assert "release_name" not in _columns(schema_2_store, "sessions")
+    assert _columns(schema_2_store, "releases") == []
+    with open_store(schema_2_store, read_only=True) as store:
+        assert store.schema_version == 2
+        assert store.session_row(FINISHED_2)["release_name"] is None
+        assert show_session(store, FINISHED_2)["release"] is None
+        assert store.releases() == [] and list_sessions(store, release="anything") == []
+
+
+def test_a_schema_2_store_is_upgraded_in_place_and_its_sessions_go_on(schema_2_store):
+    with open_store(schema_2_store, read_only=True) as store:
+        before = store.dump()
+    with open_store(schema_2_store) as store:
+        assert store.schema_version == SCHEMA_VERSION == 3
+        versions = store.conn.execute("SELECT version, note FROM store_schema ORDER BY version").fetchall()
+        assert [v for v, _ in versions] == [2, 3] and "upgraded in place from schema 2" in versions[1][1]
+        after = store.dump()
+        for table in ("events", "banks", "designs", "exposure_counts", "bank_sessions"):
+            assert after[table] == before[table], table
+        assert [row[:-2] for row in after["sessions"]] == before["sessions"]
+        assert {row[-2:] for row in after["sessions"]} == {(None, None)}
+        # the event log became append-only (SQLite triggers)
+        with pytest.raises(sqlite3.IntegrityError, match="append-only"):
+            with store.writing():
+                store.conn.execute("UPDATE events SET response = 0")
+        with pytest.raises(sqlite3.IntegrityError, match="append-only"):
+            with store.writing():
+                store.conn.execute("DELETE FROM events")
+        assert store.dump() == after
+        cache = ProcessCache()
+        item, reply, k = pending_item(store, ACTIVE_2, cache=cache)["item_id"], None, 0
+        while reply is None or not reply["done"]:
+            reply = submit_answer(store, ACTIVE_2, item, (2, 4, 1, 3)[k % 4], cache=cache)
+            item, k = reply["item_id"], k + 1
+        assert session_result(store, ACTIVE_2)["items"]["scored"] == 2 + k
+    with open_store(schema_2_store) as store:  # upgraded once only
+        assert store.conn.execute("SELECT COUNT(*) FROM store_schema").fetchone()[0] == 2

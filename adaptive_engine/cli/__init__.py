@@ -14,7 +14,9 @@ from . import (
     bank_commands,  # noqa: F401,E402
     calibrate_commands,  # noqa: F401,E402
     design_commands,  # noqa: F401,E402
+    release_commands,  # noqa: F401,E402
     score_commands,  # noqa: F401,E402
+    service_commands,  # noqa: F401,E402
     session_commands,  # noqa: F401,E402
     simulate_commands,  # noqa: F401,E402
 )

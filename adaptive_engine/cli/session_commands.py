@@ -10,15 +10,16 @@ import sys
 
 import click
 
+from ..errors import AdaptiveEngineError, Problem
 from ._common import EXIT_INPUT_ERROR, echo_json, main, report_errors
 
-_DB = click.option("--db", "db_path", required=True, type=click.Path(dir_okay=False),
-                   help="Session store (SQLite file; created owner-only, mode 0600).")
+_DB = click.option("--db", "db_path", required=True, metavar="STORE",
+                   help="Session store: a SQLite file (created owner-only, mode 0600) or a postgresql:// URL.")
 
 #: The library names a bad value by its parameter; the command line by its flag or argument.
 SESSION_FLAGS = {"examinee": "--examinee", "seed": "--seed", "prior_mean": "--prior-mean",
                  "prior_sd": "--prior-sd", "session_id": "SESSION_ID", "item_id": "ITEM_ID",
-                 "status": "--status"}
+                 "status": "--status", "release": "--release"}
 
 #: A negative RESPONSE (-1) is a value to refuse for its range, not an unknown option.
 _NEGATIVE_VALUES_ARE_ARGUMENTS = {"ignore_unknown_options": True}
@@ -47,14 +48,17 @@ ASCII_FLOAT = AsciiFloat()
 
 @main.group()
 def session():
-    """Run live adaptive test sessions stored in a SQLite session store."""
+    """Run live adaptive test sessions stored in a session store (SQLite or PostgreSQL)."""
 
 
 @session.command("start")
 @_DB
-@click.option("--design", "design_file", required=True, type=click.Path(dir_okay=False),
+@click.option("--release", default=None, metavar="NAME[@VERSION]",
+              help="A release published in the store (its latest active version, or a pinned one); "
+                   "instead of --design and --bank.")
+@click.option("--design", "design_file", default=None, type=click.Path(dir_okay=False),
               help="Test design file (TOML).")
-@click.option("--bank", "bank_file", required=True, type=click.Path(dir_okay=False),
+@click.option("--bank", "bank_file", default=None, type=click.Path(dir_okay=False),
               help="Item bank file (.csv, .json or .db).")
 @click.option("--examinee", default=None, help="The examinee's id in your app (stored, not interpreted).")
 @click.option("--seed", type=click.IntRange(0, (1 << 63) - 1), default=None,
@@ -64,9 +68,10 @@ def session():
 @click.option("--prior-sd", type=ASCII_FLOAT, default=None,
               help="Examinee-specific prior SD of theta (one grid step .. the grid's width).")
 @report_errors(flags=SESSION_FLAGS)
-def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd):
-    """Start a session (the store is created if missing); print its id and first item.
+def start(db_path, release, design_file, bank_file, examinee, seed, prior_mean, prior_sd):
+    """Start a session of a release, or of a design on a bank; print its id and first item.
 
+    With --design and --bank the store is created if missing; with --release it must exist.
     Output: {"session_id": ..., "item_id": ..., "item": {...}, "done": false, ...}.
     """
     from ..bank.item_bank import load_bank
@@ -74,6 +79,19 @@ def start(db_path, design_file, bank_file, examinee, seed, prior_mean, prior_sd)
     from ..design.toml_file import read_design
     from ..live.session import commit_start, prepare_start
     from ..live.store import open_store
+
+    if release is not None:
+        if design_file is not None or bank_file is not None:
+            raise AdaptiveEngineError("give either --release or --design and --bank, not both", location="--release")
+        from ..live.releases import start_release_session
+
+        with open_store(db_path, create=False) as store:
+            echo_json(start_release_session(store, release, examinee=examinee, seed=seed,
+                                            prior_mean=prior_mean, prior_sd=prior_sd))
+        return
+    missing = [flag for flag, value in (("--design", design_file), ("--bank", bank_file)) if value is None]
+    if missing:
+        raise AdaptiveEngineError([Problem(flag, "required unless --release is given") for flag in missing])
 
     design = read_design(design_file)
     bank = load_bank(bank_file)
@@ -128,14 +146,15 @@ def show(session_id, db_path, with_seed):
 @_DB
 @click.option("--status", type=click.Choice(["active", "finished"]), default=None,
               help="Only sessions with this status.")
+@click.option("--release", default=None, metavar="NAME[@VERSION]", help="Only the sessions of this release.")
 @report_errors(flags=SESSION_FLAGS)
-def list_(db_path, status):
+def list_(db_path, status, release):
     """List the sessions of the store (oldest first) as a JSON array."""
     from ..live.session import list_sessions
     from ..live.store import open_store
 
     with open_store(db_path, create=False) as store:
-        echo_json(list_sessions(store, status=status))
+        echo_json(list_sessions(store, status=status, release=release))
 
 
 @session.command("try")

@@ -35,6 +35,7 @@ import json
 import math
 import os
 import re
+import threading
 import uuid
 from collections import OrderedDict
 from typing import Callable
@@ -51,7 +52,17 @@ from ..kernel.decision_rules import RuleSet, current_rule_set, installed_version
 from ..kernel.prepared import TestContext
 from ..kernel.random_streams import stream_key
 from ..kernel.state import KernelState
-from .store import SessionStore, bank_content, check_text, design_content, now_text, shown, to_json
+from .store import (
+    ConflictError,
+    InvalidValueError,
+    SessionStore,
+    bank_content,
+    check_text,
+    design_content,
+    now_text,
+    shown,
+    to_json,
+)
 
 _ROW0 = np.zeros(1, dtype=np.int64)
 _MAX_SEED = 1 << 63
@@ -67,6 +78,10 @@ _RESPONSE_CLIP = 10**18
 class ProcessCache:
     """Per-process caches of test contexts and of the kernel states of sessions served.
 
+    Safe to share between threads (a server's request threads): every access holds a lock.
+    A cached kernel state is changed only by an answer to its session, which holds that
+    session's write lock in the store.
+
     Parameters
     ----------
     max_contexts, max_states : int
@@ -78,48 +93,60 @@ class ProcessCache:
         self.max_states = max_states
         self._contexts: OrderedDict = OrderedDict()
         self._states: OrderedDict = OrderedDict()
+        self._lock = threading.RLock()
 
     def context(self, store: SessionStore, design_id: str, bank_id: str, *, rules: RuleSet,
                 design: Design | None = None, bank: ItemBank | None = None) -> TestContext:
         """The context of a stored (design, bank) pair under ``rules``, built on first use."""
         key = (rules.version, design_id, bank_id)
-        ctx = self._contexts.get(key)
-        if ctx is None:
-            if design is None:
-                design = store.load_design(design_id)
-            if bank is None:
-                bank = store.load_bank(bank_id)
-            ctx = rules.build_context(design, bank)
-            self._contexts[key] = ctx
-            while len(self._contexts) > self.max_contexts:
-                self._contexts.popitem(last=False)
-        else:
-            self._contexts.move_to_end(key)
-        return ctx
+        with self._lock:
+            ctx = self._contexts.get(key)
+            if ctx is None:
+                if design is None:
+                    design = store.load_design(design_id)
+                if bank is None:
+                    bank = store.load_bank(bank_id)
+                ctx = rules.build_context(design, bank)
+                self._contexts[key] = ctx
+                while len(self._contexts) > self.max_contexts:
+                    self._contexts.popitem(last=False)
+            else:
+                self._contexts.move_to_end(key)
+            return ctx
 
     def has_context(self, design_id: str, bank_id: str, *, rules: RuleSet) -> bool:
-        return (rules.version, design_id, bank_id) in self._contexts
+        with self._lock:
+            return (rules.version, design_id, bank_id) in self._contexts
 
     def state(self, store: SessionStore, session_id: str, seq: int) -> KernelState | None:
         """The cached state if it reflects exactly the events up to ``seq``, else None."""
-        hit = self._states.get((store.key, session_id))
-        if hit is None or hit[0] != seq:
-            return None
-        self._states.move_to_end((store.key, session_id))
-        return hit[1]
+        with self._lock:
+            hit = self._states.get((store.key, session_id))
+            if hit is None or hit[0] != seq:
+                return None
+            self._states.move_to_end((store.key, session_id))
+            return hit[1]
+
+    def latest(self, store: SessionStore, session_id: str) -> tuple[int, KernelState] | None:
+        """``(seq, state)`` cached for the session, however old (None when none is)."""
+        with self._lock:
+            return self._states.get((store.key, session_id))
 
     def keep(self, store: SessionStore, session_id: str, seq: int, state: KernelState) -> None:
-        self._states[(store.key, session_id)] = (seq, state)
-        self._states.move_to_end((store.key, session_id))
-        while len(self._states) > self.max_states:
-            self._states.popitem(last=False)
+        with self._lock:
+            self._states[(store.key, session_id)] = (seq, state)
+            self._states.move_to_end((store.key, session_id))
+            while len(self._states) > self.max_states:
+                self._states.popitem(last=False)
 
     def drop(self, store: SessionStore, session_id: str) -> None:
-        self._states.pop((store.key, session_id), None)
+        with self._lock:
+            self._states.pop((store.key, session_id), None)
 
     def clear(self) -> None:
-        self._contexts.clear()
-        self._states.clear()
+        with self._lock:
+            self._contexts.clear()
+            self._states.clear()
 
 
 #: The cache used when a function is not given one.
@@ -154,31 +181,33 @@ def _response_value(response, where: str) -> tuple[int, str]:
         text = shown(text, limit=24)
     else:
         what = f"'{shown(response)}'" if isinstance(response, str) else shown(response)
-        raise SessionError(f"the response must be an integer category (an int, or text of ASCII digits), "
-                           f"got {what}", location=where)
+        raise InvalidValueError(f"the response must be an integer category (an int, or text of ASCII digits), "
+                                f"got {what}", location=where, field="response")
     return max(-_RESPONSE_CLIP, min(_RESPONSE_CLIP, value)), text
 
 
-def _finite_number(value, what: str, *, location: str) -> float:
+def _finite_number(value, what: str, *, location: str, field: str) -> float:
     """``value`` as a float if it is a finite real number (not a bool, not text)."""
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, float, np.integer, np.floating)):
         what_it_is = f"'{shown(value)}'" if isinstance(value, str) else shown(value)
-        raise SessionError(f"{what} must be a number, got {what_it_is}", location=location)
+        raise InvalidValueError(f"{what} must be a number, got {what_it_is}", location=location, field=field)
     try:
         number = float(value)
     except OverflowError:  # a Python int beyond the float range
         number = math.inf
     if not math.isfinite(number):
-        raise SessionError(f"{what} must be a finite number, got {shown(value)}", location=location)
+        raise InvalidValueError(f"{what} must be a finite number, got {shown(value)}", location=location,
+                                field=field)
     return number
 
 
 def _elapsed_value(elapsed, where: str) -> float | None:
     if elapsed is None:
         return None
-    value = _finite_number(elapsed, "elapsed (seconds)", location=where)
+    value = _finite_number(elapsed, "elapsed (seconds)", location=where, field="elapsed")
     if value < 0:
-        raise SessionError(f"elapsed must be a number of seconds >= 0, got {shown(elapsed)}", location=where)
+        raise InvalidValueError(f"elapsed must be a number of seconds >= 0, got {shown(elapsed)}", location=where,
+                                field="elapsed")
     return value
 
 
@@ -187,9 +216,10 @@ def _seed_value(seed) -> int:
         # an unseeded session still gets one explicit, stored seed
         return int.from_bytes(os.urandom(8), "little") % _MAX_SEED
     if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)):
-        raise SessionError(f"the seed must be an integer, got {shown(seed)}", location="seed")
+        raise InvalidValueError(f"the seed must be an integer, got {shown(seed)}", location="seed", field="seed")
     if not 0 <= int(seed) < _MAX_SEED:
-        raise SessionError(f"the seed must lie in [0, 2**63), got {shown(int(seed))}", location="seed")
+        raise InvalidValueError(f"the seed must lie in [0, 2**63), got {shown(int(seed))}", location="seed",
+                                field="seed")
     return int(seed)
 
 
@@ -209,17 +239,17 @@ def _prior_values(design: Design, prior_mean, prior_sd) -> tuple[float, float]:
     step = width / (sc.grid_points - 1)
     mean, sd = float(sc.prior_mean), float(sc.prior_sd)
     if prior_mean is not None:
-        mean = _finite_number(prior_mean, "the prior mean", location="prior_mean")
+        mean = _finite_number(prior_mean, "the prior mean", location="prior_mean", field="prior_mean")
         if not lo <= mean <= hi:
-            raise SessionError(f"the prior mean must lie on the design's ability grid [{lo:g}, {hi:g}], "
-                               f"got {shown(prior_mean)}", location="prior_mean")
+            raise InvalidValueError(f"the prior mean must lie on the design's ability grid [{lo:g}, {hi:g}], "
+                                    f"got {shown(prior_mean)}", location="prior_mean", field="prior_mean")
     if prior_sd is not None:
-        sd = _finite_number(prior_sd, "the prior SD", location="prior_sd")
+        sd = _finite_number(prior_sd, "the prior SD", location="prior_sd", field="prior_sd")
         # a relative margin so that an SD of exactly one step or the width passes
         if not step * (1 - 1e-9) <= sd <= width * (1 + 1e-9):
-            raise SessionError(f"the prior SD must lie between one step of the design's ability grid "
-                               f"({step:g}) and the grid's width ({width:g}), got {shown(prior_sd)}",
-                               location="prior_sd")
+            raise InvalidValueError(f"the prior SD must lie between one step of the design's ability grid "
+                                    f"({step:g}) and the grid's width ({width:g}), got {shown(prior_sd)}",
+                                    location="prior_sd", field="prior_sd")
     return mean, sd
 
 
@@ -333,7 +363,7 @@ def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None
     if session_id is not None:
         check_text(session_id, "the session id", location="session_id")
         if not session_id.strip():
-            raise SessionError("a session id must be non-empty text", location="session_id")
+            raise InvalidValueError("a session id must be non-empty text", location="session_id", field="session_id")
     seed = _seed_value(seed)
     mean, sd = _prior_values(design, prior_mean, prior_sd)
     bank_id = bank_content(bank)[0]
@@ -462,7 +492,8 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
     mutated = [False]
     try:
         with store.writing():
-            row = store.session_row(session_id)
+            # locked until the transaction ends: answers to one session run one at a time
+            row = store.session_row(session_id, lock=True)
             return _answer_locked(store, rules, ctx, row, item_id, value, elapsed, cache, mutated)
     except BaseException:
         if mutated[0]:
@@ -480,20 +511,21 @@ def _answer_locked(store, rules, ctx, row, item_id, response, elapsed, cache, mu
         if earlier is not None:
             if earlier["response"] == value:
                 return json.loads(earlier["reply"])
-            raise SessionError(f"item {item} was already answered with {earlier['response']}; "
-                               f"a different answer ({value_text}) is refused", location=f"{where} item {item}")
+            raise ConflictError(f"item {item} was already answered with {earlier['response']}; "
+                                f"a different answer ({value_text}) is refused", location=f"{where} item {item}",
+                                field="response")
         if row["status"] != "active":
-            raise SessionError("the session has finished; it takes no more answers", location=where)
-        raise SessionError(f"item {item} is not the pending item (pending: {row['pending_item']})",
-                           location=f"{where} item {item}")
+            raise ConflictError("the session has finished; it takes no more answers", location=where)
+        raise ConflictError(f"item {item} is not the pending item (pending: {row['pending_item']})",
+                            location=f"{where} item {item}", field="item_id")
     if rules is None:
         raise rules_not_installed(row)
     bank = ctx.bank
     index = bank.index_of[item_id]
     n_cat = int(bank.n_categories[index])
     if not 0 <= value < n_cat:
-        raise SessionError(f"response {value_text} is outside the categories 0..{n_cat - 1} of item {item}",
-                           location=f"{where} item {item} response")
+        raise InvalidValueError(f"response {value_text} is outside the categories 0..{n_cat - 1} of item {item}",
+                                location=f"{where} item {item} response", field="response")
     state = session_state(store, ctx, row, cache=cache, rules=rules)
     mutated[0] = True
     picked = rules.answer(ctx, state, _ROW0, np.array([value]),
@@ -521,7 +553,7 @@ def rules_not_installed(row: dict) -> SessionError:
     session_id = shown(row["session_id"])
     version = row["decision_rules_version"]
     installed = ", ".join(str(v) for v in installed_versions())
-    return SessionError(
+    return ConflictError(
         f"the session started under decision rules version {shown(version)}, which this engine "
         f"cannot run (it runs version {decision_rules.DECISION_RULES_VERSION}; installed: {installed}); "
         f"the session can still be read (show, result) but not continued here", location=f"session {session_id}")
@@ -539,6 +571,12 @@ def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
                   cache: ProcessCache | None = None, rules: RuleSet | None = None) -> KernelState:
     """The kernel state of a stored session: cached if up to date, else replayed from the log.
 
+    A cached state that other processes have moved on since (a session answered on several
+    servers in turn) is brought up to date by answering it the answers it lacks, in order,
+    as :func:`~adaptive_engine.kernel.cycle.rebuild` would from the start: the same steps
+    from the same state give the same state.  Without a cached state, or when the log does
+    not continue it, the whole log is replayed.
+
     ``rules`` (default: the session's own, :func:`session_rules`) must be the rule set
     ``ctx`` was built under.
     """
@@ -554,13 +592,19 @@ def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
     if unknown:
         raise SessionError(f"the log names item {unknown[0]} that the session's bank lacks",
                            location=f"session {shown(session_id)}")
-    try:
-        state, _ = rules.rebuild(ctx, int(stream_key(int(row["seed"]))), float(row["prior_mean"]),
-                                  float(row["prior_sd"]), [bank.index_of[i] for i, _, _ in answers],
-                                  [int(r) for _, r, _ in answers], elapsed=[e for _, _, e in answers])
-    except ValueError as exc:
-        raise SessionError(f"the stored answers do not replay: {exc}",
-                           location=f"session {shown(session_id)}") from None
+    hit = cache.latest(store, session_id)
+    state = None
+    if hit is not None and hit[0] < int(row["last_seq"]):
+        cache.drop(store, session_id)  # changed in place below: never reused half-way
+        state = _caught_up(rules, ctx, hit[1], answers)
+    if state is None:
+        try:
+            state, _ = rules.rebuild(ctx, int(stream_key(int(row["seed"]))), float(row["prior_mean"]),
+                                      float(row["prior_sd"]), [bank.index_of[i] for i, _, _ in answers],
+                                      [int(r) for _, r, _ in answers], elapsed=[e for _, _, e in answers])
+        except ValueError as exc:
+            raise SessionError(f"the stored answers do not replay: {exc}",
+                               location=f"session {shown(session_id)}") from None
     pending = None if state.pending[0] < 0 else str(bank.item_ids[state.pending[0]])
     if pending != row["pending_item"]:
         raise SessionError(f"the stored answers replay to pending item {pending}, the session row says "
@@ -569,28 +613,64 @@ def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
     return state
 
 
+def _caught_up(rules: RuleSet, ctx: TestContext, state: KernelState, answers: list) -> KernelState | None:
+    """``state`` answered the logged answers it lacks; None when the log does not continue it."""
+    done = int(state.n_given[0])
+    if done > len(answers) or state.done[0]:
+        return None
+    try:
+        for item_id, response, elapsed in answers[done:]:
+            if state.done[0] or int(state.pending[0]) != ctx.bank.index_of[item_id]:
+                return None
+            rules.answer(ctx, state, _ROW0, np.array([int(response)]),
+                         elapsed=None if elapsed is None else np.array([elapsed], dtype=float))
+    except ValueError:
+        return None
+    return state
+
+
 def pending_item(store: SessionStore, session_id: str, *, cache: ProcessCache | None = None) -> dict:
     """The item the session waits for: ``session_id``, ``item_id``, ``item``, ``items_given``, ``done``."""
-    cache = PROCESS_CACHE if cache is None else cache
     row = store.session_row(session_id)
-    view = None
-    if row["pending_item"] is not None:
-        rules = rule_set(row["decision_rules_version"])
-        if rules is not None:
-            ctx = cache.context(store, row["design_id"], row["bank_id"], rules=rules)
-            bank = ctx.bank
-        else:  # readable all the same: the view needs the bank only
-            bank = store.load_bank(row["bank_id"])
-        view = item_view(bank, bank.index_of[row["pending_item"]])
-    return {"session_id": session_id, "item_id": row["pending_item"], "item": view,
+    return {"session_id": session_id, "item_id": row["pending_item"], "item": _pending_view(store, row, cache),
             "items_given": int(row["n_given"]), "done": row["status"] == "finished"}
+
+
+def _pending_view(store: SessionStore, row: dict, cache: ProcessCache | None) -> dict | None:
+    cache = PROCESS_CACHE if cache is None else cache
+    if row["pending_item"] is None:
+        return None
+    rules = rule_set(row["decision_rules_version"])
+    if rules is not None:
+        ctx = cache.context(store, row["design_id"], row["bank_id"], rules=rules)
+        bank = ctx.bank
+    else:  # readable all the same: the view needs the bank only
+        bank = store.load_bank(row["bank_id"])
+    return item_view(bank, bank.index_of[row["pending_item"]])
+
+
+def session_status(store: SessionStore, session_id: str, *, cache: ProcessCache | None = None) -> dict:
+    """What a page reload needs: :func:`pending_item` plus the status, estimate and release.
+
+    Returns
+    -------
+    dict
+        ``session_id``, ``status``, ``release`` (``"name@version"`` or None), ``item_id``,
+        ``item``, ``items_given``, ``theta``, ``se``, ``done``.
+    """
+    row = store.session_row(session_id)
+    snapshot = json.loads(row["state"])
+    return plain({"session_id": session_id, "status": row["status"], "release": release_label(row),
+                  "item_id": row["pending_item"], "item": _pending_view(store, row, cache),
+                  "items_given": int(row["n_given"]), "theta": snapshot["theta"][0], "se": snapshot["se"],
+                  "done": row["status"] == "finished"})
 
 
 def session_result(store: SessionStore, session_id: str) -> dict:
     """The final report of a finished session (SessionError while it is still active)."""
     row = store.session_row(session_id)
     if row["status"] != "finished":
-        raise SessionError("the session is still active: no result yet", location=f"session {shown(session_id)}")
+        raise ConflictError("the session is still active: no result yet", location=f"session {shown(session_id)}")
     return json.loads(row["result"])
 
 
@@ -613,7 +693,7 @@ def show_session(store: SessionStore, session_id: str, *, include_seed: bool = F
     ]
     out = {"session_id": session_id, "examinee": row["examinee"], "status": row["status"],
            "created_at": row["created_at"], "updated_at": row["updated_at"],
-           "decision_rules_version": row["decision_rules_version"],
+           "release": release_label(row), "decision_rules_version": row["decision_rules_version"],
            "design_fingerprint": row["design_id"], "bank_fingerprint": row["bank_id"],
            "administered": administered, "pending_item": row["pending_item"],
            "theta": snapshot["theta"][0], "se": snapshot["se"]}
@@ -625,13 +705,30 @@ def show_session(store: SessionStore, session_id: str, *, include_seed: bool = F
     return out
 
 
-def list_sessions(store: SessionStore, *, status: str | None = None) -> list[dict]:
-    """One summary per session (oldest first), optionally only ``active`` or ``finished`` ones."""
+def release_label(row: dict) -> str | None:
+    """``"name@version"`` of the release a stored session started against (None: no release)."""
+    if row.get("release_name") is None:
+        return None
+    return f"{row['release_name']}@{row['release_version']}"
+
+
+def list_sessions(store: SessionStore, *, status: str | None = None, release: str | None = None,
+                  limit: int | None = None, offset: int = 0) -> list[dict]:
+    """One summary per session (oldest first).
+
+    Parameters
+    ----------
+    status : ``"active"`` or ``"finished"``, optional
+    release : str, optional
+        Only the sessions of a release: ``name`` (any version) or ``name@version``.
+    limit, offset : int, optional
+        A page of the list (default: all of it).
+    """
     out = []
-    for row in store.sessions(status=status):
+    for row in store.sessions(status=status, release=release, limit=limit, offset=offset):
         snapshot = json.loads(row["state"])
         out.append({"session_id": row["session_id"], "examinee": row["examinee"], "status": row["status"],
-                    "decision_rules_version": row["decision_rules_version"],
+                    "release": release_label(row), "decision_rules_version": row["decision_rules_version"],
                     "items_given": row["n_given"], "pending_item": row["pending_item"],
                     "theta": snapshot["theta"][0], "se": snapshot["se"],
                     "created_at": row["created_at"], "updated_at": row["updated_at"]})
