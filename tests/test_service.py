@@ -460,6 +460,32 @@ def test_no_token_file_no_service(tmp_path):
         create_app(ServiceSettings(store=str(tmp_path / "s.db"), tokens=str(tmp_path / "secret.toml")))
 
 
+def _add_token_when_released(path, name, barrier):
+    barrier.wait()
+    for k in range(5):
+        new_token(path, name=f"{name}-{k}", role="delivery")
+
+
+def test_tokens_added_at_once_by_several_processes_are_all_kept(tmp_path):
+    # a read-modify-write race: without a lock, two processes read the same old file and the
+    # later rename drops the other's token (seen with two `token new` at once)
+    import multiprocessing
+
+    path = tmp_path / "tokens.toml"
+    ctx = multiprocessing.get_context("fork")
+    barrier = ctx.Barrier(6)
+    workers = [ctx.Process(target=_add_token_when_released, args=(str(path), f"app{i}", barrier)) for i in range(6)]
+    for w in workers:
+        w.start()
+    for w in workers:
+        w.join(60)
+        assert w.exitcode == 0
+    from adaptive_engine.live.tokens import read_tokens
+
+    names = sorted(t.name for t in read_tokens(path).tokens)
+    assert names == sorted(f"app{i}-{k}" for i in range(6) for k in range(5))
+
+
 def test_token_file_digests_are_sha256_of_the_secret(tmp_path):
     """The file holds the SHA-256 (FIPS 180-4) hex digest of the secret's UTF-8 bytes."""
     import hashlib
