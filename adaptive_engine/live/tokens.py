@@ -16,8 +16,8 @@ back into one.  :func:`new_token` adds a token and returns its secret, once.
 
 from __future__ import annotations
 
-import hashlib
 import contextlib
+import hashlib
 import hmac
 import json
 import os
