@@ -74,6 +74,12 @@ class CalibrationSettings:
         The constant D of the output bank.
     min_answers : int
         Fewest answers an item needs.
+    points_per_dimension : int or None
+        Points per dimension of the product grid of a multidimensional calibration (None:
+        41, 21 and 15 for K = 1, 2, 3; :mod:`.multidimensional_em`); not used otherwise.
+    uncorrelated_dimensions : bool
+        Multidimensional calibration: hold the latent correlations at 0 instead of
+        estimating them.
     """
 
     quadrature_points: int = attrs.field(default=61, validator=bounded(5))
@@ -84,6 +90,8 @@ class CalibrationSettings:
     priors: PriorChoice = attrs.field(factory=PriorChoice)
     scaling: float = attrs.field(default=1.0, validator=bounded(0, strict=True))
     min_answers: int = attrs.field(default=20, validator=bounded(1))
+    points_per_dimension: int | None = attrs.field(default=None, validator=attrs.validators.optional(bounded(5)))
+    uncorrelated_dimensions: bool = False
 
     def grid(self) -> tuple[np.ndarray, np.ndarray]:
         """Points (G,) and normalised log weights (G,) of the N(0, 1) population."""
@@ -196,10 +204,30 @@ def calibrate_responses(
     place of the population SD.
     """
     settings = settings or CalibrationSettings()
+    if template is not None and template.uses_multidimensional_models:
+        return _calibrate_multidimensional(table, model=model, template=template, settings=settings, name=name)
+    if settings.points_per_dimension is not None or settings.uncorrelated_dimensions:
+        raise CalibrationError(
+            "points_per_dimension and uncorrelated_dimensions are for a multidimensional template (M2PL, M3PL, "
+            "MGRM items); a one-dimensional calibration takes quadrature_points",
+            location="setting points_per_dimension" if settings.points_per_dimension is not None
+            else "setting uncorrelated_dimensions")
     if model is not None and str(model).strip().upper() == "PCM" and not settings.common_slope:
         settings = attrs.evolve(settings, common_slope=True)
     data = prepare_data(table, model=model, template=template, min_answers=settings.min_answers)
     return calibrate_data(data, settings=settings, name=name)
+
+
+def _calibrate_multidimensional(table, *, model, template, settings, name):
+    """Confirmatory multidimensional calibration (:mod:`.multidimensional_em`, imported here
+    because it builds on this module)."""
+    if model is not None:
+        raise CalibrationError(
+            f"a model ({model}) cannot be combined with a multidimensional template: the template gives every "
+            "item its model (M2PL, M3PL or MGRM) and its loading pattern", location="model")
+    from .multidimensional_em import calibrate_multidimensional_responses
+
+    return calibrate_multidimensional_responses(table, template=template, settings=settings, name=name)
 
 
 def calibrate_data(
@@ -540,7 +568,7 @@ def _natural(data, groups, etas) -> dict:
 
 
 def _max_change(old, new) -> float:
-    diffs = [np.nan_to_num(np.abs(new[k] - old[k]), nan=0.0) for k in ("a", "b", "c", "d", "thresholds")]
+    diffs = [np.nan_to_num(np.abs(new[k] - old[k]), nan=0.0) for k in old]
     return float(max((x.max() if x.size else 0.0) for x in diffs))
 
 

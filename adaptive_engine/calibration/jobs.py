@@ -82,6 +82,8 @@ def calibrate_file(
     table = read_responses(responses_path)
     result = calibrate_responses(table, model=model, template=template, settings=settings,
                                  name=Path(out).stem)
+    if template is not None and template.uses_multidimensional_models:
+        return _multidimensional_outputs(result, out, fit_report)
     fit = fit_for_result(result)
     reports = {}
     if fit_report:
@@ -91,6 +93,18 @@ def calibrate_file(
     summary.update(fit_statistic=fit.statistic_name, misfit_p_threshold=MISFIT_P_THRESHOLD,
                    items_below_misfit_p_threshold=int((fit.p_value < MISFIT_P_THRESHOLD).sum()),
                    out=str(out), fit_report=str(fit_report) if fit_report else None)
+    return summary
+
+
+def _multidimensional_outputs(result, out: Path, fit_report) -> dict:
+    """Write the bank (and a report of every item's parameters and standard errors: item fit
+    statistics are not computed for multidimensional items) of a multidimensional calibration."""
+    reports = {}
+    if fit_report:
+        reports[Path(fit_report)] = rows_to_csv(result.item_rows())
+    _write_outputs(result.bank, out, reports)
+    summary = result.summary()
+    summary.update(fit_statistic=None, out=str(out), fit_report=str(fit_report) if fit_report else None)
     return summary
 
 
