@@ -24,8 +24,8 @@ from adaptive_engine.calibration.data import CalibrationData, prepare_data
 from adaptive_engine.calibration.multidimensional_em import (
     _Answers,
     _e_step,
-    _ScoreLayout,
     _make_groups,
+    _ScoreLayout,
     grid_log_weights,
     marginal_log_likelihood,
     product_grid,
@@ -356,8 +356,8 @@ def test_a_model_or_priors_with_a_multidimensional_template_are_refused():
 
 def test_grid_settings_with_a_one_dimensional_template_are_refused():
     template = ItemBank(item_ids=["A", "B"], model=["2PL", "2PL"], a=[1, 1], b=[0, 0], c=[0, 0], d=[1, 1],
-                        thresholds=np.zeros((2, 0)), area=["x", "x"], item_set=["", ""], enemy_groups=[(), ()], status=["operational"] * 2,
-                        label=["", ""])
+                        thresholds=np.zeros((2, 0)), area=["x", "x"], item_set=["", ""], enemy_groups=[(), ()],
+                        status=["operational"] * 2, label=["", ""])
     table = ResponseTable.from_arrays(["p1", "p1"], ["A", "B"], [0, 1])
     with pytest.raises(CalibrationError) as info:
         calibrate_responses(table, template=template, settings=CalibrationSettings(points_per_dimension=11))
