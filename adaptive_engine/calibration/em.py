@@ -295,7 +295,7 @@ def calibrate_data(
         objective = ll + _log_prior_total(groups, current, shared, held, settings)
         return _m_step(groups, current, shared, held, r_all, grid, settings), objective
 
-    etas, iteration, converged, change = _accelerated_cycles(
+    etas, iteration, converged, change = accelerated_cycles(
         cycle, etas, groups, lambda e: _natural(data, groups, e), settings)
     log_table = _log_table(data, groups, etas, grid, settings.scaling)
     _, loglik, posterior = _e_step(answers, log_table, log_prior, data.n_items, c_max)
@@ -367,7 +367,7 @@ def estimate_at_known_abilities(
 # pieces
 
 
-def _accelerated_cycles(cycle, etas, groups, natural_of, settings):
+def accelerated_cycles(cycle, etas, groups, natural_of, settings):
     """Repeat EM cycles until no parameter moves more than the tolerance.
 
     Squared extrapolation (Varadhan & Roland 2008, SQUAREM): from two plain cycles
@@ -378,6 +378,8 @@ def _accelerated_cycles(cycle, etas, groups, natural_of, settings):
     number of cycles several-fold without changing the fixed point.
 
     ``settings.max_iterations`` caps every cycle run, the extrapolation's included.
+    ``groups`` need only ``is_valid(eta)``; ``natural_of`` returns a dict of arrays, compared
+    key by key (the multidimensional calibration passes its own blocks and keys).
 
     Returns
     -------

@@ -26,7 +26,7 @@ a product grid the same way).  Each EM cycle (Bock & Aitkin 1981):
   ``diag(S) = 1``).  With ``uncorrelated_dimensions`` R stays the identity and only the
   variances are expanded.
 
-The cycles are accelerated as the one-dimensional ones (SQUAREM, :func:`.em._accelerated_cycles`).
+The cycles are accelerated as the one-dimensional ones (SQUAREM, :func:`.em.accelerated_cycles`).
 Standard errors of the slopes, intercepts and correlations come from the cross-product of
 the per-person scores of the marginal log-likelihood at the estimate (the empirical
 information; each score is the posterior mean of the complete-data score, Louis 1982),
@@ -47,7 +47,7 @@ from ..bank.responses import ResponseTable
 from ..errors import CalibrationError, Problem
 from ..irt import multidimensional as md
 from .data import CalibrationData, prepare_data
-from .em import CalibrationSettings, _accelerated_cycles
+from .em import CalibrationSettings, accelerated_cycles
 from .multidimensional_forms import MultidimensionalGroup, category_jacobian, fisher_steps
 
 #: most dimensions a product grid is used for
@@ -350,7 +350,7 @@ def calibrate_multidimensional_data(
                                                for g, e in zip(groups, current[:-1])]),
                     correlation=np.asarray(current[-1]).ravel())
 
-    etas, iterations, converged, change = _accelerated_cycles(cycle, etas, blocks, natural_of, settings)
+    etas, iterations, converged, change = accelerated_cycles(cycle, etas, blocks, natural_of, settings)
     correlation = _correlation_from(etas[-1][0], k)
     final = _e_step(answers, _log_table(data, groups, etas[:-1], grid, settings.scaling),
                     grid_log_weights(grid, correlation), grid,
