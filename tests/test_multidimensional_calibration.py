@@ -122,6 +122,28 @@ def test_recovers_a_simple_structure_m2pl_bank_and_the_latent_correlation():
     assert result.eap.shape == (2000, 2) and result.posterior_sd.shape == (2000, 2)
 
 
+def test_one_dimension_agrees_with_the_one_dimensional_calibration():
+    # Reference: with K = 1 the M2PL is the 2PL (a = a1, b = -intercept / a1) and the model is
+    # the one-dimensional one, whose MML-EM is checked against direct maximisation with
+    # scipy.optimize (tests/test_calibration_reference.py).  On the same 61-point grid and
+    # converged tightly, the expanded EM (variance rescaled to 1 each cycle) and the
+    # one-dimensional EM (population held at N(0, 1)) reach the same estimate: measured
+    # 7e-8; bound 1e-6.
+    rng = np.random.default_rng(61)
+    truth = make_bank(rng.uniform(0.7, 2.0, (10, 1)), rng.normal(0.0, 1.0, (10, 1)))
+    table, _ = draw_answers(truth, 1000, [[1.0]], seed=62)
+    multi = calibrate_responses(table, template=truth,
+                                settings=CalibrationSettings(points_per_dimension=61, tolerance=1e-8))
+    single = calibrate_responses(table, model="2PL", settings=CalibrationSettings(tolerance=1e-8))
+    order = [list(single.bank.item_ids).index(i) for i in multi.bank.item_ids]
+    a, b = single.bank.a[order], single.bank.b[order]
+    np.testing.assert_allclose(multi.bank.slopes[:, 0], a, atol=1e-6)
+    np.testing.assert_allclose(multi.bank.intercepts[:, 0], -a * b, atol=1e-6)
+    assert multi.log_likelihood == pytest.approx(single.log_likelihood, abs=1e-6)
+    np.testing.assert_allclose(multi.standard_errors["slopes"][:, 0], single.standard_errors["a"][order], atol=1e-6)
+    assert multi.n_parameters == single.n_parameters == 20
+
+
 def test_uncorrelated_dimensions_hold_the_correlation_at_zero():
     truth = simple_structure(10, seed=3)
     table, _ = draw_answers(truth, 600, [[1.0, 0.0], [0.0, 1.0]], seed=4)
@@ -218,29 +240,39 @@ def test_m_step_gradient_matches_central_differences(model, categories, c):
     np.testing.assert_array_equal(moved[~group.free_columns()], eta[~group.free_columns()])
 
 
-def test_per_person_scores_sum_to_the_gradient_of_the_marginal_log_likelihood():
+@pytest.mark.parametrize("dense", [True, False])
+def test_per_person_scores_sum_to_the_gradient_of_the_marginal_log_likelihood(dense, monkeypatch):
     # Reference: central differences of the marginal log-likelihood (summed over persons)
     # in each item parameter and in the correlation; the standard errors are built from
-    # these per-person scores (their cross-product).
+    # these per-person scores (their cross-product), computed for complete data by one
+    # product per group and for sparse data answer by answer -- both are checked.
     truth = make_bank([[1.0, 0.0], [0.7, 0.0], [0.0, 1.3], [0.5, 0.9]], [[0.2], [-0.6], [0.4], [0.0]],
                       names=("operations", "safety"))
     table, _ = draw_answers(truth, 80, [[1.0, 0.3], [0.3, 1.0]], seed=9)
+    keep = np.random.default_rng(3).random(table.person.size) < 0.7  # some answers missing
+    table = ResponseTable.from_arrays(table.person_ids[table.person[keep]], table.item_ids[table.item[keep]],
+                                      table.response[keep])
     data = prepare_data(table, template=truth, min_answers=5, multidimensional=True)
     groups = _make_groups(data)
     eta = groups[0].from_natural(data.template.slopes, data.template.intercepts)
     correlation = np.array([[1.0, 0.3], [0.3, 1.0]])
     grid = product_grid(2, 15, 5.0)
 
-    def total(eta_, rho):
-        table_ = np.full((data.n_items, grid.shape[0], 2), -1e4)
-        table_[groups[0].rows] = md.log_probabilities(*md.outer(groups[0].parameters(eta_, 1.0), grid))
-        corr = np.array([[1.0, rho], [rho, 1.0]])
-        return _e_step(_Answers(data), table_, grid_log_weights(grid, corr), grid).loglik
+    def log_table(eta_):
+        out = np.full((data.n_items, grid.shape[0], 2), -1e4)
+        out[groups[0].rows] = md.log_probabilities(*md.outer(groups[0].parameters(eta_, 1.0), grid))
+        return out
 
-    layout = _ScoreLayout(data, groups, [eta], grid, 1.0, correlation, 1)
-    table0 = np.full((data.n_items, grid.shape[0], 2), -1e4)
-    table0[groups[0].rows] = md.log_probabilities(*md.outer(groups[0].parameters(eta, 1.0), grid))
-    _e_step(_Answers(data), table0, grid_log_weights(grid, correlation), grid, scores=layout)
+    def total(eta_, rho):
+        corr = np.array([[1.0, rho], [rho, 1.0]])
+        return _e_step(_Answers(data), log_table(eta_), grid_log_weights(grid, corr), grid).loglik
+
+    def layout_at(**kw):
+        layout = _ScoreLayout(data, groups, [eta], grid, 1.0, correlation, 1, dense=dense, **kw)
+        _e_step(_Answers(data), log_table(eta), grid_log_weights(grid, correlation), grid, scores=layout)
+        return layout
+
+    layout = layout_at()
     free = groups[0].free_columns()
     h = 1e-6
     numeric = []
@@ -251,6 +283,18 @@ def test_per_person_scores_sum_to_the_gradient_of_the_marginal_log_likelihood():
         numeric.append((total(up, 0.3) - total(down, 0.3)) / (2 * h))
     numeric.append((total(eta, 0.3 + h) - total(eta, 0.3 - h)) / (2 * h))
     np.testing.assert_allclose(layout.score_sum, numeric, rtol=1e-4, atol=1e-5)
+    # the item-by-item blocks used for large banks are the diagonal blocks of the full matrix
+    import adaptive_engine.calibration.multidimensional_em as mde
+
+    monkeypatch.setattr(mde, "_FULL_CROSS_PRODUCT_PARAMETERS", 0)
+    blocks = layout_at().cross_product
+    numbers = mde._ScoreNumbers(groups).numbers[0]
+    for row in range(numbers.shape[0]):
+        idx = numbers[row][numbers[row] >= 0]
+        ok = numbers[row] >= 0
+        np.testing.assert_allclose(blocks["items"][0][row][np.ix_(ok, ok)],
+                                   layout.cross_product[np.ix_(idx, idx)], rtol=1e-12)
+    np.testing.assert_allclose(blocks["correlation"], layout.cross_product[-1:, -1:], rtol=1e-12)
 
 
 # ---------------------------------------------------------------------------------------
@@ -287,7 +331,7 @@ def test_a_bifactor_pattern_is_a_pattern_like_any_other():
     slopes[:6, 1] = rng.uniform(0.5, 0.9, 6)
     slopes[6:, 2] = rng.uniform(0.5, 0.9, 6)
     truth = make_bank(slopes, rng.normal(0, 0.8, (n, 1)), names=("general", "treatment", "safety"))
-    table, _ = draw_answers(truth, 800, np.eye(3), seed=32)
+    table, _ = draw_answers(truth, 600, np.eye(3), seed=32)
     result = calibrate_responses(table, template=truth, settings=CalibrationSettings(
         uncorrelated_dimensions=True, points_per_dimension=9, tolerance=1e-3))
     est, _ = in_order(result, truth)
@@ -338,6 +382,15 @@ def test_unusable_patterns_and_settings_are_refused_by_name(slopes, kwargs, loca
         calibrate_responses(table, template=template, settings=CalibrationSettings(**kwargs))
     problem = info.value.problems[0]
     assert problem.location == location and fragment in problem.message, info.value.problems
+
+
+def test_the_pattern_is_checked_on_the_items_answered():
+    template = make_bank([[1, 0], [1, 0], [0, 1], [0, 1]], np.zeros((4, 1)))
+    table = _answers_for(make_bank([[1, 0], [1, 0]], np.zeros((2, 1))))  # only Q001, Q002 answered
+    with pytest.raises(CalibrationError) as info:
+        calibrate_responses(table, template=template)
+    problem = info.value.problems[0]
+    assert problem.location == "template dimension theta_2" and "answered" in problem.message
 
 
 def test_a_model_or_priors_with_a_multidimensional_template_are_refused():
@@ -412,6 +465,16 @@ def test_cli_prints_the_latent_correlation_and_json_has_it(two_dimensional_files
     res = CliRunner().invoke(main, ["calibrate", str(answers), "--template", str(template), "--out", str(out),
                                     "--uncorrelated-dimensions", "--points-per-dimension", "11", "--json"])
     assert res.exit_code == 0 and json.loads(res.stdout)["latent_correlation"] == [[1.0, 0.0], [0.0, 1.0]]
+    # a CSV template names its dimensions with --dimensions; a JSON output keeps them
+    csv_template, json_out = tmp_path / "template.csv", tmp_path / "calibrated.json"
+    write_bank(load_bank(template), csv_template)
+    res = CliRunner().invoke(main, ["calibrate", str(answers), "--template", str(csv_template), "--out", str(json_out),
+                                    "--dimensions", "treatment,safety", "--points-per-dimension", "11", "--json"])
+    assert res.exit_code == 0 and json.loads(res.stdout)["dimensions"] == ["treatment", "safety"]
+    assert load_bank(json_out).dimension_names == ("treatment", "safety")
+    res = CliRunner().invoke(main, ["calibrate", str(answers), "--template", str(template), "--out", str(json_out),
+                                    "--dimensions", "a,b,c"])
+    assert res.exit_code == 2 and "--dimensions" in res.output
 
 
 def test_cli_refusals_name_the_flags(two_dimensional_files):

@@ -57,6 +57,7 @@ def calibrate_file(
     settings: CalibrationSettings | None = None,
     fit_report=None,
     scaling: float | None = None,
+    dimensions=None,
 ) -> dict:
     """Calibrate a long response CSV and write the bank (and the item report).
 
@@ -64,6 +65,8 @@ def calibrate_file(
     output takes the template's D: a CSV template takes ``scaling``, a JSON/SQLite template
     keeps its own and a disagreeing ``scaling`` is an error (:func:`load_bank`).  Without a
     template the output gets ``scaling`` (default ``settings.scaling``).
+
+    ``dimensions`` names the dimensions of a multidimensional template (see :func:`load_bank`).
 
     Returns
     -------
@@ -74,7 +77,7 @@ def calibrate_file(
     if fit_report:
         fit_report = _check_folder(fit_report, "fit_report")
     settings = settings or CalibrationSettings()
-    template = load_bank(template_path, scaling=scaling) if template_path else None
+    template = load_bank(template_path, scaling=scaling, dimensions=dimensions) if template_path else None
     if template is not None:
         settings = attrs.evolve(settings, scaling=template.scaling)
     elif scaling is not None:

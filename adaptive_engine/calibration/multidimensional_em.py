@@ -280,6 +280,11 @@ def calibrate_multidimensional_responses(
     if problems:
         raise CalibrationError(problems)
     data = prepare_data(table, template=template, min_answers=settings.min_answers, multidimensional=True)
+    # the items answered are the pattern that is fitted (the template's others are left out)
+    problems = pattern_problems(data.template, uncorrelated=settings.uncorrelated_dimensions)
+    if problems:
+        raise CalibrationError([Problem(p.location, p.message + " (counting the template's items that were "
+                                                    "answered)") for p in problems])
     return calibrate_multidimensional_data(data, settings=settings, name=name)
 
 
@@ -354,7 +359,8 @@ def calibrate_multidimensional_data(
     correlation = _correlation_from(etas[-1][0], k)
     final = _e_step(answers, _log_table(data, groups, etas[:-1], grid, settings.scaling),
                     grid_log_weights(grid, correlation), grid,
-                    scores=_ScoreLayout(data, groups, etas[:-1], grid, settings.scaling, correlation, n_corr))
+                    scores=_ScoreLayout(data, groups, etas[:-1], grid, settings.scaling, correlation, n_corr,
+                                        dense=answers.dense))
     history.append(final.loglik)
     ses = _standard_errors(data, groups, etas[:-1], final, k, n_corr)
     bank = _make_bank(data, groups, etas[:-1], settings.scaling, name)
@@ -501,29 +507,35 @@ class _ScoreLayout:
     ``sum_g w_pg d log P_j,x(theta_g) / d eta`` (x the person's answer; 0 if unanswered);
     for a correlation ``rho_lm`` it is ``sum_g w_pg d log pi_g / d rho_lm`` with the grid
     weights ``pi_g`` of N(0, R): ``u_l u_m - sum_g' pi_g' u_l u_m``, ``u = R^-1 theta_g``.
+
+    Complete (or nearly complete) data take one matrix product per group of items over all
+    persons of a chunk; sparse data (adaptive tests) take, item by item, only the persons who
+    answered it, so the cost follows the answers given, not persons x items.
     """
 
-    def __init__(self, data, groups, etas, grid, scaling, correlation, n_corr):
-        self.data = data
-        self.groups = groups
-        self.responses = np.full((data.n_persons, data.n_items), -1, dtype=np.int64)
-        self.responses[data.person, data.item] = data.response
-        self.tables = []
-        self.numbers = []
-        index = 0
-        for g, eta in zip(groups, etas):
-            p, dp = category_jacobian(g, eta, grid, scaling)
-            dlog = dp / np.maximum(p, 1e-300)[..., None]  # (r, G, C, m)
-            r, gg, cc, m = dlog.shape
-            self.tables.append(np.ascontiguousarray(dlog.transpose(1, 0, 2, 3).reshape(gg, r * cc * m)))
-            free = g.free_columns()
-            numbers = np.full((r, m), -1, dtype=np.int64)
-            numbers[free] = index + np.arange(int(free.sum()))
-            index += int(free.sum())
-            self.numbers.append(numbers)
-        self.item_parameters = index
+    def __init__(self, data, groups, etas, grid, scaling, correlation, n_corr, *, dense=True):
+        self.groups, self.etas, self.grid, self.scaling = groups, etas, grid, scaling
+        self.dense = dense
+        self.numbers = _ScoreNumbers(groups).numbers
+        self.item_parameters = sum(int((n >= 0).sum()) for n in self.numbers)
+        if dense:
+            self.responses = np.full((data.n_persons, data.n_items), -1, dtype=np.int64)
+            self.responses[data.person, data.item] = data.response
+            self.tables = []
+            for g, eta in zip(groups, etas):
+                dlog = _log_derivative_table(g, eta, grid, scaling)  # (r, G, C, m)
+                r, gg, cc, m = dlog.shape
+                self.tables.append(np.ascontiguousarray(dlog.transpose(1, 0, 2, 3).reshape(gg, r * cc * m)))
+        else:
+            order = np.argsort(data.person, kind="stable")
+            self.person, self.item, self.response = data.person[order], data.item[order], data.response[order]
+            self.group_of = np.zeros(data.n_items, dtype=np.int64)
+            self.row_of = np.zeros(data.n_items, dtype=np.int64)
+            for gi, g in enumerate(groups):
+                self.group_of[g.rows] = gi
+                self.row_of[g.rows] = np.arange(g.rows.size)
         self.n_corr = n_corr
-        self.n_parameters = index + n_corr
+        self.n_parameters = self.item_parameters + n_corr
         if n_corr:
             k = grid.shape[1]
             u = np.linalg.solve(correlation, grid.T).T
@@ -542,20 +554,17 @@ class _ScoreLayout:
                                   "correlation": np.zeros((n_corr, n_corr))}
 
     def add(self, rows: slice, w: np.ndarray) -> None:
-        persons = w.shape[0]
-        full = np.zeros((persons, self.n_parameters)) if self.full else None
-        for gi, (g, table, numbers) in enumerate(zip(self.groups, self.tables, self.numbers)):
-            r, m = numbers.shape
-            z = (w @ table).reshape(persons, r, g.n_categories, m)
-            resp = self.responses[rows][:, g.rows]  # (c, r)
-            picked = np.take_along_axis(z, np.maximum(resp, 0)[:, :, None, None], axis=2)[:, :, 0, :]
-            picked = np.where((resp >= 0)[..., None], picked, 0.0)  # (c, r, m)
+        """Add the persons ``rows`` with posterior weights ``w`` (persons, G)."""
+        full = np.zeros((w.shape[0], self.n_parameters)) if self.full else None
+        item_scores = self._dense_scores(rows, w) if self.dense else self._sparse_scores(rows, w)
+        for gi, row, persons, scores in item_scores:
+            numbers = self.numbers[gi][row]
+            ok = numbers >= 0
             if self.full:
-                ok = numbers >= 0
-                full[:, numbers[ok]] = picked[:, ok]
+                full[persons[:, None], numbers[ok][None, :]] = scores[:, ok]
             else:
-                masked = picked * (numbers >= 0)[None]
-                self.cross_product["items"][gi] += np.einsum("pim,pin->imn", masked, masked)
+                masked = scores * ok
+                self.cross_product["items"][gi][row] += masked.T @ masked
         if self.n_corr:
             zc = w @ self.corr_table
             if self.full:
@@ -565,6 +574,45 @@ class _ScoreLayout:
         if self.full:
             self.cross_product += full.T @ full
             self.score_sum += full.sum(axis=0)
+
+    def _dense_scores(self, rows, w):
+        """(group, row, persons, scores) per item, from one product per group."""
+        n_persons = w.shape[0]
+        for gi, (g, table) in enumerate(zip(self.groups, self.tables)):
+            r, m = self.numbers[gi].shape
+            z = (w @ table).reshape(n_persons, r, g.n_categories, m)
+            resp = self.responses[rows][:, g.rows]  # (c, r)
+            for row in range(r):
+                persons = np.flatnonzero(resp[:, row] >= 0)
+                yield gi, row, persons, z[persons, row, resp[persons, row], :]
+
+    def _sparse_scores(self, rows, w):
+        """(group, row, persons, scores) per item answered in the chunk, from its answers only."""
+        lo, hi = np.searchsorted(self.person, [rows.start, rows.stop])
+        person = self.person[lo:hi] - rows.start
+        item, response = self.item[lo:hi], self.response[lo:hi]
+        order = np.argsort(item, kind="stable")
+        person, item, response = person[order], item[order], response[order]
+        starts = np.flatnonzero(np.r_[True, item[1:] != item[:-1]]) if item.size else np.zeros(0, dtype=np.int64)
+        ends = np.r_[starts[1:], item.size].astype(np.int64)
+        for a, b in zip(starts, ends):
+            j = int(item[a])
+            gi, row = int(self.group_of[j]), int(self.row_of[j])
+            g = self.groups[gi]
+            one = attrs.evolve(g, rows=g.rows[row:row + 1], free=g.free[row:row + 1], c=g.c[row:row + 1])
+            dlog = _log_derivative_table(one, self.etas[gi][row:row + 1], self.grid, self.scaling)[0]  # (G, C, m)
+            persons, cats = person[a:b], response[a:b]
+            scores = np.zeros((b - a, dlog.shape[-1]))
+            for k in np.unique(cats):
+                pick = cats == k
+                scores[pick] = w[persons[pick]] @ dlog[:, k, :]
+            yield gi, row, persons, scores
+
+
+def _log_derivative_table(group, eta, grid, scaling) -> np.ndarray:
+    """``d log P_k / d eta`` of every item of ``group``, shape (r, G, C, m)."""
+    p, dp = category_jacobian(group, eta, grid, scaling)
+    return dp / np.maximum(p, 1e-300)[..., None]
 
 
 def _standard_errors(data, groups, etas, final: _EStep, k: int, n_corr: int) -> dict:

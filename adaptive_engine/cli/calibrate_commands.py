@@ -6,7 +6,7 @@ import sys
 
 import click
 
-from ._common import SCALING_HELP, echo_json, main, report_errors
+from ._common import DIMENSIONS_HELP, SCALING_HELP, dimension_names, echo_json, main, report_errors
 
 # The calibration modules load scipy.stats and scipy.sparse; they are imported inside the
 # commands so that every other command (the session commands an app calls per answer)
@@ -40,7 +40,7 @@ _SETTING_FLAGS = {"setting quadrature_points": "--quadrature-points", "setting m
 CALIBRATE_FLAGS = {**_SETTING_FLAGS, "model": "--model", "fit_report": "--fit-report", "template_path": "--template",
                    "template": "--template", "setting points_per_dimension": "--points-per-dimension",
                    "setting uncorrelated_dimensions": "--uncorrelated-dimensions",
-                   "setting common_slope": "--common-slope"}
+                   "setting common_slope": "--common-slope", "dimensions": "--dimensions"}
 LINK_FLAGS = {"out": "--out", "scaling": "--scaling", "method": "--method",
               "max_difficulty_shift": "--max-difficulty-shift", "max_slope_ratio": "--max-slope-ratio",
               "anchors": "--anchors", "new": "BANK", "base": "--to"}
@@ -74,7 +74,8 @@ def _settings(**kw):
               help="Scaling constant D of the output bank (default: the template's D, else 1.0).  A CSV template "
                    "takes it; a JSON/SQLite template keeps the D it declares, and a different value is an error.")
 @click.option("--quadrature-points", type=int, default=61, show_default=True,
-              help=f"Ability points of the N(0, 1) population grid (5 to {MAX_QUADRATURE_POINTS}).")
+              help=f"Ability points of the N(0, 1) population grid (5 to {MAX_QUADRATURE_POINTS}) of a "
+                   "one-dimensional calibration (a multidimensional one takes --points-per-dimension).")
 @click.option("--max-iterations", type=int, default=500, show_default=True,
               help="Most EM cycles, a hard cap (extrapolation cycles count); not converged by then: exit code 3.")
 @click.option("--tolerance", type=float, default=1e-4, show_default=True,
@@ -86,13 +87,16 @@ def _settings(**kw):
 @click.option("--uncorrelated-dimensions", is_flag=True,
               help="Multidimensional template: hold the latent correlations at 0 (e.g. a bifactor pattern) "
                    "instead of estimating them.")
+@click.option("--dimensions", "dimensions", default=None, metavar="NAMES",
+              help="Names of the dimensions of a multidimensional CSV --template (comma-separated). "
+                   + DIMENSIONS_HELP.split(".  ", 1)[1])
 @click.option("--json", "as_json", is_flag=True,
               help="Print the summary as JSON (a multidimensional calibration prints it as text otherwise; "
                    "a one-dimensional one always prints JSON).")
 @report_errors(flags=CALIBRATE_FLAGS)
 def calibrate_command(responses, model, template, common_slope, prior, no_priors, out, fit_report, scaling,
                       quadrature_points, max_iterations, tolerance, min_answers, points_per_dimension,
-                      uncorrelated_dimensions, as_json):
+                      uncorrelated_dimensions, dimensions, as_json):
     """Calibrate items from RESPONSES (long CSV person_id,item_id,response) by marginal maximum likelihood.
 
     Prints a JSON summary: iterations, convergence, log-likelihood, AIC, BIC, mean and largest
@@ -114,7 +118,7 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
     from ..calibration.jobs import calibrate_file
 
     summary = calibrate_file(responses, out=out, model=model, template_path=template, settings=settings,
-                             fit_report=fit_report, scaling=scaling)
+                             fit_report=fit_report, scaling=scaling, dimensions=dimension_names(dimensions))
     if "latent_correlation" in summary and not as_json:
         click.echo(_multidimensional_text(summary))
     else:
