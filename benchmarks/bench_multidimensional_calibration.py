@@ -14,7 +14,9 @@ Cases (each in a fresh process, so max RSS is its own):
 2. the same data on a 41 x 41 grid (the grid's own effect on the estimates);
 3. the same case with several replications (``--replications``) for the spread of the
    estimates over samples against the reported standard errors;
-4. three dimensions (15 x 15 x 15 grid): 5,000 x 45 items, correlations 0.3, 0.5, 0.6.
+4. three dimensions (15 x 15 x 15 grid): 5,000 x 45 items, correlations 0.3, 0.5, 0.6;
+5. sparse data as adaptive tests leave them: 20,000 examinees, a 300-item two-dimensional
+   bank, 30 answers each (items drawn at random), correlation 0.5.
 
 Run: ``python3 benchmarks/bench_multidimensional_calibration.py [--quick] [--replications N]``.
 """
@@ -49,24 +51,30 @@ def simple_structure_bank(n_items: int, k: int, rng) -> ItemBank:
                     dimension_names=names)
 
 
-def simulate(bank: ItemBank, n_persons: int, correlation: np.ndarray, rng) -> ResponseTable:
+def simulate(bank: ItemBank, n_persons: int, correlation: np.ndarray, rng, per_person: int = 0) -> ResponseTable:
+    """Complete answers, or ``per_person`` items drawn at random for each person."""
     theta = rng.multivariate_normal(np.zeros(bank.n_dimensions), correlation, size=n_persons)
-    p = md.probabilities(*md.outer(bank.multidimensional_params, theta))[..., 1]  # (n, P)
-    x = (rng.random(p.shape) < p).astype(np.int64).T
     n = len(bank)
+    if per_person:
+        item = np.argsort(rng.random((n_persons, n)), axis=1)[:, :per_person].ravel()
+        person = np.repeat(np.arange(n_persons), per_person)
+    else:
+        person, item = np.repeat(np.arange(n_persons), n), np.tile(np.arange(n), n_persons)
+    params = bank.multidimensional_params.take(item)
+    p = md.probabilities(params, theta[person])[..., 1]
+    x = (rng.random(p.shape) < p).astype(np.int64)
     return ResponseTable(
         person_ids=np.array([f"p{i}" for i in range(n_persons)], dtype=object),
         item_ids=np.asarray(bank.item_ids, dtype=object),
-        person=np.repeat(np.arange(n_persons), n), item=np.tile(np.arange(n), n_persons),
-        response=x.ravel(), lines=np.zeros(n_persons * n, dtype=np.int64))
+        person=person, item=item, response=x, lines=np.zeros(person.size, dtype=np.int64))
 
 
-def run_case(n_persons: int, n_items: int, correlation, points: int | None, seed: int) -> dict:
+def run_case(n_persons: int, n_items: int, correlation, points: int | None, seed: int, per_person: int = 0) -> dict:
     rng = np.random.default_rng(seed)
     correlation = np.asarray(correlation, float)
     k = correlation.shape[0]
     truth = simple_structure_bank(n_items, k, rng)
-    table = simulate(truth, n_persons, correlation, rng)
+    table = simulate(truth, n_persons, correlation, rng, per_person)
     tracemalloc.start()
     began = time.perf_counter()
     result = calibrate_responses(table, template=truth, settings=CalibrationSettings(points_per_dimension=points))
@@ -80,7 +88,7 @@ def run_case(n_persons: int, n_items: int, correlation, points: int | None, seed
     iu = np.triu_indices(k, 1)
     corr_err = result.latent_correlation[iu] - correlation[iu]
     return dict(
-        persons=n_persons, items=n_items, dimensions=k, grid_points=int(result.grid.shape[0]),
+        persons=n_persons, items=n_items, answers=int(table.person.size), dimensions=k, grid_points=int(result.grid.shape[0]),
         seconds=seconds, cycles=result.iterations, converged=result.converged,
         peak_traced_mb=peak / 2**20, max_rss_mb=resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
         slope_rmse=float(np.sqrt(np.mean((est[free] - truth.slopes[free]) ** 2))),
@@ -101,7 +109,7 @@ def _in_fresh_process(args: list[str]) -> dict:
 def _show(label: str, r: dict) -> None:
     corr = ", ".join(f"{c:.3f} (err {e:+.3f}, se {s:.3f})"
                      for c, e, s in zip(r["correlation"], r["correlation_error"], r["correlation_se"]))
-    print(f"{label}\n  {r['persons']:,} x {r['items']} items, K = {r['dimensions']}, {r['grid_points']:,} grid points: "
+    print(f"{label}\n  {r['persons']:,} persons, {r['items']} items, {r['answers']:,} answers, K = {r['dimensions']}, {r['grid_points']:,} grid points: "
           f"{r['seconds']:.2f} s, {r['cycles']} EM cycles, converged {r['converged']}, "
           f"peak traced {r['peak_traced_mb']:.0f} MB, max RSS {r['max_rss_mb']:.0f} MB\n"
           f"  slope RMSE {r['slope_rmse']:.4f} (mean reported SE {r['mean_slope_se']:.4f}), "
@@ -113,23 +121,23 @@ def main() -> None:
     parser = argparse.ArgumentParser()
     parser.add_argument("--quick", action="store_true", help="the done-when case only")
     parser.add_argument("--replications", type=int, default=0, help="extra samples of the done-when case")
-    parser.add_argument("--case", nargs=5, metavar=("PERSONS", "ITEMS", "CORRELATION", "POINTS", "SEED"))
+    parser.add_argument("--case", nargs=6, metavar=("PERSONS", "ITEMS", "CORRELATION", "POINTS", "SEED", "PER_PERSON"))
     args = parser.parse_args()
     if args.case:
-        persons, items, corr, points, seed = args.case
+        persons, items, corr, points, seed, per_person = args.case
         corr = json.loads(corr)
         print(json.dumps(run_case(int(persons), int(items), corr, None if points == "default" else int(points),
-                                  int(seed))))
+                                  int(seed), int(per_person))))
         return
     two = json.dumps([[1.0, 0.5], [0.5, 1.0]])
     print("issue 12 done-when: slope RMSE < 0.1, correlation within 0.05\n")
     _show("1. 5,000 x 40, K = 2, correlation 0.5, default grid",
-          _in_fresh_process(["5000", "40", two, "default", "1"]))
+          _in_fresh_process(["5000", "40", two, "default", "1", "0"]))
     if args.quick:
         return
-    _show("2. the same data, 41 x 41 grid", _in_fresh_process(["5000", "40", two, "41", "1"]))
+    _show("2. the same data, 41 x 41 grid", _in_fresh_process(["5000", "40", two, "41", "1", "0"]))
     if args.replications:
-        rows = [_in_fresh_process(["5000", "40", two, "default", str(100 + r)]) for r in range(args.replications)]
+        rows = [_in_fresh_process(["5000", "40", two, "default", str(100 + r), "0"]) for r in range(args.replications)]
         rho = np.array([r["correlation"][0] for r in rows])
         print(f"3. {args.replications} replications: slope RMSE mean {np.mean([r['slope_rmse'] for r in rows]):.4f} "
               f"(largest {max(r['slope_rmse'] for r in rows):.4f}); correlation mean {rho.mean():.4f}, "
@@ -137,7 +145,9 @@ def main() -> None:
               f"{np.mean([r['correlation_se'][0] for r in rows]):.4f}; "
               f"largest correlation error {np.max(np.abs(rho - 0.5)):.4f}")
     three = json.dumps([[1.0, 0.3, 0.5], [0.3, 1.0, 0.6], [0.5, 0.6, 1.0]])
-    _show("4. 5,000 x 45, K = 3, default grid", _in_fresh_process(["5000", "45", three, "default", "2"]))
+    _show("4. 5,000 x 45, K = 3, default grid", _in_fresh_process(["5000", "45", three, "default", "2", "0"]))
+    _show("5. sparse: 20,000 examinees, 300-item bank, 30 random answers each, K = 2",
+          _in_fresh_process(["20000", "300", two, "default", "3", "30"]))
 
 
 if __name__ == "__main__":
