@@ -88,7 +88,8 @@ def run_case(n_persons: int, n_items: int, correlation, points: int | None, seed
     iu = np.triu_indices(k, 1)
     corr_err = result.latent_correlation[iu] - correlation[iu]
     return dict(
-        persons=n_persons, items=n_items, answers=int(table.person.size), dimensions=k, grid_points=int(result.grid.shape[0]),
+        persons=n_persons, items=n_items, answers=int(table.person.size), dimensions=k,
+        grid_points=int(result.grid.shape[0]),
         seconds=seconds, cycles=result.iterations, converged=result.converged,
         peak_traced_mb=peak / 2**20, max_rss_mb=resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
         slope_rmse=float(np.sqrt(np.mean((est[free] - truth.slopes[free]) ** 2))),
@@ -109,7 +110,8 @@ def _in_fresh_process(args: list[str]) -> dict:
 def _show(label: str, r: dict) -> None:
     corr = ", ".join(f"{c:.3f} (err {e:+.3f}, se {s:.3f})"
                      for c, e, s in zip(r["correlation"], r["correlation_error"], r["correlation_se"]))
-    print(f"{label}\n  {r['persons']:,} persons, {r['items']} items, {r['answers']:,} answers, K = {r['dimensions']}, {r['grid_points']:,} grid points: "
+    print(f"{label}\n  {r['persons']:,} persons, {r['items']} items, {r['answers']:,} answers, "
+          f"K = {r['dimensions']}, {r['grid_points']:,} grid points: "
           f"{r['seconds']:.2f} s, {r['cycles']} EM cycles, converged {r['converged']}, "
           f"peak traced {r['peak_traced_mb']:.0f} MB, max RSS {r['max_rss_mb']:.0f} MB\n"
           f"  slope RMSE {r['slope_rmse']:.4f} (mean reported SE {r['mean_slope_se']:.4f}), "
