@@ -151,7 +151,8 @@ def _multidimensional_text(summary: dict) -> str:
     lines.append(f"log-likelihood {summary['log_likelihood']:.2f}, {summary['parameters']} parameters, "
                  f"AIC {summary['aic']:.2f}, BIC {summary['bic']:.2f}")
     for name, s in summary["standard_errors"].items():
-        lines.append(f"standard error of the {name}: mean {s['mean']:.3f}, largest {s['max']:.3f} ({s['count']})")
+        lines.append(f"standard error of the {name}: mean {s['mean']:.3f}, largest {s['max']:.3f} "
+                     f"({s['count']} estimated)")
     lines.append(f"wrote {summary['out']}" + (f" and {summary['fit_report']}" if summary.get("fit_report") else ""))
     return "\n".join(lines)
 
