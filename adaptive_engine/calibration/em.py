@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import time
+from typing import TYPE_CHECKING
 
 import attrs
 import numpy as np
@@ -32,6 +33,9 @@ from .data import CalibrationData, prepare_data
 from .item_forms import ItemGroup, category_jacobian
 from .m_step import fisher_steps, shared_slope_step
 from .priors import PriorChoice
+
+if TYPE_CHECKING:  # the multidimensional calibration builds on this module
+    from .multidimensional_em import MultidimensionalCalibrationResult
 
 #: above this many persons x parameters the cross-product matrix is built item by item
 _FULL_CROSS_PRODUCT_LIMIT = 2e7
@@ -196,12 +200,17 @@ def calibrate_responses(
     template: ItemBank | None = None,
     settings: CalibrationSettings | None = None,
     name: str = "calibrated",
-) -> CalibrationResult:
+) -> CalibrationResult | MultidimensionalCalibrationResult:
     """Calibrate items from long-format responses (see :func:`calibrate_data`).
 
     ``model="PCM"`` (the partial credit model) is a GPCM whose items share one slope, as
     ``Rasch`` is a 1PL: with the population fixed at N(0, 1) the shared slope takes the
     place of the population SD.
+
+    A template of multidimensional models (M2PL, M3PL, MGRM; K <= 3) gives a confirmatory
+    multidimensional calibration instead, its zero slopes the loading pattern; the result is
+    then a :class:`.multidimensional_em.MultidimensionalCalibrationResult` (with the latent
+    correlations; see :func:`.multidimensional_em.calibrate_multidimensional_responses`).
     """
     settings = settings or CalibrationSettings()
     if template is not None and template.uses_multidimensional_models:
