@@ -147,6 +147,20 @@ def test_one_dimension_agrees_with_the_one_dimensional_calibration():
     assert multi.n_parameters == single.n_parameters == 20
 
 
+def test_dimensions_the_answers_do_not_tell_apart_stop_at_the_bound_with_a_warning():
+    # six items, 300 examinees, true correlation 0.95: the estimate runs into the bound
+    from adaptive_engine.calibration.multidimensional_em import MAX_CORRELATION
+
+    truth = simple_structure(6, seed=5)
+    table, _ = draw_answers(truth, 300, [[1.0, 0.95], [0.95, 1.0]], seed=6)
+    result = calibrate_responses(table, template=truth)
+    assert result.latent_correlation[0, 1] == pytest.approx(MAX_CORRELATION)
+    assert np.all(np.linalg.eigvalsh(result.latent_correlation) > 0)
+    assert np.isnan(result.standard_errors["latent_correlation"][0, 1])
+    (warning,) = result.summary()["warnings"]
+    assert "operations and safety" in warning and "do not tell these dimensions apart" in warning
+
+
 def test_uncorrelated_dimensions_hold_the_correlation_at_zero():
     truth = simple_structure(10, seed=3)
     table, _ = draw_answers(truth, 600, [[1.0, 0.0], [0.0, 1.0]], seed=4)
@@ -494,7 +508,7 @@ def test_cli_prints_the_latent_correlation_and_json_has_it(two_dimensional_files
     corr = np.array(summary["latent_correlation"])
     assert corr.shape == (2, 2) and np.allclose(np.diag(corr), 1.0) and corr[0, 1] == corr[1, 0]
     assert summary["dimensions"] == ["operations", "safety"] and summary["grid_points"] == 225
-    assert summary["parameters"] == 21 and summary["converged"]
+    assert summary["parameters"] == 21 and summary["converged"] and summary["warnings"] == []
     res = CliRunner().invoke(main, ["calibrate", str(answers), "--template", str(template), "--out", str(out),
                                     "--uncorrelated-dimensions", "--points-per-dimension", "11", "--json"])
     assert res.exit_code == 0 and json.loads(res.stdout)["latent_correlation"] == [[1.0, 0.0], [0.0, 1.0]]

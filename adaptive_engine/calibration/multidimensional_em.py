@@ -60,6 +60,9 @@ MAX_GRID_POINTS = 64_000
 _CHUNK_CELLS = 2_000_000
 #: above this many parameters the cross-product matrix is inverted item by item
 _FULL_CROSS_PRODUCT_PARAMETERS = 2_500
+#: largest latent correlation (in absolute value) the M-step returns: at 1 the grid weights
+#: of N(0, R) are undefined; an estimate held here means the data do not tell the dimensions apart
+MAX_CORRELATION = 0.99
 
 
 # ----------------------------------------------------------------------------------------
@@ -92,6 +95,19 @@ def _correlation_from(values: np.ndarray, k: int) -> np.ndarray:
     return out
 
 
+def _bounded_correlation(r: np.ndarray) -> np.ndarray:
+    """``r`` with every correlation within +-:data:`MAX_CORRELATION` and, if need be, shrunk
+    towards the identity until its smallest eigenvalue is at least 0.005 (positive definite)."""
+    k = r.shape[0]
+    off = ~np.eye(k, dtype=bool)
+    r = np.where(off, np.clip(r, -MAX_CORRELATION, MAX_CORRELATION), 1.0)
+    low = float(np.linalg.eigvalsh(r)[0])
+    if low < 0.005:
+        shrink = (0.005 - low) / (1.0 - low)
+        r = np.where(off, (1.0 - shrink) * r, 1.0)
+    return r
+
+
 @attrs.frozen(eq=False)
 class _CorrelationBlock:
     """The correlations as one more parameter block for the accelerated cycles."""
@@ -100,7 +116,7 @@ class _CorrelationBlock:
 
     def is_valid(self, values: np.ndarray) -> np.ndarray:
         v = values[0]
-        if not np.all(np.isfinite(v)) or np.any(np.abs(v) >= 0.995):
+        if not np.all(np.isfinite(v)) or np.any(np.abs(v) > MAX_CORRELATION):
             return np.array([False])
         return np.array([bool(np.all(np.linalg.eigvalsh(_correlation_from(v, self.k)) > 1e-6))])
 
@@ -182,8 +198,18 @@ class MultidimensionalCalibrationResult:
             log_likelihood=self.log_likelihood, parameters=self.n_parameters, aic=self.aic, bic=self.bic,
             points_per_dimension=self.points_per_dimension, grid_points=int(self.grid.shape[0]),
             theta_range=self.settings.theta_range, seconds=self.seconds,
-            standard_errors=self.standard_error_summary(),
+            standard_errors=self.standard_error_summary(), warnings=self.warnings(),
         )
+
+    def warnings(self) -> list[str]:
+        """Estimates that sit at a bound: correlations at +-MAX_CORRELATION."""
+        names = self.dimension_names
+        k = len(names)
+        return [f"the latent correlation of {names[i]} and {names[j]} reached the bound "
+                f"{self.latent_correlation[i, j]:+.2f}: the answers do not tell these dimensions apart "
+                "(merge them, or give the pattern more items that measure one of them alone)"
+                for i in range(k) for j in range(i + 1, k)
+                if abs(self.latent_correlation[i, j]) >= MAX_CORRELATION - 1e-9]
 
     def standard_error_summary(self) -> dict:
         """Mean and largest standard error of the estimated slopes and intercepts."""
@@ -345,8 +371,7 @@ def calibrate_multidimensional_data(
         if uncorrelated:
             corr = np.zeros((1, 0))
         else:
-            r = moments / np.outer(scale, scale)
-            corr = r[np.triu_indices(k, 1)][None, :]
+            corr = _bounded_correlation(moments / np.outer(scale, scale))[np.triu_indices(k, 1)][None, :]
         return new + [corr], e.loglik
 
     def natural_of(current):
@@ -363,6 +388,8 @@ def calibrate_multidimensional_data(
                                         dense=answers.dense))
     history.append(final.loglik)
     ses = _standard_errors(data, groups, etas[:-1], final, k, n_corr)
+    # an estimate held at the bound has no standard error to speak of
+    ses["latent_correlation"][np.abs(correlation) >= MAX_CORRELATION - 1e-9] = np.nan
     bank = _make_bank(data, groups, etas[:-1], settings.scaling, name)
     return MultidimensionalCalibrationResult(
         bank=bank, standard_errors=ses, latent_correlation=correlation, log_likelihood=float(final.loglik),

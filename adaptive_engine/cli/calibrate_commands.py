@@ -119,6 +119,8 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
 
     summary = calibrate_file(responses, out=out, model=model, template_path=template, settings=settings,
                              fit_report=fit_report, scaling=scaling, dimensions=dimension_names(dimensions))
+    for warning in summary.get("warnings", ()):
+        click.echo(f"warning: {warning}", err=True)
     if "latent_correlation" in summary and not as_json:
         click.echo(_multidimensional_text(summary))
     else:
