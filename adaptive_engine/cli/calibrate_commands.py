@@ -60,7 +60,9 @@ def _settings(**kw):
 @click.option("--model", type=click.Choice(_MODELS, case_sensitive=False), default=None,
               help="Model of every item (1PL items share one slope). Needed unless --template is given.")
 @click.option("--template", "template", type=_FILE, default=None,
-              help="Bank giving each item its own model, categories and metadata (mixed banks).")
+              help="Bank giving each item its own model, categories and metadata (mixed banks); a bank of "
+                   "M2PL/M3PL/MGRM items (K <= 3 dimensions) gives the loading pattern of a multidimensional "
+                   "calibration (its zero slopes stay 0).")
 @click.option("--common-slope", is_flag=True, help="Estimate one slope shared by all items (written to column a).")
 @click.option("--prior", multiple=True, metavar="PARAM=KIND:X,Y",
               help="Prior on a parameter, e.g. a=lognormal:0,0.5  b=normal:0,2  c=beta:5,17  d=beta:20,2  "
