@@ -300,9 +300,12 @@ def test_per_person_scores_sum_to_the_gradient_of_the_marginal_log_likelihood(de
         numeric.append((total(up, 0.3) - total(down, 0.3)) / (2 * h))
     numeric.append((total(eta, 0.3 + h) - total(eta, 0.3 - h)) / (2 * h))
     np.testing.assert_allclose(layout.score_sum, numeric, rtol=1e-4, atol=1e-5)
-    # the item-by-item blocks used for large banks are the diagonal blocks of the full matrix
     import adaptive_engine.calibration.multidimensional_em as mde
 
+    # persons in chunks and items in blocks (as large data are taken) give the same matrix
+    monkeypatch.setattr(mde, "_CHUNK_CELLS", 300)
+    np.testing.assert_allclose(layout_at().cross_product, layout.cross_product, rtol=1e-12)
+    # the item-by-item blocks used for large banks are the diagonal blocks of the full matrix
     monkeypatch.setattr(mde, "_FULL_CROSS_PRODUCT_PARAMETERS", 0)
     blocks = layout_at().cross_product
     numbers = mde._ScoreNumbers(groups).numbers[0]

@@ -552,7 +552,7 @@ class _ScoreLayout:
             for g, eta in zip(groups, etas):
                 dlog = _log_derivative_table(g, eta, grid, scaling)  # (r, G, C, m)
                 r, gg, cc, m = dlog.shape
-                self.tables.append(np.ascontiguousarray(dlog.transpose(1, 0, 2, 3).reshape(gg, r * cc * m)))
+                self.tables.append(np.ascontiguousarray(dlog.transpose(1, 0, 2, 3).reshape(gg, r, cc * m)))
         else:
             order = np.argsort(data.person, kind="stable")
             self.person, self.item, self.response = data.person[order], data.item[order], data.response[order]
@@ -603,15 +603,20 @@ class _ScoreLayout:
             self.score_sum += full.sum(axis=0)
 
     def _dense_scores(self, rows, w):
-        """(group, row, persons, scores) per item, from one product per group."""
+        """(group, row, persons, scores) per item, from one product per block of a group's items
+        (blocks of at most about :data:`_CHUNK_CELLS` results)."""
         n_persons = w.shape[0]
         for gi, (g, table) in enumerate(zip(self.groups, self.tables)):
             r, m = self.numbers[gi].shape
-            z = (w @ table).reshape(n_persons, r, g.n_categories, m)
             resp = self.responses[rows][:, g.rows]  # (c, r)
-            for row in range(r):
-                persons = np.flatnonzero(resp[:, row] >= 0)
-                yield gi, row, persons, z[persons, row, resp[persons, row], :]
+            block = max(1, _CHUNK_CELLS // max(n_persons * table.shape[2], 1))
+            for lo in range(0, r, block):
+                hi = min(lo + block, r)
+                z = (w @ table[:, lo:hi, :].reshape(table.shape[0], -1)).reshape(n_persons, hi - lo,
+                                                                                  g.n_categories, m)
+                for row in range(lo, hi):
+                    persons = np.flatnonzero(resp[:, row] >= 0)
+                    yield gi, row, persons, z[persons, row - lo, resp[persons, row], :]
 
     def _sparse_scores(self, rows, w):
         """(group, row, persons, scores) per item answered in the chunk, from its answers only."""
