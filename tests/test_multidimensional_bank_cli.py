@@ -278,8 +278,6 @@ def test_summed_information_works_in_blocks_of_items(monkeypatch, exam):
      "bank meridian_valley_operator_2d: the bank has 2 ability dimensions"),
     (["simulate", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D, "--examinees", "5",
       "--out", "OUT"], "the bank has 2 ability dimensions"),
-    (["calibrate", "RESPONSES", "--template", EXAM_2D, "--out", "OUT.json"],
-     "--template: bank meridian_valley_operator_2d holds multidimensional models"),
     (["link", EXAM_2D, "--to", REPO / "item_banks" / "meridian_valley_operator.json", "--out", "OUT.json"],
      "BANK: bank meridian_valley_operator_2d holds multidimensional models"),
 ])

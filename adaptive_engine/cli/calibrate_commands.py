@@ -6,7 +6,7 @@ import sys
 
 import click
 
-from ._common import SCALING_HELP, echo_json, main, report_errors
+from ._common import DIMENSIONS_HELP, SCALING_HELP, dimension_names, echo_json, main, report_errors
 
 # The calibration modules load scipy.stats and scipy.sparse; they are imported inside the
 # commands so that every other command (the session commands an app calls per answer)
@@ -37,7 +37,10 @@ MAX_QUADRATURE_POINTS = 401
 _SETTING_FLAGS = {"setting quadrature_points": "--quadrature-points", "setting max_iterations": "--max-iterations",
                   "setting tolerance": "--tolerance", "setting min_answers": "--min-answers", "prior": "--prior",
                   "out": "--out", "scaling": "--scaling"}
-CALIBRATE_FLAGS = {**_SETTING_FLAGS, "model": "--model", "fit_report": "--fit-report", "template_path": "--template"}
+CALIBRATE_FLAGS = {**_SETTING_FLAGS, "model": "--model", "fit_report": "--fit-report", "template_path": "--template",
+                   "template": "--template", "setting points_per_dimension": "--points-per-dimension",
+                   "setting uncorrelated_dimensions": "--uncorrelated-dimensions",
+                   "setting common_slope": "--common-slope", "dimensions": "--dimensions"}
 LINK_FLAGS = {"out": "--out", "scaling": "--scaling", "method": "--method",
               "max_difficulty_shift": "--max-difficulty-shift", "max_slope_ratio": "--max-slope-ratio",
               "anchors": "--anchors", "new": "BANK", "base": "--to"}
@@ -57,7 +60,9 @@ def _settings(**kw):
 @click.option("--model", type=click.Choice(_MODELS, case_sensitive=False), default=None,
               help="Model of every item (1PL items share one slope). Needed unless --template is given.")
 @click.option("--template", "template", type=_FILE, default=None,
-              help="Bank giving each item its own model, categories and metadata (mixed banks).")
+              help="Bank giving each item its own model, categories and metadata (mixed banks); a bank of "
+                   "M2PL/M3PL/MGRM items (K <= 3 dimensions) gives the loading pattern of a multidimensional "
+                   "calibration (its zero slopes stay 0).")
 @click.option("--common-slope", is_flag=True, help="Estimate one slope shared by all items (written to column a).")
 @click.option("--prior", multiple=True, metavar="PARAM=KIND:X,Y",
               help="Prior on a parameter, e.g. a=lognormal:0,0.5  b=normal:0,2  c=beta:5,17  d=beta:20,2  "
@@ -71,19 +76,36 @@ def _settings(**kw):
               help="Scaling constant D of the output bank (default: the template's D, else 1.0).  A CSV template "
                    "takes it; a JSON/SQLite template keeps the D it declares, and a different value is an error.")
 @click.option("--quadrature-points", type=int, default=61, show_default=True,
-              help=f"Ability points of the N(0, 1) population grid (5 to {MAX_QUADRATURE_POINTS}).")
+              help=f"Ability points of the N(0, 1) population grid (5 to {MAX_QUADRATURE_POINTS}) of a "
+                   "one-dimensional calibration (a multidimensional one takes --points-per-dimension).")
 @click.option("--max-iterations", type=int, default=500, show_default=True,
               help="Most EM cycles, a hard cap (extrapolation cycles count); not converged by then: exit code 3.")
 @click.option("--tolerance", type=float, default=1e-4, show_default=True,
               help="Stop when no parameter moves more than this in a cycle.")
 @click.option("--min-answers", type=int, default=20, show_default=True, help="Fewest answers an item needs.")
+@click.option("--points-per-dimension", type=int, default=None,
+              help="Multidimensional template: points per dimension of the product grid "
+                   "(default 41, 21, 15 for K = 1, 2, 3 dimensions).")
+@click.option("--uncorrelated-dimensions", is_flag=True,
+              help="Multidimensional template: hold the latent correlations at 0 (e.g. a bifactor pattern) "
+                   "instead of estimating them.")
+@click.option("--dimensions", "dimensions", default=None, metavar="NAMES",
+              help="Names of the dimensions of a multidimensional CSV --template (comma-separated). "
+                   + DIMENSIONS_HELP.split(".  ", 1)[1])
+@click.option("--json", "as_json", is_flag=True,
+              help="Print the summary as JSON (a multidimensional calibration prints it as text otherwise; "
+                   "a one-dimensional one always prints JSON).")
 @report_errors(flags=CALIBRATE_FLAGS)
 def calibrate_command(responses, model, template, common_slope, prior, no_priors, out, fit_report, scaling,
-                      quadrature_points, max_iterations, tolerance, min_answers):
+                      quadrature_points, max_iterations, tolerance, min_answers, points_per_dimension,
+                      uncorrelated_dimensions, dimensions, as_json):
     """Calibrate items from RESPONSES (long CSV person_id,item_id,response) by marginal maximum likelihood.
 
     Prints a JSON summary: iterations, convergence, log-likelihood, AIC, BIC, mean and largest
-    standard error of each parameter.  Exit codes: 0 converged; 2 bad input (nothing written);
+    standard error of each parameter.  With a multidimensional --template (M2PL, M3PL, MGRM
+    items; K <= 3) its zero slopes are the loading pattern, the latent correlations are
+    estimated, and the summary is printed as text (with --json as JSON, with
+    ``latent_correlation``).  Exit codes: 0 converged; 2 bad input (nothing written);
     3 not converged within --max-iterations (the bank is written, a warning goes to stderr).
     """
     if quadrature_points > MAX_QUADRATURE_POINTS:
@@ -93,14 +115,50 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
                                location="--quadrature-points")
     settings = _settings(prior=prior, no_priors=no_priors, common_slope=common_slope,
                          quadrature_points=quadrature_points, max_iterations=max_iterations,
-                         tolerance=tolerance, min_answers=min_answers)
+                         tolerance=tolerance, min_answers=min_answers, points_per_dimension=points_per_dimension,
+                         uncorrelated_dimensions=uncorrelated_dimensions)
     from ..calibration.jobs import calibrate_file
 
     summary = calibrate_file(responses, out=out, model=model, template_path=template, settings=settings,
-                             fit_report=fit_report, scaling=scaling)
-    echo_json(summary)
+                             fit_report=fit_report, scaling=scaling, dimensions=dimension_names(dimensions))
+    for warning in summary.get("warnings", ()):
+        click.echo(f"warning: {warning}", err=True)
+    if "latent_correlation" in summary and not as_json:
+        click.echo(_multidimensional_text(summary))
+    else:
+        echo_json(summary)
     if not summary["converged"]:
         _not_converged(summary["iterations"], summary["last_change"], summary["tolerance"])
+
+
+def _multidimensional_text(summary: dict) -> str:
+    """The summary of a multidimensional calibration as lines of text."""
+    names = summary["dimensions"]
+    width = max(8, *(len(n) for n in names))
+    corr = summary["latent_correlation"]
+    lines = [
+        f"calibrated {summary['items']} items ({', '.join(summary['models'])}) from {summary['persons']:,} persons, "
+        f"{summary['answers']:,} answers; "
+        + (f"converged after {summary['iterations']} EM cycles" if summary["converged"]
+           else f"not converged after {summary['iterations']} EM cycles"),
+        f"dimensions: {', '.join(names)} (grid of {summary['points_per_dimension']} points per dimension, "
+        f"{summary['grid_points']:,} in all, on [-{summary['theta_range']:g}, {summary['theta_range']:g}])",
+        "latent correlation" + ("" if summary["correlations_estimated"] else " (held at 0)") + ":",
+        " " * width + "".join(f"  {n:>{width}}" for n in names),
+    ]
+    lines += [f"{n:<{width}}" + "".join(f"  {x:>{width}.3f}" for x in row) for n, row in zip(names, corr)]
+    se = summary["latent_correlation_se"]
+    pairs = [f"{names[i]}-{names[j]} {se[i][j]:.3f}" for i in range(len(names)) for j in range(i + 1, len(names))
+             if se[i][j] is not None]
+    if pairs:
+        lines.append("standard error of each correlation: " + ", ".join(pairs))
+    lines.append(f"log-likelihood {summary['log_likelihood']:.2f}, {summary['parameters']} parameters, "
+                 f"AIC {summary['aic']:.2f}, BIC {summary['bic']:.2f}")
+    for name, s in summary["standard_errors"].items():
+        lines.append(f"standard error of the {name}: mean {s['mean']:.3f}, largest {s['max']:.3f} "
+                     f"({s['count']} estimated)")
+    lines.append(f"wrote {summary['out']}" + (f" and {summary['fit_report']}" if summary.get("fit_report") else ""))
+    return "\n".join(lines)
 
 
 @main.command("link")
