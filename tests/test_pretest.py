@@ -199,7 +199,8 @@ def test_pretest_cli(tmp_path):
     # nothing ready: no bank file, a warning on stderr, the report still written
     none_out, none_report = tmp_path / "none.json", tmp_path / "none.csv"
     res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", bank_id,
-                               "--out", str(none_out), "--report", str(none_report), "--min-answers", "100000", "--json"])
+                               "--out", str(none_out), "--report", str(none_report), "--min-answers", "100000",
+                               "--json"])
     assert res.exit_code == 0, res.output
     assert not none_out.exists() and none_report.exists()
     assert "warning: no pretest item is ready" in res.stderr and json.loads(res.stdout)["out"] is None

@@ -86,7 +86,8 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
 
     Prints a summary: iterations, convergence, log-likelihood, AIC, BIC, mean and largest
     standard error of each parameter (--json: the same as one JSON object).  Exit codes: 0
-    converged; 2 bad input (nothing written); 3 not converged within --max-iterations (the bank is written, a warning goes to stderr).
+    converged; 2 bad input (nothing written); 3 not converged within --max-iterations (the
+    bank is written, a warning goes to stderr).
     """
     from ..errors import CalibrationError
 
