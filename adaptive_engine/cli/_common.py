@@ -71,7 +71,20 @@ class _UsageProblem(click.ClickException):
 
 
 class _Group(click.Group):
-    """The root group: click's own usage errors become one ``LOCATION: problem`` line."""
+    """The command groups: click's own usage errors become one ``LOCATION: problem`` line,
+    and the list of commands gives each one's whole first sentence (wrapped, never cut)."""
+
+    group_class = type  # subgroups (bank, session, ...) are of this class too
+
+    def format_commands(self, ctx, formatter) -> None:
+        rows = []
+        for name in self.list_commands(ctx):
+            cmd = self.get_command(ctx, name)
+            if cmd is not None and not cmd.hidden:
+                rows.append((name, cmd.get_short_help_str(limit=1_000)))
+        if rows:
+            with formatter.section("Commands"):
+                formatter.write_dl(rows)
 
     def make_context(self, *args, **kwargs):
         try:
@@ -128,6 +141,9 @@ def problem_lines(problems, flags: Mapping[str, str], *, all_problems: bool = Fa
     for problem in problems:
         location = flag_location(problem.location, flags)
         message = flag_message(problem.message, flags)
+        for where in {problem.location, location} - {""}:
+            if message.endswith(f": {where}"):  # "no such file: X" at location X says X once
+                message = message[: -len(where) - 2]
         lines.append(f"{location}: {message}" if location else f"error: {message}")
     if len(lines) == 1:
         return lines
