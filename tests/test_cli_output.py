@@ -118,6 +118,7 @@ def _commands(tmp_path):
         "tune": ["tune", MINIMAL, "--bank", OPERATOR, "--vary", "stopping.se=0.3,0.4", "--examinees", "10",
                  "--out", tmp_path / "tuning"],
         "release retire": ["release", "retire", "mv2", "--store", store],
+        "bank convert": ["bank", "convert", SURVEY, tmp_path / "survey.json"],
     }
 
 
@@ -141,6 +142,15 @@ def test_every_result_command_prints_valid_json_with_json_and_text_without(tmp_p
     assert "retired" in run("release", "retire", "mv", "--store", tmp_path / "r.db").stdout
     token = run("token", "new", "--name", "other", "--role", "admin", "--tokens", tmp_path / "t.toml")
     assert token.exit_code == 0 and "secret: " in token.stdout
+
+
+def test_exposure_calibration_that_stops_short_prints_json_and_exits_3(tmp_path):
+    out = run("exposure", "calibrate", MINIMAL, "--bank", OPERATOR, "--target", "0.3", "--examinees", "40",
+              "--iterations", "2", "--out", tmp_path / "k.csv", "--json")
+    assert out.exit_code == 3, out.output
+    result = json.loads(out.stdout)
+    assert result["converged"] is False and len(result["iterations"]) == 2
+    assert result["diagnosis"]["items"] and all(d["exposure_rate"] > 0.32 for d in result["diagnosis"]["items"])
 
 
 def test_link_prints_the_transformation_and_only_the_drifted_anchors(tmp_path):
@@ -295,3 +305,8 @@ def test_a_label_holding_the_separator_is_not_written_to_csv(tmp_path):
     assert not (tmp_path / "odd.csv").exists()
     write_bank(odd, tmp_path / "odd.json")  # JSON lists need no separator
     assert load_bank(tmp_path / "odd.json").category_labels_of(0)[0] == "no|never"
+
+
+def test_a_group_without_a_command_still_shows_its_help():
+    out = run("session")
+    assert "Usage: adaptive-engine session" in out.output and "Commands:" in out.output

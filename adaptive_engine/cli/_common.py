@@ -90,13 +90,20 @@ class _Group(click.Group):
         try:
             return super().make_context(*args, **kwargs)
         except click.UsageError as exc:
-            raise _UsageProblem(*_usage_location(exc)) from None
+            raise _one_line(exc) from None
 
     def invoke(self, ctx):
         try:
             return super().invoke(ctx)
         except click.UsageError as exc:
-            raise _UsageProblem(*_usage_location(exc)) from None
+            raise _one_line(exc) from None
+
+
+def _one_line(exc: click.UsageError) -> click.ClickException:
+    """The usage error as one line; a command group run without a command shows its help."""
+    if type(exc).__name__ == "NoArgsIsHelpError":  # click 8.2+: the help is the message
+        return exc
+    return _UsageProblem(*_usage_location(exc))
 
 
 @click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})

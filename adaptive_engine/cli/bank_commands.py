@@ -119,8 +119,9 @@ def _curves_table(csv_text: str) -> str:
               help=SCALING_HELP + "  Give it to store D in a JSON or SQLite copy of a CSV bank.")
 @click.option("--dimensions", "dimensions", default=None, metavar="NAMES",
               help=DIMENSIONS_HELP + "  Give them to store the names in a JSON or SQLite copy of a CSV bank.")
+@json_option
 @report_errors(flags={"scaling": "--scaling", "dimensions": "--dimensions"})
-def convert_command(bank_file, out_file, scaling, dimensions):
+def convert_command(bank_file, out_file, scaling, dimensions, as_json):
     """Validate BANK and write it to OUT; the format follows OUT's suffix (.csv, .json, .db).
 
     A CSV file has no place for the scaling constant D: a bank whose D is not 1 is not
@@ -128,4 +129,7 @@ def convert_command(bank_file, out_file, scaling, dimensions):
     """
     the_bank, written = bank_io.convert_bank(bank_file, out_file, scaling=scaling,
                                              dimensions=dimension_names(dimensions))
-    click.echo(f"wrote {len(the_bank)} items to {written}")
+    if as_json:
+        echo_json({"items": len(the_bank), "out": str(written)})
+    else:
+        click.echo(f"wrote {len(the_bank)} items to {written}")
