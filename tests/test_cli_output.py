@@ -310,3 +310,11 @@ def test_a_label_holding_the_separator_is_not_written_to_csv(tmp_path):
 def test_a_group_without_a_command_still_shows_its_help():
     out = run("session")
     assert "Usage: adaptive-engine session" in out.output and "Commands:" in out.output
+
+
+def test_an_answer_outside_an_items_categories_is_quoted_cleanly(tmp_path):
+    answers = tmp_path / "answers.csv"
+    answers.write_text("person_id,item_id,response\nP1,MV-SAF-096,2\n")
+    out = run("score", OPERATOR, answers)
+    assert out.exit_code == 2
+    assert out.output.strip() == "answers.csv line 2: response 2 is outside the categories 0..1 of item 'MV-SAF-096'"
