@@ -318,3 +318,16 @@ def test_an_answer_outside_an_items_categories_is_quoted_cleanly(tmp_path):
     out = run("score", OPERATOR, answers)
     assert out.exit_code == 2
     assert out.output.strip() == "answers.csv line 2: response 2 is outside the categories 0..1 of item 'MV-SAF-096'"
+
+
+def test_json_category_labels_are_a_list_of_strings(tmp_path):
+    doc = json.loads(SURVEY_JSON.read_text())
+    doc["items"][0]["category_labels"] = "strongly disagree|disagree|neither|agree|strongly agree"
+    doc["items"][1]["category_labels"] = ["strongly disagree", 1, "neither", "agree", "strongly agree"]
+    path = tmp_path / "bank.json"
+    path.write_text(json.dumps(doc))
+    with pytest.raises(BankError) as caught:
+        load_bank(path)
+    messages = [p.message for p in caught.value.problems]
+    assert any(m.startswith("category_labels must be a list of JSON strings, got the string") for m in messages)
+    assert "category_labels[1] must be a JSON string, got the number 1" in messages

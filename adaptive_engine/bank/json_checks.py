@@ -110,7 +110,7 @@ def item_type_problems(rec: Mapping[str, Any]) -> list[str]:
             if isinstance(value, list):
                 out.extend(f"category_labels[{j}] must be a JSON string, got {json_kind(v)}"
                            for j, v in enumerate(value) if not isinstance(v, str))
-            elif not isinstance(value, str):
+            else:
                 out.append(f"category_labels must be a list of JSON strings, got {json_kind(value)}")
         elif key == "enemy_group":
             if isinstance(value, list):
