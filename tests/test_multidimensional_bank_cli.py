@@ -33,7 +33,10 @@ NAMES = ("treatment_operations", "regulation_and_safety")
 
 
 def run(*args):
-    return CliRunner().invoke(main, [str(a) for a in args], catch_exceptions=False)
+    args = [str(a) for a in args]
+    if args[:2] == ["bank", "curves"] and "--format" not in args and "--help" not in args:
+        args += ["--format", "csv"]  # the full-precision CSV these tests read (people get a table)
+    return CliRunner().invoke(main, args, catch_exceptions=False)
 
 
 def parse_csv(text):

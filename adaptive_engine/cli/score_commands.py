@@ -10,7 +10,7 @@ import click
 from ..bank.item_bank import load_bank
 from ..bank.responses import read_responses
 from ..irt.estimation import METHODS, SCORE_BOUNDS, SCORE_PRIOR_SD_RANGE, check_score_prior, score_responses
-from ._common import SCALING_HELP, echo_json, main, report_errors
+from ._common import JSON_HELP, SCALING_HELP, echo_json, main, report_errors
 
 #: The CSV columns of ``score``; ``--with-status`` appends ``status``.
 SCORE_COLUMNS = ("person_id", "theta", "se", "n_items")
@@ -48,8 +48,9 @@ def _check_prior(mean: float, sd: float) -> None:
               show_default=True, help="Output format on stdout.")
 @click.option("--with-status", is_flag=True,
               help="Append a status column to the CSV output (JSON always has it).")
+@click.option("--json", "as_json", is_flag=True, help=JSON_HELP + "  (Same as --format json.)")
 @report_errors
-def score(bank_file, responses_file, method, prior_mean, prior_sd, scaling, output_format, with_status):
+def score(bank_file, responses_file, method, prior_mean, prior_sd, scaling, output_format, with_status, as_json):
     """Estimate the ability of every person in RESPONSES on the item bank BANK.
 
     RESPONSES is a long CSV with columns person_id,item_id,response.  Prints one row per
@@ -62,7 +63,7 @@ def score(bank_file, responses_file, method, prior_mean, prior_sd, scaling, outp
     bank = load_bank(bank_file, scaling=scaling)
     table = read_responses(responses_file)
     records = score_responses(bank, table, method, prior_mean=prior_mean, prior_sd=prior_sd)
-    if output_format == "json":
+    if as_json or output_format == "json":
         echo_json(records)
     else:
         click.echo(_csv_text(records, with_status=with_status), nl=False)
