@@ -21,6 +21,9 @@ still make one step take seconds.
 
 from __future__ import annotations
 
+import weakref
+
+import attrs
 import numpy as np
 from scipy.optimize import Bounds, LinearConstraint, milp
 from scipy.sparse import lil_matrix
@@ -104,7 +107,17 @@ def _meets_constraints(chosen, a_mat, lo, hi, lower, upper) -> bool:
 
 
 def shadow_test_pick(ctx, state, rows, fallback_item, fallback_value):
-    """Replace each row's pick by the best free item of its shadow test (when one exists)."""
+    """Replace each row's pick by the best free item of its shadow test (when one exists).
+
+    Banks whose blueprint separates into areas (:func:`separable_program`) are solved for
+    the whole batch at once by :func:`separable_shadow_tests`; every other bank, or every
+    bank while :data:`GENERAL_SOLVER_ONLY` is set, one row at a time by
+    :func:`assemble_shadow_test`.
+    """
+    rows = np.asarray(rows)
+    program = None if GENERAL_SOLVER_ONLY else separable_program(ctx)
+    if program is not None:
+        return _separable_pick(ctx, program, state, rows, fallback_item, fallback_value)
     item = np.array(fallback_item, copy=True)
     value = np.array(fallback_value, copy=True)
     for k, r in enumerate(rows):
@@ -118,4 +131,276 @@ def shadow_test_pick(ctx, state, rows, fallback_item, fallback_value):
         best = int(np.argmax(info))
         item[k] = free[best]
         value[k] = info[best]
+    return item, value
+
+
+# ----------------------------------------------------------------------------------------
+# The separable case: an exact solver for a whole batch at once
+#
+# On most banks the shadow-test program separates by content area: every enemy group and
+# every item set lies inside one area, no item is in two enemy groups and no set member in
+# one.  Then, within an area,
+#
+# * the members of an enemy group are interchangeable for every constraint (same area, no
+#   set, no other group): an optimal test holds at most the most informative available
+#   member of each group (exchange argument), so a group is one "unit" of weight 1 whose
+#   value is that member's information, and an item outside groups and sets is a unit of
+#   one member;
+# * an item set is a block of fixed weight (its size) and value (its members' sum);
+# * for a given number of items from the area, the best choice is the best subset of
+#   blocks (a 0-1 knapsack over weights 0..length, solved exactly by dynamic programming)
+#   filled up with the most informative units (the best q of independent weight-1 units
+#   are the top q);
+#
+# and the areas interact only through the test length, so a second dynamic programme over
+# the count of each area (within its blueprint bounds) gives the optimum of the whole
+# program.  Items already given are fixed: their unit or block is in the test and counts
+# towards its area.  Every step is exact; the only difference from a general solver's
+# optimum is rounding in sums of information (which decides only between tests whose
+# information agrees to rounding) and a general solver's own tolerances (HiGHS stops at
+# a relative gap of 1e-4 by default).  Everything is an elementwise operation or a
+# reduction along the last axis of a row, so a row's result does not depend on the batch.
+
+#: Solve every shadow test with :func:`assemble_shadow_test` (the general 0-1 solver), also
+#: on separable banks: the reference path, kept for comparisons (benchmarks, tests).
+GENERAL_SOLVER_ONLY = False
+
+_PROGRAMS: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()
+
+
+@attrs.frozen(eq=False)
+class SeparableProgram:
+    """The shadow-test program of a (design, bank) pair, split by content area.
+
+    Attributes
+    ----------
+    length : int
+        Items in a shadow test.
+    units : int (U, M)
+        Member items of each weight-1 unit (an enemy group, or one item), padded with
+        ``n_items`` (a column that is never available).
+    unit_area : int (U,)
+    area_units : tuple of int arrays
+        Units of each area, ascending.
+    area_sets : tuple of tuples of int arrays
+        Member items of each item set, per area.
+    lower, upper : int (A,)
+        Bounds on each area's count (upper at most ``length``).
+    """
+
+    length: int
+    units: np.ndarray
+    unit_area: np.ndarray
+    area_units: tuple
+    area_sets: tuple
+    lower: np.ndarray
+    upper: np.ndarray
+
+
+def separable_program(ctx) -> SeparableProgram | None:
+    """The :class:`SeparableProgram` of ``ctx``, or None when its program does not separate.
+
+    Computed once per context.  The program separates when every enemy group of two or
+    more operational items and every item set lies in one content area (or no area
+    bounds apply), no operational item is in two such groups and no set member in any.
+    """
+    try:
+        return _PROGRAMS[ctx]
+    except KeyError:
+        pass
+    program = _PROGRAMS[ctx] = _build_separable_program(ctx)
+    return program
+
+
+def _build_separable_program(ctx) -> SeparableProgram | None:
+    n = ctx.n_items
+    length = int(ctx.design.stopping.max_items)
+    op = np.asarray(ctx.operational, dtype=bool)
+    area = np.asarray(ctx.area, dtype=np.int64) if ctx.balanced else np.zeros(n, dtype=np.int64)
+    n_areas = ctx.n_areas if ctx.balanced else 1
+    # enemy groups as the general program sees them (two or more members); only
+    # operational members can ever be in a test
+    codes = ctx.item_groups
+    groups = []
+    for g in range(ctx.n_groups):
+        members = np.flatnonzero((codes == g).any(axis=1))
+        if members.size > 1:
+            groups.append(members[op[members]])
+    in_group = np.zeros(n, dtype=np.int64)
+    for members in groups:
+        in_group[members] += 1
+    if np.any(in_group > 1):
+        return None
+    in_set = np.asarray(ctx.item_set) >= 0
+    sets = [np.asarray(m) for m in ctx.set_members if len(m)]
+    for members in groups:
+        if members.size and (np.any(in_set[members]) or np.unique(area[members]).size > 1):
+            return None
+    for members in sets:
+        if np.unique(area[members]).size > 1:
+            return None
+    unit_lists = [members for members in groups if members.size]
+    grouped = np.zeros(n, dtype=bool)
+    for members in unit_lists:
+        grouped[members] = True
+    unit_lists += [np.array([i]) for i in np.flatnonzero(op & ~grouped & ~in_set)]
+    unit_lists.sort(key=lambda m: int(m[0]))
+    width = max((m.size for m in unit_lists), default=1)
+    units = np.full((len(unit_lists), width), n, dtype=np.int64)
+    for u, members in enumerate(unit_lists):
+        units[u, : members.size] = members
+    unit_area = area[units[:, 0]] if len(unit_lists) else np.zeros(0, dtype=np.int64)
+    area_units = tuple(np.flatnonzero(unit_area == a) for a in range(n_areas))
+    area_sets = tuple(tuple(m for m in sets if area[m[0]] == a) for a in range(n_areas))
+    if ctx.balanced:
+        lower = np.asarray(ctx.area_min, dtype=np.int64).copy()
+        upper = np.minimum(np.asarray(ctx.area_max, dtype=np.int64), length)
+    else:
+        lower, upper = np.zeros(1, dtype=np.int64), np.full(1, length, dtype=np.int64)
+    return SeparableProgram(length=length, units=units, unit_area=unit_area, area_units=area_units,
+                            area_sets=area_sets, lower=lower, upper=upper)
+
+
+def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
+    """Optimal shadow tests of ``rows`` (int (R,)) on a separable program, all at once.
+
+    Returns
+    -------
+    chosen : bool (R, n_items)
+        The shadow test of each row (given items included).
+    ok : bool (R,)
+        False where no test meets the constraints (``chosen`` is then all False).
+    info : float (R, n_items)
+        Fisher information of every item at each row's estimate (the objective).
+    """
+    n = ctx.n_items
+    size = rows.size
+    length = program.length
+    width = length + 1
+    theta = state.theta[rows]
+    info = models.information(ctx.bank.params, theta[:, None])
+    info = np.broadcast_to(info, (size, n))
+    given = np.zeros((size, n + 1), dtype=bool)
+    for k in range(size):
+        r = rows[k]
+        m = state.n_given[r]
+        given[k, state.items[r, :m][state.scored[r, :m]]] = True
+    avail = np.zeros((size, n + 1), dtype=bool)
+    avail[:, :n] = ctx.operational & (~state.used[rows] | given[:, :n])
+    # a given item the program could not hold (not operational): no test
+    ok = ~np.any(given & ~avail, axis=1)
+    info_pad = np.full((size, n + 1), -np.inf)
+    info_pad[:, :n] = info
+    minus_inf = -np.inf
+
+    # weight-1 units: forced when a member was given, else worth their best free member
+    members = program.units
+    unit_given = given[:, members]  # (R, U, M)
+    n_unit_given = unit_given.sum(axis=2)
+    ok &= ~np.any(n_unit_given > 1, axis=1)
+    forced_unit = n_unit_given > 0
+    member_value = np.where(avail[:, members] & ~unit_given, info_pad[:, members], minus_inf)
+    best_member = np.argmax(member_value, axis=2)  # (R, U), first of equals
+    unit_value = np.take_along_axis(member_value, best_member[..., None], axis=2)[..., 0]
+    unit_value[forced_unit] = minus_inf
+
+    total = np.full((size, width), minus_inf)
+    total[:, 0] = 0.0
+    steps = []
+    area_parts = []
+    for a, unit_cols in enumerate(program.area_units):
+        values = unit_value[:, unit_cols]
+        order = np.argsort(-values, axis=1, kind="stable")
+        ranked = np.take_along_axis(values, order, axis=1)
+        prefix = np.full((size, unit_cols.size + 1), minus_inf)
+        prefix[:, 0] = 0.0
+        np.cumsum(ranked, axis=1, out=prefix[:, 1:])
+        fixed = forced_unit[:, unit_cols].sum(axis=1)
+        # item sets of the area: a 0-1 knapsack over their sizes
+        blocks = np.full((size, width), minus_inf)
+        blocks[:, 0] = 0.0
+        takes = []
+        forced_sets = []
+        for set_members in program.area_sets[a]:
+            w = set_members.size
+            started = given[:, set_members].any(axis=1)
+            whole = avail[:, set_members].all(axis=1)
+            ok &= ~(started & ~whole)
+            fixed = fixed + np.where(started, w, 0)
+            forced_sets.append(started)
+            value = info[:, set_members[0]].copy()
+            for i in set_members[1:]:
+                value += info[:, i]
+            value = np.where(~started & whole, value, minus_inf)
+            take = np.zeros((size, width), dtype=bool)
+            if w < width:
+                candidate = blocks[:, : width - w] + value[:, None]
+                take[:, w:] = candidate > blocks[:, w:]
+                blocks[:, w:] = np.where(take[:, w:], candidate, blocks[:, w:])
+            takes.append(take)
+        # best value of k free items from the area (k = 0..length), and the block weight used
+        best = np.full((size, width), minus_inf)
+        block_weight = np.zeros((size, width), dtype=np.int64)
+        for w in range(width):
+            if not np.isfinite(blocks[:, w]).any():
+                continue
+            top = min(width, w + unit_cols.size + 1)
+            candidate = blocks[:, w : w + 1] + prefix[:, : top - w]
+            better = candidate > best[:, w:top]
+            best[:, w:top] = np.where(better, candidate, best[:, w:top])
+            block_weight[:, w:top] = np.where(better, w, block_weight[:, w:top])
+        # by the area's count n = fixed + k, within its bounds
+        count = np.arange(width)
+        free_count = count[None, :] - fixed[:, None]
+        by_count = np.take_along_axis(best, np.clip(free_count, 0, length), axis=1)
+        by_count[(free_count < 0) | (count < program.lower[a]) | (count > program.upper[a])] = minus_inf
+        # combine with the areas before
+        combined = np.full((size, width), minus_inf)
+        area_count = np.zeros((size, width), dtype=np.int64)
+        for c in range(int(program.lower[a]), int(program.upper[a]) + 1):
+            candidate = total[:, : width - c] + by_count[:, c : c + 1]
+            better = candidate > combined[:, c:]
+            combined[:, c:] = np.where(better, candidate, combined[:, c:])
+            area_count[:, c:] = np.where(better, c, area_count[:, c:])
+        total = combined
+        steps.append(area_count)
+        area_parts.append((unit_cols, order, fixed, block_weight, takes, forced_sets))
+
+    ok &= np.isfinite(total[:, length])
+    # trace the choices back
+    chosen = given[:, :n].copy()
+    at = np.full(size, length, dtype=np.int64)
+    line = np.arange(size)
+    for a in range(len(program.area_units) - 1, -1, -1):
+        unit_cols, order, fixed, block_weight, takes, forced_sets = area_parts[a]
+        c = steps[a][line, at]
+        at = at - c
+        k = np.clip(c - fixed, 0, length)
+        w = block_weight[line, k]
+        q = k - w  # units taken, the q most informative
+        taken = np.arange(unit_cols.size)[None, :] < q[:, None]
+        unit_rows, unit_rank = np.nonzero(taken & ok[:, None])
+        u = unit_cols[order[unit_rows, unit_rank]]
+        chosen[unit_rows, members[u, best_member[unit_rows, u]]] = True
+        for s in range(len(takes) - 1, -1, -1):
+            set_members = program.area_sets[a][s]
+            t = takes[s][line, w] & ok
+            w = w - np.where(t, set_members.size, 0)
+            chosen[np.ix_(t | (forced_sets[s] & ok), set_members)] = True
+    chosen[~ok] = False
+    return chosen, ok, info
+
+
+def _separable_pick(ctx, program, state, rows, fallback_item, fallback_value):
+    item = np.array(fallback_item, copy=True)
+    value = np.array(fallback_value, copy=True)
+    if rows.size == 0:
+        return item, value
+    chosen, ok, info = separable_shadow_tests(ctx, program, state, rows)
+    free = chosen & ~state.used[rows]
+    has_free = ok & free.any(axis=1)
+    masked = np.where(free, info, -np.inf)
+    best = np.argmax(masked, axis=1)  # first of equals, as in bank order
+    item[has_free] = best[has_free]
+    value[has_free] = masked[np.arange(rows.size), best][has_free]
     return item, value
