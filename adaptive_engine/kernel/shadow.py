@@ -281,10 +281,10 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
     info = models.information(ctx.bank.params, theta[:, None])
     info = np.broadcast_to(info, (size, n))
     given = np.zeros((size, n + 1), dtype=bool)
-    for k in range(size):
-        r = rows[k]
-        m = state.n_given[r]
-        given[k, state.items[r, :m][state.scored[r, :m]]] = True
+    items = state.items[rows]
+    scored = state.scored[rows] & (np.arange(items.shape[1]) < state.n_given[rows, None]) & (items >= 0)
+    line, position = np.nonzero(scored)
+    given[line, items[line, position]] = True
     avail = np.zeros((size, n + 1), dtype=bool)
     avail[:, :n] = ctx.operational & (~state.used[rows] | given[:, :n])
     # a given item the program could not hold (not operational): no test
