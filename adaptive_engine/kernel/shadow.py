@@ -172,27 +172,35 @@ _PROGRAMS: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()
 class SeparableProgram:
     """The shadow-test program of a (design, bank) pair, split by content area.
 
+    A *unit* is an operational item outside enemy groups and item sets (units ``0..S-1``,
+    ``singles``) or an enemy group (units ``S..``, ``groups``): a test holds at most one
+    item of it.
+
     Attributes
     ----------
     length : int
         Items in a shadow test.
-    units : int (U, M)
-        Member items of each weight-1 unit (an enemy group, or one item), padded with
-        ``n_items`` (a column that is never available).
-    unit_area : int (U,)
+    singles : int (S,)
+        The item of each single unit.
+    groups : int (G, M)
+        Member items of each enemy group, padded with ``n_items`` (a column that is never
+        available).
     area_units : tuple of int arrays
         Units of each area, ascending.
     area_sets : tuple of tuples of int arrays
         Member items of each item set, per area.
+    area_block_weights : tuple of tuples of int
+        Item counts up to ``length`` that some choice of the area's item sets reaches.
     lower, upper : int (A,)
         Bounds on each area's count (upper at most ``length``).
     """
 
     length: int
-    units: np.ndarray
-    unit_area: np.ndarray
+    singles: np.ndarray
+    groups: np.ndarray
     area_units: tuple
     area_sets: tuple
+    area_block_weights: tuple
     lower: np.ndarray
     upper: np.ndarray
 
@@ -224,7 +232,7 @@ def _build_separable_program(ctx) -> SeparableProgram | None:
     groups = []
     for g in range(ctx.n_groups):
         members = np.flatnonzero((codes == g).any(axis=1))
-        if members.size > 1:
+        if members.size > 1 and op[members].any():
             groups.append(members[op[members]])
     in_group = np.zeros(n, dtype=np.int64)
     for members in groups:
@@ -234,31 +242,32 @@ def _build_separable_program(ctx) -> SeparableProgram | None:
     in_set = np.asarray(ctx.item_set) >= 0
     sets = [np.asarray(m) for m in ctx.set_members if len(m)]
     for members in groups:
-        if members.size and (np.any(in_set[members]) or np.unique(area[members]).size > 1):
+        if np.any(in_set[members]) or np.unique(area[members]).size > 1:
             return None
     for members in sets:
         if np.unique(area[members]).size > 1:
             return None
-    unit_lists = [members for members in groups if members.size]
-    grouped = np.zeros(n, dtype=bool)
-    for members in unit_lists:
-        grouped[members] = True
-    unit_lists += [np.array([i]) for i in np.flatnonzero(op & ~grouped & ~in_set)]
-    unit_lists.sort(key=lambda m: int(m[0]))
-    width = max((m.size for m in unit_lists), default=1)
-    units = np.full((len(unit_lists), width), n, dtype=np.int64)
-    for u, members in enumerate(unit_lists):
-        units[u, : members.size] = members
-    unit_area = area[units[:, 0]] if len(unit_lists) else np.zeros(0, dtype=np.int64)
+    singles = np.flatnonzero(op & (in_group == 0) & ~in_set)
+    width = max((m.size for m in groups), default=1)
+    group_items = np.full((len(groups), width), n, dtype=np.int64)
+    for g, members in enumerate(groups):
+        group_items[g, : members.size] = members
+    unit_area = np.concatenate([area[singles], area[group_items[:, 0]]]).astype(np.int64)
     area_units = tuple(np.flatnonzero(unit_area == a) for a in range(n_areas))
     area_sets = tuple(tuple(m for m in sets if area[m[0]] == a) for a in range(n_areas))
+    weights = []
+    for area_set in area_sets:
+        reach = {0}
+        for members in area_set:
+            reach |= {w + members.size for w in reach if w + members.size <= length}
+        weights.append(tuple(sorted(reach)))
     if ctx.balanced:
         lower = np.asarray(ctx.area_min, dtype=np.int64).copy()
         upper = np.minimum(np.asarray(ctx.area_max, dtype=np.int64), length)
     else:
         lower, upper = np.zeros(1, dtype=np.int64), np.full(1, length, dtype=np.int64)
-    return SeparableProgram(length=length, units=units, unit_area=unit_area, area_units=area_units,
-                            area_sets=area_sets, lower=lower, upper=upper)
+    return SeparableProgram(length=length, singles=singles, groups=group_items, area_units=area_units,
+                            area_sets=area_sets, area_block_weights=tuple(weights), lower=lower, upper=upper)
 
 
 def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
@@ -277,31 +286,34 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
     size = rows.size
     length = program.length
     width = length + 1
-    theta = state.theta[rows]
-    info = models.information(ctx.bank.params, theta[:, None])
+    minus_inf = -np.inf
+    line = np.arange(size)
+    info = models.information(ctx.bank.params, state.theta[rows][:, None])
     info = np.broadcast_to(info, (size, n))
     given = np.zeros((size, n + 1), dtype=bool)
     items = state.items[rows]
     scored = state.scored[rows] & (np.arange(items.shape[1]) < state.n_given[rows, None]) & (items >= 0)
-    line, position = np.nonzero(scored)
-    given[line, items[line, position]] = True
+    at_row, at_position = np.nonzero(scored)
+    given[at_row, items[at_row, at_position]] = True
     avail = np.zeros((size, n + 1), dtype=bool)
     avail[:, :n] = ctx.operational & (~state.used[rows] | given[:, :n])
     # a given item the program could not hold (not operational): no test
     ok = ~np.any(given & ~avail, axis=1)
-    info_pad = np.full((size, n + 1), -np.inf)
-    info_pad[:, :n] = info
-    minus_inf = -np.inf
 
-    # weight-1 units: forced when a member was given, else worth their best free member
-    members = program.units
-    unit_given = given[:, members]  # (R, U, M)
-    n_unit_given = unit_given.sum(axis=2)
-    ok &= ~np.any(n_unit_given > 1, axis=1)
-    forced_unit = n_unit_given > 0
-    member_value = np.where(avail[:, members] & ~unit_given, info_pad[:, members], minus_inf)
-    best_member = np.argmax(member_value, axis=2)  # (R, U), first of equals
-    unit_value = np.take_along_axis(member_value, best_member[..., None], axis=2)[..., 0]
+    # units: forced when a member was given, else worth their best free member
+    singles, groups = program.singles, program.groups
+    single_given = given[:, singles]
+    single_value = np.where(avail[:, singles] & ~single_given, info[:, singles], minus_inf)
+    group_given = given[:, groups]  # (R, G, M)
+    n_group_given = group_given.sum(axis=2)
+    ok &= ~np.any(n_group_given > 1, axis=1)
+    info_pad = np.full((size, n + 1), minus_inf)
+    info_pad[:, :n] = info
+    member_value = np.where(avail[:, groups] & ~group_given, info_pad[:, groups], minus_inf)
+    best_member = np.argmax(member_value, axis=2) if groups.size else np.zeros((size, 0), dtype=np.int64)
+    group_value = np.take_along_axis(member_value, best_member[..., None], axis=2)[..., 0]
+    forced_unit = np.concatenate([single_given, n_group_given > 0], axis=1)
+    unit_value = np.concatenate([single_value, group_value], axis=1)
     unit_value[forced_unit] = minus_inf
 
     total = np.full((size, width), minus_inf)
@@ -310,11 +322,16 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
     area_parts = []
     for a, unit_cols in enumerate(program.area_units):
         values = unit_value[:, unit_cols]
-        order = np.argsort(-values, axis=1, kind="stable")
-        ranked = np.take_along_axis(values, order, axis=1)
-        prefix = np.full((size, unit_cols.size + 1), minus_inf)
-        prefix[:, 0] = 0.0
-        np.cumsum(ranked, axis=1, out=prefix[:, 1:])
+        # the area's free units are taken best first, at most `upper` of them
+        top = min(unit_cols.size, int(program.upper[a]))
+        if 0 < top < unit_cols.size:
+            part = np.argpartition(-values, top - 1, axis=1)[:, :top]
+        else:
+            part = np.broadcast_to(np.arange(top), (size, top))
+        part_values = np.take_along_axis(values, part, axis=1)
+        order = np.take_along_axis(part, np.argsort(-part_values, axis=1, kind="stable"), axis=1)
+        prefix = np.zeros((size, top + 1))
+        np.cumsum(np.take_along_axis(values, order, axis=1), axis=1, out=prefix[:, 1:])
         fixed = forced_unit[:, unit_cols].sum(axis=1)
         # item sets of the area: a 0-1 knapsack over their sizes
         blocks = np.full((size, width), minus_inf)
@@ -341,20 +358,18 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
         # best value of k free items from the area (k = 0..length), and the block weight used
         best = np.full((size, width), minus_inf)
         block_weight = np.zeros((size, width), dtype=np.int64)
-        for w in range(width):
-            if not np.isfinite(blocks[:, w]).any():
-                continue
-            top = min(width, w + unit_cols.size + 1)
-            candidate = blocks[:, w : w + 1] + prefix[:, : top - w]
-            better = candidate > best[:, w:top]
-            best[:, w:top] = np.where(better, candidate, best[:, w:top])
-            block_weight[:, w:top] = np.where(better, w, block_weight[:, w:top])
-        # by the area's count n = fixed + k, within its bounds
+        for w in program.area_block_weights[a]:
+            end = min(width, w + top + 1)
+            candidate = blocks[:, w : w + 1] + prefix[:, : end - w]
+            better = candidate > best[:, w:end]
+            best[:, w:end] = np.where(better, candidate, best[:, w:end])
+            block_weight[:, w:end] = np.where(better, w, block_weight[:, w:end])
+        # by the area's count c = fixed + k, within its bounds
         count = np.arange(width)
         free_count = count[None, :] - fixed[:, None]
         by_count = np.take_along_axis(best, np.clip(free_count, 0, length), axis=1)
         by_count[(free_count < 0) | (count < program.lower[a]) | (count > program.upper[a])] = minus_inf
-        # combine with the areas before
+        # combined with the areas before
         combined = np.full((size, width), minus_inf)
         area_count = np.zeros((size, width), dtype=np.int64)
         for c in range(int(program.lower[a]), int(program.upper[a]) + 1):
@@ -370,18 +385,20 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
     # trace the choices back
     chosen = given[:, :n].copy()
     at = np.full(size, length, dtype=np.int64)
-    line = np.arange(size)
+    n_singles = singles.size
     for a in range(len(program.area_units) - 1, -1, -1):
         unit_cols, order, fixed, block_weight, takes, forced_sets = area_parts[a]
         c = steps[a][line, at]
         at = at - c
         k = np.clip(c - fixed, 0, length)
         w = block_weight[line, k]
-        q = k - w  # units taken, the q most informative
-        taken = np.arange(unit_cols.size)[None, :] < q[:, None]
-        unit_rows, unit_rank = np.nonzero(taken & ok[:, None])
-        u = unit_cols[order[unit_rows, unit_rank]]
-        chosen[unit_rows, members[u, best_member[unit_rows, u]]] = True
+        q = k - w  # units taken: the q most informative
+        unit_row, rank = np.nonzero((np.arange(order.shape[1])[None, :] < q[:, None]) & ok[:, None])
+        u = unit_cols[order[unit_row, rank]]
+        single = u < n_singles
+        chosen[unit_row[single], singles[u[single]]] = True
+        g = u[~single] - n_singles
+        chosen[unit_row[~single], groups[g, best_member[unit_row[~single], g]]] = True
         for s in range(len(takes) - 1, -1, -1):
             set_members = program.area_sets[a][s]
             t = takes[s][line, w] & ok
