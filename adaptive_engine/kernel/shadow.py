@@ -22,12 +22,14 @@ still make one step take seconds.
 from __future__ import annotations
 
 import weakref
+from typing import NamedTuple
 
 import attrs
 import numpy as np
 from scipy.optimize import Bounds, LinearConstraint, milp
 from scipy.sparse import lil_matrix
 
+from ..design.types import ExposureMethod
 from ..irt import models
 
 #: Branch-and-bound nodes the solver may explore per shadow test: a bound on the work that
@@ -104,6 +106,40 @@ def _meets_constraints(chosen, a_mat, lo, hi, lower, upper) -> bool:
     x = chosen.astype(float)
     totals = a_mat @ x
     return bool(np.all(totals >= lo) and np.all(totals <= hi) and np.all(x >= lower) and np.all(x <= upper))
+
+
+class ShadowChoice(NamedTuple):
+    """Items picked for rows (arrays (R,)) and the (row, item) pairs withheld on the way."""
+
+    item: np.ndarray
+    value: np.ndarray
+    withheld: list
+
+
+def shadow_test_choice(ctx, state, rows, ordinary):
+    """The pick of ``rows`` under a shadow-test design: a ``Choice`` (item, value, withheld).
+
+    ``ordinary(positions)`` makes the design's ordinary pick for ``rows[positions]``; it
+    stands where no shadow test exists.  Under Sympson-Hetter it is made for every row,
+    since the items its lottery withholds leave the rest of the test whatever is given;
+    otherwise only for rows without a shadow-test pick (the ordinary pick changes no state
+    and draws from counter-based streams, so skipping it changes no other decision).
+    """
+    rows = np.asarray(rows)
+    everyone = ctx.design.exposure.method is ExposureMethod.SYMPSON_HETTER
+    if everyone:
+        got = ordinary(np.arange(rows.size))
+        item, value = shadow_test_pick(ctx, state, rows, got.item, got.value)
+        return got._replace(item=item, value=value)
+    no_pick = np.full(rows.size, -1, dtype=np.int64)
+    item, value = shadow_test_pick(ctx, state, rows, no_pick, np.full(rows.size, np.nan))
+    missing = np.flatnonzero(item < 0)
+    withheld = []
+    if missing.size:
+        got = ordinary(missing)
+        item[missing], value[missing] = got.item, got.value
+        withheld = got.withheld
+    return ShadowChoice(item=item, value=value, withheld=withheld)
 
 
 def shadow_test_pick(ctx, state, rows, fallback_item, fallback_value):
