@@ -5,18 +5,26 @@ every item already given, meets the blueprint's area bounds, holds at most one i
 enemy group and whole item sets only, and has maximum Fisher information at the current
 estimate.  The examinee gets the most informative item of that shadow test not yet given.
 Because the shadow test always satisfies every constraint, the real test does too, however
-it ends.  Solved with :func:`scipy.optimize.milp` (HiGHS), one examinee at a time: meant for
-live sessions and modest simulations.
+it ends.
 
-The solver's search is bounded by a number of branch-and-bound nodes
+Two solvers.  When the program separates by content area (every enemy group and item set
+inside one area, no item in two groups, no set member in one: :func:`separable_program`),
+:func:`separable_shadow_tests` solves it exactly for a whole batch at once by dynamic
+programming (see the notes above it); the shipped design and bank are such a case.  Every
+other program is solved with :func:`scipy.optimize.milp` (HiGHS), one examinee at a time
+(:func:`assemble_shadow_test`), which is also the reference the batch solver is tested
+against (``tests/test_shadow_speed.py``) and can be forced with :data:`GENERAL_SOLVER_ONLY`.
+
+The general solver's search is bounded by a number of branch-and-bound nodes
 (:data:`SHADOW_TEST_NODE_LIMIT`), never by a clock, so the shadow test is the same on every
 run and machine however loaded it is.  When the limit is reached, the best shadow test
 found so far is used (it meets every constraint; it may hold somewhat less information
 than the optimum); when none was found by then, or the constraints admit no test, the
-design's ordinary pick stands for that step.  The shadow tests of the shipped designs are
-solved at the first node, far inside the limit.  The count bounds the search, not the time
-spent at one node: a bank whose enemy groups overlap heavily (a hard packing problem) can
-still make one step take seconds.
+design's ordinary pick stands for that step (so too when the batch solver finds no test).
+On the shipped design the general solver reaches the optimum at the first node, and both
+solvers give the same tests (checked in the tests and ``benchmarks/bench_shadow.py``).
+The count bounds the search, not the time spent at one node: a bank whose enemy groups
+overlap heavily (a hard packing problem) can still make one step take seconds.
 """
 
 from __future__ import annotations
