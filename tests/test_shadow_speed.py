@@ -20,7 +20,7 @@ from scipy.optimize import Bounds, LinearConstraint, milp
 from scipy.sparse import csr_array
 
 from adaptive_engine.bank import bank_from_records, load_bank
-from adaptive_engine.design import AreaRule, Blueprint, Design, Stopping
+from adaptive_engine.design import AreaRule, Blueprint, Design, Exposure, Stopping
 from adaptive_engine.design.toml_file import read_design
 from adaptive_engine.irt import models
 from adaptive_engine.kernel import cycle as kernel
@@ -161,6 +161,16 @@ def test_a_separable_bank_with_withheld_and_pretest_items_reaches_the_general_op
     assert _run_and_check(design, bank, [1, 2, 3], np.array([-2.0, 0.3, 1.8]), withhold=top) == 36
 
 
+def test_without_area_bounds_enemies_and_sets_alone_reach_the_general_optimum():
+    # no area rules: the program does not look at areas, so groups and sets may span them
+    records = [dict(item_id=f"q{i:03d}", model="2PL", a=1.0 + 0.01 * (i % 37), b=-2.0 + 0.1 * (i % 41),
+                    area=AREAS[i % 4], enemy_group="wide" if i in (3, 10, 17) else "",
+                    item_set="across" if i in (5, 6, 7) else "") for i in range(48)]
+    design = Design(blueprint=Blueprint(shadow_test=True, enemies=True, item_sets=True),
+                    stopping=Stopping(min_items=10, max_items=10))
+    assert _run_and_check(design, bank_from_records(records), [5, 6], np.array([-0.5, 0.9])) == 20
+
+
 def test_no_test_when_the_bounds_cannot_be_met_as_the_general_solver_finds():
     bank = _separable_bank()
     # "east" holds 30 items, one of them pretest; two of its enemy groups have three and two
@@ -221,3 +231,41 @@ def test_no_test_when_a_started_item_set_has_a_withheld_member():
     state.used[0, second] = True  # withheld: the set can no longer be whole
     _, ok, _ = shadow.separable_shadow_tests(ctx, program, state, np.array([0]))
     assert not ok[0] and _reference_optimum(bank, design, state, 0) is None
+
+
+def _recording_ordinary(calls):
+    def ordinary(positions):
+        calls.append(list(positions))
+        return shadow.ShadowChoice(item=np.full(positions.size, 7), value=np.zeros(positions.size),
+                                   withheld=[(int(p), 1) for p in positions])
+    return ordinary
+
+
+def test_the_ordinary_pick_is_made_where_it_decides_or_withholds():
+    bank = _separable_bank()
+    rows = np.arange(3)
+    keys = randomness.stream_key(rows.astype(np.uint64))
+    # every row has a shadow test: no ordinary pick, nothing withheld
+    ctx = build_context(_separable_design(), bank)
+    state, _ = kernel.start(ctx, keys)
+    calls = []
+    got = shadow.shadow_test_choice(ctx, state, rows, _recording_ordinary(calls))
+    assert calls == [] and got.withheld == [] and np.all(got.item >= 0) and np.all(got.item != 7)
+    # no row has one: the ordinary pick for every row
+    impossible = Design(blueprint=Blueprint(areas=(AreaRule(name="east", min=27),), shadow_test=True,
+                                            enemies=True, item_sets=True),
+                        stopping=Stopping(min_items=30, max_items=30))
+    ctx = build_context(impossible, bank)
+    state, _ = kernel.start(ctx, keys)
+    calls = []
+    got = shadow.shadow_test_choice(ctx, state, rows, _recording_ordinary(calls))
+    assert calls == [[0, 1, 2]] and list(got.item) == [7, 7, 7] and len(got.withheld) == 3
+    # Sympson-Hetter: the lottery's withheld items count for every row, shadow picks stand
+    lottery = Design(exposure=Exposure(method="sympson_hetter"), blueprint=_separable_design().blueprint,
+                     stopping=Stopping(min_items=12, max_items=12),
+                     exposure_parameters={bank.item_ids[i]: 0.5 for i in range(0, 120, 3)})
+    ctx = build_context(lottery, bank)
+    state, _ = kernel.start(ctx, keys)
+    calls = []
+    got = shadow.shadow_test_choice(ctx, state, rows, _recording_ordinary(calls))
+    assert calls == [[0, 1, 2]] and len(got.withheld) == 3 and np.all(got.item != 7)

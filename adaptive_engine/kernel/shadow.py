@@ -272,12 +272,13 @@ def _build_separable_program(ctx) -> SeparableProgram | None:
     n_areas = ctx.n_areas if ctx.balanced else 1
     # enemy groups as the general program sees them (two or more members); only
     # operational members can ever be in a test
-    codes = ctx.item_groups
-    groups = []
-    for g in range(ctx.n_groups):
-        members = np.flatnonzero((codes == g).any(axis=1))
-        if members.size > 1 and op[members].any():
-            groups.append(members[op[members]])
+    holder, column = np.nonzero(ctx.item_groups < ctx.n_groups)
+    code = ctx.item_groups[holder, column]
+    by_code = np.argsort(code, kind="stable")  # items ascending within each group
+    holder, code = holder[by_code], code[by_code]
+    cuts = np.flatnonzero(np.diff(code)) + 1
+    groups = [members[op[members]] for members in np.split(holder, cuts)
+              if np.unique(members).size > 1 and op[members].any()]
     in_group = np.zeros(n, dtype=np.int64)
     for members in groups:
         in_group[members] += 1
