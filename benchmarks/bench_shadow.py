@@ -5,8 +5,9 @@ The demo design ``simulations/shadow_test.toml`` on ``item_banks/meridian_valley
 
 * **per test**: the same examinees through the general solver (:func:`scipy.optimize.milp`
   at every step, ``shadow.GENERAL_SOLVER_ONLY``, the path before the batch solver) and
-  through the batch solver, one examinee per batch (as a live session) and all in one
-  batch; and whether both paths give every examinee the same items;
+  through the batch solver, all in one batch (simulate) and one examinee at a time through
+  the kernel (as live sessions run it); and whether both paths give every examinee the
+  same items (also with one examinee per chunk);
 * **500-examinee study** (:func:`run_study` without files): the shadow design against the
   same bank and length without a blueprint (the ratio of the issue's target, at most 20x);
 * **5,000-examinee study** on two workers.
@@ -26,7 +27,11 @@ import numpy as np
 from adaptive_engine.bank import load_bank
 from adaptive_engine.design import Blueprint
 from adaptive_engine.design.toml_file import read_design
+from adaptive_engine.irt import models
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
 from adaptive_engine.kernel import shadow
+from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation import engine as simulation
 from adaptive_engine.simulation.engine import Execution
 from adaptive_engine.simulation.population import Population
@@ -51,6 +56,17 @@ def administered(design, bank, theta, **kw):
     return np.concatenate([c.items for c in chunks])
 
 
+def one_at_a_time(design, bank, theta):
+    """The kernel on a batch of one examinee after another (as live sessions run it)."""
+    ctx = build_context(design, bank)
+    rng = np.random.default_rng(3)
+    for e, true_theta in enumerate(theta):
+        state, _ = kernel.start(ctx, randomness.stream_key(np.array([e], dtype=np.uint64)))
+        while not state.done[0]:
+            p = models.probabilities(bank.params.take(state.pending[:1]), np.array([true_theta]))[0, 1]
+            kernel.answer(ctx, state, np.array([0]), np.array([int(rng.uniform() < p)]))
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--general-examinees", type=int, default=10, help="examinees through the general solver")
@@ -71,14 +87,18 @@ def main():
     try:
         old, t_old = timed(f"general solver (milp per step), {k} examinees",
                            lambda: administered(design, bank, theta[:k]))
+        _, t_old_one = timed(f"general solver, kernel, one examinee at a time, {k}",
+                             lambda: one_at_a_time(design, bank, theta[:k]))
     finally:
         shadow.GENERAL_SOLVER_ONLY = False
     new, t_new = timed(f"batch solver, {k} examinees in one batch", lambda: administered(design, bank, theta[:k]))
-    one, t_one = timed(f"batch solver, {k} examinees one per batch",
-                       lambda: administered(design, bank, theta[:k], chunk_size=1))
+    _, t_one = timed(f"batch solver, kernel, one examinee at a time, {k}",
+                     lambda: one_at_a_time(design, bank, theta[:k]))
+    one = administered(design, bank, theta[:k], chunk_size=1)
     same = int(np.sum(np.all((old == new) & (old == one), axis=1)))
-    print(f"per test: general {t_old / k * 1e3:.1f} ms, batch solver one per batch {t_one / k * 1e3:.1f} ms "
-          f"({t_old / t_one:.0f}x), in one batch {t_new / k * 1e3:.1f} ms ({t_old / t_new:.0f}x)")
+    print(f"per test: general {t_old / k * 1e3:.1f} ms, batch solver in one batch {t_new / k * 1e3:.1f} ms "
+          f"({t_old / t_new:.0f}x); one examinee at a time (as live) general {t_old_one / k * 1e3:.1f} ms, "
+          f"batch solver {t_one / k * 1e3:.1f} ms ({t_old_one / t_one:.0f}x)")
     print(f"same items in the same order on both paths: {same} of {k} examinees")
 
     population = Population(true_theta=theta[:500], seed=1)
