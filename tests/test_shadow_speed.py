@@ -137,9 +137,12 @@ def _run_and_check(design, bank, seeds, true_theta, withhold=()):
         for k, r in enumerate(rows):
             best = _reference_optimum(bank, design, state, r)
             assert ok[k] == (best is not None)
-            test = np.flatnonzero(chosen[k])
-            assert _meets_every_rule(bank, design, state, r, test)
-            assert info[k, test].sum() == pytest.approx(best, rel=1e-12)
+            if ok[k]:
+                test = np.flatnonzero(chosen[k])
+                assert _meets_every_rule(bank, design, state, r, test)
+                assert info[k, test].sum() == pytest.approx(best, rel=1e-12)
+            else:
+                assert not chosen[k].any()
             steps += 1
         item = state.pending[rows]
         p = models.probabilities(bank.params.take(item), true_theta[rows])[:, 1]
@@ -269,3 +272,43 @@ def test_the_ordinary_pick_is_made_where_it_decides_or_withholds():
     calls = []
     got = shadow.shadow_test_choice(ctx, state, rows, _recording_ordinary(calls))
     assert calls == [[0, 1, 2]] and len(got.withheld) == 3 and np.all(got.item != 7)
+
+
+def _random_separable_case(seed: int):
+    """A small random bank whose program separates, and a design with random area bounds."""
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(18, 36))
+    areas = AREAS[: int(rng.integers(1, 4))]
+    records = [dict(item_id=f"r{i:02d}", model="3PL", a=float(np.exp(rng.normal(0, 0.4))), b=float(rng.normal()),
+                    c=float(rng.uniform(0, 0.2)), area=areas[int(rng.integers(len(areas)))],
+                    status="pretest" if rng.uniform() < 0.08 else "operational") for i in range(n)]
+    for a in areas:
+        members = [i for i in range(n) if records[i]["area"] == a]
+        rng.shuffle(members)
+        at = 0
+        for k in range(int(rng.integers(0, 3))):
+            size = int(rng.integers(2, 4))
+            for i in members[at:at + size]:
+                records[i]["enemy_group"] = f"e{a}{k}"
+            at += size
+        for k in range(int(rng.integers(0, 3))):
+            size = int(rng.integers(1, 5))
+            for i in members[at:at + size]:
+                records[i]["item_set"] = f"s{a}{k}"
+            at += size
+    rules = []
+    for a in areas:
+        low = int(rng.integers(0, 3))
+        rules.append(AreaRule(name=a, min=low, max=None if rng.uniform() < 0.3 else low + int(rng.integers(0, 4))))
+    length = sum(rule.min for rule in rules) + int(rng.integers(1, 5))
+    design = Design(blueprint=Blueprint(areas=tuple(rules), shadow_test=True, enemies=True, item_sets=True),
+                    stopping=Stopping(min_items=length, max_items=length))
+    withhold = rng.choice(n, int(rng.integers(0, 4)), replace=False)
+    return bank_from_records(records), design, withhold
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_random_separable_programs_reach_the_general_optimum(seed):
+    bank, design, withhold = _random_separable_case(seed)
+    thetas = np.random.default_rng(seed).normal(size=2)
+    assert _run_and_check(design, bank, [seed, seed + 100], thetas, withhold=withhold) > 0
