@@ -312,3 +312,28 @@ def test_random_separable_programs_reach_the_general_optimum(seed):
     bank, design, withhold = _random_separable_case(seed)
     thetas = np.random.default_rng(seed).normal(size=2)
     assert _run_and_check(design, bank, [seed, seed + 100], thetas, withhold=withhold) > 0
+
+
+def test_sessions_of_decision_rules_version_1_keep_the_general_solver(monkeypatch):
+    from adaptive_engine.kernel import decision_rules
+
+    design = read_design(ROOT / "simulations" / "shadow_test.toml")
+    bank = load_bank(ROOT / "item_banks" / "meridian_valley_operator.csv")
+    calls = []
+
+    def recording_milp(*args, **kwargs):
+        calls.append(1)
+        return milp(*args, **kwargs)
+
+    monkeypatch.setattr(shadow, "milp", recording_milp)
+    seen = {}
+    current = decision_rules.DECISION_RULES_VERSION
+    for version in (1, current):
+        rules = decision_rules.rule_set(version)
+        ctx = rules.build_context(design, bank)
+        calls.clear()
+        state, _ = rules.start(ctx, randomness.stream_key(np.array([3], dtype=np.uint64)))
+        rules.answer(ctx, state, np.array([0]), np.array([1]))
+        seen[version] = (shadow.separable_program(ctx) is None, len(calls), int(state.pending[0]))
+    assert seen[1][:2] == (True, 2) and seen[current][:2] == (False, 0)
+    assert seen[1][2] == seen[current][2]  # the same item here (the solvers part only near ties)

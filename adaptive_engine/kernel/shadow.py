@@ -264,6 +264,13 @@ def separable_program(ctx) -> SeparableProgram | None:
     return program
 
 
+def with_general_solver(ctx):
+    """``ctx``, with every shadow test of it solved by the general solver (decision rules
+    version 1, :mod:`.decision_rules`)."""
+    _PROGRAMS[ctx] = None
+    return ctx
+
+
 def _build_separable_program(ctx) -> SeparableProgram | None:
     n = ctx.n_items
     length = int(ctx.design.stopping.max_items)
