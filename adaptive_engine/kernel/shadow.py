@@ -138,7 +138,7 @@ def shadow_test_choice(ctx, state, rows, ordinary):
     if everyone:
         got = ordinary(np.arange(rows.size))
         item, value = shadow_test_pick(ctx, state, rows, got.item, got.value)
-        return got._replace(item=item, value=value)
+        return ShadowChoice(item=item, value=value, withheld=got.withheld)
     no_pick = np.full(rows.size, -1, dtype=np.int64)
     item, value = shadow_test_pick(ctx, state, rows, no_pick, np.full(rows.size, np.nan))
     missing = np.flatnonzero(item < 0)
