@@ -340,6 +340,7 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
     width = length + 1
     minus_inf = -np.inf
     line = np.arange(size)
+    column = line[:, None]
     info = models.information(ctx.bank.params, state.theta[rows][:, None])
     info = np.broadcast_to(info, (size, n))
     given = np.zeros((size, n + 1), dtype=bool)
@@ -363,7 +364,7 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
     info_pad[:, :n] = info
     member_value = np.where(avail[:, groups] & ~group_given, info_pad[:, groups], minus_inf)
     best_member = np.argmax(member_value, axis=2) if groups.size else np.zeros((size, 0), dtype=np.int64)
-    group_value = np.take_along_axis(member_value, best_member[..., None], axis=2)[..., 0]
+    group_value = member_value.max(axis=2) if groups.size else np.zeros((size, 0))
     forced_unit = np.concatenate([single_given, n_group_given > 0], axis=1)
     unit_value = np.concatenate([single_value, group_value], axis=1)
     unit_value[forced_unit] = minus_inf
@@ -380,10 +381,9 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
             part = np.argpartition(-values, top - 1, axis=1)[:, :top]
         else:
             part = np.broadcast_to(np.arange(top), (size, top))
-        part_values = np.take_along_axis(values, part, axis=1)
-        order = np.take_along_axis(part, np.argsort(-part_values, axis=1, kind="stable"), axis=1)
+        order = part[column, np.argsort(-values[column, part], axis=1, kind="stable")]
         prefix = np.zeros((size, top + 1))
-        np.cumsum(np.take_along_axis(values, order, axis=1), axis=1, out=prefix[:, 1:])
+        np.cumsum(values[column, order], axis=1, out=prefix[:, 1:])
         fixed = forced_unit[:, unit_cols].sum(axis=1)
         # item sets of the area: a 0-1 knapsack over their sizes
         blocks = np.full((size, width), minus_inf)
@@ -419,7 +419,7 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
         # by the area's count c = fixed + k, within its bounds
         count = np.arange(width)
         free_count = count[None, :] - fixed[:, None]
-        by_count = np.take_along_axis(best, np.clip(free_count, 0, length), axis=1)
+        by_count = best[column, np.maximum(free_count, 0)]
         by_count[(free_count < 0) | (count < program.lower[a]) | (count > program.upper[a])] = minus_inf
         # combined with the areas before
         combined = np.full((size, width), minus_inf)
@@ -442,7 +442,7 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
         unit_cols, order, fixed, block_weight, takes, forced_sets = area_parts[a]
         c = steps[a][line, at]
         at = at - c
-        k = np.clip(c - fixed, 0, length)
+        k = np.maximum(c - fixed, 0)
         w = block_weight[line, k]
         q = k - w  # units taken: the q most informative
         unit_row, rank = np.nonzero((np.arange(order.shape[1])[None, :] < q[:, None]) & ok[:, None])
@@ -455,7 +455,7 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
             set_members = program.area_sets[a][s]
             t = takes[s][line, w] & ok
             w = w - np.where(t, set_members.size, 0)
-            chosen[np.ix_(t | (forced_sets[s] & ok), set_members)] = True
+            chosen[:, set_members] |= (t | (forced_sets[s] & ok))[:, None]
     chosen[~ok] = False
     return chosen, ok, info
 
