@@ -377,10 +377,7 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
         values = unit_value[:, unit_cols]
         # the area's free units are taken best first, at most `upper` of them
         top = min(unit_cols.size, int(program.upper[a]))
-        if 0 < top < unit_cols.size:
-            part = np.argpartition(-values, top - 1, axis=1)[:, :top]
-        else:
-            part = np.broadcast_to(np.arange(top), (size, top))
+        part = _best_columns(values, top)
         order = part[column, np.argsort(-values[column, part], axis=1, kind="stable")]
         prefix = np.zeros((size, top + 1))
         np.cumsum(values[column, order], axis=1, out=prefix[:, 1:])
@@ -458,6 +455,21 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
             chosen[:, set_members] |= (t | (forced_sets[s] & ok))[:, None]
     chosen[~ok] = False
     return chosen, ok, info
+
+
+def _best_columns(values, top: int) -> np.ndarray:
+    """Columns of the ``top`` largest values of each row, (R, top) ascending; of equal
+    values the first columns, exactly as the first ``top`` of a stable descending sort
+    (whatever order a partition algorithm leaves equal values in on this machine)."""
+    size, width = values.shape
+    if top == 0 or top == width:
+        return np.broadcast_to(np.arange(top), (size, top))
+    line = np.arange(size)[:, None]
+    kth = values[line, np.argpartition(-values, top - 1, axis=1)[:, top - 1 : top]]  # (R, 1)
+    above = values > kth
+    tied = values == kth
+    wanted = above | (tied & (np.cumsum(tied, axis=1) <= top - above.sum(axis=1, keepdims=True)))
+    return np.nonzero(wanted)[1].reshape(size, top)
 
 
 def _separable_pick(ctx, program, state, rows, fallback_item, fallback_value):
