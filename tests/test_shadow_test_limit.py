@@ -72,6 +72,9 @@ class _Recorder:
 def test_the_solver_gets_a_node_limit_and_no_clock(monkeypatch):
     recorder = _Recorder(shadow.milp)
     monkeypatch.setattr(shadow, "milp", recorder)
+    # the demo bank's program separates by area and is solved without milp; the general
+    # solver is what this test is about
+    monkeypatch.setattr(shadow, "GENERAL_SOLVER_ONLY", True)
     design = read_design(ROOT / "simulations" / "shadow_test.toml")
     bank = load_bank(ROOT / "item_banks" / "meridian_valley_operator.csv")
     ctx = build_context(design, bank)

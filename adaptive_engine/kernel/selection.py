@@ -191,14 +191,19 @@ def _criterion_pick(ctx, state, rows) -> Choice:
     rest = np.flatnonzero(left)
     for start in range(0, rest.size, ROW_CHUNK):
         part = rest[start : start + ROW_CHUNK]
-        got = _general_pick(ctx, state, rows[part], restrict[part], open_area[part], fits[part])
-        it, val = got.item, got.value
-        if design.blueprint.shadow_test:
-            from .shadow import shadow_test_pick
 
-            it, val = shadow_test_pick(ctx, state, rows[part], it, val)
-        item[part] = it
-        value[part] = val
+        def ordinary(sub, part=part):
+            return _general_pick(ctx, state, rows[part[sub]], restrict[part[sub]], open_area[part[sub]],
+                                 fits[part[sub]])
+
+        if design.blueprint.shadow_test:
+            from .shadow import shadow_test_choice
+
+            got = shadow_test_choice(ctx, state, rows[part], ordinary)
+        else:
+            got = ordinary(np.arange(part.size))
+        item[part] = got.item
+        value[part] = got.value
         withheld.extend(got.withheld)
     return Choice(item=item, value=value, withheld=withheld)
 
