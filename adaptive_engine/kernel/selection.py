@@ -310,9 +310,15 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
     inside = (g >= 0) & (g < grid.size)
     g = np.clip(g, 0, grid.size - 1)
-    which = np.where(restrict >= 0, restrict, len(ctx.bank.areas))
-    cand = items_tab[which, g]  # (R, D)
-    reach = reach_tab[which, g]
+    if restrict.size and restrict.max() < 0:  # no row restricted to an area: one table, 1-D gathers
+        cand = items_tab[-1].take(g, axis=0)  # (R, D)
+        reach = reach_tab[-1].take(g, axis=0)
+        table_ceiling = ceil_tab[-1].take(g)
+    else:
+        which = np.where(restrict >= 0, restrict, len(ctx.bank.areas))
+        cand = items_tab[which, g]
+        reach = reach_tab[which, g]
+        table_ceiling = ceil_tab[which, g]
     ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
     # the first few eligible candidates (in grid order) get exact information; the
     # Sympson-Hetter lottery rejects many top items, so it gets a longer list
@@ -325,7 +331,7 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     exact = _exact_information(ctx.bank, np.maximum(ex_cand, 0), theta)
     # ceiling of everything not evaluated: unlisted items, and listed eligible ones beyond
     rest = np.where(beyond, reach, -np.inf).max(axis=1)
-    ceiling = np.maximum(ceil_tab[which, g], rest)
+    ceiling = np.maximum(table_ceiling, rest)
     ranked = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
     proven = inside & (ranked.depth <= n_exact) & (ranked.kth >= ceiling) & (ranked.item >= 0)
     keep = np.flatnonzero(proven)
