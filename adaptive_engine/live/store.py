@@ -75,6 +75,7 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import random
 import re
 import sqlite3
 import threading
@@ -95,6 +96,10 @@ from ..kernel.fingerprints import bank_content, design_content
 
 #: Seconds a writer waits for another process's write lock before giving up.
 BUSY_TIMEOUT_SECONDS = 60.0
+#: Bounds (seconds) of the random pause between tries for the SQLite write lock: the first,
+#: and the most it grows to (see ``SQLiteSessionStore._begin_immediate``).
+WRITE_RETRY_FIRST = 0.0001
+WRITE_RETRY_MOST = 0.001
 STATUSES = ("active", "finished")
 RELEASE_STATUSES = ("active", "retired")
 #: The schema this engine writes.  1: the tables as first released, no version recorded;
@@ -719,6 +724,7 @@ class SQLiteSessionStore(SessionStore):
             if create and not read_only:
                 _create_owner_only(p)
         self.path = str(path)
+        self._checkpointer: _Checkpointer | None = None
         self.location = shown(self.path, limit=400)
         self.read_only = read_only
         self.key = ":memory:%d" % id(self) if memory else str(Path(path).resolve())
@@ -742,6 +748,10 @@ class SQLiteSessionStore(SessionStore):
             if not memory and self.db.journal_mode != "wal":
                 self.db.enable_wal()
             conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
+            if not memory:
+                # the log is copied into the file by a thread of this process (see _Checkpointer);
+                # a request's commit does it only if the log grows far beyond the usual size
+                conn.execute(f"PRAGMA wal_autocheckpoint = {CHECKPOINT_BACKSTOP_PAGES}")
             self._ensure_schema()
         except sqlite3.DatabaseError as exc:
             self._close_quietly()
@@ -895,13 +905,18 @@ class SQLiteSessionStore(SessionStore):
                 self._rolled_back()
                 raise
         self._committed()
+        if self._checkpointer is None and not self.key.startswith(":memory:"):
+            self._checkpointer = _Checkpointer.attach(self.key, self.path)
 
     def _begin_immediate(self) -> None:
-        # another process holds the write lock: poll for it every fraction of a millisecond
-        # (a write takes a few) rather than leave it to SQLite's busy handler, whose sleeps
-        # grow to 100 ms; the busy timeout still covers every other statement
+        # another process holds the write lock: try again after a short random pause (a
+        # write holds the lock for a fraction of a millisecond) rather than leave it to
+        # SQLite's busy handler, whose sleeps grow to 100 ms.  The pause is drawn at random
+        # up to a bound that grows a little with each failed try: waiting processes do not
+        # wake together, and one that has waited long keeps trying as often as a newcomer.
+        # The busy timeout still covers every other statement, and bounds the whole wait.
         deadline = time.monotonic() + BUSY_TIMEOUT_SECONDS
-        pause = 0.0002
+        bound = WRITE_RETRY_FIRST
         self.conn.execute("PRAGMA busy_timeout = 0")
         try:
             while True:
@@ -911,15 +926,90 @@ class SQLiteSessionStore(SessionStore):
                 except sqlite3.OperationalError as exc:
                     if "locked" not in str(exc) and "busy" not in str(exc) or time.monotonic() > deadline:
                         raise
-                    time.sleep(pause)
-                    pause = min(pause * 1.5, 0.002)
+                    time.sleep(_RETRY_RANDOM.uniform(0.25 * bound, bound))
+                    bound = min(bound * 1.25, WRITE_RETRY_MOST)
         finally:
             self.conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
 
     def close(self) -> None:
         self.conn.close()
+        if self._checkpointer is not None:
+            self._checkpointer.detach()
+            self._checkpointer = None
 
 
+#: Seconds between checkpoints of a store's write-ahead log by the thread that makes them.
+CHECKPOINT_INTERVAL_SECONDS = 0.2
+#: Log size (pages) at which a committing request copies the log into the file itself: far
+#: above what the checkpoint thread lets it reach (SQLite's own default is 1,000 pages).
+CHECKPOINT_BACKSTOP_PAGES = 20_000
+
+
+class _Checkpointer:
+    """Copies a store file's write-ahead log into the file, on a thread of its own.
+
+    SQLite's automatic checkpoint runs in the request whose commit makes the log pass 1,000
+    pages: that request then waits for the copy and the file syncs (tens of milliseconds,
+    the tail of the latency of every writer).  Instead, one daemon thread per process and
+    file makes a passive checkpoint every ``CHECKPOINT_INTERVAL_SECONDS`` on a connection of
+    its own: it waits for no reader or writer, and nobody waits for it.  A checkpoint is
+    SQLite's own, so a crash at any moment keeps every committed transaction as before.
+    The thread starts with a store's first write and stops when the last store of this
+    process on that file is closed (a last checkpoint first).
+    """
+
+    _registry: dict = {}
+    _guard = threading.Lock()
+
+    def __init__(self, path: str):
+        self.path = path
+        self.users = 0
+        self.stop = threading.Event()
+        self.thread = threading.Thread(target=self._run, name="adaptive-engine store checkpoints", daemon=True)
+
+    @classmethod
+    def attach(cls, key: str, path: str) -> "_Checkpointer":
+        with cls._guard:
+            reg_key = (os.getpid(), key)  # a forked child starts its own thread
+            found = cls._registry.get(reg_key)
+            if found is None:
+                found = cls._registry[reg_key] = cls(path)
+                found.thread.start()
+            found.users += 1
+            return found
+
+    def detach(self) -> None:
+        with self._guard:
+            self.users -= 1
+            if self.users > 0:
+                return
+            for k, v in list(self._registry.items()):
+                if v is self:
+                    del self._registry[k]
+        self.stop.set()
+        if self.thread.is_alive() and self.thread is not threading.current_thread():
+            self.thread.join(timeout=10.0)
+
+    def _run(self) -> None:
+        try:
+            conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_SECONDS, isolation_level=None,
+                                   check_same_thread=False)
+        except sqlite3.Error:
+            return  # the requests' own automatic checkpoint (the backstop) still applies
+        try:
+            conn.execute("PRAGMA busy_timeout = 0")  # a passive checkpoint never waits anyway
+            while True:
+                stopping = self.stop.wait(CHECKPOINT_INTERVAL_SECONDS)
+                with contextlib.suppress(sqlite3.Error):
+                    conn.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchall()
+                if stopping:
+                    return
+        finally:
+            with contextlib.suppress(sqlite3.Error):
+                conn.close()
+
+
+_RETRY_RANDOM = random.Random()  # pauses between tries for the write lock (not a decision)
 _WRITER_LOCKS: dict[str, threading.Lock] = {}
 _WRITER_LOCKS_GUARD = threading.Lock()
 
