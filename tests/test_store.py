@@ -325,3 +325,44 @@ def test_a_store_of_a_newer_schema_is_refused_on_both_backends(empty_location):
         with pytest.raises(SessionError, match=f"schema version {SCHEMA_VERSION + 1}"):
             open_store(empty_location, read_only=read_only)
     assert max(row[0] for row in before["store_schema"]) == SCHEMA_VERSION + 1
+
+
+def test_the_log_is_checkpointed_by_a_thread_not_by_requests(tmp_path):
+    """The write-ahead log is copied into the file off the requests' path.
+
+    A committing request checkpoints only far beyond the usual log size (the backstop); a
+    thread of the process, started by the first write and stopped with the last store on
+    the file, does it instead, without waiting for anybody.
+    """
+    import threading
+    import time
+
+    from adaptive_engine.live import store as store_module
+
+    def checkpoint_threads():
+        return [t for t in threading.enumerate() if t.name == "adaptive-engine store checkpoints"]
+
+    before = len(checkpoint_threads())
+    path = tmp_path / "ckpt.db"
+    design, bank = SH_DESIGN, BANK
+    first, second = open_store(path), open_store(path)
+    assert first.conn.execute("PRAGMA wal_autocheckpoint").fetchone()[0] == store_module.CHECKPOINT_BACKSTOP_PAGES
+    with first.writing():
+        first.put_bank(bank)
+        first.put_design(design)
+    with second.writing():
+        second.put_bank(bank)
+    assert len(checkpoint_threads()) == before + 1  # one per process and file
+    # the bank reaches the database file itself (not only the log) within a few intervals,
+    # though no request copied the log (the backstop is far away)
+    size = len(bank_content(bank)[1].encode("utf-8"))
+    deadline = time.monotonic() + 20 * store_module.CHECKPOINT_INTERVAL_SECONDS + 5
+    while path.stat().st_size < size and time.monotonic() < deadline:
+        time.sleep(store_module.CHECKPOINT_INTERVAL_SECONDS / 2)
+    assert path.stat().st_size >= size
+    first.close()
+    assert len(checkpoint_threads()) == before + 1  # the second store still uses it
+    second.close()
+    assert len(checkpoint_threads()) == before
+    with open_store(path) as again:
+        assert again.has_bank(bank_content(bank)[0])
