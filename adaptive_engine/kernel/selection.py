@@ -401,8 +401,9 @@ def _exact_information(bank, items, theta) -> np.ndarray:
     dichotomous = bank.cached(("all_dichotomous",), lambda: not np.any(bank.params.family))
     if not dichotomous:
         return models.information(bank.params.take(items), theta[:, None])
-    columns = bank.cached(("dichotomous_columns",), lambda: models.dichotomous_columns(bank.params))
-    return models.dichotomous_information_columns(theta[:, None], *(np.take(col, items) for col in columns))
+    # the columns stacked (7, n): one gather brings every column of the candidates
+    columns = bank.cached(("dichotomous_columns",), lambda: np.stack(models.dichotomous_columns(bank.params)))
+    return models.dichotomous_information_columns(theta[:, None], *columns.take(items, axis=1))
 
 
 def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:
