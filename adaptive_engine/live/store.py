@@ -62,6 +62,11 @@ every answer of a bank's sessions from :meth:`SessionStore.bank_answers` (or
 Concurrency (SQLite): the database runs in WAL mode with a busy timeout, and every write is
 one ``BEGIN IMMEDIATE`` transaction (the write lock is taken up front, so two writers never
 deadlock on a lock upgrade and nobody sees "database is locked" while waiting is possible).
+A writer that finds the lock taken tries again after short random pauses.  Write
+transactions hold only writes: the live driver decides an answer before taking the lock and
+checks inside it that the session has not moved on (``live.session``).  The write-ahead log
+is copied into the file by a thread of each writing process (``_Checkpointer``), not by
+whichever request's commit happens to make the log long.
 ``synchronous = NORMAL`` is used: in WAL mode a crashed *process* never loses a committed
 transaction (only a power cut may drop the last ones); pass ``durable=True`` for FULL.
 PostgreSQL: see :mod:`adaptive_engine.live.postgres_store`.
