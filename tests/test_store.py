@@ -366,3 +366,43 @@ def test_the_log_is_checkpointed_by_a_thread_not_by_requests(tmp_path):
     assert len(checkpoint_threads()) == before
     with open_store(path) as again:
         assert again.has_bank(bank_content(bank)[0])
+
+
+def test_a_writer_takes_the_lock_soon_after_another_process_releases_it(tmp_path, monkeypatch):
+    """Waiting for the write lock is short random pauses, not SQLite's busy handler.
+
+    Another connection (standing for another process) holds the write lock; the store's
+    write waits and gets it within a few milliseconds of the release (SQLite's own handler
+    sleeps up to 100 ms at a time).  The pauses are drawn at random within the bounds.
+    """
+    import sqlite3
+    import threading
+    import time
+
+    from adaptive_engine.live import store as store_module
+
+    pauses = []
+    real_uniform = store_module._RETRY_RANDOM.uniform
+    monkeypatch.setattr(store_module._RETRY_RANDOM, "uniform",
+                        lambda lo, hi: pauses.append((lo, hi)) or real_uniform(lo, hi))
+    path = tmp_path / "lock.db"
+    with open_store(path) as store:
+        other = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
+        other.execute("BEGIN IMMEDIATE")
+        released = []
+
+        def release():
+            time.sleep(0.3)
+            released.append(time.perf_counter())
+            other.execute("COMMIT")
+
+        thread = threading.Thread(target=release)
+        thread.start()
+        with store.writing():
+            got = time.perf_counter()
+            store.put_bank(BANK)
+        thread.join()
+        other.close()
+    assert got - released[0] < 0.05
+    assert len(pauses) > 10
+    assert all(store_module.WRITE_RETRY_FIRST / 2 <= lo < hi <= store_module.WRITE_RETRY_MOST for lo, hi in pauses)

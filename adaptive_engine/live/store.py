@@ -103,8 +103,8 @@ from ..kernel.fingerprints import bank_content, design_content
 BUSY_TIMEOUT_SECONDS = 60.0
 #: Bounds (seconds) of the random pause between tries for the SQLite write lock: the first,
 #: and the most it grows to (see ``SQLiteSessionStore._begin_immediate``).
-WRITE_RETRY_FIRST = 0.0001
-WRITE_RETRY_MOST = 0.001
+WRITE_RETRY_FIRST = 0.0002
+WRITE_RETRY_MOST = 0.002
 STATUSES = ("active", "finished")
 RELEASE_STATUSES = ("active", "retired")
 #: The schema this engine writes.  1: the tables as first released, no version recorded;
@@ -917,8 +917,9 @@ class SQLiteSessionStore(SessionStore):
         # another process holds the write lock: try again after a short random pause (a
         # write holds the lock for a fraction of a millisecond) rather than leave it to
         # SQLite's busy handler, whose sleeps grow to 100 ms.  The pause is drawn at random
-        # up to a bound that grows a little with each failed try: waiting processes do not
-        # wake together, and one that has waited long keeps trying as often as a newcomer.
+        # between half a bound and the bound, which grows with each failed try up to a few
+        # milliseconds: waiting processes do not wake together, one that has waited long
+        # keeps trying as often as a newcomer, and waiting costs little processor time.
         # The busy timeout still covers every other statement, and bounds the whole wait.
         deadline = time.monotonic() + BUSY_TIMEOUT_SECONDS
         bound = WRITE_RETRY_FIRST
@@ -931,8 +932,8 @@ class SQLiteSessionStore(SessionStore):
                 except sqlite3.OperationalError as exc:
                     if "locked" not in str(exc) and "busy" not in str(exc) or time.monotonic() > deadline:
                         raise
-                    time.sleep(_RETRY_RANDOM.uniform(0.25 * bound, bound))
-                    bound = min(bound * 1.25, WRITE_RETRY_MOST)
+                    time.sleep(_RETRY_RANDOM.uniform(0.5 * bound, bound))
+                    bound = min(bound * 1.5, WRITE_RETRY_MOST)
         finally:
             self.conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
 
