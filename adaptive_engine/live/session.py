@@ -79,8 +79,8 @@ class ProcessCache:
     """Per-process caches of test contexts and of the kernel states of sessions served.
 
     Safe to share between threads (a server's request threads): every access holds a lock.
-    A cached kernel state is changed only by an answer to its session, which holds that
-    session's write lock in the store.
+    A cached kernel state is never changed in place while it is cached: an answer works on
+    a copy and caches the copy once its transaction has committed.
 
     Parameters
     ----------
