@@ -406,3 +406,24 @@ def test_a_writer_takes_the_lock_soon_after_another_process_releases_it(tmp_path
     assert got - released[0] < 0.05
     assert len(pauses) > 10
     assert all(store_module.WRITE_RETRY_FIRST / 2 <= lo < hi <= store_module.WRITE_RETRY_MOST for lo, hi in pauses)
+
+
+def test_a_store_dropped_without_closing_lets_go_of_the_checkpoint_thread(tmp_path):
+    import gc
+    import threading
+    import time
+
+    def checkpoint_threads():
+        return [t for t in threading.enumerate() if t.name == "adaptive-engine store checkpoints"]
+
+    before = len(checkpoint_threads())
+    store = open_store(tmp_path / "dropped.db")
+    with store.writing():
+        store.put_bank(BANK)
+    assert len(checkpoint_threads()) == before + 1
+    del store
+    gc.collect()
+    deadline = time.monotonic() + 10
+    while len(checkpoint_threads()) > before and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert len(checkpoint_threads()) == before

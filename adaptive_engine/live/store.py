@@ -86,6 +86,7 @@ import sqlite3
 import threading
 import time
 import tomllib
+import weakref
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Callable, Iterator
@@ -729,7 +730,7 @@ class SQLiteSessionStore(SessionStore):
             if create and not read_only:
                 _create_owner_only(p)
         self.path = str(path)
-        self._checkpointer: _Checkpointer | None = None
+        self._checkpointer: weakref.finalize | None = None  # lets go of the checkpoint thread
         self.location = shown(self.path, limit=400)
         self.read_only = read_only
         self.key = ":memory:%d" % id(self) if memory else str(Path(path).resolve())
@@ -911,7 +912,10 @@ class SQLiteSessionStore(SessionStore):
                 raise
         self._committed()
         if self._checkpointer is None and not self.key.startswith(":memory:"):
-            self._checkpointer = _Checkpointer.attach(self.key, self.path)
+            checkpointer = _Checkpointer.attach(self.key, self.path)
+            # a store dropped without close() lets go of the thread too
+            self._checkpointer = weakref.finalize(self, checkpointer.detach, join=False)
+            self._checkpointer.atexit = False  # a process that exits ends the thread anyway
 
     def _begin_immediate(self) -> None:
         # another process holds the write lock: try again after a short random pause (a
@@ -940,8 +944,11 @@ class SQLiteSessionStore(SessionStore):
     def close(self) -> None:
         self.conn.close()
         if self._checkpointer is not None:
-            self._checkpointer.detach()
-            self._checkpointer = None
+            release, self._checkpointer = self._checkpointer, None
+            found = release.detach()  # the finalizer will not run at collection now
+            if found is not None:
+                _, detach, _, _ = found
+                detach(join=True)
 
 
 #: Seconds between checkpoints of a store's write-ahead log by the thread that makes them.
@@ -961,7 +968,7 @@ class _Checkpointer:
     its own: it waits for no reader or writer, and nobody waits for it.  A checkpoint is
     SQLite's own, so a crash at any moment keeps every committed transaction as before.
     The thread starts with a store's first write and stops when the last store of this
-    process on that file is closed (a last checkpoint first).
+    process on that file is closed or collected (a last checkpoint first).
     """
 
     _registry: dict = {}
@@ -984,7 +991,8 @@ class _Checkpointer:
             found.users += 1
             return found
 
-    def detach(self) -> None:
+    def detach(self, *, join: bool = True) -> None:
+        """One store less uses the thread; the last one stops it (and waits for it when ``join``)."""
         with self._guard:
             self.users -= 1
             if self.users > 0:
@@ -993,7 +1001,7 @@ class _Checkpointer:
                 if v is self:
                     del self._registry[k]
         self.stop.set()
-        if self.thread.is_alive() and self.thread is not threading.current_thread():
+        if join and self.thread.is_alive() and self.thread is not threading.current_thread():
             self.thread.join(timeout=10.0)
 
     def _run(self) -> None:
