@@ -14,6 +14,9 @@ same process on the same bank and design:
 Then the batch driver again with randomesque selection and with a blueprint, and peak
 memory (tracemalloc) of a batch run.
 
+The marginal cost per examinee-step of whole ``simulate`` processes against a plain loop,
+and the fixed cost of a run, are measured by ``benchmarks/bench_batch_driver.py``.
+
 Run: ``python3 benchmarks/bench_simulation.py [--examinees 10000] [--loop-examinees 500]``.
 """
 

@@ -396,3 +396,82 @@ def test_design_check_describes_the_first_item_the_kernel_gives(name):
         assert set(first.tolist()) == _top_by_information(bank, 0.0, behaviour[1])
     else:
         assert set(first.tolist()) == _top_by_information(bank, 0.0, 1, area=behaviour[1])
+
+
+# ----------------------------------------------------------------------------------------
+# the batch driver's fast paths give what the plain computations give, bit for bit
+
+
+def test_first_eligible_columns_by_bits_match_a_plain_scan():
+    # _first_eligible reads the first True columns off each row's bits in large batches;
+    # checked against a plain per-row scan (np.flatnonzero), for widths up to 64
+    rng = np.random.default_rng(21)
+    for width in (1, 7, 32, 64):
+        for share in (0.05, 0.5, 0.95):
+            ok = rng.random((selection.BIT_SCAN_ROWS + 37, width)) < share
+            for n_first in (1, 8, 24):
+                first, beyond = selection._first_eligible(ok, n_first)
+                for r in range(ok.shape[0]):
+                    cols = np.flatnonzero(ok[r])
+                    want = np.full(n_first, -1)
+                    want[: min(n_first, cols.size)] = cols[:n_first]
+                    assert np.array_equal(first[r], want)
+                    assert np.array_equal(np.flatnonzero(beyond[r]), cols[n_first:])
+                # the small-batch way (ranks) agrees with the bit way row for row
+                small_first, small_beyond = selection._first_eligible(ok[:5], n_first)
+                assert np.array_equal(small_first, first[:5]) and np.array_equal(small_beyond, beyond[:5])
+
+
+def test_posterior_added_in_blocks_equals_adding_then_summarising(monkeypatch):
+    from adaptive_engine.irt import posterior
+
+    bank = structured_bank(3, 60, polytomous=6)
+    grid = np.linspace(-6, 6, 121)
+    table = np.ascontiguousarray(bank.log_probability_table(grid).transpose(0, 2, 1))
+    rng = np.random.default_rng(22)
+    log_post = rng.normal(size=(50, grid.size)) * 3
+    rows = np.sort(rng.choice(50, size=31, replace=False))
+    items = rng.integers(0, bank.n_items, size=rows.size)
+    items[::4] = -1  # pretest answers: nothing added
+    cats = rng.integers(0, 2, size=rows.size)
+    sel = items >= 0
+    monkeypatch.setattr(posterior, "BLOCK_VALUES", 4 * grid.size)  # blocks of 4 rows
+    for r in (rows, np.arange(10, 41)):  # scattered rows, and consecutive ones (views)
+        got = log_post.copy()
+        mean, sd = posterior.add_and_summarize(got, r, table, items, cats, grid)
+        ref = log_post.copy()
+        ref[r[sel]] += table[items[sel], cats[sel]]
+        m_ref, s_ref = posterior.posterior_mean_sd(ref[r], grid)
+        assert np.array_equal(got, ref) and np.array_equal(mean, m_ref) and np.array_equal(sd, s_ref)
+
+
+def test_information_from_precomputed_columns_has_the_same_bits():
+    from adaptive_engine.irt import models
+
+    bank = structured_bank(4, 80)
+    params = bank.params
+    theta = np.random.default_rng(23).normal(size=(17, 1)) * 2
+    idx = np.random.default_rng(24).integers(0, bank.n_items, size=(17, 8))
+    want = models.information(params.take(idx), theta)
+    cols = models.dichotomous_columns(params)
+    got = models.dichotomous_information_columns(theta, *(np.take(c, idx) for c in cols))
+    assert np.array_equal(got, want)
+    assert np.array_equal(selection._exact_information(bank, idx, theta[:, 0]), want)
+
+
+def test_a_large_batch_equals_one_at_a_time(monkeypatch):
+    # A batch above BIT_SCAN_ROWS, with posterior blocks of a few rows: the paths of large
+    # batches give each examinee what a batch of one gives.
+    from adaptive_engine.irt import posterior
+
+    monkeypatch.setattr(posterior, "BLOCK_VALUES", 7 * 121)
+    bank = structured_bank(3, 100)
+    design = Design(stopping=Stopping(min_items=6, max_items=6))
+    ctx = build_context(design, bank)
+    theta = np.random.default_rng(25).normal(size=selection.BIT_SCAN_ROWS + 6)
+    batch, _ = run_batch(ctx, theta, seed=9)
+    for i in (0, 33, theta.size - 1):
+        single, _ = run_batch(ctx, theta[i : i + 1], seed=9, start_index=i)
+        assert np.array_equal(single.items[0], batch.items[i])
+        assert single.theta[0] == batch.theta[i] and single.se[0] == batch.se[i]
+        assert np.array_equal(single.log_post[0], batch.log_post[i])

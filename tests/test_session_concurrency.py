@@ -213,3 +213,77 @@ def test_two_racing_answers_to_one_item_are_recorded_once(location, same):
         assert kinds == ["ConflictError", "dict"]
         winner = next(k for k in range(2) if isinstance(out[k], dict))
         assert answers[0][1] == winner
+
+
+@pytest.mark.parametrize("same", [True, False])
+def test_an_answer_decided_before_the_lock_is_dropped_when_the_session_moved_on(location, monkeypatch, same):
+    """An answer is computed before the write lock from this process's cached state.
+
+    Another server answers the same item between the moment this one read the session and
+    the moment it takes the lock: nothing of the early computation may be written.  The
+    request is then answered under the lock like any resent answer: the same answer gets
+    the other server's reply, a different one is refused; the log holds one answer, and the
+    cached state of the first server still gives the right next step.
+    """
+    from adaptive_engine.live import session as live
+    from adaptive_engine.live.session import ProcessCache
+    from adaptive_engine.live.store import ConflictError
+
+    design, bank = read_design(DESIGN_PATH), load_bank(BANK_PATH)
+    cache_a, cache_b = ProcessCache(), ProcessCache()
+    store_a, store_b = open_store(location), open_store(location)
+    first = start_session(store_a, design, bank, seed=7, session_id="early", cache=cache_a)
+    real_step = live._answer_step
+    other = {}
+
+    def step_after_another_server_answered(*args, **kwargs):
+        if not other:  # only the first call: the early decision of server A
+            other["reply"] = None
+            other["reply"] = submit_answer(store_b, "early", first["item_id"], 1, cache=cache_b)
+        return real_step(*args, **kwargs)
+
+    locked = []
+    real_locked = live._answer_locked
+    monkeypatch.setattr(live, "_answer_step", step_after_another_server_answered)
+    monkeypatch.setattr(live, "_answer_locked", lambda *a, **k: locked.append(1) or real_locked(*a, **k))
+    try:
+        if same:
+            mine = submit_answer(store_a, "early", first["item_id"], 1, cache=cache_a)
+            assert mine == other["reply"]
+        else:
+            with pytest.raises(ConflictError):
+                submit_answer(store_a, "early", first["item_id"], 0, cache=cache_a)
+        assert locked, "the request was not answered under the lock after the session moved on"
+        monkeypatch.setattr(live, "_answer_step", real_step)
+        answers = store_a.answers("early")
+        assert [(i, r) for i, r, _ in answers] == [(first["item_id"], 1)]
+        # both servers carry on from the stored log alike
+        following = other["reply"]["item_id"]
+        reply_a = submit_answer(store_a, "early", following, 0, cache=cache_a)
+        with open_store(location) as fresh:
+            row = fresh.session_row("early")
+            ctx = ProcessCache().context(fresh, row["design_id"], row["bank_id"], rules=live.session_rules(row))
+            # the whole log replayed afresh: raises when it disagrees with the row A wrote
+            live.session_state(fresh, ctx, row, cache=ProcessCache())
+        assert reply_a["item_id"] == row["pending_item"]
+        assert len(store_a.answers("early")) == 2
+    finally:
+        store_a.close()
+        store_b.close()
+
+
+def test_an_answer_with_the_state_cached_is_decided_before_the_lock(tmp_path, monkeypatch):
+    """The usual answer (state cached in this process) never runs the kernel under the lock."""
+    from adaptive_engine.live import session as live
+    from adaptive_engine.live.session import ProcessCache
+
+    design, bank = read_design(DESIGN_PATH), load_bank(BANK_PATH)
+    cache = ProcessCache()
+    locked = []
+    real_locked = live._answer_locked
+    monkeypatch.setattr(live, "_answer_locked", lambda *a, **k: locked.append(1) or real_locked(*a, **k))
+    with open_store(tmp_path / "s.db") as store:
+        reply = start_session(store, design, bank, seed=3, cache=cache)
+        for _ in range(3):
+            reply = submit_answer(store, reply["session_id"], reply["item_id"], 1, cache=cache)
+    assert not locked

@@ -325,3 +325,105 @@ def test_a_store_of_a_newer_schema_is_refused_on_both_backends(empty_location):
         with pytest.raises(SessionError, match=f"schema version {SCHEMA_VERSION + 1}"):
             open_store(empty_location, read_only=read_only)
     assert max(row[0] for row in before["store_schema"]) == SCHEMA_VERSION + 1
+
+
+def test_the_log_is_checkpointed_by_a_thread_not_by_requests(tmp_path):
+    """The write-ahead log is copied into the file off the requests' path.
+
+    A committing request checkpoints only far beyond the usual log size (the backstop); a
+    thread of the process, started by the first write and stopped with the last store on
+    the file, does it instead, without waiting for anybody.
+    """
+    import threading
+    import time
+
+    from adaptive_engine.live import store as store_module
+
+    def checkpoint_threads():
+        return [t for t in threading.enumerate() if t.name == "adaptive-engine store checkpoints"]
+
+    before = len(checkpoint_threads())
+    path = tmp_path / "ckpt.db"
+    design, bank = SH_DESIGN, BANK
+    first, second = open_store(path), open_store(path)
+    assert first.conn.execute("PRAGMA wal_autocheckpoint").fetchone()[0] == store_module.CHECKPOINT_BACKSTOP_PAGES
+    with first.writing():
+        first.put_bank(bank)
+        first.put_design(design)
+    with second.writing():
+        second.put_bank(bank)
+    assert len(checkpoint_threads()) == before + 1  # one per process and file
+    # the bank reaches the database file itself (not only the log) within a few intervals,
+    # though no request copied the log (the backstop is far away)
+    size = len(bank_content(bank)[1].encode("utf-8"))
+    deadline = time.monotonic() + 20 * store_module.CHECKPOINT_INTERVAL_SECONDS + 5
+    while path.stat().st_size < size and time.monotonic() < deadline:
+        time.sleep(store_module.CHECKPOINT_INTERVAL_SECONDS / 2)
+    assert path.stat().st_size >= size
+    first.close()
+    assert len(checkpoint_threads()) == before + 1  # the second store still uses it
+    second.close()
+    assert len(checkpoint_threads()) == before
+    with open_store(path) as again:
+        assert again.has_bank(bank_content(bank)[0])
+
+
+def test_a_writer_takes_the_lock_soon_after_another_process_releases_it(tmp_path, monkeypatch):
+    """Waiting for the write lock is short random pauses, not SQLite's busy handler.
+
+    Another connection (standing for another process) holds the write lock; the store's
+    write waits and gets it within a few milliseconds of the release (SQLite's own handler
+    sleeps up to 100 ms at a time).  The pauses are drawn at random within the bounds.
+    """
+    import sqlite3
+    import threading
+    import time
+
+    from adaptive_engine.live import store as store_module
+
+    pauses = []
+    real_uniform = store_module._RETRY_RANDOM.uniform
+    monkeypatch.setattr(store_module._RETRY_RANDOM, "uniform",
+                        lambda lo, hi: pauses.append((lo, hi)) or real_uniform(lo, hi))
+    path = tmp_path / "lock.db"
+    with open_store(path) as store:
+        other = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
+        other.execute("BEGIN IMMEDIATE")
+        released = []
+
+        def release():
+            time.sleep(0.3)
+            released.append(time.perf_counter())
+            other.execute("COMMIT")
+
+        thread = threading.Thread(target=release)
+        thread.start()
+        with store.writing():
+            got = time.perf_counter()
+            store.put_bank(BANK)
+        thread.join()
+        other.close()
+    assert got - released[0] < 0.05
+    assert len(pauses) > 10
+    assert all(store_module.WRITE_RETRY_FIRST / 2 <= lo < hi <= store_module.WRITE_RETRY_MOST for lo, hi in pauses)
+
+
+def test_a_store_dropped_without_closing_lets_go_of_the_checkpoint_thread(tmp_path):
+    import gc
+    import threading
+    import time
+
+    def checkpoint_threads():
+        return [t for t in threading.enumerate() if t.name == "adaptive-engine store checkpoints"]
+
+    before = len(checkpoint_threads())
+    store = open_store(tmp_path / "dropped.db")
+    with store.writing():
+        store.put_bank(BANK)
+    assert len(checkpoint_threads()) == before + 1
+    del store
+    gc.collect()
+    deadline = time.monotonic() + 10
+    while len(checkpoint_threads()) > before and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert len(checkpoint_threads()) == before

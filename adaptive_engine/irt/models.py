@@ -21,6 +21,8 @@ category the item has, for |theta| up to 10 and extreme parameters.
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import attrs
 import numpy as np
 from scipy.special import expit, log_expit
@@ -410,11 +412,40 @@ def _dichotomous_information(params: ItemParameters, theta) -> np.ndarray:
 
     ``I = (D a (d - c) s t)^2 / (P1 P0)`` with ``s = 1 / (1 + exp(-z))``, ``t = 1 - s``,
     ``P1 = c t + d s`` and ``P0 = (1 - c) t + (1 - d) s`` (no cancellation in 1 - P1).
-    Written with in-place operations: this runs for every candidate at every step.
+    """
+    a, c, d = params.a, params.c, params.d
+    slope = a * params.scaling if params.scaling != 1.0 else a
+    return dichotomous_information_columns(theta, params.b, slope, c, d, 1.0 - c, 1.0 - d, slope * (d - c))
+
+
+class DichotomousColumns(NamedTuple):
+    """Per-item columns of :func:`dichotomous_information_columns`, each shaped (n,)."""
+
+    b: np.ndarray
+    slope: np.ndarray  # D a
+    c: np.ndarray
+    d: np.ndarray
+    one_minus_c: np.ndarray
+    one_minus_d: np.ndarray
+    slope_gap: np.ndarray  # D a (d - c)
+
+
+def dichotomous_columns(params: ItemParameters) -> DichotomousColumns:
+    """The columns :func:`dichotomous_information_columns` takes, for dichotomous items."""
+    a, c, d = params.a, params.c, params.d
+    slope = a * params.scaling if params.scaling != 1.0 else a
+    return DichotomousColumns(params.b, slope, c, d, 1.0 - c, 1.0 - d, slope * (d - c))
+
+
+def dichotomous_information_columns(theta, b, slope, c, d, one_minus_c, one_minus_d, slope_gap) -> np.ndarray:
+    """Information of dichotomous items from precomputed columns (see ``_dichotomous_information``).
+
+    The arithmetic is the same, operation for operation, whether the columns are computed
+    here for each call or once per bank and gathered (the selection's short lists), so
+    both give the same bits.  Written with in-place operations: this runs for every
+    candidate at every step.
     """
     theta = np.asarray(theta, dtype=float)
-    a, b, c, d = params.a, params.b, params.c, params.d
-    slope = a * params.scaling if params.scaling != 1.0 else a
     z = theta - b
     z *= slope
     # clipping keeps exp finite; beyond |z| = 700 both s and t are exact to double precision
@@ -427,10 +458,10 @@ def _dichotomous_information(params: ItemParameters, theta) -> np.ndarray:
     t = np.multiply(e, s, out=e)
     p1 = c * t
     p1 += d * s
-    p0 = (1.0 - c) * t
-    p0 += (1.0 - d) * s
+    p0 = one_minus_c * t
+    p0 += one_minus_d * s
     p0 *= p1  # denominator P1 P0
-    num = slope * (d - c) * s
+    num = slope_gap * s
     num *= t
     num *= num
     return np.divide(num, p0, out=np.zeros_like(num), where=p0 > 1e-300)

@@ -91,6 +91,58 @@ def posterior_mean_sd(log_post, grid) -> tuple[np.ndarray, np.ndarray]:
     return mean, np.maximum(np.sqrt(np.maximum(second - mean * mean, 0.0)), resolution_floor(grid))
 
 
+#: Grid values per block of :func:`add_and_summarize` (about 1 MB of float64: the block's
+#: passes run in the processor's cache instead of streaming the whole batch from memory).
+BLOCK_VALUES = 1 << 17
+
+
+def add_and_summarize(log_post, rows, table, items, categories, grid) -> tuple[np.ndarray, np.ndarray]:
+    """Add answers' log likelihoods to rows of a batch posterior, then their mean and SD.
+
+    For each k, ``table[items[k], categories[k]]`` (a row on the grid) is added to
+    ``log_post[rows[k]]`` in place (nothing where ``items[k] < 0``), and the posterior mean
+    and SD of that row are returned as :func:`posterior_mean_sd` gives them.  The rows go
+    through in blocks that fit in cache, each added to and read while it is there; every
+    value is the same, operation for operation, as adding the whole batch and then calling
+    :func:`posterior_mean_sd` on it.
+
+    Parameters
+    ----------
+    log_post : float array (B, G), changed in place
+    rows : int array (R,)
+        Distinct rows of ``log_post``.
+    table : float array (n, C, G)
+        Log probability of each item's categories on the grid.
+    items, categories : int arrays (R,)
+
+    Returns
+    -------
+    mean, sd : float arrays (R,)
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    r_n = rows.size
+    mean = np.empty(r_n)
+    sd = np.empty(r_n)
+    if r_n == 0:
+        return mean, sd
+    step = max(1, BLOCK_VALUES // max(1, log_post.shape[-1]))
+    # consecutive rows (a whole batch, or the rows still testing in order) are read as views
+    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    every = bool(np.all(items >= 0))
+    for i in range(0, r_n, step):
+        j = min(i + step, r_n)
+        block = log_post[rows[i] : rows[i] + (j - i)] if consecutive else log_post[rows[i:j]]
+        if every:
+            block += table[items[i:j], categories[i:j]]
+        else:
+            sel = np.flatnonzero(items[i:j] >= 0)
+            block[sel] += table[items[i:j][sel], categories[i:j][sel]]
+        if not consecutive:
+            log_post[rows[i:j]] = block
+        mean[i:j], sd[i:j] = posterior_mean_sd(block, grid)
+    return mean, sd
+
+
 def resolution_floor(grid) -> float:
     """The least posterior SD a grid can tell apart: ``step / sqrt(12)``.
 

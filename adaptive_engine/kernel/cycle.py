@@ -22,7 +22,7 @@ import numpy as np
 
 from ..design.types import ExposureMethod, ExtremePatternMethod, ScoringMethod, SelectionCriterion
 from ..irt import models
-from ..irt.posterior import normal_log_prior, posterior_mean_sd
+from ..irt.posterior import add_and_summarize, normal_log_prior, posterior_mean_sd
 from . import random_streams as randomness
 from . import stopping
 from .eligibility import eligible
@@ -93,8 +93,8 @@ def answer(ctx: TestContext, state: KernelState, rows, responses, *, elapsed=Non
     responses = np.asarray(responses, dtype=np.int64)
     if elapsed is not None:
         state.elapsed[rows] = np.asarray(elapsed, dtype=float)
-    _record(ctx, state, rows, responses)
-    _update_estimate(ctx, state, rows)
+    scored_item = _record(ctx, state, rows, responses)
+    _update_estimate(ctx, state, rows, scored_item, responses)
     picked = select(ctx, state, rows, count_eligible=count_eligible)
     reasons = _stop_reasons(ctx, state, rows, picked)
     stop = reasons != ""
@@ -116,44 +116,57 @@ def _apply_pick(ctx, state, rows, picked: Picked) -> None:
         state.used[r, i] = True  # Sympson-Hetter: withheld for the rest of the test
 
 
-def _record(ctx, state, rows, responses) -> None:
+def _record(ctx, state, rows, responses) -> np.ndarray:
+    """Book the answers of ``rows``; returns the item each answer scores, -1 for pretest items.
+
+    The posterior takes the scored answers in :func:`_update_estimate`.
+    """
     item = state.pending[rows]
     if np.any(item < 0):
         raise ValueError("an examinee without a pending item was given an answer")
     pos = state.n_given[rows]
     scored = ctx.operational[item]
-    state.items[rows, pos] = item
-    state.responses[rows, pos] = responses
-    state.scored[rows, pos] = scored
+    all_scored = bool(scored.all())
+    _put(state.items, rows, pos, item)
+    _put(state.responses, rows, pos, responses)
+    _put(state.scored, rows, pos, scored)
     state.n_given[rows] += 1
     state.n_scored[rows] += scored
-    state.n_pretest[rows] += ~scored
-    state.used[rows, item] = True
+    if not all_scored:
+        state.n_pretest[rows] += ~scored
+    _put(state.used, rows, item, True)
     state.pending[rows] = -1
-    sr = rows[scored]
-    si = item[scored]
+    sr = rows if all_scored else rows[scored]
+    si = item if all_scored else item[scored]
     state.area_counts[sr, ctx.area[si]] += 1
-    groups = ctx.item_groups[item]  # (R, W)
-    state.blocked_groups[rows[:, None], groups] = True
-    state.blocked_groups[:, ctx.n_groups] = False  # the "no group" column never blocks
+    if ctx.n_groups:
+        groups = ctx.item_groups[item]  # (R, W)
+        state.blocked_groups[rows[:, None], groups] = True
+        state.blocked_groups[:, ctx.n_groups] = False  # the "no group" column never blocks
     # item sets: entering a set makes it current; its last item closes it
-    s = ctx.item_set[item]
-    for k in np.flatnonzero(s >= 0):
-        r = rows[k]
-        members = ctx.set_members[s[k]]
-        state.current_set[r] = s[k] if (~state.used[r, members]).any() else -1
-    # the posterior takes scored answers only
-    update = ctx.log_table_by_category[si, responses[scored]]
-    if sr.size == state.size and sr.size and sr[0] == 0 and sr[-1] == sr.size - 1:
-        state.log_post += update  # the whole batch in order: no gather/scatter round trip
+    if len(ctx.set_members):
+        s = ctx.item_set[item]
+        for k in np.flatnonzero(s >= 0):
+            r = rows[k]
+            members = ctx.set_members[s[k]]
+            state.current_set[r] = s[k] if (~state.used[r, members]).any() else -1
+    return item if all_scored else np.where(scored, item, -1)
+
+
+def _put(array, rows, cols, values) -> None:
+    """``array[rows, cols] = values`` for a 2-D array; a flat put when the array is contiguous
+    (several times faster than 2-D fancy indexing)."""
+    if array.flags.c_contiguous:
+        array.reshape(-1)[rows * array.shape[1] + cols] = values
     else:
-        state.log_post[sr] += update
+        array[rows, cols] = values
 
 
-def _update_estimate(ctx, state, rows) -> None:
-    """Interim estimate after an answer (the design's scoring method)."""
+def _update_estimate(ctx, state, rows, scored_item, responses) -> None:
+    """Add the scored answers to the posterior, then the interim estimate (the design's method)."""
     sc = ctx.design.scoring
-    eap, sd = posterior_mean_sd(state.log_post[rows], ctx.grid)
+    eap, sd = add_and_summarize(state.log_post, rows, ctx.log_table_by_category, scored_item, responses,
+                                ctx.grid)
     if sc.method is ScoringMethod.EAP:
         state.theta[rows], state.se[rows] = eap, sd
         return

@@ -31,7 +31,7 @@ from ..irt import models
 from ..irt.posterior import posterior_weights
 from . import random_streams as randomness
 from .eligibility import area_limits, eligible, set_fits
-from .prepared import NO_MAXIMUM, RANK_STEP, TestContext, ranked_tables
+from .prepared import NO_MAXIMUM, RANK_DEPTH, RANK_STEP, TestContext, ranked_tables
 from .state import KernelState
 
 #: Exactly evaluated candidates per examinee on the short-list path.
@@ -315,32 +315,100 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
     inside = (g >= 0) & (g < grid.size)
     g = np.clip(g, 0, grid.size - 1)
-    which = np.where(restrict >= 0, restrict, len(ctx.bank.areas))
-    cand = items_tab[which, g]  # (R, D)
-    reach = reach_tab[which, g]
+    # reach_after[k, g, j]: the highest reach of the listed items from column j on
+    reach_after = ctx.bank.cached(("ranked_reach_after", RANK_STEP, RANK_DEPTH), lambda: _reach_after(reach_tab))
+    if restrict.size and restrict.max() < 0:  # no row restricted to an area: one table, 1-D gathers
+        cand = items_tab[-1].take(g, axis=0)  # (R, D)
+        table_ceiling = ceil_tab[-1].take(g)
+        after = reach_after[-1].take(g, axis=0)  # (R, D + 1)
+    else:
+        which = np.where(restrict >= 0, restrict, len(ctx.bank.areas))
+        cand = items_tab[which, g]
+        table_ceiling = ceil_tab[which, g]
+        after = reach_after[which, g]
     ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
     # the first few eligible candidates (in grid order) get exact information; the
     # Sympson-Hetter lottery rejects many top items, so it gets a longer list
     lottery = ctx.design.exposure.method is ExposureMethod.SYMPSON_HETTER
     n_exact = min(cand.shape[1], SHORTLIST_EXACT * (3 if lottery else 1))
-    # compact the first n_exact eligible columns of each row, in grid order (-1: none)
-    rank = np.cumsum(ok, axis=1, dtype=np.int16)
-    r_idx, c_idx = np.nonzero(ok & (rank <= n_exact))
-    first = np.full((rows.size, n_exact), -1, dtype=np.int64)
-    first[r_idx, rank[r_idx, c_idx] - 1] = c_idx
+    # the first n_exact eligible columns of each row, in grid order (-1: none)
+    first, _ = _first_eligible(ok, n_exact, beyond=False)
     ex_ok = first >= 0
     ex_cand = np.where(ex_ok, np.take_along_axis(cand, np.maximum(first, 0), axis=1), -1)
-    params = ctx.bank.params.take(np.maximum(ex_cand, 0))
-    exact = models.information(params, theta[:, None])
-    # ceiling of everything not evaluated: unlisted items, and listed eligible ones beyond
-    rest = np.where(ok & (rank > n_exact), reach, -np.inf).max(axis=1)
-    ceiling = np.maximum(ceil_tab[which, g], rest)
+    exact = _exact_information(ctx.bank, np.maximum(ex_cand, 0), theta)
+    # ceiling of everything not evaluated: unlisted items, and the listed items after the
+    # last one evaluated (eligible or not: a bound a little above the eligible ones' own,
+    # read off one table; none when fewer than n_exact were eligible)
+    last = first[:, -1]
+    rest = np.where(last >= 0, np.take_along_axis(after, (last + 1)[:, None], axis=1)[:, 0], -np.inf)
+    ceiling = np.maximum(table_ceiling, rest)
     ranked = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
     proven = inside & (ranked.depth <= n_exact) & (ranked.kth >= ceiling) & (ranked.item >= 0)
     keep = np.flatnonzero(proven)
-    keep_rows = set(rows[keep].tolist())
-    return ProvenChoice(rows=keep, item=ranked.item[keep], value=ranked.value[keep],
-                        withheld=[w for w in ranked.withheld if w[0] in keep_rows])
+    withheld = ranked.withheld
+    if withheld:
+        keep_rows = set(rows[keep].tolist())
+        withheld = [w for w in withheld if w[0] in keep_rows]
+    return ProvenChoice(rows=keep, item=ranked.item[keep], value=ranked.value[keep], withheld=withheld)
+
+
+#: Rows from which :func:`_first_eligible` finds columns by bit arithmetic (fewer: by ranks).
+BIT_SCAN_ROWS = 64
+
+
+def _reach_after(reach) -> np.ndarray:
+    """``out[..., j]``: the highest of ``reach[..., j:]`` (-inf from the last column on), (..., D + 1)."""
+    out = np.full(reach.shape[:-1] + (reach.shape[-1] + 1,), -np.inf)
+    out[..., :-1] = np.maximum.accumulate(reach[..., ::-1], axis=-1)[..., ::-1]
+    return out
+
+
+def _first_eligible(ok, n_first, *, beyond: bool = True) -> tuple[np.ndarray, np.ndarray | None]:
+    """The first ``n_first`` True columns of each row of ``ok`` (R, D), in order, and the rest.
+
+    Returns ``first`` int (R, n_first), column positions padded with -1, and (unless
+    ``beyond`` is False: None) bool (R, D), the True columns after them.  Large batches
+    with D <= 64 read the columns off each row's bits (lowest set bit, n_first times: a
+    few operations on (R,) arrays instead of several passes over (R, D)); both ways give
+    the same columns.
+    """
+    r_n, width = ok.shape
+    if r_n < BIT_SCAN_ROWS or width > 64:
+        rank = np.cumsum(ok, axis=1, dtype=np.int16)
+        r_idx, c_idx = np.nonzero(ok & (rank <= n_first))
+        first = np.full((r_n, n_first), -1, dtype=np.int64)
+        first[r_idx, rank[r_idx, c_idx] - 1] = c_idx
+        return first, (ok & (rank > n_first)) if beyond else None
+    padded = np.zeros((r_n, 64), dtype=bool)
+    padded[:, :width] = ok
+    # column j is bit j of the row's word (little-endian bit and byte order, whatever the host)
+    bits = np.packbits(padded, axis=1, bitorder="little").view("<u8").reshape(r_n)
+    first = np.empty((r_n, n_first), dtype=np.int64)
+    one = np.uint64(1)
+    for j in range(n_first):
+        low = bits & (~bits + one)  # the lowest set bit (0 when none is left)
+        exponent = np.frexp(low.astype(np.float64))[1]  # 2**k -> k + 1; 0 -> 0
+        first[:, j] = exponent - 1
+        bits ^= low
+    if not beyond:
+        return first, None
+    beyond = np.unpackbits(bits.astype("<u8").view(np.uint8).reshape(r_n, 8), axis=1, count=width,
+                           bitorder="little").view(bool)
+    return first, beyond
+
+
+def _exact_information(bank, items, theta) -> np.ndarray:
+    """Fisher information of ``items`` (R, K) at ``theta`` (R,), as :func:`models.information` gives it.
+
+    A bank of dichotomous items only gathers precomputed per-item columns (the same
+    arithmetic, so the same bits); any other bank takes the general route.
+    """
+    dichotomous = bank.cached(("all_dichotomous",), lambda: not np.any(bank.params.family))
+    if not dichotomous:
+        return models.information(bank.params.take(items), theta[:, None])
+    # the columns stacked (7, n): one gather brings every column of the candidates
+    columns = bank.cached(("dichotomous_columns",), lambda: np.stack(models.dichotomous_columns(bank.params)))
+    return models.dichotomous_information_columns(theta[:, None], *columns.take(items, axis=1))
 
 
 def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:

@@ -107,6 +107,10 @@ class KernelState:
             elapsed=np.full(b, np.nan),
         )
 
+    def copy(self) -> "KernelState":
+        """An independent copy (every array copied)."""
+        return KernelState(**{f.name: getattr(self, f.name).copy() for f in attrs.fields(KernelState)})
+
     def scored_items(self, rows=None) -> tuple[np.ndarray, np.ndarray]:
         """Scored items and responses, (R, L) with -1 where pretest or not given."""
         rows = slice(None) if rows is None else rows

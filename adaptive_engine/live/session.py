@@ -38,7 +38,7 @@ import re
 import threading
 import uuid
 from collections import OrderedDict
-from typing import Callable
+from typing import Callable, NamedTuple
 
 import attrs
 import numpy as np
@@ -79,8 +79,8 @@ class ProcessCache:
     """Per-process caches of test contexts and of the kernel states of sessions served.
 
     Safe to share between threads (a server's request threads): every access holds a lock.
-    A cached kernel state is changed only by an answer to its session, which holds that
-    session's write lock in the store.
+    A cached kernel state is never changed in place while it is cached: an answer works on
+    a copy and caches the copy once its transaction has committed.
 
     Parameters
     ----------
@@ -489,6 +489,10 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
     rules = rule_set(row["decision_rules_version"])
     # the context may take a while to build: do it before taking the write lock
     ctx = None if rules is None else cache.context(store, row["design_id"], row["bank_id"], rules=rules)
+    if rules is not None:
+        reply = _answer_before_lock(store, rules, ctx, row, item_id, value, elapsed, cache)
+        if reply is not None:
+            return reply
     mutated = [False]
     try:
         with store.writing():
@@ -499,6 +503,73 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
         if mutated[0]:
             cache.drop(store, session_id)
         raise
+
+
+def _answer_before_lock(store, rules, ctx, row, item_id, response, elapsed, cache) -> dict | None:
+    """The common answer, decided before the write lock is taken; None when it does not apply.
+
+    Applies when the row read without a lock shows the item pending in an active session
+    and this process holds the session's state at the row's last event (the usual case: the
+    session's previous step ran here).  The next step is computed on a copy of that state;
+    the write transaction then holds only the writes, after checking that the session's
+    row has not moved on (same last event, status and pending item) since it was read.
+    When it has (another request answered the session meanwhile), nothing is written and
+    None is returned: the caller answers under the lock, where every check runs on the
+    locked row.  The transaction writes what an answer under the lock writes.
+    """
+    value, value_text = response
+    session_id = row["session_id"]
+    if row["status"] != "active" or row["pending_item"] != item_id:
+        return None  # a resent answer, a finished session, another item: the locked path says which
+    seq = int(row["last_seq"])
+    cached = cache.state(store, session_id, seq)
+    if cached is None:
+        return None
+    index = ctx.bank.index_of.get(item_id)
+    if index is None or not 0 <= value < int(ctx.bank.n_categories[index]):
+        return None  # refused under the lock, with its message
+    state = cached.copy()  # the cached state stays as it is until the answer is committed
+    answered = _answer_step(rules, ctx, state, session_id, item_id, value, elapsed, seq)
+    with store.writing():
+        now = store.session_row(session_id, lock=True)
+        if (now["last_seq"], now["status"], now["pending_item"]) != (row["last_seq"], row["status"], item_id):
+            return None  # the session moved on since it was read: nothing written
+        _write_answer(store, row, state, answered)
+    cache.keep(store, session_id, seq + 2, state)
+    return answered.reply
+
+
+class _Answered(NamedTuple):
+    """What an answer writes: events, the session row's changes, the reply."""
+
+    events: list
+    changes: dict
+    reply: dict
+
+
+def _answer_step(rules, ctx, state, session_id, item_id, value, elapsed, seq) -> _Answered:
+    """Answer ``state`` (changed in place) and make what the answer writes."""
+    picked = rules.answer(ctx, state, _ROW0, np.array([value]),
+                          elapsed=None if elapsed is None else np.array([elapsed]), count_eligible=True)
+    now = now_text()
+    events, result = _next_events(rules, ctx, state, picked, seq + 2, now)
+    reply = _reply(session_id, ctx, state, result)
+    given = state.n_given[0] - 1
+    answer_event = {
+        "kind": "answer", "seq": seq + 1, "item_id": item_id, "response": value,
+        "scored": int(state.scored[0, given]), "theta": float(state.theta[0]), "se": float(state.se[0]),
+        "rng_state": _rng_state(state), "elapsed": elapsed, "created_at": now, "reply": to_json(reply),
+    }
+    return _Answered(events=[dict(e, session_id=session_id) for e in [answer_event, *events]],
+                     changes=_session_changes(ctx, state, seq + 2, now, result), reply=reply)
+
+
+def _write_answer(store, row, state, answered: _Answered) -> None:
+    """The writes of an answer (inside the write transaction)."""
+    store.append_events(answered.events)
+    store.update_session(row["session_id"], answered.changes)
+    if state.pending[0] >= 0:
+        store.count_exposure(row["bank_id"], answered.reply["item_id"])
 
 
 def _answer_locked(store, rules, ctx, row, item_id, response, elapsed, cache, mutated) -> dict:
@@ -526,26 +597,15 @@ def _answer_locked(store, rules, ctx, row, item_id, response, elapsed, cache, mu
     if not 0 <= value < n_cat:
         raise InvalidValueError(f"response {value_text} is outside the categories 0..{n_cat - 1}",
                                 location=f"{where} item {item}", field="response")
-    state = session_state(store, ctx, row, cache=cache, rules=rules)
+    # a copy: a state in the cache is never changed in place, so that an answer decided
+    # before the lock (which copies it without the lock) never sees one half-answered
+    state = session_state(store, ctx, row, cache=cache, rules=rules).copy()
     mutated[0] = True
-    picked = rules.answer(ctx, state, _ROW0, np.array([value]),
-                          elapsed=None if elapsed is None else np.array([elapsed]), count_eligible=True)
     seq = int(row["last_seq"])
-    now = now_text()
-    events, result = _next_events(rules, ctx, state, picked, seq + 2, now)
-    reply = _reply(session_id, ctx, state, result)
-    given = state.n_given[0] - 1
-    answer_event = {
-        "kind": "answer", "seq": seq + 1, "item_id": item_id, "response": value,
-        "scored": int(state.scored[0, given]), "theta": float(state.theta[0]), "se": float(state.se[0]),
-        "rng_state": _rng_state(state), "elapsed": elapsed, "created_at": now, "reply": to_json(reply),
-    }
-    store.append_events([dict(e, session_id=session_id) for e in [answer_event, *events]])
-    store.update_session(session_id, _session_changes(ctx, state, seq + 2, now, result))
-    if state.pending[0] >= 0:
-        store.count_exposure(row["bank_id"], reply["item_id"])
+    answered = _answer_step(rules, ctx, state, session_id, item_id, value, elapsed, seq)
+    _write_answer(store, row, state, answered)
     cache.keep(store, session_id, seq + 2, state)
-    return reply
+    return answered.reply
 
 
 def rules_not_installed(row: dict) -> SessionError:

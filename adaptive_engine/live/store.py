@@ -62,6 +62,11 @@ every answer of a bank's sessions from :meth:`SessionStore.bank_answers` (or
 Concurrency (SQLite): the database runs in WAL mode with a busy timeout, and every write is
 one ``BEGIN IMMEDIATE`` transaction (the write lock is taken up front, so two writers never
 deadlock on a lock upgrade and nobody sees "database is locked" while waiting is possible).
+A writer that finds the lock taken tries again after short random pauses.  Write
+transactions hold only writes: the live driver decides an answer before taking the lock and
+checks inside it that the session has not moved on (``live.session``).  The write-ahead log
+is copied into the file by a thread of each writing process (``_Checkpointer``), not by
+whichever request's commit happens to make the log long.
 ``synchronous = NORMAL`` is used: in WAL mode a crashed *process* never loses a committed
 transaction (only a power cut may drop the last ones); pass ``durable=True`` for FULL.
 PostgreSQL: see :mod:`adaptive_engine.live.postgres_store`.
@@ -75,11 +80,13 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import random
 import re
 import sqlite3
 import threading
 import time
 import tomllib
+import weakref
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Callable, Iterator
@@ -95,6 +102,10 @@ from ..kernel.fingerprints import bank_content, design_content
 
 #: Seconds a writer waits for another process's write lock before giving up.
 BUSY_TIMEOUT_SECONDS = 60.0
+#: Bounds (seconds) of the random pause between tries for the SQLite write lock: the first,
+#: and the most it grows to (see ``SQLiteSessionStore._begin_immediate``).
+WRITE_RETRY_FIRST = 0.0002
+WRITE_RETRY_MOST = 0.002
 STATUSES = ("active", "finished")
 RELEASE_STATUSES = ("active", "retired")
 #: The schema this engine writes.  1: the tables as first released, no version recorded;
@@ -731,6 +742,7 @@ class SQLiteSessionStore(SessionStore):
             if create and not read_only:
                 _create_owner_only(p)
         self.path = str(path)
+        self._checkpointer: weakref.finalize | None = None  # lets go of the checkpoint thread
         self.location = shown(self.path, limit=400)
         self.read_only = read_only
         self.key = ":memory:%d" % id(self) if memory else str(Path(path).resolve())
@@ -754,6 +766,10 @@ class SQLiteSessionStore(SessionStore):
             if not memory and self.db.journal_mode != "wal":
                 self.db.enable_wal()
             conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
+            if not memory:
+                # the log is copied into the file by a thread of this process (see _Checkpointer);
+                # a request's commit does it only if the log grows far beyond the usual size
+                conn.execute(f"PRAGMA wal_autocheckpoint = {CHECKPOINT_BACKSTOP_PAGES}")
             self._ensure_schema()
         except sqlite3.DatabaseError as exc:
             self._close_quietly()
@@ -907,13 +923,22 @@ class SQLiteSessionStore(SessionStore):
                 self._rolled_back()
                 raise
         self._committed()
+        if self._checkpointer is None and not self.key.startswith(":memory:"):
+            checkpointer = _Checkpointer.attach(self.key, self.path)
+            # a store dropped without close() lets go of the thread too
+            self._checkpointer = weakref.finalize(self, checkpointer.detach, join=False)
+            self._checkpointer.atexit = False  # a process that exits ends the thread anyway
 
     def _begin_immediate(self) -> None:
-        # another process holds the write lock: poll for it every fraction of a millisecond
-        # (a write takes a few) rather than leave it to SQLite's busy handler, whose sleeps
-        # grow to 100 ms; the busy timeout still covers every other statement
+        # another process holds the write lock: try again after a short random pause (a
+        # write holds the lock for a fraction of a millisecond) rather than leave it to
+        # SQLite's busy handler, whose sleeps grow to 100 ms.  The pause is drawn at random
+        # between half a bound and the bound, which grows with each failed try up to a few
+        # milliseconds: waiting processes do not wake together, one that has waited long
+        # keeps trying as often as a newcomer, and waiting costs little processor time.
+        # The busy timeout still covers every other statement, and bounds the whole wait.
         deadline = time.monotonic() + BUSY_TIMEOUT_SECONDS
-        pause = 0.0002
+        bound = WRITE_RETRY_FIRST
         self.conn.execute("PRAGMA busy_timeout = 0")
         try:
             while True:
@@ -923,15 +948,94 @@ class SQLiteSessionStore(SessionStore):
                 except sqlite3.OperationalError as exc:
                     if "locked" not in str(exc) and "busy" not in str(exc) or time.monotonic() > deadline:
                         raise
-                    time.sleep(pause)
-                    pause = min(pause * 1.5, 0.002)
+                    time.sleep(_RETRY_RANDOM.uniform(0.5 * bound, bound))
+                    bound = min(bound * 1.5, WRITE_RETRY_MOST)
         finally:
             self.conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
 
     def close(self) -> None:
         self.conn.close()
+        if self._checkpointer is not None:
+            release, self._checkpointer = self._checkpointer, None
+            found = release.detach()  # the finalizer will not run at collection now
+            if found is not None:
+                _, detach, _, _ = found
+                detach(join=True)
 
 
+#: Seconds between checkpoints of a store's write-ahead log by the thread that makes them.
+CHECKPOINT_INTERVAL_SECONDS = 0.2
+#: Log size (pages) at which a committing request copies the log into the file itself: far
+#: above what the checkpoint thread lets it reach (SQLite's own default is 1,000 pages).
+CHECKPOINT_BACKSTOP_PAGES = 20_000
+
+
+class _Checkpointer:
+    """Copies a store file's write-ahead log into the file, on a thread of its own.
+
+    SQLite's automatic checkpoint runs in the request whose commit makes the log pass 1,000
+    pages: that request then waits for the copy and the file syncs (tens of milliseconds,
+    the tail of the latency of every writer).  Instead, one daemon thread per process and
+    file makes a passive checkpoint every ``CHECKPOINT_INTERVAL_SECONDS`` on a connection of
+    its own: it waits for no reader or writer, and nobody waits for it.  A checkpoint is
+    SQLite's own, so a crash at any moment keeps every committed transaction as before.
+    The thread starts with a store's first write and stops when the last store of this
+    process on that file is closed or collected (a last checkpoint first).
+    """
+
+    _registry: dict = {}
+    _guard = threading.Lock()
+
+    def __init__(self, path: str):
+        self.path = path
+        self.users = 0
+        self.stop = threading.Event()
+        self.thread = threading.Thread(target=self._run, name="adaptive-engine store checkpoints", daemon=True)
+
+    @classmethod
+    def attach(cls, key: str, path: str) -> "_Checkpointer":
+        with cls._guard:
+            reg_key = (os.getpid(), key)  # a forked child starts its own thread
+            found = cls._registry.get(reg_key)
+            if found is None:
+                found = cls._registry[reg_key] = cls(path)
+                found.thread.start()
+            found.users += 1
+            return found
+
+    def detach(self, *, join: bool = True) -> None:
+        """One store less uses the thread; the last one stops it (and waits for it when ``join``)."""
+        with self._guard:
+            self.users -= 1
+            if self.users > 0:
+                return
+            for k, v in list(self._registry.items()):
+                if v is self:
+                    del self._registry[k]
+        self.stop.set()
+        if join and self.thread.is_alive() and self.thread is not threading.current_thread():
+            self.thread.join(timeout=10.0)
+
+    def _run(self) -> None:
+        try:
+            conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_SECONDS, isolation_level=None,
+                                   check_same_thread=False)
+        except sqlite3.Error:
+            return  # the requests' own automatic checkpoint (the backstop) still applies
+        try:
+            conn.execute("PRAGMA busy_timeout = 0")  # a passive checkpoint never waits anyway
+            while True:
+                stopping = self.stop.wait(CHECKPOINT_INTERVAL_SECONDS)
+                with contextlib.suppress(sqlite3.Error):
+                    conn.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchall()
+                if stopping:
+                    return
+        finally:
+            with contextlib.suppress(sqlite3.Error):
+                conn.close()
+
+
+_RETRY_RANDOM = random.Random()  # pauses between tries for the write lock (not a decision)
 _WRITER_LOCKS: dict[str, threading.Lock] = {}
 _WRITER_LOCKS_GUARD = threading.Lock()
 
