@@ -783,16 +783,79 @@ eap_estimate_md.__doc__ += _INPUT_DOC + """    points_per_dimension : int, optio
 """
 
 
+def check_method_md(method: str, *, location: str = "method") -> None:
+    """Refuse a method multidimensional scoring does not have (``"wle"`` among them), located."""
+    if method not in METHODS_MD:
+        raise AdaptiveEngineError(
+            f"method {method!r} is not available for a bank of several dimensions (use one of "
+            f"{', '.join(METHODS_MD)}; Warm's weighted likelihood has no multidimensional form here)",
+            location=location)
+
+
 def estimate_md(bank_or_params, items, responses, method: str, *, prior_mean=None, prior_covariance=None,
                 bounds=DEFAULT_BOUNDS) -> MultidimensionalEstimate:
     """Ability vectors by ``method`` (``"mle"``, ``"map"`` or ``"eap"``); ``bounds`` not for EAP."""
-    if method not in METHODS_MD:
-        raise AdaptiveEngineError(
-            f"unknown method {method!r} for multidimensional scoring (use one of {', '.join(METHODS_MD)}; "
-            "Warm's weighted likelihood has no multidimensional form here)", location="method")
+    check_method_md(method)
     if method == "eap":
         return eap_estimate_md(bank_or_params, items, responses, prior_mean=prior_mean,
                                prior_covariance=prior_covariance)
     func = map_estimate_md if method == "map" else mle_estimate_md
     return func(bank_or_params, items, responses, prior_mean=prior_mean, prior_covariance=prior_covariance,
                 bounds=bounds)
+
+
+#: Prior SDs (square roots of the covariance's diagonal) :func:`score_responses_md` accepts,
+#: as the one-dimensional :data:`~adaptive_engine.irt.estimation.SCORE_PRIOR_SD_RANGE`.
+SCORE_PRIOR_SD_RANGE_MD = (0.05, 4.0)
+#: Persons x answer slots scored at once by :func:`score_responses_md` (memory only).
+SCORE_BLOCK_CELLS_MD = 20_000
+
+
+def check_score_prior_md(prior_mean, prior_covariance, n_dimensions: int, *, mean_location: str = "prior_mean",
+                         covariance_location: str = "prior_covariance") -> tuple[np.ndarray, np.ndarray]:
+    """:func:`check_prior_md` plus the ranges of :func:`score_responses_md`.
+
+    Every prior mean within :data:`DEFAULT_BOUNDS` (the box of the MAP and MLE) and every
+    prior SD within :data:`SCORE_PRIOR_SD_RANGE_MD`; returns ``(mean (K,), covariance (K, K))``.
+    """
+    mean, cov = check_prior_md(prior_mean, prior_covariance, n_dimensions, mean_location=mean_location,
+                               covariance_location=covariance_location)
+    lo, hi = DEFAULT_BOUNDS
+    for j, m in enumerate(mean, start=1):
+        if not lo <= m <= hi:
+            raise AdaptiveEngineError(f"the prior mean of dimension {j} must lie in [{lo:g}, {hi:g}], got {m:g}",
+                                      location=mean_location)
+    slo, shi = SCORE_PRIOR_SD_RANGE_MD
+    for j, v in enumerate(np.diagonal(cov), start=1):
+        if not slo**2 <= v <= shi**2:
+            raise AdaptiveEngineError(
+                f"the prior variance of dimension {j} must lie in [{slo**2:g}, {shi**2:g}] "
+                f"(an SD in [{slo:g}, {shi:g}]), got {v:g}", location=covariance_location)
+    return mean, cov
+
+
+def score_responses_md(bank, table, method: str, *, prior_mean=None, prior_covariance=None) -> MultidimensionalEstimate:
+    """Score every person of a :class:`~adaptive_engine.bank.responses.ResponseTable` on a
+    bank of multidimensional models, in order of first appearance.
+
+    Unknown item ids and out-of-range responses raise
+    :class:`~adaptive_engine.errors.ResponseDataError` naming the file line; a prior outside
+    the accepted ranges raises (:func:`check_score_prior_md`).  Persons are scored in blocks
+    of similar test length; every row is computed on its own, so the result equals one call
+    of :func:`estimate_md` on the padded arrays.
+    """
+    check_method_md(method)
+    k = bank.n_dimensions
+    mean, cov = check_score_prior_md(prior_mean, prior_covariance, k)
+    n = table.n_persons
+    used = np.unique(table.bank_item_index(bank))
+    answered_bank = bank.subset(used) if used.size < len(bank) else bank
+    theta, covariance = np.empty((n, k)), np.empty((n, k, k))
+    n_items, status = np.empty(n, dtype=np.int64), np.empty(n, dtype=object)
+    for persons, items, responses in table.padded_blocks(bank, max_cells=SCORE_BLOCK_CELLS_MD):
+        rows = np.where(items >= 0, np.searchsorted(used, items), -1)
+        result = estimate_md(answered_bank, rows, responses, method, prior_mean=mean, prior_covariance=cov)
+        theta[persons], covariance[persons] = result.theta, result.covariance
+        n_items[persons], status[persons] = result.n_items, result.status
+    return MultidimensionalEstimate(theta=theta, covariance=covariance, se=_se_of(covariance), n_items=n_items,
+                                    method=method, status=status)
