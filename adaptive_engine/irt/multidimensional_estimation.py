@@ -78,6 +78,7 @@ from typing import NamedTuple
 
 import attrs
 import numpy as np
+from scipy.special import log_expit
 from scipy.stats import norm, qmc
 
 from ..errors import AdaptiveEngineError, Problem, ResponseDataError
@@ -107,9 +108,9 @@ DEFAULT_BOUNDS_WIDE = (-50.0, 50.0)
 #: Product grids (EAP) up to this many dimensions; beyond, quasi-Monte Carlo.
 PRODUCT_GRID_MAX_DIMENSIONS = 3
 #: Default points per axis of the adaptive EAP grid, by K.
-EAP_POINTS_PER_DIMENSION = {1: 81, 2: 41, 3: 21}
-#: The adaptive grid reaches where the log posterior is this far below the mode (e^-30).
-EAP_LOG_DROP = 30.0
+EAP_POINTS_PER_DIMENSION = {1: 81, 2: 31, 3: 21}
+#: The adaptive grid reaches where the log posterior is this far below the mode (e^-20).
+EAP_LOG_DROP = 20.0
 #: At most this many Laplace SDs from the mode in each direction of an axis.
 EAP_MAX_REACH = 40
 #: Sobol points (a power of two) of the K > 3 EAP, their fixed seed and the proposal's spread.
@@ -386,15 +387,9 @@ def _picked(values, responses):
     return np.take_along_axis(values, idx, axis=-1)[..., 0]
 
 
-def _log_likelihood_at(params, items, responses, answered, theta) -> np.ndarray:
-    """Row log-likelihood at theta (B, K) -> (B,)."""
-    sub = params.take(items)
-    lp = _picked(md.log_probabilities(sub, theta[:, None, :]), responses)
-    return _row_sum(np.where(answered, lp, 0.0))
-
-
 def _objective(data: _Data, rows, theta, prior: _Prior | None) -> np.ndarray:
-    value = _log_likelihood_at(data.params, data.items[rows], data.responses[rows], data.answered[rows], theta)
+    """The log-likelihood (+ log prior) of ``rows`` at theta (B, K) -> (B,)."""
+    value = _row_sum(_answer_log_probability(_answers(data, rows), theta))
     if prior is not None:
         value = value - 0.5 * _quadratic(prior.precision[rows], theta - prior.mean[rows])
     return value
@@ -494,25 +489,107 @@ def _start_search(data: _Data, prior: _Prior) -> np.ndarray:
     axis = np.linspace(-3.0, 3.0, 13)
     z = np.stack(np.meshgrid(*([axis] * k), indexing="ij"), axis=-1).reshape(-1, k)
     rows = np.flatnonzero(lifted)
-    points = prior.mean[rows][:, None, :] + _matvec(prior.chol[rows][:, None], z[None])
-    log_post = _points_log_posterior(data, rows, points, prior)
-    best = np.argmax(log_post, axis=1)
-    start[rows] = points[np.arange(rows.size), best]
+    # rows with the same prior share their points (and one table of log probabilities)
+    keys = np.concatenate([prior.mean[rows], prior.chol[rows].reshape(rows.size, -1)], axis=1)
+    _, group = np.unique(keys, axis=0, return_inverse=True)
+    for g in range(int(group.max()) + 1):
+        members = rows[group.reshape(-1) == g]
+        first = members[0]
+        points = prior.mean[first] + _matvec(prior.chol[first][None], z)
+        log_post = _shared_points_log_likelihood(data, members, points)
+        log_post -= 0.5 * _quadratic(prior.precision[members],
+                                     np.broadcast_to(points - prior.mean[first], (members.size,) + points.shape))
+        start[members] = points[np.argmax(log_post, axis=1)]
     return start
+
+
+def _shared_points_log_likelihood(data: _Data, rows, points) -> np.ndarray:
+    """Log-likelihood of each row at the same points (N, K) -> (B, N).
+
+    One table of log probabilities of the items these rows answered at the points, looked
+    up per answer and summed one answer at a time (each value depends only on its item
+    and point, so a row's result does not depend on the others)."""
+    items, resp, answered = data.items[rows], data.responses[rows], data.answered[rows]
+    n_pts = points.shape[0]
+    out = np.zeros((rows.size, n_pts))
+    if not answered.any():
+        return out
+    used = np.unique(items[answered])
+    table = md.log_probabilities(*md.outer(data.params.take(used), points))  # (U, N, C)
+    where = np.searchsorted(used, np.where(answered, items, used[0]))
+    cats = np.where(answered, resp, 0)
+    per_row = max(1, items.shape[1]) * n_pts
+    point_index = np.arange(n_pts)[None, None, :]
+    for part in _chunks(rows.size, _CELLS // per_row):
+        lp = table[where[part][:, :, None], point_index, cats[part][:, :, None]]  # (B, L, N)
+        lp = np.where(answered[part][:, :, None], lp, 0.0)
+        out[part] = _row_sum(np.moveaxis(lp, 1, -1))
+    return out
+
+
+class _Answers(NamedTuple):
+    """What the log probability of each observed answer needs, per (row, answer) (B, L)."""
+
+    slopes: np.ndarray  # (B, L, K)
+    upper: np.ndarray  # intercept of boundary x (P* = 1 above: +inf for category 0)
+    lower: np.ndarray  # intercept of boundary x + 1 (-inf for the top category)
+    c: np.ndarray  # lower asymptote
+    top: np.ndarray  # bool: the observed category is the item's highest
+    answered: np.ndarray
+    scaling: float
+
+
+def _answers(data: _Data, rows) -> _Answers:
+    items, resp, answered = data.items[rows], data.responses[rows], data.answered[rows]
+    params = data.params
+    x = np.where(answered, resp, 0)
+    m = params.n_categories[items] - 1
+    ints = params.intercepts[items]  # (B, L, M_max)
+    width = ints.shape[-1]
+    upper = np.take_along_axis(ints, np.clip(x - 1, 0, width - 1)[..., None], axis=-1)[..., 0]
+    lower = np.take_along_axis(ints, np.clip(x, 0, width - 1)[..., None], axis=-1)[..., 0]
+    upper = np.where(x == 0, np.inf, upper)
+    lower = np.where(x >= m, -np.inf, lower)
+    return _Answers(params.slopes[items], upper, lower, params.c[items], x >= m, answered, params.scaling)
+
+
+def _answer_log_probability(ans: _Answers, points) -> np.ndarray:
+    """Log probability of each observed answer at each row's points, masked to 0 where not
+    answered: points (B, N, K) -> (B, L, N); points (B, K) -> (B, L).
+
+    The formulas of :func:`adaptive_engine.irt.multidimensional.log_probabilities` for the
+    observed category alone: ``log(sigma(z_x) - sigma(z_x+1))`` in logs, with the lower
+    asymptote ``log(1 - c) + ...`` below the top category and ``log(c + (1 - c) sigma(z_M))``
+    at it."""
+    shared = points.ndim == 2
+    pts = points[:, None, :] if shared else points[:, None, :, :]  # (B, 1, K) or (B, 1, N, K)
+    ex = (lambda v: v) if shared else (lambda v: v[..., None])
+    slopes = ans.slopes if shared else ans.slopes[:, :, None, :]
+    eta = slopes[..., 0] * pts[..., 0]
+    for j in range(1, slopes.shape[-1]):
+        eta = eta + slopes[..., j] * pts[..., j]
+    d = ans.scaling
+    with np.errstate(invalid="ignore", divide="ignore"):
+        z_u = d * (eta + ex(ans.upper))
+        z_l = d * (eta + ex(ans.lower))
+        log_p = log_expit(z_u) + log_expit(-z_l) + np.log(-np.expm1(z_l - z_u))
+        lifted = ans.c > 0
+        if lifted.any():
+            c = ex(ans.c)
+            log_1c = np.log1p(-c)
+            log_top = np.logaddexp(np.log(c), log_1c + log_expit(z_u))
+            log_p = np.where(ex(lifted), np.where(ex(ans.top), log_top, log_1c + log_p), log_p)
+    return np.where(ex(ans.answered), log_p, 0.0)
 
 
 def _points_log_posterior(data: _Data, rows, points, prior: _Prior | None) -> np.ndarray:
     """Log posterior (up to a constant) of each row at its own points (B, N, K) -> (B, N)."""
     b, n_pts, _ = points.shape
     out = np.empty((b, n_pts))
-    width = max(1, data.items.shape[1]) * n_pts * data.params.max_categories
+    width = max(1, data.items.shape[1]) * n_pts * 4
     for part in _chunks(b, _CELLS // width):
         r = rows[part]
-        items, resp, answered = data.items[r], data.responses[r], data.answered[r]
-        sub = data.params.take(items[:, :, None])  # (B, L, 1)
-        lp = md.log_probabilities(sub, points[part][:, None, :, :])  # (B, L, N, C)
-        lp = _picked(lp, resp[:, :, None])
-        lp = np.where(answered[:, :, None], lp, 0.0)
+        lp = _answer_log_probability(_answers(data, r), points[part])  # (B, L, N)
         out[part] = _row_sum(np.moveaxis(lp, 1, -1))
         if prior is not None:
             out[part] -= 0.5 * _quadratic(prior.precision[r], points[part] - prior.mean[r][:, None, :])
@@ -670,11 +747,12 @@ def _fixed_grid(grid, k) -> list[np.ndarray]:
 def _eap_fixed(data: _Data, prior: _Prior, axes):
     n, k = prior.mean.shape
     points = _product_points([ax[None, :] for ax in axes])[0]
+    log_lik = _shared_points_log_likelihood(data, np.arange(n), points)
     theta, cov = np.empty((n, k)), np.empty((n, k, k))
-    for part in _chunks(n, max(1, _CELLS // (points.shape[0] * 8))):
-        rows = np.arange(n)[part]
-        pts = np.broadcast_to(points, (rows.size,) + points.shape)
-        theta[part], cov[part] = _moments(_points_log_posterior(data, rows, pts, prior), pts)
+    for part in _chunks(n, max(1, _CELLS // (points.shape[0] * k * k))):
+        pts = np.broadcast_to(points, (theta[part].shape[0],) + points.shape)
+        log_post = log_lik[part] - 0.5 * _quadratic(prior.precision[part], pts - prior.mean[part][:, None, :])
+        theta[part], cov[part] = _moments(log_post, pts)
     # a posterior narrower than the grid piles onto one point: the least SD a grid can tell
     # apart is step / sqrt(12) (as in the one-dimensional posterior.resolution_floor)
     floor = np.array([(ax[-1] - ax[0]) / (ax.size - 1) / np.sqrt(12.0) for ax in axes])
@@ -695,6 +773,26 @@ def _laplace(data: _Data, prior: _Prior, rows):
     return sub, sub_prior, mode, np.linalg.cholesky(cov)
 
 
+def _reach(data: _Data, rows, mode, chol, top, prior: _Prior, axis: int, sign: float) -> np.ndarray:
+    """Whole steps of ``sign * C e_axis`` from the mode until the log posterior is
+    :data:`EAP_LOG_DROP` below ``top`` (at most :data:`EAP_MAX_REACH`), per row."""
+    k = mode.shape[1]
+    reach = np.full(rows.size, float(EAP_MAX_REACH))
+    pending = np.arange(rows.size)
+    for first, last in ((1, 10), (11, EAP_MAX_REACH)):  # most posteriors fall within 10 SDs
+        if pending.size == 0:
+            break
+        steps = np.arange(first, last + 1, dtype=float)
+        z = np.zeros((steps.size, k))
+        z[:, axis] = sign * steps
+        pts = mode[pending][:, None, :] + _matvec(chol[pending][:, None], z[None])
+        below = _points_log_posterior(data, rows[pending], pts, prior) < top[pending][:, None] - EAP_LOG_DROP
+        found = below.any(axis=1)
+        reach[pending[found]] = steps[np.argmax(below[found], axis=1)]
+        pending = pending[~found]
+    return reach
+
+
 def _eap_adaptive(data: _Data, prior: _Prior, points_per_dimension: int):
     n, k = prior.mean.shape
     theta, cov = prior.mean.copy(), prior.covariance.copy()
@@ -706,16 +804,8 @@ def _eap_adaptive(data: _Data, prior: _Prior, points_per_dimension: int):
     top = _objective(sub, local, mode, sub_prior)
     if k <= PRODUCT_GRID_MAX_DIMENSIONS:
         # reach of each axis: whole Laplace SDs until the log posterior drops EAP_LOG_DROP
-        steps = np.arange(1, EAP_MAX_REACH + 1, dtype=float)
-        lows, highs = [], []
-        for axis in range(k):
-            for sign, store in ((-1.0, lows), (1.0, highs)):
-                z = np.zeros((steps.size, k))
-                z[:, axis] = sign * steps
-                pts = mode[:, None, :] + _matvec(chol[:, None], z[None])
-                below = _points_log_posterior(sub, local, pts, sub_prior) < top[:, None] - EAP_LOG_DROP
-                first = np.where(below.any(axis=1), np.argmax(below, axis=1), steps.size - 1)
-                store.append(steps[first])
+        lows = [_reach(sub, local, mode, chol, top, sub_prior, axis, -1.0) for axis in range(k)]
+        highs = [_reach(sub, local, mode, chol, top, sub_prior, axis, 1.0) for axis in range(k)]
         t = np.linspace(0.0, 1.0, points_per_dimension)
         axes = [(-lows[j])[:, None] + (lows[j] + highs[j])[:, None] * t[None, :] for j in range(k)]
         z = _product_points(axes)  # (B, N, K), the same volume per point within a row
@@ -741,7 +831,7 @@ def eap_estimate_md(bank_or_params, items, responses, *, prior_mean=None, prior_
 
     K <= 3: an adaptive product grid around each examinee's posterior (centred on the MAP,
     rotated and scaled by the Laplace covariance's Cholesky factor, reaching until the
-    posterior has fallen by e^-30; ``points_per_dimension`` points per axis, default
+    posterior has fallen by e^-20; ``points_per_dimension`` points per axis, default
     :data:`EAP_POINTS_PER_DIMENSION`), rectangle rule.  K > 3: quasi-Monte Carlo importance
     sampling from an inflated Laplace normal at a fixed scrambled Sobol sequence
     (:data:`EAP_QMC_POINTS` points, seed :data:`EAP_QMC_SEED`).  Without answers: the prior.
