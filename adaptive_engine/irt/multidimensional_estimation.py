@@ -569,15 +569,22 @@ def _answer_log_probability(ans: _Answers, points) -> np.ndarray:
     for j in range(1, slopes.shape[-1]):
         eta = eta + slopes[..., j] * pts[..., j]
     d = ans.scaling
+    first, top = ans.upper == np.inf, ans.lower == -np.inf
     with np.errstate(invalid="ignore", divide="ignore"):
-        z_u = d * (eta + ex(ans.upper))
-        z_l = d * (eta + ex(ans.lower))
-        log_p = log_expit(z_u) + log_expit(-z_l) + np.log(-np.expm1(z_l - z_u))
+        # category 0: log sigma(-z_1); the top category: log sigma(z_M) (the other two terms
+        # of the general form are exactly 0 there), so one log_expit serves both
+        z_l = d * (eta + ex(np.where(top, 0.0, ans.lower)))
+        z_u = d * (eta + ex(np.where(first, 0.0, ans.upper)))
+        log_p = log_expit(np.where(ex(first), -z_l, z_u))
+        middle = ~first & ~top
+        if middle.any():
+            general = log_p + log_expit(-z_l) + np.log(-np.expm1(z_l - z_u))
+            log_p = np.where(ex(middle), general, log_p)
         lifted = ans.c > 0
         if lifted.any():
             c = ex(ans.c)
             log_1c = np.log1p(-c)
-            log_top = np.logaddexp(np.log(c), log_1c + log_expit(z_u))
+            log_top = np.logaddexp(np.log(c), log_1c + log_p)
             log_p = np.where(ex(lifted), np.where(ex(ans.top), log_top, log_1c + log_p), log_p)
     return np.where(ex(ans.answered), log_p, 0.0)
 
@@ -812,7 +819,7 @@ def _eap_adaptive(data: _Data, prior: _Prior, points_per_dimension: int):
         log_weights = None
     else:
         sobol = qmc.Sobol(d=k, scramble=True, seed=EAP_QMC_SEED)
-        u = sobol.random(EAP_QMC_POINTS)
+        u = np.clip(sobol.random(EAP_QMC_POINTS), 1e-12, 1.0 - 1e-12)  # no point on a cube face
         zq = norm.ppf(u)
         z = np.broadcast_to(EAP_QMC_INFLATION * zq, (rows.size,) + zq.shape)
         # importance weights: 1 / proposal density, up to a constant
