@@ -46,7 +46,7 @@ EAP (:func:`eap_estimate_md`)
     ``N(theta_map, (EAP_QMC_INFLATION C)(EAP_QMC_INFLATION C)')`` evaluated at
     :data:`EAP_QMC_POINTS` points of a scrambled Sobol sequence with the fixed seed
     :data:`EAP_QMC_SEED` (``scipy.stats.qmc.Sobol``; quasi-Monte Carlo), so the result is
-    deterministic; its accuracy is about 1e-3 of a posterior SD, not the grid's.
+    deterministic; its accuracy is about 1e-3, not the grid's.
     A fixed grid for every row can be passed instead (``grid``: K increasing axes, one
     product grid, the rectangle rule), as the one-dimensional :func:`~.estimation.eap` does.
 MLE (:func:`mle_estimate_md`)
@@ -114,9 +114,9 @@ EAP_LOG_DROP = 20.0
 #: At most this many Laplace SDs from the mode in each direction of an axis.
 EAP_MAX_REACH = 40
 #: Sobol points (a power of two) of the K > 3 EAP, their fixed seed and the proposal's spread.
-EAP_QMC_POINTS = 4096
+EAP_QMC_POINTS = 8192
 EAP_QMC_SEED = 20_251_205
-EAP_QMC_INFLATION = 1.5
+EAP_QMC_INFLATION = 1.3
 #: Answer slots x points x categories evaluated at once (memory only; results do not depend on it).
 _CELLS = 4_000_000
 _MAX_ITERATIONS = 200
@@ -780,6 +780,17 @@ def _laplace(data: _Data, prior: _Prior, rows):
     return sub, sub_prior, mode, np.linalg.cholesky(cov)
 
 
+def _proposal_points(k: int):
+    """Points of the K > 3 EAP's proposal, the normal ``N(0, I)`` in units of the scale
+    ``EAP_QMC_INFLATION C``, at a scrambled Sobol sequence with a fixed seed (inverse normal
+    CDF of each coordinate).  Returns the points (N, K) and their log density up to a
+    constant."""
+    sobol = qmc.Sobol(d=k, scramble=True, seed=EAP_QMC_SEED)
+    u = np.clip(sobol.random(EAP_QMC_POINTS), 1e-12, 1.0 - 1e-12)  # no point on a cube face
+    z = norm.ppf(u)
+    return z, -0.5 * np.sum(z * z, axis=1)
+
+
 def _reach(data: _Data, rows, mode, chol, top, prior: _Prior, axis: int, sign: float) -> np.ndarray:
     """Whole steps of ``sign * C e_axis`` from the mode until the log posterior is
     :data:`EAP_LOG_DROP` below ``top`` (at most :data:`EAP_MAX_REACH`), per row."""
@@ -818,12 +829,10 @@ def _eap_adaptive(data: _Data, prior: _Prior, points_per_dimension: int):
         z = _product_points(axes)  # (B, N, K), the same volume per point within a row
         log_weights = None
     else:
-        sobol = qmc.Sobol(d=k, scramble=True, seed=EAP_QMC_SEED)
-        u = np.clip(sobol.random(EAP_QMC_POINTS), 1e-12, 1.0 - 1e-12)  # no point on a cube face
-        zq = norm.ppf(u)
+        zq, log_density = _proposal_points(k)
         z = np.broadcast_to(EAP_QMC_INFLATION * zq, (rows.size,) + zq.shape)
         # importance weights: 1 / proposal density, up to a constant
-        log_weights = np.broadcast_to(0.5 * np.sum(zq * zq, axis=1), (rows.size, zq.shape[0]))
+        log_weights = np.broadcast_to(-log_density, (rows.size, zq.shape[0]))
     for part in _chunks(rows.size, max(1, _CELLS // (z.shape[1] * 8 * k))):
         pts = mode[part][:, None, :] + _matvec(chol[part][:, None], z[part])
         lp = _points_log_posterior(sub, local[part], pts, sub_prior)
