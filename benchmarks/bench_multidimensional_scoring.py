@@ -10,7 +10,8 @@ Rows: seconds and tracemalloc peak of
   (b) the same items with K = 1 (M3PL, slope a, intercept -a b) through
       irt/multidimensional_estimation.py: MAP, EAP (adaptive grid, 81 points), MLE;
   (c) a two-dimensional M3PL bank (simple structure plus 30% items on both dimensions,
-      prior correlation 0.6): MAP, EAP (adaptive grid, 31 x 31 points), MLE;
+      prior correlation 0.6): MAP, EAP (adaptive grid, 31 x 31 points), EAP on one fixed
+      61 x 61 grid over [-6, 6]^2 (``grid=``, one table of log probabilities), MLE;
 and the ratio of each multidimensional row to the one-dimensional row of its method.
 """
 
@@ -91,14 +92,17 @@ def main():
     rows["K=1 MLE"] = timed(lambda: me.mle_estimate_md(one_md, items1, resp1))
     rows["K=2 MAP"] = timed(lambda: me.map_estimate_md(two, items2, resp2, prior_covariance=corr))
     rows["K=2 EAP"] = timed(lambda: me.eap_estimate_md(two, items2, resp2, prior_covariance=corr))
+    axis = np.linspace(-6.0, 6.0, 61)
+    rows["K=2 EAP 61x61"] = timed(lambda: me.eap_estimate_md(two, items2, resp2, prior_covariance=corr,
+                                                             grid=[axis, axis]))
     rows["K=2 MLE"] = timed(lambda: me.mle_estimate_md(two, items2, resp2, prior_covariance=corr))
 
     print(f"{n} persons x {length} items, bank of {n_items} items (M3PL)")
-    print(f"{'run':<16} {'seconds':>9} {'peak MiB':>9} {'ms/person':>10} {'x 1-D':>7}")
+    print(f"{'run':<18} {'seconds':>9} {'peak MiB':>9} {'ms/person':>10} {'x 1-D':>7}")
     for name, (seconds, peak) in rows.items():
-        method = name.split()[-1]
+        method = name.split()[1] if name.startswith("K=") else name.split()[-1]
         base = rows.get(f"1-D engine {method}", rows["1-D engine MAP"])[0]
-        print(f"{name:<16} {seconds:9.2f} {peak:9.1f} {1000 * seconds / n:10.3f} {seconds / base:7.1f}")
+        print(f"{name:<18} {seconds:9.2f} {peak:9.1f} {1000 * seconds / n:10.3f} {seconds / base:7.1f}")
 
 
 if __name__ == "__main__":

@@ -320,14 +320,20 @@ def test_four_dimensions_eap_by_quasi_monte_carlo_matches_one_dimensional_integr
     np.testing.assert_array_equal(again.theta, result.theta)  # a fixed Sobol sequence: deterministic
 
 
-@pytest.mark.parametrize("method", ["map", "mle", "eap"])
+@pytest.mark.parametrize("method", ["map", "mle", "eap", "eap on a fixed grid"])
 def test_each_row_alone_gives_the_batch_result_bit_for_bit(method):
     items, responses = padded(PATTERNS)
     items[0, 5:], responses[0, 5:] = -1, -1
-    whole = me.estimate_md(PARAMS, items, responses, method)
+    axis = np.linspace(-5.0, 5.0, 41)
+
+    def score(i, r):
+        if method == "eap on a fixed grid":
+            return me.eap_estimate_md(PARAMS, i, r, grid=[axis, axis])
+        return me.estimate_md(PARAMS, i, r, method)
+    whole = score(items, responses)
     for row in range(len(PATTERNS)):
         width = 5 if row == 0 else items.shape[1]
-        alone = me.estimate_md(PARAMS, items[row:row + 1, :width], responses[row:row + 1, :width], method)
+        alone = score(items[row:row + 1, :width], responses[row:row + 1, :width])
         np.testing.assert_array_equal(alone.theta[0], whole.theta[row])
         np.testing.assert_array_equal(alone.covariance[0], whole.covariance[row])
 

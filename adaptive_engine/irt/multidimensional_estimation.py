@@ -78,6 +78,7 @@ from typing import NamedTuple
 
 import attrs
 import numpy as np
+from scipy import sparse
 from scipy.special import log_expit
 from scipy.stats import norm, qmc
 
@@ -506,25 +507,24 @@ def _start_search(data: _Data, prior: _Prior) -> np.ndarray:
 def _shared_points_log_likelihood(data: _Data, rows, points) -> np.ndarray:
     """Log-likelihood of each row at the same points (N, K) -> (B, N).
 
-    One table of log probabilities of the items these rows answered at the points, looked
-    up per answer and summed one answer at a time (each value depends only on its item
-    and point, so a row's result does not depend on the others)."""
+    One table of log probabilities of the items these rows answered at the points (rows
+    ``item * C + category``), summed per row by a sparse selection product, as the
+    one-dimensional EAP does: scipy adds a row's table rows in the order of its answers, so
+    a row's sum depends on its own answers alone."""
     items, resp, answered = data.items[rows], data.responses[rows], data.answered[rows]
     n_pts = points.shape[0]
-    out = np.zeros((rows.size, n_pts))
     if not answered.any():
-        return out
+        return np.zeros((rows.size, n_pts))
     used = np.unique(items[answered])
     table = md.log_probabilities(*md.outer(data.params.take(used), points))  # (U, N, C)
-    where = np.searchsorted(used, np.where(answered, items, used[0]))
-    cats = np.where(answered, resp, 0)
-    per_row = max(1, items.shape[1]) * n_pts
-    point_index = np.arange(n_pts)[None, None, :]
-    for part in _chunks(rows.size, _CELLS // per_row):
-        lp = table[where[part][:, :, None], point_index, cats[part][:, :, None]]  # (B, L, N)
-        lp = np.where(answered[part][:, :, None], lp, 0.0)
-        out[part] = _row_sum(np.moveaxis(lp, 1, -1))
-    return out
+    n_used, _, n_cat = table.shape
+    # categories an item lacks are never looked up; 0 keeps the table finite
+    flat = np.ascontiguousarray(np.where(np.isfinite(table), table, 0.0).transpose(0, 2, 1)).reshape(-1, n_pts)
+    lookup = np.searchsorted(used, items) * n_cat + resp
+    counts = answered.sum(axis=1)
+    indptr = np.concatenate([[0], np.cumsum(counts)])
+    select = sparse.csr_array((np.ones(int(indptr[-1])), lookup[answered], indptr), shape=(rows.size, n_used * n_cat))
+    return np.asarray(select @ flat)
 
 
 class _Answers(NamedTuple):
@@ -728,6 +728,23 @@ def _moments(log_post, points, log_weights=None):
     return mean, 0.5 * (cov + np.swapaxes(cov, -1, -2))
 
 
+def _shared_moments(log_post, points):
+    """:func:`_moments` for points (N, K) shared by every row: sums over the points by
+    ``einsum`` without BLAS (its loop for one row does not depend on the others), the
+    covariance as ``E[x x'] - E[x] E[x]'`` (as the one-dimensional posterior_mean_sd)."""
+    lw = log_post - np.max(log_post, axis=1, keepdims=True)
+    w = np.exp(np.maximum(lw, -700.0))
+    total = np.einsum("bn->b", w)
+    k = points.shape[1]
+    mean = np.stack([np.einsum("bn,n->b", w, points[:, i]) for i in range(k)], axis=1) / total[:, None]
+    cov = np.empty(mean.shape + (k,))
+    for i in range(k):
+        for j in range(i, k):
+            second = np.einsum("bn,n->b", w, points[:, i] * points[:, j]) / total
+            cov[:, i, j] = cov[:, j, i] = second - mean[:, i] * mean[:, j]
+    return mean, cov
+
+
 def _product_points(axes) -> np.ndarray:
     """Product grid of K axes (each (B, n_k)) as points (B, N, K)."""
     b = axes[0].shape[0]
@@ -759,7 +776,7 @@ def _eap_fixed(data: _Data, prior: _Prior, axes):
     for part in _chunks(n, max(1, _CELLS // (points.shape[0] * k * k))):
         pts = np.broadcast_to(points, (theta[part].shape[0],) + points.shape)
         log_post = log_lik[part] - 0.5 * _quadratic(prior.precision[part], pts - prior.mean[part][:, None, :])
-        theta[part], cov[part] = _moments(log_post, pts)
+        theta[part], cov[part] = _shared_moments(log_post, points)
     # a posterior narrower than the grid piles onto one point: the least SD a grid can tell
     # apart is step / sqrt(12) (as in the one-dimensional posterior.resolution_floor)
     floor = np.array([(ax[-1] - ax[0]) / (ax.size - 1) / np.sqrt(12.0) for ax in axes])
