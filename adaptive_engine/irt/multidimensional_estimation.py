@@ -79,8 +79,7 @@ from typing import NamedTuple
 import attrs
 import numpy as np
 from scipy import sparse
-from scipy.special import log_expit
-from scipy.stats import norm, qmc
+from scipy.special import log_expit, ndtri
 
 from ..errors import AdaptiveEngineError, Problem, ResponseDataError
 from . import multidimensional as md
@@ -802,9 +801,11 @@ def _proposal_points(k: int):
     ``EAP_QMC_INFLATION C``, at a scrambled Sobol sequence with a fixed seed (inverse normal
     CDF of each coordinate).  Returns the points (N, K) and their log density up to a
     constant."""
+    from scipy.stats import qmc  # imported here: scipy.stats takes most of a second to import
+
     sobol = qmc.Sobol(d=k, scramble=True, seed=EAP_QMC_SEED)
     u = np.clip(sobol.random(EAP_QMC_POINTS), 1e-12, 1.0 - 1e-12)  # no point on a cube face
-    z = norm.ppf(u)
+    z = ndtri(u)  # the inverse normal CDF
     return z, -0.5 * np.sum(z * z, axis=1)
 
 
