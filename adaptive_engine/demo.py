@@ -91,7 +91,9 @@ def run_demo(*, out_dir: str | Path = "demo_output", examinees: int = 1000, seed
         row = survey_bank.index_of[item["item_id"]]
         p = probabilities(survey_bank.params.take(np.array([row])), np.array([true_theta]))[0]
         answer = int(rng.choice(p.size, p=p / p.sum()))
-        say(f"   {position:>2}. {item['item_id']:<6} {item['label'][:55]:<55} -> {answer}")
+        labels = survey_bank.category_labels_of(row)
+        meaning = f" ({labels[answer]})" if labels else ""
+        say(f"   {position:>2}. {item['item_id']:<6} {item['label'][:55]:<55} -> {answer}{meaning}")
         return str(answer)
 
     result = try_session(survey, survey_bank, ask=ask, tell=say, seed=seed)

@@ -105,6 +105,13 @@ SURVEY_RESPONSES_SEED = 20_240_614
 OPERATOR_RESPONSES = ("meridian_valley_responses.csv", 300, 30, "MV-CAND")
 SURVEY_RESPONSES = ("staff_climate_responses.csv", 600, 40, "SC-RESP")
 DECIMALS = 3
+#: What the survey's five response categories 0..4 mean (stored with every survey item).
+SURVEY_CATEGORY_LABELS = ["strongly disagree", "disagree", "neither agree nor disagree", "agree", "strongly agree"]
+#: The second (invented) licensing form for ``link``: file, seed, anchors shared with the
+#: operational bank, new items, and the scale it was calibrated on relative to the bank's
+#: (theta_form = (theta_bank - SHIFT) / SLOPE).
+NEW_FORM = ("meridian_valley_new_form.csv", 20_240_616, 24, 16)
+NEW_FORM_SCALE = (1.15, 0.3)
 
 OPERATOR_AREAS = {
     # area: (id code, mean difficulty, topics)
@@ -407,9 +414,46 @@ def make_survey_bank(seed: int = SURVEY_SEED) -> ItemBank:
             records.append({
                 "item_id": f"SC-{number:02d}", "model": model, "a": _round(a),
                 "thresholds": [_round(t) for t in thresholds], "area": area,
-                "status": "operational", "label": statement,
+                "status": "operational", "label": statement, "category_labels": SURVEY_CATEGORY_LABELS,
             })
     return bank_from_records(records, scaling=1.0, name="staff_climate_survey")
+
+
+def make_new_form(operator: ItemBank) -> ItemBank:
+    """A small second licensing form that shares anchor items with ``operator``.
+
+    The form's parameters are on its own scale, as if it had been calibrated on its own
+    group of candidates: theta_form = (theta_bank - shift) / slope, so a_form = slope * a
+    and b_form = (b - shift) / slope, with a little estimation noise.  One anchor drifted
+    (its difficulty moved by 0.8 on the bank's scale); the other items are new.  ``link``
+    recovers the slope and shift from the anchors.
+    """
+    _, seed, n_anchors, n_new = NEW_FORM
+    slope, shift = NEW_FORM_SCALE
+    rng = np.random.default_rng(seed)
+    dichotomous = np.flatnonzero((operator.status == "operational") & np.isin(operator.model, ["2PL", "3PL"]))
+    anchors = np.sort(rng.choice(dichotomous, size=n_anchors, replace=False))
+    records = []
+    for j, i in enumerate(anchors):
+        b = float(operator.b[i]) + (0.8 if j == 0 else rng.normal(0.0, 0.05))
+        records.append({
+            "item_id": str(operator.item_ids[i]), "model": str(operator.model[i]),
+            "a": _round(slope * operator.a[i] * np.exp(rng.normal(0.0, 0.03))),
+            "b": _round((b - shift) / slope), "c": _round(operator.c[i]),
+            "area": str(operator.area[i]), "status": "operational",
+            "label": str(operator.label[i]),
+        })
+    areas = list(operator.areas)
+    for k in range(n_new):
+        area = areas[k % len(areas)]
+        code = OPERATOR_AREAS[area][0]
+        rec = _operator_item(rng, "3PL", OPERATOR_AREAS[area][1])
+        rec.update(item_id=f"MV-{code}-N{k + 1:02d}", area=area, status="operational",
+                   label=f"{OPERATOR_AREAS[area][2][k % 20]}: new form item")
+        rec["b"] = _round((rec["b"] - shift) / slope)
+        rec["a"] = _round(slope * rec["a"])
+        records.append(rec)
+    return bank_from_records(records, scaling=1.0, name="meridian_valley_new_form")
 
 
 def simulate_responses(bank: ItemBank, n_persons: int, n_items: int, prefix: str,
@@ -445,7 +489,7 @@ def simulate_responses(bank: ItemBank, n_persons: int, n_items: int, prefix: str
 
 
 def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
-    """Write the six demo bank files and the two response files into ``out_dir``.
+    """Write the six demo bank files, the second licensing form and the two response files into ``out_dir``.
 
     Returns the paths written.
 
@@ -462,6 +506,7 @@ def make_demo_banks(out_dir: str | Path = HERE) -> list[Path]:
     for bank in (operator, survey, make_operator_2d_bank()):
         for suffix in (".csv", ".json"):
             written.append(write_bank(bank, out_dir / f"{bank.name}{suffix}"))
+    written.append(write_bank(make_new_form(operator), out_dir / NEW_FORM[0]))
     for bank, (name, n_persons, n_items, prefix), seed in (
             (operator, OPERATOR_RESPONSES, OPERATOR_RESPONSES_SEED),
             (survey, SURVEY_RESPONSES, SURVEY_RESPONSES_SEED)):

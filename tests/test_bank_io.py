@@ -24,6 +24,7 @@ SCHEMA = REPO / "adaptive_engine" / "bank" / "schema" / "item_bank.schema.json"
 DEMO_FILES = ["meridian_valley_operator.csv", "meridian_valley_operator.json",
               "staff_climate_survey.csv", "staff_climate_survey.json",
               "meridian_valley_operator_2d.csv", "meridian_valley_operator_2d.json",
+              "meridian_valley_new_form.csv",
               "meridian_valley_responses.csv", "staff_climate_responses.csv"]
 
 

@@ -55,7 +55,7 @@ def test_calibrate_survey_with_template(tmp_path, survey):
     out = tmp_path / "calibrated.json"
     report = tmp_path / "items.csv"
     res = runner.invoke(main, ["calibrate", str(responses), "--template", str(template), "--out", str(out),
-                               "--fit-report", str(report)])
+                               "--fit-report", str(report), "--json"])
     assert res.exit_code == 0, res.output
     summary = json.loads(res.output)
     assert summary["converged"] and summary["items"] == 12
@@ -104,7 +104,7 @@ def test_link_cli_on_meridian_valley_items(tmp_path):
     write_bank(base, base_path)
     write_bank(new, new_path)
     res = CliRunner().invoke(main, ["link", str(new_path), "--to", str(base_path), "--method", "haebara",
-                                    "--out", str(out)])
+                                    "--out", str(out), "--json"])
     assert res.exit_code == 0, res.output
     summary = json.loads(res.output)
     assert summary["slope"] == pytest.approx(1.1, abs=1e-4)
@@ -163,13 +163,13 @@ def test_max_iterations_is_a_hard_cap_and_not_converged_exits_3(tmp_path, cap):
     answers = _few_item_answers(tmp_path / "answers.csv")
     out = tmp_path / "b.csv"
     res = CliRunner().invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(out),
-                                    "--max-iterations", str(cap), "--tolerance", "1e-12"])
+                                    "--max-iterations", str(cap), "--tolerance", "1e-12", "--json"])
     assert res.exit_code == 3, res.output
     summary = json.loads(res.stdout)
     assert summary["iterations"] <= cap and summary["converged"] is False
     assert f"warning: not converged after {summary['iterations']} EM cycles" in res.stderr
     assert out.exists()  # the estimate is written; the exit code tells the caller it is not final
-    res = CliRunner().invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(out)])
+    res = CliRunner().invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(out), "--json"])
     assert res.exit_code == 0 and json.loads(res.stdout)["converged"] and not res.stderr
 
 
@@ -177,7 +177,7 @@ def test_summary_prints_standard_errors_per_parameter(tmp_path):
     answers = _few_item_answers(tmp_path / "answers.csv", n=400)
     report = tmp_path / "fit.csv"
     res = CliRunner().invoke(main, ["calibrate", str(answers), "--model", "2PL", "--out", str(tmp_path / "b.csv"),
-                                    "--fit-report", str(report)])
+                                    "--fit-report", str(report), "--json"])
     assert res.exit_code == 0, res.output
     ses = json.loads(res.stdout)["standard_errors"]
     assert set(ses) == {"a", "b"}

@@ -162,10 +162,10 @@ def test_session_show_on_the_command_line_prints_them(tmp_path):
     db = str(tmp_path / "s.db")
     runner = CliRunner()
     out = runner.invoke(main, ["session", "start", "--db", db, "--design", str(SURVEY_DESIGN),
-                               "--bank", str(SURVEY_BANK), "--seed", "5"])
+                               "--bank", str(SURVEY_BANK), "--seed", "5", "--json"])
     assert out.exit_code == 0, out.output
     session_id = json.loads(out.output)["session_id"]
-    out = runner.invoke(main, ["session", "show", session_id, "--db", db])
+    out = runner.invoke(main, ["session", "show", session_id, "--db", db, "--json"])
     assert out.exit_code == 0, out.output
     shown = json.loads(out.output)
     assert shown["decision_rules_version"] == decision_rules.DECISION_RULES_VERSION

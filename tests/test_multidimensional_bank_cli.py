@@ -33,7 +33,10 @@ NAMES = ("treatment_operations", "regulation_and_safety")
 
 
 def run(*args):
-    return CliRunner().invoke(main, [str(a) for a in args], catch_exceptions=False)
+    args = [str(a) for a in args]
+    if args[:2] == ["bank", "curves"] and "--format" not in args and "--help" not in args:
+        args += ["--format", "csv"]  # the full-precision CSV these tests read (people get a table)
+    return CliRunner().invoke(main, args, catch_exceptions=False)
 
 
 def parse_csv(text):
@@ -278,8 +281,6 @@ def test_summed_information_works_in_blocks_of_items(monkeypatch, exam):
      "bank meridian_valley_operator_2d: the bank has 2 ability dimensions"),
     (["simulate", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D, "--examinees", "5",
       "--out", "OUT"], "the bank has 2 ability dimensions"),
-    (["calibrate", "RESPONSES", "--template", EXAM_2D, "--out", "OUT.json"],
-     "--template: bank meridian_valley_operator_2d holds multidimensional models"),
     (["link", EXAM_2D, "--to", REPO / "item_banks" / "meridian_valley_operator.json", "--out", "OUT.json"],
      "BANK: bank meridian_valley_operator_2d holds multidimensional models"),
 ])

@@ -122,6 +122,7 @@ def test_json_records_carry_vectors_and_the_covariance(files):
     assert first["dimensions"] == NAMES.split(",")
     assert len(first["theta"]) == 2 and len(first["se"]) == 2
     assert first["se"][0] == pytest.approx(np.sqrt(first["covariance"][0][0]), rel=1e-12)
+    assert run("score", bank, answers, "--method", "map", "--json", "--dimensions", NAMES).output == result.output
 
 
 def test_correlated_prior_moves_the_second_dimension(files):
@@ -158,7 +159,7 @@ def test_mle_reports_where_it_does_not_exist(files):
     (["--prior-covariance", "100,0;0,1"], "--prior-covariance: the prior variance of dimension 1 must lie"),
     (["--prior-sd", "2"], "--prior-sd: the bank has K = 2 dimensions: give the prior's spread with "
                           "--prior-covariance"),
-    (["--prior-mean", "a,b"], "Invalid value for '--prior-mean'"),
+    (["--prior-mean", "a,b"], "--prior-mean: 'a,b' is not a number or a comma-separated list"),
 ])
 def test_bad_options_are_refused_by_flag(files, args, fragment):
     bank, answers = files

@@ -175,7 +175,7 @@ def test_pretest_cli(tmp_path):
     runner = CliRunner()
     res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", bank_id,
                                "--out", str(out), "--report", str(report), "--min-answers", "150",
-                               "--max-se", "0.6", "--min-fit-p", "0.001"])
+                               "--max-se", "0.6", "--min-fit-p", "0.001", "--json"])
     assert res.exit_code == 0, res.output
     summary = json.loads(res.stdout)
     assert summary["pretest_items"] == 4 and summary["sessions"] == 400
@@ -199,7 +199,8 @@ def test_pretest_cli(tmp_path):
     # nothing ready: no bank file, a warning on stderr, the report still written
     none_out, none_report = tmp_path / "none.json", tmp_path / "none.csv"
     res = runner.invoke(main, ["pretest", "calibrate", "--db", str(path), "--bank-id", bank_id,
-                               "--out", str(none_out), "--report", str(none_report), "--min-answers", "100000"])
+                               "--out", str(none_out), "--report", str(none_report), "--min-answers", "100000",
+                               "--json"])
     assert res.exit_code == 0, res.output
     assert not none_out.exists() and none_report.exists()
     assert "warning: no pretest item is ready" in res.stderr and json.loads(res.stdout)["out"] is None
@@ -342,7 +343,7 @@ def test_pretest_calibration_of_real_live_sessions(tmp_path):
     out, report = tmp_path / "pretest.json", tmp_path / "pretest.csv"
     res = CliRunner().invoke(main, ["pretest", "calibrate", "--db", str(store_path), "--bank-id",
                                     result.summary["bank_id"], "--out", str(out), "--report", str(report),
-                                    "--min-answers", "150", "--max-se", "0.5", "--include-not-ready"])
+                                    "--min-answers", "150", "--max-se", "0.5", "--include-not-ready", "--json"])
     assert res.exit_code == 0, res.output
     summary = json.loads(res.stdout)
     assert summary["sessions"] == n_sessions and summary["pretest_items"] == 2

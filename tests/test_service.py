@@ -200,6 +200,49 @@ def test_a_resent_answer_gets_the_identical_reply_and_is_stored_once(service):
         assert len(store.answers(first["session_id"])) == 1
 
 
+def test_a_retried_start_with_an_idempotency_key_returns_the_same_session(service):
+    # the retry pattern of the IETF HTTP API draft "The Idempotency-Key HTTP Header Field"
+    # (draft-ietf-httpapi-idempotency-key-header; status codes from memory): a start whose reply
+    # was lost is sent again with the same key and must not open a second session
+    key = {"Idempotency-Key": "exam-app-attempt-7f3a"}
+    first = service.client.post("/v1/sessions", headers={**service.delivery, **key},
+                                json={"release": "meridian-short", "examinee": "MV-retry-01", "seed": 5})
+    assert first.status_code == 201, first.text
+    sessions_before = service.dump()
+    again = service.client.post("/v1/sessions", headers={**service.delivery, **key},
+                                json={"release": "meridian-short", "examinee": "MV-retry-01", "seed": 5})
+    assert again.status_code == 200 and again.headers["idempotent-replayed"] == "true"
+    body, first_body = again.json(), first.json()
+    for field in ("session_id", "item_id", "item", "theta", "se", "items_given", "done"):
+        assert body[field] == first_body[field], field
+    assert again.headers["location"] == first.headers["location"]
+    assert service.dump() == sessions_before  # nothing new was written
+    # after an answer, a retry shows where the session stands (as a page reload would)
+    service.answer(first_body["session_id"], first_body["item_id"], 1)
+    later = service.client.post("/v1/sessions", headers={**service.delivery, **key},
+                                json={"release": "meridian-short", "examinee": "MV-retry-01"})
+    assert later.status_code == 200 and later.json()["items_given"] == 1
+    # the same key for another examinee is a mistake of the app: 422, nothing written
+    before = service.dump()
+    assert_problem(service.client.post("/v1/sessions", headers={**service.delivery, **key},
+                                       json={"release": "meridian-short", "examinee": "MV-retry-02"}),
+                   422, field="Idempotency-Key", code="idempotency_key_reused")
+    assert service.dump() == before
+    # the key belongs to the token: another token's same key starts its own session
+    other = service.client.post("/v1/sessions", headers={**service.admin, **key},
+                                json={"release": "meridian-short", "examinee": "MV-retry-01", "seed": 5})
+    assert other.status_code == 201 and other.json()["session_id"] != first_body["session_id"]
+
+
+@pytest.mark.parametrize("key", ["", "has space", "x" * 256, "caf\u00e9".encode()])
+def test_a_bad_idempotency_key_gets_422(service, key):
+    before = service.dump()
+    response = service.client.post("/v1/sessions", headers={**service.delivery, "Idempotency-Key": key},
+                                   json={"release": "meridian-short", "examinee": "MV-retry-03"})
+    assert_problem(response, 422, field="Idempotency-Key")
+    assert service.dump() == before
+
+
 def test_a_conflicting_answer_gets_409_and_changes_nothing(service):
     first = service.start(seed=8).json()
     second = service.answer(first["session_id"], first["item_id"], 1).json()
@@ -415,6 +458,32 @@ def test_no_token_file_no_service(tmp_path):
     (tmp_path / "secret.toml").write_text('[[token]]\nname = "x"\nrole = "admin"\nsecret = "abc"\n')
     with pytest.raises(TokenFileError, match="secrets are never stored"):
         create_app(ServiceSettings(store=str(tmp_path / "s.db"), tokens=str(tmp_path / "secret.toml")))
+
+
+def _add_token_when_released(path, name, barrier):
+    barrier.wait()
+    for k in range(5):
+        new_token(path, name=f"{name}-{k}", role="delivery")
+
+
+def test_tokens_added_at_once_by_several_processes_are_all_kept(tmp_path):
+    # a read-modify-write race: without a lock, two processes read the same old file and the
+    # later rename drops the other's token (seen with two `token new` at once)
+    import multiprocessing
+
+    path = tmp_path / "tokens.toml"
+    ctx = multiprocessing.get_context("fork")
+    barrier = ctx.Barrier(6)
+    workers = [ctx.Process(target=_add_token_when_released, args=(str(path), f"app{i}", barrier)) for i in range(6)]
+    for w in workers:
+        w.start()
+    for w in workers:
+        w.join(60)
+        assert w.exitcode == 0
+    from adaptive_engine.live.tokens import read_tokens
+
+    names = sorted(t.name for t in read_tokens(path).tokens)
+    assert names == sorted(f"app{i}-{k}" for i in range(6) for k in range(5))
 
 
 def test_token_file_digests_are_sha256_of_the_secret(tmp_path):

@@ -40,7 +40,7 @@ def test_without_the_service_extra(tmp_path):
     bank = str(ROOT / "item_banks" / "meridian_valley_operator.csv")
     commands = [
         ["release", "publish", design, "--bank", bank, "--name", "meridian", "--store", "s.db"],
-        ["session", "start", "--release", "meridian", "--db", "s.db", "--seed", "1"],
+        ["session", "start", "--release", "meridian", "--db", "s.db", "--seed", "1", "--json"],
         ["token", "new", "--name", "app", "--role", "delivery", "--tokens", "t.toml"],
         ["serve", "--store", "s.db", "--tokens", "t.toml"],
         ["session", "list", "--db", "postgresql://nobody@127.0.0.1:1/none"],

@@ -133,7 +133,7 @@ def _refused_start(db, opened, go, mode, out):
 
 def _good_start(db, out):
     out.put(("good", *_cli(["session", "start", "--db", db, "--design", str(DESIGN_PATH),
-                            "--bank", str(BANK_PATH), "--seed", "3"])))
+                            "--bank", str(BANK_PATH), "--seed", "3", "--json"])))
 
 
 @pytest.mark.skipif("fork" not in multiprocessing.get_all_start_methods(), reason="needs the fork start method")

@@ -461,6 +461,7 @@ def test_demo_runs(tmp_path, monkeypatch):
     assert r.exit_code == 0, r.output
     assert (tmp_path / "demo_output" / "report.html").exists()
     assert "staff-climate" in r.output and "stopped:" in r.output
+    assert "agree)" in r.output  # each answer with its category label (every survey label says agree)
     assert "Exposure section says why" in r.output  # the shipped design misses 0.25; the demo says so
 
 

@@ -20,8 +20,10 @@ INTERCEPT_COLUMN = re.compile(r"^intercept([1-9][0-9]{0,8})\Z")
 #: The other columns of the CSV / SQLite formats (and fields of a JSON item).
 NAMED_COLUMNS = frozenset({
     "item_id", "model", "a", "b", "c", "d", "area", "item_set", "enemy_group",
-    "status", "label", "intercept",
+    "status", "label", "intercept", "category_labels",
 })
+#: Separator of the category labels in a CSV or SQLite field (``strongly disagree|...``).
+CATEGORY_LABEL_SEPARATOR = "|"
 
 
 def numbered_column(name: str) -> bool:

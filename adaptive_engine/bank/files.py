@@ -36,14 +36,14 @@ from ..errors import BankError, Problem
 from ..files import atomic_write, check_input_file, write_text
 from ..irt import models
 from . import multidimensional as md
-from .fields import known_column, slope_column_problems
+from .fields import CATEGORY_LABEL_SEPARATOR, known_column, slope_column_problems
 from .item_bank import MAX_BANK_FILE_BYTES, ItemBank, bank_from_records
 from .multidimensional import ONE_DIMENSION_NAME
 
 #: Columns before and after the threshold columns b1..bK, in file order.
 LEADING_COLUMNS = ("item_id", "model", "a", "b", "c", "d")
 TRAILING_COLUMNS = ("area", "item_set", "enemy_group", "status", "label")
-_TEXT_COLUMNS = ("item_id", "model", *TRAILING_COLUMNS)
+_TEXT_COLUMNS = ("item_id", "model", *TRAILING_COLUMNS, "category_labels")
 _SQLITE_SUFFIXES = (".db", ".sqlite", ".sqlite3")
 ENEMY_SEPARATOR = ";"
 
@@ -62,9 +62,23 @@ def csv_columns(bank: ItemBank) -> list[str]:
         return ["item_id", "model", *(f"a{j}" for j in range(1, bank.n_dimensions + 1)),
                 *(["intercept"] if not graded.all() else []),
                 *(f"intercept{j}" for j in range(1, m_max + 1)),
-                *(["c"] if np.any(bank.model == "M3PL") else []), *TRAILING_COLUMNS]
+                *(["c"] if np.any(bank.model == "M3PL") else []), *TRAILING_COLUMNS, *_label_column(bank)]
     k_max = bank.thresholds.shape[1]
-    return [*LEADING_COLUMNS, *(f"b{j}" for j in range(1, k_max + 1)), *TRAILING_COLUMNS]
+    return [*LEADING_COLUMNS, *(f"b{j}" for j in range(1, k_max + 1)), *TRAILING_COLUMNS, *_label_column(bank)]
+
+
+def _label_column(bank: ItemBank) -> list[str]:
+    """``category_labels`` when some item has them (other banks keep their columns)."""
+    return ["category_labels"] if bank.category_labels else []
+
+
+def _category_label_text(bank: ItemBank, i: int) -> str:
+    labels = bank.category_labels_of(i)
+    bad = [v for v in labels if CATEGORY_LABEL_SEPARATOR in v]
+    if bad:
+        raise BankError(f"category label {bad[0]!r} contains {CATEGORY_LABEL_SEPARATOR!r}, which the CSV and "
+                        "SQLite formats use to separate labels", location=f"item {bank.item_ids[i]}")
+    return CATEGORY_LABEL_SEPARATOR.join(labels)
 
 
 def stated_dimension_names(bank: ItemBank) -> list[str] | None:
@@ -103,6 +117,8 @@ def flat_rows(bank: ItemBank) -> list[dict]:
         row.update(area=str(bank.area[i]), item_set=str(bank.item_set[i]),
                    enemy_group=_enemy_text(bank, i), status=str(bank.status[i]),
                    label=str(bank.label[i]))
+        if bank.category_labels:
+            row["category_labels"] = _category_label_text(bank, i)
         rows.append(row)
     return rows
 
@@ -125,6 +141,8 @@ def _multidimensional_flat_rows(bank: ItemBank) -> list[dict]:
         row.update(area=str(bank.area[i]), item_set=str(bank.item_set[i]),
                    enemy_group=_enemy_text(bank, i), status=str(bank.status[i]),
                    label=str(bank.label[i]))
+        if bank.category_labels:
+            row["category_labels"] = _category_label_text(bank, i)
         rows.append(row)
     return rows
 
@@ -162,6 +180,8 @@ def bank_to_document(bank: ItemBank) -> dict:
         for optional in ("item_set", "enemy_group", "label"):
             if not rec[optional]:
                 del rec[optional]
+        if bank.category_labels_of(i):
+            rec["category_labels"] = list(bank.category_labels_of(i))
         items.append(rec)
     names = stated_dimension_names(bank)
     return {"scaling": float(bank.scaling), "name": str(bank.name),

@@ -120,6 +120,7 @@ class ItemBank:
                                           alias="dimension_names")
     scaling: float = attrs.field(default=1.0, converter=float)
     name: str = ""
+    category_labels: tuple = attrs.field(default=(), converter=lambda x: tuple(tuple(str(v) for v in t) for t in x))
     _cache: dict = attrs.field(factory=dict, repr=False, alias="_cache")
 
     def __attrs_post_init__(self):
@@ -358,7 +359,12 @@ class ItemBank:
             enemy_groups=[self.enemy_groups[i] for i in index],
             status=self.status[index], label=self.label[index], scaling=self.scaling,
             name=self.name,
+            category_labels=[self.category_labels[i] for i in index] if self.category_labels else (),
         )
+
+    def category_labels_of(self, row: int) -> tuple:
+        """The labels of item ``row``'s response categories (0..K-1), or () when it has none."""
+        return self.category_labels[row] if self.category_labels else ()
 
     def to_records(self) -> list[dict]:
         """One plain dict per item (the JSON item format)."""
@@ -410,6 +416,8 @@ def validate_arrays(bank: ItemBank) -> list[Problem]:
             problems.append(Problem("bank", f"field {name!r} has {getattr(bank, name).shape[0]} entries for {n} items"))
     if len(bank.enemy_groups) != n or bank.thresholds.ndim != 2 or bank.thresholds.shape[0] != n:
         problems.append(Problem("bank", "thresholds / enemy_groups do not match the number of items"))
+    if bank.category_labels and len(bank.category_labels) != n:
+        problems.append(Problem("bank", f"category_labels has {len(bank.category_labels)} entries for {n} items"))
     if problems:
         return problems
     if not (math.isfinite(bank.scaling) and bank.scaling > 0):
@@ -445,7 +453,24 @@ def validate_arrays(bank: ItemBank) -> list[Problem]:
         )
         if k and np.any(~np.isnan(bank.thresholds[i, k:])):
             problems.append(Problem(loc, "thresholds have a gap: b1..bK must be consecutive"))
+    if not problems and bank.category_labels:
+        problems += _category_label_problems(bank)
     return problems
+
+
+def _category_label_problems(bank: ItemBank) -> list[Problem]:
+    """Each item's category labels: none, or one non-empty label per category."""
+    out = []
+    for i, labels in enumerate(bank.category_labels):
+        if not labels:
+            continue
+        n_cat = int(bank.n_categories[i])
+        if len(labels) != n_cat:
+            out.append(Problem(f"item {bank.item_ids[i]}", f"category_labels gives {len(labels)} labels for "
+                                                           f"{n_cat} categories (0..{n_cat - 1})"))
+        elif not all(labels):
+            out.append(Problem(f"item {bank.item_ids[i]}", "category_labels has an empty label"))
+    return out
 
 
 def item_problems(model: str, a, b, c, d, thresholds: list, status: str) -> list[str]:
@@ -607,6 +632,7 @@ def bank_from_records(
         item_set=[r["item_set"] for r in rows], enemy_groups=[r["enemy_groups"] for r in rows],
         status=[r["status"] for r in rows], label=[r["label"] for r in rows],
         scaling=scaling, name=name, dimension_names=tuple(dimensions or ()),
+        category_labels=_category_labels(rows),
     )
 
 
@@ -623,7 +649,22 @@ def _common_fields(rec: Mapping[str, Any]) -> dict:
         enemy_groups=groups,
         status=str(rec.get("status") or "operational").strip(),
         label=str(rec.get("label") or "").strip(),
+        category_labels=_category_label_list(rec.get("category_labels")),
     )
+
+
+def _category_label_list(raw) -> tuple:
+    """The category labels of one record: a JSON list, or ``|``-separated text (CSV, SQLite)."""
+    if raw is None or raw == "":
+        return ()
+    if isinstance(raw, (list, tuple)):
+        return tuple(str(v).strip() for v in raw)
+    return tuple(v.strip() for v in str(raw).split(fields.CATEGORY_LABEL_SEPARATOR))
+
+
+def _category_labels(rows: list[dict]) -> tuple:
+    """Every item's category labels, or () when no item has any."""
+    return tuple(r["category_labels"] for r in rows) if any(r["category_labels"] for r in rows) else ()
 
 
 def _multidimensional_bank(rows: list[dict], *, scaling: float, name: str, dimensions) -> ItemBank:
@@ -638,6 +679,7 @@ def _multidimensional_bank(rows: list[dict], *, scaling: float, name: str, dimen
         item_set=[r["item_set"] for r in rows], enemy_groups=[r["enemy_groups"] for r in rows],
         status=[r["status"] for r in rows], label=[r["label"] for r in rows],
         scaling=scaling, name=name, dimension_names=tuple(dimensions or ()),
+        category_labels=_category_labels(rows),
     )
 
 

@@ -106,6 +106,12 @@ def item_type_problems(rec: Mapping[str, Any]) -> list[str]:
             else:
                 out.extend(f"{key}[{j}] must be a JSON number, got {json_kind(v)}"
                            for j, v in enumerate(value) if not is_json_number(v))
+        elif key == "category_labels":
+            if isinstance(value, list):
+                out.extend(f"category_labels[{j}] must be a JSON string, got {json_kind(v)}"
+                           for j, v in enumerate(value) if not isinstance(v, str))
+            else:
+                out.append(f"category_labels must be a list of JSON strings, got {json_kind(value)}")
         elif key == "enemy_group":
             if isinstance(value, list):
                 out.extend(f"enemy_group[{j}] must be a non-empty JSON string, got {json_kind(v)}"

@@ -87,8 +87,8 @@ class ResponseTable:
         if out_of_range.size:
             raise ResponseDataError([
                 Problem(self.location(k),
-                        f"response {int(self.response[k])} is outside item "
-                        f"{self.item_ids[self.item[k]]!r}'s categories 0..{int(ncat[k]) - 1}")
+                        f"response {int(self.response[k])} is outside the categories 0..{int(ncat[k]) - 1} "
+                        f"of item {self.item_ids[self.item[k]]!r}")
                 for k in out_of_range[:50]
             ])
         return idx

@@ -15,6 +15,10 @@ from ..bank.item_bank import ItemBank, canonical_model
 from ..bank.responses import ResponseTable
 from ..errors import CalibrationError, Problem
 from ..irt import models
+from ..irt.multidimensional import MULTIDIMENSIONAL_MODEL_FAMILY
+
+#: category family of every model a template may hold
+_FAMILY = {**models.MODEL_FAMILY, **MULTIDIMENSIONAL_MODEL_FAMILY}
 
 
 def require_one_dimensional(bank: ItemBank, location: str) -> None:
@@ -92,6 +96,7 @@ def prepare_data(
     model: str | None = None,
     template: ItemBank | None = None,
     min_answers: int = 20,
+    multidimensional: bool = False,
 ) -> CalibrationData:
     """Line up a response table with the models to be fitted.
 
@@ -105,6 +110,9 @@ def prepare_data(
         template nobody answered are left out.  ``model``, when also given, overrides it.
     min_answers : int
         Fewest answers an item needs.
+    multidimensional : bool
+        Whether the template may be a bank of multidimensional models (for
+        :mod:`.multidimensional_em`); otherwise such a template is refused.
 
     Raises
     ------
@@ -120,7 +128,8 @@ def prepare_data(
             raise CalibrationError(f"unknown model {model!r} (use one of {', '.join(models.MODEL_FAMILY)})",
                                    location="model")
     if template is not None:
-        require_one_dimensional(template, "--template")
+        if not multidimensional:
+            require_one_dimensional(template, "template")
         bank_rows = table.bank_item_index(template)  # unknown ids / categories: located errors
         used = np.unique(bank_rows)
         item_ids = template.item_ids[used]
@@ -137,7 +146,7 @@ def prepare_data(
         ncat = np.zeros(item_ids.shape[0], dtype=np.int64)
         np.maximum.at(ncat, item, table.response + 1)
         sub_template = None
-    dichotomous = np.array([models.MODEL_FAMILY[m] == models.DICHOTOMOUS for m in models_])
+    dichotomous = np.array([_FAMILY[m] == models.DICHOTOMOUS for m in models_])
     problems = []
     bad = np.flatnonzero(dichotomous[item] & (table.response > 1))
     problems += [Problem(table.location(k), f"response {int(table.response[k])} to item "

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import time
+from typing import TYPE_CHECKING
 
 import attrs
 import numpy as np
@@ -32,6 +33,9 @@ from .data import CalibrationData, prepare_data
 from .item_forms import ItemGroup, category_jacobian
 from .m_step import fisher_steps, shared_slope_step
 from .priors import PriorChoice
+
+if TYPE_CHECKING:  # the multidimensional calibration builds on this module
+    from .multidimensional_em import MultidimensionalCalibrationResult
 
 #: above this many persons x parameters the cross-product matrix is built item by item
 _FULL_CROSS_PRODUCT_LIMIT = 2e7
@@ -74,6 +78,12 @@ class CalibrationSettings:
         The constant D of the output bank.
     min_answers : int
         Fewest answers an item needs.
+    points_per_dimension : int or None
+        Points per dimension of the product grid of a multidimensional calibration (None:
+        41, 21 and 15 for K = 1, 2, 3; :mod:`.multidimensional_em`); not used otherwise.
+    uncorrelated_dimensions : bool
+        Multidimensional calibration: hold the latent correlations at 0 instead of
+        estimating them.
     """
 
     quadrature_points: int = attrs.field(default=61, validator=bounded(5))
@@ -84,6 +94,8 @@ class CalibrationSettings:
     priors: PriorChoice = attrs.field(factory=PriorChoice)
     scaling: float = attrs.field(default=1.0, validator=bounded(0, strict=True))
     min_answers: int = attrs.field(default=20, validator=bounded(1))
+    points_per_dimension: int | None = attrs.field(default=None, validator=attrs.validators.optional(bounded(5)))
+    uncorrelated_dimensions: bool = False
 
     def grid(self) -> tuple[np.ndarray, np.ndarray]:
         """Points (G,) and normalised log weights (G,) of the N(0, 1) population."""
@@ -188,18 +200,43 @@ def calibrate_responses(
     template: ItemBank | None = None,
     settings: CalibrationSettings | None = None,
     name: str = "calibrated",
-) -> CalibrationResult:
+) -> CalibrationResult | MultidimensionalCalibrationResult:
     """Calibrate items from long-format responses (see :func:`calibrate_data`).
 
     ``model="PCM"`` (the partial credit model) is a GPCM whose items share one slope, as
     ``Rasch`` is a 1PL: with the population fixed at N(0, 1) the shared slope takes the
     place of the population SD.
+
+    A template of multidimensional models (M2PL, M3PL, MGRM; K <= 3) gives a confirmatory
+    multidimensional calibration instead, its zero slopes the loading pattern; the result is
+    then a :class:`.multidimensional_em.MultidimensionalCalibrationResult` (with the latent
+    correlations; see :func:`.multidimensional_em.calibrate_multidimensional_responses`).
     """
     settings = settings or CalibrationSettings()
+    if template is not None and template.uses_multidimensional_models:
+        return _calibrate_multidimensional(table, model=model, template=template, settings=settings, name=name)
+    if settings.points_per_dimension is not None or settings.uncorrelated_dimensions:
+        raise CalibrationError(
+            "points_per_dimension and uncorrelated_dimensions are for a multidimensional template (M2PL, M3PL, "
+            "MGRM items); a one-dimensional calibration takes quadrature_points",
+            location="setting points_per_dimension" if settings.points_per_dimension is not None
+            else "setting uncorrelated_dimensions")
     if model is not None and str(model).strip().upper() == "PCM" and not settings.common_slope:
         settings = attrs.evolve(settings, common_slope=True)
     data = prepare_data(table, model=model, template=template, min_answers=settings.min_answers)
     return calibrate_data(data, settings=settings, name=name)
+
+
+def _calibrate_multidimensional(table, *, model, template, settings, name):
+    """Confirmatory multidimensional calibration (:mod:`.multidimensional_em`, imported here
+    because it builds on this module)."""
+    if model is not None:
+        raise CalibrationError(
+            f"a model ({model}) cannot be combined with a multidimensional template: the template gives every "
+            "item its model (M2PL, M3PL or MGRM) and its loading pattern", location="model")
+    from .multidimensional_em import calibrate_multidimensional_responses
+
+    return calibrate_multidimensional_responses(table, template=template, settings=settings, name=name)
 
 
 def calibrate_data(
@@ -267,7 +304,7 @@ def calibrate_data(
         objective = ll + _log_prior_total(groups, current, shared, held, settings)
         return _m_step(groups, current, shared, held, r_all, grid, settings), objective
 
-    etas, iteration, converged, change = _accelerated_cycles(
+    etas, iteration, converged, change = accelerated_cycles(
         cycle, etas, groups, lambda e: _natural(data, groups, e), settings)
     log_table = _log_table(data, groups, etas, grid, settings.scaling)
     _, loglik, posterior = _e_step(answers, log_table, log_prior, data.n_items, c_max)
@@ -339,7 +376,7 @@ def estimate_at_known_abilities(
 # pieces
 
 
-def _accelerated_cycles(cycle, etas, groups, natural_of, settings):
+def accelerated_cycles(cycle, etas, groups, natural_of, settings):
     """Repeat EM cycles until no parameter moves more than the tolerance.
 
     Squared extrapolation (Varadhan & Roland 2008, SQUAREM): from two plain cycles
@@ -350,6 +387,8 @@ def _accelerated_cycles(cycle, etas, groups, natural_of, settings):
     number of cycles several-fold without changing the fixed point.
 
     ``settings.max_iterations`` caps every cycle run, the extrapolation's included.
+    ``groups`` need only ``is_valid(eta)``; ``natural_of`` returns a dict of arrays, compared
+    key by key (the multidimensional calibration passes its own blocks and keys).
 
     Returns
     -------
@@ -540,7 +579,7 @@ def _natural(data, groups, etas) -> dict:
 
 
 def _max_change(old, new) -> float:
-    diffs = [np.nan_to_num(np.abs(new[k] - old[k]), nan=0.0) for k in ("a", "b", "c", "d", "thresholds")]
+    diffs = [np.nan_to_num(np.abs(new[k] - old[k]), nan=0.0) for k in old]
     return float(max((x.max() if x.size else 0.0) for x in diffs))
 
 

@@ -57,6 +57,7 @@ def calibrate_file(
     settings: CalibrationSettings | None = None,
     fit_report=None,
     scaling: float | None = None,
+    dimensions=None,
 ) -> dict:
     """Calibrate a long response CSV and write the bank (and the item report).
 
@@ -64,6 +65,8 @@ def calibrate_file(
     output takes the template's D: a CSV template takes ``scaling``, a JSON/SQLite template
     keeps its own and a disagreeing ``scaling`` is an error (:func:`load_bank`).  Without a
     template the output gets ``scaling`` (default ``settings.scaling``).
+
+    ``dimensions`` names the dimensions of a multidimensional template (see :func:`load_bank`).
 
     Returns
     -------
@@ -74,7 +77,7 @@ def calibrate_file(
     if fit_report:
         fit_report = _check_folder(fit_report, "fit_report")
     settings = settings or CalibrationSettings()
-    template = load_bank(template_path, scaling=scaling) if template_path else None
+    template = load_bank(template_path, scaling=scaling, dimensions=dimensions) if template_path else None
     if template is not None:
         settings = attrs.evolve(settings, scaling=template.scaling)
     elif scaling is not None:
@@ -82,6 +85,8 @@ def calibrate_file(
     table = read_responses(responses_path)
     result = calibrate_responses(table, model=model, template=template, settings=settings,
                                  name=Path(out).stem)
+    if template is not None and template.uses_multidimensional_models:
+        return _multidimensional_outputs(result, out, fit_report)
     fit = fit_for_result(result)
     reports = {}
     if fit_report:
@@ -91,6 +96,18 @@ def calibrate_file(
     summary.update(fit_statistic=fit.statistic_name, misfit_p_threshold=MISFIT_P_THRESHOLD,
                    items_below_misfit_p_threshold=int((fit.p_value < MISFIT_P_THRESHOLD).sum()),
                    out=str(out), fit_report=str(fit_report) if fit_report else None)
+    return summary
+
+
+def _multidimensional_outputs(result, out: Path, fit_report) -> dict:
+    """Write the bank (and a report of every item's parameters and standard errors: item fit
+    statistics are not computed for multidimensional items) of a multidimensional calibration."""
+    reports = {}
+    if fit_report:
+        reports[Path(fit_report)] = rows_to_csv(result.item_rows())
+    _write_outputs(result.bank, out, reports)
+    summary = result.summary()
+    summary.update(fit_statistic=None, out=str(out), fit_report=str(fit_report) if fit_report else None)
     return summary
 
 

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import functools
 import json
+import os
+import re
 import sys
 import warnings
 from typing import Mapping
@@ -38,7 +40,73 @@ def dimension_names(text: str | None) -> list[str] | None:
     return None if text is None else [name.strip() for name in text.split(",")]
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+#: Problems listed before "... and N more" (``--all-problems`` lists every one).
+MAX_PROBLEMS_SHOWN = 20
+
+
+def _usage_location(exc: click.UsageError) -> tuple[str, str]:
+    """Where a usage error is and what it says, as the command line spells them."""
+    ctx = exc.ctx
+    where = ctx.command_path if ctx is not None else "adaptive-engine"
+    if isinstance(exc, click.BadParameter) and not isinstance(exc, click.MissingParameter) \
+            and exc.param is not None and ctx is not None:
+        param = exc.param
+        names = "/".join(param.opts) if isinstance(param, click.Option) else param.make_metavar(ctx)
+        return names, exc.message.rstrip(".")
+    message = exc.format_message().rstrip(".")
+    return where, f"{message} (see {where} --help)"
+
+
+class _UsageProblem(click.ClickException):
+    """A click usage error shown as one ``LOCATION: problem`` line (exit code 2)."""
+
+    exit_code = EXIT_INPUT_ERROR
+
+    def __init__(self, location: str, message: str):
+        super().__init__(message)
+        self.location = location
+
+    def show(self, file=None) -> None:
+        click.echo(f"{self.location}: {self.message}", err=True)
+
+
+class _Group(click.Group):
+    """The command groups: click's own usage errors become one ``LOCATION: problem`` line,
+    and the list of commands gives each one's whole first sentence (wrapped, never cut)."""
+
+    group_class = type  # subgroups (bank, session, ...) are of this class too
+
+    def format_commands(self, ctx, formatter) -> None:
+        rows = []
+        for name in self.list_commands(ctx):
+            cmd = self.get_command(ctx, name)
+            if cmd is not None and not cmd.hidden:
+                rows.append((name, cmd.get_short_help_str(limit=1_000)))
+        if rows:
+            with formatter.section("Commands"):
+                formatter.write_dl(rows)
+
+    def make_context(self, *args, **kwargs):
+        try:
+            return super().make_context(*args, **kwargs)
+        except click.UsageError as exc:
+            raise _one_line(exc) from None
+
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except click.UsageError as exc:
+            raise _one_line(exc) from None
+
+
+def _one_line(exc: click.UsageError) -> click.ClickException:
+    """The usage error as one line; a command group run without a command shows its help."""
+    if type(exc).__name__ == "NoArgsIsHelpError":  # click 8.2+: the help is the message
+        return exc
+    return _UsageProblem(*_usage_location(exc))
+
+
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="adaptive-engine")
 def main():
     """Computerized adaptive testing: check banks, score, design, simulate, run and calibrate."""
@@ -59,11 +127,57 @@ def flag_location(location: str, flags: Mapping[str, str]) -> str:
     return location if flag is None else flag + sep + rest
 
 
+def flag_message(message: str, flags: Mapping[str, str]) -> str:
+    """A library message with the parameters it names written as the command's flags.
+
+    Only names with an underscore are replaced (``min_answers`` -> ``--min-answers``):
+    plain words such as ``model`` also occur in ordinary sentences.
+    """
+    for name, flag in flags.items():
+        word = name.rpartition(" ")[2]
+        if "_" in word and word in message:
+            message = re.sub(rf"(?<![\w-]){re.escape(word)}(?![\w-])", flag, message)
+    return message
+
+
+def problem_lines(problems, flags: Mapping[str, str], *, all_problems: bool = False) -> list[str]:
+    """The lines that report ``problems``: one ``LOCATION: problem`` line for one problem;
+    for several, a count first, then one indented line each (at most
+    :data:`MAX_PROBLEMS_SHOWN` unless ``all_problems``)."""
+    lines = []
+    for problem in problems:
+        location = flag_location(problem.location, flags)
+        message = flag_message(problem.message, flags)
+        for where in {problem.location, location} - {""}:
+            if message.endswith(f": {where}"):  # "no such file: X" at location X says X once
+                message = message[: -len(where) - 2]
+        lines.append(f"{location}: {message}" if location else f"error: {message}")
+    if len(lines) == 1:
+        return lines
+    shown = lines if all_problems else lines[:MAX_PROBLEMS_SHOWN]
+    out = [f"{len(lines):,} problems:"] + [f"  {line}" for line in shown]
+    if len(shown) < len(lines):
+        out.append(f"  ... and {len(lines) - len(shown):,} more (--all-problems lists every one)")
+    return out
+
+
+def _os_error_line(exc: OSError) -> str:
+    where = getattr(exc, "filename", None) or ""
+    reason = exc.strerror or str(exc)
+    if where and isinstance(exc, FileNotFoundError):
+        parent = os.path.dirname(str(where))
+        if parent and not os.path.isdir(parent):
+            reason = f"the folder {parent} does not exist"
+    return f"{where}: {reason}" if where else f"error: {reason}"
+
+
 def report_errors(func=None, *, flags: Mapping[str, str] | None = None):
     """Turn library errors into ``LOCATION: problem`` lines on stderr and exit code 2.
 
     ``flags`` maps the library parameters a command fills from its flags to those flags
-    (:func:`flag_location`).  Old spellings of renamed design keys are printed as
+    (:func:`flag_location`, :func:`flag_message`).  Several problems are counted first and
+    listed up to :data:`MAX_PROBLEMS_SHOWN`; the command gets an ``--all-problems`` flag
+    that lists every one.  Old spellings of renamed design keys are printed as
     ``warning:`` lines on stderr while the command runs.  Use as ``@report_errors`` or
     ``@report_errors(flags={...})``.
     """
@@ -71,8 +185,11 @@ def report_errors(func=None, *, flags: Mapping[str, str] | None = None):
         return functools.partial(report_errors, flags=flags)
     table = dict(flags or {})
 
+    @click.option("--all-problems", "all_problems", is_flag=True, default=False,
+                  help="On bad input, list every problem (by default the first "
+                       f"{MAX_PROBLEMS_SHOWN} and a count of the rest).")
     @functools.wraps(func)
-    def wrapper(*args, **kwargs):
+    def wrapper(*args, all_problems=False, **kwargs):
         with warnings.catch_warnings():
             warnings.simplefilter("always", DeprecatedDesignKey)
             shown = warnings.showwarning
@@ -87,15 +204,11 @@ def report_errors(func=None, *, flags: Mapping[str, str] | None = None):
             try:
                 return func(*args, **kwargs)
             except AdaptiveEngineError as exc:
-                click.echo("error:", err=True)
-                for problem in exc.problems:
-                    location = flag_location(problem.location, table)
-                    click.echo(f"  {location}: {problem.message}" if location else f"  {problem.message}",
-                               err=True)
+                for line in problem_lines(exc.problems, table, all_problems=all_problems):
+                    click.echo(line, err=True)
                 sys.exit(EXIT_INPUT_ERROR)
             except OSError as exc:
-                where = getattr(exc, "filename", None) or ""
-                click.echo(f"error: {where + ': ' if where else ''}{exc.strerror or exc}", err=True)
+                click.echo(_os_error_line(exc), err=True)
                 sys.exit(EXIT_INPUT_ERROR)
 
     return wrapper
@@ -104,3 +217,23 @@ def report_errors(func=None, *, flags: Mapping[str, str] | None = None):
 def echo_json(obj) -> None:
     """Print ``obj`` as JSON on stdout (NaN/inf become null)."""
     click.echo(json.dumps(plain(obj), indent=None, allow_nan=False))
+
+
+#: The ``--json`` flag of every command that prints a result.
+JSON_HELP = "Print the full result as JSON (for programs) instead of the tables for people."
+json_option = click.option("--json", "as_json", is_flag=True, default=False, help=JSON_HELP)
+
+
+def emit(result, as_json: bool, text=None) -> None:
+    """Print ``result``: as JSON with ``--json``, else as text for a person.
+
+    ``text`` is a function of the plain result that returns the text (default:
+    :func:`._table.render`).
+    """
+    value = plain(result)
+    if as_json:
+        click.echo(json.dumps(value, indent=None, allow_nan=False))
+        return
+    from ._table import render
+
+    click.echo((text or render)(value))

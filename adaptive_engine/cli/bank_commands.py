@@ -7,7 +7,7 @@ import click
 from ..bank import files as bank_io
 from ..bank import summary as bank_report
 from ..bank.item_bank import load_bank
-from ._common import DIMENSIONS_HELP, SCALING_HELP, dimension_names, echo_json, main, report_errors
+from ._common import DIMENSIONS_HELP, SCALING_HELP, dimension_names, echo_json, json_option, main, report_errors
 
 #: The parameters of the curve functions -> the flags of bank curves.
 CURVES_FLAGS = {"start": "--from", "stop": "--to", "step": "--step", "by_area": "--by-area", "path": "--plot",
@@ -27,8 +27,9 @@ def bank():
 @click.option("--dimensions", "dimensions", default=None, metavar="NAMES", help=DIMENSIONS_HELP)
 @click.option("--target-se", type=float, default=bank_report.DEFAULT_TARGET_SE, show_default=True,
               help="Report the ability range where the operational items give a standard error below this.")
+@json_option
 @report_errors(flags={"scaling": "--scaling", "dimensions": "--dimensions", "target_se": "--target-se"})
-def check_command(bank_file, scaling, dimensions, target_se):
+def check_command(bank_file, scaling, dimensions, target_se, as_json):
     """Validate BANK (.csv, .json or .db) and print a short summary.
 
     The precision line sums the operational items only (pretest items are not scored),
@@ -37,11 +38,15 @@ def check_command(bank_file, scaling, dimensions, target_se):
     the information and SE along each dimension with the others at 0 (the SE when all
     dimensions are estimated together).
 
-    Every problem is listed as LOCATION: problem, with exit code 2.
+    Every problem is listed as LOCATION: problem, with exit code 2.  --json prints the
+    summary as one JSON object.
     """
     the_bank = load_bank(bank_file, scaling=scaling, dimensions=dimension_names(dimensions))
     summary = bank_report.summarize_bank(the_bank, target_se=target_se)
-    click.echo(summary.to_text())
+    if as_json:
+        echo_json(summary.to_dict())
+    else:
+        click.echo(summary.to_text())
 
 
 @bank.command("curves")
@@ -49,9 +54,9 @@ def check_command(bank_file, scaling, dimensions, target_se):
 @click.option("--from", "start", type=float, default=-4.0, show_default=True, help="First ability point.")
 @click.option("--to", "stop", type=float, default=4.0, show_default=True, help="Last ability point.")
 @click.option("--step", type=float, default=0.25, show_default=True, help="Distance between ability points.")
-@click.option("--format", "fmt", type=click.Choice(["csv", "json"]), default="csv", show_default=True,
-              help="csv: columns theta,information,se (multidimensional banks: see below); json: an object of "
-                   "arrays.")
+@click.option("--format", "fmt", type=click.Choice(["table", "csv", "json"]), default="table", show_default=True,
+              help="table: aligned columns for people (3 decimals); csv: columns theta,information,se at full "
+                   "precision (multidimensional banks: see below); json: an object of arrays (same as --json).")
 @click.option("--direction", default=None, metavar="U1,U2,...",
               help="Multidimensional banks: one curve in this direction (normalised to length 1), on the line "
                    "theta = t u; without it, one curve per dimension with the others at 0.")
@@ -64,9 +69,10 @@ def check_command(bank_file, scaling, dimensions, target_se):
               help="Also draw the curves to this PNG file (needs matplotlib).")
 @click.option("--scaling", type=float, default=None, help=SCALING_HELP)
 @click.option("--dimensions", "dimensions", default=None, metavar="NAMES", help=DIMENSIONS_HELP)
+@json_option
 @report_errors(flags=CURVES_FLAGS)
 def curves_command(bank_file, start, stop, step, fmt, direction, by_area, include_pretest, plot_file, scaling,
-                   dimensions):
+                   dimensions, as_json):
     """Print the test information and standard error of BANK over an ability grid.
 
     The information is summed over the operational items (the items bank check counts);
@@ -86,10 +92,24 @@ def curves_command(bank_file, start, stop, step, fmt, direction, by_area, includ
                                             include_pretest=include_pretest, direction=direction)
     if plot_file:
         bank_report.plot_information_curves(curves, plot_file, title=f"Test information: {the_bank.name}")
-    if fmt == "json":
+    if as_json or fmt == "json":
         echo_json(curves.to_dict())
-    else:
+    elif fmt == "csv":
         click.echo(curves.to_csv_text(), nl=False)
+    else:
+        click.echo(_curves_table(curves.to_csv_text()))
+
+
+def _curves_table(csv_text: str) -> str:
+    """The curves' CSV columns as an aligned table (numbers to 3 decimals)."""
+    import csv
+    import io
+
+    from ._table import table
+
+    header, *rows = list(csv.reader(io.StringIO(csv_text)))
+    values = [[float(x) if x else None for x in row] for row in rows]
+    return table(values, header, headers=header)
 
 
 @bank.command("convert")
@@ -99,8 +119,9 @@ def curves_command(bank_file, start, stop, step, fmt, direction, by_area, includ
               help=SCALING_HELP + "  Give it to store D in a JSON or SQLite copy of a CSV bank.")
 @click.option("--dimensions", "dimensions", default=None, metavar="NAMES",
               help=DIMENSIONS_HELP + "  Give them to store the names in a JSON or SQLite copy of a CSV bank.")
+@json_option
 @report_errors(flags={"scaling": "--scaling", "dimensions": "--dimensions"})
-def convert_command(bank_file, out_file, scaling, dimensions):
+def convert_command(bank_file, out_file, scaling, dimensions, as_json):
     """Validate BANK and write it to OUT; the format follows OUT's suffix (.csv, .json, .db).
 
     A CSV file has no place for the scaling constant D: a bank whose D is not 1 is not
@@ -108,4 +129,7 @@ def convert_command(bank_file, out_file, scaling, dimensions):
     """
     the_bank, written = bank_io.convert_bank(bank_file, out_file, scaling=scaling,
                                              dimensions=dimension_names(dimensions))
-    click.echo(f"wrote {len(the_bank)} items to {written}")
+    if as_json:
+        echo_json({"items": len(the_bank), "out": str(written)})
+    else:
+        click.echo(f"wrote {len(the_bank)} items to {written}")

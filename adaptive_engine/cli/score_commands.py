@@ -12,7 +12,7 @@ from ..bank.responses import read_responses
 from ..errors import AdaptiveEngineError
 from ..irt.estimation import METHODS, SCORE_BOUNDS, SCORE_PRIOR_SD_RANGE, check_score_prior, score_responses
 from ..irt.multidimensional_estimation import check_method_md, score_responses_md
-from ._common import DIMENSIONS_HELP, SCALING_HELP, dimension_names, echo_json, main, report_errors
+from ._common import DIMENSIONS_HELP, JSON_HELP, SCALING_HELP, dimension_names, echo_json, main, report_errors
 
 #: The CSV columns of ``score``; ``--with-status`` appends ``status``.
 SCORE_COLUMNS = ("person_id", "theta", "se", "n_items")
@@ -116,10 +116,11 @@ def _score_multidimensional(bank, table, method, prior_mean, prior_covariance, o
               show_default=True, help="Output format on stdout.")
 @click.option("--with-status", is_flag=True,
               help="Append a status column to the CSV output (JSON always has it).")
+@click.option("--json", "as_json", is_flag=True, help=JSON_HELP + "  (Same as --format json.)")
 @report_errors(flags={"prior_mean": "--prior-mean", "prior_covariance": "--prior-covariance",
                       "dimensions": "--dimensions", "scaling": "--scaling"})
 def score(bank_file, responses_file, method, prior_mean, prior_sd, prior_covariance, scaling, dimensions,
-          output_format, with_status):
+          output_format, with_status, as_json):
     """Estimate the ability of every person in RESPONSES on the item bank BANK.
 
     RESPONSES is a long CSV with columns person_id,item_id,response.  Prints one row per
@@ -143,7 +144,8 @@ def score(bank_file, responses_file, method, prior_mean, prior_sd, prior_covaria
         if click.get_current_context().get_parameter_source("prior_sd") != click.core.ParameterSource.DEFAULT:
             raise AdaptiveEngineError(f"the bank has K = {bank.n_dimensions} dimensions: give the prior's "
                                       "spread with --prior-covariance, not --prior-sd", location="--prior-sd")
-        _score_multidimensional(bank, table, method, prior_mean, covariance, output_format, with_status)
+        _score_multidimensional(bank, table, method, prior_mean, covariance,
+                                "json" if as_json else output_format, with_status)
         return
     if covariance is not None:
         raise AdaptiveEngineError("the bank has one dimension: give the prior's spread with --prior-sd",
@@ -153,7 +155,7 @@ def score(bank_file, responses_file, method, prior_mean, prior_sd, prior_covaria
                                   location="--prior-mean")
     prior_mean = 0.0 if prior_mean is None else prior_mean[0]
     records = score_responses(bank, table, method, prior_mean=prior_mean, prior_sd=prior_sd)
-    if output_format == "json":
+    if as_json or output_format == "json":
         echo_json(records)
     else:
         click.echo(_csv_text(records, with_status=with_status), nl=False)

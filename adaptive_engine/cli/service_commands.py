@@ -12,7 +12,7 @@ import sys
 import click
 
 from ..errors import AdaptiveEngineError
-from ._common import echo_json, main, report_errors
+from ._common import emit, json_option, main, report_errors
 
 
 def _require_service_extra() -> None:
@@ -98,14 +98,16 @@ def token():
               help="delivery: sessions; admin: also the session and release listings and exposure.")
 @click.option("--tokens", "tokens_file", required=True, type=click.Path(dir_okay=False),
               help="Token file (created if missing; the new token is appended).")
+@json_option
 @report_errors(flags={"name": "--name", "role": "--role", "path": "--tokens"})
-def token_new(name, role, tokens_file):
+def token_new(name, role, tokens_file, as_json):
     """Add a token to the file and print its secret, once: it is stored nowhere.
 
-    Output: {"name": ..., "role": ..., "secret": ...}.  The file gets the SHA-256 digest.
+    --json output: {"name": ..., "role": ..., "secret": ...}.  The file gets the SHA-256 digest.
     """
     from ..live.tokens import new_token
 
     added, secret = new_token(tokens_file, name=name, role=role)
-    echo_json({"name": added.name, "role": added.role, "secret": secret})
+    emit({"name": added.name, "role": added.role, "secret": secret}, as_json,
+         lambda r: f"token {r['name']} ({r['role']}) added to {tokens_file}\nsecret: {r['secret']}")
     click.echo("note: keep the secret now; it is not stored and cannot be shown again", err=True)

@@ -7,7 +7,7 @@ import time
 
 import click
 
-from ._common import echo_json, main, report_errors
+from ._common import JSON_HELP, echo_json, json_option, main, report_errors
 
 _FILE = click.Path(dir_okay=False, path_type=str)
 
@@ -141,7 +141,7 @@ def _perturbation(text):
 @click.option("--exposure-target", type=float, default=None,
               help="Exposure rate in (0, 1] that share_above_target counts against [default: 0.25].")
 @click.option("--no-administrations", is_flag=True, help="Skip administrations.csv (large runs).")
-@click.option("--json", "as_json", is_flag=True, help="Print summary.json instead of the table.")
+@click.option("--json", "as_json", is_flag=True, help=JSON_HELP + "  (The contents of summary.json.)")
 @_progress_option
 @report_errors(flags=SIMULATE_FLAGS)
 def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_spec, true_bank_file, perturb,
@@ -176,7 +176,7 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
         echo_json({k: v for k, v in study.summary.items()})
     else:
         click.echo(summary_table(study.summary))
-        click.echo(f"wrote {out_dir}/ (summary.json, examinees.csv, items.csv, conditional.csv, report.html"
+        click.echo(f"wrote {_folder(out_dir)} (summary.json, examinees.csv, items.csv, conditional.csv, report.html"
                    f"{'' if no_administrations else ', administrations.csv'})")
 
 
@@ -196,9 +196,10 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=str),
               help="Folder for tuning.csv, tuning.json and tuning.html (with the trade-off plot).")
 @_progress_option
+@json_option
 @report_errors(flags=TUNE_FLAGS)
 def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_spec, true_bank_file, workers, out_dir,
-                 show_progress):
+                 show_progress, as_json):
     """Compare variants of DESIGN's settings (stopping rules, ...) on common random numbers.
 
     Prints mean length, RMSE and classification accuracy per combination and marks the
@@ -219,10 +220,18 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
                                 execution=Execution(workers=workers, progress=progress))
     finally:
         progress.close()
-    from ..simulation.study import rows_csv
+    if as_json:
+        echo_json(rows)
+        return
+    from ._table import table
 
-    click.echo(rows_csv(rows), nl=False)
-    click.echo(f"wrote {out_dir}/ (tuning.csv, tuning.json, tuning.html)")
+    click.echo(table(rows))
+    click.echo(f"wrote {_folder(out_dir)} (tuning.csv, tuning.json, tuning.html)")
+
+
+def _folder(path: str) -> str:
+    """A folder as written in a message: one trailing slash (``study/``, never ``study//``)."""
+    return path.rstrip("/") + "/" if path.rstrip("/") else path
 
 
 #: Exit code of ``exposure calibrate`` when the iterations ended before the target was met
@@ -254,9 +263,10 @@ def exposure_group():
                    "ability (Stocking & Lewis 1998), one per item and stratum, holding every stratum's exposure "
                    "rates at --target; writes item_id,theta_from,theta_to,exposure_parameter.")
 @_progress_option
+@json_option
 @report_errors(flags=EXPOSURE_FLAGS)
 def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n_examinees, theta_spec,
-                               iterations, tolerance, workers, strata_text, show_progress):
+                               iterations, tolerance, workers, strata_text, show_progress, as_json):
     """Iterate Sympson-Hetter exposure parameters for DESIGN until no item exceeds --target.
 
     Writes the parameters in any case; exits with code 3 when the last iteration still
@@ -290,6 +300,15 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
                               max_iterations=iterations, tolerance=tolerance, strata=strata)
     finally:
         progress.close()
+    if as_json:
+        import attrs
+
+        echo_json({"converged": cal.converged, "target": cal.target, "tolerance": cal.tolerance,
+                   "strata": list(cal.strata), "iterations": cal.history, "out": out_file,
+                   "diagnosis": None if cal.diagnosis is None else attrs.asdict(cal.diagnosis)})
+        if not cal.converged:
+            sys.exit(EXIT_NOT_CONVERGED)
+        return
     if cal.strata:
         bounds = ["-inf", *(f"{c:g}" for c in cal.strata), "inf"]
         names = [f"[{lo},{hi})" for lo, hi in zip(bounds, bounds[1:])]

@@ -563,7 +563,10 @@ def design_to_toml(design: Design) -> str:
         _emit(lines, "[stopping.sprt]", design.stopping.sprt)
     if design.stopping.confidence_interval is not None:
         _emit(lines, "[stopping.confidence_interval]", design.stopping.confidence_interval)
-    _emit(lines, "[reporting]", design.reporting)
+    # written only when true: designs that leave it out keep the text (and fingerprint)
+    # they had before the key existed
+    _emit(lines, "[reporting]", design.reporting,
+          skip=() if design.reporting.announce_pretest_items else ("announce_pretest_items",))
     _emit(lines, "[reporting.scale]", design.reporting.scale)
     for cut in design.reporting.cut_scores:
         _emit(lines, "[[reporting.cut_scores]]", cut)

@@ -439,6 +439,9 @@ class Reporting(Checked):
     scale: ScaleRule = key(ScaleRule(), "part", part=ScaleRule)
     cut_scores: tuple[CutScore, ...] = key((), "parts", part=CutScore)
     person_fit_threshold: float = key(-1.645, "number", within(10.0))
+    #: whether examinees may know which items are pretest items (unscored): the interactive
+    #: ``session try`` then marks them.  Presentation only: no decision depends on it.
+    announce_pretest_items: bool = key(False, "flag")
 
     def where(self) -> str:
         return "[reporting]"

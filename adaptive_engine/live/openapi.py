@@ -20,8 +20,8 @@ DEFAULT_PAGE = 100
 
 _NULLABLE_NUMBER = {"type": ["number", "null"]}
 _PROBLEM_CODES = [
-    "malformed_request", "unsupported_media_type", "request_too_large", "invalid_value", "missing_token",
-    "unknown_token", "forbidden", "not_found", "method_not_allowed", "conflict", "store_unavailable",
+    "malformed_request", "unsupported_media_type", "request_too_large", "invalid_value", "idempotency_key_reused",
+    "missing_token", "unknown_token", "forbidden", "not_found", "method_not_allowed", "conflict", "store_unavailable",
     "internal_error",
 ]
 
@@ -268,10 +268,22 @@ _PATHS = {
             {"201": _json("The session's first reply.", _ref("SessionReply"),
                           headers={"Location": {"schema": {"type": "string"},
                                                 "description": "/v1/sessions/{session_id}"}}),
+             "200": _json("A retried start (the same Idempotency-Key, token and request): the session the first "
+                          "attempt made, as a page reload sees it; header Idempotent-Replayed: true.",
+                          _ref("SessionStatus"),
+                          headers={"Location": {"schema": {"type": "string"},
+                                                "description": "/v1/sessions/{session_id}"}}),
              **_BODY_PROBLEMS,
+             "422": _problem("A field is missing, unknown, of the wrong type or out of range (`field`), or the "
+                             "Idempotency-Key started a session with another release, examinee, seed or prior."),
              "404": _problem("No such release or release version."),
              "409": _problem("The release is retired.")},
-            role="delivery", requestBody=_body("StartRequest"), operationId="startSession"),
+            role="delivery", requestBody=_body("StartRequest"), operationId="startSession",
+            parameters=[{"name": "Idempotency-Key", "in": "header", "required": False,
+                         "schema": {"type": "string", "minLength": 1, "maxLength": 255,
+                                    "pattern": "^[\\x21-\\x7e]+$"},
+                         "description": "Makes the start safe to retry: the same key under the same token "
+                                        "returns the session the first attempt started instead of a second one."}]),
         "get": _operation(
             "List sessions (admin)", "Oldest first, a page at a time.",
             {"200": _json("A page of sessions.", _ref("SessionList")),

@@ -34,6 +34,7 @@ import sqlite3
 import threading
 import time
 import traceback
+import uuid
 from pathlib import Path
 from typing import Callable
 
@@ -364,6 +365,42 @@ def _only_query(request: Request, *allowed: str) -> None:
         seen.add(name)
 
 
+#: A fixed namespace for session ids made from idempotency keys (uuid5 of the project's URL-like name).
+_IDEMPOTENCY_NAMESPACE = uuid.uuid5(uuid.NAMESPACE_URL, "urn:adaptive-engine:idempotency-key")
+_MAX_KEY = 255
+
+
+def _idempotency_key(request: Request) -> str | None:
+    """The ``Idempotency-Key`` header of a start: 1 to 255 visible ASCII characters, or None."""
+    values = request.headers.getlist("idempotency-key")
+    if not values:
+        return None
+    if len(values) > 1:
+        raise _invalid("Idempotency-Key", "given twice")
+    key = values[0]
+    if not 1 <= len(key) <= _MAX_KEY or not all(0x21 <= ord(ch) <= 0x7E for ch in key):
+        raise _invalid("Idempotency-Key", f"must be 1 to {_MAX_KEY} visible ASCII characters (no spaces)")
+    return key
+
+
+def idempotent_session_id(token_name: str, key: str) -> str:
+    """The session id a start with ``key`` under the token ``token_name`` gets (32 hex digits)."""
+    return uuid.uuid5(_IDEMPOTENCY_NAMESPACE, f"{token_name}\n{key}").hex
+
+
+def _same_start(row: dict, release: str, examinee: str, seed, prior_mean, prior_sd) -> bool:
+    """Whether a stored session is what this start request asks for (a retry of it)."""
+    name, _, version = release.partition("@")
+    if row.get("release_name") != name or (version and str(row.get("release_version")) != version):
+        return False
+    if row.get("examinee") != examinee or (seed is not None and int(row["seed"]) != seed):
+        return False
+    for asked, stored in ((prior_mean, row.get("prior_mean")), (prior_sd, row.get("prior_sd"))):
+        if asked is not None and (stored is None or float(stored) != float(asked)):
+            return False
+    return True
+
+
 def _query_integer(request: Request, name: str, default: int, lo: int, hi: int | None) -> int:
     text = request.query_params.get(name)
     if text is None:
@@ -433,18 +470,45 @@ class Service:
 
     # -- endpoints -----------------------------------------------------------------------
     async def start(self, request: Request) -> Response:
-        self.authorize(request, "delivery")
+        token = self.authorize(request, "delivery")
         _only_query(request)
+        key = _idempotency_key(request)
         doc = await read_json_object(request, self.settings.max_body_bytes)
         _fields(doc, required=("release", "examinee"), optional=("seed", "prior_mean", "prior_sd"))
         release, examinee = _text(doc, "release"), _text(doc, "examinee")
         seed = _integer(doc, "seed", optional=True)
         prior_mean, prior_sd = _number(doc, "prior_mean"), _number(doc, "prior_sd")
-        reply = await self.call(lambda store: start_release_session(
-            store, release, examinee=examinee, seed=seed, prior_mean=prior_mean, prior_sd=prior_sd,
-            cache=self.cache))
-        return JSONResponse(reply, status_code=201, headers={
-            **_NO_STORE, "Location": f"/v1/sessions/{reply['session_id']}"})
+        # with an Idempotency-Key the session id follows from (token, key): a retried start
+        # (a reply lost on the way back) finds the session the first attempt made
+        session_id = None if key is None else idempotent_session_id(token.name, key)
+
+        def replay(store: SessionStore, row: dict):
+            if not _same_start(row, release, examinee, seed, prior_mean, prior_sd):
+                raise ProblemReply(422, "idempotency_key_reused",
+                                   "Idempotency-Key: this key started a session with another release, examinee, "
+                                   "seed or prior; use a new key for a new session", field="Idempotency-Key")
+            return session_status(store, session_id, cache=self.cache), False
+
+        def work(store: SessionStore):
+            if session_id is not None:
+                try:  # a retry: even a release retired since then still shows its session
+                    return replay(store, store.session_row(session_id))
+                except NotFoundError:
+                    pass
+            try:
+                return start_release_session(store, release, examinee=examinee, seed=seed, prior_mean=prior_mean,
+                                             prior_sd=prior_sd, session_id=session_id, cache=self.cache), True
+            except ConflictError as exc:
+                if session_id is None or getattr(exc, "field", None) != "session_id":
+                    raise
+            # the same key sent twice at once: the other request made the session
+            return replay(store, store.session_row(session_id))
+
+        reply, created = await self.call(work)
+        headers = {**_NO_STORE, "Location": f"/v1/sessions/{reply['session_id']}"}
+        if not created:
+            headers["Idempotent-Replayed"] = "true"
+        return JSONResponse(reply, status_code=201 if created else 200, headers=headers)
 
     async def sessions_path(self, request: Request) -> Response:
         return await (self.start(request) if request.method == "POST" else self.sessions(request))

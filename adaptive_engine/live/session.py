@@ -482,7 +482,7 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
     check_text(session_id, "the session id", location="session_id")
     where = f"session {shown(session_id)}"
     check_text(item_id, "the item id", location="item_id")
-    value = _response_value(response, f"{where} item {shown(item_id)} response")
+    value = _response_value(response, f"{where} item {shown(item_id)}")
     elapsed = _elapsed_value(elapsed, f"{where} item {shown(item_id)} elapsed")
     row = store.session_row(session_id)
     # None when this engine lacks the session's rules: only a resent answer gets a reply then
@@ -511,12 +511,12 @@ def _answer_locked(store, rules, ctx, row, item_id, response, elapsed, cache, mu
         if earlier is not None:
             if earlier["response"] == value:
                 return json.loads(earlier["reply"])
-            raise ConflictError(f"item {item} was already answered with {earlier['response']}; "
+            raise ConflictError(f"already answered with {earlier['response']}; "
                                 f"a different answer ({value_text}) is refused", location=f"{where} item {item}",
                                 field="response")
         if row["status"] != "active":
             raise ConflictError("the session has finished; it takes no more answers", location=where)
-        raise ConflictError(f"item {item} is not the pending item (pending: {row['pending_item']})",
+        raise ConflictError(f"not the pending item (pending: {row['pending_item']})",
                             location=f"{where} item {item}", field="item_id")
     if rules is None:
         raise rules_not_installed(row)
@@ -524,8 +524,8 @@ def _answer_locked(store, rules, ctx, row, item_id, response, elapsed, cache, mu
     index = bank.index_of[item_id]
     n_cat = int(bank.n_categories[index])
     if not 0 <= value < n_cat:
-        raise InvalidValueError(f"response {value_text} is outside the categories 0..{n_cat - 1} of item {item}",
-                                location=f"{where} item {item} response", field="response")
+        raise InvalidValueError(f"response {value_text} is outside the categories 0..{n_cat - 1}",
+                                location=f"{where} item {item}", field="response")
     state = session_state(store, ctx, row, cache=cache, rules=rules)
     mutated[0] = True
     picked = rules.answer(ctx, state, _ROW0, np.array([value]),
@@ -750,7 +750,8 @@ def exposure_rates(store: SessionStore, bank: ItemBank) -> dict:
 
 
 def try_session(design: Design, bank: ItemBank, *, ask: Callable[[dict, int], str],
-                tell: Callable[[str], None], seed: int | None = None) -> dict:
+                tell: Callable[[str], None], seed: int | None = None,
+                progress: Callable[[dict], None] | None = None) -> dict:
     """Take a test interactively on a scratch in-memory store; returns the final report.
 
     Parameters
@@ -758,7 +759,11 @@ def try_session(design: Design, bank: ItemBank, *, ask: Callable[[dict, int], st
     ask : callable (item view, position) -> str
         Shows the item and returns what the person typed.
     tell : callable (message) -> None
-        Shows why an answer was refused (the item is then asked again).
+        Shows why an answer was refused (the item is then asked again).  The message is
+        the problem alone, without the scratch session's id.
+    progress : callable (reply) -> None, optional
+        Called with every reply before its item is asked (``theta``, ``se``,
+        ``items_given``: the running estimate).
     """
     from .store import open_store
 
@@ -767,9 +772,11 @@ def try_session(design: Design, bank: ItemBank, *, ask: Callable[[dict, int], st
         reply = start_session(store, design, bank, seed=seed, cache=cache)
         while not reply["done"]:
             item = reply["item"]
+            if progress is not None:
+                progress(reply)
             typed = ask(item, reply["items_given"] + 1)
             try:
                 reply = submit_answer(store, reply["session_id"], item["item_id"], typed, cache=cache)
             except SessionError as exc:
-                tell(str(exc))
+                tell("; ".join(problem.message for problem in exc.problems))
         return reply["result"]

@@ -226,6 +226,16 @@ def parse_release_reference(reference) -> tuple[str, int | None]:
     return name, int(version_text)
 
 
+def _missing_folder_note(path: Path) -> str:
+    """`` (the folder X does not exist)`` when the store's folder is missing, else ``""``."""
+    parent = Path(path).parent
+    try:
+        missing = str(parent) not in ("", ".") and not parent.is_dir()
+    except (OSError, ValueError):
+        return ""
+    return f" (the folder {shown(str(parent), limit=200)} does not exist)" if missing else ""
+
+
 def _create_owner_only(path: Path) -> None:
     """Create an empty file at ``path`` with mode 0600 unless something is there already.
 
@@ -238,6 +248,8 @@ def _create_owner_only(path: Path) -> None:
         return
     except (OSError, ValueError) as exc:  # ValueError: a NUL byte in the path
         reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        if isinstance(exc, FileNotFoundError) and _missing_folder_note(path):
+            reason = _missing_folder_note(path).strip(" ()")
         raise SessionError(f"cannot create the session store: {reason}",
                            location=shown(str(path), limit=400)) from None
     try:
@@ -713,7 +725,7 @@ class SQLiteSessionStore(SessionStore):
             p = Path(path)
             where = shown(str(p), limit=400)
             if (read_only or not create) and not p.exists():
-                raise SessionError(f"no session store at {where}", location=where)
+                raise SessionError(f"no session store at this path{_missing_folder_note(p)}", location=where)
             if p.is_dir():
                 raise SessionError(f"is a directory, not a session store: {where}", location=where)
             if create and not read_only:

@@ -16,6 +16,7 @@ back into one.  :func:`new_token` adds a token and returns its secret, once.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import hmac
 import json
@@ -154,6 +155,37 @@ def new_token(path: str | Path, *, name: str, role: str) -> tuple[Token, str]:
         (which is then left as it is).
     """
     where = str(path)
+    with _folder_lock(Path(path)):
+        return _new_token(path, where, name=name, role=role)
+
+
+@contextlib.contextmanager
+def _folder_lock(path: Path):
+    """Hold an exclusive lock on the token file's folder while it is read and rewritten.
+
+    Two ``token new`` at once would otherwise both read the old file and the second rename
+    would drop the first one's token.  The lock is ``flock`` on the folder itself (no lock
+    file is left behind); where ``fcntl`` is missing (Windows) there is no lock.
+    """
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not on the supported platforms
+        yield
+        return
+    folder = path.parent if str(path.parent) else Path(".")
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:  # a missing folder: the write names it
+        yield
+        return
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(fd)  # closing releases the lock
+
+
+def _new_token(path, where: str, *, name: str, role: str) -> tuple[Token, str]:
     if role not in ROLES:
         raise TokenFileError(f"the role must be one of {', '.join(ROLES)}, got '{shown(role)}'", location="role")
     if not isinstance(name, str) or not _NAME.fullmatch(name):
