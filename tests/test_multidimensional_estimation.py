@@ -10,8 +10,9 @@ Outside references, named beside each check:
 * the conditional mean of a multivariate normal (E[theta_2 | theta_1] = mu_2 + rho s_2 /
   s_1 (theta_1 - mu_1), a textbook property of the normal distribution) for a dimension
   no answered item measures;
-* for K = 4 with simple structure and an identity prior the posterior factorises, so each
-  dimension's EAP is a one-dimensional posterior mean, computed by ``scipy.integrate.quad``;
+* for K = 3 (the adaptive grid) and K = 4 (quasi-Monte Carlo) with simple structure and an
+  identity prior the posterior factorises, so each dimension's EAP is a one-dimensional
+  posterior mean, computed by ``scipy.integrate.quad``;
 * with K = 1 the one-dimensional engine (irt/estimation.py), with the 2PL, 3PL and GRM
   written as M2PL, M3PL and MGRM (slope a, intercept -a b).
 """
@@ -292,6 +293,40 @@ def test_bad_responses_and_methods_are_refused():
 
 # ---------------------------------------------------------------------------------------
 # K > 3, row independence
+
+
+def _factorising_case(k, seed, all_right=False):
+    """Simple structure (3 M2PL items per dimension) and an identity prior: the posterior
+    factorises, so each dimension's posterior mean and SD are one-dimensional integrals,
+    computed here by scipy.integrate.quad."""
+    rng = np.random.default_rng(seed)
+    n = 3 * k
+    a, d = rng.uniform(0.8, 2.5, n), rng.normal(0.0, 1.0, n)
+    x = np.ones(n, dtype=int) if all_right else rng.integers(0, 2, n)
+    slopes = np.zeros((n, k))
+    slopes[np.arange(n), np.arange(n) // 3] = a
+    params = md.MultidimensionalParameters(slopes=slopes, intercepts=d[:, None], c=np.zeros(n))
+    moments = []
+    for j in range(k):
+        rows = slice(3 * j, 3 * j + 3)
+
+        def density(t, rows=rows):
+            p = expit(a[rows] * t + d[rows])
+            return np.prod(np.where(x[rows] == 1, p, 1 - p)) * np.exp(-0.5 * t * t)
+        z = integrate.quad(density, -12, 12, epsabs=1e-13)[0]
+        m = integrate.quad(lambda t: t * density(t), -12, 12, epsabs=1e-13)[0] / z
+        v = integrate.quad(lambda t: (t - m) ** 2 * density(t), -12, 12, epsabs=1e-13)[0] / z
+        moments.append((m, v))
+    return params, x, np.array(moments)
+
+
+@pytest.mark.parametrize("seed, all_right", [(5, True), (6, False)])
+def test_three_dimensions_adaptive_grid_matches_one_dimensional_integrals(seed, all_right):
+    params, x, moments = _factorising_case(3, seed, all_right)
+    items, responses = padded([list(x)])
+    result = me.eap_estimate_md(params, items, responses)
+    np.testing.assert_allclose(result.theta[0], moments[:, 0], atol=5e-5)
+    np.testing.assert_allclose(result.covariance[0], np.diag(moments[:, 1]), atol=5e-5)
 
 
 def test_four_dimensions_eap_by_quasi_monte_carlo_matches_one_dimensional_integrals():
