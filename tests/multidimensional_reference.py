@@ -70,12 +70,14 @@ def _fast_log_posterior(items, responses, mean, covariance, scaling):
     return f
 
 
-def eap_reference_2d(items, responses, mean, covariance, scaling=1.0, reach=8.0):
+def eap_reference_2d(items, responses, mean, covariance, scaling=1.0, reach=6.5):
     """Posterior mean (2,) and covariance (2, 2) by ``scipy.integrate.dblquad``.
 
-    The integrals run over the mode +- ``reach`` prior SDs (beyond, the posterior is below
-    e^-30 of its peak for the priors and items used in the tests); the density is scaled by
-    its value at the mode so that the integrals are of order one.
+    The integrals run over the mode +- ``reach`` prior SDs: at the edges the prior alone has
+    fallen by more than e^-20 from the mode (for the priors of the tests), and the
+    likelihood can make up at most its own value at the mode (a few e-folds for the short
+    tests used), so the mass left out is far below the tolerances checked.  The density is
+    scaled by its value at the mode so that the integrals are of order one.
     """
     mode = map_reference(items, responses, mean, covariance, scaling)
     log_post = _fast_log_posterior(items, responses, mean, covariance, scaling)
@@ -86,7 +88,7 @@ def eap_reference_2d(items, responses, mean, covariance, scaling=1.0, reach=8.0)
     def moment(g):
         def f(y, x):
             return g(x, y) * math.exp(log_post(x, y) - top)
-        return integrate.dblquad(f, lo[0], hi[0], lo[1], hi[1], epsabs=1e-10, epsrel=1e-8)[0]
+        return integrate.dblquad(f, lo[0], hi[0], lo[1], hi[1], epsabs=1e-8, epsrel=1e-7)[0]
 
     z = moment(lambda x, y: 1.0)
     m1, m2 = moment(lambda x, y: x) / z, moment(lambda x, y: y) / z
