@@ -276,7 +276,7 @@ def test_summed_information_works_in_blocks_of_items(monkeypatch, exam):
 
 
 @pytest.mark.parametrize("args, fragment", [
-    (["score", EXAM_2D, "RESPONSES"], "bank meridian_valley_operator_2d: the bank has 2 ability dimensions"),
+    # (score accepts banks of several dimensions: tests/test_multidimensional_score_cli.py)
     (["design", "check", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D],
      "bank meridian_valley_operator_2d: the bank has 2 ability dimensions"),
     (["simulate", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D, "--examinees", "5",
