@@ -147,6 +147,14 @@ def test_bank_lookup_and_errors(tmp_path):
         calibrate_pretest(stored.events, bank=stored.bank, bank_id=bank_id)
     with pytest.raises(CalibrationError, match="no answers recorded for bank 'b'"):
         calibrate_pretest([], bank=bank, bank_id="b")
+    # a response outside an item's categories is located at its event, in one plain sentence
+    first = next(e for e in stored.events if e[2] != "ghost")
+    events = [(first[0], first[1], first[2], 7, first[4])]
+    with pytest.raises(CalibrationError) as caught:
+        calibrate_pretest(events, bank=bank, bank_id=bank_id)
+    problem = caught.value.problems[0]
+    assert problem.location == f"event {first[0]}"
+    assert problem.message == f"response 7 is outside the categories 0..1 of item {first[2]}"
 
 
 def test_a_file_that_is_not_a_store_is_refused_and_left_alone(tmp_path):

@@ -223,8 +223,8 @@ def calibrate_pretest(
     if not problems:
         bad = np.flatnonzero(answers.response >= bank.n_categories[rows])
         problems = [Problem(f"event {answers.event_id[k]}",
-                            f"response {answers.response[k]} is outside item {answers.item_id[k]!r}'s "
-                            f"categories 0..{bank.n_categories[rows[k]] - 1}") for k in bad[:50]]
+                            f"response {answers.response[k]} is outside the categories "
+                            f"0..{bank.n_categories[rows[k]] - 1} of item {answers.item_id[k]}") for k in bad[:50]]
     if problems:
         raise CalibrationError(problems)
     grid, _ = settings.grid()
