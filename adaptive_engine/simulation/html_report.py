@@ -266,11 +266,14 @@ def _length_histogram(plt, n_scored, *, min_items: int, max_items: int) -> str:
 def _exposure_figure(plt, rates, target: float) -> str:
     """Operational items' exposure rates, most exposed first, against the target."""
     r = np.sort(np.asarray(rates, dtype=float))[::-1]
-    rank = np.arange(1, r.size + 1)
-    above = r > target
+    n_above = int(np.sum(r > target))  # r is sorted: the items above the target come first
     fig, ax = plt.subplots(figsize=(7.2, 3.8))
-    ax.bar(rank[above], r[above], width=1.0, color=_TARGET_COLOUR, label=f"above the target ({int(above.sum())} items)")
-    ax.bar(rank[~above], r[~above], width=1.0, color=_BLUE, label=f"at or below ({int((~above).sum())} items)")
+    # one filled step outline per colour, not one bar per item: the same picture, drawn in
+    # constant time for banks of 100,000 items (item k's bar spans k - 0.5 .. k + 0.5)
+    edges = np.arange(r.size + 1) + 0.5
+    ax.stairs(r[:n_above], edges[: n_above + 1], fill=True, color=_TARGET_COLOUR,
+              label=f"above the target ({n_above} items)")
+    ax.stairs(r[n_above:], edges[n_above:], fill=True, color=_BLUE, label=f"at or below ({r.size - n_above} items)")
     ax.axhline(target, color="black", ls="--", lw=1, label=f"exposure target {target:g}")
     unused = int(np.sum(r == 0))
     if unused:
