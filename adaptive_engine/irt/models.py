@@ -23,7 +23,21 @@ from __future__ import annotations
 
 import attrs
 import numpy as np
-from scipy.special import expit, log_expit
+
+
+def expit(x):
+    """The logistic function (scipy.special.expit; scipy is imported on first use)."""
+    from scipy.special import expit as logistic
+
+    return logistic(x)
+
+
+def log_expit(x):
+    """Log of the logistic function (scipy.special.log_expit, imported on first use)."""
+    from scipy.special import log_expit as log_logistic
+
+    return log_logistic(x)
+
 
 DICHOTOMOUS = 0
 GRADED = 1

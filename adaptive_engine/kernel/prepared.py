@@ -52,7 +52,22 @@ class RankedTables:
 
 def ranked_tables(bank: ItemBank) -> RankedTables:
     """The ranked tables of the bank's operational items (computed once per bank)."""
-    return bank.cached(("ranked_tables", RANK_STEP, RANK_DEPTH), lambda: build_ranked_tables(bank))
+    return bank.cached(RANKED_TABLES_KEY, lambda: build_ranked_tables(bank))
+
+
+#: Where a bank keeps its ranked tables (:meth:`ItemBank.cached`).
+RANKED_TABLES_KEY = ("ranked_tables", RANK_STEP, RANK_DEPTH)
+
+
+def log_table_key(grid: np.ndarray) -> tuple:
+    """Where a bank keeps its log-probability table on ``grid`` (:func:`log_table_by_category`)."""
+    return ("kernel.log_table_by_category", np.asarray(grid, dtype=float).tobytes())
+
+
+def context_grid(design: Design) -> np.ndarray:
+    """The design's quadrature grid, as every context of the design has it."""
+    sc = design.scoring
+    return np.round(np.linspace(sc.grid_min, sc.grid_max, sc.grid_points), 12)
 
 
 def build_ranked_tables(bank: ItemBank) -> RankedTables:
@@ -219,8 +234,7 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
     in itself, every blueprint area and Sympson-Hetter item is in the bank, ...); nothing
     is checked again here.
     """
-    sc = design.scoring
-    grid = np.round(np.linspace(sc.grid_min, sc.grid_max, sc.grid_points), 12)
+    grid = context_grid(design)
     n = bank.n_items
     operational = np.asarray(bank.status == "operational")
     areas = bank.areas
@@ -316,7 +330,7 @@ def log_table_by_category(bank: ItemBank, grid: np.ndarray) -> np.ndarray:
         out.setflags(write=False)
         return out
 
-    return bank.cached(("kernel.log_table_by_category", grid.tobytes()), make)
+    return bank.cached(log_table_key(grid), make)
 
 
 def _exposure_parameters(design: Design, bank: ItemBank) -> tuple[np.ndarray | None, np.ndarray]:
