@@ -122,7 +122,7 @@ class ProcessCache:
                 elif bank is None:
                     bank = store.load_bank(bank_id)
                 ctx = rules.build_context(design, bank)
-                if folder is not None and kept is None:
+                if folder is not None and kept is None and not getattr(store, "read_only", False):
                     from .table_cache import save_prepared_bank
 
                     save_prepared_bank(folder, bank_id, bank, ctx.grid)
