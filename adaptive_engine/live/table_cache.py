@@ -93,7 +93,7 @@ def _bank_from_archive(archive, bank_id: str, grid: np.ndarray) -> ItemBank | No
     # the bank checks itself again as it is made (a file that fails raises: not used)
     return ItemBank(**{f: header[f] for f in _TEXT_FIELDS}, **numbers,
                     enemy_groups=header["enemy_groups"], scaling=header["scaling"], name=header["name"],
-                    _cache=cache)
+                    dimension_names=header["dimension_names"], _cache=cache)
 
 
 def save_prepared_bank(folder: str | Path, bank_id: str, bank: ItemBank, grid: np.ndarray) -> Path | None:
@@ -113,6 +113,7 @@ def save_prepared_bank(folder: str | Path, bank_id: str, bank: ItemBank, grid: n
                 os.mkdir(folder, 0o700)
         header = {"constants": _constants(), "bank_id": bank_id, "scaling": bank.scaling, "name": bank.name,
                   "enemy_groups": [list(g) for g in bank.enemy_groups],
+                  "dimension_names": list(bank.dimension_names),
                   **{f: [str(x) for x in getattr(bank, f)] for f in _TEXT_FIELDS}}
         tables = prepared.ranked_tables(bank)
         arrays = {
