@@ -5,12 +5,12 @@ Prints figures and asserts nothing.  Run as ``python3 benchmarks/bench_bank_scal
 (benchmark data only), written into a temporary folder.
 
 (a) building a test context and its ranked candidate tables (``build_context`` plus
-    ``ranked_tables``) for 1,000, 10,000 and 100,000 items, in one process: seconds and
-    peak traced memory, each as a ratio against the 1,000-item bank of the same run;
+    ``ranked_tables``) for 1,000, 10,000 and 100,000 items, in one process: seconds (wall
+    and CPU) and peak traced memory, as ratios against the 1,000-item bank of the same run;
 (b) ``adaptive-engine simulate`` of 1,000 examinees, 30 items, EAP and maximum information,
     ``--no-administrations``, as a whole process (bank reading, tables, simulation, study
-    files and report): seconds and the child's peak RSS (``os.wait4``), on 1,000 and
-    100,000 items;
+    files and report): seconds (wall and CPU) and the child's peak RSS (``os.wait4``), on
+    1,000 and 100,000 items;
 (c) ``adaptive-engine session answer`` and ``session start`` on a 5,000-item bank as whole
     processes, the median of several calls: cold (the store's table folder removed before
     each call, so each builds the tables from the stored bank) and warm (the tables read
@@ -79,8 +79,11 @@ def write_bank(path: Path, n: int, seed: int = 0) -> Path:
     return path
 
 
-def child(args: list[str]) -> tuple[float, float, str]:
-    """Run ``python3 ARGS``; (seconds, peak RSS in MB, stdout)."""
+def child(args: list[str]) -> tuple[float, float, str, float]:
+    """Run ``python3 ARGS``; (seconds, peak RSS in MB, stdout, CPU seconds).
+
+    The CPU seconds (user + system) of a single-threaded child are close to the wall time
+    it would take on a quiet machine: on a loaded one they are the steadier figure."""
     start = time.perf_counter()
     with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
         proc = subprocess.Popen([sys.executable, *args], stdout=out, stderr=err, env=ENV)
@@ -90,7 +93,7 @@ def child(args: list[str]) -> tuple[float, float, str]:
         err.seek(0)
         if os.waitstatus_to_exitcode(status) != 0:
             raise SystemExit(f"failed: {' '.join(args)}\n{err.read().decode()[-2000:]}")
-        return seconds, usage.ru_maxrss / 1024, out.read().decode()
+        return seconds, usage.ru_maxrss / 1024, out.read().decode(), usage.ru_utime + usage.ru_stime
 
 
 def tables(folder: Path, sizes: list[int]) -> None:
@@ -109,15 +112,19 @@ def tables(folder: Path, sizes: list[int]) -> None:
     for n in sizes:
         bank = load_bank(write_bank(folder / f"bank_{n}.csv", n))
         bank.params  # noqa: B018 - the bank's parameter arrays are not the tables' cost
-        tracemalloc.start()
-        start = time.perf_counter()
+        start, cpu = time.perf_counter(), time.process_time()
         build_context(design, bank)
         ranked_tables(bank)
-        seconds = time.perf_counter() - start
+        seconds, cpu = time.perf_counter() - start, time.process_time() - cpu
+        # memory traced in a second build on a copy (tracing slows the first one down)
+        fresh = bank.evolve()
+        tracemalloc.start()
+        build_context(design, fresh)
+        ranked_tables(fresh)
         peak = tracemalloc.get_traced_memory()[1] / 2**20
         tracemalloc.stop()
-        base = base or (seconds, peak)
-        print(f"  {n:>7,} items: {seconds:6.2f} s ({seconds / base[0]:5.1f}x the 1,000-item bank), "
+        base = base or (cpu, peak)
+        print(f"  {n:>7,} items: {seconds:6.2f} s, CPU {cpu:6.2f} s ({cpu / base[0]:5.1f}x the 1,000-item bank), "
               f"peak traced {peak:7.1f} MiB ({peak / base[1]:5.1f}x)", flush=True)
 
 
@@ -130,12 +137,12 @@ def simulate(folder: Path, sizes: list[int]) -> None:
         bank = folder / f"bank_{n}.csv"
         if not bank.exists():
             write_bank(bank, n)
-        seconds, rss, _ = child(["-m", "adaptive_engine", "simulate", str(design), "--bank", str(bank),
-                                 "--examinees", "1000", "--out", str(folder / f"study_{n}"),
-                                 "--no-administrations"])
-        base = base or (seconds, rss)
-        print(f"  {n:>7,} items: {seconds:6.2f} s ({seconds / base[0]:4.1f}x), peak RSS {rss:7.1f} MB "
-              f"({rss / base[1]:4.1f}x)", flush=True)
+        seconds, rss, _, cpu = child(["-m", "adaptive_engine", "simulate", str(design), "--bank", str(bank),
+                                      "--examinees", "1000", "--out", str(folder / f"study_{n}"),
+                                      "--no-administrations"])
+        base = base or (cpu, rss)
+        print(f"  {n:>7,} items: {seconds:6.2f} s, CPU {cpu:6.2f} s ({cpu / base[0]:4.1f}x), "
+              f"peak RSS {rss:7.1f} MB ({rss / base[1]:4.1f}x)", flush=True)
 
 
 def session_calls(folder: Path, calls: int) -> None:
@@ -154,19 +161,22 @@ def session_calls(folder: Path, calls: int) -> None:
         for k in range(calls):
             if cold:
                 shutil.rmtree(cache, ignore_errors=True)
-            seconds, _, out = child([*start_args, "--seed", str(k)])
-            starts.append(seconds)
+            seconds, _, out, cpu = child([*start_args, "--seed", str(k)])
+            starts.append((seconds, cpu))
             reply = json.loads(out)
             if cold:
                 shutil.rmtree(cache, ignore_errors=True)
-            seconds, rss, _ = child(["-m", "adaptive_engine", "session", "answer", "--db", str(db),
-                                     reply["session_id"], reply["item_id"], "1"])
-            answers.append((seconds, rss))
-        figures[label] = (statistics.median(starts), statistics.median(s for s, _ in answers),
-                          max(r for _, r in answers))
-    for label, (start_s, answer_s, rss) in figures.items():
-        print(f"  {label}: session answer {answer_s:5.2f} s ({answer_s / figures['cold'][1]:4.2f}x cold), "
-              f"peak RSS {rss:6.1f} MB; session start {start_s:5.2f} s", flush=True)
+            seconds, rss, _, cpu = child(["-m", "adaptive_engine", "session", "answer", "--db", str(db),
+                                          reply["session_id"], reply["item_id"], "1"])
+            answers.append((seconds, cpu, rss))
+        figures[label] = (statistics.median(s for s, _ in starts), statistics.median(c for _, c in starts),
+                          statistics.median(s for s, _, _ in answers), statistics.median(c for _, c, _ in answers),
+                          max(r for _, _, r in answers))
+    cold_cpu = figures["cold"][3]
+    for label, (start_s, start_cpu, answer_s, answer_cpu, rss) in figures.items():
+        print(f"  {label}: session answer {answer_s:5.2f} s, CPU {answer_cpu:5.2f} s "
+              f"({answer_cpu / cold_cpu:4.2f}x cold), peak RSS {rss:6.1f} MB; "
+              f"session start {start_s:5.2f} s, CPU {start_cpu:5.2f} s", flush=True)
 
 
 def main() -> None:
