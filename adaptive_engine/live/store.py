@@ -981,6 +981,13 @@ def table_folder_for(location: str | Path) -> Path | None:
     return path.with_name(path.name + ".tables")
 
 
+def existing_table_folder(location: str | Path) -> Path | None:
+    """:func:`table_folder_for` a store file that exists already, else None (a command
+    that may still refuse its request must not leave a folder beside a store it never made)."""
+    folder = table_folder_for(location)
+    return folder if folder is not None and Path(sqlite_path(location)).is_file() else None
+
+
 def open_store(location: str | Path, *, create: bool = True, durable: bool = False,
                read_only: bool = False) -> SessionStore:
     """Open (and if needed create) the session store at ``location``.
