@@ -9,8 +9,9 @@ folder beside a SQLite store (``<store>.tables/``, owner-only like the store), s
 later process loads them in milliseconds instead of rebuilding them.
 
 A file is named by the bank's fingerprint and a digest of the grid, and holds a header
-(its format, the engine's table constants, the fingerprint, the grid), the bank's fields
-and the tables, as a NumPy ``.npz`` archive read without pickles.  A file that cannot be
+(its format, the engine's table constants, the fingerprint, the grid), the bank's fields,
+its canonical text (whose SHA-256 must be the fingerprint) and the tables, as a NumPy
+``.npz`` archive read without pickles.  A file that cannot be
 read, fails its checks (zip CRCs, header, shapes, the bank's own validation) or was written
 by an engine with other table constants is ignored and written again: the file is only
 ever a copy of what the engine would compute, never a source of decisions of its own.
@@ -29,9 +30,10 @@ import numpy as np
 from ..bank.item_bank import ItemBank
 from ..files import atomic_write
 from ..kernel import prepared
+from ..kernel.fingerprints import BANK_CONTENT_KEY, bank_content
 
 #: Version of the file layout; a file of another version is rebuilt.
-TABLE_FILE_FORMAT = 1
+TABLE_FILE_FORMAT = 2
 #: The bank's text fields, kept in the header (JSON keeps any Unicode text exactly).
 _TEXT_FIELDS = ("item_ids", "model", "area", "item_set", "status", "label")
 _NUMBER_FIELDS = ("a", "b", "c", "d", "thresholds")
@@ -86,9 +88,13 @@ def _bank_from_archive(archive, bank_id: str, grid: np.ndarray) -> ItemBank | No
         return None
     for array in (log_table, tables.grid, tables.items, tables.reach, tables.ceiling):
         array.setflags(write=False)
+    content = bytes(archive["content"]).decode("utf-8")
+    if hashlib.sha256(content.encode("utf-8")).hexdigest() != bank_id:
+        return None
     cache = {
         prepared.RANKED_TABLES_KEY: tables,
         prepared.log_table_key(grid): log_table,
+        BANK_CONTENT_KEY: (bank_id, content),  # the canonical text whose digest is the id
     }
     # the bank checks itself again as it is made (a file that fails raises: not used)
     return ItemBank(**{f: header[f] for f in _TEXT_FIELDS}, **numbers,
@@ -115,8 +121,12 @@ def save_prepared_bank(folder: str | Path, bank_id: str, bank: ItemBank, grid: n
                   "enemy_groups": [list(g) for g in bank.enemy_groups],
                   "dimension_names": list(bank.dimension_names),
                   **{f: [str(x) for x in getattr(bank, f)] for f in _TEXT_FIELDS}}
+        fingerprint, content = bank_content(bank)
+        if fingerprint != bank_id:
+            return None
         tables = prepared.ranked_tables(bank)
         arrays = {
+            "content": np.frombuffer(content.encode("utf-8"), dtype=np.uint8),
             "header": np.frombuffer(json.dumps(header, ensure_ascii=False).encode("utf-8"), dtype=np.uint8),
             "grid": np.asarray(grid, dtype=float),
             "log_table": prepared.log_table_by_category(bank, grid),
