@@ -27,12 +27,16 @@ from pathlib import Path
 
 import numpy as np
 
+from .. import __version__
 from ..bank.item_bank import ItemBank
 from ..files import atomic_write
 from ..kernel import prepared
+from ..kernel.decision_rules import DECISION_RULES_VERSION
 from ..kernel.fingerprints import BANK_CONTENT_KEY, bank_content
 
-#: Version of the file layout; a file of another version is rebuilt.
+#: Version of the file layout and of the rules that make its tables (raise it when either
+#: changes); a file of another version, or written by another engine version or under other
+#: decision rules, is rebuilt.
 TABLE_FILE_FORMAT = 2
 #: The bank's text fields, kept in the header (JSON keeps any Unicode text exactly).
 _TEXT_FIELDS = ("item_ids", "model", "area", "item_set", "status", "label")
@@ -41,7 +45,8 @@ _NUMBER_FIELDS = ("a", "b", "c", "d", "thresholds")
 
 def _constants() -> dict:
     """What the tables depend on besides the bank and the grid."""
-    return {"format": TABLE_FILE_FORMAT, "rank_step": prepared.RANK_STEP, "rank_depth": prepared.RANK_DEPTH}
+    return {"format": TABLE_FILE_FORMAT, "engine": __version__, "decision_rules": DECISION_RULES_VERSION,
+            "rank_step": prepared.RANK_STEP, "rank_depth": prepared.RANK_DEPTH}
 
 
 def table_file(folder: str | Path, bank_id: str, grid: np.ndarray) -> Path:
