@@ -70,7 +70,15 @@ def test_information_bound_is_the_peak_of_a_two_parameter_item():
 def bank_and_tables():
     # areas of ~650 items: more than RANK_CANDIDATES, so blocks leave items out
     bank = random_bank(2000, seed=3)
-    return bank, prepared.build_ranked_tables(bank)
+    return bank, prepared.build_ranked_tables(bank, by_area=True)
+
+
+def test_the_table_of_all_items_is_the_same_without_the_tables_per_area(bank_and_tables):
+    bank, tables = bank_and_tables
+    alone = prepared.build_ranked_tables(bank)
+    assert alone.items.shape[0] == 1
+    for name in ("items", "reach", "ceiling"):
+        assert np.array_equal(getattr(alone, name)[0], getattr(tables, name)[-1])
 
 
 def test_ranked_tables_list_the_most_informative_items(bank_and_tables):

@@ -160,3 +160,21 @@ def test_a_session_call_imports_no_heavy_library():
             "if m in sys.modules)))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == ""
+
+
+def test_tables_per_area_are_added_to_the_file_when_a_design_needs_them(tmp_path):
+    # minimal.toml has no blueprint (one table for all items); the licensing exam selects
+    # within the most-behind area (Kingsbury & Zara 1989), which needs a table per area
+    minimal = read_design(ROOT / "simulations" / "minimal.toml")
+    db, folder, bank_id = tmp_path / "s.db", tmp_path / "s.db.tables", bank_content(BANK)[0]
+    grid = context_grid(minimal)
+    assert np.array_equal(grid, context_grid(DESIGN))
+    with open_store(db) as store:
+        start_session(store, minimal, BANK, seed=1, cache=ProcessCache())
+    assert table_cache.load_prepared_bank(folder, bank_id, grid) is not None
+    assert table_cache.load_prepared_bank(folder, bank_id, grid, by_area=True) is None
+    with open_store(db) as store:
+        start_session(store, DESIGN, BANK, seed=1, cache=ProcessCache())
+    # the file now serves both designs
+    assert table_cache.load_prepared_bank(folder, bank_id, grid, by_area=True) is not None
+    assert table_cache.load_prepared_bank(folder, bank_id, grid) is not None

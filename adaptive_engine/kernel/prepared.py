@@ -13,7 +13,7 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
-from ..design.types import Design, ExposureMethod, SelectionCriterion
+from ..design.types import BlueprintMethod, Design, ExposureMethod, SelectionCriterion
 from ..irt import models
 
 #: An area maximum that stands for "no maximum": far above any test length (at most
@@ -35,28 +35,36 @@ RANK_CANDIDATES = 256
 class RankedTables:
     """Top items by Fisher information at each point of a fine grid, per content area.
 
-    Table ``k < A`` ranks the operational items of area ``k``; table ``A`` ranks all
-    operational items.  ``items[k, g]`` lists the RANK_DEPTH most informative items at
-    ``grid[g]`` (best first, ties in bank order, -1 padded); ``reach[k, g, j]`` bounds
-    listed item j's information within half a grid step of ``grid[g]``; ``ceiling[k, g]``
-    bounds the information of every item *not* listed there in the same way.  A candidate
-    whose exact information at theta is at least the ceiling provably beats every unlisted
-    item.
+    The last table ranks all operational items; with ``by_area`` (:func:`ranked_tables`)
+    table ``k < A`` before it ranks the operational items of area ``k``.  ``items[k, g]``
+    lists the RANK_DEPTH most informative items at ``grid[g]`` (best first, ties in bank
+    order, -1 padded); ``reach[k, g, j]`` bounds listed item j's information within half a
+    grid step of ``grid[g]``; ``ceiling[k, g]`` bounds the information of every item *not*
+    listed there in the same way.  A candidate whose exact information at theta is at least
+    the ceiling provably beats every unlisted item.
     """
 
     grid: np.ndarray  # (Gf,)
-    items: np.ndarray  # (A + 1, Gf, D)
+    items: np.ndarray  # (A + 1, Gf, D), or (1, Gf, D) without the tables per area
     reach: np.ndarray  # (A + 1, Gf, D)
     ceiling: np.ndarray  # (A + 1, Gf)
 
 
-def ranked_tables(bank: ItemBank) -> RankedTables:
-    """The ranked tables of the bank's operational items (computed once per bank)."""
+def ranked_tables(bank: ItemBank, *, by_area: bool = False) -> RankedTables:
+    """The ranked tables of the bank's operational items (computed once per bank).
+
+    Without ``by_area`` only the table of all operational items (index 0); with it, a table
+    per content area as well (only selection restricted to one area needs those: their
+    memory grows with the number of areas).
+    """
+    if by_area:
+        return bank.cached(RANKED_AREA_TABLES_KEY, lambda: build_ranked_tables(bank, by_area=True))
     return bank.cached(RANKED_TABLES_KEY, lambda: build_ranked_tables(bank))
 
 
-#: Where a bank keeps its ranked tables (:meth:`ItemBank.cached`).
+#: Where a bank keeps its ranked tables (:meth:`ItemBank.cached`): all items; and per area.
 RANKED_TABLES_KEY = ("ranked_tables", RANK_STEP, RANK_DEPTH)
+RANKED_AREA_TABLES_KEY = ("ranked_tables_by_area", RANK_STEP, RANK_DEPTH)
 
 
 def log_table_key(grid: np.ndarray) -> tuple:
@@ -70,15 +78,21 @@ def context_grid(design: Design) -> np.ndarray:
     return np.round(np.linspace(sc.grid_min, sc.grid_max, sc.grid_points), 12)
 
 
-def build_ranked_tables(bank: ItemBank) -> RankedTables:
+def selects_within_areas(design: Design) -> bool:
+    """Whether the design's selection may be restricted to one content area (constrained
+    CAT, which needs the ranked tables per area)."""
+    return bool(design.blueprint.areas) and design.blueprint.method is BlueprintMethod.MOST_BEHIND_AREA
+
+
+def build_ranked_tables(bank: ItemBank, *, by_area: bool = False) -> RankedTables:
     """Build the ranked tables block by block, in memory and time linear in the bank.
 
     The fine grid is cut into blocks of RANK_BLOCK points.  In each block, an upper bound
     of every item's information over the block (:func:`information_bound`) picks the
-    candidates per area: only they get exact information on the block's points.  The
-    items left out enter each ceiling through their bound, and a block whose left-out
-    bound could exceed a ceiling of the candidates is done again with four times as many
-    candidates, so the tables are those of evaluating every item everywhere.
+    candidates (per area with ``by_area``): only they get exact information on the block's
+    points.  The items left out enter each ceiling through their bound, and a block whose
+    left-out bound could exceed a ceiling of the candidates is done again with four times
+    as many candidates, so the tables are those of evaluating every item everywhere.
 
     ``reach`` adds to an item's information at a grid point 1.5 times its larger change
     over the two neighbouring grid steps, times half a step: a bound of its information
@@ -91,23 +105,26 @@ def build_ranked_tables(bank: ItemBank) -> RankedTables:
     gf = grid.size
     points = np.concatenate([[grid[0] - h], grid, [grid[-1] + h]])  # one extra point each side
     operational = np.flatnonzero(bank.status == "operational")
-    area_of = bank.area_index[operational]
-    groups = [operational[area_of == k] for k in range(len(bank.areas))]
-    n_tables = len(groups) + 1
+    if by_area:
+        area_of = bank.area_index[operational]
+        pools = [operational[area_of == k] for k in range(len(bank.areas))]
+    else:
+        pools = [operational]
+    n_tables = len(pools) + 1 if by_area else 1
     items = np.full((n_tables, gf, RANK_DEPTH), -1, dtype=np.int64)
     reach = np.full(items.shape, -np.inf)
     ceiling = np.full((n_tables, gf), -np.inf)
     if operational.size == 0:
         return RankedTables(grid=grid, items=items, reach=reach, ceiling=ceiling)
     params = bank.params
-    largest = max(g.size for g in groups)
+    largest = max(p.size for p in pools)
     for g0 in range(0, gf, RANK_BLOCK):
         g1 = min(g0 + RANK_BLOCK, gf)
         bound = information_bound(params, grid[g0] - h / 2, grid[g1 - 1] + h / 2)
         m = RANK_CANDIDATES
         while True:
             cand_sets, left_out = [], []
-            for members in groups:
+            for members in pools:
                 if members.size <= m:
                     cand_sets.append(members)
                     left_out.append(-np.inf)
@@ -122,25 +139,23 @@ def build_ranked_tables(bank: ItemBank) -> RankedTables:
             step = np.abs(np.diff(info, axis=0))
             block_reach = info[1:-1] + 0.75 * np.maximum(step[:-1], step[1:]) + 5e-12
             block_info = info[1:-1]
-            columns = [np.searchsorted(cand, c_k) for c_k in cand_sets]
+            columns = [np.searchsorted(cand, c_k) for c_k in cand_sets] if by_area else []
             columns.append(np.arange(cand.size))
-            left_out.append(max(left_out))
-            done = []
-            for k, cols in enumerate(columns):
-                done.append(_rank_block(cand, cols, block_info, block_reach, left_out[k]))
+            table_left_out = (left_out if by_area else []) + [max(left_out)]
+            done = [_rank_block(cand, cols, block_info, block_reach) for cols in columns]
             # the left-out items' bound must not decide a ceiling: else take more candidates
-            if m >= largest or all(np.all(lo <= cmax) for lo, (_, _, cmax) in zip(left_out, done)):
+            if m >= largest or all(np.all(lo <= cmax) for lo, (_, _, cmax) in zip(table_left_out, done)):
                 break
             m *= 4
         for k, (listed, listed_reach, cmax) in enumerate(done):
             depth = listed.shape[1]
             items[k, g0:g1, :depth] = listed
             reach[k, g0:g1, :depth] = listed_reach
-            ceiling[k, g0:g1] = np.maximum(cmax, left_out[k])
+            ceiling[k, g0:g1] = np.maximum(cmax, table_left_out[k])
     return RankedTables(grid=grid, items=items, reach=reach, ceiling=ceiling)
 
 
-def _rank_block(cand, cols, block_info, block_reach, left_out):
+def _rank_block(cand, cols, block_info, block_reach):
     """The listed items (W, depth), their reach and the ceiling of the unlisted candidates
     (W,) of one table in one block; ``cols`` index ``cand`` in bank order."""
     w = block_info.shape[0]

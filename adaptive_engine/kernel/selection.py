@@ -304,13 +304,14 @@ def _choose_ranked(ctx, state, rows, cand, values, ok) -> RankedChoice:
 
 def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice:
     """Maximum-information pick from the ranked short lists; returns the rows it proved."""
-    tables = ranked_tables(ctx.bank)
+    # the tables per area only when a row is restricted to one area (constrained CAT)
+    tables = ranked_tables(ctx.bank, by_area=bool(np.any(restrict >= 0)))
     items_tab, reach_tab, ceil_tab, grid = tables.items, tables.reach, tables.ceiling, tables.grid
     theta = state.theta[rows]
     g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
     inside = (g >= 0) & (g < grid.size)
     g = np.clip(g, 0, grid.size - 1)
-    which = np.where(restrict >= 0, restrict, len(ctx.bank.areas))
+    which = np.where(restrict >= 0, restrict, items_tab.shape[0] - 1)  # the last table: all items
     cand = items_tab[which, g]  # (R, D)
     reach = reach_tab[which, g]
     ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)

@@ -49,7 +49,7 @@ from ..errors import SessionError
 from ..jsonable import plain
 from ..kernel import decision_rules
 from ..kernel.decision_rules import RuleSet, current_rule_set, installed_versions, rule_set
-from ..kernel.prepared import TestContext, context_grid
+from ..kernel.prepared import TestContext, context_grid, selects_within_areas
 from ..kernel.random_streams import stream_key
 from ..kernel.state import KernelState
 from .store import (
@@ -112,11 +112,12 @@ class ProcessCache:
                 if design is None:
                     design = store.load_design(design_id)
                 folder = table_folder if table_folder is not None else getattr(store, "table_folder", None)
+                by_area = selects_within_areas(design)
                 kept = None
                 if folder is not None:
                     from .table_cache import load_prepared_bank
 
-                    kept = load_prepared_bank(folder, bank_id, context_grid(design))
+                    kept = load_prepared_bank(folder, bank_id, context_grid(design), by_area=by_area)
                 if kept is not None:
                     bank = kept
                 elif bank is None:
@@ -125,7 +126,7 @@ class ProcessCache:
                 if folder is not None and kept is None and not getattr(store, "read_only", False):
                     from .table_cache import save_prepared_bank
 
-                    save_prepared_bank(folder, bank_id, bank, ctx.grid)
+                    save_prepared_bank(folder, bank_id, bank, ctx.grid, by_area=by_area)
                 self._contexts[key] = ctx
                 while len(self._contexts) > self.max_contexts:
                     self._contexts.popitem(last=False)

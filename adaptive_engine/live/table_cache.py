@@ -37,7 +37,7 @@ from ..kernel.fingerprints import BANK_CONTENT_KEY, bank_content
 #: Version of the file layout and of the rules that make its tables (raise it when either
 #: changes); a file of another version, or written by another engine version or under other
 #: decision rules, is rebuilt.
-TABLE_FILE_FORMAT = 2
+TABLE_FILE_FORMAT = 3
 #: The bank's text fields, kept in the header (JSON keeps any Unicode text exactly).
 _TEXT_FIELDS = ("item_ids", "model", "area", "item_set", "status", "label")
 _NUMBER_FIELDS = ("a", "b", "c", "d", "thresholds")
@@ -55,23 +55,27 @@ def table_file(folder: str | Path, bank_id: str, grid: np.ndarray) -> Path:
     return Path(folder) / f"{bank_id}-{grid_digest}.npz"
 
 
-def load_prepared_bank(folder: str | Path, bank_id: str, grid: np.ndarray) -> ItemBank | None:
+def load_prepared_bank(folder: str | Path, bank_id: str, grid: np.ndarray, *,
+                       by_area: bool = False) -> ItemBank | None:
     """The bank ``bank_id`` with its tables on ``grid`` already made, or None.
 
-    None when there is no file, or it is unreadable, fails a check, or was written under
-    other table constants: the caller then reads the bank from the store and builds.
+    None when there is no file, or it is unreadable, fails a check, was written under
+    other table constants, or lacks the ranked tables per area that ``by_area`` asks for:
+    the caller then reads the bank from the store and builds (and writes the file again).
     """
     path = table_file(folder, bank_id, grid)
     try:
         with np.load(path, allow_pickle=False) as archive:
-            return _bank_from_archive(archive, bank_id, grid)
+            return _bank_from_archive(archive, bank_id, grid, by_area)
     except Exception:  # noqa: BLE001 - any failure means: not usable, build instead
         return None
 
 
-def _bank_from_archive(archive, bank_id: str, grid: np.ndarray) -> ItemBank | None:
+def _bank_from_archive(archive, bank_id: str, grid: np.ndarray, need_areas: bool) -> ItemBank | None:
     header = json.loads(bytes(archive["header"]).decode("utf-8"))
     if header.get("constants") != _constants() or header.get("bank_id") != bank_id:
+        return None
+    if need_areas and not header["by_area"]:
         return None
     if not np.array_equal(archive["grid"], grid):
         return None
@@ -80,7 +84,8 @@ def _bank_from_archive(archive, bank_id: str, grid: np.ndarray) -> ItemBank | No
     log_table = archive["log_table"]
     tables = prepared.RankedTables(grid=archive["rank_grid"], items=archive["rank_items"],
                                    reach=archive["rank_reach"], ceiling=archive["rank_ceiling"])
-    n_tables = len(dict.fromkeys(header["area"])) + 1
+    by_area = bool(header["by_area"])
+    n_tables = len(dict.fromkeys(header["area"])) + 1 if by_area else 1
     shapes_ok = (
         all(numbers[f].dtype == np.float64 and numbers[f].shape[0] == n for f in _NUMBER_FIELDS)
         and log_table.dtype == np.float64
@@ -96,8 +101,12 @@ def _bank_from_archive(archive, bank_id: str, grid: np.ndarray) -> ItemBank | No
     content = bytes(archive["content"]).decode("utf-8")
     if hashlib.sha256(content.encode("utf-8")).hexdigest() != bank_id:
         return None
+    # the table of all items is the last one of the tables per area
+    everything = prepared.RankedTables(grid=tables.grid, items=tables.items[-1:], reach=tables.reach[-1:],
+                                       ceiling=tables.ceiling[-1:])
     cache = {
-        prepared.RANKED_TABLES_KEY: tables,
+        prepared.RANKED_TABLES_KEY: everything,
+        **({prepared.RANKED_AREA_TABLES_KEY: tables} if by_area else {}),
         prepared.log_table_key(grid): log_table,
         BANK_CONTENT_KEY: (bank_id, content),  # the canonical text whose digest is the id
     }
@@ -107,8 +116,10 @@ def _bank_from_archive(archive, bank_id: str, grid: np.ndarray) -> ItemBank | No
                     dimension_names=header["dimension_names"], _cache=cache)
 
 
-def save_prepared_bank(folder: str | Path, bank_id: str, bank: ItemBank, grid: np.ndarray) -> Path | None:
-    """Write ``bank`` and its tables on ``grid`` (made if missing) for later processes.
+def save_prepared_bank(folder: str | Path, bank_id: str, bank: ItemBank, grid: np.ndarray, *,
+                       by_area: bool = False) -> Path | None:
+    """Write ``bank`` and its tables on ``grid`` (made if missing) for later processes;
+    ``by_area``: with the ranked tables per content area.
 
     Returns the file, or None when the bank is not kept (a bank of multidimensional
     models) or the folder cannot be written: the file only saves time, so failing to
@@ -122,14 +133,15 @@ def save_prepared_bank(folder: str | Path, bank_id: str, bank: ItemBank, grid: n
             # owner-only, like the SQLite store beside it: the tables hold the bank's items
             with contextlib.suppress(FileExistsError):
                 os.mkdir(folder, 0o700)
-        header = {"constants": _constants(), "bank_id": bank_id, "scaling": bank.scaling, "name": bank.name,
+        header = {"constants": _constants(), "bank_id": bank_id, "by_area": by_area,
+                  "scaling": bank.scaling, "name": bank.name,
                   "enemy_groups": [list(g) for g in bank.enemy_groups],
                   "dimension_names": list(bank.dimension_names),
                   **{f: [str(x) for x in getattr(bank, f)] for f in _TEXT_FIELDS}}
         fingerprint, content = bank_content(bank)
         if fingerprint != bank_id:
             return None
-        tables = prepared.ranked_tables(bank)
+        tables = prepared.ranked_tables(bank, by_area=by_area)
         arrays = {
             "content": np.frombuffer(content.encode("utf-8"), dtype=np.uint8),
             "header": np.frombuffer(json.dumps(header, ensure_ascii=False).encode("utf-8"), dtype=np.uint8),
