@@ -172,6 +172,10 @@ def session_calls(folder: Path, calls: int) -> None:
         figures[label] = (statistics.median(s for s, _ in starts), statistics.median(c for _, c in starts),
                           statistics.median(s for s, _, _ in answers), statistics.median(c for _, c, _ in answers),
                           max(r for _, _, r in answers))
+    # the floor: a process that starts Python and imports numpy, nothing else
+    floor = [child(["-c", "import numpy"]) for _ in range(calls)]
+    print(f"  a process that only imports numpy: {statistics.median(s for s, _, _, _ in floor):5.2f} s, "
+          f"CPU {statistics.median(c for _, _, _, c in floor):5.2f} s")
     cold_cpu = figures["cold"][3]
     for label, (start_s, start_cpu, answer_s, answer_cpu, rss) in figures.items():
         print(f"  {label}: session answer {answer_s:5.2f} s, CPU {answer_cpu:5.2f} s "
