@@ -14,7 +14,8 @@ Prints figures and asserts nothing.  Run as ``python3 benchmarks/bench_bank_scal
 (c) ``adaptive-engine session answer`` and ``session start`` on a 5,000-item bank as whole
     processes, the median of several calls: cold (the store's table folder removed before
     each call, so each builds the tables from the stored bank) and warm (the tables read
-    from the folder another call left).
+    from the folder another call left); beside them, a process that only imports numpy
+    (the floor of any such call).
 """
 
 from __future__ import annotations
