@@ -10,17 +10,27 @@
 * ``schema/item_bank.schema.json`` -- the JSON Schema of the JSON bank format.
 """
 
-from .files import bank_to_csv_text, bank_to_json_text, convert_bank, write_bank
-from .item_bank import (
-    ItemBank,
-    bank_from_records,
-    canonical_model,
-    load_bank,
-    read_bank_csv_text,
-    read_bank_json_text,
-)
-from .responses import ResponseTable, read_responses, read_responses_text
-from .summary import BankSummary, InformationCurves, information_curves, summarize_bank
+# Public names are loaded from their modules on first use: importing one module of
+# the package does not import the others (a short command-line call stays quick).
+_LAZY = {
+    "bank_to_csv_text": "files",
+    "bank_to_json_text": "files",
+    "convert_bank": "files",
+    "write_bank": "files",
+    "ItemBank": "item_bank",
+    "bank_from_records": "item_bank",
+    "canonical_model": "item_bank",
+    "load_bank": "item_bank",
+    "read_bank_csv_text": "item_bank",
+    "read_bank_json_text": "item_bank",
+    "ResponseTable": "responses",
+    "read_responses": "responses",
+    "read_responses_text": "responses",
+    "BankSummary": "summary",
+    "InformationCurves": "summary",
+    "information_curves": "summary",
+    "summarize_bank": "summary",
+}
 
 __all__ = [
     "BankSummary", "InformationCurves", "ItemBank", "ResponseTable", "bank_from_records",
@@ -28,3 +38,17 @@ __all__ = [
     "information_curves", "load_bank", "read_bank_csv_text", "read_bank_json_text",
     "read_responses", "read_responses_text", "summarize_bank", "write_bank",
 ]
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(f"{__name__}.{_LAZY[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))

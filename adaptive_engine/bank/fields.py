@@ -79,9 +79,21 @@ def parse_number(raw: Any, name: str, default: float | None) -> tuple[float | No
 
 def numbered_keys(rec: Mapping[str, Any], pattern: re.Pattern) -> list[tuple[int, str]]:
     """``(number, key)`` of the keys of ``rec`` matching ``pattern`` (one group: the digits), sorted."""
-    # a key of thousands of digits is no column number (and Python refuses to convert it)
-    return sorted((int(d) if len(d := m.group(1)) <= 9 else 10**9, key)
-                  for key in rec if (m := pattern.match(str(key))))
+    # the records of one file share their keys (a CSV file's header): match them once
+    keys = tuple(rec)
+    found = _NUMBERED_KEYS.get((pattern, keys))
+    if found is None:
+        # a key of thousands of digits is no column number (and Python refuses to convert it)
+        found = sorted((int(d) if len(d := m.group(1)) <= 9 else 10**9, key)
+                       for key in keys if (m := pattern.match(str(key))))
+        if len(_NUMBERED_KEYS) >= 256:
+            _NUMBERED_KEYS.clear()
+        _NUMBERED_KEYS[(pattern, keys)] = found
+    return list(found)
+
+
+#: (pattern, keys of a record) -> numbered_keys; bounded (cleared when full).
+_NUMBERED_KEYS: dict = {}
 
 
 def numbered_values(rec: Mapping[str, Any], *, list_key: str, prefix: str, noun: str,

@@ -106,7 +106,36 @@ def _one_line(exc: click.UsageError) -> click.ClickException:
     return _UsageProblem(*_usage_location(exc))
 
 
-@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
+
+
+#: Command -> the module that registers it on :data:`main` (imported when the command runs,
+#: so that ``session answer`` does not pay for the imports of ``simulate`` or ``serve``).
+COMMAND_MODULES = {
+    "bank": "bank_commands", "calibrate": "calibrate_commands", "link": "calibrate_commands",
+    "pretest": "calibrate_commands", "design": "design_commands", "release": "release_commands",
+    "score": "score_commands", "serve": "service_commands", "token": "service_commands",
+    "session": "session_commands", "simulate": "simulate_commands", "tune": "simulate_commands",
+    "exposure": "simulate_commands", "demo": "simulate_commands",
+}
+
+
+class _LazyGroup(_Group):
+    """The root group: each command's module is imported on first use."""
+
+    group_class = _Group  # its subgroups (bank, session, ...) are plain _Group
+
+    def list_commands(self, ctx):
+        return sorted(set(COMMAND_MODULES) | set(self.commands))
+
+    def get_command(self, ctx, name):
+        if name not in self.commands and name in COMMAND_MODULES:
+            import importlib
+
+            importlib.import_module(f"{__package__}.{COMMAND_MODULES[name]}")
+        return super().get_command(ctx, name)
+
+
+@click.group(cls=_LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="adaptive-engine")
 def main():
     """Computerized adaptive testing: check banks, score, design, simulate, run and calibrate."""

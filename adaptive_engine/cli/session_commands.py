@@ -84,7 +84,7 @@ def start(db_path, release, design_file, bank_file, examinee, seed, prior_mean, 
     from ..design.bank_fit import design_warnings
     from ..design.toml_file import read_design
     from ..live.session import commit_start, prepare_start
-    from ..live.store import open_store
+    from ..live.store import existing_table_folder, open_store
 
     if release is not None:
         if design_file is not None or bank_file is not None:
@@ -107,8 +107,9 @@ def start(db_path, release, design_file, bank_file, examinee, seed, prior_mean, 
     # every check of the request runs before the store is opened, so a refused start
     # creates no file -- and never deletes one: another process may be using a store
     # that did not exist a moment ago
-    prepared = prepare_start(design, bank, examinee=examinee, seed=seed,
-                             prior_mean=prior_mean, prior_sd=prior_sd)
+    # the store's prepared tables are used (and left) only when the store exists already
+    prepared = prepare_start(design, bank, examinee=examinee, seed=seed, prior_mean=prior_mean,
+                             prior_sd=prior_sd, table_folder=existing_table_folder(db_path))
     with open_store(db_path) as store:
         reply = commit_start(store, prepared)
     _print_start(reply, as_json, ids_only)

@@ -7,36 +7,45 @@
 * :mod:`.exposure_parameters` -- the Sympson-Hetter exposure parameter file.
 """
 
-from .bank_fit import check_design_against_bank, describe_design, require_design_fits_bank
-from .exposure_parameters import read_exposure_parameters
-from .toml_file import design_as_dict, design_from_dict, design_to_toml, parse_design, read_design, validate_design
-from .types import (
-    BLUEPRINT_METHODS,
-    CRITERIA,
-    EXPOSURE_METHODS,
-    EXTREME_PATTERN_METHODS,
-    RENAMED_KEYS,
-    RENAMED_VALUES,
-    SCORING_METHODS,
-    AreaRule,
-    Blueprint,
-    BlueprintMethod,
-    ConfidenceRule,
-    CutScore,
-    Design,
-    Exposure,
-    ExposureMethod,
-    ExtremePatternMethod,
-    Opening,
-    Reporting,
-    ScaleRule,
-    Scoring,
-    ScoringMethod,
-    Selection,
-    SelectionCriterion,
-    SprtRule,
-    Stopping,
-)
+# Public names are loaded from their modules on first use: importing one module of
+# the package does not import the others (a short command-line call stays quick).
+_LAZY = {
+    "check_design_against_bank": "bank_fit",
+    "describe_design": "bank_fit",
+    "require_design_fits_bank": "bank_fit",
+    "read_exposure_parameters": "exposure_parameters",
+    "design_as_dict": "toml_file",
+    "design_from_dict": "toml_file",
+    "design_to_toml": "toml_file",
+    "parse_design": "toml_file",
+    "read_design": "toml_file",
+    "validate_design": "toml_file",
+    "BLUEPRINT_METHODS": "types",
+    "CRITERIA": "types",
+    "EXPOSURE_METHODS": "types",
+    "EXTREME_PATTERN_METHODS": "types",
+    "RENAMED_KEYS": "types",
+    "RENAMED_VALUES": "types",
+    "SCORING_METHODS": "types",
+    "AreaRule": "types",
+    "Blueprint": "types",
+    "BlueprintMethod": "types",
+    "ConfidenceRule": "types",
+    "CutScore": "types",
+    "Design": "types",
+    "Exposure": "types",
+    "ExposureMethod": "types",
+    "ExtremePatternMethod": "types",
+    "Opening": "types",
+    "Reporting": "types",
+    "ScaleRule": "types",
+    "Scoring": "types",
+    "ScoringMethod": "types",
+    "Selection": "types",
+    "SelectionCriterion": "types",
+    "SprtRule": "types",
+    "Stopping": "types",
+}
 
 __all__ = [
     "BLUEPRINT_METHODS", "CRITERIA", "EXPOSURE_METHODS", "EXTREME_PATTERN_METHODS", "SCORING_METHODS",
@@ -48,3 +57,17 @@ __all__ = [
     "design_to_toml", "parse_design", "read_design", "read_exposure_parameters",
     "require_design_fits_bank", "validate_design",
 ]
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(f"{__name__}.{_LAZY[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))

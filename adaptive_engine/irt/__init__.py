@@ -13,12 +13,25 @@
 * :mod:`.curves` -- item and test information, standard error and expected-score curves.
 """
 
-from .curves import expected_score_curve, item_information, standard_error_curve, test_information
-from .estimation import METHODS, AbilityEstimates, estimate, score_responses
-from .models import ItemParameters
-from .multidimensional import MultidimensionalParameters
-from .person_fit import PersonFit
-from .posterior import DEFAULT_GRID, normal_log_prior, posterior_mean_sd, posterior_weights
+# Public names are loaded from their modules on first use: importing one module of
+# the package does not import the others (a short command-line call stays quick).
+_LAZY = {
+    "expected_score_curve": "curves",
+    "item_information": "curves",
+    "standard_error_curve": "curves",
+    "test_information": "curves",
+    "METHODS": "estimation",
+    "AbilityEstimates": "estimation",
+    "estimate": "estimation",
+    "score_responses": "estimation",
+    "ItemParameters": "models",
+    "MultidimensionalParameters": "multidimensional",
+    "PersonFit": "person_fit",
+    "DEFAULT_GRID": "posterior",
+    "normal_log_prior": "posterior",
+    "posterior_mean_sd": "posterior",
+    "posterior_weights": "posterior",
+}
 
 __all__ = [
     "DEFAULT_GRID", "METHODS", "AbilityEstimates", "ItemParameters", "MultidimensionalParameters", "PersonFit",
@@ -27,3 +40,17 @@ __all__ = [
     "posterior_mean_sd", "posterior_weights", "score_responses", "standard_error_curve",
     "test_information",
 ]
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(f"{__name__}.{_LAZY[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))

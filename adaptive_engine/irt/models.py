@@ -25,7 +25,21 @@ from typing import NamedTuple
 
 import attrs
 import numpy as np
-from scipy.special import expit, log_expit
+
+
+def expit(x):
+    """The logistic function (scipy.special.expit; scipy is imported on first use)."""
+    from scipy.special import expit as logistic
+
+    return logistic(x)
+
+
+def log_expit(x):
+    """Log of the logistic function (scipy.special.log_expit, imported on first use)."""
+    from scipy.special import log_expit as log_logistic
+
+    return log_logistic(x)
+
 
 DICHOTOMOUS = 0
 GRADED = 1
@@ -261,8 +275,29 @@ def _partial_credit(theta, fp, D, want_second):
 
 def log_probabilities(params: ItemParameters, theta) -> np.ndarray:
     """Log category probabilities, shape ``broadcast(params, theta) + (C,)``."""
+    if _all_dichotomous(params):
+        return _dichotomous_log_probabilities(params, theta)
     shape, log_p, *_ = _family_terms(params, theta, False)
     return log_p.reshape(shape + (log_p.shape[1],))
+
+
+def _dichotomous_log_probabilities(params: ItemParameters, theta) -> np.ndarray:
+    """:func:`log_probabilities` of 1PL-4PL items: the operations of :func:`_dichotomous`
+    in the same order (the same values to the last bit), without the probabilities and
+    derivatives it also makes, and with the logarithms of the asymptotes taken once per
+    item instead of once per item and point."""
+    theta = np.asarray(theta, dtype=float)
+    a, b, c, d = params.a, params.b, params.c, params.d
+    shape = np.broadcast_shapes(a.shape, theta.shape, params.family.shape)
+    z = params.scaling * a * (theta - b)
+    with np.errstate(divide="ignore"):
+        log_c, log_d = np.log(c), np.log(d)
+        log_1c, log_1d = np.log1p(-c), np.log1p(-d)
+    ls, lt = log_expit(z), log_expit(-z)
+    out = np.empty(shape + (2,))
+    np.logaddexp(log_1c + lt, log_1d + ls, out=out[..., 0])
+    np.logaddexp(log_c + lt, log_d + ls, out=out[..., 1])
+    return out
 
 
 def probabilities(params: ItemParameters, theta) -> np.ndarray:

@@ -34,10 +34,9 @@ from __future__ import annotations
 
 import attrs
 import numpy as np
-from scipy.special import expit, log_expit
 
 from ..errors import AdaptiveEngineError
-from .models import DICHOTOMOUS, GRADED
+from .models import DICHOTOMOUS, GRADED, expit, log_expit  # scipy.special, imported on first use
 
 #: model name -> category family (the codes of :mod:`adaptive_engine.irt.models`).
 MULTIDIMENSIONAL_MODEL_FAMILY = {"M2PL": DICHOTOMOUS, "M3PL": DICHOTOMOUS, "MGRM": GRADED}

@@ -15,15 +15,40 @@ The live session (:mod:`adaptive_engine.live`) runs it on a batch of one, the si
 (:mod:`adaptive_engine.simulation`) on thousands.
 """
 
-from .cycle import FinalEstimates, answer, final_estimates, finish, rebuild, start
-from .final_report import final_reports
-from .prepared import TestContext, build_context
-from .random_streams import examinee_seeds, stream_key
-from .state import KernelState
-from .stopping import stop_reasons
+# Public names are loaded from their modules on first use: importing one module of
+# the package does not import the others (a short command-line call stays quick).
+_LAZY = {
+    "FinalEstimates": "cycle",
+    "answer": "cycle",
+    "final_estimates": "cycle",
+    "finish": "cycle",
+    "rebuild": "cycle",
+    "start": "cycle",
+    "final_reports": "final_report",
+    "TestContext": "prepared",
+    "build_context": "prepared",
+    "examinee_seeds": "random_streams",
+    "stream_key": "random_streams",
+    "KernelState": "state",
+    "stop_reasons": "stopping",
+}
 
 __all__ = [
     "FinalEstimates", "KernelState", "TestContext", "answer", "build_context", "examinee_seeds",
     "final_estimates", "final_reports", "finish", "rebuild", "start",
     "stop_reasons", "stream_key",
 ]
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(f"{__name__}.{_LAZY[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))

@@ -51,7 +51,6 @@ import math
 from decimal import ROUND_HALF_UP, Decimal
 
 import numpy as np
-from scipy.special import ndtri  # the standard normal quantile (scipy.stats is slow to import)
 
 from ..design.types import Design, ScaleRule
 from ..errors import AdaptiveEngineError
@@ -165,6 +164,8 @@ def final_reports(design: Design, *, theta, se, status, n_scored, n_pretest, sto
     lz_star = _column("lz_star", lz_star, b, float)
     sprt_dec = (np.zeros(b, dtype=np.int64) if sprt_decision is None
                 else _column("sprt_decision", sprt_decision, b, np.int64))
+
+    from scipy.special import ndtri  # the standard normal quantile; imported when needed
 
     z = ndtri(0.5 + 0.5 * rep.confidence)
     scale = rep.scale

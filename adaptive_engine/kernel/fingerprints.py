@@ -60,7 +60,11 @@ def bank_content(bank: ItemBank) -> tuple[str, str]:
         text = bank_to_json_text(bank)
         return sha256_text(text), text
 
-    return bank.cached(("store_content",), make)
+    return bank.cached(BANK_CONTENT_KEY, make)
+
+
+#: Where a bank keeps its ``(fingerprint, canonical_text)`` (:meth:`ItemBank.cached`).
+BANK_CONTENT_KEY = ("store_content",)
 
 
 def design_content(design: Design) -> tuple[str, str, str | None]:

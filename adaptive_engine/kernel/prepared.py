@@ -13,7 +13,7 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
-from ..design.types import Design, ExposureMethod, SelectionCriterion
+from ..design.types import BlueprintMethod, Design, ExposureMethod, SelectionCriterion
 from ..irt import models
 
 #: An area maximum that stands for "no maximum": far above any test length (at most
@@ -24,67 +24,181 @@ NO_MAXIMUM = 1 << 30
 RANK_STEP = 0.01
 #: Number of top-ranked items kept per fine-grid point (global list and per area).
 RANK_DEPTH = 32
+#: Fine-grid points ranked together: one block shares one candidate set per area.
+RANK_BLOCK = 16
+#: Items per area first evaluated exactly in a block (those with the highest information
+#: bound there); multiplied by four while the bound of the others could still matter.
+RANK_CANDIDATES = 256
 
 
 @attrs.frozen(eq=False)
 class RankedTables:
     """Top items by Fisher information at each point of a fine grid, per content area.
 
-    Table ``k < A`` ranks the operational items of area ``k``; table ``A`` ranks all
-    operational items.  ``items[k, g]`` lists the RANK_DEPTH most informative items at
-    ``grid[g]`` (best first, -1 padded); ``reach[k, g, j]`` bounds listed item j's
-    information within half a grid step of ``grid[g]``; ``ceiling[k, g]`` bounds the
-    information of every item *not* listed there in the same way.  A candidate whose exact
-    information at theta is at least the ceiling provably beats every unlisted item.
+    The last table ranks all operational items; with ``by_area`` (:func:`ranked_tables`)
+    table ``k < A`` before it ranks the operational items of area ``k``.  ``items[k, g]``
+    lists the RANK_DEPTH most informative items at ``grid[g]`` (best first, ties in bank
+    order, -1 padded); ``reach[k, g, j]`` bounds listed item j's information within half a
+    grid step of ``grid[g]``; ``ceiling[k, g]`` bounds the information of every item *not*
+    listed there in the same way.  A candidate whose exact information at theta is at least
+    the ceiling provably beats every unlisted item.
     """
 
     grid: np.ndarray  # (Gf,)
-    items: np.ndarray  # (A + 1, Gf, D)
+    items: np.ndarray  # (A + 1, Gf, D), or (1, Gf, D) without the tables per area
     reach: np.ndarray  # (A + 1, Gf, D)
     ceiling: np.ndarray  # (A + 1, Gf)
 
 
-def ranked_tables(bank: ItemBank) -> RankedTables:
-    """The ranked tables of the bank's operational items (computed once per bank)."""
+def ranked_tables(bank: ItemBank, *, by_area: bool = False) -> RankedTables:
+    """The ranked tables of the bank's operational items (computed once per bank).
 
-    def make():
-        grid = np.round(np.arange(-6.0, 6.0 + RANK_STEP / 2, RANK_STEP), 10)
-        info = np.empty((bank.n_items, grid.size))
-        for start in range(0, bank.n_items, 2000):
-            chunk = bank.params.take(np.arange(start, min(start + 2000, bank.n_items)))
-            info[start : start + 2000] = models.information(*models.outer(chunk, grid))
-        # steepest slope of each item's information curve, from differences on the fine
-        # grid, inflated by 1.5 plus a margin so that it bounds the true derivative
-        slope = np.abs(np.diff(info, axis=1)).max(axis=1) / RANK_STEP * 1.5 + 1e-9
-        # grid points as rows: every ranking below runs along contiguous rows
-        info_t = np.ascontiguousarray(info.T)  # (Gf, n)
-        reach_t = info_t + 0.5 * RANK_STEP * slope[None, :]
-        operational = np.flatnonzero(bank.status == "operational")
-        groups = [operational[bank.area_index[operational] == k] for k in range(len(bank.areas))]
-        groups.append(operational)
-        items = np.full((len(groups), grid.size, RANK_DEPTH), -1, dtype=np.int64)
-        reach = np.full(items.shape, -np.inf)
-        ceiling = np.full((len(groups), grid.size), -np.inf)
-        for k, members in enumerate(groups):
-            if members.size == 0:
-                continue
-            sub = info_t[:, members]  # (Gf, m)
-            depth = min(RANK_DEPTH, members.size)
-            if members.size > depth:
-                top = np.argpartition(-sub, depth - 1, axis=1)[:, :depth]  # unordered best
-                vals = np.take_along_axis(sub, top, axis=1)
-                order = np.take_along_axis(top, np.argsort(-vals, axis=1, kind="stable"), axis=1)
-            else:
-                order = np.argsort(-sub, axis=1, kind="stable")  # (Gf, depth)
-            sub_reach = reach_t[:, members]
-            items[k, :, :depth] = members[order]
-            reach[k, :, :depth] = np.take_along_axis(sub_reach, order, axis=1)
-            if members.size > depth:
-                np.put_along_axis(sub_reach, order, -np.inf, axis=1)  # listed items drop out
-                ceiling[k] = sub_reach.max(axis=1)
+    Without ``by_area`` only the table of all operational items (index 0); with it, a table
+    per content area as well (only selection restricted to one area needs those: their
+    memory grows with the number of areas).
+    """
+    if by_area:
+        return bank.cached(RANKED_AREA_TABLES_KEY, lambda: build_ranked_tables(bank, by_area=True))
+    return bank.cached(RANKED_TABLES_KEY, lambda: build_ranked_tables(bank))
+
+
+#: Where a bank keeps its ranked tables (:meth:`ItemBank.cached`): all items; and per area.
+RANKED_TABLES_KEY = ("ranked_tables", RANK_STEP, RANK_DEPTH)
+RANKED_AREA_TABLES_KEY = ("ranked_tables_by_area", RANK_STEP, RANK_DEPTH)
+
+
+def log_table_key(grid: np.ndarray) -> tuple:
+    """Where a bank keeps its log-probability table on ``grid`` (:func:`log_table_by_category`)."""
+    return ("kernel.log_table_by_category", np.asarray(grid, dtype=float).tobytes())
+
+
+def context_grid(design: Design) -> np.ndarray:
+    """The design's quadrature grid, as every context of the design has it."""
+    sc = design.scoring
+    return np.round(np.linspace(sc.grid_min, sc.grid_max, sc.grid_points), 12)
+
+
+def selects_within_areas(design: Design) -> bool:
+    """Whether the design's selection may be restricted to one content area (constrained
+    CAT, which needs the ranked tables per area)."""
+    return bool(design.blueprint.areas) and design.blueprint.method is BlueprintMethod.MOST_BEHIND_AREA
+
+
+def build_ranked_tables(bank: ItemBank, *, by_area: bool = False) -> RankedTables:
+    """Build the ranked tables block by block, in memory and time linear in the bank.
+
+    The fine grid is cut into blocks of RANK_BLOCK points.  In each block, an upper bound
+    of every item's information over the block (:func:`information_bound`) picks the
+    candidates (per area with ``by_area``): only they get exact information on the block's
+    points.  The items left out enter each ceiling through their bound, and a block whose
+    left-out bound could exceed a ceiling of the candidates is done again with four times
+    as many candidates, so the tables are those of evaluating every item everywhere.
+
+    ``reach`` adds to an item's information at a grid point 1.5 times its larger change
+    over the two neighbouring grid steps, times half a step: a bound of its information
+    within half a step of the point wherever the slope of the information curve changes
+    little over one step (0.01 on the theta scale, small against the curve's width
+    1 / (D a)).
+    """
+    h = RANK_STEP
+    grid = np.round(np.arange(-6.0, 6.0 + h / 2, h), 10)
+    gf = grid.size
+    points = np.concatenate([[grid[0] - h], grid, [grid[-1] + h]])  # one extra point each side
+    operational = np.flatnonzero(bank.status == "operational")
+    if by_area:
+        area_of = bank.area_index[operational]
+        pools = [operational[area_of == k] for k in range(len(bank.areas))]
+    else:
+        pools = [operational]
+    n_tables = len(pools) + 1 if by_area else 1
+    items = np.full((n_tables, gf, RANK_DEPTH), -1, dtype=np.int64)
+    reach = np.full(items.shape, -np.inf)
+    ceiling = np.full((n_tables, gf), -np.inf)
+    if operational.size == 0:
         return RankedTables(grid=grid, items=items, reach=reach, ceiling=ceiling)
+    params = bank.params
+    largest = max(p.size for p in pools)
+    for g0 in range(0, gf, RANK_BLOCK):
+        g1 = min(g0 + RANK_BLOCK, gf)
+        bound = information_bound(params, grid[g0] - h / 2, grid[g1 - 1] + h / 2)
+        m = RANK_CANDIDATES
+        while True:
+            cand_sets, left_out = [], []
+            for members in pools:
+                if members.size <= m:
+                    cand_sets.append(members)
+                    left_out.append(-np.inf)
+                    continue
+                b_k = bound[members]
+                keep = np.zeros(members.size, dtype=bool)
+                keep[np.argpartition(-b_k, m - 1)[:m]] = True
+                cand_sets.append(members[keep])  # bank order
+                left_out.append(float(b_k[~keep].max()))
+            cand = np.sort(np.concatenate(cand_sets))
+            info = models.information(params.take(cand[None, :]), points[g0 : g1 + 2, None])  # (W + 2, m')
+            step = np.abs(np.diff(info, axis=0))
+            block_reach = info[1:-1] + 0.75 * np.maximum(step[:-1], step[1:]) + 5e-12
+            block_info = info[1:-1]
+            columns = [np.searchsorted(cand, c_k) for c_k in cand_sets] if by_area else []
+            columns.append(np.arange(cand.size))
+            table_left_out = (left_out if by_area else []) + [max(left_out)]
+            done = [_rank_block(cand, cols, block_info, block_reach) for cols in columns]
+            # the left-out items' bound must not decide a ceiling: else take more candidates
+            if m >= largest or all(np.all(lo <= cmax) for lo, (_, _, cmax) in zip(table_left_out, done)):
+                break
+            m *= 4
+        for k, (listed, listed_reach, cmax) in enumerate(done):
+            depth = listed.shape[1]
+            items[k, g0:g1, :depth] = listed
+            reach[k, g0:g1, :depth] = listed_reach
+            ceiling[k, g0:g1] = np.maximum(cmax, table_left_out[k])
+    return RankedTables(grid=grid, items=items, reach=reach, ceiling=ceiling)
 
-    return bank.cached(("ranked_tables", RANK_STEP, RANK_DEPTH), make)
+
+def _rank_block(cand, cols, block_info, block_reach):
+    """The listed items (W, depth), their reach and the ceiling of the unlisted candidates
+    (W,) of one table in one block; ``cols`` index ``cand`` in bank order."""
+    w = block_info.shape[0]
+    if cols.size == 0:
+        return np.empty((w, 0), dtype=np.int64), np.empty((w, 0)), np.full(w, -np.inf)
+    sub = block_info[:, cols]
+    depth = min(RANK_DEPTH, cols.size)
+    if cols.size > depth:
+        # the best `depth` (unordered), back in bank order so that the stable sort by
+        # information breaks ties by bank order, as the evaluation of every item does
+        top = np.sort(np.argpartition(-sub, depth - 1, axis=1)[:, :depth], axis=1)
+        vals = np.take_along_axis(sub, top, axis=1)
+        order = np.take_along_axis(top, np.argsort(-vals, axis=1, kind="stable"), axis=1)
+    else:
+        order = np.argsort(-sub, axis=1, kind="stable")
+    sub_reach = block_reach[:, cols]
+    listed = cand[cols][order]
+    listed_reach = np.take_along_axis(sub_reach, order, axis=1)
+    if cols.size > depth:
+        np.put_along_axis(sub_reach, order, -np.inf, axis=1)  # listed items drop out
+        cmax = sub_reach.max(axis=1)
+    else:
+        cmax = np.full(w, -np.inf)
+    return listed, listed_reach, cmax
+
+
+def information_bound(params: models.ItemParameters, lo: float, hi: float) -> np.ndarray:
+    """An upper bound of each item's Fisher information for theta in [lo, hi], (n,).
+
+    For 1PL-4PL items ``P = c + (d - c) s`` with ``s`` the logistic of ``z = D a (theta - b)``,
+    so ``P' = D a (d - c) s (1 - s)``, ``P >= (d - c) s`` and ``1 - P >= (d - c)(1 - s)``;
+    hence ``I = P'^2 / (P (1 - P)) <= (D a)^2 s (1 - s)``, the information of the same item
+    without asymptotes (Birnbaum 1968).  That bound peaks at ``theta = b`` and falls on both
+    sides, so its maximum on the interval is at ``b`` or at the nearer end.  Polytomous
+    items get no bound (infinity): they are always evaluated exactly.
+    """
+    slope = np.abs(params.a * params.scaling)
+    z = slope * np.abs(np.clip(params.b, lo, hi) - params.b)
+    e = np.exp(-np.minimum(z, 700.0))
+    bound = slope * slope * e / (1.0 + e) ** 2
+    # a relative margin for the rounding of the exact computation
+    bound = bound * (1.0 + 1e-9) + 1e-300
+    return np.where(params.family == models.DICHOTOMOUS, bound, np.inf)
 
 
 @attrs.frozen(eq=False)
@@ -94,9 +208,8 @@ class TestContext:
     design: Design
     bank: ItemBank
     grid: np.ndarray
-    log_table: np.ndarray  # (n, G, C)
+    log_table: np.ndarray  # (n, G, C): a view of log_table_by_category
     log_table_by_category: np.ndarray  # (n, C, G): contiguous rows for posterior updates
-    info_grid: np.ndarray  # (n, G) information on the posterior grid
     operational: np.ndarray  # (n,) bool
     pretest_items: np.ndarray  # (p,) int
     area: np.ndarray  # (n,) int
@@ -121,6 +234,12 @@ class TestContext:
     def n_items(self) -> int:
         return self.bank.n_items
 
+    @property
+    def info_grid(self) -> np.ndarray:
+        """Information of every item on the posterior grid, (n, G); made on first use
+        (only posterior-weighted selection needs it) and kept with the bank."""
+        return self.bank.information_table(self.grid)
+
 
 def build_context(design: Design, bank: ItemBank) -> TestContext:
     """Precompute the fixed facts of ``design`` on ``bank``.
@@ -130,8 +249,7 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
     in itself, every blueprint area and Sympson-Hetter item is in the bank, ...); nothing
     is checked again here.
     """
-    sc = design.scoring
-    grid = np.round(np.linspace(sc.grid_min, sc.grid_max, sc.grid_points), 12)
+    grid = context_grid(design)
     n = bank.n_items
     operational = np.asarray(bank.status == "operational")
     areas = bank.areas
@@ -193,11 +311,10 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
     stratum = None
     if design.selection.criterion is SelectionCriterion.A_STRATIFIED:
         stratum = _a_strata(bank.a, difficulty, operational, design.selection.strata, design.selection.b_blocking)
-    log_table = bank.log_probability_table(grid)
+    by_category = log_table_by_category(bank, grid)
     return TestContext(
-        design=design, bank=bank, grid=grid, log_table=log_table,
-        log_table_by_category=np.ascontiguousarray(log_table.transpose(0, 2, 1)),
-        info_grid=bank.information_table(grid), operational=operational,
+        design=design, bank=bank, grid=grid, log_table=by_category.transpose(0, 2, 1),
+        log_table_by_category=by_category, operational=operational,
         pretest_items=np.flatnonzero(~operational), area=bank.area_index, n_areas=a_count,
         area_min=area_min, area_max=area_max, area_share=share, balanced=balanced,
         item_groups=item_groups, n_groups=len(names), item_set=item_set, set_members=members,
@@ -206,6 +323,29 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
         difficulty=difficulty,
         max_length=design.stopping.max_items + len(design.blueprint.pretest_positions),
     )
+
+
+#: Items per chunk when building the log-probability table (bounds the temporaries).
+TABLE_CHUNK = 4096
+
+
+def log_table_by_category(bank: ItemBank, grid: np.ndarray) -> np.ndarray:
+    """Log category probabilities on ``grid`` as (n, C, G), read-only, kept with the bank.
+
+    The values of ``bank.log_probability_table(grid)`` (every item is computed on its own),
+    made a chunk of items at a time straight into the layout the posterior update reads,
+    so that no second (n, G, C) copy is kept.
+    """
+    def make():
+        params = bank.params
+        out = np.empty((bank.n_items, params.max_categories, grid.size))
+        for start in range(0, bank.n_items, TABLE_CHUNK):
+            chunk = params.take(np.arange(start, min(start + TABLE_CHUNK, bank.n_items)))
+            out[start : start + TABLE_CHUNK] = models.log_probabilities(*models.outer(chunk, grid)).transpose(0, 2, 1)
+        out.setflags(write=False)
+        return out
+
+    return bank.cached(log_table_key(grid), make)
 
 
 def _exposure_parameters(design: Design, bank: ItemBank) -> tuple[np.ndarray | None, np.ndarray]:

@@ -309,20 +309,23 @@ def _choose_ranked(ctx, state, rows, cand, values, ok) -> RankedChoice:
 
 def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice:
     """Maximum-information pick from the ranked short lists; returns the rows it proved."""
-    tables = ranked_tables(ctx.bank)
+    # the tables per area only when a row is restricted to one area (constrained CAT)
+    by_area = bool(np.any(restrict >= 0))
+    tables = ranked_tables(ctx.bank, by_area=by_area)
     items_tab, reach_tab, ceil_tab, grid = tables.items, tables.reach, tables.ceiling, tables.grid
     theta = state.theta[rows]
     g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
     inside = (g >= 0) & (g < grid.size)
     g = np.clip(g, 0, grid.size - 1)
     # reach_after[k, g, j]: the highest reach of the listed items from column j on
-    reach_after = ctx.bank.cached(("ranked_reach_after", RANK_STEP, RANK_DEPTH), lambda: _reach_after(reach_tab))
-    if restrict.size and restrict.max() < 0:  # no row restricted to an area: one table, 1-D gathers
+    reach_after = ctx.bank.cached(("ranked_reach_after", RANK_STEP, RANK_DEPTH, by_area),
+                                  lambda: _reach_after(reach_tab))
+    if not by_area:  # no row restricted to an area: the table of all items, 1-D gathers
         cand = items_tab[-1].take(g, axis=0)  # (R, D)
         table_ceiling = ceil_tab[-1].take(g)
         after = reach_after[-1].take(g, axis=0)  # (R, D + 1)
     else:
-        which = np.where(restrict >= 0, restrict, len(ctx.bank.areas))
+        which = np.where(restrict >= 0, restrict, items_tab.shape[0] - 1)  # the last table: all items
         cand = items_tab[which, g]
         table_ceiling = ceil_tab[which, g]
         after = reach_after[which, g]

@@ -31,7 +31,6 @@ from __future__ import annotations
 import weakref
 
 import numpy as np
-from scipy.special import ndtri  # the standard normal quantile (scipy.stats is slow to import)
 
 from ..design.types import Stopping
 from ..errors import AdaptiveEngineError
@@ -190,6 +189,8 @@ def confidence_interval_decision(theta, se, *, cut, confidence: float) -> np.nda
                                   "[stopping.confidence_interval] confidence")
     theta = np.asarray(theta, dtype=float)
     se = np.asarray(se, dtype=float)
+    from scipy.special import ndtri  # the standard normal quantile; imported when needed
+
     z = ndtri(0.5 + 0.5 * confidence)
     with np.errstate(invalid="ignore"):
         lo = theta - z * se

@@ -10,28 +10,33 @@
   imported only by whoever serves).
 """
 
-from .releases import (
-    list_releases,
-    publish_release,
-    release_exposure,
-    resolve_release,
-    retire_release,
-    start_release_session,
-)
-from .session import (
-    ProcessCache,
-    clear_process_cache,
-    exposure_rates,
-    list_sessions,
-    pending_item,
-    session_result,
-    session_status,
-    show_session,
-    start_session,
-    submit_answer,
-    try_session,
-)
-from .store import ConflictError, InvalidValueError, NotFoundError, SessionStore, SQLiteSessionStore, open_store
+# Public names are loaded from their modules on first use: importing one module of
+# the package does not import the others (a short command-line call stays quick).
+_LAZY = {
+    "list_releases": "releases",
+    "publish_release": "releases",
+    "release_exposure": "releases",
+    "resolve_release": "releases",
+    "retire_release": "releases",
+    "start_release_session": "releases",
+    "ProcessCache": "session",
+    "clear_process_cache": "session",
+    "exposure_rates": "session",
+    "list_sessions": "session",
+    "pending_item": "session",
+    "session_result": "session",
+    "session_status": "session",
+    "show_session": "session",
+    "start_session": "session",
+    "submit_answer": "session",
+    "try_session": "session",
+    "ConflictError": "store",
+    "InvalidValueError": "store",
+    "NotFoundError": "store",
+    "SessionStore": "store",
+    "SQLiteSessionStore": "store",
+    "open_store": "store",
+}
 
 __all__ = [
     "ConflictError", "InvalidValueError", "NotFoundError", "ProcessCache", "SQLiteSessionStore", "SessionStore",
@@ -39,3 +44,17 @@ __all__ = [
     "publish_release", "release_exposure", "resolve_release", "retire_release", "session_result",
     "session_status", "show_session", "start_release_session", "start_session", "submit_answer", "try_session",
 ]
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(f"{__name__}.{_LAZY[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))

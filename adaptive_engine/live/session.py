@@ -49,7 +49,7 @@ from ..errors import SessionError
 from ..jsonable import plain
 from ..kernel import decision_rules
 from ..kernel.decision_rules import RuleSet, current_rule_set, installed_versions, rule_set
-from ..kernel.prepared import TestContext
+from ..kernel.prepared import TestContext, context_grid, selects_within_areas
 from ..kernel.random_streams import stream_key
 from ..kernel.state import KernelState
 from .store import (
@@ -96,17 +96,37 @@ class ProcessCache:
         self._lock = threading.RLock()
 
     def context(self, store: SessionStore, design_id: str, bank_id: str, *, rules: RuleSet,
-                design: Design | None = None, bank: ItemBank | None = None) -> TestContext:
-        """The context of a stored (design, bank) pair under ``rules``, built on first use."""
+                design: Design | None = None, bank: ItemBank | None = None,
+                table_folder=None) -> TestContext:
+        """The context of a stored (design, bank) pair under ``rules``, built on first use.
+
+        A process that has not built it yet takes the bank and its tables from the
+        store's table folder (``table_folder``, else ``store.table_folder``) when another
+        process left them there, and leaves them there when it had to build them
+        (:mod:`adaptive_engine.live.table_cache`).
+        """
         key = (rules.version, design_id, bank_id)
         with self._lock:
             ctx = self._contexts.get(key)
             if ctx is None:
                 if design is None:
                     design = store.load_design(design_id)
-                if bank is None:
+                folder = table_folder if table_folder is not None else getattr(store, "table_folder", None)
+                by_area = selects_within_areas(design)
+                kept = None
+                if folder is not None:
+                    from .table_cache import load_prepared_bank
+
+                    kept = load_prepared_bank(folder, bank_id, context_grid(design), by_area=by_area)
+                if kept is not None:
+                    bank = kept
+                elif bank is None:
                     bank = store.load_bank(bank_id)
                 ctx = rules.build_context(design, bank)
+                if folder is not None and kept is None and not getattr(store, "read_only", False):
+                    from .table_cache import save_prepared_bank
+
+                    save_prepared_bank(folder, bank_id, bank, ctx.grid, by_area=by_area)
                 self._contexts[key] = ctx
                 while len(self._contexts) > self.max_contexts:
                     self._contexts.popitem(last=False)
@@ -343,11 +363,14 @@ class PreparedStart:
 
 def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None, seed: int | None = None,
                   prior_mean: float | None = None, prior_sd: float | None = None,
-                  session_id: str | None = None, cache: ProcessCache | None = None) -> PreparedStart:
+                  session_id: str | None = None, cache: ProcessCache | None = None,
+                  table_folder=None) -> PreparedStart:
     """Check a start request and compute the session's first step, touching no store.
 
     Takes the options of :func:`start_session`.  A caller that may have to create the
     store (the command line) calls this first, so that a refused request creates nothing.
+    ``table_folder``: the store's folder of prepared banks (``SessionStore.table_folder``),
+    to take the bank's tables from or leave them in; None: build in this process only.
 
     Raises
     ------
@@ -375,7 +398,7 @@ def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None
 
         require_design_fits_bank(design, bank)
     # the context is built from the objects given: no store is read
-    ctx = cache.context(None, design_id, bank_id, rules=rules, design=design, bank=bank)
+    ctx = cache.context(None, design_id, bank_id, rules=rules, design=design, bank=bank, table_folder=table_folder)
     key = np.array([stream_key(seed)], dtype=np.uint64)
     state, picked = rules.start(ctx, key, prior_mean=mean, prior_sd=sd, count_eligible=True)
     session_id = session_id or uuid.uuid4().hex
@@ -445,7 +468,8 @@ def start_session(store: SessionStore, design: Design, bank: ItemBank, *, examin
         As :func:`prepare_start`, or the session id is taken.  Nothing is written then.
     """
     prepared = prepare_start(design, bank, examinee=examinee, seed=seed, prior_mean=prior_mean,
-                             prior_sd=prior_sd, session_id=session_id, cache=cache)
+                             prior_sd=prior_sd, session_id=session_id, cache=cache,
+                             table_folder=store.table_folder)
     return commit_start(store, prepared, cache=cache)
 
 

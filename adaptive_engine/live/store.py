@@ -92,7 +92,6 @@ from pathlib import Path
 from typing import Callable, Iterator
 
 import attrs
-import sqlite_utils
 
 from ..bank.item_bank import ItemBank, read_bank_json_text
 from ..design.types import Design
@@ -321,6 +320,10 @@ class SessionStore:
         The store's schema version: :data:`SCHEMA_VERSION` once opened for writing (an older
         store is upgraded on opening), the store's own when opened read-only.
     read_only : bool
+    table_folder : Path or None
+        Where processes share prepared banks and their tables
+        (:mod:`adaptive_engine.live.table_cache`): ``<file>.tables`` beside a SQLite file;
+        None for a store in memory or on PostgreSQL (each process builds its own).
     """
 
     backend = ""
@@ -330,6 +333,7 @@ class SessionStore:
 
     def _init_common(self) -> None:
         self.before_commit: Callable[[], None] | None = None
+        self.table_folder: Path | None = None
         # banks and designs known to be stored: content-addressed and never deleted, so a
         # start need not send a 100 kB bank again; those written by the open transaction
         # count once it commits
@@ -743,6 +747,7 @@ class SQLiteSessionStore(SessionStore):
                 _create_owner_only(p)
         self.path = str(path)
         self._checkpointer: weakref.finalize | None = None  # lets go of the checkpoint thread
+        self.table_folder = None if memory else table_folder_for(Path(path))
         self.location = shown(self.path, limit=400)
         self.read_only = read_only
         self.key = ":memory:%d" % id(self) if memory else str(Path(path).resolve())
@@ -759,11 +764,12 @@ class SQLiteSessionStore(SessionStore):
                                        check_same_thread=False)
             conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
             self.conn = conn
-            self.db = sqlite_utils.Database(conn)
+            # as sqlite_utils.Database sets it (made only when tables are created: ``db``)
+            conn.execute("PRAGMA recursive_triggers=on;")
             if read_only:
                 self._require_schema()
                 return
-            if not memory and self.db.journal_mode != "wal":
+            if not memory and conn.execute("PRAGMA journal_mode;").fetchone()[0] != "wal":
                 self.db.enable_wal()
             conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
             if not memory:
@@ -777,6 +783,20 @@ class SQLiteSessionStore(SessionStore):
         except SessionError:
             self._close_quietly()
             raise
+
+    @property
+    def db(self):
+        """The database as ``sqlite_utils`` sees it, made on first use: only creating or
+        upgrading tables needs it, so a call on an existing store does not import it."""
+        db = self.__dict__.get("_db")
+        if db is None:
+            import sqlite_utils
+
+            db = self.__dict__["_db"] = sqlite_utils.Database(self.conn)
+        return db
+
+    def _table_names(self) -> set:
+        return {row[0] for row in self.conn.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
 
     def _execute(self, sql: str, params=()):
         return self.conn.execute(sql, params)
@@ -793,7 +813,7 @@ class SQLiteSessionStore(SessionStore):
     # -- schema ------------------------------------------------------------------------
     def _found_schema_version(self) -> int | None:
         """The file's schema version; None when it holds no store yet (no ``sessions`` table)."""
-        tables = set(self.db.table_names())
+        tables = self._table_names()
         if "store_schema" in tables:
             found = self.conn.execute("SELECT MAX(version) FROM store_schema").fetchone()[0]
             if not isinstance(found, int):
@@ -809,7 +829,7 @@ class SQLiteSessionStore(SessionStore):
                                location=shown(self.path, limit=400))
 
     def _require_schema(self) -> None:
-        tables = set(self.db.table_names())
+        tables = self._table_names()
         missing = [name for name in self._TABLES if name not in tables]
         if missing:
             raise SessionError(f"not a session store: table {missing[0]!r} is missing", location=self.path)
@@ -1066,6 +1086,22 @@ def sqlite_path(location: str | Path) -> str | Path:
     if isinstance(location, str) and location.startswith(_SQLITE_SCHEME):
         return location[len(_SQLITE_SCHEME):]
     return location
+
+
+def table_folder_for(location: str | Path) -> Path | None:
+    """The table folder of the store at ``location`` (see ``SessionStore.table_folder``),
+    without opening it: ``<file>.tables`` for a SQLite file, None otherwise."""
+    if store_backend(location) == "postgresql" or str(location) == ":memory:":
+        return None
+    path = Path(sqlite_path(location))
+    return path.with_name(path.name + ".tables")
+
+
+def existing_table_folder(location: str | Path) -> Path | None:
+    """:func:`table_folder_for` a store file that exists already, else None (a command
+    that may still refuse its request must not leave a folder beside a store it never made)."""
+    folder = table_folder_for(location)
+    return folder if folder is not None and Path(sqlite_path(location)).is_file() else None
 
 
 def open_store(location: str | Path, *, create: bool = True, durable: bool = False,

@@ -293,9 +293,12 @@ def _exposure_figure(plt, rates, target: float) -> str:
 def _information_figure(plt, bank) -> str:
     from ..irt import models
 
-    operational = np.asarray(bank.status) == "operational"
+    operational = np.flatnonzero(np.asarray(bank.status) == "operational")
     grid = np.linspace(-4, 4, 161)
-    info = models.information(*models.outer(bank.params.take(np.flatnonzero(operational)), grid)).sum(axis=0)
+    info = np.zeros(grid.size)
+    for start in range(0, operational.size, 4096):  # bounded temporaries for large banks
+        chunk = bank.params.take(operational[start : start + 4096])
+        info += models.information(*models.outer(chunk, grid)).sum(axis=0)
     fig, ax = plt.subplots(figsize=(7.2, 3.4))
     ax.plot(grid, info, color="black")
     ax.set_xlabel("ability (theta)")
