@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from scipy.special import expit
 from scipy.stats import norm
@@ -218,8 +218,18 @@ def _reference_log_probs(rec, theta, D):
         z = np.concatenate([[np.inf], D * rec["a"] * (theta - np.asarray(rec["thresholds"])), [-np.inf]])
         with np.errstate(invalid="ignore"):
             return log_expit(z[:-1]) + log_expit(-z[1:]) + np.log(-np.expm1(z[1:] - z[:-1]))
-    p1 = logistic_4pl(theta, rec["a"], rec["b"], rec.get("c", 0.0), rec.get("d", 1.0), D)  # Barton & Lord
-    return np.log([1 - p1, p1])
+    # Barton & Lord (1981): P = c + (d - c) expit(z); its complement written as
+    # (1 - d) + (d - c) expit(-z), a sum of non-negative terms, so that log(1 - P) keeps its
+    # precision where P is near 1 (1 - P computed by subtraction loses it: a = 2.41, theta = 2,
+    # D = 1.702 once failed the curvature check on rounding alone)
+    from scipy.special import expit
+
+    c, d = rec.get("c", 0.0), rec.get("d", 1.0)
+    z = D * rec["a"] * (theta - rec["b"])
+    p1 = c + (d - c) * expit(z)
+    q1 = (1 - d) + (d - c) * expit(-z)
+    assert abs(p1 - logistic_4pl(theta, rec["a"], rec["b"], c, d, D)) < 1e-15
+    return np.log([q1, p1])
 
 
 @SETTINGS
@@ -227,6 +237,7 @@ def _reference_log_probs(rec, theta, D):
                  st.builds(lambda a, b, c, d: {"model": "4PL", "a": a, "b": b, "c": c, "d": d},
                            st.floats(0.3, 2.5), st.floats(-3, 3), st.floats(0, 0.3), st.floats(0.8, 1.0))),
        thetas(-4, 4), st.sampled_from([1.0, 1.702]))
+@example({"model": "4PL", "a": 2.4140625, "b": 0.0, "c": 0.0, "d": 1.0}, 2.0, 1.702)  # P near 1
 def test_log_derivatives_match_finite_differences_of_the_published_formulas(rec, theta, D):
     params = records_to_parameters([rec], scaling=D)
     score, curvature = models.log_derivatives(params, np.array([theta]))

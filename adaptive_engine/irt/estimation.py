@@ -172,7 +172,7 @@ def _params_of(bank_or_params) -> models.ItemParameters:
     return params
 
 
-def _integer_array(x, name) -> np.ndarray:
+def integer_array(x, name) -> np.ndarray:
     arr = np.asarray(x)
     if arr.ndim == 1:
         arr = arr[None, :]
@@ -186,24 +186,24 @@ def _integer_array(x, name) -> np.ndarray:
     raise ResponseDataError(f"{name} must hold whole numbers (dtype {arr.dtype})", location=name)
 
 
-def _located(mask, name, message) -> list[Problem]:
+def located(mask, name, message) -> list[Problem]:
     rows, cols = np.nonzero(mask)
     return [Problem(f"{name}[{r}, {c}]", message) for r, c in zip(rows[:20], cols[:20])]
 
 
 def _prepare(bank_or_params, items, responses) -> _Data:
     params = _params_of(bank_or_params)
-    items = _integer_array(items, "items")
-    responses = _integer_array(responses, "responses")
+    items = integer_array(items, "items")
+    responses = integer_array(responses, "responses")
     if items.shape != responses.shape:
         raise ResponseDataError(
             f"items {items.shape} and responses {responses.shape} differ in shape", location="responses"
         )
     n_bank = params.a.shape[0]
-    problems = _located(items < -1, "items", "item index below -1 (use -1 for padding)")
-    problems += _located(items >= n_bank, "items", f"item index beyond the bank's {n_bank} items")
-    problems += _located(responses < -1, "responses", "response below -1 (use -1 for not answered)")
-    problems += _located((items == -1) & (responses >= 0), "responses", "a response without an item")
+    problems = located(items < -1, "items", "item index below -1 (use -1 for padding)")
+    problems += located(items >= n_bank, "items", f"item index beyond the bank's {n_bank} items")
+    problems += located(responses < -1, "responses", "response below -1 (use -1 for not answered)")
+    problems += located((items == -1) & (responses >= 0), "responses", "a response without an item")
     if problems:
         raise ResponseDataError(problems)
     answered = (items >= 0) & (responses >= 0)
@@ -256,7 +256,7 @@ def _check_bounds(bounds):
     return lo, hi
 
 
-def _row_sum(x) -> np.ndarray:
+def row_sum(x) -> np.ndarray:
     """Sum over the last axis one column at a time.
 
     A fixed left-to-right order makes each row's sum independent of the padding width
@@ -349,7 +349,7 @@ def grid_refinement(params: models.ItemParameters, items, answered, prior_sd, *,
         Depends on each row alone (its answered items and its prior).
     """
     bound = max_information_bound(params) if bound is None else bound
-    precision = _row_sum(np.where(answered, bound[items], 0.0)) + 1.0 / prior_sd**2
+    precision = row_sum(np.where(answered, bound[items], 0.0)) + 1.0 / prior_sd**2
     sd_floor = 1.0 / np.sqrt(precision)
     k = np.ceil(GRID_STEP * STEPS_PER_SD / sd_floor - 1e-9)
     return np.clip(k, 1, MAX_REFINEMENT).astype(np.int64)
@@ -559,7 +559,7 @@ def _derivative_sums(params, items, responses, theta) -> _Sums:
         observed[tiny] = np.take_along_axis(r2, k, axis=-1)[:, 0]
     info = _safe_ratio(dp**2, p).sum(axis=-1)
     warm_j = _safe_ratio(dp * d2p, p).sum(axis=-1)
-    return _Sums(*(_row_sum(np.where(answered, x, 0.0)) for x in (ratio, observed, info, warm_j)))
+    return _Sums(*(row_sum(np.where(answered, x, 0.0)) for x in (ratio, observed, info, warm_j)))
 
 
 def _fisher_or_observed(s: _Sums):

@@ -94,9 +94,9 @@ from .estimation import (
     NOT_CONVERGED,
     PRIOR_DOMINATED,
     PRIOR_DOMINATED_SHARE,
-    _integer_array,
-    _located,
-    _row_sum,
+    integer_array,
+    located,
+    row_sum,
 )
 
 #: Methods of :func:`estimate_md` (Warm's WLE has no multidimensional form here).
@@ -215,16 +215,16 @@ def _params_of(bank_or_params) -> md.MultidimensionalParameters:
 
 def _prepare(bank_or_params, items, responses) -> _Data:
     params = _params_of(bank_or_params)
-    items = _integer_array(items, "items")
-    responses = _integer_array(responses, "responses")
+    items = integer_array(items, "items")
+    responses = integer_array(responses, "responses")
     if items.shape != responses.shape:
         raise ResponseDataError(
             f"items {items.shape} and responses {responses.shape} differ in shape", location="responses")
     n_bank = params.slopes.shape[0]
-    problems = _located(items < -1, "items", "item index below -1 (use -1 for padding)")
-    problems += _located(items >= n_bank, "items", f"item index beyond the bank's {n_bank} items")
-    problems += _located(responses < -1, "responses", "response below -1 (use -1 for not answered)")
-    problems += _located((items == -1) & (responses >= 0), "responses", "a response without an item")
+    problems = located(items < -1, "items", "item index below -1 (use -1 for padding)")
+    problems += located(items >= n_bank, "items", f"item index beyond the bank's {n_bank} items")
+    problems += located(responses < -1, "responses", "response below -1 (use -1 for not answered)")
+    problems += located((items == -1) & (responses >= 0), "responses", "a response without an item")
     if problems:
         raise ResponseDataError(problems)
     answered = (items >= 0) & (responses >= 0)
@@ -389,7 +389,7 @@ def _picked(values, responses):
 
 def _objective(data: _Data, rows, theta, prior: _Prior | None) -> np.ndarray:
     """The log-likelihood (+ log prior) of ``rows`` at theta (B, K) -> (B,)."""
-    value = _row_sum(_answer_log_probability(_answers(data, rows), theta))
+    value = row_sum(_answer_log_probability(_answers(data, rows), theta))
     if prior is not None:
         value = value - 0.5 * _quadratic(prior.precision[rows], theta - prior.mean[rows])
     return value
@@ -400,16 +400,16 @@ def _point(data: _Data, rows, theta, prior: _Prior | None) -> _Point:
     sub = data.params.take(items)
     th = theta[:, None, :]
     lp = _picked(md.log_probabilities(sub, th), resp)
-    value = _row_sum(np.where(answered, lp, 0.0))
+    value = row_sum(np.where(answered, lp, 0.0))
     score, curvature = md.log_derivatives(sub, th)
     r = np.where(answered, _picked(score, resp), 0.0)
     r2 = np.where(answered, _picked(curvature, resp), 0.0)
     j = np.where(answered, md.slope_information(sub, th), 0.0)
     a = sub.slopes  # (B, L, K)
     aa = a[..., :, None] * a[..., None, :]  # (B, L, K, K)
-    gradient = _row_sum(np.moveaxis(r[..., None] * a, 1, -1))
-    observed = _row_sum(np.moveaxis(r2[..., None, None] * aa, 1, -1))
-    information = _row_sum(np.moveaxis(j[..., None, None] * aa, 1, -1))
+    gradient = row_sum(np.moveaxis(r[..., None] * a, 1, -1))
+    observed = row_sum(np.moveaxis(r2[..., None, None] * aa, 1, -1))
+    information = row_sum(np.moveaxis(j[..., None, None] * aa, 1, -1))
     fisher = information
     if prior is not None:
         dev = theta - prior.mean[rows]
@@ -596,7 +596,7 @@ def _points_log_posterior(data: _Data, rows, points, prior: _Prior | None) -> np
     for part in _chunks(b, _CELLS // width):
         r = rows[part]
         lp = _answer_log_probability(_answers(data, r), points[part])  # (B, L, N)
-        out[part] = _row_sum(np.moveaxis(lp, 1, -1))
+        out[part] = row_sum(np.moveaxis(lp, 1, -1))
         if prior is not None:
             out[part] -= 0.5 * _quadratic(prior.precision[r], points[part] - prior.mean[r][:, None, :])
     return out
@@ -720,10 +720,10 @@ def _moments(log_post, points, log_weights=None):
     lw = log_post if log_weights is None else log_post + log_weights
     lw = lw - np.max(lw, axis=1, keepdims=True)
     w = np.exp(np.maximum(lw, -700.0))
-    w = w / _row_sum(w)[:, None]
-    mean = _row_sum(np.moveaxis(w[..., None] * points, 1, -1))
+    w = w / row_sum(w)[:, None]
+    mean = row_sum(np.moveaxis(w[..., None] * points, 1, -1))
     dev = points - mean[:, None, :]
-    cov = _row_sum(np.moveaxis(w[..., None, None] * dev[..., :, None] * dev[..., None, :], 1, -1))
+    cov = row_sum(np.moveaxis(w[..., None, None] * dev[..., :, None] * dev[..., None, :], 1, -1))
     return mean, 0.5 * (cov + np.swapaxes(cov, -1, -2))
 
 
@@ -789,8 +789,8 @@ def _eap_fixed(data: _Data, prior: _Prior, axes):
 
 def _laplace(data: _Data, prior: _Prior, rows):
     """MAP and the Cholesky factor of the Laplace posterior covariance for ``rows``."""
-    sub = data._replace(items=data.items[rows], responses=data.responses[rows], answered=data.answered[rows],
-                        n_items=data.n_items[rows], pattern_status=data.pattern_status[rows])
+    sub = _Data(data.params, data.items[rows], data.responses[rows], data.answered[rows], data.n_items[rows],
+                data.pattern_status[rows])
     sub_prior = _Prior(*(x[rows] for x in prior))
     mode, cov, _ = _map_arrays(sub, sub_prior, *DEFAULT_BOUNDS_WIDE, None)
     return sub, sub_prior, mode, np.linalg.cholesky(cov)
