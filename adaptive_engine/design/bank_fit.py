@@ -95,11 +95,10 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
     problems = design_problems(design)
     if problems:
         return problems
-    if bank.n_dimensions > 1:
-        # the kernel scores and selects with one ability: it could not start a test
-        return problems + [Problem(f"bank {bank.name}".strip(), (
-            f"the bank has {bank.n_dimensions} ability dimensions ({', '.join(bank.dimension_names)}); "
-            "designs run on one-dimensional banks"))]
+    if runs_multidimensional(design, bank):
+        problems += multidimensional_problems(design, bank)
+        if problems:
+            return problems
     st, bp, sel, ex = design.stopping, design.blueprint, design.selection, design.exposure
     operational = np.asarray(bank.status == "operational")
     n_operational = int(operational.sum())
@@ -296,6 +295,104 @@ def design_warnings(design: Design, bank: ItemBank) -> list[Problem]:
     return out
 
 
+#: Largest K the multidimensional kernel runs (its posterior lives on a product grid).
+MAX_KERNEL_DIMENSIONS = 3
+#: Default points per dimension of the multidimensional grid, by K (K = 1: grid_points).
+DEFAULT_POINTS_PER_DIMENSION = {2: 41, 3: 17}
+
+
+def runs_multidimensional(design: Design, bank: ItemBank) -> bool:
+    """Whether the pair runs on the multidimensional kernel: a bank of K > 1 dimensions, or
+    a design that asks for it (vector keys, a multidimensional criterion)."""
+    return bank.n_dimensions > 1 or design.asks_multidimensional
+
+
+def multidimensional_grid_points(design: Design, k: int) -> int:
+    """Points per dimension of the multidimensional grid for K = ``k``."""
+    sc = design.scoring
+    if sc.grid_points_per_dimension is not None:
+        return sc.grid_points_per_dimension
+    return sc.grid_points if k == 1 else DEFAULT_POINTS_PER_DIMENSION.get(k, 9)
+
+
+def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
+    """Why the multidimensional kernel cannot run ``design`` on ``bank`` (empty: it can).
+
+    The options that have no meaning for an ability vector are refused at their keys, the
+    keys with one entry per dimension must have K entries (K = the bank's dimensions).
+    """
+    from .types import MAX_MULTIDIMENSIONAL_GRID
+
+    k = bank.n_dimensions
+    names = ", ".join(bank.dimension_names)
+    out = []
+    where_bank = f"bank {bank.name}".strip()
+    if k > MAX_KERNEL_DIMENSIONS:
+        return [Problem(where_bank, f"the bank has {k} ability dimensions ({names}); adaptive tests run on "
+                                    f"banks of at most {MAX_KERNEL_DIMENSIONS} (the posterior lives on a grid "
+                                    "of points ** K)")]
+    if not bank.uses_multidimensional_models:
+        return [Problem(where_bank, "the design asks for the multidimensional kernel (vector keys or a "
+                                    "multidimensional criterion), which needs a bank of M2PL, M3PL or MGRM items "
+                                    "(a one-dimensional bank written as K = 1 of them will do)")]
+    for where, n in design.stated_dimensions().items():
+        if n != k:
+            out.append(Problem(where, f"{n} entries, but the bank has K = {k} ability dimension"
+                                      f"{'s' if k != 1 else ''} ({names}): give one entry per dimension"))
+    sc, sel, ex, st, rp, op = (design.scoring, design.selection, design.exposure, design.stopping,
+                               design.reporting, design.opening)
+    many = f"with an ability of {k} dimensions ({names})"
+    if sc.method not in (ScoringMethod.EAP, ScoringMethod.MAP):
+        out.append(Problem("[scoring] method", f"{sc.method.value} is not available {many}; use eap or map"))
+    if design.final_method not in (ScoringMethod.EAP, ScoringMethod.MAP):
+        out.append(Problem("[reporting] final_method",
+                           f"{design.final_method.value} is not available {many}; use eap or map"))
+    points = multidimensional_grid_points(design, k)
+    if points ** k > MAX_MULTIDIMENSIONAL_GRID:
+        out.append(Problem("[scoring] grid_points_per_dimension" if sc.grid_points_per_dimension is not None
+                           else "[scoring] grid_points",
+                           f"{points} points per dimension make a grid of {points ** k} points for K = {k}; "
+                           f"at most {MAX_MULTIDIMENSIONAL_GRID}"))
+    one_dimensional = {
+        SelectionCriterion.MAX_FISHER_INFORMATION: "d_optimality (its counterpart for an ability vector)",
+        SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION: "d_optimality or kullback_leibler",
+        SelectionCriterion.A_STRATIFIED: "d_optimality",
+    }
+    if k > 1 and sel.criterion in one_dimensional:
+        out.append(Problem("[selection] criterion", f"{sel.criterion.value} ranks items by a one-dimensional "
+                                                    f"quantity and is not available {many}; use "
+                                                    f"{one_dimensional[sel.criterion]}"))
+    if k == 1 and sel.criterion in (SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION,
+                                    SelectionCriterion.A_STRATIFIED):
+        out.append(Problem("[selection] criterion", f"{sel.criterion.value} runs on the one-dimensional kernel; "
+                                                    "leave out the vector keys and multidimensional criteria"))
+    if ex.method is ExposureMethod.SYMPSON_HETTER and design.exposure_strata:
+        out.append(Problem("[exposure] parameters_file", "exposure parameters conditional on ability strata "
+                                                         f"cut one ability scale and are not available {many}; "
+                                                         "give one parameter per item"))
+    if design.blueprint.shadow_test:
+        out.append(Problem("[blueprint] shadow_test", f"shadow tests maximise one-dimensional information and "
+                                                      f"are not available {many}"))
+    if op.random_theta is not None:
+        out.append(Problem("[opening] random_theta", f"a random starting point is not available {many}; the "
+                                                     "test starts at [opening] theta on every dimension"))
+    for name in ("sprt", "se_reduction", "min_information"):
+        if getattr(st, name) is not None:
+            where = "[stopping.sprt]" if name == "sprt" else f"[stopping] {name}"
+            out.append(Problem(where, f"this rule measures one ability and is not available {many}; stop on se "
+                                      "or se_per_dimension, length, time, or [stopping.confidence_interval] "
+                                      "on the composite"))
+    if st.confidence_interval is not None and rp.composite_weights is None and k > 1:
+        out.append(Problem("[stopping.confidence_interval]",
+                           f"{many} the interval classifies the composite of [reporting] composite_weights; "
+                           "give them"))
+    if rp.cut_scores and rp.composite_weights is None and k > 1:
+        out.append(Problem("[[reporting.cut_scores]]",
+                           f"{many} cut scores classify the composite of [reporting] composite_weights; "
+                           "give them"))
+    return out
+
+
 def require_design_fits_bank(design: Design, bank: ItemBank) -> None:
     """Raise :class:`DesignError` listing every problem of :func:`check_design_against_bank`."""
     problems = check_design_against_bank(design, bank)
@@ -315,6 +412,10 @@ _CRITERION_WORDS = {
     SelectionCriterion.A_STRATIFIED: "within {strata} a-strata taken from low to high a ({blocking}), "
                                      "the item whose b is closest to the estimate",
     SelectionCriterion.RANDOM: "an eligible item at random",
+    SelectionCriterion.D_OPTIMALITY: "the item that makes the determinant of the posterior information largest",
+    SelectionCriterion.A_OPTIMALITY: "the item that makes the trace of the posterior covariance smallest",
+    SelectionCriterion.MAX_COMPOSITE_INFORMATION:
+        "the item with the most Fisher information in the direction of the composite weights",
 }
 
 
@@ -333,6 +434,11 @@ def describe_design(design: Design) -> list[str]:
         start = f"start at a theta drawn uniformly from [{op.random_theta[0]:g}, {op.random_theta[1]:g}]"
     lines = [f"opening: {start}; {_first_item_words(design)}"]
     prior = f"N({sc.prior_mean:g}, {sc.prior_sd:g}^2) prior"
+    if isinstance(sc.prior_mean, tuple) or sc.prior_covariance is not None:
+        mean = sc.prior_mean if isinstance(sc.prior_mean, tuple) else f"{sc.prior_mean:g} on every dimension"
+        cov = ("covariance " + str([list(r) for r in sc.prior_covariance]) if sc.prior_covariance is not None
+               else f"covariance {sc.prior_sd:g}^2 I")
+        prior = f"multivariate normal prior, mean {mean}, {cov}"
     scoring = f"scoring: {sc.method.upper()}"
     if sc.method in (ScoringMethod.MAP, ScoringMethod.EAP):
         scoring += f" with a {prior}"
@@ -400,6 +506,9 @@ def _first_choice(design: Design, k_first: int) -> str:
                                                f"{sc.prior_sd:g}^2) prior (the starting theta does not enter)"),
             "kullback_leibler": f"Kullback-Leibler information over +- {sel.kl_interval:g} around the start",
             "a_stratified": "closeness of b to the start, within the lowest-a stratum",
+            "d_optimality": f"the determinant of the prior precision plus the item's information {where}",
+            "a_optimality": f"the trace of the posterior covariance after the item {where}",
+            "max_composite_information": f"information in the composite's direction {where}",
         }[sel.criterion]
         if bp.areas and bp.method == "max_priority_index":
             ranked_by += " weighted by the area priorities"

@@ -13,6 +13,7 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
+from ..design.bank_fit import runs_multidimensional
 from ..design.types import Design, ExposureMethod, SelectionCriterion
 from ..irt import models
 
@@ -116,6 +117,10 @@ class TestContext:
     stratum: np.ndarray | None  # (n,) a-stratum of each item
     difficulty: np.ndarray  # (n,) b, or mean threshold for polytomous items
     max_length: int  # scored items + pretest slots
+    #: The multidimensional kernel's tables (kernel/multidimensional_state.py), None for
+    #: the one-dimensional kernel.  When set, ``grid`` is the product grid (G, K) and the
+    #: log tables live on it.
+    multidimensional: object = None
 
     @property
     def n_items(self) -> int:
@@ -193,11 +198,19 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
     stratum = None
     if design.selection.criterion is SelectionCriterion.A_STRATIFIED:
         stratum = _a_strata(bank.a, difficulty, operational, design.selection.strata, design.selection.b_blocking)
-    log_table = bank.log_probability_table(grid)
+    multidimensional = None
+    if runs_multidimensional(design, bank):
+        from .multidimensional_state import build_tables
+
+        multidimensional = build_tables(design, bank)
+        grid, log_table, info_grid = multidimensional.points, multidimensional.log_table, np.zeros((n, 0))
+    else:
+        log_table = bank.log_probability_table(grid)
+        info_grid = bank.information_table(grid)
     return TestContext(
         design=design, bank=bank, grid=grid, log_table=log_table,
         log_table_by_category=np.ascontiguousarray(log_table.transpose(0, 2, 1)),
-        info_grid=bank.information_table(grid), operational=operational,
+        info_grid=info_grid, operational=operational,
         pretest_items=np.flatnonzero(~operational), area=bank.area_index, n_areas=a_count,
         area_min=area_min, area_max=area_max, area_share=share, balanced=balanced,
         item_groups=item_groups, n_groups=len(names), item_set=item_set, set_members=members,
@@ -205,6 +218,7 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
         stratum=stratum,
         difficulty=difficulty,
         max_length=design.stopping.max_items + len(design.blueprint.pretest_positions),
+        multidimensional=multidimensional,
     )
 
 
