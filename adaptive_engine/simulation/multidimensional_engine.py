@@ -42,7 +42,7 @@ class MultidimensionalSimulationResult:
     """Outcomes of a multidimensional run (arrays over examinees, first axis).
 
     ``true_theta``, ``theta``, ``se``: (N, K); ``covariance`` (N, K, K); ``items`` (N, L)
-    in order given (-1 padded); ``administered`` (n_items,).
+    in order given and ``responses`` (-1 padded); ``administered`` (n_items,).
     """
 
     design: Design
@@ -58,6 +58,7 @@ class MultidimensionalSimulationResult:
     n_pretest: np.ndarray
     stop_reason: np.ndarray
     items: np.ndarray
+    responses: np.ndarray
     administered: np.ndarray
 
     @property
@@ -86,7 +87,7 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
     est = kernel.final_estimates(ctx, state, np.arange(n))
     return dict(seeds=seeds, true_theta=true_theta, theta=est.theta, se=est.se, covariance=est.covariance,
                 n_scored=state.n_scored.copy(), n_pretest=state.n_pretest.copy(),
-                stop_reason=state.stop_reason.copy(), items=state.items.copy())
+                stop_reason=state.stop_reason.copy(), items=state.items.copy(), responses=state.responses.copy())
 
 
 def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, seed: int,
