@@ -27,7 +27,7 @@ from .selection import Picked, select
 
 #: Fisher-scoring iterations of the MAP estimate, and the step that counts as converged.
 MAP_ITERATIONS = 50
-MAP_TOLERANCE = 1e-10
+MAP_TOLERANCE = 1e-9
 
 
 def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
@@ -98,17 +98,22 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     theta = np.array(start_theta, dtype=float)
     converged = np.zeros(rows.size, dtype=bool)
     k = tab.k
+    active = np.arange(rows.size)
     for _ in range(MAP_ITERATIONS):
-        at = theta[:, None, :]
-        grad = md.log_likelihood_gradient(params, at, np.where(given, resp, -1)).sum(axis=1)
-        grad = grad - matrix_vector(precision, theta - mu)
-        info = _information(params, at, given, precision, k)
-        step = matrix_vector(inverse(info), grad)
-        new = np.clip(theta + step, sc.grid_min, sc.grid_max)
-        moved = np.max(np.abs(new - theta), axis=1)
-        theta = np.where(converged[:, None], theta, new)
-        converged |= moved < MAP_TOLERANCE
-        if converged.all():
+        # only rows still moving are iterated (each row's path is its own: batch-independent)
+        sub = tab.params.take(np.maximum(items[active], 0))
+        at = theta[active][:, None, :]
+        answered = np.where(given[active], resp[active], -1)
+        grad = md.log_likelihood_gradient(sub, at, answered).sum(axis=1)
+        grad = grad - matrix_vector(precision[active], theta[active] - mu[active])
+        info = _information(sub, at, given[active], precision[active], k)
+        new = np.clip(theta[active] + matrix_vector(inverse(info), grad), sc.grid_min, sc.grid_max)
+        moved = np.max(np.abs(new - theta[active]), axis=1)
+        theta[active] = new
+        done = moved < MAP_TOLERANCE
+        converged[active[done]] = True
+        active = active[~done]
+        if active.size == 0:
             break
     cov = inverse(_information(params, theta[:, None, :], given, precision, k))
     return theta, cov, converged

@@ -36,7 +36,7 @@ import numpy as np
 from ..design.types import SelectionCriterion
 from ..irt import multidimensional as md
 from ..irt.posterior import posterior_weights
-from .multidimensional_state import inverse, matrix_vector, quadratic_form
+from .multidimensional_state import inverse, matrix_vector
 
 
 def test_information(ctx, state, rows) -> np.ndarray:
@@ -83,8 +83,14 @@ def criterion_values(ctx, state, rows) -> np.ndarray:
         return j * au * au
     if crit is SelectionCriterion.MAX_FISHER_INFORMATION:
         return j * a[..., 0] * a[..., 0]
-    w_inv = inverse(test_information(ctx, state, rows))[:, None, :, :]  # (R, 1, K, K)
-    q = quadratic_form(a, w_inv)  # (R, n): a' W^-1 a
+    w_inv = inverse(test_information(ctx, state, rows))  # (R, K, K)
+    # a' W^-1 a over the distinct products a_p a_q of each item (W^-1 is symmetric)
+    q = None
+    for p in range(tab.k):
+        for r in range(p, tab.k):
+            term = (w_inv[:, p, r] * (1.0 if p == r else 2.0))[:, None] * (params.slopes[:, p] * params.slopes[:, r])[None, :]
+            q = term if q is None else q + term
+    w_inv = w_inv[:, None, :, :]
     if crit is SelectionCriterion.D_OPTIMALITY:
         return np.log1p(j * q)
     if crit is SelectionCriterion.A_OPTIMALITY:

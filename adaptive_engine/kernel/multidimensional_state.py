@@ -24,7 +24,7 @@ from ..bank.item_bank import ItemBank
 from ..design.types import Design, SelectionCriterion, Stopping
 from ..errors import AdaptiveEngineError
 from ..irt import multidimensional as md
-from ..irt.posterior import posterior_weights
+from ..irt.posterior import _relative_density
 from .state import KernelState
 
 
@@ -201,15 +201,21 @@ def matrix_vector(m: np.ndarray, x: np.ndarray) -> np.ndarray:
 
 
 def posterior_moments(log_post: np.ndarray, points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Posterior mean (R, K) and covariance (R, K, K) of log posteriors (R, G) on ``points`` (G, K)."""
-    w = posterior_weights(log_post)
+    """Posterior mean (R, K) and covariance (R, K, K) of log posteriors (R, G) on ``points`` (G, K).
+
+    Sums over each row's grid alone; the covariance is ``E[x_i x_j] - E[x_i] E[x_j]`` (on
+    a grid within +-20 that loses at most four of sixteen digits, as in the
+    one-dimensional :func:`adaptive_engine.irt.posterior.posterior_mean_sd`).
+    """
+    w = _relative_density(log_post)
+    total = np.sum(w, axis=1)
     k = points.shape[1]
-    mean = np.stack([np.sum(w * points[:, j], axis=1) for j in range(k)], axis=1)
+    mean = np.stack([np.einsum("rg,g->r", w, points[:, j]) / total for j in range(k)], axis=1)
     cov = np.empty((log_post.shape[0], k, k))
-    dev = [points[None, :, j] - mean[:, j, None] for j in range(k)]
     for i in range(k):
         for j in range(i, k):
-            cov[:, i, j] = cov[:, j, i] = np.sum(w * dev[i] * dev[j], axis=1)
+            second = np.einsum("rg,g->r", w, points[:, i] * points[:, j]) / total
+            cov[:, i, j] = cov[:, j, i] = second - mean[:, i] * mean[:, j]
     return mean, cov
 
 
