@@ -419,6 +419,13 @@ _CRITERION_WORDS = {
 }
 
 
+def _number_text(value) -> str:
+    """A number as ``:g`` prints it, a vector as a list of them."""
+    if isinstance(value, tuple):
+        return "[" + ", ".join(f"{v:g}" for v in value) + "]"
+    return f"{value:g}"
+
+
 def describe_design(design: Design) -> list[str]:
     """One plain-words line per section.
 
@@ -433,12 +440,14 @@ def describe_design(design: Design) -> list[str]:
     else:
         start = f"start at a theta drawn uniformly from [{op.random_theta[0]:g}, {op.random_theta[1]:g}]"
     lines = [f"opening: {start}; {_first_item_words(design)}"]
-    prior = f"N({sc.prior_mean:g}, {sc.prior_sd:g}^2) prior"
     if isinstance(sc.prior_mean, tuple) or sc.prior_covariance is not None:
-        mean = sc.prior_mean if isinstance(sc.prior_mean, tuple) else f"{sc.prior_mean:g} on every dimension"
+        mean = (_number_text(sc.prior_mean) if isinstance(sc.prior_mean, tuple)
+                else f"{sc.prior_mean:g} on every dimension")
         cov = ("covariance " + str([list(r) for r in sc.prior_covariance]) if sc.prior_covariance is not None
                else f"covariance {sc.prior_sd:g}^2 I")
         prior = f"multivariate normal prior, mean {mean}, {cov}"
+    else:
+        prior = f"N({sc.prior_mean:g}, {sc.prior_sd:g}^2) prior"
     scoring = f"scoring: {sc.method.upper()}"
     if sc.method in (ScoringMethod.MAP, ScoringMethod.EAP):
         scoring += f" with a {prior}"
@@ -447,7 +456,12 @@ def describe_design(design: Design) -> list[str]:
                     if sc.extreme_pattern_method is ExtremePatternMethod.FIXED_STEP
                     else f"{sc.extreme_pattern_method.upper()} with a {prior}")
         scoring += f"; {fallback} while every answer is in the lowest or every one in the highest category"
-    lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")
+    if design.asks_multidimensional:
+        points = (f"{sc.grid_points_per_dimension} points per dimension" if sc.grid_points_per_dimension is not None
+                  else "41 points per dimension for K = 2, 17 for K = 3, grid_points for K = 1")
+        lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} on every dimension ({points})")
+    else:
+        lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")
     words = _CRITERION_WORDS[sel.criterion].format(
         kl_interval=sel.kl_interval, strata=sel.strata,
         blocking="b-blocked" if sel.b_blocking else "no b-blocking")
@@ -465,8 +479,12 @@ def describe_design(design: Design) -> list[str]:
     }[ex.method]
     lines.append(f"exposure: {exposure}")
     lines.append("blueprint: " + _blueprint_words(bp))
-    lines.append("stopping: " + _stopping_words(st))
-    lines.append("reporting: " + _reporting_words(design))
+    lines.append("stopping: " + _stopping_words(st, vector=design.asks_multidimensional))
+    words = _reporting_words(design)
+    if design.reporting.composite_weights is not None:
+        words += (f"; composite {_number_text(design.reporting.composite_weights)} . theta reported with its SE "
+                  "(cut scores classify it)")
+    lines.append("reporting: " + words)
     return lines
 
 
@@ -502,7 +520,7 @@ def _first_choice(design: Design, k_first: int) -> str:
     else:
         ranked_by = {
             "max_fisher_information": f"Fisher information {where}",
-            "posterior_weighted_information": (f"Fisher information averaged over the N({sc.prior_mean:g}, "
+            "posterior_weighted_information": (f"Fisher information averaged over the N({_number_text(sc.prior_mean)}, "
                                                f"{sc.prior_sd:g}^2) prior (the starting theta does not enter)"),
             "kullback_leibler": f"Kullback-Leibler information over +- {sel.kl_interval:g} around the start",
             "a_stratified": "closeness of b to the start, within the lowest-a stratum",
@@ -550,10 +568,13 @@ def _blueprint_words(bp) -> str:
     return "; ".join(parts)
 
 
-def _stopping_words(st) -> str:
+def _stopping_words(st, *, vector: bool = False) -> str:
     rules = [f"after {st.max_items} scored items"]
     if st.se is not None:
-        rules.append(f"once SE <= {st.se:g}")
+        rules.append(f"once SE <= {st.se:g}" + (" on every dimension" if vector else ""))
+    if st.se_per_dimension is not None:
+        rules.append("once the SE of each dimension is at most its target "
+                     + _number_text(st.se_per_dimension))
     if st.sprt is not None:
         s = st.sprt
         rules.append(f"once the SPRT at cut {s.cut:g} +- {s.indifference:g} decides "

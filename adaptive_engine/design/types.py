@@ -523,7 +523,8 @@ def covariance_problem(matrix) -> str | None:
     lo, hi = PRIOR_SD_RANGE
     for i in range(k):
         if not lo * lo <= m[i, i] <= hi * hi:
-            return f"variance {i + 1} (row {i + 1}, entry {i + 1}) must lie in [{lo * lo:g}, {hi * hi:g}], got {m[i, i]!r}"
+            return (f"variance {i + 1} (row {i + 1}, entry {i + 1}) must lie in [{lo * lo:g}, {hi * hi:g}], "
+                    f"got {m[i, i]!r}")
     try:
         np.linalg.cholesky(m)
     except np.linalg.LinAlgError:

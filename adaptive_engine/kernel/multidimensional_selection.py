@@ -88,7 +88,8 @@ def criterion_values(ctx, state, rows) -> np.ndarray:
     q = None
     for p in range(tab.k):
         for r in range(p, tab.k):
-            term = (w_inv[:, p, r] * (1.0 if p == r else 2.0))[:, None] * (params.slopes[:, p] * params.slopes[:, r])[None, :]
+            weight = w_inv[:, p, r] * (1.0 if p == r else 2.0)
+            term = weight[:, None] * (params.slopes[:, p] * params.slopes[:, r])[None, :]
             q = term if q is None else q + term
     w_inv = w_inv[:, None, :, :]
     if crit is SelectionCriterion.D_OPTIMALITY:

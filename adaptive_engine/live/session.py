@@ -574,7 +574,8 @@ def _answer_locked(store, rules, ctx, row, item_id, response, elapsed, cache, mu
     answer_event = {
         "kind": "answer", "seq": seq + 1, "item_id": item_id, "response": value,
         "scored": int(state.scored[0, given]), "theta": _event_number(state.theta[0]),
-        "se": _event_number(state.se[0]), "rng_state": _rng_state(state), "elapsed": elapsed, "created_at": now, "reply": to_json(reply),
+        "se": _event_number(state.se[0]), "rng_state": _rng_state(state), "elapsed": elapsed, "created_at": now,
+        "reply": to_json(reply),
     }
     store.append_events([dict(e, session_id=session_id) for e in [answer_event, *events]])
     store.update_session(session_id, _session_changes(ctx, state, seq + 2, now, result))

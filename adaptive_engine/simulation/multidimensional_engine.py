@@ -202,7 +202,7 @@ def summary_text(summary: dict) -> str:
 
 def write_study(result: MultidimensionalSimulationResult, summary: dict, out_dir: str | Path) -> list[str]:
     """Write ``summary.json`` and ``examinees.csv`` into ``out_dir`` (created if needed)."""
-    from ..files import prepare_folder, StagedFiles
+    from ..files import StagedFiles, prepare_folder
 
     folder, _ = prepare_folder(out_dir)
     staging = StagedFiles(folder)
