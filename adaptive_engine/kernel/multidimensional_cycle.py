@@ -20,9 +20,14 @@ import attrs
 import numpy as np
 
 from ..design.types import ScoringMethod
-from ..irt import multidimensional as md
 from . import stopping
-from .multidimensional_state import MultidimensionalState, inverse, matrix_vector, posterior_moments
+from .multidimensional_state import (
+    MultidimensionalState,
+    inverse,
+    matrix_vector,
+    posterior_moments,
+    test_information_and_score,
+)
 from .selection import Picked, select
 
 #: Fisher-scoring iterations of the MAP estimate, and the step that counts as converged.
@@ -91,22 +96,16 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     tab = ctx.multidimensional
     sc = ctx.design.scoring
     items, resp = state.scored_items(rows)
-    given = items >= 0
-    params = tab.params.take(np.maximum(items, 0))
     precision = inverse(state.prior_covariance[rows])
     mu = state.prior_mean[rows]
     theta = np.array(start_theta, dtype=float)
     converged = np.zeros(rows.size, dtype=bool)
-    k = tab.k
     active = np.arange(rows.size)
     for _ in range(MAP_ITERATIONS):
         # only rows still moving are iterated (each row's path is its own: batch-independent)
-        sub = tab.params.take(np.maximum(items[active], 0))
-        at = theta[active][:, None, :]
-        answered = np.where(given[active], resp[active], -1)
-        grad = md.log_likelihood_gradient(sub, at, answered).sum(axis=1)
+        info, grad = test_information_and_score(tab, items[active], resp[active], theta[active], precision[active],
+                                                score=True)
         grad = grad - matrix_vector(precision[active], theta[active] - mu[active])
-        info = _information(sub, at, given[active], precision[active], k)
         new = np.clip(theta[active] + matrix_vector(inverse(info), grad), sc.grid_min, sc.grid_max)
         moved = np.max(np.abs(new - theta[active]), axis=1)
         theta[active] = new
@@ -115,18 +114,8 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
         active = active[~done]
         if active.size == 0:
             break
-    cov = inverse(_information(params, theta[:, None, :], given, precision, k))
-    return theta, cov, converged
-
-
-def _information(params, at, given, precision, k) -> np.ndarray:
-    j = np.where(given, md.slope_information(params, at), 0.0)
-    a = params.slopes
-    out = np.empty(precision.shape)
-    for p in range(k):
-        for q in range(p, k):
-            out[:, p, q] = out[:, q, p] = precision[:, p, q] + np.sum(j * a[..., p] * a[..., q], axis=1)
-    return out
+    info, _ = test_information_and_score(tab, items, resp, theta, precision)
+    return theta, inverse(info), converged
 
 
 def _se(cov) -> np.ndarray:

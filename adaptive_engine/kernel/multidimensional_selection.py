@@ -36,28 +36,18 @@ import numpy as np
 from ..design.types import SelectionCriterion
 from ..irt import multidimensional as md
 from ..irt.posterior import posterior_weights
-from .multidimensional_state import inverse, matrix_vector
+from .multidimensional_state import inverse, matrix_vector, test_information_and_score
 
 
 def test_information(ctx, state, rows) -> np.ndarray:
-    """``W = Sigma^-1 + sum_given J_i(theta) a_i a_i'`` at the interim estimate, (R, K, K).
+    """``W = Sigma^-1 + sum_given I_i(theta)`` at the interim estimate, (R, K, K).
 
     Only scored items count (pretest items do not enter the estimate).
     """
-    tab = ctx.multidimensional
-    items, _ = state.scored_items(rows)  # (R, L), -1 where not scored
-    theta = state.theta[rows]
-    given = items >= 0
-    params = tab.params.take(np.maximum(items, 0))
-    j = np.where(given, md.slope_information(params, theta[:, None, :]), 0.0)  # (R, L)
-    a = params.slopes  # (R, L, K)
-    k = tab.k
-    w = np.empty((rows.size, k, k))
-    precision = state_precision(state, rows)
-    for p in range(k):
-        for q in range(p, k):
-            w[:, p, q] = w[:, q, p] = precision[:, p, q] + np.sum(j * a[..., p] * a[..., q], axis=1)
-    return w
+    items, resp = state.scored_items(rows)  # (R, L), -1 where not scored
+    info, _ = test_information_and_score(ctx.multidimensional, items, resp, state.theta[rows],
+                                         state_precision(state, rows))
+    return info
 
 
 def state_precision(state, rows) -> np.ndarray:

@@ -196,6 +196,38 @@ def matrix_vector(m: np.ndarray, x: np.ndarray) -> np.ndarray:
     return np.stack(cols, axis=-1)
 
 
+def test_information_and_score(tab: MultidimensionalTables, items, responses, theta, precision, *,
+                               score: bool = False):
+    """``P + sum_i J_i(theta) a_i a_i'`` (R, K, K) and, with ``score``, the gradient of the
+    log-likelihood ``sum_i r_i(theta) a_i`` (R, K) over the items given.
+
+    ``items`` and ``responses`` are (R, W), -1 where nothing (or a pretest item) was given.
+    The sums run column by column, in the order the items were given, so that a row's sum
+    is the same whatever other rows (and how many columns) the batch holds: the columns a
+    row has not reached add exact zeros.
+    """
+    theta = np.asarray(theta, dtype=float)
+    k = tab.k
+    info = np.array(precision, dtype=float, copy=True)
+    grad = np.zeros(theta.shape) if score else None
+    width = items.shape[1]
+    reached = np.flatnonzero((items >= 0).any(axis=0))
+    for col in reached[reached < width]:
+        it = items[:, col]
+        given = it >= 0
+        params = tab.params.take(np.maximum(it, 0))
+        j = np.where(given, md.slope_information(params, theta), 0.0)
+        a = params.slopes
+        for p in range(k):
+            for q in range(p, k):
+                info[:, p, q] = info[:, p, q] + j * a[:, p] * a[:, q]
+                if q != p:
+                    info[:, q, p] = info[:, p, q]
+        if score:
+            grad = grad + md.log_likelihood_gradient(params, theta, np.where(given, responses[:, col], -1))
+    return info, grad
+
+
 # ----------------------------------------------------------------------------------------
 # the posterior on the grid
 
