@@ -711,6 +711,16 @@ def session_result(store: SessionStore, session_id: str) -> dict:
     return json.loads(row["result"])
 
 
+def _event_estimate(event: dict) -> dict:
+    """The estimate after an answer event: its columns, or for an ability vector (columns
+    empty) the vectors of the event's reply."""
+    if event["theta"] is None and event.get("reply"):
+        reply = json.loads(event["reply"])
+        if isinstance(reply.get("theta"), list):
+            return {"theta": reply["theta"], "se": reply["se"]}
+    return {"theta": event["theta"], "se": event["se"]}
+
+
 def show_session(store: SessionStore, session_id: str, *, include_seed: bool = False) -> dict:
     """The session as the log tells it: answers with the estimate after each, and the result.
 
@@ -725,7 +735,7 @@ def show_session(store: SessionStore, session_id: str, *, include_seed: bool = F
     snapshot = json.loads(row["state"])
     administered = [
         {"item_id": e["item_id"], "response": e["response"], "scored": bool(e["scored"]),
-         "theta": e["theta"], "se": e["se"], "elapsed": e["elapsed"]}
+         **_event_estimate(e), "elapsed": e["elapsed"]}
         for e in store.events(session_id) if e["kind"] == "answer"
     ]
     out = {"session_id": session_id, "examinee": row["examinee"], "status": row["status"],

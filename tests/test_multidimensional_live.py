@@ -1,0 +1,118 @@
+"""The two-dimensional licensing exam live: session CLI and HTTP API.
+
+The library is the oracle (its sessions replay simulated examinees, tests/test_multidimensional_kernel.py):
+over HTTP a session gets exactly the replies the Python API gives for the same seed and
+answers, with the ability as a list (one entry per dimension); the OpenAPI document's
+schema admits it (validated with jsonschema, a general-purpose library).
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+from adaptive_engine.bank import load_bank
+from adaptive_engine.cli import main
+from adaptive_engine.design.toml_file import read_design
+from adaptive_engine.live.session import ProcessCache, start_session, submit_answer
+from adaptive_engine.live.store import open_store
+
+ROOT = Path(__file__).resolve().parents[1]
+DESIGN_FILE = ROOT / "simulations" / "licensing_two_dimensional.toml"
+BANK_FILE = ROOT / "item_banks" / "meridian_valley_operator_2d.json"
+
+
+def _short_design(tmp_path) -> Path:
+    """The demo design cut to 15 items (the test stays quick)."""
+    path = tmp_path / "licensing_two_dimensional.toml"
+    path.write_text(DESIGN_FILE.read_text().replace("max_items = 60", "max_items = 15"))
+    return path
+
+
+def _answers(n=80):
+    return [int(x) for x in np.random.default_rng(42).random(n) < 0.6]
+
+
+def _python_replies(store_path, design, bank, seed, answers):
+    with open_store(store_path) as ref:
+        cache = ProcessCache()
+        out = [start_session(ref, design, bank, seed=seed, cache=cache, examinee="MV2-0001")]
+        while not out[-1]["done"]:
+            out.append(submit_answer(ref, out[-1]["session_id"], out[-1]["item_id"], answers[len(out) - 1],
+                                     cache=cache))
+    return out
+
+
+def test_session_cli_runs_the_two_dimensional_exam(tmp_path):
+    db = str(tmp_path / "s.db")
+    design_file = _short_design(tmp_path)
+    run = CliRunner().invoke
+    started = run(main, ["session", "start", "--db", db, "--design", str(design_file), "--bank", str(BANK_FILE),
+                         "--seed", "7"])
+    assert started.exit_code == 0, started.output
+    reply = json.loads(started.output)
+    assert reply["theta"] == [0.0, 0.0] and reply["se"] == [1.0, 1.0]
+    answers = _answers()
+    k = 0
+    while not reply["done"]:
+        out = run(main, ["session", "answer", "--db", db, reply["session_id"], reply["item_id"], str(answers[k])])
+        assert out.exit_code == 0, out.output
+        reply = json.loads(out.output)
+        k += 1
+    assert reply["stop_reason"] in ("se_reached", "max_items")
+    if reply["stop_reason"] == "se_reached":
+        assert max(reply["result"]["se"]) <= 0.3
+    shown = json.loads(run(main, ["session", "show", "--db", db, reply["session_id"]]).output)
+    assert len(shown["administered"]) == k and len(shown["administered"][-1]["theta"]) == 2
+    expected = _python_replies(tmp_path / "ref.db", read_design(design_file), load_bank(BANK_FILE), 7, answers)
+    assert reply["result"] == expected[-1]["result"]
+    refused = run(main, ["session", "start", "--db", db, "--design", str(design_file), "--bank", str(BANK_FILE),
+                         "--prior-mean", "0.5"])
+    assert refused.exit_code == 2 and "--prior-mean" in refused.output
+
+
+def test_http_api_runs_the_two_dimensional_exam(tmp_path):
+    pytest.importorskip("starlette", reason="the service tests need the 'service' extra (starlette)")
+    jsonschema = pytest.importorskip("jsonschema")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        from starlette.testclient import TestClient
+    from adaptive_engine.live.releases import publish_release
+    from adaptive_engine.live.service import ServiceSettings, create_app
+    from adaptive_engine.live.tokens import new_token
+
+    design, bank = read_design(_short_design(tmp_path)), load_bank(BANK_FILE)
+    location = str(tmp_path / "store.db")
+    _, secret = new_token(tmp_path / "tokens.toml", name="exam-app", role="delivery")
+    with open_store(location) as store:
+        publish_release(store, design, bank, name="meridian-2d")
+    app = create_app(ServiceSettings(store=location, tokens=str(tmp_path / "tokens.toml")))
+    headers = {"Authorization": f"Bearer {secret}"}
+    answers = _answers()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with TestClient(app) as client:
+            doc = client.get("/openapi.json").json()
+            started = client.post("/v1/sessions", json={"release": "meridian-2d", "examinee": "MV2-0001", "seed": 11}, headers=headers)
+            assert started.status_code == 201, started.text
+            replies = [started.json()]
+            while not replies[-1]["done"]:
+                r = replies[-1]
+                got = client.post(f"/v1/sessions/{r['session_id']}/answers", headers=headers,
+                                  json={"item_id": r["item_id"], "response": answers[len(replies) - 1]})
+                assert got.status_code == 200, got.text
+                replies.append(got.json())
+    expected = _python_replies(tmp_path / "ref.db", design, bank, 11, answers)
+    strip = [{k: v for k, v in r.items() if k != "session_id"} for r in replies]
+    assert strip == [{k: v for k, v in r.items() if k != "session_id"} for r in expected]
+    assert len(replies[-1]["result"]["theta"]) == 2
+    # the OpenAPI document admits an ability vector in every reply (JSON Schema, draft 2020-12)
+    schema = {**doc["components"]["schemas"]["SessionReply"], "components": doc["components"]}
+    validator = jsonschema.Draft202012Validator(schema)
+    for r in replies:
+        validator.validate(r)
