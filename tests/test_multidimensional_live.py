@@ -98,7 +98,8 @@ def test_http_api_runs_the_two_dimensional_exam(tmp_path):
         warnings.simplefilter("ignore")
         with TestClient(app) as client:
             doc = client.get("/openapi.json").json()
-            started = client.post("/v1/sessions", json={"release": "meridian-2d", "examinee": "MV2-0001", "seed": 11}, headers=headers)
+            body = {"release": "meridian-2d", "examinee": "MV2-0001", "seed": 11}
+            started = client.post("/v1/sessions", json=body, headers=headers)
             assert started.status_code == 201, started.text
             replies = [started.json()]
             while not replies[-1]["done"]:
