@@ -121,7 +121,7 @@ def test_optimal_pick_matches_brute_force_over_the_bank(criterion):
         assert state.pending[row] == free[int(np.argmax(scores))]
         values = criterion_values(ctx, state, np.array([row]), np.ones((1, bank.n_items), dtype=bool))[0]
         if criterion == "d_optimality":
-            expected = np.log(np.array(scores) / np.linalg.det(w))
+            expected = np.array(scores) / np.linalg.det(w) - 1.0
         else:
             expected = np.trace(np.linalg.inv(w)) + np.array(scores)
         np.testing.assert_allclose(values[free], expected, rtol=1e-9, atol=1e-12)
@@ -353,3 +353,39 @@ def test_simulate_refuses_what_it_cannot_run_for_vectors():
     res = simulate(design, bank, true_theta=np.zeros((3, 2)), seed=1)
     assert res.theta.shape == (3, 2)
     assert attrs.has(type(res))
+
+
+@pytest.mark.parametrize("edges", ["wide", "narrow_far"])
+def test_the_demo_design_at_the_edges_of_its_ranges_runs_to_the_end(edges):
+    """Nothing design check accepts may fail later: grids at the ends of the scale, priors
+    at the edges, abilities far beyond the grid (all answers right or wrong)."""
+    from pathlib import Path
+
+    from adaptive_engine.bank import load_bank
+    from adaptive_engine.design.toml_file import read_design
+
+    root = Path(__file__).resolve().parents[1]
+    design = read_design(root / "simulations" / "licensing_two_dimensional.toml")
+    bank = load_bank(root / "item_banks" / "meridian_valley_operator_2d.json")
+    if edges == "wide":
+        sc = attrs.evolve(design.scoring, method="map", grid_min=-20.0, grid_max=20.0, grid_points_per_dimension=41,
+                          prior_mean=(-20.0, 20.0), prior_covariance=((10000.0, -0.5), (-0.5, 0.0001)))
+        st = attrs.evolve(design.stopping, se=0.001, min_items=1, max_items=12)
+    else:
+        sc = attrs.evolve(design.scoring, grid_min=19.0, grid_max=20.0, grid_points_per_dimension=5,
+                          prior_mean=(19.5, 19.5), prior_covariance=((0.0001, 0.0), (0.0, 0.0001)))
+        st = attrs.evolve(design.stopping, se=None, se_per_dimension=(10.0, 0.001), min_items=1, max_items=12)
+    far = edges != "wide"
+    cuts = tuple(attrs.evolve(c, theta=19.5) for c in design.reporting.cut_scores) if far else \
+        design.reporting.cut_scores
+    opening = attrs.evolve(design.opening, theta=19.5 if far else 0.0)
+    design = attrs.evolve(design, scoring=sc, stopping=st, opening=opening,
+                          reporting=attrs.evolve(design.reporting, cut_scores=cuts))
+    assert check_design_against_bank(design, bank) == []
+    true = np.array([[0.0, 0.0], [-30.0, 30.0], [30.0, 30.0], [-30.0, -30.0], [1.0, -1.0]])
+    res = simulate_multidimensional(design, bank, true_theta=true, seed=3)
+    assert np.all(np.isfinite(res.theta)) and np.all(np.isfinite(res.se)) and np.all(res.se >= 0)
+    assert np.all((res.theta >= sc.grid_min) & (res.theta <= sc.grid_max))
+    ctx = build_context(design, bank)
+    reports = kernel.finish(ctx, kernel.start(ctx, randomness.stream_key(np.array([1, 2])))[0], np.arange(2))
+    assert all(r["composite"]["se"] is not None for r in reports)

@@ -8,9 +8,8 @@ matrix at the interim estimate theta (prior precision plus the Fisher informatio
 items given, Segall 1996) and ``I_j = J_j a_j a_j'`` a candidate's information (rank 1):
 
 ``d_optimality``
-    ``log det(W + I_j) - log det W = log(1 + J_j a_j' W^-1 a_j)`` (matrix determinant
-    lemma): the item that makes the determinant of the posterior information largest
-    (Segall 1996).
+    ``det(W + I_j) / det W - 1 = J_j a_j' W^-1 a_j`` (matrix determinant lemma): the item
+    that makes the determinant of the posterior information largest (Segall 1996).
 ``a_optimality``
     ``trace(W^-1) - trace((W + I_j)^-1) = J_j |W^-1 a_j|^2 / (1 + J_j a_j' W^-1 a_j)``
     (Sherman-Morrison): the item that makes the trace of the posterior covariance
@@ -63,7 +62,7 @@ def criterion_values(ctx, state, rows) -> np.ndarray:
     params = tab.params
     if crit is SelectionCriterion.KULLBACK_LEIBLER:
         return _kullback_leibler(ctx, state, rows)
-    j = md.slope_information(params, theta[:, None, :])  # (R, n)
+    j = _slope_information(tab, theta)  # (R, n)
     a = params.slopes[None, :, :]  # (1, n, K)
     if crit is SelectionCriterion.MAX_COMPOSITE_INFORMATION:
         u = tab.composite_weights / np.sqrt(np.sum(tab.composite_weights * tab.composite_weights))
@@ -83,11 +82,34 @@ def criterion_values(ctx, state, rows) -> np.ndarray:
             q = term if q is None else q + term
     w_inv = w_inv[:, None, :, :]
     if crit is SelectionCriterion.D_OPTIMALITY:
-        return np.log1p(j * q)
+        return j * q  # det(W + I_j) / det(W) - 1: the same order as the determinant
     if crit is SelectionCriterion.A_OPTIMALITY:
         v = matrix_vector(w_inv, a)  # (R, n, K): W^-1 a
         return j * np.sum(v * v, axis=-1) / (1.0 + j * q)
     raise AssertionError(f"criterion {crit!r}")  # pragma: no cover - refused by the gate
+
+
+def _slope_information(tab, theta) -> np.ndarray:
+    """``J_j(theta)`` of every item for rows ``theta`` (R, K), shape (R, n).
+
+    A bank of M2PL items only (two categories, no lower asymptote) takes the logistic's
+    ``D^2 e / (1 + e)^2`` with ``e = exp(-|z|)`` (the same value as ``D^2 P (1 - P)``, in
+    fewer passes over the batch x bank array); any other bank the general
+    :func:`adaptive_engine.irt.multidimensional.slope_information`.
+    """
+    params = tab.params
+    if not tab.logistic_only:
+        return md.slope_information(params, theta[:, None, :])
+    z = md.projection(params, theta[:, None, :])
+    z += params.intercepts[:, 0]
+    np.abs(z, out=z)
+    z *= -params.scaling
+    e = np.exp(z, out=z)
+    d = 1.0 + e
+    d *= d
+    np.divide(e, d, out=e)
+    e *= params.scaling * params.scaling
+    return e
 
 
 def _kullback_leibler(ctx, state, rows) -> np.ndarray:

@@ -56,6 +56,8 @@ class MultidimensionalTables:
         its target"), for :func:`adaptive_engine.kernel.stopping.stop_reasons`.
     finite_log_table : float (n, C, G) or None
         The log table with -inf (categories an item lacks) as 0, for Kullback-Leibler.
+    logistic_only : bool
+        Every item has two categories and no lower asymptote (an M2PL bank).
     """
 
     k: int
@@ -72,6 +74,7 @@ class MultidimensionalTables:
     se_targets: np.ndarray | None
     stopping_rule: Stopping
     finite_log_table: np.ndarray | None
+    logistic_only: bool = False
 
 
 def multidimensional_parameters(bank: ItemBank) -> md.MultidimensionalParameters:
@@ -127,6 +130,7 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
         params=params, prior_mean=mean, prior_covariance=cov, prior_precision=precision, log_prior=log_prior,
         composite_weights=None if weights is None else np.asarray(weights, dtype=float),
         se_targets=targets, stopping_rule=rule, finite_log_table=finite,
+        logistic_only=bool(np.all(params.n_categories == 2) and np.all(params.c == 0)),
     )
 
 
