@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import attrs
 import numpy as np
+from scipy.special import expit
 
 from ..bank.item_bank import ItemBank
 from ..design.types import Design, SelectionCriterion, Stopping
@@ -220,14 +221,23 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
         it = items[:, col]
         given = it >= 0
         params = tab.params.take(np.maximum(it, 0))
-        j = np.where(given, md.slope_information(params, theta), 0.0)
         a = params.slopes
+        if tab.logistic_only:
+            # M2PL items: P = expit(D (a . theta + d)), J = D^2 P (1 - P), score D (x - P)
+            scaling = params.scaling
+            prob = expit(scaling * (md.projection(params, theta) + params.intercepts[:, 0]))
+            j = np.where(given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
+        else:
+            j = np.where(given, md.slope_information(params, theta), 0.0)
         for p in range(k):
             for q in range(p, k):
                 info[:, p, q] = info[:, p, q] + j * a[:, p] * a[:, q]
                 if q != p:
                     info[:, q, p] = info[:, p, q]
-        if score:
+        if score and tab.logistic_only:
+            r = np.where(given, params.scaling * (responses[:, col] - prob), 0.0)
+            grad = grad + r[:, None] * a
+        elif score:
             grad = grad + md.log_likelihood_gradient(params, theta, np.where(given, responses[:, col], -1))
     return info, grad
 
