@@ -39,12 +39,12 @@ def m2pl_bank(slopes, intercepts) -> ItemBank:
 
 def measure(label, fn):
     tracemalloc.start()
-    t = time.perf_counter()
+    t, cpu = time.perf_counter(), time.process_time()
     out = fn()
-    seconds = time.perf_counter() - t
+    seconds, cpu = time.perf_counter() - t, time.process_time() - cpu
     peak = tracemalloc.get_traced_memory()[1] / 2**20
     tracemalloc.stop()
-    return label, seconds, peak, out
+    return label, seconds, cpu, peak, out
 
 
 FIXED = "[stopping]\nmin_items = 30\nmax_items = 30\n"
@@ -84,12 +84,13 @@ def main() -> None:
         rows.append(measure(f"2-D  {method.upper()} + D-optimality",
                             lambda d=d: simulate_multidimensional(d, bank2, true_theta=true2, seed=3,
                                                                   chunk_size=args.chunk)))
-    base = rows[0][1]
+    base, base_cpu = rows[0][1], rows[0][2]
     print(f"{n:,} examinees x 30 items, 1,000-item bank, chunks of {args.chunk}")
-    print(f"{'run':34} {'seconds':>9} {'peak MiB':>9} {'x 1-D':>7}")
-    for label, seconds, peak, _ in rows:
-        print(f"{label:34} {seconds:9.2f} {peak:9.1f} {seconds / base:7.2f}")
-    for label, _, _, res in rows[1:]:
+    print("(CPU seconds of this process beside wall seconds: on a shared machine the CPU ratio is the steadier one)")
+    print(f"{'run':34} {'seconds':>9} {'CPU s':>9} {'peak MiB':>9} {'x 1-D':>7} {'CPU x 1-D':>10}")
+    for label, seconds, cpu, peak, _ in rows:
+        print(f"{label:34} {seconds:9.2f} {cpu:9.2f} {peak:9.1f} {seconds / base:7.2f} {cpu / base_cpu:10.2f}")
+    for label, _, _, _, res in rows[1:]:
         rmse = np.sqrt(np.mean((res.theta - true2) ** 2, axis=0))
         print(f"  {label}: RMSE per dimension {rmse[0]:.3f}, {rmse[1]:.3f}")
 
