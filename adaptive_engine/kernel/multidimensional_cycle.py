@@ -123,10 +123,15 @@ def _se(cov) -> np.ndarray:
 
 
 def update_estimate(ctx, state, rows) -> None:
-    """Interim estimate after an answer: EAP on the grid, or MAP from there."""
-    mean, cov = posterior_moments(state.log_post[rows], ctx.multidimensional.points)
+    """Interim estimate after an answer: EAP on the grid, or MAP from the previous estimate.
+
+    The MAP is sought from the previous interim estimate (one answer away from the new
+    mode); the final MAP starts from the posterior mean (:func:`final_estimates`).
+    """
     if ctx.design.scoring.method is ScoringMethod.MAP:
-        mean, cov, _ = map_estimate(ctx, state, rows, mean)
+        mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
+    else:
+        mean, cov = posterior_moments(state.log_post[rows], ctx.multidimensional.points)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
