@@ -340,3 +340,10 @@ def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, item
         t = None if elapsed is None or elapsed[k] is None else np.array([elapsed[k]], dtype=float)
         picked = answer(ctx, state, rows, np.array([resp]), elapsed=t)
     return Step(state, picked)
+
+
+#: The bookkeeping shared with the multidimensional kernel (kernel/multidimensional_cycle.py):
+#: recording answers (the posterior update is the same row addition on its product grid)
+#: and applying a pick.
+record_answers = _record
+apply_pick = _apply_pick

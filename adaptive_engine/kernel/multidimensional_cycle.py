@@ -41,7 +41,7 @@ def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
     The prior is the design's multivariate normal; ``prior_mean`` and ``prior_sd`` are
     accepted for the signature's sake and must be None (or the design's values).
     """
-    from .cycle import Step, _apply_pick
+    from .cycle import Step, apply_pick
 
     tab = ctx.multidimensional
     state = MultidimensionalState.empty_vector(ctx, keys)
@@ -50,7 +50,7 @@ def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
     state.se[:] = state.prior_sd
     rows = np.arange(state.size)
     picked = select(ctx, state, rows, count_eligible=count_eligible)
-    _apply_pick(ctx, state, rows, picked)
+    apply_pick(ctx, state, rows, picked)
     no_item = picked.item < 0
     if no_item.any():
         state.done[no_item] = True
@@ -60,13 +60,13 @@ def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
 
 def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -> Picked:
     """Record answers of ``rows`` and move their tests on (see :func:`adaptive_engine.kernel.cycle.answer`)."""
-    from .cycle import _apply_pick, _record
+    from .cycle import apply_pick, record_answers
 
     rows = np.asarray(rows, dtype=np.int64)
     responses = np.asarray(responses, dtype=np.int64)
     if elapsed is not None:
         state.elapsed[rows] = np.asarray(elapsed, dtype=float)
-    _record(ctx, state, rows, responses)
+    record_answers(ctx, state, rows, responses)
     update_estimate(ctx, state, rows)
     picked = select(ctx, state, rows, count_eligible=count_eligible)
     reasons = stop_reasons(ctx, state, rows, picked)
@@ -77,7 +77,7 @@ def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -
     picked_go = Picked(item=np.where(go, picked.item, -1), value=np.where(go, picked.value, np.nan),
                        eligible=picked.eligible,
                        withheld=[w for w in picked.withheld if not state.done[w[0]]])
-    _apply_pick(ctx, state, rows, picked_go)
+    apply_pick(ctx, state, rows, picked_go)
     return picked_go
 
 

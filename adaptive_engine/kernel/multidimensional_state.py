@@ -25,7 +25,7 @@ from ..bank.item_bank import ItemBank
 from ..design.types import Design, SelectionCriterion, Stopping
 from ..errors import AdaptiveEngineError
 from ..irt import multidimensional as md
-from ..irt.posterior import _relative_density
+from ..irt.posterior import relative_density
 from .state import KernelState
 
 
@@ -253,7 +253,7 @@ def posterior_moments(log_post: np.ndarray, points: np.ndarray) -> tuple[np.ndar
     a grid within +-20 that loses at most four of sixteen digits, as in the
     one-dimensional :func:`adaptive_engine.irt.posterior.posterior_mean_sd`).
     """
-    w = _relative_density(log_post)
+    w = relative_density(log_post)
     total = np.sum(w, axis=1)
     k = points.shape[1]
     mean = np.stack([np.einsum("rg,g->r", w, points[:, j]) / total for j in range(k)], axis=1)
