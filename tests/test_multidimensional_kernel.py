@@ -389,3 +389,32 @@ def test_the_demo_design_at_the_edges_of_its_ranges_runs_to_the_end(edges):
     ctx = build_context(design, bank)
     reports = kernel.finish(ctx, kernel.start(ctx, randomness.stream_key(np.array([1, 2])))[0], np.arange(2))
     assert all(r["composite"]["se"] is not None for r in reports)
+
+
+def test_composite_classification_stops_once_its_interval_excludes_the_cut():
+    from scipy.stats import norm
+
+    bank = random_bank(120)
+    text = design_text(se="", max_items=40) + (
+        "[stopping.confidence_interval]\ncut = 0.0\nconfidence = 0.9\n"
+        "[reporting]\ncomposite_weights = [0.7, 0.3]\n[[reporting.cut_scores]]\nname = \"licence\"\ntheta = 0.0\n")
+    design = parse_design(text)
+    ctx = build_context(design, bank)
+    true = np.array([[1.5, 1.0], [-1.5, -1.0], [1.2, 0.8], [-1.0, -1.4]])
+    chunk = run_chunk(ctx, seed=2, start=0, true_theta=true)
+    assert set(chunk["stop_reason"]) <= {"confidence_interval_classified", "max_items"}
+    assert "confidence_interval_classified" in set(chunk["stop_reason"])
+    w = np.array([0.7, 0.3])
+    z = norm.ppf(0.95)  # two-sided 90% interval (scipy.stats)
+    for i in range(true.shape[0]):
+        if chunk["stop_reason"][i] != "confidence_interval_classified":
+            continue
+        # the composite's interval at the stop: w . theta +- z sqrt(w' S w), from the interim estimate
+        given = chunk["items"][i] >= 0
+        state = kernel.rebuild(ctx, int(randomness.stream_key(chunk["seeds"][i])), None, None,
+                               chunk["items"][i][given], chunk["responses"][i][given])[0]
+        value = w @ state.theta[0]
+        se = np.sqrt(w @ state.covariance[0] @ w)
+        assert value - z * se > 0.0 or value + z * se < 0.0
+        report = kernel.finish(ctx, state, np.array([0]))[0]
+        assert report["classifications"][0]["label"] == ("pass" if value >= 0 else "fail")
