@@ -42,6 +42,8 @@ BANKS = ROOT / "item_banks"
 #: The run seed and the examinees' true abilities (low, near the licence cut, high).
 RUN_SEED = 20240917
 TRUE_THETA = (-1.8, -0.2, 1.5)
+#: The same for designs with an ability vector of two dimensions (the two-dimensional exam).
+TRUE_THETA_2D = ((-1.8, -1.2), (-0.2, 0.1), (1.5, 1.0))
 #: Designs that take the first few abilities only: one integer program per item is slow.
 FEWER_EXAMINEES = {"shadow_test.toml": 1}
 #: Keys of an examinee's record in the order they are written.
@@ -60,6 +62,8 @@ def design_files() -> list[str]:
 
 def bank_file_for(design_file: str) -> str:
     """The bank a shipped design runs on (as ``tests/test_design.py`` pairs them)."""
+    if "two_dimensional" in design_file:
+        return "meridian_valley_operator_2d.json"
     return "staff_climate_survey.csv" if design_file.startswith("staff") else "meridian_valley_operator.csv"
 
 
@@ -75,7 +79,9 @@ def shipped_bank(bank_file: str):
     return load_bank(BANKS / bank_file)
 
 
-def _number(x) -> float | None:
+def _number(x) -> float | list | None:
+    if np.ndim(x) > 0:
+        return [_number(v) for v in x]
     x = float(x)
     return None if math.isnan(x) else round(x, DECIMALS)
 
@@ -101,8 +107,11 @@ def compute_entry(design_file: str, bank_file: str | None = None) -> dict:
     """
     bank_file = bank_file_for(design_file) if bank_file is None else bank_file
     design, bank = shipped_design(design_file), shipped_bank(bank_file)
+    ctx = build_context(design, bank)
+    if ctx.multidimensional is not None:
+        return _multidimensional_entry(ctx, design_file, bank_file)
     abilities = TRUE_THETA[:FEWER_EXAMINEES.get(design_file, len(TRUE_THETA))]
-    chunk = run_chunk(build_context(design, bank), seed=RUN_SEED, start=0, true_theta=np.array(abilities))
+    chunk = run_chunk(ctx, seed=RUN_SEED, start=0, true_theta=np.array(abilities))
     examinees = []
     for i, true_theta in enumerate(abilities):
         n = int((chunk.items[i] >= 0).sum())
@@ -120,7 +129,39 @@ def compute_entry(design_file: str, bank_file: str | None = None) -> dict:
             "bank_fingerprint": bank_fingerprint(bank), "run_seed": RUN_SEED, "examinees": examinees}
 
 
+def _multidimensional_entry(ctx, design_file: str, bank_file: str) -> dict:
+    """:func:`compute_entry` of a design with an ability vector (true abilities of two dimensions)."""
+    from adaptive_engine.kernel.multidimensional_cycle import MultidimensionalFinalEstimates, reports
+    from adaptive_engine.simulation.multidimensional_engine import run_chunk as run_vectors
+
+    design, bank = shipped_design(design_file), shipped_bank(bank_file)
+    abilities = TRUE_THETA_2D
+    chunk = run_vectors(ctx, seed=RUN_SEED, start=0, true_theta=np.array(abilities))
+    est = MultidimensionalFinalEstimates(theta=chunk["theta"], se=chunk["se"], covariance=chunk["covariance"],
+                                         status=np.full(len(abilities), "converged", dtype=object))
+    done = reports(ctx, est, n_scored=chunk["n_scored"], n_pretest=chunk["n_pretest"],
+                   stop_reason=chunk["stop_reason"])
+    examinees = []
+    for i, true_theta in enumerate(abilities):
+        n = int((chunk["items"][i] >= 0).sum())
+        examinees.append({
+            "true_theta": list(true_theta),
+            "seed": int(chunk["seeds"][i]),
+            "items": [str(bank.item_ids[r]) for r in chunk["items"][i, :n]],
+            "responses": [int(x) for x in chunk["responses"][i, :n]],
+            "stop_reason": str(chunk["stop_reason"][i]),
+            "theta": _number(chunk["theta"][i]),
+            "se": _number(chunk["se"][i]),
+            "at_or_above": [-1 if c["at_or_above"] is None else int(c["at_or_above"])
+                            for c in done[i]["classifications"]],
+        })
+    return {"bank": bank_file, "design_fingerprint": design_fingerprint(design),
+            "bank_fingerprint": bank_fingerprint(bank), "run_seed": RUN_SEED, "examinees": examinees}
+
+
 def _close(a, b) -> bool:
+    if isinstance(a, list) or isinstance(b, list):
+        return isinstance(a, list) and isinstance(b, list) and len(a) == len(b) and all(map(_close, a, b))
     if a is None or b is None:
         return a is None and b is None
     return abs(a - b) <= TOLERANCE
@@ -129,7 +170,11 @@ def _close(a, b) -> bool:
 def inputs(entry: dict) -> tuple:
     """What an entry was computed from: bank, fingerprints, run seed and true abilities."""
     return (entry["bank"], entry["design_fingerprint"], entry["bank_fingerprint"], entry["run_seed"],
-            tuple(e["true_theta"] for e in entry["examinees"]))
+            tuple(_hashable(e["true_theta"]) for e in entry["examinees"]))
+
+
+def _hashable(x):
+    return tuple(x) if isinstance(x, list) else x
 
 
 def examinee_differences(expected: dict, got: dict) -> list[str]:

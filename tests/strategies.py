@@ -290,7 +290,10 @@ def runnable_designs(draw, bank: ItemBank):
     exposure = d.Exposure(method=exposure_method, candidates=draw(st.integers(1, n_op)),
                           parameters_file="generated.csv" if params else None,
                           acceleration=_edge_or(draw, 0.01, 100.0))
-    criterion = draw(st.sampled_from(d.CRITERIA))
+    # the one-dimensional criteria (the multidimensional ones need a bank of M2PL/M3PL/MGRM items)
+    from adaptive_engine.design.types import MULTIDIMENSIONAL_CRITERIA
+
+    criterion = draw(st.sampled_from([c for c in d.CRITERIA if c not in MULTIDIMENSIONAL_CRITERIA]))
     selection = d.Selection(criterion=criterion, kl_interval=_edge_or(draw, 0.01, 10.0),
                             strata=draw(st.integers(1, min(4, n_op))), b_blocking=draw(st.booleans()))
     areas = ()
@@ -307,8 +310,12 @@ def runnable_designs(draw, bank: ItemBank):
     sprt = ci = None
     if draw(st.booleans()):
         ind = draw(_floats(0.01, min(5.0, (hi - lo) / 2 - 1e-6)))
-        sprt = d.SprtRule(cut=draw(_floats(lo + ind, hi - ind)), indifference=ind,
-                          alpha=_edge_or(draw, 1e-6, 0.49), beta=_edge_or(draw, 1e-6, 0.49))
+        cut = draw(_floats(lo + ind, hi - ind))
+        # lo + ind - ind need not give lo back in floating point (a tiny lo): such a region
+        # would stick out of the grid, which the design refuses
+        if lo <= cut - ind and cut + ind <= hi:
+            sprt = d.SprtRule(cut=cut, indifference=ind,
+                              alpha=_edge_or(draw, 1e-6, 0.49), beta=_edge_or(draw, 1e-6, 0.49))
     if draw(st.booleans()):
         ci = d.ConfidenceRule(cut=draw(on_grid), confidence=_edge_or(draw, 1e-6, df.MAX_CONFIDENCE))
     stopping = d.Stopping(

@@ -732,13 +732,15 @@ EXAMPLES = sorted(p.name for p in SIMULATIONS.glob("*.toml"))
 
 
 def _bank_for(name: str) -> Path:
+    if "two_dimensional" in name:
+        return BANKS / "meridian_valley_operator_2d.json"
     return BANKS / ("staff_climate_survey.csv" if name.startswith("staff") else "meridian_valley_operator.csv")
 
 
 def test_all_promised_examples_are_there():
     promised = {"minimal", "licensing_exam", "licensing_sprt", "licensing_ci_classification",
                 "posterior_weighted", "kullback_leibler", "a_stratified", "sympson_hetter", "progressive",
-                "max_priority_index", "shadow_test", "staff_climate_survey"}
+                "max_priority_index", "shadow_test", "staff_climate_survey", "licensing_two_dimensional"}
     assert promised <= {Path(n).stem for n in EXAMPLES}
 
 

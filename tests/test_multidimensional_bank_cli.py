@@ -272,15 +272,19 @@ def test_summed_information_works_in_blocks_of_items(monkeypatch, exam):
 
 
 # ---------------------------------------------------------------------------------------
-# the one-dimensional engine: K = 1 banks run in it, K > 1 banks are refused by name
+# the one-dimensional engine: K = 1 banks run in it; K > 1 banks run on the multidimensional
+# kernel, which refuses one-dimensional options at their keys
 
 
 @pytest.mark.parametrize("args, fragment", [
     # (score accepts banks of several dimensions: tests/test_multidimensional_score_cli.py)
+    # a one-dimensional design on a two-dimensional bank: refused at the keys that have no
+    # meaning for an ability vector (the multidimensional kernel runs the bank)
     (["design", "check", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D],
-     "bank meridian_valley_operator_2d: the bank has 2 ability dimensions"),
+     "[selection] criterion: max_fisher_information ranks items by a one-dimensional quantity and is not "
+     "available with an ability of 2 dimensions"),
     (["simulate", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D, "--examinees", "5",
-      "--out", "OUT"], "the bank has 2 ability dimensions"),
+      "--out", "OUT"], "[stopping.sprt]: this rule measures one ability and is not available with an ability of 2"),
     (["link", EXAM_2D, "--to", REPO / "item_banks" / "meridian_valley_operator.json", "--out", "OUT.json"],
      "BANK: bank meridian_valley_operator_2d holds multidimensional models"),
 ])

@@ -161,6 +161,12 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
     elif perturb_from:
         base = true_bank or bank
         true_bank = perturbed_bank(base, seed=seed, **read_standard_errors(perturb_from, base))
+    from ..design.bank_fit import runs_multidimensional
+
+    if runs_multidimensional(design, bank):
+        _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_spec, true_bank, chunk_size,
+                                   as_json, show_progress)
+        return
     progress = _Progress("simulating", enabled=show_progress)
     try:
         population = Population.drawn(parse_ability_spec(theta_spec), seed=seed, n_examinees=n_examinees,
@@ -178,6 +184,43 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
         click.echo(summary_table(study.summary))
         click.echo(f"wrote {_folder(out_dir)} (summary.json, examinees.csv, items.csv, conditional.csv, report.html"
                    f"{'' if no_administrations else ', administrations.csv'})")
+
+
+def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_spec, true_bank, chunk_size,
+                               as_json, show_progress):
+    """``simulate`` of a design that runs on the multidimensional kernel (summary.json, examinees.csv)."""
+    from ..design.bank_fit import require_design_fits_bank
+    from ..errors import SimulationError
+    from ..simulation.multidimensional_engine import (
+        multidimensional_metrics,
+        simulate_multidimensional,
+        summary_text,
+        write_study,
+    )
+    from ..simulation.population import DEFAULT_EXAMINEES, draw_vectors, examinee_count, parse_ability_spec
+
+    if true_bank is not None:
+        raise SimulationError("a true bank (--true-bank, --perturb) is not available for a multidimensional design",
+                              "--true-bank")
+    require_design_fits_bank(design, bank)
+    spec = parse_ability_spec(theta_spec)
+    n = examinee_count(spec, n_examinees, default=DEFAULT_EXAMINEES)
+    true_theta = draw_vectors(spec, n, seed, bank.n_dimensions)
+    progress = _Progress("simulating", enabled=show_progress)
+    try:
+        result = simulate_multidimensional(design, bank, true_theta=true_theta, seed=seed,
+                                           chunk_size=min(chunk_size, 2000), progress=progress)
+    finally:
+        progress.close()
+    summary = multidimensional_metrics(result)
+    summary["settings"] = {"design": design.source, "bank": bank.name, "abilities": spec.text, "seed": int(seed),
+                           "examinees": int(n), "dimensions": list(result.dimension_names)}
+    write_study(result, summary, out_dir)
+    if as_json:
+        echo_json(summary)
+    else:
+        click.echo(summary_text(summary))
+        click.echo(f"wrote {out_dir}/ (summary.json, examinees.csv)")
 
 
 @main.command("tune")

@@ -95,11 +95,10 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
     problems = design_problems(design)
     if problems:
         return problems
-    if bank.n_dimensions > 1:
-        # the kernel scores and selects with one ability: it could not start a test
-        return problems + [Problem(f"bank {bank.name}".strip(), (
-            f"the bank has {bank.n_dimensions} ability dimensions ({', '.join(bank.dimension_names)}); "
-            "designs run on one-dimensional banks"))]
+    if runs_multidimensional(design, bank):
+        problems += multidimensional_problems(design, bank)
+        if problems:
+            return problems
     st, bp, sel, ex = design.stopping, design.blueprint, design.selection, design.exposure
     operational = np.asarray(bank.status == "operational")
     n_operational = int(operational.sum())
@@ -296,6 +295,104 @@ def design_warnings(design: Design, bank: ItemBank) -> list[Problem]:
     return out
 
 
+#: Largest K the multidimensional kernel runs (its posterior lives on a product grid).
+MAX_KERNEL_DIMENSIONS = 3
+#: Default points per dimension of the multidimensional grid, by K (K = 1: grid_points).
+DEFAULT_POINTS_PER_DIMENSION = {2: 41, 3: 17}
+
+
+def runs_multidimensional(design: Design, bank: ItemBank) -> bool:
+    """Whether the pair runs on the multidimensional kernel: a bank of K > 1 dimensions, or
+    a design that asks for it (vector keys, a multidimensional criterion)."""
+    return bank.n_dimensions > 1 or design.asks_multidimensional
+
+
+def multidimensional_grid_points(design: Design, k: int) -> int:
+    """Points per dimension of the multidimensional grid for K = ``k``."""
+    sc = design.scoring
+    if sc.grid_points_per_dimension is not None:
+        return sc.grid_points_per_dimension
+    return sc.grid_points if k == 1 else DEFAULT_POINTS_PER_DIMENSION.get(k, 9)
+
+
+def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
+    """Why the multidimensional kernel cannot run ``design`` on ``bank`` (empty: it can).
+
+    The options that have no meaning for an ability vector are refused at their keys, the
+    keys with one entry per dimension must have K entries (K = the bank's dimensions).
+    """
+    from .types import MAX_MULTIDIMENSIONAL_GRID
+
+    k = bank.n_dimensions
+    names = ", ".join(bank.dimension_names)
+    out = []
+    where_bank = f"bank {bank.name}".strip()
+    if k > MAX_KERNEL_DIMENSIONS:
+        return [Problem(where_bank, f"the bank has {k} ability dimensions ({names}); adaptive tests run on "
+                                    f"banks of at most {MAX_KERNEL_DIMENSIONS} (the posterior lives on a grid "
+                                    "of points ** K)")]
+    if not bank.uses_multidimensional_models:
+        return [Problem(where_bank, "the design asks for the multidimensional kernel (vector keys or a "
+                                    "multidimensional criterion), which needs a bank of M2PL, M3PL or MGRM items "
+                                    "(a one-dimensional bank written as K = 1 of them will do)")]
+    for where, n in design.stated_dimensions().items():
+        if n != k:
+            out.append(Problem(where, f"{n} entries, but the bank has K = {k} ability dimension"
+                                      f"{'s' if k != 1 else ''} ({names}): give one entry per dimension"))
+    sc, sel, ex, st, rp, op = (design.scoring, design.selection, design.exposure, design.stopping,
+                               design.reporting, design.opening)
+    many = f"with an ability of {k} dimensions ({names})"
+    if sc.method not in (ScoringMethod.EAP, ScoringMethod.MAP):
+        out.append(Problem("[scoring] method", f"{sc.method.value} is not available {many}; use eap or map"))
+    if design.final_method not in (ScoringMethod.EAP, ScoringMethod.MAP):
+        out.append(Problem("[reporting] final_method",
+                           f"{design.final_method.value} is not available {many}; use eap or map"))
+    points = multidimensional_grid_points(design, k)
+    if points ** k > MAX_MULTIDIMENSIONAL_GRID:
+        out.append(Problem("[scoring] grid_points_per_dimension" if sc.grid_points_per_dimension is not None
+                           else "[scoring] grid_points",
+                           f"{points} points per dimension make a grid of {points ** k} points for K = {k}; "
+                           f"at most {MAX_MULTIDIMENSIONAL_GRID}"))
+    one_dimensional = {
+        SelectionCriterion.MAX_FISHER_INFORMATION: "d_optimality (its counterpart for an ability vector)",
+        SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION: "d_optimality or kullback_leibler",
+        SelectionCriterion.A_STRATIFIED: "d_optimality",
+    }
+    if k > 1 and sel.criterion in one_dimensional:
+        out.append(Problem("[selection] criterion", f"{sel.criterion.value} ranks items by a one-dimensional "
+                                                    f"quantity and is not available {many}; use "
+                                                    f"{one_dimensional[sel.criterion]}"))
+    if k == 1 and sel.criterion in (SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION,
+                                    SelectionCriterion.A_STRATIFIED):
+        out.append(Problem("[selection] criterion", f"{sel.criterion.value} runs on the one-dimensional kernel; "
+                                                    "leave out the vector keys and multidimensional criteria"))
+    if ex.method is ExposureMethod.SYMPSON_HETTER and design.exposure_strata:
+        out.append(Problem("[exposure] parameters_file", "exposure parameters conditional on ability strata "
+                                                         f"cut one ability scale and are not available {many}; "
+                                                         "give one parameter per item"))
+    if design.blueprint.shadow_test:
+        out.append(Problem("[blueprint] shadow_test", f"shadow tests maximise one-dimensional information and "
+                                                      f"are not available {many}"))
+    if op.random_theta is not None:
+        out.append(Problem("[opening] random_theta", f"a random starting point is not available {many}; the "
+                                                     "test starts at [opening] theta on every dimension"))
+    for name in ("sprt", "se_reduction", "min_information"):
+        if getattr(st, name) is not None:
+            where = "[stopping.sprt]" if name == "sprt" else f"[stopping] {name}"
+            out.append(Problem(where, f"this rule measures one ability and is not available {many}; stop on se "
+                                      "or se_per_dimension, length, time, or [stopping.confidence_interval] "
+                                      "on the composite"))
+    if st.confidence_interval is not None and rp.composite_weights is None and k > 1:
+        out.append(Problem("[stopping.confidence_interval]",
+                           f"{many} the interval classifies the composite of [reporting] composite_weights; "
+                           "give them"))
+    if rp.cut_scores and rp.composite_weights is None and k > 1:
+        out.append(Problem("[[reporting.cut_scores]]",
+                           f"{many} cut scores classify the composite of [reporting] composite_weights; "
+                           "give them"))
+    return out
+
+
 def require_design_fits_bank(design: Design, bank: ItemBank) -> None:
     """Raise :class:`DesignError` listing every problem of :func:`check_design_against_bank`."""
     problems = check_design_against_bank(design, bank)
@@ -315,7 +412,18 @@ _CRITERION_WORDS = {
     SelectionCriterion.A_STRATIFIED: "within {strata} a-strata taken from low to high a ({blocking}), "
                                      "the item whose b is closest to the estimate",
     SelectionCriterion.RANDOM: "an eligible item at random",
+    SelectionCriterion.D_OPTIMALITY: "the item that makes the determinant of the posterior information largest",
+    SelectionCriterion.A_OPTIMALITY: "the item that makes the trace of the posterior covariance smallest",
+    SelectionCriterion.MAX_COMPOSITE_INFORMATION:
+        "the item with the most Fisher information in the direction of the composite weights",
 }
+
+
+def _number_text(value) -> str:
+    """A number as ``:g`` prints it, a vector as a list of them."""
+    if isinstance(value, tuple):
+        return "[" + ", ".join(f"{v:g}" for v in value) + "]"
+    return f"{value:g}"
 
 
 def describe_design(design: Design) -> list[str]:
@@ -332,7 +440,14 @@ def describe_design(design: Design) -> list[str]:
     else:
         start = f"start at a theta drawn uniformly from [{op.random_theta[0]:g}, {op.random_theta[1]:g}]"
     lines = [f"opening: {start}; {_first_item_words(design)}"]
-    prior = f"N({sc.prior_mean:g}, {sc.prior_sd:g}^2) prior"
+    if isinstance(sc.prior_mean, tuple) or sc.prior_covariance is not None:
+        mean = (_number_text(sc.prior_mean) if isinstance(sc.prior_mean, tuple)
+                else f"{sc.prior_mean:g} on every dimension")
+        cov = ("covariance " + str([list(r) for r in sc.prior_covariance]) if sc.prior_covariance is not None
+               else f"covariance {sc.prior_sd:g}^2 I")
+        prior = f"multivariate normal prior, mean {mean}, {cov}"
+    else:
+        prior = f"N({sc.prior_mean:g}, {sc.prior_sd:g}^2) prior"
     scoring = f"scoring: {sc.method.upper()}"
     if sc.method in (ScoringMethod.MAP, ScoringMethod.EAP):
         scoring += f" with a {prior}"
@@ -341,7 +456,12 @@ def describe_design(design: Design) -> list[str]:
                     if sc.extreme_pattern_method is ExtremePatternMethod.FIXED_STEP
                     else f"{sc.extreme_pattern_method.upper()} with a {prior}")
         scoring += f"; {fallback} while every answer is in the lowest or every one in the highest category"
-    lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")
+    if design.asks_multidimensional:
+        points = (f"{sc.grid_points_per_dimension} points per dimension" if sc.grid_points_per_dimension is not None
+                  else "41 points per dimension for K = 2, 17 for K = 3, grid_points for K = 1")
+        lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} on every dimension ({points})")
+    else:
+        lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")
     words = _CRITERION_WORDS[sel.criterion].format(
         kl_interval=sel.kl_interval, strata=sel.strata,
         blocking="b-blocked" if sel.b_blocking else "no b-blocking")
@@ -359,8 +479,12 @@ def describe_design(design: Design) -> list[str]:
     }[ex.method]
     lines.append(f"exposure: {exposure}")
     lines.append("blueprint: " + _blueprint_words(bp))
-    lines.append("stopping: " + _stopping_words(st))
-    lines.append("reporting: " + _reporting_words(design))
+    lines.append("stopping: " + _stopping_words(st, vector=design.asks_multidimensional))
+    words = _reporting_words(design)
+    if design.reporting.composite_weights is not None:
+        words += (f"; composite {_number_text(design.reporting.composite_weights)} . theta reported with its SE "
+                  "(cut scores classify it)")
+    lines.append("reporting: " + words)
     return lines
 
 
@@ -396,10 +520,13 @@ def _first_choice(design: Design, k_first: int) -> str:
     else:
         ranked_by = {
             "max_fisher_information": f"Fisher information {where}",
-            "posterior_weighted_information": (f"Fisher information averaged over the N({sc.prior_mean:g}, "
+            "posterior_weighted_information": (f"Fisher information averaged over the N({_number_text(sc.prior_mean)}, "
                                                f"{sc.prior_sd:g}^2) prior (the starting theta does not enter)"),
             "kullback_leibler": f"Kullback-Leibler information over +- {sel.kl_interval:g} around the start",
             "a_stratified": "closeness of b to the start, within the lowest-a stratum",
+            "d_optimality": f"the determinant of the prior precision plus the item's information {where}",
+            "a_optimality": f"the trace of the posterior covariance after the item {where}",
+            "max_composite_information": f"information in the composite's direction {where}",
         }[sel.criterion]
         if bp.areas and bp.method == "max_priority_index":
             ranked_by += " weighted by the area priorities"
@@ -441,10 +568,13 @@ def _blueprint_words(bp) -> str:
     return "; ".join(parts)
 
 
-def _stopping_words(st) -> str:
+def _stopping_words(st, *, vector: bool = False) -> str:
     rules = [f"after {st.max_items} scored items"]
     if st.se is not None:
-        rules.append(f"once SE <= {st.se:g}")
+        rules.append(f"once SE <= {st.se:g}" + (" on every dimension" if vector else ""))
+    if st.se_per_dimension is not None:
+        rules.append("once the SE of each dimension is at most its target "
+                     + _number_text(st.se_per_dimension))
     if st.sprt is not None:
         s = st.sprt
         rules.append(f"once the SPRT at cut {s.cut:g} +- {s.indifference:g} decides "

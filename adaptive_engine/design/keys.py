@@ -59,6 +59,21 @@ def within(limit):
     return check
 
 
+def each(check):
+    """``check`` applied to a number, or to every entry of a vector (entries numbered from 1)."""
+
+    def check_each(x):
+        if not isinstance(x, tuple):
+            return check(x)
+        for j, v in enumerate(x, start=1):
+            problem = check(v)
+            if problem:
+                return f"entry {j} {problem}"
+        return None
+
+    return check_each
+
+
 def share_check(x):
     return None if 0 < x <= 1 else f"must lie in (0, 1], got {x!r}"
 
@@ -116,7 +131,9 @@ class Key:
 
     ``kind`` is one of ``number``, ``whole``, ``flag``, ``text``, ``option``, ``interval``
     (two ascending numbers), ``positions`` (distinct whole numbers >= 1), ``part`` (an
-    object of class ``part``) and ``parts`` (a tuple of them).  ``optional`` keys may be
+    object of class ``part``), ``parts`` (a tuple of them), ``vector`` (an array of numbers,
+    one per ability dimension), ``number_or_vector`` (either) and ``matrix`` (a square array
+    of rows).  ``optional`` keys may be
     None (absent).
     """
 
@@ -150,6 +167,15 @@ class Key:
             return tuple(sorted(int(v) for v in value))
         if kind == "parts" and isinstance(value, list):
             return tuple(value)
+        if kind == "number_or_vector" and not number_problem(value):
+            return float(value)
+        if kind in ("vector", "number_or_vector") and isinstance(value, (list, tuple)) and value \
+                and not any(number_problem(v) for v in value):
+            return tuple(float(v) for v in value)
+        if kind == "matrix" and isinstance(value, (list, tuple)) and value \
+                and all(isinstance(row, (list, tuple)) and row and not any(number_problem(v) for v in row)
+                        for row in value):
+            return tuple(tuple(float(v) for v in row) for row in value)
         return value
 
     def problem(self, value) -> str | None:
@@ -177,6 +203,10 @@ class Key:
             problem = _interval_problem(value)
         elif kind == "positions":
             problem = _positions_problem(value)
+        elif kind in ("vector", "number_or_vector"):
+            problem = _vector_problem(value, number_allowed=kind == "number_or_vector")
+        elif kind == "matrix":
+            problem = _matrix_problem(value)
         elif kind == "part":
             problem = None if isinstance(value, self.part) else f"expected a {self.part.__name__}, got {value!r}"
         elif kind == "parts":
@@ -211,6 +241,44 @@ def _positions_problem(value) -> str | None:
         return "positions are 1-based: every entry must be >= 1"
     if len(set(value)) != len(value):
         return "positions must not repeat"
+    return None
+
+
+#: Most entries of a vector key (the most ability dimensions a bank may have).
+MAX_VECTOR_LENGTH = 20
+
+
+def _vector_problem(value, *, number_allowed: bool) -> str | None:
+    if number_allowed and isinstance(value, float):
+        return None
+    what = "a number or an array of numbers (one per ability dimension)" if number_allowed \
+        else "an array of numbers (one per ability dimension)"
+    if not isinstance(value, (list, tuple)) or not value:
+        return f"expected {what}, got {value_kind(value)}"
+    for j, v in enumerate(value, start=1):
+        problem = number_problem(v)
+        if problem:
+            return f"entry {j}: {problem}"
+    if len(value) > MAX_VECTOR_LENGTH:
+        return f"{len(value)} entries; at most {MAX_VECTOR_LENGTH} (one per ability dimension)"
+    return None
+
+
+def _matrix_problem(value) -> str | None:
+    if not isinstance(value, (list, tuple)) or not value:
+        return f"expected an array of rows [[..], [..]], got {value_kind(value)}"
+    k = len(value)
+    for i, row in enumerate(value, start=1):
+        if not isinstance(row, (list, tuple)):
+            return f"row {i}: expected an array of numbers, got {value_kind(row)}"
+        if len(row) != k:
+            return f"row {i} has {len(row)} entries; a {k} x {k} matrix needs {k} (square)"
+        for j, v in enumerate(row, start=1):
+            problem = number_problem(v)
+            if problem:
+                return f"row {i}, entry {j}: {problem}"
+    if k > MAX_VECTOR_LENGTH:
+        return f"{k} rows; at most {MAX_VECTOR_LENGTH} (one per ability dimension)"
     return None
 
 

@@ -533,6 +533,12 @@ def _toml_value(value, kind: str) -> str:
         return f"[{float(value[0])!r}, {float(value[1])!r}]"
     if kind == "positions":
         return "[" + ", ".join(str(int(v)) for v in value) + "]"
+    if kind in ("vector", "number_or_vector"):
+        if not isinstance(value, tuple):
+            return repr(float(value))
+        return "[" + ", ".join(repr(float(v)) for v in value) + "]"
+    if kind == "matrix":
+        return "[" + ", ".join(_toml_value(row, "vector") for row in value) + "]"
     raise AssertionError(kind)  # pragma: no cover
 
 

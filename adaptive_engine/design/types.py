@@ -40,6 +40,7 @@ from .keys import (
     Key,
     above_at_most,
     between,
+    each,
     key,
     keys_of,
     magnitude_between,
@@ -60,7 +61,8 @@ __all__ = [
     "BLUEPRINT_METHODS", "CRITERIA", "EXPOSURE_METHODS", "EXTREME_PATTERN_METHODS", "SCORING_METHODS",
     "RENAMED_KEYS", "RENAMED_VALUES", "GRID_LIMIT", "MAX_CONFIDENCE", "MAX_COUNT", "MAX_DECIMALS",
     "MAX_GRID_POINTS", "MAX_SCALE_BOUND", "MAX_SCALE_INTERCEPT", "MAX_TEST_LENGTH", "MAX_TIME_LIMIT",
-    "MIN_GRID_POINTS", "PRIOR_SD_RANGE", "SCALE_SLOPE_RANGE",
+    "MIN_GRID_POINTS", "PRIOR_SD_RANGE", "SCALE_SLOPE_RANGE", "MULTIDIMENSIONAL_CRITERIA",
+    "GRID_POINTS_PER_DIMENSION_RANGE", "MAX_MULTIDIMENSIONAL_GRID", "covariance_problem",
 ]
 
 # ----------------------------------------------------------------------------------------
@@ -98,6 +100,19 @@ class SelectionCriterion(enum.StrEnum):
     KULLBACK_LEIBLER = "kullback_leibler"
     A_STRATIFIED = "a_stratified"
     RANDOM = "random"
+    #: Multidimensional: the largest determinant of the posterior information after the
+    #: item (Segall 1996).
+    D_OPTIMALITY = "d_optimality"
+    #: Multidimensional: the smallest trace of the posterior covariance after the item.
+    A_OPTIMALITY = "a_optimality"
+    #: Multidimensional: the largest information in the direction of ``[reporting]
+    #: composite_weights`` (one composite of the dimensions).
+    MAX_COMPOSITE_INFORMATION = "max_composite_information"
+
+
+#: Criteria that exist only for an ability of several dimensions (K = 1 included).
+MULTIDIMENSIONAL_CRITERIA = frozenset({SelectionCriterion.D_OPTIMALITY, SelectionCriterion.A_OPTIMALITY,
+                                       SelectionCriterion.MAX_COMPOSITE_INFORMATION})
 
 
 class ExposureMethod(enum.StrEnum):
@@ -152,6 +167,11 @@ MAX_GRID_POINTS = 2001
 GRID_LIMIT = 20.0
 #: Prior SD: from a very informative prior to one that is flat on any grid.
 PRIOR_SD_RANGE = (0.01, 100.0)
+#: Points per dimension of a multidimensional ability grid (the grid has points ** K).
+GRID_POINTS_PER_DIMENSION_RANGE = (5, 201)
+#: Most points of a multidimensional ability grid: the kernel holds a bank x grid table
+#: and a batch x grid posterior.
+MAX_MULTIDIMENSIONAL_GRID = 40_000
 #: Longest test (scored items) and most items a count option may name.
 MAX_TEST_LENGTH = 1000
 MAX_COUNT = 1000
@@ -212,17 +232,26 @@ class Scoring(Checked):
     ``extreme_pattern_method`` says what is used then -- ``eap`` or ``map`` with the prior,
     or ``fixed_step`` (previous estimate +- ``fixed_step``).
     ``grid_min``, ``grid_max``, ``grid_points``: the quadrature grid of the posterior.
+
+    A multidimensional ability (a bank of K dimensions) has a multivariate normal prior:
+    ``prior_mean`` is then one number per dimension (or one number for all) and
+    ``prior_covariance`` a K x K symmetric positive definite matrix (default:
+    ``prior_sd ** 2`` times the identity, N(0, I) with the defaults).  Its grid is the
+    product of ``grid_points_per_dimension`` points on ``[grid_min, grid_max]`` per
+    dimension (default: ``grid_points`` for K = 1, 41 for K = 2, 17 for K = 3).
     """
 
     method: ScoringMethod = key(ScoringMethod.EAP, "option", option=ScoringMethod)
-    prior_mean: float = key(0.0, "number", within(GRID_LIMIT))
+    prior_mean: float | tuple = key(0.0, "number_or_vector", each(within(GRID_LIMIT)))
     prior_sd: float = key(1.0, "number", between(*PRIOR_SD_RANGE))
+    prior_covariance: tuple | None = key(None, "matrix")
     extreme_pattern_method: ExtremePatternMethod = key(ExtremePatternMethod.EAP, "option",
                                                        option=ExtremePatternMethod)
     fixed_step: float = key(0.7, "number", between(0.01, 5.0))
     grid_min: float = key(-6.0, "number", within(GRID_LIMIT))
     grid_max: float = key(6.0, "number", within(GRID_LIMIT))
     grid_points: int = key(121, "whole", between(MIN_GRID_POINTS, MAX_GRID_POINTS))
+    grid_points_per_dimension: int | None = key(None, "whole", between(*GRID_POINTS_PER_DIMENSION_RANGE))
 
     def where(self) -> str:
         return "[scoring]"
@@ -234,9 +263,21 @@ class Scoring(Checked):
         lo, hi = self.grid_min, self.grid_max
         if not lo < hi:
             return [Problem("[scoring] grid_max", f"must be above grid_min ({lo!r}), got {hi!r}")]
-        if not self.on_grid(self.prior_mean):
-            return [Problem("[scoring] prior_mean",
-                            f"prior mean {self.prior_mean!r} lies outside the ability grid [{lo!r}, {hi!r}]")]
+        means = self.prior_mean if isinstance(self.prior_mean, tuple) else (self.prior_mean,)
+        for j, mean in enumerate(means, start=1):
+            if not self.on_grid(mean):
+                entry = f"entry {j} " if isinstance(self.prior_mean, tuple) else ""
+                return [Problem("[scoring] prior_mean",
+                                f"{entry}prior mean {mean!r} lies outside the ability grid [{lo!r}, {hi!r}]")]
+        if self.prior_covariance is not None:
+            problem = covariance_problem(self.prior_covariance)
+            if problem:
+                return [Problem("[scoring] prior_covariance", problem)]
+            k = len(self.prior_covariance)
+            if isinstance(self.prior_mean, tuple) and len(self.prior_mean) != k:
+                return [Problem("[scoring] prior_covariance",
+                                f"a {k} x {k} matrix, but prior_mean has {len(self.prior_mean)} entries: "
+                                "both need one entry per ability dimension")]
         return []
 
 
@@ -377,11 +418,17 @@ class Stopping(Checked):
     reduce the SE by less than this (Choi, Grady & Dodd 2011).  ``min_information``: stop
     once no eligible item has information above this at the estimate.  ``time_limit``:
     seconds, as reported by the app.
+
+    A multidimensional ability stops on ``se`` once the SE of every dimension is at or
+    below it, or on ``se_per_dimension`` (one target per dimension) once each is reached;
+    ``confidence_interval`` then classifies the composite ``[reporting]
+    composite_weights``.
     """
 
     min_items: int = key(1, "whole", between(1, MAX_TEST_LENGTH))
     max_items: int = key(30, "whole", between(1, MAX_TEST_LENGTH))
     se: float | None = key(None, "number", between(0.001, 10.0))
+    se_per_dimension: tuple | None = key(None, "vector", each(between(0.001, 10.0)))
     sprt: SprtRule | None = key(None, "part", part=SprtRule)
     confidence_interval: ConfidenceRule | None = key(None, "part", part=ConfidenceRule)
     se_reduction: float | None = key(None, "number", between(1e-6, 10.0))
@@ -395,6 +442,9 @@ class Stopping(Checked):
         if self.min_items > self.max_items:
             return [Problem("[stopping] min_items",
                             f"min_items ({self.min_items}) exceeds max_items ({self.max_items})")]
+        if self.se is not None and self.se_per_dimension is not None:
+            return [Problem("[stopping] se_per_dimension",
+                            "give either se (one target for every dimension) or se_per_dimension, not both")]
         return []
 
 
@@ -432,7 +482,12 @@ class ScaleRule(Checked):
 
 @attrs.frozen(kw_only=True)
 class Reporting(Checked):
-    """Final result: ``final_method`` (None: the interim method), interval, scale, cuts, fit."""
+    """Final result: ``final_method`` (None: the interim method), interval, scale, cuts, fit.
+
+    ``composite_weights`` (one weight per ability dimension) define the composite
+    ``w . theta`` of a multidimensional ability: reported with its SE ``sqrt(w' S w)``,
+    classified by the cut scores, aimed at by ``max_composite_information``.
+    """
 
     final_method: ScoringMethod | None = key(None, "option", option=ScoringMethod)
     confidence: float = key(0.95, "number", above_at_most(0, MAX_CONFIDENCE))
@@ -442,14 +497,45 @@ class Reporting(Checked):
     #: whether examinees may know which items are pretest items (unscored): the interactive
     #: ``session try`` then marks them.  Presentation only: no decision depends on it.
     announce_pretest_items: bool = key(False, "flag")
+    composite_weights: tuple | None = key(None, "vector", each(within(1e3)))
 
     def where(self) -> str:
         return "[reporting]"
 
     def rules(self) -> list[Problem]:
         names = [c.name for c in self.cut_scores]
-        return [Problem(f"[[reporting.cut_scores]] #{i} name", f"cut score name {name!r} repeats")
-                for i, name in enumerate(names, start=1) if names.index(name) != i - 1]
+        problems = [Problem(f"[[reporting.cut_scores]] #{i} name", f"cut score name {name!r} repeats")
+                    for i, name in enumerate(names, start=1) if names.index(name) != i - 1]
+        if self.composite_weights is not None and not any(w != 0 for w in self.composite_weights):
+            problems.append(Problem("[reporting] composite_weights", "must include a weight other than 0"))
+        return problems
+
+
+def covariance_problem(matrix) -> str | None:
+    """Why a square matrix (tuple of rows) is not a covariance matrix: symmetric and
+    positive definite, with variances in the prior SD range squared (None when it is)."""
+    import numpy as np
+
+    m = np.asarray(matrix, dtype=float)
+    k = m.shape[0]
+    for i in range(k):
+        for j in range(i + 1, k):
+            if m[i, j] != m[j, i]:
+                return (f"must be symmetric: row {i + 1}, entry {j + 1} is {m[i, j]!r} but row {j + 1}, "
+                        f"entry {i + 1} is {m[j, i]!r}")
+    lo, hi = PRIOR_SD_RANGE
+    for i in range(k):
+        if not lo * lo <= m[i, i] <= hi * hi:
+            return (f"variance {i + 1} (row {i + 1}, entry {i + 1}) must lie in [{lo * lo:g}, {hi * hi:g}], "
+                    f"got {m[i, i]!r}")
+    try:
+        np.linalg.cholesky(m)
+    except np.linalg.LinAlgError:
+        return ("must be positive definite (a covariance matrix: every correlation implied must leave the "
+                "matrix invertible), got " + repr([list(r) for r in matrix]))
+    if np.linalg.cond(m) > 1e10:
+        return "is nearly singular (condition number above 1e10): the dimensions would be one"
+    return None
 
 
 def _strata(value) -> tuple:
@@ -490,6 +576,42 @@ class Design(Checked):
     def where(self) -> str:
         return "design"
 
+    def stated_dimensions(self) -> dict[str, int]:
+        """The keys that give one entry per ability dimension: location -> their length."""
+        sc, st, rp = self.scoring, self.stopping, self.reporting
+        out = {}
+        if isinstance(sc.prior_mean, tuple):
+            out["[scoring] prior_mean"] = len(sc.prior_mean)
+        if sc.prior_covariance is not None:
+            out["[scoring] prior_covariance"] = len(sc.prior_covariance)
+        if st.se_per_dimension is not None:
+            out["[stopping] se_per_dimension"] = len(st.se_per_dimension)
+        if rp.composite_weights is not None:
+            out["[reporting] composite_weights"] = len(rp.composite_weights)
+        return out
+
+    @property
+    def asks_multidimensional(self) -> bool:
+        """True when the design itself asks for the multidimensional kernel (a vector or
+        matrix key, or a multidimensional criterion); a bank of K > 1 dimensions always
+        runs there."""
+        return bool(self.stated_dimensions()) or self.selection.criterion in MULTIDIMENSIONAL_CRITERIA
+
+    def _dimension_problems(self) -> list[Problem]:
+        stated = self.stated_dimensions()
+        problems = []
+        if len(set(stated.values())) > 1:
+            first, k = next(iter(stated.items()))
+            problems += [Problem(where, f"{n} entries, but {first} has {k}: every key with one entry per "
+                                        "ability dimension needs the same number")
+                         for where, n in stated.items() if n != k]
+        if self.selection.criterion is SelectionCriterion.MAX_COMPOSITE_INFORMATION \
+                and self.reporting.composite_weights is None:
+            problems.append(Problem("[selection] criterion",
+                                    "max_composite_information aims at the composite of [reporting] "
+                                    "composite_weights; give them"))
+        return problems
+
     def key_problems(self) -> list[Problem]:
         out = []
         for name, spec in keys_of(type(self)).items():
@@ -528,6 +650,7 @@ class Design(Checked):
         for i, cut in enumerate(rp.cut_scores, start=1):
             on_grid(cut.theta, f"[[reporting.cut_scores]] #{i} theta", f"cut score {cut.name!r}")
         problems += _blueprint_within_length(bp, st)
+        problems += self._dimension_problems()
         ex = self.exposure
         if ex.method is ExposureMethod.SYMPSON_HETTER and self.exposure_parameters is None:
             problems.append(Problem("[exposure] parameters_file",

@@ -154,3 +154,7 @@ def resolution_floor(grid) -> float:
     if grid.size < 2:
         return 0.0
     return float((grid[-1] - grid[0]) / (grid.size - 1)) / np.sqrt(12.0)
+
+
+#: Public name of :func:`_relative_density` (the multidimensional kernel's posterior moments).
+relative_density = _relative_density

@@ -48,6 +48,11 @@ def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligi
     prior_mean, prior_sd : float or array (B,), optional
         Examinee-specific prior (returning examinees); default: the design's.
     """
+    if ctx.multidimensional is not None:
+        from . import multidimensional_cycle
+
+        return multidimensional_cycle.start(ctx, keys, prior_mean=prior_mean, prior_sd=prior_sd,
+                                            count_eligible=count_eligible)
     sc = ctx.design.scoring
     mean = sc.prior_mean if prior_mean is None else prior_mean
     sd = sc.prior_sd if prior_sd is None else prior_sd
@@ -89,6 +94,11 @@ def answer(ctx: TestContext, state: KernelState, rows, responses, *, elapsed=Non
     Picked
         The next items (``item`` -1 where the test stopped).
     """
+    if ctx.multidimensional is not None:
+        from . import multidimensional_cycle
+
+        return multidimensional_cycle.answer(ctx, state, rows, responses, elapsed=elapsed,
+                                             count_eligible=count_eligible)
     rows = np.asarray(rows, dtype=np.int64)
     responses = np.asarray(responses, dtype=np.int64)
     if elapsed is not None:
@@ -271,6 +281,10 @@ class FinalEstimates:
 
 def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimates:
     """Final estimate (the design's final method), person fit and SPRT decision for ``rows``."""
+    if ctx.multidimensional is not None:
+        from . import multidimensional_cycle
+
+        return multidimensional_cycle.final_estimates(ctx, state, rows)
     from ..irt.estimation import estimate
     from ..irt.person_fit import person_fit
 
@@ -302,6 +316,10 @@ def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimate
 
 def finish(ctx: TestContext, state: KernelState, rows, estimates: FinalEstimates | None = None) -> list[dict]:
     """Final report (a JSON-ready dict) per examinee of ``rows``."""
+    if ctx.multidimensional is not None:
+        from . import multidimensional_cycle
+
+        return multidimensional_cycle.finish(ctx, state, rows, estimates)
     from .final_report import final_reports
 
     rows = np.asarray(rows, dtype=np.int64)
@@ -323,6 +341,10 @@ def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, item
 
     Returns the state and the last pick (the first item's pick when no answer was given).
     """
+    if ctx.multidimensional is not None:
+        from . import multidimensional_cycle
+
+        return multidimensional_cycle.rebuild(ctx, key, prior_mean, prior_sd, items, responses, elapsed=elapsed)
     state, picked = start(ctx, np.array([key], dtype=np.uint64), prior_mean=prior_mean, prior_sd=prior_sd)
     rows = np.zeros(1, dtype=np.int64)
     for k, (item, resp) in enumerate(zip(items, responses)):
@@ -331,3 +353,10 @@ def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, item
         t = None if elapsed is None or elapsed[k] is None else np.array([elapsed[k]], dtype=float)
         picked = answer(ctx, state, rows, np.array([resp]), elapsed=t)
     return Step(state, picked)
+
+
+#: The bookkeeping shared with the multidimensional kernel (kernel/multidimensional_cycle.py):
+#: recording answers (the posterior update is the same row addition on its product grid)
+#: and applying a pick.
+record_answers = _record
+apply_pick = _apply_pick

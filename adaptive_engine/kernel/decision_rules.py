@@ -7,6 +7,11 @@ bumped whenever a change to the code could change any decision for some design, 
 and answers (DEVELOPERS.md, "Decision rules and golden sequences", says when and how); the
 golden sequences of ``tests/data/golden_sequences.json`` make such a change show.
 
+The rules cover both kernels: :mod:`.cycle` hands a context of an ability vector to
+:mod:`.multidimensional_cycle` (and selection to :mod:`.multidimensional_selection`), so a
+change that alters a decision of a multidimensional design bumps the version just the same
+(``simulations/licensing_two_dimensional.toml`` has golden sequences).
+
 A live session is pinned to the version it started under: it resumes by replaying its
 answers, which gives back its state only under the same rules.  :data:`RULE_SETS` lists
 every version this engine can run: a kernel that changes a decision keeps the previous

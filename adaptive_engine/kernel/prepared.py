@@ -13,6 +13,7 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
+from ..design.bank_fit import runs_multidimensional
 from ..design.types import BlueprintMethod, Design, ExposureMethod, SelectionCriterion
 from ..irt import models
 
@@ -229,6 +230,10 @@ class TestContext:
     stratum: np.ndarray | None  # (n,) a-stratum of each item
     difficulty: np.ndarray  # (n,) b, or mean threshold for polytomous items
     max_length: int  # scored items + pretest slots
+    #: The multidimensional kernel's tables (kernel/multidimensional_state.py), None for
+    #: the one-dimensional kernel.  When set, ``grid`` is the product grid (G, K) and the
+    #: log tables live on it.
+    multidimensional: object = None
 
     @property
     def n_items(self) -> int:
@@ -237,7 +242,10 @@ class TestContext:
     @property
     def info_grid(self) -> np.ndarray:
         """Information of every item on the posterior grid, (n, G); made on first use
-        (only posterior-weighted selection needs it) and kept with the bank."""
+        (only posterior-weighted selection needs it) and kept with the bank; empty (n, 0)
+        for the multidimensional kernel, whose criteria use information matrices."""
+        if self.multidimensional is not None:
+            return np.zeros((self.bank.n_items, 0))
         return self.bank.information_table(self.grid)
 
 
@@ -311,7 +319,15 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
     stratum = None
     if design.selection.criterion is SelectionCriterion.A_STRATIFIED:
         stratum = _a_strata(bank.a, difficulty, operational, design.selection.strata, design.selection.b_blocking)
-    by_category = log_table_by_category(bank, grid)
+    multidimensional = None
+    if runs_multidimensional(design, bank):
+        from .multidimensional_state import build_tables
+
+        multidimensional = build_tables(design, bank)
+        grid = multidimensional.points
+        by_category = np.ascontiguousarray(multidimensional.log_table.transpose(0, 2, 1))
+    else:
+        by_category = log_table_by_category(bank, grid)
     return TestContext(
         design=design, bank=bank, grid=grid, log_table=by_category.transpose(0, 2, 1),
         log_table_by_category=by_category, operational=operational,
@@ -322,6 +338,7 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
         stratum=stratum,
         difficulty=difficulty,
         max_length=design.stopping.max_items + len(design.blueprint.pretest_positions),
+        multidimensional=multidimensional,
     )
 
 

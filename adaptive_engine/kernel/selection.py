@@ -181,6 +181,7 @@ def _criterion_pick(ctx, state, rows) -> Choice:
         and design.exposure.method in (ExposureMethod.NONE, ExposureMethod.RANDOMESQUE, ExposureMethod.SYMPSON_HETTER)
         and not design.blueprint.shadow_test
         and not (ctx.balanced and design.blueprint.method is BlueprintMethod.MAX_PRIORITY_INDEX)
+        and ctx.multidimensional is None
     )
     if fast:
         proven = _shortlist_pick(ctx, state, rows, restrict, open_area, fits)
@@ -285,7 +286,8 @@ def _choose_ranked(ctx, state, rows, cand, values, ok) -> RankedChoice:
         # Conditional parameters (Stocking & Lewis 1998) are indexed by the stratum of the
         # interim estimate: the true ability is unknown in operational use.  Unconditional
         # parameters have no cut points, so every examinee is in stratum 0.
-        stratum = np.searchsorted(ctx.exposure_cuts, state.theta[rows], side="right")
+        # (an ability vector has no strata: the gate refuses conditional parameters there)
+        stratum = np.searchsorted(ctx.exposure_cuts, state.theta[rows].reshape(rows.size, -1)[:, 0], side="right")
         k = ctx.exposure_k[stratum[:, None], np.where(s_cand >= 0, s_cand, 0)]
         u = randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.SYMPSON_HETTER, s_cand)
         passes = (u < k) & np.isfinite(s_val)
@@ -454,7 +456,11 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
     if crit is SelectionCriterion.RANDOM:
         return randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.RANDOM_CRITERION,
                                    np.broadcast_to(np.arange(n), (rows.size, n)))
-    if crit is SelectionCriterion.MAX_FISHER_INFORMATION:
+    if ctx.multidimensional is not None:
+        from .multidimensional_selection import criterion_values as multidimensional_values
+
+        values = multidimensional_values(ctx, state, rows)
+    elif crit is SelectionCriterion.MAX_FISHER_INFORMATION:
         values = models.information(all_item_params(ctx), theta[:, None])
     elif crit is SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION:
         # van der Linden (1998): information averaged over the current posterior

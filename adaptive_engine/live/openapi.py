@@ -19,6 +19,9 @@ MAX_PAGE = 1000
 DEFAULT_PAGE = 100
 
 _NULLABLE_NUMBER = {"type": ["number", "null"]}
+#: An ability or its SE: a number, or for a design with an ability vector one entry per dimension.
+_ABILITY = {"oneOf": [_NULLABLE_NUMBER, {"type": "array", "items": _NULLABLE_NUMBER, "minItems": 1}],
+            "description": "A number; for a design with an ability vector, a list with one entry per dimension."}
 _PROBLEM_CODES = [
     "malformed_request", "unsupported_media_type", "request_too_large", "invalid_value", "idempotency_key_reused",
     "missing_token", "unknown_token", "forbidden", "not_found", "method_not_allowed", "conflict", "store_unavailable",
@@ -90,8 +93,8 @@ _SCHEMAS = {
         "description": "The final report: estimate, interval, scaled score, classifications, person fit.",
         "required": ["theta", "se", "stop_reason"],
         "properties": {
-            "theta": _NULLABLE_NUMBER,
-            "se": _NULLABLE_NUMBER,
+            "theta": _ABILITY,
+            "se": _ABILITY,
             "estimate_status": {"type": "string"},
             "method": {"type": "string"},
             "confidence": _NULLABLE_NUMBER,
@@ -115,8 +118,8 @@ _SCHEMAS = {
             "session_id": {"type": "string"},
             "item_id": {"type": ["string", "null"], "description": "The next item; null when done."},
             "item": {"oneOf": [_ref("Item"), {"type": "null"}]},
-            "theta": _NULLABLE_NUMBER,
-            "se": _NULLABLE_NUMBER,
+            "theta": _ABILITY,
+            "se": _ABILITY,
             "items_given": {"type": "integer", "minimum": 0},
             "done": {"type": "boolean"},
             "stop_reason": {"type": "string"},
@@ -135,8 +138,8 @@ _SCHEMAS = {
             "item_id": {"type": ["string", "null"]},
             "item": {"oneOf": [_ref("Item"), {"type": "null"}]},
             "items_given": {"type": "integer", "minimum": 0},
-            "theta": _NULLABLE_NUMBER,
-            "se": _NULLABLE_NUMBER,
+            "theta": _ABILITY,
+            "se": _ABILITY,
             "done": {"type": "boolean"},
         },
     },
@@ -152,8 +155,8 @@ _SCHEMAS = {
             "decision_rules_version": {"type": "integer"},
             "items_given": {"type": "integer", "minimum": 0},
             "pending_item": {"type": ["string", "null"]},
-            "theta": _NULLABLE_NUMBER,
-            "se": _NULLABLE_NUMBER,
+            "theta": _ABILITY,
+            "se": _ABILITY,
             "created_at": {"type": "string"},
             "updated_at": {"type": "string"},
         },

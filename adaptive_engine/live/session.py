@@ -285,14 +285,35 @@ def item_view(bank: ItemBank, row: int) -> dict | None:
             "label": str(bank.label[row]), "n_categories": int(bank.n_categories[row])}
 
 
+def _ability(value):
+    """A float for a one-dimensional ability, a list of floats for an ability vector."""
+    v = np.asarray(value, dtype=float)
+    return float(v) if v.ndim == 0 else [float(x) for x in v]
+
+
+def _event_number(value):
+    """The event table's theta / se column: a number, or None for an ability vector (the
+    vector is in the event's reply and the session's state)."""
+    if value is None:
+        return None
+    v = np.asarray(value, dtype=float)
+    return float(v) if v.ndim == 0 else None
+
+
+def _snapshot_theta(snapshot: dict):
+    """The ability of a state snapshot: a number (one dimension) or a list."""
+    theta = snapshot["theta"]
+    return theta[0] if not isinstance(snapshot["se"], list) else theta
+
+
 def _reply(session_id: str, ctx: TestContext, state: KernelState, result: dict | None) -> dict:
     view = item_view(ctx.bank, int(state.pending[0]))
     reply = {
         "session_id": session_id,
         "item_id": None if view is None else view["item_id"],
         "item": view,
-        "theta": float(state.theta[0]),
-        "se": float(state.se[0]),
+        "theta": _ability(state.theta[0]),
+        "se": _ability(state.se[0]),
         "items_given": int(state.n_given[0]),
         "done": bool(state.done[0]),
     }
@@ -314,14 +335,15 @@ def _next_events(rules: RuleSet, ctx: TestContext, state: KernelState, picked, s
         value = float(picked.value[0])
         return [{
             "kind": "item_given", "seq": seq, "item_id": str(ctx.bank.item_ids[item]),
-            "scored": int(ctx.operational[item]), "theta": float(state.theta[0]), "se": float(state.se[0]),
-            "criterion": value if math.isfinite(value) else None,
+            "scored": int(ctx.operational[item]), "theta": _event_number(state.theta[0]),
+            "se": _event_number(state.se[0]), "criterion": value if math.isfinite(value) else None,
             "eligible": int(picked.eligible[0]) if picked.eligible[0] >= 0 else None,
             "rng_state": _rng_state(state), "created_at": now,
         }], None
     result = plain(rules.finish(ctx, state, _ROW0)[0])
     return [{
-        "kind": "finished", "seq": seq, "theta": result.get("theta"), "se": result.get("se"),
+        "kind": "finished", "seq": seq, "theta": _event_number(result.get("theta")),
+        "se": _event_number(result.get("se")),
         "rng_state": _rng_state(state), "created_at": now,
     }], result
 
@@ -388,7 +410,21 @@ def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None
         if not session_id.strip():
             raise InvalidValueError("a session id must be non-empty text", location="session_id", field="session_id")
     seed = _seed_value(seed)
-    mean, sd = _prior_values(design, prior_mean, prior_sd)
+    from ..design.bank_fit import runs_multidimensional
+
+    if runs_multidimensional(design, bank):
+        # an ability vector starts from the design's multivariate normal prior; the stored
+        # prior columns keep its first dimension (the rules replay from the design)
+        if prior_mean is not None or prior_sd is not None:
+            raise InvalidValueError("an examinee-specific prior is not available for a design with an ability "
+                                    "vector (the design's prior_mean and prior_covariance apply)",
+                                    location="prior_mean" if prior_mean is not None else "prior_sd",
+                                    field="prior_mean" if prior_mean is not None else "prior_sd")
+        sc = design.scoring
+        mean = float(sc.prior_mean[0] if isinstance(sc.prior_mean, tuple) else sc.prior_mean)
+        sd = float(np.sqrt(sc.prior_covariance[0][0]) if sc.prior_covariance is not None else sc.prior_sd)
+    else:
+        mean, sd = _prior_values(design, prior_mean, prior_sd)
     bank_id = bank_content(bank)[0]
     design_id = design_content(design)[0]
     # a new session starts under the current rules and keeps them for life
@@ -581,7 +617,8 @@ def _answer_step(rules, ctx, state, session_id, item_id, value, elapsed, seq) ->
     given = state.n_given[0] - 1
     answer_event = {
         "kind": "answer", "seq": seq + 1, "item_id": item_id, "response": value,
-        "scored": int(state.scored[0, given]), "theta": float(state.theta[0]), "se": float(state.se[0]),
+        "scored": int(state.scored[0, given]), "theta": _event_number(state.theta[0]),
+        "se": _event_number(state.se[0]),
         "rng_state": _rng_state(state), "elapsed": elapsed, "created_at": now, "reply": to_json(reply),
     }
     return _Answered(events=[dict(e, session_id=session_id) for e in [answer_event, *events]],
@@ -746,7 +783,7 @@ def session_status(store: SessionStore, session_id: str, *, cache: ProcessCache 
     snapshot = json.loads(row["state"])
     return plain({"session_id": session_id, "status": row["status"], "release": release_label(row),
                   "item_id": row["pending_item"], "item": _pending_view(store, row, cache),
-                  "items_given": int(row["n_given"]), "theta": snapshot["theta"][0], "se": snapshot["se"],
+                  "items_given": int(row["n_given"]), "theta": _snapshot_theta(snapshot), "se": snapshot["se"],
                   "done": row["status"] == "finished"})
 
 
@@ -756,6 +793,16 @@ def session_result(store: SessionStore, session_id: str) -> dict:
     if row["status"] != "finished":
         raise ConflictError("the session is still active: no result yet", location=f"session {shown(session_id)}")
     return json.loads(row["result"])
+
+
+def _event_estimate(event: dict) -> dict:
+    """The estimate after an answer event: its columns, or for an ability vector (columns
+    empty) the vectors of the event's reply."""
+    if event["theta"] is None and event.get("reply"):
+        reply = json.loads(event["reply"])
+        if isinstance(reply.get("theta"), list):
+            return {"theta": reply["theta"], "se": reply["se"]}
+    return {"theta": event["theta"], "se": event["se"]}
 
 
 def show_session(store: SessionStore, session_id: str, *, include_seed: bool = False) -> dict:
@@ -772,7 +819,7 @@ def show_session(store: SessionStore, session_id: str, *, include_seed: bool = F
     snapshot = json.loads(row["state"])
     administered = [
         {"item_id": e["item_id"], "response": e["response"], "scored": bool(e["scored"]),
-         "theta": e["theta"], "se": e["se"], "elapsed": e["elapsed"]}
+         **_event_estimate(e), "elapsed": e["elapsed"]}
         for e in store.events(session_id) if e["kind"] == "answer"
     ]
     out = {"session_id": session_id, "examinee": row["examinee"], "status": row["status"],
@@ -780,7 +827,7 @@ def show_session(store: SessionStore, session_id: str, *, include_seed: bool = F
            "release": release_label(row), "decision_rules_version": row["decision_rules_version"],
            "design_fingerprint": row["design_id"], "bank_fingerprint": row["bank_id"],
            "administered": administered, "pending_item": row["pending_item"],
-           "theta": snapshot["theta"][0], "se": snapshot["se"]}
+           "theta": _snapshot_theta(snapshot), "se": snapshot["se"]}
     if include_seed:
         out["seed"] = row["seed"]
     if row["status"] == "finished":
@@ -814,7 +861,7 @@ def list_sessions(store: SessionStore, *, status: str | None = None, release: st
         out.append({"session_id": row["session_id"], "examinee": row["examinee"], "status": row["status"],
                     "release": release_label(row), "decision_rules_version": row["decision_rules_version"],
                     "items_given": row["n_given"], "pending_item": row["pending_item"],
-                    "theta": snapshot["theta"][0], "se": snapshot["se"],
+                    "theta": _snapshot_theta(snapshot), "se": snapshot["se"],
                     "created_at": row["created_at"], "updated_at": row["updated_at"]})
     return out
 

@@ -39,7 +39,7 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
-from ..design.bank_fit import require_design_fits_bank
+from ..design.bank_fit import require_design_fits_bank, runs_multidimensional
 from ..design.types import Design
 from ..errors import Problem, SimulationError
 from ..irt import models
@@ -477,6 +477,8 @@ def iter_chunks(design: Design, bank: ItemBank, population: Population, executio
         In-process runs only: called as ``on_round(start, finished)`` after each round of
         answers of the chunk starting at examinee ``start`` (see :func:`run_chunk`).
     """
+    if runs_multidimensional(design, bank):
+        raise _not_for_vectors(design, bank)
     true_theta = population.true_theta
     seed, true_bank = population.seed, population.true_bank
     chunk_size = execution.chunk_for(population.size)
@@ -521,6 +523,26 @@ def _given_once(obj, name: str, given: dict):
     if obj is not None and given:
         raise TypeError(f"give {name}= or its fields ({', '.join(given)}), not both")
     return obj, given
+
+
+def _not_for_vectors(design, bank) -> SimulationError:
+    return SimulationError(
+        f"the design runs on the multidimensional kernel (the bank has {bank.n_dimensions} ability dimension"
+        f"{'s' if bank.n_dimensions != 1 else ''}, or the design asks for it); simulate it with simulate(design, "
+        "bank, true_theta=(N, K) array, seed=...) or `adaptive-engine simulate`; tuning, exposure calibration "
+        "and true banks other than the operational one are not available for it", "design")
+
+
+def _multidimensional(design, bank, *, true_theta, seed, true_bank, chunk_size, population, workers, ctx):
+    """:func:`simulate` of a design on the multidimensional kernel (in this process)."""
+    from .multidimensional_engine import DEFAULT_CHUNK, simulate_multidimensional
+
+    if population is not None or true_bank is not None or (workers not in (None, 1)):
+        raise _not_for_vectors(design, bank)
+    if true_theta is None or seed is None:
+        raise TypeError("simulate needs the examinees: true_theta (N, K) and seed")
+    return simulate_multidimensional(design, bank, true_theta=true_theta, seed=seed,
+                                     chunk_size=chunk_size or DEFAULT_CHUNK, ctx=ctx)
 
 
 def simulate(design: Design, bank: ItemBank, *, true_theta=None, seed: int | None = None,
@@ -575,6 +597,9 @@ def simulate(design: Design, bank: ItemBank, *, true_theta=None, seed: int | Non
     SimulationError
         Bad settings, located at the parameter (``chunk_size``, ``true_theta``, ...).
     """
+    if runs_multidimensional(design, bank):
+        return _multidimensional(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
+                                 chunk_size=chunk_size, population=population, workers=workers, ctx=ctx)
     population, loose = _given_once(population, "population",
                                     dict(true_theta=true_theta, seed=seed, true_bank=true_bank))
     if population is None:

@@ -13,6 +13,10 @@ An ability specification is a short text, as typed on the command line:
 ``grid:LO,HI,POINTS:PER_POINT``
     POINTS equally spaced abilities from LO to HI, each given to PER_POINT examinees
     (for conditional studies: the number of examinees is POINTS x PER_POINT);
+``correlated_normal:MEAN,SD,CORRELATION``
+    for a bank of K ability dimensions: every dimension N(MEAN, SD^2), every pair of
+    dimensions correlated CORRELATION (a multivariate normal); on a K-dimensional bank
+    ``normal:`` and ``uniform:`` draw each dimension on its own (correlation 0);
 ``file:PATH``
     the abilities listed in a CSV file (a column named ``theta`` or ``true_theta``, or a
     single column without header); the number of examinees is the number of rows.
@@ -41,7 +45,7 @@ from ..files import decode_input_text, read_input_bytes
 if TYPE_CHECKING:
     from ..bank.item_bank import ItemBank
 
-KINDS = ("normal", "uniform", "grid", "file")
+KINDS = ("normal", "uniform", "grid", "file", "correlated_normal")
 #: Most simulated examinees in one run.  Results are held in memory (about 300 bytes per
 #: examinee, plus the examinees.csv text): a million examinees need about 0.5 GB and a few
 #: minutes on two cores; larger studies are several runs with different seeds.
@@ -103,12 +107,44 @@ class AbilitySpec:
         if self.kind == "uniform":
             lo, hi = self.values
             return lo + (hi - lo) * _generator(seed).random(n)
+        if self.kind == "correlated_normal":
+            raise AbilitySpecError(f"{self.text!r} draws ability vectors: it needs a bank of several "
+                                   "dimensions", "abilities")
         if self.kind == "grid":
             lo, hi, points, per_point = self.values
             base = np.repeat(np.linspace(lo, hi, int(points)), int(per_point))
         else:
             base = np.asarray(self.thetas, dtype=float)
         return np.resize(base, n)
+
+
+def draw_vectors(spec: AbilitySpec, n: int, seed: int, k: int) -> np.ndarray:
+    """True ability vectors of examinees 0..n-1 for a bank of ``k`` dimensions, shape (n, k).
+
+    ``correlated_normal`` draws from the multivariate normal with equal correlations;
+    ``normal`` and ``uniform`` draw each dimension on its own.
+    """
+    if n < 0:
+        raise AbilitySpecError(f"the number of examinees must be >= 0, got {n}", "n_examinees")
+    _check_count(n)
+    rng = _generator(seed)
+    if spec.kind == "correlated_normal":
+        mean, sd, rho = spec.values
+        if k > 1 and rho < -1.0 / (k - 1):
+            raise AbilitySpecError(f"a correlation of {rho:g} between each pair of {k} dimensions is not a "
+                                   f"correlation matrix (at least {-1.0 / (k - 1):g})", "abilities")
+        corr = np.full((k, k), rho)
+        np.fill_diagonal(corr, 1.0)
+        z = rng.standard_normal((n, k)) @ np.linalg.cholesky(corr).T
+        return mean + sd * z
+    if spec.kind == "normal":
+        mean, sd = spec.values
+        return mean + sd * rng.standard_normal((n, k))
+    if spec.kind == "uniform":
+        lo, hi = spec.values
+        return lo + (hi - lo) * rng.random((n, k))
+    raise AbilitySpecError(f"{spec.text!r} lists one ability per examinee; a bank of {k} dimensions needs "
+                           "correlated_normal:MEAN,SD,CORRELATION, normal:MEAN,SD or uniform:LO,HI", "abilities")
 
 
 def examinee_count(spec: AbilitySpec, n: int | None, *, default: int) -> int:
@@ -178,7 +214,13 @@ def parse_ability_spec(text: str, *, base_dir: str | Path | None = None) -> Abil
     if not sep or kind not in KINDS:
         raise AbilitySpecError(
             f"unknown ability specification {text!r}; use normal:MEAN,SD, uniform:LO,HI, "
-            "grid:LO,HI,POINTS:PER_POINT or file:PATH", "abilities")
+            "grid:LO,HI,POINTS:PER_POINT, file:PATH or correlated_normal:MEAN,SD,CORRELATION", "abilities")
+    if kind == "correlated_normal":
+        mean, sd, rho = _numbers(body, 3, text)
+        if sd < 0 or not -1 < rho < 1:
+            raise AbilitySpecError(f"the SD must be >= 0 and the correlation strictly between -1 and 1 in {text!r}",
+                                   "abilities")
+        return AbilitySpec(kind=kind, values=(mean, sd, rho), text=text)
     if kind == "normal":
         mean, sd = _numbers(body, 2, text)
         if sd < 0:

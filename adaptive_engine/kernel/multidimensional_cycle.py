@@ -1,0 +1,277 @@
+"""The decision kernel for an ability vector: start / answer / finish / rebuild.
+
+The entry points of :mod:`adaptive_engine.kernel.cycle` hand a multidimensional context
+(``ctx.multidimensional`` set) to the functions of the same names here.  What is the same
+for every K is shared, not copied: recording an answer (the posterior update is the same
+row addition on the product grid), picking items (:func:`adaptive_engine.kernel.selection.select`
+with the criteria of :mod:`.multidimensional_selection`), exposure control, the blueprint,
+enemies, item sets and pretest seeding.  What differs is here: the prior (multivariate
+normal), the interim estimate (EAP on the grid, or MAP by Fisher scoring with the prior's
+precision), the stopping statistics (the SE of every dimension, the composite's interval)
+and the final report (each dimension with its interval and scaled score, the composite
+with its SE ``sqrt(w' S w)``).
+"""
+
+from __future__ import annotations
+
+import math
+
+import attrs
+import numpy as np
+
+from ..design.types import ScoringMethod
+from . import stopping
+from .multidimensional_state import (
+    MultidimensionalState,
+    inverse,
+    matrix_vector,
+    posterior_moments,
+    test_information_and_score,
+)
+from .selection import Picked, select
+
+#: Fisher-scoring iterations of the MAP estimate, and the step that counts as converged.
+MAP_ITERATIONS = 50
+MAP_TOLERANCE = 1e-9
+
+
+def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
+    """Begin tests for a batch (see :func:`adaptive_engine.kernel.cycle.start`).
+
+    The prior is the design's multivariate normal; ``prior_mean`` and ``prior_sd`` are
+    accepted for the signature's sake and must be None (or the design's values).
+    """
+    from .cycle import Step, apply_pick
+
+    tab = ctx.multidimensional
+    state = MultidimensionalState.empty_vector(ctx, keys)
+    state.log_post[:] = tab.log_prior[None, :]
+    state.theta[:] = ctx.design.opening.theta
+    state.se[:] = state.prior_sd
+    rows = np.arange(state.size)
+    picked = select(ctx, state, rows, count_eligible=count_eligible)
+    apply_pick(ctx, state, rows, picked)
+    no_item = picked.item < 0
+    if no_item.any():
+        state.done[no_item] = True
+        state.stop_reason[no_item] = "no_eligible_item"
+    return Step(state, picked)
+
+
+def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -> Picked:
+    """Record answers of ``rows`` and move their tests on (see :func:`adaptive_engine.kernel.cycle.answer`)."""
+    from .cycle import apply_pick, record_answers
+
+    rows = np.asarray(rows, dtype=np.int64)
+    responses = np.asarray(responses, dtype=np.int64)
+    if elapsed is not None:
+        state.elapsed[rows] = np.asarray(elapsed, dtype=float)
+    record_answers(ctx, state, rows, responses)
+    update_estimate(ctx, state, rows)
+    picked = select(ctx, state, rows, count_eligible=count_eligible)
+    reasons = stop_reasons(ctx, state, rows, picked)
+    stop = reasons != ""
+    state.done[rows[stop]] = True
+    state.stop_reason[rows[stop]] = reasons[stop]
+    go = ~stop
+    picked_go = Picked(item=np.where(go, picked.item, -1), value=np.where(go, picked.value, np.nan),
+                       eligible=picked.eligible,
+                       withheld=[w for w in picked.withheld if not state.done[w[0]]])
+    apply_pick(ctx, state, rows, picked_go)
+    return picked_go
+
+
+# ----------------------------------------------------------------------------------------
+# estimates
+
+
+def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """MAP estimates (R, K), their covariance (R, K, K) and convergence (R,) by Fisher scoring.
+
+    Maximises ``sum log P(x_i | theta) - (theta - mu)' P (theta - mu) / 2``; each step is
+    ``(P + I(theta))^-1 (gradient)`` with ``I`` the test's Fisher information matrix, which
+    is positive definite for every model here (the observed Hessian of the M3PL need not
+    be).  The covariance is ``(P + I(theta_hat))^-1``.  Estimates are kept on the grid's box.
+    """
+    tab = ctx.multidimensional
+    sc = ctx.design.scoring
+    items, resp = state.scored_items(rows)
+    precision = inverse(state.prior_covariance[rows])
+    mu = state.prior_mean[rows]
+    theta = np.array(start_theta, dtype=float)
+    converged = np.zeros(rows.size, dtype=bool)
+    active = np.arange(rows.size)
+    for _ in range(MAP_ITERATIONS):
+        # only rows still moving are iterated (each row's path is its own: batch-independent)
+        info, grad = test_information_and_score(tab, items[active], resp[active], theta[active], precision[active],
+                                                score=True)
+        grad = grad - matrix_vector(precision[active], theta[active] - mu[active])
+        new = np.clip(theta[active] + matrix_vector(inverse(info), grad), sc.grid_min, sc.grid_max)
+        moved = np.max(np.abs(new - theta[active]), axis=1)
+        theta[active] = new
+        done = moved < MAP_TOLERANCE
+        converged[active[done]] = True
+        active = active[~done]
+        if active.size == 0:
+            break
+    info, _ = test_information_and_score(tab, items, resp, theta, precision)
+    return theta, inverse(info), converged
+
+
+def _se(cov) -> np.ndarray:
+    return np.sqrt(np.maximum(np.diagonal(cov, axis1=-2, axis2=-1), 0.0))
+
+
+def update_estimate(ctx, state, rows) -> None:
+    """Interim estimate after an answer: EAP on the grid, or MAP from the previous estimate.
+
+    The MAP is sought from the previous interim estimate (one answer away from the new
+    mode); the final MAP starts from the posterior mean (:func:`final_estimates`).
+    """
+    if ctx.design.scoring.method is ScoringMethod.MAP:
+        mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
+    else:
+        mean, cov = posterior_moments(state.log_post[rows], ctx.multidimensional.points)
+    state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
+
+
+def composite(weights, theta, cov) -> tuple[np.ndarray, np.ndarray]:
+    """The composite ``w . theta`` (R,) and its SE ``sqrt(w' S w)`` (R,)."""
+    k = weights.shape[0]
+    value = weights[0] * theta[..., 0]
+    for j in range(1, k):
+        value = value + weights[j] * theta[..., j]
+    var = np.zeros(value.shape)
+    for i in range(k):
+        for j in range(k):
+            var = var + weights[i] * cov[..., i, j] * weights[j]
+    return value, np.sqrt(np.maximum(var, 0.0))
+
+
+def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
+    """Why each row's test stops now (``""``: go on), by :func:`adaptive_engine.kernel.stopping.stop_reasons`.
+
+    The SE rule fires once every dimension is at or below its target; the confidence
+    interval rule classifies the composite of ``[reporting] composite_weights``.
+    """
+    tab = ctx.multidimensional
+    st = tab.stopping_rule
+    kwargs = {}
+    if tab.se_targets is not None:
+        se = state.se[rows]
+        reached = np.all(se <= tab.se_targets[None, :], axis=1)
+        flag = np.where(reached, 0.0, np.inf)
+        flag = np.where(np.any(np.isnan(se), axis=1), np.nan, flag)
+    else:
+        flag = np.full(rows.size, np.inf)
+    if st.confidence_interval is not None:
+        weights = tab.composite_weights if tab.composite_weights is not None else np.ones(tab.k)
+        value, value_se = composite(weights, state.theta[rows], state.covariance[rows])
+        kwargs["ci_decision"] = stopping.confidence_interval_decision(
+            value, value_se, cut=st.confidence_interval.cut, confidence=st.confidence_interval.confidence)
+    if st.time_limit is not None:
+        kwargs["elapsed"] = state.elapsed[rows]
+    if ctx.balanced:
+        kwargs["held"] = np.any(state.area_counts[rows] < ctx.area_min[None, :], axis=1)
+    return stopping.stop_reasons(st, n_scored=state.n_scored[rows], se=flag, no_eligible=picked.item < 0,
+                                 **kwargs)
+
+
+@attrs.frozen(eq=False)
+class MultidimensionalFinalEstimates:
+    """Final scores of a batch: ``theta``, ``se`` (R, K), ``covariance`` (R, K, K), ``status`` (R,)."""
+
+    theta: np.ndarray
+    se: np.ndarray
+    covariance: np.ndarray
+    status: np.ndarray
+    sprt_decision: None = None
+
+
+def final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimates:
+    """Final estimates of ``rows`` by the design's final method (EAP on the grid or MAP)."""
+    rows = np.asarray(rows, dtype=np.int64)
+    mean, cov = posterior_moments(state.log_post[rows], ctx.multidimensional.points)
+    status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
+    if ctx.design.final_method is ScoringMethod.MAP:
+        mean, cov, ok = map_estimate(ctx, state, rows, mean)
+        status = np.where(state.n_scored[rows] == 0, "no_responses",
+                          np.where(ok, "converged", "not_converged")).astype(object)
+    return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status)
+
+
+def finish(ctx, state, rows, estimates=None) -> list[dict]:
+    """Final report (a JSON-ready dict) per examinee of ``rows``."""
+    rows = np.asarray(rows, dtype=np.int64)
+    est = final_estimates(ctx, state, rows) if estimates is None else estimates
+    return reports(ctx, est, n_scored=state.n_scored[rows], n_pretest=state.n_pretest[rows],
+                   stop_reason=state.stop_reason[rows])
+
+
+def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
+    """One report per row: every dimension with its interval and scaled score, the composite.
+
+    Per dimension the report has the one-dimensional report's fields (``theta``, ``se``,
+    ``interval``, ``scaled_score``, ``scaled_se``, ``scaled_interval``; the design's scale
+    applied to each dimension); ``theta`` and ``se`` at the top are lists (one per
+    dimension), ``covariance`` the K x K matrix.  With ``[reporting] composite_weights``
+    the composite ``w . theta`` comes with its SE ``sqrt(w' S w)``, interval, scaled score
+    and the classifications of the cut scores (which classify the composite).  Person fit
+    is not computed for an ability vector (``person_fit`` is None).
+    """
+    from .final_report import final_reports
+
+    tab = ctx.multidimensional
+    design = ctx.design
+    plain = attrs.evolve(design, reporting=attrs.evolve(design.reporting, cut_scores=()),
+                         stopping=attrs.evolve(design.stopping, confidence_interval=None))
+    r = est.theta.shape[0]
+    common = dict(status=est.status, n_scored=n_scored, n_pretest=n_pretest, stop_reason=stop_reason,
+                  lz_star=np.full(r, np.nan))
+    per_dim = [final_reports(plain, theta=est.theta[:, j], se=est.se[:, j], **common) for j in range(tab.k)]
+    comp = None
+    if tab.composite_weights is not None:
+        value, value_se = composite(tab.composite_weights, est.theta, est.covariance)
+        comp = final_reports(design, theta=value, se=value_se, **common)
+    out = []
+    keep = ("theta", "se", "interval", "scaled_score", "scaled_se", "scaled_interval")
+    for i in range(r):
+        first = per_dim[0][i]
+        rep = {
+            "theta": [d[i]["theta"] for d in per_dim],
+            "se": [d[i]["se"] for d in per_dim],
+            "covariance": [[_plain(x) for x in row] for row in est.covariance[i]],
+            "estimate_status": first["estimate_status"], "method": first["method"],
+            "confidence": first["confidence"],
+            "dimensions": [{"name": name, **{k: d[i].get(k) for k in keep}}
+                           for name, d in zip(tab.dimension_names, per_dim)],
+        }
+        if comp is not None:
+            c = comp[i]
+            rep["composite"] = {"weights": [float(w) for w in tab.composite_weights],
+                                **{k: c.get(k) for k in keep}}
+            rep["classifications"] = c.get("classifications", [])
+        else:
+            rep["classifications"] = []
+        rep.update(items=first["items"], stop_reason=first["stop_reason"], person_fit=None)
+        out.append(rep)
+    return out
+
+
+def _plain(x) -> float | None:
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def rebuild(ctx, key: int, prior_mean, prior_sd, items, responses, *, elapsed=None):
+    """Restore one examinee's state by replaying their answers (see :func:`adaptive_engine.kernel.cycle.rebuild`)."""
+    from .cycle import Step
+
+    state, picked = start(ctx, np.array([key], dtype=np.uint64))
+    rows = np.zeros(1, dtype=np.int64)
+    for k, (item, resp) in enumerate(zip(items, responses)):
+        if state.pending[0] != item:
+            raise ValueError(f"replay diverged at answer {k + 1}: expected item row {state.pending[0]}, log has {item}")
+        t = None if elapsed is None or elapsed[k] is None else np.array([elapsed[k]], dtype=float)
+        picked = answer(ctx, state, rows, np.array([resp]), elapsed=t)
+    return Step(state, picked)

@@ -1,0 +1,317 @@
+"""The multidimensional kernel's fixed facts and batch state: ability as a vector of K.
+
+A design runs here when its bank has K > 1 dimensions or when it asks for it (vector
+keys, a multidimensional criterion; see
+:func:`adaptive_engine.design.bank_fit.runs_multidimensional`); K = 1 is a case of the same
+code.  The posterior of each examinee lives on a product grid of ``points ** K`` points
+(:class:`MultidimensionalTables`), updated by adding log-probability rows exactly as the
+one-dimensional kernel does on its line grid, so the bookkeeping of
+:mod:`adaptive_engine.kernel.cycle` (answers, blueprint counts, enemies, item sets, pretest
+seeding) and the selection machinery of :mod:`adaptive_engine.kernel.selection` (exposure
+control, blueprint, eligibility) serve both unchanged.
+
+Every quantity is computed per row, elementwise with fixed-order sums over the K
+dimensions (the small matrix inverses and determinants below are written out by
+cofactors), so a batch gives bit for bit what one examinee at a time gives.
+"""
+
+from __future__ import annotations
+
+import attrs
+import numpy as np
+from scipy.special import expit
+
+from ..bank.item_bank import ItemBank
+from ..design.types import Design, SelectionCriterion, Stopping
+from ..errors import AdaptiveEngineError
+from ..irt import multidimensional as md
+from ..irt.posterior import relative_density
+from .state import KernelState
+
+
+@attrs.frozen(eq=False)
+class MultidimensionalTables:
+    """What the multidimensional kernel precomputes for one (design, bank).
+
+    Attributes
+    ----------
+    k : int
+        Number of ability dimensions.
+    dimension_names : tuple of str
+    points : float (G, K)
+        The product grid (the first dimension varies slowest).
+    axis : float (P,)
+        The grid of one dimension (G = P ** K).
+    log_table : float (n, G, C)
+        Log category probabilities of every item at every grid point.
+    params : MultidimensionalParameters (n,)
+    prior_mean : float (K,)
+    prior_covariance, prior_precision : float (K, K)
+    log_prior : float (G,)
+        ``-0.5 (x - mu)' P (x - mu)`` at each grid point (constant dropped).
+    composite_weights : float (K,) or None
+    se_targets : float (K,) or None
+        The SE each dimension must reach (``[stopping] se`` on each, or ``se_per_dimension``).
+    stopping_rule : Stopping
+        The design's stopping rules with the SE target as one flag ("every dimension is at
+        its target"), for :func:`adaptive_engine.kernel.stopping.stop_reasons`.
+    finite_log_table : float (n, C, G) or None
+        The log table with -inf (categories an item lacks) as 0, for Kullback-Leibler.
+    logistic_only : bool
+        Every item has two categories and no lower asymptote (an M2PL bank).
+    """
+
+    k: int
+    dimension_names: tuple
+    points: np.ndarray
+    axis: np.ndarray
+    log_table: np.ndarray
+    params: md.MultidimensionalParameters
+    prior_mean: np.ndarray
+    prior_covariance: np.ndarray
+    prior_precision: np.ndarray
+    log_prior: np.ndarray
+    composite_weights: np.ndarray | None
+    se_targets: np.ndarray | None
+    stopping_rule: Stopping
+    finite_log_table: np.ndarray | None
+    logistic_only: bool = False
+
+
+def multidimensional_parameters(bank: ItemBank) -> md.MultidimensionalParameters:
+    """The bank's items as multidimensional parameters (M2PL, M3PL, MGRM banks)."""
+    if not bank.uses_multidimensional_models:  # pragma: no cover - refused by the gate
+        raise AdaptiveEngineError("the multidimensional kernel needs a bank of M2PL, M3PL or MGRM items", "bank")
+    return bank.multidimensional_params
+
+
+def prior_of(design: Design, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """The design's prior mean (K,) and covariance (K, K) for an ability of K dimensions."""
+    sc = design.scoring
+    mean = np.asarray(sc.prior_mean if isinstance(sc.prior_mean, tuple) else (sc.prior_mean,) * k, dtype=float)
+    if sc.prior_covariance is not None:
+        cov = np.asarray(sc.prior_covariance, dtype=float)
+    else:
+        cov = np.eye(k) * (sc.prior_sd * sc.prior_sd)
+    return mean, cov
+
+
+def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
+    """Precompute the multidimensional facts of ``design`` on ``bank`` (the pair has passed the gate)."""
+    from ..design.bank_fit import multidimensional_grid_points
+
+    params = multidimensional_parameters(bank)
+    k = params.n_dimensions
+    sc = design.scoring
+    p = multidimensional_grid_points(design, k)
+    axis = np.round(np.linspace(sc.grid_min, sc.grid_max, p), 12)
+    mesh = np.meshgrid(*([axis] * k), indexing="ij")
+    points = np.stack([m.reshape(-1) for m in mesh], axis=1)  # (G, K)
+    log_table = np.empty((bank.n_items, points.shape[0], params.max_categories))
+    for start in range(0, bank.n_items, 500):
+        stop = min(start + 500, bank.n_items)
+        log_table[start:stop] = md.log_probabilities(*md.outer(params.take(np.arange(start, stop)), points))
+    mean, cov = prior_of(design, k)
+    precision = inverse(cov)
+    log_prior = -0.5 * quadratic_form(points - mean, precision)
+    weights = design.reporting.composite_weights
+    st = design.stopping
+    if st.se_per_dimension is not None:
+        targets = np.asarray(st.se_per_dimension, dtype=float)
+    elif st.se is not None:
+        targets = np.full(k, st.se)
+    else:
+        targets = None
+    rule = attrs.evolve(st, se=None if targets is None else 1.0, se_per_dimension=None)
+    finite = None
+    if design.selection.criterion is SelectionCriterion.KULLBACK_LEIBLER:
+        finite = np.ascontiguousarray(np.where(np.isfinite(log_table), log_table, 0.0).transpose(0, 2, 1))
+    return MultidimensionalTables(
+        k=k, dimension_names=tuple(bank.dimension_names), points=points, axis=axis, log_table=log_table,
+        params=params, prior_mean=mean, prior_covariance=cov, prior_precision=precision, log_prior=log_prior,
+        composite_weights=None if weights is None else np.asarray(weights, dtype=float),
+        se_targets=targets, stopping_rule=rule, finite_log_table=finite,
+        logistic_only=bool(np.all(params.n_categories == 2) and np.all(params.c == 0)),
+    )
+
+
+# ----------------------------------------------------------------------------------------
+# small symmetric matrices, elementwise (no LAPACK call whose blocking depends on the batch)
+
+
+def determinant(m: np.ndarray) -> np.ndarray:
+    """Determinants of matrices (..., K, K) for K <= 3 by cofactors (numpy beyond)."""
+    k = m.shape[-1]
+    if k == 1:
+        return m[..., 0, 0].copy()
+    if k == 2:
+        return m[..., 0, 0] * m[..., 1, 1] - m[..., 0, 1] * m[..., 1, 0]
+    if k == 3:
+        return (m[..., 0, 0] * (m[..., 1, 1] * m[..., 2, 2] - m[..., 1, 2] * m[..., 2, 1])
+                - m[..., 0, 1] * (m[..., 1, 0] * m[..., 2, 2] - m[..., 1, 2] * m[..., 2, 0])
+                + m[..., 0, 2] * (m[..., 1, 0] * m[..., 2, 1] - m[..., 1, 1] * m[..., 2, 0]))
+    return np.linalg.det(m)
+
+
+def inverse(m: np.ndarray) -> np.ndarray:
+    """Inverses of matrices (..., K, K) for K <= 3 by the adjugate (numpy beyond)."""
+    k = m.shape[-1]
+    if k == 1:
+        return 1.0 / m
+    if k == 2:
+        det = determinant(m)
+        out = np.empty_like(m)
+        out[..., 0, 0] = m[..., 1, 1] / det
+        out[..., 1, 1] = m[..., 0, 0] / det
+        out[..., 0, 1] = -m[..., 0, 1] / det
+        out[..., 1, 0] = -m[..., 1, 0] / det
+        return out
+    if k == 3:
+        det = determinant(m)
+        out = np.empty_like(m)
+        for i in range(3):
+            for j in range(3):
+                r = [x for x in range(3) if x != j]
+                c = [x for x in range(3) if x != i]
+                minor = m[..., r[0], c[0]] * m[..., r[1], c[1]] - m[..., r[0], c[1]] * m[..., r[1], c[0]]
+                out[..., i, j] = (-1) ** (i + j) * minor / det
+        return out
+    return np.linalg.inv(m)
+
+
+def quadratic_form(x: np.ndarray, m: np.ndarray) -> np.ndarray:
+    """``x' M x`` for vectors (..., K) and matrices broadcasting to (..., K, K), fixed order."""
+    k = x.shape[-1]
+    out = np.zeros(np.broadcast_shapes(x.shape[:-1], m.shape[:-2]))
+    for i in range(k):
+        for j in range(k):
+            out = out + x[..., i] * m[..., i, j] * x[..., j]
+    return out
+
+
+def matrix_vector(m: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``M x`` for matrices (..., K, K) and vectors (..., K), fixed order."""
+    k = x.shape[-1]
+    cols = []
+    for i in range(k):
+        acc = m[..., i, 0] * x[..., 0]
+        for j in range(1, k):
+            acc = acc + m[..., i, j] * x[..., j]
+        cols.append(acc)
+    return np.stack(cols, axis=-1)
+
+
+def test_information_and_score(tab: MultidimensionalTables, items, responses, theta, precision, *,
+                               score: bool = False):
+    """``P + sum_i J_i(theta) a_i a_i'`` (R, K, K) and, with ``score``, the gradient of the
+    log-likelihood ``sum_i r_i(theta) a_i`` (R, K) over the items given.
+
+    ``items`` and ``responses`` are (R, W), -1 where nothing (or a pretest item) was given.
+    The sums run column by column, in the order the items were given, so that a row's sum
+    is the same whatever other rows (and how many columns) the batch holds: the columns a
+    row has not reached add exact zeros.
+    """
+    theta = np.asarray(theta, dtype=float)
+    k = tab.k
+    info = np.array(precision, dtype=float, copy=True)
+    grad = np.zeros(theta.shape) if score else None
+    width = items.shape[1]
+    reached = np.flatnonzero((items >= 0).any(axis=0))
+    for col in reached[reached < width]:
+        it = items[:, col]
+        given = it >= 0
+        params = tab.params.take(np.maximum(it, 0))
+        a = params.slopes
+        if tab.logistic_only:
+            # M2PL items: P = expit(D (a . theta + d)), J = D^2 P (1 - P), score D (x - P)
+            scaling = params.scaling
+            prob = expit(scaling * (md.projection(params, theta) + params.intercepts[:, 0]))
+            j = np.where(given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
+        else:
+            j = np.where(given, md.slope_information(params, theta), 0.0)
+        for p in range(k):
+            for q in range(p, k):
+                info[:, p, q] = info[:, p, q] + j * a[:, p] * a[:, q]
+                if q != p:
+                    info[:, q, p] = info[:, p, q]
+        if score and tab.logistic_only:
+            r = np.where(given, params.scaling * (responses[:, col] - prob), 0.0)
+            grad = grad + r[:, None] * a
+        elif score:
+            grad = grad + md.log_likelihood_gradient(params, theta, np.where(given, responses[:, col], -1))
+    return info, grad
+
+
+# ----------------------------------------------------------------------------------------
+# the posterior on the grid
+
+
+def posterior_moments(log_post: np.ndarray, points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Posterior mean (R, K) and covariance (R, K, K) of log posteriors (R, G) on ``points`` (G, K).
+
+    Sums over each row's grid alone; the covariance is ``E[x_i x_j] - E[x_i] E[x_j]`` (on
+    a grid within +-20 that loses at most four of sixteen digits, as in the
+    one-dimensional :func:`adaptive_engine.irt.posterior.posterior_mean_sd`).
+    """
+    w = relative_density(log_post)
+    total = np.sum(w, axis=1)
+    k = points.shape[1]
+    mean = np.stack([np.einsum("rg,g->r", w, points[:, j]) / total for j in range(k)], axis=1)
+    cov = np.empty((log_post.shape[0], k, k))
+    for i in range(k):
+        for j in range(i, k):
+            second = np.einsum("rg,g->r", w, points[:, i] * points[:, j]) / total
+            cov[:, i, j] = cov[:, j, i] = second - mean[:, i] * mean[:, j]
+    return mean, cov
+
+
+@attrs.define(eq=False)
+class MultidimensionalState(KernelState):
+    """:class:`KernelState` with an ability vector.
+
+    ``theta`` and ``se`` are (B, K), ``prior_mean`` (B, K), ``prior_sd`` (B, K) the square
+    roots of the prior variances; ``log_post`` (B, G) lives on the product grid.
+
+    Attributes
+    ----------
+    covariance : float (B, K, K)
+        Covariance of the interim estimate (posterior covariance for EAP, the inverse of
+        prior precision plus test information at the mode for MAP).
+    prior_covariance : float (B, K, K)
+    """
+
+    covariance: np.ndarray = None
+    prior_covariance: np.ndarray = None
+
+    @classmethod
+    def empty_vector(cls, ctx, keys) -> "MultidimensionalState":
+        tab = ctx.multidimensional
+        base = KernelState.empty(ctx, keys, 0.0, 1.0)
+        b, k = base.size, tab.k
+        fields = {f.name: getattr(base, f.name) for f in attrs.fields(KernelState)}
+        fields.update(
+            prior_mean=np.broadcast_to(tab.prior_mean, (b, k)).copy(),
+            prior_sd=np.broadcast_to(np.sqrt(np.diag(tab.prior_covariance)), (b, k)).copy(),
+            theta=np.zeros((b, k)), se=np.zeros((b, k)), log_post=np.zeros((b, tab.points.shape[0])),
+        )
+        return cls(**fields, covariance=np.broadcast_to(tab.prior_covariance, (b, k, k)).copy(),
+                   prior_covariance=np.broadcast_to(tab.prior_covariance, (b, k, k)).copy())
+
+    def to_dict(self, row: int = 0) -> dict:
+        """JSON-ready snapshot of one examinee (ability persisted as a list)."""
+        n = int(self.n_given[row])
+        return {
+            "key": int(self.keys[row]),
+            "prior": [[float(x) for x in self.prior_mean[row]],
+                      [[float(x) for x in r] for r in self.prior_covariance[row]]],
+            "items": [int(x) for x in self.items[row, :n]],
+            "responses": [int(x) for x in self.responses[row, :n]],
+            "scored": [bool(x) for x in self.scored[row, :n]],
+            "theta": [float(x) for x in self.theta[row]],
+            "se": [float(x) for x in self.se[row]],
+            "covariance": [[float(x) for x in r] for r in self.covariance[row]],
+            "pending": int(self.pending[row]),
+            "done": bool(self.done[row]),
+            "stop_reason": str(self.stop_reason[row]),
+            "elapsed": None if np.isnan(self.elapsed[row]) else float(self.elapsed[row]),
+        }
