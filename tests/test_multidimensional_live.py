@@ -53,21 +53,25 @@ def test_session_cli_runs_the_two_dimensional_exam(tmp_path):
     design_file = _short_design(tmp_path)
     run = CliRunner().invoke
     started = run(main, ["session", "start", "--db", db, "--design", str(design_file), "--bank", str(BANK_FILE),
-                         "--seed", "7"])
+                         "--seed", "7", "--json"])
     assert started.exit_code == 0, started.output
     reply = json.loads(started.output)
     assert reply["theta"] == [0.0, 0.0] and reply["se"] == [1.0, 1.0]
     answers = _answers()
     k = 0
     while not reply["done"]:
-        out = run(main, ["session", "answer", "--db", db, reply["session_id"], reply["item_id"], str(answers[k])])
+        out = run(main, ["session", "answer", "--db", db, reply["session_id"], reply["item_id"], str(answers[k]),
+                         "--json"])
         assert out.exit_code == 0, out.output
         reply = json.loads(out.output)
         k += 1
     assert reply["stop_reason"] in ("se_reached", "max_items")
     if reply["stop_reason"] == "se_reached":
         assert max(reply["result"]["se"]) <= 0.3
-    shown = json.loads(run(main, ["session", "show", "--db", db, reply["session_id"]]).output)
+    shown = json.loads(run(main, ["session", "show", "--db", db, reply["session_id"], "--json"]).output)
+    # the text forms show the ability vector too
+    text = run(main, ["session", "show", "--db", db, reply["session_id"]])
+    assert text.exit_code == 0 and "theta (" in text.output, text.output
     assert len(shown["administered"]) == k and len(shown["administered"][-1]["theta"]) == 2
     expected = _python_replies(tmp_path / "ref.db", read_design(design_file), load_bank(BANK_FILE), 7, answers)
     assert reply["result"] == expected[-1]["result"]

@@ -131,6 +131,9 @@ def item_line(item: dict) -> str:
 
 
 def _fixed(value, decimals: int = 2) -> str:
+    """A number to ``decimals`` places; an ability vector as ``(x, y)``."""
+    if isinstance(value, (list, tuple)):
+        return "(" + ", ".join(_fixed(v, decimals) for v in value) + ")"
     return "-" if value is None else f"{value:.{decimals}f}"
 
 

@@ -66,7 +66,11 @@ def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -
     responses = np.asarray(responses, dtype=np.int64)
     if elapsed is not None:
         state.elapsed[rows] = np.asarray(elapsed, dtype=float)
-    record_answers(ctx, state, rows, responses)
+    # the bookkeeping books the answers; the posterior takes the scored ones here
+    scored_item = record_answers(ctx, state, rows, responses)
+    keep = scored_item >= 0
+    if keep.any():
+        state.log_post[rows[keep]] += ctx.log_table_by_category[scored_item[keep], responses[keep]]
     update_estimate(ctx, state, rows)
     picked = select(ctx, state, rows, count_eligible=count_eligible)
     reasons = stop_reasons(ctx, state, rows, picked)

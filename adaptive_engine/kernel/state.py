@@ -108,8 +108,10 @@ class KernelState:
         )
 
     def copy(self) -> "KernelState":
-        """An independent copy (every array copied)."""
-        return KernelState(**{f.name: getattr(self, f.name).copy() for f in attrs.fields(KernelState)})
+        """An independent copy (every array copied), of the same class (the multidimensional
+        state adds fields of its own)."""
+        cls = type(self)
+        return cls(**{f.name: getattr(self, f.name).copy() for f in attrs.fields(cls)})
 
     def scored_items(self, rows=None) -> tuple[np.ndarray, np.ndarray]:
         """Scored items and responses, (R, L) with -1 where pretest or not given."""
