@@ -770,7 +770,7 @@ class SQLiteSessionStore(SessionStore):
                 self._require_schema()
                 return
             if not memory and conn.execute("PRAGMA journal_mode;").fetchone()[0] != "wal":
-                self.db.enable_wal()
+                _enable_wal(conn)
             conn.execute(f"PRAGMA synchronous = {'FULL' if durable else 'NORMAL'}")
             if not memory:
                 # the log is copied into the file by a thread of this process (see _Checkpointer);
@@ -981,6 +981,29 @@ class SQLiteSessionStore(SessionStore):
             if found is not None:
                 _, detach, _, _ = found
                 detach(join=True)
+
+
+def _enable_wal(conn: sqlite3.Connection) -> None:
+    """Switch a new store file to write-ahead logging, waiting for other openers.
+
+    Changing the journal mode needs the file to itself, and SQLite answers "database is
+    locked" at once, without its busy handler, when another connection is in the middle
+    of opening the same new file (seen about once in 300 with four threads opening one new
+    store together): try again after short random pauses, within the busy timeout.
+    """
+    deadline = time.monotonic() + BUSY_TIMEOUT_SECONDS
+    bound = WRITE_RETRY_FIRST
+    while True:
+        try:
+            conn.execute("PRAGMA journal_mode=wal;").fetchone()
+            return  # (a file system without WAL support keeps its mode, as before)
+        except sqlite3.OperationalError as exc:
+            if "locked" not in str(exc) and "busy" not in str(exc):
+                raise
+        if time.monotonic() > deadline:
+            raise sqlite3.OperationalError("database is locked: could not switch it to write-ahead logging")
+        time.sleep(_RETRY_RANDOM.uniform(0.5 * bound, bound))
+        bound = min(bound * 1.5, WRITE_RETRY_MOST)
 
 
 #: Seconds between checkpoints of a store's write-ahead log by the thread that makes them.
