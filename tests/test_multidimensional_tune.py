@@ -167,3 +167,7 @@ def test_refusals_are_located(tmp_path, bank):
                                   "--true-bank", str(BANK), "--out", str(tmp_path / "x")])
     assert r.exit_code != 0 and "--true-bank" in r.output
     assert not (tmp_path / "x").exists()
+    r = CliRunner().invoke(main, ["tune", str(DEMO), "--bank", str(BANK), "--vary", "stopping.nothing=1,2",
+                                  "--out", str(tmp_path / "y")])
+    assert r.exit_code == 2 and "--vary stopping.nothing" in r.output
+    assert not (tmp_path / "y").exists()

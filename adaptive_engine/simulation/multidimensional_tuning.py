@@ -161,9 +161,15 @@ def run_multidimensional_tuning_study(design: Design, bank: ItemBank, variations
     from .study import rows_csv
     from .tuning import tradeoff_figures
 
-    out, _ = prepare_folder(out_dir)  # before the long run: a bad folder fails at once
-    rows = tune_multidimensional(design, bank, variations, true_theta=true_theta, seed=seed,
-                                 chunk_size=chunk_size, progress=progress)
+    _combinations(design, bank, variations)  # bad variations fail before the folder is made
+    out, created = prepare_folder(out_dir)  # before the long run: a bad folder fails at once
+    try:
+        rows = tune_multidimensional(design, bank, variations, true_theta=true_theta, seed=seed,
+                                     chunk_size=chunk_size, progress=progress)
+    except BaseException:
+        if created:
+            out.rmdir()  # nothing is left of a run that failed
+        raise
     keys = [v.key for v in variations]
     names = list(bank.dimension_names)
     criterion = ("the composite " + " + ".join(f"{w:g} {d}" for w, d in zip(design.reporting.composite_weights,
