@@ -123,7 +123,7 @@ def test_http_api_runs_the_two_dimensional_exam(tmp_path):
         validator.validate(r)
 
 
-def test_simulate_cli_writes_the_two_dimensional_study_and_tune_refuses(tmp_path):
+def test_simulate_cli_writes_the_two_dimensional_study_and_refuses_a_true_bank(tmp_path):
     run = CliRunner().invoke
     design_file = _short_design(tmp_path)
     out = tmp_path / "study"
@@ -144,9 +144,11 @@ def test_simulate_cli_writes_the_two_dimensional_study_and_tune_refuses(tmp_path
     res = simulate_multidimensional(read_design(design_file), load_bank(BANK_FILE), true_theta=true, seed=3)
     assert summary["dimensions"]["treatment_operations"]["rmse"] == pytest.approx(
         float(np.sqrt(np.mean((res.theta[:, 0] - true[:, 0]) ** 2))), rel=1e-12)
+    # tune runs for such a design (tests/test_multidimensional_tune.py); a true bank is refused at its flag
     refused = run(main, ["tune", str(design_file), "--bank", str(BANK_FILE), "--vary", "stopping.se=0.3,0.35",
-                         "--examinees", "10", "--out", str(tmp_path / "tune")])
-    assert refused.exit_code == 2 and "tuning" in refused.output and "multidimensional kernel" in refused.output
+                         "--true-bank", str(BANK_FILE), "--examinees", "10", "--out", str(tmp_path / "tune")])
+    assert refused.exit_code == 2 and "--true-bank" in refused.output and "multidimensional" in refused.output
+    assert not (tmp_path / "tune").exists()
     bad = run(main, ["simulate", str(design_file), "--bank", str(BANK_FILE), "--theta", "grid:-1,1,3:2",
                      "--out", str(tmp_path / "bad")])
     assert bad.exit_code == 2 and "--theta" in bad.output

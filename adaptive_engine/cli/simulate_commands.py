@@ -255,6 +255,12 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
     _check_workers(workers)
     design, bank, true_bank = _load(design_file, bank_file, true_bank_file)
     parsed = [parse_variation(v) for v in variations]
+    from ..design.bank_fit import runs_multidimensional
+
+    if runs_multidimensional(design, bank):
+        _tune_multidimensional(design, bank, parsed, n_examinees, seed, theta_spec, true_bank, workers, out_dir,
+                               show_progress, as_json)
+        return
     population = Population.drawn(parse_ability_spec(theta_spec), seed=seed, n_examinees=n_examinees,
                                   default=1000, true_bank=true_bank)
     progress = _Progress("tuning", enabled=show_progress)
@@ -269,6 +275,41 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
     from ._table import table
 
     click.echo(table(rows))
+    click.echo(f"wrote {_folder(out_dir)} (tuning.csv, tuning.json, tuning.html)")
+
+
+def _tune_multidimensional(design, bank, parsed, n_examinees, seed, theta_spec, true_bank, workers, out_dir,
+                           show_progress, as_json):
+    """``tune`` of a design that runs on the multidimensional kernel (same files as for one dimension).
+
+    Runs in this process, as ``simulate`` does for such a design (``--workers`` is not used).
+    """
+    from ..errors import SimulationError
+    from ..simulation.multidimensional_tuning import run_multidimensional_tuning_study
+    from ..simulation.population import draw_vectors, examinee_count, parse_ability_spec
+
+    if true_bank is not None:
+        raise SimulationError("a true bank is not available for a multidimensional design", "--true-bank")
+    spec = parse_ability_spec(theta_spec)
+    n = examinee_count(spec, n_examinees, default=1000)
+    true_theta = draw_vectors(spec, n, seed, bank.n_dimensions)  # once: every combination gets these
+    progress = _Progress("tuning", enabled=show_progress)
+    try:
+        rows = run_multidimensional_tuning_study(design, bank, parsed, true_theta=true_theta, seed=seed,
+                                                 out_dir=out_dir, abilities=spec.text, progress=progress)
+    finally:
+        progress.close()
+    if as_json:
+        echo_json(rows)
+        return
+    from ._table import table
+
+    names = list(bank.dimension_names)
+    keys = [v.key for v in parsed]
+    shown = [k for k in rows[0] if k in keys or not k.startswith(("bias_", "mean_se_"))]
+    click.echo(table([{k: r[k] for k in shown} for r in rows]))
+    click.echo(f"dimensions: {', '.join(names)}; rmse is that of precision_of (the composite, else the worst "
+               "dimension)")
     click.echo(f"wrote {_folder(out_dir)} (tuning.csv, tuning.json, tuning.html)")
 
 

@@ -818,10 +818,12 @@ TUNING_LABELS = {
     "mean_length": "Mean length", "sd_length": "SD of length", "share_at_max_items": "Share at max length",
     "rmse": "RMSE", "bias": "Bias", "mean_se": "Mean SE", "rmse_to_mean_se": "RMSE / mean SE",
     "max_exposure": "Largest exposure", "frontier": "On the frontier",
+    "precision_of": "RMSE of", "rmse_worst_dimension": "RMSE, worst dimension",
 }
 
 
-def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[str] | None = None) -> str:
+def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[str] | None = None,
+                       extra_columns: list[str] = (), note: str | None = None) -> str:
     """The report page of a tuning run: its table and the trade-off plots.
 
     Parameters
@@ -832,6 +834,11 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
         The trade-off plots (None: matplotlib is not installed).
     varied : list of str, optional
         The varied design keys (default: the keys before ``mean_length``).
+    extra_columns : list of str, optional
+        Further row keys shown after the RMSE (e.g. the RMSE of every dimension of an
+        ability vector).
+    note : str, optional
+        A paragraph under the introduction (what the columns mean for this run).
     """
     if isinstance(figures, str):
         figures = [("Mean length against RMSE (frontier marked)", figures)]
@@ -844,7 +851,8 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
             keys.append(k)
     keys = keys or []
     acc = [k for k in (rows[0] if rows else {}) if k.startswith("accuracy_")]
-    cols = ["combination", *keys, "mean_length", "rmse", *acc, "bias", "mean_se", "rmse_to_mean_se",
+    extra = [k for k in extra_columns if k not in keys]
+    cols = ["combination", *keys, "mean_length", "rmse", *extra, *acc, "bias", "mean_se", "rmse_to_mean_se",
             "max_exposure", "frontier"]
     table = []
     dominated = set()
@@ -857,9 +865,13 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
                    max_exposure=Html(_pct(r.get("max_exposure"))), frontier=Html("yes" if r.get("frontier") else ""))
         for k in acc:
             row[k] = Html(_pct(r.get(k)))
+        for k in extra:
+            row[k] = r.get(k)
         table.append(row)
     labels = dict(TUNING_LABELS, combination="#")
     labels.update({k: f"Accuracy ({k[len('accuracy_'):]})" for k in acc})
+    labels.update({k: TUNING_LABELS.get(k) or (f"RMSE, {k[len('rmse_'):]}" if k.startswith("rmse_") else k)
+                   for k in extra})
     criteria = "mean length (lower), RMSE (lower)" + (" and classification accuracy (higher)" if acc else "")
     parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
              f"<meta name='viewport' content='width=device-width, initial-scale=1'><title>{_esc(title)}</title>",
@@ -868,6 +880,7 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
              "on the same simulated examinees with the same random streams (common random numbers), so the "
              "differences between rows are the settings' doing. A combination is <b>on the frontier</b> when no "
              f"other is at least as good on {criteria} and better on one of them.</p>",
+             f"<p>{_esc(note)}</p>" if note else "",
              table_html(table, cols, labels=labels,
                         row_class=lambda r: "thin" if r["combination"] in dominated else None),
              "<p class='note'>Rows in grey italics are dominated: another combination is at least as good on every "

@@ -19,7 +19,7 @@ import attrs
 import numpy as np
 
 from ..bank.item_bank import ItemBank
-from ..design.bank_fit import require_design_fits_bank
+from ..design.bank_fit import require_design_fits_bank, runs_multidimensional
 from ..design.toml_file import design_as_dict, design_from_dict
 from ..design.types import RENAMED_KEYS, Design
 from ..errors import DeprecatedDesignKey, DesignError, Problem
@@ -126,6 +126,10 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, populat
         ``mean_se``, ``rmse_to_mean_se``, ``max_exposure``, ``accuracy_<cut>`` per cut score,
         and ``frontier`` (bool).
     """
+    if runs_multidimensional(design, bank):
+        raise DesignError("the design runs on the multidimensional kernel (ability vectors); tune it with "
+                          "adaptive_engine.simulation.multidimensional_tuning.tune_multidimensional(design, bank, "
+                          "variations, true_theta=(N, K) array, seed=...) or `adaptive-engine tune`", "design")
     if not variations:
         raise DesignError("give at least one variation SECTION.KEY=V1,V2,...", "variations")
     keys = [v.key for v in variations]
