@@ -193,13 +193,26 @@ def located(mask, name, message) -> list[Problem]:
 
 def _prepare(bank_or_params, items, responses) -> _Data:
     params = _params_of(bank_or_params)
+    safe_items, resp, answered, n_items, pattern = checked_answers(items, responses, params.a.shape[0],
+                                                                   params.n_categories)
+    return _Data(bank_or_params, params, safe_items, resp, answered, n_items, pattern)
+
+
+def checked_answers(items, responses, n_bank: int, n_categories: np.ndarray):
+    """Check padded answers against a bank and describe each row (shared by every scoring).
+
+    ``items`` and ``responses`` are (P, L) whole numbers, -1 where not answered; the bank
+    has ``n_bank`` items with ``n_categories`` (n,) categories each.  Raises
+    :class:`ResponseDataError` with located problems.  Returns ``safe_items`` (0 where not
+    answered), ``responses`` (-1 where not answered), ``answered`` (bool), ``n_items`` per
+    row and the row's pattern status ("", ``no_responses``, ``all_lowest``, ``all_highest``).
+    """
     items = integer_array(items, "items")
     responses = integer_array(responses, "responses")
     if items.shape != responses.shape:
         raise ResponseDataError(
             f"items {items.shape} and responses {responses.shape} differ in shape", location="responses"
         )
-    n_bank = params.a.shape[0]
     problems = located(items < -1, "items", "item index below -1 (use -1 for padding)")
     problems += located(items >= n_bank, "items", f"item index beyond the bank's {n_bank} items")
     problems += located(responses < -1, "responses", "response below -1 (use -1 for not answered)")
@@ -208,7 +221,7 @@ def _prepare(bank_or_params, items, responses) -> _Data:
         raise ResponseDataError(problems)
     answered = (items >= 0) & (responses >= 0)
     safe_items = np.where(answered, items, 0)
-    n_cat = params.n_categories[safe_items]
+    n_cat = n_categories[safe_items]
     problems = [
         Problem(f"responses[{r}, {c}]",
                 f"response {int(responses[r, c])} is outside the categories 0..{int(n_cat[r, c]) - 1} "
@@ -225,7 +238,7 @@ def _prepare(bank_or_params, items, responses) -> _Data:
     pattern[highest] = ALL_HIGHEST
     pattern[lowest] = ALL_LOWEST
     pattern[n_items == 0] = NO_RESPONSES
-    return _Data(bank_or_params, params, safe_items, resp, answered, n_items, pattern)
+    return safe_items, resp, answered, n_items, pattern
 
 
 def _per_person(value, n, name) -> np.ndarray:

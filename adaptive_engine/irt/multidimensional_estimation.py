@@ -81,21 +81,17 @@ import numpy as np
 from scipy import sparse
 from scipy.special import log_expit, ndtri
 
-from ..errors import AdaptiveEngineError, Problem, ResponseDataError
+from ..errors import AdaptiveEngineError
 from . import multidimensional as md
 from .estimation import (
-    ALL_HIGHEST,
-    ALL_LOWEST,
     AT_LOWER_BOUND,
     AT_UPPER_BOUND,
     CONVERGED,
     NO_INFORMATION,
-    NO_RESPONSES,
     NOT_CONVERGED,
     PRIOR_DOMINATED,
     PRIOR_DOMINATED_SHARE,
-    integer_array,
-    located,
+    checked_answers,
     row_sum,
 )
 
@@ -215,37 +211,8 @@ def _params_of(bank_or_params) -> md.MultidimensionalParameters:
 
 def _prepare(bank_or_params, items, responses) -> _Data:
     params = _params_of(bank_or_params)
-    items = integer_array(items, "items")
-    responses = integer_array(responses, "responses")
-    if items.shape != responses.shape:
-        raise ResponseDataError(
-            f"items {items.shape} and responses {responses.shape} differ in shape", location="responses")
-    n_bank = params.slopes.shape[0]
-    problems = located(items < -1, "items", "item index below -1 (use -1 for padding)")
-    problems += located(items >= n_bank, "items", f"item index beyond the bank's {n_bank} items")
-    problems += located(responses < -1, "responses", "response below -1 (use -1 for not answered)")
-    problems += located((items == -1) & (responses >= 0), "responses", "a response without an item")
-    if problems:
-        raise ResponseDataError(problems)
-    answered = (items >= 0) & (responses >= 0)
-    safe = np.where(answered, items, 0)
-    n_cat = params.n_categories[safe]
-    problems = [
-        Problem(f"responses[{r}, {c}]",
-                f"response {int(responses[r, c])} is outside the categories 0..{int(n_cat[r, c]) - 1} "
-                f"of item row {int(items[r, c])}")
-        for r, c in zip(*np.nonzero(answered & (responses >= n_cat)))
-    ][:20]
-    if problems:
-        raise ResponseDataError(problems)
-    resp = np.where(answered, responses, -1)
-    n_items = answered.sum(axis=1)
-    lowest = np.all(~answered | (resp == 0), axis=1)
-    highest = np.all(~answered | (resp == n_cat - 1), axis=1)
-    pattern = np.full(items.shape[0], "", dtype=object)
-    pattern[highest] = ALL_HIGHEST
-    pattern[lowest] = ALL_LOWEST
-    pattern[n_items == 0] = NO_RESPONSES
+    safe, resp, answered, n_items, pattern = checked_answers(items, responses, params.slopes.shape[0],
+                                                             params.n_categories)
     return _Data(params, safe, resp, answered, n_items, pattern)
 
 

@@ -15,6 +15,8 @@ The live session (:mod:`adaptive_engine.live`) runs it on a batch of one, the si
 (:mod:`adaptive_engine.simulation`) on thousands.
 """
 
+from ..lazy_names import lazy_namespace
+
 # Public names are loaded from their modules on first use: importing one module of
 # the package does not import the others (a short command-line call stays quick).
 _LAZY = {
@@ -40,15 +42,4 @@ __all__ = [
 ]
 
 
-def __getattr__(name: str):
-    if name in _LAZY:
-        import importlib
-
-        value = getattr(importlib.import_module(f"{__name__}.{_LAZY[name]}"), name)
-        globals()[name] = value
-        return value
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-
-
-def __dir__() -> list[str]:
-    return sorted(set(globals()) | set(_LAZY))
+__getattr__, __dir__ = lazy_namespace(__name__, _LAZY, globals())
