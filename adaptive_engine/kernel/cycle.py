@@ -106,7 +106,15 @@ def answer(ctx: TestContext, state: KernelState, rows, responses, *, elapsed=Non
     scored_item = _record(ctx, state, rows, responses)
     _update_estimate(ctx, state, rows, scored_item, responses)
     picked = select(ctx, state, rows, count_eligible=count_eligible)
-    reasons = _stop_reasons(ctx, state, rows, picked)
+    return settle_step(ctx, state, rows, picked, _stop_reasons(ctx, state, rows, picked))
+
+
+def settle_step(ctx, state, rows, picked: Picked, reasons: np.ndarray) -> Picked:
+    """End the tests of ``rows`` with a stop reason; hand the others their picked item.
+
+    Returns the picks as handed out (-1 for a row that stopped).  Shared with the
+    multidimensional kernel.
+    """
     stop = reasons != ""
     state.done[rows[stop]] = True
     state.stop_reason[rows[stop]] = reasons[stop]

@@ -60,7 +60,7 @@ def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
 
 def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -> Picked:
     """Record answers of ``rows`` and move their tests on (see :func:`adaptive_engine.kernel.cycle.answer`)."""
-    from .cycle import apply_pick, record_answers
+    from .cycle import record_answers, settle_step
 
     rows = np.asarray(rows, dtype=np.int64)
     responses = np.asarray(responses, dtype=np.int64)
@@ -73,16 +73,7 @@ def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -
         state.log_post[rows[keep]] += ctx.log_table_by_category[scored_item[keep], responses[keep]]
     update_estimate(ctx, state, rows)
     picked = select(ctx, state, rows, count_eligible=count_eligible)
-    reasons = stop_reasons(ctx, state, rows, picked)
-    stop = reasons != ""
-    state.done[rows[stop]] = True
-    state.stop_reason[rows[stop]] = reasons[stop]
-    go = ~stop
-    picked_go = Picked(item=np.where(go, picked.item, -1), value=np.where(go, picked.value, np.nan),
-                       eligible=picked.eligible,
-                       withheld=[w for w in picked.withheld if not state.done[w[0]]])
-    apply_pick(ctx, state, rows, picked_go)
-    return picked_go
+    return settle_step(ctx, state, rows, picked, stop_reasons(ctx, state, rows, picked))
 
 
 # ----------------------------------------------------------------------------------------
