@@ -7,9 +7,30 @@ thread.  The pool's size is read once, when numpy is first imported, so it is se
 before any test module is imported (no pytest plugin in use imports numpy earlier).
 Subprocesses started by the tests inherit the setting.  A value already in the
 environment wins.
+
+The fixture ``figures_not_rasterized`` leaves the PNG rendering out of report pages for
+tests that run ``simulate`` or ``tune`` for something other than the figures.
 """
 
 import os
 
+import pytest
+
 for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_name, "1")
+
+
+@pytest.fixture
+def figures_not_rasterized(monkeypatch):
+    """Report figures are built but not rendered to PNG, for tests not about the figures.
+
+    Rendering is about three quarters of a small ``simulate`` run's time (matplotlib draws
+    each figure twice for ``bbox_inches="tight"``).  The figure code still runs, from the
+    data to the axes, so an error in it still fails the test; only the pixels are left out
+    (an empty image in the page).  Tests of the figures themselves and of the report page
+    (tests/test_html_report.py, tests/test_report_pages.py, the report tests in
+    tests/test_simulation.py, the demo and the README tour) render them for real.
+    """
+    from adaptive_engine.simulation import html_report
+
+    monkeypatch.setattr(html_report, "png_base64", lambda fig: "")
