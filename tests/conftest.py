@@ -27,9 +27,10 @@ def figures_not_rasterized(monkeypatch):
     Rendering is about three quarters of a small ``simulate`` run's time (matplotlib draws
     each figure twice for ``bbox_inches="tight"``).  The figure code still runs, from the
     data to the axes, so an error in it still fails the test; only the pixels are left out
-    (an empty image in the page).  Tests of the figures themselves and of the report page
-    (tests/test_html_report.py, tests/test_report_pages.py, the report tests in
-    tests/test_simulation.py, the demo and the README tour) render them for real.
+    (an empty image in the page).  Tests of the figures themselves and of the page as a
+    whole (tests/test_report_pages.py, the shared study of tests/test_html_report.py, the
+    report tests of tests/test_simulation.py, the demo and the README tour) render them for
+    real.
     """
     from adaptive_engine.simulation import html_report
 
