@@ -13,9 +13,14 @@ tests that run ``simulate`` or ``tune`` for something other than the figures.
 """
 
 import os
+import sys
+import warnings
 
 import pytest
 
+if "numpy" in sys.modules:  # too late: a plugin imported numpy before this file
+    warnings.warn("numpy was imported before tests/conftest.py: its BLAS keeps the threads it started with",
+                  stacklevel=1)
 for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_name, "1")
 
