@@ -98,7 +98,7 @@ def test_missed_exposure_target_is_said_and_the_items_are_listed(licensing):
         assert f"{name} (" in text
 
 
-def test_met_exposure_target_is_said(tmp_path):
+def test_met_exposure_target_is_said(tmp_path, figures_not_rasterized):
     design, bank = _shipped()
     population = Population.drawn(parse_ability_spec("normal:0,1"), n_examinees=60, seed=5)
     run_study(design, bank, population=population, out_dir=tmp_path,

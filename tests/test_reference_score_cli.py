@@ -7,7 +7,8 @@ model formulas (the helpers of test_reference_estimation.py: Barton & Lord 1981 
 for 1PL-4PL, Samejima 1969 for the GRM, Muraki 1992 for the GPCM):
 
 * MLE: scipy.optimize.minimize_scalar on the log-likelihood; SE = 1 / sqrt(I) (Lord 1980);
-* MAP: scipy.optimize.minimize_scalar on the log posterior (scipy.stats.norm prior); SE from
+* MAP: scipy.optimize.minimize_scalar on the log posterior (a normal prior, the same as
+  scipy.stats.norm's: see test_reference_estimation.py); SE from
   the observed curvature of the log posterior (central second difference);
 * EAP: scipy.integrate.quad for the posterior mean and SD (Bock & Mislevy 1982);
 * WLE: scipy.optimize.brentq on Warm's (1989) equation l' + J / (2 I) = 0; SE = 1 / sqrt(I).
@@ -22,12 +23,13 @@ import math
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from scipy import integrate, optimize, stats
+from scipy import integrate, optimize
 
 from adaptive_engine.cli import main
 from test_reference_estimation import (
     draw_pattern,
     global_max,
+    normal_logpdf,
     random_items,
     ref_gradient,
     ref_information,
@@ -83,7 +85,7 @@ def run_score(bank, answers, method):
 
 
 def log_prior(t):
-    return stats.norm.logpdf(t, PRIOR_MEAN, PRIOR_SD)
+    return normal_logpdf(t, PRIOR_MEAN, PRIOR_SD)
 
 
 def reference(method, its, resp, project_theta):

@@ -203,7 +203,7 @@ def test_perturb_from_errors_are_located(tmp_path, extra, where):
     assert where in str(err.value)
 
 
-def test_simulate_cli_perturb_from(tmp_path):
+def test_simulate_cli_perturb_from(tmp_path, figures_not_rasterized):
     from adaptive_engine.bank import load_bank
 
     design, bank_path = _shipped()
@@ -282,7 +282,7 @@ def test_the_report_embeds_its_figures(tmp_path):
     assert body.count("<img") >= 3 and "data:image/png;base64," in body and "left out" not in body
 
 
-def test_simulate_cli_writes_every_file(tmp_path):
+def test_simulate_cli_writes_every_file(tmp_path, figures_not_rasterized):
     design, bank = _shipped()
     out = tmp_path / "study"
     result = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "150", "--seed", "4",
@@ -315,7 +315,7 @@ def test_simulate_cli_writes_every_file(tmp_path):
     assert summary["share_above_target"] == pytest.approx(np.mean(rates > 0.3), abs=1e-9)
 
 
-def test_rerun_into_the_same_folder_leaves_no_stale_files(tmp_path):
+def test_rerun_into_the_same_folder_leaves_no_stale_files(tmp_path, figures_not_rasterized):
     design, bank = _shipped()
     out = tmp_path / "study"
     args = ["simulate", design, "--bank", bank, "--out", str(out)]
@@ -333,7 +333,7 @@ def test_rerun_into_the_same_folder_leaves_no_stale_files(tmp_path):
     assert r.exit_code == 2 and (out / "summary.json").read_text() == before
 
 
-def test_simulate_cli_share_above_default_target(tmp_path):
+def test_simulate_cli_share_above_default_target(tmp_path, figures_not_rasterized):
     design, bank = _shipped()
     out = tmp_path / "study"
     r = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "60", "--out", str(out)])
@@ -465,7 +465,7 @@ def test_demo_runs(tmp_path, monkeypatch):
     assert "Exposure section says why" in r.output  # the shipped design misses 0.25; the demo says so
 
 
-def test_demo_without_the_example_files_names_what_is_missing(tmp_path, monkeypatch):
+def test_demo_without_the_example_files_names_what_is_missing(tmp_path, monkeypatch, figures_not_rasterized):
     # as from an installed (non-editable) package: no checkout next to the package or in
     # the current folder
     from adaptive_engine import demo
@@ -537,7 +537,7 @@ def test_progress_bar_quiet_unless_asked():
     assert shown.getvalue().count("\n") == 1 and "10/10" in shown.getvalue() and "run [" in shown.getvalue()
 
 
-def test_simulate_cli_progress_on_request(tmp_path, monkeypatch):
+def test_simulate_cli_progress_on_request(tmp_path, monkeypatch, figures_not_rasterized):
     from adaptive_engine.cli import simulate_commands
 
     design, bank = _shipped()
@@ -552,7 +552,7 @@ def test_simulate_cli_progress_on_request(tmp_path, monkeypatch):
     assert r.exit_code == 0 and r.stderr == ""
 
 
-def test_examinee_count_follows_a_grid_or_file_spec(tmp_path):
+def test_examinee_count_follows_a_grid_or_file_spec(tmp_path, figures_not_rasterized):
     spec = examinees.parse_ability_spec("grid:-2,2,5:4")
     assert examinees.examinee_count(spec, None, default=1000) == 20
     assert examinees.examinee_count(spec, 20, default=1000) == 20

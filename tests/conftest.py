@@ -1,0 +1,42 @@
+"""Settings for the whole test suite.
+
+One BLAS thread per process.  numpy's OpenBLAS starts a pool of threads at import and
+spreads every matrix product over it; on a machine with two busy cores those threads wait
+on each other and the small products of the tests run several times slower than on one
+thread.  The pool's size is read once, when numpy is first imported, so it is set here,
+before any test module is imported (no pytest plugin in use imports numpy earlier).
+Subprocesses started by the tests inherit the setting.  A value already in the
+environment wins.
+
+The fixture ``figures_not_rasterized`` leaves the PNG rendering out of report pages for
+tests that run ``simulate`` or ``tune`` for something other than the figures.
+"""
+
+import os
+import sys
+import warnings
+
+import pytest
+
+if "numpy" in sys.modules:  # too late: a plugin imported numpy before this file
+    warnings.warn("numpy was imported before tests/conftest.py: its BLAS keeps the threads it started with",
+                  stacklevel=1)
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, "1")
+
+
+@pytest.fixture
+def figures_not_rasterized(monkeypatch):
+    """Report figures are built but not rendered to PNG, for tests not about the figures.
+
+    Rendering is about three quarters of a small ``simulate`` run's time (matplotlib draws
+    each figure twice for ``bbox_inches="tight"``).  The figure code still runs, from the
+    data to the axes, so an error in it still fails the test; only the pixels are left out
+    (an empty image in the page).  Tests of the figures themselves and of the page as a
+    whole (tests/test_report_pages.py, the shared study of tests/test_html_report.py, the
+    report tests of tests/test_simulation.py, the demo and the README tour) render them for
+    real.
+    """
+    from adaptive_engine.simulation import html_report
+
+    monkeypatch.setattr(html_report, "png_base64", lambda fig: "")
