@@ -6,7 +6,9 @@ on each other and the small products of the tests run several times slower than 
 thread.  The pool's size is read once, when numpy is first imported, so it is set here,
 before any test module is imported (no pytest plugin in use imports numpy earlier).
 Subprocesses started by the tests inherit the setting.  A value already in the
-environment wins.
+environment wins.  Bytecode caching is left on (Python's default) even where the
+environment turns it off, so the command-line processes the tests start reuse compiled
+modules.
 
 The fixture ``figures_not_rasterized`` leaves the PNG rendering out of report pages for
 tests that run ``simulate`` or ``tune`` for something other than the figures.
@@ -23,6 +25,12 @@ if "numpy" in sys.modules:  # too late: a plugin imported numpy before this file
                   stacklevel=1)
 for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_name, "1")
+
+# Python's default bytecode cache, also where the environment turns it off
+# (PYTHONDONTWRITEBYTECODE): the suite starts about a hundred command-line processes, and
+# without the cache each one compiles the package's modules from source again.
+os.environ.pop("PYTHONDONTWRITEBYTECODE", None)
+sys.dont_write_bytecode = False
 
 
 @pytest.fixture
