@@ -154,7 +154,7 @@ def session_calls(folder: Path, calls: int) -> None:
     db = folder / "store.db"
     cache = Path(str(db) + ".tables")
     start_args = ["-m", "adaptive_engine", "session", "start", "--db", str(db), "--design", str(design),
-                  "--bank", str(bank)]
+                  "--bank", str(bank), "--json"]
     child(start_args)  # creates the store
     figures = {}
     for label, cold in (("cold", True), ("warm", False)):
@@ -168,7 +168,7 @@ def session_calls(folder: Path, calls: int) -> None:
             if cold:
                 shutil.rmtree(cache, ignore_errors=True)
             seconds, rss, _, cpu = child(["-m", "adaptive_engine", "session", "answer", "--db", str(db),
-                                          reply["session_id"], reply["item_id"], "1"])
+                                          reply["session_id"], reply["item_id"], "1", "--json"])
             answers.append((seconds, cpu, rss))
         figures[label] = (statistics.median(s for s, _ in starts), statistics.median(c for _, c in starts),
                           statistics.median(s for s, _, _ in answers), statistics.median(c for _, c, _ in answers),

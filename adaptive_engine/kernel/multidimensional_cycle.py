@@ -70,7 +70,12 @@ def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -
     scored_item = record_answers(ctx, state, rows, responses)
     keep = scored_item >= 0
     if keep.any():
-        state.log_post[rows[keep]] += ctx.log_table_by_category[scored_item[keep], responses[keep]]
+        sr = rows[keep]
+        update = ctx.log_table_by_category[scored_item[keep], responses[keep]]
+        if sr.size == state.size and sr[0] == 0 and sr[-1] == sr.size - 1:
+            state.log_post += update  # the whole batch in order: no gather/scatter round trip
+        else:
+            state.log_post[sr] += update
     update_estimate(ctx, state, rows)
     picked = select(ctx, state, rows, count_eligible=count_eligible)
     return settle_step(ctx, state, rows, picked, stop_reasons(ctx, state, rows, picked))
