@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import itertools
 import json
-import math
 
 import numpy as np
 
@@ -32,7 +31,7 @@ from ..kernel.final_report import classification_matrix
 from ..kernel.multidimensional_cycle import composite
 from . import metrics
 from .multidimensional_engine import DEFAULT_CHUNK, multidimensional_metrics, simulate_multidimensional
-from .tuning import Variation, apply_settings, efficient_frontier
+from .tuning import Variation, apply_settings, mark_frontier
 
 
 def _combinations(design: Design, bank: ItemBank, variations: list[Variation]):
@@ -138,14 +137,7 @@ def tune_multidimensional(design: Design, bank: ItemBank, variations: list[Varia
         row = dict(zip(keys, combo))
         row.update(variant_row(result))
         rows.append(row)
-    acc_keys = [key for key in rows[0] if key.startswith("accuracy_")]
-    accuracy = None
-    if acc_keys:
-        accuracy = [np.mean([r[key] if r[key] is not None else math.nan for key in acc_keys]) for r in rows]
-    front = efficient_frontier([r["mean_length"] for r in rows], [r["rmse"] for r in rows], accuracy)
-    for r, f in zip(rows, front):
-        r["frontier"] = bool(f)
-    return rows
+    return mark_frontier(rows)
 
 
 def run_multidimensional_tuning_study(design: Design, bank: ItemBank, variations: list[Variation], *, true_theta,

@@ -157,6 +157,12 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, populat
         for c in s["classification"]:
             row[f"accuracy_{c['cut']}"] = c["accuracy"]
         rows.append(row)
+    return mark_frontier(rows)
+
+
+def mark_frontier(rows: list[dict]) -> list[dict]:
+    """Set each row's ``frontier`` flag: on the efficient frontier of mean length, RMSE and
+    the mean of its ``accuracy_*`` columns (when there are cut scores).  Returns ``rows``."""
     acc_keys = [k for k in rows[0] if k.startswith("accuracy_")]
     accuracy = None
     if acc_keys:
