@@ -66,6 +66,14 @@ def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligi
     else:
         state.theta[:] = opening.theta
     state.se[:] = state.prior_sd
+    return first_pick(ctx, state, count_eligible=count_eligible)
+
+
+def first_pick(ctx: TestContext, state: KernelState, *, count_eligible: bool = False) -> Step:
+    """Hand every examinee of a new batch its first item (a test with none ends at once).
+
+    Shared with the multidimensional kernel.
+    """
     rows = np.arange(state.size)
     picked = select(ctx, state, rows, count_eligible=count_eligible)
     _apply_pick(ctx, state, rows, picked)
@@ -364,7 +372,6 @@ def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, item
 
 
 #: The bookkeeping shared with the multidimensional kernel (kernel/multidimensional_cycle.py):
-#: recording answers (the posterior update is the same row addition on its product grid)
-#: and applying a pick.
+#: recording answers (that kernel adds the scored ones to its own posterior on its product
+#: grid); :func:`first_pick` and :func:`settle_step` hand out the picks.
 record_answers = _record
-apply_pick = _apply_pick

@@ -41,21 +41,14 @@ def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
     The prior is the design's multivariate normal; ``prior_mean`` and ``prior_sd`` are
     accepted for the signature's sake and must be None (or the design's values).
     """
-    from .cycle import Step, apply_pick
+    from .cycle import first_pick
 
     tab = ctx.multidimensional
     state = MultidimensionalState.empty_vector(ctx, keys)
     state.log_post[:] = tab.log_prior[None, :]
     state.theta[:] = ctx.design.opening.theta
     state.se[:] = state.prior_sd
-    rows = np.arange(state.size)
-    picked = select(ctx, state, rows, count_eligible=count_eligible)
-    apply_pick(ctx, state, rows, picked)
-    no_item = picked.item < 0
-    if no_item.any():
-        state.done[no_item] = True
-        state.stop_reason[no_item] = "no_eligible_item"
-    return Step(state, picked)
+    return first_pick(ctx, state, count_eligible=count_eligible)
 
 
 def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -> Picked:
