@@ -12,13 +12,21 @@
 """
 
 from ..errors import SimulationError
-from .engine import Execution, SimulationResult, perturbed_bank, simulate
-from .exposure_tuning import ExposureCalibration, calibrate_sympson_hetter, with_parameters
-from .metrics import summarize
-from .multidimensional_tuning import tune_multidimensional
-from .population import AbilitySpec, Population, examinee_count, parse_ability_spec
-from .study import Study, run_study
-from .tuning import Variation, parse_variation, tune
+from ..lazy_names import lazy_namespace
+
+# Public names are loaded from their modules on first use: `simulate` does not import the
+# tuning, exposure-tuning or multidimensional modules (and what they import) unless asked.
+_LAZY = {
+    "Execution": "engine", "SimulationResult": "engine", "perturbed_bank": "engine", "simulate": "engine",
+    "ExposureCalibration": "exposure_tuning", "calibrate_sympson_hetter": "exposure_tuning",
+    "with_parameters": "exposure_tuning",
+    "summarize": "metrics",
+    "tune_multidimensional": "multidimensional_tuning",
+    "AbilitySpec": "population", "Population": "population", "examinee_count": "population",
+    "parse_ability_spec": "population",
+    "Study": "study", "run_study": "study",
+    "Variation": "tuning", "parse_variation": "tuning", "tune": "tuning",
+}
 
 __all__ = [
     "AbilitySpec", "Execution", "ExposureCalibration", "Population", "SimulationError", "SimulationResult",
@@ -26,3 +34,5 @@ __all__ = [
     "parse_variation", "perturbed_bank", "run_study", "simulate", "summarize", "tune",
     "tune_multidimensional", "with_parameters",
 ]
+
+__getattr__, __dir__ = lazy_namespace(__name__, _LAZY, globals())
