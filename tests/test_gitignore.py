@@ -19,9 +19,10 @@ def _readme_outputs() -> list[str]:
     blocks = re.findall(r"```(?:bash|python)\n(.*?)```", text, flags=re.S)
     found = {a or b for block in blocks for a, b in _WRITES.findall(block)}
     # the demo writes its report to demo_output/ (README: "writes an HTML report to
-    # demo_output/"); a SQLite store brings its -wal and -shm files
+    # demo_output/"); a SQLite store brings its -wal and -shm files and its folder of
+    # shared selection tables (live/table_cache.py)
     found.add("demo_output/")
-    found |= {f"{p}{suffix}" for p in list(found) if p.endswith(".db") for suffix in ("-wal", "-shm")}
+    found |= {f"{p}{suffix}" for p in list(found) if p.endswith(".db") for suffix in ("-wal", "-shm", ".tables/")}
     return sorted(found)
 
 
