@@ -104,3 +104,29 @@ def store_location(backend: str, folder):
         yield url
     finally:
         drop_schema(url)
+
+
+def open_at_once(location: str, openers: int = 4) -> list[Exception]:
+    """Open the store at ``location`` from ``openers`` threads released together; each
+    checks it sees the current schema version.  Returns what any of them raised."""
+    import threading
+
+    from adaptive_engine.live.store import SCHEMA_VERSION, open_store
+
+    barrier = threading.Barrier(openers)
+    errors = []
+
+    def open_it():
+        try:
+            barrier.wait(10)
+            with open_store(location) as store:
+                assert store.schema_version == SCHEMA_VERSION
+        except Exception as exc:  # returned to the test
+            errors.append(exc)
+
+    threads = [threading.Thread(target=open_it) for _ in range(openers)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(60)
+    return errors

@@ -30,7 +30,7 @@ from adaptive_engine.live.store import (
     design_content,
     open_store,
 )
-from store_backends import BACKENDS, store_location
+from store_backends import BACKENDS, open_at_once, store_location
 
 ROOT = Path(__file__).resolve().parents[1]
 BANK = load_bank(ROOT / "item_banks" / "meridian_valley_operator.csv")
@@ -292,25 +292,7 @@ def test_an_empty_location_is_no_store_unless_created(empty_location):
 
 
 def test_stores_opened_at_once_create_the_schema_once(empty_location):
-    import threading
-
-    barrier = threading.Barrier(4)
-    errors = []
-
-    def open_it():
-        try:
-            barrier.wait(10)
-            with open_store(empty_location) as store:
-                assert store.schema_version == SCHEMA_VERSION
-        except Exception as exc:  # reported below
-            errors.append(exc)
-
-    threads = [threading.Thread(target=open_it) for _ in range(4)]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join(60)
-    assert errors == []
+    assert open_at_once(empty_location) == []
     with open_store(empty_location) as store:
         assert store.query("SELECT version, note FROM store_schema") == [(SCHEMA_VERSION, "created")]
 

@@ -22,8 +22,6 @@ measures a dimension).
 
 from __future__ import annotations
 
-import csv
-import io
 import math
 from collections import Counter
 
@@ -33,6 +31,7 @@ import numpy as np
 from ..errors import AdaptiveEngineError
 from ..irt import multidimensional as md
 from .item_bank import ItemBank
+from .summary import columns_csv_text
 
 MODEL_ORDER = ("M2PL", "M3PL", "MGRM")
 #: Ability range scanned along each dimension for the precisely measured region, and its step.
@@ -153,13 +152,7 @@ class MultidimensionalCurves:
         return cols
 
     def to_csv_text(self) -> str:
-        cols = self.columns()
-        out = io.StringIO()
-        writer = csv.writer(out, lineterminator="\n")
-        writer.writerow(cols)
-        for row in zip(*cols.values()):
-            writer.writerow(repr(float(x)) for x in row)
-        return out.getvalue()
+        return columns_csv_text(self.columns())
 
     def to_dict(self) -> dict:
         """JSON form.  Per dimension: ``{"items_counted", "n_items", "dimensions", "theta",

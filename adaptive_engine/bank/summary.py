@@ -199,13 +199,7 @@ class InformationCurves:
         return cols
 
     def to_csv_text(self) -> str:
-        cols = self.columns()
-        out = io.StringIO()
-        writer = csv.writer(out, lineterminator="\n")
-        writer.writerow(cols)
-        for row in zip(*cols.values()):
-            writer.writerow(repr(float(x)) for x in row)
-        return out.getvalue()
+        return columns_csv_text(self.columns())
 
     def plot_lines(self) -> tuple[dict, dict, str]:
         """``(information lines, SE lines, x-axis label)`` for a plot."""
@@ -360,3 +354,14 @@ def plot_information_curves(curves, path: str | Path, *, title: str = "") -> Pat
     finally:
         plt.close(fig)
     return path
+
+
+def columns_csv_text(cols: dict) -> str:
+    """Curves as CSV text: a header of the column names, then one row per ability point,
+    every number in full precision (``repr``)."""
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(cols)
+    for row in zip(*cols.values()):
+        writer.writerow(repr(float(x)) for x in row)
+    return out.getvalue()

@@ -357,10 +357,7 @@ def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, item
 
     Returns the state and the last pick (the first item's pick when no answer was given).
     """
-    if ctx.multidimensional is not None:
-        from . import multidimensional_cycle
-
-        return multidimensional_cycle.rebuild(ctx, key, prior_mean, prior_sd, items, responses, elapsed=elapsed)
+    # start and answer run the multidimensional kernel where the context says so
     state, picked = start(ctx, np.array([key], dtype=np.uint64), prior_mean=prior_mean, prior_sd=prior_sd)
     rows = np.zeros(1, dtype=np.int64)
     for k, (item, resp) in enumerate(zip(items, responses)):

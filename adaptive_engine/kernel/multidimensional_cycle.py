@@ -254,17 +254,3 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
 def _plain(x) -> float | None:
     x = float(x)
     return x if math.isfinite(x) else None
-
-
-def rebuild(ctx, key: int, prior_mean, prior_sd, items, responses, *, elapsed=None):
-    """Restore one examinee's state by replaying their answers (see :func:`adaptive_engine.kernel.cycle.rebuild`)."""
-    from .cycle import Step
-
-    state, picked = start(ctx, np.array([key], dtype=np.uint64))
-    rows = np.zeros(1, dtype=np.int64)
-    for k, (item, resp) in enumerate(zip(items, responses)):
-        if state.pending[0] != item:
-            raise ValueError(f"replay diverged at answer {k + 1}: expected item row {state.pending[0]}, log has {item}")
-        t = None if elapsed is None or elapsed[k] is None else np.array([elapsed[k]], dtype=float)
-        picked = answer(ctx, state, rows, np.array([resp]), elapsed=t)
-    return Step(state, picked)

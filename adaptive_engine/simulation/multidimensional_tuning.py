@@ -17,13 +17,12 @@ that RMSE and the composite's classification accuracy, as in the one-dimensional
 
 from __future__ import annotations
 
-import itertools
 import json
 
 import numpy as np
 
 from ..bank.item_bank import ItemBank
-from ..design.bank_fit import require_design_fits_bank, runs_multidimensional
+from ..design.bank_fit import runs_multidimensional
 from ..design.types import Design
 from ..errors import DesignError
 from ..files import StagedFiles, prepare_folder
@@ -31,19 +30,12 @@ from ..kernel.final_report import classification_matrix
 from ..kernel.multidimensional_cycle import composite
 from . import metrics
 from .multidimensional_engine import DEFAULT_CHUNK, multidimensional_metrics, simulate_multidimensional
-from .tuning import Variation, apply_settings, mark_frontier
+from .tuning import Variation, mark_frontier, variant_designs
 
 
 def _combinations(design: Design, bank: ItemBank, variations: list[Variation]):
-    if not variations:
-        raise DesignError("give at least one variation SECTION.KEY=V1,V2,...", "variations")
-    keys = [v.key for v in variations]
-    if len(set(keys)) != len(keys):
-        raise DesignError("a key is varied twice", "variations")
-    combos = list(itertools.product(*[v.values for v in variations]))
-    designs = [apply_settings(design, dict(zip(keys, combo))) for combo in combos]
-    for combo, d in zip(combos, designs):  # every variant must fit before any work starts
-        require_design_fits_bank(d, bank)
+    keys, combos, designs = variant_designs(design, bank, variations)
+    for combo, d in zip(combos, designs):
         if not runs_multidimensional(d, bank):
             where = ", ".join(f"{k}={v!r}" for k, v in zip(keys, combo))
             raise DesignError("this combination runs on the one-dimensional kernel while the design runs on the "

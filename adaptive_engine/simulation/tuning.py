@@ -130,15 +130,7 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, populat
         raise DesignError("the design runs on the multidimensional kernel (ability vectors); tune it with "
                           "adaptive_engine.simulation.multidimensional_tuning.tune_multidimensional(design, bank, "
                           "variations, true_theta=(N, K) array, seed=...) or `adaptive-engine tune`", "design")
-    if not variations:
-        raise DesignError("give at least one variation SECTION.KEY=V1,V2,...", "variations")
-    keys = [v.key for v in variations]
-    if len(set(keys)) != len(keys):
-        raise DesignError("a key is varied twice", "variations")
-    combos = list(itertools.product(*[v.values for v in variations]))
-    designs = [apply_settings(design, dict(zip(keys, combo))) for combo in combos]
-    for d in designs:  # every variant must fit before any work starts
-        require_design_fits_bank(d, bank)
+    keys, combos, designs = variant_designs(design, bank, variations)
     rows = []
     n = population.size
     total = len(combos) * n
@@ -158,6 +150,21 @@ def tune(design: Design, bank: ItemBank, variations: list[Variation], *, populat
             row[f"accuracy_{c['cut']}"] = c["accuracy"]
         rows.append(row)
     return mark_frontier(rows)
+
+
+def variant_designs(design: Design, bank: ItemBank, variations: list[Variation]) -> tuple[list, list, list]:
+    """The varied keys, every combination of their values and its design, each design
+    checked against the bank before any work starts (DesignError naming ``variations``)."""
+    if not variations:
+        raise DesignError("give at least one variation SECTION.KEY=V1,V2,...", "variations")
+    keys = [v.key for v in variations]
+    if len(set(keys)) != len(keys):
+        raise DesignError("a key is varied twice", "variations")
+    combos = list(itertools.product(*[v.values for v in variations]))
+    designs = [apply_settings(design, dict(zip(keys, combo))) for combo in combos]
+    for d in designs:
+        require_design_fits_bank(d, bank)
+    return keys, combos, designs
 
 
 def mark_frontier(rows: list[dict]) -> list[dict]:
