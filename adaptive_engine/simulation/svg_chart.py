@@ -413,7 +413,8 @@ class Chart:
         out.append(f"<text x='{_num(left + plot_w / 2)}' y='{_num(y)}' font-size='{LABEL_SIZE}' "
                    f"text-anchor='middle'>{esc(self.xlabel)}</text>")
         height = y + 8
-        return (f"<svg xmlns='http://www.w3.org/2000/svg' viewBox='0 0 {_num(self.width)} {_num(height)}' "
+        # no xmlns: inside an HTML page the parser gives <svg> its namespace (and the page names no URL)
+        return (f"<svg viewBox='0 0 {_num(self.width)} {_num(height)}' "
                 f"width='{_num(self.width)}' height='{_num(height)}' role='img' aria-label='{esc(description)}' "
                 f"font-family=\"{FONT}\" font-size='{TICK_SIZE}' fill='#222'>"
                 f"<title>{esc(description)}</title>{''.join(out)}</svg>")
