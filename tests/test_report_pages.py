@@ -78,7 +78,9 @@ for (const svg of document.querySelectorAll('figure svg')) {
     for (const c of svg.querySelectorAll('circle')) {
       const r = c.getBoundingClientRect();
       const x = (r.left + r.right) / 2, y = (r.top + r.bottom) / 2;
-      if (b.left < x && x < b.right && b.top < y && y < b.bottom) out.push(name + ': "' + t.textContent + '" covers a point');
+      if (b.left < x && x < b.right && b.top < y && y < b.bottom) {
+        out.push(name + ': "' + t.textContent + '" covers a point');
+      }
     }
   }
 }
