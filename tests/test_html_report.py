@@ -185,12 +185,16 @@ def test_tuning_page_plots_every_frontier_criterion():
 
 
 def test_a_study_imports_no_plotting_library(tmp_path):
+    """A short simulate run loads only what it needs (common practice for command-line
+    tools: start-up is most of a small run): no plotting library, and for an EAP design
+    on one process no scipy and no multiprocessing either."""
     design = ROOT / "simulations" / "minimal.toml"
     bank = ROOT / "item_banks" / "meridian_valley_operator.csv"
     code = ("import sys; from adaptive_engine.cli import main; "
             f"main(['simulate', {str(design)!r}, '--bank', {str(bank)!r}, '--examinees', '20', "
             f"'--out', {str(tmp_path / 'out')!r}, '--no-administrations'], standalone_mode=False); "
-            "print('loaded:', sorted(m for m in ('matplotlib', 'PIL') if m in sys.modules))")
+            "print('loaded:', sorted(m for m in ('matplotlib', 'PIL', 'scipy', 'multiprocessing') "
+            "if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
                          env=dict(os.environ, PYTHONPATH=str(ROOT)))
     assert out.stdout.strip().endswith("loaded: []")
