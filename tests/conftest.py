@@ -9,16 +9,11 @@ Subprocesses started by the tests inherit the setting.  A value already in the
 environment wins.  Bytecode caching is left on (Python's default) even where the
 environment turns it off, so the command-line processes the tests start reuse compiled
 modules.
-
-The fixture ``figures_not_rasterized`` leaves the PNG rendering out of report pages for
-tests that run ``simulate`` or ``tune`` for something other than the figures.
 """
 
 import os
 import sys
 import warnings
-
-import pytest
 
 if "numpy" in sys.modules:  # too late: a plugin imported numpy before this file
     warnings.warn("numpy was imported before tests/conftest.py: its BLAS keeps the threads it started with",
@@ -32,19 +27,3 @@ for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 os.environ.pop("PYTHONDONTWRITEBYTECODE", None)
 sys.dont_write_bytecode = False
 
-
-@pytest.fixture
-def figures_not_rasterized(monkeypatch):
-    """Report figures are built but not rendered to PNG, for tests not about the figures.
-
-    Rendering is about three quarters of a small ``simulate`` run's time (matplotlib draws
-    each figure twice for ``bbox_inches="tight"``).  The figure code still runs, from the
-    data to the axes, so an error in it still fails the test; only the pixels are left out
-    (an empty image in the page).  Tests of the figures themselves and of the page as a
-    whole (tests/test_report_pages.py, the shared study of tests/test_html_report.py, the
-    report tests of tests/test_simulation.py, the demo and the README tour) render them for
-    real.
-    """
-    from adaptive_engine.simulation import html_report
-
-    monkeypatch.setattr(html_report, "png_base64", lambda fig: "")

@@ -122,7 +122,7 @@ def _commands(tmp_path):
     }
 
 
-def test_every_result_command_prints_valid_json_with_json_and_text_without(tmp_path, figures_not_rasterized):
+def test_every_result_command_prints_valid_json_with_json_and_text_without(tmp_path):
     commands = _commands(tmp_path)
     for name, args in commands.items():
         if name in ("session answer", "release publish", "token new", "release retire"):

@@ -127,7 +127,7 @@ def test_a_small_area_minimum_is_named_in_the_diagnosis_and_the_warnings():
     assert max(rates) >= 0.5 - 1e-9
 
 
-def test_a_bank_area_the_blueprint_does_not_mention_is_a_warning(tmp_path, figures_not_rasterized):
+def test_a_bank_area_the_blueprint_does_not_mention_is_a_warning(tmp_path):
     bank = small_bank(areas=("one", "two") * 19 + ("ones", "two"))
     bank_file = tmp_path / "bank.csv"
     write_bank(bank, bank_file)

@@ -58,7 +58,7 @@ def _answers(path: Path, n: int = 300, seed: int = 5) -> Path:
     return path
 
 
-def test_every_command_writes_files_with_the_normal_mode(tmp_path, umask_022, figures_not_rasterized):
+def test_every_command_writes_files_with_the_normal_mode(tmp_path, umask_022):
     written = []
     # bank convert
     _run("bank", "convert", BANK, tmp_path / "bank.json")

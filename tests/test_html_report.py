@@ -7,7 +7,11 @@ from __future__ import annotations
 
 import csv
 import html
+import os
 import re
+import subprocess
+import sys
+import xml.etree.ElementTree as ET
 from pathlib import Path
 
 import numpy as np
@@ -19,7 +23,6 @@ from adaptive_engine.design.toml_file import read_design
 from adaptive_engine.simulation import html_report
 from adaptive_engine.simulation.population import Population, parse_ability_spec
 from adaptive_engine.simulation.study import run_study
-from optional_extras import requires_matplotlib
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -98,7 +101,7 @@ def test_missed_exposure_target_is_said_and_the_items_are_listed(licensing):
         assert f"{name} (" in text
 
 
-def test_met_exposure_target_is_said(tmp_path, figures_not_rasterized):
+def test_met_exposure_target_is_said(tmp_path):
     design, bank = _shipped()
     population = Population.drawn(parse_ability_spec("normal:0,1"), n_examinees=60, seed=5)
     run_study(design, bank, population=population, out_dir=tmp_path,
@@ -129,74 +132,70 @@ def test_classification_curve_counts_by_hand():
                                                                             (1.0, 4, 1.0)]
 
 
-@requires_matplotlib
-def test_every_plot_has_a_y_label_and_the_classification_plot_marks_the_cut(licensing, monkeypatch):
-    study, _, _ = licensing
-    seen = []
+def _charts(page: str) -> list[ET.Element]:
+    """Every chart of a page, parsed as XML (a chart that is not well-formed fails here)."""
+    return [ET.fromstring(svg) for svg in re.findall(r"<svg .*?</svg>", page, flags=re.S)]
 
-    def record(fig):
-        seen.append([(ax.get_ylabel(), [line.get_xdata()[0] for line in ax.get_lines()
-                                         if line.get_linestyle() == "--" and len(line.get_xdata()) == 2])
-                     for ax in fig.axes])
-        return "AAAA"
 
-    monkeypatch.setattr(html_report, "png_base64", record)
-    page = html_report.simulation_report_html(study.result, study.summary)
-    assert len(seen) == page.count("base64,AAAA") >= 6
-    assert all(label for fig in seen for label, _ in fig)
+def _texts(chart: ET.Element, cls: str) -> list[ET.Element]:
+    return [t for t in chart.iter("text") if t.get("class") == cls]
+
+
+def test_every_figure_is_an_inline_chart_with_a_y_label_and_a_caption(licensing):
+    _, page, _ = licensing
+    charts = _charts(page)
+    # length (distribution, by ability), precision, exposure, classification, bank information
+    assert len(charts) == page.count("<figure>") == page.count("<figcaption>") == 6
+    assert "<img" not in page and "data:" not in page  # nothing to load, nothing rasterized
+    for chart in charts:
+        assert chart.get("aria-label")
+        labels = [t.text for t in _texts(chart, "ylabel")]
+        assert labels and all(labels)
+
+
+def test_the_classification_plot_marks_the_cut(licensing):
+    study, page, _ = licensing
     cut = study.result.design.reporting.cut_scores[0].theta
-    classification = [fig for fig in seen if fig[0][0] == "share of examinees"]
-    assert classification and any(cut in marks for _, marks in classification[0])
+    (chart,) = [c for c in _charts(page) if c.get("aria-label").startswith("Probability of being classified")]
+    # pixel -> theta from the first and last tick labels of the x axis
+    ticks = [(float(t.get("x")), float(t.text.replace("\u2212", "-"))) for t in _texts(chart, "xtick")]
+    (p0, v0), (p1, v1) = ticks[0], ticks[-1]
+    marks = [v0 + (float(line.get("x1")) - p0) * (v1 - v0) / (p1 - p0)
+             for line in chart.iter("line") if line.get("class") == "vline"]
+    assert len(marks) == 2  # in the plot and in the panel of counts beneath
+    assert marks == pytest.approx([cut, cut], abs=0.01)
+    assert [t.text for t in _texts(chart, "ylabel")] == ["share of examinees", "examinees"]
 
 
-@requires_matplotlib
-def test_tuning_page_plots_every_frontier_criterion(monkeypatch):
+def test_tuning_page_plots_every_frontier_criterion():
     from adaptive_engine.simulation.tuning import tradeoff_figures
 
     rows = [{"stopping.se": se, "mean_length": ln, "rmse": rm, "accuracy_licence": acc, "frontier": f}
             for se, ln, rm, acc, f in ((0.25, 30.0, 0.30, 0.93, True), (0.3, 25.0, 0.33, 0.92, True),
                                        (0.35, 25.5, 0.34, 0.91, False))]
-    ylabels = []
-
-    def record(fig):
-        ylabels.append(fig.axes[0].get_ylabel())
-        return "AAAA"
-
-    monkeypatch.setattr(html_report, "png_base64", record)
     figures = tradeoff_figures(rows, ["stopping.se"])
-    assert ylabels == ["RMSE (theta units)", "classification accuracy (licence)"]
     page = html_report.tuning_report_html(rows, figures, title="t", varied=["stopping.se"])
-    assert page.count("base64,AAAA") == 2 and "accuracy" in page.lower()
+    charts = _charts(page)
+    assert [[t.text for t in _texts(c, "ylabel")] for c in charts] == [["RMSE (theta units)"],
+                                                                      ["classification accuracy (licence)"]]
+    for chart in charts:  # every combination's number beside its point
+        assert sorted(t.text for t in _texts(chart, "point-label")) == ["1", "2", "3"]
     assert "<tr class=thin>" in page  # the dominated row is greyed, and the page says what grey means
     assert "dominated" in page
 
 
-@requires_matplotlib
-def test_point_labels_do_not_overlap():
-    plt = html_report.pyplot_or_none()
-    rng = np.random.default_rng(0)
-    # a dense but placeable cloud: 14 points within a few label heights of each other
-    x = 20 + rng.uniform(0, 3, 14)
-    y = 0.30 + rng.uniform(0, 0.02, 14)
-    fig, ax = plt.subplots(figsize=(7.2, 4.4))
-    ax.scatter(x, y, s=40)
-    ax.margins(0.3)
-    texts = html_report.place_labels(ax, x, y, [str(j) for j in range(1, 15)])
-    fig.canvas.draw()
-    renderer = fig.canvas.get_renderer()
-    boxes = [t.get_window_extent(renderer) for t in texts]
-    points = ax.transData.transform(np.column_stack([x, y]))
-    for i, a in enumerate(boxes):
-        for b in boxes[i + 1:]:
-            assert not a.overlaps(b)
-        for px, py in points:  # no label covers a point's centre
-            assert not (a.x0 < px < a.x1 and a.y0 < py < a.y1)
-    plt.close(fig)
-
-
-def test_the_page_without_matplotlib_keeps_every_table(licensing, monkeypatch):
-    study, _, _ = licensing
-    monkeypatch.setattr(html_report, "pyplot_or_none", lambda: None)
-    page = html_report.simulation_report_html(study.result, study.summary)
-    assert "<img" not in page and "Plots left out" in page
-    assert "Items above the target" in page and "Why tests stopped" in page
+def test_a_study_imports_no_plotting_library(tmp_path):
+    """A short simulate run loads only what it needs (common practice for command-line
+    tools: start-up is most of a small run): no plotting library, and for an EAP design
+    on one process no scipy and no multiprocessing either."""
+    design = ROOT / "simulations" / "minimal.toml"
+    bank = ROOT / "item_banks" / "meridian_valley_operator.csv"
+    code = ("import sys; from adaptive_engine.cli import main; "
+            f"main(['simulate', {str(design)!r}, '--bank', {str(bank)!r}, '--examinees', '20', "
+            f"'--out', {str(tmp_path / 'out')!r}, '--no-administrations'], standalone_mode=False); "
+            "print('loaded:', sorted(m for m in ('matplotlib', 'PIL', 'scipy', 'multiprocessing') "
+            "if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                         env=dict(os.environ, PYTHONPATH=str(ROOT)))
+    assert out.stdout.strip().endswith("loaded: []")
+    assert (tmp_path / "out" / "report.html").read_text().count("<svg ") >= 5

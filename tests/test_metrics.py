@@ -181,7 +181,7 @@ def test_ability_bins_grid_and_edges():
     assert all(r["bias"] == pytest.approx(0.1) for r in rows)
 
 
-def test_conditional_exposure_rates_are_recounted_from_the_administrations(tmp_path, figures_not_rasterized):
+def test_conditional_exposure_rates_are_recounted_from_the_administrations(tmp_path):
     # Stocking & Lewis (1998): the conditional exposure rate of an item is the share of the
     # examinees in an ability stratum who were given it.  Oracle: a recount from the study's
     # own administrations.csv and examinees.csv with the csv module.

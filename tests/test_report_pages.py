@@ -4,7 +4,9 @@ Renders the demo's study report (the shipped licensing design, as ``adaptive-eng
 writes it, on fewer examinees) and a tuning report in headless Chromium (Debian's
 ``chromium`` and ``chromium-driver``, driven by selenium with the system chromedriver) and
 fails when the page scrolls sideways (``document.documentElement.scrollWidth >
-window.innerWidth``) or a table, figure, image or list is wider than its container.
+window.innerWidth``) or a table, figure, chart, image or list is wider than its container,
+and when a text of a chart covers another (tick labels, legend, the tuning plots' point
+numbers) or a numbered point, as the browser lays them out in its own fonts.
 
 Without Chromium, chromedriver or selenium the tests skip and say why -- except when the
 environment variable ``CI`` is set, where a missing browser is a failure (``.ci/run``
@@ -35,7 +37,7 @@ const de = document.documentElement;
 if (de.scrollWidth > window.innerWidth) {
   out.push('page: scrollWidth ' + de.scrollWidth + ' > innerWidth ' + window.innerWidth);
 }
-for (const el of document.querySelectorAll('table, figure, img, pre, dl, ul, div, h1, h2, p')) {
+for (const el of document.querySelectorAll('table, figure, img, svg, pre, dl, ul, div, h1, h2, p')) {
   const parent = el.parentElement;
   if (!parent) continue;
   const cs = getComputedStyle(parent);
@@ -50,6 +52,37 @@ for (const el of document.querySelectorAll('table, figure, img, pre, dl, ul, div
 }
 for (const img of document.images) {
   if (!img.complete || img.naturalWidth === 0) out.push('image not rendered: ' + img.alt);
+}
+return out;
+"""
+
+
+#: Texts of a chart that overlap another text of the same chart, or a point they label
+#: (as the browser lays them out, in its own fonts).
+OVERLAP_SCRIPT = """
+const out = [];
+const hit = (a, b) => a.left < b.right - 1 && b.left < a.right - 1 && a.top < b.bottom - 1 && b.top < a.bottom - 1;
+for (const svg of document.querySelectorAll('figure svg')) {
+  const name = (svg.getAttribute('aria-label') || '').slice(0, 40);
+  const texts = Array.from(svg.querySelectorAll('text'));
+  const boxes = texts.map(t => t.getBoundingClientRect());
+  for (let i = 0; i < texts.length; i++) {
+    for (let j = i + 1; j < texts.length; j++) {
+      if (hit(boxes[i], boxes[j])) {
+        out.push(name + ': "' + texts[i].textContent + '" overlaps "' + texts[j].textContent + '"');
+      }
+    }
+  }
+  for (const t of svg.querySelectorAll('text.point-label')) {
+    const b = t.getBoundingClientRect();
+    for (const c of svg.querySelectorAll('circle')) {
+      const r = c.getBoundingClientRect();
+      const x = (r.left + r.right) / 2, y = (r.top + r.bottom) / 2;
+      if (b.left < x && x < b.right && b.top < y && y < b.bottom) {
+        out.push(name + ': "' + t.textContent + '" covers a point');
+      }
+    }
+  }
 }
 return out;
 """
@@ -136,6 +169,13 @@ def test_pages_fit_the_window(browser, pages, width):
         assert _problems(browser, path, width) == [], f"{name} at {width} px"
 
 
+def test_no_text_of_a_figure_covers_another(browser, pages):
+    for name, path in pages.items():
+        _problems(browser, path, WIDTHS[0])
+        assert browser.execute_script("return document.querySelectorAll('figure svg').length") >= 2, name
+        assert browser.execute_script(OVERLAP_SCRIPT) == [], name
+
+
 def test_the_check_finds_an_overflowing_table(browser, tmp_path):
     # the check itself must be able to fail: a table of long unbreakable cells
     cells = "".join(f"<td style='white-space:nowrap'>column {j} holds a long unbreakable text</td>" for j in range(12))
@@ -144,3 +184,14 @@ def test_the_check_finds_an_overflowing_table(browser, tmp_path):
                     "</body></html>")
     found = _problems(browser, page, WIDTHS[0])
     assert any(p.startswith("page:") for p in found) and any(p.startswith("table") for p in found)
+
+
+def test_the_check_finds_overlapping_chart_texts(browser, tmp_path):
+    # the overlap check must be able to fail: two labels on one spot, one over a point
+    page = tmp_path / "overlap.html"
+    page.write_text("<!DOCTYPE html><html><body><figure><svg viewBox='0 0 200 100' width='200' height='100' "
+                    "aria-label='t'><circle cx='52' cy='46' r='4'/><text x='40' y='50'>12, 13</text>"
+                    "<text class='point-label' x='45' y='52'>14</text></svg></figure></body></html>")
+    _problems(browser, page, WIDTHS[0])
+    found = browser.execute_script(OVERLAP_SCRIPT)
+    assert any("overlaps" in p for p in found) and any("covers a point" in p for p in found)

@@ -19,7 +19,6 @@ from adaptive_engine.errors import AdaptiveEngineError
 from adaptive_engine.simulation import engine as simulation
 from adaptive_engine.simulation import metrics
 from adaptive_engine.simulation import population as examinees
-from optional_extras import requires_matplotlib
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -203,7 +202,7 @@ def test_perturb_from_errors_are_located(tmp_path, extra, where):
     assert where in str(err.value)
 
 
-def test_simulate_cli_perturb_from(tmp_path, figures_not_rasterized):
+def test_simulate_cli_perturb_from(tmp_path):
     from adaptive_engine.bank import load_bank
 
     design, bank_path = _shipped()
@@ -271,7 +270,6 @@ def _shipped():
     return str(design), str(bank)
 
 
-@requires_matplotlib
 def test_the_report_embeds_its_figures(tmp_path):
     design, bank = _shipped()
     out = tmp_path / "study"
@@ -279,10 +277,12 @@ def test_the_report_embeds_its_figures(tmp_path):
                                        "--out", str(out), "--no-administrations"])
     assert result.exit_code == 0, result.output
     body = (out / "report.html").read_text().split("<body>")[1]
-    assert body.count("<img") >= 3 and "data:image/png;base64," in body and "left out" not in body
+    # length (distribution, by ability), precision, exposure, bank information: inline, each captioned
+    assert body.count("<figure><svg ") == body.count("<figcaption>") >= 5
+    assert "<img" not in body and "left out" not in body
 
 
-def test_simulate_cli_writes_every_file(tmp_path, figures_not_rasterized):
+def test_simulate_cli_writes_every_file(tmp_path):
     design, bank = _shipped()
     out = tmp_path / "study"
     result = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "150", "--seed", "4",
@@ -315,7 +315,7 @@ def test_simulate_cli_writes_every_file(tmp_path, figures_not_rasterized):
     assert summary["share_above_target"] == pytest.approx(np.mean(rates > 0.3), abs=1e-9)
 
 
-def test_rerun_into_the_same_folder_leaves_no_stale_files(tmp_path, figures_not_rasterized):
+def test_rerun_into_the_same_folder_leaves_no_stale_files(tmp_path):
     design, bank = _shipped()
     out = tmp_path / "study"
     args = ["simulate", design, "--bank", bank, "--out", str(out)]
@@ -333,7 +333,7 @@ def test_rerun_into_the_same_folder_leaves_no_stale_files(tmp_path, figures_not_
     assert r.exit_code == 2 and (out / "summary.json").read_text() == before
 
 
-def test_simulate_cli_share_above_default_target(tmp_path, figures_not_rasterized):
+def test_simulate_cli_share_above_default_target(tmp_path):
     design, bank = _shipped()
     out = tmp_path / "study"
     r = CliRunner().invoke(main, ["simulate", design, "--bank", bank, "--examinees", "60", "--out", str(out)])
@@ -431,13 +431,14 @@ def test_tune_cli(tmp_path):
     assert r.exit_code == 2 and "nonsense" in r.output
 
 
-def test_tuning_report_says_when_the_plot_is_left_out():
+def test_tuning_report_embeds_its_plots():
     from adaptive_engine.simulation.html_report import tuning_report_html
+    from adaptive_engine.simulation.tuning import tradeoff_figures
 
     rows = [{"stopping.se": 0.3, "mean_length": 10.0, "rmse": 0.3, "frontier": True}]
-    assert "left out" in tuning_report_html(rows, None, title="t")
-    page = tuning_report_html(rows, "AAAA", title="t")
-    assert "left out" not in page and "base64,AAAA" in page
+    page = tuning_report_html(rows, tradeoff_figures(rows, ["stopping.se"]), title="t")
+    assert page.count("<figure><svg ") == 1 and "Mean test length against RMSE" in page
+    assert "<figure>" not in tuning_report_html(rows, [], title="t")
 
 
 def test_efficient_frontier():
@@ -465,7 +466,7 @@ def test_demo_runs(tmp_path, monkeypatch):
     assert "Exposure section says why" in r.output  # the shipped design misses 0.25; the demo says so
 
 
-def test_demo_without_the_example_files_names_what_is_missing(tmp_path, monkeypatch, figures_not_rasterized):
+def test_demo_without_the_example_files_names_what_is_missing(tmp_path, monkeypatch):
     # as from an installed (non-editable) package: no checkout next to the package or in
     # the current folder
     from adaptive_engine import demo
@@ -537,7 +538,7 @@ def test_progress_bar_quiet_unless_asked():
     assert shown.getvalue().count("\n") == 1 and "10/10" in shown.getvalue() and "run [" in shown.getvalue()
 
 
-def test_simulate_cli_progress_on_request(tmp_path, monkeypatch, figures_not_rasterized):
+def test_simulate_cli_progress_on_request(tmp_path, monkeypatch):
     from adaptive_engine.cli import simulate_commands
 
     design, bank = _shipped()
@@ -552,7 +553,7 @@ def test_simulate_cli_progress_on_request(tmp_path, monkeypatch, figures_not_ras
     assert r.exit_code == 0 and r.stderr == ""
 
 
-def test_examinee_count_follows_a_grid_or_file_spec(tmp_path, figures_not_rasterized):
+def test_examinee_count_follows_a_grid_or_file_spec(tmp_path):
     spec = examinees.parse_ability_spec("grid:-2,2,5:4")
     assert examinees.examinee_count(spec, None, default=1000) == 20
     assert examinees.examinee_count(spec, 20, default=1000) == 20

@@ -58,7 +58,6 @@ from typing import NamedTuple
 
 import attrs
 import numpy as np
-from scipy import sparse
 
 from ..errors import AdaptiveEngineError, Problem, ResponseDataError
 from . import models
@@ -428,6 +427,8 @@ def _grid_log_likelihood(table, lookup, answered) -> np.ndarray:
     adds that row's table rows in the order of its answers, so a row's sum does not
     depend on the other rows or on padding (padding is simply not stored).
     """
+    from scipy import sparse  # imported on first use: EAP scoring in the kernel needs no scipy
+
     counts = answered.sum(axis=1)
     indptr = np.concatenate([[0], np.cumsum(counts)])
     indices = lookup[answered]  # row-major: each row's answers in their column order

@@ -165,9 +165,9 @@ def final_reports(design: Design, *, theta, se, status, n_scored, n_pretest, sto
     sprt_dec = (np.zeros(b, dtype=np.int64) if sprt_decision is None
                 else _column("sprt_decision", sprt_decision, b, np.int64))
 
-    from scipy.special import ndtri  # the standard normal quantile; imported when needed
+    from statistics import NormalDist  # the standard normal quantile (no scipy on a session call)
 
-    z = ndtri(0.5 + 0.5 * rep.confidence)
+    z = NormalDist().inv_cdf(0.5 + 0.5 * rep.confidence)
     scale = rep.scale
     with np.errstate(invalid="ignore"):
         lo = theta - z * se

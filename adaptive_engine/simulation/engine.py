@@ -32,7 +32,7 @@ import itertools
 import math
 import uuid
 from collections import deque
-from concurrent.futures import Executor, ProcessPoolExecutor
+from concurrent.futures import Executor
 from typing import Callable, Iterator
 
 import attrs
@@ -496,6 +496,9 @@ def iter_chunks(design: Design, bank: ItemBank, population: Population, executio
                             on_round=report)
         return
     own = execution.executor is None
+    if own:  # multiprocessing is imported only for a run on workers (a few milliseconds of start-up)
+        from concurrent.futures import ProcessPoolExecutor
+
     pool = ProcessPoolExecutor(max_workers=execution.workers) if own else execution.executor
     token = uuid.uuid4().hex
     window = max(2, 2 * execution.workers)  # chunks in flight: bounds memory at a few chunks

@@ -11,20 +11,20 @@ above it), with a sentence saying whether the target is met and, when it is not,
 exposure comes from where that can be known (the opening's first-item rule, item sets,
 small content areas, the exposure method).
 
-Plots need matplotlib (the ``plots`` extra); without it the pages keep every table and
-say that the plots were left out.  Pages load nothing from the network (inline CSS,
-plots as inline PNG), and every table and figure fits a window 1024 px wide (checked in
-headless Chromium by ``tests/test_report_pages.py``).
+The figures are inline SVG written by :mod:`adaptive_engine.simulation.svg_chart` (no
+plotting library: a page's figures take milliseconds).  Pages load nothing from the
+network (inline CSS and figures), and every table and figure fits a window 1024 px wide
+(checked in headless Chromium by ``tests/test_report_pages.py``).
 """
 
 from __future__ import annotations
 
-import base64
 import html
-import io
 import math
 
 import numpy as np
+
+from .svg_chart import Chart
 
 #: Bins with fewer examinees are marked as thin on conditional plots and tables (common
 #: practice: below about 30 cases a bin's RMSE or share moves by several points from one
@@ -45,7 +45,7 @@ td,th{border:1px solid #ccc;padding:.2em .5em;text-align:right;vertical-align:to
 td{white-space:nowrap} th{background:#f0f0f0;font-weight:600}
 td.l,th.l{text-align:left} td.l{white-space:normal}
 tr.thin td{color:#777;font-style:italic}
-figure{margin:.6em 0 1.6em;max-width:100%} figure img{display:block;max-width:100%;height:auto}
+figure{margin:.6em 0 1.6em;max-width:100%} figure svg{display:block;max-width:100%;height:auto}
 figcaption{color:#444;font-size:.9em;max-width:44em}
 p,li,dd{max-width:48em} code{overflow-wrap:anywhere}
 .note{color:#555}
@@ -58,25 +58,6 @@ dl.glossary dt{font-weight:600;margin-top:.5em} dl.glossary dd{margin:0 0 0 1.2e
 
 _TARGET_COLOUR = "#c62828"
 _BLUE = "#3a6ea5"
-
-
-def pyplot_or_none():
-    """matplotlib.pyplot on the Agg backend, or None when the plots extra is not installed."""
-    try:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        return None
-    return plt
-
-
-def png_base64(fig) -> str:
-    """The figure as a base64 PNG for a data: URL."""
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=90, bbox_inches="tight")
-    return base64.b64encode(buf.getvalue()).decode("ascii")
 
 
 # ----------------------------------------------------------------------------------------
@@ -142,9 +123,9 @@ def _cell(v) -> str:
     return str(v) if isinstance(v, Html) else _fmt(v)
 
 
-def _figure(caption: str, data: str) -> str:
-    return (f"<figure><img alt='{_esc(caption)}' src='data:image/png;base64,{data}'>"
-            f"<figcaption>{_esc(caption)}</figcaption></figure>")
+def _figure(caption: str, svg: str) -> str:
+    """A figure: the chart (inline SVG) and its caption."""
+    return f"<figure>{svg}<figcaption>{_esc(caption)}</figcaption></figure>"
 
 
 # ----------------------------------------------------------------------------------------
@@ -208,7 +189,8 @@ def _bars_width(x) -> float:
     return 0.8 * float(np.min(np.diff(x))) if x.size > 1 else 0.4
 
 
-def _conditional_figure(plt, x, n, series, *, ylabel: str, title: str, cut=None, hline=None, ylim=None):
+def _conditional_figure(x, n, series, *, ylabel: str, title: str, description: str, cut=None, hline=None,
+                        ylim=None) -> str:
     """Lines over true ability with a panel of examinees per bin beneath; thin bins hollow.
 
     ``series``: (label, values, marker, colour) tuples; ``cut``: (theta, label) marked by
@@ -217,80 +199,59 @@ def _conditional_figure(plt, x, n, series, *, ylabel: str, title: str, cut=None,
     x = np.asarray(x, dtype=float)
     n = np.asarray(n, dtype=float)
     thin = n < THIN_BIN
-    fig, (ax, axn) = plt.subplots(2, 1, figsize=(7.2, 4.8), sharex=True,
-                                  gridspec_kw={"height_ratios": [3, 1], "hspace": 0.08})
-    for label, values, marker, colour in series:
-        v = np.asarray(values, dtype=float)
-        ax.plot(x, v, "-", color=colour, lw=1.2, label=label)
-        if marker:
-            ax.plot(x[~thin], v[~thin], ls="none", marker=marker, color=colour)
-            ax.plot(x[thin], v[thin], ls="none", marker=marker, color=colour, mfc="white")
+    chart = Chart("true ability (theta)", title=title)
+    top = chart.panel(230, ylabel, ylim=ylim)
+    counts = chart.panel(70, "examinees", integer_y=True)
     if hline is not None:
-        ax.axhline(hline, color="grey", lw=0.6)
+        top.hline(hline, colour="#888888", width=0.8)
+    for label, values, marker, colour in series:
+        top.line(x, values, colour=colour, label=label, marker=marker or None, hollow=thin)
     if cut is not None:
-        for a in (ax, axn):
-            a.axvline(cut[0], color=_TARGET_COLOUR, ls="--", lw=1)
-        ax.plot([], [], color=_TARGET_COLOUR, ls="--", lw=1, label=cut[1])
+        top.vline(cut[0], colour=_TARGET_COLOUR, dash="5 3", width=1.2, label=cut[1])
+        counts.vline(cut[0], colour=_TARGET_COLOUR, dash="5 3", width=1.2)
     if thin.any():
-        ax.plot([], [], "o", color="grey", mfc="white", ls="none", label=f"hollow: fewer than {THIN_BIN} examinees")
-    if ylim is not None:
-        ax.set_ylim(*ylim)
-    ax.set_ylabel(ylabel)
-    ax.set_title(title, fontsize=10)
-    ax.legend(fontsize=8, loc="best")
-    ax.grid(alpha=0.25)
-    axn.bar(x, n, width=_bars_width(x), color=np.where(thin, "#e69500", "#999999"))
-    axn.set_ylabel("examinees")
-    axn.set_xlabel("true ability (theta)")
-    data = png_base64(fig)
-    plt.close(fig)
-    return data
+        top.legend_entry(f"hollow: fewer than {THIN_BIN} examinees", colour="#888888", hollow=True)
+    counts.bars(x, n, width=_bars_width(x), colours=np.where(thin, "#e69500", "#999999"))
+    return chart.svg(description)
 
 
-def _length_histogram(plt, n_scored, *, min_items: int, max_items: int) -> str:
+def _length_histogram(n_scored, *, min_items: int, max_items: int, description: str) -> str:
     n_scored = np.asarray(n_scored, dtype=int)
-    fig, ax = plt.subplots(figsize=(7.2, 3.4))
     lo, hi = (int(n_scored.min()), int(n_scored.max())) if n_scored.size else (0, 1)
-    edges = np.arange(lo, hi + 2) - 0.5
-    ax.hist(n_scored, bins=edges, color=_BLUE)
-    for value, label in ((min_items, f"minimum ({min_items})"), (max_items, f"maximum ({max_items})")):
-        ax.axvline(value, color="grey", ls=":", lw=1)
-        ax.annotate(label, (value, 1), xycoords=("data", "axes fraction"), fontsize=8, ha="center", va="bottom")
-    ax.set_xlabel("scored items per test")
-    ax.set_ylabel("examinees")
-    data = png_base64(fig)
-    plt.close(fig)
-    return data
+    values = np.arange(lo, hi + 1)
+    counts = np.bincount(n_scored - lo, minlength=values.size) if n_scored.size else np.zeros(values.size)
+    chart = Chart("scored items per test", integer_x=True,
+                  xlim=(min(lo, min_items) - 1, max(hi, max_items) + 1))
+    panel = chart.panel(220, "examinees", integer_y=True)
+    panel.bars(values, counts, width=1.0, colours=_BLUE)
+    bounds = ({min_items: f"minimum and maximum ({min_items})"} if min_items == max_items
+              else {min_items: f"minimum ({min_items})", max_items: f"maximum ({max_items})"})
+    for value, label in bounds.items():
+        panel.vline(value, colour="#555555", dash="2 3", note=label)
+    return chart.svg(description)
 
 
-def _exposure_figure(plt, rates, target: float) -> str:
+def _exposure_figure(rates, target: float, description: str) -> str:
     """Operational items' exposure rates, most exposed first, against the target."""
     r = np.sort(np.asarray(rates, dtype=float))[::-1]
-    above = r > target
-    fig, ax = plt.subplots(figsize=(7.2, 3.8))
-    # bars of width 1 side by side, drawn as one filled step outline per colour (one patch
-    # each: a bank of thousands of items would otherwise cost a patch per item); the rates
-    # are sorted, so the items above the target come first
-    k = int(above.sum())
+    k = int(np.sum(r > target))
+    # bars of width 1 side by side, drawn as one filled step outline per colour (one shape
+    # each, however large the bank); the rates are sorted, so the items above the target
+    # come first
     edges = np.arange(r.size + 1) + 0.5
-    ax.stairs(r[:k], edges[: k + 1], fill=True, color=_TARGET_COLOUR, label=f"above the target ({k} items)")
-    ax.stairs(r[k:], edges[k:], fill=True, color=_BLUE, label=f"at or below ({r.size - k} items)")
-    ax.axhline(target, color="black", ls="--", lw=1, label=f"exposure target {target:g}")
+    chart = Chart("operational items, most exposed first", xlim=(0, r.size + 1))
+    panel = chart.panel(260, "exposure rate (share of examinees)",
+                        ylim=(0, max(1e-3, float(r.max()) if r.size else 1.0, target) * 1.08))
+    panel.filled_steps(edges[: k + 1], r[:k], colour=_TARGET_COLOUR, label=f"above the target ({k} items)")
+    panel.filled_steps(edges[k:], r[k:], colour=_BLUE, label=f"at or below ({r.size - k} items)")
+    panel.hline(target, colour="#000000", dash="5 3", width=1.2, label=f"exposure target {target:g}")
     unused = int(np.sum(r == 0))
-    if unused:
-        ax.axvspan(r.size - unused + 0.5, r.size + 0.5, color="#eeeeee", zorder=0,
-                   label=f"never given ({unused} items)")
-    ax.set_xlim(0, r.size + 1)
-    ax.set_ylim(0, max(1e-3, float(r.max()) if r.size else 1.0, target) * 1.08)
-    ax.set_xlabel("operational items, most exposed first")
-    ax.set_ylabel("exposure rate (share of examinees)")
-    ax.legend(fontsize=8, loc="upper right")
-    data = png_base64(fig)
-    plt.close(fig)
-    return data
+    if unused:  # a band beneath the bars
+        panel.vspan(r.size - unused + 0.5, r.size + 0.5, colour="#eeeeee", label=f"never given ({unused} items)")
+    return chart.svg(description)
 
 
-def _information_figure(plt, bank) -> str:
+def _information_figure(bank, description: str) -> str:
     from ..irt import models
 
     operational = np.flatnonzero(np.asarray(bank.status) == "operational")
@@ -299,14 +260,9 @@ def _information_figure(plt, bank) -> str:
     for start in range(0, operational.size, 4096):  # bounded temporaries for large banks
         chunk = bank.params.take(operational[start : start + 4096])
         info += models.information(*models.outer(chunk, grid)).sum(axis=0)
-    fig, ax = plt.subplots(figsize=(7.2, 3.4))
-    ax.plot(grid, info, color="black")
-    ax.set_xlabel("ability (theta)")
-    ax.set_ylabel("information of all operational items")
-    ax.grid(alpha=0.25)
-    data = png_base64(fig)
-    plt.close(fig)
-    return data
+    chart = Chart("ability (theta)")
+    chart.panel(250, "information of all operational items").line(grid, info, colour="#000000", width=1.5)
+    return chart.svg(description)
 
 
 # ----------------------------------------------------------------------------------------
@@ -403,7 +359,7 @@ def _headline_section(summary) -> list[str]:
             "<p class='note'>Terms are explained in the <a href='#glossary'>glossary</a> at the end.</p>"]
 
 
-def _length_section(plt, result, summary) -> list[str]:
+def _length_section(result, summary) -> list[str]:
     length = summary["length"]
     design = result.design
     rows = [
@@ -425,17 +381,16 @@ def _length_section(plt, result, summary) -> list[str]:
              table_html(reasons, ["reason", "meaning", "examinees", "share"], text=("meaning",),
                         labels={"reason": "Stop reason", "meaning": "Meaning", "examinees": "Examinees",
                                 "share": "Share"})]
-    if plt is not None:
-        parts.append(_figure("Distribution of the test length (scored items)",
-                             _length_histogram(plt, result.n_scored, min_items=design.stopping.min_items,
-                                               max_items=design.stopping.max_items)))
-        cond = [r for r in summary["conditional"] if r["theta"] is not None]
-        if cond:
-            parts.append(_figure(
-                "Mean test length against true ability; the panel beneath counts the examinees per bin",
-                _conditional_figure(plt, [r["theta"] for r in cond], [r["n"] for r in cond],
-                                    [("mean scored items", [r["mean_length"] for r in cond], "o", _BLUE)],
-                                    ylabel="mean scored items", title="Test length by ability")))
+    caption = "Distribution of the test length (scored items)"
+    parts.append(_figure(caption, _length_histogram(result.n_scored, min_items=design.stopping.min_items,
+                                                    max_items=design.stopping.max_items, description=caption)))
+    cond = [r for r in summary["conditional"] if r["theta"] is not None]
+    if cond:
+        caption = "Mean test length against true ability; the panel beneath counts the examinees per bin"
+        parts.append(_figure(caption, _conditional_figure(
+            [r["theta"] for r in cond], [r["n"] for r in cond],
+            [("mean scored items", [r["mean_length"] for r in cond], "o", _BLUE)],
+            ylabel="mean scored items", title="Test length by ability", description=caption)))
     return parts
 
 
@@ -454,7 +409,7 @@ def _conditional_rows(summary) -> tuple[list[dict], list[str], dict]:
     return rows, ["bin", "n", "bias", "rmse", "mean_se", "rmse_to_mean_se", "mean_length", *acc], labels
 
 
-def _precision_section(plt, summary) -> list[str]:
+def _precision_section(summary) -> list[str]:
     p = summary["precision"]
     rows = [
         {"figure": "RMSE", "value": p["rmse"]}, {"figure": "Bias", "value": p["bias"]},
@@ -470,15 +425,15 @@ def _precision_section(plt, summary) -> list[str]:
         parts.append(f"<p class='note'>{p['n_no_estimate']} examinee(s) ended without a finite estimate and are "
                      "left out of these figures.</p>")
     cond = [r for r in summary["conditional"] if r["theta"] is not None]
-    if plt is not None and cond:
-        parts.append(_figure(
-            "RMSE, bias and mean reported SE against true ability; hollow points rest on fewer than "
-            f"{THIN_BIN} examinees (the panel beneath counts them)",
-            _conditional_figure(plt, [r["theta"] for r in cond], [r["n"] for r in cond],
-                                [("RMSE", [r["rmse"] for r in cond], "o", _BLUE),
-                                 ("bias", [r["bias"] for r in cond], "s", "#2e7d32"),
-                                 ("mean SE", [r["mean_se"] for r in cond], "^", "#e69500")],
-                                ylabel="theta units", title="Precision by ability", hline=0.0)))
+    if cond:
+        caption = ("RMSE, bias and mean reported SE against true ability; hollow points rest on fewer than "
+                   f"{THIN_BIN} examinees (the panel beneath counts them)")
+        parts.append(_figure(caption, _conditional_figure(
+            [r["theta"] for r in cond], [r["n"] for r in cond],
+            [("RMSE", [r["rmse"] for r in cond], "o", _BLUE),
+             ("bias", [r["bias"] for r in cond], "s", "#2e7d32"),
+             ("mean SE", [r["mean_se"] for r in cond], "^", "#e69500")],
+            ylabel="theta units", title="Precision by ability", hline=0.0, description=caption)))
     rows, cols, labels = _conditional_rows(summary)
     thin = sum(1 for r in rows if r["n"] < THIN_BIN)
     parts += ["<h3>By true ability</h3>",
@@ -576,7 +531,7 @@ def _exposure_story(result, summary, first_counts, follow_counts) -> list[str]:
     return out
 
 
-def _exposure_section(plt, result, summary, first_counts, follow_counts) -> list[str]:
+def _exposure_section(result, summary, first_counts, follow_counts) -> list[str]:
     expo = summary["exposure"]
     target = expo["exposure_target"]
     bank = result.bank
@@ -597,9 +552,8 @@ def _exposure_section(plt, result, summary, first_counts, follow_counts) -> list
              "pretest items are seeded at random).</p>",
              *_exposure_story(result, summary, first_counts, follow_counts),
              table_html(rows, ["figure", "value"], labels={"figure": "Figure", "value": "Value"})]
-    if plt is not None:
-        parts.append(_figure("Exposure rates of the operational items, most exposed first, against the target",
-                             _exposure_figure(plt, rates[operational], target)))
+    caption = "Exposure rates of the operational items, most exposed first, against the target"
+    parts.append(_figure(caption, _exposure_figure(rates[operational], target, caption)))
     over = np.flatnonzero(operational & (rates > target))
     over = over[np.argsort(-rates[over], kind="stable")]
     if over.size:
@@ -635,7 +589,7 @@ def _exposure_section(plt, result, summary, first_counts, follow_counts) -> list
     return parts
 
 
-def _classification_section(plt, result, summary) -> list[str]:
+def _classification_section(result, summary) -> list[str]:
     classes = summary.get("classification") or []
     if not classes:
         return []
@@ -653,24 +607,23 @@ def _classification_section(plt, result, summary) -> list[str]:
                         labels={"cut": "Cut score", "theta": "Cut (theta)", "accuracy": "Accuracy",
                                 "false_pass": "False pass: of all (of truly below)",
                                 "false_fail": "False fail: of all (of truly above)", "none": "Without a class"})]
-    if plt is not None:
-        for k, cut in enumerate(cuts):
-            curve = classification_curve(result.true_theta, result.at_or_above[:, k])
-            if not curve:
-                continue
-            x = [r["theta"] for r in curve]
-            share = [r["share_at_or_above"] for r in curve]
-            truth = [float(t >= cut.theta) for t in x]
-            acc = [s if t >= cut.theta else 1 - s for s, t in zip(share, x)]
-            parts.append(_figure(
-                f"Probability of being classified '{cut.above}' against true ability, with the accuracy in each "
-                f"bin; the dashed line marks the cut '{cut.name}' at theta {cut.theta:g}",
-                _conditional_figure(plt, x, [r["n"] for r in curve],
-                                    [(f"P(classified {cut.above})", share, "o", _BLUE),
-                                     ("accuracy", acc, "s", "#2e7d32"),
-                                     ("truly at or above the cut", truth, "", "#bbbbbb")],
-                                    ylabel="share of examinees", title=f"Classification at the cut '{cut.name}'",
-                                    cut=(cut.theta, f"cut {cut.name} (theta {cut.theta:g})"), ylim=(-0.03, 1.03))))
+    for k, cut in enumerate(cuts):
+        curve = classification_curve(result.true_theta, result.at_or_above[:, k])
+        if not curve:
+            continue
+        x = [r["theta"] for r in curve]
+        share = [r["share_at_or_above"] for r in curve]
+        truth = [float(t >= cut.theta) for t in x]
+        acc = [s if t >= cut.theta else 1 - s for s, t in zip(share, x)]
+        caption = (f"Probability of being classified '{cut.above}' against true ability, with the accuracy in each "
+                   f"bin; the dashed line marks the cut '{cut.name}' at theta {cut.theta:g}")
+        parts.append(_figure(caption, _conditional_figure(
+            x, [r["n"] for r in curve],
+            [(f"P(classified {cut.above})", share, "o", _BLUE),
+             ("accuracy", acc, "s", "#2e7d32"),
+             ("truly at or above the cut", truth, "", "#bbbbbb")],
+            ylabel="share of examinees", title=f"Classification at the cut '{cut.name}'",
+            cut=(cut.theta, f"cut {cut.name} (theta {cut.theta:g})"), ylim=(-0.03, 1.03), description=caption)))
     return parts
 
 
@@ -709,7 +662,6 @@ def simulation_report_html(result, summary: dict, *, title: str = "", first_coun
     """
     design = result.design
     title = title or f"Simulation of {design.source or 'a design'} on {result.bank.name or 'a bank'}"
-    plt = pyplot_or_none()
     nav = [("design", "Design"), ("glance", "At a glance"), ("length", "Length"), ("precision", "Precision"),
            ("exposure", "Exposure")]
     if summary.get("classification"):
@@ -722,22 +674,16 @@ def simulation_report_html(result, summary: dict, *, title: str = "", first_coun
              f"<style>{_STYLE}</style></head><body><h1>{_esc(title)}</h1>",
              f"<p class='note'>Simulation study of the design <code>{_esc(design.source or '(built in code)')}</code>. "
              "Sections: " + " &middot; ".join(f"<a href='#{a}'>{b}</a>" for a, b in nav) + "</p>"]
-    if plt is None:
-        parts.append("<p class='box warn'>Plots left out: matplotlib is not installed (install the 'plots' "
-                     "extra). Every table is here.</p>")
     parts += _design_section(result, summary, warnings)
     parts += _headline_section(summary)
-    parts += _length_section(plt, result, summary)
-    parts += _precision_section(plt, summary)
-    parts += _exposure_section(plt, result, summary, first_counts, follow_counts)
-    parts += _classification_section(plt, result, summary)
+    parts += _length_section(result, summary)
+    parts += _precision_section(summary)
+    parts += _exposure_section(result, summary, first_counts, follow_counts)
+    parts += _classification_section(result, summary)
     parts += _content_section(summary)
     parts.append("<h2 id='bank'>The bank</h2>")
-    if plt is not None:
-        parts.append(_figure("Test information of all operational items of the bank (the most any test could "
-                             "draw on at each ability)", _information_figure(plt, result.bank)))
-    else:
-        parts.append("<p class='note'>The information plot is left out without matplotlib.</p>")
+    caption = "Test information of all operational items of the bank (the most any test could draw on at each ability)"
+    parts.append(_figure(caption, _information_figure(result.bank, caption)))
     parts.append("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
                  + "".join(f"<dt>{_esc(a)}</dt><dd>{_esc(b)}</dd>" for a, b in GLOSSARY) + "</dl>")
     parts.append("</body></html>\n")
@@ -746,72 +692,6 @@ def simulation_report_html(result, summary: dict, *, title: str = "", first_coun
 
 # ----------------------------------------------------------------------------------------
 # the tuning page
-
-#: Offsets (points) tried for a point label, nearest first: right-up, right-down, left-up,
-#: left-down, above, below, right, left; then the same twice and three times as far.
-_LABEL_OFFSETS = tuple((dx * s, dy * s) for s in (1, 2, 3)
-                       for dx, dy in ((5, 4), (5, -4), (-5, 4), (-5, -4), (0, 7), (0, -7), (7, 0), (-7, 0)))
-
-
-def _overlap(a, b) -> float:
-    """Area shared by two display-space boxes (x0, y0, x1, y1)."""
-    w = min(a[2], b[2]) - max(a[0], b[0])
-    h = min(a[3], b[3]) - max(a[1], b[1])
-    return w * h if w > 0 and h > 0 else 0.0
-
-
-def place_labels(ax, x, y, texts, *, fontsize: float = 8, marker_radius: float = 5.0) -> list:
-    """Annotate points so that no label covers another label or a point.
-
-    Each label tries the offsets of :data:`_LABEL_OFFSETS` in turn and takes the first
-    whose box (in display space) overlaps no label placed before, no point's marker and
-    stays inside the axes; when none is free it takes the offset with the least overlap.
-
-    Parameters
-    ----------
-    x, y : float sequences (M,)
-        Data coordinates of the points.
-    texts : sequence of str (M,)
-    marker_radius : float
-        Radius of a point's marker in pixels (kept free of labels).
-
-    Returns
-    -------
-    list of matplotlib Text
-        The annotations, in the order of ``texts``.
-    """
-    fig = ax.figure
-    fig.canvas.draw()
-    renderer = fig.canvas.get_renderer()
-    points = ax.transData.transform(np.column_stack([np.asarray(x, float), np.asarray(y, float)]))
-    frame = ax.get_window_extent(renderer)
-    r = marker_radius
-    taken = [(px - r, py - r, px + r, py + r) for px, py in points]
-    placed = []
-    for xi, yi, text in zip(x, y, texts):
-        best = None
-        for dx, dy in _LABEL_OFFSETS:
-            ann = ax.annotate(text, (xi, yi), xytext=(dx, dy), textcoords="offset points", fontsize=fontsize,
-                              ha="left" if dx > 0 else "right" if dx < 0 else "center",
-                              va="bottom" if dy > 0 else "top" if dy < 0 else "center")
-            box = ann.get_window_extent(renderer)
-            ext = (box.x0, box.y0, box.x1, box.y1)
-            cost = sum(_overlap(ext, t) for t in taken)
-            outside = (ext[0] < frame.x0) or (ext[2] > frame.x1) or (ext[1] < frame.y0) or (ext[3] > frame.y1)
-            cost += 1e6 if outside else 0.0
-            if best is None or cost < best[0]:
-                if best is not None:
-                    best[1].remove()
-                best = (cost, ann, ext)
-            else:
-                ann.remove()
-            if cost == 0:
-                break
-        taken.append(best[2])
-        placed.append(best[1])
-    return placed
-
-
 
 #: Column headings of the tuning table.
 TUNING_LABELS = {
@@ -830,8 +710,8 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
     ----------
     rows : list of dict
         :func:`adaptive_engine.simulation.tuning.tune` rows.
-    figures : list of (caption, base64 PNG), a single base64 PNG, or None
-        The trade-off plots (None: matplotlib is not installed).
+    figures : list of (caption, SVG), optional
+        The trade-off plots (:func:`adaptive_engine.simulation.tuning.tradeoff_figures`).
     varied : list of str, optional
         The varied design keys (default: the keys before ``mean_length``).
     extra_columns : list of str, optional
@@ -840,8 +720,6 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
     note : str, optional
         A paragraph under the introduction (what the columns mean for this run).
     """
-    if isinstance(figures, str):
-        figures = [("Mean length against RMSE (frontier marked)", figures)]
     keys = varied
     if keys is None and rows:
         keys = []
@@ -885,13 +763,8 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
                         row_class=lambda r: "thin" if r["combination"] in dominated else None),
              "<p class='note'>Rows in grey italics are dominated: another combination is at least as good on every "
              "criterion. The numbers in the # column label the points of the plots.</p>"]
-    if figures:
-        for caption, data in figures:
-            parts.append(_figure(caption, data))
-    else:
-        parts.append("<p class='box warn'>Plots of the trade-offs (mean length against RMSE"
-                     + (" and against accuracy" if acc else "")
-                     + ") left out: matplotlib is not installed (install the 'plots' extra).</p>")
+    for caption, svg in figures or ():
+        parts.append(_figure(caption, svg))
     parts.append("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
                  + "".join(f"<dt>{_esc(a)}</dt><dd>{_esc(b)}</dd>" for a, b in GLOSSARY
                            if a in ("theta units", "RMSE", "bias", "RMSE / mean SE", "exposure rate",

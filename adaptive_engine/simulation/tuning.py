@@ -180,58 +180,57 @@ def mark_frontier(rows: list[dict]) -> list[dict]:
     return rows
 
 
-def _tradeoff_plot(plt, rows, key: str, ylabel: str, title: str) -> str:
+def _tradeoff_plot(rows, key: str, ylabel: str, title: str, description: str) -> str:
     """Mean length against one criterion; frontier points filled, numbered as in the table."""
-    from .html_report import place_labels, png_base64
+    from .svg_chart import Chart
 
     x = np.array([np.nan if r["mean_length"] is None else r["mean_length"] for r in rows], dtype=float)
     y = np.array([np.nan if r.get(key) is None else r[key] for r in rows], dtype=float)
     front = np.array([bool(r["frontier"]) for r in rows])
-    fig, ax = plt.subplots(figsize=(7.2, 4.4))
-    ax.scatter(x[front], y[front], s=40, color="crimson", zorder=3, label="on the frontier")
-    ax.scatter(x[~front], y[~front], s=40, facecolors="white", edgecolors="grey", zorder=3,
-               label="dominated by another combination")
-    ax.margins(0.12)
-    ax.set_xlabel("mean test length (scored items)")
-    ax.set_ylabel(ylabel)
-    ax.grid(alpha=0.25)
-    # the legend sits above the axes, where no point or label can be
-    ax.legend(fontsize=8, loc="lower left", bbox_to_anchor=(0.0, 1.01), ncol=2, frameon=False, title=title,
-              title_fontsize=9, alignment="left")
+    chart = Chart("mean test length (scored items)", title=title)
+    panel = chart.panel(260, ylabel)
+    # wide margins: room for the numbers beside the outermost points
+    ok = np.isfinite(x) & np.isfinite(y)
+    if ok.any():
+        for values, axis in ((x[ok], "x"), (y[ok], "y")):
+            lo, hi = float(values.min()), float(values.max())
+            pad = (hi - lo) * 0.15 or (abs(lo) * 0.05 or 0.5)
+            if axis == "x":
+                chart.xlim = (lo - pad, hi + pad)
+            else:
+                panel.ylim = (lo - pad, hi + pad)
+    panel.scatter(x[front], y[front], colour="crimson", label="on the frontier")
+    panel.scatter(x[~front], y[~front], colour="#888888", hollow=True, label="dominated by another combination")
     # combinations at the same spot share one label ("2, 5")
     groups: dict = {}
     for j, (a, b) in enumerate(zip(x, y), start=1):
         if np.isfinite(a) and np.isfinite(b):
             groups.setdefault((round(a, 6), round(b, 6)), []).append(j)
     if groups:
-        place_labels(ax, [k[0] for k in groups], [k[1] for k in groups],
-                     [", ".join(str(j) for j in v) for v in groups.values()], fontsize=9)
-    data = png_base64(fig)
-    plt.close(fig)
-    return data
+        panel.point_labels([k[0] for k in groups], [k[1] for k in groups],
+                           [", ".join(str(j) for j in v) for v in groups.values()])
+    return chart.svg(description)
 
 
-def tradeoff_figures(rows: list[dict], keys: list[str]) -> list | None:
-    """(caption, base64 PNG) per frontier criterion plotted against mean length; None without matplotlib.
+def tradeoff_figures(rows: list[dict], keys: list[str]) -> list:
+    """(caption, SVG) per frontier criterion plotted against mean length.
 
     One plot of RMSE, and one of classification accuracy per cut score when the design
     has cut scores: every criterion of the efficient frontier is shown.
     """
-    from .html_report import pyplot_or_none
-
-    plt = pyplot_or_none()
-    if plt is None or not rows:
-        return None
+    if not rows:
+        return []
     varied = ", ".join(keys)
-    out = [("Mean test length against RMSE, one point per combination (numbered as in the table); filled: on "
-            "the efficient frontier",
-            _tradeoff_plot(plt, rows, "rmse", "RMSE (theta units)", f"Length against precision ({varied})"))]
+    caption = ("Mean test length against RMSE, one point per combination (numbered as in the table); filled: on "
+               "the efficient frontier")
+    out = [(caption, _tradeoff_plot(rows, "rmse", "RMSE (theta units)", f"Length against precision ({varied})",
+                                    caption))]
     for key in [k for k in rows[0] if k.startswith("accuracy_")]:
         cut = key[len("accuracy_"):]
-        out.append((f"Mean test length against classification accuracy at the cut '{cut}'; filled: on the "
-                    "efficient frontier",
-                    _tradeoff_plot(plt, rows, key, f"classification accuracy ({cut})",
-                                   f"Length against accuracy ({varied})")))
+        caption = (f"Mean test length against classification accuracy at the cut '{cut}'; filled: on the "
+                   "efficient frontier")
+        out.append((caption, _tradeoff_plot(rows, key, f"classification accuracy ({cut})",
+                                            f"Length against accuracy ({varied})", caption)))
     return out
 
 
