@@ -286,17 +286,27 @@ def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:
 
 @attrs.frozen(eq=False)
 class FinalEstimates:
-    """Final scores of a batch, as arrays (R,): what :func:`finish` turns into reports."""
+    """Final scores of a batch, as arrays (R,): what :func:`finish` turns into reports.
+
+    ``status`` and ``lz_star`` are None when only the scores were asked for
+    (:func:`final_estimates` with ``scores_only``).
+    """
 
     theta: np.ndarray
     se: np.ndarray
-    status: np.ndarray
-    lz_star: np.ndarray
+    status: np.ndarray | None
+    lz_star: np.ndarray | None
     sprt_decision: np.ndarray | None  # +1 above / -1 below / 0 undecided; None without SPRT
 
 
-def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimates:
-    """Final estimate (the design's final method), person fit and SPRT decision for ``rows``."""
+def final_estimates(ctx: TestContext, state: KernelState, rows, *, scores_only: bool = False) -> FinalEstimates:
+    """Final estimate (the design's final method), person fit and SPRT decision for ``rows``.
+
+    With ``scores_only`` the estimate's status and person fit are left out (None): the
+    simulation keeps neither, and person fit costs more than the estimate itself.  The
+    estimates and SPRT decisions are the same either way.  (An ability vector always gets
+    its whole :class:`MultidimensionalFinalEstimates`.)
+    """
     if ctx.multidimensional is not None:
         from . import multidimensional_cycle
 
@@ -313,21 +323,24 @@ def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimate
         from ..irt.estimation import eap_status
 
         theta, se = posterior_mean_sd(state.log_post[rows], ctx.grid)
-        status = eap_status(ctx.bank, items, resp, theta, se, prior_mean=state.prior_mean[rows],
-                            prior_sd=state.prior_sd[rows])
+        status = None if scores_only else eap_status(ctx.bank, items, resp, theta, se,
+                                                     prior_mean=state.prior_mean[rows],
+                                                     prior_sd=state.prior_sd[rows])
     else:
         est = estimate(ctx.bank, items, resp, method, prior_mean=state.prior_mean[rows],
                        prior_sd=state.prior_sd[rows], bounds=(sc.grid_min, sc.grid_max), grid=ctx.grid)
-        theta, se, status = est.theta, est.se, est.status
-    fit = person_fit(ctx.bank.params, items, resp, theta, method=method,
-                     prior_mean=state.prior_mean[rows], prior_sd=state.prior_sd[rows])
+        theta, se, status = est.theta, est.se, (None if scores_only else est.status)
+    lz_star = None
+    if not scores_only:
+        lz_star = person_fit(ctx.bank.params, items, resp, theta, method=method,
+                             prior_mean=state.prior_mean[rows], prior_sd=state.prior_sd[rows]).lz_star
     sprt_dec = None
     if design.stopping.sprt is not None:
         s = design.stopping.sprt
         llr = stopping.sprt_log_likelihood_ratio(ctx.bank.params, items, resp, cut=s.cut,
                                                  indifference=s.indifference)
         sprt_dec = stopping.sprt_decision(llr, alpha=s.alpha, beta=s.beta)
-    return FinalEstimates(theta=theta, se=se, status=status, lz_star=fit.lz_star, sprt_decision=sprt_dec)
+    return FinalEstimates(theta=theta, se=se, status=status, lz_star=lz_star, sprt_decision=sprt_dec)
 
 
 def finish(ctx: TestContext, state: KernelState, rows, estimates: FinalEstimates | None = None) -> list[dict]:
@@ -339,7 +352,7 @@ def finish(ctx: TestContext, state: KernelState, rows, estimates: FinalEstimates
     from .final_report import final_reports
 
     rows = np.asarray(rows, dtype=np.int64)
-    est = final_estimates(ctx, state, rows) if estimates is None else estimates
+    est = final_estimates(ctx, state, rows) if estimates is None or estimates.lz_star is None else estimates
     return final_reports(
         ctx.design, theta=est.theta, se=est.se, status=est.status, n_scored=state.n_scored[rows],
         n_pretest=state.n_pretest[rows], stop_reason=state.stop_reason[rows],
