@@ -57,7 +57,13 @@ def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligi
     mean = sc.prior_mean if prior_mean is None else prior_mean
     sd = sc.prior_sd if prior_sd is None else prior_sd
     state = KernelState.empty(ctx, keys, mean, sd)
-    state.log_post[:] = normal_log_prior(ctx.grid, state.prior_mean, state.prior_sd).reshape(state.size, -1)
+    pm, ps = state.prior_mean, state.prior_sd
+    if state.size > 1 and np.all(pm == pm[0]) and np.all(ps == ps[0]):
+        # one prior for the whole batch: its row once, copied (each value is computed from
+        # its grid point, mean and SD alone, so the rows are the same either way)
+        state.log_post[:] = normal_log_prior(ctx.grid, pm[:1], ps[:1])
+    else:
+        state.log_post[:] = normal_log_prior(ctx.grid, pm, ps).reshape(state.size, -1)
     opening = ctx.design.opening
     if opening.random_theta is not None:
         lo, hi = opening.random_theta
@@ -147,24 +153,34 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
 
     The posterior takes the scored answers in :func:`_update_estimate`.
     """
-    item = state.pending[rows]
+    # the rows still testing in order (the whole batch, often) are read and written as a slice
+    r_n = rows.size
+    at = slice(int(rows[0]), int(rows[0]) + r_n) if r_n and rows[-1] - rows[0] == r_n - 1 and (
+        r_n == 1 or bool(np.all(rows[1:] > rows[:-1]))) else rows
+    item = state.pending[at].copy()  # copies: a slice reads views
     if np.any(item < 0):
         raise ValueError("an examinee without a pending item was given an answer")
-    pos = state.n_given[rows]
-    scored = ctx.operational[item]
-    all_scored = bool(scored.all())
-    _put(state.items, rows, pos, item)
-    _put(state.responses, rows, pos, responses)
-    _put(state.scored, rows, pos, scored)
-    state.n_given[rows] += 1
-    state.n_scored[rows] += scored
+    pos = state.n_given[at].copy()
+    all_scored = bool(ctx.operational.all()) or bool(ctx.operational[item].all())
+    scored = True if all_scored else ctx.operational[item]
+    if state.items.flags.c_contiguous and state.responses.flags.c_contiguous and state.scored.flags.c_contiguous:
+        flat = rows * state.items.shape[1] + pos  # one flat position for the three (B, L) arrays
+        state.items.reshape(-1)[flat] = item
+        state.responses.reshape(-1)[flat] = responses
+        state.scored.reshape(-1)[flat] = scored
+    else:
+        _put(state.items, rows, pos, item)
+        _put(state.responses, rows, pos, responses)
+        _put(state.scored, rows, pos, scored)
+    state.n_given[at] += 1
+    state.n_scored[at] += scored
     if not all_scored:
-        state.n_pretest[rows] += ~scored
+        state.n_pretest[at] += ~scored
     _put(state.used, rows, item, True)
-    state.pending[rows] = -1
+    state.pending[at] = -1
     sr = rows if all_scored else rows[scored]
     si = item if all_scored else item[scored]
-    state.area_counts[sr, ctx.area[si]] += 1
+    _add_one(state.area_counts, sr, ctx.area[si])
     if ctx.n_groups:
         groups = ctx.item_groups[item]  # (R, W)
         state.blocked_groups[rows[:, None], groups] = True
@@ -177,6 +193,15 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
             members = ctx.set_members[s[k]]
             state.current_set[r] = s[k] if (~state.used[r, members]).any() else -1
     return item if all_scored else np.where(scored, item, -1)
+
+
+def _add_one(array, rows, cols) -> None:
+    """``array[rows, cols] += 1`` for a 2-D array and distinct rows (a flat update when the
+    array is contiguous)."""
+    if array.flags.c_contiguous:
+        array.reshape(-1)[rows * array.shape[1] + cols] += 1
+    else:
+        array[rows, cols] += 1
 
 
 def _put(array, rows, cols, values) -> None:
