@@ -595,3 +595,17 @@ def test_exposure_calibrate_exit_codes_and_unreachable_target(tmp_path):
     assert r.exit_code == 0 and r.stderr == "" and "converged" in r.stdout
     r = runner.invoke(main, ["exposure", "calibrate", design, "--bank", bank, "--target", "1.5", "--out", str(out)])
     assert r.exit_code == 2 and "--target" in r.output
+
+
+def test_numbers_in_the_study_tables_are_written_as_their_rounded_repr():
+    # examinees.csv writes many numbers by "%.6f" without trailing zeros: the same text as
+    # repr(round(x, 6)) (Python's correctly rounded rounding), checked value by value, also
+    # on exact ties of the binary value (k / 128), tiny values and negative zero
+    from adaptive_engine.simulation.study import _nums
+
+    rng = np.random.default_rng(41)
+    values = np.concatenate([rng.normal(size=2000) * 3, rng.normal(size=500) * 1e-3, rng.uniform(-1e9, 1e9, 300),
+                             np.arange(-300, 300) / 128, [0.0, -0.0, 1e-4, -5e-7, 9.99999e-5, np.nan, np.inf, 3e15]])
+    for digits in (0, 2, 6):
+        want = ["" if not np.isfinite(x) else repr(round(x, digits)) for x in values.tolist()]
+        assert _nums(values, digits) == want
