@@ -144,8 +144,9 @@ def _apply_pick(ctx, state, rows, picked: Picked) -> None:
     state.pending[rows] = picked.item
     state.pending_value[rows] = picked.value
     state.pending_eligible[rows] = picked.eligible
-    for r, i in picked.withheld:
-        state.used[r, i] = True  # Sympson-Hetter: withheld for the rest of the test
+    if picked.withheld:  # Sympson-Hetter: withheld for the rest of the test
+        pairs = np.asarray(picked.withheld, dtype=np.int64).reshape(-1, 2)
+        state.mark_used(pairs[:, 0], pairs[:, 1])
 
 
 def _record(ctx, state, rows, responses) -> np.ndarray:
@@ -176,7 +177,7 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
     state.n_scored[at] += scored
     if not all_scored:
         state.n_pretest[at] += ~scored
-    _put(state.used, rows, item, True)
+    state.mark_used(rows, item, distinct_rows=True)
     state.pending[at] = -1
     sr = rows if all_scored else rows[scored]
     si = item if all_scored else item[scored]

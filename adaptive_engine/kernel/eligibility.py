@@ -60,7 +60,7 @@ def set_fits(ctx: TestContext, state: KernelState, rows: np.ndarray, open_area: 
 
 
 def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.ndarray,
-             *, open_area=None, fits=None, complete: bool = False) -> np.ndarray:
+             *, open_area=None, fits=None, free=None) -> np.ndarray:
     """Mask of eligible operational candidates.
 
     Parameters
@@ -69,24 +69,24 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
         Examinees (rows of ``state``).
     cand : int (R, K)
         Candidate items per examinee; -1 entries are never eligible.
-    complete : bool
-        The caller knows that ``cand`` has no -1 entry (they need no masking).
+    free : bool (R, K), optional
+        The candidates not used yet (False at -1 entries), when the caller has read them
+        off ``state.used_bits``; else they are read off ``state.used`` here.
 
     Returns
     -------
     bool (R, K)
     """
-    if complete:
-        c = cand
+    if free is not None and not (ctx.n_groups or ctx.balanced or len(ctx.set_members)) and ctx.operational.all():
+        return free  # no other rule
+    valid = cand >= 0
+    c = np.where(valid, cand, 0)
+    if free is None:
         # a flat take is several times faster than 2-D fancy indexing of used[rows, c]
         flat = c + (rows * ctx.n_items)[:, None]
-        ok = np.take(state.used.reshape(-1), flat)
-        np.logical_not(ok, out=ok)
-    else:
-        valid = cand >= 0
-        c = np.where(valid, cand, 0)
-        flat = c + (rows * ctx.n_items)[:, None]
         ok = valid & ~np.take(state.used.reshape(-1), flat)
+    else:
+        ok = free.copy()
     if not ctx.operational.all():
         ok &= ctx.operational[c]
     if ctx.n_groups:

@@ -333,12 +333,14 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     # reach_after[k, g, j]: the highest reach of the listed items from column j on
     reach_after = ctx.bank.cached(("ranked_reach_after", RANK_STEP, RANK_DEPTH, by_area),
                                   lambda: _reach_after(reach_tab))
-    # whether a table lists RANK_DEPTH items everywhere (no -1 padding to mask)
-    full = ctx.bank.cached(("ranked_tables_full", RANK_STEP, RANK_DEPTH, by_area),
-                           lambda: bool(np.all(items_tab >= 0)))
+    # each listed item's byte and bit in KernelState.used_bits (-1 entries: byte 0, no bit)
+    byte_tab, bit_tab = ctx.bank.cached(("ranked_used_bits", RANK_STEP, RANK_DEPTH, by_area),
+                                        lambda: _bit_places(items_tab))
     width = items_tab.shape[-1]
     if not by_area:  # no row restricted to an area: the table of all items, 1-D gathers
         cand = items_tab[-1].take(g, axis=0)  # (R, D)
+        byte = byte_tab[-1].take(g, axis=0)
+        bit = bit_tab[-1].take(g, axis=0)
         table_ceiling = ceil_tab[-1].take(g)
         # the flat position of each row's list in the tables (for single gathers later)
         at = g * (width + 1)
@@ -346,10 +348,20 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     else:
         which = np.where(restrict >= 0, restrict, items_tab.shape[0] - 1)  # the last table: all items
         cand = items_tab[which, g]
+        byte, bit = byte_tab[which, g], bit_tab[which, g]
         table_ceiling = ceil_tab[which, g]
         at = (which * grid.size + g) * (width + 1)
         after_flat = reach_after.reshape(-1)
-    ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits, complete=full)
+    # unused listed items, read off the packed mask (a byte per eight items: the rows'
+    # masks stay in cache, where the bool mask of a large batch does not)
+    byte += (rows * state.used_bits.shape[1])[:, None]
+    taken = np.take(state.used_bits.reshape(-1), byte)
+    taken &= bit
+    free = taken == 0
+    if not ctx.bank.cached(("ranked_tables_full", RANK_STEP, RANK_DEPTH, by_area),
+                           lambda: bool(np.all(items_tab >= 0))):
+        free &= cand >= 0  # padding
+    ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits, free=free)
     lottery = ctx.design.exposure.method is ExposureMethod.SYMPSON_HETTER
     n_exact = min(width, SHORTLIST_EXACT * (3 if lottery else 1))
     rule = pick_rule(ctx, state, rows)
@@ -371,6 +383,15 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
         return ProvenChoice(rows=positions, item=np.concatenate([q_item[q_proven], more.item]),
                             value=np.concatenate([q_value[q_proven], more.value]), withheld=more.withheld)
     return _proven_from_list(ctx, state, rows, cand, ok, theta, inside, table_ceiling, at, after_flat, n_exact)
+
+
+def _bit_places(items_tab) -> tuple[np.ndarray, np.ndarray]:
+    """Byte (int64) and bit mask (uint8) of each listed item in a row of
+    ``KernelState.used_bits``, shaped like ``items_tab``; byte 0 and no bit for -1 entries."""
+    listed = items_tab >= 0
+    byte = np.where(listed, items_tab >> 3, 0).astype(np.int64)
+    bit = np.where(listed, np.left_shift(1, items_tab & 7), 0).astype(np.uint8)
+    return byte, bit
 
 
 def _quick_best(bank, cand, ok, theta, inside, table_ceiling, at, after_flat):
