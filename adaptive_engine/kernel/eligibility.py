@@ -59,6 +59,12 @@ def set_fits(ctx: TestContext, state: KernelState, rows: np.ndarray, open_area: 
     return fits
 
 
+def only_used_rule(ctx: TestContext) -> bool:
+    """Whether an item is eligible exactly when it is not used yet (no pretest items, no
+    enemies, blueprint limits or item sets)."""
+    return not (ctx.n_groups or ctx.balanced or len(ctx.set_members)) and bool(ctx.operational.all())
+
+
 def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.ndarray,
              *, open_area=None, fits=None, free=None) -> np.ndarray:
     """Mask of eligible operational candidates.
@@ -77,8 +83,8 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
     -------
     bool (R, K)
     """
-    if free is not None and not (ctx.n_groups or ctx.balanced or len(ctx.set_members)) and ctx.operational.all():
-        return free  # no other rule
+    if free is not None and only_used_rule(ctx):
+        return free
     valid = cand >= 0
     c = np.where(valid, cand, 0)
     if free is None:

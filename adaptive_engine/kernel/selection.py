@@ -30,7 +30,7 @@ from ..design.types import BlueprintMethod, ExposureMethod, SelectionCriterion
 from ..irt import models
 from ..irt.posterior import posterior_weights
 from . import random_streams as randomness
-from .eligibility import area_limits, eligible, set_fits
+from .eligibility import area_limits, eligible, only_used_rule, set_fits
 from .prepared import NO_MAXIMUM, RANK_DEPTH, RANK_STEP, TestContext, ranked_tables
 from .state import KernelState
 
@@ -338,30 +338,42 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
                                         lambda: _bit_places(items_tab))
     width = items_tab.shape[-1]
     if not by_area:  # no row restricted to an area: the table of all items, 1-D gathers
-        cand = items_tab[-1].take(g, axis=0)  # (R, D)
-        byte = byte_tab[-1].take(g, axis=0)
+        byte = byte_tab[-1].take(g, axis=0)  # (R, D)
         bit = bit_tab[-1].take(g, axis=0)
         table_ceiling = ceil_tab[-1].take(g)
         # the flat position of each row's list in the tables (for single gathers later)
         at = g * (width + 1)
         after_flat = reach_after[-1].reshape(-1)
+        items_flat = items_tab[-1].reshape(-1)
+
+        def lists(sub):
+            return items_tab[-1].take(g[sub], axis=0)
     else:
         which = np.where(restrict >= 0, restrict, items_tab.shape[0] - 1)  # the last table: all items
-        cand = items_tab[which, g]
         byte, bit = byte_tab[which, g], bit_tab[which, g]
         table_ceiling = ceil_tab[which, g]
         at = (which * grid.size + g) * (width + 1)
         after_flat = reach_after.reshape(-1)
+        items_flat = items_tab.reshape(-1)
+
+        def lists(sub):
+            return items_tab[which[sub], g[sub]]
+    # the listed items' flat positions start at list_at (width per list)
+    list_at = at - (at // (width + 1))
     # unused listed items, read off the packed mask (a byte per eight items: the rows'
     # masks stay in cache, where the bool mask of a large batch does not)
     byte += (rows * state.used_bits.shape[1])[:, None]
     taken = np.take(state.used_bits.reshape(-1), byte)
     taken &= bit
-    free = taken == 0
-    if not ctx.bank.cached(("ranked_tables_full", RANK_STEP, RANK_DEPTH, by_area),
-                           lambda: bool(np.all(items_tab >= 0))):
-        free &= cand >= 0  # padding
-    ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits, free=free)
+    ok = taken == 0
+    full = ctx.bank.cached(("ranked_tables_full", RANK_STEP, RANK_DEPTH, by_area),
+                           lambda: bool(np.all(items_tab >= 0)))
+    # the candidate lists themselves only where eligibility needs more than the mask
+    cand = None if full and only_used_rule(ctx) else lists(slice(None))
+    if cand is not None:
+        if not full:
+            ok &= cand >= 0  # padding
+        ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits, free=ok)
     lottery = ctx.design.exposure.method is ExposureMethod.SYMPSON_HETTER
     n_exact = min(width, SHORTLIST_EXACT * (3 if lottery else 1))
     rule = pick_rule(ctx, state, rows)
@@ -369,20 +381,21 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     if QUICK_EXACT < n_exact and quick.any():
         every = bool(quick.all())
         sub = slice(None) if every else np.flatnonzero(quick)
-        q_item, q_value, q_proven = _quick_best(ctx.bank, cand[sub], ok[sub], theta[sub], inside[sub],
-                                                table_ceiling[sub], at[sub], after_flat)
+        q_item, q_value, q_proven = _quick_best(ctx.bank, items_flat, list_at[sub], ok[sub], theta[sub],
+                                                inside[sub], table_ceiling[sub], at[sub], after_flat)
         settled = np.flatnonzero(quick)[q_proven] if not every else np.flatnonzero(q_proven)
         if settled.size == rows.size:
             return ProvenChoice(rows=settled, item=q_item[q_proven], value=q_value[q_proven], withheld=[])
         others = np.ones(rows.size, dtype=bool)
         others[settled] = False
         o = np.flatnonzero(others)
-        more = _proven_from_list(ctx, state, rows[o], cand[o], ok[o], theta[o], inside[o], table_ceiling[o],
-                                 at[o], after_flat, n_exact)
+        more = _proven_from_list(ctx, state, rows[o], lists(o) if cand is None else cand[o], ok[o], theta[o],
+                                 inside[o], table_ceiling[o], at[o], after_flat, n_exact)
         positions = np.concatenate([settled, o[more.rows]])
         return ProvenChoice(rows=positions, item=np.concatenate([q_item[q_proven], more.item]),
                             value=np.concatenate([q_value[q_proven], more.value]), withheld=more.withheld)
-    return _proven_from_list(ctx, state, rows, cand, ok, theta, inside, table_ceiling, at, after_flat, n_exact)
+    return _proven_from_list(ctx, state, rows, lists(slice(None)) if cand is None else cand, ok, theta, inside,
+                             table_ceiling, at, after_flat, n_exact)
 
 
 def _bit_places(items_tab) -> tuple[np.ndarray, np.ndarray]:
@@ -394,23 +407,28 @@ def _bit_places(items_tab) -> tuple[np.ndarray, np.ndarray]:
     return byte, bit
 
 
-def _quick_best(bank, cand, ok, theta, inside, table_ceiling, at, after_flat):
+def _quick_best(bank, items_flat, list_at, ok, theta, inside, table_ceiling, at, after_flat):
     """The best of each row's first QUICK_EXACT eligible candidates, and whether it is proven.
 
-    Returns ``item`` and ``value`` (R,) and ``proven`` bool (R,).  A pick is proven when
-    its exact information reaches the ceiling of every item not evaluated (as in
-    :func:`_proven_from_list`); ties between the evaluated go to the first in grid order,
-    as :func:`_choose_ranked` breaks them.
+    ``items_flat[list_at[r] + j]`` is row r's j-th listed item.  Returns ``item`` and
+    ``value`` (R,) and ``proven`` bool (R,).  A pick is proven when its exact information
+    reaches the ceiling of every item not evaluated (as in :func:`_proven_from_list`);
+    ties between the evaluated go to the first in grid order, as :func:`_choose_ranked`
+    breaks them.
     """
-    r_n = cand.shape[0]
     first, _ = _first_eligible(ok, QUICK_EXACT, beyond=False)
     found = first >= 0
-    ex_cand = np.take_along_axis(cand, np.maximum(first, 0), axis=1)
+    ex_cand = items_flat.take(list_at[:, None] + np.maximum(first, 0))
     exact = _exact_information(bank, ex_cand, theta)
     exact[~found] = -np.inf
-    pos = np.argmax(exact, axis=1)
-    value = exact[np.arange(r_n), pos]
-    item = ex_cand[np.arange(r_n), pos]
+    if QUICK_EXACT == 2:  # argmax of two columns: the second only when strictly better
+        second = exact[:, 1] > exact[:, 0]
+        value = np.where(second, exact[:, 1], exact[:, 0])
+        item = np.where(second, ex_cand[:, 1], ex_cand[:, 0])
+    else:
+        pos = np.argmax(exact, axis=1)
+        value = np.take_along_axis(exact, pos[:, None], axis=1)[:, 0]
+        item = np.take_along_axis(ex_cand, pos[:, None], axis=1)[:, 0]
     last = first[:, -1]
     # the listed items after the last one evaluated (none when fewer were eligible)
     rest = np.where(last >= 0, after_flat.take(at + last + 1), -np.inf)
