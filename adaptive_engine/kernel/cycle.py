@@ -75,6 +75,27 @@ def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligi
     return first_pick(ctx, state, count_eligible=count_eligible)
 
 
+def draws_at_random(ctx: TestContext) -> bool:
+    """Whether any decision of the design draws from the examinee's random streams.
+
+    The draws are: a random starting ability, a random pick among the first items,
+    pretest seeding, randomesque, Sympson-Hetter and progressive exposure control, and
+    the random criterion.  A design without them (and an ability that is a number, not a
+    vector) decides everything from the answers alone: two examinees who gave the same
+    answers to the same items are then in the same state, row for row, apart from their
+    stream keys -- which the simulation uses to compute a shared history once.
+    """
+    design = ctx.design
+    return bool(
+        ctx.multidimensional is not None
+        or design.opening.random_theta is not None
+        or design.opening.first_item_candidates > 1
+        or design.blueprint.pretest_positions
+        or design.exposure.method is not ExposureMethod.NONE
+        or design.selection.criterion is SelectionCriterion.RANDOM
+    )
+
+
 def first_pick(ctx: TestContext, state: KernelState, *, count_eligible: bool = False) -> Step:
     """Hand every examinee of a new batch its first item (a test with none ends at once).
 

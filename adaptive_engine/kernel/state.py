@@ -119,6 +119,27 @@ class KernelState:
         cls = type(self)
         return cls(**{f.name: getattr(self, f.name).copy() for f in attrs.fields(cls)})
 
+    def with_capacity(self, capacity: int) -> "KernelState":
+        """A state of ``capacity`` rows (at least this one's) that begins with this state's
+        rows; the rows after them are blank, to be filled by :meth:`copy_rows` before use."""
+        cls = type(self)
+        fields = {}
+        for f in attrs.fields(cls):
+            value = getattr(self, f.name)
+            if value is not None:
+                grown = np.empty((capacity,) + value.shape[1:], dtype=value.dtype)
+                grown[: value.shape[0]] = value
+                value = grown
+            fields[f.name] = value
+        return cls(**fields)
+
+    def copy_rows(self, to, source) -> None:
+        """Make rows ``to`` copies of rows ``source`` (int arrays (R,)), every field."""
+        for f in attrs.fields(type(self)):
+            value = getattr(self, f.name)
+            if value is not None:
+                value[to] = value[source]
+
     def mark_used(self, rows, items, *, distinct_rows: bool = False) -> None:
         """Mark ``items`` (R,) used by ``rows`` (R,): in ``used`` and in ``used_bits``.
 
