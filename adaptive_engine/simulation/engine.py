@@ -475,13 +475,20 @@ def _split_histories(state, node_of, examinees, at_row, answers, n_rows):
     rank = np.cumsum(present) - 1  # pair index of each present key
     pair_row, pair_answer = pair // width, pair % width
     later = np.flatnonzero(pair_row[1:] == pair_row[:-1]) + 1  # not the first answer of its row
+    if later.size == 0:
+        node_of[examinees] = pair_row[rank[key]]
+        return pair_row, pair_answer, n_rows
     rows = pair_row.copy()
-    if later.size:
-        rows[later] = n_rows + np.arange(later.size)
-        state.copy_rows(rows[later], pair_row[later])
-        n_rows += later.size
+    rows[later] = n_rows + np.arange(later.size)
+    state.copy_rows(rows[later], pair_row[later])
+    n_rows += later.size
     node_of[examinees] = rows[rank[key]]
-    return rows, pair_answer, n_rows
+    # in ascending order (the kept rows ascend, the new ones come after them): the kernel
+    # reads and writes consecutive rows as slices
+    kept = np.ones(rows.size, dtype=bool)
+    kept[later] = False
+    return (np.concatenate([rows[kept], rows[later]]), np.concatenate([pair_answer[kept], pair_answer[later]]),
+            n_rows)
 
 
 def _count_withheld(offered, picked) -> None:
