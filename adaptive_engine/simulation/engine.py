@@ -19,6 +19,13 @@ depend on the chunk size or on how chunks are spread over workers:
 The true bank may differ from the operational bank the kernel selects and scores with
 (``true_bank``; or :func:`perturbed_bank`), which shows the effect of calibration error.
 
+A design that draws nothing at random (:func:`adaptive_engine.kernel.cycle.draws_at_random`:
+no random start, opening draw, pretest seeding, randomesque, Sympson-Hetter or progressive
+exposure control, random criterion) decides from the answers alone, so examinees who gave
+the same answers so far share one row of the kernel state, split when their answers part
+(:func:`run_chunk`): the early steps of a large chunk are computed once per history, not
+once per examinee, with every result the same.
+
 Two value objects carry a run's settings through every layer: the simulated examinees
 (:class:`~adaptive_engine.simulation.population.Population`: true abilities, seed, true
 bank) and how the run is carried out (:class:`Execution`: chunk size, workers, executor,
