@@ -176,9 +176,7 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
     The posterior takes the scored answers in :func:`_update_estimate`.
     """
     # the rows still testing in order (the whole batch, often) are read and written as a slice
-    r_n = rows.size
-    at = slice(int(rows[0]), int(rows[0]) + r_n) if r_n and rows[-1] - rows[0] == r_n - 1 and (
-        r_n == 1 or bool(np.all(rows[1:] > rows[:-1]))) else rows
+    at = _as_slice(rows)
     item = state.pending[at].copy()  # copies: a slice reads views
     if np.any(item < 0):
         raise ValueError("an examinee without a pending item was given an answer")
@@ -215,6 +213,15 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
             members = ctx.set_members[s[k]]
             state.current_set[r] = s[k] if (~state.used[r, members]).any() else -1
     return item if all_scored else np.where(scored, item, -1)
+
+
+def _as_slice(rows: np.ndarray):
+    """``rows`` as a slice when they are consecutive and ascending (indexing then gives
+    views instead of copies), else ``rows`` itself."""
+    r_n = rows.size
+    if r_n and rows[-1] - rows[0] == r_n - 1 and (r_n == 1 or bool(np.all(rows[1:] > rows[:-1]))):
+        return slice(int(rows[0]), int(rows[0]) + r_n)
+    return rows
 
 
 def _add_one(array, rows, cols) -> None:
@@ -362,14 +369,19 @@ def final_estimates(ctx: TestContext, state: KernelState, rows, *, scores_only: 
     from ..irt.person_fit import person_fit
 
     rows = np.asarray(rows, dtype=np.int64)
+    at = _as_slice(rows)  # a whole batch is read as views
     design = ctx.design
     sc = design.scoring
-    items, resp = state.scored_items(rows)
     method = design.final_method
+    # the answers, where anything but the EAP off the running posterior needs them
+    if scores_only and method is ScoringMethod.EAP and design.stopping.sprt is None:
+        items = resp = None
+    else:
+        items, resp = state.scored_items(at)
     if method is ScoringMethod.EAP:
         from ..irt.estimation import eap_status
 
-        theta, se = posterior_mean_sd(state.log_post[rows], ctx.grid)
+        theta, se = posterior_mean_sd(state.log_post[at], ctx.grid)
         status = None if scores_only else eap_status(ctx.bank, items, resp, theta, se,
                                                      prior_mean=state.prior_mean[rows],
                                                      prior_sd=state.prior_sd[rows])
