@@ -645,3 +645,14 @@ def test_examinees_with_the_same_answers_share_one_kernel_row_and_get_what_their
             assert x.dtype == y.dtype and np.array_equal(x, y, equal_nan=x.dtype.kind == "f"), field.name
         else:
             assert x == y, field.name
+
+
+def test_the_simulation_commands_ask_glibc_to_keep_freed_memory():
+    # glibc takes the mallopt settings (it returns 1 for each); other C libraries are left alone
+    import platform
+    import sys
+
+    from adaptive_engine.cli.simulate_commands import keep_freed_memory
+
+    on_glibc = sys.platform.startswith("linux") and platform.libc_ver()[0] == "glibc"
+    assert keep_freed_memory() is on_glibc
