@@ -341,8 +341,7 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
         byte = byte_tab[-1].take(g, axis=0)  # (R, D)
         bit = bit_tab[-1].take(g, axis=0)
         table_ceiling = ceil_tab[-1].take(g)
-        # the flat position of each row's list in the tables (for single gathers later)
-        at = g * (width + 1)
+        index = g  # of each row's list among the table's lists
         after_flat = reach_after[-1].reshape(-1)
         items_flat = items_tab[-1].reshape(-1)
 
@@ -352,14 +351,15 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
         which = np.where(restrict >= 0, restrict, items_tab.shape[0] - 1)  # the last table: all items
         byte, bit = byte_tab[which, g], bit_tab[which, g]
         table_ceiling = ceil_tab[which, g]
-        at = (which * grid.size + g) * (width + 1)
+        index = which * grid.size + g  # of each row's list among all the lists
         after_flat = reach_after.reshape(-1)
         items_flat = items_tab.reshape(-1)
 
         def lists(sub):
             return items_tab[which[sub], g[sub]]
-    # the listed items' flat positions start at list_at (width per list)
-    list_at = at - (at // (width + 1))
+    # where each row's list starts in the flat tables of items (D a list) and of reach_after
+    # (D + 1 a list): single gathers later take only the entries they need
+    list_at, at = index * width, index * (width + 1)
     # unused listed items, read off the packed mask (a byte per eight items: the rows'
     # masks stay in cache, where the bool mask of a large batch does not)
     byte += (rows * state.used_bits.shape[1])[:, None]
