@@ -92,9 +92,9 @@ def keep_freed_memory() -> bool:
 
     A simulation step of a large chunk makes numpy temporaries of a few MB.  By default
     glibc maps such blocks afresh and hands the freed top of its heap back to the system,
-    so every step faults the same pages in again: on the development machine that was a
-    third of the time per examinee-step of a 10,000-examinee run, for no saving (the
-    peak memory of the run is the same).  Raising ``M_MMAP_THRESHOLD`` and
+    so every step faults the same pages in again: on the development machine that was
+    10-27% of the time of a 10,000-examinee chunk, for no saving (the peak memory of the
+    run is the same).  Raising ``M_MMAP_THRESHOLD`` and
     ``M_TRIM_THRESHOLD`` keeps the blocks.  Only the commands that simulate call this:
     their process is a simulation run; a program that embeds the library decides for
     itself.  Returns whether the C library took the settings (False elsewhere than glibc).
