@@ -18,6 +18,11 @@ information, no exposure control.  In one run:
 Targets (issue 13): the loop at least 40x the marginal cost of ``simulate``; the fixed cost
 under 1 s.
 
+The design draws nothing at random, so ``simulate`` computes the early steps once per
+history of answers rather than once per examinee (examinees who answered alike share a
+kernel row); a design with exposure control or an opening draw runs a row per examinee.
+The two runs' difference is noisy on a shared machine: rerun and compare several.
+
 Run: ``python3 benchmarks/bench_batch_driver.py [--repeats 5] [--loop-examinees 300] [--profile]``.
 """
 

@@ -153,6 +153,45 @@ def test_shortlist_path_agrees_with_full_evaluation(monkeypatch):
     assert np.array_equal(fast.theta, slow.theta)
 
 
+@pytest.mark.parametrize("design", [
+    Design(stopping=Stopping(min_items=30, max_items=30)),
+    Design(blueprint=Blueprint(areas=(AreaRule(name="alpha", min=8, max=12),), enemies=True),
+           stopping=Stopping(min_items=25, max_items=25)),
+])
+def test_quick_first_stage_of_the_short_list_changes_no_pick(monkeypatch, design):
+    # Rows that take the best item outright first try QUICK_EXACT candidates; the same run
+    # without that stage (every row evaluates SHORTLIST_EXACT) and without any short list
+    # (every item evaluated) must give the same items, estimates and criterion values.
+    # Long tests on a small bank use up the top of the lists, so that the stages hand rows on.
+    bank = structured_bank(6, 90)
+    ctx = build_context(design, bank)
+    theta = np.random.default_rng(13).normal(size=70)
+    select = kernel.select
+
+    def run():
+        values = []
+
+        def recorded(*args, **kwargs):
+            picked = select(*args, **kwargs)
+            values.append(picked.value)
+            return picked
+
+        monkeypatch.setattr(kernel, "select", recorded)
+        state, _ = run_batch(ctx, theta, seed=11)
+        return state, np.concatenate(values)
+
+    quick, quick_values = run()
+    monkeypatch.setattr(selection, "QUICK_EXACT", selection.SHORTLIST_EXACT)
+    eight, eight_values = run()
+    monkeypatch.setattr(selection, "_shortlist_pick", lambda *a: selection.ProvenChoice(
+        rows=np.zeros(0, dtype=np.int64), item=np.zeros(0, dtype=np.int64), value=np.zeros(0), withheld=[]))
+    every, every_values = run()
+    for other, values in ((eight, eight_values), (every, every_values)):
+        assert np.array_equal(quick.items, other.items)
+        assert np.array_equal(quick.theta, other.theta) and np.array_equal(quick.se, other.se)
+        assert np.array_equal(quick_values, values, equal_nan=True)
+
+
 def test_rebuild_restores_the_same_state():
     bank = structured_bank(5, 100)
     ctx = build_context(DESIGNS["randomesque_blueprint"], bank)

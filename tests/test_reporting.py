@@ -19,7 +19,13 @@ from adaptive_engine.errors import AdaptiveEngineError, DesignError
 from adaptive_engine.irt import estimation
 from adaptive_engine.kernel import cycle as kernel
 from adaptive_engine.kernel import random_streams as randomness
-from adaptive_engine.kernel.final_report import final_report, final_reports, round_half_away, scaled_score
+from adaptive_engine.kernel.final_report import (
+    final_report,
+    final_reports,
+    round_half_away,
+    scaled_score,
+    scaled_scores,
+)
 from adaptive_engine.kernel.prepared import build_context
 from kernel_support import structured_bank
 
@@ -68,6 +74,41 @@ def test_ties_round_away_from_zero_where_builtin_round_does_not():
     assert round_half_away(1234.5, -1) == 1230
     assert round_half_away(1235.0, -1) == 1240
     assert round_half_away(float("nan"), 2) is None
+
+
+@pytest.mark.parametrize("scale", [
+    design.ScaleRule(slope=1.0, intercept=0.0, decimals=2),
+    design.ScaleRule(slope=100.0, intercept=500.0, decimals=0, min=200.5, max=800.0),
+    design.ScaleRule(slope=15.0, intercept=100.0, decimals=1, min=-0.0, max=140.0),
+    design.ScaleRule(slope=3.3, intercept=-1.0, decimals=6),
+])
+def test_scaled_scores_of_a_batch_round_the_printed_values_as_one_report_does(scale):
+    # Many values at once (the simulation's summaries): every value as the report rounds
+    # it, whether far from a tie, on one (x.xx5 values, exact halves) or clipped.
+    # Oracle: exact rational arithmetic (standard library fractions) on the printed value,
+    # as in the test above, then clipping to [min, max] and int() for whole-number scales.
+    rng = np.random.default_rng(31)
+    theta = np.concatenate([rng.normal(size=300) * 3, np.round(rng.normal(size=100), 2) + 0.005,
+                            (np.round(rng.normal(size=100) * 200) + 0.5 - scale.intercept) / scale.slope,
+                            [0.0, -0.0, -1e-9, np.nan, np.inf]])
+    got = scaled_scores(scale, theta)
+    for t, g in zip(theta.tolist(), got.tolist()):
+        raw = scale.intercept + scale.slope * t
+        if not math.isfinite(raw):
+            assert math.isnan(g)
+            continue
+        exact = abs(Fraction(repr(raw))) * Fraction(10) ** scale.decimals
+        want = math.copysign(1, raw) * math.floor(exact + Fraction(1, 2)) / Fraction(10) ** scale.decimals
+        want = float(want) if want != 0 else math.copysign(0.0, raw)
+        if scale.min is not None and scale.min > want:
+            want = scale.min
+        if scale.max is not None and scale.max < want:
+            want = scale.max
+        if scale.decimals <= 0:
+            want = float(int(want))
+        assert g == want and math.copysign(1, g) == math.copysign(1, want), (t, raw, g, want)
+    # and exactly what one report gives, value by value
+    assert [None if math.isnan(g) else g for g in got.tolist()] == [scaled_score(scale, t) for t in theta.tolist()]
 
 
 def test_scaled_score_is_rounded_then_clipped():

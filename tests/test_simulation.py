@@ -596,3 +596,64 @@ def test_exposure_calibrate_exit_codes_and_unreachable_target(tmp_path):
     assert r.exit_code == 0 and r.stderr == "" and "converged" in r.stdout
     r = runner.invoke(main, ["exposure", "calibrate", design, "--bank", bank, "--target", "1.5", "--out", str(out)])
     assert r.exit_code == 2 and "--target" in r.output
+
+
+def test_numbers_in_the_study_tables_are_written_as_their_rounded_repr():
+    # examinees.csv writes many numbers by "%.6f" without trailing zeros: the same text as
+    # repr(round(x, 6)) (Python's correctly rounded rounding), checked value by value, also
+    # on exact ties of the binary value (k / 128), tiny values and negative zero
+    from adaptive_engine.simulation.study import _nums
+
+    rng = np.random.default_rng(41)
+    values = np.concatenate([rng.normal(size=2000) * 3, rng.normal(size=500) * 1e-3, rng.uniform(-1e9, 1e9, 300),
+                             np.arange(-300, 300) / 128, [0.0, -0.0, 1e-4, -5e-7, 9.99999e-5, np.nan, np.inf, 3e15]])
+    for digits in (0, 2, 6):
+        want = ["" if not np.isfinite(x) else repr(round(x, digits)) for x in values.tolist()]
+        assert _nums(values, digits) == want
+
+
+@pytest.mark.parametrize("case", ["blueprint", "polytomous"])
+def test_examinees_with_the_same_answers_share_one_kernel_row_and_get_what_their_own_rows_give(monkeypatch, case):
+    # Without random draws, the driver keeps one kernel row per history of answers and
+    # splits it when answers differ; every result must be what a row per examinee gives.
+    import attrs
+
+    from adaptive_engine.design import AreaRule, Blueprint
+    from adaptive_engine.kernel import cycle
+    from adaptive_engine.kernel.prepared import build_context
+    from kernel_support import structured_bank
+
+    if case == "blueprint":
+        bank = structured_bank(7, 90, pretest=0)
+        design = Design(blueprint=Blueprint(areas=(AreaRule(name="alpha", min=3, max=6),), enemies=True,
+                                            item_sets=True),
+                        stopping=Stopping(min_items=6, max_items=18, se=0.3))
+        true_bank = simulation.perturbed_bank(bank, sd_b=0.2, seed=3)
+    else:
+        bank, true_bank = structured_bank(8, 60, polytomous=12, pretest=0, sets=False), None
+        design = Design(stopping=Stopping(min_items=10, max_items=10))
+    ctx = build_context(design, bank)
+    assert not cycle.draws_at_random(ctx)
+    theta = np.random.default_rng(17).normal(size=300)
+    kwargs = dict(seed=5, start=40, true_theta=theta, true_bank=true_bank, count_by_stratum=(-0.5, 0.5))
+    shared = simulation.run_chunk(ctx, **kwargs)
+    monkeypatch.setattr(cycle, "draws_at_random", lambda ctx: True)
+    own = simulation.run_chunk(ctx, **kwargs)
+    assert len(np.unique(shared.items[:, :3], axis=0)) < 9  # the first answers were shared
+    for field in attrs.fields(simulation.ChunkResult):
+        x, y = getattr(shared, field.name), getattr(own, field.name)
+        if isinstance(x, np.ndarray):
+            assert x.dtype == y.dtype and np.array_equal(x, y, equal_nan=x.dtype.kind == "f"), field.name
+        else:
+            assert x == y, field.name
+
+
+def test_the_simulation_commands_ask_glibc_to_keep_freed_memory():
+    # glibc takes the mallopt settings (it returns 1 for each); other C libraries are left alone
+    import platform
+    import sys
+
+    from adaptive_engine.cli.simulate_commands import keep_freed_memory
+
+    on_glibc = sys.platform.startswith("linux") and platform.libc_ver()[0] == "glibc"
+    assert keep_freed_memory() is on_glibc

@@ -57,7 +57,13 @@ def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligi
     mean = sc.prior_mean if prior_mean is None else prior_mean
     sd = sc.prior_sd if prior_sd is None else prior_sd
     state = KernelState.empty(ctx, keys, mean, sd)
-    state.log_post[:] = normal_log_prior(ctx.grid, state.prior_mean, state.prior_sd).reshape(state.size, -1)
+    pm, ps = state.prior_mean, state.prior_sd
+    if state.size > 1 and np.all(pm == pm[0]) and np.all(ps == ps[0]):
+        # one prior for the whole batch: its row once, copied (each value is computed from
+        # its grid point, mean and SD alone, so the rows are the same either way)
+        state.log_post[:] = normal_log_prior(ctx.grid, pm[:1], ps[:1])
+    else:
+        state.log_post[:] = normal_log_prior(ctx.grid, pm, ps).reshape(state.size, -1)
     opening = ctx.design.opening
     if opening.random_theta is not None:
         lo, hi = opening.random_theta
@@ -67,6 +73,27 @@ def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligi
         state.theta[:] = opening.theta
     state.se[:] = state.prior_sd
     return first_pick(ctx, state, count_eligible=count_eligible)
+
+
+def draws_at_random(ctx: TestContext) -> bool:
+    """Whether any decision of the design draws from the examinee's random streams.
+
+    The draws are: a random starting ability, a random pick among the first items,
+    pretest seeding, randomesque, Sympson-Hetter and progressive exposure control, and
+    the random criterion.  A design without them (and an ability that is a number, not a
+    vector) decides everything from the answers alone: two examinees who gave the same
+    answers to the same items are then in the same state, row for row, apart from their
+    stream keys -- which the simulation uses to compute a shared history once.
+    """
+    design = ctx.design
+    return bool(
+        ctx.multidimensional is not None
+        or design.opening.random_theta is not None
+        or design.opening.first_item_candidates > 1
+        or design.blueprint.pretest_positions
+        or design.exposure.method is not ExposureMethod.NONE
+        or design.selection.criterion is SelectionCriterion.RANDOM
+    )
 
 
 def first_pick(ctx: TestContext, state: KernelState, *, count_eligible: bool = False) -> Step:
@@ -138,8 +165,9 @@ def _apply_pick(ctx, state, rows, picked: Picked) -> None:
     state.pending[rows] = picked.item
     state.pending_value[rows] = picked.value
     state.pending_eligible[rows] = picked.eligible
-    for r, i in picked.withheld:
-        state.used[r, i] = True  # Sympson-Hetter: withheld for the rest of the test
+    if picked.withheld:  # Sympson-Hetter: withheld for the rest of the test
+        pairs = np.asarray(picked.withheld, dtype=np.int64).reshape(-1, 2)
+        state.mark_used(pairs[:, 0], pairs[:, 1])
 
 
 def _record(ctx, state, rows, responses) -> np.ndarray:
@@ -147,24 +175,32 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
 
     The posterior takes the scored answers in :func:`_update_estimate`.
     """
-    item = state.pending[rows]
+    # the rows still testing in order (the whole batch, often) are read and written as a slice
+    at = _as_slice(rows)
+    item = state.pending[at].copy()  # copies: a slice reads views
     if np.any(item < 0):
         raise ValueError("an examinee without a pending item was given an answer")
-    pos = state.n_given[rows]
-    scored = ctx.operational[item]
-    all_scored = bool(scored.all())
-    _put(state.items, rows, pos, item)
-    _put(state.responses, rows, pos, responses)
-    _put(state.scored, rows, pos, scored)
-    state.n_given[rows] += 1
-    state.n_scored[rows] += scored
+    pos = state.n_given[at].copy()
+    all_scored = bool(ctx.operational.all()) or bool(ctx.operational[item].all())
+    scored = True if all_scored else ctx.operational[item]
+    if state.items.flags.c_contiguous and state.responses.flags.c_contiguous and state.scored.flags.c_contiguous:
+        flat = rows * state.items.shape[1] + pos  # one flat position for the three (B, L) arrays
+        state.items.reshape(-1)[flat] = item
+        state.responses.reshape(-1)[flat] = responses
+        state.scored.reshape(-1)[flat] = scored
+    else:
+        _put(state.items, rows, pos, item)
+        _put(state.responses, rows, pos, responses)
+        _put(state.scored, rows, pos, scored)
+    state.n_given[at] += 1
+    state.n_scored[at] += scored
     if not all_scored:
-        state.n_pretest[rows] += ~scored
-    _put(state.used, rows, item, True)
-    state.pending[rows] = -1
+        state.n_pretest[at] += ~scored
+    state.mark_used(rows, item, distinct_rows=True)
+    state.pending[at] = -1
     sr = rows if all_scored else rows[scored]
     si = item if all_scored else item[scored]
-    state.area_counts[sr, ctx.area[si]] += 1
+    _add_one(state.area_counts, sr, ctx.area[si])
     if ctx.n_groups:
         groups = ctx.item_groups[item]  # (R, W)
         state.blocked_groups[rows[:, None], groups] = True
@@ -177,6 +213,24 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
             members = ctx.set_members[s[k]]
             state.current_set[r] = s[k] if (~state.used[r, members]).any() else -1
     return item if all_scored else np.where(scored, item, -1)
+
+
+def _as_slice(rows: np.ndarray):
+    """``rows`` as a slice when they are consecutive and ascending (indexing then gives
+    views instead of copies), else ``rows`` itself."""
+    r_n = rows.size
+    if r_n and rows[-1] - rows[0] == r_n - 1 and (r_n == 1 or bool(np.all(rows[1:] > rows[:-1]))):
+        return slice(int(rows[0]), int(rows[0]) + r_n)
+    return rows
+
+
+def _add_one(array, rows, cols) -> None:
+    """``array[rows, cols] += 1`` for a 2-D array and distinct rows (a flat update when the
+    array is contiguous)."""
+    if array.flags.c_contiguous:
+        array.reshape(-1)[rows * array.shape[1] + cols] += 1
+    else:
+        array[rows, cols] += 1
 
 
 def _put(array, rows, cols, values) -> None:
@@ -286,17 +340,27 @@ def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:
 
 @attrs.frozen(eq=False)
 class FinalEstimates:
-    """Final scores of a batch, as arrays (R,): what :func:`finish` turns into reports."""
+    """Final scores of a batch, as arrays (R,): what :func:`finish` turns into reports.
+
+    ``status`` and ``lz_star`` are None when only the scores were asked for
+    (:func:`final_estimates` with ``scores_only``).
+    """
 
     theta: np.ndarray
     se: np.ndarray
-    status: np.ndarray
-    lz_star: np.ndarray
+    status: np.ndarray | None
+    lz_star: np.ndarray | None
     sprt_decision: np.ndarray | None  # +1 above / -1 below / 0 undecided; None without SPRT
 
 
-def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimates:
-    """Final estimate (the design's final method), person fit and SPRT decision for ``rows``."""
+def final_estimates(ctx: TestContext, state: KernelState, rows, *, scores_only: bool = False) -> FinalEstimates:
+    """Final estimate (the design's final method), person fit and SPRT decision for ``rows``.
+
+    With ``scores_only`` the estimate's status and person fit are left out (None): the
+    simulation keeps neither, and person fit costs more than the estimate itself.  The
+    estimates and SPRT decisions are the same either way.  (An ability vector always gets
+    its whole :class:`MultidimensionalFinalEstimates`.)
+    """
     if ctx.multidimensional is not None:
         from . import multidimensional_cycle
 
@@ -305,29 +369,37 @@ def final_estimates(ctx: TestContext, state: KernelState, rows) -> FinalEstimate
     from ..irt.person_fit import person_fit
 
     rows = np.asarray(rows, dtype=np.int64)
+    at = _as_slice(rows)  # a whole batch is read as views
     design = ctx.design
     sc = design.scoring
-    items, resp = state.scored_items(rows)
     method = design.final_method
+    # the answers, where anything but the EAP off the running posterior needs them
+    if scores_only and method is ScoringMethod.EAP and design.stopping.sprt is None:
+        items = resp = None
+    else:
+        items, resp = state.scored_items(at)
     if method is ScoringMethod.EAP:
         from ..irt.estimation import eap_status
 
-        theta, se = posterior_mean_sd(state.log_post[rows], ctx.grid)
-        status = eap_status(ctx.bank, items, resp, theta, se, prior_mean=state.prior_mean[rows],
-                            prior_sd=state.prior_sd[rows])
+        theta, se = posterior_mean_sd(state.log_post[at], ctx.grid)
+        status = None if scores_only else eap_status(ctx.bank, items, resp, theta, se,
+                                                     prior_mean=state.prior_mean[rows],
+                                                     prior_sd=state.prior_sd[rows])
     else:
         est = estimate(ctx.bank, items, resp, method, prior_mean=state.prior_mean[rows],
                        prior_sd=state.prior_sd[rows], bounds=(sc.grid_min, sc.grid_max), grid=ctx.grid)
-        theta, se, status = est.theta, est.se, est.status
-    fit = person_fit(ctx.bank.params, items, resp, theta, method=method,
-                     prior_mean=state.prior_mean[rows], prior_sd=state.prior_sd[rows])
+        theta, se, status = est.theta, est.se, (None if scores_only else est.status)
+    lz_star = None
+    if not scores_only:
+        lz_star = person_fit(ctx.bank.params, items, resp, theta, method=method,
+                             prior_mean=state.prior_mean[rows], prior_sd=state.prior_sd[rows]).lz_star
     sprt_dec = None
     if design.stopping.sprt is not None:
         s = design.stopping.sprt
         llr = stopping.sprt_log_likelihood_ratio(ctx.bank.params, items, resp, cut=s.cut,
                                                  indifference=s.indifference)
         sprt_dec = stopping.sprt_decision(llr, alpha=s.alpha, beta=s.beta)
-    return FinalEstimates(theta=theta, se=se, status=status, lz_star=fit.lz_star, sprt_decision=sprt_dec)
+    return FinalEstimates(theta=theta, se=se, status=status, lz_star=lz_star, sprt_decision=sprt_dec)
 
 
 def finish(ctx: TestContext, state: KernelState, rows, estimates: FinalEstimates | None = None) -> list[dict]:
@@ -339,7 +411,7 @@ def finish(ctx: TestContext, state: KernelState, rows, estimates: FinalEstimates
     from .final_report import final_reports
 
     rows = np.asarray(rows, dtype=np.int64)
-    est = final_estimates(ctx, state, rows) if estimates is None else estimates
+    est = final_estimates(ctx, state, rows) if estimates is None or estimates.lz_star is None else estimates
     return final_reports(
         ctx.design, theta=est.theta, se=est.se, status=est.status, n_scored=state.n_scored[rows],
         n_pretest=state.n_pretest[rows], stop_reason=state.stop_reason[rows],

@@ -59,8 +59,14 @@ def set_fits(ctx: TestContext, state: KernelState, rows: np.ndarray, open_area: 
     return fits
 
 
+def only_used_rule(ctx: TestContext) -> bool:
+    """Whether an item is eligible exactly when it is not used yet (no pretest items, no
+    enemies, blueprint limits or item sets)."""
+    return not (ctx.n_groups or ctx.balanced or len(ctx.set_members)) and bool(ctx.operational.all())
+
+
 def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.ndarray,
-             *, open_area=None, fits=None) -> np.ndarray:
+             *, open_area=None, fits=None, free=None) -> np.ndarray:
     """Mask of eligible operational candidates.
 
     Parameters
@@ -69,16 +75,24 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
         Examinees (rows of ``state``).
     cand : int (R, K)
         Candidate items per examinee; -1 entries are never eligible.
+    free : bool (R, K), optional
+        The candidates not used yet (False at -1 entries), when the caller has read them
+        off ``state.used_bits``; else they are read off ``state.used`` here.
 
     Returns
     -------
     bool (R, K)
     """
+    if free is not None and only_used_rule(ctx):
+        return free
     valid = cand >= 0
     c = np.where(valid, cand, 0)
-    # a flat take is several times faster than 2-D fancy indexing of used[rows, c]
-    flat = c + (rows * ctx.n_items)[:, None]
-    ok = valid & ~np.take(state.used.reshape(-1), flat)
+    if free is None:
+        # a flat take is several times faster than 2-D fancy indexing of used[rows, c]
+        flat = c + (rows * ctx.n_items)[:, None]
+        ok = valid & ~np.take(state.used.reshape(-1), flat)
+    else:
+        ok = free.copy()
     if not ctx.operational.all():
         ok &= ctx.operational[c]
     if ctx.n_groups:

@@ -238,8 +238,42 @@ def scaled_scores(scale: ScaleRule, theta) -> np.ndarray:
     The same rounding and clipping as the report (:func:`scaled_score`), for simulation
     summaries that need arrays rather than one dict per examinee.
     """
-    raw = scale.intercept + scale.slope * np.asarray(theta, dtype=float)
-    return np.array([np.nan if v is None else float(v) for v in (_clip_scaled(scale, x) for x in raw)])
+    raw = np.asarray(scale.intercept + scale.slope * np.asarray(theta, dtype=float), dtype=float)
+    out, settled = _rounded_half_away(raw, scale.decimals)
+    if scale.min is not None:
+        out = np.where(scale.min > out, scale.min, out)  # as max(score, min) keeps the score on a tie
+    if scale.max is not None:
+        out = np.where(scale.max < out, scale.max, out)
+    if scale.decimals <= 0:
+        out = np.trunc(out) + 0.0  # int(score), and no negative zero
+    for i in np.flatnonzero(~settled):  # values on or near a tie: the report's own rounding
+        v = _clip_scaled(scale, float(raw.flat[i]))
+        out.flat[i] = np.nan if v is None else float(v)
+    return out
+
+
+def _rounded_half_away(values: np.ndarray, decimals: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`round_half_away` of many values at once, and where that is settled.
+
+    Returns the rounded values as floats (NaN where not finite) and a mask of the values
+    for which the floating-point computation provably agrees with rounding ``repr(value)``
+    (False: within 1e-12 relative of a tie, or too large; the caller rounds those one by
+    one).  ``y = |value| 10^d`` is within about two units in the last place of the printed
+    value times 10^d, so a fraction of ``y`` clear of 1/2 by far more than that rounds the
+    same way; ``k / 10^d`` with whole ``k < 2^53`` and ``d <= 22`` is correctly rounded, as
+    the conversion of the rounded decimal is.
+    """
+    out = np.full(values.shape, np.nan)
+    finite = np.isfinite(values)
+    if not 0 <= decimals <= 22:
+        return out, ~finite
+    power = 10.0**decimals
+    y = np.abs(np.where(finite, values, 0.0)) * power
+    whole = np.floor(y)
+    frac = y - whole  # exact
+    settled = ~finite | ((np.abs(frac - 0.5) > 1e-12 * (y + 1.0)) & (y < 2.0**50))
+    rounded = np.copysign((whole + (frac > 0.5)) / power, values)
+    return np.where(finite, rounded, np.nan), settled
 
 
 def classification_matrix(design: Design, theta, sprt_decision=None) -> np.ndarray:

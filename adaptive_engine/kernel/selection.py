@@ -30,12 +30,15 @@ from ..design.types import BlueprintMethod, ExposureMethod, SelectionCriterion
 from ..irt import models
 from ..irt.posterior import posterior_weights
 from . import random_streams as randomness
-from .eligibility import area_limits, eligible, set_fits
+from .eligibility import area_limits, eligible, only_used_rule, set_fits
 from .prepared import NO_MAXIMUM, RANK_DEPTH, RANK_STEP, TestContext, ranked_tables
 from .state import KernelState
 
 #: Exactly evaluated candidates per examinee on the short-list path.
 SHORTLIST_EXACT = 8
+#: Candidates evaluated first for rows that take the best item outright (no draw, no
+#: lottery): two settle about 19 rows in 20; the others go on to SHORTLIST_EXACT.
+QUICK_EXACT = 2
 #: Rows evaluated together on the general path (bounds memory at rows x items).
 ROW_CHUNK = 1024
 #: Items ranked per row on the general path before falling back to a full sort.
@@ -310,7 +313,15 @@ def _choose_ranked(ctx, state, rows, cand, values, ok) -> RankedChoice:
 
 
 def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice:
-    """Maximum-information pick from the ranked short lists; returns the rows it proved."""
+    """Maximum-information pick from the ranked short lists; returns the rows it proved.
+
+    Rows that take the best item outright (no draw, no lottery) first try the best of
+    their first QUICK_EXACT eligible candidates; the rows that proof leaves open, and all
+    others, evaluate SHORTLIST_EXACT candidates (three times as many under the
+    Sympson-Hetter lottery, which rejects many top items).  A proven pick is the most
+    informative eligible item, which every way of evaluating gives, so the first stage
+    changes no pick (it only saves exact evaluations).
+    """
     # the tables per area only when a row is restricted to one area (constrained CAT)
     by_area = bool(np.any(restrict >= 0))
     tables = ranked_tables(ctx.bank, by_area=by_area)
@@ -322,20 +333,113 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     # reach_after[k, g, j]: the highest reach of the listed items from column j on
     reach_after = ctx.bank.cached(("ranked_reach_after", RANK_STEP, RANK_DEPTH, by_area),
                                   lambda: _reach_after(reach_tab))
+    # each listed item's byte and bit in KernelState.used_bits (-1 entries: byte 0, no bit)
+    byte_tab, bit_tab = ctx.bank.cached(("ranked_used_bits", RANK_STEP, RANK_DEPTH, by_area),
+                                        lambda: _bit_places(items_tab))
+    width = items_tab.shape[-1]
     if not by_area:  # no row restricted to an area: the table of all items, 1-D gathers
-        cand = items_tab[-1].take(g, axis=0)  # (R, D)
+        byte = byte_tab[-1].take(g, axis=0)  # (R, D)
+        bit = bit_tab[-1].take(g, axis=0)
         table_ceiling = ceil_tab[-1].take(g)
-        after = reach_after[-1].take(g, axis=0)  # (R, D + 1)
+        index = g  # of each row's list among the table's lists
+        after_flat = reach_after[-1].reshape(-1)
+        items_flat = items_tab[-1].reshape(-1)
+
+        def lists(sub):
+            return items_tab[-1].take(g[sub], axis=0)
     else:
         which = np.where(restrict >= 0, restrict, items_tab.shape[0] - 1)  # the last table: all items
-        cand = items_tab[which, g]
+        byte, bit = byte_tab[which, g], bit_tab[which, g]
         table_ceiling = ceil_tab[which, g]
-        after = reach_after[which, g]
-    ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
-    # the first few eligible candidates (in grid order) get exact information; the
-    # Sympson-Hetter lottery rejects many top items, so it gets a longer list
+        index = which * grid.size + g  # of each row's list among all the lists
+        after_flat = reach_after.reshape(-1)
+        items_flat = items_tab.reshape(-1)
+
+        def lists(sub):
+            return items_tab[which[sub], g[sub]]
+    # where each row's list starts in the flat tables of items (D a list) and of reach_after
+    # (D + 1 a list): single gathers later take only the entries they need
+    list_at, at = index * width, index * (width + 1)
+    # unused listed items, read off the packed mask (a byte per eight items: the rows'
+    # masks stay in cache, where the bool mask of a large batch does not)
+    byte += (rows * state.used_bits.shape[1])[:, None]
+    taken = np.take(state.used_bits.reshape(-1), byte)
+    taken &= bit
+    ok = taken == 0
+    full = ctx.bank.cached(("ranked_tables_full", RANK_STEP, RANK_DEPTH, by_area),
+                           lambda: bool(np.all(items_tab >= 0)))
+    # the candidate lists themselves only where eligibility needs more than the mask
+    cand = None if full and only_used_rule(ctx) else lists(slice(None))
+    if cand is not None:
+        if not full:
+            ok &= cand >= 0  # padding
+        ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits, free=ok)
     lottery = ctx.design.exposure.method is ExposureMethod.SYMPSON_HETTER
-    n_exact = min(cand.shape[1], SHORTLIST_EXACT * (3 if lottery else 1))
+    n_exact = min(width, SHORTLIST_EXACT * (3 if lottery else 1))
+    rule = pick_rule(ctx, state, rows)
+    quick = ~(rule.draw & (rule.width > 1)) & ~rule.lottery
+    if QUICK_EXACT < n_exact and quick.any():
+        every = bool(quick.all())
+        sub = slice(None) if every else np.flatnonzero(quick)
+        q_item, q_value, q_proven = _quick_best(ctx.bank, items_flat, list_at[sub], ok[sub], theta[sub],
+                                                inside[sub], table_ceiling[sub], at[sub], after_flat)
+        settled = np.flatnonzero(quick)[q_proven] if not every else np.flatnonzero(q_proven)
+        if settled.size == rows.size:
+            return ProvenChoice(rows=settled, item=q_item[q_proven], value=q_value[q_proven], withheld=[])
+        others = np.ones(rows.size, dtype=bool)
+        others[settled] = False
+        o = np.flatnonzero(others)
+        more = _proven_from_list(ctx, state, rows[o], lists(o) if cand is None else cand[o], ok[o], theta[o],
+                                 inside[o], table_ceiling[o], at[o], after_flat, n_exact)
+        positions = np.concatenate([settled, o[more.rows]])
+        return ProvenChoice(rows=positions, item=np.concatenate([q_item[q_proven], more.item]),
+                            value=np.concatenate([q_value[q_proven], more.value]), withheld=more.withheld)
+    return _proven_from_list(ctx, state, rows, lists(slice(None)) if cand is None else cand, ok, theta, inside,
+                             table_ceiling, at, after_flat, n_exact)
+
+
+def _bit_places(items_tab) -> tuple[np.ndarray, np.ndarray]:
+    """Byte (int64) and bit mask (uint8) of each listed item in a row of
+    ``KernelState.used_bits``, shaped like ``items_tab``; byte 0 and no bit for -1 entries."""
+    listed = items_tab >= 0
+    byte = np.where(listed, items_tab >> 3, 0).astype(np.int64)
+    bit = np.where(listed, np.left_shift(1, items_tab & 7), 0).astype(np.uint8)
+    return byte, bit
+
+
+def _quick_best(bank, items_flat, list_at, ok, theta, inside, table_ceiling, at, after_flat):
+    """The best of each row's first QUICK_EXACT eligible candidates, and whether it is proven.
+
+    ``items_flat[list_at[r] + j]`` is row r's j-th listed item.  Returns ``item`` and
+    ``value`` (R,) and ``proven`` bool (R,).  A pick is proven when its exact information
+    reaches the ceiling of every item not evaluated (as in :func:`_proven_from_list`);
+    ties between the evaluated go to the first in grid order, as :func:`_choose_ranked`
+    breaks them.
+    """
+    first, _ = _first_eligible(ok, QUICK_EXACT, beyond=False)
+    found = first >= 0
+    ex_cand = items_flat.take(list_at[:, None] + np.maximum(first, 0))
+    exact = _exact_information(bank, ex_cand, theta)
+    exact[~found] = -np.inf
+    if QUICK_EXACT == 2:  # argmax of two columns: the second only when strictly better
+        second = exact[:, 1] > exact[:, 0]
+        value = np.where(second, exact[:, 1], exact[:, 0])
+        item = np.where(second, ex_cand[:, 1], ex_cand[:, 0])
+    else:
+        pos = np.argmax(exact, axis=1)
+        value = np.take_along_axis(exact, pos[:, None], axis=1)[:, 0]
+        item = np.take_along_axis(ex_cand, pos[:, None], axis=1)[:, 0]
+    last = first[:, -1]
+    # the listed items after the last one evaluated (none when fewer were eligible)
+    rest = np.where(last >= 0, after_flat.take(at + last + 1), -np.inf)
+    proven = inside & found[:, 0] & (value >= np.maximum(table_ceiling, rest))
+    return item, value, proven
+
+
+def _proven_from_list(ctx, state, rows, cand, ok, theta, inside, table_ceiling, at, after_flat,
+                      n_exact) -> ProvenChoice:
+    """The short-list choice of ``rows`` among their first ``n_exact`` eligible candidates
+    (by the exposure method), for the rows where it is proven (positions in ``rows``)."""
     # the first n_exact eligible columns of each row, in grid order (-1: none)
     first, _ = _first_eligible(ok, n_exact, beyond=False)
     ex_ok = first >= 0
@@ -345,7 +449,7 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     # last one evaluated (eligible or not: a bound a little above the eligible ones' own,
     # read off one table; none when fewer than n_exact were eligible)
     last = first[:, -1]
-    rest = np.where(last >= 0, np.take_along_axis(after, (last + 1)[:, None], axis=1)[:, 0], -np.inf)
+    rest = np.where(last >= 0, after_flat.take(at + last + 1), -np.inf)
     ceiling = np.maximum(table_ceiling, rest)
     ranked = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
     proven = inside & (ranked.depth <= n_exact) & (ranked.kth >= ceiling) & (ranked.item >= 0)

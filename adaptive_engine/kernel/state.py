@@ -31,6 +31,10 @@ class KernelState:
     n_given, n_scored, n_pretest : int (B,)
     used : bool (B, n_items)
         Items given (or withheld by Sympson-Hetter for the rest of the test).
+    used_bits : uint8 (B, ceil(n_items / 8))
+        ``used`` packed eight items to a byte (item i is bit ``i % 8`` of byte ``i // 8``):
+        the short list's eligibility reads it, an eighth of the memory of ``used``.  Both
+        are written together, by :meth:`mark_used` only.
     area_counts : int (B, A)
         Scored items given per content area.
     blocked_groups : bool (B, E + 1)
@@ -61,6 +65,7 @@ class KernelState:
     n_scored: np.ndarray
     n_pretest: np.ndarray
     used: np.ndarray
+    used_bits: np.ndarray
     area_counts: np.ndarray
     blocked_groups: np.ndarray
     current_set: np.ndarray
@@ -94,6 +99,7 @@ class KernelState:
             n_scored=np.zeros(b, dtype=np.int64),
             n_pretest=np.zeros(b, dtype=np.int64),
             used=np.zeros((b, ctx.n_items), dtype=bool),
+            used_bits=np.zeros((b, (ctx.n_items + 7) // 8), dtype=np.uint8),
             area_counts=np.zeros((b, ctx.n_areas), dtype=np.int64),
             blocked_groups=np.zeros((b, ctx.n_groups + 1), dtype=bool),
             current_set=np.full(b, -1, dtype=np.int64),
@@ -112,6 +118,48 @@ class KernelState:
         state adds fields of its own)."""
         cls = type(self)
         return cls(**{f.name: getattr(self, f.name).copy() for f in attrs.fields(cls)})
+
+    def with_capacity(self, capacity: int) -> "KernelState":
+        """A state of ``capacity`` rows (at least this one's) that begins with this state's
+        rows; the rows after them are blank, to be filled by :meth:`copy_rows` before use."""
+        cls = type(self)
+        fields = {}
+        for f in attrs.fields(cls):
+            value = getattr(self, f.name)
+            if value is not None:
+                grown = np.empty((capacity,) + value.shape[1:], dtype=value.dtype)
+                grown[: value.shape[0]] = value
+                value = grown
+            fields[f.name] = value
+        return cls(**fields)
+
+    def copy_rows(self, to, source) -> None:
+        """Make rows ``to`` copies of rows ``source`` (int arrays (R,)), every field."""
+        for f in attrs.fields(type(self)):
+            value = getattr(self, f.name)
+            if value is not None:
+                value[to] = value[source]
+
+    def mark_used(self, rows, items, *, distinct_rows: bool = False) -> None:
+        """Mark ``items`` (R,) used by ``rows`` (R,): in ``used`` and in ``used_bits``.
+
+        A row may come more than once (several items withheld for one examinee), unless
+        the caller says ``distinct_rows`` (then one flat update sets the bits).
+        """
+        rows = np.asarray(rows, dtype=np.int64)
+        items = np.asarray(items, dtype=np.int64)
+        if rows.size == 0:
+            return
+        used, packed = self.used, self.used_bits
+        if used.flags.c_contiguous:
+            used.reshape(-1)[rows * used.shape[1] + items] = True
+        else:
+            used[rows, items] = True
+        bits = np.left_shift(np.uint8(1), (items & 7).astype(np.uint8))
+        if distinct_rows and packed.flags.c_contiguous:
+            packed.reshape(-1)[rows * packed.shape[1] + (items >> 3)] |= bits
+        else:
+            np.bitwise_or.at(packed, (rows, items >> 3), bits)
 
     def scored_items(self, rows=None) -> tuple[np.ndarray, np.ndarray]:
         """Scored items and responses, (R, L) with -1 where pretest or not given."""
