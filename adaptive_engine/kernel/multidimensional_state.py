@@ -25,7 +25,7 @@ from ..bank.item_bank import ItemBank
 from ..design.types import Design, SelectionCriterion, Stopping
 from ..errors import AdaptiveEngineError
 from ..irt import multidimensional as md
-from ..irt.posterior import relative_density
+from ..irt.posterior import BLOCK_VALUES, relative_density
 from .state import KernelState
 
 
@@ -253,6 +253,16 @@ def posterior_moments(log_post: np.ndarray, points: np.ndarray) -> tuple[np.ndar
     a grid within +-20 that loses at most four of sixteen digits, as in the
     one-dimensional :func:`adaptive_engine.irt.posterior.posterior_mean_sd`).
     """
+    return _moments(log_post, points, _point_products(points))
+
+
+def _point_products(points: np.ndarray) -> dict:
+    """``x_i x_j`` of every grid point for i <= j, the weights of the second moments."""
+    k = points.shape[1]
+    return {(i, j): points[:, i] * points[:, j] for i in range(k) for j in range(i, k)}
+
+
+def _moments(log_post, points, products) -> tuple[np.ndarray, np.ndarray]:
     w = relative_density(log_post)
     total = np.sum(w, axis=1)
     k = points.shape[1]
@@ -260,9 +270,66 @@ def posterior_moments(log_post: np.ndarray, points: np.ndarray) -> tuple[np.ndar
     cov = np.empty((log_post.shape[0], k, k))
     for i in range(k):
         for j in range(i, k):
-            second = np.einsum("rg,g->r", w, points[:, i] * points[:, j]) / total
+            second = np.einsum("rg,g->r", w, products[i, j]) / total
             cov[:, i, j] = cov[:, j, i] = second - mean[:, i] * mean[:, j]
     return mean, cov
+
+
+def add_and_moments(log_post, rows, table=None, items=None, categories=None, points=None, *,
+                    moments: bool = True) -> tuple[np.ndarray, np.ndarray] | None:
+    """Add answers' log likelihoods to rows of a batch posterior, then their moments.
+
+    For each k, ``table[items[k], categories[k]]`` (a row on the product grid) is added to
+    ``log_post[rows[k]]`` in place (nothing where ``items[k] < 0``, nothing at all without
+    a ``table``); with ``moments`` the posterior mean and covariance of those rows are
+    returned as :func:`posterior_moments` gives them.  The rows go through in blocks that
+    fit in the processor's cache (as the one-dimensional
+    :func:`adaptive_engine.irt.posterior.add_and_summarize` does), each added to and read
+    while it is there: every value is the same, operation for operation, as adding for the
+    whole batch and then calling :func:`posterior_moments` on it (each row's sums run over
+    that row alone).
+
+    Parameters
+    ----------
+    log_post : float array (B, G), changed in place
+    rows : int array (R,)
+        Distinct rows of ``log_post``.
+    table : float array (n, C, G), optional
+        Log probability of each item's categories on the grid.
+    items, categories : int arrays (R,), optional
+    points : float array (G, K)
+        The grid (needed with ``moments``).
+
+    Returns
+    -------
+    (mean (R, K), covariance (R, K, K)), or None without ``moments``
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    r_n = rows.size
+    k = 0 if points is None else points.shape[1]
+    mean = np.empty((r_n, k))
+    cov = np.empty((r_n, k, k))
+    if r_n == 0:
+        return (mean, cov) if moments else None
+    products = _point_products(points) if moments else None
+    step = max(1, BLOCK_VALUES // max(1, log_post.shape[-1]))
+    # consecutive rows (a whole batch, or the rows still testing in order) are read as views
+    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    adding = table is not None
+    every = adding and bool(np.all(items >= 0))
+    for i in range(0, r_n, step):
+        j = min(i + step, r_n)
+        block = log_post[rows[i] : rows[i] + (j - i)] if consecutive else log_post[rows[i:j]]
+        if every:
+            block += table[items[i:j], categories[i:j]]
+        elif adding:
+            sel = np.flatnonzero(items[i:j] >= 0)
+            block[sel] += table[items[i:j][sel], categories[i:j][sel]]
+        if adding and not consecutive:
+            log_post[rows[i:j]] = block
+        if moments:
+            mean[i:j], cov[i:j] = _moments(block, points, products)
+    return (mean, cov) if moments else None
 
 
 @attrs.define(eq=False)
