@@ -73,16 +73,21 @@ def criterion_values(ctx, state, rows) -> np.ndarray:
     if crit is SelectionCriterion.MAX_FISHER_INFORMATION:
         return j * a[..., 0] * a[..., 0]
     w_inv = inverse(test_information(ctx, state, rows))  # (R, K, K)
-    # a' W^-1 a over the distinct products a_p a_q of each item (W^-1 is symmetric)
-    q = None
-    for p in range(tab.k):
-        for r in range(p, tab.k):
-            weight = w_inv[:, p, r] * (1.0 if p == r else 2.0)
-            term = weight[:, None] * (params.slopes[:, p] * params.slopes[:, r])[None, :]
-            q = term if q is None else q + term
-    w_inv = w_inv[:, None, :, :]
+    # a' W^-1 a over the distinct products a_p a_q of each item (W^-1 is symmetric), summed
+    # in place in the order (0, 0), (0, 1), .., (K-1, K-1)
+    q = np.empty_like(j)
+    term = np.empty_like(j)
+    for n_term, ((p, r), product) in enumerate(tab.slope_products.items()):
+        weight = w_inv[:, p, r] * (1.0 if p == r else 2.0)
+        if n_term == 0:
+            np.multiply(weight[:, None], product[None, :], out=q)
+        else:
+            np.multiply(weight[:, None], product[None, :], out=term)
+            q += term
     if crit is SelectionCriterion.D_OPTIMALITY:
-        return j * q  # det(W + I_j) / det(W) - 1: the same order as the determinant
+        j *= q  # det(W + I_j) / det(W) - 1: the same order as the determinant
+        return j
+    w_inv = w_inv[:, None, :, :]
     if crit is SelectionCriterion.A_OPTIMALITY:
         v = matrix_vector(w_inv, a)  # (R, n, K): W^-1 a
         return j * np.sum(v * v, axis=-1) / (1.0 + j * q)
@@ -100,7 +105,14 @@ def _slope_information(tab, theta) -> np.ndarray:
     params = tab.params
     if not tab.logistic_only:
         return md.slope_information(params, theta[:, None, :])
-    z = md.projection(params, theta[:, None, :])
+    # a . theta + intercept in place, the dimensions in order (as md.projection sums them)
+    slopes = params.slopes
+    z = np.multiply(theta[:, :1], slopes[None, :, 0])
+    if tab.k > 1:
+        term = np.empty_like(z)
+        for k in range(1, tab.k):
+            np.multiply(theta[:, k : k + 1], slopes[None, :, k], out=term)
+            z += term
     z += params.intercepts[:, 0]
     np.abs(z, out=z)
     z *= -params.scaling

@@ -59,6 +59,9 @@ class MultidimensionalTables:
         The log table with -inf (categories an item lacks) as 0, for Kullback-Leibler.
     logistic_only : bool
         Every item has two categories and no lower asymptote (an M2PL bank).
+    slope_products : dict
+        ``a_p a_q`` of every item (n,) for p <= q, keyed (p, q) in row-major order (the
+        terms of the quadratic forms ``a' M a`` of selection).
     """
 
     k: int
@@ -76,6 +79,7 @@ class MultidimensionalTables:
     stopping_rule: Stopping
     finite_log_table: np.ndarray | None
     logistic_only: bool = False
+    slope_products: dict = attrs.field(factory=dict)
 
 
 def multidimensional_parameters(bank: ItemBank) -> md.MultidimensionalParameters:
@@ -132,6 +136,7 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
         composite_weights=None if weights is None else np.asarray(weights, dtype=float),
         se_targets=targets, stopping_rule=rule, finite_log_table=finite,
         logistic_only=bool(np.all(params.n_categories == 2) and np.all(params.c == 0)),
+        slope_products={(p, q): params.slopes[:, p] * params.slopes[:, q] for p in range(k) for q in range(p, k)},
     )
 
 

@@ -430,9 +430,19 @@ def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:
     if n <= 2 * GENERAL_TOP:
         ranked = _choose_ranked(ctx, state, rows, cand, values, ok)
         return Choice(item=ranked.item, value=ranked.value, withheld=ranked.withheld)
+    masked = np.where(ok, values, -np.inf)
+    rule = pick_rule(ctx, state, rows)
+    if not (rule.draw & (rule.width > 1)).any() and not rule.lottery.any():
+        # Every row takes its best item: the first of the best in bank order, which is what
+        # ranking the best GENERAL_TOP items below gives whenever no more than GENERAL_TOP
+        # items tie at the best (they are all among those ranked then).
+        pos = np.argmax(masked, axis=1)
+        best = masked[np.arange(rows.size), pos]
+        if not np.any(np.count_nonzero(masked == best[:, None], axis=1) > GENERAL_TOP):
+            n_ok = np.count_nonzero(ok, axis=1)
+            return Choice(item=np.where(n_ok > 0, pos, -1), value=np.where(n_ok > 0, best, np.nan), withheld=[])
     # Rank only the best GENERAL_TOP items of each row (sorted by item first, so ties order
     # as in a full stable sort); rows whose choice reaches past them are ranked in full.
-    masked = np.where(ok, values, -np.inf)
     top = np.sort(np.argpartition(-masked, GENERAL_TOP - 1, axis=1)[:, :GENERAL_TOP], axis=1)
     top_ok = np.take_along_axis(ok, top, axis=1)
     ranked = _choose_ranked(ctx, state, rows, top, np.take_along_axis(values, top, axis=1), top_ok)
@@ -479,8 +489,11 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
         if design.exposure.method is ExposureMethod.PROGRESSIVE:
             values = _progressive(ctx, state, rows, values, ok)
     # an item a criterion rules out (-inf: outside the current a-stratum) stays out whatever
-    # the weights: 0 x -inf is NaN, and argmax would pick the first NaN
-    return np.where(np.isnan(values), -np.inf, values)
+    # the weights: 0 x -inf is NaN, and argmax would pick the first NaN (the maximum is NaN
+    # exactly when some value is: one pass finds out whether there is anything to replace)
+    if values.size and np.isnan(np.max(values)):
+        values = np.where(np.isnan(values), -np.inf, values)
+    return values
 
 
 def all_item_params(ctx):
