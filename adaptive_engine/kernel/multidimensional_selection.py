@@ -73,17 +73,7 @@ def criterion_values(ctx, state, rows) -> np.ndarray:
     if crit is SelectionCriterion.MAX_FISHER_INFORMATION:
         return j * a[..., 0] * a[..., 0]
     w_inv = inverse(test_information(ctx, state, rows))  # (R, K, K)
-    # a' W^-1 a over the distinct products a_p a_q of each item (W^-1 is symmetric), summed
-    # in place in the order (0, 0), (0, 1), .., (K-1, K-1)
-    q = np.empty_like(j)
-    term = np.empty_like(j)
-    for n_term, ((p, r), product) in enumerate(tab.slope_products.items()):
-        weight = w_inv[:, p, r] * (1.0 if p == r else 2.0)
-        if n_term == 0:
-            np.multiply(weight[:, None], product[None, :], out=q)
-        else:
-            np.multiply(weight[:, None], product[None, :], out=term)
-            q += term
+    q = _quadratic_form(tab, w_inv)
     if crit is SelectionCriterion.D_OPTIMALITY:
         j *= q  # det(W + I_j) / det(W) - 1: the same order as the determinant
         return j
@@ -94,18 +84,36 @@ def criterion_values(ctx, state, rows) -> np.ndarray:
     raise AssertionError(f"criterion {crit!r}")  # pragma: no cover - refused by the gate
 
 
+def _quadratic_form(tab, w_inv) -> np.ndarray:
+    """``a' W^-1 a`` of every item for rows ``w_inv`` (R, K, K), shape (R, n).
+
+    Sums the distinct products ``a_p a_q`` of each item (W^-1 is symmetric) in place, in the
+    order (0, 0), (0, 1), .., (K-1, K-1).
+    """
+    q = term = None
+    for (p, r), product in tab.slope_products.items():
+        weight = w_inv[:, p, r] * (1.0 if p == r else 2.0)
+        if q is None:
+            q = np.multiply(weight[:, None], product[None, :])
+            term = np.empty_like(q)
+        else:
+            np.multiply(weight[:, None], product[None, :], out=term)
+            q += term
+    return q
+
+
 def _slope_information(tab, theta) -> np.ndarray:
     """``J_j(theta)`` of every item for rows ``theta`` (R, K), shape (R, n).
 
     A bank of M2PL items only (two categories, no lower asymptote) takes the logistic's
-    ``D^2 e / (1 + e)^2`` with ``e = exp(-|z|)`` (the same value as ``D^2 P (1 - P)``, in
-    fewer passes over the batch x bank array); any other bank the general
-    :func:`adaptive_engine.irt.multidimensional.slope_information`.
+    ``D^2 e / (1 + e)^2`` with ``e = exp(-D |z|)``, ``z = a . theta + d`` (the same value
+    as ``D^2 P (1 - P)``, in fewer passes over the batch x bank array, in place); any other
+    bank the general :func:`adaptive_engine.irt.multidimensional.slope_information`.
     """
     params = tab.params
     if not tab.logistic_only:
         return md.slope_information(params, theta[:, None, :])
-    # a . theta + intercept in place, the dimensions in order (as md.projection sums them)
+    # a . theta + intercept, the dimensions in order (as md.projection sums them)
     slopes = params.slopes
     z = np.multiply(theta[:, :1], slopes[None, :, 0])
     if tab.k > 1:

@@ -218,33 +218,62 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
     """
     theta = np.asarray(theta, dtype=float)
     k = tab.k
-    info = np.array(precision, dtype=float, copy=True)
-    grad = np.zeros(theta.shape) if score else None
     width = items.shape[1]
     reached = np.flatnonzero((items >= 0).any(axis=0))
-    for col in reached[reached < width]:
+    reached = reached[reached < width]
+    if tab.logistic_only:
+        return _logistic_information_and_score(tab, items[:, reached], responses[:, reached], theta, precision,
+                                               score=score)
+    info = np.array(precision, dtype=float, copy=True)
+    grad = np.zeros(theta.shape) if score else None
+    for col in reached:
         it = items[:, col]
         given = it >= 0
         params = tab.params.take(np.maximum(it, 0))
         a = params.slopes
-        if tab.logistic_only:
-            # M2PL items: P = expit(D (a . theta + d)), J = D^2 P (1 - P), score D (x - P)
-            scaling = params.scaling
-            prob = expit(scaling * (md.projection(params, theta) + params.intercepts[:, 0]))
-            j = np.where(given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
-        else:
-            j = np.where(given, md.slope_information(params, theta), 0.0)
+        j = np.where(given, md.slope_information(params, theta), 0.0)
         for p in range(k):
             for q in range(p, k):
                 info[:, p, q] = info[:, p, q] + j * a[:, p] * a[:, q]
                 if q != p:
                     info[:, q, p] = info[:, p, q]
-        if score and tab.logistic_only:
-            r = np.where(given, params.scaling * (responses[:, col] - prob), 0.0)
-            grad = grad + r[:, None] * a
-        elif score:
+        if score:
             grad = grad + md.log_likelihood_gradient(params, theta, np.where(given, responses[:, col], -1))
     return info, grad
+
+
+def _logistic_information_and_score(tab, items, responses, theta, precision, *, score):
+    """:func:`test_information_and_score` for a bank of M2PL items, every column at once.
+
+    ``P = expit(D (a . theta + d))``, ``J = D^2 P (1 - P)``, score ``D (x - P)``, elementwise
+    over (R, L); the sums over the columns run in their order (``np.add.accumulate`` adds
+    one column after another), so every value is the one adding a column at a time gives.
+    """
+    k = tab.k
+    given = items >= 0
+    params = tab.params.take(np.maximum(items, 0))  # (R, L)
+    a = params.slopes  # (R, L, K)
+    scaling = params.scaling
+    prob = expit(scaling * (md.projection(params, theta[:, None, :]) + params.intercepts[..., 0]))
+    j = np.where(given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
+    info = np.array(precision, dtype=float, copy=True)
+    for p in range(k):
+        for q in range(p, k):
+            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[..., p] * a[..., q])
+            if q != p:
+                info[:, q, p] = info[:, p, q]
+    if not score:
+        return info, None
+    r = np.where(given, scaling * (responses - prob), 0.0)
+    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[..., d]) for d in range(k)], axis=1)
+    return info, grad
+
+
+def _sum_in_order(start: np.ndarray, terms: np.ndarray) -> np.ndarray:
+    """``(((start + t_0) + t_1) + ..)`` per row of ``terms`` (R, L): one column after another."""
+    if terms.shape[1] == 0:
+        return start.copy()
+    return np.add.accumulate(np.concatenate([start[:, None], terms], axis=1), axis=1)[:, -1]
 
 
 # ----------------------------------------------------------------------------------------

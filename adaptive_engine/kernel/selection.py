@@ -38,6 +38,10 @@ from .state import KernelState
 SHORTLIST_EXACT = 8
 #: Rows evaluated together on the general path (bounds memory at rows x items).
 ROW_CHUNK = 1024
+#: Rows x items of one block of the general path for an ability vector, whose criteria
+#: take a dozen passes over their arrays: about 1 MB of float64, so that they stay in the
+#: processor's cache (the rows are independent: any split gives the same picks).
+VECTOR_BLOCK_VALUES = 1 << 17
 #: Items ranked per row on the general path before falling back to a full sort.
 GENERAL_TOP = 64
 
@@ -190,8 +194,9 @@ def _criterion_pick(ctx, state, rows) -> Choice:
         withheld.extend(proven.withheld)
         left[proven.rows] = False
     rest = np.flatnonzero(left)
-    for start in range(0, rest.size, ROW_CHUNK):
-        part = rest[start : start + ROW_CHUNK]
+    chunk = ROW_CHUNK if ctx.multidimensional is None else max(1, VECTOR_BLOCK_VALUES // max(1, ctx.n_items))
+    for start in range(0, rest.size, chunk):
+        part = rest[start : start + chunk]
 
         def ordinary(sub, part=part):
             return _general_pick(ctx, state, rows[part[sub]], restrict[part[sub]], open_area[part[sub]],
