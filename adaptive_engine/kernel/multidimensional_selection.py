@@ -54,8 +54,20 @@ def state_precision(state, rows) -> np.ndarray:
     return inverse(state.prior_covariance[rows])
 
 
-def criterion_values(ctx, state, rows) -> np.ndarray:
-    """Criterion value of every item for ``rows``, (R, n); higher is better."""
+def row_facts(ctx, state, rows) -> np.ndarray | None:
+    """What the criterion needs of each row besides its ability: ``W^-1`` (R, K, K) for D-
+    and A-optimality, None for the others."""
+    if ctx.design.selection.criterion in (SelectionCriterion.D_OPTIMALITY, SelectionCriterion.A_OPTIMALITY):
+        return inverse(test_information(ctx, state, rows))
+    return None
+
+
+def criterion_values(ctx, state, rows, facts=None) -> np.ndarray:
+    """Criterion value of every item for ``rows``, (R, n); higher is better.
+
+    ``facts``: :func:`row_facts` of ``rows`` when the caller has them (a row's facts do not
+    depend on the other rows, so computing them once for a batch gives the same values).
+    """
     tab = ctx.multidimensional
     crit = ctx.design.selection.criterion
     theta = state.theta[rows]  # (R, K)
@@ -72,7 +84,7 @@ def criterion_values(ctx, state, rows) -> np.ndarray:
         return j * au * au
     if crit is SelectionCriterion.MAX_FISHER_INFORMATION:
         return j * a[..., 0] * a[..., 0]
-    w_inv = inverse(test_information(ctx, state, rows))  # (R, K, K)
+    w_inv = row_facts(ctx, state, rows) if facts is None else facts  # (R, K, K)
     q = _quadratic_form(tab, w_inv)
     if crit is SelectionCriterion.D_OPTIMALITY:
         j *= q  # det(W + I_j) / det(W) - 1: the same order as the determinant

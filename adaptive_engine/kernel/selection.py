@@ -194,13 +194,21 @@ def _criterion_pick(ctx, state, rows) -> Choice:
         withheld.extend(proven.withheld)
         left[proven.rows] = False
     rest = np.flatnonzero(left)
-    chunk = ROW_CHUNK if ctx.multidimensional is None else max(1, VECTOR_BLOCK_VALUES // max(1, ctx.n_items))
+    chunk = ROW_CHUNK
+    facts = None
+    if ctx.multidimensional is not None:
+        from .multidimensional_selection import row_facts
+
+        chunk = max(1, VECTOR_BLOCK_VALUES // max(1, ctx.n_items))
+        # what the criterion needs of each row, once for all the blocks
+        facts = row_facts(ctx, state, rows[rest]) if rest.size else None
     for start in range(0, rest.size, chunk):
         part = rest[start : start + chunk]
+        part_facts = None if facts is None else facts[start : start + chunk]
 
-        def ordinary(sub, part=part):
+        def ordinary(sub, part=part, part_facts=part_facts):
             return _general_pick(ctx, state, rows[part[sub]], restrict[part[sub]], open_area[part[sub]],
-                                 fits[part[sub]])
+                                 fits[part[sub]], None if part_facts is None else part_facts[sub])
 
         if design.blueprint.shadow_test:
             from .shadow import shadow_test_choice
@@ -421,7 +429,7 @@ def _exact_information(bank, items, theta) -> np.ndarray:
     return models.dichotomous_information_columns(theta[:, None], *columns.take(items, axis=1))
 
 
-def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:
+def _general_pick(ctx, state, rows, restrict, open_area, fits, facts=None) -> Choice:
     n = ctx.n_items
     cand = np.broadcast_to(np.arange(n), (rows.size, n))
     ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
@@ -431,7 +439,7 @@ def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:
         has = (ok & in_area).any(axis=1)
         # an area with no eligible item left does not block the test: use all open areas
         ok = np.where((restricted & has)[:, None], ok & in_area, ok)
-    values = criterion_values(ctx, state, rows, ok)
+    values = criterion_values(ctx, state, rows, ok, facts)
     if n <= 2 * GENERAL_TOP:
         ranked = _choose_ranked(ctx, state, rows, cand, values, ok)
         return Choice(item=ranked.item, value=ranked.value, withheld=ranked.withheld)
@@ -462,8 +470,12 @@ def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:
     return Choice(item=chosen, value=chosen_val, withheld=withheld)
 
 
-def criterion_values(ctx, state, rows, ok) -> np.ndarray:
-    """Criterion value of every item for ``rows``, (R, n); higher is better."""
+def criterion_values(ctx, state, rows, ok, facts=None) -> np.ndarray:
+    """Criterion value of every item for ``rows``, (R, n); higher is better.
+
+    ``facts`` (an ability vector only): what
+    :func:`.multidimensional_selection.row_facts` gives for ``rows``, when known.
+    """
     design = ctx.design
     crit = design.selection.criterion
     theta = state.theta[rows]
@@ -474,7 +486,7 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
     if ctx.multidimensional is not None:
         from .multidimensional_selection import criterion_values as multidimensional_values
 
-        values = multidimensional_values(ctx, state, rows)
+        values = multidimensional_values(ctx, state, rows, facts)
     elif crit is SelectionCriterion.MAX_FISHER_INFORMATION:
         values = models.information(all_item_params(ctx), theta[:, None])
     elif crit is SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION:
