@@ -62,6 +62,10 @@ class MultidimensionalTables:
     slope_products : dict
         ``a_p a_q`` of every item (n,) for p <= q, keyed (p, q) in row-major order (the
         terms of the quadratic forms ``a' M a`` of selection).
+    screening : SinglePrecisionItems or None
+        The items in single precision, for the D-optimal pick by screening
+        (:func:`adaptive_engine.kernel.multidimensional_selection.best_items`); None where
+        that pick does not apply (another criterion, not an M2PL bank).
     """
 
     k: int
@@ -80,6 +84,7 @@ class MultidimensionalTables:
     finite_log_table: np.ndarray | None
     logistic_only: bool = False
     slope_products: dict = attrs.field(factory=dict)
+    screening: "SinglePrecisionItems | None" = None
 
 
 def multidimensional_parameters(bank: ItemBank) -> md.MultidimensionalParameters:
@@ -127,6 +132,8 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     else:
         targets = None
     rule = attrs.evolve(st, se=None if targets is None else 1.0, se_per_dimension=None)
+    logistic = bool(np.all(params.n_categories == 2) and np.all(params.c == 0))
+    products = {(p, q): params.slopes[:, p] * params.slopes[:, q] for p in range(k) for q in range(p, k)}
     finite = None
     if design.selection.criterion is SelectionCriterion.KULLBACK_LEIBLER:
         finite = np.ascontiguousarray(np.where(np.isfinite(log_table), log_table, 0.0).transpose(0, 2, 1))
@@ -135,9 +142,44 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
         params=params, prior_mean=mean, prior_covariance=cov, prior_precision=precision, log_prior=log_prior,
         composite_weights=None if weights is None else np.asarray(weights, dtype=float),
         se_targets=targets, stopping_rule=rule, finite_log_table=finite,
-        logistic_only=bool(np.all(params.n_categories == 2) and np.all(params.c == 0)),
-        slope_products={(p, q): params.slopes[:, p] * params.slopes[:, q] for p in range(k) for q in range(p, k)},
+        logistic_only=logistic,
+        slope_products=products,
+        screening=SinglePrecisionItems.of(params, products) if (
+            design.selection.criterion is SelectionCriterion.D_OPTIMALITY and logistic) else None,
     )
+
+
+@attrs.frozen(eq=False)
+class SinglePrecisionItems:
+    """An M2PL bank's items in single precision, and the magnitudes that bound its rounding.
+
+    Attributes
+    ----------
+    slopes : float32 (K, n)
+    intercepts : float32 (n,)
+    products : float32 (K (K + 1) / 2, n)
+        ``a_p a_q`` in the order of :attr:`MultidimensionalTables.slope_products`.
+    largest_slope : float (K,)
+        The largest ``|a_k|`` of the bank on each dimension.
+    largest_intercept : float
+        The largest ``|d|`` of the bank.
+    """
+
+    slopes: np.ndarray
+    intercepts: np.ndarray
+    products: np.ndarray
+    largest_slope: np.ndarray
+    largest_intercept: float
+
+    @classmethod
+    def of(cls, params: md.MultidimensionalParameters, products: dict) -> "SinglePrecisionItems":
+        slopes = params.slopes
+        intercepts = params.intercepts[:, 0]
+        return cls(slopes=np.ascontiguousarray(slopes.T, dtype=np.float32),
+                   intercepts=intercepts.astype(np.float32),
+                   products=np.stack([v for v in products.values()]).astype(np.float32),
+                   largest_slope=np.max(np.abs(slopes), axis=0),
+                   largest_intercept=float(np.max(np.abs(intercepts))))
 
 
 # ----------------------------------------------------------------------------------------

@@ -439,13 +439,21 @@ def _general_pick(ctx, state, rows, restrict, open_area, fits, facts=None) -> Ch
         has = (ok & in_area).any(axis=1)
         # an area with no eligible item left does not block the test: use all open areas
         ok = np.where((restricted & has)[:, None], ok & in_area, ok)
+    rule = pick_rule(ctx, state, rows)
+    best_only = not (rule.draw & (rule.width > 1)).any() and not rule.lottery.any()
+    if best_only and ctx.multidimensional is not None and not _values_adjusted(ctx):
+        from .multidimensional_selection import best_items
+
+        # the best item without every item's value in double precision (None: no such route)
+        found = best_items(ctx, state, rows, ok, facts)
+        if found is not None and (n <= 2 * GENERAL_TOP or not np.any(found[2] > GENERAL_TOP)):
+            return Choice(item=found[0], value=found[1], withheld=[])
     values = criterion_values(ctx, state, rows, ok, facts)
     if n <= 2 * GENERAL_TOP:
         ranked = _choose_ranked(ctx, state, rows, cand, values, ok)
         return Choice(item=ranked.item, value=ranked.value, withheld=ranked.withheld)
     masked = np.where(ok, values, -np.inf)
-    rule = pick_rule(ctx, state, rows)
-    if not (rule.draw & (rule.width > 1)).any() and not rule.lottery.any():
+    if best_only:
         # Every row takes its best item: the first of the best in bank order, which is what
         # ranking the best GENERAL_TOP items below gives whenever no more than GENERAL_TOP
         # items tie at the best (they are all among those ranked then).
@@ -468,6 +476,14 @@ def _general_pick(ctx, state, rows, restrict, open_area, fits, facts=None) -> Ch
         chosen[redo], chosen_val[redo] = full.item, full.value
         withheld.extend(full.withheld)
     return Choice(item=chosen, value=chosen_val, withheld=withheld)
+
+
+def _values_adjusted(ctx) -> bool:
+    """Whether the criterion's values are reweighted before the pick (maximum priority
+    index, progressive exposure control)."""
+    design = ctx.design
+    return bool((ctx.balanced and design.blueprint.method is BlueprintMethod.MAX_PRIORITY_INDEX)
+                or design.exposure.method is ExposureMethod.PROGRESSIVE)
 
 
 def criterion_values(ctx, state, rows, ok, facts=None) -> np.ndarray:
