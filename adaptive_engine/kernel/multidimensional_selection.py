@@ -211,10 +211,14 @@ def best_items(ctx, state, rows, ok, facts):
     if full.size:
         item[full], value[full], ties[full] = _best_of(
             _values_in_full(tab, theta[full], w_inv[full]), ok[full])
-    use = np.flatnonzero(trusted)
+    threshold = (exact_first * (1.0 - 2.0 * error) * (1.0 - 1e-6)).astype(np.float32)
+    above = np.count_nonzero(values >= np.where(trusted, threshold, np.inf)[:, None], axis=1)
+    # rows whose best screened item is the only one above the threshold: it is the pick
+    alone = trusted & ((above == 0) | ((above == 1) & (screened_best >= threshold)))
+    item[alone], value[alone], ties[alone] = first[alone], exact_first[alone], 1
+    use = np.flatnonzero(trusted & ~alone)
     if use.size:
-        threshold = (exact_first[use] * (1.0 - 2.0 * error[use]) * (1.0 - 1e-6)).astype(np.float32)
-        pick = values[use] >= threshold[:, None]
+        pick = values[use] >= threshold[use, None]
         pick[np.arange(use.size), first[use]] = True
         p_row, p_item = np.nonzero(pick)
         exact = _pair_values(tab, theta[use[p_row]], w_inv[use[p_row]], p_item)
