@@ -39,9 +39,10 @@ SHORTLIST_EXACT = 8
 #: Rows evaluated together on the general path (bounds memory at rows x items).
 ROW_CHUNK = 1024
 #: Rows x items of one block of the general path for an ability vector, whose criteria
-#: take a dozen passes over their arrays: about 1 MB of float64, so that they stay in the
-#: processor's cache (the rows are independent: any split gives the same picks).
-VECTOR_BLOCK_VALUES = 1 << 17
+#: take a dozen passes over their arrays: 1 MB of single precision (the D-optimal
+#: screening), 2 MB of double, so that they stay in the processor's cache (the rows are
+#: independent: any split gives the same picks).
+VECTOR_BLOCK_VALUES = 1 << 18
 #: Items ranked per row on the general path before falling back to a full sort.
 GENERAL_TOP = 64
 
