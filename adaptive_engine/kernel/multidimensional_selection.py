@@ -212,9 +212,11 @@ def best_items(ctx, state, rows, ok, facts):
         item[full], value[full], ties[full] = _best_of(
             _values_in_full(tab, theta[full], w_inv[full]), ok[full])
     threshold = (exact_first * (1.0 - 2.0 * error) * (1.0 - 1e-6)).astype(np.float32)
-    above = np.count_nonzero(values >= np.where(trusted, threshold, np.inf)[:, None], axis=1)
-    # rows whose best screened item is the only one above the threshold: it is the pick
-    alone = trusted & ((above == 0) | ((above == 1) & (screened_best >= threshold)))
+    # rows whose best screened item is the only one at or above the threshold: it is the pick
+    values[r_idx, first] = -np.inf
+    runner_up = np.max(values, axis=1)
+    values[r_idx, first] = screened_best
+    alone = trusted & (runner_up < threshold)
     item[alone], value[alone], ties[alone] = first[alone], exact_first[alone], 1
     use = np.flatnonzero(trusted & ~alone)
     if use.size:
