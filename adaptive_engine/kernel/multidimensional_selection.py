@@ -194,8 +194,7 @@ def best_items(ctx, state, rows, ok, facts):
     if r_n == 0:
         return item, value, ties
     with np.errstate(over="ignore", under="ignore", invalid="ignore"):
-        values = _screened_values(screen, theta, w_inv, scaling, k)
-        values = np.where(ok, values, np.float32(-np.inf))
+        values = _screened_values(screen, theta, w_inv, scaling, k, ok)
     first = np.argmax(values, axis=1)
     r_idx = np.arange(r_n)
     screened_best = values[r_idx, first]
@@ -205,8 +204,10 @@ def best_items(ctx, state, rows, ok, facts):
     error = _screening_error(screen, theta, w_inv, scaling, k)
     # items whose exp(-D |z|) is near single precision's underflow have values below this
     largest_q = np.trace(w_inv, axis1=1, axis2=2) * float(np.sum(screen.largest_slope ** 2))
+    # (and ineligible items, screened as 0, stay below a threshold above 1e-30)
     trusted = (~none & np.isfinite(screened_best) & np.isfinite(exact_first) & np.isfinite(error)
-               & (error < 0.01) & (exact_first >= 1e-36 * scaling * scaling * largest_q) & ok[r_idx, first])
+               & (error < 0.01) & (exact_first >= np.maximum(1e-36 * scaling * scaling * largest_q, 1e-30))
+               & ok[r_idx, first])
     full = np.flatnonzero(~none & ~trusted)
     if full.size:
         item[full], value[full], ties[full] = _best_of(
@@ -236,31 +237,31 @@ def best_items(ctx, state, rows, ok, facts):
     return item, value, ties
 
 
-def _screened_values(screen, theta, w_inv, scaling, k) -> np.ndarray:
-    """D-optimality values of every item in single precision, (R, n) float32."""
-    t32 = theta.astype(np.float32)
-    z = np.multiply(t32[:, :1], screen.slopes[0][None, :])
+def _screened_values(screen, theta, w_inv, scaling, k, ok) -> np.ndarray:
+    """D-optimality values of every item in single precision, 0 where not ``ok``, (R, n) float32.
+
+    ``z = [theta, 1] . [a, d]`` and ``a' W^-1 a`` (with D^2) are each one einsum over the
+    K + 1 or K (K + 1) / 2 terms: faster than a broadcast product per term, and any order
+    of summation is within the bound of :func:`_screening_error`.
+    """
+    r_n = theta.shape[0]
+    left = np.ones((r_n, k + 1), dtype=np.float32)
+    left[:, :k] = theta
+    z = np.einsum("rk,kn->rn", left, screen.linear)
     term = np.empty_like(z)
-    for d in range(1, k):
-        np.multiply(t32[:, d : d + 1], screen.slopes[d][None, :], out=term)
-        z += term
-    z += screen.intercepts
     np.abs(z, out=z)
     z *= np.float32(-scaling)
     e = np.exp(z, out=z)
     np.add(e, np.float32(1.0), out=term)
     term *= term
     e /= term  # e / (1 + e)^2; D^2 goes into the weights of the quadratic form
-    q = None
     pairs = [(p, r) for p in range(k) for r in range(p, k)]
+    weights = np.empty((r_n, len(pairs)), dtype=np.float32)
     for index, (p, r) in enumerate(pairs):
-        weight = (w_inv[:, p, r] * ((1.0 if p == r else 2.0) * scaling * scaling)).astype(np.float32)
-        if q is None:
-            q = np.multiply(weight[:, None], screen.products[index][None, :])
-        else:
-            np.multiply(weight[:, None], screen.products[index][None, :], out=term)
-            q += term
-    e *= q
+        weights[:, index] = w_inv[:, p, r] * ((1.0 if p == r else 2.0) * scaling * scaling)
+    np.einsum("rk,kn->rn", weights, screen.products, out=term)
+    e *= term
+    e *= ok
     return e
 
 

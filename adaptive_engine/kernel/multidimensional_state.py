@@ -155,8 +155,8 @@ class SinglePrecisionItems:
 
     Attributes
     ----------
-    slopes : float32 (K, n)
-    intercepts : float32 (n,)
+    linear : float32 (K + 1, n)
+        The slopes and, in the last row, the intercepts: ``z = [theta, 1] . linear``.
     products : float32 (K (K + 1) / 2, n)
         ``a_p a_q`` in the order of :attr:`MultidimensionalTables.slope_products`.
     largest_slope : float (K,)
@@ -165,8 +165,7 @@ class SinglePrecisionItems:
         The largest ``|d|`` of the bank.
     """
 
-    slopes: np.ndarray
-    intercepts: np.ndarray
+    linear: np.ndarray
     products: np.ndarray
     largest_slope: np.ndarray
     largest_intercept: float
@@ -175,8 +174,7 @@ class SinglePrecisionItems:
     def of(cls, params: md.MultidimensionalParameters, products: dict) -> "SinglePrecisionItems":
         slopes = params.slopes
         intercepts = params.intercepts[:, 0]
-        return cls(slopes=np.ascontiguousarray(slopes.T, dtype=np.float32),
-                   intercepts=intercepts.astype(np.float32),
+        return cls(linear=np.ascontiguousarray(np.vstack([slopes.T, intercepts[None, :]]), dtype=np.float32),
                    products=np.stack([v for v in products.values()]).astype(np.float32),
                    largest_slope=np.max(np.abs(slopes), axis=0),
                    largest_intercept=float(np.max(np.abs(intercepts))))
