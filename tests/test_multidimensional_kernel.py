@@ -127,6 +127,82 @@ def test_optimal_pick_matches_brute_force_over_the_bank(criterion):
         np.testing.assert_allclose(values[free], expected, rtol=1e-9, atol=1e-12)
 
 
+def _full_route_pick(ctx, state, rows, ok):
+    """The first of the highest double-precision D-optimality values in bank order, the ties."""
+    values = np.where(ok, criterion_values(ctx, state, rows, ok), -np.inf)
+    pos = np.argmax(values, axis=1)
+    best = values[np.arange(rows.size), pos]
+    return pos, best, np.count_nonzero(values == best[:, None], axis=1)
+
+
+@pytest.mark.parametrize("k, n_items", [(2, 60), (2, 300), (3, 150)])
+def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items):
+    """The single-precision screening only decides which items get a double-precision value:
+    the pick, its value (bit for bit) and the ties are those of every item in double
+    precision; the pick is also the largest det(W + I_j) by numpy (Segall 1996)."""
+    from adaptive_engine.kernel.multidimensional_selection import best_items, row_facts
+
+    rng = np.random.default_rng(k + n_items)
+    slopes = rng.uniform(0.3, 2.2, (n_items, k)) * (rng.random((n_items, k)) < 0.7)
+    slopes[np.all(slopes == 0, axis=1), 0] = 1.0
+    intercepts = rng.normal(0, 1.5, n_items)
+    # exact ties: the first twelve items repeated at the end of the bank
+    slopes[-12:], intercepts[-12:] = slopes[:12], intercepts[:12]
+    bank = m2pl_bank(slopes, intercepts)
+    ctx = build_context(parse_design(design_text(k=k, se="")), bank)
+    state = _answered_state(ctx, n_answers=6, rows=40)
+    rows = np.arange(state.size)
+    # abilities from ordinary to far out (values near single precision's underflow)
+    state.theta[:] = rng.normal(0, 1.5, state.theta.shape)
+    state.theta[:3] = [[4.9] * k, [-4.9] * k, [300.0] * k]
+    ok = rng.random((rows.size, n_items)) < 0.8
+    ok[5] = False  # nothing eligible
+    ok[6] = False
+    ok[6, [0, n_items - 12]] = True  # only an item and its copy
+    facts = row_facts(ctx, state, rows)
+    item, value, ties = best_items(ctx, state, rows, ok, facts)
+    want_item, want_value, want_ties = _full_route_pick(ctx, state, rows, ok)
+    has = ok.any(axis=1)
+    np.testing.assert_array_equal(item, np.where(has, want_item, -1))
+    np.testing.assert_array_equal(value[has], want_value[has])  # bit for bit
+    assert np.all(np.isnan(value[~has]))
+    np.testing.assert_array_equal(ties[has], want_ties[has])
+    assert item[6] == 0 and ties[6] == 2
+    w_all, _, info = _brute_force_matrices(ctx, state, 10)
+    free = np.flatnonzero(ok[10])
+    dets = np.array([np.linalg.det(w_all + info(j)) for j in free])
+    if np.sort(dets)[-1] > np.sort(dets)[-2] * (1 + 1e-9):  # a clear winner
+        assert item[10] == free[np.argmax(dets)]
+
+
+def test_posterior_added_and_read_in_blocks_is_the_whole_batch_computation(monkeypatch):
+    """add_and_moments (blocks of rows, each added to and read in cache) gives every value
+    of adding for the whole batch and then posterior_moments, bit for bit: consecutive and
+    scattered rows, rows without a scored item, blocks of one row and of several."""
+    from adaptive_engine.kernel import multidimensional_state as mst
+
+    ctx = build_context(parse_design(design_text(se="")), random_bank())
+    tab = ctx.multidimensional
+    rng = np.random.default_rng(3)
+    start = tab.log_prior[None, :] + rng.normal(0, 2.0, (9, tab.points.shape[0]))
+    table = ctx.log_table_by_category
+    for rows in (np.arange(9), np.array([0, 2, 3, 7])):
+        items = rng.integers(0, table.shape[0], rows.size)
+        items[1] = -1  # a pretest item: nothing added
+        cats = rng.integers(0, 2, rows.size)
+        want = start.copy()
+        keep = items >= 0
+        want[rows[keep]] += table[items[keep], cats[keep]]
+        mean, cov = mst.posterior_moments(want[rows], tab.points)
+        for block in (tab.points.shape[0], 3 * tab.points.shape[0]):  # one row, three rows
+            monkeypatch.setattr(mst, "BLOCK_VALUES", block)
+            got = start.copy()
+            m, c = mst.add_and_moments(got, rows, table, items, cats, tab.points)
+            np.testing.assert_array_equal(got, want)
+            np.testing.assert_array_equal(m, mean)
+            np.testing.assert_array_equal(c, cov)
+
+
 def test_composite_criterion_is_information_in_the_weights_direction():
     bank = random_bank()
     ctx = build_context(parse_design(design_text("max_composite_information", se="",

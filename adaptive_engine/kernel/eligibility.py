@@ -85,14 +85,19 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
     """
     if free is not None and only_used_rule(ctx):
         return free
-    valid = cand >= 0
-    c = np.where(valid, cand, 0)
-    if free is None:
+    if free is not None:
+        c = np.where(cand >= 0, cand, 0)
+        ok = free.copy()
+    elif _every_item(ctx, cand):
+        # every item of the bank in bank order for each row (the general path): the rows of `used`
+        c = cand
+        ok = ~state.used[rows]
+    else:
+        valid = cand >= 0
+        c = np.where(valid, cand, 0)
         # a flat take is several times faster than 2-D fancy indexing of used[rows, c]
         flat = c + (rows * ctx.n_items)[:, None]
         ok = valid & ~np.take(state.used.reshape(-1), flat)
-    else:
-        ok = free.copy()
     if not ctx.operational.all():
         ok &= ctx.operational[c]
     if ctx.n_groups:
@@ -113,3 +118,11 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
         set_ok = np.take_along_axis(fits, np.where(in_set, s, 0), axis=1) if fits.shape[1] else np.zeros_like(in_set)
         ok &= ~in_set | set_ok
     return ok
+
+
+def _every_item(ctx: TestContext, cand: np.ndarray) -> bool:
+    """Whether ``cand`` is every item of the bank in bank order, the same row repeated
+    (``np.broadcast_to(np.arange(n), (R, n))``)."""
+    return (cand.ndim == 2 and cand.shape[1] == ctx.n_items and cand.shape[0] > 0
+            and (cand.shape[0] == 1 or cand.strides[0] == 0)
+            and bool(np.array_equal(cand[0], np.arange(ctx.n_items))))

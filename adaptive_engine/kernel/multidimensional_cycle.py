@@ -23,9 +23,9 @@ from ..design.types import ScoringMethod
 from . import stopping
 from .multidimensional_state import (
     MultidimensionalState,
+    add_and_moments,
     inverse,
     matrix_vector,
-    posterior_moments,
     test_information_and_score,
 )
 from .selection import Picked, select
@@ -61,15 +61,7 @@ def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -
         state.elapsed[rows] = np.asarray(elapsed, dtype=float)
     # the bookkeeping books the answers; the posterior takes the scored ones here
     scored_item = record_answers(ctx, state, rows, responses)
-    keep = scored_item >= 0
-    if keep.any():
-        sr = rows[keep]
-        update = ctx.log_table_by_category[scored_item[keep], responses[keep]]
-        if sr.size == state.size and sr[0] == 0 and sr[-1] == sr.size - 1:
-            state.log_post += update  # the whole batch in order: no gather/scatter round trip
-        else:
-            state.log_post[sr] += update
-    update_estimate(ctx, state, rows)
+    update_estimate(ctx, state, rows, scored_item, responses)
     picked = select(ctx, state, rows, count_eligible=count_eligible)
     return settle_step(ctx, state, rows, picked, stop_reasons(ctx, state, rows, picked))
 
@@ -115,16 +107,25 @@ def _se(cov) -> np.ndarray:
     return np.sqrt(np.maximum(np.diagonal(cov, axis1=-2, axis2=-1), 0.0))
 
 
-def update_estimate(ctx, state, rows) -> None:
-    """Interim estimate after an answer: EAP on the grid, or MAP from the previous estimate.
+def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
+    """Add the scored answers to the posterior, then the interim estimate: EAP on the grid,
+    or MAP from the previous estimate.
 
-    The MAP is sought from the previous interim estimate (one answer away from the new
-    mode); the final MAP starts from the posterior mean (:func:`final_estimates`).
+    ``scored_item`` (R,) is the item each row's answer scores (-1: none, or a pretest
+    item), ``responses`` (R,) the answers; without them only the estimate is made.  The
+    EAP reads each block of rows while it is being added to
+    (:func:`.multidimensional_state.add_and_moments`).  The MAP is sought from the previous
+    interim estimate (one answer away from the new mode); the final MAP starts from the
+    posterior mean (:func:`final_estimates`).
     """
-    if ctx.design.scoring.method is ScoringMethod.MAP:
-        mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
+    tab = ctx.multidimensional
+    table = None if scored_item is None else ctx.log_table_by_category
+    eap = ctx.design.scoring.method is not ScoringMethod.MAP
+    got = add_and_moments(state.log_post, rows, table, scored_item, responses, tab.points, moments=eap)
+    if eap:
+        mean, cov = got
     else:
-        mean, cov = posterior_moments(state.log_post[rows], ctx.multidimensional.points)
+        mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
@@ -184,7 +185,7 @@ class MultidimensionalFinalEstimates:
 def final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimates:
     """Final estimates of ``rows`` by the design's final method (EAP on the grid or MAP)."""
     rows = np.asarray(rows, dtype=np.int64)
-    mean, cov = posterior_moments(state.log_post[rows], ctx.multidimensional.points)
+    mean, cov = add_and_moments(state.log_post, rows, points=ctx.multidimensional.points)
     status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
     if ctx.design.final_method is ScoringMethod.MAP:
         mean, cov, ok = map_estimate(ctx, state, rows, mean)

@@ -35,7 +35,7 @@ import numpy as np
 from ..design.types import SelectionCriterion
 from ..irt import multidimensional as md
 from ..irt.posterior import posterior_weights
-from .multidimensional_state import inverse, matrix_vector, test_information_and_score
+from .multidimensional_state import determinant, inverse, matrix_vector, test_information_and_score
 
 
 def test_information(ctx, state, rows) -> np.ndarray:
@@ -54,8 +54,20 @@ def state_precision(state, rows) -> np.ndarray:
     return inverse(state.prior_covariance[rows])
 
 
-def criterion_values(ctx, state, rows) -> np.ndarray:
-    """Criterion value of every item for ``rows``, (R, n); higher is better."""
+def row_facts(ctx, state, rows) -> np.ndarray | None:
+    """What the criterion needs of each row besides its ability: ``W^-1`` (R, K, K) for D-
+    and A-optimality, None for the others."""
+    if ctx.design.selection.criterion in (SelectionCriterion.D_OPTIMALITY, SelectionCriterion.A_OPTIMALITY):
+        return inverse(test_information(ctx, state, rows))
+    return None
+
+
+def criterion_values(ctx, state, rows, facts=None) -> np.ndarray:
+    """Criterion value of every item for ``rows``, (R, n); higher is better.
+
+    ``facts``: :func:`row_facts` of ``rows`` when the caller has them (a row's facts do not
+    depend on the other rows, so computing them once for a batch gives the same values).
+    """
     tab = ctx.multidimensional
     crit = ctx.design.selection.criterion
     theta = state.theta[rows]  # (R, K)
@@ -72,36 +84,66 @@ def criterion_values(ctx, state, rows) -> np.ndarray:
         return j * au * au
     if crit is SelectionCriterion.MAX_FISHER_INFORMATION:
         return j * a[..., 0] * a[..., 0]
-    w_inv = inverse(test_information(ctx, state, rows))  # (R, K, K)
-    # a' W^-1 a over the distinct products a_p a_q of each item (W^-1 is symmetric)
-    q = None
-    for p in range(tab.k):
-        for r in range(p, tab.k):
-            weight = w_inv[:, p, r] * (1.0 if p == r else 2.0)
-            term = weight[:, None] * (params.slopes[:, p] * params.slopes[:, r])[None, :]
-            q = term if q is None else q + term
-    w_inv = w_inv[:, None, :, :]
+    w_inv = row_facts(ctx, state, rows) if facts is None else facts  # (R, K, K)
+    q = _quadratic_form(tab, w_inv)
     if crit is SelectionCriterion.D_OPTIMALITY:
-        return j * q  # det(W + I_j) / det(W) - 1: the same order as the determinant
+        j *= q  # det(W + I_j) / det(W) - 1: the same order as the determinant
+        return j
+    w_inv = w_inv[:, None, :, :]
     if crit is SelectionCriterion.A_OPTIMALITY:
         v = matrix_vector(w_inv, a)  # (R, n, K): W^-1 a
         return j * np.sum(v * v, axis=-1) / (1.0 + j * q)
     raise AssertionError(f"criterion {crit!r}")  # pragma: no cover - refused by the gate
 
 
+def _quadratic_form(tab, w_inv, items=None) -> np.ndarray:
+    """``a' W^-1 a`` for rows ``w_inv`` (R, K, K): of every item (R, n), or of ``items`` (R, S).
+
+    Sums the distinct products ``a_p a_q`` of each item (W^-1 is symmetric) in place, in the
+    order (0, 0), (0, 1), .., (K-1, K-1): the same operations whichever items are asked for.
+    """
+    q = term = None
+    for (p, r), product in tab.slope_products.items():
+        weight = w_inv[:, p, r] * (1.0 if p == r else 2.0)
+        product = product[None, :] if items is None else product[items]
+        if q is None:
+            q = np.multiply(weight[:, None], product)
+            term = np.empty_like(q)
+        else:
+            np.multiply(weight[:, None], product, out=term)
+            q += term
+    return q
+
+
 def _slope_information(tab, theta) -> np.ndarray:
     """``J_j(theta)`` of every item for rows ``theta`` (R, K), shape (R, n).
 
-    A bank of M2PL items only (two categories, no lower asymptote) takes the logistic's
-    ``D^2 e / (1 + e)^2`` with ``e = exp(-|z|)`` (the same value as ``D^2 P (1 - P)``, in
-    fewer passes over the batch x bank array); any other bank the general
+    A bank of M2PL items only (two categories, no lower asymptote) takes
+    :func:`_logistic_information`; any other bank the general
     :func:`adaptive_engine.irt.multidimensional.slope_information`.
     """
-    params = tab.params
     if not tab.logistic_only:
-        return md.slope_information(params, theta[:, None, :])
-    z = md.projection(params, theta[:, None, :])
-    z += params.intercepts[:, 0]
+        return md.slope_information(tab.params, theta[:, None, :])
+    return _logistic_information(tab, theta)
+
+
+def _logistic_information(tab, theta, items=None) -> np.ndarray:
+    """``J(theta)`` of M2PL items for rows ``theta`` (R, K): every item (R, n), or ``items`` (R, S).
+
+    The logistic's ``D^2 e / (1 + e)^2`` with ``e = exp(-D |z|)``, ``z = a . theta + d``
+    (the same value as ``D^2 P (1 - P)``, in fewer passes over the batch x bank array),
+    in place: the same operations whichever items are asked for.
+    """
+    params = tab.params
+    slopes = params.slopes[None, :, :] if items is None else params.slopes[items]  # (1, n, K) or (R, S, K)
+    # a . theta + intercept, the dimensions in order (as md.projection sums them)
+    z = np.multiply(theta[:, :1], slopes[..., 0])
+    if tab.k > 1:
+        term = np.empty_like(z)
+        for k in range(1, tab.k):
+            np.multiply(theta[:, k : k + 1], slopes[..., k], out=term)
+            z += term
+    z += params.intercepts[:, 0] if items is None else params.intercepts[items, 0]
     np.abs(z, out=z)
     z *= -params.scaling
     e = np.exp(z, out=z)
@@ -110,6 +152,169 @@ def _slope_information(tab, theta) -> np.ndarray:
     np.divide(e, d, out=e)
     e *= params.scaling * params.scaling
     return e
+
+
+#: Unit roundoff of single precision, 2^-24.
+SINGLE_ROUNDOFF = float(np.finfo(np.float32).eps) / 2
+#: Factor on the rounding bound of the single-precision screening (the bound is first
+#: order in the roundoff and counts each operation once; this covers the rest with room).
+SCREEN_SAFETY = 8.0
+
+
+def best_items(ctx, state, rows, ok, facts):
+    """The D-optimal eligible item of each row and its value, without every item's value in
+    double precision.
+
+    Returns ``(item, value, ties)`` (R,) each -- ``item`` -1 and ``value`` NaN where no item
+    is eligible, ``ties`` how many eligible items share the best value -- exactly as the
+    first of the highest :func:`criterion_values` in bank order gives them, or None where
+    this route does not apply (not D-optimality on an M2PL bank, no ``facts``).
+
+    Every item's value is first computed in single precision (half the memory traffic and
+    twice the vector width of double).  A bound on its rounding, from the magnitudes of the
+    row's ability, the bank's parameters and the condition of ``W^-1``, gives a threshold
+    below the value (in double precision, computed as :func:`criterion_values` does) of the
+    row's best screened item that every item at least as good as that one exceeds; only the
+    items above it are evaluated in double precision, and the best of them is the pick.
+    Rows where single precision cannot be trusted (values near its underflow, anything not
+    finite) are evaluated in full.
+    """
+    tab = ctx.multidimensional
+    screen = tab.screening
+    if screen is None or facts is None or ctx.design.selection.criterion is not SelectionCriterion.D_OPTIMALITY:
+        return None
+    theta = state.theta[rows]
+    w_inv = facts
+    r_n = rows.size
+    k = tab.k
+    scaling = tab.params.scaling
+    item = np.full(r_n, -1, dtype=np.int64)
+    value = np.full(r_n, np.nan)
+    ties = np.zeros(r_n, dtype=np.int64)
+    if r_n == 0:
+        return item, value, ties
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+        values = _screened_values(screen, theta, w_inv, scaling, k, ok)
+    first = np.argmax(values, axis=1)
+    r_idx = np.arange(r_n)
+    screened_best = values[r_idx, first]
+    none = ~ok.any(axis=1)
+    # the double-precision value of each row's best screened item
+    exact_first = _pair_values(tab, theta, w_inv, first)
+    error = _screening_error(screen, theta, w_inv, scaling, k)
+    # items whose exp(-D |z|) is near single precision's underflow have values below this
+    largest_q = np.trace(w_inv, axis1=1, axis2=2) * float(np.sum(screen.largest_slope ** 2))
+    # (and ineligible items, screened as 0, stay below a threshold above 1e-30)
+    trusted = (~none & np.isfinite(screened_best) & np.isfinite(exact_first) & np.isfinite(error)
+               & (error < 0.01) & (exact_first >= np.maximum(1e-36 * scaling * scaling * largest_q, 1e-30))
+               & ok[r_idx, first])
+    full = np.flatnonzero(~none & ~trusted)
+    if full.size:
+        item[full], value[full], ties[full] = _best_of(
+            _values_in_full(tab, theta[full], w_inv[full]), ok[full])
+    threshold = (exact_first * (1.0 - 2.0 * error) * (1.0 - 1e-6)).astype(np.float32)
+    # rows whose best screened item is the only one at or above the threshold: it is the pick
+    values[r_idx, first] = -np.inf
+    runner_up = np.max(values, axis=1)
+    values[r_idx, first] = screened_best
+    alone = trusted & (runner_up < threshold)
+    item[alone], value[alone], ties[alone] = first[alone], exact_first[alone], 1
+    use = np.flatnonzero(trusted & ~alone)
+    if use.size:
+        pick = values[use] >= threshold[use, None]
+        pick[np.arange(use.size), first[use]] = True
+        p_row, p_item = np.nonzero(pick)
+        exact = _pair_values(tab, theta[use[p_row]], w_inv[use[p_row]], p_item)
+        starts = np.flatnonzero(np.r_[True, p_row[1:] != p_row[:-1]])
+        best = np.maximum.reduceat(exact, starts)
+        at_best = exact == best[np.repeat(np.arange(starts.size), np.diff(np.r_[starts, p_row.size]))]
+        # the first of the best in bank order (nonzero lists each row's items in order)
+        first_best = np.flatnonzero(at_best)
+        first_best = first_best[np.r_[True, p_row[first_best][1:] != p_row[first_best][:-1]]]
+        item[use] = p_item[first_best]
+        value[use] = best
+        ties[use] = np.bincount(p_row[at_best], minlength=use.size)
+    return item, value, ties
+
+
+def _screened_values(screen, theta, w_inv, scaling, k, ok) -> np.ndarray:
+    """D-optimality values of every item in single precision, 0 where not ``ok``, (R, n) float32.
+
+    ``z = [theta, 1] . [a, d]`` and ``a' W^-1 a`` (with D^2) are each one einsum over the
+    K + 1 or K (K + 1) / 2 terms: faster than a broadcast product per term, and any order
+    of summation is within the bound of :func:`_screening_error`.
+    """
+    r_n = theta.shape[0]
+    left = np.ones((r_n, k + 1), dtype=np.float32)
+    left[:, :k] = theta
+    z = np.einsum("rk,kn->rn", left, screen.linear)
+    term = np.empty_like(z)
+    np.abs(z, out=z)
+    z *= np.float32(-scaling)
+    e = np.exp(z, out=z)
+    np.add(e, np.float32(1.0), out=term)
+    term *= term
+    e /= term  # e / (1 + e)^2; D^2 goes into the weights of the quadratic form
+    pairs = [(p, r) for p in range(k) for r in range(p, k)]
+    weights = np.empty((r_n, len(pairs)), dtype=np.float32)
+    for index, (p, r) in enumerate(pairs):
+        weights[:, index] = w_inv[:, p, r] * ((1.0 if p == r else 2.0) * scaling * scaling)
+    np.einsum("rk,kn->rn", weights, screen.products, out=term)
+    e *= term
+    e *= ok
+    return e
+
+
+def _screening_error(screen, theta, w_inv, scaling, k) -> np.ndarray:
+    """A bound on the relative rounding error of :func:`_screened_values` per row, (R,).
+
+    ``z = a . theta + d`` is off by at most ``(2K + 3) u A`` with ``A = sum_k |theta_k|
+    max|a_k| + max|d|`` (each term rounded at most K + 3 times), and the relative error of
+    ``exp(-D |z|)`` is D times that plus the rounding of ``D |z|`` (``2 u D A``) and of the
+    exponential (budgeted 8 u); the logistic's other operations add 6 u.  The quadratic form
+    sums T = K (K + 1) / 2 terms, each rounded three times: its error is ``(T + 3) u`` times
+    the sum of the terms' magnitudes, at most ``kappa`` times the form itself, with
+    ``kappa`` the largest row sum of ``|W^-1|`` over a lower bound of its least eigenvalue
+    (``det / trace^(K-1)``).  The result has one more rounding.  (Higman 2002, ch. 3, for
+    the bounds on sums and products.)
+    """
+    u = SINGLE_ROUNDOFF
+    reach = np.abs(theta) @ screen.largest_slope + screen.largest_intercept  # (R,)
+    det = determinant(w_inv)
+    trace = np.trace(w_inv, axis1=1, axis2=2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        least = det / trace ** (k - 1)
+        kappa = np.max(np.sum(np.abs(w_inv), axis=2), axis=1) / least
+    kappa = np.where((det > 0) & (trace > 0), kappa, np.inf)
+    n_terms = k * (k + 1) // 2
+    first_order = scaling * reach * (2 * k + 5) + 15.0 + (n_terms + 3) * kappa
+    return SCREEN_SAFETY * u * first_order + 1e-12
+
+
+def _pair_values(tab, theta, w_inv, items) -> np.ndarray:
+    """D-optimality values of one item per row (items (P,) for rows theta (P, K)), as
+    :func:`criterion_values` computes them, (P,)."""
+    index = items[:, None]
+    j = _logistic_information(tab, theta, index)
+    j *= _quadratic_form(tab, w_inv, index)
+    return j[:, 0]
+
+
+def _values_in_full(tab, theta, w_inv) -> np.ndarray:
+    """Every item's D-optimality value, as :func:`criterion_values` computes them, (R, n)."""
+    j = _logistic_information(tab, theta)
+    j *= _quadratic_form(tab, w_inv)
+    return j
+
+
+def _best_of(values, ok) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The first of the highest eligible values of each row: item, value, how many tie."""
+    masked = np.where(ok, np.where(np.isnan(values), -np.inf, values), -np.inf)
+    pos = np.argmax(masked, axis=1)
+    best = masked[np.arange(masked.shape[0]), pos]
+    ties = np.count_nonzero(masked == best[:, None], axis=1)
+    has = ok.any(axis=1)
+    return np.where(has, pos, -1), np.where(has, best, np.nan), ties
 
 
 def _kullback_leibler(ctx, state, rows) -> np.ndarray:

@@ -25,7 +25,7 @@ from ..bank.item_bank import ItemBank
 from ..design.types import Design, SelectionCriterion, Stopping
 from ..errors import AdaptiveEngineError
 from ..irt import multidimensional as md
-from ..irt.posterior import relative_density
+from ..irt.posterior import BLOCK_VALUES, relative_density
 from .state import KernelState
 
 
@@ -59,6 +59,13 @@ class MultidimensionalTables:
         The log table with -inf (categories an item lacks) as 0, for Kullback-Leibler.
     logistic_only : bool
         Every item has two categories and no lower asymptote (an M2PL bank).
+    slope_products : dict
+        ``a_p a_q`` of every item (n,) for p <= q, keyed (p, q) in row-major order (the
+        terms of the quadratic forms ``a' M a`` of selection).
+    screening : SinglePrecisionItems or None
+        The items in single precision, for the D-optimal pick by screening
+        (:func:`adaptive_engine.kernel.multidimensional_selection.best_items`); None where
+        that pick does not apply (another criterion, not an M2PL bank).
     """
 
     k: int
@@ -76,6 +83,8 @@ class MultidimensionalTables:
     stopping_rule: Stopping
     finite_log_table: np.ndarray | None
     logistic_only: bool = False
+    slope_products: dict = attrs.field(factory=dict)
+    screening: "SinglePrecisionItems | None" = None
 
 
 def multidimensional_parameters(bank: ItemBank) -> md.MultidimensionalParameters:
@@ -123,6 +132,8 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     else:
         targets = None
     rule = attrs.evolve(st, se=None if targets is None else 1.0, se_per_dimension=None)
+    logistic = bool(np.all(params.n_categories == 2) and np.all(params.c == 0))
+    products = {(p, q): params.slopes[:, p] * params.slopes[:, q] for p in range(k) for q in range(p, k)}
     finite = None
     if design.selection.criterion is SelectionCriterion.KULLBACK_LEIBLER:
         finite = np.ascontiguousarray(np.where(np.isfinite(log_table), log_table, 0.0).transpose(0, 2, 1))
@@ -131,8 +142,42 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
         params=params, prior_mean=mean, prior_covariance=cov, prior_precision=precision, log_prior=log_prior,
         composite_weights=None if weights is None else np.asarray(weights, dtype=float),
         se_targets=targets, stopping_rule=rule, finite_log_table=finite,
-        logistic_only=bool(np.all(params.n_categories == 2) and np.all(params.c == 0)),
+        logistic_only=logistic,
+        slope_products=products,
+        screening=SinglePrecisionItems.of(params, products) if (
+            design.selection.criterion is SelectionCriterion.D_OPTIMALITY and logistic) else None,
     )
+
+
+@attrs.frozen(eq=False)
+class SinglePrecisionItems:
+    """An M2PL bank's items in single precision, and the magnitudes that bound its rounding.
+
+    Attributes
+    ----------
+    linear : float32 (K + 1, n)
+        The slopes and, in the last row, the intercepts: ``z = [theta, 1] . linear``.
+    products : float32 (K (K + 1) / 2, n)
+        ``a_p a_q`` in the order of :attr:`MultidimensionalTables.slope_products`.
+    largest_slope : float (K,)
+        The largest ``|a_k|`` of the bank on each dimension.
+    largest_intercept : float
+        The largest ``|d|`` of the bank.
+    """
+
+    linear: np.ndarray
+    products: np.ndarray
+    largest_slope: np.ndarray
+    largest_intercept: float
+
+    @classmethod
+    def of(cls, params: md.MultidimensionalParameters, products: dict) -> "SinglePrecisionItems":
+        slopes = params.slopes
+        intercepts = params.intercepts[:, 0]
+        return cls(linear=np.ascontiguousarray(np.vstack([slopes.T, intercepts[None, :]]), dtype=np.float32),
+                   products=np.stack([v for v in products.values()]).astype(np.float32),
+                   largest_slope=np.max(np.abs(slopes), axis=0),
+                   largest_intercept=float(np.max(np.abs(intercepts))))
 
 
 # ----------------------------------------------------------------------------------------
@@ -213,33 +258,62 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
     """
     theta = np.asarray(theta, dtype=float)
     k = tab.k
-    info = np.array(precision, dtype=float, copy=True)
-    grad = np.zeros(theta.shape) if score else None
     width = items.shape[1]
     reached = np.flatnonzero((items >= 0).any(axis=0))
-    for col in reached[reached < width]:
+    reached = reached[reached < width]
+    if tab.logistic_only:
+        return _logistic_information_and_score(tab, items[:, reached], responses[:, reached], theta, precision,
+                                               score=score)
+    info = np.array(precision, dtype=float, copy=True)
+    grad = np.zeros(theta.shape) if score else None
+    for col in reached:
         it = items[:, col]
         given = it >= 0
         params = tab.params.take(np.maximum(it, 0))
         a = params.slopes
-        if tab.logistic_only:
-            # M2PL items: P = expit(D (a . theta + d)), J = D^2 P (1 - P), score D (x - P)
-            scaling = params.scaling
-            prob = expit(scaling * (md.projection(params, theta) + params.intercepts[:, 0]))
-            j = np.where(given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
-        else:
-            j = np.where(given, md.slope_information(params, theta), 0.0)
+        j = np.where(given, md.slope_information(params, theta), 0.0)
         for p in range(k):
             for q in range(p, k):
                 info[:, p, q] = info[:, p, q] + j * a[:, p] * a[:, q]
                 if q != p:
                     info[:, q, p] = info[:, p, q]
-        if score and tab.logistic_only:
-            r = np.where(given, params.scaling * (responses[:, col] - prob), 0.0)
-            grad = grad + r[:, None] * a
-        elif score:
+        if score:
             grad = grad + md.log_likelihood_gradient(params, theta, np.where(given, responses[:, col], -1))
     return info, grad
+
+
+def _logistic_information_and_score(tab, items, responses, theta, precision, *, score):
+    """:func:`test_information_and_score` for a bank of M2PL items, every column at once.
+
+    ``P = expit(D (a . theta + d))``, ``J = D^2 P (1 - P)``, score ``D (x - P)``, elementwise
+    over (R, L); the sums over the columns run in their order (``np.add.accumulate`` adds
+    one column after another), so every value is the one adding a column at a time gives.
+    """
+    k = tab.k
+    given = items >= 0
+    params = tab.params.take(np.maximum(items, 0))  # (R, L)
+    a = params.slopes  # (R, L, K)
+    scaling = params.scaling
+    prob = expit(scaling * (md.projection(params, theta[:, None, :]) + params.intercepts[..., 0]))
+    j = np.where(given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
+    info = np.array(precision, dtype=float, copy=True)
+    for p in range(k):
+        for q in range(p, k):
+            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[..., p] * a[..., q])
+            if q != p:
+                info[:, q, p] = info[:, p, q]
+    if not score:
+        return info, None
+    r = np.where(given, scaling * (responses - prob), 0.0)
+    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[..., d]) for d in range(k)], axis=1)
+    return info, grad
+
+
+def _sum_in_order(start: np.ndarray, terms: np.ndarray) -> np.ndarray:
+    """``(((start + t_0) + t_1) + ..)`` per row of ``terms`` (R, L): one column after another."""
+    if terms.shape[1] == 0:
+        return start.copy()
+    return np.add.accumulate(np.concatenate([start[:, None], terms], axis=1), axis=1)[:, -1]
 
 
 # ----------------------------------------------------------------------------------------
@@ -253,6 +327,16 @@ def posterior_moments(log_post: np.ndarray, points: np.ndarray) -> tuple[np.ndar
     a grid within +-20 that loses at most four of sixteen digits, as in the
     one-dimensional :func:`adaptive_engine.irt.posterior.posterior_mean_sd`).
     """
+    return _moments(log_post, points, _point_products(points))
+
+
+def _point_products(points: np.ndarray) -> dict:
+    """``x_i x_j`` of every grid point for i <= j, the weights of the second moments."""
+    k = points.shape[1]
+    return {(i, j): points[:, i] * points[:, j] for i in range(k) for j in range(i, k)}
+
+
+def _moments(log_post, points, products) -> tuple[np.ndarray, np.ndarray]:
     w = relative_density(log_post)
     total = np.sum(w, axis=1)
     k = points.shape[1]
@@ -260,9 +344,66 @@ def posterior_moments(log_post: np.ndarray, points: np.ndarray) -> tuple[np.ndar
     cov = np.empty((log_post.shape[0], k, k))
     for i in range(k):
         for j in range(i, k):
-            second = np.einsum("rg,g->r", w, points[:, i] * points[:, j]) / total
+            second = np.einsum("rg,g->r", w, products[i, j]) / total
             cov[:, i, j] = cov[:, j, i] = second - mean[:, i] * mean[:, j]
     return mean, cov
+
+
+def add_and_moments(log_post, rows, table=None, items=None, categories=None, points=None, *,
+                    moments: bool = True) -> tuple[np.ndarray, np.ndarray] | None:
+    """Add answers' log likelihoods to rows of a batch posterior, then their moments.
+
+    For each k, ``table[items[k], categories[k]]`` (a row on the product grid) is added to
+    ``log_post[rows[k]]`` in place (nothing where ``items[k] < 0``, nothing at all without
+    a ``table``); with ``moments`` the posterior mean and covariance of those rows are
+    returned as :func:`posterior_moments` gives them.  The rows go through in blocks that
+    fit in the processor's cache (as the one-dimensional
+    :func:`adaptive_engine.irt.posterior.add_and_summarize` does), each added to and read
+    while it is there: every value is the same, operation for operation, as adding for the
+    whole batch and then calling :func:`posterior_moments` on it (each row's sums run over
+    that row alone).
+
+    Parameters
+    ----------
+    log_post : float array (B, G), changed in place
+    rows : int array (R,)
+        Distinct rows of ``log_post``.
+    table : float array (n, C, G), optional
+        Log probability of each item's categories on the grid.
+    items, categories : int arrays (R,), optional
+    points : float array (G, K)
+        The grid (needed with ``moments``).
+
+    Returns
+    -------
+    (mean (R, K), covariance (R, K, K)), or None without ``moments``
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    r_n = rows.size
+    k = 0 if points is None else points.shape[1]
+    mean = np.empty((r_n, k))
+    cov = np.empty((r_n, k, k))
+    if r_n == 0:
+        return (mean, cov) if moments else None
+    products = _point_products(points) if moments else None
+    step = max(1, BLOCK_VALUES // max(1, log_post.shape[-1]))
+    # consecutive rows (a whole batch, or the rows still testing in order) are read as views
+    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    adding = table is not None
+    every = adding and bool(np.all(items >= 0))
+    for i in range(0, r_n, step):
+        j = min(i + step, r_n)
+        block = log_post[rows[i] : rows[i] + (j - i)] if consecutive else log_post[rows[i:j]]
+        if every:
+            block += table[items[i:j], categories[i:j]]
+        elif adding:
+            sel = np.flatnonzero(items[i:j] >= 0)
+            block[sel] += table[items[i:j][sel], categories[i:j][sel]]
+        if adding and not consecutive:
+            log_post[rows[i:j]] = block
+        if moments:
+            mean[i:j], cov[i:j] = _moments(block, points, products)
+    return (mean, cov) if moments else None
 
 
 @attrs.define(eq=False)

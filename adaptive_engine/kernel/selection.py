@@ -41,6 +41,11 @@ SHORTLIST_EXACT = 8
 QUICK_EXACT = 2
 #: Rows evaluated together on the general path (bounds memory at rows x items).
 ROW_CHUNK = 1024
+#: Rows x items of one block of the general path for an ability vector, whose criteria
+#: take a dozen passes over their arrays: 1 MB of single precision (the D-optimal
+#: screening), 2 MB of double, so that they stay in the processor's cache (the rows are
+#: independent: any split gives the same picks).
+VECTOR_BLOCK_VALUES = 1 << 18
 #: Items ranked per row on the general path before falling back to a full sort.
 GENERAL_TOP = 64
 
@@ -193,12 +198,21 @@ def _criterion_pick(ctx, state, rows) -> Choice:
         withheld.extend(proven.withheld)
         left[proven.rows] = False
     rest = np.flatnonzero(left)
-    for start in range(0, rest.size, ROW_CHUNK):
-        part = rest[start : start + ROW_CHUNK]
+    chunk = ROW_CHUNK
+    facts = None
+    if ctx.multidimensional is not None:
+        from .multidimensional_selection import row_facts
 
-        def ordinary(sub, part=part):
+        chunk = max(1, VECTOR_BLOCK_VALUES // max(1, ctx.n_items))
+        # what the criterion needs of each row, once for all the blocks
+        facts = row_facts(ctx, state, rows[rest]) if rest.size else None
+    for start in range(0, rest.size, chunk):
+        part = rest[start : start + chunk]
+        part_facts = None if facts is None else facts[start : start + chunk]
+
+        def ordinary(sub, part=part, part_facts=part_facts):
             return _general_pick(ctx, state, rows[part[sub]], restrict[part[sub]], open_area[part[sub]],
-                                 fits[part[sub]])
+                                 fits[part[sub]], None if part_facts is None else part_facts[sub])
 
         if design.blueprint.shadow_test:
             from .shadow import shadow_test_choice
@@ -520,7 +534,7 @@ def _exact_information(bank, items, theta) -> np.ndarray:
     return models.dichotomous_information_columns(theta[:, None], *columns.take(items, axis=1))
 
 
-def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:
+def _general_pick(ctx, state, rows, restrict, open_area, fits, facts=None) -> Choice:
     n = ctx.n_items
     cand = np.broadcast_to(np.arange(n), (rows.size, n))
     ok = eligible(ctx, state, rows, cand, open_area=open_area, fits=fits)
@@ -530,13 +544,31 @@ def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:
         has = (ok & in_area).any(axis=1)
         # an area with no eligible item left does not block the test: use all open areas
         ok = np.where((restricted & has)[:, None], ok & in_area, ok)
-    values = criterion_values(ctx, state, rows, ok)
+    rule = pick_rule(ctx, state, rows)
+    best_only = not (rule.draw & (rule.width > 1)).any() and not rule.lottery.any()
+    if best_only and ctx.multidimensional is not None and not _values_adjusted(ctx):
+        from .multidimensional_selection import best_items
+
+        # the best item without every item's value in double precision (None: no such route)
+        found = best_items(ctx, state, rows, ok, facts)
+        if found is not None and (n <= 2 * GENERAL_TOP or not np.any(found[2] > GENERAL_TOP)):
+            return Choice(item=found[0], value=found[1], withheld=[])
+    values = criterion_values(ctx, state, rows, ok, facts)
     if n <= 2 * GENERAL_TOP:
         ranked = _choose_ranked(ctx, state, rows, cand, values, ok)
         return Choice(item=ranked.item, value=ranked.value, withheld=ranked.withheld)
+    masked = np.where(ok, values, -np.inf)
+    if best_only:
+        # Every row takes its best item: the first of the best in bank order, which is what
+        # ranking the best GENERAL_TOP items below gives whenever no more than GENERAL_TOP
+        # items tie at the best (they are all among those ranked then).
+        pos = np.argmax(masked, axis=1)
+        best = masked[np.arange(rows.size), pos]
+        if not np.any(np.count_nonzero(masked == best[:, None], axis=1) > GENERAL_TOP):
+            n_ok = np.count_nonzero(ok, axis=1)
+            return Choice(item=np.where(n_ok > 0, pos, -1), value=np.where(n_ok > 0, best, np.nan), withheld=[])
     # Rank only the best GENERAL_TOP items of each row (sorted by item first, so ties order
     # as in a full stable sort); rows whose choice reaches past them are ranked in full.
-    masked = np.where(ok, values, -np.inf)
     top = np.sort(np.argpartition(-masked, GENERAL_TOP - 1, axis=1)[:, :GENERAL_TOP], axis=1)
     top_ok = np.take_along_axis(ok, top, axis=1)
     ranked = _choose_ranked(ctx, state, rows, top, np.take_along_axis(values, top, axis=1), top_ok)
@@ -551,8 +583,20 @@ def _general_pick(ctx, state, rows, restrict, open_area, fits) -> Choice:
     return Choice(item=chosen, value=chosen_val, withheld=withheld)
 
 
-def criterion_values(ctx, state, rows, ok) -> np.ndarray:
-    """Criterion value of every item for ``rows``, (R, n); higher is better."""
+def _values_adjusted(ctx) -> bool:
+    """Whether the criterion's values are reweighted before the pick (maximum priority
+    index, progressive exposure control)."""
+    design = ctx.design
+    return bool((ctx.balanced and design.blueprint.method is BlueprintMethod.MAX_PRIORITY_INDEX)
+                or design.exposure.method is ExposureMethod.PROGRESSIVE)
+
+
+def criterion_values(ctx, state, rows, ok, facts=None) -> np.ndarray:
+    """Criterion value of every item for ``rows``, (R, n); higher is better.
+
+    ``facts`` (an ability vector only): what
+    :func:`.multidimensional_selection.row_facts` gives for ``rows``, when known.
+    """
     design = ctx.design
     crit = design.selection.criterion
     theta = state.theta[rows]
@@ -563,7 +607,7 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
     if ctx.multidimensional is not None:
         from .multidimensional_selection import criterion_values as multidimensional_values
 
-        values = multidimensional_values(ctx, state, rows)
+        values = multidimensional_values(ctx, state, rows, facts)
     elif crit is SelectionCriterion.MAX_FISHER_INFORMATION:
         values = models.information(all_item_params(ctx), theta[:, None])
     elif crit is SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION:
@@ -583,8 +627,11 @@ def criterion_values(ctx, state, rows, ok) -> np.ndarray:
         if design.exposure.method is ExposureMethod.PROGRESSIVE:
             values = _progressive(ctx, state, rows, values, ok)
     # an item a criterion rules out (-inf: outside the current a-stratum) stays out whatever
-    # the weights: 0 x -inf is NaN, and argmax would pick the first NaN
-    return np.where(np.isnan(values), -np.inf, values)
+    # the weights: 0 x -inf is NaN, and argmax would pick the first NaN (the maximum is NaN
+    # exactly when some value is: one pass finds out whether there is anything to replace)
+    if values.size and np.isnan(np.max(values)):
+        values = np.where(np.isnan(values), -np.inf, values)
+    return values
 
 
 def all_item_params(ctx):
