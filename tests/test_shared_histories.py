@@ -120,26 +120,38 @@ def test_examinees_with_the_same_answers_share_a_row_and_get_what_their_own_rows
         assert len(set(shared["stop_reason"])) > 1 or len(set(shared["n_scored"])) > 1
 
 
-def test_a_design_with_random_draws_gets_a_row_per_examinee():
-    # the conservative rule: any draw from the examinee's streams turns sharing off (here a
-    # random pick among the two best first items; randomesque in the other)
-    bank = _bank(False)
-    for extra in ("[opening]\nfirst_item_candidates = 2\n", "[exposure]\nmethod = \"randomesque\"\ncandidates = 2\n"):
-        design = parse_design(f"""
+RANDOM_DRAWS = {
+    "opening draw": "[opening]\nfirst_item_candidates = 2\n",
+    "randomesque": "[exposure]\nmethod = \"randomesque\"\ncandidates = 2\n",
+    "progressive": "[exposure]\nmethod = \"progressive\"\n",
+    "random criterion": "[selection]\ncriterion = \"random\"\n",
+    "pretest seeding": "[blueprint]\npretest_positions = [2]\n",
+}
+
+
+@pytest.mark.parametrize("draw", sorted(RANDOM_DRAWS))
+def test_a_design_with_random_draws_gets_a_row_per_examinee(draw):
+    # the conservative rule: any draw from the examinee's streams turns sharing off (a random
+    # starting point is refused for an ability vector; Sympson-Hetter is the same check as
+    # in the one-dimensional kernel)
+    extra = RANDOM_DRAWS[draw]
+    criterion = "" if "criterion" in extra else "[selection]\ncriterion = \"d_optimality\"\n"
+    design = parse_design(f"""
 [scoring]
 prior_covariance = [[1.0, 0.5], [0.5, 1.0]]
 grid_points_per_dimension = 21
-[selection]
-criterion = "d_optimality"
 [stopping]
 min_items = 4
 max_items = 4
-{extra}""")
-        ctx = build_context(design, bank)
-        assert cycle.draws_at_random(ctx)
-        keys = np.arange(1, 6, dtype=np.uint64)
-        (state, _), rows = ChunkRows.start(ctx, keys)
-        assert not rows.shared and state.size == 5 and rows.in_use().size == 5
+{criterion}{extra}""")
+    bank = _bank(False)
+    if draw == "pretest seeding":
+        bank = bank.evolve(status=["pretest" if i >= 85 else "operational" for i in range(bank.n_items)])
+    assert check_design_against_bank(design, bank) == []
+    ctx = build_context(design, bank)
+    assert ctx.multidimensional is not None and cycle.draws_at_random(ctx)
+    (state, _), rows = ChunkRows.start(ctx, np.arange(1, 6, dtype=np.uint64))
+    assert not rows.shared and state.size == 5 and rows.in_use().size == 5
 
 
 def test_splitting_copies_each_new_history_from_its_parent_row():
