@@ -80,15 +80,17 @@ def draws_at_random(ctx: TestContext) -> bool:
 
     The draws are: a random starting ability, a random pick among the first items,
     pretest seeding, randomesque, Sympson-Hetter and progressive exposure control, and
-    the random criterion.  A design without them (and an ability that is a number, not a
-    vector) decides everything from the answers alone: two examinees who gave the same
-    answers to the same items are then in the same state, row for row, apart from their
-    stream keys -- which the simulation uses to compute a shared history once.
+    the random criterion.  A design without them decides everything from the answers
+    alone: two examinees who gave the same answers to the same items are then in the same
+    state, row for row, apart from their stream keys -- which the simulation uses to
+    compute a shared history once.  The same holds for an ability vector: the
+    multidimensional kernel draws only through the selection machinery shared with this
+    one (its start is always ``[opening] theta``; a random starting point is refused for
+    it), and its estimates, criteria and stopping rules read the answers alone.
     """
     design = ctx.design
     return bool(
-        ctx.multidimensional is not None
-        or design.opening.random_theta is not None
+        design.opening.random_theta is not None
         or design.opening.first_item_candidates > 1
         or design.blueprint.pretest_positions
         or design.exposure.method is not ExposureMethod.NONE

@@ -1,7 +1,9 @@
 """The simulation driver and the studies built on it.
 
 * :mod:`.engine` -- simulated examinees through the kernel, in chunks, optionally in parallel
-  (:class:`Execution`: how a run is carried out);
+  (:class:`Execution`: how a run is carried out); :mod:`.multidimensional_engine` the same
+  for an ability vector; :mod:`.shared_histories` lets both compute the early steps of a
+  chunk once per history of answers when the design draws nothing at random;
 * :mod:`.population` -- the simulated population (:class:`Population`, ability specifications);
 * :mod:`.metrics` -- precision, exposure, classification and content summaries;
 * :mod:`.study` -- a simulation study written to files;

@@ -23,8 +23,9 @@ A design that draws nothing at random (:func:`adaptive_engine.kernel.cycle.draws
 no random start, opening draw, pretest seeding, randomesque, Sympson-Hetter or progressive
 exposure control, random criterion) decides from the answers alone, so examinees who gave
 the same answers so far share one row of the kernel state, split when their answers part
-(:func:`run_chunk`): the early steps of a large chunk are computed once per history, not
-once per examinee, with every result the same.
+(:mod:`adaptive_engine.simulation.shared_histories`, also used by the multidimensional
+driver): the early steps of a large chunk are computed once per history, not once per
+examinee, with every result the same.
 
 Two value objects carry a run's settings through every layer: the simulated examinees
 (:class:`~adaptive_engine.simulation.population.Population`: true abilities, seed, true
@@ -55,6 +56,7 @@ from ..kernel import final_report as reporting
 from ..kernel import random_streams as randomness
 from ..kernel.prepared import TestContext, build_context
 from .population import Population
+from .shared_histories import ChunkRows
 
 __all__ = ["DEFAULT_CHUNK", "ChunkResult", "Execution", "Population", "SimulationError", "SimulationResult",
            "effective_chunk_size", "iter_chunks", "perturbed_bank", "run_chunk", "simulate", "stratum_of",
@@ -377,20 +379,9 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
     true_params = truth.params
     seeds = randomness.examinee_seeds(seed, n, start=start)
     keys = randomness.stream_key(seeds)
-    # Without random draws in the design, examinees who gave the same answers so far are
-    # in the same kernel state: they share one row of it (a history), computed once; a
-    # history splits into new rows when its examinees answer its pending item differently
-    # (a 30-item test of 10,000 examinees has 2 histories after one answer, about 1,000
-    # after ten, and one per examinee after twenty).  node_of: each examinee's row.
-    shared = n > 1 and not kernel.draws_at_random(ctx)
-    if shared:
-        state, picked = kernel.start(ctx, keys[:1])
-        state = state.with_capacity(n)
-        node_of = np.zeros(n, dtype=np.int64)
-        n_rows = 1
-    else:
-        state, picked = kernel.start(ctx, keys)
-        node_of = None
+    # Without random draws in the design, examinees who gave the same answers so far share
+    # one kernel row (a history), split when their answers part (.shared_histories)
+    (state, picked), chunk_rows = ChunkRows.start(ctx, keys)
     length = ctx.max_length
     draw_answers = _answer_drawer(true_params)
     interim_theta = np.full((n, length), np.nan)
@@ -401,16 +392,12 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
         cuts = np.asarray(count_by_stratum, dtype=float)
         # stratum of the interim estimate each item (or withheld item) was picked at
         pick_stratum = np.zeros((n, length), dtype=np.int64)
-        pick_stratum[:, 0] = stratum_of(state.theta[node_of] if shared else state.theta, cuts)
+        pick_stratum[:, 0] = stratum_of(chunk_rows.of_examinees(state.theta), cuts)
         withheld: list = []  # (row, item, estimate stratum)
         _keep_withheld(withheld, picked, state.theta, cuts)
     _count_withheld(offered, picked)
     while True:
-        if shared:
-            examinees = np.flatnonzero(~state.done[node_of])
-            at_row = node_of[examinees]
-        else:
-            examinees = at_row = np.flatnonzero(~state.done)
+        examinees, at_row = chunk_rows.testing(state)
         if on_round is not None:
             on_round(n - examinees.size)
         if examinees.size == 0:
@@ -418,35 +405,26 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
         pos = state.n_given[at_row]
         u = randomness.uniforms(keys[examinees], pos, randomness.SIMULATED_ANSWER)
         answers = draw_answers(true_rows[state.pending[at_row]], true_theta[examinees], u)
-        if shared:
-            rows, answers, n_rows = _split_histories(state, node_of, examinees, at_row, answers, n_rows)
-            at_row = node_of[examinees]
-        else:
-            rows = examinees
+        rows, answers = chunk_rows.split(state, examinees, at_row, answers)
+        at_row = chunk_rows.row_of(examinees)
         picked = kernel.answer(ctx, state, rows, answers)
         _count_withheld(offered, picked)
         if by_stratum:
             going = examinees[state.pending[at_row] >= 0]
-            going_row = node_of[going] if shared else going
+            going_row = chunk_rows.row_of(going)
             pick_stratum[going, state.n_given[going_row]] = stratum_of(state.theta[going_row], cuts)
             _keep_withheld(withheld, picked, state.theta, cuts)
         # a flat put: several times faster than 2-D fancy indexing
         at = examinees * length + pos
         interim_theta.reshape(-1)[at] = state.theta[at_row]
         interim_se.reshape(-1)[at] = state.se[at_row]
-    if shared:
-        final = kernel.final_estimates(ctx, state, np.arange(n_rows), scores_only=True)
-        theta, se = final.theta[node_of], final.se[node_of]
-        sprt_decision = None if final.sprt_decision is None else final.sprt_decision[node_of]
-        items, responses, scored = state.items[node_of], state.responses[node_of], state.scored[node_of]
-        n_scored, n_pretest = state.n_scored[node_of], state.n_pretest[node_of]
-        stop_reason, area_counts = state.stop_reason[node_of], state.area_counts[node_of]
-    else:
-        final = kernel.final_estimates(ctx, state, np.arange(n), scores_only=True)
-        theta, se, sprt_decision = final.theta, final.se, final.sprt_decision
-        items, responses, scored = state.items, state.responses, state.scored
-        n_scored, n_pretest = state.n_scored.copy(), state.n_pretest.copy()
-        stop_reason, area_counts = state.stop_reason.copy(), state.area_counts
+    final = kernel.final_estimates(ctx, state, chunk_rows.in_use(), scores_only=True)
+    per_examinee = chunk_rows.of_examinees
+    theta, se = per_examinee(final.theta), per_examinee(final.se)
+    sprt_decision = None if final.sprt_decision is None else per_examinee(final.sprt_decision)
+    items, responses, scored = per_examinee(state.items), per_examinee(state.responses), per_examinee(state.scored)
+    n_scored, n_pretest = per_examinee(state.n_scored), per_examinee(state.n_pretest)
+    stop_reason, area_counts = per_examinee(state.stop_reason), per_examinee(state.area_counts)
     administered = np.bincount(items[items >= 0], minlength=bank.n_items)
     given_s = offered_s = None
     if by_stratum:
@@ -465,37 +443,6 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
         administered=administered, offered=offered + administered,
         administered_by_stratum_pair=given_s, offered_by_stratum_pair=offered_s,
     )
-
-
-def _split_histories(state, node_of, examinees, at_row, answers, n_rows):
-    """One kernel row per (history, answer) among the answering examinees.
-
-    The first answer of a history (the lowest) keeps its row; every other answer gets a
-    new row, a copy of the history's state before the answer (rows ``n_rows`` on).
-    Updates ``node_of`` of the examinees; returns the rows to answer (distinct), their
-    answers and the new number of rows in use.
-    """
-    width = int(answers.max()) + 1
-    key = at_row * width + answers
-    present = np.bincount(key, minlength=n_rows * width).astype(bool)
-    pair = np.flatnonzero(present)  # sorted: by row, then answer
-    rank = np.cumsum(present) - 1  # pair index of each present key
-    pair_row, pair_answer = pair // width, pair % width
-    later = np.flatnonzero(pair_row[1:] == pair_row[:-1]) + 1  # not the first answer of its row
-    if later.size == 0:
-        node_of[examinees] = pair_row[rank[key]]
-        return pair_row, pair_answer, n_rows
-    rows = pair_row.copy()
-    rows[later] = n_rows + np.arange(later.size)
-    state.copy_rows(rows[later], pair_row[later])
-    n_rows += later.size
-    node_of[examinees] = rows[rank[key]]
-    # in ascending order (the kept rows ascend, the new ones come after them): the kernel
-    # reads and writes consecutive rows as slices
-    kept = np.ones(rows.size, dtype=bool)
-    kept[later] = False
-    return (np.concatenate([rows[kept], rows[later]]), np.concatenate([pair_answer[kept], pair_answer[later]]),
-            n_rows)
 
 
 def _count_withheld(offered, picked) -> None:

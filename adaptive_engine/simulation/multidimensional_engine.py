@@ -5,7 +5,9 @@ multidimensional kernel (a bank of K > 1 dimensions, or a design that asks for i
 examinee ``i`` gets the seed ``randomness.examinee_seeds(seed, n)[i]`` and its answers are
 drawn from the counter-based stream ``SIMULATED_ANSWER`` exactly as in the
 one-dimensional driver, so a simulated examinee replays identically as a live session.
-Runs in this process, in chunks.
+Runs in this process, in chunks; as there, examinees who gave the same answers so far
+share one kernel row when the design draws nothing at random
+(:mod:`adaptive_engine.simulation.shared_histories`), with every result the same.
 
 :func:`multidimensional_metrics` summarises precision per dimension and for the composite
 (bias, RMSE, mean SE, RMSE / mean SE, correlation of estimates with the truth), test
@@ -32,6 +34,7 @@ from ..kernel import cycle as kernel
 from ..kernel import random_streams as randomness
 from ..kernel.multidimensional_cycle import composite
 from ..kernel.prepared import TestContext, build_context
+from .shared_histories import ChunkRows
 
 #: Examinees per kernel batch (the posterior is batch x grid points).
 DEFAULT_CHUNK = 2000
@@ -72,22 +75,28 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
     n = true_theta.shape[0]
     params = bank.multidimensional_params
     seeds = randomness.examinee_seeds(seed, n, start=start)
-    state, _ = kernel.start(ctx, randomness.stream_key(seeds))
+    keys = randomness.stream_key(seeds)
+    # examinees with the same answers so far share a kernel row when the design draws
+    # nothing at random (.shared_histories, as in the one-dimensional driver)
+    (state, _), chunk_rows = ChunkRows.start(ctx, keys)
     while True:
-        rows = np.flatnonzero(~state.done)
-        if rows.size == 0:
+        examinees, at_row = chunk_rows.testing(state)
+        if examinees.size == 0:
             break
-        pos = state.n_given[rows]
-        u = randomness.uniforms(state.keys[rows], pos, randomness.SIMULATED_ANSWER)
-        item = state.pending[rows]
-        p = md.probabilities(params.take(item), true_theta[rows])  # (R, C)
+        pos = state.n_given[at_row]
+        u = randomness.uniforms(keys[examinees], pos, randomness.SIMULATED_ANSWER)
+        item = state.pending[at_row]
+        p = md.probabilities(params.take(item), true_theta[examinees])  # (R, C)
         top = params.n_categories[item] - 1
         answers = np.minimum((np.cumsum(p, axis=1) < u[:, None]).sum(axis=1), top)
+        rows, answers = chunk_rows.split(state, examinees, at_row, answers)
         kernel.answer(ctx, state, rows, answers)
-    est = kernel.final_estimates(ctx, state, np.arange(n))
-    return dict(seeds=seeds, true_theta=true_theta, theta=est.theta, se=est.se, covariance=est.covariance,
-                n_scored=state.n_scored.copy(), n_pretest=state.n_pretest.copy(),
-                stop_reason=state.stop_reason.copy(), items=state.items.copy(), responses=state.responses.copy())
+    est = kernel.final_estimates(ctx, state, chunk_rows.in_use())
+    per_examinee = chunk_rows.of_examinees
+    return dict(seeds=seeds, true_theta=true_theta, theta=per_examinee(est.theta), se=per_examinee(est.se),
+                covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
+                n_pretest=per_examinee(state.n_pretest).copy(), stop_reason=per_examinee(state.stop_reason).copy(),
+                items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy())
 
 
 def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, seed: int,
