@@ -48,3 +48,21 @@ def figures_not_rasterized(monkeypatch):
     from adaptive_engine.simulation import html_report
 
     monkeypatch.setattr(html_report, "png_base64", lambda fig: "")
+
+
+def pytest_addoption(parser, pluginmanager):
+    # pyproject.toml's addopts run the suite on two workers (pytest-xdist, the test extra).
+    # Without the plugin (not installed, or ``-p no:xdist``) its two options would be
+    # unknown and pytest would refuse to start: take them and run in this one process.
+    if not pluginmanager.has_plugin("xdist"):
+        for option in ("--numprocesses", "--dist"):
+            parser.addoption(option, help="(pytest-xdist is not in use: ignored, the tests run in this process)")
+
+
+def pytest_collection_modifyitems(config, items):
+    # On the workers of pytest-xdist, the tests marked long_running come first: the
+    # scheduler hands tests out in collection order, so a test of several seconds started
+    # last would keep one core busy while the other waits at the end.  A run in one
+    # process keeps the files' order.
+    if os.environ.get("PYTEST_XDIST_WORKER"):
+        items.sort(key=lambda item: item.get_closest_marker("long_running") is None)  # stable

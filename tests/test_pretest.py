@@ -25,6 +25,9 @@ from adaptive_engine.errors import CalibrationError, SessionError
 from adaptive_engine.irt import models
 from adaptive_engine.live.store import bank_content, open_store, read_bank_answers
 
+#: seconds in all: started first on the test workers (tests/conftest.py)
+pytestmark = pytest.mark.long_running
+
 N_OPERATIONAL = 30
 PRETEST = {  # item id -> (a, b) of the generating 2PL
     "new1": (1.2, -0.8), "new2": (0.9, 0.3), "new3": (1.6, 1.0), "new4": (1.0, 0.0),
