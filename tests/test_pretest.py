@@ -55,6 +55,7 @@ def _store(path, bank, rng, *, n_sessions=2500, rare=None, truth=None, n_given=1
     truth = _truth(bank, PRETEST) if truth is None else truth
     operational = [str(i) for i, s in zip(bank.item_ids, bank.status) if s == "operational"]
     pretest_ids = [str(i) for i, s in zip(bank.item_ids, bank.status) if s == "pretest"]
+    scored = set(operational)
     theta = rng.normal(0.4, 1.1, n_sessions)
     sessions, events = [], []
     with open_store(path) as store, store.writing():
@@ -79,8 +80,8 @@ def _store(path, bank, rng, *, n_sessions=2500, rare=None, truth=None, n_given=1
                     seq += 1
                     events.append(dict(session_id=sid, seq=seq, kind=kind, item_id=item,
                                        response=int(x) if kind == "answer" else None,
-                                       scored=int(item in operational), elapsed=1.0, created_at="",
-                                       rng_state=json.dumps({"key": 1, "position": seq})))
+                                       scored=int(item in scored), elapsed=1.0, created_at="",
+                                       rng_state=f'{{"key": 1, "position": {seq}}}'))  # as json.dumps
         for row in sessions:
             store.insert_session(row)
         store.append_events(events)
