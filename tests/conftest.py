@@ -27,3 +27,20 @@ for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 os.environ.pop("PYTHONDONTWRITEBYTECODE", None)
 sys.dont_write_bytecode = False
 
+
+def pytest_addoption(parser, pluginmanager):
+    # pyproject.toml's addopts run the suite on two workers (pytest-xdist, the test extra).
+    # Without the plugin (not installed, or ``-p no:xdist``) its two options would be
+    # unknown and pytest would refuse to start: take them and run in this one process.
+    if not pluginmanager.has_plugin("xdist"):
+        for option in ("--numprocesses", "--dist"):
+            parser.addoption(option, help="(pytest-xdist is not in use: ignored, the tests run in this process)")
+
+
+def pytest_collection_modifyitems(config, items):
+    # On the workers of pytest-xdist, the tests marked long_running come first: the
+    # scheduler hands tests out in collection order, so a test of several seconds started
+    # last would keep one core busy while the other waits at the end.  A run in one
+    # process keeps the files' order.
+    if os.environ.get("PYTEST_XDIST_WORKER"):
+        items.sort(key=lambda item: item.get_closest_marker("long_running") is None)  # stable

@@ -5,9 +5,10 @@ read its URL from ``ADAPTIVE_ENGINE_TEST_POSTGRES`` (default
 ``postgresql://postgres@127.0.0.1:5432/test``, what the project's machines and CI start),
 make a schema of their own for each store (``ae_test_<pid>_<n>``, named in the URL's
 ``search_path``) and drop it afterwards; leftovers of a crashed run of this process are
-dropped at exit.  Without a server (or without psycopg) the PostgreSQL tests are skipped
-with the reason -- unless the environment variable ``CI`` is set, where they fail: CI
-must test both backends.
+dropped at exit.  The workers of pytest-xdist are processes of their own, so the process id
+in the name keeps their schemas apart in the one database.  Without a server (or without
+psycopg) the PostgreSQL tests are skipped with the reason -- unless the environment variable
+``CI`` is set, where they fail: CI must test both backends.
 """
 
 from __future__ import annotations

@@ -328,6 +328,7 @@ def test_conditional_step_is_the_sympson_hetter_step_when_strata_agree():
                                                           r / p0)))
 
 
+@pytest.mark.long_running
 def test_conditional_calibration_holds_every_stratum_near_the_target():
     # Reference: Stocking & Lewis (1998): after the conditional parameters are calibrated,
     # the exposure rate conditional on ability stays at or below r in every ability

@@ -31,6 +31,9 @@ from adaptive_engine.simulation.multidimensional_tuning import tune_multidimensi
 from adaptive_engine.simulation.population import Population, draw_vectors, parse_ability_spec
 from adaptive_engine.simulation.tuning import Variation, apply_settings, tune
 
+#: seconds in all: started first on the test workers (tests/conftest.py)
+pytestmark = pytest.mark.long_running
+
 ROOT = Path(__file__).resolve().parent.parent
 BANK = ROOT / "item_banks" / "meridian_valley_operator_2d.json"
 DEMO = ROOT / "simulations" / "licensing_two_dimensional.toml"

@@ -25,6 +25,9 @@ from adaptive_engine.errors import CalibrationError, SessionError
 from adaptive_engine.irt import models
 from adaptive_engine.live.store import bank_content, open_store, read_bank_answers
 
+#: seconds in all: started first on the test workers (tests/conftest.py)
+pytestmark = pytest.mark.long_running
+
 N_OPERATIONAL = 30
 PRETEST = {  # item id -> (a, b) of the generating 2PL
     "new1": (1.2, -0.8), "new2": (0.9, 0.3), "new3": (1.6, 1.0), "new4": (1.0, 0.0),
@@ -52,6 +55,7 @@ def _store(path, bank, rng, *, n_sessions=2500, rare=None, truth=None, n_given=1
     truth = _truth(bank, PRETEST) if truth is None else truth
     operational = [str(i) for i, s in zip(bank.item_ids, bank.status) if s == "operational"]
     pretest_ids = [str(i) for i, s in zip(bank.item_ids, bank.status) if s == "pretest"]
+    scored = set(operational)
     theta = rng.normal(0.4, 1.1, n_sessions)
     sessions, events = [], []
     with open_store(path) as store, store.writing():
@@ -76,8 +80,8 @@ def _store(path, bank, rng, *, n_sessions=2500, rare=None, truth=None, n_given=1
                     seq += 1
                     events.append(dict(session_id=sid, seq=seq, kind=kind, item_id=item,
                                        response=int(x) if kind == "answer" else None,
-                                       scored=int(item in operational), elapsed=1.0, created_at="",
-                                       rng_state=json.dumps({"key": 1, "position": seq})))
+                                       scored=int(item in scored), elapsed=1.0, created_at="",
+                                       rng_state=f'{{"key": 1, "position": {seq}}}'))  # as json.dumps
         for row in sessions:
             store.insert_session(row)
         store.append_events(events)

@@ -58,6 +58,7 @@ def test_the_tour_has_no_placeholders():
 
 
 @pytest.mark.skipif(shutil.which("bash") is None, reason="the tour is bash")
+@pytest.mark.long_running
 def test_every_command_of_the_tour_runs(tmp_path):
     pytest.importorskip("matplotlib", reason="the tour draws a plot (the README's first command installs it)")
     for name in NEEDED:

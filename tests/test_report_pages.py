@@ -23,6 +23,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+#: seconds in all: started first on the test workers (tests/conftest.py)
+pytestmark = pytest.mark.long_running
+
 ROOT = Path(__file__).resolve().parents[1]
 WIDTHS = (1024, 1400)
 

@@ -46,6 +46,7 @@ def keys_of(obj):
 
 
 @pytest.mark.skipif(shutil.which("curl") is None or shutil.which("bash") is None, reason="needs curl and bash")
+@pytest.mark.long_running
 def test_the_curl_examples_of_the_service_page_run(tmp_path):
     for folder in ("simulations", "item_banks"):
         (tmp_path / folder).symlink_to(ROOT / folder)

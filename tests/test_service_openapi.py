@@ -34,6 +34,9 @@ from adaptive_engine.live.service import ServiceSettings, create_app  # noqa: E4
 from adaptive_engine.live.store import open_store  # noqa: E402
 from adaptive_engine.live.tokens import new_token  # noqa: E402
 
+#: seconds in all: started first on the test workers (tests/conftest.py)
+pytestmark = pytest.mark.long_running
+
 ROOT = Path(__file__).resolve().parents[1]
 TOKENS: dict[str, str] = {}
 

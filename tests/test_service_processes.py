@@ -31,6 +31,9 @@ from adaptive_engine.live.tokens import new_token  # noqa: E402
 from service_processes import serve, serve_crashable  # noqa: E402
 from store_backends import store_location  # noqa: E402
 
+#: seconds in all: started first on the test workers (tests/conftest.py)
+pytestmark = pytest.mark.long_running
+
 ROOT = Path(__file__).resolve().parents[1]
 LICENSING = read_design(ROOT / "simulations" / "licensing_exam.toml")
 MINIMAL = read_design(ROOT / "simulations" / "minimal.toml")

@@ -55,6 +55,7 @@ def location(request, tmp_path):
 
 
 @pytest.mark.skipif("fork" not in multiprocessing.get_all_start_methods(), reason="needs the fork start method")
+@pytest.mark.long_running
 def test_eight_processes_share_one_store_without_losing_counts(location):
     db = location
     open_store(db).close()  # create the schema once, as a deployment would

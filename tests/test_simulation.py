@@ -455,6 +455,7 @@ def test_every_simulation_command_has_help():
         assert r.exit_code == 0 and len(r.output.strip().splitlines()) > 3, path
 
 
+@pytest.mark.long_running
 def test_demo_runs(tmp_path, monkeypatch):
     _shipped()
     monkeypatch.chdir(tmp_path)
