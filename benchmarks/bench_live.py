@@ -269,6 +269,13 @@ def describe_parts(name, answers, parts, others):
               f"{(wall - on) * 1e3:6.2f}; asking for the write lock until held {lock[rows].mean() * 1e3:6.2f} "
               f"(on or off); preempted in {np.mean(preempted[rows] > 0):4.0%} of them, gave up the "
               f"processor (lock pause, disk) in {np.mean(yielded[rows] > 0):4.0%}")
+    once = (preempted == 1) & (yielded == 0)
+    if np.any(once):
+        # what one preemption costs: the answers that were taken off the processor once and
+        # waited for nothing else
+        print(f"    answers preempted once and waiting for nothing else ({np.mean(once):.0%}): median "
+              f"{np.median(answers[once]) * 1e3:.2f} ms, against {np.median(answers[preempted == 0]) * 1e3:.2f} ms "
+              f"for those never preempted")
 
 
 def main():
