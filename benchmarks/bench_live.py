@@ -10,8 +10,9 @@
    counts (items given minus the sum of the counters; must be 0), and the latency of
    ``submit_answer`` and ``start_session`` under that load: median, p95 and p99 (target:
    p99 of an answer under 10 ms).  Twice: flat out (every process calls again at once: the
-   offered load exceeds two cores, so the tail is time spent waiting for a processor), and
-   paced (each process pauses ``--pause`` seconds between calls, as examinees read items).
+   offered load exceeds two cores, so the tail is time spent waiting for a processor, and
+   for the write lock while the process holding it waits for one), and paced (each process
+   pauses ``--pause`` seconds between calls, as examinees read items).
    Each process first runs one whole session (start to result), so that what a process
    does once (building or loading the bank's tables, importing the final report's modules
    at the first result) is not counted.
@@ -36,12 +37,16 @@ import argparse
 import contextlib
 import multiprocessing
 import os
-import resource
 import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
+
+try:
+    import resource  # Unix: how often a thread was preempted
+except ImportError:  # pragma: no cover - Windows
+    resource = None
 
 from adaptive_engine.bank import bank_from_records
 from adaptive_engine.design.toml_file import parse_design
@@ -116,7 +121,7 @@ def store_steps(db, bank, n_sessions):
 def _switches() -> tuple[int, int]:
     """How often this thread was taken off its processor while ready to run (preempted) and
     how often it gave it up (waited for a lock pause, the disk); Linux, else (0, 0)."""
-    if not hasattr(resource, "RUSAGE_THREAD"):
+    if resource is None or not hasattr(resource, "RUSAGE_THREAD"):
         return 0, 0
     usage = resource.getrusage(resource.RUSAGE_THREAD)
     return usage.ru_nivcsw, usage.ru_nvcsw
