@@ -975,6 +975,9 @@ class SQLiteSessionStore(SessionStore):
         # milliseconds: waiting processes do not wake together, one that has waited long
         # keeps trying as often as a newcomer, and waiting costs little processor time.
         # The busy timeout still covers every other statement, and bounds the whole wait.
+        # Trying beats queueing here: with the processors oversubscribed (8 busy processes on
+        # 2 cores), handing the lock in turn to waiters that block on a lock file left it
+        # to processes still waiting for a processor, and long holds doubled (measured).
         deadline = time.monotonic() + BUSY_TIMEOUT_SECONDS
         bound = WRITE_RETRY_FIRST
         self.conn.execute("PRAGMA busy_timeout = 0")
