@@ -10,10 +10,11 @@ Guarantees, as on SQLite:
   exposure count are written in one transaction (READ COMMITTED), committed durably
   (PostgreSQL's default ``synchronous_commit = on``).  A process killed before COMMIT
   leaves nothing; the server rolls the transaction back when the connection drops.
-* **Idempotency and order.**  An answer reads its session row ``FOR UPDATE``: two answers to
-  one session (a retry racing the original, on two servers) run one after the other, and
-  the second sees the first's events: the same answer gets the stored reply, a different
-  one is refused.
+* **Idempotency and order.**  An answer locks its session row -- it reads it ``FOR UPDATE``,
+  or, decided before the lock, updates it only if it is still as read (else it is answered
+  again under the lock): two answers to one session (a retry racing the original, on two
+  servers) run one after the other, and the second sees the first's events: the same
+  answer gets the stored reply, a different one is refused.
 * **Exact exposure counters.**  Counts are ``INSERT ... ON CONFLICT DO UPDATE SET count =
   count + 1``, which PostgreSQL runs under a row lock: no increment is lost.
 * **Append-only event log.**  Triggers refuse UPDATE, DELETE and TRUNCATE of ``events``.

@@ -575,7 +575,8 @@ def _answer_before_lock(store, rules, ctx, row, item_id, response, elapsed, cach
     row has not moved on (same last event, status and pending item) since it was read.
     When it has (another request answered the session meanwhile), nothing is written and
     None is returned: the caller answers under the lock, where every check runs on the
-    locked row.  The transaction writes what an answer under the lock writes.
+    locked row.  The transaction writes what an answer under the lock writes; the check
+    is the conditional update of the row (:meth:`SessionStore.advance_session`).
     """
     value, value_text = response
     session_id = row["session_id"]
@@ -590,13 +591,24 @@ def _answer_before_lock(store, rules, ctx, row, item_id, response, elapsed, cach
         return None  # refused under the lock, with its message
     state = cached.copy()  # the cached state stays as it is until the answer is committed
     answered = _answer_step(rules, ctx, state, session_id, item_id, value, elapsed, seq)
-    with store.writing():
-        now = store.session_row(session_id, lock=True)
-        if (now["last_seq"], now["status"], now["pending_item"]) != (row["last_seq"], row["status"], item_id):
-            return None  # the session moved on since it was read: nothing written
-        _write_answer(store, row, state, answered)
+    try:
+        with store.writing():
+            # the session row changes only if it is still as read (same last event, active,
+            # the same item pending): the check is the update, so the lock is held for the
+            # writes alone
+            if not store.advance_session(session_id, seq, item_id, answered.changes):
+                raise _MovedOn
+            store.append_events(answered.events)
+            if state.pending[0] >= 0:
+                store.count_exposure(row["bank_id"], answered.reply["item_id"])
+    except _MovedOn:
+        return None  # the session moved on since it was read: nothing written
     cache.keep(store, session_id, seq + 2, state)
     return answered.reply
+
+
+class _MovedOn(Exception):
+    """The session changed between the read and the write of an answer decided before the lock."""
 
 
 class _Answered(NamedTuple):
