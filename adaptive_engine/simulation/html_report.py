@@ -128,6 +128,25 @@ def _figure(caption: str, svg: str) -> str:
     return f"<figure>{svg}<figcaption>{_esc(caption)}</figcaption></figure>"
 
 
+def page_start(title: str) -> str:
+    """The start of a report page: head with the inline style, and the title as heading."""
+    return (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+            f"<meta name='viewport' content='width=device-width, initial-scale=1'><title>{_esc(title)}</title>"
+            f"<style>{_STYLE}</style></head><body><h1>{_esc(title)}</h1>")
+
+
+def contents_line(what: str, nav: list[tuple[str, str]]) -> str:
+    """The line under a study page's title: what the page is about and links to its sections."""
+    return (f"<p class='note'>{what} Sections: "
+            + " &middot; ".join(f"<a href='#{a}'>{b}</a>" for a, b in nav) + "</p>")
+
+
+def glossary_html(entries=(), extra=()) -> str:
+    """The glossary section: ``entries`` (term, meaning) pairs, then ``extra`` ones."""
+    return ("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
+            + "".join(f"<dt>{_esc(a)}</dt><dd>{_esc(b)}</dd>" for a, b in (*entries, *extra)) + "</dl>")
+
+
 # ----------------------------------------------------------------------------------------
 # labels and glossary
 
@@ -174,6 +193,11 @@ GLOSSARY = (
 )
 
 
+def glossary_entries(*terms: str) -> list[tuple[str, str]]:
+    """The :data:`GLOSSARY` entries of ``terms``, in the glossary's order."""
+    return [(a, b) for a, b in GLOSSARY if a in terms]
+
+
 def _stop_reason_meanings() -> dict:
     from ..kernel.stopping import STOP_REASONS
 
@@ -190,7 +214,7 @@ def _bars_width(x) -> float:
 
 
 def _conditional_figure(x, n, series, *, ylabel: str, title: str, description: str, cut=None, hline=None,
-                        ylim=None) -> str:
+                        ylim=None, xlabel: str = "true ability (theta)") -> str:
     """Lines over true ability with a panel of examinees per bin beneath; thin bins hollow.
 
     ``series``: (label, values, marker, colour) tuples; ``cut``: (theta, label) marked by
@@ -199,7 +223,7 @@ def _conditional_figure(x, n, series, *, ylabel: str, title: str, description: s
     x = np.asarray(x, dtype=float)
     n = np.asarray(n, dtype=float)
     thin = n < THIN_BIN
-    chart = Chart("true ability (theta)", title=title)
+    chart = Chart(xlabel, title=title)
     top = chart.panel(230, ylabel, ylim=ylim)
     counts = chart.panel(70, "examinees", integer_y=True)
     if hline is not None:
@@ -327,7 +351,7 @@ def _design_section(result, summary, warnings) -> list[str]:
     who = settings.get("abilities")
     parts.append(f"<p class='note'>{summary.get('examinees')} simulated examinees"
                  + (f", true abilities {_esc(who)}" if who else "")
-                 + f", seed {summary.get('seed')}"
+                 + f", seed {summary.get('seed', settings.get('seed'))}"
                  + (f"; answers drawn from the bank <code>{_esc(settings['true_bank'])}</code>"
                     if settings.get("true_bank") else "") + ".</p>")
     return parts
@@ -359,6 +383,22 @@ def _headline_section(summary) -> list[str]:
             "<p class='note'>Terms are explained in the <a href='#glossary'>glossary</a> at the end.</p>"]
 
 
+def stop_reasons_and_length_figure(result, stop_reasons: dict) -> list[str]:
+    """The table of why tests stopped and the figure of the length distribution."""
+    design = result.design
+    meanings = _stop_reason_meanings()
+    n = max(result.size, 1)
+    reasons = [{"reason": k, "meaning": meanings.get(k, ""), "examinees": v, "share": Html(_pct(v / n))}
+               for k, v in sorted(stop_reasons.items(), key=lambda kv: -kv[1])]
+    caption = "Distribution of the test length (scored items)"
+    return ["<h3>Why tests stopped</h3>",
+            table_html(reasons, ["reason", "meaning", "examinees", "share"], text=("meaning",),
+                       labels={"reason": "Stop reason", "meaning": "Meaning", "examinees": "Examinees",
+                               "share": "Share"}),
+            _figure(caption, _length_histogram(result.n_scored, min_items=design.stopping.min_items,
+                                               max_items=design.stopping.max_items, description=caption))]
+
+
 def _length_section(result, summary) -> list[str]:
     length = summary["length"]
     design = result.design
@@ -370,20 +410,10 @@ def _length_section(result, summary) -> list[str]:
         {"figure": f"Tests that ran to the maximum ({design.stopping.max_items})",
          "value": Html(_pct(length["share_at_max_items"]))},
     ]
-    meanings = _stop_reason_meanings()
-    n = max(summary["examinees"], 1)
-    reasons = [{"reason": k, "meaning": meanings.get(k, ""), "examinees": v, "share": Html(_pct(v / n))}
-               for k, v in sorted(length["stop_reasons"].items(), key=lambda kv: -kv[1])]
     parts = ["<h2 id='length'>Test length</h2>",
              "<p>Scored items per test (pretest items are given besides and not counted).</p>",
              table_html(rows, ["figure", "value"], labels={"figure": "Figure", "value": "Scored items"}),
-             "<h3>Why tests stopped</h3>",
-             table_html(reasons, ["reason", "meaning", "examinees", "share"], text=("meaning",),
-                        labels={"reason": "Stop reason", "meaning": "Meaning", "examinees": "Examinees",
-                                "share": "Share"})]
-    caption = "Distribution of the test length (scored items)"
-    parts.append(_figure(caption, _length_histogram(result.n_scored, min_items=design.stopping.min_items,
-                                                    max_items=design.stopping.max_items, description=caption)))
+             *stop_reasons_and_length_figure(result, length["stop_reasons"])]
     cond = [r for r in summary["conditional"] if r["theta"] is not None]
     if cond:
         caption = "Mean test length against true ability; the panel beneath counts the examinees per bin"
@@ -394,10 +424,10 @@ def _length_section(result, summary) -> list[str]:
     return parts
 
 
-def _conditional_rows(summary) -> tuple[list[dict], list[str], dict]:
+def _conditional_rows(conditional: list[dict]) -> tuple[list[dict], list[str], dict]:
     rows = []
-    acc = [k for k in (summary["conditional"][0] if summary["conditional"] else {}) if k.startswith("accuracy_")]
-    for r in summary["conditional"]:
+    acc = [k for k in (conditional[0] if conditional else {}) if k.startswith("accuracy_")]
+    for r in conditional:
         row = {"bin": r["bin"], "n": r["n"], "bias": r["bias"], "rmse": r["rmse"], "mean_se": r["mean_se"],
                "rmse_to_mean_se": r["rmse_to_mean_se"], "mean_length": Html(_fmt(r["mean_length"], 1))}
         for k in acc:
@@ -424,19 +454,32 @@ def _precision_section(summary) -> list[str]:
     if p.get("n_no_estimate"):
         parts.append(f"<p class='note'>{p['n_no_estimate']} examinee(s) ended without a finite estimate and are "
                      "left out of these figures.</p>")
-    cond = [r for r in summary["conditional"] if r["theta"] is not None]
+    return parts + precision_by_ability(summary["conditional"])
+
+
+def precision_by_ability(conditional: list[dict], *, ability: str = "true ability", heading: str = "By true ability",
+                         title: str = "Precision by ability") -> list[str]:
+    """The figure of RMSE, bias and mean SE by bin of true ability, and the table of the bins.
+
+    ``conditional``: rows of :func:`adaptive_engine.simulation.metrics.conditional`;
+    ``ability`` names the binned ability in the caption and the x axis.
+    """
+    parts = []
+    cond = [r for r in conditional if r["theta"] is not None]
     if cond:
-        caption = ("RMSE, bias and mean reported SE against true ability; hollow points rest on fewer than "
+        caption = (f"RMSE, bias and mean reported SE against {ability}; hollow points rest on fewer than "
                    f"{THIN_BIN} examinees (the panel beneath counts them)")
         parts.append(_figure(caption, _conditional_figure(
             [r["theta"] for r in cond], [r["n"] for r in cond],
             [("RMSE", [r["rmse"] for r in cond], "o", _BLUE),
              ("bias", [r["bias"] for r in cond], "s", "#2e7d32"),
              ("mean SE", [r["mean_se"] for r in cond], "^", "#e69500")],
-            ylabel="theta units", title="Precision by ability", hline=0.0, description=caption)))
-    rows, cols, labels = _conditional_rows(summary)
+            ylabel="theta units", title=title, hline=0.0, description=caption,
+            xlabel=f"{ability} (theta)")))
+    rows, cols, labels = _conditional_rows(conditional)
+    labels["bin"] = ability[0].upper() + ability[1:]
     thin = sum(1 for r in rows if r["n"] < THIN_BIN)
-    parts += ["<h3>By true ability</h3>",
+    parts += [f"<h3>{_esc(heading)}</h3>",
               table_html(rows, cols, labels=labels, row_class=lambda r: "thin" if r["n"] < THIN_BIN else None)]
     if thin:
         parts.append(f"<p class='note'>Rows in grey italics are thin bins: fewer than {THIN_BIN} examinees.</p>")
@@ -593,29 +636,40 @@ def _classification_section(result, summary) -> list[str]:
     classes = summary.get("classification") or []
     if not classes:
         return []
-    cuts = result.design.reporting.cut_scores
+    return classification_parts(classes, result.design.reporting.cut_scores, result.true_theta, result.at_or_above,
+                                intro="<p>Each examinee is classified at or above a cut score, or below it, by the "
+                                      "final estimate (or the SPRT's decision); the simulation knows on which side "
+                                      "the true ability lies.</p>")
+
+
+def classification_parts(classes: list[dict], cuts, true_theta, at_or_above, *, intro: str,
+                         ability: str = "true ability") -> list[str]:
+    """The classification section: its table and a curve per cut score.
+
+    ``classes``: :func:`adaptive_engine.simulation.metrics.classification` rows;
+    ``true_theta`` (N,) what is classified, ``at_or_above`` (N, cuts) the labels;
+    ``intro`` (HTML) says what is classified and how.
+    """
     rows = []
     for c in classes:
         rows.append({"cut": c["cut"], "theta": c["cut_theta"], "accuracy": Html(_pct(c["accuracy"])),
                      "false_pass": Html(f"{_pct(c['false_pass_rate'])} ({_pct(c['false_pass_among_truly_below'])})"),
                      "false_fail": Html(f"{_pct(c['false_fail_rate'])} ({_pct(c['false_fail_among_truly_above'])})"),
                      "none": Html(_pct(c["share_without_label"]))})
-    parts = ["<h2 id='classification'>Classification</h2>",
-             "<p>Each examinee is classified at or above a cut score, or below it, by the final estimate (or the "
-             "SPRT's decision); the simulation knows on which side the true ability lies.</p>",
+    parts = ["<h2 id='classification'>Classification</h2>", intro,
              table_html(rows, ["cut", "theta", "accuracy", "false_pass", "false_fail", "none"],
                         labels={"cut": "Cut score", "theta": "Cut (theta)", "accuracy": "Accuracy",
                                 "false_pass": "False pass: of all (of truly below)",
                                 "false_fail": "False fail: of all (of truly above)", "none": "Without a class"})]
     for k, cut in enumerate(cuts):
-        curve = classification_curve(result.true_theta, result.at_or_above[:, k])
+        curve = classification_curve(true_theta, np.asarray(at_or_above)[:, k])
         if not curve:
             continue
         x = [r["theta"] for r in curve]
         share = [r["share_at_or_above"] for r in curve]
         truth = [float(t >= cut.theta) for t in x]
         acc = [s if t >= cut.theta else 1 - s for s, t in zip(share, x)]
-        caption = (f"Probability of being classified '{cut.above}' against true ability, with the accuracy in each "
+        caption = (f"Probability of being classified '{cut.above}' against {ability}, with the accuracy in each "
                    f"bin; the dashed line marks the cut '{cut.name}' at theta {cut.theta:g}")
         parts.append(_figure(caption, _conditional_figure(
             x, [r["n"] for r in curve],
@@ -623,7 +677,8 @@ def _classification_section(result, summary) -> list[str]:
              ("accuracy", acc, "s", "#2e7d32"),
              ("truly at or above the cut", truth, "", "#bbbbbb")],
             ylabel="share of examinees", title=f"Classification at the cut '{cut.name}'",
-            cut=(cut.theta, f"cut {cut.name} (theta {cut.theta:g})"), ylim=(-0.03, 1.03), description=caption)))
+            cut=(cut.theta, f"cut {cut.name} (theta {cut.theta:g})"), ylim=(-0.03, 1.03), description=caption,
+            xlabel=f"{ability} (theta)")))
     return parts
 
 
@@ -669,11 +724,9 @@ def simulation_report_html(result, summary: dict, *, title: str = "", first_coun
     if summary.get("content"):
         nav.append(("content", "Content"))
     nav += [("bank", "Bank"), ("glossary", "Glossary")]
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
-             f"<meta name='viewport' content='width=device-width, initial-scale=1'><title>{_esc(title)}</title>",
-             f"<style>{_STYLE}</style></head><body><h1>{_esc(title)}</h1>",
-             f"<p class='note'>Simulation study of the design <code>{_esc(design.source or '(built in code)')}</code>. "
-             "Sections: " + " &middot; ".join(f"<a href='#{a}'>{b}</a>" for a, b in nav) + "</p>"]
+    parts = [page_start(title),
+             contents_line(f"Simulation study of the design <code>{_esc(design.source or '(built in code)')}</code>.",
+                           nav)]
     parts += _design_section(result, summary, warnings)
     parts += _headline_section(summary)
     parts += _length_section(result, summary)
@@ -684,8 +737,7 @@ def simulation_report_html(result, summary: dict, *, title: str = "", first_coun
     parts.append("<h2 id='bank'>The bank</h2>")
     caption = "Test information of all operational items of the bank (the most any test could draw on at each ability)"
     parts.append(_figure(caption, _information_figure(result.bank, caption)))
-    parts.append("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
-                 + "".join(f"<dt>{_esc(a)}</dt><dd>{_esc(b)}</dd>" for a, b in GLOSSARY) + "</dl>")
+    parts.append(glossary_html(GLOSSARY))
     parts.append("</body></html>\n")
     return "".join(parts)
 
@@ -751,9 +803,7 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
     labels.update({k: TUNING_LABELS.get(k) or (f"RMSE, {k[len('rmse_'):]}" if k.startswith("rmse_") else k)
                    for k in extra})
     criteria = "mean length (lower), RMSE (lower)" + (" and classification accuracy (higher)" if acc else "")
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
-             f"<meta name='viewport' content='width=device-width, initial-scale=1'><title>{_esc(title)}</title>",
-             f"<style>{_STYLE}</style></head><body><h1>{_esc(title)}</h1>",
+    parts = [page_start(title),
              f"<p>Every combination of {', '.join(f'<code>{_esc(k)}</code>' for k in keys) or 'the settings'} ran "
              "on the same simulated examinees with the same random streams (common random numbers), so the "
              "differences between rows are the settings' doing. A combination is <b>on the frontier</b> when no "
@@ -765,10 +815,8 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
              "criterion. The numbers in the # column label the points of the plots.</p>"]
     for caption, svg in figures or ():
         parts.append(_figure(caption, svg))
-    parts.append("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
-                 + "".join(f"<dt>{_esc(a)}</dt><dd>{_esc(b)}</dd>" for a, b in GLOSSARY
-                           if a in ("theta units", "RMSE", "bias", "RMSE / mean SE", "exposure rate",
-                                    "classification accuracy"))
-                 + "<dt>mean length</dt><dd>scored items per test, averaged over the examinees</dd></dl>")
+    parts.append(glossary_html(glossary_entries("theta units", "RMSE", "bias", "RMSE / mean SE", "exposure rate",
+                                                "classification accuracy"),
+                               [("mean length", "scored items per test, averaged over the examinees")]))
     parts.append("</body></html>\n")
     return "".join(parts)
