@@ -81,8 +81,8 @@ def _tables_after(page: str, anchor: str) -> list[list[list[str]]]:
     out = []
     for table in re.findall(r"<table>(.*?)</table>", part, flags=re.S):
         rows = re.findall(r"<tr[^>]*>(.*?)</tr>", table, flags=re.S)
-        out.append([[html.unescape(re.sub(r"<[^>]+>", "", c)).strip() for c in re.findall(r"<t[dh][^>]*>(.*?)</t[dh]>", r)]
-                    for r in rows])
+        cells = [re.findall(r"<t[dh][^>]*>(.*?)</t[dh]>", r) for r in rows]
+        out.append([[html.unescape(re.sub(r"<[^>]+>", "", c)).strip() for c in row] for row in cells])
     return out
 
 
@@ -145,9 +145,11 @@ def test_at_a_glance_figures_are_summary_json(study):
     for reason, count in s["stop_reasons"].items():
         assert f"{reason} {100 * count / 150:.1f}%" in table["Why tests stopped"]
     assert table["Largest exposure rate"] == f"{100 * s['exposure']['max_rate']:.1f}% of examinees"
-    assert table["Items used / never used"] == f"{s['exposure']['items_used']} / {s['exposure']['items_never_used']} of 360"
+    expo = s["exposure"]
+    assert table["Items used / never used"] == f"{expo['items_used']} / {expo['items_never_used']} of 360"
     (c,) = s["classification"]
-    assert table["Classification accuracy of the composite at the cut 'licence'"] == f"{100 * c['accuracy']:.1f}% of examinees"
+    accuracy = table["Classification accuracy of the composite at the cut 'licence'"]
+    assert accuracy == f"{100 * c['accuracy']:.1f}% of examinees"
 
 
 def test_binned_rmse_of_each_dimension_matches_examinees_csv(study):

@@ -226,13 +226,13 @@ def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_s
     items.csv, report.html)."""
     from ..design.bank_fit import design_warnings, require_design_fits_bank
     from ..errors import SimulationError
+    from ..simulation import metrics
     from ..simulation.multidimensional_engine import (
         multidimensional_metrics,
         simulate_multidimensional,
         summary_text,
         write_study,
     )
-    from ..simulation import metrics
     from ..simulation.population import DEFAULT_EXAMINEES, draw_vectors, examinee_count, parse_ability_spec
 
     if true_bank is not None:

@@ -133,7 +133,8 @@ def _exposure_section(result, summary: dict) -> list[str]:
     over = int(np.sum(rates[operational] > target))
     if over:
         box = (f"<div class='box miss'><b>The exposure target of {_pct(target, 0)} is missed</b> by {over} of the "
-               f"{int(operational.sum())} operational items (the largest rate is {_pct(rates[operational].max())}).</div>")
+               f"{int(operational.sum())} operational items (the largest rate is "
+               f"{_pct(rates[operational].max())}).</div>")
     else:
         box = (f"<div class='box ok'>The exposure target is met: no operational item is given to more than "
                f"{_pct(target, 0)} of the examinees.</div>")
