@@ -16,17 +16,17 @@ import numpy as np
 
 from .html_report import (
     Html,
-    _design_section,
-    _esc,
-    _exposure_figure,
-    _figure,
-    _fmt,
-    _pct,
     classification_parts,
     contents_line,
+    design_section,
+    esc,
+    exposure_figure,
+    figure_html,
+    fmt,
     glossary_entries,
     glossary_html,
     page_start,
+    pct,
     precision_by_ability,
     stop_reasons_and_length_figure,
     table_html,
@@ -55,12 +55,12 @@ def _words(name: str) -> str:
 
 
 def _precision_table(summary: dict) -> str:
-    rows = [{"name": Html(f"{_esc(_words(name))}"), **{k: m[k] for k in _PRECISION_LABELS if k != "name"}}
+    rows = [{"name": Html(f"{esc(_words(name))}"), **{k: m[k] for k in _PRECISION_LABELS if k != "name"}}
             for name, m in summary["dimensions"].items()]
     if "composite" in summary:
         c = summary["composite"]
         weights = ", ".join(f"{w:g}" for w in c["weights"])
-        rows.append({"name": Html(f"composite (weights {_esc(weights)})"),
+        rows.append({"name": Html(f"composite (weights {esc(weights)})"),
                      **{k: c[k] for k in _PRECISION_LABELS if k != "name"}})
     labels = dict(_PRECISION_LABELS, name="Dimension")
     return table_html(rows, list(_PRECISION_LABELS), labels=labels)
@@ -73,23 +73,23 @@ def _headline_section(result, summary: dict) -> list[str]:
     rows = [{"figure": "Simulated examinees", "value": Html(f"{summary['examinees']:,}")}]
     if summary.get("true_correlation") is not None:
         rows.append({"figure": "True latent correlation drawn (first two dimensions)",
-                     "value": Html(_fmt(summary["true_correlation"]))})
+                     "value": Html(fmt(summary["true_correlation"]))})
     rows += [
         {"figure": "Mean test length (SD)",
-         "value": Html(f"{_fmt(length['mean'], 1)} ({_fmt(length['sd'], 1)}) scored items")},
+         "value": Html(f"{fmt(length['mean'], 1)} ({fmt(length['sd'], 1)}) scored items")},
         {"figure": "Shortest / longest test", "value": Html(f"{length['min']} / {length['max']} scored items")},
         {"figure": "Why tests stopped", "value": Html(", ".join(
-            f"{_esc(k)} {_pct(v / n)}" for k, v in sorted(summary["stop_reasons"].items(), key=lambda kv: -kv[1])))},
-        {"figure": "Largest exposure rate", "value": Html(f"{_pct(expo['max_rate'])} of examinees")},
+            f"{esc(k)} {pct(v / n)}" for k, v in sorted(summary["stop_reasons"].items(), key=lambda kv: -kv[1])))},
+        {"figure": "Largest exposure rate", "value": Html(f"{pct(expo['max_rate'])} of examinees")},
         {"figure": "Items used / never used",
          "value": Html(f"{expo['items_used']} / {expo['items_never_used']} of {result.bank.n_items}")},
     ]
     if expo.get("share_above_target") is not None:
-        rows.append({"figure": f"Operational items above the exposure target ({_pct(expo['exposure_target'], 0)})",
-                     "value": Html(_pct(expo["share_above_target"]))})
+        rows.append({"figure": f"Operational items above the exposure target ({pct(expo['exposure_target'], 0)})",
+                     "value": Html(pct(expo["share_above_target"]))})
     for c in summary.get("classification", []):
         rows.append({"figure": f"Classification accuracy of the composite at the cut {c['cut']!r}",
-                     "value": Html(f"{_pct(c['accuracy'])} of examinees")})
+                     "value": Html(f"{pct(c['accuracy'])} of examinees")})
     return ["<h2 id='glance'>At a glance</h2>",
             "<p>How close the final estimates come to the simulated true abilities, per dimension and for the "
             "composite (theta units).</p>",
@@ -119,7 +119,7 @@ def _precision_section(result) -> list[str]:
              "outer bins; one bin per point of a grid of abilities).</p>"]
     for name, rows in conditional_by_dimension(result).items():
         words = _words(name)
-        parts.append(f"<h3>{_esc(words)}</h3>")
+        parts.append(f"<h3>{esc(words)}</h3>")
         parts += precision_by_ability(rows, ability=f"true {words}", heading=f"By true {words}",
                                       title=f"Precision by {words}")
     return parts
@@ -132,17 +132,17 @@ def _exposure_section(result, summary: dict) -> list[str]:
     rates = result.administered / max(result.size, 1)
     over = int(np.sum(rates[operational] > target))
     if over:
-        box = (f"<div class='box miss'><b>The exposure target of {_pct(target, 0)} is missed</b> by {over} of the "
+        box = (f"<div class='box miss'><b>The exposure target of {pct(target, 0)} is missed</b> by {over} of the "
                f"{int(operational.sum())} operational items (the largest rate is "
-               f"{_pct(rates[operational].max())}).</div>")
+               f"{pct(rates[operational].max())}).</div>")
     else:
         box = (f"<div class='box ok'>The exposure target is met: no operational item is given to more than "
-               f"{_pct(target, 0)} of the examinees.</div>")
+               f"{pct(target, 0)} of the examinees.</div>")
     caption = "Exposure rates of the operational items, most exposed first, against the target"
     return ["<h2 id='exposure'>Exposure</h2>",
             "<p>The exposure rate of an item is the share of examinees who were given it (operational items only: "
             "pretest items are seeded at random). items.csv has every item's rate.</p>", box,
-            _figure(caption, _exposure_figure(rates[operational], target, caption))]
+            figure_html(caption, exposure_figure(rates[operational], target, caption))]
 
 
 def _classification_section(result, summary: dict) -> list[str]:
@@ -183,10 +183,10 @@ def multidimensional_report_html(result, summary: dict, *, title: str = "", warn
     nav.append(("glossary", "Glossary"))
     k = len(result.dimension_names)
     parts = [page_start(title),
-             contents_line(f"Simulation study of the design <code>{_esc(design.source or '(built in code)')}</code>, "
+             contents_line(f"Simulation study of the design <code>{esc(design.source or '(built in code)')}</code>, "
                            f"which measures {k} abilities at once ("
-                           + ", ".join(_esc(_words(d)) for d in result.dimension_names) + ").", nav)]
-    parts += _design_section(result, summary, warnings)
+                           + ", ".join(esc(_words(d)) for d in result.dimension_names) + ").", nav)]
+    parts += design_section(result, summary, warnings)
     parts += _headline_section(result, summary)
     parts += _length_section(result, summary)
     parts += _precision_section(result)
