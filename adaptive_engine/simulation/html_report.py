@@ -385,10 +385,13 @@ def _headline_section(summary) -> list[str]:
             "<p class='note'>Terms are explained in the <a href='#glossary'>glossary</a> at the end.</p>"]
 
 
-def stop_reasons_and_length_figure(result, stop_reasons: dict) -> list[str]:
-    """The table of why tests stopped and the figure of the length distribution."""
+def stop_reasons_and_length_figure(result, stop_reasons: dict, *, meanings: dict | None = None) -> list[str]:
+    """The table of why tests stopped and the figure of the length distribution.
+
+    ``meanings`` replaces the stop reasons' meanings it names (e.g. for an ability vector).
+    """
     design = result.design
-    meanings = _stop_reason_meanings()
+    meanings = {**_stop_reason_meanings(), **(meanings or {})}
     n = max(result.size, 1)
     reasons = [{"reason": k, "meaning": meanings.get(k, ""), "examinees": v, "share": Html(pct(v / n))}
                for k, v in sorted(stop_reasons.items(), key=lambda kv: -kv[1])]

@@ -101,7 +101,8 @@ def _headline_section(result, summary: dict) -> list[str]:
 def _length_section(result, summary: dict) -> list[str]:
     return ["<h2 id='length'>Test length</h2>",
             "<p>Scored items per test (pretest items are given besides and not counted).</p>",
-            *stop_reasons_and_length_figure(result, summary["stop_reasons"])]
+            *stop_reasons_and_length_figure(result, summary["stop_reasons"], meanings={
+                "se_reached": "the standard error of every dimension fell to its target"})]
 
 
 def conditional_by_dimension(result) -> dict[str, list[dict]]:
