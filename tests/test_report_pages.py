@@ -1,7 +1,8 @@
 """The report pages in a real browser: no horizontal overflow at 1024 and 1400 px.
 
 Renders the demo's study report (the shipped licensing design, as ``adaptive-engine demo``
-writes it, on fewer examinees) and a tuning report in headless Chromium (Debian's
+writes it, on fewer examinees), the study report of the two-dimensional licensing design and
+a tuning report in headless Chromium (Debian's
 ``chromium`` and ``chromium-driver``, driven by selenium with the system chromedriver) and
 fails when the page scrolls sideways (``document.documentElement.scrollWidth >
 window.innerWidth``) or a table, figure, chart, image or list is wider than its container,
@@ -141,7 +142,7 @@ def _problems(driver, path: Path, width: int) -> list[str]:
 
 @pytest.fixture(scope="module")
 def pages(tmp_path_factory):
-    """The demo's study report and a tuning report of the shipped licensing design."""
+    """The demo's study report, the two-dimensional design's study report and a tuning report."""
     from adaptive_engine.bank.item_bank import load_bank
     from adaptive_engine.design.toml_file import read_design
     from adaptive_engine.simulation.population import Population, parse_ability_spec
@@ -163,7 +164,21 @@ def pages(tmp_path_factory):
                                     parse_variation("stopping.max_items=30,40")],
                      population=Population(true_theta=np.random.default_rng(3).standard_normal(40), seed=3),
                      out_dir=out / "tuning")
-    return {"study report": out / "study" / "report.html", "tuning report": out / "tuning" / "tuning.html"}
+    from adaptive_engine.simulation.multidimensional_engine import (
+        multidimensional_metrics,
+        simulate_multidimensional,
+        write_study,
+    )
+
+    design2, bank2 = read_design(ROOT / "simulations" / "licensing_two_dimensional.toml"), load_bank(
+        ROOT / "item_banks" / "meridian_valley_operator_2d.json")
+    true2 = np.random.default_rng(4).multivariate_normal([0, 0], [[1, 0.6], [0.6, 1]], size=120)
+    result = simulate_multidimensional(design2, bank2, true_theta=true2, seed=4)
+    summary = multidimensional_metrics(result)
+    summary["settings"] = {"abilities": "correlated_normal:0,1,0.6", "seed": 4}
+    write_study(result, summary, out / "study2d")
+    return {"study report": out / "study" / "report.html", "tuning report": out / "tuning" / "tuning.html",
+            "two-dimensional study report": out / "study2d" / "report.html"}
 
 
 @pytest.mark.parametrize("width", WIDTHS)

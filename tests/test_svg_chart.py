@@ -190,3 +190,22 @@ def test_a_label_box_fits_its_text():
     box = svg_chart.label_box(100, 100, 6, -5, "12, 15", 11)
     assert box[0] == 106 and box[3] == 95  # right of and above the point
     assert box[2] - box[0] == pytest.approx(svg_chart.text_width("12, 15", 11))
+
+
+def test_a_line_note_at_an_edge_stays_inside_the_chart():
+    # a note centred on a line one unit from the right edge would run past the chart
+    # (the length histogram's "maximum (60)"): it ends at the line instead; the others
+    # stay centred where they fit (the left margin holds the y labels)
+    chart = Chart("scored items", integer_x=True, xlim=(9, 61))
+    panel = chart.panel(200, "examinees", integer_y=True)
+    panel.bars([40], [3], width=1.0, colours="#999999")
+    for x, note in ((60, "maximum (60)"), (9.2, "minimum (9)"), (35, "middle")):
+        panel.vline(x, note=note)
+    root = _parse(chart.svg("t"))
+    width = float(root.get("viewBox").split()[2])
+    notes = {t.text: t for t in root.iter("text") if t.text in ("maximum (60)", "minimum (9)", "middle")}
+    assert notes["maximum (60)"].get("text-anchor") == "end" and notes["middle"].get("text-anchor") == "middle"
+    for text, t in notes.items():
+        x, w = float(t.get("x")), svg_chart.text_width(text, svg_chart.TICK_SIZE)
+        left = {"end": x - w, "start": x, "middle": x - w / 2}[t.get("text-anchor")]
+        assert 0 <= left and left + w <= width, text

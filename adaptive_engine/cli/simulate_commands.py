@@ -157,7 +157,8 @@ def _perturbation(text):
 @click.option("--seed", type=int, default=1, show_default=True, help="Run seed (examinee seeds derive from it).")
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=str),
               help="Folder for summary.json, examinees.csv, administrations.csv, items.csv, "
-                   "conditional.csv and report.html.")
+                   "conditional.csv and report.html (a multidimensional design: summary.json, examinees.csv, "
+                   "items.csv and report.html).")
 @click.option("--theta", "theta_spec", default="normal:0,1", show_default=True,
               help="True abilities: normal:MEAN,SD, uniform:LO,HI, grid:LO,HI,POINTS:PER_POINT or file:PATH.")
 @click.option("--true-bank", "true_bank_file", type=_FILE, default=None,
@@ -198,7 +199,7 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 
     if runs_multidimensional(design, bank):
         _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_spec, true_bank, chunk_size,
-                                   as_json, show_progress)
+                                   exposure_target, as_json, show_progress)
         return
     progress = _Progress("simulating", enabled=show_progress)
     try:
@@ -220,10 +221,12 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 
 
 def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_spec, true_bank, chunk_size,
-                               as_json, show_progress):
-    """``simulate`` of a design that runs on the multidimensional kernel (summary.json, examinees.csv)."""
-    from ..design.bank_fit import require_design_fits_bank
+                               exposure_target, as_json, show_progress):
+    """``simulate`` of a design that runs on the multidimensional kernel (summary.json, examinees.csv,
+    items.csv, report.html)."""
+    from ..design.bank_fit import design_warnings, require_design_fits_bank
     from ..errors import SimulationError
+    from ..simulation import metrics
     from ..simulation.multidimensional_engine import (
         multidimensional_metrics,
         simulate_multidimensional,
@@ -236,6 +239,7 @@ def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_s
         raise SimulationError("a true bank (--true-bank, --perturb) is not available for a multidimensional design",
                               "--true-bank")
     require_design_fits_bank(design, bank)
+    exposure_target = metrics.exposure_target(exposure_target)  # checked before the run
     spec = parse_ability_spec(theta_spec)
     n = examinee_count(spec, n_examinees, default=DEFAULT_EXAMINEES)
     true_theta = draw_vectors(spec, n, seed, bank.n_dimensions)
@@ -245,15 +249,18 @@ def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_s
                                            chunk_size=min(chunk_size, 2000), progress=progress)
     finally:
         progress.close()
-    summary = multidimensional_metrics(result)
+    summary = multidimensional_metrics(result, exposure_target=exposure_target)
     summary["settings"] = {"design": design.source, "bank": bank.name, "abilities": spec.text, "seed": int(seed),
                            "examinees": int(n), "dimensions": list(result.dimension_names)}
-    write_study(result, summary, out_dir)
+    warnings = design_warnings(design, bank)
+    write_study(result, summary, out_dir, warnings=warnings)
+    for w in warnings:
+        click.echo(f"warning: {w.location}: {w.message}", err=True)
     if as_json:
         echo_json(summary)
     else:
         click.echo(summary_text(summary))
-        click.echo(f"wrote {out_dir}/ (summary.json, examinees.csv)")
+        click.echo(f"wrote {_folder(out_dir)} (summary.json, examinees.csv, items.csv, report.html)")
 
 
 @main.command("tune")

@@ -64,11 +64,12 @@ _BLUE = "#3a6ea5"
 # formatting
 
 
-def _esc(x) -> str:
+def esc(x) -> str:
+    """Text made safe inside HTML (quotes included)."""
     return html.escape(str(x))
 
 
-def _fmt(v, digits: int = 3) -> str:
+def fmt(v, digits: int = 3) -> str:
     """A cell: dashes for missing values, ``digits`` decimals for floats."""
     if v is None:
         return "&ndash;"
@@ -76,10 +77,11 @@ def _fmt(v, digits: int = 3) -> str:
         return "yes" if v else "no"
     if isinstance(v, (float, np.floating)):
         return "&ndash;" if not math.isfinite(v) else f"{v:.{digits}f}"
-    return _esc(v)
+    return esc(v)
 
 
-def _pct(v, digits: int = 1) -> str:
+def pct(v, digits: int = 1) -> str:
+    """A share as a percentage with ``digits`` decimals; a dash when missing."""
     if v is None or not math.isfinite(v):
         return "&ndash;"
     return f"{100 * v:.{digits}f}%"
@@ -112,7 +114,7 @@ def table_html(rows: list[dict], columns: list[str] | None = None, *, labels: di
 def _breakable(label) -> str:
     """A heading that may wrap after dots and underscores (long design keys such as
     ``stopping.sprt.indifference`` would otherwise widen their column)."""
-    return _esc(label).replace(".", ".<wbr>").replace("_", "_<wbr>")
+    return esc(label).replace(".", ".<wbr>").replace("_", "_<wbr>")
 
 
 class Html(str):
@@ -120,12 +122,31 @@ class Html(str):
 
 
 def _cell(v) -> str:
-    return str(v) if isinstance(v, Html) else _fmt(v)
+    return str(v) if isinstance(v, Html) else fmt(v)
 
 
-def _figure(caption: str, svg: str) -> str:
+def figure_html(caption: str, svg: str) -> str:
     """A figure: the chart (inline SVG) and its caption."""
-    return f"<figure>{svg}<figcaption>{_esc(caption)}</figcaption></figure>"
+    return f"<figure>{svg}<figcaption>{esc(caption)}</figcaption></figure>"
+
+
+def page_start(title: str) -> str:
+    """The start of a report page: head with the inline style, and the title as heading."""
+    return (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+            f"<meta name='viewport' content='width=device-width, initial-scale=1'><title>{esc(title)}</title>"
+            f"<style>{_STYLE}</style></head><body><h1>{esc(title)}</h1>")
+
+
+def contents_line(what: str, nav: list[tuple[str, str]]) -> str:
+    """The line under a study page's title: what the page is about and links to its sections."""
+    return (f"<p class='note'>{what} Sections: "
+            + " &middot; ".join(f"<a href='#{a}'>{b}</a>" for a, b in nav) + "</p>")
+
+
+def glossary_html(entries=(), extra=()) -> str:
+    """The glossary section: ``entries`` (term, meaning) pairs, then ``extra`` ones."""
+    return ("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
+            + "".join(f"<dt>{esc(a)}</dt><dd>{esc(b)}</dd>" for a, b in (*entries, *extra)) + "</dl>")
 
 
 # ----------------------------------------------------------------------------------------
@@ -174,6 +195,11 @@ GLOSSARY = (
 )
 
 
+def glossary_entries(*terms: str) -> list[tuple[str, str]]:
+    """The :data:`GLOSSARY` entries of ``terms``, in the glossary's order."""
+    return [(a, b) for a, b in GLOSSARY if a in terms]
+
+
 def _stop_reason_meanings() -> dict:
     from ..kernel.stopping import STOP_REASONS
 
@@ -190,7 +216,7 @@ def _bars_width(x) -> float:
 
 
 def _conditional_figure(x, n, series, *, ylabel: str, title: str, description: str, cut=None, hline=None,
-                        ylim=None) -> str:
+                        ylim=None, xlabel: str = "true ability (theta)") -> str:
     """Lines over true ability with a panel of examinees per bin beneath; thin bins hollow.
 
     ``series``: (label, values, marker, colour) tuples; ``cut``: (theta, label) marked by
@@ -199,7 +225,7 @@ def _conditional_figure(x, n, series, *, ylabel: str, title: str, description: s
     x = np.asarray(x, dtype=float)
     n = np.asarray(n, dtype=float)
     thin = n < THIN_BIN
-    chart = Chart("true ability (theta)", title=title)
+    chart = Chart(xlabel, title=title)
     top = chart.panel(230, ylabel, ylim=ylim)
     counts = chart.panel(70, "examinees", integer_y=True)
     if hline is not None:
@@ -231,7 +257,7 @@ def _length_histogram(n_scored, *, min_items: int, max_items: int, description: 
     return chart.svg(description)
 
 
-def _exposure_figure(rates, target: float, description: str) -> str:
+def exposure_figure(rates, target: float, description: str) -> str:
     """Operational items' exposure rates, most exposed first, against the target."""
     r = np.sort(np.asarray(rates, dtype=float))[::-1]
     k = int(np.sum(r > target))
@@ -305,30 +331,30 @@ def classification_curve(true_theta, at_or_above) -> list[dict]:
     return rows
 
 
-def _design_section(result, summary, warnings) -> list[str]:
+def design_section(result, summary, warnings) -> list[str]:
     from ..design.bank_fit import describe_design
 
     design, bank = result.design, result.bank
     settings = summary.get("settings", {})
     n_op = int(np.sum(np.asarray(bank.status) == "operational"))
     parts = ["<h2 id='design'>The design</h2>",
-             f"<p>Design file <code>{_esc(design.source or '(built in code)')}</code> on the bank "
-             f"<code>{_esc(bank.name or '(unnamed)')}</code> ({bank.n_items} items: {n_op} operational, "
+             f"<p>Design file <code>{esc(design.source or '(built in code)')}</code> on the bank "
+             f"<code>{esc(bank.name or '(unnamed)')}</code> ({bank.n_items} items: {n_op} operational, "
              f"{bank.n_items - n_op} pretest). In plain words (as <code>adaptive-engine design check</code> "
              "prints it):</p><dl class='design'>"]
     for line in describe_design(design):
         head, _, rest = line.partition(": ")
-        parts.append(f"<dt>{_esc(head)}</dt><dd>{_esc(rest)}</dd>")
+        parts.append(f"<dt>{esc(head)}</dt><dd>{esc(rest)}</dd>")
     parts.append("</dl>")
     if warnings:
         parts.append("<div class='box warn'><b>Worth a look</b> (the design runs, but):<ul>"
-                     + "".join(f"<li>{_esc(w.location)}: {_esc(w.message)}</li>" for w in warnings)
+                     + "".join(f"<li>{esc(w.location)}: {esc(w.message)}</li>" for w in warnings)
                      + "</ul></div>")
     who = settings.get("abilities")
     parts.append(f"<p class='note'>{summary.get('examinees')} simulated examinees"
-                 + (f", true abilities {_esc(who)}" if who else "")
-                 + f", seed {summary.get('seed')}"
-                 + (f"; answers drawn from the bank <code>{_esc(settings['true_bank'])}</code>"
+                 + (f", true abilities {esc(who)}" if who else "")
+                 + f", seed {summary.get('seed', settings.get('seed'))}"
+                 + (f"; answers drawn from the bank <code>{esc(settings['true_bank'])}</code>"
                     if settings.get("true_bank") else "") + ".</p>")
     return parts
 
@@ -338,70 +364,79 @@ def _headline_section(summary) -> list[str]:
     target = expo.get("exposure_target")
     rows = [
         ("examinees", f"{summary['examinees']:,}"),
-        ("mean_length", f"{_fmt(summary.get('mean_length'), 1)} scored items"),
-        ("rmse", f"{_fmt(summary.get('rmse'))} theta units"),
-        ("bias", f"{_fmt(summary.get('bias'))} theta units"),
-        ("mean_se", f"{_fmt(summary.get('mean_se'))} theta units"),
-        ("rmse_to_mean_se", _fmt(summary.get("rmse_to_mean_se"), 2)),
-        ("correlation", _fmt(summary.get("correlation"))),
-        ("marginal_reliability", _fmt(summary.get("marginal_reliability"))),
-        ("max_exposure", f"{_pct(summary.get('max_exposure'))} of examinees (target {_pct(target, 0)})"),
-        ("share_above_target", f"{_pct(summary.get('share_above_target'))} of the operational items"),
-        ("share_never_used", f"{_pct(expo.get('share_never_used'))} of the operational items"),
-        ("overlap_rate", f"{_pct(summary.get('overlap_rate'))} of a test shared by two examinees"),
+        ("mean_length", f"{fmt(summary.get('mean_length'), 1)} scored items"),
+        ("rmse", f"{fmt(summary.get('rmse'))} theta units"),
+        ("bias", f"{fmt(summary.get('bias'))} theta units"),
+        ("mean_se", f"{fmt(summary.get('mean_se'))} theta units"),
+        ("rmse_to_mean_se", fmt(summary.get("rmse_to_mean_se"), 2)),
+        ("correlation", fmt(summary.get("correlation"))),
+        ("marginal_reliability", fmt(summary.get("marginal_reliability"))),
+        ("max_exposure", f"{pct(summary.get('max_exposure'))} of examinees (target {pct(target, 0)})"),
+        ("share_above_target", f"{pct(summary.get('share_above_target'))} of the operational items"),
+        ("share_never_used", f"{pct(expo.get('share_never_used'))} of the operational items"),
+        ("overlap_rate", f"{pct(summary.get('overlap_rate'))} of a test shared by two examinees"),
     ]
     out = [{"figure": HEADLINE_LABELS[k], "value": Html(v)} for k, v in rows]
     for c in summary.get("classification", []):
         out.append({"figure": f"Classification accuracy at the cut {c['cut']!r}",
-                    "value": Html(f"{_pct(c['accuracy'])} of examinees")})
+                    "value": Html(f"{pct(c['accuracy'])} of examinees")})
     return ["<h2 id='glance'>At a glance</h2>",
             table_html(out, ["figure", "value"], labels={"figure": "Figure", "value": "Value"}),
             "<p class='note'>Terms are explained in the <a href='#glossary'>glossary</a> at the end.</p>"]
+
+
+def stop_reasons_and_length_figure(result, stop_reasons: dict, *, meanings: dict | None = None) -> list[str]:
+    """The table of why tests stopped and the figure of the length distribution.
+
+    ``meanings`` replaces the stop reasons' meanings it names (e.g. for an ability vector).
+    """
+    design = result.design
+    meanings = {**_stop_reason_meanings(), **(meanings or {})}
+    n = max(result.size, 1)
+    reasons = [{"reason": k, "meaning": meanings.get(k, ""), "examinees": v, "share": Html(pct(v / n))}
+               for k, v in sorted(stop_reasons.items(), key=lambda kv: -kv[1])]
+    caption = "Distribution of the test length (scored items)"
+    return ["<h3>Why tests stopped</h3>",
+            table_html(reasons, ["reason", "meaning", "examinees", "share"], text=("meaning",),
+                       labels={"reason": "Stop reason", "meaning": "Meaning", "examinees": "Examinees",
+                               "share": "Share"}),
+            figure_html(caption, _length_histogram(result.n_scored, min_items=design.stopping.min_items,
+                                               max_items=design.stopping.max_items, description=caption))]
 
 
 def _length_section(result, summary) -> list[str]:
     length = summary["length"]
     design = result.design
     rows = [
-        {"figure": "Mean (SD)", "value": Html(f"{_fmt(length['mean_length'], 1)} ({_fmt(length['sd_length'], 1)})")},
+        {"figure": "Mean (SD)", "value": Html(f"{fmt(length['mean_length'], 1)} ({fmt(length['sd_length'], 1)})")},
         {"figure": "Shortest / longest", "value": Html(f"{length['min_length']} / {length['max_length']}")},
         {"figure": "Percentiles 5, 25, 50, 75, 95",
-         "value": Html(", ".join(_fmt(v, 0) for v in length["length_percentiles"].values()))},
+         "value": Html(", ".join(fmt(v, 0) for v in length["length_percentiles"].values()))},
         {"figure": f"Tests that ran to the maximum ({design.stopping.max_items})",
-         "value": Html(_pct(length["share_at_max_items"]))},
+         "value": Html(pct(length["share_at_max_items"]))},
     ]
-    meanings = _stop_reason_meanings()
-    n = max(summary["examinees"], 1)
-    reasons = [{"reason": k, "meaning": meanings.get(k, ""), "examinees": v, "share": Html(_pct(v / n))}
-               for k, v in sorted(length["stop_reasons"].items(), key=lambda kv: -kv[1])]
     parts = ["<h2 id='length'>Test length</h2>",
              "<p>Scored items per test (pretest items are given besides and not counted).</p>",
              table_html(rows, ["figure", "value"], labels={"figure": "Figure", "value": "Scored items"}),
-             "<h3>Why tests stopped</h3>",
-             table_html(reasons, ["reason", "meaning", "examinees", "share"], text=("meaning",),
-                        labels={"reason": "Stop reason", "meaning": "Meaning", "examinees": "Examinees",
-                                "share": "Share"})]
-    caption = "Distribution of the test length (scored items)"
-    parts.append(_figure(caption, _length_histogram(result.n_scored, min_items=design.stopping.min_items,
-                                                    max_items=design.stopping.max_items, description=caption)))
+             *stop_reasons_and_length_figure(result, length["stop_reasons"])]
     cond = [r for r in summary["conditional"] if r["theta"] is not None]
     if cond:
         caption = "Mean test length against true ability; the panel beneath counts the examinees per bin"
-        parts.append(_figure(caption, _conditional_figure(
+        parts.append(figure_html(caption, _conditional_figure(
             [r["theta"] for r in cond], [r["n"] for r in cond],
             [("mean scored items", [r["mean_length"] for r in cond], "o", _BLUE)],
             ylabel="mean scored items", title="Test length by ability", description=caption)))
     return parts
 
 
-def _conditional_rows(summary) -> tuple[list[dict], list[str], dict]:
+def _conditional_rows(conditional: list[dict]) -> tuple[list[dict], list[str], dict]:
     rows = []
-    acc = [k for k in (summary["conditional"][0] if summary["conditional"] else {}) if k.startswith("accuracy_")]
-    for r in summary["conditional"]:
+    acc = [k for k in (conditional[0] if conditional else {}) if k.startswith("accuracy_")]
+    for r in conditional:
         row = {"bin": r["bin"], "n": r["n"], "bias": r["bias"], "rmse": r["rmse"], "mean_se": r["mean_se"],
-               "rmse_to_mean_se": r["rmse_to_mean_se"], "mean_length": Html(_fmt(r["mean_length"], 1))}
+               "rmse_to_mean_se": r["rmse_to_mean_se"], "mean_length": Html(fmt(r["mean_length"], 1))}
         for k in acc:
-            row[k] = Html(_pct(r[k])) if r.get(k) is not None else None
+            row[k] = Html(pct(r[k])) if r.get(k) is not None else None
         rows.append(row)
     labels = {"bin": "True ability", "n": "Examinees", "bias": "Bias", "rmse": "RMSE", "mean_se": "Mean SE",
               "rmse_to_mean_se": "RMSE / mean SE", "mean_length": "Mean length"}
@@ -424,19 +459,32 @@ def _precision_section(summary) -> list[str]:
     if p.get("n_no_estimate"):
         parts.append(f"<p class='note'>{p['n_no_estimate']} examinee(s) ended without a finite estimate and are "
                      "left out of these figures.</p>")
-    cond = [r for r in summary["conditional"] if r["theta"] is not None]
+    return parts + precision_by_ability(summary["conditional"])
+
+
+def precision_by_ability(conditional: list[dict], *, ability: str = "true ability", heading: str = "By true ability",
+                         title: str = "Precision by ability") -> list[str]:
+    """The figure of RMSE, bias and mean SE by bin of true ability, and the table of the bins.
+
+    ``conditional``: rows of :func:`adaptive_engine.simulation.metrics.conditional`;
+    ``ability`` names the binned ability in the caption and the x axis.
+    """
+    parts = []
+    cond = [r for r in conditional if r["theta"] is not None]
     if cond:
-        caption = ("RMSE, bias and mean reported SE against true ability; hollow points rest on fewer than "
+        caption = (f"RMSE, bias and mean reported SE against {ability}; hollow points rest on fewer than "
                    f"{THIN_BIN} examinees (the panel beneath counts them)")
-        parts.append(_figure(caption, _conditional_figure(
+        parts.append(figure_html(caption, _conditional_figure(
             [r["theta"] for r in cond], [r["n"] for r in cond],
             [("RMSE", [r["rmse"] for r in cond], "o", _BLUE),
              ("bias", [r["bias"] for r in cond], "s", "#2e7d32"),
              ("mean SE", [r["mean_se"] for r in cond], "^", "#e69500")],
-            ylabel="theta units", title="Precision by ability", hline=0.0, description=caption)))
-    rows, cols, labels = _conditional_rows(summary)
+            ylabel="theta units", title=title, hline=0.0, description=caption,
+            xlabel=f"{ability} (theta)")))
+    rows, cols, labels = _conditional_rows(conditional)
+    labels["bin"] = ability[0].upper() + ability[1:]
     thin = sum(1 for r in rows if r["n"] < THIN_BIN)
-    parts += ["<h3>By true ability</h3>",
+    parts += [f"<h3>{esc(heading)}</h3>",
               table_html(rows, cols, labels=labels, row_class=lambda r: "thin" if r["n"] < THIN_BIN else None)]
     if thin:
         parts.append(f"<p class='note'>Rows in grey italics are thin bins: fewer than {THIN_BIN} examinees.</p>")
@@ -460,17 +508,17 @@ def _exposure_story(result, summary, first_counts, follow_counts) -> list[str]:
     out = []
     if not over.size:
         out.append(f"<div class='box ok'>The exposure target is met: no operational item is given to more than "
-                   f"{_pct(target, 0)} of the examinees (the largest rate is {_pct(expo['max_exposure'])}).</div>")
+                   f"{pct(target, 0)} of the examinees (the largest rate is {pct(expo['max_exposure'])}).</div>")
     else:
         top = over[0]
-        out.append(f"<div class='box miss'><b>The exposure target of {_pct(target, 0)} is missed.</b> "
-                   f"{over.size} of the {n_op} operational items ({_pct(over.size / max(n_op, 1))}) are given to "
-                   f"more than {_pct(target, 0)} of the examinees; the most exposed, "
-                   f"<code>{_esc(bank.item_ids[top])}</code>, to {_pct(rates[top])}.</div>")
+        out.append(f"<div class='box miss'><b>The exposure target of {pct(target, 0)} is missed.</b> "
+                   f"{over.size} of the {n_op} operational items ({pct(over.size / max(n_op, 1))}) are given to "
+                   f"more than {pct(target, 0)} of the examinees; the most exposed, "
+                   f"<code>{esc(bank.item_ids[top])}</code>, to {pct(rates[top])}.</div>")
         se = math.sqrt(target * (1 - target) / n)
         if rates[top] <= target + 3 * se:
             out.append(f"<p>Every excess is within simulation noise: a rate estimated from {n:,} examinees has a "
-                       f"standard error of about {se:.3f} ({_pct(se)}), and the largest of many rates lies a few "
+                       f"standard error of about {se:.3f} ({pct(se)}), and the largest of many rates lies a few "
                        "of them above the true largest one. Simulate more examinees to tell.</p>")
         why = []
         method = design.exposure.method
@@ -479,7 +527,7 @@ def _exposure_story(result, summary, first_counts, follow_counts) -> list[str]:
             openers = [i for i in over if first_rate[i] >= 0.25 * rates[i]]
             if openers:
                 k_first = first_item_candidates(design)
-                names = ", ".join(f"<code>{_esc(bank.item_ids[i])}</code> ({_pct(first_rate[i])})" for i in openers[:6])
+                names = ", ".join(f"<code>{esc(bank.item_ids[i])}</code> ({pct(first_rate[i])})" for i in openers[:6])
                 start = ("a random starting ability" if design.opening.random_theta is not None
                          else f"theta {design.opening.theta:g}")
                 if k_first > 1:
@@ -497,16 +545,16 @@ def _exposure_story(result, summary, first_counts, follow_counts) -> list[str]:
             for name in dict.fromkeys(str(bank.item_set[i]) for i in over if bank.item_set[i]):
                 members = np.flatnonzero(np.asarray(bank.item_set) == name)
                 entered = float(rates[members].max())
-                listed = ", ".join(f"<code>{_esc(bank.item_ids[m])}</code>" for m in members)
-                sets.append(f"{_esc(name)} ({listed}): entered by {_pct(entered)}")
+                listed = ", ".join(f"<code>{esc(bank.item_ids[m])}</code>" for m in members)
+                sets.append(f"{esc(name)} ({listed}): entered by {pct(entered)}")
             if sets:
                 why.append("<li><b>Item sets.</b> Once a test enters an item set, all its items are given, so every "
                            "member is given as often as the set is entered: " + "; ".join(sets) + ".</li>")
         floors = {a: f for a, f in area_floors(design, bank).items() if f[0] > target}
         for area, (floor, size, minimum) in floors.items():
-            why.append(f"<li><b>A small content area.</b> Area <code>{_esc(area)}</code> has {size} operational "
+            why.append(f"<li><b>A small content area.</b> Area <code>{esc(area)}</code> has {size} operational "
                        f"items and a minimum of {minimum} per test, so its items are given to at least "
-                       f"{_pct(floor)} of the examinees on average.</li>")
+                       f"{pct(floor)} of the examinees on average.</li>")
         method_words = {
             "none": "The design has no exposure control: the selection criterion gives the same most informative "
                     "items to most examinees.",
@@ -521,13 +569,13 @@ def _exposure_story(result, summary, first_counts, follow_counts) -> list[str]:
         if text:
             if method != "sympson_hetter":
                 text += (" Sympson-Hetter parameters calibrated for this target hold every item near it: "
-                         f"<code>adaptive-engine exposure calibrate {_esc(design.source or 'DESIGN')} --bank BANK "
+                         f"<code>adaptive-engine exposure calibrate {esc(design.source or 'DESIGN')} --bank BANK "
                          f"--target {target:g} --out PARAMETERS.csv</code>.")
             why.append(f"<li><b>Exposure control.</b> {text}</li>")
         if why:
             out.append("<p>Where the exposure comes from:</p><ul>" + "".join(why) + "</ul>")
     if never:
-        out.append(f"<p>{_pct(never, 0)} of the operational items were never given to any examinee.</p>")
+        out.append(f"<p>{pct(never, 0)} of the operational items were never given to any examinee.</p>")
     return out
 
 
@@ -539,13 +587,13 @@ def _exposure_section(result, summary, first_counts, follow_counts) -> list[str]
     operational = np.asarray(bank.status) == "operational"
     rates = result.administered / n
     rows = [
-        {"figure": "Largest exposure rate", "value": Html(_pct(expo["max_exposure"]))},
-        {"figure": "Mean exposure rate", "value": Html(_pct(expo["mean_exposure"]))},
-        {"figure": "Exposure target", "value": Html(_pct(target, 0))},
-        {"figure": "Operational items above the target", "value": Html(_pct(expo["share_above_target"]))},
-        {"figure": "Operational items never given", "value": Html(_pct(expo["share_never_used"]))},
-        {"figure": "Test overlap rate", "value": Html(_pct(expo["overlap_rate"]))},
-        {"figure": "Chi-square index of exposure", "value": Html(_fmt(expo["chi_square_index"], 1))},
+        {"figure": "Largest exposure rate", "value": Html(pct(expo["max_exposure"]))},
+        {"figure": "Mean exposure rate", "value": Html(pct(expo["mean_exposure"]))},
+        {"figure": "Exposure target", "value": Html(pct(target, 0))},
+        {"figure": "Operational items above the target", "value": Html(pct(expo["share_above_target"]))},
+        {"figure": "Operational items never given", "value": Html(pct(expo["share_never_used"]))},
+        {"figure": "Test overlap rate", "value": Html(pct(expo["overlap_rate"]))},
+        {"figure": "Chi-square index of exposure", "value": Html(fmt(expo["chi_square_index"], 1))},
     ]
     parts = ["<h2 id='exposure'>Exposure</h2>",
              "<p>The exposure rate of an item is the share of examinees who were given it (operational items only: "
@@ -553,18 +601,18 @@ def _exposure_section(result, summary, first_counts, follow_counts) -> list[str]
              *_exposure_story(result, summary, first_counts, follow_counts),
              table_html(rows, ["figure", "value"], labels={"figure": "Figure", "value": "Value"})]
     caption = "Exposure rates of the operational items, most exposed first, against the target"
-    parts.append(_figure(caption, _exposure_figure(rates[operational], target, caption)))
+    parts.append(figure_html(caption, exposure_figure(rates[operational], target, caption)))
     over = np.flatnonzero(operational & (rates > target))
     over = over[np.argsort(-rates[over], kind="stable")]
     if over.size:
         table = []
         for i in over[:MAX_LISTED_ITEMS]:
             row = {"item": str(bank.item_ids[i]), "area": str(bank.area[i]), "set": str(bank.item_set[i]) or None,
-                   "rate": Html(_pct(rates[i]))}
+                   "rate": Html(pct(rates[i]))}
             if first_counts is not None:
-                row["first"] = Html(_pct(first_counts[i] / n))
+                row["first"] = Html(pct(first_counts[i] / n))
             if follow_counts is not None and bank.item_set[i]:
-                row["follow"] = Html(_pct(follow_counts[i] / n))
+                row["follow"] = Html(pct(follow_counts[i] / n))
             table.append(row)
         cols = ["item", "area", "set", "rate"] + (["first"] if first_counts is not None else [])
         if follow_counts is not None and any(bank.item_set[i] for i in over):
@@ -578,7 +626,7 @@ def _exposure_section(result, summary, first_counts, follow_counts) -> list[str]
                          "item's rate.</p>")
     if expo.get("by_stratum"):
         strata = [{"from": s["theta_from"], "to": s["theta_to"], "n": s["examinees"],
-                   "max": Html(_pct(s["max_exposure"])), "above": Html(_pct(s["share_above_target"]))}
+                   "max": Html(pct(s["max_exposure"])), "above": Html(pct(s["share_above_target"]))}
                   for s in expo["by_stratum"]]
         parts += ["<h3>Within strata of true ability</h3>",
                   "<p class='note'>The design's exposure parameters are conditional on ability: the rates within "
@@ -593,37 +641,49 @@ def _classification_section(result, summary) -> list[str]:
     classes = summary.get("classification") or []
     if not classes:
         return []
-    cuts = result.design.reporting.cut_scores
+    return classification_parts(classes, result.design.reporting.cut_scores, result.true_theta, result.at_or_above,
+                                intro="<p>Each examinee is classified at or above a cut score, or below it, by the "
+                                      "final estimate (or the SPRT's decision); the simulation knows on which side "
+                                      "the true ability lies.</p>")
+
+
+def classification_parts(classes: list[dict], cuts, true_theta, at_or_above, *, intro: str,
+                         ability: str = "true ability") -> list[str]:
+    """The classification section: its table and a curve per cut score.
+
+    ``classes``: :func:`adaptive_engine.simulation.metrics.classification` rows;
+    ``true_theta`` (N,) what is classified, ``at_or_above`` (N, cuts) the labels;
+    ``intro`` (HTML) says what is classified and how.
+    """
     rows = []
     for c in classes:
-        rows.append({"cut": c["cut"], "theta": c["cut_theta"], "accuracy": Html(_pct(c["accuracy"])),
-                     "false_pass": Html(f"{_pct(c['false_pass_rate'])} ({_pct(c['false_pass_among_truly_below'])})"),
-                     "false_fail": Html(f"{_pct(c['false_fail_rate'])} ({_pct(c['false_fail_among_truly_above'])})"),
-                     "none": Html(_pct(c["share_without_label"]))})
-    parts = ["<h2 id='classification'>Classification</h2>",
-             "<p>Each examinee is classified at or above a cut score, or below it, by the final estimate (or the "
-             "SPRT's decision); the simulation knows on which side the true ability lies.</p>",
+        rows.append({"cut": c["cut"], "theta": c["cut_theta"], "accuracy": Html(pct(c["accuracy"])),
+                     "false_pass": Html(f"{pct(c['false_pass_rate'])} ({pct(c['false_pass_among_truly_below'])})"),
+                     "false_fail": Html(f"{pct(c['false_fail_rate'])} ({pct(c['false_fail_among_truly_above'])})"),
+                     "none": Html(pct(c["share_without_label"]))})
+    parts = ["<h2 id='classification'>Classification</h2>", intro,
              table_html(rows, ["cut", "theta", "accuracy", "false_pass", "false_fail", "none"],
                         labels={"cut": "Cut score", "theta": "Cut (theta)", "accuracy": "Accuracy",
                                 "false_pass": "False pass: of all (of truly below)",
                                 "false_fail": "False fail: of all (of truly above)", "none": "Without a class"})]
     for k, cut in enumerate(cuts):
-        curve = classification_curve(result.true_theta, result.at_or_above[:, k])
+        curve = classification_curve(true_theta, np.asarray(at_or_above)[:, k])
         if not curve:
             continue
         x = [r["theta"] for r in curve]
         share = [r["share_at_or_above"] for r in curve]
         truth = [float(t >= cut.theta) for t in x]
         acc = [s if t >= cut.theta else 1 - s for s, t in zip(share, x)]
-        caption = (f"Probability of being classified '{cut.above}' against true ability, with the accuracy in each "
+        caption = (f"Probability of being classified '{cut.above}' against {ability}, with the accuracy in each "
                    f"bin; the dashed line marks the cut '{cut.name}' at theta {cut.theta:g}")
-        parts.append(_figure(caption, _conditional_figure(
+        parts.append(figure_html(caption, _conditional_figure(
             x, [r["n"] for r in curve],
             [(f"P(classified {cut.above})", share, "o", _BLUE),
              ("accuracy", acc, "s", "#2e7d32"),
              ("truly at or above the cut", truth, "", "#bbbbbb")],
             ylabel="share of examinees", title=f"Classification at the cut '{cut.name}'",
-            cut=(cut.theta, f"cut {cut.name} (theta {cut.theta:g})"), ylim=(-0.03, 1.03), description=caption)))
+            cut=(cut.theta, f"cut {cut.name} (theta {cut.theta:g})"), ylim=(-0.03, 1.03), description=caption,
+            xlabel=f"{ability} (theta)")))
     return parts
 
 
@@ -636,9 +696,9 @@ def _content_section(summary) -> list[str]:
         rule = ""
         if "rule_min" in c:
             rule = f"{c['rule_min']}" + (f" to {c['rule_max']}" if c.get("rule_max") is not None else " or more")
-        rows.append({"area": c["area"], "rule": rule or None, "mean": Html(_fmt(c["mean"], 1)),
+        rows.append({"area": c["area"], "rule": rule or None, "mean": Html(fmt(c["mean"], 1)),
                      "range": Html(f"{c['min']} to {c['max']}" if c["min"] is not None else "&ndash;"),
-                     "within": Html(_pct(c["share_within_rule"])) if "share_within_rule" in c else None})
+                     "within": Html(pct(c["share_within_rule"])) if "share_within_rule" in c else None})
     return ["<h2 id='content'>Content areas</h2>",
             "<p>Scored items per test in each content area, against the blueprint's bounds.</p>",
             table_html(rows, ["area", "rule", "mean", "range", "within"],
@@ -669,12 +729,10 @@ def simulation_report_html(result, summary: dict, *, title: str = "", first_coun
     if summary.get("content"):
         nav.append(("content", "Content"))
     nav += [("bank", "Bank"), ("glossary", "Glossary")]
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
-             f"<meta name='viewport' content='width=device-width, initial-scale=1'><title>{_esc(title)}</title>",
-             f"<style>{_STYLE}</style></head><body><h1>{_esc(title)}</h1>",
-             f"<p class='note'>Simulation study of the design <code>{_esc(design.source or '(built in code)')}</code>. "
-             "Sections: " + " &middot; ".join(f"<a href='#{a}'>{b}</a>" for a, b in nav) + "</p>"]
-    parts += _design_section(result, summary, warnings)
+    parts = [page_start(title),
+             contents_line(f"Simulation study of the design <code>{esc(design.source or '(built in code)')}</code>.",
+                           nav)]
+    parts += design_section(result, summary, warnings)
     parts += _headline_section(summary)
     parts += _length_section(result, summary)
     parts += _precision_section(summary)
@@ -683,9 +741,8 @@ def simulation_report_html(result, summary: dict, *, title: str = "", first_coun
     parts += _content_section(summary)
     parts.append("<h2 id='bank'>The bank</h2>")
     caption = "Test information of all operational items of the bank (the most any test could draw on at each ability)"
-    parts.append(_figure(caption, _information_figure(result.bank, caption)))
-    parts.append("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
-                 + "".join(f"<dt>{_esc(a)}</dt><dd>{_esc(b)}</dd>" for a, b in GLOSSARY) + "</dl>")
+    parts.append(figure_html(caption, _information_figure(result.bank, caption)))
+    parts.append(glossary_html(GLOSSARY))
     parts.append("</body></html>\n")
     return "".join(parts)
 
@@ -738,11 +795,11 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
         if not r.get("frontier"):
             dominated.add(j)
         row = {"combination": j, **{k: r.get(k) for k in keys}}
-        row.update(mean_length=Html(_fmt(r.get("mean_length"), 1)), rmse=r.get("rmse"), bias=r.get("bias"),
-                   mean_se=r.get("mean_se"), rmse_to_mean_se=Html(_fmt(r.get("rmse_to_mean_se"), 2)),
-                   max_exposure=Html(_pct(r.get("max_exposure"))), frontier=Html("yes" if r.get("frontier") else ""))
+        row.update(mean_length=Html(fmt(r.get("mean_length"), 1)), rmse=r.get("rmse"), bias=r.get("bias"),
+                   mean_se=r.get("mean_se"), rmse_to_mean_se=Html(fmt(r.get("rmse_to_mean_se"), 2)),
+                   max_exposure=Html(pct(r.get("max_exposure"))), frontier=Html("yes" if r.get("frontier") else ""))
         for k in acc:
-            row[k] = Html(_pct(r.get(k)))
+            row[k] = Html(pct(r.get(k)))
         for k in extra:
             row[k] = r.get(k)
         table.append(row)
@@ -751,24 +808,20 @@ def tuning_report_html(rows: list[dict], figures, *, title: str, varied: list[st
     labels.update({k: TUNING_LABELS.get(k) or (f"RMSE, {k[len('rmse_'):]}" if k.startswith("rmse_") else k)
                    for k in extra})
     criteria = "mean length (lower), RMSE (lower)" + (" and classification accuracy (higher)" if acc else "")
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
-             f"<meta name='viewport' content='width=device-width, initial-scale=1'><title>{_esc(title)}</title>",
-             f"<style>{_STYLE}</style></head><body><h1>{_esc(title)}</h1>",
-             f"<p>Every combination of {', '.join(f'<code>{_esc(k)}</code>' for k in keys) or 'the settings'} ran "
+    parts = [page_start(title),
+             f"<p>Every combination of {', '.join(f'<code>{esc(k)}</code>' for k in keys) or 'the settings'} ran "
              "on the same simulated examinees with the same random streams (common random numbers), so the "
              "differences between rows are the settings' doing. A combination is <b>on the frontier</b> when no "
              f"other is at least as good on {criteria} and better on one of them.</p>",
-             f"<p>{_esc(note)}</p>" if note else "",
+             f"<p>{esc(note)}</p>" if note else "",
              table_html(table, cols, labels=labels,
                         row_class=lambda r: "thin" if r["combination"] in dominated else None),
              "<p class='note'>Rows in grey italics are dominated: another combination is at least as good on every "
              "criterion. The numbers in the # column label the points of the plots.</p>"]
     for caption, svg in figures or ():
-        parts.append(_figure(caption, svg))
-    parts.append("<h2 id='glossary'>Glossary</h2><dl class='glossary'>"
-                 + "".join(f"<dt>{_esc(a)}</dt><dd>{_esc(b)}</dd>" for a, b in GLOSSARY
-                           if a in ("theta units", "RMSE", "bias", "RMSE / mean SE", "exposure rate",
-                                    "classification accuracy"))
-                 + "<dt>mean length</dt><dd>scored items per test, averaged over the examinees</dd></dl>")
+        parts.append(figure_html(caption, svg))
+    parts.append(glossary_html(glossary_entries("theta units", "RMSE", "bias", "RMSE / mean SE", "exposure rate",
+                                                "classification accuracy"),
+                               [("mean length", "scored items per test, averaged over the examinees")]))
     parts.append("</body></html>\n")
     return "".join(parts)

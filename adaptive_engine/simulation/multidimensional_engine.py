@@ -11,7 +11,9 @@ share one kernel row when the design draws nothing at random
 
 :func:`multidimensional_metrics` summarises precision per dimension and for the composite
 (bias, RMSE, mean SE, RMSE / mean SE, correlation of estimates with the truth), test
-length, stop reasons and exposure.
+length, stop reasons, exposure and the composite's classification; :func:`write_study`
+writes them with the examinees, the items' exposure and the report page
+(:mod:`adaptive_engine.simulation.multidimensional_report`).
 """
 
 from __future__ import annotations
@@ -32,12 +34,17 @@ from ..errors import SimulationError
 from ..irt import multidimensional as md
 from ..kernel import cycle as kernel
 from ..kernel import random_streams as randomness
+from ..kernel.final_report import classification_matrix
 from ..kernel.multidimensional_cycle import composite
 from ..kernel.prepared import TestContext, build_context
+from . import metrics
 from .shared_histories import ChunkRows
 
 #: Examinees per kernel batch (the posterior is batch x grid points).
 DEFAULT_CHUNK = 2000
+
+#: The files :func:`write_study` writes (a file of these that an earlier run left is removed).
+FILES = ("summary.json", "examinees.csv", "items.csv", "report.html")
 
 
 @attrs.frozen(eq=False)
@@ -150,8 +157,32 @@ def _precision(true, est, se) -> dict:
             "rmse_to_mean_se": rmse / mean_se if mean_se > 0 else None, "correlation_with_truth": corr}
 
 
-def multidimensional_metrics(result: MultidimensionalSimulationResult) -> dict:
-    """Summary of a run: precision per dimension and for the composite, length, stops, exposure."""
+def composite_classification(result: MultidimensionalSimulationResult) -> list[dict]:
+    """:func:`adaptive_engine.simulation.metrics.classification` of the composite (empty without one).
+
+    The true composite ``w . theta_true`` against the estimated one ``w . theta_hat``
+    classified by the point estimate against each cut score (as the final report does
+    when no SPRT decides).
+    """
+    design = result.design
+    weights = design.reporting.composite_weights
+    cuts = design.reporting.cut_scores
+    if weights is None or not cuts:
+        return []
+    w = np.asarray(weights, dtype=float)
+    true_c = result.true_theta @ w
+    est_c, _ = composite(w, result.theta, result.covariance)
+    return metrics.classification(true_c, classification_matrix(design, est_c), cuts)
+
+
+def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposure_target: float | None = None) -> dict:
+    """Summary of a run: precision per dimension and for the composite, length, stops, exposure,
+    the composite's classification (``classification``, when the design has cut scores).
+
+    ``exposure``: ``max_rate`` and ``items_used`` / ``items_never_used`` over all items;
+    ``exposure_target`` (None: :data:`~adaptive_engine.simulation.metrics.DEFAULT_EXPOSURE_TARGET`)
+    and the share of the operational items given more often (``share_above_target``).
+    """
     design = result.design
     out = {"dimensions": {}}
     for j, name in enumerate(result.dimension_names):
@@ -167,12 +198,20 @@ def multidimensional_metrics(result: MultidimensionalSimulationResult) -> dict:
     n = result.n_scored
     reasons, counts = np.unique(result.stop_reason.astype(str), return_counts=True)
     rates = result.administered / max(result.size, 1)
+    target = metrics.exposure_target(exposure_target)
+    operational = np.asarray(result.bank.status) == "operational"
+    used = int(np.sum(result.administered > 0))
     out.update(
         examinees=result.size,
         length={"mean": float(np.mean(n)), "sd": float(np.std(n)), "min": int(np.min(n)), "max": int(np.max(n))},
         stop_reasons={str(r): int(c) for r, c in zip(reasons, counts)},
-        exposure={"max_rate": float(rates.max()), "items_used": int(np.sum(result.administered > 0))},
+        exposure={"max_rate": float(rates.max()), "items_used": used,
+                  "items_never_used": int(result.bank.n_items - used), "exposure_target": target,
+                  "share_above_target": float(np.mean(rates[operational] > target)) if operational.any() else None},
     )
+    classes = composite_classification(result)
+    if classes:
+        out["classification"] = classes
     return out
 
 
@@ -187,6 +226,20 @@ def examinees_csv(result: MultidimensionalSimulationResult) -> str:
         w.writerow([i, int(result.seeds[i])] + [f"{x:.6g}" for x in result.true_theta[i]]
                    + [f"{x:.6g}" for x in result.theta[i]] + [f"{x:.6g}" for x in result.se[i]]
                    + [int(result.n_scored[i]), int(result.n_pretest[i]), str(result.stop_reason[i])])
+    return buf.getvalue()
+
+
+def items_csv(result: MultidimensionalSimulationResult) -> str:
+    """One row per item: ``item_id,exposure_rate,times_given,area,status`` (as the one-dimensional
+    study's items.csv, without the selection rate)."""
+    bank = result.bank
+    n = max(result.size, 1)
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["item_id", "exposure_rate", "times_given", "area", "status"])
+    for i, iid in enumerate(bank.item_ids):
+        w.writerow([iid, f"{result.administered[i] / n:.6g}", int(result.administered[i]), bank.area[i],
+                    bank.status[i]])
     return buf.getvalue()
 
 
@@ -206,18 +259,37 @@ def summary_text(summary: dict) -> str:
                  "stops: " + ", ".join(f"{k} {v}" for k, v in summary["stop_reasons"].items()))
     lines.append(f"largest exposure rate {summary['exposure']['max_rate']:.3f}; "
                  f"items used {summary['exposure']['items_used']}")
+    for c in summary.get("classification", []):
+        lines.append(f"composite classified at the cut {c['cut']}: accuracy {c['accuracy']:.3f}")
     return "\n".join(lines)
 
 
-def write_study(result: MultidimensionalSimulationResult, summary: dict, out_dir: str | Path) -> list[str]:
-    """Write ``summary.json`` and ``examinees.csv`` into ``out_dir`` (created if needed)."""
+def write_study(result: MultidimensionalSimulationResult, summary: dict, out_dir: str | Path, *,
+                title: str = "", warnings=()) -> list[str]:
+    """Write :data:`FILES` into ``out_dir`` (created if needed): ``summary.json``,
+    ``examinees.csv``, ``items.csv`` and ``report.html``; a study file of an earlier run
+    (one- or multidimensional) that this run does not write is removed.
+
+    ``title`` and ``warnings`` (:func:`~adaptive_engine.design.bank_fit.design_warnings`)
+    go to the report page.
+    """
     from ..files import StagedFiles, prepare_folder
+    from .multidimensional_report import multidimensional_report_html
 
     folder, _ = prepare_folder(out_dir)
     staging = StagedFiles(folder)
     try:
         staging.write_text("summary.json", json.dumps(summary, indent=2, allow_nan=False) + "\n")
         staging.write_text("examinees.csv", examinees_csv(result))
-        return sorted(p.name for p in staging.commit())
+        staging.write_text("items.csv", items_csv(result))
+        staging.write_text("report.html", multidimensional_report_html(result, summary, title=title,
+                                                                       warnings=warnings))
+        written = sorted(p.name for p in staging.commit())
+        from .study import FILES as ONE_DIMENSIONAL_FILES
+
+        for name in {*FILES, *ONE_DIMENSIONAL_FILES} - set(written):
+            # a file an earlier run left in the folder would not match this run's
+            (folder / name).unlink(missing_ok=True)
+        return written
     finally:
         staging.discard()

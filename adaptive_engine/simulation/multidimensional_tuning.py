@@ -26,10 +26,11 @@ from ..design.bank_fit import runs_multidimensional
 from ..design.types import Design
 from ..errors import DesignError
 from ..files import StagedFiles, prepare_folder
-from ..kernel.final_report import classification_matrix
-from ..kernel.multidimensional_cycle import composite
-from . import metrics
-from .multidimensional_engine import DEFAULT_CHUNK, multidimensional_metrics, simulate_multidimensional
+from .multidimensional_engine import (
+    DEFAULT_CHUNK,
+    multidimensional_metrics,
+    simulate_multidimensional,
+)
 from .tuning import Variation, mark_frontier, variant_designs
 
 
@@ -42,24 +43,6 @@ def _combinations(design: Design, bank: ItemBank, variations: list[Variation]):
                               "multidimensional one; vary settings that keep the ability a vector",
                               f"variations ({where})")
     return keys, combos, designs
-
-
-def composite_classification(result) -> list[dict]:
-    """:func:`adaptive_engine.simulation.metrics.classification` of the composite (empty without one).
-
-    The true composite ``w . theta_true`` against the estimated one ``w . theta_hat``
-    classified by the point estimate against each cut score (as the final report does
-    when no SPRT decides).
-    """
-    design = result.design
-    weights = design.reporting.composite_weights
-    cuts = design.reporting.cut_scores
-    if weights is None or not cuts:
-        return []
-    w = np.asarray(weights, dtype=float)
-    true_c = result.true_theta @ w
-    est_c, _ = composite(w, result.theta, result.covariance)
-    return metrics.classification(true_c, classification_matrix(design, est_c), cuts)
 
 
 def variant_row(result) -> dict:
@@ -84,7 +67,7 @@ def variant_row(result) -> dict:
     for name, d in dims.items():
         row[f"mean_se_{name}"] = d["mean_se"]
     row["max_exposure"] = s["exposure"]["max_rate"]
-    for c in composite_classification(result):
+    for c in s.get("classification", []):
         row[f"accuracy_{c['cut']}"] = c["accuracy"]
     return row
 

@@ -559,7 +559,11 @@ def _panel_svg(panel: Panel, box, xr, yr, xticks, yticks, ylabels, *, last: bool
             body.append(f"<line class='vline' x1='{_num(x)}' y1='{_num(y0)}' x2='{_num(x)}' y2='{_num(y1)}' "
                         f"stroke='{colour}' stroke-width='{width:g}'{_dash_attr(dash)}/>")
             if note:
-                out.append(f"<text x='{_num(x)}' y='{_num(y0 - 4)}' text-anchor='middle'>{esc(note)}</text>")
+                # centred on the line, or ending at it (starting at it) when a centred note would run
+                # past the chart's right (left) edge: the right margin is narrower than most notes
+                half = text_width(note, TICK_SIZE) / 2
+                anchor = "end" if x + half > x1 + 16 else "start" if x - half < 2 else "middle"
+                out.append(f"<text x='{_num(x)}' y='{_num(y0 - 4)}' text-anchor='{anchor}'>{esc(note)}</text>")
         elif kind == "line":
             _, x, y, colour, width, dash, marker, hollow = item
             ppx, ppy = px(x), py(y)
