@@ -24,6 +24,7 @@ from . import stopping
 from .multidimensional_state import (
     MultidimensionalState,
     add_and_moments,
+    given_items,
     inverse,
     matrix_vector,
     test_information_and_score,
@@ -86,10 +87,16 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     theta = np.array(start_theta, dtype=float)
     converged = np.zeros(rows.size, dtype=bool)
     active = np.arange(rows.size)
+    # the items' parameters gathered once for every iteration (an M2PL bank)
+    given = given_items(tab, items, resp) if tab.logistic_only else None
     for _ in range(MAP_ITERATIONS):
         # only rows still moving are iterated (each row's path is its own: batch-independent)
-        info, grad = test_information_and_score(tab, items[active], resp[active], theta[active], precision[active],
-                                                score=True)
+        if given is None:
+            info, grad = test_information_and_score(tab, items[active], resp[active], theta[active],
+                                                    precision[active], score=True)
+        else:
+            info, grad = test_information_and_score(tab, None, None, theta[active], precision[active], score=True,
+                                                    given=given.rows(active))
         grad = grad - matrix_vector(precision[active], theta[active] - mu[active])
         new = np.clip(theta[active] + matrix_vector(inverse(info), grad), sc.grid_min, sc.grid_max)
         moved = np.max(np.abs(new - theta[active]), axis=1)
@@ -99,7 +106,7 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
         active = active[~done]
         if active.size == 0:
             break
-    info, _ = test_information_and_score(tab, items, resp, theta, precision)
+    info, _ = test_information_and_score(tab, items, resp, theta, precision, given=given)
     return theta, inverse(info), converged
 
 
