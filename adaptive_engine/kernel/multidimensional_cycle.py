@@ -63,8 +63,30 @@ def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -
     # the bookkeeping books the answers; the posterior takes the scored ones here
     scored_item = record_answers(ctx, state, rows, responses)
     update_estimate(ctx, state, rows, scored_item, responses)
-    picked = select(ctx, state, rows, count_eligible=count_eligible)
+    picked = _select_unless_full(ctx, state, rows, count_eligible)
     return settle_step(ctx, state, rows, picked, stop_reasons(ctx, state, rows, picked))
+
+
+def _select_unless_full(ctx, state, rows, count_eligible) -> Picked:
+    """:func:`adaptive_engine.kernel.selection.select` for the rows that may go on.
+
+    A row that has been given ``max_items`` scored items stops whatever is picked for it
+    (``max_items`` takes precedence over every reason the pick could add, ``no_eligible_item``;
+    :data:`adaptive_engine.kernel.stopping.STOP_PRECEDENCE`), and :func:`settle_step` hands
+    a stopping row no item: its pick is not made (-1, as for no eligible item).  With
+    ``count_eligible`` every row is selected for, as the counts are returned.
+    """
+    full = state.n_scored[rows] >= ctx.multidimensional.stopping_rule.max_items
+    if count_eligible or not full.any():
+        return select(ctx, state, rows, count_eligible=count_eligible)
+    go = np.flatnonzero(~full)
+    item = np.full(rows.size, -1, dtype=np.int64)
+    value = np.full(rows.size, np.nan)
+    withheld = []
+    if go.size:
+        some = select(ctx, state, rows[go])
+        item[go], value[go], withheld = some.item, some.value, some.withheld
+    return Picked(item=item, value=value, eligible=np.full(rows.size, -1, dtype=np.int64), withheld=withheld)
 
 
 # ----------------------------------------------------------------------------------------
@@ -189,11 +211,23 @@ class MultidimensionalFinalEstimates:
     sprt_decision: None = None
 
 
-def final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimates:
-    """Final estimates of ``rows`` by the design's final method (EAP on the grid or MAP)."""
+def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
+    """Final estimates of ``rows`` by the design's final method (EAP on the grid or MAP).
+
+    ``interim_current``: the caller knows that every answer of ``rows`` went through
+    :func:`answer` (a simulated chunk), so that for an EAP design (interim and final) the
+    interim estimate and covariance of a row that took an answer are the posterior moments
+    of its present posterior, computed after its last answer by the same function on the
+    same values; they are taken as they are instead of being computed again.
+    """
     rows = np.asarray(rows, dtype=np.int64)
-    mean, cov = add_and_moments(state.log_post, rows, points=ctx.multidimensional.points)
     status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
+    design = ctx.design
+    if (interim_current and design.scoring.method is ScoringMethod.EAP and design.final_method is ScoringMethod.EAP
+            and bool(np.all(state.n_given[rows] > 0))):
+        cov = state.covariance[rows]
+        return MultidimensionalFinalEstimates(theta=state.theta[rows], se=_se(cov), covariance=cov, status=status)
+    mean, cov = add_and_moments(state.log_post, rows, points=ctx.multidimensional.points)
     if ctx.design.final_method is ScoringMethod.MAP:
         mean, cov, ok = map_estimate(ctx, state, rows, mean)
         status = np.where(state.n_scored[rows] == 0, "no_responses",
