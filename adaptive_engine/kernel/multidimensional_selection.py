@@ -240,17 +240,14 @@ def best_items(ctx, state, rows, ok, facts):
 def _screened_values(screen, theta, w_inv, scaling, k, ok) -> np.ndarray:
     """D-optimality values of every item in single precision, 0 where not ``ok``, (R, n) float32.
 
-    ``z = [theta, 1] . [a, d]`` and ``a' W^-1 a`` (with D^2) are each one matrix product
-    over the K + 1 or K (K + 1) / 2 terms (the BLAS's single-precision product, several
-    times faster than a broadcast product per term or an einsum): any order of summation,
-    fused multiply-adds included, is within the bound of :func:`_screening_error`, and
-    screened values only choose which items are evaluated in double precision, so that
-    rounding which differs with the batch changes no pick.
+    ``z = [theta, 1] . [a, d]`` and ``a' W^-1 a`` (with D^2) are each one einsum over the
+    K + 1 or K (K + 1) / 2 terms: faster than a broadcast product per term, and any order
+    of summation is within the bound of :func:`_screening_error`.
     """
     r_n = theta.shape[0]
     left = np.ones((r_n, k + 1), dtype=np.float32)
     left[:, :k] = theta
-    z = np.matmul(left, screen.linear)
+    z = np.einsum("rk,kn->rn", left, screen.linear)
     term = np.empty_like(z)
     np.abs(z, out=z)
     z *= np.float32(-scaling)
@@ -262,7 +259,7 @@ def _screened_values(screen, theta, w_inv, scaling, k, ok) -> np.ndarray:
     weights = np.empty((r_n, len(pairs)), dtype=np.float32)
     for index, (p, r) in enumerate(pairs):
         weights[:, index] = w_inv[:, p, r] * ((1.0 if p == r else 2.0) * scaling * scaling)
-    np.matmul(weights, screen.products, out=term)
+    np.einsum("rk,kn->rn", weights, screen.products, out=term)
     e *= term
     e *= ok
     return e
