@@ -285,7 +285,7 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
     k = tab.k
     if tab.logistic_only:
         if given is None:
-            given = given_items(tab, items, responses)
+            given = given_items(tab, items, responses if score else None)
         return _logistic_information_and_score(tab, given.reached(), theta, precision, score=score)
     width = items.shape[1]
     reached = np.flatnonzero((items >= 0).any(axis=0))
@@ -318,20 +318,31 @@ class GivenItems:
     ----------
     given : bool (L, R)
         Where a scored item was given.
-    slopes : float (L, R, K)
-    intercepts : float (L, R)
-    responses : int (L, R)
+    columns : float (K + 1, L, R)
+        The items' slopes on each dimension and, last, their intercepts (each one
+        contiguous array, so that the elementwise passes read no strides).
+    responses : int (L, R) or None
+        The answers (None where only the information is wanted).
     """
 
     given: np.ndarray
-    slopes: np.ndarray
-    intercepts: np.ndarray
+    columns: np.ndarray
     responses: np.ndarray
 
+    @property
+    def slopes(self) -> np.ndarray:
+        """(K, L, R)"""
+        return self.columns[:-1]
+
+    @property
+    def intercepts(self) -> np.ndarray:
+        """(L, R)"""
+        return self.columns[-1]
+
     def rows(self, index) -> "GivenItems":
-        """The same for some of the rows (``index`` into the second axis)."""
-        return GivenItems(given=self.given[:, index], slopes=self.slopes[:, index],
-                          intercepts=self.intercepts[:, index], responses=self.responses[:, index])
+        """The same for some of the rows (``index`` into the last axis)."""
+        return GivenItems(given=self.given[:, index], columns=self.columns[:, :, index],
+                          responses=None if self.responses is None else self.responses[:, index])
 
     def reached(self) -> "GivenItems":
         """Only the columns some row has reached (as :func:`test_information_and_score`
@@ -339,17 +350,17 @@ class GivenItems:
         cols = np.flatnonzero(self.given.any(axis=1))
         if cols.size == self.given.shape[0]:
             return self
-        return GivenItems(given=self.given[cols], slopes=self.slopes[cols], intercepts=self.intercepts[cols],
-                          responses=self.responses[cols])
+        return GivenItems(given=self.given[cols], columns=self.columns[:, cols],
+                          responses=None if self.responses is None else self.responses[cols])
 
 
 def given_items(tab: MultidimensionalTables, items, responses) -> GivenItems:
     """:class:`GivenItems` of ``items`` and ``responses`` (R, W), -1 where nothing was given
     (an M2PL bank)."""
     at = np.ascontiguousarray(np.asarray(items).T)
-    index = np.maximum(at, 0)
-    return GivenItems(given=at >= 0, slopes=tab.params.slopes[index], intercepts=tab.params.intercepts[index, 0],
-                      responses=np.ascontiguousarray(np.asarray(responses).T))
+    columns = np.vstack([tab.params.slopes.T, tab.params.intercepts[:, :1].T])  # (K + 1, n)
+    return GivenItems(given=at >= 0, columns=columns[:, np.maximum(at, 0)],
+                      responses=None if responses is None else np.ascontiguousarray(np.asarray(responses).T))
 
 
 def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *, score):
@@ -362,24 +373,24 @@ def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *,
     gives.
     """
     k = tab.k
-    a = given.slopes  # (L, R, K)
+    a = given.slopes  # (K, L, R)
     scaling = tab.params.scaling
     # a . theta, the dimensions in order (as md.projection sums them)
-    eta = a[..., 0] * theta[None, :, 0]
+    eta = a[0] * theta[None, :, 0]
     for d in range(1, k):
-        eta = eta + a[..., d] * theta[None, :, d]
+        eta = eta + a[d] * theta[None, :, d]
     prob = expit(scaling * (eta + given.intercepts))
     j = np.where(given.given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
     info = np.array(precision, dtype=float, copy=True)
     for p in range(k):
         for q in range(p, k):
-            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[..., p] * a[..., q])
+            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q])
             if q != p:
                 info[:, q, p] = info[:, p, q]
     if not score:
         return info, None
     r = np.where(given.given, scaling * (given.responses - prob), 0.0)
-    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[..., d]) for d in range(k)], axis=1)
+    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d]) for d in range(k)], axis=1)
     return info, grad
 
 
