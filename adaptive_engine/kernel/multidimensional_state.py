@@ -400,7 +400,7 @@ def _sum_in_order(start: np.ndarray, terms: np.ndarray) -> np.ndarray:
     numpy reduces over the first axis of a C-ordered array by adding each row to the
     running result in turn (no pairwise or blocked summation, which it applies along a
     contiguous axis only), as ``np.add.accumulate`` along the columns does
-    (tests/test_multidimensional_scoring.py compares the two).
+    (tests/test_multidimensional_fast_paths.py compares the two).
     """
     if terms.shape[0] == 0:
         return start.copy()
