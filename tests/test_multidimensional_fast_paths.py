@@ -25,7 +25,6 @@ from adaptive_engine.kernel import cycle as kernel
 from adaptive_engine.kernel import multidimensional_state as mst
 from adaptive_engine.kernel.multidimensional_cycle import final_estimates
 from adaptive_engine.kernel.prepared import build_context
-
 from test_multidimensional_kernel import _answered_state, design_text, random_bank
 
 
