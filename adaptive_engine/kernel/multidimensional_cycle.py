@@ -19,7 +19,7 @@ import math
 import attrs
 import numpy as np
 
-from ..design.types import ScoringMethod
+from ..design.types import ScoringMethod, SelectionCriterion
 from . import stopping
 from .multidimensional_state import (
     MultidimensionalState,
@@ -78,15 +78,29 @@ def _select_unless_full(ctx, state, rows, count_eligible) -> Picked:
     """
     full = state.n_scored[rows] >= ctx.multidimensional.stopping_rule.max_items
     if count_eligible or not full.any():
-        return select(ctx, state, rows, count_eligible=count_eligible)
+        return select(ctx, state, rows, count_eligible=count_eligible, facts=_known_facts(ctx, state, rows))
     go = np.flatnonzero(~full)
     item = np.full(rows.size, -1, dtype=np.int64)
     value = np.full(rows.size, np.nan)
     withheld = []
     if go.size:
-        some = select(ctx, state, rows[go])
+        some = select(ctx, state, rows[go], facts=_known_facts(ctx, state, rows[go]))
         item[go], value[go], withheld = some.item, some.value, some.withheld
     return Picked(item=item, value=value, eligible=np.full(rows.size, -1, dtype=np.int64), withheld=withheld)
+
+
+def _known_facts(ctx, state, rows):
+    """``W^-1`` of ``rows`` for D- and A-optimality when the estimate has just made it: the
+    MAP covariance ``(P + I(theta))^-1`` at the interim estimate theta, computed by
+    :func:`map_estimate` from the same items, prior and theta as
+    :func:`.multidimensional_selection.row_facts` (the sums over the answers may differ
+    only in the sign of an exact zero, where another row of the batch reached a column this
+    row did not; no criterion value or pick can tell them apart).  None otherwise.
+    """
+    if (ctx.design.scoring.method is ScoringMethod.MAP
+            and ctx.design.selection.criterion in (SelectionCriterion.D_OPTIMALITY, SelectionCriterion.A_OPTIMALITY)):
+        return state.covariance[rows]
+    return None
 
 
 # ----------------------------------------------------------------------------------------
