@@ -128,3 +128,14 @@ def test_rows_at_max_items_stop_as_when_a_pick_is_made_for_them():
     np.testing.assert_array_equal(state.pending, other.pending)
     np.testing.assert_array_equal(state.pending_value, other.pending_value)
     np.testing.assert_array_equal(state.theta, other.theta)
+
+
+def test_map_covariance_is_the_inverse_information_the_pick_would_compute():
+    from adaptive_engine.kernel.multidimensional_selection import row_facts
+
+    for criterion in ("d_optimality", "a_optimality"):
+        ctx = build_context(parse_design(design_text(criterion, se="", extra='method = "map"')), random_bank())
+        state = _answered_state(ctx, n_answers=4, rows=4)
+        rows = np.array([0, 2, 3])
+        # equal values (the sign of an exact zero could differ, which no criterion value sees)
+        np.testing.assert_array_equal(state.covariance[rows], row_facts(ctx, state, rows))
