@@ -19,11 +19,12 @@ import math
 import attrs
 import numpy as np
 
-from ..design.types import ScoringMethod
+from ..design.types import ScoringMethod, SelectionCriterion
 from . import stopping
 from .multidimensional_state import (
     MultidimensionalState,
     add_and_moments,
+    given_items,
     inverse,
     matrix_vector,
     test_information_and_score,
@@ -62,8 +63,44 @@ def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -
     # the bookkeeping books the answers; the posterior takes the scored ones here
     scored_item = record_answers(ctx, state, rows, responses)
     update_estimate(ctx, state, rows, scored_item, responses)
-    picked = select(ctx, state, rows, count_eligible=count_eligible)
+    picked = _select_unless_full(ctx, state, rows, count_eligible)
     return settle_step(ctx, state, rows, picked, stop_reasons(ctx, state, rows, picked))
+
+
+def _select_unless_full(ctx, state, rows, count_eligible) -> Picked:
+    """:func:`adaptive_engine.kernel.selection.select` for the rows that may go on.
+
+    A row that has been given ``max_items`` scored items stops whatever is picked for it
+    (``max_items`` takes precedence over every reason the pick could add, ``no_eligible_item``;
+    :data:`adaptive_engine.kernel.stopping.STOP_PRECEDENCE`), and :func:`settle_step` hands
+    a stopping row no item: its pick is not made (-1, as for no eligible item).  With
+    ``count_eligible`` every row is selected for, as the counts are returned.
+    """
+    full = state.n_scored[rows] >= ctx.multidimensional.stopping_rule.max_items
+    if count_eligible or not full.any():
+        return select(ctx, state, rows, count_eligible=count_eligible, facts=_known_facts(ctx, state, rows))
+    go = np.flatnonzero(~full)
+    item = np.full(rows.size, -1, dtype=np.int64)
+    value = np.full(rows.size, np.nan)
+    withheld = []
+    if go.size:
+        some = select(ctx, state, rows[go], facts=_known_facts(ctx, state, rows[go]))
+        item[go], value[go], withheld = some.item, some.value, some.withheld
+    return Picked(item=item, value=value, eligible=np.full(rows.size, -1, dtype=np.int64), withheld=withheld)
+
+
+def _known_facts(ctx, state, rows):
+    """``W^-1`` of ``rows`` for D- and A-optimality when the estimate has just made it: the
+    MAP covariance ``(P + I(theta))^-1`` at the interim estimate theta, computed by
+    :func:`map_estimate` from the same items, prior and theta as
+    :func:`.multidimensional_selection.row_facts` (the sums over the answers may differ
+    only in the sign of an exact zero, where another row of the batch reached a column this
+    row did not; no criterion value or pick can tell them apart).  None otherwise.
+    """
+    if (ctx.design.scoring.method is ScoringMethod.MAP
+            and ctx.design.selection.criterion in (SelectionCriterion.D_OPTIMALITY, SelectionCriterion.A_OPTIMALITY)):
+        return state.covariance[rows]
+    return None
 
 
 # ----------------------------------------------------------------------------------------
@@ -86,10 +123,16 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     theta = np.array(start_theta, dtype=float)
     converged = np.zeros(rows.size, dtype=bool)
     active = np.arange(rows.size)
+    # the items' parameters gathered once for every iteration (an M2PL bank)
+    given = given_items(tab, items, resp) if tab.logistic_only else None
     for _ in range(MAP_ITERATIONS):
         # only rows still moving are iterated (each row's path is its own: batch-independent)
-        info, grad = test_information_and_score(tab, items[active], resp[active], theta[active], precision[active],
-                                                score=True)
+        if given is None:
+            info, grad = test_information_and_score(tab, items[active], resp[active], theta[active],
+                                                    precision[active], score=True)
+        else:
+            info, grad = test_information_and_score(tab, None, None, theta[active], precision[active], score=True,
+                                                    given=given.rows(active))
         grad = grad - matrix_vector(precision[active], theta[active] - mu[active])
         new = np.clip(theta[active] + matrix_vector(inverse(info), grad), sc.grid_min, sc.grid_max)
         moved = np.max(np.abs(new - theta[active]), axis=1)
@@ -99,7 +142,7 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
         active = active[~done]
         if active.size == 0:
             break
-    info, _ = test_information_and_score(tab, items, resp, theta, precision)
+    info, _ = test_information_and_score(tab, items, resp, theta, precision, given=given)
     return theta, inverse(info), converged
 
 
@@ -182,11 +225,23 @@ class MultidimensionalFinalEstimates:
     sprt_decision: None = None
 
 
-def final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimates:
-    """Final estimates of ``rows`` by the design's final method (EAP on the grid or MAP)."""
+def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
+    """Final estimates of ``rows`` by the design's final method (EAP on the grid or MAP).
+
+    ``interim_current``: the caller knows that every answer of ``rows`` went through
+    :func:`answer` (a simulated chunk), so that for an EAP design (interim and final) the
+    interim estimate and covariance of a row that took an answer are the posterior moments
+    of its present posterior, computed after its last answer by the same function on the
+    same values; they are taken as they are instead of being computed again.
+    """
     rows = np.asarray(rows, dtype=np.int64)
-    mean, cov = add_and_moments(state.log_post, rows, points=ctx.multidimensional.points)
     status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
+    design = ctx.design
+    if (interim_current and design.scoring.method is ScoringMethod.EAP and design.final_method is ScoringMethod.EAP
+            and bool(np.all(state.n_given[rows] > 0))):
+        cov = state.covariance[rows]
+        return MultidimensionalFinalEstimates(theta=state.theta[rows], se=_se(cov), covariance=cov, status=status)
+    mean, cov = add_and_moments(state.log_post, rows, points=ctx.multidimensional.points)
     if ctx.design.final_method is ScoringMethod.MAP:
         mean, cov, ok = map_estimate(ctx, state, rows, mean)
         status = np.where(state.n_scored[rows] == 0, "no_responses",

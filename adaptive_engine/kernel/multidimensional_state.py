@@ -25,6 +25,7 @@ from ..bank.item_bank import ItemBank
 from ..design.types import Design, SelectionCriterion, Stopping
 from ..errors import AdaptiveEngineError
 from ..irt import multidimensional as md
+from ..irt.models import log_expit
 from ..irt.posterior import BLOCK_VALUES, relative_density
 from .state import KernelState
 
@@ -116,10 +117,15 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     axis = np.round(np.linspace(sc.grid_min, sc.grid_max, p), 12)
     mesh = np.meshgrid(*([axis] * k), indexing="ij")
     points = np.stack([m.reshape(-1) for m in mesh], axis=1)  # (G, K)
-    log_table = np.empty((bank.n_items, points.shape[0], params.max_categories))
+    logistic = bool(np.all(params.n_categories == 2) and np.all(params.c == 0))
+    # (n, C, G), the layout the posterior update reads; log_table is its (n, G, C) view
+    by_category = np.empty((bank.n_items, params.max_categories, points.shape[0]))
     for start in range(0, bank.n_items, 500):
         stop = min(start + 500, bank.n_items)
-        log_table[start:stop] = md.log_probabilities(*md.outer(params.take(np.arange(start, stop)), points))
+        chunk = params.take(np.arange(start, stop))
+        if not (logistic and _logistic_log_table(chunk, points, by_category[start:stop])):
+            by_category[start:stop] = md.log_probabilities(*md.outer(chunk, points)).transpose(0, 2, 1)
+    log_table = by_category.transpose(0, 2, 1)
     mean, cov = prior_of(design, k)
     precision = inverse(cov)
     log_prior = -0.5 * quadratic_form(points - mean, precision)
@@ -132,7 +138,6 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     else:
         targets = None
     rule = attrs.evolve(st, se=None if targets is None else 1.0, se_per_dimension=None)
-    logistic = bool(np.all(params.n_categories == 2) and np.all(params.c == 0))
     products = {(p, q): params.slopes[:, p] * params.slopes[:, q] for p in range(k) for q in range(p, k)}
     finite = None
     if design.selection.criterion is SelectionCriterion.KULLBACK_LEIBLER:
@@ -147,6 +152,25 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
         screening=SinglePrecisionItems.of(params, products) if (
             design.selection.criterion is SelectionCriterion.D_OPTIMALITY and logistic) else None,
     )
+
+
+def _logistic_log_table(params: md.MultidimensionalParameters, points: np.ndarray, out: np.ndarray) -> bool:
+    """Log probabilities of M2PL items (two categories, no lower asymptote) on ``points``
+    into ``out`` (n, 2, G), the values :func:`adaptive_engine.irt.multidimensional.log_probabilities`
+    gives, in fewer passes; False (``out`` untouched) where a logit is not finite.
+
+    There, with ``z = D (a . x + d)``, category 0 is ``log_expit(+inf) + log_expit(-z) +
+    log(-expm1(z - inf))`` = ``(-0.0 + log_expit(-z)) + 0.0`` and category 1 is
+    ``(log_expit(z) + -0.0) + 0.0`` (``log(1) = 0``): adding -0.0 changes no value, adding
+    +0.0 only turns -0.0 into +0.0, so ``log_expit(-+z) + 0.0`` is each, bit for bit.
+    """
+    eta = md.projection(md.outer(params, points)[0], points)  # (n, G)
+    z = params.scaling * (eta + params.intercepts[:, :1])
+    if not np.all(np.isfinite(z)):
+        return False
+    np.add(log_expit(-z), 0.0, out=out[:, 0, :])
+    np.add(log_expit(z), 0.0, out=out[:, 1, :])
+    return True
 
 
 @attrs.frozen(eq=False)
@@ -247,23 +271,25 @@ def matrix_vector(m: np.ndarray, x: np.ndarray) -> np.ndarray:
 
 
 def test_information_and_score(tab: MultidimensionalTables, items, responses, theta, precision, *,
-                               score: bool = False):
+                               score: bool = False, given: "GivenItems | None" = None):
     """``P + sum_i J_i(theta) a_i a_i'`` (R, K, K) and, with ``score``, the gradient of the
     log-likelihood ``sum_i r_i(theta) a_i`` (R, K) over the items given.
 
     ``items`` and ``responses`` are (R, W), -1 where nothing (or a pretest item) was given.
     The sums run column by column, in the order the items were given, so that a row's sum
     is the same whatever other rows (and how many columns) the batch holds: the columns a
-    row has not reached add exact zeros.
+    row has not reached add exact zeros.  ``given``: :func:`given_items` of the same items
+    and responses (an M2PL bank only), when the caller has gathered them already.
     """
     theta = np.asarray(theta, dtype=float)
     k = tab.k
+    if tab.logistic_only:
+        if given is None:
+            given = given_items(tab, items, responses if score else None)
+        return _logistic_information_and_score(tab, given.reached(), theta, precision, score=score)
     width = items.shape[1]
     reached = np.flatnonzero((items >= 0).any(axis=0))
     reached = reached[reached < width]
-    if tab.logistic_only:
-        return _logistic_information_and_score(tab, items[:, reached], responses[:, reached], theta, precision,
-                                               score=score)
     info = np.array(precision, dtype=float, copy=True)
     grad = np.zeros(theta.shape) if score else None
     for col in reached:
@@ -282,38 +308,106 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
     return info, grad
 
 
-def _logistic_information_and_score(tab, items, responses, theta, precision, *, score):
+@attrs.frozen(eq=False)
+class GivenItems:
+    """The items given to rows of a batch, gathered once, one column per answer: arrays
+    (L, R) -- the answers down the first axis, the rows along the second (the layout in
+    which a sum over each row's answers, in order, is one reduction over the first axis).
+
+    Attributes
+    ----------
+    given : bool (L, R)
+        Where a scored item was given.
+    columns : float (K + 1, L, R)
+        The items' slopes on each dimension and, last, their intercepts (each one
+        contiguous array, so that the elementwise passes read no strides).
+    responses : int (L, R) or None
+        The answers (None where only the information is wanted).
+    """
+
+    given: np.ndarray
+    columns: np.ndarray
+    responses: np.ndarray
+
+    @property
+    def slopes(self) -> np.ndarray:
+        """(K, L, R)"""
+        return self.columns[:-1]
+
+    @property
+    def intercepts(self) -> np.ndarray:
+        """(L, R)"""
+        return self.columns[-1]
+
+    def rows(self, index) -> "GivenItems":
+        """The same for some of the rows (``index`` into the last axis)."""
+        return GivenItems(given=self.given[:, index], columns=self.columns[:, :, index],
+                          responses=None if self.responses is None else self.responses[:, index])
+
+    def reached(self) -> "GivenItems":
+        """Only the columns some row has reached (as :func:`test_information_and_score`
+        sums them: a column no row reached is not added at all)."""
+        cols = np.flatnonzero(self.given.any(axis=1))
+        if cols.size == self.given.shape[0]:
+            return self
+        return GivenItems(given=self.given[cols], columns=self.columns[:, cols],
+                          responses=None if self.responses is None else self.responses[cols])
+
+
+def given_items(tab: MultidimensionalTables, items, responses) -> GivenItems:
+    """:class:`GivenItems` of ``items`` and ``responses`` (R, W), -1 where nothing was given
+    (an M2PL bank)."""
+    at = np.ascontiguousarray(np.asarray(items).T)
+    columns = np.vstack([tab.params.slopes.T, tab.params.intercepts[:, :1].T])  # (K + 1, n)
+    return GivenItems(given=at >= 0, columns=columns[:, np.maximum(at, 0)],
+                      responses=None if responses is None else np.ascontiguousarray(np.asarray(responses).T))
+
+
+def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *, score):
     """:func:`test_information_and_score` for a bank of M2PL items, every column at once.
 
     ``P = expit(D (a . theta + d))``, ``J = D^2 P (1 - P)``, score ``D (x - P)``, elementwise
-    over (R, L); the sums over the columns run in their order (``np.add.accumulate`` adds
-    one column after another), so every value is the one adding a column at a time gives.
+    over the (L, R) columns of ``given``; the sums over the columns run in their order (a
+    reduction over the first axis of an array whose rows are the columns adds one after
+    another, the start value first), so every value is the one adding a column at a time
+    gives.
     """
     k = tab.k
-    given = items >= 0
-    params = tab.params.take(np.maximum(items, 0))  # (R, L)
-    a = params.slopes  # (R, L, K)
-    scaling = params.scaling
-    prob = expit(scaling * (md.projection(params, theta[:, None, :]) + params.intercepts[..., 0]))
-    j = np.where(given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
+    a = given.slopes  # (K, L, R)
+    scaling = tab.params.scaling
+    # a . theta, the dimensions in order (as md.projection sums them)
+    eta = a[0] * theta[None, :, 0]
+    for d in range(1, k):
+        eta = eta + a[d] * theta[None, :, d]
+    prob = expit(scaling * (eta + given.intercepts))
+    j = np.where(given.given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
     info = np.array(precision, dtype=float, copy=True)
     for p in range(k):
         for q in range(p, k):
-            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[..., p] * a[..., q])
+            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q])
             if q != p:
                 info[:, q, p] = info[:, p, q]
     if not score:
         return info, None
-    r = np.where(given, scaling * (responses - prob), 0.0)
-    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[..., d]) for d in range(k)], axis=1)
+    r = np.where(given.given, scaling * (given.responses - prob), 0.0)
+    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d]) for d in range(k)], axis=1)
     return info, grad
 
 
 def _sum_in_order(start: np.ndarray, terms: np.ndarray) -> np.ndarray:
-    """``(((start + t_0) + t_1) + ..)`` per row of ``terms`` (R, L): one column after another."""
-    if terms.shape[1] == 0:
+    """``(((start + t_0) + t_1) + ..)`` per column of ``terms`` (L, R): one row after another.
+
+    numpy reduces over the first axis of a C-ordered array by adding each row to the
+    running result in turn (no pairwise or blocked summation, which it applies along a
+    contiguous axis only), as ``np.add.accumulate`` along the columns does
+    (tests/test_multidimensional_fast_paths.py compares the two).
+    """
+    if terms.shape[0] == 0:
         return start.copy()
-    return np.add.accumulate(np.concatenate([start[:, None], terms], axis=1), axis=1)[:, -1]
+    stacked = np.empty((terms.shape[0] + 1,) + start.shape)
+    stacked[0] = start
+    stacked[1:] = terms
+    return np.add.reduce(stacked, axis=0)
 
 
 # ----------------------------------------------------------------------------------------

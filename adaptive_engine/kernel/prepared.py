@@ -325,7 +325,7 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
 
         multidimensional = build_tables(design, bank)
         grid = multidimensional.points
-        by_category = np.ascontiguousarray(multidimensional.log_table.transpose(0, 2, 1))
+        by_category = multidimensional.log_table.transpose(0, 2, 1)  # contiguous: the tables' own layout
     else:
         by_category = log_table_by_category(bank, grid)
     return TestContext(

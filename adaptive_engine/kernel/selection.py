@@ -97,8 +97,13 @@ class ProvenChoice(NamedTuple):
     withheld: list
 
 
-def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_eligible: bool = False) -> Picked:
-    """Pick the next item for ``rows`` of ``state`` (state is not changed)."""
+def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_eligible: bool = False,
+           facts: np.ndarray | None = None) -> Picked:
+    """Pick the next item for ``rows`` of ``state`` (state is not changed).
+
+    ``facts`` (an ability vector only): what
+    :func:`.multidimensional_selection.row_facts` gives for ``rows``, when the caller has it.
+    """
     rows = np.asarray(rows, dtype=np.int64)
     r_n = rows.size
     item = np.full(r_n, -1, dtype=np.int64)
@@ -133,7 +138,7 @@ def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_elig
     pending = np.flatnonzero(todo)
     if pending.size:
         sub = rows[pending]
-        got = _criterion_pick(ctx, state, sub)
+        got = _criterion_pick(ctx, state, sub, None if facts is None else facts[pending])
         item[pending] = got.item
         value[pending] = got.value
         withheld.extend(got.withheld)
@@ -173,7 +178,7 @@ def _target_area(ctx, state, rows, open_area) -> np.ndarray:
     return np.where(np.isfinite(gap.max(axis=1)), target, -1)
 
 
-def _criterion_pick(ctx, state, rows) -> Choice:
+def _criterion_pick(ctx, state, rows, known_facts=None) -> Choice:
     design = ctx.design
     open_area = area_limits(ctx, state, rows)
     fits = set_fits(ctx, state, rows, open_area)
@@ -205,7 +210,12 @@ def _criterion_pick(ctx, state, rows) -> Choice:
 
         chunk = max(1, VECTOR_BLOCK_VALUES // max(1, ctx.n_items))
         # what the criterion needs of each row, once for all the blocks
-        facts = row_facts(ctx, state, rows[rest]) if rest.size else None
+        if not rest.size:
+            facts = None
+        elif known_facts is not None:
+            facts = known_facts[rest]
+        else:
+            facts = row_facts(ctx, state, rows[rest])
     for start in range(0, rest.size, chunk):
         part = rest[start : start + chunk]
         part_facts = None if facts is None else facts[start : start + chunk]

@@ -35,7 +35,7 @@ from ..irt import multidimensional as md
 from ..kernel import cycle as kernel
 from ..kernel import random_streams as randomness
 from ..kernel.final_report import classification_matrix
-from ..kernel.multidimensional_cycle import composite
+from ..kernel.multidimensional_cycle import composite, final_estimates
 from ..kernel.prepared import TestContext, build_context
 from . import metrics
 from .shared_histories import ChunkRows
@@ -98,7 +98,8 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
         answers = np.minimum((np.cumsum(p, axis=1) < u[:, None]).sum(axis=1), top)
         rows, answers = chunk_rows.split(state, examinees, at_row, answers)
         kernel.answer(ctx, state, rows, answers)
-    est = kernel.final_estimates(ctx, state, chunk_rows.in_use())
+    # every answer went through the kernel's answer: an EAP design's interim estimates are final
+    est = final_estimates(ctx, state, chunk_rows.in_use(), interim_current=True)
     per_examinee = chunk_rows.of_examinees
     return dict(seeds=seeds, true_theta=true_theta, theta=per_examinee(est.theta), se=per_examinee(est.se),
                 covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
