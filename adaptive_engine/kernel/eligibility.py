@@ -120,6 +120,22 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
     return ok
 
 
+def eligible_count(ctx: TestContext, state: KernelState, rows: np.ndarray) -> np.ndarray:
+    """How many operational items each of ``rows`` may get next, int (R,): the row sums of
+    :func:`eligible` over every item of the bank.
+
+    Without pretest items, enemy groups and item sets the mask is the unused items of the
+    open areas, counted without building the candidate matrix (the same count).
+    """
+    if ctx.n_groups or len(ctx.set_members) or not ctx.operational.all():
+        every = np.broadcast_to(np.arange(ctx.n_items), (rows.size, ctx.n_items))
+        return eligible(ctx, state, rows, every).sum(axis=1)
+    free = ~state.used[rows]
+    if ctx.balanced:
+        free &= area_limits(ctx, state, rows)[:, ctx.area]
+    return np.count_nonzero(free, axis=1).astype(np.int64)
+
+
 def _every_item(ctx: TestContext, cand: np.ndarray) -> bool:
     """Whether ``cand`` is every item of the bank in bank order, the same row repeated
     (``np.broadcast_to(np.arange(n), (R, n))``)."""

@@ -30,7 +30,7 @@ from ..design.types import BlueprintMethod, ExposureMethod, SelectionCriterion
 from ..irt import models
 from ..irt.posterior import posterior_weights
 from . import random_streams as randomness
-from .eligibility import area_limits, eligible, only_used_rule, set_fits
+from .eligibility import area_limits, eligible, eligible_count, only_used_rule, set_fits
 from .prepared import NO_MAXIMUM, RANK_DEPTH, RANK_STEP, TestContext, ranked_tables
 from .state import KernelState
 
@@ -138,8 +138,7 @@ def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_elig
         value[pending] = got.value
         withheld.extend(got.withheld)
     if count_eligible:
-        all_items = np.broadcast_to(np.arange(ctx.n_items), (r_n, ctx.n_items))
-        n_elig = eligible(ctx, state, rows, all_items).sum(axis=1)
+        n_elig = eligible_count(ctx, state, rows)
     return Picked(item=item, value=value, eligible=n_elig, withheld=withheld)
 
 
@@ -270,30 +269,41 @@ def pick_rule(ctx, state, rows) -> RankedPickRule:
                           purpose=np.full(size, randomness.FIRST_ITEM), lottery=lottery)
 
 
-def _choose_ranked(ctx, state, rows, cand, values, ok) -> RankedChoice:
-    """Pick among candidates ranked by value, by each row's :class:`RankedPickRule`."""
+def _choose_ranked(ctx, state, rows, cand, values, ok, rule: RankedPickRule | None = None) -> RankedChoice:
+    """Pick among candidates ranked by value, by each row's :class:`RankedPickRule`
+    (``rule``: the rows' rule when the caller has it already)."""
     masked = np.where(ok, values, -np.inf)
     n_ok = ok.sum(axis=1)
-    rule = pick_rule(ctx, state, rows)
+    if rule is None:
+        rule = pick_rule(ctx, state, rows)
+    every = np.arange(rows.size)
     draw = rule.draw & (rule.width > 1)  # a draw among one candidate takes the best
     if not draw.any() and not rule.lottery.any():
         # the best item: no ranking needed (ties go to the first, as in a stable sort)
         pos = np.argmax(masked, axis=1)
-        best = masked[np.arange(rows.size), pos]
-        chosen = np.where(n_ok > 0, cand[np.arange(rows.size), pos], -1)
+        best = masked[every, pos]
+        chosen = np.where(n_ok > 0, cand[every, pos], -1)
         return RankedChoice(item=chosen, value=np.where(n_ok > 0, best, np.nan), kth=best,
                             depth=np.ones(rows.size, dtype=np.int64), withheld=[])
     order = np.argsort(-masked, axis=1, kind="stable")
-    s_cand = np.take_along_axis(cand, order, axis=1)
-    s_val = np.take_along_axis(masked, order, axis=1)
+    # cand[every[:, None], order] is np.take_along_axis(cand, order, axis=1), without its checks
+    s_cand = cand[every[:, None], order]
+    s_val = masked[every[:, None], order]
     pos = np.zeros(rows.size, dtype=np.int64)
     depth = np.ones(rows.size, dtype=np.int64)
     withheld = []
     if rule.draw.any():
         width = np.minimum(rule.width, n_ok)
-        u = np.where(rule.purpose == randomness.FIRST_ITEM,
-                     randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.FIRST_ITEM),
-                     randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.RANDOMESQUE))
+        first_item = rule.purpose == randomness.FIRST_ITEM
+        keys, given = state.keys[rows], state.n_given[rows]
+        # each row's uniform from its own stream (only the streams some row draws from)
+        if first_item.all():
+            u = randomness.uniforms(keys, given, randomness.FIRST_ITEM)
+        elif not first_item.any():
+            u = randomness.uniforms(keys, given, randomness.RANDOMESQUE)
+        else:
+            u = np.where(first_item, randomness.uniforms(keys, given, randomness.FIRST_ITEM),
+                         randomness.uniforms(keys, given, randomness.RANDOMESQUE))
         drawn = np.minimum((u * width).astype(np.int64), np.maximum(width - 1, 0))
         # with fewer than `width` eligible items listed, unlisted ones could belong in the draw
         reach = np.where(n_ok < rule.width, rule.width, np.maximum(width, 1))
@@ -317,12 +327,12 @@ def _choose_ranked(ctx, state, rows, cand, values, ok) -> RankedChoice:
             for j in range(lottery_pos[r_pos]):
                 if np.isfinite(s_val[r_pos, j]):
                     withheld.append((int(rows[r_pos]), int(s_cand[r_pos, j])))
-    chosen = np.take_along_axis(s_cand, pos[:, None], axis=1)[:, 0]
-    chosen_val = np.take_along_axis(s_val, pos[:, None], axis=1)[:, 0]
+    chosen = s_cand[every, pos]
+    chosen_val = s_val[every, pos]
     none_left = n_ok == 0
     chosen = np.where(none_left, -1, chosen)
     chosen_val = np.where(none_left, np.nan, chosen_val)
-    kth = np.take_along_axis(s_val, np.clip(depth - 1, 0, s_val.shape[1] - 1)[:, None], axis=1)[:, 0]
+    kth = s_val[every, np.minimum(np.maximum(depth - 1, 0), s_val.shape[1] - 1)]
     return RankedChoice(item=chosen, value=chosen_val, kth=kth, depth=depth, withheld=withheld)
 
 
@@ -343,7 +353,7 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     theta = state.theta[rows]
     g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
     inside = (g >= 0) & (g < grid.size)
-    g = np.clip(g, 0, grid.size - 1)
+    g = np.minimum(np.maximum(g, 0), grid.size - 1)
     # reach_after[k, g, j]: the highest reach of the listed items from column j on
     reach_after = ctx.bank.cached(("ranked_reach_after", RANK_STEP, RANK_DEPTH, by_area),
                                   lambda: _reach_after(reach_tab))
@@ -409,7 +419,7 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
         return ProvenChoice(rows=positions, item=np.concatenate([q_item[q_proven], more.item]),
                             value=np.concatenate([q_value[q_proven], more.value]), withheld=more.withheld)
     return _proven_from_list(ctx, state, rows, lists(slice(None)) if cand is None else cand, ok, theta, inside,
-                             table_ceiling, at, after_flat, n_exact)
+                             table_ceiling, at, after_flat, n_exact, rule=rule)
 
 
 def _bit_places(items_tab) -> tuple[np.ndarray, np.ndarray]:
@@ -451,13 +461,14 @@ def _quick_best(bank, items_flat, list_at, ok, theta, inside, table_ceiling, at,
 
 
 def _proven_from_list(ctx, state, rows, cand, ok, theta, inside, table_ceiling, at, after_flat,
-                      n_exact) -> ProvenChoice:
+                      n_exact, rule: RankedPickRule | None = None) -> ProvenChoice:
     """The short-list choice of ``rows`` among their first ``n_exact`` eligible candidates
-    (by the exposure method), for the rows where it is proven (positions in ``rows``)."""
+    (by the exposure method), for the rows where it is proven (positions in ``rows``);
+    ``rule``: the rows' :class:`RankedPickRule` when the caller has it."""
     # the first n_exact eligible columns of each row, in grid order (-1: none)
     first, _ = _first_eligible(ok, n_exact, beyond=False)
     ex_ok = first >= 0
-    ex_cand = np.where(ex_ok, np.take_along_axis(cand, np.maximum(first, 0), axis=1), -1)
+    ex_cand = np.where(ex_ok, cand[np.arange(rows.size)[:, None], np.maximum(first, 0)], -1)
     exact = _exact_information(ctx.bank, np.maximum(ex_cand, 0), theta)
     # ceiling of everything not evaluated: unlisted items, and the listed items after the
     # last one evaluated (eligible or not: a bound a little above the eligible ones' own,
@@ -465,7 +476,7 @@ def _proven_from_list(ctx, state, rows, cand, ok, theta, inside, table_ceiling, 
     last = first[:, -1]
     rest = np.where(last >= 0, after_flat.take(at + last + 1), -np.inf)
     ceiling = np.maximum(table_ceiling, rest)
-    ranked = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
+    ranked = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok, rule)
     proven = inside & (ranked.depth <= n_exact) & (ranked.kth >= ceiling) & (ranked.item >= 0)
     keep = np.flatnonzero(proven)
     withheld = ranked.withheld
