@@ -107,7 +107,8 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
     if ctx.balanced:  # without rules every area stays open
         if open_area is None:
             open_area = area_limits(ctx, state, rows)
-        ok &= np.take_along_axis(open_area, ctx.area[c], axis=1)
+        # open_area[r, area[c[r, k]]] (np.take_along_axis without its checks)
+        ok &= open_area[np.arange(rows.size)[:, None], ctx.area[c]]
     if len(ctx.set_members):
         if open_area is None:
             open_area = area_limits(ctx, state, rows)

@@ -507,6 +507,15 @@ def _first_eligible(ok, n_first, *, beyond: bool = True) -> tuple[np.ndarray, np
     the same columns.
     """
     r_n, width = ok.shape
+    if r_n == 1:  # one row (a live session): its True columns directly
+        cols = np.flatnonzero(ok[0])
+        first = np.full((1, n_first), -1, dtype=np.int64)
+        first[0, : min(n_first, cols.size)] = cols[:n_first]
+        if not beyond:
+            return first, None
+        rest = np.zeros_like(ok)
+        rest[0, cols[n_first:]] = True
+        return first, rest
     if r_n < BIT_SCAN_ROWS or width > 64:
         rank = np.cumsum(ok, axis=1, dtype=np.int16)
         r_idx, c_idx = np.nonzero(ok & (rank <= n_first))
