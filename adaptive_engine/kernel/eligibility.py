@@ -121,19 +121,20 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
     return ok
 
 
-def eligible_count(ctx: TestContext, state: KernelState, rows: np.ndarray) -> np.ndarray:
+def eligible_count(ctx: TestContext, state: KernelState, rows: np.ndarray, *, open_area=None) -> np.ndarray:
     """How many operational items each of ``rows`` may get next, int (R,): the row sums of
     :func:`eligible` over every item of the bank.
 
     Without pretest items, enemy groups and item sets the mask is the unused items of the
     open areas, counted without building the candidate matrix (the same count).
+    ``open_area``: the rows' :func:`area_limits`, when the caller has them.
     """
     if ctx.n_groups or len(ctx.set_members) or not ctx.operational.all():
         every = np.broadcast_to(np.arange(ctx.n_items), (rows.size, ctx.n_items))
-        return eligible(ctx, state, rows, every).sum(axis=1)
+        return eligible(ctx, state, rows, every, open_area=open_area).sum(axis=1)
     free = ~state.used[rows]
     if ctx.balanced:
-        free &= area_limits(ctx, state, rows)[:, ctx.area]
+        free &= (area_limits(ctx, state, rows) if open_area is None else open_area)[:, ctx.area]
     return np.count_nonzero(free, axis=1).astype(np.int64)
 
 

@@ -131,14 +131,17 @@ def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_elig
 
     # 3. the criterion
     pending = np.flatnonzero(todo)
+    open_area = None
     if pending.size:
         sub = rows[pending]
-        got = _criterion_pick(ctx, state, sub)
+        open_area = area_limits(ctx, state, sub)
+        got = _criterion_pick(ctx, state, sub, open_area)
         item[pending] = got.item
         value[pending] = got.value
         withheld.extend(got.withheld)
     if count_eligible:
-        n_elig = eligible_count(ctx, state, rows)
+        # the open areas of the criterion's rows are those of every row when all took it
+        n_elig = eligible_count(ctx, state, rows, open_area=open_area if pending.size == r_n else None)
     return Picked(item=item, value=value, eligible=n_elig, withheld=withheld)
 
 
@@ -172,9 +175,9 @@ def _target_area(ctx, state, rows, open_area) -> np.ndarray:
     return np.where(np.isfinite(gap.max(axis=1)), target, -1)
 
 
-def _criterion_pick(ctx, state, rows) -> Choice:
+def _criterion_pick(ctx, state, rows, open_area) -> Choice:
+    """The criterion's pick for ``rows``; ``open_area``: their :func:`area_limits`."""
     design = ctx.design
-    open_area = area_limits(ctx, state, rows)
     fits = set_fits(ctx, state, rows, open_area)
     restrict = np.full(rows.size, -1, dtype=np.int64)
     if ctx.balanced and design.blueprint.method is BlueprintMethod.MOST_BEHIND_AREA:
