@@ -279,6 +279,8 @@ def _choose_ranked(ctx, state, rows, cand, values, ok, rule: RankedPickRule | No
     n_ok = ok.sum(axis=1)
     if rule is None:
         rule = pick_rule(ctx, state, rows)
+    if rows.size == 1 and not rule.lottery[0]:
+        return _choose_ranked_one(state, int(rows[0]), cand[0], masked[0], int(n_ok[0]), rule)
     every = np.arange(rows.size)
     draw = rule.draw & (rule.width > 1)  # a draw among one candidate takes the best
     if not draw.any() and not rule.lottery.any():
@@ -337,6 +339,36 @@ def _choose_ranked(ctx, state, rows, cand, values, ok, rule: RankedPickRule | No
     chosen_val = np.where(none_left, np.nan, chosen_val)
     kth = s_val[every, np.minimum(np.maximum(depth - 1, 0), s_val.shape[1] - 1)]
     return RankedChoice(item=chosen, value=chosen_val, kth=kth, depth=depth, withheld=withheld)
+
+
+def _choose_ranked_one(state, row: int, cand, masked, n_ok: int, rule: RankedPickRule) -> RankedChoice:
+    """:func:`_choose_ranked` for a batch of one row without the Sympson-Hetter lottery (a
+    live session): the same steps on the row's candidates (K,), in Python numbers where
+    numpy's would be arrays of one (the same arithmetic: an int times a double, truncated)."""
+    width_rule = int(rule.width[0])
+    if not (bool(rule.draw[0]) and width_rule > 1):
+        # the best item: no ranking needed (ties go to the first, as in a stable sort)
+        pos = int(np.argmax(masked))
+        best = float(masked[pos])
+        found = n_ok > 0
+        return RankedChoice(item=np.array([cand[pos] if found else -1], dtype=np.int64),
+                            value=np.array([best if found else np.nan]), kth=np.array([best]),
+                            depth=np.ones(1, dtype=np.int64), withheld=[])
+    order = np.argsort(-masked, kind="stable")
+    s_cand = cand[order]
+    s_val = masked[order]
+    width = min(width_rule, n_ok)
+    purpose = int(rule.purpose[0])
+    purpose = randomness.FIRST_ITEM if purpose == randomness.FIRST_ITEM else randomness.RANDOMESQUE
+    u = float(randomness.uniforms(state.keys[row : row + 1], state.n_given[row : row + 1], purpose)[0])
+    pos = min(int(u * width), max(width - 1, 0))
+    # with fewer than `width` eligible items listed, unlisted ones could belong in the draw
+    depth = width_rule if n_ok < width_rule else max(width, 1)
+    none_left = n_ok == 0
+    return RankedChoice(item=np.array([-1 if none_left else s_cand[pos]], dtype=np.int64),
+                        value=np.array([np.nan if none_left else s_val[pos]]),
+                        kth=np.array([s_val[min(max(depth - 1, 0), s_val.size - 1)]]),
+                        depth=np.array([depth], dtype=np.int64), withheld=[])
 
 
 def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice:
