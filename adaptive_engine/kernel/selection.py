@@ -118,9 +118,9 @@ def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_elig
             item[sel] = got[got >= 0]
             todo[sel] = False
 
-    # 2. item sets in progress
-    in_set = todo & (state.current_set[rows] >= 0)
-    for pos in np.flatnonzero(in_set):
+    # 2. item sets in progress (a bank without sets never has one)
+    in_set = np.flatnonzero(todo & (state.current_set[rows] >= 0)) if len(ctx.set_members) else ()
+    for pos in in_set:
         r = rows[pos]
         members = ctx.set_members[state.current_set[r]]
         left = members[~state.used[r, members]]

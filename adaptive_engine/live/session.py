@@ -553,10 +553,10 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
     """
     cache = PROCESS_CACHE if cache is None else cache
     check_text(session_id, "the session id", location="session_id")
-    where = f"session {shown(session_id)}"
     check_text(item_id, "the item id", location="item_id")
-    value = _response_value(response, f"{where} item {shown(item_id)}")
-    elapsed = _elapsed_value(elapsed, f"{where} item {shown(item_id)} elapsed")
+    where = f"session {shown(session_id)} item {shown(item_id)}"
+    value = _response_value(response, where)
+    elapsed = _elapsed_value(elapsed, f"{where} elapsed")
     row = store.session_row(session_id)
     # None when this engine lacks the session's rules: only a resent answer gets a reply then
     rules = rule_set(row["decision_rules_version"])
