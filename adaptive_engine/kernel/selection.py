@@ -21,6 +21,7 @@ same item.
 
 from __future__ import annotations
 
+import math
 from typing import NamedTuple
 
 import attrs
@@ -382,13 +383,15 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     changes no pick (it only saves exact evaluations).
     """
     # the tables per area only when a row is restricted to one area (constrained CAT)
-    by_area = bool(np.any(restrict >= 0))
+    by_area = bool((restrict >= 0).any())
     tables = ranked_tables(ctx.bank, by_area=by_area)
     items_tab, reach_tab, ceil_tab, grid = tables.items, tables.reach, tables.ceiling, tables.grid
     theta = state.theta[rows]
-    g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
-    inside = (g >= 0) & (g < grid.size)
-    g = np.minimum(np.maximum(g, 0), grid.size - 1)
+    one = _one_row_column(theta, grid) if rows.size == 1 else None
+    if one is None:
+        g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
+        inside = (g >= 0) & (g < grid.size)
+        g = np.minimum(np.maximum(g, 0), grid.size - 1)
     # reach_after[k, g, j]: the highest reach of the listed items from column j on
     reach_after = ctx.bank.cached(("ranked_reach_after", RANK_STEP, RANK_DEPTH, by_area),
                                   lambda: _reach_after(reach_tab))
@@ -396,7 +399,24 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     byte_tab, bit_tab = ctx.bank.cached(("ranked_used_bits", RANK_STEP, RANK_DEPTH, by_area),
                                         lambda: _bit_places(items_tab))
     width = items_tab.shape[-1]
-    if not by_area:  # no row restricted to an area: the table of all items, 1-D gathers
+    if one is not None:
+        # a batch of one row (a live session): its list and its entries of the tables by
+        # plain indexing (views; never written to), the same values as the gathers below
+        g_one, inside_one = one
+        table = int(restrict[0]) if by_area else -1
+        index_one = table * grid.size + g_one if by_area else g_one
+        row_list = items_tab[table, g_one][None, :]  # (1, D)
+        inside = np.array([inside_one])
+        table_ceiling = ceil_tab[table, g_one : g_one + 1]
+        after_flat = (reach_after if by_area else reach_after[-1]).reshape(-1)
+        items_flat = (items_tab if by_area else items_tab[-1]).reshape(-1)
+        list_at = np.array([index_one * width], dtype=np.int64)
+        at = np.array([index_one * (width + 1)], dtype=np.int64)
+        ok = ((state.used_bits[int(rows[0])].take(byte_tab[table, g_one]) & bit_tab[table, g_one]) == 0)[None, :]
+
+        def lists(sub):
+            return row_list[sub]
+    elif not by_area:  # no row restricted to an area: the table of all items, 1-D gathers
         byte = byte_tab[-1].take(g, axis=0)  # (R, D)
         bit = bit_tab[-1].take(g, axis=0)
         table_ceiling = ceil_tab[-1].take(g)
@@ -416,15 +436,16 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
 
         def lists(sub):
             return items_tab[which[sub], g[sub]]
-    # where each row's list starts in the flat tables of items (D a list) and of reach_after
-    # (D + 1 a list): single gathers later take only the entries they need
-    list_at, at = index * width, index * (width + 1)
-    # unused listed items, read off the packed mask (a byte per eight items: the rows'
-    # masks stay in cache, where the bool mask of a large batch does not)
-    byte += (rows * state.used_bits.shape[1])[:, None]
-    taken = np.take(state.used_bits.reshape(-1), byte)
-    taken &= bit
-    ok = taken == 0
+    if one is None:
+        # where each row's list starts in the flat tables of items (D a list) and of
+        # reach_after (D + 1 a list): single gathers later take only the entries they need
+        list_at, at = index * width, index * (width + 1)
+        # unused listed items, read off the packed mask (a byte per eight items: the rows'
+        # masks stay in cache, where the bool mask of a large batch does not)
+        byte += (rows * state.used_bits.shape[1])[:, None]
+        taken = np.take(state.used_bits.reshape(-1), byte)
+        taken &= bit
+        ok = taken == 0
     full = ctx.bank.cached(("ranked_tables_full", RANK_STEP, RANK_DEPTH, by_area),
                            lambda: bool(np.all(items_tab >= 0)))
     # the candidate lists themselves only where eligibility needs more than the mask
@@ -455,6 +476,18 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
                             value=np.concatenate([q_value[q_proven], more.value]), withheld=more.withheld)
     return _proven_from_list(ctx, state, rows, lists(slice(None)) if cand is None else cand, ok, theta, inside,
                              table_ceiling, at, after_flat, n_exact, rule=rule)
+
+
+def _one_row_column(theta, grid) -> tuple[int, bool] | None:
+    """The ranked tables' grid column of a batch of one row and whether its theta lies on
+    the grid, as :func:`_shortlist_pick` computes them for a batch (the same double
+    arithmetic; Python's round, like np.rint, rounds halves to even); None when theta is
+    far off the grid or not finite (the batch route then)."""
+    x = (float(theta[0]) - float(grid[0])) / RANK_STEP
+    if not math.isfinite(x) or abs(x) > 1e15:
+        return None
+    g = round(x)
+    return min(max(g, 0), grid.size - 1), 0 <= g < grid.size
 
 
 def _bit_places(items_tab) -> tuple[np.ndarray, np.ndarray]:
