@@ -517,6 +517,26 @@ def test_information_from_precomputed_columns_has_the_same_bits():
     assert np.array_equal(selection._exact_information(bank, idx, theta[:, 0]), want)
 
 
+@pytest.mark.parametrize("blueprint", [True, False])
+def test_a_live_design_batch_equals_one_at_a_time(blueprint):
+    # The live driver's common design (randomesque, areas by most-behind area, dichotomous
+    # items, no enemies, sets or pretest items) takes the batch-of-one routes of the short
+    # list and the ranked choice: each examinee gets what the same examinee gets in a batch.
+    bank = structured_bank(4, 150, pretest=0, enemies=False, sets=False)
+    areas = (AreaRule(name="alpha", min=3, max=6), AreaRule(name="beta", min=3, max=6),
+             AreaRule(name="gamma", min=2, max=6)) if blueprint else ()
+    design = Design(exposure=Exposure(method="randomesque", candidates=4), blueprint=Blueprint(areas=areas),
+                    opening=Opening(first_item_candidates=3), stopping=Stopping(min_items=8, max_items=14, se=0.4))
+    ctx = build_context(design, bank)
+    theta = np.random.default_rng(12).normal(size=10)
+    batch, _ = run_batch(ctx, theta, seed=6)
+    for i in range(theta.size):
+        single, _ = run_batch(ctx, theta[i : i + 1], seed=6, start_index=i)
+        assert np.array_equal(single.items[0], batch.items[i])
+        assert single.theta[0] == batch.theta[i] and single.se[0] == batch.se[i]
+        assert single.stop_reason[0] == batch.stop_reason[i]
+
+
 def test_a_large_batch_equals_one_at_a_time(monkeypatch):
     # A batch above BIT_SCAN_ROWS, with posterior blocks of a few rows: the paths of large
     # batches give each examinee what a batch of one gives.
