@@ -282,6 +282,25 @@ def test_stream_keys_are_reproducible_and_distinct():
     assert stats.kstest(u, "uniform").pvalue > 1e-3
 
 
+def test_small_batches_draw_the_same_uniforms_as_large_ones():
+    # a live session (a batch of one) draws in Python integers, a simulated batch in numpy:
+    # the same numbers either way
+    keys = randomness.stream_key(randomness.examinee_seeds(7, 300))
+    positions = np.arange(300) % 41
+    for purpose in (randomness.RANDOMESQUE, randomness.FIRST_ITEM, randomness.PRETEST):
+        whole = randomness.uniforms(keys, positions, purpose)
+        one_by_one = np.concatenate([randomness.uniforms(keys[i : i + 1], positions[i : i + 1], purpose)
+                                     for i in range(300)])
+        assert np.array_equal(whole, one_by_one)
+        # one position for the whole batch (an int), two rows at a time
+        at_five = randomness.uniforms(keys, 5, purpose)
+        pairs = np.concatenate([randomness.uniforms(keys[i : i + 2], 5, purpose) for i in range(0, 300, 2)])
+        assert np.array_equal(at_five, pairs)
+    # SplitMix64's finaliser from state 0 gives 0xE220A8397B1DCDAF, the first output of
+    # Vigna's reference splitmix64.c seeded with 0 (value from memory)
+    assert int(randomness.mix(np.uint64(0))) == 0xE220A8397B1DCDAF
+
+
 def test_shadow_tests_meet_the_blueprint_exactly():
     # van der Linden & Reese (1998): every shadow test meets all constraints, so a test that
     # runs to its full length meets the area minimums and maximums, whatever the answers.
@@ -496,6 +515,26 @@ def test_information_from_precomputed_columns_has_the_same_bits():
     got = models.dichotomous_information_columns(theta, *(np.take(c, idx) for c in cols))
     assert np.array_equal(got, want)
     assert np.array_equal(selection._exact_information(bank, idx, theta[:, 0]), want)
+
+
+@pytest.mark.parametrize("blueprint", [True, False])
+def test_a_live_design_batch_equals_one_at_a_time(blueprint):
+    # The live driver's common design (randomesque, areas by most-behind area, dichotomous
+    # items, no enemies, sets or pretest items) takes the batch-of-one routes of the short
+    # list and the ranked choice: each examinee gets what the same examinee gets in a batch.
+    bank = structured_bank(4, 150, pretest=0, enemies=False, sets=False)
+    areas = (AreaRule(name="alpha", min=3, max=6), AreaRule(name="beta", min=3, max=6),
+             AreaRule(name="gamma", min=2, max=6)) if blueprint else ()
+    design = Design(exposure=Exposure(method="randomesque", candidates=4), blueprint=Blueprint(areas=areas),
+                    opening=Opening(first_item_candidates=3), stopping=Stopping(min_items=8, max_items=14, se=0.4))
+    ctx = build_context(design, bank)
+    theta = np.random.default_rng(12).normal(size=10)
+    batch, _ = run_batch(ctx, theta, seed=6)
+    for i in range(theta.size):
+        single, _ = run_batch(ctx, theta[i : i + 1], seed=6, start_index=i)
+        assert np.array_equal(single.items[0], batch.items[i])
+        assert single.theta[0] == batch.theta[i] and single.se[0] == batch.se[i]
+        assert single.stop_reason[0] == batch.stop_reason[i]
 
 
 def test_a_large_batch_equals_one_at_a_time(monkeypatch):

@@ -180,7 +180,7 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
     # the rows still testing in order (the whole batch, often) are read and written as a slice
     at = _as_slice(rows)
     item = state.pending[at].copy()  # copies: a slice reads views
-    if np.any(item < 0):
+    if (item < 0).any():
         raise ValueError("an examinee without a pending item was given an answer")
     pos = state.n_given[at].copy()
     all_scored = bool(ctx.operational.all()) or bool(ctx.operational[item].all())

@@ -107,7 +107,8 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
     if ctx.balanced:  # without rules every area stays open
         if open_area is None:
             open_area = area_limits(ctx, state, rows)
-        ok &= np.take_along_axis(open_area, ctx.area[c], axis=1)
+        # open_area[r, area[c[r, k]]] (np.take_along_axis without its checks)
+        ok &= open_area[np.arange(rows.size)[:, None], ctx.area[c]]
     if len(ctx.set_members):
         if open_area is None:
             open_area = area_limits(ctx, state, rows)
@@ -118,6 +119,23 @@ def eligible(ctx: TestContext, state: KernelState, rows: np.ndarray, cand: np.nd
         set_ok = np.take_along_axis(fits, np.where(in_set, s, 0), axis=1) if fits.shape[1] else np.zeros_like(in_set)
         ok &= ~in_set | set_ok
     return ok
+
+
+def eligible_count(ctx: TestContext, state: KernelState, rows: np.ndarray, *, open_area=None) -> np.ndarray:
+    """How many operational items each of ``rows`` may get next, int (R,): the row sums of
+    :func:`eligible` over every item of the bank.
+
+    Without pretest items, enemy groups and item sets the mask is the unused items of the
+    open areas, counted without building the candidate matrix (the same count).
+    ``open_area``: the rows' :func:`area_limits`, when the caller has them.
+    """
+    if ctx.n_groups or len(ctx.set_members) or not ctx.operational.all():
+        every = np.broadcast_to(np.arange(ctx.n_items), (rows.size, ctx.n_items))
+        return eligible(ctx, state, rows, every, open_area=open_area).sum(axis=1)
+    free = ~state.used[rows]
+    if ctx.balanced:
+        free &= (area_limits(ctx, state, rows) if open_area is None else open_area)[:, ctx.area]
+    return np.count_nonzero(free, axis=1).astype(np.int64)
 
 
 def _every_item(ctx: TestContext, cand: np.ndarray) -> bool:

@@ -66,6 +66,21 @@ def examinee_seeds(seed: int, n: int, *, start: int = 0) -> np.ndarray:
     return (mix(base) & np.uint64(_MASK63)).astype(np.int64)
 
 
+_U64 = (1 << 64) - 1
+_GOLDEN_INT, _M1_INT, _M2_INT = int(_GOLDEN), int(_M1), int(_M2)
+#: Batches up to this size without items draw in Python integers (the same wrapping
+#: arithmetic, so the same numbers, without a dozen numpy calls on arrays of one).
+SMALL_BATCH = 4
+
+
+def _mix_int(z: int) -> int:
+    """:func:`mix` of one value in [0, 2**64) as a Python integer (arithmetic modulo 2**64)."""
+    z = (z + _GOLDEN_INT) & _U64
+    z = ((z ^ (z >> 30)) * _M1_INT) & _U64
+    z = ((z ^ (z >> 27)) * _M2_INT) & _U64
+    return z ^ (z >> 31)
+
+
 def uniforms(keys, position, purpose: int, item=None) -> np.ndarray:
     """Uniform numbers in [0, 1).
 
@@ -86,6 +101,11 @@ def uniforms(keys, position, purpose: int, item=None) -> np.ndarray:
     """
     keys = np.asarray(keys, dtype=np.uint64)
     pos = np.asarray(position).astype(np.uint64)
+    if item is None and keys.ndim == 1 and keys.size <= SMALL_BATCH:
+        pos = np.broadcast_to(pos, keys.shape)
+        scale = 1.0 / (1 << 53)
+        return np.array([(_mix_int(k ^ _mix_int((p * (1 << 20) + purpose) & _U64)) >> 11) * scale
+                         for k, p in zip(keys.tolist(), pos.tolist())], dtype=np.float64)
     with np.errstate(over="ignore"):
         z = mix(keys ^ mix(pos * np.uint64(1 << 20) + np.uint64(purpose)))
         if item is not None:

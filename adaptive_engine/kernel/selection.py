@@ -21,6 +21,7 @@ same item.
 
 from __future__ import annotations
 
+import math
 from typing import NamedTuple
 
 import attrs
@@ -30,7 +31,7 @@ from ..design.types import BlueprintMethod, ExposureMethod, SelectionCriterion
 from ..irt import models
 from ..irt.posterior import posterior_weights
 from . import random_streams as randomness
-from .eligibility import area_limits, eligible, only_used_rule, set_fits
+from .eligibility import area_limits, eligible, eligible_count, only_used_rule, set_fits
 from .prepared import NO_MAXIMUM, RANK_DEPTH, RANK_STEP, TestContext, ranked_tables
 from .state import KernelState
 
@@ -123,9 +124,9 @@ def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_elig
             item[sel] = got[got >= 0]
             todo[sel] = False
 
-    # 2. item sets in progress
-    in_set = todo & (state.current_set[rows] >= 0)
-    for pos in np.flatnonzero(in_set):
+    # 2. item sets in progress (a bank without sets never has one)
+    in_set = np.flatnonzero(todo & (state.current_set[rows] >= 0)) if len(ctx.set_members) else ()
+    for pos in in_set:
         r = rows[pos]
         members = ctx.set_members[state.current_set[r]]
         left = members[~state.used[r, members]]
@@ -136,15 +137,17 @@ def select(ctx: TestContext, state: KernelState, rows: np.ndarray, *, count_elig
 
     # 3. the criterion
     pending = np.flatnonzero(todo)
+    open_area = None
     if pending.size:
         sub = rows[pending]
-        got = _criterion_pick(ctx, state, sub, None if facts is None else facts[pending])
+        open_area = area_limits(ctx, state, sub)
+        got = _criterion_pick(ctx, state, sub, open_area, None if facts is None else facts[pending])
         item[pending] = got.item
         value[pending] = got.value
         withheld.extend(got.withheld)
     if count_eligible:
-        all_items = np.broadcast_to(np.arange(ctx.n_items), (r_n, ctx.n_items))
-        n_elig = eligible(ctx, state, rows, all_items).sum(axis=1)
+        # the open areas of the criterion's rows are those of every row when all took it
+        n_elig = eligible_count(ctx, state, rows, open_area=open_area if pending.size == r_n else None)
     return Picked(item=item, value=value, eligible=n_elig, withheld=withheld)
 
 
@@ -178,9 +181,9 @@ def _target_area(ctx, state, rows, open_area) -> np.ndarray:
     return np.where(np.isfinite(gap.max(axis=1)), target, -1)
 
 
-def _criterion_pick(ctx, state, rows, known_facts=None) -> Choice:
+def _criterion_pick(ctx, state, rows, open_area, known_facts=None) -> Choice:
+    """The criterion's pick for ``rows``; ``open_area``: their :func:`area_limits`."""
     design = ctx.design
-    open_area = area_limits(ctx, state, rows)
     fits = set_fits(ctx, state, rows, open_area)
     restrict = np.full(rows.size, -1, dtype=np.int64)
     if ctx.balanced and design.blueprint.method is BlueprintMethod.MOST_BEHIND_AREA:
@@ -280,30 +283,43 @@ def pick_rule(ctx, state, rows) -> RankedPickRule:
                           purpose=np.full(size, randomness.FIRST_ITEM), lottery=lottery)
 
 
-def _choose_ranked(ctx, state, rows, cand, values, ok) -> RankedChoice:
-    """Pick among candidates ranked by value, by each row's :class:`RankedPickRule`."""
+def _choose_ranked(ctx, state, rows, cand, values, ok, rule: RankedPickRule | None = None) -> RankedChoice:
+    """Pick among candidates ranked by value, by each row's :class:`RankedPickRule`
+    (``rule``: the rows' rule when the caller has it already)."""
     masked = np.where(ok, values, -np.inf)
     n_ok = ok.sum(axis=1)
-    rule = pick_rule(ctx, state, rows)
+    if rule is None:
+        rule = pick_rule(ctx, state, rows)
+    if rows.size == 1 and not rule.lottery[0]:
+        return _choose_ranked_one(state, int(rows[0]), cand[0], masked[0], int(n_ok[0]), rule)
+    every = np.arange(rows.size)
     draw = rule.draw & (rule.width > 1)  # a draw among one candidate takes the best
     if not draw.any() and not rule.lottery.any():
         # the best item: no ranking needed (ties go to the first, as in a stable sort)
         pos = np.argmax(masked, axis=1)
-        best = masked[np.arange(rows.size), pos]
-        chosen = np.where(n_ok > 0, cand[np.arange(rows.size), pos], -1)
+        best = masked[every, pos]
+        chosen = np.where(n_ok > 0, cand[every, pos], -1)
         return RankedChoice(item=chosen, value=np.where(n_ok > 0, best, np.nan), kth=best,
                             depth=np.ones(rows.size, dtype=np.int64), withheld=[])
     order = np.argsort(-masked, axis=1, kind="stable")
-    s_cand = np.take_along_axis(cand, order, axis=1)
-    s_val = np.take_along_axis(masked, order, axis=1)
+    # cand[every[:, None], order] is np.take_along_axis(cand, order, axis=1), without its checks
+    s_cand = cand[every[:, None], order]
+    s_val = masked[every[:, None], order]
     pos = np.zeros(rows.size, dtype=np.int64)
     depth = np.ones(rows.size, dtype=np.int64)
     withheld = []
     if rule.draw.any():
         width = np.minimum(rule.width, n_ok)
-        u = np.where(rule.purpose == randomness.FIRST_ITEM,
-                     randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.FIRST_ITEM),
-                     randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.RANDOMESQUE))
+        first_item = rule.purpose == randomness.FIRST_ITEM
+        keys, given = state.keys[rows], state.n_given[rows]
+        # each row's uniform from its own stream (only the streams some row draws from)
+        if first_item.all():
+            u = randomness.uniforms(keys, given, randomness.FIRST_ITEM)
+        elif not first_item.any():
+            u = randomness.uniforms(keys, given, randomness.RANDOMESQUE)
+        else:
+            u = np.where(first_item, randomness.uniforms(keys, given, randomness.FIRST_ITEM),
+                         randomness.uniforms(keys, given, randomness.RANDOMESQUE))
         drawn = np.minimum((u * width).astype(np.int64), np.maximum(width - 1, 0))
         # with fewer than `width` eligible items listed, unlisted ones could belong in the draw
         reach = np.where(n_ok < rule.width, rule.width, np.maximum(width, 1))
@@ -327,13 +343,43 @@ def _choose_ranked(ctx, state, rows, cand, values, ok) -> RankedChoice:
             for j in range(lottery_pos[r_pos]):
                 if np.isfinite(s_val[r_pos, j]):
                     withheld.append((int(rows[r_pos]), int(s_cand[r_pos, j])))
-    chosen = np.take_along_axis(s_cand, pos[:, None], axis=1)[:, 0]
-    chosen_val = np.take_along_axis(s_val, pos[:, None], axis=1)[:, 0]
+    chosen = s_cand[every, pos]
+    chosen_val = s_val[every, pos]
     none_left = n_ok == 0
     chosen = np.where(none_left, -1, chosen)
     chosen_val = np.where(none_left, np.nan, chosen_val)
-    kth = np.take_along_axis(s_val, np.clip(depth - 1, 0, s_val.shape[1] - 1)[:, None], axis=1)[:, 0]
+    kth = s_val[every, np.minimum(np.maximum(depth - 1, 0), s_val.shape[1] - 1)]
     return RankedChoice(item=chosen, value=chosen_val, kth=kth, depth=depth, withheld=withheld)
+
+
+def _choose_ranked_one(state, row: int, cand, masked, n_ok: int, rule: RankedPickRule) -> RankedChoice:
+    """:func:`_choose_ranked` for a batch of one row without the Sympson-Hetter lottery (a
+    live session): the same steps on the row's candidates (K,), in Python numbers where
+    numpy's would be arrays of one (the same arithmetic: an int times a double, truncated)."""
+    width_rule = int(rule.width[0])
+    if not (bool(rule.draw[0]) and width_rule > 1):
+        # the best item: no ranking needed (ties go to the first, as in a stable sort)
+        pos = int(np.argmax(masked))
+        best = float(masked[pos])
+        found = n_ok > 0
+        return RankedChoice(item=np.array([cand[pos] if found else -1], dtype=np.int64),
+                            value=np.array([best if found else np.nan]), kth=np.array([best]),
+                            depth=np.ones(1, dtype=np.int64), withheld=[])
+    order = np.argsort(-masked, kind="stable")
+    s_cand = cand[order]
+    s_val = masked[order]
+    width = min(width_rule, n_ok)
+    purpose = int(rule.purpose[0])
+    purpose = randomness.FIRST_ITEM if purpose == randomness.FIRST_ITEM else randomness.RANDOMESQUE
+    u = float(randomness.uniforms(state.keys[row : row + 1], state.n_given[row : row + 1], purpose)[0])
+    pos = min(int(u * width), max(width - 1, 0))
+    # with fewer than `width` eligible items listed, unlisted ones could belong in the draw
+    depth = width_rule if n_ok < width_rule else max(width, 1)
+    none_left = n_ok == 0
+    return RankedChoice(item=np.array([-1 if none_left else s_cand[pos]], dtype=np.int64),
+                        value=np.array([np.nan if none_left else s_val[pos]]),
+                        kth=np.array([s_val[min(max(depth - 1, 0), s_val.size - 1)]]),
+                        depth=np.array([depth], dtype=np.int64), withheld=[])
 
 
 def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice:
@@ -347,13 +393,15 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     changes no pick (it only saves exact evaluations).
     """
     # the tables per area only when a row is restricted to one area (constrained CAT)
-    by_area = bool(np.any(restrict >= 0))
+    by_area = bool((restrict >= 0).any())
     tables = ranked_tables(ctx.bank, by_area=by_area)
     items_tab, reach_tab, ceil_tab, grid = tables.items, tables.reach, tables.ceiling, tables.grid
     theta = state.theta[rows]
-    g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
-    inside = (g >= 0) & (g < grid.size)
-    g = np.clip(g, 0, grid.size - 1)
+    one = _one_row_column(theta, grid) if rows.size == 1 else None
+    if one is None:
+        g = np.rint((theta - grid[0]) / RANK_STEP).astype(np.int64)
+        inside = (g >= 0) & (g < grid.size)
+        g = np.minimum(np.maximum(g, 0), grid.size - 1)
     # reach_after[k, g, j]: the highest reach of the listed items from column j on
     reach_after = ctx.bank.cached(("ranked_reach_after", RANK_STEP, RANK_DEPTH, by_area),
                                   lambda: _reach_after(reach_tab))
@@ -361,7 +409,24 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     byte_tab, bit_tab = ctx.bank.cached(("ranked_used_bits", RANK_STEP, RANK_DEPTH, by_area),
                                         lambda: _bit_places(items_tab))
     width = items_tab.shape[-1]
-    if not by_area:  # no row restricted to an area: the table of all items, 1-D gathers
+    if one is not None:
+        # a batch of one row (a live session): its list and its entries of the tables by
+        # plain indexing (views; never written to), the same values as the gathers below
+        g_one, inside_one = one
+        table = int(restrict[0]) if by_area else -1
+        index_one = table * grid.size + g_one if by_area else g_one
+        row_list = items_tab[table, g_one][None, :]  # (1, D)
+        inside = np.array([inside_one])
+        table_ceiling = ceil_tab[table, g_one : g_one + 1]
+        after_flat = (reach_after if by_area else reach_after[-1]).reshape(-1)
+        items_flat = (items_tab if by_area else items_tab[-1]).reshape(-1)
+        list_at = np.array([index_one * width], dtype=np.int64)
+        at = np.array([index_one * (width + 1)], dtype=np.int64)
+        ok = ((state.used_bits[int(rows[0])].take(byte_tab[table, g_one]) & bit_tab[table, g_one]) == 0)[None, :]
+
+        def lists(sub):
+            return row_list[sub]
+    elif not by_area:  # no row restricted to an area: the table of all items, 1-D gathers
         byte = byte_tab[-1].take(g, axis=0)  # (R, D)
         bit = bit_tab[-1].take(g, axis=0)
         table_ceiling = ceil_tab[-1].take(g)
@@ -381,15 +446,16 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
 
         def lists(sub):
             return items_tab[which[sub], g[sub]]
-    # where each row's list starts in the flat tables of items (D a list) and of reach_after
-    # (D + 1 a list): single gathers later take only the entries they need
-    list_at, at = index * width, index * (width + 1)
-    # unused listed items, read off the packed mask (a byte per eight items: the rows'
-    # masks stay in cache, where the bool mask of a large batch does not)
-    byte += (rows * state.used_bits.shape[1])[:, None]
-    taken = np.take(state.used_bits.reshape(-1), byte)
-    taken &= bit
-    ok = taken == 0
+    if one is None:
+        # where each row's list starts in the flat tables of items (D a list) and of
+        # reach_after (D + 1 a list): single gathers later take only the entries they need
+        list_at, at = index * width, index * (width + 1)
+        # unused listed items, read off the packed mask (a byte per eight items: the rows'
+        # masks stay in cache, where the bool mask of a large batch does not)
+        byte += (rows * state.used_bits.shape[1])[:, None]
+        taken = np.take(state.used_bits.reshape(-1), byte)
+        taken &= bit
+        ok = taken == 0
     full = ctx.bank.cached(("ranked_tables_full", RANK_STEP, RANK_DEPTH, by_area),
                            lambda: bool(np.all(items_tab >= 0)))
     # the candidate lists themselves only where eligibility needs more than the mask
@@ -419,7 +485,19 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
         return ProvenChoice(rows=positions, item=np.concatenate([q_item[q_proven], more.item]),
                             value=np.concatenate([q_value[q_proven], more.value]), withheld=more.withheld)
     return _proven_from_list(ctx, state, rows, lists(slice(None)) if cand is None else cand, ok, theta, inside,
-                             table_ceiling, at, after_flat, n_exact)
+                             table_ceiling, at, after_flat, n_exact, rule=rule)
+
+
+def _one_row_column(theta, grid) -> tuple[int, bool] | None:
+    """The ranked tables' grid column of a batch of one row and whether its theta lies on
+    the grid, as :func:`_shortlist_pick` computes them for a batch (the same double
+    arithmetic; Python's round, like np.rint, rounds halves to even); None when theta is
+    far off the grid or not finite (the batch route then)."""
+    x = (float(theta[0]) - float(grid[0])) / RANK_STEP
+    if not math.isfinite(x) or abs(x) > 1e15:
+        return None
+    g = round(x)
+    return min(max(g, 0), grid.size - 1), 0 <= g < grid.size
 
 
 def _bit_places(items_tab) -> tuple[np.ndarray, np.ndarray]:
@@ -461,13 +539,14 @@ def _quick_best(bank, items_flat, list_at, ok, theta, inside, table_ceiling, at,
 
 
 def _proven_from_list(ctx, state, rows, cand, ok, theta, inside, table_ceiling, at, after_flat,
-                      n_exact) -> ProvenChoice:
+                      n_exact, rule: RankedPickRule | None = None) -> ProvenChoice:
     """The short-list choice of ``rows`` among their first ``n_exact`` eligible candidates
-    (by the exposure method), for the rows where it is proven (positions in ``rows``)."""
+    (by the exposure method), for the rows where it is proven (positions in ``rows``);
+    ``rule``: the rows' :class:`RankedPickRule` when the caller has it."""
     # the first n_exact eligible columns of each row, in grid order (-1: none)
     first, _ = _first_eligible(ok, n_exact, beyond=False)
     ex_ok = first >= 0
-    ex_cand = np.where(ex_ok, np.take_along_axis(cand, np.maximum(first, 0), axis=1), -1)
+    ex_cand = np.where(ex_ok, cand[np.arange(rows.size)[:, None], np.maximum(first, 0)], -1)
     exact = _exact_information(ctx.bank, np.maximum(ex_cand, 0), theta)
     # ceiling of everything not evaluated: unlisted items, and the listed items after the
     # last one evaluated (eligible or not: a bound a little above the eligible ones' own,
@@ -475,7 +554,7 @@ def _proven_from_list(ctx, state, rows, cand, ok, theta, inside, table_ceiling, 
     last = first[:, -1]
     rest = np.where(last >= 0, after_flat.take(at + last + 1), -np.inf)
     ceiling = np.maximum(table_ceiling, rest)
-    ranked = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok)
+    ranked = _choose_ranked(ctx, state, rows, ex_cand, exact, ex_ok, rule)
     proven = inside & (ranked.depth <= n_exact) & (ranked.kth >= ceiling) & (ranked.item >= 0)
     keep = np.flatnonzero(proven)
     withheld = ranked.withheld
@@ -506,6 +585,15 @@ def _first_eligible(ok, n_first, *, beyond: bool = True) -> tuple[np.ndarray, np
     the same columns.
     """
     r_n, width = ok.shape
+    if r_n == 1:  # one row (a live session): its True columns directly
+        cols = np.flatnonzero(ok[0])
+        first = np.full((1, n_first), -1, dtype=np.int64)
+        first[0, : min(n_first, cols.size)] = cols[:n_first]
+        if not beyond:
+            return first, None
+        rest = np.zeros_like(ok)
+        rest[0, cols[n_first:]] = True
+        return first, rest
     if r_n < BIT_SCAN_ROWS or width > 64:
         rank = np.cumsum(ok, axis=1, dtype=np.int16)
         r_idx, c_idx = np.nonzero(ok & (rank <= n_first))

@@ -175,9 +175,10 @@ class KernelState:
         return {
             "key": int(self.keys[row]),
             "prior": [float(self.prior_mean[row]), float(self.prior_sd[row])],
-            "items": [int(x) for x in self.items[row, :n]],
-            "responses": [int(x) for x in self.responses[row, :n]],
-            "scored": [bool(x) for x in self.scored[row, :n]],
+            # tolist: Python ints and bools, as int() and bool() of each element give them
+            "items": self.items[row, :n].tolist(),
+            "responses": self.responses[row, :n].tolist(),
+            "scored": self.scored[row, :n].tolist(),
             "theta": [float(self.theta[row])],
             "se": float(self.se[row]),
             "pending": int(self.pending[row]),

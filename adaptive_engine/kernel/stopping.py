@@ -346,8 +346,10 @@ def stop_reasons(stopping: Stopping, *, n_scored, se, sprt_llr=None, ci_decision
         fired["no_eligible_item"] = _needs(no_eligible, "no-eligible flag", "no_eligible",
                                            b).astype(bool)
 
-    return np.select(
-        [fired[k] for k in STOP_PRECEDENCE],
-        [np.array(k, dtype=object) for k in STOP_PRECEDENCE],
-        default=np.array(CONTINUE, dtype=object),
-    ).astype(object)
+    # np.select over the precedence (the first rule that fired), written from the last rule
+    # to the first so that a higher one overwrites; rules that cannot fire are skipped
+    reasons = np.full(b, CONTINUE, dtype=object)
+    for k in reversed(STOP_PRECEDENCE):
+        if fired[k] is not never:
+            reasons[np.asarray(fired[k], dtype=bool)] = k
+    return reasons

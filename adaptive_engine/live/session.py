@@ -324,7 +324,20 @@ def _reply(session_id: str, ctx: TestContext, state: KernelState, result: dict |
 
 
 def _rng_state(state: KernelState) -> str:
-    return to_json({"key": int(state.keys[0]), "position": int(state.n_given[0])})
+    # to_json({"key": ..., "position": ...}) of two integers, written directly
+    return f'{{"key":{int(state.keys[0])},"position":{int(state.n_given[0])}}}'
+
+
+def _json_text(value) -> str:
+    """:func:`~adaptive_engine.live.store.to_json` of a value this module built: dicts with
+    text keys, lists and built-in scalars (a reply, a state snapshot, a final report made
+    plain).  ``json.dumps`` writes such a value as ``to_json`` does without the ``plain``
+    pass over it; a value holding anything else (a NaN, which ``to_json`` writes as null; a
+    numpy value) goes through ``to_json`` itself."""
+    try:
+        return json.dumps(value, separators=(",", ":"), allow_nan=False)
+    except (TypeError, ValueError):
+        return to_json(value)
 
 
 def _next_events(rules: RuleSet, ctx: TestContext, state: KernelState, picked, seq: int,
@@ -353,8 +366,8 @@ def _session_changes(ctx: TestContext, state: KernelState, seq: int, now: str, r
     snapshot["pending_item_id"] = None if state.pending[0] < 0 else str(ctx.bank.item_ids[state.pending[0]])
     return {
         "status": "finished" if state.done[0] else "active",
-        "updated_at": now, "state": to_json(snapshot),
-        "result": None if result is None else to_json(result),
+        "updated_at": now, "state": _json_text(snapshot),
+        "result": None if result is None else _json_text(result),
         "last_seq": seq, "n_given": int(state.n_given[0]),
         "pending_item": snapshot["pending_item_id"],
     }
@@ -540,10 +553,10 @@ def submit_answer(store: SessionStore, session_id: str, item_id: str, response, 
     """
     cache = PROCESS_CACHE if cache is None else cache
     check_text(session_id, "the session id", location="session_id")
-    where = f"session {shown(session_id)}"
     check_text(item_id, "the item id", location="item_id")
-    value = _response_value(response, f"{where} item {shown(item_id)}")
-    elapsed = _elapsed_value(elapsed, f"{where} item {shown(item_id)} elapsed")
+    where = f"session {shown(session_id)} item {shown(item_id)}"
+    value = _response_value(response, where)
+    elapsed = _elapsed_value(elapsed, f"{where} elapsed")
     row = store.session_row(session_id)
     # None when this engine lacks the session's rules: only a resent answer gets a reply then
     rules = rule_set(row["decision_rules_version"])
@@ -631,7 +644,7 @@ def _answer_step(rules, ctx, state, session_id, item_id, value, elapsed, seq) ->
         "kind": "answer", "seq": seq + 1, "item_id": item_id, "response": value,
         "scored": int(state.scored[0, given]), "theta": _event_number(state.theta[0]),
         "se": _event_number(state.se[0]),
-        "rng_state": _rng_state(state), "elapsed": elapsed, "created_at": now, "reply": to_json(reply),
+        "rng_state": _rng_state(state), "elapsed": elapsed, "created_at": now, "reply": _json_text(reply),
     }
     return _Answered(events=[dict(e, session_id=session_id) for e in [answer_event, *events]],
                      changes=_session_changes(ctx, state, seq + 2, now, result), reply=reply)

@@ -467,8 +467,13 @@ class SessionStore:
         until this one ends (an answer reads its session this way).
         """
         check_text(session_id, "the session id", location="session_id")
-        row = self._execute(f"SELECT {self._session_columns()} FROM sessions WHERE session_id = ?"
-                            f"{self._lock_clause() if lock else ''}", (session_id,)).fetchone()
+        # the statement's text once per schema version and lock (it is read on every answer)
+        key = (self.schema_version, lock)
+        sql = self.__dict__.setdefault("_session_row_sql", {}).get(key)
+        if sql is None:
+            sql = self._session_row_sql[key] = (f"SELECT {self._session_columns()} FROM sessions WHERE "
+                                                f"session_id = ?{self._lock_clause() if lock else ''}")
+        row = self._execute(sql, (session_id,)).fetchone()
         if row is None:
             raise NotFoundError(f"unknown session '{shown(session_id)}'", location=f"session {shown(session_id)}",
                                 field="session_id")
