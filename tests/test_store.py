@@ -202,6 +202,43 @@ def test_a_session_advances_only_from_the_row_it_was_read_in(store):
     assert store.session_row("cas")["last_seq"] == 3
 
 
+def test_the_busy_timeout_is_zero_only_while_a_write_holds_the_lock(sqlite_store):
+    """A writer tries for the lock itself (no busy wait inside the hold); every statement
+    outside a write transaction waits for other connections again, also after a failed one."""
+    store = sqlite_store
+    seen = []
+    store.before_commit = lambda: seen.append(store.conn.execute("PRAGMA busy_timeout").fetchone()[0])
+    with store.writing():
+        pass
+    assert seen == [0]
+    assert store.conn.execute("PRAGMA busy_timeout").fetchone()[0] >= 1000
+    with pytest.raises(RuntimeError), store.writing():
+        raise RuntimeError("boom")
+    assert store.conn.execute("PRAGMA busy_timeout").fetchone()[0] >= 1000
+
+
+def test_an_answer_written_before_the_lock_sets_the_status_only_when_it_changes(store):
+    """An active session staying active keeps its status out of the update (its index is
+    not rewritten); a finishing one is updated to finished."""
+    from adaptive_engine.live.session import ProcessCache, start_session
+
+    reply = start_session(store, SH_DESIGN, BANK, seed=6, session_id="st", cache=ProcessCache())
+    staying = store.answer_writes("st", 1, reply["item_id"], {"status": "active", "last_seq": 3})
+    assert "status" not in staying.update_sql.split("WHERE")[0]
+    with store.writing():
+        assert store.write_answer(staying)
+    assert (store.session_row("st")["status"], store.session_row("st")["last_seq"]) == ("active", 3)
+    bank_id = store.session_row("st")["bank_id"]
+    ending = store.answer_writes("st", 3, reply["item_id"], {"status": "finished", "last_seq": 5},
+                                 [{"session_id": "st", "seq": 4, "kind": "answer"}], (bank_id, "x"))
+    assert "status" in ending.update_sql.split("WHERE")[0]
+    with store.writing():
+        assert store.write_answer(ending)
+    assert (store.session_row("st")["status"], store.session_row("st")["last_seq"]) == ("finished", 5)
+    assert store.query("SELECT seq FROM events WHERE session_id = 'st' AND kind = 'answer'") == [(4,)]
+    assert store.query("SELECT count FROM exposure_counts WHERE item_id = 'x'") == [(1,)]
+
+
 def test_unknown_things_are_session_errors(store, tmp_path):
     with pytest.raises(NotFoundError, match="unknown session"):
         store.session_row("nope")

@@ -604,16 +604,16 @@ def _answer_before_lock(store, rules, ctx, row, item_id, response, elapsed, cach
         return None  # refused under the lock, with its message
     state = cached.copy()  # the cached state stays as it is until the answer is committed
     answered = _answer_step(rules, ctx, state, session_id, item_id, value, elapsed, seq)
+    # every statement's text and parameters are made before the lock, which is held for the
+    # statements alone
+    writes = store.answer_writes(session_id, seq, item_id, answered.changes, answered.events,
+                                 (row["bank_id"], answered.reply["item_id"]) if state.pending[0] >= 0 else None)
     try:
         with store.writing():
             # the session row changes only if it is still as read (same last event, active,
-            # the same item pending): the check is the update, so the lock is held for the
-            # writes alone
-            if not store.advance_session(session_id, seq, item_id, answered.changes):
+            # the same item pending): the check is the update
+            if not store.write_answer(writes):
                 raise _MovedOn
-            store.append_events(answered.events)
-            if state.pending[0] >= 0:
-                store.count_exposure(row["bank_id"], answered.reply["item_id"])
     except _MovedOn:
         return None  # the session moved on since it was read: nothing written
     cache.keep(store, session_id, seq + 2, state)

@@ -90,7 +90,7 @@ import tomllib
 import weakref
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Callable, Iterator, NamedTuple
 
 import attrs
 
@@ -106,6 +106,7 @@ BUSY_TIMEOUT_SECONDS = 60.0
 #: and the most it grows to (see ``SQLiteSessionStore._begin_immediate``).
 WRITE_RETRY_FIRST = 0.0002
 WRITE_RETRY_MOST = 0.002
+_BUSY_TIMEOUT_PRAGMA = f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}"
 STATUSES = ("active", "finished")
 RELEASE_STATUSES = ("active", "retired")
 #: The schema this engine writes.  1: the tables as first released, no version recorded;
@@ -296,6 +297,20 @@ def design_from_content(toml_text: str, params_json: str | None, *, design_id: s
         doc["exposure_parameters"] = stored
     # a design stored before a key was renamed reads as it is: nothing to warn the user of
     return design_from_dict(doc, warn_renamed=False)
+
+
+def _event_rows(events) -> list[list]:
+    """The parameters of ``_INSERT_EVENT`` for each event (a dict; missing columns are NULL)."""
+    return [[e.get(c) for c in _EVENT_COLUMNS] for e in events]
+
+
+class AnswerWrites(NamedTuple):
+    """An answer's writes, made before the write lock (:meth:`SessionStore.answer_writes`)."""
+
+    update_sql: str
+    update_params: list
+    event_rows: list
+    exposure: tuple[str, str] | None
 
 
 class SessionStore:
@@ -510,16 +525,47 @@ class SessionStore:
         transaction ends: an answer decided before the lock writes with it instead of
         reading the row under the lock first (a shorter hold of the write lock).
         """
-        cols = list(changes)
-        cursor = self._execute(
-            f"UPDATE sessions SET {', '.join(f'{c} = ?' for c in cols)} "
-            f"WHERE session_id = ? AND last_seq = ? AND status = 'active' AND pending_item = ?",
-            [changes[c] for c in cols] + [session_id, last_seq, pending_item])
+        return self.write_answer(self.answer_writes(session_id, last_seq, pending_item, changes))
+
+    def answer_writes(self, session_id: str, last_seq: int, pending_item: str, changes: dict,
+                      events: list[dict] = (), exposure: tuple[str, str] | None = None) -> "AnswerWrites":
+        """The statements and parameters of an answer decided before the lock, made before it.
+
+        What :meth:`write_answer` then runs inside :meth:`writing`: the conditional update of
+        :meth:`advance_session` with ``changes``, the ``events`` and, when ``exposure`` is
+        ``(bank_id, item_id)``, one more use of that item.  Making them here keeps the
+        building of texts and lists out of the write lock's hold.
+        """
+        # the update applies only to an active session, so setting the status to "active"
+        # changes nothing in the row; left out, it also leaves the status index alone (one
+        # page fewer written by the commit)
+        cols = tuple(c for c in changes if c != "status" or changes[c] != "active")
+        sql = self.__dict__.setdefault("_advance_sql", {}).get(cols)
+        if sql is None:
+            sql = self._advance_sql[cols] = (
+                f"UPDATE sessions SET {', '.join(f'{c} = ?' for c in cols)} "
+                f"WHERE session_id = ? AND last_seq = ? AND status = 'active' AND pending_item = ?")
+        return AnswerWrites(sql, [changes[c] for c in cols] + [session_id, last_seq, pending_item],
+                            _event_rows(events), exposure)
+
+    def write_answer(self, writes: "AnswerWrites") -> bool:
+        """Run an answer's writes made by :meth:`answer_writes` (inside :meth:`writing`).
+
+        False, writing nothing, when the session is not as the answer found it any more
+        (see :meth:`advance_session`).
+        """
+        cursor = self._execute(writes.update_sql, writes.update_params)
         self._flush()
-        return cursor.rowcount == 1
+        if cursor.rowcount != 1:
+            return False
+        if writes.event_rows:
+            self._executemany(_INSERT_EVENT, writes.event_rows)
+        if writes.exposure is not None:
+            self._execute(_COUNT_EXPOSURE, writes.exposure)
+        return True
 
     def append_events(self, events: list[dict]) -> None:
-        self._executemany(_INSERT_EVENT, [[e.get(c) for c in _EVENT_COLUMNS] for e in events])
+        self._executemany(_INSERT_EVENT, _event_rows(events))
 
     def count_exposure(self, bank_id: str, item_id: str) -> None:
         self._execute(_COUNT_EXPOSURE, (bank_id, item_id))
@@ -785,7 +831,7 @@ class SQLiteSessionStore(SessionStore):
             else:
                 conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_SECONDS, isolation_level=None,
                                        check_same_thread=False)
-            conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
+            conn.execute(_BUSY_TIMEOUT_PRAGMA)
             self.conn = conn
             # as sqlite_utils.Database sets it (made only when tables are created: ``db``)
             conn.execute("PRAGMA recursive_triggers=on;")
@@ -965,6 +1011,11 @@ class SQLiteSessionStore(SessionStore):
                     self.conn.execute("ROLLBACK")
                 self._rolled_back()
                 raise
+            finally:
+                # the busy timeout comes back once the lock is let go, not while it is held
+                # (no statement of a transaction holding the write lock waits for another
+                # connection in WAL mode)
+                self._wait_when_busy()
         self._committed()
         if self._checkpointer is None and not self.key.startswith(":memory:"):
             checkpointer = _Checkpointer.attach(self.key, self.path)
@@ -983,6 +1034,8 @@ class SQLiteSessionStore(SessionStore):
         # Trying beats queueing here: with the processors oversubscribed (8 busy processes on
         # 2 cores), handing the lock in turn to waiters that block on a lock file left it
         # to processes still waiting for a processor, and long holds doubled (measured).
+        # The busy timeout is 0 from here until the transaction ends (``writing`` sets it back
+        # after COMMIT or ROLLBACK, outside the hold of the lock).
         deadline = time.monotonic() + BUSY_TIMEOUT_SECONDS
         bound = WRITE_RETRY_FIRST
         self.conn.execute("PRAGMA busy_timeout = 0")
@@ -996,8 +1049,13 @@ class SQLiteSessionStore(SessionStore):
                         raise
                     time.sleep(_RETRY_RANDOM.uniform(0.5 * bound, bound))
                     bound = min(bound * 1.5, WRITE_RETRY_MOST)
-        finally:
-            self.conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
+        except BaseException:
+            self._wait_when_busy()
+            raise
+
+    def _wait_when_busy(self) -> None:
+        """Give the connection back its busy timeout (every statement outside a write waits)."""
+        self.conn.execute(_BUSY_TIMEOUT_PRAGMA)
 
     def close(self) -> None:
         self.conn.close()
