@@ -320,6 +320,11 @@ def _reply(session_id: str, ctx: TestContext, state: KernelState, result: dict |
     if state.done[0]:
         reply["stop_reason"] = str(state.stop_reason[0])
         reply["result"] = result
+    theta, se = reply["theta"], reply["se"]
+    if type(theta) is float and type(se) is float and math.isfinite(theta) and math.isfinite(se):
+        # every other value is plain already (text, int, bool, None, the item view's text
+        # and ints, a result made plain): plain() would return an equal reply
+        return reply
     return plain(reply)
 
 
