@@ -333,6 +333,11 @@ def _rng_state(state: KernelState) -> str:
     return f'{{"key":{int(state.keys[0])},"position":{int(state.n_given[0])}}}'
 
 
+#: ``json.dumps(value, separators=(",", ":"), allow_nan=False)`` with one encoder made once
+#: (``json.dumps`` builds a new encoder on every call with arguments of its own).
+_COMPACT_JSON = json.JSONEncoder(separators=(",", ":"), allow_nan=False).encode
+
+
 def _json_text(value) -> str:
     """:func:`~adaptive_engine.live.store.to_json` of a value this module built: dicts with
     text keys, lists and built-in scalars (a reply, a state snapshot, a final report made
@@ -340,7 +345,7 @@ def _json_text(value) -> str:
     pass over it; a value holding anything else (a NaN, which ``to_json`` writes as null; a
     numpy value) goes through ``to_json`` itself."""
     try:
-        return json.dumps(value, separators=(",", ":"), allow_nan=False)
+        return _COMPACT_JSON(value)
     except (TypeError, ValueError):
         return to_json(value)
 
