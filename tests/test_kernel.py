@@ -553,3 +553,36 @@ def test_a_large_batch_equals_one_at_a_time(monkeypatch):
         assert np.array_equal(single.items[0], batch.items[i])
         assert single.theta[0] == batch.theta[i] and single.se[0] == batch.se[i]
         assert np.array_equal(single.log_post[0], batch.log_post[i])
+
+
+def test_one_row_record_writes_what_the_batch_record_writes():
+    # The bookkeeping of one answer (items, responses, scored flags, counts, used masks,
+    # area counts, enemy groups, item sets) is the same whether a row answers alone (the
+    # live path) or inside a batch: every field of the state compared after each answer.
+    bank = structured_bank(9, 100)  # pretest items, enemy groups and item sets
+    ctx = build_context(Design(blueprint=Blueprint(enemies=True, item_sets=True),
+                               stopping=Stopping(min_items=30, max_items=30)), bank)
+    keys = randomness.stream_key(randomness.examinee_seeds(3, 3))
+    batch, _ = kernel.start(ctx, keys)
+    alone = batch.copy()
+    rng = np.random.default_rng(4)
+    # items of sets, enemies and pretest items handed out in turn, not only the picked ones
+    plan = [i for i in range(100) if i % 25 in (20, 21, 22) or i % 10 in (3, 4) or i >= 94]
+    rows = np.arange(3)
+    seen_set = False
+    for step in range(12):
+        items = np.array([plan[(5 * step + 7 * r) % len(plan)] for r in rows])
+        for s in (batch, alone):
+            s.pending[rows] = items
+        responses = rng.integers(0, 2, size=3)
+        got_batch = kernel.record_answers(ctx, batch, rows, responses)
+        got_alone = np.concatenate([kernel.record_answers(ctx, alone, rows[r : r + 1], responses[r : r + 1])
+                                    for r in rows])
+        assert np.array_equal(got_batch, got_alone)
+        for f in attrs.fields(type(batch)):
+            a, b = getattr(batch, f.name), getattr(alone, f.name)
+            same = np.array_equal(a, b, equal_nan=a.dtype.kind == "f")
+            assert a.dtype == b.dtype and same, f.name
+        seen_set |= bool((batch.current_set >= 0).any())
+    # the test reached each kind of bookkeeping
+    assert batch.n_pretest.sum() > 0 and seen_set and batch.blocked_groups.any()

@@ -177,6 +177,8 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
 
     The posterior takes the scored answers in :func:`_update_estimate`.
     """
+    if rows.size == 1:
+        return _record_one(ctx, state, int(rows[0]), int(responses[0]))
     # the rows still testing in order (the whole batch, often) are read and written as a slice
     at = _as_slice(rows)
     item = state.pending[at].copy()  # copies: a slice reads views
@@ -215,6 +217,39 @@ def _record(ctx, state, rows, responses) -> np.ndarray:
             members = ctx.set_members[s[k]]
             state.current_set[r] = s[k] if (~state.used[r, members]).any() else -1
     return item if all_scored else np.where(scored, item, -1)
+
+
+def _record_one(ctx, state, r: int, response: int) -> np.ndarray:
+    """:func:`_record` of one row ``r`` (a live session): the same writes by plain indexing
+    of its entries, without the index arrays of a batch."""
+    item = int(state.pending[r])
+    if item < 0:
+        raise ValueError("an examinee without a pending item was given an answer")
+    pos = int(state.n_given[r])
+    scored = bool(ctx.operational[item])
+    state.items[r, pos] = item
+    state.responses[r, pos] = response
+    state.scored[r, pos] = scored
+    state.n_given[r] += 1
+    if scored:
+        state.n_scored[r] += 1
+    else:
+        state.n_pretest[r] += 1
+    state.used[r, item] = True
+    state.used_bits[r, item >> 3] |= np.uint8(1 << (item & 7))
+    state.pending[r] = -1
+    if scored:
+        state.area_counts[r, ctx.area[item]] += 1
+    if ctx.n_groups:
+        state.blocked_groups[r, ctx.item_groups[item]] = True
+        state.blocked_groups[:, ctx.n_groups] = False  # the "no group" column never blocks
+    # item sets: entering a set makes it current; its last item closes it
+    if len(ctx.set_members):
+        s = int(ctx.item_set[item])
+        if s >= 0:
+            members = ctx.set_members[s]
+            state.current_set[r] = s if (~state.used[r, members]).any() else -1
+    return np.array([item if scored else -1], dtype=np.int64)
 
 
 def _as_slice(rows: np.ndarray):

@@ -12,6 +12,9 @@ import numpy as np
 
 from .prepared import TestContext
 
+#: The attribute names of each state class, in order (read on every copy of a state).
+_FIELD_NAMES: dict = {}
+
 
 @attrs.define(eq=False)
 class KernelState:
@@ -117,7 +120,10 @@ class KernelState:
         """An independent copy (every array copied), of the same class (the multidimensional
         state adds fields of its own)."""
         cls = type(self)
-        return cls(**{f.name: getattr(self, f.name).copy() for f in attrs.fields(cls)})
+        names = _FIELD_NAMES.get(cls)
+        if names is None:
+            names = _FIELD_NAMES[cls] = tuple(f.name for f in attrs.fields(cls))
+        return cls(**{name: getattr(self, name).copy() for name in names})
 
     def with_capacity(self, capacity: int) -> "KernelState":
         """A state of ``capacity`` rows (at least this one's) that begins with this state's

@@ -320,12 +320,22 @@ def _reply(session_id: str, ctx: TestContext, state: KernelState, result: dict |
     if state.done[0]:
         reply["stop_reason"] = str(state.stop_reason[0])
         reply["result"] = result
+    theta, se = reply["theta"], reply["se"]
+    if type(theta) is float and type(se) is float and math.isfinite(theta) and math.isfinite(se):
+        # every other value is plain already (text, int, bool, None, the item view's text
+        # and ints, a result made plain): plain() would return an equal reply
+        return reply
     return plain(reply)
 
 
 def _rng_state(state: KernelState) -> str:
     # to_json({"key": ..., "position": ...}) of two integers, written directly
     return f'{{"key":{int(state.keys[0])},"position":{int(state.n_given[0])}}}'
+
+
+#: ``json.dumps(value, separators=(",", ":"), allow_nan=False)`` with one encoder made once
+#: (``json.dumps`` builds a new encoder on every call with arguments of its own).
+_COMPACT_JSON = json.JSONEncoder(separators=(",", ":"), allow_nan=False).encode
 
 
 def _json_text(value) -> str:
@@ -335,7 +345,7 @@ def _json_text(value) -> str:
     pass over it; a value holding anything else (a NaN, which ``to_json`` writes as null; a
     numpy value) goes through ``to_json`` itself."""
     try:
-        return json.dumps(value, separators=(",", ":"), allow_nan=False)
+        return _COMPACT_JSON(value)
     except (TypeError, ValueError):
         return to_json(value)
 
