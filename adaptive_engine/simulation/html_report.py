@@ -706,6 +706,20 @@ def _content_section(summary) -> list[str]:
                                "range": "Fewest to most", "within": "Tests within the bounds"})]
 
 
+def study_title(result, title: str = "") -> str:
+    """The page title of a study: ``title``, or the design's and the bank's names."""
+    return title or f"Simulation of {result.design.source or 'a design'} on {result.bank.name or 'a bank'}"
+
+
+def study_sections(summary: dict) -> list:
+    """The contents line's first sections of a study page, classification when the summary has one."""
+    nav = [("design", "Design"), ("glance", "At a glance"), ("length", "Length"), ("precision", "Precision"),
+           ("exposure", "Exposure")]
+    if summary.get("classification"):
+        nav.append(("classification", "Classification"))
+    return nav
+
+
 def simulation_report_html(result, summary: dict, *, title: str = "", first_counts=None, follow_counts=None,
                            warnings=()) -> str:
     """The report page of a simulation study (a :class:`SimulationResult` and its summary).
@@ -721,11 +735,8 @@ def simulation_report_html(result, summary: dict, *, title: str = "", first_coun
         the design.
     """
     design = result.design
-    title = title or f"Simulation of {design.source or 'a design'} on {result.bank.name or 'a bank'}"
-    nav = [("design", "Design"), ("glance", "At a glance"), ("length", "Length"), ("precision", "Precision"),
-           ("exposure", "Exposure")]
-    if summary.get("classification"):
-        nav.append(("classification", "Classification"))
+    title = study_title(result, title)
+    nav = study_sections(summary)
     if summary.get("content"):
         nav.append(("content", "Content"))
     nav += [("bank", "Bank"), ("glossary", "Glossary")]

@@ -29,6 +29,8 @@ from .html_report import (
     pct,
     precision_by_ability,
     stop_reasons_and_length_figure,
+    study_sections,
+    study_title,
     table_html,
 )
 
@@ -176,12 +178,8 @@ def multidimensional_report_html(result, summary: dict, *, title: str = "", warn
         the design.
     """
     design = result.design
-    title = title or f"Simulation of {design.source or 'a design'} on {result.bank.name or 'a bank'}"
-    nav = [("design", "Design"), ("glance", "At a glance"), ("length", "Length"), ("precision", "Precision"),
-           ("exposure", "Exposure")]
-    if summary.get("classification"):
-        nav.append(("classification", "Classification"))
-    nav.append(("glossary", "Glossary"))
+    title = study_title(result, title)
+    nav = study_sections(summary) + [("glossary", "Glossary")]
     k = len(result.dimension_names)
     parts = [page_start(title),
              contents_line(f"Simulation study of the design <code>{esc(design.source or '(built in code)')}</code>, "
