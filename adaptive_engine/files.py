@@ -188,6 +188,15 @@ def atomic_write(path: str | Path, fill: Callable[[Path], None], *, location: st
     return path
 
 
+def write_texts(folder: str | Path, texts: dict[str, str]) -> list[Path]:
+    """Write several files (name -> text) into ``folder`` together: every one complete
+    before any is renamed into place (:class:`StagedFiles`); returns their paths."""
+    with StagedFiles(folder) as staged:
+        for name, text in texts.items():
+            staged.write_text(name, text)
+        return staged.commit()
+
+
 def write_text(path: str | Path, text: str, *, location: str | None = None) -> Path:
     """Write ``text`` (UTF-8, line ends as given) to ``path`` atomically, with the normal mode."""
     path = check_target(path, location=location)

@@ -274,23 +274,19 @@ def write_study(result: MultidimensionalSimulationResult, summary: dict, out_dir
     ``title`` and ``warnings`` (:func:`~adaptive_engine.design.bank_fit.design_warnings`)
     go to the report page.
     """
-    from ..files import StagedFiles, prepare_folder
+    from ..files import prepare_folder, write_texts
     from .multidimensional_report import multidimensional_report_html
 
     folder, _ = prepare_folder(out_dir)
-    staging = StagedFiles(folder)
-    try:
-        staging.write_text("summary.json", json.dumps(summary, indent=2, allow_nan=False) + "\n")
-        staging.write_text("examinees.csv", examinees_csv(result))
-        staging.write_text("items.csv", items_csv(result))
-        staging.write_text("report.html", multidimensional_report_html(result, summary, title=title,
-                                                                       warnings=warnings))
-        written = sorted(p.name for p in staging.commit())
-        from .study import FILES as ONE_DIMENSIONAL_FILES
+    written = sorted(p.name for p in write_texts(folder, {
+        "summary.json": json.dumps(summary, indent=2, allow_nan=False) + "\n",
+        "examinees.csv": examinees_csv(result),
+        "items.csv": items_csv(result),
+        "report.html": multidimensional_report_html(result, summary, title=title, warnings=warnings),
+    }))
+    from .study import FILES as ONE_DIMENSIONAL_FILES
 
-        for name in {*FILES, *ONE_DIMENSIONAL_FILES} - set(written):
-            # a file an earlier run left in the folder would not match this run's
-            (folder / name).unlink(missing_ok=True)
-        return written
-    finally:
-        staging.discard()
+    for name in {*FILES, *ONE_DIMENSIONAL_FILES} - set(written):
+        # a file an earlier run left in the folder would not match this run's
+        (folder / name).unlink(missing_ok=True)
+    return written

@@ -25,7 +25,7 @@ from ..bank.item_bank import ItemBank
 from ..design.bank_fit import runs_multidimensional
 from ..design.types import Design
 from ..errors import DesignError
-from ..files import StagedFiles, prepare_folder
+from ..files import prepare_folder, write_texts
 from .multidimensional_engine import (
     DEFAULT_CHUNK,
     multidimensional_metrics,
@@ -155,8 +155,5 @@ def run_multidimensional_tuning_study(design: Design, bank: ItemBank, variations
                  "the composite against each cut score.",
             title=f"Tuning {design.source or 'a design'}: " + ", ".join(keys)),
     }
-    with StagedFiles(out) as staged:
-        for name, text in texts.items():
-            staged.write_text(name, text)
-        staged.commit()
+    write_texts(out, texts)
     return rows

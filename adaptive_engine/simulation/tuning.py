@@ -23,7 +23,7 @@ from ..design.bank_fit import require_design_fits_bank, runs_multidimensional
 from ..design.toml_file import design_as_dict, design_from_dict
 from ..design.types import RENAMED_KEYS, Design
 from ..errors import DeprecatedDesignKey, DesignError, Problem
-from ..files import StagedFiles, prepare_folder
+from ..files import prepare_folder, write_texts
 from . import metrics
 from .engine import Execution, simulate
 from .population import Population
@@ -253,8 +253,5 @@ def run_tuning_study(design: Design, bank: ItemBank, variations: list[Variation]
         "tuning.html": tuning_report_html(rows, tradeoff_figures(rows, keys), varied=keys,
                                           title=f"Tuning {design.source or 'a design'}: " + ", ".join(keys)),
     }
-    with StagedFiles(out) as staged:
-        for name, text in texts.items():
-            staged.write_text(name, text)
-        staged.commit()
+    write_texts(out, texts)
     return rows
