@@ -235,8 +235,7 @@ def _record_one(ctx, state, r: int, response: int) -> np.ndarray:
         state.n_scored[r] += 1
     else:
         state.n_pretest[r] += 1
-    state.used[r, item] = True
-    state.used_bits[r, item >> 3] |= np.uint8(1 << (item & 7))
+    state.mark_used(r, item)
     state.pending[r] = -1
     if scored:
         state.area_counts[r, ctx.area[item]] += 1

@@ -147,16 +147,21 @@ class KernelState:
                 value[to] = value[source]
 
     def mark_used(self, rows, items, *, distinct_rows: bool = False) -> None:
-        """Mark ``items`` (R,) used by ``rows`` (R,): in ``used`` and in ``used_bits``.
+        """Mark ``items`` (R,) used by ``rows`` (R,): in ``used`` and in ``used_bits`` (or one
+        item of one row, both given as ints).
 
         A row may come more than once (several items withheld for one examinee), unless
         the caller says ``distinct_rows`` (then one flat update sets the bits).
         """
+        used, packed = self.used, self.used_bits
+        if isinstance(rows, int) and isinstance(items, int):  # one examinee, one item (a live answer)
+            used[rows, items] = True
+            packed[rows, items >> 3] |= np.uint8(1 << (items & 7))
+            return
         rows = np.asarray(rows, dtype=np.int64)
         items = np.asarray(items, dtype=np.int64)
         if rows.size == 0:
             return
-        used, packed = self.used, self.used_bits
         if used.flags.c_contiguous:
             used.reshape(-1)[rows * used.shape[1] + items] = True
         else:
