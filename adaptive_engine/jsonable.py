@@ -10,17 +10,13 @@ import numpy as np
 
 def plain(obj):
     """``obj`` with numpy values turned into Python ones and non-finite floats into None."""
-    # the built-in types first, by exact type (most of a reply or a state snapshot): the
+    # the built-in scalars first, by exact type (most of a reply or a state snapshot): the
     # same values as the general checks below give them, without the chain of isinstance
     kind = type(obj)
     if kind is str or kind is int or kind is bool or obj is None:
         return obj
     if kind is float:
         return obj if math.isfinite(obj) else None
-    if kind is dict:
-        return {(k if type(k) is str else str(k)): plain(v) for k, v in obj.items()}
-    if kind is list or kind is tuple:
-        return [plain(v) for v in obj]
     if isinstance(obj, dict):
         return {str(k): plain(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
