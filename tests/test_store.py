@@ -186,19 +186,19 @@ def test_a_session_advances_only_from_the_row_it_was_read_in(store):
     moved = {"last_seq": 3, "updated_at": "2026-01-01T00:00:00+00:00", "pending_item": "MV-SRC-001"}
     for last_seq, pending in ((2, reply["item_id"]), (1, "MV-SRC-001"), (0, reply["item_id"])):
         with store.writing():
-            assert not store.advance_session("cas", last_seq, pending, moved)
+            assert not store.write_answer(store.answer_writes("cas", last_seq, pending, moved))
     with store.writing():
-        assert not store.advance_session("someone-else", 1, reply["item_id"], moved)
+        assert not store.write_answer(store.answer_writes("someone-else", 1, reply["item_id"], moved))
     assert store.dump() == before
     with store.writing():
-        assert store.advance_session("cas", 1, reply["item_id"], moved)
+        assert store.write_answer(store.answer_writes("cas", 1, reply["item_id"], moved))
     row = store.session_row("cas")
     assert (row["last_seq"], row["pending_item"]) == (3, "MV-SRC-001")
     with store.writing():  # the row it was read in is gone
-        assert not store.advance_session("cas", 1, reply["item_id"], {"last_seq": 5})
+        assert not store.write_answer(store.answer_writes("cas", 1, reply["item_id"], {"last_seq": 5}))
         store.update_session("cas", {"status": "finished"})
     with store.writing():  # a finished session takes no more answers
-        assert not store.advance_session("cas", 3, "MV-SRC-001", {"last_seq": 5})
+        assert not store.write_answer(store.answer_writes("cas", 3, "MV-SRC-001", {"last_seq": 5}))
     assert store.session_row("cas")["last_seq"] == 3
 
 

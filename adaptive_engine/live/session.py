@@ -599,7 +599,7 @@ def _answer_before_lock(store, rules, ctx, row, item_id, response, elapsed, cach
     When it has (another request answered the session meanwhile), nothing is written and
     None is returned: the caller answers under the lock, where every check runs on the
     locked row.  The transaction writes what an answer under the lock writes; the check
-    is the conditional update of the row (:meth:`SessionStore.advance_session`).
+    is the conditional update of the row (:meth:`SessionStore.answer_writes`).
     """
     value, value_text = response
     session_id = row["session_id"]

@@ -516,23 +516,14 @@ class SessionStore:
         self._execute(f"UPDATE sessions SET {', '.join(f'{c} = ?' for c in cols)} WHERE session_id = ?",
                       [changes[c] for c in cols] + [session_id])
 
-    def advance_session(self, session_id: str, last_seq: int, pending_item: str, changes: dict) -> bool:
-        """Apply ``changes`` to an active session whose latest event is ``last_seq`` and whose
-        pending item is ``pending_item`` (inside :meth:`writing`); False, changing nothing,
-        when the session is not so any more (another request moved it on).
-
-        The check and the change are one statement, which holds the row until the
-        transaction ends: an answer decided before the lock writes with it instead of
-        reading the row under the lock first (a shorter hold of the write lock).
-        """
-        return self.write_answer(self.answer_writes(session_id, last_seq, pending_item, changes))
-
     def answer_writes(self, session_id: str, last_seq: int, pending_item: str, changes: dict,
                       events: list[dict] = (), exposure: tuple[str, str] | None = None) -> "AnswerWrites":
         """The statements and parameters of an answer decided before the lock, made before it.
 
-        What :meth:`write_answer` then runs inside :meth:`writing`: the conditional update of
-        :meth:`advance_session` with ``changes``, the ``events`` and, when ``exposure`` is
+        What :meth:`write_answer` then runs inside :meth:`writing`: ``changes`` to the session
+        row if the session is still active with ``last_seq`` its latest event and
+        ``pending_item`` pending (one conditional update: the check and the change in one
+        statement, no read of the row under the lock), the ``events`` and, when ``exposure`` is
         ``(bank_id, item_id)``, one more use of that item.  Making them here keeps the
         building of texts and lists out of the write lock's hold.
         """
@@ -552,7 +543,7 @@ class SessionStore:
         """Run an answer's writes made by :meth:`answer_writes` (inside :meth:`writing`).
 
         False, writing nothing, when the session is not as the answer found it any more
-        (see :meth:`advance_session`).
+        (another request moved it on).
         """
         cursor = self._execute(writes.update_sql, writes.update_params)
         self._flush()
