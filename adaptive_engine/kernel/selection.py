@@ -38,7 +38,8 @@ from .state import KernelState
 #: Exactly evaluated candidates per examinee on the short-list path.
 SHORTLIST_EXACT = 8
 #: Candidates evaluated first for rows that take the best item outright (no draw, no
-#: lottery): two settle about 19 rows in 20; the others go on to SHORTLIST_EXACT.
+#: lottery): two settle about 19 rows in 20; the others go on to SHORTLIST_EXACT
+#: (:func:`_quick_best` compares the two directly).
 QUICK_EXACT = 2
 #: Rows evaluated together on the general path (bounds memory at rows x items).
 ROW_CHUNK = 1024
@@ -523,14 +524,10 @@ def _quick_best(bank, items_flat, list_at, ok, theta, inside, table_ceiling, at,
     ex_cand = items_flat.take(list_at[:, None] + np.maximum(first, 0))
     exact = _exact_information(bank, ex_cand, theta)
     exact[~found] = -np.inf
-    if QUICK_EXACT == 2:  # argmax of two columns: the second only when strictly better
-        second = exact[:, 1] > exact[:, 0]
-        value = np.where(second, exact[:, 1], exact[:, 0])
-        item = np.where(second, ex_cand[:, 1], ex_cand[:, 0])
-    else:
-        pos = np.argmax(exact, axis=1)
-        value = np.take_along_axis(exact, pos[:, None], axis=1)[:, 0]
-        item = np.take_along_axis(ex_cand, pos[:, None], axis=1)[:, 0]
+    # argmax of the two columns: the second only when strictly better
+    second = exact[:, 1] > exact[:, 0]
+    value = np.where(second, exact[:, 1], exact[:, 0])
+    item = np.where(second, ex_cand[:, 1], ex_cand[:, 0])
     last = first[:, -1]
     # the listed items after the last one evaluated (none when fewer were eligible)
     rest = np.where(last >= 0, after_flat.take(at + last + 1), -np.inf)
