@@ -20,15 +20,27 @@ of the run seed and the examinee's index).
 
 from __future__ import annotations
 
+from pathlib import Path
+
+import attrs
 import numpy as np
 import pytest
 from click.testing import CliRunner
+from scipy import optimize
 
 from adaptive_engine.bank.files import bank_to_csv_text
 from adaptive_engine.bank.item_bank import ItemBank
 from adaptive_engine.cli import main
+from adaptive_engine.design.bank_fit import check_design_against_bank
 from adaptive_engine.design.toml_file import parse_design
-from adaptive_engine.simulation.multidimensional_engine import simulate_multidimensional
+from adaptive_engine.irt import multidimensional as md
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
+from adaptive_engine.kernel.multidimensional_cycle import mle_estimate
+from adaptive_engine.kernel.multidimensional_state import MultidimensionalState, posterior_moments
+from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.simulation.multidimensional_engine import run_chunk, simulate_multidimensional
+from multidimensional_reference import item_probability, map_reference
 
 
 def m2pl_bank(slopes, intercepts) -> ItemBank:
@@ -111,3 +123,178 @@ def test_tuning_on_workers_gives_the_rows_of_one_process():
     one = tune_multidimensional(design(), bank, vary, true_theta=true, seed=2)
     two = tune_multidimensional(design(), bank, vary, true_theta=true, seed=2, workers=2)
     assert one == two
+
+
+# ----------------------------------------------------------------------------------------
+# MLE of the ability vector
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _demo_bank():
+    from adaptive_engine.bank import load_bank
+
+    return load_bank(ROOT / "item_banks" / "meridian_valley_operator_2d.json")
+
+
+def _state_with(ctx, patterns):
+    """A batch state whose rows gave the scored answers ``patterns`` [(item rows, answers)]."""
+    state = MultidimensionalState.empty_vector(ctx, randomness.stream_key(np.arange(1, len(patterns) + 1)))
+    for r, (items, answers) in enumerate(patterns):
+        n = len(items)
+        state.items[r, :n], state.responses[r, :n], state.scored[r, :n] = items, answers, True
+        state.n_given[r] = state.n_scored[r] = n
+    return state
+
+
+def _negative_log_likelihood(bank, items, answers):
+    """-log L(theta) written out from the compensatory model's formulas (Reckase 2009, ch. 4),
+    by tests/multidimensional_reference.py (not the project's irt code)."""
+    p = bank.multidimensional_params
+    rows = [(p.slopes[i], p.intercepts[i][np.isfinite(p.intercepts[i])], float(p.c[i])) for i in items]
+
+    def f(theta):
+        return -sum(np.log(item_probability(s, d, c, theta, x, p.scaling)) for (s, d, c), x in zip(rows, answers))
+
+    return f
+
+
+def test_mle_of_a_mixed_pattern_is_scipy_minimize_of_the_negative_log_likelihood():
+    """scipy.optimize.minimize (L-BFGS-B in the grid's box, then Nelder-Mead) of the negative
+    log-likelihood of M2PL, M3PL and MGRM items, K = 2, within 1e-4."""
+    bank = _demo_bank()
+    d = design(scoring='method = "mle"')
+    ctx = build_context(attrs.evolve(d, stopping=attrs.evolve(d.stopping, max_items=40)), bank)
+    models = np.asarray(bank.model)
+    rng = np.random.default_rng(11)
+    patterns = []
+    for true in ([0.3, -0.4], [1.2, 0.8], [-0.7, 0.2]):
+        items = np.concatenate([rng.choice(np.flatnonzero(models == m), size, replace=False)
+                                for m, size in (("M2PL", 8), ("M3PL", 14), ("MGRM", 6))])
+        prob = md.probabilities(bank.multidimensional_params.take(items), np.broadcast_to(true, (items.size, 2)))
+        answers = (np.cumsum(prob, axis=1) < rng.random(items.size)[:, None]).sum(axis=1)
+        patterns.append((items, answers))
+    state = _state_with(ctx, patterns)
+    rows = np.arange(len(patterns))
+    theta, cov, status = mle_estimate(ctx, state, rows, np.zeros((rows.size, 2)))
+    for r, (items, answers) in enumerate(patterns):
+        assert status[r] == "converged", status[r]
+        f = _negative_log_likelihood(bank, items, answers)
+        first = optimize.minimize(f, np.zeros(2), method="L-BFGS-B", bounds=[(-5, 5)] * 2,
+                                  options={"ftol": 1e-15, "gtol": 1e-11})
+        ref = optimize.minimize(f, first.x, method="Nelder-Mead", options={"xatol": 1e-10, "fatol": 1e-14}).x
+        np.testing.assert_allclose(theta[r], ref, atol=1e-4)
+        # the covariance is the inverse test information at the MLE (the information
+        # matrix J a a' of each item, against numerical differentiation elsewhere)
+        info = sum(md.information_matrix(bank.multidimensional_params.take(np.array([i])), theta[r][None])[0]
+                   for i in items)
+        np.testing.assert_allclose(cov[r], np.linalg.inv(info), rtol=1e-8)
+    # each row is its own: the batch gives what one row at a time gives, bit for bit
+    for r in rows:
+        one, one_cov, _ = mle_estimate(ctx, state, np.array([r]), np.zeros((1, 2)))
+        np.testing.assert_array_equal(one[0], theta[r])
+        np.testing.assert_array_equal(one_cov[0], cov[r])
+
+
+def simple_structure_bank():
+    slopes = np.array([[1.2, 0.0], [0.9, 0.0], [1.5, 0.0], [0.0, 1.1], [0.0, 1.4], [0.0, 0.8]])
+    return m2pl_bank(slopes, [0.2, -0.5, 0.4, 0.0, 0.3, -0.2])
+
+
+def test_where_no_mle_exists_the_status_says_why():
+    bank = simple_structure_bank()
+    ctx = build_context(design(scoring='method = "mle"'), bank)
+    state = _state_with(ctx, [
+        ([0, 1, 3], [1, 1, 1]),  # every answer right
+        ([0, 1, 3], [0, 0, 0]),  # every answer wrong
+        ([0, 1, 2], [1, 0, 1]),  # mixed, but no item of the second dimension: a flat direction
+        ([0, 1, 3, 4], [1, 0, 1, 1]),  # mixed on the first dimension, all right on the second
+        ([0, 1, 3, 4], [1, 0, 0, 0]),  # ... all wrong on the second
+        ([0, 1, 3, 4], [1, 0, 1, 0]),  # mixed on both: the MLE exists
+    ])
+    theta, cov, status = mle_estimate(ctx, state, np.arange(6), np.zeros((6, 2)))
+    assert list(status) == ["all_highest", "all_lowest", "no_information", "at_upper_bound", "at_lower_bound",
+                            "converged"]
+    assert np.all(np.isnan(theta[:5])) and np.all(np.isfinite(theta[5])) and np.all(np.isfinite(cov[5]))
+    # simple structure, mixed on both: each dimension's MLE is its own items' one-dimensional
+    # MLE, the root of sum_i a_i (x_i - P_i) = 0 (scipy.optimize.brentq)
+    for dim, items, x in ((0, [0, 1], [1, 0]), (1, [3, 4], [1, 0])):
+        a, d = bank.slopes[items, dim], bank.intercepts[items, 0]
+        root = optimize.brentq(lambda t: np.sum(a * (np.array(x) - 1 / (1 + np.exp(-(a * t + d))))), -5, 5,
+                               xtol=1e-14)
+        assert theta[5, dim] == pytest.approx(root, abs=1e-8)
+
+
+def _run_one(ctx, answer_of, seed=4):
+    """One examinee through the kernel, answering ``answer_of(item row)``; the state."""
+    state, _ = kernel.start(ctx, randomness.stream_key(np.array([seed])))
+    while not state.done[0]:
+        item = int(state.pending[0])
+        kernel.answer(ctx, state, np.array([0]), np.array([answer_of(item)]))
+    return state
+
+
+@pytest.mark.parametrize("how", ["eap", "map", "fixed_step"])
+def test_while_no_mle_exists_the_extreme_pattern_method_stands_in(how):
+    bank = simple_structure_bank()
+    d = design(scoring=f'method = "mle"\nextreme_pattern_method = "{how}"', stopping="")
+    d = attrs.evolve(d, stopping=attrs.evolve(d.stopping, min_items=1, max_items=1),
+                     exposure=attrs.evolve(d.exposure, method="none"))
+    ctx = build_context(d, bank)
+    state = _run_one(ctx, lambda item: 1)  # one answer, right: all highest
+    tab = ctx.multidimensional
+    item = int(state.items[0, 0])
+    if how == "eap":
+        mean, cov = posterior_moments(state.log_post[:1], tab.points)
+        np.testing.assert_array_equal(state.theta[0], mean[0])
+        np.testing.assert_array_equal(state.covariance[0], cov[0])
+    elif how == "map":
+        # the posterior mode, scipy.optimize.minimize of the negative log posterior
+        # (tests/multidimensional_reference.py writes it out)
+        p = bank.multidimensional_params
+        ref = map_reference([(p.slopes[item], p.intercepts[item], 0.0)], [1], tab.prior_mean, tab.prior_covariance)
+        np.testing.assert_allclose(state.theta[0], ref, atol=1e-6)
+    else:
+        # the opening theta (0) moved up by fixed_step on the dimension the item measures
+        expected = np.where(bank.slopes[item] > 0, d.scoring.fixed_step, 0.0)
+        np.testing.assert_array_equal(state.theta[0], expected)
+    report = kernel.finish(ctx, state, np.array([0]))[0]
+    assert report["estimate_status"] == "all_highest"
+    if how == "fixed_step":  # the final estimate keeps the interim one the test ended on
+        assert report["theta"] == [float(x) for x in state.theta[0]]
+
+
+def test_mle_designs_are_accepted_and_wle_is_refused_at_its_key():
+    bank = random_bank()
+    assert check_design_against_bank(design(scoring='method = "mle"'), bank) == []
+    found = {p.location: p.message for p in check_design_against_bank(design(scoring='method = "wle"'), bank)}
+    assert "wle is not available" in found["[scoring] method"] and "use eap, map or mle" in found["[scoring] method"]
+    d = design()
+    d = attrs.evolve(d, reporting=attrs.evolve(d.reporting, final_method="wle"))
+    found = {p.location: p.message for p in check_design_against_bank(d, bank)}
+    assert "use eap, map or mle" in found["[reporting] final_method"]
+
+
+def test_an_mle_design_runs_batch_as_one_at_a_time_and_replays_as_a_live_session():
+    from adaptive_engine.live.session import ProcessCache, session_result, start_session, submit_answer
+    from adaptive_engine.live.store import open_store
+
+    bank = random_bank()
+    d = design(scoring='method = "mle"')
+    ctx = build_context(d, bank)
+    true = np.random.default_rng(6).normal(0, 1, (5, 2))
+    whole = run_chunk(ctx, seed=9, start=0, true_theta=true)
+    for i in range(5):
+        one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
+        np.testing.assert_array_equal(one["items"][0], whole["items"][i])
+        np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
+    with open_store(":memory:") as store:
+        cache = ProcessCache()
+        for i in range(2):
+            reply = start_session(store, d, bank, seed=int(whole["seeds"][i]), cache=cache)
+            for pos in range(int((whole["items"][i] >= 0).sum())):
+                expected = bank.item_ids[whole["items"][i, pos]]
+                assert reply["item_id"] == expected
+                reply = submit_answer(store, reply["session_id"], expected, int(whole["responses"][i, pos]),
+                                      cache=cache)
+            assert session_result(store, reply["session_id"])["theta"] == [float(x) for x in whole["theta"][i]]

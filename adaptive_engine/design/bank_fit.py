@@ -342,11 +342,13 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     sc, sel, ex, st, rp, op = (design.scoring, design.selection, design.exposure, design.stopping,
                                design.reporting, design.opening)
     many = f"with an ability of {k} dimensions ({names})"
-    if sc.method not in (ScoringMethod.EAP, ScoringMethod.MAP):
-        out.append(Problem("[scoring] method", f"{sc.method.value} is not available {many}; use eap or map"))
-    if design.final_method not in (ScoringMethod.EAP, ScoringMethod.MAP):
+    # no published weighted likelihood for an ability vector is followed here: WLE stays one-dimensional
+    vector_methods = (ScoringMethod.EAP, ScoringMethod.MAP, ScoringMethod.MLE)
+    if sc.method not in vector_methods:
+        out.append(Problem("[scoring] method", f"{sc.method.value} is not available {many}; use eap, map or mle"))
+    if design.final_method not in vector_methods:
         out.append(Problem("[reporting] final_method",
-                           f"{design.final_method.value} is not available {many}; use eap or map"))
+                           f"{design.final_method.value} is not available {many}; use eap, map or mle"))
     points = multidimensional_grid_points(design, k)
     if points ** k > MAX_MULTIDIMENSIONAL_GRID:
         out.append(Problem("[scoring] grid_points_per_dimension" if sc.grid_points_per_dimension is not None
@@ -455,7 +457,11 @@ def describe_design(design: Design) -> list[str]:
         fallback = (f"previous estimate +- {sc.fixed_step:g}"
                     if sc.extreme_pattern_method is ExtremePatternMethod.FIXED_STEP
                     else f"{sc.extreme_pattern_method.upper()} with a {prior}")
-        scoring += f"; {fallback} while every answer is in the lowest or every one in the highest category"
+        if design.asks_multidimensional:
+            scoring += (f"; {fallback} where no MLE exists (every answer in the lowest or every one in the highest "
+                        "category, the likelihood rising towards the grid's edge, a dimension without information)")
+        else:
+            scoring += f"; {fallback} while every answer is in the lowest or every one in the highest category"
     if design.asks_multidimensional:
         points = (f"{sc.grid_points_per_dimension} points per dimension" if sc.grid_points_per_dimension is not None
                   else "41 points per dimension for K = 2, 17 for K = 3, grid_points for K = 1")
