@@ -298,3 +298,134 @@ def test_an_mle_design_runs_batch_as_one_at_a_time_and_replays_as_a_live_session
                 reply = submit_answer(store, reply["session_id"], expected, int(whole["responses"][i, pos]),
                                       cache=cache)
             assert session_result(store, reply["session_id"])["theta"] == [float(x) for x in whole["theta"][i]]
+
+
+# ----------------------------------------------------------------------------------------
+# se_reduction and min_information on every dimension
+
+SMALL = m2pl_bank([[1.2, 0.3], [0.2, 1.5], [0.9, 0.9], [1.6, 0.0], [0.0, 0.7]], [0.3, -0.4, 0.1, -0.8, 0.5])
+
+
+def _small_design(stopping):
+    text = """
+[scoring]
+prior_covariance = [[1.0, 0.3], [0.3, 1.0]]
+grid_min = -3.0
+grid_max = 3.0
+grid_points_per_dimension = 7
+[selection]
+criterion = "a_optimality"
+[stopping]
+min_items = 1
+max_items = 5
+""" + stopping
+    return parse_design(text)
+
+
+def _after_one_answer(stopping, answer=1):
+    ctx = build_context(_small_design(stopping), SMALL)
+    state, _ = kernel.start(ctx, randomness.stream_key(np.array([3])))
+    first = int(state.pending[0])
+    kernel.answer(ctx, state, np.array([0]), np.array([answer]))
+    return ctx, state, first
+
+
+def _by_hand(state, first, answer=1):
+    """Choi, Grady & Dodd's (2011) predicted posterior SD after the best remaining item, per
+    dimension, written out with plain loops over a 7 x 7 grid; the best item by brute force
+    over det(W + J a a') (Segall 1996) with numpy.linalg.det; M2PL P = expit(a . x + d)."""
+    axis = np.linspace(-3, 3, 7)
+    pts = [(x, y) for x in axis for y in axis]
+    prec = np.linalg.inv(np.array([[1.0, 0.3], [0.3, 1.0]]))
+    a, d = SMALL.slopes, SMALL.intercepts[:, 0]
+
+    def p1(j, t):
+        return 1.0 / (1.0 + np.exp(-(a[j] @ np.asarray(t) + d[j])))
+
+    post = []
+    for t in pts:
+        t = np.array(t)
+        like = p1(first, t) if answer == 1 else 1.0 - p1(first, t)
+        post.append(np.exp(-0.5 * t @ prec @ t) * like)
+    post = np.array(post) / sum(post)
+    theta = state.theta[0]
+    w = prec + p1(first, theta) * (1 - p1(first, theta)) * np.outer(a[first], a[first])
+    dets = [np.linalg.det(w + p1(j, theta) * (1 - p1(j, theta)) * np.outer(a[j], a[j])) if j != first else -1.0
+            for j in range(5)]
+    best = int(np.argmax(dets))
+
+    def sd(weights):
+        m = sum(weights)
+        out = []
+        for k in range(2):
+            mean = sum(wg * t[k] for wg, t in zip(weights, pts)) / m
+            out.append(np.sqrt(sum(wg * (t[k] - mean) ** 2 for wg, t in zip(weights, pts)) / m))
+        return m, np.array(out)
+
+    _, now = sd(post)
+    predicted = np.zeros(2)
+    for c in (0, 1):
+        joint = [wg * (p1(best, t) if c == 1 else 1.0 - p1(best, t)) for wg, t in zip(post, pts)]
+        m, s = sd(joint)
+        predicted += m * s
+    return best, now - predicted, theta, a, d
+
+
+def test_predicted_se_reduction_per_dimension_is_the_hand_computation():
+    from adaptive_engine.kernel import multidimensional_stopping as precision
+
+    ctx, state, first = _after_one_answer("se_reduction = 0.001")
+    best, reduction, *_ = _by_hand(state, first)
+    assert precision.best_remaining_items(ctx, state, np.array([0]))[0] == best
+    table = ctx.multidimensional.log_table[[best]]
+    got = precision.predicted_se_reduction_per_dimension(state.log_post[:1], ctx.multidimensional.points, table)
+    np.testing.assert_allclose(got[0], reduction, rtol=1e-10)
+    assert precision.largest_se_reduction(ctx, state, np.array([0]))[0] == pytest.approx(reduction.max(), rel=1e-10)
+
+
+def test_se_reduction_stops_once_every_dimension_would_gain_less_than_the_target():
+    _, state, first = _after_one_answer("se_reduction = 0.001")
+    _, reduction, *_ = _by_hand(state, first)
+    assert 0 < 2 * reduction.min() < reduction.max()  # both would gain, one far more: the bounds below part them
+    above = reduction.max() * 1.01  # above the largest reduction: both below it, stop
+    between = (reduction.min() + reduction.max()) / 2  # one dimension would still gain more: go on
+    _, stopped, _ = _after_one_answer(f"se_reduction = {float(above)!r}")
+    assert stopped.done[0] and stopped.stop_reason[0] == "small_se_reduction"
+    _, going, _ = _after_one_answer(f"se_reduction = {float(between)!r}")
+    assert not going.done[0]
+
+
+def test_min_information_stops_once_no_item_has_more_on_any_dimension():
+    _, state, first = _after_one_answer("min_information = 0.001")
+    *_, theta, a, d = _by_hand(state, first)
+    # by hand: J = P (1 - P) of each item left at the interim estimate, times a_k^2, the
+    # diagonal of its information matrix J a a' (Reckase 2009, ch. 5)
+    p = 1.0 / (1.0 + np.exp(-(a @ theta + d)))
+    diag = (p * (1 - p))[:, None] * a * a
+    most = max(diag[j].max() for j in range(5) if j != first)
+    _, stopped, _ = _after_one_answer(f"min_information = {float(most * 1.001)!r}")
+    assert stopped.done[0] and stopped.stop_reason[0] == "little_information_left"
+    _, going, _ = _after_one_answer(f"min_information = {float(most * 0.999)!r}")
+    assert not going.done[0]
+
+
+def test_precision_rules_are_accepted_for_vectors_and_the_sprt_is_refused_at_its_table():
+    bank = random_bank()
+    assert check_design_against_bank(design(stopping="se_reduction = 0.01\nmin_information = 0.05"), bank) == []
+    found = {p.location: p.message for p in check_design_against_bank(
+        design(stopping="[stopping.sprt]\ncut = 0.0"), bank)}
+    assert "not available with an ability of 2 dimensions" in found["[stopping.sprt]"]
+    assert "se_reduction" in found["[stopping.sprt]"]
+
+
+def test_precision_rules_decide_the_same_for_a_batch_and_one_at_a_time():
+    bank = random_bank()
+    d = design(stopping="se_reduction = 0.02\nmin_information = 0.05")
+    ctx = build_context(d, bank)
+    true = np.random.default_rng(8).normal(0, 1, (6, 2))
+    whole = run_chunk(ctx, seed=5, start=0, true_theta=true)
+    assert "small_se_reduction" in set(whole["stop_reason"])
+    for i in range(6):
+        one = run_chunk(ctx, seed=5, start=i, true_theta=true[i : i + 1])
+        np.testing.assert_array_equal(one["items"][0], whole["items"][i])
+        assert one["stop_reason"][0] == whole["stop_reason"][i]

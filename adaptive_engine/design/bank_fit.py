@@ -378,12 +378,11 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     if op.random_theta is not None:
         out.append(Problem("[opening] random_theta", f"a random starting point is not available {many}; the "
                                                      "test starts at [opening] theta on every dimension"))
-    for name in ("sprt", "se_reduction", "min_information"):
-        if getattr(st, name) is not None:
-            where = "[stopping.sprt]" if name == "sprt" else f"[stopping] {name}"
-            out.append(Problem(where, f"this rule measures one ability and is not available {many}; stop on se "
-                                      "or se_per_dimension, length, time, or [stopping.confidence_interval] "
-                                      "on the composite"))
+    if st.sprt is not None:
+        out.append(Problem("[stopping.sprt]", f"the likelihood ratio test compares two points of one ability and "
+                                              f"is not available {many}; stop on se or se_per_dimension, "
+                                              "se_reduction, min_information, length, time, or "
+                                              "[stopping.confidence_interval] on the composite"))
     if st.confidence_interval is not None and rp.composite_weights is None and k > 1:
         out.append(Problem("[stopping.confidence_interval]",
                            f"{many} the interval classifies the composite of [reporting] composite_weights; "
@@ -589,9 +588,11 @@ def _stopping_words(st, *, vector: bool = False) -> str:
         ci = st.confidence_interval
         rules.append(f"once the {ci.confidence:.0%} interval excludes the cut {ci.cut:g}")
     if st.se_reduction is not None:
-        rules.append(f"once the next item would reduce the SE by less than {st.se_reduction:g}")
+        rules.append(f"once the next item would reduce the SE by less than {st.se_reduction:g}"
+                     + (" on every dimension" if vector else ""))
     if st.min_information is not None:
-        rules.append(f"once no eligible item has information above {st.min_information:g}")
+        rules.append(f"once no eligible item has information above {st.min_information:g}"
+                     + (" on any dimension" if vector else ""))
     if st.time_limit is not None:
         rules.append(f"after {st.time_limit:g} seconds")
     return f"stop {' or '.join(rules)}; never before {st.min_items} items"

@@ -393,7 +393,9 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
     """Why each row's test stops now (``""``: go on), by :func:`adaptive_engine.kernel.stopping.stop_reasons`.
 
     The SE rule fires once every dimension is at or below its target; the confidence
-    interval rule classifies the composite of ``[reporting] composite_weights``.
+    interval rule classifies the composite of ``[reporting] composite_weights``;
+    ``se_reduction`` and ``min_information`` hold on every dimension
+    (:mod:`.multidimensional_stopping`).
     """
     tab = ctx.multidimensional
     st = tab.stopping_rule
@@ -410,6 +412,13 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
         value, value_se = composite(weights, state.theta[rows], state.covariance[rows])
         kwargs["ci_decision"] = stopping.confidence_interval_decision(
             value, value_se, cut=st.confidence_interval.cut, confidence=st.confidence_interval.confidence)
+    if st.se_reduction is not None or st.min_information is not None:
+        from . import multidimensional_stopping as precision
+
+        if st.se_reduction is not None:
+            kwargs["se_reduction"] = precision.largest_se_reduction(ctx, state, rows)
+        if st.min_information is not None:
+            kwargs["best_information"] = precision.largest_information_per_dimension(ctx, state, rows)
     if st.time_limit is not None:
         kwargs["elapsed"] = state.elapsed[rows]
     if ctx.balanced:
