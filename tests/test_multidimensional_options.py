@@ -429,3 +429,75 @@ def test_precision_rules_decide_the_same_for_a_batch_and_one_at_a_time():
         one = run_chunk(ctx, seed=5, start=i, true_theta=true[i : i + 1])
         np.testing.assert_array_equal(one["items"][0], whole["items"][i])
         assert one["stop_reason"][0] == whole["stop_reason"][i]
+
+
+# ----------------------------------------------------------------------------------------
+# person fit at the final ability vector
+
+
+def _lz_by_hand(bank, items, answers, theta):
+    """Drasgow, Levine & Williams (1985): lz = (l0 - E) / sqrt(Var) with l0 = sum log P(x_i),
+    E = sum_i sum_k P_ik log P_ik, Var = sum_i [sum_k P_ik (log P_ik)^2 - (sum_k P_ik log P_ik)^2];
+    the category probabilities written out from the compensatory model's formulas
+    (tests/multidimensional_reference.py, not the project's irt code)."""
+    p = bank.multidimensional_params
+    l0 = e = var = 0.0
+    for i, x in zip(items, answers):
+        ints = p.intercepts[i][np.isfinite(p.intercepts[i])]
+        probs = [item_probability(p.slopes[i], ints, float(p.c[i]), theta, k, p.scaling) for k in range(len(ints) + 1)]
+        l0 += np.log(probs[x])
+        e_i = sum(q * np.log(q) for q in probs)
+        e += e_i
+        var += sum(q * np.log(q) ** 2 for q in probs) - e_i ** 2
+    return (l0 - e) / np.sqrt(var)
+
+
+def test_lz_at_the_final_ability_vector_is_the_hand_computation():
+    bank = _demo_bank()
+    models = np.asarray(bank.model)
+    pick = [int(np.flatnonzero(models == m)[j]) for m, j in (("M2PL", 0), ("M3PL", 0), ("MGRM", 0), ("M3PL", 5),
+                                                                 ("MGRM", 3), ("M2PL", 4))]
+    answers = [1, 0, 2, 1, 0, 0]
+    assert bank.n_categories[pick[2]] == 3
+    d = design(scoring='method = "map"')
+    ctx = build_context(d, bank)
+    state = _state_with(ctx, [(pick, answers), (pick[:1], answers[:1]), ([], [])])
+    est = kernel.final_estimates(ctx, state, np.arange(3))
+    assert est.lz[0] == pytest.approx(_lz_by_hand(bank, pick, answers, est.theta[0]), rel=1e-10)
+    assert est.lz[1] == pytest.approx(_lz_by_hand(bank, pick[:1], answers[:1], est.theta[1]), rel=1e-10)
+    assert np.isnan(est.lz[2])  # no answers
+    reports = kernel.finish(ctx, state, np.arange(3), est)
+    flagged = bool(est.lz[0] < -1.645)
+    assert reports[0]["person_fit"] == {"lz": float(est.lz[0]), "threshold": -1.645, "flagged": flagged}
+    assert reports[2]["person_fit"] == {"lz": None, "threshold": -1.645, "flagged": None}
+    # an unlikely pattern (wrong on the easy items, right on the hard ones) is flagged
+    p = bank.multidimensional_params
+    order = np.argsort(p.intercepts[:, 0])
+    easy, hard = [int(i) for i in order[-6:] if p.n_categories[i] == 2], [int(i) for i in order[:6]
+                                                                           if p.n_categories[i] == 2]
+    odd = _state_with(ctx, [(easy + hard, [0] * len(easy) + [1] * len(hard))])
+    fit = kernel.finish(ctx, odd, np.array([0]))[0]["person_fit"]
+    assert fit["flagged"] and fit["lz"] < -1.645
+    from adaptive_engine.cli.session_commands import result_lines
+
+    shown = result_lines(kernel.finish(ctx, odd, np.array([0]))[0])
+    assert any(line.startswith("person fit lz ") and "flagged" in line for line in shown)
+
+
+def test_simulate_writes_lz_per_examinee_and_the_share_flagged():
+    from adaptive_engine.simulation.multidimensional_engine import examinees_csv, multidimensional_metrics
+
+    bank = random_bank()
+    d = design()
+    true = np.random.default_rng(12).normal(0, 1, (8, 2))
+    res = simulate_multidimensional(d, bank, true_theta=true, seed=3)
+    state_lz = []
+    for i in range(8):  # each examinee's lz from its own answers at its final estimate
+        n = int((res.items[i] >= 0).sum())
+        state_lz.append(_lz_by_hand(bank, res.items[i, :n], res.responses[i, :n], res.theta[i]))
+    np.testing.assert_allclose(res.lz, state_lz, rtol=1e-10)
+    rows = examinees_csv(res).splitlines()
+    assert rows[0].endswith(",stop_reason,lz")
+    assert [float(r.rsplit(",", 1)[1]) for r in rows[1:]] == [float(f"{x:.6g}") for x in res.lz]
+    summary = multidimensional_metrics(res)
+    assert summary["person_fit"]["share_flagged"] == pytest.approx(np.mean(res.lz < -1.645))

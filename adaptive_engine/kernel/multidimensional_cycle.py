@@ -429,13 +429,16 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
 
 @attrs.frozen(eq=False)
 class MultidimensionalFinalEstimates:
-    """Final scores of a batch: ``theta``, ``se`` (R, K), ``covariance`` (R, K, K), ``status`` (R,)."""
+    """Final scores of a batch: ``theta``, ``se`` (R, K), ``covariance`` (R, K, K), ``status`` (R,),
+    and the person fit ``lz`` (R,) at the final ability vector (:func:`person_fit_lz`; None
+    where not computed)."""
 
     theta: np.ndarray
     se: np.ndarray
     covariance: np.ndarray
     status: np.ndarray
     sprt_decision: None = None
+    lz: np.ndarray | None = None
 
 
 def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
@@ -453,7 +456,8 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
     if (interim_current and design.scoring.method is ScoringMethod.EAP and design.final_method is ScoringMethod.EAP
             and bool(np.all(state.n_given[rows] > 0))):
         cov = state.covariance[rows]
-        return MultidimensionalFinalEstimates(theta=state.theta[rows], se=_se(cov), covariance=cov, status=status)
+        return MultidimensionalFinalEstimates(theta=state.theta[rows], se=_se(cov), covariance=cov, status=status,
+                                              lz=person_fit_lz(ctx, state, rows, state.theta[rows]))
     mean, cov = add_and_moments(state.log_post, rows, points=ctx.multidimensional.points)
     if ctx.design.final_method is ScoringMethod.MAP:
         mean, cov, ok = map_estimate(ctx, state, rows, mean)
@@ -461,7 +465,17 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
                           np.where(ok, "converged", "not_converged")).astype(object)
     elif ctx.design.final_method is ScoringMethod.MLE:
         mean, cov, status = mle_or_fallback(ctx, state, rows, mean, cov, final=True)
-    return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status)
+    return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
+                                          lz=person_fit_lz(ctx, state, rows, mean))
+
+
+def person_fit_lz(ctx, state, rows, theta) -> np.ndarray:
+    """lz (Drasgow, Levine & Williams 1985) of ``rows`` at their final ability vectors
+    ``theta`` (R, K), over the scored answers (:func:`adaptive_engine.irt.person_fit.lz_at_vectors`)."""
+    from ..irt.person_fit import lz_at_vectors
+
+    items, resp = state.scored_items(rows)
+    return lz_at_vectors(ctx.multidimensional.params, items, resp, theta)
 
 
 def finish(ctx, state, rows, estimates=None) -> list[dict]:
@@ -481,7 +495,9 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
     dimension), ``covariance`` the K x K matrix.  With ``[reporting] composite_weights``
     the composite ``w . theta`` comes with its SE ``sqrt(w' S w)``, interval, scaled score
     and the classifications of the cut scores (which classify the composite).  Person fit
-    is not computed for an ability vector (``person_fit`` is None).
+    is lz at the final ability vector (``person_fit``: ``lz``, ``threshold`` = ``[reporting]
+    person_fit_threshold``, ``flagged`` when lz is below it; lz None where it cannot be
+    computed, e.g. without answers).
     """
     from .final_report import final_reports
 
@@ -498,6 +514,7 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
         value, value_se = composite(tab.composite_weights, est.theta, est.covariance)
         comp = final_reports(design, theta=value, se=value_se, **common)
     out = []
+    threshold = float(design.reporting.person_fit_threshold)
     keep = ("theta", "se", "interval", "scaled_score", "scaled_se", "scaled_interval")
     for i in range(r):
         first = per_dim[0][i]
@@ -517,9 +534,16 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
             rep["classifications"] = c.get("classifications", [])
         else:
             rep["classifications"] = []
-        rep.update(items=first["items"], stop_reason=first["stop_reason"], person_fit=None)
+        rep.update(items=first["items"], stop_reason=first["stop_reason"],
+                   person_fit=_vector_person_fit(None if est.lz is None else est.lz[i], threshold))
         out.append(rep)
     return out
+
+
+def _vector_person_fit(lz, threshold: float) -> dict:
+    """The report's ``person_fit`` of an ability vector: lz, the threshold, whether it is flagged."""
+    value = None if lz is None else _plain(lz)
+    return {"lz": value, "threshold": threshold, "flagged": None if value is None else value < threshold}
 
 
 def _plain(x) -> float | None:

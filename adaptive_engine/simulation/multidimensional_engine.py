@@ -60,7 +60,8 @@ class MultidimensionalSimulationResult:
     """Outcomes of a multidimensional run (arrays over examinees, first axis).
 
     ``true_theta``, ``theta``, ``se``: (N, K); ``covariance`` (N, K, K); ``items`` (N, L)
-    in order given and ``responses`` (-1 padded); ``administered`` (n_items,).
+    in order given and ``responses`` (-1 padded); ``administered`` (n_items,); ``lz`` (N,)
+    the person fit at the final ability vector (NaN where it cannot be computed).
     """
 
     design: Design
@@ -78,6 +79,7 @@ class MultidimensionalSimulationResult:
     items: np.ndarray
     responses: np.ndarray
     administered: np.ndarray
+    lz: np.ndarray | None = None
 
     @property
     def size(self) -> int:
@@ -112,7 +114,8 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
     return dict(seeds=seeds, true_theta=true_theta, theta=per_examinee(est.theta), se=per_examinee(est.se),
                 covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
                 n_pretest=per_examinee(state.n_pretest).copy(), stop_reason=per_examinee(state.stop_reason).copy(),
-                items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy())
+                items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy(),
+                lz=per_examinee(est.lz))
 
 
 #: Contexts built in a worker process, by run token (one run at a time per worker).
@@ -291,6 +294,11 @@ def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposu
                   "items_never_used": int(result.bank.n_items - used), "exposure_target": target,
                   "share_above_target": float(np.mean(rates[operational] > target)) if operational.any() else None},
     )
+    if result.lz is not None:
+        threshold = float(design.reporting.person_fit_threshold)
+        known = result.lz[np.isfinite(result.lz)]
+        out["person_fit"] = {"statistic": "lz", "threshold": threshold, "computed": int(known.size),
+                             "share_flagged": float(np.mean(known < threshold)) if known.size else None}
     classes = composite_classification(result)
     if classes:
         out["classification"] = classes
@@ -298,16 +306,19 @@ def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposu
 
 
 def examinees_csv(result: MultidimensionalSimulationResult) -> str:
-    """One row per examinee: seed, true and estimated theta and SE per dimension, length, stop."""
+    """One row per examinee: seed, true and estimated theta and SE per dimension, length, stop,
+    person fit ``lz`` (empty where it cannot be computed)."""
     names = result.dimension_names
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["examinee", "seed"] + [f"true_{d}" for d in names] + [f"theta_{d}" for d in names]
-               + [f"se_{d}" for d in names] + ["n_scored", "n_pretest", "stop_reason"])
+               + [f"se_{d}" for d in names] + ["n_scored", "n_pretest", "stop_reason", "lz"])
+    lz = result.lz if result.lz is not None else np.full(result.size, np.nan)
     for i in range(result.size):
         w.writerow([i, int(result.seeds[i])] + [f"{x:.6g}" for x in result.true_theta[i]]
                    + [f"{x:.6g}" for x in result.theta[i]] + [f"{x:.6g}" for x in result.se[i]]
-                   + [int(result.n_scored[i]), int(result.n_pretest[i]), str(result.stop_reason[i])])
+                   + [int(result.n_scored[i]), int(result.n_pretest[i]), str(result.stop_reason[i]),
+                      f"{lz[i]:.6g}" if np.isfinite(lz[i]) else ""])
     return buf.getvalue()
 
 
