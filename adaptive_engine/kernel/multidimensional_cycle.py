@@ -172,15 +172,25 @@ def pattern_status(tab, items, resp) -> np.ndarray:
     return out
 
 
+def _answered(tab, items, resp):
+    """The scored answers' parameters (R, W), where an item was given (R, W), the answers
+    (-1 where none) and the columns some row reached."""
+    given = items >= 0
+    return (tab.params.take(np.maximum(items, 0)), given, np.where(given, resp, -1),
+            np.flatnonzero(given.any(axis=0)))
+
+
 def log_likelihood(tab, items, resp, theta) -> np.ndarray:
-    """``sum_i log P(x_i | theta)`` (R,) over the scored answers ``items``, ``resp`` (R, W),
-    column by column in the order given (a row's sum is its own whatever the batch)."""
+    """``sum_i log P(x_i | theta)`` (R,) over the scored answers ``items``, ``resp`` (R, W).
+
+    Each answer's term is elementwise; the terms are added one answer after another in the
+    order given, so a row's sum is its own whatever the batch holds.
+    """
+    params, _, answers, reached = _answered(tab, items, resp)
+    terms = md.log_likelihood(params, theta[:, None, :], answers)  # (R, W), 0 where not given
     total = np.zeros(theta.shape[0])
-    for col in np.flatnonzero((items >= 0).any(axis=0)):
-        it = items[:, col]
-        given = it >= 0
-        params = tab.params.take(np.maximum(it, 0))
-        total = total + md.log_likelihood(params, theta, np.where(given, resp[:, col], -1))
+    for col in reached:
+        total = total + terms[:, col]
     return total
 
 
@@ -189,26 +199,26 @@ def information_and_score(tab, items, resp, theta) -> tuple[np.ndarray, np.ndarr
     the log-likelihood ``sum_i r_i(theta) a_i`` (R, K) over the scored answers ``items``,
     ``resp`` (R, W).
 
-    Column by column in the order given, each an elementwise addition, for every bank:
+    Each answer's terms are elementwise, added one answer after another in the order given:
     a row's sums are the same whatever the batch holds (the M2PL shortcut of
-    :func:`.multidimensional_state.test_information_and_score` sums all columns in one
+    :func:`.multidimensional_state.test_information_and_score` sums all answers in one
     reduction, which numpy carries out in another order for a batch of one row).
     """
     k = tab.k
+    params, given, answers, reached = _answered(tab, items, resp)
+    th = theta[:, None, :]
+    j = np.where(given, md.slope_information(params, th), 0.0)  # (R, W)
+    g = md.log_likelihood_gradient(params, th, answers)  # (R, W, K), 0 where not given
+    a = params.slopes  # (R, W, K)
     info = np.zeros((theta.shape[0], k, k))
     grad = np.zeros(theta.shape)
-    for col in np.flatnonzero((items >= 0).any(axis=0)):
-        it = items[:, col]
-        given = it >= 0
-        params = tab.params.take(np.maximum(it, 0))
-        a = params.slopes
-        j = np.where(given, md.slope_information(params, theta), 0.0)
+    for col in reached:
         for p in range(k):
             for q in range(p, k):
-                info[:, p, q] = info[:, p, q] + j * a[:, p] * a[:, q]
+                info[:, p, q] = info[:, p, q] + j[:, col] * a[:, col, p] * a[:, col, q]
                 if q != p:
                     info[:, q, p] = info[:, p, q]
-        grad = grad + md.log_likelihood_gradient(params, theta, np.where(given, resp[:, col], -1))
+        grad = grad + g[:, col]
     return info, grad
 
 
