@@ -486,7 +486,7 @@ def test_lz_at_the_final_ability_vector_is_the_hand_computation():
 
 
 def test_simulate_writes_lz_per_examinee_and_the_share_flagged():
-    from adaptive_engine.simulation.multidimensional_engine import examinees_csv, multidimensional_metrics
+    from adaptive_engine.simulation.multidimensional_engine import examinees_csv, multidimensional_metrics, summary_text
 
     bank = random_bank()
     d = design()
@@ -502,6 +502,7 @@ def test_simulate_writes_lz_per_examinee_and_the_share_flagged():
     assert [float(r.rsplit(",", 1)[1]) for r in rows[1:]] == [float(f"{x:.6g}") for x in res.lz]
     summary = multidimensional_metrics(res)
     assert summary["person_fit"]["share_flagged"] == pytest.approx(np.mean(res.lz < -1.645))
+    assert "person fit lz below -1.645" in summary_text(summary)
 
 
 # ----------------------------------------------------------------------------------------

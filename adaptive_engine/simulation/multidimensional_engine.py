@@ -352,6 +352,10 @@ def summary_text(summary: dict) -> str:
                  "stops: " + ", ".join(f"{k} {v}" for k, v in summary["stop_reasons"].items()))
     lines.append(f"largest exposure rate {summary['exposure']['max_rate']:.3f}; "
                  f"items used {summary['exposure']['items_used']}")
+    fit = summary.get("person_fit")
+    if fit and fit["share_flagged"] is not None:
+        lines.append(f"person fit lz below {fit['threshold']:g}: {fit['share_flagged']:.1%} of the "
+                     f"{fit['computed']} examinees it was computed for")
     for c in summary.get("classification", []):
         lines.append(f"composite classified at the cut {c['cut']}: accuracy {c['accuracy']:.3f}")
     return "\n".join(lines)
