@@ -199,7 +199,7 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 
     if runs_multidimensional(design, bank):
         _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_spec, true_bank, chunk_size,
-                                   exposure_target, as_json, show_progress)
+                                   workers, exposure_target, as_json, show_progress)
         return
     progress = _Progress("simulating", enabled=show_progress)
     try:
@@ -221,9 +221,9 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 
 
 def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_spec, true_bank, chunk_size,
-                               exposure_target, as_json, show_progress):
+                               workers, exposure_target, as_json, show_progress):
     """``simulate`` of a design that runs on the multidimensional kernel (summary.json, examinees.csv,
-    items.csv, report.html)."""
+    items.csv, report.html); ``--workers`` processes run its chunks as for one dimension."""
     from ..design.bank_fit import design_warnings, require_design_fits_bank
     from ..errors import SimulationError
     from ..simulation import metrics
@@ -246,7 +246,7 @@ def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_s
     progress = _Progress("simulating", enabled=show_progress)
     try:
         result = simulate_multidimensional(design, bank, true_theta=true_theta, seed=seed,
-                                           chunk_size=min(chunk_size, 2000), progress=progress)
+                                           chunk_size=min(chunk_size, 2000), progress=progress, workers=workers)
     finally:
         progress.close()
     summary = multidimensional_metrics(result, exposure_target=exposure_target)
@@ -323,7 +323,7 @@ def _tune_multidimensional(design, bank, parsed, n_examinees, seed, theta_spec, 
                            show_progress, as_json):
     """``tune`` of a design that runs on the multidimensional kernel (same files as for one dimension).
 
-    Runs in this process, as ``simulate`` does for such a design (``--workers`` is not used).
+    ``--workers`` processes run each combination's chunks, as ``simulate`` does for such a design.
     """
     from ..errors import SimulationError
     from ..simulation.multidimensional_tuning import run_multidimensional_tuning_study
@@ -337,7 +337,8 @@ def _tune_multidimensional(design, bank, parsed, n_examinees, seed, theta_spec, 
     progress = _Progress("tuning", enabled=show_progress)
     try:
         rows = run_multidimensional_tuning_study(design, bank, parsed, true_theta=true_theta, seed=seed,
-                                                 out_dir=out_dir, abilities=spec.text, progress=progress)
+                                                 out_dir=out_dir, abilities=spec.text, progress=progress,
+                                                 workers=workers)
     finally:
         progress.close()
     if as_json:

@@ -5,8 +5,12 @@ multidimensional kernel (a bank of K > 1 dimensions, or a design that asks for i
 examinee ``i`` gets the seed ``randomness.examinee_seeds(seed, n)[i]`` and its answers are
 drawn from the counter-based stream ``SIMULATED_ANSWER`` exactly as in the
 one-dimensional driver, so a simulated examinee replays identically as a live session.
-Runs in this process, in chunks; as there, examinees who gave the same answers so far
-share one kernel row when the design draws nothing at random
+Runs in chunks, in this process or (``workers > 1``, or an ``executor``) on worker
+processes, each chunk a task as in the one-dimensional driver: a worker builds the
+context once per run, the chunks come back in examinee order, and as every examinee's
+seed and answers are functions of the run seed and the examinee's index, the results do
+not depend on the chunking or the workers.  As there, examinees who gave the same answers
+so far share one kernel row when the design draws nothing at random
 (:mod:`adaptive_engine.simulation.shared_histories`), with every result the same.
 
 :func:`multidimensional_metrics` summarises precision per dimension and for the composite
@@ -20,7 +24,11 @@ from __future__ import annotations
 
 import csv
 import io
+import itertools
 import json
+import uuid
+from collections import deque
+from concurrent.futures import Executor
 from pathlib import Path
 from typing import Callable
 
@@ -52,7 +60,8 @@ class MultidimensionalSimulationResult:
     """Outcomes of a multidimensional run (arrays over examinees, first axis).
 
     ``true_theta``, ``theta``, ``se``: (N, K); ``covariance`` (N, K, K); ``items`` (N, L)
-    in order given and ``responses`` (-1 padded); ``administered`` (n_items,).
+    in order given and ``responses`` (-1 padded); ``administered`` (n_items,); ``lz`` (N,)
+    the person fit at the final ability vector (NaN where it cannot be computed).
     """
 
     design: Design
@@ -70,6 +79,7 @@ class MultidimensionalSimulationResult:
     items: np.ndarray
     responses: np.ndarray
     administered: np.ndarray
+    lz: np.ndarray | None = None
 
     @property
     def size(self) -> int:
@@ -104,21 +114,93 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
     return dict(seeds=seeds, true_theta=true_theta, theta=per_examinee(est.theta), se=per_examinee(est.se),
                 covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
                 n_pretest=per_examinee(state.n_pretest).copy(), stop_reason=per_examinee(state.stop_reason).copy(),
-                items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy())
+                items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy(),
+                lz=per_examinee(est.lz))
+
+
+#: Contexts built in a worker process, by run token (one run at a time per worker).
+_CONTEXTS: dict = {}
+
+
+def _worker_chunk(token: str, design: Design, bank: ItemBank, seed: int, start: int, true_theta) -> dict:
+    """:func:`run_chunk` in a worker; the context is built once per worker process and run."""
+    ctx = _CONTEXTS.get(token)
+    if ctx is None:
+        _CONTEXTS.clear()  # drop the contexts of earlier runs
+        ctx = _CONTEXTS[token] = build_context(design, bank)
+    return run_chunk(ctx, seed=seed, start=start, true_theta=true_theta)
+
+
+def _chunks(design, bank, ctx, *, seed, true_theta, chunk_size, workers, executor):
+    """The chunks' plain arrays (:func:`run_chunk`) in examinee order, with their sizes."""
+    total = true_theta.shape[0]
+    starts = range(0, total, chunk_size)
+    if executor is None and workers == 1:
+        ctx = ctx if ctx is not None else build_context(design, bank)
+        for s in starts:
+            yield run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size])
+        return
+    own = executor is None
+    if own:  # multiprocessing is imported only for a run on workers
+        from concurrent.futures import ProcessPoolExecutor
+
+    pool = ProcessPoolExecutor(max_workers=workers) if own else executor
+    token = uuid.uuid4().hex
+    window = max(2, 2 * workers)  # chunks in flight: bounds memory at a few chunks
+
+    def submit(s):
+        return pool.submit(_worker_chunk, token, design, bank, seed, s, true_theta[s : s + chunk_size])
+
+    try:
+        it = iter(starts)
+        pending = deque(submit(s) for s in itertools.islice(it, window))
+        while pending:
+            part = pending.popleft().result()
+            nxt = next(it, None)
+            if nxt is not None:
+                pending.append(submit(nxt))
+            yield part
+    finally:
+        if own:
+            pool.shutdown(cancel_futures=True)
 
 
 def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, seed: int,
                               chunk_size: int = DEFAULT_CHUNK, ctx: TestContext | None = None,
-                              progress: Callable[[int, int], None] | None = None) -> MultidimensionalSimulationResult:
+                              progress: Callable[[int, int], None] | None = None, workers: int = 1,
+                              executor: Executor | None = None) -> MultidimensionalSimulationResult:
     """Run ``design`` for examinees of true abilities ``true_theta`` (N, K).
+
+    Parameters
+    ----------
+    chunk_size : int
+        Most examinees per kernel batch; with ``workers > 1`` smaller chunks are used so
+        that every worker gets work
+        (:func:`adaptive_engine.simulation.engine.effective_chunk_size`).
+    ctx : TestContext, optional
+        A context already built for (design, bank), used in process only (the caller
+        answers for the pair having passed the gate).
+    progress : callable, optional
+        ``progress(done, total)`` after each chunk.
+    workers : int
+        With no executor, ``workers > 1`` runs the chunks on a process pool of that size;
+        with an executor, its number of workers (how finely the run is cut).
+    executor : concurrent.futures.Executor, optional
+        Runs the chunks (anything with ``submit`` returning futures).
+
+    The results are the same, bit for bit, for every chunk size, number of workers and
+    executor.
 
     Raises
     ------
     DesignError
         The design does not fit the bank (the gate of every run).
     SimulationError
-        ``true_theta`` not of shape (N, K) or not finite; ``chunk_size`` below 1.
+        ``true_theta`` not of shape (N, K) or not finite; ``chunk_size`` or ``workers``
+        below 1.
     """
+    from .engine import effective_chunk_size
+
     if ctx is None:
         require_design_fits_bank(design, bank)
     k = bank.n_dimensions
@@ -130,18 +212,20 @@ def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, see
                               f"got {true_theta.shape}", "true_theta")
     if not np.all(np.isfinite(true_theta)):
         raise SimulationError("true abilities must be finite", "true_theta")
-    if not isinstance(chunk_size, int) or chunk_size < 1:
-        raise SimulationError(f"must be a whole number >= 1, got {chunk_size!r}", "chunk_size")
-    ctx = ctx if ctx is not None else build_context(design, bank)
-    parts = []
+    for name, value in (("chunk_size", chunk_size), ("workers", workers)):
+        if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < 1:
+            raise SimulationError(f"must be a whole number >= 1, got {value!r}", name)
     total = true_theta.shape[0]
-    for s in range(0, total, chunk_size):
-        parts.append(run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size]))
-        if progress is not None:
-            progress(min(s + chunk_size, total), total)
-    joined = {key: np.concatenate([p[key] for p in parts], axis=0) for key in parts[0]} if parts else None
-    if joined is None:
+    if total == 0:
         raise SimulationError("no examinees", "true_theta")
+    size = effective_chunk_size(total, int(chunk_size), int(workers))
+    parts = []
+    for part in _chunks(design, bank, ctx, seed=seed, true_theta=true_theta, chunk_size=size,
+                        workers=int(workers), executor=executor):
+        parts.append(part)
+        if progress is not None:
+            progress(min(len(parts) * size, total), total)
+    joined = {key: np.concatenate([p[key] for p in parts], axis=0) for key in parts[0]}
     items = joined["items"]
     administered = np.bincount(items[items >= 0], minlength=bank.n_items)
     return MultidimensionalSimulationResult(design=design, bank=bank, seed=int(seed),
@@ -210,6 +294,11 @@ def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposu
                   "items_never_used": int(result.bank.n_items - used), "exposure_target": target,
                   "share_above_target": float(np.mean(rates[operational] > target)) if operational.any() else None},
     )
+    if result.lz is not None:
+        threshold = float(design.reporting.person_fit_threshold)
+        known = result.lz[np.isfinite(result.lz)]
+        out["person_fit"] = {"statistic": "lz", "threshold": threshold, "computed": int(known.size),
+                             "share_flagged": float(np.mean(known < threshold)) if known.size else None}
     classes = composite_classification(result)
     if classes:
         out["classification"] = classes
@@ -217,16 +306,19 @@ def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposu
 
 
 def examinees_csv(result: MultidimensionalSimulationResult) -> str:
-    """One row per examinee: seed, true and estimated theta and SE per dimension, length, stop."""
+    """One row per examinee: seed, true and estimated theta and SE per dimension, length, stop,
+    person fit ``lz`` (empty where it cannot be computed)."""
     names = result.dimension_names
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["examinee", "seed"] + [f"true_{d}" for d in names] + [f"theta_{d}" for d in names]
-               + [f"se_{d}" for d in names] + ["n_scored", "n_pretest", "stop_reason"])
+               + [f"se_{d}" for d in names] + ["n_scored", "n_pretest", "stop_reason", "lz"])
+    lz = result.lz if result.lz is not None else np.full(result.size, np.nan)
     for i in range(result.size):
         w.writerow([i, int(result.seeds[i])] + [f"{x:.6g}" for x in result.true_theta[i]]
                    + [f"{x:.6g}" for x in result.theta[i]] + [f"{x:.6g}" for x in result.se[i]]
-                   + [int(result.n_scored[i]), int(result.n_pretest[i]), str(result.stop_reason[i])])
+                   + [int(result.n_scored[i]), int(result.n_pretest[i]), str(result.stop_reason[i]),
+                      f"{lz[i]:.6g}" if np.isfinite(lz[i]) else ""])
     return buf.getvalue()
 
 
@@ -260,6 +352,10 @@ def summary_text(summary: dict) -> str:
                  "stops: " + ", ".join(f"{k} {v}" for k, v in summary["stop_reasons"].items()))
     lines.append(f"largest exposure rate {summary['exposure']['max_rate']:.3f}; "
                  f"items used {summary['exposure']['items_used']}")
+    fit = summary.get("person_fit")
+    if fit and fit["share_flagged"] is not None:
+        lines.append(f"person fit lz below {fit['threshold']:g}: {fit['share_flagged']:.1%} of the "
+                     f"{fit['computed']} examinees it was computed for")
     for c in summary.get("classification", []):
         lines.append(f"composite classified at the cut {c['cut']}: accuracy {c['accuracy']:.3f}")
     return "\n".join(lines)
