@@ -404,13 +404,16 @@ def test_m_step_gradient_matches_numerical_differentiation(model, categories, c,
 
 
 @pytest.mark.parametrize("dense", [True, False])
-def test_per_person_scores_sum_to_the_gradient_of_the_marginal_log_likelihood(dense, monkeypatch):
+@pytest.mark.parametrize("model", ["M2PL", "M3PL"])
+def test_per_person_scores_sum_to_the_gradient_of_the_marginal_log_likelihood(dense, model, monkeypatch):
     # Reference: central differences of the marginal log-likelihood (summed over persons)
-    # in each item parameter and in the correlation; the standard errors are built from
-    # these per-person scores (their cross-product), computed for complete data by one
-    # product per group and for sparse data answer by answer -- both are checked.
+    # in each item parameter (logit c of the M3PL included) and in the correlation; the
+    # standard errors are built from these per-person scores (their cross-product), computed
+    # for complete data by one product per group and for sparse data answer by answer --
+    # both are checked.
     truth = make_bank([[1.0, 0.0], [0.7, 0.0], [0.0, 1.3], [0.5, 0.9]], [[0.2], [-0.6], [0.4], [0.0]],
-                      names=("operations", "safety"))
+                      names=("operations", "safety"), model=model,
+                      c=[0.2, 0.15, 0.25, 0.2] if model == "M3PL" else None)
     table, _ = draw_answers(truth, 80, [[1.0, 0.3], [0.3, 1.0]], seed=9)
     keep = np.random.default_rng(3).random(table.person.size) < 0.7  # some answers missing
     table = ResponseTable.from_arrays(table.person_ids[table.person[keep]], table.item_ids[table.item[keep]],
