@@ -52,7 +52,9 @@ class MultidimensionalSimulationResult:
     """Outcomes of a multidimensional run (arrays over examinees, first axis).
 
     ``true_theta``, ``theta``, ``se``: (N, K); ``covariance`` (N, K, K); ``items`` (N, L)
-    in order given and ``responses`` (-1 padded); ``administered`` (n_items,).
+    in order given and ``responses`` (-1 padded); ``administered`` (n_items,); ``offered``
+    (n_items,): how often each item was selected, given or withheld by the Sympson-Hetter
+    lottery (as the one-dimensional driver's ``offered``).
     """
 
     design: Design
@@ -70,6 +72,7 @@ class MultidimensionalSimulationResult:
     items: np.ndarray
     responses: np.ndarray
     administered: np.ndarray
+    offered: np.ndarray | None = None
 
     @property
     def size(self) -> int:
@@ -77,7 +80,8 @@ class MultidimensionalSimulationResult:
 
 
 def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
-    """Simulate examinees ``start .. start + n - 1`` (true abilities (n, K)); plain arrays."""
+    """Simulate examinees ``start .. start + n - 1`` (true abilities (n, K)); plain arrays
+    (``withheld`` (n_items,): the chunk's Sympson-Hetter withholdings per item)."""
     bank = ctx.bank
     n = true_theta.shape[0]
     params = bank.multidimensional_params
@@ -85,7 +89,9 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
     keys = randomness.stream_key(seeds)
     # examinees with the same answers so far share a kernel row when the design draws
     # nothing at random (.shared_histories, as in the one-dimensional driver)
-    (state, _), chunk_rows = ChunkRows.start(ctx, keys)
+    (state, picked), chunk_rows = ChunkRows.start(ctx, keys)
+    withheld = np.zeros(bank.n_items, dtype=np.int64)
+    _count_withheld(withheld, picked)
     while True:
         examinees, at_row = chunk_rows.testing(state)
         if examinees.size == 0:
@@ -97,14 +103,22 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
         top = params.n_categories[item] - 1
         answers = np.minimum((np.cumsum(p, axis=1) < u[:, None]).sum(axis=1), top)
         rows, answers = chunk_rows.split(state, examinees, at_row, answers)
-        kernel.answer(ctx, state, rows, answers)
+        _count_withheld(withheld, kernel.answer(ctx, state, rows, answers))
     # every answer went through the kernel's answer: an EAP design's interim estimates are final
     est = final_estimates(ctx, state, chunk_rows.in_use(), interim_current=True)
     per_examinee = chunk_rows.of_examinees
     return dict(seeds=seeds, true_theta=true_theta, theta=per_examinee(est.theta), se=per_examinee(est.se),
                 covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
                 n_pretest=per_examinee(state.n_pretest).copy(), stop_reason=per_examinee(state.stop_reason).copy(),
-                items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy())
+                items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy(),
+                withheld=withheld)
+
+
+def _count_withheld(withheld: np.ndarray, picked) -> None:
+    """Add the (row, item) pairs the lottery withheld to the per-item counts.  A design with a
+    lottery draws at random, so its rows are never shared: a row is one examinee."""
+    if picked.withheld:
+        np.add.at(withheld, np.array([i for _, i in picked.withheld], dtype=np.int64), 1)
 
 
 def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, seed: int,
@@ -139,14 +153,15 @@ def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, see
         parts.append(run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size]))
         if progress is not None:
             progress(min(s + chunk_size, total), total)
-    joined = {key: np.concatenate([p[key] for p in parts], axis=0) for key in parts[0]} if parts else None
-    if joined is None:
+    if not parts:
         raise SimulationError("no examinees", "true_theta")
+    withheld = sum(p.pop("withheld") for p in parts)
+    joined = {key: np.concatenate([p[key] for p in parts], axis=0) for key in parts[0]}
     items = joined["items"]
     administered = np.bincount(items[items >= 0], minlength=bank.n_items)
     return MultidimensionalSimulationResult(design=design, bank=bank, seed=int(seed),
                                             dimension_names=tuple(bank.dimension_names),
-                                            administered=administered, **joined)
+                                            administered=administered, offered=administered + withheld, **joined)
 
 
 def _precision(true, est, se) -> dict:
