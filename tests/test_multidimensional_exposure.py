@@ -237,3 +237,6 @@ def test_simulate_draws_the_design_prior_by_default_and_the_readme_demo_is_uncha
     page = (tmp_path / "default" / "report.html").read_text()
     assert "True abilities drawn from" in page and "design prior: multivariate normal" in page
     assert math.isfinite(runs["default"]["true_correlation"])
+    from adaptive_engine.simulation.multidimensional_engine import summary_text
+
+    assert "true abilities: design prior: multivariate normal" in summary_text(runs["default"])

@@ -271,6 +271,10 @@ def summary_text(summary: dict) -> str:
         lines.append(f"{name:24} {m['bias']:8.3f} {m['rmse']:8.3f} {m['mean_se']:8.3f} "
                      f"{'' if ratio is None else f'{ratio:.3f}':>8} {'' if corr is None else f'{corr:.3f}':>8}")
     ln = summary["length"]
+    abilities = (summary.get("settings") or {}).get("abilities")
+    if abilities:
+        drawn = summary.get("true_correlation")
+        lines.append(f"true abilities: {abilities}" + ("" if drawn is None else f" (drawn correlation {drawn:.3f})"))
     lines.append(f"examinees {summary['examinees']}; items {ln['mean']:.1f} on average ({ln['min']}-{ln['max']}); "
                  "stops: " + ", ".join(f"{k} {v}" for k, v in summary["stop_reasons"].items()))
     lines.append(f"largest exposure rate {summary['exposure']['max_rate']:.3f}; "
