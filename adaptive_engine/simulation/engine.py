@@ -584,8 +584,9 @@ def _not_for_vectors(design, bank) -> SimulationError:
         f"the design runs on the multidimensional kernel (the bank has {bank.n_dimensions} ability dimension"
         f"{'s' if bank.n_dimensions != 1 else ''}, or the design asks for it); simulate it with simulate(design, "
         "bank, true_theta=(N, K) array, seed=...) or `adaptive-engine simulate`, tune it with "
-        "multidimensional_tuning.tune_multidimensional or `adaptive-engine tune`; exposure calibration and true "
-        "banks other than the operational one are not available for it", "design")
+        "multidimensional_tuning.tune_multidimensional or `adaptive-engine tune`, calibrate its exposure parameters "
+        "with exposure_tuning.calibrate_sympson_hetter_multidimensional or `adaptive-engine exposure calibrate`; "
+        "true banks other than the operational one are not available for it", "design")
 
 
 def _multidimensional(design, bank, *, true_theta, seed, true_bank, population, execution, loose, ctx):

@@ -60,7 +60,9 @@ class MultidimensionalSimulationResult:
     """Outcomes of a multidimensional run (arrays over examinees, first axis).
 
     ``true_theta``, ``theta``, ``se``: (N, K); ``covariance`` (N, K, K); ``items`` (N, L)
-    in order given and ``responses`` (-1 padded); ``administered`` (n_items,); ``lz`` (N,)
+    in order given and ``responses`` (-1 padded); ``administered`` (n_items,); ``offered``
+    (n_items,): how often each item was selected, given or withheld by the Sympson-Hetter
+    lottery (as the one-dimensional driver's ``offered``); ``lz`` (N,)
     the person fit at the final ability vector (NaN where it cannot be computed).
     """
 
@@ -80,6 +82,7 @@ class MultidimensionalSimulationResult:
     responses: np.ndarray
     administered: np.ndarray
     lz: np.ndarray | None = None
+    offered: np.ndarray | None = None
 
     @property
     def size(self) -> int:
@@ -87,7 +90,8 @@ class MultidimensionalSimulationResult:
 
 
 def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
-    """Simulate examinees ``start .. start + n - 1`` (true abilities (n, K)); plain arrays."""
+    """Simulate examinees ``start .. start + n - 1`` (true abilities (n, K)); plain arrays
+    (``withheld`` (n_items,): the chunk's Sympson-Hetter withholdings per item)."""
     bank = ctx.bank
     n = true_theta.shape[0]
     params = bank.multidimensional_params
@@ -95,7 +99,9 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
     keys = randomness.stream_key(seeds)
     # examinees with the same answers so far share a kernel row when the design draws
     # nothing at random (.shared_histories, as in the one-dimensional driver)
-    (state, _), chunk_rows = ChunkRows.start(ctx, keys)
+    (state, picked), chunk_rows = ChunkRows.start(ctx, keys)
+    withheld = np.zeros(bank.n_items, dtype=np.int64)
+    _count_withheld(withheld, picked)
     while True:
         examinees, at_row = chunk_rows.testing(state)
         if examinees.size == 0:
@@ -107,7 +113,7 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
         top = params.n_categories[item] - 1
         answers = np.minimum((np.cumsum(p, axis=1) < u[:, None]).sum(axis=1), top)
         rows, answers = chunk_rows.split(state, examinees, at_row, answers)
-        kernel.answer(ctx, state, rows, answers)
+        _count_withheld(withheld, kernel.answer(ctx, state, rows, answers))
     # every answer went through the kernel's answer: an EAP design's interim estimates are final
     est = final_estimates(ctx, state, chunk_rows.in_use(), interim_current=True)
     per_examinee = chunk_rows.of_examinees
@@ -115,7 +121,7 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
                 covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
                 n_pretest=per_examinee(state.n_pretest).copy(), stop_reason=per_examinee(state.stop_reason).copy(),
                 items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy(),
-                lz=per_examinee(est.lz))
+                lz=per_examinee(est.lz), withheld=withheld)
 
 
 #: Contexts built in a worker process, by run token (one run at a time per worker).
@@ -163,6 +169,13 @@ def _chunks(design, bank, ctx, *, seed, true_theta, chunk_size, workers, executo
     finally:
         if own:
             pool.shutdown(cancel_futures=True)
+
+
+def _count_withheld(withheld: np.ndarray, picked) -> None:
+    """Add the (row, item) pairs the lottery withheld to the per-item counts.  A design with a
+    lottery draws at random, so its rows are never shared: a row is one examinee."""
+    if picked.withheld:
+        np.add.at(withheld, np.array([i for _, i in picked.withheld], dtype=np.int64), 1)
 
 
 def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, seed: int,
@@ -225,12 +238,13 @@ def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, see
         parts.append(part)
         if progress is not None:
             progress(min(len(parts) * size, total), total)
+    withheld = sum(p.pop("withheld") for p in parts)
     joined = {key: np.concatenate([p[key] for p in parts], axis=0) for key in parts[0]}
     items = joined["items"]
     administered = np.bincount(items[items >= 0], minlength=bank.n_items)
     return MultidimensionalSimulationResult(design=design, bank=bank, seed=int(seed),
                                             dimension_names=tuple(bank.dimension_names),
-                                            administered=administered, **joined)
+                                            administered=administered, offered=administered + withheld, **joined)
 
 
 def _precision(true, est, se) -> dict:
@@ -348,6 +362,10 @@ def summary_text(summary: dict) -> str:
         lines.append(f"{name:24} {m['bias']:8.3f} {m['rmse']:8.3f} {m['mean_se']:8.3f} "
                      f"{'' if ratio is None else f'{ratio:.3f}':>8} {'' if corr is None else f'{corr:.3f}':>8}")
     ln = summary["length"]
+    abilities = (summary.get("settings") or {}).get("abilities")
+    if abilities:
+        drawn = summary.get("true_correlation")
+        lines.append(f"true abilities: {abilities}" + ("" if drawn is None else f" (drawn correlation {drawn:.3f})"))
     lines.append(f"examinees {summary['examinees']}; items {ln['mean']:.1f} on average ({ln['min']}-{ln['max']}); "
                  "stops: " + ", ".join(f"{k} {v}" for k, v in summary["stop_reasons"].items()))
     lines.append(f"largest exposure rate {summary['exposure']['max_rate']:.3f}; "
