@@ -30,13 +30,15 @@ import numpy as np
 
 from adaptive_engine.bank import load_bank
 from adaptive_engine.design.toml_file import read_design
-from adaptive_engine.kernel.decision_rules import DECISION_RULES_VERSION
+from adaptive_engine.kernel.decision_rules import DECISION_RULES_VERSION, RuleSet, current_rule_set
 from adaptive_engine.kernel.fingerprints import bank_fingerprint, design_fingerprint
-from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation.engine import run_chunk
 
 ROOT = Path(__file__).resolve().parents[1]
 GOLDEN_FILE = ROOT / "tests" / "data" / "golden_sequences.json"
+#: The golden sequences made under an earlier version N of the decision rules that this
+#: engine keeps installed: ``golden_sequences_version_N.json`` (kept as they were made).
+EARLIER_GOLDEN_FILE = ROOT / "tests" / "data" / "golden_sequences_version_{version}.json"
 SIMULATIONS = ROOT / "simulations"
 BANKS = ROOT / "item_banks"
 #: The run seed and the examinees' true abilities (low, near the licence cut, high).
@@ -92,8 +94,11 @@ def fingerprints(design_file: str, bank_file: str) -> dict:
     return {"design_fingerprint": design_fingerprint(design), "bank_fingerprint": bank_fingerprint(bank)}
 
 
-def compute_entry(design_file: str, bank_file: str | None = None) -> dict:
+def compute_entry(design_file: str, bank_file: str | None = None, *, rules: RuleSet | None = None) -> dict:
     """The golden entry of one shipped design, computed by the batch driver.
+
+    ``rules``: the rule set whose context the driver runs (default: the current one,
+    :data:`DECISION_RULES_VERSION`).
 
     Returns
     -------
@@ -107,7 +112,7 @@ def compute_entry(design_file: str, bank_file: str | None = None) -> dict:
     """
     bank_file = bank_file_for(design_file) if bank_file is None else bank_file
     design, bank = shipped_design(design_file), shipped_bank(bank_file)
-    ctx = build_context(design, bank)
+    ctx = (current_rule_set() if rules is None else rules).build_context(design, bank)
     if ctx.multidimensional is not None:
         return _multidimensional_entry(ctx, design_file, bank_file)
     abilities = TRUE_THETA[:FEWER_EXAMINEES.get(design_file, len(TRUE_THETA))]
