@@ -36,9 +36,6 @@ from adaptive_engine.simulation.engine import run_chunk
 
 ROOT = Path(__file__).resolve().parents[1]
 GOLDEN_FILE = ROOT / "tests" / "data" / "golden_sequences.json"
-#: The golden sequences made under an earlier version N of the decision rules that this
-#: engine keeps installed: ``golden_sequences_version_N.json`` (kept as they were made).
-EARLIER_GOLDEN_FILE = ROOT / "tests" / "data" / "golden_sequences_version_{version}.json"
 SIMULATIONS = ROOT / "simulations"
 BANKS = ROOT / "item_banks"
 #: The run seed and the examinees' true abilities (low, near the licence cut, high).
@@ -55,6 +52,13 @@ EXAMINEE_KEYS = ("true_theta", "seed", "stop_reason", "theta", "se", "at_or_abov
 DECIMALS = 6
 TOLERANCE = 1.5e-6
 REGENERATE = "PYTHONPATH=$PWD python3 tests/make_golden.py"
+
+
+def earlier_golden_file(version: int) -> Path:
+    """The golden sequences made under an earlier ``version`` of the decision rules that
+    this engine keeps installed (a copy of the golden file as it was under that version,
+    never regenerated: it proves the old rule set still decides as it did)."""
+    return GOLDEN_FILE.with_name(f"golden_sequences_version_{version}.json")
 
 
 def design_files() -> list[str]:

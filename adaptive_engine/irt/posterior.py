@@ -255,12 +255,11 @@ def multiply_and_summarize(posterior, rows, probability_table, log_table, items,
             sel = np.flatnonzero(items[i:j] >= 0)
             product[sel] *= probability_table[items[i:j][sel], categories[i:j][sel]]
         total = np.sum(product, axis=-1)
-        mean[i:j], sd[i:j] = _weighted_moments(product, total, grid)
         tiny = ~((total >= RESCUE_TOTAL) & (total < np.inf))  # NaN too
         if tiny.any():
             for k in np.flatnonzero(tiny):
-                _rescue(block[k], log_table, items[i + k], categories[i + k], grid, product[k:k + 1],
-                        total[k:k + 1], mean[i + k:i + k + 1], sd[i + k:i + k + 1])
+                product[k], total[k] = _rescued(block[k], log_table, items[i + k], categories[i + k])
+        mean[i:j], sd[i:j] = _weighted_moments(product, total, grid)
         if consecutive:
             np.divide(product, total[:, None], out=block)
         else:
@@ -269,21 +268,19 @@ def multiply_and_summarize(posterior, rows, probability_table, log_table, items,
     return mean, sd
 
 
-def _rescue(row, log_table, item, category, grid, product, total, mean, sd) -> None:
-    """Redo one scaled row's answer from its logarithm (a total too small to trust).
+def _rescued(row, log_table, item, category) -> tuple[np.ndarray, float]:
+    """One scaled row's answer redone from logarithms (its total was too small to trust).
 
-    ``row`` (G,) is the row before the answer; ``product`` (1, G), ``total``, ``mean`` and
-    ``sd`` (1,) receive the weights ``exp(x - max(x))`` of ``x = log(row) + log_table[item,
-    category]`` (no answer's row for ``item`` < 0), their sum and their moments.
+    ``row`` (G,) is the row before the answer.  Returns the weights ``exp(x - max(x))`` of
+    ``x = log(row) + log_table[item, category]`` (no answer's row for ``item`` < 0), and
+    their sum.  Points where the row is 0 stay 0.
     """
     with np.errstate(divide="ignore"):
-        x = np.log(row)[None, :]
+        x = np.log(row)
     if item >= 0:
         x = x + log_table[item, category]
-    w = np.exp(x - x.max(axis=-1, keepdims=True))
-    product[...] = w
-    total[...] = np.sum(w, axis=-1)
-    mean[...], sd[...] = _weighted_moments(w, total, grid)
+    w = np.exp(x - x.max())
+    return w, float(np.sum(w))
 
 
 def resolution_floor(grid) -> float:
