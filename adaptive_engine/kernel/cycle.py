@@ -22,7 +22,13 @@ import numpy as np
 
 from ..design.types import ExposureMethod, ExtremePatternMethod, ScoringMethod, SelectionCriterion
 from ..irt import models
-from ..irt.posterior import add_and_summarize, multiply_and_summarize, normal_log_prior, posterior_mean_sd, scaled_density
+from ..irt.posterior import (
+    add_and_summarize,
+    multiply_and_summarize,
+    normal_log_prior,
+    posterior_mean_sd,
+    scaled_density,
+)
 from . import random_streams as randomness
 from . import stopping
 from .eligibility import eligible
