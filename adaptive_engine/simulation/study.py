@@ -102,27 +102,29 @@ class _AdministrationWriter:
 
 
 def _nums(values, digits: int = 6) -> list[str]:
-    """:func:`_num` of every value of an array (one pass in Python over plain floats).
+    """:func:`_num` of every value of a 1-D array (in a few passes of Python's own formatting).
 
     With 1 to 10 digits, values from 1e-4 up to 10^(15 - digits) are written as ``"%.{digits}f"`` without its
     trailing zeros (one kept after the point): the same text as ``repr(round(x, digits))``
-    there, twice as fast.  Both round the exact binary value correctly to ``digits``
-    places, and ``repr`` of the nearest double to a decimal of at most 15 significant
-    digits is that decimal, in positional notation from 1e-4 on.  Others go the plain way.
+    there, several times as fast (all of them by one ``%`` of one format string).  Both
+    round the exact binary value correctly to ``digits`` places, and ``repr`` of the
+    nearest double to a decimal of at most 15 significant digits is that decimal, in
+    positional notation from 1e-4 on.  Others go the plain way.
     """
     isfinite = math.isfinite
+    array = np.asarray(values, dtype=float)
+    floats = array.tolist()
     if not 1 <= digits <= 10:  # a point to strip zeros back to
-        return ["" if not isfinite(x) else repr(round(x, digits)) for x in np.asarray(values, dtype=float).tolist()]
-    fmt = f"%.{digits}f"
-    high = 10.0 ** (15 - digits)
-    out = []
-    put = out.append
-    for x in np.asarray(values, dtype=float).tolist():
-        if 1e-4 <= abs(x) < high:
-            text = (fmt % x).rstrip("0")
-            put(text + "0" if text[-1] == "." else text)
-        else:
-            put("" if not isfinite(x) else repr(round(x, digits)))
+        return ["" if not isfinite(x) else repr(round(x, digits)) for x in floats]
+    texts = ((f"%.{digits}f\n" * len(floats)) % tuple(floats)).split("\n")
+    texts.pop()  # after the last line end
+    out = [t if t[-1] != "." else t + "0" for t in [t.rstrip("0") for t in texts]]
+    with np.errstate(invalid="ignore"):
+        size = np.abs(array)
+        other = ~((size >= 1e-4) & (size < 10.0 ** (15 - digits)))  # NaN too
+    for k in np.flatnonzero(other).tolist():
+        x = floats[k]
+        out[k] = "" if not isfinite(x) else repr(round(x, digits))
     return out
 
 
