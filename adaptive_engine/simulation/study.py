@@ -128,6 +128,17 @@ def _nums(values, digits: int = 6) -> list[str]:
     return out
 
 
+def _csv_fields(texts) -> dict:
+    """Each distinct text of ``texts`` as the csv module writes it as a field of a row
+    (quoted where it must be), by text."""
+    out = {}
+    for text in dict.fromkeys(texts):
+        buf = io.StringIO()
+        csv.writer(buf, lineterminator="\n").writerow(["", text])
+        out[text] = buf.getvalue()[1:-1]  # the leading "," and the line end off
+    return out
+
+
 def examinees_csv(result: SimulationResult) -> str:
     """Text of ``examinees.csv``."""
     cuts = result.design.reporting.cut_scores
@@ -137,13 +148,23 @@ def examinees_csv(result: SimulationResult) -> str:
     # the test length; then what this project adds
     w.writerow(["examinee", "true_theta", "theta", "se", "n_scored", "stop_reason", "n_pretest",
                 "scaled_score", "seed"] + [f"class_{c.name}" for c in cuts])
-    # column by column: the values of a 10,000-examinee run in a few passes
+    # column by column: the values of a 10,000-examinee run in a few passes.  Numbers never
+    # need quotes; the texts (stop reasons, class labels) are few, each written once by the
+    # csv module as it writes them in a row
+    reasons = [str(r) for r in result.stop_reason]
     labels = [[c.above if v == 1 else c.below if v == 0 else "" for v in result.at_or_above[:, k].tolist()]
               for k, c in enumerate(cuts)]
-    w.writerows(zip(range(result.size), _nums(result.true_theta), _nums(result.theta), _nums(result.se),
-                    np.asarray(result.n_scored, dtype=np.int64).tolist(), [str(r) for r in result.stop_reason],
-                    np.asarray(result.n_pretest, dtype=np.int64).tolist(), _nums(result.scaled_score),
-                    np.asarray(result.seeds, dtype=np.int64).tolist(), *labels))
+    field = _csv_fields(reasons + [label for column in labels for label in column])
+
+    def ints(values):
+        return [str(v) for v in np.asarray(values, dtype=np.int64).tolist()]
+
+    columns = [[str(k) for k in range(result.size)], _nums(result.true_theta), _nums(result.theta),
+               _nums(result.se), ints(result.n_scored), [field[r] for r in reasons], ints(result.n_pretest),
+               _nums(result.scaled_score), ints(result.seeds), *[[field[x] for x in column] for column in labels]]
+    if result.size:
+        buf.write("\n".join(map(",".join, zip(*columns))))
+        buf.write("\n")
     return buf.getvalue()
 
 
