@@ -242,13 +242,16 @@ def multiply_and_summarize(posterior, rows, probability_table, log_table, items,
     step = max(1, BLOCK_VALUES // max(1, posterior.shape[-1]))
     consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
     every = bool(np.all(items >= 0))
+    width = probability_table.shape[1]
+    by_answer = probability_table.reshape(-1, probability_table.shape[-1])  # (n C, G), a view
     for i in range(0, r_n, step):
         j = min(i + step, r_n)
         # the rows before the answer stay as they are until the product is stored: a row to
         # rescue is redone from them
         block = posterior[rows[i] : rows[i] + (j - i)] if consecutive else posterior[rows[i:j]]
         if every:
-            product = probability_table[items[i:j], categories[i:j]]  # a new array: the gather
+            # a new array: the gather (one index into the table's rows of (item, category))
+            product = by_answer.take(items[i:j] * width + categories[i:j], axis=0)
             product *= block
         else:
             product = block.copy()
