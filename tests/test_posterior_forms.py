@@ -170,3 +170,41 @@ def test_multiplying_in_blocks_equals_the_whole_batch_and_skips_unscored_answers
 def test_an_unknown_form_is_refused():
     with pytest.raises(ValueError, match="posterior form 'linear'"):
         posterior.posterior_weights(np.ones((1, 3)), "linear")
+
+
+def test_a_bank_too_large_for_the_probability_table_gets_the_same_tests(monkeypatch):
+    # Without the table (a very large bank) the update takes exp of the log rows it needs:
+    # numpy's exp gives an element the same value in any array, so every decision, estimate
+    # and posterior row is the same, in a batch and one at a time.
+    from adaptive_engine.kernel import prepared
+
+    design = golden.shipped_design("licensing_exam.toml")
+    bank = golden.shipped_bank(golden.bank_file_for("licensing_exam.toml"))
+    keys = random_streams.stream_key(np.arange(6, dtype=np.uint64) + 3)
+    answers_of = np.random.default_rng(12)
+    draws = answers_of.random((40, 6))
+
+    def run(ctx, rows):
+        state, _ = cycle.start(ctx, keys[rows])
+        step = 0
+        while not state.done.all():
+            going = np.flatnonzero(~state.done)
+            cycle.answer(ctx, state, going, (draws[step, rows[going]] < 0.6).astype(np.int64))
+            step += 1
+        return state
+
+    with_table = build_context(design, bank)
+    kept = with_table.probability_table_by_category
+    assert kept is not None
+    want = run(with_table, np.arange(6))
+    monkeypatch.setattr(prepared, "PROBABILITY_TABLE_BYTES", 0)
+    without = build_context(design, bank)
+    assert without.probability_table_by_category is None
+    for rows in (np.arange(6), np.array([4])):
+        got = run(without, rows)
+        for name in ("items", "responses", "theta", "se", "stop_reason", "log_post"):
+            assert np.array_equal(getattr(got, name), getattr(want, name)[rows]), name
+    # the premise, checked directly: exp of gathered rows equals the rows of exp of the table
+    table = with_table.log_table_by_category
+    idx = np.random.default_rng(3).integers(0, table.shape[0], 50)
+    assert np.array_equal(np.exp(table[idx, 1]), kept[idx, 1])

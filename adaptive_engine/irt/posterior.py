@@ -226,6 +226,8 @@ def multiply_and_summarize(posterior, rows, probability_table, log_table, items,
         Distinct rows of ``posterior``.
     probability_table, log_table : float arrays (n, C, G)
         Probability of each item's categories on the grid, and its logarithm.
+        ``probability_table`` may be None: the rows an answer needs are then ``exp`` of the
+        log table's rows (the same values, for a bank too large to keep both tables).
     items, categories : int arrays (R,)
 
     Returns
@@ -242,8 +244,10 @@ def multiply_and_summarize(posterior, rows, probability_table, log_table, items,
     step = max(1, BLOCK_VALUES // max(1, posterior.shape[-1]))
     consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
     every = bool(np.all(items >= 0))
-    width = probability_table.shape[1]
-    by_answer = probability_table.reshape(-1, probability_table.shape[-1])  # (n C, G), a view
+    exponentiate = probability_table is None
+    source = log_table if exponentiate else probability_table
+    width = source.shape[1]
+    by_answer = source.reshape(-1, source.shape[-1])  # (n C, G), a view
     for i in range(0, r_n, step):
         j = min(i + step, r_n)
         # the rows before the answer stay as they are until the product is stored: a row to
@@ -252,11 +256,16 @@ def multiply_and_summarize(posterior, rows, probability_table, log_table, items,
         if every:
             # a new array: the gather (one index into the table's rows of (item, category))
             product = by_answer.take(items[i:j] * width + categories[i:j], axis=0)
+            if exponentiate:
+                np.exp(product, out=product)
             product *= block
         else:
             product = block.copy()
             sel = np.flatnonzero(items[i:j] >= 0)
-            product[sel] *= probability_table[items[i:j][sel], categories[i:j][sel]]
+            factor = by_answer.take(items[i:j][sel] * width + categories[i:j][sel], axis=0)
+            if exponentiate:
+                np.exp(factor, out=factor)
+            product[sel] *= factor
         total = np.sum(product, axis=-1)
         tiny = ~((total >= RESCUE_TOTAL) & (total < np.inf))  # NaN too
         if tiny.any():

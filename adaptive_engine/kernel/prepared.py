@@ -202,6 +202,14 @@ def information_bound(params: models.ItemParameters, lo: float, hi: float) -> np
     return np.where(params.family == models.DICHOTOMOUS, bound, np.inf)
 
 
+#: The largest table of category probabilities a context keeps beside the log table (bytes):
+#: 64 MB, a 3PL bank of about 33,000 items on 121 grid points.  Larger banks multiply the
+#: scaled posterior by ``exp`` of the log rows an answer needs (numpy's ``exp`` gives each
+#: element the same value in any array, so the products are the same), which keeps a
+#: 100,000-item bank's memory to its log table.
+PROBABILITY_TABLE_BYTES = 64 << 20
+
+
 @attrs.frozen(eq=False)
 class TestContext:
     """Everything fixed for one design on one bank.  Build with :func:`build_context`."""
@@ -245,10 +253,14 @@ class TestContext:
         return self.bank.n_items
 
     @property
-    def probability_table_by_category(self) -> np.ndarray:
+    def probability_table_by_category(self) -> np.ndarray | None:
         """``exp`` of :attr:`log_table_by_category`, (n, C, G), read-only: the factors of the
-        scaled posterior's update.  Made on first use and kept with the bank, per grid."""
+        scaled posterior's update.  Made on first use and kept with the bank, per grid; None
+        when it would take more than :data:`PROBABILITY_TABLE_BYTES` (a very large bank):
+        the update then takes ``exp`` of the log rows it needs, the same values."""
         log_table = self.log_table_by_category
+        if log_table.nbytes > PROBABILITY_TABLE_BYTES:
+            return None
 
         def make():
             out = np.exp(log_table)
