@@ -290,8 +290,11 @@ def _update_estimate(ctx, state, rows, scored_item, responses) -> None:
     """Add the scored answers to the posterior, then the interim estimate (the design's method)."""
     sc = ctx.design.scoring
     if ctx.posterior_form == "scaled":
-        eap, sd = multiply_and_summarize(state.log_post, rows, ctx.probability_table_by_category,
-                                         ctx.log_table_by_category, scored_item, responses, ctx.grid)
+        # one row (a live answer) takes exp of its log row: no table of the whole bank made
+        # for it (the same values, prepared.PROBABILITY_TABLE_BYTES says why)
+        table = ctx.probability_table_by_category if rows.size > 1 else None
+        eap, sd = multiply_and_summarize(state.log_post, rows, table, ctx.log_table_by_category, scored_item,
+                                         responses, ctx.grid)
     else:
         eap, sd = add_and_summarize(state.log_post, rows, ctx.log_table_by_category, scored_item, responses,
                                     ctx.grid)
