@@ -30,9 +30,10 @@ Versions:
    installed: its contexts send every shadow test to the general solver.
 3. The posterior on the grid is held as a density scaled to sum 1 instead of a log density
    (``TestContext.posterior_form`` ``"scaled"``; :mod:`adaptive_engine.irt.posterior`): an
-   answer multiplies the row by the answer's probability row (a table of ``exp`` of the log
-   table), the EAP and posterior SD are read off the product and the row is divided by its
-   sum; a row whose sum falls below 1e-250 is redone from its logarithm.  The EAP and SD
+   answer multiplies the row by the answer's probability row (``exp`` of the log table's
+   row, kept as a table of the bank for batches up to 64 MB of it), the EAP and posterior SD
+   are read off the product and the row is divided by its sum; a row whose sum falls below
+   1e-250 is redone from its logarithm.  The EAP and SD
    agree with version 2's to about 1e-12 (rounding in the last bits), so an item or stop
    changes only where two candidates or a stopping threshold are that close.  Versions 1
    and 2 stay installed with log-form contexts (:func:`.prepared.with_log_posterior`).
