@@ -31,7 +31,8 @@ Versions:
 3. The posterior on the grid is held as a density scaled to sum 1 instead of a log density
    (``TestContext.posterior_form`` ``"scaled"``; :mod:`adaptive_engine.irt.posterior`): an
    answer multiplies the row by the answer's probability row (``exp`` of the log table's
-   row, kept as a table of the bank for batches up to 64 MB of it), the EAP and posterior SD
+   row: a table kept for banks whose table is at most 64 MB, used by batches of more than
+   one row), the EAP and posterior SD
    are read off the product and the row is divided by its sum; a row whose sum falls below
    1e-250 is redone from its logarithm.  The EAP and SD
    agree with version 2's to about 1e-12 (rounding in the last bits), so an item or stop
