@@ -32,10 +32,9 @@ Versions:
    (``TestContext.posterior_form`` ``"scaled"``; :mod:`adaptive_engine.irt.posterior`): an
    answer multiplies the row by the answer's probability row (``exp`` of the log table's
    row: a table kept for banks whose table is at most 64 MB, used by batches of more than
-   one row), the EAP and posterior SD
-   are read off the product and the row is divided by its sum; a row whose sum falls below
-   1e-250 is redone from its logarithm.  The EAP and SD
-   agree with version 2's to about 1e-12 (rounding in the last bits), so an item or stop
+   one row), the EAP and posterior SD are read off the product and the row is divided by
+   its sum; a row whose sum falls below 1e-250 is redone from its logarithm.  The EAP and
+   SD agree with version 2's to about 1e-12 (rounding in the last bits), so an item or stop
    changes only where two candidates or a stopping threshold are that close.  Versions 1
    and 2 stay installed with log-form contexts (:func:`.prepared.with_log_posterior`).
 """
