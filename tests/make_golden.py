@@ -30,9 +30,8 @@ import numpy as np
 
 from adaptive_engine.bank import load_bank
 from adaptive_engine.design.toml_file import read_design
-from adaptive_engine.kernel.decision_rules import DECISION_RULES_VERSION
+from adaptive_engine.kernel.decision_rules import DECISION_RULES_VERSION, RuleSet, current_rule_set
 from adaptive_engine.kernel.fingerprints import bank_fingerprint, design_fingerprint
-from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation.engine import run_chunk
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -53,6 +52,13 @@ EXAMINEE_KEYS = ("true_theta", "seed", "stop_reason", "theta", "se", "at_or_abov
 DECIMALS = 6
 TOLERANCE = 1.5e-6
 REGENERATE = "PYTHONPATH=$PWD python3 tests/make_golden.py"
+
+
+def earlier_golden_file(version: int) -> Path:
+    """The golden sequences made under an earlier ``version`` of the decision rules that
+    this engine keeps installed (a copy of the golden file as it was under that version,
+    never regenerated: it proves the old rule set still decides as it did)."""
+    return GOLDEN_FILE.with_name(f"golden_sequences_version_{version}.json")
 
 
 def design_files() -> list[str]:
@@ -92,8 +98,11 @@ def fingerprints(design_file: str, bank_file: str) -> dict:
     return {"design_fingerprint": design_fingerprint(design), "bank_fingerprint": bank_fingerprint(bank)}
 
 
-def compute_entry(design_file: str, bank_file: str | None = None) -> dict:
+def compute_entry(design_file: str, bank_file: str | None = None, *, rules: RuleSet | None = None) -> dict:
     """The golden entry of one shipped design, computed by the batch driver.
+
+    ``rules``: the rule set whose context the driver runs (default: the current one,
+    :data:`DECISION_RULES_VERSION`).
 
     Returns
     -------
@@ -107,7 +116,7 @@ def compute_entry(design_file: str, bank_file: str | None = None) -> dict:
     """
     bank_file = bank_file_for(design_file) if bank_file is None else bank_file
     design, bank = shipped_design(design_file), shipped_bank(bank_file)
-    ctx = build_context(design, bank)
+    ctx = (current_rule_set() if rules is None else rules).build_context(design, bank)
     if ctx.multidimensional is not None:
         return _multidimensional_entry(ctx, design_file, bank_file)
     abilities = TRUE_THETA[:FEWER_EXAMINEES.get(design_file, len(TRUE_THETA))]

@@ -6,6 +6,11 @@ reason, final estimate and SE, classifications; with the decision rules version 
 design's and bank's fingerprints.  The batch driver must reproduce every examinee, and a
 live session (the other driver) one examinee per design, answer by answer.
 
+Sessions started under an earlier version of the rules that this engine keeps installed
+finish under it, so ``tests/data/golden_sequences_version_N.json`` (the golden file as it
+was under version N, kept unchanged) must be reproduced by ``RULE_SETS[N]``: the batch
+driver for every design, a live session resumed under that version for one.
+
 The rule the messages enforce: same fingerprints and other decisions means the decision
 rules changed (bump ``DECISION_RULES_VERSION`` and regenerate); another fingerprint means
 the design or bank file changed (regenerate that entry).  The reference is the engine's own
@@ -70,6 +75,66 @@ def test_a_live_session_gives_the_golden_sequence(design_file):
             reply = submit_answer(store, reply["session_id"], item_id, response, cache=cache)
         assert reply["done"], f"{design_file}: the live session did not stop where the golden sequence does"
         result = session_result(store, reply["session_id"])
+    got = dict(examinee, stop_reason=result["stop_reason"], theta=result["theta"], se=result["se"])
+    assert golden.examinee_differences(examinee, got) == []
+
+
+# ----------------------------------------------------------------------------------------
+# earlier versions still installed decide as they did
+
+
+EARLIER = {v: golden.read_golden(golden.earlier_golden_file(v))
+           for v in decision_rules.installed_versions() if golden.earlier_golden_file(v).exists()}
+
+
+def test_the_previous_version_keeps_its_golden_sequences():
+    previous = decision_rules.DECISION_RULES_VERSION - 1
+    assert previous in EARLIER, f"no {golden.earlier_golden_file(previous).name}: copy the golden file before a bump"
+    for version, doc in EARLIER.items():
+        assert doc["decision_rules_version"] == version
+
+
+def _earlier_entry(version: int, design_file: str) -> dict:
+    """The entry of ``design_file`` in the golden file of ``version``; skips when the design or
+    its bank changed since (the old sequences then say nothing about the rules)."""
+    entry = EARLIER[version]["designs"].get(design_file)
+    if entry is None:
+        pytest.skip(f"{design_file} has no sequences of version {version} (a newer design)")
+    if golden.fingerprints(design_file, entry["bank"]) != {
+            key: entry[key] for key in ("design_fingerprint", "bank_fingerprint")}:
+        pytest.skip(f"{design_file} or its bank changed since version {version}'s golden sequences were made")
+    return entry
+
+
+@pytest.mark.parametrize("version", sorted(EARLIER))
+@pytest.mark.parametrize("design_file", golden.design_files())
+def test_an_earlier_rule_set_gives_its_golden_sequences(version, design_file):
+    entry = _earlier_entry(version, design_file)
+    computed = golden.compute_entry(design_file, entry["bank"], rules=decision_rules.RULE_SETS[version])
+    problems = [f"examinee with true theta {want['true_theta']}: {d}"
+                for want, got in zip(entry["examinees"], computed["examinees"])
+                for d in golden.examinee_differences(want, got)]
+    assert not problems, f"{design_file} under decision rules version {version}:\n" + "\n".join(problems)
+
+
+def test_a_live_session_resumed_under_an_earlier_version_gives_its_golden_sequence():
+    # a session pinned to the previous version replays and answers under that version's rules
+    version = decision_rules.DECISION_RULES_VERSION - 1
+    design_file = "licensing_exam.toml"
+    entry = _earlier_entry(version, design_file)
+    design, bank = golden.shipped_design(design_file), golden.shipped_bank(entry["bank"])
+    examinee = max(entry["examinees"], key=lambda e: len(e["items"]))
+    with open_store(":memory:") as store:
+        reply = start_session(store, design, bank, seed=examinee["seed"], session_id="old", cache=ProcessCache())
+        with store.writing():  # as if started by an engine of that version (the first item is the same)
+            store.update_session("old", {"decision_rules_version": version})
+        cache = ProcessCache()  # nothing of the start cached: the first answer replays under that version
+        for k, (item_id, response) in enumerate(zip(examinee["items"], examinee["responses"])):
+            assert reply["item_id"] == item_id, f"version {version}, live session, item {k + 1}"
+            # now and then a process that must replay the session's answers first
+            reply = submit_answer(store, "old", item_id, response, cache=ProcessCache() if k % 7 == 3 else cache)
+        assert reply["done"] and show_session(store, "old")["decision_rules_version"] == version
+        result = session_result(store, "old")
     got = dict(examinee, stop_reason=result["stop_reason"], theta=result["theta"], se=result["se"])
     assert golden.examinee_differences(examinee, got) == []
 

@@ -26,7 +26,7 @@ from adaptive_engine.design import (
 from adaptive_engine.kernel import cycle as kernel
 from adaptive_engine.kernel import random_streams as randomness
 from adaptive_engine.kernel import selection
-from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.kernel.prepared import build_context, with_log_posterior
 from kernel_support import AREAS, run_batch, structured_bank
 
 
@@ -59,11 +59,17 @@ def test_each_item_is_the_argmax_of_information_at_the_current_estimate():
     assert checked == 60 * 12
 
 
-def test_interim_eap_matches_adaptive_quadrature():
+#: The context of each form of the posterior: scaled (decision rules version 3 on), log (1, 2).
+FORMS = {"scaled": lambda ctx: ctx, "log": with_log_posterior}
+
+
+@pytest.mark.parametrize("form", sorted(FORMS))
+def test_interim_eap_matches_adaptive_quadrature(form):
     # Reference: Bock & Mislevy (1982) EAP = int t L(t) phi(t) dt / int L(t) phi(t) dt;
     # oracle: scipy.integrate.quad.
     bank = structured_bank(2, 90, pretest=0, enemies=False, sets=False)
-    ctx = build_context(Design(stopping=Stopping(min_items=10, max_items=10)), bank)
+    ctx = FORMS[form](build_context(Design(stopping=Stopping(min_items=10, max_items=10)), bank))
+    assert ctx.posterior_form == form
     state, _ = run_batch(ctx, np.array([-1.0, 0.3, 1.8]), seed=4)
     for r in range(3):
         items = state.items[r, : state.n_given[r]]
@@ -114,12 +120,14 @@ DESIGNS = {
 }
 
 
+@pytest.mark.parametrize("form", sorted(FORMS))
 @pytest.mark.parametrize("name", sorted(DESIGNS))
-def test_batch_equals_one_at_a_time(name):
+def test_batch_equals_one_at_a_time(name, form):
     # "One kernel, two drivers": the same examinee gets identical items and estimates
-    # alone (a live session's batch of one) and inside a batch.
+    # alone (a live session's batch of one) and inside a batch, in either form of the
+    # posterior.
     bank = structured_bank(3, 100, polytomous=6)
-    ctx = build_context(DESIGNS[name], bank)
+    ctx = FORMS[form](build_context(DESIGNS[name], bank))
     theta = np.random.default_rng(11).normal(size=12)
     batch, _ = run_batch(ctx, theta, seed=5)
     for i in (0, 5, 11):
@@ -537,7 +545,8 @@ def test_a_live_design_batch_equals_one_at_a_time(blueprint):
         assert single.stop_reason[0] == batch.stop_reason[i]
 
 
-def test_a_large_batch_equals_one_at_a_time(monkeypatch):
+@pytest.mark.parametrize("form", sorted(FORMS))
+def test_a_large_batch_equals_one_at_a_time(monkeypatch, form):
     # A batch above BIT_SCAN_ROWS, with posterior blocks of a few rows: the paths of large
     # batches give each examinee what a batch of one gives.
     from adaptive_engine.irt import posterior
@@ -545,7 +554,7 @@ def test_a_large_batch_equals_one_at_a_time(monkeypatch):
     monkeypatch.setattr(posterior, "BLOCK_VALUES", 7 * 121)
     bank = structured_bank(3, 100)
     design = Design(stopping=Stopping(min_items=6, max_items=6))
-    ctx = build_context(design, bank)
+    ctx = FORMS[form](build_context(design, bank))
     theta = np.random.default_rng(25).normal(size=selection.BIT_SCAN_ROWS + 6)
     batch, _ = run_batch(ctx, theta, seed=9)
     for i in (0, 33, theta.size - 1):

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import io
 import json
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -611,6 +612,35 @@ def test_numbers_in_the_study_tables_are_written_as_their_rounded_repr():
     for digits in (0, 2, 6):
         want = ["" if not np.isfinite(x) else repr(round(x, digits)) for x in values.tolist()]
         assert _nums(values, digits) == want
+
+
+def test_the_examinees_table_is_what_the_csv_module_writes():
+    # examinees.csv is joined column by column; the reference writes the same rows with the
+    # csv module (Python's standard library) and the numbers as repr(round(x, 6)), with
+    # class labels that need quotes (a comma, a quote, a line end)
+    from adaptive_engine.design import CutScore, Reporting
+    from adaptive_engine.simulation.study import examinees_csv
+
+    cuts = (CutScore(name="pass", theta=0.0, above='pass, "yes"', below="fail"),
+            CutScore(name="merit", theta=1.0, above="merit\nline", below='"no" merit'))
+    design = Design(stopping=Stopping(min_items=4, max_items=6, se=0.5), reporting=Reporting(cut_scores=cuts))
+    result = simulation.simulate(design, small_bank(), true_theta=np.linspace(-2.5, 2.5, 9), seed=4)
+
+    def num(x):
+        return "" if not np.isfinite(x) else repr(round(float(x), 6))
+
+    rows = [["examinee", "true_theta", "theta", "se", "n_scored", "stop_reason", "n_pretest", "scaled_score", "seed",
+             "class_pass", "class_merit"]]
+    for i in range(result.size):
+        labels = [c.above if result.at_or_above[i, k] == 1 else c.below if result.at_or_above[i, k] == 0 else ""
+                  for k, c in enumerate(cuts)]
+        rows.append([i, num(result.true_theta[i]), num(result.theta[i]), num(result.se[i]), int(result.n_scored[i]),
+                     str(result.stop_reason[i]), int(result.n_pretest[i]), num(result.scaled_score[i]),
+                     int(result.seeds[i]), *labels])
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="\n").writerows(rows)
+    assert {"pass, \"yes\"", "fail"} <= {r[9] for r in rows[1:]}  # both labels written
+    assert examinees_csv(result) == buf.getvalue()
 
 
 @pytest.mark.parametrize("case", ["blueprint", "polytomous"])

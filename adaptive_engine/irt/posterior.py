@@ -1,9 +1,21 @@
-"""Ability held as a posterior on a quadrature grid (log density), for a batch of examinees.
+"""Ability held as a posterior on a quadrature grid, for a batch of examinees.
 
-The decision kernel keeps one row of log posterior density per examinee, shape (B, G), and
-adds the log probability of each observed response (looked up in the bank's cached
-(n_items, G, C) table).  EAP and its posterior SD are read off the grid; MLE, MAP and WLE
-are refined from it by Newton steps in :mod:`adaptive_engine.irt.estimation`.
+The decision kernel keeps one posterior row per examinee, shape (B, G), in one of two
+forms (the context's ``posterior_form``, set by the decision rules version):
+
+* ``"log"``: the log posterior density (up to a constant).  An answer adds the log
+  probability of the observed response (a row of the bank's cached (n_items, C, G) table),
+  and the moments weigh the grid with ``exp(row - max)`` (:func:`add_and_summarize`).
+  Decision rules versions 1 and 2.
+* ``"scaled"``: the posterior density divided by its sum over the grid (each row sums to
+  1).  An answer multiplies the row by the response's probability row (``exp`` of the same
+  table), the moments are read off the product, and the product is divided by its sum
+  (:func:`multiply_and_summarize`): no ``exp`` and no maximum per answer.  A row whose sum
+  falls below :data:`RESCUE_TOTAL` is redone from its logarithm, so it never underflows to
+  zeros.  Version 3 on.
+
+EAP and its posterior SD are read off the grid; MLE, MAP and WLE are refined from it by
+Newton steps in :mod:`adaptive_engine.irt.estimation`.
 
 Ability is one-dimensional today; it is persisted as a list (``[theta]``) so that a
 multidimensional model can be added without changing stored sessions.
@@ -44,10 +56,43 @@ def normal_log_prior(grid, mean=0.0, sd=1.0) -> np.ndarray:
     return out
 
 
-def posterior_weights(log_post) -> np.ndarray:
-    """Normalised posterior weights on the grid, shape like ``log_post`` (.., G)."""
-    w = _relative_density(log_post)
+#: The two forms a posterior row can take (see the module docstring).
+POSTERIOR_FORMS = ("log", "scaled")
+
+
+def posterior_weights(posterior, form: str = "log") -> np.ndarray:
+    """Normalised posterior weights on the grid, shape like ``posterior`` (.., G).
+
+    ``posterior`` holds rows in ``form``, ``"log"`` (log density) or ``"scaled"`` (density
+    scaled to sum 1: divided by its sum once more, which undoes the rounding of the sum).
+    """
+    w = _relative_density(posterior) if _form(form) == "log" else np.asarray(posterior, dtype=float)
     return w / w.sum(axis=-1, keepdims=True)
+
+
+def _form(form: str) -> str:
+    if form not in POSTERIOR_FORMS:
+        raise ValueError(f"posterior form {form!r}: expected one of {POSTERIOR_FORMS}")
+    return form
+
+
+def scaled_density(log_post) -> np.ndarray:
+    """The scaled form of log posterior rows: ``w = exp(log_post - row max)``, ``w / sum(w)``.
+
+    Parameters
+    ----------
+    log_post : array, shape (..., G)
+
+    Returns
+    -------
+    array, shape (..., G)
+        Each row sums to 1 (to rounding); points more than about 745 below the row's
+        maximum in log density underflow to 0.
+    """
+    log_post = np.asarray(log_post, dtype=float)
+    w = np.exp(log_post - log_post.max(axis=-1, keepdims=True))
+    w /= w.sum(axis=-1, keepdims=True)
+    return w
 
 
 def _relative_density(log_post) -> np.ndarray:
@@ -62,12 +107,14 @@ def _relative_density(log_post) -> np.ndarray:
     return np.exp(w, out=w)
 
 
-def posterior_mean_sd(log_post, grid) -> tuple[np.ndarray, np.ndarray]:
-    """EAP (posterior mean) and posterior SD from a log posterior on ``grid``.
+def posterior_mean_sd(log_post, grid, form: str = "log") -> tuple[np.ndarray, np.ndarray]:
+    """EAP (posterior mean) and posterior SD from a posterior on ``grid``.
 
     Parameters
     ----------
     log_post : array, shape (..., G)
+        The posterior in ``form``: ``"log"``, a log density; ``"scaled"``, a density
+        (scaled to sum 1, or any positive multiple: the moments divide by the row's sum).
     grid : array, shape (G,)
 
     Notes
@@ -84,8 +131,12 @@ def posterior_mean_sd(log_post, grid) -> tuple[np.ndarray, np.ndarray]:
     """
     grid = np.asarray(grid, dtype=float)
     # unnormalised weights; dividing the moments once saves a pass over (B, G)
-    w = _relative_density(log_post)
-    total = np.sum(w, axis=-1)
+    w = _relative_density(log_post) if _form(form) == "log" else np.asarray(log_post, dtype=float)
+    return _weighted_moments(w, np.sum(w, axis=-1), grid)
+
+
+def _weighted_moments(w, total, grid) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and SD (floored) of ``grid`` under weights ``w`` (..., G) whose sums are ``total``."""
     mean = np.einsum("...g,g->...", w, grid) / total
     second = np.einsum("...g,g->...", w, grid * grid) / total
     return mean, np.maximum(np.sqrt(np.maximum(second - mean * mean, 0.0)), resolution_floor(grid))
@@ -141,6 +192,107 @@ def add_and_summarize(log_post, rows, table, items, categories, grid) -> tuple[n
             log_post[rows[i:j]] = block
         mean[i:j], sd[i:j] = posterior_mean_sd(block, grid)
     return mean, sd
+
+
+#: A scaled row whose sum after an answer is below this (or not finite) is redone from its
+#: logarithm (:func:`multiply_and_summarize`).  A row sums to 1 before the answer, so its
+#: sum after it is the answer's predictive probability: below 1e-250 only for an answer
+#: the posterior all but rules out, long before the product underflows (1e-308) and
+#: takes the row's shape with it.
+RESCUE_TOTAL = 1e-250
+
+
+def multiply_and_summarize(posterior, rows, probability_table, log_table, items, categories,
+                           grid) -> tuple[np.ndarray, np.ndarray]:
+    """Multiply answers' likelihoods into rows of a scaled batch posterior; their mean and SD.
+
+    The scaled form's :func:`add_and_summarize`.  For each k the row ``posterior[rows[k]]``
+    (summing to 1) is multiplied by ``probability_table[items[k], categories[k]]``
+    (nothing where ``items[k] < 0``); the product's sum ``total``, its mean and SD (sums of
+    the product against the grid and its squares, divided by ``total``, the SD floored as
+    in :func:`posterior_mean_sd`) are taken, and the product divided by ``total`` is stored
+    as the new row.  A row whose ``total`` is below :data:`RESCUE_TOTAL` or not finite is
+    redone on its own from its logarithm: ``x = log(row) + log_table[item, category]``,
+    weights ``exp(x - max(x))``, their moments, and the weights divided by their sum.
+
+    Every sum is taken within one row, so a row's values do not depend on the batch it is
+    in; the rows go through in blocks that fit in cache.
+
+    Parameters
+    ----------
+    posterior : float array (B, G), changed in place
+        Scaled rows.
+    rows : int array (R,)
+        Distinct rows of ``posterior``.
+    probability_table, log_table : float arrays (n, C, G)
+        Probability of each item's categories on the grid, and its logarithm.
+        ``probability_table`` may be None: the rows an answer needs are then ``exp`` of the
+        log table's rows (the same values, for a bank too large to keep both tables).
+    items, categories : int arrays (R,)
+
+    Returns
+    -------
+    mean, sd : float arrays (R,)
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    r_n = rows.size
+    mean = np.empty(r_n)
+    sd = np.empty(r_n)
+    if r_n == 0:
+        return mean, sd
+    grid = np.asarray(grid, dtype=float)
+    step = max(1, BLOCK_VALUES // max(1, posterior.shape[-1]))
+    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    every = bool(np.all(items >= 0))
+    exponentiate = probability_table is None
+    source = log_table if exponentiate else probability_table
+    width = source.shape[1]
+    by_answer = source.reshape(-1, source.shape[-1])  # (n C, G), a view
+    for i in range(0, r_n, step):
+        j = min(i + step, r_n)
+        # the rows before the answer stay as they are until the product is stored: a row to
+        # rescue is redone from them
+        block = posterior[rows[i] : rows[i] + (j - i)] if consecutive else posterior[rows[i:j]]
+        if every:
+            # a new array: the gather (one index into the table's rows of (item, category))
+            product = by_answer.take(items[i:j] * width + categories[i:j], axis=0)
+            if exponentiate:
+                np.exp(product, out=product)
+            product *= block
+        else:
+            product = block.copy()
+            sel = np.flatnonzero(items[i:j] >= 0)
+            factor = by_answer.take(items[i:j][sel] * width + categories[i:j][sel], axis=0)
+            if exponentiate:
+                np.exp(factor, out=factor)
+            product[sel] *= factor
+        total = np.sum(product, axis=-1)
+        tiny = ~((total >= RESCUE_TOTAL) & (total < np.inf))  # NaN too
+        if tiny.any():
+            for k in np.flatnonzero(tiny):
+                product[k], total[k] = _rescued(block[k], log_table, items[i + k], categories[i + k])
+        mean[i:j], sd[i:j] = _weighted_moments(product, total, grid)
+        if consecutive:
+            np.divide(product, total[:, None], out=block)
+        else:
+            np.divide(product, total[:, None], out=product)
+            posterior[rows[i:j]] = product
+    return mean, sd
+
+
+def _rescued(row, log_table, item, category) -> tuple[np.ndarray, float]:
+    """One scaled row's answer redone from logarithms (its total was too small to trust).
+
+    ``row`` (G,) is the row before the answer.  Returns the weights ``exp(x - max(x))`` of
+    ``x = log(row) + log_table[item, category]`` (no answer's row for ``item`` < 0), and
+    their sum.  Points where the row is 0 stay 0.
+    """
+    with np.errstate(divide="ignore"):
+        x = np.log(row)
+    if item >= 0:
+        x = x + log_table[item, category]
+    w = np.exp(x - x.max())
+    return w, float(np.sum(w))
 
 
 def resolution_floor(grid) -> float:

@@ -22,7 +22,13 @@ import numpy as np
 
 from ..design.types import ExposureMethod, ExtremePatternMethod, ScoringMethod, SelectionCriterion
 from ..irt import models
-from ..irt.posterior import add_and_summarize, normal_log_prior, posterior_mean_sd
+from ..irt.posterior import (
+    add_and_summarize,
+    multiply_and_summarize,
+    normal_log_prior,
+    posterior_mean_sd,
+    scaled_density,
+)
 from . import random_streams as randomness
 from . import stopping
 from .eligibility import eligible
@@ -60,10 +66,12 @@ def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligi
     pm, ps = state.prior_mean, state.prior_sd
     if state.size > 1 and np.all(pm == pm[0]) and np.all(ps == ps[0]):
         # one prior for the whole batch: its row once, copied (each value is computed from
-        # its grid point, mean and SD alone, so the rows are the same either way)
-        state.log_post[:] = normal_log_prior(ctx.grid, pm[:1], ps[:1])
+        # its grid point, mean and SD alone, and each row is scaled on its own, so the rows
+        # are the same either way)
+        prior = normal_log_prior(ctx.grid, pm[:1], ps[:1])
     else:
-        state.log_post[:] = normal_log_prior(ctx.grid, pm, ps).reshape(state.size, -1)
+        prior = normal_log_prior(ctx.grid, pm, ps).reshape(state.size, -1)
+    state.log_post[:] = scaled_density(prior) if ctx.posterior_form == "scaled" else prior
     opening = ctx.design.opening
     if opening.random_theta is not None:
         lo, hi = opening.random_theta
@@ -281,8 +289,15 @@ def _put(array, rows, cols, values) -> None:
 def _update_estimate(ctx, state, rows, scored_item, responses) -> None:
     """Add the scored answers to the posterior, then the interim estimate (the design's method)."""
     sc = ctx.design.scoring
-    eap, sd = add_and_summarize(state.log_post, rows, ctx.log_table_by_category, scored_item, responses,
-                                ctx.grid)
+    if ctx.posterior_form == "scaled":
+        # one row (a live answer) takes exp of its log row: no table of the whole bank made
+        # for it (the same values, prepared.PROBABILITY_TABLE_BYTES says why)
+        table = ctx.probability_table_by_category if rows.size > 1 else None
+        eap, sd = multiply_and_summarize(state.log_post, rows, table, ctx.log_table_by_category, scored_item,
+                                         responses, ctx.grid)
+    else:
+        eap, sd = add_and_summarize(state.log_post, rows, ctx.log_table_by_category, scored_item, responses,
+                                    ctx.grid)
     if sc.method is ScoringMethod.EAP:
         state.theta[rows], state.se[rows] = eap, sd
         return
@@ -360,7 +375,8 @@ def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:
             kwargs["best_information"] = np.where(best >= 0, info, 0.0)
         if st.se_reduction is not None:
             table = ctx.log_table[np.maximum(best, 0)]
-            red = stopping.predicted_se_reduction(state.log_post[rows], ctx.grid, table)
+            red = stopping.predicted_se_reduction(state.log_post[rows], ctx.grid, table,
+                                                   form=ctx.posterior_form)
             kwargs["se_reduction"] = np.where(best >= 0, red, 0.0)
     if st.time_limit is not None:
         kwargs["elapsed"] = state.elapsed[rows]
@@ -417,7 +433,7 @@ def final_estimates(ctx: TestContext, state: KernelState, rows, *, scores_only: 
     if method is ScoringMethod.EAP:
         from ..irt.estimation import eap_status
 
-        theta, se = posterior_mean_sd(state.log_post[at], ctx.grid)
+        theta, se = posterior_mean_sd(state.log_post[at], ctx.grid, ctx.posterior_form)
         status = None if scores_only else eap_status(ctx.bank, items, resp, theta, se,
                                                      prior_mean=state.prior_mean[rows],
                                                      prior_sd=state.prior_sd[rows])

@@ -202,6 +202,14 @@ def information_bound(params: models.ItemParameters, lo: float, hi: float) -> np
     return np.where(params.family == models.DICHOTOMOUS, bound, np.inf)
 
 
+#: The largest table of category probabilities a context keeps beside the log table (bytes):
+#: 64 MB, a 3PL bank of about 33,000 items on 121 grid points.  Larger banks multiply the
+#: scaled posterior by ``exp`` of the log rows an answer needs (numpy's ``exp`` gives each
+#: element the same value in any array, so the products are the same), which keeps a
+#: 100,000-item bank's memory to its log table.
+PROBABILITY_TABLE_BYTES = 64 << 20
+
+
 @attrs.frozen(eq=False)
 class TestContext:
     """Everything fixed for one design on one bank.  Build with :func:`build_context`."""
@@ -234,10 +242,32 @@ class TestContext:
     #: the one-dimensional kernel.  When set, ``grid`` is the product grid (G, K) and the
     #: log tables live on it.
     multidimensional: object = None
+    #: How the kernel holds each examinee's posterior on the grid (``KernelState.log_post``):
+    #: ``"scaled"``, the density divided by its sum (decision rules version 3 on), or
+    #: ``"log"``, the log density (versions 1 and 2; :func:`with_log_posterior`).
+    #: :mod:`adaptive_engine.irt.posterior` describes both.
+    posterior_form: str = attrs.field(default="scaled", validator=attrs.validators.in_(("log", "scaled")))
 
     @property
     def n_items(self) -> int:
         return self.bank.n_items
+
+    @property
+    def probability_table_by_category(self) -> np.ndarray | None:
+        """``exp`` of :attr:`log_table_by_category`, (n, C, G), read-only: the factors of the
+        scaled posterior's update.  Made on first use and kept with the bank, per grid; None
+        when it would take more than :data:`PROBABILITY_TABLE_BYTES` (a very large bank):
+        the update then takes ``exp`` of the log rows it needs, the same values."""
+        log_table = self.log_table_by_category
+        if log_table.nbytes > PROBABILITY_TABLE_BYTES:
+            return None
+
+        def make():
+            out = np.exp(log_table)
+            out.setflags(write=False)
+            return out
+
+        return self.bank.cached(("kernel.probability_table_by_category", np.asarray(self.grid).tobytes()), make)
 
     @property
     def info_grid(self) -> np.ndarray:
@@ -340,6 +370,15 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
         max_length=design.stopping.max_items + len(design.blueprint.pretest_positions),
         multidimensional=multidimensional,
     )
+
+
+def with_log_posterior(ctx: TestContext) -> TestContext:
+    """``ctx`` with the posterior held as a log density (decision rules versions 1 and 2).
+
+    Everything else is shared with ``ctx`` (the same tables); the new context is another
+    object, so caches kept per context start afresh.
+    """
+    return attrs.evolve(ctx, posterior_form="log")
 
 
 #: Items per chunk when building the log-probability table (bounds the temporaries).

@@ -707,7 +707,7 @@ def criterion_values(ctx, state, rows, ok, facts=None) -> np.ndarray:
         values = models.information(all_item_params(ctx), theta[:, None])
     elif crit is SelectionCriterion.POSTERIOR_WEIGHTED_INFORMATION:
         # van der Linden (1998): information averaged over the current posterior
-        w = posterior_weights(state.log_post[rows])
+        w = posterior_weights(state.log_post[rows], ctx.posterior_form)
         # per-row sums without BLAS: a matrix product rounds differently with the batch size
         values = np.einsum("rg,ng->rn", w, ctx.info_grid)
     elif crit is SelectionCriterion.KULLBACK_LEIBLER:

@@ -26,7 +26,9 @@ class KernelState:
         Random stream keys (:mod:`adaptive_engine.kernel.random_streams`).
     prior_mean, prior_sd : float (B,)
     log_post : float (B, G)
-        Log posterior of theta on the context's grid (scored answers only).
+        Posterior of theta on the context's grid (scored answers only), in the context's
+        ``posterior_form``: the density scaled to sum 1 (``"scaled"``) or the log density
+        (``"log"``, decision rules versions 1 and 2).
     items, responses : int (B, L)
         Every item given, in order, and its answer; -1 padding (L = scored + pretest slots).
     scored : bool (B, L)

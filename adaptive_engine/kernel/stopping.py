@@ -200,7 +200,7 @@ def confidence_interval_decision(theta, se, *, cut, confidence: float) -> np.nda
     return out.astype(np.int8)
 
 
-def predicted_se_after(log_post, grid, next_item_log_prob) -> np.ndarray:
+def predicted_se_after(log_post, grid, next_item_log_prob, *, form: str = "log") -> np.ndarray:
     """Predicted posterior SD after one more item (Choi, Grady & Dodd 2011).
 
     For each response category k of the next item, the posterior after answering k is the
@@ -211,7 +211,8 @@ def predicted_se_after(log_post, grid, next_item_log_prob) -> np.ndarray:
     Parameters
     ----------
     log_post : array, shape (B, G)
-        Current log posterior (unnormalised) on ``grid``.
+        Current posterior on ``grid`` in ``form``: ``"log"``, the log density
+        (unnormalised); ``"scaled"``, the density (any positive multiple).
     grid : array, shape (G,)
     next_item_log_prob : array, shape (B, G, C)
         Log category probabilities of each examinee's best next item on the grid
@@ -222,7 +223,7 @@ def predicted_se_after(log_post, grid, next_item_log_prob) -> np.ndarray:
     predicted_sd : array, shape (B,)
     """
     grid = np.asarray(grid, dtype=float)
-    w = posterior_weights(log_post)  # (B, G)
+    w = posterior_weights(log_post, form)  # (B, G)
     lp = np.asarray(next_item_log_prob, dtype=float)
     total = np.zeros(w.shape[:-1])
     weighted_sd = np.zeros(w.shape[:-1])
@@ -245,15 +246,15 @@ def _weighted_mean_sd(weights, grid):
     return m, np.sqrt(np.maximum(var, 0.0))
 
 
-def predicted_se_reduction(log_post, grid, next_item_log_prob) -> np.ndarray:
+def predicted_se_reduction(log_post, grid, next_item_log_prob, *, form: str = "log") -> np.ndarray:
     """Current posterior SD minus :func:`predicted_se_after`, shape (B,).
 
     Both terms come from the same posterior, so the difference is never negative (the
     expected posterior variance cannot exceed the current one, and E[SD] <= sqrt(E[var])).
     This is the quantity :func:`stop_reasons` compares with ``stopping.se_reduction``.
     """
-    _, sd_now = _weighted_mean_sd(posterior_weights(log_post), np.asarray(grid, dtype=float))
-    return sd_now - predicted_se_after(log_post, grid, next_item_log_prob)
+    _, sd_now = _weighted_mean_sd(posterior_weights(log_post, form), np.asarray(grid, dtype=float))
+    return sd_now - predicted_se_after(log_post, grid, next_item_log_prob, form=form)
 
 
 def _needs(value, what: str, key: str, b: int):

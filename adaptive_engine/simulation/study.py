@@ -102,27 +102,40 @@ class _AdministrationWriter:
 
 
 def _nums(values, digits: int = 6) -> list[str]:
-    """:func:`_num` of every value of an array (one pass in Python over plain floats).
+    """:func:`_num` of every value of a 1-D array (in a few passes of Python's own formatting).
 
     With 1 to 10 digits, values from 1e-4 up to 10^(15 - digits) are written as ``"%.{digits}f"`` without its
     trailing zeros (one kept after the point): the same text as ``repr(round(x, digits))``
-    there, twice as fast.  Both round the exact binary value correctly to ``digits``
-    places, and ``repr`` of the nearest double to a decimal of at most 15 significant
-    digits is that decimal, in positional notation from 1e-4 on.  Others go the plain way.
+    there, several times as fast (all of them by one ``%`` of one format string).  Both
+    round the exact binary value correctly to ``digits`` places, and ``repr`` of the
+    nearest double to a decimal of at most 15 significant digits is that decimal, in
+    positional notation from 1e-4 on.  Others go the plain way.
     """
     isfinite = math.isfinite
+    array = np.asarray(values, dtype=float)
+    floats = array.tolist()
     if not 1 <= digits <= 10:  # a point to strip zeros back to
-        return ["" if not isfinite(x) else repr(round(x, digits)) for x in np.asarray(values, dtype=float).tolist()]
-    fmt = f"%.{digits}f"
-    high = 10.0 ** (15 - digits)
-    out = []
-    put = out.append
-    for x in np.asarray(values, dtype=float).tolist():
-        if 1e-4 <= abs(x) < high:
-            text = (fmt % x).rstrip("0")
-            put(text + "0" if text[-1] == "." else text)
-        else:
-            put("" if not isfinite(x) else repr(round(x, digits)))
+        return ["" if not isfinite(x) else repr(round(x, digits)) for x in floats]
+    texts = ((f"%.{digits}f\n" * len(floats)) % tuple(floats)).split("\n")
+    texts.pop()  # after the last line end
+    out = [t if t[-1] != "." else t + "0" for t in [t.rstrip("0") for t in texts]]
+    with np.errstate(invalid="ignore"):
+        size = np.abs(array)
+        other = ~((size >= 1e-4) & (size < 10.0 ** (15 - digits)))  # NaN too
+    for k in np.flatnonzero(other).tolist():
+        x = floats[k]
+        out[k] = "" if not isfinite(x) else repr(round(x, digits))
+    return out
+
+
+def _csv_fields(texts) -> dict:
+    """Each distinct text of ``texts`` as the csv module writes it as a field of a row
+    (quoted where it must be), by text."""
+    out = {}
+    for text in dict.fromkeys(texts):
+        buf = io.StringIO()
+        csv.writer(buf, lineterminator="\n").writerow(["", text])
+        out[text] = buf.getvalue()[1:-1]  # the leading "," and the line end off
     return out
 
 
@@ -135,13 +148,23 @@ def examinees_csv(result: SimulationResult) -> str:
     # the test length; then what this project adds
     w.writerow(["examinee", "true_theta", "theta", "se", "n_scored", "stop_reason", "n_pretest",
                 "scaled_score", "seed"] + [f"class_{c.name}" for c in cuts])
-    # column by column: the values of a 10,000-examinee run in a few passes
+    # column by column: the values of a 10,000-examinee run in a few passes.  Numbers never
+    # need quotes; the texts (stop reasons, class labels) are few, each written once by the
+    # csv module as it writes them in a row
+    reasons = [str(r) for r in result.stop_reason]
     labels = [[c.above if v == 1 else c.below if v == 0 else "" for v in result.at_or_above[:, k].tolist()]
               for k, c in enumerate(cuts)]
-    w.writerows(zip(range(result.size), _nums(result.true_theta), _nums(result.theta), _nums(result.se),
-                    np.asarray(result.n_scored, dtype=np.int64).tolist(), [str(r) for r in result.stop_reason],
-                    np.asarray(result.n_pretest, dtype=np.int64).tolist(), _nums(result.scaled_score),
-                    np.asarray(result.seeds, dtype=np.int64).tolist(), *labels))
+    field = _csv_fields(reasons + [label for column in labels for label in column])
+
+    def ints(values):
+        return [str(v) for v in np.asarray(values, dtype=np.int64).tolist()]
+
+    columns = [[str(k) for k in range(result.size)], _nums(result.true_theta), _nums(result.theta),
+               _nums(result.se), ints(result.n_scored), [field[r] for r in reasons], ints(result.n_pretest),
+               _nums(result.scaled_score), ints(result.seeds), *[[field[x] for x in column] for column in labels]]
+    if result.size:
+        buf.write("\n".join(map(",".join, zip(*columns))))
+        buf.write("\n")
     return buf.getvalue()
 
 
