@@ -372,9 +372,13 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
         out.append(Problem("[exposure] parameters_file", "exposure parameters conditional on ability strata "
                                                          f"cut one ability scale and are not available {many}; "
                                                          "give one parameter per item"))
-    if design.blueprint.shadow_test:
-        out.append(Problem("[blueprint] shadow_test", f"shadow tests maximise one-dimensional information and "
-                                                      f"are not available {many}"))
+    if design.blueprint.shadow_test and sel.criterion is SelectionCriterion.RANDOM:
+        # the shadow test of an ability vector maximises the criterion, linearised
+        # (kernel/multidimensional_shadow.py): a random criterion has no value to sum
+        out.append(Problem("[selection] criterion", f"a shadow test {many} is assembled to maximise the "
+                                                    "criterion; random gives it nothing to maximise: use "
+                                                    "d_optimality, a_optimality, kullback_leibler or "
+                                                    "max_composite_information with [blueprint] shadow_test"))
     if op.random_theta is not None:
         out.append(Problem("[opening] random_theta", f"a random starting point is not available {many}; the "
                                                      "test starts at [opening] theta on every dimension"))
