@@ -50,9 +50,10 @@ def small_bank(n=12, seed=4, *, areas=None, enemies=None, sets=None, status=None
                     enemy_groups=enemies or [()] * n, status=status or ["operational"] * n, label=[""] * n)
 
 
-def design(criterion="d_optimality", *, length=5, blueprint="", extra=""):
+def design(criterion="d_optimality", *, length=5, blueprint="", extra="", method="eap"):
     return parse_design(f"""
 [scoring]
+method = "{method}"
 prior_covariance = [[1.0, 0.4], [0.4, 1.0]]
 grid_points_per_dimension = 21
 [selection]
@@ -286,9 +287,11 @@ def test_every_simulated_test_meets_the_blueprint_exactly(criterion):
 
 
 def test_batch_equals_one_at_a_time_with_both_solvers():
-    for crossing, criterion in ((False, "a_optimality"), (True, "d_optimality")):
+    # the MAP design hands the selection its covariance (the known facts of multidimensional_cycle)
+    for crossing, criterion, method in ((False, "a_optimality", "eap"), (True, "d_optimality", "eap"),
+                                        (False, "d_optimality", "map")):
         bank = _simulation_bank(crossing=crossing)
-        d = design(criterion, length=9, blueprint=SIMULATION_BLUEPRINT)
+        d = design(criterion, length=9, blueprint=SIMULATION_BLUEPRINT, method=method)
         ctx = build_context(d, bank)
         assert (shadow.separable_program(ctx) is None) == crossing
         true = np.random.default_rng(1).normal(0, 1, (4, 2))
@@ -297,8 +300,11 @@ def test_batch_equals_one_at_a_time_with_both_solvers():
         for i in range(4):
             one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
             np.testing.assert_array_equal(one["items"][0], whole["items"][i])
-            np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
-            np.testing.assert_array_equal(one["se"][0], whole["se"][i])
+            if method == "eap":
+                # (the final MAP of a batch and of one row can differ in the last bit, with or
+                # without a shadow test: not a decision of this module)
+                np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
+                np.testing.assert_array_equal(one["se"][0], whole["se"][i])
 
 
 def test_sympson_hetter_withheld_items_stay_out_of_the_shadow_test():

@@ -521,8 +521,13 @@ def _first_choice(design: Design, k_first: int) -> str:
     op, sc, sel, ex, bp = design.opening, design.scoring, design.selection, design.exposure, design.blueprint
     where = "there" if op.random_theta is None else "at the drawn start"
     if bp.shadow_test:
-        return ("the most informative free item of a shadow test assembled at the start"
-                + (f" ({k_first} top candidates do not apply: the shadow test decides)" if k_first > 1 else ""))
+        if design.asks_multidimensional:
+            # kernel/multidimensional_shadow.py: the criterion linearised is the objective
+            first = (f"the free item best by {sel.criterion.value} of a shadow test assembled at the start "
+                     "(its objective: the criterion's first-order change per item)")
+        else:
+            first = "the most informative free item of a shadow test assembled at the start"
+        return first + (f" ({k_first} top candidates do not apply: the shadow test decides)" if k_first > 1 else "")
     if sel.criterion == "random" or ex.method == "progressive":
         why = "the criterion is random" if sel.criterion == "random" else "the progressive method starts fully random"
         first = f"an eligible item drawn at random ({why})"

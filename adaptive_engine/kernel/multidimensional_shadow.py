@@ -22,15 +22,15 @@ candidate test adds ``sum_j x_j I_j``.
 
 ``d_optimality`` (maximise ``log det W``; Segall 1996)
     ``d log det(W + t I_j) / dt = tr(W^-1 I_j) = tr(S I_j) = J_j a_j' S a_j`` at t = 0,
-    from ``d log det X = tr(X^-1 dX)`` (Magnus & Neudecker 1999, ch. 8; Petersen & Pedersen,
-    *The Matrix Cookbook*, eq. (43) in the 2012 edition -- equation numbers from memory).
+    from ``d log det X = tr(X^-1 dX)`` (Jacobi's formula; Magnus & Neudecker 1999, ch. 8;
+    Petersen & Pedersen, *The Matrix Cookbook*, derivatives of a determinant; from memory).
     The first-order change of ``log det`` for the whole test is ``sum_j x_j tr(S I_j)``;
     since ``log det`` is concave in the test's information, this bounds the true gain of
     the test from above and agrees with it to first order.
 ``a_optimality`` (minimise ``tr W^-1``)
     ``d tr((W + t I_j)^-1) / dt = -tr(W^-1 I_j W^-1) = -tr(S I_j S) = -J_j |S a_j|^2`` at
-    t = 0, from ``d X^-1 = -X^-1 (dX) X^-1`` (Magnus & Neudecker 1999, ch. 8; Matrix
-    Cookbook eq. (59), from memory) and ``tr(S a a' S) = a' S S a``.  The item value is the
+    t = 0, from ``d X^-1 = -X^-1 (dX) X^-1`` (Magnus & Neudecker 1999, ch. 8; the Matrix
+    Cookbook, derivatives of an inverse; from memory) and ``tr(S a a' S) = a' S S a``.  The item value is the
     first-order reduction ``J_j |S a_j|^2``.  (The exact one-item reduction, the
     criterion's value, is ``J_j |S a_j|^2 / (1 + J_j a_j' S a_j)`` by Sherman-Morrison: the
     linear proxy and the exact criterion can rank items differently, hence the pick by the
