@@ -354,3 +354,32 @@ def test_the_gate_admits_shadow_tests_for_vectors_and_refuses_a_random_criterion
         assert not check_design_against_bank(design(criterion, length=9, blueprint=SIMULATION_BLUEPRINT), bank)
     found = {p.location: p.message for p in check_design_against_bank(design("random", length=9), bank)}
     assert "[selection] criterion" in found and "shadow test" in found["[selection] criterion"]
+
+
+def test_with_one_dimension_the_shadow_test_gives_the_one_dimensional_engines_items():
+    """A 2PL bank written as K = 1 M2PL (issue 12: with K = 1 every multidimensional path
+    agrees with the one-dimensional engine): D-optimality's item value ``J a^2 S`` is the
+    Fisher information times a positive number per examinee, so the shadow tests and the
+    items given are those of the one-dimensional shadow test (van der Linden & Reese 1998)."""
+    from adaptive_engine.simulation.engine import run_chunk as run_chunk_1d
+
+    rng = np.random.default_rng(3)
+    n = 40
+    enemies = [(f"e{i // 4}",) if i < 16 and i % 4 < 2 else () for i in range(n)]
+    sets = ["s0" if i in (20, 22) else "" for i in range(n)]
+    bank = ItemBank(item_ids=[f"Q{i:03d}" for i in range(n)], model=["M2PL"] * n,
+                    slopes=rng.uniform(0.5, 2.0, (n, 1)), intercepts=rng.normal(0, 1.2, (n, 1)),
+                    area=[AREAS[i % 2] for i in range(n)], item_set=sets, enemy_groups=enemies,
+                    status=["operational"] * n, label=[""] * n)
+    blueprint = ("[blueprint]\nshadow_test = true\nenemies = true\nitem_sets = true\n"
+                 "[blueprint.areas.east]\nmin = 4\nmax = 4\n[stopping]\nmin_items = 10\nmax_items = 10\n")
+    one = parse_design(blueprint)
+    many = parse_design("[scoring]\nprior_covariance = [[1.0]]\n[selection]\ncriterion = \"d_optimality\"\n"
+                        + blueprint)
+    ctx1, ctxk = build_context(one, bank), build_context(many, bank)
+    assert ctx1.multidimensional is None and ctxk.multidimensional.k == 1
+    true = rng.normal(0, 1, 12)
+    a = run_chunk_1d(ctx1, seed=17, start=0, true_theta=true)
+    b = run_chunk(ctxk, seed=17, start=0, true_theta=true[:, None])
+    np.testing.assert_array_equal(a.items, b["items"])
+    np.testing.assert_allclose(a.theta, b["theta"][:, 0], atol=1e-8, rtol=0)
