@@ -372,9 +372,13 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
         out.append(Problem("[exposure] parameters_file", "exposure parameters conditional on ability strata "
                                                          f"cut one ability scale and are not available {many}; "
                                                          "give one parameter per item"))
-    if design.blueprint.shadow_test:
-        out.append(Problem("[blueprint] shadow_test", f"shadow tests maximise one-dimensional information and "
-                                                      f"are not available {many}"))
+    if design.blueprint.shadow_test and sel.criterion is SelectionCriterion.RANDOM:
+        # the shadow test of an ability vector maximises the criterion, linearised
+        # (kernel/multidimensional_shadow.py): a random criterion has no value to sum
+        out.append(Problem("[selection] criterion", f"a shadow test {many} is assembled to maximise the "
+                                                    "criterion; random gives it nothing to maximise: use "
+                                                    "d_optimality, a_optimality, kullback_leibler or "
+                                                    "max_composite_information with [blueprint] shadow_test"))
     if op.random_theta is not None:
         out.append(Problem("[opening] random_theta", f"a random starting point is not available {many}; the "
                                                      "test starts at [opening] theta on every dimension"))
@@ -517,8 +521,13 @@ def _first_choice(design: Design, k_first: int) -> str:
     op, sc, sel, ex, bp = design.opening, design.scoring, design.selection, design.exposure, design.blueprint
     where = "there" if op.random_theta is None else "at the drawn start"
     if bp.shadow_test:
-        return ("the most informative free item of a shadow test assembled at the start"
-                + (f" ({k_first} top candidates do not apply: the shadow test decides)" if k_first > 1 else ""))
+        if design.asks_multidimensional:
+            # kernel/multidimensional_shadow.py: the criterion linearised is the objective
+            first = (f"the free item best by {sel.criterion.value} of a shadow test assembled at the start "
+                     "(its objective: the criterion's first-order change per item)")
+        else:
+            first = "the most informative free item of a shadow test assembled at the start"
+        return first + (f" ({k_first} top candidates do not apply: the shadow test decides)" if k_first > 1 else "")
     if sel.criterion == "random" or ex.method == "progressive":
         why = "the criterion is random" if sel.criterion == "random" else "the progressive method starts fully random"
         first = f"an eligible item drawn at random ({why})"

@@ -5,7 +5,8 @@ functions over a batch of examinees (first axis = examinee).
 * :mod:`.state` -- the batch state;
 * :mod:`.cycle` -- the start / answer / finish cycle;
 * :mod:`.eligibility`, :mod:`.selection`, :mod:`.shadow` -- which items may be given and which
-  one is, with exposure control, blueprint rules and shadow tests;
+  one is, with exposure control, blueprint rules and shadow tests (:mod:`.multidimensional_shadow`
+  for an ability vector);
 * :mod:`.stopping` -- the stopping rules;
 * :mod:`.final_report` -- the final report;
 * :mod:`.random_streams` -- counter-based random streams, so no state is shared between

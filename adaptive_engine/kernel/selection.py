@@ -231,7 +231,7 @@ def _criterion_pick(ctx, state, rows, open_area, known_facts=None) -> Choice:
         if design.blueprint.shadow_test:
             from .shadow import shadow_test_choice
 
-            got = shadow_test_choice(ctx, state, rows[part], ordinary)
+            got = shadow_test_choice(ctx, state, rows[part], ordinary, part_facts)
         else:
             got = ordinary(np.arange(part.size))
         item[part] = got.item

@@ -49,12 +49,17 @@ SHADOW_TEST_NODE_LIMIT = 1000
 _LIMIT_REACHED = (1, 4)
 
 
-def assemble_shadow_test(ctx, state, row: int) -> np.ndarray | None:
-    """Item rows of the shadow test for examinee ``row``, or None when no test can be built."""
+def assemble_shadow_test(ctx, state, row: int, values=None) -> np.ndarray | None:
+    """Item rows of the shadow test for examinee ``row``, or None when no test can be built.
+
+    ``values`` (n,): the objective's coefficient of every item; by default the items'
+    Fisher information at the row's estimate (an ability vector passes the linearised
+    criterion of :mod:`.multidimensional_shadow`).
+    """
     bank = ctx.bank
     n = ctx.n_items
     length = ctx.design.stopping.max_items
-    info = models.information(bank.params, np.full(n, state.theta[row]))
+    info = models.information(bank.params, np.full(n, state.theta[row])) if values is None else values
     given = np.zeros(n, dtype=bool)
     k = state.n_given[row]
     scored_items = state.items[row, :k][state.scored[row, :k]]
@@ -124,7 +129,7 @@ class ShadowChoice(NamedTuple):
     withheld: list
 
 
-def shadow_test_choice(ctx, state, rows, ordinary):
+def shadow_test_choice(ctx, state, rows, ordinary, facts=None):
     """The pick of ``rows`` under a shadow-test design: a ``Choice`` (item, value, withheld).
 
     ``ordinary(positions)`` makes the design's ordinary pick for ``rows[positions]``; it
@@ -132,15 +137,17 @@ def shadow_test_choice(ctx, state, rows, ordinary):
     since the items its lottery withholds leave the rest of the test whatever is given;
     otherwise only for rows without a shadow-test pick (the ordinary pick changes no state
     and draws from counter-based streams, so skipping it changes no other decision).
+    ``facts`` (an ability vector only): what
+    :func:`.multidimensional_selection.row_facts` gives for ``rows``, when known.
     """
     rows = np.asarray(rows)
     everyone = ctx.design.exposure.method is ExposureMethod.SYMPSON_HETTER
     if everyone:
         got = ordinary(np.arange(rows.size))
-        item, value = shadow_test_pick(ctx, state, rows, got.item, got.value)
+        item, value = shadow_test_pick(ctx, state, rows, got.item, got.value, facts=facts)
         return ShadowChoice(item=item, value=value, withheld=got.withheld)
     no_pick = np.full(rows.size, -1, dtype=np.int64)
-    item, value = shadow_test_pick(ctx, state, rows, no_pick, np.full(rows.size, np.nan))
+    item, value = shadow_test_pick(ctx, state, rows, no_pick, np.full(rows.size, np.nan), facts=facts)
     missing = np.flatnonzero(item < 0)
     withheld = []
     if missing.size:
@@ -150,15 +157,21 @@ def shadow_test_choice(ctx, state, rows, ordinary):
     return ShadowChoice(item=item, value=value, withheld=withheld)
 
 
-def shadow_test_pick(ctx, state, rows, fallback_item, fallback_value):
+def shadow_test_pick(ctx, state, rows, fallback_item, fallback_value, facts=None):
     """Replace each row's pick by the best free item of its shadow test (when one exists).
 
     Banks whose blueprint separates into areas (:func:`separable_program`) are solved for
     the whole batch at once by :func:`separable_shadow_tests`; every other bank, or every
     bank while :data:`GENERAL_SOLVER_ONLY` is set, one row at a time by
-    :func:`assemble_shadow_test`.
+    :func:`assemble_shadow_test`.  An ability vector goes to
+    :func:`.multidimensional_shadow.vector_shadow_pick` (the same solvers, with the
+    design's criterion linearised as the objective; ``facts`` as there).
     """
     rows = np.asarray(rows)
+    if ctx.multidimensional is not None:
+        from .multidimensional_shadow import vector_shadow_pick
+
+        return vector_shadow_pick(ctx, state, rows, fallback_item, fallback_value, facts)
     program = None if GENERAL_SOLVER_ONLY else separable_program(ctx)
     if program is not None:
         return _separable_pick(ctx, program, state, rows, fallback_item, fallback_value)
@@ -322,8 +335,12 @@ def _build_separable_program(ctx) -> SeparableProgram | None:
                             area_sets=area_sets, area_block_weights=tuple(weights), lower=lower, upper=upper)
 
 
-def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
+def separable_shadow_tests(ctx, program: SeparableProgram, state, rows, values=None):
     """Optimal shadow tests of ``rows`` (int (R,)) on a separable program, all at once.
+
+    ``values`` (R, n_items): the objective's coefficient of every item for each row; by
+    default the items' Fisher information at each row's estimate (an ability vector passes
+    the linearised criterion of :mod:`.multidimensional_shadow`).
 
     Returns
     -------
@@ -332,7 +349,7 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
     ok : bool (R,)
         False where no test meets the constraints (``chosen`` is then all False).
     info : float (R, n_items)
-        Fisher information of every item at each row's estimate (the objective).
+        The objective's coefficients (``values``, or the Fisher information).
     """
     n = ctx.n_items
     size = rows.size
@@ -341,7 +358,10 @@ def separable_shadow_tests(ctx, program: SeparableProgram, state, rows):
     minus_inf = -np.inf
     line = np.arange(size)
     column = line[:, None]
-    info = models.information(ctx.bank.params, state.theta[rows][:, None])
+    if values is None:
+        info = models.information(ctx.bank.params, state.theta[rows][:, None])
+    else:
+        info = np.asarray(values, dtype=float)
     info = np.broadcast_to(info, (size, n))
     given = np.zeros((size, n + 1), dtype=bool)
     items = state.items[rows]
