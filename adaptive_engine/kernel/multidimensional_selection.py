@@ -45,7 +45,7 @@ def test_information(ctx, state, rows) -> np.ndarray:
     """
     items, resp = state.scored_items(rows)  # (R, L), -1 where not scored
     info, _ = test_information_and_score(ctx.multidimensional, items, resp, state.theta[rows],
-                                         state_precision(state, rows))
+                                         state_precision(state, rows), one_row_in_order=ctx.posterior_form != "log")
     return info
 
 
@@ -323,7 +323,11 @@ def _kullback_leibler(ctx, state, rows) -> np.ndarray:
     log_p0 = md.log_probabilities(tab.params, theta[:, None, :])  # (R, n, C)
     finite = np.isfinite(log_p0)
     p0 = np.where(finite, np.exp(log_p0), 0.0)
-    w = posterior_weights(state.log_post[rows])  # (R, G)
+    if ctx.posterior_form == "log":
+        w = posterior_weights(state.log_post[rows])  # (R, G)
+    else:  # rows of the scaled posterior sum to 1 up to rounding: divided by their sums again
+        w = state.log_post[rows]
+        w = w / np.add.reduce(w, axis=1)[:, None]
     # sum_g w_g log P_c(x_g) per row, item and category (sums along the grid axis only)
     expected = np.einsum("rg,ncg->rnc", w, tab.finite_log_table)
     return np.sum(p0 * (np.where(finite, log_p0, 0.0) - expected), axis=-1)

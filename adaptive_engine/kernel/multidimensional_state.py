@@ -67,6 +67,9 @@ class MultidimensionalTables:
         The items in single precision, for the D-optimal pick by screening
         (:func:`adaptive_engine.kernel.multidimensional_selection.best_items`); None where
         that pick does not apply (another criterion, not an M2PL bank).
+    prior_weights : float (G,)
+        The prior as a scaled density, ``exp(log_prior - max) / sum``: the start of every
+        row of the scaled posterior (:func:`scaled_add_and_moments`).
     """
 
     k: int
@@ -86,6 +89,24 @@ class MultidimensionalTables:
     logistic_only: bool = False
     slope_products: dict = attrs.field(factory=dict)
     screening: "SinglePrecisionItems | None" = None
+    prior_weights: np.ndarray | None = None
+    _made: dict = attrs.field(factory=dict, alias="made")
+
+    def probability_by_category(self) -> np.ndarray:
+        """``exp`` of the log table in its (n, C, G) layout, read-only: what an answer
+        multiplies a row of the scaled posterior by.  Made on first use (a context holding
+        the log posterior never needs it) and kept with the tables."""
+        table = self._made.get("probability_by_category")
+        if table is None:
+            table = np.exp(self.log_table.transpose(0, 2, 1))
+            table.setflags(write=False)
+            self._made["probability_by_category"] = table
+        return table
+
+    @property
+    def axis_points(self) -> int:
+        """Grid points per dimension (P, with G = P ** K)."""
+        return self.axis.shape[0]
 
 
 def multidimensional_parameters(bank: ItemBank) -> md.MultidimensionalParameters:
@@ -129,6 +150,8 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     mean, cov = prior_of(design, k)
     precision = inverse(cov)
     log_prior = -0.5 * quadratic_form(points - mean, precision)
+    prior_weights = np.exp(log_prior - np.max(log_prior))
+    prior_weights = prior_weights / np.sum(prior_weights)
     weights = design.reporting.composite_weights
     st = design.stopping
     if st.se_per_dimension is not None:
@@ -151,6 +174,7 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
         slope_products=products,
         screening=SinglePrecisionItems.of(params, products) if (
             design.selection.criterion is SelectionCriterion.D_OPTIMALITY and logistic) else None,
+        prior_weights=prior_weights,
     )
 
 
@@ -271,7 +295,7 @@ def matrix_vector(m: np.ndarray, x: np.ndarray) -> np.ndarray:
 
 
 def test_information_and_score(tab: MultidimensionalTables, items, responses, theta, precision, *,
-                               score: bool = False, given: "GivenItems | None" = None):
+                               score: bool = False, given: "GivenItems | None" = None, one_row_in_order: bool = False):
     """``P + sum_i J_i(theta) a_i a_i'`` (R, K, K) and, with ``score``, the gradient of the
     log-likelihood ``sum_i r_i(theta) a_i`` (R, K) over the items given.
 
@@ -280,13 +304,17 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
     is the same whatever other rows (and how many columns) the batch holds: the columns a
     row has not reached add exact zeros.  ``given``: :func:`given_items` of the same items
     and responses (an M2PL bank only), when the caller has gathered them already.
+    ``one_row_in_order`` (decision rules version 3): a batch of one row adds its columns in
+    order too (:func:`_sum_in_order`); without it (versions 1 and 2) a single row of an
+    M2PL bank is summed pairwise by numpy once it has eight answers or more.
     """
     theta = np.asarray(theta, dtype=float)
     k = tab.k
     if tab.logistic_only:
         if given is None:
             given = given_items(tab, items, responses if score else None)
-        return _logistic_information_and_score(tab, given.reached(), theta, precision, score=score)
+        return _logistic_information_and_score(tab, given.reached(), theta, precision, score=score,
+                                               one_row_in_order=one_row_in_order)
     width = items.shape[1]
     reached = np.flatnonzero((items >= 0).any(axis=0))
     reached = reached[reached < width]
@@ -363,7 +391,7 @@ def given_items(tab: MultidimensionalTables, items, responses) -> GivenItems:
                       responses=None if responses is None else np.ascontiguousarray(np.asarray(responses).T))
 
 
-def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *, score):
+def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *, score, one_row_in_order=False):
     """:func:`test_information_and_score` for a bank of M2PL items, every column at once.
 
     ``P = expit(D (a . theta + d))``, ``J = D^2 P (1 - P)``, score ``D (x - P)``, elementwise
@@ -384,29 +412,33 @@ def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *,
     info = np.array(precision, dtype=float, copy=True)
     for p in range(k):
         for q in range(p, k):
-            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q])
+            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q], one_row_in_order)
             if q != p:
                 info[:, q, p] = info[:, p, q]
     if not score:
         return info, None
     r = np.where(given.given, scaling * (given.responses - prob), 0.0)
-    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d]) for d in range(k)], axis=1)
+    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d], one_row_in_order) for d in range(k)], axis=1)
     return info, grad
 
 
-def _sum_in_order(start: np.ndarray, terms: np.ndarray) -> np.ndarray:
+def _sum_in_order(start: np.ndarray, terms: np.ndarray, one_row_in_order: bool = False) -> np.ndarray:
     """``(((start + t_0) + t_1) + ..)`` per column of ``terms`` (L, R): one row after another.
 
     numpy reduces over the first axis of a C-ordered array by adding each row to the
     running result in turn (no pairwise or blocked summation, which it applies along a
     contiguous axis only), as ``np.add.accumulate`` along the columns does
-    (tests/test_multidimensional_fast_paths.py compares the two).
+    (tests/test_multidimensional_fast_paths.py compares the two).  A single column
+    (R = 1) is such a contiguous axis: with ``one_row_in_order`` it is summed by
+    ``np.add.accumulate``, in order, as in a batch of many rows.
     """
     if terms.shape[0] == 0:
         return start.copy()
     stacked = np.empty((terms.shape[0] + 1,) + start.shape)
     stacked[0] = start
     stacked[1:] = terms
+    if one_row_in_order and stacked.shape[1] == 1:
+        return np.add.accumulate(stacked, axis=0)[-1]
     return np.add.reduce(stacked, axis=0)
 
 
@@ -500,6 +532,145 @@ def add_and_moments(log_post, rows, table=None, items=None, categories=None, poi
     return (mean, cov) if moments else None
 
 
+#: A row of the scaled posterior whose sum after an answer is below this (or not finite)
+#: is made again from logarithms (:func:`scaled_add_and_moments`), so that no row ever
+#: underflows to zeros.
+RESCUE_BELOW = 1e-250
+
+
+def scaled_moments(post: np.ndarray, points: np.ndarray, axis: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Posterior mean (R, K) and covariance (R, K, K) of scaled posteriors (R, G).
+
+    The rows are densities on the product grid ``points`` (G, K) up to a factor (each is
+    divided by its own sum here).  On a grid of two dimensions (G = P * P, the first
+    dimension varying slowest) each row is read three times, as a (P, P) array: its sums
+    along the second dimension ``u_i = sum_j w_ij``, against the second axis
+    ``t_i = sum_j w_ij y_j``, and along the first dimension ``v_j = sum_i w_ij``; then every
+    moment is a sum of P terms: ``sum w = sum_i u_i``, ``E[x] = sum_i u_i x_i / sum w``,
+    ``E[x^2]`` likewise with ``x_i^2``, ``E[y]`` and ``E[y^2]`` from ``v``, and
+    ``E[xy] = sum_i x_i t_i / sum w``.  Other K: one sum of the whole row against each
+    coordinate and product of coordinates.  Every sum runs within one row (``einsum``
+    along a row's own axes), so a row gives the same bits in a batch of any size.  The
+    covariance is ``E[x_i x_j] - E[x_i] E[x_j]``, as :func:`posterior_moments` computes it.
+    """
+    r_n, g = post.shape
+    k = points.shape[1]
+    p = axis.shape[0]
+    mean = np.empty((r_n, k))
+    cov = np.empty((r_n, k, k))
+    if k == 2 and g == p * p:
+        square = post.reshape(r_n, p, p)
+        ones = np.ones(p)
+        u = np.einsum("rij,j->ri", square, ones)
+        t = np.einsum("rij,j->ri", square, axis)
+        v = np.einsum("rij,i->rj", square, ones)
+        total = np.einsum("ri->r", u)
+        squares = axis * axis
+        mean[:, 0] = np.einsum("ri,i->r", u, axis) / total
+        mean[:, 1] = np.einsum("rj,j->r", v, axis) / total
+        cov[:, 0, 0] = np.einsum("ri,i->r", u, squares) / total - mean[:, 0] * mean[:, 0]
+        cov[:, 1, 1] = np.einsum("rj,j->r", v, squares) / total - mean[:, 1] * mean[:, 1]
+        cov[:, 0, 1] = cov[:, 1, 0] = np.einsum("ri,i->r", t, axis) / total - mean[:, 0] * mean[:, 1]
+        return mean, cov
+    total = np.einsum("rg->r", post)
+    for j in range(k):
+        mean[:, j] = np.einsum("rg,g->r", post, points[:, j]) / total
+    for i in range(k):
+        for j in range(i, k):
+            second = np.einsum("rg,g->r", post, points[:, i] * points[:, j]) / total
+            cov[:, i, j] = cov[:, j, i] = second - mean[:, i] * mean[:, j]
+    return mean, cov
+
+
+def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items=None, categories=None,
+                           points=None, axis=None, *, moments: bool = True):
+    """:func:`add_and_moments` for a posterior held as a scaled density (decision rules 3).
+
+    Each row of ``post`` is the posterior density on the grid divided by its sum.  An
+    answer multiplies the row by the answer's probability row
+    ``probabilities[items[k], categories[k]]``; the product's sum ``total`` divides it,
+    so that it sums to 1 again, and is written back; the moments are then read from the
+    row as written (:func:`scaled_moments`), so that reading them again later from the
+    stored row (the final estimates) gives the same bits.  A row whose ``total`` is not
+    finite or is below :data:`RESCUE_BELOW` (its mass where the answer is all but
+    impossible) is made again from logarithms, for that row alone: ``log(row)`` plus the
+    answer's row of ``log_table``, ``exp(x - max)``, divided by its sum.  Rows without a
+    scored answer (``items[k] < 0``) are divided by their sum too.  The rows go through in
+    blocks that fit in the processor's cache, as in :func:`add_and_moments`.
+
+    Parameters
+    ----------
+    post : float array (B, G), changed in place
+    rows : int array (R,)
+        Distinct rows of ``post``.
+    probabilities, log_table : float arrays (n, C, G), optional
+        Probability (and log probability) of each item's categories on the grid; nothing
+        is multiplied without them.
+    items, categories : int arrays (R,), optional
+    points : float array (G, K), axis : float array (P,)
+        The grid and the grid of one dimension (needed with ``moments``).
+
+    Returns
+    -------
+    (mean (R, K), covariance (R, K, K)), or None without ``moments``
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    r_n = rows.size
+    k = 0 if points is None else points.shape[1]
+    mean = np.empty((r_n, k))
+    cov = np.empty((r_n, k, k))
+    if r_n == 0:
+        return (mean, cov) if moments else None
+    step = max(1, BLOCK_VALUES // max(1, post.shape[-1]))
+    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    adding = probabilities is not None
+    every = adding and bool(np.all(items >= 0))
+    if adding:
+        by_answer = probabilities.reshape(-1, probabilities.shape[-1])  # row c + C * item
+        answer_row = np.where(items >= 0, items, 0) * probabilities.shape[1] + categories
+        buffer = np.empty((min(step, r_n), post.shape[-1]))
+    for i in range(0, r_n, step):
+        j = min(i + step, r_n)
+        block = post[rows[i] : rows[i] + (j - i)] if consecutive else post[rows[i:j]]
+        if adding:
+            product = buffer[: j - i]
+            if every:
+                scored = None
+                np.take(by_answer, answer_row[i:j], axis=0, out=product, mode="clip")
+                product *= block
+            else:
+                scored = np.flatnonzero(items[i:j] >= 0)
+                product[:] = block
+                product[scored] *= by_answer[answer_row[i:j][scored]]
+            total = np.add.reduce(product, axis=1)
+            low = ~(total >= RESCUE_BELOW) | ~np.isfinite(total)
+            if low.any():
+                _rescue(product, total, block, low, scored, log_table, items[i:j], categories[i:j])
+            np.multiply(product, (1.0 / total)[:, None], out=block)
+            if not consecutive:
+                post[rows[i:j]] = block
+        if moments:
+            mean[i:j], cov[i:j] = scaled_moments(block, points, axis)
+    return (mean, cov) if moments else None
+
+
+def _rescue(product, total, block, low, scored, log_table, items, categories) -> None:
+    """Make rows ``low`` of ``product`` (and their ``total``) again from logarithms: the
+    row before the answer (``block``) as ``log``, plus the answer's log-probability row,
+    ``exp(x - max)``; rows that took no scored answer are left as they are."""
+    if scored is not None:
+        took = np.zeros(low.shape, dtype=bool)
+        took[scored] = True
+        low = low & took
+    for r in np.flatnonzero(low):
+        with np.errstate(divide="ignore"):
+            x = np.log(block[r]) + log_table[items[r], categories[r]]
+        x -= np.max(x)
+        np.exp(x, out=x)
+        product[r] = x
+        total[r] = np.add.reduce(x)
+
+
 @attrs.define(eq=False)
 class MultidimensionalState(KernelState):
     """:class:`KernelState` with an ability vector.
@@ -519,7 +690,9 @@ class MultidimensionalState(KernelState):
     prior_covariance: np.ndarray = None
 
     @classmethod
-    def empty_vector(cls, ctx, keys) -> "MultidimensionalState":
+    def empty_vector(cls, ctx, keys, *, grid: bool = True) -> "MultidimensionalState":
+        """A batch of ``keys`` before the prior is set; without ``grid`` the rows carry no
+        grid posterior (``log_post`` is (B, 0): a version-3 design that never reads it)."""
         tab = ctx.multidimensional
         base = KernelState.empty(ctx, keys, 0.0, 1.0)
         b, k = base.size, tab.k
@@ -527,7 +700,8 @@ class MultidimensionalState(KernelState):
         fields.update(
             prior_mean=np.broadcast_to(tab.prior_mean, (b, k)).copy(),
             prior_sd=np.broadcast_to(np.sqrt(np.diag(tab.prior_covariance)), (b, k)).copy(),
-            theta=np.zeros((b, k)), se=np.zeros((b, k)), log_post=np.zeros((b, tab.points.shape[0])),
+            theta=np.zeros((b, k)), se=np.zeros((b, k)),
+            log_post=np.zeros((b, tab.points.shape[0] if grid else 0)),
         )
         return cls(**fields, covariance=np.broadcast_to(tab.prior_covariance, (b, k, k)).copy(),
                    prior_covariance=np.broadcast_to(tab.prior_covariance, (b, k, k)).copy())

@@ -234,6 +234,9 @@ class TestContext:
     #: the one-dimensional kernel.  When set, ``grid`` is the product grid (G, K) and the
     #: log tables live on it.
     multidimensional: object = None
+    #: How the grid posterior is held: "scaled" (decision rules version 3: the density
+    #: divided by its sum) or "log" (versions 1 and 2: the log density).
+    posterior_form: str = "scaled"
 
     @property
     def n_items(self) -> int:
@@ -340,6 +343,11 @@ def build_context(design: Design, bank: ItemBank) -> TestContext:
         max_length=design.stopping.max_items + len(design.blueprint.pretest_positions),
         multidimensional=multidimensional,
     )
+
+
+def with_log_posterior(ctx: TestContext) -> TestContext:
+    """``ctx`` holding the grid posterior as a log density (decision rules versions 1 and 2)."""
+    return attrs.evolve(ctx, posterior_form="log")
 
 
 #: Items per chunk when building the log-probability table (bounds the temporaries).
