@@ -135,8 +135,9 @@ def _full_route_pick(ctx, state, rows, ok):
     return pos, best, np.count_nonzero(values == best[:, None], axis=1)
 
 
-@pytest.mark.parametrize("k, n_items", [(2, 60), (2, 300), (3, 150)])
-def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items):
+@pytest.mark.parametrize("k, n_items, form", [(2, 60, "scaled"), (2, 300, "scaled"), (3, 150, "scaled"),
+                                              (2, 300, "log"), (3, 150, "log")])
+def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items, form):
     """The single-precision screening only decides which items get a double-precision value:
     the pick, its value (bit for bit) and the ties are those of every item in double
     precision; the pick is also the largest det(W + I_j) by numpy (Segall 1996)."""
@@ -150,6 +151,7 @@ def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items):
     slopes[-12:], intercepts[-12:] = slopes[:12], intercepts[:12]
     bank = m2pl_bank(slopes, intercepts)
     ctx = build_context(parse_design(design_text(k=k, se="")), bank)
+    ctx = with_log_posterior(ctx) if form == "log" else ctx  # the screening by exp (1, 2) or cosh (3)
     state = _answered_state(ctx, n_answers=6, rows=40)
     rows = np.arange(state.size)
     # abilities from ordinary to far out (values near single precision's underflow)

@@ -11,7 +11,9 @@ Outside references, named at each check:
   ``scipy.special.softmax`` of the log posterior for a row whose sum underflows (the
   rescue from logarithms);
 * sums over the answers of a batch of one against ``np.add.accumulate`` (numpy's running
-  sum, one term after another).
+  sum, one term after another);
+* the single-precision screening by ``cosh`` (version 3) against the double-precision
+  D-optimality values: within the rounding bound the screening relies on.
 """
 
 from __future__ import annotations
@@ -185,3 +187,28 @@ def test_a_map_design_carries_no_grid_under_the_scaled_form():
     assert state.log_post.shape == (3, 0)
     log_state, _ = kernel.start(with_log_posterior(ctx), keys)
     assert log_state.log_post.shape == (3, ctx.multidimensional.points.shape[0])
+
+
+def test_the_screening_by_cosh_is_within_its_rounding_bound():
+    from adaptive_engine.kernel import multidimensional_selection as sel
+
+    rng = np.random.default_rng(12)
+    for k in (2, 3):
+        bank = random_bank(n=400, k=k, seed=k)
+        ctx = build_context(parse_design(design_text(k=k, se="")), bank)
+        tab = ctx.multidimensional
+        r_n = 60
+        theta = rng.normal(0, 2.0, (r_n, k))
+        theta[0], theta[1] = 4.9, -4.9
+        a = rng.normal(0, 1, (r_n, k, k))
+        w_inv = np.einsum("rij,rkj->rik", a, a) + 0.05 * np.eye(k)  # symmetric positive definite
+        ok = np.ones((r_n, bank.n_items), dtype=bool)
+        with np.errstate(over="ignore"):
+            screened = sel._screened_values_by_cosh(tab.screening, theta, w_inv, tab.params.scaling, k, ok)
+        exact = sel._values_in_full(tab, theta, w_inv)  # double precision, as the pick computes them
+        bound = sel._screening_error(tab.screening, theta, w_inv, tab.params.scaling, k)
+        floor = 1e-30  # below it the screening is not trusted (best_items evaluates in full)
+        big = exact > floor
+        relative = np.abs(screened.astype(float) - exact) / np.where(big, exact, 1.0)
+        assert np.all(relative[big] <= np.broadcast_to(bound[:, None], exact.shape)[big])
+        assert np.all(screened[~big] <= 1e-29)

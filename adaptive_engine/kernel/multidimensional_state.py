@@ -211,18 +211,24 @@ class SinglePrecisionItems:
         The largest ``|a_k|`` of the bank on each dimension.
     largest_intercept : float
         The largest ``|d|`` of the bank.
+    scaled_linear : float32 (K + 1, n)
+        ``D`` times :attr:`linear` (each rounded once from double): ``D z = [theta, 1] .
+        scaled_linear`` (the screening of decision rules version 3).
     """
 
     linear: np.ndarray
     products: np.ndarray
     largest_slope: np.ndarray
     largest_intercept: float
+    scaled_linear: np.ndarray
 
     @classmethod
     def of(cls, params: md.MultidimensionalParameters, products: dict) -> "SinglePrecisionItems":
         slopes = params.slopes
         intercepts = params.intercepts[:, 0]
-        return cls(linear=np.ascontiguousarray(np.vstack([slopes.T, intercepts[None, :]]), dtype=np.float32),
+        linear = np.vstack([slopes.T, intercepts[None, :]])
+        return cls(linear=np.ascontiguousarray(linear, dtype=np.float32),
+                   scaled_linear=np.ascontiguousarray(params.scaling * linear, dtype=np.float32),
                    products=np.stack([v for v in products.values()]).astype(np.float32),
                    largest_slope=np.max(np.abs(slopes), axis=0),
                    largest_intercept=float(np.max(np.abs(intercepts))))
