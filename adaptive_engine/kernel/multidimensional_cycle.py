@@ -333,13 +333,18 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
     :func:`answer` (a simulated chunk), so that for an EAP design (interim and final) the
     interim estimate and covariance of a row that took an answer are the posterior moments
     of its present posterior, computed after its last answer by the same function on the
-    same values; they are taken as they are instead of being computed again.
+    same values; they are taken as they are instead of being computed again.  Under the
+    scaled form (decision rules version 3) this holds for every caller: a row's state
+    changes only through :func:`answer` (a live session resumes by replaying its answers),
+    and its interim EAP is read from the product of its last answer, before that product
+    was divided by its sum and stored (:func:`.multidimensional_state.scaled_add_and_moments`):
+    the final EAP of a row that took an answer is its interim EAP.
     """
     rows = np.asarray(rows, dtype=np.int64)
     status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
     design = ctx.design
-    if (interim_current and design.scoring.method is ScoringMethod.EAP and design.final_method is ScoringMethod.EAP
-            and bool(np.all(state.n_given[rows] > 0))):
+    if ((interim_current or ctx.posterior_form != "log") and design.scoring.method is ScoringMethod.EAP
+            and design.final_method is ScoringMethod.EAP and bool(np.all(state.n_given[rows] > 0))):
         cov = state.covariance[rows]
         return MultidimensionalFinalEstimates(theta=state.theta[rows], se=_se(cov), covariance=cov, status=status)
     tab = ctx.multidimensional

@@ -544,20 +544,20 @@ def add_and_moments(log_post, rows, table=None, items=None, categories=None, poi
 RESCUE_BELOW = 1e-250
 
 
-def scaled_moments(post: np.ndarray, points: np.ndarray, axis: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Posterior mean (R, K) and covariance (R, K, K) of scaled posteriors (R, G).
+def scaled_moments(post: np.ndarray, points: np.ndarray, axis: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Posterior mean (R, K), covariance (R, K, K) and the sums (R,) of rows ``post`` (R, G)
+    of a density on the product grid ``points`` (G, K) up to a factor per row.
 
-    The rows are densities on the product grid ``points`` (G, K) up to a factor (each is
-    divided by its own sum here).  On a grid of two dimensions (G = P * P, the first
-    dimension varying slowest) each row is read three times, as a (P, P) array: its sums
-    along the second dimension ``u_i = sum_j w_ij``, against the second axis
-    ``t_i = sum_j w_ij y_j``, and along the first dimension ``v_j = sum_i w_ij``; then every
-    moment is a sum of P terms: ``sum w = sum_i u_i``, ``E[x] = sum_i u_i x_i / sum w``,
-    ``E[x^2]`` likewise with ``x_i^2``, ``E[y]`` and ``E[y^2]`` from ``v``, and
-    ``E[xy] = sum_i x_i t_i / sum w``.  Other K: one sum of the whole row against each
-    coordinate and product of coordinates.  Every sum runs within one row (``einsum``
-    along a row's own axes), so a row gives the same bits in a batch of any size.  The
-    covariance is ``E[x_i x_j] - E[x_i] E[x_j]``, as :func:`posterior_moments` computes it.
+    On a grid of two dimensions (G = P * P, the first dimension varying slowest) each row
+    is read three times, as a (P, P) array: its sums along the second dimension
+    ``u_i = sum_j w_ij``, against the second axis ``t_i = sum_j w_ij y_j``, and along the
+    first dimension ``v_j = sum_i w_ij``; then every moment is a sum of P terms:
+    ``total = sum_i u_i``, ``E[x] = sum_i u_i x_i / total``, ``E[x^2]`` likewise with
+    ``x_i^2``, ``E[y]`` and ``E[y^2]`` from ``v``, and ``E[xy] = sum_i x_i t_i / total``.
+    Other K: the sum of the whole row and its sums against each coordinate and product of
+    coordinates.  Every sum runs within one row (``einsum`` along a row's own axes), so a
+    row gives the same bits in a batch of any size.  The covariance is
+    ``E[x_i x_j] - E[x_i] E[x_j]``, as :func:`posterior_moments` computes it.
     """
     r_n, g = post.shape
     k = points.shape[1]
@@ -577,7 +577,7 @@ def scaled_moments(post: np.ndarray, points: np.ndarray, axis: np.ndarray) -> tu
         cov[:, 0, 0] = np.einsum("ri,i->r", u, squares) / total - mean[:, 0] * mean[:, 0]
         cov[:, 1, 1] = np.einsum("rj,j->r", v, squares) / total - mean[:, 1] * mean[:, 1]
         cov[:, 0, 1] = cov[:, 1, 0] = np.einsum("ri,i->r", t, axis) / total - mean[:, 0] * mean[:, 1]
-        return mean, cov
+        return mean, cov, total
     total = np.einsum("rg->r", post)
     for j in range(k):
         mean[:, j] = np.einsum("rg,g->r", post, points[:, j]) / total
@@ -585,7 +585,12 @@ def scaled_moments(post: np.ndarray, points: np.ndarray, axis: np.ndarray) -> tu
         for j in range(i, k):
             second = np.einsum("rg,g->r", post, points[:, i] * points[:, j]) / total
             cov[:, i, j] = cov[:, j, i] = second - mean[:, i] * mean[:, j]
-    return mean, cov
+    return mean, cov, total
+
+
+#: Grid values per block of :func:`scaled_add_and_moments` (512 KB of float64: the block
+#: and the product made from it stay in the processor's cache together).
+SCALED_BLOCK_VALUES = 1 << 16
 
 
 def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items=None, categories=None,
@@ -594,15 +599,15 @@ def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items
 
     Each row of ``post`` is the posterior density on the grid divided by its sum.  An
     answer multiplies the row by the answer's probability row
-    ``probabilities[items[k], categories[k]]``; the product's sum ``total`` divides it,
-    so that it sums to 1 again, and is written back; the moments are then read from the
-    row as written (:func:`scaled_moments`), so that reading them again later from the
-    stored row (the final estimates) gives the same bits.  A row whose ``total`` is not
-    finite or is below :data:`RESCUE_BELOW` (its mass where the answer is all but
-    impossible) is made again from logarithms, for that row alone: ``log(row)`` plus the
-    answer's row of ``log_table``, ``exp(x - max)``, divided by its sum.  Rows without a
-    scored answer (``items[k] < 0``) are divided by their sum too.  The rows go through in
-    blocks that fit in the processor's cache, as in :func:`add_and_moments`.
+    ``probabilities[items[k], categories[k]]``; the moments of the product are read with
+    its sum ``total`` (:func:`scaled_moments`), and the product divided by ``total`` (so
+    that it sums to 1 again) is written back.  A product whose ``total`` is not finite or
+    is below :data:`RESCUE_BELOW` (the row's mass where the answer is all but impossible)
+    is made again from logarithms, for that row alone: ``log(row)`` plus the answer's row
+    of ``log_table``, ``exp(x - max)``.  Rows without a scored answer (``items[k] < 0``)
+    are read and divided by their sum as they are.  Without ``probabilities`` the rows are
+    only read (their moments), not written.  The rows go through in blocks that fit in the
+    processor's cache, as in :func:`add_and_moments`.
 
     Parameters
     ----------
@@ -614,7 +619,7 @@ def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items
         is multiplied without them.
     items, categories : int arrays (R,), optional
     points : float array (G, K), axis : float array (P,)
-        The grid and the grid of one dimension (needed with ``moments``).
+        The grid and the grid of one dimension.
 
     Returns
     -------
@@ -627,7 +632,7 @@ def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items
     cov = np.empty((r_n, k, k))
     if r_n == 0:
         return (mean, cov) if moments else None
-    step = max(1, BLOCK_VALUES // max(1, post.shape[-1]))
+    step = max(1, SCALED_BLOCK_VALUES // max(1, post.shape[-1]))
     consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
     adding = probabilities is not None
     every = adding and bool(np.all(items >= 0))
@@ -638,43 +643,53 @@ def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items
     for i in range(0, r_n, step):
         j = min(i + step, r_n)
         block = post[rows[i] : rows[i] + (j - i)] if consecutive else post[rows[i:j]]
-        if adding:
-            product = buffer[: j - i]
-            if every:
-                scored = None
-                np.take(by_answer, answer_row[i:j], axis=0, out=product, mode="clip")
-                product *= block
-            else:
-                scored = np.flatnonzero(items[i:j] >= 0)
-                product[:] = block
-                product[scored] *= by_answer[answer_row[i:j][scored]]
-            total = np.add.reduce(product, axis=1)
-            low = ~(total >= RESCUE_BELOW) | ~np.isfinite(total)
-            if low.any():
-                _rescue(product, total, block, low, scored, log_table, items[i:j], categories[i:j])
-            np.multiply(product, (1.0 / total)[:, None], out=block)
-            if not consecutive:
-                post[rows[i:j]] = block
+        if not adding:
+            if moments:
+                mean[i:j], cov[i:j], _ = scaled_moments(block, points, axis)
+            continue
+        product = buffer[: j - i]
+        if every:
+            scored = None
+            np.take(by_answer, answer_row[i:j], axis=0, out=product, mode="clip")
+            product *= block
+        else:
+            scored = np.flatnonzero(items[i:j] >= 0)
+            product[:] = block
+            product[scored] *= by_answer[answer_row[i:j][scored]]
         if moments:
-            mean[i:j], cov[i:j] = scaled_moments(block, points, axis)
+            m, c, total = scaled_moments(product, points, axis)
+        else:
+            total = np.add.reduce(product, axis=1)
+        low = ~(total >= RESCUE_BELOW) | ~np.isfinite(total)
+        if low.any():
+            redone = _rescue(product, block, low, scored, log_table, items[i:j], categories[i:j])
+            if moments:
+                m[redone], c[redone], total[redone] = scaled_moments(product[redone], points, axis)
+            else:
+                total[redone] = np.add.reduce(product[redone], axis=1)
+        np.multiply(product, (1.0 / total)[:, None], out=block)
+        if not consecutive:
+            post[rows[i:j]] = block
+        if moments:
+            mean[i:j], cov[i:j] = m, c
     return (mean, cov) if moments else None
 
 
-def _rescue(product, total, block, low, scored, log_table, items, categories) -> None:
-    """Make rows ``low`` of ``product`` (and their ``total``) again from logarithms: the
-    row before the answer (``block``) as ``log``, plus the answer's log-probability row,
-    ``exp(x - max)``; rows that took no scored answer are left as they are."""
+def _rescue(product, block, low, scored, log_table, items, categories) -> np.ndarray:
+    """Make rows ``low`` of ``product`` again from logarithms: the row before the answer
+    (``block``) as ``log``, plus the answer's log-probability row, ``exp(x - max)``; rows
+    that took no scored answer are left as they are.  Returns the rows redone."""
     if scored is not None:
         took = np.zeros(low.shape, dtype=bool)
         took[scored] = True
         low = low & took
-    for r in np.flatnonzero(low):
+    redone = np.flatnonzero(low)
+    for r in redone:
         with np.errstate(divide="ignore"):
             x = np.log(block[r]) + log_table[items[r], categories[r]]
         x -= np.max(x)
-        np.exp(x, out=x)
-        product[r] = x
-        total[r] = np.add.reduce(x)
+        np.exp(x, out=product[r])
+    return redone
 
 
 @attrs.define(eq=False)
