@@ -549,35 +549,23 @@ def scaled_moments(post: np.ndarray, points: np.ndarray, axis: np.ndarray) -> tu
     of a density on the product grid ``points`` (G, K) up to a factor per row.
 
     On a grid of two dimensions (G = P * P, the first dimension varying slowest) each row
-    is read three times, as a (P, P) array: its sums along the second dimension
-    ``u_i = sum_j w_ij``, against the second axis ``t_i = sum_j w_ij y_j``, and along the
-    first dimension ``v_j = sum_i w_ij``; then every moment is a sum of P terms:
-    ``total = sum_i u_i``, ``E[x] = sum_i u_i x_i / total``, ``E[x^2]`` likewise with
-    ``x_i^2``, ``E[y]`` and ``E[y^2]`` from ``v``, and ``E[xy] = sum_i x_i t_i / total``.
-    Other K: the sum of the whole row and its sums against each coordinate and product of
-    coordinates.  Every sum runs within one row (``einsum`` along a row's own axes), so a
-    row gives the same bits in a batch of any size.  The covariance is
-    ``E[x_i x_j] - E[x_i] E[x_j]``, as :func:`posterior_moments` computes it.
+    is read three times, as a (P, P) array (:func:`_marginal_sums`): its sums along the
+    second dimension ``u_i = sum_j w_ij``, against the second axis ``t_i = sum_j w_ij y_j``,
+    and along the first dimension ``v_j = sum_i w_ij``; then every moment is a sum of P
+    terms (:func:`_moments_of_marginals`).  Other K: the sum of the whole row and its sums
+    against each coordinate and product of coordinates.  Every sum runs within one row
+    (``einsum`` along a row's own axes), so a row gives the same bits in a batch of any
+    size.  The covariance is ``E[x_i x_j] - E[x_i] E[x_j]``, as :func:`posterior_moments`
+    computes it.
     """
-    r_n, g = post.shape
-    k = points.shape[1]
-    p = axis.shape[0]
+    if _on_square_grid(post, points, axis):
+        u, t, v = _marginal_sums(post, axis)
+        total = np.einsum("ri->r", u)
+        mean, cov = _moments_of_marginals(u, t, v, total, axis)
+        return mean, cov, total
+    r_n, k = post.shape[0], points.shape[1]
     mean = np.empty((r_n, k))
     cov = np.empty((r_n, k, k))
-    if k == 2 and g == p * p:
-        square = post.reshape(r_n, p, p)
-        ones = np.ones(p)
-        u = np.einsum("rij,j->ri", square, ones)
-        t = np.einsum("rij,j->ri", square, axis)
-        v = np.einsum("rij,i->rj", square, ones)
-        total = np.einsum("ri->r", u)
-        squares = axis * axis
-        mean[:, 0] = np.einsum("ri,i->r", u, axis) / total
-        mean[:, 1] = np.einsum("rj,j->r", v, axis) / total
-        cov[:, 0, 0] = np.einsum("ri,i->r", u, squares) / total - mean[:, 0] * mean[:, 0]
-        cov[:, 1, 1] = np.einsum("rj,j->r", v, squares) / total - mean[:, 1] * mean[:, 1]
-        cov[:, 0, 1] = cov[:, 1, 0] = np.einsum("ri,i->r", t, axis) / total - mean[:, 0] * mean[:, 1]
-        return mean, cov, total
     total = np.einsum("rg->r", post)
     for j in range(k):
         mean[:, j] = np.einsum("rg,g->r", post, points[:, j]) / total
@@ -586,6 +574,35 @@ def scaled_moments(post: np.ndarray, points: np.ndarray, axis: np.ndarray) -> tu
             second = np.einsum("rg,g->r", post, points[:, i] * points[:, j]) / total
             cov[:, i, j] = cov[:, j, i] = second - mean[:, i] * mean[:, j]
     return mean, cov, total
+
+
+def _on_square_grid(post, points, axis) -> bool:
+    return points.shape[1] == 2 and post.shape[-1] == axis.shape[0] ** 2
+
+
+def _marginal_sums(post, axis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``u``, ``t``, ``v`` (R, P) of rows ``post`` (R, P * P) on a grid of two dimensions."""
+    p = axis.shape[0]
+    square = post.reshape(post.shape[0], p, p)
+    ones = np.ones(p)
+    return (np.einsum("rij,j->ri", square, ones), np.einsum("rij,j->ri", square, axis),
+            np.einsum("rij,i->rj", square, ones))
+
+
+def _moments_of_marginals(u, t, v, total, axis) -> tuple[np.ndarray, np.ndarray]:
+    """Mean (R, 2) and covariance (R, 2, 2) from the sums of :func:`_marginal_sums`:
+    ``E[x] = sum_i u_i x_i / total``, ``E[x^2]`` likewise with ``x_i^2``, ``E[y]`` and
+    ``E[y^2]`` from ``v``, ``E[xy] = sum_i x_i t_i / total``."""
+    r_n = u.shape[0]
+    mean = np.empty((r_n, 2))
+    cov = np.empty((r_n, 2, 2))
+    squares = axis * axis
+    mean[:, 0] = np.einsum("ri,i->r", u, axis) / total
+    mean[:, 1] = np.einsum("rj,j->r", v, axis) / total
+    cov[:, 0, 0] = np.einsum("ri,i->r", u, squares) / total - mean[:, 0] * mean[:, 0]
+    cov[:, 1, 1] = np.einsum("rj,j->r", v, squares) / total - mean[:, 1] * mean[:, 1]
+    cov[:, 0, 1] = cov[:, 1, 0] = np.einsum("ri,i->r", t, axis) / total - mean[:, 0] * mean[:, 1]
+    return mean, cov
 
 
 #: Grid values per block of :func:`scaled_add_and_moments` (512 KB of float64: the block
@@ -640,12 +657,28 @@ def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items
         by_answer = probabilities.reshape(-1, probabilities.shape[-1])  # row c + C * item
         answer_row = np.where(items >= 0, items, 0) * probabilities.shape[1] + categories
         buffer = np.empty((min(step, r_n), post.shape[-1]))
+    # on a square grid the marginal sums of every block are kept, the moments read once
+    square = moments and _on_square_grid(post, points, axis)
+    if square:
+        p = axis.shape[0]
+        u, t, v = np.empty((r_n, p)), np.empty((r_n, p)), np.empty((r_n, p))
+        total = np.empty(r_n)
+
+    def read(values, at):
+        if square:
+            u[at], t[at], v[at] = _marginal_sums(values, axis)
+            total[at] = np.einsum("ri->r", u[at])
+            return total[at]
+        if moments:
+            mean[at], cov[at], sums = scaled_moments(values, points, axis)
+            return sums
+        return np.add.reduce(values, axis=1)
+
     for i in range(0, r_n, step):
         j = min(i + step, r_n)
         block = post[rows[i] : rows[i] + (j - i)] if consecutive else post[rows[i:j]]
         if not adding:
-            if moments:
-                mean[i:j], cov[i:j], _ = scaled_moments(block, points, axis)
+            read(block, slice(i, j))
             continue
         product = buffer[: j - i]
         if every:
@@ -656,22 +689,16 @@ def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items
             scored = np.flatnonzero(items[i:j] >= 0)
             product[:] = block
             product[scored] *= by_answer[answer_row[i:j][scored]]
-        if moments:
-            m, c, total = scaled_moments(product, points, axis)
-        else:
-            total = np.add.reduce(product, axis=1)
-        low = ~(total >= RESCUE_BELOW) | ~np.isfinite(total)
+        sums = read(product, slice(i, j))
+        low = ~(sums >= RESCUE_BELOW) | ~np.isfinite(sums)
         if low.any():
             redone = _rescue(product, block, low, scored, log_table, items[i:j], categories[i:j])
-            if moments:
-                m[redone], c[redone], total[redone] = scaled_moments(product[redone], points, axis)
-            else:
-                total[redone] = np.add.reduce(product[redone], axis=1)
-        np.multiply(product, (1.0 / total)[:, None], out=block)
+            sums[redone] = read(product[redone], i + redone)
+        np.multiply(product, (1.0 / sums)[:, None], out=block)
         if not consecutive:
             post[rows[i:j]] = block
-        if moments:
-            mean[i:j], cov[i:j] = m, c
+    if square:
+        mean[:], cov[:] = _moments_of_marginals(u, t, v, total, axis)
     return (mean, cov) if moments else None
 
 
