@@ -4,8 +4,11 @@ A design runs here when its bank has K > 1 dimensions or when it asks for it (ve
 keys, a multidimensional criterion; see
 :func:`adaptive_engine.design.bank_fit.runs_multidimensional`); K = 1 is a case of the same
 code.  The posterior of each examinee lives on a product grid of ``points ** K`` points
-(:class:`MultidimensionalTables`), updated by adding log-probability rows exactly as the
-one-dimensional kernel does on its line grid, so the bookkeeping of
+(:class:`MultidimensionalTables`), updated as the one-dimensional kernel does on its line
+grid: under decision rules 1 and 2 (``ctx.posterior_form == "log"``) a row is a log density
+to which log-probability rows are added (:func:`add_and_moments`); under version 3
+(``"scaled"``) a row is the density divided by its sum, multiplied by probability rows
+(:func:`scaled_add_and_moments`).  The bookkeeping of
 :mod:`adaptive_engine.kernel.cycle` (answers, blueprint counts, enemies, item sets, pretest
 seeding) and the selection machinery of :mod:`adaptive_engine.kernel.selection` (exposure
 control, blueprint, eligibility) serve both unchanged.
