@@ -284,7 +284,9 @@ def test_summed_information_works_in_blocks_of_items(monkeypatch, exam):
      "[selection] criterion: max_fisher_information ranks items by a one-dimensional quantity and is not "
      "available with an ability of 2 dimensions"),
     (["simulate", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D, "--examinees", "5",
-      "--out", "OUT"], "[stopping.sprt]: this rule measures one ability and is not available with an ability of 2"),
+      "--out", "OUT"],
+     "[stopping.sprt]: the likelihood ratio test compares two points of one ability and is not available "
+     "with an ability of 2"),
     (["link", EXAM_2D, "--to", REPO / "item_banks" / "meridian_valley_operator.json", "--out", "OUT.json"],
      "BANK: bank meridian_valley_operator_2d holds multidimensional models"),
 ])

@@ -147,6 +147,136 @@ def test_one_dimension_agrees_with_the_one_dimensional_calibration():
     assert multi.n_parameters == single.n_parameters == 20
 
 
+def m3pl_simple_structure(n_items: int, seed: int) -> ItemBank:
+    """Two dimensions, half the items on each; slopes U(1, 2.2), intercepts N(0, 1), lower
+    asymptotes U(0.1, 0.3) (four-option items guessed at about 1 in 4-5)."""
+    rng = np.random.default_rng(seed)
+    half = n_items // 2
+    slopes = np.zeros((n_items, 2))
+    slopes[:half, 0] = rng.uniform(1.0, 2.2, half)
+    slopes[half:, 1] = rng.uniform(1.0, 2.2, n_items - half)
+    return make_bank(slopes, rng.normal(0.0, 1.0, (n_items, 1)), model="M3PL", c=rng.uniform(0.1, 0.3, n_items),
+                     names=("operations", "safety"))
+
+
+def test_recovers_a_two_dimensional_m3pl_bank_with_its_lower_asymptotes():
+    # Reference: the parameters that generated the answers (recovery of simulated
+    # parameters).  5,000 examinees x 20 M3PL items (10 per dimension), correlation 0.5, c
+    # estimated under the default beta(5, 17) prior.  With this much data the reported SEs
+    # are about 0.17 (slopes), 0.18 (intercepts) and 0.05 (c); over ten samples (seeds 100-109
+    # of this bank generator, measured while writing the test) the RMSEs were 0.12-0.22
+    # (slopes), 0.12-0.20 (intercepts), 0.031-0.058 (c) and the correlation's error at most
+    # 0.03.  The bounds -- 0.3, 0.3, 0.08 and 0.06 -- are about 1.5 times the mean reported SE
+    # (common practice: recovery within one to two sampling errors) and above every one of
+    # those ten samples; the correlation's is about three of its SEs (0.015-0.02).
+    truth = m3pl_simple_structure(20, seed=100)
+    table, _ = draw_answers(truth, 5000, [[1.0, 0.5], [0.5, 1.0]], seed=200)
+    result = calibrate_responses(table, template=truth)
+    assert result.converged
+    order = [list(result.bank.item_ids).index(i) for i in truth.item_ids]
+    slopes, intercepts, c = result.bank.slopes[order], result.bank.intercepts[order], result.bank.c[order]
+    free = truth.slopes > 0
+    assert np.sqrt(np.mean((slopes[free] - truth.slopes[free]) ** 2)) < 0.3
+    assert np.all(slopes[~free] == 0.0)
+    assert np.sqrt(np.mean((intercepts - truth.intercepts) ** 2)) < 0.3
+    c_rmse = np.sqrt(np.mean((c - truth.c) ** 2))
+    assert c_rmse < 0.08, c_rmse
+    assert abs(result.latent_correlation[0, 1] - 0.5) < 0.06
+    # the reported SE of c is of the size of the estimates' spread (within a factor of 2)
+    se_c = result.standard_errors["lower_asymptotes"][order]
+    assert np.all((se_c > 0.01) & (se_c < 0.15))
+    assert 0.5 < c_rmse / np.sqrt(np.mean(se_c**2)) < 2.0
+    # parameters counted: 20 slopes, 20 intercepts, 20 lower asymptotes, one correlation
+    # (information criteria by their definitions, Akaike 1974; Schwarz 1978)
+    assert result.n_parameters == 61
+    assert result.aic == pytest.approx(-2 * result.log_likelihood + 2 * 61)
+    assert result.bic == pytest.approx(-2 * result.log_likelihood + 61 * np.log(5000))
+    # the log posterior adds the beta(5, 17) log density of every c without its normalising
+    # constant, log B(5, 17) (scipy.stats.beta and scipy.special.betaln)
+    from scipy.special import betaln
+
+    log_beta = stats.beta(5, 17).logpdf(c).sum() + 20 * betaln(5, 17)
+    assert result.log_posterior - result.log_likelihood == pytest.approx(log_beta, rel=1e-9)
+    summary = result.summary()
+    assert summary["lower_asymptote_prior"] == "beta:5,17" and summary["lower_asymptotes_estimated"] == 20
+    assert summary["standard_errors"]["lower_asymptotes"]["count"] == 20
+
+
+def test_one_dimensional_m3pl_agrees_with_the_one_dimensional_3pl_calibration():
+    # Reference: with K = 1 the M3PL is the 3PL (a = a1, b = -intercept / a1, the same c),
+    # and the one-dimensional calibration is checked against direct maximisation with
+    # scipy.optimize (tests/test_calibration_reference.py).  With the same beta(4, 16) prior
+    # on c (in logit c in both), no prior on a and b (the mode does not depend on how they are
+    # written then) and the same 61-point grid, both reach the same estimate (measured: 1e-7
+    # and less); bound 1e-5.
+    from adaptive_engine.calibration import prior_choice_from_texts
+
+    rng = np.random.default_rng(81)
+    truth = make_bank(rng.uniform(0.8, 2.0, (8, 1)), rng.normal(0.0, 1.0, (8, 1)), model="M3PL",
+                      c=rng.uniform(0.1, 0.3, 8))
+    table, _ = draw_answers(truth, 1500, [[1.0]], seed=82)
+    priors = prior_choice_from_texts(["c=beta:4,16", "a=none", "b=none"], use_defaults=False)
+    multi = calibrate_responses(table, template=truth, settings=CalibrationSettings(
+        points_per_dimension=61, tolerance=1e-9, priors=prior_choice_from_texts(["c=beta:4,16"])))
+    single = calibrate_responses(table, model="3PL", settings=CalibrationSettings(tolerance=1e-9, priors=priors))
+    order = [list(single.bank.item_ids).index(i) for i in multi.bank.item_ids]
+    a, b, c = single.bank.a[order], single.bank.b[order], single.bank.c[order]
+    np.testing.assert_allclose(multi.bank.slopes[:, 0], a, atol=1e-5)
+    np.testing.assert_allclose(multi.bank.intercepts[:, 0], -a * b, atol=1e-5)
+    np.testing.assert_allclose(multi.bank.c, c, atol=1e-5)
+    assert multi.log_likelihood == pytest.approx(single.log_likelihood, abs=1e-5)
+    assert multi.log_posterior == pytest.approx(single.log_posterior, abs=1e-5)
+    np.testing.assert_allclose(multi.standard_errors["lower_asymptotes"], single.standard_errors["c"][order],
+                               rtol=1e-5)
+    assert multi.n_parameters == single.n_parameters == 24
+
+
+def test_fixed_lower_asymptotes_stay_fixed_and_others_are_estimated():
+    truth = m3pl_simple_structure(8, seed=7)
+    table, _ = draw_answers(truth, 600, [[1.0, 0.3], [0.3, 1.0]], seed=8)
+    held = ["Q002", "Q007"]
+    result = calibrate_responses(table, template=truth, settings=CalibrationSettings(
+        fixed_lower_asymptotes=held, points_per_dimension=11))
+    by_id = dict(zip(result.bank.item_ids, result.bank.c))
+    truth_c = dict(zip(truth.item_ids, truth.c))
+    assert all(by_id[i] == truth_c[i] for i in held)  # the template's value, exactly
+    assert all(by_id[i] != truth_c[i] for i in truth.item_ids if i not in held)
+    se = dict(zip(result.bank.item_ids, result.standard_errors["lower_asymptotes"]))
+    assert all(np.isnan(se[i]) for i in held) and all(se[i] > 0 for i in truth.item_ids if i not in held)
+    assert result.n_parameters == 8 + 8 + 6 + 1
+    # no prior on c (c=none): maximum likelihood, the log posterior is the log-likelihood (a few
+    # cycles only: without a prior several of these c run towards 0 and take hundreds)
+    from adaptive_engine.calibration import prior_choice_from_texts
+
+    plain = calibrate_responses(table, template=truth, settings=CalibrationSettings(
+        points_per_dimension=11, priors=prior_choice_from_texts(["c=none"]), max_iterations=10))
+    assert plain.lower_asymptote_prior is None and plain.log_posterior == plain.log_likelihood
+    assert plain.summary()["lower_asymptote_prior"] is None and plain.n_parameters == 8 + 8 + 8 + 1
+
+
+def test_bad_fixed_lower_asymptotes_and_priors_are_refused_by_name():
+    from adaptive_engine.calibration import prior_choice_from_texts
+
+    template = make_bank([[1, 0], [1, 0], [0, 1], [0, 1]], np.zeros((4, 1)), model=["M3PL", "M2PL", "M3PL", "M2PL"],
+                         c=[0.2, 0, 0.2, 0])
+    table = _answers_for(template)
+    with pytest.raises(CalibrationError) as info:
+        calibrate_responses(table, template=template,
+                            settings=CalibrationSettings(fixed_lower_asymptotes="Q001,Q002,Q999"))
+    assert [(p.location, p.message) for p in info.value.problems] == [
+        ("setting fixed_lower_asymptotes", "item Q002 is an M2PL item; only M3PL items have a lower asymptote"),
+        ("setting fixed_lower_asymptotes", "item Q999 is not in the template")]
+    with pytest.raises(CalibrationError) as info:
+        calibrate_responses(table, template=template,
+                            settings=CalibrationSettings(priors=prior_choice_from_texts(["c=beta:4,16",
+                                                                                         "b=normal:0,2"])))
+    assert info.value.problems[0].location == "prior" and "a prior on b" in info.value.problems[0].message
+    one_dimensional = ResponseTable.from_arrays(["p1", "p2"], ["A", "A"], [0, 1])
+    with pytest.raises(CalibrationError) as info:
+        calibrate_responses(one_dimensional, model="3PL", settings=CalibrationSettings(fixed_lower_asymptotes="all"))
+    assert info.value.problems[0].location == "setting fixed_lower_asymptotes"
+
+
 def test_dimensions_the_answers_do_not_tell_apart_stop_at_the_bound_with_a_warning():
     # six items, 300 examinees, true correlation 0.95: the estimate runs into the bound
     from adaptive_engine.calibration.multidimensional_em import MAX_CORRELATION
@@ -226,45 +356,65 @@ def test_marginal_log_likelihood_agrees_with_scipy_dblquad():
 # (c) the M-step derivatives against numerical differentiation
 
 
-@pytest.mark.parametrize("model, categories, c", [("M2PL", 2, 0.0), ("M3PL", 2, 0.2), ("MGRM", 4, 0.0)])
-def test_m_step_gradient_matches_central_differences(model, categories, c):
-    # Reference: central differences of the M-step objective Q_j = sum r log P (numerical
-    # differentiation, step 1e-6; agreement to 1e-5 relative is what its rounding allows).
+@pytest.mark.parametrize("model, categories, c, c_prior", [
+    ("M2PL", 2, 0.0, None), ("M3PL", 2, 0.2, None), ("M3PL", 2, 0.2, "beta:5,17"), ("MGRM", 4, 0.0, None)])
+def test_m_step_gradient_matches_numerical_differentiation(model, categories, c, c_prior):
+    # Reference: numerical differentiation of the M-step objective Q_j = sum r log P (+ the
+    # log beta prior of an estimated c), item by item, with scipy.optimize.approx_fprime
+    # (forward differences, step 1e-7: its truncation and rounding errors stay below 1e-5
+    # relative to the largest gradient entry, the bound).  The M3PL rows have c estimated
+    # (in logit c) on two items and fixed on the middle one.
+    from scipy.optimize import approx_fprime
+
+    from adaptive_engine.calibration.priors import parse_prior
+
     rng = np.random.default_rng(5)
     grid = product_grid(2, 7, 3.0)
     m = categories - 1
     free = np.array([[True, True], [True, False], [False, True]])
     group = MultidimensionalGroup(model=model, n_categories=categories, rows=np.arange(3), free=free,
-                                  c=np.full(3, c))
-    eta = np.column_stack([np.where(free, rng.normal(0, 0.3, (3, 2)), 0.0),
-                           np.sort(rng.normal(0, 1, (3, m)), axis=1)[:, ::-1]])
+                                  c=np.full(3, c), free_c=np.array([True, False, True]) if model == "M3PL" else None,
+                                  c_prior=parse_prior(f"c={c_prior}")[1] if c_prior else None)
+    columns = [np.where(free, rng.normal(0, 0.3, (3, 2)), 0.0), np.sort(rng.normal(0, 1, (3, m)), axis=1)[:, ::-1]]
+    if model == "M3PL":
+        columns.append(np.array([[-1.2], [0.0], [-1.6]]))  # c = 0.23 and 0.17 where estimated
+    eta = np.column_stack(columns)
+    assert eta.shape[1] == group.n_columns
     r = rng.gamma(2.0, 3.0, (3, grid.shape[0], categories))
     grad, info = score_and_information(group, eta, r, grid, 1.702)
     numeric = np.zeros_like(grad)
-    h = 1e-6
-    for col in range(eta.shape[1]):
-        up, down = eta.copy(), eta.copy()
-        up[:, col] += h
-        down[:, col] -= h
-        numeric[:, col] = (group_objective(group, up, r, grid, 1.702)
-                           - group_objective(group, down, r, grid, 1.702)) / (2 * h)
-    np.testing.assert_allclose(grad, numeric, rtol=1e-5, atol=1e-5 * np.abs(numeric).max())
-    assert np.all(grad[~group.free_columns()] == 0.0)  # a slope fixed at 0 has no derivative
+    for row in range(3):
+        one = group.subset([row])
+
+        def objective(x, row=row, one=one):
+            return float(group_objective(one, x[None, :], r[row:row + 1], grid, 1.702)[0])
+
+        numeric[row] = approx_fprime(eta[row], objective, 1e-7)
+    free_columns = group.free_columns()
+    np.testing.assert_allclose(grad[free_columns], numeric[free_columns], rtol=1e-5,
+                               atol=1e-5 * np.abs(numeric).max())
+    assert np.all(grad[~free_columns] == 0.0)  # a slope fixed at 0 or a fixed c has no derivative
+    if model == "M3PL":
+        assert free_columns[:, -1].tolist() == [True, False, True]
+        np.testing.assert_array_equal(group.lower_asymptotes(eta)[1], 0.2)  # the fixed value exactly
     # the expected information is positive semi-definite and the scoring steps go uphill
     assert np.all(np.linalg.eigvalsh(info) > -1e-9)
     moved = fisher_steps(group, eta, r, grid, 1.702)
     assert np.all(group_objective(group, moved, r, grid, 1.702) >= group_objective(group, eta, r, grid, 1.702))
-    np.testing.assert_array_equal(moved[~group.free_columns()], eta[~group.free_columns()])
+    np.testing.assert_array_equal(moved[~free_columns], eta[~free_columns])
 
 
 @pytest.mark.parametrize("dense", [True, False])
-def test_per_person_scores_sum_to_the_gradient_of_the_marginal_log_likelihood(dense, monkeypatch):
+@pytest.mark.parametrize("model", ["M2PL", "M3PL"])
+def test_per_person_scores_sum_to_the_gradient_of_the_marginal_log_likelihood(dense, model, monkeypatch):
     # Reference: central differences of the marginal log-likelihood (summed over persons)
-    # in each item parameter and in the correlation; the standard errors are built from
-    # these per-person scores (their cross-product), computed for complete data by one
-    # product per group and for sparse data answer by answer -- both are checked.
+    # in each item parameter (logit c of the M3PL included) and in the correlation; the
+    # standard errors are built from these per-person scores (their cross-product), computed
+    # for complete data by one product per group and for sparse data answer by answer --
+    # both are checked.
     truth = make_bank([[1.0, 0.0], [0.7, 0.0], [0.0, 1.3], [0.5, 0.9]], [[0.2], [-0.6], [0.4], [0.0]],
-                      names=("operations", "safety"))
+                      names=("operations", "safety"), model=model,
+                      c=[0.2, 0.15, 0.25, 0.2] if model == "M3PL" else None)
     table, _ = draw_answers(truth, 80, [[1.0, 0.3], [0.3, 1.0]], seed=9)
     keep = np.random.default_rng(3).random(table.person.size) < 0.7  # some answers missing
     table = ResponseTable.from_arrays(table.person_ids[table.person[keep]], table.item_ids[table.item[keep]],
@@ -343,9 +493,10 @@ def test_recovers_a_two_dimensional_graded_bank():
 def test_a_template_of_mixed_models_with_cross_loadings_from_the_demo_bank():
     # Reference: the generating parameters (recovery).  21 items of the two-dimensional demo
     # bank -- M2PL, M3PL and MGRM, on one dimension or on both -- answered by 1,500 simulated
-    # examinees (correlation 0.6).  The lower asymptotes are held at the template's values;
-    # with 1,500 persons the slope SEs are 0.1-0.2 (M3PL and cross-loading items the widest),
-    # so the bound is 0.25; the correlation within 0.1.
+    # examinees (correlation 0.6).  The lower asymptotes are held at the template's values
+    # (fixed_lower_asymptotes="all": they stay exactly what the template says); with 1,500
+    # persons the slope SEs are 0.1-0.2 (M3PL and cross-loading items the widest), so the
+    # bound is 0.25; the correlation within 0.1.
     demo = load_bank(REPO / "item_banks" / "meridian_valley_operator_2d.json")
     free = demo.slopes > 0
     rows = []
@@ -356,7 +507,7 @@ def test_a_template_of_mixed_models_with_cross_loadings_from_the_demo_bank():
             rows += [i for i in on if demo.model[i] == model][:count]
     truth = demo.subset(np.array(rows))
     table, _ = draw_answers(truth, 1500, [[1.0, 0.6], [0.6, 1.0]], seed=71)
-    result = calibrate_responses(table, template=truth)
+    result = calibrate_responses(table, template=truth, settings=CalibrationSettings(fixed_lower_asymptotes="all"))
     assert result.converged
     order = [list(result.bank.item_ids).index(i) for i in truth.item_ids]
     slopes = result.bank.slopes[order]
@@ -365,6 +516,9 @@ def test_a_template_of_mixed_models_with_cross_loadings_from_the_demo_bank():
     assert np.all(slopes[~on] == 0.0)
     assert abs(result.latent_correlation[0, 1] - 0.6) < 0.1
     np.testing.assert_array_equal(result.bank.c[order], truth.c)
+    assert np.all(np.isnan(result.standard_errors["lower_asymptotes"]))
+    assert result.n_parameters == int(on.sum()) + int(np.isfinite(truth.intercepts).sum()) + 1  # no c counted
+    assert result.summary()["lower_asymptotes_fixed"] == 7 and result.lower_asymptote_prior is None
     for field in ("model", "area", "status", "label"):
         np.testing.assert_array_equal(getattr(result.bank, field)[order], getattr(truth, field))
     assert result.bank.dimension_names == demo.dimension_names
@@ -545,3 +699,35 @@ def test_cli_refusals_name_the_flags(two_dimensional_files):
     bad.write_text("item_id,model,a1,a2,intercept\nQ001,M2PL,1.0,0.5,0.1\nQ002,M2PL,0.7,,0.3\n")
     res = CliRunner().invoke(main, ["calibrate", str(answers), "--template", str(bad), "--out", str(out)])
     assert res.exit_code == 2 and "line 3" in res.output and not out.exists()
+
+
+def test_cli_estimates_lower_asymptotes_holds_the_ones_named_and_refuses_bad_names(tmp_path):
+    truth = m3pl_simple_structure(8, seed=7)
+    table, _ = draw_answers(truth, 600, [[1.0, 0.3], [0.3, 1.0]], seed=8)
+    template, answers, out, report = (tmp_path / "template.json", tmp_path / "answers.csv", tmp_path / "out.json",
+                                      tmp_path / "items.csv")
+    write_bank(truth, template)
+    answers.write_text("person_id,item_id,response\n" + "".join(
+        f"{table.person_ids[p]},{table.item_ids[i]},{r}\n"
+        for p, i, r in zip(table.person, table.item, table.response)))
+    base = ["calibrate", str(answers), "--template", str(template), "--out", str(out), "--points-per-dimension", "11"]
+    res = CliRunner().invoke(main, base + ["--prior", "c=beta:4,16", "--fixed-lower-asymptotes", "Q001",
+                                           "--fit-report", str(report), "--json"])
+    assert res.exit_code == 0, res.output
+    summary = json.loads(res.stdout)
+    assert summary["lower_asymptote_prior"] == "beta:4,16"
+    assert (summary["lower_asymptotes_estimated"], summary["lower_asymptotes_fixed"]) == (7, 1)
+    assert summary["parameters"] == 8 + 8 + 7 + 1
+    written = load_bank(out)
+    assert written.c[list(written.item_ids).index("Q001")] == truth.c[0]
+    header = report.read_text().splitlines()[0].split(",")
+    assert header[-3:] == ["c", "se_c", "mdisc"]
+    res = CliRunner().invoke(main, base)
+    assert res.exit_code == 0 and "lower asymptotes (M3PL): 8 estimated with prior c ~ beta:5,17" in res.output
+    assert "standard error of the lower asymptotes" in res.output
+    out.unlink()
+    res = CliRunner().invoke(main, base + ["--fixed-lower-asymptotes", "Q001,NOPE"])
+    assert res.exit_code == 2 and "--fixed-lower-asymptotes: item NOPE is not in the template" in res.output
+    res = CliRunner().invoke(main, base + ["--prior", "a=lognormal:0,0.5"])
+    assert res.exit_code == 2 and "--prior: a prior on a is for one-dimensional models" in res.output
+    assert not out.exists()

@@ -408,9 +408,9 @@ def test_options_without_meaning_for_an_ability_vector_are_refused_at_their_keys
     def located(text):
         return {p.location: p.message for p in check_design_against_bank(parse_design(text), bank)}
 
-    found = located("[scoring]\nmethod = \"mle\"\n[selection]\ncriterion = \"max_fisher_information\"\n"
+    found = located("[scoring]\nmethod = \"wle\"\n[selection]\ncriterion = \"max_fisher_information\"\n"
                     "[stopping]\nse_per_dimension = [0.3, 0.3, 0.3]\n[stopping.sprt]\ncut = 0.0\n")
-    assert "use eap or map" in found["[scoring] method"]
+    assert "use eap, map or mle" in found["[scoring] method"]
     assert "d_optimality" in found["[selection] criterion"]
     assert "K = 2" in found["[stopping] se_per_dimension"]
     assert "[stopping.sprt]" in found

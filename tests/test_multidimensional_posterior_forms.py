@@ -188,6 +188,12 @@ def test_a_map_design_carries_no_grid_under_the_scaled_form():
     assert state.log_post.shape == (3, 0)
     log_state, _ = kernel.start(with_log_posterior(ctx), keys)
     assert log_state.log_post.shape == (3, ctx.multidimensional.points.shape[0])
+    # a MAP design whose stop reads the posterior (the predicted SE reduction) keeps it
+    reads = build_context(parse_design(design_text(extra='method = "map"', se="se_reduction = 0.01",
+                                                   max_items=8)), bank)
+    state, _ = kernel.start(reads, keys)
+    assert state.log_post.shape == (3, ctx.multidimensional.points.shape[0])
+    np.testing.assert_allclose(state.log_post.sum(axis=1), 1.0, rtol=1e-14)
 
 
 def test_the_screening_by_cosh_is_within_its_rounding_bound():

@@ -58,6 +58,18 @@ def bounded(low, *, strict=False, high=None):
     return check
 
 
+def _item_id_selection(value):
+    """``"all"`` (any spelling of it, or True) stays ``"all"``; None/False give (); a text of
+    comma-separated ids or an iterable of ids gives a tuple of ids."""
+    if value is True or (isinstance(value, str) and value.strip().lower() == "all"):
+        return "all"
+    if value is None or value is False:
+        return ()
+    if isinstance(value, str):
+        value = value.split(",")
+    return tuple(str(v).strip() for v in value if str(v).strip())
+
+
 @attrs.frozen(kw_only=True)
 class CalibrationSettings:
     """Options of an MML-EM calibration.
@@ -84,6 +96,10 @@ class CalibrationSettings:
     uncorrelated_dimensions : bool
         Multidimensional calibration: hold the latent correlations at 0 instead of
         estimating them.
+    fixed_lower_asymptotes : "all" or tuple of str
+        Multidimensional calibration: M3PL items whose lower asymptote c is held at the
+        template's value (``"all"``: every M3PL item); the others have c estimated.  Empty by
+        default.
     """
 
     quadrature_points: int = attrs.field(default=61, validator=bounded(5))
@@ -96,6 +112,7 @@ class CalibrationSettings:
     min_answers: int = attrs.field(default=20, validator=bounded(1))
     points_per_dimension: int | None = attrs.field(default=None, validator=attrs.validators.optional(bounded(5)))
     uncorrelated_dimensions: bool = False
+    fixed_lower_asymptotes: str | tuple = attrs.field(default=(), converter=_item_id_selection)
 
     def grid(self) -> tuple[np.ndarray, np.ndarray]:
         """Points (G,) and normalised log weights (G,) of the N(0, 1) population."""
@@ -215,6 +232,11 @@ def calibrate_responses(
     settings = settings or CalibrationSettings()
     if template is not None and template.uses_multidimensional_models:
         return _calibrate_multidimensional(table, model=model, template=template, settings=settings, name=name)
+    if settings.fixed_lower_asymptotes:
+        raise CalibrationError(
+            "fixed_lower_asymptotes is for a multidimensional template (M3PL items); a one-dimensional "
+            "calibration of 3PL items takes a prior on c instead (c=beta:X,Y)",
+            location="setting fixed_lower_asymptotes")
     if settings.points_per_dimension is not None or settings.uncorrelated_dimensions:
         raise CalibrationError(
             "points_per_dimension and uncorrelated_dimensions are for a multidimensional template (M2PL, M3PL, "

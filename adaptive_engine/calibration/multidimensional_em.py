@@ -2,8 +2,11 @@
 
 The model: every person has an ability vector ``theta`` of K dimensions drawn from
 ``N(0, R)``, R a correlation matrix (means 0 and variances 1 fix the origin and unit of each
-dimension); items are M2PL, M3PL (lower asymptote held at the template's value) or MGRM
-(:mod:`adaptive_engine.irt.multidimensional`).  The template bank gives the loading pattern:
+dimension); items are M2PL, M3PL or MGRM (:mod:`adaptive_engine.irt.multidimensional`).
+The lower asymptote c of an M3PL item is estimated with a beta prior (Bayes modal, as the
+one-dimensional calibration's 3PL: Mislevy 1986; Swaminathan & Gifford 1986 for the beta
+prior on c), by default beta(5, 17) (:data:`.priors.DEFAULT_PRIORS`), or held at the
+template's value for the items ``settings.fixed_lower_asymptotes`` names.  The template bank gives the loading pattern:
 a slope that is 0 there stays exactly 0, every other slope is estimated.  Bifactor patterns
 (a general dimension on every item, specific ones on subsets) are a case of the pattern;
 give them uncorrelated dimensions.
@@ -49,6 +52,7 @@ from ..irt import multidimensional as md
 from .data import CalibrationData, prepare_data
 from .em import CalibrationSettings, accelerated_cycles
 from .multidimensional_forms import MultidimensionalGroup, category_jacobian, fisher_steps
+from .priors import DEFAULT_PRIORS, ParameterPrior
 
 #: most dimensions a product grid is used for
 MAX_GRID_DIMENSIONS = 3
@@ -132,14 +136,20 @@ class MultidimensionalCalibrationResult:
     Attributes
     ----------
     bank : ItemBank
-        The calibrated items (slopes, intercepts, the template's c and dimension names).
+        The calibrated items (slopes, intercepts, lower asymptotes, dimension names).
     standard_errors : dict
         ``slopes`` (n, K) (NaN where the pattern fixes a slope at 0), ``intercepts`` (n, M)
-        (NaN beyond an item's own), ``latent_correlation`` (K, K) (NaN on the diagonal and
-        when the correlations are fixed).
+        (NaN beyond an item's own), ``lower_asymptotes`` (n,) (NaN where c is not estimated),
+        ``latent_correlation`` (K, K) (NaN on the diagonal and when the correlations are fixed).
     latent_correlation : array, shape (K, K)
     log_likelihood : float
         Marginal log-likelihood at the estimate (grid approximation).
+    log_posterior : float
+        ``log_likelihood`` plus the log prior densities of the estimated c (what was maximised).
+    lower_asymptote_prior : ParameterPrior or None
+        The prior on an estimated c (None: none, or no c estimated).
+    n_fixed_lower_asymptotes : int
+        M3PL items whose c was held at the template's value.
     n_parameters, n_persons, n_answers, iterations : int
     converged : bool
     last_change : float
@@ -156,6 +166,9 @@ class MultidimensionalCalibrationResult:
     standard_errors: dict
     latent_correlation: np.ndarray
     log_likelihood: float
+    log_posterior: float
+    lower_asymptote_prior: ParameterPrior | None
+    n_fixed_lower_asymptotes: int
     n_parameters: int
     n_persons: int
     n_answers: int
@@ -195,7 +208,12 @@ class MultidimensionalCalibrationResult:
             correlations_estimated=not self.settings.uncorrelated_dimensions,
             iterations=self.iterations, converged=self.converged,
             tolerance=self.settings.tolerance, last_change=self.last_change,
-            log_likelihood=self.log_likelihood, parameters=self.n_parameters, aic=self.aic, bic=self.bic,
+            log_likelihood=self.log_likelihood, log_posterior=self.log_posterior,
+            parameters=self.n_parameters, aic=self.aic, bic=self.bic,
+            lower_asymptote_prior=(None if self.lower_asymptote_prior is None
+                                   else self.lower_asymptote_prior.describe()),
+            lower_asymptotes_estimated=int(np.isfinite(self.standard_errors["lower_asymptotes"]).sum()),
+            lower_asymptotes_fixed=self.n_fixed_lower_asymptotes,
             points_per_dimension=self.points_per_dimension, grid_points=int(self.grid.shape[0]),
             theta_range=self.settings.theta_range, seconds=self.seconds,
             standard_errors=self.standard_error_summary(), warnings=self.warnings(),
@@ -212,9 +230,9 @@ class MultidimensionalCalibrationResult:
                 if abs(self.latent_correlation[i, j]) >= MAX_CORRELATION - 1e-9]
 
     def standard_error_summary(self) -> dict:
-        """Mean and largest standard error of the estimated slopes and intercepts."""
+        """Mean and largest standard error of the estimated slopes, intercepts and lower asymptotes."""
         out = {}
-        for name in ("slopes", "intercepts"):
+        for name in ("slopes", "intercepts", "lower_asymptotes"):
             values = np.asarray(self.standard_errors[name], dtype=float).ravel()
             values = values[np.isfinite(values)]
             if values.size:
@@ -238,6 +256,9 @@ class MultidimensionalCalibrationResult:
             for q, name in enumerate(names):
                 row[name] = float(ints[q])
                 row[f"se_{name}"] = _blank_nan(se["intercepts"][i, q])
+            if str(bank.model[i]) == "M3PL":
+                row["c"] = float(bank.c[i])
+                row["se_c"] = _blank_nan(se["lower_asymptotes"][i])
             row["mdisc"] = float(bank.a[i])
             rows.append(row)
         columns = list(dict.fromkeys(key for row in rows for key in row))  # every row the same columns
@@ -294,7 +315,10 @@ def calibrate_multidimensional_responses(
     settings : CalibrationSettings
         ``points_per_dimension`` (None: :data:`DEFAULT_POINTS_PER_DIMENSION`),
         ``theta_range``, ``uncorrelated_dimensions``, ``max_iterations``, ``tolerance``,
-        ``min_answers``, ``scaling`` (the template's D is used).
+        ``min_answers``, ``scaling`` (the template's D is used), ``priors`` (only a beta
+        prior on c, or ``c=none``; by default beta(5, 17) on every estimated c, none with
+        ``use_defaults=False``), ``fixed_lower_asymptotes`` (M3PL items whose c is held at the
+        template's value, or ``"all"``).
     """
     settings = settings or CalibrationSettings()
     problems = _setting_problems(settings)
@@ -303,6 +327,7 @@ def calibrate_multidimensional_responses(
                                             "MGRM items (slopes a1..aK)"))
     else:
         problems += pattern_problems(template, uncorrelated=settings.uncorrelated_dimensions)
+        problems += _fixed_c_problems(template, settings.fixed_lower_asymptotes)
     if problems:
         raise CalibrationError(problems)
     data = prepare_data(table, template=template, min_answers=settings.min_answers, multidimensional=True)
@@ -319,11 +344,38 @@ def _setting_problems(settings: CalibrationSettings) -> list[Problem]:
     if settings.common_slope:
         out.append(Problem("setting common_slope", "a common slope is for one-dimensional models; a "
                                                    "multidimensional template gives the loading pattern instead"))
-    if settings.priors.overrides:
-        out.append(Problem("prior", "priors on item parameters are for one-dimensional models; multidimensional "
-                                    "calibration estimates by maximum likelihood (the M3PL's c is held at the "
-                                    "template's value)"))
+    others = sorted(set(settings.priors.overrides) - {"c"})
+    if others:
+        out.append(Problem("prior", (
+            f"a prior on {', '.join(others)} is for one-dimensional models; multidimensional calibration "
+            "estimates slopes and intercepts by maximum likelihood and takes a prior on the M3PL's lower "
+            "asymptote only (c=beta:X,Y or c=none)")))
     return out
+
+
+def _fixed_c_problems(template: ItemBank, fixed) -> list[Problem]:
+    """Item ids of ``fixed_lower_asymptotes`` that are not M3PL items of the template."""
+    if fixed == "all" or not fixed:
+        return []
+    where = "setting fixed_lower_asymptotes"
+    position = {str(i): j for j, i in enumerate(template.item_ids)}
+    out = []
+    for item in fixed:
+        if item not in position:
+            out.append(Problem(where, f"item {item} is not in the template"))
+        elif str(template.model[position[item]]) != "M3PL":
+            out.append(Problem(where, f"item {item} is an {template.model[position[item]]} item; only M3PL items "
+                                      "have a lower asymptote"))
+    return out
+
+
+def lower_asymptote_prior(settings: CalibrationSettings) -> ParameterPrior | None:
+    """The prior on an estimated c: ``c=...`` of ``settings.priors`` when given (None for
+    ``c=none``), else beta(5, 17) (:data:`.priors.DEFAULT_PRIORS`) unless defaults are off."""
+    priors = settings.priors
+    if "c" in priors.overrides:
+        return priors.overrides["c"]
+    return DEFAULT_PRIORS["c"] if priors.use_defaults else None
 
 
 def points_for(settings: CalibrationSettings, k: int) -> int:
@@ -351,7 +403,8 @@ def calibrate_multidimensional_data(
     grid = product_grid(k, points, settings.theta_range)
     uncorrelated = settings.uncorrelated_dimensions
     n_corr = 0 if uncorrelated else k * (k - 1) // 2
-    groups = _make_groups(data)
+    c_prior = lower_asymptote_prior(settings)
+    groups = _make_groups(data, fixed_lower_asymptotes=settings.fixed_lower_asymptotes, c_prior=c_prior)
     etas = [_start(g, data, settings.scaling) for g in groups] + [np.zeros((1, n_corr))]
     blocks = groups + [_CorrelationBlock(k)]
     answers = _Answers(data)
@@ -362,6 +415,7 @@ def calibrate_multidimensional_data(
         e = _e_step(answers, _log_table(data, groups, current[:-1], grid, settings.scaling),
                     grid_log_weights(grid, correlation), grid)
         history.append(e.loglik)
+        objective = e.loglik + _log_prior_total(groups, current[:-1])
         new = [fisher_steps(g, eta, e.counts[g.rows][..., : g.n_categories], grid, settings.scaling)
                for g, eta in zip(groups, current[:-1])]
         moments = e.second_moments
@@ -372,12 +426,13 @@ def calibrate_multidimensional_data(
             corr = np.zeros((1, 0))
         else:
             corr = _bounded_correlation(moments / np.outer(scale, scale))[np.triu_indices(k, 1)][None, :]
-        return new + [corr], e.loglik
+        return new + [corr], objective
 
     def natural_of(current):
         return dict(slopes=np.concatenate([g.slopes(e) for g, e in zip(groups, current[:-1])]),
                     intercepts=np.concatenate([np.nan_to_num(g.intercepts(e)).ravel()
                                                for g, e in zip(groups, current[:-1])]),
+                    c=np.concatenate([g.lower_asymptotes(e) for g, e in zip(groups, current[:-1])]),
                     correlation=np.asarray(current[-1]).ravel())
 
     etas, iterations, converged, change = accelerated_cycles(cycle, etas, blocks, natural_of, settings)
@@ -388,12 +443,17 @@ def calibrate_multidimensional_data(
                                         dense=answers.dense))
     history.append(final.loglik)
     ses = _standard_errors(data, groups, etas[:-1], final, k, n_corr)
+    log_prior = _log_prior_total(groups, etas[:-1])
+    fixed_c = sum(int(((g.model == "M3PL") & ~g.estimated_c).sum()) for g in groups)
     # an estimate held at the bound has no standard error to speak of
     ses["latent_correlation"][np.abs(correlation) >= MAX_CORRELATION - 1e-9] = np.nan
     bank = _make_bank(data, groups, etas[:-1], settings.scaling, name)
     return MultidimensionalCalibrationResult(
         bank=bank, standard_errors=ses, latent_correlation=correlation, log_likelihood=float(final.loglik),
-        n_parameters=final.n_parameters, n_persons=data.n_persons, n_answers=int(data.person.shape[0]),
+        log_posterior=float(final.loglik + log_prior),
+        lower_asymptote_prior=c_prior if any(g.estimated_c.any() for g in groups) else None,
+        n_fixed_lower_asymptotes=fixed_c, n_parameters=final.n_parameters, n_persons=data.n_persons,
+        n_answers=int(data.person.shape[0]),
         iterations=iterations, converged=converged, last_change=float(change), eap=final.eap,
         posterior_sd=final.posterior_sd, grid=grid, seconds=time.perf_counter() - began, history=history,
         data=data, settings=settings, points_per_dimension=points,
@@ -419,31 +479,52 @@ def marginal_log_likelihood(data: CalibrationData, bank: ItemBank, correlation, 
 # pieces
 
 
-def _make_groups(data: CalibrationData) -> list[MultidimensionalGroup]:
+def _make_groups(data: CalibrationData, *, fixed_lower_asymptotes=(), c_prior=None) -> list[MultidimensionalGroup]:
+    """Items by (model, categories); an M3PL item's c is estimated unless
+    ``fixed_lower_asymptotes`` names it (or is ``"all"``)."""
     t = data.template
     free = t.slopes > 0
+    if fixed_lower_asymptotes == "all":
+        fixed = np.ones(data.n_items, dtype=bool)
+    else:
+        fixed = np.isin(np.asarray(data.item_ids, dtype=str), np.asarray(list(fixed_lower_asymptotes), dtype=str))
     keys = {}
     for j, (m, c) in enumerate(zip(data.item_models, data.n_categories)):
         keys.setdefault((str(m), int(c)), []).append(j)
     return [MultidimensionalGroup(model=m, n_categories=c, rows=np.asarray(rows), free=free[rows],
-                                  c=np.asarray(t.c, float)[rows])
+                                  c=np.asarray(t.c, float)[rows], free_c=(~fixed[rows]) if m == "M3PL" else None,
+                                  c_prior=c_prior if m == "M3PL" else None)
             for (m, c), rows in keys.items()]
 
 
+#: starting value of an estimated c without a beta prior (with one: the prior's mean), as the
+#: one-dimensional calibration's 3PL
+_START_C = 0.15
+
+
 def _start(group: MultidimensionalGroup, data: CalibrationData, scaling: float) -> np.ndarray:
-    """Starting values: every free slope ``1 / sqrt(number free)`` (|a| = 1), intercepts
-    from the category proportions, widened for the spread of ``a . theta`` (the logistic-normal
+    """Starting values: every free slope ``1 / sqrt(number free)`` (|a| = 1), an estimated c
+    at the prior's mean (0.15 without a prior), a fixed one at its value, intercepts from
+    the category proportions, widened for the spread of ``a . theta`` (the logistic-normal
     approximation ``E sigma(x) ~ sigma(mu / sqrt(1 + pi s^2 / 8))``, x ~ N(mu, s^2))."""
     counts = data.category_counts()[group.rows, : group.n_categories] + 0.5
     n_free = group.free.sum(axis=1, keepdims=True)
     slopes = np.where(group.free, 1.0 / np.sqrt(n_free), 0.0)
     at_least = np.cumsum(counts[:, ::-1], axis=1)[:, ::-1][:, 1:] / counts.sum(axis=1, keepdims=True)
-    c = group.c[:, None]
+    prior = group.c_prior
+    start_c = prior.first / (prior.first + prior.second) if prior is not None else _START_C
+    c_values = np.where(group.estimated_c, start_c, group.c)
+    c = c_values[:, None]
     inner = np.clip((at_least - c) / (1.0 - c), 0.02, 0.98)
     widen = math.sqrt(1.0 + math.pi * scaling**2 / 8.0)
     intercepts = np.log(inner / (1.0 - inner)) / scaling * widen
     intercepts = np.minimum.accumulate(intercepts - 1e-3 * np.arange(group.n_intercepts), axis=1)
-    return group.from_natural(slopes, intercepts)
+    return group.from_natural(slopes, intercepts, c_values)
+
+
+def _log_prior_total(groups, etas) -> float:
+    """Sum of the log prior densities of the estimated c."""
+    return float(sum(g.log_prior(eta)[0].sum() for g, eta in zip(groups, etas)))
 
 
 def _log_table(data, groups, etas, grid, scaling) -> np.ndarray:
@@ -631,7 +712,7 @@ class _ScoreLayout:
             j = int(item[a])
             gi, row = int(self.group_of[j]), int(self.row_of[j])
             g = self.groups[gi]
-            one = attrs.evolve(g, rows=g.rows[row:row + 1], free=g.free[row:row + 1], c=g.c[row:row + 1])
+            one = g.subset(slice(row, row + 1))
             dlog = _log_derivative_table(one, self.etas[gi][row:row + 1], self.grid, self.scaling)[0]  # (G, C, m)
             persons, cats = person[a:b], response[a:b]
             scores = np.zeros((b - a, dlog.shape[-1]))
@@ -648,27 +729,40 @@ def _log_derivative_table(group, eta, grid, scaling) -> np.ndarray:
 
 
 def _standard_errors(data, groups, etas, final: _EStep, k: int, n_corr: int) -> dict:
-    """SEs of the natural slopes, intercepts and correlations from the cross-product matrix."""
+    """SEs of the natural slopes, intercepts, lower asymptotes and correlations from the
+    cross-product matrix, plus minus the second derivative of the prior on an estimated c
+    (in ``logit c``; the one-dimensional calibration adds its priors' curvature the same way)."""
     n = data.n_items
     m_max = data.max_categories - 1
     ses = dict(slopes=np.full((n, k), np.nan), intercepts=np.full((n, m_max), np.nan),
-               latent_correlation=np.full((k, k), np.nan))
+               lower_asymptotes=np.full(n, np.nan), latent_correlation=np.full((k, k), np.nan))
     xpd = final.cross_product
     layout = _ScoreNumbers(groups)
     if isinstance(xpd, np.ndarray):
-        variances = np.diag(np.linalg.pinv(xpd))
+        info = xpd.copy()
+        for g, eta, nums in zip(groups, etas, layout.numbers):
+            if g.has_c_column:
+                rows = g.estimated_c
+                info[nums[rows, -1], nums[rows, -1]] -= g.log_prior(eta)[2][rows]
+        variances = np.diag(np.linalg.pinv(info))
         item_var = [variances[np.maximum(nums, 0)] for nums in layout.numbers]
         corr_var = variances[layout.total:]
     else:
         item_var = []
-        for block in xpd["items"]:
+        for g, eta, block in zip(groups, etas, xpd["items"]):
+            block = block.copy()
+            if g.has_c_column:
+                block[:, -1, -1] -= g.log_prior(eta)[2]
             item_var.append(np.stack([np.diag(np.linalg.pinv(b)) for b in block]) if block.size else
                             np.zeros((0, block.shape[1])))
         corr_var = np.diag(np.linalg.pinv(xpd["correlation"])) if n_corr else np.zeros(0)
     for g, eta, nums, var in zip(groups, etas, layout.numbers, item_var):
         se = np.where((nums >= 0) & (var >= 0), np.sqrt(np.abs(var)), np.nan)
         ses["slopes"][g.rows] = g.slopes(eta) * se[:, :k]  # delta method: se(a) = a se(log a)
-        ses["intercepts"][g.rows, : g.n_intercepts] = se[:, k:]
+        ses["intercepts"][g.rows, : g.n_intercepts] = se[:, k:k + g.n_intercepts]
+        if g.has_c_column:
+            c = g.lower_asymptotes(eta)
+            ses["lower_asymptotes"][g.rows] = c * (1.0 - c) * se[:, -1]  # delta method on logit c
     if n_corr:
         iu = np.triu_indices(k, 1)
         values = np.sqrt(np.maximum(corr_var, 0.0))
@@ -699,11 +793,13 @@ def _make_bank(data, groups, etas, scaling, name) -> ItemBank:
     slopes = np.zeros((n, k))
     width = max(g.n_intercepts for g in groups)
     intercepts = np.full((n, width), np.nan)
+    c = np.asarray(t.c, float).copy()
     for g, eta in zip(groups, etas):
         slopes[g.rows] = g.slopes(eta)
         intercepts[g.rows, : g.n_intercepts] = g.intercepts(eta)
+        c[g.rows] = g.lower_asymptotes(eta)
     return ItemBank(
-        item_ids=data.item_ids, model=data.item_models, slopes=slopes, intercepts=intercepts, c=t.c,
+        item_ids=data.item_ids, model=data.item_models, slopes=slopes, intercepts=intercepts, c=c,
         area=t.area, item_set=t.item_set, enemy_groups=t.enemy_groups, status=t.status, label=t.label,
         scaling=scaling, name=name, dimension_names=tuple(t.dimension_names),
     )

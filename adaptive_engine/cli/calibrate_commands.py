@@ -41,7 +41,8 @@ _SETTING_FLAGS = {"setting quadrature_points": "--quadrature-points", "setting m
 CALIBRATE_FLAGS = {**_SETTING_FLAGS, "model": "--model", "fit_report": "--fit-report", "template_path": "--template",
                    "template": "--template", "setting points_per_dimension": "--points-per-dimension",
                    "setting uncorrelated_dimensions": "--uncorrelated-dimensions",
-                   "setting common_slope": "--common-slope", "dimensions": "--dimensions"}
+                   "setting common_slope": "--common-slope", "dimensions": "--dimensions",
+                   "setting fixed_lower_asymptotes": "--fixed-lower-asymptotes"}
 LINK_FLAGS = {"out": "--out", "scaling": "--scaling", "method": "--method",
               "max_difficulty_shift": "--max-difficulty-shift", "max_slope_ratio": "--max-slope-ratio",
               "anchors": "--anchors", "new": "BANK", "base": "--to"}
@@ -67,7 +68,8 @@ def _settings(**kw):
 @click.option("--common-slope", is_flag=True, help="Estimate one slope shared by all items (written to column a).")
 @click.option("--prior", multiple=True, metavar="PARAM=KIND:X,Y",
               help="Prior on a parameter, e.g. a=lognormal:0,0.5  b=normal:0,2  c=beta:5,17  d=beta:20,2  "
-                   "or c=none. Repeatable. 3PL/4PL items have priors on by default.")
+                   "or c=none. Repeatable. 3PL/4PL items have priors on by default; with a multidimensional "
+                   "template only c takes one (default beta:5,17 on every estimated M3PL lower asymptote).")
 @click.option("--no-priors", is_flag=True, help="No default priors (priors given with --prior still apply).")
 @click.option("--out", required=True, type=_FILE, help="Bank file to write (.csv, .json or .db).")
 @click.option("--fit-report", type=_FILE, default=None,
@@ -90,6 +92,9 @@ def _settings(**kw):
 @click.option("--uncorrelated-dimensions", is_flag=True,
               help="Multidimensional template: hold the latent correlations at 0 (e.g. a bifactor pattern) "
                    "instead of estimating them.")
+@click.option("--fixed-lower-asymptotes", "fixed_lower_asymptotes", default=None, metavar="ITEMS",
+              help="Multidimensional template: M3PL items (comma-separated ids, or 'all') whose lower asymptote c "
+                   "is held at the template's value; the other M3PL items have c estimated.")
 @click.option("--dimensions", "dimensions", default=None, metavar="NAMES",
               help="Names of the dimensions of a multidimensional CSV --template (comma-separated). "
                    + DIMENSIONS_HELP.split(".  ", 1)[1])
@@ -97,7 +102,7 @@ def _settings(**kw):
 @report_errors(flags=CALIBRATE_FLAGS)
 def calibrate_command(responses, model, template, common_slope, prior, no_priors, out, fit_report, scaling,
                       quadrature_points, max_iterations, tolerance, min_answers, points_per_dimension,
-                      uncorrelated_dimensions, dimensions, as_json):
+                      uncorrelated_dimensions, fixed_lower_asymptotes, dimensions, as_json):
     """Calibrate items from RESPONSES (long CSV person_id,item_id,response) by marginal maximum likelihood.
 
     Prints a summary: iterations, convergence, log-likelihood, AIC, BIC, mean and largest
@@ -118,7 +123,8 @@ def calibrate_command(responses, model, template, common_slope, prior, no_priors
     settings = _settings(prior=prior, no_priors=no_priors, common_slope=common_slope,
                          quadrature_points=quadrature_points, max_iterations=max_iterations,
                          tolerance=tolerance, min_answers=min_answers, points_per_dimension=points_per_dimension,
-                         uncorrelated_dimensions=uncorrelated_dimensions)
+                         uncorrelated_dimensions=uncorrelated_dimensions,
+                         fixed_lower_asymptotes=fixed_lower_asymptotes)
     from ..calibration.jobs import calibrate_file
 
     summary = calibrate_file(responses, out=out, model=model, template_path=template, settings=settings,
@@ -153,9 +159,15 @@ def _multidimensional_text(summary: dict) -> str:
         lines.append("standard error of each correlation: " + ", ".join(pairs))
     lines.append(f"log-likelihood {summary['log_likelihood']:.2f}, {summary['parameters']} parameters, "
                  f"AIC {summary['aic']:.2f}, BIC {summary['bic']:.2f}")
+    estimated, fixed = summary["lower_asymptotes_estimated"], summary["lower_asymptotes_fixed"]
+    if estimated or fixed:
+        prior = summary["lower_asymptote_prior"]
+        lines.append(f"lower asymptotes (M3PL): {estimated} estimated"
+                     + (f" with prior c ~ {prior}" if estimated and prior else " without a prior" if estimated else "")
+                     + f", {fixed} held at the template's value; log posterior {summary['log_posterior']:.2f}")
     for name, s in summary["standard_errors"].items():
-        lines.append(f"standard error of the {name}: mean {s['mean']:.3f}, largest {s['max']:.3f} "
-                     f"({s['count']} estimated)")
+        lines.append(f"standard error of the {name.replace('_', ' ')}: mean {s['mean']:.3f}, largest "
+                     f"{s['max']:.3f} ({s['count']} estimated)")
     lines.append(f"wrote {summary['out']}" + (f" and {summary['fit_report']}" if summary.get("fit_report") else ""))
     return "\n".join(lines)
 

@@ -153,8 +153,10 @@ def result_lines(result: dict) -> list[str]:
         lines.append(f"{c['cut']}: {c['label']} (cut at theta {_fixed(c['cut_theta'])}, "
                      f"decided by {str(c['basis']).replace('_', ' ')})")
     fit = result.get("person_fit") or {}
-    if fit.get("lz_star") is not None:
-        lines.append(f"person fit lz* {_fixed(fit['lz_star'])}"
+    # lz* for one ability, lz at the final ability vector
+    name, value = ("lz*", fit.get("lz_star")) if "lz_star" in fit else ("lz", fit.get("lz"))
+    if value is not None:
+        lines.append(f"person fit {name} {_fixed(value)}"
                      + (" -- flagged: the answers fit the model poorly" if fit.get("flagged") else " (not flagged)"))
     return lines
 

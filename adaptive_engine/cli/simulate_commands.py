@@ -11,6 +11,10 @@ from ._common import JSON_HELP, echo_json, json_option, main, report_errors
 
 _FILE = click.Path(dir_okay=False, path_type=str)
 
+#: --theta's default, said once for every command that simulates
+_THETA_DEFAULT = ("[default: normal:0,1; for a bank of two or more dimensions the design's own prior, the "
+                  "multivariate normal of [scoring] prior_mean and prior_covariance]")
+
 
 #: Seconds a run goes before its progress bar appears (short runs stay quiet).
 PROGRESS_DELAY = 3.0
@@ -159,8 +163,9 @@ def _perturbation(text):
               help="Folder for summary.json, examinees.csv, administrations.csv, items.csv, "
                    "conditional.csv and report.html (a multidimensional design: summary.json, examinees.csv, "
                    "items.csv and report.html).")
-@click.option("--theta", "theta_spec", default="normal:0,1", show_default=True,
-              help="True abilities: normal:MEAN,SD, uniform:LO,HI, grid:LO,HI,POINTS:PER_POINT or file:PATH.")
+@click.option("--theta", "theta_spec", default=None,
+              help="True abilities: normal:MEAN,SD, uniform:LO,HI, grid:LO,HI,POINTS:PER_POINT, file:PATH or, for a "
+                   "bank of several dimensions, correlated_normal:MEAN,SD,CORRELATION " + _THETA_DEFAULT + ".")
 @click.option("--true-bank", "true_bank_file", type=_FILE, default=None,
               help="Bank the answers are drawn from (same item ids), to show the effect of calibration error.")
 @click.option("--perturb", default=None,
@@ -182,7 +187,7 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
     """Simulate DESIGN for many examinees and write the study's files into --out."""
     from ..errors import SimulationError
     from ..simulation.engine import Execution, perturbed_bank
-    from ..simulation.population import Population, parse_ability_spec
+    from ..simulation.population import Population, run_abilities
     from ..simulation.study import read_standard_errors, run_study, summary_table
 
     if perturb and perturb_from:
@@ -199,11 +204,11 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 
     if runs_multidimensional(design, bank):
         _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_spec, true_bank, chunk_size,
-                                   exposure_target, as_json, show_progress)
+                                   workers, exposure_target, as_json, show_progress)
         return
     progress = _Progress("simulating", enabled=show_progress)
     try:
-        population = Population.drawn(parse_ability_spec(theta_spec), seed=seed, n_examinees=n_examinees,
+        population = Population.drawn(run_abilities(theta_spec, design, bank), seed=seed, n_examinees=n_examinees,
                                       true_bank=true_bank)
         study = run_study(design, bank, population=population, out_dir=out_dir,
                           execution=Execution(workers=workers, chunk_size=chunk_size, progress=progress),
@@ -221,9 +226,9 @@ def simulate_command(design_file, bank_file, n_examinees, seed, out_dir, theta_s
 
 
 def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_spec, true_bank, chunk_size,
-                               exposure_target, as_json, show_progress):
+                               workers, exposure_target, as_json, show_progress):
     """``simulate`` of a design that runs on the multidimensional kernel (summary.json, examinees.csv,
-    items.csv, report.html)."""
+    items.csv, report.html); ``--workers`` processes run its chunks as for one dimension."""
     from ..design.bank_fit import design_warnings, require_design_fits_bank
     from ..errors import SimulationError
     from ..simulation import metrics
@@ -233,20 +238,20 @@ def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_s
         summary_text,
         write_study,
     )
-    from ..simulation.population import DEFAULT_EXAMINEES, draw_vectors, examinee_count, parse_ability_spec
+    from ..simulation.population import DEFAULT_EXAMINEES, draw_vectors, examinee_count, run_abilities
 
     if true_bank is not None:
         raise SimulationError("a true bank (--true-bank, --perturb) is not available for a multidimensional design",
                               "--true-bank")
     require_design_fits_bank(design, bank)
     exposure_target = metrics.exposure_target(exposure_target)  # checked before the run
-    spec = parse_ability_spec(theta_spec)
+    spec = run_abilities(theta_spec, design, bank)
     n = examinee_count(spec, n_examinees, default=DEFAULT_EXAMINEES)
     true_theta = draw_vectors(spec, n, seed, bank.n_dimensions)
     progress = _Progress("simulating", enabled=show_progress)
     try:
         result = simulate_multidimensional(design, bank, true_theta=true_theta, seed=seed,
-                                           chunk_size=min(chunk_size, 2000), progress=progress)
+                                           chunk_size=min(chunk_size, 2000), progress=progress, workers=workers)
     finally:
         progress.close()
     summary = multidimensional_metrics(result, exposure_target=exposure_target)
@@ -273,7 +278,7 @@ def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_s
               help="Simulated examinees per combination, the same ones for every combination "
                    "[default: 1000, or the count a grid:/file: spec fixes].")
 @click.option("--seed", type=int, default=1, show_default=True, help="Run seed shared by all combinations.")
-@click.option("--theta", "theta_spec", default="normal:0,1", show_default=True, help="True abilities (see simulate).")
+@click.option("--theta", "theta_spec", default=None, help="True abilities (see simulate) " + _THETA_DEFAULT + ".")
 @click.option("--true-bank", "true_bank_file", type=_FILE, default=None, help="Bank the answers are drawn from.")
 @click.option("--workers", type=int, default=1, show_default=True, help="Processes running chunks in parallel.")
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=str),
@@ -289,7 +294,7 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
     combinations on the efficient frontier.
     """
     from ..simulation.engine import Execution
-    from ..simulation.population import Population, parse_ability_spec
+    from ..simulation.population import Population, run_abilities
     from ..simulation.tuning import parse_variation, run_tuning_study
 
     _check_workers(workers)
@@ -302,7 +307,7 @@ def tune_command(design_file, bank_file, variations, n_examinees, seed, theta_sp
         _tune_multidimensional(design, bank, parsed, n_examinees, seed, theta_spec, true_bank, workers, out_dir,
                                show_progress, as_json)
         return
-    population = Population.drawn(parse_ability_spec(theta_spec), seed=seed, n_examinees=n_examinees,
+    population = Population.drawn(run_abilities(theta_spec, design, bank), seed=seed, n_examinees=n_examinees,
                                   default=1000, true_bank=true_bank)
     progress = _Progress("tuning", enabled=show_progress)
     try:
@@ -323,21 +328,22 @@ def _tune_multidimensional(design, bank, parsed, n_examinees, seed, theta_spec, 
                            show_progress, as_json):
     """``tune`` of a design that runs on the multidimensional kernel (same files as for one dimension).
 
-    Runs in this process, as ``simulate`` does for such a design (``--workers`` is not used).
+    ``--workers`` processes run each combination's chunks, as ``simulate`` does for such a design.
     """
     from ..errors import SimulationError
     from ..simulation.multidimensional_tuning import run_multidimensional_tuning_study
-    from ..simulation.population import draw_vectors, examinee_count, parse_ability_spec
+    from ..simulation.population import draw_vectors, examinee_count, run_abilities
 
     if true_bank is not None:
         raise SimulationError("a true bank is not available for a multidimensional design", "--true-bank")
-    spec = parse_ability_spec(theta_spec)
+    spec = run_abilities(theta_spec, design, bank)
     n = examinee_count(spec, n_examinees, default=1000)
     true_theta = draw_vectors(spec, n, seed, bank.n_dimensions)  # once: every combination gets these
     progress = _Progress("tuning", enabled=show_progress)
     try:
         rows = run_multidimensional_tuning_study(design, bank, parsed, true_theta=true_theta, seed=seed,
-                                                 out_dir=out_dir, abilities=spec.text, progress=progress)
+                                                 out_dir=out_dir, abilities=spec.text, progress=progress,
+                                                 workers=workers)
     finally:
         progress.close()
     if as_json:
@@ -378,7 +384,8 @@ def exposure_group():
 @click.option("--seed", type=int, default=1, show_default=True, help="Run seed.")
 @click.option("--examinees", "n_examinees", type=int, default=None,
               help="Simulated examinees per iteration [default: 2000, or the count a grid:/file: spec fixes].")
-@click.option("--theta", "theta_spec", default="normal:0,1", show_default=True, help="Abilities of the population.")
+@click.option("--theta", "theta_spec", default=None, help="Abilities of the population (see simulate) "
+              + _THETA_DEFAULT + ".")
 @click.option("--iterations", type=int, default=15, show_default=True, help="Most iterations to run.")
 @click.option("--tolerance", type=float, default=0.02, show_default=True,
               help="Converged when the largest exposure rate is at most target + tolerance.")
@@ -403,7 +410,7 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
     from ..simulation.engine import Execution
     from ..simulation.exposure_diagnosis import opening_and_area_limits
     from ..simulation.exposure_tuning import parse_strata, run_calibration, unreachable_target_warning
-    from ..simulation.population import Population, parse_ability_spec
+    from ..simulation.population import DEFAULT_ABILITIES, Population, examinee_count, parse_ability_spec, run_abilities
 
     _check_workers(workers)
     keep_freed_memory()
@@ -411,8 +418,21 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
     if strata is not None and len(strata) + 1 > MAX_EXPOSURE_STRATA:
         raise AdaptiveEngineError(f"{len(strata)} cut points make {len(strata) + 1} ability strata; "
                                   f"at most {MAX_EXPOSURE_STRATA}", location="--conditional-strata")
-    population = Population.drawn(parse_ability_spec(theta_spec), seed=seed, n_examinees=n_examinees, default=2000)
+    # the abilities and their count are checked before the files are read (the default for a
+    # bank of several dimensions, the design's prior, fixes no count either)
+    given = None if theta_spec is None else parse_ability_spec(theta_spec)
+    examinee_count(given or parse_ability_spec(DEFAULT_ABILITIES), n_examinees, default=2000)
     design, bank, _ = _load(design_file, bank_file)
+    from ..design.bank_fit import runs_multidimensional
+
+    vectors = runs_multidimensional(design, bank)
+    if vectors and strata is not None:
+        raise AdaptiveEngineError("conditional parameters cut one ability into strata; the design runs on the "
+                                  "multidimensional kernel (an ability vector): leave --conditional-strata out",
+                                  location="--conditional-strata")
+    spec = given or run_abilities(None, design, bank)
+    if not vectors:
+        population = Population.drawn(spec, seed=seed, n_examinees=n_examinees, default=2000)
     if 0 < target <= 1:  # an out-of-range target is refused by the calibration itself
         warning = unreachable_target_warning(design, bank, target)
         if warning:
@@ -421,9 +441,19 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
             click.echo(f"warning: {note}", err=True)
     progress = _Progress("calibrating", enabled=show_progress)
     try:
-        cal = run_calibration(design, bank, target=target, out_file=out_file, population=population,
-                              execution=Execution(workers=workers, progress=progress),
-                              max_iterations=iterations, tolerance=tolerance, strata=strata)
+        if vectors:
+            from ..simulation.exposure_tuning import run_multidimensional_calibration
+            from ..simulation.population import draw_vectors, examinee_count
+
+            # drawn as simulate draws them, from the run seed
+            true_theta = draw_vectors(spec, examinee_count(spec, n_examinees, default=2000), seed, bank.n_dimensions)
+            cal = run_multidimensional_calibration(design, bank, target=target, out_file=out_file,
+                                                   true_theta=true_theta, seed=seed, max_iterations=iterations,
+                                                   tolerance=tolerance, workers=workers, progress=progress)
+        else:
+            cal = run_calibration(design, bank, target=target, out_file=out_file, population=population,
+                                  execution=Execution(workers=workers, progress=progress),
+                                  max_iterations=iterations, tolerance=tolerance, strata=strata)
     finally:
         progress.close()
     if as_json:
@@ -431,7 +461,8 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
 
         echo_json({"converged": cal.converged, "target": cal.target, "tolerance": cal.tolerance,
                    "strata": list(cal.strata), "iterations": cal.history, "out": out_file,
-                   "diagnosis": None if cal.diagnosis is None else attrs.asdict(cal.diagnosis)})
+                   "diagnosis": None if cal.diagnosis is None else attrs.asdict(cal.diagnosis),
+                   **({"abilities": spec.text} if vectors else {})})
         if not cal.converged:
             sys.exit(EXIT_NOT_CONVERGED)
         return
@@ -451,7 +482,8 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
             click.echo(f"{h['iteration']:>9}  {h['max_exposure']:>12.4f}  {h['share_above_target']:>18.4f}  "
                        f"{h['mean_length']:>11.2f}  {h['items_restricted']:>16}")
     state = "converged" if cal.converged else f"did not converge in {iterations} iterations"
-    click.echo(f"{state} (target {target:g}, tolerance {tolerance:g}); wrote {out_file}")
+    click.echo(f"{state} (target {target:g}, tolerance {tolerance:g}"
+               + (f"; abilities: {spec.text}" if vectors else "") + f"); wrote {out_file}")
     if not cal.converged:
         if cal.diagnosis is not None:
             for line in cal.diagnosis.lines():

@@ -342,11 +342,13 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     sc, sel, ex, st, rp, op = (design.scoring, design.selection, design.exposure, design.stopping,
                                design.reporting, design.opening)
     many = f"with an ability of {k} dimensions ({names})"
-    if sc.method not in (ScoringMethod.EAP, ScoringMethod.MAP):
-        out.append(Problem("[scoring] method", f"{sc.method.value} is not available {many}; use eap or map"))
-    if design.final_method not in (ScoringMethod.EAP, ScoringMethod.MAP):
+    # no published weighted likelihood for an ability vector is followed here: WLE stays one-dimensional
+    vector_methods = (ScoringMethod.EAP, ScoringMethod.MAP, ScoringMethod.MLE)
+    if sc.method not in vector_methods:
+        out.append(Problem("[scoring] method", f"{sc.method.value} is not available {many}; use eap, map or mle"))
+    if design.final_method not in vector_methods:
         out.append(Problem("[reporting] final_method",
-                           f"{design.final_method.value} is not available {many}; use eap or map"))
+                           f"{design.final_method.value} is not available {many}; use eap, map or mle"))
     points = multidimensional_grid_points(design, k)
     if points ** k > MAX_MULTIDIMENSIONAL_GRID:
         out.append(Problem("[scoring] grid_points_per_dimension" if sc.grid_points_per_dimension is not None
@@ -376,12 +378,11 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     if op.random_theta is not None:
         out.append(Problem("[opening] random_theta", f"a random starting point is not available {many}; the "
                                                      "test starts at [opening] theta on every dimension"))
-    for name in ("sprt", "se_reduction", "min_information"):
-        if getattr(st, name) is not None:
-            where = "[stopping.sprt]" if name == "sprt" else f"[stopping] {name}"
-            out.append(Problem(where, f"this rule measures one ability and is not available {many}; stop on se "
-                                      "or se_per_dimension, length, time, or [stopping.confidence_interval] "
-                                      "on the composite"))
+    if st.sprt is not None:
+        out.append(Problem("[stopping.sprt]", f"the likelihood ratio test compares two points of one ability and "
+                                              f"is not available {many}; stop on se or se_per_dimension, "
+                                              "se_reduction, min_information, length, time, or "
+                                              "[stopping.confidence_interval] on the composite"))
     if st.confidence_interval is not None and rp.composite_weights is None and k > 1:
         out.append(Problem("[stopping.confidence_interval]",
                            f"{many} the interval classifies the composite of [reporting] composite_weights; "
@@ -455,7 +456,11 @@ def describe_design(design: Design) -> list[str]:
         fallback = (f"previous estimate +- {sc.fixed_step:g}"
                     if sc.extreme_pattern_method is ExtremePatternMethod.FIXED_STEP
                     else f"{sc.extreme_pattern_method.upper()} with a {prior}")
-        scoring += f"; {fallback} while every answer is in the lowest or every one in the highest category"
+        if design.asks_multidimensional:
+            scoring += (f"; {fallback} where no MLE exists (every answer in the lowest or every one in the highest "
+                        "category, the likelihood rising towards the grid's edge, a dimension without information)")
+        else:
+            scoring += f"; {fallback} while every answer is in the lowest or every one in the highest category"
     if design.asks_multidimensional:
         points = (f"{sc.grid_points_per_dimension} points per dimension" if sc.grid_points_per_dimension is not None
                   else "41 points per dimension for K = 2, 17 for K = 3, grid_points for K = 1")
@@ -583,9 +588,11 @@ def _stopping_words(st, *, vector: bool = False) -> str:
         ci = st.confidence_interval
         rules.append(f"once the {ci.confidence:.0%} interval excludes the cut {ci.cut:g}")
     if st.se_reduction is not None:
-        rules.append(f"once the next item would reduce the SE by less than {st.se_reduction:g}")
+        rules.append(f"once the next item would reduce the SE by less than {st.se_reduction:g}"
+                     + (" on every dimension" if vector else ""))
     if st.min_information is not None:
-        rules.append(f"once no eligible item has information above {st.min_information:g}")
+        rules.append(f"once no eligible item has information above {st.min_information:g}"
+                     + (" on any dimension" if vector else ""))
     if st.time_limit is not None:
         rules.append(f"after {st.time_limit:g} seconds")
     return f"stop {' or '.join(rules)}; never before {st.min_items} items"

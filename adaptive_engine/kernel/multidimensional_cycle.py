@@ -6,10 +6,11 @@ for every K is shared, not copied: recording an answer (the posterior update is 
 row addition on the product grid), picking items (:func:`adaptive_engine.kernel.selection.select`
 with the criteria of :mod:`.multidimensional_selection`), exposure control, the blueprint,
 enemies, item sets and pretest seeding.  What differs is here: the prior (multivariate
-normal), the interim estimate (EAP on the grid, or MAP by Fisher scoring with the prior's
-precision), the stopping statistics (the SE of every dimension, the composite's interval)
-and the final report (each dimension with its interval and scaled score, the composite
-with its SE ``sqrt(w' S w)``).
+normal), the interim estimate (EAP on the grid, MAP by Fisher scoring with the prior's
+precision, or the MLE where it exists with the design's stand-in elsewhere), the stopping
+statistics (the SE of every dimension, the composite's interval) and the final report
+(each dimension with its interval and scaled score, the composite with its SE
+``sqrt(w' S w)``).
 """
 
 from __future__ import annotations
@@ -20,10 +21,12 @@ import attrs
 import numpy as np
 
 from ..design.types import ScoringMethod, SelectionCriterion
+from ..irt import multidimensional as md
 from . import stopping
 from .multidimensional_state import (
     MultidimensionalState,
     add_and_moments,
+    determinant,
     given_items,
     inverse,
     matrix_vector,
@@ -115,16 +118,18 @@ def keeps_grid_posterior(ctx) -> bool:
     """Whether the rows carry the posterior on the grid.
 
     Under the log form (decision rules 1 and 2) always.  Under the scaled form (version 3)
-    only where something reads it: an EAP estimate (interim or final) or
-    Kullback-Leibler selection.  A design scored by MAP throughout, picking by another
-    criterion, never reads the grid: its final MAP starts from the interim MAP
-    (:func:`final_estimates`), and its rows carry no grid at all.
+    only where something reads it: an EAP or MLE estimate (interim or final; the MLE
+    starts from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
+    stop.  A design scored by MAP throughout that uses none of these never reads the grid:
+    its final MAP starts from the interim MAP (:func:`final_estimates`), and its rows carry
+    no grid at all.
     """
     if ctx.posterior_form == "log":
         return True
     design = ctx.design
     return (design.scoring.method is not ScoringMethod.MAP or design.final_method is not ScoringMethod.MAP
-            or design.selection.criterion is SelectionCriterion.KULLBACK_LEIBLER)
+            or design.selection.criterion is SelectionCriterion.KULLBACK_LEIBLER
+            or design.stopping.se_reduction is not None)
 
 
 def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -241,6 +246,214 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
         cov[left] = inverse(info)
     return theta, cov, converged
 
+#: Newton iterations of the MLE, the step that counts as converged, and the halvings of a
+#: step that does not raise the log-likelihood.
+MLE_ITERATIONS = 100
+MLE_TOLERANCE = 1e-9
+MLE_HALVINGS = 40
+#: The test information matrix counts as singular (a direction no answered item measures:
+#: no unique MLE) when its determinant is below this share of the product of its diagonal
+#: (Hadamard's inequality bounds the ratio by 1).
+SINGULAR_SHARE = 1e-10
+
+
+def pattern_status(tab, items, resp) -> np.ndarray:
+    """``no_responses``, ``all_lowest``, ``all_highest`` or ``""`` (a mixed pattern) per row of
+    the scored answers ``items``, ``resp`` (R, W), -1 where nothing was given."""
+    given = items >= 0
+    top = tab.params.n_categories[np.where(given, items, 0)] - 1
+    all_low = np.all(~given | (resp == 0), axis=1)
+    all_high = np.all(~given | (resp == top), axis=1)
+    out = np.where(all_low, "all_lowest", np.where(all_high, "all_highest", "")).astype(object)
+    out[~given.any(axis=1)] = "no_responses"
+    return out
+
+
+def _answered(tab, items, resp):
+    """The scored answers' parameters (R, W), where an item was given (R, W), the answers
+    (-1 where none) and the columns some row reached."""
+    given = items >= 0
+    return (tab.params.take(np.maximum(items, 0)), given, np.where(given, resp, -1),
+            np.flatnonzero(given.any(axis=0)))
+
+
+def log_likelihood(tab, items, resp, theta) -> np.ndarray:
+    """``sum_i log P(x_i | theta)`` (R,) over the scored answers ``items``, ``resp`` (R, W).
+
+    Each answer's term is elementwise; the terms are added one answer after another in the
+    order given, so a row's sum is its own whatever the batch holds.
+    """
+    params, _, answers, reached = _answered(tab, items, resp)
+    terms = md.log_likelihood(params, theta[:, None, :], answers)  # (R, W), 0 where not given
+    total = np.zeros(theta.shape[0])
+    for col in reached:
+        total = total + terms[:, col]
+    return total
+
+
+def information_and_score(tab, items, resp, theta) -> tuple[np.ndarray, np.ndarray]:
+    """The test information matrix ``sum_i J_i(theta) a_i a_i'`` (R, K, K) and the gradient of
+    the log-likelihood ``sum_i r_i(theta) a_i`` (R, K) over the scored answers ``items``,
+    ``resp`` (R, W).
+
+    Each answer's terms are elementwise, added one answer after another in the order given:
+    a row's sums are the same whatever the batch holds (the M2PL shortcut of
+    :func:`.multidimensional_state.test_information_and_score` sums all answers in one
+    reduction, which numpy carries out in another order for a batch of one row).
+    """
+    k = tab.k
+    params, given, answers, reached = _answered(tab, items, resp)
+    th = theta[:, None, :]
+    j = np.where(given, md.slope_information(params, th), 0.0)  # (R, W)
+    g = md.log_likelihood_gradient(params, th, answers)  # (R, W, K), 0 where not given
+    a = params.slopes  # (R, W, K)
+    info = np.zeros((theta.shape[0], k, k))
+    grad = np.zeros(theta.shape)
+    for col in reached:
+        for p in range(k):
+            for q in range(p, k):
+                info[:, p, q] = info[:, p, q] + j[:, col] * a[:, col, p] * a[:, col, q]
+                if q != p:
+                    info[:, q, p] = info[:, p, q]
+        grad = grad + g[:, col]
+    return info, grad
+
+
+def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """MLE of the ability vector (R, K), its covariance (R, K, K) and status (R,).
+
+    Maximises ``sum_i log P(x_i | theta)`` over the grid's box ``[grid_min, grid_max]^K`` by
+    Newton-Raphson with the test's Fisher information matrix ``I(theta) = sum_i J_i a_i
+    a_i'`` (Fisher scoring: exact Newton for M2PL items), projected on the box: a
+    coordinate at a bound whose gradient points outward is held there and the step solves
+    the free coordinates' block; a step that does not raise the log-likelihood is halved.
+    The covariance is ``I(theta_hat)^-1``.
+
+    Status ``converged`` where the MLE exists.  It does not exist where the pattern is not
+    mixed (``all_lowest``, ``all_highest``, ``no_responses``: the likelihood rises towards
+    a corner), where the likelihood rises towards the box's edge on some dimension (the
+    iteration ends with a coordinate held at a bound: ``at_lower_bound``,
+    ``at_upper_bound``, e.g. every item of one dimension right), where a direction has no
+    information (``no_information``: a singular information matrix, e.g. no item of one
+    dimension answered yet) or where the iteration does not settle (``not_converged``);
+    the estimate and covariance of those rows are NaN (:func:`mle_or_fallback` puts the
+    design's stand-in there).
+    """
+    tab = ctx.multidimensional
+    sc = ctx.design.scoring
+    lo, hi = sc.grid_min, sc.grid_max
+    items, resp = state.scored_items(rows)
+    k = tab.k
+    r_n = rows.size
+    status = pattern_status(tab, items, resp)
+    theta = np.clip(np.array(start_theta, dtype=float), lo, hi)
+    eye = np.eye(k)
+
+    def info_and_score(at, x):
+        return information_and_score(tab, items[at], resp[at], x)
+
+    active = np.flatnonzero(status == "")
+    held = np.zeros((r_n, k), dtype=bool)
+    for _ in range(MLE_ITERATIONS):
+        if active.size == 0:
+            break
+        x = theta[active]
+        info, grad = info_and_score(active, x)
+        out = ((x >= hi) & (grad > 0)) | ((x <= lo) & (grad < 0))
+        held[active] = out
+        free = ~out
+        both = free[:, :, None] & free[:, None, :]
+        mat = np.where(both, info, eye)
+        diag = np.prod(np.diagonal(mat, axis1=-2, axis2=-1), axis=-1)
+        singular = ~(determinant(mat) > SINGULAR_SHARE * diag)
+        status[active[singular]] = "no_information"
+        step = matrix_vector(inverse(np.where(singular[:, None, None], eye, mat)), np.where(free, grad, 0.0))
+        before = log_likelihood(tab, items[active], resp[active], x)
+        tol = 1e-13 * (1.0 + np.abs(before))
+        t = np.ones(active.size)
+        new = np.clip(x + step, lo, hi)
+        worse = ~(log_likelihood(tab, items[active], resp[active], new) >= before - tol)
+        for _ in range(MLE_HALVINGS):
+            if not worse.any():
+                break
+            w = np.flatnonzero(worse)
+            t[w] = t[w] * 0.5
+            new[w] = np.clip(x[w] + t[w, None] * step[w], lo, hi)
+            worse[w] = ~(log_likelihood(tab, items[active[w]], resp[active[w]], new[w]) >= before[w] - tol[w])
+        new = np.where(worse[:, None] | singular[:, None], x, new)
+        moved = np.max(np.abs(new - x), axis=1)
+        theta[active] = new
+        settled = (moved < MLE_TOLERANCE) | worse | singular
+        active = active[~settled]
+    status[active] = "not_converged"
+    mixed = np.flatnonzero(status == "")
+    if mixed.size:
+        # the last iteration's hold, once more at the estimate: a coordinate the likelihood
+        # pushes past the box has no finite maximum there
+        info, grad = info_and_score(mixed, theta[mixed])
+        x = theta[mixed]
+        up = np.any((x >= hi) & (grad > 0), axis=1)
+        down = np.any((x <= lo) & (grad < 0), axis=1)
+        diag = np.prod(np.diagonal(info, axis1=-2, axis2=-1), axis=-1)
+        singular = ~(determinant(info) > SINGULAR_SHARE * diag)
+        status[mixed] = np.where(up, "at_upper_bound", np.where(down, "at_lower_bound", np.where(
+            singular, "no_information", "converged")))
+    ok = status == "converged"
+    cov = np.full((r_n, k, k), np.nan)
+    if mixed.size:
+        inv = inverse(np.where(singular[:, None, None], eye, info))
+        cov[mixed] = np.where(ok[mixed][:, None, None], inv, np.nan)
+    theta = np.where(ok[:, None], theta, np.nan)
+    return theta, cov, status
+
+
+def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
+    """The MLE of ``rows`` where it exists, else the design's stand-in; (theta, covariance, status).
+
+    ``mean``, ``cov``: the posterior mean and covariance on the grid (the MLE starts from
+    the mean).  Where the MLE does not exist (:func:`mle_estimate`) ``[scoring]
+    extreme_pattern_method`` decides, as for one dimension: ``eap`` the posterior mean and
+    covariance, ``map`` the MAP with the design's prior (from the previous interim
+    estimate), ``fixed_step`` the previous interim estimate moved by ``[scoring]
+    fixed_step`` towards the last scored answer (up after an answer in the item's highest
+    category, down after one in its lowest, not at all otherwise) on each dimension the
+    item measures (the sign of its slope there), with the posterior covariance.  For the
+    final estimate (``final``) ``fixed_step`` keeps the interim estimate and covariance the
+    test ended on.
+    """
+    from ..design.types import ExtremePatternMethod
+
+    tab = ctx.multidimensional
+    sc = ctx.design.scoring
+    theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
+    fb = np.flatnonzero(status != "converged")
+    if fb.size == 0:
+        return theta, mle_cov, status
+    how = sc.extreme_pattern_method
+    if how is ExtremePatternMethod.EAP:
+        sub_theta, sub_cov = mean[fb], cov[fb]
+    elif how is ExtremePatternMethod.MAP:
+        sub_theta, sub_cov, _ = map_estimate(ctx, state, rows[fb], state.theta[rows[fb]])
+    elif how is ExtremePatternMethod.FIXED_STEP:
+        previous = state.theta[rows[fb]]
+        if final:
+            sub_theta, sub_cov = previous, state.covariance[rows[fb]]
+        else:
+            items, resp = state.scored_items(rows[fb])
+            given = items >= 0
+            last = np.where(given.any(axis=1), given.shape[1] - 1 - np.argmax(given[:, ::-1], axis=1), 0)
+            at = np.arange(fb.size)
+            item, answer = items[at, last], resp[at, last]
+            top = tab.params.n_categories[np.maximum(item, 0)] - 1
+            direction = np.where(item < 0, 0.0, np.where(answer >= top, 1.0, np.where(answer <= 0, -1.0, 0.0)))
+            slopes = np.sign(tab.params.slopes[np.maximum(item, 0)])
+            sub_theta = np.clip(previous + (direction * sc.fixed_step)[:, None] * slopes, sc.grid_min, sc.grid_max)
+            sub_cov = cov[fb]
+    else:  # pragma: no cover - every method is a branch above
+        raise AssertionError(how)
+    theta[fb], mle_cov[fb] = sub_theta, sub_cov
+    return theta, mle_cov, status
+
 
 def _se(cov) -> np.ndarray:
     return np.sqrt(np.maximum(np.diagonal(cov, axis1=-2, axis2=-1), 0.0))
@@ -270,6 +483,8 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
         mean, cov = got
     else:
         mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
+    if ctx.design.scoring.method is ScoringMethod.MLE:
+        mean, cov, _ = mle_or_fallback(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
@@ -290,7 +505,9 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
     """Why each row's test stops now (``""``: go on), by :func:`adaptive_engine.kernel.stopping.stop_reasons`.
 
     The SE rule fires once every dimension is at or below its target; the confidence
-    interval rule classifies the composite of ``[reporting] composite_weights``.
+    interval rule classifies the composite of ``[reporting] composite_weights``;
+    ``se_reduction`` and ``min_information`` hold on every dimension
+    (:mod:`.multidimensional_stopping`).
     """
     tab = ctx.multidimensional
     st = tab.stopping_rule
@@ -307,6 +524,13 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
         value, value_se = composite(weights, state.theta[rows], state.covariance[rows])
         kwargs["ci_decision"] = stopping.confidence_interval_decision(
             value, value_se, cut=st.confidence_interval.cut, confidence=st.confidence_interval.confidence)
+    if st.se_reduction is not None or st.min_information is not None:
+        from . import multidimensional_stopping as precision
+
+        if st.se_reduction is not None:
+            kwargs["se_reduction"] = precision.largest_se_reduction(ctx, state, rows)
+        if st.min_information is not None:
+            kwargs["best_information"] = precision.largest_information_per_dimension(ctx, state, rows)
     if st.time_limit is not None:
         kwargs["elapsed"] = state.elapsed[rows]
     if ctx.balanced:
@@ -317,13 +541,16 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
 
 @attrs.frozen(eq=False)
 class MultidimensionalFinalEstimates:
-    """Final scores of a batch: ``theta``, ``se`` (R, K), ``covariance`` (R, K, K), ``status`` (R,)."""
+    """Final scores of a batch: ``theta``, ``se`` (R, K), ``covariance`` (R, K, K), ``status`` (R,),
+    and the person fit ``lz`` (R,) at the final ability vector (:func:`person_fit_lz`; None
+    where not computed)."""
 
     theta: np.ndarray
     se: np.ndarray
     covariance: np.ndarray
     status: np.ndarray
     sprt_decision: None = None
+    lz: np.ndarray | None = None
 
 
 def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
@@ -346,7 +573,8 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
     if ((interim_current or ctx.posterior_form != "log") and design.scoring.method is ScoringMethod.EAP
             and design.final_method is ScoringMethod.EAP and bool(np.all(state.n_given[rows] > 0))):
         cov = state.covariance[rows]
-        return MultidimensionalFinalEstimates(theta=state.theta[rows], se=_se(cov), covariance=cov, status=status)
+        return MultidimensionalFinalEstimates(theta=state.theta[rows], se=_se(cov), covariance=cov, status=status,
+                                              lz=person_fit_lz(ctx, state, rows, state.theta[rows]))
     tab = ctx.multidimensional
     if ctx.posterior_form == "log":
         mean, cov = add_and_moments(state.log_post, rows, points=tab.points)
@@ -358,7 +586,19 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
         mean, cov, ok = map_estimate(ctx, state, rows, mean)
         status = np.where(state.n_scored[rows] == 0, "no_responses",
                           np.where(ok, "converged", "not_converged")).astype(object)
-    return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status)
+    elif ctx.design.final_method is ScoringMethod.MLE:
+        mean, cov, status = mle_or_fallback(ctx, state, rows, mean, cov, final=True)
+    return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
+                                          lz=person_fit_lz(ctx, state, rows, mean))
+
+
+def person_fit_lz(ctx, state, rows, theta) -> np.ndarray:
+    """lz (Drasgow, Levine & Williams 1985) of ``rows`` at their final ability vectors
+    ``theta`` (R, K), over the scored answers (:func:`adaptive_engine.irt.person_fit.lz_at_vectors`)."""
+    from ..irt.person_fit import lz_at_vectors
+
+    items, resp = state.scored_items(rows)
+    return lz_at_vectors(ctx.multidimensional.params, items, resp, theta)
 
 
 def finish(ctx, state, rows, estimates=None) -> list[dict]:
@@ -378,7 +618,9 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
     dimension), ``covariance`` the K x K matrix.  With ``[reporting] composite_weights``
     the composite ``w . theta`` comes with its SE ``sqrt(w' S w)``, interval, scaled score
     and the classifications of the cut scores (which classify the composite).  Person fit
-    is not computed for an ability vector (``person_fit`` is None).
+    is lz at the final ability vector (``person_fit``: ``lz``, ``threshold`` = ``[reporting]
+    person_fit_threshold``, ``flagged`` when lz is below it; lz None where it cannot be
+    computed, e.g. without answers).
     """
     from .final_report import final_reports
 
@@ -395,6 +637,7 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
         value, value_se = composite(tab.composite_weights, est.theta, est.covariance)
         comp = final_reports(design, theta=value, se=value_se, **common)
     out = []
+    threshold = float(design.reporting.person_fit_threshold)
     keep = ("theta", "se", "interval", "scaled_score", "scaled_se", "scaled_interval")
     for i in range(r):
         first = per_dim[0][i]
@@ -414,9 +657,16 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
             rep["classifications"] = c.get("classifications", [])
         else:
             rep["classifications"] = []
-        rep.update(items=first["items"], stop_reason=first["stop_reason"], person_fit=None)
+        rep.update(items=first["items"], stop_reason=first["stop_reason"],
+                   person_fit=_vector_person_fit(None if est.lz is None else est.lz[i], threshold))
         out.append(rep)
     return out
+
+
+def _vector_person_fit(lz, threshold: float) -> dict:
+    """The report's ``person_fit`` of an ability vector: lz, the threshold, whether it is flagged."""
+    value = None if lz is None else _plain(lz)
+    return {"lz": value, "threshold": threshold, "flagged": None if value is None else value < threshold}
 
 
 def _plain(x) -> float | None:

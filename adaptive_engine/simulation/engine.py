@@ -584,20 +584,26 @@ def _not_for_vectors(design, bank) -> SimulationError:
         f"the design runs on the multidimensional kernel (the bank has {bank.n_dimensions} ability dimension"
         f"{'s' if bank.n_dimensions != 1 else ''}, or the design asks for it); simulate it with simulate(design, "
         "bank, true_theta=(N, K) array, seed=...) or `adaptive-engine simulate`, tune it with "
-        "multidimensional_tuning.tune_multidimensional or `adaptive-engine tune`; exposure calibration and true "
-        "banks other than the operational one are not available for it", "design")
+        "multidimensional_tuning.tune_multidimensional or `adaptive-engine tune`, calibrate its exposure parameters "
+        "with exposure_tuning.calibrate_sympson_hetter_multidimensional or `adaptive-engine exposure calibrate`; "
+        "true banks other than the operational one are not available for it", "design")
 
 
-def _multidimensional(design, bank, *, true_theta, seed, true_bank, chunk_size, population, workers, ctx):
-    """:func:`simulate` of a design on the multidimensional kernel (in this process)."""
+def _multidimensional(design, bank, *, true_theta, seed, true_bank, population, execution, loose, ctx):
+    """:func:`simulate` of a design on the multidimensional kernel: chunks in this process or
+    on workers, as ``execution`` (or its fields ``loose``) says; chunks of
+    :data:`.multidimensional_engine.DEFAULT_CHUNK` unless a chunk size is given."""
     from .multidimensional_engine import DEFAULT_CHUNK, simulate_multidimensional
 
-    if population is not None or true_bank is not None or (workers not in (None, 1)):
+    if population is not None or true_bank is not None:
         raise _not_for_vectors(design, bank)
     if true_theta is None or seed is None:
         raise TypeError("simulate needs the examinees: true_theta (N, K) and seed")
+    if execution is None:
+        execution = Execution(**{"chunk_size": DEFAULT_CHUNK, **loose})
     return simulate_multidimensional(design, bank, true_theta=true_theta, seed=seed,
-                                     chunk_size=chunk_size or DEFAULT_CHUNK, ctx=ctx)
+                                     chunk_size=execution.chunk_size, ctx=ctx, progress=execution.progress,
+                                     workers=execution.workers, executor=execution.executor)
 
 
 def simulate(design: Design, bank: ItemBank, *, true_theta=None, seed: int | None = None,
@@ -653,8 +659,10 @@ def simulate(design: Design, bank: ItemBank, *, true_theta=None, seed: int | Non
         Bad settings, located at the parameter (``chunk_size``, ``true_theta``, ...).
     """
     if runs_multidimensional(design, bank):
+        execution, loose = _given_once(execution, "execution", dict(chunk_size=chunk_size, workers=workers,
+                                                                    executor=executor, progress=progress))
         return _multidimensional(design, bank, true_theta=true_theta, seed=seed, true_bank=true_bank,
-                                 chunk_size=chunk_size, population=population, workers=workers, ctx=ctx)
+                                 population=population, execution=execution, loose=loose, ctx=ctx)
     population, loose = _given_once(population, "population",
                                     dict(true_theta=true_theta, seed=seed, true_bank=true_bank))
     if population is None:

@@ -39,6 +39,14 @@ the estimate's stratum always equals the true one the step is exactly the plain 
 The file written is the long ``item_id,theta_from,theta_to,exposure_parameter`` CSV, one
 row per item and stratum.
 
+Ability vectors
+---------------
+A design that runs on the multidimensional kernel is calibrated by the same iterations
+(:func:`calibrate_sympson_hetter_multidimensional`), each a run of the multidimensional
+simulation driver on the same true ability vectors (N, K) with fresh random streams; the
+lottery and the selection counts are the kernel's own, so the step is the plain one above.
+Conditional parameters need a scalar ability to cut into strata and are not made for it.
+
 Administrations without a lottery
 ---------------------------------
 A design that draws its first item at random among several candidates
@@ -70,6 +78,8 @@ from ..errors import AdaptiveEngineError
 from ..files import check_target, write_text
 from .engine import Execution, simulate, stratum_of
 from .exposure_diagnosis import ExposureDiagnosis, LotteryFreeCounts, diagnose
+from .multidimensional_engine import DEFAULT_CHUNK as MULTIDIMENSIONAL_CHUNK
+from .multidimensional_engine import simulate_multidimensional
 from .population import Population
 
 
@@ -304,32 +314,109 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, p
                                       strata=_check_strata(strata), max_iterations=max_iterations,
                                       tolerance=tolerance)
     n = population.size
+    require_design_fits_bank(with_parameters(design, {}), bank)
+
+    def run(current: Design, it: int, counts: LotteryFreeCounts):
+        examinees, run = _iteration(population, execution, it, max_iterations)
+        result = simulate(current, bank, population=examinees, execution=run, on_chunk=counts)
+        return result.administered, result.offered, result.n_scored
+
+    cal = _plain_iterations(design, bank, n=n, run=run, target=target, tolerance=tolerance,
+                            max_iterations=max_iterations)
+    if execution.progress is not None:
+        execution.progress(max_iterations * n, max_iterations * n)
+    return cal
+
+
+def calibrate_sympson_hetter_multidimensional(design: Design, bank: ItemBank, *, target: float, true_theta,
+                                              seed: int, max_iterations: int = 15, tolerance: float = 0.02,
+                                              chunk_size: int = MULTIDIMENSIONAL_CHUNK, workers: int = 1,
+                                              progress=None) -> ExposureCalibration:
+    """:func:`calibrate_sympson_hetter` for a design on the multidimensional kernel.
+
+    Parameters
+    ----------
+    true_theta : float array, shape (N, K)
+        The simulated population's true ability vectors, used in every iteration (with
+        fresh random streams: a seed derived from ``seed`` per iteration, as in the
+        one-dimensional calibration).  The command line draws them from the design's prior
+        unless ``--theta`` says otherwise (:func:`.population.design_prior_abilities`).
+    seed : int
+    chunk_size : int
+        Examinees per kernel batch.
+    workers : int
+        Processes per iteration's simulation (:func:`.simulate_multidimensional`; the same
+        parameters whatever the number).
+    progress : callable, optional
+        ``progress(done, total)`` over at most ``max_iterations`` x N examinees, reaching
+        ``total`` when the calibration ends.
+
+    Other parameters and the result are those of :func:`calibrate_sympson_hetter`
+    (unconditional parameters only).
+    """
+    if not 0 < target <= 1:
+        raise AdaptiveEngineError(f"the target exposure rate must lie in (0, 1], got {target}", "target")
+    if max_iterations < 1:
+        raise AdaptiveEngineError(f"max_iterations must be >= 1, got {max_iterations}", "max_iterations")
+    require_design_fits_bank(with_parameters(design, {}), bank)
+    true_theta = np.asarray(true_theta, dtype=float)
+    n = int(true_theta.shape[0]) if true_theta.ndim else 0
+    total = max_iterations * n
+
+    def run(current: Design, it: int, counts: LotteryFreeCounts):
+        report = None
+        if progress is not None:
+            def report(done, _n):
+                progress(min(it * n + done, total - 1), total)  # the bar ends with the calibration
+
+        result = simulate_multidimensional(current, bank, true_theta=true_theta, seed=_iteration_seed(seed, it),
+                                           chunk_size=chunk_size, workers=workers, progress=report)
+        # first items and item sets are counted from the order of administration; the
+        # counts are not split by ability here (one stratum)
+        counts(_Administrations(items=result.items, true_theta=np.zeros(result.size)))
+        return result.administered, result.offered, result.n_scored
+
+    cal = _plain_iterations(design, bank, n=n, run=run, target=target, tolerance=tolerance,
+                            max_iterations=max_iterations)
+    if progress is not None:
+        progress(total, total)
+    return cal
+
+
+@attrs.frozen(eq=False)
+class _Administrations:
+    """What :class:`.exposure_diagnosis.LotteryFreeCounts` reads of a chunk."""
+
+    items: np.ndarray
+    true_theta: np.ndarray
+
+
+def _plain_iterations(design, bank, *, n, run, target, tolerance, max_iterations) -> ExposureCalibration:
+    """The Sympson-Hetter iterations: ``run(design with the current parameters, iteration,
+    LotteryFreeCounts)`` simulates N examinees and returns the administrations and
+    selections per item (n_items,) and the scored items per examinee (N,)."""
     operational = np.asarray(bank.status) == "operational"
     k = np.ones(bank.n_items)
     history = []
     converged = False
-    require_design_fits_bank(with_parameters(design, {}), bank)
     sets = _set_members(bank, design)
     for it in range(max_iterations):
         params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
         current = with_parameters(design, params)
         counts = LotteryFreeCounts(design, bank)
-        examinees, run = _iteration(population, execution, it, max_iterations)
-        result = simulate(current, bank, population=examinees, execution=run, on_chunk=counts)
-        given = result.administered / n
-        selected = result.offered / n
+        administered, offered, n_scored = run(current, it, counts)
+        given = administered / n
+        selected = offered / n
         max_rate = float(given[operational].max())
         history.append({"iteration": it + 1, "max_exposure": max_rate,
                         "share_above_target": float(np.mean(given[operational] > target)),
-                        "mean_length": float(result.n_scored.mean()),
+                        "mean_length": float(n_scored.mean()),
                         "items_restricted": int(np.sum(k[operational] < 1))})
         if max_rate <= target + tolerance:
             converged = True
             break
         used = k
         k = _updated(k, given, selected, target, sets, free=counts.first[0] / n)
-    if execution.progress is not None:
-        execution.progress(max_iterations * n, max_iterations * n)
     params = {bank.item_ids[i]: float(k[i]) for i in np.flatnonzero(operational)}
     diagnosis = None
     if not converged:
@@ -421,6 +508,18 @@ def parameters_csv(parameters: dict, strata=()) -> str:
 def write_parameters(parameters: dict, path: str | Path, *, strata=()) -> Path:
     """Write the parameters CSV (atomically, with the normal file mode: :mod:`adaptive_engine.files`)."""
     return write_text(path, parameters_csv(parameters, strata))
+
+
+def run_multidimensional_calibration(design: Design, bank: ItemBank, *, target: float, out_file, true_theta,
+                                     seed: int, max_iterations: int = 15, tolerance: float = 0.02,
+                                     workers: int = 1, progress=None) -> ExposureCalibration:
+    """:func:`calibrate_sympson_hetter_multidimensional`, then write the parameters file."""
+    check_target(out_file)  # before the long run: a bad folder fails at once
+    cal = calibrate_sympson_hetter_multidimensional(design, bank, target=target, true_theta=true_theta, seed=seed,
+                                                    max_iterations=max_iterations, tolerance=tolerance,
+                                                    workers=workers, progress=progress)
+    write_parameters(cal.parameters, out_file)
+    return cal
 
 
 def run_calibration(design: Design, bank: ItemBank, *, target: float, out_file, population: Population,

@@ -5,8 +5,12 @@ multidimensional kernel (a bank of K > 1 dimensions, or a design that asks for i
 examinee ``i`` gets the seed ``randomness.examinee_seeds(seed, n)[i]`` and its answers are
 drawn from the counter-based stream ``SIMULATED_ANSWER`` exactly as in the
 one-dimensional driver, so a simulated examinee replays identically as a live session.
-Runs in this process, in chunks; as there, examinees who gave the same answers so far
-share one kernel row when the design draws nothing at random
+Runs in chunks, in this process or (``workers > 1``, or an ``executor``) on worker
+processes, each chunk a task as in the one-dimensional driver: a worker builds the
+context once per run, the chunks come back in examinee order, and as every examinee's
+seed and answers are functions of the run seed and the examinee's index, the results do
+not depend on the chunking or the workers.  As there, examinees who gave the same answers
+so far share one kernel row when the design draws nothing at random
 (:mod:`adaptive_engine.simulation.shared_histories`), with every result the same.
 
 :func:`multidimensional_metrics` summarises precision per dimension and for the composite
@@ -20,7 +24,11 @@ from __future__ import annotations
 
 import csv
 import io
+import itertools
 import json
+import uuid
+from collections import deque
+from concurrent.futures import Executor
 from pathlib import Path
 from typing import Callable
 
@@ -52,7 +60,10 @@ class MultidimensionalSimulationResult:
     """Outcomes of a multidimensional run (arrays over examinees, first axis).
 
     ``true_theta``, ``theta``, ``se``: (N, K); ``covariance`` (N, K, K); ``items`` (N, L)
-    in order given and ``responses`` (-1 padded); ``administered`` (n_items,).
+    in order given and ``responses`` (-1 padded); ``administered`` (n_items,); ``offered``
+    (n_items,): how often each item was selected, given or withheld by the Sympson-Hetter
+    lottery (as the one-dimensional driver's ``offered``); ``lz`` (N,)
+    the person fit at the final ability vector (NaN where it cannot be computed).
     """
 
     design: Design
@@ -70,6 +81,8 @@ class MultidimensionalSimulationResult:
     items: np.ndarray
     responses: np.ndarray
     administered: np.ndarray
+    lz: np.ndarray | None = None
+    offered: np.ndarray | None = None
 
     @property
     def size(self) -> int:
@@ -77,7 +90,8 @@ class MultidimensionalSimulationResult:
 
 
 def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
-    """Simulate examinees ``start .. start + n - 1`` (true abilities (n, K)); plain arrays."""
+    """Simulate examinees ``start .. start + n - 1`` (true abilities (n, K)); plain arrays
+    (``withheld`` (n_items,): the chunk's Sympson-Hetter withholdings per item)."""
     bank = ctx.bank
     n = true_theta.shape[0]
     params = bank.multidimensional_params
@@ -85,7 +99,9 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
     keys = randomness.stream_key(seeds)
     # examinees with the same answers so far share a kernel row when the design draws
     # nothing at random (.shared_histories, as in the one-dimensional driver)
-    (state, _), chunk_rows = ChunkRows.start(ctx, keys)
+    (state, picked), chunk_rows = ChunkRows.start(ctx, keys)
+    withheld = np.zeros(bank.n_items, dtype=np.int64)
+    _count_withheld(withheld, picked)
     while True:
         examinees, at_row = chunk_rows.testing(state)
         if examinees.size == 0:
@@ -97,28 +113,107 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
         top = params.n_categories[item] - 1
         answers = np.minimum((np.cumsum(p, axis=1) < u[:, None]).sum(axis=1), top)
         rows, answers = chunk_rows.split(state, examinees, at_row, answers)
-        kernel.answer(ctx, state, rows, answers)
+        _count_withheld(withheld, kernel.answer(ctx, state, rows, answers))
     # every answer went through the kernel's answer: an EAP design's interim estimates are final
     est = final_estimates(ctx, state, chunk_rows.in_use(), interim_current=True)
     per_examinee = chunk_rows.of_examinees
     return dict(seeds=seeds, true_theta=true_theta, theta=per_examinee(est.theta), se=per_examinee(est.se),
                 covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
                 n_pretest=per_examinee(state.n_pretest).copy(), stop_reason=per_examinee(state.stop_reason).copy(),
-                items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy())
+                items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy(),
+                lz=per_examinee(est.lz), withheld=withheld)
+
+
+#: Contexts built in a worker process, by run token (one run at a time per worker).
+_CONTEXTS: dict = {}
+
+
+def _worker_chunk(token: str, design: Design, bank: ItemBank, seed: int, start: int, true_theta) -> dict:
+    """:func:`run_chunk` in a worker; the context is built once per worker process and run."""
+    ctx = _CONTEXTS.get(token)
+    if ctx is None:
+        _CONTEXTS.clear()  # drop the contexts of earlier runs
+        ctx = _CONTEXTS[token] = build_context(design, bank)
+    return run_chunk(ctx, seed=seed, start=start, true_theta=true_theta)
+
+
+def _chunks(design, bank, ctx, *, seed, true_theta, chunk_size, workers, executor):
+    """The chunks' plain arrays (:func:`run_chunk`) in examinee order, with their sizes."""
+    total = true_theta.shape[0]
+    starts = range(0, total, chunk_size)
+    if executor is None and workers == 1:
+        ctx = ctx if ctx is not None else build_context(design, bank)
+        for s in starts:
+            yield run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size])
+        return
+    own = executor is None
+    if own:  # multiprocessing is imported only for a run on workers
+        from concurrent.futures import ProcessPoolExecutor
+
+    pool = ProcessPoolExecutor(max_workers=workers) if own else executor
+    token = uuid.uuid4().hex
+    window = max(2, 2 * workers)  # chunks in flight: bounds memory at a few chunks
+
+    def submit(s):
+        return pool.submit(_worker_chunk, token, design, bank, seed, s, true_theta[s : s + chunk_size])
+
+    try:
+        it = iter(starts)
+        pending = deque(submit(s) for s in itertools.islice(it, window))
+        while pending:
+            part = pending.popleft().result()
+            nxt = next(it, None)
+            if nxt is not None:
+                pending.append(submit(nxt))
+            yield part
+    finally:
+        if own:
+            pool.shutdown(cancel_futures=True)
+
+
+def _count_withheld(withheld: np.ndarray, picked) -> None:
+    """Add the (row, item) pairs the lottery withheld to the per-item counts.  A design with a
+    lottery draws at random, so its rows are never shared: a row is one examinee."""
+    if picked.withheld:
+        np.add.at(withheld, np.array([i for _, i in picked.withheld], dtype=np.int64), 1)
 
 
 def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, seed: int,
                               chunk_size: int = DEFAULT_CHUNK, ctx: TestContext | None = None,
-                              progress: Callable[[int, int], None] | None = None) -> MultidimensionalSimulationResult:
+                              progress: Callable[[int, int], None] | None = None, workers: int = 1,
+                              executor: Executor | None = None) -> MultidimensionalSimulationResult:
     """Run ``design`` for examinees of true abilities ``true_theta`` (N, K).
+
+    Parameters
+    ----------
+    chunk_size : int
+        Most examinees per kernel batch; with ``workers > 1`` smaller chunks are used so
+        that every worker gets work
+        (:func:`adaptive_engine.simulation.engine.effective_chunk_size`).
+    ctx : TestContext, optional
+        A context already built for (design, bank), used in process only (the caller
+        answers for the pair having passed the gate).
+    progress : callable, optional
+        ``progress(done, total)`` after each chunk.
+    workers : int
+        With no executor, ``workers > 1`` runs the chunks on a process pool of that size;
+        with an executor, its number of workers (how finely the run is cut).
+    executor : concurrent.futures.Executor, optional
+        Runs the chunks (anything with ``submit`` returning futures).
+
+    The results are the same, bit for bit, for every chunk size, number of workers and
+    executor.
 
     Raises
     ------
     DesignError
         The design does not fit the bank (the gate of every run).
     SimulationError
-        ``true_theta`` not of shape (N, K) or not finite; ``chunk_size`` below 1.
+        ``true_theta`` not of shape (N, K) or not finite; ``chunk_size`` or ``workers``
+        below 1.
     """
+    from .engine import effective_chunk_size
+
     if ctx is None:
         require_design_fits_bank(design, bank)
     k = bank.n_dimensions
@@ -130,23 +225,26 @@ def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, see
                               f"got {true_theta.shape}", "true_theta")
     if not np.all(np.isfinite(true_theta)):
         raise SimulationError("true abilities must be finite", "true_theta")
-    if not isinstance(chunk_size, int) or chunk_size < 1:
-        raise SimulationError(f"must be a whole number >= 1, got {chunk_size!r}", "chunk_size")
-    ctx = ctx if ctx is not None else build_context(design, bank)
-    parts = []
+    for name, value in (("chunk_size", chunk_size), ("workers", workers)):
+        if isinstance(value, (bool, np.bool_)) or not isinstance(value, (int, np.integer)) or value < 1:
+            raise SimulationError(f"must be a whole number >= 1, got {value!r}", name)
     total = true_theta.shape[0]
-    for s in range(0, total, chunk_size):
-        parts.append(run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size]))
-        if progress is not None:
-            progress(min(s + chunk_size, total), total)
-    joined = {key: np.concatenate([p[key] for p in parts], axis=0) for key in parts[0]} if parts else None
-    if joined is None:
+    if total == 0:
         raise SimulationError("no examinees", "true_theta")
+    size = effective_chunk_size(total, int(chunk_size), int(workers))
+    parts = []
+    for part in _chunks(design, bank, ctx, seed=seed, true_theta=true_theta, chunk_size=size,
+                        workers=int(workers), executor=executor):
+        parts.append(part)
+        if progress is not None:
+            progress(min(len(parts) * size, total), total)
+    withheld = sum(p.pop("withheld") for p in parts)
+    joined = {key: np.concatenate([p[key] for p in parts], axis=0) for key in parts[0]}
     items = joined["items"]
     administered = np.bincount(items[items >= 0], minlength=bank.n_items)
     return MultidimensionalSimulationResult(design=design, bank=bank, seed=int(seed),
                                             dimension_names=tuple(bank.dimension_names),
-                                            administered=administered, **joined)
+                                            administered=administered, offered=administered + withheld, **joined)
 
 
 def _precision(true, est, se) -> dict:
@@ -210,6 +308,11 @@ def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposu
                   "items_never_used": int(result.bank.n_items - used), "exposure_target": target,
                   "share_above_target": float(np.mean(rates[operational] > target)) if operational.any() else None},
     )
+    if result.lz is not None:
+        threshold = float(design.reporting.person_fit_threshold)
+        known = result.lz[np.isfinite(result.lz)]
+        out["person_fit"] = {"statistic": "lz", "threshold": threshold, "computed": int(known.size),
+                             "share_flagged": float(np.mean(known < threshold)) if known.size else None}
     classes = composite_classification(result)
     if classes:
         out["classification"] = classes
@@ -217,16 +320,19 @@ def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposu
 
 
 def examinees_csv(result: MultidimensionalSimulationResult) -> str:
-    """One row per examinee: seed, true and estimated theta and SE per dimension, length, stop."""
+    """One row per examinee: seed, true and estimated theta and SE per dimension, length, stop,
+    person fit ``lz`` (empty where it cannot be computed)."""
     names = result.dimension_names
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["examinee", "seed"] + [f"true_{d}" for d in names] + [f"theta_{d}" for d in names]
-               + [f"se_{d}" for d in names] + ["n_scored", "n_pretest", "stop_reason"])
+               + [f"se_{d}" for d in names] + ["n_scored", "n_pretest", "stop_reason", "lz"])
+    lz = result.lz if result.lz is not None else np.full(result.size, np.nan)
     for i in range(result.size):
         w.writerow([i, int(result.seeds[i])] + [f"{x:.6g}" for x in result.true_theta[i]]
                    + [f"{x:.6g}" for x in result.theta[i]] + [f"{x:.6g}" for x in result.se[i]]
-                   + [int(result.n_scored[i]), int(result.n_pretest[i]), str(result.stop_reason[i])])
+                   + [int(result.n_scored[i]), int(result.n_pretest[i]), str(result.stop_reason[i]),
+                      f"{lz[i]:.6g}" if np.isfinite(lz[i]) else ""])
     return buf.getvalue()
 
 
@@ -256,10 +362,18 @@ def summary_text(summary: dict) -> str:
         lines.append(f"{name:24} {m['bias']:8.3f} {m['rmse']:8.3f} {m['mean_se']:8.3f} "
                      f"{'' if ratio is None else f'{ratio:.3f}':>8} {'' if corr is None else f'{corr:.3f}':>8}")
     ln = summary["length"]
+    abilities = (summary.get("settings") or {}).get("abilities")
+    if abilities:
+        drawn = summary.get("true_correlation")
+        lines.append(f"true abilities: {abilities}" + ("" if drawn is None else f" (drawn correlation {drawn:.3f})"))
     lines.append(f"examinees {summary['examinees']}; items {ln['mean']:.1f} on average ({ln['min']}-{ln['max']}); "
                  "stops: " + ", ".join(f"{k} {v}" for k, v in summary["stop_reasons"].items()))
     lines.append(f"largest exposure rate {summary['exposure']['max_rate']:.3f}; "
                  f"items used {summary['exposure']['items_used']}")
+    fit = summary.get("person_fit")
+    if fit and fit["share_flagged"] is not None:
+        lines.append(f"person fit lz below {fit['threshold']:g}: {fit['share_flagged']:.1%} of the "
+                     f"{fit['computed']} examinees it was computed for")
     for c in summary.get("classification", []):
         lines.append(f"composite classified at the cut {c['cut']}: accuracy {c['accuracy']:.3f}")
     return "\n".join(lines)

@@ -73,6 +73,9 @@ def _headline_section(result, summary: dict) -> list[str]:
     expo = summary["exposure"]
     n = max(summary["examinees"], 1)
     rows = [{"figure": "Simulated examinees", "value": Html(f"{summary['examinees']:,}")}]
+    abilities = (summary.get("settings") or {}).get("abilities")
+    if abilities:
+        rows.append({"figure": "True abilities drawn from", "value": Html(esc(abilities))})
     if summary.get("true_correlation") is not None:
         rows.append({"figure": "True latent correlation drawn (first two dimensions)",
                      "value": Html(fmt(summary["true_correlation"]))})

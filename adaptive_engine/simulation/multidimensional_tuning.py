@@ -73,11 +73,12 @@ def variant_row(result) -> dict:
 
 
 def tune_multidimensional(design: Design, bank: ItemBank, variations: list[Variation], *, true_theta, seed: int,
-                          chunk_size: int = DEFAULT_CHUNK, progress=None) -> list[dict]:
+                          chunk_size: int = DEFAULT_CHUNK, progress=None, workers: int = 1) -> list[dict]:
     """Run every combination of ``variations`` on the same examinees ``true_theta`` (N, K); a row each.
 
     ``progress(done, total)``, when given, counts simulated examinees over all
-    combinations (``total`` = combinations x examinees).
+    combinations (``total`` = combinations x examinees).  ``workers > 1`` runs each
+    combination's chunks on that many processes (the same rows).
 
     Returns
     -------
@@ -108,7 +109,7 @@ def tune_multidimensional(design: Design, bank: ItemBank, variations: list[Varia
             def inner(done, _n, base=k * n):
                 progress(base + done, total)
         result = simulate_multidimensional(d, bank, true_theta=true_theta, seed=seed, chunk_size=chunk_size,
-                                           progress=inner)
+                                           progress=inner, workers=workers)
         row = dict(zip(keys, combo))
         row.update(variant_row(result))
         rows.append(row)
@@ -117,7 +118,7 @@ def tune_multidimensional(design: Design, bank: ItemBank, variations: list[Varia
 
 def run_multidimensional_tuning_study(design: Design, bank: ItemBank, variations: list[Variation], *, true_theta,
                                       seed: int, out_dir, abilities: str | None = None,
-                                      chunk_size: int = DEFAULT_CHUNK, progress=None) -> list[dict]:
+                                      chunk_size: int = DEFAULT_CHUNK, progress=None, workers: int = 1) -> list[dict]:
     """:func:`tune_multidimensional`, then ``tuning.csv``, ``tuning.json`` and ``tuning.html`` in ``out_dir``.
 
     The page has the table (every dimension's RMSE beside the criterion) and the
@@ -132,7 +133,7 @@ def run_multidimensional_tuning_study(design: Design, bank: ItemBank, variations
     out, created = prepare_folder(out_dir)  # before the long run: a bad folder fails at once
     try:
         rows = tune_multidimensional(design, bank, variations, true_theta=true_theta, seed=seed,
-                                     chunk_size=chunk_size, progress=progress)
+                                     chunk_size=chunk_size, progress=progress, workers=workers)
     except BaseException:
         if created:
             out.rmdir()  # nothing is left of a run that failed

@@ -24,6 +24,12 @@ An ability specification is a short text, as typed on the command line:
 A ``grid:`` or ``file:`` specification fixes the number of examinees: a run takes it as
 its default, and a different explicit number is an error (:func:`examinee_count`).
 
+A design for an ability vector has one more source, not written as text: its own prior,
+the multivariate normal of ``[scoring] prior_mean`` and ``prior_covariance``
+(:func:`design_prior_abilities`).  It is the default population of ``simulate``, ``tune``
+and ``exposure calibrate`` for a bank of two or more dimensions; one-dimensional runs keep
+``normal:0,1``.
+
 Abilities are drawn once for the whole run from the run's seed, so they do not depend on
 how the run is cut into chunks or spread over workers.
 """
@@ -45,7 +51,11 @@ from ..files import decode_input_text, read_input_bytes
 if TYPE_CHECKING:
     from ..bank.item_bank import ItemBank
 
-KINDS = ("normal", "uniform", "grid", "file", "correlated_normal")
+KINDS = ("normal", "uniform", "grid", "file", "correlated_normal", "multivariate_normal")
+#: the kinds a specification text may name (``multivariate_normal`` comes from a design's prior)
+WRITTEN_KINDS = KINDS[:5]
+#: the ability specification of a one-dimensional run when none is given
+DEFAULT_ABILITIES = "normal:0,1"
 #: Most simulated examinees in one run.  Results are held in memory (about 300 bytes per
 #: examinee, plus the examinees.csv text): a million examinees need about 0.5 GB and a few
 #: minutes on two cores; larger studies are several runs with different seeds.
@@ -69,9 +79,11 @@ class AbilitySpec:
     Attributes
     ----------
     kind : str
-        ``normal``, ``uniform``, ``grid`` or ``file``.
+        ``normal``, ``uniform``, ``grid``, ``file``, ``correlated_normal`` or
+        ``multivariate_normal``.
     values : tuple of float
-        (mean, sd), (lo, hi), (lo, hi, points, per_point); empty for ``file``.
+        (mean, sd), (lo, hi), (lo, hi, points, per_point), (mean, sd, correlation); empty for
+        ``file``; (mean vector, covariance rows) for ``multivariate_normal``.
     thetas : tuple of float
         The listed abilities of a ``file`` specification.
     text : str
@@ -107,7 +119,7 @@ class AbilitySpec:
         if self.kind == "uniform":
             lo, hi = self.values
             return lo + (hi - lo) * _generator(seed).random(n)
-        if self.kind == "correlated_normal":
+        if self.kind in ("correlated_normal", "multivariate_normal"):
             raise AbilitySpecError(f"{self.text!r} draws ability vectors: it needs a bank of several "
                                    "dimensions", "abilities")
         if self.kind == "grid":
@@ -137,6 +149,12 @@ def draw_vectors(spec: AbilitySpec, n: int, seed: int, k: int) -> np.ndarray:
         np.fill_diagonal(corr, 1.0)
         z = rng.standard_normal((n, k)) @ np.linalg.cholesky(corr).T
         return mean + sd * z
+    if spec.kind == "multivariate_normal":
+        mean, cov = (np.asarray(v, dtype=float) for v in spec.values)
+        if mean.shape != (k,):
+            raise AbilitySpecError(f"{spec.text} has {mean.size} dimensions; the bank has {k}", "abilities")
+        # as correlated_normal: with mean 0 and unit variances the same draws
+        return mean + rng.standard_normal((n, k)) @ np.linalg.cholesky(cov).T
     if spec.kind == "normal":
         mean, sd = spec.values
         return mean + sd * rng.standard_normal((n, k))
@@ -145,6 +163,31 @@ def draw_vectors(spec: AbilitySpec, n: int, seed: int, k: int) -> np.ndarray:
         return lo + (hi - lo) * rng.random((n, k))
     raise AbilitySpecError(f"{spec.text!r} lists one ability per examinee; a bank of {k} dimensions needs "
                            "correlated_normal:MEAN,SD,CORRELATION, normal:MEAN,SD or uniform:LO,HI", "abilities")
+
+
+def design_prior_abilities(design, bank: "ItemBank") -> AbilitySpec:
+    """The design's own prior as the population: ability vectors from the multivariate normal
+    with ``[scoring] prior_mean`` and ``prior_covariance`` (N(0, I) scaled by ``prior_sd``
+    when the design gives no covariance), for the bank's K dimensions."""
+    from ..kernel.multidimensional_state import prior_of
+
+    mean, cov = prior_of(design, bank.n_dimensions)
+    numbers = ", ".join(f"{x:g}" for x in mean)
+    rows = ", ".join("[" + ", ".join(f"{x:g}" for x in row) + "]" for row in cov)
+    return AbilitySpec(kind="multivariate_normal",
+                       values=(tuple(float(x) for x in mean), tuple(tuple(float(x) for x in row) for row in cov)),
+                       text=f"design prior: multivariate normal, mean [{numbers}], covariance [{rows}]")
+
+
+def run_abilities(text: str | None, design, bank: "ItemBank") -> AbilitySpec:
+    """The population of a run: ``text`` when given (:func:`parse_ability_spec`); else the
+    design's prior on a bank of two or more dimensions (:func:`design_prior_abilities`) and
+    :data:`DEFAULT_ABILITIES` otherwise."""
+    if text is not None:
+        return parse_ability_spec(text)
+    if bank.n_dimensions > 1:
+        return design_prior_abilities(design, bank)
+    return parse_ability_spec(DEFAULT_ABILITIES)
 
 
 def examinee_count(spec: AbilitySpec, n: int | None, *, default: int) -> int:
@@ -211,7 +254,7 @@ def parse_ability_spec(text: str, *, base_dir: str | Path | None = None) -> Abil
     text = str(text).strip()
     kind, sep, body = text.partition(":")
     kind = kind.strip().lower()
-    if not sep or kind not in KINDS:
+    if not sep or kind not in WRITTEN_KINDS:
         raise AbilitySpecError(
             f"unknown ability specification {text!r}; use normal:MEAN,SD, uniform:LO,HI, "
             "grid:LO,HI,POINTS:PER_POINT, file:PATH or correlated_normal:MEAN,SD,CORRELATION", "abilities")
