@@ -191,12 +191,14 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
     Each iteration computes the information ``P + I(theta)`` and the gradient at theta; a
     row whose step ``(P + I)^-1 gradient`` is below :data:`MAP_TOLERANCE` on every
     dimension (after keeping the estimate on the grid's box) has converged *at theta*: the
-    step is not taken (it moves the estimate by
-    less than the tolerance), and ``(P + I(theta))^-1`` is its covariance, with no further
-    computation of the information.  A row that has not converged after
-    :data:`MAP_ITERATIONS` steps gets its information at the point reached, as before.
-    The items of a working set of rows are gathered once and again only when the rows
-    still moving have become fewer than :data:`MAP_REGATHER_SHARE` of it.
+    step is not taken (it moves the estimate by less than the tolerance), and
+    ``(P + I(theta))^-1`` is its covariance, with no further computation of the
+    information.  A row that has not converged after :data:`MAP_ITERATIONS` steps gets its
+    information at the point reached, as before.  The items of a working set of rows are
+    gathered once and again only when the rows still moving have become fewer than
+    :data:`MAP_REGATHER_SHARE` of it.  A batch of one sums its answers in order, as every
+    row of a larger batch does (``one_row_in_order``), so that a live session (one row)
+    gives the bits of the same examinee in a simulated batch.
     """
     tab = ctx.multidimensional
     sc = ctx.design.scoring
@@ -245,6 +247,7 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
                                              one_row_in_order=True)
         cov[left] = inverse(info)
     return theta, cov, converged
+
 
 #: Newton iterations of the MLE, the step that counts as converged, and the halvings of a
 #: step that does not raise the log-likelihood.
