@@ -469,9 +469,11 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
     ``scored_item`` (R,) is the item each row's answer scores (-1: none, or a pretest
     item), ``responses`` (R,) the answers; without them only the estimate is made.  The
     EAP reads each block of rows while it is being added to
-    (:func:`.multidimensional_state.add_and_moments`).  The MAP is sought from the previous
-    interim estimate (one answer away from the new mode); the final MAP starts from the
-    posterior mean (:func:`final_estimates`).
+    (:func:`.multidimensional_state.add_and_moments` under the log form,
+    :func:`.multidimensional_state.scaled_add_and_moments` under the scaled form).  The MAP
+    is sought from the previous interim estimate (one answer away from the new mode); the
+    final MAP starts from the posterior mean (from the last interim MAP where the rows
+    carry no grid, :func:`keeps_grid_posterior`; :func:`final_estimates`).
     """
     tab = ctx.multidimensional
     eap = ctx.design.scoring.method is not ScoringMethod.MAP
