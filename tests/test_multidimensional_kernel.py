@@ -30,7 +30,7 @@ from adaptive_engine.irt import multidimensional as md
 from adaptive_engine.kernel import cycle as kernel
 from adaptive_engine.kernel import random_streams as randomness
 from adaptive_engine.kernel.multidimensional_cycle import map_estimate
-from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.kernel.prepared import build_context, with_log_posterior
 from adaptive_engine.kernel.selection import criterion_values
 from adaptive_engine.simulation.engine import simulate
 from adaptive_engine.simulation.multidimensional_engine import run_chunk, simulate_multidimensional
@@ -135,8 +135,9 @@ def _full_route_pick(ctx, state, rows, ok):
     return pos, best, np.count_nonzero(values == best[:, None], axis=1)
 
 
-@pytest.mark.parametrize("k, n_items", [(2, 60), (2, 300), (3, 150)])
-def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items):
+@pytest.mark.parametrize("k, n_items, form", [(2, 60, "scaled"), (2, 300, "scaled"), (3, 150, "scaled"),
+                                              (2, 300, "log"), (3, 150, "log")])
+def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items, form):
     """The single-precision screening only decides which items get a double-precision value:
     the pick, its value (bit for bit) and the ties are those of every item in double
     precision; the pick is also the largest det(W + I_j) by numpy (Segall 1996)."""
@@ -150,6 +151,7 @@ def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items):
     slopes[-12:], intercepts[-12:] = slopes[:12], intercepts[:12]
     bank = m2pl_bank(slopes, intercepts)
     ctx = build_context(parse_design(design_text(k=k, se="")), bank)
+    ctx = with_log_posterior(ctx) if form == "log" else ctx  # the screening by exp (1, 2) or cosh (3)
     state = _answered_state(ctx, n_answers=6, rows=40)
     rows = np.arange(state.size)
     # abilities from ordinary to far out (values near single precision's underflow)
@@ -217,13 +219,17 @@ def test_composite_criterion_is_information_in_the_weights_direction():
         np.testing.assert_allclose(values[row], p * (1 - p) * (bank.slopes @ u) ** 2, rtol=1e-10)
 
 
-def test_kullback_leibler_is_posterior_weighted():
+@pytest.mark.parametrize("form", ["scaled", "log"])
+def test_kullback_leibler_is_posterior_weighted(form):
     bank = random_bank(30)
     ctx = build_context(parse_design(design_text("kullback_leibler", se="")), bank)
+    ctx = with_log_posterior(ctx) if form == "log" else ctx
     state = _answered_state(ctx, 2, rows=1)
     values = criterion_values(ctx, state, np.array([0]), np.ones((1, bank.n_items), dtype=bool))[0]
     pts = ctx.multidimensional.points
-    w = np.exp(state.log_post[0] - state.log_post[0].max())
+    # the row: a log density (decision rules 1 and 2) or a density divided by its sum (3)
+    row = state.log_post[0]
+    w = np.exp(row - row.max()) if form == "log" else row.copy()
     w /= w.sum()
     theta = state.theta[0]
     for j in range(bank.n_items):
@@ -234,11 +240,13 @@ def test_kullback_leibler_is_posterior_weighted():
         assert values[j] == pytest.approx(np.sum(w * kl), rel=1e-8)
 
 
-def test_map_and_eap_against_scipy():
+@pytest.mark.parametrize("form", ["scaled", "log"])
+def test_map_and_eap_against_scipy(form):
     bank = random_bank(40)
     cov = np.array([[1.0, 0.5], [0.5, 1.0]])
     text = design_text(se="", max_items=12).replace("grid_points_per_dimension = 31", "grid_points_per_dimension = 61")
     ctx = build_context(parse_design(text), bank)
+    ctx = with_log_posterior(ctx) if form == "log" else ctx
     state = _answered_state(ctx, 6, rows=1)
     items, resp = state.scored_items(np.array([0]))
     given = items[0][items[0] >= 0]
@@ -286,9 +294,12 @@ def test_k1_agrees_with_the_one_dimensional_engine():
     np.testing.assert_allclose(a.se, b["se"][:, 0], atol=1e-8, rtol=0)
 
 
-def test_batch_equals_one_at_a_time():
+@pytest.mark.parametrize("form, method", [("scaled", "eap"), ("scaled", "map"), ("log", "eap")])
+def test_batch_equals_one_at_a_time(form, method):
     bank = random_bank()
-    ctx = build_context(parse_design(design_text() + "[exposure]\nmethod = \"randomesque\"\ncandidates = 3\n"), bank)
+    ctx = build_context(parse_design(design_text(extra=f"method = \"{method}\"")
+                                     + "[exposure]\nmethod = \"randomesque\"\ncandidates = 3\n"), bank)
+    ctx = with_log_posterior(ctx) if form == "log" else ctx
     true = np.random.default_rng(1).normal(0, 1, (6, 2))
     whole = run(ctx, true)
     for i in range(6):
@@ -297,6 +308,7 @@ def test_batch_equals_one_at_a_time():
         assert one["seeds"][0] == seeds[i]
         np.testing.assert_array_equal(one["items"][0], whole["items"][i])
         np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
+        np.testing.assert_array_equal(one["covariance"][0], whole["covariance"][i])
 
 
 def test_correlated_dimensions_need_fewer_items_than_two_separate_tests(capsys):

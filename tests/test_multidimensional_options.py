@@ -38,7 +38,7 @@ from adaptive_engine.kernel import cycle as kernel
 from adaptive_engine.kernel import random_streams as randomness
 from adaptive_engine.kernel.multidimensional_cycle import mle_estimate
 from adaptive_engine.kernel.multidimensional_state import MultidimensionalState, posterior_moments
-from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.kernel.prepared import build_context, with_log_posterior
 from adaptive_engine.simulation.multidimensional_engine import run_chunk, simulate_multidimensional
 from multidimensional_reference import item_probability, map_reference
 
@@ -234,20 +234,25 @@ def _run_one(ctx, answer_of, seed=4):
     return state
 
 
-@pytest.mark.parametrize("how", ["eap", "map", "fixed_step"])
-def test_while_no_mle_exists_the_extreme_pattern_method_stands_in(how):
+@pytest.mark.parametrize("how, form", [("eap", "log"), ("eap", "scaled"), ("map", "scaled"), ("fixed_step", "scaled")])
+def test_while_no_mle_exists_the_extreme_pattern_method_stands_in(how, form):
     bank = simple_structure_bank()
     d = design(scoring=f'method = "mle"\nextreme_pattern_method = "{how}"', stopping="")
     d = attrs.evolve(d, stopping=attrs.evolve(d.stopping, min_items=1, max_items=1),
                      exposure=attrs.evolve(d.exposure, method="none"))
     ctx = build_context(d, bank)
+    ctx = with_log_posterior(ctx) if form == "log" else ctx
     state = _run_one(ctx, lambda item: 1)  # one answer, right: all highest
     tab = ctx.multidimensional
     item = int(state.items[0, 0])
-    if how == "eap":
+    if how == "eap" and form == "log":
         mean, cov = posterior_moments(state.log_post[:1], tab.points)
         np.testing.assert_array_equal(state.theta[0], mean[0])
         np.testing.assert_array_equal(state.covariance[0], cov[0])
+    elif how == "eap":  # the stored row is the density divided by its sum (decision rules 3)
+        mean, cov = posterior_moments(np.log(state.log_post[:1]), tab.points)
+        np.testing.assert_allclose(state.theta[0], mean[0], rtol=0, atol=1e-12)
+        np.testing.assert_allclose(state.covariance[0], cov[0], rtol=0, atol=1e-12)
     elif how == "map":
         # the posterior mode, scipy.optimize.minimize of the negative log posterior
         # (tests/multidimensional_reference.py writes it out)
@@ -323,8 +328,9 @@ max_items = 5
     return parse_design(text)
 
 
-def _after_one_answer(stopping, answer=1):
+def _after_one_answer(stopping, answer=1, form="scaled"):
     ctx = build_context(_small_design(stopping), SMALL)
+    ctx = with_log_posterior(ctx) if form == "log" else ctx
     state, _ = kernel.start(ctx, randomness.stream_key(np.array([3])))
     first = int(state.pending[0])
     kernel.answer(ctx, state, np.array([0]), np.array([answer]))
@@ -372,14 +378,16 @@ def _by_hand(state, first, answer=1):
     return best, now - predicted, theta, a, d
 
 
-def test_predicted_se_reduction_per_dimension_is_the_hand_computation():
+@pytest.mark.parametrize("form", ["scaled", "log"])
+def test_predicted_se_reduction_per_dimension_is_the_hand_computation(form):
     from adaptive_engine.kernel import multidimensional_stopping as precision
 
-    ctx, state, first = _after_one_answer("se_reduction = 0.001")
+    ctx, state, first = _after_one_answer("se_reduction = 0.001", form=form)
     best, reduction, *_ = _by_hand(state, first)
     assert precision.best_remaining_items(ctx, state, np.array([0]))[0] == best
     table = ctx.multidimensional.log_table[[best]]
-    got = precision.predicted_se_reduction_per_dimension(state.log_post[:1], ctx.multidimensional.points, table)
+    got = precision.predicted_se_reduction_per_dimension(state.log_post[:1], ctx.multidimensional.points, table,
+                                                         scaled=form == "scaled")
     np.testing.assert_allclose(got[0], reduction, rtol=1e-10)
     assert precision.largest_se_reduction(ctx, state, np.array([0]))[0] == pytest.approx(reduction.max(), rel=1e-10)
 

@@ -37,6 +37,28 @@ Versions:
    SD agree with version 2's to about 1e-12 (rounding in the last bits), so an item or stop
    changes only where two candidates or a stopping threshold are that close.  Versions 1
    and 2 stay installed with log-form contexts (:func:`.prepared.with_log_posterior`).
+
+   The multidimensional kernel under version 3 (:mod:`.multidimensional_state`):
+
+   * the same scaled posterior on its product grid, normalised by multiplying by
+     ``1 / total``, without the log form's e^-300 floor; the rescue of a row takes the log
+     of the row before the answer plus the log-table row;
+   * the moments are read off the answer's product with its sum before it is normalised;
+     on a square 2-D grid from three per-row sums (another summation order than version 2);
+     blocks of 64K grid values (version 2: 128K);
+   * an EAP design's final EAP is its interim one once a row has answered, for every
+     caller (version 2: in simulations only);
+   * a MAP design keeps no grid posterior unless something reads it (KL selection, the
+     SE-reduction stop); its final MAP starts from the interim MAP, not the posterior mean;
+     its Newton iterations stop without taking a last step below the tolerance, and the
+     covariance is the inverse information at that point;
+   * a batch of one row sums its M2PL information and score in answer order, as a larger
+     batch does (version 2 let numpy sum a single row pairwise once it had 8 or more
+     answers, so a live MAP session could differ in the last bits from the same examinee
+     simulated in a batch);
+   * D-optimality's single-precision screening uses ``cosh`` (the double-precision values
+     still decide the pick);
+   * KL and SE-reduction weights are the row divided by its sum.
 """
 
 from __future__ import annotations

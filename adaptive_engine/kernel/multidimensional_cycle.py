@@ -30,6 +30,7 @@ from .multidimensional_state import (
     given_items,
     inverse,
     matrix_vector,
+    scaled_add_and_moments,
     test_information_and_score,
 )
 from .selection import Picked, select
@@ -48,8 +49,11 @@ def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
     from .cycle import first_pick
 
     tab = ctx.multidimensional
-    state = MultidimensionalState.empty_vector(ctx, keys)
-    state.log_post[:] = tab.log_prior[None, :]
+    state = MultidimensionalState.empty_vector(ctx, keys, grid=keeps_grid_posterior(ctx))
+    if ctx.posterior_form == "log":
+        state.log_post[:] = tab.log_prior[None, :]
+    elif keeps_grid_posterior(ctx):
+        state.log_post[:] = tab.prior_weights[None, :]
     state.theta[:] = ctx.design.opening.theta
     state.se[:] = state.prior_sd
     return first_pick(ctx, state, count_eligible=count_eligible)
@@ -110,6 +114,24 @@ def _known_facts(ctx, state, rows):
 # estimates
 
 
+def keeps_grid_posterior(ctx) -> bool:
+    """Whether the rows carry the posterior on the grid.
+
+    Under the log form (decision rules 1 and 2) always.  Under the scaled form (version 3)
+    only where something reads it: an EAP or MLE estimate (interim or final; the MLE
+    starts from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
+    stop.  A design scored by MAP throughout that uses none of these never reads the grid:
+    its final MAP starts from the interim MAP (:func:`final_estimates`), and its rows carry
+    no grid at all.
+    """
+    if ctx.posterior_form == "log":
+        return True
+    design = ctx.design
+    return (design.scoring.method is not ScoringMethod.MAP or design.final_method is not ScoringMethod.MAP
+            or design.selection.criterion is SelectionCriterion.KULLBACK_LEIBLER
+            or design.stopping.se_reduction is not None)
+
+
 def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """MAP estimates (R, K), their covariance (R, K, K) and convergence (R,) by Fisher scoring.
 
@@ -117,7 +139,15 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     ``(P + I(theta))^-1 (gradient)`` with ``I`` the test's Fisher information matrix, which
     is positive definite for every model here (the observed Hessian of the M3PL need not
     be).  The covariance is ``(P + I(theta_hat))^-1``.  Estimates are kept on the grid's box.
+
+    Under the log form (decision rules 1 and 2) a row stops once a step moves it by less
+    than :data:`MAP_TOLERANCE`, that step taken, and the information is computed once more
+    at the point reached.  Under the scaled form (version 3, :func:`_map_estimate_scaled`)
+    the step below the tolerance is not taken: the estimate is the point whose information
+    has just been computed, and that information gives the covariance.
     """
+    if ctx.posterior_form != "log":
+        return _map_estimate_scaled(ctx, state, rows, start_theta)
     tab = ctx.multidimensional
     sc = ctx.design.scoring
     items, resp = state.scored_items(rows)
@@ -147,6 +177,76 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
             break
     info, _ = test_information_and_score(tab, items, resp, theta, precision, given=given)
     return theta, inverse(info), converged
+
+
+#: A working set of the MAP iterations is gathered anew once the rows still moving are
+#: fewer than this share of it (until then the rows that have stopped are computed along,
+#: their results unused: every row's values are its own).
+MAP_REGATHER_SHARE = 0.75
+
+
+def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`map_estimate` under decision rules version 3.
+
+    Each iteration computes the information ``P + I(theta)`` and the gradient at theta; a
+    row whose step ``(P + I)^-1 gradient`` is below :data:`MAP_TOLERANCE` on every
+    dimension (after keeping the estimate on the grid's box) has converged *at theta*: the
+    step is not taken (it moves the estimate by less than the tolerance), and
+    ``(P + I(theta))^-1`` is its covariance, with no further computation of the
+    information.  A row that has not converged after :data:`MAP_ITERATIONS` steps gets its
+    information at the point reached, as before.  The items of a working set of rows are
+    gathered once and again only when the rows still moving have become fewer than
+    :data:`MAP_REGATHER_SHARE` of it.  A batch of one sums its answers in order, as every
+    row of a larger batch does (``one_row_in_order``), so that a live session (one row)
+    gives the bits of the same examinee in a simulated batch.
+    """
+    tab = ctx.multidimensional
+    sc = ctx.design.scoring
+    items, resp = state.scored_items(rows)
+    precision = inverse(state.prior_covariance[rows])
+    mu = state.prior_mean[rows]
+    theta = np.array(start_theta, dtype=float)
+    r_n, k = theta.shape
+    cov = np.empty((r_n, k, k))
+    if r_n == 0:
+        return theta, cov, np.zeros(0, dtype=bool)
+    converged = np.zeros(r_n, dtype=bool)
+    logistic = tab.logistic_only
+    all_given = given_items(tab, items, resp) if logistic else None
+    work = np.arange(r_n)  # the rows of the working set
+    moving = np.ones(r_n, dtype=bool)  # which of them are still moving
+    given = all_given.reached() if logistic else None
+    for _ in range(MAP_ITERATIONS):
+        if logistic:
+            info, grad = test_information_and_score(tab, None, None, theta[work], precision[work], score=True,
+                                                    given=given, one_row_in_order=True)
+        else:
+            info, grad = test_information_and_score(tab, items[work], resp[work], theta[work], precision[work],
+                                                    score=True)
+        grad = grad - matrix_vector(precision[work], theta[work] - mu[work])
+        info_inv = inverse(info)
+        new = np.clip(theta[work] + matrix_vector(info_inv, grad), sc.grid_min, sc.grid_max)
+        done = moving & (np.max(np.abs(new - theta[work]), axis=1) < MAP_TOLERANCE)
+        at = work[done]
+        cov[at], converged[at] = info_inv[done], True
+        go = moving & ~done
+        theta[work[go]] = new[go]
+        moving = go
+        n_moving = int(np.count_nonzero(moving))
+        if n_moving == 0:
+            break
+        if n_moving < MAP_REGATHER_SHARE * work.size:
+            keep = np.flatnonzero(moving)
+            work, moving = work[keep], np.ones(keep.size, dtype=bool)
+            if logistic:
+                given = all_given.rows(work).reached()
+    left = np.flatnonzero(~converged)
+    if left.size:
+        sub = all_given.rows(left) if logistic else None
+        info, _ = test_information_and_score(tab, items[left], resp[left], theta[left], precision[left], given=sub,
+                                             one_row_in_order=True)
+        cov[left] = inverse(info)
+    return theta, cov, converged
 
 
 #: Newton iterations of the MLE, the step that counts as converged, and the halvings of a
@@ -369,14 +469,21 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
     ``scored_item`` (R,) is the item each row's answer scores (-1: none, or a pretest
     item), ``responses`` (R,) the answers; without them only the estimate is made.  The
     EAP reads each block of rows while it is being added to
-    (:func:`.multidimensional_state.add_and_moments`).  The MAP is sought from the previous
-    interim estimate (one answer away from the new mode); the final MAP starts from the
-    posterior mean (:func:`final_estimates`).
+    (:func:`.multidimensional_state.add_and_moments` under the log form,
+    :func:`.multidimensional_state.scaled_add_and_moments` under the scaled form).  The MAP
+    is sought from the previous interim estimate (one answer away from the new mode); the
+    final MAP starts from the posterior mean (from the last interim MAP where the rows
+    carry no grid, :func:`keeps_grid_posterior`; :func:`final_estimates`).
     """
     tab = ctx.multidimensional
-    table = None if scored_item is None else ctx.log_table_by_category
     eap = ctx.design.scoring.method is not ScoringMethod.MAP
-    got = add_and_moments(state.log_post, rows, table, scored_item, responses, tab.points, moments=eap)
+    if ctx.posterior_form == "log":
+        table = None if scored_item is None else ctx.log_table_by_category
+        got = add_and_moments(state.log_post, rows, table, scored_item, responses, tab.points, moments=eap)
+    elif keeps_grid_posterior(ctx):
+        probabilities = None if scored_item is None else tab.probability_by_category()
+        got = scaled_add_and_moments(state.log_post, rows, probabilities, ctx.log_table_by_category, scored_item,
+                                     responses, tab.points, tab.axis, moments=eap)
     if eap:
         mean, cov = got
     else:
@@ -458,17 +565,28 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
     :func:`answer` (a simulated chunk), so that for an EAP design (interim and final) the
     interim estimate and covariance of a row that took an answer are the posterior moments
     of its present posterior, computed after its last answer by the same function on the
-    same values; they are taken as they are instead of being computed again.
+    same values; they are taken as they are instead of being computed again.  Under the
+    scaled form (decision rules version 3) this holds for every caller: a row's state
+    changes only through :func:`answer` (a live session resumes by replaying its answers),
+    and its interim EAP is read from the product of its last answer, before that product
+    was divided by its sum and stored (:func:`.multidimensional_state.scaled_add_and_moments`):
+    the final EAP of a row that took an answer is its interim EAP.
     """
     rows = np.asarray(rows, dtype=np.int64)
     status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
     design = ctx.design
-    if (interim_current and design.scoring.method is ScoringMethod.EAP and design.final_method is ScoringMethod.EAP
-            and bool(np.all(state.n_given[rows] > 0))):
+    if ((interim_current or ctx.posterior_form != "log") and design.scoring.method is ScoringMethod.EAP
+            and design.final_method is ScoringMethod.EAP and bool(np.all(state.n_given[rows] > 0))):
         cov = state.covariance[rows]
         return MultidimensionalFinalEstimates(theta=state.theta[rows], se=_se(cov), covariance=cov, status=status,
                                               lz=person_fit_lz(ctx, state, rows, state.theta[rows]))
-    mean, cov = add_and_moments(state.log_post, rows, points=ctx.multidimensional.points)
+    tab = ctx.multidimensional
+    if ctx.posterior_form == "log":
+        mean, cov = add_and_moments(state.log_post, rows, points=tab.points)
+    elif keeps_grid_posterior(ctx):
+        mean, cov = scaled_add_and_moments(state.log_post, rows, points=tab.points, axis=tab.axis)
+    else:  # MAP throughout (version 3): from the interim MAP, the mode of the same posterior
+        mean = state.theta[rows]
     if ctx.design.final_method is ScoringMethod.MAP:
         mean, cov, ok = map_estimate(ctx, state, rows, mean)
         status = np.where(state.n_scored[rows] == 0, "no_responses",

@@ -4,8 +4,11 @@ A design runs here when its bank has K > 1 dimensions or when it asks for it (ve
 keys, a multidimensional criterion; see
 :func:`adaptive_engine.design.bank_fit.runs_multidimensional`); K = 1 is a case of the same
 code.  The posterior of each examinee lives on a product grid of ``points ** K`` points
-(:class:`MultidimensionalTables`), updated by adding log-probability rows exactly as the
-one-dimensional kernel does on its line grid, so the bookkeeping of
+(:class:`MultidimensionalTables`), updated as the one-dimensional kernel does on its line
+grid: under decision rules 1 and 2 (``ctx.posterior_form == "log"``) a row is a log density
+to which log-probability rows are added (:func:`add_and_moments`); under version 3
+(``"scaled"``) a row is the density divided by its sum, multiplied by probability rows
+(:func:`scaled_add_and_moments`).  The bookkeeping of
 :mod:`adaptive_engine.kernel.cycle` (answers, blueprint counts, enemies, item sets, pretest
 seeding) and the selection machinery of :mod:`adaptive_engine.kernel.selection` (exposure
 control, blueprint, eligibility) serve both unchanged.
@@ -67,6 +70,9 @@ class MultidimensionalTables:
         The items in single precision, for the D-optimal pick by screening
         (:func:`adaptive_engine.kernel.multidimensional_selection.best_items`); None where
         that pick does not apply (another criterion, not an M2PL bank).
+    prior_weights : float (G,)
+        The prior as a scaled density, ``exp(log_prior - max) / sum``: the start of every
+        row of the scaled posterior (:func:`scaled_add_and_moments`).
     """
 
     k: int
@@ -86,6 +92,24 @@ class MultidimensionalTables:
     logistic_only: bool = False
     slope_products: dict = attrs.field(factory=dict)
     screening: "SinglePrecisionItems | None" = None
+    prior_weights: np.ndarray | None = None
+    _made: dict = attrs.field(factory=dict, alias="made")
+
+    def probability_by_category(self) -> np.ndarray:
+        """``exp`` of the log table in its (n, C, G) layout, read-only: what an answer
+        multiplies a row of the scaled posterior by.  Made on first use (a context holding
+        the log posterior never needs it) and kept with the tables."""
+        table = self._made.get("probability_by_category")
+        if table is None:
+            table = np.exp(self.log_table.transpose(0, 2, 1))
+            table.setflags(write=False)
+            self._made["probability_by_category"] = table
+        return table
+
+    @property
+    def axis_points(self) -> int:
+        """Grid points per dimension (P, with G = P ** K)."""
+        return self.axis.shape[0]
 
 
 def multidimensional_parameters(bank: ItemBank) -> md.MultidimensionalParameters:
@@ -129,6 +153,8 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     mean, cov = prior_of(design, k)
     precision = inverse(cov)
     log_prior = -0.5 * quadratic_form(points - mean, precision)
+    prior_weights = np.exp(log_prior - np.max(log_prior))
+    prior_weights = prior_weights / np.sum(prior_weights)
     weights = design.reporting.composite_weights
     st = design.stopping
     if st.se_per_dimension is not None:
@@ -151,6 +177,7 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
         slope_products=products,
         screening=SinglePrecisionItems.of(params, products) if (
             design.selection.criterion is SelectionCriterion.D_OPTIMALITY and logistic) else None,
+        prior_weights=prior_weights,
     )
 
 
@@ -187,18 +214,24 @@ class SinglePrecisionItems:
         The largest ``|a_k|`` of the bank on each dimension.
     largest_intercept : float
         The largest ``|d|`` of the bank.
+    scaled_linear : float32 (K + 1, n)
+        ``D`` times :attr:`linear` (each rounded once from double): ``D z = [theta, 1] .
+        scaled_linear`` (the screening of decision rules version 3).
     """
 
     linear: np.ndarray
     products: np.ndarray
     largest_slope: np.ndarray
     largest_intercept: float
+    scaled_linear: np.ndarray
 
     @classmethod
     def of(cls, params: md.MultidimensionalParameters, products: dict) -> "SinglePrecisionItems":
         slopes = params.slopes
         intercepts = params.intercepts[:, 0]
-        return cls(linear=np.ascontiguousarray(np.vstack([slopes.T, intercepts[None, :]]), dtype=np.float32),
+        linear = np.vstack([slopes.T, intercepts[None, :]])
+        return cls(linear=np.ascontiguousarray(linear, dtype=np.float32),
+                   scaled_linear=np.ascontiguousarray(params.scaling * linear, dtype=np.float32),
                    products=np.stack([v for v in products.values()]).astype(np.float32),
                    largest_slope=np.max(np.abs(slopes), axis=0),
                    largest_intercept=float(np.max(np.abs(intercepts))))
@@ -271,7 +304,7 @@ def matrix_vector(m: np.ndarray, x: np.ndarray) -> np.ndarray:
 
 
 def test_information_and_score(tab: MultidimensionalTables, items, responses, theta, precision, *,
-                               score: bool = False, given: "GivenItems | None" = None):
+                               score: bool = False, given: "GivenItems | None" = None, one_row_in_order: bool = False):
     """``P + sum_i J_i(theta) a_i a_i'`` (R, K, K) and, with ``score``, the gradient of the
     log-likelihood ``sum_i r_i(theta) a_i`` (R, K) over the items given.
 
@@ -280,13 +313,17 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
     is the same whatever other rows (and how many columns) the batch holds: the columns a
     row has not reached add exact zeros.  ``given``: :func:`given_items` of the same items
     and responses (an M2PL bank only), when the caller has gathered them already.
+    ``one_row_in_order`` (decision rules version 3): a batch of one row adds its columns in
+    order too (:func:`_sum_in_order`); without it (versions 1 and 2) a single row of an
+    M2PL bank is summed pairwise by numpy once it has eight answers or more.
     """
     theta = np.asarray(theta, dtype=float)
     k = tab.k
     if tab.logistic_only:
         if given is None:
             given = given_items(tab, items, responses if score else None)
-        return _logistic_information_and_score(tab, given.reached(), theta, precision, score=score)
+        return _logistic_information_and_score(tab, given.reached(), theta, precision, score=score,
+                                               one_row_in_order=one_row_in_order)
     width = items.shape[1]
     reached = np.flatnonzero((items >= 0).any(axis=0))
     reached = reached[reached < width]
@@ -363,7 +400,7 @@ def given_items(tab: MultidimensionalTables, items, responses) -> GivenItems:
                       responses=None if responses is None else np.ascontiguousarray(np.asarray(responses).T))
 
 
-def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *, score):
+def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *, score, one_row_in_order=False):
     """:func:`test_information_and_score` for a bank of M2PL items, every column at once.
 
     ``P = expit(D (a . theta + d))``, ``J = D^2 P (1 - P)``, score ``D (x - P)``, elementwise
@@ -384,29 +421,33 @@ def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *,
     info = np.array(precision, dtype=float, copy=True)
     for p in range(k):
         for q in range(p, k):
-            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q])
+            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q], one_row_in_order)
             if q != p:
                 info[:, q, p] = info[:, p, q]
     if not score:
         return info, None
     r = np.where(given.given, scaling * (given.responses - prob), 0.0)
-    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d]) for d in range(k)], axis=1)
+    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d], one_row_in_order) for d in range(k)], axis=1)
     return info, grad
 
 
-def _sum_in_order(start: np.ndarray, terms: np.ndarray) -> np.ndarray:
+def _sum_in_order(start: np.ndarray, terms: np.ndarray, one_row_in_order: bool = False) -> np.ndarray:
     """``(((start + t_0) + t_1) + ..)`` per column of ``terms`` (L, R): one row after another.
 
     numpy reduces over the first axis of a C-ordered array by adding each row to the
     running result in turn (no pairwise or blocked summation, which it applies along a
     contiguous axis only), as ``np.add.accumulate`` along the columns does
-    (tests/test_multidimensional_fast_paths.py compares the two).
+    (tests/test_multidimensional_fast_paths.py compares the two).  A single column
+    (R = 1) is such a contiguous axis: with ``one_row_in_order`` it is summed by
+    ``np.add.accumulate``, in order, as in a batch of many rows.
     """
     if terms.shape[0] == 0:
         return start.copy()
     stacked = np.empty((terms.shape[0] + 1,) + start.shape)
     stacked[0] = start
     stacked[1:] = terms
+    if one_row_in_order and stacked.shape[1] == 1:
+        return np.add.accumulate(stacked, axis=0)[-1]
     return np.add.reduce(stacked, axis=0)
 
 
@@ -500,6 +541,187 @@ def add_and_moments(log_post, rows, table=None, items=None, categories=None, poi
     return (mean, cov) if moments else None
 
 
+#: A row of the scaled posterior whose sum after an answer is below this (or not finite)
+#: is made again from logarithms (:func:`scaled_add_and_moments`), so that no row ever
+#: underflows to zeros.
+RESCUE_BELOW = 1e-250
+
+
+def scaled_moments(post: np.ndarray, points: np.ndarray, axis: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Posterior mean (R, K), covariance (R, K, K) and the sums (R,) of rows ``post`` (R, G)
+    of a density on the product grid ``points`` (G, K) up to a factor per row.
+
+    On a grid of two dimensions (G = P * P, the first dimension varying slowest) each row
+    is read three times, as a (P, P) array (:func:`_marginal_sums`): its sums along the
+    second dimension ``u_i = sum_j w_ij``, against the second axis ``t_i = sum_j w_ij y_j``,
+    and along the first dimension ``v_j = sum_i w_ij``; then every moment is a sum of P
+    terms (:func:`_moments_of_marginals`).  Other K: the sum of the whole row and its sums
+    against each coordinate and product of coordinates.  Every sum runs within one row
+    (``einsum`` along a row's own axes), so a row gives the same bits in a batch of any
+    size.  The covariance is ``E[x_i x_j] - E[x_i] E[x_j]``, as :func:`posterior_moments`
+    computes it.
+    """
+    if _on_square_grid(post, points, axis):
+        u, t, v = _marginal_sums(post, axis)
+        total = np.einsum("ri->r", u)
+        mean, cov = _moments_of_marginals(u, t, v, total, axis)
+        return mean, cov, total
+    r_n, k = post.shape[0], points.shape[1]
+    mean = np.empty((r_n, k))
+    cov = np.empty((r_n, k, k))
+    total = np.einsum("rg->r", post)
+    for j in range(k):
+        mean[:, j] = np.einsum("rg,g->r", post, points[:, j]) / total
+    for i in range(k):
+        for j in range(i, k):
+            second = np.einsum("rg,g->r", post, points[:, i] * points[:, j]) / total
+            cov[:, i, j] = cov[:, j, i] = second - mean[:, i] * mean[:, j]
+    return mean, cov, total
+
+
+def _on_square_grid(post, points, axis) -> bool:
+    return points.shape[1] == 2 and post.shape[-1] == axis.shape[0] ** 2
+
+
+def _marginal_sums(post, axis) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``u``, ``t``, ``v`` (R, P) of rows ``post`` (R, P * P) on a grid of two dimensions."""
+    p = axis.shape[0]
+    square = post.reshape(post.shape[0], p, p)
+    ones = np.ones(p)
+    return (np.einsum("rij,j->ri", square, ones), np.einsum("rij,j->ri", square, axis),
+            np.einsum("rij,i->rj", square, ones))
+
+
+def _moments_of_marginals(u, t, v, total, axis) -> tuple[np.ndarray, np.ndarray]:
+    """Mean (R, 2) and covariance (R, 2, 2) from the sums of :func:`_marginal_sums`:
+    ``E[x] = sum_i u_i x_i / total``, ``E[x^2]`` likewise with ``x_i^2``, ``E[y]`` and
+    ``E[y^2]`` from ``v``, ``E[xy] = sum_i x_i t_i / total``."""
+    r_n = u.shape[0]
+    mean = np.empty((r_n, 2))
+    cov = np.empty((r_n, 2, 2))
+    squares = axis * axis
+    mean[:, 0] = np.einsum("ri,i->r", u, axis) / total
+    mean[:, 1] = np.einsum("rj,j->r", v, axis) / total
+    cov[:, 0, 0] = np.einsum("ri,i->r", u, squares) / total - mean[:, 0] * mean[:, 0]
+    cov[:, 1, 1] = np.einsum("rj,j->r", v, squares) / total - mean[:, 1] * mean[:, 1]
+    cov[:, 0, 1] = cov[:, 1, 0] = np.einsum("ri,i->r", t, axis) / total - mean[:, 0] * mean[:, 1]
+    return mean, cov
+
+
+#: Grid values per block of :func:`scaled_add_and_moments` (512 KB of float64: the block
+#: and the product made from it stay in the processor's cache together).
+SCALED_BLOCK_VALUES = 1 << 16
+
+
+def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items=None, categories=None,
+                           points=None, axis=None, *, moments: bool = True):
+    """:func:`add_and_moments` for a posterior held as a scaled density (decision rules 3).
+
+    Each row of ``post`` is the posterior density on the grid divided by its sum.  An
+    answer multiplies the row by the answer's probability row
+    ``probabilities[items[k], categories[k]]``; the moments of the product are read with
+    its sum ``total`` (:func:`scaled_moments`), and the product divided by ``total`` (so
+    that it sums to 1 again) is written back.  A product whose ``total`` is not finite or
+    is below :data:`RESCUE_BELOW` (the row's mass where the answer is all but impossible)
+    is made again from logarithms, for that row alone: ``log(row)`` plus the answer's row
+    of ``log_table``, ``exp(x - max)``.  Rows without a scored answer (``items[k] < 0``)
+    are read and divided by their sum as they are.  Without ``probabilities`` the rows are
+    only read (their moments), not written.  The rows go through in blocks that fit in the
+    processor's cache, as in :func:`add_and_moments`.
+
+    Parameters
+    ----------
+    post : float array (B, G), changed in place
+    rows : int array (R,)
+        Distinct rows of ``post``.
+    probabilities, log_table : float arrays (n, C, G), optional
+        Probability (and log probability) of each item's categories on the grid; nothing
+        is multiplied without them.
+    items, categories : int arrays (R,), optional
+    points : float array (G, K), axis : float array (P,)
+        The grid and the grid of one dimension.
+
+    Returns
+    -------
+    (mean (R, K), covariance (R, K, K)), or None without ``moments``
+    """
+    rows = np.asarray(rows, dtype=np.int64)
+    r_n = rows.size
+    k = 0 if points is None else points.shape[1]
+    mean = np.empty((r_n, k))
+    cov = np.empty((r_n, k, k))
+    if r_n == 0:
+        return (mean, cov) if moments else None
+    step = max(1, SCALED_BLOCK_VALUES // max(1, post.shape[-1]))
+    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    adding = probabilities is not None
+    every = adding and bool(np.all(items >= 0))
+    if adding:
+        by_answer = probabilities.reshape(-1, probabilities.shape[-1])  # row c + C * item
+        answer_row = np.where(items >= 0, items, 0) * probabilities.shape[1] + categories
+        buffer = np.empty((min(step, r_n), post.shape[-1]))
+    # on a square grid the marginal sums of every block are kept, the moments read once
+    square = moments and _on_square_grid(post, points, axis)
+    if square:
+        p = axis.shape[0]
+        u, t, v = np.empty((r_n, p)), np.empty((r_n, p)), np.empty((r_n, p))
+        total = np.empty(r_n)
+
+    def read(values, at):
+        if square:
+            u[at], t[at], v[at] = _marginal_sums(values, axis)
+            total[at] = np.einsum("ri->r", u[at])
+            return total[at]
+        if moments:
+            mean[at], cov[at], sums = scaled_moments(values, points, axis)
+            return sums
+        return np.add.reduce(values, axis=1)
+
+    for i in range(0, r_n, step):
+        j = min(i + step, r_n)
+        block = post[rows[i] : rows[i] + (j - i)] if consecutive else post[rows[i:j]]
+        if not adding:
+            read(block, slice(i, j))
+            continue
+        product = buffer[: j - i]
+        if every:
+            scored = None
+            np.take(by_answer, answer_row[i:j], axis=0, out=product, mode="clip")
+            product *= block
+        else:
+            scored = np.flatnonzero(items[i:j] >= 0)
+            product[:] = block
+            product[scored] *= by_answer[answer_row[i:j][scored]]
+        sums = read(product, slice(i, j))
+        low = ~(sums >= RESCUE_BELOW) | ~np.isfinite(sums)
+        if low.any():
+            redone = _rescue(product, block, low, scored, log_table, items[i:j], categories[i:j])
+            sums[redone] = read(product[redone], i + redone)
+        np.multiply(product, (1.0 / sums)[:, None], out=block)
+        if not consecutive:
+            post[rows[i:j]] = block
+    if square:
+        mean[:], cov[:] = _moments_of_marginals(u, t, v, total, axis)
+    return (mean, cov) if moments else None
+
+
+def _rescue(product, block, low, scored, log_table, items, categories) -> np.ndarray:
+    """Make rows ``low`` of ``product`` again from logarithms: the row before the answer
+    (``block``) as ``log``, plus the answer's log-probability row, ``exp(x - max)``; rows
+    that took no scored answer are left as they are.  Returns the rows redone."""
+    if scored is not None:
+        took = np.zeros(low.shape, dtype=bool)
+        took[scored] = True
+        low = low & took
+    redone = np.flatnonzero(low)
+    for r in redone:
+        with np.errstate(divide="ignore"):
+            x = np.log(block[r]) + log_table[items[r], categories[r]]
+        x -= np.max(x)
+        np.exp(x, out=product[r])
+    return redone
+
+
 @attrs.define(eq=False)
 class MultidimensionalState(KernelState):
     """:class:`KernelState` with an ability vector.
@@ -519,7 +741,9 @@ class MultidimensionalState(KernelState):
     prior_covariance: np.ndarray = None
 
     @classmethod
-    def empty_vector(cls, ctx, keys) -> "MultidimensionalState":
+    def empty_vector(cls, ctx, keys, *, grid: bool = True) -> "MultidimensionalState":
+        """A batch of ``keys`` before the prior is set; without ``grid`` the rows carry no
+        grid posterior (``log_post`` is (B, 0): a version-3 design that never reads it)."""
         tab = ctx.multidimensional
         base = KernelState.empty(ctx, keys, 0.0, 1.0)
         b, k = base.size, tab.k
@@ -527,7 +751,8 @@ class MultidimensionalState(KernelState):
         fields.update(
             prior_mean=np.broadcast_to(tab.prior_mean, (b, k)).copy(),
             prior_sd=np.broadcast_to(np.sqrt(np.diag(tab.prior_covariance)), (b, k)).copy(),
-            theta=np.zeros((b, k)), se=np.zeros((b, k)), log_post=np.zeros((b, tab.points.shape[0])),
+            theta=np.zeros((b, k)), se=np.zeros((b, k)),
+            log_post=np.zeros((b, tab.points.shape[0] if grid else 0)),
         )
         return cls(**fields, covariance=np.broadcast_to(tab.prior_covariance, (b, k, k)).copy(),
                    prior_covariance=np.broadcast_to(tab.prior_covariance, (b, k, k)).copy())

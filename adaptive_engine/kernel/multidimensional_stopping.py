@@ -69,20 +69,24 @@ def best_remaining_items(ctx, state, rows) -> np.ndarray:
     return np.where(np.isfinite(values[np.arange(rows.size), best]), best, -1)
 
 
-def predicted_se_reduction_per_dimension(log_post, points, next_item_log_prob) -> np.ndarray:
+def predicted_se_reduction_per_dimension(log_post, points, next_item_log_prob, *, scaled: bool = False) -> np.ndarray:
     """Present posterior SD minus the predicted posterior SD after one more item, per
     dimension (Choi, Grady & Dodd 2011 on the product grid), (R, K).
 
     Parameters
     ----------
     log_post : float (R, G)
-        Log posteriors (unnormalised) on the product grid ``points``.
+        Log posteriors (unnormalised) on the product grid ``points``; with ``scaled``
+        (decision rules version 3) the posterior densities divided by their sums.
     points : float (G, K)
     next_item_log_prob : float (R, G, C)
         Log category probabilities of each row's next item on the grid, -inf for
         categories the item lacks.
     """
-    w = posterior_weights(log_post)
+    if scaled:
+        w = log_post / np.add.reduce(log_post, axis=-1)[:, None]
+    else:
+        w = posterior_weights(log_post)
     _, sd_now = _weighted_sd(w, points)
     total = np.zeros(w.shape[0])
     weighted = np.zeros((w.shape[0], points.shape[1]))
@@ -112,7 +116,8 @@ def largest_se_reduction(ctx, state, rows) -> np.ndarray:
     reduction over the dimensions by the best remaining item (0 where none is eligible)."""
     best = best_remaining_items(ctx, state, rows)
     table = ctx.multidimensional.log_table[np.maximum(best, 0)]  # (R, G, C)
-    red = predicted_se_reduction_per_dimension(state.log_post[rows], ctx.multidimensional.points, table)
+    red = predicted_se_reduction_per_dimension(state.log_post[rows], ctx.multidimensional.points, table,
+                                               scaled=ctx.posterior_form != "log")
     return np.where(best >= 0, np.max(red, axis=1), 0.0)
 
 
