@@ -154,7 +154,7 @@ def test_kullback_leibler_item_values_add_up_to_the_tests_divergence():
     ctx = build_context(design("kullback_leibler", length=4), bank)
     state = answered(ctx, [1, 1])
     values = vector_shadow.linear_item_values(ctx, state, np.array([0]))[0]
-    weights = posterior_weights(state.log_post[:1])[0]
+    weights = posterior_weights(state.log_post[:1], form=ctx.posterior_form)[0]
     points = ctx.multidimensional.points
     theta = state.theta[0]
 
