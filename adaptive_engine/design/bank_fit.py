@@ -375,9 +375,6 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     if design.blueprint.shadow_test:
         out.append(Problem("[blueprint] shadow_test", f"shadow tests maximise one-dimensional information and "
                                                       f"are not available {many}"))
-    if op.random_theta is not None:
-        out.append(Problem("[opening] random_theta", f"a random starting point is not available {many}; the "
-                                                     "test starts at [opening] theta on every dimension"))
     if st.sprt is not None:
         out.append(Problem("[stopping.sprt]", f"the likelihood ratio test compares two points of one ability and "
                                               f"is not available {many}; stop on se or se_per_dimension, "
@@ -440,6 +437,8 @@ def describe_design(design: Design) -> list[str]:
         start = f"start at theta {op.theta:g}"
     else:
         start = f"start at a theta drawn uniformly from [{op.random_theta[0]:g}, {op.random_theta[1]:g}]"
+        if design.asks_multidimensional:
+            start += " on each dimension"
     lines = [f"opening: {start}; {_first_item_words(design)}"]
     if isinstance(sc.prior_mean, tuple) or sc.prior_covariance is not None:
         mean = (_number_text(sc.prior_mean) if isinstance(sc.prior_mean, tuple)
