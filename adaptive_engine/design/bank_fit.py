@@ -339,8 +339,8 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
         if n != k:
             out.append(Problem(where, f"{n} entries, but the bank has K = {k} ability dimension"
                                       f"{'s' if k != 1 else ''} ({names}): give one entry per dimension"))
-    sc, sel, ex, st, rp, op = (design.scoring, design.selection, design.exposure, design.stopping,
-                               design.reporting, design.opening)
+    sc, sel, ex, st, rp = (design.scoring, design.selection, design.exposure, design.stopping,
+                           design.reporting)
     many = f"with an ability of {k} dimensions ({names})"
     # no published weighted likelihood for an ability vector is followed here: WLE stays one-dimensional
     vector_methods = (ScoringMethod.EAP, ScoringMethod.MAP, ScoringMethod.MLE)
