@@ -106,9 +106,10 @@ def _earlier_entry(version: int, design_file: str) -> dict:
     return entry
 
 
-@pytest.mark.parametrize("version", sorted(EARLIER))
-@pytest.mark.parametrize("design_file", golden.design_files())
+@pytest.mark.parametrize(("version", "design_file"), [
+    (v, name) for v in sorted(EARLIER) for name in golden.design_files() if name in EARLIER[v]["designs"]])
 def test_an_earlier_rule_set_gives_its_golden_sequences(version, design_file):
+    # designs added after version ``version`` have no sequences of it (nothing to check)
     entry = _earlier_entry(version, design_file)
     computed = golden.compute_entry(design_file, entry["bank"], rules=decision_rules.RULE_SETS[version])
     problems = [f"examinee with true theta {want['true_theta']}: {d}"

@@ -20,7 +20,8 @@ _DB = click.option("--db", "db_path", required=True, metavar="STORE",
 
 #: The library names a bad value by its parameter; the command line by its flag or argument.
 SESSION_FLAGS = {"examinee": "--examinee", "seed": "--seed", "prior_mean": "--prior-mean",
-                 "prior_sd": "--prior-sd", "session_id": "SESSION_ID", "item_id": "ITEM_ID",
+                 "prior_sd": "--prior-sd", "prior_covariance": "--prior-covariance",
+                 "session_id": "SESSION_ID", "item_id": "ITEM_ID",
                  "status": "--status", "release": "--release"}
 
 #: A negative RESPONSE (-1) is a value to refuse for its range, not an unknown option.
@@ -48,6 +49,25 @@ class AsciiFloat(click.ParamType):
 ASCII_FLOAT = AsciiFloat()
 
 
+class AsciiNumbers(click.ParamType):
+    """One number, or numbers separated by ',' (a vector), or rows of them separated by ';'
+    (a matrix), in ASCII: a float, a list, or a list of lists."""
+
+    name = "NUMBERS"
+
+    def convert(self, value, param, ctx):
+        if isinstance(value, (float, list)):
+            return value
+        text = str(value).strip()
+        rows = [[ASCII_FLOAT.convert(x, param, ctx) for x in row.split(",")] for row in text.split(";")]
+        if ";" in text:
+            return rows
+        return rows[0][0] if len(rows[0]) == 1 else rows[0]
+
+
+ASCII_NUMBERS = AsciiNumbers()
+
+
 @main.group()
 def session():
     """Run live adaptive test sessions stored in a session store (SQLite or PostgreSQL)."""
@@ -65,16 +85,21 @@ def session():
 @click.option("--examinee", default=None, help="The examinee's id in your app (stored, not interpreted).")
 @click.option("--seed", type=click.IntRange(0, (1 << 63) - 1), default=None,
               help="Seed of the test's random decisions (default: a fresh one, stored).")
-@click.option("--prior-mean", type=ASCII_FLOAT, default=None,
-              help="Examinee-specific prior mean of theta (on the design's ability grid).")
+@click.option("--prior-mean", type=ASCII_NUMBERS, default=None,
+              help="Examinee-specific prior mean of theta (on the design's ability grid); for an ability "
+                   "vector one number per dimension, separated by ',' (\"0.5,-0.2\").")
 @click.option("--prior-sd", type=ASCII_FLOAT, default=None,
               help="Examinee-specific prior SD of theta (one grid step .. the grid's width).")
+@click.option("--prior-covariance", type=ASCII_NUMBERS, default=None, metavar="MATRIX",
+              help="For an ability vector: the examinee-specific prior covariance, rows separated by ';' and "
+                   "entries by ',' (\"1,0.6;0.6,1\"); default the design's.")
 @click.option("--ids", "ids_only", is_flag=True, default=False,
               help="Print only the session id and the first item's id, separated by a space "
                    "(for shell scripts: read SID ITEM <<< \"$(adaptive-engine session start ... --ids)\").")
 @json_option
 @report_errors(flags=SESSION_FLAGS)
-def start(db_path, release, design_file, bank_file, examinee, seed, prior_mean, prior_sd, ids_only, as_json):
+def start(db_path, release, design_file, bank_file, examinee, seed, prior_mean, prior_sd, prior_covariance, ids_only,
+          as_json):
     """Start a session of a release, or of a design on a bank; print its id and first item.
 
     With --design and --bank the store is created if missing; with --release it must exist.
@@ -93,7 +118,8 @@ def start(db_path, release, design_file, bank_file, examinee, seed, prior_mean, 
 
         with open_store(db_path, create=False) as store:
             reply = start_release_session(store, release, examinee=examinee, seed=seed,
-                                          prior_mean=prior_mean, prior_sd=prior_sd)
+                                          prior_mean=prior_mean, prior_sd=prior_sd,
+                                          prior_covariance=prior_covariance)
         _print_start(reply, as_json, ids_only)
         return
     missing = [flag for flag, value in (("--design", design_file), ("--bank", bank_file)) if value is None]
@@ -109,7 +135,8 @@ def start(db_path, release, design_file, bank_file, examinee, seed, prior_mean, 
     # that did not exist a moment ago
     # the store's prepared tables are used (and left) only when the store exists already
     prepared = prepare_start(design, bank, examinee=examinee, seed=seed, prior_mean=prior_mean,
-                             prior_sd=prior_sd, table_folder=existing_table_folder(db_path))
+                             prior_sd=prior_sd, prior_covariance=prior_covariance,
+                             table_folder=existing_table_folder(db_path))
     with open_store(db_path) as store:
         reply = commit_start(store, prepared)
     _print_start(reply, as_json, ids_only)

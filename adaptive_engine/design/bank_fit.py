@@ -339,8 +339,8 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
         if n != k:
             out.append(Problem(where, f"{n} entries, but the bank has K = {k} ability dimension"
                                       f"{'s' if k != 1 else ''} ({names}): give one entry per dimension"))
-    sc, sel, ex, st, rp, op = (design.scoring, design.selection, design.exposure, design.stopping,
-                               design.reporting, design.opening)
+    sc, sel, ex, st, rp = (design.scoring, design.selection, design.exposure, design.stopping,
+                           design.reporting)
     many = f"with an ability of {k} dimensions ({names})"
     # no published weighted likelihood for an ability vector is followed here: WLE stays one-dimensional
     vector_methods = (ScoringMethod.EAP, ScoringMethod.MAP, ScoringMethod.MLE)
@@ -379,9 +379,6 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
                                                     "criterion; random gives it nothing to maximise: use "
                                                     "d_optimality, a_optimality, kullback_leibler or "
                                                     "max_composite_information with [blueprint] shadow_test"))
-    if op.random_theta is not None:
-        out.append(Problem("[opening] random_theta", f"a random starting point is not available {many}; the "
-                                                     "test starts at [opening] theta on every dimension"))
     if st.sprt is not None:
         out.append(Problem("[stopping.sprt]", f"the likelihood ratio test compares two points of one ability and "
                                               f"is not available {many}; stop on se or se_per_dimension, "
@@ -444,6 +441,8 @@ def describe_design(design: Design) -> list[str]:
         start = f"start at theta {op.theta:g}"
     else:
         start = f"start at a theta drawn uniformly from [{op.random_theta[0]:g}, {op.random_theta[1]:g}]"
+        if design.asks_multidimensional:
+            start += " on each dimension"
     lines = [f"opening: {start}; {_first_item_words(design)}"]
     if isinstance(sc.prior_mean, tuple) or sc.prior_covariance is not None:
         mean = (_number_text(sc.prior_mean) if isinstance(sc.prior_mean, tuple)

@@ -209,7 +209,8 @@ class Opening(Checked):
     """How a test starts.
 
     ``theta`` is the fixed starting ability; when ``random_theta`` is set (lo, hi) the
-    starting ability is drawn uniformly from it instead.  The first item is drawn at random
+    starting ability is drawn uniformly from it instead (for an ability vector, each
+    dimension's on its own).  The first item is drawn at random
     among the ``first_item_candidates`` most informative items at the starting ability
     (only the first item: later items follow the exposure method).
     """
@@ -238,7 +239,8 @@ class Scoring(Checked):
     ``prior_covariance`` a K x K symmetric positive definite matrix (default:
     ``prior_sd ** 2`` times the identity, N(0, I) with the defaults).  Its grid is the
     product of ``grid_points_per_dimension`` points on ``[grid_min, grid_max]`` per
-    dimension (default: ``grid_points`` for K = 1, 41 for K = 2, 17 for K = 3).
+    dimension (default: ``grid_points`` for K = 1, 41 for K = 2, 17 for K = 3).  A session
+    may bring its own mean vector and covariance matrix.
     """
 
     method: ScoringMethod = key(ScoringMethod.EAP, "option", option=ScoringMethod)

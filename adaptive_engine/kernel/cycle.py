@@ -44,7 +44,8 @@ class Step(NamedTuple):
     picked: Picked | None
 
 
-def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligible=False) -> Step:
+def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, prior_covariance=None,
+          count_eligible=False) -> Step:
     """Begin tests for a batch; returns the state with each examinee's first item pending.
 
     Parameters
@@ -52,13 +53,20 @@ def start(ctx: TestContext, keys, *, prior_mean=None, prior_sd=None, count_eligi
     keys : uint64 array, shape (B,)
         Random stream keys (``randomness.stream_key(seed)``).
     prior_mean, prior_sd : float or array (B,), optional
-        Examinee-specific prior (returning examinees); default: the design's.
+        Examinee-specific prior (returning examinees); default: the design's.  For an
+        ability vector of K dimensions ``prior_mean`` is an array (K,) or (B, K) and
+        ``prior_covariance`` (K, K) or (B, K, K) replaces ``prior_sd``
+        (:func:`.multidimensional_cycle.start`).
+    prior_covariance : array, optional
+        Only for an ability vector.
     """
     if ctx.multidimensional is not None:
         from . import multidimensional_cycle
 
         return multidimensional_cycle.start(ctx, keys, prior_mean=prior_mean, prior_sd=prior_sd,
-                                            count_eligible=count_eligible)
+                                            prior_covariance=prior_covariance, count_eligible=count_eligible)
+    if prior_covariance is not None:
+        raise ValueError("a prior covariance is for an ability vector; a one-dimensional design takes prior_sd")
     sc = ctx.design.scoring
     mean = sc.prior_mean if prior_mean is None else prior_mean
     sd = sc.prior_sd if prior_sd is None else prior_sd
@@ -92,9 +100,10 @@ def draws_at_random(ctx: TestContext) -> bool:
     alone: two examinees who gave the same answers to the same items are then in the same
     state, row for row, apart from their stream keys -- which the simulation uses to
     compute a shared history once.  The same holds for an ability vector: the
-    multidimensional kernel draws only through the selection machinery shared with this
-    one (its start is always ``[opening] theta``; a random starting point is refused for
-    it), and its estimates, criteria and stopping rules read the answers alone.
+    multidimensional kernel draws through the selection machinery shared with this one
+    and, with ``[opening] random_theta``, for its starting point
+    (:func:`.multidimensional_cycle.random_start`); its estimates, criteria and stopping
+    rules read the answers alone.
     """
     design = ctx.design
     return bool(
@@ -472,17 +481,21 @@ def finish(ctx: TestContext, state: KernelState, rows, estimates: FinalEstimates
 
 
 def rebuild(ctx: TestContext, key: int, prior_mean: float, prior_sd: float, items, responses,
-            *, elapsed=None) -> Step:
+            *, elapsed=None, prior_covariance=None) -> Step:
     """Restore one examinee's state by replaying their answers through the kernel.
 
     Because every decision is a pure function of the design, the bank, the stream key and
     the answers, replaying gives exactly the state the examinee had (including the pending
     item) -- this is how a session resumes after a crash.
 
+    ``prior_mean`` (K,) and ``prior_covariance`` (K, K): an ability vector's own prior
+    (:func:`start`).
+
     Returns the state and the last pick (the first item's pick when no answer was given).
     """
     # start and answer run the multidimensional kernel where the context says so
-    state, picked = start(ctx, np.array([key], dtype=np.uint64), prior_mean=prior_mean, prior_sd=prior_sd)
+    state, picked = start(ctx, np.array([key], dtype=np.uint64), prior_mean=prior_mean, prior_sd=prior_sd,
+                          prior_covariance=prior_covariance)
     rows = np.zeros(1, dtype=np.int64)
     for k, (item, resp) in enumerate(zip(items, responses)):
         if state.pending[0] != item:

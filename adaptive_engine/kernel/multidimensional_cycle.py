@@ -30,6 +30,7 @@ from .multidimensional_state import (
     given_items,
     inverse,
     matrix_vector,
+    quadratic_form,
     scaled_add_and_moments,
     test_information_and_score,
 )
@@ -40,23 +41,94 @@ MAP_ITERATIONS = 50
 MAP_TOLERANCE = 1e-9
 
 
-def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
+def start(ctx, keys, *, prior_mean=None, prior_sd=None, prior_covariance=None, count_eligible=False):
     """Begin tests for a batch (see :func:`adaptive_engine.kernel.cycle.start`).
 
-    The prior is the design's multivariate normal; ``prior_mean`` and ``prior_sd`` are
-    accepted for the signature's sake and must be None (or the design's values).
+    The prior is the design's multivariate normal unless the examinees bring their own
+    (:func:`examinee_prior`): ``prior_mean`` an array (K,) or (B, K), ``prior_covariance``
+    (K, K) or (B, K, K), either alone (the design's value for the other).  A scalar
+    ``prior_mean`` and ``prior_sd`` (the one-dimensional signature; a live session of an
+    ability vector stores its first dimension's values there) are ignored.  The starting
+    point is ``[opening] theta`` on every dimension, or with ``[opening] random_theta``
+    a point drawn per examinee (:func:`random_start`).
     """
     from .cycle import first_pick
 
     tab = ctx.multidimensional
     state = MultidimensionalState.empty_vector(ctx, keys, grid=keeps_grid_posterior(ctx))
+    own = examinee_prior(ctx, state, prior_mean=prior_mean, prior_covariance=prior_covariance)
     if ctx.posterior_form == "log":
-        state.log_post[:] = tab.log_prior[None, :]
+        state.log_post[:] = tab.log_prior[None, :] if own is None else own
     elif keeps_grid_posterior(ctx):
-        state.log_post[:] = tab.prior_weights[None, :]
-    state.theta[:] = ctx.design.opening.theta
+        state.log_post[:] = tab.prior_weights[None, :] if own is None else scaled_prior(own)
+    opening = ctx.design.opening
+    if opening.random_theta is not None:
+        state.theta[:] = random_start(state.keys, opening.random_theta, ctx.multidimensional.k)
+    else:
+        state.theta[:] = opening.theta
     state.se[:] = state.prior_sd
     return first_pick(ctx, state, count_eligible=count_eligible)
+
+
+def examinee_prior(ctx, state, *, prior_mean=None, prior_covariance=None) -> np.ndarray | None:
+    """Put examinee-specific priors into a new ``state``; their log prior (B, G) or (1, G).
+
+    Without ``prior_covariance`` and with a ``prior_mean`` that is None or a scalar (see
+    :func:`start`) the state keeps the design's prior and None is returned (the caller
+    starts from the design's ``tab.log_prior`` or ``tab.prior_weights``, as it always did).
+    Otherwise ``state.prior_mean`` (B, K), ``prior_covariance`` and ``covariance`` (B, K, K)
+    and ``prior_sd`` (B, K) take the examinees' values (the design's where one of the two is not given), and each row's
+    log prior ``-0.5 (x - mu)' P (x - mu)`` is computed on the grid with the same
+    operations as the design's (:func:`.multidimensional_state.build_tables`), so that an
+    examinee whose prior is the design's gets the design's row bit for bit.  The caller
+    has checked the values (finite, the right shapes, a symmetric positive definite
+    covariance: :func:`adaptive_engine.live.session.prepare_start`).
+    """
+    tab = ctx.multidimensional
+    b, k = state.size, tab.k
+    vector_mean = prior_mean is not None and np.ndim(prior_mean) > 0
+    if not vector_mean and prior_covariance is None:
+        return None
+    if vector_mean:
+        state.prior_mean[:] = np.broadcast_to(np.asarray(prior_mean, dtype=float), (b, k))
+    if prior_covariance is not None:
+        cov = np.broadcast_to(np.asarray(prior_covariance, dtype=float), (b, k, k))
+        state.prior_covariance[:] = cov
+        state.covariance[:] = cov
+        state.prior_sd[:] = np.sqrt(np.diagonal(cov, axis1=-2, axis2=-1))
+    mean, cov = state.prior_mean, state.prior_covariance
+    if b > 1 and np.all(mean == mean[:1]) and np.all(cov == cov[:1]):
+        # one prior for the whole batch: its row once (every value is computed from its own
+        # grid point, mean and precision, so the rows are the same either way)
+        mean, cov = mean[:1], cov[:1]
+    precision = inverse(cov)
+    return -0.5 * quadratic_form(tab.points[None, :, :] - mean[:, None, :], precision[:, None, :, :])
+
+
+def scaled_prior(log_prior: np.ndarray) -> np.ndarray:
+    """Log priors (R, G) as scaled densities, each row ``exp(row - max) / sum`` (the operations
+    of the design's ``prior_weights``, :func:`.multidimensional_state.build_tables`)."""
+    w = np.exp(log_prior - np.max(log_prior, axis=-1, keepdims=True))
+    return w / np.sum(w, axis=-1, keepdims=True)
+
+
+def random_start(keys, interval, k: int) -> np.ndarray:
+    """Starting points (B, K) drawn uniformly from ``interval`` (lo, hi) on each dimension.
+
+    Dimension j takes the examinee's uniform of the starting-point stream
+    (``random_streams.START_THETA``) at counter j: dimension 0 gets the draw the
+    one-dimensional kernel starts from, the others the counters after it, which nothing
+    else reads (the stream is drawn only at the start).  Each draw is a function of the
+    examinee's key alone, so a live session and the simulated examinee it replays start at
+    the same point.
+    """
+    from . import random_streams as randomness
+
+    lo, hi = interval
+    out = np.empty((np.asarray(keys).shape[0], k))
+    for j in range(k):
+        out[:, j] = lo + (hi - lo) * randomness.uniforms(keys, j, randomness.START_THETA)
+    return out
 
 
 def answer(ctx, state, rows, responses, *, elapsed=None, count_eligible=False) -> Picked:

@@ -56,10 +56,19 @@ _SCHEMAS = {
                          "examples": ["MV-candidate-0042"]},
             "seed": {"type": ["integer", "null"], "minimum": 0, "maximum": 2**63 - 1,
                      "description": "Fixes every random decision of the test (default: a fresh one)."},
-            "prior_mean": {**_NULLABLE_NUMBER,
-                           "description": "Examinee-specific prior mean; must lie on the design's ability grid."},
+            "prior_mean": {"oneOf": [_NULLABLE_NUMBER,
+                                     {"type": "array", "items": {"type": "number"}, "minItems": 1}],
+                           "description": "Examinee-specific prior mean; must lie on the design's ability grid.  "
+                                          "For a design with an ability vector, a list with one entry per "
+                                          "dimension."},
             "prior_sd": {**_NULLABLE_NUMBER,
-                         "description": "Examinee-specific prior SD: one grid step .. the grid's width."},
+                         "description": "Examinee-specific prior SD: one grid step .. the grid's width (a design "
+                                        "with an ability vector takes prior_covariance instead)."},
+            "prior_covariance": {"type": ["array", "null"],
+                                 "items": {"type": "array", "items": {"type": "number"}},
+                                 "description": "For a design with an ability vector: the examinee-specific prior "
+                                                "covariance, K rows of K numbers, symmetric and positive definite "
+                                                "(default: the design's)."},
         },
     },
     "AnswerRequest": {

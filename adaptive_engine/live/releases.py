@@ -125,8 +125,8 @@ def retire_release(store: SessionStore, release: str) -> list[dict]:
 
 
 def start_release_session(store: SessionStore, release: str, *, examinee: str | None = None,
-                          seed: int | None = None, prior_mean: float | None = None,
-                          prior_sd: float | None = None, session_id: str | None = None,
+                          seed: int | None = None, prior_mean=None,
+                          prior_sd: float | None = None, prior_covariance=None, session_id: str | None = None,
                           cache: ProcessCache | None = None) -> dict:
     """Start a session of a release and return the first item (as :func:`start_session`).
 
@@ -137,7 +137,7 @@ def start_release_session(store: SessionStore, release: str, *, examinee: str | 
     ----------
     release : str
         ``"name"`` (the latest active version) or ``"name@version"``.
-    examinee, seed, prior_mean, prior_sd, session_id
+    examinee, seed, prior_mean, prior_sd, prior_covariance, session_id
         As :func:`~adaptive_engine.live.session.start_session`.
 
     Raises
@@ -157,7 +157,8 @@ def start_release_session(store: SessionStore, release: str, *, examinee: str | 
     # checked once (the check at publishing), read from the store once per process
     ctx = cache.context(store, row["design_id"], row["bank_id"], rules=current_rule_set())
     prepared = prepare_start(ctx.design, ctx.bank, examinee=examinee, seed=seed, prior_mean=prior_mean,
-                             prior_sd=prior_sd, session_id=session_id, cache=cache)
+                             prior_sd=prior_sd, prior_covariance=prior_covariance, session_id=session_id,
+                             cache=cache)
     prepared.row.update(release_name=name, release_version=int(row["version"]))
     return commit_start(store, prepared, cache=cache)
 

@@ -353,6 +353,31 @@ def _number(doc: dict, name: str):
     return value
 
 
+#: Entries a vector prior (or a row of a prior covariance) may have in a start request.
+_MAX_PRIOR_ENTRIES = 64
+
+
+def _numbers(doc: dict, name: str, *, matrix: bool = False):
+    """A number or a list of numbers (``prior_mean``), or a list of lists of numbers
+    (``prior_covariance``, ``matrix``); the library checks the values and the shapes."""
+    value = doc.get(name)
+    if value is None:
+        return None
+    what = "a list of lists of numbers (the rows)" if matrix else "a number or a list of numbers"
+
+    def numbers(row) -> bool:
+        return (isinstance(row, list) and len(row) <= _MAX_PRIOR_ENTRIES
+                and all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in row))
+
+    if matrix:
+        ok = isinstance(value, list) and len(value) <= _MAX_PRIOR_ENTRIES and all(numbers(r) for r in value)
+    else:
+        ok = (isinstance(value, (int, float)) and not isinstance(value, bool)) or numbers(value)
+    if not ok:
+        raise _invalid(name, f"must be {what} (at most {_MAX_PRIOR_ENTRIES} entries), not {_json_kind(value)}")
+    return value
+
+
 def _only_query(request: Request, *allowed: str) -> None:
     """Refuse query parameters the endpoint does not have, or one given twice (422)."""
     seen = set()
@@ -388,17 +413,32 @@ def idempotent_session_id(token_name: str, key: str) -> str:
     return uuid.uuid5(_IDEMPOTENCY_NAMESPACE, f"{token_name}\n{key}").hex
 
 
-def _same_start(row: dict, release: str, examinee: str, seed, prior_mean, prior_sd) -> bool:
+def _same_start(row: dict, release: str, examinee: str, seed, prior_mean, prior_sd,
+                prior_covariance=None) -> bool:
     """Whether a stored session is what this start request asks for (a retry of it)."""
     name, _, version = release.partition("@")
     if row.get("release_name") != name or (version and str(row.get("release_version")) != version):
         return False
     if row.get("examinee") != examinee or (seed is not None and int(row["seed"]) != seed):
         return False
+    if isinstance(prior_mean, list) or prior_covariance is not None:
+        # an ability vector's prior is stored whole in the session's state snapshot
+        stored = json.loads(row["state"]).get("prior") if row.get("state") else None
+        if not isinstance(stored, list) or len(stored) != 2:
+            return False
+        for asked, kept in ((prior_mean, stored[0]), (prior_covariance, stored[1])):
+            if asked is not None and _floats(asked) != _floats(kept):
+                return False
+        prior_mean = None if isinstance(prior_mean, list) else prior_mean
     for asked, stored in ((prior_mean, row.get("prior_mean")), (prior_sd, row.get("prior_sd"))):
         if asked is not None and (stored is None or float(stored) != float(asked)):
             return False
     return True
+
+
+def _floats(value):
+    """Numbers, lists of numbers and lists of lists as floats (1 and 1.0 compare equal)."""
+    return [_floats(x) for x in value] if isinstance(value, list) else float(value)
 
 
 def _query_integer(request: Request, name: str, default: int, lo: int, hi: int | None) -> int:
@@ -474,16 +514,18 @@ class Service:
         _only_query(request)
         key = _idempotency_key(request)
         doc = await read_json_object(request, self.settings.max_body_bytes)
-        _fields(doc, required=("release", "examinee"), optional=("seed", "prior_mean", "prior_sd"))
+        _fields(doc, required=("release", "examinee"),
+                optional=("seed", "prior_mean", "prior_sd", "prior_covariance"))
         release, examinee = _text(doc, "release"), _text(doc, "examinee")
         seed = _integer(doc, "seed", optional=True)
-        prior_mean, prior_sd = _number(doc, "prior_mean"), _number(doc, "prior_sd")
+        prior_mean, prior_sd = _numbers(doc, "prior_mean"), _number(doc, "prior_sd")
+        prior_covariance = _numbers(doc, "prior_covariance", matrix=True)
         # with an Idempotency-Key the session id follows from (token, key): a retried start
         # (a reply lost on the way back) finds the session the first attempt made
         session_id = None if key is None else idempotent_session_id(token.name, key)
 
         def replay(store: SessionStore, row: dict):
-            if not _same_start(row, release, examinee, seed, prior_mean, prior_sd):
+            if not _same_start(row, release, examinee, seed, prior_mean, prior_sd, prior_covariance):
                 raise ProblemReply(422, "idempotency_key_reused",
                                    "Idempotency-Key: this key started a session with another release, examinee, "
                                    "seed or prior; use a new key for a new session", field="Idempotency-Key")
@@ -497,7 +539,8 @@ class Service:
                     pass
             try:
                 return start_release_session(store, release, examinee=examinee, seed=seed, prior_mean=prior_mean,
-                                             prior_sd=prior_sd, session_id=session_id, cache=self.cache), True
+                                             prior_sd=prior_sd, prior_covariance=prior_covariance,
+                                             session_id=session_id, cache=self.cache), True
             except ConflictError as exc:
                 if session_id is None or getattr(exc, "field", None) != "session_id":
                     raise

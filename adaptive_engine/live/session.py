@@ -273,6 +273,86 @@ def _prior_values(design: Design, prior_mean, prior_sd) -> tuple[float, float]:
     return mean, sd
 
 
+def _vector_prior_values(design: Design, k: int, prior_mean, prior_sd, prior_covariance):
+    """An ability vector's examinee-specific prior, checked: ``(mean (K,) or None,
+    covariance (K, K) or None)``, None where the design's applies.
+
+    The mean: K finite numbers on the design's ability grid.  The covariance: K rows of K
+    finite numbers, symmetric and positive definite (the design key's rules,
+    :func:`adaptive_engine.design.types.covariance_problem`), each dimension's SD between
+    one grid step and the grid's width (as the one-dimensional SD, :func:`_prior_values`).
+    ``prior_sd`` has no meaning here (the covariance holds the spread).
+    """
+    from ..design.bank_fit import multidimensional_grid_points
+    from ..design.types import covariance_problem
+
+    sc = design.scoring
+    lo, hi = float(sc.grid_min), float(sc.grid_max)
+    width = hi - lo
+    if prior_sd is not None:
+        raise InvalidValueError(f"a design with an ability vector of K = {k} dimensions takes the prior's spread "
+                                f"as prior_covariance (a {k} x {k} matrix), not prior_sd",
+                                location="prior_sd", field="prior_sd")
+    mean = cov = None
+    if prior_mean is not None:
+        entries = _vector_entries(prior_mean, k, "prior_mean", f"the prior mean needs K = {k} numbers "
+                                                               "(one per dimension)")
+        mean = np.array([_finite_number(x, f"entry {j + 1} of the prior mean", location="prior_mean",
+                                        field="prior_mean") for j, x in enumerate(entries)])
+        for j, m in enumerate(mean):
+            if not lo <= m <= hi:
+                raise InvalidValueError(f"entry {j + 1} of the prior mean must lie on the design's ability grid "
+                                        f"[{lo:g}, {hi:g}], got {m:g}", location="prior_mean", field="prior_mean")
+    if prior_covariance is not None:
+        what = f"the prior covariance must be a {k} x {k} matrix (K = {k} rows of {k} numbers)"
+        rows = _vector_entries(prior_covariance, k, "prior_covariance", what)
+        cov = np.array([[_finite_number(x, f"row {i + 1}, entry {j + 1} of the prior covariance",
+                                        location="prior_covariance", field="prior_covariance")
+                         for j, x in enumerate(_vector_entries(r, k, "prior_covariance", what))]
+                        for i, r in enumerate(rows)])
+        problem = covariance_problem(tuple(tuple(r) for r in cov))
+        if problem is not None:
+            raise InvalidValueError(f"the prior covariance {problem}", location="prior_covariance",
+                                    field="prior_covariance")
+        step = width / (multidimensional_grid_points(design, k) - 1)
+        for j, v in enumerate(np.diagonal(cov)):
+            sd = math.sqrt(v)
+            if not step * (1 - 1e-9) <= sd <= width * (1 + 1e-9):
+                raise InvalidValueError(f"the prior SD of dimension {j + 1} (the square root of row {j + 1}, entry "
+                                        f"{j + 1} of the prior covariance) must lie between one step of the "
+                                        f"design's ability grid ({step:g}) and the grid's width ({width:g}), "
+                                        f"got {sd:g}", location="prior_covariance", field="prior_covariance")
+    return mean, cov
+
+
+def _vector_entries(value, k: int, field: str, what: str) -> list:
+    """The K entries of a list, tuple or numpy vector ``value`` (text and scalars refused)."""
+    if isinstance(value, np.ndarray):
+        value = list(value)
+    if not isinstance(value, (list, tuple)):
+        raise InvalidValueError(f"{what}, got {shown(value)}", location=field, field=field)
+    if len(value) != k:
+        raise InvalidValueError(f"{what}, got {len(value)}", location=field, field=field)
+    return list(value)
+
+
+def _stored_vector_prior(ctx: TestContext, row: dict) -> tuple:
+    """An ability vector session's own prior as stored with it: ``(mean (K,), covariance
+    (K, K))`` from the state snapshot of the session row (it holds the prior the session
+    started from, written exactly: JSON keeps every float), or ``(None, None)`` where it is
+    the design's (every session of an ability vector started before examinee-specific
+    priors had the design's)."""
+    tab = ctx.multidimensional
+    stored = json.loads(row["state"]).get("prior")
+    if stored is None:
+        return None, None
+    mean = np.array(stored[0], dtype=float)
+    cov = np.array(stored[1], dtype=float)
+    same_mean = mean.shape == tab.prior_mean.shape and bool(np.all(mean == tab.prior_mean))
+    same_cov = cov.shape == tab.prior_covariance.shape and bool(np.all(cov == tab.prior_covariance))
+    return (None if same_mean else mean), (None if same_cov else cov)
+
+
 # ----------------------------------------------------------------------------------------
 # replies and events
 
@@ -407,7 +487,7 @@ class PreparedStart:
 
 
 def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None, seed: int | None = None,
-                  prior_mean: float | None = None, prior_sd: float | None = None,
+                  prior_mean=None, prior_sd: float | None = None, prior_covariance=None,
                   session_id: str | None = None, cache: ProcessCache | None = None,
                   table_folder=None) -> PreparedStart:
     """Check a start request and compute the session's first step, touching no store.
@@ -420,8 +500,8 @@ def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None
     Raises
     ------
     SessionError
-        A bad examinee id, session id, seed, prior mean or SD (``location`` names the
-        parameter).
+        A bad examinee id, session id, seed, prior mean, SD or covariance (``location``
+        names the parameter).
     DesignError
         The design does not fit the bank.
     """
@@ -435,18 +515,28 @@ def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None
     seed = _seed_value(seed)
     from ..design.bank_fit import runs_multidimensional
 
+    vector_prior = {}
     if runs_multidimensional(design, bank):
-        # an ability vector starts from the design's multivariate normal prior; the stored
-        # prior columns keep its first dimension (the rules replay from the design)
-        if prior_mean is not None or prior_sd is not None:
-            raise InvalidValueError("an examinee-specific prior is not available for a design with an ability "
-                                    "vector (the design's prior_mean and prior_covariance apply)",
-                                    location="prior_mean" if prior_mean is not None else "prior_sd",
-                                    field="prior_mean" if prior_mean is not None else "prior_sd")
-        sc = design.scoring
-        mean = float(sc.prior_mean[0] if isinstance(sc.prior_mean, tuple) else sc.prior_mean)
-        sd = float(np.sqrt(sc.prior_covariance[0][0]) if sc.prior_covariance is not None else sc.prior_sd)
+        # an ability vector starts from the design's multivariate normal prior or the
+        # examinee's own; the prior columns of the session row keep its first dimension,
+        # the state snapshot the whole (the replay reads it there: _stored_vector_prior)
+        from ..kernel.multidimensional_state import prior_of
+
+        k = bank.n_dimensions
+        own_mean, own_cov = _vector_prior_values(design, k, prior_mean, prior_sd, prior_covariance)
+        design_mean, design_cov = prior_of(design, k)
+        first_mean = design_mean if own_mean is None else own_mean
+        first_cov = design_cov if own_cov is None else own_cov
+        mean, sd = float(first_mean[0]), float(np.sqrt(first_cov[0, 0]))
+        if own_mean is not None:
+            vector_prior["prior_mean"] = own_mean
+        if own_cov is not None:
+            vector_prior["prior_covariance"] = own_cov
     else:
+        if prior_covariance is not None:
+            raise InvalidValueError("a prior covariance is for a design with an ability vector; this design has "
+                                    "one ability: give its spread as prior_sd", location="prior_covariance",
+                                    field="prior_covariance")
         mean, sd = _prior_values(design, prior_mean, prior_sd)
     bank_id = bank_content(bank)[0]
     design_id = design_content(design)[0]
@@ -459,7 +549,10 @@ def prepare_start(design: Design, bank: ItemBank, *, examinee: str | None = None
     # the context is built from the objects given: no store is read
     ctx = cache.context(None, design_id, bank_id, rules=rules, design=design, bank=bank, table_folder=table_folder)
     key = np.array([stream_key(seed)], dtype=np.uint64)
-    state, picked = rules.start(ctx, key, prior_mean=mean, prior_sd=sd, count_eligible=True)
+    if vector_prior:
+        state, picked = rules.start(ctx, key, **vector_prior, count_eligible=True)
+    else:
+        state, picked = rules.start(ctx, key, prior_mean=mean, prior_sd=sd, count_eligible=True)
     session_id = session_id or uuid.uuid4().hex
     now = now_text()
     events, result = _next_events(rules, ctx, state, picked, 1, now)
@@ -492,8 +585,9 @@ def commit_start(store: SessionStore, prepared: PreparedStart, *, cache: Process
 
 
 def start_session(store: SessionStore, design: Design, bank: ItemBank, *, examinee: str | None = None,
-                  seed: int | None = None, prior_mean: float | None = None, prior_sd: float | None = None,
-                  session_id: str | None = None, cache: ProcessCache | None = None) -> dict:
+                  seed: int | None = None, prior_mean=None, prior_sd: float | None = None,
+                  prior_covariance=None, session_id: str | None = None,
+                  cache: ProcessCache | None = None) -> dict:
     """Start a session of ``design`` on ``bank`` and return the first item.
 
     Parameters
@@ -510,7 +604,14 @@ def start_session(store: SessionStore, design: Design, bank: ItemBank, *, examin
     prior_mean, prior_sd : float, optional
         An examinee-specific prior (returning examinees); default: the design's.  The mean
         must lie on the design's ability grid [grid_min, grid_max], the SD between one grid
-        step and the grid's width (defaults: [-6, 6], 0.1 .. 12).
+        step and the grid's width (defaults: [-6, 6], 0.1 .. 12).  For a design with an
+        ability vector of K dimensions ``prior_mean`` is a list of K numbers (each on the
+        grid) and ``prior_sd`` is refused: the spread is ``prior_covariance``.
+    prior_covariance : list of K lists of K numbers, optional
+        An ability vector's examinee-specific prior covariance (default: the design's):
+        symmetric, positive definite, each dimension's SD between one grid step and the
+        grid's width.  Stored with the session (its state), so that it resumes from the
+        same prior.
     session_id : str, optional
         Default: a random UUID (hex).
 
@@ -527,8 +628,8 @@ def start_session(store: SessionStore, design: Design, bank: ItemBank, *, examin
         As :func:`prepare_start`, or the session id is taken.  Nothing is written then.
     """
     prepared = prepare_start(design, bank, examinee=examinee, seed=seed, prior_mean=prior_mean,
-                             prior_sd=prior_sd, session_id=session_id, cache=cache,
-                             table_folder=store.table_folder)
+                             prior_sd=prior_sd, prior_covariance=prior_covariance, session_id=session_id,
+                             cache=cache, table_folder=store.table_folder)
     return commit_start(store, prepared, cache=cache)
 
 
@@ -755,9 +856,14 @@ def session_state(store: SessionStore, ctx: TestContext, row: dict, *,
         state = _caught_up(rules, ctx, hit[1], answers)
     if state is None:
         try:
-            state, _ = rules.rebuild(ctx, int(stream_key(int(row["seed"]))), float(row["prior_mean"]),
-                                      float(row["prior_sd"]), [bank.index_of[i] for i, _, _ in answers],
-                                      [int(r) for _, r, _ in answers], elapsed=[e for _, _, e in answers])
+            mean, sd, own = float(row["prior_mean"]), float(row["prior_sd"]), {}
+            if ctx.multidimensional is not None:
+                own_mean, own_cov = _stored_vector_prior(ctx, row)
+                mean = mean if own_mean is None else own_mean
+                own = {} if own_cov is None else {"prior_covariance": own_cov}
+            state, _ = rules.rebuild(ctx, int(stream_key(int(row["seed"]))), mean, sd,
+                                      [bank.index_of[i] for i, _, _ in answers],
+                                      [int(r) for _, r, _ in answers], elapsed=[e for _, _, e in answers], **own)
         except ValueError as exc:
             raise SessionError(f"the stored answers do not replay: {exc}",
                                location=f"session {shown(session_id)}") from None
