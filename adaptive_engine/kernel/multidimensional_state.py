@@ -3,16 +3,22 @@
 A design runs here when its bank has K > 1 dimensions or when it asks for it (vector
 keys, a multidimensional criterion; see
 :func:`adaptive_engine.design.bank_fit.runs_multidimensional`); K = 1 is a case of the same
-code.  The posterior of each examinee lives on a product grid of ``points ** K`` points
-(:class:`MultidimensionalTables`), updated by adding log-probability rows exactly as the
-one-dimensional kernel does on its line grid, so the bookkeeping of
+code.  For K <= 3 the posterior of each examinee lives on a product grid of ``points ** K``
+points (:class:`MultidimensionalTables`), updated by adding log-probability rows exactly as
+the one-dimensional kernel does on its line grid.  For K = 4 to 6
+(:data:`adaptive_engine.design.bank_fit.MAX_KERNEL_DIMENSIONS`) the kernel keeps no grid
+(``gridless``): the grid, the log tables and each examinee's posterior row have no points
+(nothing of size (B, G) is allocated), the interim and final estimates are MAP with the
+covariance ``(P + I(theta))^-1`` and the criteria read that covariance; the gate refuses
+every option that needs the grid.  The bookkeeping of
 :mod:`adaptive_engine.kernel.cycle` (answers, blueprint counts, enemies, item sets, pretest
 seeding) and the selection machinery of :mod:`adaptive_engine.kernel.selection` (exposure
 control, blueprint, eligibility) serve both unchanged.
 
 Every quantity is computed per row, elementwise with fixed-order sums over the K
 dimensions (the small matrix inverses and determinants below are written out by
-cofactors), so a batch gives bit for bit what one examinee at a time gives.
+cofactors for K <= 3, by an elementwise Cholesky factorisation beyond), so a batch gives
+bit for bit what one examinee at a time gives.
 """
 
 from __future__ import annotations
@@ -67,6 +73,10 @@ class MultidimensionalTables:
         The items in single precision, for the D-optimal pick by screening
         (:func:`adaptive_engine.kernel.multidimensional_selection.best_items`); None where
         that pick does not apply (another criterion, not an M2PL bank).
+    gridless : bool
+        K > :data:`adaptive_engine.design.bank_fit.MAX_GRID_DIMENSIONS`: no posterior grid
+        (``points`` (0, K), ``axis`` (0,), ``log_table`` (n, 0, C), ``log_prior`` (0,)); the
+        estimates are MAP.
     """
 
     k: int
@@ -86,6 +96,7 @@ class MultidimensionalTables:
     logistic_only: bool = False
     slope_products: dict = attrs.field(factory=dict)
     screening: "SinglePrecisionItems | None" = None
+    gridless: bool = False
 
 
 def multidimensional_parameters(bank: ItemBank) -> md.MultidimensionalParameters:
@@ -108,19 +119,21 @@ def prior_of(design: Design, k: int) -> tuple[np.ndarray, np.ndarray]:
 
 def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     """Precompute the multidimensional facts of ``design`` on ``bank`` (the pair has passed the gate)."""
-    from ..design.bank_fit import multidimensional_grid_points
+    from ..design.bank_fit import MAX_GRID_DIMENSIONS, multidimensional_grid_points
 
     params = multidimensional_parameters(bank)
     k = params.n_dimensions
     sc = design.scoring
-    p = multidimensional_grid_points(design, k)
+    gridless = k > MAX_GRID_DIMENSIONS
+    # no grid: an axis of no points makes every grid-sized array empty
+    p = 0 if gridless else multidimensional_grid_points(design, k)
     axis = np.round(np.linspace(sc.grid_min, sc.grid_max, p), 12)
     mesh = np.meshgrid(*([axis] * k), indexing="ij")
     points = np.stack([m.reshape(-1) for m in mesh], axis=1)  # (G, K)
     logistic = bool(np.all(params.n_categories == 2) and np.all(params.c == 0))
     # (n, C, G), the layout the posterior update reads; log_table is its (n, G, C) view
     by_category = np.empty((bank.n_items, params.max_categories, points.shape[0]))
-    for start in range(0, bank.n_items, 500):
+    for start in range(0, bank.n_items if p else 0, 500):
         stop = min(start + 500, bank.n_items)
         chunk = params.take(np.arange(start, stop))
         if not (logistic and _logistic_log_table(chunk, points, by_category[start:stop])):
@@ -151,6 +164,7 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
         slope_products=products,
         screening=SinglePrecisionItems.of(params, products) if (
             design.selection.criterion is SelectionCriterion.D_OPTIMALITY and logistic) else None,
+        gridless=gridless,
     )
 
 
@@ -209,7 +223,9 @@ class SinglePrecisionItems:
 
 
 def determinant(m: np.ndarray) -> np.ndarray:
-    """Determinants of matrices (..., K, K) for K <= 3 by cofactors (numpy beyond)."""
+    """Determinants of matrices (..., K, K): for K <= 3 by cofactors, beyond of symmetric
+    positive definite matrices by :func:`cholesky_factor` (the square of the product of its
+    diagonal; NaN where the matrix is not positive definite)."""
     k = m.shape[-1]
     if k == 1:
         return m[..., 0, 0].copy()
@@ -219,11 +235,17 @@ def determinant(m: np.ndarray) -> np.ndarray:
         return (m[..., 0, 0] * (m[..., 1, 1] * m[..., 2, 2] - m[..., 1, 2] * m[..., 2, 1])
                 - m[..., 0, 1] * (m[..., 1, 0] * m[..., 2, 2] - m[..., 1, 2] * m[..., 2, 0])
                 + m[..., 0, 2] * (m[..., 1, 0] * m[..., 2, 1] - m[..., 1, 1] * m[..., 2, 0]))
-    return np.linalg.det(m)
+    factor = cholesky_factor(m)
+    out = factor[..., 0, 0] * factor[..., 0, 0]
+    for i in range(1, k):
+        out = out * (factor[..., i, i] * factor[..., i, i])
+    return out
 
 
 def inverse(m: np.ndarray) -> np.ndarray:
-    """Inverses of matrices (..., K, K) for K <= 3 by the adjugate (numpy beyond)."""
+    """Inverses of matrices (..., K, K): for K <= 3 by the adjugate, beyond of symmetric
+    positive definite matrices by :func:`cholesky_inverse` (every matrix the kernel inverts
+    for K > 3 is one: a prior covariance or precision, a posterior information)."""
     k = m.shape[-1]
     if k == 1:
         return 1.0 / m
@@ -245,7 +267,58 @@ def inverse(m: np.ndarray) -> np.ndarray:
                 minor = m[..., r[0], c[0]] * m[..., r[1], c[1]] - m[..., r[0], c[1]] * m[..., r[1], c[0]]
                 out[..., i, j] = (-1) ** (i + j) * minor / det
         return out
-    return np.linalg.inv(m)
+    return cholesky_inverse(m)
+
+
+def cholesky_factor(m: np.ndarray) -> np.ndarray:
+    """The lower Cholesky factor ``L`` (``m = L L'``) of symmetric positive definite matrices
+    (..., K, K), elementwise: each entry by the Cholesky-Banachiewicz recurrence with its
+    sums in a fixed order, so every matrix's factor is its own whatever the batch (LAPACK's
+    blocked routines promise no such thing).  Only the lower triangle of ``m`` is read; NaN
+    where a matrix is not positive definite.
+    """
+    k = m.shape[-1]
+    out = np.zeros(m.shape)
+    with np.errstate(invalid="ignore"):
+        for j in range(k):
+            acc = m[..., j, j]
+            for p in range(j):
+                acc = acc - out[..., j, p] * out[..., j, p]
+            out[..., j, j] = np.sqrt(np.where(acc > 0, acc, np.nan))
+            for i in range(j + 1, k):
+                acc = m[..., i, j]
+                for p in range(j):
+                    acc = acc - out[..., i, p] * out[..., j, p]
+                out[..., i, j] = acc / out[..., j, j]
+    return out
+
+
+def cholesky_inverse(m: np.ndarray) -> np.ndarray:
+    """Inverses of symmetric positive definite matrices (..., K, K), elementwise:
+    ``m^-1 = L^-T L^-1`` from :func:`cholesky_factor`, ``L^-1`` by forward substitution,
+    every sum in a fixed order; the result is exactly symmetric (the lower triangle is
+    computed, the upper copied).  NaN where a matrix is not positive definite.
+    """
+    k = m.shape[-1]
+    factor = cholesky_factor(m)
+    low = np.zeros(m.shape)  # L^-1, lower triangular
+    for i in range(k):
+        low[..., i, i] = 1.0 / factor[..., i, i]
+        for j in range(i):
+            acc = factor[..., i, j] * low[..., j, j]
+            for p in range(j + 1, i):
+                acc = acc + factor[..., i, p] * low[..., p, j]
+            low[..., i, j] = -acc / factor[..., i, i]
+    out = np.empty(m.shape)
+    for i in range(k):
+        for j in range(i + 1):
+            # (L^-T L^-1)_ij = sum_{p >= i} low_pi low_pj
+            acc = low[..., i, i] * low[..., i, j]
+            for p in range(i + 1, k):
+                acc = acc + low[..., p, i] * low[..., p, j]
+            out[..., i, j] = acc
+            out[..., j, i] = acc
+    return out
 
 
 def quadratic_form(x: np.ndarray, m: np.ndarray) -> np.ndarray:
