@@ -455,16 +455,37 @@ def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *,
     prob = expit(scaling * (eta + given.intercepts))
     j = np.where(given.given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
     info = np.array(precision, dtype=float, copy=True)
+    # without a grid (K > 3) the sums run in order for a batch of one row too
+    total = _sum_one_after_another if tab.gridless else _sum_in_order
     for p in range(k):
         for q in range(p, k):
-            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q])
+            info[:, p, q] = total(info[:, p, q], j * a[p] * a[q])
             if q != p:
                 info[:, q, p] = info[:, p, q]
     if not score:
         return info, None
     r = np.where(given.given, scaling * (given.responses - prob), 0.0)
-    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d]) for d in range(k)], axis=1)
+    grad = np.stack([total(np.zeros(theta.shape[0]), r * a[d]) for d in range(k)], axis=1)
     return info, grad
+
+
+def _sum_one_after_another(start: np.ndarray, terms: np.ndarray) -> np.ndarray:
+    """:func:`_sum_in_order` whatever the number of rows: the last row of numpy's running sum
+    (``np.add.accumulate`` adds one row after another by definition).
+
+    :func:`_sum_in_order` of a batch of one row is a reduction along a contiguous axis,
+    which numpy carries out pairwise from eight terms on, so its value can differ in the
+    last bits from the same row's in a larger batch.  The kernel without a grid (K > 3)
+    sums with this function, so that a live session (a batch of one) gets the batch's
+    values; the kernel on a grid keeps :func:`_sum_in_order` (changing it would change the
+    last bits of live sessions under the present decision rules).
+    """
+    if terms.shape[0] == 0:
+        return start.copy()
+    stacked = np.empty((terms.shape[0] + 1,) + start.shape)
+    stacked[0] = start
+    stacked[1:] = terms
+    return np.add.accumulate(stacked, axis=0)[-1]
 
 
 def _sum_in_order(start: np.ndarray, terms: np.ndarray) -> np.ndarray:
