@@ -33,15 +33,19 @@ from adaptive_engine.simulation.multidimensional_engine import run_chunk, simula
 RHO = 0.4
 
 
-def bank_of(k, n=160, seed=5) -> ItemBank:
-    """M2PL items, each loading on one or two of the K dimensions."""
+def bank_of(k, n=160, seed=5, *, copies=0) -> ItemBank:
+    """M2PL items, each loading on one or two of the K dimensions; the last ``copies`` items
+    repeat the first ones (exact ties)."""
     rng = np.random.default_rng(seed)
     slopes = np.zeros((n, k))
     slopes[np.arange(n), np.arange(n) % k] = rng.uniform(0.8, 2.0, n)
     second = rng.random(n) < 0.3
     slopes[np.flatnonzero(second), (np.flatnonzero(second) + 1) % k] = rng.uniform(0.3, 1.0, second.sum())
+    intercepts = rng.normal(0, 1, n)
+    if copies:
+        slopes[-copies:], intercepts[-copies:] = slopes[:copies], intercepts[:copies]
     return ItemBank(item_ids=[f"Q{i:03d}" for i in range(n)], model=["M2PL"] * n, slopes=slopes,
-                    intercepts=rng.normal(0, 1, n).reshape(n, 1), area=["g"] * n, item_set=[""] * n,
+                    intercepts=intercepts.reshape(n, 1), area=["g"] * n, item_set=[""] * n,
                     enemy_groups=[()] * n, status=["operational"] * n, label=[""] * n)
 
 
@@ -155,6 +159,37 @@ def test_d_optimal_pick_matches_brute_force_over_the_bank(k):
         # Segall (1996): the largest det(W + I_j), numpy.linalg.det
         scores = np.array([np.linalg.det(w + item_information(bank, j, theta)) for j in free])
         assert state.pending[row] == free[int(np.argmax(scores))]
+
+
+@pytest.mark.parametrize("k", [4, 6])
+def test_screened_d_optimal_pick_is_the_double_precision_pick(k):
+    """The single-precision screening (with the eigenvalue bound for K > 3) only decides
+    which items get a double-precision value: pick, value (bit for bit) and ties are those
+    of every item in double precision."""
+    from adaptive_engine.kernel.multidimensional_selection import best_items, criterion_values, row_facts
+
+    rng = np.random.default_rng(k)
+    n_items = 150
+    bank = bank_of(k, n_items, seed=k, copies=12)
+    ctx = build_context(parse_design(design_text(k, se=0.1)), bank)
+    state = answered(ctx, 8, rows=30)
+    rows = np.arange(state.size)
+    state.theta[:] = rng.normal(0, 1.5, state.theta.shape)
+    state.theta[:3] = [[4.9] * k, [-4.9] * k, [300.0] * k]  # far out: values near single precision's underflow
+    ok = rng.random((rows.size, n_items)) < 0.8
+    ok[5] = False
+    ok[6] = False
+    ok[6, [0, n_items - 12]] = True  # only an item and its copy
+    facts = row_facts(ctx, state, rows)
+    item, value, ties = best_items(ctx, state, rows, ok, facts)
+    values = np.where(ok, criterion_values(ctx, state, rows, facts), -np.inf)
+    want = np.argmax(values, axis=1)
+    best = values[rows, want]
+    has = ok.any(axis=1)
+    np.testing.assert_array_equal(item, np.where(has, want, -1))
+    np.testing.assert_array_equal(value[has], best[has])
+    np.testing.assert_array_equal(ties[has], np.count_nonzero(values == best[:, None], axis=1)[has])
+    assert item[6] == 0 and ties[6] == 2
 
 
 @pytest.mark.parametrize("exposure", ["", "[exposure]\nmethod = \"randomesque\"\ncandidates = 3\n"])
