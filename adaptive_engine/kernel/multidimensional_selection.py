@@ -26,6 +26,9 @@ items given, Segall 1996) and ``I_j = J_j a_j a_j'`` a candidate's information (
 ``max_fisher_information`` (K = 1 only)
     ``J_j a_j^2``, the item's Fisher information at theta: the same order as
     ``d_optimality`` at K = 1.
+
+For K = 4 to 6 the kernel keeps no posterior grid: ``W^-1`` is the MAP covariance, the
+criteria above but ``kullback_leibler`` (refused by the gate there) run unchanged.
 """
 
 from __future__ import annotations
