@@ -102,6 +102,17 @@ def test_cholesky_inverse_and_determinant_match_numpy(k):
     assert np.isnan(inverse(-m[:1])).all()
 
 
+def test_sums_over_the_answers_run_in_order_for_one_row_too():
+    from adaptive_engine.kernel.multidimensional_state import _sum_one_after_another
+
+    rng = np.random.default_rng(4)
+    for length, rows in ((0, 1), (1, 1), (7, 1), (31, 1), (31, 2), (31, 3), (12, 40)):
+        start = rng.normal(0, 1, rows) * 10.0 ** rng.integers(-6, 6, rows)
+        terms = rng.normal(0, 1, (length, rows)) * 10.0 ** rng.integers(-12, 12, (length, rows))
+        want = np.add.accumulate(np.vstack([start, terms]), axis=0)[-1]  # numpy's running sum
+        np.testing.assert_array_equal(_sum_one_after_another(start, terms), want)
+
+
 def test_four_dimensional_design_keeps_no_grid_runs_and_stops_on_se_per_dimension():
     bank = bank_of(4, 200)
     design = parse_design(design_text(4, se=0.45, max_items=40))

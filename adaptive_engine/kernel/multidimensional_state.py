@@ -480,6 +480,10 @@ def _sum_one_after_another(start: np.ndarray, terms: np.ndarray) -> np.ndarray:
     values; the kernel on a grid keeps :func:`_sum_in_order` (changing it would change the
     last bits of live sessions under the present decision rules).
     """
+    if start.shape[0] != 1:
+        # more than one row: the reduction adds one row after another already (the inner
+        # loop runs along the rows), with no (L + 1, R) output to write
+        return _sum_in_order(start, terms)
     if terms.shape[0] == 0:
         return start.copy()
     stacked = np.empty((terms.shape[0] + 1,) + start.shape)
