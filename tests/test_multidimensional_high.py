@@ -249,6 +249,44 @@ def test_simulated_examinee_replays_as_a_live_session():
             assert len(result["classifications"]) == 1
 
 
+def test_simulate_cli_writes_a_four_dimensional_study_and_session_cli_runs_it(tmp_path):
+    import json
+
+    from click.testing import CliRunner
+
+    from adaptive_engine.bank.files import write_bank_json
+    from adaptive_engine.cli import main
+
+    names = ["numeracy", "chemistry", "hydraulics", "regulation"]
+    base = bank_of(4, 120)
+    bank = ItemBank(item_ids=base.item_ids, model=base.model, slopes=base.slopes, intercepts=base.intercepts,
+                    area=base.area, item_set=base.item_set, enemy_groups=base.enemy_groups, status=base.status,
+                    label=base.label, dimension_names=names)
+    write_bank_json(bank, tmp_path / "bank4.json")
+    (tmp_path / "d4.toml").write_text(design_text(4, max_items=15, extra="[reporting]\ncomposite_weights = "
+                                                                        "[0.25, 0.25, 0.25, 0.25]\n"))
+    run = CliRunner().invoke
+    got = run(main, ["simulate", str(tmp_path / "d4.toml"), "--bank", str(tmp_path / "bank4.json"), "--theta",
+                     "correlated_normal:0,1,0.4", "--examinees", "20", "--seed", "3", "--out", str(tmp_path / "study")])
+    assert got.exit_code == 0, got.output
+    summary = json.loads((tmp_path / "study" / "summary.json").read_text())
+    assert list(summary["dimensions"]) == names
+    for m in list(summary["dimensions"].values()) + [summary["composite"]]:
+        assert {"bias", "rmse", "mean_se", "correlation_with_truth"} <= set(m)
+    page = (tmp_path / "study" / "report.html").read_text()
+    assert all(name in page for name in names)
+    db = str(tmp_path / "s.db")
+    reply = json.loads(run(main, ["session", "start", "--db", db, "--design", str(tmp_path / "d4.toml"), "--bank",
+                                  str(tmp_path / "bank4.json"), "--seed", "7", "--json"]).output)
+    assert reply["theta"] == [0.0] * 4
+    while not reply["done"]:
+        answered = run(main, ["session", "answer", "--db", db, reply["session_id"], reply["item_id"],
+                              str(int(reply["item_id"][-1]) % 2), "--json"])
+        assert answered.exit_code == 0, answered.output
+        reply = {**json.loads(answered.output), "session_id": reply["session_id"]}
+    assert [d["name"] for d in reply["result"]["dimensions"]] == names
+
+
 def test_banks_above_the_limit_and_options_that_need_the_grid_are_refused_where_they_are_set():
     k = MAX_KERNEL_DIMENSIONS + 1
     found = check_design_against_bank(parse_design(design_text(k)), bank_of(k, 30))
