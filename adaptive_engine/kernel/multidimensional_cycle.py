@@ -50,7 +50,8 @@ def start(ctx, keys, *, prior_mean=None, prior_sd=None, count_eligible=False):
 
     tab = ctx.multidimensional
     state = MultidimensionalState.empty_vector(ctx, keys)
-    state.log_post[:] = tab.log_prior[None, :]
+    if not tab.gridless:  # without a grid (K > 3) the posterior rows have no points
+        state.log_post[:] = tab.log_prior[None, :]
     state.theta[:] = ctx.design.opening.theta
     state.se[:] = state.prior_sd
     return first_pick(ctx, state, count_eligible=count_eligible)
