@@ -113,9 +113,10 @@ def test_sums_over_the_answers_run_in_order_for_one_row_too():
         np.testing.assert_array_equal(_sum_one_after_another(start, terms), want)
 
 
-def test_four_dimensional_design_keeps_no_grid_runs_and_stops_on_se_per_dimension():
+def test_four_dimensional_design_keeps_no_grid_runs_and_stops_on_the_se_of_each_dimension():
     bank = bank_of(4, 200)
-    design = parse_design(design_text(4, se=0.45, max_items=40))
+    targets = np.array([0.4, 0.45, 0.5, 0.45])
+    design = parse_design(design_text(4, max_items=40).replace("se = 0.4", f"se_per_dimension = {targets.tolist()}"))
     assert check_design_against_bank(design, bank) == []
     ctx = build_context(design, bank)
     # no posterior grid: nothing of size (B, G) in the context or the state
@@ -128,10 +129,10 @@ def test_four_dimensional_design_keeps_no_grid_runs_and_stops_on_se_per_dimensio
     assert res.theta.shape == (60, 4) and np.all(np.isfinite(res.theta))
     reached = res.stop_reason == "se_reached"
     assert reached.mean() > 0.5
-    # stopped on SE only once every dimension was at the target, never before min_items
-    assert np.all(res.se[reached] <= 0.45) and np.all(res.n_scored[reached] >= 4)
+    # stopped on SE only once every dimension was at its own target, never before min_items
+    assert np.all(res.se[reached] <= targets) and np.all(res.n_scored[reached] >= 4)
     assert set(res.stop_reason[~reached]) <= {"max_items"}
-    assert np.all(np.any(res.se[~reached] > 0.45, axis=1))
+    assert np.all(np.any(res.se[~reached] > targets, axis=1))
     # the estimates track the truth (a plain sanity bound, from the SE of 0.45)
     assert np.all(np.sqrt(np.mean((res.theta - true) ** 2, axis=0)) < 0.65)
 
