@@ -152,6 +152,10 @@ def test_map_against_scipy_minimize_and_covariance_against_numpy():
 
         ref = optimize.minimize(neg_log_post, np.zeros(4), method="BFGS", options={"gtol": 1e-10}).x  # scipy.optimize
         np.testing.assert_allclose(state.theta[row], ref, atol=1e-4)
+        # the final estimate is the same mode (started from the interim one)
+        final = kernel.final_estimates(ctx, state, np.array([row]))
+        np.testing.assert_allclose(final.theta[0], ref, atol=1e-4)
+        assert final.status[0] == "converged"
         info = prec + sum(item_information(bank, i, state.theta[row]) for i in given)
         np.testing.assert_allclose(state.covariance[row], np.linalg.inv(info), rtol=1e-10)  # numpy.linalg.inv
         np.testing.assert_allclose(state.se[row], np.sqrt(np.diag(np.linalg.inv(info))), rtol=1e-10)
