@@ -295,8 +295,14 @@ def design_warnings(design: Design, bank: ItemBank) -> list[Problem]:
     return out
 
 
-#: Largest K the multidimensional kernel runs (its posterior lives on a product grid).
-MAX_KERNEL_DIMENSIONS = 3
+#: Largest K whose posterior the multidimensional kernel keeps on a product grid of
+#: ``points ** K`` points (EAP, MLE, Kullback-Leibler, se_reduction need it).
+MAX_GRID_DIMENSIONS = 3
+#: Largest K the multidimensional kernel runs.  Above :data:`MAX_GRID_DIMENSIONS` it keeps
+#: no grid: interim and final estimates by MAP (Newton with the prior's precision), the
+#: covariance from the information, criteria from that covariance (docs/designs.md,
+#: "Ability vectors of more than three dimensions").
+MAX_KERNEL_DIMENSIONS = 6
 #: Default points per dimension of the multidimensional grid, by K (K = 1: grid_points).
 DEFAULT_POINTS_PER_DIMENSION = {2: 41, 3: 17}
 
@@ -329,8 +335,10 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     where_bank = f"bank {bank.name}".strip()
     if k > MAX_KERNEL_DIMENSIONS:
         return [Problem(where_bank, f"the bank has {k} ability dimensions ({names}); adaptive tests run on "
-                                    f"banks of at most {MAX_KERNEL_DIMENSIONS} (the posterior lives on a grid "
-                                    "of points ** K)")]
+                                    f"banks of at most {MAX_KERNEL_DIMENSIONS} (above {MAX_GRID_DIMENSIONS} "
+                                    "dimensions the kernel scores by MAP, whose Newton steps and D-optimal "
+                                    f"quadratic forms grow as K^3 and K^2; score a {k}-dimensional test with "
+                                    "`score`, or split the bank)")]
     if not bank.uses_multidimensional_models:
         return [Problem(where_bank, "the design asks for the multidimensional kernel (vector keys or a "
                                     "multidimensional criterion), which needs a bank of M2PL, M3PL or MGRM items "
@@ -349,6 +357,8 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     if design.final_method not in vector_methods:
         out.append(Problem("[reporting] final_method",
                            f"{design.final_method.value} is not available {many}; use eap, map or mle"))
+    if k > MAX_GRID_DIMENSIONS:
+        return out + _gridless_problems(design, k, many)
     points = multidimensional_grid_points(design, k)
     if points ** k > MAX_MULTIDIMENSIONAL_GRID:
         out.append(Problem("[scoring] grid_points_per_dimension" if sc.grid_points_per_dimension is not None
@@ -392,6 +402,34 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
         out.append(Problem("[[reporting.cut_scores]]",
                            f"{many} cut scores classify the composite of [reporting] composite_weights; "
                            "give them"))
+    return out
+
+
+def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
+    """What a design cannot ask of the kernel for K = ``k`` > :data:`MAX_GRID_DIMENSIONS`,
+    where it keeps no posterior grid: everything that reads the grid posterior."""
+    sc, sel, st = design.scoring, design.selection, design.stopping
+    why = (f"needs the posterior on a grid of points ** K, which the kernel keeps for K <= {MAX_GRID_DIMENSIONS} "
+           f"only")
+    out = []
+    grid_methods = (ScoringMethod.EAP, ScoringMethod.MLE)  # other methods are refused above for any K
+    if sc.method in grid_methods:
+        out.append(Problem("[scoring] method", f"{sc.method.value} {why}; {many} use map (Newton with the "
+                                               "prior's precision, the covariance from the information)"))
+    if design.reporting.final_method in grid_methods:
+        out.append(Problem("[reporting] final_method",
+                           f"{design.reporting.final_method.value} {why}; {many} use map"))
+    if sc.grid_points_per_dimension is not None:
+        out.append(Problem("[scoring] grid_points_per_dimension",
+                           f"{many} the kernel keeps no grid (it scores by MAP on the box grid_min..grid_max); "
+                           "leave the key out"))
+    if sel.criterion is SelectionCriterion.KULLBACK_LEIBLER:
+        out.append(Problem("[selection] criterion", f"kullback_leibler weights the grid posterior and {why}; "
+                                                    f"{many} use d_optimality, a_optimality or "
+                                                    "max_composite_information"))
+    if st.se_reduction is not None:
+        out.append(Problem("[stopping] se_reduction", f"the predicted SE reduction {why}; {many} stop on se or "
+                                                      "se_per_dimension, min_information, length or time"))
     return out
 
 
@@ -466,7 +504,8 @@ def describe_design(design: Design) -> list[str]:
             scoring += f"; {fallback} while every answer is in the lowest or every one in the highest category"
     if design.asks_multidimensional:
         points = (f"{sc.grid_points_per_dimension} points per dimension" if sc.grid_points_per_dimension is not None
-                  else "41 points per dimension for K = 2, 17 for K = 3, grid_points for K = 1")
+                  else "41 points per dimension for K = 2, 17 for K = 3, grid_points for K = 1; no grid for "
+                       f"K = {MAX_GRID_DIMENSIONS + 1} to {MAX_KERNEL_DIMENSIONS}, scored by MAP")
         lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} on every dimension ({points})")
     else:
         lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")

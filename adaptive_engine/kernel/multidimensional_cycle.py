@@ -7,7 +7,8 @@ row addition on the product grid), picking items (:func:`adaptive_engine.kernel.
 with the criteria of :mod:`.multidimensional_selection`), exposure control, the blueprint,
 enemies, item sets and pretest seeding.  What differs is here: the prior (multivariate
 normal), the interim estimate (EAP on the grid, MAP by Fisher scoring with the prior's
-precision, or the MLE where it exists with the design's stand-in elsewhere), the stopping
+precision, or the MLE where it exists with the design's stand-in elsewhere; for K > 3,
+where the kernel keeps no posterior grid, MAP alone, interim and final), the stopping
 statistics (the SE of every dimension, the composite's interval) and the final report
 (each dimension with its interval and scaled score, the composite with its SE
 ``sqrt(w' S w)``).
@@ -548,6 +549,9 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
     carry no grid, :func:`keeps_grid_posterior`; :func:`final_estimates`).
     """
     tab = ctx.multidimensional
+    if tab.gridless:
+        _update_gridless_estimate(ctx, state, rows)
+        return
     eap = ctx.design.scoring.method is not ScoringMethod.MAP
     if ctx.posterior_form == "log":
         table = None if scored_item is None else ctx.log_table_by_category
@@ -563,6 +567,25 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
     if ctx.design.scoring.method is ScoringMethod.MLE:
         mean, cov, _ = mle_or_fallback(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
+
+
+def _update_gridless_estimate(ctx, state, rows) -> None:
+    """The interim estimate of a context without a posterior grid (K > 3): the MAP from the
+    previous interim estimate, its covariance ``(P + I(theta_hat))^-1`` (the gate admits no
+    other method there).  The answers are already in the state's items and responses."""
+    mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
+    state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
+
+
+def _gridless_final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimates:
+    """Final MAP estimates of a context without a posterior grid (K > 3), started from the
+    interim estimate (the interim MAP after the last answer, or the opening point without
+    answers): the same values in a batch and for one examinee, live or simulated."""
+    mean, cov, ok = map_estimate(ctx, state, rows, state.theta[rows])
+    status = np.where(state.n_scored[rows] == 0, "no_responses",
+                      np.where(ok, "converged", "not_converged")).astype(object)
+    return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
+                                          lz=person_fit_lz(ctx, state, rows, mean))
 
 
 def composite(weights, theta, cov) -> tuple[np.ndarray, np.ndarray]:
@@ -645,6 +668,8 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
     the final EAP of a row that took an answer is its interim EAP.
     """
     rows = np.asarray(rows, dtype=np.int64)
+    if ctx.multidimensional.gridless:
+        return _gridless_final_estimates(ctx, state, rows)
     status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
     design = ctx.design
     if ((interim_current or ctx.posterior_form != "log") and design.scoring.method is ScoringMethod.EAP

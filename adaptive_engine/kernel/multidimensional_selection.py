@@ -26,6 +26,9 @@ items given, Segall 1996) and ``I_j = J_j a_j a_j'`` a candidate's information (
 ``max_fisher_information`` (K = 1 only)
     ``J_j a_j^2``, the item's Fisher information at theta: the same order as
     ``d_optimality`` at K = 1.
+
+For K = 4 to 6 the kernel keeps no posterior grid: ``W^-1`` is the MAP covariance, the
+criteria above but ``kullback_leibler`` (refused by the gate there) run unchanged.
 """
 
 from __future__ import annotations
@@ -316,11 +319,23 @@ def _screening_error(screen, theta, w_inv, scaling, k) -> np.ndarray:
     trace = np.trace(w_inv, axis1=1, axis2=2)
     with np.errstate(divide="ignore", invalid="ignore"):
         least = det / trace ** (k - 1)
+        if k > 3:
+            least = np.fmax(least, _least_eigenvalue_bound(w_inv))
         kappa = np.max(np.sum(np.abs(w_inv), axis=2), axis=1) / least
     kappa = np.where((det > 0) & (trace > 0), kappa, np.inf)
     n_terms = k * (k + 1) // 2
     first_order = scaling * reach * (2 * k + 5) + 15.0 + (n_terms + 3) * kappa
     return SCREEN_SAFETY * u * first_order + 1e-12
+
+
+def _least_eigenvalue_bound(w_inv) -> np.ndarray:
+    """A lower bound on the least eigenvalue of ``W^-1`` (R, K, K), (R,), for K > 3, where
+    ``det / trace^(K-1)`` is loose: ``1 / |W|_inf``, the largest row sum of ``|W|`` bounding
+    every eigenvalue of ``W`` (Gershgorin's theorem), with ``W`` recomputed from ``W^-1``
+    and a margin of 1e-6 for its rounding (NaN where ``W^-1`` is not positive definite,
+    which ``np.fmax`` passes over)."""
+    w = inverse(w_inv)
+    return (1.0 - 1e-6) / np.max(np.sum(np.abs(w), axis=2), axis=1)
 
 
 def _pair_values(tab, theta, w_inv, items) -> np.ndarray:

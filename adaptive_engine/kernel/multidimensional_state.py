@@ -3,19 +3,25 @@
 A design runs here when its bank has K > 1 dimensions or when it asks for it (vector
 keys, a multidimensional criterion; see
 :func:`adaptive_engine.design.bank_fit.runs_multidimensional`); K = 1 is a case of the same
-code.  The posterior of each examinee lives on a product grid of ``points ** K`` points
-(:class:`MultidimensionalTables`), updated as the one-dimensional kernel does on its line
-grid: under decision rules 1 and 2 (``ctx.posterior_form == "log"``) a row is a log density
-to which log-probability rows are added (:func:`add_and_moments`); under version 3
+code.  For K <= 3 the posterior of each examinee lives on a product grid of ``points ** K``
+points (:class:`MultidimensionalTables`), updated as the one-dimensional kernel does on its
+line grid: under decision rules 1 and 2 (``ctx.posterior_form == "log"``) a row is a log
+density to which log-probability rows are added (:func:`add_and_moments`); under version 3
 (``"scaled"``) a row is the density divided by its sum, multiplied by probability rows
-(:func:`scaled_add_and_moments`).  The bookkeeping of
+(:func:`scaled_add_and_moments`).  For K = 4 to 6
+(:data:`adaptive_engine.design.bank_fit.MAX_KERNEL_DIMENSIONS`) the kernel keeps no grid
+(``gridless``): the grid, the log tables and each examinee's posterior row have no points
+(nothing of size (B, G) is allocated), the interim and final estimates are MAP with the
+covariance ``(P + I(theta))^-1`` and the criteria read that covariance; the gate refuses
+every option that needs the grid.  The bookkeeping of
 :mod:`adaptive_engine.kernel.cycle` (answers, blueprint counts, enemies, item sets, pretest
 seeding) and the selection machinery of :mod:`adaptive_engine.kernel.selection` (exposure
 control, blueprint, eligibility) serve both unchanged.
 
 Every quantity is computed per row, elementwise with fixed-order sums over the K
 dimensions (the small matrix inverses and determinants below are written out by
-cofactors), so a batch gives bit for bit what one examinee at a time gives.
+cofactors for K <= 3, by an elementwise Cholesky factorisation beyond), so a batch gives
+bit for bit what one examinee at a time gives.
 """
 
 from __future__ import annotations
@@ -73,6 +79,10 @@ class MultidimensionalTables:
     prior_weights : float (G,)
         The prior as a scaled density, ``exp(log_prior - max) / sum``: the start of every
         row of the scaled posterior (:func:`scaled_add_and_moments`).
+    gridless : bool
+        K > :data:`adaptive_engine.design.bank_fit.MAX_GRID_DIMENSIONS`: no posterior grid
+        (``points`` (0, K), ``axis`` (0,), ``log_table`` (n, 0, C), ``log_prior`` (0,)); the
+        estimates are MAP.
     """
 
     k: int
@@ -92,6 +102,7 @@ class MultidimensionalTables:
     logistic_only: bool = False
     slope_products: dict = attrs.field(factory=dict)
     screening: "SinglePrecisionItems | None" = None
+    gridless: bool = False
     prior_weights: np.ndarray | None = None
     _made: dict = attrs.field(factory=dict, alias="made")
 
@@ -132,19 +143,21 @@ def prior_of(design: Design, k: int) -> tuple[np.ndarray, np.ndarray]:
 
 def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     """Precompute the multidimensional facts of ``design`` on ``bank`` (the pair has passed the gate)."""
-    from ..design.bank_fit import multidimensional_grid_points
+    from ..design.bank_fit import MAX_GRID_DIMENSIONS, multidimensional_grid_points
 
     params = multidimensional_parameters(bank)
     k = params.n_dimensions
     sc = design.scoring
-    p = multidimensional_grid_points(design, k)
+    gridless = k > MAX_GRID_DIMENSIONS
+    # no grid: an axis of no points makes every grid-sized array empty
+    p = 0 if gridless else multidimensional_grid_points(design, k)
     axis = np.round(np.linspace(sc.grid_min, sc.grid_max, p), 12)
     mesh = np.meshgrid(*([axis] * k), indexing="ij")
     points = np.stack([m.reshape(-1) for m in mesh], axis=1)  # (G, K)
     logistic = bool(np.all(params.n_categories == 2) and np.all(params.c == 0))
     # (n, C, G), the layout the posterior update reads; log_table is its (n, G, C) view
     by_category = np.empty((bank.n_items, params.max_categories, points.shape[0]))
-    for start in range(0, bank.n_items, 500):
+    for start in range(0, bank.n_items if p else 0, 500):
         stop = min(start + 500, bank.n_items)
         chunk = params.take(np.arange(start, stop))
         if not (logistic and _logistic_log_table(chunk, points, by_category[start:stop])):
@@ -153,8 +166,11 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     mean, cov = prior_of(design, k)
     precision = inverse(cov)
     log_prior = -0.5 * quadratic_form(points - mean, precision)
-    prior_weights = np.exp(log_prior - np.max(log_prior))
-    prior_weights = prior_weights / np.sum(prior_weights)
+    if gridless:
+        prior_weights = np.empty(0)
+    else:
+        prior_weights = np.exp(log_prior - np.max(log_prior))
+        prior_weights = prior_weights / np.sum(prior_weights)
     weights = design.reporting.composite_weights
     st = design.stopping
     if st.se_per_dimension is not None:
@@ -178,6 +194,7 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
         screening=SinglePrecisionItems.of(params, products) if (
             design.selection.criterion is SelectionCriterion.D_OPTIMALITY and logistic) else None,
         prior_weights=prior_weights,
+        gridless=gridless,
     )
 
 
@@ -242,7 +259,9 @@ class SinglePrecisionItems:
 
 
 def determinant(m: np.ndarray) -> np.ndarray:
-    """Determinants of matrices (..., K, K) for K <= 3 by cofactors (numpy beyond)."""
+    """Determinants of matrices (..., K, K): for K <= 3 by cofactors, beyond of symmetric
+    positive definite matrices by :func:`cholesky_factor` (the square of the product of its
+    diagonal; NaN where the matrix is not positive definite)."""
     k = m.shape[-1]
     if k == 1:
         return m[..., 0, 0].copy()
@@ -252,11 +271,17 @@ def determinant(m: np.ndarray) -> np.ndarray:
         return (m[..., 0, 0] * (m[..., 1, 1] * m[..., 2, 2] - m[..., 1, 2] * m[..., 2, 1])
                 - m[..., 0, 1] * (m[..., 1, 0] * m[..., 2, 2] - m[..., 1, 2] * m[..., 2, 0])
                 + m[..., 0, 2] * (m[..., 1, 0] * m[..., 2, 1] - m[..., 1, 1] * m[..., 2, 0]))
-    return np.linalg.det(m)
+    factor = cholesky_factor(m)
+    out = factor[..., 0, 0] * factor[..., 0, 0]
+    for i in range(1, k):
+        out = out * (factor[..., i, i] * factor[..., i, i])
+    return out
 
 
 def inverse(m: np.ndarray) -> np.ndarray:
-    """Inverses of matrices (..., K, K) for K <= 3 by the adjugate (numpy beyond)."""
+    """Inverses of matrices (..., K, K): for K <= 3 by the adjugate, beyond of symmetric
+    positive definite matrices by :func:`cholesky_inverse` (every matrix the kernel inverts
+    for K > 3 is one: a prior covariance or precision, a posterior information)."""
     k = m.shape[-1]
     if k == 1:
         return 1.0 / m
@@ -278,7 +303,58 @@ def inverse(m: np.ndarray) -> np.ndarray:
                 minor = m[..., r[0], c[0]] * m[..., r[1], c[1]] - m[..., r[0], c[1]] * m[..., r[1], c[0]]
                 out[..., i, j] = (-1) ** (i + j) * minor / det
         return out
-    return np.linalg.inv(m)
+    return cholesky_inverse(m)
+
+
+def cholesky_factor(m: np.ndarray) -> np.ndarray:
+    """The lower Cholesky factor ``L`` (``m = L L'``) of symmetric positive definite matrices
+    (..., K, K), elementwise: each entry by the Cholesky-Banachiewicz recurrence with its
+    sums in a fixed order, so every matrix's factor is its own whatever the batch (LAPACK's
+    blocked routines promise no such thing).  Only the lower triangle of ``m`` is read; NaN
+    where a matrix is not positive definite.
+    """
+    k = m.shape[-1]
+    out = np.zeros(m.shape)
+    with np.errstate(invalid="ignore"):
+        for j in range(k):
+            acc = m[..., j, j]
+            for p in range(j):
+                acc = acc - out[..., j, p] * out[..., j, p]
+            out[..., j, j] = np.sqrt(np.where(acc > 0, acc, np.nan))
+            for i in range(j + 1, k):
+                acc = m[..., i, j]
+                for p in range(j):
+                    acc = acc - out[..., i, p] * out[..., j, p]
+                out[..., i, j] = acc / out[..., j, j]
+    return out
+
+
+def cholesky_inverse(m: np.ndarray) -> np.ndarray:
+    """Inverses of symmetric positive definite matrices (..., K, K), elementwise:
+    ``m^-1 = L^-T L^-1`` from :func:`cholesky_factor`, ``L^-1`` by forward substitution,
+    every sum in a fixed order; the result is exactly symmetric (the lower triangle is
+    computed, the upper copied).  NaN where a matrix is not positive definite.
+    """
+    k = m.shape[-1]
+    factor = cholesky_factor(m)
+    low = np.zeros(m.shape)  # L^-1, lower triangular
+    for i in range(k):
+        low[..., i, i] = 1.0 / factor[..., i, i]
+        for j in range(i):
+            acc = factor[..., i, j] * low[..., j, j]
+            for p in range(j + 1, i):
+                acc = acc + factor[..., i, p] * low[..., p, j]
+            low[..., i, j] = -acc / factor[..., i, i]
+    out = np.empty(m.shape)
+    for i in range(k):
+        for j in range(i + 1):
+            # (L^-T L^-1)_ij = sum_{p >= i} low_pi low_pj
+            acc = low[..., i, i] * low[..., i, j]
+            for p in range(i + 1, k):
+                acc = acc + low[..., p, i] * low[..., p, j]
+            out[..., i, j] = acc
+            out[..., j, i] = acc
+    return out
 
 
 def quadratic_form(x: np.ndarray, m: np.ndarray) -> np.ndarray:
@@ -419,15 +495,18 @@ def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *,
     prob = expit(scaling * (eta + given.intercepts))
     j = np.where(given.given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
     info = np.array(precision, dtype=float, copy=True)
+    # without a grid (K > 3) the sums run in order for a batch of one row too, under every
+    # version of the rules (such banks are run from version 3 on)
+    in_order = one_row_in_order or tab.gridless
     for p in range(k):
         for q in range(p, k):
-            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q], one_row_in_order)
+            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q], in_order)
             if q != p:
                 info[:, q, p] = info[:, p, q]
     if not score:
         return info, None
     r = np.where(given.given, scaling * (given.responses - prob), 0.0)
-    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d], one_row_in_order) for d in range(k)], axis=1)
+    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d], in_order) for d in range(k)], axis=1)
     return info, grad
 
 

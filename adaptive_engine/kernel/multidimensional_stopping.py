@@ -13,7 +13,8 @@ ability vector each rule holds on every dimension:
     the prior precision plus the test information of the scored items.  For each
     dimension k its predicted posterior SD after that item is Choi, Grady & Dodd's
     ``sum_c m_c SD_k(posterior x P_c) / sum_c m_c`` over the item's categories c, with
-    ``m_c`` the posterior predictive probability of c, on the product grid; the predicted
+    ``m_c`` the posterior predictive probability of c, on the product grid (K <= 3; the
+    gate refuses the rule where the kernel keeps no grid, K > 3); the predicted
     reduction is the present posterior SD of dimension k minus it.  The rule fires once
     the reduction is below ``se_reduction`` on every dimension (the statistic handed to
     :func:`adaptive_engine.kernel.stopping.stop_reasons` is the largest reduction over the
