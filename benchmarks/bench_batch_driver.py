@@ -21,7 +21,9 @@ under 1 s.
 The design draws nothing at random, so ``simulate`` computes the early steps once per
 history of answers rather than once per examinee (examinees who answered alike share a
 kernel row); a design with exposure control or an opening draw runs a row per examinee.
-The two runs' difference is noisy on a shared machine: rerun and compare several.
+The two runs' difference is noisy on a shared machine: besides the best of the repeats the
+script prints the median of each repeat's own difference and ratio (the runs of one repeat
+side by side), which one disturbed run moves less; rerun and compare several.
 
 Run: ``python3 benchmarks/bench_batch_driver.py [--repeats 5] [--loop-examinees 300] [--profile]``.
 """
@@ -141,9 +143,10 @@ def main():
             loop.append(((time.perf_counter() - t) / steps, (time.process_time() - c) / steps))
     # the best of the repeats (what other processes on a shared machine disturbed least), in
     # CPU time (user + system) and in wall time
+    steps = (args.large - args.small) * LENGTH
     for k, clock in ((1, "CPU time"), (0, "wall time")):
         t_small, t_large, t_loop = (float(np.min([x[k] for x in runs])) for runs in (small, large, loop))
-        marginal = (t_large - t_small) / ((args.large - args.small) * LENGTH)
+        marginal = (t_large - t_small) / steps
         fixed = t_small - args.small * LENGTH * marginal
         print(f"-- {clock}, best of {args.repeats}")
         print(f"simulate, {args.small:>6} examinees (whole process)   {t_small:8.3f} s")
@@ -152,6 +155,15 @@ def main():
         print(f"plain numpy loop, per examinee-step         {t_loop * 1e6:8.3f} us")
         print(f"loop / simulate (target >= 40)              {t_loop / marginal:8.1f} x")
         print(f"fixed cost of a {args.small}-examinee run (target < 1) {fixed:8.3f} s")
+        # the difference of two minima is thrown about by one lucky or unlucky run of
+        # either size; the median of each repeat's own difference (its two runs side by
+        # side) and of each repeat's ratio to its own loop timing is steadier
+        pairs = [(lg[k] - sm[k]) / steps for sm, lg in zip(small, large)]
+        ratios = [lp[k] / d if d > 0 else float("inf") for lp, d in zip(loop, pairs)]
+        print(f"median of the {args.repeats} repeats' own differences    {float(np.median(pairs)) * 1e6:8.3f} us "
+              f"(from {min(pairs) * 1e6:.3f} to {max(pairs) * 1e6:.3f})")
+        print(f"median of the repeats' loop / simulate      {float(np.median(ratios)):8.1f} x "
+              f"(from {min(ratios):.1f} to {max(ratios):.1f})")
     if args.profile:
         from adaptive_engine.simulation.engine import simulate
 
