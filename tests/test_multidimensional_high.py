@@ -29,6 +29,7 @@ from adaptive_engine.kernel import random_streams as randomness
 from adaptive_engine.kernel.multidimensional_state import determinant, inverse
 from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation.multidimensional_engine import run_chunk, simulate_multidimensional
+from live_replay import replay_through_sessions
 
 RHO = 0.4
 
@@ -222,9 +223,6 @@ def test_batch_equals_one_at_a_time(exposure):
 
 
 def test_simulated_examinee_replays_as_a_live_session():
-    from adaptive_engine.live.session import ProcessCache, session_result, start_session, submit_answer
-    from adaptive_engine.live.store import open_store
-
     bank = bank_of(4)
     design = parse_design(design_text(4, extra="[exposure]\nmethod = \"randomesque\"\ncandidates = 3\n"
                                                "[reporting]\ncomposite_weights = [0.25, 0.25, 0.25, 0.25]\n"
@@ -232,26 +230,16 @@ def test_simulated_examinee_replays_as_a_live_session():
                                       max_items=20))
     ctx = build_context(design, bank)
     chunk = run_chunk(ctx, seed=21, start=5, true_theta=np.random.default_rng(4).normal(0, 1, (3, 4)))
-    with open_store(":memory:") as store:
-        cache = ProcessCache()
-        for i in range(3):
-            n = int((chunk["items"][i] >= 0).sum())
-            reply = start_session(store, design, bank, seed=int(chunk["seeds"][i]), cache=cache)
-            assert len(reply["theta"]) == 4
-            for pos in range(n):
-                expected = bank.item_ids[chunk["items"][i, pos]]
-                assert reply["item_id"] == expected, f"examinee {i} diverged at item {pos + 1}"
-                reply = submit_answer(store, reply["session_id"], expected, int(chunk["responses"][i, pos]),
-                                      cache=cache)
-            assert reply["done"]
-            result = session_result(store, reply["session_id"])
-            assert result["theta"] == [float(x) for x in chunk["theta"][i]]
-            assert result["se"] == [float(x) for x in chunk["se"][i]]
-            assert result["stop_reason"] == chunk["stop_reason"][i]
-            assert result["method"] == "map" and len(result["dimensions"]) == 4
-            assert result["composite"]["se"] == pytest.approx(
-                0.25 * np.sqrt(np.sum(np.asarray(result["covariance"]))), rel=1e-12)  # sqrt(w' S w)
-            assert len(result["classifications"]) == 1
+    for i, (first, result) in enumerate(replay_through_sessions(design, bank, chunk, 3)):
+        assert len(first["theta"]) == 4
+        assert result["theta"] == [float(x) for x in chunk["theta"][i]]
+        assert result["se"] == [float(x) for x in chunk["se"][i]]
+        assert result["stop_reason"] == chunk["stop_reason"][i]
+        assert result["method"] == "map" and len(result["dimensions"]) == 4
+        assert result["composite"]["se"] == pytest.approx(
+            0.25 * np.sqrt(np.sum(np.asarray(result["covariance"]))), rel=1e-12)  # sqrt(w' S w)
+        assert len(result["classifications"]) == 1
+
 
 
 def test_simulate_cli_writes_a_four_dimensional_study_and_session_cli_runs_it(tmp_path):

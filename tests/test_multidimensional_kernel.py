@@ -34,6 +34,7 @@ from adaptive_engine.kernel.prepared import build_context, with_log_posterior
 from adaptive_engine.kernel.selection import criterion_values
 from adaptive_engine.simulation.engine import simulate
 from adaptive_engine.simulation.multidimensional_engine import run_chunk, simulate_multidimensional
+from live_replay import replay_through_sessions
 
 
 def m2pl_bank(slopes, intercepts, names=None) -> ItemBank:
@@ -347,31 +348,18 @@ def test_correlated_dimensions_need_fewer_items_than_two_separate_tests(capsys):
 
 
 def test_simulated_examinee_replays_as_a_live_session():
-    from adaptive_engine.live.session import ProcessCache, session_result, start_session, submit_answer
-    from adaptive_engine.live.store import open_store
-
     bank = random_bank()
     design = parse_design(design_text(extra="") + "[exposure]\nmethod = \"randomesque\"\ncandidates = 3\n"
                           "[reporting]\ncomposite_weights = [0.5, 0.5]\n")
     ctx = build_context(design, bank)
     chunk = run_chunk(ctx, seed=21, start=5, true_theta=np.random.default_rng(4).normal(0, 1, (4, 2)))
-    with open_store(":memory:") as store:
-        cache = ProcessCache()
-        for i in range(4):
-            n = int((chunk["items"][i] >= 0).sum())
-            reply = start_session(store, design, bank, seed=int(chunk["seeds"][i]), cache=cache)
-            assert isinstance(reply["theta"], list) and len(reply["theta"]) == 2
-            for pos in range(n):
-                expected = bank.item_ids[chunk["items"][i, pos]]
-                assert reply["item_id"] == expected, f"examinee {i} diverged at item {pos + 1}"
-                reply = submit_answer(store, reply["session_id"], expected, int(chunk["responses"][i, pos]),
-                                      cache=cache)
-            assert reply["done"]
-            result = session_result(store, reply["session_id"])
-            assert result["theta"] == [float(x) for x in chunk["theta"][i]]
-            assert result["stop_reason"] == chunk["stop_reason"][i]
-            assert result["composite"]["se"] == pytest.approx(
-                0.5 * np.sqrt(np.sum(np.asarray(result["covariance"]))), rel=1e-12)  # sqrt(w' S w)
+    for i, (first, result) in enumerate(replay_through_sessions(design, bank, chunk, 4)):
+        assert isinstance(first["theta"], list) and len(first["theta"]) == 2
+        assert result["theta"] == [float(x) for x in chunk["theta"][i]]
+        assert result["stop_reason"] == chunk["stop_reason"][i]
+        assert result["composite"]["se"] == pytest.approx(
+            0.5 * np.sqrt(np.sum(np.asarray(result["covariance"]))), rel=1e-12)  # sqrt(w' S w)
+
 
 
 def test_vector_keys_round_trip_and_are_checked():

@@ -35,6 +35,7 @@ from adaptive_engine.kernel import random_streams as randomness
 from adaptive_engine.kernel import shadow
 from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation.multidimensional_engine import run_chunk
+from live_replay import replay_through_sessions
 
 AREAS = ("east", "west", "north")
 
@@ -325,27 +326,14 @@ def test_sympson_hetter_withheld_items_stay_out_of_the_shadow_test():
 
 
 def test_simulated_examinee_replays_as_a_live_session():
-    from adaptive_engine.live.session import ProcessCache, session_result, start_session, submit_answer
-    from adaptive_engine.live.store import open_store
-
     bank = _simulation_bank()
     d = design("a_optimality", length=9, blueprint=SIMULATION_BLUEPRINT)
     ctx = build_context(d, bank)
     chunk = run_chunk(ctx, seed=21, start=5, true_theta=np.random.default_rng(4).normal(0, 1, (3, 2)))
-    with open_store(":memory:") as store:
-        cache = ProcessCache()
-        for i in range(3):
-            n = int((chunk["items"][i] >= 0).sum())
-            reply = start_session(store, d, bank, seed=int(chunk["seeds"][i]), cache=cache)
-            for pos in range(n):
-                expected = bank.item_ids[chunk["items"][i, pos]]
-                assert reply["item_id"] == expected, f"examinee {i} diverged at item {pos + 1}"
-                reply = submit_answer(store, reply["session_id"], expected, int(chunk["responses"][i, pos]),
-                                      cache=cache)
-            assert reply["done"]
-            result = session_result(store, reply["session_id"])
-            assert result["theta"] == [float(x) for x in chunk["theta"][i]]
-            assert result["stop_reason"] == chunk["stop_reason"][i]
+    for i, (_, result) in enumerate(replay_through_sessions(d, bank, chunk, 3)):
+        assert result["theta"] == [float(x) for x in chunk["theta"][i]]
+        assert result["stop_reason"] == chunk["stop_reason"][i]
+
 
 
 def test_the_gate_admits_shadow_tests_for_vectors_and_refuses_a_random_criterion():
