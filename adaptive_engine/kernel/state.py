@@ -27,8 +27,9 @@ class KernelState:
     prior_mean, prior_sd : float (B,)
     log_post : float (B, G)
         Posterior of theta on the context's grid (scored answers only), in the context's
-        ``posterior_form``: the density scaled to sum 1 (``"scaled"``) or the log density
-        (``"log"``, decision rules versions 1 and 2).
+        ``posterior_form``: the density times a factor that keeps the row's sum between
+        2^-100 and 1 (``"scaled"``) or the log density (``"log"``, decision rules versions 1
+        and 2).
     items, responses : int (B, L)
         Every item given, in order, and its answer; -1 padding (L = scored + pretest slots).
     scored : bool (B, L)
