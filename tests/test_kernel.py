@@ -304,6 +304,12 @@ def test_small_batches_draw_the_same_uniforms_as_large_ones():
         at_five = randomness.uniforms(keys, 5, purpose)
         pairs = np.concatenate([randomness.uniforms(keys[i : i + 2], 5, purpose) for i in range(0, 300, 2)])
         assert np.array_equal(at_five, pairs)
+        # an array of one position repeated (a simulated round, mixed once) and per item
+        assert np.array_equal(randomness.uniforms(keys, np.full(300, 5), purpose), at_five)
+        items = np.arange(600).reshape(300, 2)
+        assert np.array_equal(randomness.uniforms(keys, np.full(300, 5), purpose, items),
+                              np.concatenate([randomness.uniforms(keys[i : i + 1], 5 + 0 * positions[i : i + 1],
+                                                                  purpose, items[i : i + 1]) for i in range(300)]))
     # SplitMix64's finaliser from state 0 gives 0xE220A8397B1DCDAF, the first output of
     # Vigna's reference splitmix64.c seeded with 0 (value from memory)
     assert int(randomness.mix(np.uint64(0))) == 0xE220A8397B1DCDAF
