@@ -304,6 +304,12 @@ def test_small_batches_draw_the_same_uniforms_as_large_ones():
         at_five = randomness.uniforms(keys, 5, purpose)
         pairs = np.concatenate([randomness.uniforms(keys[i : i + 2], 5, purpose) for i in range(0, 300, 2)])
         assert np.array_equal(at_five, pairs)
+        # an array of one position repeated (a simulated round, mixed once) and per item
+        assert np.array_equal(randomness.uniforms(keys, np.full(300, 5), purpose), at_five)
+        items = np.arange(600).reshape(300, 2)
+        assert np.array_equal(randomness.uniforms(keys, np.full(300, 5), purpose, items),
+                              np.concatenate([randomness.uniforms(keys[i : i + 1], 5 + 0 * positions[i : i + 1],
+                                                                  purpose, items[i : i + 1]) for i in range(300)]))
     # SplitMix64's finaliser from state 0 gives 0xE220A8397B1DCDAF, the first output of
     # Vigna's reference splitmix64.c seeded with 0 (value from memory)
     assert int(randomness.mix(np.uint64(0))) == 0xE220A8397B1DCDAF
@@ -472,7 +478,7 @@ def test_first_eligible_columns_by_bits_match_a_plain_scan():
     # _first_eligible reads the first True columns off each row's bits in large batches;
     # checked against a plain per-row scan (np.flatnonzero), for widths up to 64
     rng = np.random.default_rng(21)
-    for width in (1, 7, 32, 64):
+    for width in (1, 7, 31, 32, 33, 64):  # words of 32 bits up to 32 columns, of 64 beyond
         for share in (0.05, 0.5, 0.95):
             ok = rng.random((selection.BIT_SCAN_ROWS + 37, width)) < share
             for n_first in (1, 8, 24):
@@ -523,6 +529,16 @@ def test_information_from_precomputed_columns_has_the_same_bits():
     got = models.dichotomous_information_columns(theta, *(np.take(c, idx) for c in cols))
     assert np.array_equal(got, want)
     assert np.array_equal(selection._exact_information(bank, idx, theta[:, 0]), want)
+    # a bank without upper asymptotes below 1 (2PL and 3PL items: the shorter arithmetic),
+    # thetas far out too (where exp is clipped)
+    no_upper = bank_from_records([dict(item_id=f"t{i:03d}", model=("2PL", "3PL")[i % 2], a=float(1.0 + 0.02 * i),
+                                       b=float(np.sin(i)), c=0.0 if i % 2 == 0 else 0.2, area="one")
+                                  for i in range(40)], name="no upper asymptote")
+    theta = np.concatenate([theta, [[900.0], [-900.0], [0.0]]])
+    idx = np.random.default_rng(26).integers(0, no_upper.n_items, size=(theta.shape[0], 8))
+    want = models.information(no_upper.params.take(idx), theta)
+    assert np.array_equal(selection._exact_information(no_upper, idx, theta[:, 0]), want)
+    assert no_upper.cached(("no_upper_asymptote",), lambda: None) is True  # the shorter way was taken
 
 
 @pytest.mark.parametrize("blueprint", [True, False])

@@ -64,9 +64,12 @@ def test_the_scaled_form_follows_the_log_form_through_whole_tests(design_file):
             assert np.allclose(got, want, rtol=0, atol=AGREE)
             worst = max(worst, float(np.max(np.abs(got - want))))
     assert np.array_equal(s_state.items, l_state.items) and np.array_equal(s_state.stop_reason, l_state.stop_reason)
-    # the scaled rows are the log rows' normalised exponentials
+    # the scaled rows are the log rows' exponentials times a factor: their sums lie between
+    # RESCALE_TOTAL and 1, and normalised they are the log rows' normalised exponentials
     w = np.exp(l_state.log_post - l_state.log_post.max(axis=1, keepdims=True))
-    assert np.allclose(s_state.log_post, w / w.sum(axis=1, keepdims=True), rtol=1e-10, atol=1e-300)
+    totals = s_state.log_post.sum(axis=1, keepdims=True)
+    assert np.all((totals >= posterior.RESCALE_TOTAL) & (totals <= 1.0 + 1e-12))
+    assert np.allclose(s_state.log_post / totals, w / w.sum(axis=1, keepdims=True), rtol=1e-10, atol=1e-300)
     s_final = cycle.final_estimates(scaled, s_state, np.arange(n), scores_only=True)
     l_final = cycle.final_estimates(log, l_state, np.arange(n), scores_only=True)
     assert np.allclose(s_final.theta, l_final.theta, rtol=0, atol=AGREE)
@@ -100,13 +103,16 @@ def test_a_row_whose_total_underflows_is_rescued_to_the_log_forms_answer(monkeyp
     mean, sd = posterior.multiply_and_summarize(got, np.arange(2), table, log_table, items, answers, grid)
     assert abs(want_mean[0] - (-2.0)) < 0.1  # where the posterior went
     assert np.allclose(mean, want_mean, rtol=0, atol=AGREE) and np.allclose(sd, want_sd, rtol=0, atol=AGREE)
-    # the same row (summing to 1), apart from the last digits of weights below 1e-15 (the
-    # scaled prior is subnormal, or 0, where it is more than about 708 below its peak in log
-    # density; the log form's posterior is below 1e-17 there)
+    # the same row (the rescued one summing to 1), apart from the last digits of weights
+    # below 1e-15 (the scaled prior is subnormal, or 0, where it is more than about 708
+    # below its peak in log density; the log form's posterior is below 1e-17 there); the
+    # ordinary row is the product, its sum the answer's predictive probability
     want = posterior.scaled_density(log_row)
-    assert np.allclose(got, want, rtol=1e-9, atol=1e-15)
+    assert np.allclose(got[0], want[0], rtol=1e-9, atol=1e-15)
     assert (scaled[0] == 0).any() and np.all(want[0, scaled[0] == 0] < 1e-17)
-    assert np.allclose(got.sum(axis=1), 1.0, rtol=0, atol=1e-14)
+    assert abs(got[0].sum() - 1.0) < 1e-14
+    assert np.array_equal(got[1], scaled[1] * table[0, 1])
+    assert np.allclose(got[1] / got[1].sum(), want[1], rtol=1e-9, atol=1e-300)
     # the rescue is what makes it right: without it the row is 0 / 0
     monkeypatch.setattr(posterior, "RESCUE_TOTAL", 0.0)
     lost = scaled.copy()
@@ -134,6 +140,37 @@ def test_a_rescued_row_is_the_same_alone_and_in_a_batch(monkeypatch):
         assert mean[0] == b_mean[r] and sd[0] == b_sd[r] and np.array_equal(alone[0], batch[r])
 
 
+def test_a_row_whose_sum_falls_below_the_bound_is_rescaled_by_a_power_of_two(monkeypatch):
+    # Answers of probability about 1e-16 at every grid point: after two of them a row's sum
+    # is about 1e-32, below RESCALE_TOTAL (2^-100, about 8e-31).  The row is then the
+    # product times a power of two (exactly: only exponents move), its sum in [1/2, 1), and
+    # its moments those of the product; alone and in a batch alike.
+    grid = np.round(np.linspace(-6.0, 6.0, 241), 10)
+    table = (1e-16 * (1.0 + 0.5 * np.sin(grid)))[None, None, :] * np.ones((1, 2, 1))
+    log_table = np.log(table)
+    means = np.array([0.0, 1.5, -2.0, 0.5, -0.5])
+    start = posterior.scaled_density(posterior.normal_log_prior(grid, means, np.full(means.size, 0.9)))
+    items = np.zeros(means.size, dtype=np.int64)
+    answers = np.array([1, 0, 1, 1, 0])
+    got = start.copy()
+    posterior.multiply_and_summarize(got, np.arange(means.size), table, log_table, items, answers, grid)
+    assert np.array_equal(got, start * table[0, 0])  # a sum of about 1e-16: kept as it is
+    product = got * table[0, 0]
+    monkeypatch.setattr(posterior, "BLOCK_VALUES", 2 * grid.size)
+    mean, sd = posterior.multiply_and_summarize(got, np.arange(means.size), table, log_table, items, answers, grid)
+    factor = got[:, :1] / product[:, :1]
+    assert np.all(np.frexp(factor)[0] == 0.5) and np.all(factor > 2.0**99)  # powers of two
+    assert np.array_equal(got, product * factor)
+    assert np.all((got.sum(axis=1) >= 0.5) & (got.sum(axis=1) < 1.0))
+    m_ref, s_ref = posterior.posterior_mean_sd(product, grid, "scaled")
+    assert np.allclose(mean, m_ref, rtol=0, atol=1e-14) and np.allclose(sd, s_ref, rtol=0, atol=1e-14)
+    for r in range(means.size):
+        alone = start[r : r + 1] * table[0, 0]
+        one_mean, one_sd = posterior.multiply_and_summarize(alone, np.arange(1), table, log_table, items[r : r + 1],
+                                                            answers[r : r + 1], grid)
+        assert one_mean[0] == mean[r] and one_sd[0] == sd[r] and np.array_equal(alone[0], got[r])
+
+
 def test_multiplying_in_blocks_equals_the_whole_batch_and_skips_unscored_answers(monkeypatch):
     # scattered and consecutive rows, pretest answers (-1: nothing multiplied), blocks of 4
     from kernel_support import structured_bank
@@ -157,10 +194,11 @@ def test_multiplying_in_blocks_equals_the_whole_batch_and_skips_unscored_answers
         mean, sd = posterior.multiply_and_summarize(got, r, table, log_table, items, cats, grid)
         monkeypatch.undo()
         assert np.array_equal(got, whole) and np.array_equal(mean, m_whole) and np.array_equal(sd, s_whole)
-        # the rows answered hold the normalised products, the others are untouched
+        # the rows answered hold the products (the rows of pretest answers as they were),
+        # the others are untouched
         product = start[r].copy()
         product[sel] *= table[items[sel], cats[sel]]
-        assert np.allclose(got[r], product / product.sum(axis=1, keepdims=True), rtol=1e-14, atol=0)
+        assert np.array_equal(got[r], product)
         untouched = np.setdiff1d(np.arange(50), r)
         assert np.array_equal(got[untouched], start[untouched])
         m_ref, s_ref = posterior.posterior_mean_sd(product, grid, "scaled")

@@ -604,14 +604,22 @@ def test_numbers_in_the_study_tables_are_written_as_their_rounded_repr():
     # examinees.csv writes many numbers by "%.6f" without trailing zeros: the same text as
     # repr(round(x, 6)) (Python's correctly rounded rounding), checked value by value, also
     # on exact ties of the binary value (k / 128), tiny values and negative zero
-    from adaptive_engine.simulation.study import _nums
+    # -- and so does the table of bytes examinees.csv is joined from (digits by integer
+    # arithmetic), also at the halves of the last place (k / 2e6) and around 1e-4 and 1e9
+    from adaptive_engine.simulation.study import _int_matrix, _joined_rows, _number_matrix, _nums
 
     rng = np.random.default_rng(41)
     values = np.concatenate([rng.normal(size=2000) * 3, rng.normal(size=500) * 1e-3, rng.uniform(-1e9, 1e9, 300),
-                             np.arange(-300, 300) / 128, [0.0, -0.0, 1e-4, -5e-7, 9.99999e-5, np.nan, np.inf, 3e15]])
+                             np.arange(-300, 300) / 128, np.arange(-300, 300) / 2e6 + 0.25,
+                             [0.0, -0.0, 1e-4, -1e-4, -5e-7, 9.99999e-5, np.nan, np.inf, -np.inf, 3e15, 1e9,
+                              999999999.9999996, 123456.0000005]])
     for digits in (0, 2, 6):
         want = ["" if not np.isfinite(x) else repr(round(x, digits)) for x in values.tolist()]
         assert _nums(values, digits) == want
+        assert _joined_rows([_number_matrix(values, digits)]).split("\n")[:-1] == want
+    ints = np.concatenate([np.arange(-20, 1000), [2**63 - 1, 0, 10**18, 10**18 - 1]]).astype(np.int64)
+    for column in (ints, ints[ints >= 0]):
+        assert _joined_rows([_int_matrix(column)]).split("\n")[:-1] == [str(v) for v in column.tolist()]
 
 
 def test_the_examinees_table_is_what_the_csv_module_writes():

@@ -504,7 +504,42 @@ def dichotomous_information_columns(theta, b, slope, c, d, one_minus_c, one_minu
     num = slope_gap * s
     num *= t
     num *= num
+    return _information_ratio(num, p0)
+
+
+def _information_ratio(num, p0) -> np.ndarray:
+    """``num / p0`` where ``p0 > 1e-300``, else 0 (``num`` may be overwritten)."""
+    if p0.size and p0.min() > 1e-300:  # every denominator safe (NaN fails the test): a plain division
+        return np.divide(num, p0, out=num)
     return np.divide(num, p0, out=np.zeros_like(num), where=p0 > 1e-300)
+
+
+def dichotomous_information_no_upper(theta, b, slope, c, one_minus_c, slope_gap) -> np.ndarray:
+    """:func:`dichotomous_information_columns` of items whose upper asymptote d is 1 (1PL-3PL).
+
+    The same operations with ``d = 1``, less the two that change nothing then: ``d s`` is
+    ``s`` and ``(1 - d) s`` is 0, which added to ``(1 - c) t`` (a number >= 0, or NaN
+    where ``s`` and ``t`` are) leaves it as it is.  So each value has the same bits, from
+    two columns fewer to gather and two fewer passes.  The columns are overwritten.
+    """
+    theta = np.asarray(theta, dtype=float)
+    z = theta - b
+    z *= slope
+    np.maximum(z, -700.0, out=z)
+    np.minimum(z, 700.0, out=z)
+    np.negative(z, out=z)
+    e = np.exp(z, out=z)
+    s = e + 1.0
+    np.reciprocal(s, out=s)
+    t = np.multiply(e, s, out=e)
+    p1 = np.multiply(c, t, out=c)
+    p1 += s  # d s with d = 1
+    p0 = np.multiply(one_minus_c, t, out=one_minus_c)  # + (1 - d) s = + 0
+    p0 *= p1
+    num = np.multiply(slope_gap, s, out=slope_gap)
+    num *= t
+    num *= num
+    return _information_ratio(num, p0)
 
 
 def expected_score(params: ItemParameters, theta) -> np.ndarray:

@@ -7,12 +7,13 @@ forms (the context's ``posterior_form``, set by the decision rules version):
   probability of the observed response (a row of the bank's cached (n_items, C, G) table),
   and the moments weigh the grid with ``exp(row - max)`` (:func:`add_and_summarize`).
   Decision rules versions 1 and 2.
-* ``"scaled"``: the posterior density divided by its sum over the grid (each row sums to
-  1).  An answer multiplies the row by the response's probability row (``exp`` of the same
-  table), the moments are read off the product, and the product is divided by its sum
-  (:func:`multiply_and_summarize`): no ``exp`` and no maximum per answer.  A row whose sum
-  falls below :data:`RESCUE_TOTAL` is redone from its logarithm, so it never underflows to
-  zeros.  Version 3 on.
+* ``"scaled"``: the posterior density times a positive factor, the row's sum kept between
+  :data:`RESCALE_TOTAL` and 1 (a new row sums to 1).  An answer multiplies the row by the
+  response's probability row (``exp`` of the same table), and the moments are read off the
+  product with its sum (:func:`multiply_and_summarize`): no ``exp``, no maximum and no
+  division of the row per answer; a row whose sum falls below :data:`RESCALE_TOTAL` is
+  multiplied by a power of two.  A row whose sum falls below :data:`RESCUE_TOTAL` is redone
+  from its logarithm, so it never underflows to zeros.  Version 3 on.
 
 EAP and its posterior SD are read off the grid; MLE, MAP and WLE are refined from it by
 Newton steps in :mod:`adaptive_engine.irt.estimation`.
@@ -64,7 +65,7 @@ def posterior_weights(posterior, form: str = "log") -> np.ndarray:
     """Normalised posterior weights on the grid, shape like ``posterior`` (.., G).
 
     ``posterior`` holds rows in ``form``, ``"log"`` (log density) or ``"scaled"`` (density
-    scaled to sum 1: divided by its sum once more, which undoes the rounding of the sum).
+    times a positive factor: divided by its sum).
     """
     w = _relative_density(posterior) if _form(form) == "log" else np.asarray(posterior, dtype=float)
     return w / w.sum(axis=-1, keepdims=True)
@@ -114,7 +115,7 @@ def posterior_mean_sd(log_post, grid, form: str = "log") -> tuple[np.ndarray, np
     ----------
     log_post : array, shape (..., G)
         The posterior in ``form``: ``"log"``, a log density; ``"scaled"``, a density
-        (scaled to sum 1, or any positive multiple: the moments divide by the row's sum).
+        times any positive factor (the moments divide by the row's sum).
     grid : array, shape (G,)
 
     Notes
@@ -195,25 +196,37 @@ def add_and_summarize(log_post, rows, table, items, categories, grid) -> tuple[n
 
 
 #: A scaled row whose sum after an answer is below this (or not finite) is redone from its
-#: logarithm (:func:`multiply_and_summarize`).  A row sums to 1 before the answer, so its
-#: sum after it is the answer's predictive probability: below 1e-250 only for an answer
-#: the posterior all but rules out, long before the product underflows (1e-308) and
-#: takes the row's shape with it.
+#: logarithm (:func:`multiply_and_summarize`).  A row sums to at least :data:`RESCALE_TOTAL`
+#: (and at most 1) before the answer, so its sum after it falls below 1e-250 only for an
+#: answer the posterior all but rules out (a predictive probability below about 1e-220),
+#: long before the product underflows (1e-308) and takes the row's shape with it.
 RESCUE_TOTAL = 1e-250
+
+#: A scaled row whose sum after an answer is below this (2^-100, about 8e-31) is multiplied
+#: by the power of two that brings its sum into [1/2, 1) (exact: it only moves exponents).
+#: Rows are not divided by their sums after every answer: a division of every grid value
+#: costs as much as the product itself, and the moments divide by the sum anyway.  The
+#: bound keeps the values far above the range where doubles lose digits (below 2e-308).
+RESCALE_TOTAL = 2.0**-100
 
 
 def multiply_and_summarize(posterior, rows, probability_table, log_table, items, categories,
                            grid) -> tuple[np.ndarray, np.ndarray]:
     """Multiply answers' likelihoods into rows of a scaled batch posterior; their mean and SD.
 
-    The scaled form's :func:`add_and_summarize`.  For each k the row ``posterior[rows[k]]``
-    (summing to 1) is multiplied by ``probability_table[items[k], categories[k]]``
-    (nothing where ``items[k] < 0``); the product's sum ``total``, its mean and SD (sums of
-    the product against the grid and its squares, divided by ``total``, the SD floored as
-    in :func:`posterior_mean_sd`) are taken, and the product divided by ``total`` is stored
-    as the new row.  A row whose ``total`` is below :data:`RESCUE_TOTAL` or not finite is
-    redone on its own from its logarithm: ``x = log(row) + log_table[item, category]``,
-    weights ``exp(x - max(x))``, their moments, and the weights divided by their sum.
+    The scaled form's :func:`add_and_summarize`.  A scaled row is the posterior density on
+    the grid times a positive factor; its sum lies between :data:`RESCALE_TOTAL` and 1.
+    For each k the row ``posterior[rows[k]]`` is multiplied by
+    ``probability_table[items[k], categories[k]]`` (nothing where ``items[k] < 0``): the
+    sum ``total`` of the product is taken first, as the sum of the row's products with the
+    probability row (one ``einsum`` within the row), then the product is stored in place
+    and its mean and SD (sums of the product against the grid and its squares, divided by
+    ``total``, the SD floored as in :func:`posterior_mean_sd`) are read off it.  A row whose
+    ``total`` is below :data:`RESCALE_TOTAL` is multiplied by a power of two that brings
+    its sum into [1/2, 1).  A row whose ``total`` is below :data:`RESCUE_TOTAL` or not
+    finite is redone on its own from its logarithm: ``x = log(row) + log_table[item,
+    category]``, weights ``exp(x - max(x))``, their moments; the weights divided by their
+    sum are stored.
 
     Every sum is taken within one row, so a row's values do not depend on the batch it is
     in; the rows go through in blocks that fit in cache.
@@ -250,33 +263,40 @@ def multiply_and_summarize(posterior, rows, probability_table, log_table, items,
     by_answer = source.reshape(-1, source.shape[-1])  # (n C, G), a view
     for i in range(0, r_n, step):
         j = min(i + step, r_n)
-        # the rows before the answer stay as they are until the product is stored: a row to
-        # rescue is redone from them
+        # a view of consecutive rows (changed in place), else a copy written back at the end
         block = posterior[rows[i] : rows[i] + (j - i)] if consecutive else posterior[rows[i:j]]
         if every:
-            # a new array: the gather (one index into the table's rows of (item, category))
-            product = by_answer.take(items[i:j] * width + categories[i:j], axis=0)
-            if exponentiate:
-                np.exp(product, out=product)
-            product *= block
-        else:
-            product = block.copy()
-            sel = np.flatnonzero(items[i:j] >= 0)
-            factor = by_answer.take(items[i:j][sel] * width + categories[i:j][sel], axis=0)
+            # the gather (one index into the table's rows of (item, category)): a new array
+            factor = by_answer.take(items[i:j] * width + categories[i:j], axis=0)
             if exponentiate:
                 np.exp(factor, out=factor)
-            product[sel] *= factor
-        total = np.sum(product, axis=-1)
-        tiny = ~((total >= RESCUE_TOTAL) & (total < np.inf))  # NaN too
-        if tiny.any():
-            for k in np.flatnonzero(tiny):
-                product[k], total[k] = _rescued(block[k], log_table, items[i + k], categories[i + k])
-        mean[i:j], sd[i:j] = _weighted_moments(product, total, grid)
-        if consecutive:
-            np.divide(product, total[:, None], out=block)
         else:
-            np.divide(product, total[:, None], out=product)
-            posterior[rows[i:j]] = product
+            # an unscored answer multiplies by ones (exact: the row stays as it is)
+            factor = np.ones_like(block)
+            sel = np.flatnonzero(items[i:j] >= 0)
+            answered = by_answer.take(items[i:j][sel] * width + categories[i:j][sel], axis=0)
+            if exponentiate:
+                np.exp(answered, out=answered)
+            factor[sel] = answered
+        # the product's sum before the product itself, while the rows before the answer are
+        # still there: a row to rescue is redone from them
+        total = np.einsum("rg,rg->r", block, factor)
+        tiny = ~((total >= RESCUE_TOTAL) & (total < np.inf))  # NaN too
+        rescued = np.flatnonzero(tiny)
+        saved = [_rescued(block[k], log_table, items[i + k], categories[i + k]) for k in rescued]
+        np.multiply(block, factor, out=block)
+        for k, (weights, weights_total) in zip(rescued, saved):
+            block[k] = weights
+            total[k] = weights_total
+        mean[i:j], sd[i:j] = _weighted_moments(block, total, grid)
+        for k in rescued:
+            block[k] /= total[k]
+        low = np.flatnonzero(total < RESCALE_TOTAL)  # never a rescued row: its sum is at least 1
+        if low.size:
+            # 2^-e with total = f 2^e, 1/2 <= f < 1: the row's sum moves into [1/2, 1), exactly
+            block[low] *= np.ldexp(1.0, -np.frexp(total[low])[1])[:, None]
+        if not consecutive:
+            posterior[rows[i:j]] = block
     return mean, sd
 
 

@@ -28,12 +28,19 @@ Versions:
    now and then gives a test slightly less informative than the best one, and with it
    another item (one step in 9,000 on the demo bank, one examinee in 300).  Version 1 stays
    installed: its contexts send every shadow test to the general solver.
-3. The posterior on the grid is held as a density scaled to sum 1 instead of a log density
+3. The posterior on the grid is held as a density up to a factor instead of a log density
    (``TestContext.posterior_form`` ``"scaled"``; :mod:`adaptive_engine.irt.posterior`): an
    answer multiplies the row by the answer's probability row (``exp`` of the log table's
    row: a table kept for banks whose table is at most 64 MB, used by batches of more than
-   one row), the EAP and posterior SD are read off the product and the row is divided by
-   its sum; a row whose sum falls below 1e-250 is redone from its logarithm.  The EAP and
+   one row).  The product's sum is taken first, as the sum of the row's products with the
+   probability row (one ``einsum`` within the row); the product is stored in place as the
+   new row and the EAP and posterior SD are read off it, divided by that sum.  The row is
+   not divided by its sum: it starts summing to 1, and a row whose sum falls below 2^-100
+   is multiplied by the power of two that brings its sum into [1/2, 1) (exactly).  A row
+   whose sum falls below 1e-250 is redone from its logarithm (the weights ``exp(x -
+   max(x))`` give the moments, and are stored divided by their sum).  (Until this was
+   released the row was divided by its sum after every answer and the sum was ``np.sum``
+   of the product: the EAP and SD differ from those in the last bits only.)  The EAP and
    SD agree with version 2's to about 1e-12 (rounding in the last bits), so an item or stop
    changes only where two candidates or a stopping threshold are that close.  Versions 1
    and 2 stay installed with log-form contexts (:func:`.prepared.with_log_posterior`).

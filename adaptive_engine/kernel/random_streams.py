@@ -107,6 +107,8 @@ def uniforms(keys, position, purpose: int, item=None) -> np.ndarray:
         return np.array([(_mix_int(k ^ _mix_int((p * (1 << 20) + purpose) & _U64)) >> 11) * scale
                          for k, p in zip(keys.tolist(), pos.tolist())], dtype=np.float64)
     with np.errstate(over="ignore"):
+        if pos.shape == keys.shape and pos.ndim == 1 and pos.size > 1 and bool(np.all(pos == pos[0])):
+            pos = pos[:1]  # one position for every row (a simulated round): its mix once, broadcast
         z = mix(keys ^ mix(pos * np.uint64(1 << 20) + np.uint64(purpose)))
         if item is not None:
             z = mix(z[:, None] ^ mix(np.asarray(item).astype(np.uint64) + np.uint64(0x5851F42D4C957F2D)))

@@ -597,12 +597,18 @@ def _first_eligible(ok, n_first, *, beyond: bool = True) -> tuple[np.ndarray, np
         first = np.full((r_n, n_first), -1, dtype=np.int64)
         first[r_idx, rank[r_idx, c_idx] - 1] = c_idx
         return first, (ok & (rank > n_first)) if beyond else None
-    padded = np.zeros((r_n, 64), dtype=bool)
-    padded[:, :width] = ok
+    # a word of 32 bits per row when the columns fit (the ranked lists' 32), else of 64
+    size = 4 if width <= 32 else 8
+    word = np.dtype(f"<u{size}")
+    if width == 8 * size:
+        padded = ok
+    else:
+        padded = np.zeros((r_n, 8 * size), dtype=bool)
+        padded[:, :width] = ok
     # column j is bit j of the row's word (little-endian bit and byte order, whatever the host)
-    bits = np.packbits(padded, axis=1, bitorder="little").view("<u8").reshape(r_n)
+    bits = np.packbits(padded, axis=1, bitorder="little").view(word).reshape(r_n)
     first = np.empty((r_n, n_first), dtype=np.int64)
-    one = np.uint64(1)
+    one = word.type(1)
     for j in range(n_first):
         low = bits & (~bits + one)  # the lowest set bit (0 when none is left)
         exponent = np.frexp(low.astype(np.float64))[1]  # 2**k -> k + 1; 0 -> 0
@@ -610,7 +616,7 @@ def _first_eligible(ok, n_first, *, beyond: bool = True) -> tuple[np.ndarray, np
         bits ^= low
     if not beyond:
         return first, None
-    beyond = np.unpackbits(bits.astype("<u8").view(np.uint8).reshape(r_n, 8), axis=1, count=width,
+    beyond = np.unpackbits(bits.astype(word).view(np.uint8).reshape(r_n, size), axis=1, count=width,
                            bitorder="little").view(bool)
     return first, beyond
 
@@ -624,7 +630,14 @@ def _exact_information(bank, items, theta) -> np.ndarray:
     dichotomous = bank.cached(("all_dichotomous",), lambda: not np.any(bank.params.family))
     if not dichotomous:
         return models.information(bank.params.take(items), theta[:, None])
-    # the columns stacked (7, n): one gather brings every column of the candidates
+    # the columns stacked: one gather brings every column of the candidates (fresh arrays,
+    # which the arithmetic overwrites); five of them when no item has an upper asymptote below 1
+    no_upper = bank.cached(("no_upper_asymptote",), lambda: bool(np.all(bank.params.d == 1.0)))
+    if no_upper:
+        few = bank.cached(("dichotomous_columns_no_upper",), lambda: np.stack(
+            [getattr(models.dichotomous_columns(bank.params), name)
+             for name in ("b", "slope", "c", "one_minus_c", "slope_gap")]))
+        return models.dichotomous_information_no_upper(theta[:, None], *few.take(items, axis=1))
     columns = bank.cached(("dichotomous_columns",), lambda: np.stack(models.dichotomous_columns(bank.params)))
     return models.dichotomous_information_columns(theta[:, None], *columns.take(items, axis=1))
 

@@ -27,8 +27,9 @@ class KernelState:
     prior_mean, prior_sd : float (B,)
     log_post : float (B, G)
         Posterior of theta on the context's grid (scored answers only), in the context's
-        ``posterior_form``: the density scaled to sum 1 (``"scaled"``) or the log density
-        (``"log"``, decision rules versions 1 and 2).
+        ``posterior_form``: the density times a factor that keeps the row's sum between
+        2^-100 and 1 (``"scaled"``) or the log density (``"log"``, decision rules versions 1
+        and 2).
     items, responses : int (B, L)
         Every item given, in order, and its answer; -1 padding (L = scored + pretest slots).
     scored : bool (B, L)
@@ -143,10 +144,13 @@ class KernelState:
 
     def copy_rows(self, to, source) -> None:
         """Make rows ``to`` copies of rows ``source`` (int arrays (R,)), every field."""
+        to = np.asarray(to, dtype=np.int64)
+        if to.size and to[-1] - to[0] == to.size - 1 and bool(np.all(to[1:] > to[:-1])):
+            to = slice(int(to[0]), int(to[0]) + to.size)  # consecutive rows (new ones): a slice, no scatter
         for f in attrs.fields(type(self)):
             value = getattr(self, f.name)
             if value is not None:
-                value[to] = value[source]
+                value[to] = value.take(source, axis=0)
 
     def mark_used(self, rows, items, *, distinct_rows: bool = False) -> None:
         """Mark ``items`` (R,) used by ``rows`` (R,): in ``used`` and in ``used_bits`` (or one

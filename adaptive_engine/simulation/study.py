@@ -139,6 +139,101 @@ def _csv_fields(texts) -> dict:
     return out
 
 
+def _digits_matrix(values, width: int | None = None) -> np.ndarray:
+    """Decimal digits of non-negative integers (int64 (n,)), right-aligned in ASCII,
+    (n, width) uint8; the places before a number's first digit are 0 bytes (a zero has its
+    one digit "0").  ``width``: at least the longest number's digits (default: exactly)."""
+    values = np.asarray(values, dtype=np.int64).reshape(-1)
+    if width is None:
+        width = len(str(int(values.max()))) if values.size else 1
+    # place by place from the last, each a row of a (width, n) array (contiguous writes;
+    # division by the scalar 10 is numpy's fast integer division)
+    out = np.empty((width, values.size), dtype=np.uint8)
+    rest = values.astype(np.uint64)
+    ten = np.uint64(10)
+    for k in range(width - 1, -1, -1):
+        quotient = rest // ten
+        digit = rest - quotient * ten
+        digit += ord("0")
+        if k < width - 1:
+            digit[rest == 0] = 0  # before the first digit
+        out[k] = digit
+        rest = quotient
+    return out.T
+
+
+def _int_matrix(values) -> np.ndarray:
+    """``str(int(v))`` of each value of an int64 array, as rows of ASCII bytes padded with 0
+    bytes, (n, W) uint8."""
+    values = np.asarray(values, dtype=np.int64).reshape(-1)
+    if values.size and values.min() < 0:
+        return _text_matrix([str(v) for v in values.tolist()])
+    return _digits_matrix(values)
+
+
+def _number_matrix(values, digits: int = 6) -> np.ndarray:
+    """:func:`_nums` of a float array as rows of ASCII bytes padded with 0 bytes, (n, W) uint8.
+
+    Values from 1e-4 up to 10^(15 - digits) are ``"%.{digits}f"`` without its trailing zeros
+    (one kept after the point), as :func:`_nums` writes them, built from integers: the
+    value times 10^digits, rounded to the nearest integer (its integer and fraction digits,
+    the trailing zeros of the fraction left off).  The product is rounded once, by less
+    than half its last place, so the nearest integer to it is the correctly rounded one
+    unless the product lies within a few of its last places of a half: those values, like
+    the others outside the range, go :func:`_nums`'s own way (for 1 to 10 digits; other
+    numbers of digits all do).
+    """
+    array = np.asarray(values, dtype=float).reshape(-1)
+    n = array.size
+    if not 1 <= digits <= 10:
+        return _text_matrix(_nums(array, digits))
+    with np.errstate(invalid="ignore", over="ignore"):
+        size = np.abs(array)
+        scaled = size * 10.0**digits
+        fraction = scaled - np.floor(scaled)
+        near_half = np.abs(fraction - 0.5) <= 4.0 * np.spacing(scaled)
+        regular = (size >= 1e-4) & (size < 10.0 ** (15 - digits)) & ~near_half  # NaN fails
+    whole = np.rint(np.where(regular, scaled, 0.0)).astype(np.int64)
+    integer, fraction_digits = np.divmod(whole, 10**digits)
+    # the fraction's places, leading zeros included; its trailing zeros but the first as 0 bytes
+    frac = _digits_matrix(fraction_digits + 10**digits, digits + 1)[:, 1:]
+    shown = np.full(n, digits)
+    for k in range(1, digits):
+        shown[fraction_digits % 10**k == 0] = digits - k
+    frac[np.arange(digits) >= shown[:, None]] = 0
+    sign = np.where(array < 0, ord("-"), 0).astype(np.uint8)[:, None]
+    point = np.full((n, 1), ord("."), dtype=np.uint8)
+    out = np.concatenate([sign, _digits_matrix(integer), point, frac], axis=1)
+    other = np.flatnonzero(~regular)
+    if other.size:
+        block = _text_matrix(_nums(array[other], digits))
+        if block.shape[1] > out.shape[1]:
+            out = np.concatenate([np.zeros((n, block.shape[1] - out.shape[1]), dtype=np.uint8), out], axis=1)
+        out[other] = 0
+        out[other, out.shape[1] - block.shape[1]:] = block
+    return out
+
+
+def _text_matrix(texts) -> np.ndarray:
+    """Texts (without NUL characters) as rows of UTF-8 bytes padded with 0 bytes, (n, W) uint8."""
+    encoded = [t.encode("utf-8") for t in texts]
+    width = max([len(b) for b in encoded], default=0) or 1
+    return np.array(encoded, dtype=f"S{width}").reshape(len(encoded)).view(np.uint8).reshape(len(encoded), width)
+
+
+def _joined_rows(matrices) -> str:
+    """CSV lines of fields given as byte matrices (n, W_k) padded with 0 bytes: each row's
+    fields joined by commas, a line end after each row (the 0 bytes dropped)."""
+    n = matrices[0].shape[0]
+    comma = np.full((n, 1), ord(","), dtype=np.uint8)
+    parts = []
+    for m in matrices:
+        parts += [m, comma]
+    parts[-1] = np.full((n, 1), ord("\n"), dtype=np.uint8)
+    joined = np.concatenate(parts, axis=1).reshape(-1)
+    return joined[joined != 0].tobytes().decode("utf-8")
+
+
 def examinees_csv(result: SimulationResult) -> str:
     """Text of ``examinees.csv``."""
     cuts = result.design.reporting.cut_scores
@@ -155,6 +250,21 @@ def examinees_csv(result: SimulationResult) -> str:
     labels = [[c.above if v == 1 else c.below if v == 0 else "" for v in result.at_or_above[:, k].tolist()]
               for k, c in enumerate(cuts)]
     field = _csv_fields(reasons + [label for column in labels for label in column])
+    if not result.size:
+        return buf.getvalue()
+    if not any("\0" in text for text in field.values()):
+        # every field as a matrix of bytes (digits built by integer arithmetic), the rows
+        # joined in one pass: the same text as the way below, several times as fast
+        def texts(column):
+            distinct = list(dict.fromkeys(column))
+            at = {text: k for k, text in enumerate(distinct)}
+            return _text_matrix([field[t] for t in distinct])[[at[t] for t in column]]
+
+        buf.write(_joined_rows([
+            _int_matrix(np.arange(result.size)), _number_matrix(result.true_theta), _number_matrix(result.theta),
+            _number_matrix(result.se), _int_matrix(result.n_scored), texts(reasons), _int_matrix(result.n_pretest),
+            _number_matrix(result.scaled_score), _int_matrix(result.seeds), *[texts(column) for column in labels]]))
+        return buf.getvalue()
 
     def ints(values):
         return [str(v) for v in np.asarray(values, dtype=np.int64).tolist()]
@@ -162,9 +272,8 @@ def examinees_csv(result: SimulationResult) -> str:
     columns = [[str(k) for k in range(result.size)], _nums(result.true_theta), _nums(result.theta),
                _nums(result.se), ints(result.n_scored), [field[r] for r in reasons], ints(result.n_pretest),
                _nums(result.scaled_score), ints(result.seeds), *[[field[x] for x in column] for column in labels]]
-    if result.size:
-        buf.write("\n".join(map(",".join, zip(*columns))))
-        buf.write("\n")
+    buf.write("\n".join(map(",".join, zip(*columns))))
+    buf.write("\n")
     return buf.getvalue()
 
 
