@@ -268,8 +268,8 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
     ``(P + I(theta))^-1`` is its covariance, with no further computation of the
     information.  A row that has not converged after :data:`MAP_ITERATIONS` steps gets its
     information at the point reached, as before.  The items of a working set of rows are
-    gathered once and again only when the rows still moving have become fewer than
-    :data:`MAP_REGATHER_SHARE` of it.  A batch of one sums its answers in order, as every
+    gathered once (on any bank: M2PL, M3PL and MGRM items alike) and again only when the
+    rows still moving have become fewer than :data:`MAP_REGATHER_SHARE` of it.  A batch of one sums its answers in order, as every
     row of a larger batch does (``one_row_in_order``), so that a live session (one row)
     gives the bits of the same examinee in a simulated batch.
     """
@@ -284,18 +284,13 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
     if r_n == 0:
         return theta, cov, np.zeros(0, dtype=bool)
     converged = np.zeros(r_n, dtype=bool)
-    logistic = tab.logistic_only
-    all_given = given_items(tab, items, resp) if logistic else None
+    all_given = given_items(tab, items, resp)
     work = np.arange(r_n)  # the rows of the working set
     moving = np.ones(r_n, dtype=bool)  # which of them are still moving
-    given = all_given.reached() if logistic else None
+    given = all_given.reached()
     for _ in range(MAP_ITERATIONS):
-        if logistic:
-            info, grad = test_information_and_score(tab, None, None, theta[work], precision[work], score=True,
-                                                    given=given, one_row_in_order=True)
-        else:
-            info, grad = test_information_and_score(tab, items[work], resp[work], theta[work], precision[work],
-                                                    score=True)
+        info, grad = test_information_and_score(tab, None, None, theta[work], precision[work], score=True,
+                                                given=given, one_row_in_order=True)
         grad = grad - matrix_vector(precision[work], theta[work] - mu[work])
         info_inv = inverse(info)
         new = np.clip(theta[work] + matrix_vector(info_inv, grad), sc.grid_min, sc.grid_max)
@@ -311,13 +306,11 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
         if n_moving < MAP_REGATHER_SHARE * work.size:
             keep = np.flatnonzero(moving)
             work, moving = work[keep], np.ones(keep.size, dtype=bool)
-            if logistic:
-                given = all_given.rows(work).reached()
+            given = all_given.rows(work).reached()
     left = np.flatnonzero(~converged)
     if left.size:
-        sub = all_given.rows(left) if logistic else None
-        info, _ = test_information_and_score(tab, items[left], resp[left], theta[left], precision[left], given=sub,
-                                             one_row_in_order=True)
+        info, _ = test_information_and_score(tab, None, None, theta[left], precision[left],
+                                             given=all_given.rows(left), one_row_in_order=True)
         cov[left] = inverse(info)
     return theta, cov, converged
 
