@@ -27,7 +27,9 @@ from . import stopping
 from .multidimensional_state import (
     MultidimensionalState,
     add_and_moments,
+    answer_log_likelihood,
     determinant,
+    general_information_and_score,
     given_items,
     inverse,
     matrix_vector,
@@ -269,9 +271,10 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
     information.  A row that has not converged after :data:`MAP_ITERATIONS` steps gets its
     information at the point reached, as before.  The items of a working set of rows are
     gathered once (on any bank: M2PL, M3PL and MGRM items alike) and again only when the
-    rows still moving have become fewer than :data:`MAP_REGATHER_SHARE` of it.  A batch of one sums its answers in order, as every
-    row of a larger batch does (``one_row_in_order``), so that a live session (one row)
-    gives the bits of the same examinee in a simulated batch.
+    rows still moving have become fewer than :data:`MAP_REGATHER_SHARE` of it.  A batch of
+    one sums its answers in order, as every row of a larger batch does
+    (``one_row_in_order``), so that a live session (one row) gives the bits of the same
+    examinee in a simulated batch.
     """
     tab = ctx.multidimensional
     sc = ctx.design.scoring
@@ -417,9 +420,22 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     status = pattern_status(tab, items, resp)
     theta = np.clip(np.array(start_theta, dtype=float), lo, hi)
     eye = np.eye(k)
+    if ctx.posterior_form == "log":
+        def info_and_score(at, x):
+            return information_and_score(tab, items[at], resp[at], x)
 
-    def info_and_score(at, x):
-        return information_and_score(tab, items[at], resp[at], x)
+        def log_lik(at, x):
+            return log_likelihood(tab, items[at], resp[at], x)
+    else:
+        # decision rules version 3: the answers gathered once, every column at once
+        all_given = given_items(tab, items, resp, general=True)
+
+        def info_and_score(at, x):
+            zeros = np.zeros((at.size, k, k))
+            return general_information_and_score(tab, all_given.rows(at).reached(), x, zeros, score=True)
+
+        def log_lik(at, x):
+            return answer_log_likelihood(tab, all_given.rows(at).reached(), x)
 
     active = np.flatnonzero(status == "")
     held = np.zeros((r_n, k), dtype=bool)
@@ -437,18 +453,18 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
         singular = ~(determinant(mat) > SINGULAR_SHARE * diag)
         status[active[singular]] = "no_information"
         step = matrix_vector(inverse(np.where(singular[:, None, None], eye, mat)), np.where(free, grad, 0.0))
-        before = log_likelihood(tab, items[active], resp[active], x)
+        before = log_lik(active, x)
         tol = 1e-13 * (1.0 + np.abs(before))
         t = np.ones(active.size)
         new = np.clip(x + step, lo, hi)
-        worse = ~(log_likelihood(tab, items[active], resp[active], new) >= before - tol)
+        worse = ~(log_lik(active, new) >= before - tol)
         for _ in range(MLE_HALVINGS):
             if not worse.any():
                 break
             w = np.flatnonzero(worse)
             t[w] = t[w] * 0.5
             new[w] = np.clip(x[w] + t[w, None] * step[w], lo, hi)
-            worse[w] = ~(log_likelihood(tab, items[active[w]], resp[active[w]], new[w]) >= before[w] - tol[w])
+            worse[w] = ~(log_lik(active[w], new[w]) >= before[w] - tol[w])
         new = np.where(worse[:, None] | singular[:, None], x, new)
         moved = np.max(np.abs(new - x), axis=1)
         theta[active] = new

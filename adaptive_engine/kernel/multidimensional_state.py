@@ -406,7 +406,7 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
     if one_row_in_order:
         if given is None:
             given = given_items(tab, items, responses if score else None)
-        return _general_information_and_score(tab, given.reached(), theta, precision, score=score)
+        return general_information_and_score(tab, given.reached(), theta, precision, score=score)
     width = items.shape[1]
     reached = np.flatnonzero((items >= 0).any(axis=0))
     reached = reached[reached < width]
@@ -504,13 +504,15 @@ class GivenItems:
                             None if self.responses is None else self.responses[cols], lambda x: x[cols])
 
 
-def given_items(tab: MultidimensionalTables, items, responses) -> GivenItems:
-    """:class:`GivenItems` of ``items`` and ``responses`` (R, W), -1 where nothing was given."""
+def given_items(tab: MultidimensionalTables, items, responses, *, general: bool = False) -> GivenItems:
+    """:class:`GivenItems` of ``items`` and ``responses`` (R, W), -1 where nothing was given:
+    on an M2PL bank the slopes and first intercepts alone unless ``general`` (the layout of
+    :func:`general_information_and_score`, which every other bank gets)."""
     at = np.ascontiguousarray(np.asarray(items).T)
     index = np.maximum(at, 0)
     params = tab.params
     answers = None if responses is None else np.ascontiguousarray(np.asarray(responses).T)
-    if tab.logistic_only:
+    if tab.logistic_only and not general:
         columns = np.vstack([params.slopes.T, params.intercepts[:, :1].T])  # (K + 1, n)
         return GivenItems(given=at >= 0, columns=columns[:, index], responses=answers)
     columns = tab._made.get("item_columns")
@@ -555,8 +557,12 @@ def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *,
     return info, grad
 
 
-def _general_information_and_score(tab, given: GivenItems, theta, precision, *, score):
+def general_information_and_score(tab, given: GivenItems, theta, precision, *, score):
     """:func:`test_information_and_score` for a bank with M3PL or MGRM items, every column at once.
+
+    ``given`` in the general layout (:func:`given_items`; on an M2PL bank with
+    ``general``), only columns some row reached; ``precision`` (R, K, K) is where the sums
+    start (zeros for the test information alone, as the MLE sums it).
 
     Each answer's ``J`` and score ``r`` are computed elementwise over the (L, R) columns of
     ``given`` by the formulas of :mod:`adaptive_engine.irt.multidimensional`, operation for
@@ -608,6 +614,55 @@ def _general_information_and_score(tab, given: GivenItems, theta, precision, *, 
     return info, grad
 
 
+def answer_log_likelihood(tab, given: GivenItems, theta) -> np.ndarray:
+    """``sum_i log P(x_i | theta)`` (R,) over the answers of ``given`` (general layout), added
+    one answer after another in the order given (:func:`_sum_in_order`, a batch of one row
+    too).
+
+    Each answer's ``log P_x`` is computed for its category alone by the operations of
+    :func:`adaptive_engine.irt.multidimensional.log_probabilities`:
+    ``log sigma(z_x) + log sigma(-z_x+1) + log(1 - exp(z_x+1 - z_x))`` (``z_0 = +inf``,
+    ``z_M+1 = -inf``), plus ``log(1 - c)`` with a lower asymptote, whose top category is
+    ``log(c + (1 - c) sigma(z_M))`` instead (the model adds ``log(1 - c) = -0.0`` and takes
+    that form for items without one too once any item of the array has one, which can
+    differ only in the sign of a zero).
+    """
+    scaling = tab.params.scaling
+    a = given.slopes
+    eta = a[0] * theta[None, :, 0]
+    for d in range(1, tab.k):
+        eta = eta + a[d] * theta[None, :, d]
+    upper, lower, x = _answer_logits(scaling, eta, given)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        log_p = log_expit(upper) + log_expit(-lower) + np.log(-np.expm1(lower - upper))
+    log_p = np.where(np.isnan(log_p), -np.inf, log_p)
+    lifted = given.given & (given.c > 0)
+    if lifted.any():
+        c = given.c[lifted]
+        log_1c = np.log1p(-c)
+        top = x[lifted] == given.top[lifted]
+        below = log_p[lifted] + log_1c
+        with np.errstate(divide="ignore"):
+            at_top = np.logaddexp(np.log(c), log_1c + log_expit(upper[lifted]))
+        log_p[lifted] = np.where(top, at_top, below)
+    terms = np.where(given.given, log_p, 0.0)
+    return _sum_in_order(np.zeros(theta.shape[0]), terms, True)
+
+
+def _answer_logits(scaling, eta, given: GivenItems):
+    """The logits of the boundaries above and below each answer's category (L, R):
+    ``z_x`` (+inf for x = 0) and ``z_x+1`` (-inf at the item's top), and the categories."""
+    x = np.where(given.given, given.responses, 0)
+    cuts = given.boundaries
+    width = cuts.shape[0]
+    above = np.take_along_axis(cuts, np.clip(x - 1, 0, width - 1)[None], axis=0)[0]
+    below = np.take_along_axis(cuts, np.clip(x, 0, width - 1)[None], axis=0)[0]
+    with np.errstate(invalid="ignore"):
+        upper = np.where(x == 0, np.inf, scaling * (eta + above))
+        lower = np.where(x >= given.top, -np.inf, scaling * (eta + below))
+    return upper, lower, x
+
+
 def _graded_information(scaling, eta, cuts) -> np.ndarray:
     """``J`` (n,) of graded items without a lower asymptote at ``eta`` (n,), intercepts
     ``cuts`` (n, M), NaN beyond an item's own: the operations of
@@ -627,16 +682,8 @@ def _category_scores(scaling, eta, given: GivenItems) -> np.ndarray:
     """``d log P_x / d eta`` (L, R) of each answer x, 0 where none was given: the
     operations of :func:`adaptive_engine.irt.multidimensional.log_derivatives` for the
     answered category alone."""
-    x = np.where(given.given, given.responses, 0)
+    upper, lower, x = _answer_logits(scaling, eta, given)
     top = given.top
-    cuts = given.boundaries
-    width = cuts.shape[0]
-    # boundary x (above the category; +inf for x = 0) and x + 1 (below; -inf at the top)
-    above = np.take_along_axis(cuts, np.clip(x - 1, 0, width - 1)[None], axis=0)[0]
-    below = np.take_along_axis(cuts, np.clip(x, 0, width - 1)[None], axis=0)[0]
-    with np.errstate(invalid="ignore"):
-        upper = np.where(x == 0, np.inf, scaling * (eta + above))
-        lower = np.where(x >= top, -np.inf, scaling * (eta + below))
     r = scaling * (md.expit(-upper) - md.expit(lower))
     lifted = given.given & (given.c > 0) & (x == top)
     if lifted.any():
