@@ -142,3 +142,15 @@ def test_simulated_batch_equals_one_at_a_time_on_a_mixed_bank(method):
         np.testing.assert_array_equal(one["items"][0], whole["items"][i])
         np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
         np.testing.assert_array_equal(one["covariance"][0], whole["covariance"][i])
+
+
+def test_selection_information_by_kind_of_item_is_the_models_choice_item_by_item():
+    """Version 3 computes each kind of item apart for the criteria: the values of the model's
+    :func:`adaptive_engine.irt.multidimensional.slope_information` on the whole bank, bit for bit."""
+    from adaptive_engine.kernel.multidimensional_selection import _slope_information
+
+    tab = context().multidimensional
+    theta = np.random.default_rng(7).normal(0, 2, (6, 2))
+    want = md.slope_information(tab.params, theta[:, None, :])
+    np.testing.assert_array_equal(_slope_information(tab, theta, by_model=True), want)
+    np.testing.assert_array_equal(_slope_information(tab, theta[:1], by_model=True), want[:1])

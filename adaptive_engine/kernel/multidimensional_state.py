@@ -117,6 +117,14 @@ class MultidimensionalTables:
             self._made["probability_by_category"] = table
         return table
 
+    def cached(self, name: str, make):
+        """``make()``, made on first use under ``name`` and kept with the tables (facts of
+        the bank that some paths alone need)."""
+        value = self._made.get(name)
+        if value is None:
+            value = self._made[name] = make()
+        return value
+
     @property
     def axis_points(self) -> int:
         """Grid points per dimension (P, with G = P ** K)."""
@@ -515,10 +523,8 @@ def given_items(tab: MultidimensionalTables, items, responses, *, general: bool 
     if tab.logistic_only and not general:
         columns = np.vstack([params.slopes.T, params.intercepts[:, :1].T])  # (K + 1, n)
         return GivenItems(given=at >= 0, columns=columns[:, index], responses=answers)
-    columns = tab._made.get("item_columns")
-    if columns is None:
-        columns = np.ascontiguousarray(np.vstack([params.slopes.T, params.intercepts.T]))  # (K + M, n)
-        tab._made["item_columns"] = columns
+    columns = tab.cached("item_columns",  # (K + M, n)
+                         lambda: np.ascontiguousarray(np.vstack([params.slopes.T, params.intercepts.T])))
     return GivenItems(given=at >= 0, columns=np.ascontiguousarray(columns[:, index]), responses=answers, k=tab.k,
                       c=params.c[index], top=params.n_categories[index] - 1, index=index)
 
