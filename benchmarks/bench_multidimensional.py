@@ -15,21 +15,26 @@ memory (tracemalloc charges every Python and numpy allocation a microsecond or t
 would weigh on the seconds of code that makes many small arrays, not on its work).  Then
 the items saved: a correlated (0.6) two-dimensional population on a simple-structure bank,
 one multidimensional test to SE <= 0.3 on both dimensions against two one-dimensional
-tests back to back (Segall 1996 reports the direction of the effect).
+tests back to back (Segall 1996 reports the direction of the effect).  With ``--demo N``
+also the shipped two-dimensional design on its demo bank of M3PL, M2PL and MGRM items
+(``simulations/licensing_two_dimensional.toml``: D-optimality, randomesque, SE stop) for
+N examinees, scored by EAP, MAP and MLE (``--demo-only``: that alone).
 
     python3 benchmarks/bench_multidimensional.py            # 10,000 examinees
     python3 benchmarks/bench_multidimensional.py --examinees 2000
+    python3 benchmarks/bench_multidimensional.py --demo 1000 --demo-only
 """
 
 from __future__ import annotations
 
 import argparse
+import pathlib
 import time
 import tracemalloc
 
 import numpy as np
 
-from adaptive_engine.bank.item_bank import ItemBank
+from adaptive_engine.bank.item_bank import ItemBank, load_bank
 from adaptive_engine.design.toml_file import parse_design
 from adaptive_engine.simulation.engine import simulate
 from adaptive_engine.simulation.multidimensional_engine import simulate_multidimensional
@@ -90,7 +95,13 @@ def main() -> None:
     parser.add_argument("--examinees", type=int, default=10_000)
     parser.add_argument("--chunk", type=int, default=2000)
     parser.add_argument("--high", default="4,5,6", help="dimensions of the runs without a grid (comma list)")
+    parser.add_argument("--demo", type=int, default=0, help="examinees of the shipped 2-D design on its mixed bank")
+    parser.add_argument("--demo-only", action="store_true", help="only the runs of --demo")
     args = parser.parse_args()
+    if args.demo:
+        demo_design_runs(args.demo)
+        if args.demo_only:
+            return
     n = args.examinees
     rng = np.random.default_rng(1)
     n_items = 1000
@@ -161,6 +172,24 @@ def main() -> None:
         d = parse_design(TWO_D.format(method="eap").replace("d_optimality", crit) + stop)
         together = simulate_multidimensional(d, bank_s, true_theta=true, seed=5).n_scored.mean()
         print(f"  one multidimensional test ({crit}): {together:.2f}  ratio {together / separate:.3f}")
+
+
+def demo_design_runs(n: int) -> None:
+    """The shipped two-dimensional design on its demo bank (M3PL, M2PL and MGRM items), by
+    EAP, MAP and MLE: seconds (the least of two runs) and milliseconds per examinee."""
+    root = pathlib.Path(__file__).resolve().parent.parent
+    text = (root / "simulations" / "licensing_two_dimensional.toml").read_text()
+    bank = load_bank(root / "item_banks" / "meridian_valley_operator_2d.json")
+    true = np.random.default_rng(5).multivariate_normal([0, 0], [[1, 0.6], [0.6, 1]], size=n)
+    print(f"shipped 2-D design on its demo bank ({bank.n_items} items: M3PL, M2PL, MGRM), {n:,} examinees")
+    print(f"{'scoring':8} {'seconds':>9} {'CPU s':>9} {'ms/examinee':>12} {'items':>7} {'peak MiB':>9}")
+    for method in ("eap", "map", "mle"):
+        d = parse_design(text.replace('method = "eap"', f'method = "{method}"'))
+        _, seconds, cpu, peak, res, _ = measure(
+            method, lambda d=d: simulate_multidimensional(d, bank, true_theta=true, seed=11), repeat=2)
+        print(f"{method.upper():8} {seconds:9.2f} {cpu:9.2f} {1000 * cpu / n:12.2f} {res.n_scored.mean():7.1f} "
+              f"{peak:9.1f}")
+    print()
 
 
 if __name__ == "__main__":

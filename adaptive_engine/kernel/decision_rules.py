@@ -65,7 +65,15 @@ Versions:
      simulated in a batch);
    * D-optimality's single-precision screening uses ``cosh`` (the double-precision values
      still decide the pick);
-   * KL and SE-reduction weights are the row divided by its sum.
+   * KL and SE-reduction weights are the row divided by its sum;
+   * on banks with M3PL or MGRM items the MAP and MLE gather the answers' parameters once
+     per estimate and compute every answer's information, score and log-likelihood at
+     once (:func:`.multidimensional_state.general_information_and_score`), and the criteria
+     compute each kind of item apart: no numeric change (each term is computed by the
+     model's operations and the sums run in answer order, as versions 1 and 2 add them
+     column by column; the MLE's log-likelihood may differ from the model's only in the
+     sign of a zero term), so the shipped designs decide as before; versions 1 and 2 run
+     the column-by-column code unchanged.
 """
 
 from __future__ import annotations

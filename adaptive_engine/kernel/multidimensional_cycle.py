@@ -27,7 +27,9 @@ from . import stopping
 from .multidimensional_state import (
     MultidimensionalState,
     add_and_moments,
+    answer_log_likelihood,
     determinant,
+    general_information_and_score,
     given_items,
     inverse,
     matrix_vector,
@@ -268,10 +270,11 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
     ``(P + I(theta))^-1`` is its covariance, with no further computation of the
     information.  A row that has not converged after :data:`MAP_ITERATIONS` steps gets its
     information at the point reached, as before.  The items of a working set of rows are
-    gathered once and again only when the rows still moving have become fewer than
-    :data:`MAP_REGATHER_SHARE` of it.  A batch of one sums its answers in order, as every
-    row of a larger batch does (``one_row_in_order``), so that a live session (one row)
-    gives the bits of the same examinee in a simulated batch.
+    gathered once (on any bank: M2PL, M3PL and MGRM items alike) and again only when the
+    rows still moving have become fewer than :data:`MAP_REGATHER_SHARE` of it.  A batch of
+    one sums its answers in order, as every row of a larger batch does
+    (``one_row_in_order``), so that a live session (one row) gives the bits of the same
+    examinee in a simulated batch.
     """
     tab = ctx.multidimensional
     sc = ctx.design.scoring
@@ -284,18 +287,13 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
     if r_n == 0:
         return theta, cov, np.zeros(0, dtype=bool)
     converged = np.zeros(r_n, dtype=bool)
-    logistic = tab.logistic_only
-    all_given = given_items(tab, items, resp) if logistic else None
+    all_given = given_items(tab, items, resp)
     work = np.arange(r_n)  # the rows of the working set
     moving = np.ones(r_n, dtype=bool)  # which of them are still moving
-    given = all_given.reached() if logistic else None
+    given = all_given.reached()
     for _ in range(MAP_ITERATIONS):
-        if logistic:
-            info, grad = test_information_and_score(tab, None, None, theta[work], precision[work], score=True,
-                                                    given=given, one_row_in_order=True)
-        else:
-            info, grad = test_information_and_score(tab, items[work], resp[work], theta[work], precision[work],
-                                                    score=True)
+        info, grad = test_information_and_score(tab, None, None, theta[work], precision[work], score=True,
+                                                given=given, one_row_in_order=True)
         grad = grad - matrix_vector(precision[work], theta[work] - mu[work])
         info_inv = inverse(info)
         new = np.clip(theta[work] + matrix_vector(info_inv, grad), sc.grid_min, sc.grid_max)
@@ -311,13 +309,11 @@ def _map_estimate_scaled(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.
         if n_moving < MAP_REGATHER_SHARE * work.size:
             keep = np.flatnonzero(moving)
             work, moving = work[keep], np.ones(keep.size, dtype=bool)
-            if logistic:
-                given = all_given.rows(work).reached()
+            given = all_given.rows(work).reached()
     left = np.flatnonzero(~converged)
     if left.size:
-        sub = all_given.rows(left) if logistic else None
-        info, _ = test_information_and_score(tab, items[left], resp[left], theta[left], precision[left], given=sub,
-                                             one_row_in_order=True)
+        info, _ = test_information_and_score(tab, None, None, theta[left], precision[left],
+                                             given=all_given.rows(left), one_row_in_order=True)
         cov[left] = inverse(info)
     return theta, cov, converged
 
@@ -424,9 +420,22 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     status = pattern_status(tab, items, resp)
     theta = np.clip(np.array(start_theta, dtype=float), lo, hi)
     eye = np.eye(k)
+    if ctx.posterior_form == "log":
+        def info_and_score(at, x):
+            return information_and_score(tab, items[at], resp[at], x)
 
-    def info_and_score(at, x):
-        return information_and_score(tab, items[at], resp[at], x)
+        def log_lik(at, x):
+            return log_likelihood(tab, items[at], resp[at], x)
+    else:
+        # decision rules version 3: the answers gathered once, every column at once
+        all_given = given_items(tab, items, resp, general=True)
+
+        def info_and_score(at, x):
+            zeros = np.zeros((at.size, k, k))
+            return general_information_and_score(tab, all_given.rows(at).reached(), x, zeros, score=True)
+
+        def log_lik(at, x):
+            return answer_log_likelihood(tab, all_given.rows(at).reached(), x)
 
     active = np.flatnonzero(status == "")
     held = np.zeros((r_n, k), dtype=bool)
@@ -444,18 +453,18 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
         singular = ~(determinant(mat) > SINGULAR_SHARE * diag)
         status[active[singular]] = "no_information"
         step = matrix_vector(inverse(np.where(singular[:, None, None], eye, mat)), np.where(free, grad, 0.0))
-        before = log_likelihood(tab, items[active], resp[active], x)
+        before = log_lik(active, x)
         tol = 1e-13 * (1.0 + np.abs(before))
         t = np.ones(active.size)
         new = np.clip(x + step, lo, hi)
-        worse = ~(log_likelihood(tab, items[active], resp[active], new) >= before - tol)
+        worse = ~(log_lik(active, new) >= before - tol)
         for _ in range(MLE_HALVINGS):
             if not worse.any():
                 break
             w = np.flatnonzero(worse)
             t[w] = t[w] * 0.5
             new[w] = np.clip(x[w] + t[w, None] * step[w], lo, hi)
-            worse[w] = ~(log_likelihood(tab, items[active[w]], resp[active[w]], new[w]) >= before[w] - tol[w])
+            worse[w] = ~(log_lik(active[w], new[w]) >= before[w] - tol[w])
         new = np.where(worse[:, None] | singular[:, None], x, new)
         moved = np.max(np.abs(new - x), axis=1)
         theta[active] = new

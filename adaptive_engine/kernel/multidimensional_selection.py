@@ -77,7 +77,7 @@ def criterion_values(ctx, state, rows, facts=None) -> np.ndarray:
     params = tab.params
     if crit is SelectionCriterion.KULLBACK_LEIBLER:
         return _kullback_leibler(ctx, state, rows)
-    j = _slope_information(tab, theta)  # (R, n)
+    j = _slope_information(tab, theta, by_model=ctx.posterior_form != "log")  # (R, n)
     a = params.slopes[None, :, :]  # (1, n, K)
     if crit is SelectionCriterion.MAX_COMPOSITE_INFORMATION:
         u = tab.composite_weights / np.sqrt(np.sum(tab.composite_weights * tab.composite_weights))
@@ -118,16 +118,42 @@ def _quadratic_form(tab, w_inv, items=None) -> np.ndarray:
     return q
 
 
-def _slope_information(tab, theta) -> np.ndarray:
+def _slope_information(tab, theta, *, by_model: bool = False) -> np.ndarray:
     """``J_j(theta)`` of every item for rows ``theta`` (R, K), shape (R, n).
 
     A bank of M2PL items only (two categories, no lower asymptote) takes
     :func:`_logistic_information`; any other bank the general
-    :func:`adaptive_engine.irt.multidimensional.slope_information`.
+    :func:`adaptive_engine.irt.multidimensional.slope_information`, which on a bank of
+    several kinds of item computes every formula for every item and keeps each item's own.
+    ``by_model`` (decision rules version 3): the items of each kind (two categories; graded
+    without a lower asymptote; any other) are computed apart by that function, each with
+    its own formula alone, and put in their columns: the same values.
     """
-    if not tab.logistic_only:
+    if tab.logistic_only:
+        return _logistic_information(tab, theta)
+    if not by_model:
         return md.slope_information(tab.params, theta[:, None, :])
-    return _logistic_information(tab, theta)
+    kinds = _item_kinds(tab)
+    if len(kinds) == 1:
+        return md.slope_information(tab.params, theta[:, None, :])
+    out = np.empty((theta.shape[0], tab.params.slopes.shape[0]))
+    for items, params in kinds:
+        out[:, items] = md.slope_information(params, theta[:, None, :])
+    return out
+
+
+def _item_kinds(tab) -> list:
+    """The bank's items by the formula of their information: (positions, parameters) of the
+    two-category items, the graded items without a lower asymptote and any others (the
+    kinds the bank has), kept with the tables."""
+    def make():
+        params = tab.params
+        two = params.n_categories == 2
+        graded = ~two & (params.c == 0)
+        return [(items, params.take(items)) for items in
+                (np.flatnonzero(two), np.flatnonzero(graded), np.flatnonzero(~two & ~graded)) if items.size]
+
+    return tab.cached("item_kinds", make)
 
 
 def _logistic_information(tab, theta, items=None) -> np.ndarray:

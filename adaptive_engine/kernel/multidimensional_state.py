@@ -117,6 +117,14 @@ class MultidimensionalTables:
             self._made["probability_by_category"] = table
         return table
 
+    def cached(self, name: str, make):
+        """``make()``, made on first use under ``name`` and kept with the tables (facts of
+        the bank that some paths alone need)."""
+        value = self._made.get(name)
+        if value is None:
+            value = self._made[name] = make()
+        return value
+
     @property
     def axis_points(self) -> int:
         """Grid points per dimension (P, with G = P ** K)."""
@@ -388,10 +396,13 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
     The sums run column by column, in the order the items were given, so that a row's sum
     is the same whatever other rows (and how many columns) the batch holds: the columns a
     row has not reached add exact zeros.  ``given``: :func:`given_items` of the same items
-    and responses (an M2PL bank only), when the caller has gathered them already.
-    ``one_row_in_order`` (decision rules version 3): a batch of one row adds its columns in
-    order too (:func:`_sum_in_order`); without it (versions 1 and 2) a single row of an
-    M2PL bank is summed pairwise by numpy once it has eight answers or more.
+    and responses, when the caller has gathered them already (an M2PL bank; under
+    ``one_row_in_order`` any bank).  ``one_row_in_order`` (decision rules version 3): a
+    batch of one row adds its columns in order too (:func:`_sum_in_order`); without it
+    (versions 1 and 2) a single row of an M2PL bank is summed pairwise by numpy once it has
+    eight answers or more.  Under it a bank with M3PL or MGRM items is computed every
+    column at once as well (:func:`_general_information_and_score`, the same values as the
+    column-by-column loop that versions 1 and 2 run).
     """
     theta = np.asarray(theta, dtype=float)
     k = tab.k
@@ -400,6 +411,10 @@ def test_information_and_score(tab: MultidimensionalTables, items, responses, th
             given = given_items(tab, items, responses if score else None)
         return _logistic_information_and_score(tab, given.reached(), theta, precision, score=score,
                                                one_row_in_order=one_row_in_order)
+    if one_row_in_order:
+        if given is None:
+            given = given_items(tab, items, responses if score else None)
+        return general_information_and_score(tab, given.reached(), theta, precision, score=score)
     width = items.shape[1]
     reached = np.flatnonzero((items >= 0).any(axis=0))
     reached = reached[reached < width]
@@ -431,31 +446,61 @@ class GivenItems:
     ----------
     given : bool (L, R)
         Where a scored item was given.
-    columns : float (K + 1, L, R)
-        The items' slopes on each dimension and, last, their intercepts (each one
-        contiguous array, so that the elementwise passes read no strides).
+    columns : float (K + M, L, R)
+        The items' slopes on each dimension and, after them, their intercepts (M = 1 on an
+        M2PL bank; the bank's widest M otherwise, NaN beyond an item's own), each one
+        contiguous array, so that the elementwise passes read no strides.
     responses : int (L, R) or None
         The answers (None where only the information is wanted).
+    k : int
+        K, the number of slope rows of ``columns``.
+    c : float (L, R) or None
+        The items' lower asymptotes (None on an M2PL bank, where all are 0).
+    top : int (L, R) or None
+        The items' highest category M (None on an M2PL bank, where all are 1).
+    index : int (L, R) or None
+        The items' positions in the bank, 0 where none was given (None on an M2PL bank).
     """
 
     given: np.ndarray
     columns: np.ndarray
     responses: np.ndarray
+    k: int = -1
+    c: np.ndarray | None = None
+    top: np.ndarray | None = None
+    index: np.ndarray | None = None
 
     @property
     def slopes(self) -> np.ndarray:
         """(K, L, R)"""
-        return self.columns[:-1]
+        return self.columns[: self._k]
 
     @property
     def intercepts(self) -> np.ndarray:
-        """(L, R)"""
-        return self.columns[-1]
+        """(L, R): the first intercept (an M2PL or M3PL item's only one)"""
+        return self.columns[self._k]
+
+    @property
+    def boundaries(self) -> np.ndarray:
+        """(M, L, R): every intercept"""
+        return self.columns[self._k :]
+
+    @property
+    def _k(self) -> int:
+        return self.columns.shape[0] - 1 if self.k < 0 else self.k
+
+    def _select(self, given, columns, responses, pick) -> "GivenItems":
+        # every array C-contiguous again (numpy's fancy indexing need not give that layout)
+        def picked(x):
+            return None if x is None else np.ascontiguousarray(pick(x))
+
+        return GivenItems(given=given, columns=np.ascontiguousarray(columns), responses=responses, k=self.k,
+                          c=picked(self.c), top=picked(self.top), index=picked(self.index))
 
     def rows(self, index) -> "GivenItems":
         """The same for some of the rows (``index`` into the last axis)."""
-        return GivenItems(given=self.given[:, index], columns=self.columns[:, :, index],
-                          responses=None if self.responses is None else self.responses[:, index])
+        return self._select(self.given[:, index], self.columns[:, :, index],
+                            None if self.responses is None else self.responses[:, index], lambda x: x[:, index])
 
     def reached(self) -> "GivenItems":
         """Only the columns some row has reached (as :func:`test_information_and_score`
@@ -463,17 +508,25 @@ class GivenItems:
         cols = np.flatnonzero(self.given.any(axis=1))
         if cols.size == self.given.shape[0]:
             return self
-        return GivenItems(given=self.given[cols], columns=self.columns[:, cols],
-                          responses=None if self.responses is None else self.responses[cols])
+        return self._select(self.given[cols], self.columns[:, cols],
+                            None if self.responses is None else self.responses[cols], lambda x: x[cols])
 
 
-def given_items(tab: MultidimensionalTables, items, responses) -> GivenItems:
-    """:class:`GivenItems` of ``items`` and ``responses`` (R, W), -1 where nothing was given
-    (an M2PL bank)."""
+def given_items(tab: MultidimensionalTables, items, responses, *, general: bool = False) -> GivenItems:
+    """:class:`GivenItems` of ``items`` and ``responses`` (R, W), -1 where nothing was given:
+    on an M2PL bank the slopes and first intercepts alone unless ``general`` (the layout of
+    :func:`general_information_and_score`, which every other bank gets)."""
     at = np.ascontiguousarray(np.asarray(items).T)
-    columns = np.vstack([tab.params.slopes.T, tab.params.intercepts[:, :1].T])  # (K + 1, n)
-    return GivenItems(given=at >= 0, columns=columns[:, np.maximum(at, 0)],
-                      responses=None if responses is None else np.ascontiguousarray(np.asarray(responses).T))
+    index = np.maximum(at, 0)
+    params = tab.params
+    answers = None if responses is None else np.ascontiguousarray(np.asarray(responses).T)
+    if tab.logistic_only and not general:
+        columns = np.vstack([params.slopes.T, params.intercepts[:, :1].T])  # (K + 1, n)
+        return GivenItems(given=at >= 0, columns=columns[:, index], responses=answers)
+    columns = tab.cached("item_columns",  # (K + M, n)
+                         lambda: np.ascontiguousarray(np.vstack([params.slopes.T, params.intercepts.T])))
+    return GivenItems(given=at >= 0, columns=np.ascontiguousarray(columns[:, index]), responses=answers, k=tab.k,
+                      c=params.c[index], top=params.n_categories[index] - 1, index=index)
 
 
 def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *, score, one_row_in_order=False):
@@ -508,6 +561,145 @@ def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *,
     r = np.where(given.given, scaling * (given.responses - prob), 0.0)
     grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d], in_order) for d in range(k)], axis=1)
     return info, grad
+
+
+def general_information_and_score(tab, given: GivenItems, theta, precision, *, score):
+    """:func:`test_information_and_score` for a bank with M3PL or MGRM items, every column at once.
+
+    ``given`` in the general layout (:func:`given_items`; on an M2PL bank with
+    ``general``), only columns some row reached; ``precision`` (R, K, K) is where the sums
+    start (zeros for the test information alone, as the MLE sums it).
+
+    Each answer's ``J`` and score ``r`` are computed elementwise over the (L, R) columns of
+    ``given`` by the formulas of :mod:`adaptive_engine.irt.multidimensional`, operation for
+    operation (so each value is the one :func:`adaptive_engine.irt.multidimensional.slope_information`
+    and :func:`~adaptive_engine.irt.multidimensional.log_likelihood_gradient` give for that
+    item and row): ``J`` of a two-category item (M2PL, M3PL) by Lord's closed form, of a
+    graded item (MGRM) by Samejima's sum over its categories, in linear space; the score of
+    category x is ``D (Q*_x - P*_x+1)``, and with a lower asymptote the top category's
+    ``D (1 - c) P* Q* / P_M`` in logs.  The graded items' and the lifted top categories'
+    terms are computed for those answers alone.  The sums over the answers run in their
+    order (:func:`_sum_in_order`, a batch of one row too), as the column-by-column loop adds
+    them.
+    """
+    k = tab.k
+    scaling = tab.params.scaling
+    a = given.slopes  # (K, L, R)
+    eta = a[0] * theta[None, :, 0]
+    for d in range(1, k):
+        eta = eta + a[d] * theta[None, :, d]
+    c, top = given.c, given.top
+    # Lord's closed form for every answer; graded items' values are replaced below
+    z = scaling * (eta + given.intercepts)
+    e = np.exp(-np.clip(z, -700.0, 700.0))
+    s = 1.0 / (1.0 + e)
+    t = e * s
+    p1 = c + (1.0 - c) * s
+    num = (scaling * scaling) * (1.0 - c) * s * s * t
+    j = np.divide(num, p1, out=np.zeros(num.shape), where=p1 > 1e-300)
+    graded = given.given & (top > 1)
+    if graded.any():
+        if np.all(c[graded] == 0):
+            # (n, M) in C order: the sum over categories then runs as the model computes it
+            cuts = np.ascontiguousarray(np.moveaxis(given.boundaries, 0, -1)[graded])
+            j[graded] = _graded_information(scaling, eta[graded], cuts)
+        else:  # graded items with a lower asymptote: the model's own choice item by item
+            rows = np.broadcast_to(theta[None, :, :], given.given.shape + (k,))[graded]
+            j[graded] = md.slope_information(tab.params.take(given.index[graded]), rows)
+    j = np.where(given.given, j, 0.0)
+    info = np.array(precision, dtype=float, copy=True)
+    for p in range(k):
+        for q in range(p, k):
+            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q], True)
+            if q != p:
+                info[:, q, p] = info[:, p, q]
+    if not score:
+        return info, None
+    r = _category_scores(scaling, eta, given)
+    grad = np.stack([_sum_in_order(np.zeros(theta.shape[0]), r * a[d], True) for d in range(k)], axis=1)
+    return info, grad
+
+
+def answer_log_likelihood(tab, given: GivenItems, theta) -> np.ndarray:
+    """``sum_i log P(x_i | theta)`` (R,) over the answers of ``given`` (general layout), added
+    one answer after another in the order given (:func:`_sum_in_order`, a batch of one row
+    too).
+
+    Each answer's ``log P_x`` is computed for its category alone by the operations of
+    :func:`adaptive_engine.irt.multidimensional.log_probabilities`:
+    ``log sigma(z_x) + log sigma(-z_x+1) + log(1 - exp(z_x+1 - z_x))`` (``z_0 = +inf``,
+    ``z_M+1 = -inf``), plus ``log(1 - c)`` with a lower asymptote, whose top category is
+    ``log(c + (1 - c) sigma(z_M))`` instead (the model adds ``log(1 - c) = -0.0`` and takes
+    that form for items without one too once any item of the array has one, which can
+    differ only in the sign of a zero).
+    """
+    scaling = tab.params.scaling
+    a = given.slopes
+    eta = a[0] * theta[None, :, 0]
+    for d in range(1, tab.k):
+        eta = eta + a[d] * theta[None, :, d]
+    upper, lower, x = _answer_logits(scaling, eta, given)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        log_p = log_expit(upper) + log_expit(-lower) + np.log(-np.expm1(lower - upper))
+    log_p = np.where(np.isnan(log_p), -np.inf, log_p)
+    lifted = given.given & (given.c > 0)
+    if lifted.any():
+        c = given.c[lifted]
+        log_1c = np.log1p(-c)
+        top = x[lifted] == given.top[lifted]
+        below = log_p[lifted] + log_1c
+        with np.errstate(divide="ignore"):
+            at_top = np.logaddexp(np.log(c), log_1c + log_expit(upper[lifted]))
+        log_p[lifted] = np.where(top, at_top, below)
+    terms = np.where(given.given, log_p, 0.0)
+    return _sum_in_order(np.zeros(theta.shape[0]), terms, True)
+
+
+def _answer_logits(scaling, eta, given: GivenItems):
+    """The logits of the boundaries above and below each answer's category (L, R):
+    ``z_x`` (+inf for x = 0) and ``z_x+1`` (-inf at the item's top), and the categories."""
+    x = np.where(given.given, given.responses, 0)
+    cuts = given.boundaries
+    width = cuts.shape[0]
+    above = np.take_along_axis(cuts, np.clip(x - 1, 0, width - 1)[None], axis=0)[0]
+    below = np.take_along_axis(cuts, np.clip(x, 0, width - 1)[None], axis=0)[0]
+    with np.errstate(invalid="ignore"):
+        upper = np.where(x == 0, np.inf, scaling * (eta + above))
+        lower = np.where(x >= given.top, -np.inf, scaling * (eta + below))
+    return upper, lower, x
+
+
+def _graded_information(scaling, eta, cuts) -> np.ndarray:
+    """``J`` (n,) of graded items without a lower asymptote at ``eta`` (n,), intercepts
+    ``cuts`` (n, M), NaN beyond an item's own: the operations of
+    :func:`adaptive_engine.irt.multidimensional._graded_slope_information`."""
+    z = scaling * (eta[:, None] + cuts)
+    z = np.where(np.isnan(cuts), -np.inf, z)
+    zz = np.concatenate([np.full((z.shape[0], 1), np.inf), z, np.full((z.shape[0], 1), -np.inf)], axis=1)
+    star, star_c = md.expit(zz), md.expit(-zz)
+    with np.errstate(invalid="ignore"):
+        p = star[:, :-1] * star_c[:, 1:] * -np.expm1(zz[:, 1:] - zz[:, :-1])
+    p = np.where(np.isnan(p), 0.0, p)
+    r = star_c[:, :-1] - star[:, 1:]
+    return (scaling * scaling) * np.sum(p * r * r, axis=-1)
+
+
+def _category_scores(scaling, eta, given: GivenItems) -> np.ndarray:
+    """``d log P_x / d eta`` (L, R) of each answer x, 0 where none was given: the
+    operations of :func:`adaptive_engine.irt.multidimensional.log_derivatives` for the
+    answered category alone."""
+    upper, lower, x = _answer_logits(scaling, eta, given)
+    top = given.top
+    r = scaling * (md.expit(-upper) - md.expit(lower))
+    lifted = given.given & (given.c > 0) & (x == top)
+    if lifted.any():
+        c = given.c[lifted]
+        z_top = upper[lifted]
+        log_1c = np.log1p(-c)
+        with np.errstate(divide="ignore"):
+            log_pm = np.logaddexp(np.log(c), log_1c + log_expit(z_top))
+            r[lifted] = scaling * np.exp(np.log1p(-c) + log_expit(z_top) + log_expit(-z_top) - log_pm)
+    return np.where(given.given, r, 0.0)
 
 
 def _sum_in_order(start: np.ndarray, terms: np.ndarray, one_row_in_order: bool = False) -> np.ndarray:
