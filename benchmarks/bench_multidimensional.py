@@ -28,6 +28,7 @@ N examinees, scored by EAP, MAP and MLE (``--demo-only``: that alone).
 from __future__ import annotations
 
 import argparse
+import math
 import pathlib
 import time
 import tracemalloc
@@ -172,6 +173,28 @@ def main() -> None:
         d = parse_design(TWO_D.format(method="eap").replace("d_optimality", crit) + stop)
         together = simulate_multidimensional(d, bank_s, true_theta=true, seed=5).n_scored.mean()
         print(f"  one multidimensional test ({crit}): {together:.2f}  ratio {together / separate:.3f}")
+    # what the correlated prior alone can save at this target (normal-theory posterior
+    # covariance (P + diag(I, I))^-1, P the prior's precision): the information per
+    # dimension a test must add to reach the SE, with and without the other dimension's
+    print(f"  expected from the prior alone: information {information_to_reach(0.3, 0.6):.3f} per dimension "
+          f"against {information_to_reach(0.3, 0.0):.3f} for a one-dimensional N(0, 1) prior, ratio "
+          f"{information_to_reach(0.3, 0.6) / information_to_reach(0.3, 0.0):.3f}")
+
+
+def information_to_reach(se: float, rho: float) -> float:
+    """Test information I on each of two dimensions (the same on both, none across them) that
+    brings the posterior SD of each to ``se`` under an N(0, [[1, rho], [rho, 1]]) prior.
+
+    The posterior precision is P + diag(I, I) with P = the prior covariance's inverse,
+    whose diagonal is 1 / (1 - rho^2) and off-diagonal -rho / (1 - rho^2); the variance of
+    one dimension is x / (x^2 - q^2), x = P_11 + I, q = P_12.  Solving x / (x^2 - q^2) =
+    se^2 for its positive root gives I.  With rho = 0 it is 1 / se^2 - 1, the
+    one-dimensional answer.
+    """
+    p11, q = 1.0 / (1.0 - rho * rho), -rho / (1.0 - rho * rho)
+    v = se * se
+    x = (1.0 + math.sqrt(1.0 + 4.0 * v * v * q * q)) / (2.0 * v)
+    return x - p11
 
 
 def demo_design_runs(n: int) -> None:
