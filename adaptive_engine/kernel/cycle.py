@@ -368,6 +368,13 @@ def _best_information_item(ctx, state, rows, picked) -> tuple[np.ndarray, np.nda
 
 def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:
     st = ctx.design.stopping
+    if rows.size == 1:  # one row (a live session): in Python numbers when the rules allow
+        r = int(rows[0])
+        held = ctx.balanced and any(c < low for c, low in zip(state.area_counts[r].tolist(), ctx.area_min.tolist()))
+        reason = stopping.stop_reason_one(st, n_scored=int(state.n_scored[r]), se=float(state.se[r]),
+                                          no_eligible=bool(picked.item[0] < 0), held=held)
+        if reason is not None:
+            return np.array([reason], dtype=object)
     kwargs = {}
     if st.sprt is not None or st.confidence_interval is not None:
         items, resp = state.scored_items(rows)
