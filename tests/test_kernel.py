@@ -651,3 +651,32 @@ def test_one_row_area_rules_and_eligible_count_equal_the_batch_routes(areas):
         if ctx.balanced:
             target = selection._target_area(ctx, state, one, open_one)
             assert target.dtype == target_batch.dtype and np.array_equal(target, target_batch[r : r + 1])
+
+
+def test_one_row_settle_step_writes_what_the_batch_writes():
+    # Handing out the picks and ending the stopped tests of one row (the live path) leaves
+    # the state and the returned picks as the batch route does, with and without a stop
+    # and with items withheld by the exposure lottery.
+    bank = structured_bank(2, 60, pretest=0, enemies=False, sets=False)
+    ctx = build_context(Design(stopping=Stopping(min_items=2, max_items=10)), bank)
+    keys = randomness.stream_key(randomness.examinee_seeds(5, 4))
+    batch, _ = kernel.start(ctx, keys)
+    alone = batch.copy()
+    rows = np.arange(4)
+    picked = selection.Picked(item=np.array([7, -1, 12, 30]), value=np.array([0.5, np.nan, 0.25, 0.75]),
+                              eligible=np.array([50, 0, 49, 48]), withheld=[(0, 3), (2, 5), (3, 9)])
+    reasons = np.array(["", "no_eligible_item", "", "se_reached"], dtype=object)
+    got_batch = kernel.settle_step(ctx, batch, rows, picked, reasons)
+    got_alone = [kernel.settle_step(ctx, alone, rows[r : r + 1],
+                                    selection.Picked(item=picked.item[r : r + 1], value=picked.value[r : r + 1],
+                                                     eligible=picked.eligible[r : r + 1],
+                                                     withheld=[w for w in picked.withheld if w[0] == r]),
+                                    reasons[r : r + 1]) for r in rows]
+    for name in ("item", "value", "eligible"):
+        one = np.concatenate([getattr(g, name) for g in got_alone])
+        whole = getattr(got_batch, name)
+        assert one.dtype == whole.dtype and np.array_equal(one, whole, equal_nan=one.dtype.kind == "f"), name
+    assert [w for g in got_alone for w in g.withheld] == got_batch.withheld == [(0, 3), (2, 5)]
+    for f in attrs.fields(type(batch)):
+        a, b = getattr(batch, f.name), getattr(alone, f.name)
+        assert a.dtype == b.dtype and np.array_equal(a, b, equal_nan=a.dtype.kind == "f"), f.name

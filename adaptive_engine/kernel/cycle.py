@@ -169,6 +169,20 @@ def settle_step(ctx, state, rows, picked: Picked, reasons: np.ndarray) -> Picked
     Returns the picks as handed out (-1 for a row that stopped).  Shared with the
     multidimensional kernel.
     """
+    if rows.size == 1 and picked.item.dtype == np.int64 and picked.value.dtype == np.float64:
+        # one row (a live session): the same writes by plain indexing
+        r = int(rows[0])
+        reason = reasons[0]
+        if reason != "":
+            state.done[r] = True
+            state.stop_reason[r] = reason
+            item, value = np.full(1, -1, dtype=picked.item.dtype), np.full(1, np.nan, dtype=picked.value.dtype)
+        else:
+            item, value = picked.item.copy(), picked.value.copy()
+        picked_go = Picked(item=item, value=value, eligible=picked.eligible,
+                           withheld=[w for w in picked.withheld if not state.done[w[0]]])
+        _apply_pick(ctx, state, rows, picked_go)
+        return picked_go
     stop = reasons != ""
     state.done[rows[stop]] = True
     state.stop_reason[rows[stop]] = reasons[stop]
