@@ -611,3 +611,72 @@ def test_one_row_record_writes_what_the_batch_record_writes():
         seen_set |= bool((batch.current_set >= 0).any())
     # the test reached each kind of bookkeeping
     assert batch.n_pretest.sum() > 0 and seen_set and batch.blocked_groups.any()
+
+
+@pytest.mark.parametrize("areas", [
+    (AreaRule(name="alpha", min=3, max=6), AreaRule(name="beta", min=3, max=6), AreaRule(name="gamma", min=2, max=6)),
+    (AreaRule(name="alpha", min=4), AreaRule(name="gamma", max=3)),
+    (),
+])
+def test_one_row_area_rules_and_eligible_count_equal_the_batch_routes(areas):
+    # A live session (a batch of one row) takes plain-Python routes for the open areas, the
+    # most-behind area and the count of eligible items: each row alone gets what the batch
+    # gives it, over random area counts (ties between areas included), lengths and used items.
+    from adaptive_engine.kernel import eligibility
+
+    bank = structured_bank(5, 90, pretest=0, enemies=False, sets=False)
+    ctx = build_context(Design(blueprint=Blueprint(areas=areas), stopping=Stopping(min_items=6, max_items=14)),
+                        bank)
+    rng = np.random.default_rng(31)
+    n_rows = 200
+    state, _ = kernel.start(ctx, randomness.stream_key(randomness.examinee_seeds(8, n_rows)))
+    state.area_counts[:] = rng.integers(0, 7, size=state.area_counts.shape)
+    state.n_scored[:] = np.minimum(state.area_counts.sum(axis=1), 14) - rng.integers(0, 2, size=n_rows)
+    state.n_scored[::7] = 0
+    for r in range(n_rows):
+        state.used[r, rng.choice(ctx.n_items, size=rng.integers(0, 20), replace=False)] = True
+    rows = np.arange(n_rows)
+    open_batch = eligibility.area_limits(ctx, state, rows)
+    count_batch = eligibility.eligible_count(ctx, state, rows)
+    if ctx.balanced:  # the cases reached closed and open areas
+        assert not open_batch.all() and open_batch.any()
+    target_batch = selection._target_area(ctx, state, rows, open_batch) if ctx.balanced else None
+    for r in range(n_rows):
+        one = rows[r : r + 1]
+        open_one = eligibility.area_limits(ctx, state, one)
+        assert open_one.dtype == open_batch.dtype and np.array_equal(open_one, open_batch[r : r + 1])
+        for known in (None, open_one):
+            count = eligibility.eligible_count(ctx, state, one, open_area=known)
+            assert count.dtype == count_batch.dtype and np.array_equal(count, count_batch[r : r + 1])
+        if ctx.balanced:
+            target = selection._target_area(ctx, state, one, open_one)
+            assert target.dtype == target_batch.dtype and np.array_equal(target, target_batch[r : r + 1])
+
+
+def test_one_row_settle_step_writes_what_the_batch_writes():
+    # Handing out the picks and ending the stopped tests of one row (the live path) leaves
+    # the state and the returned picks as the batch route does, with and without a stop
+    # and with items withheld by the exposure lottery.
+    bank = structured_bank(2, 60, pretest=0, enemies=False, sets=False)
+    ctx = build_context(Design(stopping=Stopping(min_items=2, max_items=10)), bank)
+    keys = randomness.stream_key(randomness.examinee_seeds(5, 4))
+    batch, _ = kernel.start(ctx, keys)
+    alone = batch.copy()
+    rows = np.arange(4)
+    picked = selection.Picked(item=np.array([7, -1, 12, 30]), value=np.array([0.5, np.nan, 0.25, 0.75]),
+                              eligible=np.array([50, 0, 49, 48]), withheld=[(0, 3), (2, 5), (3, 9)])
+    reasons = np.array(["", "no_eligible_item", "", "se_reached"], dtype=object)
+    got_batch = kernel.settle_step(ctx, batch, rows, picked, reasons)
+    got_alone = [kernel.settle_step(ctx, alone, rows[r : r + 1],
+                                    selection.Picked(item=picked.item[r : r + 1], value=picked.value[r : r + 1],
+                                                     eligible=picked.eligible[r : r + 1],
+                                                     withheld=[w for w in picked.withheld if w[0] == r]),
+                                    reasons[r : r + 1]) for r in rows]
+    for name in ("item", "value", "eligible"):
+        one = np.concatenate([getattr(g, name) for g in got_alone])
+        whole = getattr(got_batch, name)
+        assert one.dtype == whole.dtype and np.array_equal(one, whole, equal_nan=one.dtype.kind == "f"), name
+    assert [w for g in got_alone for w in g.withheld] == got_batch.withheld == [(0, 3), (2, 5)]
+    for f in attrs.fields(type(batch)):
+        a, b = getattr(batch, f.name), getattr(alone, f.name)
+        assert a.dtype == b.dtype and np.array_equal(a, b, equal_nan=a.dtype.kind == "f"), f.name

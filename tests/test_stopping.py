@@ -375,3 +375,26 @@ def test_table_lookup_and_direct_likelihoods_agree_and_bad_answers_are_named():
         stopping.sprt_log_likelihood_ratio(params, items, bad, cut=0.0, indifference=0.2)
     with pytest.raises(AdaptiveEngineError, match="indifference"):
         stopping.sprt_log_likelihood_ratio(params, items, responses, cut=0.0, indifference=0.0)
+
+
+@pytest.mark.parametrize("rules", [design.Stopping(min_items=3, max_items=8, se=0.3),
+                                   design.Stopping(min_items=5, max_items=5, se=0.3),
+                                   design.Stopping(min_items=2, max_items=9)])
+def test_one_examinee_route_gives_the_reasons_of_the_batch_route(rules):
+    # The live driver's one-row route decides as stop_reasons does for every combination
+    # of length, SE (at, above, below the target, NaN), no eligible item and blueprint hold.
+    n = np.arange(0, 11)
+    se = np.array([0.1, 0.3, np.nextafter(0.3, 1.0), 0.5, np.nan])
+    grid = np.array(np.meshgrid(n, np.arange(se.size), [False, True], [False, True], indexing="ij")).reshape(4, -1)
+    n_scored, se_at, no_eligible, held = grid[0], se[grid[1]], grid[2].astype(bool), grid[3].astype(bool)
+    want = stopping.stop_reasons(rules, n_scored=n_scored, se=se_at, no_eligible=no_eligible, held=held)
+    got = [stopping.stop_reason_one(rules, n_scored=int(a), se=float(b), no_eligible=bool(c), held=bool(d))
+           for a, b, c, d in zip(n_scored, se_at, no_eligible, held)]
+    assert got == list(want)
+    assert {"", "se_reached", "max_items", "no_eligible_item"} & set(got) == set(got)
+    assert len(set(got)) >= 3  # several reasons reached
+
+
+def test_one_examinee_route_leaves_other_rules_to_the_batch_route():
+    for rules in (FULL_RULES, design.Stopping(se=0.3, time_limit=60.0), design.Stopping(min_information=0.5)):
+        assert stopping.stop_reason_one(rules, n_scored=5, se=0.2, no_eligible=False, held=False) is None

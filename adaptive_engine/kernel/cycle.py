@@ -169,6 +169,20 @@ def settle_step(ctx, state, rows, picked: Picked, reasons: np.ndarray) -> Picked
     Returns the picks as handed out (-1 for a row that stopped).  Shared with the
     multidimensional kernel.
     """
+    if rows.size == 1 and picked.item.dtype == np.int64 and picked.value.dtype == np.float64:
+        # one row (a live session): the same writes by plain indexing
+        r = int(rows[0])
+        reason = reasons[0]
+        if reason != "":
+            state.done[r] = True
+            state.stop_reason[r] = reason
+            item, value = np.full(1, -1, dtype=picked.item.dtype), np.full(1, np.nan, dtype=picked.value.dtype)
+        else:
+            item, value = picked.item.copy(), picked.value.copy()
+        picked_go = Picked(item=item, value=value, eligible=picked.eligible,
+                           withheld=[w for w in picked.withheld if not state.done[w[0]]])
+        _apply_pick(ctx, state, rows, picked_go)
+        return picked_go
     stop = reasons != ""
     state.done[rows[stop]] = True
     state.stop_reason[rows[stop]] = reasons[stop]
@@ -368,6 +382,13 @@ def _best_information_item(ctx, state, rows, picked) -> tuple[np.ndarray, np.nda
 
 def _stop_reasons(ctx, state, rows, picked) -> np.ndarray:
     st = ctx.design.stopping
+    if rows.size == 1:  # one row (a live session): in Python numbers when the rules allow
+        r = int(rows[0])
+        held = ctx.balanced and any(c < low for c, low in zip(state.area_counts[r].tolist(), ctx.area_min.tolist()))
+        reason = stopping.stop_reason_one(st, n_scored=int(state.n_scored[r]), se=float(state.se[r]),
+                                          no_eligible=bool(picked.item[0] < 0), held=held)
+        if reason is not None:
+            return np.array([reason], dtype=object)
     kwargs = {}
     if st.sprt is not None or st.confidence_interval is not None:
         items, resp = state.scored_items(rows)

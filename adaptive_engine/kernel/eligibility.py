@@ -22,6 +22,14 @@ def area_limits(ctx: TestContext, state: KernelState, rows: np.ndarray):
         slots are needed to reach unmet minimums, only areas below their minimum
         (Kingsbury & Zara 1989, constrained CAT).
     """
+    if rows.size == 1 and ctx.balanced:
+        # one row (a live session): the same rules in Python ints over its few areas
+        r = int(rows[0])
+        counts = state.area_counts[r].tolist()
+        unmet = [max(low - c, 0) for low, c in zip(ctx.area_min.tolist(), counts)]
+        must_fill = sum(unmet) >= ctx.design.stopping.max_items - int(state.n_scored[r])
+        return np.array([[c < high and (u > 0 or not must_fill)
+                          for c, high, u in zip(counts, ctx.area_max.tolist(), unmet)]], dtype=bool)
     counts = state.area_counts[rows]
     below_max = counts < ctx.area_max[None, :]
     if not ctx.balanced:
@@ -132,6 +140,18 @@ def eligible_count(ctx: TestContext, state: KernelState, rows: np.ndarray, *, op
     if ctx.n_groups or len(ctx.set_members) or not ctx.operational.all():
         every = np.broadcast_to(np.arange(ctx.n_items), (rows.size, ctx.n_items))
         return eligible(ctx, state, rows, every, open_area=open_area).sum(axis=1)
+    if rows.size == 1:
+        # one row (a live session): the items of each area less the used ones among them,
+        # summed over the open areas -- the same count from the few used items, without a
+        # pass over the whole bank's mask
+        used_areas = ctx.area[np.flatnonzero(state.used[int(rows[0])])]
+        if not ctx.balanced:
+            return np.array([ctx.n_items - used_areas.size], dtype=np.int64)
+        if open_area is None:
+            open_area = area_limits(ctx, state, rows)
+        sizes = ctx.bank.cached(("area_sizes",), lambda: np.bincount(ctx.area, minlength=ctx.n_areas))
+        free = sizes - np.bincount(used_areas, minlength=ctx.n_areas)
+        return np.array([int(free[open_area[0]].sum())], dtype=np.int64)
     free = ~state.used[rows]
     if ctx.balanced:
         free &= (area_limits(ctx, state, rows) if open_area is None else open_area)[:, ctx.area]

@@ -175,11 +175,33 @@ def _pick_pretest(ctx, state, rows) -> np.ndarray:
 
 def _target_area(ctx, state, rows, open_area) -> np.ndarray:
     """Constrained CAT (Kingsbury & Zara 1989): the open area furthest below its share."""
+    if rows.size == 1:
+        one = _target_area_one(ctx, state, int(rows[0]), open_area[0])
+        if one is not None:
+            return one
     n = np.maximum(state.n_scored[rows], 1)
     gap = ctx.area_share[None, :] - state.area_counts[rows] / n[:, None]
     gap = np.where(open_area, gap, -np.inf)
     target = np.argmax(gap, axis=1)
     return np.where(np.isfinite(gap.max(axis=1)), target, -1)
+
+
+def _target_area_one(ctx, state, r: int, open_area) -> np.ndarray | None:
+    """:func:`_target_area` of one row ``r`` (a live session) in Python floats: the same
+    double arithmetic (an int count over an int divided as doubles, subtracted from the
+    share), the first of equal gaps as argmax takes it; None when a gap is NaN (the array
+    route then decides as it does)."""
+    n = max(int(state.n_scored[r]), 1)
+    best, target = -math.inf, -1
+    for k, (share, count, is_open) in enumerate(zip(ctx.area_share.tolist(), state.area_counts[r].tolist(),
+                                                     open_area.tolist())):
+        if is_open:
+            gap = share - count / n
+            if math.isnan(gap):
+                return None
+            if gap > best:
+                best, target = gap, k
+    return np.array([target if math.isfinite(best) else -1], dtype=np.int64)
 
 
 def _criterion_pick(ctx, state, rows, open_area, known_facts=None) -> Choice:

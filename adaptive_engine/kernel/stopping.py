@@ -269,6 +269,25 @@ def _needs(value, what: str, key: str, b: int):
     return value
 
 
+def stop_reason_one(stopping: Stopping, *, n_scored: int, se: float, no_eligible: bool, held: bool) -> str | None:
+    """:func:`stop_reasons` of one examinee (a live session) under a design whose rules are
+    only the standard error, ``min_items`` and ``max_items`` (and a blueprint holding the
+    test back): the same rules and precedence in Python numbers.  None under any other rule
+    (:func:`stop_reasons` decides then)."""
+    if (stopping.sprt is not None or stopping.confidence_interval is not None or stopping.se_reduction is not None
+            or stopping.min_information is not None or stopping.time_limit is not None):
+        return None
+    allowed = n_scored >= stopping.min_items and not held
+    fired = set()
+    if stopping.se is not None and allowed and se <= stopping.se:  # NaN: never reached
+        fired.add("se_reached")
+    if n_scored >= stopping.max_items:
+        fired.add("max_items")
+    if no_eligible:
+        fired.add("no_eligible_item")
+    return next((k for k in STOP_PRECEDENCE if k in fired), CONTINUE)
+
+
 def stop_reasons(stopping: Stopping, *, n_scored, se, sprt_llr=None, ci_decision=None,
                  se_reduction=None, best_information=None, elapsed=None,
                  no_eligible=None, held=None) -> np.ndarray:
