@@ -485,6 +485,22 @@ def dichotomous_information_columns(theta, b, slope, c, d, one_minus_c, one_minu
     both give the same bits.  Written with in-place operations: this runs for every
     candidate at every step.
     """
+    s, t = _logistic_pair(theta, b, slope)
+    p1 = c * t
+    p1 += d * s
+    p0 = one_minus_c * t
+    p0 += one_minus_d * s
+    p0 *= p1  # denominator P1 P0
+    num = slope_gap * s
+    num *= t
+    num *= num
+    return _information_ratio(num, p0)
+
+
+def _logistic_pair(theta, b, slope) -> tuple[np.ndarray, np.ndarray]:
+    """``s = 1 / (1 + e)`` and ``t = e s`` with ``e = exp(-slope (theta - b))``: the logistic
+    and its complement, by in-place operations on new arrays (the two information
+    functions above and below share them, operation for operation)."""
     theta = np.asarray(theta, dtype=float)
     z = theta - b
     z *= slope
@@ -496,15 +512,7 @@ def dichotomous_information_columns(theta, b, slope, c, d, one_minus_c, one_minu
     s = e + 1.0
     np.reciprocal(s, out=s)  # s = 1 / (1 + e); scipy's expit is far slower than exp
     t = np.multiply(e, s, out=e)
-    p1 = c * t
-    p1 += d * s
-    p0 = one_minus_c * t
-    p0 += one_minus_d * s
-    p0 *= p1  # denominator P1 P0
-    num = slope_gap * s
-    num *= t
-    num *= num
-    return _information_ratio(num, p0)
+    return s, t
 
 
 def _information_ratio(num, p0) -> np.ndarray:
@@ -522,16 +530,7 @@ def dichotomous_information_no_upper(theta, b, slope, c, one_minus_c, slope_gap)
     where ``s`` and ``t`` are) leaves it as it is.  So each value has the same bits, from
     two columns fewer to gather and two fewer passes.  The columns are overwritten.
     """
-    theta = np.asarray(theta, dtype=float)
-    z = theta - b
-    z *= slope
-    np.maximum(z, -700.0, out=z)
-    np.minimum(z, 700.0, out=z)
-    np.negative(z, out=z)
-    e = np.exp(z, out=z)
-    s = e + 1.0
-    np.reciprocal(s, out=s)
-    t = np.multiply(e, s, out=e)
+    s, t = _logistic_pair(theta, b, slope)
     p1 = np.multiply(c, t, out=c)
     p1 += s  # d s with d = 1
     p0 = np.multiply(one_minus_c, t, out=one_minus_c)  # + (1 - d) s = + 0
