@@ -81,6 +81,13 @@ def _mix_int(z: int) -> int:
     return z ^ (z >> 31)
 
 
+def uniform_one(key: int, position: int, purpose: int) -> float:
+    """:func:`uniforms` of one stream key at one position, as a Python float (the same
+    integer arithmetic and the same scaling, so the same number)."""
+    z = _mix_int(key ^ _mix_int((position * (1 << 20) + purpose) & _U64))
+    return (z >> 11) * (1.0 / (1 << 53))
+
+
 def uniforms(keys, position, purpose: int, item=None) -> np.ndarray:
     """Uniform numbers in [0, 1).
 

@@ -288,6 +288,8 @@ def pick_rule(ctx, state, rows) -> RankedPickRule:
     design = ctx.design
     method = design.exposure.method
     size = rows.size
+    if size == 1:  # a live session: the same rule from the row's Python values
+        return _pick_rule_one(design, method, int(state.n_given[int(rows[0])]) == 0)
     first = state.n_given[rows] == 0
     k_first = design.opening.first_item_candidates
     opening = first & (k_first > 1)
@@ -304,6 +306,24 @@ def pick_rule(ctx, state, rows) -> RankedPickRule:
         raise AssertionError(f"exposure method {method!r}")
     return RankedPickRule(draw=opening, width=np.where(opening, k_first, 1),
                           purpose=np.full(size, randomness.FIRST_ITEM), lottery=lottery)
+
+
+def _pick_rule_one(design, method, first: bool) -> RankedPickRule:
+    """:func:`pick_rule` of a batch of one row whose first item is due or not (``first``)."""
+    k_first = design.opening.first_item_candidates
+    opening = first and k_first > 1
+    if method is ExposureMethod.RANDOMESQUE:
+        return RankedPickRule(draw=np.ones(1, dtype=bool),
+                              width=np.array([k_first if opening else design.exposure.candidates]),
+                              purpose=np.array([randomness.RANDOMESQUE]), lottery=np.zeros(1, dtype=bool))
+    if method is ExposureMethod.SYMPSON_HETTER:
+        lottery = not opening
+    elif method in (ExposureMethod.NONE, ExposureMethod.PROGRESSIVE):
+        lottery = False
+    else:  # pragma: no cover - the design types admit no other method
+        raise AssertionError(f"exposure method {method!r}")
+    return RankedPickRule(draw=np.array([opening]), width=np.array([k_first if opening else 1]),
+                          purpose=np.array([randomness.FIRST_ITEM]), lottery=np.array([lottery]))
 
 
 def _choose_ranked(ctx, state, rows, cand, values, ok, rule: RankedPickRule | None = None) -> RankedChoice:
@@ -388,20 +408,25 @@ def _choose_ranked_one(state, row: int, cand, masked, n_ok: int, rule: RankedPic
         return RankedChoice(item=np.array([cand[pos] if found else -1], dtype=np.int64),
                             value=np.array([best if found else np.nan]), kth=np.array([best]),
                             depth=np.ones(1, dtype=np.int64), withheld=[])
-    order = np.argsort(-masked, kind="stable")
-    s_cand = cand[order]
-    s_val = masked[order]
+    values = masked.tolist()
+    if any(v != v for v in values):  # NaN: numpy's order (NaN last)
+        order = np.argsort(-masked, kind="stable").tolist()
+    else:  # Python's sort is stable, as the batch route's
+        order = sorted(range(len(values)), key=lambda j: -values[j])
+    listed = cand.tolist()
+    s_cand = [listed[j] for j in order]
+    s_val = [values[j] for j in order]
     width = min(width_rule, n_ok)
     purpose = int(rule.purpose[0])
     purpose = randomness.FIRST_ITEM if purpose == randomness.FIRST_ITEM else randomness.RANDOMESQUE
-    u = float(randomness.uniforms(state.keys[row : row + 1], state.n_given[row : row + 1], purpose)[0])
+    u = randomness.uniform_one(int(state.keys[row]), int(state.n_given[row]), purpose)
     pos = min(int(u * width), max(width - 1, 0))
     # with fewer than `width` eligible items listed, unlisted ones could belong in the draw
     depth = width_rule if n_ok < width_rule else max(width, 1)
     none_left = n_ok == 0
     return RankedChoice(item=np.array([-1 if none_left else s_cand[pos]], dtype=np.int64),
                         value=np.array([np.nan if none_left else s_val[pos]]),
-                        kth=np.array([s_val[min(max(depth - 1, 0), s_val.size - 1)]]),
+                        kth=np.array([s_val[min(max(depth - 1, 0), len(s_val) - 1)]]),
                         depth=np.array([depth], dtype=np.int64), withheld=[])
 
 
@@ -490,7 +515,13 @@ def _shortlist_pick(ctx, state, rows, restrict, open_area, fits) -> ProvenChoice
     lottery = ctx.design.exposure.method is ExposureMethod.SYMPSON_HETTER
     n_exact = min(width, SHORTLIST_EXACT * (3 if lottery else 1))
     rule = pick_rule(ctx, state, rows)
-    quick = ~(rule.draw & (rule.width > 1)) & ~rule.lottery
+    if rows.size == 1:  # a live session: the same test on the row's Python values
+        quick = np.array([not (bool(rule.draw[0]) and int(rule.width[0]) > 1) and not bool(rule.lottery[0])])
+        if not quick[0]:
+            return _proven_from_list(ctx, state, rows, lists(slice(None)) if cand is None else cand, ok, theta,
+                                     inside, table_ceiling, at, after_flat, n_exact, rule=rule)
+    else:
+        quick = ~(rule.draw & (rule.width > 1)) & ~rule.lottery
     if QUICK_EXACT < n_exact and quick.any():
         every = bool(quick.all())
         sub = slice(None) if every else np.flatnonzero(quick)
@@ -562,6 +593,12 @@ def _proven_from_list(ctx, state, rows, cand, ok, theta, inside, table_ceiling, 
     """The short-list choice of ``rows`` among their first ``n_exact`` eligible candidates
     (by the exposure method), for the rows where it is proven (positions in ``rows``);
     ``rule``: the rows' :class:`RankedPickRule` when the caller has it."""
+    if rows.size == 1:
+        if rule is None:
+            rule = pick_rule(ctx, state, rows)
+        if not rule.lottery[0]:
+            return _proven_from_list_one(ctx, state, rows, cand, ok, theta, inside, table_ceiling, at, after_flat,
+                                         n_exact, rule)
     # the first n_exact eligible columns of each row, in grid order (-1: none)
     first, _ = _first_eligible(ok, n_exact, beyond=False)
     ex_ok = first >= 0
@@ -581,6 +618,32 @@ def _proven_from_list(ctx, state, rows, cand, ok, theta, inside, table_ceiling, 
         keep_rows = set(rows[keep].tolist())
         withheld = [w for w in withheld if w[0] in keep_rows]
     return ProvenChoice(rows=keep, item=ranked.item[keep], value=ranked.value[keep], withheld=withheld)
+
+
+def _proven_from_list_one(ctx, state, rows, cand, ok, theta, inside, table_ceiling, at, after_flat,
+                          n_exact, rule: RankedPickRule) -> ProvenChoice:
+    """:func:`_proven_from_list` for a batch of one row without the Sympson-Hetter lottery (a
+    live session): the same steps, in Python numbers where numpy's would be arrays of one
+    (the exact information keeps its (1, n_exact) shape, so the same arithmetic)."""
+    cols = np.flatnonzero(ok[0])[:n_exact]
+    n_ok = int(cols.size)
+    ex_cand = np.full((1, n_exact), -1, dtype=np.int64)
+    ex_cand[0, :n_ok] = cand[0].take(cols)
+    exact = _exact_information(ctx.bank, np.maximum(ex_cand, 0), theta)
+    # ceiling of everything not evaluated (as in the batch route): np.maximum's NaN kept
+    rest = float(after_flat[int(at[0]) + int(cols[-1]) + 1]) if n_ok == n_exact else -math.inf
+    ceiling = float(table_ceiling[0])
+    if math.isnan(rest) or rest > ceiling:
+        ceiling = rest
+    masked = exact[0]
+    masked[n_ok:] = -np.inf
+    ranked = _choose_ranked_one(state, int(rows[0]), ex_cand[0], masked, n_ok, rule)
+    item = int(ranked.item[0])
+    proven = bool(inside[0]) and int(ranked.depth[0]) <= n_exact and float(ranked.kth[0]) >= ceiling and item >= 0
+    if not proven:
+        return ProvenChoice(rows=np.zeros(0, dtype=np.int64), item=np.zeros(0, dtype=np.int64),
+                            value=np.zeros(0), withheld=[])
+    return ProvenChoice(rows=np.zeros(1, dtype=np.int64), item=ranked.item, value=ranked.value, withheld=[])
 
 
 #: Rows from which :func:`_first_eligible` finds columns by bit arithmetic (fewer: by ranks).
