@@ -143,6 +143,13 @@ def _weighted_moments(w, total, grid) -> tuple[np.ndarray, np.ndarray]:
     return mean, np.maximum(np.sqrt(np.maximum(second - mean * mean, 0.0)), resolution_floor(grid))
 
 
+def consecutive_rows(rows: np.ndarray) -> bool:
+    """True when the non-empty int array ``rows`` runs consecutively upward (``r0, r0 + 1,
+    ...``): such rows of a batch are read and written as one slice (a view), not gathered."""
+    r_n = rows.size
+    return bool(rows[-1] - rows[0] == r_n - 1 and (r_n == 1 or np.all(rows[1:] > rows[:-1])))
+
+
 #: Grid values per block of :func:`add_and_summarize` (about 1 MB of float64: the block's
 #: passes run in the processor's cache instead of streaming the whole batch from memory).
 BLOCK_VALUES = 1 << 17
@@ -179,7 +186,7 @@ def add_and_summarize(log_post, rows, table, items, categories, grid) -> tuple[n
         return mean, sd
     step = max(1, BLOCK_VALUES // max(1, log_post.shape[-1]))
     # consecutive rows (a whole batch, or the rows still testing in order) are read as views
-    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    consecutive = consecutive_rows(rows)
     every = bool(np.all(items >= 0))
     for i in range(0, r_n, step):
         j = min(i + step, r_n)
@@ -255,7 +262,7 @@ def multiply_and_summarize(posterior, rows, probability_table, log_table, items,
         return mean, sd
     grid = np.asarray(grid, dtype=float)
     step = max(1, BLOCK_VALUES // max(1, posterior.shape[-1]))
-    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    consecutive = consecutive_rows(rows)
     every = bool(np.all(items >= 0))
     exponentiate = probability_table is None
     source = log_table if exponentiate else probability_table

@@ -24,6 +24,7 @@ from ..design.types import ExposureMethod, ExtremePatternMethod, ScoringMethod, 
 from ..irt import models
 from ..irt.posterior import (
     add_and_summarize,
+    consecutive_rows,
     multiply_and_summarize,
     normal_log_prior,
     posterior_mean_sd,
@@ -286,7 +287,7 @@ def _as_slice(rows: np.ndarray):
     """``rows`` as a slice when they are consecutive and ascending (indexing then gives
     views instead of copies), else ``rows`` itself."""
     r_n = rows.size
-    if r_n and rows[-1] - rows[0] == r_n - 1 and (r_n == 1 or bool(np.all(rows[1:] > rows[:-1]))):
+    if r_n and consecutive_rows(rows):
         return slice(int(rows[0]), int(rows[0]) + r_n)
     return rows
 

@@ -35,7 +35,7 @@ from ..design.types import Design, SelectionCriterion, Stopping
 from ..errors import AdaptiveEngineError
 from ..irt import multidimensional as md
 from ..irt.models import log_expit
-from ..irt.posterior import BLOCK_VALUES, relative_density
+from ..irt.posterior import BLOCK_VALUES, consecutive_rows, relative_density
 from .state import KernelState
 
 
@@ -794,7 +794,7 @@ def add_and_moments(log_post, rows, table=None, items=None, categories=None, poi
     products = _point_products(points) if moments else None
     step = max(1, BLOCK_VALUES // max(1, log_post.shape[-1]))
     # consecutive rows (a whole batch, or the rows still testing in order) are read as views
-    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    consecutive = consecutive_rows(rows)
     adding = table is not None
     every = adding and bool(np.all(items >= 0))
     for i in range(0, r_n, step):
@@ -924,7 +924,7 @@ def scaled_add_and_moments(post, rows, probabilities=None, log_table=None, items
     if r_n == 0:
         return (mean, cov) if moments else None
     step = max(1, SCALED_BLOCK_VALUES // max(1, post.shape[-1]))
-    consecutive = bool(rows[-1] - rows[0] == r_n - 1 and np.all(rows[1:] > rows[:-1]))
+    consecutive = consecutive_rows(rows)
     adding = probabilities is not None
     every = adding and bool(np.all(items >= 0))
     if adding:
