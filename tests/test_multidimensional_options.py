@@ -40,6 +40,7 @@ from adaptive_engine.kernel.multidimensional_cycle import mle_estimate
 from adaptive_engine.kernel.multidimensional_state import MultidimensionalState, posterior_moments
 from adaptive_engine.kernel.prepared import build_context, with_log_posterior
 from adaptive_engine.simulation.multidimensional_engine import run_chunk, simulate_multidimensional
+from live_replay import replay_through_sessions
 from multidimensional_reference import item_probability, map_reference
 
 
@@ -282,9 +283,6 @@ def test_mle_designs_are_accepted_and_wle_is_refused_at_its_key():
 
 @pytest.mark.long_running
 def test_an_mle_design_runs_batch_as_one_at_a_time_and_replays_as_a_live_session():
-    from adaptive_engine.live.session import ProcessCache, session_result, start_session, submit_answer
-    from adaptive_engine.live.store import open_store
-
     bank = random_bank()
     d = design(scoring='method = "mle"')
     ctx = build_context(d, bank)
@@ -294,16 +292,8 @@ def test_an_mle_design_runs_batch_as_one_at_a_time_and_replays_as_a_live_session
         one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
         np.testing.assert_array_equal(one["items"][0], whole["items"][i])
         np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
-    with open_store(":memory:") as store:
-        cache = ProcessCache()
-        for i in range(1):
-            reply = start_session(store, d, bank, seed=int(whole["seeds"][i]), cache=cache)
-            for pos in range(int((whole["items"][i] >= 0).sum())):
-                expected = bank.item_ids[whole["items"][i, pos]]
-                assert reply["item_id"] == expected
-                reply = submit_answer(store, reply["session_id"], expected, int(whole["responses"][i, pos]),
-                                      cache=cache)
-            assert session_result(store, reply["session_id"])["theta"] == [float(x) for x in whole["theta"][i]]
+    (_, result), = replay_through_sessions(d, bank, whole, 1)
+    assert result["theta"] == [float(x) for x in whole["theta"][0]]
 
 
 # ----------------------------------------------------------------------------------------
