@@ -40,9 +40,12 @@ from __future__ import annotations
 import attrs
 import numpy as np
 import pytest
+from click.testing import CliRunner
 
+from adaptive_engine.bank.files import write_bank_json
 from adaptive_engine.bank.item_bank import bank_from_records
 from adaptive_engine.bank.responses import read_responses
+from adaptive_engine.cli import main
 from adaptive_engine.design.bank_fit import check_design_against_bank
 from adaptive_engine.design.toml_file import parse_design
 from adaptive_engine.design.types import ExposureMethod, ScoringMethod
@@ -137,6 +140,7 @@ class Case:
     weights: bool = False
     prior: bool = False
     exposure_parameters: bool = False
+    expect_stop: str = "se_reached"  # a stop reason some examinee must reach (the case tests its rule)
 
     def texts(self) -> tuple[str, str]:
         def text(criterion, vector):
@@ -195,12 +199,16 @@ CASES = [
     Case("random_theta", sections="[opening]\nrandom_theta = [-1.0, 1.0]\n"),
     Case("examinee_prior", prior=True),
     # stopping
-    Case("length", stopping="[stopping]\nmin_items = 12\nmax_items = 12\n"),
-    Case("min_information", stopping="[stopping]\nmin_items = 3\nmax_items = 20\nmin_information = 0.6\n"),
-    Case("se_reduction", stopping="[stopping]\nmin_items = 3\nmax_items = 20\nse_reduction = 0.02\n"),
-    Case("confidence_interval", weights=True,
+    Case("length", stopping="[stopping]\nmin_items = 12\nmax_items = 12\n", expect_stop="max_items"),
+    Case("min_information", stopping="[stopping]\nmin_items = 3\nmax_items = 20\nmin_information = 0.6\n",
+         expect_stop="little_information_left"),
+    Case("se_reduction", stopping="[stopping]\nmin_items = 3\nmax_items = 20\nse_reduction = 0.02\n",
+         expect_stop="small_se_reduction"),
+    Case("confidence_interval", weights=True, expect_stop="confidence_interval_classified",
          stopping="[stopping]\nmin_items = 4\nmax_items = 20\n[stopping.confidence_interval]\ncut = 0.2\n"
                   "confidence = 0.9\n"),
+    Case("confidence_interval_without_weights", expect_stop="confidence_interval_classified",
+         stopping="[stopping]\nmin_items = 4\nmax_items = 20\n[stopping.confidence_interval]\ncut = -0.3\n"),
     # the report's classification without composite weights (K = 1: the one dimension)
     Case("cut_without_weights"),
     Case("cut_with_weights", weights=True),
@@ -365,6 +373,7 @@ def test_k1_agreement(case, kind):
     if "pretest_positions" in case.sections:
         assert s1.n_pretest.sum() > 0
     assert list(s1.stop_reason) == list(sk.stop_reason)
+    assert case.expect_stop in set(s1.stop_reason)
     worst = max(_close("interim theta", a.interim_theta, b.interim_theta),
                 _close("interim se", a.interim_se, b.interim_se))
     worst = max(worst, compare_reports(a.reports, b.reports, weights=case.weights))
@@ -500,3 +509,22 @@ def test_k1_library_scoring(tmp_path, method, kind):
         assert diff <= tol, f"{field}: {diff:.3g}"
     assert [r["n_items"] for r in one] == list(many.n_items)
     assert [r["status"] for r in one] == list(many.status)
+
+
+@pytest.mark.parametrize("method", ["map", "mle", "eap"])
+def test_k1_score_command(tmp_path, method):
+    """``adaptive-engine score`` on the bank file (JSON) of K = 1 M3PL items and on the file of the
+    same 3PL items: the same output, digit for digit (a bank of one dimension is scored by
+    the one-dimensional estimators, checked in tests/test_reference_score_cli.py)."""
+    bank1, bankk = bank_pair("3pl")
+    responses = _response_file(tmp_path, "3pl")
+    outputs = []
+    for name, bank in (("one", bank1), ("many", bankk)):
+        path = tmp_path / f"{name}.json"
+        write_bank_json(bank, path)  # JSON: the file keeps the scaling constant D
+        result = CliRunner().invoke(main, ["score", str(path), str(responses), "--method", method, "--with-status"])
+        assert result.exit_code == 0, result.output
+        outputs.append(result.output)
+    assert '"M3PL"' in (tmp_path / "many.json").read_text()  # written as a multidimensional bank
+    assert outputs[0] == outputs[1]
+    assert len(outputs[0].splitlines()) == N_EXAMINEES + 3
