@@ -67,12 +67,13 @@ N_ITEMS = 60
 N_EXAMINEES = 30
 SEED = 20261205
 KINDS = ("2pl", "3pl", "grm")
-AREAS = ("east", "west", "north")
+AREAS = ("treatment", "distribution", "safety")
 
 
-def _item_fields(kind: str):
-    """Test input: 60 items with plausible random parameters (not a reference), four of them
-    pretest items, three areas, two enemy groups and two item sets."""
+def _item_fields():
+    """Test input: 60 items of the fictional Meridian Valley water-operator licensing exam,
+    plausible random parameters (not a reference), four of them pretest items, three areas,
+    two enemy groups and two item sets."""
     rng = np.random.default_rng(7)
     a = rng.uniform(0.6, 2.0, N_ITEMS)
     b = rng.normal(0.0, 1.1, N_ITEMS)
@@ -91,7 +92,7 @@ def _item_fields(kind: str):
 
 def banks(kind: str):
     """The one-dimensional bank and the same items as K = 1 multidimensional models."""
-    a, b, c, steps, common = _item_fields(kind)
+    a, b, c, steps, common = _item_fields()
     one, many = [], []
     for i, base in enumerate(common):
         if kind == "grm":
@@ -189,13 +190,15 @@ CASES = [
     Case("sympson_hetter", exposure_parameters=True),
     Case("progressive", sections="[exposure]\nmethod = \"progressive\"\n"),
     # the blueprint, enemies, item sets, pretest seeding
-    Case("blueprint", sections="[blueprint.areas.east]\nmin = 5\nmax = 6\n[blueprint.areas.west]\nmin = 4\n"),
+    Case("blueprint", sections="[blueprint.areas.treatment]\nmin = 5\nmax = 6\n"
+                               "[blueprint.areas.distribution]\nmin = 4\n"),
     Case("max_priority_index", sections="[blueprint]\nmethod = \"max_priority_index\"\n"
-                                        "[blueprint.areas.east]\nmin = 3\nmax = 5\n[blueprint.areas.north]\nmax = 4\n"),
+                                        "[blueprint.areas.treatment]\nmin = 3\nmax = 5\n"
+                                        "[blueprint.areas.safety]\nmax = 4\n"),
     Case("enemies_and_sets", sections="[blueprint]\nenemies = true\nitem_sets = true\n"),
     Case("pretest", sections="[blueprint]\npretest_positions = [2, 6]\n"),
     Case("shadow_test", sections="[blueprint]\nshadow_test = true\nenemies = true\nitem_sets = true\n"
-                                 "[blueprint.areas.east]\nmin = 4\nmax = 5\n"),
+                                 "[blueprint.areas.treatment]\nmin = 4\nmax = 5\n"),
     # the opening and the prior
     Case("opening", sections="[opening]\ntheta = -0.4\nfirst_item_candidates = 5\n"),
     Case("random_theta", sections="[opening]\nrandom_theta = [-1.0, 1.0]\n"),
