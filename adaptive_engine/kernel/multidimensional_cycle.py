@@ -739,6 +739,10 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
     design = ctx.design
     plain = attrs.evolve(design, reporting=attrs.evolve(design.reporting, cut_scores=()),
                          stopping=attrs.evolve(design.stopping, confidence_interval=None))
+    if tab.k == 1 and tab.composite_weights is None:
+        # K = 1 without composite weights: the cut scores classify the one dimension, as the
+        # one-dimensional engine's report does (K > 1 needs the weights: the gate)
+        plain = attrs.evolve(plain, reporting=design.reporting)
     r = est.theta.shape[0]
     common = dict(status=est.status, n_scored=n_scored, n_pretest=n_pretest, stop_reason=stop_reason,
                   lz_star=np.full(r, np.nan))
@@ -767,7 +771,7 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
                                 **{k: c.get(k) for k in keep}}
             rep["classifications"] = c.get("classifications", [])
         else:
-            rep["classifications"] = []
+            rep["classifications"] = first.get("classifications", [])
         rep.update(items=first["items"], stop_reason=first["stop_reason"],
                    person_fit=_vector_person_fit(None if est.lz is None else est.lz[i], threshold))
         out.append(rep)
