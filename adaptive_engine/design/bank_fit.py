@@ -99,6 +99,12 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
         problems += multidimensional_problems(design, bank)
         if problems:
             return problems
+    elif design.selection.kl_weighting is not None:
+        problems.append(Problem("[selection] kl_weighting",
+                        "weighs the Kullback-Leibler criterion of an ability vector, but this design runs on the "
+                        "one-dimensional kernel, whose kullback_leibler always integrates over theta +- "
+                        "kl_interval / sqrt(n): leave the key out (a vector key such as prior_covariance = "
+                        "[[1.0]] sends a design to the vector kernel)"))
     st, bp, sel, ex = design.stopping, design.blueprint, design.selection, design.exposure
     operational = np.asarray(bank.status == "operational")
     n_operational = int(operational.sum())
@@ -423,10 +429,11 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
         out.append(Problem("[scoring] grid_points_per_dimension",
                            f"{many} the kernel keeps no grid (it scores by MAP on the box grid_min..grid_max); "
                            "leave the key out"))
-    if sel.criterion is SelectionCriterion.KULLBACK_LEIBLER:
+    if sel.kl_over_posterior:
         out.append(Problem("[selection] criterion", f"kullback_leibler weights the grid posterior and {why}; "
                                                     f"{many} use d_optimality, a_optimality or "
-                                                    "max_composite_information"))
+                                                    "max_composite_information, or [selection] kl_weighting = "
+                                                    "\"interval\" (KL integrated over a box, no grid)"))
     if st.se_reduction is not None:
         out.append(Problem("[stopping] se_reduction", f"the predicted SE reduction {why}; {many} stop on se or "
                                                       "se_per_dimension, min_information, length or time"))
