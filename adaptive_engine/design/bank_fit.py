@@ -309,6 +309,10 @@ MAX_GRID_DIMENSIONS = 3
 #: covariance from the information, criteria from that covariance (docs/designs.md,
 #: "Ability vectors of more than three dimensions").
 MAX_KERNEL_DIMENSIONS = 6
+#: Largest K of Kullback-Leibler selection over a box (``[selection] kl_weighting =
+#: "interval"``), integrated on 11^K product points per item and pick: 14 641 at K = 4
+#: (about half a second a pick on 200 items, measured), ten times that per dimension beyond.
+MAX_KL_BOX_DIMENSIONS = 4
 #: Default points per dimension of the multidimensional grid, by K (K = 1: grid_points).
 DEFAULT_POINTS_PER_DIMENSION = {2: 41, 3: 17}
 
@@ -430,10 +434,17 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
                            f"{many} the kernel keeps no grid (it scores by MAP on the box grid_min..grid_max); "
                            "leave the key out"))
     if sel.kl_over_posterior:
+        box = (", or [selection] kl_weighting = \"interval\" (KL integrated over a box, no grid)"
+               if k <= MAX_KL_BOX_DIMENSIONS else "")
         out.append(Problem("[selection] criterion", f"kullback_leibler weights the grid posterior and {why}; "
                                                     f"{many} use d_optimality, a_optimality or "
-                                                    "max_composite_information, or [selection] kl_weighting = "
-                                                    "\"interval\" (KL integrated over a box, no grid)"))
+                                                    f"max_composite_information{box}"))
+    elif sel.kl_over_interval and k > MAX_KL_BOX_DIMENSIONS:
+        out.append(Problem("[selection] kl_weighting",
+                           f"the Kullback-Leibler box is integrated on 11^K product points, {11 ** k:,} per item "
+                           f"and pick for K = {k} (seconds a pick on a bank of a few hundred items); it runs for "
+                           f"K <= {MAX_KL_BOX_DIMENSIONS}: {many} use d_optimality, a_optimality or "
+                           "max_composite_information"))
     if st.se_reduction is not None:
         out.append(Problem("[stopping] se_reduction", f"the predicted SE reduction {why}; {many} stop on se or "
                                                       "se_per_dimension, min_information, length or time"))

@@ -417,9 +417,9 @@ def _kullback_leibler(ctx, state, rows) -> np.ndarray:
 #: Gauss-Legendre points of each axis of the Kullback-Leibler box: those of the
 #: one-dimensional criterion (kernel/selection.py ``_kl_values``).
 KL_AXIS_POINTS = 11
-#: Product points of the box taken together, at most: the values of a block of them for
-#: every item of a row are computed in one pass.
-KL_BLOCK_POINTS = 64
+#: Values of the Kullback-Leibler box computed in one pass, at most (rows x points x items x
+#: categories): the block of product points taken together shrinks with the batch and the bank.
+KL_BLOCK_VALUES = 1 << 20
 
 
 def kl_box_rule(k: int) -> tuple[np.ndarray, np.ndarray]:
@@ -457,12 +457,17 @@ def _kullback_leibler_over_box(ctx, state, rows) -> np.ndarray:
     p0 = np.exp(log_p0)
     own = np.where(finite, log_p0, 0.0)
     volume = delta ** k  # (R,); delta itself at K = 1
-    total = np.zeros((rows.size, params.slopes.shape[0]))
-    for start in range(0, points.shape[0], KL_BLOCK_POINTS):
-        block = points[start:start + KL_BLOCK_POINTS]  # (M, K)
+    r_n, n_items = rows.size, params.slopes.shape[0]
+    total = np.zeros((r_n, n_items))
+    size = max(1, min(points.shape[0], KL_BLOCK_VALUES // max(1, r_n * n_items * log_p0.shape[-1])))
+    for start in range(0, points.shape[0], size):
+        block = points[start:start + size]  # (M, K)
         at = theta[:, None, :] + block[None, :, :] * delta[:, None, None]  # (R, M, K)
         log_p1 = md.log_probabilities(params, at[:, :, None, :])  # (R, M, n, C)
-        for m in range(block.shape[0]):
-            terms = np.where(finite, p0 * (own - np.where(finite, log_p1[:, m], 0.0)), 0.0)
-            total += weights[start + m] * volume[:, None] * terms.sum(axis=2)
+        terms = np.where(finite[:, None], p0[:, None] * (own[:, None] - np.where(finite[:, None], log_p1, 0.0)),
+                         0.0)
+        # (w_i delta^K) x the divergence, as the one-dimensional criterion weighs its points
+        terms = (weights[start:start + size][None, :] * volume[:, None])[:, :, None] * terms.sum(axis=-1)
+        for m in range(block.shape[0]):  # the points added one at a time, in the rule's order
+            total += terms[:, m]
     return total
