@@ -530,6 +530,10 @@ def describe_design(design: Design) -> list[str]:
     words = _CRITERION_WORDS[sel.criterion].format(
         kl_interval=sel.kl_interval, strata=sel.strata,
         blocking="b-blocked" if sel.b_blocking else "no b-blocking")
+    if sel.kl_over_interval:
+        words += " on every ability dimension (the box of the product rule)"
+    elif sel.kl_weighting is not None:
+        words = "the item with the most Kullback-Leibler information weighted by the posterior on the ability grid"
     lines.append(f"selection: {words}")
     exposure = {
         ExposureMethod.NONE: "no exposure control",
