@@ -7,7 +7,8 @@ multidimensional kernel with the same items written as K = 1 M2PL, M3PL or MGRM
 (slope ``a1 = a``, intercept ``-a b`` or ``-a b_k``, the same ``c``), the design's option
 mapped to its vector counterpart (a vector key such as ``prior_covariance = [[1.0]]`` sends
 a design to the multidimensional kernel; ``max_fisher_information`` <-> ``d_optimality``,
-``a_optimality``, ``max_composite_information`` with weights ``[1]``, or itself at K = 1).
+``a_optimality``, ``max_composite_information`` with weights ``[1]``, or itself at K = 1;
+``kullback_leibler`` with ``kl_weighting = "interval"`` on the vector side).
 
 Compared: the items given, in order, and the answers; the stop reasons; the interim
 estimate and SE after every answer; the final report (estimate, SE, interval, scaled
