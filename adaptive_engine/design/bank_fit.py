@@ -350,15 +350,8 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     sc, sel, ex, st, rp = (design.scoring, design.selection, design.exposure, design.stopping,
                            design.reporting)
     many = f"with an ability of {k} dimensions ({names})"
-    # no published weighted likelihood for an ability vector is followed here: WLE stays one-dimensional
-    vector_methods = (ScoringMethod.EAP, ScoringMethod.MAP, ScoringMethod.MLE)
-    if sc.method not in vector_methods:
-        out.append(Problem("[scoring] method", f"{sc.method.value} is not available {many}; use eap, map or mle"))
-    if design.final_method not in vector_methods:
-        out.append(Problem("[reporting] final_method",
-                           f"{design.final_method.value} is not available {many}; use eap, map or mle"))
     if k > MAX_GRID_DIMENSIONS:
-        return out + _gridless_problems(design, k, many)
+        return out + _gridless_wle_problems(design, k, many) + _gridless_problems(design, k, many)
     points = multidimensional_grid_points(design, k)
     if points ** k > MAX_MULTIDIMENSIONAL_GRID:
         out.append(Problem("[scoring] grid_points_per_dimension" if sc.grid_points_per_dimension is not None
@@ -402,6 +395,18 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
         out.append(Problem("[[reporting.cut_scores]]",
                            f"{many} cut scores classify the composite of [reporting] composite_weights; "
                            "give them"))
+    return out
+
+
+def _gridless_wle_problems(design: Design, k: int, many: str) -> list[Problem]:
+    """The weighted likelihood (WLE) for K = ``k`` > :data:`MAX_GRID_DIMENSIONS`: not run
+    there (the kernel's WLE starts from the posterior mean on the grid, as its MLE does)."""
+    out = []
+    for where, method in (("[scoring] method", design.scoring.method),
+                          ("[reporting] final_method", design.final_method)):
+        if method is ScoringMethod.WLE:
+            out.append(Problem(where, f"wle starts from the posterior mean on the grid of points ** K, which the "
+                                      f"kernel keeps for K <= {MAX_GRID_DIMENSIONS} only; {many} use map"))
     return out
 
 

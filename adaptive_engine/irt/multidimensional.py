@@ -274,6 +274,32 @@ def slope_information(params: MultidimensionalParameters, theta) -> np.ndarray:
     return out
 
 
+def slope_skewness(params: MultidimensionalParameters, theta, responses=None) -> tuple:
+    """Fisher information ``J`` about ``eta = a . theta`` and Warm's term along ``eta``,
+    ``c = sum_k P'_k P''_k / P_k`` (derivatives with respect to ``eta``, the scaling D inside).
+
+    ``c`` is taken as ``sum_k P_k r_k (r_k^2 + r'_k)`` with ``r_k``, ``r'_k`` the first and
+    second derivatives of ``log P_k`` (:func:`log_derivatives`), since ``P'_k = P_k r_k``
+    and ``P''_k = P_k (r'_k + r_k^2)``: no probability is divided by, so steep items far
+    from theta stay finite.  It is also ``d J / d eta - E[r r']`` (the bracket
+    ``d_u I_rt - kappa_rt,u`` of the Cox & Snell (1968) bias, per item ``c a_r a_t a_u``),
+    which the weighted likelihood of an ability vector needs
+    (:func:`adaptive_engine.irt.multidimensional_estimation.wle_estimate_md`).  For the
+    M2PL ``c = D^3 P Q (Q - P)``.  ``J`` is :func:`slope_information`.  Shapes ``R``.
+
+    With ``responses`` (broadcasting against ``R``) a third array is returned: ``d log
+    P_x / d eta`` of the observed category x, 0 where a response is -1 (the gradient of the
+    log-likelihood is that times ``a``, as :func:`log_likelihood_gradient`).
+    """
+    log_p, zz, c, top = _log_terms(params, theta)
+    r, r2 = _log_derivatives_from(params.scaling, log_p, zz, c, top)
+    skew = np.sum(np.exp(log_p) * r * (r * r + r2), axis=-1)
+    if responses is None:
+        return slope_information(params, theta), skew
+    picked, answered = _picked(r, responses)
+    return slope_information(params, theta), skew, np.where(answered, picked, 0.0)
+
+
 def _graded_slope_information(params: MultidimensionalParameters, theta) -> np.ndarray:
     """``J`` of graded items without a lower asymptote, without logs.
 

@@ -88,15 +88,17 @@ from .estimation import (
     AT_UPPER_BOUND,
     CONVERGED,
     NO_INFORMATION,
+    NO_RESPONSES,
     NOT_CONVERGED,
     PRIOR_DOMINATED,
     PRIOR_DOMINATED_SHARE,
     checked_answers,
     row_sum,
 )
+from .small_matrices import determinant, inverse, matrix_vector, quadratic_form
 
-#: Methods of :func:`estimate_md` (Warm's WLE has no multidimensional form here).
-METHODS_MD = ("mle", "map", "eap")
+#: Methods of :func:`estimate_md`.
+METHODS_MD = ("mle", "map", "eap", "wle")
 #: Default box of the MAP and MLE on every dimension.
 DEFAULT_BOUNDS = (-6.0, 6.0)
 #: The box of the MAP behind the adaptive EAP grid: wide, the prior keeps the mode finite.
@@ -137,12 +139,12 @@ class MultidimensionalEstimate:
     theta : float array, shape (P, K)
     covariance : float array, shape (P, K, K)
         MAP: inverse curvature of the log posterior at the mode; EAP: posterior
-        covariance; MLE: inverse test information matrix (capped, see the module docstring).
+        covariance; MLE, WLE: inverse test information matrix (capped, see the module docstring).
     se : float array, shape (P, K)
         Square roots of the diagonal of ``covariance``.
     n_items : int array, shape (P,)
     method : str
-        ``"mle"``, ``"map"`` or ``"eap"``.
+        ``"mle"``, ``"map"``, ``"eap"`` or ``"wle"``.
     status : object array of str, shape (P,)
         See :mod:`adaptive_engine.irt.estimation` (the same statuses).
     """
@@ -678,6 +680,214 @@ def mle_estimate_md(bank_or_params, items, responses, *, prior_mean=None, prior_
                                     status=status)
 
 
+def wle_estimate_md(bank_or_params, items, responses, *, prior_mean=None, prior_covariance=None,
+                    bounds=DEFAULT_BOUNDS, start=None) -> MultidimensionalEstimate:
+    """Weighted likelihood ability vector (Warm 1989; for a vector, Firth's 1993 modified score).
+
+    The root of ``U*(theta) = U(theta) + tr(I(theta)^-1 J_r(theta)) / 2`` in ``bounds``
+    (:func:`wle_solve`), started from the MAP under the given prior (which serves only as
+    the start, and as the answer for examinees without answers).  With K = 1 this is
+    Warm's equation ``l' + J / (2 I) = 0`` of :func:`~.estimation.wle`; for M2PL items it is
+    the mode of ``L(theta) det(I(theta))^(1/2)`` (the Jeffreys prior).  Unlike the MLE it is
+    finite for all-lowest / all-highest patterns of M2PL and MGRM items (the status still
+    names the pattern).  The covariance is the inverse test information matrix at the
+    estimate (capped), as the one-dimensional WLE's ``1 / sqrt(I)``.  Statuses as
+    :func:`mle_estimate_md`: ``converged``, ``all_lowest`` / ``all_highest`` (a finite WLE of
+    such a pattern), ``at_lower_bound`` / ``at_upper_bound`` (no root inside the box: the
+    estimate sits at it, e.g. with lower asymptotes), ``no_information`` (a direction no
+    answered item measures: no WLE; the estimate stays at the start), ``not_converged``,
+    ``no_responses``.
+    """
+    data = _prepare(bank_or_params, items, responses)
+    n, k = data.items.shape[0], data.params.n_dimensions
+    prior = _prior(prior_mean, prior_covariance, n, k)
+    lo, hi = _check_bounds(bounds)
+    start = _start_array(start, n, k)
+    if start is None:
+        start, _, _ = _map_arrays(data, prior, lo, hi, None)
+    items_given = np.where(data.answered, data.items, -1)
+    theta, info, code = wle_solve(data.params, items_given, data.responses, start, (lo, hi))
+    width = hi - lo
+    empty = data.n_items == 0
+    info[empty] = prior.precision[empty]
+    cov = capped_covariance(info, width)
+    theta[empty] = np.clip(prior.mean[empty], lo, hi)
+    se = _se_of(cov)
+    status = _finish_status(data, code, theta, se, prior, False)
+    status = np.where(code == NO_INFORMATION, NO_INFORMATION, status)  # no WLE, whatever the pattern
+    return MultidimensionalEstimate(theta=theta, covariance=cov, se=se, n_items=data.n_items, method="wle",
+                                    status=status)
+
+
+# ----------------------------------------------------------------------------------------
+# WLE: Warm's weighted likelihood for an ability vector (Firth's modified score)
+
+#: Fisher-scoring iterations of the WLE, halvings of a step, the largest step on any
+#: dimension, and the Fisher step that counts as converged.
+WLE_ITERATIONS = 100
+WLE_HALVINGS = 40
+WLE_MAX_STEP = 1.0
+WLE_TOLERANCE = 1e-10
+#: The test information matrix counts as singular (a direction no answered item measures)
+#: when its determinant is below this share of the product of its diagonal (Hadamard's
+#: inequality bounds the ratio by 1), as in the decision kernel's MLE.
+WLE_SINGULAR_SHARE = 1e-10
+
+
+class _WleTerms(NamedTuple):
+    information: np.ndarray  # (R, K, K) test information matrix
+    modified: np.ndarray  # (R, K) Firth's modified score U + tr(I^-1 J_r) / 2
+    singular: np.ndarray  # (R,) bool: the information matrix is (next to) singular
+
+
+def wle_terms(params: md.MultidimensionalParameters, items, responses, theta) -> _WleTerms:
+    """The test information matrix ``I``, the modified score ``U*`` and whether ``I`` is
+    singular, at ``theta`` (R, K), over the answers ``items``, ``responses`` (R, W) (-1 where
+    not answered).
+
+    ``U*_r = U_r + 1/2 sum_i c_i a_ir a_i' I^-1 a_i``, i.e. ``U + tr(I^-1 J_r) / 2`` with
+    ``J_r = sum_i a_ir c_i a_i a_i'`` and ``c_i`` Warm's term along ``a_i . theta``
+    (:func:`adaptive_engine.irt.multidimensional.slope_skewness`); derived in
+    docs/multidimensional_scoring.md.  Each answer's terms are elementwise, added one answer
+    after another in the order given, and ``I^-1`` is the elementwise inverse of
+    :mod:`.small_matrices`: a row's values are its own, whatever the batch holds.  Where
+    ``I`` is singular ``U*`` is that of the identity in its place (unused: no WLE there).
+    """
+    items = np.asarray(items)
+    responses = np.asarray(responses)
+    answered = (items >= 0) & (responses >= 0)
+    sub = params.take(np.where(answered, items, 0))
+    j, skew, r = md.slope_skewness(sub, theta[:, None, :], np.where(answered, responses, -1))
+    j, skew = np.where(answered, j, 0.0), np.where(answered, skew, 0.0)
+    a = sub.slopes  # (R, W, K)
+    r_n, k = theta.shape
+    info = np.zeros((r_n, k, k))
+    grad = np.zeros((r_n, k))
+    reached = np.flatnonzero(answered.any(axis=0))
+    for col in reached:
+        for p in range(k):
+            for q in range(p, k):
+                info[:, p, q] = info[:, p, q] + j[:, col] * a[:, col, p] * a[:, col, q]
+                if q != p:
+                    info[:, q, p] = info[:, p, q]
+        grad = grad + r[:, col, None] * a[:, col]
+    diag = np.prod(np.diagonal(info, axis1=-2, axis2=-1), axis=-1)
+    singular = ~(determinant(info) > WLE_SINGULAR_SHARE * diag)
+    inv = inverse(np.where(singular[:, None, None], np.eye(k), info))
+    correction = np.zeros((r_n, k))
+    for col in reached:
+        term = (skew[:, col] * quadratic_form(a[:, col], inv))[:, None] * a[:, col]
+        correction = correction + np.where(answered[:, col, None], term, 0.0)
+    return _WleTerms(info, grad + 0.5 * correction, singular)
+
+
+def _fisher_step(terms: _WleTerms, x, lo, hi):
+    """The projected Fisher step ``I^-1 U*`` on the free coordinates, its merit
+    ``U*_free' I_free^-1 U*_free`` and which coordinates are held at a bound (U* outward)."""
+    k = x.shape[1]
+    g = terms.modified
+    held = ((x >= hi) & (g > 0)) | ((x <= lo) & (g < 0))
+    free = ~held
+    mat = np.where(free[:, :, None] & free[:, None, :], terms.information, np.eye(k))
+    g_free = np.where(free, g, 0.0)
+    step = matrix_vector(inverse(np.where(terms.singular[:, None, None], np.eye(k), mat)), g_free)
+    step = np.where(free, step, 0.0)
+    merit = _dot(step, g_free)
+    return step, merit, held
+
+
+def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bounds):
+    """Weighted likelihood estimates of ability vectors: roots of the modified score in the box.
+
+    Fisher scoring ``theta <- theta + t I(theta)^-1 U*(theta)`` from ``start`` (R, K),
+    projected on ``[lo, hi]^K`` (a coordinate at a bound whose ``U*`` points outward is
+    held there, the step solves the free coordinates' block), every step at most
+    :data:`WLE_MAX_STEP` on any dimension.  The full step (t = 1) is halved (up to
+    :data:`WLE_HALVINGS` times) until the merit ``U*' I^-1 U*`` (the squared length of the
+    Fisher step in the metric of I) falls to at most ``(1 - t / 2)`` of its value: Fisher
+    scoring alone can overshoot the root of a modified score (for one M2PL item it lands
+    exactly as far on the other side, for ever), a halved step does not.  A row has
+    converged once its Fisher step is below :data:`WLE_TOLERANCE` on every dimension (the
+    step is taken).
+
+    Returns ``theta`` (R, K), the test information matrix at it (R, K, K) and a status per
+    row: ``converged``; ``at_lower_bound`` / ``at_upper_bound`` (a coordinate is held at the
+    box with the modified score pushing outward: no root inside); ``no_information`` (the
+    information matrix is singular: no WLE, theta stays where it was); ``not_converged``
+    (no halving lowered the merit, or :data:`WLE_ITERATIONS` steps were not enough);
+    ``no_responses`` (nothing answered; theta the start).  Every row is its own.
+    """
+    lo, hi = (float(b) for b in bounds)
+    items = np.asarray(items)
+    responses = np.asarray(responses)
+    x = np.clip(np.array(start, dtype=float), lo, hi)
+    r_n, k = x.shape
+    status = np.full(r_n, NOT_CONVERGED, dtype=object)
+    answered = ((items >= 0) & (responses >= 0)).any(axis=1)
+    status[~answered] = NO_RESPONSES
+    active = np.flatnonzero(answered)
+    if active.size:
+        terms = wle_terms(params, items[active], responses[active], x[active])
+    for _ in range(WLE_ITERATIONS):
+        if active.size == 0:
+            break
+        xa = x[active]
+        step, merit, _ = _fisher_step(terms, xa, lo, hi)
+        singular = terms.singular
+        status[active[singular]] = NO_INFORMATION
+        big = np.max(np.abs(step), axis=1)
+        done = ~singular & (big < WLE_TOLERANCE)
+        x[active[done]] = np.clip(xa[done] + step[done], lo, hi)
+        status[active[done]] = CONVERGED
+        go = np.flatnonzero(~singular & ~done)
+        if go.size == 0:
+            active = active[:0]
+            break
+        rows = active[go]
+        scale = np.minimum(1.0, WLE_MAX_STEP / big[go])
+        direction = step[go] * scale[:, None]
+        t = scale.copy()
+        base = xa[go]
+        new = np.clip(base + direction, lo, hi)
+        new_terms = wle_terms(params, items[rows], responses[rows], new)
+        _, new_merit, _ = _fisher_step(new_terms, new, lo, hi)
+        worse = new_terms.singular | ~(new_merit <= (1.0 - 0.5 * t) * merit[go])
+        factor = np.ones(go.size)
+        for _ in range(WLE_HALVINGS):
+            if not worse.any():
+                break
+            w = np.flatnonzero(worse)
+            factor[w] = factor[w] * 0.5
+            t[w] = scale[w] * factor[w]
+            new[w] = np.clip(base[w] + factor[w, None] * direction[w], lo, hi)
+            sub = wle_terms(params, items[rows[w]], responses[rows[w]], new[w])
+            _, sub_merit, _ = _fisher_step(sub, new[w], lo, hi)
+            for name, value in zip(_WleTerms._fields, sub):
+                getattr(new_terms, name)[w] = value
+            worse[w] = sub.singular | ~(sub_merit <= (1.0 - 0.5 * t[w]) * merit[go][w])
+        ok = ~worse
+        x[rows[ok]] = new[ok]
+        keep = go[ok]  # rows still iterating, their terms at the new point
+        terms = _WleTerms(*(v[ok] for v in new_terms))
+        active = active[keep]
+    # a last look at the rows that converged: held at a bound means no root inside
+    rows = np.flatnonzero(status == CONVERGED)
+    info = np.full((r_n, k, k), np.nan)
+    if rows.size:
+        final = wle_terms(params, items[rows], responses[rows], x[rows])
+        _, _, held = _fisher_step(final, x[rows], lo, hi)
+        up = np.any(held & (x[rows] >= hi), axis=1)
+        down = np.any(held & (x[rows] <= lo), axis=1)
+        status[rows] = np.where(final.singular, NO_INFORMATION,
+                                np.where(up, AT_UPPER_BOUND, np.where(down, AT_LOWER_BOUND, CONVERGED)))
+        info[rows] = final.information
+    other = np.flatnonzero((status != CONVERGED) & (status != AT_UPPER_BOUND) & (status != AT_LOWER_BOUND)
+                           & answered)
+    if other.size:
+        info[other] = wle_terms(params, items[other], responses[other], x[other]).information
+    return x, info, status
+
+
 # ----------------------------------------------------------------------------------------
 # EAP
 
@@ -868,6 +1078,10 @@ mle_estimate_md.__doc__ += _INPUT_DOC + """    bounds : (float, float)
     start : array (K,) or (P, K), optional
         Start values instead of the MAP.
 """
+wle_estimate_md.__doc__ += _INPUT_DOC + """    bounds : (float, float)
+    start : array (K,) or (P, K), optional
+        Start values instead of the MAP.
+"""
 eap_estimate_md.__doc__ += _INPUT_DOC + """    points_per_dimension : int, optional
         Points per axis of the adaptive grid (K <= 3), 5..401.
     grid : sequence of K 1-D arrays, optional
@@ -875,22 +1089,21 @@ eap_estimate_md.__doc__ += _INPUT_DOC + """    points_per_dimension : int, optio
 
 
 def check_method_md(method: str, *, location: str = "method") -> None:
-    """Refuse a method multidimensional scoring does not have (``"wle"`` among them), located."""
+    """Refuse a method multidimensional scoring does not have, located."""
     if method not in METHODS_MD:
         raise AdaptiveEngineError(
             f"method {method!r} is not available for a bank of several dimensions (use one of "
-            f"{', '.join(METHODS_MD)}; Warm's weighted likelihood has no multidimensional form here)",
-            location=location)
+            f"{', '.join(METHODS_MD)})", location=location)
 
 
 def estimate_md(bank_or_params, items, responses, method: str, *, prior_mean=None, prior_covariance=None,
                 bounds=DEFAULT_BOUNDS) -> MultidimensionalEstimate:
-    """Ability vectors by ``method`` (``"mle"``, ``"map"`` or ``"eap"``); ``bounds`` not for EAP."""
+    """Ability vectors by ``method`` (``"mle"``, ``"map"``, ``"eap"`` or ``"wle"``); ``bounds`` not for EAP."""
     check_method_md(method)
     if method == "eap":
         return eap_estimate_md(bank_or_params, items, responses, prior_mean=prior_mean,
                                prior_covariance=prior_covariance)
-    func = map_estimate_md if method == "map" else mle_estimate_md
+    func = {"map": map_estimate_md, "mle": mle_estimate_md, "wle": wle_estimate_md}[method]
     return func(bank_or_params, items, responses, prior_mean=prior_mean, prior_covariance=prior_covariance,
                 bounds=bounds)
 

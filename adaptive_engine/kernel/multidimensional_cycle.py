@@ -506,12 +506,19 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
     final estimate (``final``) ``fixed_step`` keeps the interim estimate and covariance the
     test ended on.
     """
+    theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
+    return _with_stand_in(ctx, state, rows, theta, mle_cov, status, status != "converged", mean, cov, final)
+
+
+def _with_stand_in(ctx, state, rows, theta, est_cov, status, missing, mean, cov, final):
+    """``theta``, ``est_cov`` with the design's stand-in (``[scoring] extreme_pattern_method``,
+    :func:`mle_or_fallback`) in the rows where ``missing``; (theta, covariance, status)."""
     from ..design.types import ExtremePatternMethod
 
     tab = ctx.multidimensional
     sc = ctx.design.scoring
-    theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
-    fb = np.flatnonzero(status != "converged")
+    mle_cov = est_cov
+    fb = np.flatnonzero(missing)
     if fb.size == 0:
         return theta, mle_cov, status
     how = sc.extreme_pattern_method
@@ -538,6 +545,66 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
         raise AssertionError(how)
     theta[fb], mle_cov[fb] = sub_theta, sub_cov
     return theta, mle_cov, status
+
+
+#: Statuses of the weighted likelihood estimate (:func:`wle_estimate`) the interim estimate
+#: takes (a mixed pattern, as the one-dimensional kernel; at a bound: no root inside the
+#: box, the estimate at the box's edge, as the one-dimensional WLE), and those the final
+#: estimate takes (also a finite WLE of an all-lowest or all-highest pattern).
+WLE_INTERIM = ("converged", "at_lower_bound", "at_upper_bound")
+WLE_FINAL = WLE_INTERIM + ("all_lowest", "all_highest")
+
+
+def wle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Weighted likelihood estimate of the ability vector (R, K), its covariance (R, K, K) and
+    status (R,), from ``start_theta`` (the posterior mean on the grid).
+
+    The root of Firth's (1993) modified score ``U + tr(I^-1 J_r) / 2`` -- Warm's (1989)
+    weighted likelihood equation for K = 1 -- in the grid's box ``[grid_min,
+    grid_max]^K``, by projected Fisher scoring with halved steps
+    (:func:`adaptive_engine.irt.multidimensional_estimation.wle_solve`; derived in
+    docs/multidimensional_scoring.md).  The covariance is ``I(theta_hat)^-1``, the
+    one-dimensional WLE's ``1 / I``.  Status: ``no_responses``, ``all_lowest`` or
+    ``all_highest`` (the pattern; the WLE is computed for the last two, and finite for M2PL
+    and MGRM items), else ``converged``, ``at_lower_bound``, ``at_upper_bound`` (held at the
+    box: no root inside), ``no_information`` (a direction no answered item measures: a
+    singular information matrix, no WLE) or ``not_converged``.  The estimate and covariance
+    of the rows without a WLE (``no_responses``, ``no_information``, ``not_converged``) are
+    NaN.  Every row is computed on its own (elementwise, the answers added in order, the
+    small inverses elementwise).
+    """
+    from ..irt.multidimensional_estimation import wle_solve
+
+    tab = ctx.multidimensional
+    sc = ctx.design.scoring
+    items, resp = state.scored_items(rows)
+    theta, info, solved = wle_solve(tab.params, items, np.where(items >= 0, resp, -1), start_theta,
+                                    (sc.grid_min, sc.grid_max))
+    pattern = pattern_status(tab, items, resp)
+    exists = np.isin(solved, WLE_INTERIM)
+    status = np.where(exists & (pattern != ""), pattern, solved).astype(object)
+    status[pattern == "no_responses"] = "no_responses"
+    k = tab.k
+    cov = np.full((rows.size, k, k), np.nan)
+    if exists.any():
+        cov[exists] = inverse(info[exists])
+    theta = np.where(exists[:, None], theta, np.nan)
+    return theta, cov, status
+
+
+def wle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
+    """The weighted likelihood estimate of ``rows`` where the design takes it, else the
+    design's stand-in (:func:`mle_or_fallback`); (theta, covariance, status).
+
+    The interim estimate takes the WLE of a mixed pattern (:data:`WLE_INTERIM`): while the
+    pattern is all-lowest or all-highest ``[scoring] extreme_pattern_method`` stands in, as
+    in the one-dimensional kernel.  The final estimate takes the WLE of every pattern that
+    has one (:data:`WLE_FINAL`).  Where there is none (no answers, a singular information
+    matrix, no convergence) the stand-in serves both.
+    """
+    theta, wle_cov, status = wle_estimate(ctx, state, rows, mean)
+    usable = np.isin(status, WLE_FINAL if final else WLE_INTERIM)
+    return _with_stand_in(ctx, state, rows, theta, wle_cov, status, ~usable, mean, cov, final)
 
 
 def _se(cov) -> np.ndarray:
@@ -575,6 +642,8 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
         mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
     if ctx.design.scoring.method is ScoringMethod.MLE:
         mean, cov, _ = mle_or_fallback(ctx, state, rows, mean, cov)
+    elif ctx.design.scoring.method is ScoringMethod.WLE:
+        mean, cov, _ = wle_or_fallback(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
@@ -699,6 +768,8 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
                           np.where(ok, "converged", "not_converged")).astype(object)
     elif ctx.design.final_method is ScoringMethod.MLE:
         mean, cov, status = mle_or_fallback(ctx, state, rows, mean, cov, final=True)
+    elif ctx.design.final_method is ScoringMethod.WLE:
+        mean, cov, status = wle_or_fallback(ctx, state, rows, mean, cov, final=True)
     return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
                                           lz=person_fit_lz(ctx, state, rows, mean))
 
