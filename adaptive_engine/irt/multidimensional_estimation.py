@@ -95,7 +95,7 @@ from .estimation import (
     checked_answers,
     row_sum,
 )
-from .small_matrices import determinant, inverse, matrix_vector, quadratic_form
+from .small_matrices import cholesky_factor, determinant, inverse, matrix_vector, quadratic_form
 
 #: Methods of :func:`estimate_md`.
 METHODS_MD = ("mle", "map", "eap", "wle")
@@ -736,8 +736,10 @@ WLE_SINGULAR_SHARE = 1e-10
 
 class _WleTerms(NamedTuple):
     information: np.ndarray  # (R, K, K) test information matrix
+    observed: np.ndarray  # (R, K, K) minus the Hessian of the log-likelihood
     modified: np.ndarray  # (R, K) Firth's modified score U + tr(I^-1 J_r) / 2
     singular: np.ndarray  # (R,) bool: the information matrix is (next to) singular
+    jacobian: np.ndarray  # (R, K, K) minus the derivative of the modified score (K <= 3; else NaN)
 
 
 def wle_terms(params: md.MultidimensionalParameters, items, responses, theta) -> _WleTerms:
@@ -757,58 +759,117 @@ def wle_terms(params: md.MultidimensionalParameters, items, responses, theta) ->
     responses = np.asarray(responses)
     answered = (items >= 0) & (responses >= 0)
     sub = params.take(np.where(answered, items, 0))
-    j, skew, r = md.slope_skewness(sub, theta[:, None, :], np.where(answered, responses, -1))
-    j, skew = np.where(answered, j, 0.0), np.where(answered, skew, 0.0)
+    terms = md.weighted_likelihood_terms(sub, theta[:, None, :], np.where(answered, responses, -1))
+    j, skew, r, r2 = (np.where(answered, x, 0.0) for x in (terms.information, terms.skew, terms.score,
+                                                            terms.curvature))
     a = sub.slopes  # (R, W, K)
     r_n, k = theta.shape
     info = np.zeros((r_n, k, k))
+    observed = np.zeros((r_n, k, k))
     grad = np.zeros((r_n, k))
     reached = np.flatnonzero(answered.any(axis=0))
     for col in reached:
         for p in range(k):
             for q in range(p, k):
-                info[:, p, q] = info[:, p, q] + j[:, col] * a[:, col, p] * a[:, col, q]
+                aa = a[:, col, p] * a[:, col, q]
+                info[:, p, q] = info[:, p, q] + j[:, col] * aa
+                observed[:, p, q] = observed[:, p, q] - r2[:, col] * aa
                 if q != p:
                     info[:, q, p] = info[:, p, q]
+                    observed[:, q, p] = observed[:, p, q]
         grad = grad + r[:, col, None] * a[:, col]
     diag = np.prod(np.diagonal(info, axis1=-2, axis2=-1), axis=-1)
     singular = ~(determinant(info) > WLE_SINGULAR_SHARE * diag)
     inv = inverse(np.where(singular[:, None, None], np.eye(k), info))
     correction = np.zeros((r_n, k))
+    quad = np.zeros(answered.shape)
     for col in reached:
-        term = (skew[:, col] * quadratic_form(a[:, col], inv))[:, None] * a[:, col]
+        quad[:, col] = quadratic_form(a[:, col], inv)
+        term = (skew[:, col] * quad[:, col])[:, None] * a[:, col]
         correction = correction + np.where(answered[:, col, None], term, 0.0)
-    return _WleTerms(info, grad + 0.5 * correction, singular)
+    jacobian = np.full((r_n, k, k), np.nan)
+    if k <= 3:
+        jacobian = observed - _correction_derivative(terms, answered, a, inv, quad, reached)
+    return _WleTerms(info, observed, grad + 0.5 * correction, singular, jacobian)
+
+
+def _correction_derivative(terms: md.WeightedLikelihoodTerms, answered, a, inv, quad, reached) -> np.ndarray:
+    """``d/d theta_s`` of the correction ``1/2 sum_j c_j a_jr q_j`` (``q_j = a_j' I^-1 a_j``),
+    (R, K, K) indexed [r, s]: ``1/2 sum_j c'_j q_j a_jr a_js - 1/2 sum_i J'_i a_is sum_j c_j
+    a_jr (a_j' I^-1 a_i)^2`` (``d I^-1 = -I^-1 dI I^-1`` and ``d_s I = sum_i J'_i a_is a_i
+    a_i'``; ``c'``, ``J'`` the derivatives along eta, :func:`~.multidimensional.weighted_likelihood_terms`).
+    Every sum over answers is taken one answer at a time, in order."""
+    r_n, w, k = a.shape
+    skew = np.where(answered, terms.skew, 0.0)
+    skew_slope = np.where(answered, terms.skew_slope, 0.0)
+    info_slope = np.where(answered, terms.information_slope, 0.0)
+    inv_a = matrix_vector(inv[:, None], a)  # (R, W, K): I^-1 a_i
+    out = np.zeros((r_n, k, k))
+    weight = np.zeros((r_n, w, k))  # [i, r]: sum_j c_j a_jr (a_j' I^-1 a_i)^2
+    for col in reached:
+        cross = _dot(a[:, col, None, :], inv_a)  # (R, W): a_col' I^-1 a_i
+        weight = weight + (skew[:, col, None] * cross * cross)[:, :, None] * a[:, col, None, :]
+        lead = skew_slope[:, col] * quad[:, col]
+        for p in range(k):
+            for q in range(k):
+                out[:, p, q] = out[:, p, q] + 0.5 * lead * a[:, col, p] * a[:, col, q]
+    for col in reached:
+        for p in range(k):
+            for q in range(k):
+                out[:, p, q] = out[:, p, q] - 0.5 * info_slope[:, col] * a[:, col, q] * weight[:, col, p]
+    return out
+
+
+def _newton_matrix_wle(terms: _WleTerms) -> np.ndarray:
+    """Minus the Hessian of the log-likelihood where it is positive definite (its elementwise
+    Cholesky factor exists), else the test information matrix (Fisher scoring)."""
+    factor = cholesky_factor(terms.observed)
+    diag = np.diagonal(factor, axis1=-2, axis2=-1)
+    ok = np.all(diag > 0, axis=-1)  # NaN where not positive definite
+    return np.where(ok[:, None, None], terms.observed, terms.information)
 
 
 def _fisher_step(terms: _WleTerms, x, lo, hi):
-    """The projected Fisher step ``I^-1 U*`` on the free coordinates, its merit
-    ``U*_free' I_free^-1 U*_free`` and which coordinates are held at a bound (U* outward)."""
+    """The projected step on the free coordinates, its merit ``U*_free' M_free^-1 U*_free``
+    (``M``: :func:`_newton_matrix_wle`) and which coordinates are held at a bound (U*
+    outward).  The step is Newton's, ``-(dU*/dtheta)^-1 U*``, where that derivative's free
+    block is regular (K <= 3), else ``M^-1 U*``; either goes downhill on the merit."""
     k = x.shape[1]
     g = terms.modified
     held = ((x >= hi) & (g > 0)) | ((x <= lo) & (g < 0))
     free = ~held
-    mat = np.where(free[:, :, None] & free[:, None, :], terms.information, np.eye(k))
+    both = free[:, :, None] & free[:, None, :]
+    eye = np.eye(k)
+    mat = np.where(both, _newton_matrix_wle(terms), eye)
     g_free = np.where(free, g, 0.0)
-    step = matrix_vector(inverse(np.where(terms.singular[:, None, None], np.eye(k), mat)), g_free)
-    step = np.where(free, step, 0.0)
-    merit = _dot(step, g_free)
+    merit = _dot(matrix_vector(inverse(np.where(terms.singular[:, None, None], eye, mat)), g_free), g_free)
+    jac = np.where(both, terms.jacobian, eye)
+    scale = np.prod(np.abs(np.diagonal(jac, axis1=-2, axis2=-1)), axis=-1)
+    regular = np.abs(determinant(jac)) > WLE_SINGULAR_SHARE * scale  # False where NaN (K > 3)
+    newton = regular & ~terms.singular
+    mat = np.where(newton[:, None, None], jac, np.where(terms.singular[:, None, None], eye, mat))
+    step = np.where(free, matrix_vector(inverse(mat), g_free), 0.0)
     return step, merit, held
 
 
-def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bounds):
+def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bounds, *,
+              tolerance: float = WLE_TOLERANCE):
     """Weighted likelihood estimates of ability vectors: roots of the modified score in the box.
 
-    Fisher scoring ``theta <- theta + t I(theta)^-1 U*(theta)`` from ``start`` (R, K),
+    Scoring steps ``theta <- theta + t M(theta)^-1 U*(theta)`` from ``start`` (R, K), ``M``
+    minus the Hessian of the log-likelihood where that is positive definite, else the test
+    information ``I`` (Fisher scoring; the one-dimensional WLE's Newton slope likewise),
     projected on ``[lo, hi]^K`` (a coordinate at a bound whose ``U*`` points outward is
     held there, the step solves the free coordinates' block), every step at most
-    :data:`WLE_MAX_STEP` on any dimension.  The full step (t = 1) is halved (up to
-    :data:`WLE_HALVINGS` times) until the merit ``U*' I^-1 U*`` (the squared length of the
-    Fisher step in the metric of I) falls to at most ``(1 - t / 2)`` of its value: Fisher
-    scoring alone can overshoot the root of a modified score (for one M2PL item it lands
-    exactly as far on the other side, for ever), a halved step does not.  A row has
-    converged once its Fisher step is below :data:`WLE_TOLERANCE` on every dimension (the
-    step is taken).
+    :data:`WLE_MAX_STEP` on any dimension.  ``M`` leaves out the derivative of the
+    correction ``tr(I^-1 J_r) / 2``, which is of the order of one item against the
+    test's, so the steps converge linearly, faster the longer the test.  The full step
+    (t = 1) is halved (up to :data:`WLE_HALVINGS` times) until the merit ``U*' M^-1 U*``
+    (the squared length of the step in the metric of M) falls to at most ``(1 - t / 2)`` of
+    its value: an undamped step can overshoot the root of a modified score (for one M2PL
+    item it lands exactly as far on the other side, for ever), a halved step does not.  A row has
+    converged at the point whose step is below ``tolerance`` on every dimension (that step
+    is not taken: the estimate is the point whose information has just been computed).
 
     Returns ``theta`` (R, K), the test information matrix at it (R, K, K) and a status per
     row: ``converged``; ``at_lower_bound`` / ``at_upper_bound`` (a coordinate is held at the
@@ -823,22 +884,26 @@ def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bo
     x = np.clip(np.array(start, dtype=float), lo, hi)
     r_n, k = x.shape
     status = np.full(r_n, NOT_CONVERGED, dtype=object)
+    info = np.full((r_n, k, k), np.nan)
     answered = ((items >= 0) & (responses >= 0)).any(axis=1)
     status[~answered] = NO_RESPONSES
     active = np.flatnonzero(answered)
-    if active.size:
-        terms = wle_terms(params, items[active], responses[active], x[active])
+    terms = wle_terms(params, items[active], responses[active], x[active])
     for _ in range(WLE_ITERATIONS):
         if active.size == 0:
             break
         xa = x[active]
-        step, merit, _ = _fisher_step(terms, xa, lo, hi)
+        info[active] = terms.information  # the terms are those of every active row's x
+        step, merit, held = _fisher_step(terms, xa, lo, hi)
         singular = terms.singular
-        status[active[singular]] = NO_INFORMATION
         big = np.max(np.abs(step), axis=1)
-        done = ~singular & (big < WLE_TOLERANCE)
-        x[active[done]] = np.clip(xa[done] + step[done], lo, hi)
-        status[active[done]] = CONVERGED
+        done = ~singular & (big < tolerance)
+        # converged at x (the step below the tolerance is not taken); held at a bound with
+        # the modified score pushing outward: no root inside the box
+        up = np.any(held & (xa >= hi), axis=1)
+        down = np.any(held & (xa <= lo), axis=1)
+        status[active[done]] = np.where(up, AT_UPPER_BOUND, np.where(down, AT_LOWER_BOUND, CONVERGED))[done]
+        status[active[singular]] = NO_INFORMATION
         go = np.flatnonzero(~singular & ~done)
         if go.size == 0:
             active = active[:0]
@@ -865,26 +930,12 @@ def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bo
             for name, value in zip(_WleTerms._fields, sub):
                 getattr(new_terms, name)[w] = value
             worse[w] = sub.singular | ~(sub_merit <= (1.0 - 0.5 * t[w]) * merit[go][w])
-        ok = ~worse
+        ok = ~worse  # a row no halving helped stays not_converged at x (its info stored above)
         x[rows[ok]] = new[ok]
-        keep = go[ok]  # rows still iterating, their terms at the new point
         terms = _WleTerms(*(v[ok] for v in new_terms))
-        active = active[keep]
-    # a last look at the rows that converged: held at a bound means no root inside
-    rows = np.flatnonzero(status == CONVERGED)
-    info = np.full((r_n, k, k), np.nan)
-    if rows.size:
-        final = wle_terms(params, items[rows], responses[rows], x[rows])
-        _, _, held = _fisher_step(final, x[rows], lo, hi)
-        up = np.any(held & (x[rows] >= hi), axis=1)
-        down = np.any(held & (x[rows] <= lo), axis=1)
-        status[rows] = np.where(final.singular, NO_INFORMATION,
-                                np.where(up, AT_UPPER_BOUND, np.where(down, AT_LOWER_BOUND, CONVERGED)))
-        info[rows] = final.information
-    other = np.flatnonzero((status != CONVERGED) & (status != AT_UPPER_BOUND) & (status != AT_LOWER_BOUND)
-                           & answered)
-    if other.size:
-        info[other] = wle_terms(params, items[other], responses[other], x[other]).information
+        active = rows[ok]
+    if active.size:  # out of iterations: not_converged, the information where they stopped
+        info[active] = terms.information
     return x, info, status
 
 
