@@ -758,6 +758,8 @@ def wle_terms(params: md.MultidimensionalParameters, items, responses, theta) ->
     items = np.asarray(items)
     responses = np.asarray(responses)
     answered = (items >= 0) & (responses >= 0)
+    used = np.flatnonzero(answered.any(axis=0))  # columns no row reached add nothing: left out
+    items, responses, answered = items[:, used], responses[:, used], answered[:, used]
     sub = params.take(np.where(answered, items, 0))
     terms = md.weighted_likelihood_terms(sub, theta[:, None, :], np.where(answered, responses, -1))
     j, skew, r, r2 = (np.where(answered, x, 0.0) for x in (terms.information, terms.skew, terms.score,
@@ -769,14 +771,9 @@ def wle_terms(params: md.MultidimensionalParameters, items, responses, theta) ->
     grad = np.zeros((r_n, k))
     reached = np.flatnonzero(answered.any(axis=0))
     for col in reached:
-        for p in range(k):
-            for q in range(p, k):
-                aa = a[:, col, p] * a[:, col, q]
-                info[:, p, q] = info[:, p, q] + j[:, col] * aa
-                observed[:, p, q] = observed[:, p, q] - r2[:, col] * aa
-                if q != p:
-                    info[:, q, p] = info[:, p, q]
-                    observed[:, q, p] = observed[:, p, q]
+        aa = a[:, col, :, None] * a[:, col, None, :]  # symmetric: a_p a_q == a_q a_p exactly
+        info = info + j[:, col, None, None] * aa
+        observed = observed - r2[:, col, None, None] * aa
         grad = grad + r[:, col, None] * a[:, col]
     diag = np.prod(np.diagonal(info, axis1=-2, axis2=-1), axis=-1)
     singular = ~(determinant(info) > WLE_SINGULAR_SHARE * diag)
@@ -809,14 +806,10 @@ def _correction_derivative(terms: md.WeightedLikelihoodTerms, answered, a, inv, 
     for col in reached:
         cross = _dot(a[:, col, None, :], inv_a)  # (R, W): a_col' I^-1 a_i
         weight = weight + (skew[:, col, None] * cross * cross)[:, :, None] * a[:, col, None, :]
-        lead = skew_slope[:, col] * quad[:, col]
-        for p in range(k):
-            for q in range(k):
-                out[:, p, q] = out[:, p, q] + 0.5 * lead * a[:, col, p] * a[:, col, q]
+        lead = 0.5 * skew_slope[:, col] * quad[:, col]
+        out = out + lead[:, None, None] * (a[:, col, :, None] * a[:, col, None, :])
     for col in reached:
-        for p in range(k):
-            for q in range(k):
-                out[:, p, q] = out[:, p, q] - 0.5 * info_slope[:, col] * a[:, col, q] * weight[:, col, p]
+        out = out - (0.5 * info_slope[:, col])[:, None, None] * (weight[:, col, :, None] * a[:, col, None, :])
     return out
 
 
@@ -830,26 +823,47 @@ def _newton_matrix_wle(terms: _WleTerms) -> np.ndarray:
 
 
 def _fisher_step(terms: _WleTerms, x, lo, hi):
-    """The projected step on the free coordinates, its merit ``U*_free' M_free^-1 U*_free``
-    (``M``: :func:`_newton_matrix_wle`) and which coordinates are held at a bound (U*
-    outward).  The step is Newton's, ``-(dU*/dtheta)^-1 U*``, where that derivative's free
-    block is regular (K <= 3), else ``M^-1 U*``; either goes downhill on the merit."""
+    """The projected step on the free coordinates, its merit and which coordinates are held
+    at a bound (U* outward).
+
+    Newton's step ``-(dU*/dtheta)^-1 U*`` where the symmetric part of ``-dU*/dtheta`` is
+    positive definite (K <= 3; near a root that is a maximum of a likelihood-like function
+    the derivative looks like minus a Hessian there), its merit ``U*' U*`` (for which the
+    Newton step goes downhill, exactly).  Elsewhere -- a short test whose modified score
+    turns the other way along a direction the items hardly measure -- the step ``M^-1 U*``
+    with ``M`` of :func:`_newton_matrix_wle`, its merit ``U*' M^-1 U*`` (downhill up to the
+    change of M).  Returns ``step, merit, held, newton``."""
     k = x.shape[1]
     g = terms.modified
     held = ((x >= hi) & (g > 0)) | ((x <= lo) & (g < 0))
     free = ~held
     both = free[:, :, None] & free[:, None, :]
     eye = np.eye(k)
-    mat = np.where(both, _newton_matrix_wle(terms), eye)
     g_free = np.where(free, g, 0.0)
-    merit = _dot(matrix_vector(inverse(np.where(terms.singular[:, None, None], eye, mat)), g_free), g_free)
     jac = np.where(both, terms.jacobian, eye)
-    scale = np.prod(np.abs(np.diagonal(jac, axis1=-2, axis2=-1)), axis=-1)
-    regular = np.abs(determinant(jac)) > WLE_SINGULAR_SHARE * scale  # False where NaN (K > 3)
-    newton = regular & ~terms.singular
-    mat = np.where(newton[:, None, None], jac, np.where(terms.singular[:, None, None], eye, mat))
-    step = np.where(free, matrix_vector(inverse(mat), g_free), 0.0)
-    return step, merit, held
+    factor = cholesky_factor(0.5 * (jac + np.swapaxes(jac, -1, -2)))
+    newton = np.all(np.diagonal(factor, axis1=-2, axis2=-1) > 0, axis=-1) & ~terms.singular  # NaN: False
+    mat = np.where(both, _newton_matrix_wle(terms), eye)
+    mat = np.where(terms.singular[:, None, None], eye, mat)
+    fisher = matrix_vector(inverse(mat), g_free)
+    step = np.where(newton[:, None], matrix_vector(inverse(np.where(newton[:, None, None], jac, eye)), g_free),
+                    fisher)
+    merit = np.where(newton, _dot(g_free, g_free), _dot(fisher, g_free))
+    return np.where(free, step, 0.0), merit, held, newton
+
+
+def _merit_at(terms: _WleTerms, x, lo, hi, newton) -> np.ndarray:
+    """The merit of :func:`_fisher_step` of the kind ``newton`` says, at a new point."""
+    k = x.shape[1]
+    g = terms.modified
+    held = ((x >= hi) & (g > 0)) | ((x <= lo) & (g < 0))
+    free = ~held
+    both = free[:, :, None] & free[:, None, :]
+    eye = np.eye(k)
+    g_free = np.where(free, g, 0.0)
+    mat = np.where(both, _newton_matrix_wle(terms), eye)
+    mat = np.where(terms.singular[:, None, None], eye, mat)
+    return np.where(newton, _dot(g_free, g_free), _dot(matrix_vector(inverse(mat), g_free), g_free))
 
 
 def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bounds, *,
@@ -894,7 +908,7 @@ def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bo
             break
         xa = x[active]
         info[active] = terms.information  # the terms are those of every active row's x
-        step, merit, held = _fisher_step(terms, xa, lo, hi)
+        step, merit, held, newton = _fisher_step(terms, xa, lo, hi)
         singular = terms.singular
         big = np.max(np.abs(step), axis=1)
         done = ~singular & (big < tolerance)
@@ -914,8 +928,9 @@ def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bo
         t = scale.copy()
         base = xa[go]
         new = np.clip(base + direction, lo, hi)
+        kind = newton[go]
         new_terms = wle_terms(params, items[rows], responses[rows], new)
-        _, new_merit, _ = _fisher_step(new_terms, new, lo, hi)
+        new_merit = _merit_at(new_terms, new, lo, hi, kind)
         worse = new_terms.singular | ~(new_merit <= (1.0 - 0.5 * t) * merit[go])
         factor = np.ones(go.size)
         for _ in range(WLE_HALVINGS):
@@ -926,7 +941,7 @@ def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bo
             t[w] = scale[w] * factor[w]
             new[w] = np.clip(base[w] + factor[w, None] * direction[w], lo, hi)
             sub = wle_terms(params, items[rows[w]], responses[rows[w]], new[w])
-            _, sub_merit, _ = _fisher_step(sub, new[w], lo, hi)
+            sub_merit = _merit_at(sub, new[w], lo, hi, kind[w])
             for name, value in zip(_WleTerms._fields, sub):
                 getattr(new_terms, name)[w] = value
             worse[w] = sub.singular | ~(sub_merit <= (1.0 - 0.5 * t[w]) * merit[go][w])
