@@ -1,6 +1,6 @@
 """Ability estimation when ability is a vector of K dimensions (M2PL, M3PL, MGRM items).
 
-MAP, EAP and MLE of a batch of examinees under a multivariate normal prior
+MAP, EAP, MLE and WLE of a batch of examinees under a multivariate normal prior
 ``N(prior_mean, prior_covariance)``, on the items of
 :mod:`adaptive_engine.irt.multidimensional`.  The inputs mirror the one-dimensional
 :mod:`adaptive_engine.irt.estimation`: a bank (or :class:`MultidimensionalParameters`),
@@ -59,6 +59,13 @@ MLE (:func:`mle_estimate_md`)
     estimate is then reported at the bound.  A dimension no answered item measures (or a
     direction the items cannot tell apart) has no information: status
     ``no_information``, the coordinate stays at its start.
+WLE (:func:`wle_estimate_md`)
+    Warm's (1989) weighted likelihood for a vector: the root of Firth's (1993) modified
+    score ``U + tr(I^-1 J_r) / 2`` (``J_r = sum_i a_ir c_i a_i a_i'``, ``c_i`` Warm's term
+    along ``a_i . theta``; with K = 1 Warm's equation, for M2PL items the mode of the
+    likelihood times the Jeffreys prior), by Newton steps on the modified score with
+    halving (:func:`wle_solve`), from the MAP, within ``bounds``; the covariance is the
+    inverse test information matrix.  Derived in docs/multidimensional_scoring.md.
 
 Standard errors and covariances are capped: the covariance is ``V diag(1 / max(l, 1/w^2)) V'``
 for the eigen-decomposition ``V diag(l) V'`` of the precision (w = the width of
@@ -822,6 +829,20 @@ def _newton_matrix_wle(terms: _WleTerms) -> np.ndarray:
     return np.where(ok[:, None, None], terms.observed, terms.information)
 
 
+def _free_parts(terms: _WleTerms, x, lo, hi):
+    """Which coordinates are held at a bound (U* pointing outward), the free block mask,
+    U* on the free coordinates and the free block of ``M`` (:func:`_newton_matrix_wle`;
+    the identity where the information is singular)."""
+    k = x.shape[1]
+    g = terms.modified
+    held = ((x >= hi) & (g > 0)) | ((x <= lo) & (g < 0))
+    free = ~held
+    both = free[:, :, None] & free[:, None, :]
+    eye = np.eye(k)
+    mat = np.where(both, _newton_matrix_wle(terms), eye)
+    return held, both, np.where(free, g, 0.0), np.where(terms.singular[:, None, None], eye, mat)
+
+
 def _fisher_step(terms: _WleTerms, x, lo, hi):
     """The projected step on the free coordinates, its merit and which coordinates are held
     at a bound (U* outward).
@@ -833,36 +854,21 @@ def _fisher_step(terms: _WleTerms, x, lo, hi):
     turns the other way along a direction the items hardly measure -- the step ``M^-1 U*``
     with ``M`` of :func:`_newton_matrix_wle`, its merit ``U*' M^-1 U*`` (downhill up to the
     change of M).  Returns ``step, merit, held, newton``."""
-    k = x.shape[1]
-    g = terms.modified
-    held = ((x >= hi) & (g > 0)) | ((x <= lo) & (g < 0))
-    free = ~held
-    both = free[:, :, None] & free[:, None, :]
-    eye = np.eye(k)
-    g_free = np.where(free, g, 0.0)
+    held, both, g_free, mat = _free_parts(terms, x, lo, hi)
+    eye = np.eye(x.shape[1])
     jac = np.where(both, terms.jacobian, eye)
     factor = cholesky_factor(0.5 * (jac + np.swapaxes(jac, -1, -2)))
     newton = np.all(np.diagonal(factor, axis1=-2, axis2=-1) > 0, axis=-1) & ~terms.singular  # NaN: False
-    mat = np.where(both, _newton_matrix_wle(terms), eye)
-    mat = np.where(terms.singular[:, None, None], eye, mat)
     fisher = matrix_vector(inverse(mat), g_free)
     step = np.where(newton[:, None], matrix_vector(inverse(np.where(newton[:, None, None], jac, eye)), g_free),
                     fisher)
     merit = np.where(newton, _dot(g_free, g_free), _dot(fisher, g_free))
-    return np.where(free, step, 0.0), merit, held, newton
+    return np.where(~held, step, 0.0), merit, held, newton
 
 
 def _merit_at(terms: _WleTerms, x, lo, hi, newton) -> np.ndarray:
     """The merit of :func:`_fisher_step` of the kind ``newton`` says, at a new point."""
-    k = x.shape[1]
-    g = terms.modified
-    held = ((x >= hi) & (g > 0)) | ((x <= lo) & (g < 0))
-    free = ~held
-    both = free[:, :, None] & free[:, None, :]
-    eye = np.eye(k)
-    g_free = np.where(free, g, 0.0)
-    mat = np.where(both, _newton_matrix_wle(terms), eye)
-    mat = np.where(terms.singular[:, None, None], eye, mat)
+    _, _, g_free, mat = _free_parts(terms, x, lo, hi)
     return np.where(newton, _dot(g_free, g_free), _dot(matrix_vector(inverse(mat), g_free), g_free))
 
 
@@ -870,18 +876,18 @@ def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bo
               tolerance: float = WLE_TOLERANCE):
     """Weighted likelihood estimates of ability vectors: roots of the modified score in the box.
 
-    Scoring steps ``theta <- theta + t M(theta)^-1 U*(theta)`` from ``start`` (R, K), ``M``
-    minus the Hessian of the log-likelihood where that is positive definite, else the test
-    information ``I`` (Fisher scoring; the one-dimensional WLE's Newton slope likewise),
-    projected on ``[lo, hi]^K`` (a coordinate at a bound whose ``U*`` points outward is
-    held there, the step solves the free coordinates' block), every step at most
-    :data:`WLE_MAX_STEP` on any dimension.  ``M`` leaves out the derivative of the
-    correction ``tr(I^-1 J_r) / 2``, which is of the order of one item against the
-    test's, so the steps converge linearly, faster the longer the test.  The full step
-    (t = 1) is halved (up to :data:`WLE_HALVINGS` times) until the merit ``U*' M^-1 U*``
-    (the squared length of the step in the metric of M) falls to at most ``(1 - t / 2)`` of
-    its value: an undamped step can overshoot the root of a modified score (for one M2PL
-    item it lands exactly as far on the other side, for ever), a halved step does not.  A row has
+    Steps ``theta <- theta + t d`` from ``start`` (R, K), ``d`` the step of
+    :func:`_fisher_step`: Newton's on the modified score (its exact derivative, K <= 3)
+    where minus that derivative has a positive definite symmetric part, else ``M^-1 U*``
+    with ``M`` minus the Hessian of the log-likelihood where that is positive definite, else
+    the test information (Fisher scoring); projected on ``[lo, hi]^K`` (a coordinate at a
+    bound whose ``U*`` points outward is held there, the step solves the free
+    coordinates' block), every step at most :data:`WLE_MAX_STEP` on any dimension.  The
+    full step (t = 1) is halved (up to :data:`WLE_HALVINGS` times) until the step's merit
+    falls to at most ``(1 - t / 2)`` of its value.  (Fisher scoring alone converges only
+    linearly -- ``M`` leaves out the derivative of the correction, of the order of one
+    item against the test -- and for one M2PL item it lands exactly as far on the other
+    side of the root, for ever.)  A row has
     converged at the point whose step is below ``tolerance`` on every dimension (that step
     is not taken: the estimate is the point whose information has just been computed).
 
