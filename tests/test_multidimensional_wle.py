@@ -112,10 +112,10 @@ M2PL_ITEMS = [([1.2, 0.2], 0.3), ([0.4, 1.1], -0.5), ([0.9, 0.9], 0.1), ([1.6, 0
               ([0.0, 1.4], 0.6), ([0.7, 0.5], 1.0)]
 
 
-def _jeffreys_objective(answers):
+def _jeffreys_objective(answers, items=M2PL_ITEMS):
     """-(l(theta) + 1/2 log det I(theta)) for the M2PL items, from P = expit(D (a . theta + d))."""
-    a = np.array([s for s, _ in M2PL_ITEMS])
-    d = np.array([i for _, i in M2PL_ITEMS])
+    a = np.array([s for s, _ in items])
+    d = np.array([i for _, i in items])
     x = np.array(answers, dtype=float)
 
     def f(theta):
@@ -141,6 +141,20 @@ def test_m2pl_wle_is_the_jeffreys_penalised_maximum(answers):
     assert np.all(np.abs(result.theta[0]) < 6.0)
     expected = {1: "all_highest", 0: "all_lowest"}.get(answers[0]) if len(set(answers)) == 1 else "converged"
     assert result.status[0] == expected
+
+
+def test_m2pl_wle_of_three_dimensions_is_the_jeffreys_penalised_maximum():
+    items = [([1.2, 0.2, 0.0], 0.3), ([0.4, 1.1, 0.3], -0.5), ([0.0, 0.6, 1.3], 0.1), ([1.6, 0.0, 0.4], -0.8),
+             ([0.0, 1.4, 0.0], 0.6), ([0.7, 0.5, 0.9], 1.0), ([0.3, 0.0, 1.5], -0.2), ([1.0, 1.0, 1.0], 0.0)]
+    params = md.MultidimensionalParameters(slopes=[a for a, _ in items], intercepts=[[d] for _, d in items],
+                                           c=np.zeros(len(items)), scaling=D)
+    for answers in ([1, 0, 1, 1, 0, 1, 0, 1], [1] * 8):
+        result = me.wle_estimate_md(params, [list(range(8))], [answers])
+        f = _jeffreys_objective(answers, items)
+        first = optimize.minimize(f, np.zeros(3), method="BFGS", options={"gtol": 1e-10})
+        ref = optimize.minimize(f, first.x, method="Nelder-Mead",
+                                options={"xatol": 1e-10, "fatol": 1e-15, "maxiter": 20000}).x
+        np.testing.assert_allclose(result.theta[0], ref, atol=1e-5)
 
 
 # ---------------------------------------------------------------------------------------

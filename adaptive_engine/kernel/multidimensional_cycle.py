@@ -193,8 +193,8 @@ def keeps_grid_posterior(ctx) -> bool:
     """Whether the rows carry the posterior on the grid.
 
     Under the log form (decision rules 1 and 2) always.  Under the scaled form (version 3)
-    only where something reads it: an EAP or MLE estimate (interim or final; the MLE
-    starts from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
+    only where something reads it: an EAP, MLE or WLE estimate (interim or final; the MLE
+    and the WLE start from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
     stop.  A design scored by MAP throughout that uses none of these never reads the grid:
     its final MAP starts from the interim MAP (:func:`final_estimates`), and its rows carry
     no grid at all.
@@ -613,7 +613,8 @@ def _se(cov) -> np.ndarray:
 
 def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
     """Add the scored answers to the posterior, then the interim estimate: EAP on the grid,
-    or MAP from the previous estimate.
+    or MAP from the previous estimate (the MLE and the WLE start from the EAP,
+    :func:`mle_or_fallback`, :func:`wle_or_fallback`).
 
     ``scored_item`` (R,) is the item each row's answer scores (-1: none, or a pretest
     item), ``responses`` (R,) the answers; without them only the estimate is made.  The
@@ -732,7 +733,7 @@ class MultidimensionalFinalEstimates:
 
 
 def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
-    """Final estimates of ``rows`` by the design's final method (EAP on the grid or MAP).
+    """Final estimates of ``rows`` by the design's final method (EAP on the grid, MAP, MLE or WLE).
 
     ``interim_current``: the caller knows that every answer of ``rows`` went through
     :func:`answer` (a simulated chunk), so that for an EAP design (interim and final) the
