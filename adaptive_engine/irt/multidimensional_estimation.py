@@ -948,8 +948,8 @@ def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bo
             new[w] = np.clip(base[w] + factor[w, None] * direction[w], lo, hi)
             sub = wle_terms(params, items[rows[w]], responses[rows[w]], new[w])
             sub_merit = _merit_at(sub, new[w], lo, hi, kind[w])
-            for name, value in zip(_WleTerms._fields, sub):
-                getattr(new_terms, name)[w] = value
+            for whole, part in zip(new_terms, sub):
+                whole[w] = part
             worse[w] = sub.singular | ~(sub_merit <= (1.0 - 0.5 * t[w]) * merit[go][w])
         ok = ~worse  # a row no halving helped stays not_converged at x (its info stored above)
         x[rows[ok]] = new[ok]
