@@ -157,6 +157,39 @@ def test_m2pl_wle_of_three_dimensions_is_the_jeffreys_penalised_maximum():
         np.testing.assert_allclose(result.theta[0], ref, atol=1e-5)
 
 
+def test_simple_structure_of_four_dimensions_is_warms_wle_per_dimension():
+    """Items that each measure one of K = 4 dimensions: I is diagonal and the modified score
+    of dimension d is Warm's equation of d's items alone, so each coordinate is the
+    one-dimensional engine's WLE of its own items (2PL and GRM; K > 3, where the solver
+    has no Newton step, only the scoring step)."""
+    rng = np.random.default_rng(12)
+    one_rows, dims = ["item_id,model,a,b,b1,b2"], []
+    multi_rows = ["item_id,model,a1,a2,a3,a4,intercept,intercept1,intercept2"]
+    for i in range(24):
+        dim, a, b = i % 4, float(rng.uniform(0.7, 1.8)), float(rng.normal())
+        slopes = ",".join(repr(a if j == dim else 0.0) for j in range(4))
+        if i % 3 == 2:
+            b1, b2 = sorted(float(x) for x in rng.normal(b, 0.7, 2))
+            one_rows.append(f"Q{i},GRM,{a!r},,{b1!r},{b2!r}")
+            multi_rows.append(f"Q{i},MGRM,{slopes},,{-a * b1!r},{-a * b2!r}")
+        else:
+            one_rows.append(f"Q{i},2PL,{a!r},{b!r},,")
+            multi_rows.append(f"Q{i},M2PL,{slopes},{-a * b!r},,")
+        dims.append(dim)
+    one = read_bank_csv_text("\n".join(one_rows) + "\n", scaling=1.702)
+    multi = read_bank_csv_text("\n".join(multi_rows) + "\n", scaling=1.702)
+    responses = (rng.random((3, 24)) < 0.55).astype(int)
+    responses[2] = np.where(np.array(dims) == 1, 1, responses[2])  # all right on dimension 2
+    items = np.broadcast_to(np.arange(24), (3, 24))
+    result = me.wle_estimate_md(multi, items, responses)
+    dims = np.array(dims)
+    for d in range(4):
+        mine = np.flatnonzero(dims == d)
+        reference = estimation.wle(one, items[:, mine], responses[:, mine])
+        np.testing.assert_allclose(result.theta[:, d], reference.theta, atol=1e-8)
+        np.testing.assert_allclose(result.se[:, d], reference.se, atol=1e-8)
+
+
 # ---------------------------------------------------------------------------------------
 # 3. M3PL and MGRM: the Cox-Snell / Firth modified score, generically, is zero
 
