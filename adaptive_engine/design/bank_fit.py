@@ -411,14 +411,7 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
     sc, sel, st = design.scoring, design.selection, design.stopping
     why = (f"needs the posterior on a grid of points ** K, which the kernel keeps for K <= {MAX_GRID_DIMENSIONS} "
            f"only")
-    out = []
-    grid_methods = (ScoringMethod.EAP, ScoringMethod.MLE)  # other methods are refused above for any K
-    if sc.method in grid_methods:
-        out.append(Problem("[scoring] method", f"{sc.method.value} {why}; {many} use map (Newton with the "
-                                               "prior's precision, the covariance from the information)"))
-    if design.reporting.final_method in grid_methods:
-        out.append(Problem("[reporting] final_method",
-                           f"{design.reporting.final_method.value} {why}; {many} use map"))
+    out = _gridless_method_problems(design, why, many)
     if sc.grid_points_per_dimension is not None:
         out.append(Problem("[scoring] grid_points_per_dimension",
                            f"{many} the kernel keeps no grid (it scores by MAP on the box grid_min..grid_max); "
@@ -430,6 +423,22 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
     if st.se_reduction is not None:
         out.append(Problem("[stopping] se_reduction", f"the predicted SE reduction {why}; {many} stop on se or "
                                                       "se_per_dimension, min_information, length or time"))
+    return out
+
+
+def _gridless_method_problems(design: Design, why: str, many: str) -> list[Problem]:
+    """The scoring methods the kernel cannot run without a posterior grid (K > 3): eap
+    (the posterior mean needs the grid); map (Newton with the prior's precision) and mle
+    (projected Fisher scoring from the MAP) need none."""
+    sc = design.scoring
+    grid_methods = (ScoringMethod.EAP,)  # other methods are refused above for any K
+    out = []
+    if sc.method in grid_methods:
+        out.append(Problem("[scoring] method", f"{sc.method.value} {why}; {many} use map (Newton with the "
+                                               "prior's precision, the covariance from the information) or mle"))
+    if design.reporting.final_method in grid_methods:
+        out.append(Problem("[reporting] final_method",
+                           f"{design.reporting.final_method.value} {why}; {many} use map or mle"))
     return out
 
 

@@ -579,20 +579,48 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
 
 
 def _update_gridless_estimate(ctx, state, rows) -> None:
-    """The interim estimate of a context without a posterior grid (K > 3): the MAP from the
-    previous interim estimate, its covariance ``(P + I(theta_hat))^-1`` (the gate admits no
-    other method there).  The answers are already in the state's items and responses."""
+    """The interim estimate of a context without a posterior grid (K > 3).
+
+    The MAP from the previous interim estimate, its covariance ``(P + I(theta_hat))^-1``;
+    for an MLE design the MLE from that MAP where it exists and the design's stand-in
+    elsewhere (:func:`_gridless_mle`).  The answers are already in the state's items and
+    responses.
+    """
     mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
+    if ctx.design.scoring.method is ScoringMethod.MLE:
+        mean, cov, _ = _gridless_mle(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
+def _gridless_mle(ctx, state, rows, map_mean, map_cov, *, final: bool = False):
+    """The MLE of ``rows`` where it exists, else the design's stand-in, without a posterior
+    grid (K > 3); (theta, covariance, status).
+
+    The MLE is :func:`mle_estimate` (projected Fisher scoring in the box ``[grid_min,
+    grid_max]^K``, covariance ``I(theta_hat)^-1``) started from the MAP ``map_mean``, as
+    for K <= 3 it starts from the posterior mean.  Where it does not exist
+    :func:`mle_or_fallback` puts ``[scoring] extreme_pattern_method`` in its place with
+    the MAP ``map_mean``, ``map_cov`` where K <= 3 reads the grid posterior: ``eap`` is
+    the MAP and its covariance (there is no posterior grid to average over), ``map`` the
+    MAP, ``fixed_step`` the previous estimate moved by ``fixed_step`` with the MAP's
+    covariance (the final estimate keeps the interim one).
+    """
+    return mle_or_fallback(ctx, state, rows, map_mean, map_cov, final=final)
+
+
 def _gridless_final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimates:
-    """Final MAP estimates of a context without a posterior grid (K > 3), started from the
-    interim estimate (the interim MAP after the last answer, or the opening point without
-    answers): the same values in a batch and for one examinee, live or simulated."""
+    """Final estimates of a context without a posterior grid (K > 3), started from the
+    interim estimate (the interim estimate after the last answer, or the opening point
+    without answers): the MAP, or for ``[reporting] final_method = "mle"`` the MLE from
+    that MAP (:func:`_gridless_mle`); the same values in a batch and for one examinee,
+    live or simulated."""
     mean, cov, ok = map_estimate(ctx, state, rows, state.theta[rows])
-    status = np.where(state.n_scored[rows] == 0, "no_responses",
-                      np.where(ok, "converged", "not_converged")).astype(object)
+    method = ctx.design.final_method
+    if method is ScoringMethod.MLE:
+        mean, cov, status = _gridless_mle(ctx, state, rows, mean, cov, final=True)
+    else:
+        status = np.where(state.n_scored[rows] == 0, "no_responses",
+                          np.where(ok, "converged", "not_converged")).astype(object)
     return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
                                           lz=person_fit_lz(ctx, state, rows, mean))
 

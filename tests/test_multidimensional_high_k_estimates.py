@@ -1,0 +1,271 @@
+"""MLE and EAP of ability vectors of K = 4 to 6 dimensions in the kernel (no posterior grid).
+
+Outside references, named at each check:
+
+* the MLE against ``scipy.optimize.minimize`` (L-BFGS-B in the box) of the negative M2PL
+  log-likelihood (Reckase 2009, ch. 4, for the model), its covariance against
+  ``numpy.linalg.inv`` of the information matrix ``P (1 - P) a a'`` (Reckase 2009, ch. 5);
+* where no MLE exists, the MAP stand-in against ``scipy.optimize.minimize`` of the negative
+  log posterior;
+* the EAP (adaptive Gauss-Hermite quadrature around the mode, Naylor & Smith 1982; Liu &
+  Pierce 1994; from memory) against references computed here independently of the engine:
+  a product midpoint rule (the textbook composite midpoint rule) on a fine grid around the
+  mode for K = 4, self-normalised importance sampling at ``scipy.stats.qmc.Sobol`` points
+  from a Laplace proposal for K = 4 and K = 6.
+
+The batch == one at a time and live replay checks are properties of the engine
+(DEVELOPERS.md), not outside references.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import optimize
+
+from adaptive_engine.bank.item_bank import ItemBank
+from adaptive_engine.design.bank_fit import check_design_against_bank
+from adaptive_engine.design.toml_file import parse_design
+from adaptive_engine.irt import multidimensional as md
+from adaptive_engine.kernel import cycle as kernel
+from adaptive_engine.kernel import random_streams as randomness
+from adaptive_engine.kernel.prepared import build_context
+from adaptive_engine.simulation.multidimensional_engine import run_chunk
+from live_replay import replay_through_sessions
+
+RHO = 0.4
+LO, HI = -5.0, 5.0
+
+
+def bank_of(k, n=120, seed=5, *, simple=False) -> ItemBank:
+    """M2PL items (D = 1), each loading on one dimension (``simple``) or on one or two."""
+    rng = np.random.default_rng(seed)
+    slopes = np.zeros((n, k))
+    slopes[np.arange(n), np.arange(n) % k] = rng.uniform(0.8, 2.0, n)
+    if not simple:
+        second = rng.random(n) < 0.3
+        slopes[np.flatnonzero(second), (np.flatnonzero(second) + 1) % k] = rng.uniform(0.3, 1.0, second.sum())
+    intercepts = rng.normal(0, 1, n)
+    return ItemBank(item_ids=[f"Q{i:03d}" for i in range(n)], model=["M2PL"] * n, slopes=slopes,
+                    intercepts=intercepts.reshape(n, 1), area=["g"] * n, item_set=[""] * n,
+                    enemy_groups=[()] * n, status=["operational"] * n, label=[""] * n)
+
+
+def prior_covariance(k):
+    return np.full((k, k), RHO) + (1 - RHO) * np.eye(k)
+
+
+def design_text(k, *, method="map", final=None, extra="", max_items=30, se=0.1, scoring_extra="") -> str:
+    reporting = "" if final is None else f'[reporting]\nfinal_method = "{final}"\n'
+    return f"""
+[scoring]
+method = "{method}"
+prior_covariance = {prior_covariance(k).tolist()}
+grid_min = {LO}
+grid_max = {HI}
+{scoring_extra}
+[selection]
+criterion = "d_optimality"
+[stopping]
+min_items = 4
+max_items = {max_items}
+se = {se}
+{reporting}{extra}
+"""
+
+
+def answered(ctx, n_answers, rows=3, seed=2, answers=None):
+    """A batch of ``rows`` examinees who answered ``n_answers`` items: at random from true
+    abilities, or all ``answers`` (0 or 1)."""
+    k = ctx.multidimensional.k
+    true = np.random.default_rng(seed).normal(0, 1, (rows, k))
+    state, _ = kernel.start(ctx, randomness.stream_key(randomness.examinee_seeds(3, rows)))
+    params = ctx.bank.multidimensional_params
+    rng = np.random.default_rng(7)
+    for _ in range(n_answers):
+        r = np.arange(rows)
+        if answers is None:
+            p1 = md.probabilities(params.take(state.pending[r]), true)[:, 1]
+            x = (rng.random(rows) < p1).astype(int)
+        else:
+            x = np.full(rows, answers)
+        kernel.answer(ctx, state, r, x)
+    return state
+
+
+def answers_of(state, row):
+    items, resp = state.scored_items(np.array([row]))
+    keep = items[0] >= 0
+    return items[0][keep], resp[0][keep]
+
+
+def log_likelihood(bank, items, x, t):
+    """The M2PL log-likelihood ``sum x z - log(1 + e^z)``, ``z = a . t + d`` (Reckase 2009, ch. 4)."""
+    z = bank.slopes[items] @ t + bank.intercepts[items, 0]
+    return np.sum(x * z - np.logaddexp(0, z))
+
+
+def information(bank, items, t):
+    """``sum P (1 - P) a a'`` (D = 1; Reckase 2009, ch. 5)."""
+    a = bank.slopes[items]
+    p = 1.0 / (1.0 + np.exp(-(a @ t + bank.intercepts[items, 0])))
+    return (a * (p * (1 - p))[:, None]).T @ a
+
+
+# ----------------------------------------------------------------------------------------
+# MLE
+
+
+def test_mle_matches_scipy_minimize_and_its_covariance_the_inverse_information():
+    bank = bank_of(4)
+    ctx = build_context(parse_design(design_text(4, method="mle")), bank)
+    state = answered(ctx, 30, rows=4)
+    interior = 0
+    for row in range(4):
+        items, x = answers_of(state, row)
+
+        def neg(t):
+            return -log_likelihood(bank, items, x, t)
+
+        # scipy.optimize.minimize (L-BFGS-B) of the negative log-likelihood in the box
+        ref = optimize.minimize(neg, np.zeros(4), method="L-BFGS-B", bounds=[(LO, HI)] * 4,
+                                options={"ftol": 1e-15, "gtol": 1e-10, "maxiter": 2000}).x
+        if not np.all((ref > LO + 0.1) & (ref < HI - 0.1)):
+            # the likelihood rises to the box's edge: no MLE inside, the status says which edge
+            assert kernel.final_estimates(ctx, state, np.array([row])).status[0] in ("at_upper_bound",
+                                                                                     "at_lower_bound")
+            continue
+        interior += 1
+        np.testing.assert_allclose(state.theta[row], ref, atol=1e-4)
+        final = kernel.final_estimates(ctx, state, np.array([row]))
+        assert final.status[0] == "converged"
+        np.testing.assert_allclose(final.theta[0], ref, atol=1e-4)
+        # covariance: numpy.linalg.inv of the test information at the estimate (no prior)
+        np.testing.assert_allclose(final.covariance[0], np.linalg.inv(information(bank, items, final.theta[0])),
+                                   rtol=1e-8)
+    assert interior >= 2
+
+
+def test_mle_final_after_map_interim_matches_scipy():
+    bank = bank_of(5)
+    ctx = build_context(parse_design(design_text(5, method="map", final="mle")), bank)
+    state = answered(ctx, 28, rows=2, seed=4)
+    final = kernel.final_estimates(ctx, state, np.arange(2))
+    for row in range(2):
+        items, x = answers_of(state, row)
+        ref = optimize.minimize(lambda t: -log_likelihood(bank, items, x, t), np.zeros(5), method="L-BFGS-B",
+                                bounds=[(LO, HI)] * 5, options={"ftol": 1e-15, "gtol": 1e-10, "maxiter": 2000}).x
+        if final.status[row] == "converged":
+            np.testing.assert_allclose(final.theta[row], ref, atol=1e-4)  # scipy.optimize.minimize
+        else:  # the likelihood rose to the box's edge: scipy's optimum lies on it too
+            assert np.any(np.isclose(np.abs(ref), HI, atol=1e-6))
+
+
+def _map_reference(bank, items, x, k):
+    prec = np.linalg.inv(prior_covariance(k))
+    return optimize.minimize(lambda t: -log_likelihood(bank, items, x, t) + 0.5 * t @ prec @ t, np.zeros(k),
+                             method="BFGS", options={"gtol": 1e-10}).x
+
+
+def test_all_correct_pattern_has_no_mle_and_the_design_stand_in_takes_its_place():
+    bank = bank_of(4)
+    # extreme_pattern_method = "eap" (the default) reads the grid posterior where K <= 3;
+    # without a grid the MAP stands in, as does "map"
+    for how in ("eap", "map"):
+        ctx = build_context(parse_design(design_text(4, method="mle", final="mle",
+                                                     scoring_extra=f'extreme_pattern_method = "{how}"')), bank)
+        state = answered(ctx, 6, rows=2, answers=1)
+        final = kernel.final_estimates(ctx, state, np.arange(2))
+        for row in range(2):
+            items, x = answers_of(state, row)
+            ref = _map_reference(bank, items, x, 4)  # scipy.optimize.minimize of the negative log posterior
+            np.testing.assert_allclose(state.theta[row], ref, atol=1e-4)
+            np.testing.assert_allclose(final.theta[row], ref, atol=1e-4)
+            assert final.status[row] == "all_highest"
+            info = np.linalg.inv(prior_covariance(4)) + information(bank, items, state.theta[row])
+            np.testing.assert_allclose(final.covariance[row], np.linalg.inv(info), rtol=1e-6)
+    # fixed_step: after each right answer the previous estimate moves up by the step on the
+    # dimensions the item measures, held in the box
+    ctx = build_context(parse_design(design_text(4, method="mle", scoring_extra='extreme_pattern_method = '
+                                                                                '"fixed_step"\nfixed_step = 0.7')),
+                        bank)
+    state = answered(ctx, 6, rows=1, answers=1)
+    items, _ = answers_of(state, 0)
+    want = np.zeros(4)
+    for i in items:
+        want = np.clip(want + 0.7 * np.sign(bank.slopes[i]), LO, HI)
+    np.testing.assert_allclose(state.theta[0], want, atol=1e-12)
+
+
+def test_all_right_on_one_dimension_holds_the_mle_at_the_box_edge():
+    """Items of one dimension each; every answer on dimension 1 right, the others mixed:
+    the likelihood rises towards grid_max on dimension 1 (scipy's bounded optimum sits on
+    the bound), so the status says so and the MAP stands in."""
+    from adaptive_engine.kernel.multidimensional_cycle import mle_estimate
+
+    bank = bank_of(4, 80, simple=True)
+    ctx = build_context(parse_design(design_text(4, method="mle", final="mle")), bank)
+    state = answered(ctx, 0, rows=1)
+    order = [0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 13, 14, 15, 17, 18, 19]
+    items = np.array(order)
+    x = np.where(items % 4 == 0, 1, (items // 4) % 2)
+    state.items[0, : items.size], state.responses[0, : items.size] = items, x
+    state.scored[0, : items.size] = True
+    state.n_given[0] = state.n_scored[0] = items.size
+    ref = optimize.minimize(lambda t: -log_likelihood(bank, items, x, t), np.zeros(4), method="L-BFGS-B",
+                            bounds=[(LO, HI)] * 4, options={"ftol": 1e-15, "gtol": 1e-10}).x
+    assert ref[0] == pytest.approx(HI)  # scipy.optimize: the bounded optimum is on the edge
+    theta, cov, status = mle_estimate(ctx, state, np.array([0]), np.zeros((1, 4)))
+    assert status[0] == "at_upper_bound" and np.isnan(theta).all()
+    final = kernel.final_estimates(ctx, state, np.array([0]))
+    assert final.status[0] == "at_upper_bound"
+    np.testing.assert_allclose(final.theta[0], _map_reference(bank, items, x, 4), atol=1e-4)
+
+
+# ----------------------------------------------------------------------------------------
+# the gate
+
+
+@pytest.mark.parametrize("k", [4, 5, 6])
+def test_mle_is_no_longer_refused_beyond_three_dimensions(k):
+    bank = bank_of(k, 60)
+    assert check_design_against_bank(parse_design(design_text(k, method="mle")), bank) == []
+    assert check_design_against_bank(parse_design(design_text(k, method="map", final="mle")), bank) == []
+
+
+# ----------------------------------------------------------------------------------------
+# the kernel's rules: batch == one at a time, live replay (properties of the engine)
+
+KERNEL_DESIGNS = {
+    "mle": dict(method="mle", final="mle"),
+    "mle_fixed_step": dict(method="mle", scoring_extra='extreme_pattern_method = "fixed_step"'),
+    "map_then_mle": dict(method="map", final="mle"),
+}
+
+
+@pytest.mark.parametrize("name", sorted(KERNEL_DESIGNS))
+def test_batch_equals_one_at_a_time(name):
+    bank = bank_of(4, 100)
+    extra = "[exposure]\nmethod = \"randomesque\"\ncandidates = 3\n"
+    ctx = build_context(parse_design(design_text(4, extra=extra, max_items=12, se=0.45, **KERNEL_DESIGNS[name])),
+                        bank)
+    true = np.random.default_rng(1).normal(0, 1, (5, 4))
+    true[3] = true[2]
+    whole = run_chunk(ctx, seed=9, start=0, true_theta=true)
+    for i in range(5):
+        one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
+        for key in ("items", "responses", "theta", "se", "covariance", "stop_reason"):
+            np.testing.assert_array_equal(one[key][0], whole[key][i])
+
+
+@pytest.mark.parametrize("name", sorted(KERNEL_DESIGNS))
+def test_simulated_examinee_replays_as_a_live_session(name):
+    bank = bank_of(4, 100)
+    design = parse_design(design_text(4, max_items=12, se=0.45, **KERNEL_DESIGNS[name]))
+    ctx = build_context(design, bank)
+    chunk = run_chunk(ctx, seed=21, start=5, true_theta=np.random.default_rng(4).normal(0, 1, (2, 4)))
+    for i, (_, result) in enumerate(replay_through_sessions(design, bank, chunk, 2)):
+        assert result["theta"] == [float(x) for x in chunk["theta"][i]]
+        assert result["se"] == [float(x) for x in chunk["se"][i]]
+        assert result["stop_reason"] == chunk["stop_reason"][i]
+        assert result["method"] == design.final_method.value
