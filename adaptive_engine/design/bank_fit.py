@@ -97,8 +97,9 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
         return problems
     if runs_multidimensional(design, bank):
         problems += multidimensional_problems(design, bank)
-        if problems:
-            return problems
+    problems += eap_quadrature_problems(design, bank.n_dimensions)
+    if problems:
+        return problems
     st, bp, sel, ex = design.stopping, design.blueprint, design.selection, design.exposure
     operational = np.asarray(bank.status == "operational")
     n_operational = int(operational.sum())
@@ -305,6 +306,11 @@ MAX_GRID_DIMENSIONS = 3
 MAX_KERNEL_DIMENSIONS = 6
 #: Default points per dimension of the multidimensional grid, by K (K = 1: grid_points).
 DEFAULT_POINTS_PER_DIMENSION = {2: 41, 3: 17}
+#: Default Gauss-Hermite nodes per dimension of the EAP without a grid, by K
+#: (``[scoring] eap_points_per_dimension``; q ** K = 625, 1,024 and 729 nodes per examinee).
+DEFAULT_EAP_POINTS_PER_DIMENSION = {4: 5, 5: 4, 6: 3}
+#: At most this many Gauss-Hermite nodes per examinee (q ** K).
+MAX_EAP_NODES = 4096
 
 
 def runs_multidimensional(design: Design, bank: ItemBank) -> bool:
@@ -411,7 +417,10 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
     sc, sel, st = design.scoring, design.selection, design.stopping
     why = (f"needs the posterior on a grid of points ** K, which the kernel keeps for K <= {MAX_GRID_DIMENSIONS} "
            f"only")
-    out = _gridless_method_problems(design, why, many)
+    # the scoring methods eap, map and mle all run without a grid: MAP by Newton with the
+    # prior's precision, MLE by projected Fisher scoring from the MAP, EAP by adaptive
+    # Gauss-Hermite quadrature around the MAP (kernel/multidimensional_quadrature.py)
+    out = []
     if sc.grid_points_per_dimension is not None:
         out.append(Problem("[scoring] grid_points_per_dimension",
                            f"{many} the kernel keeps no grid (it scores by MAP on the box grid_min..grid_max); "
@@ -426,20 +435,24 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
     return out
 
 
-def _gridless_method_problems(design: Design, why: str, many: str) -> list[Problem]:
-    """The scoring methods the kernel cannot run without a posterior grid (K > 3): eap
-    (the posterior mean needs the grid); map (Newton with the prior's precision) and mle
-    (projected Fisher scoring from the MAP) need none."""
-    sc = design.scoring
-    grid_methods = (ScoringMethod.EAP,)  # other methods are refused above for any K
-    out = []
-    if sc.method in grid_methods:
-        out.append(Problem("[scoring] method", f"{sc.method.value} {why}; {many} use map (Newton with the "
-                                               "prior's precision, the covariance from the information) or mle"))
-    if design.reporting.final_method in grid_methods:
-        out.append(Problem("[reporting] final_method",
-                           f"{design.reporting.final_method.value} {why}; {many} use map or mle"))
-    return out
+def eap_quadrature_problems(design: Design, k: int) -> list[Problem]:
+    """Problems of ``[scoring] eap_points_per_dimension`` for a bank of K = ``k``: the key
+    sizes the EAP quadrature of K = 4 to 6 (no grid there) and nothing else."""
+    q = design.scoring.eap_points_per_dimension
+    if q is None:
+        return []
+    where = "[scoring] eap_points_per_dimension"
+    if not MAX_GRID_DIMENSIONS < k <= MAX_KERNEL_DIMENSIONS:
+        return [Problem(where, f"sizes the EAP quadrature of banks of K = {MAX_GRID_DIMENSIONS + 1} to "
+                               f"{MAX_KERNEL_DIMENSIONS} dimensions, which keep no grid; with K = {k} the "
+                               "posterior is on the grid (grid_points, grid_points_per_dimension): leave the key out")]
+    if ScoringMethod.EAP not in (design.scoring.method, design.final_method):
+        return [Problem(where, "only an EAP estimate reads it ([scoring] method or [reporting] final_method = "
+                               "\"eap\"): leave the key out")]
+    if q ** k > MAX_EAP_NODES:
+        return [Problem(where, f"{q} nodes per dimension make {q ** k} nodes per examinee for K = {k}; "
+                               f"at most {MAX_EAP_NODES}")]
+    return []
 
 
 def require_design_fits_bank(design: Design, bank: ItemBank) -> None:

@@ -587,9 +587,22 @@ def _update_gridless_estimate(ctx, state, rows) -> None:
     responses.
     """
     mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
-    if ctx.design.scoring.method is ScoringMethod.MLE:
+    method = ctx.design.scoring.method
+    if method is ScoringMethod.MLE:
         mean, cov, _ = _gridless_mle(ctx, state, rows, mean, cov)
+    elif method is ScoringMethod.EAP:
+        mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
+
+
+def _gridless_eap(ctx, state, rows, map_mean, map_cov):
+    """The posterior mean (R, K) and covariance (R, K, K) of ``rows`` without a posterior
+    grid (K > 3): adaptive Gauss-Hermite quadrature centred at the MAP ``map_mean`` and
+    spread by the Cholesky factor of its covariance ``map_cov``
+    (:func:`.multidimensional_quadrature.posterior_moments`)."""
+    from .multidimensional_quadrature import posterior_moments
+
+    return posterior_moments(ctx, state, rows, map_mean, map_cov)
 
 
 def _gridless_mle(ctx, state, rows, map_mean, map_cov, *, final: bool = False):
@@ -612,12 +625,30 @@ def _gridless_final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimate
     """Final estimates of a context without a posterior grid (K > 3), started from the
     interim estimate (the interim estimate after the last answer, or the opening point
     without answers): the MAP, or for ``[reporting] final_method = "mle"`` the MLE from
-    that MAP (:func:`_gridless_mle`); the same values in a batch and for one examinee,
-    live or simulated."""
+    that MAP (:func:`_gridless_mle`), or for ``eap`` the adaptive quadrature around it
+    (:func:`_gridless_eap`; a design scored by EAP throughout keeps the interim EAP of a
+    row that took an answer); the same values in a batch and for one examinee, live or
+    simulated."""
+    design = ctx.design
+    method = design.final_method
+    if method is ScoringMethod.EAP and design.scoring.method is ScoringMethod.EAP:
+        # the interim EAP after a row's last answer is the EAP of its present answers,
+        # computed by the same function from the same values (a live session replays them)
+        fresh = np.flatnonzero(state.n_given[rows] == 0)
+        mean, cov = state.theta[rows], state.covariance[rows]
+        if fresh.size:
+            at = rows[fresh]
+            m, c, _ = map_estimate(ctx, state, at, state.theta[at])
+            mean[fresh], cov[fresh] = _gridless_eap(ctx, state, at, m, c)
+        status = np.where(state.n_scored[rows] == 0, "no_responses", "converged").astype(object)
+        return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
+                                              lz=person_fit_lz(ctx, state, rows, mean))
     mean, cov, ok = map_estimate(ctx, state, rows, state.theta[rows])
-    method = ctx.design.final_method
     if method is ScoringMethod.MLE:
         mean, cov, status = _gridless_mle(ctx, state, rows, mean, cov, final=True)
+    elif method is ScoringMethod.EAP:
+        mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
+        status = np.where(state.n_scored[rows] == 0, "no_responses", "converged").astype(object)
     else:
         status = np.where(state.n_scored[rows] == 0, "no_responses",
                           np.where(ok, "converged", "not_converged")).astype(object)
