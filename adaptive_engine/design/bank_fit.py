@@ -300,9 +300,10 @@ def design_warnings(design: Design, bank: ItemBank) -> list[Problem]:
 #: ``points ** K`` points (EAP, MLE, Kullback-Leibler, se_reduction need it).
 MAX_GRID_DIMENSIONS = 3
 #: Largest K the multidimensional kernel runs.  Above :data:`MAX_GRID_DIMENSIONS` it keeps
-#: no grid: interim and final estimates by MAP (Newton with the prior's precision), the
-#: covariance from the information, criteria from that covariance (docs/designs.md,
-#: "Ability vectors of more than three dimensions").
+#: no grid: estimates by MAP (Newton with the prior's precision, the covariance from the
+#: information), MLE (projected Fisher scoring from the MAP) or EAP (adaptive Gauss-Hermite
+#: quadrature around the MAP), criteria from the estimate (docs/designs.md, "Ability
+#: vectors of more than three dimensions").
 MAX_KERNEL_DIMENSIONS = 6
 #: Default points per dimension of the multidimensional grid, by K (K = 1: grid_points).
 DEFAULT_POINTS_PER_DIMENSION = {2: 41, 3: 17}
@@ -423,7 +424,8 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
     out = []
     if sc.grid_points_per_dimension is not None:
         out.append(Problem("[scoring] grid_points_per_dimension",
-                           f"{many} the kernel keeps no grid (it scores by MAP on the box grid_min..grid_max); "
+                           f"{many} the kernel keeps no grid (it scores on the box grid_min..grid_max by MAP, "
+                           "MLE, or EAP by a quadrature around the MAP sized by eap_points_per_dimension); "
                            "leave the key out"))
     if sel.criterion is SelectionCriterion.KULLBACK_LEIBLER:
         out.append(Problem("[selection] criterion", f"kullback_leibler weights the grid posterior and {why}; "
@@ -527,7 +529,8 @@ def describe_design(design: Design) -> list[str]:
     if design.asks_multidimensional:
         points = (f"{sc.grid_points_per_dimension} points per dimension" if sc.grid_points_per_dimension is not None
                   else "41 points per dimension for K = 2, 17 for K = 3, grid_points for K = 1; no grid for "
-                       f"K = {MAX_GRID_DIMENSIONS + 1} to {MAX_KERNEL_DIMENSIONS}, scored by MAP")
+                       f"K = {MAX_GRID_DIMENSIONS + 1} to {MAX_KERNEL_DIMENSIONS}, where EAP is a Gauss-Hermite "
+                       "quadrature around the MAP")
         lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} on every dimension ({points})")
     else:
         lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")

@@ -8,7 +8,8 @@ with the criteria of :mod:`.multidimensional_selection`), exposure control, the 
 enemies, item sets and pretest seeding.  What differs is here: the prior (multivariate
 normal), the interim estimate (EAP on the grid, MAP by Fisher scoring with the prior's
 precision, or the MLE where it exists with the design's stand-in elsewhere; for K > 3,
-where the kernel keeps no posterior grid, MAP alone, interim and final), the stopping
+where the kernel keeps no posterior grid, the MAP, the MLE from the MAP, or the EAP by
+adaptive Gauss-Hermite quadrature around the MAP, :mod:`.multidimensional_quadrature`), the stopping
 statistics (the SE of every dimension, the composite's interval) and the final report
 (each dimension with its interval and scaled score, the composite with its SE
 ``sqrt(w' S w)``).

@@ -37,9 +37,7 @@ import functools
 import numpy as np
 
 from ..design.bank_fit import DEFAULT_EAP_POINTS_PER_DIMENSION
-from ..irt.models import log_expit
 from .multidimensional_state import (
-    _sum_in_order,
     answer_log_likelihood,
     cholesky_factor,
     given_items,
@@ -148,18 +146,34 @@ def _nodes(mode, factor, z) -> np.ndarray:
 
 def _logistic_log_likelihood(tab, given, theta) -> np.ndarray:
     """``sum_i log P(x_i | theta)`` (R, N) at the nodes ``theta`` (K, R, N) of M2PL answers
-    ``given`` (the logistic layout of :func:`.multidimensional_state.given_items`):
-    ``log sigma(+-D (a . theta + d))``, the answers added in their order."""
-    a = given.slopes  # (K, L, R)
-    eta = a[0][:, :, None] * theta[0][None]
+    ``given`` (the logistic layout of :func:`.multidimensional_state.given_items`).
+
+    ``log P(x | theta) = -log(1 + exp(y))`` with ``y = -s D (a . theta + d)`` and ``s`` +1
+    for a right answer, -1 for a wrong one: the sign and D go into the slopes and
+    intercepts once per answer, so that each node costs K multiply-adds, one ``exp`` and
+    one ``log1p`` per answer, in place.  A column where nothing was given has slopes 0 and
+    intercept -inf (its term is 0).  ``y`` is held below 700 (``exp`` stays finite; such a
+    node's weight is below e^-700 of the mode's anyway).  The answers are added in their
+    order, then the sum is negated.
+    """
+    scale = np.where(given.responses == 1, -tab.params.scaling, tab.params.scaling)  # (L, R)
+    slopes = np.where(given.given[None], given.slopes * scale[None], 0.0)  # (K, L, R)
+    intercepts = np.where(given.given, given.intercepts * scale, -np.inf)
+    y = np.multiply(slopes[0][:, :, None], theta[0][None])  # (L, R, N)
+    term = np.empty_like(y)
     for d in range(1, tab.k):
-        eta = eta + a[d][:, :, None] * theta[d][None]
-    sign = np.where(given.responses == 1, 1.0, -1.0)[:, :, None]
-    terms = log_expit(sign * (tab.params.scaling * (eta + given.intercepts[:, :, None])))
-    terms = np.where(given.given[:, :, None], terms, 0.0)
+        np.multiply(slopes[d][:, :, None], theta[d][None], out=term)
+        y += term
+    y += intercepts[:, :, None]
+    np.minimum(y, 700.0, out=y)
+    np.exp(y, out=y)
+    np.log1p(y, out=y)
     shape = theta.shape[1:]
-    flat = terms.reshape(terms.shape[0], shape[0] * shape[1])
-    return _sum_in_order(np.zeros(flat.shape[1]), flat, True).reshape(shape)
+    # numpy reduces over the first axis of a C-ordered (L, R N) array by adding each row to
+    # the running result in turn, every column on its own (R N >= 2 ** K here: never the
+    # single contiguous column it would sum pairwise; tests/test_multidimensional_fast_paths.py)
+    total = np.add.reduce(y.reshape(y.shape[0], shape[0] * shape[1]), axis=0)
+    return -total.reshape(shape)
 
 
 def _general_log_likelihood(tab, given, theta) -> np.ndarray:
