@@ -385,6 +385,13 @@ def test_eap_without_answers_is_the_prior():
     np.testing.assert_allclose(final.theta, 0.0, atol=1e-12)
     np.testing.assert_allclose(final.covariance, np.broadcast_to(prior_covariance(5), (2, 5, 5)), atol=1e-12)
     assert list(final.status) == ["no_responses"] * 2
+    # an examinee's own prior (a live session may bring one) likewise
+    mean, cov = np.array([0.5, 0.0, -0.25, 1.0, 0.0]), 0.5 * prior_covariance(5) + 0.2 * np.eye(5)
+    state, _ = kernel.start(ctx, randomness.stream_key(randomness.examinee_seeds(3, 2)), prior_mean=mean,
+                            prior_covariance=cov)
+    final = kernel.final_estimates(ctx, state, np.arange(2))
+    np.testing.assert_allclose(final.theta, np.broadcast_to(mean, (2, 5)), atol=1e-12)
+    np.testing.assert_allclose(final.covariance, np.broadcast_to(cov, (2, 5, 5)), atol=1e-12)
 
 
 # ----------------------------------------------------------------------------------------
@@ -392,10 +399,23 @@ def test_eap_without_answers_is_the_prior():
 
 
 @pytest.mark.parametrize("k", [4, 5, 6])
-def test_mle_is_no_longer_refused_beyond_three_dimensions(k):
+def test_mle_and_eap_are_no_longer_refused_beyond_three_dimensions(k):
     bank = bank_of(k, 60)
-    assert check_design_against_bank(parse_design(design_text(k, method="mle")), bank) == []
-    assert check_design_against_bank(parse_design(design_text(k, method="map", final="mle")), bank) == []
+    for method, final in (("mle", None), ("map", "mle"), ("eap", None), ("map", "eap"), ("mle", "eap")):
+        assert check_design_against_bank(parse_design(design_text(k, method=method, final=final)), bank) == []
+
+
+def test_eap_points_per_dimension_is_refused_where_nothing_reads_it():
+    def problems(k, method="eap", q=3):
+        text = design_text(k, method=method, scoring_extra=f"eap_points_per_dimension = {q}")
+        return {p.location: p.message for p in check_design_against_bank(parse_design(text), bank_of(k, 60))}
+
+    assert problems(4, q=8) == {} and problems(6, q=4) == {}
+    where = "[scoring] eap_points_per_dimension"
+    for k in (2, 3):  # the posterior is on the grid there
+        assert list(problems(k)) == [where] and f"K = {k}" in problems(k)[where]
+    assert "only an EAP" in problems(5, method="map")[where]
+    assert "15625 nodes" in problems(6, q=5)[where] and "4096" in problems(6, q=5)[where]
 
 
 # ----------------------------------------------------------------------------------------

@@ -198,8 +198,11 @@ def keeps_grid_posterior(ctx) -> bool:
     starts from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
     stop.  A design scored by MAP throughout that uses none of these never reads the grid:
     its final MAP starts from the interim MAP (:func:`final_estimates`), and its rows carry
-    no grid at all.
+    no grid at all.  Nor do the rows of a context without a grid (K > 3), whatever the
+    method (their EAP is a quadrature around the MAP, their MLE starts from the MAP).
     """
+    if ctx.multidimensional.gridless:
+        return False
     if ctx.posterior_form == "log":
         return True
     design = ctx.design
