@@ -312,10 +312,22 @@ def sobol_reference(bank, items, x, k, m=16):
     return weighted_moments(t, log_posterior(bank, items, x, t, k) + 0.5 * np.sum(z * z, axis=1))
 
 
-def eap_state(bank, k, n_answers, rows, q=None, seed=2):
-    extra = "" if q is None else f"eap_points_per_dimension = {q}"
-    ctx = build_context(parse_design(design_text(k, method="eap", scoring_extra=extra)), bank)
-    return ctx, answered(ctx, n_answers, rows=rows, seed=seed)
+def eap_of(bank, k, n_answers, rows, q=None, seed=2):
+    """(items, answers) of each row and its EAP (mean (R, K), covariance (R, K, K)): the
+    interim EAP of an EAP design with the default nodes, the final EAP of a MAP design with
+    ``q`` nodes per dimension (more than an interim EAP may take)."""
+    if q is None:
+        ctx = build_context(parse_design(design_text(k, method="eap")), bank)
+        state = answered(ctx, n_answers, rows=rows, seed=seed)
+        mean, cov = state.theta, state.covariance
+        np.testing.assert_allclose(state.se, np.sqrt(np.diagonal(cov, axis1=1, axis2=2)), rtol=1e-15)
+    else:
+        text = design_text(k, method="map", final="eap", scoring_extra=f"eap_points_per_dimension = {q}")
+        ctx = build_context(parse_design(text), bank)
+        state = answered(ctx, n_answers, rows=rows, seed=seed)
+        final = kernel.final_estimates(ctx, state, np.arange(rows))
+        mean, cov = final.theta, final.covariance
+    return [answers_of(state, row) for row in range(rows)], mean, cov
 
 
 def test_eap_k4_matches_the_midpoint_rule():
@@ -327,13 +339,11 @@ def test_eap_k4_matches_the_midpoint_rule():
     up to 5e-4 and 2.5e-3)."""
     bank = bank_of(4, 100)
     for q, tol_mean, tol_cov in ((8, 2e-4, 2e-4), (None, 2e-3, 6e-3)):
-        _, state = eap_state(bank, 4, 8, rows=2, q=q)
-        for row in range(2):
-            items, x = answers_of(state, row)
+        answers, got_mean, got_cov = eap_of(bank, 4, 8, rows=2, q=q)
+        for row, (items, x) in enumerate(answers):
             mean, cov = midpoint_reference(bank, items, x, 4)
-            np.testing.assert_allclose(state.theta[row], mean, atol=tol_mean)
-            np.testing.assert_allclose(state.covariance[row], cov, atol=tol_cov)
-            np.testing.assert_allclose(state.se[row], np.sqrt(np.diag(state.covariance[row])), rtol=1e-15)
+            np.testing.assert_allclose(got_mean[row], mean, atol=tol_mean)
+            np.testing.assert_allclose(got_cov[row], cov, atol=tol_cov)
 
 
 def test_eap_k6_matches_sobol_importance_sampling():
@@ -344,18 +354,17 @@ def test_eap_k6_matches_sobol_importance_sampling():
     covariance (its variances run about 5% low on such posteriors)."""
     bank = bank_of(6, 120)
     for q, tol_mean, tol_cov in ((4, 5e-3, 1e-2), (None, 1e-2, 4e-2)):
-        _, state = eap_state(bank, 6, 10, rows=1, q=q)
-        items, x = answers_of(state, 0)
+        [(items, x)], got_mean, got_cov = eap_of(bank, 6, 10, rows=1, q=q)
         mean, cov = sobol_reference(bank, items, x, 6)
-        np.testing.assert_allclose(state.theta[0], mean, atol=tol_mean)
-        np.testing.assert_allclose(state.covariance[0], cov, atol=tol_cov)
+        np.testing.assert_allclose(got_mean[0], mean, atol=tol_mean)
+        np.testing.assert_allclose(got_cov[0], cov, atol=tol_cov)
 
 
 def test_eap_on_m3pl_and_graded_items_matches_sobol_importance_sampling():
-    """The general path (any bank): tolerances as for K = 4 at 6 nodes per dimension
-    (1,296), whose quadrature error lies between those of 5 and 8."""
+    """The general path (any bank), 5 nodes per dimension: tolerances as for the M2PL bank
+    at K = 4 with the default 5 nodes (the quadrature's error, not the reference's)."""
     bank = mixed_bank(4)
-    ctx = build_context(parse_design(design_text(4, method="eap", scoring_extra="eap_points_per_dimension = 6")),
+    ctx = build_context(parse_design(design_text(4, method="eap", scoring_extra="eap_points_per_dimension = 5")),
                         bank)
     assert not ctx.multidimensional.logistic_only
     state = answered(ctx, 0, rows=2)
@@ -410,12 +419,16 @@ def test_eap_points_per_dimension_is_refused_where_nothing_reads_it():
         text = design_text(k, method=method, scoring_extra=f"eap_points_per_dimension = {q}")
         return {p.location: p.message for p in check_design_against_bank(parse_design(text), bank_of(k, 60))}
 
-    assert problems(4, q=8) == {} and problems(6, q=4) == {}
+    assert problems(4, q=5) == {} and problems(5, q=4) == {} and problems(6, q=3) == {}
     where = "[scoring] eap_points_per_dimension"
     for k in (2, 3):  # the posterior is on the grid there
         assert list(problems(k)) == [where] and f"K = {k}" in problems(k)[where]
     assert "only an EAP" in problems(5, method="map")[where]
     assert "15625 nodes" in problems(6, q=5)[where] and "4096" in problems(6, q=5)[where]
+    # an EAP after every answer takes at most 1,024 nodes; a final EAP up to 4,096
+    assert "1024" in problems(6, q=4)[where] and "final_method" in problems(6, q=4)[where]
+    text = design_text(6, method="map", final="eap", scoring_extra="eap_points_per_dimension = 4")
+    assert check_design_against_bank(parse_design(text), bank_of(6, 60)) == []
 
 
 # ----------------------------------------------------------------------------------------

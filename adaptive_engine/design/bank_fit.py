@@ -312,6 +312,11 @@ DEFAULT_POINTS_PER_DIMENSION = {2: 41, 3: 17}
 DEFAULT_EAP_POINTS_PER_DIMENSION = {4: 5, 5: 4, 6: 3}
 #: At most this many Gauss-Hermite nodes per examinee (q ** K).
 MAX_EAP_NODES = 4096
+#: At most this many for an EAP after every answer (``[scoring] method = "eap"``): the
+#: defaults' 1,024 nodes already cost 13 to 19 times the MAP's time at 30 items
+#: (benchmarks/bench_multidimensional_high_k.py; 4,096 nodes about 100 times), more would
+#: make the interim estimate the whole cost of a test.
+MAX_INTERIM_EAP_NODES = 1024
 
 
 def runs_multidimensional(design: Design, bank: ItemBank) -> bool:
@@ -343,7 +348,7 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     if k > MAX_KERNEL_DIMENSIONS:
         return [Problem(where_bank, f"the bank has {k} ability dimensions ({names}); adaptive tests run on "
                                     f"banks of at most {MAX_KERNEL_DIMENSIONS} (above {MAX_GRID_DIMENSIONS} "
-                                    "dimensions the kernel scores by MAP, whose Newton steps and D-optimal "
+                                    "dimensions the kernel keeps no grid; its Newton steps and D-optimal "
                                     f"quadratic forms grow as K^3 and K^2; score a {k}-dimensional test with "
                                     "`score`, or split the bank)")]
     if not bank.uses_multidimensional_models:
@@ -454,6 +459,12 @@ def eap_quadrature_problems(design: Design, k: int) -> list[Problem]:
     if q ** k > MAX_EAP_NODES:
         return [Problem(where, f"{q} nodes per dimension make {q ** k} nodes per examinee for K = {k}; "
                                f"at most {MAX_EAP_NODES}")]
+    if design.scoring.method is ScoringMethod.EAP and q ** k > MAX_INTERIM_EAP_NODES:
+        return [Problem(where, f"{q} nodes per dimension make {q ** k} nodes per examinee for K = {k}; an EAP "
+                               f"after every answer ([scoring] method = \"eap\") takes at most "
+                               f"{MAX_INTERIM_EAP_NODES} (more costs far more than the test's other work: "
+                               "about 100 times the MAP's time at 4,096 nodes); take fewer, or score the "
+                               "interim estimate by map and the final one by eap ([reporting] final_method)")]
     return []
 
 
