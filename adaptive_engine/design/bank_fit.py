@@ -542,6 +542,8 @@ def describe_design(design: Design) -> list[str]:
                   else "41 points per dimension for K = 2, 17 for K = 3, grid_points for K = 1; no grid for "
                        f"K = {MAX_GRID_DIMENSIONS + 1} to {MAX_KERNEL_DIMENSIONS}, where EAP is a Gauss-Hermite "
                        "quadrature around the MAP")
+        if sc.eap_points_per_dimension is not None:
+            points += f"; {sc.eap_points_per_dimension} Gauss-Hermite nodes per dimension for the EAP without a grid"
         lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} on every dimension ({points})")
     else:
         lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")
