@@ -8,7 +8,8 @@ with the criteria of :mod:`.multidimensional_selection`), exposure control, the 
 enemies, item sets and pretest seeding.  What differs is here: the prior (multivariate
 normal), the interim estimate (EAP on the grid, MAP by Fisher scoring with the prior's
 precision, or the MLE where it exists with the design's stand-in elsewhere; for K > 3,
-where the kernel keeps no posterior grid, MAP alone, interim and final), the stopping
+where the kernel keeps no posterior grid, the MAP, the MLE from the MAP, or the EAP by
+adaptive Gauss-Hermite quadrature around the MAP, :mod:`.multidimensional_quadrature`), the stopping
 statistics (the SE of every dimension, the composite's interval) and the final report
 (each dimension with its interval and scaled score, the composite with its SE
 ``sqrt(w' S w)``).
@@ -197,8 +198,11 @@ def keeps_grid_posterior(ctx) -> bool:
     starts from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
     stop.  A design scored by MAP throughout that uses none of these never reads the grid:
     its final MAP starts from the interim MAP (:func:`final_estimates`), and its rows carry
-    no grid at all.
+    no grid at all.  Nor do the rows of a context without a grid (K > 3), whatever the
+    method (their EAP is a quadrature around the MAP, their MLE starts from the MAP).
     """
+    if ctx.multidimensional.gridless:
+        return False
     if ctx.posterior_form == "log":
         return True
     design = ctx.design
@@ -579,20 +583,79 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
 
 
 def _update_gridless_estimate(ctx, state, rows) -> None:
-    """The interim estimate of a context without a posterior grid (K > 3): the MAP from the
-    previous interim estimate, its covariance ``(P + I(theta_hat))^-1`` (the gate admits no
-    other method there).  The answers are already in the state's items and responses."""
+    """The interim estimate of a context without a posterior grid (K > 3).
+
+    The MAP from the previous interim estimate, its covariance ``(P + I(theta_hat))^-1``;
+    for an MLE design the MLE from that MAP where it exists and the design's stand-in
+    elsewhere (:func:`_gridless_mle`).  The answers are already in the state's items and
+    responses.
+    """
     mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
+    method = ctx.design.scoring.method
+    if method is ScoringMethod.MLE:
+        mean, cov, _ = _gridless_mle(ctx, state, rows, mean, cov)
+    elif method is ScoringMethod.EAP:
+        mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
+def _gridless_eap(ctx, state, rows, map_mean, map_cov):
+    """The posterior mean (R, K) and covariance (R, K, K) of ``rows`` without a posterior
+    grid (K > 3): adaptive Gauss-Hermite quadrature centred at the MAP ``map_mean`` and
+    spread by the Cholesky factor of its covariance ``map_cov``
+    (:func:`.multidimensional_quadrature.posterior_moments`)."""
+    from .multidimensional_quadrature import posterior_moments
+
+    return posterior_moments(ctx, state, rows, map_mean, map_cov)
+
+
+def _gridless_mle(ctx, state, rows, map_mean, map_cov, *, final: bool = False):
+    """The MLE of ``rows`` where it exists, else the design's stand-in, without a posterior
+    grid (K > 3); (theta, covariance, status).
+
+    The MLE is :func:`mle_estimate` (projected Fisher scoring in the box ``[grid_min,
+    grid_max]^K``, covariance ``I(theta_hat)^-1``) started from the MAP ``map_mean``, as
+    for K <= 3 it starts from the posterior mean.  Where it does not exist
+    :func:`mle_or_fallback` puts ``[scoring] extreme_pattern_method`` in its place with
+    the MAP ``map_mean``, ``map_cov`` where K <= 3 reads the grid posterior: ``eap`` is
+    the MAP and its covariance (there is no posterior grid to average over), ``map`` the
+    MAP, ``fixed_step`` the previous estimate moved by ``fixed_step`` with the MAP's
+    covariance (the final estimate keeps the interim one).
+    """
+    return mle_or_fallback(ctx, state, rows, map_mean, map_cov, final=final)
+
+
 def _gridless_final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimates:
-    """Final MAP estimates of a context without a posterior grid (K > 3), started from the
-    interim estimate (the interim MAP after the last answer, or the opening point without
-    answers): the same values in a batch and for one examinee, live or simulated."""
+    """Final estimates of a context without a posterior grid (K > 3), started from the
+    interim estimate (the interim estimate after the last answer, or the opening point
+    without answers): the MAP, or for ``[reporting] final_method = "mle"`` the MLE from
+    that MAP (:func:`_gridless_mle`), or for ``eap`` the adaptive quadrature around it
+    (:func:`_gridless_eap`; a design scored by EAP throughout keeps the interim EAP of a
+    row that took an answer); the same values in a batch and for one examinee, live or
+    simulated."""
+    design = ctx.design
+    method = design.final_method
+    if method is ScoringMethod.EAP and design.scoring.method is ScoringMethod.EAP:
+        # the interim EAP after a row's last answer is the EAP of its present answers,
+        # computed by the same function from the same values (a live session replays them)
+        fresh = np.flatnonzero(state.n_given[rows] == 0)
+        mean, cov = state.theta[rows], state.covariance[rows]
+        if fresh.size:
+            at = rows[fresh]
+            m, c, _ = map_estimate(ctx, state, at, state.theta[at])
+            mean[fresh], cov[fresh] = _gridless_eap(ctx, state, at, m, c)
+        status = np.where(state.n_scored[rows] == 0, "no_responses", "converged").astype(object)
+        return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
+                                              lz=person_fit_lz(ctx, state, rows, mean))
     mean, cov, ok = map_estimate(ctx, state, rows, state.theta[rows])
-    status = np.where(state.n_scored[rows] == 0, "no_responses",
-                      np.where(ok, "converged", "not_converged")).astype(object)
+    if method is ScoringMethod.MLE:
+        mean, cov, status = _gridless_mle(ctx, state, rows, mean, cov, final=True)
+    elif method is ScoringMethod.EAP:
+        mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
+        status = np.where(state.n_scored[rows] == 0, "no_responses", "converged").astype(object)
+    else:
+        status = np.where(state.n_scored[rows] == 0, "no_responses",
+                          np.where(ok, "converged", "not_converged")).astype(object)
     return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
                                           lz=person_fit_lz(ctx, state, rows, mean))
 
