@@ -389,11 +389,11 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
                                                     "criterion; random gives it nothing to maximise: use "
                                                     "d_optimality, a_optimality, kullback_leibler or "
                                                     "max_composite_information with [blueprint] shadow_test"))
-    if st.sprt is not None:
-        out.append(Problem("[stopping.sprt]", f"the likelihood ratio test compares two points of one ability and "
-                                              f"is not available {many}; stop on se or se_per_dimension, "
-                                              "se_reduction, min_information, length, time, or "
-                                              "[stopping.confidence_interval] on the composite"))
+    if st.sprt is not None and rp.composite_weights is None:
+        # the SPRT of an ability vector classifies the composite (kernel/multidimensional_stopping.py)
+        out.append(Problem("[stopping.sprt]", f"{many} the likelihood ratio test classifies the composite of "
+                                              "[reporting] composite_weights (its cut is on the composite's "
+                                              "scale); give them"))
     if st.confidence_interval is not None and rp.composite_weights is None and k > 1:
         out.append(Problem("[stopping.confidence_interval]",
                            f"{many} the interval classifies the composite of [reporting] composite_weights; "
@@ -629,8 +629,9 @@ def _stopping_words(st, *, vector: bool = False) -> str:
                      + _number_text(st.se_per_dimension))
     if st.sprt is not None:
         s = st.sprt
-        rules.append(f"once the SPRT at cut {s.cut:g} +- {s.indifference:g} decides "
-                     f"(alpha {s.alpha:g}, beta {s.beta:g})")
+        rules.append(f"once the SPRT {'of the composite ' if vector else ''}at cut {s.cut:g} +- "
+                     f"{s.indifference:g} decides (alpha {s.alpha:g}, beta {s.beta:g}"
+                     + ("; the two points nearest the estimate along the composite weights)" if vector else ")"))
     if st.confidence_interval is not None:
         ci = st.confidence_interval
         rules.append(f"once the {ci.confidence:.0%} interval excludes the cut {ci.cut:g}")

@@ -63,7 +63,9 @@ class MultidimensionalSimulationResult:
     in order given and ``responses`` (-1 padded); ``administered`` (n_items,); ``offered``
     (n_items,): how often each item was selected, given or withheld by the Sympson-Hetter
     lottery (as the one-dimensional driver's ``offered``); ``lz`` (N,)
-    the person fit at the final ability vector (NaN where it cannot be computed).
+    the person fit at the final ability vector (NaN where it cannot be computed);
+    ``sprt_decision`` (N,): the composite SPRT's decision at the end (+1 above, -1 below,
+    0 undecided or no SPRT in the design).
     """
 
     design: Design
@@ -83,6 +85,7 @@ class MultidimensionalSimulationResult:
     administered: np.ndarray
     lz: np.ndarray | None = None
     offered: np.ndarray | None = None
+    sprt_decision: np.ndarray | None = None
 
     @property
     def size(self) -> int:
@@ -121,7 +124,9 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
                 covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
                 n_pretest=per_examinee(state.n_pretest).copy(), stop_reason=per_examinee(state.stop_reason).copy(),
                 items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy(),
-                lz=per_examinee(est.lz), withheld=withheld)
+                lz=per_examinee(est.lz), withheld=withheld,
+                sprt_decision=(np.zeros(n, dtype=np.int8) if est.sprt_decision is None
+                               else per_examinee(est.sprt_decision)))
 
 
 #: Contexts built in a worker process, by run token (one run at a time per worker).
@@ -260,8 +265,8 @@ def composite_classification(result: MultidimensionalSimulationResult) -> list[d
     """:func:`adaptive_engine.simulation.metrics.classification` of the composite (empty without one).
 
     The true composite ``w . theta_true`` against the estimated one ``w . theta_hat``
-    classified by the point estimate against each cut score (as the final report does
-    when no SPRT decides).
+    classified by the point estimate against each cut score, or by the composite SPRT's
+    decision on the cut it tested where it decided (as the final report does).
     """
     design = result.design
     weights = design.reporting.composite_weights
@@ -271,7 +276,7 @@ def composite_classification(result: MultidimensionalSimulationResult) -> list[d
     w = np.asarray(weights, dtype=float)
     true_c = result.true_theta @ w
     est_c, _ = composite(w, result.theta, result.covariance)
-    return metrics.classification(true_c, classification_matrix(design, est_c), cuts)
+    return metrics.classification(true_c, classification_matrix(design, est_c, result.sprt_decision), cuts)
 
 
 def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposure_target: float | None = None) -> dict:
