@@ -378,10 +378,11 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
                                     SelectionCriterion.A_STRATIFIED):
         out.append(Problem("[selection] criterion", f"{sel.criterion.value} runs on the one-dimensional kernel; "
                                                     "leave out the vector keys and multidimensional criteria"))
-    if ex.method is ExposureMethod.SYMPSON_HETTER and design.exposure_strata:
+    if ex.method is ExposureMethod.SYMPSON_HETTER and design.exposure_strata and rp.composite_weights is None:
+        # strata of an ability vector cut its composite (kernel/selection.py, exposure_stratum)
         out.append(Problem("[exposure] parameters_file", "exposure parameters conditional on ability strata "
-                                                         f"cut one ability scale and are not available {many}; "
-                                                         "give one parameter per item"))
+                                                         f"cut one scale: {many} they cut the composite of "
+                                                         "[reporting] composite_weights; give them"))
     if design.blueprint.shadow_test and sel.criterion is SelectionCriterion.RANDOM:
         # the shadow test of an ability vector maximises the criterion, linearised
         # (kernel/multidimensional_shadow.py): a random criterion has no value to sum
@@ -518,7 +519,8 @@ def describe_design(design: Design) -> list[str]:
         ExposureMethod.RANDOMESQUE: f"randomesque: at random among the {ex.candidates} best items",
         ExposureMethod.SYMPSON_HETTER: f"Sympson-Hetter with per-item parameters from {ex.parameters_file or 'code'}"
                           + (f" ({len(design.exposure_parameters)} items)" if design.exposure_parameters else "")
-                          + (f", conditional on the interim ability estimate in {len(design.exposure_strata) + 1} "
+                          + (f", conditional on the {'composite of the ' if design.asks_multidimensional else ''}"
+                             f"interim ability estimate in {len(design.exposure_strata) + 1} "
                              f"strata cut at {', '.join(f'{c:g}' for c in design.exposure_strata)}"
                              if design.exposure_strata else ""),
         ExposureMethod.PROGRESSIVE: "progressive: a random part that fades as the test goes on "
