@@ -128,7 +128,7 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, count_by_s
     _count_withheld(withheld, picked)
     by_stratum = count_by_stratum is not None
     if by_stratum:
-        from .engine import _keep_withheld
+        from .engine import keep_withheld
 
         cuts = np.asarray(count_by_stratum, dtype=float)
         weights = _stratum_weights(ctx)
@@ -137,7 +137,7 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, count_by_s
         pick_stratum = np.zeros((n, length), dtype=np.int64)
         pick_stratum[:, 0] = composite_stratum(weights, chunk_rows.of_examinees(state.theta), cuts)
         kept: list = []  # (row, item, estimate stratum); a design with a lottery shares no rows
-        _keep_withheld(kept, picked, composite_of(weights, state.theta), cuts)
+        keep_withheld(kept, picked, composite_of(weights, state.theta), cuts)
     while True:
         examinees, at_row = chunk_rows.testing(state)
         if examinees.size == 0:
@@ -156,16 +156,16 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, count_by_s
             going = examinees[state.pending[at_row] >= 0]
             going_row = chunk_rows.row_of(going)
             pick_stratum[going, state.n_given[going_row]] = composite_stratum(weights, state.theta[going_row], cuts)
-            _keep_withheld(kept, picked, composite_of(weights, state.theta), cuts)
+            keep_withheld(kept, picked, composite_of(weights, state.theta), cuts)
     # every answer went through the kernel's answer: an EAP design's interim estimates are final
     est = final_estimates(ctx, state, chunk_rows.in_use(), interim_current=True)
     per_examinee = chunk_rows.of_examinees
     counted = {}
     if by_stratum:
-        from .engine import _stratum_counts
+        from .engine import stratum_counts
 
         items = per_examinee(state.items)
-        counted["administered_by_stratum_pair"], counted["offered_by_stratum_pair"] = _stratum_counts(
+        counted["administered_by_stratum_pair"], counted["offered_by_stratum_pair"] = stratum_counts(
             items, pick_stratum, kept, composite_stratum(weights, true_theta, cuts), cuts.size + 1, bank.n_items)
     return dict(seeds=seeds, true_theta=true_theta, theta=per_examinee(est.theta), se=per_examinee(est.se),
                 covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
