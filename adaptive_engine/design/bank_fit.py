@@ -390,10 +390,11 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
                                     SelectionCriterion.A_STRATIFIED):
         out.append(Problem("[selection] criterion", f"{sel.criterion.value} runs on the one-dimensional kernel; "
                                                     "leave out the vector keys and multidimensional criteria"))
-    if ex.method is ExposureMethod.SYMPSON_HETTER and design.exposure_strata:
+    if ex.method is ExposureMethod.SYMPSON_HETTER and design.exposure_strata and rp.composite_weights is None:
+        # strata of an ability vector cut its composite (kernel/selection.py, exposure_stratum)
         out.append(Problem("[exposure] parameters_file", "exposure parameters conditional on ability strata "
-                                                         f"cut one ability scale and are not available {many}; "
-                                                         "give one parameter per item"))
+                                                         f"cut one scale: {many} they cut the composite of "
+                                                         "[reporting] composite_weights; give them"))
     if design.blueprint.shadow_test and sel.criterion is SelectionCriterion.RANDOM:
         # the shadow test of an ability vector maximises the criterion, linearised
         # (kernel/multidimensional_shadow.py): a random criterion has no value to sum
@@ -401,11 +402,11 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
                                                     "criterion; random gives it nothing to maximise: use "
                                                     "d_optimality, a_optimality, kullback_leibler or "
                                                     "max_composite_information with [blueprint] shadow_test"))
-    if st.sprt is not None:
-        out.append(Problem("[stopping.sprt]", f"the likelihood ratio test compares two points of one ability and "
-                                              f"is not available {many}; stop on se or se_per_dimension, "
-                                              "se_reduction, min_information, length, time, or "
-                                              "[stopping.confidence_interval] on the composite"))
+    if st.sprt is not None and rp.composite_weights is None:
+        # the SPRT of an ability vector classifies the composite (kernel/multidimensional_stopping.py)
+        out.append(Problem("[stopping.sprt]", f"{many} the likelihood ratio test classifies the composite of "
+                                              "[reporting] composite_weights (its cut is on the composite's "
+                                              "scale); give them"))
     if st.confidence_interval is not None and rp.composite_weights is None and k > 1:
         out.append(Problem("[stopping.confidence_interval]",
                            f"{many} the interval classifies the composite of [reporting] composite_weights; "
@@ -556,7 +557,8 @@ def describe_design(design: Design) -> list[str]:
         ExposureMethod.RANDOMESQUE: f"randomesque: at random among the {ex.candidates} best items",
         ExposureMethod.SYMPSON_HETTER: f"Sympson-Hetter with per-item parameters from {ex.parameters_file or 'code'}"
                           + (f" ({len(design.exposure_parameters)} items)" if design.exposure_parameters else "")
-                          + (f", conditional on the interim ability estimate in {len(design.exposure_strata) + 1} "
+                          + (f", conditional on the {'composite of the ' if design.asks_multidimensional else ''}"
+                             f"interim ability estimate in {len(design.exposure_strata) + 1} "
                              f"strata cut at {', '.join(f'{c:g}' for c in design.exposure_strata)}"
                              if design.exposure_strata else ""),
         ExposureMethod.PROGRESSIVE: "progressive: a random part that fades as the test goes on "
@@ -667,8 +669,9 @@ def _stopping_words(st, *, vector: bool = False) -> str:
                      + _number_text(st.se_per_dimension))
     if st.sprt is not None:
         s = st.sprt
-        rules.append(f"once the SPRT at cut {s.cut:g} +- {s.indifference:g} decides "
-                     f"(alpha {s.alpha:g}, beta {s.beta:g})")
+        rules.append(f"once the SPRT {'of the composite ' if vector else ''}at cut {s.cut:g} +- "
+                     f"{s.indifference:g} decides (alpha {s.alpha:g}, beta {s.beta:g}"
+                     + ("; the two points nearest the estimate along the composite weights)" if vector else ")"))
     if st.confidence_interval is not None:
         ci = st.confidence_interval
         rules.append(f"once the {ci.confidence:.0%} interval excludes the cut {ci.cut:g}")

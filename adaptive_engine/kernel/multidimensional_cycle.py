@@ -677,7 +677,8 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
     """Why each row's test stops now (``""``: go on), by :func:`adaptive_engine.kernel.stopping.stop_reasons`.
 
     The SE rule fires once every dimension is at or below its target; the confidence
-    interval rule classifies the composite of ``[reporting] composite_weights``;
+    interval rule and the SPRT classify the composite of ``[reporting] composite_weights``
+    (the SPRT at the two points of :func:`.multidimensional_stopping.composite_sprt_points`);
     ``se_reduction`` and ``min_information`` hold on every dimension
     (:mod:`.multidimensional_stopping`).
     """
@@ -696,6 +697,10 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
         value, value_se = composite(weights, state.theta[rows], state.covariance[rows])
         kwargs["ci_decision"] = stopping.confidence_interval_decision(
             value, value_se, cut=st.confidence_interval.cut, confidence=st.confidence_interval.confidence)
+    if st.sprt is not None:  # the SPRT on the composite (.multidimensional_stopping)
+        from .multidimensional_stopping import composite_sprt_statistic
+
+        kwargs["sprt_llr"] = composite_sprt_statistic(ctx, state, rows)
     if st.se_reduction is not None or st.min_information is not None:
         from . import multidimensional_stopping as precision
 
@@ -721,8 +726,18 @@ class MultidimensionalFinalEstimates:
     se: np.ndarray
     covariance: np.ndarray
     status: np.ndarray
-    sprt_decision: None = None
+    sprt_decision: np.ndarray | None = None
     lz: np.ndarray | None = None
+
+
+def _with_sprt_decision(ctx, state, rows, est: "MultidimensionalFinalEstimates") -> "MultidimensionalFinalEstimates":
+    """``est`` with the composite SPRT's decision (R,) when the design has the rule: at the
+    interim estimate the test ended on, the one its last stop decision read."""
+    if ctx.design.stopping.sprt is None:
+        return est
+    from .multidimensional_stopping import composite_sprt_decision
+
+    return attrs.evolve(est, sprt_decision=composite_sprt_decision(ctx, state, rows))
 
 
 def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
@@ -740,6 +755,10 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
     the final EAP of a row that took an answer is its interim EAP.
     """
     rows = np.asarray(rows, dtype=np.int64)
+    return _with_sprt_decision(ctx, state, rows, _final_estimates(ctx, state, rows, interim_current))
+
+
+def _final_estimates(ctx, state, rows, interim_current) -> MultidimensionalFinalEstimates:
     if ctx.multidimensional.gridless:
         return _gridless_final_estimates(ctx, state, rows)
     status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
@@ -813,7 +832,7 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
     comp = None
     if tab.composite_weights is not None:
         value, value_se = composite(tab.composite_weights, est.theta, est.covariance)
-        comp = final_reports(design, theta=value, se=value_se, **common)
+        comp = final_reports(design, theta=value, se=value_se, sprt_decision=est.sprt_decision, **common)
     out = []
     threshold = float(design.reporting.person_fit_threshold)
     keep = ("theta", "se", "interval", "scaled_score", "scaled_se", "scaled_interval")
