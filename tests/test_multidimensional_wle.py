@@ -415,19 +415,59 @@ def test_score_command_prints_the_wle_of_a_vector_bank(tmp_path):
 # 5. The gate
 
 
-def test_the_gate_takes_wle_for_vectors_and_refuses_it_without_a_grid():
-    bank = bank_2d()
-    d = parse_design(WLE_DESIGN)
-    assert check_design_against_bank(d, bank) == []
-    # K = 4: the kernel keeps no grid; the WLE (which starts from the grid's posterior mean)
-    # is refused at its key, with the way out
+def wide_bank():
+    """Four dimensions, M2PL and MGRM items of two to four dimensions each."""
     rng = np.random.default_rng(1)
-    rows = ["item_id,model,a1,a2,a3,a4,intercept"] + [
-        f"Q{i},M2PL,{','.join(repr(float(x)) for x in rng.uniform(0.5, 1.5, 4))},{float(rng.normal())!r}"
-        for i in range(30)]
-    wide = read_bank_csv_text("\n".join(rows) + "\n")
-    text = ("[scoring]\nmethod = \"wle\"\n[selection]\ncriterion = \"d_optimality\"\n[stopping]\nmax_items = 10\n"
-            "[reporting]\nfinal_method = \"wle\"\n")
-    found = {p.location: p.message for p in check_design_against_bank(parse_design(text), wide)}
-    for key in ("[scoring] method", "[reporting] final_method"):
-        assert "wle" in found[key] and "K <= 3" in found[key] and "use map" in found[key]
+    rows = ["item_id,model,a1,a2,a3,a4,intercept,intercept1,intercept2"]
+    for i in range(40):
+        a = rng.uniform(0.5, 1.5, 4) * (rng.random(4) < 0.6)
+        a[i % 4] = max(a[i % 4], 0.9)
+        slopes = ",".join(repr(float(x)) for x in a)
+        if i % 4 == 3:
+            hi, lo = sorted((float(x) for x in rng.normal(0, 1, 2)), reverse=True)
+            rows.append(f"Q{i},MGRM,{slopes},,{hi!r},{lo!r}")
+        else:
+            rows.append(f"Q{i},M2PL,{slopes},{float(rng.normal())!r},,")
+    return read_bank_csv_text("\n".join(rows) + "\n")
+
+
+WIDE_DESIGN = """
+[scoring]
+method = "wle"
+[selection]
+criterion = "d_optimality"
+[stopping]
+min_items = 8
+max_items = 16
+[reporting]
+final_method = "wle"
+"""
+
+
+def test_the_gate_takes_wle_for_vectors_of_two_to_six_dimensions():
+    assert check_design_against_bank(parse_design(WLE_DESIGN), bank_2d()) == []
+    assert check_design_against_bank(parse_design(WIDE_DESIGN), wide_bank()) == []
+
+
+@pytest.mark.long_running
+def test_a_wle_design_of_four_dimensions_runs_without_a_grid_batch_as_one_at_a_time():
+    """K = 4 (no posterior grid): the WLE from the MAP, interim and final; a batch gives the
+    bits of one examinee at a time, and the final estimate is scoring's WLE of the answers."""
+    bank = wide_bank()
+    ctx = build_context(parse_design(WIDE_DESIGN), bank)
+    assert ctx.multidimensional.gridless
+    true = np.random.default_rng(2).normal(0, 1, (3, 4))
+    whole = run_chunk(ctx, seed=5, start=0, true_theta=true)
+    for i in range(3):
+        one = run_chunk(ctx, seed=5, start=i, true_theta=true[i : i + 1])
+        np.testing.assert_array_equal(one["items"][0], whole["items"][i])
+        np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
+    compared = 0
+    for i in range(3):
+        n = int((whole["items"][i] >= 0).sum())
+        scored = me.wle_estimate_md(bank, whole["items"][i : i + 1, :n], whole["responses"][i : i + 1, :n],
+                                    bounds=(-6.0, 6.0))
+        if scored.status[0] == "converged":
+            np.testing.assert_allclose(whole["theta"][i], scored.theta[0], atol=1e-7)
+            compared += 1
+    assert compared >= 2

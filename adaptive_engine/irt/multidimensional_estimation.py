@@ -102,7 +102,14 @@ from .estimation import (
     checked_answers,
     row_sum,
 )
-from .small_matrices import cholesky_factor, determinant, inverse, matrix_vector, quadratic_form
+from .small_matrices import (
+    cholesky_factor,
+    determinant,
+    inverse,
+    matrix_vector,
+    quadratic_form,
+    solve_positive_real,
+)
 
 #: Methods of :func:`estimate_md`.
 METHODS_MD = ("mle", "map", "eap", "wle")
@@ -746,7 +753,7 @@ class _WleTerms(NamedTuple):
     observed: np.ndarray  # (R, K, K) minus the Hessian of the log-likelihood
     modified: np.ndarray  # (R, K) Firth's modified score U + tr(I^-1 J_r) / 2
     singular: np.ndarray  # (R,) bool: the information matrix is (next to) singular
-    jacobian: np.ndarray  # (R, K, K) minus the derivative of the modified score (K <= 3; else NaN)
+    jacobian: np.ndarray  # (R, K, K) minus the derivative of the modified score
 
 
 def wle_terms(params: md.MultidimensionalParameters, items, responses, theta) -> _WleTerms:
@@ -791,9 +798,7 @@ def wle_terms(params: md.MultidimensionalParameters, items, responses, theta) ->
         quad[:, col] = quadratic_form(a[:, col], inv)
         term = (skew[:, col] * quad[:, col])[:, None] * a[:, col]
         correction = correction + np.where(answered[:, col, None], term, 0.0)
-    jacobian = np.full((r_n, k, k), np.nan)
-    if k <= 3:
-        jacobian = observed - _correction_derivative(terms, answered, a, inv, quad, reached)
+    jacobian = observed - _correction_derivative(terms, answered, a, inv, quad, reached)
     return _WleTerms(info, observed, grad + 0.5 * correction, singular, jacobian)
 
 
@@ -848,7 +853,7 @@ def _fisher_step(terms: _WleTerms, x, lo, hi):
     at a bound (U* outward).
 
     Newton's step ``-(dU*/dtheta)^-1 U*`` where the symmetric part of ``-dU*/dtheta`` is
-    positive definite (K <= 3; near a root that is a maximum of a likelihood-like function
+    positive definite (near a root that is a maximum of a likelihood-like function
     the derivative looks like minus a Hessian there), its merit ``U*' U*`` (for which the
     Newton step goes downhill, exactly).  Elsewhere -- a short test whose modified score
     turns the other way along a direction the items hardly measure -- the step ``M^-1 U*``
@@ -860,8 +865,12 @@ def _fisher_step(terms: _WleTerms, x, lo, hi):
     factor = cholesky_factor(0.5 * (jac + np.swapaxes(jac, -1, -2)))
     newton = np.all(np.diagonal(factor, axis1=-2, axis2=-1) > 0, axis=-1) & ~terms.singular  # NaN: False
     fisher = matrix_vector(inverse(mat), g_free)
-    step = np.where(newton[:, None], matrix_vector(inverse(np.where(newton[:, None, None], jac, eye)), g_free),
-                    fisher)
+    jac = np.where(newton[:, None, None], jac, eye)
+    if x.shape[1] <= 3:  # the adjugate; beyond, inverse() is Cholesky's, for symmetric matrices
+        newton_step = matrix_vector(inverse(jac), g_free)
+    else:
+        newton_step = solve_positive_real(jac, g_free)
+    step = np.where(newton[:, None], newton_step, fisher)
     merit = np.where(newton, _dot(g_free, g_free), _dot(fisher, g_free))
     return np.where(~held, step, 0.0), merit, held, newton
 
@@ -877,7 +886,7 @@ def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bo
     """Weighted likelihood estimates of ability vectors: roots of the modified score in the box.
 
     Steps ``theta <- theta + t d`` from ``start`` (R, K), ``d`` the step of
-    :func:`_fisher_step`: Newton's on the modified score (its exact derivative, K <= 3)
+    :func:`_fisher_step`: Newton's on the modified score (its exact derivative)
     where minus that derivative has a positive definite symmetric part, else ``M^-1 U*``
     with ``M`` minus the Hessian of the log-likelihood where that is positive definite, else
     the test information (Fisher scoring); projected on ``[lo, hi]^K`` (a coordinate at a

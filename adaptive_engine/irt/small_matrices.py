@@ -133,3 +133,28 @@ def matrix_vector(m: np.ndarray, x: np.ndarray) -> np.ndarray:
             acc = acc + m[..., i, j] * x[..., j]
         cols.append(acc)
     return np.stack(cols, axis=-1)
+
+
+def solve_positive_real(m: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``m^-1 b`` for matrices (..., K, K) whose symmetric part is positive definite (not
+    necessarily symmetric themselves) and vectors (..., K), elementwise: Gaussian
+    elimination without pivoting, every sum in a fixed order.  A positive definite
+    symmetric part keeps every leading block regular, so no pivot is zero (Golub & Van Loan,
+    *Matrix computations*, on LU of such matrices; from memory).  NaN where one is."""
+    k = m.shape[-1]
+    a = np.array(m, dtype=float, copy=True)
+    x = np.array(b, dtype=float, copy=True)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for j in range(k):
+            pivot = a[..., j, j]
+            for i in range(j + 1, k):
+                factor = a[..., i, j] / pivot
+                for p in range(j + 1, k):
+                    a[..., i, p] = a[..., i, p] - factor * a[..., j, p]
+                x[..., i] = x[..., i] - factor * x[..., j]
+        for i in range(k - 1, -1, -1):
+            acc = x[..., i]
+            for p in range(i + 1, k):
+                acc = acc - a[..., i, p] * x[..., p]
+            x[..., i] = acc / a[..., i, i]
+    return x

@@ -8,7 +8,8 @@ with the criteria of :mod:`.multidimensional_selection`), exposure control, the 
 enemies, item sets and pretest seeding.  What differs is here: the prior (multivariate
 normal), the interim estimate (EAP on the grid, MAP by Fisher scoring with the prior's
 precision, or the MLE or WLE where it exists with the design's stand-in elsewhere; for K > 3,
-where the kernel keeps no posterior grid, MAP alone, interim and final), the stopping
+where the kernel keeps no posterior grid, the MAP, the MLE or WLE from the MAP, or the EAP by
+adaptive Gauss-Hermite quadrature around the MAP, :mod:`.multidimensional_quadrature`), the stopping
 statistics (the SE of every dimension, the composite's interval) and the final report
 (each dimension with its interval and scaled score, the composite with its SE
 ``sqrt(w' S w)``).
@@ -197,8 +198,11 @@ def keeps_grid_posterior(ctx) -> bool:
     and the WLE start from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
     stop.  A design scored by MAP throughout that uses none of these never reads the grid:
     its final MAP starts from the interim MAP (:func:`final_estimates`), and its rows carry
-    no grid at all.
+    no grid at all.  Nor do the rows of a context without a grid (K > 3), whatever the
+    method (their EAP is a quadrature around the MAP, their MLE starts from the MAP).
     """
+    if ctx.multidimensional.gridless:
+        return False
     if ctx.posterior_form == "log":
         return True
     design = ctx.design
@@ -649,20 +653,85 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
 
 
 def _update_gridless_estimate(ctx, state, rows) -> None:
-    """The interim estimate of a context without a posterior grid (K > 3): the MAP from the
-    previous interim estimate, its covariance ``(P + I(theta_hat))^-1`` (the gate admits no
-    other method there).  The answers are already in the state's items and responses."""
+    """The interim estimate of a context without a posterior grid (K > 3).
+
+    The MAP from the previous interim estimate, its covariance ``(P + I(theta_hat))^-1``;
+    for an MLE design the MLE from that MAP where it exists and the design's stand-in
+    elsewhere (:func:`_gridless_mle`), for a WLE design likewise the WLE from that MAP
+    (:func:`wle_or_fallback`, the MAP in place of the grid's posterior mean).  The answers
+    are already in the state's items and responses.
+    """
     mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
+    method = ctx.design.scoring.method
+    if method is ScoringMethod.MLE:
+        mean, cov, _ = _gridless_mle(ctx, state, rows, mean, cov)
+    elif method is ScoringMethod.WLE:  # from the MAP, the stand-in's "eap" the MAP, as the MLE's
+        mean, cov, _ = wle_or_fallback(ctx, state, rows, mean, cov)
+    elif method is ScoringMethod.EAP:
+        mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
+def _gridless_eap(ctx, state, rows, map_mean, map_cov):
+    """The posterior mean (R, K) and covariance (R, K, K) of ``rows`` without a posterior
+    grid (K > 3): adaptive Gauss-Hermite quadrature centred at the MAP ``map_mean`` and
+    spread by the Cholesky factor of its covariance ``map_cov``
+    (:func:`.multidimensional_quadrature.posterior_moments`)."""
+    from .multidimensional_quadrature import posterior_moments
+
+    return posterior_moments(ctx, state, rows, map_mean, map_cov)
+
+
+def _gridless_mle(ctx, state, rows, map_mean, map_cov, *, final: bool = False):
+    """The MLE of ``rows`` where it exists, else the design's stand-in, without a posterior
+    grid (K > 3); (theta, covariance, status).
+
+    The MLE is :func:`mle_estimate` (projected Fisher scoring in the box ``[grid_min,
+    grid_max]^K``, covariance ``I(theta_hat)^-1``) started from the MAP ``map_mean``, as
+    for K <= 3 it starts from the posterior mean.  Where it does not exist
+    :func:`mle_or_fallback` puts ``[scoring] extreme_pattern_method`` in its place with
+    the MAP ``map_mean``, ``map_cov`` where K <= 3 reads the grid posterior: ``eap`` is
+    the MAP and its covariance (there is no posterior grid to average over), ``map`` the
+    MAP, ``fixed_step`` the previous estimate moved by ``fixed_step`` with the MAP's
+    covariance (the final estimate keeps the interim one).
+    """
+    return mle_or_fallback(ctx, state, rows, map_mean, map_cov, final=final)
+
+
 def _gridless_final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimates:
-    """Final MAP estimates of a context without a posterior grid (K > 3), started from the
-    interim estimate (the interim MAP after the last answer, or the opening point without
-    answers): the same values in a batch and for one examinee, live or simulated."""
+    """Final estimates of a context without a posterior grid (K > 3), started from the
+    interim estimate (the interim estimate after the last answer, or the opening point
+    without answers): the MAP, or for ``[reporting] final_method = "mle"`` the MLE from
+    that MAP (:func:`_gridless_mle`; ``wle`` likewise, :func:`wle_or_fallback`), or for
+    ``eap`` the adaptive quadrature around it
+    (:func:`_gridless_eap`; a design scored by EAP throughout keeps the interim EAP of a
+    row that took an answer); the same values in a batch and for one examinee, live or
+    simulated."""
+    design = ctx.design
+    method = design.final_method
+    if method is ScoringMethod.EAP and design.scoring.method is ScoringMethod.EAP:
+        # the interim EAP after a row's last answer is the EAP of its present answers,
+        # computed by the same function from the same values (a live session replays them)
+        fresh = np.flatnonzero(state.n_given[rows] == 0)
+        mean, cov = state.theta[rows], state.covariance[rows]
+        if fresh.size:
+            at = rows[fresh]
+            m, c, _ = map_estimate(ctx, state, at, state.theta[at])
+            mean[fresh], cov[fresh] = _gridless_eap(ctx, state, at, m, c)
+        status = np.where(state.n_scored[rows] == 0, "no_responses", "converged").astype(object)
+        return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
+                                              lz=person_fit_lz(ctx, state, rows, mean))
     mean, cov, ok = map_estimate(ctx, state, rows, state.theta[rows])
-    status = np.where(state.n_scored[rows] == 0, "no_responses",
-                      np.where(ok, "converged", "not_converged")).astype(object)
+    if method is ScoringMethod.MLE:
+        mean, cov, status = _gridless_mle(ctx, state, rows, mean, cov, final=True)
+    elif method is ScoringMethod.WLE:
+        mean, cov, status = wle_or_fallback(ctx, state, rows, mean, cov, final=True)
+    elif method is ScoringMethod.EAP:
+        mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
+        status = np.where(state.n_scored[rows] == 0, "no_responses", "converged").astype(object)
+    else:
+        status = np.where(state.n_scored[rows] == 0, "no_responses",
+                          np.where(ok, "converged", "not_converged")).astype(object)
     return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
                                           lz=person_fit_lz(ctx, state, rows, mean))
 
@@ -684,7 +753,8 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
     """Why each row's test stops now (``""``: go on), by :func:`adaptive_engine.kernel.stopping.stop_reasons`.
 
     The SE rule fires once every dimension is at or below its target; the confidence
-    interval rule classifies the composite of ``[reporting] composite_weights``;
+    interval rule and the SPRT classify the composite of ``[reporting] composite_weights``
+    (the SPRT at the two points of :func:`.multidimensional_stopping.composite_sprt_points`);
     ``se_reduction`` and ``min_information`` hold on every dimension
     (:mod:`.multidimensional_stopping`).
     """
@@ -703,6 +773,10 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
         value, value_se = composite(weights, state.theta[rows], state.covariance[rows])
         kwargs["ci_decision"] = stopping.confidence_interval_decision(
             value, value_se, cut=st.confidence_interval.cut, confidence=st.confidence_interval.confidence)
+    if st.sprt is not None:  # the SPRT on the composite (.multidimensional_stopping)
+        from .multidimensional_stopping import composite_sprt_statistic
+
+        kwargs["sprt_llr"] = composite_sprt_statistic(ctx, state, rows)
     if st.se_reduction is not None or st.min_information is not None:
         from . import multidimensional_stopping as precision
 
@@ -728,8 +802,18 @@ class MultidimensionalFinalEstimates:
     se: np.ndarray
     covariance: np.ndarray
     status: np.ndarray
-    sprt_decision: None = None
+    sprt_decision: np.ndarray | None = None
     lz: np.ndarray | None = None
+
+
+def _with_sprt_decision(ctx, state, rows, est: "MultidimensionalFinalEstimates") -> "MultidimensionalFinalEstimates":
+    """``est`` with the composite SPRT's decision (R,) when the design has the rule: at the
+    interim estimate the test ended on, the one its last stop decision read."""
+    if ctx.design.stopping.sprt is None:
+        return est
+    from .multidimensional_stopping import composite_sprt_decision
+
+    return attrs.evolve(est, sprt_decision=composite_sprt_decision(ctx, state, rows))
 
 
 def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
@@ -747,6 +831,10 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
     the final EAP of a row that took an answer is its interim EAP.
     """
     rows = np.asarray(rows, dtype=np.int64)
+    return _with_sprt_decision(ctx, state, rows, _final_estimates(ctx, state, rows, interim_current))
+
+
+def _final_estimates(ctx, state, rows, interim_current) -> MultidimensionalFinalEstimates:
     if ctx.multidimensional.gridless:
         return _gridless_final_estimates(ctx, state, rows)
     status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
@@ -811,6 +899,10 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
     design = ctx.design
     plain = attrs.evolve(design, reporting=attrs.evolve(design.reporting, cut_scores=()),
                          stopping=attrs.evolve(design.stopping, confidence_interval=None))
+    if tab.k == 1 and tab.composite_weights is None:
+        # K = 1 without composite weights: the cut scores classify the one dimension, as the
+        # one-dimensional engine's report does (K > 1 needs the weights: the gate)
+        plain = attrs.evolve(plain, reporting=design.reporting)
     r = est.theta.shape[0]
     common = dict(status=est.status, n_scored=n_scored, n_pretest=n_pretest, stop_reason=stop_reason,
                   lz_star=np.full(r, np.nan))
@@ -818,7 +910,7 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
     comp = None
     if tab.composite_weights is not None:
         value, value_se = composite(tab.composite_weights, est.theta, est.covariance)
-        comp = final_reports(design, theta=value, se=value_se, **common)
+        comp = final_reports(design, theta=value, se=value_se, sprt_decision=est.sprt_decision, **common)
     out = []
     threshold = float(design.reporting.person_fit_threshold)
     keep = ("theta", "se", "interval", "scaled_score", "scaled_se", "scaled_interval")
@@ -839,7 +931,7 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
                                 **{k: c.get(k) for k in keep}}
             rep["classifications"] = c.get("classifications", [])
         else:
-            rep["classifications"] = []
+            rep["classifications"] = first.get("classifications", [])
         rep.update(items=first["items"], stop_reason=first["stop_reason"],
                    person_fit=_vector_person_fit(None if est.lz is None else est.lz[i], threshold))
         out.append(rep)

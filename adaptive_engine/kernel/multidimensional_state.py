@@ -12,8 +12,9 @@ density to which log-probability rows are added (:func:`add_and_moments`); under
 (:data:`adaptive_engine.design.bank_fit.MAX_KERNEL_DIMENSIONS`) the kernel keeps no grid
 (``gridless``): the grid, the log tables and each examinee's posterior row have no points
 (nothing of size (B, G) is allocated), the interim and final estimates are MAP with the
-covariance ``(P + I(theta))^-1`` and the criteria read that covariance; the gate refuses
-every option that needs the grid.  The bookkeeping of
+covariance ``(P + I(theta))^-1``, MLE started from it, or EAP by adaptive Gauss-Hermite
+quadrature around it (:mod:`.multidimensional_quadrature`); the gate refuses every option
+that needs the grid.  The bookkeeping of
 :mod:`adaptive_engine.kernel.cycle` (answers, blueprint counts, enemies, item sets, pretest
 seeding) and the selection machinery of :mod:`adaptive_engine.kernel.selection` (exposure
 control, blueprint, eligibility) serve both unchanged.
@@ -91,7 +92,7 @@ class MultidimensionalTables:
     gridless : bool
         K > :data:`adaptive_engine.design.bank_fit.MAX_GRID_DIMENSIONS`: no posterior grid
         (``points`` (0, K), ``axis`` (0,), ``log_table`` (n, 0, C), ``log_prior`` (0,)); the
-        estimates are MAP.
+        estimates are MAP, MLE or EAP by quadrature around the MAP.
     """
 
     k: int
