@@ -270,15 +270,13 @@ def test_while_no_mle_exists_the_extreme_pattern_method_stands_in(how, form):
         assert report["theta"] == [float(x) for x in state.theta[0]]
 
 
-def test_mle_designs_are_accepted_and_wle_is_refused_at_its_key():
+def test_mle_designs_are_accepted():
+    # (the weighted likelihood: tests/test_multidimensional_wle.py)
     bank = random_bank()
     assert check_design_against_bank(design(scoring='method = "mle"'), bank) == []
-    found = {p.location: p.message for p in check_design_against_bank(design(scoring='method = "wle"'), bank)}
-    assert "wle is not available" in found["[scoring] method"] and "use eap, map or mle" in found["[scoring] method"]
     d = design()
-    d = attrs.evolve(d, reporting=attrs.evolve(d.reporting, final_method="wle"))
-    found = {p.location: p.message for p in check_design_against_bank(d, bank)}
-    assert "use eap, map or mle" in found["[reporting] final_method"]
+    d = attrs.evolve(d, reporting=attrs.evolve(d.reporting, final_method="mle"))
+    assert check_design_against_bank(d, bank) == []
 
 
 @pytest.mark.long_running

@@ -362,13 +362,6 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     sc, sel, ex, st, rp = (design.scoring, design.selection, design.exposure, design.stopping,
                            design.reporting)
     many = f"with an ability of {k} dimensions ({names})"
-    # no published weighted likelihood for an ability vector is followed here: WLE stays one-dimensional
-    vector_methods = (ScoringMethod.EAP, ScoringMethod.MAP, ScoringMethod.MLE)
-    if sc.method not in vector_methods:
-        out.append(Problem("[scoring] method", f"{sc.method.value} is not available {many}; use eap, map or mle"))
-    if design.final_method not in vector_methods:
-        out.append(Problem("[reporting] final_method",
-                           f"{design.final_method.value} is not available {many}; use eap, map or mle"))
     if k > MAX_GRID_DIMENSIONS:
         return out + _gridless_problems(design, k, many)
     points = multidimensional_grid_points(design, k)
@@ -424,14 +417,15 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
     sc, sel, st = design.scoring, design.selection, design.stopping
     why = (f"needs the posterior on a grid of points ** K, which the kernel keeps for K <= {MAX_GRID_DIMENSIONS} "
            f"only")
-    # the scoring methods eap, map and mle all run without a grid: MAP by Newton with the
-    # prior's precision, MLE by projected Fisher scoring from the MAP, EAP by adaptive
-    # Gauss-Hermite quadrature around the MAP (kernel/multidimensional_quadrature.py)
+    # the scoring methods eap, map, mle and wle all run without a grid: MAP by Newton with
+    # the prior's precision, MLE by projected Fisher scoring from the MAP, WLE by steps on
+    # Firth's modified score from the MAP, EAP by adaptive Gauss-Hermite quadrature around
+    # the MAP (kernel/multidimensional_quadrature.py)
     out = []
     if sc.grid_points_per_dimension is not None:
         out.append(Problem("[scoring] grid_points_per_dimension",
                            f"{many} the kernel keeps no grid (it scores on the box grid_min..grid_max by MAP, "
-                           "MLE, or EAP by a quadrature around the MAP sized by eap_points_per_dimension); "
+                           "MLE, WLE, or EAP by a quadrature around the MAP sized by eap_points_per_dimension); "
                            "leave the key out"))
     if sel.criterion is SelectionCriterion.KULLBACK_LEIBLER:
         out.append(Problem("[selection] criterion", f"kullback_leibler weights the grid posterior and {why}; "

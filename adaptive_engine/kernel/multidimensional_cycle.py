@@ -7,8 +7,8 @@ row addition on the product grid), picking items (:func:`adaptive_engine.kernel.
 with the criteria of :mod:`.multidimensional_selection`), exposure control, the blueprint,
 enemies, item sets and pretest seeding.  What differs is here: the prior (multivariate
 normal), the interim estimate (EAP on the grid, MAP by Fisher scoring with the prior's
-precision, or the MLE where it exists with the design's stand-in elsewhere; for K > 3,
-where the kernel keeps no posterior grid, the MAP, the MLE from the MAP, or the EAP by
+precision, or the MLE or WLE where it exists with the design's stand-in elsewhere; for K > 3,
+where the kernel keeps no posterior grid, the MAP, the MLE or WLE from the MAP, or the EAP by
 adaptive Gauss-Hermite quadrature around the MAP, :mod:`.multidimensional_quadrature`), the stopping
 statistics (the SE of every dimension, the composite's interval) and the final report
 (each dimension with its interval and scaled score, the composite with its SE
@@ -194,8 +194,8 @@ def keeps_grid_posterior(ctx) -> bool:
     """Whether the rows carry the posterior on the grid.
 
     Under the log form (decision rules 1 and 2) always.  Under the scaled form (version 3)
-    only where something reads it: an EAP or MLE estimate (interim or final; the MLE
-    starts from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
+    only where something reads it: an EAP, MLE or WLE estimate (interim or final; the MLE
+    and the WLE start from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
     stop.  A design scored by MAP throughout that uses none of these never reads the grid:
     its final MAP starts from the interim MAP (:func:`final_estimates`), and its rows carry
     no grid at all.  Nor do the rows of a context without a grid (K > 3), whatever the
@@ -510,12 +510,19 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
     final estimate (``final``) ``fixed_step`` keeps the interim estimate and covariance the
     test ended on.
     """
+    theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
+    return _with_stand_in(ctx, state, rows, theta, mle_cov, status, status != "converged", mean, cov, final)
+
+
+def _with_stand_in(ctx, state, rows, theta, est_cov, status, missing, mean, cov, final):
+    """``theta``, ``est_cov`` with the design's stand-in (``[scoring] extreme_pattern_method``,
+    :func:`mle_or_fallback`) in the rows where ``missing``; (theta, covariance, status)."""
     from ..design.types import ExtremePatternMethod
 
     tab = ctx.multidimensional
     sc = ctx.design.scoring
-    theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
-    fb = np.flatnonzero(status != "converged")
+    mle_cov = est_cov
+    fb = np.flatnonzero(missing)
     if fb.size == 0:
         return theta, mle_cov, status
     how = sc.extreme_pattern_method
@@ -544,13 +551,74 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
     return theta, mle_cov, status
 
 
+#: Statuses of the weighted likelihood estimate (:func:`wle_estimate`) the interim estimate
+#: takes (a mixed pattern, as the one-dimensional kernel; at a bound: no root inside the
+#: box, the estimate at the box's edge, as the one-dimensional WLE), and those the final
+#: estimate takes (also a finite WLE of an all-lowest or all-highest pattern).
+WLE_INTERIM = ("converged", "at_lower_bound", "at_upper_bound")
+WLE_FINAL = WLE_INTERIM + ("all_lowest", "all_highest")
+
+
+def wle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Weighted likelihood estimate of the ability vector (R, K), its covariance (R, K, K) and
+    status (R,), from ``start_theta`` (the posterior mean on the grid).
+
+    The root of Firth's (1993) modified score ``U + tr(I^-1 J_r) / 2`` -- Warm's (1989)
+    weighted likelihood equation for K = 1 -- in the grid's box ``[grid_min,
+    grid_max]^K``, by projected Fisher scoring with halved steps
+    (:func:`adaptive_engine.irt.multidimensional_estimation.wle_solve`; derived in
+    docs/multidimensional_scoring.md).  The covariance is ``I(theta_hat)^-1``, the
+    one-dimensional WLE's ``1 / I``.  Status: ``no_responses``, ``all_lowest`` or
+    ``all_highest`` (the pattern; the WLE is computed for the last two, and finite for M2PL
+    and MGRM items), else ``converged``, ``at_lower_bound``, ``at_upper_bound`` (held at the
+    box: no root inside), ``no_information`` (a direction no answered item measures: a
+    singular information matrix, no WLE) or ``not_converged``.  The estimate and covariance
+    of the rows without a WLE (``no_responses``, ``no_information``, ``not_converged``) are
+    NaN.  Every row is computed on its own (elementwise, the answers added in order, the
+    small inverses elementwise).
+    """
+    from ..irt.multidimensional_estimation import wle_solve
+
+    tab = ctx.multidimensional
+    sc = ctx.design.scoring
+    items, resp = state.scored_items(rows)
+    theta, info, solved = wle_solve(tab.params, items, np.where(items >= 0, resp, -1), start_theta,
+                                    (sc.grid_min, sc.grid_max))
+    pattern = pattern_status(tab, items, resp)
+    exists = np.isin(solved, WLE_INTERIM)
+    status = np.where(exists & (pattern != ""), pattern, solved).astype(object)
+    status[pattern == "no_responses"] = "no_responses"
+    k = tab.k
+    cov = np.full((rows.size, k, k), np.nan)
+    if exists.any():
+        cov[exists] = inverse(info[exists])
+    theta = np.where(exists[:, None], theta, np.nan)
+    return theta, cov, status
+
+
+def wle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
+    """The weighted likelihood estimate of ``rows`` where the design takes it, else the
+    design's stand-in (:func:`mle_or_fallback`); (theta, covariance, status).
+
+    The interim estimate takes the WLE of a mixed pattern (:data:`WLE_INTERIM`): while the
+    pattern is all-lowest or all-highest ``[scoring] extreme_pattern_method`` stands in, as
+    in the one-dimensional kernel.  The final estimate takes the WLE of every pattern that
+    has one (:data:`WLE_FINAL`).  Where there is none (no answers, a singular information
+    matrix, no convergence) the stand-in serves both.
+    """
+    theta, wle_cov, status = wle_estimate(ctx, state, rows, mean)
+    usable = np.isin(status, WLE_FINAL if final else WLE_INTERIM)
+    return _with_stand_in(ctx, state, rows, theta, wle_cov, status, ~usable, mean, cov, final)
+
+
 def _se(cov) -> np.ndarray:
     return np.sqrt(np.maximum(np.diagonal(cov, axis1=-2, axis2=-1), 0.0))
 
 
 def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
     """Add the scored answers to the posterior, then the interim estimate: EAP on the grid,
-    or MAP from the previous estimate.
+    or MAP from the previous estimate (the MLE and the WLE start from the EAP,
+    :func:`mle_or_fallback`, :func:`wle_or_fallback`).
 
     ``scored_item`` (R,) is the item each row's answer scores (-1: none, or a pretest
     item), ``responses`` (R,) the answers; without them only the estimate is made.  The
@@ -579,6 +647,8 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
         mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
     if ctx.design.scoring.method is ScoringMethod.MLE:
         mean, cov, _ = mle_or_fallback(ctx, state, rows, mean, cov)
+    elif ctx.design.scoring.method is ScoringMethod.WLE:
+        mean, cov, _ = wle_or_fallback(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
@@ -587,13 +657,16 @@ def _update_gridless_estimate(ctx, state, rows) -> None:
 
     The MAP from the previous interim estimate, its covariance ``(P + I(theta_hat))^-1``;
     for an MLE design the MLE from that MAP where it exists and the design's stand-in
-    elsewhere (:func:`_gridless_mle`).  The answers are already in the state's items and
-    responses.
+    elsewhere (:func:`_gridless_mle`), for a WLE design likewise the WLE from that MAP
+    (:func:`wle_or_fallback`, the MAP in place of the grid's posterior mean).  The answers
+    are already in the state's items and responses.
     """
     mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
     method = ctx.design.scoring.method
     if method is ScoringMethod.MLE:
         mean, cov, _ = _gridless_mle(ctx, state, rows, mean, cov)
+    elif method is ScoringMethod.WLE:  # from the MAP, the stand-in's "eap" the MAP, as the MLE's
+        mean, cov, _ = wle_or_fallback(ctx, state, rows, mean, cov)
     elif method is ScoringMethod.EAP:
         mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
@@ -629,7 +702,8 @@ def _gridless_final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimate
     """Final estimates of a context without a posterior grid (K > 3), started from the
     interim estimate (the interim estimate after the last answer, or the opening point
     without answers): the MAP, or for ``[reporting] final_method = "mle"`` the MLE from
-    that MAP (:func:`_gridless_mle`), or for ``eap`` the adaptive quadrature around it
+    that MAP (:func:`_gridless_mle`; ``wle`` likewise, :func:`wle_or_fallback`), or for
+    ``eap`` the adaptive quadrature around it
     (:func:`_gridless_eap`; a design scored by EAP throughout keeps the interim EAP of a
     row that took an answer); the same values in a batch and for one examinee, live or
     simulated."""
@@ -650,6 +724,8 @@ def _gridless_final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimate
     mean, cov, ok = map_estimate(ctx, state, rows, state.theta[rows])
     if method is ScoringMethod.MLE:
         mean, cov, status = _gridless_mle(ctx, state, rows, mean, cov, final=True)
+    elif method is ScoringMethod.WLE:
+        mean, cov, status = wle_or_fallback(ctx, state, rows, mean, cov, final=True)
     elif method is ScoringMethod.EAP:
         mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
         status = np.where(state.n_scored[rows] == 0, "no_responses", "converged").astype(object)
@@ -741,7 +817,7 @@ def _with_sprt_decision(ctx, state, rows, est: "MultidimensionalFinalEstimates")
 
 
 def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
-    """Final estimates of ``rows`` by the design's final method (EAP on the grid or MAP).
+    """Final estimates of ``rows`` by the design's final method (EAP on the grid, MAP, MLE or WLE).
 
     ``interim_current``: the caller knows that every answer of ``rows`` went through
     :func:`answer` (a simulated chunk), so that for an EAP design (interim and final) the
@@ -781,6 +857,8 @@ def _final_estimates(ctx, state, rows, interim_current) -> MultidimensionalFinal
                           np.where(ok, "converged", "not_converged")).astype(object)
     elif ctx.design.final_method is ScoringMethod.MLE:
         mean, cov, status = mle_or_fallback(ctx, state, rows, mean, cov, final=True)
+    elif ctx.design.final_method is ScoringMethod.WLE:
+        mean, cov, status = wle_or_fallback(ctx, state, rows, mean, cov, final=True)
     return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
                                           lz=person_fit_lz(ctx, state, rows, mean))
 
