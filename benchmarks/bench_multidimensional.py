@@ -18,7 +18,7 @@ one multidimensional test to SE <= 0.3 on both dimensions against two one-dimens
 tests back to back (Segall 1996 reports the direction of the effect).  With ``--demo N``
 also the shipped two-dimensional design on its demo bank of M3PL, M2PL and MGRM items
 (``simulations/licensing_two_dimensional.toml``: D-optimality, randomesque, SE stop) for
-N examinees, scored by EAP, MAP and MLE (``--demo-only``: that alone).
+N examinees, scored by EAP, MAP, MLE and WLE (``--demo-only``: that alone).
 
     python3 benchmarks/bench_multidimensional.py            # 10,000 examinees
     python3 benchmarks/bench_multidimensional.py --examinees 2000
@@ -199,14 +199,14 @@ def information_to_reach(se: float, rho: float) -> float:
 
 def demo_design_runs(n: int) -> None:
     """The shipped two-dimensional design on its demo bank (M3PL, M2PL and MGRM items), by
-    EAP, MAP and MLE: seconds (the least of two runs) and milliseconds per examinee."""
+    EAP, MAP, MLE and WLE: seconds (the least of two runs) and milliseconds per examinee."""
     root = pathlib.Path(__file__).resolve().parent.parent
     text = (root / "simulations" / "licensing_two_dimensional.toml").read_text()
     bank = load_bank(root / "item_banks" / "meridian_valley_operator_2d.json")
     true = np.random.default_rng(5).multivariate_normal([0, 0], [[1, 0.6], [0.6, 1]], size=n)
     print(f"shipped 2-D design on its demo bank ({bank.n_items} items: M3PL, M2PL, MGRM), {n:,} examinees")
     print(f"{'scoring':8} {'seconds':>9} {'CPU s':>9} {'ms/examinee':>12} {'items':>7} {'peak MiB':>9}")
-    for method in ("eap", "map", "mle"):
+    for method in ("eap", "map", "mle", "wle"):
         d = parse_design(text.replace('method = "eap"', f'method = "{method}"'))
         _, seconds, cpu, peak, res, _ = measure(
             method, lambda d=d: simulate_multidimensional(d, bank, true_theta=true, seed=11), repeat=2)

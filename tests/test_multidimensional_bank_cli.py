@@ -285,8 +285,8 @@ def test_summed_information_works_in_blocks_of_items(monkeypatch, exam):
      "available with an ability of 2 dimensions"),
     (["simulate", REPO / "simulations" / "licensing_exam.toml", "--bank", EXAM_2D, "--examinees", "5",
       "--out", "OUT"],
-     "[stopping.sprt]: the likelihood ratio test compares two points of one ability and is not available "
-     "with an ability of 2"),
+     # the SPRT classifies the composite of an ability vector (tests/test_multidimensional_sprt.py)
+     "the likelihood ratio test classifies the composite of [reporting] composite_weights"),
     (["link", EXAM_2D, "--to", REPO / "item_banks" / "meridian_valley_operator.json", "--out", "OUT.json"],
      "BANK: bank meridian_valley_operator_2d holds multidimensional models"),
 ])

@@ -284,8 +284,8 @@ def test_bad_responses_and_methods_are_refused():
         me.map_estimate_md(SIMPLE, [[0, 1]], [[1, 2]])
     with pytest.raises(ResponseDataError, match="beyond the bank's 4 items"):
         me.eap_estimate_md(SIMPLE, [[0, 7]], [[1, 0]])
-    with pytest.raises(AdaptiveEngineError, match="Warm's weighted likelihood") as err:
-        me.estimate_md(SIMPLE, [[0]], [[1]], "wle")
+    with pytest.raises(AdaptiveEngineError, match="use one of mle, map, eap, wle") as err:
+        me.estimate_md(SIMPLE, [[0]], [[1]], "bayes")
     assert err.value.location == "method"
     with pytest.raises(AdaptiveEngineError, match="points_per_dimension"):
         me.eap_estimate_md(SIMPLE, [[0]], [[1]], points_per_dimension=3)

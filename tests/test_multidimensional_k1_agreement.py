@@ -180,6 +180,9 @@ CASES = [
     Case("eap_then_map",
          reporting=REPORT.replace("[reporting]\n", "[reporting]\nfinal_method = \"map\"\n")),
     Case("eap_then_mle", reporting=REPORT.replace("[reporting]\n", "[reporting]\nfinal_method = \"mle\"\n")),
+    Case("wle", scoring="method = \"wle\"",
+         reporting=REPORT.replace("[reporting]\n", "[reporting]\nfinal_method = \"wle\"\n")),
+    Case("eap_then_wle", reporting=REPORT.replace("[reporting]\n", "[reporting]\nfinal_method = \"wle\"\n")),
     # selection criteria
     Case("a_optimality", vector_criterion="a_optimality"),
     Case("composite_information", vector_criterion="max_composite_information", weights=True),
@@ -516,7 +519,7 @@ def _response_file(tmp_path, kind):
     return path
 
 
-SCORED = [(m, k) for m in ("map", "mle", "eap") for k in KINDS]
+SCORED = [(m, k) for m in ("map", "mle", "eap", "wle") for k in KINDS]
 
 
 @pytest.mark.parametrize("method, kind", SCORED)
@@ -539,7 +542,7 @@ def test_k1_library_scoring(tmp_path, method, kind):
     assert [r["status"] for r in one] == list(many.status)
 
 
-@pytest.mark.parametrize("method", ["map", "mle", "eap"])
+@pytest.mark.parametrize("method", ["map", "mle", "eap", "wle"])
 def test_k1_score_command(tmp_path, method):
     """``adaptive-engine score`` on the bank file (JSON) of K = 1 M3PL items and on the file of the
     same 3PL items: the same output, digit for digit (a bank of one dimension is scored by

@@ -270,15 +270,13 @@ def test_while_no_mle_exists_the_extreme_pattern_method_stands_in(how, form):
         assert report["theta"] == [float(x) for x in state.theta[0]]
 
 
-def test_mle_designs_are_accepted_and_wle_is_refused_at_its_key():
+def test_mle_designs_are_accepted():
+    # (the weighted likelihood: tests/test_multidimensional_wle.py)
     bank = random_bank()
     assert check_design_against_bank(design(scoring='method = "mle"'), bank) == []
-    found = {p.location: p.message for p in check_design_against_bank(design(scoring='method = "wle"'), bank)}
-    assert "wle is not available" in found["[scoring] method"] and "use eap, map or mle" in found["[scoring] method"]
     d = design()
-    d = attrs.evolve(d, reporting=attrs.evolve(d.reporting, final_method="wle"))
-    found = {p.location: p.message for p in check_design_against_bank(d, bank)}
-    assert "use eap, map or mle" in found["[reporting] final_method"]
+    d = attrs.evolve(d, reporting=attrs.evolve(d.reporting, final_method="mle"))
+    assert check_design_against_bank(d, bank) == []
 
 
 @pytest.mark.long_running
@@ -408,13 +406,14 @@ def test_min_information_stops_once_no_item_has_more_on_any_dimension():
     assert not going.done[0]
 
 
-def test_precision_rules_are_accepted_for_vectors_and_the_sprt_is_refused_at_its_table():
+def test_precision_rules_are_accepted_for_vectors_and_the_sprt_without_a_composite_is_refused_at_its_table():
     bank = random_bank()
     assert check_design_against_bank(design(stopping="se_reduction = 0.01\nmin_information = 0.05"), bank) == []
     found = {p.location: p.message for p in check_design_against_bank(
         design(stopping="[stopping.sprt]\ncut = 0.0"), bank)}
-    assert "not available with an ability of 2 dimensions" in found["[stopping.sprt]"]
-    assert "se_reduction" in found["[stopping.sprt]"]
+    # the SPRT of an ability vector classifies the composite (tests/test_multidimensional_sprt.py)
+    assert "with an ability of 2 dimensions" in found["[stopping.sprt]"]
+    assert "composite_weights" in found["[stopping.sprt]"]
 
 
 def test_precision_rules_decide_the_same_for_a_batch_and_one_at_a_time():

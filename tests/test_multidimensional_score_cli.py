@@ -146,7 +146,6 @@ def test_mle_reports_where_it_does_not_exist(files):
 
 
 @pytest.mark.parametrize("args, fragment", [
-    (["--method", "wle"], "--method: method 'wle' is not available for a bank of several dimensions"),
     (["--prior-mean", "0.5"], "--prior-mean: the bank has K = 2 dimensions"),
     (["--prior-mean", "0,0,0"], "--prior-mean: the bank has K = 2 dimensions"),
     (["--prior-mean", "9,0"], "--prior-mean: the prior mean of dimension 1 must lie in [-6, 6]"),

@@ -131,7 +131,7 @@ def score(bank_file, responses_file, method, prior_mean, prior_sd, prior_covaria
 
     On a bank of K > 1 dimensions (M2PL, M3PL, MGRM items) the ability is a vector with a
     multivariate normal prior (--prior-mean, --prior-covariance; N(0, I) by default);
-    methods map, eap and mle.  The CSV starts with a line "# dimensions: NAME1, NAME2"
+    methods map, eap, mle and wle.  The CSV starts with a line "# dimensions: NAME1, NAME2"
     and has the columns person_id, theta_1..theta_K, se_1..se_K, n_items (theta_k, se_k
     belong to the k-th name); JSON records carry theta, se and the covariance as lists.
     """

@@ -393,7 +393,8 @@ def exposure_group():
 @click.option("--conditional-strata", "strata_text", default=None, metavar="CUTS",
               help="Comma-separated ability cut points (e.g. \"-1,0,1\"): calibrate parameters conditional on "
                    "ability (Stocking & Lewis 1998), one per item and stratum, holding every stratum's exposure "
-                   "rates at --target; writes item_id,theta_from,theta_to,exposure_parameter.")
+                   "rates at --target; writes item_id,theta_from,theta_to,exposure_parameter.  For an ability "
+                   "vector the cut points cut the composite of [reporting] composite_weights.")
 @_progress_option
 @json_option
 @report_errors(flags=EXPOSURE_FLAGS)
@@ -426,9 +427,11 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
     from ..design.bank_fit import runs_multidimensional
 
     vectors = runs_multidimensional(design, bank)
-    if vectors and strata is not None:
-        raise AdaptiveEngineError("conditional parameters cut one ability into strata; the design runs on the "
-                                  "multidimensional kernel (an ability vector): leave --conditional-strata out",
+    if vectors and strata is not None and design.reporting.composite_weights is None:
+        # the strata of an ability vector cut its composite (simulation/exposure_tuning.py)
+        raise AdaptiveEngineError("the design runs on the multidimensional kernel (an ability vector), whose "
+                                  "conditional strata cut the composite of [reporting] composite_weights; give "
+                                  "them in the design, or leave --conditional-strata out",
                                   location="--conditional-strata")
     spec = given or run_abilities(None, design, bank)
     if not vectors:
@@ -449,7 +452,8 @@ def exposure_calibrate_command(design_file, bank_file, target, out_file, seed, n
             true_theta = draw_vectors(spec, examinee_count(spec, n_examinees, default=2000), seed, bank.n_dimensions)
             cal = run_multidimensional_calibration(design, bank, target=target, out_file=out_file,
                                                    true_theta=true_theta, seed=seed, max_iterations=iterations,
-                                                   tolerance=tolerance, workers=workers, progress=progress)
+                                                   tolerance=tolerance, workers=workers, progress=progress,
+                                                   strata=strata)
         else:
             cal = run_calibration(design, bank, target=target, out_file=out_file, population=population,
                                   execution=Execution(workers=workers, progress=progress),

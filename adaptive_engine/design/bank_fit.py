@@ -97,14 +97,15 @@ def check_design_against_bank(design: Design, bank: ItemBank) -> list[Problem]:
         return problems
     if runs_multidimensional(design, bank):
         problems += multidimensional_problems(design, bank)
-        if problems:
-            return problems
     elif design.selection.kl_weighting is not None:
         problems.append(Problem("[selection] kl_weighting",
                         "weighs the Kullback-Leibler criterion of an ability vector, but this design runs on the "
                         "one-dimensional kernel, whose kullback_leibler always integrates over theta +- "
                         "kl_interval / sqrt(n): leave the key out (a vector key such as prior_covariance = "
                         "[[1.0]] sends a design to the vector kernel)"))
+    problems += eap_quadrature_problems(design, bank.n_dimensions)
+    if problems:
+        return problems
     st, bp, sel, ex = design.stopping, design.blueprint, design.selection, design.exposure
     operational = np.asarray(bank.status == "operational")
     n_operational = int(operational.sum())
@@ -305,9 +306,10 @@ def design_warnings(design: Design, bank: ItemBank) -> list[Problem]:
 #: ``points ** K`` points (EAP, MLE, Kullback-Leibler, se_reduction need it).
 MAX_GRID_DIMENSIONS = 3
 #: Largest K the multidimensional kernel runs.  Above :data:`MAX_GRID_DIMENSIONS` it keeps
-#: no grid: interim and final estimates by MAP (Newton with the prior's precision), the
-#: covariance from the information, criteria from that covariance (docs/designs.md,
-#: "Ability vectors of more than three dimensions").
+#: no grid: estimates by MAP (Newton with the prior's precision, the covariance from the
+#: information), MLE (projected Fisher scoring from the MAP) or EAP (adaptive Gauss-Hermite
+#: quadrature around the MAP), criteria from the estimate (docs/designs.md, "Ability
+#: vectors of more than three dimensions").
 MAX_KERNEL_DIMENSIONS = 6
 #: Largest K of Kullback-Leibler selection over a box (``[selection] kl_weighting =
 #: "interval"``), integrated on 11^K product points per item and pick: 14 641 at K = 4
@@ -315,6 +317,16 @@ MAX_KERNEL_DIMENSIONS = 6
 MAX_KL_BOX_DIMENSIONS = 4
 #: Default points per dimension of the multidimensional grid, by K (K = 1: grid_points).
 DEFAULT_POINTS_PER_DIMENSION = {2: 41, 3: 17}
+#: Default Gauss-Hermite nodes per dimension of the EAP without a grid, by K
+#: (``[scoring] eap_points_per_dimension``; q ** K = 625, 1,024 and 729 nodes per examinee).
+DEFAULT_EAP_POINTS_PER_DIMENSION = {4: 5, 5: 4, 6: 3}
+#: At most this many Gauss-Hermite nodes per examinee (q ** K).
+MAX_EAP_NODES = 4096
+#: At most this many for an EAP after every answer (``[scoring] method = "eap"``): the
+#: defaults' 1,024 nodes already cost 13 to 19 times the MAP's time at 30 items
+#: (benchmarks/bench_multidimensional_high_k.py; 4,096 nodes about 100 times), more would
+#: make the interim estimate the whole cost of a test.
+MAX_INTERIM_EAP_NODES = 1024
 
 
 def runs_multidimensional(design: Design, bank: ItemBank) -> bool:
@@ -346,7 +358,7 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     if k > MAX_KERNEL_DIMENSIONS:
         return [Problem(where_bank, f"the bank has {k} ability dimensions ({names}); adaptive tests run on "
                                     f"banks of at most {MAX_KERNEL_DIMENSIONS} (above {MAX_GRID_DIMENSIONS} "
-                                    "dimensions the kernel scores by MAP, whose Newton steps and D-optimal "
+                                    "dimensions the kernel keeps no grid; its Newton steps and D-optimal "
                                     f"quadratic forms grow as K^3 and K^2; score a {k}-dimensional test with "
                                     "`score`, or split the bank)")]
     if not bank.uses_multidimensional_models:
@@ -360,13 +372,6 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
     sc, sel, ex, st, rp = (design.scoring, design.selection, design.exposure, design.stopping,
                            design.reporting)
     many = f"with an ability of {k} dimensions ({names})"
-    # no published weighted likelihood for an ability vector is followed here: WLE stays one-dimensional
-    vector_methods = (ScoringMethod.EAP, ScoringMethod.MAP, ScoringMethod.MLE)
-    if sc.method not in vector_methods:
-        out.append(Problem("[scoring] method", f"{sc.method.value} is not available {many}; use eap, map or mle"))
-    if design.final_method not in vector_methods:
-        out.append(Problem("[reporting] final_method",
-                           f"{design.final_method.value} is not available {many}; use eap, map or mle"))
     if k > MAX_GRID_DIMENSIONS:
         return out + _gridless_problems(design, k, many)
     points = multidimensional_grid_points(design, k)
@@ -388,10 +393,11 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
                                     SelectionCriterion.A_STRATIFIED):
         out.append(Problem("[selection] criterion", f"{sel.criterion.value} runs on the one-dimensional kernel; "
                                                     "leave out the vector keys and multidimensional criteria"))
-    if ex.method is ExposureMethod.SYMPSON_HETTER and design.exposure_strata:
+    if ex.method is ExposureMethod.SYMPSON_HETTER and design.exposure_strata and rp.composite_weights is None:
+        # strata of an ability vector cut its composite (kernel/selection.py, exposure_stratum)
         out.append(Problem("[exposure] parameters_file", "exposure parameters conditional on ability strata "
-                                                         f"cut one ability scale and are not available {many}; "
-                                                         "give one parameter per item"))
+                                                         f"cut one scale: {many} they cut the composite of "
+                                                         "[reporting] composite_weights; give them"))
     if design.blueprint.shadow_test and sel.criterion is SelectionCriterion.RANDOM:
         # the shadow test of an ability vector maximises the criterion, linearised
         # (kernel/multidimensional_shadow.py): a random criterion has no value to sum
@@ -399,11 +405,11 @@ def multidimensional_problems(design: Design, bank: ItemBank) -> list[Problem]:
                                                     "criterion; random gives it nothing to maximise: use "
                                                     "d_optimality, a_optimality, kullback_leibler or "
                                                     "max_composite_information with [blueprint] shadow_test"))
-    if st.sprt is not None:
-        out.append(Problem("[stopping.sprt]", f"the likelihood ratio test compares two points of one ability and "
-                                              f"is not available {many}; stop on se or se_per_dimension, "
-                                              "se_reduction, min_information, length, time, or "
-                                              "[stopping.confidence_interval] on the composite"))
+    if st.sprt is not None and rp.composite_weights is None:
+        # the SPRT of an ability vector classifies the composite (kernel/multidimensional_stopping.py)
+        out.append(Problem("[stopping.sprt]", f"{many} the likelihood ratio test classifies the composite of "
+                                              "[reporting] composite_weights (its cut is on the composite's "
+                                              "scale); give them"))
     if st.confidence_interval is not None and rp.composite_weights is None and k > 1:
         out.append(Problem("[stopping.confidence_interval]",
                            f"{many} the interval classifies the composite of [reporting] composite_weights; "
@@ -421,17 +427,15 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
     sc, sel, st = design.scoring, design.selection, design.stopping
     why = (f"needs the posterior on a grid of points ** K, which the kernel keeps for K <= {MAX_GRID_DIMENSIONS} "
            f"only")
+    # the scoring methods eap, map, mle and wle all run without a grid: MAP by Newton with
+    # the prior's precision, MLE by projected Fisher scoring from the MAP, WLE by steps on
+    # Firth's modified score from the MAP, EAP by adaptive Gauss-Hermite quadrature around
+    # the MAP (kernel/multidimensional_quadrature.py)
     out = []
-    grid_methods = (ScoringMethod.EAP, ScoringMethod.MLE)  # other methods are refused above for any K
-    if sc.method in grid_methods:
-        out.append(Problem("[scoring] method", f"{sc.method.value} {why}; {many} use map (Newton with the "
-                                               "prior's precision, the covariance from the information)"))
-    if design.reporting.final_method in grid_methods:
-        out.append(Problem("[reporting] final_method",
-                           f"{design.reporting.final_method.value} {why}; {many} use map"))
     if sc.grid_points_per_dimension is not None:
         out.append(Problem("[scoring] grid_points_per_dimension",
-                           f"{many} the kernel keeps no grid (it scores by MAP on the box grid_min..grid_max); "
+                           f"{many} the kernel keeps no grid (it scores on the box grid_min..grid_max by MAP, "
+                           "MLE, WLE, or EAP by a quadrature around the MAP sized by eap_points_per_dimension); "
                            "leave the key out"))
     if sel.kl_over_posterior:
         box = (", or [selection] kl_weighting = \"interval\" (KL integrated over a box, no grid)"
@@ -449,6 +453,32 @@ def _gridless_problems(design: Design, k: int, many: str) -> list[Problem]:
         out.append(Problem("[stopping] se_reduction", f"the predicted SE reduction {why}; {many} stop on se or "
                                                       "se_per_dimension, min_information, length or time"))
     return out
+
+
+def eap_quadrature_problems(design: Design, k: int) -> list[Problem]:
+    """Problems of ``[scoring] eap_points_per_dimension`` for a bank of K = ``k``: the key
+    sizes the EAP quadrature of K = 4 to 6 (no grid there) and nothing else."""
+    q = design.scoring.eap_points_per_dimension
+    if q is None:
+        return []
+    where = "[scoring] eap_points_per_dimension"
+    if not MAX_GRID_DIMENSIONS < k <= MAX_KERNEL_DIMENSIONS:
+        return [Problem(where, f"sizes the EAP quadrature of banks of K = {MAX_GRID_DIMENSIONS + 1} to "
+                               f"{MAX_KERNEL_DIMENSIONS} dimensions, which keep no grid; with K = {k} the "
+                               "posterior is on the grid (grid_points, grid_points_per_dimension): leave the key out")]
+    if ScoringMethod.EAP not in (design.scoring.method, design.final_method):
+        return [Problem(where, "only an EAP estimate reads it ([scoring] method or [reporting] final_method = "
+                               "\"eap\"): leave the key out")]
+    if q ** k > MAX_EAP_NODES:
+        return [Problem(where, f"{q} nodes per dimension make {q ** k} nodes per examinee for K = {k}; "
+                               f"at most {MAX_EAP_NODES}")]
+    if design.scoring.method is ScoringMethod.EAP and q ** k > MAX_INTERIM_EAP_NODES:
+        return [Problem(where, f"{q} nodes per dimension make {q ** k} nodes per examinee for K = {k}; an EAP "
+                               f"after every answer ([scoring] method = \"eap\") takes at most "
+                               f"{MAX_INTERIM_EAP_NODES} (more costs far more than the test's other work: "
+                               "about 100 times the MAP's time at 4,096 nodes); take fewer, or score the "
+                               "interim estimate by map and the final one by eap ([reporting] final_method)")]
+    return []
 
 
 def require_design_fits_bank(design: Design, bank: ItemBank) -> None:
@@ -523,7 +553,10 @@ def describe_design(design: Design) -> list[str]:
     if design.asks_multidimensional:
         points = (f"{sc.grid_points_per_dimension} points per dimension" if sc.grid_points_per_dimension is not None
                   else "41 points per dimension for K = 2, 17 for K = 3, grid_points for K = 1; no grid for "
-                       f"K = {MAX_GRID_DIMENSIONS + 1} to {MAX_KERNEL_DIMENSIONS}, scored by MAP")
+                       f"K = {MAX_GRID_DIMENSIONS + 1} to {MAX_KERNEL_DIMENSIONS}, where EAP is a Gauss-Hermite "
+                       "quadrature around the MAP")
+        if sc.eap_points_per_dimension is not None:
+            points += f"; {sc.eap_points_per_dimension} Gauss-Hermite nodes per dimension for the EAP without a grid"
         lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} on every dimension ({points})")
     else:
         lines.append(scoring + f"; grid {sc.grid_min:g}..{sc.grid_max:g} ({sc.grid_points} points)")
@@ -540,7 +573,8 @@ def describe_design(design: Design) -> list[str]:
         ExposureMethod.RANDOMESQUE: f"randomesque: at random among the {ex.candidates} best items",
         ExposureMethod.SYMPSON_HETTER: f"Sympson-Hetter with per-item parameters from {ex.parameters_file or 'code'}"
                           + (f" ({len(design.exposure_parameters)} items)" if design.exposure_parameters else "")
-                          + (f", conditional on the interim ability estimate in {len(design.exposure_strata) + 1} "
+                          + (f", conditional on the {'composite of the ' if design.asks_multidimensional else ''}"
+                             f"interim ability estimate in {len(design.exposure_strata) + 1} "
                              f"strata cut at {', '.join(f'{c:g}' for c in design.exposure_strata)}"
                              if design.exposure_strata else ""),
         ExposureMethod.PROGRESSIVE: "progressive: a random part that fades as the test goes on "
@@ -651,8 +685,9 @@ def _stopping_words(st, *, vector: bool = False) -> str:
                      + _number_text(st.se_per_dimension))
     if st.sprt is not None:
         s = st.sprt
-        rules.append(f"once the SPRT at cut {s.cut:g} +- {s.indifference:g} decides "
-                     f"(alpha {s.alpha:g}, beta {s.beta:g})")
+        rules.append(f"once the SPRT {'of the composite ' if vector else ''}at cut {s.cut:g} +- "
+                     f"{s.indifference:g} decides (alpha {s.alpha:g}, beta {s.beta:g}"
+                     + ("; the two points nearest the estimate along the composite weights)" if vector else ")"))
     if st.confidence_interval is not None:
         ci = st.confidence_interval
         rules.append(f"once the {ci.confidence:.0%} interval excludes the cut {ci.cut:g}")

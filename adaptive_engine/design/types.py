@@ -63,6 +63,7 @@ __all__ = [
     "MAX_GRID_POINTS", "MAX_SCALE_BOUND", "MAX_SCALE_INTERCEPT", "MAX_TEST_LENGTH", "MAX_TIME_LIMIT",
     "MIN_GRID_POINTS", "PRIOR_SD_RANGE", "SCALE_SLOPE_RANGE", "MULTIDIMENSIONAL_CRITERIA",
     "GRID_POINTS_PER_DIMENSION_RANGE", "MAX_MULTIDIMENSIONAL_GRID", "covariance_problem",
+    "EAP_POINTS_PER_DIMENSION_RANGE",
 ]
 
 # ----------------------------------------------------------------------------------------
@@ -183,6 +184,8 @@ GRID_LIMIT = 20.0
 PRIOR_SD_RANGE = (0.01, 100.0)
 #: Points per dimension of a multidimensional ability grid (the grid has points ** K).
 GRID_POINTS_PER_DIMENSION_RANGE = (5, 201)
+#: Gauss-Hermite nodes per dimension of the EAP of K = 4 to 6 (no grid there).
+EAP_POINTS_PER_DIMENSION_RANGE = (2, 12)
 #: Most points of a multidimensional ability grid: the kernel holds a bank x grid table
 #: and a batch x grid posterior.
 MAX_MULTIDIMENSIONAL_GRID = 40_000
@@ -255,6 +258,9 @@ class Scoring(Checked):
     product of ``grid_points_per_dimension`` points on ``[grid_min, grid_max]`` per
     dimension (default: ``grid_points`` for K = 1, 41 for K = 2, 17 for K = 3).  A session
     may bring its own mean vector and covariance matrix.
+    K = 4 to 6 keep no grid: their EAP is an adaptive Gauss-Hermite quadrature around the
+    MAP with ``eap_points_per_dimension`` nodes per dimension (default: 5 for K = 4, 4 for
+    K = 5, 3 for K = 6).
     """
 
     method: ScoringMethod = key(ScoringMethod.EAP, "option", option=ScoringMethod)
@@ -268,6 +274,7 @@ class Scoring(Checked):
     grid_max: float = key(6.0, "number", within(GRID_LIMIT))
     grid_points: int = key(121, "whole", between(MIN_GRID_POINTS, MAX_GRID_POINTS))
     grid_points_per_dimension: int | None = key(None, "whole", between(*GRID_POINTS_PER_DIMENSION_RANGE))
+    eap_points_per_dimension: int | None = key(None, "whole", between(*EAP_POINTS_PER_DIMENSION_RANGE))
 
     def where(self) -> str:
         return "[scoring]"

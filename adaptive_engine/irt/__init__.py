@@ -7,8 +7,10 @@
   information in a direction, MDISC and MDIFF;
 * :mod:`.posterior` -- the ability posterior on a grid (normal prior, weights, mean and SD);
 * :mod:`.estimation` -- MLE, MAP, EAP and WLE scoring of response patterns;
-* :mod:`.multidimensional_estimation` -- MAP, EAP and MLE of ability vectors (K dimensions)
-  under a multivariate normal prior;
+* :mod:`.multidimensional_estimation` -- MAP, EAP, MLE and WLE of ability vectors (K
+  dimensions) under a multivariate normal prior;
+* :mod:`.small_matrices` -- K x K inverses, determinants and Cholesky factors of a batch,
+  elementwise;
 * :mod:`.person_fit` -- the lz and lz* person-fit statistics;
 * :mod:`.curves` -- item and test information, standard error and expected-score curves.
 """

@@ -32,6 +32,8 @@ gives (the decision kernel relies on that).  Probabilities are computed in log s
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import attrs
 import numpy as np
 
@@ -272,6 +274,77 @@ def slope_information(params: MultidimensionalParameters, theta) -> np.ndarray:
     if np.any(two):
         out = np.where(two, _dichotomous_slope_information(params, theta), out)
     return out
+
+
+def slope_skewness(params: MultidimensionalParameters, theta) -> tuple[np.ndarray, np.ndarray]:
+    """Fisher information ``J`` about ``eta = a . theta`` and Warm's term along ``eta``,
+    ``c = sum_k P'_k P''_k / P_k`` (derivatives with respect to ``eta``, the scaling D inside).
+
+    ``c`` is taken as ``sum_k P_k r_k (r_k^2 + r'_k)`` with ``r_k``, ``r'_k`` the first and
+    second derivatives of ``log P_k`` (:func:`log_derivatives`), since ``P'_k = P_k r_k``
+    and ``P''_k = P_k (r'_k + r_k^2)``: no probability is divided by, so steep items far
+    from theta stay finite.  It is also ``d J / d eta - E[r r']`` (the bracket
+    ``d_u I_rt - kappa_rt,u`` of the Cox & Snell (1968) bias, per item ``c a_r a_t a_u``),
+    which the weighted likelihood of an ability vector needs
+    (:func:`adaptive_engine.irt.multidimensional_estimation.wle_estimate_md`).  For the
+    M2PL ``c = D^3 P Q (Q - P)``.  ``J = sum_k P_k r_k^2`` is :func:`slope_information`
+    (here its general sum, from the same terms).  Shapes ``R``.
+    """
+    terms = weighted_likelihood_terms(params, theta)
+    return terms.information, terms.skew
+
+
+class WeightedLikelihoodTerms(NamedTuple):
+    """What the weighted likelihood of an ability vector needs per (item, theta), along ``eta``."""
+
+    information: np.ndarray  # J = sum_k P_k r_k^2
+    skew: np.ndarray  # c = sum_k P_k r_k (r_k^2 + r'_k)
+    information_slope: np.ndarray  # dJ / d eta = sum_k P_k r_k (r_k^2 + 2 r'_k)
+    skew_slope: np.ndarray  # dc / d eta = sum_k P_k (r_k^4 + 4 r_k^2 r'_k + r'_k^2 + r_k r''_k)
+    score: np.ndarray | None  # r_x of the observed category (0 where not answered)
+    curvature: np.ndarray | None  # r'_x of the observed category (0 where not answered)
+
+
+def weighted_likelihood_terms(params: MultidimensionalParameters, theta, responses=None) -> WeightedLikelihoodTerms:
+    """:func:`slope_skewness`'s ``J`` and ``c``, their derivatives along ``eta`` and, with
+    ``responses`` (broadcasting against ``R``), ``d log P_x / d eta`` and ``d^2 log P_x / d
+    eta^2`` of the observed category x (0 where a response is -1; the gradient and Hessian
+    of the log-likelihood are these times ``a`` and ``a a'``).
+
+    The derivatives differentiate ``P_k r_k^m`` term by term with ``P'_k = P_k r_k``; the
+    third derivative of ``log P_k`` is ``r''_k = -D^3 (s_k (Q*_k - P*_k) + s_k+1 (Q*_k+1 -
+    P*_k+1))`` with ``s = P* Q*`` (differentiating Samejima's ``r'_k``), and for the top
+    category of an item with a lower asymptote ``r'' = -2 D^2 P* Q* r + D (Q* - P*) r' - 2 r
+    r'`` (differentiating :func:`log_derivatives`'s ``r'``).  Shapes ``R``.
+    """
+    log_p, zz, c, top = _log_terms(params, theta)
+    D = params.scaling
+    r, r2 = _log_derivatives_from(D, log_p, zz, c, top)
+    star, star_c = expit(zz), expit(-zz)
+    spread = star * star_c
+    tilt = spread * (star_c - star)
+    r3 = -(D * D * D) * (tilt[..., :-1] + tilt[..., 1:])
+    if np.any(c > 0):
+        z_top = _take_last(zz, top)
+        s_top = expit(z_top) * expit(-z_top)
+        r_top, r2_top = _take_last(r, top), _take_last(r2, top)
+        lifted_r3 = -2.0 * D * D * s_top * r_top + D * (expit(-z_top) - expit(z_top)) * r2_top - 2.0 * r_top * r2_top
+        np.put_along_axis(r3, top[..., None], np.where(c > 0, lifted_r3, _take_last(r3, top))[..., None], -1)
+    valid = np.arange(r.shape[-1]) <= top[..., None]
+    r3 = np.where(valid, r3, 0.0)
+    p = np.exp(log_p)
+    rr = r * r
+    information = np.sum(p * rr, axis=-1)  # slope_information's general sum, from the same terms
+    skew = np.sum(p * r * (rr + r2), axis=-1)
+    information_slope = np.sum(p * r * (rr + 2.0 * r2), axis=-1)
+    skew_slope = np.sum(p * (rr * rr + 4.0 * rr * r2 + r2 * r2 + r * r3), axis=-1)
+    score = curvature = None
+    if responses is not None:
+        picked, answered = _picked(r, responses)
+        score = np.where(answered, picked, 0.0)
+        picked, _ = _picked(r2, responses)
+        curvature = np.where(answered, picked, 0.0)
+    return WeightedLikelihoodTerms(information, skew, information_slope, skew_slope, score, curvature)
 
 
 def _graded_slope_information(params: MultidimensionalParameters, theta) -> np.ndarray:

@@ -1,6 +1,6 @@
 """Ability estimation when ability is a vector of K dimensions (M2PL, M3PL, MGRM items).
 
-MAP, EAP and MLE of a batch of examinees under a multivariate normal prior
+MAP, EAP, MLE and WLE of a batch of examinees under a multivariate normal prior
 ``N(prior_mean, prior_covariance)``, on the items of
 :mod:`adaptive_engine.irt.multidimensional`.  The inputs mirror the one-dimensional
 :mod:`adaptive_engine.irt.estimation`: a bank (or :class:`MultidimensionalParameters`),
@@ -59,6 +59,13 @@ MLE (:func:`mle_estimate_md`)
     estimate is then reported at the bound.  A dimension no answered item measures (or a
     direction the items cannot tell apart) has no information: status
     ``no_information``, the coordinate stays at its start.
+WLE (:func:`wle_estimate_md`)
+    Warm's (1989) weighted likelihood for a vector: the root of Firth's (1993) modified
+    score ``U + tr(I^-1 J_r) / 2`` (``J_r = sum_i a_ir c_i a_i a_i'``, ``c_i`` Warm's term
+    along ``a_i . theta``; with K = 1 Warm's equation, for M2PL items the mode of the
+    likelihood times the Jeffreys prior), by Newton steps on the modified score with
+    halving (:func:`wle_solve`), from the MAP, within ``bounds``; the covariance is the
+    inverse test information matrix.  Derived in docs/multidimensional_scoring.md.
 
 Standard errors and covariances are capped: the covariance is ``V diag(1 / max(l, 1/w^2)) V'``
 for the eigen-decomposition ``V diag(l) V'`` of the precision (w = the width of
@@ -88,15 +95,24 @@ from .estimation import (
     AT_UPPER_BOUND,
     CONVERGED,
     NO_INFORMATION,
+    NO_RESPONSES,
     NOT_CONVERGED,
     PRIOR_DOMINATED,
     PRIOR_DOMINATED_SHARE,
     checked_answers,
     row_sum,
 )
+from .small_matrices import (
+    cholesky_factor,
+    determinant,
+    inverse,
+    matrix_vector,
+    quadratic_form,
+    solve_positive_real,
+)
 
-#: Methods of :func:`estimate_md` (Warm's WLE has no multidimensional form here).
-METHODS_MD = ("mle", "map", "eap")
+#: Methods of :func:`estimate_md`.
+METHODS_MD = ("mle", "map", "eap", "wle")
 #: Default box of the MAP and MLE on every dimension.
 DEFAULT_BOUNDS = (-6.0, 6.0)
 #: The box of the MAP behind the adaptive EAP grid: wide, the prior keeps the mode finite.
@@ -137,12 +153,12 @@ class MultidimensionalEstimate:
     theta : float array, shape (P, K)
     covariance : float array, shape (P, K, K)
         MAP: inverse curvature of the log posterior at the mode; EAP: posterior
-        covariance; MLE: inverse test information matrix (capped, see the module docstring).
+        covariance; MLE, WLE: inverse test information matrix (capped, see the module docstring).
     se : float array, shape (P, K)
         Square roots of the diagonal of ``covariance``.
     n_items : int array, shape (P,)
     method : str
-        ``"mle"``, ``"map"`` or ``"eap"``.
+        ``"mle"``, ``"map"``, ``"eap"`` or ``"wle"``.
     status : object array of str, shape (P,)
         See :mod:`adaptive_engine.irt.estimation` (the same statuses).
     """
@@ -678,6 +694,281 @@ def mle_estimate_md(bank_or_params, items, responses, *, prior_mean=None, prior_
                                     status=status)
 
 
+def wle_estimate_md(bank_or_params, items, responses, *, prior_mean=None, prior_covariance=None,
+                    bounds=DEFAULT_BOUNDS, start=None) -> MultidimensionalEstimate:
+    """Weighted likelihood ability vector (Warm 1989; for a vector, Firth's 1993 modified score).
+
+    The root of ``U*(theta) = U(theta) + tr(I(theta)^-1 J_r(theta)) / 2`` in ``bounds``
+    (:func:`wle_solve`), started from the MAP under the given prior (which serves only as
+    the start, and as the answer for examinees without answers).  With K = 1 this is
+    Warm's equation ``l' + J / (2 I) = 0`` of :func:`~.estimation.wle`; for M2PL items it is
+    the mode of ``L(theta) det(I(theta))^(1/2)`` (the Jeffreys prior).  Unlike the MLE it is
+    finite for all-lowest / all-highest patterns of M2PL and MGRM items (the status still
+    names the pattern).  The covariance is the inverse test information matrix at the
+    estimate (capped), as the one-dimensional WLE's ``1 / sqrt(I)``.  Statuses as
+    :func:`mle_estimate_md`: ``converged``, ``all_lowest`` / ``all_highest`` (a finite WLE of
+    such a pattern), ``at_lower_bound`` / ``at_upper_bound`` (no root inside the box: the
+    estimate sits at it, e.g. with lower asymptotes), ``no_information`` (a direction no
+    answered item measures: no WLE; the estimate stays at the start), ``not_converged``,
+    ``no_responses``.
+    """
+    data = _prepare(bank_or_params, items, responses)
+    n, k = data.items.shape[0], data.params.n_dimensions
+    prior = _prior(prior_mean, prior_covariance, n, k)
+    lo, hi = _check_bounds(bounds)
+    start = _start_array(start, n, k)
+    if start is None:
+        start, _, _ = _map_arrays(data, prior, lo, hi, None)
+    items_given = np.where(data.answered, data.items, -1)
+    theta, info, code = wle_solve(data.params, items_given, data.responses, start, (lo, hi))
+    width = hi - lo
+    empty = data.n_items == 0
+    info[empty] = prior.precision[empty]
+    cov = capped_covariance(info, width)
+    theta[empty] = np.clip(prior.mean[empty], lo, hi)
+    se = _se_of(cov)
+    status = _finish_status(data, code, theta, se, prior, False)
+    status = np.where(code == NO_INFORMATION, NO_INFORMATION, status)  # no WLE, whatever the pattern
+    return MultidimensionalEstimate(theta=theta, covariance=cov, se=se, n_items=data.n_items, method="wle",
+                                    status=status)
+
+
+# ----------------------------------------------------------------------------------------
+# WLE: Warm's weighted likelihood for an ability vector (Firth's modified score)
+
+#: Fisher-scoring iterations of the WLE, halvings of a step, the largest step on any
+#: dimension, and the Fisher step that counts as converged.
+WLE_ITERATIONS = 100
+WLE_HALVINGS = 40
+WLE_MAX_STEP = 1.0
+WLE_TOLERANCE = 1e-10
+#: The test information matrix counts as singular (a direction no answered item measures)
+#: when its determinant is below this share of the product of its diagonal (Hadamard's
+#: inequality bounds the ratio by 1), as in the decision kernel's MLE.
+WLE_SINGULAR_SHARE = 1e-10
+
+
+class _WleTerms(NamedTuple):
+    information: np.ndarray  # (R, K, K) test information matrix
+    observed: np.ndarray  # (R, K, K) minus the Hessian of the log-likelihood
+    modified: np.ndarray  # (R, K) Firth's modified score U + tr(I^-1 J_r) / 2
+    singular: np.ndarray  # (R,) bool: the information matrix is (next to) singular
+    jacobian: np.ndarray  # (R, K, K) minus the derivative of the modified score
+
+
+def wle_terms(params: md.MultidimensionalParameters, items, responses, theta) -> _WleTerms:
+    """The test information matrix ``I``, the modified score ``U*`` and whether ``I`` is
+    singular, at ``theta`` (R, K), over the answers ``items``, ``responses`` (R, W) (-1 where
+    not answered).
+
+    ``U*_r = U_r + 1/2 sum_i c_i a_ir a_i' I^-1 a_i``, i.e. ``U + tr(I^-1 J_r) / 2`` with
+    ``J_r = sum_i a_ir c_i a_i a_i'`` and ``c_i`` Warm's term along ``a_i . theta``
+    (:func:`adaptive_engine.irt.multidimensional.slope_skewness`); derived in
+    docs/multidimensional_scoring.md.  Each answer's terms are elementwise, added one answer
+    after another in the order given, and ``I^-1`` is the elementwise inverse of
+    :mod:`.small_matrices`: a row's values are its own, whatever the batch holds.  Where
+    ``I`` is singular ``U*`` is that of the identity in its place (unused: no WLE there).
+    """
+    items = np.asarray(items)
+    responses = np.asarray(responses)
+    answered = (items >= 0) & (responses >= 0)
+    used = np.flatnonzero(answered.any(axis=0))  # columns no row reached add nothing: left out
+    items, responses, answered = items[:, used], responses[:, used], answered[:, used]
+    sub = params.take(np.where(answered, items, 0))
+    terms = md.weighted_likelihood_terms(sub, theta[:, None, :], np.where(answered, responses, -1))
+    j, skew, r, r2 = (np.where(answered, x, 0.0) for x in (terms.information, terms.skew, terms.score,
+                                                            terms.curvature))
+    a = sub.slopes  # (R, W, K)
+    r_n, k = theta.shape
+    info = np.zeros((r_n, k, k))
+    observed = np.zeros((r_n, k, k))
+    grad = np.zeros((r_n, k))
+    reached = np.flatnonzero(answered.any(axis=0))
+    for col in reached:
+        aa = a[:, col, :, None] * a[:, col, None, :]  # symmetric: a_p a_q == a_q a_p exactly
+        info = info + j[:, col, None, None] * aa
+        observed = observed - r2[:, col, None, None] * aa
+        grad = grad + r[:, col, None] * a[:, col]
+    diag = np.prod(np.diagonal(info, axis1=-2, axis2=-1), axis=-1)
+    singular = ~(determinant(info) > WLE_SINGULAR_SHARE * diag)
+    inv = inverse(np.where(singular[:, None, None], np.eye(k), info))
+    correction = np.zeros((r_n, k))
+    quad = np.zeros(answered.shape)
+    for col in reached:
+        quad[:, col] = quadratic_form(a[:, col], inv)
+        term = (skew[:, col] * quad[:, col])[:, None] * a[:, col]
+        correction = correction + np.where(answered[:, col, None], term, 0.0)
+    jacobian = observed - _correction_derivative(terms, answered, a, inv, quad, reached)
+    return _WleTerms(info, observed, grad + 0.5 * correction, singular, jacobian)
+
+
+def _correction_derivative(terms: md.WeightedLikelihoodTerms, answered, a, inv, quad, reached) -> np.ndarray:
+    """``d/d theta_s`` of the correction ``1/2 sum_j c_j a_jr q_j`` (``q_j = a_j' I^-1 a_j``),
+    (R, K, K) indexed [r, s]: ``1/2 sum_j c'_j q_j a_jr a_js - 1/2 sum_i J'_i a_is sum_j c_j
+    a_jr (a_j' I^-1 a_i)^2`` (``d I^-1 = -I^-1 dI I^-1`` and ``d_s I = sum_i J'_i a_is a_i
+    a_i'``; ``c'``, ``J'`` the derivatives along eta, :func:`~.multidimensional.weighted_likelihood_terms`).
+    Every sum over answers is taken one answer at a time, in order."""
+    r_n, w, k = a.shape
+    skew = np.where(answered, terms.skew, 0.0)
+    skew_slope = np.where(answered, terms.skew_slope, 0.0)
+    info_slope = np.where(answered, terms.information_slope, 0.0)
+    inv_a = matrix_vector(inv[:, None], a)  # (R, W, K): I^-1 a_i
+    out = np.zeros((r_n, k, k))
+    weight = np.zeros((r_n, w, k))  # [i, r]: sum_j c_j a_jr (a_j' I^-1 a_i)^2
+    for col in reached:
+        cross = _dot(a[:, col, None, :], inv_a)  # (R, W): a_col' I^-1 a_i
+        weight = weight + (skew[:, col, None] * cross * cross)[:, :, None] * a[:, col, None, :]
+        lead = 0.5 * skew_slope[:, col] * quad[:, col]
+        out = out + lead[:, None, None] * (a[:, col, :, None] * a[:, col, None, :])
+    for col in reached:
+        out = out - (0.5 * info_slope[:, col])[:, None, None] * (weight[:, col, :, None] * a[:, col, None, :])
+    return out
+
+
+def _newton_matrix_wle(terms: _WleTerms) -> np.ndarray:
+    """Minus the Hessian of the log-likelihood where it is positive definite (its elementwise
+    Cholesky factor exists), else the test information matrix (Fisher scoring)."""
+    factor = cholesky_factor(terms.observed)
+    diag = np.diagonal(factor, axis1=-2, axis2=-1)
+    ok = np.all(diag > 0, axis=-1)  # NaN where not positive definite
+    return np.where(ok[:, None, None], terms.observed, terms.information)
+
+
+def _free_parts(terms: _WleTerms, x, lo, hi):
+    """Which coordinates are held at a bound (U* pointing outward), the free block mask,
+    U* on the free coordinates and the free block of ``M`` (:func:`_newton_matrix_wle`;
+    the identity where the information is singular)."""
+    k = x.shape[1]
+    g = terms.modified
+    held = ((x >= hi) & (g > 0)) | ((x <= lo) & (g < 0))
+    free = ~held
+    both = free[:, :, None] & free[:, None, :]
+    eye = np.eye(k)
+    mat = np.where(both, _newton_matrix_wle(terms), eye)
+    return held, both, np.where(free, g, 0.0), np.where(terms.singular[:, None, None], eye, mat)
+
+
+def _fisher_step(terms: _WleTerms, x, lo, hi):
+    """The projected step on the free coordinates, its merit and which coordinates are held
+    at a bound (U* outward).
+
+    Newton's step ``-(dU*/dtheta)^-1 U*`` where the symmetric part of ``-dU*/dtheta`` is
+    positive definite (near a root that is a maximum of a likelihood-like function
+    the derivative looks like minus a Hessian there), its merit ``U*' U*`` (for which the
+    Newton step goes downhill, exactly).  Elsewhere -- a short test whose modified score
+    turns the other way along a direction the items hardly measure -- the step ``M^-1 U*``
+    with ``M`` of :func:`_newton_matrix_wle`, its merit ``U*' M^-1 U*`` (downhill up to the
+    change of M).  Returns ``step, merit, held, newton``."""
+    held, both, g_free, mat = _free_parts(terms, x, lo, hi)
+    eye = np.eye(x.shape[1])
+    jac = np.where(both, terms.jacobian, eye)
+    factor = cholesky_factor(0.5 * (jac + np.swapaxes(jac, -1, -2)))
+    newton = np.all(np.diagonal(factor, axis1=-2, axis2=-1) > 0, axis=-1) & ~terms.singular  # NaN: False
+    fisher = matrix_vector(inverse(mat), g_free)
+    jac = np.where(newton[:, None, None], jac, eye)
+    if x.shape[1] <= 3:  # the adjugate; beyond, inverse() is Cholesky's, for symmetric matrices
+        newton_step = matrix_vector(inverse(jac), g_free)
+    else:
+        newton_step = solve_positive_real(jac, g_free)
+    step = np.where(newton[:, None], newton_step, fisher)
+    merit = np.where(newton, _dot(g_free, g_free), _dot(fisher, g_free))
+    return np.where(~held, step, 0.0), merit, held, newton
+
+
+def _merit_at(terms: _WleTerms, x, lo, hi, newton) -> np.ndarray:
+    """The merit of :func:`_fisher_step` of the kind ``newton`` says, at a new point."""
+    _, _, g_free, mat = _free_parts(terms, x, lo, hi)
+    return np.where(newton, _dot(g_free, g_free), _dot(matrix_vector(inverse(mat), g_free), g_free))
+
+
+def wle_solve(params: md.MultidimensionalParameters, items, responses, start, bounds, *,
+              tolerance: float = WLE_TOLERANCE):
+    """Weighted likelihood estimates of ability vectors: roots of the modified score in the box.
+
+    Steps ``theta <- theta + t d`` from ``start`` (R, K), ``d`` the step of
+    :func:`_fisher_step`: Newton's on the modified score (its exact derivative)
+    where minus that derivative has a positive definite symmetric part, else ``M^-1 U*``
+    with ``M`` minus the Hessian of the log-likelihood where that is positive definite, else
+    the test information (Fisher scoring); projected on ``[lo, hi]^K`` (a coordinate at a
+    bound whose ``U*`` points outward is held there, the step solves the free
+    coordinates' block), every step at most :data:`WLE_MAX_STEP` on any dimension.  The
+    full step (t = 1) is halved (up to :data:`WLE_HALVINGS` times) until the step's merit
+    falls to at most ``(1 - t / 2)`` of its value.  (Fisher scoring alone converges only
+    linearly -- ``M`` leaves out the derivative of the correction, of the order of one
+    item against the test -- and for one M2PL item it lands exactly as far on the other
+    side of the root, for ever.)  A row has
+    converged at the point whose step is below ``tolerance`` on every dimension (that step
+    is not taken: the estimate is the point whose information has just been computed).
+
+    Returns ``theta`` (R, K), the test information matrix at it (R, K, K) and a status per
+    row: ``converged``; ``at_lower_bound`` / ``at_upper_bound`` (a coordinate is held at the
+    box with the modified score pushing outward: no root inside); ``no_information`` (the
+    information matrix is singular: no WLE, theta stays where it was); ``not_converged``
+    (no halving lowered the merit, or :data:`WLE_ITERATIONS` steps were not enough);
+    ``no_responses`` (nothing answered; theta the start).  Every row is its own.
+    """
+    lo, hi = (float(b) for b in bounds)
+    items = np.asarray(items)
+    responses = np.asarray(responses)
+    x = np.clip(np.array(start, dtype=float), lo, hi)
+    r_n, k = x.shape
+    status = np.full(r_n, NOT_CONVERGED, dtype=object)
+    info = np.full((r_n, k, k), np.nan)
+    answered = ((items >= 0) & (responses >= 0)).any(axis=1)
+    status[~answered] = NO_RESPONSES
+    active = np.flatnonzero(answered)
+    terms = wle_terms(params, items[active], responses[active], x[active])
+    for _ in range(WLE_ITERATIONS):
+        if active.size == 0:
+            break
+        xa = x[active]
+        info[active] = terms.information  # the terms are those of every active row's x
+        step, merit, held, newton = _fisher_step(terms, xa, lo, hi)
+        singular = terms.singular
+        big = np.max(np.abs(step), axis=1)
+        done = ~singular & (big < tolerance)
+        # converged at x (the step below the tolerance is not taken); held at a bound with
+        # the modified score pushing outward: no root inside the box
+        up = np.any(held & (xa >= hi), axis=1)
+        down = np.any(held & (xa <= lo), axis=1)
+        status[active[done]] = np.where(up, AT_UPPER_BOUND, np.where(down, AT_LOWER_BOUND, CONVERGED))[done]
+        status[active[singular]] = NO_INFORMATION
+        go = np.flatnonzero(~singular & ~done)
+        if go.size == 0:
+            active = active[:0]
+            break
+        rows = active[go]
+        scale = np.minimum(1.0, WLE_MAX_STEP / big[go])
+        direction = step[go] * scale[:, None]
+        t = scale.copy()
+        base = xa[go]
+        new = np.clip(base + direction, lo, hi)
+        kind = newton[go]
+        new_terms = wle_terms(params, items[rows], responses[rows], new)
+        new_merit = _merit_at(new_terms, new, lo, hi, kind)
+        worse = new_terms.singular | ~(new_merit <= (1.0 - 0.5 * t) * merit[go])
+        factor = np.ones(go.size)
+        for _ in range(WLE_HALVINGS):
+            if not worse.any():
+                break
+            w = np.flatnonzero(worse)
+            factor[w] = factor[w] * 0.5
+            t[w] = scale[w] * factor[w]
+            new[w] = np.clip(base[w] + factor[w, None] * direction[w], lo, hi)
+            sub = wle_terms(params, items[rows[w]], responses[rows[w]], new[w])
+            sub_merit = _merit_at(sub, new[w], lo, hi, kind[w])
+            for whole, part in zip(new_terms, sub):
+                whole[w] = part
+            worse[w] = sub.singular | ~(sub_merit <= (1.0 - 0.5 * t[w]) * merit[go][w])
+        ok = ~worse  # a row no halving helped stays not_converged at x (its info stored above)
+        x[rows[ok]] = new[ok]
+        terms = _WleTerms(*(v[ok] for v in new_terms))
+        active = rows[ok]
+    if active.size:  # out of iterations: not_converged, the information where they stopped
+        info[active] = terms.information
+    return x, info, status
+
+
 # ----------------------------------------------------------------------------------------
 # EAP
 
@@ -868,6 +1159,10 @@ mle_estimate_md.__doc__ += _INPUT_DOC + """    bounds : (float, float)
     start : array (K,) or (P, K), optional
         Start values instead of the MAP.
 """
+wle_estimate_md.__doc__ += _INPUT_DOC + """    bounds : (float, float)
+    start : array (K,) or (P, K), optional
+        Start values instead of the MAP.
+"""
 eap_estimate_md.__doc__ += _INPUT_DOC + """    points_per_dimension : int, optional
         Points per axis of the adaptive grid (K <= 3), 5..401.
     grid : sequence of K 1-D arrays, optional
@@ -875,22 +1170,21 @@ eap_estimate_md.__doc__ += _INPUT_DOC + """    points_per_dimension : int, optio
 
 
 def check_method_md(method: str, *, location: str = "method") -> None:
-    """Refuse a method multidimensional scoring does not have (``"wle"`` among them), located."""
+    """Refuse a method multidimensional scoring does not have, located."""
     if method not in METHODS_MD:
         raise AdaptiveEngineError(
             f"method {method!r} is not available for a bank of several dimensions (use one of "
-            f"{', '.join(METHODS_MD)}; Warm's weighted likelihood has no multidimensional form here)",
-            location=location)
+            f"{', '.join(METHODS_MD)})", location=location)
 
 
 def estimate_md(bank_or_params, items, responses, method: str, *, prior_mean=None, prior_covariance=None,
                 bounds=DEFAULT_BOUNDS) -> MultidimensionalEstimate:
-    """Ability vectors by ``method`` (``"mle"``, ``"map"`` or ``"eap"``); ``bounds`` not for EAP."""
+    """Ability vectors by ``method`` (``"mle"``, ``"map"``, ``"eap"`` or ``"wle"``); ``bounds`` not for EAP."""
     check_method_md(method)
     if method == "eap":
         return eap_estimate_md(bank_or_params, items, responses, prior_mean=prior_mean,
                                prior_covariance=prior_covariance)
-    func = map_estimate_md if method == "map" else mle_estimate_md
+    func = {"map": map_estimate_md, "mle": mle_estimate_md, "wle": wle_estimate_md}[method]
     return func(bank_or_params, items, responses, prior_mean=prior_mean, prior_covariance=prior_covariance,
                 bounds=bounds)
 

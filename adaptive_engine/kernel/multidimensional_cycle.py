@@ -7,8 +7,9 @@ row addition on the product grid), picking items (:func:`adaptive_engine.kernel.
 with the criteria of :mod:`.multidimensional_selection`), exposure control, the blueprint,
 enemies, item sets and pretest seeding.  What differs is here: the prior (multivariate
 normal), the interim estimate (EAP on the grid, MAP by Fisher scoring with the prior's
-precision, or the MLE where it exists with the design's stand-in elsewhere; for K > 3,
-where the kernel keeps no posterior grid, MAP alone, interim and final), the stopping
+precision, or the MLE or WLE where it exists with the design's stand-in elsewhere; for K > 3,
+where the kernel keeps no posterior grid, the MAP, the MLE or WLE from the MAP, or the EAP by
+adaptive Gauss-Hermite quadrature around the MAP, :mod:`.multidimensional_quadrature`), the stopping
 statistics (the SE of every dimension, the composite's interval) and the final report
 (each dimension with its interval and scaled score, the composite with its SE
 ``sqrt(w' S w)``).
@@ -193,12 +194,16 @@ def keeps_grid_posterior(ctx) -> bool:
     """Whether the rows carry the posterior on the grid.
 
     Under the log form (decision rules 1 and 2) always.  Under the scaled form (version 3)
-    only where something reads it: an EAP or MLE estimate (interim or final; the MLE
-    starts from the posterior mean), Kullback-Leibler selection weighted by the posterior or the ``se_reduction``
+    only where something reads it: an EAP, MLE or WLE estimate (interim or final; the MLE
+    and the WLE start from the posterior mean), Kullback-Leibler selection weighted by the
+    posterior or the ``se_reduction``
     stop.  A design scored by MAP throughout that uses none of these never reads the grid:
     its final MAP starts from the interim MAP (:func:`final_estimates`), and its rows carry
-    no grid at all.
+    no grid at all.  Nor do the rows of a context without a grid (K > 3), whatever the
+    method (their EAP is a quadrature around the MAP, their MLE starts from the MAP).
     """
+    if ctx.multidimensional.gridless:
+        return False
     if ctx.posterior_form == "log":
         return True
     design = ctx.design
@@ -506,12 +511,19 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
     final estimate (``final``) ``fixed_step`` keeps the interim estimate and covariance the
     test ended on.
     """
+    theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
+    return _with_stand_in(ctx, state, rows, theta, mle_cov, status, status != "converged", mean, cov, final)
+
+
+def _with_stand_in(ctx, state, rows, theta, est_cov, status, missing, mean, cov, final):
+    """``theta``, ``est_cov`` with the design's stand-in (``[scoring] extreme_pattern_method``,
+    :func:`mle_or_fallback`) in the rows where ``missing``; (theta, covariance, status)."""
     from ..design.types import ExtremePatternMethod
 
     tab = ctx.multidimensional
     sc = ctx.design.scoring
-    theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
-    fb = np.flatnonzero(status != "converged")
+    mle_cov = est_cov
+    fb = np.flatnonzero(missing)
     if fb.size == 0:
         return theta, mle_cov, status
     how = sc.extreme_pattern_method
@@ -540,13 +552,74 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
     return theta, mle_cov, status
 
 
+#: Statuses of the weighted likelihood estimate (:func:`wle_estimate`) the interim estimate
+#: takes (a mixed pattern, as the one-dimensional kernel; at a bound: no root inside the
+#: box, the estimate at the box's edge, as the one-dimensional WLE), and those the final
+#: estimate takes (also a finite WLE of an all-lowest or all-highest pattern).
+WLE_INTERIM = ("converged", "at_lower_bound", "at_upper_bound")
+WLE_FINAL = WLE_INTERIM + ("all_lowest", "all_highest")
+
+
+def wle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Weighted likelihood estimate of the ability vector (R, K), its covariance (R, K, K) and
+    status (R,), from ``start_theta`` (the posterior mean on the grid).
+
+    The root of Firth's (1993) modified score ``U + tr(I^-1 J_r) / 2`` -- Warm's (1989)
+    weighted likelihood equation for K = 1 -- in the grid's box ``[grid_min,
+    grid_max]^K``, by projected Fisher scoring with halved steps
+    (:func:`adaptive_engine.irt.multidimensional_estimation.wle_solve`; derived in
+    docs/multidimensional_scoring.md).  The covariance is ``I(theta_hat)^-1``, the
+    one-dimensional WLE's ``1 / I``.  Status: ``no_responses``, ``all_lowest`` or
+    ``all_highest`` (the pattern; the WLE is computed for the last two, and finite for M2PL
+    and MGRM items), else ``converged``, ``at_lower_bound``, ``at_upper_bound`` (held at the
+    box: no root inside), ``no_information`` (a direction no answered item measures: a
+    singular information matrix, no WLE) or ``not_converged``.  The estimate and covariance
+    of the rows without a WLE (``no_responses``, ``no_information``, ``not_converged``) are
+    NaN.  Every row is computed on its own (elementwise, the answers added in order, the
+    small inverses elementwise).
+    """
+    from ..irt.multidimensional_estimation import wle_solve
+
+    tab = ctx.multidimensional
+    sc = ctx.design.scoring
+    items, resp = state.scored_items(rows)
+    theta, info, solved = wle_solve(tab.params, items, np.where(items >= 0, resp, -1), start_theta,
+                                    (sc.grid_min, sc.grid_max))
+    pattern = pattern_status(tab, items, resp)
+    exists = np.isin(solved, WLE_INTERIM)
+    status = np.where(exists & (pattern != ""), pattern, solved).astype(object)
+    status[pattern == "no_responses"] = "no_responses"
+    k = tab.k
+    cov = np.full((rows.size, k, k), np.nan)
+    if exists.any():
+        cov[exists] = inverse(info[exists])
+    theta = np.where(exists[:, None], theta, np.nan)
+    return theta, cov, status
+
+
+def wle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
+    """The weighted likelihood estimate of ``rows`` where the design takes it, else the
+    design's stand-in (:func:`mle_or_fallback`); (theta, covariance, status).
+
+    The interim estimate takes the WLE of a mixed pattern (:data:`WLE_INTERIM`): while the
+    pattern is all-lowest or all-highest ``[scoring] extreme_pattern_method`` stands in, as
+    in the one-dimensional kernel.  The final estimate takes the WLE of every pattern that
+    has one (:data:`WLE_FINAL`).  Where there is none (no answers, a singular information
+    matrix, no convergence) the stand-in serves both.
+    """
+    theta, wle_cov, status = wle_estimate(ctx, state, rows, mean)
+    usable = np.isin(status, WLE_FINAL if final else WLE_INTERIM)
+    return _with_stand_in(ctx, state, rows, theta, wle_cov, status, ~usable, mean, cov, final)
+
+
 def _se(cov) -> np.ndarray:
     return np.sqrt(np.maximum(np.diagonal(cov, axis1=-2, axis2=-1), 0.0))
 
 
 def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
     """Add the scored answers to the posterior, then the interim estimate: EAP on the grid,
-    or MAP from the previous estimate.
+    or MAP from the previous estimate (the MLE and the WLE start from the EAP,
+    :func:`mle_or_fallback`, :func:`wle_or_fallback`).
 
     ``scored_item`` (R,) is the item each row's answer scores (-1: none, or a pretest
     item), ``responses`` (R,) the answers; without them only the estimate is made.  The
@@ -575,24 +648,91 @@ def update_estimate(ctx, state, rows, scored_item=None, responses=None) -> None:
         mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
     if ctx.design.scoring.method is ScoringMethod.MLE:
         mean, cov, _ = mle_or_fallback(ctx, state, rows, mean, cov)
+    elif ctx.design.scoring.method is ScoringMethod.WLE:
+        mean, cov, _ = wle_or_fallback(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
 def _update_gridless_estimate(ctx, state, rows) -> None:
-    """The interim estimate of a context without a posterior grid (K > 3): the MAP from the
-    previous interim estimate, its covariance ``(P + I(theta_hat))^-1`` (the gate admits no
-    other method there).  The answers are already in the state's items and responses."""
+    """The interim estimate of a context without a posterior grid (K > 3).
+
+    The MAP from the previous interim estimate, its covariance ``(P + I(theta_hat))^-1``;
+    for an MLE design the MLE from that MAP where it exists and the design's stand-in
+    elsewhere (:func:`_gridless_mle`), for a WLE design likewise the WLE from that MAP
+    (:func:`wle_or_fallback`, the MAP in place of the grid's posterior mean).  The answers
+    are already in the state's items and responses.
+    """
     mean, cov, _ = map_estimate(ctx, state, rows, state.theta[rows])
+    method = ctx.design.scoring.method
+    if method is ScoringMethod.MLE:
+        mean, cov, _ = _gridless_mle(ctx, state, rows, mean, cov)
+    elif method is ScoringMethod.WLE:  # from the MAP, the stand-in's "eap" the MAP, as the MLE's
+        mean, cov, _ = wle_or_fallback(ctx, state, rows, mean, cov)
+    elif method is ScoringMethod.EAP:
+        mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
     state.theta[rows], state.covariance[rows], state.se[rows] = mean, cov, _se(cov)
 
 
+def _gridless_eap(ctx, state, rows, map_mean, map_cov):
+    """The posterior mean (R, K) and covariance (R, K, K) of ``rows`` without a posterior
+    grid (K > 3): adaptive Gauss-Hermite quadrature centred at the MAP ``map_mean`` and
+    spread by the Cholesky factor of its covariance ``map_cov``
+    (:func:`.multidimensional_quadrature.posterior_moments`)."""
+    from .multidimensional_quadrature import posterior_moments
+
+    return posterior_moments(ctx, state, rows, map_mean, map_cov)
+
+
+def _gridless_mle(ctx, state, rows, map_mean, map_cov, *, final: bool = False):
+    """The MLE of ``rows`` where it exists, else the design's stand-in, without a posterior
+    grid (K > 3); (theta, covariance, status).
+
+    The MLE is :func:`mle_estimate` (projected Fisher scoring in the box ``[grid_min,
+    grid_max]^K``, covariance ``I(theta_hat)^-1``) started from the MAP ``map_mean``, as
+    for K <= 3 it starts from the posterior mean.  Where it does not exist
+    :func:`mle_or_fallback` puts ``[scoring] extreme_pattern_method`` in its place with
+    the MAP ``map_mean``, ``map_cov`` where K <= 3 reads the grid posterior: ``eap`` is
+    the MAP and its covariance (there is no posterior grid to average over), ``map`` the
+    MAP, ``fixed_step`` the previous estimate moved by ``fixed_step`` with the MAP's
+    covariance (the final estimate keeps the interim one).
+    """
+    return mle_or_fallback(ctx, state, rows, map_mean, map_cov, final=final)
+
+
 def _gridless_final_estimates(ctx, state, rows) -> MultidimensionalFinalEstimates:
-    """Final MAP estimates of a context without a posterior grid (K > 3), started from the
-    interim estimate (the interim MAP after the last answer, or the opening point without
-    answers): the same values in a batch and for one examinee, live or simulated."""
+    """Final estimates of a context without a posterior grid (K > 3), started from the
+    interim estimate (the interim estimate after the last answer, or the opening point
+    without answers): the MAP, or for ``[reporting] final_method = "mle"`` the MLE from
+    that MAP (:func:`_gridless_mle`; ``wle`` likewise, :func:`wle_or_fallback`), or for
+    ``eap`` the adaptive quadrature around it
+    (:func:`_gridless_eap`; a design scored by EAP throughout keeps the interim EAP of a
+    row that took an answer); the same values in a batch and for one examinee, live or
+    simulated."""
+    design = ctx.design
+    method = design.final_method
+    if method is ScoringMethod.EAP and design.scoring.method is ScoringMethod.EAP:
+        # the interim EAP after a row's last answer is the EAP of its present answers,
+        # computed by the same function from the same values (a live session replays them)
+        fresh = np.flatnonzero(state.n_given[rows] == 0)
+        mean, cov = state.theta[rows], state.covariance[rows]
+        if fresh.size:
+            at = rows[fresh]
+            m, c, _ = map_estimate(ctx, state, at, state.theta[at])
+            mean[fresh], cov[fresh] = _gridless_eap(ctx, state, at, m, c)
+        status = np.where(state.n_scored[rows] == 0, "no_responses", "converged").astype(object)
+        return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
+                                              lz=person_fit_lz(ctx, state, rows, mean))
     mean, cov, ok = map_estimate(ctx, state, rows, state.theta[rows])
-    status = np.where(state.n_scored[rows] == 0, "no_responses",
-                      np.where(ok, "converged", "not_converged")).astype(object)
+    if method is ScoringMethod.MLE:
+        mean, cov, status = _gridless_mle(ctx, state, rows, mean, cov, final=True)
+    elif method is ScoringMethod.WLE:
+        mean, cov, status = wle_or_fallback(ctx, state, rows, mean, cov, final=True)
+    elif method is ScoringMethod.EAP:
+        mean, cov = _gridless_eap(ctx, state, rows, mean, cov)
+        status = np.where(state.n_scored[rows] == 0, "no_responses", "converged").astype(object)
+    else:
+        status = np.where(state.n_scored[rows] == 0, "no_responses",
+                          np.where(ok, "converged", "not_converged")).astype(object)
     return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
                                           lz=person_fit_lz(ctx, state, rows, mean))
 
@@ -614,7 +754,8 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
     """Why each row's test stops now (``""``: go on), by :func:`adaptive_engine.kernel.stopping.stop_reasons`.
 
     The SE rule fires once every dimension is at or below its target; the confidence
-    interval rule classifies the composite of ``[reporting] composite_weights``;
+    interval rule and the SPRT classify the composite of ``[reporting] composite_weights``
+    (the SPRT at the two points of :func:`.multidimensional_stopping.composite_sprt_points`);
     ``se_reduction`` and ``min_information`` hold on every dimension
     (:mod:`.multidimensional_stopping`).
     """
@@ -633,6 +774,10 @@ def stop_reasons(ctx, state, rows, picked) -> np.ndarray:
         value, value_se = composite(weights, state.theta[rows], state.covariance[rows])
         kwargs["ci_decision"] = stopping.confidence_interval_decision(
             value, value_se, cut=st.confidence_interval.cut, confidence=st.confidence_interval.confidence)
+    if st.sprt is not None:  # the SPRT on the composite (.multidimensional_stopping)
+        from .multidimensional_stopping import composite_sprt_statistic
+
+        kwargs["sprt_llr"] = composite_sprt_statistic(ctx, state, rows)
     if st.se_reduction is not None or st.min_information is not None:
         from . import multidimensional_stopping as precision
 
@@ -658,12 +803,22 @@ class MultidimensionalFinalEstimates:
     se: np.ndarray
     covariance: np.ndarray
     status: np.ndarray
-    sprt_decision: None = None
+    sprt_decision: np.ndarray | None = None
     lz: np.ndarray | None = None
 
 
+def _with_sprt_decision(ctx, state, rows, est: "MultidimensionalFinalEstimates") -> "MultidimensionalFinalEstimates":
+    """``est`` with the composite SPRT's decision (R,) when the design has the rule: at the
+    interim estimate the test ended on, the one its last stop decision read."""
+    if ctx.design.stopping.sprt is None:
+        return est
+    from .multidimensional_stopping import composite_sprt_decision
+
+    return attrs.evolve(est, sprt_decision=composite_sprt_decision(ctx, state, rows))
+
+
 def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
-    """Final estimates of ``rows`` by the design's final method (EAP on the grid or MAP).
+    """Final estimates of ``rows`` by the design's final method (EAP on the grid, MAP, MLE or WLE).
 
     ``interim_current``: the caller knows that every answer of ``rows`` went through
     :func:`answer` (a simulated chunk), so that for an EAP design (interim and final) the
@@ -677,6 +832,10 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
     the final EAP of a row that took an answer is its interim EAP.
     """
     rows = np.asarray(rows, dtype=np.int64)
+    return _with_sprt_decision(ctx, state, rows, _final_estimates(ctx, state, rows, interim_current))
+
+
+def _final_estimates(ctx, state, rows, interim_current) -> MultidimensionalFinalEstimates:
     if ctx.multidimensional.gridless:
         return _gridless_final_estimates(ctx, state, rows)
     status = np.where(state.n_scored[rows] > 0, "converged", "no_responses").astype(object)
@@ -699,6 +858,8 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
                           np.where(ok, "converged", "not_converged")).astype(object)
     elif ctx.design.final_method is ScoringMethod.MLE:
         mean, cov, status = mle_or_fallback(ctx, state, rows, mean, cov, final=True)
+    elif ctx.design.final_method is ScoringMethod.WLE:
+        mean, cov, status = wle_or_fallback(ctx, state, rows, mean, cov, final=True)
     return MultidimensionalFinalEstimates(theta=mean, se=_se(cov), covariance=cov, status=status,
                                           lz=person_fit_lz(ctx, state, rows, mean))
 
@@ -750,7 +911,7 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
     comp = None
     if tab.composite_weights is not None:
         value, value_se = composite(tab.composite_weights, est.theta, est.covariance)
-        comp = final_reports(design, theta=value, se=value_se, **common)
+        comp = final_reports(design, theta=value, se=value_se, sprt_decision=est.sprt_decision, **common)
     out = []
     threshold = float(design.reporting.person_fit_threshold)
     keep = ("theta", "se", "interval", "scaled_score", "scaled_se", "scaled_interval")

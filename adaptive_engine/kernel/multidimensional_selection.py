@@ -32,9 +32,10 @@ items given, Segall 1996) and ``I_j = J_j a_j a_j'`` a candidate's information (
     ``J_j a_j^2``, the item's Fisher information at theta: the same order as
     ``d_optimality`` at K = 1.
 
-For K = 4 to 6 the kernel keeps no posterior grid: ``W^-1`` is the MAP covariance, the
-criteria above but the posterior-weighted ``kullback_leibler`` (refused by the gate there)
-run unchanged.
+For K = 4 to 6 the kernel keeps no posterior grid: ``W`` is taken at the interim estimate
+as above (for a MAP design ``W^-1`` is the MAP covariance; for an EAP or MLE design it is
+computed at the EAP or MLE, as for K <= 3), the criteria above but the posterior-weighted
+``kullback_leibler`` (refused by the gate there) run unchanged.
 """
 
 from __future__ import annotations

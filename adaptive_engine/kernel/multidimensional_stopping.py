@@ -1,4 +1,5 @@
-"""The precision rules ``se_reduction`` and ``min_information`` for an ability vector.
+"""The precision rules ``se_reduction`` and ``min_information`` for an ability vector, and
+the SPRT of the composite (at the end of the module).
 
 The one-dimensional rules (:mod:`adaptive_engine.kernel.stopping`) look at the best
 remaining item: ``se_reduction`` stops once it would reduce the SE by less than the target
@@ -24,6 +25,12 @@ ability vector each rule holds on every dimension:
     information matrix, ``J_j(theta) a_jk^2``.  The rule fires once no eligible item has
     more than the minimum on any dimension: the statistic is the largest ``J_j a_jk^2``
     over the eligible items and the dimensions (0 where none is eligible).
+
+The SPRT of the composite ``w . theta`` against its cut ``C`` (``[stopping.sprt]`` with
+``[reporting] composite_weights``) compares, after each answer, the points of composite
+value ``C + delta`` and ``C - delta`` nearest the interim estimate (the estimate moved along
+``w``), by the log-likelihood ratio of every scored answer at the two, against Wald's (1947)
+bounds (:func:`composite_sprt_points`; docs/designs.md).
 
 Every quantity is computed per row: elementwise, with sums along each row's own grid or
 over its answers in the order given, so a batch gives what one row at a time gives.
@@ -133,3 +140,72 @@ def largest_information_per_dimension(ctx, state, rows) -> np.ndarray:
     values = np.where(_eligible_items(ctx, state, rows), j * most[None, :], -np.inf)
     best = np.max(values, axis=1)
     return np.where(np.isfinite(best), best, 0.0)
+
+
+# ----------------------------------------------------------------------------------------
+# the SPRT on the composite
+
+
+def composite_sprt_points(weights, theta, *, cut: float, indifference: float) -> tuple[np.ndarray, np.ndarray]:
+    """The two points the composite's SPRT compares, ``theta_plus`` and ``theta_minus`` (R, K).
+
+    For the cut ``C`` on the composite ``w . theta`` and the indifference ``delta`` they are
+    the points of composite value ``C + delta`` and ``C - delta`` nearest the interim
+    estimate ``theta_hat`` (R, K) in the Euclidean sense: ``theta_hat`` moved along ``w``,
+    ``theta_hat + (C +- delta - w . theta_hat) w / (w . w)``.  Written as the part of
+    ``theta_hat`` across ``w`` plus the point ``(C +- delta) w / (w . w)`` on ``w``'s line
+    (the same value, rounded so that K = 1 with ``w = [1]`` gives ``C +- delta`` exactly,
+    the one-dimensional SPRT's points).  Every sum runs over the dimensions in order,
+    elementwise (no matrix product).
+    """
+    w = np.asarray(weights, dtype=float)
+    theta = np.asarray(theta, dtype=float)
+    k = w.shape[0]
+    ww = float(w[0] * w[0])
+    along = w[0] * theta[..., 0]
+    for j in range(1, k):
+        ww = ww + float(w[j] * w[j])
+        along = along + w[j] * theta[..., j]
+    across = theta - (along / ww)[..., None] * w
+    upper = across + ((cut + indifference) / ww) * w
+    lower = across + ((cut - indifference) / ww) * w
+    return upper, lower
+
+
+def composite_sprt_log_likelihood_ratio(params: md.MultidimensionalParameters, items, responses, theta, weights, *,
+                                        cut: float, indifference: float) -> np.ndarray:
+    """``log L(theta_plus) - log L(theta_minus)`` (R,) of each row's scored answers, at the
+    points of :func:`composite_sprt_points` around the row's interim estimate ``theta`` (R, K).
+
+    ``items`` and ``responses`` (R, L) are -1 padded.  Each answer's term ``log P(x |
+    theta_plus) - log P(x | theta_minus)`` is computed on its own and the terms summed along
+    each row (the last axis), as the one-dimensional
+    :func:`adaptive_engine.kernel.stopping.sprt_log_likelihood_ratio` sums them.  Positive
+    values favour "above the cut".
+    """
+    items = np.asarray(items)
+    responses = np.asarray(responses)
+    upper, lower = composite_sprt_points(weights, theta, cut=cut, indifference=indifference)
+    given = (items >= 0) & (responses >= 0)
+    p = params.take(np.where(given, items, 0))  # (R, L)
+    resp = np.where(given, responses, 0)
+    terms = md.log_likelihood(p, upper[:, None, :], resp) - md.log_likelihood(p, lower[:, None, :], resp)
+    return np.sum(np.where(given, terms, 0.0), axis=-1)
+
+
+def composite_sprt_statistic(ctx, state, rows) -> np.ndarray:
+    """The composite SPRT's log-likelihood ratio of ``rows`` at their interim estimates, (R,)
+    (the design's ``[stopping.sprt]`` cut and indifference, ``[reporting] composite_weights``)."""
+    tab = ctx.multidimensional
+    s = ctx.design.stopping.sprt
+    items, resp = state.scored_items(rows)
+    return composite_sprt_log_likelihood_ratio(tab.params, items, resp, state.theta[rows], tab.composite_weights,
+                                               cut=s.cut, indifference=s.indifference)
+
+
+def composite_sprt_decision(ctx, state, rows) -> np.ndarray:
+    """Wald's decision (+1 above, -1 below, 0 undecided) (R,) of :func:`composite_sprt_statistic`."""
+    from .stopping import sprt_decision
+
+    s = ctx.design.stopping.sprt
+    return sprt_decision(composite_sprt_statistic(ctx, state, rows), alpha=s.alpha, beta=s.beta)

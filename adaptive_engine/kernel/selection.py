@@ -372,8 +372,7 @@ def _choose_ranked(ctx, state, rows, cand, values, ok, rule: RankedPickRule | No
         # Conditional parameters (Stocking & Lewis 1998) are indexed by the stratum of the
         # interim estimate: the true ability is unknown in operational use.  Unconditional
         # parameters have no cut points, so every examinee is in stratum 0.
-        # (an ability vector has no strata: the gate refuses conditional parameters there)
-        stratum = np.searchsorted(ctx.exposure_cuts, state.theta[rows].reshape(rows.size, -1)[:, 0], side="right")
+        stratum = exposure_stratum(ctx, state.theta[rows])
         k = ctx.exposure_k[stratum[:, None], np.where(s_cand >= 0, s_cand, 0)]
         u = randomness.uniforms(state.keys[rows], state.n_given[rows], randomness.SYMPSON_HETTER, s_cand)
         passes = (u < k) & np.isfinite(s_val)
@@ -393,6 +392,28 @@ def _choose_ranked(ctx, state, rows, cand, values, ok, rule: RankedPickRule | No
     chosen_val = np.where(none_left, np.nan, chosen_val)
     kth = s_val[every, np.minimum(np.maximum(depth - 1, 0), s_val.shape[1] - 1)]
     return RankedChoice(item=chosen, value=chosen_val, kth=kth, depth=depth, withheld=withheld)
+
+
+def exposure_stratum(ctx, theta) -> np.ndarray:
+    """The ability stratum of conditional Sympson-Hetter parameters for interim estimates
+    ``theta`` (R,) or, for an ability vector, (R, K): (R,) ints, stratum s being
+    ``[cut[s-1], cut[s])`` of ``ctx.exposure_cuts`` (all 0 without cut points).
+
+    One ability is cut as it is.  An ability vector is cut by its composite ``w . theta``
+    (``[reporting] composite_weights``, which the gate requires with conditional
+    parameters), summed over the dimensions in order, elementwise; with K = 1 and
+    ``w = [1]`` that is theta itself, bit for bit.
+    """
+    theta = np.asarray(theta)
+    n = theta.shape[0]
+    tab = ctx.multidimensional
+    if tab is None or ctx.exposure_cuts.size == 0:
+        return np.searchsorted(ctx.exposure_cuts, theta.reshape(n, -1)[:, 0], side="right")
+    w = tab.composite_weights
+    value = w[0] * theta[:, 0]
+    for j in range(1, w.shape[0]):
+        value = value + w[j] * theta[:, j]
+    return np.searchsorted(ctx.exposure_cuts, value, side="right")
 
 
 def _choose_ranked_one(state, row: int, cand, masked, n_ok: int, rule: RankedPickRule) -> RankedChoice:

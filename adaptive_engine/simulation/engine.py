@@ -394,7 +394,7 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
         pick_stratum = np.zeros((n, length), dtype=np.int64)
         pick_stratum[:, 0] = stratum_of(chunk_rows.of_examinees(state.theta), cuts)
         withheld: list = []  # (row, item, estimate stratum)
-        _keep_withheld(withheld, picked, state.theta, cuts)
+        keep_withheld(withheld, picked, state.theta, cuts)
     _count_withheld(offered, picked)
     while True:
         examinees, at_row = chunk_rows.testing(state)
@@ -413,7 +413,7 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
             going = examinees[state.pending[at_row] >= 0]
             going_row = chunk_rows.row_of(going)
             pick_stratum[going, state.n_given[going_row]] = stratum_of(state.theta[going_row], cuts)
-            _keep_withheld(withheld, picked, state.theta, cuts)
+            keep_withheld(withheld, picked, state.theta, cuts)
         # a flat put: several times faster than 2-D fancy indexing
         at = examinees * length + pos
         interim_theta.reshape(-1)[at] = state.theta[at_row]
@@ -428,7 +428,7 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, true_bank:
     administered = np.bincount(items[items >= 0], minlength=bank.n_items)
     given_s = offered_s = None
     if by_stratum:
-        given_s, offered_s = _stratum_counts(items, pick_stratum, withheld, stratum_of(true_theta, cuts),
+        given_s, offered_s = stratum_counts(items, pick_stratum, withheld, stratum_of(true_theta, cuts),
                                              cuts.size + 1, bank.n_items)
     design = ctx.design
     at_or_above = reporting.classification_matrix(design, theta, sprt_decision)
@@ -450,7 +450,9 @@ def _count_withheld(offered, picked) -> None:
         np.add.at(offered, np.array([i for _, i in picked.withheld], dtype=np.int64), 1)
 
 
-def _keep_withheld(keep: list, picked, theta, cuts) -> None:
+def keep_withheld(keep: list, picked, theta, cuts) -> None:
+    """Add ``(row, item, stratum of theta[row])`` for each item the lottery withheld (the
+    multidimensional driver passes the composite of each row's estimate as ``theta``)."""
     if picked.withheld:
         pairs = np.asarray(picked.withheld, dtype=np.int64)
         est = stratum_of(theta[pairs[:, 0]], cuts)
@@ -462,7 +464,7 @@ def stratum_of(theta, cuts) -> np.ndarray:
     return np.searchsorted(np.asarray(cuts, dtype=float), np.asarray(theta, dtype=float), side="right")
 
 
-def _stratum_counts(items, pick_stratum, withheld, true_stratum, n_strata, n_items):
+def stratum_counts(items, pick_stratum, withheld, true_stratum, n_strata, n_items):
     """Administrations and offers (given + withheld), (S, S, n) each.
 
     Indexed ``[true-ability stratum, stratum of the estimate at the pick, item]``.

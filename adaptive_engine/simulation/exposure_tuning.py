@@ -45,7 +45,11 @@ A design that runs on the multidimensional kernel is calibrated by the same iter
 (:func:`calibrate_sympson_hetter_multidimensional`), each a run of the multidimensional
 simulation driver on the same true ability vectors (N, K) with fresh random streams; the
 lottery and the selection counts are the kernel's own, so the step is the plain one above.
-Conditional parameters need a scalar ability to cut into strata and are not made for it.
+Conditional parameters cut the composite ``w . theta`` of ``[reporting] composite_weights``
+(required then) into strata, as one ability's theta is cut: the lottery uses the parameters
+of the stratum of the interim estimate's composite, each simulated examinee is counted in
+the stratum of their true composite, and the conditional step above is taken on those
+counts (at K = 1 with ``w = [1]`` the one-dimensional calibration's).
 
 Administrations without a lottery
 ---------------------------------
@@ -79,7 +83,7 @@ from ..files import check_target, write_text
 from .engine import Execution, simulate, stratum_of
 from .exposure_diagnosis import ExposureDiagnosis, LotteryFreeCounts, diagnose
 from .multidimensional_engine import DEFAULT_CHUNK as MULTIDIMENSIONAL_CHUNK
-from .multidimensional_engine import simulate_multidimensional
+from .multidimensional_engine import composite_of, simulate_multidimensional
 from .population import Population
 
 
@@ -331,7 +335,7 @@ def calibrate_sympson_hetter(design: Design, bank: ItemBank, *, target: float, p
 def calibrate_sympson_hetter_multidimensional(design: Design, bank: ItemBank, *, target: float, true_theta,
                                               seed: int, max_iterations: int = 15, tolerance: float = 0.02,
                                               chunk_size: int = MULTIDIMENSIONAL_CHUNK, workers: int = 1,
-                                              progress=None) -> ExposureCalibration:
+                                              progress=None, strata=None) -> ExposureCalibration:
     """:func:`calibrate_sympson_hetter` for a design on the multidimensional kernel.
 
     Parameters
@@ -351,17 +355,50 @@ def calibrate_sympson_hetter_multidimensional(design: Design, bank: ItemBank, *,
         ``progress(done, total)`` over at most ``max_iterations`` x N examinees, reaching
         ``total`` when the calibration ends.
 
-    Other parameters and the result are those of :func:`calibrate_sympson_hetter`
-    (unconditional parameters only).
+    strata : float sequence, optional
+        Interior cut points of strata of the composite ``[reporting] composite_weights``
+        (required then): parameters conditional on the composite, one per item and
+        stratum (the module notes).
+
+    Other parameters and the result are those of :func:`calibrate_sympson_hetter`.
     """
     if not 0 < target <= 1:
         raise AdaptiveEngineError(f"the target exposure rate must lie in (0, 1], got {target}", "target")
     if max_iterations < 1:
         raise AdaptiveEngineError(f"max_iterations must be >= 1, got {max_iterations}", "max_iterations")
-    require_design_fits_bank(with_parameters(design, {}), bank)
     true_theta = np.asarray(true_theta, dtype=float)
     n = int(true_theta.shape[0]) if true_theta.ndim else 0
     total = max_iterations * n
+    if strata is not None:
+        strata = _check_strata(strata)
+        weights = design.reporting.composite_weights
+        if weights is None:
+            raise AdaptiveEngineError("exposure parameters conditional on ability strata of an ability vector cut "
+                                      "the composite of [reporting] composite_weights; give them",
+                                      "[reporting] composite_weights")
+        require_design_fits_bank(with_parameters(design, {}, strata=strata), bank)
+        w = np.asarray(weights, dtype=float)
+        theta2 = true_theta if true_theta.ndim == 2 else true_theta.reshape(n, -1)
+        true_values = composite_of(w, theta2)
+
+        def run_conditional(current: Design, it: int, counts: LotteryFreeCounts):
+            report = None
+            if progress is not None:
+                def report(done, _n):
+                    progress(min(it * n + done, total - 1), total)
+
+            result = simulate_multidimensional(current, bank, true_theta=true_theta,
+                                               seed=_iteration_seed(seed, it), chunk_size=chunk_size,
+                                               workers=workers, progress=report, count_by_stratum=strata)
+            counts(_Administrations(items=result.items, true_theta=true_values))
+            return result
+
+        cal = _conditional_iterations(design, bank, true_values=true_values, run=run_conditional, target=target,
+                                      tolerance=tolerance, strata=strata, max_iterations=max_iterations)
+        if progress is not None:
+            progress(total, total)
+        return cal
+    require_design_fits_bank(with_parameters(design, {}), bank)
 
     def run(current: Design, it: int, counts: LotteryFreeCounts):
         report = None
@@ -430,9 +467,29 @@ def _plain_iterations(design, bank, *, n, run, target, tolerance, max_iterations
 def _calibrate_conditional(design, bank, *, target, population, execution, strata, max_iterations,
                            tolerance) -> ExposureCalibration:
     """Sympson-Hetter iterations per true-ability stratum (Stocking & Lewis 1998)."""
+    require_design_fits_bank(with_parameters(design, {}), bank)
+
+    def run(current: Design, it: int, counts: LotteryFreeCounts):
+        examinees, run = _iteration(population, execution, it, max_iterations)
+        return simulate(current, bank, population=examinees, execution=run, count_by_stratum=strata,
+                        on_chunk=counts)
+
+    cal = _conditional_iterations(design, bank, true_values=population.true_theta, run=run, target=target,
+                                  tolerance=tolerance, strata=strata, max_iterations=max_iterations)
+    if execution.progress is not None:
+        total = max_iterations * population.size
+        execution.progress(total, total)
+    return cal
+
+
+def _conditional_iterations(design, bank, *, true_values, run, target, tolerance, strata,
+                            max_iterations) -> ExposureCalibration:
+    """The conditional iterations (module notes): ``run(design with the current parameters,
+    iteration, LotteryFreeCounts)`` simulates the examinees whose true abilities (one
+    ability, or the composite of an ability vector) are ``true_values`` (N,) and returns a
+    result with the counts per stratum (``administered_by_stratum_pair``, ...)."""
     n_strata = len(strata) + 1
-    true_theta = population.true_theta
-    size = np.bincount(stratum_of(true_theta, strata), minlength=n_strata)  # N_s
+    size = np.bincount(stratum_of(true_values, strata), minlength=n_strata)  # N_s
     empty = np.flatnonzero(size == 0)
     if empty.size:
         bounds = (-np.inf,) + strata + (np.inf,)
@@ -444,7 +501,6 @@ def _calibrate_conditional(design, bank, *, target, population, execution, strat
     k = np.ones((n_strata, bank.n_items))
     history = []
     converged = False
-    require_design_fits_bank(with_parameters(design, {}), bank)
     sets = _set_members(bank, design)
 
     def as_params():
@@ -453,9 +509,7 @@ def _calibrate_conditional(design, bank, *, target, population, execution, strat
     for it in range(max_iterations):
         current = with_parameters(design, as_params(), strata=strata)
         counts = LotteryFreeCounts(design, bank, strata)
-        examinees, run = _iteration(population, execution, it, max_iterations)
-        result = simulate(current, bank, population=examinees, execution=run, count_by_stratum=strata,
-                          on_chunk=counts)
+        result = run(current, it, counts)
         given = result.administered_by_stratum / size[:, None]  # P(A_i | true stratum s)
         by_stratum = given[:, operational].max(axis=1)
         max_rate = float(by_stratum.max())
@@ -471,9 +525,6 @@ def _calibrate_conditional(design, bank, *, target, population, execution, strat
         used = k
         k = _updated_conditional(k, result.administered_by_stratum_pair, result.offered_by_stratum_pair,
                                  size, target, sets, free=counts.first)
-    if execution.progress is not None:
-        total = max_iterations * population.size
-        execution.progress(total, total)
     diagnosis = None
     if not converged:
         diagnosis = diagnose(design, bank, target=target, tolerance=tolerance, history=history, given=given,
@@ -512,13 +563,14 @@ def write_parameters(parameters: dict, path: str | Path, *, strata=()) -> Path:
 
 def run_multidimensional_calibration(design: Design, bank: ItemBank, *, target: float, out_file, true_theta,
                                      seed: int, max_iterations: int = 15, tolerance: float = 0.02,
-                                     workers: int = 1, progress=None) -> ExposureCalibration:
-    """:func:`calibrate_sympson_hetter_multidimensional`, then write the parameters file."""
+                                     workers: int = 1, progress=None, strata=None) -> ExposureCalibration:
+    """:func:`calibrate_sympson_hetter_multidimensional`, then write the parameters file
+    (conditional with ``strata``: cut points of the composite)."""
     check_target(out_file)  # before the long run: a bad folder fails at once
     cal = calibrate_sympson_hetter_multidimensional(design, bank, target=target, true_theta=true_theta, seed=seed,
                                                     max_iterations=max_iterations, tolerance=tolerance,
-                                                    workers=workers, progress=progress)
-    write_parameters(cal.parameters, out_file)
+                                                    workers=workers, progress=progress, strata=strata)
+    write_parameters(cal.parameters, out_file, strata=cal.strata)
     return cal
 
 

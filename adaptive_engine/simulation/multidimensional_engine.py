@@ -63,7 +63,9 @@ class MultidimensionalSimulationResult:
     in order given and ``responses`` (-1 padded); ``administered`` (n_items,); ``offered``
     (n_items,): how often each item was selected, given or withheld by the Sympson-Hetter
     lottery (as the one-dimensional driver's ``offered``); ``lz`` (N,)
-    the person fit at the final ability vector (NaN where it cannot be computed).
+    the person fit at the final ability vector (NaN where it cannot be computed);
+    ``sprt_decision`` (N,): the composite SPRT's decision at the end (+1 above, -1 below,
+    0 undecided or no SPRT in the design).
     """
 
     design: Design
@@ -83,15 +85,37 @@ class MultidimensionalSimulationResult:
     administered: np.ndarray
     lz: np.ndarray | None = None
     offered: np.ndarray | None = None
+    sprt_decision: np.ndarray | None = None
+    administered_by_stratum_pair: np.ndarray | None = None
+    offered_by_stratum_pair: np.ndarray | None = None
 
     @property
     def size(self) -> int:
         return int(self.seeds.shape[0])
 
+    @property
+    def administered_by_stratum(self) -> np.ndarray | None:
+        """Administrations per stratum of the true composite, (S, n_items) (None if not counted)."""
+        pair = self.administered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
 
-def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
+    @property
+    def offered_by_stratum(self) -> np.ndarray | None:
+        """Offers (given or withheld) per stratum of the true composite, (S, n_items)."""
+        pair = self.offered_by_stratum_pair
+        return None if pair is None else pair.sum(axis=1)
+
+
+def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, count_by_stratum=None) -> dict:
     """Simulate examinees ``start .. start + n - 1`` (true abilities (n, K)); plain arrays
-    (``withheld`` (n_items,): the chunk's Sympson-Hetter withholdings per item)."""
+    (``withheld`` (n_items,): the chunk's Sympson-Hetter withholdings per item).
+
+    ``count_by_stratum`` (S - 1 ascending cut points of the composite ``[reporting]
+    composite_weights``): also count administrations and offers per (stratum of the true
+    composite, stratum of the interim estimate's composite at the pick, item), as the
+    one-dimensional driver counts them per ability stratum (``administered_by_stratum_pair``
+    and ``offered_by_stratum_pair``, (S, S, n_items)).
+    """
     bank = ctx.bank
     n = true_theta.shape[0]
     params = bank.multidimensional_params
@@ -102,6 +126,18 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
     (state, picked), chunk_rows = ChunkRows.start(ctx, keys)
     withheld = np.zeros(bank.n_items, dtype=np.int64)
     _count_withheld(withheld, picked)
+    by_stratum = count_by_stratum is not None
+    if by_stratum:
+        from .engine import keep_withheld
+
+        cuts = np.asarray(count_by_stratum, dtype=float)
+        weights = _stratum_weights(ctx)
+        length = ctx.max_length
+        # the stratum of the estimate's composite each item (or withheld item) was picked at
+        pick_stratum = np.zeros((n, length), dtype=np.int64)
+        pick_stratum[:, 0] = composite_stratum(weights, chunk_rows.of_examinees(state.theta), cuts)
+        kept: list = []  # (row, item, estimate stratum); a design with a lottery shares no rows
+        keep_withheld(kept, picked, composite_of(weights, state.theta), cuts)
     while True:
         examinees, at_row = chunk_rows.testing(state)
         if examinees.size == 0:
@@ -113,38 +149,81 @@ def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta) -> dict:
         top = params.n_categories[item] - 1
         answers = np.minimum((np.cumsum(p, axis=1) < u[:, None]).sum(axis=1), top)
         rows, answers = chunk_rows.split(state, examinees, at_row, answers)
-        _count_withheld(withheld, kernel.answer(ctx, state, rows, answers))
+        picked = kernel.answer(ctx, state, rows, answers)
+        _count_withheld(withheld, picked)
+        if by_stratum:
+            at_row = chunk_rows.row_of(examinees)
+            going = examinees[state.pending[at_row] >= 0]
+            going_row = chunk_rows.row_of(going)
+            pick_stratum[going, state.n_given[going_row]] = composite_stratum(weights, state.theta[going_row], cuts)
+            keep_withheld(kept, picked, composite_of(weights, state.theta), cuts)
     # every answer went through the kernel's answer: an EAP design's interim estimates are final
     est = final_estimates(ctx, state, chunk_rows.in_use(), interim_current=True)
     per_examinee = chunk_rows.of_examinees
+    counted = {}
+    if by_stratum:
+        from .engine import stratum_counts
+
+        items = per_examinee(state.items)
+        counted["administered_by_stratum_pair"], counted["offered_by_stratum_pair"] = stratum_counts(
+            items, pick_stratum, kept, composite_stratum(weights, true_theta, cuts), cuts.size + 1, bank.n_items)
     return dict(seeds=seeds, true_theta=true_theta, theta=per_examinee(est.theta), se=per_examinee(est.se),
                 covariance=per_examinee(est.covariance), n_scored=per_examinee(state.n_scored).copy(),
                 n_pretest=per_examinee(state.n_pretest).copy(), stop_reason=per_examinee(state.stop_reason).copy(),
                 items=per_examinee(state.items).copy(), responses=per_examinee(state.responses).copy(),
-                lz=per_examinee(est.lz), withheld=withheld)
+                lz=per_examinee(est.lz), withheld=withheld,
+                sprt_decision=(np.zeros(n, dtype=np.int8) if est.sprt_decision is None
+                               else per_examinee(est.sprt_decision)), **counted)
+
+
+def _stratum_weights(ctx) -> np.ndarray:
+    """The composite weights that cut the strata of a count by stratum (located error without)."""
+    weights = ctx.multidimensional.composite_weights
+    if weights is None:
+        raise SimulationError("counts by ability stratum of an ability vector cut the composite of "
+                              "[reporting] composite_weights; give them", "[reporting] composite_weights")
+    return weights
+
+
+def composite_of(weights, theta) -> np.ndarray:
+    """``w . theta`` (R,) of ability vectors (R, K), summed over the dimensions in order,
+    elementwise (the sum :func:`adaptive_engine.kernel.selection.exposure_stratum` cuts)."""
+    value = weights[0] * theta[:, 0]
+    for j in range(1, weights.shape[0]):
+        value = value + weights[j] * theta[:, j]
+    return value
+
+
+def composite_stratum(weights, theta, cuts) -> np.ndarray:
+    """The stratum of the composite ``w . theta`` of each ability vector (R, K), (R,)."""
+    from .engine import stratum_of
+
+    return stratum_of(composite_of(weights, theta), cuts)
 
 
 #: Contexts built in a worker process, by run token (one run at a time per worker).
 _CONTEXTS: dict = {}
 
 
-def _worker_chunk(token: str, design: Design, bank: ItemBank, seed: int, start: int, true_theta) -> dict:
+def _worker_chunk(token: str, design: Design, bank: ItemBank, seed: int, start: int, true_theta,
+                  count_by_stratum=None) -> dict:
     """:func:`run_chunk` in a worker; the context is built once per worker process and run."""
     ctx = _CONTEXTS.get(token)
     if ctx is None:
         _CONTEXTS.clear()  # drop the contexts of earlier runs
         ctx = _CONTEXTS[token] = build_context(design, bank)
-    return run_chunk(ctx, seed=seed, start=start, true_theta=true_theta)
+    return run_chunk(ctx, seed=seed, start=start, true_theta=true_theta, count_by_stratum=count_by_stratum)
 
 
-def _chunks(design, bank, ctx, *, seed, true_theta, chunk_size, workers, executor):
+def _chunks(design, bank, ctx, *, seed, true_theta, chunk_size, workers, executor, count_by_stratum=None):
     """The chunks' plain arrays (:func:`run_chunk`) in examinee order, with their sizes."""
     total = true_theta.shape[0]
     starts = range(0, total, chunk_size)
     if executor is None and workers == 1:
         ctx = ctx if ctx is not None else build_context(design, bank)
         for s in starts:
-            yield run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size])
+            yield run_chunk(ctx, seed=seed, start=s, true_theta=true_theta[s : s + chunk_size],
+                            count_by_stratum=count_by_stratum)
         return
     own = executor is None
     if own:  # multiprocessing is imported only for a run on workers
@@ -155,7 +234,8 @@ def _chunks(design, bank, ctx, *, seed, true_theta, chunk_size, workers, executo
     window = max(2, 2 * workers)  # chunks in flight: bounds memory at a few chunks
 
     def submit(s):
-        return pool.submit(_worker_chunk, token, design, bank, seed, s, true_theta[s : s + chunk_size])
+        return pool.submit(_worker_chunk, token, design, bank, seed, s, true_theta[s : s + chunk_size],
+                           count_by_stratum)
 
     try:
         it = iter(starts)
@@ -181,7 +261,8 @@ def _count_withheld(withheld: np.ndarray, picked) -> None:
 def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, seed: int,
                               chunk_size: int = DEFAULT_CHUNK, ctx: TestContext | None = None,
                               progress: Callable[[int, int], None] | None = None, workers: int = 1,
-                              executor: Executor | None = None) -> MultidimensionalSimulationResult:
+                              executor: Executor | None = None,
+                              count_by_stratum=None) -> MultidimensionalSimulationResult:
     """Run ``design`` for examinees of true abilities ``true_theta`` (N, K).
 
     Parameters
@@ -200,6 +281,12 @@ def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, see
         with an executor, its number of workers (how finely the run is cut).
     executor : concurrent.futures.Executor, optional
         Runs the chunks (anything with ``submit`` returning futures).
+
+    count_by_stratum : float sequence, optional
+        Ascending cut points of strata of the composite ``[reporting] composite_weights``:
+        also count administrations and offers per (stratum of the true composite, stratum
+        of the estimate's composite at the pick) (:func:`run_chunk`; the calibration of
+        conditional exposure parameters needs them).
 
     The results are the same, bit for bit, for every chunk size, number of workers and
     executor.
@@ -234,17 +321,22 @@ def simulate_multidimensional(design: Design, bank: ItemBank, *, true_theta, see
     size = effective_chunk_size(total, int(chunk_size), int(workers))
     parts = []
     for part in _chunks(design, bank, ctx, seed=seed, true_theta=true_theta, chunk_size=size,
-                        workers=int(workers), executor=executor):
+                        workers=int(workers), executor=executor, count_by_stratum=count_by_stratum):
         parts.append(part)
         if progress is not None:
             progress(min(len(parts) * size, total), total)
     withheld = sum(p.pop("withheld") for p in parts)
+    pairs = {}
+    if count_by_stratum is not None:
+        for key in ("administered_by_stratum_pair", "offered_by_stratum_pair"):
+            pairs[key] = sum(p.pop(key) for p in parts)
     joined = {key: np.concatenate([p[key] for p in parts], axis=0) for key in parts[0]}
     items = joined["items"]
     administered = np.bincount(items[items >= 0], minlength=bank.n_items)
     return MultidimensionalSimulationResult(design=design, bank=bank, seed=int(seed),
                                             dimension_names=tuple(bank.dimension_names),
-                                            administered=administered, offered=administered + withheld, **joined)
+                                            administered=administered, offered=administered + withheld, **joined,
+                                            **pairs)
 
 
 def _precision(true, est, se) -> dict:
@@ -260,8 +352,8 @@ def composite_classification(result: MultidimensionalSimulationResult) -> list[d
     """:func:`adaptive_engine.simulation.metrics.classification` of the composite (empty without one).
 
     The true composite ``w . theta_true`` against the estimated one ``w . theta_hat``
-    classified by the point estimate against each cut score (as the final report does
-    when no SPRT decides).
+    classified by the point estimate against each cut score, or by the composite SPRT's
+    decision on the cut it tested where it decided (as the final report does).
     """
     design = result.design
     weights = design.reporting.composite_weights
@@ -271,7 +363,7 @@ def composite_classification(result: MultidimensionalSimulationResult) -> list[d
     w = np.asarray(weights, dtype=float)
     true_c = result.true_theta @ w
     est_c, _ = composite(w, result.theta, result.covariance)
-    return metrics.classification(true_c, classification_matrix(design, est_c), cuts)
+    return metrics.classification(true_c, classification_matrix(design, est_c, result.sprt_decision), cuts)
 
 
 def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposure_target: float | None = None) -> dict:
