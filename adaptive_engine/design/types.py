@@ -111,6 +111,20 @@ class SelectionCriterion(enum.StrEnum):
     MAX_COMPOSITE_INFORMATION = "max_composite_information"
 
 
+class KlWeighting(enum.StrEnum):
+    """How the Kullback-Leibler criterion of an ability vector weighs the divergence over
+    the abilities it is taken against (``[selection] kl_weighting``; the vector kernel only)."""
+
+    #: By the posterior on the ability grid (Veldkamp & van der Linden 2002): the vector
+    #: kernel's criterion when the key is left out.
+    POSTERIOR = "posterior"
+    #: Integrated over the box theta_d +- kl_interval / sqrt(n) on every dimension, by the
+    #: product of the one-dimensional criterion's quadrature on each axis (the KL index over
+    #: a region, Wang, Chang & Boughton 2011, from memory): at K = 1 the one-dimensional
+    #: criterion (Chang & Ying 1996).
+    INTERVAL = "interval"
+
+
 #: Criteria that exist only for an ability of several dimensions (K = 1 included).
 MULTIDIMENSIONAL_CRITERIA = frozenset({SelectionCriterion.D_OPTIMALITY, SelectionCriterion.A_OPTIMALITY,
                                        SelectionCriterion.MAX_COMPOSITE_INFORMATION})
@@ -298,6 +312,9 @@ class Selection(Checked):
     theta +- kl_interval / sqrt(n answered) (Chang & Ying 1996).
     ``strata``: number of a-strata for ``a_stratified`` (Chang & Ying 1999); with
     ``b_blocking`` the strata are formed within blocks of b (Chang, Qian & Ying 2001).
+    ``kl_weighting`` (``kullback_leibler`` on the vector kernel only; see
+    :class:`KlWeighting`): left out, the vector kernel weighs the divergence by the grid
+    posterior (``posterior``); ``interval`` integrates it over the box of ``kl_interval``.
     """
 
     criterion: SelectionCriterion = key(SelectionCriterion.MAX_FISHER_INFORMATION, "option",
@@ -305,9 +322,29 @@ class Selection(Checked):
     kl_interval: float = key(3.0, "number", between(0.01, 10.0))
     strata: int = key(4, "whole", between(1, MAX_COUNT))
     b_blocking: bool = key(True, "flag")
+    kl_weighting: KlWeighting | None = key(None, "option", option=KlWeighting)
 
     def where(self) -> str:
         return "[selection]"
+
+    def rules(self) -> list[Problem]:
+        if self.kl_weighting is not None and self.criterion is not SelectionCriterion.KULLBACK_LEIBLER:
+            return [Problem("[selection] kl_weighting",
+                            f"weighs the Kullback-Leibler criterion, but the criterion is {self.criterion.value}: "
+                            "leave the key out, or use criterion = \"kullback_leibler\"")]
+        return []
+
+    @property
+    def kl_over_interval(self) -> bool:
+        """Kullback-Leibler selection of an ability vector integrated over the box of
+        ``kl_interval`` (``kl_weighting = "interval"``): reads no grid posterior."""
+        return self.criterion is SelectionCriterion.KULLBACK_LEIBLER and self.kl_weighting is KlWeighting.INTERVAL
+
+    @property
+    def kl_over_posterior(self) -> bool:
+        """Kullback-Leibler selection weighted by the grid posterior (the vector kernel's
+        ``kullback_leibler`` unless ``kl_weighting = "interval"``)."""
+        return self.criterion is SelectionCriterion.KULLBACK_LEIBLER and self.kl_weighting is not KlWeighting.INTERVAL
 
 
 @attrs.frozen(kw_only=True)

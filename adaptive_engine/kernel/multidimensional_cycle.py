@@ -195,7 +195,8 @@ def keeps_grid_posterior(ctx) -> bool:
 
     Under the log form (decision rules 1 and 2) always.  Under the scaled form (version 3)
     only where something reads it: an EAP, MLE or WLE estimate (interim or final; the MLE
-    and the WLE start from the posterior mean), Kullback-Leibler selection or the ``se_reduction``
+    and the WLE start from the posterior mean), Kullback-Leibler selection weighted by the
+    posterior or the ``se_reduction``
     stop.  A design scored by MAP throughout that uses none of these never reads the grid:
     its final MAP starts from the interim MAP (:func:`final_estimates`), and its rows carry
     no grid at all.  Nor do the rows of a context without a grid (K > 3), whatever the
@@ -207,7 +208,7 @@ def keeps_grid_posterior(ctx) -> bool:
         return True
     design = ctx.design
     return (design.scoring.method is not ScoringMethod.MAP or design.final_method is not ScoringMethod.MAP
-            or design.selection.criterion is SelectionCriterion.KULLBACK_LEIBLER
+            or design.selection.kl_over_posterior
             or design.stopping.se_reduction is not None)
 
 

@@ -22,15 +22,20 @@ items given, Segall 1996) and ``I_j = J_j a_j a_j'`` a candidate's information (
 ``kullback_leibler``
     posterior-weighted Kullback-Leibler information, ``sum_g w_g KL(P_j(theta) || P_j(x_g))``
     over the grid points ``x_g`` with posterior weights ``w_g`` (Veldkamp & van der Linden
-    2002; Chang & Ying 1996 for the one-dimensional global information).
+    2002; Chang & Ying 1996 for the one-dimensional global information).  With ``[selection]
+    kl_weighting = "interval"`` instead the divergence integrated over the box
+    ``theta_d +- delta`` on every dimension, ``delta = kl_interval / sqrt(max(n scored, 1))``
+    (the KL index over a region, Wang, Chang & Boughton 2011, from memory), by the product
+    of the one-dimensional criterion's 11-point Gauss-Legendre rule on each axis
+    (:func:`_kullback_leibler_over_box`): at K = 1 the one-dimensional criterion itself.
 ``max_fisher_information`` (K = 1 only)
     ``J_j a_j^2``, the item's Fisher information at theta: the same order as
     ``d_optimality`` at K = 1.
 
 For K = 4 to 6 the kernel keeps no posterior grid: ``W`` is taken at the interim estimate
 as above (for a MAP design ``W^-1`` is the MAP covariance; for an EAP or MLE design it is
-computed at the EAP or MLE, as for K <= 3), the criteria above but ``kullback_leibler``
-(refused by the gate there) run unchanged.
+computed at the EAP or MLE, as for K <= 3), the criteria above but the posterior-weighted
+``kullback_leibler`` (refused by the gate there) run unchanged.
 """
 
 from __future__ import annotations
@@ -78,6 +83,8 @@ def criterion_values(ctx, state, rows, facts=None) -> np.ndarray:
     theta = state.theta[rows]  # (R, K)
     params = tab.params
     if crit is SelectionCriterion.KULLBACK_LEIBLER:
+        if ctx.design.selection.kl_over_interval:
+            return _kullback_leibler_over_box(ctx, state, rows)
         return _kullback_leibler(ctx, state, rows)
     j = _slope_information(tab, theta, by_model=ctx.posterior_form != "log")  # (R, n)
     a = params.slopes[None, :, :]  # (1, n, K)
@@ -406,3 +413,62 @@ def _kullback_leibler(ctx, state, rows) -> np.ndarray:
     # sum_g w_g log P_c(x_g) per row, item and category (sums along the grid axis only)
     expected = np.einsum("rg,ncg->rnc", w, tab.finite_log_table)
     return np.sum(p0 * (np.where(finite, log_p0, 0.0) - expected), axis=-1)
+
+
+#: Gauss-Legendre points of each axis of the Kullback-Leibler box: those of the
+#: one-dimensional criterion (kernel/selection.py ``_kl_values``).
+KL_AXIS_POINTS = 11
+#: Values of the Kullback-Leibler box computed in one pass, at most (rows x points x items x
+#: categories): the block of product points taken together shrinks with the batch and the bank.
+KL_BLOCK_VALUES = 1 << 20
+
+
+def kl_box_rule(k: int) -> tuple[np.ndarray, np.ndarray]:
+    """The product rule on ``[-1, 1]^k``: points (N, k) and weights (N,), N = 11^k, the
+    first axis varying slowest; each weight the product of the axes' weights in axis order."""
+    nodes, weights = np.polynomial.legendre.leggauss(KL_AXIS_POINTS)
+    grids = np.meshgrid(*([np.arange(KL_AXIS_POINTS)] * k), indexing="ij")
+    index = np.stack([g.reshape(-1) for g in grids], axis=1)  # (N, k)
+    product = weights[index[:, 0]]
+    for d in range(1, k):
+        product = product * weights[index[:, d]]
+    return nodes[index], product
+
+
+def _kullback_leibler_over_box(ctx, state, rows) -> np.ndarray:
+    """``int_box KL(P_j(theta) || P_j(x)) dx`` of every item for ``rows``, (R, n).
+
+    The box is ``theta_d +- delta`` on every dimension with ``delta = kl_interval /
+    sqrt(max(n scored, 1))`` (pretest items do not count), the integral the product of the
+    11-point Gauss-Legendre rule on each axis: ``delta^K sum_i W_i KL(x_i)`` over the 11^K
+    points ``x_i = theta + delta t_i``.  The divergence at a point sums the categories the
+    item has, ``p_c(theta) (log p_c(theta) - log p_c(x))``; the points are added one at a
+    time in the rule's order, as the one-dimensional criterion adds its 11 (K = 1: the same
+    operations, in the same order).  Every row on its own: elementwise, the category sum
+    along the last axis.
+    """
+    tab = ctx.multidimensional
+    params = tab.params
+    k = tab.k
+    theta = state.theta[rows]  # (R, K)
+    delta = ctx.design.selection.kl_interval / np.sqrt(np.maximum(state.n_scored[rows], 1))
+    points, weights = tab.cached("kl_box_rule", lambda: kl_box_rule(k))
+    log_p0 = md.log_probabilities(params, theta[:, None, :])  # (R, n, C)
+    finite = np.isfinite(log_p0)  # categories an item does not have contribute nothing
+    p0 = np.exp(log_p0)
+    own = np.where(finite, log_p0, 0.0)
+    volume = delta ** k  # (R,); delta itself at K = 1
+    r_n, n_items = rows.size, params.slopes.shape[0]
+    total = np.zeros((r_n, n_items))
+    size = max(1, min(points.shape[0], KL_BLOCK_VALUES // max(1, r_n * n_items * log_p0.shape[-1])))
+    for start in range(0, points.shape[0], size):
+        block = points[start:start + size]  # (M, K)
+        at = theta[:, None, :] + block[None, :, :] * delta[:, None, None]  # (R, M, K)
+        log_p1 = md.log_probabilities(params, at[:, :, None, :])  # (R, M, n, C)
+        terms = np.where(finite[:, None], p0[:, None] * (own[:, None] - np.where(finite[:, None], log_p1, 0.0)),
+                         0.0)
+        # (w_i delta^K) x the divergence, as the one-dimensional criterion weighs its points
+        terms = (weights[start:start + size][None, :] * volume[:, None])[:, :, None] * terms.sum(axis=-1)
+        for m in range(block.shape[0]):  # the points added one at a time, in the rule's order
+            total += terms[:, m]
+    return total

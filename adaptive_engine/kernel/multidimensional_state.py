@@ -200,7 +200,7 @@ def build_tables(design: Design, bank: ItemBank) -> MultidimensionalTables:
     rule = attrs.evolve(st, se=None if targets is None else 1.0, se_per_dimension=None)
     products = {(p, q): params.slopes[:, p] * params.slopes[:, q] for p in range(k) for q in range(p, k)}
     finite = None
-    if design.selection.criterion is SelectionCriterion.KULLBACK_LEIBLER:
+    if design.selection.kl_over_posterior:
         finite = np.ascontiguousarray(np.where(np.isfinite(log_table), log_table, 0.0).transpose(0, 2, 1))
     return MultidimensionalTables(
         k=k, dimension_names=tuple(bank.dimension_names), points=points, axis=axis, log_table=log_table,
