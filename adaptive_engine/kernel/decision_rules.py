@@ -84,10 +84,10 @@ from typing import Callable, Mapping
 import attrs
 
 from . import cycle
-from .prepared import build_context, with_log_posterior
+from .prepared import build_context, with_log_posterior, with_version_3_vector_rules
 
 #: The version of the decision rules of this kernel (a positive integer).
-DECISION_RULES_VERSION = 3
+DECISION_RULES_VERSION = 4
 
 
 @attrs.frozen(kw_only=True, eq=False)
@@ -115,9 +115,14 @@ class RuleSet:
     rebuild: Callable
 
 
+def _build_context_version_3(design, bank):
+    """A context under version 3: the multidimensional kernel's rules before version 4."""
+    return with_version_3_vector_rules(build_context(design, bank))
+
+
 def _build_context_version_2(design, bank):
-    """A context under version 2: the posterior as a log density."""
-    return with_log_posterior(build_context(design, bank))
+    """A context under version 2: version 3's, with the posterior as a log density."""
+    return with_log_posterior(_build_context_version_3(design, bank))
 
 
 def _build_context_version_1(design, bank):
@@ -132,6 +137,8 @@ RULE_SETS: Mapping[int, RuleSet] = MappingProxyType({
     1: RuleSet(version=1, build_context=_build_context_version_1, start=cycle.start, answer=cycle.answer,
                finish=cycle.finish, rebuild=cycle.rebuild),
     2: RuleSet(version=2, build_context=_build_context_version_2, start=cycle.start, answer=cycle.answer,
+               finish=cycle.finish, rebuild=cycle.rebuild),
+    3: RuleSet(version=3, build_context=_build_context_version_3, start=cycle.start, answer=cycle.answer,
                finish=cycle.finish, rebuild=cycle.rebuild),
     DECISION_RULES_VERSION: RuleSet(version=DECISION_RULES_VERSION, build_context=build_context,
                                     start=cycle.start, answer=cycle.answer, finish=cycle.finish,
