@@ -45,8 +45,9 @@ from make_golden import BANKS
 BANK_2D = load_bank(BANKS / "meridian_valley_operator_2d.json")
 
 
-def map_design(extra_scoring="", stopping="min_items = 12\nmax_items = 12", criterion="random"):
+def map_design(extra_scoring="", stopping="min_items = 12\nmax_items = 12", criterion="random", opening=""):
     return parse_design(f"""
+{opening}
 [scoring]
 method = "map"
 prior_mean = [0.0, 0.0]
@@ -335,3 +336,21 @@ def test_a_live_session_pinned_to_version_3_keeps_the_expected_covariance():
         est = vector.final_estimates(ctx, state, np.array([0]))
         np.testing.assert_allclose(res["covariance"], est.covariance[0], rtol=1e-12)
     assert np.max(np.abs(np.array(r3["covariance"]) - np.array(r4["covariance"]))) > 1e-4
+
+
+def test_an_m2pl_bank_decides_bit_for_bit_as_under_version_3():
+    """On M2PL items the observed information is the expected one (the canonical logistic
+    link: -d2 log P_x / d eta2 = D^2 P (1 - P) for either answer), so a MAP design with
+    D-optimality on an M2PL bank keeps version 3's items, estimates and covariances to the
+    last bit."""
+    rng = np.random.default_rng(21)
+    records = [{"item_id": f"MV{i:03d}", "model": "M2PL", "a1": float(rng.uniform(0.3, 1.8)),
+                "a2": float(rng.uniform(0.0, 1.5)), "intercept": float(rng.normal()), "area": "treatment",
+                "status": "operational"} for i in range(60)]
+    bank = bank_from_records(records, scaling=1.702)
+    design = map_design(criterion="d_optimality", stopping="min_items = 3\nmax_items = 25\nse = 0.4",
+                        opening="[opening]\nrandom_theta = [-2.0, 2.0]")
+    states = [drive(decision_rules.RULE_SETS[v].build_context(design, bank), n=10, seed=8) for v in (3, 4)]
+    for field in ("items", "responses", "theta", "covariance", "se", "stop_reason"):
+        np.testing.assert_array_equal(getattr(states[0], field), getattr(states[1], field))
+    assert len(set(states[0].n_scored.tolist())) > 1  # the SE rule stopped tests at several lengths
