@@ -542,11 +542,10 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
     (``at_lower_bound``, ``at_upper_bound``: :mod:`.multidimensional_guards`), not replaced.
     """
     from ..design.types import ExtremePatternMethod
+    from .multidimensional_guards import kept_at_bound
 
     tab = ctx.multidimensional
     sc = ctx.design.scoring
-    from .multidimensional_guards import kept_at_bound
-
     theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
     fb = np.flatnonzero((status != "converged") & ~kept_at_bound(ctx, status))
     if fb.size == 0:
