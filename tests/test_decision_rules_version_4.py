@@ -300,6 +300,7 @@ theta = 0.2
     assert all(len(c) == 1 and c[0]["cut"] == "licence" and c[0]["cut_theta"] == 0.2 for c in got[4])
 
 
+@pytest.mark.long_running
 def test_a_live_session_pinned_to_version_3_keeps_the_expected_covariance():
     """A MAP session of the two-dimensional exam started before the bump (its version set to 3)
     answers under version 3's rules: the same items and mode as under version 4, the
