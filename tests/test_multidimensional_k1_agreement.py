@@ -324,22 +324,11 @@ def compare_reports(one_reports, many_reports, *, weights: bool):
 
 
 #: Where the vector kernel at K = 1 is not the one-dimensional engine (strict: the day one
-#: of them agrees, the mark must go).  None of these is K = 1 alone: each is a rule of the
-#: vector kernel for every K, and changing it would change K >= 2 decisions.
-OBSERVED_SE = ("MAP standard error: the one-dimensional MAP (irt/estimation.py map_estimate) and the "
-               "vector library MAP (irt/multidimensional_estimation.py) take the observed curvature of "
-               "the log posterior, the vector kernel's MAP (kernel/multidimensional_cycle.py "
-               "map_estimate) (P + expected information)^-1; equal for 2PL items, not for 3PL or GRM "
-               "items (the estimates agree to 1e-9)")
-MLE_AT_BOUND = ("3PL MLE of a mixed pattern whose likelihood rises towards the grid's edge: the "
-                "one-dimensional MLE reports the bound (SE capped), the vector MLE takes the "
-                "extreme_pattern_method stand-in (status at_lower_bound/at_upper_bound)")
-KNOWN = {
-    **{(name, kind): OBSERVED_SE for name in ("map", "eap_then_map", "map_d_optimality", "map_a_optimality")
-       for kind in ("3pl", "grm")},
-    ("mle_map_fallback", "grm"): OBSERVED_SE,
-    **{(name, "3pl"): MLE_AT_BOUND for name in ("mle_eap_fallback", "mle_map_fallback", "mle_fixed_step")},
-}
+#: of them agrees, the mark must go).  None remain: decision rules version 4 made the vector
+#: kernel's MAP covariance the observed one, the MLE of a mixed pattern at the grid's edge the
+#: bound, and the estimate statuses the one-dimensional engine's (kernel/multidimensional_guards.py),
+#: and kullback_leibler runs with kl_weighting = "interval" on the vector side.
+KNOWN: dict = {}
 
 
 def matrix():
@@ -414,13 +403,10 @@ def test_k1_status_cases_have_extreme_patterns(case):
     compare_reports(a.reports, b.reports, weights=False)
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "estimate_status of an EAP or MAP final estimate: the one-dimensional report says all_lowest / "
-    "all_highest / prior_dominated (irt/estimation.py eap_status, map_estimate), the vector kernel's "
-    "report converged (kernel/multidimensional_cycle.py final_estimates), for every K; the vector "
-    "library scoring (score_responses_md) does give the pattern statuses"))
 @pytest.mark.parametrize("case", STATUS_CASES, ids=[c.name for c in STATUS_CASES])
 def test_k1_estimate_status(case):
+    """all_lowest / all_highest / prior_dominated as the one-dimensional report gives them
+    (irt/estimation.py eap_status, map_estimate), from decision rules version 4 on."""
     _, a, b = run_both(case, "2pl")
     assert [r["estimate_status"] for r in a.reports] == [r["estimate_status"] for r in b.reports]
 

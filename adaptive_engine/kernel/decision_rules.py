@@ -74,6 +74,37 @@ Versions:
      column by column; the MLE's log-likelihood may differ from the model's only in the
      sign of a zero term), so the shipped designs decide as before; versions 1 and 2 run
      the column-by-column code unchanged.
+4. The multidimensional kernel takes the one-dimensional engine's rules where they
+   differed (:mod:`.multidimensional_guards` gives them in full), for every K, so that at
+   K = 1 it decides as the one-dimensional engine does
+   (``tests/test_multidimensional_k1_agreement.py``):
+
+   * the MAP covariance (interim and final, every K, and the MLE's ``map`` stand-in) is
+     the inverse of minus the Hessian of the log posterior at the mode (the observed
+     information), not ``(P + I(theta))^-1``; the one-dimensional SE guard (``1 /
+     sqrt(h)`` where the curvature ``h`` is positive and the SE below the range width
+     ``w``, else ``w``) acts per eigen-direction where ``H - I / w^2`` is not positive
+     definite.  On a bank of M2PL items the two informations are the same (the canonical
+     link) and the covariance is version 3's bit for bit unless the prior has a direction
+     of SD above ``w``; D- and A-optimality keep reading ``(P + I(theta))^-1``
+     (recomputed where the state's covariance is no longer it);
+   * the final report's ``estimate_status`` of an EAP or MAP estimate is ``all_lowest`` /
+     ``all_highest`` / ``prior_dominated`` where those hold, as the vector library
+     scoring and the one-dimensional report give them (version 3: ``converged``);
+   * an MLE of a mixed pattern at the box's edge (``at_lower_bound``, ``at_upper_bound``)
+     keeps the box point where the projected Newton iteration ends, its covariance
+     ``I(theta)^-1`` capped as above, instead of the ``extreme_pattern_method`` stand-in;
+     on banks with M3PL or MGRM items the MLE's Newton matrix is the observed information
+     where it is positive definite (the one-dimensional MLE's rule; Fisher scoring
+     elsewhere), which changes its path (the estimate within its tolerance) and lets it
+     converge where Fisher scoring ran out of iterations (``not_converged``, the stand-in);
+   * a K = 1 report without composite weights classifies the one dimension by the cut
+     scores (version 3: no classifications).
+
+   The shipped designs decide as under version 3 (their golden sequences are the same;
+   both two-dimensional designs score by EAP).  Version 3 stays installed: its contexts
+   have ``vector_rules_as_one_dimensional`` False
+   (:func:`.prepared.with_version_3_vector_rules`), as have those of versions 1 and 2.
 """
 
 from __future__ import annotations
@@ -84,10 +115,10 @@ from typing import Callable, Mapping
 import attrs
 
 from . import cycle
-from .prepared import build_context, with_log_posterior
+from .prepared import build_context, with_log_posterior, with_version_3_vector_rules
 
 #: The version of the decision rules of this kernel (a positive integer).
-DECISION_RULES_VERSION = 3
+DECISION_RULES_VERSION = 4
 
 
 @attrs.frozen(kw_only=True, eq=False)
@@ -115,9 +146,14 @@ class RuleSet:
     rebuild: Callable
 
 
+def _build_context_version_3(design, bank):
+    """A context under version 3: the multidimensional kernel's rules before version 4."""
+    return with_version_3_vector_rules(build_context(design, bank))
+
+
 def _build_context_version_2(design, bank):
-    """A context under version 2: the posterior as a log density."""
-    return with_log_posterior(build_context(design, bank))
+    """A context under version 2: version 3's, with the posterior as a log density."""
+    return with_log_posterior(_build_context_version_3(design, bank))
 
 
 def _build_context_version_1(design, bank):
@@ -132,6 +168,8 @@ RULE_SETS: Mapping[int, RuleSet] = MappingProxyType({
     1: RuleSet(version=1, build_context=_build_context_version_1, start=cycle.start, answer=cycle.answer,
                finish=cycle.finish, rebuild=cycle.rebuild),
     2: RuleSet(version=2, build_context=_build_context_version_2, start=cycle.start, answer=cycle.answer,
+               finish=cycle.finish, rebuild=cycle.rebuild),
+    3: RuleSet(version=3, build_context=_build_context_version_3, start=cycle.start, answer=cycle.answer,
                finish=cycle.finish, rebuild=cycle.rebuild),
     DECISION_RULES_VERSION: RuleSet(version=DECISION_RULES_VERSION, build_context=build_context,
                                     start=cycle.start, answer=cycle.answer, finish=cycle.finish,

@@ -180,8 +180,11 @@ def _known_facts(ctx, state, rows):
     only in the sign of an exact zero, where another row of the batch reached a column this
     row did not; no criterion value or pick can tell them apart).  None otherwise.
     """
+    from .multidimensional_guards import expected_covariance_kept
+
     if (ctx.design.scoring.method is ScoringMethod.MAP
-            and ctx.design.selection.criterion in (SelectionCriterion.D_OPTIMALITY, SelectionCriterion.A_OPTIMALITY)):
+            and ctx.design.selection.criterion in (SelectionCriterion.D_OPTIMALITY, SelectionCriterion.A_OPTIMALITY)
+            and expected_covariance_kept(ctx, state, rows)):  # version 4: the observed covariance, unless equal
         return state.covariance[rows]
     return None
 
@@ -225,7 +228,21 @@ def map_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     at the point reached.  Under the scaled form (version 3, :func:`_map_estimate_scaled`)
     the step below the tolerance is not taken: the estimate is the point whose information
     has just been computed, and that information gives the covariance.
+
+    Under decision rules version 4 (``ctx.vector_rules_as_one_dimensional``) the covariance
+    is the observed one, guarded as the one-dimensional MAP's SE is
+    (:func:`.multidimensional_guards.observed_map_covariance`); the estimate is the same.
     """
+    if ctx.vector_rules_as_one_dimensional:
+        from .multidimensional_guards import observed_map_covariance
+
+        theta, cov, converged = _map_estimate_by_form(ctx, state, rows, start_theta)
+        return theta, observed_map_covariance(ctx, state, rows, theta, cov), converged
+    return _map_estimate_by_form(ctx, state, rows, start_theta)
+
+
+def _map_estimate_by_form(ctx, state, rows, start_theta):
+    """:func:`map_estimate` with the covariance ``(P + I(theta_hat))^-1`` (decision rules 1 to 3)."""
     if ctx.posterior_form != "log":
         return _map_estimate_scaled(ctx, state, rows, start_theta)
     tab = ctx.multidimensional
@@ -401,7 +418,9 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
 
     Maximises ``sum_i log P(x_i | theta)`` over the grid's box ``[grid_min, grid_max]^K`` by
     Newton-Raphson with the test's Fisher information matrix ``I(theta) = sum_i J_i a_i
-    a_i'`` (Fisher scoring: exact Newton for M2PL items), projected on the box: a
+    a_i'`` (Fisher scoring: exact Newton for M2PL items; under decision rules version 4 on
+    a bank with M3PL or MGRM items the observed information where it is positive definite,
+    as the one-dimensional MLE steps, :func:`.multidimensional_guards.newton_matrix`), projected on the box: a
     coordinate at a bound whose gradient points outward is held there and the step solves
     the free coordinates' block; a step that does not raise the log-likelihood is halved.
     The covariance is ``I(theta_hat)^-1``.
@@ -414,7 +433,9 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     information (``no_information``: a singular information matrix, e.g. no item of one
     dimension answered yet) or where the iteration does not settle (``not_converged``);
     the estimate and covariance of those rows are NaN (:func:`mle_or_fallback` puts the
-    design's stand-in there).
+    design's stand-in there).  Under decision rules version 4 the rows ``at_lower_bound`` /
+    ``at_upper_bound`` keep the box point the iteration ended on, with the covariance
+    ``I(theta)^-1`` capped as the one-dimensional SE is (:mod:`.multidimensional_guards`).
     """
     tab = ctx.multidimensional
     sc = ctx.design.scoring
@@ -442,6 +463,9 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
         def log_lik(at, x):
             return answer_log_likelihood(tab, all_given.rows(at).reached(), x)
 
+    from .multidimensional_guards import newton_matrix
+
+    newton = newton_matrix(ctx)
     active = np.flatnonzero(status == "")
     held = np.zeros((r_n, k), dtype=bool)
     for _ in range(MLE_ITERATIONS):
@@ -457,6 +481,8 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
         diag = np.prod(np.diagonal(mat, axis1=-2, axis2=-1), axis=-1)
         singular = ~(determinant(mat) > SINGULAR_SHARE * diag)
         status[active[singular]] = "no_information"
+        if newton is not None:  # version 4: the observed curvature where it is positive definite
+            mat = np.where(both, newton(items[active], resp[active], x, info), eye)
         step = matrix_vector(inverse(np.where(singular[:, None, None], eye, mat)), np.where(free, grad, 0.0))
         before = log_lik(active, x)
         tol = 1e-13 * (1.0 + np.abs(before))
@@ -493,6 +519,14 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     if mixed.size:
         inv = inverse(np.where(singular[:, None, None], eye, info))
         cov[mixed] = np.where(ok[mixed][:, None, None], inv, np.nan)
+        # version 4: the box point the iteration ends on, as the one-dimensional MLE
+        # reports its bound (multidimensional_guards)
+        from .multidimensional_guards import guarded_covariance, kept_at_bound
+
+        edge = kept_at_bound(ctx, status[mixed])
+        if edge.any():
+            cov[mixed[edge]] = guarded_covariance(ctx, info[edge])
+            ok = ok | kept_at_bound(ctx, status)
     theta = np.where(ok[:, None], theta, np.nan)
     return theta, cov, status
 
@@ -509,7 +543,8 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
     category, down after one in its lowest, not at all otherwise) on each dimension the
     item measures (the sign of its slope there), with the posterior covariance.  For the
     final estimate (``final``) ``fixed_step`` keeps the interim estimate and covariance the
-    test ended on.
+    test ended on.  Under decision rules version 4 an MLE at the box's edge is kept
+    (``at_lower_bound``, ``at_upper_bound``: :mod:`.multidimensional_guards`), not replaced.
     """
     theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
     return _with_stand_in(ctx, state, rows, theta, mle_cov, status, status != "converged", mean, cov, final)
@@ -519,11 +554,13 @@ def _with_stand_in(ctx, state, rows, theta, est_cov, status, missing, mean, cov,
     """``theta``, ``est_cov`` with the design's stand-in (``[scoring] extreme_pattern_method``,
     :func:`mle_or_fallback`) in the rows where ``missing``; (theta, covariance, status)."""
     from ..design.types import ExtremePatternMethod
+    from .multidimensional_guards import kept_at_bound
 
     tab = ctx.multidimensional
     sc = ctx.design.scoring
     mle_cov = est_cov
-    fb = np.flatnonzero(missing)
+    # under decision rules version 4 an MLE at the box's edge is kept (multidimensional_guards)
+    fb = np.flatnonzero(missing & ~kept_at_bound(ctx, status))
     if fb.size == 0:
         return theta, mle_cov, status
     how = sc.extreme_pattern_method
@@ -820,6 +857,10 @@ def _with_sprt_decision(ctx, state, rows, est: "MultidimensionalFinalEstimates")
 def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> MultidimensionalFinalEstimates:
     """Final estimates of ``rows`` by the design's final method (EAP on the grid, MAP, MLE or WLE).
 
+    Under decision rules version 4 an EAP or MAP estimate's status is the vector library
+    scoring's (:func:`.multidimensional_guards.final_statuses`: ``all_lowest``,
+    ``all_highest``, ``prior_dominated``; versions 1 to 3 say ``converged``).
+
     ``interim_current``: the caller knows that every answer of ``rows`` went through
     :func:`answer` (a simulated chunk), so that for an EAP design (interim and final) the
     interim estimate and covariance of a row that took an answer are the posterior moments
@@ -832,7 +873,12 @@ def final_estimates(ctx, state, rows, *, interim_current: bool = False) -> Multi
     the final EAP of a row that took an answer is its interim EAP.
     """
     rows = np.asarray(rows, dtype=np.int64)
-    return _with_sprt_decision(ctx, state, rows, _final_estimates(ctx, state, rows, interim_current))
+    est = _with_sprt_decision(ctx, state, rows, _final_estimates(ctx, state, rows, interim_current))
+    if not ctx.vector_rules_as_one_dimensional:
+        return est
+    from .multidimensional_guards import final_statuses
+
+    return attrs.evolve(est, status=final_statuses(ctx, state, rows, est.theta, est.se, est.status))
 
 
 def _final_estimates(ctx, state, rows, interim_current) -> MultidimensionalFinalEstimates:
@@ -900,9 +946,10 @@ def reports(ctx, est, *, n_scored, n_pretest, stop_reason) -> list[dict]:
     design = ctx.design
     plain = attrs.evolve(design, reporting=attrs.evolve(design.reporting, cut_scores=()),
                          stopping=attrs.evolve(design.stopping, confidence_interval=None))
-    if tab.k == 1 and tab.composite_weights is None:
+    if tab.k == 1 and tab.composite_weights is None and ctx.vector_rules_as_one_dimensional:
         # K = 1 without composite weights: the cut scores classify the one dimension, as the
-        # one-dimensional engine's report does (K > 1 needs the weights: the gate)
+        # one-dimensional engine's report does (K > 1 needs the weights: the gate); decision
+        # rules version 4 (versions 1 to 3: no classifications)
         plain = attrs.evolve(plain, reporting=design.reporting)
     r = est.theta.shape[0]
     common = dict(status=est.status, n_scored=n_scored, n_pretest=n_pretest, stop_reason=stop_reason,

@@ -247,6 +247,13 @@ class TestContext:
     #: ``"log"``, the log density (versions 1 and 2; :func:`with_log_posterior`).
     #: :mod:`adaptive_engine.irt.posterior` describes both.
     posterior_form: str = attrs.field(default="scaled", validator=attrs.validators.in_(("log", "scaled")))
+    #: Whether the multidimensional kernel decides as the one-dimensional engine does where
+    #: decision rules version 4 made it so (the observed MAP covariance, the estimate
+    #: statuses of the final report, the MLE at the box's edge, the K = 1 report's
+    #: classifications without composite weights; :mod:`.decision_rules` lists them).
+    #: False: versions 1 to 3 (:func:`with_version_3_vector_rules`).  The one-dimensional
+    #: kernel does not read it.
+    vector_rules_as_one_dimensional: bool = True
 
     @property
     def n_items(self) -> int:
@@ -379,6 +386,13 @@ def with_log_posterior(ctx: TestContext) -> TestContext:
     object, so caches kept per context start afresh.
     """
     return attrs.evolve(ctx, posterior_form="log")
+
+
+def with_version_3_vector_rules(ctx: TestContext) -> TestContext:
+    """``ctx`` with the multidimensional kernel's rules of decision rules versions 1 to 3
+    (``vector_rules_as_one_dimensional`` False); everything else shared, as in
+    :func:`with_log_posterior`."""
+    return attrs.evolve(ctx, vector_rules_as_one_dimensional=False)
 
 
 #: Items per chunk when building the log-probability table (bounds the temporaries).
