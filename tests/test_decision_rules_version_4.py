@@ -210,52 +210,54 @@ def _edge_bank():
 
 
 def test_mle_of_a_mixed_pattern_at_the_edge_keeps_the_box_point():
-    """All right on dimension 1's items, mixed on dimension 2's: no interior maximum.  Version
-    4 reports the box point: theta_1 at the grid's top, theta_2 the log-likelihood's maximum
-    given it (scipy), each SE at most the range's width; version 3 the EAP stand-in."""
+    """Answers mixed on both dimensions, but on dimension 1 wrong on the easier items and right
+    on the hardest only (explained by the lower asymptote): the likelihood rises towards the
+    grid's bottom on dimension 1, no interior maximum.  Version 4 reports the box point:
+    theta_1 at the grid's bottom, theta_2 the log-likelihood's maximum given it (scipy),
+    each SE at most the range's width; version 3 leaves it to the stand-in (NaN here).  A
+    dimension whose answers all lie at one end keeps the stand-in under both."""
+    from adaptive_engine.kernel.multidimensional_state import MultidimensionalState
+
     bank = _edge_bank()
     design = parse_design(_fixed_answers_text("mle").replace("max_items = 6", "max_items = 10")
                           .replace("min_items = 6", "min_items = 10"))
-
-    def answer(item, k, n_categories):
-        return 1 if item < 8 else (item % 2)
-
+    patterns = [([0, 1, 2, 3, 7, 8, 9, 14, 15], [0, 0, 0, 0, 1, 1, 1, 0, 0]),
+                ([0, 1, 6, 7, 8, 15, 10], [0, 0, 1, 1, 1, 0, 1]),
+                ([0, 1, 2, 3, 7, 8, 15], [0, 0, 0, 0, 1, 1, 1])]  # dimension 2 all right
     out = {}
     for version in (3, 4):
         ctx = decision_rules.RULE_SETS[version].build_context(design, bank)
-        state = drive(ctx, n=6, seed=9, answer=answer)
-        rows = np.arange(6)
-        est = vector.final_estimates(ctx, state, rows)
-        out[version] = (state, est)
-    state, est = out[4]
-    items, resp = state.scored_items(np.arange(6))
+        state = MultidimensionalState.empty_vector(ctx, randomness.stream_key(np.arange(1, len(patterns) + 1)))
+        for r, (items, answers) in enumerate(patterns):
+            n = len(items)
+            state.items[r, :n], state.responses[r, :n], state.scored[r, :n] = items, answers, True
+            state.n_given[r] = state.n_scored[r] = n
+        out[version] = vector.mle_estimate(ctx, state, np.arange(len(patterns)), np.zeros((len(patterns), 2)))
+    theta, cov, status = out[4]
+    assert list(status) == ["at_lower_bound", "at_lower_bound", "at_upper_bound"]
+    assert list(out[3][2]) == list(status) and np.all(np.isnan(out[3][0]))
+    assert np.all(np.isnan(theta[2]))  # not mixed on dimension 2: the stand-in's
     params = bank.multidimensional_params
-    checked = 0
-    for r in range(6):
-        given = items[r] >= 0
-        it, rs = items[r][given], resp[r][given]
-        dim2 = it >= 8
-        if not (dim2.any() and 0 < rs[dim2].sum() < dim2.sum()):
-            continue  # dimension 2's answers not mixed: another case
-        assert est.status[r] == "at_upper_bound"
-        assert est.theta[r, 0] == 4.0
-        best = minimize_scalar(lambda t: -log_posterior(params, it, rs, np.array([4.0, t]), np.zeros(2),
+    for r in (0, 1):
+        it, rs = np.array(patterns[r][0]), np.array(patterns[r][1])
+        assert theta[r, 0] == -4.0
+        # scipy: the bounded optimum of the log-likelihood sits on the bottom edge
+        whole = minimize_scalar(lambda t: -log_posterior(params, it, rs, np.array([t, theta[r, 1]]), np.zeros(2),
+                                                         np.zeros((2, 2))), bounds=(-4.0, 4.0), method="bounded",
+                                options={"xatol": 1e-10})
+        assert whole.x < -3.99
+        best = minimize_scalar(lambda t: -log_posterior(params, it, rs, np.array([-4.0, t]), np.zeros(2),
                                                         np.zeros((2, 2))), bounds=(-4.0, 4.0), method="bounded",
                                options={"xatol": 1e-10})
-        assert abs(est.theta[r, 1] - best.x) < 1e-5
-        assert np.all(est.se[r] <= 8.0) and est.se[r, 0] > 0
+        assert abs(theta[r, 1] - best.x) < 1e-5
         # the covariance: the test information (Fisher) at the point, capped (numpy's eigh)
         sub = params.take(it)
-        j = md.slope_information(sub, np.broadcast_to(est.theta[r], (it.size, 2)))
+        j = md.slope_information(sub, np.broadcast_to(theta[r], (it.size, 2)))
         info = np.einsum("l,lp,lq->pq", j, sub.slopes, sub.slopes)
         lam, vec = np.linalg.eigh(info)
-        np.testing.assert_allclose(est.covariance[r], vec @ np.diag(1 / np.maximum(lam, 1 / 64)) @ vec.T,
+        np.testing.assert_allclose(cov[r], vec @ np.diag(1 / np.maximum(lam, 1 / 64)) @ vec.T,
                                    rtol=1e-9, atol=1e-12)
-        # version 3: the EAP stand-in, inside the box
-        s3, e3 = out[3]
-        assert e3.status[r] == "at_upper_bound" and e3.theta[r, 0] < 4.0
-        checked += 1
-    assert checked >= 2
+        assert np.all(np.sqrt(np.diagonal(cov[r])) <= 8.0)
 
 
 def _fixed_answers_text(method):

@@ -523,10 +523,10 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
         # reports its bound (multidimensional_guards)
         from .multidimensional_guards import guarded_covariance, kept_at_bound
 
-        edge = kept_at_bound(ctx, status[mixed])
+        edge = kept_at_bound(ctx, status[mixed], items[mixed], resp[mixed])
         if edge.any():
             cov[mixed[edge]] = guarded_covariance(ctx, info[edge])
-            ok = ok | kept_at_bound(ctx, status)
+            ok[mixed[edge]] = True
     theta = np.where(ok[:, None], theta, np.nan)
     return theta, cov, status
 
@@ -560,7 +560,7 @@ def _with_stand_in(ctx, state, rows, theta, est_cov, status, missing, mean, cov,
     sc = ctx.design.scoring
     mle_cov = est_cov
     # under decision rules version 4 an MLE at the box's edge is kept (multidimensional_guards)
-    fb = np.flatnonzero(missing & ~kept_at_bound(ctx, status))
+    fb = np.flatnonzero(missing & ~kept_at_bound(ctx, status, *state.scored_items(rows)))
     if fb.size == 0:
         return theta, mle_cov, status
     how = sc.extreme_pattern_method

@@ -35,9 +35,10 @@ K = 1 it gives the one-dimensional engine's decisions, and the same rules hold f
   every dimension's estimate lies within :data:`~adaptive_engine.irt.estimation.PRIOR_DOMINATED_SHARE`
   of its prior SD of the prior mean and its SE within the same share of the prior SD,
   else ``converged`` (MAP: ``not_converged`` where the iteration did not settle).
-* **The MLE at the box's edge** (:func:`kept_at_bound`): a mixed pattern (not all lowest,
-  not all highest) whose likelihood rises towards the edge of the grid's box on some
-  dimension has no interior maximum.  The one-dimensional engine reports the bound, its SE
+* **The MLE at the box's edge** (:func:`kept_at_bound`): a pattern mixed on every
+  dimension (among the items loading on each dimension, one answer above its lowest
+  category and one below its highest; at K = 1 a mixed pattern) whose likelihood rises
+  towards the edge of the grid's box on some dimension has no interior maximum.  The one-dimensional engine reports the bound, its SE
   ``1 / sqrt(I)`` capped at ``w``; the vector kernel now reports the point of the box where
   the projected Newton iteration of :func:`.multidimensional_cycle.mle_estimate` ends (the
   coordinates the likelihood pushes outward held at their bounds, the others at the
@@ -196,8 +197,24 @@ def newton_matrix(ctx):
 KEPT_AT_BOUND = ("at_lower_bound", "at_upper_bound")
 
 
-def kept_at_bound(ctx, status: np.ndarray) -> np.ndarray:
-    """Rows (R,) of an MLE whose estimate is kept at the box's edge (version 4), bool."""
+def every_dimension_mixed(tab, items, resp) -> np.ndarray:
+    """Rows (R,) whose scored answers ``items``, ``resp`` (R, W; -1 where none) are mixed on
+    every dimension: among the items that load on it (a slope other than 0), one answered
+    above its lowest category and one below its highest.  At K = 1 a mixed pattern."""
+    given = items >= 0
+    at = np.where(given, items, 0)
+    top = tab.params.n_categories[at] - 1
+    loads = (tab.params.slopes[at] != 0) & given[..., None]
+    above = np.any(loads & (resp > 0)[..., None], axis=1)
+    below = np.any(loads & (resp < top)[..., None], axis=1)
+    return np.all(above & below, axis=1)
+
+
+def kept_at_bound(ctx, status: np.ndarray, items, resp) -> np.ndarray:
+    """Rows (R,) of an MLE whose estimate is kept at the box's edge (version 4), bool: at a
+    bound, with answers mixed on every dimension (:func:`every_dimension_mixed`; a dimension
+    whose answers all lie at one end keeps the stand-in, as an unmixed pattern does in one
+    dimension)."""
     if not ctx.vector_rules_as_one_dimensional:
         return np.zeros(status.shape, dtype=bool)
-    return np.isin(status, KEPT_AT_BOUND)
+    return np.isin(status, KEPT_AT_BOUND) & every_dimension_mixed(ctx.multidimensional, items, resp)
