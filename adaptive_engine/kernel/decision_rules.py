@@ -92,7 +92,8 @@ Versions:
      ``all_highest`` / ``prior_dominated`` where those hold, as the vector library
      scoring and the one-dimensional report give them (version 3: ``converged``);
    * an MLE of a pattern mixed on every dimension at the box's edge (``at_lower_bound``,
-     ``at_upper_bound``; :func:`.multidimensional_guards.every_dimension_mixed`) keeps the box point where the projected Newton iteration ends, its covariance
+     ``at_upper_bound``; :func:`.multidimensional_guards.every_dimension_mixed`) keeps
+     the box point where the projected Newton iteration ends, its covariance
      ``I(theta)^-1`` capped as above, instead of the ``extreme_pattern_method`` stand-in;
      on banks with M3PL or MGRM items the MLE's Newton matrix is the observed information
      where it is positive definite (the one-dimensional MLE's rule; Fisher scoring

@@ -38,7 +38,8 @@ K = 1 it gives the one-dimensional engine's decisions, and the same rules hold f
 * **The MLE at the box's edge** (:func:`kept_at_bound`): a pattern mixed on every
   dimension (among the items loading on each dimension, one answer above its lowest
   category and one below its highest; at K = 1 a mixed pattern) whose likelihood rises
-  towards the edge of the grid's box on some dimension has no interior maximum.  The one-dimensional engine reports the bound, its SE
+  towards the edge of the grid's box on some dimension has no interior maximum.  The
+  one-dimensional engine reports the bound, its SE
   ``1 / sqrt(I)`` capped at ``w``; the vector kernel now reports the point of the box where
   the projected Newton iteration of :func:`.multidimensional_cycle.mle_estimate` ends (the
   coordinates the likelihood pushes outward held at their bounds, the others at the
