@@ -137,8 +137,9 @@ def _full_route_pick(ctx, state, rows, ok):
 
 
 @pytest.mark.parametrize("k, n_items, form", [(2, 60, "scaled"), (2, 300, "scaled"), (3, 150, "scaled"),
+                                              (2, 300, "scaled-exp"), (3, 150, "scaled-exp"),
                                               (2, 300, "log"), (3, 150, "log")])
-def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items, form):
+def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items, form, monkeypatch):
     """The single-precision screening only decides which items get a double-precision value:
     the pick, its value (bit for bit) and the ties are those of every item in double
     precision; the pick is also the largest det(W + I_j) by numpy (Segall 1996)."""
@@ -152,7 +153,12 @@ def test_screened_d_optimal_pick_is_the_double_precision_pick(k, n_items, form):
     slopes[-12:], intercepts[-12:] = slopes[:12], intercepts[:12]
     bank = m2pl_bank(slopes, intercepts)
     ctx = build_context(parse_design(design_text(k=k, se="")), bank)
-    ctx = with_log_posterior(ctx) if form == "log" else ctx  # the screening by exp (1, 2) or cosh (3)
+    ctx = with_log_posterior(ctx) if form == "log" else ctx  # the screening by exp (1, 2) or as below (3)
+    # version 3 screens by cosh where numpy vectorises it and by exp elsewhere: both here
+    from adaptive_engine.kernel import multidimensional_selection as sel
+
+    monkeypatch.setattr(sel, "SCALED_SCREENING",
+                        sel._screened_values_by_exp if form == "scaled-exp" else sel._screened_values_by_cosh)
     state = _answered_state(ctx, n_answers=6, rows=40)
     rows = np.arange(state.size)
     # abilities from ordinary to far out (values near single precision's underflow)

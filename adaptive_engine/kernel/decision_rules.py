@@ -63,8 +63,9 @@ Versions:
      batch does (version 2 let numpy sum a single row pairwise once it had 8 or more
      answers, so a live MAP session could differ in the last bits from the same examinee
      simulated in a batch);
-   * D-optimality's single-precision screening uses ``cosh`` (the double-precision values
-     still decide the pick);
+   * D-optimality's single-precision screening uses ``cosh`` where numpy vectorises it
+     (AVX-512) and ``exp`` elsewhere (the double-precision values still decide the pick, so
+     both give the same items);
    * KL and SE-reduction weights are the row divided by its sum;
    * on banks with M3PL or MGRM items the MAP and MLE gather the answers' parameters once
      per estimate and compute every answer's information, score and log-likelihood at

@@ -231,7 +231,7 @@ def best_items(ctx, state, rows, ok, facts):
     ties = np.zeros(r_n, dtype=np.int64)
     if r_n == 0:
         return item, value, ties
-    screened = _screened_values if ctx.posterior_form == "log" else _screened_values_by_cosh
+    screened = _screened_values if ctx.posterior_form == "log" else SCALED_SCREENING
     with np.errstate(over="ignore", under="ignore", invalid="ignore"):
         values = screened(screen, theta, w_inv, scaling, k, ok)
     first = np.argmax(values, axis=1)
@@ -333,6 +333,51 @@ def _screened_values_by_cosh(screen, theta, w_inv, scaling, k, ok) -> np.ndarray
     values /= z
     values *= ok
     return values
+
+
+def _screened_values_by_exp(screen, theta, w_inv, scaling, k, ok) -> np.ndarray:
+    """:func:`_screened_values_by_cosh` with ``1 / (1 + cosh(x)) = 2 e / (1 + e)^2``, ``e =
+    exp(-|x|)``: nine passes over the rows x items array instead of six, but single-precision
+    ``exp`` is vectorised on every x86-64 numpy build, while ``cosh`` is vectorised only
+    where AVX-512 is (elsewhere it ran about four times slower than ``exp`` and took a third
+    of a two-dimensional simulation).  The same operations as :func:`_screened_values` from
+    ``D z``, within the same bound (:func:`_screening_error`); the screening never decides a
+    pick (the double-precision values do), so the two forms give the same items.
+    """
+    r_n = theta.shape[0]
+    left = np.ones((r_n, k + 1), dtype=np.float32)
+    left[:, :k] = theta
+    z = np.einsum("rk,kn->rn", left, screen.scaled_linear)  # D z
+    term = np.empty_like(z)
+    np.abs(z, out=z)
+    np.negative(z, out=z)
+    e = np.exp(z, out=z)
+    np.add(e, np.float32(1.0), out=term)
+    term *= term
+    e /= term  # e / (1 + e)^2 = 1 / (2 (1 + cosh(D z))); D^2 goes into the weights
+    pairs = [(p, r) for p in range(k) for r in range(p, k)]
+    weights = np.empty((r_n, len(pairs)), dtype=np.float32)
+    for index, (p, r) in enumerate(pairs):
+        weights[:, index] = w_inv[:, p, r] * ((1.0 if p == r else 2.0) * scaling * scaling)
+    np.einsum("rk,kn->rn", weights, screen.products, out=term)
+    e *= term
+    e *= ok
+    return e
+
+
+def _vectorised_cosh() -> bool:
+    """Whether numpy's single-precision ``cosh`` runs vectorised here (AVX-512, where numpy
+    dispatches its short-vector math library); False when it cannot tell."""
+    try:
+        from numpy._core._multiarray_umath import __cpu_features__
+    except ImportError:  # pragma: no cover - another numpy layout
+        return False
+    return bool(__cpu_features__.get("AVX512_SKX", False))
+
+
+#: The single-precision screening of decision rules version 3 on: by ``cosh`` where numpy
+#: vectorises it, else by ``exp`` (the same picks either way: the screening only shortlists).
+SCALED_SCREENING = _screened_values_by_cosh if _vectorised_cosh() else _screened_values_by_exp
 
 
 def _screening_error(screen, theta, w_inv, scaling, k) -> np.ndarray:
