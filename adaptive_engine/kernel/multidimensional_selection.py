@@ -276,20 +276,25 @@ def best_items(ctx, state, rows, ok, facts):
     return item, value, ties
 
 
-def _screened_values(screen, theta, w_inv, scaling, k, ok) -> np.ndarray:
+def _screened_values(screen, theta, w_inv, scaling, k, ok, *, scaled_linear: bool = False) -> np.ndarray:
     """D-optimality values of every item in single precision, 0 where not ``ok``, (R, n) float32.
 
     ``z = [theta, 1] . [a, d]`` and ``a' W^-1 a`` (with D^2) are each one einsum over the
     K + 1 or K (K + 1) / 2 terms: faster than a broadcast product per term, and any order
-    of summation is within the bound of :func:`_screening_error`.
+    of summation is within the bound of :func:`_screening_error`.  ``scaled_linear``: ``D z``
+    by one einsum against :attr:`SinglePrecisionItems.scaled_linear` (as
+    :func:`_screened_values_by_cosh` makes it), negated, instead of ``z`` times ``-D``.
     """
     r_n = theta.shape[0]
     left = np.ones((r_n, k + 1), dtype=np.float32)
     left[:, :k] = theta
-    z = np.einsum("rk,kn->rn", left, screen.linear)
+    z = np.einsum("rk,kn->rn", left, screen.scaled_linear if scaled_linear else screen.linear)
     term = np.empty_like(z)
     np.abs(z, out=z)
-    z *= np.float32(-scaling)
+    if scaled_linear:
+        np.negative(z, out=z)
+    else:
+        z *= np.float32(-scaling)
     e = np.exp(z, out=z)
     np.add(e, np.float32(1.0), out=term)
     term *= term
@@ -344,25 +349,7 @@ def _screened_values_by_exp(screen, theta, w_inv, scaling, k, ok) -> np.ndarray:
     ``D z``, within the same bound (:func:`_screening_error`); the screening never decides a
     pick (the double-precision values do), so the two forms give the same items.
     """
-    r_n = theta.shape[0]
-    left = np.ones((r_n, k + 1), dtype=np.float32)
-    left[:, :k] = theta
-    z = np.einsum("rk,kn->rn", left, screen.scaled_linear)  # D z
-    term = np.empty_like(z)
-    np.abs(z, out=z)
-    np.negative(z, out=z)
-    e = np.exp(z, out=z)
-    np.add(e, np.float32(1.0), out=term)
-    term *= term
-    e /= term  # e / (1 + e)^2 = 1 / (2 (1 + cosh(D z))); D^2 goes into the weights
-    pairs = [(p, r) for p in range(k) for r in range(p, k)]
-    weights = np.empty((r_n, len(pairs)), dtype=np.float32)
-    for index, (p, r) in enumerate(pairs):
-        weights[:, index] = w_inv[:, p, r] * ((1.0 if p == r else 2.0) * scaling * scaling)
-    np.einsum("rk,kn->rn", weights, screen.products, out=term)
-    e *= term
-    e *= ok
-    return e
+    return _screened_values(screen, theta, w_inv, scaling, k, ok, scaled_linear=True)
 
 
 def _vectorised_cosh() -> bool:

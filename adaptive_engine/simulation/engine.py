@@ -110,8 +110,9 @@ class Execution:
         return effective_chunk_size(total, self.chunk_size, self.workers)
 
 
-class _CountsByStratum:
-    """Shared views of :class:`ChunkResult` and :class:`SimulationResult`."""
+class CountsByStratum:
+    """Shared views of :class:`ChunkResult`, :class:`SimulationResult` and the
+    multidimensional driver's result (strata of the true ability or composite)."""
 
     __slots__ = ()
 
@@ -133,7 +134,7 @@ class _CountsByStratum:
 
 
 @attrs.frozen(kw_only=True, eq=False)
-class ChunkResult(_CountsByStratum):
+class ChunkResult(CountsByStratum):
     """Outcome of one chunk of examinees (``n`` examinees, ``L`` = longest possible test).
 
     Attributes
@@ -196,7 +197,7 @@ class ChunkResult(_CountsByStratum):
 
 
 @attrs.frozen(kw_only=True, eq=False)
-class SimulationResult(_CountsByStratum):
+class SimulationResult(CountsByStratum):
     """Per-examinee outcomes of a whole run (administrations are streamed, not kept).
 
     Arrays have one entry per examinee (N,) or per item (n_items,); ``at_or_above`` is

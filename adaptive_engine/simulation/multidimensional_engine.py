@@ -46,6 +46,7 @@ from ..kernel.final_report import classification_matrix
 from ..kernel.multidimensional_cycle import composite, final_estimates
 from ..kernel.prepared import TestContext, build_context
 from . import metrics
+from .engine import CountsByStratum
 from .shared_histories import ChunkRows
 
 #: Examinees per kernel batch (the posterior is batch x grid points).
@@ -56,7 +57,7 @@ FILES = ("summary.json", "examinees.csv", "items.csv", "report.html")
 
 
 @attrs.frozen(eq=False)
-class MultidimensionalSimulationResult:
+class MultidimensionalSimulationResult(CountsByStratum):
     """Outcomes of a multidimensional run (arrays over examinees, first axis).
 
     ``true_theta``, ``theta``, ``se``: (N, K); ``covariance`` (N, K, K); ``items`` (N, L)
@@ -65,7 +66,8 @@ class MultidimensionalSimulationResult:
     lottery (as the one-dimensional driver's ``offered``); ``lz`` (N,)
     the person fit at the final ability vector (NaN where it cannot be computed);
     ``sprt_decision`` (N,): the composite SPRT's decision at the end (+1 above, -1 below,
-    0 undecided or no SPRT in the design).
+    0 undecided or no SPRT in the design).  The counts by stratum are those of the true
+    composite's strata (:class:`.engine.CountsByStratum`).
     """
 
     design: Design
@@ -88,22 +90,6 @@ class MultidimensionalSimulationResult:
     sprt_decision: np.ndarray | None = None
     administered_by_stratum_pair: np.ndarray | None = None
     offered_by_stratum_pair: np.ndarray | None = None
-
-    @property
-    def size(self) -> int:
-        return int(self.seeds.shape[0])
-
-    @property
-    def administered_by_stratum(self) -> np.ndarray | None:
-        """Administrations per stratum of the true composite, (S, n_items) (None if not counted)."""
-        pair = self.administered_by_stratum_pair
-        return None if pair is None else pair.sum(axis=1)
-
-    @property
-    def offered_by_stratum(self) -> np.ndarray | None:
-        """Offers (given or withheld) per stratum of the true composite, (S, n_items)."""
-        pair = self.offered_by_stratum_pair
-        return None if pair is None else pair.sum(axis=1)
 
 
 def run_chunk(ctx: TestContext, *, seed: int, start: int, true_theta, count_by_stratum=None) -> dict:
