@@ -653,6 +653,19 @@ def map_estimate_md(bank_or_params, items, responses, *, prior_mean=None, prior_
                                     status=status)
 
 
+def _likelihood_start(bank_or_params, items, responses, prior_mean, prior_covariance, bounds, start):
+    """The answers, prior, bounds and start of an estimate of the likelihood (MLE, WLE):
+    ``start`` as given, else the MAP under the prior; (data, prior, lo, hi, start)."""
+    data = _prepare(bank_or_params, items, responses)
+    n, k = data.items.shape[0], data.params.n_dimensions
+    prior = _prior(prior_mean, prior_covariance, n, k)
+    lo, hi = _check_bounds(bounds)
+    start = _start_array(start, n, k)
+    if start is None:
+        start, _, _ = _map_arrays(data, prior, lo, hi, None)
+    return data, prior, lo, hi, start
+
+
 def mle_estimate_md(bank_or_params, items, responses, *, prior_mean=None, prior_covariance=None,
                     bounds=DEFAULT_BOUNDS, start=None) -> MultidimensionalEstimate:
     """Maximum-likelihood ability vector within ``bounds``, where it exists.
@@ -667,13 +680,8 @@ def mle_estimate_md(bank_or_params, items, responses, *, prior_mean=None, prior_
     beyond the width of ``bounds``); ``no_responses`` (the prior mean and covariance);
     ``not_converged``.
     """
-    data = _prepare(bank_or_params, items, responses)
-    n, k = data.items.shape[0], data.params.n_dimensions
-    prior = _prior(prior_mean, prior_covariance, n, k)
-    lo, hi = _check_bounds(bounds)
-    start = _start_array(start, n, k)
-    if start is None:
-        start, _, _ = _map_arrays(data, prior, lo, hi, None)
+    data, prior, lo, hi, start = _likelihood_start(bank_or_params, items, responses, prior_mean,
+                                                   prior_covariance, bounds, start)
     theta, converged, pt = _projected_newton(data, start, None, lo, hi)
     width = hi - lo
     cov = capped_covariance(pt.likelihood_information, width)
@@ -712,13 +720,8 @@ def wle_estimate_md(bank_or_params, items, responses, *, prior_mean=None, prior_
     answered item measures: no WLE; the estimate stays at the start), ``not_converged``,
     ``no_responses``.
     """
-    data = _prepare(bank_or_params, items, responses)
-    n, k = data.items.shape[0], data.params.n_dimensions
-    prior = _prior(prior_mean, prior_covariance, n, k)
-    lo, hi = _check_bounds(bounds)
-    start = _start_array(start, n, k)
-    if start is None:
-        start, _, _ = _map_arrays(data, prior, lo, hi, None)
+    data, prior, lo, hi, start = _likelihood_start(bank_or_params, items, responses, prior_mean,
+                                                   prior_covariance, bounds, start)
     items_given = np.where(data.answered, data.items, -1)
     theta, info, code = wle_solve(data.params, items_given, data.responses, start, (lo, hi))
     width = hi - lo
