@@ -357,3 +357,65 @@ def test_an_m2pl_bank_decides_bit_for_bit_as_under_version_3():
     for field in ("items", "responses", "theta", "covariance", "se", "stop_reason"):
         np.testing.assert_array_equal(getattr(states[0], field), getattr(states[1], field))
     assert len(set(states[0].n_scored.tolist())) > 1  # the SE rule stopped tests at several lengths
+
+
+@pytest.mark.parametrize("right", [1, 0])
+def test_a_final_mle_of_an_extreme_pattern_reports_the_bound_as_one_dimension(right):
+    """Every answer right (or every one wrong): no finite MLE.  The one-dimensional final MLE
+    reports the grid's bound with SE 1 / sqrt(I) there (irt/estimation.py, checked against
+    its references in tests/test_reference_estimation.py); under version 4 the vector kernel
+    at K = 1 gives the same point, SE (to 1e-8) and status, and a K = 2 design the box's
+    corner; version 3 keeps the design's stand-in (the EAP, inside the box)."""
+    from adaptive_engine.irt.estimation import estimate
+
+    records = [{"item_id": f"MV{i:02d}", "model": "M2PL", "a1": 0.8 + 0.1 * i, "intercept": 0.3 * (i - 4),
+                "area": "treatment", "status": "operational"} for i in range(12)]
+    bank = bank_from_records(records, scaling=1.702)
+    text = """
+[scoring]
+method = "eap"
+prior_covariance = [[1.0]]
+grid_min = -4.0
+grid_max = 4.0
+[selection]
+criterion = "d_optimality"
+[stopping]
+min_items = 6
+max_items = 6
+[reporting]
+final_method = "mle"
+"""
+    design = parse_design(text)
+    bound = 4.0 if right else -4.0
+    got = {}
+    for version in (3, 4):
+        ctx = decision_rules.RULE_SETS[version].build_context(design, bank)
+        state = drive(ctx, n=2, answer=lambda item, k, n: right)
+        got[version] = (state, vector.final_estimates(ctx, state, np.arange(2)))
+    state, est = got[4]
+    items, resp = state.scored_items(np.arange(2))
+    one = load_bank_as_one_dimensional(records)
+    ref = estimate(one, items, resp, "mle", prior_mean=np.zeros(2), prior_sd=np.ones(2), bounds=(-4.0, 4.0))
+    assert list(ref.status) == ["all_highest" if right else "all_lowest"] * 2
+    np.testing.assert_array_equal(est.theta[:, 0], ref.theta)
+    assert np.all(est.theta[:, 0] == bound)
+    np.testing.assert_allclose(est.se[:, 0], ref.se, rtol=1e-8)
+    assert list(est.status) == list(ref.status)
+    s3, e3 = got[3]
+    assert np.all(np.abs(e3.theta[:, 0]) < 4.0)  # the EAP stand-in, inside the box
+    # K = 2: the box's corner (every slope positive, every answer at one end)
+    records2 = [dict(r, a2=0.5 + 0.05 * i) for i, r in enumerate(records)]
+    bank2 = bank_from_records(records2, scaling=1.702)
+    design2 = parse_design(text.replace("[[1.0]]", "[[1.0, 0.5], [0.5, 1.0]]"))
+    ctx = decision_rules.RULE_SETS[4].build_context(design2, bank2)
+    state = drive(ctx, n=2, answer=lambda item, k, n: right)
+    est2 = vector.final_estimates(ctx, state, np.arange(2))
+    assert np.all(est2.theta == bound) and np.all(np.isfinite(est2.se)) and np.all(est2.se <= 8.0)
+    assert list(est2.status) == list(ref.status)
+
+
+def load_bank_as_one_dimensional(records):
+    """The same items as 2PL (a = a1, b = -intercept / a1) for the one-dimensional engine."""
+    rows = [{"item_id": r["item_id"], "model": "2PL", "a": r["a1"], "b": -r["intercept"] / r["a1"],
+             "area": r["area"], "status": r["status"]} for r in records]
+    return bank_from_records(rows, scaling=1.702)

@@ -180,11 +180,15 @@ def test_all_correct_pattern_has_no_mle_and_the_design_stand_in_takes_its_place(
         for row in range(2):
             items, x = answers_of(state, row)
             ref = _map_reference(bank, items, x, 4)  # scipy.optimize.minimize of the negative log posterior
-            np.testing.assert_allclose(state.theta[row], ref, atol=1e-4)
-            np.testing.assert_allclose(final.theta[row], ref, atol=1e-4)
-            assert final.status[row] == "all_highest"
+            np.testing.assert_allclose(state.theta[row], ref, atol=1e-4)  # the interim stand-in
             info = np.linalg.inv(prior_covariance(4)) + information(bank, items, state.theta[row])
-            np.testing.assert_allclose(final.covariance[row], np.linalg.inv(info), rtol=1e-6)
+            np.testing.assert_allclose(state.covariance[row], np.linalg.inv(info), rtol=1e-6)
+            # the final MLE (decision rules version 4): the box's top on every dimension an
+            # answered item measures, as the one-dimensional final MLE reports its bound
+            assert final.status[row] == "all_highest"
+            measured = np.any(bank.slopes[items] > 0, axis=0)
+            assert np.all(final.theta[row][measured] == HI)
+            assert np.all(np.isfinite(final.covariance[row]))
     # fixed_step: after each right answer the previous estimate moves up by the step on the
     # dimensions the item measures, held in the box
     ctx = build_context(parse_design(design_text(4, method="mle", scoring_extra='extreme_pattern_method = '

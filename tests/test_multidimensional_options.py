@@ -272,8 +272,13 @@ def test_while_no_mle_exists_the_extreme_pattern_method_stands_in(how, form):
         np.testing.assert_array_equal(state.theta[0], expected)
     report = kernel.finish(ctx, state, np.array([0]))[0]
     assert report["estimate_status"] == "all_highest"
-    if how == "fixed_step":  # the final estimate keeps the interim one the test ended on
-        assert report["theta"] == [float(x) for x in state.theta[0]]
+    # the final MLE of an extreme pattern (decision rules version 4): the bound on the
+    # dimension the item measures, as the one-dimensional final MLE reports its bound
+    measured = bank.slopes[item] > 0
+    assert np.all(np.array(report["theta"])[measured] == d.scoring.grid_max)
+    if how == "fixed_step":  # version 3: the final estimate keeps the interim one the test ended on
+        old = kernel.finish(with_version_3_vector_rules(ctx), state, np.array([0]))[0]
+        assert old["theta"] == [float(x) for x in state.theta[0]]
 
 
 def test_mle_designs_are_accepted():

@@ -100,6 +100,11 @@ Versions:
      where it is positive definite (the one-dimensional MLE's rule; Fisher scoring
      elsewhere), which changes its path (the estimate within its tolerance) and lets it
      converge where Fisher scoring ran out of iterations (``not_converged``, the stand-in);
+   * the final MLE of an all-lowest or all-highest pattern is a point of the box (each
+     dimension the answered items measure at the bound towards which the likelihood rises,
+     the others at the start), its covariance capped as above, as the one-dimensional final
+     MLE reports its bound (version 3: the ``extreme_pattern_method`` stand-in; the interim
+     estimate keeps the stand-in under both);
    * a K = 1 report without composite weights classifies the one dimension by the cut
      scores (version 3: no classifications).
 

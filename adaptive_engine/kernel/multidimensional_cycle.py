@@ -413,7 +413,8 @@ def information_and_score(tab, items, resp, theta) -> tuple[np.ndarray, np.ndarr
     return info, grad
 
 
-def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def mle_estimate(ctx, state, rows, start_theta, *,
+                 final_extremes: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """MLE of the ability vector (R, K), its covariance (R, K, K) and status (R,).
 
     Maximises ``sum_i log P(x_i | theta)`` over the grid's box ``[grid_min, grid_max]^K`` by
@@ -436,6 +437,12 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     design's stand-in there).  Under decision rules version 4 the rows ``at_lower_bound`` /
     ``at_upper_bound`` keep the box point the iteration ended on, with the covariance
     ``I(theta)^-1`` capped as the one-dimensional SE is (:mod:`.multidimensional_guards`).
+    With ``final_extremes`` (a final estimate) under version 4 the rows ``all_lowest`` /
+    ``all_highest`` get a point of the box: on each dimension the answered items measure,
+    the bound towards which the likelihood rises (the sign of the sum of their slopes there,
+    up for all highest, down for all lowest), elsewhere the start; with the capped
+    covariance and the pattern as their status, as the one-dimensional final MLE reports its
+    bound for such a pattern.
     """
     tab = ctx.multidimensional
     sc = ctx.design.scoring
@@ -444,6 +451,9 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     k = tab.k
     r_n = rows.size
     status = pattern_status(tab, items, resp)
+    extreme = np.zeros(r_n, dtype=bool)
+    if final_extremes and ctx.vector_rules_as_one_dimensional:
+        extreme = np.isin(status, ("all_lowest", "all_highest"))
     theta = np.clip(np.array(start_theta, dtype=float), lo, hi)
     eye = np.eye(k)
     if ctx.posterior_form == "log":
@@ -527,6 +537,20 @@ def mle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
         if edge.any():
             cov[mixed[edge]] = guarded_covariance(ctx, info[edge])
             ok[mixed[edge]] = True
+    if extreme.any():  # version 4, a final estimate: the box point of an extreme pattern
+        from .multidimensional_guards import guarded_covariance
+
+        ex = np.flatnonzero(extreme)
+        given = items[ex] >= 0
+        slopes = tab.params.slopes[np.where(given, items[ex], 0)] * given[..., None]
+        # the likelihood rises along the answered items' slopes (all highest) or against
+        # them (all lowest): each dimension they measure goes to that bound, the others
+        # keep the start
+        toward = np.sign(slopes.sum(axis=1)) * np.where(status[ex] == "all_highest", 1.0, -1.0)[:, None]
+        theta[ex] = np.where(toward > 0, hi, np.where(toward < 0, lo, theta[ex]))
+        info, _ = info_and_score(ex, theta[ex])
+        cov[ex] = guarded_covariance(ctx, info)
+        ok[ex] = True
     theta = np.where(ok[:, None], theta, np.nan)
     return theta, cov, status
 
@@ -546,8 +570,10 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
     test ended on.  Under decision rules version 4 an MLE at the box's edge is kept
     (``at_lower_bound``, ``at_upper_bound``: :mod:`.multidimensional_guards`), not replaced.
     """
-    theta, mle_cov, status = mle_estimate(ctx, state, rows, mean)
-    return _with_stand_in(ctx, state, rows, theta, mle_cov, status, status != "converged", mean, cov, final)
+    theta, mle_cov, status = mle_estimate(ctx, state, rows, mean, final_extremes=final)
+    # what mle_estimate leaves without an estimate (NaN) gets the stand-in
+    missing = (status != "converged") & np.isnan(theta[:, 0])
+    return _with_stand_in(ctx, state, rows, theta, mle_cov, status, missing, mean, cov, final)
 
 
 def _with_stand_in(ctx, state, rows, theta, est_cov, status, missing, mean, cov, final):
