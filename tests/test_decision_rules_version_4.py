@@ -419,3 +419,42 @@ def load_bank_as_one_dimensional(records):
     rows = [{"item_id": r["item_id"], "model": "2PL", "a": r["a1"], "b": -r["intercept"] / r["a1"],
              "area": r["area"], "status": r["status"]} for r in records]
     return bank_from_records(rows, scaling=1.702)
+
+
+def test_a_wle_se_beyond_the_range_is_capped_as_in_one_dimension():
+    """Two weak items, one right and one wrong: 1 / sqrt(I) exceeds the grid's width (4), and
+    the one-dimensional WLE caps its SE there (irt/estimation.py, checked against its
+    references in tests/test_reference_estimation.py).  Version 4's vector WLE at K = 1 gives
+    the same estimate and SE; version 3 the plain 1 / sqrt(I)."""
+    from adaptive_engine.irt.estimation import estimate
+
+    records = [{"item_id": f"MV{i:02d}", "model": "M2PL", "a1": 0.2, "intercept": 0.1 * i,
+                "area": "treatment", "status": "operational"} for i in range(2)]
+    bank = bank_from_records(records, scaling=1.702)
+    design = parse_design("""
+[scoring]
+method = "eap"
+prior_covariance = [[1.0]]
+grid_min = -2.0
+grid_max = 2.0
+[selection]
+criterion = "d_optimality"
+[stopping]
+min_items = 2
+max_items = 2
+[reporting]
+final_method = "wle"
+""")
+    got = {}
+    for version in (3, 4):
+        ctx = decision_rules.RULE_SETS[version].build_context(design, bank)
+        state = drive(ctx, n=1, answer=lambda item, k, n: 1 if item == 0 else 0)
+        got[version] = (state, vector.final_estimates(ctx, state, np.arange(1)))
+    state, est = got[4]
+    items, resp = state.scored_items(np.arange(1))
+    ref = estimate(load_bank_as_one_dimensional(records), items, resp, "wle", prior_mean=np.zeros(1),
+                   prior_sd=np.ones(1), bounds=(-2.0, 2.0))
+    assert ref.se[0] == pytest.approx(4.0)  # the cap: the range's width
+    np.testing.assert_allclose(est.theta[:, 0], ref.theta, atol=1e-8)
+    np.testing.assert_allclose(est.se[:, 0], ref.se, rtol=1e-8)
+    assert got[3][1].se[0, 0] > 4.0

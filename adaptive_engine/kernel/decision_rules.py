@@ -105,6 +105,8 @@ Versions:
      the others at the start), its covariance capped as above, as the one-dimensional final
      MLE reports its bound (version 3: the ``extreme_pattern_method`` stand-in; the interim
      estimate keeps the stand-in under both);
+   * the WLE's covariance is capped as the one-dimensional WLE's SE is (at the range's
+     width), as the MAP's above;
    * a K = 1 report without composite weights classifies the one dimension by the cut
      scores (version 3: no classifications).
 

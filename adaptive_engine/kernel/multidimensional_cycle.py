@@ -632,7 +632,8 @@ def wle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     grid_max]^K``, by projected Fisher scoring with halved steps
     (:func:`adaptive_engine.irt.multidimensional_estimation.wle_solve`; derived in
     docs/multidimensional_scoring.md).  The covariance is ``I(theta_hat)^-1``, the
-    one-dimensional WLE's ``1 / I``.  Status: ``no_responses``, ``all_lowest`` or
+    one-dimensional WLE's ``1 / I``, under version 4 capped as its SE is (at the range's
+    width, :func:`.multidimensional_guards.guarded_covariance`).  Status: ``no_responses``, ``all_lowest`` or
     ``all_highest`` (the pattern; the WLE is computed for the last two, and finite for M2PL
     and MGRM items), else ``converged``, ``at_lower_bound``, ``at_upper_bound`` (held at the
     box: no root inside), ``no_information`` (a direction no answered item measures: a
@@ -655,7 +656,12 @@ def wle_estimate(ctx, state, rows, start_theta) -> tuple[np.ndarray, np.ndarray,
     k = tab.k
     cov = np.full((rows.size, k, k), np.nan)
     if exists.any():
-        cov[exists] = inverse(info[exists])
+        if ctx.vector_rules_as_one_dimensional:  # version 4: the one-dimensional WLE's SE cap
+            from .multidimensional_guards import guarded_covariance
+
+            cov[exists] = guarded_covariance(ctx, info[exists])
+        else:
+            cov[exists] = inverse(info[exists])
     theta = np.where(exists[:, None], theta, np.nan)
     return theta, cov, status
 
