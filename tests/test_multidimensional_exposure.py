@@ -394,3 +394,43 @@ def test_conditional_strata_of_a_vector_need_composite_weights_and_the_command_w
     assert design.exposure_strata == STRATA
     run = simulate_multidimensional(design, bank, true_theta=np.zeros((5, 2)), seed=1)
     assert run.size == 5
+
+
+def test_a_study_of_conditional_parameters_reports_exposure_by_stratum_of_the_composite(tmp_path):
+    """With conditional parameters the study's summary gives the exposure rate within each
+    stratum of the true composite (Stocking & Lewis 1998: P(item given | stratum)), as the
+    one-dimensional summary does by ability stratum; checked here against the rates counted
+    from the items each examinee was given."""
+    from adaptive_engine.simulation.multidimensional_engine import multidimensional_metrics
+
+    bank = two_dimensional_bank(30)
+    params = {iid: (0.6, 0.8, 0.7) for iid in bank.item_ids}
+    design = with_parameters(parse_design(WEIGHTED), params, strata=STRATA)
+    true = np.random.default_rng(3).multivariate_normal([0, 0], [[1, 0.5], [0.5, 1]], size=150)
+    result = simulate_multidimensional(design, bank, true_theta=true, seed=5, count_by_stratum=STRATA)
+    got = multidimensional_metrics(result)["exposure"]["by_stratum"]
+    stratum = np.searchsorted(STRATA, true @ np.array([0.5, 0.5]), side="right")
+    assert [s["examinees"] for s in got] == list(np.bincount(stratum, minlength=3))
+    for s, row in enumerate(got):
+        given = np.zeros(bank.n_items)
+        for items in result.items[stratum == s]:
+            given[items[items >= 0]] += 1
+        rates = given / max(np.sum(stratum == s), 1)
+        assert row["max_exposure"] == pytest.approx(rates.max())
+        assert row["share_above_target"] == pytest.approx(np.mean(rates > 0.25))
+    # the command writes it into summary.json
+    bank_file, design_file, params_file = tmp_path / "bank.json", tmp_path / "design.toml", tmp_path / "sh.csv"
+    write_bank(bank, bank_file)
+    params_file.write_text("item_id,theta_from,theta_to,exposure_parameter\n" + "".join(
+        f"{iid},{lo},{hi},0.7\n" for iid in bank.item_ids for lo, hi in (("-inf", "-0.5"), ("-0.5", "0.5"),
+                                                                           ("0.5", "inf"))))
+    design_file.write_text(WEIGHTED.replace("[stopping]", '[exposure]\nmethod = "sympson_hetter"\n'
+                                            'parameters_file = "sh.csv"\n\n[stopping]'))
+    out = tmp_path / "study"
+    res = CliRunner().invoke(main, ["simulate", str(design_file), "--bank", str(bank_file), "--examinees", "60",
+                                    "--seed", "2", "--out", str(out)])
+    assert res.exit_code == 0, res.output
+    summary = json.loads((out / "summary.json").read_text())
+    assert [s["examinees"] for s in summary["exposure"]["by_stratum"]] and sum(
+        s["examinees"] for s in summary["exposure"]["by_stratum"]) == 60
+    assert "Within strata of the true composite" in (out / "report.html").read_text()

@@ -250,8 +250,11 @@ def _simulate_multidimensional(design, bank, n_examinees, seed, out_dir, theta_s
     true_theta = draw_vectors(spec, n, seed, bank.n_dimensions)
     progress = _Progress("simulating", enabled=show_progress)
     try:
+        # a design with conditional exposure parameters is judged stratum by stratum of the
+        # composite, as the one-dimensional study judges them by ability stratum
         result = simulate_multidimensional(design, bank, true_theta=true_theta, seed=seed,
-                                           chunk_size=min(chunk_size, 2000), progress=progress, workers=workers)
+                                           chunk_size=min(chunk_size, 2000), progress=progress, workers=workers,
+                                           count_by_stratum=design.exposure_strata or None)
     finally:
         progress.close()
     summary = multidimensional_metrics(result, exposure_target=exposure_target)

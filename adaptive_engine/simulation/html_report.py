@@ -625,16 +625,22 @@ def _exposure_section(result, summary, first_counts, follow_counts) -> list[str]
             parts.append(f"<p class='note'>The {MAX_LISTED_ITEMS} most exposed are listed; items.csv has every "
                          "item's rate.</p>")
     if expo.get("by_stratum"):
-        strata = [{"from": s["theta_from"], "to": s["theta_to"], "n": s["examinees"],
-                   "max": Html(pct(s["max_exposure"])), "above": Html(pct(s["share_above_target"]))}
-                  for s in expo["by_stratum"]]
-        parts += ["<h3>Within strata of true ability</h3>",
-                  "<p class='note'>The design's exposure parameters are conditional on ability: the rates within "
-                  "each stratum of true ability.</p>",
-                  table_html(strata, ["from", "to", "n", "max", "above"],
-                             labels={"from": "Ability from", "to": "to", "n": "Examinees",
-                                     "max": "Largest exposure rate", "above": "Items above the target"})]
+        parts += exposure_by_stratum_parts(expo["by_stratum"], "true ability")
     return parts
+
+
+def exposure_by_stratum_parts(by_stratum: list[dict], scale: str) -> list[str]:
+    """The table of exposure within strata (``summary["exposure"]["by_stratum"]``) of
+    ``scale`` (``"true ability"``, or the true composite of an ability vector)."""
+    strata = [{"from": s["theta_from"], "to": s["theta_to"], "n": s["examinees"],
+               "max": Html(pct(s["max_exposure"])), "above": Html(pct(s["share_above_target"]))}
+              for s in by_stratum]
+    return [f"<h3>Within strata of {esc(scale)}</h3>",
+            f"<p class='note'>The design's exposure parameters are conditional on ability: the rates within "
+            f"each stratum of {esc(scale)}.</p>",
+            table_html(strata, ["from", "to", "n", "max", "above"],
+                       labels={"from": f"{esc(scale[0].upper() + scale[1:])} from", "to": "to", "n": "Examinees",
+                               "max": "Largest exposure rate", "above": "Items above the target"})]
 
 
 def _classification_section(result, summary) -> list[str]:

@@ -358,7 +358,9 @@ def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposu
 
     ``exposure``: ``max_rate`` and ``items_used`` / ``items_never_used`` over all items;
     ``exposure_target`` (None: :data:`~adaptive_engine.simulation.metrics.DEFAULT_EXPOSURE_TARGET`)
-    and the share of the operational items given more often (``share_above_target``).
+    and the share of the operational items given more often (``share_above_target``); with
+    conditional exposure parameters counted by stratum, ``by_stratum``: the rates within each
+    stratum of the true composite (:func:`.metrics.exposure_by_stratum`).
     """
     design = result.design
     out = {"dimensions": {}}
@@ -386,6 +388,11 @@ def multidimensional_metrics(result: MultidimensionalSimulationResult, *, exposu
                   "items_never_used": int(result.bank.n_items - used), "exposure_target": target,
                   "share_above_target": float(np.mean(rates[operational] > target)) if operational.any() else None},
     )
+    if result.administered_by_stratum is not None and design.exposure_strata and weights is not None:
+        # conditional parameters: the exposure rate within strata of the true composite
+        # (Stocking & Lewis 1998), as the one-dimensional summary gives it by ability stratum
+        out["exposure"]["by_stratum"] = metrics.exposure_by_stratum(
+            true_c, result.administered_by_stratum, design.exposure_strata, target)
     if result.lz is not None:
         threshold = float(design.reporting.person_fit_threshold)
         known = result.lz[np.isfinite(result.lz)]

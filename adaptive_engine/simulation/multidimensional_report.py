@@ -20,6 +20,7 @@ from .html_report import (
     contents_line,
     design_section,
     esc,
+    exposure_by_stratum_parts,
     exposure_figure,
     figure_html,
     fmt,
@@ -145,10 +146,13 @@ def _exposure_section(result, summary: dict) -> list[str]:
         box = (f"<div class='box ok'>The exposure target is met: no operational item is given to more than "
                f"{pct(target, 0)} of the examinees.</div>")
     caption = "Exposure rates of the operational items, most exposed first, against the target"
-    return ["<h2 id='exposure'>Exposure</h2>",
-            "<p>The exposure rate of an item is the share of examinees who were given it (operational items only: "
-            "pretest items are seeded at random). items.csv has every item's rate.</p>", box,
-            figure_html(caption, exposure_figure(rates[operational], target, caption))]
+    parts = ["<h2 id='exposure'>Exposure</h2>",
+             "<p>The exposure rate of an item is the share of examinees who were given it (operational items only: "
+             "pretest items are seeded at random). items.csv has every item's rate.</p>", box,
+             figure_html(caption, exposure_figure(rates[operational], target, caption))]
+    if expo.get("by_stratum"):
+        parts += exposure_by_stratum_parts(expo["by_stratum"], "the true composite")
+    return parts
 
 
 def _classification_section(result, summary: dict) -> list[str]:
