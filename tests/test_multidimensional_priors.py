@@ -306,6 +306,11 @@ def test_session_cli_takes_a_vector_prior_and_names_its_flags(tmp_path):
         expected = start_session(ref, design(max_items=5), bank, seed=11, prior_mean=OWN_MEAN,
                                  prior_covariance=OWN_COV)
     assert reply["item_id"] == expected["item_id"] and reply["se"] == expected["se"]
+    # session show: the prior the session started from, as given (an auditor reads it back)
+    shown = run(main, ["session", "show", reply["session_id"], "--db", db, "--json"])
+    assert json.loads(shown.output)["prior"] == {"mean": OWN_MEAN, "covariance": OWN_COV}
+    text = run(main, ["session", "show", reply["session_id"], "--db", db]).output
+    assert "prior: mean [0.600, -0.400], covariance [[0.640, 0.200], [0.200, 1.440]]" in text
     refused = run(main, base + ["--prior-covariance", "1,0.2;0.3,1"])
     assert refused.exit_code == 2 and "--prior-covariance" in refused.output and "symmetric" in refused.output
     refused = run(main, base + ["--prior-mean", "0.5"])

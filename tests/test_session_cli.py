@@ -360,6 +360,8 @@ def test_session_show_prints_the_seed_only_when_asked(tmp_path):
     sid = _start(db, seed=987654)["session_id"]
     plain = invoke(["session", "show", sid, "--db", db])
     assert plain.exit_code == 0 and "seed" not in json.loads(plain.output) and "987654" not in plain.output
+    # the prior the session started from: the design's N(0, 1) (simulations/licensing_exam.toml)
+    assert json.loads(plain.output)["prior"] == {"mean": 0.0, "sd": 1.0}
     with_seed = invoke(["session", "show", sid, "--db", db, "--with-seed"])
     assert json.loads(with_seed.output)["seed"] == 987654
 

@@ -243,6 +243,16 @@ def _show_text(s: dict) -> str:
                                                        "updated_at", "decision_rules_version", "seed")
             if k in s and (k != "release" or s.get(k))]
     lines = [pairs(head)]
+    prior = s.get("prior")
+    if prior is not None:  # the prior the session started from
+        def vector(values):
+            return "[" + ", ".join(number(x, 3) for x in values) + "]"
+
+        if "sd" in prior:
+            lines.append(f"prior: mean {number(prior['mean'], 3)}, SD {number(prior['sd'], 3)}")
+        else:
+            lines.append(f"prior: mean {vector(prior['mean'])}, covariance "
+                         f"[{', '.join(vector(r) for r in prior['covariance'])}]")
     given = s.get("administered") or []
     if given:
         lines.append(f"answers ({len(given)}):")

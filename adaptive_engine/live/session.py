@@ -969,12 +969,26 @@ def show_session(store: SessionStore, session_id: str, *, include_seed: bool = F
            "design_fingerprint": row["design_id"], "bank_fingerprint": row["bank_id"],
            "administered": administered, "pending_item": row["pending_item"],
            "theta": _snapshot_theta(snapshot), "se": snapshot["se"]}
+    prior = _session_prior(row, snapshot)
+    if prior is not None:
+        out["prior"] = prior
     if include_seed:
         out["seed"] = row["seed"]
     if row["status"] == "finished":
         out["stop_reason"] = snapshot["stop_reason"]
         out["result"] = json.loads(row["result"])
     return out
+
+
+def _session_prior(row: dict, snapshot: dict) -> dict | None:
+    """The prior the session started from (the design's or the examinee's own): ``mean`` and
+    ``sd`` of one ability (the session row's columns), ``mean`` (K) and ``covariance`` (K x K)
+    of an ability vector (the state snapshot, which holds it whole); None for a session of an
+    ability vector started before the snapshot held its prior (it had the design's)."""
+    if isinstance(snapshot["se"], list):
+        stored = snapshot.get("prior")
+        return None if stored is None else {"mean": stored[0], "covariance": stored[1]}
+    return {"mean": row["prior_mean"], "sd": row["prior_sd"]}
 
 
 def release_label(row: dict) -> str | None:
