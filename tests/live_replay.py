@@ -33,3 +33,20 @@ def replay_through_sessions(design, bank, chunk: dict, count: int) -> list[tuple
             assert reply["done"], f"examinee {i}: the session is not done after the simulated items"
             out.append((first, session_result(store, reply["session_id"])))
     return out
+
+
+def batch_as_one_at_a_time(ctx, true_theta, *, seed: int, keys=("items", "theta")) -> dict:
+    """The examinees of ``true_theta`` simulated in one batch (the multidimensional driver's
+    ``run_chunk``) and each alone: asserts that ``keys`` of the chunk's arrays are the same
+    bit for bit (the rule of DEVELOPERS.md, "one decision kernel, two drivers"), and returns
+    the batch's arrays for the caller's further checks."""
+    import numpy as np
+
+    from adaptive_engine.simulation.multidimensional_engine import run_chunk
+
+    whole = run_chunk(ctx, seed=seed, start=0, true_theta=true_theta)
+    for i in range(true_theta.shape[0]):
+        one = run_chunk(ctx, seed=seed, start=i, true_theta=true_theta[i : i + 1])
+        for key in keys:
+            np.testing.assert_array_equal(one[key][0], whole[key][i], err_msg=f"examinee {i}: {key}")
+    return whole

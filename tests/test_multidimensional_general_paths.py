@@ -27,7 +27,7 @@ from adaptive_engine.irt import multidimensional as md
 from adaptive_engine.kernel import multidimensional_cycle as mcycle
 from adaptive_engine.kernel import multidimensional_state as mst
 from adaptive_engine.kernel.prepared import build_context
-from adaptive_engine.simulation.multidimensional_engine import run_chunk
+from live_replay import batch_as_one_at_a_time
 from test_multidimensional_kernel import design_text
 
 
@@ -136,12 +136,7 @@ def test_simulated_batch_equals_one_at_a_time_on_a_mixed_bank(method):
     ctx = context(method)
     assert ctx.posterior_form == "scaled" and not ctx.multidimensional.logistic_only
     true = np.random.default_rng(2).normal(0, 1, (5, 2))
-    whole = run_chunk(ctx, seed=9, start=0, true_theta=true)
-    for i in range(true.shape[0]):
-        one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
-        np.testing.assert_array_equal(one["items"][0], whole["items"][i])
-        np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
-        np.testing.assert_array_equal(one["covariance"][0], whole["covariance"][i])
+    batch_as_one_at_a_time(ctx, true, seed=9, keys=("items", "theta", "covariance"))
 
 
 def test_selection_information_by_kind_of_item_is_the_models_choice_item_by_item():

@@ -29,7 +29,7 @@ from adaptive_engine.kernel import random_streams as randomness
 from adaptive_engine.kernel.multidimensional_state import determinant, inverse
 from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation.multidimensional_engine import run_chunk, simulate_multidimensional
-from live_replay import replay_through_sessions
+from live_replay import batch_as_one_at_a_time, replay_through_sessions
 
 RHO = 0.4
 
@@ -215,11 +215,8 @@ def test_batch_equals_one_at_a_time(exposure):
     ctx = build_context(parse_design(design_text(5, extra=exposure, max_items=15)), bank)
     true = np.random.default_rng(1).normal(0, 1, (6, 5))
     true[3] = true[2]  # two examinees with the same answers share a row when nothing is drawn
-    whole = run_chunk(ctx, seed=9, start=0, true_theta=true)
-    for i in range(6):
-        one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
-        for key in ("items", "responses", "theta", "se", "covariance", "stop_reason"):
-            np.testing.assert_array_equal(one[key][0], whole[key][i])
+    batch_as_one_at_a_time(ctx, true, seed=9,
+                           keys=("items", "responses", "theta", "se", "covariance", "stop_reason"))
 
 
 def test_simulated_examinee_replays_as_a_live_session():

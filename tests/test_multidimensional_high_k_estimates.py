@@ -32,7 +32,7 @@ from adaptive_engine.kernel import random_streams as randomness
 from adaptive_engine.kernel.multidimensional_cycle import update_estimate
 from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation.multidimensional_engine import run_chunk
-from live_replay import replay_through_sessions
+from live_replay import batch_as_one_at_a_time, replay_through_sessions
 
 RHO = 0.4
 LO, HI = -5.0, 5.0
@@ -456,11 +456,8 @@ def test_batch_equals_one_at_a_time(name):
                         bank)
     true = np.random.default_rng(1).normal(0, 1, (4, 4))
     true[3] = true[2]  # two examinees with the same answers share a row when nothing is drawn
-    whole = run_chunk(ctx, seed=9, start=0, true_theta=true)
-    for i in range(4):
-        one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
-        for key in ("items", "responses", "theta", "se", "covariance", "stop_reason"):
-            np.testing.assert_array_equal(one[key][0], whole[key][i])
+    batch_as_one_at_a_time(ctx, true, seed=9,
+                           keys=("items", "responses", "theta", "se", "covariance", "stop_reason"))
 
 
 @pytest.mark.parametrize("name", sorted(KERNEL_DESIGNS))

@@ -42,7 +42,7 @@ from adaptive_engine.kernel import selection as one_dimensional
 from adaptive_engine.kernel.multidimensional_selection import criterion_values, kl_box_rule
 from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation.multidimensional_engine import run_chunk
-from live_replay import replay_through_sessions
+from live_replay import batch_as_one_at_a_time, replay_through_sessions
 from multidimensional_reference import item_probability
 from test_multidimensional_general_paths import mixed_bank
 from test_multidimensional_k1_agreement import bank_pair
@@ -186,11 +186,7 @@ def test_batch_equals_one_at_a_time_and_replays_live(k, exposure):
     ctx = build_context(design, bank)
     n = 4 if k == 2 else 3
     true = np.random.default_rng(3).normal(0, 1, (n, k))
-    whole = run_chunk(ctx, seed=9, start=0, true_theta=true)
-    for i in range(n):
-        one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
-        np.testing.assert_array_equal(one["items"][0], whole["items"][i])
-        np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
+    whole = batch_as_one_at_a_time(ctx, true, seed=9)
     for i, (_, result) in enumerate(replay_through_sessions(design, bank, whole, 2)):
         assert result["theta"] == [float(x) for x in whole["theta"][i]]
     # the box, not the posterior: the posterior-weighted criterion gives other items here

@@ -40,7 +40,7 @@ from adaptive_engine.kernel.multidimensional_cycle import mle_estimate
 from adaptive_engine.kernel.multidimensional_state import MultidimensionalState, posterior_moments
 from adaptive_engine.kernel.prepared import build_context, with_log_posterior, with_version_3_vector_rules
 from adaptive_engine.simulation.multidimensional_engine import run_chunk, simulate_multidimensional
-from live_replay import replay_through_sessions
+from live_replay import batch_as_one_at_a_time, replay_through_sessions
 from multidimensional_reference import item_probability, map_reference
 
 
@@ -296,11 +296,7 @@ def test_an_mle_design_runs_batch_as_one_at_a_time_and_replays_as_a_live_session
     d = design(scoring='method = "mle"')
     ctx = build_context(d, bank)
     true = np.random.default_rng(6).normal(0, 1, (4, 2))
-    whole = run_chunk(ctx, seed=9, start=0, true_theta=true)
-    for i in range(4):
-        one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
-        np.testing.assert_array_equal(one["items"][0], whole["items"][i])
-        np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
+    whole = batch_as_one_at_a_time(ctx, true, seed=9)
     (_, result), = replay_through_sessions(d, bank, whole, 1)
     assert result["theta"] == [float(x) for x in whole["theta"][0]]
 
@@ -432,12 +428,8 @@ def test_precision_rules_decide_the_same_for_a_batch_and_one_at_a_time():
     d = design(stopping="se_reduction = 0.02\nmin_information = 0.05")
     ctx = build_context(d, bank)
     true = np.random.default_rng(8).normal(0, 1, (6, 2))
-    whole = run_chunk(ctx, seed=5, start=0, true_theta=true)
+    whole = batch_as_one_at_a_time(ctx, true, seed=5, keys=("items", "stop_reason"))
     assert "small_se_reduction" in set(whole["stop_reason"])
-    for i in range(6):
-        one = run_chunk(ctx, seed=5, start=i, true_theta=true[i : i + 1])
-        np.testing.assert_array_equal(one["items"][0], whole["items"][i])
-        assert one["stop_reason"][0] == whole["stop_reason"][i]
 
 
 # ----------------------------------------------------------------------------------------

@@ -41,7 +41,7 @@ from adaptive_engine.kernel import cycle as kernel
 from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation.engine import run_chunk as run_chunk_1d
 from adaptive_engine.simulation.multidimensional_engine import run_chunk
-from live_replay import replay_through_sessions
+from live_replay import batch_as_one_at_a_time, replay_through_sessions
 from multidimensional_reference import item_probability
 
 
@@ -343,12 +343,7 @@ def test_a_wle_design_runs_batch_as_one_at_a_time_and_replays_as_a_live_session(
     assert check_design_against_bank(d, bank) == []
     ctx = build_context(d, bank)
     true = np.random.default_rng(6).normal(0, 1, (5, 2))
-    whole = run_chunk(ctx, seed=9, start=0, true_theta=true)
-    for i in range(5):
-        one = run_chunk(ctx, seed=9, start=i, true_theta=true[i : i + 1])
-        np.testing.assert_array_equal(one["items"][0], whole["items"][i])
-        np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
-        np.testing.assert_array_equal(one["covariance"][0], whole["covariance"][i])
+    whole = batch_as_one_at_a_time(ctx, true, seed=9, keys=("items", "theta", "covariance"))
     (_, result), = replay_through_sessions(d, bank, whole, 1)
     assert result["theta"] == [float(x) for x in whole["theta"][0]]
     assert result["method"] == "wle"
@@ -457,11 +452,7 @@ def test_a_wle_design_of_four_dimensions_runs_without_a_grid_batch_as_one_at_a_t
     ctx = build_context(parse_design(WIDE_DESIGN), bank)
     assert ctx.multidimensional.gridless
     true = np.random.default_rng(2).normal(0, 1, (3, 4))
-    whole = run_chunk(ctx, seed=5, start=0, true_theta=true)
-    for i in range(3):
-        one = run_chunk(ctx, seed=5, start=i, true_theta=true[i : i + 1])
-        np.testing.assert_array_equal(one["items"][0], whole["items"][i])
-        np.testing.assert_array_equal(one["theta"][0], whole["theta"][i])
+    whole = batch_as_one_at_a_time(ctx, true, seed=5)
     compared = 0
     for i in range(3):
         n = int((whole["items"][i] >= 0).sum())
