@@ -339,3 +339,19 @@ def runnable_designs(draw, bank: ItemBank):
     return d.Design(opening=opening, scoring=scoring, selection=selection, exposure=exposure,
                     blueprint=blueprint, stopping=stopping, reporting=reporting, source="generated",
                     exposure_parameters=params)
+
+
+def mixed_model_bank(slopes, rng) -> ItemBank:
+    """Test input: a bank of M2PL, M3PL and MGRM items in turn (MGRM with 2 to 4 intercepts)
+    on the given slopes (n, K); lower asymptotes and intercepts drawn from ``rng``."""
+    slopes = np.asarray(slopes, dtype=float)
+    n = slopes.shape[0]
+    models = np.array(["M2PL", "M3PL", "MGRM"])[np.arange(n) % 3]
+    intercepts = np.full((n, 4), np.nan)
+    c = np.where(models == "M3PL", rng.uniform(0.05, 0.3, n), 0.0)
+    for i in range(n):
+        m = 2 + i % 3 if models[i] == "MGRM" else 1
+        intercepts[i, :m] = np.sort(rng.normal(0, 1.2, m))[::-1] if m > 1 else rng.normal(0, 1.2)
+    return ItemBank(item_ids=[f"Q{i:03d}" for i in range(n)], model=list(models), slopes=slopes,
+                    intercepts=intercepts, c=c, area=["g"] * n, item_set=[""] * n, enemy_groups=[()] * n,
+                    status=["operational"] * n, label=[""] * n)

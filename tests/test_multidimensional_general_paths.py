@@ -28,23 +28,16 @@ from adaptive_engine.kernel import multidimensional_cycle as mcycle
 from adaptive_engine.kernel import multidimensional_state as mst
 from adaptive_engine.kernel.prepared import build_context
 from live_replay import batch_as_one_at_a_time
+from strategies import mixed_model_bank
 from test_multidimensional_kernel import design_text
 
 
 def mixed_bank(n=30, seed=3) -> ItemBank:
     """M2PL, M3PL and MGRM items (2 to 4 intercepts) on two dimensions."""
     rng = np.random.default_rng(seed)
-    models = np.array(["M2PL", "M3PL", "MGRM"])[np.arange(n) % 3]
     slopes = rng.uniform(0.4, 2.0, (n, 2)) * (rng.random((n, 2)) < 0.7)
     slopes[np.all(slopes == 0, axis=1), 0] = 1.2
-    intercepts = np.full((n, 4), np.nan)
-    c = np.where(models == "M3PL", rng.uniform(0.05, 0.3, n), 0.0)
-    for i in range(n):
-        m = 2 + i % 3 if models[i] == "MGRM" else 1
-        intercepts[i, :m] = np.sort(rng.normal(0, 1.2, m))[::-1] if m > 1 else rng.normal(0, 1.2)
-    return ItemBank(item_ids=[f"Q{i:03d}" for i in range(n)], model=list(models), slopes=slopes,
-                    intercepts=intercepts, c=c, area=["g"] * n, item_set=[""] * n, enemy_groups=[()] * n,
-                    status=["operational"] * n, label=[""] * n)
+    return mixed_model_bank(slopes, rng)
 
 
 def answered(tab, rows=9, width=12, seed=4):

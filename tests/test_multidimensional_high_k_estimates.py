@@ -33,6 +33,7 @@ from adaptive_engine.kernel.multidimensional_cycle import update_estimate
 from adaptive_engine.kernel.prepared import build_context
 from adaptive_engine.simulation.multidimensional_engine import run_chunk
 from live_replay import batch_as_one_at_a_time, replay_through_sessions
+from strategies import mixed_model_bank
 
 RHO = 0.4
 LO, HI = -5.0, 5.0
@@ -234,18 +235,10 @@ def test_all_right_on_one_dimension_holds_the_mle_at_the_box_edge():
 def mixed_bank(k, n=90, seed=3) -> ItemBank:
     """M2PL, M3PL and MGRM items (2 to 4 intercepts) on K dimensions."""
     rng = np.random.default_rng(seed)
-    models = np.array(["M2PL", "M3PL", "MGRM"])[np.arange(n) % 3]
     slopes = np.zeros((n, k))
     slopes[np.arange(n), np.arange(n) % k] = rng.uniform(0.8, 2.0, n)
     slopes[np.arange(n), (np.arange(n) + 1) % k] = rng.uniform(0.0, 0.8, n)
-    intercepts = np.full((n, 4), np.nan)
-    c = np.where(models == "M3PL", rng.uniform(0.05, 0.3, n), 0.0)
-    for i in range(n):
-        m = 2 + i % 3 if models[i] == "MGRM" else 1
-        intercepts[i, :m] = np.sort(rng.normal(0, 1.2, m))[::-1] if m > 1 else rng.normal(0, 1.2)
-    return ItemBank(item_ids=[f"Q{i:03d}" for i in range(n)], model=list(models), slopes=slopes,
-                    intercepts=intercepts, c=c, area=["g"] * n, item_set=[""] * n, enemy_groups=[()] * n,
-                    status=["operational"] * n, label=[""] * n)
+    return mixed_model_bank(slopes, rng)
 
 
 def log_posterior(bank, items, x, t, k):
