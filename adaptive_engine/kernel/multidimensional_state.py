@@ -432,15 +432,10 @@ def _logistic_information_and_score(tab, given: GivenItems, theta, precision, *,
         eta = eta + a[d] * theta[None, :, d]
     prob = expit(scaling * (eta + given.intercepts))
     j = np.where(given.given, (scaling * scaling) * prob * (1.0 - prob), 0.0)
-    info = np.array(precision, dtype=float, copy=True)
     # without a grid (K > 3) the sums run in order for a batch of one row too, under every
     # version of the rules (such banks are run from version 3 on)
     in_order = one_row_in_order or tab.gridless
-    for p in range(k):
-        for q in range(p, k):
-            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q], in_order)
-            if q != p:
-                info[:, q, p] = info[:, p, q]
+    info = _precision_plus_information(precision, j, a, in_order)
     if not score:
         return info, None
     r = np.where(given.given, scaling * (given.responses - prob), 0.0)
@@ -492,12 +487,7 @@ def general_information_and_score(tab, given: GivenItems, theta, precision, *, s
             rows = np.broadcast_to(theta[None, :, :], given.given.shape + (k,))[graded]
             j[graded] = md.slope_information(tab.params.take(given.index[graded]), rows)
     j = np.where(given.given, j, 0.0)
-    info = np.array(precision, dtype=float, copy=True)
-    for p in range(k):
-        for q in range(p, k):
-            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q], True)
-            if q != p:
-                info[:, q, p] = info[:, p, q]
+    info = _precision_plus_information(precision, j, a, True)
     if not score:
         return info, None
     r = _category_scores(scaling, eta, given)
@@ -585,6 +575,21 @@ def _category_scores(scaling, eta, given: GivenItems) -> np.ndarray:
             log_pm = np.logaddexp(np.log(c), log_1c + log_expit(z_top))
             r[lifted] = scaling * np.exp(np.log1p(-c) + log_expit(z_top) + log_expit(-z_top) - log_pm)
     return np.where(given.given, r, 0.0)
+
+
+def _precision_plus_information(precision, j, a, in_order: bool) -> np.ndarray:
+    """``precision`` (R, K, K) plus the answers' information ``sum_w j a_p a_q`` (``j`` (W, R)
+    the slope information of each answer, ``a[p]`` the answers' slopes on dimension p,
+    broadcastable with ``j``), each entry summed over the answers in order by
+    :func:`_sum_in_order` and the lower triangle copied from the upper."""
+    info = np.array(precision, dtype=float, copy=True)
+    k = info.shape[-1]
+    for p in range(k):
+        for q in range(p, k):
+            info[:, p, q] = _sum_in_order(info[:, p, q], j * a[p] * a[q], in_order)
+            if q != p:
+                info[:, q, p] = info[:, p, q]
+    return info
 
 
 def _sum_in_order(start: np.ndarray, terms: np.ndarray, one_row_in_order: bool = False) -> np.ndarray:
