@@ -571,7 +571,8 @@ def mle_or_fallback(ctx, state, rows, mean, cov, *, final: bool = False):
     (``at_lower_bound``, ``at_upper_bound``: :mod:`.multidimensional_guards`), not replaced.
     """
     theta, mle_cov, status = mle_estimate(ctx, state, rows, mean, final_extremes=final)
-    # what mle_estimate leaves without an estimate (NaN) gets the stand-in
+    # what mle_estimate leaves without an estimate (NaN) gets the stand-in; under decision
+    # rules version 4 it keeps the box point of some rows at a bound (multidimensional_guards)
     missing = (status != "converged") & np.isnan(theta[:, 0])
     return _with_stand_in(ctx, state, rows, theta, mle_cov, status, missing, mean, cov, final)
 
@@ -580,13 +581,11 @@ def _with_stand_in(ctx, state, rows, theta, est_cov, status, missing, mean, cov,
     """``theta``, ``est_cov`` with the design's stand-in (``[scoring] extreme_pattern_method``,
     :func:`mle_or_fallback`) in the rows where ``missing``; (theta, covariance, status)."""
     from ..design.types import ExtremePatternMethod
-    from .multidimensional_guards import kept_at_bound
 
     tab = ctx.multidimensional
     sc = ctx.design.scoring
     mle_cov = est_cov
-    # under decision rules version 4 an MLE at the box's edge is kept (multidimensional_guards)
-    fb = np.flatnonzero(missing & ~kept_at_bound(ctx, status, *state.scored_items(rows)))
+    fb = np.flatnonzero(missing)
     if fb.size == 0:
         return theta, mle_cov, status
     how = sc.extreme_pattern_method
